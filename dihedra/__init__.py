@@ -1,6 +1,40 @@
 """dihedra: conformer-aware torsion analysis of molecular-dynamics trajectories.
 
-The public API is re-exported here; see README.md for the command line.
+The Python API mirrors the command line::
+
+    from dihedra import track, example_path
+    res = track(example_path("hexane.pdb"), [example_path("hexane.xtc")],
+                torsions="rotatable", scheme="anti-gauche")
+    res.populations_by_type      # pandas DataFrame
 """
 
 __version__ = "0.1.0"
+
+from .errors import DihedraError  # noqa: E402
+from .schemes import StateScheme, get_scheme  # noqa: E402
+from .torsions import Torsion, TorsionSet, select_torsions  # noqa: E402
+
+
+def example_path(name=""):
+    """Path of a bundled example file (``hexane.pdb``, ``hexane.xtc``, ...) or of the folder."""
+    from importlib.resources import files
+
+    return str(files("dihedra.examples").joinpath(name))
+
+
+def track(*args, **kwargs):
+    """See :func:`dihedra.track.track`."""
+    from .tracking import track as _track
+
+    return _track(*args, **kwargs)
+
+
+def load_results(folder):
+    """See :func:`dihedra.resultsdir.load_results`."""
+    from .resultsdir import load_results as _load
+
+    return _load(folder)
+
+
+__all__ = ["DihedraError", "StateScheme", "Torsion", "TorsionSet", "example_path", "get_scheme",
+           "load_results", "select_torsions", "track"]

@@ -324,8 +324,6 @@ def select_torsions(universe, specs):
         The torsions in the order of the specifications, duplicates (the same four atoms in
         either direction) removed with a notice, labels made unique.
     """
-    from . import biopolymer, rotatable  # local: they import this module
-
     if isinstance(specs, str):
         specs = [specs]
     if not specs:
@@ -337,13 +335,13 @@ def select_torsions(universe, specs):
         if _INDEX_SPEC.match(spec):
             part = torsions_from_indices(universe, spec)
         elif spec == "rotatable":
-            part = rotatable.rotatable_torsions(universe)
-        elif spec == "protein-backbone":
-            part = biopolymer.protein_backbone_torsions(universe)
-        elif spec == "protein-sidechains":
-            part = biopolymer.protein_sidechain_torsions(universe)
-        elif spec == "nucleic-backbone":
-            part = biopolymer.nucleic_backbone_torsions(universe)
+            from .rotatable import rotatable_torsions  # local: it imports this module
+            part = rotatable_torsions(universe)
+        elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
+            from . import biopolymer
+            part = {"protein-backbone": biopolymer.protein_backbone_torsions,
+                    "protein-sidechains": biopolymer.protein_sidechain_torsions,
+                    "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](universe)
         elif spec.lower().endswith(".toml"):
             if not os.path.exists(spec):
                 raise SelectionError(f"torsion file {spec} does not exist.")

@@ -1,0 +1,76 @@
+"""Options and printing shared by several subcommands (one set of option names everywhere)."""
+
+from __future__ import annotations
+
+import sys
+
+import numpy as np
+
+
+def add_torsion_options(parser, required=True):
+    parser.add_argument("--torsions", action="append", metavar="SPEC", required=required,
+                        help="torsions to follow (repeatable): 'rotatable', 'protein-backbone', "
+                             "'protein-sidechains', 'nucleic-backbone', four 0-based atom indices "
+                             "'A,B,C,D', or a .toml file of named torsions")
+
+
+def add_scheme_option(parser):
+    parser.add_argument("--scheme", default="anti-gauche", metavar="NAME",
+                        help="state scheme: anti-gauche (default), staggered-eclipsed[:N], "
+                             "klyne-prelog, or a .toml file of named sectors")
+
+
+def add_track_options(parser):
+    """The options of the trajectory pass (shared by 'track' and 'demo')."""
+    parser.add_argument("--start", type=int, default=None, metavar="N", help="first frame (0-based)")
+    parser.add_argument("--stop", type=int, default=None, metavar="N", help="stop before this frame")
+    parser.add_argument("--step", type=int, default=None, metavar="N", help="use every N-th frame")
+    parser.add_argument("--workers", type=int, default=1, metavar="N",
+                        help="worker processes (default 1); results equal a serial run")
+    parser.add_argument("--backend", default=None, choices=["serial", "multiprocessing", "dask"],
+                        help="parallel backend for --workers > 1 (default multiprocessing)")
+    parser.add_argument("--keep-angles", action="store_true",
+                        help="also write the angle time series (angles.parquet, float32 degrees)")
+    parser.add_argument("--weights", metavar="FILE[:COLUMN]", default=None,
+                        help="CSV of per-frame weights for reweighting a biased run (column 'weight' "
+                             "or the last one; matched by 'replica'/'frame' columns if present)")
+    parser.add_argument("--dt-ps", type=float, default=None, metavar="PS",
+                        help="time between stored frames in ps (replaces the trajectory's own)")
+    parser.add_argument("--temperature", type=float, default=None, metavar="K",
+                        help="simulation temperature in kelvin, recorded for later steps")
+    parser.add_argument("--overwrite", action="store_true",
+                        help="replace an existing output folder")
+
+
+def say(message, file=None):
+    print(message, file=file or sys.stderr)
+
+
+def print_notices(notices):
+    for note in notices:
+        say(f"note: {note}")
+
+
+def format_pm(value, err, digits=3):
+    if value is None or (isinstance(value, float) and np.isnan(value)):
+        return "-"
+    if err is None or np.isnan(err):
+        return f"{value:.{digits}f}"
+    return f"{value:.{digits}f} ± {err:.{digits}f}"
+
+
+def print_population_table(by_type, state_order, out=None, max_rows=40):
+    """Pooled populations as a compact table: one row per type, one column per state."""
+    out = out or sys.stdout
+    types = list(dict.fromkeys(by_type["type"]))
+    key = by_type.set_index(["type", "state"])
+    width = max([len("type")] + [len(t) for t in types[:max_rows]])
+    cols = [s for s in state_order if s in set(by_type["state"])]
+    cell = 15
+    print(f"{'type':<{width}}  {'n':>4}  " + "  ".join(f"{s:>{cell}}" for s in cols), file=out)
+    for t in types[:max_rows]:
+        n = int(key.loc[(t, cols[0]), "n_torsions"])
+        cells = [format_pm(key.loc[(t, s), "population"], key.loc[(t, s), "population_err"]) for s in cols]
+        print(f"{t:<{width}}  {n:>4}  " + "  ".join(f"{c:>{cell}}" for c in cells), file=out)
+    if len(types) > max_rows:
+        print(f"... and {len(types) - max_rows} more types (see populations_by_type.csv)", file=out)

@@ -1,0 +1,176 @@
+"""State and conformer populations with autocorrelation-aware standard errors.
+
+Functions here turn the block sums of the trajectory pass into tidy tables:
+
+* per torsion: the fraction of (weighted) frames in each state, with the blocking standard error
+  (:func:`dihedra.statistics.blocking_error`) and the effective sample size it implies;
+* per replica: the same for each replica alone;
+* per type: the mean over the torsions of a type; the torsions are separate molecules, treated as
+  independent samples, so the standard error is sqrt(sum se_i^2) / n;
+* conformers: the joint state of the torsions of one group, per group and pooled per group type
+  (the tuple of torsion types along the chain) in the same way.
+
+Population errors of a state that was never visited are 0: read them with ``n_effective``.
+"""
+
+import numpy as np
+import pandas as pd
+
+from .statistics import blocking_error
+
+#: Below this many effective samples a population's error bar is itself rough.
+MIN_EFFECTIVE_SAMPLES = 20
+
+
+def torsion_populations(state_counts, block_replica, labels, types, state_labels):
+    """Per-torsion populations.
+
+    Parameters
+    ----------
+    state_counts : ndarray, shape (n_blocks, n_torsions, n_states)
+    block_replica : ndarray, shape (n_blocks,)
+    labels, types : list of str, length n_torsions
+    state_labels : sequence of str, length n_states
+
+    Returns
+    -------
+    DataFrame with columns torsion, type, state, population, population_err, n_effective,
+    n_samples
+    """
+    counts = np.asarray(state_counts, dtype=float)
+    totals = counts.sum(axis=2, keepdims=True)  # valid frames per block and torsion
+    mean, se, n_eff = blocking_error(counts, totals, block_replica)
+    n_t, n_s = counts.shape[1:]
+    n_samples = np.repeat(totals.sum(axis=0), n_s, axis=1)
+    return pd.DataFrame({
+        "torsion": np.repeat(labels, n_s),
+        "type": np.repeat(types, n_s),
+        "state": np.tile(list(state_labels), n_t),
+        "population": mean.reshape(-1),
+        "population_err": se.reshape(-1),
+        "n_effective": n_eff.reshape(-1),
+        "n_samples": n_samples.reshape(-1),
+    })
+
+
+def replica_populations(state_counts, block_replica, labels, types, state_labels):
+    """Per-torsion populations of each replica alone (columns as above plus ``replica``)."""
+    frames = []
+    block_replica = np.asarray(block_replica)
+    for r in np.unique(block_replica):
+        sel = block_replica == r
+        df = torsion_populations(np.asarray(state_counts)[sel], block_replica[sel], labels, types,
+                                 state_labels)
+        df.insert(0, "replica", int(r))
+        frames.append(df)
+    return pd.concat(frames, ignore_index=True)
+
+
+def pool_by_type(populations, key="type", item="torsion", count_name="n_torsions"):
+    """Pool per-item populations per type: mean, and se = sqrt(sum se_i^2) / n (independent items).
+
+    Parameters
+    ----------
+    populations : DataFrame
+        With columns ``key``, ``item``, ``state``, ``population``, ``population_err``.
+    """
+    def agg(g):
+        n = g[item].nunique()
+        return pd.Series({
+            "population": g["population"].mean(),
+            "population_err": np.sqrt(np.sum(g["population_err"] ** 2)) / n,
+            count_name: n,
+        })
+
+    order = {s: k for k, s in enumerate(pd.unique(populations["state"]))}
+    out = (populations.groupby([key, "state"], sort=False)[[item, "population", "population_err"]]
+           .apply(agg).reset_index())
+    out[count_name] = out[count_name].astype(int)
+    out["_o"] = out["state"].map(order)
+    out = out.sort_values([key, "_o"], kind="stable").drop(columns="_o").reset_index(drop=True)
+    return out
+
+
+def conformer_populations(rows, weights, block_replica, n_blocks, groups, members, labels, types,
+                          state_labels, resnames):
+    """Conformer populations per group and pooled per group type.
+
+    Parameters
+    ----------
+    rows : ndarray (n_rows, 4)
+        (global block, group, joint code, frames) from the trajectory pass.
+    weights : ndarray (n_rows,)
+        Weight sums of the rows (equal to the frames when unweighted).
+    block_replica : ndarray (n_blocks,)
+    groups : list of str
+    members : list of ndarray
+        Torsion positions of each group in chain order.
+    labels, types, resnames : list of str
+        Torsion labels, types and residue names.
+
+    Returns
+    -------
+    by_group, by_type : DataFrames
+        ``by_group`` columns: group, group_type, conformer, torsions, population, population_err,
+        n_effective; ``by_type``: group_type, conformer, torsions (types), population,
+        population_err, n_groups.
+    """
+    n_s = len(state_labels)
+    out = []
+    rows = np.asarray(rows, dtype=np.int64).reshape(-1, 4)
+    weights = np.asarray(weights, dtype=float)
+    group_types = [" | ".join(types[p] for p in m) for m in members]
+    type_names = _short_type_names(group_types, resnames, members)
+    for g, (name, m) in enumerate(zip(groups, members)):
+        sel = rows[:, 1] == g
+        if not sel.any():
+            continue
+        codes, inv = np.unique(rows[sel, 2], return_inverse=True)
+        table = np.zeros((n_blocks, len(codes)))
+        np.add.at(table, (rows[sel, 0], inv.reshape(-1)), weights[sel])
+        totals = table.sum(axis=1)
+        mean, se, n_eff = blocking_error(table, totals, block_replica)
+        for k, code in enumerate(codes):
+            digits = [(int(code) // n_s ** j) % n_s for j in range(len(m))]
+            out.append({
+                "group": name,
+                "group_type": type_names[g],
+                "conformer": "|".join(state_labels[d] for d in digits),
+                "torsions": "|".join(labels[p] for p in m),
+                "population": mean[k], "population_err": se[k], "n_effective": n_eff[k],
+            })
+    by_group = pd.DataFrame(out, columns=["group", "group_type", "conformer", "torsions",
+                                          "population", "population_err", "n_effective"])
+    if by_group.empty:
+        return by_group, pd.DataFrame(columns=["group_type", "conformer", "population",
+                                               "population_err", "n_groups"])
+    # pooled: every group of a type contributes to every conformer seen in that type (0 if unseen)
+    full = []
+    for gtype, sub in by_group.groupby("group_type", sort=False):
+        grid = pd.MultiIndex.from_product([sub["group"].unique(), sub["conformer"].unique()],
+                                          names=["group", "conformer"])
+        sub = sub.set_index(["group", "conformer"])[["population", "population_err"]]
+        sub = sub.reindex(grid, fill_value=0.0).reset_index()
+        sub["group_type"] = gtype
+        full.append(sub)
+    pooled = pool_by_type(pd.concat(full, ignore_index=True).rename(columns={"conformer": "state"}),
+                          key="group_type", item="group", count_name="n_groups")
+    pooled = pooled.rename(columns={"state": "conformer"})
+    pooled = pooled.sort_values(["group_type", "population"], ascending=[True, False],
+                                kind="stable").reset_index(drop=True)
+    by_group = by_group.sort_values(["group", "population"], ascending=[True, False],
+                                    kind="stable").reset_index(drop=True)
+    return by_group, pooled
+
+
+def _short_type_names(group_types, resnames, members):
+    """Readable names for group types: the residue name of the group, numbered if ambiguous."""
+    first = {}
+    for gt, m in zip(group_types, members):
+        first.setdefault(gt, str(resnames[m[0]]) or "group")
+    names = {}
+    used = {}
+    for gt, base in first.items():
+        used[base] = used.get(base, 0) + 1
+        names[gt] = base if used[base] == 1 else f"{base}#{used[base]}"
+    return [names[gt] for gt in group_types]

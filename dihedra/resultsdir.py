@@ -1,0 +1,157 @@
+"""Reading and writing a results folder (the only module that does).
+
+A results folder holds tidy tables with unit-bearing column names plus a JSON summary:
+
+``torsions.csv``                torsion, type, atom_indices, atom_names, resname, resid, segid, name,
+                                group, order, n_undefined_frames
+``populations.csv``             torsion, type, state, population, population_err, n_effective, n_samples
+``populations_by_type.csv``     type, state, population, population_err, n_torsions
+``populations_by_replica.csv``  replica, torsion, type, state, population, population_err, ...
+``conformers.csv``              group, group_type, conformer, torsions, population, population_err,
+                                n_effective
+``conformers_by_type.csv``      group_type, state -> conformer, population, population_err, n_groups
+``states.parquet``              replica, frame, time_ps, [weight], then one int8 column per torsion
+                                (codes in summary.json, -1 = undefined); row groups of a few MB
+``angles.parquet``              the same layout with float32 degrees (only with --keep-angles)
+``blocks.npz``                  block sums of the pass: state counts and fine angle histograms per
+                                block, with block frames, weights and replicas (input of profiles)
+``summary.json``                inputs with SHA-256, frame ranges, time step, scheme, parameters,
+                                package versions, notices
+
+Analyses (profiles, kinetics, comparison, figures) read a folder with :func:`load_results` and add
+their own files through :func:`write_table` / :func:`write_json`.
+"""
+
+from __future__ import annotations
+
+import glob
+import json
+import os
+import re
+
+import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
+
+from .errors import InputFileError
+
+TABLES = {
+    "torsions": "torsions.csv",
+    "populations": "populations.csv",
+    "populations_by_type": "populations_by_type.csv",
+    "populations_by_replica": "populations_by_replica.csv",
+    "conformers": "conformers.csv",
+    "conformers_by_type": "conformers_by_type.csv",
+}
+
+
+def write_table(frame, folder, name, float_format="%.6g"):
+    """Write a tidy table as CSV (no index)."""
+    path = os.path.join(folder, name)
+    frame.to_csv(path, index=False, float_format=float_format)
+    return path
+
+
+def write_json(data, folder, name):
+    """Write a JSON document (NumPy scalars converted)."""
+    path = os.path.join(folder, name)
+    with open(path, "w") as fh:
+        json.dump(data, fh, indent=2, default=_json_default)
+        fh.write("\n")
+    return path
+
+
+def _json_default(obj):
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return float(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    return str(obj)
+
+
+def write_results(result, folder):
+    """Write every table, the block sums and the summary of a :class:`TrackResult`."""
+    for attr, name in TABLES.items():
+        write_table(getattr(result, attr), folder, name)
+    np.savez_compressed(os.path.join(folder, "blocks.npz"), **result.blocks)
+    write_json(result.summary, folder, "summary.json")
+
+
+_PART = re.compile(r"replica(\d+)-from(\d+)\.(states|angles)\.parquet$")
+
+
+def merge_parts(parts_dir, folder, keep_angles):
+    """Concatenate the per-worker Parquet parts into ``states.parquet`` (and ``angles.parquet``),
+    row group by row group, in replica and frame order; memory stays at one row group."""
+    for kind in ("states", "angles") if keep_angles else ("states",):
+        parts = []
+        for path in glob.glob(os.path.join(parts_dir, f"*.{kind}.parquet")):
+            m = _PART.search(os.path.basename(path))
+            parts.append((int(m.group(1)), int(m.group(2)), path))
+        parts.sort()
+        if not parts:
+            continue
+        writer = None
+        try:
+            for _, _, path in parts:
+                pf = pq.ParquetFile(path)
+                if writer is None:
+                    writer = pq.ParquetWriter(os.path.join(folder, f"{kind}.parquet"), pf.schema_arrow)
+                for k in range(pf.num_row_groups):
+                    writer.write_table(pf.read_row_group(k))
+        finally:
+            if writer is not None:
+                writer.close()
+
+
+def read_table(path, columns=None):
+    """A whole Parquet time series as a DataFrame."""
+    return pq.read_table(path, columns=_with_index(columns)).to_pandas()
+
+
+def iter_table(path, columns=None, batch_frames=None):
+    """Yield a Parquet time series in chunks (one row group, or ``batch_frames`` rows, at a time)."""
+    pf = pq.ParquetFile(path)
+    cols = _with_index(columns)
+    if batch_frames is None:
+        for k in range(pf.num_row_groups):
+            yield pf.read_row_group(k, columns=cols).to_pandas()
+    else:
+        for batch in pf.iter_batches(batch_size=int(batch_frames), columns=cols):
+            yield batch.to_pandas()
+
+
+def _with_index(columns):
+    if columns is None:
+        return None
+    head = ["replica", "frame", "time_ps"]
+    return head + [c for c in columns if c not in head]
+
+
+def load_results(folder):
+    """Load a results folder written by ``dihedra track`` as a :class:`~dihedra.track.TrackResult`."""
+    from .schemes import StateScheme
+    from .torsions import TorsionSet
+    from .tracking import TrackResult
+
+    folder = os.fspath(folder)
+    if not os.path.isdir(folder):
+        raise InputFileError(f"results folder {folder} does not exist (run 'dihedra track ... --out {folder}' first).")
+    missing = [n for n in list(TABLES.values()) + ["summary.json", "blocks.npz"]
+               if not os.path.exists(os.path.join(folder, n))]
+    if missing:
+        raise InputFileError(f"{folder} is not a complete dihedra results folder: missing {', '.join(missing)}.")
+    tables = {attr: pd.read_csv(os.path.join(folder, name), keep_default_na=False,
+                                na_values=[""]) for attr, name in TABLES.items()}
+    for attr in ("torsions",):
+        tables[attr]["segid"] = tables[attr]["segid"].fillna("").astype(str)
+    with open(os.path.join(folder, "summary.json")) as fh:
+        summary = json.load(fh)
+    with np.load(os.path.join(folder, "blocks.npz")) as npz:
+        blocks = {k: npz[k] for k in npz.files}
+    tset = TorsionSet.from_frame(tables["torsions"])
+    return TrackResult(torsion_set=tset, scheme=StateScheme.from_dict(summary["scheme"]), blocks=blocks,
+                       summary=summary, notices=list(summary.get("notices", [])),
+                       folder=os.path.abspath(folder), **tables)

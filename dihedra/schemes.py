@@ -1,0 +1,340 @@
+"""State schemes: named sectors of the torsion circle, and the assignment of angles to states.
+
+A scheme cuts the circle (-180, 180] into arcs; every arc carries a state label, and several arcs
+may share one (the three staggered arcs of a three-fold rotor are one state, ``staggered``).
+Assignment is a vectorised search over the arc boundaries; an undefined angle (NaN) gets the code
+:data:`UNDEFINED` (-1). State codes are small integers (``int8``) in the order of
+:attr:`StateScheme.labels`.
+
+Built-in schemes (state labels exactly as written):
+
+``anti-gauche``
+    ``anti`` (\\|phi\\| > 120), ``gauche+`` (0 < phi <= 120), ``gauche-`` (-120 <= phi <= 0).
+``staggered-eclipsed`` (``staggered-eclipsed:N`` for an N-fold rotor, default N = 3)
+    ``staggered`` within 180/(2N) degrees (inclusive) of a staggered position 180 + k 360/N,
+    ``eclipsed`` otherwise.
+``klyne-prelog``
+    the IUPAC sectors ``sp`` (0 +- 30), ``+sc`` (30..90), ``+ac`` (90..150), ``ap`` (150..180 and
+    -150..-180), ``-ac``, ``-sc`` (Klyne & Prelog, Experientia 16 (1960) 521). IUPAC does not fix
+    which sector owns a boundary; dihedra gives +-30 to ``sp``, +-90 to ``+-ac`` and +-150 to ``ap``.
+
+Custom schemes come from a TOML file (:func:`scheme_from_toml`) of named circular intervals
+(``from_deg``, ``to_deg``], each open at its start and closed at its end, wrapping through 180
+allowed; together they must cover the circle exactly once.
+
+The same scheme gives transition-based (core-set) states through :meth:`StateScheme.core_codes`:
+every arc shrunk by a margin on both sides; angles outside every core get :data:`NO_CORE`.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import SchemeError
+from .units import wrap_deg
+
+#: State code of an undefined torsion (collinear atoms, NaN coordinates).
+UNDEFINED = -1
+#: Core code of an angle that lies outside every core (see :meth:`StateScheme.core_codes`).
+NO_CORE = -2
+
+BUILTIN_SCHEMES = ("anti-gauche", "staggered-eclipsed", "klyne-prelog")
+
+
+@dataclass(frozen=True)
+class StateScheme:
+    """A partition of the torsion circle into labelled arcs.
+
+    Parameters
+    ----------
+    name : str
+        Name of the scheme (``anti-gauche`` or the name given in a TOML file).
+    labels : tuple of str
+        State labels; the state code of ``labels[k]`` is ``k``.
+    boundaries_deg : tuple of float
+        Arc starts in degrees, strictly increasing, within (-180, 180]. Arc ``k`` runs from
+        ``boundaries_deg[k]`` to ``boundaries_deg[k+1]`` (the last arc wraps to the first).
+    arc_states : tuple of int
+        State code of each arc.
+    start_closed : tuple of bool
+        Whether arc ``k`` owns its start boundary (else the previous arc owns it).
+    """
+
+    name: str
+    labels: tuple
+    boundaries_deg: tuple
+    arc_states: tuple
+    start_closed: tuple
+
+    def __post_init__(self):
+        b = np.asarray(self.boundaries_deg, dtype=float)
+        n = len(b)
+        if n == 0:
+            raise SchemeError(f"scheme {self.name!r} has no states.")
+        if len(self.arc_states) != n or len(self.start_closed) != n:
+            raise SchemeError(f"scheme {self.name!r}: one state and one ownership flag per arc needed.")
+        if np.any(np.diff(b) <= 0) or b[0] <= -180 or b[-1] > 180:
+            raise SchemeError(f"scheme {self.name!r}: arc boundaries must increase within (-180, 180]; "
+                              f"got {list(b)}.")
+        if len(set(self.labels)) != len(self.labels):
+            raise SchemeError(f"scheme {self.name!r}: state labels must be unique; got {list(self.labels)}.")
+        if len(self.labels) > 127:
+            raise SchemeError(f"scheme {self.name!r} has {len(self.labels)} states; at most 127 are allowed.")
+        used = set(int(s) for s in self.arc_states)
+        if used != set(range(len(self.labels))):
+            raise SchemeError(f"scheme {self.name!r}: every state needs at least one arc.")
+
+    @property
+    def n_states(self):
+        return len(self.labels)
+
+    def arcs(self):
+        """List of ``(state_code, start_deg, end_deg, start_closed)``; ``end_deg`` may exceed 180."""
+        b = list(self.boundaries_deg)
+        out = []
+        for k, start in enumerate(b):
+            end = b[k + 1] if k + 1 < len(b) else b[0] + 360.0
+            out.append((int(self.arc_states[k]), float(start), float(end), bool(self.start_closed[k])))
+        return out
+
+    def _arc_index(self, angles_deg):
+        a = wrap_deg(angles_deg)
+        b = np.asarray(self.boundaries_deg, dtype=float)
+        n = len(b)
+        k = np.searchsorted(b, a, side="right") - 1  # last boundary <= angle; -1 wraps
+        k = np.where(k < 0, n - 1, k)
+        on_start = a == b[k]
+        open_start = ~np.asarray(self.start_closed, dtype=bool)[k]
+        k = np.where(on_start & open_start, (k - 1) % n, k)
+        return a, k
+
+    def assign(self, angles_deg):
+        """State codes (``int8``) of angles in degrees; NaN gives :data:`UNDEFINED`.
+
+        Examples
+        --------
+        >>> get_scheme("anti-gauche").assign([180.0, 60.0, -60.0, 120.0, -120.0]).tolist()
+        [0, 1, 2, 1, 2]
+        """
+        a, k = self._arc_index(angles_deg)
+        codes = np.asarray(self.arc_states, dtype=np.int8)[k]
+        return np.where(np.isnan(a), np.int8(UNDEFINED), codes).astype(np.int8)
+
+    def core_codes(self, angles_deg, margin_deg):
+        """Core-set codes: the state if the angle lies in its arc shrunk by ``margin_deg`` on both
+        sides, :data:`NO_CORE` between cores, :data:`UNDEFINED` for NaN.
+
+        Arcs that share a state and touch each other are merged before shrinking, so a margin
+        never opens a gap inside one state.
+        """
+        margin = float(margin_deg)
+        if margin < 0:
+            raise SchemeError(f"core margin must be >= 0 degrees; got {margin_deg}.")
+        a = wrap_deg(angles_deg)
+        codes = np.full(a.shape, NO_CORE, dtype=np.int8)
+        for state, start, end in self.merged_arcs():
+            lo, hi = start + margin, end - margin
+            if hi <= lo:
+                continue
+            # angle measured from the arc start, in [0, 360)
+            rel = np.mod(a - lo, 360.0)
+            inside = rel <= (hi - lo)
+            codes[inside] = state
+        codes[np.isnan(a)] = UNDEFINED
+        return codes
+
+    def merged_arcs(self):
+        """Arcs with touching arcs of the same state merged: ``(state, start_deg, end_deg)``."""
+        arcs = [(s, a, b) for s, a, b, _ in self.arcs()]
+        if len(arcs) > 1:
+            # rotate so that the list starts at a change of state
+            for shift in range(len(arcs)):
+                if arcs[shift - 1][0] != arcs[shift][0]:
+                    arcs = arcs[shift:] + [(s, a + 360.0, b + 360.0) for s, a, b in arcs[:shift]]
+                    break
+            else:
+                return [(arcs[0][0], -180.0, 180.0)]
+        merged = [list(arcs[0])]
+        for s, a, b in arcs[1:]:
+            if s == merged[-1][0]:
+                merged[-1][2] = b
+            else:
+                merged.append([s, a, b])
+        return [tuple(m) for m in merged]
+
+    def sector_table(self):
+        """Arcs as rows of (state, start_deg, end_deg) with ends in (-180, 180] (for docs and plots)."""
+        rows = []
+        for state, start, end, _ in self.arcs():
+            rows.append((self.labels[state], float(wrap_deg(start)), float(wrap_deg(end))))
+        return rows
+
+    def to_dict(self):
+        """JSON-ready description (stored in summary.json)."""
+        return {
+            "name": self.name,
+            "labels": list(self.labels),
+            "codes": {label: k for k, label in enumerate(self.labels)},
+            "undefined_code": UNDEFINED,
+            "boundaries_deg": [float(x) for x in self.boundaries_deg],
+            "arc_states": [int(x) for x in self.arc_states],
+            "start_closed": [bool(x) for x in self.start_closed],
+        }
+
+    @classmethod
+    def from_dict(cls, d):
+        return cls(name=d["name"], labels=tuple(d["labels"]),
+                   boundaries_deg=tuple(d["boundaries_deg"]), arc_states=tuple(d["arc_states"]),
+                   start_closed=tuple(d["start_closed"]))
+
+
+def _from_arcs(name, arcs):
+    """Build a scheme from ``(label, start_deg, closed_start)`` in circular order."""
+    labels = []
+    for label, _, _ in arcs:
+        if label not in labels:
+            labels.append(label)
+    rows = sorted(((float(wrap_deg(s)), labels.index(label), closed) for label, s, closed in arcs))
+    return StateScheme(name=name, labels=tuple(labels),
+                       boundaries_deg=tuple(r[0] for r in rows),
+                       arc_states=tuple(r[1] for r in rows),
+                       start_closed=tuple(r[2] for r in rows))
+
+
+def anti_gauche():
+    """anti (\\|phi\\| > 120), gauche+ (0 < phi <= 120), gauche- (-120 <= phi <= 0)."""
+    return _from_arcs("anti-gauche", [("anti", 120.0, False), ("gauche+", 0.0, False),
+                                      ("gauche-", -120.0, True)])
+
+
+def staggered_eclipsed(n_fold=3):
+    """Staggered within 180/(2n) degrees (inclusive) of 180 + k 360/n; eclipsed otherwise."""
+    n = int(n_fold)
+    if n < 1 or n > 12:
+        raise SchemeError(f"the rotor fold n must be an integer from 1 to 12; got {n_fold!r}.")
+    half = 180.0 / (2 * n)
+    arcs = []
+    for k in range(n):
+        centre = 180.0 + k * 360.0 / n
+        arcs.append(("staggered", centre - half, True))
+        arcs.append(("eclipsed", centre + half, False))
+    scheme = _from_arcs("staggered-eclipsed" if n == 3 else f"staggered-eclipsed:{n}", arcs)
+    # keep the label order fixed: staggered = 0, eclipsed = 1
+    if scheme.labels[0] != "staggered":
+        scheme = StateScheme(scheme.name, ("staggered", "eclipsed"), scheme.boundaries_deg,
+                             tuple(1 - s for s in scheme.arc_states), scheme.start_closed)
+    return scheme
+
+
+def klyne_prelog():
+    """IUPAC sectors sp, +sc, +ac, ap, -ac, -sc (Klyne & Prelog 1960)."""
+    arcs = [("sp", -30.0, True), ("+sc", 30.0, False), ("+ac", 90.0, True),
+            ("ap", 150.0, True), ("-ac", -150.0, False), ("-sc", -90.0, False)]
+    scheme = _from_arcs("klyne-prelog", arcs)
+    order = ("sp", "+sc", "+ac", "ap", "-ac", "-sc")
+    remap = [order.index(label) for label in scheme.labels]
+    return StateScheme("klyne-prelog", order, scheme.boundaries_deg,
+                       tuple(remap[s] for s in scheme.arc_states), scheme.start_closed)
+
+
+def scheme_from_toml(path):
+    """A custom scheme from a TOML file.
+
+    The file has an optional ``name`` and one ``[[state]]`` table per arc with ``label``,
+    ``from_deg`` and ``to_deg``; the arc runs counter-clockwise (increasing angle) from
+    ``from_deg`` (excluded) to ``to_deg`` (included) and may wrap through 180. Several arcs may
+    share a label. The arcs must cover the circle exactly once.
+
+    Example::
+
+        name = "trans-or-not"
+        [[state]]
+        label = "trans"
+        from_deg = 150
+        to_deg = -150
+        [[state]]
+        label = "other"
+        from_deg = -150
+        to_deg = 150
+    """
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except OSError as exc:
+        raise SchemeError(f"cannot read scheme file {path}: {exc.strerror}.") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise SchemeError(f"scheme file {path} is not valid TOML: {exc}.") from None
+    return scheme_from_mapping(data, where=str(path))
+
+
+def scheme_from_mapping(data, where="scheme"):
+    """A custom scheme from a mapping with the layout of :func:`scheme_from_toml`."""
+    unknown = sorted(set(data) - {"name", "state"})
+    if unknown:
+        raise SchemeError(f"{where}: unknown key(s) {', '.join(unknown)}; valid keys are name, state.")
+    states = data.get("state")
+    if not states:
+        raise SchemeError(f"{where}: no [[state]] tables; each needs label, from_deg and to_deg.")
+    arcs = []
+    for k, st in enumerate(states, start=1):
+        missing = [key for key in ("label", "from_deg", "to_deg") if key not in st]
+        extra = sorted(set(st) - {"label", "from_deg", "to_deg"})
+        if missing or extra:
+            detail = (f"missing {', '.join(missing)}" if missing else "") + \
+                     ("; " if missing and extra else "") + \
+                     (f"unknown {', '.join(extra)}" if extra else "")
+            raise SchemeError(f"{where}: state {k}: {detail}; each state needs label, from_deg, to_deg.")
+        try:
+            lo, hi = float(st["from_deg"]), float(st["to_deg"])
+        except (TypeError, ValueError):
+            raise SchemeError(f"{where}: state {st['label']!r}: from_deg and to_deg must be numbers.") from None
+        if not (-360 <= lo <= 360 and -360 <= hi <= 360):
+            raise SchemeError(f"{where}: state {st['label']!r}: angles must lie within -360..360 degrees.")
+        lo, hi = float(wrap_deg(lo)), float(wrap_deg(hi))
+        length = (hi - lo) % 360.0
+        if length == 0:
+            raise SchemeError(f"{where}: state {st['label']!r} has zero width ({lo} to {hi} deg); "
+                              "a state covering the whole circle is not a scheme.")
+        arcs.append((str(st["label"]), lo, hi, length))
+    arcs.sort(key=lambda r: r[1])
+    total = sum(r[3] for r in arcs)
+    for (la, _, hi_a, _), (lb, lo_b, _, _) in zip(arcs, arcs[1:] + arcs[:1]):
+        if abs(((hi_a - lo_b + 180.0) % 360.0) - 180.0) > 1e-9:
+            gap = (lo_b - hi_a) % 360.0
+            if abs(total - 360.0) < 1e-9 or gap < 180 and total < 360:
+                raise SchemeError(f"{where}: the states do not cover the circle: a gap from {hi_a:g} to "
+                                  f"{lo_b:g} deg (after {la!r}, before {lb!r}).")
+            raise SchemeError(f"{where}: states {la!r} and {lb!r} overlap between {lo_b:g} and {hi_a:g} deg.")
+    if abs(total - 360.0) > 1e-9:
+        raise SchemeError(f"{where}: the states cover {total:g} degrees instead of 360; they overlap.")
+    name = str(data.get("name", "custom"))
+    return _from_arcs(name, [(label, lo, False) for label, lo, _, _ in arcs])
+
+
+def get_scheme(spec):
+    """A scheme by name (``anti-gauche``, ``staggered-eclipsed[:N]``, ``klyne-prelog``) or TOML path.
+
+    A :class:`StateScheme` passes through unchanged.
+    """
+    if isinstance(spec, StateScheme):
+        return spec
+    text = str(spec).strip()
+    if text == "anti-gauche":
+        return anti_gauche()
+    if text == "klyne-prelog":
+        return klyne_prelog()
+    if text == "staggered-eclipsed" or text.startswith("staggered-eclipsed:"):
+        _, _, fold = text.partition(":")
+        try:
+            n = int(fold) if fold else 3
+        except ValueError:
+            raise SchemeError(f"staggered-eclipsed takes an integer fold, e.g. staggered-eclipsed:2; "
+                              f"got {text!r}.") from None
+        return staggered_eclipsed(n)
+    if text.lower().endswith(".toml"):
+        return scheme_from_toml(text)
+    raise SchemeError(f"unknown state scheme {text!r}; use one of {', '.join(BUILTIN_SCHEMES)} "
+                      "(staggered-eclipsed:N for an N-fold rotor) or a .toml file.")

@@ -1,0 +1,152 @@
+"""Uncertainty of time averages from correlated samples.
+
+Two estimators, both standard:
+
+* Statistical inefficiency g of a time series (Chodera, Swope, Pitera, Seok & Dill, J. Chem.
+  Theory Comput. 3 (2007) 26): g = 1 + 2 sum_{t=1}^{N-1} (1 - t/N) C_t, with the sum stopped at the
+  first non-positive autocorrelation C_t; the effective number of samples is N/g and the standard
+  error of the mean is sqrt(var / (N/g)). Used where the full series is at hand.
+* Block averaging (Flyvbjerg & Petersen, J. Chem. Phys. 91 (1989) 461) on the per-block sums the
+  trajectory pass keeps, so that errors never need the raw series: blocks are merged pairwise
+  (within one replica only) and the standard error is taken as the largest over the levels that
+  keep at least :data:`MIN_BLOCKS` blocks (the conservative reading of the blocking plateau,
+  common practice).
+
+Weighted (reweighted) samples use the ratio estimator with per-block weight sums.
+"""
+
+import numpy as np
+
+#: Fewest blocks a blocking level may have to enter the error estimate.
+MIN_BLOCKS = 8
+
+
+def statistical_inefficiency(x, mintime=3):
+    """Statistical inefficiency g >= 1 of a time series (Chodera et al. 2007).
+
+    Parameters
+    ----------
+    x : array-like, shape (N,)
+    mintime : int
+        The sum over lags runs at least up to this lag before stopping at the first
+        non-positive autocorrelation (as in Chodera et al.).
+
+    Returns
+    -------
+    float
+        g; 1.0 for a constant or too short series.
+    """
+    x = np.asarray(x, dtype=float)
+    n = x.size
+    if n < 2:
+        return 1.0
+    dx = x - x.mean()
+    var = np.dot(dx, dx) / n
+    if var == 0:
+        return 1.0
+    # autocorrelation by FFT, C_t for t = 0..N-1
+    size = 1 << (2 * n - 1).bit_length()
+    f = np.fft.rfft(dx, size)
+    acov = np.fft.irfft(f * np.conj(f), size)[:n] / (n - np.arange(n))
+    c = acov / var
+    g = 1.0
+    for t in range(1, n):
+        if c[t] <= 0 and t > mintime:
+            break
+        g += 2.0 * c[t] * (1.0 - t / n)
+    return max(1.0, g)
+
+
+def weighted_block_error(block_values, block_weights):
+    """Standard error of a weighted mean from independent block means (ratio estimator).
+
+    Parameters
+    ----------
+    block_values : ndarray, shape (n_blocks, ...)
+        Per-block sums of the observable times the weight (for a population: weighted count of
+        frames in the state).
+    block_weights : ndarray, shape (n_blocks,) or broadcastable
+        Per-block sums of weights (frame counts when unweighted).
+
+    Returns
+    -------
+    mean, se : ndarrays of shape block_values.shape[1:]
+        se is NaN with fewer than two non-empty blocks.
+    """
+    v = np.asarray(block_values, dtype=float)
+    w = np.asarray(block_weights, dtype=float)
+    w = w.reshape(w.shape + (1,) * (v.ndim - w.ndim))
+    total_w = w.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = v.sum(axis=0) / total_w
+        nonempty = (np.broadcast_to(w, v.shape) > 0).sum(axis=0)
+        resid = v - w * mean
+        var = (resid ** 2).sum(axis=0) / total_w ** 2 * nonempty / (nonempty - 1)
+    se = np.sqrt(var)
+    se = np.where(nonempty >= 2, se, np.nan)
+    return mean, se
+
+
+def merge_pairs(values, weights, replica):
+    """Merge neighbouring blocks of the same replica pairwise (one blocking step)."""
+    out_v, out_w, out_r = [], [], []
+    for r in np.unique(replica):
+        sel = np.flatnonzero(replica == r)
+        n_pairs = len(sel) // 2
+        if n_pairs == 0:
+            continue
+        a, b = sel[0:2 * n_pairs:2], sel[1:2 * n_pairs:2]
+        out_v.append(values[a] + values[b])
+        out_w.append(weights[a] + weights[b])
+        out_r.append(np.full(n_pairs, r))
+    if not out_v:
+        return values[:0], weights[:0], replica[:0]
+    return np.concatenate(out_v), np.concatenate(out_w), np.concatenate(out_r)
+
+
+def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BLOCKS):
+    """Mean and conservative standard error by Flyvbjerg-Petersen blocking.
+
+    Parameters
+    ----------
+    block_values : ndarray, shape (n_blocks, ...)
+        Weighted sums per block (e.g. frames in a state per block and torsion).
+    block_weights : ndarray, shape (n_blocks,) or (n_blocks, ...) broadcastable to the values
+        Weight sums per block (frames per block when unweighted).
+    block_replica : ndarray of int, shape (n_blocks,)
+        Replica of each block; blocks of different replicas are never merged.
+    min_blocks : int
+        Levels with fewer non-empty blocks are not used.
+
+    Returns
+    -------
+    mean : ndarray, shape block_values.shape[1:]
+    se : ndarray, same shape
+        The largest standard error over the usable levels (NaN if none).
+    n_effective : ndarray, same shape
+        Effective number of independent samples implied for an indicator (0/1) observable,
+        p (1 - p) / se**2, capped at the number of samples; inf where se == 0.
+    """
+    v = np.asarray(block_values, dtype=float)
+    w = np.asarray(block_weights, dtype=float)
+    r = np.asarray(block_replica)
+    w = w.reshape(w.shape + (1,) * (v.ndim - w.ndim))
+    keep = w.reshape(len(w), -1).sum(axis=1) > 0
+    v, w, r = v[keep], w[keep], r[keep]
+    mean, first = weighted_block_error(v, w)
+    best = np.where(len(w) >= min_blocks, first, np.nan)
+    while True:
+        v, w, r = merge_pairs(v, w, r)
+        if len(w) < min_blocks:
+            break
+        _, se = weighted_block_error(v, w)
+        best = np.fmax(best, se)
+    # too few blocks for a plateau: plain block error (n_effective then tells how rough it is)
+    best = np.where(np.isnan(best), first, best)
+    n_samples = np.asarray(block_weights, dtype=float)
+    n_samples = n_samples.reshape(n_samples.shape + (1,) * (np.ndim(block_values) - n_samples.ndim))
+    n_samples = np.broadcast_to(n_samples.sum(axis=0), np.shape(mean))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        n_eff = mean * (1.0 - mean) / best ** 2
+        n_eff = np.where(best > 0, np.minimum(n_eff, n_samples), np.inf)
+    return mean, best, n_eff
