@@ -191,12 +191,15 @@ class StateScheme:
                    start_closed=tuple(d["start_closed"]))
 
 
-def _from_arcs(name, arcs):
-    """Build a scheme from ``(label, start_deg, closed_start)`` in circular order."""
-    labels = []
-    for label, _, _ in arcs:
-        if label not in labels:
-            labels.append(label)
+def _from_arcs(name, arcs, labels=None):
+    """Build a scheme from ``(label, start_deg, closed_start)``; state codes follow ``labels``
+    (default: first appearance in ``arcs``)."""
+    if labels is None:
+        labels = []
+        for label, _, _ in arcs:
+            if label not in labels:
+                labels.append(label)
+    labels = list(labels)
     rows = sorted(((float(wrap_deg(s)), labels.index(label), closed) for label, s, closed in arcs))
     return StateScheme(name=name, labels=tuple(labels),
                        boundaries_deg=tuple(r[0] for r in rows),
@@ -311,7 +314,8 @@ def scheme_from_mapping(data, where="scheme"):
     if abs(total - 360.0) > 1e-9:
         raise SchemeError(f"{where}: the states cover {total:g} degrees instead of 360; they overlap.")
     name = str(data.get("name", "custom"))
-    return _from_arcs(name, [(label, lo, False) for label, lo, _, _ in arcs])
+    order = list(dict.fromkeys(str(st["label"]) for st in states))  # labels in file order
+    return _from_arcs(name, [(label, lo, False) for label, lo, _, _ in arcs], labels=order)
 
 
 def get_scheme(spec):
