@@ -94,7 +94,31 @@ def load_universe(topology, trajectory=None, notices=None):
         if "Cannot write lock/offset file" in text:
             notices.append(f"cannot write the frame-offset cache beside {trajectory} (read-only "
                            "folder); offsets are recomputed on every run, which is slower but correct.")
+    if trajectory is not None:
+        _check_trailing_bytes(universe, trajectory, notices)
     return universe
+
+
+def _check_trailing_bytes(universe, trajectory, notices):
+    """Notice for an XTC/TRR file that ends with an incomplete frame after its last complete one
+    (a run cut while writing): MDAnalysis then silently uses the complete frames only."""
+    reader = universe.trajectory
+    xdr = getattr(reader, "_xdr", None)
+    if xdr is None or reader.n_frames == 0:
+        return
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            reader[reader.n_frames - 1]
+            end = xdr.tell()
+            reader[0]
+    except Exception:  # noqa: BLE001 - an unreadable last frame is reported when the run reaches it
+        return
+    size = os.path.getsize(trajectory)
+    if end < size:
+        notices.append(f"trajectory {trajectory} ends with an incomplete frame ({size - end} bytes after "
+                       f"frame {reader.n_frames - 1}), as when a run is cut while writing; only the "
+                       f"{reader.n_frames} complete frames are used.")
 
 
 def _topology_atoms(path):

@@ -42,6 +42,8 @@ def torsion_populations(state_counts, block_replica, labels, types, state_labels
     mean, se, n_eff = blocking_error(counts, totals, block_replica)
     n_t, n_s = counts.shape[1:]
     n_samples = np.repeat(totals.sum(axis=0), n_s, axis=1)
+    if np.all(n_samples == np.round(n_samples)):  # frame counts (unweighted run)
+        n_samples = n_samples.astype(np.int64)
     return pd.DataFrame({
         "torsion": np.repeat(labels, n_s),
         "type": np.repeat(types, n_s),

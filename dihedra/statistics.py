@@ -10,7 +10,8 @@ Two estimators, both standard:
   trajectory pass keeps, so that errors never need the raw series: blocks are merged pairwise
   (within one replica only) and the standard error is taken as the largest over the levels that
   keep at least :data:`MIN_BLOCKS` blocks (the conservative reading of the blocking plateau,
-  common practice).
+  common practice). With several replicas, the spread of the replica means is a last level: the
+  error is never smaller than the one it implies, so replicas stuck in different states show it.
 
 Weighted (reweighted) samples use the ratio estimator with per-block weight sums.
 """
@@ -143,6 +144,17 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
         best = np.fmax(best, se)
     # too few blocks for a plateau: plain block error (n_effective then tells how rough it is)
     best = np.where(np.isnan(best), first, best)
+    # replicas are independent samples too: a disagreement between them is never hidden by
+    # well-converged-looking blocks inside each (the last blocking level: one block per replica)
+    v0 = np.asarray(block_values, dtype=float)[keep]
+    w0 = np.asarray(block_weights, dtype=float)
+    w0 = w0.reshape(w0.shape + (1,) * (v0.ndim - w0.ndim))[keep]
+    replicas = np.unique(r0 := np.asarray(block_replica)[keep])
+    if len(replicas) >= 2:
+        v_rep = np.stack([v0[r0 == k].sum(axis=0) for k in replicas])
+        w_rep = np.stack([w0[r0 == k].sum(axis=0) for k in replicas])
+        _, se_rep = weighted_block_error(v_rep, w_rep)
+        best = np.fmax(best, se_rep)
     n_samples = np.asarray(block_weights, dtype=float)
     n_samples = n_samples.reshape(n_samples.shape + (1,) * (np.ndim(block_values) - n_samples.ndim))
     n_samples = np.broadcast_to(n_samples.sum(axis=0), np.shape(mean))

@@ -1,0 +1,165 @@
+"""The command line: help, version, and one clear line for every kind of bad input."""
+
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from conftest import chain_coordinates, write_system
+from dihedra import __version__
+from dihedra.cli import main
+
+
+@pytest.fixture(scope="module")
+def system(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("cli")
+    rng = np.random.default_rng(1)
+    t = rng.uniform(-180, 180, size=(30, 4))
+    return write_system(str(folder), chain_coordinates(t), box=[40, 40, 40, 90, 90, 90])
+
+
+def run_cli(capsys, *args):
+    code = main([str(a) for a in args])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def assert_one_line_error(code, err, *fragments):
+    assert code == 2
+    lines = [line for line in err.strip().splitlines() if line.startswith("dihedra: error:")]
+    assert len(lines) == 1, err
+    assert "Traceback" not in err
+    for f in fragments:
+        assert f in lines[0], lines[0]
+
+
+def test_help_and_version():
+    res = subprocess.run([sys.executable, "-m", "dihedra", "--help"], capture_output=True, text=True)
+    assert res.returncode == 0 and "track" in res.stdout and "torsions" in res.stdout
+    res = subprocess.run([sys.executable, "-m", "dihedra", "--version"], capture_output=True, text=True)
+    assert res.stdout.strip() == f"dihedra {__version__}"
+
+
+def test_track_writes_folder_and_prints_populations(system, tmp_path, capsys):
+    top, traj = system
+    code, out, err = run_cli(capsys, "track", top, traj, "--torsions", "rotatable", "--out", tmp_path / "r")
+    assert code == 0
+    assert "anti" in out and "±" in out
+    assert os.path.exists(tmp_path / "r" / "populations.csv")
+
+
+def test_torsions_lists_without_a_trajectory(system, tmp_path, capsys):
+    top, _ = system
+    code, out, _ = run_cli(capsys, "torsions", top, "--torsions", "rotatable", "--csv", tmp_path / "t.csv")
+    assert code == 0
+    assert "BUT1:C1-C2-C3-C4" in out and "4 torsions of 1 types" in out
+    assert (tmp_path / "t.csv").read_text().startswith("torsion,type,atom_indices,atom_names")
+
+
+@pytest.mark.parametrize("args, fragments", [
+    (["--torsions", "0,1,2,99"], ["atom index 99 is out of range", "16 atoms"]),
+    (["--torsions", "0,1,1,2"], ["repeated atoms"]),
+    (["--torsions", "backbone"], ["unknown torsion specification 'backbone'", "rotatable"]),
+    (["--torsions", "0,1,2,3", "--scheme", "gauche"], ["unknown state scheme", "klyne-prelog"]),
+    (["--torsions", "0,1,2,3", "--start", "100"], ["selects no frames", "30 frames"]),
+])
+def test_bad_options_give_one_line_and_write_nothing(system, tmp_path, capsys, args, fragments):
+    top, traj = system
+    code, _, err = run_cli(capsys, "track", top, traj, "--out", tmp_path / "r", *args)
+    assert_one_line_error(code, err, *fragments)
+    assert os.listdir(tmp_path) == []
+
+
+def test_missing_file_and_atom_count_mismatch(system, tmp_path, capsys):
+    top, traj = system
+    code, _, err = run_cli(capsys, "track", top, tmp_path / "nope.xtc", "--torsions", "0,1,2,3",
+                           "--out", tmp_path / "r")
+    assert_one_line_error(code, err, "does not exist")
+    other = write_system(str(tmp_path), chain_coordinates(np.zeros((2, 3))), stem="small")
+    code, _, err = run_cli(capsys, "track", top, other[1], "--torsions", "0,1,2,3", "--out", tmp_path / "r")
+    assert_one_line_error(code, err, "has 16 atoms", "has 12")
+    assert not os.path.exists(tmp_path / "r")
+
+
+def xtc_offsets(top, traj):
+    import MDAnalysis as mda
+    return mda.Universe(top, traj).trajectory._xdr.offsets
+
+
+def test_truncated_trajectory_names_last_complete_frame(system, tmp_path, capsys):
+    # cut inside the last bytes of frame 20: MDAnalysis counts 21 frames and raises on the last
+    top, traj = system
+    off = xtc_offsets(top, traj)
+    data = open(traj, "rb").read()
+    cut = tmp_path / "cut.xtc"
+    cut.write_bytes(data[: off[21] - 4])
+    code, _, err = run_cli(capsys, "track", top, cut, "--torsions", "0,1,2,3", "--out", tmp_path / "r")
+    assert_one_line_error(code, err, "truncated", "last complete frame is 19", "--stop 20")
+    assert not os.path.exists(tmp_path / "r")
+
+
+def test_trailing_partial_frame_is_reported(system, tmp_path, capsys):
+    # cut early inside frame 20: MDAnalysis silently sees 20 frames; dihedra says so
+    top, traj = system
+    off = xtc_offsets(top, traj)
+    data = open(traj, "rb").read()
+    cut = tmp_path / "cut.xtc"
+    cut.write_bytes(data[: off[20] + 60])
+    code, _, err = run_cli(capsys, "track", top, cut, "--torsions", "0,1,2,3", "--out", tmp_path / "r")
+    assert code == 0
+    assert "ends with an incomplete frame" in err and "20 complete frames" in err
+
+
+def test_selection_in_toml_must_give_four_atoms(system, tmp_path, capsys):
+    top, traj = system
+    toml = tmp_path / "t.toml"
+    toml.write_text('[[torsion]]\nname = "x"\nselection = "resid 1 2"\n')
+    code, _, err = run_cli(capsys, "track", top, traj, "--torsions", toml, "--out", tmp_path / "r")
+    assert_one_line_error(code, err, "exactly four atoms", "gives 8")
+
+
+def test_toml_named_torsions_by_selection(system, tmp_path, capsys):
+    top, traj = system
+    toml = tmp_path / "t.toml"
+    toml.write_text('[[torsion]]\nname = "first-chain"\nselection = "resid 1"\n'
+                    '[[torsion]]\nname = "second-chain"\natoms = [4, 5, 6, 7]\n')
+    code, out, _ = run_cli(capsys, "torsions", top, "--torsions", toml)
+    assert code == 0 and "first-chain" in out and "second-chain" in out
+
+
+def test_existing_output_folder_is_left_untouched(system, tmp_path, capsys):
+    top, traj = system
+    out = tmp_path / "r"
+    out.mkdir()
+    (out / "keep.txt").write_text("mine")
+    code, _, err = run_cli(capsys, "track", top, traj, "--torsions", "0,1,2,3", "--out", out)
+    assert_one_line_error(code, err, "already exists", "--overwrite")
+    assert os.listdir(out) == ["keep.txt"]
+    code, _, _ = run_cli(capsys, "track", top, traj, "--torsions", "0,1,2,3", "--out", out, "--overwrite")
+    assert code == 0 and "keep.txt" not in os.listdir(out)
+
+
+def test_read_only_trajectory_folder_still_works_with_a_notice(system, tmp_path, capsys, monkeypatch):
+    # MDAnalysis cannot write its offset cache beside a trajectory in a read-only folder; simulate
+    # that (tests may run as root, where permissions do not stop writes)
+    import MDAnalysis.coordinates.XDR as xdr
+    top, traj = system
+
+    class ReadOnlyLock:
+        def __init__(self, *a, **k):
+            pass
+
+        def __enter__(self):
+            raise PermissionError(13, "Permission denied")
+
+        def __exit__(self, *a):
+            return False
+
+    monkeypatch.setattr(xdr.filelock, "FileLock", ReadOnlyLock)
+    fresh = tmp_path / "copy.xtc"
+    fresh.write_bytes(open(traj, "rb").read())
+    code, out, err = run_cli(capsys, "track", top, fresh, "--torsions", "0,1,2,3", "--out", tmp_path / "r")
+    assert code == 0
+    assert "read-only" in err and "Traceback" not in err

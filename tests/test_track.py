@@ -1,0 +1,232 @@
+"""The trajectory pass end to end on synthetic trajectories with known torsion distributions."""
+
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate
+
+from conftest import chain_coordinates, write_system
+from dihedra.errors import DihedraError, OutputExistsError
+from dihedra.resultsdir import load_results
+from dihedra.tracking import track
+from dihedra.units import kt_kj_mol
+
+# Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95 (CHECK-VALUES.md), kJ/mol
+RB_C = [9.28, 12.16, -13.12, -3.06, 26.24, -31.5]
+
+
+def rb_kj_mol(phi_deg):
+    c = np.cos(np.radians(np.asarray(phi_deg) - 180.0))  # psi = phi - 180 deg
+    return sum(cn * c**n for n, cn in enumerate(RB_C))
+
+
+def rb_samples(n, temperature, rng):
+    """Exact inverse-CDF samples of exp(-V/kT) on a fine grid (analytic distribution)."""
+    grid = np.linspace(-180, 180, 360_001)
+    dens = np.exp(-rb_kj_mol(grid) / kt_kj_mol(temperature))
+    cdf = np.concatenate([[0], np.cumsum((dens[1:] + dens[:-1]) / 2)])
+    cdf /= cdf[-1]
+    return np.interp(rng.random(n), cdf, grid)
+
+
+def boltzmann_anti_fraction(temperature):
+    """Boltzmann integral of the RB potential (scipy.integrate.quad), no Jacobian for a torsion."""
+    kt = kt_kj_mol(temperature)
+    f = lambda x: np.exp(-rb_kj_mol(x) / kt)  # noqa: E731
+    total = integrate.quad(f, -180, 180, points=[-120, 0, 120], limit=200)[0]
+    anti = integrate.quad(f, 120, 180)[0] + integrate.quad(f, -180, -120)[0]
+    return anti / total
+
+
+def test_iid_rb_samples_recover_boltzmann_populations_within_three_se(tmp_path):
+    # analytic: populations of exp(-V_RB/kT) at 298.15 K; independent samples, 120 molecules x 250 frames
+    rng = np.random.default_rng(11)
+    t = rb_samples(120 * 250, 298.15, rng).reshape(250, 120)
+    top, traj = write_system(str(tmp_path), chain_coordinates(t), box=[60, 60, 60, 90, 90, 90])
+    res = track(top, [traj], torsions="0,1,2,3", scheme="anti-gauche")
+    res_all = track(top, [traj], torsions=[f"{4*m},{4*m+1},{4*m+2},{4*m+3}" for m in range(120)],
+                    scheme="anti-gauche")
+    row = res_all.populations_by_type.set_index("state").loc["anti"]
+    expected = boltzmann_anti_fraction(298.15)
+    assert abs(row["population"] - expected) < 3 * row["population_err"]
+    # for independent samples the error is the binomial one, sqrt(p(1-p)/N) (analytic), within 30 %
+    assert row["population_err"] == pytest.approx(np.sqrt(expected * (1 - expected) / t.size), rel=0.3)
+    assert row["n_torsions"] == 120
+    assert len(res.populations) == 3
+
+
+def test_split_across_the_box_gives_the_same_states(tmp_path):
+    # DOMAIN.md convention: a molecule split across the periodic boundary gives the same torsion
+    rng = np.random.default_rng(2)
+    t = rng.uniform(-180, 180, size=(40, 27))
+    coords = chain_coordinates(t, spacing=6.0)
+    box = np.array([18.0, 18.0, 18.0, 90, 90, 90])
+    wrapped = coords - np.floor(coords / box[:3]) * box[:3]  # wrap every atom into the box
+    assert np.any(np.abs(np.diff(wrapped.reshape(40, 27, 4, 3), axis=2)) > 9)  # some are split
+    d1, d2 = tmp_path / "whole", tmp_path / "split"
+    d1.mkdir(), d2.mkdir()
+    whole = write_system(str(d1), coords, box=box)
+    split = write_system(str(d2), wrapped, box=box)
+    spec = [f"{4*m},{4*m+1},{4*m+2},{4*m+3}" for m in range(27)]
+    a = track(*whole[:1], [whole[1]], torsions=spec, scheme="klyne-prelog")
+    b = track(*split[:1], [split[1]], torsions=spec, scheme="klyne-prelog")
+    pd.testing.assert_frame_equal(a.populations, b.populations)
+    assert (a.states().iloc[:, 3:].to_numpy() == b.states().iloc[:, 3:].to_numpy()).all()
+
+
+@pytest.fixture(scope="module")
+def two_replicas(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("replicas")
+    rng = np.random.default_rng(5)
+    paths = []
+    for r, centre in enumerate((60.0, -60.0)):
+        t = centre + rng.normal(scale=25.0, size=(300, 8))
+        sub = folder / f"r{r}"
+        sub.mkdir()
+        paths.append(write_system(str(sub), chain_coordinates(t), box=[40, 40, 40, 90, 90, 90], dt_ps=2.0))
+    return paths
+
+
+def spec8():
+    return [f"{4*m},{4*m+1},{4*m+2},{4*m+3}" for m in range(8)]
+
+
+def test_replicas_are_kept_apart_and_combined(two_replicas):
+    (top, t0), (_, t1) = two_replicas
+    res = track(top, [t0, t1], torsions=spec8(), scheme="anti-gauche")
+    rep = res.populations_by_replica.set_index(["replica", "torsion", "state"])["population"]
+    first = res.torsion_set.labels[0]
+    assert rep.loc[(0, first, "gauche+")] > 0.9 and rep.loc[(1, first, "gauche-")] > 0.9
+    pooled = res.populations.set_index(["torsion", "state"])["population"]
+    assert pooled.loc[(first, "gauche+")] == pytest.approx(
+        (rep.loc[(0, first, "gauche+")] + rep.loc[(1, first, "gauche+")]) / 2, abs=1e-12)
+    # two replicas that disagree: the error reflects it (blocks never merge across replicas)
+    err = res.populations.set_index(["torsion", "state"]).loc[(first, "gauche+"), "population_err"]
+    assert err > 0.2
+    states = res.states()
+    assert states["replica"].tolist() == [0] * 300 + [1] * 300
+    assert states["time_ps"].iloc[1] - states["time_ps"].iloc[0] == pytest.approx(2.0, rel=1e-5)
+    assert res.summary["replicas"][0]["time_step_ps"] == pytest.approx(2.0, rel=1e-5)
+
+
+@pytest.mark.parametrize("backend", ["multiprocessing", "dask"])
+def test_parallel_backends_give_results_identical_to_serial(two_replicas, backend):
+    (top, t0), (_, t1) = two_replicas
+    kw = dict(torsions=spec8(), scheme="klyne-prelog", keep_angles=True)
+    serial = track(top, [t0, t1], **kw)
+    par = track(top, [t0, t1], workers=2, backend=backend, **kw)
+    for key in ("state_counts", "histograms", "block_frames", "conformer_rows", "undefined"):
+        np.testing.assert_array_equal(serial.blocks[key], par.blocks[key])
+    pd.testing.assert_frame_equal(serial.populations, par.populations)
+    pd.testing.assert_frame_equal(serial.states(), par.states())
+    pd.testing.assert_frame_equal(serial.angles(), par.angles())
+
+
+def test_weights_reweight_populations(two_replicas, tmp_path):
+    (top, t0), _ = two_replicas
+    plain = track(top, [t0], torsions=spec8(), scheme="anti-gauche")
+    states = plain.states()
+    first = plain.torsion_set.labels[0]
+    # weight 1 on frames where the first torsion is gauche-, 0 elsewhere: it must be all gauche-
+    w = (states[first] == plain.scheme.labels.index("gauche-")).astype(float)
+    path = tmp_path / "w.csv"
+    pd.DataFrame({"frame": states["frame"], "weight": w}).to_csv(path, index=False)
+    res = track(top, [t0], torsions=spec8(), scheme="anti-gauche", weights=str(path))
+    pop = res.populations.set_index(["torsion", "state"])["population"]
+    assert pop.loc[(first, "gauche-")] == pytest.approx(1.0)
+    # weighted mean of another torsion equals the direct weighted average of its indicator
+    other = plain.torsion_set.labels[3]
+    direct = np.sum(w * (states[other] == 1)) / np.sum(w)
+    assert pop.loc[(other, "gauche+")] == pytest.approx(direct)
+    bad = tmp_path / "bad.csv"
+    pd.DataFrame({"weight": np.ones(10)}).to_csv(bad, index=False)
+    with pytest.raises(DihedraError, match="has 10 rows but 300 frames"):
+        track(top, [t0], torsions=spec8(), weights=str(bad))
+
+
+def test_conformer_populations_equal_direct_joint_counts(tmp_path):
+    # five-site chains: two torsions per molecule; conformers are their joint states
+    rng = np.random.default_rng(9)
+    n_frames, n_mol = 400, 10
+    choices = np.array([180.0, 60.0, -60.0])
+    t1 = choices[rng.integers(0, 3, size=(n_frames, n_mol))] + rng.normal(scale=10, size=(n_frames, n_mol))
+    t2 = choices[rng.integers(0, 3, size=(n_frames, n_mol))] + rng.normal(scale=10, size=(n_frames, n_mol))
+    coords = five_site_chains(t1, t2)
+    top, traj = write_system(str(tmp_path), coords, names=("C1", "C2", "C3", "C4", "C5"), resname="PEN",
+                             box=[80, 80, 80, 90, 90, 90])
+    res = track(top, [traj], torsions="rotatable", scheme="anti-gauche")
+    assert len(res.torsion_set) == 2 * n_mol
+    conf = res.conformers.set_index(["group", "conformer"])["population"]
+    label = lambda a: np.array(["anti", "gauche+", "gauche-"])[res.scheme.assign(a)]  # noqa: E731
+    joint = np.char.add(np.char.add(label(t1[:, 0]), "|"), label(t2[:, 0]))
+    values, counts = np.unique(joint, return_counts=True)
+    for v, c in zip(values, counts):
+        assert conf.loc[("PEN1", v)] == pytest.approx(c / n_frames)
+    pooled = res.conformers_by_type.set_index("conformer")["population"]
+    assert pooled.sum() == pytest.approx(1.0)
+    assert set(res.conformers_by_type["n_groups"]) == {n_mol}
+
+
+def five_site_chains(t1, t2, bond=1.53, angle=112.0):
+    from conftest import place_fourth
+    base = chain_coordinates(t1, spacing=8.0, bond=bond, angle=angle)
+    n_frames, n_mol = t1.shape
+    out = np.empty((n_frames, 5 * n_mol, 3))
+    for m in range(n_mol):
+        a, b, c, d = (base[:, 4 * m + k] for k in range(4))
+        e = place_fourth(b.copy(), c.copy(), d.copy(), bond, angle, t2[:, m])
+        out[:, 5 * m:5 * m + 5] = np.stack([a, b, c, d, e], axis=1)
+    return out
+
+
+def test_undefined_torsions_are_counted_not_binned(tmp_path):
+    # a collinear molecule (angle B-C-D of 180 deg) has no defined torsion
+    t = np.full((50, 2), 60.0)
+    coords = chain_coordinates(t)
+    b, c = coords[:, 1], coords[:, 2]
+    coords[:25, 3] = c[:25] + (c[:25] - b[:25])  # D on the B-C line for half of the frames
+    top, traj = write_system(str(tmp_path), coords)
+    res = track(top, [traj], torsions=["0,1,2,3", "4,5,6,7"], scheme="anti-gauche")
+    assert res.blocks["undefined"].tolist() == [25, 0]
+    assert res.blocks["state_counts"][:, 0].sum() == 25
+    assert res.blocks["histograms"][:, 0].sum() == 25
+    assert res.populations.set_index(["torsion", "state"]).loc[(res.torsion_set.labels[0], "gauche+"),
+                                                               "population"] == pytest.approx(1.0)
+    assert any("undefined" in n for n in res.notices)
+    assert (res.states()[res.torsion_set.labels[0]].to_numpy()[:25] == -1).all()
+
+
+def test_results_folder_round_trip_and_existing_folder_untouched(two_replicas, tmp_path):
+    (top, t0), _ = two_replicas
+    out = tmp_path / "res"
+    res = track(top, [t0], torsions=spec8(), scheme="anti-gauche", out=str(out))
+    names = sorted(os.listdir(out))
+    assert names == sorted(["blocks.npz", "conformers.csv", "conformers_by_type.csv", "populations.csv",
+                            "populations_by_replica.csv", "populations_by_type.csv", "states.parquet",
+                            "summary.json", "torsions.csv"])
+    back = load_results(out)
+    pd.testing.assert_frame_equal(back.populations, res.populations, check_exact=False, rtol=1e-5)
+    assert back.scheme == res.scheme
+    assert back.states().shape == (300, 3 + 8)
+    assert len(back.summary["topology"]["sha256"]) == 64
+    before = {n: os.path.getmtime(out / n) for n in names}
+    with pytest.raises(OutputExistsError):
+        track(top, [t0], torsions=spec8(), out=str(out))
+    assert {n: os.path.getmtime(out / n) for n in names} == before
+    # nothing half-written is left beside it
+    assert sorted(os.listdir(tmp_path)) == ["res"]
+
+
+def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
+    (top, t0), _ = two_replicas
+    from dihedra import trackpass
+
+    def boom(self):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(trackpass.TorsionPass, "_single_frame", boom)
+    with pytest.raises(KeyboardInterrupt):
+        track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"))
+    assert os.listdir(tmp_path) == []
