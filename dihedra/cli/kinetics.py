@@ -1,0 +1,101 @@
+"""``dihedra kinetics``: transitions, dwell times, rates and Markov timescales of a results folder."""
+
+import numpy as np
+
+from ..kinetics import (ASSIGNMENTS, DEFAULT_BOOTSTRAP, DEFAULT_CORE_MARGIN_DEG, DEFAULT_LAGS,
+                        TST_CAUTION, kinetics)
+from .common import print_notices, say
+
+
+def register(sub):
+    p = sub.add_parser(
+        "kinetics", help="state dynamics: transitions, lifetimes, rates, Markov timescales, Eyring barriers",
+        description="Transitions between torsion states and conformers, dwell times with bootstrap "
+                    "intervals, rate constants with errors, reversible Markov models (implied timescales, "
+                    "mean first-passage times) and Eyring barriers, from a folder written by "
+                    "'dihedra track'. Writes transitions.csv, lifetimes.csv, timescales.csv, mfpt.csv and "
+                    "kinetics.json into the folder.",
+        epilog="Core assignment (default) needs angles.parquet: run 'dihedra track ... --keep-angles'.")
+    p.add_argument("folder", metavar="DIR", help="results folder of 'dihedra track'")
+    p.add_argument("--assignment", choices=ASSIGNMENTS, default="core",
+                   help="core: transition-based core-set assignment (Buchete & Hummer 2008; default); "
+                        "crisp: every frame in the sector of its angle (counts recrossings)")
+    p.add_argument("--core-margin", type=float, default=DEFAULT_CORE_MARGIN_DEG, metavar="DEG",
+                   help=f"shrink every sector by this many degrees on both sides to make its core "
+                        f"(default {DEFAULT_CORE_MARGIN_DEG:g})")
+    p.add_argument("--lag", type=int, nargs="+", default=list(DEFAULT_LAGS), metavar="FRAMES",
+                   help="lags in frames for the Markov models and implied timescales (default "
+                        + " ".join(map(str, DEFAULT_LAGS)) + ")")
+    p.add_argument("--type", action="append", default=None, metavar="TYPE",
+                   help="only torsions of this type (repeatable)")
+    p.add_argument("--dt-ps", type=float, default=None, metavar="PS",
+                   help="time between stored frames in ps (needed when the trajectory stores none)")
+    p.add_argument("--temperature", type=float, default=None, metavar="K",
+                   help="temperature for the Eyring barriers (default: the one recorded by track)")
+    p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
+                   help=f"bootstrap samples for the dwell-time intervals (default {DEFAULT_BOOTSTRAP})")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    res = kinetics(args.folder, assignment=args.assignment, core_margin_deg=args.core_margin,
+                   lags=args.lag, types=args.type, dt_ps=args.dt_ps, temperature_k=args.temperature,
+                   n_bootstrap=args.bootstrap, log=say)
+    report_kinetics(res)
+
+
+def report_kinetics(res, max_types=6, max_conformer_rows=5):
+    """A short readable summary of a :class:`~dihedra.kinetics.KineticsResult` on standard output."""
+    p = res.parameters
+    if p["assignment"] == "core":
+        cores = ", ".join(f"{c['state']} {c['from_deg']:g}..{c['to_deg']:g}" for c in p["core_sectors_deg"])
+        how = f"core sets, margin {p['core_margin_deg']:g} deg (cores: {cores})"
+    else:
+        how = "crisp sectors (every boundary crossing counts)"
+    print(f"{p['n_torsions']} torsions, {p['n_conformer_groups']} conformer groups, {p['n_replicas']} "
+          f"replica(s), {p['frame_interval_ps']:g} ps between frames ({p['frame_interval_source']})")
+    print(f"assignment: {how}")
+    temp = p["temperature_k"]
+    lt, tr, ts = res.lifetimes, res.transitions, res.timescales
+    for level, title in (("type", "type"), ("conformer", "conformers of")):
+        names = list(dict.fromkeys(lt.loc[lt["level"] == level, "name"]))
+        for name in names[:max_types]:
+            sub_l = lt[(lt["level"] == level) & (lt["name"] == name)]
+            sub_t = tr[(tr["level"] == level) & (tr["name"] == name)]
+            n_traj = int(sub_l["n_trajectories"].iloc[0])
+            print(f"\n{title} {name} ({n_traj} trajectories)")
+            rows = sub_l.sort_values("population_counted", ascending=False).head(max_conformer_rows
+                                                                                   if level == "conformer" else None)
+            width = max(8, max(len(s) for s in rows["state"]))
+            print(f"  {'state':<{width}}  population (counted / from rates)  lifetime mean [95% CI] ps   median ps")
+            for r in rows.itertuples(index=False):
+                print(f"  {r.state:<{width}}  {r.population_counted:10.3f} / {_fmt(r.population_from_rates, '5.3f')}"
+                      f"            {_fmt(r.mean_ps, '8.1f')} [{_fmt(r.ci_low_ps, '.1f')}, {_fmt(r.ci_high_ps, '.1f')}]"
+                      f"   {_fmt(r.median_ps, '8.1f')}")
+            shown = sub_t.sort_values("count", ascending=False)
+            if level == "conformer":
+                shown = shown.head(max_conformer_rows)
+            eyring = "  Eyring barrier kJ/mol" if temp is not None else ""
+            print(f"  {'transition':<{2 * width + 4}}  {'count':>7}  rate per ns{eyring}")
+            for r in shown.itertuples(index=False):
+                rate = f"{r.rate_per_ps * 1e3:.3g} ± {r.rate_err_per_ps * 1e3:.2g}" if r.count else \
+                    f"< {r.rate_ci_high_per_ps * 1e3:.2g} (95 %)"
+                bar = f"  {r.eyring_barrier_kj_mol:6.1f}" if temp is not None and np.isfinite(r.eyring_barrier_kj_mol) else ""
+                if np.isfinite(r.profile_barrier_kj_mol):
+                    bar += f" (profile {r.profile_barrier_kj_mol:.1f})"
+                print(f"  {r.from_state + ' -> ' + r.to_state:<{2 * width + 4}}  {r.count:>7}  {rate:<18}{bar}")
+            sub_s = ts[(ts["level"] == level) & (ts["name"] == name) & (ts["index"] == 1)]
+            if len(sub_s):
+                lags = "  ".join(f"{a:g}: {b:.3g}" for a, b in zip(sub_s["lag_ps"], sub_s["timescale_ps"]))
+                print(f"  slowest implied timescale (ps) by lag (ps): {lags}")
+        if len(names) > max_types:
+            print(f"\n... and {len(names) - max_types} more (see lifetimes.csv)")
+    if temp is not None:
+        print(f"\nEyring barriers at {temp:g} K (kappa = 1): {TST_CAUTION}")
+    print_notices(res.notices)
+    if res.folder:
+        print(f"written to {res.folder}: transitions.csv, lifetimes.csv, timescales.csv, mfpt.csv, kinetics.json")
+
+
+def _fmt(value, spec):
+    return "-" if value is None or not np.isfinite(value) else format(value, spec)
