@@ -45,7 +45,8 @@ Features of each histogram profile:
 * **minima** -- local minima (periodic; unsampled bins count as infinitely high) whose depth
   below the lower of their two flanking barriers is at least max(0.5 kT, 3 sigma), sigma the
   combined error of minimum and barrier; shallower dips are merged into their neighbours.
-  Positions and values are refined with a parabola through three bins.
+  Positions and values are refined with a least-squares parabola through the five bins around
+  the extreme bin (a three-point parabola where that fails).
 * **barriers** -- the highest point between each pair of neighbouring minima, with its free energy
   above the global minimum and its height above each of the two minima. A barrier whose region
   holds unsampled bins is reported with ``sampled = False`` and no height (it is higher than any
@@ -426,6 +427,31 @@ def _parabola(left, mid, right):
     return delta, value
 
 
+#: Least-squares quadratic over the bins -2..+2 around an extremum: coefficients = _FIT @ values.
+_FIT_X = np.arange(-2, 3, dtype=float)
+_FIT = np.linalg.pinv(np.vander(_FIT_X, 3, increasing=True))
+
+
+def _refine(values, idx, kind):
+    """Refined position (bins) and value of the extremum at ``idx`` of each row of ``values``.
+
+    A least-squares parabola through the five bins around ``idx`` (less sensitive to the noise of
+    single bins than the bin itself); a three-point parabola where the five are not all sampled or
+    the fit bends the wrong way; the bin itself where neither works.
+    """
+    n = values.shape[-1]
+    rows = np.arange(values.shape[0])
+    y5 = values[rows[:, None], (idx[:, None] + _FIT_X.astype(int)[None, :]) % n]
+    c = y5 @ _FIT.T  # (rows, 3): c0 + c1 x + c2 x^2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x5 = -c[:, 1] / (2.0 * c[:, 2])
+    bend = c[:, 2] > 0 if kind == "min" else c[:, 2] < 0
+    good5 = np.isfinite(y5).all(axis=1) & bend & (np.abs(x5) <= 1.0)
+    v5 = c[:, 0] + c[:, 1] * x5 + c[:, 2] * x5 ** 2
+    delta3, v3 = _parabola(y5[:, 1], y5[:, 2], y5[:, 3])
+    return np.where(good5, idx + x5, idx + delta3), np.where(good5, v5, v3)
+
+
 def _extremum(values, window, kind):
     """Refined extremum of each row of ``values`` (..., n) inside ``window`` (indices).
 
@@ -433,7 +459,6 @@ def _extremum(values, window, kind):
     not ok (the barrier is not known there).
     """
     values = np.atleast_2d(values)
-    n = values.shape[-1]
     sub = values[:, window]
     if kind == "min":
         filled = np.where(np.isfinite(sub), sub, np.inf)
@@ -444,10 +469,8 @@ def _extremum(values, window, kind):
         filled = np.where(np.isfinite(sub), sub, -np.inf)
         k = np.argmax(filled, axis=1)
     idx = np.asarray(window)[k]
-    rows = np.arange(values.shape[0])
-    mid = values[rows, idx]
-    delta, value = _parabola(values[rows, (idx - 1) % n], mid, values[rows, (idx + 1) % n])
-    return idx + delta, value, ok
+    pos, value = _refine(values, idx, kind)
+    return pos, value, ok
 
 
 def profile_features(profile, kt):
@@ -546,6 +569,22 @@ def _merge_blocks_to(values, replica, per_replica):
     return values, replica
 
 
+def state_blocks(result, n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED):
+    """State counts merged into blocks as long as the histogram blocks, and bootstrap multiplicities.
+
+    Returns
+    -------
+    counts : ndarray (n_blocks, n_torsions, n_states)
+    replica : ndarray (n_blocks,)
+    mult : ndarray (n_bootstrap, n_blocks)   (drawn with ``seed + 1``)
+    """
+    blocks = result.blocks
+    per_rep = int(np.max(np.bincount(np.asarray(blocks["hist_block_replica"]))))
+    counts, replica = _merge_blocks_to(blocks["state_counts"], blocks["block_replica"], per_rep)
+    mult = bootstrap_multiplicities(replica, n_bootstrap, np.random.default_rng(seed + 1))
+    return counts, replica, mult
+
+
 def state_free_energies(state_counts, block_replica, state_labels, kt, mult):
     """dG_B = -kT ln(p_B / p_A) per state, A the most populated, with bootstrap errors.
 
@@ -567,7 +606,7 @@ def state_free_energies(state_counts, block_replica, state_labels, kt, mult):
     with np.errstate(invalid="ignore", divide="ignore"):
         pb = boot / boot.sum(axis=1, keepdims=True)
         ref = int(np.argmax(p))
-        dg = -kt * np.log(p / p[ref])
+        dg = -kt * np.log(p / p[ref]) + 0.0
         dgb = -kt * np.log(pb / pb[:, [ref]])
     dgb[~np.isfinite(dgb)] = np.nan
     dg_err, _ = bootstrap_spread(dgb)
@@ -701,16 +740,12 @@ def compute_profiles(result, temperature_k=None, bin_width_deg=DEFAULT_BIN_WIDTH
     fine = _fine_width(blocks)
     factor = check_bin_width(bin_width_deg, fine)
     scheme = result.scheme
-    rng = np.random.default_rng(seed)
-    mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, rng)
+    mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
     hist = np.asarray(blocks["histograms"], dtype=float)
     order, members = _type_members(result)
     labels = result.torsion_set.labels
     neff = effective_samples(result.populations, labels)
-    # state counts merged to blocks as long as the histogram blocks
-    per_rep = int(np.max(np.bincount(np.asarray(blocks["hist_block_replica"]))))
-    sc, sc_rep = _merge_blocks_to(blocks["state_counts"], blocks["block_replica"], per_rep)
-    smult = bootstrap_multiplicities(sc_rep, n_bootstrap, rng)
+    sc, sc_rep, smult = state_blocks(result, n_bootstrap, seed)
 
     prof_rows, min_rows, bar_rows, dg_rows = [], [], [], []
     by_type = {}

@@ -1,0 +1,56 @@
+"""``dihedra compare``: sampled free-energy profile versus a static torsion scan, with a verdict per type."""
+
+from ..compare import Thresholds, compare_with_scan, format_comparison, write_comparison
+from ..profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, resolve_temperature
+from ..resultsdir import load_results
+from ..scans import read_scan
+from .common import say
+
+
+def register(sub):
+    p = sub.add_parser(
+        "compare", help="compare sampled profiles with a static torsion scan (force-field validation)",
+        description="Compare the sampled free-energy profile of torsion types with a static torsion scan "
+                    "(CSV of angle and energy, a TOML file of torsion parameters, or a scan written by "
+                    "'dihedra scan'): aligned profiles, RMSE, minima and barriers, state populations with "
+                    "z-scores, Jensen-Shannon divergence and a verdict (consistent / inconsistent / "
+                    "undersampled). Writes comparison.csv, comparison_profiles.csv and comparison.json "
+                    "into DIR.")
+    p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track'")
+    p.add_argument("--scan", required=True, metavar="FILE", help="scan CSV, or a .toml parameter file")
+    p.add_argument("--angle-unit", choices=["deg", "rad"], default=None,
+                   help="unit of the scan's angles (required unless the column name carries it)")
+    p.add_argument("--energy-unit", default=None, metavar="UNIT",
+                   help="unit of the scan's energies: kJ/mol, kcal/mol, hartree, eV or kT (required unless "
+                        "the column name carries it)")
+    p.add_argument("--columns", default=None, metavar="ANGLE,ENERGY",
+                   help="names of the angle and energy columns (default: the first two numeric columns)")
+    p.add_argument("--scan-kind", choices=["rigid", "relaxed"], default=None,
+                   help="whether the scan is rigid or relaxed (recorded; default from the file, else unspecified)")
+    p.add_argument("--type", action="append", default=None, metavar="TYPE",
+                   help="torsion type the scan describes (repeatable; 'all' for every type; default the only type)")
+    p.add_argument("--temperature", type=float, default=None, metavar="K",
+                   help="temperature in kelvin (required unless track recorded one)")
+    p.add_argument("--bin-width", type=float, default=DEFAULT_BIN_WIDTH_DEG, metavar="DEG",
+                   help=f"bin width of the profiles compared (default {DEFAULT_BIN_WIDTH_DEG:g})")
+    th = Thresholds()
+    p.add_argument("--tolerance", type=float, default=th.tolerance_kj_mol, metavar="KJ_MOL",
+                   help=f"agreement tolerance for the verdict in kJ/mol (default {th.tolerance_kj_mol:g})")
+    p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
+                   help=f"block-bootstrap resamples (default {DEFAULT_BOOTSTRAP})")
+    p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="N", help="seed of the bootstrap")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    result = load_results(args.folder)
+    temperature = resolve_temperature(args.temperature, result.summary, say)
+    scan = read_scan(args.scan, angle_unit=args.angle_unit, energy_unit=args.energy_unit, columns=args.columns,
+                     kind=args.scan_kind, temperature_k=temperature)
+    thresholds = Thresholds(tolerance_kj_mol=args.tolerance)
+    cmp = compare_with_scan(result, scan, temperature_k=temperature, types=args.type,
+                            bin_width_deg=args.bin_width, thresholds=thresholds, n_bootstrap=args.bootstrap,
+                            seed=args.seed)
+    paths = write_comparison(cmp, result.folder)
+    print(format_comparison(cmp))
+    print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")

@@ -1,0 +1,92 @@
+"""``dihedra profile``: free-energy profiles, minima, barriers and state free energies of a results folder."""
+
+from ..errors import DihedraError
+from ..profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
+                        PROFILE_ENERGY_UNITS, compute_profiles, convert_energy_columns, unit_suffix,
+                        write_profiles)
+from ..resultsdir import load_results
+from ..units import canonical_energy_unit
+from .common import print_notices, say
+
+
+def register(sub):
+    p = sub.add_parser(
+        "profile", help="free-energy profiles F = -kT ln p per torsion and type, minima, barriers, state dG",
+        description="Free-energy profiles from the angle histograms of a results folder (histogram and von "
+                    "Mises kernel estimates, block-bootstrap errors), their minima and barriers, state free "
+                    "energies, and 2-D profiles of torsion pairs. Writes profiles.csv, minima.csv, "
+                    "barriers.csv, state_free_energies.csv, profiles.json (and profiles_2d.csv) into DIR.")
+    p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track'")
+    p.add_argument("--temperature", type=float, default=None, metavar="K",
+                   help="temperature in kelvin (required unless track recorded one)")
+    p.add_argument("--bin-width", type=float, default=DEFAULT_BIN_WIDTH_DEG, metavar="DEG",
+                   help=f"histogram bin width, a divisor of 360 (default {DEFAULT_BIN_WIDTH_DEG:g})")
+    p.add_argument("--bandwidth", type=float, default=None, metavar="DEG",
+                   help="von Mises kernel standard deviation (default: a rule of thumb, see the docs; "
+                        "the value used is printed and written)")
+    p.add_argument("--energy-unit", default="kJ/mol", metavar="UNIT",
+                   help="unit of the free energies written and printed: kJ/mol (default), kcal/mol or kT")
+    p.add_argument("--pair", nargs=2, action="append", metavar=("TORSION_A", "TORSION_B"),
+                   help="2-D profile of two torsion labels, or two torsion types pooled over molecules "
+                        "(repeatable; needs a folder tracked with --keep-angles)")
+    p.add_argument("--pair-bin-width", type=float, default=DEFAULT_PAIR_BIN_WIDTH_DEG, metavar="DEG",
+                   help=f"bin width of 2-D profiles (default {DEFAULT_PAIR_BIN_WIDTH_DEG:g})")
+    p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
+                   help=f"block-bootstrap resamples for the errors (default {DEFAULT_BOOTSTRAP})")
+    p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="N", help="seed of the bootstrap")
+    p.add_argument("--types-only", action="store_true",
+                   help="profile only the types (pooled), not every torsion (faster for large systems)")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    unit = canonical_energy_unit(args.energy_unit)
+    if unit not in PROFILE_ENERGY_UNITS:
+        raise DihedraError(f"--energy-unit must be kJ/mol, kcal/mol or kT for profiles; got {args.energy_unit!r}.")
+    result = load_results(args.folder)
+    pset = compute_profiles(result, temperature_k=args.temperature, bin_width_deg=args.bin_width,
+                            bandwidth_deg=args.bandwidth, n_bootstrap=args.bootstrap, seed=args.seed,
+                            per_torsion=not args.types_only, pairs=args.pair,
+                            pair_bin_width_deg=args.pair_bin_width, log=say)
+    paths = write_profiles(pset, result.folder, unit)
+    report_profiles(pset, unit)
+    print_notices(pset.notices)
+    print("written: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
+
+
+def report_profiles(pset, unit, max_types=20):
+    s = pset.settings
+    sfx = unit_suffix(unit)
+    print(f"free-energy profiles at {pset.temperature_k:g} K (kT = {s['kt_kj_mol']:.3f} kJ/mol), "
+          f"{s['bin_width_deg']:g}-degree bins, errors from {s['n_bootstrap']} block-bootstrap resamples; "
+          f"energies in {unit}")
+    minima = convert_energy_columns(pset.minima[pset.minima["torsion"] == ""], unit, pset.temperature_k)
+    barriers = convert_energy_columns(pset.barriers[pset.barriers["torsion"] == ""], unit, pset.temperature_k)
+    dg = convert_energy_columns(pset.state_free_energies[pset.state_free_energies["torsion"] == ""], unit,
+                                pset.temperature_k)
+    for k, (typ, (_, kern)) in enumerate(pset.by_type.items()):
+        if k == max_types:
+            print(f"... and {len(pset.by_type) - max_types} more types (see minima.csv, barriers.csv)")
+            break
+        print(f"\ntype {typ} (kernel bandwidth {kern.bandwidth_deg:.2f} deg)")
+        for r in minima[minima["type"] == typ].itertuples(index=False):
+            print(f"  minimum  {r.angle_deg:7.1f} ± {r.angle_err_deg:.1f} deg   F = "
+                  f"{_pm(getattr(r, 'free_energy_' + sfx), getattr(r, 'free_energy_err_' + sfx))}")
+        for r in barriers[barriers["type"] == typ].itertuples(index=False):
+            between = f"between {r.from_minimum_deg:.0f} and {r.to_minimum_deg:.0f} deg"
+            if not r.sampled:
+                print(f"  barrier  near {r.angle_deg:5.0f} deg {between}: not sampled (higher than any sampled value)")
+                continue
+            print(f"  barrier  {r.angle_deg:7.1f} ± {r.angle_err_deg:.1f} deg   F = "
+                  f"{_pm(getattr(r, 'free_energy_' + sfx), getattr(r, 'free_energy_err_' + sfx))}  ({between}; "
+                  f"height {_pm(getattr(r, 'height_from_first_' + sfx), getattr(r, 'height_from_first_err_' + sfx))}"
+                  f" / {_pm(getattr(r, 'height_from_second_' + sfx), getattr(r, 'height_from_second_err_' + sfx))}"
+                  " from each side)")
+        for r in dg[dg["type"] == typ].itertuples(index=False):
+            print(f"  state    {r.state:<10} p = {_pm(r.population, r.population_err, 3)}   dG vs {r.reference_state} = "
+                  f"{_pm(getattr(r, 'free_energy_' + sfx), getattr(r, 'free_energy_err_' + sfx))}")
+
+
+def _pm(value, err, digits=2):
+    from .common import format_pm
+    return format_pm(float(value), float(err), digits)

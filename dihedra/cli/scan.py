@@ -1,0 +1,57 @@
+"""``dihedra scan``: compute a relaxed torsion scan (MMFF94 or GFN2-xTB) and write a scan CSV."""
+
+import os
+
+from ..errors import DihedraError, OutputExistsError
+from ..scans import mmff94_scan, molecule_from_topology, write_scan_csv, xtb_scan
+from .common import say
+
+METHODS = ("mmff94", "gfn2-xtb")
+
+
+def register(sub):
+    p = sub.add_parser(
+        "scan", help="compute a relaxed torsion scan (MMFF94 with RDKit, GFN2-xTB with tblite)",
+        description="Compute a relaxed scan of one torsion of the molecule it belongs to (built from an "
+                    "all-atom topology with elements and hydrogens, coordinates of the first frame) and "
+                    "write it as a scan CSV with the method in its header; 'dihedra compare --scan' reads "
+                    "it. Needs the scan extras: pip install \"dihedra[scan]\".")
+    p.add_argument("topology", help="all-atom topology with elements and hydrogens (PDB, PSF, TPR, ...)")
+    p.add_argument("trajectory", nargs="?", default=None, metavar="TRAJ",
+                   help="optional trajectory whose first frame gives the coordinates")
+    p.add_argument("--torsion", required=True, metavar="A,B,C,D", help="four 0-based atom indices")
+    p.add_argument("--method", required=True, choices=METHODS, help="mmff94 or gfn2-xtb")
+    p.add_argument("--out", required=True, metavar="FILE", help="scan CSV to write")
+    p.add_argument("--step", type=float, default=None, metavar="DEG",
+                   help="scan spacing, a divisor of 360 (default 10 for mmff94, 30 for gfn2-xtb)")
+    p.add_argument("--charge", type=int, default=0, metavar="Q", help="total charge (gfn2-xtb; default 0)")
+    p.add_argument("--unpaired", type=int, default=0, metavar="N",
+                   help="unpaired electrons (gfn2-xtb; default 0)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing --out file")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    out = os.path.abspath(args.out)
+    if os.path.exists(out) and not args.overwrite:
+        raise OutputExistsError(f"{out} already exists; choose another --out or add --overwrite.")
+    if not os.path.isdir(os.path.dirname(out)):
+        raise DihedraError(f"the folder of {out} does not exist; create it first.")
+    mol, local = molecule_from_topology(args.topology, args.torsion, args.trajectory)
+    step = args.step if args.step is not None else (10.0 if args.method == "mmff94" else 30.0)
+    say(f"{args.method} relaxed scan of torsion {args.torsion} ({mol.GetNumAtoms()} atoms), every {step:g} deg")
+
+    def progress(done, total, angle, energy):
+        say(f"  point {done}/{total}: {angle:7.1f} deg  E = {energy:.3f} kJ/mol")
+
+    if args.method == "mmff94":
+        scan = mmff94_scan(mol, local, step_deg=step, progress=progress)
+    else:
+        scan = xtb_scan(mol, local, step_deg=step, charge=args.charge, unpaired=args.unpaired, progress=progress)
+    write_scan_csv(scan, out, extra={"topology": os.path.abspath(args.topology),
+                                     "torsion_atoms": args.torsion})
+    print(f"{len(scan.angle_deg)} points, lowest at {scan.angle_deg[scan.energy_kj_mol.argmin()]:g} deg, "
+          f"highest {scan.energy_kj_mol.max():.2f} kJ/mol above it")
+    for a, e in zip(scan.angle_deg, scan.energy_kj_mol):
+        print(f"  {a:7.1f} deg  {e:8.3f} kJ/mol")
+    print(f"written: {out}")

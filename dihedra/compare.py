@@ -1,0 +1,503 @@
+r"""Does the simulation reproduce the static torsion scan? Comparison of profile and scan.
+
+The one-dimensional approximation
+---------------------------------
+A static scan E(phi) of one molecule predicts, if that torsion moved alone, classically and in
+vacuum, the distribution
+
+.. math::  p_{scan}(\phi) \propto \exp(-E(\phi)/k_B T),
+
+so its free-energy profile is E itself up to a constant. The sampled profile F(phi) = -kT ln p(phi)
+differs from E for physical reasons -- the environment (solvent, neighbours, packing), coupling to
+other torsions and angles, entropy (a relaxed scan follows the lowest path, the simulation
+averages over all of them; wells of different widths carry different entropy), nonbonded terms the
+scan treats differently -- and for a statistical one, finite sampling. A difference is therefore a
+finding to explain, not by itself a force-field error; agreement for a molecule in vacuum with no
+other flexible coordinate *is* a test of the torsion term.
+
+Method
+------
+1. **Grid and prediction.** The sampled histogram profile (:mod:`dihedra.profiles`) and the
+   scan's bin-averaged Boltzmann prediction on the same bins,
+   F_scan,k = -kT ln( (1/w) integral over bin k of exp(-E/kT) ) (50 points per bin), so both are
+   bin averages; with 5-degree bins this differs from E at the bin centre by less than 0.05
+   kJ/mol for usual torsion potentials. The predicted state populations integrate exp(-E/kT) over
+   the arcs of the run's state scheme.
+2. **Reliable region.** A bin is reliable when it was sampled in at least 90 % of the bootstrap
+   resamples, its free-energy error sigma is at most ``max_error_kt`` kT (default 0.2 kT) and its
+   free energy is at most ``max_free_energy_kt`` kT (default 6 kT) above the minimum: high,
+   rarely visited bins have unstable error estimates and are left out.
+3. **Offset alignment.** F and F_scan carry arbitrary constants; the offset c minimises
+   sum_k w_k (F_k - F_scan,k - c)^2 over the reliable bins with w_k = 1 / max(sigma_k, 0.02 kT)^2
+   (precise bins count more; the floor keeps one bin from dominating).
+4. **Metrics** over the reliable bins: RMSE and maximum |dF| of dF = F - F_scan - c; the "excess"
+   RMSE sqrt(max(0, RMSE^2 - mean sigma^2)) that noise alone would not give; minima (positions,
+   free energies) and barriers (positions, free energies above the global minimum) side by side,
+   matched within 30 degrees; sampled (populations.csv) versus predicted state populations with
+   z = (p_sampled - p_pred) / sigma_p; state free-energy differences dG = -kT ln(p_B/p_A) against
+   the most populated state A, sampled versus predicted (ddG, with the bootstrap error); the
+   Jensen-Shannon divergence (base 2, 0 = identical, 1 = disjoint) between the sampled bin
+   probabilities and the predicted ones over the whole circle.
+5. **Verdict** per type, with the thresholds of :class:`Thresholds`:
+
+   * ``undersampled`` -- a minimum of the scan that holds at least 1 % of the predicted population
+     lies outside the reliable region, or fewer than 6 bins are reliable: the data cannot judge.
+   * ``inconsistent`` -- the excess RMSE exceeds the tolerance (1.0 kJ/mol), or a state's ddG
+     exceeds both the tolerance and 3 times its error.
+   * ``consistent`` -- otherwise.
+
+   The tolerance is a practical agreement level (about 0.25 kcal/mol); the 3-sigma condition keeps
+   noise from producing an "inconsistent", the tolerance keeps tiny but precisely measured
+   differences from doing so.
+
+Example
+-------
+>>> from dihedra.compare import compare_with_scan            # doctest: +SKIP
+>>> cmp = compare_with_scan(result, scan, temperature_k=298.15)
+>>> cmp.table[["type", "rmse_kj_mol", "verdict"]]
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from dataclasses import asdict, dataclass, field
+
+from .errors import DihedraError
+from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
+                       find_minima, resolve_temperature, state_blocks, state_free_energies,
+                       type_profiles, write_json_replacing, write_table_replacing)
+from .units import kt_kj_mol, wrap_deg
+
+#: Sub-points per bin for the bin-averaged prediction.
+_SUB = 50
+#: Scan minima and sampled minima (or barriers) closer than this are matched (degrees).
+MATCH_DEG = 30.0
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """Rules of the comparison (see the module notes).
+
+    Attributes
+    ----------
+    max_free_energy_kt, max_error_kt : float
+        A reliable bin has F <= max_free_energy_kt kT and sigma <= max_error_kt kT.
+    tolerance_kj_mol : float
+        Practical agreement level for the excess RMSE and for state ddG.
+    n_sigma : float
+        A state ddG must also exceed this many standard errors to count.
+    min_minimum_population : float
+        Scan minima holding at least this predicted population must lie in the reliable region.
+    min_reliable_bins : int
+        Fewer reliable bins make the type undersampled.
+    """
+
+    max_free_energy_kt: float = 6.0
+    max_error_kt: float = 0.2
+    tolerance_kj_mol: float = 1.0
+    n_sigma: float = 3.0
+    min_minimum_population: float = 0.01
+    min_reliable_bins: int = 6
+
+
+@dataclass
+class Comparison:
+    """Result of :func:`compare_with_scan`.
+
+    Attributes
+    ----------
+    table : DataFrame
+        One row per type, one column per metric, plus ``verdict`` and ``verdict_reason``.
+    profiles : DataFrame
+        Per type and bin: sampled F with error, aligned scan prediction, difference, reliable.
+    details : dict
+        Everything (settings, scan, features side by side, states) for comparison.json.
+    """
+
+    table: pd.DataFrame
+    profiles: pd.DataFrame
+    details: dict
+    notes: list = field(default_factory=list)
+
+
+# ----------------------------------------------------------------------------------------------
+# Pieces (arrays in, arrays out)
+# ----------------------------------------------------------------------------------------------
+
+def predicted_bin_profile(scan, n_bins, kt):
+    """Bin-averaged Boltzmann prediction of a scan on ``n_bins`` equal bins of (-180, 180].
+
+    Returns
+    -------
+    free_energy_kj_mol : ndarray (n_bins,)
+        -kT ln of the bin-averaged exp(-E/kT), shifted to minimum 0.
+    probability : ndarray (n_bins,)
+        Predicted probability of each bin (sums to 1).
+    """
+    w = 360.0 / n_bins
+    x = -180.0 + w * (np.arange(n_bins)[:, None] + (np.arange(_SUB)[None, :] + 0.5) / _SUB)
+    boltz = np.exp(-scan.energy_at(x) / kt)
+    mean = boltz.mean(axis=1)
+    free = -kt * np.log(mean)
+    return free - free.min(), mean / mean.sum()
+
+
+def predicted_state_populations(scan, scheme, kt, n_points=36000):
+    """State populations predicted by p ~ exp(-E/kT) under a state scheme (midpoint rule)."""
+    x = -180.0 + (np.arange(n_points) + 0.5) * 360.0 / n_points
+    boltz = np.exp(-scan.energy_at(x) / kt)
+    codes = scheme.assign(x)
+    pops = np.bincount(codes, weights=boltz, minlength=scheme.n_states)[:scheme.n_states]
+    return pops / pops.sum()
+
+
+def reliable_bins(profile, kt, thresholds=Thresholds()):
+    """Mask of the bins where the sampled profile is reliable (see the module notes)."""
+    f = profile.free_energy_kj_mol
+    e = profile.free_energy_err_kj_mol
+    with np.errstate(invalid="ignore"):
+        return (profile.sampled & (profile.boot_valid_fraction >= MIN_RESAMPLED_FRACTION)
+                & np.isfinite(f) & np.isfinite(e) & (e <= thresholds.max_error_kt * kt)
+                & (f <= thresholds.max_free_energy_kt * kt))
+
+
+def align_offset(free, predicted, err, mask, kt):
+    """Offset c of min sum w (F - F_scan - c)^2 over ``mask``, w = 1 / max(sigma, 0.02 kT)^2."""
+    if not mask.any():
+        return np.nan
+    w = 1.0 / np.maximum(err[mask], 0.02 * kt) ** 2
+    return float(np.sum(w * (free[mask] - predicted[mask])) / np.sum(w))
+
+
+def js_divergence_bits(p, q):
+    """Jensen-Shannon divergence (base 2) between two discrete distributions."""
+    p = np.asarray(p, dtype=float) / np.sum(p)
+    q = np.asarray(q, dtype=float) / np.sum(q)
+    m = 0.5 * (p + q)
+
+    def kl(a):
+        nz = a > 0
+        return float(np.sum(a[nz] * np.log2(a[nz] / m[nz])))
+
+    return 0.5 * kl(p) + 0.5 * kl(q)
+
+
+def scan_features(scan, kt, step_deg=0.5):
+    """Minima (with predicted basin populations) and barriers of a scan, on a fine grid.
+
+    Returns
+    -------
+    minima : list of dict (angle_deg, energy_kj_mol, predicted_population)
+    barriers : list of dict (angle_deg, energy_kj_mol, between_deg)
+    """
+    n = int(round(360.0 / step_deg))
+    x = -180.0 + step_deg * (np.arange(n) + 0.5)
+    e = scan.energy_at(x)
+    e = e - e.min()
+    mins = find_minima(e, np.zeros(n), kt, min_depth_kt=0.05, min_depth_sigma=0.0)
+    boltz = np.exp(-e / kt)
+    boltz /= boltz.sum()
+    bars = []
+    for k, a in enumerate(mins):
+        b = mins[(k + 1) % len(mins)]
+        arc = (a + 1 + np.arange((b - a - 1) % n if a != b else n - 1)) % n
+        bars.append(int(arc[np.argmax(e[arc])]) if len(arc) else a)
+    minima = []
+    for k, i in enumerate(mins):
+        lo, hi = bars[k - 1], bars[k]
+        arc = (lo + np.arange(((hi - lo) % n) or n)) % n
+        minima.append({"angle_deg": float(x[i]), "energy_kj_mol": float(e[i]),
+                       "predicted_population": float(boltz[arc].sum())})
+    barriers = [{"angle_deg": float(x[j]), "energy_kj_mol": float(e[j]),
+                 "between_deg": [float(x[mins[k]]), float(x[mins[(k + 1) % len(mins)]])]}
+                for k, j in enumerate(bars)] if len(mins) > 1 or mins else []
+    return minima, barriers
+
+
+def _match(scan_items, sampled_items, key="angle_deg"):
+    pairs = []
+    for s in scan_items:
+        best, dist = None, MATCH_DEG
+        for m in sampled_items:
+            d = abs(float(wrap_deg(m[key] - s[key]))) if np.isfinite(m[key]) else np.inf
+            if d <= dist:
+                best, dist = m, d
+        pairs.append((s, best))
+    return pairs
+
+
+# ----------------------------------------------------------------------------------------------
+# The comparison of a results folder with one scan
+# ----------------------------------------------------------------------------------------------
+
+def select_types(result, types):
+    """The types to compare: the one type of the run, the ones named, or all with ``"all"``."""
+    known = list(dict.fromkeys(result.torsion_set.types))
+    if not types:
+        if len(known) == 1:
+            return known
+        raise DihedraError(f"this run has {len(known)} torsion types ({', '.join(known[:5])}"
+                           f"{', ...' if len(known) > 5 else ''}); name the one the scan describes with "
+                           "--type TYPE (repeatable), or --type all.")
+    if isinstance(types, str):
+        types = [types]
+    if list(types) == ["all"]:
+        return known
+    unknown = [t for t in types if t not in known]
+    if unknown:
+        raise DihedraError(f"torsion type {unknown[0]!r} is not in this run; its types are "
+                           f"{', '.join(known[:8])}{', ...' if len(known) > 8 else ''}.")
+    return list(dict.fromkeys(types))
+
+
+def compare_with_scan(result, scan, temperature_k=None, types=None, bin_width_deg=DEFAULT_BIN_WIDTH_DEG,
+                      thresholds=Thresholds(), n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED, log=None):
+    """Compare the sampled profiles of torsion types with a static scan.
+
+    Parameters
+    ----------
+    result : TrackResult
+    scan : dihedra.scans.TorsionScan
+    temperature_k : float, optional
+        Required unless the run recorded one (then it is used and announced through ``log``).
+    types : str or list of str, optional
+        Types to compare (default: the only type; ``"all"`` for every type).
+    bin_width_deg : float
+        Bin width of the profiles compared.
+    thresholds : Thresholds
+    n_bootstrap, seed : int
+        Block bootstrap of the profile errors.
+    log : callable, optional
+
+    Returns
+    -------
+    Comparison
+    """
+    temperature_k = resolve_temperature(temperature_k, result.summary, log)
+    kt = kt_kj_mol(temperature_k)
+    types = select_types(result, types)
+    profs = type_profiles(result, temperature_k, bin_width_deg, n_bootstrap=n_bootstrap, seed=seed,
+                          types=types, kernel=False)
+    scheme = result.scheme
+    order = list(dict.fromkeys(result.torsion_set.types))
+    members = {t: [k for k, x in enumerate(result.torsion_set.types) if x == t] for t in order}
+    sc, sc_rep, smult = state_blocks(result, n_bootstrap, seed)
+    pops = result.populations_by_type.set_index(["type", "state"])
+    pred_pops = predicted_state_populations(scan, scheme, kt)
+    s_minima, s_barriers = scan_features(scan, kt)
+    from .profiles import profile_features
+
+    rows, prof_rows, per_type = [], [], {}
+    for t in types:
+        prof, _ = profs[t]
+        n_bins = len(prof.angle_deg)
+        f_pred, q = predicted_bin_profile(scan, n_bins, kt)
+        mask = reliable_bins(prof, kt, thresholds)
+        f = prof.free_energy_kj_mol
+        err = prof.free_energy_err_kj_mol
+        offset = align_offset(f, f_pred, err, mask, kt)
+        diff = f - f_pred - offset
+        n_rel = int(mask.sum())
+        if n_rel:
+            rmse = float(np.sqrt(np.mean(diff[mask] ** 2)))
+            excess = float(np.sqrt(max(0.0, rmse ** 2 - np.mean(err[mask] ** 2))))
+            worst = int(np.flatnonzero(mask)[np.argmax(np.abs(diff[mask]))])
+            max_abs, max_at = float(abs(diff[worst])), float(prof.angle_deg[worst])
+        else:
+            rmse = excess = max_abs = max_at = np.nan
+        p_hist = np.where(prof.sampled, prof.samples, 0.0)
+        jsd = js_divergence_bits(p_hist, q)
+        # features side by side
+        m_minima, m_barriers = profile_features(prof, kt)
+        minima_side = []
+        for s, m in _match(s_minima, m_minima):
+            in_reliable = bool(mask[int(np.clip(np.floor((s["angle_deg"] + 180.0) / (360.0 / n_bins)), 0, n_bins - 1))])
+            minima_side.append({
+                "scan_angle_deg": s["angle_deg"], "scan_energy_kj_mol": s["energy_kj_mol"],
+                "predicted_population": s["predicted_population"], "in_reliable_region": in_reliable,
+                "sampled_angle_deg": m["angle_deg"] if m else None,
+                "sampled_angle_err_deg": m["angle_err_deg"] if m else None,
+                "sampled_free_energy_kj_mol": m["free_energy_kj_mol"] if m else None,
+                "sampled_free_energy_err_kj_mol": m["free_energy_err_kj_mol"] if m else None})
+        barriers_side = []
+        for s, m in _match(s_barriers, [b for b in m_barriers]):
+            barriers_side.append({
+                "scan_angle_deg": s["angle_deg"], "scan_energy_kj_mol": s["energy_kj_mol"],
+                "sampled_angle_deg": m["angle_deg"] if m else None,
+                "sampled_free_energy_kj_mol": m["free_energy_kj_mol"] if m and m["sampled"] else None,
+                "sampled_free_energy_err_kj_mol": m["free_energy_err_kj_mol"] if m and m["sampled"] else None,
+                "sampled": bool(m["sampled"]) if m else False})
+        # states
+        dg_rows = state_free_energies(sc[:, members[t], :].sum(axis=1), sc_rep, scheme.labels, kt, smult)
+        dg = {r["state"]: r for r in dg_rows}
+        ref = dg_rows[0]["reference_state"] if dg_rows else scheme.labels[0]
+        ref_k = scheme.labels.index(ref)
+        states = []
+        for k, label in enumerate(scheme.labels):
+            p = float(pops.loc[(t, label), "population"]) if (t, label) in pops.index else np.nan
+            pe = float(pops.loc[(t, label), "population_err"]) if (t, label) in pops.index else np.nan
+            z = (p - pred_pops[k]) / pe if pe and np.isfinite(pe) and pe > 0 else np.nan
+            with np.errstate(divide="ignore", invalid="ignore"):
+                dg_pred = float(-kt * np.log(pred_pops[k] / pred_pops[ref_k]))
+            dg_s = dg.get(label, {}).get("free_energy_kj_mol", np.nan)
+            dg_e = dg.get(label, {}).get("free_energy_err_kj_mol", np.nan)
+            ddg = dg_s - dg_pred if np.isfinite(dg_s) and np.isfinite(dg_pred) else np.nan
+            states.append({"state": label, "population": p, "population_err": pe,
+                           "predicted_population": float(pred_pops[k]), "z_score": z,
+                           "free_energy_kj_mol": dg_s, "free_energy_err_kj_mol": dg_e,
+                           "predicted_free_energy_kj_mol": dg_pred, "ddg_kj_mol": ddg,
+                           "reference_state": ref})
+        # verdict
+        missing = [m for m in minima_side
+                   if m["predicted_population"] >= thresholds.min_minimum_population and not m["in_reliable_region"]]
+        tol = thresholds.tolerance_kj_mol
+        bad_states = [s for s in states if s["state"] != ref and np.isfinite(s["ddg_kj_mol"])
+                      and abs(s["ddg_kj_mol"]) > tol
+                      and (not np.isfinite(s["free_energy_err_kj_mol"])
+                           or abs(s["ddg_kj_mol"]) > thresholds.n_sigma * s["free_energy_err_kj_mol"])]
+        if n_rel < thresholds.min_reliable_bins:
+            verdict, reason = "undersampled", (f"only {n_rel} reliable bins (at least "
+                                               f"{thresholds.min_reliable_bins} needed)")
+        elif missing:
+            verdict = "undersampled"
+            reason = ("the reliable region misses the scan minimum at "
+                      + ", ".join(f"{m['scan_angle_deg']:.0f} deg ({100 * m['predicted_population']:.0f} % "
+                                  "predicted)" for m in missing))
+        elif excess > tol or bad_states:
+            verdict = "inconsistent"
+            parts = []
+            if excess > tol:
+                parts.append(f"excess RMSE {excess:.2f} kJ/mol > {tol:g}")
+            for s in bad_states:
+                parts.append(f"ddG({s['state']} vs {ref}) = {s['ddg_kj_mol']:+.2f} ± "
+                             f"{s['free_energy_err_kj_mol']:.2f} kJ/mol")
+            reason = "; ".join(parts)
+        else:
+            verdict = "consistent"
+            reason = (f"excess RMSE {excess:.2f} <= {tol:g} kJ/mol and every state ddG within "
+                      f"{tol:g} kJ/mol or {thresholds.n_sigma:g} sigma")
+        row = {"type": t, "temperature_k": temperature_k, "scan_kind": scan.kind,
+               "n_reliable_bins": n_rel, "reliable_span_deg": n_rel * 360.0 / n_bins,
+               "offset_kj_mol": offset, "rmse_kj_mol": rmse, "excess_rmse_kj_mol": excess,
+               "max_abs_difference_kj_mol": max_abs, "max_abs_difference_angle_deg": max_at,
+               "js_divergence_bits": jsd}
+        for s in states:
+            key = s["state"]
+            row[f"population_{key}"] = s["population"]
+            row[f"population_err_{key}"] = s["population_err"]
+            row[f"predicted_population_{key}"] = s["predicted_population"]
+            row[f"z_score_{key}"] = s["z_score"]
+            row[f"ddg_{key}_kj_mol"] = s["ddg_kj_mol"]
+        row["verdict"] = verdict
+        row["verdict_reason"] = reason
+        rows.append(row)
+        prof_rows.append(pd.DataFrame({
+            "type": t, "angle_deg": prof.angle_deg, "free_energy_kj_mol": f,
+            "free_energy_err_kj_mol": np.where(prof.sampled, err, np.nan), "sampled": prof.sampled,
+            "reliable": mask, "scan_free_energy_kj_mol": f_pred + offset if np.isfinite(offset) else f_pred,
+            "difference_kj_mol": diff}))
+        per_type[t] = {"metrics": {k: v for k, v in row.items() if k not in ("type",)},
+                       "minima": minima_side, "barriers": barriers_side, "states": states}
+    details = {
+        "temperature_k": temperature_k, "kt_kj_mol": kt, "bin_width_deg": float(bin_width_deg),
+        "scheme": scheme.name, "thresholds": asdict(thresholds),
+        "scan": {"source": scan.source, "kind": scan.kind, "metadata": scan.metadata,
+                 "minima": s_minima, "barriers": s_barriers},
+        "types": per_type,
+        "rules": {
+            "reliable_bin": "sampled in >= 90% of bootstrap resamples, error <= max_error_kt kT, "
+                            "F <= max_free_energy_kt kT",
+            "offset": "weighted mean of F - F_scan over reliable bins, weights 1/max(error, 0.02 kT)^2",
+            "undersampled": "a scan minimum with >= min_minimum_population predicted population outside "
+                            "the reliable region, or fewer than min_reliable_bins reliable bins",
+            "inconsistent": "excess RMSE > tolerance, or a state ddG > tolerance and > n_sigma errors",
+            "consistent": "otherwise",
+        },
+        "cautions": CAUTIONS,
+    }
+    return Comparison(table=pd.DataFrame(rows), profiles=pd.concat(prof_rows, ignore_index=True),
+                      details=details)
+
+
+CAUTIONS = [
+    "The scan predicts p(phi) ~ exp(-E(phi)/kT) only in a one-dimensional, classical picture of one "
+    "molecule whose other coordinates follow the scan; the simulation samples them all.",
+    "A difference can come from the environment (solvent, neighbours), from coupling to other "
+    "torsions and angles, from entropy (wells of different width; a relaxed scan follows the lowest "
+    "path), from nonbonded terms the scan treats differently, or from too little sampling.",
+    "Regions outside the reliable region were rarely or never visited: they are not compared.",
+]
+
+
+def write_comparison(cmp, folder):
+    """Write comparison.csv, comparison_profiles.csv and comparison.json (atomically)."""
+    return [write_table_replacing(cmp.table, folder, "comparison.csv"),
+            write_table_replacing(cmp.profiles, folder, "comparison_profiles.csv"),
+            write_json_replacing(_jsonable(cmp.details), folder, "comparison.json")]
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (float, np.floating)):
+        return None if not np.isfinite(obj) else float(obj)
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
+def format_comparison(cmp):
+    """The comparison as text for a terminal: metrics, features side by side, verdicts, cautions."""
+    d = cmp.details
+    lines = [f"comparison with the static scan {d['scan']['source']} (kind: {d['scan']['kind']}) at "
+             f"{d['temperature_k']:g} K (kT = {d['kt_kj_mol']:.3f} kJ/mol), {d['bin_width_deg']:g}-degree bins"]
+    th = d["thresholds"]
+    lines.append(f"reliable bins: error <= {th['max_error_kt']:g} kT, F <= {th['max_free_energy_kt']:g} kT; "
+                 f"tolerance {th['tolerance_kj_mol']:g} kJ/mol, {th['n_sigma']:g} sigma")
+    for t, info in d["types"].items():
+        m = info["metrics"]
+        lines.append("")
+        lines.append(f"type {t}: {m['verdict'].upper()} ({m['verdict_reason']})")
+        lines.append(f"  reliable region {m['reliable_span_deg']:.0f} deg of 360; RMSE {m['rmse_kj_mol']:.2f} kJ/mol "
+                     f"(excess over noise {m['excess_rmse_kj_mol']:.2f}), max |dF| {m['max_abs_difference_kj_mol']:.2f} "
+                     f"kJ/mol at {m['max_abs_difference_angle_deg']:.1f} deg; Jensen-Shannon divergence "
+                     f"{m['js_divergence_bits']:.4f} bit")
+        lines.append("  minima (scan E | sampled F, kJ/mol above the lowest):")
+        for x in info["minima"]:
+            sampled = ("not found" if x["sampled_angle_deg"] is None else
+                       f"{x['sampled_angle_deg']:7.1f} deg  {_pm(x['sampled_free_energy_kj_mol'], x['sampled_free_energy_err_kj_mol'])}")
+            flag = "" if x["in_reliable_region"] else "  (outside the reliable region)"
+            lines.append(f"    {x['scan_angle_deg']:7.1f} deg  {x['scan_energy_kj_mol']:6.2f} | {sampled}{flag}")
+        lines.append("  barriers (scan E | sampled F above the lowest minimum, kJ/mol):")
+        for x in info["barriers"]:
+            if x["sampled_angle_deg"] is None:
+                sampled = "not found"
+            elif not x["sampled"]:
+                sampled = f"{x['sampled_angle_deg']:7.1f} deg  unsampled (higher than any sampled value)"
+            else:
+                sampled = (f"{x['sampled_angle_deg']:7.1f} deg  "
+                           f"{_pm(x['sampled_free_energy_kj_mol'], x['sampled_free_energy_err_kj_mol'])}")
+            lines.append(f"    {x['scan_angle_deg']:7.1f} deg  {x['scan_energy_kj_mol']:6.2f} | {sampled}")
+        lines.append("  states: sampled vs predicted population (z), dG vs the most populated state (kJ/mol):")
+        for s in info["states"]:
+            z = "" if not np.isfinite(s["z_score"]) else f"z = {s['z_score']:+.1f}"
+            lines.append(f"    {s['state']:<10} {_pm(s['population'], s['population_err'])} vs "
+                         f"{s['predicted_population']:.3f}  {z:<10} dG {_pm(s['free_energy_kj_mol'], s['free_energy_err_kj_mol'], 2)}"
+                         f" vs {s['predicted_free_energy_kj_mol']:.2f}")
+    lines.append("")
+    lines.append("how to read this:")
+    lines.extend(f"  - {c}" for c in CAUTIONS)
+    return "\n".join(lines)
+
+
+def _pm(value, err, digits=3):
+    if value is None or not np.isfinite(value):
+        return "-"
+    if err is None or not np.isfinite(err):
+        return f"{value:.{digits}f}"
+    return f"{value:.{digits}f} ± {err:.{digits}f}"
