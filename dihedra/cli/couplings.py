@@ -1,0 +1,64 @@
+"""``dihedra couplings``: ensemble-averaged 3J couplings of a results folder, against experiment."""
+
+from ..couplings import (BUILTIN_RELATIONS, compare_with_experiment, compute_couplings, read_experimental,
+                         write_couplings)
+from ..resultsdir import load_results
+from .common import format_pm, print_notices, say
+
+
+def register(sub):
+    p = sub.add_parser(
+        "couplings", help="ensemble-averaged 3J couplings (Karplus relations), optionally against experiment",
+        description="Average a Karplus relation over the sampled torsion distributions of a results folder "
+                    "(the fine histograms, weighted when the run was) and write couplings.csv; with "
+                    "--experimental also couplings_vs_experiment.csv with deviations, chi-square and a "
+                    "verdict. Built-in relations: " + ", ".join(BUILTIN_RELATIONS) + ".")
+    p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track' or 'dihedra windows'")
+    p.add_argument("--relation", action="append", required=True, metavar="NAME",
+                   help="Karplus relation (repeatable): " + ", ".join(BUILTIN_RELATIONS)
+                        + ", or a .toml file with a [relation] table")
+    p.add_argument("--experimental", metavar="FILE", default=None,
+                   help="CSV of measured couplings: torsion (or residue), J_hz, J_err_hz")
+    p.add_argument("--select", action="append", metavar="LABEL", default=None,
+                   help="torsion label or type to average (repeatable; default: the torsions the relation "
+                        "is meant for, e.g. protein phi)")
+    p.set_defaults(func=run)
+
+
+def run(args):
+    result = load_results(args.folder)
+    cres = compute_couplings(result, args.relation, select=args.select)
+    points = summary = None
+    if args.experimental:
+        points, summary = compare_with_experiment(cres.couplings, read_experimental(args.experimental))
+    paths = write_couplings(cres, result.folder, points, summary, args.experimental)
+    report(cres, summary)
+    print_notices(cres.notices)
+    say("written: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
+
+
+def report(cres, summary, max_rows=30):
+    table = cres.couplings
+    for rel, sub in table.groupby("relation", sort=False):
+        first = sub.iloc[0]
+        print(f"{rel}: <{first['coupling']}> in Hz (statistical error; relation's own spread separately)")
+        shown = sub[sub["level"] == "type"] if (sub["level"] == "type").any() and len(sub) > max_rows else sub
+        width = max(8, *(len(str(x)) for x in shown["torsion"].where(shown["torsion"] != "", shown["type"])))
+        for row in shown.head(max_rows).itertuples(index=False):
+            name = row.torsion or f"{row.type} (mean of type)"
+            sys_text = f"   systematic {row.j_systematic_hz:.2f}" if row.j_systematic_hz == row.j_systematic_hz else ""
+            print(f"  {name:<{width}}  {format_pm(row.j_hz, row.j_err_hz, 2):>16}{sys_text}")
+        if len(shown) > max_rows:
+            print(f"  ... {len(shown) - max_rows} more rows in couplings.csv")
+    for s in summary or []:
+        if s["n_points"] == 0:
+            print(f"{s['relation']} vs experiment: no experimental value matched a torsion "
+                  f"({'; '.join(s['unmatched'][:3])})")
+            continue
+        print(f"{s['relation']} vs experiment: {s['n_points']} points, RMSD {s['rmsd_hz']:.2f} Hz, mean "
+              f"deviation {s['mean_deviation_hz']:+.2f} Hz, chi-square per point {s['chi_square_per_point']:.2f} "
+              f"(p = {s['p_value']:.3g}) -> {s['verdict']}")
+        if s["outliers"]:
+            print(f"  outliers (|z| > 3): {', '.join(s['outliers'])}")
+        if s["unmatched"]:
+            print(f"  not matched: {', '.join(s['unmatched'][:5])}" + (" ..." if len(s["unmatched"]) > 5 else ""))
