@@ -505,12 +505,23 @@ def dwell_statistics(lengths, censored, counts=None, dt_ps=1.0, n_bootstrap=DEFA
                mean_restricted=bool(ce[-1] > 0))
     if n_bootstrap and ev.sum() > 0:
         rng = rng or np.random.default_rng(0)
-        total = int(counts.sum())
-        p = np.r_[ev, ce] / total
-        draws = rng.multinomial(total, p, size=int(n_bootstrap))
+        draws = _resample_counts(np.r_[ev, ce].astype(np.int64), int(n_bootstrap), rng)
         boot, _ = kaplan_meier(d, draws[:, :len(d)], draws[:, len(d):])
         out["ci_low_ps"], out["ci_high_ps"] = (float(x) * dt_ps for x in np.percentile(boot, [2.5, 97.5]))
     return out
+
+
+def _resample_counts(cell_counts, n_samples, rng):
+    """Bootstrap resamples of items grouped in cells: (n_samples, n_cells) counts, each row summing to
+    the number of items (multinomial; by drawing item indices when there are few items)."""
+    total = int(cell_counts.sum())
+    n_cells = len(cell_counts)
+    if total <= 4 * n_cells:
+        items = np.repeat(np.arange(n_cells), cell_counts)
+        picks = items[rng.integers(0, total, size=(n_samples, total))]
+        flat = (picks + np.arange(n_samples)[:, None] * n_cells).ravel()
+        return np.bincount(flat, minlength=n_samples * n_cells).reshape(n_samples, n_cells)
+    return rng.multinomial(total, cell_counts / total, size=n_samples)
 
 
 def markov_model(counts, lag_frames):
@@ -589,8 +600,8 @@ def eyring_barrier_kj_mol(rate_per_s, temperature_k, kappa=1.0):
 # ---------------------------------------------------------------------------------------------
 TRANSITION_COLUMNS = ["level", "name", "type", "from_state", "to_state", "count", "time_in_from_ps",
                       "rate_per_ps", "rate_err_per_ps", "rate_ci_low_per_ps", "rate_ci_high_per_ps",
-                      "eyring_barrier_kj_mol", "profile_barrier_kj_mol", "tst_rate_from_profile_per_ps",
-                      "n_trajectories"]
+                      "eyring_barrier_kj_mol", "profile_barrier_kj_mol", "profile_barrier_err_kj_mol",
+                      "tst_rate_from_profile_per_ps", "n_trajectories"]
 LIFETIME_COLUMNS = ["level", "name", "type", "state", "mean_ps", "median_ps", "ci_low_ps", "ci_high_ps",
                     "n_segments", "n_censored", "mean_restricted", "mean_from_rates_ps", "time_in_state_ps",
                     "population_counted", "population_from_rates", "n_trajectories"]
@@ -853,43 +864,52 @@ def _profile_barriers(folder, scheme):
     return _read_barrier_table(table, scheme)
 
 
-def _read_barrier_table(table, scheme):
-    """Map barrier rows (type or torsion, from/to minima, height) onto scheme states.
+def _profile_temperature(folder):
+    """Temperature of ``profiles.json`` (``dihedra profile``), or None."""
+    import json
 
-    Rows need a barrier height in kJ/mol and the two minima it separates as angles; each minimum
-    is assigned a state with the crisp scheme. Several barriers between the same pair of states
-    keep the lowest (the dominant path).
+    try:
+        with open(os.path.join(folder, "profiles.json")) as fh:
+            value = json.load(fh).get("temperature_k")
+        return None if value is None else float(value)
+    except (OSError, ValueError, TypeError, AttributeError):
+        return None
+
+
+def _read_barrier_table(table, scheme):
+    """Map the barriers of ``barriers.csv`` (``dihedra profile``) onto transitions between states.
+
+    Each row is the barrier between two neighbouring minima of a profile (per ``type``, or per
+    ``torsion`` when that column is filled), with ``from_minimum_deg``, ``to_minimum_deg`` and the
+    heights above each, ``height_from_first_kj_mol`` and ``height_from_second_kj_mol``. The minima
+    are assigned states with the crisp scheme: the first height is the barrier of the transition
+    first -> second, the second the reverse. Barriers between minima of the same state are skipped;
+    of several barriers between the same two states the lowest is kept (the dominant path).
+
+    Returns
+    -------
+    dict
+        ``(level, name, from_state, to_state) -> (height_kj_mol, height_err_kj_mol)``.
     """
-    cols = set(table.columns)
-    height = next((c for c in ("barrier_from_kj_mol", "height_from_kj_mol", "forward_barrier_kj_mol",
-                               "barrier_kj_mol", "height_kj_mol") if c in cols), None)
-    reverse = next((c for c in ("barrier_to_kj_mol", "height_to_kj_mol", "backward_barrier_kj_mol",
-                                "reverse_barrier_kj_mol") if c in cols), None)
-    lo = next((c for c in ("from_minimum_deg", "minimum_a_deg", "from_deg", "left_minimum_deg") if c in cols), None)
-    hi = next((c for c in ("to_minimum_deg", "minimum_b_deg", "to_deg", "right_minimum_deg") if c in cols), None)
-    if height is None or lo is None or hi is None:
+    needed = {"type", "from_minimum_deg", "to_minimum_deg", "height_from_first_kj_mol",
+              "height_from_second_kj_mol"}
+    if not needed <= set(table.columns):
         return {}
     out = {}
     for row in table.to_dict("records"):
-        if "torsion" in cols and isinstance(row.get("torsion"), str) and row.get("torsion"):
-            key = ("torsion", row["torsion"])
-        elif "type" in cols and isinstance(row.get("type"), str):
-            key = ("type", row["type"])
-        else:
-            continue
-        a, b = scheme.assign([row[lo], row[hi]])
+        torsion = row.get("torsion")
+        key = ("torsion", torsion) if isinstance(torsion, str) and torsion else ("type", row["type"])
+        a, b = scheme.assign([row["from_minimum_deg"], row["to_minimum_deg"]])
         if a < 0 or b < 0 or a == b:
             continue
-        pairs = [(a, b, row[height])]
-        if reverse is not None:
-            pairs.append((b, a, row[reverse]))
-        elif height in ("barrier_kj_mol", "height_kj_mol"):
-            pairs = [(a, b, row[height])]
-        for i, j, value in pairs:
+        for i, j, which in ((a, b, "first"), (b, a, "second")):
+            value = row[f"height_from_{which}_kj_mol"]
+            err = row.get(f"height_from_{which}_err_kj_mol", np.nan)
             if value is None or not np.isfinite(value):
                 continue
-            k = key + (scheme.labels[i], scheme.labels[j])
-            out[k] = min(out.get(k, np.inf), float(value))
+            k = key + (scheme.labels[int(i)], scheme.labels[int(j)])
+            if k not in out or value < out[k][0]:
+                out[k] = (float(value), float(err))
     return out
 
 
@@ -1040,6 +1060,10 @@ def kinetics(folder, assignment="core", core_margin_deg=DEFAULT_CORE_MARGIN_DEG,
             rec[key].extend(rec_c[key])
     tables = _tables_from_records(rec)
     _add_tst(tables["transitions"], temp, _profile_barriers(folder, scheme), notices)
+    profile_temp = _profile_temperature(folder)
+    if profile_temp is not None and temp is not None and abs(profile_temp - temp) > 1e-6:
+        notices.append(f"the profile barriers were computed at {profile_temp:g} K but the Eyring barriers "
+                       f"at {temp:g} K; compare them at one temperature.")
     if temp is None:
         notices.append("no temperature given and none recorded by 'track': the Eyring columns are empty "
                        "(give --temperature K).")
@@ -1104,10 +1128,11 @@ def _add_tst(transitions, temperature_k, barriers, notices):
         notices.append("no barriers.csv in the folder (run 'dihedra profile'): the profile_barrier_kj_mol "
                        "column is empty.")
         return
-    values = []
-    for row in transitions[["level", "name", "from_state", "to_state"]].itertuples(index=False):
-        values.append(barriers.get((row.level, row.name, row.from_state, row.to_state), np.nan))
-    transitions["profile_barrier_kj_mol"] = np.array(values, dtype=float)
+    values = np.array([barriers.get(tuple(row), (np.nan, np.nan)) for row in
+                       transitions[["level", "name", "from_state", "to_state"]].itertuples(index=False)],
+                      dtype=float).reshape(-1, 2)
+    transitions["profile_barrier_kj_mol"] = values[:, 0]
+    transitions["profile_barrier_err_kj_mol"] = values[:, 1]
     if not np.isfinite(transitions["profile_barrier_kj_mol"]).any():
         notices.append("barriers.csv has no barrier that matches a transition of this analysis; the "
                        "profile_barrier_kj_mol column is empty.")

@@ -418,3 +418,32 @@ def test_custom_scheme_and_file_output(tmp_path):
     names = set(os.listdir(out))
     assert {"transitions.csv", "lifetimes.csv", "timescales.csv", "mfpt.csv", "kinetics.json"} <= names
     assert not [n for n in names if n.endswith(".partial")]
+
+
+def test_profile_barriers_enter_next_to_eyring():
+    # analytic: a barrier between the anti minimum (180) and the gauche+ minimum (60) with heights 12
+    # above anti and 9 above gauche+ is the anti -> gauche+ barrier (12) and the reverse one (9); the
+    # TST rate of a profile barrier is the Eyring rate of that barrier (CODATA 2018 constants).
+    from dihedra.kinetics import _add_tst, _read_barrier_table
+
+    scheme = get_scheme("anti-gauche")
+    barriers = pd.DataFrame({
+        "type": ["T", "T"], "torsion": [np.nan, np.nan], "barrier": [1, 2],
+        "from_minimum_deg": [179.5, 62.0], "to_minimum_deg": [62.0, -61.0],
+        "height_from_first_kj_mol": [12.0, np.nan], "height_from_first_err_kj_mol": [0.3, np.nan],
+        "height_from_second_kj_mol": [9.0, np.nan], "height_from_second_err_kj_mol": [0.2, np.nan],
+        "sampled": [True, False]})
+    mapping = _read_barrier_table(barriers, scheme)
+    assert mapping == {("type", "T", "anti", "gauche+"): (12.0, 0.3), ("type", "T", "gauche+", "anti"): (9.0, 0.2)}
+    transitions = pd.DataFrame({"level": ["type"] * 3, "name": ["T"] * 3,
+                                "from_state": ["anti", "gauche+", "gauche+"],
+                                "to_state": ["gauche+", "anti", "gauche-"], "rate_per_ps": [0.01, 0.02, 0.0]})
+    notices = []
+    _add_tst(transitions, 298.15, mapping, notices)
+    assert transitions["profile_barrier_kj_mol"].tolist()[:2] == [12.0, 9.0]
+    assert np.isnan(transitions["profile_barrier_kj_mol"].iloc[2])  # unsampled barrier: no value
+    assert transitions["tst_rate_from_profile_per_ps"].iloc[0] == pytest.approx(
+        eyring_rate_per_s(12.0, 298.15) / 1e12, rel=1e-12)
+    assert transitions["eyring_barrier_kj_mol"].iloc[0] == pytest.approx(
+        float(eyring_barrier_kj_mol(0.01e12, 298.15)), rel=1e-12)
+    assert np.isnan(transitions["eyring_barrier_kj_mol"].iloc[2])  # no rate, no barrier
