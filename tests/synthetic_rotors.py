@@ -107,3 +107,26 @@ def rotor_results(tmp_path, energy, temperature_k=298.15, n_frames=2000, n_molec
     track(pdb, [dcd], torsions="rotatable", scheme="anti-gauche", out=out, keep_angles=keep_angles,
           temperature_k=temperature_k if record_temperature else None)
     return load_results(out)
+
+
+#: The simulated united-atom RB butane of example_trajectories (made by make_examples.py), if present.
+EXAMPLE_BUTANE = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))),
+                              "example_trajectories", "butane_rb")
+EXAMPLE_TEMPERATURE_K = 298.15  # make_examples.py default
+
+
+def butane_results(tmp_path):
+    """Tracked RB butane: the simulated example when it exists, else exact synthetic samples.
+
+    Returns (results, description).
+    """
+    from dihedra.resultsdir import load_results
+    from dihedra.tracking import track
+
+    if os.path.exists(EXAMPLE_BUTANE + ".pdb") and os.path.exists(EXAMPLE_BUTANE + ".xtc"):
+        out = os.path.join(str(tmp_path), "butane-example")
+        track(EXAMPLE_BUTANE + ".pdb", [EXAMPLE_BUTANE + ".xtc"], torsions="rotatable", out=out,
+              temperature_k=EXAMPLE_TEMPERATURE_K)
+        return load_results(out), "simulated example butane_rb.pdb/.xtc"
+    return (rotor_results(tmp_path, rb_energy, EXAMPLE_TEMPERATURE_K, n_frames=2000, n_molecules=100,
+                          seed=11, name="butane"), "synthetic inverse-CDF RB butane")

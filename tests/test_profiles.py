@@ -1,0 +1,210 @@
+"""Free-energy profiles: recovered densities, barriers, errors, unsampled bins, 2-D profiles."""
+
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate, optimize, stats
+
+from dihedra.errors import DihedraError
+from dihedra.profiles import (bootstrap_multiplicities, compute_profiles, pair_profiles, von_mises_smooth,
+                              write_profiles)
+from dihedra.units import R_KJ_PER_MOL_K
+
+from synthetic_rotors import (RB_BUTANE, butane_results, inverse_cdf_samples, rb_energy, rotor_results,
+                              threefold_energy)
+
+T = 298.15
+KT = R_KJ_PER_MOL_K * T
+
+
+def bin_averaged_free_energy(energy, centres, width):
+    """-kT ln of the bin average of exp(-V/kT) (what a histogram estimates), by scipy quad."""
+    out = []
+    for c in centres:
+        val, _ = integrate.quad(lambda x: np.exp(-energy(x) / KT), c - width / 2, c + width / 2)
+        out.append(-KT * np.log(val / width))
+    return np.array(out)
+
+
+@pytest.fixture(scope="module")
+def rb_synthetic(tmp_path_factory):
+    return rotor_results(tmp_path_factory.mktemp("rb"), rb_energy, T, n_frames=2000, n_molecules=100, seed=5,
+                         keep_angles=True)
+
+
+@pytest.fixture(scope="module")
+def rb_profiles(rb_synthetic):
+    return compute_profiles(rb_synthetic, T, per_torsion=True)
+
+
+def test_known_density_recovered_within_error_band(rb_profiles):
+    # analytic: exact inverse-CDF samples of exp(-V/kT) must give F = V (bin-averaged) + const,
+    # with residuals that scatter like the stated error band (mean z^2 near 1)
+    hist, _ = rb_profiles.by_type["BUT:C1-C2-C3-C4"]
+    ref = bin_averaged_free_energy(rb_energy, hist.angle_deg, hist.width_deg)
+    ok = hist.sampled & (hist.boot_valid_fraction == 1.0) & (ref < 6 * KT)
+    diff = hist.free_energy_kj_mol - ref
+    w = 1 / hist.free_energy_err_kj_mol[ok] ** 2
+    offset = np.sum(w * diff[ok]) / np.sum(w)
+    z = (diff[ok] - offset) / hist.free_energy_err_kj_mol[ok]
+    assert ok.sum() > 40
+    assert np.mean(np.abs(z) <= 2) >= 0.85
+    assert np.max(np.abs(z)) < 5
+    assert 0.4 < np.mean(z ** 2) < 2.0
+    assert np.median(hist.free_energy_err_kj_mol[ok]) < 0.3  # the band is narrow enough to mean something
+
+
+def test_unsampled_bins_are_marked_and_written_empty(rb_profiles, rb_synthetic, tmp_path):
+    # common practice (DOMAIN.md): unvisited regions are "unsampled", never 0 or infinity in a table
+    prof = rb_profiles.profiles
+    hist = prof[(prof["estimate"] == "histogram") & (prof["torsion"] == "")]
+    cis = hist[np.abs(hist["angle_deg"]) < 15]
+    assert (~cis["sampled"]).all() and cis["free_energy_kj_mol"].isna().all()
+    paths = write_profiles(rb_profiles, str(tmp_path), "kJ/mol")
+    text = open(os.path.join(str(tmp_path), "profiles.csv")).read()
+    assert "inf" not in text.lower() and "nan" not in text.lower()
+    back = pd.read_csv(os.path.join(str(tmp_path), "profiles.csv"))
+    unsampled = back[~back["sampled"]]
+    assert len(unsampled) and unsampled["free_energy_kj_mol"].isna().all()
+    assert {os.path.basename(p) for p in paths} >= {"profiles.csv", "minima.csv", "barriers.csv",
+                                                    "state_free_energies.csv", "profiles.json"}
+    assert not [f for f in os.listdir(str(tmp_path)) if f.endswith(".tmp")]
+
+
+def test_energy_unit_columns(rb_profiles, tmp_path):
+    # CHECK-VALUES.md: 1 thermochemical calorie = 4.184 J; kT = R T (CODATA 2018)
+    write_profiles(rb_profiles, str(tmp_path), "kcal/mol")
+    kcal = pd.read_csv(os.path.join(str(tmp_path), "minima.csv"))
+    kj = rb_profiles.minima
+    assert np.allclose(kcal["free_energy_kcal_mol"] * 4.184, kj["free_energy_kj_mol"], equal_nan=True)
+    write_profiles(rb_profiles, str(tmp_path), "kT")
+    kt = pd.read_csv(os.path.join(str(tmp_path), "minima.csv"))
+    assert np.allclose(kt["free_energy_kt"] * 8.314462618e-3 * T, kj["free_energy_kj_mol"], equal_nan=True)
+
+
+def test_state_free_energy_matches_boltzmann_integral(rb_profiles):
+    # analytic (CHECK-VALUES.md, derived): single-torsion populations by numerical integration of
+    # exp(-V_RB/kT) over the anti-gauche arcs
+    def weight(a, b):
+        return integrate.quad(lambda x: np.exp(-rb_energy(x) / KT), a, b, limit=200)[0]
+    anti = weight(120, 180) + weight(-180, -120)
+    gplus = weight(0, 120)
+    expected = -KT * np.log(gplus / anti)
+    dg = rb_profiles.state_free_energies
+    row = dg[(dg["torsion"] == "") & (dg["state"] == "gauche+")].iloc[0]
+    assert row["reference_state"] == "anti"
+    assert abs(row["free_energy_kj_mol"] - expected) < 3 * row["free_energy_err_kj_mol"] + 1e-9
+
+
+def test_ethane_like_rotor_barrier(tmp_path):
+    # common practice / CHECK-VALUES.md: the textbook ethane barrier of about 12 kJ/mol; a three-fold
+    # rotor V = 6 (1 + cos 3 phi) sampled exactly must show minima at +-60 and 180 and barriers of 12
+    res = rotor_results(tmp_path, threefold_energy, T, n_frames=1500, n_molecules=200, seed=3, name="ethane")
+    prof = compute_profiles(res, T, per_torsion=False)
+    minima = prof.minima
+    assert len(minima) == 3
+    for target in (-60.0, 60.0, 180.0):
+        d = np.abs((minima["angle_deg"] - target + 180) % 360 - 180)
+        assert d.min() < 3.0
+    bars = prof.barriers
+    assert len(bars) == 3 and bars["sampled"].all()
+    for r in bars.itertuples():
+        assert abs(r.free_energy_kj_mol - 12.0) <= 3 * r.free_energy_err_kj_mol, (r.angle_deg, r.free_energy_kj_mol)
+        assert min(abs((r.angle_deg - c + 180) % 360 - 180) for c in (0.0, 120.0, -120.0)) < 6.0
+
+
+@pytest.fixture(scope="module")
+def butane(tmp_path_factory):
+    return butane_results(tmp_path_factory.mktemp("butane"))
+
+
+def test_butane_barrier_near_120(butane):
+    # CHECK-VALUES.md (Ryckaert & Bellemans 1978, derived): trans-gauche barrier near +-120 deg at
+    # 12.35 kJ/mol; recomputed here from the coefficients with scipy.optimize
+    res, source = butane
+    top = optimize.minimize_scalar(lambda x: -rb_energy(x), bounds=(90, 150), method="bounded")
+    v_top = -top.fun
+    assert abs(v_top - 12.35) < 0.01 and abs(top.x - 120) < 3
+    prof = compute_profiles(res, per_torsion=False)  # temperature recorded by track
+    bars = prof.barriers[prof.barriers["sampled"]]
+    assert len(bars) == 2, source
+    for r in bars.itertuples():
+        assert abs(abs(r.angle_deg) - top.x) < 10, (source, r.angle_deg)
+        assert abs(r.free_energy_kj_mol - v_top) <= 3 * r.free_energy_err_kj_mol, (source, r.free_energy_kj_mol,
+                                                                                      r.free_energy_err_kj_mol)
+
+
+def test_temperature_required_or_announced(tmp_path):
+    # common practice (DOMAIN.md): temperature always explicit, never a silent default
+    res = rotor_results(tmp_path, threefold_energy, T, n_frames=64, n_molecules=4, record_temperature=False)
+    with pytest.raises(DihedraError, match="temperature"):
+        compute_profiles(res)
+    res.summary["temperature_k"] = 310.0
+    said = []
+    prof = compute_profiles(res, log=said.append, per_torsion=False, n_bootstrap=20)
+    assert prof.temperature_k == 310.0 and any("310" in s for s in said)
+
+
+def test_von_mises_kernel_matches_scipy():
+    # reference library: smoothing a single count with the kernel gives scipy's von Mises density
+    counts = np.zeros(360)
+    counts[180] = 1.0  # bin centre 0.5 deg
+    sigma = 10.0
+    smooth = von_mises_smooth(counts, sigma)
+    centres = -179.5 + np.arange(360)
+    ref = stats.vonmises.pdf(np.radians(centres - 0.5), kappa=1 / np.radians(sigma) ** 2) * np.radians(1.0)
+    assert np.allclose(smooth, ref, atol=1e-6)
+    assert abs(smooth.sum() - 1) < 1e-9
+
+
+def test_kernel_bandwidth_is_stated(rb_profiles):
+    # common practice: a kernel estimate states its bandwidth
+    kern = rb_profiles.profiles[rb_profiles.profiles["estimate"] == "kernel"]
+    assert kern["bandwidth_deg"].notna().all() and (kern["bandwidth_deg"] >= 1.0).all()
+    assert rb_profiles.settings["bandwidth_rule"]
+
+
+def test_bootstrap_stays_within_replicas():
+    # common practice (block bootstrap, Kuensch 1989): blocks are drawn within each replica
+    replica = np.repeat([0, 1, 2], [16, 16, 8])
+    m = bootstrap_multiplicities(replica, 50, np.random.default_rng(0))
+    for r, n in ((0, 16), (1, 16), (2, 8)):
+        assert np.all(m[:, replica == r].sum(axis=1) == n)
+
+
+def test_pair_profile_of_independent_torsions(rb_synthetic):
+    # analytic: two independent molecules have F(a, b) = F(a) + F(b) (up to a constant); the 1-D
+    # profile (all 100 molecules) is far more precise than the 2-D one (2000 frames of one pair)
+    a, b = rb_synthetic.torsion_set.labels[:2]
+    pair = pair_profiles(rb_synthetic, a, b, T, bin_width_deg=30)
+    one = compute_profiles(rb_synthetic, T, bin_width_deg=30, per_torsion=False, n_bootstrap=20)
+    hist = one.by_type["BUT:C1-C2-C3-C4"][0]
+    f1 = dict(zip(hist.angle_deg, hist.free_energy_kj_mol))
+    ok = (pair["sampled"] & (pair["free_energy_err_kj_mol"] < 0.2 * KT)).to_numpy()
+    expect = np.array([f1[x] + f1[y] for x, y in zip(pair["angle_a_deg"], pair["angle_b_deg"])])
+    d = pair["free_energy_kj_mol"].to_numpy()[ok] - expect[ok]
+    err = pair["free_energy_err_kj_mol"].to_numpy()[ok]
+    d -= np.average(d, weights=1 / err ** 2)
+    assert ok.sum() > 6
+    assert np.mean((d / err) ** 2) < 3.0
+    assert pair["n_samples"].sum() == 2000
+
+
+def test_pair_profile_needs_angles(tmp_path):
+    # common practice: without the angle time series the message says how to get it
+    res = rotor_results(tmp_path, threefold_energy, T, n_frames=32, n_molecules=2)
+    with pytest.raises(DihedraError, match="--keep-angles"):
+        pair_profiles(res, *res.torsion_set.labels[:2], T)
+
+
+def test_profile_command(rb_synthetic, capsys):
+    # common practice: the command line is a thin layer and prints the bandwidth it used
+    from dihedra.cli import main
+    status = main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--types-only",
+                   "--pair", *rb_synthetic.torsion_set.labels[:2]])
+    out = capsys.readouterr().out
+    assert status == 0 and "kernel bandwidth" in out and "barrier" in out
+    assert os.path.exists(os.path.join(rb_synthetic.folder, "profiles_2d.csv"))
+    assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--bin-width", "7"]) == 2
