@@ -28,6 +28,7 @@ from __future__ import annotations
 import os
 import re
 import tomllib
+import weakref
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -191,13 +192,39 @@ def _segid(atom):
         return ""
 
 
-def molecule_group(atom):
-    """Conformer group of an atom: its residue, prefixed by the segment when there are several."""
-    seg = _segid(atom)
-    universe = atom.universe
+_GROUP_NAMES = weakref.WeakKeyDictionary()
+
+
+def residue_group_names(universe):
+    """Conformer group name of every residue (indexed by residue ``ix``).
+
+    ``RESNAME`` + ``RESID``, prefixed by the segment when the topology has several; residues that
+    would share a name (copies merged without renumbering, residue numbers that wrap at 10,000 in
+    PDB or GRO files) get ``#2``, ``#3``, ... in the order they appear, so every group is one molecule.
+    """
+    names = _GROUP_NAMES.get(universe)
+    if names is not None:
+        return names
+    res = universe.residues
+    resnames = np.asarray(res.resnames, dtype=str)
+    resids = np.asarray(res.resids)
+    try:
+        segids = np.asarray(res.segids, dtype=str)
+    except Exception:  # no segments attribute
+        segids = np.full(len(res), "")
     multi = len(universe.segments) > 1
-    tag = residue_tag(atom)
-    return f"{seg}:{tag}" if multi and seg else tag
+    names, seen = [], {}
+    for seg, rn, ri in zip(segids, resnames, resids):
+        base = f"{seg}:{rn}{ri}" if multi and seg else f"{rn}{ri}"
+        seen[base] = seen.get(base, 0) + 1
+        names.append(base if seen[base] == 1 else f"{base}#{seen[base]}")
+    _GROUP_NAMES[universe] = names
+    return names
+
+
+def molecule_group(atom):
+    """Conformer group of an atom: its residue (see :func:`residue_group_names`)."""
+    return residue_group_names(atom.universe)[atom.residue.ix]
 
 
 # --------------------------------------------------------------------------------------------
@@ -378,8 +405,9 @@ def _deduplicate(tset):
     used = set()
     for t in kept:
         label = t.label
-        if counts[label] > 1 and t.segid:
-            label = f"{t.segid}:{label}"
+        tag = f"{t.resname}{t.resid}"
+        if counts[label] > 1 and label.startswith(tag + ":") and t.group and t.group != tag:
+            label = t.group + label[len(tag):]  # the unique residue name: A:ALA12:phi, HEX3#2:C1-...
         base, n = label, 1
         while label in used:
             n += 1
