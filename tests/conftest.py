@@ -54,8 +54,10 @@ def chain_coordinates(torsions_deg, spacing=8.0, bond=1.53, angle=112.0, seed=0)
 
 
 def write_system(folder, coords, names=("C1", "C2", "C3", "C4"), resname="BUT", box=None, dt_ps=1.0,
-                 stem="chains", fmt="xtc"):
-    """Write a PDB topology (with CONECT bonds) and a trajectory; return their paths."""
+                 stem="chains", fmt="xtc", extra_bonds=()):
+    """Write a PDB topology (with CONECT bonds) and a trajectory; return their paths.
+
+    Bonds join consecutive atoms of each residue, plus ``extra_bonds`` (pairs of indices)."""
     import MDAnalysis as mda
     from MDAnalysis.coordinates.memory import MemoryReader
 
@@ -69,7 +71,8 @@ def write_system(folder, coords, names=("C1", "C2", "C3", "C4"), resname="BUT", 
     u.add_TopologyAttr("resnames", [resname] * n_res)
     u.add_TopologyAttr("resids", np.arange(1, n_res + 1))
     u.add_TopologyAttr("elements", ["C"] * n_atoms)
-    u.add_TopologyAttr("bonds", [(per * r + k, per * r + k + 1) for r in range(n_res) for k in range(per - 1)])
+    u.add_TopologyAttr("bonds", [(per * r + k, per * r + k + 1) for r in range(n_res) for k in range(per - 1)]
+                       + [tuple(b) for b in extra_bonds])
     u.load_new(coords, format=MemoryReader, dt=dt_ps,
                dimensions=None if box is None else np.asarray(box, dtype=np.float32))
     top = os.path.join(folder, f"{stem}.pdb")
