@@ -305,8 +305,21 @@ class StateTally:
         xt = np.ascontiguousarray(x.T)  # (S, n)
         lmax = self._tail.shape[1]
         full = np.concatenate([self._tail, xt], axis=1)
+        v = int(full.max()) + 1
+        size = self.n_series * v * v
+        dense = 0 < size <= max(4 * xt.size, 1 << 16)
+        if dense:  # small state space: one bincount of (series, from, to) keys per lag
+            key_to = xt + (self._rows * v * v)[:, None]
+            to_ok = xt >= 0
         for lag in self.lags:
             a = full[:, lmax - lag:lmax - lag + n]
+            if dense:
+                key = (key_to + a * v)[to_ok & (a >= 0)]
+                cnt = np.bincount(key, minlength=size)
+                nz = np.flatnonzero(cnt)
+                rows = np.column_stack([nz // (v * v), (nz // v) % v, nz % v])
+                self._pairs[lag].add(rows, cnt[nz])
+                continue
             ok = (a >= 0) & (xt >= 0)
             rows = np.broadcast_to(self._rows[:, None], xt.shape)[ok]
             self._pairs[lag].add(*_count_rows([rows, a[ok], xt[ok]]))
