@@ -71,6 +71,9 @@ MAX_GAP_DEG = 60.0
 SCAN_KINDS = ("rigid", "relaxed", "unspecified", "parameters")
 #: Harmonic restraint on the torsion in the GFN2-xTB scan, kJ/(mol rad^2).
 XTB_RESTRAINT_KJ_MOL_RAD2 = 5000.0
+#: Random restarts per MMFF94 scan point, and their displacement (angstrom, Gaussian per coordinate).
+KICKS = 2
+KICK_ANGSTROM = 0.05
 #: Bohr radius in angstrom (CODATA 2018).
 BOHR_ANGSTROM = 0.529177210903
 _INSTALL = 'install the scan extras: pip install "dihedra[scan]"'
@@ -517,7 +520,9 @@ def mmff94_scan(mol, torsion, step_deg=10.0, max_iterations=5000, progress=None)
     _require("rdkit", "an MMFF94 scan")
     from rdkit import Chem
     from rdkit.Chem import AllChem, rdMolTransforms
+    from rdkit.Geometry import Point3D
 
+    rng = np.random.default_rng(0)
     a, b, c, d = (int(i) for i in torsion)
     _check_rotatable(mol, (a, b, c, d))
     if mol.GetNumConformers() == 0:
@@ -543,12 +548,22 @@ def mmff94_scan(mol, torsion, step_deg=10.0, max_iterations=5000, progress=None)
                 for j in range(work.GetNumAtoms()):
                     conf.SetAtomPosition(j, start.GetAtomPosition(j))
             rdMolTransforms.SetDihedralDeg(conf, a, b, c, d, float(target))
-            ff = AllChem.MMFFGetMoleculeForceField(work, props)
-            ff.MMFFAddTorsionConstraint(a, b, c, d, False, float(target), float(target), 1.0e4)
-            for _ in range(20):
-                if ff.Minimize(maxIts=max_iterations, forceTol=1e-6, energyTol=1e-10) == 0:
-                    break
-            energy = float(AllChem.MMFFGetMoleculeForceField(work, props).CalcEnergy()) * 4.184
+            energy, kept = None, None
+            for kick in range(1 + KICKS):
+                if kick:  # a small random displacement lets the optimiser leave a saddle point
+                    pos = np.asarray(kept) + rng.normal(0.0, KICK_ANGSTROM, np.shape(kept))
+                    for j in range(len(pos)):
+                        conf.SetAtomPosition(j, Point3D(*pos[j]))
+                ff = AllChem.MMFFGetMoleculeForceField(work, props)
+                ff.MMFFAddTorsionConstraint(a, b, c, d, False, float(target), float(target), 1.0e4)
+                for _ in range(20):
+                    if ff.Minimize(maxIts=max_iterations, forceTol=1e-6, energyTol=1e-10) == 0:
+                        break
+                e = float(AllChem.MMFFGetMoleculeForceField(work, props).CalcEnergy()) * 4.184
+                if energy is None or e < energy:
+                    energy, kept = e, conf.GetPositions()
+            for j in range(len(kept)):
+                conf.SetAtomPosition(j, Point3D(*kept[j]))
             reached = rdMolTransforms.GetDihedralDeg(conf, a, b, c, d)
             key = float(target)
             if key not in best or energy < best[key][0]:
@@ -559,7 +574,7 @@ def mmff94_scan(mol, torsion, step_deg=10.0, max_iterations=5000, progress=None)
     angles = np.array(sorted(best))
     energy = np.array([best[x][0] for x in angles])
     meta = {"method": f"MMFF94 relaxed scan (RDKit {_version('rdkit')}), torsion constraint 1e4 kcal/(mol rad^2), "
-                      "each angle from the start geometry and from both neighbours, lowest energy kept",
+                      "each angle from the start geometry and from both neighbours, 2 random restarts each, lowest energy kept",
             "kind": "relaxed", "step_deg": float(step_deg),
             "reached_angle_deg": {f"{x:g}": round(float(best[x][1]), 3) for x in angles}}
     return scan_from_points(angles, energy, kind="relaxed", source="MMFF94", metadata=meta)

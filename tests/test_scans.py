@@ -1,0 +1,210 @@
+"""Static scans: CSV import with units, parameter forms, computed MMFF94 and GFN2-xTB scans."""
+
+import os
+
+import numpy as np
+import pytest
+from scipy import optimize
+
+from dihedra.errors import DihedraError
+from dihedra.scans import (cosine_series_kj_mol, molecule_from_topology, read_parameter_toml, read_scan,
+                           read_scan_csv, ryckaert_bellemans_kj_mol, write_scan_csv)
+from dihedra.units import CALORIE_J, HARTREE_KJ_PER_MOL
+
+from synthetic_rotors import RB_BUTANE, rb_energy
+
+
+def write(path, text):
+    path.write_text(text)
+    return str(path)
+
+
+def table(path, header, angles, energies):
+    return write(path, header + "\n" + "".join(f"{a},{e}\n" for a, e in zip(angles, energies)))
+
+
+ANGLES = np.arange(-180.0, 180.0, 15.0)
+
+
+def test_unit_constants():
+    # CHECK-VALUES.md: 1 thermochemical calorie = 4.184 J; 1 hartree = 2625.4996 kJ/mol (CODATA 2018)
+    assert CALORIE_J == 4.184
+    assert abs(HARTREE_KJ_PER_MOL - 2625.4996) < 1e-4
+
+
+def test_units_from_column_names_convert(tmp_path):
+    # CHECK-VALUES.md: kcal/mol x 4.184 = kJ/mol; hartree x 2625.4996 = kJ/mol
+    e = rb_energy(ANGLES)
+    kcal = read_scan_csv(table(tmp_path / "a.csv", "angle_deg,energy_kcal_mol", ANGLES, e / 4.184))
+    assert np.allclose(kcal.energy_at(ANGLES), e - e.min(), atol=1e-9)
+    eh = read_scan_csv(table(tmp_path / "b.csv", "phi (deg),E [hartree]", ANGLES, -158.0 + e / 2625.4996))
+    assert np.allclose(eh.energy_at(ANGLES), e - e.min(), atol=2e-3)
+    rad = read_scan_csv(table(tmp_path / "c.csv", "torsion_rad,energy_kj_mol", np.radians(ANGLES + 360), e))
+    assert np.allclose(rad.angle_deg, np.sort(np.where(ANGLES == -180, 180, ANGLES)))
+    assert rad.metadata["angle_unit"] == "rad" and kcal.metadata["energy_unit"] == "kcal/mol"
+
+
+def test_units_are_mandatory(tmp_path):
+    # common practice (issue): units are mandatory unless the column names carry them
+    path = table(tmp_path / "n.csv", "phi,E", ANGLES, rb_energy(ANGLES))
+    with pytest.raises(DihedraError, match="angle unit is unknown.*--angle-unit"):
+        read_scan_csv(path)
+    with pytest.raises(DihedraError, match="energy unit is unknown.*--energy-unit"):
+        read_scan_csv(path, angle_unit="deg")
+    assert read_scan_csv(path, angle_unit="deg", energy_unit="kJ/mol").kind == "unspecified"
+    named = table(tmp_path / "m.csv", "angle_deg,energy_kcal_mol", ANGLES, rb_energy(ANGLES))
+    with pytest.raises(DihedraError, match="kcal/mol but kJ/mol was given"):
+        read_scan_csv(named, energy_unit="kJ/mol")
+
+
+def test_bad_files_get_clear_errors(tmp_path):
+    # common practice (issue): non-numeric cells, too few points, gaps over 60 degrees (with where)
+    bad = write(tmp_path / "x.csv", "angle_deg,energy_kj_mol\n0,1\n30,abc\n60,2\n90,3\n120,4\n150,5\n180,0\n")
+    with pytest.raises(DihedraError, match="row 2.*'abc' is not a number"):
+        read_scan_csv(bad)
+    few = table(tmp_path / "f.csv", "angle_deg,energy_kj_mol", [0, 60, 120, 180, -60], [1, 2, 3, 0, 2])
+    with pytest.raises(DihedraError, match="5 distinct angle"):
+        read_scan_csv(few)
+    gap = table(tmp_path / "g.csv", "angle_deg,energy_kj_mol", [-180, -150, -120, -90, -60, 0, 30, 60, 90],
+                np.arange(9.0))
+    with pytest.raises(DihedraError, match="gap of 90 degrees.*between 90 and 180"):
+        read_scan_csv(gap)
+    with pytest.raises(DihedraError, match="does not exist"):
+        read_scan_csv(str(tmp_path / "missing.csv"))
+
+
+def test_duplicates_averaged_and_periodic_spline(tmp_path):
+    # analytic: -180 and 180 are one angle (averaged); a periodic cubic spline through points every
+    # 10 degrees reproduces a smooth cosine potential closely and is continuous through 180
+    x = np.arange(-180.0, 181.0, 10.0)
+    e = 6.0 * (1 + np.cos(np.radians(3 * x)))
+    e[0] += 0.2  # -180 differs from 180 by 0.2: the two are averaged
+    scan = read_scan_csv(table(tmp_path / "s.csv", "angle_deg,energy_kj_mol", x, e))
+    assert len(scan.angle_deg) == 36
+    assert abs(scan.energy_at(180.0) - 0.1) < 1e-9
+    fine = np.linspace(-179, 179, 500)
+    assert np.max(np.abs(scan.energy_at(fine) - 6.0 * (1 + np.cos(np.radians(3 * fine))))) < 0.15
+    assert abs(scan.energy_at(179.999) - scan.energy_at(-179.999)) < 1e-3
+
+
+def test_rb_parameters(tmp_path):
+    # CHECK-VALUES.md (Ryckaert & Bellemans 1978, derived): V(180) = 0, V(0) = 44.80 kJ/mol, gauche
+    # minimum near +-60 at 2.93 kJ/mol (recomputed with scipy.optimize)
+    path = write(tmp_path / "rb.toml", 'form = "ryckaert-bellemans"\nenergy_unit = "kJ/mol"\n'
+                                       f"coefficients = {list(RB_BUTANE)}\n")
+    scan = read_parameter_toml(path)
+    assert scan.kind == "parameters"
+    assert abs(scan.energy_at(180.0)) < 1e-9 and abs(scan.energy_at(0.0) - 44.80) < 1e-9
+    g = optimize.minimize_scalar(lambda x: float(scan.energy_at(x)), bounds=(30, 90), method="bounded")
+    assert abs(g.x - 60) < 5 and abs(g.fun - 2.93) < 0.01
+    kcal = write(tmp_path / "rbk.toml", 'form = "ryckaert-bellemans"\nenergy_unit = "kcal/mol"\n'
+                                        f"coefficients = {[c / 4.184 for c in RB_BUTANE]}\n")
+    assert abs(read_scan(kcal).energy_at(0.0) - 44.80) < 1e-9
+
+
+def test_cosine_series_equals_rb_by_the_published_conversion(tmp_path):
+    # CHECK-VALUES.md: OPLS/Fourier V = 1/2[F1(1+cos) + F2(1-cos 2phi) + F3(1+cos 3phi) + F4(1-cos 4phi)]
+    # converts to RB with C0 = F2 + (F1+F3)/2, C1 = (-F1+3F3)/2, C2 = -F2+4F4, C3 = -2F3, C4 = -4F4
+    f1, f2, f3, f4 = 5.9, -1.1, 13.2, 0.7
+    toml = ('form = "cosine-series"\nenergy_unit = "kJ/mol"\n'
+            f"[[term]]\nk = {f1 / 2}\nn = 1\nphase_deg = 0\n"
+            f"[[term]]\nk = {f2 / 2}\nn = 2\nphase_deg = 180\n"
+            f"[[term]]\nk = {f3 / 2}\nn = 3\nphase_deg = 0\n"
+            f"[[term]]\nk = {f4 / 2}\nn = 4\nphase_rad = {np.pi}\n")
+    series = read_scan(write(tmp_path / "c.toml", toml))
+    rb = (f2 + (f1 + f3) / 2, (-f1 + 3 * f3) / 2, -f2 + 4 * f4, -2 * f3, -4 * f4, 0.0)
+    x = np.linspace(-180, 180, 73)
+    expected = ryckaert_bellemans_kj_mol(x, rb)
+    assert np.allclose(series.energy_at(x), expected - expected.min(), atol=1e-9)
+    assert np.allclose(cosine_series_kj_mol(x, [(1.0, 3, 0.0)]), 1 + np.cos(np.radians(3 * x)))
+
+
+def test_parameter_file_errors(tmp_path):
+    # common practice: units checked, malformed terms refused with the reason
+    with pytest.raises(DihedraError, match="energy_unit is missing"):
+        read_scan(write(tmp_path / "a.toml", 'form = "cosine-series"\n[[term]]\nk = 1\nn = 3\n'))
+    with pytest.raises(DihedraError, match="unknown energy unit"):
+        read_scan(write(tmp_path / "b.toml", 'form = "cosine-series"\nenergy_unit = "kJ"\n[[term]]\nk = 1\nn = 3\n'))
+    with pytest.raises(DihedraError, match="positive integer"):
+        read_scan(write(tmp_path / "c.toml", 'form = "cosine-series"\nenergy_unit = "kJ/mol"\n[[term]]\nk = 1\nn = 1.5\n'))
+    with pytest.raises(DihedraError, match="form must be one of"):
+        read_scan(write(tmp_path / "d.toml", 'form = "fourier"\nenergy_unit = "kJ/mol"\n'))
+
+
+@pytest.fixture(scope="module")
+def butane_pdb(tmp_path_factory):
+    from rdkit import Chem
+    from rdkit.Chem import AllChem
+    mol = Chem.AddHs(Chem.MolFromSmiles("CCCC"))
+    AllChem.EmbedMolecule(mol, randomSeed=42)
+    path = str(tmp_path_factory.mktemp("mmff") / "butane.pdb")
+    Chem.MolToPDBFile(mol, path)
+    return mol, path
+
+
+def test_mmff94_butane_scan(butane_pdb, tmp_path):
+    # from memory (loose bound, CHECK-VALUES.md gives 2.6-4.0 kJ/mol for the gas-phase enthalpy):
+    # MMFF94 butane has its minima at anti and near +-65 degrees, gauche a few kJ/mol above anti
+    from dihedra.scans import mmff94_scan
+    from dihedra.compare import scan_features
+    mol, path = butane_pdb
+    seen = []
+    scan = mmff94_scan(mol, (0, 1, 2, 3), step_deg=10, progress=lambda *a: seen.append(a))
+    assert len(scan.angle_deg) == 36 and len(seen) == 3 * 36
+    minima, _ = scan_features(scan, 2.479)
+    angles = sorted(m["angle_deg"] for m in minima)
+    assert len(minima) == 3
+    assert 50 <= abs(angles[0]) <= 80 and 50 <= abs(angles[1]) <= 80 and angles[0] < 0 < angles[1]
+    assert abs(abs(angles[2]) - 180) < 5
+    gauche = [m["energy_kj_mol"] for m in minima if abs(m["angle_deg"]) < 120]
+    assert all(1.0 < g < 6.0 for g in gauche)
+    # the same molecule built from a topology (elements, hydrogens, first frame) gives the same scan
+    from_top, local = molecule_from_topology(path, "0,1,2,3")
+    again = mmff94_scan(from_top, local, step_deg=30)
+    assert np.allclose(again.energy_kj_mol, scan.energy_at(again.angle_deg), atol=0.05)
+    out = write_scan_csv(scan, str(tmp_path / "mmff.csv"))
+    back = read_scan_csv(out)
+    assert back.kind == "relaxed" and "MMFF94" in back.metadata["method"]
+    assert np.allclose(back.energy_kj_mol, scan.energy_kj_mol, atol=1e-5)
+
+
+def test_united_atom_topology_refused(tmp_path):
+    # common practice: force-field scans need every hydrogen; a united-atom model is refused clearly
+    from synthetic_rotors import write_rotor_trajectory
+    pdb, _ = write_rotor_trajectory(str(tmp_path), "ua", np.full((1, 1), 180.0))
+    with pytest.raises(DihedraError, match="no hydrogens"):
+        molecule_from_topology(pdb, "0,1,2,3")
+    with pytest.raises(DihedraError, match="four different"):
+        molecule_from_topology(pdb, "0,1,2")
+
+
+def test_gfn2_xtb_ethane_scan():
+    # common practice / CHECK-VALUES.md: ethane is staggered at +-60 and 180 (H-C-C-H) with an
+    # eclipsed barrier of about 12 kJ/mol (GFN2-xTB is known to land somewhat lower; loose bound)
+    from rdkit import Chem
+    from rdkit.Chem import AllChem
+    from dihedra.scans import xtb_scan
+    from dihedra.compare import scan_features
+    mol = Chem.AddHs(Chem.MolFromSmiles("CC"))
+    AllChem.EmbedMolecule(mol, randomSeed=1)
+    h_on_0 = [n.GetIdx() for n in mol.GetAtomWithIdx(0).GetNeighbors() if n.GetSymbol() == "H"][0]
+    h_on_1 = [n.GetIdx() for n in mol.GetAtomWithIdx(1).GetNeighbors() if n.GetSymbol() == "H"][0]
+    scan = xtb_scan(mol, (h_on_0, 0, 1, h_on_1), step_deg=30)
+    assert scan.kind == "relaxed" and "GFN2-xTB" in scan.metadata["method"]
+    minima, barriers = scan_features(scan, 2.479)
+    assert len(minima) == 3
+    for m in minima:
+        assert min(abs((m["angle_deg"] - c + 180) % 360 - 180) for c in (60, 180, -60)) < 8
+    for b in barriers:
+        assert 8.0 < b["energy_kj_mol"] < 16.0
+
+
+def test_scan_command(butane_pdb, tmp_path, capsys):
+    # common practice: 'dihedra scan' writes a reusable CSV that 'compare' reads
+    from dihedra.cli import main
+    _, path = butane_pdb
+    out = str(tmp_path / "scan.csv")
+    assert main(["scan", path, "--torsion", "0,1,2,3", "--method", "mmff94", "--step", "30", "--out", out]) == 0
+    assert os.path.exists(out) and read_scan_csv(out).kind == "relaxed"
+    assert main(["scan", path, "--torsion", "0,1,2,3", "--method", "mmff94", "--out", out]) == 2
+    assert "already exists" in capsys.readouterr().err
