@@ -1,0 +1,143 @@
+"""Comparison of sampled profiles with static scans: metrics, verdicts, files, command line."""
+
+import json
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate
+from scipy.spatial.distance import jensenshannon
+
+from dihedra.compare import (Thresholds, align_offset, compare_with_scan, js_divergence_bits,
+                             predicted_state_populations, write_comparison)
+from dihedra.errors import DihedraError
+from dihedra.profiles import type_profiles
+from dihedra.scans import read_scan_csv, scan_from_points
+from dihedra.schemes import get_scheme
+from dihedra.units import R_KJ_PER_MOL_K
+
+from synthetic_rotors import EXAMPLE_TEMPERATURE_K, butane_results, rb_energy
+
+T = EXAMPLE_TEMPERATURE_K
+KT = R_KJ_PER_MOL_K * T
+GRID = np.arange(-180.0, 180.0, 10.0)
+
+
+@pytest.fixture(scope="module")
+def butane(tmp_path_factory):
+    return butane_results(tmp_path_factory.mktemp("butane-compare"))
+
+
+def scan_csv(path, header, energies_kj_mol, factor=1.0):
+    path.write_text(header + "\n" + "".join(f"{a:g},{float(e) / factor!r}\n" for a, e in zip(GRID, energies_kj_mol)))
+    return str(path)
+
+
+def test_butane_profile_matches_rb_potential(butane):
+    # CHECK-VALUES.md (Ryckaert & Bellemans 1978): a united-atom butane with the RB torsion and no 1-4
+    # nonbonded terms samples exp(-V/kT); RMSE between profile and V under 0.5 kJ/mol where V < 15
+    res, source = butane
+    hist, _ = type_profiles(res, T, kernel=False)[res.torsion_set.types[0]]
+    v = rb_energy(hist.angle_deg)
+    sel = (v < 15.0) & hist.sampled
+    w = 1 / np.maximum(hist.free_energy_err_kj_mol[sel], 0.02 * KT) ** 2
+    offset = np.sum(w * (hist.free_energy_kj_mol[sel] - v[sel])) / np.sum(w)
+    rmse = np.sqrt(np.mean((hist.free_energy_kj_mol[sel] - v[sel] - offset) ** 2))
+    assert sel.sum() > 40, source
+    assert rmse < 0.5, (source, rmse)
+
+
+def test_butane_verdicts(butane, tmp_path):
+    # CHECK-VALUES.md: against the exact RB scan (given in kcal/mol, 4.184 kJ per kcal) the verdict is
+    # "consistent"; against a scan whose gauche region is raised by 2.5 kJ/mol, "inconsistent"
+    res, source = butane
+    exact = read_scan_csv(scan_csv(tmp_path / "exact.csv", "angle_deg,energy_kcal_mol", rb_energy(GRID), 4.184))
+    good = compare_with_scan(res, exact, T)
+    assert good.table["verdict"].tolist() == ["consistent"], (source, good.table["verdict_reason"].tolist())
+    assert good.table["rmse_kj_mol"].iloc[0] < 0.5
+    raised_e = rb_energy(GRID) + np.where(np.abs(GRID) < 120, 2.5, 0.0)
+    raised = read_scan_csv(scan_csv(tmp_path / "raised.csv", "angle_deg,energy_kj_mol", raised_e))
+    bad = compare_with_scan(res, raised, T)
+    assert bad.table["verdict"].tolist() == ["inconsistent"], (source, bad.table["verdict_reason"].tolist())
+    # the gauche populations are far above the raised scan's prediction
+    assert (bad.table[["z_score_gauche+", "z_score_gauche-"]] > 3).all(axis=None)
+
+
+def test_undersampled_when_a_scan_minimum_is_never_visited(butane):
+    # issue rule: undersampled when the reliable region misses a minimum of the scan (here a deep
+    # cis minimum that the RB simulation never visits)
+    res, _ = butane
+    e = rb_energy(GRID) - 60.0 * np.exp(-(GRID / 20.0) ** 2)
+    cmp = compare_with_scan(res, scan_from_points(GRID, e), T)
+    assert cmp.table["verdict"].iloc[0] == "undersampled"
+    assert "misses the scan minimum" in cmp.table["verdict_reason"].iloc[0]
+
+
+def test_predicted_populations_by_integration():
+    # analytic: p_scan ~ exp(-E/kT) integrated over the anti-gauche arcs (scipy quad)
+    scan = scan_from_points(GRID, rb_energy(GRID))
+    pops = predicted_state_populations(scan, get_scheme("anti-gauche"), KT)
+
+    def w(a, b):
+        return integrate.quad(lambda x: np.exp(-scan.energy_at(x) / KT), a, b, limit=200)[0]
+    z = w(-180, 180)
+    assert abs(pops[0] - (w(120, 180) + w(-180, -120)) / z) < 1e-4
+    assert abs(pops[1] - w(0, 120) / z) < 1e-4
+    assert abs(pops.sum() - 1) < 1e-12
+
+
+def test_js_divergence_matches_scipy():
+    # reference library: scipy's jensenshannon is the square root of the divergence
+    rng = np.random.default_rng(1)
+    p, q = rng.random(72), rng.random(72)
+    p[:5] = 0
+    assert abs(js_divergence_bits(p, q) - jensenshannon(p, q, base=2) ** 2) < 1e-12
+    assert js_divergence_bits(p, p) == 0
+
+
+def test_offset_alignment_recovers_a_shift():
+    # analytic: F = E + c exactly gives back c, whatever the weights
+    e = rb_energy(np.arange(-177.5, 180, 5.0))
+    err = np.linspace(0.05, 0.4, len(e))
+    mask = e < 15
+    assert abs(align_offset(e + 3.7, e, err, mask, KT) - 3.7) < 1e-12
+
+
+def test_files_and_text(butane, tmp_path):
+    # common practice (DOMAIN.md): tidy tables with units, JSON with thresholds, text that explains
+    res, _ = butane
+    scan = read_scan_csv(scan_csv(tmp_path / "s.csv", "angle_deg,energy_kj_mol", rb_energy(GRID)), kind="relaxed")
+    cmp = compare_with_scan(res, scan, T, thresholds=Thresholds(tolerance_kj_mol=0.8))
+    paths = write_comparison(cmp, str(tmp_path))
+    table = pd.read_csv(paths[0])
+    assert {"rmse_kj_mol", "max_abs_difference_kj_mol", "js_divergence_bits", "verdict"} <= set(table.columns)
+    details = json.load(open(paths[2]))
+    assert details["thresholds"]["tolerance_kj_mol"] == 0.8 and details["scan"]["kind"] == "relaxed"
+    prof = pd.read_csv(paths[1])
+    assert prof.loc[~prof["sampled"], "free_energy_kj_mol"].isna().all()
+
+
+def test_compare_command(butane, tmp_path, capsys):
+    # common practice: thin command line; units mandatory; one type needs no --type
+    from dihedra.cli import main
+    res, _ = butane
+    plain = scan_csv(tmp_path / "plain.csv", "phi,E", rb_energy(GRID), 4.184)
+    assert main(["compare", res.folder, "--scan", plain]) == 2
+    assert "unit is unknown" in capsys.readouterr().err
+    assert main(["compare", res.folder, "--scan", plain, "--angle-unit", "deg", "--energy-unit", "kcal/mol"]) == 0
+    out = capsys.readouterr().out
+    assert "CONSISTENT" in out and "one-dimensional" in out and "environment" in out
+    assert os.path.exists(os.path.join(res.folder, "comparison.json"))
+    assert main(["compare", res.folder, "--scan", plain, "--angle-unit", "deg", "--energy-unit", "kcal/mol",
+                 "--type", "XYZ:nothing"]) == 2
+
+
+def test_types_must_be_named_when_several():
+    # common practice: a scan describes one torsion type; with several, the user names it
+    class Fake:
+        class torsion_set:
+            types = ["A:x", "B:y"]
+    with pytest.raises(DihedraError, match="--type"):
+        from dihedra.compare import select_types
+        select_types(Fake, None)
