@@ -1,16 +1,16 @@
 """The trajectory pass: one streaming sweep that turns frames into torsion states.
 
 :class:`TorsionPass` is an MDAnalysis :class:`~MDAnalysis.analysis.base.AnalysisBase` subclass.
-For each frame it makes one vectorised call for all torsions (angles with the minimum image,
-:func:`dihedra.angles.torsion_angles_deg`), assigns state codes with the scheme, and adds the
-frame to running sums:
+For each frame it computes all torsion angles at once (:class:`dihedra.angles.TorsionGeometry`,
+minimum image, float32), assigns state codes with the scheme, adds the angles to a fine histogram
+and appends the codes to a chunk buffer. Results:
 
 ``results.state_counts`` : ndarray, shape (n_state_blocks, n_torsions, n_states)
     (weighted) number of frames per block, torsion and state; blocks are equal slices of the
     analysed frames, fixed by frame position, so serial and parallel runs fill the same cells.
 ``results.histograms`` : ndarray, shape (n_hist_blocks, n_torsions, n_bins)
     (weighted) fine periodic angle histogram per block, bins of ``bin_width_deg`` on (-180, 180],
-    each bin open at its left edge and closed at its right.
+    each bin open at its left edge and closed at its right (int32 counts, float64 when weighted).
 ``results.block_frames`` / ``results.hist_block_frames`` : ndarray (n_blocks,)
     frames per block; ``results.block_weights`` / ``results.hist_block_weights`` the weight sums.
 ``results.undefined`` : ndarray (n_torsions,)
@@ -19,29 +19,60 @@ frame to running sums:
 ``results.conformer_counts`` : ndarray (n_rows, 4) int64 and ``results.conformer_weights``
     rows (block, group, joint_code, frames) of the joint states of each conformer group.
 ``results.parts`` : list of str
-    Parquet files holding the state time series (and angles with ``keep_angles``), written in row
-    groups of ``chunk_frames`` frames, one file per worker.
+    Chunk files of the state time series (and angles with ``keep_angles``) in ``parts_dir``,
+    which :func:`dihedra.resultsdir.merge_parts` turns into ``states.parquet``.
 
-Memory does not grow with the number of frames: only the chunk buffer and the block sums live in
-memory. Partial results of parallel workers merge by exact sums (``ResultsGroup.ndarray_sum``),
-so the multiprocessing and dask backends give the same integers as a serial run.
+Per frame
+---------
+The state of an angle is looked up from its fine bin: a bin (lo, hi] that no state boundary cuts
+has one state for all its angles, so ``code = table[bin]``; the few bins that hold a boundary are
+marked and their angles go through :meth:`StateScheme.assign <dihedra.schemes.StateScheme.assign>`,
+so the codes are exactly those of the scheme. The bin index is computed in float64 from the
+float32 angle, ``k = ceil((angle + 180) / width)``, exact for the documented open-left bins. The
+histogram of the current block is one dense array updated in place; a finished block is kept as
+its non-empty cells only, so a worker holds one dense block however many blocks it fills.
+
+Per chunk
+---------
+State counts per block and the conformer rows are computed from the chunk buffer of codes, with a
+few vectorised calls per state and per group size, instead of per frame. The chunk is written as
+a raw array file (one row per torsion) into ``parts_dir``; the parent process converts the chunk
+files, in frame order, into one Parquet file with row groups of ``chunk_frames`` frames, the same
+for any number of workers. Workers therefore never encode Parquet, and memory stays bounded by
+one chunk buffer and the block sums, whatever the number of frames.
+
+Parallel runs
+-------------
+Partial results of workers merge by exact sums (``ResultsGroup``), so the multiprocessing, dask
+and distributed (:mod:`dihedra.distributed`) backends give the same integers as a serial run.
 """
 
 from __future__ import annotations
 
+import json
 import os
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.parquet as pq
 from MDAnalysis.analysis.base import AnalysisBase
 from MDAnalysis.analysis.results import ResultsGroup
 
-from .angles import radians_to_convention_deg, usable_box
+from .angles import TorsionGeometry
 from .schemes import UNDEFINED
 
 #: Groups with more torsions than this get no conformer statistics (their joint states explode).
 MAX_CONFORMER_TORSIONS = 12
+
+#: Default size of a chunk (and of a Parquet row group) of the time series, in bytes of values.
+CHUNK_BYTES = 64 << 20
+
+#: Name of the file in ``parts_dir`` that describes the chunk files (labels, weights, row groups).
+LAYOUT_FILE = "layout.json"
+
+#: Marks a fine bin that a state boundary cuts (its angles are assigned one by one).
+_MIXED = np.int8(-128)
+
+#: Temporary arrays of the chunk reductions stay below this many bytes.
+_WORK_BYTES = 8 << 20
 
 
 def conformer_layout(torsion_set, n_states, max_torsions=MAX_CONFORMER_TORSIONS):
@@ -71,6 +102,41 @@ def conformer_layout(torsion_set, n_states, max_torsions=MAX_CONFORMER_TORSIONS)
     return groups, members, skipped
 
 
+def bin_state_table(scheme, n_bins):
+    """State code of every fine bin, or a mark for bins that a state boundary cuts.
+
+    Parameters
+    ----------
+    scheme : StateScheme
+    n_bins : int
+        Bins of width 360 / n_bins on (-180, 180], open at the left edge.
+
+    Returns
+    -------
+    ndarray of int8, shape (n_bins + 1,)
+        Entry ``k`` (1..n_bins) belongs to bin ``k - 1``, the bin (-180 + (k-1) w, -180 + k w];
+        ``ceil((angle + 180) / w)`` indexes it directly. Entry 0 is never used.
+
+    Examples
+    --------
+    >>> from dihedra.schemes import get_scheme
+    >>> t = bin_state_table(get_scheme("anti-gauche"), 360)
+    >>> int(t[60]), int(t[59]), int(t[300]), int(t[301])  # bins (-121,-120], (-122,-121], (119,120], (120,121]
+    (-128, 0, 1, 0)
+    """
+    width = 360.0 / n_bins
+    lo = -180.0 + width * np.arange(n_bins)
+    hi = lo + width
+    probes = np.stack([lo + width * f for f in (1e-6, 0.25, 0.5, 0.75, 1.0 - 1e-6)] + [hi], axis=1)
+    codes = scheme.assign(probes.reshape(-1)).reshape(probes.shape)
+    pure = np.all(codes == codes[:, :1], axis=1)
+    for b in scheme.boundaries_deg:
+        pure &= ~((lo < b) & (b < hi))
+    table = np.full(n_bins + 1, _MIXED, dtype=np.int8)
+    table[1:] = np.where(pure, codes[:, -1], _MIXED)
+    return table
+
+
 class TorsionPass(AnalysisBase):
     """Stream a trajectory once and accumulate torsion states, histograms and block sums.
 
@@ -88,15 +154,17 @@ class TorsionPass(AnalysisBase):
     weights : ndarray, optional
         One weight per analysed frame (in order), for reweighting biased runs.
     parts_dir : str, optional
-        Folder for the Parquet time series; ``None`` writes no time series.
+        Folder for the chunk files of the time series; ``None`` writes no time series. With a
+        distributed scheduler it must be on a file system that the workers and the calling
+        process share.
     keep_angles : bool
         Also write the angles (float32 degrees).
     chunk_frames : int, optional
-        Frames per Parquet row group (default: about 16 MB of states per chunk).
+        Frames per chunk and per Parquet row group (default: about 64 MB of values per chunk).
     replica : int
         Replica number written with every frame.
-    time_offset_ps, dt_ps : float, optional
-        ``dt_ps`` replaces the trajectory's time step: time = time_offset_ps + frame * dt_ps.
+    dt_ps : float, optional
+        Replaces the trajectory's time step: time = frame * dt_ps.
 
     Examples
     --------
@@ -135,8 +203,9 @@ class TorsionPass(AnalysisBase):
     def _get_aggregator(self):
         s = ResultsGroup.ndarray_sum
         return ResultsGroup(lookup={
-            "state_counts": s, "histograms": s, "block_frames": s, "block_weights": s,
+            "state_counts": s, "block_frames": s, "block_weights": s,
             "hist_block_frames": s, "hist_block_weights": s, "undefined": s,
+            "hist_parts": ResultsGroup.flatten_sequence,
             "conformer_counts": ResultsGroup.ndarray_vstack,
             "conformer_weights": ResultsGroup.ndarray_hstack,
             "parts": ResultsGroup.flatten_sequence,
@@ -148,8 +217,9 @@ class TorsionPass(AnalysisBase):
         self._global_index = np.asarray(indexed_frames[:, 0], dtype=np.int64)
         super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
         self._flush()
-        self._close()
-        self._compact_conformers()
+        self._retire_hist_block()
+        self._retire_conformer_block()
+        self._finish_worker()
         return self
 
     # -- AnalysisBase template -----------------------------------------------------------------
@@ -164,169 +234,289 @@ class TorsionPass(AnalysisBase):
             self._n_total = self.n_frames
             self._global_index = np.arange(self.n_frames)
         weighted = self.weights is not None
-        count_dtype = np.float64 if weighted else np.int64
-        hist_dtype = np.float64 if weighted else np.int32
-        self.results.state_counts = np.zeros((self.n_state_blocks, n_t, n_s), dtype=count_dtype)
-        self.results.histograms = np.zeros((self.n_hist_blocks, n_t, n_bins), dtype=hist_dtype)
-        self.results.block_frames = np.zeros(self.n_state_blocks, dtype=np.int64)
-        self.results.block_weights = np.zeros(self.n_state_blocks, dtype=np.float64)
-        self.results.hist_block_frames = np.zeros(self.n_hist_blocks, dtype=np.int64)
-        self.results.hist_block_weights = np.zeros(self.n_hist_blocks, dtype=np.float64)
-        self.results.undefined = np.zeros(n_t, dtype=np.int64)
-        self.results.conformer_counts = np.empty((0, 4), dtype=np.int64)
-        self.results.conformer_weights = np.empty(0, dtype=np.float64)
-        self.results.parts = []
-        idx = self.torsion_set.indices
-        self._a, self._b, self._c, self._d = (np.ascontiguousarray(idx[:, k]) for k in range(4))
-        self._flat_state = np.arange(n_t, dtype=np.int64) * n_s
-        self._flat_hist = np.arange(n_t, dtype=np.int64) * n_bins
-        self._rad = np.empty(n_t, dtype=np.float64)
-        # conformer groups: joint code = sum code_k * n_states**k along the chain
-        groups, members, _ = conformer_layout(self.torsion_set, n_s)
-        self._conf_members = members
-        self._conf_pow = [n_s ** np.arange(len(m), dtype=np.int64) for m in members]
-        # chunk buffers
+        self._count_dtype = np.float64 if weighted else np.int64
+        self._hist_dtype = np.float64 if weighted else np.int32
+        res = self.results
+        res.state_counts = np.zeros((self.n_state_blocks, n_t, n_s), dtype=self._count_dtype)
+        res.block_frames = np.zeros(self.n_state_blocks, dtype=np.int64)
+        res.block_weights = np.zeros(self.n_state_blocks, dtype=np.float64)
+        res.hist_block_frames = np.zeros(self.n_hist_blocks, dtype=np.int64)
+        res.hist_block_weights = np.zeros(self.n_hist_blocks, dtype=np.float64)
+        res.undefined = np.zeros(n_t, dtype=np.int64)
+        res.hist_parts = []
+        res.conformer_counts = np.empty((0, 4), dtype=np.int64)
+        res.conformer_weights = np.empty(0, dtype=np.float64)
+        res.parts = []
+        # per-frame work: geometry plan, bin -> state table, preallocated buffers
+        self._geometry = TorsionGeometry(self.torsion_set.indices)
+        self._bin_table = bin_state_table(self.scheme, n_bins)
+        self._has_mixed = bool((self._bin_table[1:] == _MIXED).any())
+        self._hist_base = np.arange(n_t, dtype=np.intp) * n_bins - 1   # + k (1..n_bins) = flat cell
+        self._deg64 = np.empty(n_t, dtype=np.float64)
+        self._nan = np.empty(n_t, dtype=bool)
+        self._k = np.empty(n_t, dtype=np.intp)
+        self._cell = np.empty(n_t, dtype=np.intp)
+        self._hist_cur = None
+        self._hist_cur_block = -1
+        # conformer groups of equal size are counted together
+        _, members, _ = conformer_layout(self.torsion_set, n_s)
+        self._conf_classes = _conformer_classes(members, n_s)
+        self._conf_cur_block = -1
+        self._conf_cur = {}
+        self._conf_rows, self._conf_wts = [], []
+        # chunk buffers, at most as many rows as this worker has frames
         if self.chunk_frames is None:
-            self.chunk_frames = int(max(64, min(10000, (16 << 20) // max(1, n_t))))
-        cf = int(self.chunk_frames)
+            per_frame = max(1, n_t) * (1 + 4 * self.keep_angles)
+            self.chunk_frames = int(max(64, min(100_000, CHUNK_BYTES // per_frame)))
+        cf = int(max(1, min(int(self.chunk_frames), self.n_frames)))
         self._buf_codes = np.empty((cf, n_t), dtype=np.int8)
         self._buf_angles = np.empty((cf, n_t), dtype=np.float32) if self.keep_angles else None
         self._buf_frame = np.empty(cf, dtype=np.int64)
         self._buf_time = np.empty(cf, dtype=np.float64)
-        self._buf_block = np.empty(cf, dtype=np.int64)
-        self._buf_weight = np.empty(cf, dtype=np.float64)
+        self._buf_index = np.empty(cf, dtype=np.int64)
         self._n_buf = 0
-        self._writers = None
-        self._conf_parts = []
 
     def _single_frame(self):
         ts = self._ts
         gi = int(self._global_index[self._frame_index])
-        n_total = max(1, self._n_total)
-        sb = gi * self.n_state_blocks // n_total
-        hb = gi * self.n_hist_blocks // n_total
+        hb = gi * self.n_hist_blocks // max(1, self._n_total)
+        if hb != self._hist_cur_block:
+            self._retire_hist_block()
+            self._start_hist_block(hb)
         w = 1 if self.weights is None else float(self.weights[gi])
-        from MDAnalysis.lib.distances import calc_dihedrals
-        pos = ts.positions
-        calc_dihedrals(pos[self._a], pos[self._b], pos[self._c], pos[self._d],
-                       box=usable_box(ts.dimensions), result=self._rad)
-        deg = radians_to_convention_deg(self._rad)
-        codes = self.scheme.assign(deg)
-        valid = codes != UNDEFINED
-        res = self.results
-        if valid.all():
-            bins = np.ceil((deg + 180.0) / self.bin_width_deg).astype(np.int64) - 1
-            np.clip(bins, 0, self._n_bins - 1, out=bins)
-            res.state_counts[sb].reshape(-1)[self._flat_state + codes] += w
-            res.histograms[hb].reshape(-1)[self._flat_hist + bins] += w
-        else:
-            res.undefined += ~valid
-            d = np.where(valid, deg, 0.0)
-            bins = np.ceil((d + 180.0) / self.bin_width_deg).astype(np.int64) - 1
-            np.clip(bins, 0, self._n_bins - 1, out=bins)
-            res.state_counts[sb].reshape(-1)[(self._flat_state + codes)[valid]] += w
-            res.histograms[hb].reshape(-1)[(self._flat_hist + bins)[valid]] += w
-        res.block_frames[sb] += 1
-        res.block_weights[sb] += w
-        res.hist_block_frames[hb] += 1
-        res.hist_block_weights[hb] += w
+        deg = self._geometry(ts.positions, ts.dimensions)
         row = self._n_buf
-        self._buf_codes[row] = codes
+        codes = self._buf_codes[row]
+        d, k, cell = self._deg64, self._k, self._cell
+        np.copyto(d, deg)
+        nan = np.isnan(d, out=self._nan)
+        undefined = nan.any()
+        if undefined:
+            d[nan] = 0.0
+        d += 180.0
+        d /= self.bin_width_deg
+        np.ceil(d, out=d)
+        np.copyto(k, d, casting="unsafe")     # 1..n_bins: bin k-1
+        np.take(self._bin_table, k, out=codes)
+        if self._has_mixed:
+            mixed = codes == _MIXED
+            if mixed.any():
+                codes[mixed] = self.scheme.assign(deg[mixed].astype(np.float64))
+        np.add(self._hist_base, k, out=cell)
+        if undefined:
+            codes[nan] = UNDEFINED
+            self.results.undefined += nan
+            self._hist_cur[cell[~nan]] += w
+        else:
+            self._hist_cur[cell] += w
         if self._buf_angles is not None:
             self._buf_angles[row] = deg
         self._buf_frame[row] = ts.frame
         self._buf_time[row] = ts.time if self.dt_ps is None else ts.frame * float(self.dt_ps)
-        self._buf_block[row] = sb
-        self._buf_weight[row] = w
-        self._n_buf += 1
+        self._buf_index[row] = gi
+        self._n_buf = row + 1
         if self._n_buf == len(self._buf_codes):
             self._flush()
 
     def _conclude(self):
-        pass
+        # dense histograms from the non-empty cells of every block (of every worker)
+        res = self.results
+        parts = res.pop("hist_parts", None)
+        if parts is None:
+            return
+        n_t = len(self.torsion_set)
+        dtype = np.float64 if self.weights is not None else np.int32
+        hist = np.zeros((self.n_hist_blocks, n_t, int(round(360.0 / self.bin_width_deg))), dtype=dtype)
+        while parts:
+            block, cells, values = parts.pop()
+            hist[block].reshape(-1)[cells] += values
+        res.histograms = hist
 
-    # -- chunked output ----------------------------------------------------------------------
+    # -- histogram blocks ------------------------------------------------------------------------
+    def _start_hist_block(self, block):
+        size = len(self.torsion_set) * self._n_bins
+        if self._hist_cur is None:
+            self._hist_cur = np.zeros(size, dtype=self._hist_dtype)
+        else:
+            self._hist_cur.fill(0)
+        self._hist_cur_block = block
+
+    def _retire_hist_block(self):
+        if self._hist_cur_block < 0:
+            return
+        cells = np.flatnonzero(self._hist_cur)
+        self.results.hist_parts.append((self._hist_cur_block, cells.astype(np.int64),
+                                        self._hist_cur[cells].copy()))
+        self._hist_cur_block = -1
+
+    # -- chunk work --------------------------------------------------------------------------------
     def _flush(self):
         n = getattr(self, "_n_buf", 0)
         if n == 0:
             return
         codes = self._buf_codes[:n]
-        self._count_conformers(codes, self._buf_block[:n], self._buf_weight[:n])
+        gi = self._buf_index[:n]
+        total = max(1, self._n_total)
+        sblock = gi * self.n_state_blocks // total
+        hblock = gi * self.n_hist_blocks // total
+        w = (np.ones(n) if self.weights is None else self.weights[gi])
+        res = self.results
+        np.add.at(res.block_frames, sblock, 1)
+        np.add.at(res.block_weights, sblock, w)
+        np.add.at(res.hist_block_frames, hblock, 1)
+        np.add.at(res.hist_block_weights, hblock, w)
+        # frames come in order: split the chunk where the state block changes
+        cuts = np.flatnonzero(np.diff(sblock)) + 1
+        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, n]):
+            b = int(sblock[lo])
+            self._count_states(codes[lo:hi], None if self.weights is None else w[lo:hi], b)
+            self._count_conformers(codes[lo:hi], w[lo:hi], b)
         if self.parts_dir is not None:
             self._write_chunk(n)
         self._n_buf = 0
 
-    def _count_conformers(self, codes, blocks, weights):
-        if not self._conf_members:
+    def _count_states(self, codes, weights, block):
+        counts = self.results.state_counts[block]
+        n, n_t = codes.shape
+        step = max(1, _WORK_BYTES // (8 * max(1, n_t)))
+        for lo in range(0, n, step):
+            sub = codes[lo:lo + step]
+            for s in range(self.scheme.n_states):
+                hit = sub == s
+                if weights is None:
+                    counts[:, s] += np.count_nonzero(hit, axis=0)
+                else:
+                    counts[:, s] += weights[lo:lo + step] @ hit.astype(np.float64)
+
+    def _count_conformers(self, codes, weights, block):
+        if not self._conf_classes:
             return
-        n_s = self.scheme.n_states
-        rows, wts = [], []
-        for g, (members, powers) in enumerate(zip(self._conf_members, self._conf_pow)):
-            sub = codes[:, members].astype(np.int64)
-            joint = sub @ powers
-            ok = (sub >= 0).all(axis=1)
-            if not ok.all():
-                joint, b, w = joint[ok], blocks[ok], weights[ok]
+        if block != self._conf_cur_block:
+            self._retire_conformer_block()
+            self._conf_cur_block = block
+        n = len(codes)
+        for key, (gids, members, powers, size) in self._conf_classes.items():
+            n_g, width = members.shape
+            step = max(1, _WORK_BYTES // (8 * n_g * width))
+            for lo in range(0, n, step):
+                sub = codes[lo:lo + step][:, members]                 # (f, n_g, width)
+                ok = (sub >= 0).all(axis=2)
+                joint = sub.astype(np.int64) @ powers                 # (f, n_g)
+                cell = joint + (np.arange(n_g, dtype=np.int64) * size)[None, :]
+                cell, wsub = cell[ok], np.broadcast_to(weights[lo:lo + step, None], ok.shape)[ok]
+                self._conf_add(key, cell, wsub, n_g * size)
+
+    def _conf_add(self, key, cell, weights, n_cells):
+        cur = self._conf_cur.get(key)
+        if n_cells <= (4 << 20):  # dense counts for the current block
+            if cur is None:
+                cur = (np.zeros(n_cells, dtype=np.int64), np.zeros(n_cells, dtype=np.float64))
+                self._conf_cur[key] = cur
+            np.add(cur[0], np.bincount(cell, minlength=n_cells), out=cur[0])
+            np.add(cur[1], np.bincount(cell, weights=weights, minlength=n_cells), out=cur[1])
+        else:  # sparse: merge sorted unique cells
+            cells, inv = np.unique(cell, return_inverse=True)
+            cnt = np.bincount(inv, minlength=len(cells))
+            wts = np.bincount(inv, weights=weights, minlength=len(cells))
+            if cur is not None:
+                cells = np.concatenate([cur[0], cells])
+                cells, inv = np.unique(cells, return_inverse=True)
+                cnt = np.bincount(inv, weights=np.concatenate([cur[1], cnt]), minlength=len(cells))
+                wts = np.bincount(inv, weights=np.concatenate([cur[2], wts]), minlength=len(cells))
+            self._conf_cur[key] = (cells, cnt.astype(np.int64), wts)
+
+    def _retire_conformer_block(self):
+        if self._conf_cur_block < 0:
+            return
+        for key, cur in self._conf_cur.items():
+            gids, _, _, size = self._conf_classes[key]
+            if len(cur) == 2:
+                cells = np.flatnonzero(cur[0])
+                cnt, wts = cur[0][cells], cur[1][cells]
             else:
-                b, w = blocks, weights
-            key = b * (n_s ** len(members)) + joint
-            uniq, inv = np.unique(key, return_inverse=True)
-            cnt = np.bincount(inv)
-            wsum = np.bincount(inv, weights=w)
-            size = n_s ** len(members)
-            rows.append(np.column_stack([uniq // size, np.full(len(uniq), g), uniq % size, cnt]))
-            wts.append(wsum)
-        self._conf_parts.append((np.vstack(rows), np.concatenate(wts)))
+                cells, cnt, wts = cur
+            rows = np.column_stack([np.full(len(cells), self._conf_cur_block, dtype=np.int64),
+                                    gids[cells // size], cells % size, cnt])
+            self._conf_rows.append(rows)
+            self._conf_wts.append(wts)
+        self._conf_cur = {}
+        self._conf_cur_block = -1
 
-    def _compact_conformers(self):
-        parts = getattr(self, "_conf_parts", [])
-        if not parts:
-            return
-        rows = np.vstack([p[0] for p in parts])
-        wts = np.concatenate([p[1] for p in parts])
-        self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
-        self._conf_parts = []
+    def _finish_worker(self):
+        if self._conf_rows:
+            rows = np.vstack(self._conf_rows)
+            wts = np.concatenate(self._conf_wts)
+            self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
+        self._conf_rows, self._conf_wts = [], []
+        self._hist_cur = None
+        self._buf_codes = self._buf_angles = None
 
-    def _schema(self, value_type):
-        fields = [pa.field("replica", pa.int16()), pa.field("frame", pa.int64()),
-                  pa.field("time_ps", pa.float64())]
-        if self.weights is not None:
-            fields.append(pa.field("weight", pa.float64()))
-        fields += [pa.field(label, value_type) for label in self.torsion_set.labels]
-        return pa.schema(fields)
-
+    # -- chunk files -------------------------------------------------------------------------------
     def _write_chunk(self, n):
-        if self._writers is None:
-            first = int(self._global_index[0]) if len(self._global_index) else 0
-            stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{first:012d}")
-            self._writers = {"states": pq.ParquetWriter(stem + ".states.parquet", self._schema(pa.int8()))}
-            self.results.parts = [stem + ".states.parquet"]
-            if self.keep_angles:
-                self._writers["angles"] = pq.ParquetWriter(stem + ".angles.parquet", self._schema(pa.float32()))
-                self.results.parts.append(stem + ".angles.parquet")
-        head = [pa.array(np.full(n, self.replica, dtype=np.int16)), pa.array(self._buf_frame[:n].copy()),
-                pa.array(self._buf_time[:n].copy())]
+        first = int(self._buf_index[0])
+        stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{first:012d}")
+        if not os.path.exists(os.path.join(self.parts_dir, LAYOUT_FILE)):
+            self._write_layout()
+        index = {"frame": self._buf_frame[:n], "time_ps": self._buf_time[:n]}
         if self.weights is not None:
-            head.append(pa.array(self._buf_weight[:n].copy()))
+            index["weight"] = self.weights[self._buf_index[:n]]
+        paths = [stem + ".index.npz"]
+        np.savez(paths[0], **index)
         for kind, buf in (("states", self._buf_codes), ("angles", self._buf_angles)):
-            if kind not in self._writers:
+            if buf is None:
                 continue
-            block = np.ascontiguousarray(buf[:n].T)  # one contiguous row per torsion
-            cols = head + [pa.array(block[k]) for k in range(block.shape[0])]
-            self._writers[kind].write_table(pa.Table.from_arrays(cols, schema=self._writers[kind].schema))
+            path = f"{stem}.{kind}.npy"
+            np.save(path, _transpose(buf[:n]))   # one contiguous row per torsion
+            paths.append(path)
+        self.results.parts.extend(paths)
 
-    def _close(self):
-        for w in (self._writers or {}).values():
-            w.close()
-        self._writers = None
+    def _write_layout(self):
+        layout = {"labels": list(self.torsion_set.labels), "weighted": self.weights is not None,
+                  "row_group_frames": int(self.chunk_frames), "keep_angles": self.keep_angles}
+        path = os.path.join(self.parts_dir, LAYOUT_FILE)
+        tmp = f"{path}.{os.getpid()}.{id(self)}.tmp"
+        with open(tmp, "w") as fh:
+            json.dump(layout, fh)
+        os.replace(tmp, path)
+
+
+def _transpose(block, tile=1024):
+    """``block.T`` as a contiguous copy, tile by tile (faster than one strided copy)."""
+    n, m = block.shape
+    out = np.empty((m, n), dtype=block.dtype)
+    for lo in range(0, m, tile):
+        out[lo:lo + tile] = block[:, lo:lo + tile].T
+    return out
+
+
+def _conformer_classes(members, n_states):
+    """Groups of equal size, counted together: {size: (group ids, members, powers, n_joint)}."""
+    by_size = {}
+    for g, m in enumerate(members):
+        by_size.setdefault(len(m), []).append(g)
+    classes = {}
+    for width, gids in by_size.items():
+        gids = np.asarray(gids, dtype=np.int64)
+        classes[width] = (gids, np.vstack([members[g] for g in gids]),
+                          n_states ** np.arange(width, dtype=np.int64), n_states ** width)
+    return classes
 
 
 def reduce_conformer_rows(rows, weights):
-    """Sum duplicate (block, group, joint) rows of conformer counts."""
+    """Sum duplicate (block, group, joint) rows of conformer counts.
+
+    Returns the rows sorted by block, group and joint code, with ``frames`` summed, and the
+    summed weights.
+    """
+    rows = np.asarray(rows, dtype=np.int64).reshape(-1, 4)
+    weights = np.asarray(weights, dtype=np.float64)
     if len(rows) == 0:
         return np.empty((0, 4), dtype=np.int64), np.empty(0)
-    keys, inv = np.unique(rows[:, :3], axis=0, return_inverse=True)
-    inv = inv.reshape(-1)
-    counts = np.bincount(inv, weights=rows[:, 3]).astype(np.int64)
-    wsum = np.bincount(inv, weights=weights)
-    return np.column_stack([keys, counts]), wsum
+    order = np.lexsort((rows[:, 2], rows[:, 1], rows[:, 0]))
+    rows, weights = rows[order], weights[order]
+    new = np.ones(len(rows), dtype=bool)
+    new[1:] = np.any(rows[1:, :3] != rows[:-1, :3], axis=1)
+    starts = np.flatnonzero(new)
+    counts = np.add.reduceat(rows[:, 3], starts)
+    wsum = np.add.reduceat(weights, starts)
+    return np.column_stack([rows[starts, :3], counts]), wsum
