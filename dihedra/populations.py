@@ -123,9 +123,12 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     weights = np.asarray(weights, dtype=float)
     group_types = [" | ".join(types[p] for p in m) for m in members]
     type_names = _short_type_names(group_types, resnames, members)
+    order = np.argsort(rows[:, 1], kind="stable")  # rows of one group are then one slice
+    rows, weights = rows[order], weights[order]
+    bounds = np.searchsorted(rows[:, 1], np.arange(len(groups) + 1))
     for g, (name, m) in enumerate(zip(groups, members)):
-        sel = rows[:, 1] == g
-        if not sel.any():
+        sel = slice(bounds[g], bounds[g + 1])
+        if bounds[g] == bounds[g + 1]:
             continue
         codes, inv = np.unique(rows[sel, 2], return_inverse=True)
         table = np.zeros((n_blocks, len(codes)))

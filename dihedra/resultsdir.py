@@ -84,7 +84,12 @@ _PART = re.compile(r"replica(\d+)-from(\d+)\.(states|angles)\.parquet$")
 
 def merge_parts(parts_dir, folder, keep_angles):
     """Concatenate the per-worker Parquet parts into ``states.parquet`` (and ``angles.parquet``),
-    row group by row group, in replica and frame order; memory stays at one row group."""
+    row group by row group, in replica and frame order; memory stays at one row group.
+
+    Chunk files of the trajectory pass (``layout.json`` present) go through :func:`merge_chunks`.
+    """
+    if os.path.exists(os.path.join(parts_dir, "layout.json")):
+        return merge_chunks(parts_dir, folder, keep_angles)
     for kind in ("states", "angles") if keep_angles else ("states",):
         parts = []
         for path in glob.glob(os.path.join(parts_dir, f"*.{kind}.parquet")):
@@ -104,6 +109,68 @@ def merge_parts(parts_dir, folder, keep_angles):
         finally:
             if writer is not None:
                 writer.close()
+
+
+_CHUNK = re.compile(r"replica(\d+)-from(\d+)\.index\.npz$")
+
+
+def merge_chunks(parts_dir, folder, keep_angles):
+    """Write the chunk files of :class:`~dihedra.trackpass.TorsionPass` as ``states.parquet`` (and
+    ``angles.parquet``).
+
+    Each chunk holds ``replica....-from....index.npz`` (frame, time_ps, [weight]) and one raw array
+    per kind, ``.states.npy`` (int8) or ``.angles.npy`` (float32), of shape (n_torsions, n_frames).
+    Chunks are read memory-mapped in replica and frame order and regrouped into row groups of
+    ``row_group_frames`` frames (from ``layout.json``) that never span two replicas, so the file is
+    the same whatever number of workers wrote the chunks; memory stays at about one row group.
+    """
+    import pyarrow as pa
+
+    with open(os.path.join(parts_dir, "layout.json")) as fh:
+        layout = json.load(fh)
+    labels, weighted = layout["labels"], layout["weighted"]
+    target = max(1, int(layout["row_group_frames"]))
+    chunks = []
+    for path in glob.glob(os.path.join(parts_dir, "*.index.npz")):
+        m = _CHUNK.search(os.path.basename(path))
+        chunks.append((int(m.group(1)), int(m.group(2)), path[:-len(".index.npz")]))
+    chunks.sort()
+    for kind, value_type in (("states", pa.int8()), ("angles", pa.float32())):
+        if kind == "angles" and not keep_angles:
+            continue
+        fields = [pa.field("replica", pa.int16()), pa.field("frame", pa.int64()),
+                  pa.field("time_ps", pa.float64())]
+        if weighted:
+            fields.append(pa.field("weight", pa.float64()))
+        schema = pa.schema(fields + [pa.field(label, value_type) for label in labels])
+        writer = pq.ParquetWriter(os.path.join(folder, f"{kind}.parquet"), schema)
+        try:
+            pending, n_pending, replica = [], 0, None
+            for rep, _, stem in chunks:
+                if rep != replica and pending:
+                    writer.write_table(pa.concat_tables(pending), row_group_size=n_pending)
+                    pending, n_pending = [], 0
+                replica = rep
+                with np.load(stem + ".index.npz") as npz:
+                    index = {k: npz[k] for k in npz.files}
+                values = np.load(f"{stem}.{kind}.npy", mmap_mode="r")
+                n = values.shape[1]
+                head = [pa.array(np.full(n, rep, dtype=np.int16)), pa.array(index["frame"]),
+                        pa.array(index["time_ps"])]
+                if weighted:
+                    head.append(pa.array(index["weight"]))
+                table = pa.Table.from_arrays(head + [pa.array(row) for row in values], schema=schema)
+                pending.append(table)
+                n_pending += n
+                while n_pending >= target:
+                    whole = pa.concat_tables(pending)
+                    writer.write_table(whole.slice(0, target), row_group_size=target)
+                    rest = whole.slice(target)
+                    pending, n_pending = ([rest], len(rest)) if len(rest) else ([], 0)
+            if pending:
+                writer.write_table(pa.concat_tables(pending), row_group_size=n_pending)
+        finally:
+            writer.close()
 
 
 def read_table(path, columns=None):
