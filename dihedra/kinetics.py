@@ -126,9 +126,9 @@ CHUNK_VALUES = 4_000_000
 ASSIGNMENTS = ("core", "crisp")
 OUTPUT_FILES = ("transitions.csv", "lifetimes.csv", "timescales.csv", "mfpt.csv", "kinetics.json")
 
-TST_CAUTION = ("transition-state theory (Eyring, kappa = 1) gives an upper bound on the rate: an "
-               "Eyring barrier computed from an observed rate is an upper bound on the activation free "
-               "energy, and the rate predicted from a profile barrier is an upper bound on the true rate.")
+TST_CAUTION = ("transition-state theory gives an upper bound on the rate: the Eyring barrier of an observed "
+               "rate is an upper bound on the activation free energy, and the rate predicted from a profile "
+               "barrier is an upper bound on the true rate.")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -549,7 +549,8 @@ def markov_model(counts, lag_frames):
     Returns
     -------
     dict or None
-        ``active`` (indices of the largest connected set), ``transition_matrix``,
+        ``active`` (indices of the largest strongly connected set, :func:`largest_connected_set`),
+        ``transition_matrix``,
         ``stationary``, ``timescales_frames`` (slowest first) and ``mfpt_frames`` (n_active,
         n_active; NaN when not computed); ``None`` when fewer than two states are connected.
     """
@@ -561,24 +562,48 @@ def markov_model(counts, lag_frames):
         raise DihedraError("the Markov-state analysis needs deeptime; install it with "
                            "pip install \"dihedra[kinetics]\".") from None
     c = np.asarray(counts, dtype=float)
-    if c.sum() == 0 or len(c) < 2:
+    active = largest_connected_set(c)
+    if len(active) < 2:
         return None
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        model = MaximumLikelihoodMSM(reversible=True).fit(
-            TransitionCountModel(c, lagtime=int(lag_frames))).fetch_model()
-    if model is None or model.n_states < 2:
+    sub = c[np.ix_(active, active)]
+    try:
+        with warnings.catch_warnings(), np.errstate(divide="ignore", invalid="ignore"):
+            warnings.simplefilter("ignore")
+            model = MaximumLikelihoodMSM(reversible=True).fit(
+                TransitionCountModel(sub, lagtime=int(lag_frames))).fetch_model()
+            active = active[np.asarray(model.count_model.state_symbols, dtype=np.int64)]
+            t = np.asarray(model.transition_matrix)
+            n = len(active)
+            if n < 2:
+                return None
+            ts = np.asarray(model.timescales(k=min(n - 1, MAX_TIMESCALES)), dtype=float)
+            m = np.full((n, n), np.nan)
+            if n <= MAX_MFPT_STATES:
+                for j in range(n):
+                    m[:, j] = mfpt(t, j, tau=int(lag_frames))
+    except ValueError:  # deeptime refuses degenerate count matrices
         return None
-    active = np.asarray(model.count_model.state_symbols, dtype=np.int64)
-    t = np.asarray(model.transition_matrix)
-    n = len(active)
-    ts = np.asarray(model.timescales(k=min(n - 1, MAX_TIMESCALES)), dtype=float)
-    m = np.full((n, n), np.nan)
-    if n <= MAX_MFPT_STATES:
-        for j in range(n):
-            m[:, j] = mfpt(t, j, tau=int(lag_frames))
+    ts = ts[np.isfinite(ts) & (ts > 0)]
     return {"active": active, "transition_matrix": t, "stationary": np.asarray(model.stationary_distribution),
             "timescales_frames": ts, "mfpt_frames": m}
+
+
+def largest_connected_set(counts):
+    """States of the largest strongly connected set of a count matrix (ties: more counts win).
+
+    Two states are connected when transitions were seen both ways (directly or through other
+    states of the set); the Markov model is estimated on this set only.
+    """
+    from scipy.sparse.csgraph import connected_components
+
+    c = np.asarray(counts, dtype=float)
+    if c.size == 0 or c.sum() == 0:
+        return np.empty(0, dtype=np.int64)
+    _, comp = connected_components(c > 0, directed=True, connection="strong")
+    sizes = np.bincount(comp)
+    weights = np.bincount(comp, weights=c.sum(axis=1))
+    best = max(range(len(sizes)), key=lambda k: (sizes[k], weights[k]))
+    return np.flatnonzero(comp == best)
 
 
 def implied_timescale(eigenvalue, lag):
@@ -1009,6 +1034,10 @@ def kinetics(folder, assignment="core", core_margin_deg=DEFAULT_CORE_MARGIN_DEG,
         g_names, g_short, g_long, g_members = _conformer_groups(result, selected)
     else:
         g_names, g_short, g_long, g_members = [], [], [], []
+    if lags_used and not _have_deeptime():
+        notices.append("deeptime is not installed: no Markov models, implied timescales or mean "
+                       "first-passage times (pip install \"dihedra[kinetics]\").")
+        lags_used = []
     n_s = scheme.n_states
     powers = [n_s ** np.arange(len(m), dtype=np.int64) for m in g_members]
     t_tally = StateTally(len(selected), lags_used)
@@ -1110,6 +1139,12 @@ def kinetics(folder, assignment="core", core_margin_deg=DEFAULT_CORE_MARGIN_DEG,
     if write:
         write_kinetics(out, folder, seconds=time.time() - t0)
     return out
+
+
+def _have_deeptime():
+    import importlib.util
+
+    return importlib.util.find_spec("deeptime") is not None
 
 
 def _temperature(temperature_k, summary):

@@ -91,7 +91,7 @@ def report_kinetics(res, max_types=6, max_conformer_rows=5):
         if len(names) > max_types:
             print(f"\n... and {len(names) - max_types} more (see lifetimes.csv)")
     if temp is not None:
-        print(f"\nEyring barriers at {temp:g} K (kappa = 1): {TST_CAUTION}")
+        print(f"\nEyring barriers at {temp:g} K with kappa = 1. Caution: {TST_CAUTION}")
     print_notices(res.notices)
     if res.folder:
         print(f"written to {res.folder}: transitions.csv, lifetimes.csv, timescales.csv, mfpt.csv, kinetics.json")
