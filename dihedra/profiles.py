@@ -889,10 +889,11 @@ def pair_profiles(result, a, b, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN_WI
     from .resultsdir import iter_table
 
     kt = kt_kj_mol(temperature_k)
-    path = os.path.join(result.folder or "", "angles.parquet") if result.folder else None
-    if path is None or not os.path.exists(path):
+    try:
+        path = result._path("angles")
+    except DihedraError:
         raise DihedraError(f"2-D profiles need the angle time series, and {result.folder or 'this result'} "
-                           "has no angles.parquet; rerun 'dihedra track ... --keep-angles'.")
+                           "has no angles.parquet; rerun 'dihedra track ... --keep-angles'.") from None
     factor = check_bin_width(bin_width_deg, 1.0, "2-D bin width")
     nb = 360 // factor
     pairs = _resolve_pairs(result, a, b)
