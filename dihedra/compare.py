@@ -339,7 +339,7 @@ def compare_with_scan(result, scan, temperature_k=None, types=None, bin_width_de
             pe = float(pops.loc[(t, label), "population_err"]) if (t, label) in pops.index else np.nan
             z = (p - pred_pops[k]) / pe if pe and np.isfinite(pe) and pe > 0 else np.nan
             with np.errstate(divide="ignore", invalid="ignore"):
-                dg_pred = float(-kt * np.log(pred_pops[k] / pred_pops[ref_k]))
+                dg_pred = float(-kt * np.log(pred_pops[k] / pred_pops[ref_k])) + 0.0
             dg_s = dg.get(label, {}).get("free_energy_kj_mol", np.nan)
             dg_e = dg.get(label, {}).get("free_energy_err_kj_mol", np.nan)
             ddg = dg_s - dg_pred if np.isfinite(dg_s) and np.isfinite(dg_pred) else np.nan
