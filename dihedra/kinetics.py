@@ -606,11 +606,6 @@ def largest_connected_set(counts):
     return np.flatnonzero(comp == best)
 
 
-def implied_timescale(eigenvalue, lag):
-    """``-lag / ln|eigenvalue|`` (in the units of ``lag``)."""
-    return -float(lag) / np.log(np.abs(eigenvalue))
-
-
 def eyring_rate_per_s(barrier_kj_mol, temperature_k, kappa=1.0):
     """Eyring rate ``kappa (k_B T / h) exp(-dG / RT)`` in 1/s (CODATA 2018 constants).
 
@@ -673,15 +668,11 @@ def _split_by_series(rows, counts, series_index, n_subjects):
 
 
 def _subject_tables(subjects, tally, dt_ps, n_bootstrap, rng, n_replicas):
-    """Tables for a list of subjects that each own a set of series of ``tally``.
-
-    Subjects own disjoint series within one call, or each subject owns exactly one series.
-    """
+    """Table rows (dicts) for subjects that each own a disjoint set of the series of ``tally``."""
     out = {"transitions": [], "lifetimes": [], "timescales": [], "mfpt": []}
     if not subjects:
         return out
     n_series = tally.n_series
-    # one call per partition of the series (subjects sharing series are split into passes)
     owner = np.full(n_series, -1, dtype=np.int64)
     for k, s in enumerate(subjects):
         owner[s.series] = k
