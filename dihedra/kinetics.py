@@ -76,9 +76,9 @@ turns each rate into a free-energy barrier ``dG = -R T ln(k h / (k_B T))`` (cons
 :mod:`dihedra.units`), shown next to the barrier of the free-energy profile (``barriers.csv``
 written by ``dihedra profile``) when the folder has one. TST counts every crossing of the barrier
 top as a reaction, so it gives an upper bound on the rate: an observed rate below the TST rate of
-the profile barrier is expected (recrossings, friction, a prefactor ``k_B T / h`` that is not the
-torsional attempt frequency), and the Eyring barrier of an observed rate is an upper bound on the
-activation free energy.
+the profile barrier is expected (recrossings, friction). The prefactor ``k_B T / h`` is not the
+torsional attempt frequency either, so the two barriers are a consistency check, not two
+measurements of one quantity.
 
 Example
 -------
@@ -126,9 +126,11 @@ CHUNK_VALUES = 4_000_000
 ASSIGNMENTS = ("core", "crisp")
 OUTPUT_FILES = ("transitions.csv", "lifetimes.csv", "timescales.csv", "mfpt.csv", "kinetics.json")
 
-TST_CAUTION = ("transition-state theory gives an upper bound on the rate: the Eyring barrier of an observed "
-               "rate is an upper bound on the activation free energy, and the rate predicted from a profile "
-               "barrier is an upper bound on the true rate.")
+TST_CAUTION = ("transition-state theory gives an upper bound on the rate (every crossing of the barrier top "
+               "counts, recrossings are ignored), so observed rates below the Eyring rate of the profile "
+               "barrier are expected; and k_B T / h is not the attempt frequency of a torsion, so read the "
+               "Eyring barrier of a rate next to the profile barrier as a consistency check, not as a "
+               "measurement of the barrier.")
 
 
 # ---------------------------------------------------------------------------------------------
