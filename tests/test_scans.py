@@ -178,6 +178,7 @@ def test_united_atom_topology_refused(tmp_path):
         molecule_from_topology(pdb, "0,1,2")
 
 
+@pytest.mark.slow
 def test_gfn2_xtb_ethane_scan():
     # common practice / CHECK-VALUES.md: ethane is staggered at +-60 and 180 (H-C-C-H) with an
     # eclipsed barrier of about 12 kJ/mol (GFN2-xTB is known to land somewhat lower; loose bound)
