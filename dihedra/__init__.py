@@ -19,7 +19,13 @@ def example_path(name=""):
     """Path of a bundled example file (``hexane.pdb``, ``hexane.xtc``, ...) or of the folder."""
     from importlib.resources import files
 
-    return str(files("dihedra.examples").joinpath(name))
+    try:
+        return str(files("dihedra.examples").joinpath(name))
+    except ModuleNotFoundError:  # a source checkout: example_trajectories/ beside the package
+        import os
+
+        root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+        return os.path.join(root, "example_trajectories", name)
 
 
 def track(*args, **kwargs):

@@ -292,28 +292,14 @@ def _note(ax, text, pad_rows=0, colour=NEUTRAL):
     """A short statement of what the figure shows (aggregation, downsampling), as the axes title,
     wrapped to the axes width; ``pad_rows`` legend rows above the axes are left free."""
     if text:
-        ax._dihedra_note = (str(text), pad_rows)
         ax.set_title(_wrap(ax, text, 6.0), fontsize=6.0, color=colour, loc="left",
                      pad=3.0 + 10.5 * pad_rows, linespacing=1.15)
 
 
-def rewrap_notes(fig):
-    """Wrap the notes of every axes of ``fig`` again to the widths the layout actually gave them.
-
-    The plot functions wrap notes to an estimate of the axes width; after constrained layout has
-    placed tick labels and colour bars, this makes the lines fit exactly (called by
-    :func:`figure_set` before saving).
-    """
-    fig.draw_without_rendering()
-    for ax in fig.axes:
-        note = getattr(ax, "_dihedra_note", None)
-        if note:
-            ax._left_title.set_text(_wrap(ax, note[0], 6.0))
-    return fig
-
-
 def _axes_width_pt(ax):
-    return ax.figure.get_figwidth() * 72.0 * ax.get_position().width
+    """Width available to a note or legend above ``ax``: its width before the layout, less the
+    room constrained layout will take for tick labels (an estimate; no drawing needed)."""
+    return ax.figure.get_figwidth() * 72.0 * ax.get_position().width * 0.86
 
 
 def _wrap(ax, text, fontsize):
@@ -505,8 +491,8 @@ class StateRaster:
 def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batch_frames=None):
     """Aggregate ``states.parquet`` for a state raster, reading it in chunks.
 
-    Rows: the given torsions, or all of them; more than ``max_rows`` are thinned to an evenly
-    spaced subset (in the order of ``torsions.csv``, so types stay together). Columns: the frames
+    Rows: the given torsions, or all of them, grouped by type (in the order of ``torsions.csv``
+    within a type); more than ``max_rows`` are thinned to an evenly spaced subset. Columns: the frames
     of each replica cut into at most ``max_columns`` columns in total (in proportion to the replica
     lengths); each cell holds the most frequent state of its frames (ties: the lower code).
 
@@ -525,6 +511,8 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     types = dict(zip(table["torsion"], table["type"]))
     labels = list(torsions) if torsions else all_labels
     _check_columns(path, labels)
+    type_order = {t: k for k, t in enumerate(dict.fromkeys(types[x] for x in labels))}
+    labels = sorted(labels, key=lambda x: type_order[types[x]])  # stable: grouped by type, file order within
     if len(labels) > max_rows:
         pick = np.unique(np.round(np.linspace(0, len(labels) - 1, int(max_rows))).astype(int))
         labels = [labels[k] for k in pick]
@@ -616,7 +604,7 @@ def plot_angle_series(series, scheme, torsion=None, ax=None, show_note=True, leg
         Which torsion of ``series`` (default the first).
     ax : matplotlib Axes, optional
     show_note : bool
-        State the downsampling above the axes.
+        State the downsampling next to the torsion label above the axes.
     legend : bool
         Name the state sectors at the right of the axes.
 
@@ -647,12 +635,9 @@ def plot_angle_series(series, scheme, torsion=None, ax=None, show_note=True, leg
     ax.set_xlim(0, total * scale if total > 0 else 1)
     _angle_axis(ax.set_ylabel, ax.set_yticks, ax.set_ylim)
     ax.set_xlabel(_time_label(unit, series.time_known))
-    ax.text(0.995, 0.03, label, transform=ax.transAxes, ha="right", va="bottom", fontsize=6, color=INK,
-            zorder=4, bbox={"facecolor": "white", "edgecolor": "none", "alpha": 0.8, "pad": 0.8})
     if legend:
         _label_bands(ax, scheme)
-    if show_note:
-        _note(ax, series.description)
+    _note(ax, f"{label} ({series.description})" if show_note else label, colour=INK)
     return ax
 
 
@@ -711,9 +696,10 @@ def plot_state_raster(raster, scheme, ax=None, show_note=True, legend=True):
         ax.set_ylabel("torsion type")
     else:
         ax.set_yticks([])
-        ax.set_ylabel("torsions (rows, in the order of torsions.csv)")
-    for _, a, _ in runs[1:]:
-        ax.axhline(a - 0.5, color="white", lw=0.8)
+        ax.set_ylabel("torsions, grouped by type")
+    if len(runs) <= 16:
+        for _, a, _ in runs[1:]:
+            ax.axhline(a - 0.5, color="white", lw=0.8)
     ax.tick_params(axis="y", length=0)
     for side in ("left", "bottom"):
         ax.spines[side].set_visible(False)
@@ -843,8 +829,8 @@ def plot_profile(profiles, scheme, name, estimate="histogram", scan=None, ax=Non
             frm = _energy_suffix(scol[0])
             if frm == to or "kt" not in (frm, to) or temperature_k is not None:
                 e = _convert_energy(srows[scol[0]].to_numpy(float), frm, to, temperature_k)
-                ax.plot(srows["angle_deg"], e, color=OKABE_ITO["vermillion"], ls=(0, (3.5, 1.5)), lw=1.0, zorder=3)
-                handles.append(Line2D([], [], color=OKABE_ITO["vermillion"], ls=(0, (3.5, 1.5)), lw=1.0,
+                ax.plot(srows["angle_deg"], e, color="black", ls=(0, (3.0, 1.4)), lw=1.1, zorder=3)
+                handles.append(Line2D([], [], color="black", ls=(0, (3.0, 1.4)), lw=1.1,
                                       label="scan (aligned)"))
                 if np.isfinite(f).any():
                     top = max(top, float(np.nanmax(np.where(np.isfinite(f), e, np.nan))))
@@ -1059,8 +1045,9 @@ def plot_free_energy_map(profiles_2d, pair=None, ax=None, level_step=None, max_l
     ticks = [-180, -90, 0, 90, 180]
     ax.set_xticks(ticks)
     ax.set_yticks(ticks)
-    ax.set_xlabel(_wrap(ax, rf"$\varphi$({pair[0]}) / deg", 8.0))
-    ax.set_ylabel(_wrap(ax, rf"$\varphi$({pair[1]}) / deg", 8.0))
+    short = max(len(pair[0]), len(pair[1])) <= 24
+    ax.set_xlabel(rf"$\varphi$({pair[0]}) / deg" if short else r"$\varphi_1$ / deg")
+    ax.set_ylabel(rf"$\varphi$({pair[1]}) / deg" if short else r"$\varphi_2$ / deg")
     for side in ("top", "right"):
         ax.spines[side].set_visible(True)
     if colorbar:
@@ -1070,8 +1057,10 @@ def plot_free_energy_map(profiles_2d, pair=None, ax=None, level_step=None, max_l
         cb.outline.set_linewidth(0.5)
         if cs is not None:
             cb.add_lines(cs)
+        cb.set_ticks(levels[::max(1, int(np.ceil(len(levels) / 6)))])
     unit_text = {"kj_mol": "kJ/mol", "kcal_mol": "kcal/mol", "kt": "kT"}[_energy_suffix(col)]
-    _note(ax, f"contours every {step:g} {unit_text}; light grey: unsampled")
+    names = "" if short else f"$\\varphi_1$: {pair[0]}; $\\varphi_2$: {pair[1]}. "
+    _note(ax, f"{names}Contours every {step:g} {unit_text}; light grey: unsampled")
     return ax
 
 
@@ -1559,7 +1548,7 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
         fig = _figure(w, 0.55 + 1.05 * n)
         axes = fig.subplots(n, 1, sharex=True, squeeze=False)[:, 0]
         for k, (ax, lab) in enumerate(zip(axes, series.torsions)):
-            plot_angle_series(series, scheme, lab, ax=ax, show_note=k == 0, legend=k == 0)
+            plot_angle_series(series, scheme, lab, ax=ax, show_note=k == 0)
             if k < n - 1:
                 ax.set_xlabel("")
         out.items.append(FigureItem("angle_series", f"Angle time series of {n} torsion(s) with the state sectors "
@@ -1660,8 +1649,6 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
                                     "the identity line.", fig, "couplings"))
     else:
         skip("couplings", "no couplings_vs_experiment.csv (run 'dihedra couplings --experimental FILE')")
-    for item in out.items:
-        rewrap_notes(item.figure)
     return out
 
 

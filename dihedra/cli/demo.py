@@ -1,19 +1,23 @@
-"""``dihedra demo``: the whole pipeline on the bundled liquid n-hexane example."""
+"""``dihedra demo``: the whole pipeline on the bundled liquid n-hexane example, driven by demo.toml."""
 
+import json
 import os
 
 from .. import example_path
 from ..errors import OutputExistsError
-from ..tracking import track
+from ..pipeline import RECORD_NAME, load_pipeline, run_pipeline
 from .common import say
-from .track import report_track
+
+#: The analysis file of the demo (in example_trajectories/, shipped as dihedra.examples).
+DEMO_FILE = "demo.toml"
 
 
 def register(sub):
     p = sub.add_parser(
         "demo", help="run the whole pipeline on the bundled liquid n-hexane example",
-        description="Run dihedra on the bundled example (liquid n-hexane, TraPPE-UA, simulated with "
-                    "OpenMM) and write a results folder.")
+        description="Run dihedra on the bundled example (liquid n-hexane, TraPPE-UA, simulated with OpenMM) "
+                    "as described by its analysis file demo.toml: track, profile, comparison with the "
+                    "TraPPE-UA torsion potential, kinetics, figures and an HTML report.")
     p.add_argument("--out", default="dihedra-demo", metavar="DIR",
                    help="results folder (default ./dihedra-demo; a previous demo folder is replaced)")
     p.add_argument("--workers", type=int, default=1, metavar="N", help="worker processes")
@@ -22,23 +26,33 @@ def register(sub):
 
 def run(args):
     out = os.path.abspath(args.out)
-    overwrite = _is_previous_demo(out)
+    overwrite = is_previous_demo(out)
     if os.path.exists(out) and not overwrite:
         raise OutputExistsError(f"{out} exists and is not a previous demo folder; choose another --out.")
-    say("dihedra demo: liquid n-hexane (100 molecules, TraPPE-UA, 298.15 K), 3 C-C-C-C torsions each")
-    result = track(example_path("hexane.pdb"), [example_path("hexane.xtc")], torsions=["rotatable"],
-                   scheme="anti-gauche", out=out, overwrite=overwrite, temperature_k=298.15,
-                   workers=args.workers, log=say)
-    report_track(result)
+    path = example_path(DEMO_FILE)
+    say(f"dihedra demo: liquid n-hexane (100 molecules, TraPPE-UA, 298.15 K), 3 C-C-C-C torsions each; "
+        f"steps from {path}")
+    pipe = load_pipeline(path, out=out, overrides={"track": {"overwrite": overwrite, "workers": args.workers}},
+                         skip_missing=True, log=say)
+    run_pipeline(pipe, log=say)
+    report = os.path.join(out, "report.html")
+    if os.path.exists(report):
+        print(f"report: {report}")
+    else:
+        print(f"results: {out}")
 
 
-def _is_previous_demo(out):
-    import json
-    path = os.path.join(out, "summary.json")
-    if not os.path.exists(path):
-        return False
-    try:
-        with open(path) as fh:
-            return "dihedra_version" in json.load(fh)
-    except (OSError, ValueError):
-        return False
+def is_previous_demo(out):
+    """Whether ``out`` is a folder an earlier ``dihedra demo`` wrote (only those are replaced)."""
+    for name, test in ((RECORD_NAME, lambda d: os.path.basename(str(d.get("analysis_file", ""))) == DEMO_FILE),
+                       ("summary.json", lambda d: any(os.path.basename(str(r.get("trajectory", ""))) == "hexane.xtc"
+                                                      for r in d.get("replicas", [])))):
+        path = os.path.join(out, name)
+        if os.path.exists(path):
+            try:
+                with open(path) as fh:
+                    if test(json.load(fh)):
+                        return True
+            except (OSError, ValueError, AttributeError):
+                pass
+    return False
