@@ -204,7 +204,7 @@ def _frame_indices(universe, start, stop, step, where):
 
 
 def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *, start=None,
-          stop=None, step=None, workers=1, backend=None, keep_angles=False, weights=None, out=None,
+          stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
           bin_width_deg=1.0, chunk_frames=None, progress=None, log=None):
     """Follow torsions through one or more replica trajectories.
@@ -225,6 +225,10 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         Processes per replica; more than one uses ``backend`` (default ``multiprocessing``).
     backend : str or MDAnalysis backend object, optional
         ``serial``, ``multiprocessing``, ``dask`` or a ``BackendBase`` instance.
+    scheduler : str or distributed.Client, optional
+        Address of a running dask.distributed scheduler (``tcp://host:8786``) or a client: the
+        frames of every replica are spread over all its workers (see :mod:`dihedra.distributed`
+        for the shared-file-system requirement); replaces ``workers`` and ``backend``.
     keep_angles : bool
         Also write the angle time series (``angles.parquet``).
     weights : str, optional
@@ -258,6 +262,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         raise DihedraError("give at least one trajectory.")
     staging = prepare_output(out, overwrite) if out is not None else None
     scratch = None
+    own_client = None
     try:
         if staging is None:
             scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
@@ -279,6 +284,12 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         weight_arrays, weight_column = (_weights_per_replica(weights, frames) if weights is not None
                                         else ([None] * len(universes), None))
         n_workers = max(1, int(workers or 1))
+        if scheduler is not None:
+            from .distributed import DistributedBackend, connect
+            client, owned = connect(scheduler)
+            own_client = client if owned else None
+            backend = DistributedBackend(client)
+            say(f"dask scheduler {client.scheduler.address}: {backend.n_workers} worker threads")
         if backend is None:
             backend = "multiprocessing" if n_workers > 1 else "serial"
         if progress is None:
@@ -310,6 +321,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
             start=start, stop=stop, step=step, workers=n_workers,
             backend=backend if isinstance(backend, str) else type(backend).__name__,
+            scheduler=None if scheduler is None else str(backend.client.scheduler.address),
             keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),
             weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
             n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg,
@@ -326,6 +338,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch = None
         return result
     finally:
+        if own_client is not None:
+            own_client.close()
         if staging is not None:
             shutil.rmtree(staging, ignore_errors=True)
         if scratch is not None:

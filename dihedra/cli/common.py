@@ -29,6 +29,9 @@ def add_track_options(parser):
                         help="worker processes (default 1); results equal a serial run")
     parser.add_argument("--backend", default=None, choices=["serial", "multiprocessing", "dask"],
                         help="parallel backend for --workers > 1 (default multiprocessing)")
+    parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                        help="run on a dask.distributed scheduler (e.g. tcp://host:8786): frames are "
+                             "spread over all its workers; they must share the file system")
     parser.add_argument("--keep-angles", action="store_true",
                         help="also write the angle time series (angles.parquet, float32 degrees)")
     parser.add_argument("--weights", metavar="FILE[:COLUMN]", default=None,

@@ -24,7 +24,7 @@ def register(sub):
 def run(args):
     result = track(args.topology, args.trajectories, torsions=args.torsions, scheme=args.scheme,
                    start=args.start, stop=args.stop, step=args.step, workers=args.workers,
-                   backend=args.backend, keep_angles=args.keep_angles, weights=args.weights,
+                   backend=args.backend, scheduler=args.scheduler, keep_angles=args.keep_angles, weights=args.weights,
                    out=args.out, overwrite=args.overwrite, dt_ps=args.dt_ps,
                    temperature_k=args.temperature, log=say)
     report_track(result)

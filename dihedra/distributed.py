@@ -1,0 +1,111 @@
+"""Running the trajectory pass on a dask.distributed cluster.
+
+MDAnalysis splits an analysis into *computation groups* (equal, contiguous slices of the analysed
+frames) and hands them to a backend whose ``apply(func, groups)`` returns one partial analysis
+per group; the partial results are then merged exactly (sums of counts, see
+:mod:`dihedra.trackpass`). MDAnalysis' own ``dask`` backend runs the groups with
+``dask.compute(..., scheduler="processes")`` on the local machine and never uses a
+``distributed.Client``. :class:`DistributedBackend` is a backend object
+(:class:`MDAnalysis.analysis.backends.BackendBase`) whose :meth:`~DistributedBackend.apply` maps
+the groups through a client of an existing scheduler instead, so the frames of a trajectory are
+spread over every worker of the cluster (one group per worker thread). Replicas are analysed one
+after another, each spread over all workers.
+
+Requirements of the cluster
+---------------------------
+* Every worker must read the topology and trajectory files under the same paths as the calling
+  process (the Universe travels to the workers pickled, and re-opens its files there).
+* Every worker must write into the run's scratch folder (beside ``--out``, or the system temporary
+  folder without ``--out``): the workers write the chunks of the time series there and the
+  calling process reads them back. Same machine, or a file system shared by all nodes.
+* The workers need the same dihedra, MDAnalysis and NumPy as the calling process.
+
+Example
+-------
+A scheduler started by a site's job system (``dask scheduler`` and ``dask worker ADDRESS`` on the
+nodes) is used with ``dihedra track ... --scheduler tcp://node01:8786``, or from Python::
+
+    from dihedra import track
+    res = track("top.pdb", ["md.xtc"], scheduler="tcp://node01:8786", out="res")
+"""
+
+from __future__ import annotations
+
+import pickle
+
+from MDAnalysis.analysis.backends import BackendBase
+
+from .errors import DihedraError
+
+INSTALL_HINT = 'install dask.distributed to use a scheduler: pip install "dihedra[cluster]"'
+
+
+def _import_distributed():
+    try:
+        import distributed
+    except ImportError:  # pragma: no cover - depends on the environment
+        raise DihedraError(f"the dask.distributed package is not installed; {INSTALL_HINT}.") from None
+    return distributed
+
+
+def connect(scheduler, timeout_s=30):
+    """A ``distributed.Client`` for ``scheduler`` (an address or an existing client).
+
+    Returns
+    -------
+    client : distributed.Client
+    owned : bool
+        True when the client was opened here (the caller closes it).
+    """
+    distributed = _import_distributed()
+    if isinstance(scheduler, distributed.Client):
+        return scheduler, False
+    address = str(scheduler)
+    try:
+        client = distributed.Client(address, timeout=timeout_s, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise DihedraError(f"cannot reach a dask scheduler at {address!r} ({exc}); start one with "
+                           "'dask scheduler' (and workers with 'dask worker ADDRESS'), and give its "
+                           "address, e.g. tcp://host:8786.") from None
+    return client, True
+
+
+def _run_group(func_bytes, group):
+    # every group gets its own copy of the analysis, also on threads of one worker process
+    return pickle.loads(func_bytes)(group)
+
+
+class DistributedBackend(BackendBase):
+    """MDAnalysis backend that runs computation groups on a dask.distributed cluster.
+
+    Parameters
+    ----------
+    client : distributed.Client
+        Client of the scheduler.
+    n_workers : int, optional
+        Number of computation groups per analysis; default the number of worker threads of the
+        cluster when the backend is made.
+
+    Examples
+    --------
+    >>> from distributed import Client, LocalCluster            # doctest: +SKIP
+    >>> client = Client(LocalCluster(n_workers=2, processes=False))  # doctest: +SKIP
+    >>> TorsionPass(u, tset, scheme).run(backend=DistributedBackend(client),
+    ...                                  unsupported_backend=True)   # doctest: +SKIP
+    """
+
+    def __init__(self, client, n_workers=None):
+        self.client = client
+        if n_workers is None:
+            n_workers = int(sum(client.nthreads().values()))
+        if n_workers < 1:
+            raise DihedraError(f"the dask scheduler at {client.scheduler.address} has no workers; "
+                               "start some with 'dask worker ADDRESS' and run again.")
+        super().__init__(n_workers=int(n_workers))
+
+    def apply(self, func, computations):
+        """Map ``func`` over the computation groups on the cluster, results in group order."""
+        payload = self.client.scatter(pickle.dumps(func), broadcast=True)
+        futures = self.client.map(_run_group, [payload] * len(computations), list(computations),
+                                  pure=False)
+        return self.client.gather(futures)

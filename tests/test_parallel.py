@@ -1,0 +1,234 @@
+"""Serial, multiprocessing, dask and dask.distributed runs of the trajectory pass give identical
+results; the per-frame shortcuts (bin table, chunked counts) agree with direct references; memory
+does not grow with the number of frames."""
+
+import os
+import tracemalloc
+
+import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
+import pytest
+
+from conftest import place_fourth, write_system
+from dihedra.errors import DihedraError
+from dihedra.schemes import get_scheme
+from dihedra.tracking import track
+
+distributed = pytest.importorskip("distributed")
+
+N_MOL = 10           # six-site chains: three torsions each, sharing atoms along the chain
+N_FRAMES = 150
+
+
+def hexane_like(n_frames, n_mol, seed, centre_deg=None, spread_deg=40.0):
+    """Coordinates (n_frames, 6 * n_mol, 3) of six-site chains (NeRF, common practice)."""
+    rng = np.random.default_rng(seed)
+    if centre_deg is None:
+        phi = rng.uniform(-180, 180, size=(n_frames, n_mol, 3))
+    else:
+        phi = centre_deg + rng.normal(scale=spread_deg, size=(n_frames, n_mol, 3))
+    out = np.empty((n_frames, n_mol, 6, 3))
+    th = np.radians(112.0)
+    out[:, :, 0] = [0.0, 0.0, 0.0]
+    out[:, :, 1] = [1.53, 0.0, 0.0]
+    out[:, :, 2] = [1.53 - 1.53 * np.cos(th), 1.53 * np.sin(th), 0.0]
+    for k in range(3):
+        out[:, :, k + 3] = place_fourth(out[:, :, k], out[:, :, k + 1], out[:, :, k + 2], 1.53, 112.0,
+                                        phi[:, :, k])
+    centres = rng.uniform(0, 24.0, size=(n_mol, 3))
+    return (out + centres[None, :, None, :]).reshape(n_frames, 6 * n_mol, 3)
+
+
+@pytest.fixture(scope="module")
+def replicas(tmp_path_factory):
+    """Two replicas of ten six-site chains in a 24 A box, wrapped atom by atom (some molecules
+    split across the boundary), the first with molecule 0 collinear (undefined) in some frames."""
+    folder = tmp_path_factory.mktemp("parallel")
+    box = np.array([24.0, 24.0, 24.0, 90, 90, 90])
+    paths = []
+    for r, centre in enumerate((None, -65.0)):
+        xyz = hexane_like(N_FRAMES, N_MOL, seed=10 + r, centre_deg=centre)
+        if r == 0:  # atoms 0..3 on one line: the first torsion is undefined in these frames
+            xyz[3::7, :4] = np.array([[2.0, 3.0, 4.0], [3.5, 3.0, 4.0], [5.0, 3.0, 4.0], [6.5, 3.0, 4.0]])
+        xyz -= np.floor(xyz / box[:3]) * box[:3]
+        sub = folder / f"r{r}"
+        sub.mkdir()
+        paths.append(write_system(str(sub), xyz, names=("C1", "C2", "C3", "C4", "C5", "C6"),
+                                  resname="HEX", box=box, dt_ps=2.0))
+    top = paths[0][0]
+    weights = folder / "weights.csv"
+    rng = np.random.default_rng(3)
+    pd.DataFrame({"replica": np.repeat([0, 1], N_FRAMES), "frame": np.tile(np.arange(N_FRAMES), 2),
+                  "weight": rng.uniform(0.2, 2.0, 2 * N_FRAMES)}).to_csv(weights, index=False)
+    return top, [p[1] for p in paths], str(weights)
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    """A dask.distributed cluster on loopback: two single-thread workers inside this process."""
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                  protocol="tcp://", host="127.0.0.1", dashboard_address=None) as lc:
+        yield lc
+
+
+# small chunks that do not line up with the 64 state blocks or the 16 histogram blocks
+KW = dict(torsions="rotatable", scheme="klyne-prelog", keep_angles=True, chunk_frames=23)
+
+
+@pytest.fixture(scope="module")
+def serial(replicas):
+    top, trajs, _ = replicas
+    return track(top, trajs, **KW)
+
+
+def assert_same(a, b):
+    assert set(a.blocks) == set(b.blocks)
+    for key in a.blocks:
+        np.testing.assert_array_equal(a.blocks[key], b.blocks[key], err_msg=key)
+    for name in ("populations", "populations_by_replica", "conformers", "conformers_by_type"):
+        pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
+    pd.testing.assert_frame_equal(a.states(), b.states())
+    pd.testing.assert_frame_equal(a.angles(), b.angles())
+    # the same Parquet row groups, whatever the number of workers
+    for kind in ("states", "angles"):
+        fa, fb = (pq.ParquetFile(r._path(kind)) for r in (a, b))
+        assert [fa.metadata.row_group(k).num_rows for k in range(fa.num_row_groups)] == \
+               [fb.metadata.row_group(k).num_rows for k in range(fb.num_row_groups)]
+
+
+@pytest.mark.parametrize("backend", ["multiprocessing", "dask"])
+def test_process_backends_equal_serial(replicas, serial, backend):
+    top, trajs, _ = replicas
+    assert_same(serial, track(top, trajs, workers=2, backend=backend, **KW))
+
+
+def test_distributed_scheduler_equals_serial(replicas, serial, cluster):
+    top, trajs, _ = replicas
+    res = track(top, trajs, scheduler=cluster.scheduler_address, **KW)
+    assert res.summary["parameters"]["backend"] == "DistributedBackend"
+    assert res.summary["parameters"]["scheduler"] == cluster.scheduler_address
+    assert_same(serial, res)
+
+
+def test_distributed_weighted_run_equals_serial(replicas, cluster):
+    top, trajs, weights = replicas
+    kw = dict(KW, weights=weights, keep_angles=False)
+    with distributed.Client(cluster) as client:
+        res = track(top, trajs, scheduler=client, **kw)
+        assert client.status == "running"  # a client given by the caller stays open
+    ref = track(top, trajs, **kw)
+    for key in ref.blocks:
+        if ref.blocks[key].dtype.kind == "f":
+            # weight sums of a block split between workers are added in another order: equal to
+            # rounding (float64), not bit for bit
+            np.testing.assert_allclose(ref.blocks[key], res.blocks[key], rtol=1e-12, err_msg=key)
+        else:
+            np.testing.assert_array_equal(ref.blocks[key], res.blocks[key], err_msg=key)
+    pd.testing.assert_frame_equal(ref.states(), res.states())
+
+
+def test_command_line_scheduler_option(replicas, serial, cluster, tmp_path):
+    from dihedra.cli import main
+    from dihedra.resultsdir import load_results
+
+    top, trajs, _ = replicas
+    out = tmp_path / "res"
+    code = main(["track", top, *trajs, "--torsions", "rotatable", "--scheme", "klyne-prelog",
+                 "--scheduler", cluster.scheduler_address, "--out", str(out)])
+    assert code in (None, 0)
+    res = load_results(out)
+    np.testing.assert_array_equal(res.blocks["histograms"], serial.blocks["histograms"])
+    np.testing.assert_array_equal(res.blocks["state_counts"], serial.blocks["state_counts"])
+    pd.testing.assert_frame_equal(res.states(), serial.states())
+
+
+def test_unreachable_scheduler_is_a_clear_error():
+    from dihedra.distributed import connect
+    with pytest.raises(DihedraError, match="cannot reach a dask scheduler"):
+        connect("tcp://127.0.0.1:9", timeout_s=2)
+
+
+def test_codes_histograms_and_angles_agree_with_references(serial, replicas):
+    from MDAnalysis.lib.distances import calc_dihedrals
+    import MDAnalysis as mda
+
+    top, trajs, _ = replicas
+    scheme = get_scheme("klyne-prelog")
+    states, angles = serial.states(), serial.angles()
+    labels = list(serial.torsion_set.labels)
+    a = angles[labels].to_numpy(dtype=float)
+    s = states[labels].to_numpy()
+    # reference library: MDAnalysis calc_dihedrals (float64) with the box, on replica 0
+    u = mda.Universe(top, trajs[0])
+    idx = serial.torsion_set.indices
+    ref = np.array([np.degrees(calc_dihedrals(*(ts.positions[idx[:, k]] for k in range(4)), box=ts.dimensions))
+                    for ts in u.trajectory])
+    mine = a[states["replica"].to_numpy() == 0]
+    defined = ~np.isnan(ref)
+    assert np.array_equal(defined, ~np.isnan(mine))
+    # atoms 0-3 on a line: torsions 0-1-2-3 and 1-2-3-4 of molecule 0 are undefined in those frames
+    assert (~defined).sum() == 2 * len(range(3, N_FRAMES, 7))
+    diff = (mine[defined] - ref[defined] + 180.0) % 360.0 - 180.0
+    assert np.abs(diff).max() < 1e-3   # float32 arithmetic, XTC coordinates
+    # the bin-table lookup gives exactly the codes of StateScheme.assign on the stored angles
+    expect = np.where(np.isnan(a), -1, scheme.assign(np.nan_to_num(a)))
+    np.testing.assert_array_equal(s, expect)
+    # histogram bins open at the left: numpy's left-closed bins of the negated angles, reversed
+    edges = serial.blocks["bin_edges_deg"]
+    hist = serial.blocks["histograms"].sum(axis=0)
+    for j in range(len(labels)):
+        col = a[:, j][~np.isnan(a[:, j])]
+        np.testing.assert_array_equal(hist[j], np.histogram(-col, bins=edges)[0][::-1])
+    assert serial.blocks["undefined"].sum() == (~defined).sum()
+
+
+def test_conformer_rows_equal_direct_joint_counts(serial):
+    # direct count of the joint states of each chain from states.parquet (no shortcut)
+    states = serial.states()
+    tset = serial.torsion_set
+    n_s = serial.scheme.n_states
+    rows = serial.blocks["conformer_rows"]
+    n_blocks = serial.blocks["state_counts"].shape[0] // 2
+    from dihedra.trackpass import conformer_layout
+    groups, members, _ = conformer_layout(tset, n_s)
+    for g, m in list(enumerate(members))[:3]:
+        codes = states[[tset.labels[p] for p in m]].to_numpy().astype(np.int64)
+        ok = (codes >= 0).all(axis=1)
+        joint = codes @ (n_s ** np.arange(len(m)))
+        pos = np.concatenate([np.arange(N_FRAMES) * 64 // N_FRAMES,
+                              n_blocks + np.arange(N_FRAMES) * 64 // N_FRAMES])
+        expect = pd.Series(1, index=pd.MultiIndex.from_arrays([pos[ok], joint[ok]])).groupby(level=[0, 1]).sum()
+        got = rows[rows[:, 1] == g]
+        got = pd.Series(got[:, 3], index=pd.MultiIndex.from_arrays([got[:, 0], got[:, 2]]))
+        pd.testing.assert_series_equal(got.sort_index(), expect.sort_index(), check_names=False)
+
+
+def test_pass_memory_does_not_grow_with_frames(tmp_path):
+    # traced NumPy/Python allocations of the pass (not the OS view of memory, so it is stable):
+    # with angles in three narrow wells every block fills the same few cells, and four times the
+    # frames must not need more memory than the chunk buffer and the block sums already hold
+    # (MDAnalysis keeps the frame numbers and times, 16 bytes per frame: small against 10 %)
+    import MDAnalysis as mda
+    from dihedra.torsions import select_torsions
+    from dihedra.trackpass import TorsionPass
+
+    xyz = hexane_like(800, 40, seed=4, centre_deg=180.0, spread_deg=0.2)
+    top, traj = write_system(str(tmp_path), xyz, names=("C1", "C2", "C3", "C4", "C5", "C6"),
+                             resname="HEX", box=[60, 60, 60, 90, 90, 90])
+    u = mda.Universe(top, traj)
+    tset = select_torsions(u, "rotatable")
+    peaks = []
+    for stop in (200, 800):
+        parts = tmp_path / f"parts{stop}"
+        parts.mkdir()
+        # coarse bins and few blocks keep the fixed part small, so growth would show
+        tp = TorsionPass(u, tset, get_scheme("anti-gauche"), parts_dir=str(parts), chunk_frames=50,
+                         keep_angles=True, bin_width_deg=30.0, n_state_blocks=4, n_hist_blocks=4)
+        tracemalloc.start()
+        tp.run(stop=stop)
+        peaks.append(tracemalloc.get_traced_memory()[1])
+        tracemalloc.stop()
+        assert tp.results.state_counts.sum() == stop * len(tset)
+        assert len(os.listdir(parts)) == 1 + 3 * (stop // 50)  # layout + index, states, angles per chunk
+    assert peaks[1] <= 1.1 * peaks[0]
