@@ -1,0 +1,354 @@
+"""Benchmark of the trajectory pass against the cost of reading the trajectory (not a test).
+
+Builds (once, cached in ``--data``) a synthetic liquid of united-atom six-site chains, 5000
+chains by default: 30,000 atoms, 15,000 C-C-C-C torsions (``rotatable``), an XTC of 4 N frames
+(N = ``--frames``, default 1000) with atoms wrapped into the box one by one, torsions that hop
+between anti and gauche and a PDB topology with CONECT bonds. Then it runs, each command in a
+fresh process, over the first frame only and over N frames:
+
+(a) bare MDAnalysis iteration reading the coordinates (the I/O floor);
+(b) ``dihedra track`` serial;
+(c) ``dihedra track --workers 2`` (multiprocessing);
+(d) ``dihedra track --scheduler ADDRESS`` on a local dask.distributed cluster of 2 worker
+    processes started beforehand (as a site's job system would);
+
+and prints the marginal cost per frame, ``(T(N) - T(1)) / (N - 1)``, of each as a ratio to that
+of (a), in wall time and in CPU time (user + system of every process involved; on a shared
+machine the CPU ratio of serial runs is the steadier one), with the peak memory (sum of the
+resident set sizes of the command's process tree, and of the cluster workers for (d), polled
+every 20 ms). (b) is also run over 2 N and 4 N frames: its peak memory at 1x, 2x and 4x the frames,
+and the marginal cost from the difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves
+out every cost that depends on the frame count only until the block sums are filled.
+
+Post-processing: ``dihedra track`` over as many copies of the 4 N-frame trajectory (as replicas)
+as make at least ``--post-samples`` (default 10^8) state samples, then ``dihedra profile`` and
+``dihedra kinetics --assignment crisp`` on that folder, timed separately.
+
+Run from the repository root::
+
+    python benchmarks/bench_track.py                 # everything, about 20-30 min on 2 cores
+    python benchmarks/bench_track.py --skip post     # without the post-processing part
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+
+import numpy as np
+
+REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+
+
+# --------------------------------------------------------------------------------------------
+# Synthetic system
+# --------------------------------------------------------------------------------------------
+
+def build_system(folder, n_mol, n_frames, seed=1, log=print):
+    """Write ``bench.pdb`` (CONECT bonds, CRYST1) and ``bench.xtc`` of six-site chains."""
+    import warnings
+
+    import MDAnalysis as mda
+
+    rng = np.random.default_rng(seed)
+    per = 6
+    n_atoms = n_mol * per
+    u = mda.Universe.empty(n_atoms, n_residues=n_mol, atom_resindex=np.repeat(np.arange(n_mol), per),
+                           trajectory=True)
+    u.add_TopologyAttr("name", [f"C{k + 1}" for k in range(per)] * n_mol)
+    u.add_TopologyAttr("type", ["C"] * n_atoms)
+    u.add_TopologyAttr("element", ["C"] * n_atoms)
+    u.add_TopologyAttr("resname", ["HEX"] * n_mol)
+    u.add_TopologyAttr("resid", np.arange(1, n_mol + 1))
+    u.add_TopologyAttr("masses", [15.035, 14.027, 14.027, 14.027, 14.027, 15.035] * n_mol)
+    base = np.arange(n_mol)[:, None] * per
+    bonds = np.stack([base + np.arange(per - 1), base + np.arange(1, per)], axis=-1).reshape(-1, 2)
+    u.add_TopologyAttr("bonds", [tuple(map(int, b)) for b in bonds])
+    # liquid n-hexane density, 0.655 g/cm3
+    side = (n_mol * 86.18 / (0.655 * 6.02214076e23) * 1e24) ** (1 / 3)
+    box = np.array([side, side, side, 90, 90, 90], dtype=np.float32)
+    centres = rng.uniform(0, side, (n_mol, 3))
+    rot, _ = np.linalg.qr(rng.normal(size=(n_mol, 3, 3)))
+    wells = np.array([180.0, 65.0, -65.0])
+    states = rng.choice(wells, size=(n_mol, 3))
+    bond, angle = 1.54, np.radians(114.0)
+
+    def frame():
+        phi = np.radians(states + rng.normal(0, 12.0, states.shape))
+        p = np.zeros((n_mol, per, 3))
+        p[:, 1] = [bond, 0, 0]
+        p[:, 2] = p[:, 1] + [-bond * np.cos(angle), bond * np.sin(angle), 0]
+        for k in range(per - 3):   # natural extension reference frame (common practice)
+            a, b, c = p[:, k], p[:, k + 1], p[:, k + 2]
+            bc = (c - b) / bond
+            n = np.cross(b - a, bc)
+            n /= np.linalg.norm(n, axis=1)[:, None]
+            m = np.cross(n, bc)
+            p[:, k + 3] = (c - bond * np.cos(angle) * bc + bond * np.sin(angle) * (
+                np.cos(phi[:, k])[:, None] * m + np.sin(phi[:, k])[:, None] * n))
+        p -= p.mean(axis=1, keepdims=True)
+        p = np.einsum("mij,maj->mai", rot, p) + centres[:, None, :]
+        return np.mod(p.reshape(-1, 3), side)        # every atom wrapped on its own
+
+    u.atoms.positions = frame()
+    u.dimensions = box
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        u.atoms.write(os.path.join(folder, "bench.pdb"))
+        t0 = time.time()
+        with mda.Writer(os.path.join(folder, "bench.xtc.partial"), n_atoms, format="XTC") as w:
+            for f in range(n_frames):
+                hop = rng.random(states.shape) < 0.02
+                states[hop] = rng.choice(wells, size=int(hop.sum()))
+                centres[:] = np.mod(centres + rng.normal(0, 0.3, centres.shape), side)
+                u.atoms.positions = frame()
+                u.dimensions = box
+                u.trajectory.ts.time = 2.0 * f
+                w.write(u.atoms)
+                if f % 500 == 499:
+                    log(f"  wrote {f + 1}/{n_frames} frames ({time.time() - t0:.0f} s)")
+    os.replace(os.path.join(folder, "bench.xtc.partial"), os.path.join(folder, "bench.xtc"))
+    with open(os.path.join(folder, "bench.json"), "w") as fh:
+        json.dump({"molecules": n_mol, "frames": n_frames, "seed": seed}, fh)
+
+
+def ensure_system(folder, n_mol, n_frames, log=print):
+    meta = os.path.join(folder, "bench.json")
+    if os.path.exists(meta):
+        with open(meta) as fh:
+            have = json.load(fh)
+        if have.get("molecules") == n_mol and have.get("frames") == n_frames:
+            return
+    os.makedirs(folder, exist_ok=True)
+    log(f"building the synthetic system in {folder}: {n_mol} chains, {6 * n_mol} atoms, "
+        f"{3 * n_mol} torsions, {n_frames} frames")
+    build_system(folder, n_mol, n_frames, log=log)
+
+
+# --------------------------------------------------------------------------------------------
+# Measuring a command
+# --------------------------------------------------------------------------------------------
+
+def _children(pid):
+    try:
+        with open(f"/proc/{pid}/task/{pid}/children") as fh:
+            return [int(x) for x in fh.read().split()]
+    except OSError:
+        return []
+
+
+def _tree(pid):
+    out, todo = [], [pid]
+    while todo:
+        p = todo.pop()
+        out.append(p)
+        todo.extend(_children(p))
+    return out
+
+
+def _rss_bytes(pid):
+    try:
+        with open(f"/proc/{pid}/statm") as fh:
+            return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, IndexError, ValueError):
+        return 0
+
+
+def _cpu_seconds(pid):
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            fields = fh.read().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    except (OSError, IndexError, ValueError):
+        return 0.0
+
+
+def measure(cmd, extra_pids=(), env=None):
+    """Run ``cmd``; return wall seconds, CPU seconds (tree + extra processes), peak RSS bytes."""
+    extra_cpu0 = sum(_cpu_seconds(p) for p in extra_pids)
+    before = os.times()
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env, cwd=REPO)
+    peak = [0]
+    done = threading.Event()
+
+    def poll():
+        while not done.is_set():
+            total = sum(_rss_bytes(p) for p in _tree(proc.pid)) + sum(_rss_bytes(p) for p in extra_pids)
+            peak[0] = max(peak[0], total)
+            time.sleep(0.02)
+
+    th = threading.Thread(target=poll, daemon=True)
+    th.start()
+    _, err = proc.communicate()
+    wall = time.perf_counter() - t0
+    done.set()
+    th.join()
+    after = os.times()
+    if proc.returncode != 0:
+        raise RuntimeError(f"command failed ({proc.returncode}): {' '.join(cmd)}\n{err.decode()[-3000:]}")
+    cpu = (after.children_user - before.children_user) + (after.children_system - before.children_system)
+    cpu += sum(_cpu_seconds(p) for p in extra_pids) - extra_cpu0
+    return {"wall_s": wall, "cpu_s": cpu, "peak_rss_mb": peak[0] / 2**20}
+
+
+FLOOR = """
+import sys, warnings
+warnings.simplefilter("ignore")
+import MDAnalysis as mda
+u = mda.Universe(sys.argv[1], sys.argv[2])
+total = 0.0
+for ts in u.trajectory[:int(sys.argv[3])]:
+    total += float(ts.positions[0, 0])
+"""
+
+
+# --------------------------------------------------------------------------------------------
+# Main
+# --------------------------------------------------------------------------------------------
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--data", default=os.path.join(tempfile.gettempdir(), "dihedra-bench"),
+                    help="folder for the synthetic system and the results (kept between runs)")
+    ap.add_argument("--molecules", type=int, default=5000, help="six-site chains (3 torsions each)")
+    ap.add_argument("--frames", type=int, default=1000, help="N: frames of the ratio runs")
+    ap.add_argument("--post-samples", type=float, default=1e8, help="state samples for post-processing")
+    ap.add_argument("--skip", action="append", default=[], choices=["c", "d", "memory", "post"],
+                    help="leave out a part (repeatable)")
+    args = ap.parse_args(argv)
+
+    py = sys.executable
+    # the commands and the dask workers (started from this process) import dihedra from here
+    os.environ["PYTHONPATH"] = REPO + os.pathsep + os.environ.get("PYTHONPATH", "")
+    sys.path.insert(0, REPO)
+    env = dict(os.environ)
+    n = args.frames
+    data = os.path.abspath(args.data)
+    ensure_system(data, args.molecules, 4 * n)
+    top, xtc = os.path.join(data, "bench.pdb"), os.path.join(data, "bench.xtc")
+    out = os.path.join(data, "out")
+    n_torsions = 3 * args.molecules
+
+    def track_cmd(stop, *extra, trajs=(xtc,)):
+        return [py, "-m", "dihedra", "track", top, *trajs, "--torsions", "rotatable", "--stop", str(stop),
+                "--out", out, "--overwrite", *extra]
+
+    def floor_cmd(stop):
+        return [py, "-c", FLOOR, top, xtc, str(stop)]
+
+    print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f} at start")
+    print(f"system: {6 * args.molecules} atoms, {n_torsions} torsions, XTC of {4 * n} frames; N = {n}")
+    # warm the page cache and the XTC offset cache
+    measure(floor_cmd(4 * n), env=env)
+    runs = {}
+
+    def run(name, cmd, extra_pids=()):
+        r = measure(cmd, extra_pids=extra_pids, env=env)
+        runs[name] = r
+        print(f"  {name:<10} wall {r['wall_s']:8.2f} s  cpu {r['cpu_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB",
+              flush=True)
+        return r
+
+    run("a:1", floor_cmd(1))
+    run("a:N", floor_cmd(n))
+    run("b:1", track_cmd(1))
+    run("b:N", track_cmd(n))
+    if "c" not in args.skip:
+        run("c:1", track_cmd(1, "--workers", "2"))
+        run("c:N", track_cmd(n, "--workers", "2"))
+    if "d" not in args.skip:
+        from distributed import Client, LocalCluster
+        with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                          dashboard_address=None) as cluster, Client(cluster) as client:
+            pids = list(client.run(os.getpid).values())
+            measure(track_cmd(1, "--scheduler", cluster.scheduler_address), env=env)  # workers import
+            run("d:1", track_cmd(1, "--scheduler", cluster.scheduler_address), pids)
+            run("d:N", track_cmd(n, "--scheduler", cluster.scheduler_address), pids)
+    if "memory" not in args.skip:
+        run("a:4N", floor_cmd(4 * n))
+        run("b:2N", track_cmd(2 * n))
+        run("b:4N", track_cmd(4 * n))
+
+    def marginal(kind, key, lo="1", hi="N", n_lo=1, n_hi=n):
+        return (runs[f"{kind}:{hi}"][key] - runs[f"{kind}:{lo}"][key]) / (n_hi - n_lo)
+
+    print()
+    print(f"marginal cost per frame, ratio to (a) the I/O floor ({n_torsions} torsions, N = {n}):")
+    print(f"  {'':<34} {'wall ms/frame':>14} {'ratio':>7} {'cpu ms/frame':>13} {'ratio':>7} {'peak MB':>8}")
+    floor_w, floor_c = marginal("a", "wall_s"), marginal("a", "cpu_s")
+    rows = [("(a) MDAnalysis reading only", "a"), ("(b) dihedra track, serial", "b"),
+            ("(c) dihedra track --workers 2", "c"), ("(d) --scheduler, 2 dask workers", "d")]
+    summary = {"n_torsions": n_torsions, "n_atoms": 6 * args.molecules, "frames": n, "runs": runs}
+    for label, kind in rows:
+        if f"{kind}:N" not in runs:
+            continue
+        w, c = marginal(kind, "wall_s"), marginal(kind, "cpu_s")
+        summary[f"ratio_{kind}_wall"] = w / floor_w
+        summary[f"ratio_{kind}_cpu"] = c / floor_c
+        print(f"  {label:<34} {w * 1e3:14.3f} {w / floor_w:7.2f} {c * 1e3:13.3f} {c / floor_c:7.2f} "
+              f"{runs[f'{kind}:N']['peak_rss_mb']:8.0f}")
+    if "b:4N" in runs:
+        fw = marginal("a", "wall_s", "N", "4N", n, 4 * n)
+        fc = marginal("a", "cpu_s", "N", "4N", n, 4 * n)
+        bw = marginal("b", "wall_s", "N", "4N", n, 4 * n)
+        bc = marginal("b", "cpu_s", "N", "4N", n, 4 * n)
+        summary["ratio_b_wall_N_4N"], summary["ratio_b_cpu_N_4N"] = bw / fw, bc / fc
+        print(f"  (b)/(a) from (T(4N) - T(N)) / 3N:  wall {bw * 1e3:.3f} / {fw * 1e3:.3f} ms = {bw / fw:.2f};"
+              f"  cpu {bc * 1e3:.3f} / {fc * 1e3:.3f} ms = {bc / fc:.2f}")
+        peaks = [runs[f"b:{k}"]["peak_rss_mb"] for k in ("N", "2N", "4N")]
+        summary["peak_b_mb"] = peaks
+        print(f"peak memory of (b) at 1x, 2x, 4x frames: {peaks[0]:.0f}, {peaks[1]:.0f}, {peaks[2]:.0f} MB "
+              f"(4x / 1x = {peaks[2] / peaks[0]:.3f})")
+    print(f"targets: (b)/(a) <= 1.15, (c)/(a) <= 0.65, peak 4x/1x within 10 %")
+
+    if "post" not in args.skip:
+        post_samples(args, data, top, xtc, n, n_torsions, py, env, summary)
+    print(f"load average at the end: {os.getloadavg()[0]:.2f}")
+    with open(os.path.join(data, "bench-result.json"), "w") as fh:
+        json.dump(summary, fh, indent=2)
+    print(f"numbers written to {os.path.join(data, 'bench-result.json')}")
+
+
+def post_samples(args, data, top, xtc, n, n_torsions, py, env, summary):
+    """Profiles and kinetics on a folder of at least ``--post-samples`` state samples."""
+    per_copy = 4 * n * n_torsions
+    copies = max(1, math.ceil(args.post_samples / per_copy))
+    folder = os.path.join(data, "post")
+    samples = copies * per_copy
+    print()
+    print(f"post-processing on {samples:.3g} state samples ({copies} replicas x {4 * n} frames x "
+          f"{n_torsions} torsions):")
+    r = measure([py, "-m", "dihedra", "track", top, *([xtc] * copies), "--torsions", "rotatable",
+                 "--temperature", "298.15", "--out", folder, "--overwrite"], env=env)
+    print(f"  track (input)      wall {r['wall_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB")
+    found = {}
+    for name, module, cmd in (("profile", "profiles", ["profile", folder, "--temperature", "298.15"]),
+                              ("kinetics", "kinetics", ["kinetics", folder, "--assignment", "crisp"])):
+        if not os.path.exists(os.path.join(REPO, "dihedra", f"{module}.py")):
+            print(f"  {name:<18} not measured: dihedra/{module}.py does not exist yet")
+            continue
+        try:
+            r = measure([py, "-m", "dihedra", *cmd], env=env)
+        except RuntimeError as exc:
+            print(f"  {name:<18} failed: {str(exc).splitlines()[-1]}")
+            continue
+        found[name] = r
+        print(f"  {name:<18} wall {r['wall_s']:8.2f} s  cpu {r['cpu_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB")
+    if found:
+        total = sum(r["wall_s"] for r in found.values())
+        print(f"  profile + kinetics: {total:.1f} s wall (target: within 60 s for 1e8 samples)")
+    summary["post"] = {"samples": samples, **found}
+    shutil.rmtree(folder, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()
