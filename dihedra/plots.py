@@ -832,8 +832,9 @@ def plot_profile(profiles, scheme, name, estimate="histogram", scan=None, ax=Non
                 ax.plot(srows["angle_deg"], e, color="black", ls=(0, (3.0, 1.4)), lw=1.1, zorder=3)
                 handles.append(Line2D([], [], color="black", ls=(0, (3.0, 1.4)), lw=1.1,
                                       label="scan (aligned)"))
-                if np.isfinite(f).any():
-                    top = max(top, float(np.nanmax(np.where(np.isfinite(f), e, np.nan))))
+                near = np.interp(srows["angle_deg"].to_numpy(float), x, np.isfinite(f).astype(float), period=360.0)
+                if (near > 0.5).any():  # the scan where the profile is sampled sets the top
+                    top = max(top, float(np.nanmax(e[near > 0.5])))
     runs = _runs(~sampled)
     for a, b in runs:
         ax.axvspan(x[a] - width / 2, x[b - 1] + width / 2, facecolor="white", edgecolor=NEUTRAL,
@@ -1027,8 +1028,7 @@ def plot_free_energy_map(profiles_2d, pair=None, ax=None, level_step=None, max_l
     wa, wb = (xa[1] - xa[0]) if len(xa) > 1 else 360.0, (xb[1] - xb[0]) if len(xb) > 1 else 360.0
     ea = np.r_[xa - wa / 2, xa[-1] + wa / 2]
     eb = np.r_[xb - wb / 2, xb[-1] + wb / 2]
-    cmap = colormaps["cividis"].copy()
-    cmap.set_bad(UNSAMPLED_COLOUR)
+    cmap = colormaps["cividis"].with_extremes(bad=UNSAMPLED_COLOUR)
     mesh = ax.pcolormesh(ea, eb, np.ma.masked_invalid(f), cmap=cmap, vmin=0, vmax=top, shading="flat",
                          rasterized=True)
     # periodic contours: pad one cell on every side by wrapping, so lines run through the edges
@@ -1039,7 +1039,6 @@ def plot_free_energy_map(profiles_2d, pair=None, ax=None, level_step=None, max_l
         yp = np.r_[xb[0] - wb, xb, xb[-1] + wb]
         cs = ax.contour(xp, yp, np.ma.masked_invalid(fp), levels=levels[1:], colors="white", linewidths=0.45,
                         alpha=0.85)
-    ax.set_aspect("equal")
     ax.set_xlim(-180, 180)
     ax.set_ylim(-180, 180)
     ticks = [-180, -90, 0, 90, 180]
@@ -1051,8 +1050,7 @@ def plot_free_energy_map(profiles_2d, pair=None, ax=None, level_step=None, max_l
     for side in ("top", "right"):
         ax.spines[side].set_visible(True)
     if colorbar:
-        cax = ax.inset_axes([1.05, 0.0, 0.05, 1.0])
-        cb = ax.figure.colorbar(mesh, cax=cax)
+        cb = ax.figure.colorbar(mesh, ax=ax, fraction=0.06, pad=0.03, aspect=22)
         cb.set_label(rf"$\mathit{{F}}$ / {unit}")
         cb.outline.set_linewidth(0.5)
         if cs is not None:
@@ -1420,7 +1418,7 @@ def plot_couplings(couplings, ax=None, label_outliers=True, legend=True):
         for mask, colour in ((~out & (rel == r), OKABE_ITO["blue"]), (out & (rel == r), OKABE_ITO["vermillion"])):
             if mask.any():
                 ax.errorbar(x[mask], y[mask], xerr=xe[mask], yerr=ye[mask], fmt=RELATION_MARKERS[k % 6], ms=3.4,
-                            color=colour, mec=INK, mew=0.4, elinewidth=0.7, capsize=1.2, zorder=3,
+                            color=colour, ecolor=INK, mec=INK, mew=0.4, elinewidth=0.7, capsize=1.2, zorder=3,
                             label=(r or "couplings") if colour == OKABE_ITO["blue"] else f"{r} outliers".strip())
     label_col = _first_column(data, ["label", "torsion"])
     if label_outliers and label_col and out.any():
@@ -1497,7 +1495,8 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     folder : str
         A results folder (``dihedra track`` plus whatever later steps wrote).
     width : {"single", "double"}
-        Journal width of every figure (3.35 or 7 inches).
+        Journal width of the figures (3.35 or 7 inches); the square ones (2-D maps, couplings)
+        are always one column wide.
     torsions : list of str, optional
         Torsion labels for the time-series figures (default: the first torsion of up to
         ``max_series`` types) and the raster rows (default all).
@@ -1599,7 +1598,7 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     maps = read_optional(folder, "profiles_2d.csv")
     if maps is not None and len(maps):
         for a, b in list(dict.fromkeys(zip(maps["torsion_a"], maps["torsion_b"]))):
-            fig = _figure(w, min(w * 0.82, 3.4) + 0.25)
+            fig = _figure(SINGLE_COLUMN_IN, SINGLE_COLUMN_IN * 0.82 + 0.25)  # square maps: one column
             plot_free_energy_map(maps, (a, b), ax=fig.add_subplot())
             out.items.append(FigureItem(f"free_energy_map_{safe_name(a)}__{safe_name(b)}",
                                         f"2-D free-energy map of {a} and {b} (periodic axes).", fig, "map"))

@@ -1,0 +1,525 @@
+"""Figures: content on small data (lines, patches, labels with units, state colours), the figure set
+of a folder, file formats, and that nothing overlaps or leaves the figure at journal widths."""
+
+import itertools
+import os
+import re
+
+import matplotlib
+import numpy as np
+import pandas as pd
+import pytest
+from figure_data import CENTRES_DEG, full_folder, track_only_folder  # noqa: F401  (fixtures)
+from matplotlib.collections import PolyCollection, QuadMesh
+from matplotlib.colors import to_hex, to_rgb
+from matplotlib.figure import Figure
+from matplotlib.patches import Circle, FancyArrowPatch, Rectangle
+
+matplotlib.use("Agg")
+
+from dihedra import plots  # noqa: E402
+from dihedra.errors import DihedraError  # noqa: E402
+from dihedra.resultsdir import load_results, read_table  # noqa: E402
+from dihedra.schemes import get_scheme, scheme_from_mapping  # noqa: E402
+
+
+def new_ax(width="single", height=2.4):
+    fig = Figure(figsize=(plots.WIDTHS[width], height), layout="constrained")
+    return fig.add_subplot()
+
+
+def texts_of(ax):
+    return [t.get_text() for t in ax.texts]
+
+
+# ------------------------------------------------------------------------------------------------
+# colours
+# ------------------------------------------------------------------------------------------------
+# Machado, Oliveira & Fernandes, IEEE TVCG 15 (2009) 1291, severity 1.0 (from memory), linear RGB.
+CVD = {"protanopia": [[0.152286, 1.052583, -0.204868], [0.114503, 0.786281, 0.099216],
+                      [-0.003882, -0.048116, 1.051998]],
+       "deuteranopia": [[0.367322, 0.860646, -0.227968], [0.280085, 0.672501, 0.047413],
+                        [-0.011820, 0.042940, 0.968881]],
+       "tritanopia": [[1.255528, -0.076749, -0.178779], [-0.078411, 0.930809, 0.147602],
+                      [0.004733, 0.691367, 0.303900]]}
+
+
+def cie_lab(rgb):
+    """sRGB (0..1) -> CIE L*a*b* (D65), standard formulas (IEC 61966-2-1, CIE 15)."""
+    c = np.asarray(rgb, dtype=float)
+    xyz = np.array([[0.4124, 0.3576, 0.1805], [0.2126, 0.7152, 0.0722], [0.0193, 0.1192, 0.9505]]) @ c
+    t = xyz / np.array([0.95047, 1.0, 1.08883])
+    f = np.where(t > (6 / 29) ** 3, np.cbrt(t), t / (3 * (6 / 29) ** 2) + 4 / 29)
+    return np.array([116 * f[1] - 16, 500 * (f[0] - f[1]), 200 * (f[1] - f[2])])
+
+
+def linear(rgb):
+    c = np.asarray(rgb, dtype=float)
+    return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+
+
+@pytest.mark.parametrize("spec", ["anti-gauche", "staggered-eclipsed", "staggered-eclipsed:2", "klyne-prelog"])
+def test_builtin_state_colours_are_fixed_and_distinct_under_colour_vision_deficiency(spec):
+    scheme = get_scheme(spec)
+    colours = plots.state_colours(scheme)
+    assert list(colours) == list(scheme.labels)
+    # fixed mapping, the same hue for the same role in every scheme (documented table)
+    fixed = {"anti": "#0072B2", "ap": "#0072B2", "staggered": "#0072B2", "gauche+": "#E69F00", "+sc": "#E69F00",
+             "gauche-": "#CC79A7", "-sc": "#CC79A7", "eclipsed": "#D55E00", "sp": "#D55E00",
+             "+ac": "#56B4E9", "-ac": "#009E73"}
+    assert all(to_hex(colours[s]).upper() == fixed[s] for s in scheme.labels)
+    # every pair stays clearly apart (CIE76 dE > 12; about 2.3 is just noticeable -- common practice)
+    # for normal vision and simulated protanopia, deuteranopia and tritanopia (Machado et al. 2009)
+    for name, m in [("normal", np.eye(3))] + list(CVD.items()):
+        labs = {s: cie_lab(np.clip(np.asarray(m) @ linear(to_rgb(c)), 0, 1)) for s, c in colours.items()}
+        for a, b in itertools.combinations(labs, 2):
+            assert np.linalg.norm(labs[a] - labs[b]) > 12.0, (spec, name, a, b)
+    # undefined frames are grey, unlike every state
+    assert plots.UNDEFINED_COLOUR not in colours.values()
+
+
+def test_custom_scheme_takes_the_cyclic_palette_in_label_order():
+    states = [{"label": f"s{k}", "from_deg": -180 + 40 * k, "to_deg": -140 + 40 * k} for k in range(9)]
+    scheme = scheme_from_mapping({"name": "nine", "state": states})
+    colours = plots.state_colours(scheme)
+    pal = plots.CYCLIC_PALETTE
+    assert [colours[f"s{k}"] for k in range(9)] == [pal[k % len(pal)] for k in range(9)]
+    # a custom scheme that reuses built-in labels but is not a built-in set is cyclic too
+    two = scheme_from_mapping({"state": [{"label": "anti", "from_deg": 90, "to_deg": -90},
+                                         {"label": "other", "from_deg": -90, "to_deg": 90}]})
+    assert plots.state_colours(two) == {"anti": pal[0], "other": pal[1]}
+
+
+def test_sector_spans_cover_the_circle_once():
+    for spec in ("anti-gauche", "klyne-prelog", "staggered-eclipsed"):
+        scheme = get_scheme(spec)
+        spans = plots.sector_spans(scheme)
+        assert sum(hi - lo for _, lo, hi in spans) == pytest.approx(360.0)
+        # the state of each span's midpoint is the span's state (scheme.assign is the reference)
+        for state, lo, hi in spans:
+            assert scheme.assign([(lo + hi) / 2])[0] == state
+
+
+# ------------------------------------------------------------------------------------------------
+# 1. angle series and 2. raster, read in chunks
+# ------------------------------------------------------------------------------------------------
+def test_angle_series_downsamples_in_chunks_and_draws_bands(full_folder):
+    labels = ["BUT1:C1-C2-C3-C4", "BUT2:C1-C2-C3-C4"]
+    series = plots.read_angle_series(full_folder, labels, max_points=100, batch_frames=37)
+    full = read_table(os.path.join(full_folder, "angles.parquet"), labels)
+    stride = int(np.ceil(len(full) / 100))
+    assert series.stride == stride and series.n_frames == len(full)
+    # every stride-th frame, exactly (pandas on the whole table is the reference)
+    np.testing.assert_allclose(series.frame[labels].to_numpy(), full[labels].to_numpy()[::stride])
+    assert f"every {stride}th" in series.description
+    scheme = load_results(full_folder).scheme
+    ax = plots.plot_angle_series(series, scheme, labels[1], ax=new_ax())
+    pts = [ln for ln in ax.lines if ln.get_marker() == "o"]
+    assert len(pts) == 2  # one per replica
+    assert sum(len(ln.get_xdata()) for ln in pts) == len(series.frame)
+    np.testing.assert_allclose(np.concatenate([ln.get_ydata() for ln in pts]), series.frame[labels[1]])
+    bands = [p for p in ax.patches if isinstance(p, (Rectangle, matplotlib.patches.Polygon))]
+    assert len(bands) == len(plots.sector_spans(scheme)) == 4  # anti is split at +-180
+    assert "deg" in ax.get_ylabel() and r"\varphi" in ax.get_ylabel()
+    assert ax.get_xlabel().endswith("/ ps")
+    assert set(texts_of(ax)) >= {"anti", "gauche+", "gauche-", "replica 1", "replica 2"}
+    assert ax.get_ylim() == (-180, 180)
+
+
+def test_state_raster_is_the_most_frequent_state_per_column(full_folder):
+    scheme = load_results(full_folder).scheme
+    states = read_table(os.path.join(full_folder, "states.parquet"))
+    labels = [c for c in states.columns if c.startswith("BUT")]
+    # one column per frame: the raster is the state table itself
+    exact = plots.read_state_raster(full_folder, max_columns=10_000, batch_frames=50)
+    assert exact.frames_per_column == 1
+    np.testing.assert_array_equal(exact.codes, states[exact.rows].to_numpy().T)
+    # 30 columns of 20 frames (two replicas of 300): the mode of each block of 20 frames
+    agg = plots.read_state_raster(full_folder, max_rows=4, max_columns=30, batch_frames=64)
+    assert len(agg.rows) == 4 and agg.n_torsions == len(labels)
+    assert "4 of 6 torsions" in agg.description and "most frequent state of 20 frames" in agg.description
+    for i, lab in enumerate(agg.rows):
+        for rep in (0, 1):
+            series = states.loc[states["replica"] == rep, lab].to_numpy()
+            for c in range(15):
+                block = series[20 * c:20 * (c + 1)]
+                mode = np.argmax(np.bincount(block, minlength=3))  # numpy is the reference
+                assert agg.codes[i, 15 * rep + c] == mode
+    ax = plots.plot_state_raster(agg, scheme, ax=new_ax())
+    images = ax.get_images()
+    assert len(images) == 2  # one per replica
+    cmap = images[0].get_cmap()
+    # colour index k+1 is state k; 0 is undefined
+    for k, s in enumerate(scheme.labels):
+        assert to_hex(cmap(k + 1)) == to_hex(plots.state_colours(scheme)[s])
+    assert to_hex(cmap(0)) == to_hex(plots.UNDEFINED_COLOUR)
+    assert "4 of 6 torsions" in ax.get_title(loc="left")
+    assert {h.get_label() for h in ax.get_legend().legend_handles} - {""} == set(scheme.labels)
+
+
+def test_state_raster_thins_thousands_of_torsions(tmp_path):
+    # a synthetic states.parquet of 2000 torsions (written like the pass does), read in chunks
+    import json
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    n_frames, n_tors = 500, 2000
+    rng = np.random.default_rng(0)
+    codes = rng.integers(0, 3, size=(n_frames, n_tors)).astype(np.int8)
+    labels = [f"T{k}" for k in range(n_tors)]
+    table = pa.table({"replica": np.zeros(n_frames, np.int64), "frame": np.arange(n_frames),
+                      "time_ps": np.arange(n_frames, dtype=float),
+                      **{lab: codes[:, k] for k, lab in enumerate(labels)}})
+    pq.write_table(table, tmp_path / "states.parquet", row_group_size=100)
+    pd.DataFrame({"torsion": labels, "type": ["a"] * 1000 + ["b"] * 1000}).to_csv(tmp_path / "torsions.csv",
+                                                                                 index=False)
+    (tmp_path / "summary.json").write_text(json.dumps({
+        "scheme": get_scheme("anti-gauche").to_dict(),
+        "replicas": [{"frames_analysed": n_frames, "time_between_analysed_frames_ps": 2.0, "time_step_known": True}]}))
+    raster = plots.read_state_raster(str(tmp_path), max_rows=200, max_columns=100)
+    assert raster.codes.shape == (200, 100)
+    assert raster.rows[0] == "T0" and raster.rows[-1] == "T1999"
+    assert raster.row_types.count("a") == raster.row_types.count("b") == 100
+    ax = plots.plot_state_raster(raster, get_scheme("anti-gauche"), ax=new_ax())
+    assert "200 of 2000 torsions" in ax.get_title(loc="left")
+    assert [t.get_text() for t in ax.get_yticklabels()] == ["a", "b"]  # type names, not 200 labels
+    assert ax.get_xlim()[1] == pytest.approx(1000.0)  # 500 frames of 2 ps
+
+
+# ------------------------------------------------------------------------------------------------
+# 3. profile
+# ------------------------------------------------------------------------------------------------
+def profile_table(unit="kj_mol"):
+    x = np.arange(-177.5, 180, 5.0)
+    f = 2.0 * (1 + np.cos(np.radians(3 * x)))
+    sampled = np.ones_like(x, dtype=bool)
+    sampled[(x > -10) & (x < 10)] = False  # one unsampled run of 4 bins around 0
+    sampled[x > 170] = False  # and one at the edge
+    return pd.DataFrame({"type": "T", "torsion": "", "estimate": "histogram", "angle_deg": x,
+                         f"free_energy_{unit}": np.where(sampled, f, np.nan),
+                         f"free_energy_err_{unit}": np.where(sampled, 0.1, np.nan), "sampled": sampled})
+
+
+def test_profile_marks_unsampled_runs_shades_sectors_and_overlays_the_scan():
+    scheme = get_scheme("anti-gauche")
+    prof = profile_table()
+    scan = pd.DataFrame({"type": "T", "angle_deg": prof["angle_deg"],
+                         "scan_free_energy_kj_mol": 2.0 * (1 + np.cos(np.radians(3 * prof["angle_deg"])))})
+    ax = plots.plot_profile(prof, scheme, "T", scan=scan, ax=new_ax())
+    hatched = [p for p in ax.patches if p.get_hatch()]
+    assert len(hatched) == 2  # the two unsampled runs
+    spans = sorted(p.get_x() for p in hatched)
+    assert spans[0] == pytest.approx(-10.0) and spans[1] == pytest.approx(170.0)
+    sectors = [p for p in ax.patches if not p.get_hatch()]
+    assert len(sectors) == 4
+    lines = ax.get_lines()
+    assert len(lines) == 2  # sampled profile and scan
+    np.testing.assert_allclose(lines[1].get_ydata(), scan["scan_free_energy_kj_mol"])
+    assert len([c for c in ax.collections if isinstance(c, PolyCollection)]) == 1  # the error band
+    assert ax.get_ylabel() == r"$\mathit{F}$ / kJ mol$^{-1}$"
+    assert {t.get_text() for t in ax.get_legend().get_texts()} - {""} == {"sampled", "± 1 s.e.", "scan (aligned)",
+                                                                         "unsampled"}
+    # no free energy is drawn in unsampled bins
+    y = lines[0].get_ydata()
+    assert np.isnan(np.asarray(y, dtype=float)[~prof["sampled"].to_numpy()]).all()
+
+
+def test_profile_in_kt_converts_the_scan_with_the_temperature():
+    from dihedra.units import kt_kj_mol
+
+    prof = profile_table("kt")
+    scan = pd.DataFrame({"type": "T", "angle_deg": [0.0, 90.0], "scan_free_energy_kj_mol": [0.0, 5.0]})
+    ax = plots.plot_profile(prof, get_scheme("anti-gauche"), "T", scan=scan, temperature_k=300.0, ax=new_ax())
+    assert ax.get_ylabel().endswith(r"$k_\mathrm{B}T$")
+    # units.py converts; R T at 300 K = 2.494 kJ/mol (CODATA 2018)
+    assert ax.get_lines()[1].get_ydata()[1] == pytest.approx(5.0 / kt_kj_mol(300.0))
+    assert kt_kj_mol(300.0) == pytest.approx(2.4943, abs=1e-4)
+
+
+def test_profile_of_an_unknown_name_is_a_clear_error():
+    with pytest.raises(DihedraError, match="no histogram profile of 'X'"):
+        plots.plot_profile(profile_table(), get_scheme("anti-gauche"), "X", ax=new_ax())
+
+
+# ------------------------------------------------------------------------------------------------
+# 4. populations
+# ------------------------------------------------------------------------------------------------
+def test_population_bars_heights_colours_and_sources():
+    scheme = get_scheme("anti-gauche")
+    pops = pd.DataFrame({"type": ["A"] * 3 + ["B"] * 3, "state": list(scheme.labels) * 2,
+                         "population": [0.6, 0.2, 0.2, 0.5, 0.3, 0.2], "population_err": [0.01] * 6})
+    comparison = pd.DataFrame({"type": ["A"], "predicted_population_anti": [0.55], "predicted_population_gauche+": [0.25],
+                               "predicted_population_gauche-": [0.2], "population_anti": [0.6]})
+    predicted, reference = plots.comparison_populations(comparison)
+    assert len(predicted) == 3 and len(reference) == 0
+    ax = plots.plot_populations(pops, scheme, predicted=predicted, ax=new_ax())
+    bars = [p for p in ax.patches if isinstance(p, Rectangle)]
+    assert len(bars) == 6 + 3  # six sampled, three predicted (type A only)
+    filled = [b for b in bars if not b.get_hatch()]
+    hatched = [b for b in bars if b.get_hatch()]
+    assert sorted(round(b.get_height(), 6) for b in filled) == sorted(pops["population"])
+    assert sorted(round(b.get_height(), 6) for b in hatched) == [0.2, 0.25, 0.55]
+    colours = plots.state_colours(scheme)
+    for b in filled:
+        state = [s for s, p in zip(pops["state"], pops["population"]) if abs(p - b.get_height()) < 1e-9][0]
+        if list(pops["population"]).count(b.get_height()) == 1:
+            assert to_hex(b.get_facecolor()) == to_hex(colours[state])
+    assert [t.get_text() for t in ax.get_xticklabels()] == list(scheme.labels) * 2
+    assert ax.get_ylim() == (0, 1)
+    # error bars: one per sampled bar
+    assert len(ax.containers) - len([c for c in ax.containers if hasattr(c, "patches")]) == 6
+    assert {t.get_text() for t in ax.get_legend().get_texts()} - {""} == {"sampled", "predicted from the scan"}
+
+
+# ------------------------------------------------------------------------------------------------
+# 5. 2-D map
+# ------------------------------------------------------------------------------------------------
+def test_free_energy_map_is_periodic_with_contours_in_kj_per_mol():
+    c = np.arange(-175.0, 180, 10.0)
+    ga, gb = np.meshgrid(c, c, indexing="ij")
+    f = 3.0 * (2 - np.cos(np.radians(ga)) - np.cos(np.radians(gb)))
+    sampled = f < 10.0
+    table = pd.DataFrame({"torsion_a": "a", "torsion_b": "b", "angle_a_deg": ga.ravel(), "angle_b_deg": gb.ravel(),
+                          "free_energy_kj_mol": np.where(sampled, f, np.nan).ravel(), "sampled": sampled.ravel()})
+    ax = plots.plot_free_energy_map(table, ax=new_ax(height=3.0), level_step=2.0)
+    mesh = [m for m in ax.collections if isinstance(m, QuadMesh)][0]
+    arr = mesh.get_array()
+    grid = np.where(sampled, f, np.nan).T  # rows: angle_b
+    np.testing.assert_allclose(np.ma.filled(arr, np.nan).reshape(grid.shape), grid)
+    assert arr.mask.sum() == (~sampled).sum()  # unsampled cells are masked, not zero
+    cs = [c for c in ax.collections if hasattr(c, "levels")][0]
+    np.testing.assert_allclose(cs.levels, np.arange(2.0, 10.0, 2.0))
+    assert ax.get_xlim() == (-180, 180) and ax.get_ylim() == (-180, 180)
+    assert ax.get_xlabel() == r"$\varphi$(a) / deg"
+    cbar_ax = [a for a in ax.figure.axes if a is not ax][0]
+    assert cbar_ax.get_ylabel() == r"$\mathit{F}$ / kJ mol$^{-1}$"
+    # a closed contour around the minimum at (180, 180) reaches across the periodic edge: the padded
+    # grid repeats the opposite edge (np.pad wrap is the reference)
+    assert "every 2 kJ/mol" in ax.get_title(loc="left")
+
+
+# ------------------------------------------------------------------------------------------------
+# 6. transition diagram and 7. lifetimes
+# ------------------------------------------------------------------------------------------------
+def kinetics_tables():
+    lifetimes = pd.DataFrame({"level": "type", "name": "T", "type": "T", "state": ["anti", "gauche+", "gauche-"],
+                              "mean_ps": [40.0, 12.0, 11.0], "median_ps": [28.0, 8.0, 7.5], "ci_low_ps": [35.0, 10.0, 9.0],
+                              "ci_high_ps": [45.0, 14.0, 13.0], "mean_from_rates_ps": [40.0, 12.5, 11.0],
+                              "population_counted": [0.6, 0.25, 0.15]})
+    transitions = pd.DataFrame({"level": "type", "name": "T", "from_state": ["anti", "anti", "gauche+", "gauche-",
+                                                                                 "gauche+", "gauche-"],
+                                "to_state": ["gauche+", "gauche-", "anti", "anti", "gauche-", "gauche+"],
+                                "count": [30, 20, 31, 19, 0, 2],
+                                "rate_per_ps": [0.0125, 0.0125, 0.05, 0.08, 0.0, 0.001]})
+    return transitions, lifetimes
+
+
+def test_transition_diagram_nodes_by_population_arrows_by_rate():
+    scheme = get_scheme("anti-gauche")
+    transitions, lifetimes = kinetics_tables()
+    ax = plots.plot_transition_diagram(transitions, lifetimes, "T", scheme=scheme, ax=new_ax(height=2.6))
+    nodes = [p for p in ax.patches if isinstance(p, Circle)]
+    arrows = [p for p in ax.patches if isinstance(p, FancyArrowPatch)]
+    assert len(nodes) == 3
+    assert len(arrows) == 5  # the pair with zero count is not drawn
+    # node area grows with population; colours are the state colours
+    radius = {to_hex(n.get_facecolor()): n.get_radius() for n in nodes}
+    colours = plots.state_colours(scheme)
+    assert radius[to_hex(colours["anti"])] > radius[to_hex(colours["gauche+"])] > radius[to_hex(colours["gauche-"])]
+    # arrow width grows with the rate: the widest is gauche- -> anti (0.08 per ps)
+    widths = sorted(a.get_linewidth() for a in arrows)
+    assert widths[-1] == pytest.approx(0.5 + 2.6)
+    assert "0.08" in texts_of(ax) and "0.001" in texts_of(ax)
+    counts = plots.plot_transition_diagram(transitions, lifetimes, "T", weight="count", scheme=scheme, ax=new_ax())
+    assert "31" in texts_of(counts) and "transition count" in counts.get_title(loc="left")
+
+
+def test_lifetimes_exponential_from_the_rates_and_observed_markers():
+    transitions, lifetimes = kinetics_tables()
+    ax = plots.plot_lifetimes(lifetimes, "T", scheme=get_scheme("anti-gauche"), ax=new_ax())
+    assert ax.get_yscale() == "log"
+    dashed = [ln for ln in ax.get_lines() if ln.get_linestyle() not in ("-", "None", "none") and len(ln.get_xdata()) > 2]
+    assert len(dashed) == 3
+    for ln, tau in zip(dashed, lifetimes["mean_from_rates_ps"]):
+        t = np.asarray(ln.get_xdata())
+        np.testing.assert_allclose(ln.get_ydata(), np.exp(-t / tau))  # analytic
+    # observed medians at S = 1/2, means at S = 1/e (where an exponential has them)
+    medians = [ln for ln in ax.get_lines() if ln.get_marker() == "s"]
+    assert sorted(float(ln.get_xdata()[0]) for ln in medians) == sorted(lifetimes["median_ps"])
+    assert all(float(ln.get_ydata()[0]) == 0.5 for ln in medians)
+    assert "dwell time" in ax.get_xlabel() and ax.get_xlabel().endswith("/ ps")
+
+
+def test_survival_curve_is_kaplan_meier():
+    # Kaplan & Meier (1958): S(t) = prod over event times t_i <= t of (1 - d_i / n_i); worked by hand:
+    # lengths 1, 2 (censored), 3, 3, 5 -> at t=1: 1 - 1/5 = 0.8; t=2 censored: 0.8; t=3: 0.8 (1 - 2/3);
+    # t=5: 0.8/3 (1 - 1/1) = 0
+    t, s = plots.survival_curve([1, 2, 3, 5], [1, 0, 2, 1], [0, 1, 0, 0])
+    np.testing.assert_allclose(t, [1, 2, 3, 5])
+    np.testing.assert_allclose(s, [0.8, 0.8, 0.8 / 3, 0.0])
+    # without censoring it is one minus the empirical distribution function
+    rng = np.random.default_rng(1)
+    x = rng.integers(1, 30, 200)
+    d, n = np.unique(x, return_counts=True)
+    _, s = plots.survival_curve(d, n, np.zeros_like(n))
+    np.testing.assert_allclose(s, 1 - np.cumsum(n) / n.sum())
+
+
+# ------------------------------------------------------------------------------------------------
+# 8. convergence and 9. couplings
+# ------------------------------------------------------------------------------------------------
+def test_convergence_ends_at_the_per_replica_populations(full_folder):
+    res = load_results(full_folder)
+    name = "BUT1:C1-C2-C3-C4"
+    ax = plots.plot_convergence(res, name, ax=new_ax())
+    lines = [ln for ln in ax.get_lines() if len(ln.get_xdata()) > 2]
+    assert len(lines) == 2 * 3  # replicas x states
+    by_rep = res.populations_by_replica
+    colours = plots.state_colours(res.scheme)
+    for j, rep in enumerate((0, 1)):
+        for k, s in enumerate(res.scheme.labels):
+            ln = lines[3 * j + k]
+            assert to_hex(ln.get_color()) == to_hex(colours[s])
+            expected = by_rep[(by_rep["replica"] == rep) & (by_rep["torsion"] == name) & (by_rep["state"] == s)]
+            # the running population at the end of the replica is the replica's population (track's table)
+            assert ln.get_ydata()[-1] == pytest.approx(float(expected["population"].iloc[0]), abs=5e-6)  # CSV: 6 digits
+            assert ln.get_xdata()[-1] == pytest.approx(300.0)  # 300 frames of 1 ps
+    assert ax.get_ylabel() == "running population" and ax.get_xlabel().endswith("/ ps")
+
+
+def test_couplings_identity_line_error_bars_and_outliers(full_folder):
+    table = pd.read_csv(os.path.join(full_folder, "couplings_vs_experiment.csv"))
+    ax = plots.plot_couplings(table, ax=new_ax(height=3.0))
+    identity = ax.get_lines()[0]
+    np.testing.assert_allclose(identity.get_xdata(), identity.get_ydata())
+    points = [ln for ln in ax.get_lines() if ln.get_marker() in plots.RELATION_MARKERS]
+    xs = np.concatenate([ln.get_xdata() for ln in points])
+    assert sorted(xs) == sorted(table["j_exp_hz"])
+    outliers = [ln for ln in points if to_hex(ln.get_color()) == to_hex(plots.OKABE_ITO["vermillion"])]
+    assert sum(len(ln.get_xdata()) for ln in outliers) == int(table["outlier"].sum())
+    assert ax.get_xlabel() == r"experimental $^3\mathit{J}$ / Hz" and "Hz" in ax.get_ylabel()
+
+
+# ------------------------------------------------------------------------------------------------
+# the figure set of a folder, files, layout
+# ------------------------------------------------------------------------------------------------
+def test_figure_set_skips_what_a_track_only_folder_lacks(track_only_folder):
+    notes = []
+    with plots.style():
+        fset = plots.figure_set(track_only_folder, log=notes.append)
+    kinds = [i.kind for i in fset.items]
+    assert kinds == ["series", "raster", "populations", "convergence"]
+    assert any(s.startswith("free-energy profiles: no profiles.csv") for s in fset.skipped)
+    assert any("dihedra kinetics" in s for s in fset.skipped)
+    assert any("couplings" in s for s in fset.skipped)
+    assert all(len(n.splitlines()) == 1 for n in notes)
+
+
+def test_figure_set_of_a_full_folder_has_all_nine_figures(full_folder):
+    with plots.style():
+        fset = plots.figure_set(full_folder)
+    kinds = {i.kind for i in fset.items}
+    assert kinds == {"series", "raster", "profile", "populations", "map", "transitions", "lifetimes", "convergence",
+                     "couplings"}
+    assert fset.skipped == []
+
+
+def _text_boxes(fig):
+    """Window extents of the texts that layout places: titles, axis labels, drawn tick labels,
+    legend texts and texts outside the data area (sector names, replica labels)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    texts = list(fig.texts)
+    for ax in fig.axes:
+        if not ax.get_visible():
+            continue
+        texts += [ax.title, ax._left_title, ax._right_title]
+        for axis in (ax.xaxis, ax.yaxis) if ax.axison else ():
+            texts.append(axis.label)
+            for tick in axis._update_ticks():  # only the ticks drawn within the view
+                texts += [t for t in (tick.label1, tick.label2) if t.get_visible()]
+        if ax.get_legend() is not None:
+            texts += list(ax.get_legend().get_texts())
+        texts += [t for t in ax.texts if not t.get_clip_on()]
+    boxes = []
+    for t in texts:
+        if t.get_visible() and t.get_text().strip():
+            boxes.append((t.get_text(), t.get_window_extent(renderer)))
+    return boxes
+
+
+@pytest.mark.parametrize("width", ["single", "double"])
+def test_nothing_overlaps_or_leaves_the_figure_at_journal_widths(full_folder, width):
+    with plots.style():
+        fset = plots.figure_set(full_folder, width=width)
+        for item in fset.items:
+            fig = item.figure
+            assert fig.get_figwidth() == pytest.approx(plots.WIDTHS[width] if item.kind not in ("couplings", "map")
+                                                       else plots.SINGLE_COLUMN_IN)
+            boxes = _text_boxes(fig)
+            bbox = fig.bbox
+            for text, b in boxes:
+                assert b.x0 >= bbox.x0 - 1 and b.x1 <= bbox.x1 + 1 and b.y0 >= bbox.y0 - 1 and b.y1 <= bbox.y1 + 1, \
+                    (item.name, text, b, bbox)
+            clash = _overlapping(boxes)
+            assert not clash, f"{item.name} ({width}): {clash[0]!r} overlaps {clash[1]!r}"
+
+
+def _overlapping(boxes):
+    for (ta, a), (tb, b) in itertools.combinations(boxes, 2):
+        inter = a.intersection(a, b)
+        if inter is not None and inter.width > 1.0 and inter.height > 1.0:
+            return ta, tb
+    return None
+
+
+def test_the_overlap_check_finds_overlapping_text():
+    # the check above must be able to fail: a note written over a legend row is caught
+    ax = new_ax()
+    ax.plot([0, 1], [0, 1], label="a long legend entry")
+    ax.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0))
+    ax.set_title("a note placed over the legend", loc="left", pad=2)
+    assert _overlapping(_text_boxes(ax.figure)) is not None
+
+
+def test_write_figures_pdf_with_truetype_fonts_and_300_dpi_png(full_folder, tmp_path):
+    from PIL import Image
+
+    paths, skipped = plots.write_figures(full_folder, formats="pdf,png,svg", out_dir=str(tmp_path))
+    assert skipped == []
+    names = {os.path.splitext(os.path.basename(p))[0] for p in paths}
+    assert {"angle_series", "state_raster", "populations", "couplings"} <= names
+    for p in paths:
+        if p.endswith(".pdf"):
+            data = open(p, "rb").read()
+            assert b"/FontFile2" in data  # embedded TrueType (pdf.fonttype 42)
+            assert b"/Subtype /Type3" not in data
+        elif p.endswith(".png"):
+            im = Image.open(p)
+            assert tuple(round(x) for x in im.info["dpi"]) == (300, 300)
+            if os.path.basename(p).startswith("profile_"):
+                assert im.size[0] == round(plots.SINGLE_COLUMN_IN * 300)  # the width is not trimmed
+        else:
+            assert "<svg" in open(p).read(2000)
+    with pytest.raises(DihedraError, match="figure format must be one of"):
+        plots.write_figures(full_folder, formats="pdf,jpeg", out_dir=str(tmp_path))
+
+
+def test_figures_command(full_folder, tmp_path, capsys):
+    import shutil
+
+    from dihedra.cli import main
+
+    folder = str(tmp_path / "copy")
+    shutil.copytree(full_folder, folder)
+    assert main(["figures", folder, "--format", "png", "--width", "double", "--types", "BUT:C1-C2-C3-C4",
+                 "--torsions", "BUT3:C1-C2-C3-C4"]) == 0
+    out = capsys.readouterr().out.split()
+    assert all(p.startswith(os.path.join(folder, "figures")) and p.endswith(".png") for p in out)
+    assert os.path.join(folder, "figures", "profile_BUT_C1-C2-C3-C4.png") in out
+    assert main(["figures", folder, "--types", "NOPE"]) == 2
+    assert "no torsion type 'NOPE'" in capsys.readouterr().err
