@@ -422,7 +422,7 @@ def read_angle_series(folder, torsions, max_points=4000, batch_frames=None):
     path = os.path.join(folder, "angles.parquet")
     if not os.path.exists(path):
         raise DihedraError(f"{folder} has no angles.parquet; rerun 'dihedra track ... --keep-angles'.")
-    summary = _read_json(folder, "summary.json") or {}
+    summary = read_optional_json(folder, "summary.json") or {}
     info = _replica_info(summary)
     n_total = sum(n for n, _ in info) or None
     _check_columns(path, torsions)
@@ -505,7 +505,7 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     path = os.path.join(folder, "states.parquet")
     if not os.path.exists(path):
         raise DihedraError(f"{folder} has no states.parquet; rerun 'dihedra track'.")
-    summary = _read_json(folder, "summary.json") or {}
+    summary = read_optional_json(folder, "summary.json") or {}
     table = pd.read_csv(os.path.join(folder, "torsions.csv"), keep_default_na=False)
     all_labels = list(table["torsion"])
     types = dict(zip(table["torsion"], table["type"]))
@@ -1439,7 +1439,8 @@ def plot_couplings(couplings, ax=None, label_outliers=True, legend=True):
 # The figure set of a results folder
 # ----------------------------------------------------------------------------------------------
 
-def _read_json(folder, name):
+def read_optional_json(folder, name):
+    """A JSON document of the folder, or ``None`` when the folder lacks it."""
     path = os.path.join(folder, name)
     if not os.path.exists(path):
         return None

@@ -27,7 +27,6 @@ from __future__ import annotations
 import base64
 import html
 import io
-import json
 import os
 import time
 
@@ -35,6 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import DihedraError
+from .plots import read_optional, read_optional_json
 
 #: Rows shown of long tables (the full table is in the folder).
 MAX_ROWS = 60
@@ -213,19 +213,10 @@ def _verdict(text):
     return f"<span class='verdict {cls}'>{_e(text)}</span>"
 
 
-def _read_json(folder, name):
-    path = os.path.join(folder, name)
-    if not os.path.exists(path):
-        return None
-    with open(path) as fh:
-        return json.load(fh)
-
-
-def _read_csv(folder, name):
-    path = os.path.join(folder, name)
-    if not os.path.exists(path):
-        return None
-    return pd.read_csv(path, keep_default_na=False, na_values=[""])
+def _missing(section_id, title, what, command):
+    """A section that says what the folder lacks and which command makes it."""
+    return (f"<section id='{section_id}'><h2>{_e(title)}</h2><p class='missing'>No {_e(what)} in this folder "
+            f"(run <code>{_e(command)}</code>).</p></section>")
 
 
 def figure_data_uri(fig):
@@ -288,7 +279,7 @@ def _provenance(folder, summary):
 
 
 def _torsions(folder, summary, scheme):
-    tors = _read_csv(folder, "torsions.csv")
+    tors = read_optional(folder, "torsions.csv")
     parts = ["<section id='torsions'><h2>Torsions and states</h2>"]
     if tors is not None:
         by_type = tors.groupby("type", sort=False).size().reset_index(name="torsions")
@@ -312,7 +303,7 @@ def _torsions(folder, summary, scheme):
 
 
 def _populations(folder, scheme, figs):
-    pops = _read_csv(folder, "populations_by_type.csv")
+    pops = read_optional(folder, "populations_by_type.csv")
     parts = ["<section id='populations'><h2>Populations</h2>",
              "<p class='lead'>Fraction of frames in each state, pooled per torsion type, ± standard error "
              "(autocorrelation accounted for by blocking; molecules treated as independent).</p>"]
@@ -326,7 +317,7 @@ def _populations(folder, scheme, figs):
                 row[s] = _pm(key.loc[s, "population"], key.loc[s, "population_err"]) if s in key.index else "–"
             wide.append(row)
         parts.append(_table(pd.DataFrame(wide), what="types"))
-    conf = _read_csv(folder, "conformers_by_type.csv")
+    conf = read_optional(folder, "conformers_by_type.csv")
     if conf is not None and len(conf):
         top = conf.groupby("group_type", sort=False).head(5).copy()
         top["population"] = [_pm(p, e) for p, e in zip(top["population"], top["population_err"])]
@@ -339,25 +330,23 @@ def _populations(folder, scheme, figs):
 
 
 def _profiles(folder, figs):
-    info = _read_json(folder, "profiles.json")
-    parts = ["<section id='profiles'><h2>Free-energy profiles</h2>"]
+    info = read_optional_json(folder, "profiles.json")
     if info is None:
-        parts.append("<p class='missing'>No profiles in this folder (run <code>dihedra profile DIR</code>).</p>"
-                     "</section>")
-        return "".join(parts)
+        return _missing("profiles", "Free-energy profiles", "profiles", "dihedra profile DIR")
+    parts = ["<section id='profiles'><h2>Free-energy profiles</h2>"]
     unit = info.get("energy_unit", "kJ/mol")
     parts.append(f"<p class='lead'>F(φ) = −kT ln p(φ) at {_fmt(info.get('temperature_k'))} K (kT = "
                  f"{_fmt(info.get('kt_kj_mol'))} kJ/mol), {_fmt(info.get('bin_width_deg'))}-degree bins, errors "
                  f"from a block bootstrap ({_e(info.get('n_bootstrap'))} resamples); energies in {_e(unit)}.</p>")
     parts.append(_callout("Cautions", info.get("cautions", []), "caution"))
     suffix = {"kJ/mol": "kj_mol", "kcal/mol": "kcal_mol", "kT": "kt"}.get(unit, "kj_mol")
-    minima = _pooled(_read_csv(folder, "minima.csv"))
+    minima = _pooled(read_optional(folder, "minima.csv"))
     if minima is not None and len(minima):
         minima["position (deg)"] = [_pm(a, e, 1) for a, e in zip(minima["angle_deg"], minima["angle_err_deg"])]
         minima[f"F ({unit})"] = _pm_columns(minima, f"free_energy_{suffix}", f"free_energy_err_{suffix}")
         parts.append("<h3>Minima (pooled per type)</h3>")
         parts.append(_table(minima, ["type", "minimum", "position (deg)", f"F ({unit})"]))
-    barriers = _pooled(_read_csv(folder, "barriers.csv"))
+    barriers = _pooled(read_optional(folder, "barriers.csv"))
     if barriers is not None and len(barriers):
         barriers["between minima (deg)"] = [f"{_fmt(a)} → {_fmt(b)}" for a, b in
                                             zip(barriers["from_minimum_deg"], barriers["to_minimum_deg"])]
@@ -372,7 +361,7 @@ def _profiles(folder, figs):
         parts.append(f"<h3>Barriers (pooled per type; heights in {_e(unit)})</h3>")
         parts.append(_table(barriers, ["type", "between minima (deg)", "top (deg)", f"F ({unit})",
                                        "height from first", "height from second", "sampled"]))
-    dg = _pooled(_read_csv(folder, "state_free_energies.csv"))
+    dg = _pooled(read_optional(folder, "state_free_energies.csv"))
     if dg is not None and len(dg):
         dg["population"] = _pm_columns(dg, "population", "population_err")
         dg[f"ΔG ({unit})"] = _pm_columns(dg, f"free_energy_{suffix}", f"free_energy_err_{suffix}", 2)
@@ -385,13 +374,12 @@ def _profiles(folder, figs):
 
 
 def _comparison(folder):
-    table = _read_csv(folder, "comparison.csv")
-    details = _read_json(folder, "comparison.json")
-    parts = ["<section id='comparison'><h2>Comparison with the static scan</h2>"]
+    table = read_optional(folder, "comparison.csv")
+    details = read_optional_json(folder, "comparison.json")
     if table is None:
-        parts.append("<p class='missing'>No comparison in this folder (run <code>dihedra compare DIR --scan "
-                     "FILE</code>).</p></section>")
-        return "".join(parts)
+        return _missing("comparison", "Comparison with the static scan", "comparison",
+                        "dihedra compare DIR --scan FILE")
+    parts = ["<section id='comparison'><h2>Comparison with the static scan</h2>"]
     scan = (details or {}).get("scan", {})
     if scan:
         parts.append(f"<p class='lead'>Scan: {_e(scan.get('source'))} (kind: {_e(scan.get('kind'))}). Temperature "
@@ -421,12 +409,10 @@ def _comparison(folder):
 
 
 def _kinetics(folder, figs):
-    info = _read_json(folder, "kinetics.json")
-    parts = ["<section id='kinetics'><h2>Kinetics</h2>"]
+    info = read_optional_json(folder, "kinetics.json")
     if info is None:
-        parts.append("<p class='missing'>No kinetics in this folder (run <code>dihedra kinetics DIR</code>).</p>"
-                     "</section>")
-        return "".join(parts)
+        return _missing("kinetics", "Kinetics", "kinetics", "dihedra kinetics DIR")
+    parts = ["<section id='kinetics'><h2>Kinetics</h2>"]
     p = info.get("parameters", {})
     parts.append(_kv([("state assignment", p.get("assignment")), ("core margin (deg)", p.get("core_margin_deg")),
                       ("time between frames (ps)", p.get("frame_interval_ps")),
@@ -435,7 +421,7 @@ def _kinetics(folder, figs):
                       ("rate estimator", p.get("rate_estimator")), ("dwell times", p.get("lifetime_censoring")),
                       ("Markov model", p.get("markov_estimator"))]))
     parts.append(_callout("Caution", [p.get("caution")], "caution"))
-    tr = _read_csv(folder, "transitions.csv")
+    tr = read_optional(folder, "transitions.csv")
     if tr is not None and len(tr):
         sub = tr[tr["level"] == "type"].copy()
         sub["rate (1/ps)"] = [_pm(r, e, 4) for r, e in zip(sub["rate_per_ps"], sub["rate_err_per_ps"])]
@@ -445,7 +431,7 @@ def _kinetics(folder, figs):
         parts.append(_table(sub, [c for c in cols if c in sub.columns],
                             ["type", "from", "to", "transitions", "rate (1/ps)", "Eyring barrier (kJ/mol)",
                              "profile barrier (kJ/mol)"], what="transitions"))
-    lt = _read_csv(folder, "lifetimes.csv")
+    lt = read_optional(folder, "lifetimes.csv")
     if lt is not None and len(lt):
         sub = lt[lt["level"] == "type"].copy()
         sub["mean (ps) [95% CI]"] = [f"{_fmt(m)} [{_fmt(a)}, {_fmt(b)}]" for m, a, b in
@@ -458,7 +444,7 @@ def _kinetics(folder, figs):
                                   "visits (censored)", "population: frames / rates"],
                             ["type", "state", "mean (ps) [95% CI]", "median (ps)", "1 / exit rate (ps)",
                              "visits (censored)", "population: frames / rates"], what="states"))
-    ts = _read_csv(folder, "timescales.csv")
+    ts = read_optional(folder, "timescales.csv")
     if ts is not None and len(ts):
         sub = ts[(ts["level"] == "type") & (ts["index"] == 1)]
         if len(sub):
@@ -471,13 +457,11 @@ def _kinetics(folder, figs):
 
 
 def _couplings(folder, figs):
-    table = _read_csv(folder, "couplings.csv")
-    info = _read_json(folder, "couplings.json")
-    parts = ["<section id='couplings'><h2>3J couplings</h2>"]
+    table = read_optional(folder, "couplings.csv")
+    info = read_optional_json(folder, "couplings.json")
     if table is None:
-        parts.append("<p class='missing'>No couplings in this folder (run <code>dihedra couplings DIR --relation "
-                     "NAME</code>).</p></section>")
-        return "".join(parts)
+        return _missing("couplings", "3J couplings", "couplings", "dihedra couplings DIR --relation NAME")
+    parts = ["<section id='couplings'><h2>3J couplings</h2>"]
     cols = [c for c in ("relation", "torsion", "type", "j_hz", "j_err_hz", "j_systematic_hz") if c in table.columns]
     parts.append(_table(table, cols, what="couplings"))
     exp = (info or {}).get("experimental") or {}
@@ -536,7 +520,7 @@ def build_report(folder, width="single", figures=True, log=None):
         skipped = fset.skipped
     notices = [("track", n) for n in summary.get("notices", [])]
     for name, step in (("profiles.json", "profile"), ("kinetics.json", "kinetics"), ("couplings.json", "couplings")):
-        doc = _read_json(folder, name) or {}
+        doc = read_optional_json(folder, name) or {}
         notices += [(step, n) for n in doc.get("notices", [])]
     temp = summary.get("temperature_k")
     n_types = len(set(result.torsion_set.types))

@@ -3,13 +3,12 @@ of a folder, file formats, and that nothing overlaps or leaves the figure at jou
 
 import itertools
 import os
-import re
 
 import matplotlib
 import numpy as np
 import pandas as pd
 import pytest
-from figure_data import CENTRES_DEG, full_folder, track_only_folder  # noqa: F401  (fixtures)
+from figure_data import full_folder, track_only_folder  # noqa: F401  (fixtures)
 from matplotlib.collections import PolyCollection, QuadMesh
 from matplotlib.colors import to_hex, to_rgb
 from matplotlib.figure import Figure
@@ -249,8 +248,9 @@ def test_population_bars_heights_colours_and_sources():
     scheme = get_scheme("anti-gauche")
     pops = pd.DataFrame({"type": ["A"] * 3 + ["B"] * 3, "state": list(scheme.labels) * 2,
                          "population": [0.6, 0.2, 0.2, 0.5, 0.3, 0.2], "population_err": [0.01] * 6})
-    comparison = pd.DataFrame({"type": ["A"], "predicted_population_anti": [0.55], "predicted_population_gauche+": [0.25],
-                               "predicted_population_gauche-": [0.2], "population_anti": [0.6]})
+    comparison = pd.DataFrame({"type": ["A"], "predicted_population_anti": [0.55],
+                               "predicted_population_gauche+": [0.25], "predicted_population_gauche-": [0.2],
+                               "population_anti": [0.6]})
     predicted, reference = plots.comparison_populations(comparison)
     assert len(predicted) == 3 and len(reference) == 0
     ax = plots.plot_populations(pops, scheme, predicted=predicted, ax=new_ax())
@@ -304,7 +304,8 @@ def test_free_energy_map_is_periodic_with_contours_in_kj_per_mol():
 # ------------------------------------------------------------------------------------------------
 def kinetics_tables():
     lifetimes = pd.DataFrame({"level": "type", "name": "T", "type": "T", "state": ["anti", "gauche+", "gauche-"],
-                              "mean_ps": [40.0, 12.0, 11.0], "median_ps": [28.0, 8.0, 7.5], "ci_low_ps": [35.0, 10.0, 9.0],
+                              "mean_ps": [40.0, 12.0, 11.0], "median_ps": [28.0, 8.0, 7.5],
+                              "ci_low_ps": [35.0, 10.0, 9.0],
                               "ci_high_ps": [45.0, 14.0, 13.0], "mean_from_rates_ps": [40.0, 12.5, 11.0],
                               "population_counted": [0.6, 0.25, 0.15]})
     transitions = pd.DataFrame({"level": "type", "name": "T", "from_state": ["anti", "anti", "gauche+", "gauche-",
@@ -339,7 +340,8 @@ def test_lifetimes_exponential_from_the_rates_and_observed_markers():
     transitions, lifetimes = kinetics_tables()
     ax = plots.plot_lifetimes(lifetimes, "T", scheme=get_scheme("anti-gauche"), ax=new_ax())
     assert ax.get_yscale() == "log"
-    dashed = [ln for ln in ax.get_lines() if ln.get_linestyle() not in ("-", "None", "none") and len(ln.get_xdata()) > 2]
+    dashed = [ln for ln in ax.get_lines()
+              if ln.get_linestyle() not in ("-", "None", "none") and len(ln.get_xdata()) > 2]
     assert len(dashed) == 3
     for ln, tau in zip(dashed, lifetimes["mean_from_rates_ps"]):
         t = np.asarray(ln.get_xdata())

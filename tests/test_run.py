@@ -5,7 +5,6 @@ import argparse
 import json
 import os
 import re
-import shutil
 
 import pandas as pd
 import pytest
@@ -57,7 +56,8 @@ def test_unknown_key_names_the_key_and_the_valid_ones(tmp_path):
     assert "unknown key 'keep_angle'" in msg and "[track]" in msg
     assert msg.endswith(", ".join(valid) + ".")
     toml = write(tmp_path / "b.toml", 'out = "res"\ntitle = "x"\n[report]\n')
-    with pytest.raises(DihedraError, match="unknown top-level key 'title'; valid top-level keys are base_dir, out, steps"):
+    with pytest.raises(DihedraError,
+                       match="unknown top-level key 'title'; valid top-level keys are base_dir, out, steps"):
         load_pipeline(toml)
     toml = write(tmp_path / "c.toml", 'out = "res"\n[plot]\n')
     with pytest.raises(DihedraError, match=r"unknown table \[plot\]"):
@@ -83,10 +83,10 @@ def test_dashes_or_underscores_and_relative_paths(tmp_path, monkeypatch):
     os.makedirs(sub)
     write(sub / "sectors.toml", '[[state]]\nlabel = "trans"\nfrom_deg = 90\nto_deg = -90\n'
                                 '[[state]]\nlabel = "cis"\nfrom_deg = -90\nto_deg = 90\n')
-    a = write(sub / "a.toml", 'out = "res"\n[track]\ntopology = "in/top.pdb"\ntrajectories = ["in/r0.xtc", "in/r1.xtc"]\n'
-                              'keep-angles = true\nscheme = "sectors.toml"\ntorsions = ["rotatable"]\ndt-ps = 2.5\n')
-    b = write(sub / "b.toml", 'out = "res"\n[track]\ntopology = "in/top.pdb"\ntrajectories = ["in/r0.xtc", "in/r1.xtc"]\n'
-                              'keep_angles = true\nscheme = "sectors.toml"\ntorsions = ["rotatable"]\ndt_ps = 2.5\n')
+    head = 'out = "res"\n[track]\ntopology = "in/top.pdb"\ntrajectories = ["in/r0.xtc", "in/r1.xtc"]\n'
+    rest = 'scheme = "sectors.toml"\ntorsions = ["rotatable"]\n'
+    a = write(sub / "a.toml", head + rest + "keep-angles = true\ndt-ps = 2.5\n")
+    b = write(sub / "b.toml", head + rest + "keep_angles = true\ndt_ps = 2.5\n")
     monkeypatch.chdir(tmp_path)  # somewhere else: paths are relative to the file, not to the cwd
     pa, pb = load_pipeline(a), load_pipeline(b)
     assert pa.steps[0].argv == pb.steps[0].argv
@@ -162,8 +162,9 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     data = tmp_path / "data"
     os.makedirs(data)
     top, trajs = make_system(str(data), n_replicas=1, n_frames=40, n_molecules=2)
-    toml = write(tmp_path / "f.toml", f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\ntorsions = ["rotatable"]\n'
-                                      '[compare]\nscan = "missing-scan.csv"\nangle_unit = "deg"\nenergy_unit = "kJ/mol"\n')
+    toml = write(tmp_path / "f.toml",
+                 f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\ntorsions = ["rotatable"]\n'
+                 '[compare]\nscan = "missing-scan.csv"\nangle_unit = "deg"\nenergy_unit = "kJ/mol"\n')
     assert main(["run", toml]) == 2
     err = capsys.readouterr().err
     assert "step compare (f.toml, [compare]) failed" in err
@@ -228,3 +229,13 @@ def test_argparse_internals_used_by_the_pipeline_are_there():
     # the pipeline reads the subparsers through argparse's _SubParsersAction (a stable internal)
     parser = build_parser()
     assert any(isinstance(a, argparse._SubParsersAction) for a in parser._actions)
+
+
+def test_the_full_example_of_the_docs_is_a_valid_analysis_file(tmp_path):
+    docs = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "docs", "pipelines.md")
+    text = open(docs).read()
+    block = re.search(r"## A full example\s+```toml\n(.*?)```", text, flags=re.S).group(1)
+    pipe = load_pipeline(write(tmp_path / "analysis.toml", block))
+    assert [s.name for s in pipe.steps] == ["track", "profile", "compare", "kinetics", "couplings", "figures",
+                                           "report"]
+    assert pipe.steps[0].argv[:3] == [str(tmp_path / "inputs" / x) for x in ("hexane.pdb", "run1.xtc", "run2.xtc")]
