@@ -326,3 +326,73 @@ def test_command_line(rb_folder, tmp_path, capsys):
         info = json.load(fh)
     assert info["relations"][0]["citation"].startswith("Karplus")
     assert main(["couplings", rb_folder.folder, "--relation", "nope"]) == 2
+
+
+# ------------------------------------------------------------------------------------------------
+# Reference (measured) state populations, in the comparison output
+# ------------------------------------------------------------------------------------------------
+
+def boltzmann_anti(energy=rb_energy):
+    """Fraction of exp(-V/kT) with |phi| > 120 deg (scipy.integrate.quad; no Jacobian for a torsion)."""
+    kt = kt_kj_mol(T)
+    w = lambda x: np.exp(-energy(x) / kt)  # noqa: E731
+    z = integrate.quad(w, -180, 180, points=[-120, 0, 120], limit=200)[0]
+    return (integrate.quad(w, 120, 180)[0] + integrate.quad(w, -180, -120)[0]) / z
+
+
+def test_reference_populations_z_scores_and_verdicts(rb_folder, tmp_path):
+    from dihedra.reference_populations import compare_reference_populations, read_reference_populations
+
+    ttype = rb_folder.torsion_set.types[0]
+    anti = boltzmann_anti()
+    path = tmp_path / "ref.csv"
+    pd.DataFrame({"type": [ttype, ttype], "state": ["anti", "gauche+|gauche-"],
+                  "population": [anti, 1 - anti], "population_err": [0.01, 0.01]}).to_csv(path, index=False)
+    rows, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    # analytic: exact Boltzmann populations of the sampled potential are consistent
+    assert verdicts.iloc[0]["verdict"] == "consistent"
+    # analytic identity: gauche+ + gauche- = 1 - anti, with the same standard error
+    assert rows.iloc[1]["population"] == pytest.approx(1 - rows.iloc[0]["population"], abs=1e-12)
+    assert rows.iloc[1]["population_err"] == pytest.approx(rows.iloc[0]["population_err"], rel=1e-6)
+    assert rows.iloc[0]["z_score"] == pytest.approx(
+        (rows.iloc[0]["population"] - anti) / np.hypot(rows.iloc[0]["population_err"], 0.01))
+    # a reference 0.1 off is inconsistent (|z| > 3), one 2.5 sigma off is in tension
+    pd.DataFrame({"type": [ttype], "state": ["anti"], "population": [anti - 0.1],
+                  "population_err": [0.01]}).to_csv(path, index=False)
+    _, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    assert verdicts.iloc[0]["verdict"] == "inconsistent"
+    p, se = rows.iloc[0]["population"], rows.iloc[0]["population_err"]
+    pd.DataFrame({"type": [ttype], "state": ["anti"], "population": [p - 2.5 * np.hypot(se, 0.001)],
+                  "population_err": [0.001]}).to_csv(path, index=False)
+    _, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    assert verdicts.iloc[0]["verdict"] == "tension"
+    pd.DataFrame({"type": [ttype], "state": ["trans"], "population": [0.5],
+                  "population_err": [0.01]}).to_csv(path, index=False)
+    with pytest.raises(DihedraError, match="not a state of the scheme"):
+        compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+
+
+def test_reference_populations_in_the_comparison_output(rb_folder, tmp_path, capsys):
+    from dihedra.cli import main
+
+    ttype = rb_folder.torsion_set.types[0]
+    ref = tmp_path / "ref.csv"
+    pd.DataFrame({"type": [ttype], "state": ["anti"], "population": [boltzmann_anti()],
+                  "population_err": [0.01]}).to_csv(ref, index=False)
+    assert main(["compare", rb_folder.folder, "--reference-populations", str(ref)]) == 0
+    table = pd.read_csv(os.path.join(rb_folder.folder, "comparison.csv"))
+    assert table.loc[0, "reference_verdict"] == "consistent"
+    assert "reference_z_score_anti" in table.columns
+    # with a scan (the RB potential itself as a CSV) both sit in the same comparison.csv row
+    scan = tmp_path / "scan.csv"
+    grid = np.arange(-180.0, 180.0, 5.0)
+    pd.DataFrame({"angle_deg": grid, "energy_kj_mol": rb_energy(grid)}).to_csv(scan, index=False)
+    assert main(["compare", rb_folder.folder, "--scan", str(scan), "--reference-populations", str(ref),
+                 "--bootstrap", "50"]) == 0
+    table = pd.read_csv(os.path.join(rb_folder.folder, "comparison.csv"))
+    assert len(table) == 1 and {"verdict", "reference_verdict"} <= set(table.columns)
+    with open(os.path.join(rb_folder.folder, "comparison.json")) as fh:
+        info = json.load(fh)
+    assert info["reference_populations"]["verdicts"][0]["verdict"] == "consistent"
+    assert "reference populations" in capsys.readouterr().out
+    assert main(["compare", rb_folder.folder]) == 2

@@ -1,8 +1,11 @@
 """``dihedra compare``: sampled free-energy profile versus a static torsion scan, with a verdict per type."""
 
 from ..compare import Thresholds, compare_with_scan, format_comparison, write_comparison
+from ..errors import DihedraError
 from ..profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, resolve_temperature
 from ..resultsdir import load_results
+from ..reference_populations import (add_to_comparison, compare_reference_populations, format_reference,
+                                     read_reference_populations)
 from ..scans import read_scan
 from .common import say
 
@@ -15,9 +18,13 @@ def register(sub):
                     "'dihedra scan'): aligned profiles, RMSE, minima and barriers, state populations with "
                     "z-scores, Jensen-Shannon divergence and a verdict (consistent / inconsistent / "
                     "undersampled). Writes comparison.csv, comparison_profiles.csv and comparison.json "
-                    "into DIR.")
+                    "into DIR. With --reference-populations, measured state populations are compared too "
+                    "(z-scores, a verdict per type; columns reference_* of comparison.csv).")
     p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track'")
-    p.add_argument("--scan", required=True, metavar="FILE", help="scan CSV, or a .toml parameter file")
+    p.add_argument("--scan", default=None, metavar="FILE", help="scan CSV, or a .toml parameter file")
+    p.add_argument("--reference-populations", default=None, metavar="FILE",
+                   help="CSV of measured or reference state populations (type, state, population, "
+                        "population_err; 'A|B' sums states): z-scores and a verdict in the same output")
     p.add_argument("--angle-unit", choices=["deg", "rad"], default=None,
                    help="unit of the scan's angles (required unless the column name carries it)")
     p.add_argument("--energy-unit", default=None, metavar="UNIT",
@@ -43,7 +50,11 @@ def register(sub):
 
 
 def run(args):
+    if args.scan is None and args.reference_populations is None:
+        raise DihedraError("give --scan FILE, --reference-populations FILE, or both.")
     result = load_results(args.folder)
+    if args.scan is None:
+        return run_reference_only(args, result)
     temperature = resolve_temperature(args.temperature, result.summary, say)
     scan = read_scan(args.scan, angle_unit=args.angle_unit, energy_unit=args.energy_unit, columns=args.columns,
                      kind=args.scan_kind, temperature_k=temperature)
@@ -51,6 +62,26 @@ def run(args):
     cmp = compare_with_scan(result, scan, temperature_k=temperature, types=args.type,
                             bin_width_deg=args.bin_width, thresholds=thresholds, n_bootstrap=args.bootstrap,
                             seed=args.seed)
+    rows = None
+    if args.reference_populations:
+        rows, verdicts = compare_reference_populations(result, read_reference_populations(args.reference_populations))
+        cmp.table = add_to_comparison(cmp.table, cmp.details, rows, verdicts, args.reference_populations)
     paths = write_comparison(cmp, result.folder)
     print(format_comparison(cmp))
+    if rows is not None:
+        print("\n" + format_reference(rows, verdicts))
+    print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
+
+
+def run_reference_only(args, result):
+    """Reference populations without a scan: comparison.csv and comparison.json only."""
+    from ..compare import _jsonable
+    from ..profiles import write_json_replacing, write_table_replacing
+
+    rows, verdicts = compare_reference_populations(result, read_reference_populations(args.reference_populations))
+    details = {"scheme": result.scheme.name}
+    table = add_to_comparison(None, details, rows, verdicts, args.reference_populations)
+    paths = [write_table_replacing(table, result.folder, "comparison.csv"),
+             write_json_replacing(_jsonable(details), result.folder, "comparison.json")]
+    print(format_reference(rows, verdicts))
     print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
