@@ -230,3 +230,26 @@ def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     with pytest.raises(KeyboardInterrupt):
         track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"))
     assert os.listdir(tmp_path) == []
+
+
+def test_simulated_rb_butane_populations_match_boltzmann_integral():
+    # A united-atom butane gas simulated with OpenMM (example_trajectories/make_examples.py), RB torsion
+    # and no 1-4 nonbonded terms: pooled anti/gauche populations agree with the Boltzmann integral of
+    # the RB potential (Ryckaert & Bellemans 1978 coefficients, CHECK-VALUES.md; scipy.integrate.quad,
+    # no Jacobian for a torsion) within 3 standard errors.
+    from dihedra import example_path
+    top, traj = example_path("butane_rb.pdb"), example_path("butane_rb.xtc")
+    if not os.path.exists(traj):
+        pytest.skip("butane_rb example not present")
+    res = track(top, [traj], torsions="rotatable", scheme="anti-gauche")
+    assert res.torsions["type"].nunique() == 1 and len(res.torsions) == 100
+    pops = res.populations_by_type.set_index("state")
+    kt = kt_kj_mol(298.15)
+    f = lambda x: np.exp(-rb_kj_mol(x) / kt)  # noqa: E731
+    total = integrate.quad(f, -180, 180, points=[-120, 0, 120], limit=200)[0]
+    expected = {"anti": boltzmann_anti_fraction(298.15),
+                "gauche+": integrate.quad(f, 0, 120)[0] / total,
+                "gauche-": integrate.quad(f, -120, 0)[0] / total}
+    for state, p in expected.items():
+        assert abs(pops.loc[state, "population"] - p) < 3 * pops.loc[state, "population_err"], state
+        assert pops.loc[state, "population_err"] < 0.02  # the check has teeth
