@@ -494,7 +494,8 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     Rows: the given torsions, or all of them, grouped by type (in the order of ``torsions.csv``
     within a type); more than ``max_rows`` are thinned to an evenly spaced subset. Columns: the frames
     of each replica cut into at most ``max_columns`` columns in total (in proportion to the replica
-    lengths); each cell holds the most frequent state of its frames (ties: the lower code).
+    lengths, every column the same whole number of frames, the last one of a replica possibly
+    fewer); each cell holds the most frequent state of its frames (ties: the lower code).
 
     Returns
     -------
@@ -521,8 +522,8 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     frames = np.array([n for n, _ in info], dtype=np.int64)
     if not len(frames) or frames.sum() == 0:
         raise DihedraError(f"{folder}/summary.json lists no analysed frames.")
-    n_cols = np.maximum(1, np.round(max_columns * frames / frames.sum())).astype(np.int64)
-    n_cols = np.minimum(n_cols, np.maximum(frames, 1))
+    per_col = max(1, int(np.ceil(frames.sum() / max(1, int(max_columns)))))  # whole frames per column
+    n_cols = np.maximum(1, -(-frames // per_col)).astype(np.int64)
     col_offset = np.r_[0, np.cumsum(n_cols)[:-1]]
     total_cols = int(n_cols.sum())
     n_rows = len(labels)
@@ -537,7 +538,7 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
             sel = np.flatnonzero(rep == r)
             pos[sel] = seen[r] + np.arange(len(sel))
             seen[r] += len(sel)
-        col = col_offset[rep] + np.minimum(pos * n_cols[rep] // np.maximum(frames[rep], 1), n_cols[rep] - 1)
+        col = col_offset[rep] + np.minimum(pos // per_col, n_cols[rep] - 1)
         codes = chunk[labels].to_numpy(np.int64) + 1  # -1 -> 0
         flat = (row_index[None, :] * total_cols + col[:, None]) * width + codes
         counts += np.bincount(flat.ravel(), minlength=counts.size)
@@ -550,7 +551,7 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     for r, (n, dt) in enumerate(info):
         spans.append((int(col_offset[r]), int(n_cols[r]), n * (dt if dt is not None else 1.0)))
     return StateRaster(codes=mode, rows=labels, row_types=[types.get(x, "") for x in labels],
-                       replica_columns=spans, frames_per_column=float(np.max(frames / n_cols)),
+                       replica_columns=spans, frames_per_column=float(per_col),
                        n_torsions=len(all_labels), time_known=all(dt is not None for _, dt in info))
 
 

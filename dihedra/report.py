@@ -57,7 +57,8 @@ h2 { font-size: 1.25rem; border-bottom: 2px solid var(--ink); padding-bottom: 0.
 h3 { font-size: 1.02rem; margin: 1.4rem 0 0.5rem; }
 p.lead { color: var(--muted); margin-top: 0; }
 table { border-collapse: collapse; margin: 0.4rem 0 1rem; font-size: 0.85rem; }
-th, td { padding: 0.22rem 0.65rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top; }
+th, td { padding: 0.22rem 0.65rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top;
+         overflow-wrap: anywhere; }
 th { background: var(--band); font-weight: 600; }
 td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 td.hash { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.78rem; }
@@ -69,7 +70,7 @@ tr:nth-child(even) td { background: #FAFBFC; }
 .callout.caution { border-left-color: var(--caution); }
 .callout h4 { margin: 0 0 0.3rem; font-size: 0.92rem; }
 .verdict { display: inline-block; padding: 0.05rem 0.5rem; border-radius: 0.7rem; font-weight: 600;
-           font-size: 0.8rem; border: 1px solid currentColor; }
+           font-size: 0.8rem; border: 1px solid currentColor; white-space: nowrap; overflow-wrap: normal; }
 .v-consistent { color: #005C8F; background: #E5F1F8; }
 .v-inconsistent { color: #A34400; background: #FBEDE3; }
 .v-undersampled, .v-tension, .v-other { color: #6B4F00; background: #FBF4DF; }
@@ -127,13 +128,9 @@ def _fmt(value):
             return "–"
         if a == 0:
             return "0"
-        if a < 1e-3 or a >= 1e6:
-            return f"{v:.2e}"
-        if a >= 100:
-            return f"{v:.1f}"
-        if a >= 1:
-            return f"{v:.2f}"
-        return f"{v:.3g}"
+        if a < 1e-3 or a >= 1e7:
+            return f"{v:.3e}"
+        return f"{v:.6g}" if a >= 1 else f"{v:.4g}"  # as many digits as the CSV files keep
     text = str(value)
     return "–" if text in ("nan", "None", "") else text
 
@@ -386,20 +383,25 @@ def _comparison(folder):
                      f"{_fmt((details or {}).get('temperature_k'))} K.</p>")
     rows = table.copy()
     rows["verdict"] = [_verdict(v) for v in rows["verdict"]]
-    cols = [c for c in ("type", "verdict", "verdict_reason", "n_reliable_bins", "rmse_kj_mol", "excess_rmse_kj_mol",
+    cols = [c for c in ("type", "verdict", "n_reliable_bins", "rmse_kj_mol", "excess_rmse_kj_mol",
                         "max_abs_difference_kj_mol", "js_divergence_bits", "offset_kj_mol") if c in rows.columns]
-    parts.append(_table(rows, cols, ["type", "verdict", "reason", "reliable bins", "RMSE (kJ/mol)",
-                                     "excess RMSE (kJ/mol)", "max |ΔF| (kJ/mol)", "JS divergence (bits)",
-                                     "offset (kJ/mol)"][:len(cols)], raw=("verdict",), what="types"))
-    for t, d in ((details or {}).get("types", {}) or {}).items():
-        states = pd.DataFrame(d.get("states", []))
+    names = {"type": "type", "verdict": "verdict", "n_reliable_bins": "reliable bins", "rmse_kj_mol": "RMSE (kJ/mol)",
+             "excess_rmse_kj_mol": "excess RMSE (kJ/mol)", "max_abs_difference_kj_mol": "max |ΔF| (kJ/mol)",
+             "js_divergence_bits": "JS divergence (bits)", "offset_kj_mol": "offset (kJ/mol)"}
+    parts.append(_table(rows, cols, [names[c] for c in cols], raw=("verdict",), what="types"))
+    per_type = (details or {}).get("types", {}) or {}
+    for row in table.itertuples(index=False):
+        t = row.type
+        parts.append(f"<h3>{_e(t)} {_verdict(row.verdict)}</h3>")
+        if "verdict_reason" in table.columns:
+            parts.append(f"<p>{_e(row.verdict_reason)}</p>")
+        states = pd.DataFrame((per_type.get(t) or {}).get("states", []))
         if len(states):
             states["sampled"] = [_pm(p, e) for p, e in zip(states["population"], states["population_err"])]
             states["ddG (kJ/mol)"] = [_pm(g, e, 2) for g, e in zip(states["ddg_kj_mol"],
                                                                     states["free_energy_err_kj_mol"])]
-            parts.append(f"<h3>States of {_e(t)}: sampled against predicted from the scan</h3>")
             parts.append(_table(states, ["state", "sampled", "predicted_population", "z_score", "ddG (kJ/mol)"],
-                                ["state", "sampled population", "predicted population", "z", "ΔΔG (kJ/mol)"]))
+                                ["state", "sampled population", "predicted from the scan", "z", "ΔΔG (kJ/mol)"]))
     rules = (details or {}).get("rules", {})
     if rules:
         parts.append("<h3>Verdict rules</h3>" + _kv(rules.items()))
@@ -448,9 +450,12 @@ def _kinetics(folder, figs):
     if ts is not None and len(ts):
         sub = ts[(ts["level"] == "type") & (ts["index"] == 1)]
         if len(sub):
-            parts.append("<h3>Slowest implied timescale per type against the lag time</h3>"
+            parts.append("<h3>Slowest implied timescale (ps) per type against the lag time</h3>"
                          "<p class='lead'>A Markov model is usable from the lag where this stops changing.</p>")
-            parts.append(_table(sub, ["name", "lag_ps", "timescale_ps"], ["type", "lag (ps)", "timescale (ps)"]))
+            wide = sub.pivot_table(index="name", columns="lag_ps", values="timescale_ps", sort=False)
+            wide.columns = [f"lag {_fmt(float(c))} ps" for c in wide.columns]
+            wide = wide.reset_index().rename(columns={"name": "type"})
+            parts.append(_table(wide, what="types"))
     parts.append(_figures_html(figs.get("transitions", []) + figs.get("lifetimes", [])))
     parts.append("</section>")
     return "".join(parts)
@@ -547,8 +552,10 @@ def build_report(folder, width="single", figures=True, log=None):
     if skipped:
         notes += "<p class='lead'>What this folder lacks for the remaining figures:</p><ul class='note-list'>" + \
             "".join(f"<li>{_e(s)}</li>" for s in skipped) + "</ul>"
-    else:
+    elif figures:
         notes += "<p class='missing'>Every figure could be made.</p>"
+    else:
+        notes += "<p class='missing'>Figures were left out (--no-figures).</p>"
     notes += "</section>"
     foot = ("<footer>Self-contained report: no scripts, no external requests; figures are embedded SVG. "
             "Tables show the first rows; the folder holds the full CSV files.</footer>")
