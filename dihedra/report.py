@@ -55,6 +55,7 @@ main { max-width: 1120px; padding: 0 2rem 3rem; }
 section { margin-top: 2.2rem; }
 h2 { font-size: 1.25rem; border-bottom: 2px solid var(--ink); padding-bottom: 0.2rem; margin: 0 0 0.8rem; }
 h3 { font-size: 1.02rem; margin: 1.4rem 0 0.5rem; }
+h4 { font-size: 0.95rem; margin: 1.1rem 0 0.4rem; }
 p.lead { color: var(--muted); margin-top: 0; }
 table { border-collapse: collapse; margin: 0.4rem 0 1rem; font-size: 0.85rem; }
 th, td { padding: 0.22rem 0.65rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top;
@@ -91,7 +92,7 @@ footer { color: var(--muted); font-size: 0.8rem; border-top: 1px solid var(--rul
   header.top p { color: var(--muted); }
   main { padding: 0; max-width: none; }
   section { break-before: auto; }
-  h2, h3 { break-after: avoid; }
+  h2, h3, h4 { break-after: avoid; }
   figure, .callout, tr { break-inside: avoid; }
   figure img { width: var(--w); }
   figcaption { max-width: var(--w); }
@@ -372,27 +373,38 @@ def _profiles(folder, figs):
 
 def _comparison(folder):
     table = read_optional(folder, "comparison.csv")
-    details = read_optional_json(folder, "comparison.json")
+    details = read_optional_json(folder, "comparison.json") or {}
+    title = "Comparison with the static scan and reference populations"
     if table is None:
-        return _missing("comparison", "Comparison with the static scan", "comparison",
-                        "dihedra compare DIR --scan FILE")
-    parts = ["<section id='comparison'><h2>Comparison with the static scan</h2>"]
-    scan = (details or {}).get("scan", {})
+        return _missing("comparison", title, "comparison",
+                        "dihedra compare DIR --scan FILE [--reference-populations FILE]")
+    parts = [f"<section id='comparison'><h2>{_e(title)}</h2>"]
+    if "verdict" in table.columns:
+        parts.append(_scan_comparison(table[table["verdict"].notna()], details))
+    if "reference_verdict" in table.columns:
+        parts.append(_reference_comparison(table[table["reference_verdict"].notna()],
+                                           details.get("reference_populations") or {}))
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _scan_comparison(table, details):
+    parts = ["<h3>Static scan</h3>"]
+    scan = details.get("scan", {})
     if scan:
         parts.append(f"<p class='lead'>Scan: {_e(scan.get('source'))} (kind: {_e(scan.get('kind'))}). Temperature "
-                     f"{_fmt((details or {}).get('temperature_k'))} K.</p>")
+                     f"{_fmt(details.get('temperature_k'))} K.</p>")
     rows = table.copy()
     rows["verdict"] = [_verdict(v) for v in rows["verdict"]]
-    cols = [c for c in ("type", "verdict", "n_reliable_bins", "rmse_kj_mol", "excess_rmse_kj_mol",
-                        "max_abs_difference_kj_mol", "js_divergence_bits", "offset_kj_mol") if c in rows.columns]
     names = {"type": "type", "verdict": "verdict", "n_reliable_bins": "reliable bins", "rmse_kj_mol": "RMSE (kJ/mol)",
              "excess_rmse_kj_mol": "excess RMSE (kJ/mol)", "max_abs_difference_kj_mol": "max |ΔF| (kJ/mol)",
              "js_divergence_bits": "JS divergence (bits)", "offset_kj_mol": "offset (kJ/mol)"}
+    cols = [c for c in names if c in rows.columns]
     parts.append(_table(rows, cols, [names[c] for c in cols], raw=("verdict",), what="types"))
-    per_type = (details or {}).get("types", {}) or {}
+    per_type = details.get("types", {}) or {}
     for row in table.itertuples(index=False):
         t = row.type
-        parts.append(f"<h3>{_e(t)} {_verdict(row.verdict)}</h3>")
+        parts.append(f"<h4>{_e(t)} {_verdict(row.verdict)}</h4>")
         if "verdict_reason" in table.columns:
             parts.append(f"<p>{_e(row.verdict_reason)}</p>")
         states = pd.DataFrame((per_type.get(t) or {}).get("states", []))
@@ -402,11 +414,32 @@ def _comparison(folder):
                                                                     states["free_energy_err_kj_mol"])]
             parts.append(_table(states, ["state", "sampled", "predicted_population", "z_score", "ddG (kJ/mol)"],
                                 ["state", "sampled population", "predicted from the scan", "z", "ΔΔG (kJ/mol)"]))
-    rules = (details or {}).get("rules", {})
+    rules = details.get("rules", {})
     if rules:
-        parts.append("<h3>Verdict rules</h3>" + _kv(rules.items()))
-    parts.append(_callout("What a difference can mean", (details or {}).get("cautions", []), "caution"))
-    parts.append("</section>")
+        parts.append("<h4>Verdict rules</h4>" + _kv(rules.items()))
+    parts.append(_callout("What a difference can mean", details.get("cautions", []), "caution"))
+    return "".join(parts)
+
+
+def _reference_comparison(table, ref):
+    parts = ["<h3>Reference populations</h3>"]
+    if ref.get("file"):
+        parts.append(f"<p class='lead'>Reference: {_e(ref['file'])}.</p>")
+    rows = pd.DataFrame(ref.get("rows", []))
+    for row in table.itertuples(index=False):
+        parts.append(f"<h4>{_e(row.type)} {_verdict(row.reference_verdict)}</h4>")
+        if "reference_verdict_reason" in table.columns:
+            parts.append(f"<p>{_e(row.reference_verdict_reason)}</p>")
+        sub = rows[rows["type"] == row.type].copy() if len(rows) else rows
+        if len(sub):
+            sub["sampled"] = [_pm(p, e) for p, e in zip(sub["population"], sub["population_err"])]
+            sub["reference"] = [_pm(p, e) for p, e in zip(sub["reference_population"],
+                                                           sub["reference_population_err"])]
+            parts.append(_table(sub, ["state", "sampled", "reference", "z_score"],
+                                ["state", "sampled population", "reference population", "z"]))
+    if ref.get("rules"):
+        parts.append("<h4>Verdict rules</h4>" + _kv(ref["rules"].items()))
+    parts.append(_callout("Cautions", ref.get("cautions", []), "caution"))
     return "".join(parts)
 
 

@@ -3,8 +3,8 @@
 Two replicas of four-site chains whose torsion follows a three-state Markov jump process between
 anti (180), gauche+ (65) and gauche- (-65) with Gaussian spread inside each well; written as XTC
 and run through every step of the command line (track with angles, profile with a pair, compare
-against a cosine-series scan, kinetics, couplings against made-up experimental values). The
-session fixture builds it once.
+against a cosine-series scan and made-up reference populations, kinetics, couplings against made-up
+experimental values). The session fixture builds it once.
 """
 
 import os
@@ -78,7 +78,11 @@ def build_folder(base, full=True):
         fh.write("torsion,J_hz,J_err_hz\nBUT1:C1-C2-C3-C4,4.0,0.3\nBUT2:C1-C2-C3-C4,4.4,0.3\n"
                  "BUT3:C1-C2-C3-C4,12.0,0.2\n")
     assert main(["profile", out, "--pair", "BUT1:C1-C2-C3-C4", "BUT2:C1-C2-C3-C4", "--bootstrap", "40"]) == 0
-    assert main(["compare", out, "--scan", scan, "--bootstrap", "40"]) == 0
+    reference = os.path.join(base, "reference_populations.csv")
+    with open(reference, "w") as fh:
+        fh.write("type,state,population,population_err\nBUT:C1-C2-C3-C4,anti,0.40,0.03\n"
+                 "BUT:C1-C2-C3-C4,gauche+,0.30,0.03\nBUT:C1-C2-C3-C4,gauche+|gauche-,0.60,0.05\n")
+    assert main(["compare", out, "--scan", scan, "--bootstrap", "40", "--reference-populations", reference]) == 0
     assert main(["kinetics", out, "--bootstrap", "50", "--lag", "1", "2", "5"]) == 0
     assert main(["couplings", out, "--relation", "karplus-1959", "--select", "BUT:C1-C2-C3-C4",
                  "--experimental", experimental]) == 0

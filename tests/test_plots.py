@@ -525,3 +525,20 @@ def test_figures_command(full_folder, tmp_path, capsys):
     assert os.path.join(folder, "figures", "profile_BUT_C1-C2-C3-C4.png") in out
     assert main(["figures", folder, "--types", "NOPE"]) == 2
     assert "no torsion type 'NOPE'" in capsys.readouterr().err
+
+
+def test_population_figure_of_a_folder_shows_sampled_scan_and_reference_values(full_folder):
+    comparison = pd.read_csv(os.path.join(full_folder, "comparison.csv"))
+    predicted, reference = plots.comparison_populations(comparison)
+    # the reference file (figure_data.py) gives anti 0.40 +- 0.03 and gauche+ 0.30 +- 0.03, plus a sum of
+    # states that is not one state of the scheme (drawn nowhere: a bar is one state)
+    assert set(reference["state"]) == {"anti", "gauche+", "gauche+|gauche-"}
+    res = load_results(full_folder)
+    ax = plots.plot_populations(res.populations_by_type, res.scheme, predicted=predicted, experiment=reference,
+                                ax=new_ax())
+    dotted = [b for b in ax.patches if isinstance(b, Rectangle) and b.get_hatch() == "...."]
+    assert sorted(round(b.get_height(), 6) for b in dotted) == [0.3, 0.4]
+    hatched = [b for b in ax.patches if isinstance(b, Rectangle) and b.get_hatch() == "//////"]
+    assert len(hatched) == 3
+    assert {t.get_text() for t in ax.get_legend().get_texts()} - {""} == {
+        "sampled", "predicted from the scan", "experiment / reference"}

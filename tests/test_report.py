@@ -163,3 +163,12 @@ def test_report_opens_in_headless_chromium_without_console_errors(full_report, t
     console, _ = run_chromium(str(bad))
     errors = " ".join(console_errors(console))
     assert "broken images: 1" in errors and "undefined_function" in errors
+
+
+def test_report_shows_the_reference_populations_and_their_verdict(full_folder, full_report):  # noqa: F811
+    _, text = full_report
+    table = pd.read_csv(os.path.join(full_folder, "comparison.csv"))
+    assert "Reference populations" in text
+    for verdict, reason in zip(table["reference_verdict"], table["reference_verdict_reason"]):
+        assert f">{verdict}</span>" in text and html.escape(reason) in text
+    assert "0.400 ± 0.030" in text and "gauche+|gauche-" in text
