@@ -100,25 +100,39 @@ def load_universe(topology, trajectory=None, notices=None):
 
 
 def _check_trailing_bytes(universe, trajectory, notices):
-    """Notice for an XTC/TRR file that ends with an incomplete frame after its last complete one
+    """Notice for an XTC file that ends with an incomplete frame after its last complete one
     (a run cut while writing): MDAnalysis then silently uses the complete frames only."""
     reader = universe.trajectory
     xdr = getattr(reader, "_xdr", None)
     if xdr is None or reader.n_frames == 0:
         return
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            reader[reader.n_frames - 1]
-            end = xdr.tell()
-            reader[0]
-    except Exception:  # noqa: BLE001 - an unreadable last frame is reported when the run reaches it
+        end = _xtc_frame_end(trajectory, int(xdr.offsets[-1]))
+    except Exception:  # noqa: BLE001 - not XTC, or an unreadable last frame (reported when the run reaches it)
         return
     size = os.path.getsize(trajectory)
     if end < size:
         notices.append(f"trajectory {trajectory} ends with an incomplete frame ({size - end} bytes after "
                        f"frame {reader.n_frames - 1}), as when a run is cut while writing; only the "
                        f"{reader.n_frames} complete frames are used.")
+
+
+def _xtc_frame_end(path, offset):
+    """Byte just after the XTC frame that starts at ``offset`` (XDR header: natoms at byte 4; more
+    than 9 atoms are compressed, with the byte count at byte 88, padded to 4). ``XTCFile.tell()``
+    counts frames, not bytes, so the end is read from the header."""
+    import struct
+
+    if not str(path).lower().endswith(".xtc"):
+        raise ValueError("not an XTC file")
+    with open(path, "rb") as fh:
+        fh.seek(offset)
+        head = fh.read(92)
+    natoms = struct.unpack(">i", head[4:8])[0]
+    if natoms <= 9:
+        return offset + 56 + 12 * natoms
+    nbytes = struct.unpack(">i", head[88:92])[0]
+    return offset + 92 + (nbytes + 3) // 4 * 4
 
 
 def _topology_atoms(path):
