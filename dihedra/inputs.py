@@ -100,39 +100,34 @@ def load_universe(topology, trajectory=None, notices=None):
 
 
 def _check_trailing_bytes(universe, trajectory, notices):
-    """Notice for an XTC file that ends with an incomplete frame after its last complete one
-    (a run cut while writing): MDAnalysis then silently uses the complete frames only."""
+    """Notice for an XTC file that ends with an incomplete frame after its last complete one (a run
+    cut while writing): MDAnalysis then silently uses the complete frames only.
+
+    The end of the last frame follows from the XTC frame layout (XDR, big-endian): for more than 9
+    atoms a 88-byte header ends with the byte count of the compressed coordinates, padded to 4 bytes.
+    """
     reader = universe.trajectory
-    xdr = getattr(reader, "_xdr", None)
-    if xdr is None or reader.n_frames == 0:
+    offsets = getattr(getattr(reader, "_xdr", None), "offsets", None)
+    if offsets is None or len(offsets) == 0 or not str(trajectory).lower().endswith(".xtc"):
         return
+    if reader.n_atoms <= 9:
+        return
+    last = int(offsets[-1])
     try:
-        end = _xtc_frame_end(trajectory, int(xdr.offsets[-1]))
-    except Exception:  # noqa: BLE001 - not XTC, or an unreadable last frame (reported when the run reaches it)
+        with open(trajectory, "rb") as fh:
+            fh.seek(last + 88)
+            raw = fh.read(4)
+    except OSError:
         return
+    if len(raw) < 4:
+        return  # the last frame itself is cut: reported when the run reaches it
+    n_bytes = int.from_bytes(raw, "big")
+    end = last + 92 + 4 * ((n_bytes + 3) // 4)
     size = os.path.getsize(trajectory)
     if end < size:
         notices.append(f"trajectory {trajectory} ends with an incomplete frame ({size - end} bytes after "
                        f"frame {reader.n_frames - 1}), as when a run is cut while writing; only the "
                        f"{reader.n_frames} complete frames are used.")
-
-
-def _xtc_frame_end(path, offset):
-    """Byte just after the XTC frame that starts at ``offset`` (XDR header: natoms at byte 4; more
-    than 9 atoms are compressed, with the byte count at byte 88, padded to 4). ``XTCFile.tell()``
-    counts frames, not bytes, so the end is read from the header."""
-    import struct
-
-    if not str(path).lower().endswith(".xtc"):
-        raise ValueError("not an XTC file")
-    with open(path, "rb") as fh:
-        fh.seek(offset)
-        head = fh.read(92)
-    natoms = struct.unpack(">i", head[4:8])[0]
-    if natoms <= 9:
-        return offset + 56 + 12 * natoms
-    nbytes = struct.unpack(">i", head[88:92])[0]
-    return offset + 92 + (nbytes + 3) // 4 * 4
 
 
 def _topology_atoms(path):

@@ -163,3 +163,11 @@ def test_read_only_trajectory_folder_still_works_with_a_notice(system, tmp_path,
     code, out, err = run_cli(capsys, "track", top, fresh, "--torsions", "0,1,2,3", "--out", tmp_path / "r")
     assert code == 0
     assert "read-only" in err and "Traceback" not in err
+
+
+def test_complete_xtc_gives_no_incomplete_frame_notice(system, capsys):
+    from dihedra.inputs import load_universe
+    top, traj = system
+    notices = []
+    load_universe(top, traj, notices)
+    assert notices == []
