@@ -1,0 +1,316 @@
+"""Umbrella windows (MBAR and WHAM) against known potentials, and weights through profiles."""
+
+import json
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate
+
+from dihedra.couplings import compute_couplings, get_relation
+from dihedra.errors import DihedraError
+from dihedra.profiles import compute_profiles
+from dihedra.resultsdir import load_results
+from dihedra.tracking import track
+from dihedra.units import kt_kj_mol
+from dihedra.windows import (bias_kj_mol, neighbour_pairs, read_windows, solve_free_energies, unbias_windows,
+                             wham_log_factors)
+from synthetic_rotors import inverse_cdf_samples, rb_energy, write_rotor_trajectory
+
+T = 298.15
+KT = kt_kj_mol(T)
+HERE = os.path.dirname(os.path.abspath(__file__))
+BUTANE_WINDOWS = os.path.join(HERE, "..", "example_trajectories", "butane_windows", "windows.csv")
+
+
+def asymmetric_energy(phi_deg):
+    """A known potential with a 45 kJ/mol barrier near 0 and no mirror symmetry (so that a sign
+    slip in the bias would show): RB butane + 4 sin(phi) kJ/mol."""
+    return rb_energy(phi_deg) + 4.0 * np.sin(np.radians(phi_deg))
+
+
+def reference_profile(energy, n_bins=72):
+    """Bin-averaged -kT ln p of p ~ exp(-V/kT), normalised, per degree (scipy.integrate.quad)."""
+    w = lambda x: np.exp(-energy(x) / KT)  # noqa: E731
+    z = integrate.quad(w, -180, 180, points=[-120, -60, 0, 60, 120], limit=200)[0]
+    edges = np.linspace(-180, 180, n_bins + 1)
+    mass = np.array([integrate.quad(w, a, b)[0] for a, b in zip(edges[:-1], edges[1:])]) / z
+    return -KT * np.log(mass / (edges[1] - edges[0])), mass
+
+
+def write_windows(folder, energy, centres, k, n_frames, n_molecules, seed=1, name="windows.csv"):
+    """Exact samples of the biased density of every window, as 4-atom molecules (one trajectory each)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for i, c in enumerate(centres):
+        a = inverse_cdf_samples(lambda p: energy(p) + bias_kj_mol(p, c, k), T, (n_frames, n_molecules), rng)
+        pdb, dcd = write_rotor_trajectory(str(folder), f"w{i:02d}", a)
+        rows.append({"trajectory": os.path.basename(dcd), "topology": os.path.basename(pdb),
+                     "torsions": "rotatable", "centre_deg": c, "k_kj_mol_rad2": k})
+    path = os.path.join(str(folder), name)
+    pd.DataFrame(rows).to_csv(path, index=False)
+    return path
+
+
+@pytest.fixture(scope="module")
+def synthetic(tmp_path_factory):
+    """36 windows 10 degrees apart, k = 400 kJ/mol/rad^2, 2400 exact samples each, analysed."""
+    folder = tmp_path_factory.mktemp("windows")
+    csv = write_windows(folder, asymmetric_energy, np.arange(-180.0, 180.0, 10.0), 400.0, 80, 30)
+    out = os.path.join(str(folder), "results")
+    wres = unbias_windows(csv, T, out=out, n_bootstrap=40)
+    return wres, out
+
+
+# ------------------------------------------------------------------------------------------------
+# The equations
+# ------------------------------------------------------------------------------------------------
+
+def test_solver_recovers_exact_free_energies():
+    # analytic: with the expected counts of known windows the equations return the exact f_k and p
+    g = np.linspace(-179.5, 179.5, 360)
+    p = np.exp(-asymmetric_energy(g) / KT)
+    p /= p.sum()
+    centres, k = np.arange(-180.0, 180.0, 20.0), 300.0
+    log_c = -bias_kj_mol(g[None, :], centres[:, None], k) / KT
+    f_true = -np.log(np.exp(log_c) @ p)
+    n_k = np.linspace(500, 1500, len(centres))
+    counts = (n_k[:, None] * np.exp(f_true[:, None] + log_c) * p[None, :]).sum(axis=0)
+    f, log_p = solve_free_energies(counts, n_k, log_c)
+    assert np.allclose(f, f_true - f_true[0], atol=1e-7)
+    assert np.allclose(np.exp(log_p), p, rtol=1e-7)
+
+
+def test_solver_matches_pymbar_on_samples():
+    # reference library: pymbar.MBAR on the same samples (each sample its own grid point)
+    import logging
+    logging.getLogger("pymbar").setLevel(logging.ERROR)
+    import pymbar
+
+    rng = np.random.default_rng(2)
+    centres, k = np.array([-40.0, -20.0, 0.0, 20.0, 40.0]), 200.0
+    x = np.concatenate([inverse_cdf_samples(lambda q: rb_energy(q) + bias_kj_mol(q, c, k), T, 300, rng)
+                        for c in centres])
+    u = bias_kj_mol(x[None, :], centres[:, None], k) / KT
+    n_k = np.full(len(centres), 300.0)
+    f, _ = solve_free_energies(np.ones(len(x)), n_k, -u)
+    ref = pymbar.MBAR(u, n_k).f_k
+    assert np.allclose(f, ref - ref[0], atol=1e-6)
+
+
+def test_wham_bias_factors_are_bin_means():
+    # scipy.integrate.quad of exp(-w/kT) over a bin, divided by its width
+    lc = wham_log_factors(np.array([30.0]), np.array([500.0]), KT)
+    for b in (200, 205, 215):
+        a = -180.0 + b
+        exact = integrate.quad(lambda q: np.exp(-bias_kj_mol(q, 30.0, 500.0) / KT), a, a + 1)[0]
+        assert np.exp(lc[0, b]) == pytest.approx(exact, rel=2e-3)
+
+
+def test_bias_uses_the_minimum_image():
+    # analytic: 170 and -170 deg are 20 degrees apart
+    assert bias_kj_mol(-170.0, 170.0, 100.0) == pytest.approx(0.5 * 100.0 * np.radians(20.0) ** 2)
+    assert neighbour_pairs([-170.0, 170.0, 10.0, -10.0, 90.0, -90.0])[-1] == (1, 0)
+
+
+# ------------------------------------------------------------------------------------------------
+# Synthetic windows of a known potential with a high barrier
+# ------------------------------------------------------------------------------------------------
+
+@pytest.mark.slow
+def test_synthetic_windows_recover_the_potential_everywhere(synthetic):
+    wres, _ = synthetic
+    ref, mass = reference_profile(asymmetric_energy)
+    prof = wres.profiles.by_type[next(iter(wres.profiles.by_type))][0]
+    # the barrier is out of reach without bias (analytic): an unbiased run with as many samples
+    # would put fewer than 0.01 samples into the top bin
+    n_samples = int(wres.windows["n_samples"].sum())
+    top = int(np.argmax(ref))
+    assert n_samples * mass[top] < 0.01
+    assert prof.sampled.all()
+    f = -KT * np.log(prof.density_per_deg)     # normalised: no alignment needed
+    z = (f - ref) / prof.free_energy_err_kj_mol
+    # analytic: every bin within its error (4 sigma for the worst of 72 bins), the barrier top within 3
+    assert np.max(np.abs(z)) < 4.0
+    assert abs(z[top]) < 3.0
+    assert abs(f[top] - ref[top]) < 1.0
+    # the errors are honest: mean z^2 near 1 (analytic expectation for correct errors)
+    assert 0.3 < np.mean(z ** 2) < 2.5
+    # the barrier feature against the potential's own barrier (fine grid of the known potential)
+    grid = np.linspace(-180, 180, 36001)
+    v = asymmetric_energy(grid)
+    bar = wres.profiles.barriers
+    syn = bar.loc[(bar["angle_deg"].abs() < 30)].iloc[0]
+    assert syn["free_energy_kj_mol"] == pytest.approx(v.max() - v.min(), abs=max(1.0, 3 * syn["free_energy_err_kj_mol"]))
+
+
+@pytest.mark.slow
+def test_mbar_and_wham_agree_within_error(synthetic):
+    wres, _ = synthetic
+    cmp = wres.comparison
+    assert cmp["sampled"].all()
+    # both estimates of the same data: the difference within 2 combined errors in every bin
+    assert (cmp["difference_kj_mol"].abs() <= 2 * cmp["difference_err_kj_mol"]).all()
+    row = wres.agreement.iloc[0]
+    assert row["fraction_within"] == 1.0
+    # the grid solution of the MBAR equations matches pymbar's (reference library)
+    assert row["mbar_grid_check_kt"] < 5e-3
+    # every neighbouring pair overlaps (the windows were designed to)
+    assert not wres.overlap["poor"].any()
+    assert len(wres.overlap) == 36  # the circle closes
+
+
+@pytest.mark.slow
+def test_windows_folder_serves_couplings_and_populations(synthetic):
+    wres, out = synthetic
+    res = load_results(out)
+    assert {"profiles.csv", "windows.csv", "window_overlap.csv", "windows_profiles.csv",
+            "windows.json"} <= set(os.listdir(out))
+    # reweighted populations against the Boltzmann integral (scipy.integrate.quad), within 3 sigma
+    w = lambda x: np.exp(-asymmetric_energy(x) / KT)  # noqa: E731
+    z = integrate.quad(w, -180, 180, points=[-120, -60, 0, 60, 120], limit=200)[0]
+    anti = (integrate.quad(w, 120, 180)[0] + integrate.quad(w, -180, -120)[0]) / z
+    row = res.populations_by_type.set_index("state").loc["anti"]
+    assert abs(row["population"] - anti) < 3 * row["population_err"]
+    # couplings from the weighted histograms equal the integral within error (scipy)
+    rel = get_relation("karplus-1959")
+    expected = integrate.quad(lambda x: rel.evaluate(x) * w(x), -180, 180, points=[-90, 0, 90], limit=200)[0] / z
+    cres = compute_couplings(res, "karplus-1959", select=[res.torsion_set.types[0]])
+    pooled = cres.couplings[cres.couplings["level"] == "type"].iloc[0]
+    assert abs(pooled["j_hz"] - expected) < 4 * pooled["j_err_hz"]
+    # the profile files have the layout of dihedra profile
+    prof = pd.read_csv(os.path.join(out, "profiles.csv"))
+    assert set(prof["estimate"]) == {"histogram", "kernel"}
+    with open(os.path.join(out, "windows.json")) as fh:
+        assert json.load(fh)["n_windows"] == 36
+
+
+def test_poor_overlap_is_reported_by_pair(tmp_path):
+    centres = [-180.0, -170.0, -160.0, -150.0, -140.0, -100.0, -90.0, -80.0]
+    csv = write_windows(tmp_path, rb_energy, centres, 400.0, 40, 10, seed=4)
+    wres = unbias_windows(csv, T, n_bootstrap=20)
+    poor = wres.overlap[wres.overlap["poor"]]
+    # analytic: 40 degrees apart with sigma of about 4 degrees, the windows -140 and -100 cannot overlap
+    assert poor[["centre_a_deg", "centre_b_deg"]].values.tolist() == [[-140.0, -100.0]]
+    assert any("poor overlap" in n and "-140/-100" in n for n in wres.notices)
+    assert any("sampled by no window" in n for n in wres.notices)
+    prof = wres.profiles.profiles
+    hist = prof[prof["estimate"] == "histogram"]
+    assert hist.loc[~hist["sampled"], "free_energy_kj_mol"].isna().all()
+
+
+# ------------------------------------------------------------------------------------------------
+# Per-frame weights through profiles (and populations)
+# ------------------------------------------------------------------------------------------------
+
+def test_weights_flow_through_profiles(tmp_path):
+    # analytic: samples drawn from V1 and weighted by exp(-(V0 - V1)/kT) have the profile of V0
+    rng = np.random.default_rng(8)
+    v1 = lambda x: 0.2 * rb_energy(x)  # noqa: E731 - a flattened potential that visits everything
+    angles = inverse_cdf_samples(v1, T, (1500, 1), rng)
+    pdb, dcd = write_rotor_trajectory(str(tmp_path), "flat", angles)
+    weights = np.exp(-(rb_energy(angles[:, 0]) - v1(angles[:, 0])) / KT)
+    pd.DataFrame({"weight": weights}).to_csv(tmp_path / "w.csv", index=False)
+    out = str(tmp_path / "weighted")
+    track(pdb, [dcd], torsions="0,1,2,3", weights=str(tmp_path / "w.csv"), out=out, temperature_k=T)
+    res = load_results(out)
+    assert res.blocks["histograms"].dtype == np.float64  # weighted sums (trackpass)
+    pset = compute_profiles(res, T, per_torsion=False, n_bootstrap=100)
+    hist = pset.profiles[(pset.profiles["estimate"] == "histogram")]
+    ref, _ = reference_profile(rb_energy)
+    f = -KT * np.log(hist["probability_density_per_deg"].to_numpy())
+    err = hist["free_energy_err_kj_mol"].to_numpy()
+    ok = hist["sampled"].to_numpy() & (ref - ref.min() < 15.0)
+    z = (f - ref)[ok] / err[ok]
+    assert np.max(np.abs(z)) < 4.0
+    # without the weights the same samples give the flattened profile, far from V0 (the weights matter)
+    out2 = str(tmp_path / "unweighted")
+    track(pdb, [dcd], torsions="0,1,2,3", out=out2, temperature_k=T)
+    flat = compute_profiles(load_results(out2), T, per_torsion=False, n_bootstrap=100).profiles
+    f2 = -KT * np.log(flat[flat["estimate"] == "histogram"]["probability_density_per_deg"].to_numpy())
+    assert np.max(np.abs(f2 - ref)[ok]) > 5.0
+    # the weighted anti population matches the Boltzmann integral of V0 (scipy), within 3 sigma
+    w0 = lambda x: np.exp(-rb_energy(x) / KT)  # noqa: E731
+    z0 = integrate.quad(w0, -180, 180, points=[-120, 0, 120], limit=200)[0]
+    anti = (integrate.quad(w0, 120, 180)[0] + integrate.quad(w0, -180, -120)[0]) / z0
+    row = res.populations.set_index("state").loc["anti"]
+    assert abs(row["population"] - anti) < 3 * row["population_err"]
+
+
+# ------------------------------------------------------------------------------------------------
+# Input checks and the command line
+# ------------------------------------------------------------------------------------------------
+
+def test_window_table_checks(tmp_path):
+    path = tmp_path / "w.csv"
+    path.write_text("trajectory,topology,centre_deg\na.dcd,a.pdb,10\nb.dcd,b.pdb,20\n")
+    with pytest.raises(DihedraError, match="torsions, k_kj_mol_rad2"):
+        read_windows(str(path))
+    path.write_text("trajectory,topology,torsions,centre_deg,k_kj_mol_rad2\n"
+                    "a.dcd,a.pdb,\"0,1,2,3\",190,100\nsub/b.dcd,/abs/b.pdb,rotatable,20,0\n")
+    with pytest.raises(DihedraError, match="row 2: k_kj_mol_rad2 must be a positive number"):
+        read_windows(str(path))
+    path.write_text("trajectory,topology,torsions,centre_deg,k_kj_mol_rad2\n"
+                    "a.dcd,a.pdb,\"0,1,2,3\",190,100\nsub/b.dcd,/abs/b.pdb,rotatable,20,50\n")
+    table = read_windows(str(path))
+    assert table["trajectory"][1] == os.path.join(str(tmp_path), "sub", "b.dcd")  # relative to the CSV
+    assert table["topology"][1] == "/abs/b.pdb"
+    assert table["torsions"][0] == "0,1,2,3"
+    assert table["centre_deg"][0] == pytest.approx(-170.0)  # wrapped to (-180, 180]
+    with pytest.raises(DihedraError, match="temperature"):
+        unbias_windows(str(path), None)
+
+
+def test_command_line(tmp_path, capsys):
+    from dihedra.cli import main
+
+    centres = np.arange(-180.0, 180.0, 30.0)
+    csv = write_windows(tmp_path, lambda x: 0.3 * rb_energy(x), centres, 60.0, 30, 10, seed=6)
+    out = str(tmp_path / "cli")
+    assert main(["windows", csv, "--temperature", "298.15", "--out", out, "--bootstrap", "20"]) == 0
+    text = capsys.readouterr().out
+    assert "MBAR vs WHAM" in text and "overlap of neighbouring windows" in text
+    assert load_results(out).summary["temperature_k"] == 298.15
+    assert main(["windows", csv, "--temperature", "298.15", "--out", out]) == 2  # exists, no --overwrite
+    assert main(["windows", str(tmp_path / "missing.csv"), "--temperature", "300", "--out",
+                 str(tmp_path / "x")]) == 2
+
+
+# ------------------------------------------------------------------------------------------------
+# Ryckaert-Bellemans butane simulated in windows (OpenMM, example_trajectories/make_butane_windows.py)
+# ------------------------------------------------------------------------------------------------
+
+@pytest.mark.slow
+def test_openmm_butane_windows_reproduce_the_rb_potential(tmp_path):
+    # CHECK-VALUES.md: RB butane C0..C5; the derived values are recomputed here from the coefficients
+    c = [9.28, 12.16, -13.12, -3.06, 26.24, -31.5]
+    syn = sum(cn * (-1.0) ** n for n, cn in enumerate(c))       # V(0): cos(psi) = -1
+    anti = sum(c)                                                 # V(180): cos(psi) = 1
+    assert syn - anti == pytest.approx(44.80, abs=1e-9)
+    grid = np.linspace(0, 180, 18001)
+    v = rb_energy(grid)
+    gauche = v[(grid > 30) & (grid < 90)].min()
+    tg_barrier = v[(grid > 90) & (grid < 150)].max()
+    wres = unbias_windows(BUTANE_WINDOWS, T, out=str(tmp_path / "bw"), n_bootstrap=50)
+    prof = wres.profiles.by_type[next(iter(wres.profiles.by_type))][0]
+    ref, _ = reference_profile(rb_energy)
+    assert prof.sampled.all()
+    f = -KT * np.log(prof.density_per_deg)
+    dev = f - ref
+    # within 1 kJ/mol everywhere, the syn barrier included (issue 4), and within 4 errors
+    assert np.max(np.abs(dev)) < 1.0
+    assert np.max(np.abs(dev / prof.free_energy_err_kj_mol)) < 4.0
+    bar = wres.profiles.barriers.set_index(wres.profiles.barriers["angle_deg"].round(-1).abs())
+    minima = wres.profiles.minima
+    syn_row = bar[bar["angle_deg"].abs() < 20].iloc[0]
+    assert syn_row["free_energy_kj_mol"] == pytest.approx(44.80, abs=1.0)
+    tg = bar[(bar["angle_deg"].abs() > 100) & (bar["angle_deg"].abs() < 140)]
+    assert np.allclose(tg["free_energy_kj_mol"], tg_barrier - anti, atol=1.0)
+    g = minima[minima["angle_deg"].abs() < 90]
+    assert len(g) == 2 and np.allclose(g["free_energy_kj_mol"], gauche - anti, atol=1.0)
+    # MBAR and WHAM agree within error; every neighbouring pair overlaps
+    assert wres.agreement.iloc[0]["fraction_within"] == 1.0
+    assert not wres.overlap["poor"].any()
+    # complete XTC files are not reported as cut (the frame end is read from the XTC header)
+    assert not any("incomplete frame" in n for n in wres.notices)
