@@ -68,7 +68,7 @@ TOP_LEVEL_KEYS = ("base_dir", "out", "steps")
 COPY_NAME = "analysis.toml"
 RECORD_NAME = "analysis.json"
 
-_PATH_WORDS = ("FILE", "DIR", "TRAJ", "TOPOLOGY", "PATH")
+_PATH_WORDS = ("FILE", "DIR", "TRAJ", "TOPOLOGY", "PATH", ".CSV", ".TOML")
 
 
 # ----------------------------------------------------------------------------------------------

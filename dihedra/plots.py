@@ -364,12 +364,12 @@ def safe_name(name):
 # ----------------------------------------------------------------------------------------------
 
 def _replica_info(summary):
-    """Per replica: frames analysed, time between analysed frames in ps (None if unknown)."""
+    """Per replica: frames analysed, time between analysed frames in ps (None if unknown or zero)."""
     out = []
     for rep in summary.get("replicas", []):
         dt = rep.get("time_between_analysed_frames_ps")
-        known = rep.get("time_step_known", dt is not None)
-        out.append((int(rep.get("frames_analysed", 0)), float(dt) if (dt is not None and known) else None))
+        known = rep.get("time_step_known", dt is not None) and dt is not None and float(dt) > 0
+        out.append((int(rep.get("frames_analysed", 0)), float(dt) if known else None))
     return out
 
 
@@ -618,18 +618,19 @@ def plot_angle_series(series, scheme, torsion=None, ax=None, show_note=True, leg
     if label not in series.frame.columns:
         raise DihedraError(f"the angle series holds no torsion {label!r}; it has {', '.join(series.torsions)}.")
     frame = series.frame
+    clock = "time_ps" if series.time_known else "frame"  # without a time step, frames
     reps = sorted(frame["replica"].unique()) if len(frame) else [0]
     durations, firsts = [], []
     for r in reps:
-        t = frame.loc[frame["replica"] == r, "time_ps"].to_numpy(float)
+        t = frame.loc[frame["replica"] == r, clock].to_numpy(float)
         firsts.append(float(t.min()) if len(t) else 0.0)
         durations.append(float(t.max() - t.min()) if len(t) else 0.0)
     starts, total = _replica_layout(durations)
-    scale, unit = time_scale(total)
+    scale, unit = time_scale(total) if series.time_known else (1.0, "frames")
     _shade_sectors(ax, scheme, orientation="horizontal")
     for k, r in enumerate(reps):
         part = frame[frame["replica"] == r]
-        x = (part["time_ps"].to_numpy(float) - firsts[k] + starts[k]) * scale
+        x = (part[clock].to_numpy(float) - firsts[k] + starts[k]) * scale
         ax.plot(x, part[label].to_numpy(float), ls="none", marker="o", ms=1.0, mew=0, color=INK,
                 rasterized=len(x) > 3000)
     _mark_replicas(ax, starts, durations, scale)
@@ -1631,7 +1632,11 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
         skip("transition diagrams and lifetimes", "no transitions.csv / lifetimes.csv (run 'dihedra kinetics')")
 
     # 8. convergence
-    for t in chosen_types:
+    kind = str(result.summary.get("kind", ""))
+    if "window" in kind:
+        skip("convergence", f"a folder of {kind}: every window is biased, so its running populations are not "
+                            "the unbiased ones")
+    for t in chosen_types if "window" not in kind else []:
         fig = _figure(w, 2.2)
         plot_convergence(result, t, ax=fig.add_subplot())
         out.items.append(FigureItem(f"convergence_{safe_name(t)}",

@@ -542,3 +542,26 @@ def test_population_figure_of_a_folder_shows_sampled_scan_and_reference_values(f
     assert len(hatched) == 3
     assert {t.get_text() for t in ax.get_legend().get_texts()} - {""} == {
         "sampled", "predicted from the scan", "experiment / reference"}
+
+
+def test_a_folder_of_umbrella_windows_gets_no_convergence_figure(track_only_folder, tmp_path):  # noqa: F811
+    import json
+    import shutil
+
+    folder = str(tmp_path / "windows")
+    shutil.copytree(track_only_folder, folder)
+    path = os.path.join(folder, "summary.json")
+    summary = json.load(open(path))
+    summary["kind"] = "umbrella windows (MBAR-weighted)"
+    for rep in summary["replicas"]:
+        rep["time_between_analysed_frames_ps"] = 0.0  # windows may store no time
+    json.dump(summary, open(path, "w"))
+    with plots.style():
+        fset = plots.figure_set(folder)
+    assert "convergence" not in [i.kind for i in fset.items]
+    assert any(s.startswith("convergence: a folder of umbrella windows") for s in fset.skipped)
+    series = [i for i in fset.items if i.kind == "series"][0].figure
+    ax = series.axes[-1]
+    assert ax.get_xlabel() == "frame"  # a zero time step is no time step: frames instead
+    xs = np.concatenate([ln.get_xdata() for ln in ax.get_lines() if ln.get_marker() == "o"])
+    assert xs.max() > 100  # drawn against frame numbers, not all at t = 0

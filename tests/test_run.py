@@ -26,7 +26,8 @@ def help_options(name):
     return {o[2:].replace("-", "_") for o in found} - {"help"}
 
 
-@pytest.mark.parametrize("name", ["track", "profile", "compare", "kinetics", "couplings", "figures", "report"])
+@pytest.mark.parametrize("name", ["track", "windows", "profile", "compare", "kinetics", "couplings", "figures",
+                                  "report"])
 def test_valid_keys_are_exactly_the_options_of_the_subcommand(name):
     spec = step_spec(name, subcommand_parsers()[name])
     parser = subcommand_parsers()[name]
@@ -36,6 +37,8 @@ def test_valid_keys_are_exactly_the_options_of_the_subcommand(name):
     if name == "track":
         assert spec.creates_folder and {"topology", "trajectories", "keep_angles", "torsions"} <= set(spec.valid_keys)
         assert "out" not in spec.valid_keys
+    elif name == "windows":
+        assert spec.creates_folder and {"windows", "temperature"} <= set(spec.valid_keys)
     else:
         assert spec.folder_key == "folder" and "folder" not in spec.valid_keys
 
