@@ -75,8 +75,20 @@ def write_results(result, folder):
     """Write every table, the block sums and the summary of a :class:`TrackResult`."""
     for attr, name in TABLES.items():
         write_table(getattr(result, attr), folder, name)
-    np.savez_compressed(os.path.join(folder, "blocks.npz"), **result.blocks)
+    save_npz(os.path.join(folder, "blocks.npz"), result.blocks)
     write_json(result.summary, folder, "summary.json")
+
+
+def save_npz(path, arrays, level=1):
+    """``np.savez_compressed`` with a chosen zlib level (1: about 4 times faster than numpy's
+    default on large histograms, files about 1.5 times larger); read it with ``np.load``."""
+    import zipfile
+
+    with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_DEFLATED, compresslevel=level,
+                         allowZip64=True) as zf:
+        for name, value in arrays.items():
+            with zf.open(f"{name}.npy", "w", force_zip64=True) as fh:
+                np.lib.format.write_array(fh, np.asanyarray(value), allow_pickle=False)
 
 
 _PART = re.compile(r"replica(\d+)-from(\d+)\.(states|angles)\.parquet$")

@@ -258,6 +258,7 @@ class TorsionPass(AnalysisBase):
         self._cell = np.empty(n_t, dtype=np.intp)
         self._hist_cur = None
         self._hist_cur_block = -1
+        self._one = np.int32(1)
         # conformer groups of equal size are counted together
         _, members, _ = conformer_layout(self.torsion_set, n_s)
         self._conf_classes = _conformer_classes(members, n_s)
@@ -283,7 +284,7 @@ class TorsionPass(AnalysisBase):
         if hb != self._hist_cur_block:
             self._retire_hist_block()
             self._start_hist_block(hb)
-        w = 1 if self.weights is None else float(self.weights[gi])
+        w = self._one if self.weights is None else np.float64(self.weights[gi])
         deg = self._geometry(ts.positions, ts.dimensions)
         row = self._n_buf
         codes = self._buf_codes[row]
@@ -294,7 +295,8 @@ class TorsionPass(AnalysisBase):
         if undefined:
             d[nan] = 0.0
         d += 180.0
-        d /= self.bin_width_deg
+        if self.bin_width_deg != 1.0:
+            d /= self.bin_width_deg
         np.ceil(d, out=d)
         np.copyto(k, d, casting="unsafe")     # 1..n_bins: bin k-1
         np.take(self._bin_table, k, out=codes)
@@ -306,9 +308,9 @@ class TorsionPass(AnalysisBase):
         if undefined:
             codes[nan] = UNDEFINED
             self.results.undefined += nan
-            self._hist_cur[cell[~nan]] += w
+            np.add.at(self._hist_cur, cell[~nan], w)
         else:
-            self._hist_cur[cell] += w
+            np.add.at(self._hist_cur, cell, w)   # fast with a scalar of the array's dtype
         if self._buf_angles is not None:
             self._buf_angles[row] = deg
         self._buf_frame[row] = ts.frame
@@ -345,7 +347,8 @@ class TorsionPass(AnalysisBase):
         if self._hist_cur_block < 0:
             return
         cells = np.flatnonzero(self._hist_cur)
-        self.results.hist_parts.append((self._hist_cur_block, cells.astype(np.int64),
+        small = self._hist_cur.size < 2**31
+        self.results.hist_parts.append((self._hist_cur_block, cells.astype(np.int32 if small else np.int64),
                                         self._hist_cur[cells].copy()))
         self._hist_cur_block = -1
 

@@ -3,7 +3,6 @@ results; the per-frame shortcuts (bin table, chunked counts) agree with direct r
 does not grow with the number of frames."""
 
 import os
-import tracemalloc
 
 import numpy as np
 import pandas as pd
@@ -204,31 +203,51 @@ def test_conformer_rows_equal_direct_joint_counts(serial):
         pd.testing.assert_series_equal(got.sort_index(), expect.sort_index(), check_names=False)
 
 
+MEMORY_PROBE = """
+import json, os, sys, tracemalloc, warnings
+warnings.simplefilter("ignore")
+import MDAnalysis as mda
+from dihedra.schemes import get_scheme
+from dihedra.torsions import select_torsions
+from dihedra.trackpass import TorsionPass
+top, traj, folder = sys.argv[1:4]
+u = mda.Universe(top, traj)
+tset = select_torsions(u, "rotatable")
+out = []
+for stop in (200, 800):
+    parts = os.path.join(folder, f"parts{stop}")
+    os.mkdir(parts)
+    # coarse bins and few blocks keep the fixed part small, so growth would show
+    tp = TorsionPass(u, tset, get_scheme("anti-gauche"), parts_dir=parts, chunk_frames=50,
+                     keep_angles=True, bin_width_deg=30.0, n_state_blocks=4, n_hist_blocks=4)
+    tracemalloc.start()
+    tp.run(stop=stop)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    out.append({"peak": peak, "counted": int(tp.results.state_counts.sum()), "torsions": len(tset),
+                "files": len(os.listdir(parts))})
+print(json.dumps(out))
+"""
+
+
 def test_pass_memory_does_not_grow_with_frames(tmp_path):
-    # traced NumPy/Python allocations of the pass (not the OS view of memory, so it is stable):
-    # with angles in three narrow wells every block fills the same few cells, and four times the
-    # frames must not need more memory than the chunk buffer and the block sums already hold
-    # (MDAnalysis keeps the frame numbers and times, 16 bytes per frame: small against 10 %)
-    import MDAnalysis as mda
-    from dihedra.torsions import select_torsions
-    from dihedra.trackpass import TorsionPass
+    # traced NumPy/Python allocations of the pass (not the OS view of memory, so it is stable), in
+    # a fresh process (no other threads allocating): with angles in three narrow wells every block
+    # fills the same few cells, and four times the frames must not need more memory than the
+    # chunk buffer and the block sums already hold (MDAnalysis keeps the frame numbers and times,
+    # 16 bytes per frame: small against 10 %)
+    import json
+    import subprocess
+    import sys
 
     xyz = hexane_like(800, 40, seed=4, centre_deg=180.0, spread_deg=0.2)
     top, traj = write_system(str(tmp_path), xyz, names=("C1", "C2", "C3", "C4", "C5", "C6"),
                              resname="HEX", box=[60, 60, 60, 90, 90, 90])
-    u = mda.Universe(top, traj)
-    tset = select_torsions(u, "rotatable")
-    peaks = []
-    for stop in (200, 800):
-        parts = tmp_path / f"parts{stop}"
-        parts.mkdir()
-        # coarse bins and few blocks keep the fixed part small, so growth would show
-        tp = TorsionPass(u, tset, get_scheme("anti-gauche"), parts_dir=str(parts), chunk_frames=50,
-                         keep_angles=True, bin_width_deg=30.0, n_state_blocks=4, n_hist_blocks=4)
-        tracemalloc.start()
-        tp.run(stop=stop)
-        peaks.append(tracemalloc.get_traced_memory()[1])
-        tracemalloc.stop()
-        assert tp.results.state_counts.sum() == stop * len(tset)
-        assert len(os.listdir(parts)) == 1 + 3 * (stop // 50)  # layout + index, states, angles per chunk
-    assert peaks[1] <= 1.1 * peaks[0]
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    env = dict(os.environ, PYTHONPATH=root + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    done = subprocess.run([sys.executable, "-c", MEMORY_PROBE, top, traj, str(tmp_path)], env=env,
+                          capture_output=True, text=True, check=True)
+    small, large = json.loads(done.stdout.strip().splitlines()[-1])
+    assert small["counted"] == 200 * small["torsions"] and large["counted"] == 800 * large["torsions"]
+    assert (small["files"], large["files"]) == (1 + 3 * 4, 1 + 3 * 16)  # layout + index, states, angles
+    assert large["peak"] <= 1.1 * small["peak"]
