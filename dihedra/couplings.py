@@ -587,7 +587,11 @@ def compute_couplings(result, relations, select=None):
                 subs_out[labels[k]] = s
         pooled = _pool_by_type(frame, family)
         frames.append(pd.concat([frame, pooled[frame.columns]], ignore_index=True))
-        if rel.systematic_hz is None and rel.name not in HN_HA_FAMILY:
+        if rel.name in HN_HA_FAMILY:
+            notices.append(f"{rel.name}: j_systematic_hz is the spread of <J> over the three published 3J(HN,HA) "
+                           "parameter sets, a lower bound of the relation's own error (each fit scatters by "
+                           "several tenths of a Hz about its data); read verdicts with that in mind.")
+        elif rel.systematic_hz is None:
             notices.append(f"{rel.name}: the source gives no systematic spread; j_systematic_hz is empty and "
                            "comparisons with experiment use the statistical and experimental errors only "
                            "(Karplus relations are commonly good to about 0.5-1 Hz).")

@@ -562,7 +562,7 @@ def _state_rows(main, boot, labels, kt):
 
     ref = int(np.argmax(main))
     with np.errstate(divide="ignore", invalid="ignore"):
-        dg = -kt * np.log(main / main[ref])
+        dg = -kt * np.log(main / main[ref]) + 0.0   # no negative zero
         dgb = -kt * np.log(boot / boot[:, [ref]])
     dgb[~np.isfinite(dgb)] = np.nan
     dg_err, _ = bootstrap_spread(dgb)
