@@ -488,6 +488,7 @@ def test_the_overlap_check_finds_overlapping_text():
     assert _overlapping(_text_boxes(ax.figure)) is not None
 
 
+@pytest.mark.slow
 def test_write_figures_pdf_with_truetype_fonts_and_300_dpi_png(full_folder, tmp_path):
     from PIL import Image
 

@@ -224,8 +224,22 @@ def test_demo_runs_every_step_and_ends_with_the_report(tmp_path, capsys):
     for name in ("comparison.csv", "transitions.csv", "profiles_2d.csv", COPY_NAME, RECORD_NAME,
                  os.path.join("figures", "state_raster.pdf")):
         assert (out / name).exists(), name
-    # a second demo replaces the first
-    assert main(["demo", "--out", str(out)]) == 0
+    from dihedra.cli.demo import is_previous_demo
+    assert is_previous_demo(str(out))  # so a second demo may replace it
+
+
+def test_demo_replaces_a_previous_demo_folder(tmp_path, monkeypatch):
+    import dihedra.cli.demo as demo
+
+    out = tmp_path / "demo"
+    os.makedirs(out)
+    (out / RECORD_NAME).write_text(json.dumps({"analysis_file": "/somewhere/demo.toml"}))
+    seen = {}
+    monkeypatch.setattr(demo, "run_pipeline", lambda pipe, log=None: seen.setdefault("argv", pipe.steps[0].argv))
+    assert main(["demo", "--out", str(out), "--workers", "2"]) == 0
+    argv = seen["argv"]
+    assert "--overwrite" in argv and argv[argv.index("--workers") + 1] == "2"
+    assert argv[-2:] == ["--out", str(out)]
 
 
 def test_argparse_internals_used_by_the_pipeline_are_there():
