@@ -600,7 +600,11 @@ def build_report(folder, width="single", figures=True, log=None):
 
 def write_report(folder, out=None, width="single", figures=True, log=None):
     """Write ``report.html`` (or ``out``) for a results folder; returns its path."""
+    from .resultsdir import load_results
+
     folder = os.fspath(folder)
+    if not os.path.isdir(folder):
+        load_results(folder)  # raises the one message for a missing results folder
     out = os.path.abspath(out or os.path.join(folder, "report.html"))
     parent = os.path.dirname(out)
     if not os.path.isdir(parent):
