@@ -642,6 +642,9 @@ LIFETIME_COLUMNS = ["level", "name", "type", "state", "mean_ps", "median_ps", "c
                     "population_counted", "population_from_rates", "n_trajectories"]
 TIMESCALE_COLUMNS = ["level", "name", "type", "lag_frames", "lag_ps", "index", "timescale_ps",
                      "n_states_connected"]
+#: Observed dwell-time distribution (pooled per type and conformer type): segments of each length,
+#: complete ones and right-censored ones (first/last segment of a trajectory).
+DWELL_COLUMNS = ["level", "name", "type", "state", "dwell_ps", "n_complete", "n_censored"]
 MFPT_COLUMNS = ["level", "name", "type", "lag_frames", "lag_ps", "from_state", "to_state",
                 "transition_probability", "mfpt_ps"]
 
@@ -671,7 +674,7 @@ def _split_by_series(rows, counts, series_index, n_subjects):
 
 def _subject_tables(subjects, tally, dt_ps, n_bootstrap, rng, n_replicas):
     """Table rows (dicts) for subjects that each own a disjoint set of the series of ``tally``."""
-    out = {"transitions": [], "lifetimes": [], "timescales": [], "mfpt": []}
+    out = {"transitions": [], "lifetimes": [], "timescales": [], "mfpt": [], "dwell_times": []}
     if not subjects:
         return out
     n_series = tally.n_series
@@ -718,6 +721,14 @@ def _subject_tables(subjects, tally, dt_ps, n_bootstrap, rng, n_replicas):
             sel = seg_rows[:, 0] == states[i]
             st = dwell_statistics(seg_rows[sel, 1], seg_rows[sel, 2].astype(bool), seg_counts[sel], dt_ps,
                                   n_bootstrap, rng)
+            if subj.level != "torsion":  # the observed distribution, for pooled levels only (size)
+                lengths, inv = np.unique(seg_rows[sel, 1], return_inverse=True)
+                cens = seg_rows[sel, 2].astype(bool)
+                n_cens = np.bincount(inv.reshape(-1), weights=seg_counts[sel] * cens, minlength=len(lengths))
+                n_all = np.bincount(inv.reshape(-1), weights=seg_counts[sel], minlength=len(lengths))
+                out["dwell_times"].extend({**head, "state": labels[i], "dwell_ps": float(n_f) * dt_ps,
+                                           "n_complete": int(a - c), "n_censored": int(c)}
+                                          for n_f, a, c in zip(lengths, n_all, n_cens))
             out["lifetimes"].append({**head, "state": labels[i], **st,
                                      "mean_from_rates_ps": rates["time_ps"][i] / exits[i] if exits[i] > 0
                                      else np.nan,
@@ -788,7 +799,8 @@ def _tables_from_records(rec):
     return {"transitions": _frames(rec["transitions"], TRANSITION_COLUMNS),
             "lifetimes": _frames(rec["lifetimes"], LIFETIME_COLUMNS),
             "timescales": _frames(rec["timescales"], TIMESCALE_COLUMNS),
-            "mfpt": _frames(rec["mfpt"], MFPT_COLUMNS)}
+            "mfpt": _frames(rec["mfpt"], MFPT_COLUMNS),
+            "dwell_times": _frames(rec["dwell_times"], DWELL_COLUMNS)}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -803,6 +815,9 @@ class KineticsResult:
     transitions, lifetimes, timescales, mfpt : DataFrame
         The tables of ``transitions.csv``, ``lifetimes.csv``, ``timescales.csv``, ``mfpt.csv``
         (``level`` is ``torsion``, ``type`` or ``conformer``).
+    dwell_times : DataFrame
+        ``dwell_times.csv``: the observed dwell-time distribution per type and conformer type
+        (level, name, type, state, dwell_ps, n_complete, n_censored).
     parameters : dict
         Assignment, core margin, lags, time step and temperature with their sources.
     notices : list of str
@@ -814,6 +829,7 @@ class KineticsResult:
     timescales: pd.DataFrame
     mfpt: pd.DataFrame
     parameters: dict
+    dwell_times: pd.DataFrame = None
     notices: list = field(default_factory=list)
     folder: str | None = None
 
@@ -1188,8 +1204,11 @@ def write_kinetics(result, folder, seconds=None):
     from .resultsdir import write_json, write_table
 
     written = []
-    for name, frame in (("transitions.csv", result.transitions), ("lifetimes.csv", result.lifetimes),
-                        ("timescales.csv", result.timescales), ("mfpt.csv", result.mfpt)):
+    tables = [("transitions.csv", result.transitions), ("lifetimes.csv", result.lifetimes),
+              ("timescales.csv", result.timescales), ("mfpt.csv", result.mfpt)]
+    if result.dwell_times is not None:
+        tables.append(("dwell_times.csv", result.dwell_times))
+    for name, frame in tables:
         tmp = f".{name}.partial"
         write_table(frame, folder, tmp)
         os.replace(os.path.join(folder, tmp), os.path.join(folder, name))

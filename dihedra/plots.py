@@ -1235,7 +1235,7 @@ def plot_lifetimes(lifetimes, name, level="type", scheme=None, dwell_times=None,
             t, surv = survival_curve(part["dwell_ps"], part["n_complete"], part["n_censored"])
             ok = surv > 0
             ax.step(np.r_[0.0, t[ok]], np.r_[1.0, surv[ok]], where="post", color=c, lw=1.0, zorder=3)
-            ends.append(float(t.max()))
+            ends.append(float(t[surv >= 0.02].max()) if (surv >= 0.02).any() else float(t.max()))
         else:
             mean, med = float(row.get("mean_ps", np.nan)), float(row.get("median_ps", np.nan))
             lo, hi = float(row.get("ci_low_ps", np.nan)), float(row.get("ci_high_ps", np.nan))

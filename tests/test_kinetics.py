@@ -447,3 +447,15 @@ def test_profile_barriers_enter_next_to_eyring():
     assert transitions["eyring_barrier_kj_mol"].iloc[0] == pytest.approx(
         float(eyring_barrier_kj_mol(0.01e12, 298.15)), rel=1e-12)
     assert np.isnan(transitions["eyring_barrier_kj_mol"].iloc[2])  # no rate, no barrier
+
+
+def test_dwell_time_table_counts_segments_and_censoring():
+    # analytic: a b-a-b sequence with known segments; the first and last segment are right-censored
+    traj = np.array([0, 0, 0, 1, 1, 0, 0, 0, 0, 1])
+    tables = analyse_state_series([traj], ["a", "b"], dt_ps=2.0, lags=[1], n_bootstrap=0)
+    dwell = tables["dwell_times"].set_index(["state", "dwell_ps"])[["n_complete", "n_censored"]]
+    assert dwell.loc[("a", 6.0)].tolist() == [0, 1]   # first segment, 3 frames
+    assert dwell.loc[("a", 8.0)].tolist() == [1, 0]   # complete, 4 frames
+    assert dwell.loc[("b", 4.0)].tolist() == [1, 0]   # complete, 2 frames
+    assert dwell.loc[("b", 2.0)].tolist() == [0, 1]   # last segment, 1 frame
+    assert len(dwell) == 4
