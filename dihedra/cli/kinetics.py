@@ -94,7 +94,7 @@ def report_kinetics(res, max_types=6, max_conformer_rows=5):
         print(f"\nEyring barriers at {temp:g} K with kappa = 1. Caution: {TST_CAUTION}")
     print_notices(res.notices)
     if res.folder:
-        print(f"written to {res.folder}: transitions.csv, lifetimes.csv, timescales.csv, mfpt.csv, kinetics.json")
+        print(f"written to {res.folder}: transitions.csv, lifetimes.csv, dwell_times.csv, timescales.csv, mfpt.csv, kinetics.json")
 
 
 def _fmt(value, spec):
