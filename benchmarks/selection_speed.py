@@ -36,6 +36,9 @@ def _systems():
     yield "adk x15, bonds", merged
     yield "adk solvated, GROMACS .gro", mda.Universe(GRO)
     yield "adk solvated, GROMACS .tpr", mda.Universe(TPR)
+    from dihedra import example_path
+    hexane = mda.Universe(example_path("hexane.pdb"))
+    yield "hexane x80 (8,000 molecules)", mda.Merge(*([hexane.atoms] * 80))
 
 
 def best_of(func, universe, repeats=3):
@@ -51,9 +54,11 @@ def best_of(func, universe, repeats=3):
 def main():
     from dihedra.biopolymer import (nucleic_backbone_torsions, protein_backbone_torsions,
                                     protein_sidechain_torsions)
+    from dihedra.rotatable import rotatable_torsions
 
     warnings.filterwarnings("ignore")
-    functions = (protein_backbone_torsions, protein_sidechain_torsions, nucleic_backbone_torsions)
+    functions = (protein_backbone_torsions, protein_sidechain_torsions, nucleic_backbone_torsions,
+                 rotatable_torsions)
     print(f"{'system':30s} {'atoms':>7s} {'function':28s} {'torsions':>8s} {'best of 3 (s)':>13s}")
     for name, universe in _systems():
         for func in functions:

@@ -97,7 +97,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import SelectionError
-from .torsions import Torsion, TorsionSet, molecule_group
+from .torsions import Torsion, TorsionSet, bond_array as _bond_array, molecule_group
 
 #: Largest distance (A) at which two residues count as linked when the topology has no bonds.
 LINK_DISTANCE = 2.0
@@ -454,21 +454,6 @@ class _Topology:
                                type=f"{resname}:{name}", name=name, resname=resname,
                                resid=resid, segid=segid, group=group))
         return out
-
-
-def _bond_array(universe):
-    """Bonds of the topology as an (n, 2) int array, or None when the topology has none."""
-    topology = getattr(universe, "_topology", None)
-    connection = getattr(topology, "bonds", None)
-    values = getattr(connection, "values", None)
-    if values is not None:  # fast path: the raw bond list of the topology
-        bonds = np.asarray(values, dtype=np.int64).reshape(-1, 2)
-    else:
-        try:
-            bonds = np.asarray(universe.atoms.bonds.to_indices(), dtype=np.int64).reshape(-1, 2)
-        except Exception:  # no bond information
-            return None
-    return bonds if len(bonds) else None
 
 
 # --------------------------------------------------------------------------------------------

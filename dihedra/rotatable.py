@@ -18,7 +18,7 @@ distances by MDAnalysis (van der Waals radii), with a notice.
 
 import numpy as np
 
-from .torsions import TorsionSet, torsion_from_atoms
+from .torsions import TorsionSet, bond_array, torsions_from_quads
 
 #: A centre whose two bonds make a larger angle (degrees) is treated as linear.
 LINEAR_DEG = 170.0
@@ -27,37 +27,55 @@ LINEAR_DEG = 170.0
 def bond_graph(universe, notices):
     """Adjacency lists from the topology's bonds (guessing them if there are none)."""
     n = universe.atoms.n_atoms
+    bonds = bond_array(universe)
+    if bonds is None:
+        bonds = _guess_bonds(universe, notices)
+    bonds = bonds[bonds[:, 0] != bonds[:, 1]]
+    both = np.concatenate([bonds, bonds[:, ::-1]])
+    keys = np.unique(both[:, 0] * n + both[:, 1])  # sorted, both directions, no repeats
+    first, second = keys // n, keys % n
+    starts = np.searchsorted(first, np.arange(n + 1))
+    neighbours = second.tolist()
+    return [neighbours[starts[i]:starts[i + 1]] for i in range(n)]
+
+
+def _guess_bonds(universe, notices):
+    """Bonds from interatomic distances (MDAnalysis, van der Waals radii), with a notice.
+
+    Atom types without a tabulated radius (virtual sites such as TIP4P's MW, dummies) get radius 0,
+    so they bond to nothing.
+    """
+    from MDAnalysis.guesser.tables import vdwradii
+
     try:
-        bonds = universe.bonds.indices
-    except Exception:  # NoDataError: the topology has no bonds
-        bonds = np.empty((0, 2), dtype=np.int64)
-    if len(bonds) == 0:
-        try:
-            universe.guess_TopologyAttrs(to_guess=["bonds"])
-            bonds = universe.bonds.indices
-        except Exception as exc:  # noqa: BLE001 - report the cause
-            notices.append(f"the topology has no bonds and guessing them failed ({exc}); "
-                           "no rotatable bonds found.")
-            bonds = np.empty((0, 2), dtype=np.int64)
-        else:
-            notices.append(f"the topology has no bonds; guessed {len(bonds)} bonds from interatomic "
-                           "distances (check them, or use a topology with bonds).")
-    adjacency = [[] for _ in range(n)]
-    for i, j in np.asarray(bonds, dtype=np.int64):
-        if i != j:
-            adjacency[i].append(int(j))
-            adjacency[j].append(int(i))
-    return [sorted(set(a)) for a in adjacency]
+        types = set(np.unique(np.asarray(universe.atoms.types, dtype=str)))
+    except Exception:  # noqa: BLE001 - no types: MDAnalysis guesses them
+        types = set()
+    unknown = sorted(t for t in types if t.upper() not in vdwradii)
+    try:
+        universe.guess_TopologyAttrs(to_guess=["bonds"], vdwradii={t: 0.0 for t in unknown})
+        bonds = np.asarray(universe.bonds.indices, dtype=np.int64).reshape(-1, 2)
+    except Exception as exc:  # noqa: BLE001 - report the cause
+        notices.append(f"the topology has no bonds and guessing them failed ({exc}); "
+                       "no rotatable bonds found.")
+        return np.empty((0, 2), dtype=np.int64)
+    extra = f"; atom types without a known radius ({', '.join(unknown[:5])}) bond to nothing" if unknown else ""
+    notices.append(f"the topology has no bonds; guessed {len(bonds)} bonds from interatomic distances"
+                   f"{extra} (check them, or use a topology with bonds).")
+    return bonds
 
 
-def bridges(adjacency):
-    """Set of bridges ``(min, max)`` of an undirected graph (iterative Tarjan)."""
+def bridges(adjacency, roots=None):
+    """Set of bridges ``(min, max)`` of an undirected graph (iterative Tarjan).
+
+    ``roots`` limits the search to the connected components of these atoms.
+    """
     n = len(adjacency)
     disc = [-1] * n
     low = [0] * n
     out = set()
     timer = 0
-    for root in range(n):
+    for root in (range(n) if roots is None else roots):
         if disc[root] != -1 or not adjacency[root]:
             continue
         disc[root] = low[root] = timer
@@ -119,14 +137,21 @@ def _positions(universe):
         return None
 
 
-def _linear(center, neighbours, positions, box):
-    if positions is None or len(neighbours) != 2:
-        return False
+def linear_centres(adjacency, candidates, positions, box):
+    """Atoms among ``candidates`` with exactly two neighbours at an angle above :data:`LINEAR_DEG`
+    (one vectorised call; nothing when the topology has no coordinates)."""
+    if positions is None:
+        return set()
     from MDAnalysis.lib.distances import calc_angles
+
     from .angles import usable_box
-    a, b = neighbours
-    ang = np.degrees(calc_angles(positions[a], positions[center], positions[b], box=usable_box(box)))
-    return bool(ang > LINEAR_DEG)
+    centres = np.array([c for c in candidates if len(adjacency[c]) == 2], dtype=np.int64)
+    if len(centres) == 0:
+        return set()
+    ends = np.array([adjacency[c] for c in centres], dtype=np.int64)
+    ang = np.degrees(calc_angles(positions[ends[:, 0]], positions[centres], positions[ends[:, 1]],
+                                 box=usable_box(box)))
+    return set(centres[ang > LINEAR_DEG].tolist())
 
 
 def rotatable_torsions(universe):
@@ -138,29 +163,34 @@ def rotatable_torsions(universe):
     """
     notices = []
     adjacency = bond_graph(universe, notices)
-    ring_free = bridges(adjacency)
+    degree = np.array([len(a) for a in adjacency])
+    # only components with a bond between two non-terminal atoms can hold a rotatable bond
+    roots = sorted({b for b, nbrs in enumerate(adjacency) if degree[b] >= 2
+                    and any(degree[c] >= 2 for c in nbrs)})
+    ring_free = bridges(adjacency, roots)
     heavy = _is_heavy(universe)
     masses = _masses(universe)
     positions = _positions(universe)
     box = universe.dimensions if positions is not None else None
-    heavy_degree = np.array([sum(bool(heavy[j]) for j in nbrs) for nbrs in adjacency])
+    heavy_degree = np.array([int(heavy[nbrs].sum()) if nbrs else 0 for nbrs in adjacency]) if len(roots) \
+        else np.zeros(len(adjacency), dtype=int)
 
     def outer(end, other):
         candidates = [j for j in adjacency[end] if j != other]
         return min(candidates, key=lambda j: (not heavy[j], -masses[j], -heavy_degree[j], j))
 
-    torsions = []
-    n_ring = n_linear = 0
-    for b, c in sorted(ring_free):
-        if len(adjacency[b]) < 2 or len(adjacency[c]) < 2:
-            continue
-        if _linear(b, adjacency[b], positions, box) or _linear(c, adjacency[c], positions, box):
+    inner = sorted((b, c) for b, c in ring_free if degree[b] >= 2 and degree[c] >= 2)
+    linear = linear_centres(adjacency, {a for bond in inner for a in bond}, positions, box)
+    quads = []
+    n_linear = 0
+    for b, c in inner:
+        if b in linear or c in linear:
             n_linear += 1
             continue
-        a, d = outer(b, c), outer(c, b)
-        torsions.append(torsion_from_atoms(universe, (a, b, c, d)))
-    n_bonds = sum(len(a) for a in adjacency) // 2
-    n_ring = n_bonds - len(ring_free)
+        quads.append((outer(b, c), b, c, outer(c, b)))
+    torsions = torsions_from_quads(universe, quads)
+    n_inner = sum(1 for b in roots for c in adjacency[b] if c > b and degree[c] >= 2)
+    n_ring = n_inner - len(inner)
     if positions is None:
         notices.append("the topology has no coordinates; linear centres were not checked.")
     if n_linear:

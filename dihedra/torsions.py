@@ -160,29 +160,67 @@ def torsion_from_atoms(universe, indices, name=None, label=None, ttype=None):
     The owning residue is that of atom B. Atom names from other residues carry their residue
     offset in the type (``ALA:C(-1)-N-CA-C``) and their residue tag in the label.
     """
-    atoms = universe.atoms[list(indices)]
-    owner = atoms[1]
-    names_label, names_type = [], []
-    for a in atoms:
-        if a.residue.ix == owner.residue.ix:
-            names_label.append(a.name)
-            names_type.append(a.name)
-        else:
-            names_label.append(f"{residue_tag(a)}.{a.name}")
-            names_type.append(f"{a.name}({a.resid - owner.resid:+d})")
-    joined_label = "-".join(names_label)
-    joined_type = "-".join(names_type)
-    segid = _segid(owner)
-    return Torsion(
-        indices=tuple(int(i) for i in indices),
-        label=label or f"{residue_tag(owner)}:{joined_label}",
-        type=ttype or f"{owner.resname}:{joined_type}",
-        name=name or joined_type,
-        resname=str(owner.resname),
-        resid=int(owner.resid),
-        segid=segid,
-        group=molecule_group(owner),
-    )
+    (t,) = torsions_from_quads(universe, np.asarray([indices], dtype=np.int64))
+    if name or label or ttype:
+        t = _replace(t, name=name or t.name, label=label or t.label, type=ttype or t.type)
+    return t
+
+
+def torsions_from_quads(universe, quads):
+    """:class:`Torsion` objects for many index quadruplets at once (see :func:`torsion_from_atoms`).
+
+    Works on the topology's arrays, not atom by atom, so thousands of torsions take milliseconds.
+    """
+    quads = np.asarray(quads, dtype=np.int64).reshape(-1, 4)
+    if len(quads) == 0:
+        return []
+    atoms = universe.atoms
+    names = np.asarray(atoms.names, dtype=object)
+    resix = np.asarray(atoms.resindices)
+    res = universe.residues
+    resnames = np.asarray(res.resnames, dtype=object)
+    resids = np.asarray(res.resids)
+    try:
+        segids = np.asarray(res.segids, dtype=object)
+    except Exception:  # no segments attribute
+        segids = np.full(len(res), "", dtype=object)
+    groups = residue_group_names(universe)
+    out = []
+    for q in quads.tolist():
+        owner = resix[q[1]]
+        o_name, o_id = resnames[owner], int(resids[owner])
+        parts_label, parts_type = [], []
+        for i in q:
+            r = resix[i]
+            if r == owner:
+                parts_label.append(names[i])
+                parts_type.append(names[i])
+            else:
+                parts_label.append(f"{resnames[r]}{resids[r]}.{names[i]}")
+                parts_type.append(f"{names[i]}({int(resids[r]) - o_id:+d})")
+        joined_type = "-".join(parts_type)
+        out.append(Torsion(indices=tuple(q), label=f"{o_name}{o_id}:{'-'.join(parts_label)}",
+                           type=f"{o_name}:{joined_type}", name=joined_type, resname=str(o_name),
+                           resid=o_id, segid=str(segids[owner]), group=groups[owner]))
+    return out
+
+
+def bond_array(universe):
+    """Bonds of the topology as an (n, 2) int array, or None when the topology has none.
+
+    Reads the raw bond list of the topology (fast) and falls back to the public API.
+    """
+    topology = getattr(universe, "_topology", None)
+    connection = getattr(topology, "bonds", None)
+    values = getattr(connection, "values", None)
+    if values is not None:  # fast path: the raw bond list of the topology
+        bonds = np.asarray(values, dtype=np.int64).reshape(-1, 2)
+    else:
+        try:
+            bonds = np.asarray(universe.atoms.bonds.to_indices(), dtype=np.int64).reshape(-1, 2)
+        except Exception:  # no bond information
+            return None
+    return bonds if len(bonds) else None
 
 
 def _segid(atom):
@@ -439,10 +477,15 @@ def _assign_order(tset):
                                                   min(torsions[p].indices[1:3]),
                                                   max(torsions[p].indices[1:3]), p))
         for order, p in enumerate(ranked):
-            torsions[p] = _replace(torsions[p], order=order)
+            if torsions[p].order != order:
+                torsions[p] = _replace(torsions[p], order=order)
     return TorsionSet(torsions, tset.notices)
 
 
 def _replace(t, **changes):
-    from dataclasses import replace
-    return replace(t, **changes)
+    """A copy of a torsion with some fields changed (faster than dataclasses.replace)."""
+    fields = {"indices": t.indices, "label": t.label, "type": t.type, "name": t.name,
+              "resname": t.resname, "resid": t.resid, "segid": t.segid, "group": t.group,
+              "order": t.order}
+    fields.update(changes)
+    return Torsion(**fields)
