@@ -177,13 +177,7 @@ def torsions_from_quads(universe, quads):
     atoms = universe.atoms
     names = np.asarray(atoms.names, dtype=object)
     resix = np.asarray(atoms.resindices)
-    res = universe.residues
-    resnames = np.asarray(res.resnames, dtype=object)
-    resids = np.asarray(res.resids)
-    try:
-        segids = np.asarray(res.segids, dtype=object)
-    except Exception:  # no segments attribute
-        segids = np.full(len(res), "", dtype=object)
+    resnames, resids, segids = residue_arrays(universe)
     groups = residue_group_names(universe)
     out = []
     for q in quads.tolist():
@@ -233,6 +227,18 @@ def _segid(atom):
 _GROUP_NAMES = weakref.WeakKeyDictionary()
 
 
+def residue_arrays(universe):
+    """Residue names, numbers and segment names of every residue (by ``ix``) as arrays."""
+    res = universe.residues
+    resnames = np.asarray(res.resnames, dtype=object)
+    resids = np.asarray(res.resids)
+    try:
+        segids = np.asarray(res.segids, dtype=object)
+    except Exception:  # no segments attribute
+        segids = np.full(len(res), "", dtype=object)
+    return resnames, resids, segids
+
+
 def residue_group_names(universe):
     """Conformer group name of every residue (indexed by residue ``ix``).
 
@@ -243,13 +249,7 @@ def residue_group_names(universe):
     names = _GROUP_NAMES.get(universe)
     if names is not None:
         return names
-    res = universe.residues
-    resnames = np.asarray(res.resnames, dtype=str)
-    resids = np.asarray(res.resids)
-    try:
-        segids = np.asarray(res.segids, dtype=str)
-    except Exception:  # no segments attribute
-        segids = np.full(len(res), "")
+    resnames, resids, segids = residue_arrays(universe)
     multi = len(universe.segments) > 1
     names, seen = [], {}
     for seg, rn, ri in zip(segids, resnames, resids):
