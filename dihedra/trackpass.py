@@ -2,7 +2,7 @@
 
 :class:`TorsionPass` is an MDAnalysis :class:`~MDAnalysis.analysis.base.AnalysisBase` subclass.
 For each frame it computes all torsion angles at once (:class:`dihedra.angles.TorsionGeometry`,
-minimum image, float32), assigns state codes with the scheme, adds the angles to a fine histogram
+minimum image, float32 angles), assigns state codes with the scheme, adds the angles to a fine histogram
 and appends the codes to a chunk buffer. Results:
 
 ``results.state_counts`` : ndarray, shape (n_state_blocks, n_torsions, n_states)
@@ -24,22 +24,33 @@ and appends the codes to a chunk buffer. Results:
 
 Per frame
 ---------
-The state of an angle is looked up from its fine bin: a bin (lo, hi] that no state boundary cuts
-has one state for all its angles, so ``code = table[bin]``; the few bins that hold a boundary are
-marked and their angles go through :meth:`StateScheme.assign <dihedra.schemes.StateScheme.assign>`,
-so the codes are exactly those of the scheme. The bin index is computed in float64 from the
-float32 angle, ``k = ceil((angle + 180) / width)``, exact for the documented open-left bins. The
-histogram of the current block is one dense array updated in place; a finished block is kept as
-its non-empty cells only, so a worker holds one dense block however many blocks it fills.
+One compiled kernel call (:mod:`dihedra._kernels`, numba; identical NumPy twins when numba is
+missing) computes the angles (:class:`dihedra.angles.TorsionGeometry`), and a second one, in a
+single loop over torsions, the fine bin, the state code, the histogram update of the current
+block, the state count of the current block and the code row of the chunk buffer. The bin of a
+float32 angle a is ``k - 1`` with ``k = ceil(a / width) + n_bins / 2``, exact for bins open at the
+left edge. The state of an angle is looked up from its fine bin: a bin (lo, hi] that no state
+boundary cuts has one state for all its angles, so ``code = table[bin]``; the few bins that hold a
+boundary are marked, and their angles follow the exact rule of
+:meth:`StateScheme.assign <dihedra.schemes.StateScheme.assign>` (last boundary at or below the
+angle, the arc's closed or open start), so the codes are exactly those of the scheme.
+
+Memory
+------
+The histograms of every block a worker touches are allocated densely once (int32 counts, float64
+when weighted): n_blocks x n_torsions x n_bins, fixed by the torsions, never by the frames. The
+conformer counts of every state block are dense too (int32 per block, group and joint state)
+unless a class of groups has too many joint states (then sorted rows of the current block). A
+serial run hands its histogram array to the results without a copy.
 
 Per chunk
 ---------
-State counts per block and the conformer rows are computed from the chunk buffer of codes, with a
-few vectorised calls per state and per group size, instead of per frame. The chunk is written as
-a raw array file (one row per torsion) into ``parts_dir``; the parent process converts the chunk
-files, in frame order, into one Parquet file with row groups of ``chunk_frames`` frames, the same
-for any number of workers. Workers therefore never encode Parquet, and memory stays bounded by
-one chunk buffer and the block sums, whatever the number of frames.
+Block frame counts and the conformer counts (joint states of each group) are computed from the
+chunk buffer of codes (compiled loop). The chunk is written as a raw array file (one row per
+torsion) into ``parts_dir``; the parent process converts the chunk files, in frame order, into one
+Parquet file with row groups of ``chunk_frames`` frames, the same for any number of workers.
+Workers therefore never encode Parquet, and memory stays bounded by one chunk buffer and the
+block sums, whatever the number of frames.
 
 Parallel runs
 -------------
@@ -73,6 +84,12 @@ _MIXED = np.int8(-128)
 
 #: Temporary arrays of the chunk reductions stay below this many bytes.
 _WORK_BYTES = 8 << 20
+
+#: Frames whose fine bins are buffered before they are added to the histograms.
+HIST_BUFFER_FRAMES = 256
+
+#: Conformer classes with at most this many (block, group, joint state) cells are counted densely.
+DENSE_CONFORMER_CELLS = 1 << 25
 
 
 def conformer_layout(torsion_set, n_states, max_torsions=MAX_CONFORMER_TORSIONS):
@@ -115,7 +132,8 @@ def bin_state_table(scheme, n_bins):
     -------
     ndarray of int8, shape (n_bins + 1,)
         Entry ``k`` (1..n_bins) belongs to bin ``k - 1``, the bin (-180 + (k-1) w, -180 + k w];
-        ``ceil((angle + 180) / w)`` indexes it directly. Entry 0 is never used.
+        ``ceil((angle + 180) / w)`` indexes it directly. Entry 0 is ``UNDEFINED`` (-1), the code
+        of the bin index 0 that the pass gives to undefined angles.
 
     Examples
     --------
@@ -132,7 +150,7 @@ def bin_state_table(scheme, n_bins):
     pure = np.all(codes == codes[:, :1], axis=1)
     for b in scheme.boundaries_deg:
         pure &= ~((lo < b) & (b < hi))
-    table = np.full(n_bins + 1, _MIXED, dtype=np.int8)
+    table = np.full(n_bins + 1, UNDEFINED, dtype=np.int8)
     table[1:] = np.where(pure, codes[:, -1], _MIXED)
     return table
 
@@ -165,6 +183,9 @@ class TorsionPass(AnalysisBase):
         Replica number written with every frame.
     dt_ps : float, optional
         Replaces the trajectory's time step: time = frame * dt_ps.
+    compiled : bool, optional
+        Use the numba kernels (default: when numba is installed); ``False`` forces the NumPy
+        path, which gives identical results.
 
     Examples
     --------
@@ -184,7 +205,7 @@ class TorsionPass(AnalysisBase):
 
     def __init__(self, universe, torsion_set, scheme, *, n_state_blocks=64, n_hist_blocks=16,
                  bin_width_deg=1.0, weights=None, parts_dir=None, keep_angles=False,
-                 chunk_frames=None, replica=0, dt_ps=None, verbose=False):
+                 chunk_frames=None, replica=0, dt_ps=None, compiled=None, verbose=False):
         super().__init__(universe.trajectory, verbose=verbose)
         self._universe = universe
         self.torsion_set = torsion_set
@@ -198,6 +219,7 @@ class TorsionPass(AnalysisBase):
         self.chunk_frames = chunk_frames
         self.replica = int(replica)
         self.dt_ps = dt_ps
+        self.compiled = compiled
 
     # -- parallel merge -------------------------------------------------------------------
     def _get_aggregator(self):
@@ -217,8 +239,6 @@ class TorsionPass(AnalysisBase):
         self._global_index = np.asarray(indexed_frames[:, 0], dtype=np.int64)
         super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
         self._flush()
-        self._retire_hist_block()
-        self._retire_conformer_block()
         self._finish_worker()
         return self
 
@@ -233,6 +253,12 @@ class TorsionPass(AnalysisBase):
         if not hasattr(self, "_n_total"):  # _prepare called outside run()
             self._n_total = self.n_frames
             self._global_index = np.arange(self.n_frames)
+        total = max(1, self._n_total)
+        gi = self._global_index
+        first, last = (int(gi[0]), int(gi[-1])) if len(gi) else (0, 0)
+        # blocks this worker touches: its frames are one contiguous slice of the run
+        self._hb_lo, hb_hi = first * self.n_hist_blocks // total, last * self.n_hist_blocks // total
+        self._sb_lo, sb_hi = first * self.n_state_blocks // total, last * self.n_state_blocks // total
         weighted = self.weights is not None
         self._count_dtype = np.float64 if weighted else np.int64
         self._hist_dtype = np.float64 if weighted else np.int32
@@ -243,25 +269,44 @@ class TorsionPass(AnalysisBase):
         res.hist_block_frames = np.zeros(self.n_hist_blocks, dtype=np.int64)
         res.hist_block_weights = np.zeros(self.n_hist_blocks, dtype=np.float64)
         res.undefined = np.zeros(n_t, dtype=np.int64)
-        res.hist_parts = []
+        # dense histograms of every block of this worker, allocated once: the footprint is fixed
+        # by torsions x blocks x bins, never by the number of frames
+        self._hist = _touched_zeros((hb_hi - self._hb_lo + 1, n_t, n_bins), self._hist_dtype)
+        res.hist_parts = [(self._hb_lo, self._hist)]
         res.conformer_counts = np.empty((0, 4), dtype=np.int64)
         res.conformer_weights = np.empty(0, dtype=np.float64)
         res.parts = []
-        # per-frame work: geometry plan, bin -> state table, preallocated buffers
-        self._geometry = TorsionGeometry(self.torsion_set.indices)
+        # per-frame work: geometry, bin -> state table, the scheme's exact rule for mixed bins
+        self._geometry = TorsionGeometry(self.torsion_set.indices, compiled=self.compiled)
+        self._kernels = self._geometry._kernels
         self._bin_table = bin_state_table(self.scheme, n_bins)
         self._has_mixed = bool((self._bin_table[1:] == _MIXED).any())
-        self._hist_base = np.arange(n_t, dtype=np.intp) * n_bins - 1   # + k (1..n_bins) = flat cell
-        self._deg64 = np.empty(n_t, dtype=np.float64)
-        self._nan = np.empty(n_t, dtype=bool)
-        self._k = np.empty(n_t, dtype=np.intp)
-        self._cell = np.empty(n_t, dtype=np.intp)
-        self._hist_cur = None
-        self._hist_cur_block = -1
-        self._one = np.int32(1)
-        # conformer groups of equal size are counted together
+        self._boundaries = np.asarray(self.scheme.boundaries_deg, dtype=np.float64)
+        self._start_closed = np.asarray(self.scheme.start_closed, dtype=np.bool_)
+        self._arc_states = np.asarray(self.scheme.arc_states, dtype=np.int8)
+        self._angles = np.empty(n_t, dtype=np.float32)
+        # k = ceil((a + shift_in) / width) + shift_out (see bin_and_code)
+        self._shift_in, self._shift_out = (0.0, n_bins // 2) if n_bins % 2 == 0 else (180.0, 0)
+        # fine bins of the last few frames, added to the block sums torsion by torsion
+        if n_bins >= 2**16:
+            raise ValueError(f"at most 65535 fine bins; got {n_bins} (bin_width_deg {self.bin_width_deg})")
+        nf = int(max(1, min(HIST_BUFFER_FRAMES, self.n_frames)))
+        self._bins = np.empty((nf, n_t), dtype=np.uint16)
+        self._bins_hblock = np.empty(nf, dtype=np.intp)
+        self._bins_sblock = np.empty(nf, dtype=np.intp)
+        self._bins_weight = np.empty(nf, dtype=self._hist_dtype)
+        self._n_bins_buf = 0
+        # conformer groups of equal size are counted together; dense counts for every block of
+        # this worker where they fit, else sorted rows of the current block
         _, members, _ = conformer_layout(self.torsion_set, n_s)
         self._conf_classes = _conformer_classes(members, n_s)
+        n_sb = sb_hi - self._sb_lo + 1
+        self._conf_dense = {}
+        for key, (gids, mem, powers, size) in self._conf_classes.items():
+            if n_sb * len(gids) * size <= DENSE_CONFORMER_CELLS:
+                counts = _touched_zeros((n_sb, len(gids), size), np.int32)
+                wts = _touched_zeros(counts.shape, np.float64) if weighted else np.zeros((0, 0, 0))
+                self._conf_dense[key] = (counts, wts)
         self._conf_cur_block = -1
         self._conf_cur = {}
         self._conf_rows, self._conf_wts = [], []
@@ -280,83 +325,97 @@ class TorsionPass(AnalysisBase):
     def _single_frame(self):
         ts = self._ts
         gi = int(self._global_index[self._frame_index])
-        hb = gi * self.n_hist_blocks // max(1, self._n_total)
-        if hb != self._hist_cur_block:
-            self._retire_hist_block()
-            self._start_hist_block(hb)
-        w = self._one if self.weights is None else np.float64(self.weights[gi])
-        deg = self._geometry(ts.positions, ts.dimensions)
+        total = self._n_total
         row = self._n_buf
         codes = self._buf_codes[row]
-        d, k, cell = self._deg64, self._k, self._cell
-        np.copyto(d, deg)
-        nan = np.isnan(d, out=self._nan)
-        undefined = nan.any()
-        if undefined:
-            d[nan] = 0.0
-        d += 180.0
-        if self.bin_width_deg != 1.0:
-            d /= self.bin_width_deg
-        np.ceil(d, out=d)
-        np.copyto(k, d, casting="unsafe")     # 1..n_bins: bin k-1
-        np.take(self._bin_table, k, out=codes)
-        if self._has_mixed:
-            mixed = codes == _MIXED
-            if mixed.any():
-                codes[mixed] = self.scheme.assign(deg[mixed].astype(np.float64))
-        np.add(self._hist_base, k, out=cell)
-        if undefined:
-            codes[nan] = UNDEFINED
-            self.results.undefined += nan
-            np.add.at(self._hist_cur, cell[~nan], w)
+        nb = self._n_bins_buf
+        bins = self._bins[nb]
+        deg = self._geometry(ts.positions, ts.dimensions,
+                             out=self._angles if self._buf_angles is None else self._buf_angles[row])
+        if self._kernels is not None:
+            self._kernels.bin_and_code(deg, self.bin_width_deg, self._shift_in, self._shift_out,
+                                       self._n_bins, self._bin_table, self._boundaries,
+                                       self._start_closed, self._arc_states, _MIXED, bins, codes)
         else:
-            np.add.at(self._hist_cur, cell, w)   # fast with a scalar of the array's dtype
-        if self._buf_angles is not None:
-            self._buf_angles[row] = deg
+            self._bin_and_code(deg, bins, codes)
+        self._bins_hblock[nb] = gi * self.n_hist_blocks // total - self._hb_lo
+        self._bins_sblock[nb] = gi * self.n_state_blocks // total
+        self._bins_weight[nb] = 1 if self.weights is None else self.weights[gi]
+        self._n_bins_buf = nb + 1
         self._buf_frame[row] = ts.frame
         self._buf_time[row] = ts.time if self.dt_ps is None else ts.frame * float(self.dt_ps)
         self._buf_index[row] = gi
         self._n_buf = row + 1
+        if self._n_bins_buf == len(self._bins):
+            self._add_frames()
         if self._n_buf == len(self._buf_codes):
             self._flush()
 
+    def _add_frames(self):
+        """Add the buffered frames (the last rows of the chunk buffer) to the block sums."""
+        m = self._n_bins_buf
+        if m == 0:
+            return
+        bins, hblock, sblock = self._bins[:m], self._bins_hblock[:m], self._bins_sblock[:m]
+        weight = self._bins_weight[:m]
+        codes = self._buf_codes[self._n_buf - m:self._n_buf]
+        res = self.results
+        if self._kernels is not None:
+            self._kernels.add_frames(bins, codes, hblock, sblock, weight, self._hist,
+                                     res.state_counts, res.undefined)
+        else:   # NumPy twin: np.add.at adds in frame order, like the kernel
+            n_t = bins.shape[1]
+            ok = bins > 0
+            t = np.arange(n_t)[None, :]
+            w = np.broadcast_to(weight[:, None], ok.shape)[ok]
+            cell = (hblock[:, None] * n_t + t) * self._n_bins + bins.astype(np.intp) - 1
+            np.add.at(self._hist.reshape(-1), cell[ok], w)
+            cell = (sblock[:, None] * n_t + t) * self.scheme.n_states + codes
+            np.add.at(res.state_counts.reshape(-1), cell[ok], w)
+            res.undefined += (~ok).sum(axis=0)
+        self._n_bins_buf = 0
+
+    def _bin_and_code(self, deg, bins, codes):
+        """NumPy twin of :func:`dihedra._kernels.bin_and_code` (same bins and codes)."""
+        a = deg.astype(np.float64)
+        ok = ~np.isnan(a)
+        k = np.ceil((np.where(ok, a, 0.0) + self._shift_in) / self.bin_width_deg) + self._shift_out
+        np.clip(k, 1, self._n_bins, out=k)
+        bins[:] = np.where(ok, k, 0)
+        codes[:] = self._bin_table[bins]
+        mixed = np.flatnonzero(codes == _MIXED)
+        if len(mixed):
+            b, nb = self._boundaries, len(self._boundaries)
+            x = a[mixed]
+            j = np.searchsorted(b, x, side="right") - 1
+            j[j < 0] = nb - 1
+            j = np.where((x == b[j]) & ~self._start_closed[j], (j - 1) % nb, j)
+            codes[mixed] = self._arc_states[j]
+
     def _conclude(self):
-        # dense histograms from the non-empty cells of every block (of every worker)
+        # dense histograms of every worker (a serial run hands over its array without a copy)
         res = self.results
         parts = res.pop("hist_parts", None)
         if parts is None:
             return
         n_t = len(self.torsion_set)
-        dtype = np.float64 if self.weights is not None else np.int32
-        hist = np.zeros((self.n_hist_blocks, n_t, int(round(360.0 / self.bin_width_deg))), dtype=dtype)
-        while parts:
-            block, cells, values = parts.pop()
-            hist[block].reshape(-1)[cells] += values
-        res.histograms = hist
-
-    # -- histogram blocks ------------------------------------------------------------------------
-    def _start_hist_block(self, block):
-        size = len(self.torsion_set) * self._n_bins
-        if self._hist_cur is None:
-            self._hist_cur = np.zeros(size, dtype=self._hist_dtype)
-        else:
-            self._hist_cur.fill(0)
-        self._hist_cur_block = block
-
-    def _retire_hist_block(self):
-        if self._hist_cur_block < 0:
+        shape = (self.n_hist_blocks, n_t, int(round(360.0 / self.bin_width_deg)))
+        if len(parts) == 1 and parts[0][0] == 0 and parts[0][1].shape == shape:
+            res.histograms = parts[0][1]
             return
-        cells = np.flatnonzero(self._hist_cur)
-        small = self._hist_cur.size < 2**31
-        self.results.hist_parts.append((self._hist_cur_block, cells.astype(np.int32 if small else np.int64),
-                                        self._hist_cur[cells].copy()))
-        self._hist_cur_block = -1
+        hist = np.zeros(shape, dtype=np.float64 if self.weights is not None else np.int32)
+        while parts:
+            lo, dense = parts.pop()
+            hist[lo:lo + len(dense)] += dense
+            del dense
+        res.histograms = hist
 
     # -- chunk work --------------------------------------------------------------------------------
     def _flush(self):
         n = getattr(self, "_n_buf", 0)
         if n == 0:
             return
+        self._add_frames()
         codes = self._buf_codes[:n]
         gi = self._buf_index[:n]
         total = max(1, self._n_total)
@@ -368,76 +427,61 @@ class TorsionPass(AnalysisBase):
         np.add.at(res.block_weights, sblock, w)
         np.add.at(res.hist_block_frames, hblock, 1)
         np.add.at(res.hist_block_weights, hblock, w)
-        # frames come in order: split the chunk where the state block changes
-        cuts = np.flatnonzero(np.diff(sblock)) + 1
-        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, n]):
-            b = int(sblock[lo])
-            self._count_states(codes[lo:hi], None if self.weights is None else w[lo:hi], b)
-            self._count_conformers(codes[lo:hi], w[lo:hi], b)
+        if self._conf_classes:
+            self._count_conformers(codes, sblock, w)
         if self.parts_dir is not None:
             self._write_chunk(n)
         self._n_buf = 0
 
-    def _count_states(self, codes, weights, block):
-        counts = self.results.state_counts[block]
-        n, n_t = codes.shape
-        step = max(1, _WORK_BYTES // (8 * max(1, n_t)))
-        for lo in range(0, n, step):
-            sub = codes[lo:lo + step]
-            for s in range(self.scheme.n_states):
-                hit = sub == s
-                if weights is None:
-                    counts[:, s] += np.count_nonzero(hit, axis=0)
-                else:
-                    counts[:, s] += weights[lo:lo + step] @ hit.astype(np.float64)
-
-    def _count_conformers(self, codes, weights, block):
-        if not self._conf_classes:
+    def _count_conformers(self, codes, sblock, weights):
+        weighted = self.weights is not None
+        local = sblock - self._sb_lo
+        sparse = [key for key in self._conf_classes if key not in self._conf_dense]
+        for key, (counts, wts) in self._conf_dense.items():
+            gids, members, powers, size = self._conf_classes[key]
+            if self._kernels is not None:
+                self._kernels.count_conformers(codes, local, members, powers, counts, weights,
+                                               wts, weighted)
+                continue
+            for lo, hi, cell, ok in _joint_cells(codes, members, powers, size):
+                # flat cell of (block, group, joint), frames of the chunk in rows
+                flat = (local[lo:hi, None] * (len(gids) * size) + cell)[ok]
+                np.add.at(counts.reshape(-1), flat, 1)
+                if weighted:
+                    np.add.at(wts.reshape(-1), flat,
+                              np.broadcast_to(weights[lo:hi, None], ok.shape)[ok])
+        if not sparse:
             return
-        if block != self._conf_cur_block:
-            self._retire_conformer_block()
-            self._conf_cur_block = block
-        n = len(codes)
-        for key, (gids, members, powers, size) in self._conf_classes.items():
-            n_g, width = members.shape
-            step = max(1, _WORK_BYTES // (8 * n_g * width))
-            for lo in range(0, n, step):
-                sub = codes[lo:lo + step][:, members]                 # (f, n_g, width)
-                ok = (sub >= 0).all(axis=2)
-                joint = sub.astype(np.int64) @ powers                 # (f, n_g)
-                cell = joint + (np.arange(n_g, dtype=np.int64) * size)[None, :]
-                cell, wsub = cell[ok], np.broadcast_to(weights[lo:lo + step, None], ok.shape)[ok]
-                self._conf_add(key, cell, wsub, n_g * size)
+        # classes too large for dense counts: rows per block, split where the block changes
+        cuts = np.flatnonzero(np.diff(sblock)) + 1
+        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(codes)]):
+            b = int(sblock[lo])
+            if b != self._conf_cur_block:
+                self._retire_conformer_block()
+                self._conf_cur_block = b
+            for key in sparse:
+                gids, members, powers, size = self._conf_classes[key]
+                for f0, f1, cell, ok in _joint_cells(codes[lo:hi], members, powers, size):
+                    wsub = np.broadcast_to(weights[lo + f0:lo + f1, None], ok.shape)[ok]
+                    self._conf_add(key, cell[ok], wsub)
 
-    def _conf_add(self, key, cell, weights, n_cells):
+    def _conf_add(self, key, cell, weights):
         cur = self._conf_cur.get(key)
-        if n_cells <= (4 << 20):  # dense counts for the current block
-            if cur is None:
-                cur = (np.zeros(n_cells, dtype=np.int64), np.zeros(n_cells, dtype=np.float64))
-                self._conf_cur[key] = cur
-            np.add(cur[0], np.bincount(cell, minlength=n_cells), out=cur[0])
-            np.add(cur[1], np.bincount(cell, weights=weights, minlength=n_cells), out=cur[1])
-        else:  # sparse: merge sorted unique cells
-            cells, inv = np.unique(cell, return_inverse=True)
-            cnt = np.bincount(inv, minlength=len(cells))
-            wts = np.bincount(inv, weights=weights, minlength=len(cells))
-            if cur is not None:
-                cells = np.concatenate([cur[0], cells])
-                cells, inv = np.unique(cells, return_inverse=True)
-                cnt = np.bincount(inv, weights=np.concatenate([cur[1], cnt]), minlength=len(cells))
-                wts = np.bincount(inv, weights=np.concatenate([cur[2], wts]), minlength=len(cells))
-            self._conf_cur[key] = (cells, cnt.astype(np.int64), wts)
+        cells, inv = np.unique(cell, return_inverse=True)
+        cnt = np.bincount(inv, minlength=len(cells))
+        wts = np.bincount(inv, weights=weights, minlength=len(cells))
+        if cur is not None:
+            cells = np.concatenate([cur[0], cells])
+            cells, inv = np.unique(cells, return_inverse=True)
+            cnt = np.bincount(inv, weights=np.concatenate([cur[1], cnt]), minlength=len(cells))
+            wts = np.bincount(inv, weights=np.concatenate([cur[2], wts]), minlength=len(cells))
+        self._conf_cur[key] = (cells, cnt.astype(np.int64), wts)
 
     def _retire_conformer_block(self):
         if self._conf_cur_block < 0:
             return
-        for key, cur in self._conf_cur.items():
+        for key, (cells, cnt, wts) in self._conf_cur.items():
             gids, _, _, size = self._conf_classes[key]
-            if len(cur) == 2:
-                cells = np.flatnonzero(cur[0])
-                cnt, wts = cur[0][cells], cur[1][cells]
-            else:
-                cells, cnt, wts = cur
             rows = np.column_stack([np.full(len(cells), self._conf_cur_block, dtype=np.int64),
                                     gids[cells // size], cells % size, cnt])
             self._conf_rows.append(rows)
@@ -446,13 +490,29 @@ class TorsionPass(AnalysisBase):
         self._conf_cur_block = -1
 
     def _finish_worker(self):
+        self._retire_conformer_block()
+        weighted = self.weights is not None
+        for key, (counts, wts) in self._conf_dense.items():
+            gids, _, _, size = self._conf_classes[key]
+            flat = counts.reshape(-1)
+            nz = np.flatnonzero(flat)
+            rows = np.empty((len(nz), 4), dtype=np.int64)
+            block, rest = np.divmod(nz, len(gids) * size)
+            np.add(block, self._sb_lo, out=rows[:, 0])
+            group, rows[:, 2] = np.divmod(rest, size)
+            rows[:, 1] = gids[group]
+            rows[:, 3] = flat[nz]
+            self._conf_rows.append(rows)
+            self._conf_wts.append(wts.reshape(-1)[nz] if weighted else rows[:, 3].astype(np.float64))
+        self._conf_dense = {}
         if self._conf_rows:
             rows = np.vstack(self._conf_rows)
             wts = np.concatenate(self._conf_wts)
             self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
         self._conf_rows, self._conf_wts = [], []
-        self._hist_cur = None
+        self._hist = None
         self._buf_codes = self._buf_angles = None
+        self._geometry = self._kernels = None   # modules do not pickle (results go back to the parent)
 
     # -- chunk files -------------------------------------------------------------------------------
     def _write_chunk(self, n):
@@ -492,6 +552,39 @@ def _transpose(block, tile=1024):
     return out
 
 
+def _joint_cells(codes, members, powers, size):
+    """Joint codes of conformer groups in slices of frames: yields ``(lo, hi, cell, ok)`` with
+    ``cell = group * size + joint`` (frames lo..hi, groups) and ``ok`` where no member is
+    undefined."""
+    n = len(codes)
+    n_g, width = members.shape
+    step = max(1, _WORK_BYTES // (8 * n_g * width))
+    offsets = np.arange(n_g, dtype=np.int64) * size
+    for lo in range(0, n, step):
+        sub = codes[lo:lo + step][:, members]                 # (f, n_g, width)
+        ok = (sub >= 0).all(axis=2)
+        cell = sub.astype(np.int64) @ powers + offsets[None, :]
+        yield lo, min(n, lo + step), cell, ok
+
+
+def _strictly_sorted(rows):
+    """Whether (block, group, joint) rows increase strictly in lexicographic order."""
+    if len(rows) < 2:
+        return True
+    a, b = rows[:-1, :3], rows[1:, :3]
+    gt = b > a
+    eq = b == a
+    return bool(np.all(gt[:, 0] | (eq[:, 0] & (gt[:, 1] | (eq[:, 1] & gt[:, 2])))))
+
+
+def _touched_zeros(shape, dtype):
+    """``np.zeros`` with every page written now: the memory is resident from the start (a fixed
+    footprint, and the page faults belong to the start-up rather than to the frames)."""
+    out = np.empty(shape, dtype=dtype)
+    out.fill(0)
+    return out
+
+
 def _conformer_classes(members, n_states):
     """Groups of equal size, counted together: {size: (group ids, members, powers, n_joint)}."""
     by_size = {}
@@ -515,6 +608,8 @@ def reduce_conformer_rows(rows, weights):
     weights = np.asarray(weights, dtype=np.float64)
     if len(rows) == 0:
         return np.empty((0, 4), dtype=np.int64), np.empty(0)
+    if _strictly_sorted(rows):   # already sorted and unique (a serial run): nothing to do
+        return rows, weights
     order = np.lexsort((rows[:, 2], rows[:, 1], rows[:, 0]))
     rows, weights = rows[order], weights[order]
     new = np.ones(len(rows), dtype=bool)

@@ -251,3 +251,22 @@ def test_pass_memory_does_not_grow_with_frames(tmp_path):
     assert small["counted"] == 200 * small["torsions"] and large["counted"] == 800 * large["torsions"]
     assert (small["files"], large["files"]) == (1 + 3 * 4, 1 + 3 * 16)  # layout + index, states, angles
     assert large["peak"] <= 1.1 * small["peak"]
+
+
+def test_numpy_path_equals_compiled_kernels(replicas, serial, monkeypatch):
+    # the NumPy twins of the numba kernels (used without numba) give the same bits: angles,
+    # codes, histograms, state counts, conformer rows; weighted sums added in the same order
+    pytest.importorskip("numba")
+    from dihedra.angles import compiled_kernels
+
+    assert compiled_kernels() is not None
+    top, trajs, weights = replicas
+    kw = dict(KW, weights=weights, keep_angles=False)
+    compiled_weighted = track(top, trajs, **kw)
+    monkeypatch.setenv("DIHEDRA_NO_NUMBA", "1")
+    assert compiled_kernels() is None
+    assert_same(serial, track(top, trajs, **KW))
+    plain_weighted = track(top, trajs, **kw)
+    for key in compiled_weighted.blocks:
+        np.testing.assert_array_equal(compiled_weighted.blocks[key], plain_weighted.blocks[key], err_msg=key)
+    pd.testing.assert_frame_equal(compiled_weighted.conformers, plain_weighted.conformers)

@@ -1,0 +1,281 @@
+"""Compiled per-frame kernels of the trajectory pass (numba).
+
+This module is imported only through :func:`dihedra.angles.compiled_kernels`, which falls back to
+the NumPy implementations in :mod:`dihedra.angles` and :mod:`dihedra.trackpass` when numba is
+missing (or ``DIHEDRA_NO_NUMBA=1``). Every kernel does exactly the floating-point operations of
+its NumPy twin, in the same order and without fused multiply-adds or fast-math, so both paths give
+the same bits (tested in ``tests/test_kernels.py``). The functions are compiled on first use and
+the machine code is cached on disk (``cache=True``): the first run of a new installation spends a
+few seconds compiling, later runs load the cache in milliseconds.
+
+The loops are written for the compiler: the arithmetic of the torsion angles is one loop without
+branches over contiguous arrays (LLVM turns it into SIMD code), while the gather of coordinates
+and the histogram update, which are memory accesses that SIMD does not help, are plain loops.
+"""
+
+import math
+
+import numpy as np
+from numba import njit
+
+# arctangent on [0, 0.66]: the rational approximation of Cephes (S. L. Moshier, Cephes Math
+# Library, atan.c), accurate to 1 ulp in double precision
+_P0, _P1, _P2, _P3, _P4 = (-8.750608600031904122785e-1, -1.615753718733365076637e1,
+                           -7.500855792314704667340e1, -1.228866684490136173410e2,
+                           -6.485021904942025371773e1)
+_Q0, _Q1, _Q2, _Q3, _Q4 = (2.485846490142306297962e1, 1.650270098316988542046e2,
+                           4.328810604912902668951e2, 4.853903996359136964868e2,
+                           1.945506571482613964425e2)
+_PI = math.pi
+_HALF_PI = math.pi / 2.0
+_QUARTER_PI = math.pi / 4.0
+_RAD_TO_DEG = 180.0 / math.pi
+_SPLIT = 0.66
+_TILE = 64
+
+_OPTS = dict(cache=True, nogil=True, error_model="numpy", boundscheck=False)
+
+
+@njit(**_OPTS)
+def gather_bonds(flat, idx3, bonds):
+    """Bond vectors A->B, B->C, C->D of every torsion in float64 (rows 0-2, 3-5, 6-8).
+
+    ``flat`` is the float32 coordinate array raveled (x, y, z per atom), ``idx3`` holds 3 x the
+    atom indices (uint32 or uint64, shape (n, 4)). A torsion that continues the previous one
+    along a chain (B-C-D-E after A-B-C-D) takes two of its bond vectors from it.
+    """
+    n = idx3.shape[0]
+    pb = pc = pd = idx3[0, 0]
+    dx = dy = dz = 0.0
+    for t in range(n):
+        a = idx3[t, 0]
+        b = idx3[t, 1]
+        c = idx3[t, 2]
+        d = idx3[t, 3]
+        if t > 0 and a == pb and b == pc and c == pd:
+            for k in range(6):
+                bonds[k, t] = bonds[k + 3, t - 1]
+            ex = np.float64(flat[d])
+            ey = np.float64(flat[d + 1])
+            ez = np.float64(flat[d + 2])
+            bonds[6, t] = ex - dx
+            bonds[7, t] = ey - dy
+            bonds[8, t] = ez - dz
+            dx, dy, dz = ex, ey, ez
+        else:
+            for k in range(3):
+                xa = np.float64(flat[a + k])
+                xb = np.float64(flat[b + k])
+                xc = np.float64(flat[c + k])
+                xd = np.float64(flat[d + k])
+                bonds[k, t] = xb - xa
+                bonds[3 + k, t] = xc - xb
+                bonds[6 + k, t] = xd - xc
+            dx = np.float64(flat[d])
+            dy = np.float64(flat[d + 1])
+            dz = np.float64(flat[d + 2])
+        pb, pc, pd = b, c, d
+
+
+@njit(**_OPTS)
+def minimum_image_triclinic(bonds, h, reach2):
+    """Minimum image of every bond vector in a triclinic cell (rows of ``h`` are a, b, c, lower
+    triangular as MDAnalysis' ``triclinic_vectors``): reduce along c, b, a, then, unless the
+    squared length is below ``reach2`` (then no other image can be shorter), take the shortest of
+    the 27 neighbouring images (the first found in the order i, j, k = -1, 0, 1)."""
+    n = bonds.shape[1]
+    for t in range(n):
+        for r in range(3):
+            x = bonds[3 * r, t]
+            y = bonds[3 * r + 1, t]
+            z = bonds[3 * r + 2, t]
+            s = np.floor(z / h[2, 2] + 0.5)
+            x -= s * h[2, 0]
+            y -= s * h[2, 1]
+            z -= s * h[2, 2]
+            s = np.floor(y / h[1, 1] + 0.5)
+            x -= s * h[1, 0]
+            y -= s * h[1, 1]
+            z -= s * h[1, 2]
+            s = np.floor(x / h[0, 0] + 0.5)
+            x -= s * h[0, 0]
+            y -= s * h[0, 1]
+            z -= s * h[0, 2]
+            bonds[3 * r, t] = x
+            bonds[3 * r + 1, t] = y
+            bonds[3 * r + 2, t] = z
+            bx, by, bz = x, y, z
+            best = (x * x + y * y) + z * z
+            if best < reach2:
+                continue
+            for i in range(-1, 2):
+                for j in range(-1, 2):
+                    for k in range(-1, 2):
+                        cx = ((x + i * h[0, 0]) + j * h[1, 0]) + k * h[2, 0]
+                        cy = ((y + i * h[0, 1]) + j * h[1, 1]) + k * h[2, 1]
+                        cz = ((z + i * h[0, 2]) + j * h[1, 2]) + k * h[2, 2]
+                        d = (cx * cx + cy * cy) + cz * cz
+                        if d < best:
+                            best = d
+                            bx, by, bz = cx, cy, cz
+            bonds[3 * r, t] = bx
+            bonds[3 * r + 1, t] = by
+            bonds[3 * r + 2, t] = bz
+
+
+@njit(**_OPTS)
+def dihedrals_deg(bonds, lengths, inverse, out):
+    """Torsion angles in degrees on (-180, 180] (float32, NaN when undefined) from bond vectors.
+
+    Each component first gets the orthorhombic minimum image ``v - L floor(v / L + 1/2)``
+    (``lengths`` and ``inverse`` 1 / L; zeros make it the identity, for no box or a triclinic
+    cell already reduced by :func:`minimum_image_triclinic`). Then
+    phi = atan2(|b2| b1 . (b2 x b3), (b1 x b2) . (b2 x b3)), with the arctangent computed here
+    (see the module docstring of :mod:`dihedra.angles`).
+    """
+    n = bonds.shape[1]
+    lx, ly, lz = lengths[0], lengths[1], lengths[2]
+    ix, iy, iz = inverse[0], inverse[1], inverse[2]
+    for t in range(n):
+        u1 = bonds[0, t]
+        u2 = bonds[1, t]
+        u3 = bonds[2, t]
+        v1 = bonds[3, t]
+        v2 = bonds[4, t]
+        v3 = bonds[5, t]
+        w1 = bonds[6, t]
+        w2 = bonds[7, t]
+        w3 = bonds[8, t]
+        u1 = u1 - lx * np.floor(u1 * ix + 0.5)
+        u2 = u2 - ly * np.floor(u2 * iy + 0.5)
+        u3 = u3 - lz * np.floor(u3 * iz + 0.5)
+        v1 = v1 - lx * np.floor(v1 * ix + 0.5)
+        v2 = v2 - ly * np.floor(v2 * iy + 0.5)
+        v3 = v3 - lz * np.floor(v3 * iz + 0.5)
+        w1 = w1 - lx * np.floor(w1 * ix + 0.5)
+        w2 = w2 - ly * np.floor(w2 * iy + 0.5)
+        w3 = w3 - lz * np.floor(w3 * iz + 0.5)
+        n1 = u2 * v3 - u3 * v2
+        n2 = u3 * v1 - u1 * v3
+        n3 = u1 * v2 - u2 * v1
+        m1 = v2 * w3 - v3 * w2
+        m2 = v3 * w1 - v1 * w3
+        m3 = v1 * w2 - v2 * w1
+        x = (n1 * m1 + n2 * m2) + n3 * m3
+        y = math.sqrt((v1 * v1 + v2 * v2) + v3 * v3) * ((u1 * m1 + u2 * m2) + u3 * m3)
+        ax = abs(x)
+        ay = abs(y)
+        swap = ay > ax
+        lo = ax if swap else ay
+        hi = ay if swap else ax
+        big = lo > _SPLIT * hi
+        num = lo - hi if big else lo
+        den = lo + hi if big else hi
+        z = num / den
+        zz = z * z
+        p = (((_P0 * zz + _P1) * zz + _P2) * zz + _P3) * zz + _P4
+        q = ((((zz + _Q0) * zz + _Q1) * zz + _Q2) * zz + _Q3) * zz + _Q4
+        r = z + z * (zz * p / q)
+        r = r + _QUARTER_PI if big else r
+        r = _HALF_PI - r if swap else r
+        r = _PI - r if x < 0.0 else r
+        r = -r if y < 0.0 else r
+        deg = np.float32(r * _RAD_TO_DEG)
+        deg = np.float32(180.0) if deg <= -180.0 else deg
+        deg = np.float32(180.0) if deg > 180.0 else deg
+        undefined = ((ax == 0.0) & (ay == 0.0)) | (x != x) | (y != y)
+        out[t] = np.float32(np.nan) if undefined else deg
+
+
+@njit(**_OPTS)
+def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, boundaries, start_closed,
+                 arc_states, mixed, bins, codes):
+    """One frame: fine bin and state code of every torsion.
+
+    ``bins`` receives k = ceil((a + shift_in) / width) + shift_out, clipped to 1..n_bins (0 for
+    an undefined angle): the bin (-180 + (k-1) width, -180 + k width]. With an even number of
+    bins, shift_in = 0 and shift_out = n_bins / 2, which is exact for float32 angles, also next
+    to 0 and to bin edges; else shift_in = 180, shift_out = 0. ``codes`` receives ``table[k]``
+    (``table[0]`` = -1, undefined); a bin whose entry is ``mixed`` is cut by a state boundary,
+    and its angles follow the exact rule of :meth:`dihedra.schemes.StateScheme.assign` (last
+    boundary at or below the angle; a boundary owned by the previous arc moves one arc back).
+    """
+    n = deg.shape[0]
+    for t in range(n):   # SIMD
+        a = np.float64(deg[t])
+        ok = a == a
+        k = np.ceil(((a if ok else 0.0) + shift_in) / width) + shift_out
+        k = 1.0 if k < 1.0 else k
+        k = n_bins if k > n_bins else k
+        bins[t] = np.uint16(k) if ok else np.uint16(0)
+    nb = boundaries.shape[0]
+    for t in range(n):
+        code = table[bins[t]]
+        if code == mixed:
+            a = np.float64(deg[t])
+            j = -1
+            for m in range(nb):
+                if boundaries[m] <= a:
+                    j = m
+            if j < 0:
+                j = nb - 1
+            if a == boundaries[j] and not start_closed[j]:
+                j = (j - 1) % nb
+            code = arc_states[j]
+        codes[t] = code
+
+
+@njit(**_OPTS)
+def add_frames(bins, codes, hist_block, state_block, weights, hist, counts, undefined):
+    """Add buffered frames to the block sums, torsion by torsion.
+
+    For frame f and torsion t with ``bins[f, t] = k > 0``: ``hist[hist_block[f], t, k - 1]`` and
+    ``counts[state_block[f], t, codes[f, t]]`` get ``weights[f]``; k = 0 (undefined) adds 1 to
+    ``undefined[t]``. The histogram rows of a group of torsions stay in the cache for all the
+    buffered frames (frame by frame, each torsion would touch a new cache line every frame):
+    torsions go in tiles of ``_TILE``, whose histogram rows stay in the cache together while the
+    frames are read row by row.
+    """
+    n_f, n_t = bins.shape
+    for t0 in range(0, n_t, _TILE):
+        t1 = min(n_t, t0 + _TILE)
+        for f in range(n_f):
+            hb = hist_block[f]
+            sb = state_block[f]
+            w = weights[f]
+            for t in range(t0, t1):
+                k = bins[f, t]
+                if k > 0:
+                    hist[hb, t, k - 1] += w
+                    counts[sb, t, codes[f, t]] += w
+                else:
+                    undefined[t] += 1
+
+
+@njit(**_OPTS)
+def count_conformers(codes, local_block, members, powers, dense, weights, dense_weights,
+                     weighted):
+    """Joint states of conformer groups of one size, over the frames of a chunk.
+
+    ``codes`` (n_frames, n_torsions) int8, ``local_block`` (n_frames,) block of each frame
+    relative to ``dense``, ``members`` (n_groups, width) torsion positions, ``powers`` n_s ** j.
+    ``dense`` (n_blocks, n_groups, n_s ** width) frames; ``dense_weights`` the same with weights.
+    Frames in which a member is undefined are left out for that group.
+    """
+    n_f = codes.shape[0]
+    n_g, width = members.shape
+    for f in range(n_f):
+        b = local_block[f]
+        w = weights[f]
+        for g in range(n_g):
+            joint = 0
+            ok = True
+            for j in range(width):
+                c = codes[f, members[g, j]]
+                if c < 0:
+                    ok = False
+                joint += np.int64(c) * powers[j]
+            if ok:
+                dense[b, g, joint] += 1
+                if weighted:
+                    dense_weights[b, g, joint] += w

@@ -1,0 +1,123 @@
+"""The compiled (numba) kernels of the trajectory pass give exactly the numbers of their NumPy
+twins, and both agree with references: MDAnalysis' calc_dihedrals for the angles, the scheme's
+own assign() for the state codes at and next to every boundary, numpy.histogram for the bins."""
+
+import numpy as np
+import pytest
+
+from dihedra import angles
+from dihedra.schemes import get_scheme
+
+pytest.importorskip("numba")
+
+
+def random_chains(n_mol, seed, side=30.0):
+    """Six-site chains with random bond directions (bond 1.5 A), atoms wrapped one by one."""
+    rng = np.random.default_rng(seed)
+    steps = rng.normal(size=(n_mol, 6, 3))
+    steps *= 1.5 / np.linalg.norm(steps, axis=-1, keepdims=True)
+    xyz = steps.cumsum(axis=1) + rng.uniform(0, side, size=(n_mol, 1, 3))
+    idx = (np.arange(n_mol)[:, None, None] * 6 + np.arange(3)[None, :, None] + np.arange(4)).reshape(-1, 4)
+    return xyz.reshape(-1, 3), idx
+
+
+@pytest.mark.parametrize("box", [None, [30.0, 30.0, 30.0, 90.0, 90.0, 90.0],
+                                 [30.0, 32.0, 35.0, 70.0, 80.0, 100.0]])
+def test_compiled_angles_equal_numpy_and_mdanalysis(box):
+    from MDAnalysis.lib.distances import calc_dihedrals
+    from MDAnalysis.lib.mdamath import triclinic_vectors
+
+    xyz, idx = random_chains(3000, seed=7)
+    if box is not None:   # wrap every atom into the cell on its own (molecules split)
+        h = triclinic_vectors(np.asarray(box, dtype=np.float32)).astype(float)
+        frac = xyz @ np.linalg.inv(h)
+        xyz = (frac - np.floor(frac)) @ h
+    xyz = xyz.astype(np.float32)
+    # undefined torsions: collinear atoms and a NaN coordinate
+    xyz[0:4] = [[1, 1, 1], [2, 1, 1], [3, 1, 1], [4, 1, 1]]
+    xyz[13, 1] = np.nan
+    compiled = angles.TorsionGeometry(idx, compiled=True)(xyz, box).copy()
+    plain = angles.TorsionGeometry(idx, compiled=False)(xyz, box)
+    np.testing.assert_array_equal(compiled, plain)   # same bits, NaN where undefined
+    # reference library: MDAnalysis calc_dihedrals, float64, with the box
+    ref = np.degrees(calc_dihedrals(*(xyz[idx[:, k]].astype(np.float64) for k in range(4)),
+                                    box=None if box is None else np.asarray(box, dtype=np.float64)))
+    undefined = np.isnan(compiled)
+    assert np.flatnonzero(undefined).tolist() == [0, 1, 6, 7]   # collinear 0-1-2-3, NaN atom 13
+    diff = (compiled[~undefined] - ref[~undefined] + 180.0) % 360.0 - 180.0
+    assert np.abs(diff).max() < 1e-3
+    assert (compiled[~undefined] > -180).all() and (compiled[~undefined] <= 180).all()
+
+
+def test_arctangent_octants_and_signs():
+    # analytic: a torsion of exactly 0, +-90 and 180 degrees, and both signs near 180
+    geo = [angles.TorsionGeometry([[0, 1, 2, 3]], compiled=c) for c in (True, False)]
+    for phi in (0.0, 90.0, -90.0, 180.0, 179.9, -179.9, 45.0, -135.0, 33.69, -146.31):
+        p = np.radians(phi)
+        xyz = np.array([[1, 0, 0], [0, 0, 0], [0, 0, 1], [np.cos(p), np.sin(p), 1]], dtype=np.float32)
+        got = [g(xyz)[0] for g in geo]
+        assert got[0] == got[1]
+        assert abs(((got[0] - phi + 180) % 360) - 180) < 1e-4
+
+
+@pytest.mark.parametrize("name", ["anti-gauche", "klyne-prelog", "staggered-eclipsed", "staggered-eclipsed:5"])
+def test_bin_and_count_equal_assign_at_every_boundary(name):
+    from dihedra import _kernels
+    from dihedra.trackpass import _MIXED, bin_state_table
+
+    scheme = get_scheme(name)
+    n_bins = 360
+    # every boundary, its float32 neighbours, bin edges, and random angles
+    b = np.asarray(scheme.boundaries_deg, dtype=np.float32)
+    edges = np.arange(-179, 181, dtype=np.float32)
+    rng = np.random.default_rng(1)
+    deg = np.concatenate([b, np.nextafter(b, np.float32(-200)), np.nextafter(b, np.float32(200)), edges,
+                          np.nextafter(edges, np.float32(-200)), rng.uniform(-180, 180, 5000).astype(np.float32),
+                          [np.nan, 180.0]]).astype(np.float32)
+    deg = np.where(deg <= -180, np.float32(180), deg)
+    # assign() wraps through a + 180, which rounds angles below 1e-14 degrees to 0 (the float32
+    # neighbours of 0); the pass bins them exactly, so compare next to 0 at 1e-6 degrees instead
+    tiny = (np.abs(deg) < 1e-12) & (deg != 0)
+    deg[tiny] = np.sign(deg[tiny]) * np.float32(1e-6)
+    n = len(deg)
+    table = bin_state_table(scheme, n_bins)
+    out = {}
+    for kind in ("compiled", "numpy"):
+        hist = np.zeros((1, n, n_bins), dtype=np.int32)
+        counts = np.zeros((1, n, scheme.n_states), dtype=np.int64)
+        codes = np.empty((1, n), dtype=np.int8)
+        undefined = np.zeros(n, dtype=np.int64)
+        bins = np.empty((1, n), dtype=np.uint16)
+        if kind == "compiled":
+            _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table,
+                                  np.asarray(scheme.boundaries_deg, dtype=float),
+                                  np.asarray(scheme.start_closed, dtype=bool),
+                                  np.asarray(scheme.arc_states, dtype=np.int8), _MIXED, bins[0], codes[0])
+            _kernels.add_frames(bins, codes, np.zeros(1, dtype=np.intp), np.zeros(1, dtype=np.intp),
+                                np.ones(1, dtype=np.int32), hist, counts, undefined)
+        else:   # the NumPy twins, on a pass object reduced to what they use
+            from types import SimpleNamespace
+
+            from dihedra.trackpass import TorsionPass
+            fake = SimpleNamespace(bin_width_deg=1.0, _n_bins=n_bins, _bin_table=table, _shift_in=0.0,
+                                   _shift_out=n_bins // 2, _boundaries=np.asarray(scheme.boundaries_deg, dtype=float),
+                                   _start_closed=np.asarray(scheme.start_closed, dtype=bool),
+                                   _arc_states=np.asarray(scheme.arc_states, dtype=np.int8), scheme=scheme,
+                                   _kernels=None, _bins=bins, _bins_hblock=np.zeros(1, dtype=np.intp),
+                                   _bins_sblock=np.zeros(1, dtype=np.intp), _bins_weight=np.ones(1, dtype=np.int32),
+                                   _n_bins_buf=1, _n_buf=1, _buf_codes=codes, _hist=hist,
+                                   results=SimpleNamespace(state_counts=counts, undefined=undefined))
+            TorsionPass._bin_and_code(fake, deg, bins[0], codes[0])
+            TorsionPass._add_frames(fake)
+        out[kind] = (hist[0], counts[0], codes[0], undefined)
+    for a, c in zip(out["compiled"], out["numpy"]):
+        np.testing.assert_array_equal(a, c)
+    hist, counts, codes, undefined = out["compiled"]
+    # the scheme's own rule, on the same float32 angles
+    np.testing.assert_array_equal(codes, scheme.assign(deg.astype(np.float64)))
+    assert undefined.tolist() == [0] * (n - 2) + [1, 0]
+    # bins open at the left edge: numpy's left-closed bins of the negated angles, reversed
+    ok = ~np.isnan(deg)
+    expect = np.array([np.histogram([-x], bins=np.linspace(-180, 180, n_bins + 1))[0][::-1] for x in deg[ok]])
+    np.testing.assert_array_equal(hist[ok], expect)
+    np.testing.assert_array_equal(counts[ok], np.eye(scheme.n_states, dtype=np.int64)[codes[ok]])
