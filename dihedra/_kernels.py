@@ -31,7 +31,6 @@ _HALF_PI = math.pi / 2.0
 _QUARTER_PI = math.pi / 4.0
 _RAD_TO_DEG = 180.0 / math.pi
 _SPLIT = 0.66
-_TILE = 64
 
 _OPTS = dict(cache=True, nogil=True, error_model="numpy", boundscheck=False)
 
@@ -189,8 +188,8 @@ def dihedrals_deg(bonds, lengths, inverse, out):
 
 @njit(**_OPTS)
 def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, boundaries, start_closed,
-                 arc_states, mixed, bins, codes):
-    """One frame: fine bin and state code of every torsion.
+                 arc_states, mixed, bins, codes, counts, weight, undefined):
+    """One frame: fine bin, state code and state count of every torsion.
 
     ``bins`` receives k = ceil((a + shift_in) / width) + shift_out, clipped to 1..n_bins (0 for
     an undefined angle): the bin (-180 + (k-1) width, -180 + k width]. With an even number of
@@ -199,6 +198,8 @@ def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, boundaries, sta
     (``table[0]`` = -1, undefined); a bin whose entry is ``mixed`` is cut by a state boundary,
     and its angles follow the exact rule of :meth:`dihedra.schemes.StateScheme.assign` (last
     boundary at or below the angle; a boundary owned by the previous arc moves one arc back).
+    ``counts[t, code]`` (the current state block) gets ``weight``; an undefined angle adds 1 to
+    ``undefined[t]`` instead.
     """
     n = deg.shape[0]
     for t in range(n):   # SIMD
@@ -223,33 +224,26 @@ def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, boundaries, sta
                 j = (j - 1) % nb
             code = arc_states[j]
         codes[t] = code
+        if code >= 0:
+            counts[t, code] += weight
+        else:
+            undefined[t] += 1
 
 
 @njit(**_OPTS)
-def add_frames(bins, codes, hist_block, state_block, weights, hist, counts, undefined):
-    """Add buffered frames to the block sums, torsion by torsion.
+def add_histograms(bins, hist_block, weights, hist):
+    """Add buffered frames to the histograms: ``hist[hist_block[f], t, bins[f, t] - 1]`` gets
+    ``weights[f]`` for every frame f and torsion t with ``bins[f, t] > 0``.
 
-    For frame f and torsion t with ``bins[f, t] = k > 0``: ``hist[hist_block[f], t, k - 1]`` and
-    ``counts[state_block[f], t, codes[f, t]]`` get ``weights[f]``; k = 0 (undefined) adds 1 to
-    ``undefined[t]``. The histogram rows of a group of torsions stay in the cache for all the
-    buffered frames (frame by frame, each torsion would touch a new cache line every frame):
-    torsions go in tiles of ``_TILE``, whose histogram rows stay in the cache together while the
-    frames are read row by row.
+    Torsion by torsion: the histogram row of a torsion stays in the cache for all the buffered
+    frames (frame by frame, each torsion would touch a new cache line in every frame).
     """
     n_f, n_t = bins.shape
-    for t0 in range(0, n_t, _TILE):
-        t1 = min(n_t, t0 + _TILE)
+    for t in range(n_t):
         for f in range(n_f):
-            hb = hist_block[f]
-            sb = state_block[f]
-            w = weights[f]
-            for t in range(t0, t1):
-                k = bins[f, t]
-                if k > 0:
-                    hist[hb, t, k - 1] += w
-                    counts[sb, t, codes[f, t]] += w
-                else:
-                    undefined[t] += 1
+            k = bins[f, t]
+            if k > 0:
+                hist[hist_block[f], t, k - 1] += weights[f]
 
 
 @njit(**_OPTS)

@@ -118,34 +118,45 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
         population_err, n_groups.
     """
     n_s = len(state_labels)
-    out = []
     rows = np.asarray(rows, dtype=np.int64).reshape(-1, 4)
     weights = np.asarray(weights, dtype=float)
     group_types = [" | ".join(types[p] for p in m) for m in members]
     type_names = _short_type_names(group_types, resnames, members)
-    order = np.argsort(rows[:, 1], kind="stable")  # rows of one group are then one slice
+    # one column per observed (group, joint code), in group order and code order
+    order = np.lexsort((rows[:, 2], rows[:, 1]))
     rows, weights = rows[order], weights[order]
-    bounds = np.searchsorted(rows[:, 1], np.arange(len(groups) + 1))
-    for g, (name, m) in enumerate(zip(groups, members)):
-        sel = slice(bounds[g], bounds[g + 1])
-        if bounds[g] == bounds[g + 1]:
-            continue
-        codes, inv = np.unique(rows[sel, 2], return_inverse=True)
-        table = np.zeros((n_blocks, len(codes)))
-        np.add.at(table, (rows[sel, 0], inv.reshape(-1)), weights[sel])
-        totals = table.sum(axis=1)
-        mean, se, n_eff = blocking_error(table, totals, block_replica)
-        for k, code in enumerate(codes):
-            digits = [(int(code) // n_s ** j) % n_s for j in range(len(m))]
-            out.append({
-                "group": name,
-                "group_type": type_names[g],
-                "conformer": "|".join(state_labels[d] for d in digits),
-                "torsions": "|".join(labels[p] for p in m),
-                "population": mean[k], "population_err": se[k], "n_effective": n_eff[k],
-            })
-    by_group = pd.DataFrame(out, columns=["group", "group_type", "conformer", "torsions",
-                                          "population", "population_err", "n_effective"])
+    new = np.ones(len(rows), dtype=bool)
+    new[1:] = (rows[1:, 1] != rows[:-1, 1]) | (rows[1:, 2] != rows[:-1, 2])
+    pair = np.cumsum(new) - 1
+    pair_group, pair_code = rows[new, 1], rows[new, 2]
+    n_pairs, n_groups = len(pair_group), len(groups)
+    table = np.bincount(rows[:, 0] * n_pairs + pair, weights=weights,
+                        minlength=n_blocks * n_pairs).reshape(n_blocks, n_pairs)
+    totals = np.bincount(rows[:, 0] * n_groups + rows[:, 1], weights=weights,
+                         minlength=n_blocks * n_groups).reshape(n_blocks, n_groups)
+    mean, se, n_eff = np.empty(n_pairs), np.empty(n_pairs), np.empty(n_pairs)
+    # blocking over all groups at once; a group with an empty block where others have frames
+    # (all frames of a member undefined) drops that block, so it is done on its own
+    used = totals.sum(axis=1) > 0
+    regular = np.all((totals > 0) == used[:, None], axis=0)[pair_group]
+    if regular.any():
+        cols = np.flatnonzero(regular)
+        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, pair_group[cols]],
+                                                           block_replica)
+    for g in np.unique(pair_group[~regular]):
+        cols = np.flatnonzero(pair_group == g)
+        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, g], block_replica)
+    width = np.array([len(m) for m in members], dtype=np.int64)
+    names = np.array(groups, dtype=object)
+    joined = np.array(["|".join(labels[p] for p in m) for m in members], dtype=object)
+    out = pd.DataFrame({
+        "group": names[pair_group],
+        "group_type": np.array(type_names, dtype=object)[pair_group],
+        "conformer": _conformer_labels(pair_code, width[pair_group], state_labels),
+        "torsions": joined[pair_group],
+        "population": mean, "population_err": se, "n_effective": n_eff,
+    })
+    by_group = out
     if by_group.empty:
         return by_group, pd.DataFrame(columns=["group_type", "conformer", "population",
                                                "population_err", "n_groups"])
@@ -166,6 +177,17 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     by_group = by_group.sort_values(["group", "population"], ascending=[True, False],
                                     kind="stable").reset_index(drop=True)
     return by_group, pooled
+
+
+def _conformer_labels(codes, widths, state_labels):
+    """``"anti|gauche+|anti"`` for joint codes (digit j = state of member j, base n_states)."""
+    n_s = len(state_labels)
+    out = np.empty(len(codes), dtype=object)
+    keys = np.stack([codes, widths], axis=1)
+    uniq, inv = np.unique(keys, axis=0, return_inverse=True) if len(keys) else (keys, np.empty(0, int))
+    text = ["|".join(state_labels[(int(c) // n_s ** j) % n_s] for j in range(int(w))) for c, w in uniq]
+    out[:] = np.array(text, dtype=object)[inv.reshape(-1)] if len(text) else []
+    return out
 
 
 def _short_type_names(group_types, resnames, members):

@@ -257,8 +257,14 @@ class TorsionPass(AnalysisBase):
         gi = self._global_index
         first, last = (int(gi[0]), int(gi[-1])) if len(gi) else (0, 0)
         # blocks this worker touches: its frames are one contiguous slice of the run
-        self._hb_lo, hb_hi = first * self.n_hist_blocks // total, last * self.n_hist_blocks // total
-        self._sb_lo, sb_hi = first * self.n_state_blocks // total, last * self.n_state_blocks // total
+        if first == 0 and last == total - 1:   # the whole run (serial): every block
+            self._hb_lo, hb_hi, self._sb_lo, sb_hi = 0, self.n_hist_blocks - 1, 0, self.n_state_blocks - 1
+        else:
+            self._hb_lo, hb_hi = first * self.n_hist_blocks // total, last * self.n_hist_blocks // total
+            self._sb_lo, sb_hi = first * self.n_state_blocks // total, last * self.n_state_blocks // total
+        # per analysed frame of this worker: histogram block (local), state block, weight
+        self._frame_hblock = (gi * self.n_hist_blocks // total - self._hb_lo).astype(np.intp)
+        self._frame_sblock = (gi * self.n_state_blocks // total).astype(np.intp)
         weighted = self.weights is not None
         self._count_dtype = np.float64 if weighted else np.int64
         self._hist_dtype = np.float64 if weighted else np.int32
@@ -269,6 +275,7 @@ class TorsionPass(AnalysisBase):
         res.hist_block_frames = np.zeros(self.n_hist_blocks, dtype=np.int64)
         res.hist_block_weights = np.zeros(self.n_hist_blocks, dtype=np.float64)
         res.undefined = np.zeros(n_t, dtype=np.int64)
+        self._state_counts, self._undefined = res.state_counts, res.undefined
         # dense histograms of every block of this worker, allocated once: the footprint is fixed
         # by torsions x blocks x bins, never by the number of frames
         self._hist = _touched_zeros((hb_hi - self._hb_lo + 1, n_t, n_bins), self._hist_dtype)
@@ -287,13 +294,17 @@ class TorsionPass(AnalysisBase):
         self._angles = np.empty(n_t, dtype=np.float32)
         # k = ceil((a + shift_in) / width) + shift_out (see bin_and_code)
         self._shift_in, self._shift_out = (0.0, n_bins // 2) if n_bins % 2 == 0 else (180.0, 0)
+        self._bin_args = (float(self.bin_width_deg), self._shift_in, self._shift_out, n_bins,
+                          self._bin_table, self._boundaries, self._start_closed, self._arc_states,
+                          _MIXED)
+        self._frame_weight = (np.ones(len(gi), dtype=np.int64) if not weighted
+                              else self.weights[gi].astype(np.float64))
         # fine bins of the last few frames, added to the block sums torsion by torsion
         if n_bins >= 2**16:
             raise ValueError(f"at most 65535 fine bins; got {n_bins} (bin_width_deg {self.bin_width_deg})")
         nf = int(max(1, min(HIST_BUFFER_FRAMES, self.n_frames)))
         self._bins = np.empty((nf, n_t), dtype=np.uint16)
         self._bins_hblock = np.empty(nf, dtype=np.intp)
-        self._bins_sblock = np.empty(nf, dtype=np.intp)
         self._bins_weight = np.empty(nf, dtype=self._hist_dtype)
         self._n_bins_buf = 0
         # conformer groups of equal size are counted together; dense counts for every block of
@@ -324,59 +335,47 @@ class TorsionPass(AnalysisBase):
 
     def _single_frame(self):
         ts = self._ts
-        gi = int(self._global_index[self._frame_index])
-        total = self._n_total
+        i = self._frame_index
         row = self._n_buf
-        codes = self._buf_codes[row]
         nb = self._n_bins_buf
-        bins = self._bins[nb]
+        bins, codes = self._bins[nb], self._buf_codes[row]
+        w = self._frame_weight[i]
+        counts = self._state_counts[self._frame_sblock[i]]
         deg = self._geometry(ts.positions, ts.dimensions,
                              out=self._angles if self._buf_angles is None else self._buf_angles[row])
         if self._kernels is not None:
-            self._kernels.bin_and_code(deg, self.bin_width_deg, self._shift_in, self._shift_out,
-                                       self._n_bins, self._bin_table, self._boundaries,
-                                       self._start_closed, self._arc_states, _MIXED, bins, codes)
+            self._kernels.bin_and_code(deg, *self._bin_args, bins, codes, counts, w, self._undefined)
         else:
-            self._bin_and_code(deg, bins, codes)
-        self._bins_hblock[nb] = gi * self.n_hist_blocks // total - self._hb_lo
-        self._bins_sblock[nb] = gi * self.n_state_blocks // total
-        self._bins_weight[nb] = 1 if self.weights is None else self.weights[gi]
+            self._bin_and_code(deg, bins, codes, counts, w)
+        self._bins_hblock[nb] = self._frame_hblock[i]
+        self._bins_weight[nb] = w
         self._n_bins_buf = nb + 1
         self._buf_frame[row] = ts.frame
         self._buf_time[row] = ts.time if self.dt_ps is None else ts.frame * float(self.dt_ps)
-        self._buf_index[row] = gi
+        self._buf_index[row] = self._global_index[i]
         self._n_buf = row + 1
-        if self._n_bins_buf == len(self._bins):
-            self._add_frames()
-        if self._n_buf == len(self._buf_codes):
+        if nb + 1 == len(self._bins):
+            self._add_histograms()
+        if row + 1 == len(self._buf_codes):
             self._flush()
 
-    def _add_frames(self):
-        """Add the buffered frames (the last rows of the chunk buffer) to the block sums."""
+    def _add_histograms(self):
+        """Add the fine bins of the buffered frames to the histograms."""
         m = self._n_bins_buf
         if m == 0:
             return
-        bins, hblock, sblock = self._bins[:m], self._bins_hblock[:m], self._bins_sblock[:m]
-        weight = self._bins_weight[:m]
-        codes = self._buf_codes[self._n_buf - m:self._n_buf]
-        res = self.results
+        bins, hblock, weight = self._bins[:m], self._bins_hblock[:m], self._bins_weight[:m]
         if self._kernels is not None:
-            self._kernels.add_frames(bins, codes, hblock, sblock, weight, self._hist,
-                                     res.state_counts, res.undefined)
+            self._kernels.add_histograms(bins, hblock, weight, self._hist)
         else:   # NumPy twin: np.add.at adds in frame order, like the kernel
             n_t = bins.shape[1]
             ok = bins > 0
-            t = np.arange(n_t)[None, :]
-            w = np.broadcast_to(weight[:, None], ok.shape)[ok]
-            cell = (hblock[:, None] * n_t + t) * self._n_bins + bins.astype(np.intp) - 1
-            np.add.at(self._hist.reshape(-1), cell[ok], w)
-            cell = (sblock[:, None] * n_t + t) * self.scheme.n_states + codes
-            np.add.at(res.state_counts.reshape(-1), cell[ok], w)
-            res.undefined += (~ok).sum(axis=0)
+            cell = (hblock[:, None] * n_t + np.arange(n_t)[None, :]) * self._n_bins + bins.astype(np.intp) - 1
+            np.add.at(self._hist.reshape(-1), cell[ok], np.broadcast_to(weight[:, None], ok.shape)[ok])
         self._n_bins_buf = 0
 
-    def _bin_and_code(self, deg, bins, codes):
-        """NumPy twin of :func:`dihedra._kernels.bin_and_code` (same bins and codes)."""
+    def _bin_and_code(self, deg, bins, codes, counts, w):
+        """NumPy twin of :func:`dihedra._kernels.bin_and_code` (same bins, codes and counts)."""
         a = deg.astype(np.float64)
         ok = ~np.isnan(a)
         k = np.ceil((np.where(ok, a, 0.0) + self._shift_in) / self.bin_width_deg) + self._shift_out
@@ -391,6 +390,9 @@ class TorsionPass(AnalysisBase):
             j[j < 0] = nb - 1
             j = np.where((x == b[j]) & ~self._start_closed[j], (j - 1) % nb, j)
             codes[mixed] = self._arc_states[j]
+        t = np.flatnonzero(ok)
+        np.add.at(counts, (t, codes[t]), counts.dtype.type(w))
+        self._undefined += ~ok
 
     def _conclude(self):
         # dense histograms of every worker (a serial run hands over its array without a copy)
@@ -415,7 +417,7 @@ class TorsionPass(AnalysisBase):
         n = getattr(self, "_n_buf", 0)
         if n == 0:
             return
-        self._add_frames()
+        self._add_histograms()
         codes = self._buf_codes[:n]
         gi = self._buf_index[:n]
         total = max(1, self._n_total)
@@ -511,7 +513,7 @@ class TorsionPass(AnalysisBase):
             self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
         self._conf_rows, self._conf_wts = [], []
         self._hist = None
-        self._buf_codes = self._buf_angles = None
+        self._buf_codes = self._buf_angles = self._bins = None
         self._geometry = self._kernels = None   # modules do not pickle (results go back to the parent)
 
     # -- chunk files -------------------------------------------------------------------------------

@@ -84,17 +84,17 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
     out = {}
     for kind in ("compiled", "numpy"):
         hist = np.zeros((1, n, n_bins), dtype=np.int32)
-        counts = np.zeros((1, n, scheme.n_states), dtype=np.int64)
-        codes = np.empty((1, n), dtype=np.int8)
+        counts = np.zeros((n, scheme.n_states), dtype=np.int64)
+        codes = np.empty(n, dtype=np.int8)
         undefined = np.zeros(n, dtype=np.int64)
         bins = np.empty((1, n), dtype=np.uint16)
         if kind == "compiled":
             _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table,
                                   np.asarray(scheme.boundaries_deg, dtype=float),
                                   np.asarray(scheme.start_closed, dtype=bool),
-                                  np.asarray(scheme.arc_states, dtype=np.int8), _MIXED, bins[0], codes[0])
-            _kernels.add_frames(bins, codes, np.zeros(1, dtype=np.intp), np.zeros(1, dtype=np.intp),
-                                np.ones(1, dtype=np.int32), hist, counts, undefined)
+                                  np.asarray(scheme.arc_states, dtype=np.int8), _MIXED, bins[0], codes,
+                                  counts, 1, undefined)
+            _kernels.add_histograms(bins, np.zeros(1, dtype=np.intp), np.ones(1, dtype=np.int32), hist)
         else:   # the NumPy twins, on a pass object reduced to what they use
             from types import SimpleNamespace
 
@@ -102,14 +102,13 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
             fake = SimpleNamespace(bin_width_deg=1.0, _n_bins=n_bins, _bin_table=table, _shift_in=0.0,
                                    _shift_out=n_bins // 2, _boundaries=np.asarray(scheme.boundaries_deg, dtype=float),
                                    _start_closed=np.asarray(scheme.start_closed, dtype=bool),
-                                   _arc_states=np.asarray(scheme.arc_states, dtype=np.int8), scheme=scheme,
+                                   _arc_states=np.asarray(scheme.arc_states, dtype=np.int8),
                                    _kernels=None, _bins=bins, _bins_hblock=np.zeros(1, dtype=np.intp),
-                                   _bins_sblock=np.zeros(1, dtype=np.intp), _bins_weight=np.ones(1, dtype=np.int32),
-                                   _n_bins_buf=1, _n_buf=1, _buf_codes=codes, _hist=hist,
-                                   results=SimpleNamespace(state_counts=counts, undefined=undefined))
-            TorsionPass._bin_and_code(fake, deg, bins[0], codes[0])
-            TorsionPass._add_frames(fake)
-        out[kind] = (hist[0], counts[0], codes[0], undefined)
+                                   _bins_weight=np.ones(1, dtype=np.int32), _n_bins_buf=1, _hist=hist,
+                                   _undefined=undefined)
+            TorsionPass._bin_and_code(fake, deg, bins[0], codes, counts, 1)
+            TorsionPass._add_histograms(fake)
+        out[kind] = (hist[0], counts, codes, undefined)
     for a, c in zip(out["compiled"], out["numpy"]):
         np.testing.assert_array_equal(a, c)
     hist, counts, codes, undefined = out["compiled"]
