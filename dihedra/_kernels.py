@@ -40,40 +40,24 @@ def gather_bonds(flat, idx3, bonds):
     """Bond vectors A->B, B->C, C->D of every torsion in float64 (rows 0-2, 3-5, 6-8).
 
     ``flat`` is the float32 coordinate array raveled (x, y, z per atom), ``idx3`` holds 3 x the
-    atom indices (uint32 or uint64, shape (n, 4)). A torsion that continues the previous one
-    along a chain (B-C-D-E after A-B-C-D) takes two of its bond vectors from it.
+    atom indices (uint32 or uint64, shape (n, 4)). (Taking two bond vectors over from the
+    previous torsion of a chain is slower than loading them again: the loop is bound by
+    instructions, not by memory.)
     """
     n = idx3.shape[0]
-    pb = pc = pd = idx3[0, 0]
-    dx = dy = dz = 0.0
     for t in range(n):
         a = idx3[t, 0]
         b = idx3[t, 1]
         c = idx3[t, 2]
         d = idx3[t, 3]
-        if t > 0 and a == pb and b == pc and c == pd:
-            for k in range(6):
-                bonds[k, t] = bonds[k + 3, t - 1]
-            ex = np.float64(flat[d])
-            ey = np.float64(flat[d + 1])
-            ez = np.float64(flat[d + 2])
-            bonds[6, t] = ex - dx
-            bonds[7, t] = ey - dy
-            bonds[8, t] = ez - dz
-            dx, dy, dz = ex, ey, ez
-        else:
-            for k in range(3):
-                xa = np.float64(flat[a + k])
-                xb = np.float64(flat[b + k])
-                xc = np.float64(flat[c + k])
-                xd = np.float64(flat[d + k])
-                bonds[k, t] = xb - xa
-                bonds[3 + k, t] = xc - xb
-                bonds[6 + k, t] = xd - xc
-            dx = np.float64(flat[d])
-            dy = np.float64(flat[d + 1])
-            dz = np.float64(flat[d + 2])
-        pb, pc, pd = b, c, d
+        for k in range(3):
+            xa = np.float64(flat[a + k])
+            xb = np.float64(flat[b + k])
+            xc = np.float64(flat[c + k])
+            xd = np.float64(flat[d + k])
+            bonds[k, t] = xb - xa
+            bonds[3 + k, t] = xc - xb
+            bonds[6 + k, t] = xd - xc
 
 
 @njit(**_OPTS)

@@ -21,6 +21,9 @@ from .statistics import blocking_error
 #: Below this many effective samples a population's error bar is itself rough.
 MIN_EFFECTIVE_SAMPLES = 20
 
+#: Values per blocking call for conformers (bounds the temporary arrays, about 8 MB each).
+_WORK_VALUES = 1 << 20
+
 
 def torsion_populations(state_counts, block_replica, labels, types, state_labels):
     """Per-torsion populations.
@@ -139,8 +142,10 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     # (all frames of a member undefined) drops that block, so it is done on its own
     used = totals.sum(axis=1) > 0
     regular = np.all((totals > 0) == used[:, None], axis=0)[pair_group]
-    if regular.any():
-        cols = np.flatnonzero(regular)
+    regular_cols = np.flatnonzero(regular)
+    step = max(1, _WORK_VALUES // max(1, n_blocks))   # bounded temporaries
+    for lo in range(0, len(regular_cols), step):
+        cols = regular_cols[lo:lo + step]
         mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, pair_group[cols]],
                                                            block_replica)
     for g in np.unique(pair_group[~regular]):

@@ -383,7 +383,7 @@ def _assemble(tset, scheme, passes, universe, replica_info, notices):
     resnames = [t.resname for t in tset.torsions]
     state_counts = np.concatenate([p.results.state_counts for p in passes])
     block_replica = np.concatenate([np.full(p.n_state_blocks, r) for r, p in enumerate(passes)])
-    histograms = np.concatenate([p.results.histograms for p in passes])
+    histograms = _stack_histograms(passes)
     hist_block_replica = np.concatenate([np.full(p.n_hist_blocks, r) for r, p in enumerate(passes)])
     blocks = {
         "state_counts": state_counts,
@@ -434,6 +434,23 @@ def _assemble(tset, scheme, passes, universe, replica_info, notices):
     return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
                        populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
                        conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
+
+
+def _stack_histograms(passes):
+    """The histogram blocks of all replicas in one array: one replica's array as it is, several
+    copied one by one into a single allocation (each pass releases its own as it goes)."""
+    if len(passes) == 1:
+        return passes[0].results.histograms
+    first = passes[0].results.histograms
+    out = np.empty((sum(len(p.results.histograms) for p in passes),) + first.shape[1:], dtype=first.dtype)
+    k = 0
+    for p in passes:
+        h = p.results.histograms
+        out[k:k + len(h)] = h
+        k += len(h)
+        p.results.histograms = out[k - len(h):k]   # a view: the pass keeps no copy of its own
+        del h
+    return out
 
 
 def _package_versions():
