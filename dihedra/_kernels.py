@@ -257,3 +257,21 @@ def count_conformers(codes, local_block, members, powers, dense, weights, dense_
                 dense[b, g, joint] += 1
                 if weighted:
                     dense_weights[b, g, joint] += w
+
+
+@njit(**_OPTS)
+def frames(positions, idx3, bonds, lengths, inverse, cells, reach2, triclinic, deg, width,
+           shift_in, shift_out, n_bins, table, boundaries, start_closed, arc_states, mixed, bins,
+           codes, counts, state_block, weights, undefined):
+    """Several frames in one call (no Python between them): for frame f, the angles
+    (:func:`gather_bonds`, :func:`minimum_image_triclinic` if ``triclinic[f]``,
+    :func:`dihedrals_deg` with ``lengths[f]`` / ``inverse[f]``) into ``deg[f]``, then
+    :func:`bin_and_code` into ``bins[f]``, ``codes[f]`` and ``counts[state_block[f]]``."""
+    for f in range(positions.shape[0]):
+        gather_bonds(positions[f].reshape(-1), idx3, bonds)
+        if triclinic[f]:
+            minimum_image_triclinic(bonds, cells[f], reach2[f])
+        dihedrals_deg(bonds, lengths[f], inverse[f], deg[f])
+        bin_and_code(deg[f], width, shift_in, shift_out, n_bins, table, boundaries, start_closed,
+                     arc_states, mixed, bins[f], codes[f], counts[state_block[f]], weights[f],
+                     undefined)

@@ -206,7 +206,7 @@ def _frame_indices(universe, start, stop, step, where):
 def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *, start=None,
           stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
-          bin_width_deg=1.0, chunk_frames=None, progress=None, log=None):
+          bin_width_deg=1.0, chunk_frames=None, threads=1, progress=None, log=None):
     """Follow torsions through one or more replica trajectories.
 
     Parameters
@@ -244,6 +244,9 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         Recorded in the summary (profiles need it; tracking does not).
     n_state_blocks, n_hist_blocks, bin_width_deg, chunk_frames
         Block structure and fine histogram resolution (see :class:`TorsionPass`).
+    threads : int
+        Threads per pass: 2 lets a second thread compute while the first reads the trajectory
+        (serial runs; each worker of a parallel run uses one thread). Results are identical.
     progress : bool, optional
         Show a progress bar (default: when standard error is a terminal and the run is serial).
     log : callable, optional
@@ -299,7 +302,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
             tp = TorsionPass(u, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
                              bin_width_deg=bin_width_deg, weights=w, parts_dir=parts_dir,
-                             keep_angles=keep_angles, chunk_frames=chunk_frames, replica=r, dt_ps=dt_ps)
+                             keep_angles=keep_angles, chunk_frames=chunk_frames, replica=r, dt_ps=dt_ps,
+                             threads=threads if backend == "serial" else 1)
             run_kwargs = dict(start=start, stop=stop, step=step)
             if backend == "serial":
                 run_kwargs.update(verbose=bool(progress),
@@ -319,7 +323,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             replica_info.append(_replica_info(u, traj, fr, tp, dt_ps))
         result = _assemble(tset, scheme, passes, universes[0], replica_info, notices)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
-            start=start, stop=stop, step=step, workers=n_workers,
+            start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
             backend=backend if isinstance(backend, str) else type(backend).__name__,
             scheduler=None if scheduler is None else str(backend.client.scheduler.address),
             keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),

@@ -85,6 +85,11 @@ _MIXED = np.int8(-128)
 #: Temporary arrays of the chunk reductions stay below this many bytes.
 _WORK_BYTES = 8 << 20
 
+#: With a second thread, coordinates are copied into batches of about this many bytes.
+BATCH_BYTES = 16 << 20
+
+_NO_CELL = np.zeros((3, 3))
+
 #: Frames whose fine bins are buffered before they are added to the histograms.
 HIST_BUFFER_FRAMES = 256
 
@@ -186,6 +191,10 @@ class TorsionPass(AnalysisBase):
     compiled : bool, optional
         Use the numba kernels (default: when numba is installed); ``False`` forces the NumPy
         path, which gives identical results.
+    threads : int
+        1: everything in the calling thread. 2: a second thread computes while the calling
+        thread reads the next frames (the coordinates are copied into batches of frames; see
+        *Overlap* above). Results are identical.
 
     Examples
     --------
@@ -205,7 +214,7 @@ class TorsionPass(AnalysisBase):
 
     def __init__(self, universe, torsion_set, scheme, *, n_state_blocks=64, n_hist_blocks=16,
                  bin_width_deg=1.0, weights=None, parts_dir=None, keep_angles=False,
-                 chunk_frames=None, replica=0, dt_ps=None, compiled=None, verbose=False):
+                 chunk_frames=None, replica=0, dt_ps=None, compiled=None, threads=1, verbose=False):
         super().__init__(universe.trajectory, verbose=verbose)
         self._universe = universe
         self.torsion_set = torsion_set
@@ -220,6 +229,7 @@ class TorsionPass(AnalysisBase):
         self.replica = int(replica)
         self.dt_ps = dt_ps
         self.compiled = compiled
+        self.threads = int(threads)
 
     # -- parallel merge -------------------------------------------------------------------
     def _get_aggregator(self):
@@ -237,7 +247,14 @@ class TorsionPass(AnalysisBase):
         # the whole run's frame count is known here (before the slice of this worker replaces it)
         self._n_total = self.n_frames
         self._global_index = np.asarray(indexed_frames[:, 0], dtype=np.int64)
-        super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
+        try:
+            super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
+            if self._overlap is not None:
+                self._overlap.finish(self._staged)
+        finally:
+            if getattr(self, "_overlap", None) is not None:
+                self._overlap.stop()
+                self._overlap = None
         self._flush()
         self._finish_worker()
         return self
@@ -291,7 +308,7 @@ class TorsionPass(AnalysisBase):
         self._boundaries = np.asarray(self.scheme.boundaries_deg, dtype=np.float64)
         self._start_closed = np.asarray(self.scheme.start_closed, dtype=np.bool_)
         self._arc_states = np.asarray(self.scheme.arc_states, dtype=np.int8)
-        self._angles = np.empty(n_t, dtype=np.float32)
+        self._bonds = np.empty((9, n_t), dtype=np.float64)
         # k = ceil((a + shift_in) / width) + shift_out (see bin_and_code)
         self._shift_in, self._shift_out = (0.0, n_bins // 2) if n_bins % 2 == 0 else (180.0, 0)
         self._bin_args = (float(self.bin_width_deg), self._shift_in, self._shift_out, n_bins,
@@ -332,32 +349,78 @@ class TorsionPass(AnalysisBase):
         self._buf_time = np.empty(cf, dtype=np.float64)
         self._buf_index = np.empty(cf, dtype=np.int64)
         self._n_buf = 0
+        # frames are processed in batches: one frame at a time on views of the timestep, or,
+        # with a second thread, batches of copied coordinates of about BATCH_BYTES
+        n_atoms = self._universe.atoms.n_atoms
+        self._one_frame = _Batch(1, 0)   # its positions are replaced by a view of each frame
+        self._overlap = self._staged = None
+        if self.threads > 1:
+            size = int(max(1, min(BATCH_BYTES // max(1, 12 * n_atoms), self.n_frames)))
+            self._overlap = _Overlap(self._process, [_Batch(size, n_atoms) for _ in range(3)])
+            self._staged = self._overlap.take()
+        else:
+            size = 1
+        self._angle_rows = None if self.keep_angles else np.empty((size, n_t), dtype=np.float32)
 
     def _single_frame(self):
         ts = self._ts
-        i = self._frame_index
-        row = self._n_buf
-        nb = self._n_bins_buf
-        bins, codes = self._bins[nb], self._buf_codes[row]
-        w = self._frame_weight[i]
-        counts = self._state_counts[self._frame_sblock[i]]
-        deg = self._geometry(ts.positions, ts.dimensions,
-                             out=self._angles if self._buf_angles is None else self._buf_angles[row])
+        if self._overlap is None:   # this frame now, on views of the timestep (no copy)
+            one = self._one_frame
+            one.positions = ts.positions[None]
+            one.dimensions[0] = ts.dimensions if ts.dimensions is not None else np.nan
+            one.frame[0], one.time[0], one.index[0] = ts.frame, ts.time, self._frame_index
+            one.n = 1
+            self._process(one)
+            return
+        batch = self._staged
+        k = batch.n
+        np.copyto(batch.positions[k], ts.positions)
+        batch.dimensions[k] = ts.dimensions if ts.dimensions is not None else np.nan
+        batch.frame[k], batch.time[k], batch.index[k] = ts.frame, ts.time, self._frame_index
+        batch.n = k + 1
+        if batch.n == len(batch.frame):
+            self._staged = self._overlap.submit(batch)
+
+    def _process(self, batch):
+        """Frames of a batch, in order, split where the histogram buffer or the chunk fills."""
+        done = 0
+        n_hist, n_chunk = len(self._bins), len(self._buf_codes)
+        while done < batch.n:
+            m = min(batch.n - done, n_hist - self._n_bins_buf, n_chunk - self._n_buf)
+            self._process_frames(batch, done, m)
+            done += m
+            if self._n_bins_buf == n_hist:
+                self._add_histograms()
+            if self._n_buf == n_chunk:
+                self._flush()
+
+    def _process_frames(self, batch, lo, m):
+        row, nb = self._n_buf, self._n_bins_buf
+        i = batch.index[lo:lo + m]
+        bins, codes = self._bins[nb:nb + m], self._buf_codes[row:row + m]
+        deg = self._angle_rows[:m] if self._buf_angles is None else self._buf_angles[row:row + m]
+        weight, sblock = self._frame_weight[i], self._frame_sblock[i]
+        box = [self._geometry._box_parameters(d) for d in batch.dimensions[lo:lo + m]]
         if self._kernels is not None:
-            self._kernels.bin_and_code(deg, *self._bin_args, bins, codes, counts, w, self._undefined)
+            lengths = np.array([b[0] for b in box])
+            inverse = np.array([b[1] for b in box])
+            triclinic = np.array([b[2] is not None for b in box])
+            cells = np.array([b[2] if b[2] is not None else _NO_CELL for b in box])
+            reach2 = np.array([b[3] for b in box])
+            self._kernels.frames(batch.positions[lo:lo + m], self._geometry._idx3, self._bonds, lengths,
+                                 inverse, cells, reach2, triclinic, deg, *self._bin_args, bins, codes,
+                                 self._state_counts, sblock, weight, self._undefined)
         else:
-            self._bin_and_code(deg, bins, codes, counts, w)
-        self._bins_hblock[nb] = self._frame_hblock[i]
-        self._bins_weight[nb] = w
-        self._n_bins_buf = nb + 1
-        self._buf_frame[row] = ts.frame
-        self._buf_time[row] = ts.time if self.dt_ps is None else ts.frame * float(self.dt_ps)
-        self._buf_index[row] = self._global_index[i]
-        self._n_buf = row + 1
-        if nb + 1 == len(self._bins):
-            self._add_histograms()
-        if row + 1 == len(self._buf_codes):
-            self._flush()
+            for f in range(m):
+                self._geometry(batch.positions[lo + f], batch.dimensions[lo + f], out=deg[f])
+                self._bin_and_code(deg[f], bins[f], codes[f], self._state_counts[sblock[f]], weight[f])
+        self._bins_hblock[nb:nb + m] = self._frame_hblock[i]
+        self._bins_weight[nb:nb + m] = weight
+        self._buf_frame[row:row + m] = batch.frame[lo:lo + m]
+        self._buf_time[row:row + m] = (batch.time[lo:lo + m] if self.dt_ps is None
+                                       else batch.frame[lo:lo + m] * float(self.dt_ps))
+        self._buf_index[row:row + m] = self._global_index[i]
+        self._n_buf, self._n_bins_buf = row + m, nb + m
 
     def _add_histograms(self):
         """Add the fine bins of the buffered frames to the histograms."""
@@ -513,7 +576,8 @@ class TorsionPass(AnalysisBase):
             self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
         self._conf_rows, self._conf_wts = [], []
         self._hist = None
-        self._buf_codes = self._buf_angles = self._bins = None
+        self._buf_codes = self._buf_angles = self._bins = self._angle_rows = self._bonds = None
+        self._one_frame = self._staged = None
         self._geometry = self._kernels = None   # modules do not pickle (results go back to the parent)
 
     # -- chunk files -------------------------------------------------------------------------------
@@ -543,6 +607,81 @@ class TorsionPass(AnalysisBase):
         with open(tmp, "w") as fh:
             json.dump(layout, fh)
         os.replace(tmp, path)
+
+
+class _Batch:
+    """Coordinates, boxes, frame numbers, times and frame positions of a few frames."""
+
+    def __init__(self, size, n_atoms):
+        self.positions = np.empty((size, n_atoms, 3), dtype=np.float32)
+        self.dimensions = np.empty((max(size, 1), 6), dtype=np.float32)
+        self.frame = np.empty(max(size, 1), dtype=np.int64)
+        self.time = np.empty(max(size, 1), dtype=np.float64)
+        self.index = np.empty(max(size, 1), dtype=np.intp)
+        self.n = 0
+
+
+class _Overlap:
+    """A second thread that processes batches of frames while the calling thread reads.
+
+    Batches go through a queue in order; finished batches come back for reuse, so at most
+    ``len(batches)`` are in memory. An error in the thread is raised in the calling thread at
+    the next :meth:`submit` or at :meth:`finish`.
+    """
+
+    def __init__(self, process, batches):
+        import queue
+        import threading
+
+        self._process = process
+        self._todo = queue.Queue()
+        self._free = queue.Queue()
+        for b in batches:
+            self._free.put(b)
+        self._error = None
+        self._thread = threading.Thread(target=self._run, name="dihedra-pass", daemon=True)
+        self._thread.start()
+
+    def _run(self):
+        while True:
+            batch = self._todo.get()
+            if batch is None:
+                return
+            try:
+                if self._error is None:
+                    self._process(batch)
+            except BaseException as exc:  # noqa: BLE001 - handed to the calling thread
+                self._error = exc
+            batch.n = 0
+            self._free.put(batch)
+
+    def _check(self):
+        if self._error is not None:
+            raise self._error
+
+    def take(self):
+        """An empty batch (waits until the thread has finished one)."""
+        batch = self._free.get()
+        self._check()
+        return batch
+
+    def submit(self, batch):
+        """Queue a full batch and return an empty one."""
+        self._check()
+        self._todo.put(batch)
+        return self.take()
+
+    def finish(self, batch):
+        """Queue the last (partial) batch and wait until every batch is processed."""
+        if batch is not None and batch.n:
+            self._todo.put(batch)
+        self.stop()
+        self._check()
+
+    def stop(self):
+        if self._thread.is_alive():
+            self._todo.put(None)
+            self._thread.join()
 
 
 def _transpose(block, tile=1024):

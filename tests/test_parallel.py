@@ -270,3 +270,29 @@ def test_numpy_path_equals_compiled_kernels(replicas, serial, monkeypatch):
     for key in compiled_weighted.blocks:
         np.testing.assert_array_equal(compiled_weighted.blocks[key], plain_weighted.blocks[key], err_msg=key)
     pd.testing.assert_frame_equal(compiled_weighted.conformers, plain_weighted.conformers)
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+def test_second_thread_equals_serial(replicas, serial, monkeypatch, compiled):
+    # a second thread computes batches of copied frames while the first reads: same results
+    if compiled:
+        pytest.importorskip("numba")
+    else:
+        monkeypatch.setenv("DIHEDRA_NO_NUMBA", "1")
+    import dihedra.trackpass as tp
+    monkeypatch.setattr(tp, "BATCH_BYTES", 7 * 60 * 12)   # batches of 7 frames (60 atoms)
+    top, trajs, _ = replicas
+    res = track(top, trajs, threads=2, **KW)
+    assert res.summary["parameters"]["threads"] == 2
+    assert_same(serial, res)
+
+
+def test_error_in_the_second_thread_reaches_the_caller(replicas, monkeypatch):
+    import dihedra.trackpass as tp
+
+    def broken(self, batch):
+        raise RuntimeError("broken batch")
+    monkeypatch.setattr(tp.TorsionPass, "_process", broken)
+    top, trajs, _ = replicas
+    with pytest.raises(RuntimeError, match="broken batch"):
+        track(top, trajs[:1], threads=2, **KW)

@@ -26,7 +26,7 @@ def run(args):
                    start=args.start, stop=args.stop, step=args.step, workers=args.workers,
                    backend=args.backend, scheduler=args.scheduler, keep_angles=args.keep_angles, weights=args.weights,
                    out=args.out, overwrite=args.overwrite, dt_ps=args.dt_ps,
-                   temperature_k=args.temperature, log=say)
+                   temperature_k=args.temperature, threads=args.threads, log=say)
     report_track(result)
 
 
