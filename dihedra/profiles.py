@@ -78,6 +78,7 @@ Appl. Stat. 31 (1982) 93; rule of thumb: Silverman, Density Estimation (1986), e
 
 from __future__ import annotations
 
+import functools
 import os
 import uuid
 from dataclasses import dataclass, field
@@ -102,10 +103,18 @@ MIN_DEPTH_KT = 0.5
 MIN_DEPTH_SIGMA = 3.0
 #: A bin must be sampled in this fraction of bootstrap resamples to hold a minimum.
 MIN_RESAMPLED_FRACTION = 0.9
+#: Smoothed block histograms below this fraction of their largest value count as zero (round-off
+#: of the Fourier transform, about 1e-16 of the largest value, would otherwise decide whether a
+#: resample without data near a point enters its error, and with what free energy).
+KERNEL_FLOOR = 1e-9
 #: Energy units a profile can be written in.
 PROFILE_ENERGY_UNITS = ("kJ/mol", "kcal/mol", "kT")
-#: Torsions per batch in the bootstrap (bounds memory: n_bootstrap x batch x bins doubles).
-_BATCH = 64
+#: Torsions per stack (bounds memory: n_bootstrap x stack x 360 single-precision values, 74 MB).
+_BATCH = 256
+#: Resampled kernel values (single precision) handled at a time per thread (stays in the cache).
+_KERNEL_CHUNK = 1 << 19
+#: Threads that profile stacks of torsions side by side.
+_THREADS = min(4, os.cpu_count() or 1)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -266,22 +275,53 @@ class Profile1D:
         return 360.0 / len(self.angle_deg)
 
 
-def _profiles_from_blocks(block_counts, mult, kt, width):
-    """Histogram profiles for a stack: block_counts (n_blocks, m, n_bins) -> list of Profile1D."""
+def _row_min(free):
+    """Lowest finite value of each row of ``free`` (..., n); 0 for a row without one."""
+    filled = np.where(np.isfinite(free), free, np.inf)
+    low = filled.min(axis=-1)
+    return np.where(np.isfinite(low), low, 0.0)
+
+
+def _histogram_stack(block_counts, mult, kt, width):
+    """Histogram profiles of a stack of torsions or types, as one Profile1D with a leading axis.
+
+    ``block_counts`` (n_blocks, m, n_bins); the fields of the result are (m, n_bins) arrays and
+    ``boot_free_energy`` is (n_bootstrap, m, n_bins).
+    """
+    block_counts = np.asarray(block_counts, dtype=float)
     counts = block_counts.sum(axis=0)
     density, free = free_energy_from_counts(counts, width, kt)
     boot = np.tensordot(mult, block_counts, axes=(1, 0))  # (n_boot, m, n_bins)
     _, boot_free = free_energy_from_counts(boot, width, kt)
     err, frac = bootstrap_spread(boot_free)
-    shift = np.array([np.nanmin(f) if np.isfinite(f).any() else 0.0 for f in free])
-    centres = bin_centres(counts.shape[-1])
-    out = []
-    for k in range(counts.shape[0]):
-        out.append(Profile1D(angle_deg=centres, samples=counts[k], density_per_deg=density[k],
-                             free_energy_kj_mol=free[k] - shift[k], free_energy_err_kj_mol=err[k],
-                             sampled=counts[k] > 0, boot_free_energy=boot_free[:, k],
-                             boot_valid_fraction=frac[k]))
-    return out
+    return Profile1D(angle_deg=bin_centres(counts.shape[-1]), samples=counts, density_per_deg=density,
+                     free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
+                     sampled=counts > 0, boot_free_energy=boot_free, boot_valid_fraction=frac)
+
+
+def _unstack(stack):
+    """The profiles of a stack (see :func:`_histogram_stack`) as a list of Profile1D."""
+    bws = stack.bandwidth_deg
+    return [Profile1D(angle_deg=stack.angle_deg, samples=stack.samples[k], density_per_deg=stack.density_per_deg[k],
+                      free_energy_kj_mol=stack.free_energy_kj_mol[k],
+                      free_energy_err_kj_mol=stack.free_energy_err_kj_mol[k], sampled=stack.sampled[k],
+                      boot_free_energy=stack.boot_free_energy[:, k], boot_valid_fraction=stack.boot_valid_fraction[k],
+                      bandwidth_deg=None if bws is None else float(bws[k]))
+            for k in range(len(stack.samples))]
+
+
+def _profiles_from_blocks(block_counts, mult, kt, width):
+    """Histogram profiles for a stack: block_counts (n_blocks, m, n_bins) -> list of Profile1D."""
+    return _unstack(_histogram_stack(block_counts, mult, kt, width))
+
+
+def _von_mises_transform(bandwidths_deg, n):
+    """Real FFT (m, n // 2 + 1) of normalised von Mises kernels on n points, one per bandwidth."""
+    kappa = 1.0 / np.radians(np.asarray(bandwidths_deg, dtype=float)) ** 2
+    d = 2.0 * np.pi * np.arange(n) / n
+    kernel = np.exp(kappa[:, None] * (np.cos(d) - 1.0))
+    kernel /= kernel.sum(axis=-1, keepdims=True)
+    return np.fft.rfft(kernel, axis=-1)
 
 
 def von_mises_smooth(counts, bandwidth_deg):
@@ -291,38 +331,150 @@ def von_mises_smooth(counts, bandwidth_deg):
     """
     counts = np.asarray(counts, dtype=float)
     n = counts.shape[-1]
-    kappa = 1.0 / np.radians(float(bandwidth_deg)) ** 2
-    d = 2.0 * np.pi * np.arange(n) / n
-    kernel = np.exp(kappa * (np.cos(d) - 1.0))
-    kernel /= kernel.sum()
-    out = np.fft.irfft(np.fft.rfft(counts, axis=-1) * np.fft.rfft(kernel), n, axis=-1)
+    out = np.fft.irfft(np.fft.rfft(counts, axis=-1) * _von_mises_transform([bandwidth_deg], n)[0], n, axis=-1)
     return np.clip(out, 0.0, None)
+
+
+def _circular_reach(occupied, reach):
+    """Points within ``reach[k]`` bins (periodic) of an occupied bin of row k: (m, n) bool."""
+    occupied = np.asarray(occupied, dtype=bool)
+    m, n = occupied.shape
+    reach = np.minimum(np.broadcast_to(np.asarray(reach, dtype=np.int64), (m,)), n)
+    ext = np.concatenate([np.zeros((m, 1), dtype=np.int32),
+                          np.cumsum(np.tile(occupied, 3), axis=1, dtype=np.int32)], axis=1)
+    i = np.arange(n)[None, :] + n
+    hi = np.take_along_axis(ext, i + reach[:, None] + 1, axis=1)
+    lo = np.take_along_axis(ext, i - reach[:, None], axis=1)
+    return hi > lo
+
+
+def _kernel_setup(fine_block_counts, bandwidths, fine_width):
+    """Common part of the kernel estimates: counts, smoothed counts, sampled mask, smoothed blocks."""
+    fine_block_counts = np.asarray(fine_block_counts, dtype=float)
+    n = fine_block_counts.shape[-1]
+    bws = np.asarray(bandwidths, dtype=float)
+    transform = _von_mises_transform(bws, n)
+    counts = fine_block_counts.sum(axis=0)
+    smooth = np.clip(np.fft.irfft(np.fft.rfft(counts, axis=-1) * transform, n, axis=-1), 0.0, None)
+    reach = np.maximum(1, np.ceil(bws / fine_width)).astype(np.int64)
+    sampled = _circular_reach(counts > 0, reach)
+    smooth = np.where(sampled, smooth, 0.0)
+    smooth_blocks = np.fft.irfft(np.fft.rfft(fine_block_counts, axis=-1) * transform, n, axis=-1)
+    # values below KERNEL_FLOOR of a block's largest one are round-off of the transform: zero
+    floor = KERNEL_FLOOR * smooth_blocks.max(axis=-1, keepdims=True)
+    smooth_blocks = np.where(smooth_blocks > floor, smooth_blocks, 0.0)
+    return bws, smooth, sampled, smooth_blocks
+
+
+def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width):
+    """Kernel profiles of a stack of fine block histograms (n_blocks, m, n_fine), as one Profile1D.
+
+    Smoothing is linear, so the resamples are the resampled sums of the smoothed blocks.
+    """
+    bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
+    density, free = free_energy_from_counts(smooth, fine_width, kt)
+    bsmooth = np.clip(np.tensordot(mult, smooth_blocks, axes=(1, 0)), 0.0, None) * sampled
+    _, bfree = free_energy_from_counts(bsmooth, fine_width, kt)
+    err, frac = bootstrap_spread(bfree)
+    return Profile1D(angle_deg=bin_centres(smooth.shape[-1]), samples=smooth, density_per_deg=density,
+                     free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
+                     sampled=sampled & (smooth > 0), boot_free_energy=bfree, boot_valid_fraction=frac,
+                     bandwidth_deg=bws)
+
+
+def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width):
+    """Kernel profiles of a stack without keeping the resamples (per-torsion rows).
+
+    Returns the bandwidths (m,) and (m, n) arrays: smoothed counts, density, free energy (shifted),
+    its error (NaN where not sampled) and the sampled mask.
+
+    The error is the bootstrap standard deviation of :func:`_kernel_stack`, computed without
+    keeping the resampled free energies. With s_j the smoothed blocks (masked to the sampled
+    points), s = sum_j s_j and S = sum_x s(x), resample b has density sum_j m_bj s_j(x) / T_b,
+    T_b = sum_x sum_j m_bj s_j(x); relative to the estimate its ln is ln g_b(x) - ln t_b with
+    g_b(x) = sum_j m_bj s_j(x) / s(x) (one matrix product in single precision) and
+    t_b = T_b / S, so sums over resamples of ln g, (ln g)^2 and ln g ln t give the variance
+    (relative accuracy about 1e-5). Points where some resample has no positive density are
+    recomputed exactly in double precision, leaving those resamples out as :func:`bootstrap_spread`
+    does.
+    """
+    bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
+    density, free = free_energy_from_counts(smooth, fine_width, kt)
+    ok = sampled & (smooth > 0)
+    masked = smooth_blocks * sampled
+    n_boot = len(mult)
+    total = mult @ masked.sum(axis=-1)  # T_b, (n_boot, m)
+    m, n = smooth.shape
+    s1, s2, s3 = np.empty((m, n)), np.empty((m, n)), np.empty((m, n))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_t = np.log(total / smooth.sum(axis=-1))
+        scaled = (masked * np.where(ok, 1.0 / smooth, 0.0)).astype(np.float32)
+        mult32, log_t32 = mult.astype(np.float32), log_t.astype(np.float32)
+        step = max(1, _KERNEL_CHUNK // (n_boot * n))  # torsions whose resamples stay in the cache
+        for lo in range(0, m, step):
+            hi = min(m, lo + step)
+            g = mult32 @ scaled[:, lo:hi].reshape(len(mult32[0]), -1)  # ln g_b(x), (n_boot, k n)
+            np.log(g, out=g)
+            s1[lo:hi] = g.sum(axis=0).reshape(hi - lo, n)
+            s2[lo:hi] = np.einsum("bk,bk->k", g, g).reshape(hi - lo, n)
+            s3[lo:hi] = np.einsum("bm,bmx->mx", log_t32[:, lo:hi], g.reshape(n_boot, hi - lo, n))
+        sum_t, sum_t2 = log_t.sum(axis=0)[:, None], (log_t ** 2).sum(axis=0)[:, None]
+        dev = s1 - sum_t
+        var = (s2 - 2.0 * s3 + sum_t2 - dev * dev / n_boot) / (n_boot - 1)
+        err = kt * np.sqrt(np.clip(var, 0.0, None))
+    bad = ok & ~(np.isfinite(s1) & np.isfinite(s3))
+    if bad.any():  # some resample is empty there: the resamples themselves, as in _kernel_stack
+        k, x = np.nonzero(bad)
+        boot = np.clip(mult @ masked[:, k, x], 0.0, None)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            bfree = -kt * (np.log(boot) - np.log(total[:, k] * fine_width))
+        bfree[~(boot > 0)] = np.nan
+        err[k, x] = bootstrap_spread(bfree)[0]
+    err = np.where(ok, err, np.nan)
+    return bws, smooth, density, free - _row_min(free)[:, None], err, ok
 
 
 def _kernel_profiles(fine_block_counts, mult, kt, bandwidths, fine_width):
     """Kernel profiles for a stack of fine block histograms (n_blocks, m, n_fine)."""
-    from scipy.ndimage import maximum_filter1d
+    return _unstack(_kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width))
 
-    counts = fine_block_counts.sum(axis=0)
-    boot = np.tensordot(mult, fine_block_counts, axes=(1, 0))
+
+def default_bandwidths_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
+    """The default kernel bandwidths (standard deviations, degrees) of a stack of torsions or types.
+
+    sigma = 0.9 s n_eff^(-1/5), s = population-weighted within-arc standard deviation of the
+    angle (each arc of ``scheme`` about its own circular mean), at least ``fine_width_deg``.
+
+    Parameters
+    ----------
+    fine_counts : ndarray (m, n_fine)
+    scheme : StateScheme
+    n_effective : ndarray (m,)
+
+    Returns
+    -------
+    ndarray (m,)
+    """
+    counts = np.atleast_2d(np.asarray(fine_counts, dtype=float))
     centres = bin_centres(counts.shape[-1])
-    out = []
-    for k in range(counts.shape[0]):
-        bw = float(bandwidths[k])
-        smooth = von_mises_smooth(counts[k], bw)
-        reach = max(1, int(np.ceil(bw / fine_width)))
-        sampled = maximum_filter1d((counts[k] > 0).astype(np.int8), size=2 * reach + 1, mode="wrap") > 0
-        smooth = np.where(sampled, smooth, 0.0)
-        density, free = free_energy_from_counts(smooth, fine_width, kt)
-        bsmooth = von_mises_smooth(boot[:, k], bw) * sampled
-        _, bfree = free_energy_from_counts(bsmooth, fine_width, kt)
-        err, frac = bootstrap_spread(bfree)
-        shift = np.nanmin(free) if np.isfinite(free).any() else 0.0
-        out.append(Profile1D(angle_deg=centres, samples=smooth, density_per_deg=density,
-                             free_energy_kj_mol=free - shift, free_energy_err_kj_mol=err,
-                             sampled=sampled & (smooth > 0), boot_free_energy=bfree,
-                             boot_valid_fraction=frac, bandwidth_deg=bw))
-    return out
+    var = np.zeros(len(counts))
+    wsum = np.zeros(len(counts))
+    for _, start, end in scheme.merged_arcs():
+        rel = np.mod(centres - start, 360.0)
+        sel = (rel > 0) & (rel <= (end - start))
+        w = counts[:, sel]
+        ws = w.sum(axis=1)
+        ang = np.radians(centres[sel])
+        mean = np.degrees(np.arctan2(w @ np.sin(ang), w @ np.cos(ang)))
+        dev = _circular_deviation_deg(centres[sel][None, :], mean[:, None])
+        use = ws > 0
+        var += np.where(use, (w * dev ** 2).sum(axis=1), 0.0)
+        wsum += np.where(use, ws, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        s = np.where(wsum > 0, np.sqrt(var / wsum), 0.0)
+    n_eff = np.maximum(np.broadcast_to(np.asarray(n_effective, dtype=float), s.shape), 2.0)
+    out = np.maximum(0.9 * s * n_eff ** (-0.2), fine_width_deg)
+    return np.where(counts.sum(axis=1) > 0, out, float(fine_width_deg))
 
 
 def default_bandwidth_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
@@ -331,26 +483,8 @@ def default_bandwidth_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
     sigma = 0.9 s n_eff^(-1/5), s = population-weighted within-arc standard deviation of the
     angle (each arc of ``scheme`` about its own circular mean), at least ``fine_width_deg``.
     """
-    counts = np.asarray(fine_counts, dtype=float)
-    total = counts.sum()
-    if total <= 0:
-        return float(fine_width_deg)
-    centres = bin_centres(len(counts))
-    var, wsum = 0.0, 0.0
-    for _, start, end in scheme.merged_arcs():
-        rel = np.mod(centres - start, 360.0)
-        sel = (rel > 0) & (rel <= (end - start))
-        w = counts[sel]
-        if w.sum() <= 0:
-            continue
-        ang = np.radians(centres[sel])
-        mean = np.arctan2((w * np.sin(ang)).sum(), (w * np.cos(ang)).sum())
-        dev = _circular_deviation_deg(centres[sel], np.degrees(mean))
-        var += float((w * dev ** 2).sum())
-        wsum += float(w.sum())
-    s = np.sqrt(var / wsum) if wsum > 0 else 0.0
-    n_eff = max(float(n_effective), 2.0)
-    return float(max(0.9 * s * n_eff ** (-0.2), fine_width_deg))
+    return float(default_bandwidths_deg(np.asarray(fine_counts, dtype=float)[None, :], scheme,
+                                        [n_effective], fine_width_deg)[0])
 
 
 def effective_samples(populations, torsions):
@@ -359,11 +493,15 @@ def effective_samples(populations, torsions):
     States with a population below 0.02 or above 0.98 are left out (their blocking estimate is
     poor); a torsion without such states uses its sample count.
     """
-    out = {}
-    for label, sub in populations.groupby("torsion", sort=False):
-        ok = sub[(sub["population"] > 0.02) & (sub["population"] < 0.98) & np.isfinite(sub["n_effective"])]
-        out[label] = float(ok["n_effective"].median()) if len(ok) else float(sub["n_samples"].iloc[0])
-    return np.array([out.get(t, 1.0) for t in torsions])
+    pop = populations["population"].to_numpy(dtype=float)
+    neff = populations["n_effective"].to_numpy(dtype=float)
+    ok = (pop > 0.02) & (pop < 0.98) & np.isfinite(neff)
+    median = populations.loc[ok].groupby("torsion", sort=False)["n_effective"].median()
+    first = populations.groupby("torsion", sort=False)["n_samples"].first()
+    out = median.reindex(torsions).to_numpy(dtype=float)
+    fallback = first.reindex(torsions).to_numpy(dtype=float)
+    out = np.where(np.isnan(out), fallback, out)
+    return np.where(np.isnan(out), 1.0, out)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -378,6 +516,104 @@ def _arc(n, a, b):
     return (a + 1 + np.arange(length - 1)) % n
 
 
+def _arc_length(n, a, b):
+    """Number of indices strictly between a and b going up the circle (n - 1 if a == b)."""
+    return np.where(a == b, n - 1, (np.asarray(b) - a) % n - 1)
+
+
+class _RangeMax:
+    """Position and value of the first maximum of ``values[row, lo..hi]`` on a circle, in O(1).
+
+    A sparse table over each row written twice (so that arcs that wrap are contiguous): level k
+    holds the first maximum of every run of 2^k entries; a query combines two runs that cover
+    the range, preferring the left one on ties (the first occurrence in arc order).
+    """
+
+    def __init__(self, values):
+        values = np.asarray(values, dtype=float)
+        m, n = values.shape
+        twice = np.concatenate([values, values], axis=1)
+        length = 2 * n
+        n_levels = max(1, int(np.floor(np.log2(length))) + 1)
+        self.value = np.full((n_levels, m, length), -np.inf)
+        self.where = np.zeros((n_levels, m, length), dtype=np.int64)
+        self.value[0] = twice
+        self.where[0] = np.arange(length)
+        for k in range(1, n_levels):
+            half, size = 2 ** (k - 1), 2 ** k
+            last = length - size + 1
+            left_v, right_v = self.value[k - 1, :, :last], self.value[k - 1, :, half:half + last]
+            left = left_v >= right_v
+            self.value[k, :, :last] = np.where(left, left_v, right_v)
+            self.where[k, :, :last] = np.where(left, self.where[k - 1, :, :last], self.where[k - 1, :, half:half + last])
+        self.n = n
+
+    def arc(self, rows, a, length):
+        """First maximum over the ``length`` (>= 1) indices after ``a`` going up the circle."""
+        lo = np.asarray(a) + 1
+        hi = lo + np.asarray(length) - 1
+        k = np.floor(np.log2(np.maximum(length, 1))).astype(np.int64)
+        right_start = hi - 2 ** k + 1
+        lv, rv = self.value[k, rows, lo], self.value[k, rows, right_start]
+        left = lv >= rv
+        pos = np.where(left, self.where[k, rows, lo], self.where[k, rows, right_start]) % self.n
+        return pos, np.where(left, lv, rv)
+
+
+def _minima_stack(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_depth_sigma=MIN_DEPTH_SIGMA):
+    """:func:`find_minima` for a stack of profiles (m, n); returns a list of index arrays."""
+    free = np.atleast_2d(np.asarray(free, dtype=float))
+    m, n = free.shape
+    g = np.where(np.isfinite(free), free, np.inf)
+    ok = np.isfinite(g) if usable is None else np.isfinite(g) & np.atleast_2d(np.asarray(usable, dtype=bool))
+    e = np.where(np.isfinite(err), np.atleast_2d(err), 0.0)
+    cand = ok & (g < np.roll(g, 1, axis=1)) & (g <= np.roll(g, -1, axis=1))
+    lonely = ~cand.any(axis=1) & ok.any(axis=1)
+    cand[np.flatnonzero(lonely), np.argmin(np.where(ok, g, np.inf), axis=1)[lonely]] = True
+    count = cand.sum(axis=1)
+    width = max(1, int(count.max()) if m else 1)
+    # candidates of each row, ascending, padded at the end
+    order = np.argsort(~cand, axis=1, kind="stable")[:, :width]
+    cands = np.where(np.arange(width)[None, :] < count[:, None], order, -1)
+    table = _RangeMax(g)
+    need_floor = min_depth_kt * kt
+    active = np.flatnonzero(count > 1)
+    while len(active):
+        c, cnt = cands[active], count[active]
+        slot = np.arange(width)[None, :]
+        valid = slot < cnt[:, None]
+        nxt = np.where(slot + 1 < cnt[:, None], slot + 1, 0)
+        prv = np.where(slot > 0, slot - 1, cnt[:, None] - 1)
+        a = np.where(valid, c, 0)
+        b = np.take_along_axis(a, nxt, axis=1)
+        rows = np.broadcast_to(active[:, None], a.shape)
+        length = _arc_length(n, a, b)
+        gap_j, _ = table.arc(rows, a, np.maximum(length, 1))
+        gap_j = np.where(length > 0, gap_j, -1)          # an empty gap: the candidate itself
+        left_j, right_j = np.take_along_axis(gap_j, prv, axis=1), gap_j
+        gi = g[rows, a]
+        left_j = np.where(left_j < 0, a, left_j)
+        right_j = np.where(right_j < 0, a, right_j)
+        left_top, right_top = g[rows, left_j], g[rows, right_j]
+        take_left = (left_top < right_top) | ((left_top == right_top) & (left_j <= right_j))
+        top = np.where(take_left, left_top, right_top)
+        j = np.where(take_left, left_j, right_j)
+        need = np.maximum(need_floor, min_depth_sigma * np.hypot(e[rows, a], e[rows, j]))
+        with np.errstate(invalid="ignore"):
+            deficit = np.where(valid, top - gi - need, np.inf)
+        worst = np.argmin(deficit, axis=1)
+        drop = deficit[np.arange(len(active)), worst] < 0
+        rows_drop, slot_drop = active[drop], worst[drop]
+        keep = np.ones_like(cands[rows_drop], dtype=bool)
+        keep[np.arange(len(rows_drop)), slot_drop] = False
+        moved = np.argsort(~keep, axis=1, kind="stable")
+        cands[rows_drop] = np.take_along_axis(cands[rows_drop], moved, axis=1)
+        count[rows_drop] -= 1
+        cands[rows_drop, count[rows_drop]] = -1
+        active = rows_drop[count[rows_drop] > 1]
+    return [cands[r, :count[r]].copy() for r in range(m)]
+
+
 def find_minima(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_depth_sigma=MIN_DEPTH_SIGMA):
     """Indices of the minima of a periodic profile (see the module notes for the depth rule).
 
@@ -385,34 +621,17 @@ def find_minima(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_depth
     all sampled bins) can be minima; :func:`profile_features` passes the bins sampled in at least
     :data:`MIN_RESAMPLED_FRACTION` of the bootstrap resamples, so that a stray visit to an
     otherwise empty region is not taken for a minimum. Returns indices in increasing angle.
+
+    A candidate is a bin lower than its left neighbour and not higher than its right one; while
+    any candidate is shallower than the rule allows (its depth below the lower of the highest
+    points between it and its two neighbouring candidates), the shallowest is dropped.
     """
-    g = np.where(np.isfinite(free), free, np.inf)
-    ok = np.isfinite(g) if usable is None else np.isfinite(g) & np.asarray(usable, dtype=bool)
-    e = np.where(np.isfinite(err), err, 0.0)
-    n = len(g)
-    if not np.isfinite(g).any():
+    free = np.asarray(free, dtype=float)
+    if not np.isfinite(free).any():
         return []
-    if not ok.any():
-        return []
-    cand = [i for i in range(n) if ok[i] and g[i] < g[i - 1] and g[i] <= g[(i + 1) % n]]
-    if not cand:
-        cand = [int(np.argmin(np.where(ok, g, np.inf)))]
-    while len(cand) > 1:
-        deficits = []
-        for k, i in enumerate(cand):
-            sides = []
-            for a, b in ((cand[k - 1], i), (i, cand[(k + 1) % len(cand)])):
-                arc = _arc(n, a, b)
-                j = arc[np.argmax(g[arc])] if len(arc) else i
-                sides.append((g[j], j))
-            top, j = min(sides)
-            need = max(min_depth_kt * kt, min_depth_sigma * np.hypot(e[i], e[j]))
-            deficits.append(top - g[i] - need)
-        worst = int(np.argmin(deficits))
-        if deficits[worst] >= 0:
-            break
-        cand.pop(worst)
-    return sorted(cand)
+    return [int(i) for i in _minima_stack(free[None, :], np.asarray(err, dtype=float)[None, :], kt,
+                                          None if usable is None else np.asarray(usable)[None, :],
+                                          min_depth_kt, min_depth_sigma)[0]]
 
 
 def _parabola(left, mid, right):
@@ -432,24 +651,29 @@ _FIT_X = np.arange(-2, 3, dtype=float)
 _FIT = np.linalg.pinv(np.vander(_FIT_X, 3, increasing=True))
 
 
-def _refine(values, idx, kind):
-    """Refined position (bins) and value of the extremum at ``idx`` of each row of ``values``.
+def _refine_at(y5, idx, kind):
+    """Refined position (bins) and value of extrema from the five values around them (..., 5).
 
     A least-squares parabola through the five bins around ``idx`` (less sensitive to the noise of
     single bins than the bin itself); a three-point parabola where the five are not all sampled or
     the fit bends the wrong way; the bin itself where neither works.
     """
+    c = y5 @ _FIT.T  # (..., 3): c0 + c1 x + c2 x^2
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        x5 = -c[..., 1] / (2.0 * c[..., 2])
+        v5 = c[..., 0] + c[..., 1] * x5 + c[..., 2] * x5 ** 2
+    bend = c[..., 2] > 0 if kind == "min" else c[..., 2] < 0
+    good5 = np.isfinite(y5).all(axis=-1) & bend & (np.abs(x5) <= 1.0)
+    delta3, v3 = _parabola(y5[..., 1], y5[..., 2], y5[..., 3])
+    return np.where(good5, idx + x5, idx + delta3), np.where(good5, v5, v3)
+
+
+def _refine(values, idx, kind):
+    """Refined position (bins) and value of the extremum at ``idx`` of each row of ``values``."""
     n = values.shape[-1]
     rows = np.arange(values.shape[0])
     y5 = values[rows[:, None], (idx[:, None] + _FIT_X.astype(int)[None, :]) % n]
-    c = y5 @ _FIT.T  # (rows, 3): c0 + c1 x + c2 x^2
-    with np.errstate(invalid="ignore", divide="ignore"):
-        x5 = -c[:, 1] / (2.0 * c[:, 2])
-    bend = c[:, 2] > 0 if kind == "min" else c[:, 2] < 0
-    good5 = np.isfinite(y5).all(axis=1) & bend & (np.abs(x5) <= 1.0)
-    v5 = c[:, 0] + c[:, 1] * x5 + c[:, 2] * x5 ** 2
-    delta3, v3 = _parabola(y5[:, 1], y5[:, 2], y5[:, 3])
-    return np.where(good5, idx + x5, idx + delta3), np.where(good5, v5, v3)
+    return _refine_at(y5, idx, kind)
 
 
 def _extremum(values, window, kind):
@@ -459,18 +683,172 @@ def _extremum(values, window, kind):
     not ok (the barrier is not known there).
     """
     values = np.atleast_2d(values)
-    sub = values[:, window]
-    if kind == "min":
-        filled = np.where(np.isfinite(sub), sub, np.inf)
-        k = np.argmin(filled, axis=1)
-        ok = np.isfinite(filled[np.arange(len(k)), k])
-    else:
-        ok = np.isfinite(sub).all(axis=1)
-        filled = np.where(np.isfinite(sub), sub, -np.inf)
-        k = np.argmax(filled, axis=1)
-    idx = np.asarray(window)[k]
-    pos, value = _refine(values, idx, kind)
-    return pos, value, ok
+    window = np.asarray(window)
+    pos, value, ok = _window_extremum(values[None], np.zeros(1, dtype=np.int64), np.array([window[0] - 1]),
+                                      np.array([len(window)]), kind)
+    return pos[:, 0], value[:, 0], ok[:, 0]
+
+
+#: Values gathered per step of :func:`_window_extremum` (bounds its memory: 8 bytes each).
+_GATHER_VALUES = 8_000_000
+
+
+def _window_extremum(values, rows, start, length, kind):
+    """Refined extremum of arcs of a stack of profiles, for every leading index of ``values``.
+
+    Parameters
+    ----------
+    values : ndarray (r, m, n)
+        Profiles (r = 1 for the estimate, n_bootstrap for the resamples).
+    rows, start, length : ndarray (f,)
+        Profile of each arc, the bin before it and its number of bins (>= 1): the arc is
+        ``start + 1, ..., start + length`` going up the circle.
+    kind : {"min", "max"}
+
+    Returns
+    -------
+    position (bins), value, ok : ndarrays (r, f)
+        The first extremum in arc order, refined; for "max", ok is false where the arc holds an
+        unsampled (non-finite) bin.
+
+    Notes
+    -----
+    Arcs are gathered in groups of similar length, each group as an (r, arcs, length) array whose
+    last axis is in arc order; a shorter arc repeats its last bin, which changes neither its
+    extreme value nor the first position of it.
+    """
+    r, m, n = values.shape
+    flat = np.ascontiguousarray(values).reshape(r, m * n)
+    f = len(rows)
+    out = [np.empty((r, f)), np.empty((r, f)), np.empty((r, f), dtype=bool)]
+    by_length = np.argsort(length, kind="stable")
+    sorted_len = length[by_length]
+    lo = 0
+    while lo < f:
+        top = int(sorted_len[lo])
+        # arcs up to 1.25 x (and 8 bins) longer share one padded array
+        hi = int(np.searchsorted(sorted_len, max(top + 8, int(1.25 * top)), side="right"))
+        span = int(sorted_len[hi - 1])
+        hi = min(hi, lo + max(1, _GATHER_VALUES // max(1, r * span)))
+        sel = by_length[lo:hi]
+        rw, st, ln = rows[sel], start[sel], length[sel]
+        t = np.minimum(np.arange(span)[None, :], ln[:, None] - 1)
+        cols = (st[:, None] + 1 + t) % n
+        sub = np.take(flat, rw[:, None] * n + cols, axis=1)  # (r, arcs, span)
+        missing = np.isnan(sub)
+        if kind == "min":
+            np.copyto(sub, np.inf, where=missing)
+            k = np.argmin(sub, axis=-1)
+            ok = np.isfinite(np.take_along_axis(sub, k[..., None], axis=-1)[..., 0])
+        else:
+            ok = ~missing.any(axis=-1)
+            np.copyto(sub, -np.inf, where=missing)
+            k = np.argmax(sub, axis=-1)
+        idx = cols[np.arange(len(sel))[None, :], k]
+        y5 = np.take(flat, (np.arange(r) * (m * n))[:, None, None] + (rw * n)[None, :, None]
+                     + (idx[..., None] + _FIT_X.astype(int)) % n)
+        pos, value = _refine_at(y5, idx, kind)
+        out[0][:, sel], out[1][:, sel], out[2][:, sel] = pos, value, ok
+        lo = hi
+    return tuple(out)
+
+
+def _spread_columns(samples):
+    """:func:`bootstrap_spread` standard deviation of each column of (n_bootstrap, f)."""
+    return bootstrap_spread(samples)[0]
+
+
+#: Columns of the minima and barrier tables produced by :func:`_features_stack`.
+MINIMUM_FIELDS = ("angle_deg", "angle_err_deg", "free_energy_kj_mol", "free_energy_err_kj_mol")
+BARRIER_FIELDS = ("from_minimum_deg", "to_minimum_deg", "angle_deg", "angle_err_deg", "free_energy_kj_mol",
+                  "free_energy_err_kj_mol", "height_from_first_kj_mol", "height_from_first_err_kj_mol",
+                  "height_from_second_kj_mol", "height_from_second_err_kj_mol", "sampled")
+
+
+def _features_stack(stack, kt):
+    """Minima and barriers of a stack of histogram profiles (see :func:`profile_features`).
+
+    Returns
+    -------
+    minima, barriers : dict of ndarrays
+        ``row`` (profile of the stack), ``number`` (1, 2, ... within the profile) and the fields
+        of :data:`MINIMUM_FIELDS` / :data:`BARRIER_FIELDS`, profile by profile in angle order.
+    """
+    free = np.atleast_2d(stack.free_energy_kj_mol)
+    m, n = free.shape
+    w = stack.width_deg
+    centres = stack.angle_deg
+    boot = stack.boot_free_energy.reshape((-1, m, n))
+    mins = _minima_stack(free, stack.free_energy_err_kj_mol, kt,
+                         usable=np.atleast_2d(stack.boot_valid_fraction) >= MIN_RESAMPLED_FRACTION)
+    n_min = np.array([len(x) for x in mins], dtype=np.int64)
+    row = np.repeat(np.arange(m), n_min)
+    first = np.r_[0, np.cumsum(n_min)[:-1]]
+    number = np.arange(len(row)) - first[row]
+    cur = np.concatenate(mins).astype(np.int64) if len(row) else np.zeros(0, dtype=np.int64)
+    nxt = cur[first[row] + (number + 1) % n_min[row]] if len(row) else cur
+    prv_feature = first[row] + (number - 1) % n_min[row] if len(row) else cur
+    # barrier between each minimum and the next one (going up the circle)
+    g = np.where(np.isfinite(free), free, np.inf)
+    table = _RangeMax(g)
+    arc_len = _arc_length(n, cur, nxt)
+    bar_idx, _ = table.arc(row, cur, np.maximum(arc_len, 1))
+    bar_idx = np.where(arc_len > 0, bar_idx, cur)
+    # window of each minimum: between the barriers on its two sides
+    b_before = bar_idx[prv_feature] if len(row) else bar_idx
+    win_len = _arc_length(n, b_before, bar_idx)
+    win_start = np.where(win_len > 0, b_before, cur - 1)
+    win_len = np.where(win_len > 0, win_len, 1)
+
+    def angle(pos):
+        return wrap_deg(centres[0] + np.asarray(pos) * w)
+
+    pm, vm, _ = _window_extremum(free[None], row, win_start, win_len, "min")
+    pb, vb, okb = _window_extremum(boot, row, win_start, win_len, "min")
+    pm, vm = pm[0], vm[0]
+    vb = np.where(okb, vb, np.nan)
+    gmin_main = np.full(m, np.nan)
+    gmin_boot = np.full((len(boot), m), np.nan)
+    if len(row):  # lowest minimum of each profile (and of each resample, ignoring missing ones)
+        has = n_min > 0
+        gmin_main[has] = np.minimum.reduceat(vm, first[has])
+        gmin_boot[:, has] = np.fmin.reduceat(vb, first[has], axis=1)
+    ang_min = angle(pm)
+    minima = {"row": row, "number": number + 1, "angle_deg": ang_min,
+              "angle_err_deg": _spread_columns(_circular_deviation_deg(angle(pb), ang_min)),
+              "free_energy_kj_mol": vm - gmin_main[row],
+              "free_energy_err_kj_mol": _spread_columns(vb - gmin_boot[:, row])}
+    # barriers
+    sampled = arc_len > 0
+    if len(row):
+        arc_ok = _window_extremum(free[None], row, cur, np.maximum(arc_len, 1), "max")
+        sampled &= arc_ok[2][0]
+    pmx, vmx = (arc_ok[0][0], arc_ok[1][0]) if len(row) else (np.zeros(0), np.zeros(0))
+    pbx, vbx, okbx = _window_extremum(boot, row, cur, np.maximum(arc_len, 1), "max")
+    vbx = np.where(okbx, vbx, np.nan)
+    nxt_feature = first[row] + (number + 1) % n_min[row] if len(row) else cur
+    va, vbb = vb, vb[:, nxt_feature]
+    nan = np.full(len(row), np.nan)
+    ang_max = angle(pmx)
+    # an unsampled barrier is placed in the middle of its unsampled bins
+    middle = np.zeros(len(row), dtype=np.int64)
+    for f in np.flatnonzero(~sampled):
+        arc = _arc(n, cur[f], nxt[f])
+        bad = arc[~np.isfinite(free[row[f], arc])]
+        middle[f] = bad[len(bad) // 2] if len(bad) else cur[f]
+    barriers = {
+        "row": row, "number": number + 1, "from_minimum_deg": ang_min,
+        "to_minimum_deg": ang_min[nxt_feature] if len(row) else nan,
+        "angle_deg": np.where(sampled, ang_max, centres[middle]),
+        "angle_err_deg": np.where(sampled, _spread_columns(_circular_deviation_deg(angle(pbx), ang_max)), nan),
+        "free_energy_kj_mol": np.where(sampled, vmx - gmin_main[row], nan),
+        "free_energy_err_kj_mol": np.where(sampled, _spread_columns(vbx - gmin_boot[:, row]), nan),
+        "height_from_first_kj_mol": np.where(sampled, vmx - vm, nan),
+        "height_from_first_err_kj_mol": np.where(sampled, _spread_columns(vbx - va), nan),
+        "height_from_second_kj_mol": np.where(sampled, vmx - vm[nxt_feature] if len(row) else nan, nan),
+        "height_from_second_err_kj_mol": np.where(sampled, _spread_columns(vbx - vbb), nan),
+        "sampled": sampled}
+    return minima, barriers
 
 
 def profile_features(profile, kt):
@@ -485,72 +863,19 @@ def profile_features(profile, kt):
         global minimum) and error, height_from_first_kj_mol / height_from_second_kj_mol with
         errors, sampled.
     """
-    free = profile.free_energy_kj_mol
-    n = len(free)
-    w = profile.width_deg
-    centres = profile.angle_deg
-    mins = find_minima(free, profile.free_energy_err_kj_mol, kt,
-                       usable=profile.boot_valid_fraction >= MIN_RESAMPLED_FRACTION)
-    if not mins:
-        return [], []
-    boot = profile.boot_free_energy
-    # barrier windows between neighbouring minima, then basins between barriers
-    pairs = [(mins[k], mins[(k + 1) % len(mins)]) for k in range(len(mins))]
-    bar_idx = []
-    for a, b in pairs:
-        arc = _arc(n, a, b)
-        g = free[arc]
-        bar_idx.append(int(arc[np.argmax(np.where(np.isfinite(g), g, np.inf))]) if len(arc) else a)
+    stack = Profile1D(angle_deg=profile.angle_deg, samples=np.atleast_2d(profile.samples),
+                      density_per_deg=np.atleast_2d(profile.density_per_deg),
+                      free_energy_kj_mol=np.atleast_2d(profile.free_energy_kj_mol),
+                      free_energy_err_kj_mol=np.atleast_2d(profile.free_energy_err_kj_mol),
+                      sampled=np.atleast_2d(profile.sampled), boot_free_energy=profile.boot_free_energy[:, None, :],
+                      boot_valid_fraction=np.atleast_2d(profile.boot_valid_fraction))
+    minima, barriers = _features_stack(stack, kt)
+    return ([{f: _scalar(minima[f][k]) for f in MINIMUM_FIELDS} for k in range(len(minima["row"]))],
+            [{f: _scalar(barriers[f][k]) for f in BARRIER_FIELDS} for k in range(len(barriers["row"]))])
 
-    def angle(pos):
-        return wrap_deg(centres[0] + np.asarray(pos) * w)
 
-    # main estimate and resamples of each minimum
-    min_main, min_boot = [], []
-    for k, i in enumerate(mins):
-        window = _arc(n, bar_idx[k - 1], bar_idx[k])
-        if not len(window):
-            window = np.array([i])
-        pm, vm, _ = _extremum(free, window, "min")
-        pb, vb, okb = _extremum(boot, window, "min")
-        vb = np.where(okb, vb, np.nan)
-        min_main.append((float(pm[0]), float(vm[0])))
-        min_boot.append((pb, vb))
-    gmin_main = min(v for _, v in min_main)
-    gmin_boot = np.nanmin(np.array([vb for _, vb in min_boot]), axis=0)
-    minima = []
-    for (pm, vm), (pb, vb) in zip(min_main, min_boot):
-        pos_err, _ = bootstrap_spread(_circular_deviation_deg(angle(pb), angle(pm))[:, None])
-        val_err, _ = bootstrap_spread((vb - gmin_boot)[:, None])
-        minima.append({"angle_deg": float(angle(pm)), "angle_err_deg": float(pos_err[0]),
-                       "free_energy_kj_mol": vm - gmin_main, "free_energy_err_kj_mol": float(val_err[0])})
-    barriers = []
-    for k, (a, b) in enumerate(pairs):
-        arc = _arc(n, a, b)
-        sampled = bool(len(arc) and np.isfinite(free[arc]).all())
-        row = {"from_minimum_deg": minima[k]["angle_deg"],
-               "to_minimum_deg": minima[(k + 1) % len(mins)]["angle_deg"], "sampled": sampled}
-        if sampled:
-            pm, vm, _ = _extremum(free, arc, "max")
-            pb, vb, okb = _extremum(boot, arc, "max")
-            vb = np.where(okb, vb, np.nan)
-            va, vbb = min_boot[k][1], min_boot[(k + 1) % len(mins)][1]
-            errs = [bootstrap_spread(x[:, None])[0][0] for x in
-                    (_circular_deviation_deg(angle(pb), angle(pm[0])), vb - gmin_boot, vb - va, vb - vbb)]
-            row.update({"angle_deg": float(angle(pm[0])), "angle_err_deg": float(errs[0]),
-                        "free_energy_kj_mol": float(vm[0]) - gmin_main, "free_energy_err_kj_mol": float(errs[1]),
-                        "height_from_first_kj_mol": float(vm[0]) - min_main[k][1],
-                        "height_from_first_err_kj_mol": float(errs[2]),
-                        "height_from_second_kj_mol": float(vm[0]) - min_main[(k + 1) % len(mins)][1],
-                        "height_from_second_err_kj_mol": float(errs[3])})
-        else:
-            bad = arc[~np.isfinite(free[arc])]
-            row.update({"angle_deg": float(centres[bad[len(bad) // 2]]), "angle_err_deg": np.nan,
-                        "free_energy_kj_mol": np.nan, "free_energy_err_kj_mol": np.nan,
-                        "height_from_first_kj_mol": np.nan, "height_from_first_err_kj_mol": np.nan,
-                        "height_from_second_kj_mol": np.nan, "height_from_second_err_kj_mol": np.nan})
-        barriers.append(row)
-    return minima, barriers
+def _scalar(x):
+    return bool(x) if isinstance(x, (bool, np.bool_)) else float(x)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -585,6 +910,33 @@ def state_blocks(result, n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED):
     return counts, replica, mult
 
 
+def _state_free_energy_stack(state_counts, kt, mult):
+    """:func:`state_free_energies` for a stack: state_counts (n_blocks, m, n_states).
+
+    Returns
+    -------
+    dict of ndarrays: ``has`` (m,) (some samples), ``reference`` (m,) (most populated state), and
+    (m, n_states) ``population``, ``population_err``, ``free_energy_kj_mol``, ``free_energy_err_kj_mol``.
+    """
+    counts = np.asarray(state_counts, dtype=float)
+    main = counts.sum(axis=0)
+    total = main.sum(axis=1)
+    boot = np.tensordot(mult, counts, axes=(1, 0))  # (n_boot, m, n_states)
+    rows = np.arange(main.shape[0])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p = main / total[:, None]
+        pb = boot / boot.sum(axis=-1, keepdims=True)
+        ref = np.argmax(np.where(np.isnan(p), -np.inf, p), axis=1)
+        dg = -kt * np.log(p / p[rows, ref][:, None]) + 0.0
+        dgb = -kt * np.log(pb / pb[:, rows, ref][..., None])
+    dgb[~np.isfinite(dgb)] = np.nan
+    dg_err, _ = bootstrap_spread(dgb)
+    p_err, _ = bootstrap_spread(pb)
+    return {"has": total > 0, "reference": ref, "population": p, "population_err": p_err,
+            "free_energy_kj_mol": np.where(p > 0, dg, np.nan),
+            "free_energy_err_kj_mol": np.where(p > 0, dg_err, np.nan)}
+
+
 def state_free_energies(state_counts, block_replica, state_labels, kt, mult):
     """dG_B = -kT ln(p_B / p_A) per state, A the most populated, with bootstrap errors.
 
@@ -597,27 +949,14 @@ def state_free_energies(state_counts, block_replica, state_labels, kt, mult):
     -------
     list of dict: state, reference_state, population, population_err, free_energy_kj_mol, error.
     """
-    counts = np.asarray(state_counts, dtype=float)
-    total = counts.sum()
-    if total <= 0:
+    st = _state_free_energy_stack(np.asarray(state_counts, dtype=float)[:, None, :], kt, mult)
+    if not st["has"][0]:
         return []
-    p = counts.sum(axis=0) / total
-    boot = mult @ counts
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pb = boot / boot.sum(axis=1, keepdims=True)
-        ref = int(np.argmax(p))
-        dg = -kt * np.log(p / p[ref]) + 0.0
-        dgb = -kt * np.log(pb / pb[:, [ref]])
-    dgb[~np.isfinite(dgb)] = np.nan
-    dg_err, _ = bootstrap_spread(dgb)
-    p_err, _ = bootstrap_spread(pb)
-    rows = []
-    for s, label in enumerate(state_labels):
-        rows.append({"state": label, "reference_state": state_labels[ref], "population": p[s],
-                     "population_err": p_err[s],
-                     "free_energy_kj_mol": dg[s] if p[s] > 0 else np.nan,
-                     "free_energy_err_kj_mol": dg_err[s] if p[s] > 0 else np.nan})
-    return rows
+    ref = int(st["reference"][0])
+    return [{"state": label, "reference_state": state_labels[ref], "population": st["population"][0, s],
+             "population_err": st["population_err"][0, s], "free_energy_kj_mol": st["free_energy_kj_mol"][0, s],
+             "free_energy_err_kj_mol": st["free_energy_err_kj_mol"][0, s]}
+            for s, label in enumerate(state_labels)]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -634,7 +973,7 @@ class ProfileSet:
     profiles : DataFrame
         type, torsion (empty for pooled rows), estimate (``histogram`` / ``kernel``), angle_deg,
         probability_density_per_deg, free_energy_kj_mol, free_energy_err_kj_mol, sampled,
-        n_samples, bandwidth_deg (kernel rows).
+        n_samples, bandwidth_deg (kernel rows). The text columns are categorical.
     minima, barriers, state_free_energies : DataFrame
         From the histogram profiles, per type and per torsion (``torsion`` empty when pooled).
     profiles_2d : DataFrame or None
@@ -665,7 +1004,20 @@ def _fine_width(blocks):
 def _type_members(result):
     types = list(result.torsion_set.types)
     order = list(dict.fromkeys(types))
-    return order, {t: np.array([k for k, x in enumerate(types) if x == t]) for t in order}
+    codes = pd.Categorical(types, categories=order).codes
+    by_code = np.argsort(codes, kind="stable")
+    bounds = np.searchsorted(codes[by_code], np.arange(len(order) + 1))
+    return order, {t: by_code[bounds[k]:bounds[k + 1]] for k, t in enumerate(order)}
+
+
+def _pooled_counts(values, order, members, batch=1024):
+    """Sum of ``values`` (n_blocks, n_torsions, ...) over the members of each type: (n_blocks, n_types, ...)."""
+    out = np.zeros((values.shape[0], len(order)) + values.shape[2:])
+    for k, t in enumerate(order):
+        idx = members[t]
+        for lo in range(0, len(idx), batch):
+            out[:, k] += values[:, idx[lo:lo + batch]].sum(axis=1)
+    return out
 
 
 def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, bandwidth_deg=None,
@@ -683,25 +1035,160 @@ def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, ba
     order, members = _type_members(result)
     if types is not None:
         order = [t for t in order if t in set(types)]
-    hist = np.asarray(blocks["histograms"], dtype=float)
+    hist = blocks["histograms"]
     mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
-    pooled = np.stack([hist[:, members[t], :].sum(axis=1) for t in order], axis=1) if order else \
-        np.zeros((hist.shape[0], 0, hist.shape[2]))
+    pooled = _pooled_counts(hist, order, members)
     hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg)
     kprof = [None] * len(order)
     if kernel and order:
         neff = effective_samples(result.populations, result.torsion_set.labels)
-        bws = [float(bandwidth_deg) if bandwidth_deg is not None else
-               default_bandwidth_deg(pooled[:, k].sum(axis=0), result.scheme, neff[members[t]].sum(), fine)
-               for k, t in enumerate(order)]
+        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), result.scheme,
+                          [neff[members[t]].sum() for t in order], fine)
         kprof = _kernel_profiles(pooled, mult, kt, bws, fine)
     return {t: (h, k) for t, h, k in zip(order, hprof, kprof)}
+
+
+def _bandwidths(bandwidth_deg, fine_counts, scheme, n_effective, fine):
+    """The given bandwidth for every row, or the default rule."""
+    if bandwidth_deg is not None:
+        return np.full(len(fine_counts), float(bandwidth_deg))
+    return default_bandwidths_deg(fine_counts, scheme, np.asarray(n_effective, dtype=float), fine)
+
+
+class _Columns:
+    """Column arrays of a table collected piece by piece, joined once at the end."""
+
+    def __init__(self, columns):
+        self.columns = list(columns)
+        self.parts = {c: [] for c in self.columns}
+
+    def add(self, **values):
+        n = max(np.size(v) for v in values.values())
+        for c in self.columns:
+            self.parts[c].append(np.broadcast_to(np.asarray(values[c]), (n,)) if np.ndim(values[c]) == 0
+                                 else np.asarray(values[c]).ravel())
+
+    def frame(self, categories):
+        """DataFrame; the columns named in ``categories`` hold codes into those category lists."""
+        data = {}
+        for c in self.columns:
+            joined = np.concatenate(self.parts[c]) if self.parts[c] else np.zeros(0)
+            if c in categories:
+                data[c] = pd.Categorical.from_codes(joined.astype(np.int64), categories=categories[c])
+            else:
+                data[c] = joined
+        return pd.DataFrame(data, columns=self.columns)
+
+
+PROFILE_COLUMNS = ["type", "torsion", "estimate", "angle_deg", "probability_density_per_deg", "free_energy_kj_mol",
+                   "free_energy_err_kj_mol", "sampled", "n_samples", "bandwidth_deg"]
+MINIMA_COLUMNS = ["type", "torsion", "minimum", *MINIMUM_FIELDS]
+BARRIER_COLUMNS = ["type", "torsion", "barrier", *BARRIER_FIELDS]
+STATE_DG_COLUMNS = ["type", "torsion", "state", "reference_state", "population", "population_err",
+                    "free_energy_kj_mol", "free_energy_err_kj_mol"]
+
+
+def _stack_tables(type_code, torsion_code, hist, kernel, states, kt):
+    """Rows of the four tables for one stack of profiles (a pure function: stacks run in threads).
+
+    ``type_code``/``torsion_code`` (m,) index the type and torsion names (0 = pooled); ``hist`` is
+    the histogram Profile1D stack, ``kernel`` the output of :func:`_kernel_columns` and ``states``
+    that of :func:`_state_free_energy_stack`. Returns {table: {column: array}}.
+    """
+    bws, smooth, density, free, err, ok = kernel
+    m, nh = hist.samples.shape
+    nk = smooth.shape[1]
+    width = nh + nk
+
+    def join(h, k):
+        return np.concatenate([np.broadcast_to(h, (m, nh)), np.broadcast_to(k, (m, nk))], axis=1)
+
+    profiles = dict(type=np.repeat(type_code, width), torsion=np.repeat(torsion_code, width),
+                    estimate=np.tile(np.repeat([0, 1], [nh, nk]), m),
+                    angle_deg=np.tile(np.r_[hist.angle_deg, bin_centres(nk)], m),
+                    probability_density_per_deg=join(hist.density_per_deg, density),
+                    free_energy_kj_mol=join(hist.free_energy_kj_mol, free),
+                    free_energy_err_kj_mol=join(np.where(hist.sampled, hist.free_energy_err_kj_mol, np.nan), err),
+                    sampled=join(hist.sampled, ok), n_samples=join(hist.samples, smooth),
+                    bandwidth_deg=join(np.nan, np.asarray(bws, dtype=float)[:, None]))
+    minima, barriers = _features_stack(hist, kt)
+    has = np.flatnonzero(states["has"])
+    n_states = states["population"].shape[1]
+    return {"profiles": profiles,
+            "minima": dict(type=type_code[minima["row"]], torsion=torsion_code[minima["row"]],
+                           minimum=minima["number"], **{f: minima[f] for f in MINIMUM_FIELDS}),
+            "barriers": dict(type=type_code[barriers["row"]], torsion=torsion_code[barriers["row"]],
+                             barrier=barriers["number"], **{f: barriers[f] for f in BARRIER_FIELDS}),
+            "dg": dict(type=np.repeat(type_code[has], n_states), torsion=np.repeat(torsion_code[has], n_states),
+                       state=np.tile(np.arange(n_states), len(has)),
+                       reference_state=np.repeat(states["reference"][has], n_states),
+                       **{c: states[c][has] for c in ("population", "population_err", "free_energy_kj_mol",
+                                                         "free_energy_err_kj_mol")})}
+
+
+class _ProfileTables:
+    """The four tables of :func:`compute_profiles`, filled stack by stack."""
+
+    def __init__(self):
+        self.tables = {"profiles": _Columns(PROFILE_COLUMNS), "minima": _Columns(MINIMA_COLUMNS),
+                       "barriers": _Columns(BARRIER_COLUMNS), "dg": _Columns(STATE_DG_COLUMNS)}
+
+    def add(self, parts):
+        """Append the rows of one stack (from :func:`_stack_tables`)."""
+        for name, columns in parts.items():
+            self.tables[name].add(**columns)
+
+    def frames(self, types, labels, state_labels):
+        torsion = [""] + list(labels)
+        cats = {"type": list(types), "torsion": torsion}
+        t = self.tables
+        return (t["profiles"].frame({**cats, "estimate": ["histogram", "kernel"]}), t["minima"].frame(cats),
+                t["barriers"].frame(cats),
+                t["dg"].frame({**cats, "state": list(state_labels), "reference_state": list(state_labels)}))
+
+
+def _torsion_stack(span, hist, state_counts, codes, mult, smult, kt, factor, bin_width_deg, bandwidth_deg,
+                   scheme, neff, fine):
+    """Bandwidths and table rows of the torsions ``span`` = (start, stop) (runs in a thread)."""
+    start, stop = span
+    sub = np.asarray(hist[:, start:stop, :], dtype=float)
+    bws = _bandwidths(bandwidth_deg, sub.sum(axis=0), scheme, neff[start:stop], fine)
+    hstack = _histogram_stack(rebin(sub, factor), mult, kt, bin_width_deg)
+    rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
+                         _kernel_columns(sub, mult, kt, bws, fine),
+                         _state_free_energy_stack(state_counts[:, start:stop, :], kt, smult), kt)
+    return bws, rows
+
+
+def _ordered_map(func, items, threads):
+    """``map(func, items)`` over a few threads, in order, with at most 2 x threads items in flight.
+
+    NumPy releases the interpreter lock in its array loops, so stacks of torsions run in parallel.
+    """
+    from collections import deque
+    from concurrent.futures import ThreadPoolExecutor
+
+    if threads <= 1:
+        yield from map(func, items)
+        return
+    with ThreadPoolExecutor(threads) as pool:
+        pending = deque()
+        for item in items:
+            pending.append(pool.submit(func, item))
+            if len(pending) >= 2 * threads:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
 
 
 def compute_profiles(result, temperature_k=None, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, bandwidth_deg=None,
                      n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED, per_torsion=True, pairs=None,
                      pair_bin_width_deg=DEFAULT_PAIR_BIN_WIDTH_DEG, log=None):
     """Free-energy profiles, minima, barriers and state free energies of a results folder.
+
+    Torsions are handled in stacks of :data:`_BATCH`: every step (bootstrap resampling of blocks,
+    free energies, kernel smoothing, minima and barriers, state free energies) is one array
+    operation over the torsions of a stack, and the tables are built column by column.
 
     Parameters
     ----------
@@ -741,67 +1228,39 @@ def compute_profiles(result, temperature_k=None, bin_width_deg=DEFAULT_BIN_WIDTH
     factor = check_bin_width(bin_width_deg, fine)
     scheme = result.scheme
     mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
-    hist = np.asarray(blocks["histograms"], dtype=float)
+    hist = blocks["histograms"]
     order, members = _type_members(result)
     labels = result.torsion_set.labels
     neff = effective_samples(result.populations, labels)
     sc, sc_rep, smult = state_blocks(result, n_bootstrap, seed)
-
-    prof_rows, min_rows, bar_rows, dg_rows = [], [], [], []
-    by_type = {}
-    bandwidth_rows = []
-
-    def emit(typ, torsion, hprof, kprof, state_counts):
-        for estimate, pr in (("histogram", hprof), ("kernel", kprof)):
-            prof_rows.append(pd.DataFrame({
-                "type": typ, "torsion": torsion, "estimate": estimate, "angle_deg": pr.angle_deg,
-                "probability_density_per_deg": pr.density_per_deg,
-                "free_energy_kj_mol": pr.free_energy_kj_mol,
-                "free_energy_err_kj_mol": np.where(pr.sampled, pr.free_energy_err_kj_mol, np.nan),
-                "sampled": pr.sampled, "n_samples": pr.samples,
-                "bandwidth_deg": pr.bandwidth_deg if pr.bandwidth_deg is not None else np.nan}))
-        bandwidth_rows.append({"type": typ, "torsion": torsion, "bandwidth_deg": kprof.bandwidth_deg})
-        minima, barriers = profile_features(hprof, kt)
-        for k, m in enumerate(minima, start=1):
-            min_rows.append({"type": typ, "torsion": torsion, "minimum": k, **m})
-        for k, b in enumerate(barriers, start=1):
-            bar_rows.append({"type": typ, "torsion": torsion, "barrier": k, **b})
-        for row in state_free_energies(state_counts, sc_rep, scheme.labels, kt, smult):
-            dg_rows.append({"type": typ, "torsion": torsion, **row})
+    tables = _ProfileTables()
+    type_index = {t: k for k, t in enumerate(order)}
 
     # pooled per type
-    pooled = np.stack([hist[:, members[t], :].sum(axis=1) for t in order], axis=1)
-    bws = [float(bandwidth_deg) if bandwidth_deg is not None else
-           default_bandwidth_deg(pooled[:, k].sum(axis=0), scheme, neff[members[t]].sum(), fine)
-           for k, t in enumerate(order)]
-    hprofs = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg)
-    kprofs = _kernel_profiles(pooled, mult, kt, bws, fine)
-    for k, t in enumerate(order):
-        by_type[t] = (hprofs[k], kprofs[k])
-        emit(t, "", hprofs[k], kprofs[k], sc[:, members[t], :].sum(axis=1))
-    # per torsion, in batches (bounded memory)
+    pooled = _pooled_counts(hist, order, members)
+    bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), scheme, [neff[members[t]].sum() for t in order], fine)
+    hstack = _histogram_stack(rebin(pooled, factor), mult, kt, bin_width_deg)
+    kstack = _kernel_stack(pooled, mult, kt, bws, fine)
+    tables.add(_stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack,
+                             (bws, kstack.samples, kstack.density_per_deg, kstack.free_energy_kj_mol,
+                              np.where(kstack.sampled, kstack.free_energy_err_kj_mol, np.nan), kstack.sampled),
+                             _state_free_energy_stack(_pooled_counts(sc, order, members), kt, smult), kt))
+    by_type = {t: pair for t, pair in zip(order, zip(_unstack(hstack), _unstack(kstack)))}
+    bandwidths = [bws]
+    # per torsion, in stacks (bounded memory), a few stacks at a time in threads
     if per_torsion:
-        types = result.torsion_set.types
-        for start in range(0, len(labels), _BATCH):
-            idx = np.arange(start, min(len(labels), start + _BATCH))
-            sub = hist[:, idx, :]
-            bws = [float(bandwidth_deg) if bandwidth_deg is not None else
-                   default_bandwidth_deg(sub[:, k].sum(axis=0), scheme, neff[i], fine) for k, i in enumerate(idx)]
-            hp = _profiles_from_blocks(rebin(sub, factor), mult, kt, bin_width_deg)
-            kp = _kernel_profiles(sub, mult, kt, bws, fine)
-            for k, i in enumerate(idx):
-                emit(types[i], labels[i], hp[k], kp[k], sc[:, i, :])
-    notices = []
-    profiles = pd.concat(prof_rows, ignore_index=True)
-    unsampled = profiles[(profiles["estimate"] == "histogram") & (profiles["torsion"] == "") & ~profiles["sampled"]]
-    if len(unsampled):
-        n_types = unsampled["type"].nunique()
-        notices.append(f"{len(unsampled)} histogram bins of {n_types} type(s) were never visited: they are "
-                       "marked sampled = False with no free energy (the data give only a lower bound there).")
-    unsampled_barriers = [b for b in bar_rows if not b["sampled"] and b["torsion"] == ""]
-    if unsampled_barriers:
-        notices.append(f"{len(unsampled_barriers)} barrier(s) of the pooled profiles cross unsampled "
-                       "regions; their height is unknown (higher than any sampled value).")
+        codes = np.array([type_index[t] for t in result.torsion_set.types], dtype=np.int64)
+        spans = [(lo, min(len(labels), lo + _BATCH)) for lo in range(0, len(labels), _BATCH)]
+        work = functools.partial(_torsion_stack, hist=hist, state_counts=sc, codes=codes, mult=mult, smult=smult,
+                                 kt=kt, factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg,
+                                 scheme=scheme, neff=neff, fine=fine)
+        for bws, rows in _ordered_map(work, spans, _THREADS):
+            tables.add(rows)
+            bandwidths.append(bws)
+    profiles, minima, barriers, state_dg = tables.frames(order, labels, scheme.labels)
+    notices = _profile_notices(by_type, barriers)
+    bw_all = np.concatenate(bandwidths)
+    names = [("", t) for t in order] + (list(zip(labels, result.torsion_set.types)) if per_torsion else [])
     settings = {
         "temperature_k": temperature_k, "kt_kj_mol": kt, "bin_width_deg": float(bin_width_deg),
         "fine_bin_width_deg": fine, "n_bootstrap": n_bootstrap, "seed": seed,
@@ -809,24 +1268,14 @@ def compute_profiles(result, temperature_k=None, bin_width_deg=DEFAULT_BIN_WIDTH
         "n_histogram_blocks": int(hist.shape[0]),
         "bandwidth_rule": ("given" if bandwidth_deg is not None else
                            "0.9 * within-arc standard deviation * n_effective^(-1/5), at least the fine bin"),
-        "bandwidths_deg": bandwidth_rows,
+        "bandwidths_deg": [{"type": typ, "torsion": tor, "bandwidth_deg": float(bw)}
+                           for (tor, typ), bw in zip(names, bw_all)],
         "minimum_depth_rule": f"max({MIN_DEPTH_KT} kT, {MIN_DEPTH_SIGMA} combined standard errors)",
         "state_free_energy_reference": "most populated state",
         "scheme": scheme.name,
     }
-    pset = ProfileSet(temperature_k=temperature_k, profiles=profiles,
-                      minima=_frame(min_rows, ["type", "torsion", "minimum", "angle_deg", "angle_err_deg",
-                                               "free_energy_kj_mol", "free_energy_err_kj_mol"]),
-                      barriers=_frame(bar_rows, ["type", "torsion", "barrier", "from_minimum_deg",
-                                                 "to_minimum_deg", "angle_deg", "angle_err_deg",
-                                                 "free_energy_kj_mol", "free_energy_err_kj_mol",
-                                                 "height_from_first_kj_mol", "height_from_first_err_kj_mol",
-                                                 "height_from_second_kj_mol", "height_from_second_err_kj_mol",
-                                                 "sampled"]),
-                      state_free_energies=_frame(dg_rows, ["type", "torsion", "state", "reference_state",
-                                                           "population", "population_err",
-                                                           "free_energy_kj_mol", "free_energy_err_kj_mol"]),
-                      by_type=by_type, settings=settings, notices=notices)
+    pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,
+                      state_free_energies=state_dg, by_type=by_type, settings=settings, notices=notices)
     if pairs:
         frames = []
         for a, b in pairs:
@@ -838,8 +1287,21 @@ def compute_profiles(result, temperature_k=None, bin_width_deg=DEFAULT_BIN_WIDTH
     return pset
 
 
-def _frame(rows, columns):
-    return pd.DataFrame(rows, columns=columns)
+def _profile_notices(by_type, barriers):
+    """Notices on unvisited bins and unsampled barriers of the pooled profiles."""
+    notices = []
+    unvisited = {t: int((~h.sampled).sum()) for t, (h, _) in by_type.items()}
+    n_bins = sum(unvisited.values())
+    if n_bins:
+        n_types = sum(1 for v in unvisited.values() if v)
+        notices.append(f"{n_bins} histogram bins of {n_types} type(s) were never visited: they are "
+                       "marked sampled = False with no free energy (the data give only a lower bound there).")
+    pooled_barriers = barriers[barriers["torsion"] == ""]
+    n_unsampled = int((~pooled_barriers["sampled"].astype(bool)).sum())
+    if n_unsampled:
+        notices.append(f"{n_unsampled} barrier(s) of the pooled profiles cross unsampled "
+                       "regions; their height is unknown (higher than any sampled value).")
+    return notices
 
 
 # ----------------------------------------------------------------------------------------------
@@ -973,9 +1435,11 @@ def write_profiles(pset, folder, energy_unit="kJ/mol"):
               ("state_free_energies.csv", pset.state_free_energies)]
     if pset.profiles_2d is not None:
         tables.append(("profiles_2d.csv", pset.profiles_2d))
+    from .csvtables import write_csv
+
     for name, frame in tables:
-        paths.append(write_table_replacing(convert_energy_columns(frame, energy_unit, pset.temperature_k),
-                                           folder, name))
+        converted = convert_energy_columns(frame, energy_unit, pset.temperature_k)
+        paths.append(replace_into(folder, name, lambda path, table=converted: write_csv(table, path)))
     info = dict(pset.settings)
     info["energy_unit"] = canonical_energy_unit(energy_unit)
     info["files"] = [os.path.basename(p) for p in paths]

@@ -34,13 +34,17 @@ def register(sub):
                    help="temperature for the Eyring barriers (default: the one recorded by track)")
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
                    help=f"bootstrap samples for the dwell-time intervals (default {DEFAULT_BOOTSTRAP})")
+    p.add_argument("--torsion-bootstrap", action="store_true",
+                   help="bootstrap the dwell-time intervals of every single torsion too (slow for thousands of "
+                        "torsions; by default single torsions use the Kaplan-Meier variance of the mean, types "
+                        "and conformers the bootstrap)")
     p.set_defaults(func=run)
 
 
 def run(args):
     res = kinetics(args.folder, assignment=args.assignment, core_margin_deg=args.core_margin,
                    lags=args.lag, types=args.type, dt_ps=args.dt_ps, temperature_k=args.temperature,
-                   n_bootstrap=args.bootstrap, log=say)
+                   n_bootstrap=args.bootstrap, log=say, torsion_bootstrap=args.torsion_bootstrap)
     report_kinetics(res)
 
 
