@@ -120,37 +120,35 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
         n_effective; ``by_type``: group_type, conformer, torsions (types), population,
         population_err, n_groups.
     """
-    n_s = len(state_labels)
     rows = np.asarray(rows, dtype=np.int64).reshape(-1, 4)
     weights = np.asarray(weights, dtype=float)
     group_types = [" | ".join(types[p] for p in m) for m in members]
     type_names = _short_type_names(group_types, resnames, members)
-    # one column per observed (group, joint code), in group order and code order
+    # one column per observed (group, joint code), in group order and code order; groups are
+    # taken in slices of about _WORK_VALUES block x column cells, so memory stays bounded
     order = np.lexsort((rows[:, 2], rows[:, 1]))
-    rows, weights = rows[order], weights[order]
-    new = np.ones(len(rows), dtype=bool)
-    new[1:] = (rows[1:, 1] != rows[:-1, 1]) | (rows[1:, 2] != rows[:-1, 2])
-    pair = np.cumsum(new) - 1
-    pair_group, pair_code = rows[new, 1], rows[new, 2]
-    n_pairs, n_groups = len(pair_group), len(groups)
-    table = np.bincount(rows[:, 0] * n_pairs + pair, weights=weights,
-                        minlength=n_blocks * n_pairs).reshape(n_blocks, n_pairs)
-    totals = np.bincount(rows[:, 0] * n_groups + rows[:, 1], weights=weights,
-                         minlength=n_blocks * n_groups).reshape(n_blocks, n_groups)
-    mean, se, n_eff = np.empty(n_pairs), np.empty(n_pairs), np.empty(n_pairs)
-    # blocking over all groups at once; a group with an empty block where others have frames
-    # (all frames of a member undefined) drops that block, so it is done on its own
-    used = totals.sum(axis=1) > 0
-    regular = np.all((totals > 0) == used[:, None], axis=0)[pair_group]
-    regular_cols = np.flatnonzero(regular)
-    step = max(1, _WORK_VALUES // max(1, n_blocks))   # bounded temporaries
-    for lo in range(0, len(regular_cols), step):
-        cols = regular_cols[lo:lo + step]
-        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, pair_group[cols]],
-                                                           block_replica)
-    for g in np.unique(pair_group[~regular]):
-        cols = np.flatnonzero(pair_group == g)
-        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, g], block_replica)
+    group_sorted = rows[order, 1]
+    starts = np.searchsorted(group_sorted, np.arange(len(groups) + 1))
+    del group_sorted
+    pair_group, pair_code, mean, se, n_eff = [], [], [], [], []
+    g0 = 0
+    while g0 < len(groups):
+        # groups g0..g1-1: their rows are order[starts[g0]:starts[g1]]
+        g1 = int(np.searchsorted(starts, starts[g0] + max(1, _WORK_VALUES // max(1, n_blocks)),
+                                 side="right")) - 1
+        g1 = min(len(groups), max(g1, g0 + 1))
+        sel = order[starts[g0]:starts[g1]]
+        if len(sel):
+            out_slice = _conformer_blocking(rows[sel], weights[sel], g0, g1, n_blocks, block_replica)
+            for acc, values in zip((pair_group, pair_code, mean, se, n_eff), out_slice):
+                acc.append(values)
+        g0 = g1
+    del order
+    if pair_group:
+        pair_group, pair_code, mean, se, n_eff = (np.concatenate(x) for x in (pair_group, pair_code, mean, se, n_eff))
+    else:
+        pair_group, pair_code = np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64)
+        mean, se, n_eff = np.empty(0), np.empty(0), np.empty(0)
     width = np.array([len(m) for m in members], dtype=np.int64)
     names = np.array(groups, dtype=object)
     joined = np.array(["|".join(labels[p] for p in m) for m in members], dtype=object)
@@ -182,6 +180,34 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     by_group = by_group.sort_values(["group", "population"], ascending=[True, False],
                                     kind="stable").reset_index(drop=True)
     return by_group, pooled
+
+
+def _conformer_blocking(rows, weights, g0, g1, n_blocks, block_replica):
+    """Blocking errors of the (group, joint code) columns of groups g0..g1-1 from their rows
+    (sorted by group and code): returns pair_group, pair_code, mean, se, n_effective."""
+    new = np.ones(len(rows), dtype=bool)
+    new[1:] = (rows[1:, 1] != rows[:-1, 1]) | (rows[1:, 2] != rows[:-1, 2])
+    pair = np.cumsum(new) - 1
+    pair_group, pair_code = rows[new, 1], rows[new, 2]
+    n_pairs, n_groups = len(pair_group), g1 - g0
+    table = np.bincount(rows[:, 0] * n_pairs + pair, weights=weights,
+                        minlength=n_blocks * n_pairs).reshape(n_blocks, n_pairs)
+    totals = np.bincount(rows[:, 0] * n_groups + (rows[:, 1] - g0), weights=weights,
+                         minlength=n_blocks * n_groups).reshape(n_blocks, n_groups)
+    local = pair_group - g0
+    mean, se, n_eff = np.empty(n_pairs), np.empty(n_pairs), np.empty(n_pairs)
+    # blocking over all groups at once; a group with an empty block where others have frames
+    # (all frames of a member undefined) drops that block, so it is done on its own
+    used = totals.sum(axis=1) > 0
+    regular = np.all((totals > 0) == used[:, None], axis=0)[local]
+    cols = np.flatnonzero(regular)
+    if len(cols):
+        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, local[cols]],
+                                                           block_replica)
+    for g in np.unique(local[~regular]):
+        cols = np.flatnonzero(local == g)
+        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, g], block_replica)
+    return pair_group, pair_code, mean, se, n_eff
 
 
 def _conformer_labels(codes, widths, state_labels):

@@ -59,33 +59,40 @@ def write_table(frame, folder, name, float_format="%.6g"):
     return path
 
 
-def _write_plain_csv(frame, path, float_format):
+def _write_plain_csv(frame, path, float_format, rows_per_part=50_000):
     """Write like ``to_csv`` if every column is plain (NumPy float/int/bool, or all ``str``);
-    return False without writing otherwise."""
+    return False without writing otherwise. Rows are formatted ``rows_per_part`` at a time."""
     import csv
 
     if not frame.columns.is_unique:
         return False
-    columns = []
+    kinds = []
     for name in frame.columns:
         col = frame[name]
         dtype = col.dtype
-        kind = dtype.kind
-        values = col.tolist()
-        if isinstance(dtype, np.dtype) and kind == "f":
-            columns.append([float_format % v if v == v else "" for v in values])
-        elif isinstance(dtype, np.dtype) and kind in "iu":
-            columns.append(list(map(str, values)))
-        elif isinstance(dtype, np.dtype) and kind == "b":
-            columns.append(["True" if v else "False" for v in values])
-        elif kind == "O" and all(type(v) is str for v in values):
-            columns.append(values)
+        if isinstance(dtype, np.dtype) and dtype.kind in "fiub":
+            kinds.append(dtype.kind)
+        elif dtype.kind == "O" and all(type(v) is str for v in col.tolist()):
+            kinds.append("O")
         else:
             return False
     with open(path, "w", newline="") as fh:
         writer = csv.writer(fh, lineterminator=os.linesep)
         writer.writerow([str(c) for c in frame.columns])
-        writer.writerows(zip(*columns))
+        for lo in range(0, len(frame), rows_per_part):
+            part = frame.iloc[lo:lo + rows_per_part]
+            columns = []
+            for k, kind in enumerate(kinds):
+                values = part.iloc[:, k].tolist()
+                if kind == "f":
+                    columns.append([float_format % v if v == v else "" for v in values])
+                elif kind in "iu":
+                    columns.append(list(map(str, values)))
+                elif kind == "b":
+                    columns.append(["True" if v else "False" for v in values])
+                else:
+                    columns.append(values)
+            writer.writerows(zip(*columns))
     return True
 
 

@@ -29,3 +29,12 @@ def test_other_column_types_go_through_pandas(tmp_path):
     ours = write_table(frame, tmp_path, "ours.csv")
     frame.to_csv(tmp_path / "pandas.csv", index=False, float_format="%.6g")
     assert open(ours, "rb").read() == open(tmp_path / "pandas.csv", "rb").read()
+
+
+def test_rows_written_in_parts_give_the_same_text(tmp_path):
+    from dihedra.resultsdir import _write_plain_csv
+
+    frame = pd.DataFrame({"state": ["anti", "gauche+", "gauche-"] * 10, "population": np.linspace(0, 1, 30)})
+    assert _write_plain_csv(frame, tmp_path / "parts.csv", "%.6g", rows_per_part=7)
+    frame.to_csv(tmp_path / "pandas.csv", index=False, float_format="%.6g")
+    assert open(tmp_path / "parts.csv", "rb").read() == open(tmp_path / "pandas.csv", "rb").read()
