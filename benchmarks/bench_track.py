@@ -20,9 +20,9 @@ every 20 ms). (b) is also run over 2 N and 4 N frames: its peak memory at 1x, 2x
 and the marginal cost from the difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves
 out every cost that depends on the frame count only until the block sums are filled.
 
-Post-processing: ``dihedra track`` over as many copies of the 4 N-frame trajectory (as replicas)
-as make at least ``--post-samples`` (default 10^8) state samples, then ``dihedra profile`` and
-``dihedra kinetics --assignment crisp`` on that folder, timed separately.
+Post-processing (``bench_post.py``): ``dihedra track`` over as many copies of the 4 N-frame
+trajectory (as replicas) as make at least ``--post-samples`` (default 10^8) state samples, then
+``dihedra profile`` and ``dihedra kinetics --assignment crisp`` on that folder, timed separately.
 
 Run from the repository root::
 
@@ -34,9 +34,7 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
-import shutil
 import subprocess
 import sys
 import tempfile
@@ -343,36 +341,13 @@ def main(argv=None):
 
 
 def post_samples(args, data, top, xtc, n, n_torsions, py, env, summary):
-    """Profiles and kinetics on a folder of at least ``--post-samples`` state samples."""
-    per_copy = 4 * n * n_torsions
-    copies = max(1, math.ceil(args.post_samples / per_copy))
-    folder = os.path.join(data, "post")
-    samples = copies * per_copy
-    print()
-    print(f"post-processing on {samples:.3g} state samples ({copies} replicas x {4 * n} frames x "
-          f"{n_torsions} torsions):")
-    r = measure([py, "-m", "dihedra", "track", top, *([xtc] * copies), "--torsions", "rotatable",
-                 "--temperature", "298.15", "--out", folder, "--overwrite"], env=env)
-    print(f"  track (input)      wall {r['wall_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB")
-    found = {}
-    for name, module, cmd in (("profile", "profiles", ["profile", folder, "--temperature", "298.15"]),
-                              ("kinetics", "kinetics", ["kinetics", folder, "--assignment", "crisp"])):
-        if not os.path.exists(os.path.join(REPO, "dihedra", f"{module}.py")):
-            print(f"  {name:<18} not measured: dihedra/{module}.py does not exist yet")
-            continue
-        try:
-            r = measure([py, "-m", "dihedra", *cmd], env=env)
-        except RuntimeError as exc:
-            print(f"  {name:<18} failed: {str(exc).splitlines()[-1]}")
-            continue
-        found[name] = r
-        print(f"  {name:<18} wall {r['wall_s']:8.2f} s  cpu {r['cpu_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB")
-    if found:
-        total = sum(r["wall_s"] for r in found.values())
-        print(f"  profile + kinetics: {total:.1f} s wall (target: within 60 s for 1e8 samples)")
-    summary["post"] = {"samples": samples, **found}
-    shutil.rmtree(folder, ignore_errors=True)
+    """Profiles and kinetics on a folder of at least ``--post-samples`` state samples
+    (``bench_post.py``, which also measures other sample counts when run by itself)."""
+    from bench_post import post_processing
 
+    print()
+    print("post-processing (benchmarks/bench_post.py):")
+    summary["post"] = post_processing(data, top, xtc, n_torsions, [args.post_samples], py=py, env=env)
 
 if __name__ == "__main__":
     main()

@@ -55,6 +55,13 @@ Features of each histogram profile:
   to the most populated state A, from the state counts of the pass (bootstrapped on blocks of the
   same length as the histogram blocks).
 
+Computation: torsions are handled in stacks of 256, every step one array operation over the
+stack (the block bootstrap as one matrix product, free energies and their spread, kernel smoothing
+of the blocks by FFT, minima by vectorised candidate pruning with a range-maximum table, extrema
+of every resample by gathering all arcs of similar length at once, state free energies), a few
+stacks at a time in threads; the per-torsion kernel error is accumulated from sums over resamples
+without keeping them (:func:`_kernel_columns`), and the tables are built column by column.
+
 2-D profiles F(phi_a, phi_b) for a pair of torsions need the angle time series
 (``angles.parquet``, written by ``track --keep-angles``); it is read in chunks, so memory does not
 grow with the trajectory. Pairs given as torsion types pool every group (molecule or residue)
@@ -282,18 +289,45 @@ def _row_min(free):
     return np.where(np.isfinite(low), low, 0.0)
 
 
+def _resampled_free_energy(boot, width, kt):
+    """-kT ln p of resampled counts laid out (m, n_bins, n_bootstrap); +inf where a bin is empty.
+
+    Computed in place: ``boot`` is overwritten and returned.
+    """
+    total = boot.sum(axis=1, keepdims=True) * width
+    with np.errstate(divide="ignore", invalid="ignore"):
+        np.divide(boot, total, out=boot)
+        np.log(boot, out=boot)
+    np.multiply(boot, -kt, out=boot)
+    np.copyto(boot, np.inf, where=np.isnan(boot))  # a resample without samples
+    return boot
+
+
+def _spread_last(samples):
+    """:func:`bootstrap_spread` over the last axis (resamples last): sd and fraction finite."""
+    finite = np.isfinite(samples)
+    n = finite.sum(axis=-1)
+    x = np.where(finite, samples, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = x.sum(axis=-1) / n
+        x -= mean[..., None]
+        x *= finite
+        var = np.einsum("...i,...i->...", x, x) / (n - 1)
+    return np.where(n >= 2, np.sqrt(var), np.nan), n / max(1, samples.shape[-1])
+
+
 def _histogram_stack(block_counts, mult, kt, width):
     """Histogram profiles of a stack of torsions or types, as one Profile1D with a leading axis.
 
     ``block_counts`` (n_blocks, m, n_bins); the fields of the result are (m, n_bins) arrays and
-    ``boot_free_energy`` is (n_bootstrap, m, n_bins).
+    ``boot_free_energy`` is (m, n_bins, n_bootstrap), resamples last, +inf where a resample has
+    no sample in a bin (:func:`_unstack` gives single profiles in the documented layout).
     """
     block_counts = np.asarray(block_counts, dtype=float)
     counts = block_counts.sum(axis=0)
     density, free = free_energy_from_counts(counts, width, kt)
-    boot = np.tensordot(mult, block_counts, axes=(1, 0))  # (n_boot, m, n_bins)
-    _, boot_free = free_energy_from_counts(boot, width, kt)
-    err, frac = bootstrap_spread(boot_free)
+    boot_free = _resampled_free_energy(np.tensordot(block_counts, mult, axes=(0, 1)), width, kt)
+    err, frac = _spread_last(boot_free)
     return Profile1D(angle_deg=bin_centres(counts.shape[-1]), samples=counts, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
                      sampled=counts > 0, boot_free_energy=boot_free, boot_valid_fraction=frac)
@@ -302,12 +336,16 @@ def _histogram_stack(block_counts, mult, kt, width):
 def _unstack(stack):
     """The profiles of a stack (see :func:`_histogram_stack`) as a list of Profile1D."""
     bws = stack.bandwidth_deg
-    return [Profile1D(angle_deg=stack.angle_deg, samples=stack.samples[k], density_per_deg=stack.density_per_deg[k],
-                      free_energy_kj_mol=stack.free_energy_kj_mol[k],
-                      free_energy_err_kj_mol=stack.free_energy_err_kj_mol[k], sampled=stack.sampled[k],
-                      boot_free_energy=stack.boot_free_energy[:, k], boot_valid_fraction=stack.boot_valid_fraction[k],
-                      bandwidth_deg=None if bws is None else float(bws[k]))
-            for k in range(len(stack.samples))]
+    out = []
+    for k in range(len(stack.samples)):
+        boot = stack.boot_free_energy[k].T.copy()
+        boot[~np.isfinite(boot)] = np.nan
+        out.append(Profile1D(angle_deg=stack.angle_deg, samples=stack.samples[k],
+                             density_per_deg=stack.density_per_deg[k], free_energy_kj_mol=stack.free_energy_kj_mol[k],
+                             free_energy_err_kj_mol=stack.free_energy_err_kj_mol[k], sampled=stack.sampled[k],
+                             boot_free_energy=boot, boot_valid_fraction=stack.boot_valid_fraction[k],
+                             bandwidth_deg=None if bws is None else float(bws[k])))
+    return out
 
 
 def _profiles_from_blocks(block_counts, mult, kt, width):
@@ -373,9 +411,9 @@ def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width):
     """
     bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
     density, free = free_energy_from_counts(smooth, fine_width, kt)
-    bsmooth = np.clip(np.tensordot(mult, smooth_blocks, axes=(1, 0)), 0.0, None) * sampled
-    _, bfree = free_energy_from_counts(bsmooth, fine_width, kt)
-    err, frac = bootstrap_spread(bfree)
+    bsmooth = np.clip(np.tensordot(smooth_blocks * sampled, mult, axes=(0, 1)), 0.0, None)  # (m, n, n_boot)
+    bfree = _resampled_free_energy(bsmooth, fine_width, kt)
+    err, frac = _spread_last(bfree)
     return Profile1D(angle_deg=bin_centres(smooth.shape[-1]), samples=smooth, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
                      sampled=sampled & (smooth > 0), boot_free_energy=bfree, boot_valid_fraction=frac,
@@ -637,12 +675,12 @@ def find_minima(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_depth
 def _parabola(left, mid, right):
     """Vertex offset (in bins, within +-0.5) and value of a parabola through three points."""
     left, mid, right = (np.asarray(x, dtype=float) for x in (left, mid, right))
-    denom = left - 2.0 * mid + right
     with np.errstate(invalid="ignore", divide="ignore"):
+        denom = left - 2.0 * mid + right
         delta = 0.5 * (left - right) / denom
-    good = np.isfinite(delta) & np.isfinite(left) & np.isfinite(right) & (denom != 0)
-    delta = np.where(good, np.clip(delta, -0.5, 0.5), 0.0)
-    value = np.where(good, mid - 0.25 * (left - right) * delta, mid)
+        good = np.isfinite(delta) & np.isfinite(left) & np.isfinite(right) & (denom != 0)
+        delta = np.where(good, np.clip(delta, -0.5, 0.5), 0.0)
+        value = np.where(good, mid - 0.25 * (left - right) * delta, mid)
     return delta, value
 
 
@@ -658,13 +696,13 @@ def _refine_at(y5, idx, kind):
     single bins than the bin itself); a three-point parabola where the five are not all sampled or
     the fit bends the wrong way; the bin itself where neither works.
     """
-    c = y5 @ _FIT.T  # (..., 3): c0 + c1 x + c2 x^2
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):  # unsampled neighbours: inf or NaN
+        c = y5 @ _FIT.T  # (..., 3): c0 + c1 x + c2 x^2
         x5 = -c[..., 1] / (2.0 * c[..., 2])
         v5 = c[..., 0] + c[..., 1] * x5 + c[..., 2] * x5 ** 2
-    bend = c[..., 2] > 0 if kind == "min" else c[..., 2] < 0
-    good5 = np.isfinite(y5).all(axis=-1) & bend & (np.abs(x5) <= 1.0)
-    delta3, v3 = _parabola(y5[..., 1], y5[..., 2], y5[..., 3])
+        bend = c[..., 2] > 0 if kind == "min" else c[..., 2] < 0
+        good5 = np.isfinite(y5).all(axis=-1) & bend & (np.abs(x5) <= 1.0)
+        delta3, v3 = _parabola(y5[..., 1], y5[..., 2], y5[..., 3])
     return np.where(good5, idx + x5, idx + delta3), np.where(good5, v5, v3)
 
 
@@ -683,8 +721,9 @@ def _extremum(values, window, kind):
     not ok (the barrier is not known there).
     """
     values = np.atleast_2d(values)
+    values = np.where(np.isfinite(values), values, np.inf)
     window = np.asarray(window)
-    pos, value, ok = _window_extremum(values[None], np.zeros(1, dtype=np.int64), np.array([window[0] - 1]),
+    pos, value, ok = _window_extremum(values.T[None], np.zeros(1, dtype=np.int64), np.array([window[0] - 1]),
                                       np.array([len(window)]), kind)
     return pos[:, 0], value[:, 0], ok[:, 0]
 
@@ -694,12 +733,12 @@ _GATHER_VALUES = 8_000_000
 
 
 def _window_extremum(values, rows, start, length, kind):
-    """Refined extremum of arcs of a stack of profiles, for every leading index of ``values``.
+    """Refined extremum of arcs of a stack of profiles, for every resample.
 
     Parameters
     ----------
-    values : ndarray (r, m, n)
-        Profiles (r = 1 for the estimate, n_bootstrap for the resamples).
+    values : ndarray (m, n, r)
+        Profiles, their resamples last (r = 1 for the estimate); +inf = unsampled.
     rows, start, length : ndarray (f,)
         Profile of each arc, the bin before it and its number of bins (>= 1): the arc is
         ``start + 1, ..., start + length`` going up the circle.
@@ -709,20 +748,22 @@ def _window_extremum(values, rows, start, length, kind):
     -------
     position (bins), value, ok : ndarrays (r, f)
         The first extremum in arc order, refined; for "max", ok is false where the arc holds an
-        unsampled (non-finite) bin.
+        unsampled bin; for "min", where it holds no sampled one.
 
     Notes
     -----
-    Arcs are gathered in groups of similar length, each group as an (r, arcs, length) array whose
-    last axis is in arc order; a shorter arc repeats its last bin, which changes neither its
-    extreme value nor the first position of it.
+    Arcs are gathered in groups of similar length, each group as an (arcs, length, r) array whose
+    middle axis is in arc order (each gathered item is the contiguous vector of resamples of one
+    bin); a shorter arc repeats its last bin, which changes neither its extreme value nor the first
+    position of it.
     """
-    r, m, n = values.shape
-    flat = np.ascontiguousarray(values).reshape(r, m * n)
+    m, n, r = values.shape
+    flat = np.ascontiguousarray(values).reshape(m * n, r)
     f = len(rows)
     out = [np.empty((r, f)), np.empty((r, f)), np.empty((r, f), dtype=bool)]
     by_length = np.argsort(length, kind="stable")
     sorted_len = length[by_length]
+    resample = np.arange(r)
     lo = 0
     while lo < f:
         top = int(sorted_len[lo])
@@ -734,21 +775,22 @@ def _window_extremum(values, rows, start, length, kind):
         rw, st, ln = rows[sel], start[sel], length[sel]
         t = np.minimum(np.arange(span)[None, :], ln[:, None] - 1)
         cols = (st[:, None] + 1 + t) % n
-        sub = np.take(flat, rw[:, None] * n + cols, axis=1)  # (r, arcs, span)
-        missing = np.isnan(sub)
-        if kind == "min":
-            np.copyto(sub, np.inf, where=missing)
-            k = np.argmin(sub, axis=-1)
-            ok = np.isfinite(np.take_along_axis(sub, k[..., None], axis=-1)[..., 0])
+        sub = np.take(flat, rw[:, None] * n + cols, axis=0)  # (arcs, span, r)
+        if kind == "min":  # unsampled bins are +inf (see _resampled_free_energy), never the minimum
+            best = sub.min(axis=1)
+            ok = np.isfinite(best)
         else:
-            ok = ~missing.any(axis=-1)
-            np.copyto(sub, -np.inf, where=missing)
-            k = np.argmax(sub, axis=-1)
-        idx = cols[np.arange(len(sel))[None, :], k]
-        y5 = np.take(flat, (np.arange(r) * (m * n))[:, None, None] + (rw * n)[None, :, None]
-                     + (idx[..., None] + _FIT_X.astype(int)) % n)
+            finite = np.isfinite(sub)
+            ok = finite.all(axis=1)
+            np.copyto(sub, -np.inf, where=~finite)
+            best = sub.max(axis=1)
+        k = np.zeros(best.shape, dtype=np.int64)
+        for j in range(span - 1, -1, -1):  # first position of the extreme value
+            np.copyto(k, j, where=sub[:, j, :] == best)
+        idx = np.take_along_axis(cols, k, axis=1)  # (arcs, r)
+        y5 = flat[rw[:, None, None] * n + (idx[..., None] + _FIT_X.astype(int)) % n, resample[None, :, None]]
         pos, value = _refine_at(y5, idx, kind)
-        out[0][:, sel], out[1][:, sel], out[2][:, sel] = pos, value, ok
+        out[0][:, sel], out[1][:, sel], out[2][:, sel] = pos.T, value.T, ok.T
         lo = hi
     return tuple(out)
 
@@ -778,7 +820,7 @@ def _features_stack(stack, kt):
     m, n = free.shape
     w = stack.width_deg
     centres = stack.angle_deg
-    boot = stack.boot_free_energy.reshape((-1, m, n))
+    boot = stack.boot_free_energy.reshape((m, n, -1))
     mins = _minima_stack(free, stack.free_energy_err_kj_mol, kt,
                          usable=np.atleast_2d(stack.boot_valid_fraction) >= MIN_RESAMPLED_FRACTION)
     n_min = np.array([len(x) for x in mins], dtype=np.int64)
@@ -803,12 +845,12 @@ def _features_stack(stack, kt):
     def angle(pos):
         return wrap_deg(centres[0] + np.asarray(pos) * w)
 
-    pm, vm, _ = _window_extremum(free[None], row, win_start, win_len, "min")
+    pm, vm, _ = _window_extremum(g[:, :, None], row, win_start, win_len, "min")
     pb, vb, okb = _window_extremum(boot, row, win_start, win_len, "min")
     pm, vm = pm[0], vm[0]
     vb = np.where(okb, vb, np.nan)
     gmin_main = np.full(m, np.nan)
-    gmin_boot = np.full((len(boot), m), np.nan)
+    gmin_boot = np.full((boot.shape[2], m), np.nan)
     if len(row):  # lowest minimum of each profile (and of each resample, ignoring missing ones)
         has = n_min > 0
         gmin_main[has] = np.minimum.reduceat(vm, first[has])
@@ -821,7 +863,7 @@ def _features_stack(stack, kt):
     # barriers
     sampled = arc_len > 0
     if len(row):
-        arc_ok = _window_extremum(free[None], row, cur, np.maximum(arc_len, 1), "max")
+        arc_ok = _window_extremum(g[:, :, None], row, cur, np.maximum(arc_len, 1), "max")
         sampled &= arc_ok[2][0]
     pmx, vmx = (arc_ok[0][0], arc_ok[1][0]) if len(row) else (np.zeros(0), np.zeros(0))
     pbx, vbx, okbx = _window_extremum(boot, row, cur, np.maximum(arc_len, 1), "max")
@@ -867,7 +909,9 @@ def profile_features(profile, kt):
                       density_per_deg=np.atleast_2d(profile.density_per_deg),
                       free_energy_kj_mol=np.atleast_2d(profile.free_energy_kj_mol),
                       free_energy_err_kj_mol=np.atleast_2d(profile.free_energy_err_kj_mol),
-                      sampled=np.atleast_2d(profile.sampled), boot_free_energy=profile.boot_free_energy[:, None, :],
+                      sampled=np.atleast_2d(profile.sampled),
+                      boot_free_energy=np.where(np.isfinite(profile.boot_free_energy), profile.boot_free_energy,
+                                                np.inf).T[None],
                       boot_valid_fraction=np.atleast_2d(profile.boot_valid_fraction))
     minima, barriers = _features_stack(stack, kt)
     return ([{f: _scalar(minima[f][k]) for f in MINIMUM_FIELDS} for k in range(len(minima["row"]))],
@@ -1168,10 +1212,13 @@ def _ordered_map(func, items, threads):
     from collections import deque
     from concurrent.futures import ThreadPoolExecutor
 
+    from threadpoolctl import threadpool_limits  # a dependency of MDAnalysis
+
     if threads <= 1:
         yield from map(func, items)
         return
-    with ThreadPoolExecutor(threads) as pool:
+    # one BLAS thread per stack: the stacks themselves use the cores
+    with threadpool_limits(1, user_api="blas"), ThreadPoolExecutor(threads) as pool:
         pending = deque()
         for item in items:
             pending.append(pool.submit(func, item))
