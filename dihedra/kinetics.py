@@ -392,6 +392,8 @@ class StateTally:
                 self._pairs[lag].add(*_count_rows([rows, a[ok], xt[ok].astype(np.int64)]))
             self._tail = full[:, -lmax:].copy()
         else:  # a few series at a time, so that the temporary keys stay in the cache
+            if xt.max() >= self.n_states:
+                raise ValueError(f"state code {int(xt.max())} is not below n_states = {self.n_states}")
             step = max(1, _CACHE_VALUES // (n + lmax))
             for lo in range(0, self.n_series, step):
                 self._count_dense(xt[lo:lo + step], lo)
@@ -515,14 +517,17 @@ def rates_from_counts(counts_lag1, dt_ps):
 
 
 def _rate_statistics(n, t):
-    """k = n / T, its standard error sqrt(n) / T and the exact 95 % Poisson interval (Garwood)."""
-    from scipy.stats import chi2
+    """k = n / T, its standard error sqrt(n) / T and the exact 95 % Poisson interval (Garwood):
+    chi2_{0.025}(2 n) / 2 and chi2_{0.975}(2 n + 2) / 2 events, that is the inverse regularised
+    incomplete gamma function at n and n + 1."""
+    from scipy.special import gammaincinv
 
+    n = np.asarray(n, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
         tt = np.where(t > 0, t, np.nan)
         return {"rate_per_ps": n / tt, "rate_err_per_ps": np.sqrt(n) / tt,
-                "rate_ci_low_per_ps": np.where(n > 0, chi2.ppf(0.025, 2 * n) / 2, 0.0) / tt,
-                "rate_ci_high_per_ps": chi2.ppf(0.975, 2 * n + 2) / 2 / tt}
+                "rate_ci_low_per_ps": np.where(n > 0, gammaincinv(np.maximum(n, 1.0), 0.025), 0.0) / tt,
+                "rate_ci_high_per_ps": gammaincinv(n + 1.0, 0.975) / tt}
 
 
 def _reachability(adjacency):
@@ -1050,8 +1055,9 @@ def _stack_tables(stack, dt_ps, lags, n_bootstrap, rng):
     has_segment = np.zeros((p, v), dtype=bool)
     has_segment[dwell["subject"], dwell["state"]] = True
     visited = has_segment | (c1.sum(axis=2) > 0) | (c1.sum(axis=1) > 0)
-    rates = rates_from_counts(c1, dt_ps)
-    t = rates["time_ps"]
+    t = c1.sum(axis=2) * float(dt_ps)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rate_matrix = np.where((t > 0)[:, :, None] & ~np.eye(v, dtype=bool), c1 / t[:, :, None], 0.0)
     out = {}
 
     def head(who):
@@ -1067,7 +1073,7 @@ def _stack_tables(stack, dt_ps, lags, n_bootstrap, rng):
                           "count": c1[ps, i, j].astype(np.int64), "time_in_from_ps": t[ps, i],
                           **_rate_statistics(c1[ps, i, j], t[ps, i]), "n_trajectories": stack.n_trajectories[ps]}
     # lifetimes and populations
-    pi = _stationary_stack(np.nan_to_num(rates["rate_per_ps"]), visited)
+    pi = _stationary_stack(rate_matrix, visited)
     exits = c1.sum(axis=2) - np.diagonal(c1, axis1=1, axis2=2)
     total_frames = seg_frames.sum(axis=1, keepdims=True)
     with np.errstate(invalid="ignore", divide="ignore"):

@@ -784,9 +784,7 @@ def _window_extremum(values, rows, start, length, kind):
             ok = finite.all(axis=1)
             np.copyto(sub, -np.inf, where=~finite)
             best = sub.max(axis=1)
-        k = np.zeros(best.shape, dtype=np.int64)
-        for j in range(span - 1, -1, -1):  # first position of the extreme value
-            np.copyto(k, j, where=sub[:, j, :] == best)
+        k = (sub == best[:, None, :]).argmax(axis=1)  # first position of the extreme value
         idx = np.take_along_axis(cols, k, axis=1)  # (arcs, r)
         y5 = flat[rw[:, None, None] * n + (idx[..., None] + _FIT_X.astype(int)) % n, resample[None, :, None]]
         pos, value = _refine_at(y5, idx, kind)
