@@ -84,7 +84,7 @@ torsions to dense ``(torsion, from, to)`` counts; segments are found from the ch
 Everything after that is array arithmetic over all torsions at once (rates, populations,
 Kaplan-Meier statistics, Markov models) and the tables are built column by column, so the cost
 grows with the number of samples, not with a per-torsion loop: 1.2 x 10^8 samples (15,000
-torsions x 8,000 frames) take about 10 s on two cores (docs/performance.md).
+torsions x 8,000 frames) take 10-17 s on two cores shared with other jobs (docs/performance.md).
 
 Transition-state theory
 -----------------------
