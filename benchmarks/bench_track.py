@@ -4,30 +4,36 @@ Builds (once, cached in ``--data``) a synthetic liquid of united-atom six-site c
 chains by default: 30,000 atoms, 15,000 C-C-C-C torsions (``rotatable``), an XTC of 4 N frames
 (N = ``--frames``, default 1000) with atoms wrapped into the box one by one, torsions that hop
 between anti and gauche and a PDB topology with CONECT bonds. Then it runs, each command in a
-fresh process, over the first frame only and over N frames:
+fresh process, over the first frame only and over N frames, every run ``--repeat`` times (the
+fastest kept, as the machine may be shared):
 
 (a) bare MDAnalysis iteration reading the coordinates (the I/O floor);
-(b) ``dihedra track`` serial;
+(b) ``dihedra track`` serial (one thread; the compiled kernels use no threads);
+(b2) ``dihedra track --threads 2``: a second thread computes while the first reads;
 (c) ``dihedra track --workers 2`` (multiprocessing);
 (d) ``dihedra track --scheduler ADDRESS`` on a local dask.distributed cluster of 2 worker
     processes started beforehand (as a site's job system would);
 
 and prints the marginal cost per frame, ``(T(N) - T(1)) / (N - 1)``, of each as a ratio to that
-of (a), in wall time and in CPU time (user + system of every process involved; on a shared
-machine the CPU ratio of serial runs is the steadier one), with the peak memory (sum of the
-resident set sizes of the command's process tree, and of the cluster workers for (d), polled
-every 20 ms). (b) is also run over 2 N and 4 N frames: its peak memory at 1x, 2x and 4x the frames,
-and the marginal cost from the difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves
-out every cost that depends on the frame count only until the block sums are filled.
+of (a), in wall time and in CPU time (user + system of every process and thread involved; on a
+shared machine the CPU ratio of serial runs is the steadier one), with the peak memory (sum of
+the resident set sizes of the command's process tree, and of the cluster workers for (d), polled
+every 20 ms). (a) and (b) are also run over 2 N and 4 N frames: the peak memory of (b) at 1x, 2x
+and 4x the frames, the marginal cost at 4 N, ``(T(4N) - T(1)) / (4N - 1)``, and from the
+difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves out every cost that depends on
+the frame count only until the block sums are filled (conformer rows, table rows, compressed
+histogram size). The start-up (subtracted with T(1)) includes loading the compiled kernels from
+numba's cache; the time to compile them with an empty cache (once per installation) is measured
+separately.
 
-Post-processing (``bench_post.py``): ``dihedra track`` over as many copies of the 4 N-frame
-trajectory (as replicas) as make at least ``--post-samples`` (default 10^8) state samples, then
-``dihedra profile`` and ``dihedra kinetics --assignment crisp`` on that folder, timed separately.
+Post-processing: ``dihedra track`` over as many copies of the 4 N-frame trajectory (as replicas)
+as make at least ``--post-samples`` (default 10^8) state samples, then ``dihedra profile`` and
+``dihedra kinetics --assignment crisp`` on that folder, timed separately.
 
 Run from the repository root::
 
-    python benchmarks/bench_track.py                 # everything, about 20-30 min on 2 cores
-    python benchmarks/bench_track.py --skip post     # without the post-processing part
+    python benchmarks/bench_track.py                 # everything, about 30 min on 2 cores
+    python benchmarks/bench_track.py --skip post     # the trajectory pass only
 """
 
 from __future__ import annotations
@@ -227,6 +233,66 @@ print(*out)
 """
 
 
+PASS_PROBE = """
+import json, os, shutil, statistics, sys, tempfile, time, warnings
+warnings.simplefilter("ignore")
+import MDAnalysis as mda
+from dihedra.schemes import get_scheme
+from dihedra.torsions import select_torsions
+from dihedra.trackpass import TorsionPass
+top, xtc, n, repeat = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4])
+u = mda.Universe(top, xtc)
+tset = select_torsions(u, "rotatable")
+scheme = get_scheme("anti-gauche")
+
+def clock():
+    return time.perf_counter(), time.process_time()
+
+def read(stop):
+    t = clock()
+    for ts in u.trajectory[:stop]:
+        ts.positions
+    return t
+
+def run(stop, threads):
+    parts = tempfile.mkdtemp()
+    t = clock()
+    TorsionPass(u, tset, scheme, parts_dir=parts, threads=threads).run(stop=stop)
+    shutil.rmtree(parts)
+    return t
+
+def since(t):
+    w, c = clock()
+    return w - t[0], c - t[1]
+
+run(2, 1), run(2, 2)   # load the kernels
+out = {k: [] for k in ("read", "pass1", "pass2")}
+for _ in range(repeat):   # interleaved, so that a change of load hits all three alike
+    for stop in (n, 4 * n):
+        for key, f in (("read", lambda: read(stop)), ("pass1", lambda: run(stop, 1)),
+                       ("pass2", lambda: run(stop, 2))):
+            out[key].append((stop, *since(f())))
+print(json.dumps(out))
+"""
+
+
+def pass_alone(top, xtc, n, repeat, py, env):
+    """The pass in one process against reading the same frames, interleaved ``repeat`` times:
+    per-frame cost from two lengths, (T(4N) - T(N)) / 3N, medians over the repeats."""
+    done = subprocess.run([py, "-c", PASS_PROBE, top, xtc, str(n), str(repeat)], env=env, cwd=REPO,
+                          capture_output=True, text=True, check=True)
+    raw = json.loads(done.stdout.strip().splitlines()[-1])
+    res = {}
+    for key, rows in raw.items():
+        by_len = {}
+        for stop, wall, cpu in rows:
+            by_len.setdefault(stop, []).append((wall, cpu))
+        pairs = list(zip(by_len[n], by_len[4 * n]))
+        res[key] = {kind: sorted((b[i] - a[i]) / (3 * n) for a, b in pairs)[len(pairs) // 2]
+                    for i, kind in enumerate(("wall", "cpu"))}
+    return res
+
+
 # --------------------------------------------------------------------------------------------
 # Main
 # --------------------------------------------------------------------------------------------
@@ -240,7 +306,7 @@ def main(argv=None):
     ap.add_argument("--repeat", type=int, default=2,
                     help="measure every run this many times and keep the fastest (default 2)")
     ap.add_argument("--post-samples", type=float, default=1e8, help="state samples for post-processing")
-    ap.add_argument("--skip", action="append", default=[], choices=["b2", "c", "d", "memory", "jit", "post"],
+    ap.add_argument("--skip", action="append", default=[], choices=["b2", "c", "d", "memory", "alone", "jit", "post"],
                     help="leave out a part (repeatable)")
     args = ap.parse_args(argv)
 
@@ -305,6 +371,9 @@ def main(argv=None):
         run("a:4N", floor_cmd(4 * n))
         run("b:2N", track_cmd(2 * n), repeat=1)
         run("b:4N", track_cmd(4 * n))
+    alone = None
+    if "alone" not in args.skip:
+        alone = pass_alone(top, xtc, n, max(3, args.repeat), py, env)
     jit = {}
     if "jit" not in args.skip:
         # the first pass of a process loads the compiled kernels from numba's cache, or compiles
@@ -350,6 +419,16 @@ def main(argv=None):
         summary["peak_b_mb"] = peaks
         print(f"peak memory of (b) at 1x, 2x, 4x frames: {peaks[0]:.0f}, {peaks[1]:.0f}, {peaks[2]:.0f} MB "
               f"(4x / 1x = {peaks[2] / peaks[0]:.3f}; 1 frame: {runs['b:1']['peak_rss_mb']:.0f} MB)")
+    if alone:
+        summary["pass_alone_ms_per_frame"] = alone
+        r = alone["read"]
+        print("the pass alone in one process (TorsionPass, chunk files written), interleaved with reading the "
+              "same frames, (T(4N) - T(N)) / 3N, median of the repeats:")
+        for key, label in (("read", "MDAnalysis reading only"), ("pass1", "pass, 1 thread"),
+                           ("pass2", "pass, --threads 2")):
+            x = alone[key]
+            print(f"  {label:<28} wall {x['wall'] * 1e3:.3f} ms/frame ({x['wall'] / r['wall']:.2f})   "
+                  f"cpu {x['cpu'] * 1e3:.3f} ms/frame ({x['cpu'] / r['cpu']:.2f})")
     if jit:
         summary["jit_cpu_s"] = jit
         print(f"start-up of (b): {runs['b:1']['wall_s']:.1f} s wall, {runs['b:1']['cpu_s']:.1f} s cpu (subtracted "

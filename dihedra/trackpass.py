@@ -88,8 +88,6 @@ _WORK_BYTES = 8 << 20
 #: With a second thread, coordinates are copied into batches of about this many bytes.
 BATCH_BYTES = 16 << 20
 
-_NO_CELL = np.zeros((3, 3))
-
 #: Frames whose fine bins are buffered before they are added to the histograms.
 HIST_BUFFER_FRAMES = 256
 
@@ -361,6 +359,7 @@ class TorsionPass(AnalysisBase):
         else:
             size = 1
         self._angle_rows = None if self.keep_angles else np.empty((size, n_t), dtype=np.float32)
+        self._boxes = self._box_keys = None
 
     def _single_frame(self):
         ts = self._ts
@@ -400,16 +399,11 @@ class TorsionPass(AnalysisBase):
         bins, codes = self._bins[nb:nb + m], self._buf_codes[row:row + m]
         deg = self._angle_rows[:m] if self._buf_angles is None else self._buf_angles[row:row + m]
         weight, sblock = self._frame_weight[i], self._frame_sblock[i]
-        box = [self._geometry._box_parameters(d) for d in batch.dimensions[lo:lo + m]]
         if self._kernels is not None:
-            lengths = np.array([b[0] for b in box])
-            inverse = np.array([b[1] for b in box])
-            triclinic = np.array([b[2] is not None for b in box])
-            cells = np.array([b[2] if b[2] is not None else _NO_CELL for b in box])
-            reach2 = np.array([b[3] for b in box])
-            self._kernels.frames(batch.positions[lo:lo + m], self._geometry._idx3, self._bonds, lengths,
-                                 inverse, cells, reach2, triclinic, deg, *self._bin_args, bins, codes,
-                                 self._state_counts, sblock, weight, self._undefined)
+            boxes = self._box_rows(batch.dimensions[lo:lo + m])
+            self._kernels.frames(batch.positions[lo:lo + m], self._geometry._idx3, self._bonds, *boxes,
+                                 deg, *self._bin_args, bins, codes, self._state_counts, sblock, weight,
+                                 self._undefined)
         else:
             for f in range(m):
                 self._geometry(batch.positions[lo + f], batch.dimensions[lo + f], out=deg[f])
@@ -421,6 +415,24 @@ class TorsionPass(AnalysisBase):
                                        else batch.frame[lo:lo + m] * float(self.dt_ps))
         self._buf_index[row:row + m] = self._global_index[i]
         self._n_buf, self._n_bins_buf = row + m, nb + m
+
+    def _box_rows(self, dimensions):
+        """Minimum-image parameters of the frames of a batch (lengths, inverse, cells, reach2,
+        triclinic), recomputed only for rows whose box changed."""
+        m = len(dimensions)
+        if self._boxes is None or len(self._boxes[0]) < m:
+            self._boxes = (np.zeros((m, 3)), np.zeros((m, 3)), np.zeros((m, 3, 3)), np.zeros(m),
+                           np.zeros(m, dtype=bool))
+            self._box_keys = [None] * m
+        lengths, inverse, cells, reach2, triclinic = self._boxes
+        for f in range(m):
+            key = dimensions[f].tobytes()
+            if key != self._box_keys[f]:
+                lengths[f], inverse[f], h, reach2[f] = self._geometry._box_parameters(dimensions[f])
+                triclinic[f] = h is not None
+                cells[f] = h if h is not None else 0.0
+                self._box_keys[f] = key
+        return tuple(a[:m] for a in self._boxes)
 
     def _add_histograms(self):
         """Add the fine bins of the buffered frames to the histograms."""

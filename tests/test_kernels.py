@@ -3,6 +3,7 @@ twins, and both agree with references: MDAnalysis' calc_dihedrals for the angles
 own assign() for the state codes at and next to every boundary, numpy.histogram for the bins."""
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from dihedra import angles
@@ -120,3 +121,39 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
     expect = np.array([np.histogram([-x], bins=np.linspace(-180, 180, n_bins + 1))[0][::-1] for x in deg[ok]])
     np.testing.assert_array_equal(hist[ok], expect)
     np.testing.assert_array_equal(counts[ok], np.eye(scheme.n_states, dtype=np.int64)[codes[ok]])
+
+
+def test_pass_in_a_triclinic_cell_equals_numpy_path_and_mdanalysis(tmp_path, monkeypatch):
+    # molecules wrapped atom by atom into a triclinic cell: the compiled pass (frames of one
+    # batch, cell parameters per frame) and the NumPy path give the same angles and codes, and
+    # the angles agree with MDAnalysis' calc_dihedrals with the box (reference library)
+    import MDAnalysis as mda
+    from MDAnalysis.lib.distances import calc_dihedrals
+    from MDAnalysis.lib.mdamath import triclinic_vectors
+
+    from conftest import write_system
+    from dihedra.tracking import track
+
+    box = np.array([30.0, 32.0, 35.0, 70.0, 80.0, 100.0])
+    h = triclinic_vectors(box.astype(np.float32)).astype(float)
+    frames = []
+    for seed in range(12):
+        xyz, _ = random_chains(40, seed=seed)
+        frac = xyz @ np.linalg.inv(h)
+        frames.append((frac - np.floor(frac)) @ h)
+    top, traj = write_system(str(tmp_path), np.array(frames), names=("C1", "C2", "C3", "C4", "C5", "C6"),
+                             resname="HEX", box=box)
+    kw = dict(torsions="rotatable", scheme="klyne-prelog", keep_angles=True, chunk_frames=5)
+    compiled = track(top, [traj], threads=2, **kw)
+    monkeypatch.setenv("DIHEDRA_NO_NUMBA", "1")
+    plain = track(top, [traj], **kw)
+    pd.testing.assert_frame_equal(compiled.angles(), plain.angles())
+    pd.testing.assert_frame_equal(compiled.states(), plain.states())
+    for key in compiled.blocks:
+        np.testing.assert_array_equal(compiled.blocks[key], plain.blocks[key], err_msg=key)
+    u = mda.Universe(top, traj)
+    idx = compiled.torsion_set.indices
+    ref = np.array([np.degrees(calc_dihedrals(*(ts.positions[idx[:, k]] for k in range(4)), box=ts.dimensions))
+                    for ts in u.trajectory])
+    got = compiled.angles()[list(compiled.torsion_set.labels)].to_numpy(dtype=float)
+    assert np.abs((got - ref + 180.0) % 360.0 - 180.0).max() < 1e-3
