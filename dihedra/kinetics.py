@@ -1434,7 +1434,7 @@ def _folder_contents(folder):
 
 
 #: Values read from the Parquet file at a time (the steps that follow take CHUNK_VALUES at a time).
-READ_VALUES = 32_000_000
+READ_VALUES = 8_000_000
 
 
 def _replica_blocks(path, labels, batch_frames=None):

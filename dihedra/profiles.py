@@ -1483,7 +1483,8 @@ def write_profiles(pset, folder, energy_unit="kJ/mol"):
     from .csvtables import write_csv
 
     for name, frame in tables:
-        converted = convert_energy_columns(frame, energy_unit, pset.temperature_k)
+        converted = (frame if canonical_energy_unit(energy_unit) == "kJ/mol"  # no copy of 6.5 million rows
+                     else convert_energy_columns(frame, energy_unit, pset.temperature_k))
         paths.append(replace_into(folder, name, lambda path, table=converted: write_csv(table, path)))
     info = dict(pset.settings)
     info["energy_unit"] = canonical_energy_unit(energy_unit)
