@@ -193,20 +193,30 @@ def fill_forward(codes, last=None):
 
 
 def _fill_rows(codes, last=None):
-    """:func:`fill_forward` along axis 1 of (n_series, n_frames) codes (int64 where any is negative;
-    the codes unchanged where none is)."""
+    """:func:`fill_forward` along axis 1 of (n_series, n_frames) codes; the codes unchanged where
+    none is negative.
+
+    Small codes (0..126, as states of a scheme) are filled with one running maximum of
+    ``frame * 128 + code`` (int32), whose low 7 bits are the last assigned code; others by index.
+    """
     c = np.asarray(codes)
     negative = c < 0
     if not negative.any():
         return c
     s, n = c.shape
-    idx = np.where(negative, np.int32(-1), np.arange(n, dtype=np.int32)[None, :])
-    np.maximum.accumulate(idx, axis=1, out=idx)
-    out = np.take_along_axis(c, np.maximum(idx, 0), axis=1).astype(np.int64)
-    before = idx < 0
+    carry = np.full(s, -1, dtype=np.int64) if last is None else np.maximum(np.asarray(last, dtype=np.int64), -1)
+    if c.max() < 127 and n < (1 << 23) and carry.max() < 127:
+        key = np.where(negative, np.int32(-1), np.arange(n, dtype=np.int32)[None, :] * np.int32(128) + c)
+        np.maximum.accumulate(key, axis=1, out=key)
+        out = (key & 127).astype(np.int8)
+        before = key < 0
+    else:
+        idx = np.where(negative, np.int32(-1), np.arange(n, dtype=np.int32)[None, :])
+        np.maximum.accumulate(idx, axis=1, out=idx)
+        out = np.take_along_axis(c, np.maximum(idx, 0), axis=1).astype(np.int64)
+        before = idx < 0
     if before.any():
-        carry = np.full(s, -1, dtype=np.int64) if last is None else np.maximum(np.asarray(last, dtype=np.int64), -1)
-        out[before] = np.broadcast_to(carry[:, None], out.shape)[before]
+        out[before] = np.broadcast_to(carry.astype(out.dtype)[:, None], out.shape)[before]
     return out
 
 
@@ -1433,13 +1443,17 @@ def _folder_contents(folder):
                            torsion_set=TorsionSet.from_frame(torsions))
 
 
-#: Values read from the Parquet file at a time (the steps that follow take CHUNK_VALUES at a time).
-READ_VALUES = 8_000_000
+#: Values decoded from the Parquet file at a time (the steps that follow take CHUNK_VALUES at a time).
+READ_VALUES = 16_000_000
 
 
 def _replica_blocks(path, labels, batch_frames=None):
     """Yield (replica, values) of a time series: values (n_labels, n_frames) laid out series by
-    series, consecutive frames of one replica, about CHUNK_VALUES at a time."""
+    series, consecutive frames of one replica, about CHUNK_VALUES at a time.
+
+    Parquet is decoded READ_VALUES at a time (its cost per column and read is high, so reads are
+    large); the values are copied out of Arrow one chunk at a time.
+    """
     import pyarrow.parquet as pq
 
     pf = pq.ParquetFile(path)
@@ -1449,13 +1463,15 @@ def _replica_blocks(path, labels, batch_frames=None):
     for rb in pf.iter_batches(batch_size=batch, columns=["replica", *labels]):
         rep = rb.column("replica").to_numpy()
         cols = [rb.column(name) for name in labels]
-        values = np.empty((len(labels), rb.num_rows), dtype=cols[0].type.to_pandas_dtype() if cols else np.int8)
-        for k, col in enumerate(cols):
-            values[k] = col.to_numpy(zero_copy_only=False)
+        dtype = cols[0].type.to_pandas_dtype() if cols else np.int8
         cuts = np.flatnonzero(np.diff(rep)) + 1
         for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(rep)]):
             for a in range(lo, hi, step):
-                yield int(rep[lo]), values[:, a:min(hi, a + step)]
+                m = min(hi, a + step) - a
+                values = np.empty((len(labels), m), dtype=dtype)
+                for k, col in enumerate(cols):
+                    values[k] = col.slice(a, m).to_numpy(zero_copy_only=False)
+                yield int(rep[lo]), values
 
 
 def _joint_codes(assigned, layout, n_states):
@@ -1509,6 +1525,45 @@ def _column_parts(n_columns, members, n_parts):
                                                 dtype=np.int64)) for k in range(n_parts) if (part == k).any()]
 
 
+class CoreCodes:
+    """:meth:`StateScheme.core_codes` of a scheme and margin through a lookup table (same codes).
+
+    ``core_codes`` takes a floating-point modulo per arc and value (about 130 ns a value);
+    here a value's bin of 1/``per_degree`` degree gives its code from a table, and only values
+    in bins next to a core edge (about 0.05 % of them) go through ``core_codes`` itself. NaN
+    gives :data:`~dihedra.schemes.UNDEFINED`.
+    """
+
+    def __init__(self, scheme, margin_deg, per_degree=100):
+        from .units import wrap_deg
+
+        self.scheme, self.margin, self.per_degree = scheme, float(margin_deg), int(per_degree)
+        n = 360 * self.per_degree
+        centres = -180.0 + (np.arange(n) + 0.5) / self.per_degree
+        table = np.empty(n + 1, dtype=np.int8)
+        table[:n] = scheme.core_codes(centres, self.margin)
+        ambiguous = np.zeros(n + 1, dtype=bool)
+        ambiguous[n] = True  # 180 exactly
+        for _, start, end in scheme.merged_arcs():
+            for edge in (start + self.margin, end - self.margin):
+                k = int(np.floor((float(wrap_deg(edge)) + 180.0) * self.per_degree))
+                ambiguous[np.arange(k - 1, k + 2) % n] = True  # the edge's bin and its neighbours
+        self.sentinel = np.int8(-128)
+        table[ambiguous] = self.sentinel
+        self.table = table
+
+    def __call__(self, angles_deg):
+        a = np.asarray(angles_deg)
+        if a.dtype.kind != "f" or (a.size and not (a.min() > -180.0 and a.max() <= 180.0)):
+            return self.scheme.core_codes(a, self.margin)  # not wrapped, or NaN: the exact function
+        b = ((a + np.float32(180.0)) * np.float32(self.per_degree)).astype(np.int32)
+        codes = self.table[np.minimum(b, len(self.table) - 1)]
+        odd = codes == self.sentinel
+        if odd.any():
+            codes[odd] = self.scheme.core_codes(a[odd], self.margin)
+        return codes
+
+
 def _tally_columns(part, path, labels, kind, scheme, margin, lags, members, pool, batch_frames):
     """Read the columns of one part, assign states and tally torsions and conformer groups.
 
@@ -1527,6 +1582,7 @@ def _tally_columns(part, path, labels, kind, scheme, margin, lags, members, pool
     carry = np.full(len(columns), -1, dtype=np.int64)
     current = None
     n_frames = 0
+    core = CoreCodes(scheme, margin) if kind == "angles" else None
     for rep, block in _replica_blocks(path, [labels[c] for c in columns], batch_frames):
         if rep != current:
             if current is not None:
@@ -1535,7 +1591,7 @@ def _tally_columns(part, path, labels, kind, scheme, margin, lags, members, pool
                     c_tally.end_replica()
             carry[:] = -1
             current = rep
-        codes = scheme.core_codes(block, margin) if kind == "angles" else block
+        codes = core(block) if kind == "angles" else block
         assigned = _fill_rows(codes, carry)
         carry = assigned[:, -1].astype(np.int64)
         t_tally.add_series(assigned)

@@ -326,3 +326,21 @@ def test_csv_writer_round_trip(tmp_path):
     assert back["name"].tolist() == ["a", "b,c", "a"] and back["ok"].tolist() == [True, False, True]
     assert np.isnan(back["x_deg"][1]) and back["x_deg"][2] == pytest.approx(-1e-7, rel=1e-6)
     assert back["n"].tolist() == [1, 2, 3]
+
+
+def test_core_codes_by_table_equal_the_scheme():
+    # the lookup table gives exactly StateScheme.core_codes (values at and next to every core edge
+    # included, margins 0 to near the limit, two schemes)
+    rng = np.random.default_rng(15)
+    for name, margins in (("anti-gauche", (0.0, 20.0, 55.0)), ("klyne-prelog", (0.0, 10.0, 29.0))):
+        scheme = get_scheme(name)
+        for margin in margins:
+            edges = np.array([e for _, a, b in scheme.merged_arcs() for e in (a + margin, b - margin)])
+            edges = (edges + 180.0) % 360.0 - 180.0
+            near = np.concatenate([edges + d for d in (0.0, 1e-5, -1e-5, 1e-3, -1e-3, 0.01, -0.01)])
+            angles = np.concatenate([rng.uniform(-180, 180, 200_000), near, [180.0, -179.99999, 0.0]])
+            angles = np.where(angles <= -180.0, 180.0, angles).astype(np.float32)
+            assert np.array_equal(kin.CoreCodes(scheme, margin)(angles), scheme.core_codes(angles, margin))
+    with_nan = np.array([np.nan, 60.0, -170.0], dtype=np.float32)
+    scheme = get_scheme("anti-gauche")
+    assert np.array_equal(kin.CoreCodes(scheme, 20.0)(with_nan), scheme.core_codes(with_nan, 20.0))
