@@ -272,7 +272,9 @@ class TorsionPass(AnalysisBase):
         gi = self._global_index
         first, last = (int(gi[0]), int(gi[-1])) if len(gi) else (0, 0)
         # blocks this worker touches: its frames are one contiguous slice of the run
-        if first == 0 and last == total - 1:   # the whole run (serial): every block
+        if not len(gi):   # a worker without frames (more workers than frames): no blocks
+            self._hb_lo, hb_hi, self._sb_lo, sb_hi = 0, -1, 0, -1
+        elif first == 0 and last == total - 1:   # the whole run (serial): every block
             self._hb_lo, hb_hi, self._sb_lo, sb_hi = 0, self.n_hist_blocks - 1, 0, self.n_state_blocks - 1
         else:
             self._hb_lo, hb_hi = first * self.n_hist_blocks // total, last * self.n_hist_blocks // total

@@ -296,3 +296,14 @@ def test_error_in_the_second_thread_reaches_the_caller(replicas, monkeypatch):
     top, trajs, _ = replicas
     with pytest.raises(RuntimeError, match="broken batch"):
         track(top, trajs[:1], threads=2, **KW)
+
+
+def test_more_workers_than_frames(replicas):
+    # a worker without frames holds no blocks and adds nothing
+    top, trajs, _ = replicas
+    kw = dict(KW, stop=1)
+    one = track(top, trajs[:1], **kw)
+    two = track(top, trajs[:1], workers=2, **kw)
+    for key in one.blocks:
+        np.testing.assert_array_equal(one.blocks[key], two.blocks[key], err_msg=key)
+    pd.testing.assert_frame_equal(one.states(), two.states())
