@@ -484,9 +484,14 @@ class TorsionPass(AnalysisBase):
             return
         hist = np.zeros(shape, dtype=np.float64 if self.weights is not None else np.int32)
         while parts:
-            lo, dense = parts.pop()
-            hist[lo:lo + len(dense)] += dense
-            del dense
+            part = parts.pop()
+            if len(part) == 2:   # (first block, dense blocks)
+                lo, dense = part
+                hist[lo:lo + len(dense)] += dense
+            else:                # (block, cells, values)
+                block, cells, values = part
+                hist[block].reshape(-1)[cells] += values
+            del part
         res.histograms = hist
 
     # -- chunk work --------------------------------------------------------------------------------
@@ -589,6 +594,11 @@ class TorsionPass(AnalysisBase):
             wts = np.concatenate(self._conf_wts)
             self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
         self._conf_rows, self._conf_wts = [], []
+        if self._hb_lo > 0 or len(self._hist) < self.n_hist_blocks:
+            # a slice of a parallel run: its blocks travel back to the parent, as the non-empty
+            # cells where that is less than half the bytes of the dense block
+            self.results.hist_parts = [part for b in range(len(self._hist))
+                                       for part in _hist_part(self._hb_lo + b, self._hist[b])]
         self._hist = None
         self._buf_codes = self._buf_angles = self._bins = self._angle_rows = self._bonds = None
         self._one_frame = self._staged = None
@@ -696,6 +706,15 @@ class _Overlap:
         if self._thread.is_alive():
             self._todo.put(None)
             self._thread.join()
+
+
+def _hist_part(block, dense):
+    """One histogram block of a worker as ``[(block, cells, values)]`` (non-empty cells, int32
+    indices) when that is smaller than half the dense block, else ``[(block, dense view)]``."""
+    cells = np.flatnonzero(dense)
+    if len(cells) * (4 + dense.itemsize) < dense.nbytes // 2 and dense.size < 2**31:
+        return [(block, cells.astype(np.int32), dense.reshape(-1)[cells])]
+    return [(block, dense[None])]
 
 
 def _save_transposed(path, block, tile=1024):
