@@ -275,3 +275,18 @@ def frames(positions, idx3, bonds, lengths, inverse, cells, reach2, triclinic, d
         bin_and_code(deg[f], width, shift_in, shift_out, n_bins, table, boundaries, start_closed,
                      arc_states, mixed, bins[f], codes[f], counts[state_block[f]], weights[f],
                      undefined)
+
+
+@njit(**_OPTS)
+def transpose_into(src, dst):
+    """``dst[:] = src.T`` for 2-D arrays, in 32 x 32 tiles so that reads and writes both stay in
+    the cache (NumPy's strided copy of a one-byte transpose is about 3 times slower)."""
+    n, m = src.shape
+    tile = 32
+    for i0 in range(0, n, tile):
+        i1 = min(n, i0 + tile)
+        for j0 in range(0, m, tile):
+            j1 = min(m, j0 + tile)
+            for j in range(j0, j1):
+                for i in range(i0, i1):
+                    dst[j, i] = src[i, j]

@@ -206,7 +206,7 @@ def _frame_indices(universe, start, stop, step, where):
 def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *, start=None,
           stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
-          bin_width_deg=1.0, chunk_frames=None, threads=1, progress=None, log=None):
+          bin_width_deg=1.0, chunk_frames=None, threads=None, progress=None, log=None):
     """Follow torsions through one or more replica trajectories.
 
     Parameters
@@ -244,9 +244,10 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         Recorded in the summary (profiles need it; tracking does not).
     n_state_blocks, n_hist_blocks, bin_width_deg, chunk_frames
         Block structure and fine histogram resolution (see :class:`TorsionPass`).
-    threads : int
+    threads : int, optional
         Threads per pass: 2 lets a second thread compute while the first reads the trajectory
-        (serial runs; each worker of a parallel run uses one thread). Results are identical.
+        (serial runs; each worker of a parallel run uses one thread). Default: 2 for a serial run
+        when this process may use two or more cores, else 1. Results are identical.
     progress : bool, optional
         Show a progress bar (default: when standard error is a terminal and the run is serial).
     log : callable, optional
@@ -297,13 +298,14 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             backend = "multiprocessing" if n_workers > 1 else "serial"
         if progress is None:
             progress = backend == "serial" and sys.stderr.isatty()
+        threads = _pass_threads(threads, backend)
         passes, replica_info = [], []
         for r, (u, traj, fr, w) in enumerate(zip(universes, trajectories, frames, weight_arrays)):
             say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
             tp = TorsionPass(u, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
                              bin_width_deg=bin_width_deg, weights=w, parts_dir=parts_dir,
                              keep_angles=keep_angles, chunk_frames=chunk_frames, replica=r, dt_ps=dt_ps,
-                             threads=threads if backend == "serial" else 1)
+                             threads=threads)
             run_kwargs = dict(start=start, stop=stop, step=step)
             if backend == "serial":
                 run_kwargs.update(verbose=bool(progress),
@@ -438,6 +440,21 @@ def _assemble(tset, scheme, passes, universe, replica_info, notices):
     return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
                        populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
                        conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
+
+
+def _pass_threads(threads, backend):
+    """Threads of each pass: as asked (1 or 2), else 2 for a serial run with two usable cores."""
+    if backend != "serial":
+        return 1
+    if threads is None:
+        try:
+            cores = len(os.sched_getaffinity(0))
+        except AttributeError:   # not on Linux
+            cores = os.cpu_count() or 1
+        return 2 if cores >= 2 else 1
+    if int(threads) not in (1, 2):
+        raise ValueError(f"threads must be 1 or 2; got {threads!r}")
+    return int(threads)
 
 
 def _stack_histograms(passes):

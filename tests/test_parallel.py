@@ -78,7 +78,7 @@ KW = dict(torsions="rotatable", scheme="klyne-prelog", keep_angles=True, chunk_f
 @pytest.fixture(scope="module")
 def serial(replicas):
     top, trajs, _ = replicas
-    return track(top, trajs, **KW)
+    return track(top, trajs, threads=1, **KW)
 
 
 def assert_same(a, b):
@@ -307,3 +307,17 @@ def test_more_workers_than_frames(replicas):
     for key in one.blocks:
         np.testing.assert_array_equal(one.blocks[key], two.blocks[key], err_msg=key)
     pd.testing.assert_frame_equal(one.states(), two.states())
+
+
+def test_default_threads_follow_the_usable_cores(monkeypatch):
+    # common practice: a serial run uses the second core when the process may run on it
+    import dihedra.tracking as tracking
+
+    monkeypatch.setattr(tracking.os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
+    assert tracking._pass_threads(None, "serial") == 2
+    assert tracking._pass_threads(None, "multiprocessing") == 1   # workers use one thread each
+    assert tracking._pass_threads(1, "serial") == 1
+    monkeypatch.setattr(tracking.os, "sched_getaffinity", lambda pid: {3}, raising=False)
+    assert tracking._pass_threads(None, "serial") == 1
+    with pytest.raises(ValueError, match="threads must be 1 or 2"):
+        tracking._pass_threads(3, "serial")

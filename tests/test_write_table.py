@@ -1,4 +1,5 @@
-"""write_table writes exactly the text of pandas' to_csv (reference library: pandas)."""
+"""write_table writes exactly the text of pandas' to_csv (reference library: pandas); block sums and
+chunk files read back with NumPy equal what was written."""
 
 import numpy as np
 import pandas as pd
@@ -38,3 +39,47 @@ def test_rows_written_in_parts_give_the_same_text(tmp_path):
     assert _write_plain_csv(frame, tmp_path / "parts.csv", "%.6g", rows_per_part=7)
     frame.to_csv(tmp_path / "pandas.csv", index=False, float_format="%.6g")
     assert open(tmp_path / "parts.csv", "rb").read() == open(tmp_path / "pandas.csv", "rb").read()
+
+
+@pytest.mark.parametrize("top, stored", [(200, np.uint8), (60_000, np.uint16), (70_000, np.int32)])
+def test_histograms_stored_narrow_read_back_equal(tmp_path, top, stored):
+    """save_npz narrows non-negative counts to the smallest unsigned type (checked against
+    NumPy's own np.load), and load_results' widening gives the int32 array back."""
+    from dihedra.resultsdir import NARROWED, save_npz
+
+    rng = np.random.default_rng(1)
+    hist = rng.integers(0, top + 1, size=(3, 5, 360)).astype(np.int32)
+    hist[0, 0, 0] = top
+    counts = rng.integers(0, 5, size=(4, 5, 3))   # int64, not listed: stored as is
+    path = tmp_path / "blocks.npz"
+    save_npz(path, {"histograms": hist, "state_counts": counts}, narrow=tuple(NARROWED))
+    with np.load(path) as npz:
+        assert npz["histograms"].dtype == np.dtype(stored)
+        assert npz["state_counts"].dtype == counts.dtype
+        np.testing.assert_array_equal(npz["histograms"].astype(np.int32), hist)
+        np.testing.assert_array_equal(npz["state_counts"], counts)
+
+
+def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
+    from dihedra.resultsdir import save_npz
+
+    neg = np.array([[-1, 2], [3, 4]], dtype=np.int32)
+    flt = np.array([0.5, 2.0])
+    save_npz(tmp_path / "b.npz", {"histograms": neg, "other": flt}, narrow=("histograms", "other"))
+    with np.load(tmp_path / "b.npz") as npz:
+        assert npz["histograms"].dtype == np.int32 and npz["other"].dtype == np.float64
+        np.testing.assert_array_equal(npz["histograms"], neg)
+
+
+@pytest.mark.parametrize("shape", [(7, 3), (300, 1500), (64, 2049)])
+def test_chunk_files_are_the_transpose_with_and_without_the_kernels(tmp_path, shape):
+    """The chunk file of a block equals np.save of its transpose (reference: NumPy)."""
+    from dihedra.angles import compiled_kernels
+    from dihedra.trackpass import _save_transposed
+
+    block = np.random.default_rng(2).integers(-1, 3, size=shape).astype(np.int8)
+    for kernels in (compiled_kernels(), None):
+        _save_transposed(tmp_path / "x.npy", block, kernels=kernels)
+        back = np.load(tmp_path / "x.npy")
+        assert back.shape == shape[::-1]
+        np.testing.assert_array_equal(back, block.T)

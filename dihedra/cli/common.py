@@ -27,9 +27,10 @@ def add_track_options(parser):
     parser.add_argument("--step", type=int, default=None, metavar="N", help="use every N-th frame")
     parser.add_argument("--workers", type=int, default=1, metavar="N",
                         help="worker processes (default 1); results equal a serial run")
-    parser.add_argument("--threads", type=int, default=1, choices=[1, 2], metavar="N",
-                        help="threads of a serial run (default 1); 2: one computes while the other "
-                             "reads the trajectory (uses a second core; results are identical)")
+    parser.add_argument("--threads", type=int, default=None, choices=[1, 2], metavar="N",
+                        help="threads of a serial run: 2 (the default when two cores are free for "
+                             "this process) computes while the other reads the trajectory; 1 stays "
+                             "on one core. Results are identical")
     parser.add_argument("--backend", default=None, choices=["serial", "multiprocessing", "dask"],
                         help="parallel backend for --workers > 1 (default multiprocessing)")
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
