@@ -210,57 +210,113 @@ def merge_chunks(parts_dir, folder, keep_angles):
 
     Each chunk holds ``replica....-from....index.npz`` (frame, time_ps, [weight]) and one raw array
     per kind, ``.states.npy`` (int8) or ``.angles.npy`` (float32), of shape (n_torsions, n_frames).
-    Chunks are read memory-mapped in replica and frame order and regrouped into row groups of
-    ``row_group_frames`` frames (from ``layout.json``) that never span two replicas, so the file is
-    the same whatever number of workers wrote the chunks; memory stays at about one row group.
+    Chunks are read memory-mapped in replica and frame order and written through
+    :class:`TimeSeriesWriter`, so the file is the same whatever number of workers wrote the
+    chunks (and the same as a serial run that hands its chunks to the writer directly); memory
+    stays at about one row group.
     """
-    import pyarrow as pa
-
     with open(os.path.join(parts_dir, "layout.json")) as fh:
         layout = json.load(fh)
-    labels, weighted = layout["labels"], layout["weighted"]
-    target = max(1, int(layout["row_group_frames"]))
     chunks = []
     for path in glob.glob(os.path.join(parts_dir, "*.index.npz")):
         m = _CHUNK.search(os.path.basename(path))
         chunks.append((int(m.group(1)), int(m.group(2)), path[:-len(".index.npz")]))
     chunks.sort()
-    for kind, value_type in (("states", pa.int8()), ("angles", pa.float32())):
-        if kind == "angles" and not keep_angles:
-            continue
-        fields = [pa.field("replica", pa.int16()), pa.field("frame", pa.int64()),
-                  pa.field("time_ps", pa.float64())]
-        if weighted:
-            fields.append(pa.field("weight", pa.float64()))
-        schema = pa.schema(fields + [pa.field(label, value_type) for label in labels])
-        writer = pq.ParquetWriter(os.path.join(folder, f"{kind}.parquet"), schema)
+    for kind in ("states", "angles") if keep_angles else ("states",):
+        writer = TimeSeriesWriter(folder, layout["labels"], layout["weighted"], layout["row_group_frames"],
+                                  kinds=(kind,))
         try:
-            pending, n_pending, replica = [], 0, None
             for rep, _, stem in chunks:
-                if rep != replica and pending:
-                    writer.write_table(pa.concat_tables(pending), row_group_size=n_pending)
-                    pending, n_pending = [], 0
-                replica = rep
                 with np.load(stem + ".index.npz") as npz:
                     index = {k: npz[k] for k in npz.files}
-                values = np.load(f"{stem}.{kind}.npy", mmap_mode="r")
-                n = values.shape[1]
-                head = [pa.array(np.full(n, rep, dtype=np.int16)), pa.array(index["frame"]),
-                        pa.array(index["time_ps"])]
-                if weighted:
-                    head.append(pa.array(index["weight"]))
-                table = pa.Table.from_arrays(head + [pa.array(row) for row in values], schema=schema)
-                pending.append(table)
-                n_pending += n
-                while n_pending >= target:
-                    whole = pa.concat_tables(pending)
-                    writer.write_table(whole.slice(0, target), row_group_size=target)
-                    rest = whole.slice(target)
-                    pending, n_pending = ([rest], len(rest)) if len(rest) else ([], 0)
-            if pending:
-                writer.write_table(pa.concat_tables(pending), row_group_size=n_pending)
+                writer.add(rep, index, {kind: np.load(f"{stem}.{kind}.npy", mmap_mode="r")})
         finally:
             writer.close()
+
+
+class TimeSeriesWriter:
+    """``states.parquet`` (and ``angles.parquet``) written chunk by chunk, in replica and frame
+    order, regrouped into row groups of ``row_group_frames`` frames that never span two replicas.
+
+    Parameters
+    ----------
+    folder : str
+        Where the files go.
+    labels : list of str
+        Torsion labels (one column each after replica, frame, time_ps and, if ``weighted``, weight).
+    weighted : bool
+    row_group_frames : int
+    kinds : tuple of str
+        ``("states",)``, ``("angles",)`` or both.
+
+    :meth:`add` takes the index columns of a chunk and, per kind, its values as an array of shape
+    (n_torsions, n_frames) (int8 state codes, float32 degrees). Call :meth:`close` at the end
+    (also after an error: the files are then incomplete, and the caller removes them).
+    """
+
+    def __init__(self, folder, labels, weighted, row_group_frames, kinds=("states",)):
+        import pyarrow as pa
+
+        self._pa = pa
+        self.weighted = bool(weighted)
+        self.target = max(1, int(row_group_frames))
+        self._writers, self._schemas = {}, {}
+        for kind in kinds:
+            value_type = {"states": pa.int8(), "angles": pa.float32()}[kind]
+            fields = [pa.field("replica", pa.int16()), pa.field("frame", pa.int64()),
+                      pa.field("time_ps", pa.float64())]
+            if self.weighted:
+                fields.append(pa.field("weight", pa.float64()))
+            schema = pa.schema(fields + [pa.field(label, value_type) for label in labels])
+            self._schemas[kind] = schema
+            self._writers[kind] = pq.ParquetWriter(os.path.join(folder, f"{kind}.parquet"), schema)
+        self._pending = {kind: [] for kind in kinds}
+        self._n_pending = 0
+        self._replica = None
+
+    def add(self, replica, index, values):
+        """Append one chunk: ``index`` has ``frame``, ``time_ps`` (and ``weight``); ``values`` maps
+        each kind to an (n_torsions, n_frames) array."""
+        pa = self._pa
+        if replica != self._replica and self._n_pending:
+            self._write_pending()
+        self._replica = replica
+        n = len(index["frame"])
+        head = [pa.array(np.full(n, replica, dtype=np.int16)), pa.array(np.asarray(index["frame"])),
+                pa.array(np.asarray(index["time_ps"]))]
+        if self.weighted:
+            head.append(pa.array(np.asarray(index["weight"])))
+        for kind, pending in self._pending.items():
+            table = pa.Table.from_arrays(head + [pa.array(row) for row in values[kind]],
+                                         schema=self._schemas[kind])
+            pending.append(table)
+        self._n_pending += n
+        while self._n_pending >= self.target:
+            rest = 0
+            for kind, pending in self._pending.items():
+                whole = pa.concat_tables(pending)
+                self._writers[kind].write_table(whole.slice(0, self.target), row_group_size=self.target)
+                tail = whole.slice(self.target)
+                rest = len(tail)
+                self._pending[kind] = [tail] if rest else []
+            self._n_pending = rest
+
+    def _write_pending(self):
+        for kind, pending in self._pending.items():
+            if pending:
+                self._writers[kind].write_table(self._pa.concat_tables(pending), row_group_size=self._n_pending)
+            self._pending[kind] = []
+        self._n_pending = 0
+
+    def close(self):
+        """Write what is pending and close the files."""
+        try:
+            if self._n_pending:
+                self._write_pending()
+        finally:
+            for writer in self._writers.values():
+                writer.close()
+            self._writers = {}
 
 
 def read_table(path, columns=None):

@@ -267,6 +267,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     staging = prepare_output(out, overwrite) if out is not None else None
     scratch = None
     own_client = None
+    sink = None
     try:
         if staging is None:
             scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
@@ -300,12 +301,20 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             progress = backend == "serial" and sys.stderr.isatty()
         threads = _pass_threads(threads, backend)
         passes, replica_info = [], []
+        sink = None
+        if backend == "serial":   # chunks go straight into the Parquet files (no chunk files)
+            from .resultsdir import TimeSeriesWriter
+            from .trackpass import default_chunk_frames
+            if chunk_frames is None:
+                chunk_frames = default_chunk_frames(len(tset), keep_angles)
+            sink = TimeSeriesWriter(work, list(tset.labels), weights is not None, chunk_frames,
+                                    kinds=("states", "angles") if keep_angles else ("states",))
         for r, (u, traj, fr, w) in enumerate(zip(universes, trajectories, frames, weight_arrays)):
             say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
             tp = TorsionPass(u, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
                              bin_width_deg=bin_width_deg, weights=w, parts_dir=parts_dir,
                              keep_angles=keep_angles, chunk_frames=chunk_frames, replica=r, dt_ps=dt_ps,
-                             threads=threads)
+                             threads=threads, sink=sink)
             run_kwargs = dict(start=start, stop=stop, step=step)
             if backend == "serial":
                 run_kwargs.update(verbose=bool(progress),
@@ -333,7 +342,11 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg,
             temperature_k=temperature_k), notices, time.time() - t_start))
         from .resultsdir import merge_parts, write_results
-        merge_parts(parts_dir, work, keep_angles)
+        if sink is not None:
+            sink.close()
+            sink = None
+        else:
+            merge_parts(parts_dir, work, keep_angles)
         shutil.rmtree(parts_dir, ignore_errors=True)
         write_results(result, work)
         if staging is not None:
@@ -344,6 +357,11 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch = None
         return result
     finally:
+        if sink is not None:   # an error: close the half-written files (the folder is removed)
+            try:
+                sink.close()
+            except Exception:  # noqa: BLE001 - the original error matters
+                pass
         if own_client is not None:
             own_client.close()
         if staging is not None:

@@ -193,6 +193,9 @@ class TorsionPass(AnalysisBase):
         1: everything in the calling thread. 2: a second thread computes while the calling
         thread reads the next frames (the coordinates are copied into batches of frames; see
         *Overlap* above). Results are identical.
+    sink : dihedra.resultsdir.TimeSeriesWriter, optional
+        Serial runs only: chunks go straight to this writer (with ``threads=2``, from the second
+        thread) instead of chunk files in ``parts_dir``; its row groups must be ``chunk_frames``.
 
     Examples
     --------
@@ -212,7 +215,8 @@ class TorsionPass(AnalysisBase):
 
     def __init__(self, universe, torsion_set, scheme, *, n_state_blocks=64, n_hist_blocks=16,
                  bin_width_deg=1.0, weights=None, parts_dir=None, keep_angles=False,
-                 chunk_frames=None, replica=0, dt_ps=None, compiled=None, threads=1, verbose=False):
+                 chunk_frames=None, replica=0, dt_ps=None, compiled=None, threads=1, sink=None,
+                 verbose=False):
         super().__init__(universe.trajectory, verbose=verbose)
         self._universe = universe
         self.torsion_set = torsion_set
@@ -228,6 +232,7 @@ class TorsionPass(AnalysisBase):
         self.dt_ps = dt_ps
         self.compiled = compiled
         self.threads = int(threads)
+        self.sink = sink
 
     # -- parallel merge -------------------------------------------------------------------
     def _get_aggregator(self):
@@ -340,8 +345,7 @@ class TorsionPass(AnalysisBase):
         self._conf_rows, self._conf_wts = [], []
         # chunk buffers, at most as many rows as this worker has frames
         if self.chunk_frames is None:
-            per_frame = max(1, n_t) * (1 + 4 * self.keep_angles)
-            self.chunk_frames = int(max(64, min(100_000, CHUNK_BYTES // per_frame)))
+            self.chunk_frames = default_chunk_frames(n_t, self.keep_angles)
         cf = int(max(1, min(int(self.chunk_frames), self.n_frames)))
         self._buf_codes = np.empty((cf, n_t), dtype=np.int8)
         self._buf_angles = np.empty((cf, n_t), dtype=np.float32) if self.keep_angles else None
@@ -513,7 +517,7 @@ class TorsionPass(AnalysisBase):
         np.add.at(res.hist_block_weights, hblock, w)
         if self._conf_classes:
             self._count_conformers(codes, sblock, w)
-        if self.parts_dir is not None:
+        if self.parts_dir is not None or self.sink is not None:
             self._write_chunk(n)
         self._n_buf = 0
 
@@ -606,6 +610,20 @@ class TorsionPass(AnalysisBase):
 
     # -- chunk files -------------------------------------------------------------------------------
     def _write_chunk(self, n):
+        if self.sink is not None:   # a serial run: straight into the Parquet files
+            index = {"frame": self._buf_frame[:n].copy(), "time_ps": self._buf_time[:n].copy()}
+            if self.weights is not None:
+                index["weight"] = self.weights[self._buf_index[:n]]
+            values = {}
+            for kind, buf in (("states", self._buf_codes), ("angles", self._buf_angles)):
+                if buf is not None:
+                    values[kind] = np.empty((buf.shape[1], n), dtype=buf.dtype)
+                    if self._kernels is not None:
+                        self._kernels.transpose_into(buf[:n], values[kind])
+                    else:
+                        values[kind][:] = buf[:n].T
+            self.sink.add(self.replica, index, values)
+            return
         first = int(self._buf_index[0])
         stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{first:012d}")
         if not os.path.exists(os.path.join(self.parts_dir, LAYOUT_FILE)):
@@ -706,6 +724,12 @@ class _Overlap:
         if self._thread.is_alive():
             self._todo.put(None)
             self._thread.join()
+
+
+def default_chunk_frames(n_torsions, keep_angles):
+    """Frames per chunk (and Parquet row group): about ``CHUNK_BYTES`` of values, 64 to 100,000."""
+    per_frame = max(1, int(n_torsions)) * (1 + 4 * bool(keep_angles))
+    return int(max(64, min(100_000, CHUNK_BYTES // per_frame)))
 
 
 def _hist_part(block, dense):
