@@ -308,8 +308,12 @@ class TimeSeriesWriter:
             self._pending[kind] = []
         self._n_pending = 0
 
+    @property
+    def closed(self):
+        return not self._writers
+
     def close(self):
-        """Write what is pending and close the files."""
+        """Write what is pending and close the files (Arrow's pool then returns its free memory)."""
         try:
             if self._n_pending:
                 self._write_pending()
@@ -317,6 +321,8 @@ class TimeSeriesWriter:
             for writer in self._writers.values():
                 writer.close()
             self._writers = {}
+            self._pending = {kind: [] for kind in self._pending}
+            self._pa.default_memory_pool().release_unused()
 
 
 def read_table(path, columns=None):

@@ -332,6 +332,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
                 raise truncated_error(traj, u, exc) from None
             passes.append(tp)
             replica_info.append(_replica_info(u, traj, fr, tp, dt_ps))
+        if sink is not None:   # the last rows now, so that their buffers are gone before the tables
+            sink.close()
         result = _assemble(tset, scheme, passes, universes[0], replica_info, notices)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
             start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
@@ -342,10 +344,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg,
             temperature_k=temperature_k), notices, time.time() - t_start))
         from .resultsdir import merge_parts, write_results
-        if sink is not None:
-            sink.close()
-            sink = None
-        else:
+        if sink is None:
             merge_parts(parts_dir, work, keep_angles)
         shutil.rmtree(parts_dir, ignore_errors=True)
         write_results(result, work)
@@ -357,8 +356,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch = None
         return result
     finally:
-        if sink is not None:   # an error: close the half-written files (the folder is removed)
-            try:
+        if sink is not None and not sink.closed:   # an error: close the half-written files
+            try:                                       # (the folder is removed)
                 sink.close()
             except Exception:  # noqa: BLE001 - the original error matters
                 pass
