@@ -115,11 +115,13 @@ def _json_default(obj):
     return str(obj)
 
 
-def write_results(result, folder):
-    """Write every table, the block sums and the summary of a :class:`TrackResult`."""
+def write_results(result, folder, blocks=True):
+    """Write every table, the block sums (unless ``blocks=False``: written elsewhere) and the
+    summary of a :class:`TrackResult`."""
     for attr, name in TABLES.items():
         write_table(getattr(result, attr), folder, name)
-    save_npz(os.path.join(folder, "blocks.npz"), result.blocks, narrow=tuple(NARROWED))
+    if blocks:
+        save_npz(os.path.join(folder, "blocks.npz"), result.blocks, narrow=tuple(NARROWED))
     write_json(result.summary, folder, "summary.json")
 
 

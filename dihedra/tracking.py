@@ -267,7 +267,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     staging = prepare_output(out, overwrite) if out is not None else None
     scratch = None
     own_client = None
-    sink = None
+    sink = writer = None
     try:
         if staging is None:
             scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
@@ -332,9 +332,20 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
                 raise truncated_error(traj, u, exc) from None
             passes.append(tp)
             replica_info.append(_replica_info(u, traj, fr, tp, dt_ps))
-        if sink is not None:   # the last rows now, so that their buffers are gone before the tables
-            sink.close()
-        result = _assemble(tset, scheme, passes, universes[0], replica_info, notices)
+        # the time series and blocks.npz are written in a second thread (Arrow and zlib release
+        # Python's lock) while this one computes the populations and writes the tables
+        from .resultsdir import NARROWED, merge_parts, save_npz, write_results
+        blocks = _block_sums(passes)
+
+        def write_files():
+            if sink is not None:
+                sink.close()
+            else:
+                merge_parts(parts_dir, work, keep_angles)
+            shutil.rmtree(parts_dir, ignore_errors=True)
+            save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=tuple(NARROWED))
+        writer = _Background(write_files)
+        result = _assemble(tset, scheme, passes, universes[0], replica_info, notices, blocks)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
             start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
             backend=backend if isinstance(backend, str) else type(backend).__name__,
@@ -343,11 +354,9 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
             n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg,
             temperature_k=temperature_k), notices, time.time() - t_start))
-        from .resultsdir import merge_parts, write_results
-        if sink is None:
-            merge_parts(parts_dir, work, keep_angles)
-        shutil.rmtree(parts_dir, ignore_errors=True)
-        write_results(result, work)
+        write_results(result, work, blocks=False)
+        writer.join()
+        writer = None
         if staging is not None:
             result.folder = commit_output(staging, out)
             staging = None
@@ -356,6 +365,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch = None
         return result
     finally:
+        if writer is not None:   # an error: let the writing thread end before the folder goes
+            writer.thread.join()
         if sink is not None and not sink.closed:   # an error: close the half-written files
             try:                                       # (the folder is removed)
                 sink.close()
@@ -400,10 +411,30 @@ def _replica_info(universe, traj, frames, tp, dt_ps):
     }
 
 
-def _assemble(tset, scheme, passes, universe, replica_info, notices):
-    n_t = len(tset)
-    labels, types = tset.labels, tset.types
-    resnames = [t.resname for t in tset.torsions]
+class _Background:
+    """A function run in a thread; :meth:`join` waits for it and raises its error."""
+
+    def __init__(self, func):
+        import threading
+
+        self.error = None
+
+        def run():
+            try:
+                func()
+            except BaseException as exc:  # noqa: BLE001 - raised in the calling thread by join()
+                self.error = exc
+        self.thread = threading.Thread(target=run, name="dihedra-write", daemon=True)
+        self.thread.start()
+
+    def join(self):
+        self.thread.join()
+        if self.error is not None:
+            raise self.error
+
+
+def _block_sums(passes):
+    """The block sums of all replicas (the arrays of ``blocks.npz``)."""
     state_counts = np.concatenate([p.results.state_counts for p in passes])
     block_replica = np.concatenate([np.full(p.n_state_blocks, r) for r, p in enumerate(passes)])
     histograms = _stack_histograms(passes)
@@ -431,6 +462,16 @@ def _assemble(tset, scheme, passes, universe, replica_info, notices):
     conf_rows, conf_w = reduce_conformer_rows(np.vstack(rows), np.concatenate(wts))
     blocks["conformer_rows"] = conf_rows
     blocks["conformer_weights"] = conf_w
+    return blocks
+
+
+def _assemble(tset, scheme, passes, universe, replica_info, notices, blocks=None):
+    labels, types = tset.labels, tset.types
+    resnames = [t.resname for t in tset.torsions]
+    if blocks is None:
+        blocks = _block_sums(passes)
+    state_counts, block_replica = blocks["state_counts"], blocks["block_replica"]
+    conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
 
     pops = torsion_populations(state_counts, block_replica, labels, types, scheme.labels)
     by_type = pool_by_type(pops)

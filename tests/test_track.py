@@ -232,6 +232,20 @@ def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     assert os.listdir(tmp_path) == []
 
 
+def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
+    # blocks.npz and the time series are written in a second thread: its error is the run's error
+    (top, t0), _ = two_replicas
+    from dihedra import resultsdir
+
+    def full_disk(*args, **kwargs):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(resultsdir, "save_npz", full_disk)
+    with pytest.raises(OSError, match="No space left"):
+        track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"))
+    assert os.listdir(tmp_path) == []
+
+
 def test_simulated_rb_butane_populations_match_boltzmann_integral():
     # A united-atom butane gas simulated with OpenMM (example_trajectories/make_examples.py), RB torsion
     # and no 1-4 nonbonded terms: pooled anti/gauche populations agree with the Boltzmann integral of
