@@ -19,11 +19,11 @@ and prints the marginal cost per frame, ``(T(N) - T(1)) / (N - 1)``, of each as 
 of (a), in wall time and in CPU time (user + system of every process and thread involved; on a
 shared machine the CPU ratio of serial runs is the steadier one), with the peak memory (sum of
 the resident set sizes of the command's process tree, and of the cluster workers for (d), polled
-every 20 ms). (a) and (b) are also run over 2 N and 4 N frames: the peak memory of (b) at 1x, 2x
-and 4x the frames, the marginal cost at 4 N, ``(T(4N) - T(1)) / (4N - 1)``, and from the
-difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves out every cost that depends on
-the frame count only until the block sums are filled (conformer rows, table rows, compressed
-histogram size). The start-up (subtracted with T(1)) includes loading the compiled kernels from
+every 20 ms). Every run is also made over 4 N frames ((b) over 2 N too): the peak memory of (b)
+at 1x, 2x and 4x the frames, the marginal cost at 4 N, ``(T(4N) - T(1)) / (4N - 1)``, and from
+the difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves out most of the costs that
+depend on the frame count only until the block sums are filled (conformer rows, table rows,
+compressed histogram size). The start-up (subtracted with T(1)) includes loading the compiled kernels from
 numba's cache; the time to compile them with an empty cache (once per installation) is measured
 separately.
 

@@ -46,11 +46,13 @@ serial run hands its histogram array to the results without a copy.
 Per chunk
 ---------
 Block frame counts and the conformer counts (joint states of each group) are computed from the
-chunk buffer of codes (compiled loop). The chunk is written as a raw array file (one row per
-torsion) into ``parts_dir``; the parent process converts the chunk files, in frame order, into one
-Parquet file with row groups of ``chunk_frames`` frames, the same for any number of workers.
-Workers therefore never encode Parquet, and memory stays bounded by one chunk buffer and the
-block sums, whatever the number of frames.
+chunk buffer of codes (compiled loop). The chunk is transposed (one row per torsion) and either
+handed to a :class:`~dihedra.resultsdir.TimeSeriesWriter` (``sink``: serial runs, which thereby
+encode Parquet during the pass) or written as a raw array file into ``parts_dir`` (workers of
+parallel runs); the parent process converts the chunk files, in frame order, into the same
+Parquet file with row groups of ``chunk_frames`` frames, whatever the number of workers. Memory
+stays bounded by one chunk buffer, its transposed copy and the block sums, whatever the number of
+frames.
 
 Parallel runs
 -------------
@@ -175,9 +177,9 @@ class TorsionPass(AnalysisBase):
     weights : ndarray, optional
         One weight per analysed frame (in order), for reweighting biased runs.
     parts_dir : str, optional
-        Folder for the chunk files of the time series; ``None`` writes no time series. With a
-        distributed scheduler it must be on a file system that the workers and the calling
-        process share.
+        Folder for the chunk files of the time series; ``None`` (and no ``sink``) writes no time
+        series. With a distributed scheduler it must be on a file system that the workers and
+        the calling process share.
     keep_angles : bool
         Also write the angles (float32 degrees).
     chunk_frames : int, optional
