@@ -28,9 +28,9 @@ def add_track_options(parser):
     parser.add_argument("--workers", type=int, default=1, metavar="N",
                         help="worker processes (default 1); results equal a serial run")
     parser.add_argument("--threads", type=int, default=None, choices=[1, 2], metavar="N",
-                        help="threads of a serial run: 2 (the default when two cores are free for "
-                             "this process) computes while the other reads the trajectory; 1 stays "
-                             "on one core. Results are identical")
+                        help="threads of a serial run: 2 (the default when this process may use "
+                             "two or more cores): a second thread computes while the first reads "
+                             "the trajectory; 1 stays on one core. Results are identical")
     parser.add_argument("--backend", default=None, choices=["serial", "multiprocessing", "dask"],
                         help="parallel backend for --workers > 1 (default multiprocessing)")
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
