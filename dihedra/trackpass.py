@@ -485,13 +485,18 @@ class TorsionPass(AnalysisBase):
             return
         n_t = len(self.torsion_set)
         shape = (self.n_hist_blocks, n_t, int(round(360.0 / self.bin_width_deg)))
-        if len(parts) == 1 and parts[0][0] == 0 and parts[0][1].shape == shape:
+        if (len(parts) == 1 and parts[0][0] == 0 and isinstance(parts[0][1], np.ndarray)
+                and parts[0][1].shape == shape):
             res.histograms = parts[0][1]
             return
         hist = np.zeros(shape, dtype=np.float64 if self.weights is not None else np.int32)
         while parts:
             part = parts.pop()
-            if len(part) == 2:   # (first block, dense blocks)
+            if len(part) == 2 and isinstance(part[1], str):   # (block, file of a worker)
+                block, path = part
+                hist[block] += np.load(path, mmap_mode="r")
+                os.remove(path)
+            elif len(part) == 2:   # (first block, dense blocks)
                 lo, dense = part
                 hist[lo:lo + len(dense)] += dense
             else:                # (block, cells, values)
@@ -601,10 +606,21 @@ class TorsionPass(AnalysisBase):
             self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
         self._conf_rows, self._conf_wts = [], []
         if self._hb_lo > 0 or len(self._hist) < self.n_hist_blocks:
-            # a slice of a parallel run: its blocks travel back to the parent, as the non-empty
-            # cells where that is less than half the bytes of the dense block
-            self.results.hist_parts = [part for b in range(len(self._hist))
-                                       for part in _hist_part(self._hb_lo + b, self._hist[b])]
+            # a slice of a parallel run: its blocks travel back to the parent, through files in
+            # parts_dir when there is one (written to the page cache, no pickling), else as the
+            # non-empty cells where that is less than half the bytes of the dense block
+            if self.parts_dir is not None and len(self._global_index):
+                first = int(self._global_index[0])
+                parts = []
+                for b in range(len(self._hist)):
+                    path = os.path.join(self.parts_dir, f"replica{self.replica:04d}-hist{self._hb_lo + b:04d}"
+                                                        f"-from{first:012d}.npy")
+                    np.save(path, self._hist[b])
+                    parts.append((self._hb_lo + b, path))
+                self.results.hist_parts = parts
+            else:
+                self.results.hist_parts = [part for b in range(len(self._hist))
+                                           for part in _hist_part(self._hb_lo + b, self._hist[b])]
         self._hist = None
         self._buf_codes = self._buf_angles = self._bins = self._angle_rows = self._bonds = None
         self._one_frame = self._staged = None

@@ -321,3 +321,26 @@ def test_default_threads_follow_the_usable_cores(monkeypatch):
     assert tracking._pass_threads(None, "serial") == 1
     with pytest.raises(ValueError, match="threads must be 1 or 2"):
         tracking._pass_threads(3, "serial")
+
+
+@pytest.mark.parametrize("with_parts_dir", [True, False])
+def test_histogram_blocks_of_workers_through_files_or_cells_equal_serial(replicas, tmp_path, with_parts_dir):
+    # the workers' histogram blocks come back as files in parts_dir (or, without one, as the
+    # non-empty cells of each block); either way the sums equal a serial pass
+    import MDAnalysis as mda
+
+    from dihedra.torsions import select_torsions
+    from dihedra.trackpass import TorsionPass
+
+    top, trajs, _ = replicas
+    u = mda.Universe(top, trajs[0])
+    tset = select_torsions(u, "rotatable")
+    scheme = get_scheme("anti-gauche")
+    ref = TorsionPass(u, tset, scheme).run()
+    parts = tmp_path / "parts"
+    parts.mkdir()
+    par = TorsionPass(u, tset, scheme, parts_dir=str(parts) if with_parts_dir else None)
+    par.run(backend="multiprocessing", n_workers=3)
+    np.testing.assert_array_equal(par.results.histograms, ref.results.histograms)
+    np.testing.assert_array_equal(par.results.state_counts, ref.results.state_counts)
+    assert not [f for f in os.listdir(parts) if "-hist" in f]   # read and removed by the parent
