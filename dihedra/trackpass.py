@@ -243,6 +243,7 @@ class TorsionPass(AnalysisBase):
             "state_counts": s, "block_frames": s, "block_weights": s,
             "hist_block_frames": s, "hist_block_weights": s, "undefined": s,
             "hist_parts": ResultsGroup.flatten_sequence,
+            "conformer_parts": ResultsGroup.flatten_sequence,
             "conformer_counts": ResultsGroup.ndarray_vstack,
             "conformer_weights": ResultsGroup.ndarray_hstack,
             "parts": ResultsGroup.flatten_sequence,
@@ -306,6 +307,7 @@ class TorsionPass(AnalysisBase):
         res.hist_parts = [(self._hb_lo, self._hist)]
         res.conformer_counts = np.empty((0, 4), dtype=np.int64)
         res.conformer_weights = np.empty(0, dtype=np.float64)
+        res.conformer_parts = []
         res.parts = []
         # per-frame work: geometry, bin -> state table, the scheme's exact rule for mixed bins
         self._geometry = TorsionGeometry(self.torsion_set.indices, compiled=self.compiled)
@@ -478,8 +480,20 @@ class TorsionPass(AnalysisBase):
         self._undefined += ~ok
 
     def _conclude(self):
-        # dense histograms of every worker (a serial run hands over its array without a copy)
         res = self.results
+        # conformer rows that workers wrote to files: read, joined and summed where two workers
+        # counted the same block
+        rows, wts = [res.conformer_counts], [res.conformer_weights]
+        for rows_path, wts_path in res.pop("conformer_parts", None) or []:
+            rows.append(np.load(rows_path))
+            wts.append(np.load(wts_path))
+            os.remove(rows_path)
+            os.remove(wts_path)
+        # (rows of a serial run are sorted and unique already: nothing to do)
+        if len(rows) > 1:
+            rows, wts = [np.vstack(rows)], [np.concatenate(wts)]
+        res.conformer_counts, res.conformer_weights = reduce_conformer_rows(rows[0], wts[0])
+        # dense histograms of every worker (a serial run hands over its array without a copy)
         parts = res.pop("hist_parts", None)
         if parts is None:
             return
@@ -600,21 +614,31 @@ class TorsionPass(AnalysisBase):
             self._conf_rows.append(rows)
             self._conf_wts.append(wts.reshape(-1)[nz] if weighted else rows[:, 3].astype(np.float64))
         self._conf_dense = {}
+        # a slice of a parallel run hands its large sums back to the parent through files in
+        # parts_dir when there is one (written to the page cache, no pickling)
+        parallel = self._hb_lo > 0 or len(self._hist) < self.n_hist_blocks
+        stem = None
+        if parallel and self.parts_dir is not None and len(self._global_index):
+            stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{int(self._global_index[0]):012d}")
         if self._conf_rows:
             rows = np.vstack(self._conf_rows)
             wts = np.concatenate(self._conf_wts)
-            self.results.conformer_counts, self.results.conformer_weights = reduce_conformer_rows(rows, wts)
+            rows, wts = reduce_conformer_rows(rows, wts)
+            if stem is not None:
+                paths = (stem + ".conformer_rows.npy", stem + ".conformer_weights.npy")
+                np.save(paths[0], rows)
+                np.save(paths[1], wts)
+                self.results.conformer_parts = [paths]
+            else:
+                self.results.conformer_counts, self.results.conformer_weights = rows, wts
         self._conf_rows, self._conf_wts = [], []
-        if self._hb_lo > 0 or len(self._hist) < self.n_hist_blocks:
-            # a slice of a parallel run: its blocks travel back to the parent, through files in
-            # parts_dir when there is one (written to the page cache, no pickling), else as the
-            # non-empty cells where that is less than half the bytes of the dense block
-            if self.parts_dir is not None and len(self._global_index):
-                first = int(self._global_index[0])
+        if parallel:
+            # histogram blocks: files, or the non-empty cells where that is less than half the
+            # bytes of the dense block
+            if stem is not None:
                 parts = []
                 for b in range(len(self._hist)):
-                    path = os.path.join(self.parts_dir, f"replica{self.replica:04d}-hist{self._hb_lo + b:04d}"
-                                                        f"-from{first:012d}.npy")
+                    path = f"{stem}.hist{self._hb_lo + b:04d}.npy"
                     np.save(path, self._hist[b])
                     parts.append((self._hb_lo + b, path))
                 self.results.hist_parts = parts

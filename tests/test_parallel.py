@@ -324,9 +324,9 @@ def test_default_threads_follow_the_usable_cores(monkeypatch):
 
 
 @pytest.mark.parametrize("with_parts_dir", [True, False])
-def test_histogram_blocks_of_workers_through_files_or_cells_equal_serial(replicas, tmp_path, with_parts_dir):
-    # the workers' histogram blocks come back as files in parts_dir (or, without one, as the
-    # non-empty cells of each block); either way the sums equal a serial pass
+def test_block_sums_of_workers_through_files_or_pickles_equal_serial(replicas, tmp_path, with_parts_dir):
+    # the workers' histogram blocks and conformer rows come back as files in parts_dir (or,
+    # without one, pickled: non-empty cells of each block); either way the sums equal a serial pass
     import MDAnalysis as mda
 
     from dihedra.torsions import select_torsions
@@ -343,4 +343,7 @@ def test_histogram_blocks_of_workers_through_files_or_cells_equal_serial(replica
     par.run(backend="multiprocessing", n_workers=3)
     np.testing.assert_array_equal(par.results.histograms, ref.results.histograms)
     np.testing.assert_array_equal(par.results.state_counts, ref.results.state_counts)
-    assert not [f for f in os.listdir(parts) if "-hist" in f]   # read and removed by the parent
+    np.testing.assert_array_equal(par.results.conformer_counts, ref.results.conformer_counts)
+    np.testing.assert_array_equal(par.results.conformer_weights, ref.results.conformer_weights)
+    # files of the workers are read and removed by the parent
+    assert not [f for f in os.listdir(parts) if ".hist" in f or "conformer" in f]
