@@ -301,7 +301,6 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             progress = backend == "serial" and sys.stderr.isatty()
         threads = _pass_threads(threads, backend)
         passes, replica_info = [], []
-        sink = None
         if backend == "serial":   # chunks go straight into the Parquet files (no chunk files)
             from .resultsdir import TimeSeriesWriter
             from .trackpass import default_chunk_frames
@@ -345,7 +344,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             shutil.rmtree(parts_dir, ignore_errors=True)
             save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=tuple(NARROWED))
         writer = _Background(write_files)
-        result = _assemble(tset, scheme, passes, universes[0], replica_info, notices, blocks)
+        result = _assemble(tset, scheme, universes[0], notices, blocks)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
             start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
             backend=backend if isinstance(backend, str) else type(backend).__name__,
@@ -465,11 +464,10 @@ def _block_sums(passes):
     return blocks
 
 
-def _assemble(tset, scheme, passes, universe, replica_info, notices, blocks=None):
+def _assemble(tset, scheme, universe, notices, blocks):
+    """Populations, conformers and the torsion table from the block sums (:func:`_block_sums`)."""
     labels, types = tset.labels, tset.types
     resnames = [t.resname for t in tset.torsions]
-    if blocks is None:
-        blocks = _block_sums(passes)
     state_counts, block_replica = blocks["state_counts"], blocks["block_replica"]
     conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
 

@@ -659,11 +659,8 @@ class TorsionPass(AnalysisBase):
             values = {}
             for kind, buf in (("states", self._buf_codes), ("angles", self._buf_angles)):
                 if buf is not None:
-                    values[kind] = np.empty((buf.shape[1], n), dtype=buf.dtype)
-                    if self._kernels is not None:
-                        self._kernels.transpose_into(buf[:n], values[kind])
-                    else:
-                        values[kind][:] = buf[:n].T
+                    values[kind] = _transpose(buf[:n], np.empty((buf.shape[1], n), dtype=buf.dtype),
+                                              self._kernels)
             self.sink.add(self.replica, index, values)
             return
         first = int(self._buf_index[0])
@@ -783,6 +780,15 @@ def _hist_part(block, dense):
     return [(block, dense[None])]
 
 
+def _transpose(src, dst, kernels=None):
+    """``dst[:] = src.T`` (the compiled tile loop when ``kernels`` is given); returns ``dst``."""
+    if kernels is not None:
+        kernels.transpose_into(src, dst)
+    else:
+        dst[:] = src.T
+    return dst
+
+
 def _save_transposed(path, block, tile=1024, kernels=None):
     """``np.save(path, block.T)`` written tile by tile: a contiguous row per column of ``block``,
     without a transposed copy of the whole block in memory (with the compiled kernels, the
@@ -793,12 +799,7 @@ def _save_transposed(path, block, tile=1024, kernels=None):
         np.lib.format.write_array_header_1_0(
             fh, {"descr": np.lib.format.dtype_to_descr(block.dtype), "fortran_order": False, "shape": (m, n)})
         for lo in range(0, m, tile):
-            part, dst = block[:, lo:lo + tile], out[:min(tile, m - lo)]
-            if kernels is not None:
-                kernels.transpose_into(part, dst)
-            else:
-                dst[:] = part.T
-            dst.tofile(fh)
+            _transpose(block[:, lo:lo + tile], out[:min(tile, m - lo)], kernels).tofile(fh)
 
 
 def _joint_cells(codes, members, powers, size):
