@@ -267,7 +267,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     staging = prepare_output(out, overwrite) if out is not None else None
     scratch = None
     own_client = None
-    sink = writer = None
+    sink, writers = None, []
     try:
         if staging is None:
             scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
@@ -331,19 +331,20 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
                 raise truncated_error(traj, u, exc) from None
             passes.append(tp)
             replica_info.append(_replica_info(u, traj, fr, tp, dt_ps))
-        # the time series and blocks.npz are written in a second thread (Arrow and zlib release
+        # the time series and blocks.npz are written in two more threads (Arrow and zlib release
         # Python's lock) while this one computes the populations and writes the tables
         from .resultsdir import NARROWED, merge_parts, save_npz, write_results
         blocks = _block_sums(passes)
 
-        def write_files():
+        def write_series():
             if sink is not None:
                 sink.close()
             else:
                 merge_parts(parts_dir, work, keep_angles)
             shutil.rmtree(parts_dir, ignore_errors=True)
-            save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=tuple(NARROWED))
-        writer = _Background(write_files)
+        writers = [_Background(write_series),
+                   _Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
+                                                narrow=tuple(NARROWED)))]
         result = _assemble(tset, scheme, universes[0], notices, blocks)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
             start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
@@ -354,8 +355,9 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg,
             temperature_k=temperature_k), notices, time.time() - t_start))
         write_results(result, work, blocks=False)
-        writer.join()
-        writer = None
+        for w in writers:
+            w.join()
+        writers = []
         if staging is not None:
             result.folder = commit_output(staging, out)
             staging = None
@@ -364,8 +366,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch = None
         return result
     finally:
-        if writer is not None:   # an error: let the writing thread end before the folder goes
-            writer.thread.join()
+        for w in writers:   # an error: let the writing threads end before the folder goes
+            w.thread.join()
         if sink is not None and not sink.closed:   # an error: close the half-written files
             try:                                       # (the folder is removed)
                 sink.close()

@@ -232,15 +232,18 @@ def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     assert os.listdir(tmp_path) == []
 
 
-def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
-    # blocks.npz and the time series are written in a second thread: its error is the run's error
+@pytest.mark.parametrize("target", ["save_npz", "TimeSeriesWriter.close"])
+def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_replicas, tmp_path, monkeypatch,
+                                                                           target):
+    # blocks.npz and the time series are written in other threads: their error is the run's error
     (top, t0), _ = two_replicas
     from dihedra import resultsdir
 
     def full_disk(*args, **kwargs):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(resultsdir, "save_npz", full_disk)
+    owner, name = (resultsdir, target) if "." not in target else (resultsdir.TimeSeriesWriter, "close")
+    monkeypatch.setattr(owner, name, full_disk)
     with pytest.raises(OSError, match="No space left"):
         track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"))
     assert os.listdir(tmp_path) == []
