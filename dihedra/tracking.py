@@ -331,7 +331,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
                 raise truncated_error(traj, u, exc) from None
             passes.append(tp)
             replica_info.append(_replica_info(u, traj, fr, tp, dt_ps))
-        # the time series and blocks.npz are written in two more threads (Arrow and zlib release
+        # the time series and blocks.npz are written in other threads (Arrow and zlib release
         # Python's lock) while this one computes the populations and writes the tables
         from .resultsdir import NARROWED, merge_parts, save_npz, write_results
         blocks = _block_sums(passes)
@@ -342,9 +342,14 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             else:
                 merge_parts(parts_dir, work, keep_angles)
             shutil.rmtree(parts_dir, ignore_errors=True)
-        writers = [_Background(write_series),
-                   _Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
-                                                narrow=tuple(NARROWED)))]
+
+        def write_blocks():
+            save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=tuple(NARROWED))
+        if sink is not None:   # serial: only the last row group is left; one thread, one after
+            # the other, so that its buffers are gone before the histograms are converted
+            writers = [_Background(lambda: (write_series(), write_blocks()))]
+        else:                  # parallel: all the workers' chunks to convert; side by side
+            writers = [_Background(write_series), _Background(write_blocks)]
         result = _assemble(tset, scheme, universes[0], notices, blocks)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
             start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
