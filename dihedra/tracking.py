@@ -345,9 +345,10 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
 
         def write_blocks():
             save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=tuple(NARROWED))
-        if sink is not None:   # serial: only the last row group is left; one thread, one after
-            # the other, so that its buffers are gone before the histograms are converted
-            writers = [_Background(lambda: (write_series(), write_blocks()))]
+        if sink is not None:   # serial: only the last row group is left; written now, so that
+            # its buffers are gone before the tables and the histograms take their memory
+            write_series()
+            writers = [_Background(write_blocks)]
         else:                  # parallel: all the workers' chunks to convert; side by side
             writers = [_Background(write_series), _Background(write_blocks)]
         result = _assemble(tset, scheme, universes[0], notices, blocks)
