@@ -1456,11 +1456,14 @@ def _replica_blocks(path, labels, batch_frames=None):
     """
     import pyarrow.parquet as pq
 
-    pf = pq.ParquetFile(path)
+    from .resultsdir import series_files
+
     n = max(1, len(labels))
     batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // n)
     step = min(batch, max(1, CHUNK_VALUES // n))
-    for rb in pf.iter_batches(batch_size=batch, columns=["replica", *labels]):
+    batches = (rb for name in series_files(path)
+               for rb in pq.ParquetFile(name).iter_batches(batch_size=batch, columns=["replica", *labels]))
+    for rb in batches:
         rep = rb.column("replica").to_numpy()
         cols = [rb.column(name) for name in labels]
         dtype = cols[0].type.to_pandas_dtype() if cols else np.int8

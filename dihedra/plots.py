@@ -438,13 +438,13 @@ def read_angle_series(folder, torsions, max_points=4000, batch_frames=None):
 
 
 def _check_columns(path, columns):
-    import pyarrow.parquet as pq
+    from .resultsdir import series_schema
 
-    names = set(pq.ParquetFile(path).schema_arrow.names)
+    all_names = series_schema(path).names
+    names = set(all_names)
     missing = [c for c in columns if c not in names]
     if missing:
-        some = [n for n in pq.ParquetFile(path).schema_arrow.names if n not in ("replica", "frame", "time_ps",
-                                                                                 "weight")][:3]
+        some = [n for n in all_names if n not in ("replica", "frame", "time_ps", "weight")][:3]
         raise DihedraError(f"no torsion {missing[0]!r} in {os.path.basename(path)}; torsion labels look like "
                            f"{', '.join(some)} (see torsions.csv).")
 

@@ -371,7 +371,7 @@ def test_clear_errors(two_replicas, tmp_path, capsys):
     # no angles.parquet: say how to get them
     copy = str(tmp_path / "noangles")
     shutil.copytree(folder, copy)
-    os.remove(os.path.join(copy, "angles.parquet"))
+    shutil.rmtree(os.path.join(copy, "angles.parquet"))
     with pytest.raises(DihedraError, match="--keep-angles"):
         kinetics(copy, write=False)
     assert main(["kinetics", copy]) == 2

@@ -11,6 +11,8 @@ import pytest
 
 from conftest import place_fourth, write_system
 from dihedra.errors import DihedraError
+from dihedra import resultsdir
+from dihedra.resultsdir import series_files
 from dihedra.schemes import get_scheme
 from dihedra.tracking import track
 
@@ -89,11 +91,30 @@ def assert_same(a, b):
         pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
     pd.testing.assert_frame_equal(a.states(), b.states())
     pd.testing.assert_frame_equal(a.angles(), b.angles())
-    # the same Parquet row groups, whatever the number of workers
+    # the same Parquet files and row groups, whatever the number of workers
     for kind in ("states", "angles"):
-        fa, fb = (pq.ParquetFile(r._path(kind)) for r in (a, b))
-        assert [fa.metadata.row_group(k).num_rows for k in range(fa.num_row_groups)] == \
-               [fb.metadata.row_group(k).num_rows for k in range(fb.num_row_groups)]
+        fa, fb = ([pq.ParquetFile(f) for f in series_files(r._path(kind))] for r in (a, b))
+        assert [os.path.basename(f) for f in series_files(a._path(kind))] == \
+               [os.path.basename(f) for f in series_files(b._path(kind))]
+        assert [[f.metadata.row_group(k).num_rows for k in range(f.num_row_groups)] for f in fa] == \
+               [[f.metadata.row_group(k).num_rows for k in range(f.num_row_groups)] for f in fb]
+
+
+def test_time_series_start_new_files(replicas, serial, monkeypatch):
+    # Arrow's writer keeps the metadata of every row group until its file closes, so a long run
+    # starts a new file every COLUMN_CHUNKS_PER_FILE column chunks; here every row group (the
+    # serial run and the conversion of the workers' chunks both go through TimeSeriesWriter)
+    monkeypatch.setattr(resultsdir, "COLUMN_CHUNKS_PER_FILE", 1)
+    top, trajs, _ = replicas
+    split = track(top, trajs, **KW)
+    files = series_files(split._path("states"))
+    assert len(files) > 2
+    assert [pq.ParquetFile(f).num_row_groups for f in files] == [1] * len(files)
+    # the same table as in one file, also read back in chunks
+    pd.testing.assert_frame_equal(split.states(), serial.states())
+    pd.testing.assert_frame_equal(split.angles(), serial.angles())
+    pd.testing.assert_frame_equal(pd.concat(list(split.iter_states()), ignore_index=True), serial.states())
+    assert_same(split, track(top, trajs, workers=2, **KW))
 
 
 @pytest.mark.parametrize("backend", ["multiprocessing", "dask"])
