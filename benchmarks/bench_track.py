@@ -5,7 +5,8 @@ chains by default: 30,000 atoms, 15,000 C-C-C-C torsions (``rotatable``), an XTC
 (N = ``--frames``, default 1000) with atoms wrapped into the box one by one, torsions that hop
 between anti and gauche and a PDB topology with CONECT bonds. Then it runs, each command in a
 fresh process, over the first frame only and over N frames, every run ``--repeat`` times (the
-fastest kept, as the machine may be shared):
+fastest kept, as the machine may be shared; in rounds, each round running every command once, so
+that a slow spell of the machine touches all kinds alike):
 
 (a) bare MDAnalysis iteration reading the coordinates (the I/O floor);
 (b) ``dihedra track`` serial, as a user runs it: one process; on a machine with two usable
@@ -40,6 +41,7 @@ Run from the repository root::
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import subprocess
@@ -346,43 +348,43 @@ def main(argv=None):
     measure(track_cmd(1), env=env)
     runs = {}
 
-    def run(name, cmd, extra_pids=(), repeat=args.repeat, run_env=env):
-        for _ in range(repeat):
-            r = measure(cmd, extra_pids=extra_pids, env=run_env)
-            best = runs.setdefault(name, dict(r))
-            for key in r:
-                best[key] = min(best[key], r[key])
-            print(f"  {name:<10} wall {r['wall_s']:8.2f} s  cpu {r['cpu_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB"
-                  f"  (load {os.getloadavg()[0]:.2f})", flush=True)
-        return runs[name]
+    def record(name, r):
+        best = runs.setdefault(name, dict(r))
+        for key in r:
+            best[key] = min(best[key], r[key])
+        print(f"  {name:<10} wall {r['wall_s']:8.2f} s  cpu {r['cpu_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB"
+              f"  (load {os.getloadavg()[0]:.2f})", flush=True)
 
     plan = [("a", lambda k: floor_cmd(k)), ("b", lambda k: track_cmd(k))]
     if "b1" not in args.skip:
         plan.append(("b1", lambda k: track_cmd(k, "--threads", "1")))
     if "c" not in args.skip:
         plan.append(("c", lambda k: track_cmd(k, "--workers", "2")))
-    for kind, cmd in plan:
-        # start-up of a parallel run: one frame per worker, so that every worker starts (with
-        # one frame, MDAnalysis gives the whole run to one worker)
-        run(f"{kind}:1", cmd(START_FRAMES.get(kind, 1)))
-        run(f"{kind}:N", cmd(n))
-    if "d" not in args.skip:
-        from distributed import Client, LocalCluster
-        with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                          dashboard_address=None) as cluster, Client(cluster) as client:
+    with contextlib.ExitStack() as stack:
+        if "d" not in args.skip:
+            from distributed import Client, LocalCluster
+            cluster = stack.enter_context(LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                                       host="127.0.0.1", dashboard_address=None))
+            client = stack.enter_context(Client(cluster))
             pids = list(client.run(os.getpid).values())
             measure(track_cmd(1, "--scheduler", cluster.scheduler_address), env=env)  # workers import
-            run("d:1", track_cmd(START_FRAMES["d"], "--scheduler", cluster.scheduler_address), pids)
-            run("d:N", track_cmd(n, "--scheduler", cluster.scheduler_address), pids)
-            if "memory" not in args.skip:
-                run("d:4N", track_cmd(4 * n, "--scheduler", cluster.scheduler_address), pids)
-    if "memory" not in args.skip:
-        run("a:4N", floor_cmd(4 * n))
-        run("b:2N", track_cmd(2 * n), repeat=1)
-        run("b:4N", track_cmd(4 * n))
-        # the other runs over 4 N frames too: their cost per frame from two lengths
-        for kind, cmd in plan[2:]:
-            run(f"{kind}:4N", cmd(4 * n))
+            plan.append(("d", lambda k: track_cmd(k, "--scheduler", cluster.scheduler_address)))
+        # every run once per round, the rounds one after another: a slow spell of the machine
+        # then touches every kind alike instead of all repeats of one
+        lengths = ["1", "N"] + (["4N"] if "memory" not in args.skip else [])
+        frames_of = {"N": n, "2N": 2 * n, "4N": 4 * n}
+        jobs = []
+        for kind, cmd in plan:
+            for length in lengths:
+                # start-up of a parallel run: one frame per worker, so that every worker starts
+                # (with one frame, MDAnalysis gives the whole run to one worker)
+                k = START_FRAMES.get(kind, 1) if length == "1" else frames_of[length]
+                jobs.append((f"{kind}:{length}", cmd(k), pids if kind == "d" else ()))
+        for round_ in range(args.repeat):
+            for name, cmd, extra in jobs:
+                record(name, measure(cmd, extra_pids=extra, env=env))
+            if round_ == 0 and "memory" not in args.skip:
+                record("b:2N", measure(track_cmd(2 * n), env=env))
     alone = None
     if "alone" not in args.skip:
         alone = pass_alone(top, xtc, n, max(3, args.repeat), py, env)

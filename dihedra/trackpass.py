@@ -43,16 +43,19 @@ conformer counts of every state block are dense too (int32 per block, group and 
 unless a class of groups has too many joint states (then sorted rows of the current block). A
 serial run hands its histogram array to the results without a copy.
 
-Per chunk
----------
-Block frame counts and the conformer counts (joint states of each group) are computed from the
-chunk buffer of codes (compiled loop). The chunk is transposed (one row per torsion) and either
-handed to a :class:`~dihedra.resultsdir.TimeSeriesWriter` (``sink``: serial runs, which thereby
-encode Parquet during the pass) or written as a raw array file into ``parts_dir`` (workers of
-parallel runs); the parent process converts the chunk files, in frame order, into the same
-Parquet file with row groups of ``chunk_frames`` frames, whatever the number of workers. Memory
-stays bounded by one chunk buffer, its transposed copy and the block sums, whatever the number of
-frames.
+Every 256 frames and per chunk
+------------------------------
+The fine bins, codes (and angles) of the last 256 frames are buffered one row per frame; when
+the buffer is full, the bins go into the histograms, the joint states of each conformer group
+into the conformer counts (compiled loop), and the codes (and angles) are transposed into the
+chunk buffer, one row per torsion, as the time series store them. All of it runs where the
+frames are processed (with ``threads=2``, in the second thread, while the first reads on). A full
+chunk is either handed to a :class:`~dihedra.resultsdir.TimeSeriesWriter` (``sink``: serial runs,
+which thereby encode Parquet during the pass) or written as a raw array file into ``parts_dir``
+(workers of parallel runs); the parent process converts the chunk files, in frame order, into
+the same Parquet files with row groups of ``chunk_frames`` frames, whatever the number of
+workers. Memory stays bounded by the chunk buffer, the 256-frame buffers and the block sums,
+whatever the number of frames.
 
 Parallel runs
 -------------
@@ -351,8 +354,13 @@ class TorsionPass(AnalysisBase):
         if self.chunk_frames is None:
             self.chunk_frames = default_chunk_frames(n_t, self.keep_angles)
         cf = int(max(1, min(int(self.chunk_frames), self.n_frames)))
-        self._buf_codes = np.empty((cf, n_t), dtype=np.int8)
-        self._buf_angles = np.empty((cf, n_t), dtype=np.float32) if self.keep_angles else None
+        # codes (and angles) of the buffered frames, one row per frame, beside the fine bins;
+        # when the buffer is full they are counted and transposed into the chunk: one row per
+        # torsion, as the time series files store them
+        self._stage_codes = np.empty((nf, n_t), dtype=np.int8)
+        self._stage_angles = np.empty((nf, n_t), dtype=np.float32) if self.keep_angles else None
+        self._chunk_codes = np.empty((n_t, cf), dtype=np.int8)
+        self._chunk_angles = np.empty((n_t, cf), dtype=np.float32) if self.keep_angles else None
         self._buf_frame = np.empty(cf, dtype=np.int64)
         self._buf_time = np.empty(cf, dtype=np.float64)
         self._buf_index = np.empty(cf, dtype=np.int64)
@@ -393,21 +401,21 @@ class TorsionPass(AnalysisBase):
     def _process(self, batch):
         """Frames of a batch, in order, split where the histogram buffer or the chunk fills."""
         done = 0
-        n_hist, n_chunk = len(self._bins), len(self._buf_codes)
+        n_stage, n_chunk = len(self._bins), len(self._buf_frame)
         while done < batch.n:
-            m = min(batch.n - done, n_hist - self._n_bins_buf, n_chunk - self._n_buf)
+            m = min(batch.n - done, n_stage - self._n_bins_buf, n_chunk - self._n_buf)
             self._process_frames(batch, done, m)
             done += m
-            if self._n_bins_buf == n_hist:
-                self._add_histograms()
+            if self._n_bins_buf == n_stage:
+                self._drain()
             if self._n_buf == n_chunk:
                 self._flush()
 
     def _process_frames(self, batch, lo, m):
         row, nb = self._n_buf, self._n_bins_buf
         i = batch.index[lo:lo + m]
-        bins, codes = self._bins[nb:nb + m], self._buf_codes[row:row + m]
-        deg = self._angle_rows[:m] if self._buf_angles is None else self._buf_angles[row:row + m]
+        bins, codes = self._bins[nb:nb + m], self._stage_codes[nb:nb + m]
+        deg = self._angle_rows[:m] if self._stage_angles is None else self._stage_angles[nb:nb + m]
         weight, sblock = self._frame_weight[i], self._frame_sblock[i]
         if self._kernels is not None:
             boxes = self._box_rows(batch.dimensions[lo:lo + m])
@@ -443,6 +451,24 @@ class TorsionPass(AnalysisBase):
                 cells[f] = h if h is not None else 0.0
                 self._box_keys[f] = key
         return tuple(a[:m] for a in self._boxes)
+
+    def _drain(self):
+        """The buffered frames: fine bins into the histograms, joint states into the conformer
+        counts, codes (and angles) transposed into the chunk."""
+        m = self._n_bins_buf
+        if m == 0:
+            return
+        self._add_histograms()
+        r1 = self._n_buf
+        r0 = r1 - m
+        gi = self._buf_index[r0:r1]
+        if self._conf_classes:
+            w = np.ones(m) if self.weights is None else self.weights[gi]
+            self._count_conformers(self._stage_codes[:m], gi * self.n_state_blocks // max(1, self._n_total), w)
+        _transpose(self._stage_codes[:m], self._chunk_codes[:, r0:r1], self._kernels)
+        if self._stage_angles is not None:
+            _transpose(self._stage_angles[:m], self._chunk_angles[:, r0:r1], self._kernels)
+        self._n_bins_buf = 0
 
     def _add_histograms(self):
         """Add the fine bins of the buffered frames to the histograms."""
@@ -524,8 +550,7 @@ class TorsionPass(AnalysisBase):
         n = getattr(self, "_n_buf", 0)
         if n == 0:
             return
-        self._add_histograms()
-        codes = self._buf_codes[:n]
+        self._drain()
         gi = self._buf_index[:n]
         total = max(1, self._n_total)
         sblock = gi * self.n_state_blocks // total
@@ -536,8 +561,6 @@ class TorsionPass(AnalysisBase):
         np.add.at(res.block_weights, sblock, w)
         np.add.at(res.hist_block_frames, hblock, 1)
         np.add.at(res.hist_block_weights, hblock, w)
-        if self._conf_classes:
-            self._count_conformers(codes, sblock, w)
         if self.parts_dir is not None or self.sink is not None:
             self._write_chunk(n)
         self._n_buf = 0
@@ -646,7 +669,8 @@ class TorsionPass(AnalysisBase):
                 self.results.hist_parts = [part for b in range(len(self._hist))
                                            for part in _hist_part(self._hb_lo + b, self._hist[b])]
         self._hist = None
-        self._buf_codes = self._buf_angles = self._bins = self._angle_rows = self._bonds = None
+        self._stage_codes = self._stage_angles = self._chunk_codes = self._chunk_angles = None
+        self._bins = self._angle_rows = self._bonds = None
         self._one_frame = self._staged = None
         self._geometry = self._kernels = None   # modules do not pickle (results go back to the parent)
 
@@ -656,11 +680,11 @@ class TorsionPass(AnalysisBase):
             index = {"frame": self._buf_frame[:n].copy(), "time_ps": self._buf_time[:n].copy()}
             if self.weights is not None:
                 index["weight"] = self.weights[self._buf_index[:n]]
-            values = {}
-            for kind, buf in (("states", self._buf_codes), ("angles", self._buf_angles)):
-                if buf is not None:
-                    values[kind] = _transpose(buf[:n], np.empty((buf.shape[1], n), dtype=buf.dtype),
-                                              self._kernels)
+            # views of the chunk: the writer writes a full chunk at once (its row groups are
+            # chunk_frames long); only the last, partial chunk of a pass can stay pending in it,
+            # and this pass does not write into its buffer again
+            values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
+                                                          ("angles", self._chunk_angles)) if buf is not None}
             self.sink.add(self.replica, index, values)
             return
         first = int(self._buf_index[0])
@@ -672,11 +696,11 @@ class TorsionPass(AnalysisBase):
             index["weight"] = self.weights[self._buf_index[:n]]
         paths = [stem + ".index.npz"]
         np.savez(paths[0], **index)
-        for kind, buf in (("states", self._buf_codes), ("angles", self._buf_angles)):
+        for kind, buf in (("states", self._chunk_codes), ("angles", self._chunk_angles)):
             if buf is None:
                 continue
             path = f"{stem}.{kind}.npy"
-            _save_transposed(path, buf[:n], kernels=self._kernels)   # a contiguous row per torsion
+            _save_rows(path, buf[:, :n])   # a contiguous row per torsion
             paths.append(path)
         self.results.parts.extend(paths)
 
@@ -789,17 +813,19 @@ def _transpose(src, dst, kernels=None):
     return dst
 
 
-def _save_transposed(path, block, tile=1024, kernels=None):
-    """``np.save(path, block.T)`` written tile by tile: a contiguous row per column of ``block``,
-    without a transposed copy of the whole block in memory (with the compiled kernels, the
-    transpose of a tile runs in cache-sized squares: about 3 times faster for one-byte codes)."""
-    n, m = block.shape
-    out = np.empty((min(tile, m), n), dtype=block.dtype)
+def _save_rows(path, rows, block_bytes=8 << 20):
+    """``np.save(path, rows)`` for a 2-D view whose rows are contiguous (a chunk of the pass,
+    ``buffer[:, :n]``), without a contiguous copy of the whole view: written a few MB at a time."""
+    n, m = rows.shape
+    step = max(1, block_bytes // max(1, m * rows.itemsize))
     with open(path, "wb") as fh:
         np.lib.format.write_array_header_1_0(
-            fh, {"descr": np.lib.format.dtype_to_descr(block.dtype), "fortran_order": False, "shape": (m, n)})
-        for lo in range(0, m, tile):
-            _transpose(block[:, lo:lo + tile], out[:min(tile, m - lo)], kernels).tofile(fh)
+            fh, {"descr": np.lib.format.dtype_to_descr(rows.dtype), "fortran_order": False, "shape": (n, m)})
+        if rows.flags.c_contiguous:
+            rows.tofile(fh)
+            return
+        for lo in range(0, n, step):
+            np.ascontiguousarray(rows[lo:lo + step]).tofile(fh)
 
 
 def _joint_cells(codes, members, powers, size):
