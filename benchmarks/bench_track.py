@@ -263,7 +263,7 @@ def read(stop):
 def run(stop, threads):
     parts = tempfile.mkdtemp()
     t = clock()
-    TorsionPass(u, tset, scheme, parts_dir=parts, threads=threads).run(stop=stop)
+    TorsionPass(u, tset, scheme, series_dir=parts, threads=threads).run(stop=stop)
     shutil.rmtree(parts)
     return t
 
@@ -444,7 +444,7 @@ def main(argv=None):
     if alone:
         summary["pass_alone_ms_per_frame"] = alone
         r = alone["read"]
-        print("the pass alone in one process (TorsionPass, chunk files written), interleaved with reading the "
+        print("the pass alone in one process (TorsionPass, time series written), interleaved with reading the "
               "same frames, (T(4N) - T(N)) / 3N, median of the repeats:")
         for key, label in (("read", "MDAnalysis reading only"), ("pass1", "pass, 1 thread"),
                            ("pass2", "pass, --threads 2")):

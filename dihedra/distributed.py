@@ -15,10 +15,11 @@ Requirements of the cluster
 ---------------------------
 * Every worker must read the topology and trajectory files under the same paths as the calling
   process (the Universe travels to the workers pickled, and re-opens its files there).
-* Every worker must write into the run's scratch folder (beside ``--out``, or the system temporary
-  folder without ``--out``): the workers write the chunks of the time series there and the
-  calling process reads them back. Same machine, or a file system shared by all nodes.
-* The workers need the same dihedra, MDAnalysis and NumPy as the calling process.
+* Every worker must write into the folder being written (beside ``--out``, or the system
+  temporary folder without ``--out``): the workers write the files of the time series of their
+  frames there, and their block sums for the calling process to read. Same machine, or a file
+  system shared by all nodes.
+* The workers need the same dihedra, MDAnalysis, NumPy, numba and pyarrow as the calling process.
 
 Example
 -------

@@ -25,6 +25,11 @@ class OutputExistsError(DihedraError):
     """The output folder exists and --overwrite was not given."""
 
 
+class OutputWriteError(OSError):
+    """Writing results failed during the trajectory pass (a full disk, a lost mount): an error of
+    the output, raised as such (an ``OSError`` while reading means a damaged trajectory)."""
+
+
 def one_of(name, value, valid):
     """Raise a :class:`DihedraError` unless ``value`` is one of ``valid``.
 

@@ -28,7 +28,6 @@ from __future__ import annotations
 import glob
 import json
 import os
-import re
 
 import numpy as np
 import pandas as pd
@@ -172,46 +171,6 @@ def _narrow_dtype(value):
     return None
 
 
-def merge_parts(parts_dir, folder, keep_angles):
-    """Write the time series of a parallel run (the workers' chunk files in ``parts_dir``, see
-    :func:`merge_chunks`) into ``folder``; nothing when the run wrote no chunks."""
-    if os.path.exists(os.path.join(parts_dir, "layout.json")):
-        merge_chunks(parts_dir, folder, keep_angles)
-
-
-_CHUNK = re.compile(r"replica(\d+)-from(\d+)\.index\.npz$")
-
-
-def merge_chunks(parts_dir, folder, keep_angles):
-    """Write the chunk files of :class:`~dihedra.trackpass.TorsionPass` as ``states.parquet`` (and
-    ``angles.parquet``).
-
-    Each chunk holds ``replica....-from....index.npz`` (frame, time_ps, [weight]) and one raw array
-    per kind, ``.states.npy`` (int8) or ``.angles.npy`` (float32), of shape (n_torsions, n_frames).
-    Chunks are read memory-mapped in replica and frame order and written through
-    :class:`TimeSeriesWriter`, so the file is the same whatever number of workers wrote the
-    chunks (and the same as a serial run that hands its chunks to the writer directly); memory
-    stays at about one row group.
-    """
-    with open(os.path.join(parts_dir, "layout.json")) as fh:
-        layout = json.load(fh)
-    chunks = []
-    for path in glob.glob(os.path.join(parts_dir, "*.index.npz")):
-        m = _CHUNK.search(os.path.basename(path))
-        chunks.append((int(m.group(1)), int(m.group(2)), path[:-len(".index.npz")]))
-    chunks.sort()
-    for kind in ("states", "angles") if keep_angles else ("states",):
-        writer = TimeSeriesWriter(folder, layout["labels"], layout["weighted"], layout["row_group_frames"],
-                                  kinds=(kind,))
-        try:
-            for rep, _, stem in chunks:
-                with np.load(stem + ".index.npz") as npz:
-                    index = {k: npz[k] for k in npz.files}
-                writer.add(rep, index, {kind: np.load(f"{stem}.{kind}.npy", mmap_mode="r")})
-        finally:
-            writer.close()
-
-
 # How the time series are encoded: plain values (a state code's dictionary and run-length
 # encoding would halve the file but cost about twice the time per value), min/max statistics only
 # for the index columns, and every column required (never null; undefined is -1 or NaN). Measured
@@ -227,13 +186,15 @@ class TimeSeriesWriter:
     """``states.parquet`` (and ``angles.parquet``) written chunk by chunk, in replica and frame
     order, regrouped into row groups of ``row_group_frames`` frames that never span two replicas.
 
-    Each time series is a folder of Parquet files (a Parquet dataset: ``part-00000.parquet``,
-    ``part-00001.parquet``, ... in frame order, read as one table by pandas, Arrow, polars or
-    DuckDB). A file holds a few row groups only: Arrow's writer keeps the metadata of every row
-    group it has written until the file is closed (about 0.8 kB per column and row group, 12 MB
-    per row group of 15,000 torsions), so one file for a long run would grow without bound;
-    starting a new file every :data:`COLUMN_CHUNKS_PER_FILE` column chunks keeps it at a few tens
-    of MB.
+    Each time series is a folder of Parquet files (a Parquet dataset, read as one table by
+    pandas, Arrow, polars or DuckDB): ``part-RRRR-FFFFFFFFFFFF.parquet``, named by the replica and
+    the trajectory frame of its first row, so that the order of the names is the order of the
+    frames. Several writers (the workers of a parallel run, each over its own frames) can write
+    into the same folder. A file holds a few row groups only: Arrow's writer keeps the metadata of
+    every row group it has written until the file is closed (about 0.8 kB per column and row
+    group, 12 MB per row group of 15,000 torsions), so one file for a long run would grow without
+    bound; starting a new file every :data:`COLUMN_CHUNKS_PER_FILE` column chunks keeps it at a
+    few tens of MB.
 
     Parameters
     ----------
@@ -257,7 +218,7 @@ class TimeSeriesWriter:
         self._pa = pa
         self.weighted = bool(weighted)
         self.target = max(1, int(row_group_frames))
-        self._writers, self._schemas, self._dirs, self._files = {}, {}, {}, {}
+        self._writers, self._schemas, self._dirs = {}, {}, {}
         for kind in kinds:
             value_type = {"states": pa.int8(), "angles": pa.float32()}[kind]
             fields = [pa.field("replica", pa.int16(), nullable=False),
@@ -269,13 +230,13 @@ class TimeSeriesWriter:
             schema = pa.schema(fields + [pa.field(label, value_type, nullable=False) for label in labels])
             self._schemas[kind] = schema
             self._dirs[kind] = os.path.join(folder, f"{kind}.parquet")
-            os.makedirs(self._dirs[kind])
-            self._files[kind] = 0
+            os.makedirs(self._dirs[kind], exist_ok=True)
         self._groups_per_file = max(1, COLUMN_CHUNKS_PER_FILE // len(schema))
         self._groups_in_file = 0
         self._pending = {kind: [] for kind in kinds}
         self._n_pending = 0
         self._replica = None
+        self._used = False
 
     def add(self, replica, index, values):
         """Append one chunk: ``index`` has ``frame``, ``time_ps`` (and ``weight``); ``values`` maps
@@ -316,10 +277,12 @@ class TimeSeriesWriter:
     def _write_group(self, kind, table):
         writer = self._writers.get(kind)
         if writer is None:
-            path = os.path.join(self._dirs[kind], f"part-{self._files[kind]:05d}.parquet")
+            first = int(table.column("frame")[0].as_py()) if len(table) else 0
+            path = os.path.join(self._dirs[kind], f"part-{self._replica or 0:04d}-{first:012d}.parquet")
             writer = self._writers[kind] = pq.ParquetWriter(path, self._schemas[kind], **SERIES_OPTIONS,
                                                             write_statistics=self._index_names)
         writer.write_table(table, row_group_size=len(table))
+        self._used = True
 
     def _next_group(self):
         """Count a row group; after the last one of a file, close the files (the next row group
@@ -329,9 +292,8 @@ class TimeSeriesWriter:
             self._close_files()
 
     def _close_files(self):
-        for kind, writer in list(self._writers.items()):
+        for writer in self._writers.values():
             writer.close()
-            self._files[kind] += 1
         self._writers = {}
         self._groups_in_file = 0
 
@@ -345,7 +307,7 @@ class TimeSeriesWriter:
             if self._n_pending:
                 self._write_pending()
             for kind, schema in self._schemas.items():   # no frames: one file with the columns
-                if self._files[kind] == 0 and kind not in self._writers:
+                if not self._used and kind not in self._writers:
                     self._write_group(kind, schema.empty_table())
         finally:
             try:

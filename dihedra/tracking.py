@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .errors import DihedraError, InputFileError, OutputExistsError
+from .errors import DihedraError, InputFileError, OutputExistsError, OutputWriteError
 from .inputs import check_readable, load_universe, sha256, truncated_error
 from .populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
                           replica_populations, torsion_populations)
@@ -267,7 +267,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     staging = prepare_output(out, overwrite) if out is not None else None
     scratch = None
     own_client = None
-    sink, writers = None, []
+    writers = []
     try:
         if staging is None:
             scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
@@ -301,19 +301,12 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             progress = backend == "serial" and sys.stderr.isatty()
         threads = _pass_threads(threads, backend)
         passes, replica_info = [], []
-        if backend == "serial":   # chunks go straight into the Parquet files (no chunk files)
-            from .resultsdir import TimeSeriesWriter
-            from .trackpass import default_chunk_frames
-            if chunk_frames is None:
-                chunk_frames = default_chunk_frames(len(tset), keep_angles)
-            sink = TimeSeriesWriter(work, list(tset.labels), weights is not None, chunk_frames,
-                                    kinds=("states", "angles") if keep_angles else ("states",))
         for r, (u, traj, fr, w) in enumerate(zip(universes, trajectories, frames, weight_arrays)):
             say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
             tp = TorsionPass(u, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
                              bin_width_deg=bin_width_deg, weights=w, parts_dir=parts_dir,
-                             keep_angles=keep_angles, chunk_frames=chunk_frames, replica=r, dt_ps=dt_ps,
-                             threads=threads, sink=sink)
+                             series_dir=work, keep_angles=keep_angles, chunk_frames=chunk_frames,
+                             replica=r, dt_ps=dt_ps, threads=threads)
             run_kwargs = dict(start=start, stop=stop, step=step)
             if backend == "serial":
                 run_kwargs.update(verbose=bool(progress),
@@ -327,30 +320,22 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
                     warnings.filterwarnings("ignore", message="Reader has no dt information")
                     warnings.filterwarnings("ignore", category=DeprecationWarning)
                     tp.run(**run_kwargs)
+            except OutputWriteError:
+                raise
             except (OSError, EOFError) as exc:
                 raise truncated_error(traj, u, exc) from None
             passes.append(tp)
             replica_info.append(_replica_info(u, traj, fr, tp, dt_ps))
-        # the time series and blocks.npz are written in other threads (Arrow and zlib release
-        # Python's lock) while this one computes the populations and writes the tables
-        from .resultsdir import NARROWED, merge_parts, save_npz, write_results
+        # the time series are written (each pass, serial or every worker, wrote the files of its
+        # frames); blocks.npz is written by another thread (zlib releases Python's lock) while
+        # this one computes the populations and writes the tables
+        from .resultsdir import NARROWED, save_npz, write_results
+        shutil.rmtree(parts_dir, ignore_errors=True)
         blocks = _block_sums(passes)
-
-        def write_series():
-            if sink is not None:
-                sink.close()
-            else:
-                merge_parts(parts_dir, work, keep_angles)
-            shutil.rmtree(parts_dir, ignore_errors=True)
 
         def write_blocks():
             save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=tuple(NARROWED))
-        if sink is not None:   # serial: only the last row group is left; written now, so that
-            # its buffers are gone before the tables and the histograms take their memory
-            write_series()
-            writers = [_Background(write_blocks)]
-        else:                  # parallel: all the workers' chunks to convert; side by side
-            writers = [_Background(write_series), _Background(write_blocks)]
+        writers = [_Background(write_blocks)]
         result = _assemble(tset, scheme, universes[0], notices, blocks)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
             start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
@@ -372,13 +357,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch = None
         return result
     finally:
-        for w in writers:   # an error: let the writing threads end before the folder goes
+        for w in writers:   # an error: let the writing thread end before the folder goes
             w.thread.join()
-        if sink is not None and not sink.closed:   # an error: close the half-written files
-            try:                                       # (the folder is removed)
-                sink.close()
-            except Exception:  # noqa: BLE001 - the original error matters
-                pass
         if own_client is not None:
             own_client.close()
         if staging is not None:

@@ -18,9 +18,6 @@ and appends the codes to a chunk buffer. Results:
     are counted here and never binned.
 ``results.conformer_counts`` : ndarray (n_rows, 4) int64 and ``results.conformer_weights``
     rows (block, group, joint_code, frames) of the joint states of each conformer group.
-``results.parts`` : list of str
-    Chunk files of the state time series (and angles with ``keep_angles``) in ``parts_dir``,
-    which :func:`dihedra.resultsdir.merge_parts` turns into ``states.parquet``.
 
 Per frame
 ---------
@@ -50,12 +47,12 @@ the buffer is full, the bins go into the histograms, the joint states of each co
 into the conformer counts (compiled loop), and the codes (and angles) are transposed into the
 chunk buffer, one row per torsion, as the time series store them. All of it runs where the
 frames are processed (with ``threads=2``, in the second thread, while the first reads on). A full
-chunk is either handed to a :class:`~dihedra.resultsdir.TimeSeriesWriter` (``sink``: serial runs,
-which thereby encode Parquet during the pass) or written as a raw array file into ``parts_dir``
-(workers of parallel runs); the parent process converts the chunk files, in frame order, into
-the same Parquet files with row groups of ``chunk_frames`` frames, whatever the number of
-workers. Memory stays bounded by the chunk buffer, the 256-frame buffers and the block sums,
-whatever the number of frames.
+chunk goes to the pass's :class:`~dihedra.resultsdir.TimeSeriesWriter` (a row group of
+``chunk_frames`` frames in ``series_dir``/states.parquet and angles.parquet), so Parquet is
+encoded during the pass, by the process (and thread) that computed the frames: each worker of a
+parallel run writes the files of its own frames, named by replica and first frame, and the
+folder reads as one table in frame order. Memory stays bounded by the chunk buffer, the 256-frame
+buffers and the block sums, whatever the number of frames.
 
 Parallel runs
 -------------
@@ -65,13 +62,13 @@ and distributed (:mod:`dihedra.distributed`) backends give the same integers as 
 
 from __future__ import annotations
 
-import json
 import os
 
 import numpy as np
 from MDAnalysis.analysis.base import AnalysisBase
 from MDAnalysis.analysis.results import ResultsGroup
 
+from .errors import OutputWriteError
 from .angles import TorsionGeometry
 from .schemes import UNDEFINED
 
@@ -81,8 +78,6 @@ MAX_CONFORMER_TORSIONS = 12
 #: Default size of a chunk (and of a Parquet row group) of the time series, in bytes of values.
 CHUNK_BYTES = 64 << 20
 
-#: Name of the file in ``parts_dir`` that describes the chunk files (labels, weights, row groups).
-LAYOUT_FILE = "layout.json"
 
 #: Marks a fine bin that a state boundary cuts (its angles are assigned one by one).
 _MIXED = np.int8(-128)
@@ -180,9 +175,12 @@ class TorsionPass(AnalysisBase):
     weights : ndarray, optional
         One weight per analysed frame (in order), for reweighting biased runs.
     parts_dir : str, optional
-        Folder for the chunk files of the time series; ``None`` (and no ``sink``) writes no time
-        series. With a distributed scheduler it must be on a file system that the workers and
-        the calling process share.
+        Scratch folder where a worker of a parallel run leaves its histogram blocks and
+        conformer rows for the parent (without it they go back pickled).
+    series_dir : str, optional
+        Folder that receives the time series, ``states.parquet/`` (and ``angles.parquet/``);
+        ``None`` writes none. With a distributed scheduler it must be on a file system that the
+        workers and the calling process share.
     keep_angles : bool
         Also write the angles (float32 degrees).
     chunk_frames : int, optional
@@ -198,9 +196,6 @@ class TorsionPass(AnalysisBase):
         1: everything in the calling thread. 2: a second thread computes while the calling
         thread reads the next frames (the coordinates are copied into batches of frames; see
         *Overlap* above). Results are identical.
-    sink : dihedra.resultsdir.TimeSeriesWriter, optional
-        Serial runs only: chunks go straight to this writer (with ``threads=2``, from the second
-        thread) instead of chunk files in ``parts_dir``; its row groups must be ``chunk_frames``.
 
     Examples
     --------
@@ -219,8 +214,8 @@ class TorsionPass(AnalysisBase):
         return ("serial", "multiprocessing", "dask")
 
     def __init__(self, universe, torsion_set, scheme, *, n_state_blocks=64, n_hist_blocks=16,
-                 bin_width_deg=1.0, weights=None, parts_dir=None, keep_angles=False,
-                 chunk_frames=None, replica=0, dt_ps=None, compiled=None, threads=1, sink=None,
+                 bin_width_deg=1.0, weights=None, parts_dir=None, series_dir=None, keep_angles=False,
+                 chunk_frames=None, replica=0, dt_ps=None, compiled=None, threads=1,
                  verbose=False):
         super().__init__(universe.trajectory, verbose=verbose)
         self._universe = universe
@@ -237,7 +232,8 @@ class TorsionPass(AnalysisBase):
         self.dt_ps = dt_ps
         self.compiled = compiled
         self.threads = int(threads)
-        self.sink = sink
+        self.series_dir = series_dir
+        self._writer = None
 
     # -- parallel merge -------------------------------------------------------------------
     def _get_aggregator(self):
@@ -249,7 +245,6 @@ class TorsionPass(AnalysisBase):
             "conformer_parts": ResultsGroup.flatten_sequence,
             "conformer_counts": ResultsGroup.ndarray_vstack,
             "conformer_weights": ResultsGroup.ndarray_hstack,
-            "parts": ResultsGroup.flatten_sequence,
         })
 
     def _compute(self, indexed_frames, verbose=None, *, progressbar_kwargs=None):
@@ -257,14 +252,22 @@ class TorsionPass(AnalysisBase):
         self._n_total = self.n_frames
         self._global_index = np.asarray(indexed_frames[:, 0], dtype=np.int64)
         try:
-            super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
-            if self._overlap is not None:
-                self._overlap.finish(self._staged)
-        finally:
-            if getattr(self, "_overlap", None) is not None:
-                self._overlap.stop()
-                self._overlap = None
-        self._flush()
+            try:
+                super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
+                if self._overlap is not None:
+                    self._overlap.finish(self._staged)
+            finally:
+                if getattr(self, "_overlap", None) is not None:
+                    self._overlap.stop()
+                    self._overlap = None
+            self._flush()
+            self._close_writer()   # the last row group (and the files' footers)
+        except BaseException:
+            try:   # the files are incomplete; whoever asked for them removes them
+                self._close_writer()
+            except Exception:  # noqa: BLE001 - the original error matters
+                pass
+            raise
         self._finish_worker()
         return self
 
@@ -311,7 +314,6 @@ class TorsionPass(AnalysisBase):
         res.conformer_counts = np.empty((0, 4), dtype=np.int64)
         res.conformer_weights = np.empty(0, dtype=np.float64)
         res.conformer_parts = []
-        res.parts = []
         # per-frame work: geometry, bin -> state table, the scheme's exact rule for mixed bins
         self._geometry = TorsionGeometry(self.torsion_set.indices, compiled=self.compiled)
         self._kernels = self._geometry._kernels
@@ -561,7 +563,7 @@ class TorsionPass(AnalysisBase):
         np.add.at(res.block_weights, sblock, w)
         np.add.at(res.hist_block_frames, hblock, 1)
         np.add.at(res.hist_block_weights, hblock, w)
-        if self.parts_dir is not None or self.sink is not None:
+        if self.series_dir is not None:
             self._write_chunk(n)
         self._n_buf = 0
 
@@ -674,44 +676,38 @@ class TorsionPass(AnalysisBase):
         self._one_frame = self._staged = None
         self._geometry = self._kernels = None   # modules do not pickle (results go back to the parent)
 
-    # -- chunk files -------------------------------------------------------------------------------
+    # -- the time series ----------------------------------------------------------------------------
     def _write_chunk(self, n):
-        if self.sink is not None:   # a serial run: straight into the Parquet files
-            index = {"frame": self._buf_frame[:n].copy(), "time_ps": self._buf_time[:n].copy()}
-            if self.weights is not None:
-                index["weight"] = self.weights[self._buf_index[:n]]
-            # views of the chunk: the writer writes a full chunk at once (its row groups are
-            # chunk_frames long); only the last, partial chunk of a pass can stay pending in it,
-            # and this pass does not write into its buffer again
-            values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
-                                                          ("angles", self._chunk_angles)) if buf is not None}
-            self.sink.add(self.replica, index, values)
-            return
-        first = int(self._buf_index[0])
-        stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{first:012d}")
-        if not os.path.exists(os.path.join(self.parts_dir, LAYOUT_FILE)):
-            self._write_layout()
-        index = {"frame": self._buf_frame[:n], "time_ps": self._buf_time[:n]}
+        index = {"frame": self._buf_frame[:n].copy(), "time_ps": self._buf_time[:n].copy()}
         if self.weights is not None:
             index["weight"] = self.weights[self._buf_index[:n]]
-        paths = [stem + ".index.npz"]
-        np.savez(paths[0], **index)
-        for kind, buf in (("states", self._chunk_codes), ("angles", self._chunk_angles)):
-            if buf is None:
-                continue
-            path = f"{stem}.{kind}.npy"
-            _save_rows(path, buf[:, :n])   # a contiguous row per torsion
-            paths.append(path)
-        self.results.parts.extend(paths)
+        # views of the chunk: the writer writes a full chunk at once (its row groups are
+        # chunk_frames long); only the last, partial chunk of the pass can wait in it until
+        # close(), and nothing writes into the buffer after that
+        values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
+                                                      ("angles", self._chunk_angles)) if buf is not None}
+        try:
+            if self._writer is None:
+                from .resultsdir import TimeSeriesWriter
+                self._writer = TimeSeriesWriter(self.series_dir, list(self.torsion_set.labels),
+                                                self.weights is not None, self.chunk_frames, kinds=tuple(values))
+            self._writer.add(self.replica, index, values)
+        except OSError as exc:
+            raise _write_error(exc, self.series_dir) from exc
 
-    def _write_layout(self):
-        layout = {"labels": list(self.torsion_set.labels), "weighted": self.weights is not None,
-                  "row_group_frames": int(self.chunk_frames), "keep_angles": self.keep_angles}
-        path = os.path.join(self.parts_dir, LAYOUT_FILE)
-        tmp = f"{path}.{os.getpid()}.{id(self)}.tmp"
-        with open(tmp, "w") as fh:
-            json.dump(layout, fh)
-        os.replace(tmp, path)
+    def _close_writer(self):
+        writer, self._writer = self._writer, None
+        if writer is not None:
+            try:
+                writer.close()
+            except OSError as exc:
+                raise _write_error(exc, self.series_dir) from exc
+
+
+def _write_error(exc, folder):
+    """An ``OSError`` of the time series writer as :class:`~dihedra.errors.OutputWriteError`."""
+    return OutputWriteError(exc.errno, f"writing the time series into {folder} failed: "
+                                       f"{exc.strerror or exc}")
 
 
 class _Batch:
@@ -811,21 +807,6 @@ def _transpose(src, dst, kernels=None):
     else:
         dst[:] = src.T
     return dst
-
-
-def _save_rows(path, rows, block_bytes=8 << 20):
-    """``np.save(path, rows)`` for a 2-D view whose rows are contiguous (a chunk of the pass,
-    ``buffer[:, :n]``), without a contiguous copy of the whole view: written a few MB at a time."""
-    n, m = rows.shape
-    step = max(1, block_bytes // max(1, m * rows.itemsize))
-    with open(path, "wb") as fh:
-        np.lib.format.write_array_header_1_0(
-            fh, {"descr": np.lib.format.dtype_to_descr(rows.dtype), "fortran_order": False, "shape": (n, m)})
-        if rows.flags.c_contiguous:
-            rows.tofile(fh)
-            return
-        for lo in range(0, n, step):
-            np.ascontiguousarray(rows[lo:lo + step]).tofile(fh)
 
 
 def _joint_cells(codes, members, powers, size):

@@ -232,20 +232,22 @@ def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     assert os.listdir(tmp_path) == []
 
 
-@pytest.mark.parametrize("target", ["save_npz", "TimeSeriesWriter.close"])
+@pytest.mark.parametrize("target, workers", [("save_npz", 1), ("TimeSeriesWriter.close", 1),
+                                             ("TimeSeriesWriter.add", 1), ("TimeSeriesWriter.add", 2)])
 def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_replicas, tmp_path, monkeypatch,
-                                                                           target):
-    # blocks.npz and the time series are written in other threads: their error is the run's error
+                                                                           target, workers):
+    # blocks.npz is written in another thread, the time series during the pass (in the second
+    # thread or in workers): a failed write is the run's error, not a "damaged trajectory"
     (top, t0), _ = two_replicas
     from dihedra import resultsdir
 
     def full_disk(*args, **kwargs):
         raise OSError(28, "No space left on device")
 
-    owner, name = (resultsdir, target) if "." not in target else (resultsdir.TimeSeriesWriter, "close")
+    owner, name = (resultsdir, target) if "." not in target else (resultsdir.TimeSeriesWriter, target.split(".")[1])
     monkeypatch.setattr(owner, name, full_disk)
     with pytest.raises(OSError, match="No space left"):
-        track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"))
+        track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"), workers=workers)
     assert os.listdir(tmp_path) == []
 
 
