@@ -438,15 +438,19 @@ def _block_sums(passes):
         "bin_edges_deg": np.linspace(-180.0, 180.0, histograms.shape[2] + 1),
         "undefined": np.sum([p.results.undefined for p in passes], axis=0),
     }
-    # conformer rows: shift each replica's blocks to the global block numbering
+    # conformer rows: shift each replica's blocks to the global block numbering (one replica:
+    # its rows as they are, sorted and unique already)
     offset, rows, wts = 0, [], []
     for p in passes:
-        cr = np.asarray(p.results.conformer_counts, dtype=np.int64).reshape(-1, 4).copy()
-        cr[:, 0] += offset
+        cr = np.asarray(p.results.conformer_counts, dtype=np.int64).reshape(-1, 4)
+        if offset:
+            cr = cr.copy()
+            cr[:, 0] += offset
         rows.append(cr)
         wts.append(np.asarray(p.results.conformer_weights, dtype=float))
         offset += p.n_state_blocks
-    conf_rows, conf_w = reduce_conformer_rows(np.vstack(rows), np.concatenate(wts))
+    conf_rows, conf_w = reduce_conformer_rows(rows[0] if len(rows) == 1 else np.vstack(rows),
+                                              wts[0] if len(wts) == 1 else np.concatenate(wts))
     blocks["conformer_rows"] = conf_rows
     blocks["conformer_weights"] = conf_w
     return blocks

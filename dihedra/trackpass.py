@@ -233,7 +233,7 @@ class TorsionPass(AnalysisBase):
         self.compiled = compiled
         self.threads = int(threads)
         self.series_dir = series_dir
-        self._writer = None
+        self._writer = self._write_pool = self._pending_write = self._spare = None
 
     # -- parallel merge -------------------------------------------------------------------
     def _get_aggregator(self):
@@ -646,8 +646,10 @@ class TorsionPass(AnalysisBase):
         if parallel and self.parts_dir is not None and len(self._global_index):
             stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{int(self._global_index[0]):012d}")
         if self._conf_rows:
-            rows = np.vstack(self._conf_rows)
-            wts = np.concatenate(self._conf_wts)
+            # (one class of groups, the usual case: its rows as they are, no copy of 10^7 rows)
+            rows = self._conf_rows[0] if len(self._conf_rows) == 1 else np.vstack(self._conf_rows)
+            wts = self._conf_wts[0] if len(self._conf_wts) == 1 else np.concatenate(self._conf_wts)
+            self._conf_rows, self._conf_wts = [], []
             rows, wts = reduce_conformer_rows(rows, wts)
             if stem is not None:
                 paths = (stem + ".conformer_rows.npy", stem + ".conformer_weights.npy")
@@ -678,12 +680,17 @@ class TorsionPass(AnalysisBase):
 
     # -- the time series ----------------------------------------------------------------------------
     def _write_chunk(self, n):
+        """Hand the chunk to the time series writer: here, or, while a second thread computes the
+        frames (``threads=2``), in a third thread, so that encoding a row group (a few tenths of
+        a second for 10^4 torsions) does not hold up the frames; the next chunk then fills a
+        second buffer (allocated at the first such hand-over: runs of one chunk never need it)."""
+        self._wait_write()   # the previous chunk is written: its buffer is free, order is kept
         index = {"frame": self._buf_frame[:n].copy(), "time_ps": self._buf_time[:n].copy()}
         if self.weights is not None:
             index["weight"] = self.weights[self._buf_index[:n]]
         # views of the chunk: the writer writes a full chunk at once (its row groups are
         # chunk_frames long); only the last, partial chunk of the pass can wait in it until
-        # close(), and nothing writes into the buffer after that
+        # close(), and nothing writes into that buffer after it
         values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
                                                       ("angles", self._chunk_angles)) if buf is not None}
         try:
@@ -691,11 +698,34 @@ class TorsionPass(AnalysisBase):
                 from .resultsdir import TimeSeriesWriter
                 self._writer = TimeSeriesWriter(self.series_dir, list(self.torsion_set.labels),
                                                 self.weights is not None, self.chunk_frames, kinds=tuple(values))
-            self._writer.add(self.replica, index, values)
+            if self._overlap is None:   # one thread, or the last chunk of the pass
+                self._writer.add(self.replica, index, values)
+                return
         except OSError as exc:
             raise _write_error(exc, self.series_dir) from exc
+        if self._write_pool is None:
+            from concurrent.futures import ThreadPoolExecutor
+            self._write_pool = ThreadPoolExecutor(1, thread_name_prefix="dihedra-series")
+            self._spare = (np.empty_like(self._chunk_codes),
+                           None if self._chunk_angles is None else np.empty_like(self._chunk_angles))
+        self._pending_write = self._write_pool.submit(self._writer.add, self.replica, index, values)
+        (self._chunk_codes, self._chunk_angles), self._spare = self._spare, (self._chunk_codes, self._chunk_angles)
+
+    def _wait_write(self):
+        pending, self._pending_write = self._pending_write, None
+        if pending is not None:
+            try:
+                pending.result()
+            except OSError as exc:
+                raise _write_error(exc, self.series_dir) from exc
 
     def _close_writer(self):
+        try:
+            self._wait_write()
+        finally:
+            pool, self._write_pool, self._spare = self._write_pool, None, None
+            if pool is not None:
+                pool.shutdown()
         writer, self._writer = self._writer, None
         if writer is not None:
             try:

@@ -232,10 +232,12 @@ def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     assert os.listdir(tmp_path) == []
 
 
-@pytest.mark.parametrize("target, workers", [("save_npz", 1), ("TimeSeriesWriter.close", 1),
-                                             ("TimeSeriesWriter.add", 1), ("TimeSeriesWriter.add", 2)])
+@pytest.mark.parametrize("target, kw", [("save_npz", {}), ("TimeSeriesWriter.close", {}),
+                                        ("TimeSeriesWriter.add", {}), ("TimeSeriesWriter.add", {"workers": 2}),
+                                        # chunks of 5 frames: written by the third thread mid-pass
+                                        ("TimeSeriesWriter.add", {"threads": 2, "chunk_frames": 5})])
 def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_replicas, tmp_path, monkeypatch,
-                                                                           target, workers):
+                                                                           target, kw):
     # blocks.npz is written in another thread, the time series during the pass (in the second
     # thread or in workers): a failed write is the run's error, not a "damaged trajectory"
     (top, t0), _ = two_replicas
@@ -247,7 +249,7 @@ def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_r
     owner, name = (resultsdir, target) if "." not in target else (resultsdir.TimeSeriesWriter, target.split(".")[1])
     monkeypatch.setattr(owner, name, full_disk)
     with pytest.raises(OSError, match="No space left"):
-        track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"), workers=workers)
+        track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"), **kw)
     assert os.listdir(tmp_path) == []
 
 
