@@ -62,6 +62,7 @@ and distributed (:mod:`dihedra.distributed`) backends give the same integers as 
 
 from __future__ import annotations
 
+import contextlib
 import os
 
 import numpy as np
@@ -693,7 +694,7 @@ class TorsionPass(AnalysisBase):
         # close(), and nothing writes into that buffer after it
         values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
                                                       ("angles", self._chunk_angles)) if buf is not None}
-        try:
+        with _writing(self.series_dir):
             if self._writer is None:
                 from .resultsdir import TimeSeriesWriter
                 self._writer = TimeSeriesWriter(self.series_dir, list(self.torsion_set.labels),
@@ -701,8 +702,6 @@ class TorsionPass(AnalysisBase):
             if self._overlap is None:   # one thread, or the last chunk of the pass
                 self._writer.add(self.replica, index, values)
                 return
-        except OSError as exc:
-            raise _write_error(exc, self.series_dir) from exc
         if self._write_pool is None:
             from concurrent.futures import ThreadPoolExecutor
             self._write_pool = ThreadPoolExecutor(1, thread_name_prefix="dihedra-series")
@@ -714,10 +713,8 @@ class TorsionPass(AnalysisBase):
     def _wait_write(self):
         pending, self._pending_write = self._pending_write, None
         if pending is not None:
-            try:
+            with _writing(self.series_dir):
                 pending.result()
-            except OSError as exc:
-                raise _write_error(exc, self.series_dir) from exc
 
     def _close_writer(self):
         try:
@@ -728,16 +725,18 @@ class TorsionPass(AnalysisBase):
                 pool.shutdown()
         writer, self._writer = self._writer, None
         if writer is not None:
-            try:
+            with _writing(self.series_dir):
                 writer.close()
-            except OSError as exc:
-                raise _write_error(exc, self.series_dir) from exc
 
 
-def _write_error(exc, folder):
-    """An ``OSError`` of the time series writer as :class:`~dihedra.errors.OutputWriteError`."""
-    return OutputWriteError(exc.errno, f"writing the time series into {folder} failed: "
-                                       f"{exc.strerror or exc}")
+@contextlib.contextmanager
+def _writing(folder):
+    """An ``OSError`` of the time series writer raised as :class:`~dihedra.errors.OutputWriteError`."""
+    try:
+        yield
+    except OSError as exc:
+        raise OutputWriteError(exc.errno, f"writing the time series into {folder} failed: "
+                                          f"{exc.strerror or exc}") from exc
 
 
 class _Batch:
