@@ -97,7 +97,7 @@ def pool_by_type(populations, key="type", item="torsion", count_name="n_torsions
 
 
 def conformer_populations(rows, weights, block_replica, n_blocks, groups, members, labels, types,
-                          state_labels, resnames):
+                          state_labels, resnames, dense=None):
     """Conformer populations per group and pooled per group type.
 
     Parameters
@@ -112,6 +112,10 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
         Torsion positions of each group in chain order.
     labels, types, resnames : list of str
         Torsion labels, types and residue names.
+    dense : dict, optional
+        Classes of groups counted densely by the pass: {width: (group ids, counts of shape
+        (n_blocks, n_groups, n_joint), weights of the same shape or ``None`` when unweighted)};
+        their groups are not in ``rows``.
 
     Returns
     -------
@@ -144,8 +148,15 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
                 acc.append(values)
         g0 = g1
     del order
+    for gids, counts, wts in (dense or {}).values():
+        for out_slice in _dense_blocking(gids, counts, wts, block_replica):
+            for acc, values in zip((pair_group, pair_code, mean, se, n_eff), out_slice):
+                acc.append(values)
     if pair_group:
         pair_group, pair_code, mean, se, n_eff = (np.concatenate(x) for x in (pair_group, pair_code, mean, se, n_eff))
+        if dense:   # the columns in group and code order, as from rows alone
+            order = np.lexsort((pair_code, pair_group))
+            pair_group, pair_code, mean, se, n_eff = (x[order] for x in (pair_group, pair_code, mean, se, n_eff))
     else:
         pair_group, pair_code = np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64)
         mean, se, n_eff = np.empty(0), np.empty(0), np.empty(0)
@@ -194,7 +205,30 @@ def _conformer_blocking(rows, weights, g0, g1, n_blocks, block_replica):
                         minlength=n_blocks * n_pairs).reshape(n_blocks, n_pairs)
     totals = np.bincount(rows[:, 0] * n_groups + (rows[:, 1] - g0), weights=weights,
                          minlength=n_blocks * n_groups).reshape(n_blocks, n_groups)
-    local = pair_group - g0
+    return (pair_group, pair_code) + _column_blocking(table, totals, pair_group - g0, block_replica)
+
+
+def _dense_blocking(gids, counts, weights, block_replica):
+    """Blocking errors of the (group, joint code) columns seen in dense conformer counts
+    (n_blocks, n_groups, n_joint), in slices of groups: yields pair_group, pair_code, mean, se,
+    n_effective per slice (groups in order, codes in order within a group)."""
+    n_blocks, n_groups, size = counts.shape
+    step = max(1, _WORK_VALUES // max(1, n_blocks * size))
+    for a in range(0, n_groups, step):
+        c = counts[:, a:a + step]
+        w = c if weights is None else weights[:, a:a + step]
+        local, code = np.nonzero((c > 0).any(axis=0))
+        if not len(local):
+            continue
+        table = w[:, local, code].astype(np.float64)
+        totals = w.sum(axis=2, dtype=np.float64)
+        yield (gids[a + local], code.astype(np.int64)) + _column_blocking(table, totals, local, block_replica)
+
+
+def _column_blocking(table, totals, local, block_replica):
+    """mean, se, n_effective of the columns of ``table`` (n_blocks, n_pairs), column k belonging
+    to group ``local[k]`` with weight sums ``totals[:, local[k]]``."""
+    n_pairs = table.shape[1]
     mean, se, n_eff = np.empty(n_pairs), np.empty(n_pairs), np.empty(n_pairs)
     # blocking over all groups at once; a group with an empty block where others have frames
     # (all frames of a member undefined) drops that block, so it is done on its own
@@ -207,7 +241,7 @@ def _conformer_blocking(rows, weights, g0, g1, n_blocks, block_replica):
     for g in np.unique(local[~regular]):
         cols = np.flatnonzero(local == g)
         mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, g], block_replica)
-    return pair_group, pair_code, mean, se, n_eff
+    return mean, se, n_eff
 
 
 def _conformer_labels(codes, widths, state_labels):

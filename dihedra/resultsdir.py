@@ -15,7 +15,8 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
                                 (part-00000.parquet, ...) in frame order, row groups of a few MB
 ``angles.parquet/``             the same layout with float32 degrees (only with --keep-angles)
 ``blocks.npz``                  block sums of the pass: state counts and fine angle histograms per
-                                block, with block frames, weights and replicas (input of profiles)
+                                block, with block frames, weights and replicas (input of profiles),
+                                and the conformer counts (dense per group width, rows otherwise)
 ``summary.json``                inputs with SHA-256, frame ranges, time step, scheme, parameters,
                                 package versions, notices
 

@@ -453,7 +453,41 @@ def _block_sums(passes):
                                               wts[0] if len(wts) == 1 else np.concatenate(wts))
     blocks["conformer_rows"] = conf_rows
     blocks["conformer_weights"] = conf_w
+    # conformer classes counted densely (groups of equal width): one array per width, the
+    # replicas' blocks one after another
+    for width in sorted(passes[0].results.conformer_dense):
+        blocks[f"conformer_counts_w{width}"] = _stack([p.results.conformer_dense[width][0] for p in passes])
+        if passes[0].results.conformer_dense[width][1] is not None:
+            blocks[f"conformer_weights_w{width}"] = _stack([p.results.conformer_dense[width][1] for p in passes])
     return blocks
+
+
+def _stack(arrays):
+    return arrays[0] if len(arrays) == 1 else np.concatenate(arrays)
+
+
+def dense_conformers(blocks, tset, n_states):
+    """{width: (group ids, counts (n_blocks, n_groups, n_joint), weights)} of the conformer
+    classes that the pass counted densely (weights are the counts as floats when unweighted)."""
+    from .trackpass import _conformer_classes
+    _, members, _ = conformer_layout(tset, n_states)
+    out = {}
+    for width, (gids, _, _, _) in _conformer_classes(members, n_states).items():
+        counts = blocks.get(f"conformer_counts_w{width}")
+        if counts is not None:
+            out[width] = (gids, counts, blocks.get(f"conformer_weights_w{width}"))
+    return out
+
+
+def conformer_rows(blocks, tset, n_states):
+    """All conformer counts as rows (block, group, joint code, frames) sorted by block, group and
+    code, with their weights: the sparse rows of ``blocks`` and the dense classes together."""
+    rows, wts = [blocks["conformer_rows"]], [blocks["conformer_weights"]]
+    for gids, counts, weights in dense_conformers(blocks, tset, n_states).values():
+        block, group, code = np.nonzero(counts)
+        rows.append(np.column_stack([block, gids[group], code, counts[block, group, code]]).astype(np.int64))
+        wts.append((counts if weights is None else weights)[block, group, code].astype(np.float64))
+    return reduce_conformer_rows(np.vstack(rows), np.concatenate(wts))
 
 
 def _assemble(tset, scheme, universe, notices, blocks):
@@ -462,13 +496,14 @@ def _assemble(tset, scheme, universe, notices, blocks):
     resnames = [t.resname for t in tset.torsions]
     state_counts, block_replica = blocks["state_counts"], blocks["block_replica"]
     conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
+    dense = dense_conformers(blocks, tset, scheme.n_states)
 
     pops = torsion_populations(state_counts, block_replica, labels, types, scheme.labels)
     by_type = pool_by_type(pops)
     by_rep = replica_populations(state_counts, block_replica, labels, types, scheme.labels)
     groups, members, skipped = conformer_layout(tset, scheme.n_states)
     conf, conf_type = conformer_populations(conf_rows, conf_w, block_replica, len(block_replica), groups,
-                                            members, labels, types, scheme.labels, resnames)
+                                            members, labels, types, scheme.labels, resnames, dense=dense)
     if skipped:
         notices.append(f"no conformers for {len(skipped)} group(s) with too many torsions "
                        f"(e.g. {skipped[0]}); their torsions are still analysed one by one.")

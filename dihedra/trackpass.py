@@ -16,8 +16,13 @@ and appends the codes to a chunk buffer. Results:
 ``results.undefined`` : ndarray (n_torsions,)
     frames in which each torsion was undefined (collinear atoms, NaN coordinates); such frames
     are counted here and never binned.
+``results.conformer_dense`` : dict
+    {width: (counts, weights)} for the classes of conformer groups of ``width`` torsions that are
+    counted densely: counts (n_state_blocks, n_groups, n_states ** width) int32 (group order of
+    the class), weights float64 or ``None`` when unweighted.
 ``results.conformer_counts`` : ndarray (n_rows, 4) int64 and ``results.conformer_weights``
-    rows (block, group, joint_code, frames) of the joint states of each conformer group.
+    rows (block, group, joint_code, frames) of the joint states of the groups of classes too
+    large to count densely.
 
 Per frame
 ---------
@@ -244,6 +249,7 @@ class TorsionPass(AnalysisBase):
             "hist_block_frames": s, "hist_block_weights": s, "undefined": s,
             "hist_parts": ResultsGroup.flatten_sequence,
             "conformer_parts": ResultsGroup.flatten_sequence,
+            "conformer_dense": ResultsGroup.flatten_sequence,
             "conformer_counts": ResultsGroup.ndarray_vstack,
             "conformer_weights": ResultsGroup.ndarray_hstack,
         })
@@ -315,6 +321,7 @@ class TorsionPass(AnalysisBase):
         res.conformer_counts = np.empty((0, 4), dtype=np.int64)
         res.conformer_weights = np.empty(0, dtype=np.float64)
         res.conformer_parts = []
+        res.conformer_dense = []
         # per-frame work: geometry, bin -> state table, the scheme's exact rule for mixed bins
         self._geometry = TorsionGeometry(self.torsion_set.indices, compiled=self.compiled)
         self._kernels = self._geometry._kernels
@@ -346,7 +353,8 @@ class TorsionPass(AnalysisBase):
         n_sb = sb_hi - self._sb_lo + 1
         self._conf_dense = {}
         for key, (gids, mem, powers, size) in self._conf_classes.items():
-            if n_sb * len(gids) * size <= DENSE_CONFORMER_CELLS:
+            # dense or not by the whole run (every worker and a serial run decide alike)
+            if self.n_state_blocks * len(gids) * size <= DENSE_CONFORMER_CELLS:
                 counts = _touched_zeros((n_sb, len(gids), size), np.int32)
                 wts = _touched_zeros(counts.shape, np.float64) if weighted else np.zeros((0, 0, 0))
                 self._conf_dense[key] = (counts, wts)
@@ -522,6 +530,7 @@ class TorsionPass(AnalysisBase):
         if len(rows) > 1:
             rows, wts = [np.vstack(rows)], [np.concatenate(wts)]
         res.conformer_counts, res.conformer_weights = reduce_conformer_rows(rows[0], wts[0])
+        res.conformer_dense = self._sum_dense_conformers(res.pop("conformer_dense", None) or [])
         # dense histograms of every worker (a serial run hands over its array without a copy)
         parts = res.pop("hist_parts", None)
         if parts is None:
@@ -547,6 +556,30 @@ class TorsionPass(AnalysisBase):
                 hist[block].reshape(-1)[cells] += values
             del part
         res.histograms = hist
+
+    def _sum_dense_conformers(self, parts):
+        """{width: (counts (n_state_blocks, n_groups, n_joint) int32, weights or None)} from the
+        dense parts of the workers (one part covering every block, a serial run: no copy)."""
+        out = {}
+        weighted = self.weights is not None
+        for width, lo, counts, wts in parts:
+            if isinstance(counts, str):
+                path, counts = counts, np.load(counts)
+                os.remove(path)
+            if isinstance(wts, str):
+                path, wts = wts, np.load(wts)
+                os.remove(path)
+            if width not in out:
+                if lo == 0 and len(counts) == self.n_state_blocks:
+                    out[width] = (counts, wts)
+                    continue
+                full = np.zeros((self.n_state_blocks,) + counts.shape[1:], dtype=counts.dtype)
+                out[width] = (full, np.zeros(full.shape) if weighted else None)
+            total, total_w = out[width]
+            total[lo:lo + len(counts)] += counts
+            if weighted:
+                total_w[lo:lo + len(counts)] += wts
+        return out
 
     # -- chunk work --------------------------------------------------------------------------------
     def _flush(self):
@@ -627,25 +660,27 @@ class TorsionPass(AnalysisBase):
     def _finish_worker(self):
         self._retire_conformer_block()
         weighted = self.weights is not None
-        for key, (counts, wts) in self._conf_dense.items():
-            gids, _, _, size = self._conf_classes[key]
-            flat = counts.reshape(-1)
-            nz = np.flatnonzero(flat)
-            rows = np.empty((len(nz), 4), dtype=np.int64)
-            block, rest = np.divmod(nz, len(gids) * size)
-            np.add(block, self._sb_lo, out=rows[:, 0])
-            group, rows[:, 2] = np.divmod(rest, size)
-            rows[:, 1] = gids[group]
-            rows[:, 3] = flat[nz]
-            self._conf_rows.append(rows)
-            self._conf_wts.append(wts.reshape(-1)[nz] if weighted else rows[:, 3].astype(np.float64))
-        self._conf_dense = {}
         # a slice of a parallel run hands its large sums back to the parent through files in
         # parts_dir when there is one (written to the page cache, no pickling)
         parallel = self._hb_lo > 0 or len(self._hist) < self.n_hist_blocks
         stem = None
         if parallel and self.parts_dir is not None and len(self._global_index):
             stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{int(self._global_index[0]):012d}")
+        # dense conformer counts stay dense: (width, first state block, counts, weights or None),
+        # as arrays, or as files of a worker
+        dense = []
+        for key, (counts, wts) in self._conf_dense.items():
+            wts = wts if weighted else None
+            if stem is not None:
+                counts_path = f"{stem}.conformers{key:03d}.npy"
+                np.save(counts_path, counts)
+                counts = counts_path
+                if wts is not None:
+                    np.save(f"{stem}.conformer_weights{key:03d}.npy", wts)
+                    wts = f"{stem}.conformer_weights{key:03d}.npy"
+            dense.append((key, self._sb_lo, counts, wts))
+        self.results.conformer_dense = dense
+        self._conf_dense = {}
         if self._conf_rows:
             # (one class of groups, the usual case: its rows as they are, no copy of 10^7 rows)
             rows = self._conf_rows[0] if len(self._conf_rows) == 1 else np.vstack(self._conf_rows)

@@ -210,7 +210,9 @@ def test_conformer_rows_equal_direct_joint_counts(serial):
     states = serial.states()
     tset = serial.torsion_set
     n_s = serial.scheme.n_states
-    rows = serial.blocks["conformer_rows"]
+    from dihedra.tracking import conformer_rows
+    rows, _ = conformer_rows(serial.blocks, tset, n_s)
+    assert len(serial.blocks["conformer_rows"]) == 0   # every chain counted densely
     n_blocks = serial.blocks["state_counts"].shape[0] // 2
     from dihedra.trackpass import conformer_layout
     groups, members, _ = conformer_layout(tset, n_s)
@@ -373,5 +375,11 @@ def test_block_sums_of_workers_through_files_or_pickles_equal_serial(replicas, t
     np.testing.assert_array_equal(par.results.state_counts, ref.results.state_counts)
     np.testing.assert_array_equal(par.results.conformer_counts, ref.results.conformer_counts)
     np.testing.assert_array_equal(par.results.conformer_weights, ref.results.conformer_weights)
+    # dense conformer counts (chains of three torsions: one class), summed over the workers
+    assert set(par.results.conformer_dense) == set(ref.results.conformer_dense) == {3}
+    np.testing.assert_array_equal(par.results.conformer_dense[3][0], ref.results.conformer_dense[3][0])
+    # one count per chain and frame, less the frames with an undefined member
+    assert 0.9 * ref.results.block_frames.sum() * len(tset) // 3 <= ref.results.conformer_dense[3][0].sum() \
+        <= ref.results.block_frames.sum() * len(tset) // 3
     # files of the workers are read and removed by the parent
     assert not [f for f in os.listdir(parts) if ".hist" in f or "conformer" in f]
