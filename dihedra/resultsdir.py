@@ -12,7 +12,8 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
 ``conformers_by_type.csv``      group_type, state -> conformer, population, population_err, n_groups
 ``states.parquet/``             replica, frame, time_ps, [weight], then one int8 column per torsion
                                 (codes in summary.json, -1 = undefined); a folder of Parquet files
-                                (part-00000.parquet, ...) in frame order, row groups of a few MB
+                                (part-RRRR-FFFFFFFFFFFF.parquet: replica, first frame) in frame
+                                order, row groups of a few MB
 ``angles.parquet/``             the same layout with float32 degrees (only with --keep-angles)
 ``blocks.npz``                  block sums of the pass: state counts and fine angle histograms per
                                 block, with block frames, weights and replicas (input of profiles),
@@ -297,10 +298,6 @@ class TimeSeriesWriter:
             writer.close()
         self._writers = {}
         self._groups_in_file = 0
-
-    @property
-    def closed(self):
-        return self._pending is None
 
     def close(self):
         """Write what is pending and close the files (Arrow's pool then returns its free memory)."""

@@ -74,8 +74,8 @@ import numpy as np
 from MDAnalysis.analysis.base import AnalysisBase
 from MDAnalysis.analysis.results import ResultsGroup
 
-from .errors import OutputWriteError
 from .angles import TorsionGeometry
+from .errors import OutputWriteError
 from .schemes import UNDEFINED
 
 #: Groups with more torsions than this get no conformer statistics (their joint states explode).
