@@ -105,7 +105,7 @@ def assert_same(a, b):
 def test_time_series_start_new_files(replicas, serial, monkeypatch):
     # Arrow's writer keeps the metadata of every row group until its file closes, so a long run
     # starts a new file every COLUMN_CHUNKS_PER_FILE column chunks; here every row group (the
-    # serial run and the conversion of the workers' chunks both go through TimeSeriesWriter)
+    # serial pass and every worker write through TimeSeriesWriter)
     monkeypatch.setattr(resultsdir, "COLUMN_CHUNKS_PER_FILE", 1)
     top, trajs, _ = replicas
     split = track(top, trajs, **KW)
