@@ -290,3 +290,115 @@ def transpose_into(src, dst):
             for j in range(j0, j1):
                 for i in range(i0, i1):
                     dst[j, i] = src[i, j]
+
+
+@njit(**_OPTS)
+def _block_mean_error(v, w, n, width, mean, se):
+    """Mean and standard error of the block sums ``v[:n, :width]`` / ``w[:n, :width]``, column by
+    column (the operations of :func:`dihedra.statistics.weighted_block_error`, in its order: sums
+    over the blocks in turn; the inner loops run over columns, which SIMD takes together)."""
+    total_w = np.zeros(width)
+    total_v = np.zeros(width)
+    nonempty = np.zeros(width, dtype=np.int64)
+    ss = np.zeros(width)
+    for i in range(n):
+        for c in range(width):
+            total_w[c] += w[i, c]
+            total_v[c] += v[i, c]
+            nonempty[c] += w[i, c] > 0
+    for c in range(width):
+        mean[c] = total_v[c] / total_w[c]
+    for i in range(n):
+        for c in range(width):
+            r = v[i, c] - w[i, c] * mean[c]
+            ss[c] += r * r
+    for c in range(width):
+        if nonempty[c] < 2:
+            se[c] = np.nan
+        else:
+            se[c] = math.sqrt(ss[c] / (total_w[c] * total_w[c]) * nonempty[c] / (nonempty[c] - 1))
+
+
+@njit(**_OPTS)
+def blocking_columns(values, weights, kept, pair_a, pair_b, level_sizes, use_first, replica,
+                     n_replicas, mean, se, n_eff):
+    """Flyvbjerg-Petersen blocking of every column of ``values`` (n_blocks, n_columns) with the
+    weight sums ``weights`` (same shape), as :func:`dihedra.statistics.blocking_error` does it.
+
+    ``kept`` are the blocks with weight; ``pair_a``, ``pair_b`` the blocks merged at each level
+    (indices into the previous level, the levels' sizes in ``level_sizes``, every one of them used);
+    ``use_first``: the first level is used too; ``replica`` (0 .. n_replicas - 1) of each kept
+    block for the last level, one block per replica, when ``n_replicas >= 2``. Columns go in
+    tiles through all the levels while the tile stays in the cache.
+    """
+    n_cols = values.shape[1]
+    n0 = len(kept)
+    tile = 128
+    rows = max(n0, n_replicas, 1)
+    cur_v = np.empty((rows, tile))
+    cur_w = np.empty((rows, tile))
+    nxt_v = np.empty((rows, tile))
+    nxt_w = np.empty((rows, tile))
+    first = np.empty(tile)
+    best = np.empty(tile)
+    level_se = np.empty(tile)
+    replica_se = np.empty(tile)
+    n_samples = np.empty(tile)
+    for c0 in range(0, n_cols, tile):
+        width = min(n_cols, c0 + tile) - c0
+        for i in range(n0):
+            for c in range(width):
+                cur_v[i, c] = values[kept[i], c0 + c]
+                cur_w[i, c] = weights[kept[i], c0 + c]
+        # every block left out has no weight: the kept blocks hold all samples
+        n_samples[:width] = 0.0
+        for i in range(n0):
+            for c in range(width):
+                n_samples[c] += cur_w[i, c]
+        _block_mean_error(cur_v, cur_w, n0, width, mean[c0:c0 + width], first)
+        for c in range(width):
+            best[c] = first[c] if use_first else np.nan
+        # the replica level (one block per replica) from the kept blocks, before they are merged
+        if n_replicas >= 2:
+            nxt_v[:n_replicas, :width] = 0.0
+            nxt_w[:n_replicas, :width] = 0.0
+            for i in range(n0):
+                for c in range(width):
+                    nxt_v[replica[i], c] += cur_v[i, c]
+                    nxt_w[replica[i], c] += cur_w[i, c]
+            _block_mean_error(nxt_v, nxt_w, n_replicas, width, n_eff[c0:c0 + width], replica_se)
+        off = 0
+        for n in level_sizes:
+            for i in range(n):
+                a = pair_a[off + i]
+                b = pair_b[off + i]
+                for c in range(width):
+                    nxt_v[i, c] = cur_v[a, c] + cur_v[b, c]
+                    nxt_w[i, c] = cur_w[a, c] + cur_w[b, c]
+            off += n
+            cur_v, nxt_v = nxt_v, cur_v
+            cur_w, nxt_w = nxt_w, cur_w
+            _block_mean_error(cur_v, cur_w, n, width, n_eff[c0:c0 + width], level_se)
+            for c in range(width):
+                best[c] = _fmax(best[c], level_se[c])
+        for c in range(width):
+            b = best[c]
+            if b != b:
+                b = first[c]
+            if n_replicas >= 2:
+                b = _fmax(b, replica_se[c])
+            se[c0 + c] = b
+            m = mean[c0 + c]
+            if b > 0:
+                e = m * (1.0 - m) / (b * b)
+                n_eff[c0 + c] = e if e <= n_samples[c] or e != e else n_samples[c]
+            else:
+                n_eff[c0 + c] = np.inf
+
+
+@njit(**_OPTS)
+def _fmax(a, b):
+    """``np.fmax``: the larger, NaN only if both are NaN."""
+    if b > a or a != a:
+        return b if b == b else a
+    return a

@@ -90,22 +90,28 @@ def weighted_block_error(block_values, block_weights):
 
 def merge_pairs(values, weights, replica):
     """Merge neighbouring blocks of the same replica pairwise (one blocking step)."""
-    out_v, out_w, out_r = [], [], []
+    a, b, r = _pairs(replica)
+    return values[a] + values[b], weights[a] + weights[b], r
+
+
+def _pairs(replica):
+    """Blocks merged by one blocking step: first and second block of each pair, and the pair's
+    replica (replicas in increasing order, the blocks of one in their order, an odd last one
+    left out)."""
+    replica = np.asarray(replica)
+    out_a, out_b, out_r = [], [], []
     for r in np.unique(replica):
         sel = np.flatnonzero(replica == r)
         n_pairs = len(sel) // 2
-        if n_pairs == 0:
-            continue
-        a, b = sel[0:2 * n_pairs:2], sel[1:2 * n_pairs:2]
-        out_v.append(values[a] + values[b])
-        out_w.append(weights[a] + weights[b])
-        out_r.append(np.full(n_pairs, r))
-    if not out_v:
-        return values[:0], weights[:0], replica[:0]
-    return np.concatenate(out_v), np.concatenate(out_w), np.concatenate(out_r)
+        out_a.append(sel[0:2 * n_pairs:2])
+        out_b.append(sel[1:2 * n_pairs:2])
+        out_r.append(np.full(n_pairs, r, dtype=replica.dtype))
+    if not out_a:
+        return np.empty(0, dtype=np.intp), np.empty(0, dtype=np.intp), replica[:0]
+    return np.concatenate(out_a), np.concatenate(out_b), np.concatenate(out_r)
 
 
-def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BLOCKS):
+def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BLOCKS, compiled=None):
     """Mean and conservative standard error by Flyvbjerg-Petersen blocking.
 
     Parameters
@@ -127,7 +133,17 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
     n_effective : ndarray, same shape
         Effective number of independent samples implied for an indicator (0/1) observable,
         p (1 - p) / se**2, capped at the number of samples; inf where se == 0.
+
+    Other Parameters
+    ----------------
+    compiled : bool, optional
+        Use the numba kernel, which takes every column through all the levels at once (the
+        arithmetic of the NumPy code, in its order; sums over 1-D inputs may differ in the last
+        bit). Default: for :data:`COMPILED_MIN_VALUES` values or more, when numba is installed.
     """
+    kernels = _blocking_kernels(compiled, np.size(block_values))
+    if kernels is not None:
+        return _compiled_blocking(kernels, block_values, block_weights, block_replica, min_blocks)
     v = np.asarray(block_values, dtype=float)
     w = np.asarray(block_weights, dtype=float)
     r = np.asarray(block_replica)
@@ -162,3 +178,57 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
         n_eff = mean * (1.0 - mean) / best ** 2
         n_eff = np.where(best > 0, np.minimum(n_eff, n_samples), np.inf)
     return mean, best, n_eff
+
+
+#: Fewest values for which :func:`blocking_error` uses the numba kernel by default (below it
+#: NumPy takes a few milliseconds at most).
+COMPILED_MIN_VALUES = 1 << 16
+
+
+def _blocking_kernels(compiled, size):
+    if compiled is False or (compiled is None and size < COMPILED_MIN_VALUES):
+        return None
+    from .angles import compiled_kernels
+
+    kernels = compiled_kernels()
+    if kernels is None and compiled:
+        raise ImportError("the compiled blocking analysis needs numba: pip install numba")
+    return kernels
+
+
+def blocking_levels(replica, min_blocks=MIN_BLOCKS):
+    """The merges of :func:`blocking_error` for blocks of the given replicas: ``(pair_a, pair_b,
+    sizes)``, level after level while a level keeps at least ``min_blocks`` blocks; level k merges
+    blocks ``pair_a[j]`` and ``pair_b[j]`` of level k - 1 (``j`` in that level's slice)."""
+    r = np.asarray(replica)
+    pair_a, pair_b, sizes = [], [], []
+    while True:
+        a, b, r = _pairs(r)
+        if len(a) < min_blocks:
+            break
+        pair_a.append(a)
+        pair_b.append(b)
+        sizes.append(len(a))
+    empty = np.empty(0, dtype=np.int64)
+    return (np.concatenate(pair_a).astype(np.int64) if pair_a else empty,
+            np.concatenate(pair_b).astype(np.int64) if pair_b else empty,
+            np.asarray(sizes, dtype=np.int64))
+
+
+def _compiled_blocking(kernels, block_values, block_weights, block_replica, min_blocks):
+    v = np.asarray(block_values, dtype=float)
+    shape = v.shape[1:]
+    n_blocks = len(v)
+    v = np.ascontiguousarray(v.reshape(n_blocks, -1))
+    w = np.asarray(block_weights, dtype=float)
+    w = w.reshape(w.shape + (1,) * (np.ndim(block_values) - w.ndim))
+    w = np.ascontiguousarray(np.broadcast_to(w, (n_blocks,) + shape).reshape(n_blocks, -1))
+    r = np.asarray(block_replica)
+    kept = np.flatnonzero(w.sum(axis=1) > 0)
+    pair_a, pair_b, sizes = blocking_levels(r[kept], min_blocks)
+    replicas, rep_index = np.unique(r[kept], return_inverse=True)
+    mean, se, n_eff = (np.empty(v.shape[1]) for _ in range(3))
+    kernels.blocking_columns(v, w, kept.astype(np.int64), pair_a, pair_b, sizes,
+                             len(kept) >= min_blocks, rep_index.astype(np.int64).reshape(-1),
+                             len(replicas), mean, se, n_eff)
+    return mean.reshape(shape), se.reshape(shape), n_eff.reshape(shape)

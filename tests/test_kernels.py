@@ -1,6 +1,8 @@
 """The compiled (numba) kernels of the trajectory pass give exactly the numbers of their NumPy
 twins, and both agree with references: MDAnalysis' calc_dihedrals for the angles, the scheme's
-own assign() for the state codes at and next to every boundary, numpy.histogram for the bins."""
+own assign() for the state codes at and next to every boundary, numpy.histogram for the bins.
+The compiled blocking analysis gives the numbers of its NumPy twin (whose analytic checks are in
+test_statistics.py, run on both)."""
 
 import numpy as np
 import pandas as pd
@@ -157,3 +159,37 @@ def test_pass_in_a_triclinic_cell_equals_numpy_path_and_mdanalysis(tmp_path, mon
                     for ts in u.trajectory])
     got = compiled.angles()[list(compiled.torsion_set.labels)].to_numpy(dtype=float)
     assert np.abs((got - ref + 180.0) % 360.0 - 180.0).max() < 1e-3
+
+
+def _blocking_cases():
+    rng = np.random.default_rng(7)
+    counts = rng.integers(0, 50, size=(64, 300, 3)).astype(float)
+    counts[5, 7] = 0          # a torsion undefined in one block
+    counts[:, 9, 1] = 0       # a state never visited
+    totals = counts.sum(axis=2, keepdims=True)
+    holes = counts.copy()
+    holes[10:30] = 0          # blocks without frames (left out)
+    yield counts, totals, np.zeros(64, int), {}
+    yield counts, totals, np.repeat([3, 1, 2], [20, 30, 14]), {}     # replicas, unsorted labels
+    yield holes, holes.sum(axis=2, keepdims=True), np.repeat([0, 1], 32), {}
+    yield counts[:5], totals[:5], np.zeros(5, int), {}               # too few blocks for a level
+    yield counts[:1], totals[:1], np.zeros(1, int), {}               # one block: no error
+    yield counts, totals[:, :, 0].sum(axis=1), np.zeros(64, int), {}  # one weight per block
+    yield rng.random((64, 40)), rng.random((64, 40)), np.arange(64) % 3, {"min_blocks": 4}
+    yield rng.integers(0, 9, size=(64, 70, 27)).astype(np.int32), None, np.zeros(64, int), {}
+
+
+@pytest.mark.parametrize("case", range(8))
+def test_compiled_blocking_equals_numpy(case):
+    from dihedra.statistics import blocking_error
+
+    values, weights, replica, kw = list(_blocking_cases())[case]
+    if weights is None:   # conformer-like int32 counts, weights summed over the joint states
+        weights = values.sum(axis=2, keepdims=True)
+    ref = blocking_error(values, weights, replica, compiled=False, **kw)
+    out = blocking_error(values, weights, replica, compiled=True, **kw)
+    for a, b in zip(ref, out):
+        assert a.shape == b.shape
+        # the same operations in the same order: the same bits (NaN where NumPy has NaN)
+        np.testing.assert_array_equal(a, b)
+    assert np.isfinite(ref[1]).any() or len(values) < 2

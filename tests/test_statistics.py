@@ -27,18 +27,25 @@ def test_statistical_inefficiency_of_white_noise_is_one():
     assert statistical_inefficiency(np.random.default_rng(2).normal(size=50_000)) == pytest.approx(1.0, abs=0.1)
 
 
-def test_blocking_error_of_independent_bernoulli_samples():
+@pytest.mark.parametrize("compiled", [False, True])
+def test_blocking_error_of_independent_bernoulli_samples(compiled):
+    if compiled:
+        pytest.importorskip("numba")
     # analytic: the standard error of a fraction of N independent samples is sqrt(p(1-p)/N)
     rng = np.random.default_rng(4)
     n, p = 64_000, 0.3
     ind = (rng.random(n) < p).astype(float)
     blocks = ind.reshape(64, -1)
-    mean, se, n_eff = blocking_error(blocks.sum(1), np.full(64, blocks.shape[1]), np.zeros(64, int))
+    mean, se, n_eff = blocking_error(blocks.sum(1), np.full(64, blocks.shape[1]), np.zeros(64, int),
+                                     compiled=compiled)
     assert se == pytest.approx(np.sqrt(p * (1 - p) / n), rel=0.3)
     assert n_eff == pytest.approx(n, rel=0.6)
 
 
-def test_blocking_error_of_correlated_indicator_matches_inefficiency():
+@pytest.mark.parametrize("compiled", [False, True])
+def test_blocking_error_of_correlated_indicator_matches_inefficiency(compiled):
+    if compiled:
+        pytest.importorskip("numba")
     # analytic route (Chodera et al. 2007) against blocking (Flyvbjerg & Petersen 1989)
     errs, refs = [], []
     for seed in range(4):
@@ -46,7 +53,7 @@ def test_blocking_error_of_correlated_indicator_matches_inefficiency():
         g = statistical_inefficiency(ind)
         refs.append(np.sqrt(ind.var() * g / len(ind)))
         b = ind.reshape(64, -1)
-        errs.append(blocking_error(b.sum(1), np.full(64, b.shape[1]), np.zeros(64, int))[1])
+        errs.append(blocking_error(b.sum(1), np.full(64, b.shape[1]), np.zeros(64, int), compiled=compiled)[1])
     # blocking takes the largest level: at least the g-based error, within a factor 1.6
     assert np.mean(errs) == pytest.approx(np.mean(refs), rel=0.35)
 
