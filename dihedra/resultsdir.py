@@ -63,21 +63,28 @@ def write_table(frame, folder, name, float_format="%.6g"):
 
 def _write_plain_csv(frame, path, float_format, rows_per_part=50_000):
     """Write like ``to_csv`` if every column is plain (NumPy float/int/bool, or all ``str``);
-    return False without writing otherwise. Rows are formatted ``rows_per_part`` at a time."""
+    return False without writing otherwise. Rows are formatted ``rows_per_part`` at a time; where
+    no text needs quotes (no comma, quote or line break in any string) they are joined directly,
+    else written with the ``csv`` module (the quoting rules of ``to_csv``)."""
     import csv
 
     if not frame.columns.is_unique:
         return False
     kinds = []
+    quotes = False
     for name in frame.columns:
         col = frame[name]
         dtype = col.dtype
         if isinstance(dtype, np.dtype) and dtype.kind in "fiub":
             kinds.append(dtype.kind)
-        elif dtype.kind == "O" and all(type(v) is str for v in col.tolist()):
+        elif dtype.kind == "O" and pd.api.types.infer_dtype(col, skipna=False) == "string":
             kinds.append("O")
+            text = "".join(col.tolist())
+            quotes = quotes or any(ch in text for ch in ',"\r\n')
         else:
             return False
+    quotes = quotes or any(ch in str(c) for c in frame.columns for ch in ',"\r\n')
+    plain = not quotes and len(kinds) > 1   # (csv quotes an empty field alone on its row)
     with open(path, "w", newline="") as fh:
         writer = csv.writer(fh, lineterminator=os.linesep)
         writer.writerow([str(c) for c in frame.columns])
@@ -94,7 +101,11 @@ def _write_plain_csv(frame, path, float_format, rows_per_part=50_000):
                     columns.append(["True" if v else "False" for v in values])
                 else:
                     columns.append(values)
-            writer.writerows(zip(*columns))
+            if plain:
+                fh.write(os.linesep.join(map(",".join, zip(*columns))))
+                fh.write(os.linesep)
+            else:
+                writer.writerows(zip(*columns))
     return True
 
 

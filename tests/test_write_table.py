@@ -32,10 +32,15 @@ def test_other_column_types_go_through_pandas(tmp_path):
     assert open(ours, "rb").read() == open(tmp_path / "pandas.csv", "rb").read()
 
 
-def test_rows_written_in_parts_give_the_same_text(tmp_path):
+@pytest.mark.parametrize("text_dtype", [object, "str"])
+def test_rows_written_in_parts_give_the_same_text(tmp_path, text_dtype):
+    """Text that needs no quotes is joined without the csv module: the same text, empty fields
+    included, for object and pandas string columns."""
     from dihedra.resultsdir import _write_plain_csv
 
-    frame = pd.DataFrame({"state": ["anti", "gauche+", "gauche-"] * 10, "population": np.linspace(0, 1, 30)})
+    frame = pd.DataFrame({"state": pd.Series(["anti", "gauche+", "", "x|y:z-1"] * 8, dtype=text_dtype),
+                          "population": np.r_[np.linspace(0, 1, 30), np.nan, 1e-7],
+                          "frames": np.arange(32)})
     assert _write_plain_csv(frame, tmp_path / "parts.csv", "%.6g", rows_per_part=7)
     frame.to_csv(tmp_path / "pandas.csv", index=False, float_format="%.6g")
     assert open(tmp_path / "parts.csv", "rb").read() == open(tmp_path / "pandas.csv", "rb").read()
