@@ -58,11 +58,19 @@ def torsion_populations(state_counts, block_replica, labels, types, state_labels
     })
 
 
-def replica_populations(state_counts, block_replica, labels, types, state_labels):
-    """Per-torsion populations of each replica alone (columns as above plus ``replica``)."""
+def replica_populations(state_counts, block_replica, labels, types, state_labels, pooled=None):
+    """Per-torsion populations of each replica alone (columns as above plus ``replica``).
+
+    ``pooled``, the table of :func:`torsion_populations` for the same arguments, is taken as it
+    is when there is only one replica (the same blocks give the same numbers)."""
     frames = []
     block_replica = np.asarray(block_replica)
-    for r in np.unique(block_replica):
+    replicas = np.unique(block_replica)
+    if pooled is not None and len(replicas) == 1:
+        out = pooled.copy()
+        out.insert(0, "replica", int(replicas[0]))
+        return out
+    for r in replicas:
         sel = block_replica == r
         df = torsion_populations(np.asarray(state_counts)[sel], block_replica[sel], labels, types,
                                  state_labels)
@@ -248,10 +256,14 @@ def _conformer_labels(codes, widths, state_labels):
     """``"anti|gauche+|anti"`` for joint codes (digit j = state of member j, base n_states)."""
     n_s = len(state_labels)
     out = np.empty(len(codes), dtype=object)
-    keys = np.stack([codes, widths], axis=1)
-    uniq, inv = np.unique(keys, axis=0, return_inverse=True) if len(keys) else (keys, np.empty(0, int))
-    text = ["|".join(state_labels[(int(c) // n_s ** j) % n_s] for j in range(int(w))) for c, w in uniq]
-    out[:] = np.array(text, dtype=object)[inv.reshape(-1)] if len(text) else []
+    if not len(codes):
+        return out
+    codes, widths = np.asarray(codes, dtype=np.int64), np.asarray(widths, dtype=np.int64)
+    span = int(widths.max()) + 1
+    uniq, inv = np.unique(codes * span + widths, return_inverse=True)   # one key per (code, width)
+    text = ["|".join(state_labels[(int(k // span) // n_s ** j) % n_s] for j in range(int(k % span)))
+            for k in uniq]
+    out[:] = np.array(text, dtype=object)[inv.reshape(-1)]
     return out
 
 

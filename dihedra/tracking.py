@@ -500,7 +500,7 @@ def _assemble(tset, scheme, universe, notices, blocks):
 
     pops = torsion_populations(state_counts, block_replica, labels, types, scheme.labels)
     by_type = pool_by_type(pops)
-    by_rep = replica_populations(state_counts, block_replica, labels, types, scheme.labels)
+    by_rep = replica_populations(state_counts, block_replica, labels, types, scheme.labels, pooled=pops)
     groups, members, skipped = conformer_layout(tset, scheme.n_states)
     conf, conf_type = conformer_populations(conf_rows, conf_w, block_replica, len(block_replica), groups,
                                             members, labels, types, scheme.labels, resnames, dense=dense)

@@ -111,6 +111,21 @@ def test_replicas_are_kept_apart_and_combined(two_replicas):
     assert res.summary["replicas"][0]["time_step_ps"] == pytest.approx(2.0, rel=1e-5)
 
 
+def test_one_replica_table_is_that_replica_computed_alone(two_replicas):
+    """With one replica the per-replica table reuses the pooled one: the same numbers as the
+    per-replica computation itself."""
+    from dihedra.populations import replica_populations, torsion_populations
+
+    (top, t0), _ = two_replicas
+    res = track(top, [t0], torsions=spec8(), scheme="anti-gauche")
+    counts, replica = res.blocks["state_counts"], res.blocks["block_replica"]
+    args = (counts, replica, res.torsion_set.labels, res.torsion_set.types, res.scheme.labels)
+    alone = replica_populations(*args)
+    pd.testing.assert_frame_equal(res.populations_by_replica, alone)
+    pd.testing.assert_frame_equal(replica_populations(*args, pooled=torsion_populations(*args)), alone)
+    assert alone["population_err"].notna().all() and (alone["replica"] == 0).all()
+
+
 @pytest.mark.parametrize("backend", ["multiprocessing", "dask"])
 def test_parallel_backends_give_results_identical_to_serial(two_replicas, backend):
     (top, t0), (_, t1) = two_replicas
