@@ -268,6 +268,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     scratch = None
     own_client = None
     writers = []
+    passes = []
     try:
         if staging is None:
             scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
@@ -300,13 +301,17 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         if progress is None:
             progress = backend == "serial" and sys.stderr.isatty()
         threads = _pass_threads(threads, backend)
-        passes, replica_info = [], []
+        replica_info = []
         for r, (u, traj, fr, w) in enumerate(zip(universes, trajectories, frames, weight_arrays)):
             say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
+            # a serial pass writes its last row group while the next pass starts or the
+            # populations are computed (one at a time: one chunk buffer more at most)
+            if passes:
+                passes[-1].finish_series()
             tp = TorsionPass(u, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
                              bin_width_deg=bin_width_deg, weights=w, parts_dir=parts_dir,
                              series_dir=work, keep_angles=keep_angles, chunk_frames=chunk_frames,
-                             replica=r, dt_ps=dt_ps, threads=threads)
+                             replica=r, dt_ps=dt_ps, threads=threads, defer_close=backend == "serial")
             run_kwargs = dict(start=start, stop=stop, step=step)
             if backend == "serial":
                 run_kwargs.update(verbose=bool(progress),
@@ -349,6 +354,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         for w in writers:
             w.join()
         writers = []
+        passes[-1].finish_series()
         if staging is not None:
             result.folder = commit_output(staging, out)
             staging = None
@@ -359,6 +365,11 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     finally:
         for w in writers:   # an error: let the writing thread end before the folder goes
             w.thread.join()
+        for tp in passes:
+            try:
+                tp.finish_series()
+            except Exception:  # noqa: BLE001 - the original error matters
+                pass
         if own_client is not None:
             own_client.close()
         if staging is not None:

@@ -202,6 +202,10 @@ class TorsionPass(AnalysisBase):
         1: everything in the calling thread. 2: a second thread computes while the calling
         thread reads the next frames (the coordinates are copied into batches of frames; see
         *Overlap* above). Results are identical.
+    defer_close : bool
+        Leave the last row group and the footers of the time series files to a background
+        thread when the pass ends (a serial run only): the caller computes the populations
+        meanwhile and must call :meth:`finish_series` before the files are read.
 
     Examples
     --------
@@ -222,7 +226,7 @@ class TorsionPass(AnalysisBase):
     def __init__(self, universe, torsion_set, scheme, *, n_state_blocks=64, n_hist_blocks=16,
                  bin_width_deg=1.0, weights=None, parts_dir=None, series_dir=None, keep_angles=False,
                  chunk_frames=None, replica=0, dt_ps=None, compiled=None, threads=1,
-                 verbose=False):
+                 defer_close=False, verbose=False):
         super().__init__(universe.trajectory, verbose=verbose)
         self._universe = universe
         self.torsion_set = torsion_set
@@ -239,7 +243,9 @@ class TorsionPass(AnalysisBase):
         self.compiled = compiled
         self.threads = int(threads)
         self.series_dir = series_dir
+        self.defer_close = bool(defer_close)
         self._writer = self._write_pool = self._pending_write = self._spare = None
+        self._last_chunk = False
 
     # -- parallel merge -------------------------------------------------------------------
     def _get_aggregator(self):
@@ -267,8 +273,13 @@ class TorsionPass(AnalysisBase):
                 if getattr(self, "_overlap", None) is not None:
                     self._overlap.stop()
                     self._overlap = None
+            # the last row group and the files' footers: now, or in the background
+            self._last_chunk = self.defer_close
             self._flush()
-            self._close_writer()   # the last row group (and the files' footers)
+            if self.defer_close:
+                self._close_in_background()
+            else:
+                self._close_writer()
         except BaseException:
             try:   # the files are incomplete; whoever asked for them removes them
                 self._close_writer()
@@ -286,6 +297,7 @@ class TorsionPass(AnalysisBase):
         if abs(n_bins * self.bin_width_deg - 360.0) > 1e-9:
             raise ValueError(f"bin_width_deg must divide 360; got {self.bin_width_deg}")
         self._n_bins = n_bins
+        self._last_chunk = False
         if not hasattr(self, "_n_total"):  # _prepare called outside run()
             self._n_total = self.n_frames
             self._global_index = np.arange(self.n_frames)
@@ -734,15 +746,15 @@ class TorsionPass(AnalysisBase):
                 from .resultsdir import TimeSeriesWriter
                 self._writer = TimeSeriesWriter(self.series_dir, list(self.torsion_set.labels),
                                                 self.weights is not None, self.chunk_frames, kinds=tuple(values))
-            if self._overlap is None:   # one thread, or the last chunk of the pass
+            if self._overlap is None and not self._last_chunk:   # one thread, or the last chunk
                 self._writer.add(self.replica, index, values)
                 return
-        if self._write_pool is None:
-            from concurrent.futures import ThreadPoolExecutor
-            self._write_pool = ThreadPoolExecutor(1, thread_name_prefix="dihedra-series")
+        self._pending_write = self._pool().submit(self._writer.add, self.replica, index, values)
+        if self._last_chunk:   # (deferred: nothing writes into this buffer any more)
+            return
+        if self._spare is None:
             self._spare = (np.empty_like(self._chunk_codes),
                            None if self._chunk_angles is None else np.empty_like(self._chunk_angles))
-        self._pending_write = self._write_pool.submit(self._writer.add, self.replica, index, values)
         (self._chunk_codes, self._chunk_angles), self._spare = self._spare, (self._chunk_codes, self._chunk_angles)
 
     def _wait_write(self):
@@ -750,6 +762,25 @@ class TorsionPass(AnalysisBase):
         if pending is not None:
             with _writing(self.series_dir):
                 pending.result()
+
+    def _close_in_background(self):
+        """Queue the closing of the files after the last row group (see ``defer_close``)."""
+        if self._writer is None:
+            return
+        writer, self._writer = self._writer, None
+        self._pending_write = _Both(self._pending_write, self._pool().submit(writer.close))
+
+    def _pool(self):
+        """The thread that writes row groups in the background (one: the chunks stay in order)."""
+        if self._write_pool is None:
+            from concurrent.futures import ThreadPoolExecutor
+            self._write_pool = ThreadPoolExecutor(1, thread_name_prefix="dihedra-series")
+        return self._write_pool
+
+    def finish_series(self):
+        """Wait until the time series files are complete (after a pass with ``defer_close``);
+        raises :class:`~dihedra.errors.OutputWriteError` if writing them failed."""
+        self._close_writer()
 
     def _close_writer(self):
         try:
@@ -772,6 +803,21 @@ def _writing(folder):
     except OSError as exc:
         raise OutputWriteError(exc.errno, f"writing the time series into {folder} failed: "
                                           f"{exc.strerror or exc}") from exc
+
+
+class _Both:
+    """Two futures waited for as one (the first one's error first)."""
+
+    def __init__(self, first, second):
+        self._futures = [f for f in (first, second) if f is not None]
+
+    def result(self):
+        try:
+            for f in self._futures:
+                f.result()
+        finally:
+            for f in self._futures:   # the second one too, whatever happened to the first
+                f.exception()
 
 
 class _Batch:

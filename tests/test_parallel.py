@@ -119,6 +119,32 @@ def test_time_series_start_new_files(replicas, serial, monkeypatch):
     assert_same(split, track(top, trajs, workers=2, **KW))
 
 
+@pytest.mark.parametrize("threads", [1, 2])
+def test_deferred_close_writes_the_same_files(replicas, tmp_path, threads):
+    """With defer_close the last row group and the footers are written in the background until
+    finish_series(): then the files equal those of a pass that closes them itself."""
+    import MDAnalysis as mda
+    from dihedra.torsions import select_torsions
+    from dihedra.trackpass import TorsionPass
+
+    top, trajs, _ = replicas
+    u = mda.Universe(top, trajs[0])
+    tset = select_torsions(u, "rotatable")
+    tables = []
+    for defer in (False, True):
+        out = tmp_path / f"defer{defer}"
+        out.mkdir()
+        tp = TorsionPass(u, tset, get_scheme("klyne-prelog"), series_dir=str(out), keep_angles=True,
+                         chunk_frames=40, threads=threads, defer_close=defer)
+        tp.run()
+        tp.finish_series()
+        tp.finish_series()   # a second call has nothing left to wait for
+        tables.append([pq.read_table(str(out / f"{kind}.parquet")) for kind in ("states", "angles")])
+    for kind in range(2):   # (pandas: the angles of undefined torsions are NaN in both)
+        assert tables[0][kind].num_rows == N_FRAMES
+        pd.testing.assert_frame_equal(tables[0][kind].to_pandas(), tables[1][kind].to_pandas())
+
+
 @pytest.mark.parametrize("backend", ["multiprocessing", "dask"])
 def test_process_backends_equal_serial(replicas, serial, backend):
     top, trajs, _ = replicas
