@@ -27,7 +27,9 @@ every 20 ms). Every run is also made over 4 N frames ((b) over 2 N too): the pea
 at 1x, 2x and 4x the frames, the marginal cost at 4 N, ``(T(4N) - T(1)) / (4N - 1)``, and from
 the difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves out most of the costs that
 depend on the frame count only until the block sums are filled (conformer rows, table rows,
-compressed histogram size). The start-up (subtracted with T(1)) includes loading the compiled kernels from
+compressed histogram size); and, over every run of a command at once (1, N, 2N, 4N frames, each
+repeat), the Theil-Sen slope of wall time against frames with its 90 % interval, which shows how
+much the machine's noise leaves undecided. The start-up (subtracted with T(1)) includes loading the compiled kernels from
 numba's cache; the time to compile them with an empty cache (once per installation) is measured
 separately.
 
@@ -302,6 +304,27 @@ def pass_alone(top, xtc, n, repeat, py, env):
     return res
 
 
+def robust_slopes(samples, n):
+    """Theil-Sen slope (seconds per frame) of the wall time of every kind against its frame count,
+    over every measurement, with the 90 % interval: {kind: {slope, low, high, runs}}."""
+    from scipy.stats import theilslopes
+
+    frames_of = {"N": n, "2N": 2 * n, "4N": 4 * n}
+    points = {}
+    for name, values in samples.items():
+        kind, length = name.split(":")
+        k = START_FRAMES.get(kind, 1) if length == "1" else frames_of[length]
+        points.setdefault(kind, []).extend((k, wall) for wall, _ in values)
+    out = {}
+    for kind, pts in points.items():
+        x, y = np.array(pts, dtype=float).T
+        if len(np.unique(x)) < 2:
+            continue
+        slope, _, low, high = theilslopes(y, x, 0.90)
+        out[kind] = {"slope": float(slope), "low": float(low), "high": float(high), "runs": len(pts)}
+    return out
+
+
 # --------------------------------------------------------------------------------------------
 # Main
 # --------------------------------------------------------------------------------------------
@@ -350,8 +373,10 @@ def main(argv=None):
     measure(floor_cmd(4 * n), env=env)
     measure(track_cmd(1), env=env)
     runs = {}
+    samples = {}   # every measurement: name -> [(wall, cpu), ...]
 
     def record(name, r):
+        samples.setdefault(name, []).append((r["wall_s"], r["cpu_s"]))
         best = runs.setdefault(name, dict(r))
         for key in r:
             best[key] = min(best[key], r[key])
@@ -417,7 +442,8 @@ def main(argv=None):
     rows = [("(a) MDAnalysis reading only", "a"), ("(b) dihedra track, serial (default)", "b"),
             ("(b1) dihedra track --threads 1", "b1"), ("(c) dihedra track --workers 2", "c"),
             ("(d) --scheduler, 2 dask workers", "d")]
-    summary = {"n_torsions": n_torsions, "n_atoms": 6 * args.molecules, "frames": n, "runs": runs}
+    summary = {"n_torsions": n_torsions, "n_atoms": 6 * args.molecules, "frames": n, "runs": runs,
+               "samples": samples}
     for label, kind in rows:
         if f"{kind}:N" not in runs:
             continue
@@ -440,6 +466,17 @@ def main(argv=None):
                 summary[f"ratio_{kind}_wall_{lo}_4N"], summary[f"ratio_{kind}_cpu_{lo}_4N"] = bw / fw, bc / fc
                 print(f"    {label:<36} wall {bw * 1e3:7.3f} ms = {bw / fw:5.2f};"
                       f"  cpu {bc * 1e3:7.3f} ms = {bc / fc:5.2f}")
+        robust = robust_slopes(samples, n)
+        summary["theil_sen"] = robust
+        print("  every run at once, the slope of wall time against frames over all runs of 1, N (2N) and 4N "
+              "frames (Theil-Sen, scipy.stats.theilslopes; 90 % interval: with a noisy machine it shows what the "
+              "figures above can tell apart):")
+        fa = robust["a"]
+        for label, kind in rows:
+            if kind in robust:
+                r = robust[kind]
+                print(f"    {label:<36} {r['slope'] * 1e3:7.3f} ms/frame [{r['low'] * 1e3:.3f}, {r['high'] * 1e3:.3f}]"
+                      f"  ratio {r['slope'] / fa['slope']:5.2f} [{r['low'] / fa['high']:.2f}, {r['high'] / fa['low']:.2f}]")
         peaks = [runs[f"b:{k}"]["peak_rss_mb"] for k in ("N", "2N", "4N")]
         summary["peak_b_mb"] = peaks
         print(f"peak memory of (b) at 1x, 2x, 4x frames: {peaks[0]:.0f}, {peaks[1]:.0f}, {peaks[2]:.0f} MB "

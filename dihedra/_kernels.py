@@ -1,4 +1,5 @@
-"""Compiled per-frame kernels of the trajectory pass (numba).
+"""Compiled kernels (numba): the per-frame work of the trajectory pass, and the blocking analysis
+of the populations (:func:`blocking_columns`, used by :func:`dihedra.statistics.blocking_error`).
 
 This module is imported only through :func:`dihedra.angles.compiled_kernels`, which falls back to
 the NumPy implementations in :mod:`dihedra.angles` and :mod:`dihedra.trackpass` when numba is
