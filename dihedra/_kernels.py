@@ -321,10 +321,12 @@ def _block_mean_error(v, w, n, width, mean, se):
 
 
 @njit(**_OPTS)
-def blocking_columns(values, weights, kept, pair_a, pair_b, level_sizes, use_first, replica,
-                     n_replicas, mean, se, n_eff):
+def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level_sizes, use_first,
+                     replica, n_replicas, mean, se, n_eff):
     """Flyvbjerg-Petersen blocking of every column of ``values`` (n_blocks, n_columns) with the
-    weight sums ``weights`` (same shape), as :func:`dihedra.statistics.blocking_error` does it.
+    weight sums ``weights[:, weight_column[c]]`` for column c (``weights`` of shape (n_blocks,
+    n_weight_columns): one column of weights may serve several of values, without a copy), as
+    :func:`dihedra.statistics.blocking_error` does it.
 
     ``kept`` are the blocks with weight; ``pair_a``, ``pair_b`` the blocks merged at each level
     (indices into the previous level, the levels' sizes in ``level_sizes``, every one of them used);
@@ -350,7 +352,7 @@ def blocking_columns(values, weights, kept, pair_a, pair_b, level_sizes, use_fir
         for i in range(n0):
             for c in range(width):
                 cur_v[i, c] = values[kept[i], c0 + c]
-                cur_w[i, c] = weights[kept[i], c0 + c]
+                cur_w[i, c] = weights[kept[i], weight_column[c0 + c]]
         # every block left out has no weight: the kept blocks hold all samples
         n_samples[:width] = 0.0
         for i in range(n0):

@@ -243,9 +243,11 @@ def _column_blocking(table, totals, local, block_replica):
     used = totals.sum(axis=1) > 0
     regular = np.all((totals > 0) == used[:, None], axis=0)[local]
     cols = np.flatnonzero(regular)
-    if len(cols):
-        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, local[cols]],
-                                                           block_replica)
+    if len(cols) == n_pairs:   # (the usual case: no copy of the table or of the weights)
+        mean[:], se[:], n_eff[:] = blocking_error(table, totals, block_replica, weight_columns=local)
+    elif len(cols):
+        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals, block_replica,
+                                                           weight_columns=local[cols])
     for g in np.unique(local[~regular]):
         cols = np.flatnonzero(local == g)
         mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, g], block_replica)

@@ -111,7 +111,8 @@ def _pairs(replica):
     return np.concatenate(out_a), np.concatenate(out_b), np.concatenate(out_r)
 
 
-def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BLOCKS, compiled=None):
+def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BLOCKS, compiled=None,
+                   weight_columns=None):
     """Mean and conservative standard error by Flyvbjerg-Petersen blocking.
 
     Parameters
@@ -140,10 +141,17 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
         Use the numba kernel, which takes every column through all the levels at once (the
         arithmetic of the NumPy code, in its order; sums over 1-D inputs may differ in the last
         bit). Default: for :data:`COMPILED_MIN_VALUES` values or more, when numba is installed.
+    weight_columns : ndarray of int, optional
+        With 2-D ``block_values`` (n_blocks, n_columns): ``block_weights`` is (n_blocks, n_w) and
+        column k of the values takes the weights ``block_weights[:, weight_columns[k]]`` (the
+        compiled path reads them there, without building the (n_blocks, n_columns) copy).
     """
     kernels = _blocking_kernels(compiled, np.size(block_values))
     if kernels is not None:
-        return _compiled_blocking(kernels, block_values, block_weights, block_replica, min_blocks)
+        return _compiled_blocking(kernels, block_values, block_weights, block_replica, min_blocks,
+                                  weight_columns)
+    if weight_columns is not None:
+        block_weights = np.asarray(block_weights)[:, np.asarray(weight_columns)]
     v = np.asarray(block_values, dtype=float)
     w = np.asarray(block_weights, dtype=float)
     r = np.asarray(block_replica)
@@ -215,20 +223,28 @@ def blocking_levels(replica, min_blocks=MIN_BLOCKS):
             np.asarray(sizes, dtype=np.int64))
 
 
-def _compiled_blocking(kernels, block_values, block_weights, block_replica, min_blocks):
+def _compiled_blocking(kernels, block_values, block_weights, block_replica, min_blocks,
+                       weight_columns=None):
     v = np.asarray(block_values, dtype=float)
     shape = v.shape[1:]
     n_blocks = len(v)
     v = np.ascontiguousarray(v.reshape(n_blocks, -1))
     w = np.asarray(block_weights, dtype=float)
-    w = w.reshape(w.shape + (1,) * (np.ndim(block_values) - w.ndim))
-    w = np.ascontiguousarray(np.broadcast_to(w, (n_blocks,) + shape).reshape(n_blocks, -1))
+    given = weight_columns is not None
+    if not given:
+        # weights broadcast over the values: each values column points at its weights column
+        w = w.reshape(w.shape + (1,) * (np.ndim(block_values) - w.ndim))
+        index = np.arange(int(np.prod(w.shape[1:], dtype=np.int64))).reshape(w.shape[1:])
+        weight_columns = np.broadcast_to(index, shape).reshape(-1)
+    w = np.ascontiguousarray(w.reshape(n_blocks, -1))
+    weight_columns = np.ascontiguousarray(weight_columns, dtype=np.int64)
     r = np.asarray(block_replica)
-    kept = np.flatnonzero(w.sum(axis=1) > 0)
+    # blocks with weight in the columns used (as the NumPy code sees them)
+    kept = np.flatnonzero((w[:, np.unique(weight_columns)] if given else w).sum(axis=1) > 0)
     pair_a, pair_b, sizes = blocking_levels(r[kept], min_blocks)
     replicas, rep_index = np.unique(r[kept], return_inverse=True)
     mean, se, n_eff = (np.empty(v.shape[1]) for _ in range(3))
-    kernels.blocking_columns(v, w, kept.astype(np.int64), pair_a, pair_b, sizes,
+    kernels.blocking_columns(v, w, weight_columns, kept.astype(np.int64), pair_a, pair_b, sizes,
                              len(kept) >= min_blocks, rep_index.astype(np.int64).reshape(-1),
                              len(replicas), mean, se, n_eff)
     return mean.reshape(shape), se.reshape(shape), n_eff.reshape(shape)

@@ -179,6 +179,29 @@ def _blocking_cases():
     yield rng.integers(0, 9, size=(64, 70, 27)).astype(np.int32), None, np.zeros(64, int), {}
 
 
+def test_compiled_blocking_with_weight_columns_equals_numpy():
+    """Columns that share weights through ``weight_columns`` (conformers of one group): the same
+    numbers as the NumPy code on the gathered weights, also where an unused weight column has
+    frames in blocks that the used ones lack."""
+    from dihedra.statistics import blocking_error
+
+    rng = np.random.default_rng(8)
+    counts = rng.integers(0, 9, size=(64, 40, 27)).astype(float)
+    counts[:8] = 0                        # blocks without frames in every group ...
+    totals = counts.sum(axis=2)
+    totals[:8, 39] = 5.0                  # ... except group 39, which no column below uses
+    local, code = np.nonzero((counts > 0).any(axis=0))
+    keep = local < 39
+    local, code = local[keep], code[keep]
+    table = counts[:, local, code]
+    ref = blocking_error(table, totals[:, local], np.zeros(64, int), compiled=False)
+    for compiled in (False, True):
+        out = blocking_error(table, totals, np.zeros(64, int), compiled=compiled, weight_columns=local)
+        for a, b in zip(ref, out):
+            np.testing.assert_array_equal(a, b)
+    assert np.isfinite(ref[1]).all()
+
+
 @pytest.mark.parametrize("case", range(8))
 def test_compiled_blocking_equals_numpy(case):
     from dihedra.statistics import blocking_error
