@@ -134,7 +134,8 @@ def write_results(result, folder, blocks=True):
     for attr, name in TABLES.items():
         write_table(getattr(result, attr), folder, name)
     if blocks:
-        save_npz(os.path.join(folder, "blocks.npz"), result.blocks, narrow=tuple(NARROWED))
+        save_npz(os.path.join(folder, "blocks.npz"), result.blocks,
+                 narrow=[k for k in result.blocks if narrowed_type(k)])
     write_json(result.summary, folder, "summary.json")
 
 
@@ -167,8 +168,18 @@ def save_npz(path, arrays, level=1, narrow=()):
                     fh.write(flat[lo:lo + step].astype(small).tobytes())
 
 
-#: arrays of ``blocks.npz`` that may be stored narrow, and the type they are read back as
-NARROWED = {"histograms": np.int32}
+#: arrays of ``blocks.npz`` that may be stored narrow, and the type they are read back as (the
+#: conformer counts by prefix: ``conformer_counts_w3`` for groups of three torsions, ...)
+NARROWED = {"histograms": np.int32, "state_counts": np.int64, "conformer_counts_w": np.int32}
+
+
+def narrowed_type(name):
+    """The type an array of ``blocks.npz`` is read back as when it was stored narrow, or ``None``
+    for an array that is always stored as it is (see :data:`NARROWED`)."""
+    if name in NARROWED:
+        return NARROWED[name]
+    prefix = "conformer_counts_w"
+    return NARROWED[prefix] if name.startswith(prefix) and name[len(prefix):].isdigit() else None
 
 
 def _narrow_dtype(value):
@@ -390,8 +401,9 @@ def load_results(folder):
         summary = json.load(fh)
     with np.load(os.path.join(folder, "blocks.npz")) as npz:
         blocks = {k: npz[k] for k in npz.files}
-    for name, dtype in NARROWED.items():   # stored narrow by write_results
-        if name in blocks and blocks[name].dtype.kind == "u" and blocks[name].dtype.itemsize < np.dtype(dtype).itemsize:
+    for name in list(blocks):   # stored narrow by write_results
+        dtype = narrowed_type(name)
+        if dtype is not None and blocks[name].dtype.kind == "u" and blocks[name].dtype.itemsize < np.dtype(dtype).itemsize:
             blocks[name] = blocks[name].astype(dtype)
     tset = TorsionSet.from_frame(tables["torsions"])
     return TrackResult(torsion_set=tset, scheme=StateScheme.from_dict(summary["scheme"]), blocks=blocks,

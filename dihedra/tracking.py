@@ -334,12 +334,12 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         # the time series are written (each pass, serial or every worker, wrote the files of its
         # frames); blocks.npz is written by another thread (zlib releases Python's lock) while
         # this one computes the populations and writes the tables
-        from .resultsdir import NARROWED, save_npz, write_results
+        from .resultsdir import narrowed_type, save_npz, write_results
         shutil.rmtree(parts_dir, ignore_errors=True)
         blocks = _block_sums(passes)
 
         def write_blocks():
-            save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=tuple(NARROWED))
+            save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=[k for k in blocks if narrowed_type(k)])
         writers = [_Background(write_blocks)]
         result = _assemble(tset, scheme, universes[0], notices, blocks)
         result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(

@@ -50,19 +50,26 @@ def test_rows_written_in_parts_give_the_same_text(tmp_path, text_dtype):
 def test_histograms_stored_narrow_read_back_equal(tmp_path, top, stored):
     """save_npz narrows non-negative counts to the smallest unsigned type (checked against
     NumPy's own np.load), and load_results' widening gives the int32 array back."""
-    from dihedra.resultsdir import NARROWED, save_npz
+    from dihedra.resultsdir import narrowed_type, save_npz
 
     rng = np.random.default_rng(1)
     hist = rng.integers(0, top + 1, size=(3, 5, 360)).astype(np.int32)
     hist[0, 0, 0] = top
-    counts = rng.integers(0, 5, size=(4, 5, 3))   # int64, not listed: stored as is
+    frames = rng.integers(0, 5, size=4)   # int64, not listed: stored as is
+    arrays = {"histograms": hist, "block_frames": frames, "state_counts": hist[:, :, :3].astype(np.int64),
+              "conformer_counts_w3": hist[:, :4, :27].copy()}
+    assert [narrowed_type(k) for k in arrays] == [np.int32, None, np.int64, np.int32]
     path = tmp_path / "blocks.npz"
-    save_npz(path, {"histograms": hist, "state_counts": counts}, narrow=tuple(NARROWED))
+    save_npz(path, arrays, narrow=[k for k in arrays if narrowed_type(k)])
     with np.load(path) as npz:
         assert npz["histograms"].dtype == np.dtype(stored)
-        assert npz["state_counts"].dtype == counts.dtype
+        assert npz["block_frames"].dtype == frames.dtype
         np.testing.assert_array_equal(npz["histograms"].astype(np.int32), hist)
-        np.testing.assert_array_equal(npz["state_counts"], counts)
+        np.testing.assert_array_equal(npz["block_frames"], frames)
+        for name in ("state_counts", "conformer_counts_w3"):   # narrow where uint8/16 holds them
+            narrow = np.dtype(stored).kind == "u"
+            assert npz[name].dtype == (np.dtype(stored) if narrow else arrays[name].dtype)
+            np.testing.assert_array_equal(npz[name], arrays[name])
 
 
 def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
