@@ -77,6 +77,7 @@ from MDAnalysis.analysis.results import ResultsGroup
 from .angles import TorsionGeometry
 from .errors import OutputWriteError
 from .schemes import UNDEFINED
+from .trajread import xtc_frames
 
 #: Groups with more torsions than this get no conformer statistics (their joint states explode).
 MAX_CONFORMER_TORSIONS = 12
@@ -245,6 +246,7 @@ class TorsionPass(AnalysisBase):
         self.series_dir = series_dir
         self.defer_close = bool(defer_close)
         self._writer = self._write_pool = self._pending_write = self._spare = None
+        self._source = None
         self._last_chunk = False
 
     # -- parallel merge -------------------------------------------------------------------
@@ -264,15 +266,23 @@ class TorsionPass(AnalysisBase):
         # the whole run's frame count is known here (before the slice of this worker replaces it)
         self._n_total = self.n_frames
         self._global_index = np.asarray(indexed_frames[:, 0], dtype=np.int64)
+        # XTC through dihedra's decoder where it gives what MDAnalysis would (see trajread)
+        self._source = None if self.compiled is False else xtc_frames(self._trajectory)
         try:
             try:
-                super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
+                if self._source is None:
+                    super()._compute(indexed_frames, verbose=verbose, progressbar_kwargs=progressbar_kwargs)
+                else:
+                    self._compute_decoded(indexed_frames, verbose, progressbar_kwargs or {})
                 if self._overlap is not None:
                     self._overlap.finish(self._staged)
             finally:
                 if getattr(self, "_overlap", None) is not None:
                     self._overlap.stop()
                     self._overlap = None
+                if self._source is not None:   # (a file handle: never pickled with the results)
+                    self._source.close()
+                    self._source = None
             # the last row group and the files' footers: now, or in the background
             self._last_chunk = self.defer_close
             self._flush()
@@ -288,6 +298,38 @@ class TorsionPass(AnalysisBase):
             raise
         self._finish_worker()
         return self
+
+    def _compute_decoded(self, indexed_frames, verbose, progressbar_kwargs):
+        """``AnalysisBase._compute`` with the frames decoded in batches by ``self._source``
+        (:class:`dihedra.trajread.XTCFrames`) instead of one timestep at a time: the same
+        frames, positions, boxes and times, handed to :meth:`_process` batch by batch (or, with
+        the second thread, to it while the next batch is decoded)."""
+        from MDAnalysis.lib.log import ProgressBar
+
+        verbose = getattr(self, "_verbose", False) if verbose is None else verbose
+        frames = np.asarray(indexed_frames[:, 1], dtype=np.int64)
+        self._prepare_sliced_trajectory(slicer=frames)
+        self._prepare()
+        n = len(frames)
+        if n == 0:
+            return
+        own = None if self._overlap is not None else self._batch
+        size = len((own or self._staged).frame)
+        with ProgressBar(total=n, verbose=verbose, **progressbar_kwargs) as bar:
+            for lo in range(0, n, size):
+                hi = min(n, lo + size)
+                batch = own or self._staged
+                self._source.read(frames[lo:hi], batch.positions, batch.dimensions, batch.frame, batch.time)
+                batch.index[:hi - lo] = np.arange(lo, hi)
+                batch.n = hi - lo
+                self.frames[lo:hi] = batch.frame[:hi - lo]
+                self.times[lo:hi] = batch.time[:hi - lo]
+                if own is None:
+                    self._staged = self._overlap.submit(batch)
+                else:
+                    self._process(batch)
+                bar.update(hi - lo)
+        self._batch = None
 
     # -- AnalysisBase template -----------------------------------------------------------------
     def _prepare(self):
@@ -392,11 +434,13 @@ class TorsionPass(AnalysisBase):
         # with a second thread, batches of copied coordinates of about BATCH_BYTES
         n_atoms = self._universe.atoms.n_atoms
         self._one_frame = _Batch(1, 0)   # its positions are replaced by a view of each frame
-        self._overlap = self._staged = None
+        self._overlap = self._staged = self._batch = None
+        size = int(max(1, min(BATCH_BYTES // max(1, 12 * n_atoms), self.n_frames)))
         if self.threads > 1:
-            size = int(max(1, min(BATCH_BYTES // max(1, 12 * n_atoms), self.n_frames)))
             self._overlap = _Overlap(self._process, [_Batch(size, n_atoms) for _ in range(3)])
             self._staged = self._overlap.take()
+        elif getattr(self, "_source", None) is not None:   # decoded frames, in one thread
+            self._batch = _Batch(size, n_atoms)
         else:
             size = 1
         self._angle_rows = None if self.keep_angles else np.empty((size, n_t), dtype=np.float32)

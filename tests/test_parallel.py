@@ -4,6 +4,7 @@ does not grow with the number of frames."""
 
 import os
 
+import MDAnalysis as mda
 import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
@@ -341,6 +342,24 @@ def test_second_thread_equals_serial(replicas, serial, monkeypatch, compiled):
     res = track(top, trajs, threads=2, **KW)
     assert res.summary["parameters"]["threads"] == 2
     assert_same(serial, res)
+
+
+@pytest.mark.parametrize("kw", [dict(threads=1), dict(threads=2), dict(workers=2)])
+def test_xtc_decoder_equals_mdanalysis_reading(replicas, serial, monkeypatch, kw):
+    # dihedra's XTC decoder (dihedra.trajread) against MDAnalysis' own iteration (reference
+    # library): the same blocks, tables and time series, in batches of 7 frames
+    pytest.importorskip("numba")
+    import dihedra.trackpass as tp
+    from dihedra import trajread
+
+    top, trajs, _ = replicas
+    assert trajread.xtc_frames(mda.Universe(top, trajs[0]).trajectory) is not None
+    monkeypatch.setattr(tp, "BATCH_BYTES", 7 * 60 * 12)
+    decoded = track(top, trajs, **kw, **KW)
+    monkeypatch.setenv(trajread.NO_DECODER_ENV, "1")
+    assert trajread.xtc_frames(mda.Universe(top, trajs[0]).trajectory) is None
+    assert_same(serial, decoded)
+    assert_same(track(top, trajs, **kw, **KW), decoded)
 
 
 def test_error_in_the_second_thread_reaches_the_caller(replicas, monkeypatch):

@@ -241,10 +241,11 @@ def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     (top, t0), _ = two_replicas
     from dihedra import trackpass
 
-    def boom(self):
+    def boom(self, batch):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(trackpass.TorsionPass, "_single_frame", boom)
+    # (_process takes the frames of both readers: MDAnalysis' iteration and dihedra's decoder)
+    monkeypatch.setattr(trackpass.TorsionPass, "_process", boom)
     with pytest.raises(KeyboardInterrupt):
         track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"))
     assert os.listdir(tmp_path) == []
