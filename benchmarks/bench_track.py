@@ -223,6 +223,28 @@ for ts in u.trajectory[:int(sys.argv[3])]:
 """
 
 
+DECODER_FLOOR = """
+import sys, warnings
+warnings.simplefilter("ignore")
+import numpy as np
+import MDAnalysis as mda
+from dihedra.trajread import xtc_frames
+from dihedra.trackpass import BATCH_BYTES
+u = mda.Universe(sys.argv[1], sys.argv[2])
+src = xtc_frames(u.trajectory)
+assert src is not None, "dihedra's XTC decoder is not available here"
+n, stop = u.atoms.n_atoms, int(sys.argv[3])
+size = max(1, min(BATCH_BYTES // (12 * n), stop))
+pos, dims = np.empty((size, n, 3), np.float32), np.empty((size, 6), np.float32)
+frame, t = np.empty(size, np.int64), np.empty(size)
+total = 0.0
+for lo in range(0, stop, size):
+    hi = min(stop, lo + size)
+    src.read(np.arange(lo, hi), pos, dims, frame, t)
+    total += float(pos[0, 0, 0])
+"""
+
+
 #: Frames of the start-up run of each kind (2 workers: one frame each).
 START_FRAMES = {"c": 2, "d": 2}
 
@@ -338,7 +360,7 @@ def main(argv=None):
     ap.add_argument("--repeat", type=int, default=2,
                     help="measure every run this many times and keep the fastest (default 2)")
     ap.add_argument("--post-samples", type=float, default=1e8, help="state samples for post-processing")
-    ap.add_argument("--skip", action="append", default=[], choices=["b1", "c", "d", "memory", "alone", "jit", "post"],
+    ap.add_argument("--skip", action="append", default=[], choices=["a2", "b0", "b1", "c", "d", "memory", "alone", "jit", "post"],
                     help="leave out a part (repeatable)")
     args = ap.parse_args(argv)
 
@@ -384,6 +406,12 @@ def main(argv=None):
               f"  (load {os.getloadavg()[0]:.2f})", flush=True)
 
     plan = [("a", lambda k: floor_cmd(k)), ("b", lambda k: track_cmd(k))]
+    env_of = {}
+    if "a2" not in args.skip:
+        plan.append(("a2", lambda k: [py, "-c", DECODER_FLOOR, top, xtc, str(k)]))
+    if "b0" not in args.skip:
+        plan.append(("b0", lambda k: track_cmd(k)))
+        env_of["b0"] = dict(env, DIHEDRA_NO_XTC_DECODER="1")
     if "b1" not in args.skip:
         plan.append(("b1", lambda k: track_cmd(k, "--threads", "1")))
     if "c" not in args.skip:
@@ -407,10 +435,10 @@ def main(argv=None):
                 # start-up of a parallel run: one frame per worker, so that every worker starts
                 # (with one frame, MDAnalysis gives the whole run to one worker)
                 k = START_FRAMES.get(kind, 1) if length == "1" else frames_of[length]
-                jobs.append((f"{kind}:{length}", cmd(k), pids if kind == "d" else ()))
+                jobs.append((f"{kind}:{length}", cmd(k), pids if kind == "d" else (), env_of.get(kind, env)))
         for round_ in range(args.repeat):
-            for name, cmd, extra in jobs:
-                record(name, measure(cmd, extra_pids=extra, env=env))
+            for name, cmd, extra, job_env in jobs:
+                record(name, measure(cmd, extra_pids=extra, env=job_env))
             if round_ == 0 and "memory" not in args.skip:
                 record("b:2N", measure(track_cmd(2 * n), env=env))
     alone = None
@@ -440,6 +468,8 @@ def main(argv=None):
     print(f"  {'':<38} {'wall ms/frame':>14} {'ratio':>7} {'cpu ms/frame':>13} {'ratio':>7} {'peak MB':>8}")
     floor_w, floor_c = marginal("a", "wall_s"), marginal("a", "cpu_s")
     rows = [("(a) MDAnalysis reading only", "a"), ("(b) dihedra track, serial (default)", "b"),
+            ("(a2) dihedra's XTC decoder reading only", "a2"),
+            ("(b0) track reading through MDAnalysis", "b0"),
             ("(b1) dihedra track --threads 1", "b1"), ("(c) dihedra track --workers 2", "c"),
             ("(d) --scheduler, 2 dask workers", "d")]
     summary = {"n_torsions": n_torsions, "n_atoms": 6 * args.molecules, "frames": n, "runs": runs,
