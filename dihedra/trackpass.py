@@ -755,10 +755,14 @@ class TorsionPass(AnalysisBase):
             # histogram blocks: files, or the non-empty cells where that is less than half the
             # bytes of the dense block
             if stem is not None:
+                # (counts as uint8 / uint16 where the frames of this worker in the block fit:
+                # a quarter or half of the bytes to write and to read; the parent adds them
+                # into its int32 sums)
+                per_block = np.bincount(self._frame_hblock, minlength=len(self._hist))
                 parts = []
                 for b in range(len(self._hist)):
                     path = f"{stem}.hist{self._hb_lo + b:04d}.npy"
-                    np.save(path, self._hist[b])
+                    np.save(path, _narrow_counts(self._hist[b], per_block[b]))
                     parts.append((self._hb_lo + b, path))
                 self.results.hist_parts = parts
             else:
@@ -952,6 +956,17 @@ def _hist_part(block, dense):
     if len(cells) * (4 + dense.itemsize) < dense.nbytes // 2 and dense.size < 2**31:
         return [(block, cells.astype(np.int32), dense.reshape(-1)[cells])]
     return [(block, dense[None])]
+
+
+def _narrow_counts(block, most):
+    """An int32 histogram block as uint8 or uint16 when no count can exceed ``most`` (the
+    frames that went into it), else as it is (weighted sums, long blocks)."""
+    if block.dtype != np.int32:
+        return block
+    for small in (np.uint8, np.uint16):
+        if most <= np.iinfo(small).max:
+            return block.astype(small)
+    return block
 
 
 def _transpose(src, dst, kernels=None):
