@@ -417,7 +417,10 @@ class TorsionPass(AnalysisBase):
         self._conf_rows, self._conf_wts = [], []
         # chunk buffers, at most as many rows as this worker has frames
         if self.chunk_frames is None:
-            self.chunk_frames = default_chunk_frames(n_t, self.keep_angles)
+            # (with the second thread a full chunk is written while the next fills a second
+            # buffer: two half chunks hold what one chunk would, so the peak does not rise
+            # once a run outgrows its first chunk)
+            self.chunk_frames = default_chunk_frames(n_t, self.keep_angles) // (2 if self.threads > 1 else 1)
         cf = int(max(1, min(int(self.chunk_frames), self.n_frames)))
         # codes (and angles) of the buffered frames, one row per frame, beside the fine bins;
         # when the buffer is full they are counted and transposed into the chunk: one row per
