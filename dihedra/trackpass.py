@@ -191,7 +191,8 @@ class TorsionPass(AnalysisBase):
     keep_angles : bool
         Also write the angles (float32 degrees).
     chunk_frames : int, optional
-        Frames per chunk and per Parquet row group (default: about 64 MB of values per chunk).
+        Frames per chunk and per Parquet row group (default: about 64 MB of values per chunk,
+        32 MB with ``threads=2``, whose two chunk buffers then hold what one does).
     replica : int
         Replica number written with every frame.
     dt_ps : float, optional
@@ -417,10 +418,7 @@ class TorsionPass(AnalysisBase):
         self._conf_rows, self._conf_wts = [], []
         # chunk buffers, at most as many rows as this worker has frames
         if self.chunk_frames is None:
-            # (with the second thread a full chunk is written while the next fills a second
-            # buffer: two half chunks hold what one chunk would, so the peak does not rise
-            # once a run outgrows its first chunk)
-            self.chunk_frames = default_chunk_frames(n_t, self.keep_angles) // (2 if self.threads > 1 else 1)
+            self.chunk_frames = default_chunk_frames(n_t, self.keep_angles, self.threads)
         cf = int(max(1, min(int(self.chunk_frames), self.n_frames)))
         # codes (and angles) of the buffered frames, one row per frame, beside the fine bins;
         # when the buffer is full they are counted and transposed into the chunk: one row per
@@ -946,10 +944,13 @@ class _Overlap:
             self._thread.join()
 
 
-def default_chunk_frames(n_torsions, keep_angles):
-    """Frames per chunk (and Parquet row group): about ``CHUNK_BYTES`` of values, 64 to 100,000."""
+def default_chunk_frames(n_torsions, keep_angles, threads=1):
+    """Frames per chunk (and Parquet row group): about ``CHUNK_BYTES`` of values, 64 to 100,000;
+    half of that with a second thread, where a full chunk is written while the next fills a
+    second buffer: the two hold what one chunk would, so the peak does not rise once a run
+    outgrows its first chunk."""
     per_frame = max(1, int(n_torsions)) * (1 + 4 * bool(keep_angles))
-    return int(max(64, min(100_000, CHUNK_BYTES // per_frame)))
+    return int(max(64, min(100_000, CHUNK_BYTES // per_frame))) // (2 if threads > 1 else 1)
 
 
 def _hist_part(block, dense):
