@@ -1878,6 +1878,7 @@ def write_kinetics(result, folder, seconds=None):
     """Write the four tables and ``kinetics.json`` into ``folder``, each through a temporary name."""
     from . import __version__
     from .csvtables import write_csv
+    from .outputs import write_file
     from .resultsdir import write_json
 
     written = []
@@ -1886,14 +1887,11 @@ def write_kinetics(result, folder, seconds=None):
     if result.dwell_times is not None:
         tables.append(("dwell_times.csv", result.dwell_times))
     for name, frame in tables:
-        tmp = f".{name}.partial"
-        write_csv(frame, os.path.join(folder, tmp))
-        os.replace(os.path.join(folder, tmp), os.path.join(folder, name))
+        write_file(folder, name, lambda tmp, frame=frame: write_csv(frame, tmp))
         written.append(name)
     doc = {"dihedra_version": __version__, "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
            "parameters": result.parameters, "notices": list(result.notices), "files": written,
            "run_seconds": None if seconds is None else round(seconds, 3)}
-    write_json(doc, folder, ".kinetics.json.partial")
-    os.replace(os.path.join(folder, ".kinetics.json.partial"), os.path.join(folder, "kinetics.json"))
+    write_file(folder, "kinetics.json", lambda tmp: write_json(doc, os.path.dirname(tmp), os.path.basename(tmp)))
     return written
 

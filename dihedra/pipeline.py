@@ -379,14 +379,17 @@ def _toml_string(text):
     return '"' + str(text).replace("\\", "\\\\").replace('"', '\\"') + '"'
 
 
-def _write_copy(pipe, record):
+def _write_copy(pipe, record, created):
+    """Copy the analysis file and the record of the steps into the results folder: only once a step
+    of this run has made the folder (or, when no step makes one, into the existing results folder,
+    replacing only files dihedra wrote there)."""
+    from .outputs import write_file, write_text
     from .resultsdir import write_json
 
-    if not os.path.isdir(pipe.out):
+    if not os.path.isdir(pipe.out) or (not created and any(st.spec.creates_folder for st in pipe.steps)):
         return
-    with open(os.path.join(pipe.out, COPY_NAME), "w", encoding="utf-8") as fh:
-        fh.write(_copy_text(pipe))
-    write_json(record, pipe.out, RECORD_NAME)
+    write_text(pipe.out, COPY_NAME, _copy_text(pipe))
+    write_file(pipe.out, RECORD_NAME, lambda tmp: write_json(record, os.path.dirname(tmp), os.path.basename(tmp)))
 
 
 def run_pipeline(pipe, log=None):
@@ -407,6 +410,13 @@ def run_pipeline(pipe, log=None):
               "sha256": hashlib.sha256(pipe.text.encode("utf-8")).hexdigest(), "base_dir": pipe.base_dir,
               "results_folder": pipe.out, "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
               "notes": list(pipe.notes), "steps": []}
+    creating = [st for st in pipe.steps if st.spec.creates_folder]
+    if creating:   # before any step: the results folder may be made (or replaced) here
+        from .outputs import check_folder_target
+        first = parse_step(creating[0].spec, creating[0].argv, creating[0].where)
+        check_folder_target(pipe.out, overwrite=bool(getattr(first, "overwrite", False)), inputs=[pipe.path],
+                            option="out")
+    created = False
     for k, step in enumerate(pipe.steps, start=1):
         say(f"== step {k}/{len(pipe.steps)}: {step.command()}")
         args = parse_step(step.spec, step.argv, step.where)
@@ -417,13 +427,14 @@ def run_pipeline(pipe, log=None):
         except DihedraError as exc:
             entry.update(status="failed", seconds=round(time.time() - t0, 3), error=str(exc))
             record["steps"].append(entry)
-            _write_copy(pipe, record)
+            _write_copy(pipe, record, created)
             raise DihedraError(f"step {step.name} ({step.where}) failed: {exc}") from None
         if status not in (None, 0):
             raise DihedraError(f"step {step.name} ({step.where}) ended with status {status}.")
         entry.update(status="done", seconds=round(time.time() - t0, 3))
         record["steps"].append(entry)
-        _write_copy(pipe, record)
+        created = created or step.spec.creates_folder
+        _write_copy(pipe, record, created)
     record["finished"] = time.strftime("%Y-%m-%dT%H:%M:%S%z")
-    _write_copy(pipe, record)
+    _write_copy(pipe, record, created)
     return pipe.out

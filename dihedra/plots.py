@@ -90,6 +90,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import DihedraError, one_of
+from .outputs import write_file
 
 # ----------------------------------------------------------------------------------------------
 # Colours and style
@@ -1672,17 +1673,18 @@ def write_figures(folder, formats=("pdf", "png"), width="single", torsions=None,
         one_of("figure format", f, FORMATS)
     if not fmts:
         raise DihedraError("give at least one figure format (pdf, png or svg).")
-    out_dir = out_dir or os.path.join(os.fspath(folder), "figures")
+    # into the results folder's figures/ (replacing figures dihedra drew there before), or into
+    # out_dir (never over an existing file)
+    base, sub = (os.fspath(folder), "figures/") if out_dir is None else (os.fspath(out_dir), "")
     paths = []
     with style():
         fset = figure_set(folder, width=width, torsions=torsions, types=types, log=log)
-        os.makedirs(out_dir, exist_ok=True)
+        os.makedirs(base, exist_ok=True)
         for item in fset.items:
             for f in fmts:
-                path = os.path.join(out_dir, f"{item.name}.{f}")
-                item.figure.savefig(path, dpi=300 if f == "png" else None,
-                                    metadata=_metadata(f))
-                paths.append(path)
+                def save(tmp, fig=item.figure, fmt=f):
+                    fig.savefig(tmp, format=fmt, dpi=300 if fmt == "png" else None, metadata=_metadata(fmt))
+                paths.append(write_file(base, f"{sub}{item.name}.{f}", save))
     return paths, fset.skipped
 
 

@@ -87,13 +87,13 @@ from __future__ import annotations
 
 import functools
 import os
-import uuid
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from .errors import DihedraError
+from .outputs import write_file
 from .units import check_temperature, from_kj_mol, canonical_energy_unit, kt_kj_mol, wrap_deg
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
@@ -150,15 +150,9 @@ def unit_suffix(unit):
 
 
 def replace_into(folder, name, write):
-    """Write a file through ``write(path)`` under a temporary name, then move it into place."""
-    tmp = os.path.join(folder, f".{name}.{uuid.uuid4().hex[:8]}.tmp")
-    try:
-        write(tmp)
-        os.replace(tmp, os.path.join(folder, name))
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
-    return os.path.join(folder, name)
+    """Write a file through ``write(path)`` under a temporary name, then move it into place (only
+    over a file dihedra wrote: see :func:`dihedra.outputs.write_file`)."""
+    return write_file(folder, name, write)
 
 
 def write_table_replacing(frame, folder, name):

@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import DihedraError
+from .outputs import check_replaceable_in, check_single_file, file_head_contains, is_inside, write_text
 from .plots import read_optional, read_optional_json
 
 #: Rows shown of long tables (the full table is in the folder).
@@ -592,26 +593,35 @@ def build_report(folder, width="single", figures=True, log=None):
     notes += "</section>"
     foot = ("<footer>Self-contained report: no scripts, no external requests; figures are embedded SVG. "
             "Tables show the first rows; the folder holds the full CSV files.</footer>")
-    return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+    return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>" + REPORT_SIGNATURE +
             "<meta name='viewport' content='width=device-width, initial-scale=1'>"
             f"<title>dihedra report: {_e(os.path.basename(folder))}</title><style>{_CSS}</style></head><body>"
             + head + nav + "<main>" + "".join(body) + notes + foot + "</main></body></html>\n")
 
 
+#: The mark of a report in its head (a report replaces only a file that carries it).
+REPORT_SIGNATURE = "<meta name='generator' content='dihedra report'>"
+
+
 def write_report(folder, out=None, width="single", figures=True, log=None):
-    """Write ``report.html`` (or ``out``) for a results folder; returns its path."""
+    """Write ``report.html`` (or ``out``) for a results folder; returns its path.
+
+    The report replaces only an earlier report (a file in the folder that dihedra wrote, or an
+    HTML file that carries dihedra's report signature); any other existing file is refused."""
     from .resultsdir import load_results
 
     folder = os.fspath(folder)
     if not os.path.isdir(folder):
         load_results(folder)  # raises the one message for a missing results folder
     out = os.path.abspath(out or os.path.join(folder, "report.html"))
-    parent = os.path.dirname(out)
-    if not os.path.isdir(parent):
-        raise DihedraError(f"the folder of the report {out} does not exist; create it or choose another --out.")
+    inside = is_inside(os.path.dirname(out), folder)
+    if inside:
+        name = os.path.join(os.path.relpath(os.path.realpath(os.path.dirname(out)), os.path.realpath(folder)),
+                            os.path.basename(out))
+        check_replaceable_in(folder, name)
+    else:
+        out = check_single_file(out, ours=lambda p: file_head_contains(p, REPORT_SIGNATURE), kind="dihedra report")
     text = build_report(folder, width=width, figures=figures, log=log)
-    tmp = out + ".partial"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        fh.write(text)
-    os.replace(tmp, out)
-    return out
+    if inside:
+        return write_text(folder, name, text)
+    return write_text(os.path.dirname(out), os.path.basename(out), text, marked=False)

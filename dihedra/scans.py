@@ -687,9 +687,27 @@ def _version(name):
         return "?"
 
 
-def write_scan_csv(scan, path, extra=None):
-    """Write a scan as CSV with ``# key: value`` metadata lines (readable by :func:`read_scan_csv`)."""
-    from .profiles import replace_into
+#: The first line of a scan file that dihedra wrote (only such a file is replaced).
+SCAN_SIGNATURE = "# content: dihedra torsion scan"
+
+
+def check_scan_output(path, overwrite=False, inputs=()):
+    """Check a scan file to be written: an existing file is replaced only with ``overwrite`` and
+    only when it is a scan dihedra wrote; returns the absolute path."""
+    from .outputs import check_single_file, file_head_contains
+
+    return check_single_file(path, inputs=inputs, overwrite=overwrite, kind="dihedra scan",
+                             ours=lambda p: file_head_contains(p, SCAN_SIGNATURE, limit=len(SCAN_SIGNATURE)))
+
+
+def write_scan_csv(scan, path, extra=None, overwrite=False):
+    """Write a scan as CSV with ``# key: value`` metadata lines (readable by :func:`read_scan_csv`).
+
+    An existing file is replaced only with ``overwrite`` and only when it is a scan that dihedra
+    wrote (see :func:`check_scan_output`)."""
+    from .outputs import write_file
+
+    path = check_scan_output(path, overwrite=overwrite)
 
     meta = {"content": "dihedra torsion scan", "kind": scan.kind}
     meta.update({k: v for k, v in scan.metadata.items() if k not in ("reached_angle_deg", "kind")})
@@ -710,4 +728,4 @@ def write_scan_csv(scan, path, extra=None):
         with open(tmp, "w") as fh:
             fh.write("\n".join(lines) + "\n")
 
-    return replace_into(folder, name, write)
+    return write_file(folder, name, write, marked=False)

@@ -29,8 +29,9 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .errors import DihedraError, InputFileError, OutputExistsError, OutputWriteError
+from .errors import DihedraError, InputFileError, OutputWriteError
 from .inputs import check_readable, load_universe, sha256, truncated_error
+from .outputs import StagedFolder
 from .populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
                           replica_populations, torsion_populations)
 from .schemes import get_scheme
@@ -160,34 +161,19 @@ def _weights_per_replica(spec, frames_per_replica):
     return out, column
 
 
-def prepare_output(out, overwrite):
-    """Check the output folder before any work; return the staging folder beside it."""
-    out = os.path.abspath(os.fspath(out))
-    if os.path.exists(out) and not overwrite:
-        raise OutputExistsError(f"output folder {out} already exists; choose another --out or add "
-                                "--overwrite (its contents are left untouched).")
-    if os.path.exists(out) and not os.path.isdir(out):
-        raise OutputExistsError(f"output path {out} exists and is not a folder.")
-    parent = os.path.dirname(out)
-    if not os.path.isdir(parent):
-        raise OutputExistsError(f"the parent folder of {out} does not exist; create it first.")
-    if not os.access(parent, os.W_OK):
-        raise OutputExistsError(f"cannot write in {parent} (permissions).")
-    return tempfile.mkdtemp(prefix=f".{os.path.basename(out)}.partial-", dir=parent)
-
-
-def commit_output(staging, out):
-    """Move a finished staging folder into place (replacing ``out`` when it exists)."""
-    out = os.path.abspath(os.fspath(out))
-    old = None
-    if os.path.exists(out):
-        old = tempfile.mkdtemp(prefix=f".{os.path.basename(out)}.old-", dir=os.path.dirname(out))
-        os.rmdir(old)
-        os.replace(out, old)
-    os.replace(staging, out)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
-    return out
+def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None):
+    """The files a tracking run reads (for the output checks: a results folder never replaces
+    one of them)."""
+    files = [topology, *trajectories]
+    for spec in ([torsions] if isinstance(torsions, (str, os.PathLike)) else list(torsions or [])):
+        if isinstance(spec, (str, os.PathLike)):
+            files.append(spec)
+    if isinstance(scheme, (str, os.PathLike)):
+        files.append(scheme)
+    if weights is not None:
+        files.append(str(weights))
+        files.append(str(weights).rsplit(":", 1)[0])
+    return [os.fspath(f) for f in files if isinstance(f, (str, os.PathLike))]
 
 
 def _frame_indices(universe, start, stop, step, where):
@@ -264,7 +250,9 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     trajectories = [os.fspath(t) for t in trajectories]
     if not trajectories:
         raise DihedraError("give at least one trajectory.")
-    staging = prepare_output(out, overwrite) if out is not None else None
+    staging = (StagedFolder.begin(out, overwrite=overwrite, command="track",
+                                  inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
+               if out is not None else None)
     scratch = None
     own_client = None
     writers = []
@@ -274,7 +262,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
             work = scratch.name
         else:
-            work = staging
+            work = staging.path
         parts_dir = os.path.join(work, "_parts")
         os.makedirs(parts_dir)
         notices = []
@@ -356,7 +344,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         writers = []
         passes[-1].finish_series()
         if staging is not None:
-            result.folder = commit_output(staging, out)
+            result.folder = staging.commit()
             staging = None
         else:
             result._scratch = scratch
@@ -373,7 +361,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         if own_client is not None:
             own_client.close()
         if staging is not None:
-            shutil.rmtree(staging, ignore_errors=True)
+            staging.discard()
         if scratch is not None:
             scratch.cleanup()
 

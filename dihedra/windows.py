@@ -683,13 +683,15 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
     if bandwidth_deg is not None and not (float(bandwidth_deg) > 0):
         raise DihedraError(f"the kernel bandwidth must be a positive number of degrees; got {bandwidth_deg!r}.")
     seed = DEFAULT_SEED if seed is None else int(seed)
+    windows = read_windows(windows_csv)
     if out is not None:
-        from .tracking import prepare_output
-        staging = prepare_output(out, overwrite)
+        from .outputs import StagedFolder
+        inputs = [windows_csv, *windows["trajectory"], *windows["topology"],
+                  *(t for t in windows["torsions"] if os.path.exists(t))]
+        staging = StagedFolder.begin(out, overwrite=overwrite, inputs=inputs, command="windows")
     else:
         staging = None
     try:
-        windows = read_windows(windows_csv)
         data = collect_windows(windows, scheme, start, stop, step, workers, log)
         notices = list(data.notices)
         first = data.tracks[0]
@@ -928,15 +930,13 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
         wres = WindowsResult(result=result, profiles=pset, windows=wtab, overlap=otab, comparison=comparison,
                              agreement=agreement, info=info, notices=notices)
         if staging is not None:
-            write_windows(wres, staging)
-            from .tracking import commit_output
-            result.folder = commit_output(staging, out)
+            write_windows(wres, staging.path)
+            result.folder = staging.commit()
             staging = None
         return wres
     finally:
         if staging is not None:
-            import shutil
-            shutil.rmtree(staging, ignore_errors=True)
+            staging.discard()
 
 
 def _summary(first, data, windows, scheme, temperature_k, tset, notices, start, stop, step, seconds):

@@ -137,8 +137,10 @@ def test_existing_output_folder_is_left_untouched(system, tmp_path, capsys):
     code, _, err = run_cli(capsys, "track", top, traj, "--torsions", "0,1,2,3", "--out", out)
     assert_one_line_error(code, err, "already exists", "--overwrite")
     assert os.listdir(out) == ["keep.txt"]
-    code, _, _ = run_cli(capsys, "track", top, traj, "--torsions", "0,1,2,3", "--out", out, "--overwrite")
-    assert code == 0 and "keep.txt" not in os.listdir(out)
+    # --overwrite replaces only a folder dihedra made, holding nothing but its own files
+    code, _, err = run_cli(capsys, "track", top, traj, "--torsions", "0,1,2,3", "--out", out, "--overwrite")
+    assert_one_line_error(code, err, "not made by dihedra")
+    assert os.listdir(out) == ["keep.txt"]
 
 
 def test_read_only_trajectory_folder_still_works_with_a_notice(system, tmp_path, capsys, monkeypatch):

@@ -205,6 +205,15 @@ def test_the_trappe_scan_file_is_the_trappe_potential():
     np.testing.assert_allclose(e - e.min(), v - v.min(), atol=1e-5)
 
 
+def test_demo_does_not_take_a_record_that_dihedra_did_not_write(tmp_path):
+    from dihedra.cli.demo import is_previous_demo
+
+    out = tmp_path / "demo"
+    os.makedirs(out)
+    (out / RECORD_NAME).write_text(json.dumps({"analysis_file": example_path("demo.toml")}))
+    assert not is_previous_demo(str(out))   # no list of dihedra's files
+
+
 def test_demo_replaces_only_a_previous_demo_folder(tmp_path, capsys):
     other = tmp_path / "mine"
     os.makedirs(other)
@@ -231,9 +240,13 @@ def test_demo_runs_every_step_and_ends_with_the_report(tmp_path, capsys):
 def test_demo_replaces_a_previous_demo_folder(tmp_path, monkeypatch):
     import dihedra.cli.demo as demo
 
+    from dihedra.outputs import MARKER
+
     out = tmp_path / "demo"
     os.makedirs(out)
-    (out / RECORD_NAME).write_text(json.dumps({"analysis_file": "/somewhere/demo.toml"}))
+    # a folder an earlier demo made: its list of dihedra's files names the record of the demo's run
+    (out / RECORD_NAME).write_text(json.dumps({"analysis_file": example_path("demo.toml")}))
+    (out / MARKER).write_text(json.dumps({"run_id": "x", "files": [RECORD_NAME]}))
     seen = {}
     monkeypatch.setattr(demo, "run_pipeline", lambda pipe, log=None: seen.setdefault("argv", pipe.steps[0].argv))
     assert main(["demo", "--out", str(out), "--workers", "2"]) == 0

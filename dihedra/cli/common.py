@@ -46,7 +46,7 @@ def add_track_options(parser):
     parser.add_argument("--temperature", type=float, default=None, metavar="K",
                         help="simulation temperature in kelvin, recorded for later steps")
     parser.add_argument("--overwrite", action="store_true",
-                        help="replace an existing output folder")
+                        help="replace an existing results folder that dihedra made and that holds only its files")
 
 
 def say(message, file=None):

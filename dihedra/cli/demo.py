@@ -5,6 +5,7 @@ import os
 
 from .. import example_path
 from ..errors import OutputExistsError
+from ..outputs import read_marker
 from ..pipeline import RECORD_NAME, load_pipeline, run_pipeline
 from .common import say
 
@@ -43,16 +44,16 @@ def run(args):
 
 
 def is_previous_demo(out):
-    """Whether ``out`` is a folder an earlier ``dihedra demo`` wrote (only those are replaced)."""
-    for name, test in ((RECORD_NAME, lambda d: os.path.basename(str(d.get("analysis_file", ""))) == DEMO_FILE),
-                       ("summary.json", lambda d: any(os.path.basename(str(r.get("trajectory", ""))) == "hexane.xtc"
-                                                      for r in d.get("replicas", [])))):
-        path = os.path.join(out, name)
-        if os.path.exists(path):
-            try:
-                with open(path) as fh:
-                    if test(json.load(fh)):
-                        return True
-            except (OSError, ValueError, AttributeError):
-                pass
-    return False
+    """Whether ``out`` is a folder an earlier ``dihedra demo`` made (only those are replaced): a
+    results folder whose list of dihedra's files names the record of an analysis run from the
+    bundled demo.toml (anything else in it makes the replacement refuse later)."""
+    marker = read_marker(out)
+    if marker is None or RECORD_NAME not in marker["files"]:
+        return False
+    try:
+        with open(os.path.join(out, RECORD_NAME)) as fh:
+            record = json.load(fh)
+        source = str(record.get("analysis_file", ""))
+    except (OSError, ValueError, AttributeError):
+        return False
+    return bool(source) and os.path.realpath(source) == os.path.realpath(example_path(DEMO_FILE))

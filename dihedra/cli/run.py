@@ -15,7 +15,8 @@ def register(sub):
         epilog="See docs/pipelines.md for the layout and a full example.")
     p.add_argument("analysis", metavar="ANALYSIS.toml", help="the analysis file")
     p.add_argument("--out", metavar="DIR", default=None, help="results folder (replaces the file's out)")
-    p.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace an existing results folder that dihedra made and that holds only its files")
     p.add_argument("--dry-run", action="store_true", help="check the file and print the commands, run nothing")
     p.set_defaults(func=run)
 

@@ -2,8 +2,7 @@
 
 import os
 
-from ..errors import DihedraError, OutputExistsError
-from ..scans import mmff94_scan, molecule_from_topology, write_scan_csv, xtb_scan
+from ..scans import check_scan_output, mmff94_scan, molecule_from_topology, write_scan_csv, xtb_scan
 from .common import say
 
 METHODS = ("mmff94", "gfn2-xtb")
@@ -27,16 +26,13 @@ def register(sub):
     p.add_argument("--charge", type=int, default=0, metavar="Q", help="total charge (gfn2-xtb; default 0)")
     p.add_argument("--unpaired", type=int, default=0, metavar="N",
                    help="unpaired electrons (gfn2-xtb; default 0)")
-    p.add_argument("--overwrite", action="store_true", help="replace an existing --out file")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace an existing --out file (only a scan that dihedra wrote)")
     p.set_defaults(func=run)
 
 
 def run(args):
-    out = os.path.abspath(args.out)
-    if os.path.exists(out) and not args.overwrite:
-        raise OutputExistsError(f"{out} already exists; choose another --out or add --overwrite.")
-    if not os.path.isdir(os.path.dirname(out)):
-        raise DihedraError(f"the folder of {out} does not exist; create it first.")
+    out = check_scan_output(args.out, overwrite=args.overwrite, inputs=[args.topology, args.trajectory])
     mol, local = molecule_from_topology(args.topology, args.torsion, args.trajectory)
     step = args.step if args.step is not None else (10.0 if args.method == "mmff94" else 30.0)
     say(f"{args.method} relaxed scan of torsion {args.torsion} ({mol.GetNumAtoms()} atoms), every {step:g} deg")
@@ -49,7 +45,7 @@ def run(args):
     else:
         scan = xtb_scan(mol, local, step_deg=step, charge=args.charge, unpaired=args.unpaired, progress=progress)
     write_scan_csv(scan, out, extra={"topology": os.path.abspath(args.topology),
-                                     "torsion_atoms": args.torsion})
+                                     "torsion_atoms": args.torsion}, overwrite=args.overwrite)
     print(f"{len(scan.angle_deg)} points, lowest at {scan.angle_deg[scan.energy_kj_mol.argmin()]:g} deg, "
           f"highest {scan.energy_kj_mol.max():.2f} kJ/mol above it")
     for a, e in zip(scan.angle_deg, scan.energy_kj_mol):

@@ -34,7 +34,8 @@ def register(sub):
     p.add_argument("--workers", type=int, default=1, metavar="N", help="worker processes per window")
     p.add_argument("--max-mbar-samples", type=int, default=DEFAULT_MAX_MBAR_SAMPLES, metavar="N",
                    help=f"samples handed to pymbar at most (default {DEFAULT_MAX_MBAR_SAMPLES})")
-    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace an existing results folder that dihedra made and that holds only its files")
     p.set_defaults(func=run)
 
 
