@@ -15,7 +15,7 @@ fastest kept, as the machine may be shared; in rounds, each round running every 
 that a slow spell of the machine touches all kinds alike):
 
 (a) bare MDAnalysis iteration reading the coordinates (the I/O floor of the issue);
-(a2) dihedra's own XTC decoder (``dihedra.trajread``, which ``track`` uses for XTC) reading the
+(a2) dihedra's own XTC decoder (``dihedra.trajectory.trajread``, which ``track`` uses for XTC) reading the
     same frames in batches, nothing else;
 (b) ``dihedra track`` serial, as a user runs it: one process; on a machine with two usable
     cores its default is a second thread that computes while the first reads;
@@ -237,8 +237,8 @@ import sys, warnings
 warnings.simplefilter("ignore")
 import numpy as np
 import MDAnalysis as mda
-from dihedra.trajread import xtc_frames
-from dihedra.trackpass import BATCH_BYTES
+from dihedra.trajectory.trajread import xtc_frames
+from dihedra.trajectory.trackpass import BATCH_BYTES
 u = mda.Universe(sys.argv[1], sys.argv[2])
 src = xtc_frames(u.trajectory)
 assert src is not None, "dihedra's XTC decoder is not available here"
@@ -264,9 +264,9 @@ JIT_PROBE = """
 import sys, time, warnings
 warnings.simplefilter("ignore")
 import MDAnalysis as mda
-from dihedra.schemes import get_scheme
-from dihedra.torsions import select_torsions
-from dihedra.trackpass import TorsionPass
+from dihedra.selection.schemes import get_scheme
+from dihedra.selection.torsions import select_torsions
+from dihedra.trajectory.trackpass import TorsionPass
 u = mda.Universe(sys.argv[1], sys.argv[2])
 tset = select_torsions(u, "rotatable")
 out = []
@@ -282,9 +282,9 @@ PASS_PROBE = """
 import json, os, shutil, statistics, sys, tempfile, time, warnings
 warnings.simplefilter("ignore")
 import MDAnalysis as mda
-from dihedra.schemes import get_scheme
-from dihedra.torsions import select_torsions
-from dihedra.trackpass import TorsionPass
+from dihedra.selection.schemes import get_scheme
+from dihedra.selection.torsions import select_torsions
+from dihedra.trajectory.trackpass import TorsionPass
 top, xtc, n, repeat = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4])
 u = mda.Universe(top, xtc)
 tset = select_torsions(u, "rotatable")
@@ -397,7 +397,7 @@ def main(argv=None):
     def floor_cmd(stop):
         return [py, "-c", FLOOR, top, xtc, str(stop)]
 
-    from dihedra.angles import compiled_kernels
+    from dihedra.numerics.angles import compiled_kernels
     print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f} at start")
     print(f"system: {6 * args.molecules} atoms, {n_torsions} torsions, XTC of {4 * n} frames; N = {n}; "
           f"each run measured {args.repeat} time(s), the fastest kept")

@@ -1,7 +1,7 @@
 """Time the biopolymer torsion selections on systems of about 50,000 atoms.
 
 Builds three systems from the MDAnalysisTests data files and times
-:func:`dihedra.biopolymer.protein_backbone_torsions`, :func:`protein_sidechain_torsions` and
+:func:`dihedra.selection.biopolymer.protein_backbone_torsions`, :func:`protein_sidechain_torsions` and
 :func:`nucleic_backbone_torsions` on each (best of 3), then prints one line per system and
 function. Target: well under 1 s each.
 
@@ -52,9 +52,9 @@ def best_of(func, universe, repeats=3):
 
 
 def main():
-    from dihedra.biopolymer import (nucleic_backbone_torsions, protein_backbone_torsions,
+    from dihedra.selection.biopolymer import (nucleic_backbone_torsions, protein_backbone_torsions,
                                     protein_sidechain_torsions)
-    from dihedra.rotatable import rotatable_torsions
+    from dihedra.selection.rotatable import rotatable_torsions
 
     warnings.filterwarnings("ignore")
     functions = (protein_backbone_torsions, protein_sidechain_torsions, nucleic_backbone_torsions,

@@ -8,11 +8,11 @@ The Python API mirrors the command line::
     res.populations_by_type      # pandas DataFrame
 """
 
-__version__ = "0.1.0"
+from ._version import __version__  # noqa: E402,F401
 
 from .errors import DihedraError  # noqa: E402
-from .schemes import StateScheme, get_scheme  # noqa: E402
-from .torsions import Torsion, TorsionSet, select_torsions  # noqa: E402
+from .selection.schemes import StateScheme, get_scheme  # noqa: E402
+from .selection.torsions import Torsion, TorsionSet, select_torsions  # noqa: E402
 
 
 def example_path(name=""):
@@ -36,8 +36,8 @@ def track(*args, **kwargs):
 
 
 def load_results(folder):
-    """See :func:`dihedra.resultsdir.load_results`."""
-    from .resultsdir import load_results as _load
+    """See :func:`dihedra.io.resultsdir.load_results`."""
+    from .io.resultsdir import load_results as _load
 
     return _load(folder)
 

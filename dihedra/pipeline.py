@@ -383,8 +383,8 @@ def _write_copy(pipe, record, created):
     """Copy the analysis file and the record of the steps into the results folder: only once a step
     of this run has made the folder (or, when no step makes one, into the existing results folder,
     replacing only files dihedra wrote there)."""
-    from .outputs import write_file, write_text
-    from .resultsdir import write_json
+    from .io.outputs import write_file, write_text
+    from .io.resultsdir import write_json
 
     if not os.path.isdir(pipe.out) or (not created and any(st.spec.creates_folder for st in pipe.steps)):
         return
@@ -403,7 +403,7 @@ def run_pipeline(pipe, log=None):
     -------
     str : the results folder.
     """
-    from . import __version__
+    from ._version import __version__
 
     say = log or (lambda msg: None)
     record = {"dihedra_version": __version__, "analysis_file": pipe.path,
@@ -412,7 +412,7 @@ def run_pipeline(pipe, log=None):
               "notes": list(pipe.notes), "steps": []}
     creating = [st for st in pipe.steps if st.spec.creates_folder]
     if creating:   # before any step: the results folder may be made (or replaced) here
-        from .outputs import check_folder_target
+        from .io.outputs import check_folder_target
         first = parse_step(creating[0].spec, creating[0].argv, creating[0].where)
         check_folder_target(pipe.out, overwrite=bool(getattr(first, "overwrite", False)), inputs=[pipe.path],
                             option="out")

@@ -1,9 +1,9 @@
 """The tracking job: trajectories in, torsion states and populations out.
 
-:func:`track` runs :class:`~dihedra.trackpass.TorsionPass` over each replica (one trajectory of the
+:func:`track` runs :class:`~dihedra.trajectory.trackpass.TorsionPass` over each replica (one trajectory of the
 same system each), merges the block sums (blocks never span two replicas), computes populations
 with their errors, and returns a :class:`TrackResult`. With ``out`` it also writes the results
-folder (:mod:`dihedra.resultsdir`); it is assembled in a temporary folder beside ``out`` and moved
+folder (:mod:`dihedra.io.resultsdir`); it is assembled in a temporary folder beside ``out`` and moved
 into place at the end, so an interrupted run never leaves a half-written folder.
 
 Example
@@ -28,15 +28,15 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from . import __version__
+from ._version import __version__
 from .errors import DihedraError, InputFileError, OutputWriteError
-from .inputs import check_readable, load_universe, sha256, truncated_error
-from .outputs import StagedFolder
-from .populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
+from .trajectory.inputs import check_readable, load_universe, sha256, truncated_error
+from .io.outputs import StagedFolder
+from .numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
                           replica_populations, torsion_populations)
-from .schemes import get_scheme
-from .torsions import TorsionSet, select_torsions
-from .trackpass import TorsionPass, conformer_layout, reduce_conformer_rows
+from .selection.schemes import get_scheme
+from .selection.torsions import TorsionSet, select_torsions
+from .trajectory.trackpass import TorsionPass, conformer_layout, reduce_conformer_rows
 
 
 @dataclass
@@ -84,17 +84,17 @@ class TrackResult:
 
         For long runs prefer :meth:`iter_states`, which reads it in chunks.
         """
-        from .resultsdir import read_table
+        from .io.resultsdir import read_table
         return read_table(self._path("states"), columns)
 
     def iter_states(self, columns=None, batch_frames=None):
         """Yield the state time series chunk by chunk (DataFrames), in frame order."""
-        from .resultsdir import iter_table
+        from .io.resultsdir import iter_table
         yield from iter_table(self._path("states"), columns, batch_frames)
 
     def angles(self, columns=None):
         """The angle time series (float32 degrees), if the run kept angles."""
-        from .resultsdir import read_table
+        from .io.resultsdir import read_table
         return read_table(self._path("angles"), columns)
 
     def _path(self, kind):
@@ -202,9 +202,9 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     trajectories : str or list of str
         One trajectory per replica of the same system.
     torsions : str or list of str or TorsionSet
-        Torsion specifications (see :func:`dihedra.torsions.select_torsions`).
+        Torsion specifications (see :func:`dihedra.selection.torsions.select_torsions`).
     scheme : str or StateScheme
-        State scheme name or TOML file (see :func:`dihedra.schemes.get_scheme`).
+        State scheme name or TOML file (see :func:`dihedra.selection.schemes.get_scheme`).
     start, stop, step : int, optional
         Frame range, applied to every replica.
     workers : int
@@ -213,7 +213,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         ``serial``, ``multiprocessing``, ``dask`` or a ``BackendBase`` instance.
     scheduler : str or distributed.Client, optional
         Address of a running dask.distributed scheduler (``tcp://host:8786``) or a client: the
-        frames of every replica are spread over all its workers (see :mod:`dihedra.distributed`
+        frames of every replica are spread over all its workers (see :mod:`dihedra.trajectory.distributed`
         for the shared-file-system requirement); replaces ``workers`` and ``backend``.
     keep_angles : bool
         Also write the angle time series (``angles.parquet``).
@@ -279,7 +279,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
                                         else ([None] * len(universes), None))
         n_workers = max(1, int(workers or 1))
         if scheduler is not None:
-            from .distributed import DistributedBackend, connect
+            from .trajectory.distributed import DistributedBackend, connect
             client, owned = connect(scheduler)
             own_client = client if owned else None
             backend = DistributedBackend(client)
@@ -322,7 +322,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         # the time series are written (each pass, serial or every worker, wrote the files of its
         # frames); blocks.npz is written by another thread (zlib releases Python's lock) while
         # this one computes the populations and writes the tables
-        from .resultsdir import narrowed_type, save_npz, write_results
+        from .io.resultsdir import narrowed_type, save_npz, write_results
         shutil.rmtree(parts_dir, ignore_errors=True)
         blocks = _block_sums(passes)
 
@@ -468,7 +468,7 @@ def _stack(arrays):
 def dense_conformers(blocks, tset, n_states):
     """{width: (group ids, counts (n_blocks, n_groups, n_joint), weights)} of the conformer
     classes that the pass counted densely (weights are the counts as floats when unweighted)."""
-    from .trackpass import _conformer_classes
+    from .trajectory.trackpass import _conformer_classes
     _, members, _ = conformer_layout(tset, n_states)
     out = {}
     for width, (gids, _, _, _) in _conformer_classes(members, n_states).items():

@@ -97,7 +97,7 @@ def write_rotor_trajectory(folder, name, angles, spacing=8.0):
 def rotor_results(tmp_path, energy, temperature_k=298.15, n_frames=2000, n_molecules=100, seed=7,
                   name="rotor", keep_angles=False, record_temperature=True):
     """Track a synthetic rotor trajectory; returns the loaded results folder."""
-    from dihedra.resultsdir import load_results
+    from dihedra.io.resultsdir import load_results
     from dihedra.tracking import track
 
     rng = np.random.default_rng(seed)
@@ -120,7 +120,7 @@ def butane_results(tmp_path):
 
     Returns (results, description).
     """
-    from dihedra.resultsdir import load_results
+    from dihedra.io.resultsdir import load_results
     from dihedra.tracking import track
 
     if os.path.exists(EXAMPLE_BUTANE + ".pdb") and os.path.exists(EXAMPLE_BUTANE + ".xtc"):

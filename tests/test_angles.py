@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from dihedra.angles import torsion_angles_deg
+from dihedra.numerics.angles import torsion_angles_deg
 
 mda = pytest.importorskip("MDAnalysis")
 
@@ -41,7 +41,7 @@ def test_agrees_with_rdkit_on_the_mdanalysis_test_protein():
     from rdkit.Geometry import Point3D
     from MDAnalysisTests.datafiles import DCD, PSF
 
-    from dihedra.torsions import select_torsions
+    from dihedra.selection.torsions import select_torsions
 
     u = mda.Universe(PSF, DCD)
     tset = select_torsions(u, "rotatable")

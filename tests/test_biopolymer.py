@@ -1,4 +1,4 @@
-"""Tests of dihedra.biopolymer: protein and nucleic-acid torsions by the IUPAC-IUB definitions.
+"""Tests of dihedra.selection.biopolymer: protein and nucleic-acid torsions by the IUPAC-IUB definitions.
 
 References used (named beside each check):
 
@@ -23,9 +23,9 @@ data = pytest.importorskip("MDAnalysisTests.datafiles")
 
 from MDAnalysis.lib.distances import calc_dihedrals  # noqa: E402
 
-from dihedra.biopolymer import (classify_residue_name, nucleic_backbone_torsions,  # noqa: E402
+from dihedra.selection.biopolymer import (classify_residue_name, nucleic_backbone_torsions,  # noqa: E402
                                 protein_backbone_torsions, protein_sidechain_torsions)
-from dihedra.torsions import molecule_group  # noqa: E402
+from dihedra.selection.torsions import molecule_group  # noqa: E402
 
 pytestmark = pytest.mark.filterwarnings("ignore")
 
@@ -641,7 +641,7 @@ def test_water_and_ions_are_ignored_silently(adk_gromacs_gro, adk_gromacs_tpr):
 # --------------------------------------------------------------------------------------------
 
 def test_labels_types_groups_and_segments():
-    # The data model of dihedra.torsions: label RESNAME RESID:name, type RESNAME:name with the
+    # The data model of dihedra.selection.torsions: label RESNAME RESID:name, type RESNAME:name with the
     # real residue name, group from molecule_group of the CA / C1' atom.
     u = load("PSF", "DCD")
     for t in protein_sidechain_torsions(u).torsions + protein_backbone_torsions(u).torsions:
@@ -667,8 +667,8 @@ def test_gromos_names_in_tpr(adk_gromacs_tpr):
 
 def test_named_specifications_use_these_functions(adk_charmm):
     # select_torsions resolves protein-backbone / protein-sidechains / nucleic-backbone here.
-    pytest.importorskip("dihedra.rotatable")
-    from dihedra.torsions import select_torsions
+    pytest.importorskip("dihedra.selection.rotatable")
+    from dihedra.selection.torsions import select_torsions
 
     tset = select_torsions(adk_charmm, ["protein-backbone", "protein-sidechains"])
     assert len(tset) == 639 + 421

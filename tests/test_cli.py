@@ -168,7 +168,7 @@ def test_read_only_trajectory_folder_still_works_with_a_notice(system, tmp_path,
 
 
 def test_complete_xtc_gives_no_incomplete_frame_notice(system, capsys):
-    from dihedra.inputs import load_universe
+    from dihedra.trajectory.inputs import load_universe
     top, traj = system
     notices = []
     load_universe(top, traj, notices)

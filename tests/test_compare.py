@@ -9,12 +9,12 @@ import pytest
 from scipy import integrate
 from scipy.spatial.distance import jensenshannon
 
-from dihedra.compare import (Thresholds, align_offset, compare_with_scan, js_divergence_bits,
+from dihedra.analysis.compare import (Thresholds, align_offset, compare_with_scan, js_divergence_bits,
                              predicted_state_populations, write_comparison)
 from dihedra.errors import DihedraError
-from dihedra.profiles import type_profiles
-from dihedra.scans import read_scan_csv, scan_from_points
-from dihedra.schemes import get_scheme
+from dihedra.analysis.profiles import type_profiles
+from dihedra.analysis.scans import read_scan_csv, scan_from_points
+from dihedra.selection.schemes import get_scheme
 from dihedra.units import R_KJ_PER_MOL_K
 
 from synthetic_rotors import EXAMPLE_TEMPERATURE_K, butane_results, rb_energy
@@ -139,5 +139,5 @@ def test_types_must_be_named_when_several():
         class torsion_set:
             types = ["A:x", "B:y"]
     with pytest.raises(DihedraError, match="--type"):
-        from dihedra.compare import select_types
+        from dihedra.analysis.compare import select_types
         select_types(Fake, None)

@@ -10,10 +10,10 @@ import pytest
 from scipy import integrate
 
 from conftest import place_fourth
-from dihedra.couplings import (KarplusRelation, compare_with_experiment, compute_couplings,
+from dihedra.analysis.couplings import (KarplusRelation, compare_with_experiment, compute_couplings,
                                ensemble_couplings, get_relation, read_experimental)
 from dihedra.errors import DihedraError
-from dihedra.resultsdir import load_results
+from dihedra.io.resultsdir import load_results
 from dihedra.tracking import track
 from dihedra.units import kt_kj_mol
 from synthetic_rotors import inverse_cdf_samples, rb_energy, write_rotor_trajectory
@@ -341,7 +341,7 @@ def boltzmann_anti(energy=rb_energy):
 
 
 def test_reference_populations_z_scores_and_verdicts(rb_folder, tmp_path):
-    from dihedra.reference_populations import compare_reference_populations, read_reference_populations
+    from dihedra.analysis.reference_populations import compare_reference_populations, read_reference_populations
 
     ttype = rb_folder.torsion_set.types[0]
     anti = boltzmann_anti()

@@ -8,8 +8,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from dihedra import angles
-from dihedra.schemes import get_scheme
+from dihedra.numerics import angles
+from dihedra.selection.schemes import get_scheme
 
 pytest.importorskip("numba")
 
@@ -65,8 +65,8 @@ def test_arctangent_octants_and_signs():
 
 @pytest.mark.parametrize("name", ["anti-gauche", "klyne-prelog", "staggered-eclipsed", "staggered-eclipsed:5"])
 def test_bin_and_count_equal_assign_at_every_boundary(name):
-    from dihedra import _kernels
-    from dihedra.trackpass import _MIXED, bin_state_table
+    from dihedra.numerics import _kernels
+    from dihedra.trajectory.trackpass import _MIXED, bin_state_table
 
     scheme = get_scheme(name)
     n_bins = 360
@@ -101,7 +101,7 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
         else:   # the NumPy twins, on a pass object reduced to what they use
             from types import SimpleNamespace
 
-            from dihedra.trackpass import TorsionPass
+            from dihedra.trajectory.trackpass import TorsionPass
             fake = SimpleNamespace(bin_width_deg=1.0, _n_bins=n_bins, _bin_table=table, _shift_in=0.0,
                                    _shift_out=n_bins // 2, _boundaries=np.asarray(scheme.boundaries_deg, dtype=float),
                                    _start_closed=np.asarray(scheme.start_closed, dtype=bool),
@@ -183,7 +183,7 @@ def test_compiled_blocking_with_weight_columns_equals_numpy():
     """Columns that share weights through ``weight_columns`` (conformers of one group): the same
     numbers as the NumPy code on the gathered weights, also where an unused weight column has
     frames in blocks that the used ones lack."""
-    from dihedra.statistics import blocking_error
+    from dihedra.numerics.statistics import blocking_error
 
     rng = np.random.default_rng(8)
     counts = rng.integers(0, 9, size=(64, 40, 27)).astype(float)
@@ -204,7 +204,7 @@ def test_compiled_blocking_with_weight_columns_equals_numpy():
 
 @pytest.mark.parametrize("case", range(8))
 def test_compiled_blocking_equals_numpy(case):
-    from dihedra.statistics import blocking_error
+    from dihedra.numerics.statistics import blocking_error
 
     values, weights, replica, kw = list(_blocking_cases())[case]
     if weights is None:   # conformer-like int32 counts, weights summed over the joint states

@@ -1,4 +1,4 @@
-"""Tests of dihedra.kinetics: core-set assignment, counts, rates, dwell times, Markov timescales, Eyring.
+"""Tests of dihedra.analysis.kinetics: core-set assignment, counts, rates, dwell times, Markov timescales, Eyring.
 
 The main checks simulate a known three-state Markov jump process with numpy (exact exponential dwell
 times, Gillespie), turn the states into torsion angles of five-site chains, write them through
@@ -18,9 +18,9 @@ from conftest import place_fourth, write_system
 
 from dihedra.cli import main
 from dihedra.errors import DihedraError
-from dihedra.kinetics import (StateTally, analyse_state_series, eyring_barrier_kj_mol, eyring_rate_per_s,
+from dihedra.analysis.kinetics import (StateTally, analyse_state_series, eyring_barrier_kj_mol, eyring_rate_per_s,
                               fill_forward, kinetics, markov_model, transition_counts)
-from dihedra.schemes import NO_CORE, get_scheme
+from dihedra.selection.schemes import NO_CORE, get_scheme
 from dihedra.tracking import track
 
 #: State order of the anti-gauche scheme: anti, gauche+, gauche-.
@@ -424,7 +424,7 @@ def test_profile_barriers_enter_next_to_eyring():
     # analytic: a barrier between the anti minimum (180) and the gauche+ minimum (60) with heights 12
     # above anti and 9 above gauche+ is the anti -> gauche+ barrier (12) and the reverse one (9); the
     # TST rate of a profile barrier is the Eyring rate of that barrier (CODATA 2018 constants).
-    from dihedra.kinetics import _add_tst, _read_barrier_table
+    from dihedra.analysis.kinetics import _add_tst, _read_barrier_table
 
     scheme = get_scheme("anti-gauche")
     barriers = pd.DataFrame({

@@ -12,9 +12,9 @@ import pytest
 
 from conftest import place_fourth, write_system
 from dihedra.errors import DihedraError
-from dihedra import resultsdir
-from dihedra.resultsdir import series_files
-from dihedra.schemes import get_scheme
+from dihedra.io import resultsdir
+from dihedra.io.resultsdir import series_files
+from dihedra.selection.schemes import get_scheme
 from dihedra.tracking import track
 
 distributed = pytest.importorskip("distributed")
@@ -125,8 +125,8 @@ def test_deferred_close_writes_the_same_files(replicas, tmp_path, threads):
     """With defer_close the last row group and the footers are written in the background until
     finish_series(): then the files equal those of a pass that closes them itself."""
     import MDAnalysis as mda
-    from dihedra.torsions import select_torsions
-    from dihedra.trackpass import TorsionPass
+    from dihedra.selection.torsions import select_torsions
+    from dihedra.trajectory.trackpass import TorsionPass
 
     top, trajs, _ = replicas
     u = mda.Universe(top, trajs[0])
@@ -179,7 +179,7 @@ def test_distributed_weighted_run_equals_serial(replicas, cluster):
 
 def test_command_line_scheduler_option(replicas, serial, cluster, tmp_path):
     from dihedra.cli import main
-    from dihedra.resultsdir import load_results
+    from dihedra.io.resultsdir import load_results
 
     top, trajs, _ = replicas
     out = tmp_path / "res"
@@ -193,7 +193,7 @@ def test_command_line_scheduler_option(replicas, serial, cluster, tmp_path):
 
 
 def test_unreachable_scheduler_is_a_clear_error():
-    from dihedra.distributed import connect
+    from dihedra.trajectory.distributed import connect
     with pytest.raises(DihedraError, match="cannot reach a dask scheduler"):
         connect("tcp://127.0.0.1:9", timeout_s=2)
 
@@ -241,7 +241,7 @@ def test_conformer_rows_equal_direct_joint_counts(serial):
     rows, _ = conformer_rows(serial.blocks, tset, n_s)
     assert len(serial.blocks["conformer_rows"]) == 0   # every chain counted densely
     n_blocks = serial.blocks["state_counts"].shape[0] // 2
-    from dihedra.trackpass import conformer_layout
+    from dihedra.trajectory.trackpass import conformer_layout
     groups, members, _ = conformer_layout(tset, n_s)
     for g, m in list(enumerate(members))[:3]:
         codes = states[[tset.labels[p] for p in m]].to_numpy().astype(np.int64)
@@ -259,10 +259,10 @@ MEMORY_PROBE = """
 import json, os, sys, tracemalloc, warnings
 warnings.simplefilter("ignore")
 import MDAnalysis as mda
-from dihedra.schemes import get_scheme
-from dihedra.torsions import select_torsions
-from dihedra.trackpass import TorsionPass
-from dihedra.resultsdir import series_files
+from dihedra.selection.schemes import get_scheme
+from dihedra.selection.torsions import select_torsions
+from dihedra.trajectory.trackpass import TorsionPass
+from dihedra.io.resultsdir import series_files
 import pyarrow.parquet as pq
 top, traj, folder = sys.argv[1:4]
 u = mda.Universe(top, traj)
@@ -314,7 +314,7 @@ def test_numpy_path_equals_compiled_kernels(replicas, serial, monkeypatch):
     # the NumPy twins of the numba kernels (used without numba) give the same bits: angles,
     # codes, histograms, state counts, conformer rows; weighted sums added in the same order
     pytest.importorskip("numba")
-    from dihedra.angles import compiled_kernels
+    from dihedra.numerics.angles import compiled_kernels
 
     assert compiled_kernels() is not None
     top, trajs, weights = replicas
@@ -336,7 +336,7 @@ def test_second_thread_equals_serial(replicas, serial, monkeypatch, compiled):
         pytest.importorskip("numba")
     else:
         monkeypatch.setenv("DIHEDRA_NO_NUMBA", "1")
-    import dihedra.trackpass as tp
+    import dihedra.trajectory.trackpass as tp
     monkeypatch.setattr(tp, "BATCH_BYTES", 7 * 60 * 12)   # batches of 7 frames (60 atoms)
     top, trajs, _ = replicas
     res = track(top, trajs, threads=2, **KW)
@@ -346,11 +346,11 @@ def test_second_thread_equals_serial(replicas, serial, monkeypatch, compiled):
 
 @pytest.mark.parametrize("kw", [dict(threads=1), dict(threads=2), dict(workers=2)])
 def test_xtc_decoder_equals_mdanalysis_reading(replicas, serial, monkeypatch, kw):
-    # dihedra's XTC decoder (dihedra.trajread) against MDAnalysis' own iteration (reference
+    # dihedra's XTC decoder (dihedra.trajectory.trajread) against MDAnalysis' own iteration (reference
     # library): the same blocks, tables and time series, in batches of 7 frames
     pytest.importorskip("numba")
-    import dihedra.trackpass as tp
-    from dihedra import trajread
+    import dihedra.trajectory.trackpass as tp
+    from dihedra.trajectory import trajread
 
     top, trajs, _ = replicas
     assert trajread.xtc_frames(mda.Universe(top, trajs[0]).trajectory) is not None
@@ -363,7 +363,7 @@ def test_xtc_decoder_equals_mdanalysis_reading(replicas, serial, monkeypatch, kw
 
 
 def test_error_in_the_second_thread_reaches_the_caller(replicas, monkeypatch):
-    import dihedra.trackpass as tp
+    import dihedra.trajectory.trackpass as tp
 
     def broken(self, batch):
         raise RuntimeError("broken batch")
@@ -404,8 +404,8 @@ def test_block_sums_of_workers_through_files_or_pickles_equal_serial(replicas, t
     # without one, pickled: non-empty cells of each block); either way the sums equal a serial pass
     import MDAnalysis as mda
 
-    from dihedra.torsions import select_torsions
-    from dihedra.trackpass import TorsionPass
+    from dihedra.selection.torsions import select_torsions
+    from dihedra.trajectory.trackpass import TorsionPass
 
     top, trajs, _ = replicas
     u = mda.Universe(top, trajs[0])

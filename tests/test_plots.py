@@ -16,10 +16,10 @@ from matplotlib.patches import Circle, FancyArrowPatch, Rectangle
 
 matplotlib.use("Agg")
 
-from dihedra import plots  # noqa: E402
+from dihedra.presentation import plots  # noqa: E402
 from dihedra.errors import DihedraError  # noqa: E402
-from dihedra.resultsdir import load_results, read_table  # noqa: E402
-from dihedra.schemes import get_scheme, scheme_from_mapping  # noqa: E402
+from dihedra.io.resultsdir import load_results, read_table  # noqa: E402
+from dihedra.selection.schemes import get_scheme, scheme_from_mapping  # noqa: E402
 
 
 def new_ax(width="single", height=2.4):

@@ -8,7 +8,7 @@ import pytest
 from scipy import integrate, optimize, stats
 
 from dihedra.errors import DihedraError
-from dihedra.profiles import (bootstrap_multiplicities, compute_profiles, pair_profiles, von_mises_smooth,
+from dihedra.analysis.profiles import (bootstrap_multiplicities, compute_profiles, pair_profiles, von_mises_smooth,
                               write_profiles)
 from dihedra.units import R_KJ_PER_MOL_K
 

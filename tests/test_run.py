@@ -191,7 +191,7 @@ def test_the_demo_file_is_a_valid_analysis_of_the_bundled_example():
 
 
 def test_the_trappe_scan_file_is_the_trappe_potential():
-    from dihedra.scans import read_scan
+    from dihedra.analysis.scans import read_scan
 
     # TraPPE-UA (Martin & Siepmann 1998; from memory, as in make_examples.py):
     # V = c1 (1 + cos phi) + c2 (1 - cos 2 phi) + c3 (1 + cos 3 phi), c/k_B = 355.03, -68.19, 791.32 K
@@ -240,7 +240,7 @@ def test_demo_runs_every_step_and_ends_with_the_report(tmp_path, capsys):
 def test_demo_replaces_a_previous_demo_folder(tmp_path, monkeypatch):
     import dihedra.cli.demo as demo
 
-    from dihedra.outputs import MARKER
+    from dihedra.io.outputs import MARKER
 
     out = tmp_path / "demo"
     os.makedirs(out)

@@ -15,7 +15,7 @@ import pytest
 from dihedra import example_path
 from dihedra.cli import main
 from dihedra.errors import OutputExistsError
-from dihedra.outputs import (MARKER, StagedFolder, check_folder_target, read_marker, remove_dead_staging,
+from dihedra.io.outputs import (MARKER, StagedFolder, check_folder_target, read_marker, remove_dead_staging,
                              write_file, write_text)
 
 HEXANE = ("hexane.pdb", "hexane.xtc")
@@ -212,7 +212,7 @@ def test_torsions_csv_replaces_only_its_own_table(data, capsys):
 
 
 def test_scan_output_replaces_only_a_scan(tmp_path):
-    from dihedra.scans import check_scan_output
+    from dihedra.analysis.scans import check_scan_output
 
     (tmp_path / "top.pdb").write_text("ATOM\n")
     with pytest.raises(OutputExistsError):

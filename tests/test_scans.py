@@ -7,7 +7,7 @@ import pytest
 from scipy import optimize
 
 from dihedra.errors import DihedraError
-from dihedra.scans import (cosine_series_kj_mol, molecule_from_topology, read_parameter_toml, read_scan,
+from dihedra.analysis.scans import (cosine_series_kj_mol, molecule_from_topology, read_parameter_toml, read_scan,
                            read_scan_csv, ryckaert_bellemans_kj_mol, write_scan_csv)
 from dihedra.units import CALORIE_J, HARTREE_KJ_PER_MOL
 
@@ -145,8 +145,8 @@ def butane_pdb(tmp_path_factory):
 def test_mmff94_butane_scan(butane_pdb, tmp_path):
     # from memory (loose bound, CHECK-VALUES.md gives 2.6-4.0 kJ/mol for the gas-phase enthalpy):
     # MMFF94 butane has its minima at anti and near +-65 degrees, gauche a few kJ/mol above anti
-    from dihedra.scans import mmff94_scan
-    from dihedra.compare import scan_features
+    from dihedra.analysis.scans import mmff94_scan
+    from dihedra.analysis.compare import scan_features
     mol, path = butane_pdb
     seen = []
     scan = mmff94_scan(mol, (0, 1, 2, 3), step_deg=10, progress=lambda *a: seen.append(a))
@@ -184,8 +184,8 @@ def test_gfn2_xtb_ethane_scan():
     # eclipsed barrier of about 12 kJ/mol (GFN2-xTB is known to land somewhat lower; loose bound)
     from rdkit import Chem
     from rdkit.Chem import AllChem
-    from dihedra.scans import xtb_scan
-    from dihedra.compare import scan_features
+    from dihedra.analysis.scans import xtb_scan
+    from dihedra.analysis.compare import scan_features
     mol = Chem.AddHs(Chem.MolFromSmiles("CC"))
     AllChem.EmbedMolecule(mol, randomSeed=1)
     h_on_0 = [n.GetIdx() for n in mol.GetAtomWithIdx(0).GetNeighbors() if n.GetSymbol() == "H"][0]

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from dihedra.errors import SchemeError
-from dihedra.schemes import (NO_CORE, UNDEFINED, anti_gauche, get_scheme, klyne_prelog,
+from dihedra.selection.schemes import (NO_CORE, UNDEFINED, anti_gauche, get_scheme, klyne_prelog,
                              scheme_from_mapping, staggered_eclipsed)
 
 

@@ -1,6 +1,6 @@
 """Post-processing of many torsions at once: the stacked (vectorised) profile and kinetics code.
 
-The per-torsion loops of dihedra.profiles and dihedra.kinetics were replaced by array operations
+The per-torsion loops of dihedra.analysis.profiles and dihedra.analysis.kinetics were replaced by array operations
 over a torsion axis. These tests check the stacked pieces against reference libraries (deeptime,
 scipy), against analytic results, and against the rule written out one profile at a time.
 """
@@ -13,10 +13,10 @@ import pandas as pd
 import pytest
 from scipy import linalg
 
-from dihedra import kinetics as kin
-from dihedra import profiles as prof
-from dihedra.csvtables import write_csv
-from dihedra.schemes import get_scheme
+from dihedra.analysis import kinetics as kin
+from dihedra.analysis import profiles as prof
+from dihedra.io.csvtables import write_csv
+from dihedra.selection.schemes import get_scheme
 
 
 # ------------------------------------------------------------------------------------------------

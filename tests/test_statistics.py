@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from dihedra.statistics import blocking_error, statistical_inefficiency
+from dihedra.numerics.statistics import blocking_error, statistical_inefficiency
 
 
 def ar1(rho, n, seed):

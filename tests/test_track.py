@@ -9,7 +9,7 @@ from scipy import integrate
 
 from conftest import chain_coordinates, write_system
 from dihedra.errors import DihedraError, OutputExistsError
-from dihedra.resultsdir import load_results
+from dihedra.io.resultsdir import load_results
 from dihedra.tracking import track
 from dihedra.units import kt_kj_mol
 
@@ -114,7 +114,7 @@ def test_replicas_are_kept_apart_and_combined(two_replicas):
 def test_one_replica_table_is_that_replica_computed_alone(two_replicas):
     """With one replica the per-replica table reuses the pooled one: the same numbers as the
     per-replica computation itself."""
-    from dihedra.populations import replica_populations, torsion_populations
+    from dihedra.numerics.populations import replica_populations, torsion_populations
 
     (top, t0), _ = two_replicas
     res = track(top, [t0], torsions=spec8(), scheme="anti-gauche")
@@ -240,7 +240,7 @@ def test_results_folder_round_trip_and_existing_folder_untouched(two_replicas, t
 
 def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     (top, t0), _ = two_replicas
-    from dihedra import trackpass
+    from dihedra.trajectory import trackpass
 
     def boom(self, batch):
         raise KeyboardInterrupt
@@ -261,7 +261,7 @@ def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_r
     # blocks.npz is written in another thread, the time series during the pass (in the second
     # thread or in workers): a failed write is the run's error, not a "damaged trajectory"
     (top, t0), _ = two_replicas
-    from dihedra import resultsdir
+    from dihedra.io import resultsdir
 
     def full_disk(*args, **kwargs):
         raise OSError(28, "No space left on device")

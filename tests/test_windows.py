@@ -8,13 +8,13 @@ import pandas as pd
 import pytest
 from scipy import integrate
 
-from dihedra.couplings import compute_couplings, get_relation
+from dihedra.analysis.couplings import compute_couplings, get_relation
 from dihedra.errors import DihedraError
-from dihedra.profiles import compute_profiles
-from dihedra.resultsdir import load_results
+from dihedra.analysis.profiles import compute_profiles
+from dihedra.io.resultsdir import load_results
 from dihedra.tracking import track
 from dihedra.units import kt_kj_mol
-from dihedra.windows import (bias_kj_mol, neighbour_pairs, read_windows, solve_free_energies, unbias_windows,
+from dihedra.analysis.windows import (bias_kj_mol, neighbour_pairs, read_windows, solve_free_energies, unbias_windows,
                              wham_log_factors)
 from synthetic_rotors import inverse_cdf_samples, rb_energy, write_rotor_trajectory
 

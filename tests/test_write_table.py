@@ -5,7 +5,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from dihedra.resultsdir import write_table
+from dihedra.io.resultsdir import write_table
 
 
 @pytest.mark.parametrize("float_format", ["%.6g", "%.3f"])
@@ -36,7 +36,7 @@ def test_other_column_types_go_through_pandas(tmp_path):
 def test_rows_written_in_parts_give_the_same_text(tmp_path, text_dtype):
     """Text that needs no quotes is joined without the csv module: the same text, empty fields
     included, for object and pandas string columns."""
-    from dihedra.resultsdir import _write_plain_csv
+    from dihedra.io.resultsdir import _write_plain_csv
 
     frame = pd.DataFrame({"state": pd.Series(["anti", "gauche+", "", "x|y:z-1"] * 8, dtype=text_dtype),
                           "population": np.r_[np.linspace(0, 1, 30), np.nan, 1e-7],
@@ -50,7 +50,7 @@ def test_rows_written_in_parts_give_the_same_text(tmp_path, text_dtype):
 def test_histograms_stored_narrow_read_back_equal(tmp_path, top, stored):
     """save_npz narrows non-negative counts to the smallest unsigned type (checked against
     NumPy's own np.load), and load_results' widening gives the int32 array back."""
-    from dihedra.resultsdir import narrowed_type, save_npz
+    from dihedra.io.resultsdir import narrowed_type, save_npz
 
     rng = np.random.default_rng(1)
     hist = rng.integers(0, top + 1, size=(3, 5, 360)).astype(np.int32)
@@ -73,7 +73,7 @@ def test_histograms_stored_narrow_read_back_equal(tmp_path, top, stored):
 
 
 def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
-    from dihedra.resultsdir import save_npz
+    from dihedra.io.resultsdir import save_npz
 
     neg = np.array([[-1, 2], [3, 4]], dtype=np.int32)
     flt = np.array([0.5, 2.0])
@@ -87,8 +87,8 @@ def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
 def test_frames_transposed_into_the_chunk_with_and_without_the_kernels(shape):
     """Frames transposed into a chunk (a column slice of a wider buffer) equal NumPy's transpose,
     and nothing around the slice changes (reference: NumPy)."""
-    from dihedra.angles import compiled_kernels
-    from dihedra.trackpass import _transpose
+    from dihedra.numerics.angles import compiled_kernels
+    from dihedra.trajectory.trackpass import _transpose
 
     block = np.random.default_rng(2).integers(-1, 3, size=shape).astype(np.int8)
     for kernels in (compiled_kernels(), None):

@@ -19,7 +19,7 @@ pytest.importorskip("numba")
 import MDAnalysis as mda  # noqa: E402
 from MDAnalysis.coordinates.XTC import XTCReader  # noqa: E402
 
-from dihedra import trajread  # noqa: E402
+from dihedra.trajectory import trajread  # noqa: E402
 
 
 def _read_both(path, frames=None, **reader_kwargs):
@@ -121,7 +121,7 @@ def test_a_frame_the_decoder_does_not_take_is_read_by_mdanalysis(tmp_path, monke
     table (which the library then reads beyond); such a batch is read again by MDAnalysis."""
     rng = np.random.default_rng(3)
     path = _write(tmp_path / "far.xtc", [rng.uniform(-1e5, 2e5, (50, 3)) for _ in range(3)])
-    from dihedra import _xtc
+    from dihedra.trajectory import _xtc
 
     calls = []
     original = trajread.XTCFrames._read_by_mdanalysis

@@ -13,7 +13,7 @@ import pkgutil
 import sys
 import warnings
 
-from .. import __version__
+from .._version import __version__
 from ..errors import DihedraError
 
 #: Preferred order of subcommands in --help; others follow alphabetically.

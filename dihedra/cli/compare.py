@@ -1,12 +1,12 @@
 """``dihedra compare``: sampled free-energy profile versus a static torsion scan, with a verdict per type."""
 
-from ..compare import Thresholds, compare_with_scan, format_comparison, write_comparison
+from ..analysis.compare import Thresholds, compare_with_scan, format_comparison, write_comparison
 from ..errors import DihedraError
-from ..profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, resolve_temperature
-from ..resultsdir import load_results
-from ..reference_populations import (add_to_comparison, compare_reference_populations, format_reference,
+from ..analysis.profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, resolve_temperature
+from ..io.resultsdir import load_results
+from ..analysis.reference_populations import (add_to_comparison, compare_reference_populations, format_reference,
                                      read_reference_populations)
-from ..scans import read_scan
+from ..analysis.scans import read_scan
 from .common import say
 
 
@@ -75,8 +75,8 @@ def run(args):
 
 def run_reference_only(args, result):
     """Reference populations without a scan: comparison.csv and comparison.json only."""
-    from ..compare import _jsonable
-    from ..profiles import write_json_replacing, write_table_replacing
+    from ..analysis.compare import _jsonable
+    from ..analysis.profiles import write_json_replacing, write_table_replacing
 
     rows, verdicts = compare_reference_populations(result, read_reference_populations(args.reference_populations))
     details = {"scheme": result.scheme.name}

@@ -1,8 +1,8 @@
 """``dihedra couplings``: ensemble-averaged 3J couplings of a results folder, against experiment."""
 
-from ..couplings import (BUILTIN_RELATIONS, compare_with_experiment, compute_couplings, read_experimental,
+from ..analysis.couplings import (BUILTIN_RELATIONS, compare_with_experiment, compute_couplings, read_experimental,
                          write_couplings)
-from ..resultsdir import load_results
+from ..io.resultsdir import load_results
 from .common import format_pm, print_notices, say
 
 

@@ -5,7 +5,7 @@ import os
 
 from .. import example_path
 from ..errors import OutputExistsError
-from ..outputs import read_marker
+from ..io.outputs import read_marker
 from ..pipeline import RECORD_NAME, load_pipeline, run_pipeline
 from .common import say
 

@@ -2,7 +2,7 @@
 
 import numpy as np
 
-from ..kinetics import (ASSIGNMENTS, DEFAULT_BOOTSTRAP, DEFAULT_CORE_MARGIN_DEG, DEFAULT_LAGS,
+from ..analysis.kinetics import (ASSIGNMENTS, DEFAULT_BOOTSTRAP, DEFAULT_CORE_MARGIN_DEG, DEFAULT_LAGS,
                         TST_CAUTION, kinetics)
 from .common import print_notices, say
 
@@ -49,7 +49,7 @@ def run(args):
 
 
 def report_kinetics(res, max_types=6, max_conformer_rows=5):
-    """A short readable summary of a :class:`~dihedra.kinetics.KineticsResult` on standard output."""
+    """A short readable summary of a :class:`~dihedra.analysis.kinetics.KineticsResult` on standard output."""
     p = res.parameters
     if p["assignment"] == "core":
         cores = ", ".join(f"{c['state']} {c['from_deg']:g}..{c['to_deg']:g}" for c in p["core_sectors_deg"])

@@ -1,10 +1,10 @@
 """``dihedra profile``: free-energy profiles, minima, barriers and state free energies of a results folder."""
 
 from ..errors import DihedraError
-from ..profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
+from ..analysis.profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                         PROFILE_ENERGY_UNITS, compute_profiles, convert_energy_columns, unit_suffix,
                         write_profiles)
-from ..resultsdir import load_results
+from ..io.resultsdir import load_results
 from ..units import canonical_energy_unit
 from .common import print_notices, say
 

@@ -1,7 +1,7 @@
 """``dihedra report``: one self-contained HTML report of a results folder."""
 
-from ..plots import WIDTHS
-from ..report import write_report
+from ..presentation.plots import WIDTHS
+from ..presentation.report import write_report
 from .common import say
 
 

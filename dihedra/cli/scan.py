@@ -2,7 +2,7 @@
 
 import os
 
-from ..scans import check_scan_output, mmff94_scan, molecule_from_topology, write_scan_csv, xtb_scan
+from ..analysis.scans import check_scan_output, mmff94_scan, molecule_from_topology, write_scan_csv, xtb_scan
 from .common import say
 
 METHODS = ("mmff94", "gfn2-xtb")

@@ -2,9 +2,9 @@
 
 import os
 
-from ..inputs import load_universe
-from ..outputs import check_single_file, file_head_contains, write_file
-from ..torsions import select_torsions
+from ..trajectory.inputs import load_universe
+from ..io.outputs import check_single_file, file_head_contains, write_file
+from ..selection.torsions import select_torsions
 from .common import add_torsion_options, print_notices
 
 

@@ -1,7 +1,7 @@
 """``dihedra windows``: unbiased torsion profile from umbrella windows, by MBAR and by WHAM."""
 
-from ..profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_SEED
-from ..windows import DEFAULT_BOOTSTRAP, DEFAULT_MAX_MBAR_SAMPLES, MIN_OVERLAP, unbias_windows
+from ..analysis.profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_SEED
+from ..analysis.windows import DEFAULT_BOOTSTRAP, DEFAULT_MAX_MBAR_SAMPLES, MIN_OVERLAP, unbias_windows
 from .common import add_scheme_option, print_notices, say
 from .profile import report_profiles
 

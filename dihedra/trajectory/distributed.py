@@ -3,7 +3,7 @@
 MDAnalysis splits an analysis into *computation groups* (equal, contiguous slices of the analysed
 frames) and hands them to a backend whose ``apply(func, groups)`` returns one partial analysis
 per group; the partial results are then merged exactly (sums of counts, see
-:mod:`dihedra.trackpass`). MDAnalysis' own ``dask`` backend runs the groups with
+:mod:`dihedra.trajectory.trackpass`). MDAnalysis' own ``dask`` backend runs the groups with
 ``dask.compute(..., scheduler="processes")`` on the local machine and never uses a
 ``distributed.Client``. :class:`DistributedBackend` is a backend object
 (:class:`MDAnalysis.analysis.backends.BackendBase`) whose :meth:`~DistributedBackend.apply` maps
@@ -36,7 +36,7 @@ import pickle
 
 from MDAnalysis.analysis.backends import BackendBase
 
-from .errors import DihedraError
+from ..errors import DihedraError
 
 INSTALL_HINT = 'install dask.distributed to use a scheduler: pip install "dihedra[cluster]"'
 

@@ -14,9 +14,9 @@ Specifications (``--torsions SPEC``, repeatable; the same strings in :func:`sele
 ``A,B,C,D``
     four 0-based atom indices.
 ``rotatable``
-    one torsion per rotatable bond of the bond graph (see :mod:`dihedra.rotatable`).
+    one torsion per rotatable bond of the bond graph (see :mod:`dihedra.selection.rotatable`).
 ``protein-backbone``, ``protein-sidechains``, ``nucleic-backbone``
-    IUPAC-IUB definitions (see :mod:`dihedra.biopolymer`).
+    IUPAC-IUB definitions (see :mod:`dihedra.selection.biopolymer`).
 ``FILE.toml``
     named torsions (see :func:`torsions_from_toml`).
 
@@ -34,7 +34,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .errors import SelectionError
+from ..errors import SelectionError
 
 #: Named specifications, with the module function that implements each (resolved lazily).
 NAMED_SPECS = ("rotatable", "protein-backbone", "protein-sidechains", "nucleic-backbone")

@@ -13,7 +13,7 @@ import hashlib
 import os
 import warnings
 
-from .errors import InputFileError
+from ..errors import InputFileError
 
 
 def check_readable(path, what="file"):

@@ -13,7 +13,7 @@ into ``report.html``:
   its verdicts and their reasons;
 * kinetics (rates, dwell times, implied timescales) with the transition-state-theory caution;
 * couplings and their comparison with experiment;
-* every figure of :func:`dihedra.plots.figure_set`, embedded as an SVG data URI (text as paths,
+* every figure of :func:`dihedra.presentation.plots.figure_set`, embedded as an SVG data URI (text as paths,
   so no font is fetched), and a list of the figures the folder could not make and why.
 
 The page has no script and makes no request: every style is inline in one ``<style>`` element,
@@ -33,8 +33,8 @@ import time
 import numpy as np
 import pandas as pd
 
-from .errors import DihedraError
-from .outputs import check_replaceable_in, check_single_file, file_head_contains, is_inside, write_text
+from ..errors import DihedraError
+from ..io.outputs import check_replaceable_in, check_single_file, file_head_contains, is_inside, write_text
 from .plots import read_optional, read_optional_json
 
 #: Rows shown of long tables (the full table is in the folder).
@@ -542,9 +542,9 @@ def build_report(folder, width="single", figures=True, log=None):
     log : callable, optional
         Receives one-line notes on what the folder lacks.
     """
-    from . import __version__
+    from .._version import __version__
     from .plots import figure_set, style
-    from .resultsdir import load_results
+    from ..io.resultsdir import load_results
 
     result = load_results(folder)
     folder = result.folder
@@ -608,7 +608,7 @@ def write_report(folder, out=None, width="single", figures=True, log=None):
 
     The report replaces only an earlier report (a file in the folder that dihedra wrote, or an
     HTML file that carries dihedra's report signature); any other existing file is refused."""
-    from .resultsdir import load_results
+    from ..io.resultsdir import load_results
 
     folder = os.fspath(folder)
     if not os.path.isdir(folder):

@@ -11,7 +11,7 @@ Example
 -------
 >>> import os, tempfile
 >>> import pandas as pd
->>> from dihedra.csvtables import write_csv
+>>> from dihedra.io.csvtables import write_csv
 >>> path = os.path.join(tempfile.mkdtemp(), "t.csv")
 >>> _ = write_csv(pd.DataFrame({"angle_deg": [-177.5, 0.1], "sampled": [True, False]}), path)
 >>> open(path).read().splitlines()

@@ -1,7 +1,7 @@
 """The trajectory pass: one streaming sweep that turns frames into torsion states.
 
 :class:`TorsionPass` is an MDAnalysis :class:`~MDAnalysis.analysis.base.AnalysisBase` subclass.
-For each frame it computes all torsion angles at once (:class:`dihedra.angles.TorsionGeometry`,
+For each frame it computes all torsion angles at once (:class:`dihedra.numerics.angles.TorsionGeometry`,
 minimum image, float32 angles), assigns state codes with the scheme, adds the angles to a fine histogram
 and appends the codes to a chunk buffer. Results:
 
@@ -26,15 +26,15 @@ and appends the codes to a chunk buffer. Results:
 
 Per frame
 ---------
-One compiled kernel call (:mod:`dihedra._kernels`, numba; identical NumPy twins when numba is
-missing) computes the angles (:class:`dihedra.angles.TorsionGeometry`), and a second one, in a
+One compiled kernel call (:mod:`dihedra.numerics._kernels`, numba; identical NumPy twins when numba is
+missing) computes the angles (:class:`dihedra.numerics.angles.TorsionGeometry`), and a second one, in a
 single loop over torsions, the fine bin, the state code, the histogram update of the current
 block, the state count of the current block and the code row of the chunk buffer. The bin of a
 float32 angle a is ``k - 1`` with ``k = ceil(a / width) + n_bins / 2``, exact for bins open at the
 left edge. The state of an angle is looked up from its fine bin: a bin (lo, hi] that no state
 boundary cuts has one state for all its angles, so ``code = table[bin]``; the few bins that hold a
 boundary are marked, and their angles follow the exact rule of
-:meth:`StateScheme.assign <dihedra.schemes.StateScheme.assign>` (last boundary at or below the
+:meth:`StateScheme.assign <dihedra.selection.schemes.StateScheme.assign>` (last boundary at or below the
 angle, the arc's closed or open start), so the codes are exactly those of the scheme.
 
 Memory
@@ -52,7 +52,7 @@ the buffer is full, the bins go into the histograms, the joint states of each co
 into the conformer counts (compiled loop), and the codes (and angles) are transposed into the
 chunk buffer, one row per torsion, as the time series store them. All of it runs where the
 frames are processed (with ``threads=2``, in the second thread, while the first reads on). A full
-chunk goes to the pass's :class:`~dihedra.resultsdir.TimeSeriesWriter` (a row group of
+chunk goes to the pass's :class:`~dihedra.io.resultsdir.TimeSeriesWriter` (a row group of
 ``chunk_frames`` frames in ``series_dir``/states.parquet and angles.parquet), so Parquet is
 encoded during the pass, by the process (and thread) that computed the frames: each worker of a
 parallel run writes the files of its own frames, named by replica and first frame, and the
@@ -62,7 +62,7 @@ buffers and the block sums, whatever the number of frames.
 Parallel runs
 -------------
 Partial results of workers merge by exact sums (``ResultsGroup``), so the multiprocessing, dask
-and distributed (:mod:`dihedra.distributed`) backends give the same integers as a serial run.
+and distributed (:mod:`dihedra.trajectory.distributed`) backends give the same integers as a serial run.
 """
 
 from __future__ import annotations
@@ -74,9 +74,9 @@ import numpy as np
 from MDAnalysis.analysis.base import AnalysisBase
 from MDAnalysis.analysis.results import ResultsGroup
 
-from .angles import TorsionGeometry
-from .errors import OutputWriteError
-from .schemes import UNDEFINED
+from ..numerics.angles import TorsionGeometry
+from ..errors import OutputWriteError
+from ..selection.schemes import UNDEFINED
 from .trajread import xtc_frames
 
 #: Groups with more torsions than this get no conformer statistics (their joint states explode).
@@ -147,7 +147,7 @@ def bin_state_table(scheme, n_bins):
 
     Examples
     --------
-    >>> from dihedra.schemes import get_scheme
+    >>> from dihedra.selection.schemes import get_scheme
     >>> t = bin_state_table(get_scheme("anti-gauche"), 360)
     >>> int(t[60]), int(t[59]), int(t[300]), int(t[301])  # bins (-121,-120], (-122,-121], (119,120], (120,121]
     (-128, 0, 1, 0)
@@ -171,8 +171,8 @@ class TorsionPass(AnalysisBase):
     Parameters
     ----------
     universe : MDAnalysis.Universe
-    torsion_set : dihedra.torsions.TorsionSet
-    scheme : dihedra.schemes.StateScheme
+    torsion_set : dihedra.selection.torsions.TorsionSet
+    scheme : dihedra.selection.schemes.StateScheme
     n_state_blocks : int
         Blocks for population errors (merged pairwise by blocking analysis).
     n_hist_blocks : int
@@ -302,7 +302,7 @@ class TorsionPass(AnalysisBase):
 
     def _compute_decoded(self, indexed_frames, verbose, progressbar_kwargs):
         """``AnalysisBase._compute`` with the frames decoded in batches by ``self._source``
-        (:class:`dihedra.trajread.XTCFrames`) instead of one timestep at a time: the same
+        (:class:`dihedra.trajectory.trajread.XTCFrames`) instead of one timestep at a time: the same
         frames, positions, boxes and times, handed to :meth:`_process` batch by batch (or, with
         the second thread, to it while the next batch is decoded)."""
         from MDAnalysis.lib.log import ProgressBar
@@ -554,7 +554,7 @@ class TorsionPass(AnalysisBase):
         self._n_bins_buf = 0
 
     def _bin_and_code(self, deg, bins, codes, counts, w):
-        """NumPy twin of :func:`dihedra._kernels.bin_and_code` (same bins, codes and counts)."""
+        """NumPy twin of :func:`dihedra.numerics._kernels.bin_and_code` (same bins, codes and counts)."""
         a = deg.astype(np.float64)
         ok = ~np.isnan(a)
         k = np.ceil((np.where(ok, a, 0.0) + self._shift_in) / self.bin_width_deg) + self._shift_out
@@ -792,7 +792,7 @@ class TorsionPass(AnalysisBase):
                                                       ("angles", self._chunk_angles)) if buf is not None}
         with _writing(self.series_dir):
             if self._writer is None:
-                from .resultsdir import TimeSeriesWriter
+                from ..io.resultsdir import TimeSeriesWriter
                 self._writer = TimeSeriesWriter(self.series_dir, list(self.torsion_set.labels),
                                                 self.weights is not None, self.chunk_frames, kinds=tuple(values))
             if self._overlap is None and not self._last_chunk:   # one thread, or the last chunk

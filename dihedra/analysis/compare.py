@@ -17,7 +17,7 @@ other flexible coordinate *is* a test of the torsion term.
 
 Method
 ------
-1. **Grid and prediction.** The sampled histogram profile (:mod:`dihedra.profiles`) and the
+1. **Grid and prediction.** The sampled histogram profile (:mod:`dihedra.analysis.profiles`) and the
    scan's bin-averaged Boltzmann prediction on the same bins,
    F_scan,k = -kT ln( (1/w) integral over bin k of exp(-E/kT) ) (50 points per bin), so both are
    bin averages; with 5-degree bins this differs from E at the bin centre by less than 0.05
@@ -52,7 +52,7 @@ Method
 
 Example
 -------
->>> from dihedra.compare import compare_with_scan            # doctest: +SKIP
+>>> from dihedra.analysis.compare import compare_with_scan            # doctest: +SKIP
 >>> cmp = compare_with_scan(result, scan, temperature_k=298.15)
 >>> cmp.table[["type", "rmse_kj_mol", "verdict"]]
 """
@@ -63,11 +63,11 @@ import numpy as np
 import pandas as pd
 from dataclasses import asdict, dataclass, field
 
-from .errors import DihedraError
+from ..errors import DihedraError
 from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
                        find_minima, resolve_temperature, state_blocks, state_free_energies,
                        type_profiles, write_json_replacing, write_table_replacing)
-from .units import kt_kj_mol, wrap_deg
+from ..units import kt_kj_mol, wrap_deg
 
 #: Sub-points per bin for the bin-averaged prediction.
 _SUB = 50
@@ -258,7 +258,7 @@ def compare_with_scan(result, scan, temperature_k=None, types=None, bin_width_de
     Parameters
     ----------
     result : TrackResult
-    scan : dihedra.scans.TorsionScan
+    scan : dihedra.analysis.scans.TorsionScan
     temperature_k : float, optional
         Required unless the run recorded one (then it is used and announced through ``log``).
     types : str or list of str, optional

@@ -70,7 +70,7 @@ that holds one torsion of each type.
 Example
 -------
 >>> from dihedra import track, example_path
->>> from dihedra.profiles import compute_profiles
+>>> from dihedra.analysis.profiles import compute_profiles
 >>> res = track(example_path("hexane.pdb"), [example_path("hexane.xtc")], stop=200)
 >>> prof = compute_profiles(res, temperature_k=298.15, per_torsion=False)
 >>> sorted(prof.minima["angle_deg"].round(-1).abs().unique().tolist())  # doctest: +SKIP
@@ -92,9 +92,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .errors import DihedraError
-from .outputs import write_file
-from .units import check_temperature, from_kj_mol, canonical_energy_unit, kt_kj_mol, wrap_deg
+from ..errors import DihedraError
+from ..io.outputs import write_file
+from ..units import check_temperature, from_kj_mol, canonical_energy_unit, kt_kj_mol, wrap_deg
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
 DEFAULT_BIN_WIDTH_DEG = 5.0
@@ -151,7 +151,7 @@ def unit_suffix(unit):
 
 def replace_into(folder, name, write):
     """Write a file through ``write(path)`` under a temporary name, then move it into place (only
-    over a file dihedra wrote: see :func:`dihedra.outputs.write_file`)."""
+    over a file dihedra wrote: see :func:`dihedra.io.outputs.write_file`)."""
     return write_file(folder, name, write)
 
 
@@ -162,7 +162,7 @@ def write_table_replacing(frame, folder, name):
 
 def write_json_replacing(data, folder, name):
     """A JSON document, written atomically."""
-    from .resultsdir import write_json
+    from ..io.resultsdir import write_json
     return replace_into(folder, name, lambda p: write_json(data, os.path.dirname(p), os.path.basename(p)))
 
 
@@ -920,7 +920,7 @@ def _scalar(x):
 
 def _merge_blocks_to(values, replica, per_replica):
     """Merge neighbouring blocks pairwise (within replicas) until at most ``per_replica`` remain."""
-    from .statistics import merge_pairs
+    from ..numerics.statistics import merge_pairs
 
     values = np.asarray(values, dtype=float)
     replica = np.asarray(replica)
@@ -1232,7 +1232,7 @@ def compute_profiles(result, temperature_k=None, bin_width_deg=DEFAULT_BIN_WIDTH
     Parameters
     ----------
     result : TrackResult
-        From :func:`dihedra.tracking.track` or :func:`dihedra.resultsdir.load_results`.
+        From :func:`dihedra.tracking.track` or :func:`dihedra.io.resultsdir.load_results`.
     temperature_k : float, optional
         Required unless the run recorded one (then it is used and announced through ``log``).
     bin_width_deg : float
@@ -1387,7 +1387,7 @@ def pair_profiles(result, a, b, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN_WI
     DataFrame with columns torsion_a, torsion_b, n_pairs, angle_a_deg, angle_b_deg,
     probability_density_per_deg2, free_energy_kj_mol, free_energy_err_kj_mol, sampled, n_samples.
     """
-    from .resultsdir import iter_table
+    from ..io.resultsdir import iter_table
 
     kt = kt_kj_mol(temperature_k)
     try:
@@ -1474,7 +1474,7 @@ def write_profiles(pset, folder, energy_unit="kJ/mol"):
               ("state_free_energies.csv", pset.state_free_energies)]
     if pset.profiles_2d is not None:
         tables.append(("profiles_2d.csv", pset.profiles_2d))
-    from .csvtables import write_csv
+    from ..io.csvtables import write_csv
 
     for name, frame in tables:
         converted = (frame if canonical_energy_unit(energy_unit) == "kJ/mol"  # no copy of 6.5 million rows

@@ -144,7 +144,7 @@ def linear_centres(adjacency, candidates, positions, box):
         return set()
     from MDAnalysis.lib.distances import calc_angles
 
-    from .angles import usable_box
+    from ..numerics.angles import usable_box
     centres = np.array([c for c in candidates if len(adjacency[c]) == 2], dtype=np.int64)
     if len(centres) == 0:
         return set()

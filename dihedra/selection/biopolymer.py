@@ -1,6 +1,6 @@
 """Protein and nucleic-acid torsions by the IUPAC-IUB definitions.
 
-Three pure functions turn a topology into a :class:`~dihedra.torsions.TorsionSet`:
+Three pure functions turn a topology into a :class:`~dihedra.selection.torsions.TorsionSet`:
 
 * :func:`protein_backbone_torsions`: phi, psi and omega of every linked amino-acid residue;
 * :func:`protein_sidechain_torsions`: chi1 .. chi5 of every recognised amino-acid residue;
@@ -63,9 +63,9 @@ Rules
   angle, with a notice naming the residue, the atoms expected and the heavy atoms found. Water,
   ions, lipids and ligands are ignored silently.
 
-Every :class:`~dihedra.torsions.Torsion` has ``label`` ``RESNAME RESID:name`` (``ALA12:phi``; the
+Every :class:`~dihedra.selection.torsions.Torsion` has ``label`` ``RESNAME RESID:name`` (``ALA12:phi``; the
 caller makes labels unique across segments), ``type`` ``RESNAME:name`` (``HIE:chi2``), ``group``
-from :func:`~dihedra.torsions.molecule_group` of the residue's CA (or C1') atom and ``indices`` the
+from :func:`~dihedra.selection.torsions.molecule_group` of the residue's CA (or C1') atom and ``indices`` the
 four 0-based atom indices in definition order.
 
 Detection works on arrays of atom names and residue indices and on the bond list, so a system of
@@ -96,7 +96,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .errors import SelectionError
+from ..errors import SelectionError
 from .torsions import Torsion, TorsionSet, bond_array as _bond_array, molecule_group
 
 #: Largest distance (A) at which two residues count as linked when the topology has no bonds.

@@ -10,7 +10,7 @@ fraction of a measured gauche/anti balance).
 For every row the sampled population p_s and its standard error s_s are taken from the results
 folder: a single state of a type from ``populations_by_type.csv``, of a torsion from
 ``populations.csv``; a sum of states from the state counts of the pass (``blocks.npz``) with the
-same blocking analysis as the populations (:func:`dihedra.statistics.blocking_error`), pooled
+same blocking analysis as the populations (:func:`dihedra.numerics.statistics.blocking_error`), pooled
 over the torsions of a type as the mean with error sqrt(sum s_i^2)/n. Then
 
 .. math::  z = (p_s - p_{ref}) / \sqrt{s_s^2 + s_{ref}^2}.
@@ -38,7 +38,7 @@ import os
 import numpy as np
 import pandas as pd
 
-from .errors import DihedraError, InputFileError
+from ..errors import DihedraError, InputFileError
 
 #: Largest |z| of a "consistent" type.
 Z_TENSION = 2.0
@@ -87,7 +87,7 @@ def read_reference_populations(path):
 
 def _union_population(result, positions, codes):
     """Mean over torsions of the summed population of state ``codes``, with its blocking error."""
-    from .statistics import blocking_error
+    from ..numerics.statistics import blocking_error
 
     counts = np.asarray(result.blocks["state_counts"], dtype=float)[:, positions, :]
     value = counts[:, :, codes].sum(axis=2)

@@ -3,7 +3,7 @@
 Functions here turn the block sums of the trajectory pass into tidy tables:
 
 * per torsion: the fraction of (weighted) frames in each state, with the blocking standard error
-  (:func:`dihedra.statistics.blocking_error`) and the effective sample size it implies;
+  (:func:`dihedra.numerics.statistics.blocking_error`) and the effective sample size it implies;
 * per replica: the same for each replica alone;
 * per type: the mean over the torsions of a type; the torsions are separate molecules, treated as
   independent samples, so the standard error is sqrt(sum se_i^2) / n;

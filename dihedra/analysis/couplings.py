@@ -17,7 +17,7 @@ makes the only approximation "p is constant within one degree"; for any smooth p
 
 Statistical error: <J> is a ratio of block sums, sum_b n_b J_b over sum_b n_b, per histogram
 block (16 contiguous blocks per replica). Its standard error comes from the same blocking
-analysis as the populations (:func:`dihedra.statistics.blocking_error`: blocks merged pairwise
+analysis as the populations (:func:`dihedra.numerics.statistics.blocking_error`: blocks merged pairwise
 within replicas, the largest error over levels with at least 8 blocks, never below the spread
 between replicas). Pooled per torsion type, <J> is the mean over the torsions of the type and
 its error sqrt(sum se_i^2)/n (the torsions taken as independent, as for populations).
@@ -105,7 +105,7 @@ verdict stricter than the relation deserves.
 
 Example
 -------
->>> from dihedra.couplings import get_relation
+>>> from dihedra.analysis.couplings import get_relation
 >>> round(float(get_relation("vuister-bax-1993").evaluate(-60.0)), 3)   # CHECK-VALUES.md
 4.107
 """
@@ -119,8 +119,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .errors import DihedraError, InputFileError, one_of
-from .units import wrap_deg
+from ..errors import DihedraError, InputFileError, one_of
+from ..units import wrap_deg
 
 #: Names of the built-in relations.
 BUILTIN_RELATIONS = ("vuister-bax-1993", "hu-bax-1997", "pardi-1984", "karplus-1959",
@@ -390,7 +390,7 @@ def substituents_of(universe, quad, relation, coords, elements):
 
 
 def _topology_universe(result, notices):
-    from .inputs import load_universe, sha256
+    from ..trajectory.inputs import load_universe, sha256
 
     top = result.summary.get("topology", {})
     path = top.get("path")
@@ -490,7 +490,7 @@ def ensemble_couplings(histograms, block_replica, kernels):
     -------
     j_hz, j_err_hz, n_samples : ndarrays (n_torsions,)
     """
-    from .statistics import blocking_error
+    from ..numerics.statistics import blocking_error
 
     h = np.asarray(histograms, dtype=float)
     num = np.einsum("btk,tk->bt", h, np.asarray(kernels, dtype=float))

@@ -65,7 +65,7 @@ frequent state of 250 frames").
 Example
 -------
 >>> from dihedra import track, example_path
->>> from dihedra.plots import plot_convergence, style
+>>> from dihedra.presentation.plots import plot_convergence, style
 >>> res = track(example_path("hexane.pdb"), [example_path("hexane.xtc")], stop=200)  # doctest: +SKIP
 >>> with style():                                                                      # doctest: +SKIP
 ...     ax = plot_convergence(res, res.torsion_set.types[0])
@@ -89,8 +89,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .errors import DihedraError, one_of
-from .outputs import write_file
+from ..errors import DihedraError, one_of
+from ..io.outputs import write_file
 
 # ----------------------------------------------------------------------------------------------
 # Colours and style
@@ -418,7 +418,7 @@ def read_angle_series(folder, torsions, max_points=4000, batch_frames=None):
     -------
     AngleSeries
     """
-    from .resultsdir import iter_table
+    from ..io.resultsdir import iter_table
 
     path = os.path.join(folder, "angles.parquet")
     if not os.path.exists(path):
@@ -439,7 +439,7 @@ def read_angle_series(folder, torsions, max_points=4000, batch_frames=None):
 
 
 def _check_columns(path, columns):
-    from .resultsdir import series_schema
+    from ..io.resultsdir import series_schema
 
     all_names = series_schema(path).names
     names = set(all_names)
@@ -502,7 +502,7 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     -------
     StateRaster
     """
-    from .resultsdir import iter_table
+    from ..io.resultsdir import iter_table
 
     path = os.path.join(folder, "states.parquet")
     if not os.path.exists(path):
@@ -753,7 +753,7 @@ def _energy_suffix(column):
 
 def _convert_energy(values, from_suffix, to_suffix, temperature_k):
     """Energies between the column units kj_mol, kcal_mol and kt (kt needs the temperature)."""
-    from .units import from_kj_mol, to_kj_mol
+    from ..units import from_kj_mol, to_kj_mol
 
     names = {"kj_mol": "kJ/mol", "kcal_mol": "kcal/mol", "kt": "kT"}
     if from_suffix == to_suffix:
@@ -1297,7 +1297,7 @@ def plot_convergence(result, name, ax=None, legend=True):
     Parameters
     ----------
     result : TrackResult
-        From :func:`dihedra.resultsdir.load_results`.
+        From :func:`dihedra.io.resultsdir.load_results`.
     name : str
         Torsion type or torsion label.
 
@@ -1513,7 +1513,7 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     -------
     FigureSet
     """
-    from .resultsdir import load_results
+    from ..io.resultsdir import load_results
 
     say = log or (lambda msg: None)
     result = load_results(folder)
@@ -1689,7 +1689,7 @@ def write_figures(folder, formats=("pdf", "png"), width="single", torsions=None,
 
 
 def _metadata(fmt):
-    from . import __version__
+    from .._version import __version__
     creator = f"dihedra {__version__}"
     if fmt == "png":
         return {"Software": creator}

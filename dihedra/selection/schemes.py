@@ -33,8 +33,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import SchemeError
-from .units import wrap_deg
+from ..errors import SchemeError
+from ..units import wrap_deg
 
 #: State code of an undefined torsion (collinear atoms, NaN coordinates).
 UNDEFINED = -1

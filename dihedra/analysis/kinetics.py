@@ -8,7 +8,7 @@ State assignment
 ----------------
 *Transition-based (core-set) assignment* (default; Buchete & Hummer, J. Phys. Chem. B 112 (2008)
 6057). Every state has a core: its sector of the scheme shrunk by a margin ``m`` on both sides
-(:meth:`dihedra.schemes.StateScheme.core_codes`). The trajectory keeps the state of the last core
+(:meth:`dihedra.selection.schemes.StateScheme.core_codes`). The trajectory keeps the state of the last core
 it visited until it enters another core; frames before the first core visit are unassigned. Noise
 inside a well and recrossings of the barrier that do not reach the other core are therefore not
 transitions. The default margin is :data:`DEFAULT_CORE_MARGIN_DEG` = 20 degrees: with the
@@ -102,7 +102,7 @@ measurements of one quantity.
 
 Example
 -------
->>> from dihedra.kinetics import analyse_state_series
+>>> from dihedra.analysis.kinetics import analyse_state_series
 >>> import numpy as np
 >>> traj = np.array([0, 0, 0, 1, 1, 0, 0, 0, 1, 1, 1])
 >>> tables = analyse_state_series([traj], ["a", "b"], dt_ps=1.0, lags=[1])
@@ -129,8 +129,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .errors import DihedraError, InputFileError, one_of
-from .units import H_J_S, K_B_J_PER_K, R_KJ_PER_MOL_K, check_temperature
+from ..errors import DihedraError, InputFileError, one_of
+from ..units import H_J_S, K_B_J_PER_K, R_KJ_PER_MOL_K, check_temperature
 
 #: Default core margin in degrees (each sector shrunk by this much on both sides).
 DEFAULT_CORE_MARGIN_DEG = 20.0
@@ -1330,8 +1330,8 @@ def _select_torsions(torsions, types):
 
 def _conformer_groups(result, selected):
     """Conformer groups whose torsions are all selected: names, group types, members (column idx)."""
-    from .populations import _short_type_names
-    from .trackpass import conformer_layout
+    from ..numerics.populations import _short_type_names
+    from ..trajectory.trackpass import conformer_layout
 
     groups, members, _ = conformer_layout(result.torsion_set, result.scheme.n_states)
     col = {int(p): k for k, p in enumerate(selected)}
@@ -1425,8 +1425,8 @@ def _folder_contents(folder):
     import json
     from types import SimpleNamespace
 
-    from .schemes import StateScheme
-    from .torsions import TorsionSet
+    from ..selection.schemes import StateScheme
+    from ..selection.torsions import TorsionSet
 
     folder = os.fspath(folder)
     if not os.path.isdir(folder):
@@ -1456,7 +1456,7 @@ def _replica_blocks(path, labels, batch_frames=None):
     """
     import pyarrow.parquet as pq
 
-    from .resultsdir import series_files
+    from ..io.resultsdir import series_files
 
     n = max(1, len(labels))
     batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // n)
@@ -1534,11 +1534,11 @@ class CoreCodes:
     ``core_codes`` takes a floating-point modulo per arc and value (about 130 ns a value);
     here a value's bin of 1/``per_degree`` degree gives its code from a table, and only values
     in bins next to a core edge (about 0.05 % of them) go through ``core_codes`` itself. NaN
-    gives :data:`~dihedra.schemes.UNDEFINED`.
+    gives :data:`~dihedra.selection.schemes.UNDEFINED`.
     """
 
     def __init__(self, scheme, margin_deg, per_degree=100):
-        from .units import wrap_deg
+        from ..units import wrap_deg
 
         self.scheme, self.margin, self.per_degree = scheme, float(margin_deg), int(per_degree)
         n = 360 * self.per_degree
@@ -1876,10 +1876,10 @@ def _add_tst(transitions, temperature_k, barriers, notices):
 
 def write_kinetics(result, folder, seconds=None):
     """Write the four tables and ``kinetics.json`` into ``folder``, each through a temporary name."""
-    from . import __version__
-    from .csvtables import write_csv
-    from .outputs import write_file
-    from .resultsdir import write_json
+    from .._version import __version__
+    from ..io.csvtables import write_csv
+    from ..io.outputs import write_file
+    from ..io.resultsdir import write_json
 
     written = []
     tables = [("transitions.csv", result.transitions), ("lifetimes.csv", result.lifetimes),

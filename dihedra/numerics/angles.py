@@ -26,7 +26,7 @@ C library: with ``lo = min(|x|, |y|)`` and ``hi = max(|x|, |y|)``, ``z = lo / hi
 ``(lo - hi) / (lo + hi)`` plus pi/4 when ``lo > 0.66 hi``), atan(z) is the rational approximation
 of the Cephes library (Moshier, *Methods and Programs for Mathematical Functions*, 1989; 1 ulp in
 double precision), and the octant is restored from the signs. Written once for the compiler
-(:mod:`dihedra._kernels`, numba) and once in NumPy, with the same operations in the same order,
+(:mod:`dihedra.numerics._kernels`, numba) and once in NumPy, with the same operations in the same order,
 both give identical angles; the compiled one turns the arithmetic into SIMD code (about 5 ns per
 torsion instead of about 40 with NumPy).
 
@@ -46,7 +46,7 @@ _kernels = None
 
 
 def compiled_kernels():
-    """The numba kernels (:mod:`dihedra._kernels`), or ``None`` when numba is not installed or
+    """The numba kernels (:mod:`dihedra.numerics._kernels`), or ``None`` when numba is not installed or
     ``DIHEDRA_NO_NUMBA`` is set to a non-empty value other than ``0``."""
     global _kernels
     if os.environ.get("DIHEDRA_NO_NUMBA", "0") not in ("", "0"):

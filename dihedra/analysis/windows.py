@@ -98,7 +98,7 @@ gives smaller (too small) errors than the ones written here.
 
 Example
 -------
->>> from dihedra.windows import unbias_windows               # doctest: +SKIP
+>>> from dihedra.analysis.windows import unbias_windows               # doctest: +SKIP
 >>> res = unbias_windows("windows.csv", temperature_k=298.15, out="windows-results")
 >>> res.agreement                                          # MBAR vs WHAM per type
 """
@@ -115,8 +115,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .errors import DihedraError, InputFileError
-from .units import check_temperature, kt_kj_mol, wrap_deg
+from ..errors import DihedraError, InputFileError
+from ..units import check_temperature, kt_kj_mol, wrap_deg
 
 #: Columns of WINDOWS.csv.
 WINDOW_COLUMNS = ("trajectory", "topology", "torsions", "centre_deg", "k_kj_mol_rad2")
@@ -343,7 +343,7 @@ def collect_windows(windows, scheme="anti-gauche", start=None, stop=None, step=N
     workers : int
     log : callable, optional
     """
-    from .tracking import track
+    from ..tracking import track
 
     say = log or (lambda msg: None)
     tracks, parts, notices, n_frames = [], [], [], []
@@ -585,7 +585,7 @@ class WindowsResult:
     result : TrackResult
         The MBAR-weighted results folder content.
     profiles : ProfileSet
-        In the format of :func:`dihedra.profiles.compute_profiles` (histogram = MBAR).
+        In the format of :func:`dihedra.analysis.profiles.compute_profiles` (histogram = MBAR).
     windows : DataFrame
         Per window (see the module notes).
     overlap : DataFrame
@@ -647,10 +647,10 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
     bin_width_deg : float
         Bin width of the profiles (a divisor of 360, multiple of 1 degree).
     bandwidth_deg : float, optional
-        Kernel standard deviation (default: the rule of :mod:`dihedra.profiles` with the Kish
+        Kernel standard deviation (default: the rule of :mod:`dihedra.analysis.profiles` with the Kish
         effective sample size of the weights).
     n_bootstrap, seed : int
-        Block-bootstrap resamples and seed (default the seed of :mod:`dihedra.profiles`).
+        Block-bootstrap resamples and seed (default the seed of :mod:`dihedra.analysis.profiles`).
     start, stop, step : int, optional
         Frame range applied to every window.
     workers : int
@@ -664,12 +664,12 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
     -------
     WindowsResult
     """
-    from .populations import conformer_populations, pool_by_type, replica_populations, torsion_populations
+    from ..numerics.populations import conformer_populations, pool_by_type, replica_populations, torsion_populations
     from .profiles import (DEFAULT_SEED, ProfileSet, bootstrap_multiplicities, bootstrap_spread, check_bin_width,
                            default_bandwidth_deg, profile_features, rebin)
-    from .schemes import get_scheme
-    from .statistics import statistical_inefficiency
-    from .tracking import TrackResult
+    from ..selection.schemes import get_scheme
+    from ..numerics.statistics import statistical_inefficiency
+    from ..tracking import TrackResult
 
     t0 = time.time()
     say = log or (lambda msg: None)
@@ -685,7 +685,7 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
     seed = DEFAULT_SEED if seed is None else int(seed)
     windows = read_windows(windows_csv)
     if out is not None:
-        from .outputs import StagedFolder
+        from ..io.outputs import StagedFolder
         inputs = [windows_csv, *windows["trajectory"], *windows["topology"],
                   *(t for t in windows["torsions"] if os.path.exists(t))]
         staging = StagedFolder.begin(out, overwrite=overwrite, inputs=inputs, command="windows")
@@ -940,8 +940,8 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
 
 
 def _summary(first, data, windows, scheme, temperature_k, tset, notices, start, stop, step, seconds):
-    from . import __version__
-    from .tracking import _package_versions
+    from .._version import __version__
+    from ..tracking import _package_versions
 
     replicas = []
     for res, row in zip(data.tracks, windows.itertuples(index=False)):
@@ -966,7 +966,7 @@ def _summary(first, data, windows, scheme, temperature_k, tset, notices, start, 
 def write_windows(wres, folder):
     """Write the results folder of :func:`unbias_windows` into ``folder``; returns the paths."""
     from .profiles import write_json_replacing, write_profiles, write_table_replacing
-    from .resultsdir import write_results
+    from ..io.resultsdir import write_results
 
     write_results(wres.result, folder)
     paths = write_profiles(wres.profiles, folder)

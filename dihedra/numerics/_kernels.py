@@ -1,8 +1,8 @@
 """Compiled kernels (numba): the per-frame work of the trajectory pass, and the blocking analysis
-of the populations (:func:`blocking_columns`, used by :func:`dihedra.statistics.blocking_error`).
+of the populations (:func:`blocking_columns`, used by :func:`dihedra.numerics.statistics.blocking_error`).
 
-This module is imported only through :func:`dihedra.angles.compiled_kernels`, which falls back to
-the NumPy implementations in :mod:`dihedra.angles` and :mod:`dihedra.trackpass` when numba is
+This module is imported only through :func:`dihedra.numerics.angles.compiled_kernels`, which falls back to
+the NumPy implementations in :mod:`dihedra.numerics.angles` and :mod:`dihedra.trajectory.trackpass` when numba is
 missing (or ``DIHEDRA_NO_NUMBA=1``). Every kernel does exactly the floating-point operations of
 its NumPy twin, in the same order and without fused multiply-adds or fast-math, so both paths give
 the same bits (tested in ``tests/test_kernels.py``). The functions are compiled on first use and
@@ -115,7 +115,7 @@ def dihedrals_deg(bonds, lengths, inverse, out):
     (``lengths`` and ``inverse`` 1 / L; zeros make it the identity, for no box or a triclinic
     cell already reduced by :func:`minimum_image_triclinic`). Then
     phi = atan2(|b2| b1 . (b2 x b3), (b1 x b2) . (b2 x b3)), with the arctangent computed here
-    (see the module docstring of :mod:`dihedra.angles`).
+    (see the module docstring of :mod:`dihedra.numerics.angles`).
     """
     n = bonds.shape[1]
     lx, ly, lz = lengths[0], lengths[1], lengths[2]
@@ -181,7 +181,7 @@ def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, boundaries, sta
     bins, shift_in = 0 and shift_out = n_bins / 2, which is exact for float32 angles, also next
     to 0 and to bin edges; else shift_in = 180, shift_out = 0. ``codes`` receives ``table[k]``
     (``table[0]`` = -1, undefined); a bin whose entry is ``mixed`` is cut by a state boundary,
-    and its angles follow the exact rule of :meth:`dihedra.schemes.StateScheme.assign` (last
+    and its angles follow the exact rule of :meth:`dihedra.selection.schemes.StateScheme.assign` (last
     boundary at or below the angle; a boundary owned by the previous arc moves one arc back).
     ``counts[t, code]`` (the current state block) gets ``weight``; an undefined angle adds 1 to
     ``undefined[t]`` instead.
@@ -296,7 +296,7 @@ def transpose_into(src, dst):
 @njit(**_OPTS)
 def _block_mean_error(v, w, n, width, mean, se):
     """Mean and standard error of the block sums ``v[:n, :width]`` / ``w[:n, :width]``, column by
-    column (the operations of :func:`dihedra.statistics.weighted_block_error`, in its order: sums
+    column (the operations of :func:`dihedra.numerics.statistics.weighted_block_error`, in its order: sums
     over the blocks in turn; the inner loops run over columns, which SIMD takes together)."""
     total_w = np.zeros(width)
     total_v = np.zeros(width)
@@ -326,7 +326,7 @@ def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level
     """Flyvbjerg-Petersen blocking of every column of ``values`` (n_blocks, n_columns) with the
     weight sums ``weights[:, weight_column[c]]`` for column c (``weights`` of shape (n_blocks,
     n_weight_columns): one column of weights may serve several of values, without a copy), as
-    :func:`dihedra.statistics.blocking_error` does it.
+    :func:`dihedra.numerics.statistics.blocking_error` does it.
 
     ``kept`` are the blocks with weight; ``pair_a``, ``pair_b`` the blocks merged at each level
     (indices into the previous level, the levels' sizes in ``level_sizes``, every one of them used);

@@ -33,7 +33,7 @@ import tempfile
 import time
 import uuid
 
-from .errors import OutputExistsError
+from ..errors import OutputExistsError
 
 #: The list of the files dihedra wrote into a results folder (its presence marks the folder).
 MARKER = "dihedra-files.json"

@@ -3,7 +3,7 @@
 MDAnalysis decodes one XTC frame at a time while holding Python's lock; for a large system
 decoding is most of the cost of a pass. :class:`XTCFrames` reads the bytes of a batch of frames
 with one system call per run of consecutive frames and decodes them all in one compiled call
-(:mod:`dihedra._xtc`) that releases the lock, so that with a second thread the torsions of the
+(:mod:`dihedra.trajectory._xtc`) that releases the lock, so that with a second thread the torsions of the
 previous batch are computed at the same time. The positions, boxes, frame numbers and times are
 the ones MDAnalysis gives (tested bit for bit): the decoder does the library's integer and float32
 operations, the boxes go through MDAnalysis' own ``triclinic_box`` and unit conversion, the times
@@ -43,7 +43,7 @@ def xtc_frames(reader):
         return None
     if reader.units.get("length") != "nm":
         return None
-    from .angles import compiled_kernels
+    from ..numerics.angles import compiled_kernels
     if compiled_kernels() is None:
         return None
     try:
@@ -61,7 +61,7 @@ class XTCFrames:
     reader : MDAnalysis.coordinates.XTC.XTCReader
         Supplies the file, the frame offsets, ``dt``, ``time_offset`` and the fallback.
     decoder : module
-        :mod:`dihedra._xtc`.
+        :mod:`dihedra.trajectory._xtc`.
     """
 
     def __init__(self, reader, decoder):

@@ -2,7 +2,7 @@ r"""Static torsion scans: read from a CSV file, built from force-field parameter
 
 A static scan E(phi) is the energy of one molecule as a function of one torsion angle, either
 *rigid* (every other coordinate frozen) or *relaxed* (every other coordinate optimised at each
-fixed angle). dihedra compares it with a sampled free-energy profile (:mod:`dihedra.compare`).
+fixed angle). dihedra compares it with a sampled free-energy profile (:mod:`dihedra.analysis.compare`).
 
 Scan CSV files
 --------------
@@ -60,8 +60,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import DihedraError, InputFileError, one_of
-from .units import (HARTREE_KJ_PER_MOL, canonical_energy_unit, to_kj_mol, wrap_deg)
+from ..errors import DihedraError, InputFileError, one_of
+from ..units import (HARTREE_KJ_PER_MOL, canonical_energy_unit, to_kj_mol, wrap_deg)
 
 #: Fewest distinct angles a scan may have.
 MIN_POINTS = 6
@@ -435,7 +435,7 @@ def molecule_from_topology(topology, torsion, trajectory=None):
         The torsion's atom indices inside ``mol``.
     """
     _require("rdkit", "building the molecule for a computed scan")
-    from .inputs import load_universe
+    from ..trajectory.inputs import load_universe
 
     idx = parse_torsion_atoms(torsion)
     notices = []
@@ -694,7 +694,7 @@ SCAN_SIGNATURE = "# content: dihedra torsion scan"
 def check_scan_output(path, overwrite=False, inputs=()):
     """Check a scan file to be written: an existing file is replaced only with ``overwrite`` and
     only when it is a scan dihedra wrote; returns the absolute path."""
-    from .outputs import check_single_file, file_head_contains
+    from ..io.outputs import check_single_file, file_head_contains
 
     return check_single_file(path, inputs=inputs, overwrite=overwrite, kind="dihedra scan",
                              ours=lambda p: file_head_contains(p, SCAN_SIGNATURE, limit=len(SCAN_SIGNATURE)))
@@ -705,7 +705,7 @@ def write_scan_csv(scan, path, extra=None, overwrite=False):
 
     An existing file is replaced only with ``overwrite`` and only when it is a scan that dihedra
     wrote (see :func:`check_scan_output`)."""
-    from .outputs import write_file
+    from ..io.outputs import write_file
 
     path = check_scan_output(path, overwrite=overwrite)
 

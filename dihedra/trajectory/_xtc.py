@@ -14,7 +14,7 @@ by multiplying with float64 reciprocals (corrected to the exact quotient) where 
 divides byte by byte, and a whole batch of frames is decoded in one compiled call that releases
 Python's lock, so another thread runs meanwhile.
 
-Only :mod:`dihedra.trajread` uses it.
+Only :mod:`dihedra.trajectory.trajread` uses it.
 """
 
 import numpy as np

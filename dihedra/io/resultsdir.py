@@ -35,7 +35,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 
-from .errors import InputFileError
+from ..errors import InputFileError
 
 TABLES = {
     "torsions": "torsions.csv",
@@ -382,9 +382,9 @@ def _with_index(columns):
 
 def load_results(folder):
     """Load a results folder written by ``dihedra track`` as a :class:`~dihedra.track.TrackResult`."""
-    from .schemes import StateScheme
-    from .torsions import TorsionSet
-    from .tracking import TrackResult
+    from ..selection.schemes import StateScheme
+    from ..selection.torsions import TorsionSet
+    from ..tracking import TrackResult
 
     folder = os.fspath(folder)
     if not os.path.isdir(folder):
