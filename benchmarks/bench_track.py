@@ -266,6 +266,7 @@ warnings.simplefilter("ignore")
 import MDAnalysis as mda
 from dihedra.selection.schemes import get_scheme
 from dihedra.selection.torsions import select_torsions
+from dihedra.io.series import ParquetSeriesFactory
 from dihedra.trajectory.trackpass import TorsionPass
 u = mda.Universe(sys.argv[1], sys.argv[2])
 tset = select_torsions(u, "rotatable")
@@ -284,6 +285,7 @@ warnings.simplefilter("ignore")
 import MDAnalysis as mda
 from dihedra.selection.schemes import get_scheme
 from dihedra.selection.torsions import select_torsions
+from dihedra.io.series import ParquetSeriesFactory
 from dihedra.trajectory.trackpass import TorsionPass
 top, xtc, n, repeat = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4])
 u = mda.Universe(top, xtc)
@@ -302,7 +304,7 @@ def read(stop):
 def run(stop, threads):
     parts = tempfile.mkdtemp()
     t = clock()
-    TorsionPass(u, tset, scheme, series_dir=parts, threads=threads).run(stop=stop)
+    TorsionPass(u, tset, scheme, series=ParquetSeriesFactory(parts), threads=threads).run(stop=stop)
     shutil.rmtree(parts)
     return t
 

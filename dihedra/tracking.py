@@ -23,88 +23,21 @@ import sys
 import tempfile
 import time
 import warnings
-from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from ._version import __version__
 from .errors import DihedraError, InputFileError, OutputWriteError
-from .trajectory.inputs import check_readable, load_universe, sha256, truncated_error
 from .io.outputs import StagedFolder
+from .io.series import ParquetSeries, ParquetSeriesFactory
 from .numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
-                          replica_populations, torsion_populations)
+                                   replica_populations, torsion_populations)
 from .selection.schemes import get_scheme
 from .selection.torsions import TorsionSet, select_torsions
+from .trajectory.inputs import check_readable, load_universe, sha256, truncated_error
+from .trajectory.result import TrackResult
 from .trajectory.trackpass import TorsionPass, conformer_layout, reduce_conformer_rows
-
-
-@dataclass
-class TrackResult:
-    """Everything a tracking run produced; the same content as a results folder.
-
-    Attributes
-    ----------
-    torsion_set : TorsionSet
-    torsions : DataFrame
-        Layout of ``torsions.csv``.
-    scheme : StateScheme
-    populations, populations_by_type, populations_by_replica : DataFrame
-        Per torsion, pooled per type, and per replica; ``population`` is a fraction in [0, 1].
-    conformers, conformers_by_type : DataFrame
-        Joint states of the torsions of each group, and pooled per group type.
-    blocks : dict of ndarray
-        Block sums from the pass (``state_counts`` (n_blocks, n_torsions, n_states),
-        ``histograms`` (n_hist_blocks, n_torsions, n_bins), block frames, weights and replicas,
-        ``bin_edges_deg``), the input for profiles and errors.
-    summary : dict
-        Inputs with SHA-256, frame ranges, time step, scheme, parameters, package versions.
-    notices : list of str
-        Things the user should know (skipped residues, undefined torsions, rough errors).
-    folder : str or None
-        The results folder, if written or loaded.
-    """
-
-    torsion_set: TorsionSet
-    torsions: pd.DataFrame
-    scheme: object
-    populations: pd.DataFrame
-    populations_by_type: pd.DataFrame
-    populations_by_replica: pd.DataFrame
-    conformers: pd.DataFrame
-    conformers_by_type: pd.DataFrame
-    blocks: dict
-    summary: dict
-    notices: list = field(default_factory=list)
-    folder: str | None = None
-    _scratch: object = None  # keeps a temporary folder alive for API-only runs
-
-    def states(self, columns=None):
-        """The state time series as a DataFrame (replica, frame, time_ps, one int8 column per torsion).
-
-        For long runs prefer :meth:`iter_states`, which reads it in chunks.
-        """
-        from .io.resultsdir import read_table
-        return read_table(self._path("states"), columns)
-
-    def iter_states(self, columns=None, batch_frames=None):
-        """Yield the state time series chunk by chunk (DataFrames), in frame order."""
-        from .io.resultsdir import iter_table
-        yield from iter_table(self._path("states"), columns, batch_frames)
-
-    def angles(self, columns=None):
-        """The angle time series (float32 degrees), if the run kept angles."""
-        from .io.resultsdir import read_table
-        return read_table(self._path("angles"), columns)
-
-    def _path(self, kind):
-        base = self.folder or (self._scratch.name if self._scratch is not None else None)
-        path = os.path.join(base, f"{kind}.parquet") if base else None
-        if path is None or not os.path.exists(path):
-            raise DihedraError(f"this result has no {kind} time series"
-                               + (" (run with keep_angles=True / --keep-angles)" if kind == "angles" else "")
-                               + ".")
-        return path
 
 
 def load_weights(spec, n_frames_per_replica):
@@ -298,7 +231,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
                 passes[-1].finish_series()
             tp = TorsionPass(u, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
                              bin_width_deg=bin_width_deg, weights=w, parts_dir=parts_dir,
-                             series_dir=work, keep_angles=keep_angles, chunk_frames=chunk_frames,
+                             series=ParquetSeriesFactory(work), keep_angles=keep_angles, chunk_frames=chunk_frames,
                              replica=r, dt_ps=dt_ps, threads=threads, defer_close=backend == "serial")
             run_kwargs = dict(start=start, stop=stop, step=step)
             if backend == "serial":
@@ -322,7 +255,8 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         # the time series are written (each pass, serial or every worker, wrote the files of its
         # frames); blocks.npz is written by another thread (zlib releases Python's lock) while
         # this one computes the populations and writes the tables
-        from .io.resultsdir import narrowed_type, save_npz, write_results
+        from .io.blocks import narrowed_type, save_npz
+        from .io.resultsdir import write_results
         shutil.rmtree(parts_dir, ignore_errors=True)
         blocks = _block_sums(passes)
 
@@ -346,8 +280,10 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         if staging is not None:
             result.folder = staging.commit()
             staging = None
+            result.series = ParquetSeries(result.folder)
         else:
             result._scratch = scratch
+            result.series = ParquetSeries(scratch.name)
             scratch = None
         return result
     finally:

@@ -12,8 +12,8 @@ import pytest
 
 from conftest import place_fourth, write_system
 from dihedra.errors import DihedraError
-from dihedra.io import resultsdir
-from dihedra.io.resultsdir import series_files
+from dihedra.io import series as series_module
+from dihedra.io.series import ParquetSeriesFactory, series_files
 from dihedra.selection.schemes import get_scheme
 from dihedra.tracking import track
 
@@ -96,7 +96,7 @@ def assert_same(a, b):
     # own frames: file names by replica and first frame, rows in the order of the names
     for r in (a, b):
         for kind in ("states", "angles"):
-            files = series_files(r._path(kind))
+            files = series_files(r.series.path(kind))
             firsts = [(int(os.path.basename(f)[5:9]), int(os.path.basename(f)[10:22])) for f in files]
             heads = [tuple(pq.read_table(f, columns=["replica", "frame"]).slice(0, 1).to_pylist()[0].values())
                      for f in files]
@@ -107,10 +107,10 @@ def test_time_series_start_new_files(replicas, serial, monkeypatch):
     # Arrow's writer keeps the metadata of every row group until its file closes, so a long run
     # starts a new file every COLUMN_CHUNKS_PER_FILE column chunks; here every row group (the
     # serial pass and every worker write through TimeSeriesWriter)
-    monkeypatch.setattr(resultsdir, "COLUMN_CHUNKS_PER_FILE", 1)
+    monkeypatch.setattr(series_module, "COLUMN_CHUNKS_PER_FILE", 1)
     top, trajs, _ = replicas
     split = track(top, trajs, **KW)
-    files = series_files(split._path("states"))
+    files = series_files(split.series.path("states"))
     assert len(files) > 2
     assert [pq.ParquetFile(f).num_row_groups for f in files] == [1] * len(files)
     # the same table as in one file, also read back in chunks
@@ -135,7 +135,7 @@ def test_deferred_close_writes_the_same_files(replicas, tmp_path, threads):
     for defer in (False, True):
         out = tmp_path / f"defer{defer}"
         out.mkdir()
-        tp = TorsionPass(u, tset, get_scheme("klyne-prelog"), series_dir=str(out), keep_angles=True,
+        tp = TorsionPass(u, tset, get_scheme("klyne-prelog"), series=ParquetSeriesFactory(str(out)), keep_angles=True,
                          chunk_frames=40, threads=threads, defer_close=defer)
         tp.run()
         tp.finish_series()
@@ -262,7 +262,7 @@ import MDAnalysis as mda
 from dihedra.selection.schemes import get_scheme
 from dihedra.selection.torsions import select_torsions
 from dihedra.trajectory.trackpass import TorsionPass
-from dihedra.io.resultsdir import series_files
+from dihedra.io.series import ParquetSeriesFactory, series_files
 import pyarrow.parquet as pq
 top, traj, folder = sys.argv[1:4]
 u = mda.Universe(top, traj)
@@ -272,7 +272,7 @@ for stop in (200, 800):
     parts = os.path.join(folder, f"parts{stop}")
     os.mkdir(parts)
     # coarse bins and few blocks keep the fixed part small, so growth would show
-    tp = TorsionPass(u, tset, get_scheme("anti-gauche"), series_dir=parts, chunk_frames=50,
+    tp = TorsionPass(u, tset, get_scheme("anti-gauche"), series=ParquetSeriesFactory(parts), chunk_frames=50,
                      keep_angles=True, bin_width_deg=30.0, n_state_blocks=4, n_hist_blocks=4)
     tracemalloc.start()
     tp.run(stop=stop)

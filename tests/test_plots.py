@@ -18,7 +18,7 @@ matplotlib.use("Agg")
 
 from dihedra.presentation import plots  # noqa: E402
 from dihedra.errors import DihedraError  # noqa: E402
-from dihedra.io.resultsdir import load_results, read_table  # noqa: E402
+from dihedra.io.resultsdir import load_results  # noqa: E402
 from dihedra.selection.schemes import get_scheme, scheme_from_mapping  # noqa: E402
 
 
@@ -105,7 +105,7 @@ def test_sector_spans_cover_the_circle_once():
 def test_angle_series_downsamples_in_chunks_and_draws_bands(full_folder):
     labels = ["BUT1:C1-C2-C3-C4", "BUT2:C1-C2-C3-C4"]
     series = plots.read_angle_series(full_folder, labels, max_points=100, batch_frames=37)
-    full = read_table(os.path.join(full_folder, "angles.parquet"), labels)
+    full = pd.read_parquet(os.path.join(full_folder, "angles.parquet"), columns=labels)
     stride = int(np.ceil(len(full) / 100))
     assert series.stride == stride and series.n_frames == len(full)
     # every stride-th frame, exactly (pandas on the whole table is the reference)
@@ -127,7 +127,7 @@ def test_angle_series_downsamples_in_chunks_and_draws_bands(full_folder):
 
 def test_state_raster_is_the_most_frequent_state_per_column(full_folder):
     scheme = load_results(full_folder).scheme
-    states = read_table(os.path.join(full_folder, "states.parquet"))
+    states = pd.read_parquet(os.path.join(full_folder, "states.parquet"))
     labels = [c for c in states.columns if c.startswith("BUT")]
     # one column per frame: the raster is the state table itself
     exact = plots.read_state_raster(full_folder, max_columns=10_000, batch_frames=50)

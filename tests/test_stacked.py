@@ -15,7 +15,7 @@ from scipy import linalg
 
 from dihedra.analysis import kinetics as kin
 from dihedra.analysis import profiles as prof
-from dihedra.io.csvtables import write_csv
+from dihedra.io.tables import write_csv
 from dihedra.selection.schemes import get_scheme
 
 

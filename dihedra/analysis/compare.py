@@ -59,15 +59,16 @@ Example
 
 from __future__ import annotations
 
-import numpy as np
-import pandas as pd
 from dataclasses import asdict, dataclass, field
 
+import numpy as np
+import pandas as pd
+
 from ..errors import DihedraError
-from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
-                       find_minima, resolve_temperature, state_blocks, state_free_energies,
-                       type_profiles, write_json_replacing, write_table_replacing)
+from ..io.tables import write_json, write_table
 from ..units import kt_kj_mol, wrap_deg
+from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
+                       find_minima, resolve_temperature, state_blocks, state_free_energies, type_profiles)
 
 #: Sub-points per bin for the bin-averaged prediction.
 _SUB = 50
@@ -432,9 +433,9 @@ CAUTIONS = [
 
 def write_comparison(cmp, folder):
     """Write comparison.csv, comparison_profiles.csv and comparison.json (atomically)."""
-    return [write_table_replacing(cmp.table, folder, "comparison.csv"),
-            write_table_replacing(cmp.profiles, folder, "comparison_profiles.csv"),
-            write_json_replacing(_jsonable(cmp.details), folder, "comparison.json")]
+    return [write_table(cmp.table, folder, "comparison.csv"),
+            write_table(cmp.profiles, folder, "comparison_profiles.csv"),
+            write_json(_jsonable(cmp.details), folder, "comparison.json")]
 
 
 def _jsonable(obj):

@@ -725,9 +725,9 @@ VERDICT_RULES = {
 
 def write_couplings(cres, folder, points=None, summary=None, experimental_path=None):
     """Write couplings.csv (and couplings_vs_experiment.csv) and couplings.json into ``folder``."""
-    from .profiles import write_json_replacing, write_table_replacing
+    from ..io.tables import write_json, write_table
 
-    paths = [write_table_replacing(cres.couplings, folder, "couplings.csv")]
+    paths = [write_table(cres.couplings, folder, "couplings.csv")]
     info = {"relations": cres.relations, "notices": list(cres.notices),
             "method": "<J> = sum_b n_b mean_b(J) / sum_b n_b over the fine histogram bins; statistical error "
                       "by blocking over the histogram blocks (within replicas); j_systematic_hz reported "
@@ -741,8 +741,8 @@ def write_couplings(cres, folder, points=None, summary=None, experimental_path=N
                 "(j_systematic_hz) is often larger than the statistical error.",
             ]}
     if points is not None:
-        paths.append(write_table_replacing(points, folder, "couplings_vs_experiment.csv"))
+        paths.append(write_table(points, folder, "couplings_vs_experiment.csv"))
         info["experimental"] = {"file": os.path.abspath(experimental_path) if experimental_path else None,
                                 "summary": summary, "verdict_rules": VERDICT_RULES}
-    paths.append(write_json_replacing(info, folder, "couplings.json"))
+    paths.append(write_json(info, folder, "couplings.json"))
     return paths

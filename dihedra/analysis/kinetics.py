@@ -130,6 +130,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DihedraError, InputFileError, one_of
+from ..io.series import ParquetSeries
 from ..units import H_J_S, K_B_J_PER_K, R_KJ_PER_MOL_K, check_temperature
 
 #: Default core margin in degrees (each sector shrunk by this much on both sides).
@@ -1443,38 +1444,20 @@ def _folder_contents(folder):
                            torsion_set=TorsionSet.from_frame(torsions))
 
 
-#: Values decoded from the Parquet file at a time (the steps that follow take CHUNK_VALUES at a time).
+#: Values decoded from the time series at a time (the steps that follow take CHUNK_VALUES at a time).
 READ_VALUES = 16_000_000
 
 
-def _replica_blocks(path, labels, batch_frames=None):
+def _replica_blocks(source, kind, labels, batch_frames=None):
     """Yield (replica, values) of a time series: values (n_labels, n_frames) laid out series by
-    series, consecutive frames of one replica, about CHUNK_VALUES at a time.
-
-    Parquet is decoded READ_VALUES at a time (its cost per column and read is high, so reads are
-    large); the values are copied out of Arrow one chunk at a time.
-    """
-    import pyarrow.parquet as pq
-
-    from ..io.resultsdir import series_files
-
+    series, consecutive frames of one replica, about CHUNK_VALUES at a time (read through the
+    series source of the result, READ_VALUES at a time)."""
     n = max(1, len(labels))
     batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // n)
     step = min(batch, max(1, CHUNK_VALUES // n))
-    batches = (rb for name in series_files(path)
-               for rb in pq.ParquetFile(name).iter_batches(batch_size=batch, columns=["replica", *labels]))
-    for rb in batches:
-        rep = rb.column("replica").to_numpy()
-        cols = [rb.column(name) for name in labels]
-        dtype = cols[0].type.to_pandas_dtype() if cols else np.int8
-        cuts = np.flatnonzero(np.diff(rep)) + 1
-        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(rep)]):
-            for a in range(lo, hi, step):
-                m = min(hi, a + step) - a
-                values = np.empty((len(labels), m), dtype=dtype)
-                for k, col in enumerate(cols):
-                    values[k] = col.slice(a, m).to_numpy(zero_copy_only=False)
-                yield int(rep[lo]), values
+    for chunk in source.iter_chunks(kind, labels, batch):
+        for a in range(0, len(chunk), step):
+            yield chunk.replica, chunk.values[:, a:a + step]
 
 
 def _joint_codes(assigned, layout, n_states):
@@ -1567,7 +1550,7 @@ class CoreCodes:
         return codes
 
 
-def _tally_columns(part, path, labels, kind, scheme, margin, lags, members, pool, batch_frames):
+def _tally_columns(part, source, labels, kind, scheme, margin, lags, members, pool, batch_frames):
     """Read the columns of one part, assign states and tally torsions and conformer groups.
 
     Returns (torsion tally, conformer tally or None, frames read).
@@ -1586,7 +1569,7 @@ def _tally_columns(part, path, labels, kind, scheme, margin, lags, members, pool
     current = None
     n_frames = 0
     core = CoreCodes(scheme, margin) if kind == "angles" else None
-    for rep, block in _replica_blocks(path, [labels[c] for c in columns], batch_frames):
+    for rep, block in _replica_blocks(source, kind, [labels[c] for c in columns], batch_frames):
         if rep != current:
             if current is not None:
                 t_tally.end_replica()
@@ -1729,7 +1712,7 @@ def kinetics(folder, assignment="core", core_margin_deg=DEFAULT_CORE_MARGIN_DEG,
     pool = pd.Categorical(g_short, categories=conf_types).codes.astype(np.int64)
     say(f"reading {kind}.parquet: {len(selected)} torsions, {len(g_names)} conformer groups, "
         f"{len(frames_per_rep)} replica(s)")
-    read = functools.partial(_tally_columns, path=path, labels=labels, kind=kind, scheme=scheme, margin=margin,
+    read = functools.partial(_tally_columns, source=ParquetSeries(folder), labels=labels, kind=kind, scheme=scheme, margin=margin,
                              lags=lags_used, members=g_members, pool=pool, batch_frames=batch_frames)
     parts = _column_parts(len(selected), g_members, _THREADS)
     if len(parts) > 1:  # parts of the columns side by side in threads (NumPy and Arrow release the lock)
@@ -1877,9 +1860,7 @@ def _add_tst(transitions, temperature_k, barriers, notices):
 def write_kinetics(result, folder, seconds=None):
     """Write the four tables and ``kinetics.json`` into ``folder``, each through a temporary name."""
     from .._version import __version__
-    from ..io.csvtables import write_csv
-    from ..io.outputs import write_file
-    from ..io.resultsdir import write_json
+    from ..io.tables import write_json, write_table
 
     written = []
     tables = [("transitions.csv", result.transitions), ("lifetimes.csv", result.lifetimes),
@@ -1887,11 +1868,11 @@ def write_kinetics(result, folder, seconds=None):
     if result.dwell_times is not None:
         tables.append(("dwell_times.csv", result.dwell_times))
     for name, frame in tables:
-        write_file(folder, name, lambda tmp, frame=frame: write_csv(frame, tmp))
+        write_table(frame, folder, name)
         written.append(name)
     doc = {"dihedra_version": __version__, "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
            "parameters": result.parameters, "notices": list(result.notices), "files": written,
            "run_seconds": None if seconds is None else round(seconds, 3)}
-    write_file(folder, "kinetics.json", lambda tmp: write_json(doc, os.path.dirname(tmp), os.path.basename(tmp)))
+    write_json(doc, folder, "kinetics.json")
     return written
 

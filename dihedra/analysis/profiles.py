@@ -93,7 +93,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DihedraError
-from ..io.outputs import write_file
+from ..io.tables import write_json, write_table
 from ..units import check_temperature, from_kj_mol, canonical_energy_unit, kt_kj_mol, wrap_deg
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
@@ -147,23 +147,6 @@ def resolve_temperature(temperature_k, summary=None, log=None):
 def unit_suffix(unit):
     """Column-name suffix of an energy unit (``kj_mol``, ``kcal_mol``, ``kt``, ``hartree``, ``ev``)."""
     return canonical_energy_unit(unit).lower().replace("/", "_")
-
-
-def replace_into(folder, name, write):
-    """Write a file through ``write(path)`` under a temporary name, then move it into place (only
-    over a file dihedra wrote: see :func:`dihedra.io.outputs.write_file`)."""
-    return write_file(folder, name, write)
-
-
-def write_table_replacing(frame, folder, name):
-    """A tidy table as CSV (NaN as an empty cell), written atomically."""
-    return replace_into(folder, name, lambda p: frame.to_csv(p, index=False, float_format="%.6g"))
-
-
-def write_json_replacing(data, folder, name):
-    """A JSON document, written atomically."""
-    from ..io.resultsdir import write_json
-    return replace_into(folder, name, lambda p: write_json(data, os.path.dirname(p), os.path.basename(p)))
 
 
 def check_bin_width(bin_width_deg, fine_width_deg=1.0, what="bin width"):
@@ -1387,37 +1370,28 @@ def pair_profiles(result, a, b, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN_WI
     DataFrame with columns torsion_a, torsion_b, n_pairs, angle_a_deg, angle_b_deg,
     probability_density_per_deg2, free_energy_kj_mol, free_energy_err_kj_mol, sampled, n_samples.
     """
-    from ..io.resultsdir import iter_table
-
     kt = kt_kj_mol(temperature_k)
-    try:
-        path = result._path("angles")
-    except DihedraError:
+    if not result.has_series("angles"):
         raise DihedraError(f"2-D profiles need the angle time series, and {result.folder or 'this result'} "
-                           "has no angles.parquet; rerun 'dihedra track ... --keep-angles'.") from None
+                           "has no angles.parquet; rerun 'dihedra track ... --keep-angles'.")
     factor = check_bin_width(bin_width_deg, 1.0, "2-D bin width")
     nb = 360 // factor
     pairs = _resolve_pairs(result, a, b)
     labels = result.torsion_set.labels
     cols = sorted({labels[i] for p in pairs for i in p}, key=labels.index)
+    column = {c: k for k, c in enumerate(cols)}
     replicas = result.summary.get("replicas", [])
     n_frames = [int(r["frames_analysed"]) for r in replicas]
     per_rep = int(result.summary.get("parameters", {}).get("n_hist_blocks") or 16)
     hist = np.zeros((per_rep * max(1, len(n_frames)), nb * nb))
-    seen = np.zeros(max(1, len(n_frames)), dtype=np.int64)
-    for chunk in iter_table(path, columns=cols, batch_frames=batch_frames):
-        rep = chunk["replica"].to_numpy(np.int64)
-        weight = chunk["weight"].to_numpy(float) if "weight" in chunk.columns else np.ones(len(chunk))
-        pos = np.empty(len(chunk), dtype=np.int64)
-        for r in np.unique(rep):
-            sel = np.flatnonzero(rep == r)
-            pos[sel] = seen[r] + np.arange(len(sel))
-            seen[r] += len(sel)
-        total = np.asarray(n_frames, dtype=np.int64)[rep] if n_frames else np.full(len(chunk), len(chunk))
-        block = rep * per_rep + np.minimum(pos * per_rep // np.maximum(total, 1), per_rep - 1)
+    for chunk in result.iter_chunks("angles", cols, batch_frames):
+        rep = chunk.replica
+        weight = chunk.weight if chunk.weight is not None else np.ones(len(chunk))
+        total = n_frames[rep] if n_frames else len(chunk)
+        block = rep * per_rep + np.minimum(chunk.position * per_rep // max(total, 1), per_rep - 1)
         for ia, ib in pairs:
-            x = chunk[labels[ia]].to_numpy(float)
-            y = chunk[labels[ib]].to_numpy(float)
+            x = chunk.values[column[labels[ia]]].astype(float)
+            y = chunk.values[column[labels[ib]]].astype(float)
             ok = np.isfinite(x) & np.isfinite(y)
             bx = np.clip(np.ceil((x[ok] + 180.0) / bin_width_deg).astype(np.int64) - 1, 0, nb - 1)
             by = np.clip(np.ceil((y[ok] + 180.0) / bin_width_deg).astype(np.int64) - 1, 0, nb - 1)
@@ -1474,12 +1448,10 @@ def write_profiles(pset, folder, energy_unit="kJ/mol"):
               ("state_free_energies.csv", pset.state_free_energies)]
     if pset.profiles_2d is not None:
         tables.append(("profiles_2d.csv", pset.profiles_2d))
-    from ..io.csvtables import write_csv
-
     for name, frame in tables:
         converted = (frame if canonical_energy_unit(energy_unit) == "kJ/mol"  # no copy of 6.5 million rows
                      else convert_energy_columns(frame, energy_unit, pset.temperature_k))
-        paths.append(replace_into(folder, name, lambda path, table=converted: write_csv(table, path)))
+        paths.append(write_table(converted, folder, name))
     info = dict(pset.settings)
     info["energy_unit"] = canonical_energy_unit(energy_unit)
     info["files"] = [os.path.basename(p) for p in paths]
@@ -1491,5 +1463,5 @@ def write_profiles(pset, folder, energy_unit="kJ/mol"):
         "Errors come from a block bootstrap over 16 blocks per replica; with few transitions per block "
         "they underestimate the true uncertainty.",
     ]
-    paths.append(write_json_replacing(info, folder, "profiles.json"))
+    paths.append(write_json(info, folder, "profiles.json"))
     return paths

@@ -669,7 +669,7 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
                            default_bandwidth_deg, profile_features, rebin)
     from ..selection.schemes import get_scheme
     from ..numerics.statistics import statistical_inefficiency
-    from ..tracking import TrackResult
+    from ..trajectory.result import TrackResult
 
     t0 = time.time()
     say = log or (lambda msg: None)
@@ -965,13 +965,14 @@ def _summary(first, data, windows, scheme, temperature_k, tset, notices, start, 
 
 def write_windows(wres, folder):
     """Write the results folder of :func:`unbias_windows` into ``folder``; returns the paths."""
-    from .profiles import write_json_replacing, write_profiles, write_table_replacing
     from ..io.resultsdir import write_results
+    from ..io.tables import write_json, write_table
+    from .profiles import write_profiles
 
     write_results(wres.result, folder)
     paths = write_profiles(wres.profiles, folder)
-    paths.append(write_table_replacing(wres.windows, folder, "windows.csv"))
-    paths.append(write_table_replacing(wres.overlap, folder, "window_overlap.csv"))
-    paths.append(write_table_replacing(wres.comparison, folder, "windows_profiles.csv"))
-    paths.append(write_json_replacing(wres.info, folder, "windows.json"))
+    paths.append(write_table(wres.windows, folder, "windows.csv"))
+    paths.append(write_table(wres.overlap, folder, "window_overlap.csv"))
+    paths.append(write_table(wres.comparison, folder, "windows_profiles.csv"))
+    paths.append(write_json(wres.info, folder, "windows.json"))
     return paths

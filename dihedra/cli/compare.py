@@ -76,12 +76,12 @@ def run(args):
 def run_reference_only(args, result):
     """Reference populations without a scan: comparison.csv and comparison.json only."""
     from ..analysis.compare import _jsonable
-    from ..analysis.profiles import write_json_replacing, write_table_replacing
+    from ..io.tables import write_json, write_table
 
     rows, verdicts = compare_reference_populations(result, read_reference_populations(args.reference_populations))
     details = {"scheme": result.scheme.name}
     table = add_to_comparison(None, details, rows, verdicts, args.reference_populations)
-    paths = [write_table_replacing(table, result.folder, "comparison.csv"),
-             write_json_replacing(_jsonable(details), result.folder, "comparison.json")]
+    paths = [write_table(table, result.folder, "comparison.csv"),
+             write_json(_jsonable(details), result.folder, "comparison.json")]
     print(format_reference(rows, verdicts))
     print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")

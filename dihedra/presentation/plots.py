@@ -81,7 +81,6 @@ color blindness, Nat. Methods 8 (2011) 441. E. L. Kaplan & P. Meier, J. Am. Stat
 from __future__ import annotations
 
 import contextlib
-import json
 import os
 import re
 from dataclasses import dataclass, field
@@ -91,6 +90,8 @@ import pandas as pd
 
 from ..errors import DihedraError, one_of
 from ..io.outputs import write_file
+from ..io.series import ParquetSeries
+from ..io.tables import read_optional_json, read_optional_table as read_optional
 
 # ----------------------------------------------------------------------------------------------
 # Colours and style
@@ -418,8 +419,6 @@ def read_angle_series(folder, torsions, max_points=4000, batch_frames=None):
     -------
     AngleSeries
     """
-    from ..io.resultsdir import iter_table
-
     path = os.path.join(folder, "angles.parquet")
     if not os.path.exists(path):
         raise DihedraError(f"{folder} has no angles.parquet; rerun 'dihedra track ... --keep-angles'.")
@@ -429,7 +428,7 @@ def read_angle_series(folder, torsions, max_points=4000, batch_frames=None):
     _check_columns(path, torsions)
     stride = max(1, int(np.ceil((n_total or max_points) / max(1, int(max_points)))))
     kept, seen = [], 0
-    for chunk in iter_table(path, columns=list(torsions), batch_frames=batch_frames):
+    for chunk in ParquetSeries(folder).iter_frames("angles", list(torsions), batch_frames):
         idx = np.arange(seen, seen + len(chunk))
         kept.append(chunk.iloc[np.flatnonzero(idx % stride == 0)])
         seen += len(chunk)
@@ -439,13 +438,12 @@ def read_angle_series(folder, torsions, max_points=4000, batch_frames=None):
 
 
 def _check_columns(path, columns):
-    from ..io.resultsdir import series_schema
-
-    all_names = series_schema(path).names
+    folder, name = os.path.split(path)
+    all_names = ParquetSeries(folder).columns(name.split(".")[0])
     names = set(all_names)
     missing = [c for c in columns if c not in names]
     if missing:
-        some = [n for n in all_names if n not in ("replica", "frame", "time_ps", "weight")][:3]
+        some = all_names[:3]
         raise DihedraError(f"no torsion {missing[0]!r} in {os.path.basename(path)}; torsion labels look like "
                            f"{', '.join(some)} (see torsions.csv).")
 
@@ -502,8 +500,6 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     -------
     StateRaster
     """
-    from ..io.resultsdir import iter_table
-
     path = os.path.join(folder, "states.parquet")
     if not os.path.exists(path):
         raise DihedraError(f"{folder} has no states.parquet; rerun 'dihedra track'.")
@@ -532,7 +528,7 @@ def read_state_raster(folder, torsions=None, max_rows=400, max_columns=600, batc
     counts = np.zeros(n_rows * total_cols * width, dtype=np.int64)
     seen = np.zeros(len(frames), dtype=np.int64)
     row_index = np.arange(n_rows, dtype=np.int64)
-    for chunk in iter_table(path, columns=labels, batch_frames=batch_frames):
+    for chunk in ParquetSeries(folder).iter_frames("states", labels, batch_frames):
         rep = chunk["replica"].to_numpy(np.int64)
         pos = np.empty(len(chunk), dtype=np.int64)
         for r in np.unique(rep):
@@ -1441,23 +1437,6 @@ def plot_couplings(couplings, ax=None, label_outliers=True, legend=True):
 # ----------------------------------------------------------------------------------------------
 # The figure set of a results folder
 # ----------------------------------------------------------------------------------------------
-
-def read_optional_json(folder, name):
-    """A JSON document of the folder, or ``None`` when the folder lacks it."""
-    path = os.path.join(folder, name)
-    if not os.path.exists(path):
-        return None
-    with open(path) as fh:
-        return json.load(fh)
-
-
-def read_optional(folder, name):
-    """A CSV table of the folder, or ``None`` when the folder lacks it."""
-    path = os.path.join(folder, name)
-    if not os.path.exists(path):
-        return None
-    return pd.read_csv(path, keep_default_na=False, na_values=[""])
-
 
 @dataclass
 class FigureItem:

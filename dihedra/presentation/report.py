@@ -35,7 +35,7 @@ import pandas as pd
 
 from ..errors import DihedraError
 from ..io.outputs import check_replaceable_in, check_single_file, file_head_contains, is_inside, write_text
-from .plots import read_optional, read_optional_json
+from ..io.tables import read_optional_json, read_optional_table as read_optional
 
 #: Rows shown of long tables (the full table is in the folder).
 MAX_ROWS = 60

@@ -52,8 +52,8 @@ the buffer is full, the bins go into the histograms, the joint states of each co
 into the conformer counts (compiled loop), and the codes (and angles) are transposed into the
 chunk buffer, one row per torsion, as the time series store them. All of it runs where the
 frames are processed (with ``threads=2``, in the second thread, while the first reads on). A full
-chunk goes to the pass's :class:`~dihedra.io.resultsdir.TimeSeriesWriter` (a row group of
-``chunk_frames`` frames in ``series_dir``/states.parquet and angles.parquet), so Parquet is
+chunk goes to the pass's time series writer (``series``; a row group of ``chunk_frames``
+frames in states.parquet and angles.parquet), so Parquet is
 encoded during the pass, by the process (and thread) that computed the frames: each worker of a
 parallel run writes the files of its own frames, named by replica and first frame, and the
 folder reads as one table in frame order. Memory stays bounded by the chunk buffer, the 256-frame
@@ -184,10 +184,11 @@ class TorsionPass(AnalysisBase):
     parts_dir : str, optional
         Scratch folder where a worker of a parallel run leaves its histogram blocks and
         conformer rows for the parent (without it they go back pickled).
-    series_dir : str, optional
-        Folder that receives the time series, ``states.parquet/`` (and ``angles.parquet/``);
-        ``None`` writes none. With a distributed scheduler it must be on a file system that the
-        workers and the calling process share.
+    series : callable, optional
+        ``series(labels, weighted, chunk_frames, kinds)`` makes the writer of the time series
+        (an object with ``add(replica, index, values)`` and ``close()``), for example
+        :class:`dihedra.io.series.ParquetSeriesFactory`; it must pickle for a parallel run, whose
+        workers each make their own. ``None`` keeps no time series.
     keep_angles : bool
         Also write the angles (float32 degrees).
     chunk_frames : int, optional
@@ -226,7 +227,7 @@ class TorsionPass(AnalysisBase):
         return ("serial", "multiprocessing", "dask")
 
     def __init__(self, universe, torsion_set, scheme, *, n_state_blocks=64, n_hist_blocks=16,
-                 bin_width_deg=1.0, weights=None, parts_dir=None, series_dir=None, keep_angles=False,
+                 bin_width_deg=1.0, weights=None, parts_dir=None, series=None, keep_angles=False,
                  chunk_frames=None, replica=0, dt_ps=None, compiled=None, threads=1,
                  defer_close=False, verbose=False):
         super().__init__(universe.trajectory, verbose=verbose)
@@ -244,7 +245,7 @@ class TorsionPass(AnalysisBase):
         self.dt_ps = dt_ps
         self.compiled = compiled
         self.threads = int(threads)
-        self.series_dir = series_dir
+        self.series = series
         self.defer_close = bool(defer_close)
         self._writer = self._write_pool = self._pending_write = self._spare = None
         self._source = None
@@ -654,7 +655,7 @@ class TorsionPass(AnalysisBase):
         np.add.at(res.block_weights, sblock, w)
         np.add.at(res.hist_block_frames, hblock, 1)
         np.add.at(res.hist_block_weights, hblock, w)
-        if self.series_dir is not None:
+        if self.series is not None:
             self._write_chunk(n)
         self._n_buf = 0
 
@@ -790,11 +791,10 @@ class TorsionPass(AnalysisBase):
         # close(), and nothing writes into that buffer after it
         values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
                                                       ("angles", self._chunk_angles)) if buf is not None}
-        with _writing(self.series_dir):
+        with _writing():
             if self._writer is None:
-                from ..io.resultsdir import TimeSeriesWriter
-                self._writer = TimeSeriesWriter(self.series_dir, list(self.torsion_set.labels),
-                                                self.weights is not None, self.chunk_frames, kinds=tuple(values))
+                self._writer = self.series(list(self.torsion_set.labels), self.weights is not None,
+                                           self.chunk_frames, tuple(values))
             if self._overlap is None and not self._last_chunk:   # one thread, or the last chunk
                 self._writer.add(self.replica, index, values)
                 return
@@ -809,7 +809,7 @@ class TorsionPass(AnalysisBase):
     def _wait_write(self):
         pending, self._pending_write = self._pending_write, None
         if pending is not None:
-            with _writing(self.series_dir):
+            with _writing():
                 pending.result()
 
     def _close_in_background(self):
@@ -840,18 +840,18 @@ class TorsionPass(AnalysisBase):
                 pool.shutdown()
         writer, self._writer = self._writer, None
         if writer is not None:
-            with _writing(self.series_dir):
+            with _writing():
                 writer.close()
 
 
 @contextlib.contextmanager
-def _writing(folder):
+def _writing():
     """An ``OSError`` of the time series writer raised as :class:`~dihedra.errors.OutputWriteError`."""
     try:
         yield
     except OSError as exc:
-        raise OutputWriteError(exc.errno, f"writing the time series into {folder} failed: "
-                                          f"{exc.strerror or exc}") from exc
+        where = f" into {exc.filename}" if getattr(exc, "filename", None) else ""
+        raise OutputWriteError(exc.errno, f"writing the time series{where} failed: {exc.strerror or exc}") from exc
 
 
 class _Both:
