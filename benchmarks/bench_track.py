@@ -265,7 +265,7 @@ import sys, time, warnings
 warnings.simplefilter("ignore")
 import MDAnalysis as mda
 from dihedra.selection.schemes import get_scheme
-from dihedra.selection.torsions import select_torsions
+from dihedra.selection.specs import select_torsions
 from dihedra.io.series import ParquetSeriesFactory
 from dihedra.trajectory.trackpass import TorsionPass
 u = mda.Universe(sys.argv[1], sys.argv[2])
@@ -284,7 +284,7 @@ import json, os, shutil, statistics, sys, tempfile, time, warnings
 warnings.simplefilter("ignore")
 import MDAnalysis as mda
 from dihedra.selection.schemes import get_scheme
-from dihedra.selection.torsions import select_torsions
+from dihedra.selection.specs import select_torsions
 from dihedra.io.series import ParquetSeriesFactory
 from dihedra.trajectory.trackpass import TorsionPass
 top, xtc, n, repeat = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4])

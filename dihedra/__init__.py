@@ -1,18 +1,34 @@
 """dihedra: conformer-aware torsion analysis of molecular-dynamics trajectories.
 
-The Python API mirrors the command line::
+The Python API is the spine; the command line is a thin layer over it. Start from the atoms you
+have::
 
-    from dihedra import track, example_path
-    res = track(example_path("hexane.pdb"), [example_path("hexane.xtc")],
-                torsions="rotatable", scheme="anti-gauche")
-    res.populations_by_type      # pandas DataFrame
+    import MDAnalysis as mda
+    import dihedra
+
+    u = mda.Universe(dihedra.example_path("hexane.pdb"), dihedra.example_path("hexane.xtc"))
+    ts = dihedra.TorsionStates(u.atoms, torsions="rotatable", scheme="anti-gauche").run()
+    ts.results.populations_by_type        # pandas DataFrame
+
+or from files, writing a results folder as ``dihedra track`` does::
+
+    res = dihedra.track(dihedra.example_path("hexane.pdb"), [dihedra.example_path("hexane.xtc")],
+                        torsions="rotatable", out="hexane-results")
+    res = dihedra.load_results("hexane-results")   # later, in another session
+
+Every analysis takes such a result as its first argument and returns a result object of
+DataFrames with a ``save(folder)`` method.
 """
 
-from ._version import __version__  # noqa: E402,F401
-
-from .errors import DihedraError  # noqa: E402
-from .selection.schemes import StateScheme, get_scheme  # noqa: E402
-from .selection.torsions import Torsion, TorsionSet, select_torsions  # noqa: E402
+from ._version import __version__
+from .errors import DihedraError
+from .io.resultsdir import load_results
+from .selection.schemes import StateScheme, get_scheme
+from .selection.specs import select_torsions
+from .selection.torsions import Torsion, TorsionSet
+from .tracking import track
+from .trajectory.result import TrackResult
+from .trajectory.states import TorsionStates
 
 
 def example_path(name=""):
@@ -28,19 +44,5 @@ def example_path(name=""):
         return os.path.join(root, "example_trajectories", name)
 
 
-def track(*args, **kwargs):
-    """See :func:`dihedra.track.track`."""
-    from .tracking import track as _track
-
-    return _track(*args, **kwargs)
-
-
-def load_results(folder):
-    """See :func:`dihedra.io.resultsdir.load_results`."""
-    from .io.resultsdir import load_results as _load
-
-    return _load(folder)
-
-
-__all__ = ["DihedraError", "StateScheme", "Torsion", "TorsionSet", "example_path", "get_scheme",
-           "load_results", "select_torsions", "track"]
+__all__ = ["DihedraError", "StateScheme", "Torsion", "TorsionSet", "TorsionStates", "TrackResult", "__version__",
+           "example_path", "get_scheme", "load_results", "select_torsions", "track"]

@@ -1,8 +1,8 @@
 """The tracking job: trajectories in, torsion states and populations out.
 
-:func:`track` runs :class:`~dihedra.trajectory.trackpass.TorsionPass` over each replica (one trajectory of the
-same system each), merges the block sums (blocks never span two replicas), computes populations
-with their errors, and returns a :class:`TrackResult`. With ``out`` it also writes the results
+:func:`track` runs a :class:`~dihedra.trajectory.states.TorsionStates` pass over each replica (one
+trajectory of the same system each), merges the block sums (blocks never span two replicas),
+computes populations with their errors, and returns a :class:`~dihedra.trajectory.result.TrackResult`. With ``out`` it also writes the results
 folder (:mod:`dihedra.io.resultsdir`); it is assembled in a temporary folder beside ``out`` and moved
 into place at the end, so an interrupted run never leaves a half-written folder.
 
@@ -22,22 +22,21 @@ import shutil
 import sys
 import tempfile
 import time
-import warnings
 
 import numpy as np
 import pandas as pd
 
-from ._version import __version__
 from .errors import DihedraError, InputFileError, OutputWriteError
+from .io.blocks import narrowed_type, save_npz
 from .io.outputs import StagedFolder
+from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
-from .numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
-                                   replica_populations, torsion_populations)
 from .selection.schemes import get_scheme
-from .selection.torsions import TorsionSet, select_torsions
-from .trajectory.inputs import check_readable, load_universe, sha256, truncated_error
-from .trajectory.result import TrackResult
-from .trajectory.trackpass import TorsionPass, conformer_layout, reduce_conformer_rows
+from .selection.specs import select_torsions
+from .selection.torsions import TorsionSet
+from .trajectory.assemble import assemble_result, block_sums, make_summary, replica_info
+from .trajectory.inputs import check_readable, load_universe, truncated_error
+from .trajectory.states import TorsionStates
 
 
 def load_weights(spec, n_frames_per_replica):
@@ -122,20 +121,22 @@ def _frame_indices(universe, start, stop, step, where):
     return frames
 
 
-def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *, start=None,
+def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche", *, start=None,
           stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
           bin_width_deg=1.0, chunk_frames=None, threads=None, progress=None, log=None):
-    """Follow torsions through one or more replica trajectories.
+    """Follow torsions through one or more replica trajectories, and write a results folder.
 
     Parameters
     ----------
-    topology : str
-        Topology file (with bonds for ``rotatable``; PDB with CONECT, PSF, TPR, PRMTOP, ...).
+    topology : str, MDAnalysis.Universe or MDAnalysis.AtomGroup
+        Topology file (with bonds for ``rotatable``; PDB with CONECT, PSF, TPR, PRMTOP, ...), or a
+        Universe / AtomGroup already loaded: its trajectory is the one replica and only torsions
+        whose four atoms are in the group are followed (``trajectories`` must then be ``None``).
     trajectories : str or list of str
-        One trajectory per replica of the same system.
+        One trajectory per replica of the same system (with a topology file).
     torsions : str or list of str or TorsionSet
-        Torsion specifications (see :func:`dihedra.selection.torsions.select_torsions`).
+        Torsion specifications (see :func:`dihedra.selection.specs.select_torsions`).
     scheme : str or StateScheme
         State scheme name or TOML file (see :func:`dihedra.selection.schemes.get_scheme`).
     start, stop, step : int, optional
@@ -156,13 +157,13 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         Results folder to write; without it, results stay in Python (time series in a temporary
         folder that lives as long as the result).
     overwrite : bool
-        Replace an existing ``out``.
+        Replace an existing ``out`` (only a folder dihedra made that holds only its files).
     dt_ps : float, optional
         Time between stored frames in ps, replacing the trajectory's own.
     temperature_k : float, optional
         Recorded in the summary (profiles need it; tracking does not).
     n_state_blocks, n_hist_blocks, bin_width_deg, chunk_frames
-        Block structure and fine histogram resolution (see :class:`TorsionPass`).
+        Block structure and fine histogram resolution (see :class:`~dihedra.trajectory.trackpass.TorsionPass`).
     threads : int, optional
         Threads per pass: 2 lets a second thread compute while the first reads the trajectory
         (serial runs; each worker of a parallel run uses one thread). Default: 2 for a serial run
@@ -175,14 +176,14 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
     Returns
     -------
     TrackResult
+
+    See Also
+    --------
+    dihedra.TorsionStates : the same analysis on an atom group, in memory.
     """
     t_start = time.time()
     say = log or (lambda msg: None)
-    if isinstance(trajectories, (str, os.PathLike)):
-        trajectories = [trajectories]
-    trajectories = [os.fspath(t) for t in trajectories]
-    if not trajectories:
-        raise DihedraError("give at least one trajectory.")
+    group, topology, trajectories = _inputs(topology, trajectories)
     staging = (StagedFolder.begin(out, overwrite=overwrite, command="track",
                                   inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
                if out is not None else None)
@@ -200,10 +201,7 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
         os.makedirs(parts_dir)
         notices = []
         scheme = get_scheme(scheme)
-        check_readable(topology, "topology")
-        for t in trajectories:
-            check_readable(t, "trajectory")
-        universes = [load_universe(topology, t, notices) for t in trajectories]
+        universes = _universes(group, topology, trajectories, notices)
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions)
         notices.extend(tset.notices)
         frames = [_frame_indices(u, start, stop, step, f"trajectory {t}")
@@ -221,51 +219,34 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             backend = "multiprocessing" if n_workers > 1 else "serial"
         if progress is None:
             progress = backend == "serial" and sys.stderr.isatty()
-        threads = _pass_threads(threads, backend)
-        replica_info = []
+        replicas = []
         for r, (u, traj, fr, w) in enumerate(zip(universes, trajectories, frames, weight_arrays)):
             say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
             # a serial pass writes its last row group while the next pass starts or the
             # populations are computed (one at a time: one chunk buffer more at most)
             if passes:
                 passes[-1].finish_series()
-            tp = TorsionPass(u, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
-                             bin_width_deg=bin_width_deg, weights=w, parts_dir=parts_dir,
-                             series=ParquetSeriesFactory(work), keep_angles=keep_angles, chunk_frames=chunk_frames,
-                             replica=r, dt_ps=dt_ps, threads=threads, defer_close=backend == "serial")
-            run_kwargs = dict(start=start, stop=stop, step=step)
-            if backend == "serial":
-                run_kwargs.update(verbose=bool(progress),
-                                  progressbar_kwargs={"desc": f"replica {r + 1}/{len(universes)}",
-                                                      "leave": True} if progress else None)
-            else:
-                run_kwargs.update(backend=backend, n_workers=None if not isinstance(backend, str) else n_workers,
-                                  unsupported_backend=not isinstance(backend, str))
-            try:
-                with warnings.catch_warnings():
-                    warnings.filterwarnings("ignore", message="Reader has no dt information")
-                    warnings.filterwarnings("ignore", category=DeprecationWarning)
-                    tp.run(**run_kwargs)
-            except OutputWriteError:
-                raise
-            except (OSError, EOFError) as exc:
-                raise truncated_error(traj, u, exc) from None
+            tp = TorsionStates(group if group is not None else u.atoms, tset, scheme, weights=w,
+                               keep_angles=keep_angles, dt_ps=dt_ps, temperature_k=temperature_k,
+                               bin_width_deg=bin_width_deg, n_state_blocks=n_state_blocks,
+                               n_hist_blocks=n_hist_blocks)
+            tp.plumb(parts_dir=parts_dir, series=ParquetSeriesFactory(work), chunk_frames=chunk_frames, replica=r,
+                     defer_close=backend == "serial", threads=threads)
+            _run_pass(tp, traj, start, stop, step, backend, n_workers, progress, r, len(universes))
             passes.append(tp)
-            replica_info.append(_replica_info(u, traj, fr, tp, dt_ps))
+            replicas.append(replica_info(u, traj, fr, tp, dt_ps))
         # the time series are written (each pass, serial or every worker, wrote the files of its
         # frames); blocks.npz is written by another thread (zlib releases Python's lock) while
         # this one computes the populations and writes the tables
-        from .io.blocks import narrowed_type, save_npz
-        from .io.resultsdir import write_results
         shutil.rmtree(parts_dir, ignore_errors=True)
-        blocks = _block_sums(passes)
+        blocks = block_sums(passes)
 
         def write_blocks():
             save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=[k for k in blocks if narrowed_type(k)])
         writers = [_Background(write_blocks)]
-        result = _assemble(tset, scheme, universes[0], notices, blocks)
-        result.summary.update(_summary(topology, trajectories, replica_info, scheme, tset, dict(
-            start=start, stop=stop, step=step, workers=n_workers, threads=int(threads),
+        result = assemble_result(tset, scheme, universes[0], notices, blocks)
+        result.summary.update(make_summary(topology, replicas, scheme, tset, dict(
+            start=start, stop=stop, step=step, workers=n_workers, threads=int(passes[0].threads),
             backend=backend if isinstance(backend, str) else type(backend).__name__,
             scheduler=None if scheduler is None else str(backend.client.scheduler.address),
             keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),
@@ -302,35 +283,51 @@ def track(topology, trajectories, torsions="rotatable", scheme="anti-gauche", *,
             scratch.cleanup()
 
 
-def _replica_info(universe, traj, frames, tp, dt_ps):
-    reader = universe.trajectory
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        dt = reader.dt
-    no_dt = any("dt information" in str(w.message) for w in caught)
-    if dt_ps is not None:
-        source = "--dt-ps"
-        dt_used = float(dt_ps)
-    elif no_dt:
-        source = "none (the trajectory stores no time step; MDAnalysis assumed 1 ps per frame)"
-        dt_used = float(dt)
+def _inputs(topology, trajectories):
+    """``(atom group or None, topology path, trajectory paths)`` of what :func:`track` was given."""
+    if hasattr(topology, "universe") and hasattr(topology, "atoms"):
+        if trajectories is not None:
+            raise DihedraError("with a Universe or AtomGroup, give no trajectories: its own trajectory is analysed "
+                               "(load further replicas as Universes of their own and track each).")
+        u = topology.universe
+        traj = getattr(u.trajectory, "filename", None)
+        return topology.atoms, getattr(u, "filename", None), [traj]
+    if trajectories is None:
+        raise DihedraError("give at least one trajectory.")
+    if isinstance(trajectories, (str, os.PathLike)):
+        trajectories = [trajectories]
+    trajectories = [os.fspath(t) for t in trajectories]
+    if not trajectories:
+        raise DihedraError("give at least one trajectory.")
+    return None, os.fspath(topology), trajectories
+
+
+def _universes(group, topology, trajectories, notices):
+    """The Universe of every replica (the group's own, or each trajectory with the topology)."""
+    if group is not None:
+        return [group.universe]
+    check_readable(topology, "topology")
+    for t in trajectories:
+        check_readable(t, "trajectory")
+    return [load_universe(topology, t, notices) for t in trajectories]
+
+
+def _run_pass(tp, traj, start, stop, step, backend, n_workers, progress, r, n_replicas):
+    """Run one replica's pass; a damaged trajectory becomes one clear error."""
+    run_kwargs = dict(start=start, stop=stop, step=step)
+    if backend == "serial":
+        run_kwargs.update(verbose=bool(progress),
+                          progressbar_kwargs={"desc": f"replica {r + 1}/{n_replicas}", "leave": True}
+                          if progress else None)
     else:
-        source = "trajectory"
-        dt_used = float(dt)
-    return {
-        "trajectory": os.path.abspath(traj),
-        "n_frames_in_file": int(reader.n_frames),
-        "frames_analysed": int(len(frames)),
-        "first_frame": int(frames[0]),
-        "last_frame": int(frames[-1]),
-        "frame_step": int(frames[1] - frames[0]) if len(frames) > 1 else 1,
-        "time_step_ps": dt_used,
-        "time_between_analysed_frames_ps": dt_used * (int(frames[1] - frames[0]) if len(frames) > 1 else 1),
-        "time_step_source": source,
-        "time_step_known": source != "none (the trajectory stores no time step; MDAnalysis assumed 1 ps per frame)",
-        "first_time_ps": float(tp.times[0]) if len(tp.times) else None,
-        "last_time_ps": float(tp.times[-1]) if len(tp.times) else None,
-    }
+        run_kwargs.update(backend=backend, n_workers=None if not isinstance(backend, str) else n_workers,
+                          unsupported_backend=not isinstance(backend, str))
+    try:
+        tp.run(**run_kwargs)
+    except OutputWriteError:
+        raise
+    except (OSError, EOFError) as exc:
+        raise truncated_error(traj, tp._universe, exc) from None
 
 
 class _Background:
@@ -355,170 +352,3 @@ class _Background:
             raise self.error
 
 
-def _block_sums(passes):
-    """The block sums of all replicas (the arrays of ``blocks.npz``)."""
-    state_counts = np.concatenate([p.results.state_counts for p in passes])
-    block_replica = np.concatenate([np.full(p.n_state_blocks, r) for r, p in enumerate(passes)])
-    histograms = _stack_histograms(passes)
-    hist_block_replica = np.concatenate([np.full(p.n_hist_blocks, r) for r, p in enumerate(passes)])
-    blocks = {
-        "state_counts": state_counts,
-        "block_replica": block_replica,
-        "block_frames": np.concatenate([p.results.block_frames for p in passes]),
-        "block_weights": np.concatenate([p.results.block_weights for p in passes]),
-        "histograms": histograms,
-        "hist_block_replica": hist_block_replica,
-        "hist_block_frames": np.concatenate([p.results.hist_block_frames for p in passes]),
-        "hist_block_weights": np.concatenate([p.results.hist_block_weights for p in passes]),
-        "bin_edges_deg": np.linspace(-180.0, 180.0, histograms.shape[2] + 1),
-        "undefined": np.sum([p.results.undefined for p in passes], axis=0),
-    }
-    # conformer rows: shift each replica's blocks to the global block numbering (one replica:
-    # its rows as they are, sorted and unique already)
-    offset, rows, wts = 0, [], []
-    for p in passes:
-        cr = np.asarray(p.results.conformer_counts, dtype=np.int64).reshape(-1, 4)
-        if offset:
-            cr = cr.copy()
-            cr[:, 0] += offset
-        rows.append(cr)
-        wts.append(np.asarray(p.results.conformer_weights, dtype=float))
-        offset += p.n_state_blocks
-    conf_rows, conf_w = reduce_conformer_rows(rows[0] if len(rows) == 1 else np.vstack(rows),
-                                              wts[0] if len(wts) == 1 else np.concatenate(wts))
-    blocks["conformer_rows"] = conf_rows
-    blocks["conformer_weights"] = conf_w
-    # conformer classes counted densely (groups of equal width): one array per width, the
-    # replicas' blocks one after another
-    for width in sorted(passes[0].results.conformer_dense):
-        blocks[f"conformer_counts_w{width}"] = _stack([p.results.conformer_dense[width][0] for p in passes])
-        if passes[0].results.conformer_dense[width][1] is not None:
-            blocks[f"conformer_weights_w{width}"] = _stack([p.results.conformer_dense[width][1] for p in passes])
-    return blocks
-
-
-def _stack(arrays):
-    return arrays[0] if len(arrays) == 1 else np.concatenate(arrays)
-
-
-def dense_conformers(blocks, tset, n_states):
-    """{width: (group ids, counts (n_blocks, n_groups, n_joint), weights)} of the conformer
-    classes that the pass counted densely (weights are the counts as floats when unweighted)."""
-    from .trajectory.trackpass import _conformer_classes
-    _, members, _ = conformer_layout(tset, n_states)
-    out = {}
-    for width, (gids, _, _, _) in _conformer_classes(members, n_states).items():
-        counts = blocks.get(f"conformer_counts_w{width}")
-        if counts is not None:
-            out[width] = (gids, counts, blocks.get(f"conformer_weights_w{width}"))
-    return out
-
-
-def conformer_rows(blocks, tset, n_states):
-    """All conformer counts as rows (block, group, joint code, frames) sorted by block, group and
-    code, with their weights: the sparse rows of ``blocks`` and the dense classes together."""
-    rows, wts = [blocks["conformer_rows"]], [blocks["conformer_weights"]]
-    for gids, counts, weights in dense_conformers(blocks, tset, n_states).values():
-        block, group, code = np.nonzero(counts)
-        rows.append(np.column_stack([block, gids[group], code, counts[block, group, code]]).astype(np.int64))
-        wts.append((counts if weights is None else weights)[block, group, code].astype(np.float64))
-    return reduce_conformer_rows(np.vstack(rows), np.concatenate(wts))
-
-
-def _assemble(tset, scheme, universe, notices, blocks):
-    """Populations, conformers and the torsion table from the block sums (:func:`_block_sums`)."""
-    labels, types = tset.labels, tset.types
-    resnames = [t.resname for t in tset.torsions]
-    state_counts, block_replica = blocks["state_counts"], blocks["block_replica"]
-    conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
-    dense = dense_conformers(blocks, tset, scheme.n_states)
-
-    pops = torsion_populations(state_counts, block_replica, labels, types, scheme.labels)
-    by_type = pool_by_type(pops)
-    by_rep = replica_populations(state_counts, block_replica, labels, types, scheme.labels, pooled=pops)
-    groups, members, skipped = conformer_layout(tset, scheme.n_states)
-    conf, conf_type = conformer_populations(conf_rows, conf_w, block_replica, len(block_replica), groups,
-                                            members, labels, types, scheme.labels, resnames, dense=dense)
-    if skipped:
-        notices.append(f"no conformers for {len(skipped)} group(s) with too many torsions "
-                       f"(e.g. {skipped[0]}); their torsions are still analysed one by one.")
-    undefined = blocks["undefined"]
-    if undefined.any():
-        worst = int(np.argmax(undefined))
-        notices.append(f"{int((undefined > 0).sum())} torsion(s) were undefined in some frames (collinear "
-                       f"atoms or NaN coordinates), e.g. {labels[worst]} in {int(undefined[worst])} frames; "
-                       "those frames are left out of their populations and histograms.")
-    rough = pops[(pops["n_effective"] < MIN_EFFECTIVE_SAMPLES) & (pops["population"] > 0)]
-    if len(rough):
-        notices.append(f"{rough['torsion'].nunique()} torsion(s) have states with fewer than "
-                       f"{MIN_EFFECTIVE_SAMPLES} effective samples (e.g. {rough['torsion'].iloc[0]}, "
-                       f"{rough['state'].iloc[0]}): sampling is not converged and their error bars are rough.")
-    table = tset.to_frame(universe)
-    table["n_undefined_frames"] = undefined
-    return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
-                       populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
-                       conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
-
-
-def _pass_threads(threads, backend):
-    """Threads of each pass: as asked (1 or 2), else 2 for a serial run with two usable cores."""
-    if backend != "serial":
-        return 1
-    if threads is None:
-        try:
-            cores = len(os.sched_getaffinity(0))
-        except AttributeError:   # not on Linux
-            cores = os.cpu_count() or 1
-        return 2 if cores >= 2 else 1
-    if int(threads) not in (1, 2):
-        raise ValueError(f"threads must be 1 or 2; got {threads!r}")
-    return int(threads)
-
-
-def _stack_histograms(passes):
-    """The histogram blocks of all replicas in one array: one replica's array as it is, several
-    copied one by one into a single allocation (each pass releases its own as it goes)."""
-    if len(passes) == 1:
-        return passes[0].results.histograms
-    first = passes[0].results.histograms
-    out = np.empty((sum(len(p.results.histograms) for p in passes),) + first.shape[1:], dtype=first.dtype)
-    k = 0
-    for p in passes:
-        h = p.results.histograms
-        out[k:k + len(h)] = h
-        k += len(h)
-        p.results.histograms = out[k - len(h):k]   # a view: the pass keeps no copy of its own
-        del h
-    return out
-
-
-def _package_versions():
-    import importlib.metadata as md
-    out = {"python": sys.version.split()[0], "dihedra": __version__}
-    for name in ("MDAnalysis", "numpy", "scipy", "pandas", "pyarrow"):
-        try:
-            out[name] = md.version(name)
-        except md.PackageNotFoundError:
-            pass
-    return out
-
-
-def _summary(topology, trajectories, replica_info, scheme, tset, params, notices, seconds):
-    for info in replica_info:
-        info["sha256"] = sha256(info["trajectory"])
-    return {
-        "dihedra_version": __version__,
-        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-        "command": " ".join(sys.argv) if sys.argv and sys.argv[0].endswith("dihedra") else None,
-        "topology": {"path": os.path.abspath(topology), "sha256": sha256(topology)},
-        "replicas": replica_info,
-        "n_torsions": len(tset),
-        "n_frames_analysed": int(sum(r["frames_analysed"] for r in replica_info)),
-        "scheme": scheme.to_dict(),
-        "parameters": params,
-        "units": {"angle": "deg", "time": "ps", "population": "fraction", "energy": "kJ/mol"},
-        "temperature_k": params.get("temperature_k"),
-        "notices": list(notices),
-        "run_seconds": round(seconds, 3),
-        "versions": _package_versions(),
-    }

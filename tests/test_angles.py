@@ -41,7 +41,7 @@ def test_agrees_with_rdkit_on_the_mdanalysis_test_protein():
     from rdkit.Geometry import Point3D
     from MDAnalysisTests.datafiles import DCD, PSF
 
-    from dihedra.selection.torsions import select_torsions
+    from dihedra.selection.specs import select_torsions
 
     u = mda.Universe(PSF, DCD)
     tset = select_torsions(u, "rotatable")

@@ -668,7 +668,7 @@ def test_gromos_names_in_tpr(adk_gromacs_tpr):
 def test_named_specifications_use_these_functions(adk_charmm):
     # select_torsions resolves protein-backbone / protein-sidechains / nucleic-backbone here.
     pytest.importorskip("dihedra.selection.rotatable")
-    from dihedra.selection.torsions import select_torsions
+    from dihedra.selection.specs import select_torsions
 
     tset = select_torsions(adk_charmm, ["protein-backbone", "protein-sidechains"])
     assert len(tset) == 639 + 421

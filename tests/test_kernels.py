@@ -1,11 +1,10 @@
-"""The compiled (numba) kernels of the trajectory pass give exactly the numbers of their NumPy
-twins, and both agree with references: MDAnalysis' calc_dihedrals for the angles, the scheme's
-own assign() for the state codes at and next to every boundary, numpy.histogram for the bins.
-The compiled blocking analysis gives the numbers of its NumPy twin (whose analytic checks are in
-test_statistics.py, run on both)."""
+"""The compiled (numba) kernels of the trajectory pass agree with independent references:
+MDAnalysis' calc_dihedrals for the angles (reference library), analytic torsions of constructed
+geometries, the scheme's own assign() for the state codes at and next to every boundary,
+numpy.histogram for the bins. The compiled blocking analysis gives the numbers of the NumPy
+blocking code (whose analytic checks are in test_statistics.py)."""
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from dihedra.numerics import angles
@@ -26,7 +25,7 @@ def random_chains(n_mol, seed, side=30.0):
 
 @pytest.mark.parametrize("box", [None, [30.0, 30.0, 30.0, 90.0, 90.0, 90.0],
                                  [30.0, 32.0, 35.0, 70.0, 80.0, 100.0]])
-def test_compiled_angles_equal_numpy_and_mdanalysis(box):
+def test_angles_equal_mdanalysis(box):
     from MDAnalysis.lib.distances import calc_dihedrals
     from MDAnalysis.lib.mdamath import triclinic_vectors
 
@@ -39,9 +38,7 @@ def test_compiled_angles_equal_numpy_and_mdanalysis(box):
     # undefined torsions: collinear atoms and a NaN coordinate
     xyz[0:4] = [[1, 1, 1], [2, 1, 1], [3, 1, 1], [4, 1, 1]]
     xyz[13, 1] = np.nan
-    compiled = angles.TorsionGeometry(idx, compiled=True)(xyz, box).copy()
-    plain = angles.TorsionGeometry(idx, compiled=False)(xyz, box)
-    np.testing.assert_array_equal(compiled, plain)   # same bits, NaN where undefined
+    compiled = angles.TorsionGeometry(idx)(xyz, box).copy()
     # reference library: MDAnalysis calc_dihedrals, float64, with the box
     ref = np.degrees(calc_dihedrals(*(xyz[idx[:, k]].astype(np.float64) for k in range(4)),
                                     box=None if box is None else np.asarray(box, dtype=np.float64)))
@@ -54,19 +51,19 @@ def test_compiled_angles_equal_numpy_and_mdanalysis(box):
 
 def test_arctangent_octants_and_signs():
     # analytic: a torsion of exactly 0, +-90 and 180 degrees, and both signs near 180
-    geo = [angles.TorsionGeometry([[0, 1, 2, 3]], compiled=c) for c in (True, False)]
+    geo = angles.TorsionGeometry([[0, 1, 2, 3]])
     for phi in (0.0, 90.0, -90.0, 180.0, 179.9, -179.9, 45.0, -135.0, 33.69, -146.31):
         p = np.radians(phi)
         xyz = np.array([[1, 0, 0], [0, 0, 0], [0, 0, 1], [np.cos(p), np.sin(p), 1]], dtype=np.float32)
-        got = [g(xyz)[0] for g in geo]
-        assert got[0] == got[1]
-        assert abs(((got[0] - phi + 180) % 360) - 180) < 1e-4
+        got = geo(xyz)[0]
+        assert abs(((got - phi + 180) % 360) - 180) < 1e-4
+        assert -180 < got <= 180
 
 
 @pytest.mark.parametrize("name", ["anti-gauche", "klyne-prelog", "staggered-eclipsed", "staggered-eclipsed:5"])
 def test_bin_and_count_equal_assign_at_every_boundary(name):
     from dihedra.numerics import _kernels
-    from dihedra.trajectory.trackpass import _MIXED, bin_state_table
+    from dihedra.trajectory.histograms import MIXED, bin_state_table
 
     scheme = get_scheme(name)
     n_bins = 360
@@ -84,37 +81,16 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
     deg[tiny] = np.sign(deg[tiny]) * np.float32(1e-6)
     n = len(deg)
     table = bin_state_table(scheme, n_bins)
-    out = {}
-    for kind in ("compiled", "numpy"):
-        hist = np.zeros((1, n, n_bins), dtype=np.int32)
-        counts = np.zeros((n, scheme.n_states), dtype=np.int64)
-        codes = np.empty(n, dtype=np.int8)
-        undefined = np.zeros(n, dtype=np.int64)
-        bins = np.empty((1, n), dtype=np.uint16)
-        if kind == "compiled":
-            _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table,
-                                  np.asarray(scheme.boundaries_deg, dtype=float),
-                                  np.asarray(scheme.start_closed, dtype=bool),
-                                  np.asarray(scheme.arc_states, dtype=np.int8), _MIXED, bins[0], codes,
-                                  counts, 1, undefined)
-            _kernels.add_histograms(bins, np.zeros(1, dtype=np.intp), np.ones(1, dtype=np.int32), hist)
-        else:   # the NumPy twins, on a pass object reduced to what they use
-            from types import SimpleNamespace
-
-            from dihedra.trajectory.trackpass import TorsionPass
-            fake = SimpleNamespace(bin_width_deg=1.0, _n_bins=n_bins, _bin_table=table, _shift_in=0.0,
-                                   _shift_out=n_bins // 2, _boundaries=np.asarray(scheme.boundaries_deg, dtype=float),
-                                   _start_closed=np.asarray(scheme.start_closed, dtype=bool),
-                                   _arc_states=np.asarray(scheme.arc_states, dtype=np.int8),
-                                   _kernels=None, _bins=bins, _bins_hblock=np.zeros(1, dtype=np.intp),
-                                   _bins_weight=np.ones(1, dtype=np.int32), _n_bins_buf=1, _hist=hist,
-                                   _undefined=undefined)
-            TorsionPass._bin_and_code(fake, deg, bins[0], codes, counts, 1)
-            TorsionPass._add_histograms(fake)
-        out[kind] = (hist[0], counts, codes, undefined)
-    for a, c in zip(out["compiled"], out["numpy"]):
-        np.testing.assert_array_equal(a, c)
-    hist, counts, codes, undefined = out["compiled"]
+    hist = np.zeros((1, n, n_bins), dtype=np.int32)
+    counts = np.zeros((n, scheme.n_states), dtype=np.int64)
+    codes = np.empty(n, dtype=np.int8)
+    undefined = np.zeros(n, dtype=np.int64)
+    bins = np.empty((1, n), dtype=np.uint16)
+    _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table, np.asarray(scheme.boundaries_deg, dtype=float),
+                          np.asarray(scheme.start_closed, dtype=bool), np.asarray(scheme.arc_states, dtype=np.int8),
+                          MIXED, bins[0], codes, counts, 1, undefined)
+    _kernels.add_histograms(bins, np.zeros(1, dtype=np.intp), np.ones(1, dtype=np.int32), hist)
+    hist = hist[0]
     # the scheme's own rule, on the same float32 angles
     np.testing.assert_array_equal(codes, scheme.assign(deg.astype(np.float64)))
     assert undefined.tolist() == [0] * (n - 2) + [1, 0]
@@ -125,10 +101,10 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
     np.testing.assert_array_equal(counts[ok], np.eye(scheme.n_states, dtype=np.int64)[codes[ok]])
 
 
-def test_pass_in_a_triclinic_cell_equals_numpy_path_and_mdanalysis(tmp_path, monkeypatch):
-    # molecules wrapped atom by atom into a triclinic cell: the compiled pass (frames of one
-    # batch, cell parameters per frame) and the NumPy path give the same angles and codes, and
-    # the angles agree with MDAnalysis' calc_dihedrals with the box (reference library)
+def test_pass_in_a_triclinic_cell_equals_mdanalysis(tmp_path):
+    # molecules wrapped atom by atom into a triclinic cell: the pass (frames of one batch, cell
+    # parameters per frame, a second thread) gives the angles of MDAnalysis' calc_dihedrals with
+    # the box (reference library), and the states the scheme assigns to them
     import MDAnalysis as mda
     from MDAnalysis.lib.distances import calc_dihedrals
     from MDAnalysis.lib.mdamath import triclinic_vectors
@@ -147,12 +123,10 @@ def test_pass_in_a_triclinic_cell_equals_numpy_path_and_mdanalysis(tmp_path, mon
                              resname="HEX", box=box)
     kw = dict(torsions="rotatable", scheme="klyne-prelog", keep_angles=True, chunk_frames=5)
     compiled = track(top, [traj], threads=2, **kw)
-    monkeypatch.setenv("DIHEDRA_NO_NUMBA", "1")
-    plain = track(top, [traj], **kw)
-    pd.testing.assert_frame_equal(compiled.angles(), plain.angles())
-    pd.testing.assert_frame_equal(compiled.states(), plain.states())
-    for key in compiled.blocks:
-        np.testing.assert_array_equal(compiled.blocks[key], plain.blocks[key], err_msg=key)
+    labels = list(compiled.torsion_set.labels)
+    scheme = compiled.scheme
+    np.testing.assert_array_equal(compiled.states()[labels].to_numpy(),
+                                  scheme.assign(compiled.angles()[labels].to_numpy(dtype=np.float64)))
     u = mda.Universe(top, traj)
     idx = compiled.torsion_set.indices
     ref = np.array([np.degrees(calc_dihedrals(*(ts.positions[idx[:, k]] for k in range(4)), box=ts.dimensions))

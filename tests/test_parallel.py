@@ -125,7 +125,7 @@ def test_deferred_close_writes_the_same_files(replicas, tmp_path, threads):
     """With defer_close the last row group and the footers are written in the background until
     finish_series(): then the files equal those of a pass that closes them itself."""
     import MDAnalysis as mda
-    from dihedra.selection.torsions import select_torsions
+    from dihedra.selection.specs import select_torsions
     from dihedra.trajectory.trackpass import TorsionPass
 
     top, trajs, _ = replicas
@@ -237,11 +237,11 @@ def test_conformer_rows_equal_direct_joint_counts(serial):
     states = serial.states()
     tset = serial.torsion_set
     n_s = serial.scheme.n_states
-    from dihedra.tracking import conformer_rows
+    from dihedra.trajectory.conformer_counts import conformer_rows
     rows, _ = conformer_rows(serial.blocks, tset, n_s)
     assert len(serial.blocks["conformer_rows"]) == 0   # every chain counted densely
     n_blocks = serial.blocks["state_counts"].shape[0] // 2
-    from dihedra.trajectory.trackpass import conformer_layout
+    from dihedra.trajectory.conformer_counts import conformer_layout
     groups, members, _ = conformer_layout(tset, n_s)
     for g, m in list(enumerate(members))[:3]:
         codes = states[[tset.labels[p] for p in m]].to_numpy().astype(np.int64)
@@ -260,7 +260,7 @@ import json, os, sys, tracemalloc, warnings
 warnings.simplefilter("ignore")
 import MDAnalysis as mda
 from dihedra.selection.schemes import get_scheme
-from dihedra.selection.torsions import select_torsions
+from dihedra.selection.specs import select_torsions
 from dihedra.trajectory.trackpass import TorsionPass
 from dihedra.io.series import ParquetSeriesFactory, series_files
 import pyarrow.parquet as pq
@@ -310,32 +310,22 @@ def test_pass_memory_does_not_grow_with_frames(tmp_path):
     assert large["peak"] <= 1.1 * small["peak"]
 
 
-def test_numpy_path_equals_compiled_kernels(replicas, serial, monkeypatch):
-    # the NumPy twins of the numba kernels (used without numba) give the same bits: angles,
-    # codes, histograms, state counts, conformer rows; weighted sums added in the same order
-    pytest.importorskip("numba")
-    from dihedra.numerics.angles import compiled_kernels
-
-    assert compiled_kernels() is not None
+def test_weighted_state_counts_equal_direct_sums(replicas):
+    # the weighted state counts of the pass are the sums of the frames' weights per torsion and
+    # state, counted here directly from the state time series (reference: NumPy)
     top, trajs, weights = replicas
-    kw = dict(KW, weights=weights, keep_angles=False)
-    compiled_weighted = track(top, trajs, **kw)
-    monkeypatch.setenv("DIHEDRA_NO_NUMBA", "1")
-    assert compiled_kernels() is None
-    assert_same(serial, track(top, trajs, **KW))
-    plain_weighted = track(top, trajs, **kw)
-    for key in compiled_weighted.blocks:
-        np.testing.assert_array_equal(compiled_weighted.blocks[key], plain_weighted.blocks[key], err_msg=key)
-    pd.testing.assert_frame_equal(compiled_weighted.conformers, plain_weighted.conformers)
+    res = track(top, trajs, **dict(KW, weights=weights, keep_angles=False))
+    states = res.states()
+    labels = list(res.torsion_set.labels)
+    codes = states[labels].to_numpy()
+    w = states["weight"].to_numpy()
+    expect = np.stack([np.bincount(codes[:, t][codes[:, t] >= 0], weights=w[codes[:, t] >= 0],
+                                   minlength=res.scheme.n_states) for t in range(len(labels))])
+    np.testing.assert_allclose(res.blocks["state_counts"].sum(axis=0), expect, rtol=1e-12)
 
 
-@pytest.mark.parametrize("compiled", [True, False])
-def test_second_thread_equals_serial(replicas, serial, monkeypatch, compiled):
+def test_second_thread_equals_serial(replicas, serial, monkeypatch):
     # a second thread computes batches of copied frames while the first reads: same results
-    if compiled:
-        pytest.importorskip("numba")
-    else:
-        monkeypatch.setenv("DIHEDRA_NO_NUMBA", "1")
     import dihedra.trajectory.trackpass as tp
     monkeypatch.setattr(tp, "BATCH_BYTES", 7 * 60 * 12)   # batches of 7 frames (60 atoms)
     top, trajs, _ = replicas
@@ -386,16 +376,16 @@ def test_more_workers_than_frames(replicas):
 
 def test_default_threads_follow_the_usable_cores(monkeypatch):
     # common practice: a serial run uses the second core when the process may run on it
-    import dihedra.tracking as tracking
+    from dihedra.trajectory import assemble
 
-    monkeypatch.setattr(tracking.os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
-    assert tracking._pass_threads(None, "serial") == 2
-    assert tracking._pass_threads(None, "multiprocessing") == 1   # workers use one thread each
-    assert tracking._pass_threads(1, "serial") == 1
-    monkeypatch.setattr(tracking.os, "sched_getaffinity", lambda pid: {3}, raising=False)
-    assert tracking._pass_threads(None, "serial") == 1
+    monkeypatch.setattr(assemble.os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
+    assert assemble.pass_threads(None, "serial") == 2
+    assert assemble.pass_threads(None, "multiprocessing") == 1   # workers use one thread each
+    assert assemble.pass_threads(1, "serial") == 1
+    monkeypatch.setattr(assemble.os, "sched_getaffinity", lambda pid: {3}, raising=False)
+    assert assemble.pass_threads(None, "serial") == 1
     with pytest.raises(ValueError, match="threads must be 1 or 2"):
-        tracking._pass_threads(3, "serial")
+        assemble.pass_threads(3, "serial")
 
 
 @pytest.mark.parametrize("with_parts_dir", [True, False])
@@ -404,7 +394,7 @@ def test_block_sums_of_workers_through_files_or_pickles_equal_serial(replicas, t
     # without one, pickled: non-empty cells of each block); either way the sums equal a serial pass
     import MDAnalysis as mda
 
-    from dihedra.selection.torsions import select_torsions
+    from dihedra.selection.specs import select_torsions
     from dihedra.trajectory.trackpass import TorsionPass
 
     top, trajs, _ = replicas

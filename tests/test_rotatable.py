@@ -10,7 +10,7 @@ from rdkit.Chem import AllChem  # noqa: E402
 
 mda = pytest.importorskip("MDAnalysis")
 
-from dihedra.selection.torsions import select_torsions  # noqa: E402
+from dihedra.selection.specs import select_torsions  # noqa: E402
 
 # our definition as a SMARTS pattern: a non-ring bond between two non-terminal atoms, neither of
 # which is a linear (sp, triple-bonded) centre with two neighbours (common practice; RDKit SMARTS)

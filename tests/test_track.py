@@ -261,12 +261,13 @@ def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_r
     # blocks.npz is written in another thread, the time series during the pass (in the second
     # thread or in workers): a failed write is the run's error, not a "damaged trajectory"
     (top, t0), _ = two_replicas
-    from dihedra.io import blocks, series
+    import dihedra.tracking as tracking_module
+    from dihedra.io import series
 
     def full_disk(*args, **kwargs):
         raise OSError(28, "No space left on device")
 
-    owner, name = (blocks, target) if "." not in target else (series.TimeSeriesWriter, target.split(".")[1])
+    owner, name = (tracking_module, target) if "." not in target else (series.TimeSeriesWriter, target.split(".")[1])
     monkeypatch.setattr(owner, name, full_disk)
     with pytest.raises(OSError, match="No space left"):
         track(top, [t0], torsions=spec8(), out=str(tmp_path / "res"), **kw)

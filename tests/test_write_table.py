@@ -80,15 +80,13 @@ def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
 
 
 @pytest.mark.parametrize("shape", [(7, 3), (300, 1500), (64, 2049)])
-def test_frames_transposed_into_the_chunk_with_and_without_the_kernels(shape):
-    """Frames transposed into a chunk (a column slice of a wider buffer) equal NumPy's transpose,
-    and nothing around the slice changes (reference: NumPy)."""
+def test_frames_transposed_into_the_chunk(shape):
+    """Frames transposed into a chunk (a column slice of a wider buffer) by the compiled tile loop
+    equal NumPy's transpose, and nothing around the slice changes (reference: NumPy)."""
     from dihedra.numerics.angles import compiled_kernels
-    from dihedra.trajectory.trackpass import _transpose
 
     block = np.random.default_rng(2).integers(-1, 3, size=shape).astype(np.int8)
-    for kernels in (compiled_kernels(), None):
-        chunk = np.full((shape[1], shape[0] + 9), 7, dtype=np.int8)
-        _transpose(block, chunk[:, 4:4 + shape[0]], kernels)
-        np.testing.assert_array_equal(chunk[:, 4:4 + shape[0]], block.T)
-        assert (chunk[:, :4] == 7).all() and (chunk[:, 4 + shape[0]:] == 7).all()
+    chunk = np.full((shape[1], shape[0] + 9), 7, dtype=np.int8)
+    compiled_kernels().transpose_into(block, chunk[:, 4:4 + shape[0]])
+    np.testing.assert_array_equal(chunk[:, 4:4 + shape[0]], block.T)
+    assert (chunk[:, :4] == 7).all() and (chunk[:, 4 + shape[0]:] == 7).all()

@@ -1332,7 +1332,7 @@ def _select_torsions(torsions, types):
 def _conformer_groups(result, selected):
     """Conformer groups whose torsions are all selected: names, group types, members (column idx)."""
     from ..numerics.populations import _short_type_names
-    from ..trajectory.trackpass import conformer_layout
+    from ..trajectory.conformer_counts import conformer_layout
 
     groups, members, _ = conformer_layout(result.torsion_set, result.scheme.n_states)
     col = {int(p): k for k, p in enumerate(selected)}

@@ -941,7 +941,7 @@ def unbias_windows(windows_csv, temperature_k, out=None, scheme="anti-gauche", b
 
 def _summary(first, data, windows, scheme, temperature_k, tset, notices, start, stop, step, seconds):
     from .._version import __version__
-    from ..tracking import _package_versions
+    from ..trajectory.assemble import package_versions as _package_versions
 
     replicas = []
     for res, row in zip(data.tracks, windows.itertuples(index=False)):

@@ -4,7 +4,7 @@ import os
 
 from ..trajectory.inputs import load_universe
 from ..io.outputs import check_single_file, file_head_contains, write_file
-from ..selection.torsions import select_torsions
+from ..selection.specs import select_torsions
 from .common import add_torsion_options, print_notices
 
 

@@ -1,13 +1,13 @@
 """Compiled kernels (numba): the per-frame work of the trajectory pass, and the blocking analysis
 of the populations (:func:`blocking_columns`, used by :func:`dihedra.numerics.statistics.blocking_error`).
 
-This module is imported only through :func:`dihedra.numerics.angles.compiled_kernels`, which falls back to
-the NumPy implementations in :mod:`dihedra.numerics.angles` and :mod:`dihedra.trajectory.trackpass` when numba is
-missing (or ``DIHEDRA_NO_NUMBA=1``). Every kernel does exactly the floating-point operations of
-its NumPy twin, in the same order and without fused multiply-adds or fast-math, so both paths give
-the same bits (tested in ``tests/test_kernels.py``). The functions are compiled on first use and
-the machine code is cached on disk (``cache=True``): the first run of a new installation spends a
-few seconds compiling, later runs load the cache in milliseconds.
+This module is imported through :func:`dihedra.numerics.angles.compiled_kernels` (importing numba
+takes a moment, so only where the kernels are used). The kernels use no fused multiply-adds and no
+fast-math: the results do not depend on the machine's vector width. They are tested against
+independent references (MDAnalysis' ``calc_dihedrals``, RDKit, exact counts) in
+``tests/test_kernels.py``. The functions are compiled on first use and the machine code is cached
+on disk (``cache=True``): the first run of a new installation spends a few seconds compiling,
+later runs load the cache in milliseconds.
 
 The loops are written for the compiler: the arithmetic of the torsion angles is one loop without
 branches over contiguous arrays (LLVM turns it into SIMD code), while the gather of coordinates

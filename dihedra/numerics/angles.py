@@ -21,43 +21,36 @@ Coordinates are float32 (as trajectories store them); the bond vectors are their
 float64 and everything after is float64, rounded once to a float32 angle at the end. The minimum
 image of an orthorhombic cell is ``v - L floor(v / L + 1/2)`` per component; in a triclinic cell
 (rows a, b, c of MDAnalysis' ``triclinic_vectors``) the vector is reduced along c, b and a and the
-shortest of the 27 neighbouring images is taken. The arctangent is evaluated here, not by the
-C library: with ``lo = min(|x|, |y|)`` and ``hi = max(|x|, |y|)``, ``z = lo / hi`` (or
-``(lo - hi) / (lo + hi)`` plus pi/4 when ``lo > 0.66 hi``), atan(z) is the rational approximation
-of the Cephes library (Moshier, *Methods and Programs for Mathematical Functions*, 1989; 1 ulp in
-double precision), and the octant is restored from the signs. Written once for the compiler
-(:mod:`dihedra.numerics._kernels`, numba) and once in NumPy, with the same operations in the same order,
-both give identical angles; the compiled one turns the arithmetic into SIMD code (about 5 ns per
-torsion instead of about 40 with NumPy).
+shortest of the 27 neighbouring images is taken. The arctangent is evaluated by the
+compiled kernel (:mod:`dihedra.numerics._kernels`, numba) itself rather than by the C library, so
+that the compiler can turn the whole loop into SIMD code (about 5 ns per torsion): with
+``lo = min(|x|, |y|)`` and ``hi = max(|x|, |y|)``, ``z = lo / hi`` (or ``(lo - hi) / (lo + hi)``
+plus pi/4 when ``lo > 0.66 hi``), atan(z) is the rational approximation of the Cephes library
+(Moshier, *Methods and Programs for Mathematical Functions*, 1989; 1 ulp in double precision),
+and the octant is restored from the signs. The tests check the angles against MDAnalysis'
+``calc_dihedrals`` and RDKit.
 
 Speed (:class:`TorsionGeometry`)
 --------------------------------
 A trajectory pass evaluates the same torsions in every frame: the atom indices, the work buffers
 and the box parameters are prepared once, and each frame costs a gather of the bond vectors
 (one loop over torsions), the triclinic reduction if the cell needs it, and one SIMD loop for the
-angles. The compiled kernels are used when numba is installed (a core dependency) unless the
-environment variable ``DIHEDRA_NO_NUMBA=1`` asks for the NumPy path.
+angles. The kernels are compiled on first use and cached on disk (numba, a core dependency).
 """
 
-import os
-
 import numpy as np
-_kernels = None
+
+_loaded = None
 
 
 def compiled_kernels():
-    """The numba kernels (:mod:`dihedra.numerics._kernels`), or ``None`` when numba is not installed or
-    ``DIHEDRA_NO_NUMBA`` is set to a non-empty value other than ``0``."""
-    global _kernels
-    if os.environ.get("DIHEDRA_NO_NUMBA", "0") not in ("", "0"):
-        return None
-    if _kernels is None:
-        try:
-            from . import _kernels as mod
-        except ImportError:  # numba missing: the NumPy path
-            mod = False
-        _kernels = mod
-    return _kernels or None
+    """The compiled kernels (:mod:`dihedra.numerics._kernels`), imported on first use (importing
+    numba and loading the cached machine code take about a second)."""
+    global _loaded
+    if _loaded is None:
+        from . import _kernels as mod
+        _loaded = mod
+    return _loaded
 
 
 def usable_box(dimensions):
@@ -98,15 +91,6 @@ def torsion_angles_deg(positions, indices, box=None):
     return TorsionGeometry(indices)(np.asarray(positions, dtype=np.float32), box).astype(np.float64)
 
 
-def radians_to_convention_deg(rad):
-    """Radians on [-pi, pi] to degrees on (-180, 180] (NaN stays NaN)."""
-    deg = np.degrees(np.asarray(rad, dtype=np.float64))
-    deg[deg <= -180.0] += 360.0
-    return deg
-
-
-
-
 # -- box ------------------------------------------------------------------------------------------
 
 def box_parameters(dimensions):
@@ -132,79 +116,6 @@ def box_parameters(dimensions):
     return zeros, zeros, h, float((0.49 * spacing) ** 2)
 
 
-# -- NumPy twins of the compiled kernels (same operations, same order) ----------------------------
-
-_P = (-8.750608600031904122785e-1, -1.615753718733365076637e1, -7.500855792314704667340e1,
-      -1.228866684490136173410e2, -6.485021904942025371773e1)
-_Q = (2.485846490142306297962e1, 1.650270098316988542046e2, 4.328810604912902668951e2,
-      4.853903996359136964868e2, 1.945506571482613964425e2)
-
-
-def gather_bonds(positions, indices):
-    """Bond vectors A->B, B->C, C->D of every torsion, float64, shape (9, n_torsions)."""
-    p = np.asarray(positions, dtype=np.float32)[np.asarray(indices)].astype(np.float64)  # (n, 4, 3)
-    return np.concatenate([(p[:, 1] - p[:, 0]).T, (p[:, 2] - p[:, 1]).T, (p[:, 3] - p[:, 2]).T])
-
-
-def minimum_image_triclinic(bonds, h, reach2):
-    """In place: reduce along c, b, a, then (for squared lengths of at least ``reach2``) the
-    shortest of the 27 neighbouring images."""
-    for r in range(3):
-        x, y, z = (bonds[3 * r + c].copy() for c in range(3))
-        for row in (2, 1, 0):
-            s = np.floor((x, y, z)[row] / h[row, row] + 0.5)
-            x = x - s * h[row, 0]
-            y = y - s * h[row, 1]
-            z = z - s * h[row, 2]
-        bx, by, bz = x, y, z
-        best = (x * x + y * y) + z * z
-        search = best >= reach2
-        for i in range(-1, 2):
-            for j in range(-1, 2):
-                for k in range(-1, 2):
-                    cx = ((x + i * h[0, 0]) + j * h[1, 0]) + k * h[2, 0]
-                    cy = ((y + i * h[0, 1]) + j * h[1, 1]) + k * h[2, 1]
-                    cz = ((z + i * h[0, 2]) + j * h[1, 2]) + k * h[2, 2]
-                    d = (cx * cx + cy * cy) + cz * cz
-                    shorter = (d < best) & search
-                    best = np.where(shorter, d, best)
-                    bx, by, bz = (np.where(shorter, c, b) for c, b in ((cx, bx), (cy, by), (cz, bz)))
-        bonds[3 * r], bonds[3 * r + 1], bonds[3 * r + 2] = bx, by, bz
-    return bonds
-
-
-def dihedrals_deg(bonds, lengths, inverse, out=None):
-    """Angles (float32 degrees on (-180, 180], NaN undefined) from bond vectors, orthorhombic
-    minimum image first (zeros: none); see the module docstring."""
-    u1, u2, u3, v1, v2, v3, w1, w2, w3 = (
-        b - lengths[k % 3] * np.floor(b * inverse[k % 3] + 0.5) for k, b in enumerate(bonds))
-    n1, n2, n3 = u2 * v3 - u3 * v2, u3 * v1 - u1 * v3, u1 * v2 - u2 * v1
-    m1, m2, m3 = v2 * w3 - v3 * w2, v3 * w1 - v1 * w3, v1 * w2 - v2 * w1
-    x = (n1 * m1 + n2 * m2) + n3 * m3
-    y = np.sqrt((v1 * v1 + v2 * v2) + v3 * v3) * ((u1 * m1 + u2 * m2) + u3 * m3)
-    ax, ay = np.abs(x), np.abs(y)
-    swap = ay > ax
-    lo, hi = np.where(swap, ax, ay), np.where(swap, ay, ax)
-    big = lo > 0.66 * hi
-    with np.errstate(invalid="ignore", divide="ignore"):
-        z = np.where(big, lo - hi, lo) / np.where(big, lo + hi, hi)
-    zz = z * z
-    p = (((_P[0] * zz + _P[1]) * zz + _P[2]) * zz + _P[3]) * zz + _P[4]
-    q = ((((zz + _Q[0]) * zz + _Q[1]) * zz + _Q[2]) * zz + _Q[3]) * zz + _Q[4]
-    r = z + z * (zz * p / q)
-    r = np.where(big, r + np.pi / 4.0, r)
-    r = np.where(swap, np.pi / 2.0 - r, r)
-    r = np.where(x < 0.0, np.pi - r, r)
-    r = np.where(y < 0.0, -r, r)
-    deg = (r * (180.0 / np.pi)).astype(np.float32)
-    deg[(deg <= -180.0) | (deg > 180.0)] = 180.0
-    deg[((ax == 0.0) & (ay == 0.0)) | np.isnan(x) | np.isnan(y)] = np.nan
-    if out is None:
-        return deg
-    out[...] = deg
-    return out
-
-
 class TorsionGeometry:
     """Torsion angles of a fixed set of torsions, frame after frame.
 
@@ -212,9 +123,6 @@ class TorsionGeometry:
     ----------
     indices : ndarray of int, shape (n_torsions, 4)
         Atom indices A, B, C, D of each torsion.
-    compiled : bool, optional
-        Use the numba kernels (default: when available, see :func:`compiled_kernels`); ``False``
-        forces the NumPy path. Both give the same angles.
 
     Examples
     --------
@@ -225,35 +133,27 @@ class TorsionGeometry:
     [180.0]
     """
 
-    def __init__(self, indices, compiled=None):
+    def __init__(self, indices):
         self.indices = np.asarray(indices, dtype=np.int64).reshape(-1, 4)
         self.n_torsions = len(self.indices)
-        kernels = compiled_kernels() if compiled in (None, True) else None
-        if compiled and kernels is None:
-            raise ImportError("the compiled torsion kernels need numba: pip install numba")
-        self._kernels = kernels
         top = 3 * (int(self.indices.max()) + 1) if self.n_torsions else 0
-        self._idx3 = (3 * self.indices).astype(np.uint32 if top < 2**32 else np.uint64)
+        #: 3 x the atom indices, as the kernels take them
+        self.idx3 = (3 * self.indices).astype(np.uint32 if top < 2**32 else np.uint64)
         self._bonds = None
         self._out = None
         self._box_key = None
         self._box = box_parameters(None)
 
     def __getstate__(self):
-        state = dict(self.__dict__, _bonds=None, _out=None)
-        state["_kernels"] = self._kernels is not None   # a module does not pickle
-        return state
-
-    def __setstate__(self, state):
-        state["_kernels"] = compiled_kernels() if state["_kernels"] else None
-        self.__dict__.update(state)
+        return dict(self.__dict__, _bonds=None, _out=None)
 
     @property
-    def compiled(self):
-        """Whether the numba kernels are used."""
-        return self._kernels is not None
+    def kernels(self):
+        """The compiled kernels (:mod:`dihedra.numerics._kernels`)."""
+        return compiled_kernels()
 
-    def _box_parameters(self, box):
+    def box_parameters(self, box):
+        """:func:`box_parameters` of ``box``, remembered while the box stays the same."""
         if box is None:
             key = None
         else:
@@ -283,17 +183,12 @@ class TorsionGeometry:
             out = self._out
         if self.n_torsions == 0:
             return out
-        lengths, inverse, h, reach2 = self._box_parameters(box)
+        lengths, inverse, h, reach2 = self.box_parameters(box)
         pos = np.ascontiguousarray(positions, dtype=np.float32)
-        k = self._kernels
-        if k is None:
-            bonds = gather_bonds(pos, self.indices)
-            if h is not None:
-                minimum_image_triclinic(bonds, h, reach2)
-            return dihedrals_deg(bonds, lengths, inverse, out)
+        k = self.kernels
         if self._bonds is None:
             self._bonds = np.empty((9, self.n_torsions), dtype=np.float64)
-        k.gather_bonds(pos.reshape(-1), self._idx3, self._bonds)
+        k.gather_bonds(pos.reshape(-1), self.idx3, self._bonds)
         if h is not None:
             k.minimum_image_triclinic(self._bonds, h, reach2)
         k.dihedrals_deg(self._bonds, lengths, inverse, out)

@@ -11,7 +11,7 @@ follow the reader's ``dt`` and ``time_offset``.
 
 It is used only where it gives exactly what the MDAnalysis reader would: a plain ``XTCReader``
 (no on-the-fly transformations, no auxiliary data, no atom subset, units converted) and the
-compiled kernels available; everything else (other formats, ``DIHEDRA_NO_NUMBA=1``) is iterated
+compiled kernels; everything else (other formats, ``DIHEDRA_NO_XTC_DECODER=1``) is iterated
 by MDAnalysis as usual. A batch that the decoder cannot take (a damaged or truncated frame, or an
 encoding outside what it handles) is read again frame by frame by MDAnalysis, so its errors and
 its results are the ones a user would get from MDAnalysis.
@@ -43,13 +43,7 @@ def xtc_frames(reader):
         return None
     if reader.units.get("length") != "nm":
         return None
-    from ..numerics.angles import compiled_kernels
-    if compiled_kernels() is None:
-        return None
-    try:
-        from . import _xtc
-    except ImportError:   # pragma: no cover - numba present but unusable
-        return None
+    from . import _xtc
     return XTCFrames(reader, _xtc)
 
 

@@ -1,0 +1,205 @@
+"""From the block sums of the passes to a result: the arrays of ``blocks.npz`` (replicas one
+after another), the tables (populations, conformers, torsions), the notices and the summary
+(inputs, frame ranges, time steps, parameters, versions)."""
+
+from __future__ import annotations
+
+import os
+import sys
+import time
+import warnings
+
+import numpy as np
+
+from .._version import __version__
+from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
+                                    replica_populations, torsion_populations)
+from .conformer_counts import conformer_layout, dense_conformers, reduce_conformer_rows
+from .inputs import sha256
+from .result import TrackResult
+
+#: How the summary says that a trajectory stores no time step.
+NO_TIME_STEP = "none (the trajectory stores no time step; MDAnalysis assumed 1 ps per frame)"
+
+
+def block_sums(passes):
+    """The block sums of all replicas (the arrays of ``blocks.npz``)."""
+    state_counts = np.concatenate([p.results.state_counts for p in passes])
+    block_replica = np.concatenate([np.full(p.n_state_blocks, r) for r, p in enumerate(passes)])
+    histograms = stack_histograms(passes)
+    hist_block_replica = np.concatenate([np.full(p.n_hist_blocks, r) for r, p in enumerate(passes)])
+    blocks = {
+        "state_counts": state_counts,
+        "block_replica": block_replica,
+        "block_frames": np.concatenate([p.results.block_frames for p in passes]),
+        "block_weights": np.concatenate([p.results.block_weights for p in passes]),
+        "histograms": histograms,
+        "hist_block_replica": hist_block_replica,
+        "hist_block_frames": np.concatenate([p.results.hist_block_frames for p in passes]),
+        "hist_block_weights": np.concatenate([p.results.hist_block_weights for p in passes]),
+        "bin_edges_deg": np.linspace(-180.0, 180.0, histograms.shape[2] + 1),
+        "undefined": np.sum([p.results.undefined for p in passes], axis=0),
+    }
+    # conformer rows: shift each replica's blocks to the global block numbering (one replica:
+    # its rows as they are, sorted and unique already)
+    offset, rows, wts = 0, [], []
+    for p in passes:
+        cr = np.asarray(p.results.conformer_counts, dtype=np.int64).reshape(-1, 4)
+        if offset:
+            cr = cr.copy()
+            cr[:, 0] += offset
+        rows.append(cr)
+        wts.append(np.asarray(p.results.conformer_weights, dtype=float))
+        offset += p.n_state_blocks
+    conf_rows, conf_w = reduce_conformer_rows(rows[0] if len(rows) == 1 else np.vstack(rows),
+                                              wts[0] if len(wts) == 1 else np.concatenate(wts))
+    blocks["conformer_rows"] = conf_rows
+    blocks["conformer_weights"] = conf_w
+    # conformer classes counted densely (groups of equal width): one array per width, the
+    # replicas' blocks one after another
+    for width in sorted(passes[0].results.conformer_dense):
+        blocks[f"conformer_counts_w{width}"] = _stack([p.results.conformer_dense[width][0] for p in passes])
+        if passes[0].results.conformer_dense[width][1] is not None:
+            blocks[f"conformer_weights_w{width}"] = _stack([p.results.conformer_dense[width][1] for p in passes])
+    return blocks
+
+
+def _stack(arrays):
+    return arrays[0] if len(arrays) == 1 else np.concatenate(arrays)
+
+
+def stack_histograms(passes):
+    """The histogram blocks of all replicas in one array: one replica's array as it is, several
+    copied one by one into a single allocation (each pass releases its own as it goes)."""
+    if len(passes) == 1:
+        return passes[0].results.histograms
+    first = passes[0].results.histograms
+    out = np.empty((sum(len(p.results.histograms) for p in passes),) + first.shape[1:], dtype=first.dtype)
+    k = 0
+    for p in passes:
+        h = p.results.histograms
+        out[k:k + len(h)] = h
+        k += len(h)
+        p.results.histograms = out[k - len(h):k]   # a view: the pass keeps no copy of its own
+        del h
+    return out
+
+
+def assemble_result(tset, scheme, universe, notices, blocks):
+    """Populations, conformers and the torsion table from the block sums (:func:`_block_sums`)."""
+    labels, types = tset.labels, tset.types
+    resnames = [t.resname for t in tset.torsions]
+    state_counts, block_replica = blocks["state_counts"], blocks["block_replica"]
+    conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
+    dense = dense_conformers(blocks, tset, scheme.n_states)
+
+    pops = torsion_populations(state_counts, block_replica, labels, types, scheme.labels)
+    by_type = pool_by_type(pops)
+    by_rep = replica_populations(state_counts, block_replica, labels, types, scheme.labels, pooled=pops)
+    groups, members, skipped = conformer_layout(tset, scheme.n_states)
+    conf, conf_type = conformer_populations(conf_rows, conf_w, block_replica, len(block_replica), groups,
+                                            members, labels, types, scheme.labels, resnames, dense=dense)
+    if skipped:
+        notices.append(f"no conformers for {len(skipped)} group(s) with too many torsions "
+                       f"(e.g. {skipped[0]}); their torsions are still analysed one by one.")
+    undefined = blocks["undefined"]
+    if undefined.any():
+        worst = int(np.argmax(undefined))
+        notices.append(f"{int((undefined > 0).sum())} torsion(s) were undefined in some frames (collinear "
+                       f"atoms or NaN coordinates), e.g. {labels[worst]} in {int(undefined[worst])} frames; "
+                       "those frames are left out of their populations and histograms.")
+    rough = pops[(pops["n_effective"] < MIN_EFFECTIVE_SAMPLES) & (pops["population"] > 0)]
+    if len(rough):
+        notices.append(f"{rough['torsion'].nunique()} torsion(s) have states with fewer than "
+                       f"{MIN_EFFECTIVE_SAMPLES} effective samples (e.g. {rough['torsion'].iloc[0]}, "
+                       f"{rough['state'].iloc[0]}): sampling is not converged and their error bars are rough.")
+    table = tset.to_frame(universe)
+    table["n_undefined_frames"] = undefined
+    return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
+                       populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
+                       conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
+
+
+def replica_info(universe, traj, frames, tp, dt_ps):
+    reader = universe.trajectory
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        dt = reader.dt
+    no_dt = any("dt information" in str(w.message) for w in caught)
+    if dt_ps is not None:
+        source = "--dt-ps"
+        dt_used = float(dt_ps)
+    elif no_dt:
+        source = NO_TIME_STEP
+        dt_used = float(dt)
+    else:
+        source = "trajectory"
+        dt_used = float(dt)
+    return {
+        "trajectory": os.path.abspath(traj) if traj else None,
+        "n_frames_in_file": int(reader.n_frames),
+        "frames_analysed": int(len(frames)),
+        "first_frame": int(frames[0]),
+        "last_frame": int(frames[-1]),
+        "frame_step": int(frames[1] - frames[0]) if len(frames) > 1 else 1,
+        "time_step_ps": dt_used,
+        "time_between_analysed_frames_ps": dt_used * (int(frames[1] - frames[0]) if len(frames) > 1 else 1),
+        "time_step_source": source,
+        "time_step_known": source != NO_TIME_STEP,
+        "first_time_ps": float(tp.times[0]) if len(tp.times) else None,
+        "last_time_ps": float(tp.times[-1]) if len(tp.times) else None,
+    }
+
+
+def pass_threads(threads, backend):
+    """Threads of each pass: as asked (1 or 2), else 2 for a serial run with two usable cores."""
+    if backend != "serial":
+        return 1
+    if threads is None:
+        try:
+            cores = len(os.sched_getaffinity(0))
+        except AttributeError:   # not on Linux
+            cores = os.cpu_count() or 1
+        return 2 if cores >= 2 else 1
+    if int(threads) not in (1, 2):
+        raise ValueError(f"threads must be 1 or 2; got {threads!r}")
+    return int(threads)
+
+
+def package_versions():
+    import importlib.metadata as md
+    out = {"python": sys.version.split()[0], "dihedra": __version__}
+    for name in ("MDAnalysis", "numpy", "scipy", "pandas", "pyarrow"):
+        try:
+            out[name] = md.version(name)
+        except md.PackageNotFoundError:
+            pass
+    return out
+
+
+def make_summary(topology, replicas, scheme, tset, params, notices, seconds):
+    """The summary of a run (``summary.json``): ``replicas`` from :func:`replica_info`, each given
+    the SHA-256 of its trajectory here."""
+    for info in replicas:
+        info["sha256"] = _sha256_of(info["trajectory"])
+    return {
+        "dihedra_version": __version__,
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        "command": " ".join(sys.argv) if sys.argv and sys.argv[0].endswith("dihedra") else None,
+        "topology": {"path": os.path.abspath(topology) if topology else None, "sha256": _sha256_of(topology)},
+        "replicas": replicas,
+        "n_torsions": len(tset),
+        "n_frames_analysed": int(sum(r["frames_analysed"] for r in replicas)),
+        "scheme": scheme.to_dict(),
+        "parameters": params,
+        "units": {"angle": "deg", "time": "ps", "population": "fraction", "energy": "kJ/mol"},
+        "temperature_k": params.get("temperature_k"),
+        "notices": list(notices),
+        "run_seconds": round(seconds, 3),
+        "versions": package_versions(),
+    }
+
+
+def _sha256_of(path):
+    """SHA-256 of a file, or ``None`` for a Universe that was not read from a file."""
+    return sha256(path) if path and os.path.isfile(path) else None

@@ -1,0 +1,96 @@
+"""Threads of the trajectory pass: batches of frames handed from the reading thread to a second
+thread that computes them (:class:`Overlap`), and two futures waited for as one (:class:`Both`)."""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+class Both:
+    """Two futures waited for as one (the first one's error first)."""
+
+    def __init__(self, first, second):
+        self._futures = [f for f in (first, second) if f is not None]
+
+    def result(self):
+        try:
+            for f in self._futures:
+                f.result()
+        finally:
+            for f in self._futures:   # the second one too, whatever happened to the first
+                f.exception()
+
+
+class Batch:
+    """Coordinates, boxes, frame numbers, times and frame positions of a few frames."""
+
+    def __init__(self, size, n_atoms):
+        self.positions = np.empty((size, n_atoms, 3), dtype=np.float32)
+        self.dimensions = np.empty((max(size, 1), 6), dtype=np.float32)
+        self.frame = np.empty(max(size, 1), dtype=np.int64)
+        self.time = np.empty(max(size, 1), dtype=np.float64)
+        self.index = np.empty(max(size, 1), dtype=np.intp)
+        self.n = 0
+
+
+class Overlap:
+    """A second thread that processes batches of frames while the calling thread reads.
+
+    Batches go through a queue in order; finished batches come back for reuse, so at most
+    ``len(batches)`` are in memory. An error in the thread is raised in the calling thread at
+    the next :meth:`submit` or at :meth:`finish`.
+    """
+
+    def __init__(self, process, batches):
+        import queue
+        import threading
+
+        self._process = process
+        self._todo = queue.Queue()
+        self._free = queue.Queue()
+        for b in batches:
+            self._free.put(b)
+        self._error = None
+        self._thread = threading.Thread(target=self._run, name="dihedra-pass", daemon=True)
+        self._thread.start()
+
+    def _run(self):
+        while True:
+            batch = self._todo.get()
+            if batch is None:
+                return
+            try:
+                if self._error is None:
+                    self._process(batch)
+            except BaseException as exc:  # noqa: BLE001 - handed to the calling thread
+                self._error = exc
+            batch.n = 0
+            self._free.put(batch)
+
+    def _check(self):
+        if self._error is not None:
+            raise self._error
+
+    def take(self):
+        """An empty batch (waits until the thread has finished one)."""
+        batch = self._free.get()
+        self._check()
+        return batch
+
+    def submit(self, batch):
+        """Queue a full batch and return an empty one."""
+        self._check()
+        self._todo.put(batch)
+        return self.take()
+
+    def finish(self, batch):
+        """Queue the last (partial) batch and wait until every batch is processed."""
+        if batch is not None and batch.n:
+            self._todo.put(batch)
+        self.stop()
+        self._check()
+
+    def stop(self):
+        if self._thread.is_alive():
+            self._todo.put(None)
+            self._thread.join()

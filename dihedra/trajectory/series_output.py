@@ -1,0 +1,120 @@
+"""The time series of the trajectory pass on their way out: chunks handed to a writer, here or in a
+background thread.
+
+The pass does not know where the series go: it is given a factory (``series(labels, weighted,
+chunk_frames, kinds)``) that makes a writer with ``add(replica, index, values)`` and ``close()``:
+Parquet files of a results folder (:class:`dihedra.io.series.ParquetSeriesFactory`) or arrays kept
+in memory (:class:`MemorySeriesFactory`). ``index`` holds ``frame``, ``time_ps``, ``position`` (of
+each frame within the replica) and, for a weighted run, ``weight``; ``values`` maps ``"states"``
+(and ``"angles"``) to arrays of shape (n_torsions, n_frames).
+"""
+
+from __future__ import annotations
+
+import contextlib
+
+import numpy as np
+
+from ..errors import OutputWriteError
+from .overlap import Both
+from .result import SeriesChunk
+
+
+@contextlib.contextmanager
+def writing():
+    """An ``OSError`` of the time series writer raised as :class:`~dihedra.errors.OutputWriteError`
+    (an ``OSError`` while reading means a damaged trajectory; while writing, a full disk)."""
+    try:
+        yield
+    except OSError as exc:
+        where = f" into {exc.filename}" if getattr(exc, "filename", None) else ""
+        raise OutputWriteError(exc.errno, f"writing the time series{where} failed: {exc.strerror or exc}") from exc
+
+
+class SeriesOutput:
+    """The writer of one pass, made at the first chunk; chunks are written in order, in the
+    calling thread or (``background=True``) in one background thread."""
+
+    def __init__(self, factory, labels, weighted, chunk_frames):
+        self._factory = factory
+        self._layout = (list(labels), bool(weighted), int(chunk_frames))
+        self._writer = None
+        self._pool = None
+        self._pending = None
+        self.collected = None   # what an in-memory writer kept, after close()
+
+    def add(self, replica, index, values, background=False):
+        """Write a chunk (the previous one is finished first: order is kept)."""
+        self.wait()
+        with writing():
+            if self._writer is None:
+                self._writer = self._factory(*self._layout, tuple(values))
+            if not background:
+                self._writer.add(replica, index, values)
+                return
+        self._pending = self._executor().submit(self._writer.add, replica, index, values)
+
+    def wait(self):
+        """Wait for the chunk being written in the background (and raise its error)."""
+        pending, self._pending = self._pending, None
+        if pending is not None:
+            with writing():
+                pending.result()
+
+    def close_in_background(self):
+        """Queue the closing of the writer after the last chunk."""
+        if self._writer is None:
+            return
+        writer, self._writer = self._writer, None
+        self._pending = Both(self._pending, self._executor().submit(self._close, writer))
+
+    def close(self):
+        """Wait for every chunk and close the writer (also after an error: the files are then
+        incomplete, and whoever asked for them removes them)."""
+        try:
+            self.wait()
+        finally:
+            pool, self._pool = self._pool, None
+            if pool is not None:
+                pool.shutdown()
+        writer, self._writer = self._writer, None
+        if writer is not None:
+            with writing():
+                self._close(writer)
+
+    def _close(self, writer):
+        writer.close()
+        if getattr(writer, "chunks", None) is not None:
+            self.collected = writer.chunks
+
+    def _executor(self):
+        if self._pool is None:
+            from concurrent.futures import ThreadPoolExecutor
+            self._pool = ThreadPoolExecutor(1, thread_name_prefix="dihedra-series")
+        return self._pool
+
+
+class MemorySeriesFactory:
+    """Makes writers that keep the time series in memory (copies of the chunks), for a
+    :class:`~dihedra.trajectory.result.MemorySeries`."""
+
+    def __call__(self, labels, weighted, chunk_frames, kinds):
+        return _MemoryWriter(labels, weighted, kinds)
+
+
+class _MemoryWriter:
+    def __init__(self, labels, weighted, kinds):
+        self.labels = list(labels)
+        self.weighted = weighted
+        self.chunks = {kind: [] for kind in kinds}
+
+    def add(self, replica, index, values):
+        position = np.asarray(index["position"])
+        for kind, array in values.items():
+            self.chunks[kind].append(SeriesChunk(
+                int(replica), int(position[0]) if len(position) else 0, np.array(index["frame"]),
+                np.array(index["time_ps"]), np.array(index["weight"]) if self.weighted else None,
+                self.labels, np.array(array)))
+
+    def close(self):
+        pass

@@ -1,0 +1,214 @@
+"""Torsion states of the atoms you have: the analysis class of dihedra, in the MDAnalysis idiom.
+
+:class:`TorsionStates` takes an ``AtomGroup`` (or a ``Universe``), selects its torsions, and
+``run()`` streams the trajectory once (serial, or split over processes with the
+``multiprocessing`` and ``dask`` backends, with identical results). It leaves tidy tables in
+``results`` and writes nothing; every analysis of dihedra (profiles, kinetics, comparison with a
+scan, couplings) takes the analysis itself as its input.
+
+Example
+-------
+>>> import MDAnalysis as mda
+>>> import dihedra
+>>> u = mda.Universe(dihedra.example_path("hexane.pdb"), dihedra.example_path("hexane.xtc"))
+>>> ts = dihedra.TorsionStates(u.atoms, torsions="rotatable", scheme="anti-gauche").run(stop=20)
+>>> ts.results.populations_by_type.columns.tolist()
+['type', 'state', 'population', 'population_err', 'n_torsions']
+>>> sorted(ts.results.populations_by_type["state"].unique())
+['anti', 'gauche+', 'gauche-']
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+
+import numpy as np
+
+from ..errors import DihedraError, SelectionError
+from ..selection.schemes import get_scheme
+from ..selection.specs import select_torsions
+from ..selection.torsions import TorsionSet
+from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info
+from .result import MemorySeries
+from .series_output import MemorySeriesFactory
+from .trackpass import TorsionPass
+
+#: The tables that :class:`TorsionStates` leaves in ``results``.
+TABLES = ("torsions", "populations", "populations_by_type", "populations_by_replica", "conformers",
+          "conformers_by_type")
+
+
+class TorsionStates(TorsionPass):
+    """States, populations with autocorrelation-aware errors, and conformers of the torsions of an
+    atom group, in one pass over the trajectory.
+
+    Parameters
+    ----------
+    atomgroup : MDAnalysis.AtomGroup or MDAnalysis.Universe
+        The atoms whose torsions are followed: the specification is applied to the whole
+        topology and only torsions whose four atoms are all in ``atomgroup`` are kept.
+    torsions : str, list of str or TorsionSet
+        Torsion specifications: ``"rotatable"``, ``"protein-backbone"``, ``"protein-sidechains"``,
+        ``"nucleic-backbone"``, four 0-based atom indices ``"A,B,C,D"``, or a TOML file of named
+        torsions (see :func:`dihedra.select_torsions`); or a ready :class:`TorsionSet`.
+    scheme : str or StateScheme
+        State scheme: ``"anti-gauche"`` (default), ``"staggered-eclipsed[:N]"``,
+        ``"klyne-prelog"``, a TOML file of named sectors, or a :class:`StateScheme`.
+    weights : array-like, optional
+        One weight per analysed frame (reweighting a biased run).
+    keep_states : bool
+        Keep the state time series in memory (``results.states``; int8 codes, 1 byte per torsion
+        and frame); the kinetics need it.
+    keep_angles : bool
+        Keep the angle time series too (``results.angles``, float32 degrees; 4 bytes per torsion
+        and frame); 2-D profiles and core-set kinetics need it.
+    dt_ps : float, optional
+        Time between stored frames in ps, replacing the trajectory's own.
+    temperature_k : float, optional
+        The simulation temperature, recorded for the analyses that need one.
+    bin_width_deg : float
+        Width of the fine angle histograms (a divisor of 360; default 1 degree).
+    n_state_blocks, n_hist_blocks : int
+        Blocks for the population errors (blocking analysis) and for the bootstrap errors of
+        profiles.
+    verbose : bool
+        Show a progress bar.
+
+    Attributes
+    ----------
+    results.torsions : DataFrame
+        One row per torsion: label, type, atom indices and names, residue, group.
+    results.populations : DataFrame
+        Per torsion and state: ``population`` (fraction), ``population_err`` (standard error from
+        block averaging), ``n_effective``, ``n_samples``.
+    results.populations_by_type, results.populations_by_replica : DataFrame
+        Pooled over the torsions of a type; per replica (one here).
+    results.conformers, results.conformers_by_type : DataFrame
+        Joint states of the torsions of each group (molecule or residue).
+    results.states, results.angles : DataFrame
+        The time series (``replica``, ``frame``, ``time_ps``, one column per torsion), when kept.
+    tracking_result : TrackResult
+        The same as one object: what every analysis of dihedra takes.
+
+    Notes
+    -----
+    ``run(start, stop, step, frames, backend="serial" | "multiprocessing" | "dask",
+    n_workers=N)`` gives identical results with every backend: workers sum exact block counts.
+    """
+
+    def __init__(self, atomgroup, torsions="rotatable", scheme="anti-gauche", *, weights=None, keep_states=True,
+                 keep_angles=False, dt_ps=None, temperature_k=None, bin_width_deg=1.0, n_state_blocks=64,
+                 n_hist_blocks=16, verbose=False):
+        universe = getattr(atomgroup, "universe", None)
+        if universe is None or not hasattr(atomgroup, "atoms"):
+            raise DihedraError(f"TorsionStates takes an MDAnalysis AtomGroup or Universe; got "
+                               f"{type(atomgroup).__name__}.")
+        scheme = get_scheme(scheme)
+        tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universe, torsions)
+        tset = _within(tset, atomgroup.atoms, universe)
+        if dt_ps is not None and not (np.isfinite(float(dt_ps)) and float(dt_ps) > 0):
+            raise DihedraError(f"dt_ps must be a positive number of ps; got {dt_ps!r}.")
+        series = MemorySeriesFactory() if keep_states or keep_angles else None
+        super().__init__(universe, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
+                         bin_width_deg=bin_width_deg, weights=weights, series=series, keep_angles=keep_angles,
+                         dt_ps=dt_ps, verbose=verbose)
+        self.temperature_k = temperature_k
+        self._make_tables = True
+        self._threads_asked = None
+        self._range = {}
+
+    def plumb(self, *, parts_dir=None, series=None, chunk_frames=None, replica=0, defer_close=False, threads=None):
+        """Internal settings of a pass that :func:`dihedra.track` runs for one replica of a results
+        folder: no tables of its own (the replicas' block sums are merged), the time series
+        written by ``series``, worker files in ``parts_dir``, the replica number."""
+        self._make_tables = False
+        self.parts_dir, self.series, self.chunk_frames = parts_dir, series, chunk_frames
+        self.replica, self.defer_close, self._threads_asked = int(replica), bool(defer_close), threads
+        return self
+
+    def run(self, start=None, stop=None, step=None, frames=None, verbose=None, *, n_workers=None, n_parts=None,
+            backend=None, unsupported_backend=False, progressbar_kwargs=None):
+        """Stream the frames and fill ``results`` (see :class:`MDAnalysis.analysis.base.AnalysisBase`).
+
+        A serial run on a machine with two or more cores reads the trajectory in one thread and
+        computes in a second one; the results are the same."""
+        self.threads = pass_threads(self._threads_asked, backend or "serial")
+        self._range = dict(start=start, stop=stop, step=step)
+        self._started = time.time()
+        kwargs = dict(start=start, stop=stop, step=step, frames=frames, verbose=verbose)
+        if backend not in (None, "serial") or n_workers not in (None, 1):
+            kwargs.update(n_workers=n_workers, n_parts=n_parts, backend=backend,
+                          unsupported_backend=unsupported_backend)
+        if progressbar_kwargs is not None:
+            kwargs["progressbar_kwargs"] = progressbar_kwargs
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message="Reader has no dt information")
+            warnings.filterwarnings("ignore", category=DeprecationWarning)
+            return super().run(**kwargs)
+
+    def _prepare(self):
+        if self.weights is not None and len(self.weights) != self._n_total:
+            raise DihedraError(f"weights has {len(self.weights)} values but {self._n_total} frames are analysed; "
+                               "give one weight per analysed frame.")
+        super()._prepare()
+
+    def _conclude(self):
+        super()._conclude()
+        if self._make_tables:
+            self._fill_results()
+
+    def _fill_results(self):
+        """The tables, the summary and the time series of this run, as ``results`` and as one
+        :class:`TrackResult` (``tracking_result``)."""
+        notices = list(self.torsion_set.notices)
+        blocks = block_sums([self])
+        result = assemble_result(self.torsion_set, self.scheme, self._universe, notices, blocks)
+        reader = self._universe.trajectory
+        info = replica_info(self._universe, getattr(reader, "filename", None), self.frames, self, self.dt_ps)
+        params = dict(self._range, workers=None, threads=int(self.threads), keep_angles=self.keep_angles,
+                      weights="array" if self.weights is not None else None, weights_column=None, dt_ps=self.dt_ps,
+                      n_state_blocks=self.n_state_blocks, n_hist_blocks=self.n_hist_blocks,
+                      bin_width_deg=self.bin_width_deg, temperature_k=self.temperature_k)
+        result.summary.update(make_summary(getattr(self._universe, "filename", None), [info], self.scheme,
+                                           self.torsion_set, params, notices,
+                                           time.time() - getattr(self, "_started", time.time())))
+        parts = self.results.pop("series_parts", None) or []
+        if parts:
+            result.series = MemorySeries(_joined(parts))
+        for name in TABLES:
+            self.results[name] = getattr(result, name)
+        if result.has_series("states"):
+            self.results.states = result.states()
+        if result.has_series("angles"):
+            self.results.angles = result.angles()
+        self.results.blocks = result.blocks
+        self.results.summary = result.summary
+        self.results.notices = result.notices
+        self.tracking_result = result
+
+
+def _within(tset, atoms, universe):
+    """The torsions of ``tset`` whose four atoms are all in ``atoms`` (a notice for the others)."""
+    if len(atoms) == universe.atoms.n_atoms:
+        return tset
+    inside = np.zeros(universe.atoms.n_atoms, dtype=bool)
+    inside[atoms.ix] = True
+    keep = [t for t in tset.torsions if inside[list(t.indices)].all()]
+    if not keep:
+        raise SelectionError(f"none of the {len(tset)} selected torsions has all four atoms in the atom group "
+                             f"of {len(atoms)} atoms; select a larger group or other torsions.")
+    notices = list(tset.notices)
+    if len(keep) < len(tset):
+        notices.append(f"{len(tset) - len(keep)} selected torsion(s) reach outside the atom group and were left "
+                       "out.")
+    return TorsionSet(torsions=keep, notices=notices)
+
+
+def _joined(parts):
+    """The time series chunks of all workers, per kind, in replica and frame order."""
+    out = {}
+    for part in parts:
+        for kind, chunks in part.items():
+            out.setdefault(kind, []).extend(chunks)
+    return {kind: sorted(chunks, key=lambda c: (c.replica, c.first)) for kind, chunks in out.items()}
