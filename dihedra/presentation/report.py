@@ -13,7 +13,7 @@ into ``report.html``:
   its verdicts and their reasons;
 * kinetics (rates, dwell times, implied timescales) with the transition-state-theory caution;
 * couplings and their comparison with experiment;
-* every figure of :func:`dihedra.presentation.plots.figure_set`, embedded as an SVG data URI (text as paths,
+* every figure of :func:`dihedra.presentation.figures.figure_set`, embedded as an SVG data URI (text as paths,
   so no font is fetched), and a list of the figures the folder could not make and why.
 
 The page has no script and makes no request: every style is inline in one ``<style>`` element,
@@ -289,7 +289,7 @@ def _torsions(folder, summary, scheme):
         parts.append("<h3>Torsion table</h3>")
         parts.append(_table(tors, cols, what="torsions"))
     if scheme is not None:
-        from .plots import state_colours
+        from .figures import state_colours
         colours = state_colours(scheme)
         rows = pd.DataFrame(scheme.sector_table(), columns=["state", "from_deg", "to_deg"])
         rows.insert(0, "colour", [f"<span style='display:inline-block;width:0.9em;height:0.9em;"
@@ -543,7 +543,7 @@ def build_report(folder, width="single", figures=True, log=None):
         Receives one-line notes on what the folder lacks.
     """
     from .._version import __version__
-    from .plots import figure_set, style
+    from .figures import figure_set, style
     from ..io.resultsdir import load_results
 
     result = load_results(folder)
