@@ -16,14 +16,14 @@ from matplotlib.patches import Circle, FancyArrowPatch, Rectangle
 
 matplotlib.use("Agg")
 
-from dihedra.presentation import plots  # noqa: E402
+from dihedra.presentation import figures  # noqa: E402
 from dihedra.errors import DihedraError  # noqa: E402
 from dihedra.io.resultsdir import load_results  # noqa: E402
 from dihedra.selection.schemes import get_scheme, scheme_from_mapping  # noqa: E402
 
 
 def new_ax(width="single", height=2.4):
-    fig = Figure(figsize=(plots.WIDTHS[width], height), layout="constrained")
+    fig = Figure(figsize=(figures.WIDTHS[width], height), layout="constrained")
     return fig.add_subplot()
 
 
@@ -60,7 +60,7 @@ def linear(rgb):
 @pytest.mark.parametrize("spec", ["anti-gauche", "staggered-eclipsed", "staggered-eclipsed:2", "klyne-prelog"])
 def test_builtin_state_colours_are_fixed_and_distinct_under_colour_vision_deficiency(spec):
     scheme = get_scheme(spec)
-    colours = plots.state_colours(scheme)
+    colours = figures.state_colours(scheme)
     assert list(colours) == list(scheme.labels)
     # fixed mapping, the same hue for the same role in every scheme (documented table)
     fixed = {"anti": "#0072B2", "ap": "#0072B2", "staggered": "#0072B2", "gauche+": "#E69F00", "+sc": "#E69F00",
@@ -74,25 +74,25 @@ def test_builtin_state_colours_are_fixed_and_distinct_under_colour_vision_defici
         for a, b in itertools.combinations(labs, 2):
             assert np.linalg.norm(labs[a] - labs[b]) > 12.0, (spec, name, a, b)
     # undefined frames are grey, unlike every state
-    assert plots.UNDEFINED_COLOUR not in colours.values()
+    assert figures.UNDEFINED_COLOUR not in colours.values()
 
 
 def test_custom_scheme_takes_the_cyclic_palette_in_label_order():
     states = [{"label": f"s{k}", "from_deg": -180 + 40 * k, "to_deg": -140 + 40 * k} for k in range(9)]
     scheme = scheme_from_mapping({"name": "nine", "state": states})
-    colours = plots.state_colours(scheme)
-    pal = plots.CYCLIC_PALETTE
+    colours = figures.state_colours(scheme)
+    pal = figures.CYCLIC_PALETTE
     assert [colours[f"s{k}"] for k in range(9)] == [pal[k % len(pal)] for k in range(9)]
     # a custom scheme that reuses built-in labels but is not a built-in set is cyclic too
     two = scheme_from_mapping({"state": [{"label": "anti", "from_deg": 90, "to_deg": -90},
                                          {"label": "other", "from_deg": -90, "to_deg": 90}]})
-    assert plots.state_colours(two) == {"anti": pal[0], "other": pal[1]}
+    assert figures.state_colours(two) == {"anti": pal[0], "other": pal[1]}
 
 
 def test_sector_spans_cover_the_circle_once():
     for spec in ("anti-gauche", "klyne-prelog", "staggered-eclipsed"):
         scheme = get_scheme(spec)
-        spans = plots.sector_spans(scheme)
+        spans = figures.sector_spans(scheme)
         assert sum(hi - lo for _, lo, hi in spans) == pytest.approx(360.0)
         # the state of each span's midpoint is the span's state (scheme.assign is the reference)
         for state, lo, hi in spans:
@@ -104,7 +104,7 @@ def test_sector_spans_cover_the_circle_once():
 # ------------------------------------------------------------------------------------------------
 def test_angle_series_downsamples_in_chunks_and_draws_bands(full_folder):
     labels = ["BUT1:C1-C2-C3-C4", "BUT2:C1-C2-C3-C4"]
-    series = plots.read_angle_series(full_folder, labels, max_points=100, batch_frames=37)
+    series = figures.read_angle_series(full_folder, labels, max_points=100, batch_frames=37)
     full = pd.read_parquet(os.path.join(full_folder, "angles.parquet"), columns=labels)
     stride = int(np.ceil(len(full) / 100))
     assert series.stride == stride and series.n_frames == len(full)
@@ -112,13 +112,13 @@ def test_angle_series_downsamples_in_chunks_and_draws_bands(full_folder):
     np.testing.assert_allclose(series.frame[labels].to_numpy(), full[labels].to_numpy()[::stride])
     assert f"every {stride}th" in series.description
     scheme = load_results(full_folder).scheme
-    ax = plots.plot_angle_series(series, scheme, labels[1], ax=new_ax())
+    ax = figures.plot_angle_series(series, scheme, labels[1], ax=new_ax())
     pts = [ln for ln in ax.lines if ln.get_marker() == "o"]
     assert len(pts) == 2  # one per replica
     assert sum(len(ln.get_xdata()) for ln in pts) == len(series.frame)
     np.testing.assert_allclose(np.concatenate([ln.get_ydata() for ln in pts]), series.frame[labels[1]])
     bands = [p for p in ax.patches if isinstance(p, (Rectangle, matplotlib.patches.Polygon))]
-    assert len(bands) == len(plots.sector_spans(scheme)) == 4  # anti is split at +-180
+    assert len(bands) == len(figures.sector_spans(scheme)) == 4  # anti is split at +-180
     assert "deg" in ax.get_ylabel() and r"\varphi" in ax.get_ylabel()
     assert ax.get_xlabel().endswith("/ ps")
     assert set(texts_of(ax)) >= {"anti", "gauche+", "gauche-", "replica 1", "replica 2"}
@@ -130,11 +130,11 @@ def test_state_raster_is_the_most_frequent_state_per_column(full_folder):
     states = pd.read_parquet(os.path.join(full_folder, "states.parquet"))
     labels = [c for c in states.columns if c.startswith("BUT")]
     # one column per frame: the raster is the state table itself
-    exact = plots.read_state_raster(full_folder, max_columns=10_000, batch_frames=50)
+    exact = figures.read_state_raster(full_folder, max_columns=10_000, batch_frames=50)
     assert exact.frames_per_column == 1
     np.testing.assert_array_equal(exact.codes, states[exact.rows].to_numpy().T)
     # 30 columns of 20 frames (two replicas of 300): the mode of each block of 20 frames
-    agg = plots.read_state_raster(full_folder, max_rows=4, max_columns=30, batch_frames=64)
+    agg = figures.read_state_raster(full_folder, max_rows=4, max_columns=30, batch_frames=64)
     assert len(agg.rows) == 4 and agg.n_torsions == len(labels)
     assert "4 of 6 torsions" in agg.description and "most frequent state of 20 frames" in agg.description
     for i, lab in enumerate(agg.rows):
@@ -144,14 +144,14 @@ def test_state_raster_is_the_most_frequent_state_per_column(full_folder):
                 block = series[20 * c:20 * (c + 1)]
                 mode = np.argmax(np.bincount(block, minlength=3))  # numpy is the reference
                 assert agg.codes[i, 15 * rep + c] == mode
-    ax = plots.plot_state_raster(agg, scheme, ax=new_ax())
+    ax = figures.plot_state_raster(agg, scheme, ax=new_ax())
     images = ax.get_images()
     assert len(images) == 2  # one per replica
     cmap = images[0].get_cmap()
     # colour index k+1 is state k; 0 is undefined
     for k, s in enumerate(scheme.labels):
-        assert to_hex(cmap(k + 1)) == to_hex(plots.state_colours(scheme)[s])
-    assert to_hex(cmap(0)) == to_hex(plots.UNDEFINED_COLOUR)
+        assert to_hex(cmap(k + 1)) == to_hex(figures.state_colours(scheme)[s])
+    assert to_hex(cmap(0)) == to_hex(figures.UNDEFINED_COLOUR)
     assert "4 of 6 torsions" in ax.get_title(loc="left")
     assert {h.get_label() for h in ax.get_legend().legend_handles} - {""} == set(scheme.labels)
 
@@ -176,11 +176,11 @@ def test_state_raster_thins_thousands_of_torsions(tmp_path):
     (tmp_path / "summary.json").write_text(json.dumps({
         "scheme": get_scheme("anti-gauche").to_dict(),
         "replicas": [{"frames_analysed": n_frames, "time_between_analysed_frames_ps": 2.0, "time_step_known": True}]}))
-    raster = plots.read_state_raster(str(tmp_path), max_rows=200, max_columns=100)
+    raster = figures.read_state_raster(str(tmp_path), max_rows=200, max_columns=100)
     assert raster.codes.shape == (200, 100)
     assert raster.rows[0] == "T0" and raster.rows[-1] == "T1999"
     assert raster.row_types.count("a") == raster.row_types.count("b") == 100
-    ax = plots.plot_state_raster(raster, get_scheme("anti-gauche"), ax=new_ax())
+    ax = figures.plot_state_raster(raster, get_scheme("anti-gauche"), ax=new_ax())
     assert "200 of 2000 torsions" in ax.get_title(loc="left")
     assert [t.get_text() for t in ax.get_yticklabels()] == ["a", "b"]  # type names, not 200 labels
     assert ax.get_xlim()[1] == pytest.approx(1000.0)  # 500 frames of 2 ps
@@ -205,7 +205,7 @@ def test_profile_marks_unsampled_runs_shades_sectors_and_overlays_the_scan():
     prof = profile_table()
     scan = pd.DataFrame({"type": "T", "angle_deg": prof["angle_deg"],
                          "scan_free_energy_kj_mol": 2.0 * (1 + np.cos(np.radians(3 * prof["angle_deg"])))})
-    ax = plots.plot_profile(prof, scheme, "T", scan=scan, ax=new_ax())
+    ax = figures.plot_profile(prof, scheme, "T", scan=scan, ax=new_ax())
     hatched = [p for p in ax.patches if p.get_hatch()]
     assert len(hatched) == 2  # the two unsampled runs
     spans = sorted(p.get_x() for p in hatched)
@@ -229,7 +229,7 @@ def test_profile_in_kt_converts_the_scan_with_the_temperature():
 
     prof = profile_table("kt")
     scan = pd.DataFrame({"type": "T", "angle_deg": [0.0, 90.0], "scan_free_energy_kj_mol": [0.0, 5.0]})
-    ax = plots.plot_profile(prof, get_scheme("anti-gauche"), "T", scan=scan, temperature_k=300.0, ax=new_ax())
+    ax = figures.plot_profile(prof, get_scheme("anti-gauche"), "T", scan=scan, temperature_k=300.0, ax=new_ax())
     assert ax.get_ylabel().endswith(r"$k_\mathrm{B}T$")
     # units.py converts; R T at 300 K = 2.494 kJ/mol (CODATA 2018)
     assert ax.get_lines()[1].get_ydata()[1] == pytest.approx(5.0 / kt_kj_mol(300.0))
@@ -238,7 +238,7 @@ def test_profile_in_kt_converts_the_scan_with_the_temperature():
 
 def test_profile_of_an_unknown_name_is_a_clear_error():
     with pytest.raises(DihedraError, match="no histogram profile of 'X'"):
-        plots.plot_profile(profile_table(), get_scheme("anti-gauche"), "X", ax=new_ax())
+        figures.plot_profile(profile_table(), get_scheme("anti-gauche"), "X", ax=new_ax())
 
 
 # ------------------------------------------------------------------------------------------------
@@ -251,16 +251,16 @@ def test_population_bars_heights_colours_and_sources():
     comparison = pd.DataFrame({"type": ["A"], "predicted_population_anti": [0.55],
                                "predicted_population_gauche+": [0.25], "predicted_population_gauche-": [0.2],
                                "population_anti": [0.6]})
-    predicted, reference = plots.comparison_populations(comparison)
+    predicted, reference = figures.comparison_populations(comparison)
     assert len(predicted) == 3 and len(reference) == 0
-    ax = plots.plot_populations(pops, scheme, predicted=predicted, ax=new_ax())
+    ax = figures.plot_populations(pops, scheme, predicted=predicted, ax=new_ax())
     bars = [p for p in ax.patches if isinstance(p, Rectangle)]
     assert len(bars) == 6 + 3  # six sampled, three predicted (type A only)
     filled = [b for b in bars if not b.get_hatch()]
     hatched = [b for b in bars if b.get_hatch()]
     assert sorted(round(b.get_height(), 6) for b in filled) == sorted(pops["population"])
     assert sorted(round(b.get_height(), 6) for b in hatched) == [0.2, 0.25, 0.55]
-    colours = plots.state_colours(scheme)
+    colours = figures.state_colours(scheme)
     for b in filled:
         state = [s for s, p in zip(pops["state"], pops["population"]) if abs(p - b.get_height()) < 1e-9][0]
         if list(pops["population"]).count(b.get_height()) == 1:
@@ -282,7 +282,7 @@ def test_free_energy_map_is_periodic_with_contours_in_kj_per_mol():
     sampled = f < 10.0
     table = pd.DataFrame({"torsion_a": "a", "torsion_b": "b", "angle_a_deg": ga.ravel(), "angle_b_deg": gb.ravel(),
                           "free_energy_kj_mol": np.where(sampled, f, np.nan).ravel(), "sampled": sampled.ravel()})
-    ax = plots.plot_free_energy_map(table, ax=new_ax(height=3.0), level_step=2.0)
+    ax = figures.plot_free_energy_map(table, ax=new_ax(height=3.0), level_step=2.0)
     mesh = [m for m in ax.collections if isinstance(m, QuadMesh)][0]
     arr = mesh.get_array()
     grid = np.where(sampled, f, np.nan).T  # rows: angle_b
@@ -319,26 +319,26 @@ def kinetics_tables():
 def test_transition_diagram_nodes_by_population_arrows_by_rate():
     scheme = get_scheme("anti-gauche")
     transitions, lifetimes = kinetics_tables()
-    ax = plots.plot_transition_diagram(transitions, lifetimes, "T", scheme=scheme, ax=new_ax(height=2.6))
+    ax = figures.plot_transition_diagram(transitions, lifetimes, "T", scheme=scheme, ax=new_ax(height=2.6))
     nodes = [p for p in ax.patches if isinstance(p, Circle)]
     arrows = [p for p in ax.patches if isinstance(p, FancyArrowPatch)]
     assert len(nodes) == 3
     assert len(arrows) == 5  # the pair with zero count is not drawn
     # node area grows with population; colours are the state colours
     radius = {to_hex(n.get_facecolor()): n.get_radius() for n in nodes}
-    colours = plots.state_colours(scheme)
+    colours = figures.state_colours(scheme)
     assert radius[to_hex(colours["anti"])] > radius[to_hex(colours["gauche+"])] > radius[to_hex(colours["gauche-"])]
     # arrow width grows with the rate: the widest is gauche- -> anti (0.08 per ps)
     widths = sorted(a.get_linewidth() for a in arrows)
     assert widths[-1] == pytest.approx(0.5 + 2.6)
     assert "0.08" in texts_of(ax) and "0.001" in texts_of(ax)
-    counts = plots.plot_transition_diagram(transitions, lifetimes, "T", weight="count", scheme=scheme, ax=new_ax())
+    counts = figures.plot_transition_diagram(transitions, lifetimes, "T", weight="count", scheme=scheme, ax=new_ax())
     assert "31" in texts_of(counts) and "transition count" in counts.get_title(loc="left")
 
 
 def test_lifetimes_exponential_from_the_rates_and_observed_markers():
     transitions, lifetimes = kinetics_tables()
-    ax = plots.plot_lifetimes(lifetimes, "T", scheme=get_scheme("anti-gauche"), ax=new_ax())
+    ax = figures.plot_lifetimes(lifetimes, "T", scheme=get_scheme("anti-gauche"), ax=new_ax())
     assert ax.get_yscale() == "log"
     dashed = [ln for ln in ax.get_lines()
               if ln.get_linestyle() not in ("-", "None", "none") and len(ln.get_xdata()) > 2]
@@ -357,14 +357,14 @@ def test_survival_curve_is_kaplan_meier():
     # Kaplan & Meier (1958): S(t) = prod over event times t_i <= t of (1 - d_i / n_i); worked by hand:
     # lengths 1, 2 (censored), 3, 3, 5 -> at t=1: 1 - 1/5 = 0.8; t=2 censored: 0.8; t=3: 0.8 (1 - 2/3);
     # t=5: 0.8/3 (1 - 1/1) = 0
-    t, s = plots.survival_curve([1, 2, 3, 5], [1, 0, 2, 1], [0, 1, 0, 0])
+    t, s = figures.survival_curve([1, 2, 3, 5], [1, 0, 2, 1], [0, 1, 0, 0])
     np.testing.assert_allclose(t, [1, 2, 3, 5])
     np.testing.assert_allclose(s, [0.8, 0.8, 0.8 / 3, 0.0])
     # without censoring it is one minus the empirical distribution function
     rng = np.random.default_rng(1)
     x = rng.integers(1, 30, 200)
     d, n = np.unique(x, return_counts=True)
-    _, s = plots.survival_curve(d, n, np.zeros_like(n))
+    _, s = figures.survival_curve(d, n, np.zeros_like(n))
     np.testing.assert_allclose(s, 1 - np.cumsum(n) / n.sum())
 
 
@@ -374,11 +374,11 @@ def test_survival_curve_is_kaplan_meier():
 def test_convergence_ends_at_the_per_replica_populations(full_folder):
     res = load_results(full_folder)
     name = "BUT1:C1-C2-C3-C4"
-    ax = plots.plot_convergence(res, name, ax=new_ax())
+    ax = figures.plot_convergence(res, name, ax=new_ax())
     lines = [ln for ln in ax.get_lines() if len(ln.get_xdata()) > 2]
     assert len(lines) == 2 * 3  # replicas x states
     by_rep = res.populations_by_replica
-    colours = plots.state_colours(res.scheme)
+    colours = figures.state_colours(res.scheme)
     for j, rep in enumerate((0, 1)):
         for k, s in enumerate(res.scheme.labels):
             ln = lines[3 * j + k]
@@ -392,13 +392,13 @@ def test_convergence_ends_at_the_per_replica_populations(full_folder):
 
 def test_couplings_identity_line_error_bars_and_outliers(full_folder):
     table = pd.read_csv(os.path.join(full_folder, "couplings_vs_experiment.csv"))
-    ax = plots.plot_couplings(table, ax=new_ax(height=3.0))
+    ax = figures.plot_couplings(table, ax=new_ax(height=3.0))
     identity = ax.get_lines()[0]
     np.testing.assert_allclose(identity.get_xdata(), identity.get_ydata())
-    points = [ln for ln in ax.get_lines() if ln.get_marker() in plots.RELATION_MARKERS]
+    points = [ln for ln in ax.get_lines() if ln.get_marker() in figures.RELATION_MARKERS]
     xs = np.concatenate([ln.get_xdata() for ln in points])
     assert sorted(xs) == sorted(table["j_exp_hz"])
-    outliers = [ln for ln in points if to_hex(ln.get_color()) == to_hex(plots.OKABE_ITO["vermillion"])]
+    outliers = [ln for ln in points if to_hex(ln.get_color()) == to_hex(figures.OKABE_ITO["vermillion"])]
     assert sum(len(ln.get_xdata()) for ln in outliers) == int(table["outlier"].sum())
     assert ax.get_xlabel() == r"experimental $^3\mathit{J}$ / Hz" and "Hz" in ax.get_ylabel()
 
@@ -408,8 +408,8 @@ def test_couplings_identity_line_error_bars_and_outliers(full_folder):
 # ------------------------------------------------------------------------------------------------
 def test_figure_set_skips_what_a_track_only_folder_lacks(track_only_folder):
     notes = []
-    with plots.style():
-        fset = plots.figure_set(track_only_folder, log=notes.append)
+    with figures.style():
+        fset = figures.figure_set(track_only_folder, log=notes.append)
     kinds = [i.kind for i in fset.items]
     assert kinds == ["series", "raster", "populations", "convergence"]
     assert any(s.startswith("free-energy profiles: no profiles.csv") for s in fset.skipped)
@@ -419,8 +419,8 @@ def test_figure_set_skips_what_a_track_only_folder_lacks(track_only_folder):
 
 
 def test_figure_set_of_a_full_folder_has_all_nine_figures(full_folder):
-    with plots.style():
-        fset = plots.figure_set(full_folder)
+    with figures.style():
+        fset = figures.figure_set(full_folder)
     kinds = {i.kind for i in fset.items}
     assert kinds == {"series", "raster", "profile", "populations", "map", "transitions", "lifetimes", "convergence",
                      "couplings"}
@@ -456,12 +456,12 @@ def _text_boxes(fig):
 
 @pytest.mark.parametrize("width", ["single", "double"])
 def test_nothing_overlaps_or_leaves_the_figure_at_journal_widths(full_folder, width):
-    with plots.style():
-        fset = plots.figure_set(full_folder, width=width)
+    with figures.style():
+        fset = figures.figure_set(full_folder, width=width)
         for item in fset.items:
             fig = item.figure
-            assert fig.get_figwidth() == pytest.approx(plots.WIDTHS[width] if item.kind not in ("couplings", "map")
-                                                       else plots.SINGLE_COLUMN_IN)
+            assert fig.get_figwidth() == pytest.approx(figures.WIDTHS[width] if item.kind not in ("couplings", "map")
+                                                       else figures.SINGLE_COLUMN_IN)
             boxes = _text_boxes(fig)
             bbox = fig.bbox
             for text, b in boxes:
@@ -492,7 +492,7 @@ def test_the_overlap_check_finds_overlapping_text():
 def test_write_figures_pdf_with_truetype_fonts_and_300_dpi_png(full_folder, tmp_path):
     from PIL import Image
 
-    paths, skipped = plots.write_figures(full_folder, formats="pdf,png,svg", out_dir=str(tmp_path))
+    paths, skipped = figures.write_figures(full_folder, formats="pdf,png,svg", out_dir=str(tmp_path))
     assert skipped == []
     names = {os.path.splitext(os.path.basename(p))[0] for p in paths}
     assert {"angle_series", "state_raster", "populations", "couplings"} <= names
@@ -505,11 +505,11 @@ def test_write_figures_pdf_with_truetype_fonts_and_300_dpi_png(full_folder, tmp_
             im = Image.open(p)
             assert tuple(round(x) for x in im.info["dpi"]) == (300, 300)
             if os.path.basename(p).startswith("profile_"):
-                assert im.size[0] == round(plots.SINGLE_COLUMN_IN * 300)  # the width is not trimmed
+                assert im.size[0] == round(figures.SINGLE_COLUMN_IN * 300)  # the width is not trimmed
         else:
             assert "<svg" in open(p).read(2000)
     with pytest.raises(DihedraError, match="figure format must be one of"):
-        plots.write_figures(full_folder, formats="pdf,jpeg", out_dir=str(tmp_path))
+        figures.write_figures(full_folder, formats="pdf,jpeg", out_dir=str(tmp_path))
 
 
 def test_figures_command(full_folder, tmp_path, capsys):
@@ -530,12 +530,12 @@ def test_figures_command(full_folder, tmp_path, capsys):
 
 def test_population_figure_of_a_folder_shows_sampled_scan_and_reference_values(full_folder):
     comparison = pd.read_csv(os.path.join(full_folder, "comparison.csv"))
-    predicted, reference = plots.comparison_populations(comparison)
+    predicted, reference = figures.comparison_populations(comparison)
     # the reference file (figure_data.py) gives anti 0.40 +- 0.03 and gauche+ 0.30 +- 0.03, plus a sum of
     # states that is not one state of the scheme (drawn nowhere: a bar is one state)
     assert set(reference["state"]) == {"anti", "gauche+", "gauche+|gauche-"}
     res = load_results(full_folder)
-    ax = plots.plot_populations(res.populations_by_type, res.scheme, predicted=predicted, experiment=reference,
+    ax = figures.plot_populations(res.populations_by_type, res.scheme, predicted=predicted, experiment=reference,
                                 ax=new_ax())
     dotted = [b for b in ax.patches if isinstance(b, Rectangle) and b.get_hatch() == "...."]
     assert sorted(round(b.get_height(), 6) for b in dotted) == [0.3, 0.4]
@@ -557,8 +557,8 @@ def test_a_folder_of_umbrella_windows_gets_no_convergence_figure(track_only_fold
     for rep in summary["replicas"]:
         rep["time_between_analysed_frames_ps"] = 0.0  # windows may store no time
     json.dump(summary, open(path, "w"))
-    with plots.style():
-        fset = plots.figure_set(folder)
+    with figures.style():
+        fset = figures.figure_set(folder)
     assert "convergence" not in [i.kind for i in fset.items]
     assert any(s.startswith("convergence: a folder of umbrella windows") for s in fset.skipped)
     series = [i for i in fset.items if i.kind == "series"][0].figure

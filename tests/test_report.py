@@ -16,7 +16,7 @@ import pytest
 from figure_data import full_folder, track_only_folder  # noqa: F401  (fixtures)
 
 from dihedra.cli import main
-from dihedra.presentation.plots import figure_set, style
+from dihedra.presentation.figures import figure_set, style
 from dihedra.presentation.report import write_report
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")

@@ -1,6 +1,6 @@
 """``dihedra figures``: publication figures from a results folder (each as soon as its data exist)."""
 
-from ..presentation.plots import FORMATS, WIDTHS, write_figures
+from ..presentation.figures import FORMATS, WIDTHS, write_figures
 from .common import say
 
 

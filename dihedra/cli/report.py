@@ -1,6 +1,6 @@
 """``dihedra report``: one self-contained HTML report of a results folder."""
 
-from ..presentation.plots import WIDTHS
+from ..presentation.figures import WIDTHS
 from ..presentation.report import write_report
 from .common import say
 

@@ -1,0 +1,69 @@
+r"""Figures for a paper from a results folder: one function per figure, each only reads tables.
+
+Every plot function takes the loaded results (a :class:`~dihedra.trajectory.result.TrackResult`)
+or the tables it needs, plus ``ax=None``, draws on ``ax`` (a new figure when ``None``) and returns
+the axes, so figures compose into panels. None of them recomputes a result: they read the tables
+that ``track``, ``profile``, ``compare``, ``kinetics`` and ``couplings`` wrote.
+
+===  =========================================  ==============================================
+#    function                                   reads
+===  =========================================  ==============================================
+1    :func:`plot_angle_series`                  ``angles.parquet`` (via :func:`read_angle_series`)
+2    :func:`plot_state_raster`                  ``states.parquet`` (via :func:`read_state_raster`)
+3    :func:`plot_profile`                       ``profiles.csv`` (+ ``comparison_profiles.csv``)
+4    :func:`plot_populations`                   ``populations_by_type.csv`` (+ ``comparison.csv``)
+5    :func:`plot_free_energy_map`               ``profiles_2d.csv``
+6    :func:`plot_transition_diagram`            ``transitions.csv``, ``lifetimes.csv``
+7    :func:`plot_lifetimes`                     ``lifetimes.csv`` (+ a dwell-time table)
+8    :func:`plot_convergence`                   ``blocks.npz``, ``populations*.csv``
+9    :func:`plot_couplings`                     ``couplings_vs_experiment.csv``
+===  =========================================  ==============================================
+
+:func:`figure_set` decides which figures a folder can make (a figure appears as soon as its data
+exist; what a folder lacks is skipped with a one-line note) and :func:`write_figures` saves them;
+``dihedra figures`` and ``dihedra report`` use both.
+
+Modules
+-------
+``style``        colours (one per state, Okabe & Ito), journal widths, the :func:`style` context,
+                 file metadata
+``common``       drawing helpers the figures share (notes and legends above the axes, state
+                 sectors, time units, energy columns)
+``timeseries``   figures 1 and 2 and the chunked readers of ``angles.parquet`` / ``states.parquet``
+``profiles``     figure 3;  ``populations``: figure 4;  ``maps``: figure 5
+``kinetics``     figures 6 and 7;  ``convergence``: figure 8;  ``couplings``: figure 9
+``figureset``    :func:`figure_set`, :func:`write_figures`, :class:`FigureItem`, :class:`FigureSet`
+
+Example
+-------
+>>> from dihedra import track, example_path
+>>> from dihedra.presentation.figures import plot_convergence, style
+>>> res = track(example_path("hexane.pdb"), [example_path("hexane.xtc")], stop=200)  # doctest: +SKIP
+>>> with style():                                                                      # doctest: +SKIP
+...     ax = plot_convergence(res, res.torsion_set.types[0])
+"""
+
+from .common import energy_columns, sector_spans, time_scale
+from .convergence import REPLICA_STYLES, plot_convergence
+from .couplings import RELATION_MARKERS, plot_couplings
+from .figureset import FigureItem, FigureSet, figure_set, safe_name, write_figures
+from .kinetics import plot_lifetimes, plot_transition_diagram, survival_curve
+from .maps import plot_free_energy_map
+from .populations import SOURCE_STYLES, comparison_populations, plot_populations
+from .profiles import plot_profile, select_profile
+from .style import (ANGLE_LABEL, CYCLIC_PALETTE, DOUBLE_COLUMN_IN, ENERGY_UNIT_LABELS, FORMATS, INK, NEUTRAL,
+                    OKABE_ITO, POPULATION_LABEL, SECTOR_ALPHA, SINGLE_COLUMN_IN, STATE_COLOURS, UNDEFINED_COLOUR,
+                    UNSAMPLED_COLOUR, WIDTHS, state_colours, style)
+from .timeseries import (AngleSeries, StateRaster, plot_angle_series, plot_state_raster, read_angle_series,
+                         read_state_raster)
+
+__all__ = [
+    "ANGLE_LABEL", "AngleSeries", "CYCLIC_PALETTE", "DOUBLE_COLUMN_IN", "ENERGY_UNIT_LABELS", "FORMATS",
+    "FigureItem", "FigureSet", "INK", "NEUTRAL", "OKABE_ITO", "POPULATION_LABEL", "RELATION_MARKERS",
+    "REPLICA_STYLES", "SECTOR_ALPHA", "SINGLE_COLUMN_IN", "SOURCE_STYLES", "STATE_COLOURS", "StateRaster",
+    "UNDEFINED_COLOUR", "UNSAMPLED_COLOUR", "WIDTHS", "comparison_populations", "energy_columns", "figure_set",
+    "plot_angle_series", "plot_convergence", "plot_couplings", "plot_free_energy_map", "plot_lifetimes",
+    "plot_populations", "plot_profile", "plot_state_raster", "plot_transition_diagram", "read_angle_series",
+    "read_state_raster", "safe_name", "sector_spans", "select_profile", "state_colours", "style",
+    "survival_curve", "time_scale", "write_figures",
+]

@@ -1,0 +1,315 @@
+r"""The figure set of a results folder: which figures its data allow, and writing them to files.
+
+:func:`figure_set` decides which figures a folder can make (a figure appears as soon as its data
+exist; what a folder lacks is skipped with a one-line note) and :func:`write_figures` saves them;
+``dihedra figures`` and ``dihedra report`` use both.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ...errors import DihedraError, one_of
+from ...io.outputs import write_file
+from ...io.series import ParquetSeries
+from ...io.tables import read_optional_table as read_optional
+from .convergence import plot_convergence
+from .couplings import plot_couplings
+from .kinetics import plot_lifetimes, plot_transition_diagram
+from .maps import plot_free_energy_map
+from .populations import comparison_populations, plot_populations
+from .profiles import plot_profile
+from .style import FORMATS, SINGLE_COLUMN_IN, _metadata, _width_in, style
+from .timeseries import plot_angle_series, plot_state_raster, read_angle_series, read_state_raster
+
+
+@dataclass
+class FigureItem:
+    """One figure of the set: a file stem, a caption, and the matplotlib figure."""
+
+    name: str
+    caption: str
+    figure: object
+    kind: str = ""
+
+
+@dataclass
+class FigureSet:
+    """The figures a folder can make, and a one-line note for each one it cannot."""
+
+    items: list = field(default_factory=list)
+    skipped: list = field(default_factory=list)
+
+
+def safe_name(name):
+    """A file-name-safe version of a torsion or type label."""
+    return re.sub(r"[^A-Za-z0-9+.=-]+", "_", str(name)).strip("_") or "x"
+
+
+def _figure(width_in, height_in):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width_in, height_in), layout="constrained")
+
+
+def _pick(values, chosen, limit):
+    """``chosen`` items that exist in ``values`` (all when ``chosen`` is None), at most ``limit``."""
+    values = list(dict.fromkeys(values))
+    if chosen:
+        return [v for v in values if v in set(chosen)]
+    return values[:limit]
+
+
+@dataclass
+class _Builder:
+    """What the figure families share while a set is built: the results, the width, the notes."""
+
+    result: object
+    width_in: float
+    say: object
+    out: FigureSet = field(default_factory=FigureSet)
+
+    @property
+    def folder(self):
+        return self.result.folder
+
+    @property
+    def scheme(self):
+        return self.result.scheme
+
+    def add(self, name, caption, figure, kind):
+        self.out.items.append(FigureItem(name, caption, figure, kind))
+
+    def skip(self, what, why):
+        self.out.skipped.append(f"{what}: {why}")
+        self.say(f"skipped {what}: {why}")
+
+
+def figure_set(folder, width="single", torsions=None, types=None, max_types=4, max_series=3, log=None):
+    """Build every figure the results folder has data for.
+
+    Parameters
+    ----------
+    folder : str
+        A results folder (``dihedra track`` plus whatever later steps wrote).
+    width : {"single", "double"}
+        Journal width of the figures (3.35 or 7 inches); the square ones (2-D maps, couplings)
+        are always one column wide.
+    torsions : list of str, optional
+        Torsion labels for the time-series figures (default: the first torsion of up to
+        ``max_series`` types) and the raster rows (default all).
+    types : list of str, optional
+        Types for the per-type figures (default: the first ``max_types`` of torsions.csv).
+    log : callable, optional
+        Receives one-line notes on what is skipped and why.
+
+    Returns
+    -------
+    FigureSet
+    """
+    from ...io.resultsdir import load_results
+
+    say = log or (lambda msg: None)
+    result = load_results(folder)
+    b = _Builder(result, _width_in(width), say)
+    chosen_types, series_torsions = _choose(result, torsions, types, max_types, max_series, say)
+    _add_angle_series(b, series_torsions[:max(max_series, len(torsions or []))])
+    _add_state_raster(b, torsions)
+    _add_profiles(b, chosen_types)
+    _add_populations(b, chosen_types)
+    _add_maps(b)
+    _add_kinetics(b, chosen_types)
+    _add_convergence(b, chosen_types)
+    _add_couplings(b)
+    return b.out
+
+
+def _choose(result, torsions, types, max_types, max_series, say):
+    """Check the chosen torsions and types; returns the types of the per-type figures and the
+    torsions of the time-series figures."""
+    folder = result.folder
+    all_types = list(dict.fromkeys(result.torsion_set.types))
+    labels = list(result.torsion_set.labels)
+    if torsions:
+        unknown = [t for t in torsions if t not in labels]
+        if unknown:
+            raise DihedraError(f"no torsion {unknown[0]!r} in {folder}; labels look like "
+                               f"{', '.join(labels[:3])} (see torsions.csv).")
+    if types:
+        unknown = [t for t in types if t not in all_types]
+        if unknown:
+            raise DihedraError(f"no torsion type {unknown[0]!r} in {folder}; its types are "
+                               f"{', '.join(all_types[:6])}.")
+    chosen_types = _pick(all_types, types, max_types)
+    if not types and len(all_types) > max_types:
+        say(f"note: per-type figures for the first {max_types} of {len(all_types)} types (choose with --types)")
+    series_torsions = list(torsions) if torsions else \
+        [labels[result.torsion_set.types.index(t)] for t in all_types[:max_series]]
+    return chosen_types, series_torsions
+
+
+def _add_angle_series(b, torsions):
+    """1. Angle time series: one panel per torsion, stacked."""
+    if not ParquetSeries(b.folder).has("angles"):
+        b.skip("angle time series", "no angles.parquet (track with --keep-angles)")
+        return
+    series = read_angle_series(b.folder, torsions)
+    n = len(series.torsions)
+    fig = _figure(b.width_in, 0.55 + 1.05 * n)
+    axes = fig.subplots(n, 1, sharex=True, squeeze=False)[:, 0]
+    for k, (ax, lab) in enumerate(zip(axes, series.torsions)):
+        plot_angle_series(series, b.scheme, lab, ax=ax, show_note=k == 0)
+        if k < n - 1:
+            ax.set_xlabel("")
+    b.add("angle_series", f"Angle time series of {n} torsion(s) with the state sectors "
+          f"as bands ({series.description}).", fig, "series")
+
+
+def _add_state_raster(b, torsions):
+    """2. State raster."""
+    if not ParquetSeries(b.folder).has("states"):
+        b.skip("state raster", "no states.parquet")
+        return
+    raster = read_state_raster(b.folder, torsions=torsions)
+    fig = _figure(b.width_in, 2.4 if len(raster.rows) <= 12 else 2.9)
+    plot_state_raster(raster, b.scheme, ax=fig.add_subplot())
+    b.add("state_raster", f"States of torsions against time ({raster.description}).", fig, "raster")
+
+
+def _add_profiles(b, chosen_types):
+    """3. Free-energy profiles, with the scan where the folder holds a comparison."""
+    profiles = read_optional(b.folder, "profiles.csv")
+    scan = read_optional(b.folder, "comparison_profiles.csv")
+    if profiles is None:
+        b.skip("free-energy profiles", "no profiles.csv (run 'dihedra profile')")
+        return
+    have = set(profiles["type"])
+    for t in [t for t in chosen_types if t in have]:
+        fig = _figure(b.width_in, 2.2)
+        plot_profile(profiles, b.scheme, t, scan=scan, ax=fig.add_subplot())
+        compared = scan is not None and "type" in scan.columns and t in set(scan["type"])
+        b.add(f"profile_{safe_name(t)}",
+              f"Free-energy profile of {t} (histogram estimate) with its bootstrap error band, state sectors "
+              f"shaded, unsampled bins hatched" + ("; dashed: the static scan's prediction, aligned." if compared
+                                                   else "."), fig, "profile")
+
+
+def _add_populations(b, chosen_types):
+    """4. Populations, with the scan's prediction and reference values where compared."""
+    comparison = read_optional(b.folder, "comparison.csv")
+    predicted, reference = comparison_populations(comparison)
+    fig = _figure(b.width_in, 2.3)
+    plot_populations(b.result.populations_by_type, b.scheme, types=chosen_types, predicted=predicted,
+                     experiment=reference, ax=fig.add_subplot())
+    extra = [x for x, tab in (("the scan's prediction", predicted), ("reference values", reference)) if len(tab)]
+    b.add("populations", "State populations per type with standard errors (sampled"
+          + (", " + " and ".join(extra) if extra else "") + ").", fig, "populations")
+    if comparison is None:
+        b.skip("scan-predicted populations", "no comparison.csv (run 'dihedra compare')")
+
+
+def _add_maps(b):
+    """5. 2-D free-energy maps, one per pair (square: always one column wide)."""
+    maps = read_optional(b.folder, "profiles_2d.csv")
+    if maps is None or not len(maps):
+        b.skip("2-D free-energy maps", "no profiles_2d.csv (run 'dihedra profile --pair A B')")
+        return
+    for a, c in list(dict.fromkeys(zip(maps["torsion_a"], maps["torsion_b"]))):
+        fig = _figure(SINGLE_COLUMN_IN, SINGLE_COLUMN_IN * 0.82 + 0.25)  # square maps: one column
+        plot_free_energy_map(maps, (a, c), ax=fig.add_subplot())
+        b.add(f"free_energy_map_{safe_name(a)}__{safe_name(c)}",
+              f"2-D free-energy map of {a} and {c} (periodic axes).", fig, "map")
+
+
+def _add_kinetics(b, chosen_types):
+    """6./7. Transition diagrams and lifetimes per type."""
+    transitions = read_optional(b.folder, "transitions.csv")
+    lifetimes = read_optional(b.folder, "lifetimes.csv")
+    dwell = read_optional(b.folder, "dwell_times.csv")
+    if transitions is None or lifetimes is None:
+        b.skip("transition diagrams and lifetimes", "no transitions.csv / lifetimes.csv (run 'dihedra kinetics')")
+        return
+    have = set(lifetimes.loc[lifetimes["level"] == "type", "name"])
+    for t in [t for t in chosen_types if t in have]:
+        fig = _figure(b.width_in, 2.6)
+        plot_transition_diagram(transitions, lifetimes, t, level="type", scheme=b.scheme, ax=fig.add_subplot())
+        b.add(f"transitions_{safe_name(t)}",
+              f"Transitions between the states of {t}: node area ~ population, arrow "
+              "width ~ rate constant (per ps).", fig, "transitions")
+        fig = _figure(b.width_in, 2.3)
+        plot_lifetimes(lifetimes, t, level="type", scheme=b.scheme, dwell_times=dwell, ax=fig.add_subplot())
+        b.add(f"lifetimes_{safe_name(t)}",
+              f"Dwell times of the states of {t} on a log axis with the exponential "
+              "expected from the rates.", fig, "lifetimes")
+    if dwell is None:
+        b.say("note: lifetimes figures show the observed mean and median on the exponential from the rates "
+              "(the folder stores no dwell-time distribution)")
+
+
+def _add_convergence(b, chosen_types):
+    """8. Convergence per type (not for umbrella windows: each window is biased)."""
+    kind = str(b.result.summary.get("kind", ""))
+    if "window" in kind:
+        b.skip("convergence", f"a folder of {kind}: every window is biased, so its running populations are not "
+                              "the unbiased ones")
+        return
+    for t in chosen_types:
+        fig = _figure(b.width_in, 2.2)
+        plot_convergence(b.result, t, ax=fig.add_subplot())
+        b.add(f"convergence_{safe_name(t)}",
+              f"Convergence of the state populations of {t}: running population per "
+              "replica against simulation time, with the final value ± 1 standard error.", fig, "convergence")
+
+
+def _add_couplings(b):
+    """9. Couplings against experiment (rows with a prediction)."""
+    couplings = read_optional(b.folder, "couplings_vs_experiment.csv")
+    if couplings is not None and "j_hz" in couplings.columns:
+        couplings = couplings[np.isfinite(pd.to_numeric(couplings["j_hz"], errors="coerce"))]
+    if couplings is None or not len(couplings):
+        b.skip("couplings", "no couplings_vs_experiment.csv (run 'dihedra couplings --experimental FILE')")
+        return
+    fig = _figure(min(b.width_in, SINGLE_COLUMN_IN), 3.3)
+    plot_couplings(couplings, ax=fig.add_subplot())
+    b.add("couplings", "Predicted against experimental 3J couplings with error bars and "
+          "the identity line.", fig, "couplings")
+
+
+def write_figures(folder, formats=("pdf", "png"), width="single", torsions=None, types=None, out_dir=None,
+                  log=None):
+    """Write every figure the folder has data for into ``out_dir`` (default ``folder/figures``).
+
+    Returns
+    -------
+    (paths, skipped) : list of str, list of str
+    """
+    fmts = _formats(formats)
+    # into the results folder's figures/ (replacing figures dihedra drew there before), or into
+    # out_dir (never over an existing file)
+    base, sub = (os.fspath(folder), "figures/") if out_dir is None else (os.fspath(out_dir), "")
+    paths = []
+    with style():
+        fset = figure_set(folder, width=width, torsions=torsions, types=types, log=log)
+        os.makedirs(base, exist_ok=True)
+        for item in fset.items:
+            for f in fmts:
+                def save(tmp, fig=item.figure, fmt=f):
+                    fig.savefig(tmp, format=fmt, dpi=300 if fmt == "png" else None, metadata=_metadata(fmt))
+                paths.append(write_file(base, f"{sub}{item.name}.{f}", save))
+    return paths, fset.skipped
+
+
+def _formats(formats):
+    """File formats from a comma-separated string or a list (checked against :data:`FORMATS`)."""
+    fmts = [f.strip().lower().lstrip(".") for f in (formats.split(",") if isinstance(formats, str) else formats)]
+    fmts = [f for f in fmts if f]
+    for f in fmts:
+        one_of("figure format", f, FORMATS)
+    if not fmts:
+        raise DihedraError("give at least one figure format (pdf, png or svg).")
+    return fmts

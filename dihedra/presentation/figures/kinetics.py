@@ -1,0 +1,285 @@
+r"""Figures 6 and 7: the transition diagram and the dwell times (lifetimes) of the states.
+
+References
+----------
+E. L. Kaplan & P. Meier, J. Am. Stat. Assoc. 53 (1958) 457 (survival curves of dwell times).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ...errors import DihedraError, one_of
+from .common import _new_axes, _note
+from .style import CYCLIC_PALETTE, INK, NEUTRAL, state_colours
+
+# ----------------------------------------------------------------------------------------------
+# 6. Transition diagram
+# ----------------------------------------------------------------------------------------------
+
+
+def plot_transition_diagram(transitions, lifetimes, name, level="type", weight="rate", scheme=None, ax=None,
+                            max_states=8, min_population=0.002):
+    """Figure 6: states as nodes sized by population, arrows weighted by rates (or counts).
+
+    Parameters
+    ----------
+    transitions, lifetimes : DataFrame
+        ``transitions.csv`` and ``lifetimes.csv`` of ``dihedra kinetics``.
+    name : str
+        The torsion label, type or conformer type (column ``name``).
+    level : {"type", "torsion", "conformer"}
+    weight : {"rate", "count"}
+        Arrow widths in proportion to the rate constant ``rate_per_ps`` or to ``count``; each
+        arrow is labelled with its value.
+    scheme : StateScheme, optional
+        For the state colours (states outside the scheme, such as conformers, are grey).
+    max_states : int
+        At most this many (most populated) states are drawn; the rest is stated on the figure.
+    min_population : float
+        States below this population (``population_counted``) are left out.
+
+    Returns
+    -------
+    Axes
+    """
+    one_of("arrow weight", weight, ("rate", "count"))
+    ax = _new_axes(ax, height_in=2.6)
+    lt = lifetimes[(lifetimes["level"] == level) & (lifetimes["name"] == name)]
+    tr = transitions[(transitions["level"] == level) & (transitions["name"] == name)]
+    if not len(lt):
+        raise DihedraError(f"lifetimes.csv has no {level} {name!r}.")
+    if "population_counted" in lt.columns:
+        pops = dict(zip(lt["state"], lt["population_counted"].astype(float)))
+    else:
+        pops = {s: 1.0 / len(lt) for s in lt["state"]}
+    states = [s for s in sorted(pops, key=lambda s: -pops[s]) if pops[s] >= min_population][:max_states]
+    if scheme is not None and set(states) <= set(scheme.labels):
+        states = [s for s in scheme.labels if s in states]
+    left_out = len(pops) - len(states)
+    colours = state_colours(scheme) if scheme is not None else {}
+    pos, radius = _node_layout(states, pops)
+    tr = tr[tr["from_state"].isin(states) & tr["to_state"].isin(states) & (tr["count"] > 0)]
+    _draw_arrows(ax, tr, pos, radius, weight)
+    xs, ys = _draw_nodes(ax, states, pos, radius, pops, colours)
+    ax.set_aspect("equal")
+    if xs:
+        ax.set_xlim(min(xs) - 0.55, max(xs) + 0.55)
+        ax.set_ylim(min(ys) - 0.3, max(ys) + 0.3)
+    ax.axis("off")
+    what = r"rate constant $\mathit{k}$ / ps$^{-1}$" if weight == "rate" else "transition count"
+    note = f"{name}. Arrows: {what}; nodes: population (area)"
+    if left_out:
+        note += f"; {left_out} rarer state(s) not drawn"
+    _note(ax, note)
+    return ax
+
+
+def _node_layout(states, pops):
+    """Node centres on a circle (the first state at the top, clockwise) and radii (area ~ population)."""
+    n = len(states)
+    angles = np.pi / 2 - 2 * np.pi * np.arange(n) / max(n, 1)
+    pos = {s: (np.array([np.cos(a), np.sin(a)]) if n > 1 else np.zeros(2)) for s, a in zip(states, angles)}
+    pmax = max((pops[s] for s in states), default=1.0)
+    r_min, r_max = 0.08, (0.30 if n > 4 else 0.36)
+    radius = {s: r_min + (r_max - r_min) * np.sqrt(pops[s] / pmax) for s in states}
+    return pos, radius
+
+
+def _draw_arrows(ax, tr, pos, radius, weight, bend=0.3):
+    """One curved arrow per observed transition, its width in proportion to the rate (or count), labelled."""
+    from matplotlib.patches import FancyArrowPatch
+
+    wcol = "rate_per_ps" if weight == "rate" else "count"
+    wmax = float(tr[wcol].max()) if len(tr) else 1.0
+    for row in tr.itertuples(index=False):
+        a, b = pos[row.from_state], pos[row.to_state]
+        d = b - a
+        dist = float(np.linalg.norm(d))
+        if dist == 0:
+            continue
+        u = d / dist
+        p0 = a + u * (radius[row.from_state] + 0.04)
+        p1 = b - u * (radius[row.to_state] + 0.04)
+        w = float(getattr(row, wcol))
+        lw = 0.5 + 2.6 * w / wmax if wmax > 0 else 0.5
+        ax.add_patch(FancyArrowPatch(
+            p0, p1, connectionstyle=f"arc3,rad={bend}", lw=lw, color=INK, alpha=0.85, zorder=2,
+            arrowstyle=f"-|>,head_length={2.2 + 0.8 * lw:.1f},head_width={1.3 + 0.5 * lw:.1f}",
+            shrinkA=0, shrinkB=0))
+        dd = p1 - p0
+        mid = (p0 + p1) / 2 + 0.5 * bend * np.array([dd[1], -dd[0]])
+        ax.text(mid[0], mid[1], f"{w:.2g}" if weight == "rate" else f"{int(w)}", fontsize=5.5, ha="center",
+                va="center", color=INK, zorder=4,
+                bbox={"facecolor": "white", "edgecolor": "none", "pad": 0.3, "alpha": 0.9})
+
+
+def _draw_nodes(ax, states, pos, radius, pops, colours):
+    """The state circles with their name and population outside; returns the x and y extents."""
+    from matplotlib.patches import Circle
+
+    n = len(states)
+    xs, ys = [], []
+    for s in states:
+        c = colours.get(s, "#BFC6CC")
+        ax.add_patch(Circle(pos[s], radius[s], facecolor=c, edgecolor=INK, lw=0.6, zorder=3))
+        outward = pos[s] / (np.linalg.norm(pos[s]) or 1.0) if n > 1 else np.array([0.0, 1.0])
+        lp = pos[s] + outward * (radius[s] + 0.07)
+        ha = "center" if abs(outward[0]) < 0.3 else ("left" if outward[0] > 0 else "right")
+        va = "center" if abs(outward[1]) < 0.3 else ("bottom" if outward[1] > 0 else "top")
+        ax.text(lp[0], lp[1], f"{s}\n{pops[s]:.2f}", fontsize=6, ha=ha, va=va, color=INK, zorder=4,
+                linespacing=1.05, multialignment="center")
+        xs += [pos[s][0] - radius[s], pos[s][0] + radius[s]]
+        ys += [pos[s][1] - radius[s], pos[s][1] + radius[s]]
+    return xs, ys
+
+
+# ----------------------------------------------------------------------------------------------
+# 7. Lifetimes
+# ----------------------------------------------------------------------------------------------
+
+#: Line style of the exponentials expected from the rates.
+_DASHED = (0, (3.5, 1.5))
+
+
+def survival_curve(dwell_ps, n_complete, n_censored):
+    """Kaplan-Meier survival S(t) of dwell times with right-censoring (a display transform).
+
+    Parameters
+    ----------
+    dwell_ps : array
+        Dwell times of the segments (one entry per distinct length).
+    n_complete, n_censored : array
+        Complete and censored segments of each length.
+
+    Returns
+    -------
+    (t, S) with S(t) just after each t (ties: events before censorings).
+    """
+    d = np.asarray(dwell_ps, dtype=float)
+    e = np.asarray(n_complete, dtype=float)
+    c = np.asarray(n_censored, dtype=float)
+    order = np.argsort(d)
+    d, e, c = d[order], e[order], c[order]
+    at_risk = np.cumsum((e + c)[::-1])[::-1]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        h = np.where(at_risk > 0, e / at_risk, 0.0)
+    return d, np.cumprod(1.0 - h)
+
+
+def _observed_survival(dwell, state):
+    """The observed survival ``(t, S)`` of one state from a dwell-time table (level, name, state,
+    dwell_ps, n_complete, n_censored, already cut to one level and name), or ``None`` when the
+    table has no row of ``state``.
+
+    The Kaplan-Meier curve is computed here from the dwell-time counts (:func:`survival_curve`);
+    this is the one place to change when the kinetics result carries the curve as a table.
+    """
+    part = dwell[dwell["state"] == state]
+    if not len(part):
+        return None
+    return survival_curve(part["dwell_ps"], part["n_complete"], part["n_censored"])
+
+
+def plot_lifetimes(lifetimes, name, level="type", scheme=None, dwell_times=None, ax=None, legend=True):
+    """Figure 7: dwell times (lifetimes) of each state on a log axis, with the exponential expected
+    from the rates.
+
+    The dashed line of each state is ``S(t) = exp(-t / tau)``, the fraction of visits still in the
+    state after ``t`` if leaving it were memoryless at the total exit rate of the Markov rates,
+    ``tau = mean_from_rates_ps``. With a dwell-time table (``dwell_times``: level, name, state,
+    dwell_ps, n_complete, n_censored) the observed Kaplan-Meier survival is drawn as steps.
+    Without one, the observed dwell-time summaries of ``lifetimes.csv`` are placed where an
+    exponential has them: the median at S = 1/2 and the mean (with its 95 % bootstrap interval) at
+    S = 1/e; on the dashed line means memoryless, left of it means faster first exits.
+
+    Returns
+    -------
+    Axes
+    """
+    from matplotlib.lines import Line2D
+
+    ax = _new_axes(ax)
+    lt = lifetimes[(lifetimes["level"] == level) & (lifetimes["name"] == name)]
+    if not len(lt):
+        raise DihedraError(f"lifetimes.csv has no {level} {name!r}.")
+    colours = state_colours(scheme) if scheme is not None else {}
+    order = [s for s in (scheme.labels if scheme is not None else []) if s in set(lt["state"])]
+    order += [s for s in dict.fromkeys(lt["state"]) if s not in order]
+    dwell = None
+    if dwell_times is not None and len(dwell_times):
+        dwell = dwell_times[(dwell_times["level"] == level) & (dwell_times["name"] == name)]
+        dwell = dwell if len(dwell) else None
+    handles, tmax = [], 0.0
+    for k, s in enumerate(order):
+        row = lt[lt["state"] == s].iloc[0]
+        c = colours.get(s, CYCLIC_PALETTE[k % len(CYCLIC_PALETTE)])
+        tau = float(row.get("mean_from_rates_ps", np.nan))
+        ends = [3.0 * tau] if np.isfinite(tau) else []
+        curve = _observed_survival(dwell, s) if dwell is not None else None
+        ends += _draw_survival(ax, *curve, c) if curve is not None else _draw_summaries(ax, row, c)
+        if np.isfinite(tau) and tau > 0:
+            end = max(ends)
+            tt = np.linspace(0, end * 1.05, 200)
+            ax.plot(tt, np.exp(-tt / tau), color=c, lw=0.9, ls=_DASHED, zorder=2)
+        tmax = max([tmax] + ends)
+        handles.append(Line2D([], [], color=c, lw=0.9, ls=_DASHED,
+                              label=rf"{s}, $\tau$ = {tau:.3g} ps" if np.isfinite(tau) else s))
+    handles += _observed_handles(dwell is not None)
+    _survival_axes(ax, tmax)
+    note = rf"{name}. Dashed: exp($-t/\tau$), $\tau$ = 1 / (total exit rate)"
+    if legend:
+        ax.legend(handles=handles, loc="upper right", fontsize=5.8, handlelength=2.0, borderaxespad=0.2)
+    _note(ax, note)
+    return ax
+
+
+def _draw_survival(ax, t, surv, colour):
+    """The observed survival as steps; returns where it should end on the time axis (S >= 0.02)."""
+    ok = surv > 0
+    ax.step(np.r_[0.0, t[ok]], np.r_[1.0, surv[ok]], where="post", color=colour, lw=1.0, zorder=3)
+    return [float(t[surv >= 0.02].max()) if (surv >= 0.02).any() else float(t.max())]
+
+
+def _draw_summaries(ax, row, colour):
+    """The observed mean (with its 95 % interval) at S = 1/e and the median at S = 1/2 of one
+    state's ``lifetimes.csv`` row; returns the times the axis should reach."""
+    ends = []
+    mean, med = float(row.get("mean_ps", np.nan)), float(row.get("median_ps", np.nan))
+    lo, hi = float(row.get("ci_low_ps", np.nan)), float(row.get("ci_high_ps", np.nan))
+    if np.isfinite(mean):
+        xerr = [[max(mean - lo, 0.0)], [max(hi - mean, 0.0)]] if np.isfinite(lo) and np.isfinite(hi) \
+            else None
+        ax.errorbar([mean], [np.exp(-1.0)], xerr=xerr, fmt="o", ms=3.4, color=colour, mec=INK, mew=0.4,
+                    elinewidth=0.9, capsize=1.6, zorder=4)
+        ends.append(hi if np.isfinite(hi) else mean)
+    if np.isfinite(med):
+        ax.plot([med], [0.5], marker="s", ms=3.2, color="white", mec=colour, mew=1.1, ls="none", zorder=4)
+        ends.append(med)
+    return ends
+
+
+def _observed_handles(have_curves):
+    """Legend entries of what was observed: the survival curves, or the mean and median markers."""
+    from matplotlib.lines import Line2D
+
+    if have_curves:
+        return [Line2D([], [], color=NEUTRAL, lw=1.0, label="observed (Kaplan-Meier)")]
+    return [Line2D([], [], color=NEUTRAL, marker="o", ms=3.4, mec=INK, mew=0.4, ls="none",
+                   label="observed mean, 95% CI (at 1/e)"),
+            Line2D([], [], color="white", marker="s", ms=3.2, mec=NEUTRAL, mew=1.1, ls="none",
+                   label="observed median (at 1/2)")]
+
+
+def _survival_axes(ax, tmax):
+    """Log axis of the surviving fraction (0.02 to 1) against the dwell time (0 to ``tmax``)."""
+    from matplotlib.ticker import FixedLocator, FuncFormatter, NullLocator
+
+    ax.set_yscale("log")
+    ax.set_ylim(0.02, 1.2)
+    ax.yaxis.set_major_locator(FixedLocator([0.02, 0.05, 0.1, 0.2, 0.5, 1.0]))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    ax.yaxis.set_minor_locator(NullLocator())
+    ax.set_xlim(0, tmax * 1.05 if tmax > 0 else 1)
+    ax.set_xlabel(r"dwell time $\mathit{t}$ / ps")
+    ax.set_ylabel(r"fraction still in state, $\mathit{S}(\mathit{t})$")

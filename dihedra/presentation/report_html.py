@@ -1,0 +1,209 @@
+"""The building blocks of the HTML report: its style sheet, and small helpers that turn values,
+tables, notes and figures into HTML (every value escaped; figures as SVG ``data:`` URIs)."""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+
+import numpy as np
+import pandas as pd
+
+#: Rows shown of long tables (the full table is in the folder).
+MAX_ROWS = 60
+
+_CSS = """
+:root { --ink: #22303C; --muted: #5E6B76; --rule: #D5DCE1; --band: #F3F6F8; --accent: #0072B2;
+        --warn: #D55E00; --caution: #8A5A00; }
+* { box-sizing: border-box; }
+html { font-size: 15px; }
+body { margin: 0; color: var(--ink); background: #FFFFFF;
+       font-family: "DejaVu Sans", "Segoe UI", "Helvetica Neue", Arial, sans-serif; line-height: 1.45; }
+header.top { background: var(--ink); color: #FFFFFF; padding: 1.4rem 2rem 1.1rem; }
+header.top h1 { margin: 0 0 0.3rem; font-size: 1.55rem; font-weight: 600; letter-spacing: 0.01em; }
+header.top p { margin: 0.1rem 0; color: #D8E0E6; font-size: 0.9rem; }
+nav { padding: 0.6rem 2rem; border-bottom: 1px solid var(--rule); font-size: 0.88rem; }
+nav a { color: var(--accent); text-decoration: none; margin-right: 1.1rem; white-space: nowrap; }
+main { max-width: 1120px; padding: 0 2rem 3rem; }
+section { margin-top: 2.2rem; }
+h2 { font-size: 1.25rem; border-bottom: 2px solid var(--ink); padding-bottom: 0.2rem; margin: 0 0 0.8rem; }
+h3 { font-size: 1.02rem; margin: 1.4rem 0 0.5rem; }
+h4 { font-size: 0.95rem; margin: 1.1rem 0 0.4rem; }
+p.lead { color: var(--muted); margin-top: 0; }
+table { border-collapse: collapse; margin: 0.4rem 0 1rem; font-size: 0.85rem; }
+th, td { padding: 0.22rem 0.65rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top;
+         overflow-wrap: anywhere; }
+th { background: var(--band); font-weight: 600; }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td.hash { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.78rem; }
+tr:nth-child(even) td { background: #FAFBFC; }
+.kv th { width: 16rem; }
+.note-list, .caution-list { padding-left: 1.2rem; margin: 0.3rem 0 1rem; }
+.callout { border-left: 4px solid var(--accent); background: var(--band); padding: 0.6rem 1rem;
+           margin: 0.8rem 0 1rem; }
+.callout.caution { border-left-color: var(--caution); }
+.callout h4 { margin: 0 0 0.3rem; font-size: 0.92rem; }
+.verdict { display: inline-block; padding: 0.05rem 0.5rem; border-radius: 0.7rem; font-weight: 600;
+           font-size: 0.8rem; border: 1px solid currentColor; white-space: nowrap; overflow-wrap: normal; }
+.v-consistent { color: #005C8F; background: #E5F1F8; }
+.v-inconsistent { color: #A34400; background: #FBEDE3; }
+.v-undersampled, .v-tension, .v-other { color: #6B4F00; background: #FBF4DF; }
+.scroll { overflow-x: auto; max-width: 100%; }
+.figs { display: flex; flex-wrap: wrap; gap: 0.4rem 2.2rem; align-items: flex-start; }
+figure { margin: 1rem 0 1.2rem; max-width: 100%; }
+figure img { display: block; width: calc(var(--w) * 1.45); max-width: 100%; height: auto; }
+figcaption { font-size: 0.84rem; color: var(--muted); max-width: calc(var(--w) * 1.45); margin-top: 0.35rem; }
+pre { background: var(--band); padding: 0.7rem 0.9rem; overflow-x: auto; font-size: 0.8rem; }
+.missing { color: var(--muted); }
+footer { color: var(--muted); font-size: 0.8rem; border-top: 1px solid var(--rule); margin-top: 3rem;
+         padding-top: 0.6rem; }
+@media print {
+  @page { size: A4; margin: 14mm 13mm; }
+  html { font-size: 10pt; }
+  nav { display: none; }
+  header.top { background: none; color: var(--ink); padding: 0 0 0.4rem; border-bottom: 2px solid var(--ink); }
+  header.top p { color: var(--muted); }
+  main { padding: 0; max-width: none; }
+  section { break-before: auto; }
+  h2, h3, h4 { break-after: avoid; }
+  figure, .callout, tr { break-inside: avoid; }
+  figure img { width: var(--w); }
+  figcaption { max-width: var(--w); }
+  .scroll { overflow: visible; }
+  tr:nth-child(even) td { background: none; }
+}
+"""
+
+
+# ----------------------------------------------------------------------------------------------
+# Small HTML helpers
+# ----------------------------------------------------------------------------------------------
+
+def _e(value):
+    return html.escape("" if value is None else str(value))
+
+
+
+def _fmt(value):
+    """A value for a table cell: NaN as an en dash, very small or large numbers in exponent form."""
+    if value is None:
+        return "–"
+    if isinstance(value, (bool, np.bool_)):
+        return "yes" if value else "no"
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    if isinstance(value, (float, np.floating)):
+        v = float(value)
+        a = abs(v)
+        if not np.isfinite(v):
+            return "–"
+        if a == 0:
+            return "0"
+        if a < 1e-3 or a >= 1e7:
+            return f"{v:.3e}"
+        return f"{v:.6g}" if a >= 1 else f"{v:.4g}"  # as many digits as the CSV files keep
+    text = str(value)
+    return "–" if text in ("nan", "None", "") else text
+
+
+def _pm(value, err, digits=3):
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return "–"
+    if not np.isfinite(value):
+        return "–"
+    value += 0.0  # no "-0.000"
+    try:
+        err = float(err)
+    except (TypeError, ValueError):
+        err = np.nan
+    if not np.isfinite(err):
+        return f"{float(value):.{digits}f}"
+    return f"{float(value):.{digits}f} ± {float(err):.{digits}f}"
+
+
+def _table(frame, columns=None, headers=None, max_rows=MAX_ROWS, what="rows", raw=()):
+    """An HTML table of a DataFrame (numbers right-aligned); longer tables are cut with a note."""
+    if frame is None or not len(frame):
+        return "<p class='missing'>(empty)</p>"
+    columns = list(columns or frame.columns)
+    headers = list(headers or columns)
+    out = ["<div class='scroll'><table><thead><tr>"]
+    sample = frame.head(max_rows)
+    numeric = {c: pd.api.types.is_numeric_dtype(frame[c]) and not pd.api.types.is_bool_dtype(frame[c])
+               for c in columns}
+    for c, h in zip(columns, headers):
+        out.append(f"<th class='{'num' if numeric[c] else ''}'>{_e(h)}</th>")
+    out.append("</tr></thead><tbody>")
+    for row in sample[columns].itertuples(index=False):
+        out.append("<tr>")
+        for c, v in zip(columns, row):
+            cell = v if c in raw else _e(_fmt(v))
+            out.append(f"<td class='{'num' if numeric[c] else ''}'>{cell}</td>")
+        out.append("</tr>")
+    out.append("</tbody></table></div>")
+    if len(frame) > max_rows:
+        out.append(f"<p class='missing'>First {max_rows} of {len(frame)} {what}; the full table is in the folder.</p>")
+    return "".join(out)
+
+
+def _pooled(table):
+    """Rows of the pooled (per type) profiles of a table (``torsion`` empty)."""
+    if table is None or "torsion" not in table.columns:
+        return table
+    return table[table["torsion"].fillna("").astype(str) == ""].copy()
+
+
+def _pm_columns(frame, value, err, digits=3):
+    if value not in frame.columns:
+        return ["–"] * len(frame)
+    errs = frame[err] if err in frame.columns else [np.nan] * len(frame)
+    return [_pm(v, e, digits) for v, e in zip(frame[value], errs)]
+
+
+def _kv(pairs):
+    rows = "".join(f"<tr><th>{_e(k)}</th><td>{_e(_fmt(v))}</td></tr>" for k, v in pairs if v is not None)
+    return f"<table class='kv'><tbody>{rows}</tbody></table>"
+
+
+def _callout(title, items, kind="note"):
+    items = [i for i in items if i]
+    if not items:
+        return ""
+    lis = "".join(f"<li>{_e(i)}</li>" for i in items)
+    return f"<div class='callout {kind}'><h4>{_e(title)}</h4><ul class='note-list'>{lis}</ul></div>"
+
+
+def _verdict(text):
+    known = {"consistent", "inconsistent", "undersampled", "tension"}
+    cls = f"v-{text}" if text in known else "v-other"
+    return f"<span class='verdict {cls}'>{_e(text)}</span>"
+
+
+def _missing(section_id, title, what, command):
+    """A section that says what the folder lacks and which command makes it."""
+    return (f"<section id='{section_id}'><h2>{_e(title)}</h2><p class='missing'>No {_e(what)} in this folder "
+            f"(run <code>{_e(command)}</code>).</p></section>")
+
+
+def figure_data_uri(fig):
+    """A matplotlib figure as an SVG ``data:`` URI (text drawn as paths; no fonts needed)."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None})
+    return "data:image/svg+xml;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _figure_html(item):
+    w = item.figure.get_figwidth()
+    return (f"<figure id='fig-{_e(item.name)}' style='--w: {w:.2f}in'><img alt='{_e(item.caption)}' "
+            f"src='{figure_data_uri(item.figure)}'><figcaption>{_e(item.caption)}</figcaption></figure>")
+
+
+def _figures_html(items):
+    """Figures side by side where the page is wide enough."""
+    if not items:
+        return ""
+    return "<div class='figs'>" + "".join(_figure_html(i) for i in items) + "</div>"
+
