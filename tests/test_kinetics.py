@@ -385,7 +385,7 @@ def test_in_memory_result_equals_folder(tmp_path):
     a = state_kinetics(memory, **options)
     b = state_kinetics(load_results(out), **options)
     assert memory.folder is None and a.transitions["count"].sum() > 0
-    assert (a.lifetimes["level"] == "conformer").any() and len(a.dwell_times)
+    assert (a.lifetimes["level"] == "conformer").any() and len(a.dwell_survival)
     for name in TABLE_COLUMNS:
         pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
     assert a.notices == b.notices
@@ -448,8 +448,8 @@ def test_custom_scheme_and_file_output(tmp_path):
     crisp = folder_kinetics(out, assignment="crisp", lags=[1], n_bootstrap=0).transitions
     assert crisp.loc[crisp["level"] == "torsion", "count"].sum() == 4
     names = set(os.listdir(out))
-    expected = {"transitions.csv", "lifetimes.csv", "dwell_times.csv", "timescales.csv", "mfpt.csv",
-                "kinetics.json"}
+    expected = {"transitions.csv", "lifetimes.csv", "dwell_times.csv", "dwell_survival.csv", "timescales.csv",
+                "mfpt.csv", "kinetics.json"}
     assert expected <= names
     assert {os.path.basename(p) for p in written} == expected
     assert all(os.path.dirname(p) == out for p in written)
@@ -496,3 +496,26 @@ def test_dwell_time_table_counts_segments_and_censoring():
     assert dwell.loc[("b", 2.0)].tolist() == [0, 1]   # last segment, 1 frame
     assert len(dwell) == 4
 
+
+def test_dwell_survival_is_the_kaplan_meier_product_limit():
+    # Kaplan & Meier, J. Am. Stat. Assoc. 53 (1958) 457: S(t) = prod over the distinct dwell times
+    # t_i <= t of (1 - d_i / Y_i), a censored segment at risk up to its length (ties: events first).
+    # Worked by hand for state a: complete dwells of 1, 2, 2 and 4 frames and one censored at 3 (the
+    # last segment of the second trajectory): S = 4/5, 4/5 * 2/4, unchanged, 0.
+    first = np.array([1, 0, 1, 0, 0, 1, 0, 0, 0, 0, 1])
+    second = np.array([1, 0, 0, 1, 0, 0, 0])
+    tables = analyse_state_series([first, second], ["a", "b"], dt_ps=1.0, lags=[1], n_bootstrap=0)
+    surv = tables["dwell_survival"]
+    a = surv[surv["state"] == "a"]
+    assert a["time_ps"].tolist() == [1.0, 2.0, 3.0, 4.0]
+    assert a["n_at_risk"].tolist() == [5, 4, 2, 1]
+    assert a["survival"].to_numpy() == pytest.approx([0.8, 0.4, 0.4, 0.0], abs=1e-12)
+    # the restricted mean is the area under this curve (1 + 0.8 + 0.4 + 0.4 frames) and the median the
+    # first dwell time with S <= 1/2 (Kaplan & Meier 1958; Klein & Moeschberger, Survival Analysis, 2003)
+    life = tables["lifetimes"].set_index("state")
+    assert life.loc["a", "mean_ps"] == pytest.approx(2.6, rel=1e-12)
+    assert life.loc["a", "median_ps"] == 2.0
+    # one curve point per row of the dwell-time distribution
+    dwell = tables["dwell_times"]
+    assert surv[["level", "name", "state"]].equals(dwell[["level", "name", "state"]])
+    assert surv["time_ps"].tolist() == dwell["dwell_ps"].tolist()

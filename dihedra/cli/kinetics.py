@@ -17,8 +17,8 @@ def register(sub):
         description="Transitions between torsion states and conformers, dwell times with bootstrap "
                     "intervals, rate constants with errors, reversible Markov models (implied timescales, "
                     "mean first-passage times) and Eyring barriers, from a folder written by "
-                    "'dihedra track'. Writes transitions.csv, lifetimes.csv, timescales.csv, mfpt.csv and "
-                    "kinetics.json into the folder.",
+                    "'dihedra track'. Writes transitions.csv, lifetimes.csv, dwell_times.csv, "
+                    "dwell_survival.csv, timescales.csv, mfpt.csv and kinetics.json into the folder.",
         epilog="Core assignment (default) needs angles.parquet: run 'dihedra track ... --keep-angles'.")
     p.add_argument("folder", metavar="DIR", help="results folder of 'dihedra track'")
     p.add_argument("--assignment", choices=ASSIGNMENTS, default="core",

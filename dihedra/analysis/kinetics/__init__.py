@@ -71,7 +71,10 @@ Kaplan-Meier variance of the restricted mean, ``se^2 = sum_i A_i^2 d_i / (Y_i (Y
 complete ones ending there; Klein & Moeschberger, *Survival Analysis*, 2003, sect. 4.5), because a
 bootstrap of 1000 Kaplan-Meier curves per state of each of 10^4 torsions costs minutes
 (``--torsion-bootstrap`` bootstraps them too; ``kinetics.json`` records which). The Markov reading,
-``mean_from_rates_ps = T_i / sum_j n_ij = 1 / sum_j k_ij``, is reported next to it.
+``mean_from_rates_ps = T_i / sum_j n_ij = 1 / sum_j k_ij``, is reported next to it. For the pooled
+rows the observed dwell-time distribution (``dwell_times``) and its Kaplan-Meier survival curve
+(``dwell_survival``: ``S`` just after each distinct dwell time, with the segments at risk) are
+tables of their own.
 
 Markov state model
 ------------------

@@ -30,7 +30,8 @@ from .tally import _dense_counts, tally_result
 
 #: The tables of a :class:`KineticsResult` and their files, in the order they are written.
 TABLE_FILES = (("transitions", "transitions.csv"), ("lifetimes", "lifetimes.csv"),
-               ("dwell_times", "dwell_times.csv"), ("timescales", "timescales.csv"), ("mfpt", "mfpt.csv"))
+               ("dwell_times", "dwell_times.csv"), ("dwell_survival", "dwell_survival.csv"),
+               ("timescales", "timescales.csv"), ("mfpt", "mfpt.csv"))
 
 
 @dataclass
@@ -45,6 +46,12 @@ class KineticsResult:
     dwell_times : DataFrame
         ``dwell_times.csv``: the observed dwell-time distribution per type and conformer type
         (level, name, type, state, dwell_ps, n_complete, n_censored).
+    dwell_survival : DataFrame
+        ``dwell_survival.csv``: the Kaplan-Meier survival curves of the same dwell times (level,
+        name, type, state, time_ps, survival, n_at_risk): one row per distinct dwell time of a
+        state, ``survival`` the fraction of visits still in the state just after ``time_ps``
+        (events before censorings at ties; ``S = 1`` before the first row), ``n_at_risk`` the
+        visits (complete or censored) that lasted at least ``time_ps``.
     parameters : dict
         Assignment, core margin, lags, time step and temperature with their sources.
     notices : list of str
@@ -57,6 +64,7 @@ class KineticsResult:
     timescales: pd.DataFrame
     mfpt: pd.DataFrame
     dwell_times: pd.DataFrame
+    dwell_survival: pd.DataFrame
     parameters: dict
     notices: list = field(default_factory=list)
     run_seconds: float | None = None

@@ -149,7 +149,8 @@ def kaplan_meier_groups(group_start, durations, events, censored):
     restricted mean from its Kaplan-Meier variance, sum_i A_i^2 d_i / (Y_i (Y_i - d_i)) with A_i
     the area under S beyond duration i, Y_i the segments at risk and d_i the complete ones there;
     Klein & Moeschberger, Survival Analysis (2003), section 4.5), ``restricted`` (the longest
-    segment is censored).
+    segment is censored); and, per row, the curve itself: ``survival`` (S just after the
+    duration; ties: events before censorings) and ``at_risk`` (segments at least that long).
     """
     d = np.asarray(durations, dtype=float)
     e = np.asarray(events, dtype=float)
@@ -186,7 +187,7 @@ def kaplan_meier_groups(group_start, durations, events, censored):
     median = np.where(first_below < n_rows, d[np.minimum(first_below, max(n_rows - 1, 0))], np.nan)
     last = np.r_[starts[1:], n_rows] - 1
     return {"mean": mean, "median": median, "mean_se": np.sqrt(_segmented_sum(term, starts)),
-            "restricted": c[last] > 0}
+            "restricted": c[last] > 0, "survival": surv, "at_risk": at_risk}
 
 
 def _bootstrap_mean_interval(durations, events, censored, n_bootstrap, rng):

@@ -31,10 +31,14 @@ TIMESCALE_COLUMNS = ["level", "name", "type", "lag_frames", "lag_ps", "index", "
 #: Observed dwell-time distribution (pooled per type and conformer type): segments of each length,
 #: complete ones and right-censored ones (first/last segment of a trajectory).
 DWELL_COLUMNS = ["level", "name", "type", "state", "dwell_ps", "n_complete", "n_censored"]
+#: Kaplan-Meier survival of the dwell times (the same pools and rows as DWELL_COLUMNS): the
+#: fraction of visits still in the state just after ``time_ps`` and the visits that lasted at
+#: least that long.
+SURVIVAL_COLUMNS = ["level", "name", "type", "state", "time_ps", "survival", "n_at_risk"]
 MFPT_COLUMNS = ["level", "name", "type", "lag_frames", "lag_ps", "from_state", "to_state",
                 "transition_probability", "mfpt_ps"]
 TABLE_COLUMNS = {"transitions": TRANSITION_COLUMNS, "lifetimes": LIFETIME_COLUMNS, "timescales": TIMESCALE_COLUMNS,
-                 "mfpt": MFPT_COLUMNS, "dwell_times": DWELL_COLUMNS}
+                 "mfpt": MFPT_COLUMNS, "dwell_times": DWELL_COLUMNS, "dwell_survival": SURVIVAL_COLUMNS}
 
 
 @dataclass
@@ -54,7 +58,7 @@ class _Stack:
     all_pairs : bool
         List every ordered pair of visited states (else only observed transitions).
     dwell : bool
-        Also the observed dwell-time distribution.
+        Also the observed dwell-time distribution and its Kaplan-Meier survival.
     bootstrap : bool
         Percentile bootstrap intervals of the mean dwell times (else the Kaplan-Meier variance).
     """
@@ -101,6 +105,10 @@ def _stack_tables(stack, dt_ps, lags, n_bootstrap, rng):
         out["dwell_times"] = {**_head(stack, dwell["subject"]), "state": stack.labels[dwell["state"]],
                               "dwell_ps": dwell["length"] * float(dt_ps), "n_complete": dwell["complete"],
                               "n_censored": dwell["censored"]}
+        out["dwell_survival"] = {**_head(stack, dwell["subject"]), "state": stack.labels[dwell["state"]],
+                                 "time_ps": dwell["length"] * float(dt_ps),
+                                 "survival": km["survival"] if km else np.zeros(0),
+                                 "n_at_risk": km["at_risk"].astype(np.int64) if km else np.zeros(0, dtype=np.int64)}
     out.update(_markov_rows(stack, visited, dt_ps, lags))
     return out
 
@@ -238,7 +246,7 @@ def _frames(columns_list, columns):
 
 
 def _tables(parts):
-    """The five DataFrames (:data:`TABLE_COLUMNS`) from the column dicts of several stacks."""
+    """The six DataFrames (:data:`TABLE_COLUMNS`) from the column dicts of several stacks."""
     return {name: _frames([p.get(name) for p in parts], columns) for name, columns in TABLE_COLUMNS.items()}
 
 
@@ -258,8 +266,8 @@ def analyse_state_series(dtrajs, state_labels, dt_ps, lags=DEFAULT_LAGS, n_boots
 
     Returns
     -------
-    dict of DataFrames ``transitions``, ``lifetimes``, ``timescales``, ``mfpt``, ``dwell_times``
-    (level ``pooled``).
+    dict of DataFrames ``transitions``, ``lifetimes``, ``timescales``, ``mfpt``, ``dwell_times``,
+    ``dwell_survival`` (level ``pooled``).
     """
     n_states = len(state_labels)
     tally = StateTally(1, lags, n_states=n_states)
