@@ -16,10 +16,11 @@ import pandas as pd
 import pytest
 from conftest import place_fourth, write_system
 
+from dihedra.analysis.kinetics import (TABLE_COLUMNS, StateTally, analyse_state_series, eyring_barrier_kj_mol,
+                                      eyring_rate_per_s, fill_forward, markov_model, state_kinetics)
 from dihedra.cli import main
 from dihedra.errors import DihedraError
-from dihedra.analysis.kinetics import (StateTally, analyse_state_series, eyring_barrier_kj_mol, eyring_rate_per_s,
-                              fill_forward, kinetics, markov_model, transition_counts)
+from dihedra.io.resultsdir import load_results
 from dihedra.selection.schemes import NO_CORE, get_scheme
 from dihedra.tracking import track
 
@@ -112,6 +113,11 @@ def simulate_folder(folder, seed, excursion_probability=0.0):
     return out
 
 
+def folder_kinetics(folder, **options):
+    """:func:`state_kinetics` of a results folder."""
+    return state_kinetics(load_results(folder), **options)
+
+
 def type_rates(transitions):
     """{(type, from, to): (rate, err)} of the pooled per-type rows."""
     sub = transitions[transitions["level"] == "type"]
@@ -133,8 +139,8 @@ def excursion_folder(tmp_path_factory):
 # assignment and counting
 # ------------------------------------------------------------------------------------------------
 def test_fill_forward_is_transition_based_assignment():
-    # Buchete & Hummer 2008: keep the last core state until another core is entered; frames before
-    # the first core visit are unassigned (definition, checked by hand).
+    # Buchete & Hummer, J. Phys. Chem. B 112 (2008) 6057: keep the last core state until another core
+    # is entered; frames before the first core visit are unassigned (definition, checked by hand).
     codes = np.array([NO_CORE, NO_CORE, 0, NO_CORE, 0, NO_CORE, 1, 1, NO_CORE, -1, 0])
     assert fill_forward(codes).tolist() == [-1, -1, 0, 0, 0, 0, 1, 1, 1, 1, 0]
     # the carry from a previous chunk of the same replica continues the assignment
@@ -188,7 +194,6 @@ def test_streamed_counts_match_deeptime_and_run_lengths():
             sel = rows[:, 0] == series
             np.add.at(mine, (rows[sel, 1], rows[sel, 2]), counts[sel])
             assert np.array_equal(mine, ref)
-            assert np.array_equal(transition_counts(dtrajs, lag, 3), ref)
         expected = {}
         for d in dtrajs:
             for seg in run_lengths(list(d)):
@@ -233,14 +238,15 @@ def test_two_state_implied_timescale_analytic():
 
 
 def test_eyring_check_value():
-    # CHECK-VALUES.md: Eyring k = (k_B T / h) exp(-dG/RT); 12.1 kJ/mol at 298.15 K gives 4.71e10 /s
-    # (derived from CODATA 2018 constants).
+    # Eyring, J. Chem. Phys. 3 (1935) 107: k = (k_B T / h) exp(-dG/RT); 12.1 kJ/mol at 298.15 K gives
+    # 4.71e10 /s with the CODATA 2018 constants (Tiesinga et al., Rev. Mod. Phys. 93 (2021) 025010;
+    # worked out by hand).
     assert eyring_rate_per_s(12.1, 298.15) == pytest.approx(4.71e10, rel=5e-3)
-    # recomputed from the CODATA 2018 values written out here (CHECK-VALUES.md)
+    # recomputed from the exact CODATA 2018 values of k_B, h and N_A written out here
     kb, h, na = 1.380649e-23, 6.62607015e-34, 6.02214076e23
     direct = kb * 298.15 / h * np.exp(-12.1e3 / (kb * na * 298.15))
     assert eyring_rate_per_s(12.1, 298.15) == pytest.approx(direct, rel=1e-12)
-    # CHECK-VALUES.md: k_B T / h = 6.251e12 /s at 300 K (zero barrier)
+    # zero barrier: the Eyring prefactor k_B T / h = 6.251e12 /s at 300 K (CODATA 2018, by hand)
     assert eyring_rate_per_s(0.0, 300.0) == pytest.approx(6.251e12, rel=1e-3)
     # the barrier of a rate inverts the rate of a barrier (analytic)
     assert eyring_barrier_kj_mol(4.71e10, 298.15) == pytest.approx(12.1, abs=0.01)
@@ -301,10 +307,8 @@ def test_three_state_jump_process_rates_and_lifetimes(clean_folder, capsys):
 def test_core_assignment_ignores_excursions_crisp_does_not(excursion_folder):
     # analytic: single-frame excursions across the crisp boundary that never reach another core are
     # not transitions; the core assignment recovers the true rates, the crisp one overestimates them.
-    core = kinetics(excursion_folder, assignment="core", lags=[1], n_bootstrap=0, conformers=False,
-                    write=False)
-    crisp = kinetics(excursion_folder, assignment="crisp", lags=[1], n_bootstrap=0, conformers=False,
-                     write=False)
+    core = folder_kinetics(excursion_folder, assignment="core", lags=[1], n_bootstrap=0, conformers=False)
+    crisp = folder_kinetics(excursion_folder, assignment="crisp", lags=[1], n_bootstrap=0, conformers=False)
     core_rates, crisp_rates = type_rates(core.transitions), type_rates(crisp.transitions)
     for (t, a, b), (k, err) in core_rates.items():
         true = RATES[LABELS.index(a), LABELS.index(b)]
@@ -343,15 +347,15 @@ def two_replicas(tmp_path_factory):
 
 
 def test_no_transition_across_replica_join(two_replicas):
-    # DOMAIN.md: replicas are separate trajectories; never a transition across their join.
+    # common practice: replicas are independent trajectories; never a transition across their join.
     folder, joined = two_replicas
-    res = kinetics(folder, lags=[1, 2], n_bootstrap=50, write=False)
+    res = folder_kinetics(folder, lags=[1, 2], n_bootstrap=50)
     assert res.transitions["count"].sum() == 0
     life = res.lifetimes[res.lifetimes["level"] == "torsion"].set_index("state")
     assert life.loc["anti", "n_censored"] == 1 and life.loc["anti", "n_segments"] == 0
     assert life.loc["gauche+", "n_censored"] == 1
     # control: the same frames as one trajectory give exactly one anti -> gauche+ transition
-    one = kinetics(joined, lags=[1], n_bootstrap=0, write=False).transitions
+    one = folder_kinetics(joined, lags=[1], n_bootstrap=0).transitions
     one = one[one["level"] == "torsion"].set_index(["from_state", "to_state"])["count"]
     assert one.loc[("anti", "gauche+")] == 1 and one.sum() == 1
 
@@ -360,10 +364,37 @@ def test_chunked_reading_equals_whole(two_replicas):
     # common practice: streaming in chunks (carrying the state across borders) gives the same result
     folder, joined = two_replicas
     for f in (folder, joined):
-        a = kinetics(f, lags=[1, 3], n_bootstrap=0, write=False)
-        b = kinetics(f, lags=[1, 3], n_bootstrap=0, write=False, batch_frames=7)
-        for name in ("transitions", "lifetimes", "timescales", "mfpt"):
+        a = folder_kinetics(f, lags=[1, 3], n_bootstrap=0)
+        b = folder_kinetics(f, lags=[1, 3], n_bootstrap=0, batch_frames=7)
+        for name in TABLE_COLUMNS:
             pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
+
+
+def test_in_memory_result_equals_folder(tmp_path):
+    # common practice: the analysis reads the time series only through the tracking result, so a result
+    # kept in memory and the same run loaded from its folder give identical tables and files
+    rng = np.random.default_rng(21)
+    states = np.stack([jump_process(5 * RATES, 400, DT_PS, rng) for _ in range(8)], axis=1)
+    angles = CENTRES_DEG[states] + rng.normal(0.0, 8.0, states.shape)
+    top, traj = write_system(str(tmp_path), chain5_coordinates(angles[:, :4], angles[:, 4:], seed=21),
+                             names=("C1", "C2", "C3", "C4", "C5"), resname="PEN", dt_ps=DT_PS, stem="mem")
+    memory = track(top, [traj], torsions="rotatable", keep_angles=True, temperature_k=300.0)
+    out = str(tmp_path / "res")
+    track(top, [traj], torsions="rotatable", keep_angles=True, temperature_k=300.0, out=out)
+    options = dict(lags=[1, 4], n_bootstrap=40, seed=3)
+    a = state_kinetics(memory, **options)
+    b = state_kinetics(load_results(out), **options)
+    assert memory.folder is None and a.transitions["count"].sum() > 0
+    assert (a.lifetimes["level"] == "conformer").any() and len(a.dwell_survival)
+    for name in TABLE_COLUMNS:
+        pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
+    assert a.notices == b.notices
+    assert {k: v for k, v in a.parameters.items() if k != "folder"} == \
+        {k: v for k, v in b.parameters.items() if k != "folder"}
+    paths_a, paths_b = a.save(str(tmp_path / "a")), b.save(str(tmp_path / "b"))
+    for pa, pb in zip(paths_a, paths_b):
+        if pa.endswith(".csv"):
+            assert open(pa, "rb").read() == open(pb, "rb").read(), pa
 
 
 def test_clear_errors(two_replicas, tmp_path, capsys):
@@ -373,10 +404,10 @@ def test_clear_errors(two_replicas, tmp_path, capsys):
     shutil.copytree(folder, copy)
     shutil.rmtree(os.path.join(copy, "angles.parquet"))
     with pytest.raises(DihedraError, match="--keep-angles"):
-        kinetics(copy, write=False)
+        folder_kinetics(copy)
     assert main(["kinetics", copy]) == 2
     assert "--assignment crisp" in capsys.readouterr().err
-    assert len(kinetics(copy, assignment="crisp", lags=[1], n_bootstrap=0, write=False).lifetimes)
+    assert len(folder_kinetics(copy, assignment="crisp", lags=[1], n_bootstrap=0).lifetimes)
     # no usable time step: ask for --dt-ps, and use it when given
     with open(os.path.join(copy, "summary.json")) as fh:
         summary = json.load(fh)
@@ -385,16 +416,16 @@ def test_clear_errors(two_replicas, tmp_path, capsys):
     with open(os.path.join(copy, "summary.json"), "w") as fh:
         json.dump(summary, fh)
     with pytest.raises(DihedraError, match="--dt-ps"):
-        kinetics(copy, assignment="crisp", write=False)
-    res = kinetics(copy, assignment="crisp", lags=[2], dt_ps=0.25, n_bootstrap=0, write=False)
+        folder_kinetics(copy, assignment="crisp")
+    res = folder_kinetics(copy, assignment="crisp", lags=[2], dt_ps=0.25, n_bootstrap=0)
     assert res.parameters["frame_interval_ps"] == 0.25
     assert (res.timescales["lag_ps"] == 0.5).all() or res.timescales.empty
     # a margin that leaves no core
     with pytest.raises(DihedraError, match="no core"):
-        kinetics(folder, core_margin_deg=65, write=False)
+        folder_kinetics(folder, core_margin_deg=65)
     # an unknown type lists the valid ones
     with pytest.raises(DihedraError, match="BUT:C1-C2-C3-C4"):
-        kinetics(folder, types=["nope"], write=False)
+        folder_kinetics(folder, types=["nope"])
 
 
 def test_custom_scheme_and_file_output(tmp_path):
@@ -408,15 +439,20 @@ def test_custom_scheme_and_file_output(tmp_path):
     top, traj = four_site(tmp_path, angles, "custom")
     out = str(tmp_path / "res")
     track(top, [traj], torsions="rotatable", scheme=str(scheme), keep_angles=True, out=out)
-    res = kinetics(out, core_margin_deg=10, lags=[1], n_bootstrap=0)
+    res = folder_kinetics(out, core_margin_deg=10, lags=[1], n_bootstrap=0)
+    written = res.save(out)
     t = res.transitions[res.transitions["level"] == "torsion"].set_index(["from_state", "to_state"])
     # the three frames at 145 deg are outside the trans core (160..-160) and outside other's core
     # (-140..140): no transition; 180 -> 60 -> 178 gives two
     assert t.loc[("trans", "other"), "count"] == 1 and t.loc[("other", "trans"), "count"] == 1
-    crisp = kinetics(out, assignment="crisp", lags=[1], n_bootstrap=0, write=False).transitions
+    crisp = folder_kinetics(out, assignment="crisp", lags=[1], n_bootstrap=0).transitions
     assert crisp.loc[crisp["level"] == "torsion", "count"].sum() == 4
     names = set(os.listdir(out))
-    assert {"transitions.csv", "lifetimes.csv", "timescales.csv", "mfpt.csv", "kinetics.json"} <= names
+    expected = {"transitions.csv", "lifetimes.csv", "dwell_times.csv", "dwell_survival.csv", "timescales.csv",
+                "mfpt.csv", "kinetics.json"}
+    assert expected <= names
+    assert {os.path.basename(p) for p in written} == expected
+    assert all(os.path.dirname(p) == out for p in written)
     assert not [n for n in names if n.endswith(".partial")]
 
 
@@ -424,7 +460,7 @@ def test_profile_barriers_enter_next_to_eyring():
     # analytic: a barrier between the anti minimum (180) and the gauche+ minimum (60) with heights 12
     # above anti and 9 above gauche+ is the anti -> gauche+ barrier (12) and the reverse one (9); the
     # TST rate of a profile barrier is the Eyring rate of that barrier (CODATA 2018 constants).
-    from dihedra.analysis.kinetics import _add_tst, _read_barrier_table
+    from dihedra.analysis.kinetics.estimators import _add_tst, _read_barrier_table
 
     scheme = get_scheme("anti-gauche")
     barriers = pd.DataFrame({
@@ -459,3 +495,27 @@ def test_dwell_time_table_counts_segments_and_censoring():
     assert dwell.loc[("b", 4.0)].tolist() == [1, 0]   # complete, 2 frames
     assert dwell.loc[("b", 2.0)].tolist() == [0, 1]   # last segment, 1 frame
     assert len(dwell) == 4
+
+
+def test_dwell_survival_is_the_kaplan_meier_product_limit():
+    # Kaplan & Meier, J. Am. Stat. Assoc. 53 (1958) 457: S(t) = prod over the distinct dwell times
+    # t_i <= t of (1 - d_i / Y_i), a censored segment at risk up to its length (ties: events first).
+    # Worked by hand for state a: complete dwells of 1, 2, 2 and 4 frames and one censored at 3 (the
+    # last segment of the second trajectory): S = 4/5, 4/5 * 2/4, unchanged, 0.
+    first = np.array([1, 0, 1, 0, 0, 1, 0, 0, 0, 0, 1])
+    second = np.array([1, 0, 0, 1, 0, 0, 0])
+    tables = analyse_state_series([first, second], ["a", "b"], dt_ps=1.0, lags=[1], n_bootstrap=0)
+    surv = tables["dwell_survival"]
+    a = surv[surv["state"] == "a"]
+    assert a["time_ps"].tolist() == [1.0, 2.0, 3.0, 4.0]
+    assert a["n_at_risk"].tolist() == [5, 4, 2, 1]
+    assert a["survival"].to_numpy() == pytest.approx([0.8, 0.4, 0.4, 0.0], abs=1e-12)
+    # the restricted mean is the area under this curve (1 + 0.8 + 0.4 + 0.4 frames) and the median the
+    # first dwell time with S <= 1/2 (Kaplan & Meier 1958; Klein & Moeschberger, Survival Analysis, 2003)
+    life = tables["lifetimes"].set_index("state")
+    assert life.loc["a", "mean_ps"] == pytest.approx(2.6, rel=1e-12)
+    assert life.loc["a", "median_ps"] == 2.0
+    # one curve point per row of the dwell-time distribution
+    dwell = tables["dwell_times"]
+    assert surv[["level", "name", "state"]].equals(dwell[["level", "name", "state"]])
+    assert surv["time_ps"].tolist() == dwell["dwell_ps"].tolist()

@@ -14,6 +14,10 @@ import pytest
 from scipy import linalg
 
 from dihedra.analysis import kinetics as kin
+from dihedra.analysis.kinetics import estimators as kin_estimators
+from dihedra.analysis.kinetics import markov as kin_markov
+from dihedra.analysis.kinetics import tables as kin_tables
+from dihedra.analysis.kinetics import tally as kin_tally
 from dihedra.analysis import profiles as prof
 from dihedra.io.tables import write_csv
 from dihedra.selection.schemes import get_scheme
@@ -56,7 +60,7 @@ def test_reversible_estimator_matches_deeptime():
             assert np.allclose(mine["mfpt_frames"][:, j], mfpt(t_ref, j, tau=lag), rtol=1e-6)
     # the stack gives each matrix the result it gets alone (3 x 3 matrices of one active pattern)
     stack = np.stack([c for c in counts if len(c) == 3])
-    (members, active, t, pi, ts, m), = kin._markov_stack(stack, 2)
+    (members, active, t, pi, ts, m), = kin_markov._markov_stack(stack, 2)
     for k, c in zip(members, stack):
         one = kin.markov_model(c, 2)
         assert np.allclose(t[k], one["transition_matrix"], rtol=1e-12, atol=1e-14)
@@ -102,7 +106,7 @@ def test_stationary_populations_of_rate_stack():
     k[:, np.arange(4), np.arange(4)] = 0.0
     visited = rng.random((30, 4)) < 0.85
     k = k * visited[:, :, None] * visited[:, None, :]
-    pi = kin._stationary_stack(k, visited)
+    pi = kin_estimators._stationary_stack(k, visited)
     for m in range(30):
         idx = np.flatnonzero(visited[m])
         sub = k[m][np.ix_(idx, idx)]
@@ -163,11 +167,11 @@ def test_torsion_rows_equal_each_torsion_alone(tmp_path):
     tally.add_series(trajs[:, 1700:])
     tally.finish()
     labels = np.array(["a", "b", "c"], dtype=object)
-    stack = kin._Stack("torsion", np.array([f"t{k}" for k in range(n_tor)], dtype=object),
+    stack = kin_tables._Stack("torsion", np.array([f"t{k}" for k in range(n_tor)], dtype=object),
                        np.array(["T"] * n_tor, dtype=object), labels, tally.pair_matrices_,
                        tuple(tally.segments_[0].T) + (tally.segments_[1],), np.ones(n_tor, dtype=np.int64),
                        bootstrap=True)
-    got = kin._tables([kin._stack_tables(stack, 0.5, [1, 4], 100, np.random.default_rng(1))])
+    got = kin_tables._tables([kin_tables._stack_tables(stack, 0.5, [1, 4], 100, np.random.default_rng(1))])
     for k in range(n_tor):
         one = kin.analyse_state_series([trajs[k]], list(labels), 0.5, lags=[1, 4], n_bootstrap=100)
         for name in ("transitions", "lifetimes", "timescales", "mfpt"):
@@ -296,6 +300,7 @@ def test_threads_and_chunks_give_the_serial_result(tmp_path, monkeypatch):
     from conftest import write_system
     from test_kinetics import chain5_coordinates
 
+    from dihedra.io.resultsdir import load_results
     from dihedra.tracking import track
 
     rng = np.random.default_rng(14)
@@ -304,14 +309,14 @@ def test_threads_and_chunks_give_the_serial_result(tmp_path, monkeypatch):
                              names=("C1", "C2", "C3", "C4", "C5"), resname="PEN", stem="parts")
     out = str(tmp_path / "res")
     track(top, [traj, traj], torsions="rotatable", keep_angles=True, out=out)
-    serial = kin.kinetics(out, lags=[1, 3], n_bootstrap=30, write=False)
+    serial = kin.state_kinetics(load_results(out), lags=[1, 3], n_bootstrap=30)
     assert (serial.lifetimes["level"] == "conformer").any()
-    monkeypatch.setattr(kin, "_THREADS", 3)
-    monkeypatch.setattr(kin, "_MIN_PART", 2)
-    monkeypatch.setattr(kin, "CHUNK_VALUES", 50)
-    assert len(kin._column_parts(16, [np.array([2 * k, 2 * k + 1]) for k in range(8)], 3)) == 3
-    parts = kin.kinetics(out, lags=[1, 3], n_bootstrap=30, write=False, batch_frames=37)
-    for name in ("transitions", "lifetimes", "timescales", "mfpt", "dwell_times"):
+    monkeypatch.setattr(kin_tally, "_THREADS", 3)
+    monkeypatch.setattr(kin_tally, "_MIN_PART", 2)
+    monkeypatch.setattr(kin_tally, "CHUNK_VALUES", 50)
+    assert len(kin_tally._column_parts(16, [np.array([2 * k, 2 * k + 1]) for k in range(8)], 3)) == 3
+    parts = kin.state_kinetics(load_results(out), lags=[1, 3], n_bootstrap=30, batch_frames=37)
+    for name in kin.TABLE_COLUMNS:
         pd.testing.assert_frame_equal(getattr(serial, name), getattr(parts, name))
 
 

@@ -1,9 +1,13 @@
 """``dihedra kinetics``: transitions, dwell times, rates and Markov timescales of a results folder."""
 
+import os
+
 import numpy as np
 
 from ..analysis.kinetics import (ASSIGNMENTS, DEFAULT_BOOTSTRAP, DEFAULT_CORE_MARGIN_DEG, DEFAULT_LAGS,
-                        TST_CAUTION, kinetics)
+                                 TST_CAUTION, state_kinetics)
+from ..io.resultsdir import load_results
+from ..io.tables import read_optional_json, read_optional_table
 from .common import print_notices, say
 
 
@@ -13,8 +17,8 @@ def register(sub):
         description="Transitions between torsion states and conformers, dwell times with bootstrap "
                     "intervals, rate constants with errors, reversible Markov models (implied timescales, "
                     "mean first-passage times) and Eyring barriers, from a folder written by "
-                    "'dihedra track'. Writes transitions.csv, lifetimes.csv, timescales.csv, mfpt.csv and "
-                    "kinetics.json into the folder.",
+                    "'dihedra track'. Writes transitions.csv, lifetimes.csv, dwell_times.csv, "
+                    "dwell_survival.csv, timescales.csv, mfpt.csv and kinetics.json into the folder.",
         epilog="Core assignment (default) needs angles.parquet: run 'dihedra track ... --keep-angles'.")
     p.add_argument("folder", metavar="DIR", help="results folder of 'dihedra track'")
     p.add_argument("--assignment", choices=ASSIGNMENTS, default="core",
@@ -42,14 +46,29 @@ def register(sub):
 
 
 def run(args):
-    res = kinetics(args.folder, assignment=args.assignment, core_margin_deg=args.core_margin,
-                   lags=args.lag, types=args.type, dt_ps=args.dt_ps, temperature_k=args.temperature,
-                   n_bootstrap=args.bootstrap, log=say, torsion_bootstrap=args.torsion_bootstrap)
-    report_kinetics(res)
+    result = load_results(args.folder)
+    profiles = read_optional_json(args.folder, "profiles.json")
+    res = state_kinetics(result, assignment=args.assignment, core_margin_deg=args.core_margin,
+                         lags=args.lag, types=args.type, dt_ps=args.dt_ps, temperature_k=args.temperature,
+                         barriers=read_optional_table(args.folder, "barriers.csv"),
+                         profile_temperature_k=_profile_temperature(profiles),
+                         n_bootstrap=args.bootstrap, log=say, torsion_bootstrap=args.torsion_bootstrap)
+    written = res.save(result.folder)
+    report_kinetics(res, result.folder, written)
 
 
-def report_kinetics(res, max_types=6, max_conformer_rows=5):
-    """A short readable summary of a :class:`~dihedra.analysis.kinetics.KineticsResult` on standard output."""
+def _profile_temperature(profiles):
+    """Temperature of ``profiles.json`` (``dihedra profile``), or None."""
+    value = profiles.get("temperature_k") if isinstance(profiles, dict) else None
+    try:
+        return None if value is None else float(value)
+    except (TypeError, ValueError):
+        return None
+
+
+def report_kinetics(res, folder=None, written=(), max_types=6, max_conformer_rows=5):
+    """A short readable summary of a :class:`~dihedra.analysis.kinetics.KineticsResult` on standard
+    output; ``written``: the paths of the files it was saved to in ``folder``."""
     p = res.parameters
     if p["assignment"] == "core":
         cores = ", ".join(f"{c['state']} {c['from_deg']:g}..{c['to_deg']:g}" for c in p["core_sectors_deg"])
@@ -97,8 +116,8 @@ def report_kinetics(res, max_types=6, max_conformer_rows=5):
     if temp is not None:
         print(f"\nEyring barriers at {temp:g} K with kappa = 1. Caution: {TST_CAUTION}")
     print_notices(res.notices)
-    if res.folder:
-        print(f"written to {res.folder}: transitions.csv, lifetimes.csv, dwell_times.csv, timescales.csv, mfpt.csv, kinetics.json")
+    if written:
+        print(f"written to {folder}: {', '.join(os.path.basename(p) for p in written)}")
 
 
 def _fmt(value, spec):
