@@ -353,19 +353,17 @@ def test_lifetimes_exponential_from_the_rates_and_observed_markers():
     assert "dwell time" in ax.get_xlabel() and ax.get_xlabel().endswith("/ ps")
 
 
-def test_survival_curve_is_kaplan_meier():
-    # Kaplan & Meier (1958): S(t) = prod over event times t_i <= t of (1 - d_i / n_i); worked by hand:
-    # lengths 1, 2 (censored), 3, 3, 5 -> at t=1: 1 - 1/5 = 0.8; t=2 censored: 0.8; t=3: 0.8 (1 - 2/3);
-    # t=5: 0.8/3 (1 - 1/1) = 0
-    t, s = figures.survival_curve([1, 2, 3, 5], [1, 0, 2, 1], [0, 1, 0, 0])
-    np.testing.assert_allclose(t, [1, 2, 3, 5])
-    np.testing.assert_allclose(s, [0.8, 0.8, 0.8 / 3, 0.0])
-    # without censoring it is one minus the empirical distribution function
-    rng = np.random.default_rng(1)
-    x = rng.integers(1, 30, 200)
-    d, n = np.unique(x, return_counts=True)
-    _, s = figures.survival_curve(d, n, np.zeros_like(n))
-    np.testing.assert_allclose(s, 1 - np.cumsum(n) / n.sum())
+def test_lifetimes_draw_the_survival_table_of_the_kinetics():
+    # the steps are the Kaplan-Meier table's points (the figure draws, the kinetics computes)
+    transitions, lifetimes = kinetics_tables()
+    survival = pd.DataFrame({"level": "type", "name": "T", "type": "T", "state": "anti",
+                             "time_ps": [1.0, 2.0, 3.0, 5.0], "survival": [0.8, 0.8, 0.8 / 3, 0.0],
+                             "n_at_risk": [5, 4, 3, 1]})
+    ax = figures.plot_lifetimes(lifetimes, "T", scheme=get_scheme("anti-gauche"), survival=survival, ax=new_ax())
+    steps = [ln for ln in ax.get_lines() if ln.get_drawstyle() == "steps-post"]
+    assert len(steps) == 1
+    np.testing.assert_allclose(steps[0].get_xdata(), [0.0, 1.0, 2.0, 3.0])   # S > 0 only
+    np.testing.assert_allclose(steps[0].get_ydata(), [1.0, 0.8, 0.8, 0.8 / 3])
 
 
 # ------------------------------------------------------------------------------------------------

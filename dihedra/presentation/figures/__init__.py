@@ -14,7 +14,7 @@ that ``track``, ``profile``, ``compare``, ``kinetics`` and ``couplings`` wrote.
 4    :func:`plot_populations`                   ``populations_by_type.csv`` (+ ``comparison.csv``)
 5    :func:`plot_free_energy_map`               ``profiles_2d.csv``
 6    :func:`plot_transition_diagram`            ``transitions.csv``, ``lifetimes.csv``
-7    :func:`plot_lifetimes`                     ``lifetimes.csv`` (+ a dwell-time table)
+7    :func:`plot_lifetimes`                     ``lifetimes.csv`` (+ ``dwell_survival.csv``)
 8    :func:`plot_convergence`                   ``blocks.npz``, ``populations*.csv``
 9    :func:`plot_couplings`                     ``couplings_vs_experiment.csv``
 ===  =========================================  ==============================================
@@ -47,7 +47,7 @@ from .common import energy_columns, sector_spans, time_scale
 from .convergence import REPLICA_STYLES, plot_convergence
 from .couplings import RELATION_MARKERS, plot_couplings
 from .figureset import FigureItem, FigureSet, figure_set, safe_name, write_figures
-from .kinetics import plot_lifetimes, plot_transition_diagram, survival_curve
+from .kinetics import plot_lifetimes, plot_transition_diagram
 from .maps import plot_free_energy_map
 from .populations import SOURCE_STYLES, comparison_populations, plot_populations
 from .profiles import plot_profile, select_profile
@@ -65,5 +65,5 @@ __all__ = [
     "plot_angle_series", "plot_convergence", "plot_couplings", "plot_free_energy_map", "plot_lifetimes",
     "plot_populations", "plot_profile", "plot_state_raster", "plot_transition_diagram", "read_angle_series",
     "read_state_raster", "safe_name", "sector_spans", "select_profile", "state_colours", "style",
-    "survival_curve", "time_scale", "write_figures",
+    "time_scale", "write_figures",
 ]

@@ -230,7 +230,7 @@ def _add_kinetics(b, chosen_types):
     """6./7. Transition diagrams and lifetimes per type."""
     transitions = read_optional(b.folder, "transitions.csv")
     lifetimes = read_optional(b.folder, "lifetimes.csv")
-    dwell = read_optional(b.folder, "dwell_times.csv")
+    dwell = read_optional(b.folder, "dwell_survival.csv")
     if transitions is None or lifetimes is None:
         b.skip("transition diagrams and lifetimes", "no transitions.csv / lifetimes.csv (run 'dihedra kinetics')")
         return
@@ -242,13 +242,13 @@ def _add_kinetics(b, chosen_types):
               f"Transitions between the states of {t}: node area ~ population, arrow "
               "width ~ rate constant (per ps).", fig, "transitions")
         fig = _figure(b.width_in, 2.3)
-        plot_lifetimes(lifetimes, t, level="type", scheme=b.scheme, dwell_times=dwell, ax=fig.add_subplot())
+        plot_lifetimes(lifetimes, t, level="type", scheme=b.scheme, survival=dwell, ax=fig.add_subplot())
         b.add(f"lifetimes_{safe_name(t)}",
               f"Dwell times of the states of {t} on a log axis with the exponential "
               "expected from the rates.", fig, "lifetimes")
     if dwell is None:
         b.say("note: lifetimes figures show the observed mean and median on the exponential from the rates "
-              "(the folder stores no dwell-time distribution)")
+              "(the folder has no dwell_survival.csv: run 'dihedra kinetics' again)")
 
 
 def _add_convergence(b, chosen_types):

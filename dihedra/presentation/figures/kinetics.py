@@ -2,7 +2,8 @@ r"""Figures 6 and 7: the transition diagram and the dwell times (lifetimes) of t
 
 References
 ----------
-E. L. Kaplan & P. Meier, J. Am. Stat. Assoc. 53 (1958) 457 (survival curves of dwell times).
+E. L. Kaplan & P. Meier, J. Am. Stat. Assoc. 53 (1958) 457 (survival curves of dwell times, as
+computed by the kinetics: ``dwell_survival.csv``).
 """
 
 from __future__ import annotations
@@ -142,53 +143,25 @@ def _draw_nodes(ax, states, pos, radius, pops, colours):
 _DASHED = (0, (3.5, 1.5))
 
 
-def survival_curve(dwell_ps, n_complete, n_censored):
-    """Kaplan-Meier survival S(t) of dwell times with right-censoring (a display transform).
-
-    Parameters
-    ----------
-    dwell_ps : array
-        Dwell times of the segments (one entry per distinct length).
-    n_complete, n_censored : array
-        Complete and censored segments of each length.
-
-    Returns
-    -------
-    (t, S) with S(t) just after each t (ties: events before censorings).
-    """
-    d = np.asarray(dwell_ps, dtype=float)
-    e = np.asarray(n_complete, dtype=float)
-    c = np.asarray(n_censored, dtype=float)
-    order = np.argsort(d)
-    d, e, c = d[order], e[order], c[order]
-    at_risk = np.cumsum((e + c)[::-1])[::-1]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        h = np.where(at_risk > 0, e / at_risk, 0.0)
-    return d, np.cumprod(1.0 - h)
-
-
-def _observed_survival(dwell, state):
-    """The observed survival ``(t, S)`` of one state from a dwell-time table (level, name, state,
-    dwell_ps, n_complete, n_censored, already cut to one level and name), or ``None`` when the
-    table has no row of ``state``.
-
-    The Kaplan-Meier curve is computed here from the dwell-time counts (:func:`survival_curve`);
-    this is the one place to change when the kinetics result carries the curve as a table.
-    """
-    part = dwell[dwell["state"] == state]
+def _observed_survival(survival, state):
+    """The observed survival ``(t, S)`` of one state from the Kaplan-Meier table of the kinetics
+    (``dwell_survival.csv``: level, name, state, time_ps, survival; already cut to one level and
+    name), or ``None`` when the table has no row of ``state``. Presentation draws the curve the
+    kinetics computed; it does not compute one."""
+    part = survival[survival["state"] == state]
     if not len(part):
         return None
-    return survival_curve(part["dwell_ps"], part["n_complete"], part["n_censored"])
+    return part["time_ps"].to_numpy(dtype=float), part["survival"].to_numpy(dtype=float)
 
 
-def plot_lifetimes(lifetimes, name, level="type", scheme=None, dwell_times=None, ax=None, legend=True):
+def plot_lifetimes(lifetimes, name, level="type", scheme=None, survival=None, ax=None, legend=True):
     """Figure 7: dwell times (lifetimes) of each state on a log axis, with the exponential expected
     from the rates.
 
     The dashed line of each state is ``S(t) = exp(-t / tau)``, the fraction of visits still in the
     state after ``t`` if leaving it were memoryless at the total exit rate of the Markov rates,
-    ``tau = mean_from_rates_ps``. With a dwell-time table (``dwell_times``: level, name, state,
-    dwell_ps, n_complete, n_censored) the observed Kaplan-Meier survival is drawn as steps.
+    ``tau = mean_from_rates_ps``. With the Kaplan-Meier table of the kinetics (``survival``, the
+    layout of ``dwell_survival.csv``) the observed survival is drawn as steps.
     Without one, the observed dwell-time summaries of ``lifetimes.csv`` are placed where an
     exponential has them: the median at S = 1/2 and the mean (with its 95 % bootstrap interval) at
     S = 1/e; on the dashed line means memoryless, left of it means faster first exits.
@@ -207,8 +180,8 @@ def plot_lifetimes(lifetimes, name, level="type", scheme=None, dwell_times=None,
     order = [s for s in (scheme.labels if scheme is not None else []) if s in set(lt["state"])]
     order += [s for s in dict.fromkeys(lt["state"]) if s not in order]
     dwell = None
-    if dwell_times is not None and len(dwell_times):
-        dwell = dwell_times[(dwell_times["level"] == level) & (dwell_times["name"] == name)]
+    if survival is not None and len(survival):
+        dwell = survival[(survival["level"] == level) & (survival["name"] == name)]
         dwell = dwell if len(dwell) else None
     handles, tmax = [], 0.0
     for k, s in enumerate(order):
