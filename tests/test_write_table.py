@@ -10,8 +10,8 @@ from dihedra.io.tables import write_table
 
 def test_tables_read_back_with_plain_pandas(tmp_path):
     """Every table reads back with a plain pandas.read_csv (reference library: pandas): floats
-    equal to their float32 rounding, NaN as empty cells, booleans as booleans, text with commas,
-    quotes and line breaks quoted, integers exact."""
+    exactly equal, NaN as empty cells, booleans as booleans, text with commas, quotes and line
+    breaks quoted, integers exact."""
     rng = np.random.default_rng(0)
     frame = pd.DataFrame({
         "torsion": ["C1-C2-C3-C4", 'say "hi"', "a,b", "line\nbreak", "x", "x y"] * 5,
@@ -27,7 +27,20 @@ def test_tables_read_back_with_plain_pandas(tmp_path):
     np.testing.assert_array_equal(back["frames"], frame["frames"])
     np.testing.assert_array_equal(back["odd, name"], frame["odd, name"])
     assert back["flag"].dtype == bool and (back["flag"] == frame["flag"]).all()
-    np.testing.assert_array_equal(back["angle_deg"].to_numpy(np.float32), frame["angle_deg"].to_numpy(np.float32))
+    np.testing.assert_array_equal(back["angle_deg"], frame["angle_deg"])
+    pd.testing.assert_frame_equal(back.drop(columns="torsion"), frame.drop(columns="torsion"), check_dtype=False)
+
+
+def test_long_tables_are_written_in_single_precision(tmp_path, monkeypatch):
+    """Tables longer than EXACT_ROWS carry the shortest float32 text of each value (reference:
+    NumPy's float32 rounding)."""
+    from dihedra.io import tables
+
+    monkeypatch.setattr(tables, "EXACT_ROWS", 10)
+    x = np.random.default_rng(3).normal(0, 100, 50)
+    back = pd.read_csv(write_table(pd.DataFrame({"x": x}), tmp_path, "long.csv"))
+    np.testing.assert_array_equal(back["x"].to_numpy(np.float32), x.astype(np.float32))
+    assert not np.array_equal(back["x"].to_numpy(), x)
 
 
 def test_a_table_in_parts_gives_the_same_text(tmp_path, monkeypatch):

@@ -3,8 +3,10 @@
 Every table is written by :func:`write_table` (CSV through Apache Arrow's writer: ``to_csv``
 formats every cell in Python-level loops, about 6 s per million rows, and profiles of 15,000
 torsions are 6.5 million rows), atomically and only over a file that dihedra wrote
-(:func:`dihedra.io.outputs.write_file`). Floating-point columns are written as single-precision
-values in their shortest round-trip form (at least 7 significant digits), NaN as an empty cell,
+(:func:`dihedra.io.outputs.write_file`). Floating-point values are written in their shortest
+round-trip form: exactly (double precision) in tables of up to :data:`EXACT_ROWS` rows, which then
+read back equal to the DataFrame, and in single precision (at least 7 significant digits) in longer
+tables such as the profiles of thousands of torsions; NaN as an empty cell, infinity as ``inf``,
 booleans as ``true``/``false`` (read back as booleans by pandas, R and spreadsheets), strings
 without quotes unless a value needs them. Every table reads back with a plain
 ``pandas.read_csv(path)``.
@@ -31,13 +33,17 @@ import pandas as pd
 from ..errors import InputFileError
 from .outputs import write_file
 
+#: Tables with at most this many rows are written with every digit of their double-precision
+#: values (they read back equal); longer tables (profiles of thousands of torsions, millions of
+#: rows) in single precision, about half the text and time.
+EXACT_ROWS = 100_000
 #: Largest magnitude written in single precision (beyond it a column keeps double precision).
 _FLOAT32_SAFE = 1e37
 #: Rows formatted per Arrow call (bounds the memory of the text buffer).
 _ROWS_PER_PART = 1_000_000
 
 
-def _arrow_column(series):
+def _arrow_column(series, single):
     import pyarrow as pa
 
     dtype = series.dtype
@@ -48,7 +54,7 @@ def _arrow_column(series):
     if isinstance(dtype, np.dtype) and dtype.kind == "f":
         values = series.to_numpy()
         finite = np.isfinite(values)
-        if not finite.any() or np.abs(values[finite]).max() < _FLOAT32_SAFE:
+        if single and (not finite.any() or np.abs(values[finite]).max() < _FLOAT32_SAFE):
             values = values.astype(np.float32)
         return pa.array(values, mask=np.isnan(values))
     if isinstance(dtype, np.dtype) and dtype.kind in "biu":
@@ -81,11 +87,12 @@ def write_csv(frame, path, threads=None):
     threads = threads or min(4, os.cpu_count() or 1)
     header = ",".join(_quote(str(c)) for c in frame.columns) + "\n"
     starts = range(0, len(frame), _ROWS_PER_PART)
+    single = len(frame) > EXACT_ROWS
     with open(path, "wb") as fh, ThreadPoolExecutor(threads) as pool:
         fh.write(header.encode())
         pending = deque()
         for start in starts:
-            pending.append(pool.submit(_format_part, frame.iloc[start:start + _ROWS_PER_PART]))
+            pending.append(pool.submit(_format_part, frame.iloc[start:start + _ROWS_PER_PART], single))
             if len(pending) > threads:
                 fh.write(pending.popleft().result())
         while pending:
@@ -93,12 +100,12 @@ def write_csv(frame, path, threads=None):
     return path
 
 
-def _format_part(part):
+def _format_part(part, single):
     """CSV text (no header) of some rows, as a buffer."""
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
-    table = pa.table({f"c{k}": _arrow_column(part[c]) for k, c in enumerate(part.columns)})
+    table = pa.table({f"c{k}": _arrow_column(part[c], single) for k, c in enumerate(part.columns)})
     for quoting in ("none", "needed"):  # "none" refuses values with a comma, quote or line break
         sink = pa.BufferOutputStream()
         try:
