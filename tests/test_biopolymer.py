@@ -23,8 +23,9 @@ data = pytest.importorskip("MDAnalysisTests.datafiles")
 
 from MDAnalysis.lib.distances import calc_dihedrals  # noqa: E402
 
-from dihedra.selection.biopolymer import (classify_residue_name, nucleic_backbone_torsions,  # noqa: E402
-                                protein_backbone_torsions, protein_sidechain_torsions)
+from dihedra.selection.biopolymer import (nucleic_backbone_torsions, protein_backbone_torsions,  # noqa: E402
+                                          protein_sidechain_torsions)
+from dihedra.selection.residue_names import classify_residue_name  # noqa: E402
 from dihedra.selection.torsions import molecule_group  # noqa: E402
 
 pytestmark = pytest.mark.filterwarnings("ignore")

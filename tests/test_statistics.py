@@ -3,7 +3,11 @@
 import numpy as np
 import pytest
 
+from blocking_reference import reference_blocking
 from dihedra.numerics.statistics import blocking_error, statistical_inefficiency
+
+#: dihedra's compiled blocking and the plain NumPy reference implementation
+BLOCKING = {"compiled": blocking_error, "reference": reference_blocking}
 
 
 def ar1(rho, n, seed):
@@ -17,7 +21,7 @@ def ar1(rho, n, seed):
 
 
 def test_statistical_inefficiency_of_ar1():
-    # CHECK-VALUES.md (analytic): AR(1) with rho has g = (1 + rho) / (1 - rho); rho = 0.9 gives 19
+    # analytic (AR(1) process): g = (1 + rho) / (1 - rho); rho = 0.9 gives 19
     g = statistical_inefficiency(ar1(0.9, 400_000, 1))
     assert g == pytest.approx(19.0, rel=0.1)
 
@@ -27,25 +31,20 @@ def test_statistical_inefficiency_of_white_noise_is_one():
     assert statistical_inefficiency(np.random.default_rng(2).normal(size=50_000)) == pytest.approx(1.0, abs=0.1)
 
 
-@pytest.mark.parametrize("compiled", [False, True])
-def test_blocking_error_of_independent_bernoulli_samples(compiled):
-    if compiled:
-        pytest.importorskip("numba")
+@pytest.mark.parametrize("blocking", ["compiled", "reference"])
+def test_blocking_error_of_independent_bernoulli_samples(blocking):
     # analytic: the standard error of a fraction of N independent samples is sqrt(p(1-p)/N)
     rng = np.random.default_rng(4)
     n, p = 64_000, 0.3
     ind = (rng.random(n) < p).astype(float)
     blocks = ind.reshape(64, -1)
-    mean, se, n_eff = blocking_error(blocks.sum(1), np.full(64, blocks.shape[1]), np.zeros(64, int),
-                                     compiled=compiled)
+    mean, se, n_eff = BLOCKING[blocking](blocks.sum(1), np.full(64, blocks.shape[1]), np.zeros(64, int))
     assert se == pytest.approx(np.sqrt(p * (1 - p) / n), rel=0.3)
     assert n_eff == pytest.approx(n, rel=0.6)
 
 
-@pytest.mark.parametrize("compiled", [False, True])
-def test_blocking_error_of_correlated_indicator_matches_inefficiency(compiled):
-    if compiled:
-        pytest.importorskip("numba")
+@pytest.mark.parametrize("blocking", ["compiled", "reference"])
+def test_blocking_error_of_correlated_indicator_matches_inefficiency(blocking):
     # analytic route (Chodera et al. 2007) against blocking (Flyvbjerg & Petersen 1989)
     errs, refs = [], []
     for seed in range(4):
@@ -53,7 +52,7 @@ def test_blocking_error_of_correlated_indicator_matches_inefficiency(compiled):
         g = statistical_inefficiency(ind)
         refs.append(np.sqrt(ind.var() * g / len(ind)))
         b = ind.reshape(64, -1)
-        errs.append(blocking_error(b.sum(1), np.full(64, b.shape[1]), np.zeros(64, int), compiled=compiled)[1])
+        errs.append(BLOCKING[blocking](b.sum(1), np.full(64, b.shape[1]), np.zeros(64, int))[1])
     # blocking takes the largest level: at least the g-based error, within a factor 1.6
     assert np.mean(errs) == pytest.approx(np.mean(refs), rel=0.35)
 

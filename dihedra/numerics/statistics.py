@@ -111,8 +111,7 @@ def _pairs(replica):
     return np.concatenate(out_a), np.concatenate(out_b), np.concatenate(out_r)
 
 
-def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BLOCKS, compiled=None,
-                   weight_columns=None):
+def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BLOCKS, weight_columns=None):
     """Mean and conservative standard error by Flyvbjerg-Petersen blocking.
 
     Parameters
@@ -137,71 +136,25 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
 
     Other Parameters
     ----------------
-    compiled : bool, optional
-        Use the numba kernel, which takes every column through all the levels at once (the
-        arithmetic of the NumPy code, in its order; sums over 1-D inputs may differ in the last
-        bit). Default: for :data:`COMPILED_MIN_VALUES` values or more, when numba is installed.
     weight_columns : ndarray of int, optional
         With 2-D ``block_values`` (n_blocks, n_columns): ``block_weights`` is (n_blocks, n_w) and
-        column k of the values takes the weights ``block_weights[:, weight_columns[k]]`` (the
-        compiled path reads them there, without building the (n_blocks, n_columns) copy).
+        column k of the values takes the weights ``block_weights[:, weight_columns[k]]`` (read
+        there, without building the (n_blocks, n_columns) copy).
+
+    Notes
+    -----
+    Every column goes through all the levels in one compiled call
+    (:func:`dihedra.numerics._kernels.blocking_columns`): the blocks of each level are merged
+    pairwise within their replica, the standard error of each level is that of
+    :func:`weighted_block_error`, and the largest over the levels with at least ``min_blocks``
+    blocks is kept (the plain block error where no level has enough); the replicas, independent
+    samples, give one more estimate from one block each, so that replicas that disagree are
+    never hidden by blocks that look converged inside each.
     """
-    kernels = _blocking_kernels(compiled, np.size(block_values))
-    if kernels is not None:
-        return _compiled_blocking(kernels, block_values, block_weights, block_replica, min_blocks,
-                                  weight_columns)
-    if weight_columns is not None:
-        block_weights = np.asarray(block_weights)[:, np.asarray(weight_columns)]
-    v = np.asarray(block_values, dtype=float)
-    w = np.asarray(block_weights, dtype=float)
-    r = np.asarray(block_replica)
-    w = w.reshape(w.shape + (1,) * (v.ndim - w.ndim))
-    keep = w.reshape(len(w), -1).sum(axis=1) > 0
-    v, w, r = v[keep], w[keep], r[keep]
-    mean, first = weighted_block_error(v, w)
-    best = np.where(len(w) >= min_blocks, first, np.nan)
-    while True:
-        v, w, r = merge_pairs(v, w, r)
-        if len(w) < min_blocks:
-            break
-        _, se = weighted_block_error(v, w)
-        best = np.fmax(best, se)
-    # too few blocks for a plateau: plain block error (n_effective then tells how rough it is)
-    best = np.where(np.isnan(best), first, best)
-    # replicas are independent samples too: a disagreement between them is never hidden by
-    # well-converged-looking blocks inside each (the last blocking level: one block per replica)
-    v0 = np.asarray(block_values, dtype=float)[keep]
-    w0 = np.asarray(block_weights, dtype=float)
-    w0 = w0.reshape(w0.shape + (1,) * (v0.ndim - w0.ndim))[keep]
-    replicas = np.unique(r0 := np.asarray(block_replica)[keep])
-    if len(replicas) >= 2:
-        v_rep = np.stack([v0[r0 == k].sum(axis=0) for k in replicas])
-        w_rep = np.stack([w0[r0 == k].sum(axis=0) for k in replicas])
-        _, se_rep = weighted_block_error(v_rep, w_rep)
-        best = np.fmax(best, se_rep)
-    n_samples = np.asarray(block_weights, dtype=float)
-    n_samples = n_samples.reshape(n_samples.shape + (1,) * (np.ndim(block_values) - n_samples.ndim))
-    n_samples = np.broadcast_to(n_samples.sum(axis=0), np.shape(mean))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        n_eff = mean * (1.0 - mean) / best ** 2
-        n_eff = np.where(best > 0, np.minimum(n_eff, n_samples), np.inf)
-    return mean, best, n_eff
-
-
-#: Fewest values for which :func:`blocking_error` uses the numba kernel by default (below it
-#: NumPy takes a few milliseconds at most).
-COMPILED_MIN_VALUES = 1 << 16
-
-
-def _blocking_kernels(compiled, size):
-    if compiled is False or (compiled is None and size < COMPILED_MIN_VALUES):
-        return None
     from .angles import compiled_kernels
 
-    kernels = compiled_kernels()
-    if kernels is None and compiled:
-        raise ImportError("the compiled blocking analysis needs numba: pip install numba")
-    return kernels
+    return _compiled_blocking(compiled_kernels(), block_values, block_weights, block_replica, min_blocks,
+                              weight_columns)
 
 
 def blocking_levels(replica, min_blocks=MIN_BLOCKS):
