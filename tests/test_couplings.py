@@ -276,6 +276,11 @@ def test_haasnoot_substituents_and_mirror_symmetry(tmp_path):
         ang = res.angles()[res.torsion_set.labels[0]].to_numpy(float)
         assert np.allclose(ang, -t if mirror else t, atol=0.01)
         results.append(ensemble_couplings(res, "haasnoot-altona-1980"))
+        # the same substituents from a universe handed in instead of the recorded topology
+        import MDAnalysis as mda
+        given = ensemble_couplings(res, "haasnoot-altona-1980", universe=mda.Universe(pdb))
+        assert given.substituents == results[-1].substituents
+        pd.testing.assert_frame_equal(given.couplings, results[-1].couplings, check_exact=True)
     subs = [list(r.substituents.values())[0] for r in results]
     # one substituent (O) on C2; Huggins O 3.50 - H 2.20 = 1.30 with an H as its only beta atom
     # (Huggins electronegativities as used by Haasnoot, de Leeuw & Altona 1980, from memory)
@@ -360,7 +365,8 @@ def test_reference_populations_z_scores_and_verdicts(rb_folder, tmp_path):
     path = tmp_path / "ref.csv"
     pd.DataFrame({"type": [ttype, ttype], "state": ["anti", "gauche+|gauche-"],
                   "population": [anti, 1 - anti], "population_err": [0.01, 0.01]}).to_csv(path, index=False)
-    rows, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    ref = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    rows, verdicts = ref.rows, ref.verdicts
     # analytic: exact Boltzmann populations of the sampled potential are consistent
     assert verdicts.iloc[0]["verdict"] == "consistent"
     # analytic identity: gauche+ + gauche- = 1 - anti, with the same standard error
@@ -371,12 +377,12 @@ def test_reference_populations_z_scores_and_verdicts(rb_folder, tmp_path):
     # a reference 0.1 off is inconsistent (|z| > 3), one 2.5 sigma off is in tension
     pd.DataFrame({"type": [ttype], "state": ["anti"], "population": [anti - 0.1],
                   "population_err": [0.01]}).to_csv(path, index=False)
-    _, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path))).verdicts
     assert verdicts.iloc[0]["verdict"] == "inconsistent"
     p, se = rows.iloc[0]["population"], rows.iloc[0]["population_err"]
     pd.DataFrame({"type": [ttype], "state": ["anti"], "population": [p - 2.5 * np.hypot(se, 0.001)],
                   "population_err": [0.001]}).to_csv(path, index=False)
-    _, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path))).verdicts
     assert verdicts.iloc[0]["verdict"] == "tension"
     pd.DataFrame({"type": [ttype], "state": ["trans"], "population": [0.5],
                   "population_err": [0.01]}).to_csv(path, index=False)
