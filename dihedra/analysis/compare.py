@@ -52,10 +52,10 @@ Method
 
 Example
 -------
->>> from dihedra.analysis.compare import compare_with_scan            # doctest: +SKIP
->>> cmp = compare_with_scan(result, scan, temperature_k=298.15)
->>> cmp.table[["type", "rmse_kj_mol", "verdict"]]
->>> cmp.save(folder)                                                  # comparison.csv, ...
+>>> from dihedra.analysis.compare import compare_with_scan
+>>> cmp = compare_with_scan(result, scan, temperature_k=298.15)      # doctest: +SKIP
+>>> cmp.table[["type", "rmse_kj_mol", "verdict"]]                    # doctest: +SKIP
+>>> cmp.save(folder)           # comparison.csv, ...                # doctest: +SKIP
 """
 
 from __future__ import annotations
