@@ -190,11 +190,15 @@ def test_in_memory_and_saved_results_give_identical_tables(tmp_path):
         b.save(str(tmp_path / name))
     for table in ("comparison.csv", "comparison_profiles.csv", "couplings.csv", "couplings_vs_experiment.csv"):
         assert (tmp_path / "mem" / table).read_bytes() == (tmp_path / "loaded" / table).read_bytes(), table
-    # an analysis that has run stands for its tracking result (dihedra.trajectory.result.as_result)
-    from types import SimpleNamespace
-    ran = SimpleNamespace(tracking_result=memory)
-    pd.testing.assert_frame_equal(ensemble_couplings(ran, "karplus-1959", select=[memory.torsion_set.types[0]]).couplings,
+    # a TorsionStates analysis that has run stands for its tracking result: the same tables
+    import MDAnalysis as mda
+    from dihedra import TorsionStates
+    ran = TorsionStates(mda.Universe(pdb, dcd), "rotatable", temperature_k=T, keep_states=False).run()
+    pd.testing.assert_frame_equal(ensemble_couplings(ran, "karplus-1959", select=[memory.torsion_set.types[0]],
+                                                     experimental=experimental).couplings,
                                   cr.couplings, check_exact=True)
+    pd.testing.assert_frame_equal(compare_with_scan(ran, scan, temperature_k=T, n_bootstrap=50).table, cm.table,
+                                  check_exact=True)
     with pytest.raises(DihedraError, match="expected a tracking result"):
         compare_with_scan(str(folder), scan, temperature_k=T)
     # a scan may be given as a file (units in the column names)
