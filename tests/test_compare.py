@@ -10,7 +10,7 @@ from scipy import integrate
 from scipy.spatial.distance import jensenshannon
 
 from dihedra.analysis.compare import (Thresholds, align_offset, compare_with_scan, js_divergence_bits,
-                             predicted_state_populations, write_comparison)
+                                      predicted_state_populations)
 from dihedra.errors import DihedraError
 from dihedra.analysis.profiles import type_profiles
 from dihedra.analysis.scans import read_scan_csv, scan_from_points
@@ -35,8 +35,9 @@ def scan_csv(path, header, energies_kj_mol, factor=1.0):
 
 
 def test_butane_profile_matches_rb_potential(butane):
-    # CHECK-VALUES.md (Ryckaert & Bellemans 1978): a united-atom butane with the RB torsion and no 1-4
-    # nonbonded terms samples exp(-V/kT); RMSE between profile and V under 0.5 kJ/mol where V < 15
+    # Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95: a united-atom butane with the RB
+    # torsion and no 1-4 nonbonded terms samples exp(-V/kT); RMSE between profile and V under 0.5 kJ/mol
+    # where V < 15
     res, source = butane
     hist, _ = type_profiles(res, T, kernel=False)[res.torsion_set.types[0]]
     v = rb_energy(hist.angle_deg)
@@ -49,27 +50,28 @@ def test_butane_profile_matches_rb_potential(butane):
 
 
 def test_butane_verdicts(butane, tmp_path):
-    # CHECK-VALUES.md: against the exact RB scan (given in kcal/mol, 4.184 kJ per kcal) the verdict is
-    # "consistent"; against a scan whose gauche region is raised by 2.5 kJ/mol, "inconsistent"
+    # against the exact RB scan (Ryckaert & Bellemans 1978; given in kcal/mol, 4.184 kJ per thermochemical
+    # kcal, common practice) the verdict is "consistent"; against a scan whose gauche region is raised by
+    # 2.5 kJ/mol, "inconsistent"
     res, source = butane
     exact = read_scan_csv(scan_csv(tmp_path / "exact.csv", "angle_deg,energy_kcal_mol", rb_energy(GRID), 4.184))
-    good = compare_with_scan(res, exact, T)
+    good = compare_with_scan(res, exact, temperature_k=T)
     assert good.table["verdict"].tolist() == ["consistent"], (source, good.table["verdict_reason"].tolist())
     assert good.table["rmse_kj_mol"].iloc[0] < 0.5
     raised_e = rb_energy(GRID) + np.where(np.abs(GRID) < 120, 2.5, 0.0)
     raised = read_scan_csv(scan_csv(tmp_path / "raised.csv", "angle_deg,energy_kj_mol", raised_e))
-    bad = compare_with_scan(res, raised, T)
+    bad = compare_with_scan(res, raised, temperature_k=T)
     assert bad.table["verdict"].tolist() == ["inconsistent"], (source, bad.table["verdict_reason"].tolist())
     # the gauche populations are far above the raised scan's prediction
     assert (bad.table[["z_score_gauche+", "z_score_gauche-"]] > 3).all(axis=None)
 
 
 def test_undersampled_when_a_scan_minimum_is_never_visited(butane):
-    # issue rule: undersampled when the reliable region misses a minimum of the scan (here a deep
+    # the rule of dihedra.analysis.compare: undersampled when the reliable region misses a minimum of the scan (here a deep
     # cis minimum that the RB simulation never visits)
     res, _ = butane
     e = rb_energy(GRID) - 60.0 * np.exp(-(GRID / 20.0) ** 2)
-    cmp = compare_with_scan(res, scan_from_points(GRID, e), T)
+    cmp = compare_with_scan(res, scan_from_points(GRID, e), temperature_k=T)
     assert cmp.table["verdict"].iloc[0] == "undersampled"
     assert "misses the scan minimum" in cmp.table["verdict_reason"].iloc[0]
 
@@ -105,11 +107,11 @@ def test_offset_alignment_recovers_a_shift():
 
 
 def test_files_and_text(butane, tmp_path):
-    # common practice (DOMAIN.md): tidy tables with units, JSON with thresholds, text that explains
+    # common practice: tidy tables with units, JSON with thresholds, text that explains
     res, _ = butane
     scan = read_scan_csv(scan_csv(tmp_path / "s.csv", "angle_deg,energy_kj_mol", rb_energy(GRID)), kind="relaxed")
-    cmp = compare_with_scan(res, scan, T, thresholds=Thresholds(tolerance_kj_mol=0.8))
-    paths = write_comparison(cmp, str(tmp_path))
+    cmp = compare_with_scan(res, scan, temperature_k=T, thresholds=Thresholds(tolerance_kj_mol=0.8))
+    paths = cmp.save(str(tmp_path))
     table = pd.read_csv(paths[0])
     assert {"rmse_kj_mol", "max_abs_difference_kj_mol", "js_divergence_bits", "verdict"} <= set(table.columns)
     details = json.load(open(paths[2]))
@@ -141,3 +143,61 @@ def test_types_must_be_named_when_several():
     with pytest.raises(DihedraError, match="--type"):
         from dihedra.analysis.compare import select_types
         select_types(Fake, None)
+
+
+def test_in_memory_and_saved_results_give_identical_tables(tmp_path):
+    # the calling convention: an analysis reads only the result object, so a result kept in memory
+    # and the same result written and loaded back give the same tables
+    from dihedra.analysis.couplings import ensemble_couplings, read_experimental
+    from dihedra.io.resultsdir import load_results, write_results
+    from dihedra.tracking import track
+    from synthetic_rotors import inverse_cdf_samples, write_rotor_trajectory
+
+    angles = inverse_cdf_samples(rb_energy, T, (400, 40), np.random.default_rng(21))
+    pdb, dcd = write_rotor_trajectory(str(tmp_path), "mem", angles)
+    memory = track(pdb, [dcd], torsions="rotatable", scheme="anti-gauche", temperature_k=T)
+    assert memory.folder is None
+    folder = tmp_path / "saved"
+    folder.mkdir()
+    write_results(memory, str(folder))
+    loaded = load_results(str(folder))
+    scan = scan_from_points(GRID, rb_energy(GRID))
+    label = memory.torsion_set.labels[3]
+    pd.DataFrame({"torsion": [label], "J_hz": [5.0], "J_err_hz": [0.3]}).to_csv(tmp_path / "exp.csv", index=False)
+    experimental = read_experimental(str(tmp_path / "exp.csv"))
+    both = []
+    for res in (memory, loaded):
+        cmp = compare_with_scan(res, scan, temperature_k=T, n_bootstrap=50)
+        cres = ensemble_couplings(res, "karplus-1959", select=[res.torsion_set.types[0]], experimental=experimental)
+        both.append((cmp, cres))
+    (cm, cr), (lm, lr) = both
+    # couplings come from the block histograms alone: exactly equal
+    pd.testing.assert_frame_equal(cr.couplings, lr.couplings, check_exact=True)
+    pd.testing.assert_frame_equal(cr.experiment, lr.experiment, check_exact=True)
+    assert cr.experiment_summary == lr.experiment_summary
+    pd.testing.assert_frame_equal(cm.profiles, lm.profiles, check_exact=True)
+    pd.testing.assert_frame_equal(cm.table, lm.table, check_exact=True)
+    assert json.dumps(cm.details, default=str) == json.dumps(lm.details, default=str)
+    # and the files written are the same
+    for name, (a, b) in {"mem": (cm, cr), "loaded": (lm, lr)}.items():
+        (tmp_path / name).mkdir()
+        a.save(str(tmp_path / name))
+        b.save(str(tmp_path / name))
+    for table in ("comparison.csv", "comparison_profiles.csv", "comparison.json", "couplings.csv",
+                  "couplings_vs_experiment.csv", "couplings.json"):
+        assert (tmp_path / "mem" / table).read_bytes() == (tmp_path / "loaded" / table).read_bytes(), table
+    # a TorsionStates analysis that has run stands for its tracking result: the same tables
+    import MDAnalysis as mda
+    from dihedra import TorsionStates
+    ran = TorsionStates(mda.Universe(pdb, dcd), "rotatable", temperature_k=T, keep_states=False).run()
+    pd.testing.assert_frame_equal(ensemble_couplings(ran, "karplus-1959", select=[memory.torsion_set.types[0]],
+                                                     experimental=experimental).couplings,
+                                  cr.couplings, check_exact=True)
+    pd.testing.assert_frame_equal(compare_with_scan(ran, scan, temperature_k=T, n_bootstrap=50).table, cm.table,
+                                  check_exact=True)
+    with pytest.raises(DihedraError, match="expected a tracking result"):
+        compare_with_scan(str(folder), scan, temperature_k=T)
+    # a scan may be given as a file (units in the column names)
+    path = scan_csv(tmp_path / "scan.csv", "angle_deg,energy_kj_mol", rb_energy(GRID))
+    from_file = compare_with_scan(memory, path, temperature_k=T, n_bootstrap=50)
+    pd.testing.assert_frame_equal(from_file.table, cm.table, check_exact=True)

@@ -10,8 +10,8 @@ import pytest
 from scipy import integrate
 
 from conftest import place_fourth
-from dihedra.analysis.couplings import (KarplusRelation, compare_with_experiment, compute_couplings,
-                               ensemble_couplings, get_relation, read_experimental)
+from dihedra.analysis.couplings import (KarplusRelation, compare_with_experiment, couplings_from_histograms,
+                                        ensemble_couplings, get_relation, read_experimental)
 from dihedra.errors import DihedraError
 from dihedra.io.resultsdir import load_results
 from dihedra.tracking import track
@@ -28,17 +28,19 @@ EDGES = np.linspace(-180.0, 180.0, 361)
 
 def test_vuister_bax_check_values():
     vb = get_relation("vuister-bax-1993")
-    # CHECK-VALUES.md (derived, Vuister & Bax 1993): J(-60) = 4.107, J(-120) = 9.870, J(60) = 6.350
+    # Vuister & Bax, J. Am. Chem. Soc. 115 (1993) 7772 (A = 6.51, B = -1.76, C = 1.60 Hz, theta = phi - 60),
+    # values derived from the coefficients: J(-60) = 4.107, J(-120) = 9.870, J(60) = 6.350
     assert vb.evaluate(-60.0) == pytest.approx(4.107, abs=1e-3)
     assert vb.evaluate(-120.0) == pytest.approx(9.870, abs=1e-3)
     assert vb.evaluate(60.0) == pytest.approx(6.350, abs=1e-3)
-    # CHECK-VALUES.md: J(-120) is the maximum (A - B + C)
+    # analytic (Vuister & Bax 1993 form): J(-120) is the maximum (A - B + C)
     grid = np.linspace(-180, 180, 3601)
     assert grid[np.argmax(vb.evaluate(grid))] == pytest.approx(-120.0, abs=0.1)
 
 
 def test_hu_bax_and_pardi_follow_their_coefficients():
-    # CHECK-VALUES.md coefficients; maximum A - B + C at theta = 180 deg, i.e. phi = -120 deg (analytic)
+    # coefficients of Hu & Bax, J. Am. Chem. Soc. 119 (1997) 6360 and Pardi, Billeter & Wuthrich,
+    # J. Mol. Biol. 180 (1984) 741; maximum A - B + C at theta = 180 deg, i.e. phi = -120 deg (analytic)
     assert get_relation("hu-bax-1997").evaluate(-120.0) == pytest.approx(7.09 + 1.42 + 1.55, abs=1e-9)
     assert get_relation("pardi-1984").evaluate(-120.0) == pytest.approx(6.4 + 1.4 + 1.9, abs=1e-9)
     # theta = phi - 60 = 0 gives A + B + C (analytic)
@@ -47,7 +49,7 @@ def test_hu_bax_and_pardi_follow_their_coefficients():
 
 def test_karplus_1959_check_values():
     k = get_relation("karplus-1959")
-    # CHECK-VALUES.md (Karplus 1959): J(0) = 8.22, J(90) = -0.28, J(180) = 9.22
+    # Karplus, J. Chem. Phys. 30 (1959) 11 (8.5 / 9.5 cos^2 - 0.28): J(0) = 8.22, J(90) = -0.28, J(180) = 9.22
     assert k.evaluate(0.0) == pytest.approx(8.22, abs=1e-9)
     assert k.evaluate(90.0) == pytest.approx(-0.28, abs=1e-9)
     assert k.evaluate(180.0) == pytest.approx(9.22, abs=1e-9)
@@ -56,7 +58,8 @@ def test_karplus_1959_check_values():
 
 def test_haasnoot_without_substituents_is_the_plain_cosine_form():
     h = get_relation("haasnoot-altona-1980")
-    # CHECK-VALUES.md P1..P3 = 13.7, -0.73, 0: J(0) = P1 + P2, J(180) = P1 - P2 (analytic)
+    # Haasnoot, de Leeuw & Altona, Tetrahedron 36 (1980) 2783: P1..P3 = 13.7, -0.73, 0;
+    # J(0) = P1 + P2, J(180) = P1 - P2 (analytic)
     assert h.evaluate(0.0) == pytest.approx(13.7 - 0.73, abs=1e-9)
     assert h.evaluate(180.0) == pytest.approx(13.7 + 0.73, abs=1e-9)
     # a substituent adds dchi (P4 + P5 cos^2(xi phi + P6 |dchi|)) (the published form)
@@ -95,7 +98,7 @@ def test_exact_bin_probabilities_give_the_integral():
     hist = np.tile(probs / 16, (16, 1, 1))  # 16 identical blocks
     for name in ("vuister-bax-1993", "karplus-1959"):
         rel = get_relation(name)
-        j, err, _ = ensemble_couplings(hist, np.zeros(16, int), rel.bin_means(EDGES)[None, :])
+        j, err, _ = couplings_from_histograms(hist, np.zeros(16, int), rel.bin_means(EDGES)[None, :])
         assert j[0] == pytest.approx(boltzmann_average(rel, rb_energy), abs=2e-3)
         assert err[0] == pytest.approx(0.0, abs=1e-12)
 
@@ -115,7 +118,7 @@ def test_sampled_average_matches_the_integral_within_error(rb_folder):
     # numerical integral (scipy) of J over exp(-V_RB/kT); sampled average within 3 standard errors
     ttype = rb_folder.torsion_set.types[0]
     for name in ("vuister-bax-1993", "karplus-1959"):
-        cres = compute_couplings(rb_folder, name, select=[ttype])
+        cres = ensemble_couplings(rb_folder, name, select=[ttype])
         pooled = cres.couplings[cres.couplings["level"] == "type"].iloc[0]
         expected = boltzmann_average(get_relation(name), rb_energy)
         assert abs(pooled["j_hz"] - expected) < 3 * pooled["j_err_hz"]
@@ -129,7 +132,7 @@ def test_sampled_average_matches_the_integral_within_error(rb_folder):
 
 def test_hn_ha_family_spread_is_reported_separately(rb_folder):
     ttype = rb_folder.torsion_set.types[0]
-    cres = compute_couplings(rb_folder, ["vuister-bax-1993", "hu-bax-1997", "pardi-1984"], select=[ttype])
+    cres = ensemble_couplings(rb_folder, ["vuister-bax-1993", "hu-bax-1997", "pardi-1984"], select=[ttype])
     pooled = cres.couplings[cres.couplings["level"] == "type"].set_index("relation")
     # the standard deviation of the three averages (analytic definition of the column)
     assert pooled["j_systematic_hz"].iloc[0] == pytest.approx(np.std(pooled["j_hz"].to_numpy(), ddof=1),
@@ -139,7 +142,7 @@ def test_hn_ha_family_spread_is_reported_separately(rb_folder):
 
 
 def test_relation_not_meant_for_the_torsions_says_so(rb_folder):
-    cres = compute_couplings(rb_folder, "vuister-bax-1993")
+    cres = ensemble_couplings(rb_folder, "vuister-bax-1993")
     assert any("phi" in n for n in cres.notices)
 
 
@@ -148,7 +151,7 @@ def test_relation_not_meant_for_the_torsions_says_so(rb_folder):
 # ------------------------------------------------------------------------------------------------
 
 def test_experiment_comparison_verdicts(rb_folder, tmp_path):
-    cres = compute_couplings(rb_folder, "karplus-1959", select=[rb_folder.torsion_set.types[0]])
+    cres = ensemble_couplings(rb_folder, "karplus-1959", select=[rb_folder.torsion_set.types[0]])
     per = cres.couplings[cres.couplings["level"] == "torsion"].head(6)
     truth = boltzmann_average(get_relation("karplus-1959"), rb_energy)
     good = pd.DataFrame({"torsion": per["torsion"], "J_hz": truth, "J_err_hz": 0.2})
@@ -175,17 +178,26 @@ def test_experiment_comparison_verdicts(rb_folder, tmp_path):
 
 
 def test_experiment_by_type_and_unmatched_labels(rb_folder, tmp_path):
-    cres = compute_couplings(rb_folder, "karplus-1959", select=[rb_folder.torsion_set.types[0]])
     ttype = rb_folder.torsion_set.types[0]
     path = tmp_path / "exp.csv"
     pd.DataFrame({"residue": [ttype, "XYZ99"], "J_hz": [5.0, 5.0], "J_err_hz": [0.3, 0.3]}).to_csv(path, index=False)
-    points, summary = compare_with_experiment(cres.couplings, read_experimental(str(path)))
+    cres = ensemble_couplings(rb_folder, "karplus-1959", select=[ttype], experimental=read_experimental(str(path)))
+    points, summary = cres.experiment, cres.experiment_summary
     assert points.iloc[0]["matched_as"] == "type"
     assert summary[0]["n_points"] == 1
     assert summary[0]["unmatched"][0].startswith("XYZ99")
     pd.DataFrame({"torsion": ["a"], "J": [1.0]}).to_csv(path, index=False)
     with pytest.raises(DihedraError, match="J_hz and J_err_hz"):
         read_experimental(str(path))
+    with pytest.raises(DihedraError, match="lacks the column"):
+        ensemble_couplings(rb_folder, "karplus-1959", experimental=pd.DataFrame({"torsion": ["a"]}))
+    # save writes the two tables and the JSON, with the file the values came from
+    (tmp_path / "out").mkdir()
+    paths = cres.save(str(tmp_path / "out"), experimental_path=str(path))
+    assert [os.path.basename(p) for p in paths] == ["couplings.csv", "couplings_vs_experiment.csv", "couplings.json"]
+    with open(paths[2]) as fh:
+        info = json.load(fh)
+    assert info["experimental"]["file"] == str(path) and info["experimental"]["summary"][0]["n_points"] == 1
 
 
 # ------------------------------------------------------------------------------------------------
@@ -202,7 +214,7 @@ def test_weights_give_the_reweighted_average(tmp_path):
     out = str(tmp_path / "res")
     track(pdb, [dcd], torsions="0,1,2,3", weights=str(tmp_path / "w.csv"), out=out, temperature_k=T)
     res = load_results(out)
-    cres = compute_couplings(res, "karplus-1959", select=[res.torsion_set.labels[0]])
+    cres = ensemble_couplings(res, "karplus-1959", select=[res.torsion_set.labels[0]])
     row = cres.couplings.iloc[0]
     expected = boltzmann_average(get_relation("karplus-1959"), rb_energy)
     unweighted = integrate.quad(get_relation("karplus-1959").evaluate, -180, 180, points=[-90, 90])[0] / 360
@@ -263,10 +275,15 @@ def test_haasnoot_substituents_and_mirror_symmetry(tmp_path):
         res = load_results(out)
         ang = res.angles()[res.torsion_set.labels[0]].to_numpy(float)
         assert np.allclose(ang, -t if mirror else t, atol=0.01)
-        results.append(compute_couplings(res, "haasnoot-altona-1980"))
+        results.append(ensemble_couplings(res, "haasnoot-altona-1980"))
+        # the same substituents from a universe handed in instead of the recorded topology
+        import MDAnalysis as mda
+        given = ensemble_couplings(res, "haasnoot-altona-1980", universe=mda.Universe(pdb))
+        assert given.substituents == results[-1].substituents
+        pd.testing.assert_frame_equal(given.couplings, results[-1].couplings, check_exact=True)
     subs = [list(r.substituents.values())[0] for r in results]
     # one substituent (O) on C2; Huggins O 3.50 - H 2.20 = 1.30 with an H as its only beta atom
-    # (CHECK-VALUES.md, from memory)
+    # (Huggins electronegativities as used by Haasnoot, de Leeuw & Altona 1980, from memory)
     assert [(round(d, 6), a) for d, _, a in subs[0]] == [(1.3, 2)]
     # a mirror image flips the orientation and the torsions: J(-phi, -xi) = J(phi, xi) (analytic symmetry)
     assert subs[0][0][1] == -subs[1][0][1]
@@ -282,7 +299,7 @@ def test_haasnoot_substituents_and_mirror_symmetry(tmp_path):
 
 def test_haasnoot_needs_h_c_c_h(rb_folder):
     with pytest.raises(DihedraError, match="H-C-C-H"):
-        compute_couplings(rb_folder, "haasnoot-altona-1980")
+        ensemble_couplings(rb_folder, "haasnoot-altona-1980")
 
 
 # ------------------------------------------------------------------------------------------------
@@ -294,7 +311,7 @@ def test_custom_relation_from_toml(tmp_path):
     path.write_text('[relation]\nname = "mine"\nA = 6.51\nB = -1.76\nC = 1.60\noffset_deg = -60\n'
                     'systematic_hz = 0.5\n')
     rel = get_relation(str(path))
-    # same coefficients as Vuister & Bax: the same values (CHECK-VALUES.md)
+    # same coefficients as Vuister & Bax, J. Am. Chem. Soc. 115 (1993) 7772: the same values
     assert rel.evaluate(-60.0) == pytest.approx(4.107, abs=1e-3)
     assert rel.systematic_hz == 0.5
     path.write_text('[relation]\nA = 1\n')
@@ -348,7 +365,8 @@ def test_reference_populations_z_scores_and_verdicts(rb_folder, tmp_path):
     path = tmp_path / "ref.csv"
     pd.DataFrame({"type": [ttype, ttype], "state": ["anti", "gauche+|gauche-"],
                   "population": [anti, 1 - anti], "population_err": [0.01, 0.01]}).to_csv(path, index=False)
-    rows, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    ref = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    rows, verdicts = ref.rows, ref.verdicts
     # analytic: exact Boltzmann populations of the sampled potential are consistent
     assert verdicts.iloc[0]["verdict"] == "consistent"
     # analytic identity: gauche+ + gauche- = 1 - anti, with the same standard error
@@ -359,12 +377,12 @@ def test_reference_populations_z_scores_and_verdicts(rb_folder, tmp_path):
     # a reference 0.1 off is inconsistent (|z| > 3), one 2.5 sigma off is in tension
     pd.DataFrame({"type": [ttype], "state": ["anti"], "population": [anti - 0.1],
                   "population_err": [0.01]}).to_csv(path, index=False)
-    _, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path))).verdicts
     assert verdicts.iloc[0]["verdict"] == "inconsistent"
     p, se = rows.iloc[0]["population"], rows.iloc[0]["population_err"]
     pd.DataFrame({"type": [ttype], "state": ["anti"], "population": [p - 2.5 * np.hypot(se, 0.001)],
                   "population_err": [0.001]}).to_csv(path, index=False)
-    _, verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path)))
+    verdicts = compare_reference_populations(rb_folder, read_reference_populations(str(path))).verdicts
     assert verdicts.iloc[0]["verdict"] == "tension"
     pd.DataFrame({"type": [ttype], "state": ["trans"], "population": [0.5],
                   "population_err": [0.01]}).to_csv(path, index=False)

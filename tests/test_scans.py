@@ -27,13 +27,13 @@ ANGLES = np.arange(-180.0, 180.0, 15.0)
 
 
 def test_unit_constants():
-    # CHECK-VALUES.md: 1 thermochemical calorie = 4.184 J; 1 hartree = 2625.4996 kJ/mol (CODATA 2018)
+    # 1 thermochemical calorie = 4.184 J (NIST SP 811); 1 hartree = 2625.4996 kJ/mol (CODATA 2018)
     assert CALORIE_J == 4.184
     assert abs(HARTREE_KJ_PER_MOL - 2625.4996) < 1e-4
 
 
 def test_units_from_column_names_convert(tmp_path):
-    # CHECK-VALUES.md: kcal/mol x 4.184 = kJ/mol; hartree x 2625.4996 = kJ/mol
+    # NIST SP 811 and CODATA 2018: kcal/mol x 4.184 = kJ/mol; hartree x 2625.4996 = kJ/mol
     e = rb_energy(ANGLES)
     kcal = read_scan_csv(table(tmp_path / "a.csv", "angle_deg,energy_kcal_mol", ANGLES, e / 4.184))
     assert np.allclose(kcal.energy_at(ANGLES), e - e.min(), atol=1e-9)
@@ -45,7 +45,7 @@ def test_units_from_column_names_convert(tmp_path):
 
 
 def test_units_are_mandatory(tmp_path):
-    # common practice (issue): units are mandatory unless the column names carry them
+    # common practice: units are mandatory unless the column names carry them
     path = table(tmp_path / "n.csv", "phi,E", ANGLES, rb_energy(ANGLES))
     with pytest.raises(DihedraError, match="angle unit is unknown.*--angle-unit"):
         read_scan_csv(path)
@@ -58,7 +58,7 @@ def test_units_are_mandatory(tmp_path):
 
 
 def test_bad_files_get_clear_errors(tmp_path):
-    # common practice (issue): non-numeric cells, too few points, gaps over 60 degrees (with where)
+    # common practice: non-numeric cells, too few points, gaps over 60 degrees (with where)
     bad = write(tmp_path / "x.csv", "angle_deg,energy_kj_mol\n0,1\n30,abc\n60,2\n90,3\n120,4\n150,5\n180,0\n")
     with pytest.raises(DihedraError, match="row 2.*'abc' is not a number"):
         read_scan_csv(bad)
@@ -88,7 +88,8 @@ def test_duplicates_averaged_and_periodic_spline(tmp_path):
 
 
 def test_rb_parameters(tmp_path):
-    # CHECK-VALUES.md (Ryckaert & Bellemans 1978, derived): V(180) = 0, V(0) = 44.80 kJ/mol, gauche
+    # Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95 (values derived from C0..C5):
+    # V(180) = 0, V(0) = 44.80 kJ/mol, gauche
     # minimum near +-60 at 2.93 kJ/mol (recomputed with scipy.optimize)
     path = write(tmp_path / "rb.toml", 'form = "ryckaert-bellemans"\nenergy_unit = "kJ/mol"\n'
                                        f"coefficients = {list(RB_BUTANE)}\n")
@@ -103,7 +104,8 @@ def test_rb_parameters(tmp_path):
 
 
 def test_cosine_series_equals_rb_by_the_published_conversion(tmp_path):
-    # CHECK-VALUES.md: OPLS/Fourier V = 1/2[F1(1+cos) + F2(1-cos 2phi) + F3(1+cos 3phi) + F4(1-cos 4phi)]
+    # analytic (trigonometric identities): the Fourier form
+    # V = 1/2[F1(1+cos) + F2(1-cos 2phi) + F3(1+cos 3phi) + F4(1-cos 4phi)]
     # converts to RB with C0 = F2 + (F1+F3)/2, C1 = (-F1+3F3)/2, C2 = -F2+4F4, C3 = -2F3, C4 = -4F4
     f1, f2, f3, f4 = 5.9, -1.1, 13.2, 0.7
     toml = ('form = "cosine-series"\nenergy_unit = "kJ/mol"\n'
@@ -143,8 +145,8 @@ def butane_pdb(tmp_path_factory):
 
 
 def test_mmff94_butane_scan(butane_pdb, tmp_path):
-    # from memory (loose bound, CHECK-VALUES.md gives 2.6-4.0 kJ/mol for the gas-phase enthalpy):
-    # MMFF94 butane has its minima at anti and near +-65 degrees, gauche a few kJ/mol above anti
+    # from memory (loose bound; the gas-phase gauche-anti enthalpy of butane is about 2.6-4.0 kJ/mol):
+    # MMFF94 (Halgren, J. Comput. Chem. 17 (1996) 490) butane has its minima at anti and near +-65 degrees, gauche a few kJ/mol above anti
     from dihedra.analysis.scans import mmff94_scan
     from dihedra.analysis.compare import scan_features
     mol, path = butane_pdb
@@ -180,8 +182,9 @@ def test_united_atom_topology_refused(tmp_path):
 
 @pytest.mark.slow
 def test_gfn2_xtb_ethane_scan():
-    # common practice / CHECK-VALUES.md: ethane is staggered at +-60 and 180 (H-C-C-H) with an
-    # eclipsed barrier of about 12 kJ/mol (GFN2-xTB is known to land somewhat lower; loose bound)
+    # common practice: ethane is staggered at +-60 and 180 (H-C-C-H) with an
+    # eclipsed barrier of about 12 kJ/mol (GFN2-xTB, Bannwarth, Ehlert & Grimme, J. Chem. Theory Comput. 15
+    # (2019) 1652, is known to land somewhat lower; loose bound)
     from rdkit import Chem
     from rdkit.Chem import AllChem
     from dihedra.analysis.scans import xtb_scan

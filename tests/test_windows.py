@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 from scipy import integrate
 
-from dihedra.analysis.couplings import compute_couplings, get_relation
+from dihedra.analysis.couplings import ensemble_couplings, get_relation
 from dihedra.errors import DihedraError
 from dihedra.analysis.profiles import compute_profiles
 from dihedra.io.resultsdir import load_results
@@ -176,7 +176,7 @@ def test_windows_folder_serves_couplings_and_populations(synthetic):
     # couplings from the weighted histograms equal the integral within error (scipy)
     rel = get_relation("karplus-1959")
     expected = integrate.quad(lambda x: rel.evaluate(x) * w(x), -180, 180, points=[-90, 0, 90], limit=200)[0] / z
-    cres = compute_couplings(res, "karplus-1959", select=[res.torsion_set.types[0]])
+    cres = ensemble_couplings(res, "karplus-1959", select=[res.torsion_set.types[0]])
     pooled = cres.couplings[cres.couplings["level"] == "type"].iloc[0]
     assert abs(pooled["j_hz"] - expected) < 4 * pooled["j_err_hz"]
     # the profile files have the layout of dihedra profile

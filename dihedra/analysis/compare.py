@@ -52,23 +52,28 @@ Method
 
 Example
 -------
->>> from dihedra.analysis.compare import compare_with_scan            # doctest: +SKIP
->>> cmp = compare_with_scan(result, scan, temperature_k=298.15)
->>> cmp.table[["type", "rmse_kj_mol", "verdict"]]
+>>> from dihedra.analysis.compare import compare_with_scan
+>>> cmp = compare_with_scan(result, scan, temperature_k=298.15)      # doctest: +SKIP
+>>> cmp.table[["type", "rmse_kj_mol", "verdict"]]                    # doctest: +SKIP
+>>> cmp.save(folder)           # comparison.csv, ...                # doctest: +SKIP
 """
 
 from __future__ import annotations
 
+import os
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from ..errors import DihedraError
-from ..io.tables import write_json, write_table
+from ..io.tables import json_ready, write_json, write_table
+from ..trajectory.result import as_result
 from ..units import kt_kj_mol, wrap_deg
 from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
                        find_minima, resolve_temperature, state_blocks, state_free_energies, type_profiles)
+from .reference_populations import add_to_comparison
+from .scans import read_scan
 
 #: Sub-points per bin for the bin-averaged prediction.
 _SUB = 50
@@ -109,17 +114,40 @@ class Comparison:
     Attributes
     ----------
     table : DataFrame
-        One row per type, one column per metric, plus ``verdict`` and ``verdict_reason``.
+        One row per type, one column per metric, plus ``verdict`` and ``verdict_reason`` (and the
+        ``reference_*`` columns after :meth:`add_reference`).
     profiles : DataFrame
         Per type and bin: sampled F with error, aligned scan prediction, difference, reliable.
     details : dict
         Everything (settings, scan, features side by side, states) for comparison.json.
+    notices : list of str
+    parameters : dict
+        The options of the call.
     """
 
     table: pd.DataFrame
     profiles: pd.DataFrame
     details: dict
-    notes: list = field(default_factory=list)
+    notices: list = field(default_factory=list)
+    parameters: dict = field(default_factory=dict)
+
+    def add_reference(self, reference):
+        """Merge a comparison with reference populations
+        (:func:`~dihedra.analysis.reference_populations.compare_reference_populations`) into this
+        one: the columns ``reference_*`` of the table and the section ``reference_populations`` of
+        the details. Returns this comparison."""
+        self.table = add_to_comparison(self.table, self.details, reference.rows, reference.verdicts,
+                                       reference.parameters.get("file"))
+        self.notices.extend(reference.notices)
+        self.parameters["reference_populations"] = dict(reference.parameters)
+        return self
+
+    def save(self, folder):
+        """Write comparison.csv, comparison_profiles.csv and comparison.json into ``folder``
+        (atomically); returns the paths."""
+        return [write_table(self.table, folder, "comparison.csv"),
+                write_table(self.profiles, folder, "comparison_profiles.csv"),
+                write_json(json_ready(self.details), folder, "comparison.json")]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -229,7 +257,7 @@ def _match(scan_items, sampled_items, key="angle_deg"):
 
 
 # ----------------------------------------------------------------------------------------------
-# The comparison of a results folder with one scan
+# The comparison of a tracking result with one scan
 # ----------------------------------------------------------------------------------------------
 
 def select_types(result, types):
@@ -252,16 +280,167 @@ def select_types(result, types):
     return list(dict.fromkeys(types))
 
 
-def compare_with_scan(result, scan, temperature_k=None, types=None, bin_width_deg=DEFAULT_BIN_WIDTH_DEG,
+def _profile_metrics(prof, scan, kt, thresholds):
+    """The sampled profile of one type against the scan's prediction on its bins: the columns of
+    comparison_profiles.csv and the profile metrics (before states and verdict)."""
+    n_bins = len(prof.angle_deg)
+    f_pred, q = predicted_bin_profile(scan, n_bins, kt)
+    mask = reliable_bins(prof, kt, thresholds)
+    f = prof.free_energy_kj_mol
+    err = prof.free_energy_err_kj_mol
+    offset = align_offset(f, f_pred, err, mask, kt)
+    diff = f - f_pred - offset
+    n_rel = int(mask.sum())
+    if n_rel:
+        rmse = float(np.sqrt(np.mean(diff[mask] ** 2)))
+        excess = float(np.sqrt(max(0.0, rmse ** 2 - np.mean(err[mask] ** 2))))
+        worst = int(np.flatnonzero(mask)[np.argmax(np.abs(diff[mask]))])
+        max_abs, max_at = float(abs(diff[worst])), float(prof.angle_deg[worst])
+    else:
+        rmse = excess = max_abs = max_at = np.nan
+    p_hist = np.where(prof.sampled, prof.samples, 0.0)
+    jsd = js_divergence_bits(p_hist, q)
+    columns = {"angle_deg": prof.angle_deg, "free_energy_kj_mol": f,
+               "free_energy_err_kj_mol": np.where(prof.sampled, err, np.nan), "sampled": prof.sampled,
+               "reliable": mask, "scan_free_energy_kj_mol": f_pred + offset if np.isfinite(offset) else f_pred,
+               "difference_kj_mol": diff}
+    metrics = {"n_reliable_bins": n_rel, "reliable_span_deg": n_rel * 360.0 / n_bins,
+               "offset_kj_mol": offset, "rmse_kj_mol": rmse, "excess_rmse_kj_mol": excess,
+               "max_abs_difference_kj_mol": max_abs, "max_abs_difference_angle_deg": max_at,
+               "js_divergence_bits": jsd}
+    return columns, metrics
+
+
+def _features_side_by_side(prof, kt, mask, s_minima, s_barriers):
+    """Minima and barriers of the scan next to the sampled ones matched to them."""
+    from .profiles import profile_features
+
+    n_bins = len(prof.angle_deg)
+    m_minima, m_barriers = profile_features(prof, kt)
+    minima_side = []
+    for s, m in _match(s_minima, m_minima):
+        in_reliable = bool(mask[int(np.clip(np.floor((s["angle_deg"] + 180.0) / (360.0 / n_bins)), 0, n_bins - 1))])
+        minima_side.append({
+            "scan_angle_deg": s["angle_deg"], "scan_energy_kj_mol": s["energy_kj_mol"],
+            "predicted_population": s["predicted_population"], "in_reliable_region": in_reliable,
+            "sampled_angle_deg": m["angle_deg"] if m else None,
+            "sampled_angle_err_deg": m["angle_err_deg"] if m else None,
+            "sampled_free_energy_kj_mol": m["free_energy_kj_mol"] if m else None,
+            "sampled_free_energy_err_kj_mol": m["free_energy_err_kj_mol"] if m else None})
+    barriers_side = []
+    for s, m in _match(s_barriers, [b for b in m_barriers]):
+        barriers_side.append({
+            "scan_angle_deg": s["angle_deg"], "scan_energy_kj_mol": s["energy_kj_mol"],
+            "sampled_angle_deg": m["angle_deg"] if m else None,
+            "sampled_free_energy_kj_mol": m["free_energy_kj_mol"] if m and m["sampled"] else None,
+            "sampled_free_energy_err_kj_mol": m["free_energy_err_kj_mol"] if m and m["sampled"] else None,
+            "sampled": bool(m["sampled"]) if m else False})
+    return minima_side, barriers_side
+
+
+def _state_rows(t, ctx, kt):
+    """Sampled against predicted populations and state free energies of type ``t``; and the
+    reference (most populated) state."""
+    scheme, pops, pred_pops = ctx["scheme"], ctx["pops"], ctx["pred_pops"]
+    dg_rows = state_free_energies(ctx["sc"][:, ctx["members"][t], :].sum(axis=1), ctx["sc_rep"], scheme.labels,
+                                  kt, ctx["smult"])
+    dg = {r["state"]: r for r in dg_rows}
+    ref = dg_rows[0]["reference_state"] if dg_rows else scheme.labels[0]
+    ref_k = scheme.labels.index(ref)
+    states = []
+    for k, label in enumerate(scheme.labels):
+        p = float(pops.loc[(t, label), "population"]) if (t, label) in pops.index else np.nan
+        pe = float(pops.loc[(t, label), "population_err"]) if (t, label) in pops.index else np.nan
+        z = (p - pred_pops[k]) / pe if pe and np.isfinite(pe) and pe > 0 else np.nan
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dg_pred = float(-kt * np.log(pred_pops[k] / pred_pops[ref_k])) + 0.0
+        dg_s = dg.get(label, {}).get("free_energy_kj_mol", np.nan)
+        dg_e = dg.get(label, {}).get("free_energy_err_kj_mol", np.nan)
+        ddg = dg_s - dg_pred if np.isfinite(dg_s) and np.isfinite(dg_pred) else np.nan
+        states.append({"state": label, "population": p, "population_err": pe,
+                       "predicted_population": float(pred_pops[k]), "z_score": z,
+                       "free_energy_kj_mol": dg_s, "free_energy_err_kj_mol": dg_e,
+                       "predicted_free_energy_kj_mol": dg_pred, "ddg_kj_mol": ddg,
+                       "reference_state": ref})
+    return states, ref
+
+
+def _verdict(metrics, minima_side, states, ref, thresholds):
+    """Verdict and its reason for one type (rules in the module notes)."""
+    n_rel, excess = metrics["n_reliable_bins"], metrics["excess_rmse_kj_mol"]
+    missing = [m for m in minima_side
+               if m["predicted_population"] >= thresholds.min_minimum_population and not m["in_reliable_region"]]
+    tol = thresholds.tolerance_kj_mol
+    bad_states = [s for s in states if s["state"] != ref and np.isfinite(s["ddg_kj_mol"])
+                  and abs(s["ddg_kj_mol"]) > tol
+                  and (not np.isfinite(s["free_energy_err_kj_mol"])
+                       or abs(s["ddg_kj_mol"]) > thresholds.n_sigma * s["free_energy_err_kj_mol"])]
+    if n_rel < thresholds.min_reliable_bins:
+        return "undersampled", f"only {n_rel} reliable bins (at least {thresholds.min_reliable_bins} needed)"
+    if missing:
+        return "undersampled", ("the reliable region misses the scan minimum at "
+                                + ", ".join(f"{m['scan_angle_deg']:.0f} deg ({100 * m['predicted_population']:.0f} % "
+                                            "predicted)" for m in missing))
+    if excess > tol or bad_states:
+        parts = []
+        if excess > tol:
+            parts.append(f"excess RMSE {excess:.2f} kJ/mol > {tol:g}")
+        for s in bad_states:
+            parts.append(f"ddG({s['state']} vs {ref}) = {s['ddg_kj_mol']:+.2f} ± "
+                         f"{s['free_energy_err_kj_mol']:.2f} kJ/mol")
+        return "inconsistent", "; ".join(parts)
+    return "consistent", (f"excess RMSE {excess:.2f} <= {tol:g} kJ/mol and every state ddG within "
+                          f"{tol:g} kJ/mol or {thresholds.n_sigma:g} sigma")
+
+
+def _compare_type(t, prof, scan, ctx, kt, thresholds):
+    """Row of comparison.csv, rows of comparison_profiles.csv and the details of one type."""
+    columns, metrics = _profile_metrics(prof, scan, kt, thresholds)
+    minima_side, barriers_side = _features_side_by_side(prof, kt, columns["reliable"], ctx["s_minima"],
+                                                        ctx["s_barriers"])
+    states, ref = _state_rows(t, ctx, kt)
+    verdict, reason = _verdict(metrics, minima_side, states, ref, thresholds)
+    row = {"type": t, "temperature_k": ctx["temperature_k"], "scan_kind": scan.kind, **metrics}
+    for s in states:
+        key = s["state"]
+        row[f"population_{key}"] = s["population"]
+        row[f"population_err_{key}"] = s["population_err"]
+        row[f"predicted_population_{key}"] = s["predicted_population"]
+        row[f"z_score_{key}"] = s["z_score"]
+        row[f"ddg_{key}_kj_mol"] = s["ddg_kj_mol"]
+    row["verdict"] = verdict
+    row["verdict_reason"] = reason
+    info = {"metrics": {k: v for k, v in row.items() if k not in ("type",)},
+            "minima": minima_side, "barriers": barriers_side, "states": states}
+    return row, pd.DataFrame({"type": t, **columns}), info
+
+
+RULES = {
+    "reliable_bin": "sampled in >= 90% of bootstrap resamples, error <= max_error_kt kT, "
+                    "F <= max_free_energy_kt kT",
+    "offset": "weighted mean of F - F_scan over reliable bins, weights 1/max(error, 0.02 kT)^2",
+    "undersampled": "a scan minimum with >= min_minimum_population predicted population outside "
+                    "the reliable region, or fewer than min_reliable_bins reliable bins",
+    "inconsistent": "excess RMSE > tolerance, or a state ddG > tolerance and > n_sigma errors",
+    "consistent": "otherwise",
+}
+
+
+def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width_deg=DEFAULT_BIN_WIDTH_DEG,
                       thresholds=Thresholds(), n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED, log=None):
     """Compare the sampled profiles of torsion types with a static scan.
 
     Parameters
     ----------
-    result : TrackResult
-    scan : dihedra.analysis.scans.TorsionScan
+    result : TrackResult or TorsionStates
+        A tracking result (:func:`dihedra.tracking.track`, :func:`dihedra.io.resultsdir.load_results`)
+        or an analysis that has run.
+    scan : dihedra.analysis.scans.TorsionScan or str
+        A scan, or the path of a scan CSV (units in its column names) or parameter TOML file, read
+        with :func:`dihedra.analysis.scans.read_scan`.
     temperature_k : float, optional
-        Required unless the run recorded one (then it is used and announced through ``log``).
+        Required unless the run recorded one (then it is used, announced through ``log`` and
+        in ``notices``).
     types : str or list of str, optional
         Types to compare (default: the only type; ``"all"`` for every type).
     bin_width_deg : float
@@ -275,150 +454,46 @@ def compare_with_scan(result, scan, temperature_k=None, types=None, bin_width_de
     -------
     Comparison
     """
-    temperature_k = resolve_temperature(temperature_k, result.summary, log)
+    result = as_result(result)
+    notices = []
+
+    def note(message):
+        notices.append(message)
+        if log is not None:
+            log(message)
+
+    temperature_k = resolve_temperature(temperature_k, result.summary, note)
+    if isinstance(scan, (str, os.PathLike)):
+        scan = read_scan(scan, temperature_k=temperature_k)
     kt = kt_kj_mol(temperature_k)
     types = select_types(result, types)
     profs = type_profiles(result, temperature_k, bin_width_deg, n_bootstrap=n_bootstrap, seed=seed,
                           types=types, kernel=False)
-    scheme = result.scheme
     order = list(dict.fromkeys(result.torsion_set.types))
-    members = {t: [k for k, x in enumerate(result.torsion_set.types) if x == t] for t in order}
     sc, sc_rep, smult = state_blocks(result, n_bootstrap, seed)
-    pops = result.populations_by_type.set_index(["type", "state"])
-    pred_pops = predicted_state_populations(scan, scheme, kt)
     s_minima, s_barriers = scan_features(scan, kt)
-    from .profiles import profile_features
-
+    ctx = {"temperature_k": temperature_k, "scheme": result.scheme, "sc": sc, "sc_rep": sc_rep, "smult": smult,
+           "members": {t: [k for k, x in enumerate(result.torsion_set.types) if x == t] for t in order},
+           "pops": result.populations_by_type.set_index(["type", "state"]),
+           "pred_pops": predicted_state_populations(scan, result.scheme, kt),
+           "s_minima": s_minima, "s_barriers": s_barriers}
     rows, prof_rows, per_type = [], [], {}
     for t in types:
-        prof, _ = profs[t]
-        n_bins = len(prof.angle_deg)
-        f_pred, q = predicted_bin_profile(scan, n_bins, kt)
-        mask = reliable_bins(prof, kt, thresholds)
-        f = prof.free_energy_kj_mol
-        err = prof.free_energy_err_kj_mol
-        offset = align_offset(f, f_pred, err, mask, kt)
-        diff = f - f_pred - offset
-        n_rel = int(mask.sum())
-        if n_rel:
-            rmse = float(np.sqrt(np.mean(diff[mask] ** 2)))
-            excess = float(np.sqrt(max(0.0, rmse ** 2 - np.mean(err[mask] ** 2))))
-            worst = int(np.flatnonzero(mask)[np.argmax(np.abs(diff[mask]))])
-            max_abs, max_at = float(abs(diff[worst])), float(prof.angle_deg[worst])
-        else:
-            rmse = excess = max_abs = max_at = np.nan
-        p_hist = np.where(prof.sampled, prof.samples, 0.0)
-        jsd = js_divergence_bits(p_hist, q)
-        # features side by side
-        m_minima, m_barriers = profile_features(prof, kt)
-        minima_side = []
-        for s, m in _match(s_minima, m_minima):
-            in_reliable = bool(mask[int(np.clip(np.floor((s["angle_deg"] + 180.0) / (360.0 / n_bins)), 0, n_bins - 1))])
-            minima_side.append({
-                "scan_angle_deg": s["angle_deg"], "scan_energy_kj_mol": s["energy_kj_mol"],
-                "predicted_population": s["predicted_population"], "in_reliable_region": in_reliable,
-                "sampled_angle_deg": m["angle_deg"] if m else None,
-                "sampled_angle_err_deg": m["angle_err_deg"] if m else None,
-                "sampled_free_energy_kj_mol": m["free_energy_kj_mol"] if m else None,
-                "sampled_free_energy_err_kj_mol": m["free_energy_err_kj_mol"] if m else None})
-        barriers_side = []
-        for s, m in _match(s_barriers, [b for b in m_barriers]):
-            barriers_side.append({
-                "scan_angle_deg": s["angle_deg"], "scan_energy_kj_mol": s["energy_kj_mol"],
-                "sampled_angle_deg": m["angle_deg"] if m else None,
-                "sampled_free_energy_kj_mol": m["free_energy_kj_mol"] if m and m["sampled"] else None,
-                "sampled_free_energy_err_kj_mol": m["free_energy_err_kj_mol"] if m and m["sampled"] else None,
-                "sampled": bool(m["sampled"]) if m else False})
-        # states
-        dg_rows = state_free_energies(sc[:, members[t], :].sum(axis=1), sc_rep, scheme.labels, kt, smult)
-        dg = {r["state"]: r for r in dg_rows}
-        ref = dg_rows[0]["reference_state"] if dg_rows else scheme.labels[0]
-        ref_k = scheme.labels.index(ref)
-        states = []
-        for k, label in enumerate(scheme.labels):
-            p = float(pops.loc[(t, label), "population"]) if (t, label) in pops.index else np.nan
-            pe = float(pops.loc[(t, label), "population_err"]) if (t, label) in pops.index else np.nan
-            z = (p - pred_pops[k]) / pe if pe and np.isfinite(pe) and pe > 0 else np.nan
-            with np.errstate(divide="ignore", invalid="ignore"):
-                dg_pred = float(-kt * np.log(pred_pops[k] / pred_pops[ref_k])) + 0.0
-            dg_s = dg.get(label, {}).get("free_energy_kj_mol", np.nan)
-            dg_e = dg.get(label, {}).get("free_energy_err_kj_mol", np.nan)
-            ddg = dg_s - dg_pred if np.isfinite(dg_s) and np.isfinite(dg_pred) else np.nan
-            states.append({"state": label, "population": p, "population_err": pe,
-                           "predicted_population": float(pred_pops[k]), "z_score": z,
-                           "free_energy_kj_mol": dg_s, "free_energy_err_kj_mol": dg_e,
-                           "predicted_free_energy_kj_mol": dg_pred, "ddg_kj_mol": ddg,
-                           "reference_state": ref})
-        # verdict
-        missing = [m for m in minima_side
-                   if m["predicted_population"] >= thresholds.min_minimum_population and not m["in_reliable_region"]]
-        tol = thresholds.tolerance_kj_mol
-        bad_states = [s for s in states if s["state"] != ref and np.isfinite(s["ddg_kj_mol"])
-                      and abs(s["ddg_kj_mol"]) > tol
-                      and (not np.isfinite(s["free_energy_err_kj_mol"])
-                           or abs(s["ddg_kj_mol"]) > thresholds.n_sigma * s["free_energy_err_kj_mol"])]
-        if n_rel < thresholds.min_reliable_bins:
-            verdict, reason = "undersampled", (f"only {n_rel} reliable bins (at least "
-                                               f"{thresholds.min_reliable_bins} needed)")
-        elif missing:
-            verdict = "undersampled"
-            reason = ("the reliable region misses the scan minimum at "
-                      + ", ".join(f"{m['scan_angle_deg']:.0f} deg ({100 * m['predicted_population']:.0f} % "
-                                  "predicted)" for m in missing))
-        elif excess > tol or bad_states:
-            verdict = "inconsistent"
-            parts = []
-            if excess > tol:
-                parts.append(f"excess RMSE {excess:.2f} kJ/mol > {tol:g}")
-            for s in bad_states:
-                parts.append(f"ddG({s['state']} vs {ref}) = {s['ddg_kj_mol']:+.2f} ± "
-                             f"{s['free_energy_err_kj_mol']:.2f} kJ/mol")
-            reason = "; ".join(parts)
-        else:
-            verdict = "consistent"
-            reason = (f"excess RMSE {excess:.2f} <= {tol:g} kJ/mol and every state ddG within "
-                      f"{tol:g} kJ/mol or {thresholds.n_sigma:g} sigma")
-        row = {"type": t, "temperature_k": temperature_k, "scan_kind": scan.kind,
-               "n_reliable_bins": n_rel, "reliable_span_deg": n_rel * 360.0 / n_bins,
-               "offset_kj_mol": offset, "rmse_kj_mol": rmse, "excess_rmse_kj_mol": excess,
-               "max_abs_difference_kj_mol": max_abs, "max_abs_difference_angle_deg": max_at,
-               "js_divergence_bits": jsd}
-        for s in states:
-            key = s["state"]
-            row[f"population_{key}"] = s["population"]
-            row[f"population_err_{key}"] = s["population_err"]
-            row[f"predicted_population_{key}"] = s["predicted_population"]
-            row[f"z_score_{key}"] = s["z_score"]
-            row[f"ddg_{key}_kj_mol"] = s["ddg_kj_mol"]
-        row["verdict"] = verdict
-        row["verdict_reason"] = reason
+        row, prof_frame, per_type[t] = _compare_type(t, profs[t][0], scan, ctx, kt, thresholds)
         rows.append(row)
-        prof_rows.append(pd.DataFrame({
-            "type": t, "angle_deg": prof.angle_deg, "free_energy_kj_mol": f,
-            "free_energy_err_kj_mol": np.where(prof.sampled, err, np.nan), "sampled": prof.sampled,
-            "reliable": mask, "scan_free_energy_kj_mol": f_pred + offset if np.isfinite(offset) else f_pred,
-            "difference_kj_mol": diff}))
-        per_type[t] = {"metrics": {k: v for k, v in row.items() if k not in ("type",)},
-                       "minima": minima_side, "barriers": barriers_side, "states": states}
+        prof_rows.append(prof_frame)
     details = {
         "temperature_k": temperature_k, "kt_kj_mol": kt, "bin_width_deg": float(bin_width_deg),
-        "scheme": scheme.name, "thresholds": asdict(thresholds),
+        "scheme": result.scheme.name, "thresholds": asdict(thresholds),
         "scan": {"source": scan.source, "kind": scan.kind, "metadata": scan.metadata,
                  "minima": s_minima, "barriers": s_barriers},
-        "types": per_type,
-        "rules": {
-            "reliable_bin": "sampled in >= 90% of bootstrap resamples, error <= max_error_kt kT, "
-                            "F <= max_free_energy_kt kT",
-            "offset": "weighted mean of F - F_scan over reliable bins, weights 1/max(error, 0.02 kT)^2",
-            "undersampled": "a scan minimum with >= min_minimum_population predicted population outside "
-                            "the reliable region, or fewer than min_reliable_bins reliable bins",
-            "inconsistent": "excess RMSE > tolerance, or a state ddG > tolerance and > n_sigma errors",
-            "consistent": "otherwise",
-        },
-        "cautions": CAUTIONS,
+        "types": per_type, "rules": dict(RULES), "cautions": CAUTIONS,
     }
+    parameters = {"temperature_k": temperature_k, "types": list(types), "bin_width_deg": float(bin_width_deg),
+                  "thresholds": asdict(thresholds), "n_bootstrap": int(n_bootstrap), "seed": seed,
+                  "scan": scan.source}
     return Comparison(table=pd.DataFrame(rows), profiles=pd.concat(prof_rows, ignore_index=True),
-                      details=details)
+                      details=details, notices=notices, parameters=parameters)
 
 
 CAUTIONS = [
@@ -429,27 +504,6 @@ CAUTIONS = [
     "path), from nonbonded terms the scan treats differently, or from too little sampling.",
     "Regions outside the reliable region were rarely or never visited: they are not compared.",
 ]
-
-
-def write_comparison(cmp, folder):
-    """Write comparison.csv, comparison_profiles.csv and comparison.json (atomically)."""
-    return [write_table(cmp.table, folder, "comparison.csv"),
-            write_table(cmp.profiles, folder, "comparison_profiles.csv"),
-            write_json(_jsonable(cmp.details), folder, "comparison.json")]
-
-
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, (float, np.floating)):
-        return None if not np.isfinite(obj) else float(obj)
-    if isinstance(obj, np.integer):
-        return int(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    return obj
 
 
 def format_comparison(cmp):

@@ -34,11 +34,14 @@ small: read ``n_effective`` in populations.csv.
 from __future__ import annotations
 
 import os
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from ..errors import DihedraError, InputFileError
+from ..io.tables import json_ready, write_json, write_table
+from ..trajectory.result import as_result
 
 #: Largest |z| of a "consistent" type.
 Z_TENSION = 2.0
@@ -121,23 +124,62 @@ def sampled_population(result, where, state):
     return _union_population(result, positions, [labels.index(s) for s in parts])
 
 
-def compare_reference_populations(result, reference):
-    """z-scores of sampled against reference populations, and a verdict per type.
+@dataclass
+class ReferenceComparison:
+    """Result of :func:`compare_reference_populations`.
 
-    Parameters
+    Attributes
     ----------
-    result : TrackResult
-    reference : DataFrame
-        From :func:`read_reference_populations`.
-
-    Returns
-    -------
     rows : DataFrame
         type, state, population, population_err, reference_population, reference_population_err,
         difference, z_score.
     verdicts : DataFrame
         type, n_states, max_abs_z_score, verdict, verdict_reason.
+    notices : list of str
+    parameters : dict
+        ``file`` (the reference file, absolute, or None), ``scheme``.
     """
+
+    rows: pd.DataFrame
+    verdicts: pd.DataFrame
+    notices: list = field(default_factory=list)
+    parameters: dict = field(default_factory=dict)
+
+    def save(self, folder):
+        """Write the comparison without a scan: comparison.csv (one row per type, the columns
+        ``reference_*``) and comparison.json (section ``reference_populations``); returns the paths.
+        With a scan, merge it into the scan comparison instead
+        (:meth:`dihedra.analysis.compare.Comparison.add_reference`)."""
+        details = {"scheme": self.parameters.get("scheme")}
+        table = add_to_comparison(None, details, self.rows, self.verdicts, self.parameters.get("file"))
+        return [write_table(table, folder, "comparison.csv"),
+                write_json(json_ready(details), folder, "comparison.json")]
+
+
+def compare_reference_populations(result, reference):
+    """z-scores of sampled against reference populations, and a verdict per type.
+
+    Parameters
+    ----------
+    result : TrackResult or TorsionStates
+        A tracking result (:func:`dihedra.tracking.track`, :func:`dihedra.io.resultsdir.load_results`)
+        or an analysis that has run.
+    reference : DataFrame or str
+        The reference table as read by :func:`read_reference_populations`, or the path of the file.
+
+    Returns
+    -------
+    ReferenceComparison
+    """
+    result = as_result(result)
+    path = None
+    if isinstance(reference, (str, os.PathLike)):
+        path = os.path.abspath(os.fspath(reference))
+        reference = read_reference_populations(reference)
+    need = ["type", "state", "population", "population_err"]
+    if any(c not in reference.columns for c in need):
+        raise DihedraError(f"the reference populations table needs the columns {', '.join(need)}; it has "
+                           f"{', '.join(map(str, reference.columns))}.")
     rows = []
     for ref in reference.itertuples(index=False):
         p, se = sampled_population(result, ref.type, ref.state)
@@ -162,7 +204,8 @@ def compare_reference_populations(result, reference):
                   f"{worst['reference_population_err']:.3f})")
         verdicts.append({"type": typ, "n_states": len(sub), "max_abs_z_score": zmax, "verdict": verdict,
                          "verdict_reason": reason})
-    return rows, pd.DataFrame(verdicts)
+    return ReferenceComparison(rows=rows, verdicts=pd.DataFrame(verdicts),
+                               parameters={"file": path, "scheme": result.scheme.name})
 
 
 def add_to_comparison(table, details, rows, verdicts, path=None):
@@ -194,8 +237,9 @@ def add_to_comparison(table, details, rows, verdicts, path=None):
     return merged
 
 
-def format_reference(rows, verdicts):
-    """The comparison as text for a terminal."""
+def format_reference(reference):
+    """A :class:`ReferenceComparison` as text for a terminal."""
+    rows, verdicts = reference.rows, reference.verdicts
     lines = ["reference populations (sampled vs reference, z-score):"]
     for typ, sub in rows.groupby("type", sort=False):
         v = verdicts.set_index("type").loc[typ]

@@ -1,12 +1,11 @@
 """``dihedra compare``: sampled free-energy profile versus a static torsion scan, with a verdict per type."""
 
-from ..analysis.compare import Thresholds, compare_with_scan, format_comparison, write_comparison
-from ..errors import DihedraError
+from ..analysis.compare import Thresholds, compare_with_scan, format_comparison
 from ..analysis.profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, resolve_temperature
-from ..io.resultsdir import load_results
-from ..analysis.reference_populations import (add_to_comparison, compare_reference_populations, format_reference,
-                                     read_reference_populations)
+from ..analysis.reference_populations import compare_reference_populations, format_reference
 from ..analysis.scans import read_scan
+from ..errors import DihedraError
+from ..io.resultsdir import load_results
 from .common import say
 
 
@@ -62,26 +61,20 @@ def run(args):
     cmp = compare_with_scan(result, scan, temperature_k=temperature, types=args.type,
                             bin_width_deg=args.bin_width, thresholds=thresholds, n_bootstrap=args.bootstrap,
                             seed=args.seed)
-    rows = None
+    ref = None
     if args.reference_populations:
-        rows, verdicts = compare_reference_populations(result, read_reference_populations(args.reference_populations))
-        cmp.table = add_to_comparison(cmp.table, cmp.details, rows, verdicts, args.reference_populations)
-    paths = write_comparison(cmp, result.folder)
+        ref = compare_reference_populations(result, args.reference_populations)
+        cmp.add_reference(ref)
+    paths = cmp.save(result.folder)
     print(format_comparison(cmp))
-    if rows is not None:
-        print("\n" + format_reference(rows, verdicts))
+    if ref is not None:
+        print("\n" + format_reference(ref))
     print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
 
 
 def run_reference_only(args, result):
     """Reference populations without a scan: comparison.csv and comparison.json only."""
-    from ..analysis.compare import _jsonable
-    from ..io.tables import write_json, write_table
-
-    rows, verdicts = compare_reference_populations(result, read_reference_populations(args.reference_populations))
-    details = {"scheme": result.scheme.name}
-    table = add_to_comparison(None, details, rows, verdicts, args.reference_populations)
-    paths = [write_table(table, result.folder, "comparison.csv"),
-             write_json(_jsonable(details), result.folder, "comparison.json")]
-    print(format_reference(rows, verdicts))
+    ref = compare_reference_populations(result, args.reference_populations)
+    paths = ref.save(result.folder)
+    print(format_reference(ref))
     print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")

@@ -1,7 +1,6 @@
 """``dihedra couplings``: ensemble-averaged 3J couplings of a results folder, against experiment."""
 
-from ..analysis.couplings import (BUILTIN_RELATIONS, compare_with_experiment, compute_couplings, read_experimental,
-                         write_couplings)
+from ..analysis.couplings import BUILTIN_RELATIONS, ensemble_couplings, get_relation, read_experimental
 from ..io.resultsdir import load_results
 from .common import format_pm, print_notices, say
 
@@ -27,12 +26,11 @@ def register(sub):
 
 def run(args):
     result = load_results(args.folder)
-    cres = compute_couplings(result, args.relation, select=args.select)
-    points = summary = None
-    if args.experimental:
-        points, summary = compare_with_experiment(cres.couplings, read_experimental(args.experimental))
-    paths = write_couplings(cres, result.folder, points, summary, args.experimental)
-    report(cres, summary)
+    relations = [get_relation(r) for r in args.relation]
+    experimental = read_experimental(args.experimental) if args.experimental else None
+    cres = ensemble_couplings(result, relations, select=args.select, experimental=experimental)
+    paths = cres.save(result.folder, experimental_path=args.experimental)
+    report(cres, cres.experiment_summary)
     print_notices(cres.notices)
     say("written: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
 

@@ -135,6 +135,22 @@ def write_json(data, folder, name):
     return write_file(folder, name, write)
 
 
+def json_ready(obj):
+    """``obj`` (dicts, lists, tuples, numbers) with non-finite floats as ``None`` (JSON null),
+    NumPy scalars as Python numbers and keys as strings, ready for :func:`write_json`."""
+    if isinstance(obj, dict):
+        return {str(k): json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_ready(v) for v in obj]
+    if isinstance(obj, (float, np.floating)):
+        return None if not np.isfinite(obj) else float(obj)
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
 def _json_default(obj):
     if isinstance(obj, np.integer):
         return int(obj)

@@ -1,0 +1,369 @@
+r"""Ensemble-averaged 3J couplings of a tracking result: :func:`ensemble_couplings`.
+
+Method
+------
+A Karplus relation gives a vicinal coupling constant as a function of a torsion angle,
+J(theta) with theta = phi + offset. The ensemble average over the sampled distribution of phi is
+
+.. math::  \langle J \rangle = \int J(\phi + \delta)\, p(\phi)\, d\phi
+           \approx \sum_b \bar J_b \, n_b / \sum_b n_b ,
+
+where n_b are the (weighted) counts of the fine 1-degree histogram bins that the trajectory pass
+stores per block (``blocks.npz``; with ``track --weights`` they are weighted sums, so reweighted
+and umbrella-window results average correctly) and :math:`\bar J_b` is the mean of J over bin b
+(8-point Gauss-Legendre rule inside the bin). Taking the bin mean rather than J at the bin centre
+makes the only approximation "p is constant within one degree"; for any smooth p this changes
+<J> by far less than 0.001 Hz.
+
+Statistical error: <J> is a ratio of block sums, sum_b n_b J_b over sum_b n_b, per histogram
+block (16 contiguous blocks per replica). Its standard error comes from the same blocking
+analysis as the populations (:func:`dihedra.numerics.statistics.blocking_error`: blocks merged pairwise
+within replicas, the largest error over levels with at least 8 blocks, never below the spread
+between replicas). Pooled per torsion type, <J> is the mean over the torsions of the type and
+its error sqrt(sum se_i^2)/n (the torsions taken as independent, as for populations).
+
+Systematic error of the relation, reported separately (``j_systematic_hz``), never mixed into
+``j_err_hz``: a Karplus relation is an empirical fit, and its own scatter is often larger than the
+statistical error of a long simulation.
+
+* the three 3J(HN,HA) parameter sets: the standard deviation of <J> over the three published sets
+  (Vuister & Bax 1993, Hu & Bax 1997, Pardi et al. 1984) evaluated on the same distribution
+  (``systematic_basis = parameter-set spread``), a measure of how much the choice of the fit
+  matters for this very distribution;
+* Haasnoot, de Leeuw & Altona 1980: the rms deviation of the fit to its 315 couplings, 0.48 Hz
+  (recalled from the paper, not confirmed: "from memory");
+* Karplus 1959 is a valence-bond calculation without a fitted spread: no value (empty column);
+* a custom relation: ``systematic_hz`` from its TOML file, if given.
+
+With experimental values (:mod:`dihedra.analysis.couplings.experiment`), the averages are compared
+with them in the same call.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ...errors import DihedraError, InputFileError
+from .experiment import VERDICT_RULES, compare_with_experiment
+from .relations import HN_HA_FAMILY, KarplusRelation, get_relation, substituents_of
+
+
+# ----------------------------------------------------------------------------------------------
+# Substituents of H-C-C-H torsions (Haasnoot-Altona): bonds and elements of the topology
+# ----------------------------------------------------------------------------------------------
+
+def _elements(universe, notices):
+    names = universe.atoms.names
+    try:
+        elements = np.array([str(e).strip() for e in universe.atoms.elements])
+    except (AttributeError, Exception):  # noqa: BLE001 - no element attribute
+        elements = np.array([""] * len(names))
+    missing = elements == ""
+    if missing.any():
+        guessed = np.array([_element_from_name(n) for n in names[missing]])
+        elements[missing] = guessed
+        notices.append(f"{int(missing.sum())} atoms have no element in the topology; guessed from their "
+                       "names (e.g. " + f"{names[missing][0]} -> {guessed[0]}).")
+    return np.array([e.capitalize() if len(e) <= 2 else e for e in elements])
+
+
+def _element_from_name(name):
+    letters = "".join(ch for ch in str(name) if ch.isalpha())
+    for two in ("Cl", "Br"):
+        if letters[:2].lower() == two.lower():
+            return two
+    return letters[:1].upper()
+
+
+
+def _topology_universe(result, notices, universe=None):
+    """The universe whose bonds, elements and coordinates give the substituents: ``universe`` if
+    given, else the topology recorded in the result's summary (first frame if it has no
+    coordinates)."""
+    from ...trajectory.inputs import load_universe, sha256
+
+    if universe is not None:
+        path, u = "given", universe
+    else:
+        top = result.summary.get("topology", {})
+        path = top.get("path")
+        if not path or not os.path.exists(path):
+            raise InputFileError(f"the topology recorded in summary.json ({path}) is not there; the "
+                                 "Haasnoot-Altona relation reads its bonds and elements.")
+        if top.get("sha256") and sha256(path) != top["sha256"]:
+            notices.append(f"the topology {path} changed since tracking (SHA-256 differs); its bonds and "
+                           "elements were used as they are now.")
+        u = load_universe(path)
+        try:
+            u.atoms.positions
+        except Exception:  # noqa: BLE001 - a topology without coordinates (PSF, PRMTOP): first frame
+            traj = result.summary.get("replicas", [{}])[0].get("trajectory")
+            u = load_universe(path, traj)
+    try:
+        n_bonds = len(u.bonds)
+    except Exception:  # noqa: BLE001 - topology without bond attribute
+        n_bonds = 0
+    if n_bonds == 0:
+        raise InputFileError(f"topology {path} has no bonds; the Haasnoot-Altona relation needs the bond "
+                             "graph (use a PDB with CONECT records, a PSF, TPR or PRMTOP).")
+    return u
+
+
+# ----------------------------------------------------------------------------------------------
+# Ensemble averages
+# ----------------------------------------------------------------------------------------------
+
+def relation_kernels(relation, result, torsion_positions, notices=None, universe=None):
+    """Bin means of J for each chosen torsion: array (n_chosen, n_fine_bins), and substituents
+    (read from ``universe``, default the recorded topology, for ``haasnoot-altona``)."""
+    notices = [] if notices is None else notices
+    edges = np.asarray(result.blocks.get("bin_edges_deg", np.linspace(-180, 180, 361)), dtype=float)
+    if relation.form != "haasnoot-altona":
+        row = relation.bin_means(edges)
+        return np.tile(row, (len(torsion_positions), 1)), [[] for _ in torsion_positions]
+    u = _topology_universe(result, notices, universe)
+    elements = _elements(u, notices)
+    coords = u.atoms.positions.astype(float)
+    indices = result.torsion_set.indices
+    kernels, subs = [], []
+    for k in torsion_positions:
+        s = substituents_of(u, indices[k], relation, coords, elements)
+        kernels.append(relation.bin_means(edges, [(d, x) for d, x, _ in s]))
+        subs.append(s)
+    return np.array(kernels), subs
+
+
+def _looks_applicable(relation, torsions_table):
+    """Boolean mask of the torsions a relation is meant for (by name or by atom names)."""
+    if relation.applies_to == "any":
+        return np.ones(len(torsions_table), dtype=bool)
+    if relation.applies_to == "phi":
+        return (torsions_table["name"].astype(str) == "phi").to_numpy()
+    names = torsions_table.get("atom_names", pd.Series([""] * len(torsions_table))).fillna("").astype(str)
+    ends = names.str.split()
+    return ends.map(lambda a: len(a) == 4 and a[0].upper().startswith("H") and a[3].upper().startswith("H")
+                    ).to_numpy(dtype=bool)
+
+
+def choose_torsions(result, relation, select=None, notices=None):
+    """Positions of the torsions to average: ``select`` (labels or types), else those the
+    relation applies to, else all (with a notice)."""
+    notices = [] if notices is None else notices
+    labels = result.torsion_set.labels
+    types = result.torsion_set.types
+    if select:
+        wanted = set(select)
+        pos = [k for k, (lab, typ) in enumerate(zip(labels, types)) if lab in wanted or typ in wanted]
+        unknown = wanted - set(labels) - set(types)
+        if unknown:
+            raise DihedraError(f"{sorted(unknown)[0]!r} is neither a torsion label nor a type of this "
+                               f"results folder (e.g. {labels[0]!r}, {types[0]!r}); see torsions.csv.")
+        return pos
+    mask = _looks_applicable(relation, result.torsions)
+    if mask.any():
+        return list(np.flatnonzero(mask))
+    what = "protein phi (C-N-CA-C)" if relation.applies_to == "phi" else "H-C-C-H"
+    notices.append(f"no torsion of this folder looks like {what}, which {relation.name} is meant for; "
+                   f"<J> was computed for all {len(labels)} torsions as if each were one, which is "
+                   "meaningful only if the offset maps them onto the coupled protons.")
+    return list(range(len(labels)))
+
+
+def couplings_from_histograms(histograms, block_replica, kernels):
+    """<J> per torsion and its blocking standard error from block histograms.
+
+    Parameters
+    ----------
+    histograms : ndarray (n_blocks, n_torsions, n_bins)
+        (Weighted) fine histograms per block.
+    block_replica : ndarray (n_blocks,)
+    kernels : ndarray (n_torsions, n_bins)
+        Bin means of J (Hz).
+
+    Returns
+    -------
+    j_hz, j_err_hz, n_samples : ndarrays (n_torsions,)
+    """
+    from ...numerics.statistics import blocking_error
+
+    h = np.asarray(histograms, dtype=float)
+    num = np.einsum("btk,tk->bt", h, np.asarray(kernels, dtype=float))
+    den = h.sum(axis=2)
+    if not (den.sum(axis=0) > 0).all():
+        bad = int(np.flatnonzero(den.sum(axis=0) <= 0)[0])
+        raise DihedraError(f"torsion number {bad} has no sampled frames; no coupling can be averaged.")
+    mean, se, _ = blocking_error(num, den, block_replica)
+    return mean, se, den.sum(axis=0)
+
+
+def _pool_by_type(frame, family=None):
+    """Rows ``level = type`` (types with more than one torsion): mean <J>, se sqrt(sum se^2)/n; the
+    parameter-set spread of the pooled means when ``family`` (n_sets, n_torsions) is given."""
+    rows = []
+    for typ, idx in frame.groupby("type", sort=False).indices.items():
+        if len(idx) < 2:
+            continue
+        sub = frame.iloc[idx]
+        if family is not None:
+            systematic = float(np.std(family[:, idx].mean(axis=1), ddof=1))
+        else:
+            systematic = float(sub["j_systematic_hz"].iloc[0])
+        rows.append({**sub.iloc[0].to_dict(), "level": "type", "torsion": "", "j_hz": sub["j_hz"].mean(),
+                     "j_err_hz": np.sqrt(np.sum(sub["j_err_hz"] ** 2)) / len(idx),
+                     "j_systematic_hz": systematic, "n_samples": sub["n_samples"].sum()})
+    return pd.DataFrame(rows, columns=frame.columns)
+
+
+
+def _relation_couplings(result, rel, select, notices, universe):
+    """Per-torsion and per-type rows of one relation, and the substituents it used."""
+    blocks = result.blocks
+    hist = np.asarray(blocks["histograms"], dtype=float)
+    rep = np.asarray(blocks["hist_block_replica"])
+    labels = np.array(result.torsion_set.labels)
+    types = np.array(result.torsion_set.types)
+    pos = choose_torsions(result, rel, select, notices)
+    kern, subs = relation_kernels(rel, result, pos, notices, universe)
+    j, err, n = couplings_from_histograms(hist[:, pos, :], rep, kern)
+    systematic = np.full(len(pos), np.nan if rel.systematic_hz is None else float(rel.systematic_hz))
+    family = None
+    if rel.name in HN_HA_FAMILY:
+        family = np.array([couplings_from_histograms(hist[:, pos, :], rep,
+                                                     relation_kernels(get_relation(f), result, pos)[0])[0]
+                           for f in HN_HA_FAMILY])
+        systematic = np.std(family, axis=0, ddof=1)
+    frame = pd.DataFrame({"relation": rel.name, "coupling": rel.coupling, "level": "torsion",
+                          "torsion": labels[pos], "type": types[pos], "j_hz": j, "j_err_hz": err,
+                          "j_systematic_hz": systematic, "systematic_basis": rel.systematic_basis,
+                          "n_samples": n})
+    used = {labels[k]: s for k, s in zip(pos, subs)} if rel.form == "haasnoot-altona" else {}
+    pooled = _pool_by_type(frame, family)
+    if rel.name in HN_HA_FAMILY:
+        notices.append(f"{rel.name}: j_systematic_hz is the spread of <J> over the three published 3J(HN,HA) "
+                       "parameter sets, a lower bound of the relation's own error (each fit scatters by "
+                       "several tenths of a Hz about its data); read verdicts with that in mind.")
+    elif rel.systematic_hz is None:
+        notices.append(f"{rel.name}: the source gives no systematic spread; j_systematic_hz is empty and "
+                       "comparisons with experiment use the statistical and experimental errors only "
+                       "(Karplus relations are commonly good to about 0.5-1 Hz).")
+    return pd.concat([frame, pooled[frame.columns]], ignore_index=True), used
+
+
+#: How the averages are made, as written into couplings.json.
+METHOD = ("<J> = sum_b n_b mean_b(J) / sum_b n_b over the fine histogram bins; statistical error "
+          "by blocking over the histogram blocks (within replicas); j_systematic_hz reported "
+          "separately")
+CAUTIONS = [
+    "Agreement of <J> does not prove the populations: different distributions can give the "
+    "same average.",
+    "Karplus relations are empirical fits to particular molecules; their own scatter "
+    "(j_systematic_hz) is often larger than the statistical error.",
+]
+
+
+@dataclass
+class CouplingResult:
+    """Result of :func:`ensemble_couplings`.
+
+    Attributes
+    ----------
+    couplings : DataFrame
+        relation, coupling, level (``torsion`` / ``type``), torsion, type, j_hz, j_err_hz,
+        j_systematic_hz, systematic_basis, n_samples.
+    relations : list of dict
+        Descriptions of the relations used.
+    notices : list of str
+    substituents : dict
+        torsion -> list of (delta_chi, xi, atom_index) (Haasnoot-Altona only).
+    experiment : DataFrame or None
+        With experimental values: one row per value and relation (see
+        :func:`~dihedra.analysis.couplings.experiment.compare_with_experiment`).
+    experiment_summary : list of dict or None
+        With experimental values: per relation n_points, rmsd_hz, mean_deviation_hz, chi-square,
+        p_value, outliers, verdict, unmatched.
+    parameters : dict
+        The options of the call.
+    """
+
+    couplings: pd.DataFrame
+    relations: list
+    notices: list = field(default_factory=list)
+    substituents: dict = field(default_factory=dict)
+    experiment: pd.DataFrame | None = None
+    experiment_summary: list | None = None
+    parameters: dict = field(default_factory=dict)
+
+    def save(self, folder, experimental_path=None):
+        """Write couplings.csv (and, with experimental values, couplings_vs_experiment.csv) and
+        couplings.json into ``folder``; ``experimental_path`` is the file the experimental values
+        came from, recorded in couplings.json. Returns the paths."""
+        from ...io.tables import write_json, write_table
+
+        paths = [write_table(self.couplings, folder, "couplings.csv")]
+        info = {"relations": self.relations, "notices": list(self.notices), "method": METHOD,
+                "substituents": {k: [{"delta_chi": d, "xi": x, "atom_index": a} for d, x, a in v]
+                                 for k, v in self.substituents.items()},
+                "cautions": list(CAUTIONS)}
+        if self.experiment is not None:
+            paths.append(write_table(self.experiment, folder, "couplings_vs_experiment.csv"))
+            info["experimental"] = {"file": os.path.abspath(experimental_path) if experimental_path else None,
+                                    "summary": self.experiment_summary, "verdict_rules": VERDICT_RULES}
+        paths.append(write_json(info, folder, "couplings.json"))
+        return paths
+
+
+def ensemble_couplings(result, relation, *, select=None, experimental=None, universe=None):
+    """Ensemble-averaged couplings of a tracking result for one or more relations, and their
+    comparison with experimental values.
+
+    Parameters
+    ----------
+    result : TrackResult or TorsionStates
+        A tracking result (:func:`dihedra.tracking.track`, :func:`dihedra.io.resultsdir.load_results`)
+        or an analysis that has run.
+    relation : str, KarplusRelation or list of them
+        Built-in names, relation TOML files or relations (see
+        :func:`~dihedra.analysis.couplings.relations.get_relation`).
+    select : list of str, optional
+        Torsion labels or types to average (default: those each relation is meant for).
+    experimental : DataFrame, optional
+        Measured couplings with the columns label, j_exp_hz, j_exp_err_hz (as read by
+        :func:`~dihedra.analysis.couplings.experiment.read_experimental`).
+    universe : MDAnalysis.Universe, optional
+        Bonds, elements and coordinates for the Haasnoot-Altona substituents; default the
+        topology recorded in the result.
+
+    Returns
+    -------
+    CouplingResult
+    """
+    from ...trajectory.result import as_result
+
+    result = as_result(result)
+    if isinstance(relation, (str, os.PathLike, KarplusRelation)):
+        relation = [relation]
+    relations = [get_relation(r) for r in relation]
+    if not relations:
+        raise DihedraError("give at least one Karplus relation (--relation NAME).")
+    notices, frames, subs_out = [], [], {}
+    for rel in relations:
+        frame, used = _relation_couplings(result, rel, select, notices, universe)
+        frames.append(frame)
+        subs_out.update(used)
+    out = pd.concat(frames, ignore_index=True)
+    if result.summary.get("parameters", {}).get("weights"):
+        notices.append("the histograms are weighted sums (per-frame weights of the run); <J> is the "
+                       "reweighted average.")
+    points = summary = None
+    if experimental is not None:
+        points, summary = compare_with_experiment(out, experimental)
+    parameters = {"relations": [r.name for r in relations], "select": None if select is None else list(select),
+                  "n_experimental": None if experimental is None else len(experimental),
+                  "universe_given": universe is not None}
+    return CouplingResult(couplings=out, relations=[r.describe() for r in relations], notices=notices,
+                          substituents=subs_out, experiment=points, experiment_summary=summary,
+                          parameters=parameters)
