@@ -30,7 +30,7 @@ Method
 3. **Offset alignment.** F and F_scan carry arbitrary constants; the offset c minimises
    sum_k w_k (F_k - F_scan,k - c)^2 over the reliable bins with w_k = 1 / max(sigma_k, 0.02 kT)^2
    (precise bins count more; the floor keeps one bin from dominating).
-4. **Metrics** over the reliable bins: RMSE and maximum |dF| of dF = F - F_scan - c; the "excess"
+4. **Metrics** over the reliable bins: RMSE and maximum ``|dF|`` of dF = F - F_scan - c; the "excess"
    RMSE sqrt(max(0, RMSE^2 - mean sigma^2)) that noise alone would not give; minima (positions,
    free energies) and barriers (positions, free energies above the global minimum) side by side,
    matched within 30 degrees; sampled (populations.csv) versus predicted state populations with
@@ -52,9 +52,11 @@ Method
 
 Example
 -------
+A sketch (skipped as a doctest: ``result`` stands for a tracking result and ``scan`` for a scan):
+
 >>> from dihedra.analysis.compare import compare_with_scan            # doctest: +SKIP
->>> cmp = compare_with_scan(result, scan, temperature_k=298.15)
->>> cmp.table[["type", "rmse_kj_mol", "verdict"]]
+>>> cmp = compare_with_scan(result, scan, temperature_k=298.15)       # doctest: +SKIP
+>>> cmp.table[["type", "rmse_kj_mol", "verdict"]]                     # doctest: +SKIP
 """
 
 from __future__ import annotations

@@ -36,7 +36,7 @@ statistical error of a long simulation.
 * a custom relation: ``systematic_hz`` from its TOML file, if given.
 
 Built-in relations (coefficients from ../shared/guide/CHECK-VALUES.md)
---------------------------------------------------------------------
+----------------------------------------------------------------------
 ``vuister-bax-1993``
     3J(HN,HA) = A cos^2 theta + B cos theta + C, theta = phi - 60 deg (protein phi, C-N-CA-C),
     A = 6.51, B = -1.76, C = 1.60 Hz. Vuister & Bax, J. Am. Chem. Soc. 115 (1993) 7772.
@@ -46,8 +46,8 @@ Built-in relations (coefficients from ../shared/guide/CHECK-VALUES.md)
     The same form, A = 6.4, B = -1.4, C = 1.9 Hz. Pardi, Billeter & Wuethrich, J. Mol. Biol. 180
     (1984) 741.
 ``karplus-1959``
-    3J(H,H) of H-C-C-H: 8.5 cos^2 phi - 0.28 for |phi| <= 90 deg and 9.5 cos^2 phi - 0.28 for
-    |phi| > 90 deg. Karplus, J. Chem. Phys. 30 (1959) 11.
+    3J(H,H) of H-C-C-H: 8.5 cos^2 phi - 0.28 for ``|phi| <= 90`` deg and 9.5 cos^2 phi - 0.28 for
+    ``|phi| > 90`` deg. Karplus, J. Chem. Phys. 30 (1959) 11.
 ``haasnoot-altona-1980``
     Generalised 3J(H,H) of H-C-C-H with substituent electronegativities,
 
@@ -94,8 +94,8 @@ where known), z = deviation / sigma, chi-square = z^2. Summary: RMSD, mean devia
 per point and its p-value under chi-square(n). Verdict (thresholds :data:`P_TENSION`,
 :data:`P_INCONSISTENT`, :data:`OUTLIER_Z`):
 
-* ``consistent``: p >= 0.05 and no point with |z| > 3;
-* ``tension``: 0.001 <= p < 0.05, or some point with |z| > 3 (the outliers are named);
+* ``consistent``: p >= 0.05 and no point with ``|z| > 3``;
+* ``tension``: 0.001 <= p < 0.05, or some point with ``|z| > 3`` (the outliers are named);
 * ``inconsistent``: p < 0.001.
 
 Cautions: <J> depends on the whole distribution, so agreement does not prove that populations
@@ -134,7 +134,7 @@ HUGGINS_ELECTRONEGATIVITY = {"H": 2.20, "C": 2.60, "N": 3.05, "O": 3.50, "F": 3.
 P_TENSION = 0.05
 #: p-value below which the verdict is "inconsistent".
 P_INCONSISTENT = 0.001
-#: A point with |z| above this is an outlier (named in the output).
+#: A point with ``|z|`` above this is an outlier (named in the output).
 OUTLIER_Z = 3.0
 #: Gauss-Legendre points per histogram bin for the bin mean of J.
 _GAUSS_POINTS = 8
