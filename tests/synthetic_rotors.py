@@ -12,7 +12,8 @@ import os
 import numpy as np
 
 R_KJ_PER_MOL_K = 1.380649e-23 * 6.02214076e23 / 1000.0  # CODATA 2018 (exact), independent of dihedra
-#: Ryckaert & Bellemans (1978) butane, C0..C5 in kJ/mol (CHECK-VALUES.md).
+#: Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95: butane, C0..C5 in kJ/mol (the
+#: values as commonly quoted, from memory; not re-checked against the paper).
 RB_BUTANE = (9.28, 12.16, -13.12, -3.06, 26.24, -31.5)
 
 
