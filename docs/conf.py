@@ -57,7 +57,7 @@ html_theme = "alabaster"
 html_title = f"dihedra {release}"
 html_theme_options = {
     "description": "Conformer-aware torsion analysis of molecular-dynamics trajectories",
-    "page_width": "1100px",
+    "page_width": "1240px",
     "sidebar_width": "240px",
 }
 html_static_path = []
