@@ -77,6 +77,8 @@ class TopLevel(SphinxDirective):
         package = importlib.import_module("dihedra")
         rows, in_place = [], []
         for name in sorted(package.__all__, key=str.lower):
+            if name.startswith("__"):   # __version__ and the like: not API to call
+                continue
             path, here = canonical_path(package, name)
             rows.append(f"   ~{path}")
             if here:
