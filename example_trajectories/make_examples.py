@@ -19,8 +19,8 @@ the data can check dihedra independently.
 
 Parameter sources (see README.md in this folder): TraPPE-UA, Martin & Siepmann,
 J. Phys. Chem. B 102 (1998) 2569 (values from memory); Ryckaert & Bellemans,
-Faraday Discuss. Chem. Soc. 66 (1978) 95 (torsion coefficients as in
-shared/guide/CHECK-VALUES.md).
+Faraday Discuss. Chem. Soc. 66 (1978) 95 (torsion coefficients as commonly quoted, from
+memory; not re-checked against the paper).
 """
 
 import argparse

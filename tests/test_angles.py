@@ -21,7 +21,8 @@ def numpy_dihedral_deg(p0, p1, p2, p3):
 
 
 def test_iupac_sign_of_a_constructed_plus_60_torsion():
-    # IUPAC (Moss 1996, CHECK-VALUES.md): positive when A-B turns clockwise onto C-D seen along B->C.
+    # IUPAC sign convention (Moss, Pure Appl. Chem. 68 (1996) 2193; Klyne & Prelog, Experientia 16
+    # (1960) 521): positive when A-B turns clockwise onto C-D seen along B->C.
     # A on +x, B at the origin, C on +z; D rotated counter-clockwise by 60 deg seen from +z, i.e.
     # clockwise seen along B->C (looking towards +z).
     xyz = np.array([[1, 0, 0], [0, 0, 0], [0, 0, 1], [np.cos(np.pi / 3), np.sin(np.pi / 3), 1]])

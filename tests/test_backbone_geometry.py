@@ -6,8 +6,9 @@ import pytest
 from conftest import place_fourth, write_system
 from dihedra.tracking import track
 
-# Handbook check values (Belitz, Grosch & Schieberle, Food Chemistry, 2009, Table 1.21;
-# CHECK-VALUES.md): phi/psi in degrees
+# Handbook values: Belitz, Grosch & Schieberle, Food Chemistry, 4th ed. (Springer, 2009),
+# Table 1.21; phi/psi in degrees (IUPAC-IUB sign: IUPAC-IUB Commission on Biochemical
+# Nomenclature, J. Mol. Biol. 52 (1970) 1)
 HANDBOOK = {
     "alpha-helix": (-57.0, -47.0),
     "parallel-beta": (-119.0, 113.0),

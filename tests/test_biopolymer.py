@@ -6,10 +6,11 @@ References used (named beside each check):
   ``chi1_selection`` (MDAnalysis.core.topologyattrs), the chi2 atoms of
   ``MDAnalysis.analysis.dihedrals.Janin`` and the nucleic torsions of
   ``MDAnalysis.analysis.nuclinfo``, run on the MDAnalysisTests data files;
-* the atom definitions of IUPAC-IUB 1970 (J. Mol. Biol. 52 (1970) 1) and IUPAC-IUB JCBN 1982
-  (Eur. J. Biochem. 131 (1983) 9), as given in ../shared/guide/CHECK-VALUES.md;
-* handbook helix geometry (Belitz, Grosch & Schieberle, Food Chemistry, 2009, Table 1.21, in
-  CHECK-VALUES.md);
+* the atom definitions of the IUPAC-IUB Commission on Biochemical Nomenclature, J. Mol. Biol. 52
+  (1970) 1 (protein phi, psi, omega, chi) and of the IUPAC-IUB Joint Commission on Biochemical
+  Nomenclature, Eur. J. Biochem. 131 (1983) 9 (nucleic-acid backbone and chi);
+* handbook helix geometry (Belitz, Grosch & Schieberle, Food Chemistry, 4th ed., Springer 2009,
+  Table 1.21);
 * torsion angles recomputed with plain numpy and with RDKit's rdMolTransforms.GetDihedralDeg.
 """
 
@@ -182,8 +183,9 @@ def test_chi2_matches_mdanalysis_janin_atoms(files):
 # IUPAC-IUB atom definitions
 # --------------------------------------------------------------------------------------------
 
-# Source: IUPAC-IUB 1970 as given in CHECK-VALUES.md (chi1 branch atoms X, chi2 atoms Y, chi3..5
-# following the chain); Pro chi2 = CA-CB-CG-CD is our documented addition.
+# Source: IUPAC-IUB Commission on Biochemical Nomenclature, J. Mol. Biol. 52 (1970) 1 (chi1
+# branch atoms X, chi2 atoms Y, chi3..5 following the chain); Pro chi2 = CA-CB-CG-CD is our
+# documented addition.
 IUPAC_SIDECHAINS = {
     "ARG": [("N", "CA", "CB", "CG"), ("CA", "CB", "CG", "CD"), ("CB", "CG", "CD", "NE"),
             ("CG", "CD", "NE", "CZ"), ("CD", "NE", "CZ", "NH1")],
@@ -210,7 +212,7 @@ IUPAC_SIDECHAINS = {
 
 
 def test_sidechain_atoms_follow_iupac(adk_charmm):
-    # Source: IUPAC-IUB 1970 (CHECK-VALUES.md): Ser chi1 ends at OG, Thr at OG1, Val and Ile at
+    # Source: IUPAC-IUB, J. Mol. Biol. 52 (1970) 1: Ser chi1 ends at OG, Thr at OG1, Val and Ile at
     # CG1, Cys at SG; Val, Thr, Ser, Cys have chi1 only; chi2..chi5 as listed above.
     u = adk_charmm
     tset = protein_sidechain_torsions(u)
@@ -257,7 +259,7 @@ def test_backbone_atom_names_and_neighbours(adk_charmm):
 
 
 def test_nucleic_atom_definitions():
-    # Source: IUPAC-IUB JCBN 1982 (Eur. J. Biochem. 131 (1983) 9) as given in CHECK-VALUES.md.
+    # Source: IUPAC-IUB Joint Commission on Biochemical Nomenclature, Eur. J. Biochem. 131 (1983) 9.
     u = load("RNA_PSF", "RNA_PDB")
     tset = nucleic_backbone_torsions(u)
     expected = {
@@ -326,7 +328,7 @@ def test_backbone_angles_against_plain_numpy_and_rdkit():
 
 def test_alpha_helix_angles_near_handbook_values():
     # Source: Belitz, Grosch & Schieberle, Food Chemistry (2009), Table 1.21: right-handed alpha
-    # helix phi/psi = -57/-47 (CHECK-VALUES.md). The model helix deviates by a few degrees, so
+    # helix phi/psi = -57/-47. The model helix deviates by a few degrees, so
     # this checks the sign convention and the atom order, with a 10-degree tolerance.
     u = load("PDB_helix")
     tset = protein_backbone_torsions(u)
@@ -563,7 +565,7 @@ def test_chain_break_gives_no_torsions_across_the_gap(adk_charmm, adk_gromacs_gr
 
 def test_link_uses_minimum_image(adk_gromacs_gro):
     # A residue moved by one box vector (as in a molecule split across the box) stays linked:
-    # the C-N distance is taken with the minimum image (DOMAIN.md, periodic boundaries).
+    # the C-N distance is taken with the minimum image (common practice for periodic boundaries).
     u = adk_gromacs_gro.copy()
     moved = u.select_atoms("resid 100")
     moved.positions = moved.positions + np.array([u.dimensions[0], 0, 0], dtype=np.float32)

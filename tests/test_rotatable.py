@@ -41,7 +41,8 @@ def test_rotatable_bonds_match_rdkit_substructure_count(smiles, tmp_path):
 
 
 def test_ethane_gets_an_h_c_c_h_torsion(tmp_path):
-    # issue 2 rule: where an end carries only hydrogens, as in ethane, an H-C-C-H torsion
+    # dihedra's rule for the outer atoms (docs/tracking.md, rotatable bonds): heavy atoms first, so
+    # where an end carries only hydrogens, as in ethane, an H-C-C-H torsion
     _, u = universe_from_smiles("CC", tmp_path)
     (t,) = select_torsions(u, "rotatable").torsions
     elements = [u.atoms[i].element for i in t.indices]

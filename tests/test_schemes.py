@@ -1,4 +1,4 @@
-"""State schemes: the definitions of the issue and of IUPAC, custom TOML schemes, core sets."""
+"""State schemes: dihedra's definitions (docs/tracking.md) and IUPAC's, custom TOML schemes, core sets."""
 
 import numpy as np
 import pytest
@@ -9,7 +9,8 @@ from dihedra.selection.schemes import (NO_CORE, UNDEFINED, anti_gauche, get_sche
 
 
 def reference_anti_gauche(phi):
-    # the definition, written out plainly (issue 2; common practice for sp3-sp3 torsions)
+    # dihedra's anti-gauche definition (docs/tracking.md), written out plainly; anti/gauche split at
+    # +-120 deg is common practice for sp3-sp3 torsions
     if abs(phi) > 120:
         return "anti"
     if 0 < phi <= 120:
@@ -18,7 +19,8 @@ def reference_anti_gauche(phi):
 
 
 def reference_klyne_prelog(phi):
-    # IUPAC sectors, CHECK-VALUES.md (Klyne & Prelog 1960): sp 0+-30, sc 30..90, ac 90..150, ap 150..180
+    # IUPAC sectors (Klyne & Prelog, Experientia 16 (1960) 521; Moss, Pure Appl. Chem. 68 (1996)
+    # 2193): sp 0+-30, sc 30..90, ac 90..150, ap 150..180
     a = abs(phi)
     sign = "+" if phi > 0 else "-"
     if a < 30:
@@ -42,7 +44,7 @@ def test_anti_gauche_matches_definition_on_random_and_boundary_angles():
 def test_klyne_prelog_matches_iupac_sectors_away_from_boundaries():
     rng = np.random.default_rng(1)
     angles = rng.uniform(-180, 180, 20000)
-    # boundary ownership is not specified by IUPAC (CHECK-VALUES.md): avoid exactly 30/90/150
+    # boundary ownership is not specified by IUPAC (Moss 1996, from memory): avoid exactly 30/90/150
     angles = angles[np.min(np.abs(np.abs(angles)[:, None] - [30, 90, 150]), axis=1) > 1e-6]
     scheme = klyne_prelog()
     got = [scheme.labels[c] for c in scheme.assign(angles)]
@@ -52,7 +54,8 @@ def test_klyne_prelog_matches_iupac_sectors_away_from_boundaries():
 
 @pytest.mark.parametrize("n", [1, 2, 3, 6])
 def test_staggered_within_half_sector_of_staggered_positions(n):
-    # issue 2: staggered within 180/(2n) of 180 + k 360/n (inclusive), eclipsed otherwise
+    # dihedra's definition (docs/tracking.md): staggered within 180/(2n) of 180 + k 360/n
+    # (inclusive), eclipsed otherwise
     rng = np.random.default_rng(n)
     angles = rng.uniform(-180, 180, 5000)
     centres = 180.0 + np.arange(n) * 360.0 / n

@@ -21,7 +21,8 @@ def ar1(rho, n, seed):
 
 
 def test_statistical_inefficiency_of_ar1():
-    # analytic (AR(1) process): g = (1 + rho) / (1 - rho); rho = 0.9 gives 19
+    # analytic: AR(1) with rho has g = (1 + rho) / (1 - rho); rho = 0.9 gives 19 (g as defined by
+    # Chodera, Swope, Pitera, Seok & Dill, J. Chem. Theory Comput. 3 (2007) 26)
     g = statistical_inefficiency(ar1(0.9, 400_000, 1))
     assert g == pytest.approx(19.0, rel=0.1)
 
@@ -45,7 +46,8 @@ def test_blocking_error_of_independent_bernoulli_samples(blocking):
 
 @pytest.mark.parametrize("blocking", ["compiled", "reference"])
 def test_blocking_error_of_correlated_indicator_matches_inefficiency(blocking):
-    # analytic route (Chodera et al. 2007) against blocking (Flyvbjerg & Petersen 1989)
+    # analytic route (Chodera, Swope, Pitera, Seok & Dill, J. Chem. Theory Comput. 3 (2007) 26)
+    # against blocking (Flyvbjerg & Petersen, J. Chem. Phys. 91 (1989) 461)
     errs, refs = [], []
     for seed in range(4):
         ind = (ar1(0.95, 256_000, seed) > 0.5).astype(float)

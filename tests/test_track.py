@@ -13,7 +13,8 @@ from dihedra.io.resultsdir import load_results
 from dihedra.tracking import track
 from dihedra.units import kt_kj_mol
 
-# Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95 (CHECK-VALUES.md), kJ/mol
+# Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95, kJ/mol (the values as commonly
+# quoted, from memory; not re-checked against the paper)
 RB_C = [9.28, 12.16, -13.12, -3.06, 26.24, -31.5]
 
 
@@ -58,7 +59,8 @@ def test_iid_rb_samples_recover_boltzmann_populations_within_three_se(tmp_path):
 
 
 def test_split_across_the_box_gives_the_same_states(tmp_path):
-    # DOMAIN.md convention: a molecule split across the periodic boundary gives the same torsion
+    # common practice (minimum-image convention): a molecule split across the periodic boundary
+    # gives the same torsion
     rng = np.random.default_rng(2)
     t = rng.uniform(-180, 180, size=(40, 27))
     coords = chain_coordinates(t, spacing=6.0)
@@ -277,7 +279,8 @@ def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_r
 def test_simulated_rb_butane_populations_match_boltzmann_integral():
     # A united-atom butane gas simulated with OpenMM (example_trajectories/make_examples.py), RB torsion
     # and no 1-4 nonbonded terms: pooled anti/gauche populations agree with the Boltzmann integral of
-    # the RB potential (Ryckaert & Bellemans 1978 coefficients, CHECK-VALUES.md; scipy.integrate.quad,
+    # the RB potential (Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95, coefficients
+    # from memory; scipy.integrate.quad,
     # no Jacobian for a torsion) within 3 standard errors.
     from dihedra import example_path
     top, traj = example_path("butane_rb.pdb"), example_path("butane_rb.xtc")

@@ -30,7 +30,7 @@ Method
 3. **Offset alignment.** F and F_scan carry arbitrary constants; the offset c minimises
    sum_k w_k (F_k - F_scan,k - c)^2 over the reliable bins with w_k = 1 / max(sigma_k, 0.02 kT)^2
    (precise bins count more; the floor keeps one bin from dominating).
-4. **Metrics** over the reliable bins: RMSE and maximum |dF| of dF = F - F_scan - c; the "excess"
+4. **Metrics** over the reliable bins: RMSE and maximum ``|dF|`` of dF = F - F_scan - c; the "excess"
    RMSE sqrt(max(0, RMSE^2 - mean sigma^2)) that noise alone would not give; minima (positions,
    free energies) and barriers (positions, free energies above the global minimum) side by side,
    matched within 30 degrees; sampled (populations.csv) versus predicted state populations with

@@ -17,9 +17,9 @@ over the torsions of a type as the mean with error sqrt(sum s_i^2)/n. Then
 
 Verdict per type (thresholds :data:`Z_TENSION`, :data:`Z_INCONSISTENT`):
 
-* ``consistent``: every row of the type has |z| <= 2;
-* ``tension``: the largest |z| is between 2 and 3;
-* ``inconsistent``: some |z| > 3.
+* ``consistent``: every row of the type has ``|z| <= 2``;
+* ``tension``: the largest ``|z|`` is between 2 and 3;
+* ``inconsistent``: some ``|z| > 3``.
 
 The rows, the per-type verdicts and these rules go into the comparison output of
 ``dihedra compare`` (columns ``reference_*`` of comparison.csv, section ``reference_populations``
@@ -43,9 +43,9 @@ from ..errors import DihedraError, InputFileError
 from ..io.tables import json_ready, write_json, write_table
 from ..trajectory.result import as_result
 
-#: Largest |z| of a "consistent" type.
+#: Largest ``|z|`` of a "consistent" type.
 Z_TENSION = 2.0
-#: |z| above this makes a type "inconsistent".
+#: ``|z|`` above this makes a type "inconsistent".
 Z_INCONSISTENT = 3.0
 #: Rules of the verdict, as written into comparison.json.
 RULES = {

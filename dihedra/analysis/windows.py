@@ -11,7 +11,7 @@ A table of windows (``WINDOWS.csv``), one row per biased simulation, with the co
     quote it in the CSV --, ``rotatable``, a .toml file; several joined by ``;``);
 ``centre_deg``, ``k_kj_mol_rad2``
     the bias :math:`w_k(\phi) = \tfrac12 k_k\, d(\phi, c_k)^2`, d the minimum-image difference
-    between the angle and the centre in radians (so |d| <= pi), applied to every selected torsion.
+    between the angle and the centre in radians (so ``|d| <= pi``), applied to every selected torsion.
 
 Every window must select the same torsions (the same labels). The bias must be exactly this
 function of the IUPAC torsion angle; e.g. in OpenMM a ``CustomTorsionForce`` with the energy
@@ -56,7 +56,7 @@ are solved by the same Newton method on the samples placed on a 0.05-degree grid
 sample by at most 0.025 degrees; the grid solution matches pymbar's f_k, checked on the full data
 and reported as ``mbar_grid_check_kt``). The MBAR and WHAM profiles of each resample use the same
 blocks, so their difference is tested against the error of each
-(|F_MBAR - F_WHAM| <= 2 sqrt(sigma_MBAR^2 + sigma_WHAM^2) per bin counts as agreement).
+(``|F_MBAR - F_WHAM| <= 2 sqrt(sigma_MBAR^2 + sigma_WHAM^2)`` per bin counts as agreement).
 
 pymbar receives at most ``max_mbar_samples`` samples (default 100 000); with more, it gets every
 s-th frame of every window, and its f_k are then refined on all samples by the grid solution of
@@ -82,12 +82,16 @@ profile files of ``dihedra profile`` (``profiles.csv``, ``minima.csv``, ``barrie
 ``state_free_energies.csv``, ``profiles.json``; the ``histogram`` estimate is the MBAR profile, the
 ``kernel`` estimate its von Mises smoothing, both with the errors above), and
 
-``windows.csv``          per window: centre, force constant, samples, mean and spread of the
-                         sampled angle, statistical inefficiency g of the bias energy, f_k by
-                         MBAR and WHAM (kJ/mol, relative to the first window) with errors;
-``window_overlap.csv``   per neighbouring pair: MBAR overlap, histogram overlap, poor;
-``windows_profiles.csv`` per type and bin: F by MBAR and by WHAM with errors, their difference;
-``windows.json``         settings, checks, notices, cautions.
+``windows.csv``
+    per window: centre, force constant, samples, mean and spread of the sampled angle, statistical
+    inefficiency g of the bias energy, f_k by MBAR and WHAM (kJ/mol, relative to the first
+    window) with errors;
+``window_overlap.csv``
+    per neighbouring pair: MBAR overlap, histogram overlap, poor;
+``windows_profiles.csv``
+    per type and bin: F by MBAR and by WHAM with errors, their difference;
+``windows.json``
+    settings, checks, notices, cautions.
 
 Conformer tables are left empty (a joint state of several torsions has no single weight when each
 torsion carries its own bias). Populations in ``populations.csv`` use the blocking errors of the
@@ -98,9 +102,12 @@ gives smaller (too small) errors than the ones written here.
 
 Example
 -------
+A sketch (skipped as a doctest: it needs pymbar, ``pip install "dihedra[biased]"``, and a window
+table of your own):
+
 >>> from dihedra.analysis.windows import unbias_windows               # doctest: +SKIP
->>> res = unbias_windows("windows.csv", temperature_k=298.15, out="windows-results")
->>> res.agreement                                          # MBAR vs WHAM per type
+>>> res = unbias_windows("windows.csv", temperature_k=298.15, out="windows-results")  # doctest: +SKIP
+>>> res.agreement                          # MBAR vs WHAM per type    # doctest: +SKIP
 """
 
 from __future__ import annotations
@@ -215,7 +222,7 @@ def solve_free_energies(counts, n_k, log_c, f_start=None, tol=1e-9, max_iter=100
         ln c_kg, the log bias factors (-u_k at a point, or the log bin mean of exp(-u_k)).
     f_start : ndarray (K,), optional
     tol : float
-        Converged when every |dA/df_k| / N_k is below ``tol``.
+        Converged when every ``|dA/df_k| / N_k`` is below ``tol``.
 
     Returns
     -------
@@ -403,7 +410,7 @@ class TypeEstimate:
     overlap : ndarray (K, K)
         MBAR overlap matrix.
     mbar_grid_check_kt : float
-        Largest |f_grid - f_pymbar| over the windows.
+        Largest ``|f_grid - f_pymbar|`` over the windows.
     n_mbar_samples : int
         Samples handed to pymbar; thin_stride the stride in frames used.
     """
@@ -593,7 +600,7 @@ class WindowsResult:
     comparison : DataFrame
         Per type and bin: MBAR and WHAM free energies with errors and their difference.
     agreement : DataFrame
-        Per type: bins compared, largest |difference| and largest |difference| / combined error,
+        Per type: bins compared, largest ``|difference|`` and largest ``|difference|`` / combined error,
         fraction of bins within :data:`AGREEMENT_SIGMA` combined errors.
     info : dict
         Settings, checks and notices (windows.json).

@@ -339,9 +339,17 @@ def remove_dead_staging(parent, base):
 class StagedFolder:
     """A results folder assembled in a hidden folder beside its target.
 
-    >>> staged = StagedFolder.begin("results", overwrite=False, inputs=["top.pdb"], command="track")
-    ... # doctest: +SKIP
-    >>> write into staged.path ...; staged.commit()   # or staged.discard() after an error
+    >>> import os, tempfile
+    >>> tmp = tempfile.TemporaryDirectory()
+    >>> target = os.path.join(tmp.name, "results")
+    >>> staged = StagedFolder.begin(target, overwrite=False, inputs=[], command="track")
+    >>> with open(os.path.join(staged.path, "table.csv"), "w") as f:   # write into staged.path
+    ...     _ = f.write("x")
+    >>> staged.commit() == target   # or staged.discard() after an error
+    True
+    >>> sorted(os.listdir(target))
+    ['dihedra-files.json', 'table.csv']
+    >>> tmp.cleanup()
 
     :meth:`begin` checks the target (:func:`check_folder_target`) and records whether it exists
     and whose it is; :meth:`commit` writes the marker (every file of the staging folder) and moves

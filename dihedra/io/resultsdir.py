@@ -2,26 +2,33 @@
 
 A results folder holds tidy tables with unit-bearing column names plus a JSON summary:
 
-``torsions.csv``                torsion, type, atom_indices, atom_names, resname, resid, segid, name,
-                                group, order, n_undefined_frames
-``populations.csv``             torsion, type, state, population, population_err, n_effective, n_samples
-``populations_by_type.csv``     type, state, population, population_err, n_torsions
-``populations_by_replica.csv``  replica, torsion, type, state, population, population_err, ...
-``conformers.csv``              group, group_type, conformer, torsions, population, population_err,
-                                n_effective
-``conformers_by_type.csv``      group_type, state -> conformer, population, population_err, n_groups
-``states.parquet/``             replica, frame, time_ps, [weight], then one int8 column per torsion
-                                (codes in summary.json, -1 = undefined); a folder of Parquet files
-                                (part-RRRR-FFFFFFFFFFFF.parquet: replica, first frame) in frame
-                                order, row groups of a few MB
-``angles.parquet/``             the same layout with float32 degrees (only with --keep-angles)
-``blocks.npz``                  block sums of the pass: state counts and fine angle histograms per
-                                block, with block frames, weights and replicas (input of profiles),
-                                and the conformer counts (dense per group width, rows otherwise)
-``summary.json``                inputs with SHA-256, frame ranges, time step, scheme, parameters,
-                                package versions, notices
-
-``dihedra-files.json``          the files dihedra wrote into the folder (:mod:`dihedra.io.outputs`)
+``torsions.csv``
+    torsion, type, atom_indices, atom_names, resname, resid, segid, name, group, order,
+    n_undefined_frames
+``populations.csv``
+    torsion, type, state, population, population_err, n_effective, n_samples
+``populations_by_type.csv``
+    type, state, population, population_err, n_torsions
+``populations_by_replica.csv``
+    replica, torsion, type, state, population, population_err, ...
+``conformers.csv``
+    group, group_type, conformer, torsions, population, population_err, n_effective
+``conformers_by_type.csv``
+    group_type, state -> conformer, population, population_err, n_groups
+``states.parquet/``
+    replica, frame, time_ps, [weight], then one int8 column per torsion (codes in summary.json,
+    -1 = undefined); a folder of Parquet files (part-RRRR-FFFFFFFFFFFF.parquet: replica, first
+    frame) in frame order, row groups of a few MB
+``angles.parquet/``
+    the same layout with float32 degrees (only with --keep-angles)
+``blocks.npz``
+    block sums of the pass: state counts and fine angle histograms per block, with block frames,
+    weights and replicas (input of profiles), and the conformer counts (dense per group width,
+    rows otherwise)
+``summary.json``
+    inputs with SHA-256, frame ranges, time step, scheme, parameters, package versions, notices
+``dihedra-files.json``
+    the files dihedra wrote into the folder (:mod:`dihedra.io.outputs`)
 
 Analyses read a folder with :func:`load_results` and add their own files through
 :func:`dihedra.io.tables.write_table` / :func:`~dihedra.io.tables.write_json`; the time series are

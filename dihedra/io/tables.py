@@ -16,10 +16,11 @@ Example
 >>> import os, tempfile
 >>> import pandas as pd
 >>> from dihedra.io.tables import write_table
->>> folder = tempfile.mkdtemp()
->>> path = write_table(pd.DataFrame({"angle_deg": [-177.5, 0.1], "sampled": [True, False]}), folder, "t.csv")
+>>> tmp = tempfile.TemporaryDirectory()
+>>> path = write_table(pd.DataFrame({"angle_deg": [-177.5, 0.1], "sampled": [True, False]}), tmp.name, "t.csv")
 >>> open(path).read().splitlines()
 ['angle_deg,sampled', '-177.5,true', '0.1,false']
+>>> tmp.cleanup()
 """
 
 from __future__ import annotations

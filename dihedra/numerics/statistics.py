@@ -157,7 +157,7 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
                               weight_columns)
 
 
-def blocking_levels(replica, min_blocks=MIN_BLOCKS):
+def _blocking_levels(replica, min_blocks=MIN_BLOCKS):
     """The merges of :func:`blocking_error` for blocks of the given replicas: ``(pair_a, pair_b,
     sizes)``, level after level while a level keeps at least ``min_blocks`` blocks; level k merges
     blocks ``pair_a[j]`` and ``pair_b[j]`` of level k - 1 (``j`` in that level's slice)."""
@@ -194,7 +194,7 @@ def _compiled_blocking(kernels, block_values, block_weights, block_replica, min_
     r = np.asarray(block_replica)
     # blocks with weight in the columns used (as the NumPy code sees them)
     kept = np.flatnonzero((w[:, np.unique(weight_columns)] if given else w).sum(axis=1) > 0)
-    pair_a, pair_b, sizes = blocking_levels(r[kept], min_blocks)
+    pair_a, pair_b, sizes = _blocking_levels(r[kept], min_blocks)
     replicas, rep_index = np.unique(r[kept], return_inverse=True)
     mean, se, n_eff = (np.empty(v.shape[1]) for _ in range(3))
     kernels.blocking_columns(v, w, weight_columns, kept.astype(np.int64), pair_a, pair_b, sizes,

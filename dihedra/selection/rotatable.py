@@ -24,7 +24,7 @@ from .torsions import TorsionSet, bond_array, torsions_from_quads
 LINEAR_DEG = 170.0
 
 
-def bond_graph(universe, notices):
+def _bond_graph(universe, notices):
     """Adjacency lists from the topology's bonds (guessing them if there are none)."""
     n = universe.atoms.n_atoms
     bonds = bond_array(universe)
@@ -65,7 +65,7 @@ def _guess_bonds(universe, notices):
     return bonds
 
 
-def bridges(adjacency, roots=None):
+def _bridges(adjacency, roots=None):
     """Set of bridges ``(min, max)`` of an undirected graph (iterative Tarjan).
 
     ``roots`` limits the search to the connected components of these atoms.
@@ -137,7 +137,7 @@ def _positions(universe):
         return None
 
 
-def linear_centres(adjacency, candidates, positions, box):
+def _linear_centres(adjacency, candidates, positions, box):
     """Atoms among ``candidates`` with exactly two neighbours at an angle above :data:`LINEAR_DEG`
     (one vectorised call; nothing when the topology has no coordinates)."""
     if positions is None:
@@ -162,12 +162,12 @@ def rotatable_torsions(universe):
     TorsionSet
     """
     notices = []
-    adjacency = bond_graph(universe, notices)
+    adjacency = _bond_graph(universe, notices)
     degree = np.array([len(a) for a in adjacency])
     # only components with a bond between two non-terminal atoms can hold a rotatable bond
     roots = sorted({b for b, nbrs in enumerate(adjacency) if degree[b] >= 2
                     and any(degree[c] >= 2 for c in nbrs)})
-    ring_free = bridges(adjacency, roots)
+    ring_free = _bridges(adjacency, roots)
     heavy = _is_heavy(universe)
     masses = _masses(universe)
     positions = _positions(universe)
@@ -180,7 +180,7 @@ def rotatable_torsions(universe):
         return min(candidates, key=lambda j: (not heavy[j], -masses[j], -heavy_degree[j], j))
 
     inner = sorted((b, c) for b, c in ring_free if degree[b] >= 2 and degree[c] >= 2)
-    linear = linear_centres(adjacency, {a for bond in inner for a in bond}, positions, box)
+    linear = _linear_centres(adjacency, {a for bond in inner for a in bond}, positions, box)
     quads = []
     n_linear = 0
     for b, c in inner:

@@ -28,7 +28,7 @@ NAMED_SPECS = ("rotatable", "protein-backbone", "protein-sidechains", "nucleic-b
 _INDEX_SPEC = re.compile(r"^\s*-?\d+\s*,\s*-?\d+\s*,\s*-?\d+\s*,\s*-?\d+\s*$")
 
 
-def check_indices(universe, indices, where="torsion"):
+def _check_indices(universe, indices, where="torsion"):
     """Check four atom indices: integers, in range, all different."""
     n_atoms = universe.atoms.n_atoms
     if len(indices) != 4:
@@ -46,7 +46,7 @@ def check_indices(universe, indices, where="torsion"):
 def torsions_from_indices(universe, spec):
     """The ``A,B,C,D`` specification."""
     indices = [int(x) for x in spec.split(",")]
-    indices = check_indices(universe, indices, where=f"--torsions {spec}")
+    indices = _check_indices(universe, indices, where=f"--torsions {spec}")
     return TorsionSet([torsion_from_atoms(universe, indices)])
 
 
@@ -99,7 +99,7 @@ def torsions_from_toml(universe, path):
         if ("atoms" in entry) == ("selection" in entry):
             raise SelectionError(f"{where}: give either 'atoms' (four indices) or 'selection'.")
         if "atoms" in entry:
-            indices = check_indices(universe, list(entry["atoms"]), where=where)
+            indices = _check_indices(universe, list(entry["atoms"]), where=where)
         else:
             indices = _indices_from_selection(universe, entry["selection"], where)
         base = torsion_from_atoms(universe, indices, ttype=entry.get("type"))
@@ -127,7 +127,7 @@ def _indices_from_selection(universe, selection, where):
     if len(parts) != 4 and len(atoms) != 4:
         raise SelectionError(f"{where}: selection {selection!r} must give exactly four atoms; "
                              f"it gives {len(atoms)}.")
-    return check_indices(universe, atoms, where=where)
+    return _check_indices(universe, atoms, where=where)
 
 
 def select_torsions(universe, specs):

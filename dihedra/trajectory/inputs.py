@@ -150,7 +150,7 @@ def _reason(files, exc):
     return f"cannot read {' with '.join(files)}: {text}."
 
 
-def count_readable_frames(universe):
+def _count_readable_frames(universe):
     """Frames that can be read in sequence (a truncated file stops early)."""
     n = 0
     try:
@@ -165,7 +165,7 @@ def count_readable_frames(universe):
 
 def truncated_error(trajectory, universe, exc):
     """The error for a trajectory that fails mid-run."""
-    n_ok = count_readable_frames(universe)
+    n_ok = _count_readable_frames(universe)
     n_claimed = universe.trajectory.n_frames
     last = n_ok - 1
     return InputFileError(

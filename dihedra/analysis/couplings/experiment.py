@@ -8,8 +8,8 @@ where known), z = deviation / sigma, chi-square = z^2. Summary: RMSD, mean devia
 per point and its p-value under chi-square(n). Verdict (thresholds :data:`P_TENSION`,
 :data:`P_INCONSISTENT`, :data:`OUTLIER_Z`):
 
-* ``consistent``: p >= 0.05 and no point with |z| > 3;
-* ``tension``: 0.001 <= p < 0.05, or some point with |z| > 3 (the outliers are named);
+* ``consistent``: p >= 0.05 and no point with ``|z| > 3``;
+* ``tension``: 0.001 <= p < 0.05, or some point with ``|z| > 3`` (the outliers are named);
 * ``inconsistent``: p < 0.001.
 
 Cautions: <J> depends on the whole distribution, so agreement does not prove that populations
@@ -31,7 +31,7 @@ from ...errors import DihedraError, InputFileError
 P_TENSION = 0.05
 #: p-value below which the verdict is "inconsistent".
 P_INCONSISTENT = 0.001
-#: A point with |z| above this is an outlier (named in the output).
+#: A point with ``|z|`` above this is an outlier (named in the output).
 OUTLIER_Z = 3.0
 
 

@@ -11,8 +11,8 @@ Built-in relations (coefficients from the papers cited)
     The same form, A = 6.4, B = -1.4, C = 1.9 Hz. Pardi, Billeter & Wuethrich, J. Mol. Biol. 180
     (1984) 741.
 ``karplus-1959``
-    3J(H,H) of H-C-C-H: 8.5 cos^2 phi - 0.28 for |phi| <= 90 deg and 9.5 cos^2 phi - 0.28 for
-    |phi| > 90 deg. Karplus, J. Chem. Phys. 30 (1959) 11.
+    3J(H,H) of H-C-C-H: 8.5 cos^2 phi - 0.28 for ``|phi| <= 90`` deg and 9.5 cos^2 phi - 0.28 for
+    ``|phi| > 90`` deg. Karplus, J. Chem. Phys. 30 (1959) 11.
 ``haasnoot-altona-1980``
     Generalised 3J(H,H) of H-C-C-H with substituent electronegativities,
 

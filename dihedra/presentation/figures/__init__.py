@@ -25,14 +25,19 @@ exist; what a folder lacks is skipped with a one-line note) and :func:`write_fig
 
 Modules
 -------
-``style``        colours (one per state, Okabe & Ito), journal widths, the :func:`style` context,
-                 file metadata
-``common``       drawing helpers the figures share (notes and legends above the axes, state
-                 sectors, time units, energy columns)
-``timeseries``   figures 1 and 2 and the chunked readers of ``angles.parquet`` / ``states.parquet``
-``profiles``     figure 3;  ``populations``: figure 4;  ``maps``: figure 5
-``kinetics``     figures 6 and 7;  ``convergence``: figure 8;  ``couplings``: figure 9
-``figureset``    :func:`figure_set`, :func:`write_figures`, :class:`FigureItem`, :class:`FigureSet`
+``style``
+    colours (one per state, Okabe & Ito), journal widths, the :func:`style` context, file metadata
+``common``
+    drawing helpers the figures share (notes and legends above the axes, state sectors, time
+    units, energy columns)
+``timeseries``
+    figures 1 and 2 and the chunked readers of ``angles.parquet`` / ``states.parquet``
+``profiles``, ``populations``, ``maps``
+    figures 3, 4 and 5
+``kinetics``, ``convergence``, ``couplings``
+    figures 6 and 7, figure 8, figure 9
+``figureset``
+    :func:`figure_set`, :func:`write_figures`, :class:`FigureItem`, :class:`FigureSet`
 
 Example
 -------
