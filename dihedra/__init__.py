@@ -21,6 +21,9 @@ DataFrames with a ``save(folder)`` method.
 """
 
 from ._version import __version__
+from .analysis.compare import compare_with_scan
+from .analysis.couplings import ensemble_couplings
+from .analysis.kinetics import state_kinetics
 from .errors import DihedraError
 from .io.resultsdir import load_results
 from .selection.schemes import StateScheme, get_scheme
@@ -45,4 +48,5 @@ def example_path(name=""):
 
 
 __all__ = ["DihedraError", "StateScheme", "Torsion", "TorsionSet", "TorsionStates", "TrackResult", "__version__",
-           "example_path", "get_scheme", "load_results", "select_torsions", "track"]
+           "compare_with_scan", "ensemble_couplings", "example_path", "get_scheme", "load_results",
+           "select_torsions", "state_kinetics", "track"]

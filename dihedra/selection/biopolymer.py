@@ -95,8 +95,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .residue_names import (C_CAP_CARBON, C_END_ATOMS, END3_ATOMS, END5_ATOMS, GLYCOSIDIC_TORSION, N_END_ATOMS,
-                            SIDECHAIN_TORSIONS, SUGAR_PHOSPHATE, chain_atoms)
+from .residue_names import (C_CAP_CARBON, C_END_ATOMS, END3_ATOMS, END5_ATOMS, GLYCOSIDIC_TORSION,
+                            KIND_AMINO, KIND_AMINO_LIKE, KIND_C_CAP, KIND_NUCLEOTIDE, KIND_NUCLEOTIDE_LIKE,
+                            KIND_N_CAP, N_END_ATOMS, SIDECHAIN_TORSIONS, SUGAR_PHOSPHATE, chain_atoms)
 from .residue_topology import (ResidueLinks, ResidueTopology, SelectionNotices, chain_breaks, duplicate_notices,
                                expected_atoms, missing_atoms, neighbour_missing, non_standard)
 from .torsions import TorsionSet
@@ -140,9 +141,9 @@ def protein_backbone_torsions(universe):
     topo = ResidueTopology(_universe(universe), "protein backbone")
     notices = SelectionNotices()
     kind = topo.kind
-    member = (kind == _AMINO) | (kind == _AMINO_LIKE)
-    links = ResidueLinks(topo, "C", "N", tail_ok=member | (kind == _N_CAP),
-                   head_ok=member | (kind == _C_CAP))
+    member = (kind == KIND_AMINO) | (kind == KIND_AMINO_LIKE)
+    links = ResidueLinks(topo, "C", "N", tail_ok=member | (kind == KIND_N_CAP),
+                   head_ok=member | (kind == KIND_C_CAP))
 
     n_at, ca, c = topo.atom("N"), topo.atom("CA"), topo.atom("C")
     # neighbour atoms: the linked residue, else CHARMM patch atoms inside the residue
@@ -150,12 +151,12 @@ def protein_backbone_torsions(universe):
     prev_c = np.where(prev >= 0, links.tail[np.maximum(prev, 0)], topo.atom("CY"))
     next_n = np.where(nxt >= 0, links.head[np.maximum(nxt, 0)], topo.atom("NT"))
     nxt_safe = np.maximum(nxt, 0)
-    next_carbon = np.where(kind[nxt_safe] == _C_CAP, topo.atom(C_CAP_CARBON)[nxt_safe],
+    next_carbon = np.where(kind[nxt_safe] == KIND_C_CAP, topo.atom(C_CAP_CARBON)[nxt_safe],
                            ca[nxt_safe])
     next_ca = np.where(nxt >= 0, next_carbon, np.where(next_n >= 0, topo.atom("CAT"), -1))
 
     linked = (prev >= 0) | (nxt >= 0) | (prev_c >= 0) | (next_n >= 0)
-    rows = np.flatnonzero(member & ((kind == _AMINO) | linked))
+    rows = np.flatnonzero(member & ((kind == KIND_AMINO) | linked))
     definitions = (
         ("phi", 0, (prev_c, n_at, ca, c)),
         ("psi", 1, (n_at, ca, c, next_n)),
@@ -169,7 +170,7 @@ def protein_backbone_torsions(universe):
     complete = (ca >= 0) & (c >= 0)
     own = {"phi": complete & (n_at >= 0), "psi": complete & (n_at >= 0), "omega": complete}
     missing_atoms(topo, notices, "residues with missing backbone atoms", ["N", "CA", "C"],
-                   np.flatnonzero(kind == _AMINO), own)
+                   np.flatnonzero(kind == KIND_AMINO), own)
     with_ca = rows[member[np.maximum(nxt[rows], 0)] & (c[rows] >= 0)]
     neighbour_missing(topo, notices, "residues with missing backbone atoms", "omega", with_ca,
                        nxt, ca, "CA")
@@ -177,10 +178,10 @@ def protein_backbone_torsions(universe):
     n_end = topo.has_any(N_END_ATOMS) | (topo.end == "N") | topo.has("CY")
     lost_before = np.where(member & (ca >= 0), "psi, omega", "")
     lost_after = np.where(member & (ca >= 0), "phi", "")
-    chain_breaks(topo, links, notices, before_ok=member | (kind == _N_CAP),
-                  after_ok=member | (kind == _C_CAP), before_end=c_end, after_end=n_end,
+    chain_breaks(topo, links, notices, before_ok=member | (kind == KIND_N_CAP),
+                  after_ok=member | (kind == KIND_C_CAP), before_end=c_end, after_end=n_end,
                   lost_before=lost_before, lost_after=lost_after)
-    non_standard(topo, notices, rows[kind[rows] == _AMINO_LIKE],
+    non_standard(topo, notices, rows[kind[rows] == KIND_AMINO_LIKE],
                   "included phi, psi, omega (linked into a peptide chain)", "an amino acid")
     duplicate_notices(topo, notices, rows)
     result = notices.render()
@@ -211,7 +212,7 @@ def protein_sidechain_torsions(universe):
     topo = ResidueTopology(_universe(universe), "protein side-chain")
     notices = SelectionNotices()
     records = []
-    rows_all = np.flatnonzero(topo.kind == _AMINO)
+    rows_all = np.flatnonzero(topo.kind == KIND_AMINO)
     for standard, definitions in SIDECHAIN_TORSIONS.items():
         rows = rows_all[topo.standard[rows_all] == standard]
         if not len(rows):
@@ -223,7 +224,7 @@ def protein_sidechain_torsions(universe):
             found_ok[name][_collect(records, rows, rank, name, columns)] = True
         missing_atoms(topo, notices, "residues with missing side-chain atoms",
                        expected_atoms(atoms for _, atoms in definitions), rows, found_ok)
-    non_standard(topo, notices, np.flatnonzero(topo.kind == _AMINO_LIKE),
+    non_standard(topo, notices, np.flatnonzero(topo.kind == KIND_AMINO_LIKE),
                   "skipped side-chain torsions", "an amino acid")
     duplicate_notices(topo, notices, rows_all)
     return TorsionSet(topo.torsions(records, ("CA",)), notices.render())
@@ -252,7 +253,7 @@ def nucleic_backbone_torsions(universe):
     topo = ResidueTopology(_universe(universe), "nucleic-acid")
     notices = SelectionNotices()
     kind = topo.kind
-    member = (kind == _NUCLEOTIDE) | (kind == _NUCLEOTIDE_LIKE)
+    member = (kind == KIND_NUCLEOTIDE) | (kind == KIND_NUCLEOTIDE_LIKE)
     links = ResidueLinks(topo, "O3'", "P", tail_ok=member, head_ok=member)
     prev, nxt = links.prev, links.next
     p, o5, c5, c4, c3, o3 = (topo.atom(n) for n in ("P", "O5'", "C5'", "C4'", "C3'", "O3'"))
@@ -261,7 +262,7 @@ def nucleic_backbone_torsions(universe):
     next_o5 = np.where(nxt >= 0, o5[np.maximum(nxt, 0)], -1)
 
     linked = (prev >= 0) | (nxt >= 0)
-    rows = np.flatnonzero(member & ((kind == _NUCLEOTIDE) | linked))
+    rows = np.flatnonzero(member & ((kind == KIND_NUCLEOTIDE) | linked))
     definitions = [
         ("alpha", (prev_o3, p, o5, c5)),
         ("beta", (p, o5, c5, c4)),
@@ -274,7 +275,7 @@ def nucleic_backbone_torsions(universe):
     for rank, (name, columns) in enumerate(definitions):
         _collect(records, rows, rank, name, [col[rows] for col in columns])
 
-    recognised = np.flatnonzero(kind == _NUCLEOTIDE)
+    recognised = np.flatnonzero(kind == KIND_NUCLEOTIDE)
     chi_ok = np.zeros(len(topo.res), dtype=bool)
     for base, atoms in GLYCOSIDIC_TORSION.items():
         sub = recognised[topo.standard[recognised] == base]
@@ -303,7 +304,7 @@ def nucleic_backbone_torsions(universe):
     lost_after = np.where(member, "alpha", "")
     chain_breaks(topo, links, notices, before_ok=member, after_ok=member, before_end=three_end,
                   after_end=five_end, lost_before=lost_before, lost_after=lost_after)
-    non_standard(topo, notices, rows[kind[rows] == _NUCLEOTIDE_LIKE],
+    non_standard(topo, notices, rows[kind[rows] == KIND_NUCLEOTIDE_LIKE],
                   "included alpha to zeta but not chi (linked into a nucleic-acid chain)",
                   "a nucleotide")
     duplicate_notices(topo, notices, rows)

@@ -60,7 +60,7 @@ def _nucleotide_names():
 NUCLEOTIDE_NAMES = _nucleotide_names()
 PURINES = ("A", "G")
 
-_AMINO, _AMINO_LIKE, _N_CAP, _C_CAP, _NUCLEOTIDE, _NUCLEOTIDE_LIKE = 1, 2, 3, 4, 5, 6
+KIND_AMINO, KIND_AMINO_LIKE, KIND_N_CAP, KIND_C_CAP, KIND_NUCLEOTIDE, KIND_NUCLEOTIDE_LIKE = 1, 2, 3, 4, 5, 6
 
 
 def _amino_lookup():
@@ -106,7 +106,7 @@ def classify_residue_name(resname):
     return None, None, ""
 
 
-KIND_CODE = {"amino": _AMINO, "n-cap": _N_CAP, "c-cap": _C_CAP, "nucleotide": _NUCLEOTIDE}
+KIND_CODE = {"amino": KIND_AMINO, "n-cap": KIND_N_CAP, "c-cap": KIND_C_CAP, "nucleotide": KIND_NUCLEOTIDE}
 
 # --------------------------------------------------------------------------------------------
 # angle definitions: each atom is a tuple of accepted names, the first present is used

@@ -9,8 +9,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import SelectionError
-from .residue_names import (KIND_CODE, LINK_DISTANCE, N_NAME_CODES, NAME_CODE, SUGAR_PHOSPHATE,
-                            classify_residue_name)
+from .residue_names import (KIND_AMINO_LIKE, KIND_CODE, KIND_NUCLEOTIDE_LIKE, LINK_DISTANCE, NAME_CODE,
+                            N_NAME_CODES, SUGAR_PHOSPHATE, classify_residue_name)
 from .torsions import Torsion, bond_array as _bond_array, molecule_group
 
 # --------------------------------------------------------------------------------------------
@@ -82,9 +82,9 @@ class ResidueTopology:
         self.end = end[self.res]
         unknown = self.kind == 0
         has = self.has
-        self.kind[unknown & has("N") & has("CA") & has("C")] = _AMINO_LIKE
+        self.kind[unknown & has("N") & has("CA") & has("C")] = KIND_AMINO_LIKE
         sugar = np.all([has(n) for n in SUGAR_PHOSPHATE], axis=0)
-        self.kind[(self.kind == 0) & sugar] = _NUCLEOTIDE_LIKE
+        self.kind[(self.kind == 0) & sugar] = KIND_NUCLEOTIDE_LIKE
 
         # chain identity of each candidate residue: segment, chain ID and molecule number
         keys = [residues.segindices[self.res]]
