@@ -1,7 +1,8 @@
-"""One-file pipelines: keys read from the subcommand parsers, unknown keys named, paths relative to
-the file, the file copied into the results folder, and the demo's own file."""
+"""One-file pipelines: tables mapped onto the Python API's keyword arguments (read from the
+functions' signatures), unknown keys named, paths relative to the file, every table checked before
+the first step, the file copied into the results folder, and the demo's own file."""
 
-import argparse
+import inspect
 import json
 import os
 import re
@@ -10,37 +11,21 @@ import pandas as pd
 import pytest
 from figure_data import SCAN_TOML, make_system
 
+import dihedra
 from dihedra import example_path
-from dihedra.cli import build_parser, main
+from dihedra.cli import main
 from dihedra.errors import DihedraError
-from dihedra.pipeline import (COPY_NAME, RECORD_NAME, load_pipeline, run_pipeline, step_spec,
-                              subcommand_parsers)
+from dihedra.pipeline import COPY_NAME, RECORD_NAME, STEPS, load_pipeline, run_pipeline
 
 
-def help_options(name):
-    """Long options of a subcommand as its --help text prints them (the reference, independent of
-    the pipeline's reading of the parser)."""
-    parser = subcommand_parsers()[name]
-    text = parser.format_help()
-    found = re.findall(r"^ {2}(?:-\w[^,]*, )?(--[a-z][a-z0-9-]*)", text, flags=re.M)  # the option lines
-    return {o[2:].replace("-", "_") for o in found} - {"help"}
-
-
-@pytest.mark.parametrize("name", ["track", "windows", "profile", "compare", "kinetics", "couplings", "figures",
-                                  "report"])
-def test_valid_keys_are_exactly_the_options_of_the_subcommand(name):
-    spec = step_spec(name, subcommand_parsers()[name])
-    parser = subcommand_parsers()[name]
-    positionals = {a.dest for a in parser._actions if not a.option_strings} - {spec.folder_key}
-    options = help_options(name) - ({"out"} if spec.creates_folder else set())
-    assert set(spec.valid_keys) == options | positionals
-    if name == "track":
-        assert spec.creates_folder and {"topology", "trajectories", "keep_angles", "torsions"} <= set(spec.valid_keys)
-        assert "out" not in spec.valid_keys
-    elif name == "windows":
-        assert spec.creates_folder and {"windows", "temperature"} <= set(spec.valid_keys)
-    else:
-        assert spec.folder_key == "folder" and "folder" not in spec.valid_keys
+@pytest.mark.parametrize("name, func, inputs", [
+    ("track", dihedra.track, set()), ("profile", dihedra.free_energy_profiles, {"energy_unit"}),
+    ("kinetics", dihedra.state_kinetics, set()), ("windows", dihedra.unbias_windows, set())])
+def test_valid_keys_are_the_keyword_arguments_of_the_api(name, func, inputs):
+    # the reference: the function's own signature, less what the pipeline sets itself
+    own = {"result", "out", "overwrite", "log", "progress", "barriers", "profile_temperature_k"}
+    expected = set(inspect.signature(func).parameters) - own
+    assert set(STEPS[name].keys) == expected | inputs
 
 
 def write(path, text):
@@ -49,15 +34,14 @@ def write(path, text):
     return str(path)
 
 
-def test_unknown_key_names_the_key_and_the_valid_ones(tmp_path):
+def test_unknown_key_names_the_key_suggests_one_and_lists_the_valid_ones(tmp_path):
     toml = write(tmp_path / "a.toml", 'out = "res"\n[track]\ntopology = "t.pdb"\ntrajectories = ["x.xtc"]\n'
-                                      "keep_angle = true\n")
+                                      "temperature = 300\n")
     with pytest.raises(DihedraError) as err:
         load_pipeline(toml)
     msg = str(err.value)
-    valid = step_spec("track", subcommand_parsers()["track"]).valid_keys
-    assert "unknown key 'keep_angle'" in msg and "[track]" in msg
-    assert msg.endswith(", ".join(valid) + ".")
+    assert "[track]: unknown key 'temperature' (did you mean 'temperature_k'?)" in msg
+    assert msg.endswith(", ".join(sorted(STEPS["track"].keys)) + ".")
     toml = write(tmp_path / "b.toml", 'out = "res"\ntitle = "x"\n[report]\n')
     with pytest.raises(DihedraError,
                        match="unknown top-level key 'title'; valid top-level keys are base_dir, out, steps"):
@@ -67,55 +51,62 @@ def test_unknown_key_names_the_key_and_the_valid_ones(tmp_path):
         load_pipeline(toml)
 
 
-def test_value_types_and_pipeline_owned_keys_are_checked(tmp_path):
+def test_values_inputs_and_pipeline_owned_keys_are_checked_before_anything_runs(tmp_path):
     os.makedirs(tmp_path / "res")
-    cases = {'[profile]\ntypes_only = "yes"': "is a switch: give true or false",
-             "[profile]\nbin_width = [5, 10]": "takes one value",
-             '[profile]\nbin_width = "five"': "invalid float value: 'five'",
-             '[profile]\nfolder = "elsewhere"': "set by the pipeline from the top-level 'out'",
-             "[profile]\npair = [[\"a\", \"b\", \"c\"]]": "takes 2 values per entry",
-             '[figures]\nwidth = "A4"': "invalid choice: 'A4'"}
+    cases = {'[profile]\nper_torsion = "yes"': "is a switch: give true or false",
+             "[profile]\nbin_width_deg = [5, 10]": "takes a number",
+             '[profile]\nbin_width_deg = "five"': "takes a number",
+             "[profile]\nbin_width_deg = 7": "bin width",
+             '[profile]\nresult = "elsewhere"': "set by the pipeline from the top-level 'out'",
+             '[compare]\nscan = "missing.toml"': "scan 'missing.toml' does not exist",
+             '[compare]\ntypes = ["all"]': "give scan",
+             '[couplings]\nselect = ["x"]': "needs relation"}
     for k, (table, message) in enumerate(cases.items()):
         toml = write(tmp_path / f"t{k}.toml", f'out = "res"\n{table}\n')
         with pytest.raises(DihedraError, match=re.escape(message)):
             load_pipeline(toml)
 
 
-def test_dashes_or_underscores_and_relative_paths(tmp_path, monkeypatch):
+def test_dashes_or_underscores_relative_paths_and_names_that_are_never_paths(tmp_path, monkeypatch):
     sub = tmp_path / "project"
-    os.makedirs(sub)
+    os.makedirs(sub / "in")
+    for name in ("top.pdb", "r0.xtc", "r1.xtc"):
+        write(sub / "in" / name, "")
     write(sub / "sectors.toml", '[[state]]\nlabel = "trans"\nfrom_deg = 90\nto_deg = -90\n'
                                 '[[state]]\nlabel = "cis"\nfrom_deg = -90\nto_deg = 90\n')
+    write(sub / "rotatable", "a file named like a specification")
+    write(sub / "klyne-prelog", "and one named like a scheme")
     head = 'out = "res"\n[track]\ntopology = "in/top.pdb"\ntrajectories = ["in/r0.xtc", "in/r1.xtc"]\n'
-    rest = 'scheme = "sectors.toml"\ntorsions = ["rotatable"]\n'
-    a = write(sub / "a.toml", head + rest + "keep-angles = true\ndt-ps = 2.5\n")
-    b = write(sub / "b.toml", head + rest + "keep_angles = true\ndt_ps = 2.5\n")
+    a = write(sub / "a.toml", head + 'scheme = "sectors.toml"\ntorsions = ["rotatable"]\nkeep-angles = true\n'
+                                     "dt-ps = 2.5\n")
+    b = write(sub / "b.toml", head + 'scheme = "klyne-prelog"\ntorsions = ["rotatable"]\nkeep_angles = true\n'
+                                     "dt_ps = 2.5\n")
     monkeypatch.chdir(tmp_path)  # somewhere else: paths are relative to the file, not to the cwd
-    pa, pb = load_pipeline(a), load_pipeline(b)
-    assert pa.steps[0].argv == pb.steps[0].argv
-    argv = pa.steps[0].argv
-    assert argv[:3] == [str(sub / "in" / "top.pdb"), str(sub / "in" / "r0.xtc"), str(sub / "in" / "r1.xtc")]
-    assert "--keep-angles" in argv and argv[argv.index("--scheme") + 1] == str(sub / "sectors.toml")
-    assert argv[argv.index("--torsions") + 1] == "rotatable"  # a spec, not a file: left alone
-    assert argv[argv.index("--dt-ps") + 1] == "2.5"
-    assert argv[-2:] == ["--out", str(sub / "res")] and pa.out == str(sub / "res")
-    # the parsed arguments are what 'dihedra track' would get on the command line
-    ns = build_parser().parse_args(["track", *argv])
-    assert ns.keep_angles is True and ns.dt_ps == 2.5 and ns.torsions == ["rotatable"]
+    args = load_pipeline(a).steps[0].arguments
+    assert args["topology"] == str(sub / "in" / "top.pdb")
+    assert args["trajectories"] == [str(sub / "in" / "r0.xtc"), str(sub / "in" / "r1.xtc")]
+    assert args["scheme"] == str(sub / "sectors.toml") and args["torsions"] == ["rotatable"]
+    assert args["keep_angles"] is True and args["dt_ps"] == 2.5
+    other = load_pipeline(b).steps[0].arguments
+    assert other["scheme"] == "klyne-prelog" and other["torsions"] == ["rotatable"]   # names, not files
+    assert load_pipeline(a).out == str(sub / "res")
 
 
 def test_steps_order_arrays_of_tables_and_dry_run(tmp_path, capsys):
     os.makedirs(tmp_path / "res")
+    for name in ("s1.toml", "s2.toml"):
+        write(tmp_path / name, SCAN_TOML)
     toml = write(tmp_path / "p.toml", 'out = "res"\nsteps = ["report", "compare"]\n'
-                                      '[[compare]]\nscan = "s1.toml"\n[[compare]]\nscan = "s2.toml"\ntype = ["all"]\n'
+                                      '[[compare]]\nscan = "s1.toml"\n[[compare]]\nscan = "s2.toml"\ntypes = ["all"]\n'
                                       "[kinetics]\n")
     pipe = load_pipeline(toml)
     assert [s.name for s in pipe.steps] == ["report", "compare", "compare"]
-    assert pipe.steps[1].argv == [str(tmp_path / "res"), "--scan", str(tmp_path / "s1.toml")]
-    assert pipe.steps[2].argv[-2:] == ["--type", "all"]
+    assert pipe.steps[1].arguments == {"scan": str(tmp_path / "s1.toml")}
+    assert pipe.steps[2].arguments["types"] == ["all"]
     assert main(["run", toml, "--dry-run"]) == 0
     captured = capsys.readouterr()
-    assert captured.out.splitlines()[0] == f"dihedra report {tmp_path / 'res'}"
+    assert captured.out.splitlines()[0] == "dihedra.presentation.report.write_report(result, )"
+    assert captured.out.splitlines()[1].startswith("dihedra.compare_with_scan(result, scan=")
     assert "table [kinetics] is not listed in steps" in captured.err
     # without steps, the tables run in the documented order whatever the file order
     toml = write(tmp_path / "q.toml", 'out = "res"\n[report]\n[figures]\n[profile]\n')
@@ -129,9 +120,9 @@ def test_run_executes_the_steps_and_copies_the_file_into_the_results_folder(tmp_
     write(tmp_path / "scan.toml", SCAN_TOML)
     text = (f'# my analysis\nout = "results"\n\n[track]\ntopology = "data/{os.path.basename(top)}"\n'
             f'trajectories = {json.dumps(["data/" + os.path.basename(t) for t in trajs])}\n'
-            'torsions = ["rotatable"]\ntemperature = 300.0\nkeep_angles = true\n\n'
-            '[profile]\nbootstrap = 30\ntypes_only = true\n\n[compare]\nscan = "scan.toml"\nbootstrap = 30\n\n'
-            '[kinetics]\nbootstrap = 20\nlag = [1, 2]\n\n[figures]\nformat = "png"\n\n[report]\n')
+            'torsions = ["rotatable"]\ntemperature_k = 300.0\nkeep_angles = true\n\n'
+            '[profile]\nn_bootstrap = 30\nper_torsion = false\n\n[compare]\nscan = "scan.toml"\nn_bootstrap = 30\n\n'
+            '[kinetics]\nn_bootstrap = 20\nlags = [1, 2]\n\n[figures]\nformats = "png"\n\n[report]\n')
     toml = write(tmp_path / "analysis-file.toml", text)
     monkeypatch.chdir(data)
     assert main(["run", toml]) == 0
@@ -152,7 +143,7 @@ def test_run_executes_the_steps_and_copies_the_file_into_the_results_folder(tmp_
     before = pd.read_csv(out / "populations.csv")
     monkeypatch.chdir(tmp_path.parent)
     pipe = load_pipeline(str(out / COPY_NAME), out=str(tmp_path / "again"))
-    assert pipe.steps[0].argv[0] == top
+    assert pipe.steps[0].arguments["topology"] == top
     run_pipeline(pipe)
     pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "again" / "populations.csv"), before)
     assert (tmp_path / "again" / COPY_NAME).exists()
@@ -167,7 +158,8 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     top, trajs = make_system(str(data), n_replicas=1, n_frames=40, n_molecules=2)
     toml = write(tmp_path / "f.toml",
                  f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\ntorsions = ["rotatable"]\n'
-                 '[compare]\nscan = "missing-scan.csv"\nangle_unit = "deg"\nenergy_unit = "kJ/mol"\n')
+                 '[compare]\nscan = "bad-scan.csv"\nscan_angle_unit = "deg"\nscan_energy_unit = "kJ/mol"\n')
+    write(tmp_path / "bad-scan.csv", "angle_deg,energy_kj_mol\n0,0\n")   # one point: refused by the reader
     assert main(["run", toml]) == 2
     err = capsys.readouterr().err
     assert "step compare (f.toml, [compare]) failed" in err
@@ -183,11 +175,9 @@ def test_the_demo_file_is_a_valid_analysis_of_the_bundled_example():
     pipe = load_pipeline(path, out="/nonexistent/demo-out")
     names = [s.name for s in pipe.steps]
     assert names == ["track", "profile", "compare", "kinetics", "figures", "report"]
-    track = pipe.steps[0].argv
-    assert track[0] == example_path("hexane.pdb") and "--keep-angles" in track
-    compare = pipe.steps[2].argv
-    assert compare[compare.index("--scan") + 1] == example_path("trappe_ua_torsion.toml")
-    assert not pipe.notes  # every step exists in this version
+    track = pipe.steps[0].arguments
+    assert track["topology"] == example_path("hexane.pdb") and track["keep_angles"] is True
+    assert pipe.steps[2].arguments["scan"] == example_path("trappe_ua_torsion.toml")
 
 
 def test_the_trappe_scan_file_is_the_trappe_potential():
@@ -248,24 +238,23 @@ def test_demo_replaces_a_previous_demo_folder(tmp_path, monkeypatch):
     (out / RECORD_NAME).write_text(json.dumps({"analysis_file": example_path("demo.toml")}))
     (out / MARKER).write_text(json.dumps({"run_id": "x", "files": [RECORD_NAME]}))
     seen = {}
-    monkeypatch.setattr(demo, "run_pipeline", lambda pipe, log=None: seen.setdefault("argv", pipe.steps[0].argv))
+    monkeypatch.setattr(demo, "run_pipeline", lambda pipe, log=None: seen.setdefault("pipe", pipe))
     assert main(["demo", "--out", str(out), "--workers", "2"]) == 0
-    argv = seen["argv"]
-    assert "--overwrite" in argv and argv[argv.index("--workers") + 1] == "2"
-    assert argv[-2:] == ["--out", str(out)]
-
-
-def test_argparse_internals_used_by_the_pipeline_are_there():
-    # the pipeline reads the subparsers through argparse's _SubParsersAction (a stable internal)
-    parser = build_parser()
-    assert any(isinstance(a, argparse._SubParsersAction) for a in parser._actions)
+    pipe = seen["pipe"]
+    assert pipe.overwrite and pipe.steps[0].arguments["workers"] == 2 and pipe.out == str(out)
 
 
 def test_the_full_example_of_the_docs_is_a_valid_analysis_file(tmp_path):
     docs = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "docs", "pipelines.md")
     text = open(docs).read()
     block = re.search(r"## A full example\s+```toml\n(.*?)```", text, flags=re.S).group(1)
+    os.makedirs(tmp_path / "inputs")
+    for name in ("inputs/hexane.pdb", "inputs/run1.xtc", "inputs/run2.xtc", "measured_couplings.csv"):
+        write(tmp_path / name, "")
+    write(tmp_path / "trappe_ua_torsion.toml", SCAN_TOML)
     pipe = load_pipeline(write(tmp_path / "analysis.toml", block))
     assert [s.name for s in pipe.steps] == ["track", "profile", "compare", "kinetics", "couplings", "figures",
                                            "report"]
-    assert pipe.steps[0].argv[:3] == [str(tmp_path / "inputs" / x) for x in ("hexane.pdb", "run1.xtc", "run2.xtc")]
+    track = pipe.steps[0].arguments
+    assert [track["topology"]] + track["trajectories"] == [str(tmp_path / "inputs" / x)
+                                                            for x in ("hexane.pdb", "run1.xtc", "run2.xtc")]

@@ -33,8 +33,7 @@ def run(args):
     path = example_path(DEMO_FILE)
     say(f"dihedra demo: liquid n-hexane (100 molecules, TraPPE-UA, 298.15 K), 3 C-C-C-C torsions each; "
         f"steps from {path}")
-    pipe = load_pipeline(path, out=out, overrides={"track": {"overwrite": overwrite, "workers": args.workers}},
-                         skip_missing=True, log=say)
+    pipe = load_pipeline(path, out=out, overwrite=overwrite, overrides={"track": {"workers": args.workers}}, log=say)
     run_pipeline(pipe, log=say)
     report = os.path.join(out, "report.html")
     if os.path.exists(report):
