@@ -141,8 +141,9 @@ class ProfileSet:
 
     def save(self, folder, energy_unit="kJ/mol"):
         """Write profiles.csv, minima.csv, barriers.csv, state_free_energies.csv, profiles.json
-        (and profiles_2d.csv) into ``folder``, each atomically, free energies in ``energy_unit``
-        (kJ/mol, kcal/mol or kT). Returns the paths."""
+        (and profiles_2d.csv) into ``folder`` (made if missing), each atomically, free energies in
+        ``energy_unit`` (kJ/mol, kcal/mol or kT). Returns the paths."""
+        os.makedirs(folder, exist_ok=True)
         paths = []
         tables = [("profiles.csv", self.profiles), ("minima.csv", self.minima), ("barriers.csv", self.barriers),
                   ("state_free_energies.csv", self.state_free_energies)]
