@@ -24,6 +24,8 @@ from ._version import __version__
 from .analysis.compare import compare_with_scan
 from .analysis.couplings import ensemble_couplings
 from .analysis.kinetics import state_kinetics
+from .analysis.profiles import free_energy_profiles
+from .analysis.windows import unbias_windows
 from .errors import DihedraError
 from .io.resultsdir import load_results
 from .selection.schemes import StateScheme, get_scheme
@@ -48,5 +50,5 @@ def example_path(name=""):
 
 
 __all__ = ["DihedraError", "StateScheme", "Torsion", "TorsionSet", "TorsionStates", "TrackResult", "__version__",
-           "compare_with_scan", "ensemble_couplings", "example_path", "get_scheme", "load_results",
-           "select_torsions", "state_kinetics", "track"]
+           "compare_with_scan", "ensemble_couplings", "example_path", "free_energy_profiles", "get_scheme",
+           "load_results", "select_torsions", "state_kinetics", "track", "unbias_windows"]

@@ -8,12 +8,13 @@ import pytest
 from scipy import integrate, optimize, stats
 
 from dihedra.errors import DihedraError
-from dihedra.analysis.profiles import (bootstrap_multiplicities, compute_profiles, pair_profiles, von_mises_smooth,
-                              write_profiles)
+from dihedra.analysis.profiles import bootstrap_multiplicities, free_energy_profiles, pair_profiles, von_mises_smooth
+from dihedra.io.resultsdir import load_results
+from dihedra.tracking import track
 from dihedra.units import R_KJ_PER_MOL_K
 
-from synthetic_rotors import (RB_BUTANE, butane_results, inverse_cdf_samples, rb_energy, rotor_results,
-                              threefold_energy)
+from synthetic_rotors import (butane_results, inverse_cdf_samples, rb_energy, rotor_results,
+                              threefold_energy, write_rotor_trajectory)
 
 T = 298.15
 KT = R_KJ_PER_MOL_K * T
@@ -36,7 +37,7 @@ def rb_synthetic(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def rb_profiles(rb_synthetic):
-    return compute_profiles(rb_synthetic, T, per_torsion=True)
+    return free_energy_profiles(rb_synthetic, temperature_k=T, per_torsion=True)
 
 
 def test_known_density_recovered_within_error_band(rb_profiles):
@@ -57,12 +58,12 @@ def test_known_density_recovered_within_error_band(rb_profiles):
 
 
 def test_unsampled_bins_are_marked_and_written_empty(rb_profiles, rb_synthetic, tmp_path):
-    # common practice (DOMAIN.md): unvisited regions are "unsampled", never 0 or infinity in a table
+    # common practice: unvisited regions are "unsampled", never 0 or infinity in a table
     prof = rb_profiles.profiles
     hist = prof[(prof["estimate"] == "histogram") & (prof["torsion"] == "")]
     cis = hist[np.abs(hist["angle_deg"]) < 15]
     assert (~cis["sampled"]).all() and cis["free_energy_kj_mol"].isna().all()
-    paths = write_profiles(rb_profiles, str(tmp_path), "kJ/mol")
+    paths = rb_profiles.save(str(tmp_path), "kJ/mol")
     text = open(os.path.join(str(tmp_path), "profiles.csv")).read()
     assert "inf" not in text.lower() and "nan" not in text.lower()
     back = pd.read_csv(os.path.join(str(tmp_path), "profiles.csv"))
@@ -74,19 +75,21 @@ def test_unsampled_bins_are_marked_and_written_empty(rb_profiles, rb_synthetic, 
 
 
 def test_energy_unit_columns(rb_profiles, tmp_path):
-    # CHECK-VALUES.md: 1 thermochemical calorie = 4.184 J; kT = R T (CODATA 2018)
-    write_profiles(rb_profiles, str(tmp_path), "kcal/mol")
+    # 1 thermochemical calorie = 4.184 J (NIST SP 811); kT = R T with R = 8.314462618 J/(mol K)
+    # (CODATA 2018: Tiesinga et al., Rev. Mod. Phys. 93 (2021) 025010)
+    rb_profiles.save(str(tmp_path), "kcal/mol")
     kcal = pd.read_csv(os.path.join(str(tmp_path), "minima.csv"))
     kj = rb_profiles.minima
     assert np.allclose(kcal["free_energy_kcal_mol"] * 4.184, kj["free_energy_kj_mol"], equal_nan=True)
-    write_profiles(rb_profiles, str(tmp_path), "kT")
+    rb_profiles.save(str(tmp_path), "kT")
     kt = pd.read_csv(os.path.join(str(tmp_path), "minima.csv"))
     assert np.allclose(kt["free_energy_kt"] * 8.314462618e-3 * T, kj["free_energy_kj_mol"], equal_nan=True)
 
 
 def test_state_free_energy_matches_boltzmann_integral(rb_profiles):
-    # analytic (CHECK-VALUES.md, derived): single-torsion populations by numerical integration of
-    # exp(-V_RB/kT) over the anti-gauche arcs
+    # analytic, derived from the Ryckaert-Bellemans potential (Ryckaert & Bellemans, Faraday Discuss.
+    # Chem. Soc. 66 (1978) 95): single-torsion populations by numerical integration of exp(-V_RB/kT)
+    # over the anti-gauche arcs
     def weight(a, b):
         return integrate.quad(lambda x: np.exp(-rb_energy(x) / KT), a, b, limit=200)[0]
     anti = weight(120, 180) + weight(-180, -120)
@@ -99,10 +102,11 @@ def test_state_free_energy_matches_boltzmann_integral(rb_profiles):
 
 
 def test_ethane_like_rotor_barrier(tmp_path):
-    # common practice / CHECK-VALUES.md: the textbook ethane barrier of about 12 kJ/mol; a three-fold
+    # common practice: the textbook ethane barrier of about 12 kJ/mol (Kemp & Pitzer, J. Chem. Phys. 4
+    # (1936) 749; from memory); a three-fold
     # rotor V = 6 (1 + cos 3 phi) sampled exactly must show minima at +-60 and 180 and barriers of 12
     res = rotor_results(tmp_path, threefold_energy, T, n_frames=1500, n_molecules=200, seed=3, name="ethane")
-    prof = compute_profiles(res, T, per_torsion=False)
+    prof = free_energy_profiles(res, temperature_k=T, per_torsion=False)
     minima = prof.minima
     assert len(minima) == 3
     for target in (-60.0, 60.0, 180.0):
@@ -121,13 +125,13 @@ def butane(tmp_path_factory):
 
 
 def test_butane_barrier_near_120(butane):
-    # CHECK-VALUES.md (Ryckaert & Bellemans 1978, derived): trans-gauche barrier near +-120 deg at
-    # 12.35 kJ/mol; recomputed here from the coefficients with scipy.optimize
+    # Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95 (derived): trans-gauche barrier
+    # near +-120 deg at 12.35 kJ/mol; recomputed here from the coefficients with scipy.optimize
     res, source = butane
     top = optimize.minimize_scalar(lambda x: -rb_energy(x), bounds=(90, 150), method="bounded")
     v_top = -top.fun
     assert abs(v_top - 12.35) < 0.01 and abs(top.x - 120) < 3
-    prof = compute_profiles(res, per_torsion=False)  # temperature recorded by track
+    prof = free_energy_profiles(res, per_torsion=False)  # temperature recorded by track
     bars = prof.barriers[prof.barriers["sampled"]]
     assert len(bars) == 2, source
     for r in bars.itertuples():
@@ -137,13 +141,13 @@ def test_butane_barrier_near_120(butane):
 
 
 def test_temperature_required_or_announced(tmp_path):
-    # common practice (DOMAIN.md): temperature always explicit, never a silent default
+    # common practice: temperature always explicit, never a silent default
     res = rotor_results(tmp_path, threefold_energy, T, n_frames=64, n_molecules=4, record_temperature=False)
     with pytest.raises(DihedraError, match="temperature"):
-        compute_profiles(res)
+        free_energy_profiles(res)
     res.summary["temperature_k"] = 310.0
     said = []
-    prof = compute_profiles(res, log=said.append, per_torsion=False, n_bootstrap=20)
+    prof = free_energy_profiles(res, log=said.append, per_torsion=False, n_bootstrap=20)
     assert prof.temperature_k == 310.0 and any("310" in s for s in said)
 
 
@@ -178,8 +182,8 @@ def test_pair_profile_of_independent_torsions(rb_synthetic):
     # analytic: two independent molecules have F(a, b) = F(a) + F(b) (up to a constant); the 1-D
     # profile (all 100 molecules) is far more precise than the 2-D one (2000 frames of one pair)
     a, b = rb_synthetic.torsion_set.labels[:2]
-    pair = pair_profiles(rb_synthetic, a, b, T, bin_width_deg=30)
-    one = compute_profiles(rb_synthetic, T, bin_width_deg=30, per_torsion=False, n_bootstrap=20)
+    pair = pair_profiles(rb_synthetic, a, b, temperature_k=T, bin_width_deg=30)
+    one = free_energy_profiles(rb_synthetic, temperature_k=T, bin_width_deg=30, per_torsion=False, n_bootstrap=20)
     hist = one.by_type["BUT:C1-C2-C3-C4"][0]
     f1 = dict(zip(hist.angle_deg, hist.free_energy_kj_mol))
     ok = (pair["sampled"] & (pair["free_energy_err_kj_mol"] < 0.2 * KT)).to_numpy()
@@ -196,7 +200,7 @@ def test_pair_profile_needs_angles(tmp_path):
     # common practice: without the angle time series the message says how to get it
     res = rotor_results(tmp_path, threefold_energy, T, n_frames=32, n_molecules=2)
     with pytest.raises(DihedraError, match="--keep-angles"):
-        pair_profiles(res, *res.torsion_set.labels[:2], T)
+        pair_profiles(res, *res.torsion_set.labels[:2], temperature_k=T)
 
 
 def test_profile_command(rb_synthetic, capsys):
@@ -208,3 +212,30 @@ def test_profile_command(rb_synthetic, capsys):
     assert status == 0 and "kernel bandwidth" in out and "barrier" in out
     assert os.path.exists(os.path.join(rb_synthetic.folder, "profiles_2d.csv"))
     assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--bin-width", "7"]) == 2
+
+
+def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):
+    # common practice: an analysis reads a result only through its API, so a result kept in memory
+    # (track without out) and the same run written to a folder and loaded give the same tables
+    rng = np.random.default_rng(11)
+    angles = inverse_cdf_samples(rb_energy, T, (300, 12), rng)
+    pdb, dcd = write_rotor_trajectory(str(tmp_path), "mem", angles)
+    kwargs = dict(torsions="rotatable", keep_angles=True, temperature_k=T)
+    in_memory = track(pdb, [dcd], **kwargs)
+    assert in_memory.folder is None
+    out = str(tmp_path / "saved")
+    track(pdb, [dcd], out=out, **kwargs)
+    loaded = load_results(out)
+    pair = [tuple(in_memory.torsion_set.labels[:2])]
+    a = free_energy_profiles(in_memory, n_bootstrap=40, pairs=pair)   # temperature recorded by track
+    b = free_energy_profiles(loaded, n_bootstrap=40, pairs=pair)
+    for name in ("profiles", "minima", "barriers", "state_free_energies", "profiles_2d"):
+        left, right = getattr(a, name), getattr(b, name)
+        assert len(left) > 0, name
+        pd.testing.assert_frame_equal(left, right, check_exact=True, obj=name)
+    assert a.settings == b.settings and a.notices == b.notices
+    paths_a, paths_b = a.save(str(tmp_path / "a")), b.save(str(tmp_path / "b"))
+    assert [os.path.basename(p) for p in paths_a] == [os.path.basename(p) for p in paths_b]
+    for pa, pb in zip(paths_a, paths_b):
+        if pa.endswith(".csv"):
+            assert open(pa, "rb").read() == open(pb, "rb").read(), pa

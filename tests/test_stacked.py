@@ -19,6 +19,8 @@ from dihedra.analysis.kinetics import markov as kin_markov
 from dihedra.analysis.kinetics import tables as kin_tables
 from dihedra.analysis.kinetics import tally as kin_tally
 from dihedra.analysis import profiles as prof
+from dihedra.analysis.profiles import estimation as prof_est
+from dihedra.analysis.profiles import features as prof_feat
 from dihedra.io.tables import write_csv
 from dihedra.selection.schemes import get_scheme
 
@@ -189,7 +191,7 @@ def test_torsion_rows_equal_each_torsion_alone(tmp_path):
 # profiles
 # ------------------------------------------------------------------------------------------------
 def scalar_minima(free, err, kt, usable, min_depth_kt=prof.MIN_DEPTH_KT, min_depth_sigma=prof.MIN_DEPTH_SIGMA):
-    """The minimum rule of the module notes, one profile at a time (plain Python)."""
+    """The minimum rule of dihedra.analysis.profiles.features, one profile at a time (plain Python)."""
     g = [f if np.isfinite(f) else np.inf for f in free]
     ok = [np.isfinite(x) and u for x, u in zip(g, usable)]
     e = [x if np.isfinite(x) else 0.0 for x in err]
@@ -223,7 +225,7 @@ def scalar_minima(free, err, kt, usable, min_depth_kt=prof.MIN_DEPTH_KT, min_dep
 
 
 def test_stacked_minima_follow_the_rule_profile_by_profile():
-    # the rule of the module notes written out in plain Python, on noisy periodic profiles with
+    # the rule of the features module written out in plain Python, on noisy periodic profiles with
     # unsampled and unusable bins
     rng = np.random.default_rng(10)
     kt = 2.479
@@ -235,7 +237,7 @@ def test_stacked_minima_follow_the_rule_profile_by_profile():
     free[:100] = np.round(free[:100] * 2.0) / 2.0  # many equal values: ties go to the first in arc order
     err = np.abs(rng.normal(0.2, 0.15, (m, n)))
     usable = rng.random((m, n)) < 0.95
-    got = prof._minima_stack(free, err, kt, usable)
+    got = prof_feat._minima_stack(free, err, kt, usable)
     for k in range(m):
         assert list(got[k]) == scalar_minima(free[k], err[k], kt, usable[k]), k
     assert sum(len(g) for g in got) > m  # the profiles do have several minima
@@ -250,8 +252,8 @@ def test_kernel_error_without_kept_resamples_equals_full_bootstrap():
     blocks[:, :5, 100:200] = 0.0
     mult = prof.bootstrap_multiplicities(np.repeat([0, 1], 16), 60, np.random.default_rng(0))
     bws = rng.uniform(2.0, 12.0, 40)
-    full = prof._kernel_stack(blocks, mult, 2.479, bws, 1.0)
-    _, smooth, _, free, err, ok = prof._kernel_columns(blocks, mult, 2.479, bws, 1.0)
+    full = prof_est._kernel_stack(blocks, mult, 2.479, bws, 1.0)
+    _, smooth, _, free, err, ok = prof_est._kernel_columns(blocks, mult, 2.479, bws, 1.0)
     assert np.array_equal(ok, full.sampled)
     ref = np.where(full.sampled, full.free_energy_err_kj_mol, np.nan)
     assert np.array_equal(np.isnan(ref), np.isnan(err))
@@ -265,9 +267,9 @@ def test_profile_of_a_stack_equals_profiles_one_by_one():
     blocks = rng.poisson(5 * (1.3 + np.cos(np.radians(np.arange(72) * 5.0) * 3 + rng.uniform(0, 6, (1, 30, 1)))),
                          (32, 30, 72)).astype(float)
     mult = prof.bootstrap_multiplicities(np.repeat([0, 1], 16), 50, np.random.default_rng(2))
-    stack = prof._histogram_stack(blocks, mult, 2.479, 5.0)
-    minima, barriers = prof._features_stack(stack, 2.479)
-    for k, one in enumerate(prof._unstack(stack)):
+    stack = prof_est._histogram_stack(blocks, mult, 2.479, 5.0)
+    minima, barriers = prof_feat._features_stack(stack, 2.479)
+    for k, one in enumerate(prof_est._unstack(stack)):
         m1, b1 = prof.profile_features(one, 2.479)
         rows = minima["row"] == k
         assert len(m1) == rows.sum()

@@ -10,12 +10,12 @@ from scipy import integrate
 
 from dihedra.analysis.couplings import ensemble_couplings, get_relation
 from dihedra.errors import DihedraError
-from dihedra.analysis.profiles import compute_profiles
+from dihedra.analysis.profiles import free_energy_profiles
 from dihedra.io.resultsdir import load_results
 from dihedra.tracking import track
 from dihedra.units import kt_kj_mol
 from dihedra.analysis.windows import (bias_kj_mol, neighbour_pairs, read_windows, solve_free_energies, unbias_windows,
-                             wham_log_factors)
+                                     wham_log_factors)
 from synthetic_rotors import inverse_cdf_samples, rb_energy, write_rotor_trajectory
 
 T = 298.15
@@ -59,7 +59,10 @@ def synthetic(tmp_path_factory):
     folder = tmp_path_factory.mktemp("windows")
     csv = write_windows(folder, asymmetric_energy, np.arange(-180.0, 180.0, 10.0), 400.0, 80, 30)
     out = os.path.join(str(folder), "results")
-    wres = unbias_windows(csv, T, out=out, n_bootstrap=40)
+    wres = unbias_windows(csv, temperature_k=T, n_bootstrap=40)
+    assert wres.result.folder is None and not os.path.exists(out)  # nothing written before save
+    paths = wres.save(out)
+    assert wres.result.folder == out and all(os.path.exists(p) for p in paths)
     return wres, out
 
 
@@ -189,7 +192,7 @@ def test_windows_folder_serves_couplings_and_populations(synthetic):
 def test_poor_overlap_is_reported_by_pair(tmp_path):
     centres = [-180.0, -170.0, -160.0, -150.0, -140.0, -100.0, -90.0, -80.0]
     csv = write_windows(tmp_path, rb_energy, centres, 400.0, 40, 10, seed=4)
-    wres = unbias_windows(csv, T, n_bootstrap=20)
+    wres = unbias_windows(csv, temperature_k=T, n_bootstrap=20)
     poor = wres.overlap[wres.overlap["poor"]]
     # analytic: 40 degrees apart with sigma of about 4 degrees, the windows -140 and -100 cannot overlap
     assert poor[["centre_a_deg", "centre_b_deg"]].values.tolist() == [[-140.0, -100.0]]
@@ -216,7 +219,7 @@ def test_weights_flow_through_profiles(tmp_path):
     track(pdb, [dcd], torsions="0,1,2,3", weights=str(tmp_path / "w.csv"), out=out, temperature_k=T)
     res = load_results(out)
     assert res.blocks["histograms"].dtype == np.float64  # weighted sums (trackpass)
-    pset = compute_profiles(res, T, per_torsion=False, n_bootstrap=100)
+    pset = free_energy_profiles(res, temperature_k=T, per_torsion=False, n_bootstrap=100)
     hist = pset.profiles[(pset.profiles["estimate"] == "histogram")]
     ref, _ = reference_profile(rb_energy)
     f = -KT * np.log(hist["probability_density_per_deg"].to_numpy())
@@ -227,7 +230,7 @@ def test_weights_flow_through_profiles(tmp_path):
     # without the weights the same samples give the flattened profile, far from V0 (the weights matter)
     out2 = str(tmp_path / "unweighted")
     track(pdb, [dcd], torsions="0,1,2,3", out=out2, temperature_k=T)
-    flat = compute_profiles(load_results(out2), T, per_torsion=False, n_bootstrap=100).profiles
+    flat = free_energy_profiles(load_results(out2), temperature_k=T, per_torsion=False, n_bootstrap=100).profiles
     f2 = -KT * np.log(flat[flat["estimate"] == "histogram"]["probability_density_per_deg"].to_numpy())
     assert np.max(np.abs(f2 - ref)[ok]) > 5.0
     # the weighted anti population matches the Boltzmann integral of V0 (scipy), within 3 sigma
@@ -259,7 +262,33 @@ def test_window_table_checks(tmp_path):
     assert table["torsions"][0] == "0,1,2,3"
     assert table["centre_deg"][0] == pytest.approx(-170.0)  # wrapped to (-180, 180]
     with pytest.raises(DihedraError, match="temperature"):
-        unbias_windows(str(path), None)
+        unbias_windows(str(path), temperature_k=None)
+
+
+def test_window_table_as_dataframe_and_save(tmp_path, monkeypatch):
+    # common practice: a DataFrame with the columns of the CSV gives the same analysis; the results
+    # folder is written only by save, never over an existing folder without overwrite
+    from dihedra.errors import OutputExistsError
+
+    centres = np.arange(-180.0, 180.0, 30.0)
+    csv = write_windows(tmp_path, lambda x: 0.3 * rb_energy(x), centres, 60.0, 30, 10, seed=6)
+    from_file = unbias_windows(csv, temperature_k=T, n_bootstrap=20)
+    monkeypatch.chdir(tmp_path)   # relative paths of a DataFrame are relative to the current folder
+    from_frame = unbias_windows(pd.read_csv(csv, dtype={"torsions": str}), temperature_k=T, n_bootstrap=20)
+    monkeypatch.undo()
+    pd.testing.assert_frame_equal(from_file.comparison, from_frame.comparison)
+    pd.testing.assert_frame_equal(from_file.windows, from_frame.windows)
+    assert from_file.info["windows_file"] == os.path.abspath(csv) and from_frame.info["windows_file"] is None
+    assert from_frame.parameters["n_bootstrap"] == 20
+    out = str(tmp_path / "saved")
+    paths = from_frame.save(out)
+    assert {"windows.csv", "profiles.csv", "summary.json", "blocks.npz"} <= {os.path.basename(p) for p in paths}
+    assert load_results(out).summary["temperature_k"] == T
+    with pytest.raises(OutputExistsError):
+        from_file.save(out)
+    assert from_file.save(out, overwrite=True) and from_file.result.folder == out
+    with pytest.raises(OutputExistsError, match="holds an input"):   # never replaced
+        from_file.save(str(tmp_path), overwrite=True)
 
 
 def test_command_line(tmp_path, capsys):
@@ -283,7 +312,8 @@ def test_command_line(tmp_path, capsys):
 
 @pytest.mark.slow
 def test_openmm_butane_windows_reproduce_the_rb_potential(tmp_path):
-    # CHECK-VALUES.md: RB butane C0..C5; the derived values are recomputed here from the coefficients
+    # Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95: RB butane C0..C5; the derived
+    # values are recomputed here from the coefficients
     c = [9.28, 12.16, -13.12, -3.06, 26.24, -31.5]
     syn = sum(cn * (-1.0) ** n for n, cn in enumerate(c))       # V(0): cos(psi) = -1
     anti = sum(c)                                                 # V(180): cos(psi) = 1
@@ -292,13 +322,13 @@ def test_openmm_butane_windows_reproduce_the_rb_potential(tmp_path):
     v = rb_energy(grid)
     gauche = v[(grid > 30) & (grid < 90)].min()
     tg_barrier = v[(grid > 90) & (grid < 150)].max()
-    wres = unbias_windows(BUTANE_WINDOWS, T, out=str(tmp_path / "bw"), n_bootstrap=50)
+    wres = unbias_windows(BUTANE_WINDOWS, temperature_k=T, n_bootstrap=50)
     prof = wres.profiles.by_type[next(iter(wres.profiles.by_type))][0]
     ref, _ = reference_profile(rb_energy)
     assert prof.sampled.all()
     f = -KT * np.log(prof.density_per_deg)
     dev = f - ref
-    # within 1 kJ/mol everywhere, the syn barrier included (issue 4), and within 4 errors
+    # within 1 kJ/mol everywhere, the syn barrier included, and within 4 errors
     assert np.max(np.abs(dev)) < 1.0
     assert np.max(np.abs(dev / prof.free_energy_err_kj_mol)) < 4.0
     bar = wres.profiles.barriers.set_index(wres.profiles.barriers["angle_deg"].round(-1).abs())

@@ -2,8 +2,7 @@
 
 from ..errors import DihedraError
 from ..analysis.profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
-                        PROFILE_ENERGY_UNITS, compute_profiles, convert_energy_columns, unit_suffix,
-                        write_profiles)
+                                 PROFILE_ENERGY_UNITS, convert_energy_columns, free_energy_profiles, unit_suffix)
 from ..io.resultsdir import load_results
 from ..units import canonical_energy_unit
 from .common import print_notices, say
@@ -44,11 +43,11 @@ def run(args):
     if unit not in PROFILE_ENERGY_UNITS:
         raise DihedraError(f"--energy-unit must be kJ/mol, kcal/mol or kT for profiles; got {args.energy_unit!r}.")
     result = load_results(args.folder)
-    pset = compute_profiles(result, temperature_k=args.temperature, bin_width_deg=args.bin_width,
-                            bandwidth_deg=args.bandwidth, n_bootstrap=args.bootstrap, seed=args.seed,
-                            per_torsion=not args.types_only, pairs=args.pair,
-                            pair_bin_width_deg=args.pair_bin_width, log=say)
-    paths = write_profiles(pset, result.folder, unit)
+    pset = free_energy_profiles(result, temperature_k=args.temperature, bin_width_deg=args.bin_width,
+                                bandwidth_deg=args.bandwidth, n_bootstrap=args.bootstrap, seed=args.seed,
+                                per_torsion=not args.types_only, pairs=args.pair,
+                                pair_bin_width_deg=args.pair_bin_width, log=say)
+    paths = pset.save(result.folder, unit)
     report_profiles(pset, unit)
     print_notices(pset.notices)
     print("written: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")

@@ -1,7 +1,9 @@
 """``dihedra windows``: unbiased torsion profile from umbrella windows, by MBAR and by WHAM."""
 
 from ..analysis.profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_SEED
-from ..analysis.windows import DEFAULT_BOOTSTRAP, DEFAULT_MAX_MBAR_SAMPLES, MIN_OVERLAP, unbias_windows
+from ..analysis.windows import (DEFAULT_BOOTSTRAP, DEFAULT_MAX_MBAR_SAMPLES, MIN_OVERLAP, read_windows,
+                                unbias_windows, window_inputs)
+from ..io.outputs import check_folder_target
 from .common import add_scheme_option, print_notices, say
 from .profile import report_profiles
 
@@ -40,10 +42,14 @@ def register(sub):
 
 
 def run(args):
-    wres = unbias_windows(args.windows, args.temperature, out=args.out, scheme=args.scheme,
+    # the target is checked before the long computation, and again when the folder is written
+    check_folder_target(args.out, overwrite=args.overwrite, inputs=window_inputs(read_windows(args.windows),
+                                                                                  args.windows))
+    wres = unbias_windows(args.windows, temperature_k=args.temperature, scheme=args.scheme,
                           bin_width_deg=args.bin_width, bandwidth_deg=args.bandwidth, n_bootstrap=args.bootstrap,
                           seed=args.seed, start=args.start, stop=args.stop, step=args.step, workers=args.workers,
-                          max_mbar_samples=args.max_mbar_samples, overwrite=args.overwrite, log=say)
+                          max_mbar_samples=args.max_mbar_samples, log=say)
+    wres.save(args.out, overwrite=args.overwrite)
     report(wres)
     print_notices(wres.notices)
     print(f"results written to {wres.result.folder}")

@@ -1,0 +1,515 @@
+r"""The profiles of a tracking result: :func:`free_energy_profiles` and its :class:`ProfileSet`.
+
+For every torsion type (the torsions of a type pooled) and, unless ``per_torsion=False``, every
+torsion: the histogram and kernel profiles with their block-bootstrap errors
+(:mod:`.estimation`), minima, barriers and state free energies (:mod:`.features`); 2-D profiles of
+pairs of torsions on request (:mod:`.maps`).
+
+Computation: torsions are handled in stacks of :data:`_BATCH` = 256, every step one array
+operation over the stack (see :mod:`.estimation` and :mod:`.features`), a few stacks at a time in
+threads (NumPy releases the interpreter lock in its array loops); the tables are built column by
+column (:class:`_ProfileTables`).
+
+:meth:`ProfileSet.save` writes ``profiles.csv``, ``minima.csv``, ``barriers.csv``,
+``state_free_energies.csv``, ``profiles.json`` (and ``profiles_2d.csv``) through
+:mod:`dihedra.io.tables`, in kJ/mol, kcal/mol or kT.
+"""
+
+from __future__ import annotations
+
+import functools
+import os
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ...errors import DihedraError
+from ...io.tables import write_json, write_table
+from ...trajectory.result import as_result
+from ...units import canonical_energy_unit, check_temperature, from_kj_mol, kt_kj_mol
+from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
+                         _bandwidths, _histogram_stack, _kernel_columns, _kernel_profiles, _kernel_stack,
+                         _profiles_from_blocks, _unstack, bin_centres, bootstrap_multiplicities, check_bin_width,
+                         check_estimate_options, effective_samples, rebin)
+from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
+                       _state_free_energy_stack, state_blocks)
+from .maps import pair_profiles
+
+#: Energy units a profile can be written in.
+PROFILE_ENERGY_UNITS = ("kJ/mol", "kcal/mol", "kT")
+#: Torsions per stack (bounds memory: n_bootstrap x stack x 360 single-precision values, 74 MB).
+_BATCH = 256
+#: Threads that profile stacks of torsions side by side.
+_THREADS = min(4, os.cpu_count() or 1)
+
+
+# ----------------------------------------------------------------------------------------------
+# Temperature and energy units
+# ----------------------------------------------------------------------------------------------
+
+def resolve_temperature(temperature_k, summary=None, log=None):
+    """The temperature to use: the one given, else the one ``track`` recorded (announced).
+
+    Raises :class:`DihedraError` when neither exists: dihedra never assumes a temperature.
+    """
+    if temperature_k is not None:
+        return check_temperature(temperature_k)
+    recorded = (summary or {}).get("temperature_k")
+    if recorded is not None:
+        if log is not None:
+            log(f"using the temperature recorded by track: {float(recorded):g} K")
+        return check_temperature(recorded)
+    raise DihedraError("a temperature is required: give --temperature K (this results folder records "
+                       "none; 'track --temperature K' would have recorded one).")
+
+
+def unit_suffix(unit):
+    """Column-name suffix of an energy unit (``kj_mol``, ``kcal_mol``, ``kt``, ``hartree``, ``ev``)."""
+    return canonical_energy_unit(unit).lower().replace("/", "_")
+
+
+def convert_energy_columns(frame, unit, temperature_k):
+    """Copy of ``frame`` with every ``*_kj_mol`` column converted to ``unit`` and renamed."""
+    unit = canonical_energy_unit(unit)
+    if unit not in PROFILE_ENERGY_UNITS:
+        raise DihedraError(f"profiles are written in kJ/mol, kcal/mol or kT; got {unit!r}.")
+    out = frame.copy()
+    if unit == "kJ/mol":
+        return out
+    suffix = unit_suffix(unit)
+    rename = {}
+    for col in out.columns:
+        if col.endswith("_kj_mol"):
+            out[col] = from_kj_mol(out[col].to_numpy(float), unit, temperature_k)
+            rename[col] = col[: -len("kj_mol")] + suffix
+    return out.rename(columns=rename)
+
+
+
+# ----------------------------------------------------------------------------------------------
+# The result
+# ----------------------------------------------------------------------------------------------
+
+#: What a reader of profiles.json should keep in mind.
+_CAUTIONS = [
+    "F = -kT ln p is a potential of mean force along one torsion: it includes the effect of the "
+    "environment and of every other degree of freedom, averaged over them.",
+    "Bins with sampled = False were never visited; their free energy is unknown, not zero or infinite.",
+    "Errors come from a block bootstrap over 16 blocks per replica; with few transitions per block "
+    "they underestimate the true uncertainty.",
+]
+
+
+@dataclass
+class ProfileSet:
+    """Profiles of a tracking result; every free energy in kJ/mol (written by :meth:`save`).
+
+    Attributes
+    ----------
+    temperature_k : float
+    profiles : DataFrame
+        type, torsion (empty for pooled rows), estimate (``histogram`` / ``kernel``), angle_deg,
+        probability_density_per_deg, free_energy_kj_mol, free_energy_err_kj_mol, sampled,
+        n_samples, bandwidth_deg (kernel rows). The text columns are categorical.
+    minima, barriers, state_free_energies : DataFrame
+        From the histogram profiles, per type and per torsion (``torsion`` empty when pooled).
+    profiles_2d : DataFrame or None
+        See :func:`~dihedra.analysis.profiles.maps.pair_profiles`.
+    by_type : dict
+        type -> (histogram :class:`Profile1D`, kernel :class:`Profile1D`) of the pooled profiles.
+    settings : dict
+        Temperature, bin width, bandwidth rule, bootstrap, seed, feature rules (for the JSON);
+        also available as :attr:`parameters`.
+    notices : list of str
+    """
+
+    temperature_k: float
+    profiles: pd.DataFrame
+    minima: pd.DataFrame
+    barriers: pd.DataFrame
+    state_free_energies: pd.DataFrame
+    by_type: dict
+    settings: dict
+    profiles_2d: pd.DataFrame | None = None
+    notices: list = field(default_factory=list)
+
+    @property
+    def parameters(self):
+        """The settings of the analysis (the same dict as :attr:`settings`)."""
+        return self.settings
+
+    def save(self, folder, energy_unit="kJ/mol"):
+        """Write profiles.csv, minima.csv, barriers.csv, state_free_energies.csv, profiles.json
+        (and profiles_2d.csv) into ``folder`` (made if missing), each atomically, free energies in
+        ``energy_unit`` (kJ/mol, kcal/mol or kT). Returns the paths."""
+        os.makedirs(folder, exist_ok=True)
+        paths = []
+        tables = [("profiles.csv", self.profiles), ("minima.csv", self.minima), ("barriers.csv", self.barriers),
+                  ("state_free_energies.csv", self.state_free_energies)]
+        if self.profiles_2d is not None:
+            tables.append(("profiles_2d.csv", self.profiles_2d))
+        for name, frame in tables:
+            converted = (frame if canonical_energy_unit(energy_unit) == "kJ/mol"  # no copy of 6.5 million rows
+                         else convert_energy_columns(frame, energy_unit, self.temperature_k))
+            paths.append(write_table(converted, folder, name))
+        info = dict(self.settings)
+        info["energy_unit"] = canonical_energy_unit(energy_unit)
+        info["files"] = [os.path.basename(p) for p in paths]
+        info["notices"] = list(self.notices)
+        info["cautions"] = list(_CAUTIONS)
+        paths.append(write_json(info, folder, "profiles.json"))
+        return paths
+
+
+# ----------------------------------------------------------------------------------------------
+# Types and their members
+# ----------------------------------------------------------------------------------------------
+
+def _fine_width(blocks):
+    edges = np.asarray(blocks.get("bin_edges_deg", np.linspace(-180, 180, 361)))
+    return float(edges[1] - edges[0])
+
+
+def _type_members(result):
+    types = list(result.torsion_set.types)
+    order = list(dict.fromkeys(types))
+    codes = pd.Categorical(types, categories=order).codes
+    by_code = np.argsort(codes, kind="stable")
+    bounds = np.searchsorted(codes[by_code], np.arange(len(order) + 1))
+    return order, {t: by_code[bounds[k]:bounds[k + 1]] for k, t in enumerate(order)}
+
+
+def _pooled_counts(values, order, members, batch=1024):
+    """Sum of ``values`` (n_blocks, n_torsions, ...) over the members of each type: (n_blocks, n_types, ...)."""
+    out = np.zeros((values.shape[0], len(order)) + values.shape[2:])
+    for k, t in enumerate(order):
+        idx = members[t]
+        for lo in range(0, len(idx), batch):
+            out[:, k] += values[:, idx[lo:lo + batch]].sum(axis=1)
+    return out
+
+
+def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, bandwidth_deg=None,
+                  n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED, types=None, kernel=True):
+    """Pooled histogram (and kernel) profiles of each torsion type.
+
+    Returns
+    -------
+    dict : type -> (histogram Profile1D, kernel Profile1D or None)
+    """
+    kt = kt_kj_mol(temperature_k)
+    blocks = result.blocks
+    fine = _fine_width(blocks)
+    factor = check_bin_width(bin_width_deg, fine)
+    order, members = _type_members(result)
+    if types is not None:
+        order = [t for t in order if t in set(types)]
+    hist = blocks["histograms"]
+    mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
+    pooled = _pooled_counts(hist, order, members)
+    hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg)
+    kprof = [None] * len(order)
+    if kernel and order:
+        neff = effective_samples(result.populations, result.torsion_set.labels)
+        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), result.scheme,
+                          [neff[members[t]].sum() for t in order], fine)
+        kprof = _kernel_profiles(pooled, mult, kt, bws, fine)
+    return {t: (h, k) for t, h, k in zip(order, hprof, kprof)}
+
+
+# ----------------------------------------------------------------------------------------------
+# The tables, stack by stack
+# ----------------------------------------------------------------------------------------------
+
+class _Columns:
+    """Column arrays of a table collected piece by piece, joined once at the end."""
+
+    def __init__(self, columns):
+        self.columns = list(columns)
+        self.parts = {c: [] for c in self.columns}
+
+    def add(self, **values):
+        n = max(np.size(v) for v in values.values())
+        for c in self.columns:
+            self.parts[c].append(np.broadcast_to(np.asarray(values[c]), (n,)) if np.ndim(values[c]) == 0
+                                 else np.asarray(values[c]).ravel())
+
+    def frame(self, categories):
+        """DataFrame; the columns named in ``categories`` hold codes into those category lists."""
+        data = {}
+        for c in self.columns:
+            joined = np.concatenate(self.parts[c]) if self.parts[c] else np.zeros(0)
+            if c in categories:
+                data[c] = pd.Categorical.from_codes(joined.astype(np.int64), categories=categories[c])
+            else:
+                data[c] = joined
+        return pd.DataFrame(data, columns=self.columns)
+
+
+PROFILE_COLUMNS = ["type", "torsion", "estimate", "angle_deg", "probability_density_per_deg", "free_energy_kj_mol",
+                   "free_energy_err_kj_mol", "sampled", "n_samples", "bandwidth_deg"]
+MINIMA_COLUMNS = ["type", "torsion", "minimum", *MINIMUM_FIELDS]
+BARRIER_COLUMNS = ["type", "torsion", "barrier", *BARRIER_FIELDS]
+STATE_DG_COLUMNS = ["type", "torsion", "state", "reference_state", "population", "population_err",
+                    "free_energy_kj_mol", "free_energy_err_kj_mol"]
+
+
+def _stack_tables(type_code, torsion_code, hist, kernel, states, kt):
+    """Rows of the four tables for one stack of profiles (a pure function: stacks run in threads).
+
+    ``type_code``/``torsion_code`` (m,) index the type and torsion names (0 = pooled); ``hist`` is
+    the histogram Profile1D stack, ``kernel`` the output of :func:`_kernel_columns` and ``states``
+    that of :func:`_state_free_energy_stack`. Returns {table: {column: array}}.
+    """
+    bws, smooth, density, free, err, ok = kernel
+    m, nh = hist.samples.shape
+    nk = smooth.shape[1]
+    width = nh + nk
+
+    def join(h, k):
+        return np.concatenate([np.broadcast_to(h, (m, nh)), np.broadcast_to(k, (m, nk))], axis=1)
+
+    profiles = dict(type=np.repeat(type_code, width), torsion=np.repeat(torsion_code, width),
+                    estimate=np.tile(np.repeat([0, 1], [nh, nk]), m),
+                    angle_deg=np.tile(np.r_[hist.angle_deg, bin_centres(nk)], m),
+                    probability_density_per_deg=join(hist.density_per_deg, density),
+                    free_energy_kj_mol=join(hist.free_energy_kj_mol, free),
+                    free_energy_err_kj_mol=join(np.where(hist.sampled, hist.free_energy_err_kj_mol, np.nan), err),
+                    sampled=join(hist.sampled, ok), n_samples=join(hist.samples, smooth),
+                    bandwidth_deg=join(np.nan, np.asarray(bws, dtype=float)[:, None]))
+    minima, barriers = _features_stack(hist, kt)
+    has = np.flatnonzero(states["has"])
+    n_states = states["population"].shape[1]
+    return {"profiles": profiles,
+            "minima": dict(type=type_code[minima["row"]], torsion=torsion_code[minima["row"]],
+                           minimum=minima["number"], **{f: minima[f] for f in MINIMUM_FIELDS}),
+            "barriers": dict(type=type_code[barriers["row"]], torsion=torsion_code[barriers["row"]],
+                             barrier=barriers["number"], **{f: barriers[f] for f in BARRIER_FIELDS}),
+            "dg": dict(type=np.repeat(type_code[has], n_states), torsion=np.repeat(torsion_code[has], n_states),
+                       state=np.tile(np.arange(n_states), len(has)),
+                       reference_state=np.repeat(states["reference"][has], n_states),
+                       **{c: states[c][has] for c in ("population", "population_err", "free_energy_kj_mol",
+                                                         "free_energy_err_kj_mol")})}
+
+
+class _ProfileTables:
+    """The four tables of :func:`free_energy_profiles`, filled stack by stack."""
+
+    def __init__(self):
+        self.tables = {"profiles": _Columns(PROFILE_COLUMNS), "minima": _Columns(MINIMA_COLUMNS),
+                       "barriers": _Columns(BARRIER_COLUMNS), "dg": _Columns(STATE_DG_COLUMNS)}
+
+    def add(self, parts):
+        """Append the rows of one stack (from :func:`_stack_tables`)."""
+        for name, columns in parts.items():
+            self.tables[name].add(**columns)
+
+    def frames(self, types, labels, state_labels):
+        torsion = [""] + list(labels)
+        cats = {"type": list(types), "torsion": torsion}
+        t = self.tables
+        return (t["profiles"].frame({**cats, "estimate": ["histogram", "kernel"]}), t["minima"].frame(cats),
+                t["barriers"].frame(cats),
+                t["dg"].frame({**cats, "state": list(state_labels), "reference_state": list(state_labels)}))
+
+
+
+@dataclass
+class _Stacks:
+    """What every stack of torsions (or types) of one :func:`free_energy_profiles` call needs.
+
+    ``hist`` (n_blocks, n_torsions, n_fine) are the fine block histograms and ``mult`` their
+    bootstrap multiplicities; ``state_counts`` (n_blocks', n_torsions, n_states) the state counts in
+    blocks as long as the histogram blocks and ``smult`` theirs (:func:`state_blocks`); ``fine`` the
+    fine bin width and ``factor`` the fine bins per histogram bin; ``neff`` the effective samples of
+    each torsion (:func:`effective_samples`).
+    """
+
+    hist: np.ndarray
+    mult: np.ndarray
+    state_counts: np.ndarray
+    smult: np.ndarray
+    kt: float
+    fine: float
+    factor: int
+    bin_width_deg: float
+    bandwidth_deg: float | None
+    scheme: object
+    neff: np.ndarray
+
+    @classmethod
+    def of(cls, result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed):
+        blocks = result.blocks
+        fine = _fine_width(blocks)
+        factor = check_bin_width(bin_width_deg, fine)
+        mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
+        sc, _, smult = state_blocks(result, n_bootstrap, seed)
+        return cls(hist=blocks["histograms"], mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
+                   factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg, scheme=result.scheme,
+                   neff=effective_samples(result.populations, result.torsion_set.labels))
+
+
+def _type_stack(s, order, members):
+    """Bandwidths, table rows and {type: (histogram, kernel) Profile1D} of the types (pooled)."""
+    pooled = _pooled_counts(s.hist, order, members)
+    bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), s.scheme, [s.neff[members[t]].sum() for t in order],
+                      s.fine)
+    hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg)
+    kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine)
+    rows = _stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack,
+                         (bws, kstack.samples, kstack.density_per_deg, kstack.free_energy_kj_mol,
+                          np.where(kstack.sampled, kstack.free_energy_err_kj_mol, np.nan), kstack.sampled),
+                         _state_free_energy_stack(_pooled_counts(s.state_counts, order, members), s.kt, s.smult),
+                         s.kt)
+    return bws, rows, dict(zip(order, zip(_unstack(hstack), _unstack(kstack))))
+
+
+def _torsion_stack(span, s, codes):
+    """Bandwidths and table rows of the torsions ``span`` = (start, stop) (runs in a thread)."""
+    start, stop = span
+    sub = np.asarray(s.hist[:, start:stop, :], dtype=float)
+    bws = _bandwidths(s.bandwidth_deg, sub.sum(axis=0), s.scheme, s.neff[start:stop], s.fine)
+    hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg)
+    rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
+                         _kernel_columns(sub, s.mult, s.kt, bws, s.fine),
+                         _state_free_energy_stack(s.state_counts[:, start:stop, :], s.kt, s.smult), s.kt)
+    return bws, rows
+
+
+def _ordered_map(func, items, threads):
+    """``map(func, items)`` over a few threads, in order, with at most 2 x threads items in flight.
+
+    NumPy releases the interpreter lock in its array loops, so stacks of torsions run in parallel.
+    """
+    from collections import deque
+    from concurrent.futures import ThreadPoolExecutor
+
+    from threadpoolctl import threadpool_limits  # a dependency of MDAnalysis
+
+    if threads <= 1:
+        yield from map(func, items)
+        return
+    # one BLAS thread per stack: the stacks themselves use the cores
+    with threadpool_limits(1, user_api="blas"), ThreadPoolExecutor(threads) as pool:
+        pending = deque()
+        for item in items:
+            pending.append(pool.submit(func, item))
+            if len(pending) >= 2 * threads:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
+
+
+# ----------------------------------------------------------------------------------------------
+# The analysis
+# ----------------------------------------------------------------------------------------------
+
+def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, bandwidth_deg=None,
+                         n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED, per_torsion=True, pairs=None,
+                         pair_bin_width_deg=DEFAULT_PAIR_BIN_WIDTH_DEG, log=None):
+    """Free-energy profiles, minima, barriers and state free energies of a tracking result.
+
+    Torsions are handled in stacks of :data:`_BATCH`: every step (bootstrap resampling of blocks,
+    free energies, kernel smoothing, minima and barriers, state free energies) is one array
+    operation over the torsions of a stack, and the tables are built column by column.
+
+    Parameters
+    ----------
+    result : TrackResult
+        From :func:`dihedra.tracking.track` or :func:`dihedra.io.resultsdir.load_results`, or an
+        analysis that holds one (:func:`dihedra.trajectory.result.as_result`).
+    temperature_k : float, optional
+        Required unless the run recorded one (then it is used and announced through ``log``).
+    bin_width_deg : float
+        Histogram bin width; a multiple of the fine bin (1 degree) that divides 360.
+    bandwidth_deg : float, optional
+        Kernel standard deviation; default by the rule of :mod:`dihedra.analysis.profiles.estimation`.
+    n_bootstrap, seed : int
+        Block-bootstrap resamples and their random seed.
+    per_torsion : bool
+        Also profile every torsion (not only the pooled types).
+    pairs : list of (str, str), optional
+        Torsion pairs (labels or types) for 2-D profiles (needs the angle time series).
+    pair_bin_width_deg : float
+        Bin width of the 2-D profiles.
+    log : callable, optional
+        Receives progress and notices.
+
+    Returns
+    -------
+    ProfileSet
+        Nothing is written; :meth:`ProfileSet.save` writes the files.
+    """
+    result = as_result(result)
+    say = log or (lambda msg: None)
+    temperature_k = resolve_temperature(temperature_k, result.summary, say)
+    kt = kt_kj_mol(temperature_k)
+    n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
+    s = _Stacks.of(result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed)
+    order, members = _type_members(result)
+    labels = result.torsion_set.labels
+    tables = _ProfileTables()
+    bws, rows, by_type = _type_stack(s, order, members)
+    tables.add(rows)
+    bandwidths = [bws]
+    # per torsion, in stacks (bounded memory), a few stacks at a time in threads
+    if per_torsion:
+        type_index = {t: k for k, t in enumerate(order)}
+        codes = np.array([type_index[t] for t in result.torsion_set.types], dtype=np.int64)
+        spans = [(lo, min(len(labels), lo + _BATCH)) for lo in range(0, len(labels), _BATCH)]
+        for bws, rows in _ordered_map(functools.partial(_torsion_stack, s=s, codes=codes), spans, _THREADS):
+            tables.add(rows)
+            bandwidths.append(bws)
+    profiles, minima, barriers, state_dg = tables.frames(order, labels, s.scheme.labels)
+    names = [("", t) for t in order] + (list(zip(labels, result.torsion_set.types)) if per_torsion else [])
+    settings = _settings(s, temperature_k, n_bootstrap, seed, names, np.concatenate(bandwidths))
+    pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,
+                      state_free_energies=state_dg, by_type=by_type, settings=settings,
+                      notices=_profile_notices(by_type, barriers))
+    if pairs:
+        frames = []
+        for a, b in pairs:
+            say(f"2-D profile of {a} and {b} (reading angles.parquet in chunks)")
+            frames.append(pair_profiles(result, a, b, temperature_k=temperature_k, bin_width_deg=pair_bin_width_deg,
+                                        n_bootstrap=n_bootstrap, seed=seed, notices=pset.notices))
+        pset.profiles_2d = pd.concat(frames, ignore_index=True)
+        settings["pair_bin_width_deg"] = float(pair_bin_width_deg)
+    return pset
+
+
+def _settings(s, temperature_k, n_bootstrap, seed, names, bandwidths):
+    """The settings of a :class:`ProfileSet`; ``names`` (torsion, type) of each bandwidth."""
+    return {
+        "temperature_k": temperature_k, "kt_kj_mol": s.kt, "bin_width_deg": float(s.bin_width_deg),
+        "fine_bin_width_deg": s.fine, "n_bootstrap": n_bootstrap, "seed": seed,
+        "bootstrap": "blocks resampled with replacement within each replica",
+        "n_histogram_blocks": int(s.hist.shape[0]),
+        "bandwidth_rule": ("given" if s.bandwidth_deg is not None else
+                           "0.9 * within-arc standard deviation * n_effective^(-1/5), at least the fine bin"),
+        "bandwidths_deg": [{"type": typ, "torsion": tor, "bandwidth_deg": float(bw)}
+                           for (tor, typ), bw in zip(names, bandwidths)],
+        "minimum_depth_rule": f"max({MIN_DEPTH_KT} kT, {MIN_DEPTH_SIGMA} combined standard errors)",
+        "state_free_energy_reference": "most populated state",
+        "scheme": s.scheme.name,
+    }
+
+
+def _profile_notices(by_type, barriers):
+    """Notices on unvisited bins and unsampled barriers of the pooled profiles."""
+    notices = []
+    unvisited = {t: int((~h.sampled).sum()) for t, (h, _) in by_type.items()}
+    n_bins = sum(unvisited.values())
+    if n_bins:
+        n_types = sum(1 for v in unvisited.values() if v)
+        notices.append(f"{n_bins} histogram bins of {n_types} type(s) were never visited: they are "
+                       "marked sampled = False with no free energy (the data give only a lower bound there).")
+    pooled_barriers = barriers[barriers["torsion"] == ""]
+    n_unsampled = int((~pooled_barriers["sampled"].astype(bool)).sum())
+    if n_unsampled:
+        notices.append(f"{n_unsampled} barrier(s) of the pooled profiles cross unsampled "
+                       "regions; their height is unknown (higher than any sampled value).")
+    return notices
+
