@@ -56,7 +56,7 @@ def test_values_inputs_and_pipeline_owned_keys_are_checked_before_anything_runs(
     cases = {'[profile]\nper_torsion = "yes"': "is a switch: give true or false",
              "[profile]\nbin_width_deg = [5, 10]": "takes a number",
              '[profile]\nbin_width_deg = "five"': "takes a number",
-             "[profile]\nbin_width_deg = 7": "bin width",
+             "[profile]\nbin_width_deg = 7": "[profile]: the bin_width_deg must be a multiple",
              '[profile]\nresult = "elsewhere"': "set by the pipeline from the top-level 'out'",
              '[compare]\nscan = "missing.toml"': "scan 'missing.toml' does not exist",
              '[compare]\ntypes = ["all"]': "give scan",

@@ -249,7 +249,7 @@ def test_run_without_overwrite_leaves_an_existing_folder_untouched(tmp_path, dat
     before = snapshot(out)
     analysis = data / "a.toml"
     analysis.write_text(f'out = "{out}"\n[track]\ntopology = "hexane.pdb"\ntrajectories = ["hexane.xtc"]\n'
-                        'torsions = ["rotatable"]\nstop = 5\n[profile]\ntemperature = 300\n')
+                        'torsions = ["rotatable"]\nstop = 5\n[profile]\ntemperature_k = 300\n')
     refused(["run", str(analysis)], capsys, "already exists")
     assert snapshot(out) == before
 

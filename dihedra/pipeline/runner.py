@@ -141,7 +141,10 @@ def _check_values(arguments, where):
 
     for key in ("bin_width_deg", "pair_bin_width_deg"):
         if key in arguments:
-            check_bin_width(arguments[key], 1.0, f"{where}: {key}")
+            try:
+                check_bin_width(arguments[key], 1.0, key)
+            except DihedraError as exc:
+                raise DihedraError(f"{where}: {exc}") from None
 
 
 def table_arguments(name, table, base_dir, where):
@@ -149,7 +152,7 @@ def table_arguments(name, table, base_dir, where):
     input files are errors naming the key and the table."""
     spec = STEPS[name]
     arguments = {}
-    for raw_key, value in table.items():
+    for raw_key in table:   # every key first: a misspelt key is named before any other problem
         key = str(raw_key).replace("-", "_")
         if key not in spec.keys:
             owned = "out" if spec.creates_folder else None
@@ -158,6 +161,8 @@ def table_arguments(name, table, base_dir, where):
                                    "remove it from the table.")
             raise DihedraError(f"{where}: unknown key {raw_key!r}{_suggest(key, spec.keys)}; valid keys are "
                                f"{', '.join(sorted(spec.keys))}.")
+    for raw_key, value in table.items():
+        key = str(raw_key).replace("-", "_")
         _check_type(key, value, spec.defaults.get(key), where)
         arguments[key] = _resolve(key, value, spec, base_dir, where)
     missing = [k for k in spec.required if k not in arguments]
