@@ -181,106 +181,127 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
     --------
     dihedra.TorsionStates : the same analysis on an atom group, in memory.
     """
-    t_start = time.time()
-    say = log or (lambda msg: None)
+    run = _Run(out, overwrite, log)
     group, topology, trajectories = _inputs(topology, trajectories)
-    staging = (StagedFolder.begin(out, overwrite=overwrite, command="track",
-                                  inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
-               if out is not None else None)
-    scratch = None
-    own_client = None
-    writers = []
-    passes = []
     try:
-        if staging is None:
-            scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
-            work = scratch.name
-        else:
-            work = staging.path
-        parts_dir = os.path.join(work, "_parts")
-        os.makedirs(parts_dir)
-        notices = []
+        run.begin(topology, trajectories, torsions, scheme, weights)
         scheme = get_scheme(scheme)
-        universes = _universes(group, topology, trajectories, notices)
+        universes = _universes(group, topology, trajectories, run.notices)
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions)
-        notices.extend(tset.notices)
+        run.notices.extend(tset.notices)
         frames = [_frame_indices(u, start, stop, step, f"trajectory {t}")
                   for u, t in zip(universes, trajectories)]
         weight_arrays, weight_column = (_weights_per_replica(weights, frames) if weights is not None
                                         else ([None] * len(universes), None))
         n_workers = max(1, int(workers or 1))
-        if scheduler is not None:
-            from .trajectory.distributed import DistributedBackend, connect
-            client, owned = connect(scheduler)
-            own_client = client if owned else None
-            backend = DistributedBackend(client)
-            say(f"dask scheduler {client.scheduler.address}: {backend.n_workers} worker threads")
-        if backend is None:
-            backend = "multiprocessing" if n_workers > 1 else "serial"
+        backend = run.backend(backend, scheduler, n_workers)
         if progress is None:
             progress = backend == "serial" and sys.stderr.isatty()
         replicas = []
         for r, (u, traj, fr, w) in enumerate(zip(universes, trajectories, frames, weight_arrays)):
-            say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
-            # a serial pass writes its last row group while the next pass starts or the
-            # populations are computed (one at a time: one chunk buffer more at most)
-            if passes:
-                passes[-1].finish_series()
+            run.say(f"replica {r + 1}/{len(universes)}: {traj}: {len(fr)} frames, {len(tset)} torsions")
             tp = TorsionStates(group if group is not None else u.atoms, tset, scheme, weights=w,
                                keep_angles=keep_angles, dt_ps=dt_ps, temperature_k=temperature_k,
                                bin_width_deg=bin_width_deg, n_state_blocks=n_state_blocks,
                                n_hist_blocks=n_hist_blocks)
-            tp.plumb(parts_dir=parts_dir, series=ParquetSeriesFactory(work), chunk_frames=chunk_frames, replica=r,
-                     defer_close=backend == "serial", threads=threads)
+            tp.plumb(parts_dir=run.parts_dir, series=ParquetSeriesFactory(run.work), chunk_frames=chunk_frames,
+                     replica=r, defer_close=backend == "serial", threads=threads)
+            run.add_pass(tp)
             _run_pass(tp, traj, start, stop, step, backend, n_workers, progress, r, len(universes))
-            passes.append(tp)
             replicas.append(replica_info(u, traj, fr, tp, dt_ps))
-        # the time series are written (each pass, serial or every worker, wrote the files of its
-        # frames); blocks.npz is written by another thread (zlib releases Python's lock) while
-        # this one computes the populations and writes the tables
-        shutil.rmtree(parts_dir, ignore_errors=True)
-        blocks = block_sums(passes)
+        params = dict(start=start, stop=stop, step=step, workers=n_workers, threads=int(run.passes[0].threads),
+                      backend=backend if isinstance(backend, str) else type(backend).__name__,
+                      scheduler=None if scheduler is None else str(backend.client.scheduler.address),
+                      keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),
+                      weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
+                      n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg, temperature_k=temperature_k)
+        return run.finish(tset, scheme, universes[0], topology, replicas, params)
+    finally:
+        run.close()
 
-        def write_blocks():
-            save_npz(os.path.join(work, "blocks.npz"), blocks, narrow=[k for k in blocks if narrowed_type(k)])
-        writers = [_Background(write_blocks)]
-        result = assemble_result(tset, scheme, universes[0], notices, blocks)
-        result.summary.update(make_summary(topology, replicas, scheme, tset, dict(
-            start=start, stop=stop, step=step, workers=n_workers, threads=int(passes[0].threads),
-            backend=backend if isinstance(backend, str) else type(backend).__name__,
-            scheduler=None if scheduler is None else str(backend.client.scheduler.address),
-            keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),
-            weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
-            n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg,
-            temperature_k=temperature_k), notices, time.time() - t_start))
+
+class _Run:
+    """The working state of one :func:`track` call: the staging (or scratch) folder, the passes,
+    the background writer of blocks.npz and a dask client it opened; :meth:`close` leaves nothing
+    behind after an error."""
+
+    def __init__(self, out, overwrite, log):
+        self.out, self.overwrite = out, overwrite
+        self.say = log or (lambda msg: None)
+        self.started = time.time()
+        self.staging = self.scratch = self.client = None
+        self.passes, self.writers, self.notices = [], [], []
+
+    def begin(self, topology, trajectories, torsions, scheme, weights):
+        """Check the output folder and make the place where the run writes."""
+        if self.out is not None:
+            self.staging = StagedFolder.begin(self.out, overwrite=self.overwrite, command="track",
+                                              inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
+            self.work = self.staging.path
+        else:
+            self.scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
+            self.work = self.scratch.name
+        self.parts_dir = os.path.join(self.work, "_parts")
+        os.makedirs(self.parts_dir)
+
+    def backend(self, backend, scheduler, n_workers):
+        """The backend of the passes (a dask.distributed one with ``scheduler``)."""
+        if scheduler is not None:
+            from .trajectory.distributed import DistributedBackend, connect
+            client, owned = connect(scheduler)
+            self.client = client if owned else None
+            backend = DistributedBackend(client)
+            self.say(f"dask scheduler {client.scheduler.address}: {backend.n_workers} worker threads")
+        if backend is None:
+            backend = "multiprocessing" if n_workers > 1 else "serial"
+        return backend
+
+    def add_pass(self, tp):
+        # a serial pass writes its last row group while the next pass starts or the populations
+        # are computed (one at a time: one chunk buffer more at most)
+        if self.passes:
+            self.passes[-1].finish_series()
+        self.passes.append(tp)
+
+    def finish(self, tset, scheme, universe, topology, replicas, params):
+        """The result and its folder: blocks.npz written by another thread (zlib releases Python's
+        lock) while this one computes the populations and writes the tables."""
+        shutil.rmtree(self.parts_dir, ignore_errors=True)
+        blocks = block_sums(self.passes)
+        work = self.work
+        self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
+                                                     narrow=[k for k in blocks if narrowed_type(k)]))]
+        result = assemble_result(tset, scheme, universe, self.notices, blocks)
+        result.summary.update(make_summary(topology, replicas, scheme, tset, params, self.notices,
+                                           time.time() - self.started))
         write_results(result, work, blocks=False)
-        for w in writers:
+        for w in self.writers:
             w.join()
-        writers = []
-        passes[-1].finish_series()
-        if staging is not None:
-            result.folder = staging.commit()
-            staging = None
+        self.writers = []
+        self.passes[-1].finish_series()
+        if self.staging is not None:
+            result.folder = self.staging.commit()
+            self.staging = None
             result.series = ParquetSeries(result.folder)
         else:
-            result._scratch = scratch
-            result.series = ParquetSeries(scratch.name)
-            scratch = None
+            result._scratch, self.scratch = self.scratch, None
+            result.series = ParquetSeries(result._scratch.name)
         return result
-    finally:
-        for w in writers:   # an error: let the writing thread end before the folder goes
+
+    def close(self):
+        for w in self.writers:   # an error: let the writing thread end before the folder goes
             w.thread.join()
-        for tp in passes:
+        for tp in self.passes:
             try:
                 tp.finish_series()
             except Exception:  # noqa: BLE001 - the original error matters
                 pass
-        if own_client is not None:
-            own_client.close()
-        if staging is not None:
-            staging.discard()
-        if scratch is not None:
-            scratch.cleanup()
+        if self.client is not None:
+            self.client.close()
+        if self.staging is not None:
+            self.staging.discard()
+        if self.scratch is not None:
+            self.scratch.cleanup()
 
 
 def _inputs(topology, trajectories):

@@ -1,11 +1,11 @@
 """``dihedra demo``: the whole pipeline on the bundled liquid n-hexane example, driven by demo.toml."""
 
-import json
 import os
 
 from .. import example_path
-from ..errors import OutputExistsError
+from ..errors import DihedraError, OutputExistsError
 from ..io.outputs import read_marker
+from ..io.tables import read_optional_json
 from ..pipeline import RECORD_NAME, load_pipeline, run_pipeline
 from .common import say
 
@@ -50,9 +50,7 @@ def is_previous_demo(out):
     if marker is None or RECORD_NAME not in marker["files"]:
         return False
     try:
-        with open(os.path.join(out, RECORD_NAME)) as fh:
-            record = json.load(fh)
-        source = str(record.get("analysis_file", ""))
-    except (OSError, ValueError, AttributeError):
+        source = str((read_optional_json(out, RECORD_NAME) or {}).get("analysis_file", ""))
+    except (DihedraError, AttributeError):
         return False
     return bool(source) and os.path.realpath(source) == os.path.realpath(example_path(DEMO_FILE))

@@ -208,3 +208,15 @@ def read_optional_json(folder, name):
     if not os.path.exists(os.path.join(os.fspath(folder), name)):
         return None
     return read_json(folder, name)
+
+
+def read_optional_text(folder, name):
+    """A text file of a results folder (``analysis.toml``), or ``None`` when the folder has none."""
+    path = os.path.join(os.fspath(folder), name)
+    if not os.path.exists(path):
+        return None
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return fh.read()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputFileError(f"{path} cannot be read ({exc}).") from None

@@ -132,57 +132,63 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
         n_effective; ``by_type``: group_type, conformer, torsions (types), population,
         population_err, n_groups.
     """
-    rows = np.asarray(rows, dtype=np.int64).reshape(-1, 4)
-    weights = np.asarray(weights, dtype=float)
     group_types = [" | ".join(types[p] for p in m) for m in members]
     type_names = _short_type_names(group_types, resnames, members)
-    # one column per observed (group, joint code), in group order and code order; groups are
-    # taken in slices of about _WORK_VALUES block x column cells, so memory stays bounded
-    order = np.lexsort((rows[:, 2], rows[:, 1]))
-    group_sorted = rows[order, 1]
-    starts = np.searchsorted(group_sorted, np.arange(len(groups) + 1))
-    del group_sorted
-    pair_group, pair_code, mean, se, n_eff = [], [], [], [], []
-    g0 = 0
-    while g0 < len(groups):
-        # groups g0..g1-1: their rows are order[starts[g0]:starts[g1]]
-        g1 = int(np.searchsorted(starts, starts[g0] + max(1, _WORK_VALUES // max(1, n_blocks)),
-                                 side="right")) - 1
-        g1 = min(len(groups), max(g1, g0 + 1))
-        sel = order[starts[g0]:starts[g1]]
-        if len(sel):
-            out_slice = _conformer_blocking(rows[sel], weights[sel], g0, g1, n_blocks, block_replica)
-            for acc, values in zip((pair_group, pair_code, mean, se, n_eff), out_slice):
-                acc.append(values)
-        g0 = g1
-    del order
-    for gids, counts, wts in (dense or {}).values():
-        for out_slice in _dense_blocking(gids, counts, wts, block_replica):
-            for acc, values in zip((pair_group, pair_code, mean, se, n_eff), out_slice):
-                acc.append(values)
-    if pair_group:
-        pair_group, pair_code, mean, se, n_eff = (np.concatenate(x) for x in (pair_group, pair_code, mean, se, n_eff))
-        if dense:   # the columns in group and code order, as from rows alone
-            order = np.lexsort((pair_code, pair_group))
-            pair_group, pair_code, mean, se, n_eff = (x[order] for x in (pair_group, pair_code, mean, se, n_eff))
-    else:
-        pair_group, pair_code = np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64)
-        mean, se, n_eff = np.empty(0), np.empty(0), np.empty(0)
+    pair_group, pair_code, mean, se, n_eff = _conformer_columns(rows, weights, len(groups), n_blocks,
+                                                                block_replica, dense)
     width = np.array([len(m) for m in members], dtype=np.int64)
     names = np.array(groups, dtype=object)
     joined = np.array(["|".join(labels[p] for p in m) for m in members], dtype=object)
-    out = pd.DataFrame({
+    by_group = pd.DataFrame({
         "group": names[pair_group],
         "group_type": np.array(type_names, dtype=object)[pair_group],
         "conformer": _conformer_labels(pair_code, width[pair_group], state_labels),
         "torsions": joined[pair_group],
         "population": mean, "population_err": se, "n_effective": n_eff,
     })
-    by_group = out
     if by_group.empty:
         return by_group, pd.DataFrame(columns=["group_type", "conformer", "population",
                                                "population_err", "n_groups"])
-    # pooled: every group of a type contributes to every conformer seen in that type (0 if unseen)
+    pooled = _pooled_conformers(by_group)
+    by_group = by_group.sort_values(["group", "population"], ascending=[True, False],
+                                    kind="stable").reset_index(drop=True)
+    return by_group, pooled
+
+
+def _conformer_columns(rows, weights, n_groups, n_blocks, block_replica, dense):
+    """Population, error and effective samples of every observed (group, joint code), in group and
+    code order: the sparse rows taken in slices of about _WORK_VALUES block x column cells (memory
+    stays bounded), the densely counted classes in their own pieces."""
+    rows = np.asarray(rows, dtype=np.int64).reshape(-1, 4)
+    weights = np.asarray(weights, dtype=float)
+    order = np.lexsort((rows[:, 2], rows[:, 1]))
+    starts = np.searchsorted(rows[order, 1], np.arange(n_groups + 1))
+    parts = []
+    g0 = 0
+    while g0 < n_groups:
+        # groups g0..g1-1: their rows are order[starts[g0]:starts[g1]]
+        g1 = int(np.searchsorted(starts, starts[g0] + max(1, _WORK_VALUES // max(1, n_blocks)),
+                                 side="right")) - 1
+        g1 = min(n_groups, max(g1, g0 + 1))
+        sel = order[starts[g0]:starts[g1]]
+        if len(sel):
+            parts.append(_conformer_blocking(rows[sel], weights[sel], g0, g1, n_blocks, block_replica))
+        g0 = g1
+    del order
+    for gids, counts, wts in (dense or {}).values():
+        parts.extend(_dense_blocking(gids, counts, wts, block_replica))
+    if not parts:
+        return (np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64), np.empty(0), np.empty(0), np.empty(0))
+    columns = [np.concatenate(x) for x in zip(*parts)]
+    if dense:   # the columns in group and code order, as from rows alone
+        order = np.lexsort((columns[1], columns[0]))
+        columns = [x[order] for x in columns]
+    return tuple(columns)
+
+
+def _pooled_conformers(by_group):
+    """Conformer populations pooled per group type: every group of a type contributes to every
+    conformer seen in that type (0 if unseen)."""
     full = []
     for gtype, sub in by_group.groupby("group_type", sort=False):
         grid = pd.MultiIndex.from_product([sub["group"].unique(), sub["conformer"].unique()],
@@ -194,11 +200,8 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     pooled = pool_by_type(pd.concat(full, ignore_index=True).rename(columns={"conformer": "state"}),
                           key="group_type", item="group", count_name="n_groups")
     pooled = pooled.rename(columns={"state": "conformer"})
-    pooled = pooled.sort_values(["group_type", "population"], ascending=[True, False],
-                                kind="stable").reset_index(drop=True)
-    by_group = by_group.sort_values(["group", "population"], ascending=[True, False],
-                                    kind="stable").reset_index(drop=True)
-    return by_group, pooled
+    return pooled.sort_values(["group_type", "population"], ascending=[True, False],
+                              kind="stable").reset_index(drop=True)
 
 
 def _conformer_blocking(rows, weights, g0, g1, n_blocks, block_replica):

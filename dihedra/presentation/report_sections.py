@@ -4,11 +4,9 @@ not run says which command makes it."""
 
 from __future__ import annotations
 
-import os
-
 import pandas as pd
 
-from ..io.tables import read_optional_json, read_optional_table as read_optional
+from ..io.tables import read_optional_json, read_optional_table as read_optional, read_optional_text
 from .figures import state_colours
 from .report_html import _callout, _e, _figures_html, _fmt, _kv, _missing, _pm, _pm_columns, _pooled, _table, _verdict
 
@@ -37,12 +35,10 @@ def _provenance(folder, summary):
     if versions:
         parts.append("<h3>Package versions</h3>")
         parts.append(_kv(sorted(versions.items())))
-    for name in ("analysis.toml",):
-        path = os.path.join(folder, name)
-        if os.path.exists(path):
-            with open(path) as fh:
-                parts.append(f"<h3>Analysis file ({_e(name)}, run by <code>dihedra run</code>)</h3>"
-                             f"<pre>{_e(fh.read())}</pre>")
+    text = read_optional_text(folder, "analysis.toml")
+    if text is not None:
+        parts.append("<h3>Analysis file (analysis.toml, run by <code>dihedra run</code>)</h3>"
+                     f"<pre>{_e(text)}</pre>")
     parts.append("</section>")
     return "".join(parts)
 
