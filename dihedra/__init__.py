@@ -22,6 +22,7 @@ DataFrames with a ``save(folder)`` method.
 
 from ._version import __version__
 from .analysis.compare import compare_with_scan
+from .analysis.convergence import convergence
 from .analysis.couplings import ensemble_couplings
 from .analysis.kinetics import state_kinetics
 from .analysis.profiles import free_energy_profiles
@@ -50,5 +51,5 @@ def example_path(name=""):
 
 
 __all__ = ["DihedraError", "StateScheme", "Torsion", "TorsionSet", "TorsionStates", "TrackResult", "__version__",
-           "compare_with_scan", "ensemble_couplings", "example_path", "free_energy_profiles", "get_scheme",
+           "compare_with_scan", "convergence", "ensemble_couplings", "example_path", "free_energy_profiles", "get_scheme",
            "load_results", "select_torsions", "state_kinetics", "track", "unbias_windows"]

@@ -31,10 +31,13 @@ from .io.blocks import narrowed_type, save_npz
 from .io.outputs import StagedFolder
 from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
+from .io.tables import write_json, write_table
 from .selection.schemes import get_scheme
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
 from .trajectory.assemble import assemble_result, block_sums, make_summary, replica_info
+from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
+from .trajectory.discard import plan_discard
 from .trajectory.inputs import check_readable, load_universe, truncated_error
 from .trajectory.states import TorsionStates
 
@@ -124,7 +127,8 @@ def _frame_indices(universe, start, stop, step, where):
 def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche", *, start=None,
           stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
-          bin_width_deg=1.0, chunk_frames=None, threads=None, progress=None, log=None):
+          bin_width_deg=1.0, chunk_frames=None, threads=None, progress=None, log=None, discard=None,
+          target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL):
     """Follow torsions through one or more replica trajectories, and write a results folder.
 
     Parameters
@@ -172,6 +176,14 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
         Show a progress bar (default: when standard error is a terminal and the run is serial).
     log : callable, optional
         Receives progress lines (default: nothing).
+    discard : str or int, optional
+        Drop the start of every replica: ``"auto"`` (detected by a quick first pass, see
+        :mod:`dihedra.trajectory.discard`), a number of frames (``500``) or a time (``"250 ps"``),
+        counted from the first analysed frame. Recorded in the summary (``parameters.discard``).
+    target_error, target_error_kj_mol : float
+        Target standard errors of a population (fraction, default 0.01) and of a free-energy
+        difference between states (kJ/mol, default 0.5) for the forecast of ``convergence.csv``
+        (see :func:`dihedra.convergence`).
 
     Returns
     -------
@@ -182,6 +194,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
     dihedra.TorsionStates : the same analysis on an atom group, in memory.
     """
     run = _Run(out, overwrite, log)
+    check_targets(target_error, target_error_kj_mol)
     group, topology, trajectories = _inputs(topology, trajectories)
     try:
         run.begin(topology, trajectories, torsions, scheme, weights)
@@ -193,6 +206,11 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
                   for u, t in zip(universes, trajectories)]
         weight_arrays, weight_column = (_weights_per_replica(weights, frames) if weights is not None
                                         else ([None] * len(universes), None))
+        # --discard: the start dropped where the frames are chosen, so every table starts there
+        drop, discard_record = plan_discard(discard, [(u, f, w, dt_ps) for u, f, w in
+                                                      zip(universes, frames, weight_arrays)], tset, scheme)
+        frames = [f[k:] for f, k in zip(frames, drop)]
+        weight_arrays = [None if w is None else w[k:] for w, k in zip(weight_arrays, drop)]
         n_workers = max(1, int(workers or 1))
         backend = run.backend(backend, scheduler, n_workers)
         if progress is None:
@@ -207,14 +225,16 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
             tp.plumb(parts_dir=run.parts_dir, series=ParquetSeriesFactory(run.work), chunk_frames=chunk_frames,
                      replica=r, defer_close=backend == "serial", threads=threads)
             run.add_pass(tp)
-            _run_pass(tp, traj, start, stop, step, backend, n_workers, progress, r, len(universes))
+            _run_pass(tp, traj, int(fr[0]) if drop[r] else start, stop, step, backend, n_workers, progress, r,
+                      len(universes))
             replicas.append(replica_info(u, traj, fr, tp, dt_ps))
         params = dict(start=start, stop=stop, step=step, workers=n_workers, threads=int(run.passes[0].threads),
                       backend=backend if isinstance(backend, str) else type(backend).__name__,
                       scheduler=None if scheduler is None else str(backend.client.scheduler.address),
                       keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),
                       weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
-                      n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg, temperature_k=temperature_k)
+                      n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg, temperature_k=temperature_k,
+                      discard=discard_record, target_error=target_error, target_error_kj_mol=target_error_kj_mol)
         return run.finish(tset, scheme, universes[0], topology, replicas, params)
     finally:
         run.close()
@@ -279,6 +299,7 @@ class _Run:
             w.join()
         self.writers = []
         self.passes[-1].finish_series()
+        write_convergence(result, work, params)
         if self.staging is not None:
             result.folder = self.staging.commit()
             self.staging = None
@@ -302,6 +323,23 @@ class _Run:
             self.staging.discard()
         if self.scratch is not None:
             self.scratch.cleanup()
+
+
+def write_convergence(result, folder, params):
+    """convergence.csv (and its by-state, over-time and JSON companions) from the series just
+    written into ``folder``; its notices join the run's (and summary.json)."""
+    started = time.time()
+    result.series = ParquetSeries(folder)
+    conv = convergence_tables(result, target_error=params["target_error"],
+                              target_error_kj_mol=params["target_error_kj_mol"])
+    for name, table in conv.tables().items():
+        write_table(table, folder, name)
+    write_json(conv.record(), folder, "convergence.json")
+    result.notices.extend(n for n in conv.run_notices(params.get("discard")) if n not in result.notices)
+    result.summary["notices"] = list(result.notices)
+    result.summary["convergence"] = dict(conv.summary(), seconds=round(time.time() - started, 3))
+    write_json(result.summary, folder, "summary.json")
+    return conv
 
 
 def _inputs(topology, trajectories):

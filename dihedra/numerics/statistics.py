@@ -50,11 +50,11 @@ def statistical_inefficiency(x, mintime=3):
     f = np.fft.rfft(dx, size)
     acov = np.fft.irfft(f * np.conj(f), size)[:n] / (n - np.arange(n))
     c = acov / var
-    g = 1.0
-    for t in range(1, n):
-        if c[t] <= 0 and t > mintime:
-            break
-        g += 2.0 * c[t] * (1.0 - t / n)
+    # the sum runs up to (not including) the first lag t > mintime with C_t <= 0
+    t = np.arange(1, n)
+    stop = np.flatnonzero((c[1:] <= 0) & (t > mintime))
+    end = int(stop[0]) if len(stop) else n - 1
+    g = 1.0 + 2.0 * float(np.sum(c[1:end + 1] * (1.0 - t[:end] / n)))
     return max(1.0, g)
 
 

@@ -92,6 +92,16 @@ class MemorySeries:
     def __init__(self, chunks):
         self._chunks = {kind: list(parts) for kind, parts in chunks.items()}
 
+    @classmethod
+    def from_parts(cls, parts):
+        """The series kept by the in-memory writers of a pass (one ``{kind: chunks}`` per worker),
+        per kind in replica and frame order."""
+        out = {}
+        for part in parts:
+            for kind, chunks in part.items():
+                out.setdefault(kind, []).extend(chunks)
+        return cls({kind: sorted(chunks, key=lambda c: (c.replica, c.first)) for kind, chunks in out.items()})
+
     def has(self, kind):
         return kind in self._chunks
 

@@ -30,6 +30,8 @@ from ..selection.schemes import get_scheme
 from ..selection.specs import select_torsions
 from ..selection.torsions import TorsionSet
 from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info
+from .convergence import convergence_tables
+from .discard import parse_discard, plan_discard
 from .result import MemorySeries
 from .series_output import MemorySeriesFactory
 from .trackpass import TorsionPass
@@ -72,6 +74,10 @@ class TorsionStates(TorsionPass):
     n_state_blocks, n_hist_blocks : int
         Blocks for the population errors (blocking analysis) and for the bootstrap errors of
         profiles.
+    discard : str or int, optional
+        Drop the start of the analysed frames: ``"auto"`` (the start detected by a quick first pass,
+        see :mod:`dihedra.trajectory.discard`), a number of frames (``500``) or a time
+        (``"250 ps"``); ``weights`` are still given for every analysed frame.
     verbose : bool
         Show a progress bar.
 
@@ -88,6 +94,9 @@ class TorsionStates(TorsionPass):
         Joint states of the torsions of each group (molecule or residue).
     results.states, results.angles : DataFrame
         The time series (``replica``, ``frame``, ``time_ps``, one column per torsion), when kept.
+    results.convergence : DataFrame
+        With the states kept: per type, the start, errors, forecast and verdict of
+        :func:`dihedra.convergence` (an unequilibrated start is also a notice).
     tracking_result : TrackResult
         The same as one object: what every analysis of dihedra takes.
 
@@ -99,7 +108,7 @@ class TorsionStates(TorsionPass):
 
     def __init__(self, atomgroup, torsions="rotatable", scheme="anti-gauche", *, weights=None, keep_states=True,
                  keep_angles=False, dt_ps=None, temperature_k=None, bin_width_deg=1.0, n_state_blocks=64,
-                 n_hist_blocks=16, verbose=False):
+                 n_hist_blocks=16, discard=None, verbose=False):
         universe = getattr(atomgroup, "universe", None)
         if universe is None or not hasattr(atomgroup, "atoms"):
             raise DihedraError(f"TorsionStates takes an MDAnalysis AtomGroup or Universe; got "
@@ -114,6 +123,8 @@ class TorsionStates(TorsionPass):
                          bin_width_deg=bin_width_deg, weights=weights, series=series, keep_angles=keep_angles,
                          dt_ps=dt_ps, verbose=verbose)
         self.temperature_k = temperature_k
+        self._discard, self._discard_record = (discard, parse_discard(discard)), None
+        self._weights_given = self.weights
         self._make_tables = True
         self._threads_asked = None
         self._range = {}
@@ -136,6 +147,8 @@ class TorsionStates(TorsionPass):
         self.threads = pass_threads(self._threads_asked, backend or "serial")
         self._range = dict(start=start, stop=stop, step=step)
         self._started = time.time()
+        if self._discard[1] is not None and self._make_tables:
+            start, frames = self._drop_start(start, stop, step, frames)
         kwargs = dict(start=start, stop=stop, step=step, frames=frames, verbose=verbose)
         if backend not in (None, "serial") or n_workers not in (None, 1):
             kwargs.update(n_workers=n_workers, n_parts=n_parts, backend=backend,
@@ -146,6 +159,22 @@ class TorsionStates(TorsionPass):
             warnings.filterwarnings("ignore", message="Reader has no dt information")
             warnings.filterwarnings("ignore", category=DeprecationWarning)
             return super().run(**kwargs)
+
+    def _drop_start(self, start, stop, step, frames):
+        """The first frame (or the frames) left after ``discard``; the weights of those frames."""
+        if frames is not None:
+            chosen = np.asarray(frames)
+            chosen = np.flatnonzero(chosen) if chosen.dtype == bool else chosen.astype(np.int64)
+        else:
+            chosen = np.arange(*self._trajectory.check_slice_indices(start, stop, step))
+        given = self._weights_given
+        if given is not None and len(given) != len(chosen):
+            raise DihedraError(f"weights has {len(given)} values but {len(chosen)} frames are analysed; "
+                               "give one weight per analysed frame.")
+        (k,), self._discard_record = plan_discard(self._discard[0], [(self._universe, chosen, given, self.dt_ps)],
+                                                  self.torsion_set, self.scheme)
+        self.weights = None if given is None else np.asarray(given)[k:]
+        return (start, chosen[k:]) if frames is not None else (int(chosen[k]), None)
 
     def _prepare(self):
         if self.weights is not None and len(self.weights) != self._n_total:
@@ -169,13 +198,19 @@ class TorsionStates(TorsionPass):
         params = dict(self._range, workers=None, threads=int(self.threads), keep_angles=self.keep_angles,
                       weights="array" if self.weights is not None else None, weights_column=None, dt_ps=self.dt_ps,
                       n_state_blocks=self.n_state_blocks, n_hist_blocks=self.n_hist_blocks,
-                      bin_width_deg=self.bin_width_deg, temperature_k=self.temperature_k)
+                      bin_width_deg=self.bin_width_deg, temperature_k=self.temperature_k,
+                      discard=self._discard_record)
         result.summary.update(make_summary(getattr(self._universe, "filename", None), [info], self.scheme,
                                            self.torsion_set, params, notices,
                                            time.time() - getattr(self, "_started", time.time())))
         parts = self.results.pop("series_parts", None) or []
         if parts:
-            result.series = MemorySeries(_joined(parts))
+            result.series = MemorySeries.from_parts(parts)
+        if result.has_series("states"):
+            conv = convergence_tables(result, temperature_k=self.temperature_k)
+            self.results.convergence = conv.convergence
+            notices.extend(n for n in conv.run_notices(self._discard_record) if n not in notices)
+            result.summary["notices"] = list(notices)
         for name in TABLES:
             self.results[name] = getattr(result, name)
         if result.has_series("states"):
@@ -204,11 +239,3 @@ def _within(tset, atoms, universe):
                        "out.")
     return TorsionSet(torsions=keep, notices=notices)
 
-
-def _joined(parts):
-    """The time series chunks of all workers, per kind, in replica and frame order."""
-    out = {}
-    for part in parts:
-        for kind, chunks in part.items():
-            out.setdefault(kind, []).extend(chunks)
-    return {kind: sorted(chunks, key=lambda c: (c.replica, c.first)) for kind, chunks in out.items()}
