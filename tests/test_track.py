@@ -223,8 +223,9 @@ def test_results_folder_round_trip_and_existing_folder_untouched(two_replicas, t
     out = tmp_path / "res"
     res = track(top, [t0], torsions=spec8(), scheme="anti-gauche", out=str(out))
     names = sorted(os.listdir(out))
-    assert names == sorted(["blocks.npz", "conformers.csv", "conformers_by_type.csv", "dihedra-files.json",
-                            "populations.csv",
+    assert names == sorted(["blocks.npz", "conformers.csv", "conformers_by_type.csv", "convergence.csv",
+                            "convergence.json", "convergence_by_state.csv", "convergence_over_time.csv",
+                            "dihedra-files.json", "populations.csv",
                             "populations_by_replica.csv", "populations_by_type.csv", "states.parquet",
                             "summary.json", "torsions.csv"])
     back = load_results(out)

@@ -1,5 +1,6 @@
 """``dihedra track``: follow torsions through trajectories and write a results folder."""
 
+from ..io.tables import read_optional_table
 from ..tracking import track
 from .common import (add_scheme_option, add_torsion_options, add_track_options, print_notices,
                      print_population_table, say)
@@ -18,7 +19,21 @@ def register(sub):
     add_scheme_option(p)
     p.add_argument("--out", required=True, metavar="DIR", help="results folder to create")
     add_track_options(p)
+    add_convergence_options(p)
     p.set_defaults(func=run)
+
+
+def add_convergence_options(p):
+    """--discard and the targets of the convergence forecast."""
+    p.add_argument("--discard", default=None, metavar="auto|N|TIME",
+                   help="drop the start of every replica before anything is computed: 'auto' (detected by "
+                        "equilibration detection on a quick first pass), N frames, or a time such as '250ps' or "
+                        "'1.5ns', counted from the first analysed frame; recorded in summary.json")
+    p.add_argument("--target-error", type=float, default=0.01, metavar="FRACTION",
+                   help="target standard error of a population for the forecast of convergence.csv (default 0.01)")
+    p.add_argument("--target-error-kj-mol", type=float, default=0.5, metavar="KJ_MOL",
+                   help="target standard error of a free-energy difference between states, in kJ/mol "
+                        "(default 0.5)")
 
 
 def run(args):
@@ -26,7 +41,9 @@ def run(args):
                    start=args.start, stop=args.stop, step=args.step, workers=args.workers,
                    backend=args.backend, scheduler=args.scheduler, keep_angles=args.keep_angles, weights=args.weights,
                    out=args.out, overwrite=args.overwrite, dt_ps=args.dt_ps,
-                   temperature_k=args.temperature, threads=args.threads, log=say)
+                   temperature_k=args.temperature, threads=args.threads, log=say,
+                   discard=_discard_value(args.discard), target_error=args.target_error,
+                   target_error_kj_mol=args.target_error_kj_mol)
     report_track(result)
 
 
@@ -42,5 +59,31 @@ def report_track(result):
         print("most populated conformers per molecule type:")
         for row in top.itertuples(index=False):
             print(f"  {row.group_type:<10} {row.conformer:<32} {row.population:.3f} ± {row.population_err:.3f}")
+    print_convergence(result)
     print_notices(result.notices)
     print(f"results written to {result.folder}")
+
+
+def _discard_value(text):
+    """``--discard`` as the API takes it: a whole number is frames, anything else as given."""
+    if text is not None and text.strip().isdigit():
+        return int(text)
+    return text
+
+
+def print_convergence(result, max_rows=40):
+    """The verdict of every type (convergence.csv), with the start that was dropped."""
+    table = read_optional_table(result.folder, "convergence.csv") if result.folder else None
+    if table is None or not len(table):
+        return
+    dropped = (result.summary.get("parameters") or {}).get("discard")
+    head = "convergence per type"
+    if dropped:
+        spans = sorted(set(round(x, 3) for x in dropped["discarded_ps"]))
+        head += f" (start dropped: {', '.join(f'{x:g}' for x in spans)} ps, --discard {dropped['requested']})"
+    print(head + ":")
+    width = max(len("type"), *(len(str(t)) for t in table["type"][:max_rows]))
+    for row in table.head(max_rows).itertuples(index=False):
+        print(f"  {row.type:<{width}}  {row.verdict}")
+    if len(table) > max_rows:
+        print(f"  ... and {len(table) - max_rows} more types (see convergence.csv)")

@@ -3,6 +3,8 @@
 :func:`write_report` (``dihedra report DIR [--out FILE]``) gathers what a results folder holds
 into ``report.html``:
 
+* first, whether the sampling is converged: the verdict of every torsion type from
+  ``convergence.csv`` with its reasons in plain words, and the forward/backward figures;
 * inputs and provenance from ``summary.json`` (topology and trajectories with SHA-256, frame
   ranges, time step and its source, parameters, package versions, the analysis file of
   ``dihedra run`` when there is one);
@@ -34,11 +36,11 @@ import time
 from ..io.outputs import check_replaceable_in, check_single_file, file_head_contains, is_inside, write_text
 from ..io.tables import read_optional_json
 from .report_html import _CSS, _e, _fmt
-from .report_sections import (_comparison, _couplings, _kinetics, _populations, _profiles, _provenance,
-                              _time_series, _torsions)
+from .report_sections import (_comparison, _convergence, _couplings, _kinetics, _populations, _profiles,
+                              _provenance, _time_series, _torsions)
 
 #: The sections in the page's navigation: (id, name).
-_NAVIGATION = [("inputs", "Inputs"), ("torsions", "Torsions"), ("populations", "Populations"),
+_NAVIGATION = [("convergence", "Convergence"), ("inputs", "Inputs"), ("torsions", "Torsions"), ("populations", "Populations"),
                ("series", "Time series"), ("profiles", "Profiles"), ("comparison", "Comparison"),
                ("kinetics", "Kinetics"), ("couplings", "Couplings"), ("notes", "Figures not made")]
 
@@ -74,6 +76,7 @@ def build_report(folder, width="single", figures=True, log=None):
     notices = _notices(folder, summary)
     if notices:
         body.insert(0, notices)
+    body.insert(0, _convergence(folder, summary, figs))
     foot = ("<footer>Self-contained report: no scripts, no external requests; figures are embedded SVG. "
             "Tables show the first rows; the folder holds the full CSV files.</footer>")
     return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>" + REPORT_SIGNATURE +

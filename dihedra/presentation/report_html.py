@@ -176,9 +176,15 @@ def _callout(title, items, kind="note"):
     return f"<div class='callout {kind}'><h4>{_e(title)}</h4><ul class='note-list'>{lis}</ul></div>"
 
 
+#: Verdicts drawn like others of the same sense (convergence: converged / agree like consistent).
+_SAME_AS = {"converged": "consistent", "agree": "consistent", "not converged": "inconsistent",
+            "disagree": "inconsistent"}
+
+
 def _verdict(text):
     known = {"consistent", "inconsistent", "undersampled", "tension"}
-    cls = f"v-{text}" if text in known else "v-other"
+    kind = _SAME_AS.get(text, text)
+    cls = f"v-{kind}" if kind in known else "v-other"
     return f"<span class='verdict {cls}'>{_e(text)}</span>"
 
 

@@ -88,7 +88,7 @@ def _populations(folder, scheme, figs):
         parts.append("<h3>Most populated conformers (joint states along the chain)</h3>")
         parts.append(_table(top, ["group_type", "conformer", "population", "n_groups"],
                             ["molecule type", "conformer", "population", "molecules"], what="conformers"))
-    parts.append(_figures_html(figs.get("populations", []) + figs.get("convergence", [])))
+    parts.append(_figures_html(figs.get("populations", [])))
     parts.append("</section>")
     return "".join(parts)
 
@@ -288,3 +288,47 @@ def _time_series(figs):
         return ""
     return "<section id='series'><h2>Time series</h2>" + _figures_html(items) + "</section>"
 
+
+
+def _convergence(folder, summary, figs):
+    """The convergence verdicts per type (convergence.csv), their reasons in plain words, the start
+    that was dropped, and the forward/backward figures."""
+    table = read_optional(folder, "convergence.csv")
+    title = "Is the sampling converged?"
+    if table is None:
+        return ("<section id='convergence'><h2>" + _e(title) + "</h2><p class='missing'>No convergence.csv in this "
+                "folder (written by an older dihedra): run <code>dihedra track</code> again, or in Python "
+                "<code>dihedra.convergence(dihedra.load_results(DIR)).save(DIR)</code>.</p></section>")
+    info = read_optional_json(folder, "convergence.json") or {}
+    params = info.get("parameters", {})
+    parts = [f"<section id='convergence'><h2>{_e(title)}</h2>",
+             "<p class='lead'>One verdict per torsion type. A type is converged when its start is equilibrated "
+             "(equilibration detection, Chodera 2016), its replicas agree (chi-square test with each replica's "
+             "own error), it has at least 20 effective samples, and every population has reached the target "
+             f"standard error of {_fmt(params.get('target_error'))}.</p>"]
+    dropped = (summary.get("parameters") or {}).get("discard")
+    if dropped:
+        spans = ", ".join(f"{_fmt(x)} ps" for x in dict.fromkeys(dropped.get("discarded_ps", [])))
+        parts.append(f"<p>Start dropped from every replica before the analysis (<code>discard = "
+                     f"{_e(dropped.get('requested'))}</code>): {_e(spans)}.</p>")
+    rows = table.copy()
+    rows["verdict"] = [_verdict("converged" if v == "converged" else "not converged") for v in table["verdict"]]
+    rows["replicas"] = [_verdict(v) if v in ("agree", "tension", "disagree") else _e(v) for v in table["replicas"]]
+    rows["start"] = [f"{_fmt(t)} ps" if s == "drifts" else "equilibrated" for s, t in zip(table["start"], table["t0_ps"])]
+    parts.append(_table(rows, ["type", "verdict", "start", "replicas", "population_err_max", "forecast"],
+                        ["type", "verdict", "unequilibrated until", "replicas", "largest population error",
+                         "to reach the target"], raw=("verdict", "replicas"), what="types"))
+    reasons = [(t, v.split(": ", 1)[1]) for t, v in zip(table["type"], table["verdict"]) if v != "converged"]
+    if reasons:
+        parts.append("<h3>Why not converged</h3><ul class='note-list'>" + "".join(
+            f"<li><b>{_e(t)}</b>: " + "; ".join(_e(r) for r in why.split("; ")) + ".</li>" for t, why in reasons)
+            + "</ul>")
+        parts.append(_callout("What to do", [
+            "an unequilibrated start: track again with --discard auto (or a time), which drops it from every table",
+            "replicas that disagree: they sample different states; run them longer, or check that they simulate "
+            "the same system",
+            "a population error above the target: simulate for the time the forecast gives, or add replicas"],
+            "caution"))
+    parts.append(_figures_html(figs.get("convergence", [])))
+    parts.append("</section>")
+    return "".join(parts)

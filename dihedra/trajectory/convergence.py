@@ -376,8 +376,8 @@ def _verdict(row, states, labels):
     if np.isfinite(row["n_effective"]) and row["n_effective"] < MIN_EFFECTIVE_SAMPLES:
         reasons.append(f"fewer than {MIN_EFFECTIVE_SAMPLES} effective samples ({row['n_effective']:.0f})")
     if np.isfinite(row["population_err_max"]) and row["population_err_max"] > row["target_error"]:
-        reasons.append(f"population error {row['population_err_max']:.3f} above the target {row['target_error']:g}"
-                       f" ({row['forecast']})")
+        reasons.append(f"population error {row['population_err_max']:.3f} above the target {row['target_error']:g}: "
+                       f"{row['forecast']}")
     if not np.isfinite(row["population_err_max"]):
         reasons.append("no frames with this type defined")
     return "converged" if not reasons else "not converged: " + "; ".join(reasons)
@@ -388,8 +388,8 @@ def _forecast(err, target, needed_ps, simulated_ps, replicas):
         return "no data"
     if err <= target:
         return "already reached"
-    return (f"about {human_time(needed_ps - simulated_ps)} more, {human_time(needed_ps)} in all "
-            f"(or {int(replicas)} replicas of this length)")
+    return (f"about {human_time(needed_ps - simulated_ps)} more ({human_time(needed_ps)} in all, or "
+            f"{int(replicas)} replicas of this length)")
 
 
 def human_time(ps):

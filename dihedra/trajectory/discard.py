@@ -77,7 +77,8 @@ def frames_to_drop(spec, n_frames, interval_ps, where="the run"):
     k = int(amount) if kind == "frames" else int(math.ceil(amount / interval_ps - 1e-9)) if interval_ps > 0 else 0
     if k >= n_frames:
         what = f"{amount} frames" if kind == "frames" else f"{amount:g} ps ({k} frames)"
-        raise DihedraError(f"{where}: discarding {what} leaves no frames of the {n_frames} analysed; discard less.")
+        raise DihedraError(f"discarding {what} leaves no frames: {where} has {n_frames} analysed frames; discard "
+                           "less.")
     return max(0, k)
 
 

@@ -1,22 +1,29 @@
-r"""Figure 8: convergence of the state populations (running population per replica against time)."""
+r"""Figure 8: convergence of the state populations: running population per replica against time, with
+the forward and backward populations of ``convergence_over_time.csv`` and their errors."""
 
 from __future__ import annotations
 
 import numpy as np
 
 from ...errors import DihedraError
+from ...io.tables import read_optional_table
 from .common import _new_axes, _note, _replica_info, _time_label, _top_legend, time_scale
 from .style import INK, NEUTRAL, state_colours
 
 REPLICA_STYLES = ("-", (0, (4, 1.5)), (0, (1, 1.2)), (0, (4, 1.2, 1, 1.2)))
 
 
-def plot_convergence(result, name, ax=None, legend=True):
-    """Figure 8: each state population against simulation time, per replica, with the error band.
+def plot_convergence(result, name, ax=None, legend=True, over_time=None):
+    """Figure 8: each state population against simulation time, per replica, with the error band,
+    and the forward and backward populations with their errors.
 
     Lines: the running population of each state (cumulative over the blocks of the pass, so the
     value at time t uses the frames up to t) for each replica; band: the final pooled population
     with its standard error (``populations_by_type.csv``, or ``populations.csv`` for a torsion).
+    For a type, filled circles: the forward populations (frames from the start up to t) at t;
+    open squares: the backward populations (frames from t to the end) at t, each ± 1 standard
+    error (``convergence_over_time.csv``, pooled over the replicas): where the start drifts, the
+    two disagree.
 
     Parameters
     ----------
@@ -24,6 +31,9 @@ def plot_convergence(result, name, ax=None, legend=True):
         From :func:`dihedra.io.resultsdir.load_results`.
     name : str
         Torsion type or torsion label.
+    over_time : DataFrame, optional
+        The forward/backward table (default: ``convergence_over_time.csv`` of the result's
+        folder, when there is one).
 
     Returns
     -------
@@ -39,6 +49,7 @@ def plot_convergence(result, name, ax=None, legend=True):
     scale, unit = time_scale(tmax) if time_known else (1.0, "frames")
     colours = state_colours(result.scheme)
     reps = _draw_running(ax, result, cols, info, scale, colours)
+    marked = _draw_forward_backward(ax, result, name, over_time, scale if time_known else None, colours)
     for row in final.itertuples(index=False):
         c = colours.get(row.state, NEUTRAL)
         p, e = float(row.population), float(row.population_err)
@@ -50,7 +61,8 @@ def plot_convergence(result, name, ax=None, legend=True):
     ax.set_xlabel(_time_label(unit, time_known))
     ax.set_ylabel("running population")
     note = f"{name}. Lines: running population" + (" per replica" if len(reps) > 1 else "") + \
-        "; bands: final population ± 1 s.e."
+        "; bands: final population ± 1 s.e." + \
+        ("; ● forward (start to t), □ backward (t to end) ± 1 s.e." if marked else "")
     if legend:
         handles = [Line2D([], [], color=colours[s], lw=1.2, label=s) for s in result.scheme.labels]
         if len(reps) > 1:
@@ -60,6 +72,26 @@ def plot_convergence(result, name, ax=None, legend=True):
     else:
         _note(ax, note)
     return ax
+
+
+def _draw_forward_backward(ax, result, name, over_time, scale, colours):
+    """Forward populations (filled circles at the end of their frames) and backward ones (open
+    squares at their start), ± 1 s.e.; whether any were drawn (only for a type, on a time axis)."""
+    if over_time is None and getattr(result, "folder", None):
+        over_time = read_optional_table(result.folder, "convergence_over_time.csv")
+    if over_time is None or scale is None or not len(over_time):
+        return False
+    sub = over_time[over_time["type"] == name]
+    for (state, direction), part in sub.groupby(["state", "direction"], sort=False):
+        c = colours.get(state, NEUTRAL)
+        forward = direction == "forward"
+        x = (part["to_ps"] if forward else part["from_ps"]).to_numpy(float) * scale
+        y, e = part["population"].to_numpy(float), part["population_err"].to_numpy(float)
+        ax.errorbar(x, y, yerr=np.where(np.isfinite(e), e, 0.0), fmt="none", ecolor=c, elinewidth=0.7,
+                    capsize=1.5, zorder=4)
+        ax.scatter(x, y, s=9, marker="o" if forward else "s", facecolors=c if forward else "white",
+                   edgecolors=c, linewidths=0.7, zorder=5)
+    return len(sub) > 0
 
 
 def _columns_of(result, name):

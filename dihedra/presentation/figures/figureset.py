@@ -263,7 +263,8 @@ def _add_convergence(b, chosen_types):
         plot_convergence(b.result, t, ax=fig.add_subplot())
         b.add(f"convergence_{safe_name(t)}",
               f"Convergence of the state populations of {t}: running population per "
-              "replica against simulation time, with the final value ± 1 standard error.", fig, "convergence")
+              "replica against simulation time, with the final value ± 1 standard error, and the forward "
+              "(start to t) and backward (t to end) populations ± 1 standard error.", fig, "convergence")
 
 
 def _add_couplings(b):
