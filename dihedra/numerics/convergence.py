@@ -47,6 +47,11 @@ MIN_START_SAMPLES = 20
 #: Candidate starts scanned on the first, coarse grid of :func:`detect_start`.
 N_CANDIDATES = 100
 
+#: :func:`equilibration` takes the earliest start whose N_eff is within this fraction of the
+#: largest: the estimate of g is noisy (10-20 %), so the plain maximum often lands well after
+#: the end of a drift, where N_eff is no larger in truth.
+N_EFF_TOLERANCE = 0.05
+
 
 def series_error(x, var_floor=0.0):
     """Mean, standard error and statistical inefficiency of a time series.
@@ -78,7 +83,7 @@ def series_error(x, var_floor=0.0):
     return float(x.mean()), float(np.sqrt(g * var / n)), float(g)
 
 
-def detect_start(x, min_kept=None, n_candidates=N_CANDIDATES):
+def detect_start(x, min_kept=None, n_candidates=N_CANDIDATES, tolerance=0.0):
     """The start of the stationary part of a series (Chodera 2016).
 
     Parameters
@@ -88,6 +93,9 @@ def detect_start(x, min_kept=None, n_candidates=N_CANDIDATES):
         Points that must stay after t0 (default: a tenth of the series, at least 5).
     n_candidates : int
         Points of the first, coarse grid of t0; the best one is then refined point by point.
+    tolerance : float
+        0 (the default): the t0 of the largest N_eff, as published. Above 0: the earliest t0 whose
+        N_eff is at least (1 - tolerance) times the largest.
 
     Returns
     -------
@@ -122,9 +130,14 @@ def detect_start(x, min_kept=None, n_candidates=N_CANDIDATES):
             scores[t0] = ((n - t0) / g, g)
         return scores[t0][0]
 
-    best = max(range(0, last + 1, step), key=score)
+    def pick(candidates):
+        candidates = list(candidates)
+        top = max(score(t) for t in candidates)
+        return next(t for t in candidates if score(t) >= (1.0 - tolerance) * top)
+
+    best = pick(range(0, last + 1, step))
     if step > 1:
-        best = max(range(max(0, best - step + 1), min(last, best + step - 1) + 1), key=score)
+        best = pick(range(max(0, best - step + 1), min(last, best + step - 1) + 1))
     n_eff, g = scores[best]
     return int(best), float(g), float(n_eff)
 
@@ -174,7 +187,7 @@ def equilibration(x, var_floor=0.0):
     """Detect the start of the stationary part of ``x`` and say whether the part before it matters.
 
     The start t0 is that of :func:`detect_start` (Chodera 2016), sought in the first half of the
-    series. The part before it counts as unequilibrated (``drifts``) when all of: its mean differs
+    series, the earliest within :data:`N_EFF_TOLERANCE` of the largest N_eff. The part before it counts as unequilibrated (``drifts``) when all of: its mean differs
     from the rest by more than :data:`DRIFT_Z` standard errors (:func:`drift_z`); keeping it
     shifts the mean of the whole series by more than :data:`DRIFT_SHIFT_SE` standard errors; and
     the rest holds at least :data:`MIN_START_SAMPLES` effective samples.
@@ -189,7 +202,7 @@ def equilibration(x, var_floor=0.0):
     """
     x = np.asarray(x, dtype=float)
     n = x.size
-    t0, g, n_eff = detect_start(x)
+    t0, g, n_eff = detect_start(x, tolerance=N_EFF_TOLERANCE)
     after = float(x[t0:].mean()) if n else np.nan
     if t0 == 0:
         return Start(0, g, n_eff, 0.0, 0.0, np.nan, after, False)

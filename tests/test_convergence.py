@@ -1,0 +1,310 @@
+"""Convergence checks against known answers: equilibration detection on series with a known start,
+the statistical inefficiency of an AR(1) process, the replica test's false-alarm rate and power,
+the forecast against the error actually reached, and the whole chain on trajectories whose first
+fifth comes from another ensemble.
+
+Synthetic processes (analytic answers, from memory / common practice):
+
+* AR(1), x_t = rho x_{t-1} + e_t: statistical inefficiency g = (1 + rho) / (1 - rho).
+* A "jump" process on three states: each step, with probability r, the state is drawn afresh from
+  pi, else kept. Its stationary distribution is pi exactly, the indicator of a state is an AR(1)
+  with rho = 1 - r (g = (2 - r) / r), and a start away from pi relaxes as (1 - r)^t, i.e. with the
+  relaxation time 1 / r steps.
+"""
+
+import json
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import dihedra
+from dihedra.errors import DihedraError
+from dihedra.numerics.convergence import (detect_start, equilibration, replica_chi_square, series_error,
+                                          time_needed)
+from dihedra.trajectory.discard import parse_discard
+
+from conftest import chain_coordinates, write_system
+
+CENTRES_DEG = np.array([180.0, 60.0, -60.0])   # anti, gauche+, gauche- of the anti-gauche scheme
+
+
+def ar1(n, rho, rng):
+    x = np.empty(n)
+    x[0] = rng.normal() / np.sqrt(1 - rho ** 2)
+    e = rng.normal(size=n)
+    for i in range(1, n):
+        x[i] = rho * x[i - 1] + e[i]
+    return x
+
+
+def jump(n_frames, n_torsions, pi, rate, rng, start=None):
+    """States (n_frames, n_torsions) of the jump process (see the module notes)."""
+    s = rng.choice(3, size=n_torsions, p=pi) if start is None else np.full(n_torsions, start)
+    out = np.empty((n_frames, n_torsions), dtype=np.int64)
+    for f in range(n_frames):
+        new = rng.random(n_torsions) < rate
+        s = np.where(new, rng.choice(3, size=n_torsions, p=pi), s)
+        out[f] = s
+    return out
+
+
+def angles_of(states, rng):
+    return CENTRES_DEG[states] + rng.normal(0.0, 12.0, states.shape)
+
+
+# ------------------------------------------------------------------------------------------------
+# the methods on plain series
+# ------------------------------------------------------------------------------------------------
+
+def test_ar1_error_matches_the_spread_of_means():
+    # g = (1 + rho) / (1 - rho) = 19 for rho = 0.9 (AR(1), analytic); se = sqrt(g var / N)
+    rng = np.random.default_rng(1)
+    rho, n = 0.9, 4000
+    results = [series_error(ar1(n, rho, rng)) for _ in range(200)]
+    g = np.median([r[2] for r in results])
+    assert g == pytest.approx((1 + rho) / (1 - rho), rel=0.15)
+    spread = np.std([r[0] for r in results])
+    assert np.median([r[1] for r in results]) == pytest.approx(spread, rel=0.15)
+
+
+def test_start_of_a_step_at_one_fifth_is_found_at_the_step():
+    rng = np.random.default_rng(2)
+    hits = []
+    for _ in range(20):
+        x = ar1(1000, 0.5, rng) + np.r_[np.full(200, 3.0), np.zeros(800)]
+        s = equilibration(x)
+        assert s.drifts
+        hits.append(s.t0)
+    off = np.abs(np.array(hits) - 200)
+    # the noise of g moves the maximum of N_eff now and then: most within 3 % of the series, none
+    # beyond 20 %
+    assert np.mean(off <= 30) >= 0.85 and off.max() <= 200
+
+
+def test_jump_process_started_away_from_equilibrium_leaves_no_bias_after_t0():
+    # 2000 torsions all start in gauche+ (pi = 0.6 anti) and relax with the relaxation time
+    # 1 / r = 50 steps; blocks of 10 steps (as time_blocks makes them). The start found lies within
+    # a few relaxation times, and what is kept is at equilibrium (within 3 standard errors of pi).
+    # A transient this short is about one correlation time long, so it need not be cut (Chodera
+    # 2016: it does not lower N_eff); when it is, it counts as a drift.
+    rng = np.random.default_rng(3)
+    pi, r = [0.6, 0.2, 0.2], 0.02
+    for _ in range(6):
+        s = jump(5000, 2000, pi, r, rng, start=1)
+        anti = (s == 0).mean(axis=1).reshape(500, 10).mean(axis=1)
+        st = equilibration(anti)
+        assert st.t0 * 10 <= 8 / r
+        assert st.drifts == (st.t0 > 0 and st.shift_se > 1)
+        _, se, _ = series_error(anti[st.t0:])
+        assert abs(anti[st.t0:].mean() - pi[0]) < 3 * se
+
+
+@pytest.mark.parametrize("make", [lambda rng: ar1(1000, 0.9, rng), lambda rng: ar1(500, 0.5, rng),
+                                  lambda rng: (jump(1000, 10, [0.6, 0.2, 0.2], 0.1, rng) == 0).mean(axis=1)])
+def test_stationary_series_are_rarely_called_unequilibrated(make):
+    rng = np.random.default_rng(4)
+    flagged = np.mean([equilibration(make(rng)).drifts for _ in range(200)])
+    assert flagged <= 0.03
+
+
+def test_detect_start_maximises_the_effective_samples():
+    # Chodera 2016: N_eff(t0) = (N - t0) / g(t0) is largest at the returned t0 (here against a
+    # brute-force scan of every t0 in the first half)
+    from dihedra.numerics.statistics import statistical_inefficiency
+
+    rng = np.random.default_rng(5)
+    x = ar1(300, 0.8, rng) + np.r_[np.linspace(4, 0, 60), np.zeros(240)]
+    t0, g, n_eff = detect_start(x, n_candidates=1000)
+    brute = max(range(0, 151), key=lambda t: (300 - t) / statistical_inefficiency(x[t:]))
+    assert t0 == brute
+    assert n_eff == pytest.approx((300 - t0) / g)
+
+
+def test_replica_test_false_alarm_rate_is_near_its_nominal_level_and_it_has_power():
+    # two replicas of the same jump process: P(p < 0.05) near 0.05; with pi(anti) 0.6 against 0.5
+    # (about 4 standard errors apart) the test almost always rejects
+    rng = np.random.default_rng(6)
+
+    def replica(pi):
+        s = jump(4000, 10, pi, 0.05, rng)
+        x = (s == 0).mean(axis=1).reshape(400, 10).mean(axis=1)   # time blocks of 10 steps
+        _, se, _ = series_error(x)
+        return x.mean(), se
+
+    same = []
+    for _ in range(300):
+        (a, ea), (b, eb) = replica([0.6, 0.2, 0.2]), replica([0.6, 0.2, 0.2])
+        same.append(replica_chi_square([a, b], [ea, eb])[2])
+    assert 0.02 <= np.mean(np.array(same) < 0.05) <= 0.10
+    differ = []
+    for _ in range(100):
+        (a, ea), (b, eb) = replica([0.6, 0.2, 0.2]), replica([0.5, 0.25, 0.25])
+        differ.append(replica_chi_square([a, b], [ea, eb])[2])
+    assert np.mean(np.array(differ) < 0.05) >= 0.9
+
+
+def test_forecast_matches_the_error_reached_on_a_longer_series():
+    # forecast the length for a target error from a short AR(1) series, then check the spread of
+    # means of series that long
+    rng = np.random.default_rng(7)
+    rho, n = 0.95, 2000
+    _, se, _ = series_error(ar1(n, rho, rng))
+    target = se / 3.0
+    needed = int(round(time_needed(se, target, n)))
+    assert needed == pytest.approx(9 * n, rel=1e-6)
+    reached = np.std([ar1(needed, rho, rng).mean() for _ in range(150)])
+    assert reached == pytest.approx(target, rel=0.3)
+
+
+def test_chi_square_of_two_estimates():
+    # (0.50 - 0.52)^2 / (2 * 0.01^2) = 2 with 1 degree of freedom: p = 0.157 (chi-square table)
+    chi2, dof, p = replica_chi_square([0.50, 0.52], [0.01, 0.01])
+    assert (chi2, dof) == (pytest.approx(2.0), 1)
+    assert p == pytest.approx(0.1573, abs=1e-4)
+
+
+@pytest.mark.parametrize("value, parsed", [("auto", ("auto", None)), (300, ("frames", 300)), ("300", ("frames", 300)),
+                                           ("300 frames", ("frames", 300)), ("250ps", ("time", 250.0)),
+                                           ("1.5 ns", ("time", 1500.0)), (None, None)])
+def test_discard_values(value, parsed):
+    assert parse_discard(value) == parsed
+
+
+@pytest.mark.parametrize("value", ["3x", -1, 2.5, "2.5 frames", True, "ps"])
+def test_bad_discard_values_are_one_clear_error(value):
+    with pytest.raises(DihedraError, match="discard must be 'auto'"):
+        parse_discard(value)
+
+
+# ------------------------------------------------------------------------------------------------
+# the whole chain on trajectories
+# ------------------------------------------------------------------------------------------------
+
+EQUILIBRIUM = [0.7, 0.15, 0.15]
+
+
+@pytest.fixture(scope="module")
+def two_ensembles(tmp_path_factory):
+    """2000 frames of 30 torsions: the first fifth from pi = (0.3, 0.35, 0.35), the rest from
+    EQUILIBRIUM, relaxation time 10 frames (1 ps per frame)."""
+    folder = tmp_path_factory.mktemp("two-ensembles")
+    rng = np.random.default_rng(11)
+    states = np.r_[jump(400, 30, [0.3, 0.35, 0.35], 0.1, rng), jump(1600, 30, EQUILIBRIUM, 0.1, rng)]
+    return write_system(str(folder), chain_coordinates(angles_of(states, rng)), stem="start", fmt="dcd")
+
+
+def test_a_start_from_another_ensemble_is_found_and_discarded(two_ensembles, tmp_path):
+    top, traj = two_ensembles
+    plain = dihedra.track(top, [traj], torsions="rotatable", out=str(tmp_path / "plain"))
+    table = pd.read_csv(tmp_path / "plain" / "convergence.csv")
+    row = table.iloc[0]
+    assert row["start"] == "drifts" and row["verdict"].startswith("not converged: the first")
+    assert abs(row["t0_frames"] - 400) <= 0.03 * 2000          # within 3 % of the run
+    assert any("suggested start is t0" in n for n in plain.notices)
+
+    auto = dihedra.track(top, [traj], torsions="rotatable", discard="auto", out=str(tmp_path / "auto"))
+    summary = json.load(open(tmp_path / "auto" / "summary.json"))
+    record = summary["parameters"]["discard"]
+    assert record["requested"] == "auto" and abs(record["discarded_frames"][0] - 400) <= 60
+    assert summary["replicas"][0]["first_frame"] == record["first_frame_kept"][0]
+    pops = auto.populations_by_type.set_index("state")
+    for state, p in zip(["anti", "gauche+", "gauche-"], EQUILIBRIUM):
+        assert abs(pops.loc[state, "population"] - p) < 3 * pops.loc[state, "population_err"]
+    assert not any("suggested start" in n for n in auto.notices)
+    # every table starts after the dropped frames: the series too
+    states = auto.states()
+    assert states["frame"].iloc[0] == record["first_frame_kept"][0]
+    assert len(states) == 2000 - record["discarded_frames"][0]
+
+
+def test_discard_by_frames_and_time_equals_a_later_start(two_ensembles):
+    top, traj = two_ensembles
+    later = dihedra.track(top, [traj], torsions="rotatable", start=500)
+    frames = dihedra.track(top, [traj], torsions="rotatable", discard=500)
+    time = dihedra.track(top, [traj], torsions="rotatable", discard="500 ps")
+    for res in (frames, time):
+        pd.testing.assert_frame_equal(res.populations, later.populations)
+
+
+def test_torsion_states_discard(two_ensembles):
+    import MDAnalysis as mda
+
+    top, traj = two_ensembles
+    u = mda.Universe(top, traj)
+    plain = dihedra.TorsionStates(u.atoms).run(start=450)
+    dropped = dihedra.TorsionStates(u.atoms, discard=450).run()
+    pd.testing.assert_frame_equal(dropped.results.populations, plain.results.populations)
+    assert dropped.results.summary["parameters"]["discard"]["discarded_frames"] == [450]
+    auto = dihedra.TorsionStates(u.atoms, discard="auto").run()
+    assert abs(auto.results.summary["parameters"]["discard"]["discarded_frames"][0] - 400) <= 60
+    assert auto.results.convergence["verdict"].iloc[0] == "converged"
+
+
+@pytest.fixture(scope="module")
+def replicas(tmp_path_factory):
+    """Two replicas of different potentials (anti 0.7 against 0.55) and two halves of one run."""
+    folder = str(tmp_path_factory.mktemp("replicas"))
+    rng = np.random.default_rng(12)
+    parts = [jump(1000, 30, EQUILIBRIUM, 0.1, rng), jump(1000, 30, [0.55, 0.25, 0.2], 0.1, rng),
+             jump(2000, 30, EQUILIBRIUM, 0.1, rng)]
+    coords = chain_coordinates(angles_of(np.concatenate(parts), rng))
+    top, a = write_system(folder, coords[:1000], stem="ff_a", fmt="dcd")
+    _, b = write_system(folder, coords[1000:2000], stem="ff_b", fmt="dcd")
+    _, h1 = write_system(folder, coords[2000:3000], stem="half1", fmt="dcd")
+    _, h2 = write_system(folder, coords[3000:], stem="half2", fmt="dcd")
+    return top, (a, b), (h1, h2)
+
+
+def test_replicas_of_different_potentials_disagree_and_halves_of_one_run_agree(replicas, tmp_path):
+    top, different, halves = replicas
+    res = dihedra.track(top, list(different), torsions="rotatable", out=str(tmp_path / "different"))
+    row = pd.read_csv(tmp_path / "different" / "convergence.csv").iloc[0]
+    assert row["replicas"] == "disagree" and "the replicas disagree" in row["verdict"]
+    assert row["replica_p_value"] < 1e-3
+    assert any("replicas disagree" in n for n in res.notices)
+    same = dihedra.convergence(dihedra.track(top, list(halves), torsions="rotatable"))
+    assert same.convergence["replicas"].iloc[0] == "agree"
+
+
+def test_convergence_result_saves_its_tables(replicas, tmp_path):
+    top, _, halves = replicas
+    res = dihedra.track(top, [halves[0]], torsions="rotatable", temperature_k=300.0)
+    conv = dihedra.convergence(res, target_error=0.001)
+    paths = conv.save(str(tmp_path))
+    assert sorted(os.path.basename(p) for p in paths) == ["convergence.csv", "convergence.json",
+                                                          "convergence_by_state.csv", "convergence_over_time.csv"]
+    row = conv.convergence.iloc[0]
+    # error ~ 1 / sqrt(time): the time needed is the time so far x (error / target)^2
+    assert row["time_needed_ps"] == pytest.approx(row["simulated_time_ps"] * (row["population_err_max"] / 0.001) ** 2)
+    assert "more" in row["forecast"] and row["verdict"].startswith("not converged")
+    over = conv.over_time
+    full = over[(over["fraction"] == 1.0)]
+    assert np.allclose(full[full["direction"] == "forward"]["population"].to_numpy(),
+                       full[full["direction"] == "backward"]["population"].to_numpy())
+    with pytest.raises(DihedraError, match="target_error"):
+        dihedra.convergence(res, target_error=2)
+
+
+def test_report_opens_with_the_convergence_verdicts(two_ensembles, tmp_path):
+    from dihedra.presentation.report import build_report
+
+    top, traj = two_ensembles
+    dihedra.track(top, [traj], torsions="rotatable", out=str(tmp_path / "r"))
+    html = build_report(str(tmp_path / "r"), figures=False)
+    main = html[html.index("<main>"):]
+    assert main.index("id='convergence'") < main.index("id='inputs'")
+    assert "not converged" in main[:main.index("id='inputs'")]
+    assert "are not equilibrated" in main[:main.index("id='inputs'")]
+
+
+def test_track_command_prints_the_verdicts_and_refuses_a_bad_discard(two_ensembles, tmp_path, capsys):
+    from dihedra.cli import main
+
+    top, traj = two_ensembles
+    main(["track", top, traj, "--torsions", "rotatable", "--out", str(tmp_path / "c"), "--discard", "auto"])
+    out = capsys.readouterr().out
+    assert "convergence per type (start dropped:" in out and "converged" in out
+    assert main(["track", top, traj, "--torsions", "rotatable", "--out", str(tmp_path / "d"), "--discard", "soon"]) == 2
+    assert "dihedra: error: discard must be 'auto'" in capsys.readouterr().err
