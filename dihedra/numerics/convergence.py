@@ -108,11 +108,13 @@ def detect_start(x, min_kept=None, n_candidates=N_CANDIDATES, tolerance=0.0):
 
     Examples
     --------
-    A series that starts 10 points away from where it settles:
+    A series that relaxes from 3 to 0 over its first 100 points, in noise of unit variance: the
+    start is where what is left of the relaxation drowns in the noise.
 
-    >>> x = np.r_[np.full(10, 5.0), np.tile([0.0, 1.0], 45)]
-    >>> detect_start(x)[0]
-    10
+    >>> rng = np.random.default_rng(0)
+    >>> x = np.r_[np.linspace(3.0, 0.0, 100), np.zeros(400)] + rng.normal(size=500)
+    >>> detect_start(x)
+    (68, 1.0, 432.0)
     """
     x = np.asarray(x, dtype=float)
     n = x.size
@@ -151,8 +153,9 @@ def drift_z(x, t0, var_floor=0.0):
 
     Examples
     --------
-    >>> round(drift_z(np.r_[np.ones(10), np.tile([0.0, 1.0], 45)], 10), 1)
-    10.0
+    >>> x = np.r_[np.ones(10), np.tile([0.0, 1.0], 45)]
+    >>> round(drift_z(x, 10), 2)   # 0.5 / sqrt(g 0.25 (1/10 + 1/90)), g = 1
+    3.0
     """
     x = np.asarray(x, dtype=float)
     n = x.size
@@ -195,10 +198,10 @@ def equilibration(x, var_floor=0.0):
     Examples
     --------
     >>> rng = np.random.default_rng(0)
-    >>> x = np.r_[np.full(100, 0.9), rng.random(400) < 0.3].astype(float)
+    >>> x = np.r_[np.linspace(3.0, 0.0, 100), np.zeros(400)] + rng.normal(size=500)
     >>> s = equilibration(x)
-    >>> s.t0, s.drifts
-    (100, True)
+    >>> s.t0, s.drifts, round(s.z, 1)
+    (68, True, 15.5)
     """
     x = np.asarray(x, dtype=float)
     n = x.size
