@@ -33,7 +33,7 @@ import numpy as np
 
 from .statistics import statistical_inefficiency
 
-#: |z| of the difference between the mean before and after a detected t0 above which the start
+#: ``|z|`` of the difference between the mean before and after a detected t0 above which the start
 #: is reported as not equilibrated (see :func:`drift_z`).
 DRIFT_Z = 4.0
 
@@ -148,7 +148,7 @@ def drift_z(x, t0, var_floor=0.0):
     """How far the mean before ``t0`` lies from the mean after it, in standard errors.
 
     Both errors are those of the stationary part ``x[t0:]`` (its statistical inefficiency g and
-    variance) for the number of points of each part: z = |m_before - m_after| /
+    variance) for the number of points of each part: z = ``|m_before - m_after|`` /
     sqrt(g var (1/t0 + 1/(n - t0))). Zero for t0 = 0.
 
     Examples
