@@ -69,11 +69,18 @@ def read_reference_populations(path):
         table = pd.read_csv(path, comment="#", skipinitialspace=True, dtype={"type": str, "state": str})
     except Exception as exc:  # noqa: BLE001
         raise InputFileError(f"reference populations file {path} is not a readable CSV table: {exc}.") from None
+    return reference_table(table, f"reference populations file {path}")
+
+
+def reference_table(table, where):
+    """A table of reference populations checked and in normal form (type, state, population,
+    population_err; text stripped, numbers as floats); ``where`` names it in errors."""
+    table = table.copy()
     table.columns = [str(c).strip().lower() for c in table.columns]
     need = ["type", "state", "population", "population_err"]
     if any(c not in table.columns for c in need):
-        raise InputFileError(f"reference populations file {path} needs the columns {', '.join(need)}; its "
-                             f"columns are {', '.join(table.columns)}.")
+        raise InputFileError(f"{where} needs the columns {', '.join(need)}; its columns are "
+                             f"{', '.join(table.columns)}.")
     out = table[need].copy()
     out["type"] = out["type"].astype(str).str.strip()
     out["state"] = out["state"].astype(str).str.strip()
@@ -82,10 +89,9 @@ def read_reference_populations(path):
     bad = ~((out["population"] >= 0) & (out["population"] <= 1) & (out["population_err"] >= 0))
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
-        raise InputFileError(f"reference populations file {path}, row {row + 1} ({out['type'][row]}, "
-                             f"{out['state'][row]}): population must be a fraction in [0, 1] and population_err "
-                             "a non-negative number.")
-    return out
+        raise InputFileError(f"{where}, row {row + 1} ({out['type'][row]}, {out['state'][row]}): population must be "
+                             "a fraction in [0, 1] and population_err a non-negative number.")
+    return out.reset_index(drop=True)
 
 
 def _union_population(result, positions, codes):
