@@ -4,7 +4,8 @@ A step's keys are the keyword arguments of its API function (read from the funct
 so the file and the API cannot drift apart), less the ones the pipeline fills in itself (the
 results folder, the tracking result, logging), plus a few that feed the inputs the function takes
 as objects (a scan file for :func:`~dihedra.analysis.compare.compare_with_scan`, a file of measured
-couplings for :func:`~dihedra.analysis.couplings.ensemble_couplings`).
+couplings for :func:`~dihedra.analysis.couplings.ensemble_couplings`). The target of
+:func:`~dihedra.analysis.refit.fit_torsion_correction` is a path key (a file or a results folder).
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ from ..analysis.couplings import ensemble_couplings, get_relation, read_experime
 from ..analysis.kinetics import state_kinetics
 from ..analysis.profiles import free_energy_profiles
 from ..analysis.reference_populations import compare_reference_populations
+from ..analysis.refit import fit_torsion_correction
 from ..analysis.scans import check_scan_output, mmff94_scan, molecule_from_topology, read_scan, write_scan_csv, xtb_scan
 from ..analysis.windows import unbias_windows
 from ..io.tables import read_optional_json, read_optional_table
@@ -131,6 +133,11 @@ def _couplings(ctx, a):
     return _written(res.save(ctx.out, experimental_path=path))
 
 
+def _refit(ctx, a):
+    res = fit_torsion_correction(ctx.result(), a.pop("target"), log=ctx.log, **a)
+    return _written(res.save(ctx.out))
+
+
 def _figures(ctx, a):
     paths, skipped = write_figures(ctx.out, log=ctx.log, **a)
     return f"{len(paths)} figure file(s)" + (f", {len(skipped)} figure(s) without data" if skipped else "")
@@ -174,6 +181,10 @@ STEPS = {s.name: s for s in [
     StepDef("kinetics", "dihedra.state_kinetics", _kinetics,
             keyword_names(state_kinetics, ("result", "barriers", "profile_temperature_k") + _PIPELINE_OWNED),
             defaults=signature_defaults(state_kinetics)),
+    StepDef("refit", "dihedra.fit_torsion_correction", _refit,
+            keyword_names(fit_torsion_correction, ("result", "universe") + _PIPELINE_OWNED),
+            paths=frozenset({"target"}), specs=frozenset({"relation"}), required=("target",),
+            defaults=signature_defaults(fit_torsion_correction)),
     StepDef("figures", "dihedra.presentation.figures.write_figures", _figures,
             keyword_names(write_figures, ("folder", "out_dir") + _PIPELINE_OWNED),
             defaults=signature_defaults(write_figures)),
