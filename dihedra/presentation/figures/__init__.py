@@ -17,6 +17,9 @@ that ``track``, ``profile``, ``compare``, ``kinetics`` and ``couplings`` wrote.
 7    :func:`plot_lifetimes`                     ``lifetimes.csv`` (+ ``dwell_survival.csv``)
 8    :func:`plot_convergence`                   ``blocks.npz``, ``populations*.csv``
 9    :func:`plot_couplings`                     ``couplings_vs_experiment.csv``
+10   :func:`plot_refit_profile` /               ``refit_profiles.csv`` / ``refit_populations.csv``,
+     :func:`plot_refit_populations`,            ``refit_correction.csv`` (``dihedra refit``)
+     :func:`plot_correction`
 ===  =========================================  ==============================================
 
 :func:`figure_set` decides which figures a folder can make (a figure appears as soon as its data
@@ -36,6 +39,8 @@ Modules
     figures 3, 4 and 5
 ``kinetics``, ``convergence``, ``couplings``
     figures 6 and 7, figure 8, figure 9
+``refit``
+    figure 10 (a fitted torsion correction)
 ``figureset``
     :func:`figure_set`, :func:`write_figures`, :class:`FigureItem`, :class:`FigureSet`
 
@@ -56,6 +61,7 @@ from .kinetics import plot_lifetimes, plot_transition_diagram
 from .maps import plot_free_energy_map
 from .populations import SOURCE_STYLES, comparison_populations, plot_populations
 from .profiles import plot_profile, select_profile
+from .refit import REFIT_STYLES, has_target, plot_correction, plot_refit_populations, plot_refit_profile
 from .style import (ANGLE_LABEL, CYCLIC_PALETTE, DOUBLE_COLUMN_IN, ENERGY_UNIT_LABELS, FORMATS, INK, NEUTRAL,
                     OKABE_ITO, POPULATION_LABEL, SECTOR_ALPHA, SINGLE_COLUMN_IN, STATE_COLOURS, UNDEFINED_COLOUR,
                     UNSAMPLED_COLOUR, WIDTHS, state_colours, style)
@@ -64,11 +70,11 @@ from .timeseries import (AngleSeries, StateRaster, plot_angle_series, plot_state
 
 __all__ = [
     "ANGLE_LABEL", "AngleSeries", "CYCLIC_PALETTE", "DOUBLE_COLUMN_IN", "ENERGY_UNIT_LABELS", "FORMATS",
-    "FigureItem", "FigureSet", "INK", "NEUTRAL", "OKABE_ITO", "POPULATION_LABEL", "RELATION_MARKERS",
+    "FigureItem", "FigureSet", "INK", "NEUTRAL", "OKABE_ITO", "POPULATION_LABEL", "REFIT_STYLES", "RELATION_MARKERS",
     "REPLICA_STYLES", "SECTOR_ALPHA", "SINGLE_COLUMN_IN", "SOURCE_STYLES", "STATE_COLOURS", "StateRaster",
     "UNDEFINED_COLOUR", "UNSAMPLED_COLOUR", "WIDTHS", "comparison_populations", "energy_columns", "figure_set",
-    "plot_angle_series", "plot_convergence", "plot_couplings", "plot_free_energy_map", "plot_lifetimes",
-    "plot_populations", "plot_profile", "plot_state_raster", "plot_transition_diagram", "read_angle_series",
-    "read_state_raster", "safe_name", "sector_spans", "select_profile", "state_colours", "style",
-    "time_scale", "write_figures",
+    "has_target", "plot_angle_series", "plot_convergence", "plot_correction", "plot_couplings",
+    "plot_free_energy_map", "plot_lifetimes", "plot_populations", "plot_profile", "plot_refit_populations",
+    "plot_refit_profile", "plot_state_raster", "plot_transition_diagram", "read_angle_series", "read_state_raster",
+    "safe_name", "sector_spans", "select_profile", "state_colours", "style", "time_scale", "write_figures",
 ]

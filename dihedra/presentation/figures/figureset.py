@@ -24,6 +24,8 @@ from .kinetics import plot_lifetimes, plot_transition_diagram
 from .maps import plot_free_energy_map
 from .populations import comparison_populations, plot_populations
 from .profiles import plot_profile
+from .refit import has_target, plot_correction, plot_refit_populations, plot_refit_profile
+from .common import _as_bool
 from .style import FORMATS, SINGLE_COLUMN_IN, _metadata, _width_in, style
 from .timeseries import plot_angle_series, plot_state_raster, read_angle_series, read_state_raster
 
@@ -126,6 +128,7 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     _add_kinetics(b, chosen_types)
     _add_convergence(b, chosen_types)
     _add_couplings(b)
+    _add_refit(b)
     return b.out
 
 
@@ -279,6 +282,35 @@ def _add_couplings(b):
     plot_couplings(couplings, ax=fig.add_subplot())
     b.add("couplings", "Predicted against experimental 3J couplings with error bars and "
           "the identity line.", fig, "couplings")
+
+
+def _add_refit(b):
+    """10. A fitted torsion correction (drawn only when the folder has the refit outputs): per type,
+    the target against the sampled and reweighted profile (or populations), and the correction."""
+    correction = read_optional(b.folder, "refit_correction.csv")
+    if correction is None or not len(correction):
+        return
+    profiles = read_optional(b.folder, "refit_profiles.csv")
+    populations = read_optional(b.folder, "refit_populations.csv")
+    summary = read_optional(b.folder, "refit_summary.csv")
+    untrusted = summary is not None and len(summary) and not _as_bool(summary["trustworthy"])[0]
+    warn = "NOT TRUSTWORTHY (effective sample fraction too small): " if untrusted else ""
+    for t in dict.fromkeys(correction["type"]):
+        fig = _figure(b.width_in, 3.9)
+        left, right = fig.subplots(2, 1, gridspec_kw={"height_ratios": [1.4, 1.0]})
+        use_pops = (populations is not None and has_target(populations, t, "target_population")
+                    and not (profiles is not None and has_target(profiles, t, "target_free_energy_kj_mol")))
+        if use_pops or profiles is None:
+            plot_refit_populations(populations, t, ax=left, note=warn + t)
+            what = "state populations"
+        else:
+            plot_refit_profile(profiles, t, ax=left, note=warn + t)
+            what = "free-energy profiles"
+        plot_correction(correction, t, ax=right)
+        b.add(f"refit_{safe_name(t)}", f"Torsion correction of {t} fitted by reweighting: target, sampled and "
+              f"reweighted {what} (top) and the correction with its bootstrap band (bottom)."
+              + (" The reweighting is not trustworthy: a new simulation with this correction is needed."
+                 if untrusted else ""), fig, "refit")
 
 
 def write_figures(folder, formats=("pdf", "png"), width="single", torsions=None, types=None, out_dir=None,
