@@ -1,0 +1,530 @@
+"""Torsion corrections fitted by reweighting: known answers from a simulated butane gas, the exports,
+the honest limits, the command, the analysis-file step and the figure.
+
+The known answers come from a united-atom butane gas simulated with OpenMM for the purpose
+(example_trajectories/make_refit_butane.py): the Ryckaert-Bellemans torsion (Ryckaert & Bellemans,
+Faraday Discuss. Chem. Soc. 66 (1978) 95; coefficients as commonly quoted, from memory) plus a known
+extra term dV_true = 2 kJ/mol [1 + cos(phi)]. The molecules do not interact and a torsion angle needs
+no Jacobian, so every torsion samples exactly p ~ exp(-(V_RB + dV_true)/kT); a fit against the exact
+Boltzmann profile or populations of V_RB alone (numerical integration with scipy) must give back
+-dV_true up to a constant: k_1 = 2 kJ/mol at phase 180 deg.
+"""
+
+import json
+import os
+import sys
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate
+
+from dihedra import fit_torsion_correction
+from dihedra.analysis.refit import kish, openmm_xml, read_target, ryckaert_bellemans
+from dihedra.analysis.refit.fit import ReweightingModel, features
+from dihedra.analysis.refit.observables import population_set, profile_set
+from dihedra.analysis.refit.samples import TorsionSamples
+from dihedra.analysis.refit.targets import profile_on_bins
+from dihedra.cli import main
+from dihedra.errors import DihedraError
+from dihedra.selection.schemes import get_scheme
+from dihedra.tracking import track
+from dihedra.units import kt_kj_mol
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+EXAMPLES = os.path.join(HERE, "..", "example_trajectories")
+T = 400.0
+KT = kt_kj_mol(T)
+#: Ryckaert & Bellemans (1978), C0..C5 in kJ/mol, psi = phi - 180 deg (from memory).
+RB = (9.28, 12.16, -13.12, -3.06, 26.24, -31.5)
+#: The extra term of the simulation: (periodicity, k in kJ/mol, phase in deg).
+EXTRA = (1, 2.0, 0.0)
+TYPE = "BUT:C1-C2-C3-C4"
+
+
+def rb_energy(phi_deg):
+    cos_psi = np.cos(np.radians(np.asarray(phi_deg, dtype=float) - 180.0))
+    return sum(c * cos_psi ** n for n, c in enumerate(RB))
+
+
+def periodic(phi_deg, terms):
+    phi = np.radians(np.asarray(phi_deg, dtype=float))
+    return sum(k * (1 + np.cos(n * phi - np.radians(d))) for n, k, d in terms)
+
+
+def boltzmann_populations(energy):
+    """anti (|phi| > 120), gauche+ (0, 120], gauche- [-120, 0) of p ~ exp(-V/kT) (scipy quad)."""
+    def w(x):
+        return np.exp(-energy(x) / KT)
+    part = {arc: integrate.quad(w, *arc, limit=200)[0] for arc in ((-180, -120), (-120, 0), (0, 120), (120, 180))}
+    total = sum(part.values())
+    return {"anti": (part[(-180, -120)] + part[(120, 180)]) / total, "gauche+": part[(0, 120)] / total,
+            "gauche-": part[(-120, 0)] / total}
+
+
+def load_script():
+    sys.path.insert(0, EXAMPLES)
+    try:
+        import make_refit_butane
+    finally:
+        sys.path.remove(EXAMPLES)
+    return make_refit_butane
+
+
+@pytest.fixture(scope="session")
+def gas(tmp_path_factory):
+    """150 butanes, 100 frames 2 ps apart at 400 K with RB + dV_true (about 10 s), tracked with angles."""
+    pytest.importorskip("openmm")
+    script = load_script()
+    folder = tmp_path_factory.mktemp("refit-gas")
+    prefix = str(folder / "butane")
+    script.check_periodic_sign((EXTRA,))
+    script.simulate_butane_with_terms(prefix, n_molecules=150, n_frames=100, frame_interval_ps=2.0, temperature_k=T,
+                                      extra_terms=(EXTRA,))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return track(prefix + ".pdb", [prefix + ".xtc"], torsions="rotatable", keep_angles=True, temperature_k=T,
+                     out=str(folder / "results"))
+
+
+@pytest.fixture(scope="session")
+def targets(tmp_path_factory):
+    """The exact Boltzmann profile (F = V_RB on a 0.5-degree grid) and populations of V_RB at 400 K."""
+    folder = tmp_path_factory.mktemp("refit-targets")
+    grid = np.arange(-180.0, 180.01, 0.5)
+    profile = folder / "rb_profile.csv"
+    pd.DataFrame({"angle_deg": grid, "free_energy_kj_mol": rb_energy(grid)}).to_csv(profile, index=False)
+    exact = boltzmann_populations(rb_energy)
+    pops = folder / "rb_populations.csv"
+    pd.DataFrame({"type": TYPE, "state": list(exact), "population": list(exact.values()),
+                  "population_err": 0.0}).to_csv(pops, index=False)
+    return {"profile": str(profile), "populations": str(pops), "exact": exact}
+
+
+@pytest.fixture(scope="session")
+def profile_fit(gas, targets):
+    return fit_torsion_correction(gas, targets["profile"], n_bootstrap=50)
+
+
+# ------------------------------------------------------------------------------------------------
+# Known answers (the issue's "done when")
+# ------------------------------------------------------------------------------------------------
+
+def test_populations_fit_reweights_onto_the_exact_boltzmann_populations(gas, targets):
+    fit = fit_torsion_correction(gas, targets["populations"], n_bootstrap=30)
+    pops = fit.populations.set_index("state")
+    for state, exact in targets["exact"].items():
+        # the sampled ensemble is far off (the extra term penalises gauche by 3 kJ/mol)...
+        assert abs(pops.loc[state, "sampled_population"] - exact) > 0.03
+        # ...the reweighted one matches the Boltzmann integral of V_RB within 0.01
+        assert abs(pops.loc[state, "reweighted_population"] - exact) < 0.01
+    s = fit.summary.iloc[0]
+    # Kish's effective sample fraction, recomputed here from its definition on the fitted weights
+    assert 0.5 < s["effective_sample_fraction"] <= 1.0 and s["trustworthy"]
+    assert s["effective_sample_fraction_err"] > 0
+    assert any("populations alone under-determine" in n for n in fit.notices)
+    assert s["effective_parameters"] < s["n_coefficients"] - 1
+
+
+def test_profile_fit_recovers_the_extra_term(profile_fit):
+    terms = profile_fit.terms.set_index("n")
+    k1, err = terms.loc[1, "k_kj_mol"], terms.loc[1, "k_err_kj_mol"]
+    # -dV_true = -2 (1 + cos phi) = 2 (1 + cos(phi - 180)) - 4: k_1 = 2 kJ/mol, phase 180 deg
+    assert abs(k1 - EXTRA[1]) <= 2 * err and err < 0.3
+    dphase = (terms.loc[1, "phase_deg"] - 180.0 + 180.0) % 360.0 - 180.0
+    assert abs(dphase) <= 3 * terms.loc[1, "phase_err_deg"] + 1.0
+    # the curve is -dV_true up to a constant where the run sampled (|phi| >= 60 deg)
+    curve = profile_fit.correction
+    x = curve["angle_deg"].to_numpy()
+    use = np.abs(x) >= 60
+    truth = -periodic(x, [EXTRA])
+    diff = curve["delta_v_kj_mol"].to_numpy()[use] - truth[use]
+    diff -= diff.mean()
+    assert np.all(np.abs(diff) <= 3 * curve["delta_v_err_kj_mol"].to_numpy()[use] + 0.1)
+    s = profile_fit.summary.iloc[0]
+    assert s["chi_square_reweighted"] < 2.0 < s["chi_square_sampled"]
+
+
+def test_reweighted_populations_are_the_boltzmann_populations_of_the_corrected_potential(profile_fit):
+    terms = profile_fit.terms
+    fitted = [(int(r.n), r.k_kj_mol, r.phase_deg) for r in terms.itertuples()]
+    analytic = boltzmann_populations(lambda x: rb_energy(x) + periodic(x, [EXTRA]) + periodic(x, fitted))
+    pops = profile_fit.populations.set_index("state")
+    for state, value in analytic.items():
+        assert abs(pops.loc[state, "reweighted_population"] - value) < 0.01
+
+
+def test_the_target_beyond_the_sampled_range_is_reported(profile_fit):
+    # the syn barrier of V_RB (45 kJ/mol, 13 kT at 400 K) is never crossed
+    note = [n for n in profile_fit.notices if "did not sample enough" in n]
+    assert note and "+0 " not in note[0] and "deg" in note[0]
+    rows = profile_fit.profiles
+    near_syn = rows[np.abs(rows["angle_deg"]) < 20]
+    assert not near_syn["fitted"].any() and np.isfinite(near_syn["target_free_energy_kj_mol"]).all()
+
+
+# ------------------------------------------------------------------------------------------------
+# Honest limits
+# ------------------------------------------------------------------------------------------------
+
+def test_weights_per_frame_collapse_and_the_fit_says_a_new_simulation_is_needed(gas, targets):
+    # one weight for 150 molecules at once: the Boltzmann factor of 150 corrections
+    fit = fit_torsion_correction(gas, targets["populations"], weights_per="frame", n_bootstrap=10)
+    s = fit.summary.iloc[0]
+    assert s["effective_sample_fraction"] < 0.1 and not s["trustworthy"] and not fit.trustworthy
+    assert fit.notices[0].startswith("NOT TRUSTWORTHY") and "a new simulation with this correction is needed" in \
+        fit.notices[0]
+    assert "NOT TRUSTWORTHY" in fit.openmm_xml
+
+
+def test_a_target_far_from_the_sample_is_not_trustworthy(gas, tmp_path):
+    # a target whose minima are the sampled barriers (V_RB + 15 (1 - cos 3 phi)): the weight goes to
+    # the few frames that crossed them
+    grid = np.arange(-180.0, 180.01, 1.0)
+    far = tmp_path / "far.csv"
+    pd.DataFrame({"angle_deg": grid, "free_energy_kj_mol": rb_energy(grid) + periodic(grid, [(3, 15.0, 180.0)])}
+                 ).to_csv(far, index=False)
+    fit = fit_torsion_correction(gas, str(far), n_bootstrap=10)
+    s = fit.summary.iloc[0]
+    assert s["effective_sample_fraction"] < 0.1 and not fit.trustworthy
+    assert s["effective_sample_fraction"] == pytest.approx(s["n_effective_reweighted"] / s["n_effective_sampled"])
+    assert fit.notices[0].startswith("NOT TRUSTWORTHY")
+
+
+def test_the_angle_series_is_required(targets):
+    res = track(os.path.join(EXAMPLES, "butane_rb.pdb"), [os.path.join(EXAMPLES, "butane_rb.xtc")],
+                torsions="rotatable", stop=50, temperature_k=298.15)
+    with pytest.raises(DihedraError, match="keep_angles"):
+        fit_torsion_correction(res, targets["populations"])
+
+
+# ------------------------------------------------------------------------------------------------
+# Coupled torsions: liquid n-hexane (the bundled example), three torsion types per molecule
+# ------------------------------------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def hexane():
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return track(os.path.join(EXAMPLES, "hexane.pdb"), [os.path.join(EXAMPLES, "hexane.xtc")],
+                     torsions="rotatable", keep_angles=True, temperature_k=298.15, stop=300)
+
+
+def test_coupled_types_are_fitted_together_with_one_weight_per_molecule(hexane, tmp_path):
+    types = list(dict.fromkeys(hexane.torsion_set.types))
+    assert len(types) == 3
+    goal = {t: ([0.62, 0.19, 0.19] if "C2-C3-C4-C5" in t else [0.66, 0.17, 0.17]) for t in types}
+    path = tmp_path / "hexane_target.csv"
+    pd.DataFrame([{"type": t, "state": s, "population": p, "population_err": 0.005}
+                  for t in types for s, p in zip(["anti", "gauche+", "gauche-"], goal[t])]).to_csv(path, index=False)
+    fit = fit_torsion_correction(hexane, str(path), n_bootstrap=5)
+    pops = fit.populations
+    assert np.abs(pops["reweighted_population"] - pops["target_population"]).max() < 0.01
+    # the same numbers by hand: one weight per molecule, exp(-(sum of the corrections of its three
+    # torsions)/kT) (independent of the package's sparse sums)
+    angles = hexane.angles()
+    terms = {t: [(int(r.n), r.k_kj_mol, r.phase_deg) for r in fit.terms[fit.terms["type"] == t].itertuples()]
+             for t in types}
+    labels = hexane.torsion_set.labels
+    kt = kt_kj_mol(298.15)
+    energy = np.zeros((len(angles), 100))
+    for k, (label, ttype) in enumerate(zip(labels, hexane.torsion_set.types)):
+        energy[:, k // 3] += periodic(angles[label].to_numpy(float), terms[ttype])
+    w = np.exp(-(energy - energy.min()) / kt)
+    for t in types:
+        anti = sum((np.abs(angles[lab].to_numpy()) > 120) * w[:, k // 3]
+                   for k, lab in enumerate(labels) if hexane.torsion_set.types[k] == t)
+        expected = anti.sum() / (3 * 0 + w.sum())
+        row = pops[(pops["type"] == t) & (pops["state"] == "anti")].iloc[0]
+        assert row["reweighted_population"] == pytest.approx(expected, abs=1e-9)
+
+
+def test_a_corrected_type_without_a_target_is_named(hexane, tmp_path):
+    types = list(dict.fromkeys(hexane.torsion_set.types))
+    inner = next(t for t in types if "C2-C3-C4-C5" in t)
+    path = tmp_path / "inner.csv"
+    pd.DataFrame({"type": inner, "state": ["anti", "gauche+", "gauche-"], "population": [0.6, 0.2, 0.2],
+                  "population_err": 0.01}).to_csv(path, index=False)
+    fit = fit_torsion_correction(hexane, str(path), types=types, n_bootstrap=5)
+    notes = [n for n in fit.notices if "has no target" in n]
+    assert len(notes) == 2 and all("give it a target" in n for n in notes)
+    only = fit_torsion_correction(hexane, str(path), n_bootstrap=5)
+    assert only.parameters["types"] == [inner] and not any("has no target" in n for n in only.notices)
+
+
+# ------------------------------------------------------------------------------------------------
+# Exports
+# ------------------------------------------------------------------------------------------------
+
+def test_ryckaert_bellemans_form_equals_the_fourier_series():
+    # identity cos(n phi) = T_n(cos phi) with cos(phi) = -cos(psi), psi = phi - 180 (common practice)
+    rng = np.random.default_rng(3)
+    a = rng.normal(size=5)
+    c = ryckaert_bellemans(a, constant=0.7)
+    phi = np.linspace(-180, 180, 721)
+    fourier = 0.7 + sum(an * np.cos((n + 1) * np.radians(phi)) for n, an in enumerate(a))
+    cos_psi = np.cos(np.radians(phi - 180.0))
+    rb = sum(cm * cos_psi ** m for m, cm in enumerate(c))
+    assert np.allclose(rb, fourier, atol=1e-12)
+    with pytest.raises(DihedraError, match="at most 5"):
+        ryckaert_bellemans(np.ones(6))
+
+
+def test_symmetric_fit_has_a_ryckaert_bellemans_form_equal_to_its_terms(gas, targets):
+    fit = fit_torsion_correction(gas, targets["profile"], symmetric=True, n_bootstrap=10)
+    assert set(fit.terms["phase_deg"].round(6) % 180.0) == {0.0}
+    c = fit.ryckaert_bellemans.sort_values("power")["coefficient_kj_mol"].to_numpy()
+    phi = np.linspace(-180, 180, 361)
+    terms = [(int(r.n), r.k_kj_mol, r.phase_deg) for r in fit.terms.itertuples()]
+    rb = sum(cm * np.cos(np.radians(phi - 180.0)) ** m for m, cm in enumerate(c))
+    assert np.allclose(rb, periodic(phi, terms), atol=1e-9)
+
+
+BASE_FORCEFIELD = """<ForceField>
+ <AtomTypes>
+  <Type name="CH3" class="CH3" element="C" mass="15.035"/>
+  <Type name="CH2" class="CH2" element="C" mass="14.027"/>
+ </AtomTypes>
+ <Residues>
+  <Residue name="BUT">
+   <Atom name="C1" type="CH3"/><Atom name="C2" type="CH2"/><Atom name="C3" type="CH2"/><Atom name="C4" type="CH3"/>
+   <Bond atomName1="C1" atomName2="C2"/><Bond atomName1="C2" atomName2="C3"/><Bond atomName1="C3" atomName2="C4"/>
+  </Residue>
+ </Residues>
+ <RBTorsionForce>
+  <Proper class1="CH3" class2="CH2" class3="CH2" class4="CH3" c0="9.28" c1="12.16" c2="-13.12" c3="-3.06"
+          c4="26.24" c5="-31.5"/>
+ </RBTorsionForce>
+</ForceField>
+"""
+
+
+def correction_system(fragment_path, tmp_path, n_molecules=1):
+    """An OpenMM system made by ForceField from a united-atom butane file plus the fragment."""
+    from openmm.app import ForceField
+
+    script = load_script()
+    base = tmp_path / "butane_ua.xml"
+    base.write_text(BASE_FORCEFIELD)
+    topology = script.me.build_topology(n_molecules, 4, "BUT", 3.0)
+    return ForceField(str(base), fragment_path).createSystem(topology)
+
+
+def test_the_openmm_fragment_loads_and_adds_the_correction(profile_fit, tmp_path):
+    openmm = pytest.importorskip("openmm")
+    fragment = tmp_path / "refit_openmm.xml"
+    xml = openmm_xml(
+        profile_fit.terms, {TYPE: ("BUT", ["C1", "C2", "C3", "C4"])},
+        atom_classes={"C1": "CH3", "C2": "CH2", "C3": "CH2", "C4": "CH3"})
+    fragment.write_text(xml)
+    openmm.app.ForceField(str(fragment))   # loads on its own
+    system = correction_system(str(fragment), tmp_path)
+    forces = {type(f).__name__: f for f in system.getForces()}
+    assert {"RBTorsionForce", "PeriodicTorsionForce"} <= set(forces)
+    forces["PeriodicTorsionForce"].setForceGroup(1)
+    script = load_script()
+    terms = [(int(r.n), r.k_kj_mol, r.phase_deg) for r in profile_fit.terms.itertuples()]
+    for phi in (180.0, 60.0, -60.0, 0.0, 120.0, -100.0):
+        ctx = openmm.Context(system, openmm.VerletIntegrator(0.001), openmm.Platform.getPlatformByName("Reference"))
+        ctx.setPositions(script.me.chain_coordinates(4, 0.154, 114.0, [phi]))
+        energy = ctx.getState(getEnergy=True, groups={1}).getPotentialEnergy()._value
+        assert energy == pytest.approx(float(periodic(phi, terms)), abs=1e-6)
+        del ctx
+
+
+def test_saved_files_have_units_in_their_columns(profile_fit, tmp_path):
+    paths = profile_fit.save(str(tmp_path))
+    names = {os.path.basename(p) for p in paths}
+    assert {"refit_terms.csv", "refit_fourier.csv", "refit_correction.csv", "refit_populations.csv",
+            "refit_profiles.csv", "refit_summary.csv", "refit_cross_validation.csv", "refit_openmm.xml",
+            "refit.json"} <= names
+    terms = pd.read_csv(tmp_path / "refit_terms.csv")
+    assert list(terms.columns) == ["type", "n", "k_kj_mol", "k_err_kj_mol", "phase_deg", "phase_err_deg"]
+    assert list(pd.read_csv(tmp_path / "refit_correction.csv").columns) == [
+        "type", "angle_deg", "delta_v_kj_mol", "delta_v_err_kj_mol"]
+    info = json.loads((tmp_path / "refit.json").read_text())
+    assert any("Cesari" in r for r in info["references"]) and any("Kish" in r for r in info["references"])
+    cv = pd.read_csv(tmp_path / "refit_cross_validation.csv")
+    assert cv["chosen"].sum() == 1
+
+
+# ------------------------------------------------------------------------------------------------
+# The pieces, against definitions
+# ------------------------------------------------------------------------------------------------
+
+def synthetic_samples(n_mol=40, n_frames=200, seed=0):
+    rng = np.random.default_rng(seed)
+    angles = rng.uniform(-180, 180, size=(n_mol, n_frames)).astype(np.float32)
+    return TorsionSamples(labels=[f"M{i}:A" for i in range(n_mol)], types=["T"] * n_mol, type_names=["T"],
+                          type_index=np.zeros(n_mol, int), molecule=np.arange(n_mol), angles=angles,
+                          replica=np.zeros(n_frames, int), position=np.arange(n_frames),
+                          frame_weight=np.ones(n_frames), weights_per="molecule")
+
+
+def test_analytic_jacobian_equals_finite_differences():
+    # central differences (common practice) of the residuals of a population and a profile target
+    samples = synthetic_samples()
+    pops = population_set(samples, get_scheme("anti-gauche"))
+    pops.target[:] = [0.5, 0.3, 0.2]
+    pops.target_err[:] = 0.01
+    pops.fitted[:] = True
+    prof = profile_set(samples, 30.0, KT)
+    prof.target[:] = np.cos(np.radians(prof.rows["angle_deg"].to_numpy()))
+    prof.target_err[:] = 0.1
+    prof.fitted[:] = True
+    model = ReweightingModel(features(samples, 2), samples.sample_weights(), [pops, prof], KT)
+    sig = [np.full(len(pops), 0.02), np.full(len(prof), 0.2)]
+    theta = np.array([0.3, -0.2, 0.5, 0.1])
+    _, jac = model._residuals(theta, None, sig, 0.1, True)
+    h = 1e-6
+    num = np.column_stack([(model._residuals(theta + h * e, None, sig, 0.1, False)[0]
+                            - model._residuals(theta - h * e, None, sig, 0.1, False)[0]) / (2 * h)
+                           for e in np.eye(4)])
+    assert np.allclose(jac, num, atol=1e-6)
+
+
+def test_kish_effective_sample_size():
+    # Kish, Survey Sampling (1965): (sum w)^2 / sum w^2; n equal weights give n
+    assert kish(np.ones(10)) == pytest.approx(10.0)
+    assert kish([1.0, 0.0, 0.0]) == pytest.approx(1.0)
+    assert kish([3.0, 1.0]) == pytest.approx(16.0 / 10.0)
+
+
+def test_observables_reproduce_plain_counts():
+    samples = synthetic_samples()
+    pops = population_set(samples, get_scheme("anti-gauche"))
+    model = ReweightingModel(features(samples, 1), samples.sample_weights(), [pops], KT)
+    (values, _), = model.values(model.weights(np.zeros(2)))
+    a = samples.angles.ravel()
+    assert values[0] == pytest.approx(np.mean(np.abs(a) > 120))
+    assert values[1] == pytest.approx(np.mean((a > 0) & (a <= 120)))
+
+
+def test_profile_target_on_bins_is_the_boltzmann_bin_average():
+    # bin average of exp(-V/kT) by scipy quad against the trapezoid average of a 0.1-degree grid
+    grid = np.arange(-180.0, 180.001, 0.1)
+    table = pd.DataFrame({"angle_deg": grid, "free_energy_kj_mol": rb_energy(grid), "free_energy_err_kj_mol": 0.0})
+    edges = np.linspace(-180, 180, 37)
+    f, _ = profile_on_bins(table, edges, KT)
+    exact = [-KT * np.log(integrate.quad(lambda x: np.exp(-rb_energy(x) / KT), a, b)[0] / (b - a))
+             for a, b in zip(edges[:-1], edges[1:])]
+    assert np.allclose(f, exact, atol=2e-3)
+
+
+def test_target_kinds_are_told_from_their_columns(tmp_path):
+    (tmp_path / "p.csv").write_text("angle_deg,free_energy_kcal_mol\n-60,1\n180,0\n")
+    target = read_target(str(tmp_path / "p.csv"))
+    assert target.kind == "profile" and target.table["free_energy_kj_mol"].tolist() == [4.184, 0.0]
+    (tmp_path / "s.csv").write_text("type,state,population\nX,anti,0.7\n")
+    assert read_target(str(tmp_path / "s.csv")).kind == "populations"
+    (tmp_path / "j.csv").write_text("torsion,J_hz,J_err_hz\nALA2:phi,7.1,0.3\n")
+    assert read_target(str(tmp_path / "j.csv")).kind == "couplings"
+    (tmp_path / "x.csv").write_text("a,b\n1,2\n")
+    with pytest.raises(DihedraError, match="cannot tell what kind of target"):
+        read_target(str(tmp_path / "x.csv"))
+
+
+# ------------------------------------------------------------------------------------------------
+# Couplings as a target
+# ------------------------------------------------------------------------------------------------
+
+def test_couplings_target_through_a_karplus_relation(gas, tmp_path):
+    from dihedra.analysis.couplings import get_relation
+
+    rel = get_relation("karplus-1959")
+    # the relation averaged over the exact Boltzmann distribution of V_RB (scipy quad): the target
+    num = integrate.quad(lambda x: rel.evaluate(x) * np.exp(-rb_energy(x) / KT), -180, 180, limit=200)[0]
+    den = integrate.quad(lambda x: np.exp(-rb_energy(x) / KT), -180, 180, limit=200)[0]
+    path = tmp_path / "j.csv"
+    pd.DataFrame({"torsion": [TYPE], "J_hz": [num / den], "J_err_hz": [0.05]}).to_csv(path, index=False)
+    with pytest.raises(DihedraError, match="Karplus relation"):
+        fit_torsion_correction(gas, str(path), n_bootstrap=5)
+    fit = fit_torsion_correction(gas, str(path), relation="karplus-1959", n_bootstrap=10)
+    row = fit.couplings.iloc[0]
+    assert abs(row["sampled_j_hz"] - num / den) > 0.1          # the extra term moves <J>
+    assert abs(row["reweighted_j_hz"] - num / den) < 0.05       # reweighted onto the target
+    assert any("no systematic spread" in n for n in fit.notices)
+
+
+# ------------------------------------------------------------------------------------------------
+# Command line, analysis file, figure
+# ------------------------------------------------------------------------------------------------
+
+def test_cli_refit_writes_the_files_and_prints_a_summary(gas, targets, capsys):
+    status = main(["refit", gas.folder, "--target", targets["profile"], "--temperature", "400", "--bootstrap", "10",
+                   "--atom-classes", "C1=CH3,C2=CH2,C3=CH2,C4=CH3"])
+    out = capsys.readouterr()
+    assert status == 0
+    assert "effective sample fraction (Kish)" in out.out and "k =" in out.out
+    assert os.path.exists(os.path.join(gas.folder, "refit_openmm.xml"))
+    assert 'class1="CH3"' in open(os.path.join(gas.folder, "refit_openmm.xml")).read()
+
+
+def test_cli_refit_errors_are_one_line(gas, tmp_path, capsys):
+    bad = tmp_path / "bad.csv"
+    bad.write_text("a,b\n1,2\n")
+    assert main(["refit", gas.folder, "--target", str(bad)]) == 2
+    assert main(["refit", gas.folder, "--target", str(tmp_path / "missing.csv")]) == 2
+    assert main(["refit", gas.folder, "--target", str(bad), "--atom-classes", "C1"]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and err.count("dihedra: error:") == 3
+
+
+def test_refit_step_keys_are_the_keyword_arguments_and_it_runs(gas, targets, tmp_path):
+    import inspect
+
+    from dihedra.pipeline import STEPS, load_pipeline, run_pipeline
+
+    expected = set(inspect.signature(fit_torsion_correction).parameters) - {"result", "log", "universe"}
+    assert set(STEPS["refit"].keys) == expected
+    toml = tmp_path / "a.toml"
+    toml.write_text(f'out = "{gas.folder}"\nsteps = ["refit"]\n[refit]\ntarget = "{targets["populations"]}"\n'
+                    "n_bootstrap = 5\nterms = 2\n")
+    run_pipeline(load_pipeline(str(toml)))
+    assert pd.read_csv(os.path.join(gas.folder, "refit_terms.csv"))["n"].tolist() == [1, 2]
+
+
+def test_figure_set_draws_the_refit_figure(profile_fit, gas, tmp_path):
+    from dihedra.presentation import figures
+
+    profile_fit.save(gas.folder)
+    with figures.style():
+        fset = figures.figure_set(gas.folder)
+        items = [i for i in fset.items if i.kind == "refit"]
+        assert [i.name for i in items] == ["refit_BUT_C1-C2-C3-C4"]
+        ax = figures.plot_refit_populations(profile_fit.populations, TYPE)
+        assert ax.get_ylabel() == figures.POPULATION_LABEL
+        ax = figures.plot_correction(profile_fit.correction, TYPE)
+        assert "kJ" in ax.get_ylabel()
+
+
+# ------------------------------------------------------------------------------------------------
+# The real test of a correction: a new simulation with it
+# ------------------------------------------------------------------------------------------------
+
+@pytest.mark.slow
+def test_a_new_simulation_with_the_fitted_correction_moves_the_populations_to_the_target(profile_fit, targets,
+                                                                                         tmp_path):
+    openmm = pytest.importorskip("openmm")
+    script = load_script()
+    fragment = tmp_path / "refit_openmm.xml"
+    fragment.write_text(openmm_xml(
+        profile_fit.terms, {TYPE: ("BUT", ["C1", "C2", "C3", "C4"])},
+        atom_classes={"C1": "CH3", "C2": "CH2", "C3": "CH2", "C4": "CH3"}))
+    n = 150
+    made = correction_system(str(fragment), tmp_path, n_molecules=n)
+    force = next(f for f in made.getForces() if isinstance(f, openmm.PeriodicTorsionForce))
+    copy = openmm.XmlSerializer.serialize(force)
+    prefix = str(tmp_path / "corrected")
+    # start from the equilibrium of the uncorrected potential: the dynamics must move the populations
+    script.simulate_butane_with_terms(prefix, n_molecules=n, n_frames=100, frame_interval_ps=2.0, temperature_k=T,
+                                      extra_terms=(EXTRA,), more_forces=[lambda quads: openmm.XmlSerializer
+                                                                         .deserialize(copy)],
+                                      start_potential=lambda x: rb_energy(x) + periodic(x, [EXTRA]),
+                                      equilibration_ps=20.0, seed=11)
+    phi, _, _ = script.me.read_chain_torsions(prefix + ".pdb", prefix + ".xtc", 4)
+    anti = float(np.mean(np.abs(phi) > 120))
+    before = profile_fit.populations.set_index("state").loc["anti", "sampled_population"]
+    target = targets["exact"]["anti"]
+    assert abs(anti - target) < 0.02 and abs(anti - target) < abs(before - target) / 4
