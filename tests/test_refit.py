@@ -164,6 +164,20 @@ def test_the_target_beyond_the_sampled_range_is_reported(profile_fit):
     assert not near_syn["fitted"].any() and np.isfinite(near_syn["target_free_energy_kj_mol"]).all()
 
 
+def test_a_run_reweighted_onto_its_own_profile_needs_no_correction(gas, tmp_path):
+    # the target is another results folder (its profiles.csv): here the run's own profile, so the
+    # correction must vanish within its errors (every cosine and sine coefficient within 3 errors of 0)
+    from dihedra import free_energy_profiles
+
+    folder = tmp_path / "own"
+    free_energy_profiles(gas, temperature_k=T, per_torsion=False, n_bootstrap=20).save(str(folder))
+    fit = fit_torsion_correction(gas, str(folder), n_bootstrap=20)
+    terms = fit.terms
+    for part in ("cos", "sin"):
+        assert np.all(np.abs(terms[f"{part}_kj_mol"]) <= 3 * terms[f"{part}_err_kj_mol"])
+    assert fit.summary.iloc[0]["effective_sample_fraction"] > 0.95
+
+
 # ------------------------------------------------------------------------------------------------
 # Honest limits
 # ------------------------------------------------------------------------------------------------
