@@ -182,6 +182,17 @@ def test_a_run_reweighted_onto_its_own_profile_needs_no_correction(gas, tmp_path
 # Honest limits
 # ------------------------------------------------------------------------------------------------
 
+def test_without_the_topology_residues_are_the_molecules(gas, targets):
+    import copy
+
+    moved = copy.copy(gas)
+    moved.summary = {**gas.summary, "topology": {"path": "/nonexistent/butane.pdb"}}
+    fit = fit_torsion_correction(moved, targets["populations"], n_bootstrap=5)
+    assert any("each residue was taken as one molecule" in n for n in fit.notices)
+    assert fit.summary.iloc[0]["n_samples"] == 150 * 100   # one residue per butane here
+
+
+
 def test_weights_per_frame_collapse_and_the_fit_says_a_new_simulation_is_needed(gas, targets):
     # one weight for 150 molecules at once: the Boltzmann factor of 150 corrections
     fit = fit_torsion_correction(gas, targets["populations"], weights_per="frame", n_bootstrap=10)
