@@ -178,27 +178,35 @@ def _chosen_types(result, tgt, types):
     return chosen
 
 
+def _whole_number(name, value, low, what, high=None):
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low or (high and value > high):
+        span = f"from {low} to {high}" if high else f"of at least {low}"
+        raise DihedraError(f"{name} must be a whole number {span} {what}; got {value!r}.")
+
+
+def _number(name, value, ok, what):
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = np.nan
+    if not (np.isfinite(number) and ok(number)):
+        raise DihedraError(f"{name} must be {what}; got {value!r}.")
+    return number
+
+
 def _check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
                    regularisation):
-    if isinstance(terms, bool) or not isinstance(terms, (int, np.integer)) or not 1 <= terms <= 12:
-        raise DihedraError(f"terms must be a whole number of Fourier terms from 1 to 12 (3 or 6 are usual); got "
-                           f"{terms!r}.")
-    if isinstance(n_bootstrap, bool) or not isinstance(n_bootstrap, (int, np.integer)) or n_bootstrap < 2:
-        raise DihedraError(f"n_bootstrap must be a whole number of at least 2 resamples; got {n_bootstrap!r}.")
-    if isinstance(n_blocks, bool) or not isinstance(n_blocks, (int, np.integer)) or n_blocks < 2:
-        raise DihedraError(f"n_blocks must be a whole number of at least 2 blocks per replica; got {n_blocks!r}.")
-    if isinstance(n_folds, bool) or not isinstance(n_folds, (int, np.integer)) or n_folds < 2:
-        raise DihedraError(f"n_folds must be a whole number of at least 2 pieces per replica; got {n_folds!r}.")
-    if isinstance(min_samples, bool) or not isinstance(min_samples, (int, np.integer)) or min_samples < 1:
-        raise DihedraError(f"min_samples must be a whole number of at least 1 torsion-frame; got {min_samples!r}.")
-    width = float(bin_width_deg)
-    if not (0 < width <= 90) or abs(360.0 / width - round(360.0 / width)) > 1e-9:
-        raise DihedraError(f"bin_width_deg must divide 360 and be at most 90 degrees; got {bin_width_deg!r}.")
-    if not 0 <= float(min_effective_fraction) < 1:
-        raise DihedraError(f"min_effective_fraction must be a fraction in [0, 1); got {min_effective_fraction!r}.")
-    if regularisation is not None and not (np.isfinite(float(regularisation)) and float(regularisation) >= 0):
-        raise DihedraError(f"regularisation must be a non-negative number (or None: chosen by cross-validation); got "
-                           f"{regularisation!r}.")
+    _whole_number("terms", terms, 1, "(Fourier terms; 3 or 6 are usual)", high=12)
+    _whole_number("n_bootstrap", n_bootstrap, 2, "resamples")
+    _whole_number("n_blocks", n_blocks, 2, "blocks per replica")
+    _whole_number("n_folds", n_folds, 2, "pieces per replica")
+    _whole_number("min_samples", min_samples, 1, "torsion-frames")
+    _number("bin_width_deg", bin_width_deg, lambda w: 0 < w <= 90 and abs(360.0 / w - round(360.0 / w)) < 1e-9,
+            "a bin width in degrees that divides 360, at most 90")
+    _number("min_effective_fraction", min_effective_fraction, lambda f: 0 <= f < 1, "a fraction in [0, 1)")
+    if regularisation is not None:
+        _number("regularisation", regularisation, lambda x: x >= 0,
+                "a non-negative number (or None: chosen by cross-validation)")
 
 
 def _observable_sets(samples, result, positions, tgt, relation, kt, bin_width_deg, min_samples, universe, notices):

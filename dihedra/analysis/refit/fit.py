@@ -47,6 +47,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ...errors import DihedraError
+
 #: The ridge strengths tried by cross-validation (dimensionless: penalty per (coefficient / kT)^2
 #: against the chi-square per observable; at 1, a coefficient of 1 kT costs as much as every
 #: observable one standard error off target, the strongest that still lets a correction of a few
@@ -308,14 +310,18 @@ def cross_validate(model, sampled_sd, folds, grid=REGULARISATION_GRID):
     chosen : float
         The strength with the lowest mean score (ties: the strongest).
     """
-    k = int(folds.max()) + 1
+    present = np.unique(folds)
+    k = len(present)
+    if k < 2:
+        raise DihedraError("the run is too short to cross-validate the regularisation (fewer than two pieces); give "
+                           "the regularisation (regularisation=X / --regularisation X).")
     train_sigma = combined_sigmas(model, sampled_sd, k / (k - 1))
     test_sigma = combined_sigmas(model, sampled_sd, float(k))
-    rows, starts = [], [None] * k
+    rows, starts = [], {}
     for lam in sorted(grid):
         scores = []
-        for f in range(k):
-            theta = model.fit(lam, train_sigma, (folds != f).astype(float), starts[f])
+        for f in present:
+            theta = model.fit(lam, train_sigma, (folds != f).astype(float), starts.get(f))
             starts[f] = theta
             scores.append(model.score(theta, (folds == f).astype(float), test_sigma))
         rows.append({"regularisation": lam, "cv_score": float(np.mean(scores)),
