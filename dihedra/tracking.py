@@ -227,7 +227,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
             run.add_pass(tp)
             _run_pass(tp, traj, int(fr[0]) if drop[r] else start, stop, step, backend, n_workers, progress, r,
                       len(universes))
-            replicas.append(replica_info(u, traj, fr, tp, dt_ps))
+            replicas.append(replica_info(u, traj, fr, tp, dt_ps, run.notices))
         params = dict(start=start, stop=stop, step=step, workers=n_workers, threads=int(run.passes[0].threads),
                       backend=backend if isinstance(backend, str) else type(backend).__name__,
                       scheduler=None if scheduler is None else str(backend.client.scheduler.address),

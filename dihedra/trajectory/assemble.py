@@ -120,12 +120,18 @@ def assemble_result(tset, scheme, universe, notices, blocks):
                        conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
 
 
-def replica_info(universe, traj, frames, tp, dt_ps):
+def replica_info(universe, traj, frames, tp, dt_ps, notices=None):
+    """What the summary records of one replica: file, frames, and the time step with its source.
+
+    A time step is known when ``dt_ps`` is given or when the trajectory stores one that is finite,
+    positive and the same between all analysed frames; otherwise ``time_step_known`` is false (and
+    a sentence saying why goes to ``notices``): every time-based output then needs ``--dt-ps``."""
     reader = universe.trajectory
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         dt = reader.dt
     no_dt = any("dt information" in str(w.message) for w in caught)
+    step = int(frames[1] - frames[0]) if len(frames) > 1 else 1
     if dt_ps is not None:
         source = "--dt-ps"
         dt_used = float(dt_ps)
@@ -133,22 +139,47 @@ def replica_info(universe, traj, frames, tp, dt_ps):
         source = NO_TIME_STEP
         dt_used = float(dt)
     else:
-        source = "trajectory"
         dt_used = float(dt)
+        problem = time_step_problem(dt_used, tp.times)
+        source = "trajectory" if problem is None else f"unknown ({problem})"
+    known = source in ("--dt-ps", "trajectory")
+    if not known and notices is not None:
+        name = os.path.basename(str(traj)) if traj else "the trajectory"
+        notices.append(f"{name}: time step unknown ({source.partition('(')[2].rstrip(')')}); times are not "
+                       "physical, and kinetics and time axes need --dt-ps PS (the time between stored frames).")
     return {
         "trajectory": os.path.abspath(traj) if traj else None,
         "n_frames_in_file": int(reader.n_frames),
         "frames_analysed": int(len(frames)),
         "first_frame": int(frames[0]),
         "last_frame": int(frames[-1]),
-        "frame_step": int(frames[1] - frames[0]) if len(frames) > 1 else 1,
+        "frame_step": step,
         "time_step_ps": dt_used,
-        "time_between_analysed_frames_ps": dt_used * (int(frames[1] - frames[0]) if len(frames) > 1 else 1),
+        "time_between_analysed_frames_ps": dt_used * step,
         "time_step_source": source,
-        "time_step_known": source != NO_TIME_STEP,
+        "time_step_known": known,
         "first_time_ps": float(tp.times[0]) if len(tp.times) else None,
         "last_time_ps": float(tp.times[-1]) if len(tp.times) else None,
     }
+
+
+def time_step_problem(dt, times, rtol=1e-3):
+    """Why a stored time step cannot be used (``None`` if it can): zero, negative or not finite,
+    or times between the analysed frames that are not all equal (to ``rtol``; float32 times of
+    XTC files differ in their last digits).
+
+    >>> time_step_problem(0.0, [0.0, 0.0]) is not None, time_step_problem(2.0, [0.0, 2.0, 4.0])
+    (True, None)
+    >>> time_step_problem(1.0, [0.0, 1.0, 5.0])
+    'the times between frames vary from 1 to 4 ps'
+    """
+    if not np.isfinite(dt) or dt <= 0:
+        return f"the trajectory stores a time step of {dt:g} ps"
+    gaps = np.diff(np.asarray(times, dtype=float))
+    if len(gaps) and (not np.all(np.isfinite(gaps)) or np.ptp(gaps) > rtol * np.max(np.abs(gaps))
+                      or np.min(gaps) <= 0):
+        return f"the times between frames vary from {np.min(gaps):g} to {np.max(gaps):g} ps"
+    return None
 
 
 def pass_threads(threads, backend):

@@ -194,7 +194,8 @@ class TorsionStates(TorsionPass):
         blocks = block_sums([self])
         result = assemble_result(self.torsion_set, self.scheme, self._universe, notices, blocks)
         reader = self._universe.trajectory
-        info = replica_info(self._universe, getattr(reader, "filename", None), self.frames, self, self.dt_ps)
+        info = replica_info(self._universe, getattr(reader, "filename", None), self.frames, self, self.dt_ps,
+                            notices)
         params = dict(self._range, workers=None, threads=int(self.threads), keep_angles=self.keep_angles,
                       weights="array" if self.weights is not None else None, weights_column=None, dt_ps=self.dt_ps,
                       n_state_blocks=self.n_state_blocks, n_hist_blocks=self.n_hist_blocks,

@@ -103,9 +103,10 @@ def frame_interval_ps(summary, dt_ps=None):
     else:
         unknown = [k for k, r in enumerate(reps) if not r.get("time_step_known", False)]
         if unknown:
-            raise DihedraError(f"the trajectory of replica {unknown[0]} ({reps[unknown[0]]['trajectory']}) "
-                               "stores no usable time step; give the time between stored frames with "
-                               "--dt-ps PS.")
+            rep = reps[unknown[0]]
+            why = str(rep.get("time_step_source", "")).partition("(")[2].rstrip(")") or "none recorded"
+            raise DihedraError(f"the trajectory of replica {unknown[0]} ({rep['trajectory']}) has no usable "
+                               f"time step ({why}); give the time between stored frames with --dt-ps PS.")
         values = [float(r["time_between_analysed_frames_ps"]) for r in reps]
         source = ("time step given to 'track --dt-ps'" if reps[0].get("time_step_source") == "--dt-ps"
                   else "time step stored in the trajectory")
