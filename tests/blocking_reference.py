@@ -43,5 +43,7 @@ def reference_blocking(block_values, block_weights, block_replica, min_blocks=MI
     n_samples = np.broadcast_to(n_samples.sum(axis=0), np.shape(mean))
     with np.errstate(invalid="ignore", divide="ignore"):
         n_eff = mean * (1.0 - mean) / best ** 2
-        n_eff = np.where(best > 0, np.minimum(n_eff, n_samples), np.inf)
+        # no error (NaN) or an error of 0 (a state never entered or never left): p (1 - p) / se^2
+        # is undefined there, so n_effective is NaN, never infinite
+        n_eff = np.where(best > 0, np.minimum(n_eff, n_samples), np.nan)
     return mean, best, n_eff

@@ -53,3 +53,43 @@ def test_a_time_step_that_varies_is_unknown():
     assert "vary" in time_step_problem(1.0, [0.0, 1.0, 2.0, 10.0])
     assert time_step_problem(-1.0, [0.0, -1.0]) is not None
     assert time_step_problem(float("nan"), [0.0, 1.0]) is not None
+
+
+@pytest.fixture(scope="module")
+def adk_backbone(tmp_path_factory):
+    out = str(tmp_path_factory.mktemp("adk") / "bb")
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--out", out]) == 0
+    return dihedra.load_results(out)
+
+
+def test_pooled_errors_of_residues_include_the_spread_between_them(adk_backbone):
+    pops, by_type = adk_backbone.populations, adk_backbone.populations_by_type
+    # every isoleucine psi stays in its state through the 98 frames: per residue 0 or 1, errors 0
+    ile = pops[(pops["type"] == "ILE:psi") & (pops["state"] == "gauche-")]
+    assert set(ile["population"]) == {0.0, 1.0} and (ile["population_err"] == 0).all()
+    row = by_type[(by_type["type"] == "ILE:psi") & (by_type["state"] == "gauche-")].iloc[0]
+    # the pooled error is the standard error of the mean across the 14 residues (common practice),
+    # not 0; I^2 = 1: all of the spread is between residues (Higgins & Thompson 2002)
+    sem = ile["population"].std(ddof=1) / np.sqrt(len(ile))
+    assert row["population_err"] == pytest.approx(sem) and sem > 0.1
+    assert row["i_squared"] == 1.0 and row["heterogeneous"]
+    assert any("Cochran's Q" in n for n in adk_backbone.notices)
+    # types whose residues agree within their errors keep the error of independent copies
+    calm = by_type[~by_type["heterogeneous"].astype(bool) & by_type["population_err"].notna()]
+    assert len(calm)
+
+
+def test_a_single_frame_has_no_errors(tmp_path, capsys):
+    out = str(tmp_path / "rna")
+    assert main(["track", data.RNA_PSF, data.RNA_PDB, "--torsions", "nucleic-backbone", "--out", out]) == 0
+    printed = capsys.readouterr()
+    assert "± n/a" in printed.out and "± 0.000" not in printed.out
+    assert "no error estimate" in printed.err
+    res = dihedra.load_results(out)
+    for table in (res.populations, res.populations_by_type, res.conformers, res.conformers_by_type):
+        assert table["population_err"].isna().all()
+    assert res.populations["n_effective"].isna().all()     # never infinite
+    assert not np.isinf(res.populations["n_effective"]).any()
+    from dihedra.presentation.report import write_report
+    html = open(write_report(out, figures=False), encoding="utf-8").read()
+    assert "± n/a" in html and "± 0.000" not in html

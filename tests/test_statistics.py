@@ -67,3 +67,86 @@ def test_blocks_of_different_replicas_are_never_merged():
     mean, se, _ = blocking_error(v, w, r)
     assert mean == pytest.approx(0.5)
     assert se > 0.1  # two replicas that disagree completely: a large error
+
+
+# --- pooling over torsions that may differ: random effects ------------------------------------
+
+# BCG vaccine trials (Colditz et al., JAMA 271 (1994) 698): treated/control tuberculosis cases and
+# non-cases of the 13 trials, the standard worked example of random-effects meta-analysis
+BCG = np.array([[4, 119, 11, 128], [6, 300, 29, 274], [3, 228, 11, 209], [62, 13536, 248, 12619],
+                [33, 5036, 47, 5761], [180, 1361, 372, 1079], [8, 2537, 10, 619], [505, 87886, 499, 87892],
+                [29, 7470, 45, 7232], [17, 1699, 65, 1600], [186, 50448, 141, 27197], [5, 2493, 3, 2338],
+                [27, 16886, 29, 17825]], dtype=float)
+
+
+def test_dersimonian_laird_on_the_bcg_trials():
+    from scipy.stats import chi2
+
+    from dihedra.numerics.heterogeneity import dersimonian_laird
+
+    tp, tn, cp, cn = BCG.T
+    y = np.log((tp / (tp + tn)) / (cp / (cp + cn)))          # log risk ratios
+    v = 1 / tp - 1 / (tp + tn) + 1 / cp - 1 / (cp + cn)
+    r = dersimonian_laird(y, v)
+    # the published DerSimonian-Laird analysis of these trials (from memory, as reported e.g. by
+    # Viechtbauer, J. Stat. Softw. 36 (2010) 3): Q(12) = 152.23, tau^2 = 0.3088, I^2 = 92.12 %,
+    # random-effects log risk ratio -0.7141 +- 0.1787
+    assert r.df == 12
+    assert r.q == pytest.approx(152.233, abs=1e-3)
+    assert r.tau_squared == pytest.approx(0.3088, abs=1e-4)
+    assert r.i_squared == pytest.approx(0.9212, abs=1e-4)
+    assert r.mean == pytest.approx(-0.7141, abs=1e-4)
+    assert r.se == pytest.approx(0.1787, abs=1e-4)
+    # Higgins & Thompson (2002): I^2 = (H^2 - 1) / H^2 with H^2 = Q / df; the p-value is the
+    # upper tail of chi-square (SciPy's survival function, computed here independently)
+    h2 = r.q / r.df
+    assert r.i_squared == pytest.approx((h2 - 1) / h2)
+    assert r.p_value == pytest.approx(chi2.sf(152.233, 12), rel=1e-3)
+
+
+def test_dersimonian_laird_recovers_a_known_between_item_variance():
+    # analytic model: y_i = mu + u_i + e_i, u ~ N(0, tau^2), e ~ N(0, v_i); the method-of-moments
+    # estimate is unbiased before truncation, so its mean over many meta-analyses is near tau^2
+    from dihedra.numerics.heterogeneity import dersimonian_laird
+
+    rng = np.random.default_rng(7)
+    tau2, got = 0.04, []
+    for _ in range(400):
+        v = rng.uniform(0.005, 0.03, 30)
+        y = 0.5 + rng.normal(0, np.sqrt(tau2), 30) + rng.normal(0, np.sqrt(v))
+        got.append(dersimonian_laird(y, v).tau_squared)
+    assert np.mean(got) == pytest.approx(tau2, rel=0.1)
+    # no heterogeneity: Q ~ chi-square(k - 1), so p is uniform and I^2 is 0 at least half the time
+    ps, zero = [], 0
+    for _ in range(400):
+        v = rng.uniform(0.005, 0.03, 30)
+        r = dersimonian_laird(0.5 + rng.normal(0, np.sqrt(v)), v)
+        ps.append(r.p_value)
+        zero += r.i_squared == 0
+    assert np.mean(np.asarray(ps) < 0.05) == pytest.approx(0.05, abs=0.03)
+    assert zero >= 180
+
+
+def test_pooled_error_of_copies_and_of_residues_that_differ():
+    from dihedra.numerics.heterogeneity import pooled_mean_error
+
+    rng = np.random.default_rng(3)
+    # copies of one molecule: populations scatter as their errors say; the error is the one of
+    # independent copies, sqrt(sum se^2) / n, and I^2 is small
+    se = np.full(100, 0.02)
+    y = 0.3 + rng.normal(0, 0.02, 100)
+    r = pooled_mean_error(y, se)
+    assert not r["heterogeneous"] and r["i_squared"] < 0.3
+    assert r["se"] == pytest.approx(np.sqrt(np.sum(se ** 2)) / 100)
+    # residues that each sit in their own state (0 or 1, no transitions: errors 0): the error is
+    # the standard error of the mean across residues (common practice), I^2 = 1
+    y = np.array([1, 1, 0, 1, 0, 1, 1, 1, 0, 1, 1, 0, 1, 0], dtype=float)
+    r = pooled_mean_error(y, np.zeros_like(y))
+    assert r["heterogeneous"] and r["i_squared"] == 1.0 and np.isinf(r["q"]) and r["q_p_value"] == 0
+    assert r["se"] == pytest.approx(np.std(y, ddof=1) / np.sqrt(len(y)))
+    # an item whose error cannot be estimated makes the pooled error missing, never 0
+    r = pooled_mean_error([0.2, 0.4], [np.nan, 0.01])
+    assert np.isnan(r["se"]) and r["mean"] == pytest.approx(0.3)
+    # one item: its own error; no heterogeneity to speak of
+    r = pooled_mean_error([0.2], [0.01])
+    assert r["se"] == 0.01 and np.isnan(r["i_squared"])

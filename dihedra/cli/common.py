@@ -59,10 +59,13 @@ def print_notices(notices):
 
 
 def format_pm(value, err, digits=3):
+    """``value ± err``; ``value ± n/a`` where the error could not be estimated (NaN), never 0."""
     if value is None or (isinstance(value, float) and np.isnan(value)):
         return "-"
-    if err is None or np.isnan(err):
+    if err is None:
         return f"{value:.{digits}f}"
+    if np.isnan(err):
+        return f"{value:.{digits}f} ± n/a"
     return f"{value:.{digits}f} ± {err:.{digits}f}"
 
 

@@ -2,7 +2,7 @@
 
 from ..io.tables import read_optional_table
 from ..tracking import track
-from .common import (add_scheme_option, add_torsion_options, add_track_options, print_notices,
+from .common import (add_scheme_option, add_torsion_options, add_track_options, format_pm, print_notices,
                      print_population_table, say)
 
 
@@ -52,13 +52,13 @@ def report_track(result):
     print(f"{s['n_torsions']} torsions, {len(result.torsions['type'].unique())} types, "
           f"{s['n_frames_analysed']} frames from {len(s['replicas'])} replica(s), "
           f"scheme {result.scheme.name}")
-    print("populations pooled per type (fraction ± standard error):")
+    print("populations pooled per type (fraction ± standard error; n/a: not estimable):")
     print_population_table(result.populations_by_type, result.scheme.labels)
     if len(result.conformers_by_type):
         top = result.conformers_by_type.groupby("group_type", sort=False).head(3)
         print("most populated conformers per molecule type:")
         for row in top.itertuples(index=False):
-            print(f"  {row.group_type:<10} {row.conformer:<32} {row.population:.3f} ± {row.population_err:.3f}")
+            print(f"  {row.group_type:<10} {row.conformer:<32} {format_pm(row.population, row.population_err)}")
     print_convergence(result)
     print_notices(result.notices)
     print(f"results written to {result.folder}")

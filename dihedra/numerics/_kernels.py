@@ -395,8 +395,8 @@ def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level
             if b > 0:
                 e = m * (1.0 - m) / (b * b)
                 n_eff[c0 + c] = e if e <= n_samples[c] or e != e else n_samples[c]
-            else:
-                n_eff[c0 + c] = np.inf
+            else:   # no error (NaN), or none seen (0: never entered or never left): undefined
+                n_eff[c0 + c] = np.nan
 
 
 @njit(**_OPTS)

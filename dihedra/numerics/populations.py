@@ -5,17 +5,21 @@ Functions here turn the block sums of the trajectory pass into tidy tables:
 * per torsion: the fraction of (weighted) frames in each state, with the blocking standard error
   (:func:`dihedra.numerics.statistics.blocking_error`) and the effective sample size it implies;
 * per replica: the same for each replica alone;
-* per type: the mean over the torsions of a type; the torsions are separate molecules, treated as
-  independent samples, so the standard error is sqrt(sum se_i^2) / n;
+* per type: the mean over the torsions of a type; its standard error is sqrt(sum se_i^2) / n for
+  torsions that are copies of one molecule, and includes the spread between the torsions when they
+  differ more than their errors explain (random effects, :mod:`dihedra.numerics.heterogeneity`);
 * conformers: the joint state of the torsions of one group, per group and pooled per group type
   (the tuple of torsion types along the chain) in the same way.
 
-Population errors of a state that was never visited are 0: read them with ``n_effective``.
+An error that cannot be estimated (fewer than two blocks with frames, e.g. a single frame) is
+NaN, and so is every pooled error it enters. A state never entered (or never left) in any block
+has an error of 0 and ``n_effective`` NaN: the run shows no fluctuation of it at all.
 """
 
 import numpy as np
 import pandas as pd
 
+from .heterogeneity import pooled_mean_error
 from .statistics import blocking_error
 
 #: Below this many effective samples a population's error bar is itself rough.
@@ -80,28 +84,62 @@ def replica_populations(state_counts, block_replica, labels, types, state_labels
 
 
 def pool_by_type(populations, key="type", item="torsion", count_name="n_torsions"):
-    """Pool per-item populations per type: mean, and se = sqrt(sum se_i^2) / n (independent items).
+    """Pool per-item populations per type: the mean over the items, its error, and their
+    heterogeneity (:func:`dihedra.numerics.heterogeneity.pooled_mean_error`).
 
     Parameters
     ----------
     populations : DataFrame
         With columns ``key``, ``item``, ``state``, ``population``, ``population_err``.
+
+    Returns
+    -------
+    DataFrame
+        ``key``, ``state``, ``population``, ``population_err`` (NaN where an item's error is not
+        estimable), ``count_name``, ``i_squared`` (fraction), ``cochran_q``, ``cochran_q_p_value``,
+        ``between_sd`` (the DerSimonian-Laird between-item standard deviation of the population)
+        and ``heterogeneous`` (Cochran's Q below the 5 % level: the error includes the spread
+        between the items).
     """
     def agg(g):
         n = g[item].nunique()
+        r = pooled_mean_error(g["population"].to_numpy(), g["population_err"].to_numpy())
         return pd.Series({
             "population": g["population"].mean(),
-            "population_err": np.sqrt(np.sum(g["population_err"] ** 2)) / n,
+            "population_err": r["se"],
             count_name: n,
+            "i_squared": r["i_squared"], "cochran_q": r["q"], "cochran_q_p_value": r["q_p_value"],
+            "between_sd": r["tau"], "heterogeneous": r["heterogeneous"],
         })
 
     order = {s: k for k, s in enumerate(pd.unique(populations["state"]))}
     out = (populations.groupby([key, "state"], sort=False)[[item, "population", "population_err"]]
            .apply(agg).reset_index())
+    if out.empty:
+        return pd.DataFrame(columns=[key, "state", "population", "population_err", count_name] + POOLED_COLUMNS)
     out[count_name] = out[count_name].astype(int)
+    out["heterogeneous"] = out["heterogeneous"].astype(bool)
     out["_o"] = out["state"].map(order)
     out = out.sort_values([key, "_o"], kind="stable").drop(columns="_o").reset_index(drop=True)
     return out
+
+
+#: The heterogeneity columns of pooled tables (see :func:`pool_by_type`).
+POOLED_COLUMNS = ["i_squared", "cochran_q", "cochran_q_p_value", "between_sd", "heterogeneous"]
+
+
+def heterogeneity_notice(pooled, key, what):
+    """One sentence naming the pooled rows whose items are heterogeneous (or ``None``)."""
+    if pooled.empty or "heterogeneous" not in pooled:
+        return None
+    het = pooled[pooled["heterogeneous"].astype(bool)]
+    if het.empty:
+        return None
+    names = list(dict.fromkeys(het[key]))
+    shown = ", ".join(names[:8]) + (f" and {len(names) - 8} more" if len(names) > 8 else "")
+    return (f"{len(names)} {what} differ between their {'torsions' if key == 'type' else 'groups'} "
+            f"more than sampling noise explains (Cochran's Q, p < 0.05): {shown}; their pooled errors "
+            "include the spread between them (DerSimonian-Laird; I^2 in the table).")
 
 
 def conformer_populations(rows, weights, block_replica, n_blocks, groups, members, labels, types,
@@ -148,7 +186,7 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     })
     if by_group.empty:
         return by_group, pd.DataFrame(columns=["group_type", "conformer", "population",
-                                               "population_err", "n_groups"])
+                                               "population_err", "n_groups"] + POOLED_COLUMNS)
     pooled = _pooled_conformers(by_group)
     by_group = by_group.sort_values(["group", "population"], ascending=[True, False],
                                     kind="stable").reset_index(drop=True)

@@ -132,7 +132,9 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
         The largest standard error over the usable levels (NaN if none).
     n_effective : ndarray, same shape
         Effective number of independent samples implied for an indicator (0/1) observable,
-        p (1 - p) / se**2, capped at the number of samples; inf where se == 0.
+        p (1 - p) / se**2, capped at the number of samples; NaN where it is undefined: no error
+        (fewer than two blocks with samples) or an error of 0 (a state never entered, or never
+        left, in any block).
 
     Other Parameters
     ----------------

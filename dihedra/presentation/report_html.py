@@ -119,8 +119,8 @@ def _pm(value, err, digits=3):
         err = float(err)
     except (TypeError, ValueError):
         err = np.nan
-    if not np.isfinite(err):
-        return f"{float(value):.{digits}f}"
+    if not np.isfinite(err):   # an error that could not be estimated is missing, never 0
+        return f"{float(value):.{digits}f} ± n/a"
     return f"{float(value):.{digits}f} ± {float(err):.{digits}f}"
 
 

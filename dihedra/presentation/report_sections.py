@@ -70,7 +70,10 @@ def _populations(folder, scheme, figs):
     pops = read_optional(folder, "populations_by_type.csv")
     parts = ["<section id='populations'><h2>Populations</h2>",
              "<p class='lead'>Fraction of frames in each state, pooled per torsion type, ± standard error "
-             "(autocorrelation accounted for by blocking; molecules treated as independent).</p>"]
+             "(autocorrelation accounted for by blocking; where the torsions of a type differ more than "
+             "their errors explain, the error includes the spread between them: I<sup>2</sup> is the "
+             "largest share of that spread over the states). n/a: no error can be estimated "
+             "(e.g. a single frame).</p>"]
     if pops is not None and len(pops):
         states = [s for s in (scheme.labels if scheme else pops["state"].unique()) if s in set(pops["state"])]
         wide = []
@@ -79,6 +82,9 @@ def _populations(folder, scheme, figs):
             key = sub.set_index("state")
             for s in states:
                 row[s] = _pm(key.loc[s, "population"], key.loc[s, "population_err"]) if s in key.index else "–"
+            if "i_squared" in sub:
+                i2 = pd.to_numeric(sub["i_squared"], errors="coerce").max()
+                row["I² (%)"] = "–" if pd.isna(i2) else f"{100 * i2:.0f}"
             wide.append(row)
         parts.append(_table(pd.DataFrame(wide), what="types"))
     conf = read_optional(folder, "conformers_by_type.csv")

@@ -12,8 +12,8 @@ import warnings
 import numpy as np
 
 from .._version import __version__
-from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, pool_by_type,
-                                    replica_populations, torsion_populations)
+from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, heterogeneity_notice,
+                                    pool_by_type, replica_populations, torsion_populations)
 from .conformer_counts import conformer_layout, dense_conformers, reduce_conformer_rows
 from .inputs import sha256
 from .result import TrackResult
@@ -108,6 +108,7 @@ def assemble_result(tset, scheme, universe, notices, blocks):
         notices.append(f"{int((undefined > 0).sum())} torsion(s) were undefined in some frames (collinear "
                        f"atoms or NaN coordinates), e.g. {labels[worst]} in {int(undefined[worst])} frames; "
                        "those frames are left out of their populations and histograms.")
+    notices.extend(error_notices(pops, by_type, conf_type))
     rough = pops[(pops["n_effective"] < MIN_EFFECTIVE_SAMPLES) & (pops["population"] > 0)]
     if len(rough):
         notices.append(f"{rough['torsion'].nunique()} torsion(s) have states with fewer than "
@@ -118,6 +119,26 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
                        populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
                        conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
+
+
+def error_notices(pops, by_type, conf_type):
+    """Sentences on errors that are missing, 0, or include the spread between torsions."""
+    out = []
+    missing = pops[pops["population_err"].isna()]
+    if len(missing):
+        out.append(f"{missing['torsion'].nunique()} torsion(s) have no error estimate (e.g. {missing['torsion'].iloc[0]}): "
+                   "fewer than two blocks of frames hold them (a single frame, or too few frames); their "
+                   "errors and the pooled errors they enter are n/a.")
+    stuck = pops[(pops["population"] == 1.0) & (pops["population_err"] == 0)]
+    if len(stuck):
+        out.append(f"{stuck['torsion'].nunique()} torsion(s) never left one state (e.g. {stuck['torsion'].iloc[0]} in "
+                   f"{stuck['state'].iloc[0]}): their error of 0 only says that no transition was seen, and their "
+                   "n_effective is n/a.")
+    for table, key, what in ((by_type, "type", "torsion types"), (conf_type, "group_type", "conformer types")):
+        note = heterogeneity_notice(table, key, what)
+        if note:
+            out.append(note)
+    return out
 
 
 def replica_info(universe, traj, frames, tp, dt_ps, notices=None):
