@@ -93,3 +93,14 @@ def test_a_single_frame_has_no_errors(tmp_path, capsys):
     from dihedra.presentation.report import write_report
     html = open(write_report(out, figures=False), encoding="utf-8").read()
     assert "± n/a" in html and "± 0.000" not in html
+
+
+def test_terminal_and_internal_residues_are_named_plainly(adk_backbone):
+    # the first residue of adenylate kinase is MET1 (no phi: nothing precedes it); the five
+    # internal methionines have phi, psi and omega
+    names = set(adk_backbone.conformers_by_type["group_type"])
+    assert {"MET", "MET (no phi)"} <= names
+    assert not any("#" in n for n in names)
+    conf = adk_backbone.conformers
+    assert set(conf.loc[conf["group"] == "MET1", "group_type"]) == {"MET (no phi)"}
+    assert set(conf.loc[conf["group"] == "MET21", "group_type"]) == {"MET"}

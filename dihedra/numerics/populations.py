@@ -311,13 +311,44 @@ def _conformer_labels(codes, widths, state_labels):
 
 
 def _short_type_names(group_types, resnames, members):
-    """Readable names for group types: the residue name of the group, numbered if ambiguous."""
-    first = {}
+    """Readable names of group types: the residue of the group (the residue part of its torsion
+    types, else the residue name), and where one residue has group types with different torsions
+    (a terminal residue has no phi, or no psi and omega), the type with the most torsions keeps the
+    plain name and the others say what they lack or add: ``MET`` and ``MET (no phi)``.
+
+    >>> _short_type_names(["MET:psi | MET:omega", "MET:phi | MET:psi | MET:omega"], ["MET", "MET"],
+    ...                   [[0, 1], [2, 3, 4]])
+    ['MET (no phi)', 'MET']
+    """
+    parts = {gt: [p.strip() for p in gt.split(" | ")] for gt in dict.fromkeys(group_types)}
+    base_of, count = {}, {}
     for gt, m in zip(group_types, members):
-        first.setdefault(gt, str(resnames[m[0]]) or "group")
-    names = {}
-    used = {}
-    for gt, base in first.items():
-        used[base] = used.get(base, 0) + 1
-        names[gt] = base if used[base] == 1 else f"{base}#{used[base]}"
+        count[gt] = count.get(gt, 0) + 1
+        if gt not in base_of:
+            head = parts[gt][0].partition(":")
+            base_of[gt] = head[0] if head[1] and head[0] else (str(resnames[m[0]]) or "group")
+    by_base = {}
+    for gt, base in base_of.items():
+        by_base.setdefault(base, []).append(gt)
+    names, used = {}, set()
+    for base, gts in by_base.items():
+        angles = {gt: [p.partition(":")[2] or p for p in parts[gt]] for gt in gts}
+        full = max(gts, key=lambda gt: (len(angles[gt]), count[gt]))
+        for gt in gts:
+            name = base if gt == full or len(gts) == 1 else f"{base} ({_difference(angles[full], angles[gt])})"
+            unique, n = name, 1
+            while unique in used:
+                n += 1
+                unique = f"{name}#{n}"
+            used.add(unique)
+            names[gt] = unique
     return [names[gt] for gt in group_types]
+
+
+def _difference(full, own):
+    """``no phi``, ``+chi3``, ``no phi; +chi3`` or the own torsions: how a group type differs."""
+    lacks = [a for a in full if a not in own]
+    adds = [a for a in own if a not in full]
+    text = "; ".join(x for x in (("no " + ", ".join(lacks)) if lacks else "",
+                                  ("+" + ", +".join(adds)) if adds else "") if x)
+    return text or ", ".join(own)
