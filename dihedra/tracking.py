@@ -127,8 +127,8 @@ def _frame_indices(universe, start, stop, step, where):
 def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche", *, start=None,
           stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
-          bin_width_deg=1.0, chunk_frames=None, threads=None, progress=None, log=None, discard=None,
-          target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL):
+          bin_width_deg=1.0, chunk_frames=None, threads=None, keep_variants=False, progress=None, log=None,
+          discard=None, target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL):
     """Follow torsions through one or more replica trajectories, and write a results folder.
 
     Parameters
@@ -168,6 +168,10 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
         Recorded in the summary (profiles need it; tracking does not).
     n_state_blocks, n_hist_blocks, bin_width_deg, chunk_frames
         Block structure and fine histogram resolution (see :class:`~dihedra.trajectory.trackpass.TorsionPass`).
+    keep_variants : bool
+        Type protein and nucleic-acid torsions by the topology's residue name (``HSD:psi``)
+        instead of the standard residue (``HIS:psi``, the default); see
+        :func:`~dihedra.selection.specs.select_torsions`.
     threads : int, optional
         Threads per pass: 2 lets a second thread compute while the first reads the trajectory
         (serial runs; each worker of a parallel run uses one thread). Default: 2 for a serial run
@@ -200,7 +204,8 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
         run.begin(topology, trajectories, torsions, scheme, weights)
         scheme = get_scheme(scheme)
         universes = _universes(group, topology, trajectories, run.notices)
-        tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions)
+        tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions,
+                                                                                            keep_variants=keep_variants)
         run.notices.extend(tset.notices)
         frames = [_frame_indices(u, start, stop, step, f"trajectory {t}")
                   for u, t in zip(universes, trajectories)]
@@ -234,7 +239,8 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
                       keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),
                       weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
                       n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg, temperature_k=temperature_k,
-                      discard=discard_record, target_error=target_error, target_error_kj_mol=target_error_kj_mol)
+                      discard=discard_record, target_error=target_error, target_error_kj_mol=target_error_kj_mol,
+                      keep_variants=bool(keep_variants))
         return run.finish(tset, scheme, universes[0], topology, replicas, params)
     finally:
         run.close()

@@ -104,3 +104,22 @@ def test_terminal_and_internal_residues_are_named_plainly(adk_backbone):
     conf = adk_backbone.conformers
     assert set(conf.loc[conf["group"] == "MET1", "group_type"]) == {"MET (no phi)"}
     assert set(conf.loc[conf["group"] == "MET21", "group_type"]) == {"MET"}
+
+
+def test_force_field_variants_are_one_type_and_kept_in_torsions_csv(adk_backbone, tmp_path):
+    # CHARMM names its histidines HSD: the type is HIS (IUPAC-IUB 1970 residue), the variant stays
+    table = adk_backbone.torsions
+    his = table[table["resname"] == "HSD"]
+    assert len(his) and set(his["type"].str.split(":").str[0]) == {"HIS"} and set(his["variant"]) == {"HSD"}
+    by_type = adk_backbone.populations_by_type
+    row = by_type[(by_type["type"] == "HIS:psi") & (by_type["state"] == "gauche-")].iloc[0]
+    pops = adk_backbone.populations
+    per = pops[(pops["type"] == "HIS:psi") & (pops["state"] == "gauche-")]["population"]
+    assert row["population_err"] == pytest.approx(per.std(ddof=1) / np.sqrt(len(per)))
+    assert row["i_squared"] == 1.0
+    assert "HIS" in set(adk_backbone.conformers_by_type["group_type"])
+    # kept apart on request
+    out = str(tmp_path / "apart")
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--keep-variants",
+                 "--stop", "10", "--out", out]) == 0
+    assert "HSD:psi" in set(pd.read_csv(os.path.join(out, "torsions.csv"))["type"])

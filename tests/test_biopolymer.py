@@ -381,8 +381,12 @@ def test_histidine_names(adk_charmm, his):
         base, variant = func(u), func(v)
         same_torsions(u, base, v, variant)
         assert variant.notices == []
-    types = {t.type for t in protein_sidechain_torsions(v)}
-    assert f"{his}:chi2" in types  # the real residue name stays in the type
+    # one type per residue kind: the type is His's, the force field's name stays in the label and
+    # in the variant; with keep_variants the type keeps it
+    chi2 = [t for t in protein_sidechain_torsions(v) if t.name == "chi2" and t.resname == his]
+    assert {t.type for t in chi2} == {"HIS:chi2"}
+    assert {t.variant for t in chi2} == ({""} if his == "HIS" else {his})
+    assert f"{his}:chi2" in {t.type for t in protein_sidechain_torsions(v, keep_variants=True)}
     label = f"{his}{hsd[0].resid}:chi2"
     assert atom_names(v, protein_sidechain_torsions(v))[label] == ("CA", "CB", "CG", "ND1")
 
@@ -644,15 +648,20 @@ def test_water_and_ions_are_ignored_silently(adk_gromacs_gro, adk_gromacs_tpr):
 # --------------------------------------------------------------------------------------------
 
 def test_labels_types_groups_and_segments():
-    # The data model of dihedra.selection.torsions: label RESNAME RESID:name, type RESNAME:name with the
-    # real residue name, group from molecule_group of the CA / C1' atom.
+    # The data model of dihedra.selection.torsions: label RESNAME RESID:name with the real residue
+    # name, type RESIDUE:name with the standard residue of a force-field variant (the variant kept
+    # beside it), group from molecule_group of the CA / C1' atom.
+    from dihedra.selection.residue_names import canonical_residue_name
+
     u = load("PSF", "DCD")
     for t in protein_sidechain_torsions(u).torsions + protein_backbone_torsions(u).torsions:
         assert t.label == f"{t.resname}{t.resid}:{t.name}"
-        assert t.type == f"{t.resname}:{t.name}"
+        assert t.type == f"{canonical_residue_name(t.resname)}:{t.name}"
+        assert t.variant == ("" if t.resname == canonical_residue_name(t.resname) else t.resname)
         ca = u.select_atoms(f"resid {t.resid} and name CA")[0]
         assert t.group == molecule_group(ca) and t.segid == "4AKE"
-    assert "HSD:chi2" in protein_sidechain_torsions(u).types
+    assert "HIS:chi2" in protein_sidechain_torsions(u).types
+    assert "HSD:chi2" in protein_sidechain_torsions(u, keep_variants=True).types
 
     rna = load("RNA_PSF", "RNA_PDB")  # three segments: groups carry the segment
     for t in nucleic_backbone_torsions(rna):
@@ -663,9 +672,13 @@ def test_labels_types_groups_and_segments():
 def test_gromos_names_in_tpr(adk_gromacs_tpr):
     # The GROMACS .tpr names Lys LYSH, His HISB and Cys CYSH (GROMOS): all side chains found.
     u = adk_gromacs_tpr
-    types = set(protein_sidechain_torsions(u).types)
+    types = set(protein_sidechain_torsions(u, keep_variants=True).types)
     assert {"LYSH:chi4", "HISB:chi2", "CYSH:chi1"} <= types
     assert len(protein_sidechain_torsions(u)) == len(protein_sidechain_torsions(load("PSF")))
+    # typed by residue kind, the GROMOS and the CHARMM topologies of one protein have the same
+    # types, so their results pool and compare
+    assert set(protein_sidechain_torsions(u).types) == set(protein_sidechain_torsions(load("PSF")).types)
+    assert set(protein_backbone_torsions(u).types) == set(protein_backbone_torsions(load("PSF")).types)
 
 
 def test_named_specifications_use_these_functions(adk_charmm):

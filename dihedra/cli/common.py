@@ -12,6 +12,10 @@ def add_torsion_options(parser, required=True):
                         help="torsions to follow (repeatable): 'rotatable', 'protein-backbone', "
                              "'protein-sidechains', 'nucleic-backbone', four 0-based atom indices "
                              "'A,B,C,D', or a .toml file of named torsions")
+    parser.add_argument("--keep-variants", action="store_true",
+                        help="type protein and nucleic-acid torsions by the topology's residue name "
+                             "(HSD:psi, HSE:psi) instead of the residue it is a force-field variant of "
+                             "(HIS:psi, the default); torsions.csv names the variant either way")
 
 
 def add_scheme_option(parser):

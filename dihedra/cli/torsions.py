@@ -29,7 +29,7 @@ def run(args):
                                 ours=lambda p: file_head_contains(p, TABLE_HEAD, limit=len(TABLE_HEAD)))
     notices = []
     universe = load_universe(args.topology, notices=notices)
-    tset = select_torsions(universe, args.torsions)
+    tset = select_torsions(universe, args.torsions, keep_variants=args.keep_variants)
     table = tset.to_frame(universe)
     shown = table[["torsion", "type", "atom_indices", "atom_names"]]
     with_pd_options(lambda: print(shown.to_string(index=False)))

@@ -41,8 +41,8 @@ def run(args):
                    start=args.start, stop=args.stop, step=args.step, workers=args.workers,
                    backend=args.backend, scheduler=args.scheduler, keep_angles=args.keep_angles, weights=args.weights,
                    out=args.out, overwrite=args.overwrite, dt_ps=args.dt_ps,
-                   temperature_k=args.temperature, threads=args.threads, log=say,
-                   discard=_discard_value(args.discard), target_error=args.target_error,
+                   temperature_k=args.temperature, threads=args.threads, keep_variants=args.keep_variants,
+                   log=say, discard=_discard_value(args.discard), target_error=args.target_error,
                    target_error_kj_mol=args.target_error_kj_mol)
     report_track(result)
 

@@ -53,8 +53,11 @@ Rules
   CHARMM patch atoms CY (acetyl) and NT/CAT (N-methylamide) inside a terminal residue play the same
   role. Caps get no torsions of their own.
 * **Names.** Force-field residue names map to a standard residue for the definitions (HSD, HIE,
-  HISE, CYX, LYSH, NALA, DA5, ADE, ...; see :data:`AMINO_ACID_NAMES` and :data:`NUCLEOTIDE_NAMES`);
-  labels and types keep the residue name of the topology. The isoleucine delta carbon may be CD1
+  HISE, CYX, LYSH, NALA, DA5, ADE, ...; see :data:`AMINO_ACID_NAMES` and :data:`NUCLEOTIDE_NAMES`).
+  Labels keep the residue name of the topology (``HSD12:psi``); types use the standard residue
+  (``HIS:psi``; nucleotides lose only their terminal mark, ``DA5`` -> ``DA``) so that force fields
+  pool and compare, and ``Torsion.variant`` keeps the topology's name (``keep_variants=True``
+  types by it instead). The isoleucine delta carbon may be CD1
   or CD; primes may be written ``'`` or ``*``.
 * **Non-standard residues.** A residue with an unknown name but the backbone atoms N, CA, C (or
   O5', C5', C4', C3', O3' for a nucleotide) that is linked into a chain gets its backbone
@@ -64,7 +67,7 @@ Rules
   ions, lipids and ligands are ignored silently.
 
 Every :class:`~dihedra.selection.torsions.Torsion` has ``label`` ``RESNAME RESID:name`` (``ALA12:phi``; the
-caller makes labels unique across segments), ``type`` ``RESNAME:name`` (``HIE:chi2``), ``group``
+caller makes labels unique across segments), ``type`` ``RESIDUE:name`` (``HIS:chi2`` for a residue named HIE), ``group``
 from :func:`~dihedra.selection.torsions.molecule_group` of the residue's CA (or C1') atom and ``indices`` the
 four 0-based atom indices in definition order.
 
@@ -118,7 +121,7 @@ def _collect(records, rows, rank, name, columns):
     return rows[ok]
 
 
-def protein_backbone_torsions(universe):
+def protein_backbone_torsions(universe, keep_variants=False):
     """Protein backbone torsions phi, psi and omega (IUPAC-IUB 1970).
 
     Parameters
@@ -126,6 +129,9 @@ def protein_backbone_torsions(universe):
     universe : MDAnalysis.Universe
         The topology; coordinates of the current frame are used only when the topology has no
         bonds, to decide which residues are linked.
+    keep_variants : bool
+        Type the torsions by the topology's residue name (``HSD:psi``) instead of the standard
+        residue (``HIS:psi``, the default; the variant is in ``Torsion.variant``).
 
     Returns
     -------
@@ -188,15 +194,17 @@ def protein_backbone_torsions(universe):
     link_note = links.notice(topo, "phi, psi and omega")
     if link_note:
         result.insert(0, link_note)
-    return TorsionSet(topo.torsions(records, ("CA",)), result)
+    return TorsionSet(topo.torsions(records, ("CA",), keep_variants), result)
 
 
-def protein_sidechain_torsions(universe):
+def protein_sidechain_torsions(universe, keep_variants=False):
     """Protein side-chain torsions chi1 .. chi5 (IUPAC-IUB 1970).
 
     Parameters
     ----------
     universe : MDAnalysis.Universe
+    keep_variants : bool
+        As in :func:`protein_backbone_torsions`.
 
     Returns
     -------
@@ -227,10 +235,10 @@ def protein_sidechain_torsions(universe):
     non_standard(topo, notices, np.flatnonzero(topo.kind == KIND_AMINO_LIKE),
                   "skipped side-chain torsions", "an amino acid")
     duplicate_notices(topo, notices, rows_all)
-    return TorsionSet(topo.torsions(records, ("CA",)), notices.render())
+    return TorsionSet(topo.torsions(records, ("CA",), keep_variants), notices.render())
 
 
-def nucleic_backbone_torsions(universe):
+def nucleic_backbone_torsions(universe, keep_variants=False):
     """Nucleic-acid backbone torsions alpha .. zeta and the glycosidic chi (IUPAC-IUB 1983).
 
     Parameters
@@ -238,6 +246,9 @@ def nucleic_backbone_torsions(universe):
     universe : MDAnalysis.Universe
         The topology; coordinates of the current frame are used only when the topology has no
         bonds, to decide which residues are linked.
+    keep_variants : bool
+        Type the torsions by the topology's residue name (``DA5:chi``) instead of the nucleotide
+        without its terminal mark (``DA:chi``, the default).
 
     Returns
     -------
@@ -312,7 +323,7 @@ def nucleic_backbone_torsions(universe):
     link_note = links.notice(topo, "alpha, epsilon and zeta")
     if link_note:
         result.insert(0, link_note)
-    return TorsionSet(topo.torsions(records, ("C1'",)), result)
+    return TorsionSet(topo.torsions(records, ("C1'",), keep_variants), result)
 
 
 def _universe(obj):

@@ -106,6 +106,24 @@ def classify_residue_name(resname):
     return None, None, ""
 
 
+def canonical_residue_name(resname):
+    """The residue name a torsion type uses for a force-field variant: the standard amino acid
+    (``HSD``, ``HIE``, ``HISB`` -> ``HIS``; ``LYSH`` -> ``LYS``; ``CYX`` -> ``CYS``; AMBER terminal
+    ``NALA`` -> ``ALA``), a nucleotide without its terminal mark (``DA5`` -> ``DA``, ``RG3`` -> ``RG``;
+    DNA and RNA stay apart); any other name as it is.
+
+    >>> [canonical_residue_name(n) for n in ("HSD", "HIE", "LYSH", "CYX", "NALA", "DA5", "A3", "HEX")]
+    ['HIS', 'HIS', 'LYS', 'CYS', 'ALA', 'DA', 'A', 'HEX']
+    """
+    kind, standard, end = classify_residue_name(resname)
+    name = str(resname).strip()
+    if kind == "amino":
+        return standard
+    if kind == "nucleotide" and end and len(name) > 1:
+        return name[:-1]
+    return name
+
+
 KIND_CODE = {"amino": KIND_AMINO, "n-cap": KIND_N_CAP, "c-cap": KIND_C_CAP, "nucleotide": KIND_NUCLEOTIDE}
 
 # --------------------------------------------------------------------------------------------

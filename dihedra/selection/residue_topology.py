@@ -10,7 +10,7 @@ import pandas as pd
 
 from ..errors import SelectionError
 from .residue_names import (KIND_AMINO_LIKE, KIND_CODE, KIND_NUCLEOTIDE_LIKE, LINK_DISTANCE, NAME_CODE,
-                            N_NAME_CODES, SUGAR_PHOSPHATE, classify_residue_name)
+                            N_NAME_CODES, SUGAR_PHOSPHATE, canonical_residue_name, classify_residue_name)
 from .torsions import Torsion, bond_array as _bond_array, molecule_group
 
 # --------------------------------------------------------------------------------------------
@@ -162,11 +162,13 @@ class ResidueTopology:
         return self._positions
 
     # -- torsions -----------------------------------------------------------------------------
-    def torsions(self, records, anchor_names):
+    def torsions(self, records, anchor_names, keep_variants=False):
         """Build Torsion objects from (k, rank, name, indices) records, sorted along the chain.
 
         The group of each residue comes from :func:`molecule_group` of its anchor atom (CA or
-        C1'), or of atom B of its first torsion when the residue has no anchor.
+        C1'), or of atom B of its first torsion when the residue has no anchor. The type uses the
+        standard residue of a force-field variant (:func:`canonical_residue_name`) unless
+        ``keep_variants``; the variant is kept in ``Torsion.variant``.
         """
         res = self.res.tolist()
         records.sort(key=lambda rec: (res[rec[0]], rec[1]))
@@ -178,12 +180,14 @@ class ResidueTopology:
                 current, r = k, res[k]
                 anchor = int(anchors[k]) if anchors[k] >= 0 else indices[1]
                 resname = str(self.resnames[r])
+                residue = resname if keep_variants else canonical_residue_name(resname)
                 info = (self.tag(k), resname, int(self.resids[r]), str(self.segids[r]),
-                        molecule_group(self.u.atoms[anchor]))
-            tag, resname, resid, segid, group = info
+                        molecule_group(self.u.atoms[anchor]), residue,
+                        resname if resname != canonical_residue_name(resname) else "")
+            tag, resname, resid, segid, group, residue, variant = info
             out.append(Torsion(indices=tuple(indices), label=f"{tag}:{name}",
-                               type=f"{resname}:{name}", name=name, resname=resname,
-                               resid=resid, segid=segid, group=group))
+                               type=f"{residue}:{name}", name=name, resname=resname,
+                               resid=resid, segid=segid, group=group, variant=variant))
         return out
 
 

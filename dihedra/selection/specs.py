@@ -130,7 +130,7 @@ def _indices_from_selection(universe, selection, where):
     return _check_indices(universe, atoms, where=where)
 
 
-def select_torsions(universe, specs):
+def select_torsions(universe, specs, *, keep_variants=False):
     """Select torsions by one or more specifications.
 
     Parameters
@@ -138,6 +138,11 @@ def select_torsions(universe, specs):
     universe : MDAnalysis.Universe
     specs : str or list of str
         ``A,B,C,D``, a named specification (:data:`NAMED_SPECS`) or a TOML file path.
+    keep_variants : bool
+        Protein and nucleic-acid torsions: type them by the topology's residue name (``HSD:psi``,
+        ``HSE:psi``) instead of the residue they are a force-field variant of (``HIS:psi``, the
+        default, so that results of two force fields pool and compare); ``torsions.csv`` names the
+        variant either way.
 
     Returns
     -------
@@ -160,7 +165,8 @@ def select_torsions(universe, specs):
         elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
             part = {"protein-backbone": biopolymer.protein_backbone_torsions,
                     "protein-sidechains": biopolymer.protein_sidechain_torsions,
-                    "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](universe)
+                    "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](
+                        universe, keep_variants=keep_variants)
         elif spec.lower().endswith(".toml"):
             if not os.path.exists(spec):
                 raise SelectionError(f"torsion file {spec} does not exist.")
@@ -240,6 +246,6 @@ def _replace(t, **changes):
     """A copy of a torsion with some fields changed (faster than dataclasses.replace)."""
     fields = {"indices": t.indices, "label": t.label, "type": t.type, "name": t.name,
               "resname": t.resname, "resid": t.resid, "segid": t.segid, "group": t.group,
-              "order": t.order}
+              "order": t.order, "variant": t.variant}
     fields.update(changes)
     return Torsion(**fields)

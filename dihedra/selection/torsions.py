@@ -44,6 +44,9 @@ class Torsion:
         Molecule or residue whose torsions form one conformer (e.g. ``HEX3``, ``A:ALA12``).
     order : int
         Position of the torsion along the chain of its group (conformer labels follow it).
+    variant : str
+        The topology's residue name where the type uses another one for it (``HSD`` in a type
+        ``HIS:psi``), else empty.
     """
 
     indices: tuple
@@ -55,6 +58,7 @@ class Torsion:
     segid: str = ""
     group: str = ""
     order: int = 0
+    variant: str = ""
 
 
 @dataclass
@@ -106,11 +110,12 @@ class TorsionSet:
                 "name": t.name,
                 "group": t.group,
                 "order": t.order,
+                "variant": t.variant,
             }
             if universe is not None:
                 row["atom_names"] = " ".join(universe.atoms[list(t.indices)].names)
             rows.append(row)
-        columns = ["torsion", "type", "atom_indices", "atom_names", "resname", "resid", "segid",
+        columns = ["torsion", "type", "atom_indices", "atom_names", "resname", "variant", "resid", "segid",
                    "name", "group", "order"]
         frame = pd.DataFrame(rows, columns=[c for c in columns if universe is not None or c != "atom_names"])
         return frame
@@ -125,8 +130,14 @@ class TorsionSet:
                 label=str(row.torsion), type=str(row.type), name=str(row.name),
                 resname=str(row.resname), resid=int(row.resid),
                 segid="" if pd.isna(row.segid) else str(row.segid),
-                group=str(row.group), order=int(row.order)))
+                group=str(row.group), order=int(row.order),
+                variant=_text(getattr(row, "variant", ""))))
         return cls(torsions)
+
+
+def _text(value):
+    """A table cell as text ('' for a missing one)."""
+    return "" if value is None or (isinstance(value, float) and value != value) else str(value)
 
 
 # --------------------------------------------------------------------------------------------

@@ -78,6 +78,9 @@ class TorsionStates(TorsionPass):
         Drop the start of the analysed frames: ``"auto"`` (the start detected by a quick first pass,
         see :mod:`dihedra.trajectory.discard`), a number of frames (``500``) or a time
         (``"250 ps"``); ``weights`` are still given for every analysed frame.
+    keep_variants : bool
+        Type protein and nucleic-acid torsions by the topology's residue name (``HSD:psi``)
+        instead of the standard residue (``HIS:psi``, the default).
     verbose : bool
         Show a progress bar.
 
@@ -89,7 +92,8 @@ class TorsionStates(TorsionPass):
         Per torsion and state: ``population`` (fraction), ``population_err`` (standard error from
         block averaging), ``n_effective``, ``n_samples``.
     results.populations_by_type, results.populations_by_replica : DataFrame
-        Pooled over the torsions of a type; per replica (one here).
+        Pooled over the torsions of a type (with the heterogeneity between them: ``i_squared``,
+        ``cochran_q``, ...); per replica (one here).
     results.conformers, results.conformers_by_type : DataFrame
         Joint states of the torsions of each group (molecule or residue).
     results.states, results.angles : DataFrame
@@ -108,13 +112,14 @@ class TorsionStates(TorsionPass):
 
     def __init__(self, atomgroup, torsions="rotatable", scheme="anti-gauche", *, weights=None, keep_states=True,
                  keep_angles=False, dt_ps=None, temperature_k=None, bin_width_deg=1.0, n_state_blocks=64,
-                 n_hist_blocks=16, discard=None, verbose=False):
+                 n_hist_blocks=16, discard=None, keep_variants=False, verbose=False):
         universe = getattr(atomgroup, "universe", None)
         if universe is None or not hasattr(atomgroup, "atoms"):
             raise DihedraError(f"TorsionStates takes an MDAnalysis AtomGroup or Universe; got "
                                f"{type(atomgroup).__name__}.")
         scheme = get_scheme(scheme)
-        tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universe, torsions)
+        tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universe, torsions,
+                                                                                         keep_variants=keep_variants)
         tset = _within(tset, atomgroup.atoms, universe)
         if dt_ps is not None and not (np.isfinite(float(dt_ps)) and float(dt_ps) > 0):
             raise DihedraError(f"dt_ps must be a positive number of ps; got {dt_ps!r}.")
