@@ -123,3 +123,31 @@ def test_force_field_variants_are_one_type_and_kept_in_torsions_csv(adk_backbone
     assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--keep-variants",
                  "--stop", "10", "--out", out]) == 0
     assert "HSD:psi" in set(pd.read_csv(os.path.join(out, "torsions.csv"))["type"])
+
+
+def test_hn_ha_couplings_only_where_there_is_an_amide_h_and_both_glycine_protons(adk_backbone):
+    from MDAnalysis.analysis.dihedrals import Ramachandran
+
+    cres = dihedra.ensemble_couplings(adk_backbone, "vuister-bax-1993")
+    table = cres.couplings
+    # proline has no amide H: no PRO row (Vuister & Bax 1993 couple HN and HA)
+    assert not table["type"].str.startswith("PRO").any()
+    assert any("PRO" in n and "amide H" in n for n in cres.notices)
+    # glycine: a row per H-alpha and their sum; <J> of the second H-alpha is the relation at
+    # phi + 60 (the first at phi - 60), averaged over MDAnalysis' own phi angles (reference library)
+    u = mda.Universe(data.PSF, data.DCD)
+    gly = u.select_atoms("resname GLY and resid 10")
+    phi = Ramachandran(gly).run().results.angles[:, 0, 0]
+    rel = dihedra.analysis.couplings.get_relation("vuister-bax-1993")
+    rows = table[(table["torsion"] == "GLY10:phi")].set_index("coupled_atoms")
+    assert len(rows) == 3
+    first, second = (k for k in rows.index if "+" not in k)
+    assert rows.loc[first, "j_hz"] == pytest.approx(np.mean(rel.evaluate(phi)), abs=0.05)
+    assert rows.loc[second, "j_hz"] == pytest.approx(np.mean(rel.evaluate(phi + 120.0)), abs=0.05)
+    both = [k for k in rows.index if "+" in k][0]
+    assert rows.loc[both, "j_hz"] == pytest.approx(rows.loc[first, "j_hz"] + rows.loc[second, "j_hz"])
+    # the first is the H-alpha where L-amino acids carry HA (CHARMM names it HA2)
+    assert first == "HN,HA2"
+    # a relation with no torsion it couples is an error
+    with pytest.raises(DihedraError, match="H-C-C-H"):
+        dihedra.ensemble_couplings(adk_backbone, "karplus-1959")

@@ -142,8 +142,15 @@ def test_hn_ha_family_spread_is_reported_separately(rb_folder):
 
 
 def test_relation_not_meant_for_the_torsions_says_so(rb_folder):
-    cres = ensemble_couplings(rb_folder, "vuister-bax-1993")
-    assert any("phi" in n for n in cres.notices)
+    # no torsion the relation couples: an error that names the atoms, not a silent average
+    with pytest.raises(DihedraError, match="H-N-CA-HA") as err:
+        ensemble_couplings(rb_folder, "vuister-bax-1993")
+    assert "np.int64" not in str(err.value)
+    with pytest.raises(DihedraError, match="H-C-C-H"):
+        ensemble_couplings(rb_folder, "karplus-1959")
+    # torsions selected by hand are taken as given, with a notice
+    cres = ensemble_couplings(rb_folder, "vuister-bax-1993", select=[rb_folder.torsion_set.types[0]])
+    assert any("H-N-CA-HA" in n and "not that torsion" in n for n in cres.notices)
 
 
 # ------------------------------------------------------------------------------------------------
@@ -190,7 +197,7 @@ def test_experiment_by_type_and_unmatched_labels(rb_folder, tmp_path):
     with pytest.raises(DihedraError, match="J_hz and J_err_hz"):
         read_experimental(str(path))
     with pytest.raises(DihedraError, match="lacks the column"):
-        ensemble_couplings(rb_folder, "karplus-1959", experimental=pd.DataFrame({"torsion": ["a"]}))
+        ensemble_couplings(rb_folder, "karplus-1959", select=[ttype], experimental=pd.DataFrame({"torsion": ["a"]}))
     # save writes the two tables and the JSON, with the file the values came from
     (tmp_path / "out").mkdir()
     paths = cres.save(str(tmp_path / "out"), experimental_path=str(path))

@@ -35,15 +35,24 @@ def run(args):
     say("written: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
 
 
+def _row_name(row):
+    """``GLY10:phi [HN,HA2]`` / ``GLY:phi [HN,HA2] (mean of type)``: the coupled protons where a
+    torsion has more than one row (glycine)."""
+    protons = getattr(row, "coupled_atoms", "")
+    base = row.torsion or f"{row.type}"
+    tag = f" [{protons}]" if isinstance(protons, str) and protons and row.type.startswith("GLY") else ""
+    return f"{base}{tag}" + ("" if row.torsion else " (mean of type)")
+
+
 def report(cres, summary, max_rows=30):
     table = cres.couplings
     for rel, sub in table.groupby("relation", sort=False):
         first = sub.iloc[0]
         print(f"{rel}: <{first['coupling']}> in Hz (statistical error; relation's own spread separately)")
         shown = sub[sub["level"] == "type"] if (sub["level"] == "type").any() and len(sub) > max_rows else sub
-        width = max(8, *(len(str(x)) for x in shown["torsion"].where(shown["torsion"] != "", shown["type"])))
-        for row in shown.head(max_rows).itertuples(index=False):
-            name = row.torsion or f"{row.type} (mean of type)"
+        names = [_row_name(row) for row in shown.itertuples(index=False)]
+        width = max(8, *(len(x) for x in names))
+        for name, row in zip(names[:max_rows], shown.head(max_rows).itertuples(index=False)):
             sys_text = f"   systematic {row.j_systematic_hz:.2f}" if row.j_systematic_hz == row.j_systematic_hz else ""
             print(f"  {name:<{width}}  {format_pm(row.j_hz, row.j_err_hz, 2):>16}{sys_text}")
         if len(shown) > max_rows:

@@ -20,7 +20,17 @@ block (16 contiguous blocks per replica). Its standard error comes from the same
 analysis as the populations (:func:`dihedra.numerics.statistics.blocking_error`: blocks merged pairwise
 within replicas, the largest error over levels with at least 8 blocks, never below the spread
 between replicas). Pooled per torsion type, <J> is the mean over the torsions of the type and
-its error sqrt(sum se_i^2)/n (the torsions taken as independent, as for populations).
+its error is that of pooled populations: sqrt(sum se_i^2)/n for copies of one molecule, plus the
+spread between the torsions where they differ more than their errors explain (the residues of a
+protein; DerSimonian-Laird, :mod:`dihedra.numerics.heterogeneity`).
+
+Which torsions: each relation states the atoms it couples. The 3J(HN,HA) relations take protein
+phi torsions of residues that carry an amide H and an H-alpha (read from the topology): proline
+is left out, and a glycine gets a row for each H-alpha (theta = phi - 60 for the one where
+L-amino acids carry HA, phi + 60 for the other, told apart by the coordinates of the topology)
+and one for their sum. The H-C-C-H relations take torsions whose end atoms are hydrogens. A
+relation with no such torsion in the folder is an error; ``select`` takes other torsions as
+given, with a notice.
 
 Systematic error of the relation, reported separately (``j_systematic_hz``), never mixed into
 ``j_err_hz``: a Karplus relation is an empirical fit, and its own scatter is often larger than the
@@ -42,12 +52,13 @@ with them in the same call.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
 
 from ...errors import DihedraError, InputFileError
+from ...numerics.heterogeneity import pooled_mean_error
 from .experiment import VERDICT_RULES, compare_with_experiment
 from .relations import HN_HA_FAMILY, KarplusRelation, get_relation, substituents_of
 
@@ -80,10 +91,10 @@ def _element_from_name(name):
 
 
 
-def _topology_universe(result, notices, universe=None):
-    """The universe whose bonds, elements and coordinates give the substituents: ``universe`` if
-    given, else the topology recorded in the result's summary (first frame if it has no
-    coordinates)."""
+def _topology_universe(result, notices, universe=None, need_bonds=True, why="the Haasnoot-Altona relation reads its bonds and elements"):
+    """The universe whose bonds, elements and coordinates give the substituents (or the protons
+    of an HN-HA coupling): ``universe`` if given, else the topology recorded in the result's
+    summary (first frame if it has no coordinates)."""
     from ...trajectory.inputs import load_universe, sha256
 
     if universe is not None:
@@ -92,8 +103,8 @@ def _topology_universe(result, notices, universe=None):
         top = result.summary.get("topology", {})
         path = top.get("path")
         if not path or not os.path.exists(path):
-            raise InputFileError(f"the topology recorded in summary.json ({path}) is not there; the "
-                                 "Haasnoot-Altona relation reads its bonds and elements.")
+            raise InputFileError(f"the topology recorded in summary.json ({path}) is not there; {why} "
+                                 "(give the Universe with universe=...).")
         if top.get("sha256") and sha256(path) != top["sha256"]:
             notices.append(f"the topology {path} changed since tracking (SHA-256 differs); its bonds and "
                            "elements were used as they are now.")
@@ -103,6 +114,8 @@ def _topology_universe(result, notices, universe=None):
         except Exception:  # noqa: BLE001 - a topology without coordinates (PSF, PRMTOP): first frame
             traj = result.summary.get("replicas", [{}])[0].get("trajectory")
             u = load_universe(path, traj)
+    if not need_bonds:
+        return u
     try:
         n_bonds = len(u.bonds)
     except Exception:  # noqa: BLE001 - topology without bond attribute
@@ -117,14 +130,26 @@ def _topology_universe(result, notices, universe=None):
 # Ensemble averages
 # ----------------------------------------------------------------------------------------------
 
-def relation_kernels(relation, result, torsion_positions, notices=None, universe=None):
+def relation_kernels(relation, result, torsion_positions, notices=None, universe=None, extra_offsets=None):
     """Bin means of J for each chosen torsion: array (n_chosen, n_fine_bins), and substituents
-    (read from ``universe``, default the recorded topology, for ``haasnoot-altona``)."""
+    (read from ``universe``, default the recorded topology, for ``haasnoot-altona``).
+
+    ``extra_offsets`` (deg, one per chosen torsion; NaN = none) shift a row's relation (glycine's
+    second H-alpha: theta = phi + 60 instead of phi - 60); a row with the offset ``SUM_OF_BOTH``
+    gets the sum of the unshifted and the shifted relation (both H-alpha of glycine in one
+    splitting)."""
     notices = [] if notices is None else notices
     edges = np.asarray(result.blocks.get("bin_edges_deg", np.linspace(-180, 180, 361)), dtype=float)
     if relation.form != "haasnoot-altona":
         row = relation.bin_means(edges)
-        return np.tile(row, (len(torsion_positions), 1)), [[] for _ in torsion_positions]
+        out = np.tile(row, (len(torsion_positions), 1))
+        for k, extra in enumerate(extra_offsets if extra_offsets is not None else []):
+            if np.isnan(extra):
+                continue
+            shifted = replace(relation, offset_deg=relation.offset_deg + (GLY_SHIFT_DEG if extra == SUM_OF_BOTH
+                                                                          else extra)).bin_means(edges)
+            out[k] = row + shifted if extra == SUM_OF_BOTH else shifted
+        return out, [[] for _ in torsion_positions]
     u = _topology_universe(result, notices, universe)
     elements = _elements(u, notices)
     coords = u.atoms.positions.astype(float)
@@ -135,6 +160,12 @@ def relation_kernels(relation, result, torsion_positions, notices=None, universe
         kernels.append(relation.bin_means(edges, [(d, x) for d, x, _ in s]))
         subs.append(s)
     return np.array(kernels), subs
+
+
+#: theta of glycine's second H-alpha relative to the first (the HA of L-amino acids): +120 deg.
+GLY_SHIFT_DEG = 120.0
+#: Marks a row that sums both H-alpha couplings of a glycine.
+SUM_OF_BOTH = 1e9
 
 
 def _looks_applicable(relation, torsions_table):
@@ -150,11 +181,13 @@ def _looks_applicable(relation, torsions_table):
 
 
 def choose_torsions(result, relation, select=None, notices=None):
-    """Positions of the torsions to average: ``select`` (labels or types), else those the
-    relation applies to, else all (with a notice)."""
+    """Positions of the torsions to average: ``select`` (labels or types; taken as given, with a
+    notice for those the relation is not meant for), else those the relation applies to; none is
+    an error that names the atoms the relation couples."""
     notices = [] if notices is None else notices
     labels = result.torsion_set.labels
     types = result.torsion_set.types
+    mask = _looks_applicable(relation, result.torsions)
     if select:
         wanted = set(select)
         pos = [k for k, (lab, typ) in enumerate(zip(labels, types)) if lab in wanted or typ in wanted]
@@ -162,15 +195,95 @@ def choose_torsions(result, relation, select=None, notices=None):
         if unknown:
             raise DihedraError(f"{sorted(unknown)[0]!r} is neither a torsion label nor a type of this "
                                f"results folder (e.g. {labels[0]!r}, {types[0]!r}); see torsions.csv.")
+        foreign = [labels[k] for k in pos if not mask[k]]
+        if foreign:
+            notices.append(f"{relation.name} couples {relation.coupled_atoms()}; {len(foreign)} selected torsion(s) "
+                           f"are not that torsion (e.g. {foreign[0]}): <J> was computed as if they were, "
+                           "meaningful only if the offset maps them onto the coupled protons.")
         return pos
-    mask = _looks_applicable(relation, result.torsions)
     if mask.any():
         return list(np.flatnonzero(mask))
-    what = "protein phi (C-N-CA-C)" if relation.applies_to == "phi" else "H-C-C-H"
-    notices.append(f"no torsion of this folder looks like {what}, which {relation.name} is meant for; "
-                   f"<J> was computed for all {len(labels)} torsions as if each were one, which is "
-                   "meaningful only if the offset maps them onto the coupled protons.")
-    return list(range(len(labels)))
+    raise DihedraError(f"{relation.name} couples {relation.coupled_atoms()}, and no torsion of this folder is "
+                       f"{'a protein phi' if relation.applies_to == 'phi' else 'an H-C-C-H torsion'} "
+                       f"(its types are e.g. {', '.join(list(dict.fromkeys(types))[:4])}); track "
+                       f"{'them with --torsions protein-backbone' if relation.applies_to == 'phi' else 'the H-C-C-H torsions (--torsions A,B,C,D or a TOML file of named torsions)'}"
+                       ", or --select a torsion to take as one.")
+
+
+def coupling_rows(result, relation, positions, notices, universe=None):
+    """The rows of an HN-HA relation: ``(positions, extra offsets, coupled atoms)``.
+
+    Protein phi torsions whose residue has no amide H (proline; a united-atom topology) are left
+    out; a glycine gives a row for each H-alpha (the one where L-amino acids carry HA: theta =
+    phi - 60, the other: phi + 60, told apart by the topology's coordinates) and one for their sum
+    (what a spectrum shows when the two H-alpha resonate together). Other relations: one row per
+    torsion, the coupled atoms its own end atoms."""
+    names = result.torsions["atom_names"].fillna("").astype(str).tolist() if "atom_names" in result.torsions \
+        else [""] * len(result.torsion_set)
+    phi = _looks_applicable(relation, result.torsions) if relation.applies_to == "phi" else None
+    if phi is None or not any(phi[k] for k in positions):
+        ends = [names[k].split() for k in positions]
+        return list(positions), [np.nan] * len(positions), [f"{a[0]},{a[3]}" if len(a) == 4 else "" for a in ends]
+    u = _topology_universe(result, notices, universe, need_bonds=False,
+                           why=f"{relation.name} reads which residues carry an amide H and where glycine's two H-alpha sit")
+    out_pos, extra, coupled, no_h, no_ha = [], [], [], [], []
+    indices = result.torsion_set.indices
+    labels = result.torsion_set.labels
+    for k in positions:
+        if not phi[k]:
+            out_pos.append(k), extra.append(np.nan), coupled.append("")
+            continue
+        c_prev, n, ca, c = (int(i) for i in indices[k])
+        hn = _hydrogens(u, n, ("H", "HN"))
+        ha = _hydrogens(u, ca, ("HA", "HA1", "HA2", "HA3"))
+        if not hn:
+            no_h.append(labels[k])
+            continue
+        if not ha:
+            no_ha.append(labels[k])
+            continue
+        if len(ha) == 1:
+            out_pos.append(k), extra.append(np.nan), coupled.append(f"{hn[0][1]},{ha[0][1]}")
+            continue
+        pos = u.atoms.positions
+        order = sorted(ha, key=lambda h: abs(_wrap(_dihedral(pos, c_prev, n, ca, h[0]) - _dihedral(pos, c_prev, n, ca, c) - 120.0)))
+        (first, name1), (_, name2) = order[0], order[1]
+        for e, what in ((np.nan, name1), (GLY_SHIFT_DEG, name2), (SUM_OF_BOTH, f"{name1}+{name2}")):
+            out_pos.append(k), extra.append(e), coupled.append(f"{hn[0][1]},{what}")
+    if no_h:
+        notices.append(f"{relation.name}: {len(no_h)} phi torsion(s) left out, their residues have no amide H "
+                       f"(e.g. {no_h[0]}: proline, or a topology without that hydrogen).")
+    if no_ha:
+        notices.append(f"{relation.name}: {len(no_ha)} phi torsion(s) left out, their residues have no H-alpha "
+                       f"in the topology (e.g. {no_ha[0]}).")
+    if not out_pos:
+        raise DihedraError(f"{relation.name} couples {relation.coupled_atoms()}, and none of the chosen phi "
+                           "torsions has both an amide H and an H-alpha in the topology (a united-atom model?).")
+    return out_pos, extra, coupled
+
+
+def _hydrogens(u, atom, names):
+    """``[(index, name)]`` of the hydrogens on ``atom``: bonded ones, else the ones of its residue
+    with one of ``names``."""
+    a = u.atoms[atom]
+    try:
+        bonded = [b for b in a.bonded_atoms if str(b.name).upper().startswith("H") or
+                  str(getattr(b, "element", "")).upper() == "H"]
+    except Exception:  # noqa: BLE001 - no bonds in the topology
+        bonded = None
+    if bonded is None or (not bonded and not len(u.bonds)):
+        bonded = [b for b in a.residue.atoms if str(b.name) in names]
+    return [(int(b.index), str(b.name)) for b in bonded]
+
+
+def _dihedral(pos, a, b, c, d):
+    from MDAnalysis.lib.distances import calc_dihedrals
+
+    return float(np.degrees(calc_dihedrals(pos[[a]], pos[[b]], pos[[c]], pos[[d]])[0]))
+
+
+def _wrap(x):
+    return (x + 180.0) % 360.0 - 180.0
 
 
 def couplings_from_histograms(histograms, block_replica, kernels):
@@ -201,10 +314,12 @@ def couplings_from_histograms(histograms, block_replica, kernels):
 
 
 def _pool_by_type(frame, family=None):
-    """Rows ``level = type`` (types with more than one torsion): mean <J>, se sqrt(sum se^2)/n; the
-    parameter-set spread of the pooled means when ``family`` (n_sets, n_torsions) is given."""
+    """Rows ``level = type`` (per type and coupled protons, with more than one torsion): mean <J>,
+    its error as for pooled populations (sqrt(sum se^2)/n, plus the spread between the torsions
+    where Cochran's Q finds them heterogeneous: :func:`~dihedra.numerics.heterogeneity.pooled_mean_error`);
+    the parameter-set spread of the pooled means when ``family`` (n_sets, n_torsions) is given."""
     rows = []
-    for typ, idx in frame.groupby("type", sort=False).indices.items():
+    for (typ, _), idx in frame.groupby(["type", "coupled_atoms"], sort=False).indices.items():
         if len(idx) < 2:
             continue
         sub = frame.iloc[idx]
@@ -212,8 +327,9 @@ def _pool_by_type(frame, family=None):
             systematic = float(np.std(family[:, idx].mean(axis=1), ddof=1))
         else:
             systematic = float(sub["j_systematic_hz"].iloc[0])
+        pooled = pooled_mean_error(sub["j_hz"].to_numpy(), sub["j_err_hz"].to_numpy())
         rows.append({**sub.iloc[0].to_dict(), "level": "type", "torsion": "", "j_hz": sub["j_hz"].mean(),
-                     "j_err_hz": np.sqrt(np.sum(sub["j_err_hz"] ** 2)) / len(idx),
+                     "j_err_hz": pooled["se"],
                      "j_systematic_hz": systematic, "n_samples": sub["n_samples"].sum()})
     return pd.DataFrame(rows, columns=frame.columns)
 
@@ -226,19 +342,20 @@ def _relation_couplings(result, rel, select, notices, universe):
     rep = np.asarray(blocks["hist_block_replica"])
     labels = np.array(result.torsion_set.labels)
     types = np.array(result.torsion_set.types)
-    pos = choose_torsions(result, rel, select, notices)
-    kern, subs = relation_kernels(rel, result, pos, notices, universe)
+    pos, extra, coupled = coupling_rows(result, rel, choose_torsions(result, rel, select, notices), notices, universe)
+    kern, subs = relation_kernels(rel, result, pos, notices, universe, extra)
     j, err, n = couplings_from_histograms(hist[:, pos, :], rep, kern)
     systematic = np.full(len(pos), np.nan if rel.systematic_hz is None else float(rel.systematic_hz))
     family = None
     if rel.name in HN_HA_FAMILY:
         family = np.array([couplings_from_histograms(hist[:, pos, :], rep,
-                                                     relation_kernels(get_relation(f), result, pos)[0])[0]
+                                                     relation_kernels(get_relation(f), result, pos,
+                                                                      extra_offsets=extra)[0])[0]
                            for f in HN_HA_FAMILY])
         systematic = np.std(family, axis=0, ddof=1)
     frame = pd.DataFrame({"relation": rel.name, "coupling": rel.coupling, "level": "torsion",
-                          "torsion": labels[pos], "type": types[pos], "j_hz": j, "j_err_hz": err,
-                          "j_systematic_hz": systematic, "systematic_basis": rel.systematic_basis,
+                          "torsion": labels[pos], "type": types[pos], "coupled_atoms": coupled, "j_hz": j,
+                          "j_err_hz": err, "j_systematic_hz": systematic, "systematic_basis": rel.systematic_basis,
                           "n_samples": n})
     used = {labels[k]: s for k, s in zip(pos, subs)} if rel.form == "haasnoot-altona" else {}
     pooled = _pool_by_type(frame, family)
@@ -272,8 +389,9 @@ class CouplingResult:
     Attributes
     ----------
     couplings : DataFrame
-        relation, coupling, level (``torsion`` / ``type``), torsion, type, j_hz, j_err_hz,
-        j_systematic_hz, systematic_basis, n_samples.
+        relation, coupling, level (``torsion`` / ``type``), torsion, type, coupled_atoms (the two
+        protons, e.g. ``HN,HA``; a glycine has rows ``HN,HA1``, ``HN,HA2`` and ``HN,HA1+HA2``),
+        j_hz, j_err_hz, j_systematic_hz, systematic_basis, n_samples.
     relations : list of dict
         Descriptions of the relations used.
     notices : list of str

@@ -62,6 +62,8 @@ def read_experimental(path):
 def _match(label, table):
     """Row of ``table`` (one relation) for an experimental label, or None, plus how it matched."""
     rows = table[(table["level"] == "torsion") & (table["torsion"] == label)]
+    if len(rows) > 1 and "coupled_atoms" in rows:   # a glycine: the one splitting is the sum row
+        rows = rows[rows["coupled_atoms"].astype(str).str.contains("+", regex=False)]
     if len(rows) == 1:
         return rows.iloc[0], "torsion"
     rows = table[(table["level"] == "type") & (table["type"] == label)]

@@ -131,6 +131,15 @@ class KarplusRelation:
             raise DihedraError(f"relation {self.name!r} ({self.form}) lacks the coefficient(s) "
                                f"{', '.join(missing)}; give {', '.join(need)}.")
 
+    def coupled_atoms(self):
+        """The atoms whose coupling the relation gives, as text (``H-N-CA-HA (3J(HN,HA) through
+        protein phi)``)."""
+        if self.applies_to == "phi":
+            return f"H-N-CA-HA ({self.coupling} through protein phi, C-N-CA-C)"
+        if self.applies_to == "H-C-C-H":
+            return f"H-C-C-H ({self.coupling} of two vicinal protons)"
+        return f"the end atoms of any torsion ({self.coupling})"
+
     def evaluate(self, phi_deg, substituents=()):
         """J in Hz at torsion angle(s) ``phi_deg``.
 
@@ -275,8 +284,11 @@ def substituents_of(universe, quad, relation, coords, elements):
     h, c1, c2, h2 = (int(i) for i in quad)
     if [elements[i] for i in quad] != ["H", "C", "C", "H"]:
         got = "-".join(elements[i] for i in quad)
-        raise DihedraError(f"{relation.name} needs H-C-C-H torsions; torsion with atoms {list(quad)} has "
-                           f"elements {got}. Track the H-C-C-H torsion itself (e.g. --torsions A,B,C,D).")
+        atoms = universe.atoms[[h, c1, c2, h2]]
+        named = "-".join(f"{a.resname}{a.resid}.{a.name}" for a in atoms)
+        raise DihedraError(f"{relation.name} needs H-C-C-H torsions; the torsion {named} (atoms "
+                           f"{', '.join(str(i) for i in (h, c1, c2, h2))}) has the elements {got}. Track the "
+                           "H-C-C-H torsion itself (e.g. --torsions A,B,C,D).")
 
     def neighbours(i):
         return [int(a.index) for a in universe.atoms[i].bonded_atoms]
