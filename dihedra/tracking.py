@@ -127,8 +127,8 @@ def _frame_indices(universe, start, stop, step, where):
 def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche", *, start=None,
           stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
-          bin_width_deg=1.0, chunk_frames=None, threads=None, keep_variants=False, progress=None, log=None,
-          discard=None, target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL):
+          bin_width_deg=1.0, chunk_frames=None, threads=None, keep_variants=False, allow_duplicates=False,
+          progress=None, log=None, discard=None, target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL):
     """Follow torsions through one or more replica trajectories, and write a results folder.
 
     Parameters
@@ -172,6 +172,9 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
         Type protein and nucleic-acid torsions by the topology's residue name (``HSD:psi``)
         instead of the standard residue (``HIS:psi``, the default); see
         :func:`~dihedra.selection.specs.select_torsions`.
+    allow_duplicates : bool
+        Accept the same trajectory (the same SHA-256) twice as two replicas; by default that is
+        refused, since copies are not independent samples and would shrink every error.
     threads : int, optional
         Threads per pass: 2 lets a second thread compute while the first reads the trajectory
         (serial runs; each worker of a parallel run uses one thread). Default: 2 for a serial run
@@ -203,6 +206,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
     try:
         run.begin(topology, trajectories, torsions, scheme, weights)
         scheme = get_scheme(scheme)
+        digests = _check_duplicates(trajectories, allow_duplicates, run.notices) if group is None else {}
         universes = _universes(group, topology, trajectories, run.notices)
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions,
                                                                                             keep_variants=keep_variants)
@@ -233,6 +237,8 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
             _run_pass(tp, traj, int(fr[0]) if drop[r] else start, stop, step, backend, n_workers, progress, r,
                       len(universes))
             replicas.append(replica_info(u, traj, fr, tp, dt_ps, run.notices))
+            if traj in digests:
+                replicas[-1]["sha256"] = digests[traj]
         params = dict(start=start, stop=stop, step=step, workers=n_workers, threads=int(run.passes[0].threads),
                       backend=backend if isinstance(backend, str) else type(backend).__name__,
                       scheduler=None if scheduler is None else str(backend.client.scheduler.address),
@@ -240,7 +246,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
                       weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
                       n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg, temperature_k=temperature_k,
                       discard=discard_record, target_error=target_error, target_error_kj_mol=target_error_kj_mol,
-                      keep_variants=bool(keep_variants))
+                      keep_variants=bool(keep_variants), allow_duplicates=bool(allow_duplicates))
         return run.finish(tset, scheme, universes[0], topology, replicas, params)
     finally:
         run.close()
@@ -365,6 +371,29 @@ def _inputs(topology, trajectories):
     if not trajectories:
         raise DihedraError("give at least one trajectory.")
     return None, os.fspath(topology), trajectories
+
+
+def _check_duplicates(trajectories, allow, notices):
+    """SHA-256 of every trajectory (when there are several); the same file twice is refused
+    unless ``allow`` (then a notice)."""
+    if len(trajectories) < 2:
+        return {}
+    from .trajectory.inputs import sha256
+
+    digests, first = {}, {}
+    for k, t in enumerate(trajectories):
+        check_readable(t, "trajectory")
+        digests[t] = sha256(t)
+        if digests[t] in first:
+            j = first[digests[t]]
+            text = (f"replicas {j} ({trajectories[j]}) and {k} ({t}) are the same trajectory (same SHA-256)")
+            if not allow:
+                raise DihedraError(f"{text}: copies are not independent replicas and would shrink every error; "
+                                   "give each trajectory once, or --allow-duplicates if you mean it.")
+            notices.append(f"{text}; kept as asked (--allow-duplicates), but they are not independent: errors "
+                           "and replica spreads are too small.")
+        first.setdefault(digests[t], k)
+    return digests
 
 
 def _universes(group, topology, trajectories, notices):

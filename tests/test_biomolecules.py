@@ -151,3 +151,27 @@ def test_hn_ha_couplings_only_where_there_is_an_amide_h_and_both_glycine_protons
     # a relation with no torsion it couples is an error
     with pytest.raises(DihedraError, match="H-C-C-H"):
         dihedra.ensemble_couplings(adk_backbone, "karplus-1959")
+
+
+def test_kinetics_say_when_their_numbers_are_weak(tmp_path, capsys):
+    out = str(tmp_path / "k")
+    # the same trajectory twice is refused: copies are not independent replicas
+    assert main(["track", data.PSF, data.DCD, data.DCD, "--torsions", "protein-backbone", "--out", out]) == 2
+    assert "same SHA-256" in capsys.readouterr().err
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--keep-angles", "--out", out]) == 0
+    res = dihedra.state_kinetics(dihedra.load_results(out), dt_ps=1.0, n_bootstrap=0)
+    # 98 frames: lags above a tenth of the run are left out, with a notice
+    assert res.parameters["lags_frames"] == [1, 2, 5]
+    assert any("left out" in n for n in res.notices)
+    lt = res.lifetimes
+    # a state never left: its mean dwell is a lower bound, marked
+    never_left = lt[(lt["n_segments"] == 0) & (lt["n_censored"] > 0)]
+    assert len(never_left) and never_left["mean_restricted"].all()
+    # counted and rate-implied populations that differ by more than a factor 1.5 are flagged
+    pc, pr = lt["population_counted"], lt["population_from_rates"]
+    ratio = np.maximum(pc, pr) / np.minimum(pc, pr)
+    expect = (ratio > 1.5) & ((pc - pr).abs() > 0.05)
+    assert (lt["population_mismatch"] == expect).all() and expect.any()
+    assert main(["kinetics", out, "--dt-ps", "1", "--bootstrap", "0"]) == 0
+    printed = capsys.readouterr().out
+    assert ">=" in printed

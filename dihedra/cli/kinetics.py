@@ -92,8 +92,10 @@ def report_kinetics(res, folder=None, written=(), max_types=6, max_conformer_row
             width = max(8, max(len(s) for s in rows["state"]))
             print(f"  {'state':<{width}}  population (counted / from rates)  lifetime mean [95% CI] ps   median ps")
             for r in rows.itertuples(index=False):
-                print(f"  {r.state:<{width}}  {r.population_counted:10.3f} / {_fmt(r.population_from_rates, '5.3f')}"
-                      f"            {_fmt(r.mean_ps, '8.1f')} [{_fmt(r.ci_low_ps, '.1f')}, {_fmt(r.ci_high_ps, '.1f')}]"
+                low = ">=" if bool(r.mean_restricted) else "  "
+                flag = " !" if bool(getattr(r, "population_mismatch", False)) else "  "
+                print(f"  {r.state:<{width}}  {r.population_counted:10.3f} / {_fmt(r.population_from_rates, '5.3f')}{flag}"
+                      f"        {low}{_fmt(r.mean_ps, '8.1f')} [{_fmt(r.ci_low_ps, '.1f')}, {_fmt(r.ci_high_ps, '.1f')}]"
                       f"   {_fmt(r.median_ps, '8.1f')}")
             shown = sub_t.sort_values("count", ascending=False)
             if level == "conformer":

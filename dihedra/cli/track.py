@@ -20,6 +20,9 @@ def register(sub):
     p.add_argument("--out", required=True, metavar="DIR", help="results folder to create")
     add_track_options(p)
     add_convergence_options(p)
+    p.add_argument("--allow-duplicates", action="store_true",
+                   help="accept the same trajectory file twice as two replicas (refused by default: copies "
+                        "are not independent and would shrink every error)")
     p.set_defaults(func=run)
 
 
@@ -42,8 +45,8 @@ def run(args):
                    backend=args.backend, scheduler=args.scheduler, keep_angles=args.keep_angles, weights=args.weights,
                    out=args.out, overwrite=args.overwrite, dt_ps=args.dt_ps,
                    temperature_k=args.temperature, threads=args.threads, keep_variants=args.keep_variants,
-                   log=say, discard=_discard_value(args.discard), target_error=args.target_error,
-                   target_error_kj_mol=args.target_error_kj_mol)
+                   allow_duplicates=args.allow_duplicates, log=say, discard=_discard_value(args.discard),
+                   target_error=args.target_error, target_error_kj_mol=args.target_error_kj_mol)
     report_track(result)
 
 

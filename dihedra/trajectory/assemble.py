@@ -233,7 +233,8 @@ def make_summary(topology, replicas, scheme, tset, params, notices, seconds):
     """The summary of a run (``summary.json``): ``replicas`` from :func:`replica_info`, each given
     the SHA-256 of its trajectory here."""
     for info in replicas:
-        info["sha256"] = _sha256_of(info["trajectory"])
+        if not info.get("sha256"):
+            info["sha256"] = _sha256_of(info["trajectory"])
     return {
         "dihedra_version": __version__,
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),

@@ -28,6 +28,13 @@ from .markov import DEFAULT_LAGS
 from .tables import _merged_segments, _Stack, _stack_tables, _tables
 from .tally import _dense_counts, tally_result
 
+#: Lags longer than this fraction of the shortest replica are left out (with a notice).
+MAX_LAG_FRACTION = 0.1
+#: Counted and rate-implied populations are flagged when they differ by more than this factor
+#: and by more than POPULATION_MISMATCH_ABS.
+POPULATION_MISMATCH_RATIO = 1.5
+POPULATION_MISMATCH_ABS = 0.05
+
 #: The tables of a :class:`KineticsResult` and their files, in the order they are written.
 TABLE_FILES = (("transitions", "transitions.csv"), ("lifetimes", "lifetimes.csv"),
                ("dwell_times", "dwell_times.csv"), ("dwell_survival", "dwell_survival.csv"),
@@ -115,6 +122,48 @@ def frame_interval_ps(summary, dt_ps=None):
                            f"({', '.join(f'{v:g}' for v in values)} ps); analyse them in separate "
                            "folders or use --step so that they match.")
     return values[0], source
+
+
+def _duplicate_replicas(replicas):
+    """Pairs (i, j) of replicas with the same SHA-256."""
+    seen, out = {}, []
+    for k, rep in enumerate(replicas):
+        digest = rep.get("sha256")
+        if digest and digest in seen:
+            out.append((seen[digest], k))
+        elif digest:
+            seen[digest] = k
+    return out
+
+
+def _weak_number_notices(tables, plan):
+    """Flag what the tables cannot support: counted and rate-implied populations that disagree,
+    implied timescales longer than the run, dwell times never ended (lower bounds)."""
+    lt, ts = tables["lifetimes"], tables["timescales"]
+    if len(lt):
+        pc, pr = lt["population_counted"].to_numpy(float), lt["population_from_rates"].to_numpy(float)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = np.maximum(pc, pr) / np.minimum(pc, pr)
+        bad = (np.abs(pc - pr) > POPULATION_MISMATCH_ABS) & ~(ratio <= POPULATION_MISMATCH_RATIO)
+        bad &= np.isfinite(pr)
+        lt["population_mismatch"] = bad
+        if bad.any():
+            first = lt[bad].iloc[0]
+            plan.notices.append(
+                f"{int(bad.sum())} state(s) have counted and rate-implied populations that differ by more than "
+                f"a factor {POPULATION_MISMATCH_RATIO:g} (e.g. {first['name']} {first['state']}: "
+                f"{first['population_counted']:.3f} counted, {first['population_from_rates']:.3f} from rates; "
+                "population_mismatch in lifetimes.csv): too few transitions for the rates to describe the run.")
+        low = lt["mean_restricted"].astype(bool)
+        if low.any():
+            plan.notices.append(f"{int(low.sum())} mean dwell time(s) are lower bounds (the longest visit was still "
+                                "going on at the end of a trajectory: mean_restricted in lifetimes.csv, >= on screen).")
+    if len(ts):
+        run_ps = max(plan.frames_per_rep) * plan.dt
+        long = ts["timescale_ps"].to_numpy(float) > run_ps
+        if long.any():
+            plan.notices.append(f"{int(long.sum())} implied timescale(s) exceed the length of the longest replica "
+                                f"({run_ps:g} ps): the run cannot resolve them; read them as 'slower than the run'.")
 
 
 def _temperature(temperature_k, summary):
@@ -210,11 +259,17 @@ def _plan(result, assignment, core_margin_deg, lags, types, dt_ps, temperature_k
     selected = _select_torsions(torsions, types)
     notices = []
     frames_per_rep = [int(r["frames_analysed"]) for r in summary["replicas"]]
-    lags_used = [x for x in lags_req if x < max(frames_per_rep)]
+    longest = max(MAX_LAG_FRACTION * min(frames_per_rep), 1)
+    lags_used = [x for x in lags_req if x <= longest]
     if len(lags_used) < len(lags_req):
         dropped = [x for x in lags_req if x not in lags_used]
-        notices.append(f"lag(s) {', '.join(map(str, dropped))} frames are not shorter than the longest "
-                       f"replica ({max(frames_per_rep)} frames) and were left out.")
+        notices.append(f"lag(s) {', '.join(map(str, dropped))} frames were left out: longer than "
+                       f"{MAX_LAG_FRACTION:g} of the shortest replica ({min(frames_per_rep)} frames), a Markov "
+                       "model at such a lag rests on too few lag windows to say anything.")
+    duplicates = _duplicate_replicas(summary["replicas"])
+    if duplicates:
+        notices.append(f"replicas {duplicates[0][0]} and {duplicates[0][1]} are the same file (same SHA-256): "
+                       "they are not independent, and every count and error treats them as if they were.")
     if summary.get("parameters", {}).get("weights"):
         notices.append("the folder was made with per-frame weights (a biased run); kinetics ignore the "
                        "weights, and the dynamics of a biased run are not those of the unbiased system.")
@@ -350,7 +405,8 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     core_margin_deg : float
         Margin by which every sector is shrunk on both sides to make its core (default 20).
     lags : sequence of int
-        Lags in frames for the Markov models and implied timescales.
+        Lags in frames for the Markov models and implied timescales; lags longer than
+        :data:`MAX_LAG_FRACTION` of the shortest replica are left out with a notice.
     types : list of str, optional
         Only torsions of these types (conformers only for groups made entirely of them).
     dt_ps : float, optional
@@ -400,6 +456,7 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     parts = _torsion_parts(plan, t_tally, state_labels, rng, torsion_bootstrap)
     parts += _conformer_parts(plan, c_tally, scheme, pool, conf_types, rng)
     tables = _tables(parts)
+    _weak_number_notices(tables, plan)
     _barrier_notices(plan, tables["transitions"], scheme, barriers, profile_temperature_k)
     return KineticsResult(notices=plan.notices, run_seconds=time.time() - t0,
                           parameters=_parameters(plan, result, assignment, types, seed, torsion_bootstrap), **tables)
