@@ -32,7 +32,7 @@ from .io.outputs import StagedFolder
 from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
 from .io.tables import write_json, write_table
-from .selection.schemes import get_scheme
+from .selection.schemes import default_scheme, get_scheme
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
 from .trajectory.assemble import assemble_result, block_sums, make_summary, replica_info
@@ -124,7 +124,7 @@ def _frame_indices(universe, start, stop, step, where):
     return frames
 
 
-def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche", *, start=None,
+def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, start=None,
           stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
           bin_width_deg=1.0, chunk_frames=None, threads=None, keep_variants=False, allow_duplicates=False,
@@ -141,8 +141,10 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
         One trajectory per replica of the same system (with a topology file).
     torsions : str or list of str or TorsionSet
         Torsion specifications (see :func:`dihedra.selection.specs.select_torsions`).
-    scheme : str or StateScheme
-        State scheme name or TOML file (see :func:`dihedra.selection.schemes.get_scheme`).
+    scheme : str or StateScheme, optional
+        State scheme name or TOML file (see :func:`dihedra.selection.schemes.get_scheme`); default
+        ``protein`` when only protein torsions are chosen (cis/trans omega, side-chain rotamer
+        wells), else ``anti-gauche``.
     start, stop, step : int, optional
         Frame range, applied to every replica.
     workers : int
@@ -205,7 +207,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme="anti-gauche
     group, topology, trajectories = _inputs(topology, trajectories)
     try:
         run.begin(topology, trajectories, torsions, scheme, weights)
-        scheme = get_scheme(scheme)
+        scheme = get_scheme(default_scheme(torsions) if scheme is None else scheme)
         digests = _check_duplicates(trajectories, allow_duplicates, run.notices) if group is None else {}
         universes = _universes(group, topology, trajectories, run.notices)
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions,

@@ -175,3 +175,23 @@ def test_kinetics_say_when_their_numbers_are_weak(tmp_path, capsys):
     assert main(["kinetics", out, "--dt-ps", "1", "--bootstrap", "0"]) == 0
     printed = capsys.readouterr().out
     assert ">=" in printed
+
+
+def test_protein_backbone_reports_omega_as_cis_or_trans(adk_backbone):
+    # the default scheme of protein torsions: omega cis/trans, phi and psi anti/gauche
+    assert adk_backbone.scheme.name == "protein"
+    pops = adk_backbone.populations
+    omega = pops[pops["type"].str.endswith(":omega")]
+    assert set(omega["state"]) == {"trans", "cis"}
+    assert set(pops[pops["type"] == "ALA:phi"]["state"]) == {"anti", "gauche+", "gauche-"}
+    # the PHE86-PRO87 peptide bond of adenylate kinase turns cis in part of this trajectory; the
+    # fraction equals that of MDAnalysis' own angles with |omega| < 90 (reference library)
+    from MDAnalysis.lib.distances import calc_dihedrals
+
+    u = mda.Universe(data.PSF, data.DCD)
+    atoms = [u.select_atoms(f"resid {r} and name {n}")[0].index for r, n in ((86, "CA"), (86, "C"), (87, "N"), (87, "CA"))]
+    w = np.array([np.degrees(calc_dihedrals(*(ts.positions[[i]] for i in atoms)))[0] for ts in u.trajectory])
+    cis = omega[(omega["torsion"] == "PHE86:omega") & (omega["state"] == "cis")]["population"].iloc[0]
+    assert cis == pytest.approx(np.mean(np.abs(w) < 90)) and cis > 0.1
+    by_type = adk_backbone.populations_by_type
+    assert set(by_type[by_type["type"] == "PHE:omega"]["state"]) == {"trans", "cis"}

@@ -87,8 +87,11 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
     codes = np.empty(n, dtype=np.int8)
     undefined = np.zeros(n, dtype=np.int64)
     bins = np.empty((1, n), dtype=np.uint16)
-    _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table, np.asarray(scheme.boundaries_deg, dtype=float),
-                          np.asarray(scheme.start_closed, dtype=bool), np.asarray(scheme.arc_states, dtype=np.int8),
+    nb = len(scheme.boundaries_deg)
+    _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table[None, :], np.zeros(n, dtype=np.int64),
+                          np.asarray(scheme.boundaries_deg, dtype=float)[None, :], np.array([nb]),
+                          np.asarray(scheme.start_closed, dtype=bool)[None, :],
+                          np.asarray(scheme.arc_states, dtype=np.int8)[None, :],
                           MIXED, bins[0], codes, counts, 1, undefined)
     _kernels.add_histograms(bins, np.zeros(1, dtype=np.intp), np.ones(1, dtype=np.int32), hist)
     hist = hist[0]
@@ -190,3 +193,29 @@ def test_compiled_blocking_equals_reference(case):
         # the same operations in the same order: the same bits (NaN where the reference has NaN)
         np.testing.assert_array_equal(a, b)
     assert np.isfinite(ref[1]).any() or len(values) < 2
+
+
+def test_a_set_of_schemes_codes_each_torsion_by_its_own_part():
+    # the pass gives every torsion the codes of its own part of a set of schemes (omega cis/trans,
+    # chi rotamer wells): the same as the part's exact rule on the same float32 angles
+    from dihedra.numerics import _kernels
+    from dihedra.trajectory.histograms import MIXED, bin_state_tables
+
+    scheme = get_scheme("protein")
+    types = ["ALA:omega", "ALA:phi", "LYS:chi1", "PHE:chi2", "HIS:chi2", "ARG:chi5"] * 400
+    rng = np.random.default_rng(2)
+    deg = rng.uniform(-180, 180, len(types)).astype(np.float32)
+    deg[:48] = np.repeat(np.float32([-135, -120, -90, -45, 0, 45, 90, 120]), 6)   # boundaries of the parts
+    n_bins = 360
+    table, args = bin_state_tables(scheme, types, n_bins)
+    n = len(deg)
+    counts = np.zeros((n, scheme.n_states), dtype=np.int64)
+    codes = np.empty(n, dtype=np.int8)
+    bins = np.empty(n, dtype=np.uint16)
+    _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table, *args, MIXED, bins, codes, counts, 1,
+                          np.zeros(n, dtype=np.int64))
+    expect = np.array([scheme.for_type(t).assign([float(a)])[0] for t, a in zip(types, deg)])
+    np.testing.assert_array_equal(codes, expect)
+    # every torsion only takes states of its own part
+    for t, c in zip(types, codes):
+        assert scheme.labels[c] in scheme.states_of_type(t)

@@ -117,3 +117,36 @@ def test_scheme_round_trips_through_its_dict():
     for name in ("anti-gauche", "klyne-prelog", "staggered-eclipsed:2"):
         s = get_scheme(name)
         assert type(s).from_dict(s.to_dict()) == s
+
+
+def test_protein_schemes_by_their_definitions():
+    # cis-trans: the two planar wells of a peptide bond split at +-90 (common practice; cis = omega
+    # near 0, IUPAC-IUB, J. Mol. Biol. 52 (1970) 1)
+    ct = get_scheme("cis-trans")
+    assert [ct.labels[c] for c in ct.assign([180.0, -179.0, 91.0, 90.0, -90.0, 0.0, 30.0, -89.9])] == \
+        ["trans", "trans", "trans", "trans", "trans", "cis", "cis", "cis"]
+    protein = get_scheme("protein")
+    # staggered chi wells g+ (+60), t (180), g- (-60) (Janin et al., J. Mol. Biol. 125 (1978) 357;
+    # IUPAC-IUB 1970 sign)
+    chi1 = protein.for_type("VAL:chi1")
+    assert [protein.labels[c] for c in chi1.assign([60.0, 180.0, -60.0, 121.0, -121.0])] == \
+        ["g+", "t", "g-", "t", "t"]
+    # Phe chi2 wells at +-90 (ring perpendicular; Lovell et al., Proteins 40 (2000) 389, p90, t80,
+    # m-85) and the symmetric end: chi2 and chi2 + 180 are the same state
+    phe = protein.for_type("PHE:chi2")
+    for a in (90.0, -85.0, 80.0, 10.0, -170.0):
+        assert phe.assign([a])[0] == phe.assign([a - 180.0 if a > 0 else a + 180.0])[0]
+    assert protein.labels[phe.assign([90.0])[0]] == "90/-90"
+    assert protein.labels[phe.assign([-30.0])[0]] == "0/180"       # Lovell's m-30
+    # His chi2 (not symmetric): Lovell's p80, t-160, m-70 in three different wells
+    his = protein.for_type("HSD:chi2")
+    assert [protein.labels[his.assign([a])[0]] for a in (80.0, -160.0, -70.0, 0.0)] == ["+90", "180", "-90", "0"]
+    # phi, psi and other torsions keep anti-gauche; the nucleic-acid glycosidic chi too
+    assert protein.states_of_type("ALA:psi") == ["anti", "gauche+", "gauche-"]
+    assert protein.states_of_type("G:chi") == ["anti", "gauche+", "gauche-"]
+    # the default scheme: protein for protein torsions only
+    from dihedra.selection.schemes import default_scheme
+
+    assert default_scheme(["protein-backbone", "protein-sidechains"]) == "protein"
+    assert default_scheme("rotatable") == "anti-gauche"
+    assert default_scheme(["protein-backbone", "rotatable"]) == "anti-gauche"

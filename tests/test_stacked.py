@@ -310,7 +310,7 @@ def test_threads_and_chunks_give_the_serial_result(tmp_path, monkeypatch):
     top, traj = write_system(str(tmp_path), chain5_coordinates(angles[:, :8], angles[:, 8:]),
                              names=("C1", "C2", "C3", "C4", "C5"), resname="PEN", stem="parts")
     out = str(tmp_path / "res")
-    track(top, [traj, traj], torsions="rotatable", keep_angles=True, out=out)
+    track(top, [traj, traj], torsions="rotatable", keep_angles=True, out=out, allow_duplicates=True)
     serial = kin.state_kinetics(load_results(out), lags=[1, 3], n_bootstrap=30)
     assert (serial.lifetimes["level"] == "conformer").any()
     monkeypatch.setattr(kin_tally, "_THREADS", 3)

@@ -341,7 +341,12 @@ def _features_side_by_side(prof, kt, mask, s_minima, s_barriers):
 def _state_rows(t, ctx, kt):
     """Sampled against predicted populations and state free energies of type ``t``; and the
     reference (most populated) state."""
-    scheme, pops, pred_pops = ctx["scheme"], ctx["pops"], ctx["pred_pops"]
+    scheme, pops = ctx["scheme"], ctx["pops"]
+    part = scheme.for_type(t)   # the type's own scheme (a set of schemes has several)
+    if part not in ctx["pred_pops"]:
+        ctx["pred_pops"][part] = predicted_state_populations(ctx["scan"], part, kt)
+    pred_pops = ctx["pred_pops"][part]
+    own = set(scheme.states_of_type(t))
     dg_rows = state_free_energies(ctx["sc"][:, ctx["members"][t], :].sum(axis=1), ctx["sc_rep"], scheme.labels,
                                   kt, ctx["smult"])
     dg = {r["state"]: r for r in dg_rows}
@@ -349,6 +354,8 @@ def _state_rows(t, ctx, kt):
     ref_k = scheme.labels.index(ref)
     states = []
     for k, label in enumerate(scheme.labels):
+        if label not in own:
+            continue
         p = float(pops.loc[(t, label), "population"]) if (t, label) in pops.index else np.nan
         pe = float(pops.loc[(t, label), "population_err"]) if (t, label) in pops.index else np.nan
         z = (p - pred_pops[k]) / pe if pe and np.isfinite(pe) and pe > 0 else np.nan
@@ -475,7 +482,7 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
     ctx = {"temperature_k": temperature_k, "scheme": result.scheme, "sc": sc, "sc_rep": sc_rep, "smult": smult,
            "members": {t: [k for k, x in enumerate(result.torsion_set.types) if x == t] for t in order},
            "pops": result.populations_by_type.set_index(["type", "state"]),
-           "pred_pops": predicted_state_populations(scan, result.scheme, kt),
+           "pred_pops": {}, "scan": scan,
            "s_minima": s_minima, "s_barriers": s_barriers}
     rows, prof_rows, per_type = [], [], {}
     for t in types:

@@ -19,9 +19,11 @@ def add_torsion_options(parser, required=True):
 
 
 def add_scheme_option(parser):
-    parser.add_argument("--scheme", default="anti-gauche", metavar="NAME",
-                        help="state scheme: anti-gauche (default), staggered-eclipsed[:N], "
-                             "klyne-prelog, or a .toml file of named sectors")
+    parser.add_argument("--scheme", default=None, metavar="NAME",
+                        help="state scheme: anti-gauche, staggered-eclipsed[:N], klyne-prelog, cis-trans, "
+                             "chi-rotamers, protein (cis-trans omega, rotamer wells of chi, anti-gauche "
+                             "otherwise), or a .toml file of named sectors; default: protein when only "
+                             "protein torsions are tracked, else anti-gauche"),
 
 
 def add_track_options(parser):
@@ -74,17 +76,24 @@ def format_pm(value, err, digits=3):
 
 
 def print_population_table(by_type, state_order, out=None, max_rows=40):
-    """Pooled populations as a compact table: one row per type, one column per state."""
+    """Pooled populations as compact tables: one row per type, one column per state; types whose
+    torsions take different states (a set of schemes: omega cis/trans, chi rotamers) get a table
+    each."""
     out = out or sys.stdout
     types = list(dict.fromkeys(by_type["type"]))
     key = by_type.set_index(["type", "state"])
+    states_of = by_type.groupby("type", sort=False)["state"].agg(lambda x: tuple(x))
     width = max([len("type")] + [len(t) for t in types[:max_rows]])
-    cols = [s for s in state_order if s in set(by_type["state"])]
     cell = 15
-    print(f"{'type':<{width}}  {'n':>4}  " + "  ".join(f"{s:>{cell}}" for s in cols), file=out)
-    for t in types[:max_rows]:
-        n = int(key.loc[(t, cols[0]), "n_torsions"])
-        cells = [format_pm(key.loc[(t, s), "population"], key.loc[(t, s), "population_err"]) for s in cols]
-        print(f"{t:<{width}}  {n:>4}  " + "  ".join(f"{c:>{cell}}" for c in cells), file=out)
+    shown = types[:max_rows]
+    for states in dict.fromkeys(states_of[t] for t in shown):
+        cols = [s for s in state_order if s in states]
+        print(f"{'type':<{width}}  {'n':>4}  " + "  ".join(f"{s:>{cell}}" for s in cols), file=out)
+        for t in shown:
+            if states_of[t] != states:
+                continue
+            n = int(key.loc[(t, cols[0]), "n_torsions"])
+            cells = [format_pm(key.loc[(t, s), "population"], key.loc[(t, s), "population_err"]) for s in cols]
+            print(f"{t:<{width}}  {n:>4}  " + "  ".join(f"{c:>{cell}}" for c in cells), file=out)
     if len(types) > max_rows:
         print(f"... and {len(types) - max_rows} more types (see populations_by_type.csv)", file=out)

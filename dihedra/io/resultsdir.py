@@ -40,7 +40,7 @@ from __future__ import annotations
 import os
 
 from ..errors import InputFileError
-from ..selection.schemes import StateScheme
+from ..selection.schemes import scheme_from_dict
 from ..selection.torsions import TorsionSet
 from ..trajectory.result import TrackResult
 from .blocks import load_blocks, narrowed_type, save_npz
@@ -84,6 +84,6 @@ def load_results(folder):
     summary = read_json(folder, "summary.json")
     blocks = load_blocks(os.path.join(folder, "blocks.npz"))
     tset = TorsionSet.from_frame(tables["torsions"])
-    return TrackResult(torsion_set=tset, scheme=StateScheme.from_dict(summary["scheme"]), blocks=blocks,
+    return TrackResult(torsion_set=tset, scheme=scheme_from_dict(summary["scheme"]), blocks=blocks,
                        summary=summary, notices=list(summary.get("notices", [])),
                        folder=os.path.abspath(folder), series=ParquetSeries(os.path.abspath(folder)), **tables)

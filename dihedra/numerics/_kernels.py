@@ -172,16 +172,19 @@ def dihedrals_deg(bonds, lengths, inverse, out):
 
 
 @njit(**_OPTS)
-def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, boundaries, start_closed,
-                 arc_states, mixed, bins, codes, counts, weight, undefined):
+def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries,
+                 start_closed, arc_states, mixed, bins, codes, counts, weight, undefined):
     """One frame: fine bin, state code and state count of every torsion.
 
     ``bins`` receives k = ceil((a + shift_in) / width) + shift_out, clipped to 1..n_bins (0 for
     an undefined angle): the bin (-180 + (k-1) width, -180 + k width]. With an even number of
     bins, shift_in = 0 and shift_out = n_bins / 2, which is exact for float32 angles, also next
-    to 0 and to bin edges; else shift_in = 180, shift_out = 0. ``codes`` receives ``table[k]``
-    (``table[0]`` = -1, undefined); a bin whose entry is ``mixed`` is cut by a state boundary,
-    and its angles follow the exact rule of :meth:`dihedra.selection.schemes.StateScheme.assign` (last
+    to 0 and to bin edges; else shift_in = 180, shift_out = 0. Torsion t follows the scheme of
+    class ``classes[t]`` (one class per scheme of a set; a single scheme is class 0): ``codes``
+    receives ``table[class, k]`` (``table[:, 0]`` = -1, undefined); a bin whose entry is
+    ``mixed`` is cut by a state boundary of that class, and its angles follow the exact rule of
+    :meth:`dihedra.selection.schemes.StateScheme.assign` with the class's first
+    ``n_boundaries[class]`` entries of ``boundaries``, ``start_closed`` and ``arc_states`` (last
     boundary at or below the angle; a boundary owned by the previous arc moves one arc back).
     ``counts[t, code]`` (the current state block) gets ``weight``; an undefined angle adds 1 to
     ``undefined[t]`` instead.
@@ -194,20 +197,21 @@ def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, boundaries, sta
         k = 1.0 if k < 1.0 else k
         k = n_bins if k > n_bins else k
         bins[t] = np.uint16(k) if ok else np.uint16(0)
-    nb = boundaries.shape[0]
     for t in range(n):
-        code = table[bins[t]]
+        c = classes[t]
+        code = table[c, bins[t]]
         if code == mixed:
             a = np.float64(deg[t])
+            nb = n_boundaries[c]
             j = -1
             for m in range(nb):
-                if boundaries[m] <= a:
+                if boundaries[c, m] <= a:
                     j = m
             if j < 0:
                 j = nb - 1
-            if a == boundaries[j] and not start_closed[j]:
+            if a == boundaries[c, j] and not start_closed[c, j]:
                 j = (j - 1) % nb
-            code = arc_states[j]
+            code = arc_states[c, j]
         codes[t] = code
         if code >= 0:
             counts[t, code] += weight
@@ -262,8 +266,8 @@ def count_conformers(codes, local_block, members, powers, dense, weights, dense_
 
 @njit(**_OPTS)
 def frames(positions, idx3, bonds, lengths, inverse, cells, reach2, triclinic, deg, width,
-           shift_in, shift_out, n_bins, table, boundaries, start_closed, arc_states, mixed, bins,
-           codes, counts, state_block, weights, undefined):
+           shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries, start_closed, arc_states,
+           mixed, bins, codes, counts, state_block, weights, undefined):
     """Several frames in one call (no Python between them): for frame f, the angles
     (:func:`gather_bonds`, :func:`minimum_image_triclinic` if ``triclinic[f]``,
     :func:`dihedrals_deg` with ``lengths[f]`` / ``inverse[f]``) into ``deg[f]``, then
@@ -273,8 +277,8 @@ def frames(positions, idx3, bonds, lengths, inverse, cells, reach2, triclinic, d
         if triclinic[f]:
             minimum_image_triclinic(bonds, cells[f], reach2[f])
         dihedrals_deg(bonds, lengths[f], inverse[f], deg[f])
-        bin_and_code(deg[f], width, shift_in, shift_out, n_bins, table, boundaries, start_closed,
-                     arc_states, mixed, bins[f], codes[f], counts[state_block[f]], weights[f],
+        bin_and_code(deg[f], width, shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries,
+                     start_closed, arc_states, mixed, bins[f], codes[f], counts[state_block[f]], weights[f],
                      undefined)
 
 

@@ -50,7 +50,7 @@ def _torsions(folder, scheme):
         by_type = tors.groupby("type", sort=False).size().reset_index(name="torsions")
         parts.append(f"<p class='lead'>{len(tors)} torsions of {len(by_type)} type(s).</p>")
         parts.append(_table(by_type, headers=["type", "torsions"], what="types"))
-        cols = [c for c in ("torsion", "type", "atom_names", "atom_indices", "resname", "resid",
+        cols = [c for c in ("torsion", "type", "atom_names", "atom_indices", "resname", "variant", "resid",
                             "n_undefined_frames") if c in tors.columns]
         parts.append("<h3>Torsion table</h3>")
         parts.append(_table(tors, cols, what="torsions"))
@@ -58,7 +58,8 @@ def _torsions(folder, scheme):
         colours = state_colours(scheme)
         rows = pd.DataFrame(scheme.sector_table(), columns=["state", "from_deg", "to_deg"])
         rows.insert(0, "colour", [f"<span style='display:inline-block;width:0.9em;height:0.9em;"
-                                  f"background:{colours[s]}'></span>" for s in rows["state"]])
+                                  f"background:{colours[str(s).rpartition(': ')[2]]}'></span>"
+                                  for s in rows["state"]])   # a set of schemes: "part: state"
         parts.append(f"<h3>State scheme: {_e(scheme.name)}</h3>")
         parts.append(_table(rows, headers=["", "state", "from (deg)", "to (deg)"],
                             raw=("colour",), what="arcs"))

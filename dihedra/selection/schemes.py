@@ -18,6 +18,14 @@ Built-in schemes (state labels exactly as written):
     -150..-180), ``-ac``, ``-sc`` (Klyne & Prelog, Experientia 16 (1960) 521). IUPAC does not fix
     which sector owns a boundary; dihedra gives +-30 to ``sp``, +-90 to ``+-ac`` and +-150 to ``ap``.
 
+``cis-trans``
+    ``trans`` (\\|omega\\| >= 90) and ``cis``, for a peptide omega or any planar torsion.
+``chi-rotamers`` and ``protein`` (sets of schemes, :class:`SchemeSet`)
+    side-chain rotamer wells: ``g+``/``t``/``g-`` for chi about an sp3-sp3 bond, ``0``/``+90``/
+    ``180``/``-90`` for His and Trp chi2, Asn chi2 and Gln chi3, ``0/180``/``90/-90`` for the
+    symmetric Phe and Tyr chi2, Asp chi2 and Glu chi3; ``protein`` adds ``cis-trans`` for omega and
+    ``anti-gauche`` for the other torsions (phi, psi, nucleic-acid angles, ligands).
+
 Custom schemes come from a TOML file (:func:`scheme_from_toml`) of named circular intervals
 (``from_deg``, ``to_deg``], each open at its start and closed at its end, wrapping through 180
 allowed; together they must cover the circle exactly once.
@@ -28,6 +36,7 @@ every arc shrunk by a margin on both sides; angles outside every core get :data:
 
 from __future__ import annotations
 
+import functools
 import tomllib
 from dataclasses import dataclass
 
@@ -41,7 +50,7 @@ UNDEFINED = -1
 #: Core code of an angle that lies outside every core (see :meth:`StateScheme.core_codes`).
 NO_CORE = -2
 
-BUILTIN_SCHEMES = ("anti-gauche", "staggered-eclipsed", "klyne-prelog")
+BUILTIN_SCHEMES = ("anti-gauche", "staggered-eclipsed", "klyne-prelog", "cis-trans", "chi-rotamers", "protein")
 
 
 @dataclass(frozen=True)
@@ -68,6 +77,7 @@ class StateScheme:
     boundaries_deg: tuple
     arc_states: tuple
     start_closed: tuple
+    partial: bool = False
 
     def __post_init__(self):
         b = np.asarray(self.boundaries_deg, dtype=float)
@@ -84,12 +94,24 @@ class StateScheme:
         if len(self.labels) > 127:
             raise SchemeError(f"scheme {self.name!r} has {len(self.labels)} states; at most 127 are allowed.")
         used = set(int(s) for s in self.arc_states)
-        if used != set(range(len(self.labels))):
+        if used != set(range(len(self.labels))) and not (self.partial and used <= set(range(len(self.labels)))):
             raise SchemeError(f"scheme {self.name!r}: every state needs at least one arc.")
 
     @property
     def n_states(self):
         return len(self.labels)
+
+    def for_type(self, torsion_type):
+        """The scheme of torsions of ``torsion_type``: this one (see :meth:`SchemeSet.for_type`)."""
+        return self
+
+    def coded_parts(self):
+        """The schemes that torsions may follow, in this scheme's codes: ``[self]``."""
+        return [self]
+
+    def states_of_type(self, torsion_type):
+        """Labels a torsion of ``torsion_type`` can take: all of them."""
+        return list(self.labels)
 
     def arcs(self):
         """List of ``(state_code, start_deg, end_deg, start_closed)``; ``end_deg`` may exceed 180."""
@@ -243,6 +265,156 @@ def klyne_prelog():
                        tuple(remap[s] for s in scheme.arc_states), scheme.start_closed)
 
 
+def cis_trans():
+    """trans (\\|omega\\| >= 90) and cis (\\|omega\\| < 90): the two planar wells of a peptide bond (or
+    any amide or other planar torsion), split at the top of the two-fold barrier between them
+    (common practice; cis = omega near 0 as in IUPAC-IUB, J. Mol. Biol. 52 (1970) 1)."""
+    return _from_arcs("cis-trans", [("trans", 90.0, True), ("cis", -90.0, False)], labels=["trans", "cis"])
+
+
+def chi_sp3():
+    """Staggered rotamer wells of an sp3-sp3 side-chain torsion: g+ (0 < chi <= 120), t
+    (\\|chi\\| > 120), g- (-120 <= chi <= 0), the wells at +60, 180 and -60 (Janin, Wodak, Levitt &
+    Maigret, J. Mol. Biol. 125 (1978) 357; IUPAC-IUB 1970 sign, g+ = +60; Lovell et al., Proteins
+    40 (2000) 389 call them p, t, m)."""
+    return _from_arcs("chi-sp3", [("t", 120.0, False), ("g+", 0.0, False), ("g-", -120.0, True)],
+                      labels=["g+", "t", "g-"])
+
+
+def chi_sp2():
+    """Wells of an sp3-sp2 side-chain torsion whose planar end is not symmetric (His and Trp chi2,
+    Asn chi2, Gln chi3): 90-degree sectors about 0, +90, 180 and -90, the positions of the
+    rotamers of Lovell et al., Proteins 40 (2000) 389 (e.g. His p-80, p80, t-160, m170; Trp m0,
+    p90, t-105; Asn p-10, t30, m-80, m120); 0 means the first planar atom eclipses CA."""
+    return _from_arcs("chi-sp2", [("0", -45.0, False), ("+90", 45.0, False), ("180", 135.0, False),
+                                  ("-90", -135.0, False)], labels=["0", "+90", "180", "-90"])
+
+
+def chi_sp2_symmetric():
+    """Wells of an sp3-sp2 torsion whose planar end is symmetric (Phe and Tyr chi2, Asp chi2, Glu
+    chi3: the angle is defined only modulo 180): ``0/180`` (\\|chi\\| <= 45 or > 135) and ``90/-90``
+    (the ring or carboxylate perpendicular to the C-C-C plane; Phe p90, t80, m-85 of Lovell et al.,
+    Proteins 40 (2000) 389)."""
+    return _from_arcs("chi-sp2-symmetric", [("0/180", -45.0, False), ("90/-90", 45.0, False),
+                                            ("0/180", 135.0, False), ("90/-90", -135.0, False)],
+                      labels=["0/180", "90/-90"])
+
+
+#: Side-chain torsions about an sp3-sp2 bond (IUPAC-IUB 1970 names): symmetric planar end or not.
+SP2_CHI = {("PHE", "chi2"): "symmetric", ("TYR", "chi2"): "symmetric", ("ASP", "chi2"): "symmetric",
+           ("GLU", "chi3"): "symmetric", ("HIS", "chi2"): "planar", ("TRP", "chi2"): "planar",
+           ("ASN", "chi2"): "planar", ("GLN", "chi3"): "planar",
+           # Arg: NE-CZ of the guanidinium is planar (chi5, symmetric NH1/NH2), CD-NE is sp3-sp2 (chi4)
+           ("ARG", "chi4"): "planar", ("ARG", "chi5"): "symmetric"}
+
+#: The parts of the composite schemes and the rule that gives each torsion its part.
+COMPOSITES = {
+    "protein": (("anti-gauche", "cis-trans", "chi-sp3", "chi-sp2", "chi-sp2-symmetric"), "protein"),
+    "chi-rotamers": (("chi-sp3", "chi-sp2", "chi-sp2-symmetric"), "chi"),
+}
+_PARTS = {"anti-gauche": lambda: anti_gauche(), "cis-trans": cis_trans, "chi-sp3": chi_sp3, "chi-sp2": chi_sp2,
+          "chi-sp2-symmetric": chi_sp2_symmetric}
+
+
+def _part_name(rule, torsion_type):
+    """The part (scheme name) of a torsion type (``RES:name``) under a composite rule."""
+    from .residue_names import canonical_residue_name
+
+    residue, _, name = str(torsion_type).partition(":")
+    sp2 = SP2_CHI.get((canonical_residue_name(residue), name))
+    side = name.startswith("chi") and name[3:].isdigit()
+    if rule == "chi" or side:
+        return {"symmetric": "chi-sp2-symmetric", "planar": "chi-sp2"}.get(sp2, "chi-sp3")
+    return "cis-trans" if name == "omega" else "anti-gauche"
+
+
+@dataclass(frozen=True)
+class SchemeSet:
+    """Several schemes in one set of state codes, each for one class of torsions.
+
+    A protein has torsions of different kinds: a peptide omega has a cis and a trans well, an sp3
+    side-chain torsion three staggered wells, an aromatic chi2 its own. A SchemeSet gives each
+    torsion type its part (``for_type``) by a fixed rule; the state labels of all parts together
+    are the labels of the set, and a torsion takes only those of its part. Built-in sets:
+    ``protein`` (omega: ``cis-trans``; chi1..chi5: ``chi-rotamers``; other torsions:
+    ``anti-gauche``) and ``chi-rotamers`` (every torsion by the side-chain rule).
+
+    Examples
+    --------
+    >>> s = get_scheme("protein")
+    >>> s.states_of_type("ALA:omega"), s.states_of_type("LYS:chi1"), s.states_of_type("PHE:chi2")
+    (['trans', 'cis'], ['g+', 't', 'g-'], ['0/180', '90/-90'])
+    >>> int(s.for_type("ALA:omega").assign([178.0])[0]) == s.labels.index("trans")
+    True
+    """
+
+    name: str
+    parts: tuple
+    rule: str
+
+    @property
+    def labels(self):
+        return tuple(dict.fromkeys(label for p in self.parts for label in p.labels))
+
+    @property
+    def n_states(self):
+        return len(self.labels)
+
+    def part_index(self, torsion_type):
+        """Position in ``parts`` of the part that torsions of ``torsion_type`` follow."""
+        wanted = _part_name(self.rule, torsion_type)
+        names = [p.name for p in self.parts]
+        return names.index(wanted) if wanted in names else 0
+
+    def coded_parts(self):
+        """Every part with its arcs in the codes of the set (labels: all of the set's)."""
+        return list(_coded_parts(self))
+
+    def _coded(self):
+        labels = self.labels
+        return [StateScheme(name=p.name, labels=labels, boundaries_deg=p.boundaries_deg,
+                            arc_states=tuple(labels.index(p.labels[k]) for k in p.arc_states),
+                            start_closed=p.start_closed, partial=True) for p in self.parts]
+
+    def for_type(self, torsion_type):
+        """The part of ``torsion_type`` in the codes of the set (a :class:`StateScheme`)."""
+        return self.coded_parts()[self.part_index(torsion_type)]
+
+    def states_of_type(self, torsion_type):
+        """Labels a torsion of ``torsion_type`` can take."""
+        return list(self.parts[self.part_index(torsion_type)].labels)
+
+    def sector_table(self):
+        """(part: state, start_deg, end_deg) rows of every part."""
+        return [(f"{p.name}: {state}", lo, hi) for p in self.parts for state, lo, hi in p.sector_table()]
+
+    def to_dict(self):
+        return {"name": self.name, "labels": list(self.labels), "rule": self.rule,
+                "codes": {label: k for k, label in enumerate(self.labels)}, "undefined_code": UNDEFINED,
+                "parts": [p.to_dict() for p in self.parts]}
+
+
+@functools.lru_cache(maxsize=16)
+def _coded_parts(scheme_set):
+    return tuple(scheme_set._coded())
+
+
+def default_scheme(torsions):
+    """The scheme a run uses when none is given: ``protein`` when every specification is a
+    protein one (``protein-backbone``, ``protein-sidechains``), else ``anti-gauche``."""
+    specs = [torsions] if isinstance(torsions, str) else list(torsions or []) if not hasattr(torsions, "torsions") else []
+    if specs and all(str(x).strip() in ("protein-backbone", "protein-sidechains") for x in specs):
+        return "protein"
+    return "anti-gauche"
+
+
+def scheme_from_dict(d):
+    """A :class:`StateScheme` or :class:`SchemeSet` from its ``to_dict``."""
+    if "parts" in d:
+        return SchemeSet(name=d["name"], parts=tuple(StateScheme.from_dict(p) for p in d["parts"]), rule=d["rule"])
+    return StateScheme.from_dict(d)
+
+
 def scheme_from_toml(path):
     """A custom scheme from a TOML file.
 
@@ -319,17 +491,23 @@ def scheme_from_mapping(data, where="scheme"):
 
 
 def get_scheme(spec):
-    """A scheme by name (``anti-gauche``, ``staggered-eclipsed[:N]``, ``klyne-prelog``) or TOML path.
+    """A scheme by name (``anti-gauche``, ``staggered-eclipsed[:N]``, ``klyne-prelog``,
+    ``cis-trans``; the sets ``chi-rotamers`` and ``protein``) or TOML path.
 
-    A :class:`StateScheme` passes through unchanged.
+    A :class:`StateScheme` or :class:`SchemeSet` passes through unchanged.
     """
-    if isinstance(spec, StateScheme):
+    if isinstance(spec, (StateScheme, SchemeSet)):
         return spec
     text = str(spec).strip()
     if text == "anti-gauche":
         return anti_gauche()
     if text == "klyne-prelog":
         return klyne_prelog()
+    if text == "cis-trans":
+        return cis_trans()
+    if text in COMPOSITES:
+        parts, rule = COMPOSITES[text]
+        return SchemeSet(name=text, parts=tuple(_PARTS[p]() for p in parts), rule=rule)
     if text == "staggered-eclipsed" or text.startswith("staggered-eclipsed:"):
         _, _, fold = text.partition(":")
         try:

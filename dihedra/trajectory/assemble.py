@@ -93,9 +93,13 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
     dense = dense_conformers(blocks, tset, scheme.n_states)
 
+    own = own_states(scheme, types)
     pops = torsion_populations(state_counts, block_replica, labels, types, scheme.labels)
-    by_type = pool_by_type(pops)
     by_rep = replica_populations(state_counts, block_replica, labels, types, scheme.labels, pooled=pops)
+    if own is not None:   # a set of schemes: each torsion has rows for the states of its own part
+        pops = pops[own].reset_index(drop=True)
+        by_rep = by_rep[np.tile(own, len(by_rep) // len(own))].reset_index(drop=True)
+    by_type = pool_by_type(pops)
     groups, members, skipped = conformer_layout(tset, scheme.n_states)
     conf, conf_type = conformer_populations(conf_rows, conf_w, block_replica, len(block_replica), groups,
                                             members, labels, types, scheme.labels, resnames, dense=dense)
@@ -119,6 +123,16 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
                        populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
                        conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
+
+
+def own_states(scheme, types):
+    """For a set of schemes, the mask of the (torsion, state) rows of the populations table that
+    belong to each torsion's own part (torsion-major); ``None`` for a single scheme."""
+    if len(scheme.coded_parts()) == 1:
+        return None
+    labels = list(scheme.labels)
+    allowed = {t: np.isin(labels, scheme.states_of_type(t)) for t in dict.fromkeys(types)}
+    return np.concatenate([allowed[t] for t in types]) if types else np.zeros(0, dtype=bool)
 
 
 def error_notices(pops, by_type, conf_type):

@@ -56,6 +56,33 @@ def bin_state_table(scheme, n_bins):
     return table
 
 
+def bin_state_tables(scheme, types, n_bins):
+    """The bin tables of every scheme a torsion may follow and which one each torsion follows.
+
+    Returns ``(table, (classes, boundaries, n_boundaries, start_closed, arc_states))``: ``table``
+    (n_classes, n_bins + 1) as :func:`bin_state_table` per class; ``classes`` (n_torsions,) the
+    class of each torsion (one class for a plain scheme; a :class:`SchemeSet` has one per part,
+    chosen by torsion type); the arcs of each class padded to the longest."""
+    parts = scheme.coded_parts()
+    if len(parts) > 1:
+        index = {t: scheme.part_index(t) for t in dict.fromkeys(types)}
+        classes = np.array([index[t] for t in types], dtype=np.int64)
+    else:
+        classes = np.zeros(len(types), dtype=np.int64)
+    width = max(len(p.boundaries_deg) for p in parts)
+    boundaries = np.full((len(parts), width), np.inf)
+    start_closed = np.zeros((len(parts), width), dtype=np.bool_)
+    arc_states = np.zeros((len(parts), width), dtype=np.int8)
+    for k, p in enumerate(parts):
+        m = len(p.boundaries_deg)
+        boundaries[k, :m] = p.boundaries_deg
+        start_closed[k, :m] = p.start_closed
+        arc_states[k, :m] = p.arc_states
+    table = np.stack([bin_state_table(p, n_bins) for p in parts])
+    return table, (classes, boundaries, np.array([len(p.boundaries_deg) for p in parts], dtype=np.int64),
+                   start_closed, arc_states)
+
+
 def hist_part(block, dense):
     """One histogram block of a worker as ``[(block, cells, values)]`` (non-empty cells, int32
     indices) when that is smaller than half the dense block, else ``[(block, dense view)]``."""

@@ -26,7 +26,7 @@ import warnings
 import numpy as np
 
 from ..errors import DihedraError, SelectionError
-from ..selection.schemes import get_scheme
+from ..selection.schemes import default_scheme, get_scheme
 from ..selection.specs import select_torsions
 from ..selection.torsions import TorsionSet
 from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info
@@ -54,9 +54,11 @@ class TorsionStates(TorsionPass):
         Torsion specifications: ``"rotatable"``, ``"protein-backbone"``, ``"protein-sidechains"``,
         ``"nucleic-backbone"``, four 0-based atom indices ``"A,B,C,D"``, or a TOML file of named
         torsions (see :func:`dihedra.select_torsions`); or a ready :class:`TorsionSet`.
-    scheme : str or StateScheme
-        State scheme: ``"anti-gauche"`` (default), ``"staggered-eclipsed[:N]"``,
-        ``"klyne-prelog"``, a TOML file of named sectors, or a :class:`StateScheme`.
+    scheme : str or StateScheme, optional
+        State scheme: ``"anti-gauche"``, ``"staggered-eclipsed[:N]"``, ``"klyne-prelog"``,
+        ``"cis-trans"``, the sets ``"chi-rotamers"`` and ``"protein"``, a TOML file of named
+        sectors, or a :class:`StateScheme`. Default: ``"protein"`` when only protein torsions are
+        chosen, else ``"anti-gauche"``.
     weights : array-like, optional
         One weight per analysed frame (reweighting a biased run).
     keep_states : bool
@@ -110,14 +112,14 @@ class TorsionStates(TorsionPass):
     n_workers=N)`` gives identical results with every backend: workers sum exact block counts.
     """
 
-    def __init__(self, atomgroup, torsions="rotatable", scheme="anti-gauche", *, weights=None, keep_states=True,
+    def __init__(self, atomgroup, torsions="rotatable", scheme=None, *, weights=None, keep_states=True,
                  keep_angles=False, dt_ps=None, temperature_k=None, bin_width_deg=1.0, n_state_blocks=64,
                  n_hist_blocks=16, discard=None, keep_variants=False, verbose=False):
         universe = getattr(atomgroup, "universe", None)
         if universe is None or not hasattr(atomgroup, "atoms"):
             raise DihedraError(f"TorsionStates takes an MDAnalysis AtomGroup or Universe; got "
                                f"{type(atomgroup).__name__}.")
-        scheme = get_scheme(scheme)
+        scheme = get_scheme(default_scheme(torsions) if scheme is None else scheme)
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universe, torsions,
                                                                                          keep_variants=keep_variants)
         tset = _within(tset, atomgroup.atoms, universe)

@@ -75,7 +75,7 @@ from MDAnalysis.analysis.results import ResultsGroup
 
 from ..numerics.angles import TorsionGeometry
 from .conformer_counts import ConformerCounter, merge_dense, merge_rows, touched_zeros
-from .histograms import MIXED, bin_state_table, hist_part, merge_hist_parts, narrow_counts
+from .histograms import MIXED, bin_state_tables, hist_part, merge_hist_parts, narrow_counts
 from .overlap import Batch, Overlap
 from .series_output import SeriesOutput
 from .trajread import xtc_frames
@@ -322,14 +322,12 @@ class TorsionPass(AnalysisBase):
         """The per-frame work: bond buffer, bin -> state table, the scheme's exact rule for the
         bins that a boundary cuts, and the arguments of the compiled frame kernel."""
         n_bins = self._n_bins
-        self._bin_table = bin_state_table(self.scheme, n_bins)
+        self._bin_table, scheme_args = bin_state_tables(self.scheme, self.torsion_set.types, n_bins)
         self._bonds = np.empty((9, len(self.torsion_set)), dtype=np.float64)
         # k = ceil((a + shift_in) / width) + shift_out (see bin_and_code)
         shift_in, shift_out = (0.0, n_bins // 2) if n_bins % 2 == 0 else (180.0, 0)
         self._bin_args = (float(self.bin_width_deg), shift_in, shift_out, n_bins, self._bin_table,
-                          np.asarray(self.scheme.boundaries_deg, dtype=np.float64),
-                          np.asarray(self.scheme.start_closed, dtype=np.bool_),
-                          np.asarray(self.scheme.arc_states, dtype=np.int8), MIXED)
+                          *scheme_args, MIXED)
 
     def _prepare_buffers(self):
         """The buffers of the last few frames (fine bins, codes, angles; one row per frame), the

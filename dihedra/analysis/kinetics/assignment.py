@@ -86,8 +86,9 @@ def check_core_margin(scheme, margin_deg):
     if not np.isfinite(margin) or margin < 0:
         raise DihedraError(f"core margin must be a non-negative number of degrees; got {margin_deg!r}.")
     widest = {}
-    for state, start, end in scheme.merged_arcs():
-        widest[state] = max(widest.get(state, 0.0), end - start)
+    for part in scheme.coded_parts():   # every scheme of a set of schemes
+        for state, start, end in part.merged_arcs():
+            widest[state] = max(widest.get(state, 0.0), end - start)
     for state, width in widest.items():
         if width - 2 * margin <= 0:
             raise DihedraError(f"core margin {margin:g} deg leaves no core for state "
@@ -139,10 +140,13 @@ def _core_table(scheme, margin):
     """The cores of the scheme's sectors, as recorded in ``kinetics.json``: [{state, from_deg,
     to_deg}] (degrees on (-180, 180]; a sector no wider than twice the margin has none)."""
     rows = []
-    for state, start, end in scheme.merged_arcs():
-        if end - start > 2 * margin:
-            lo, hi = (float((x + 180.0) % 360.0 - 180.0) for x in (start + margin, end - margin))
-            rows.append({"state": scheme.labels[state], "from_deg": lo, "to_deg": hi})
+    parts = scheme.coded_parts()
+    for part in parts:
+        for state, start, end in part.merged_arcs():
+            if end - start > 2 * margin:
+                lo, hi = (float((x + 180.0) % 360.0 - 180.0) for x in (start + margin, end - margin))
+                rows.append({"state": scheme.labels[state], "from_deg": lo, "to_deg": hi,
+                             **({"scheme": part.name} if len(parts) > 1 else {})})
     return rows
 
 

@@ -257,8 +257,11 @@ def _read_barrier_table(table, scheme):
     named = np.array([isinstance(t, str) and bool(t) for t in torsion], dtype=bool)
     level = np.where(named, "torsion", "type")
     name = np.where(named, torsion.astype(object).to_numpy(), table["type"].astype(object).to_numpy())
-    a = scheme.assign(table["from_minimum_deg"].to_numpy(dtype=float)).astype(np.int64)
-    b = scheme.assign(table["to_minimum_deg"].to_numpy(dtype=float)).astype(np.int64)
+    a, b = (np.full(len(table), -1, dtype=np.int64) for _ in range(2))
+    for ttype, rows in table.groupby("type", sort=False).indices.items():   # each type's own scheme
+        part = scheme.for_type(ttype)
+        a[rows] = part.assign(table["from_minimum_deg"].to_numpy(dtype=float)[rows])
+        b[rows] = part.assign(table["to_minimum_deg"].to_numpy(dtype=float)[rows])
     ok = (a >= 0) & (b >= 0) & (a != b)
     labels = np.array(scheme.labels, dtype=object)
     parts = []

@@ -362,7 +362,7 @@ def _tally_columns(part, result, labels, kind, scheme, margin, lags, members, po
     carry = np.full(len(columns), -1, dtype=np.int64)
     current = None
     n_frames = 0
-    core = CoreCodes(scheme, margin) if kind == "angles" else None
+    core = _core_assigner(result, scheme, margin, [labels[c] for c in columns]) if kind == "angles" else None
     for rep, block in _replica_blocks(result, kind, [labels[c] for c in columns], batch_frames):
         if rep != current:
             if current is not None:
@@ -382,6 +382,25 @@ def _tally_columns(part, result, labels, kind, scheme, margin, lags, members, po
     if c_tally is not None:
         c_tally.finish()
     return t_tally, c_tally, n_frames
+
+
+def _core_assigner(result, scheme, margin, labels):
+    """Core codes of the angle rows of the torsions ``labels``: the scheme's cores, or for a set
+    of schemes the cores of each torsion's own part."""
+    parts = scheme.coded_parts()
+    if len(parts) == 1:
+        return CoreCodes(scheme, margin)
+    type_of = dict(zip(result.torsion_set.labels, result.torsion_set.types))
+    which = np.array([scheme.part_index(type_of[lab]) for lab in labels], dtype=np.int64)
+    cores = {k: CoreCodes(parts[k], margin) for k in np.unique(which)}
+
+    def assign(block):
+        out = np.empty(block.shape, dtype=np.int8)
+        for k, core in cores.items():
+            rows = which == k
+            out[rows] = core(block[rows])
+        return out
+    return assign
 
 
 def tally_result(result, kind, labels, scheme, margin, lags, members, pool, batch_frames=None):

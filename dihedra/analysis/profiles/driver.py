@@ -212,7 +212,7 @@ def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, ba
     kprof = [None] * len(order)
     if kernel and order:
         neff = effective_samples(result.populations, result.torsion_set.labels)
-        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), result.scheme,
+        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), [result.scheme.for_type(t) for t in order],
                           [neff[members[t]].sum() for t in order], fine)
         kprof = _kernel_profiles(pooled, mult, kt, bws, fine)
     return {t: (h, k) for t, h, k in zip(order, hprof, kprof)}
@@ -323,7 +323,8 @@ class _Stacks:
     bootstrap multiplicities; ``state_counts`` (n_blocks', n_torsions, n_states) the state counts in
     blocks as long as the histogram blocks and ``smult`` theirs (:func:`state_blocks`); ``fine`` the
     fine bin width and ``factor`` the fine bins per histogram bin; ``neff`` the effective samples of
-    each torsion (:func:`effective_samples`).
+    each torsion (:func:`effective_samples`); ``types`` the type of each torsion (its own scheme
+    when the run used a set of schemes).
     """
 
     hist: np.ndarray
@@ -337,6 +338,7 @@ class _Stacks:
     bandwidth_deg: float | None
     scheme: object
     neff: np.ndarray
+    types: list
 
     @classmethod
     def of(cls, result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed):
@@ -347,14 +349,15 @@ class _Stacks:
         sc, _, smult = state_blocks(result, n_bootstrap, seed)
         return cls(hist=blocks["histograms"], mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
                    factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg, scheme=result.scheme,
-                   neff=effective_samples(result.populations, result.torsion_set.labels))
+                   neff=effective_samples(result.populations, result.torsion_set.labels),
+                   types=list(result.torsion_set.types))
 
 
 def _type_stack(s, order, members):
     """Bandwidths, table rows and {type: (histogram, kernel) Profile1D} of the types (pooled)."""
     pooled = _pooled_counts(s.hist, order, members)
-    bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), s.scheme, [s.neff[members[t]].sum() for t in order],
-                      s.fine)
+    bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), [s.scheme.for_type(t) for t in order],
+                      [s.neff[members[t]].sum() for t in order], s.fine)
     hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg)
     kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine)
     rows = _stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack,
@@ -369,7 +372,8 @@ def _torsion_stack(span, s, codes):
     """Bandwidths and table rows of the torsions ``span`` = (start, stop) (runs in a thread)."""
     start, stop = span
     sub = np.asarray(s.hist[:, start:stop, :], dtype=float)
-    bws = _bandwidths(s.bandwidth_deg, sub.sum(axis=0), s.scheme, s.neff[start:stop], s.fine)
+    bws = _bandwidths(s.bandwidth_deg, sub.sum(axis=0), [s.scheme.for_type(t) for t in s.types[start:stop]],
+                      s.neff[start:stop], s.fine)
     hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg)
     rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
                          _kernel_columns(sub, s.mult, s.kt, bws, s.fine),
@@ -464,6 +468,9 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
             tables.add(rows)
             bandwidths.append(bws)
     profiles, minima, barriers, state_dg = tables.frames(order, labels, s.scheme.labels)
+    if len(s.scheme.coded_parts()) > 1 and len(state_dg):   # a set of schemes: each type's own states
+        own = [st in s.scheme.states_of_type(ty) for ty, st in zip(state_dg["type"], state_dg["state"])]
+        state_dg = state_dg[np.asarray(own, dtype=bool)].reset_index(drop=True)
     names = [("", t) for t in order] + (list(zip(labels, result.torsion_set.types)) if per_torsion else [])
     settings = _settings(s, temperature_k, n_bootstrap, seed, names, np.concatenate(bandwidths))
     pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,

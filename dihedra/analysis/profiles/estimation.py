@@ -393,7 +393,8 @@ def default_bandwidths_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0)
     Parameters
     ----------
     fine_counts : ndarray (m, n_fine)
-    scheme : StateScheme
+    scheme : StateScheme or list of StateScheme
+        The scheme of the rows (one per row: each row's own arcs).
     n_effective : ndarray (m,)
 
     Returns
@@ -401,6 +402,13 @@ def default_bandwidths_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0)
     ndarray (m,)
     """
     counts = np.atleast_2d(np.asarray(fine_counts, dtype=float))
+    if isinstance(scheme, (list, tuple)):   # one scheme per row (a set of schemes: each type its own)
+        n_eff = np.broadcast_to(np.asarray(n_effective, dtype=float), (len(counts),))
+        out = np.empty(len(counts))
+        for part in dict.fromkeys(scheme):
+            rows = np.array([p == part for p in scheme], dtype=bool)
+            out[rows] = default_bandwidths_deg(counts[rows], part, n_eff[rows], fine_width_deg)
+        return out
     centres = bin_centres(counts.shape[-1])
     var = np.zeros(len(counts))
     wsum = np.zeros(len(counts))

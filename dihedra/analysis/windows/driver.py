@@ -49,6 +49,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from ...errors import DihedraError
 from ...selection.schemes import get_scheme
 from ...trajectory.result import TrackResult
 from ...units import check_temperature, kt_kj_mol, wrap_deg
@@ -207,7 +208,10 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
     say = log or (lambda msg: None)
     temperature_k = check_temperature(temperature_k)
     kt = kt_kj_mol(temperature_k)
-    scheme = get_scheme(scheme)
+    scheme = get_scheme("anti-gauche" if scheme is None else scheme)
+    if len(scheme.coded_parts()) > 1:
+        raise DihedraError(f"umbrella windows follow one torsion with one scheme; {scheme.name!r} is a set of "
+                           "schemes for proteins: give one scheme (e.g. anti-gauche, cis-trans).")
     factor = check_bin_width(bin_width_deg, 1.0)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
     seed = DEFAULT_SEED if seed is None else int(seed)

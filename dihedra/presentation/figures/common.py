@@ -44,7 +44,12 @@ def _energy_suffix(column):
 
 
 def sector_spans(scheme):
-    """State arcs as ``(state_code, lo_deg, hi_deg)`` pieces within [-180, 180] (wrapping arcs split)."""
+    """State arcs as ``(state_code, lo_deg, hi_deg)`` pieces within [-180, 180] (wrapping arcs split).
+
+    A set of schemes without a torsion type (:meth:`~dihedra.selection.schemes.SchemeSet.for_type`
+    picks the part) has no single set of arcs: no pieces."""
+    if len(scheme.coded_parts()) > 1:
+        return []
     out = []
     for state, start, end in scheme.merged_arcs():
         shift = 360.0 * np.floor((start + 180.0) / 360.0)

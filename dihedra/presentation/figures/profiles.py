@@ -82,6 +82,8 @@ def plot_profile(profiles, scheme, name, estimate="histogram", scan=None, ax=Non
 
     ax = _new_axes(ax)
     rows = select_profile(profiles, name, estimate)
+    if "type" in rows and len(rows):   # a set of schemes: the arcs of this type's own scheme
+        scheme = scheme.for_type(str(rows["type"].iloc[0]))
     col, err_col, unit = energy_columns(rows)
     x = rows["angle_deg"].to_numpy(float)
     sampled = _as_bool(rows["sampled"])
