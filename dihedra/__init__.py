@@ -26,6 +26,7 @@ from .analysis.convergence import convergence
 from .analysis.couplings import ensemble_couplings
 from .analysis.kinetics import state_kinetics
 from .analysis.profiles import free_energy_profiles
+from .analysis.ramachandran import ramachandran_regions
 from .analysis.refit import fit_torsion_correction
 from .analysis.windows import unbias_windows
 from .errors import DihedraError
@@ -53,5 +54,5 @@ def example_path(name=""):
 
 __all__ = ["DihedraError", "StateScheme", "Torsion", "TorsionSet", "TorsionStates", "TrackResult", "__version__",
            "compare_with_scan", "convergence", "ensemble_couplings", "example_path", "fit_torsion_correction",
-           "free_energy_profiles", "get_scheme", "load_results", "select_torsions", "state_kinetics", "track",
-           "unbias_windows"]
+           "free_energy_profiles", "get_scheme", "load_results", "ramachandran_regions", "select_torsions",
+           "state_kinetics", "track", "unbias_windows"]

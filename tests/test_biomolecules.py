@@ -195,3 +195,35 @@ def test_protein_backbone_reports_omega_as_cis_or_trans(adk_backbone):
     assert cis == pytest.approx(np.mean(np.abs(w) < 90)) and cis > 0.1
     by_type = adk_backbone.populations_by_type
     assert set(by_type[by_type["type"] == "PHE:omega"]["state"]) == {"trans", "cis"}
+
+
+def test_ramachandran_regions_from_mdanalysis_angles(tmp_path):
+    from MDAnalysis.analysis.dihedrals import Ramachandran
+
+    out = str(tmp_path / "rama")
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--keep-angles", "--out", out]) == 0
+    res = dihedra.ramachandran_regions(dihedra.load_results(out))
+    # independent reference: MDAnalysis' own phi/psi, classified with the published rectangles
+    # (Beauchamp et al., J. Chem. Theory Comput. 8 (2012) 1409, from memory) written out here
+    u = mda.Universe(data.PSF, data.DCD)
+    sel = u.select_atoms("resid 20-30")
+    rama = Ramachandran(sel).run()
+    phi, psi = rama.results.angles[:, :, 0], rama.results.angles[:, :, 1]
+    wrap_psi = np.where(psi < -120, psi + 360, psi)
+    expect = {"alpha-R": (phi > -160) & (phi < -20) & (psi > -120) & (psi < 50),
+              "beta": (phi > -180) & (phi < -90) & (wrap_psi > 50) & (wrap_psi < 240),
+              "PPII": (phi > -90) & (phi < -20) & (wrap_psi > 50) & (wrap_psi < 240),
+              "alpha-L": (phi > 0) & (phi < 180) & (psi > -100) & (psi < 100)}
+    table = res.regions.set_index(["residue", "region"])
+    for k, r in enumerate(rama.ag3.residues):   # the residues MDAnalysis could compute (their CA)
+        name = f"{r.resname}{r.resid}"
+        for region, mask in expect.items():
+            assert table.loc[(name, region), "population"] == pytest.approx(mask[:, k].mean()), (name, region)
+    by_type = res.regions_by_type
+    assert {"i_squared", "heterogeneous", "n_residues"} <= set(by_type.columns)
+    assert (by_type.groupby("type")["population"].sum() == pytest.approx(1.0))
+    # without angles: a clear error
+    no_angles = str(tmp_path / "noangles")
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--stop", "5", "--out", no_angles]) == 0
+    with pytest.raises(DihedraError, match="--keep-angles"):
+        dihedra.ramachandran_regions(dihedra.load_results(no_angles))
