@@ -155,7 +155,7 @@ def ramachandran_regions(result, *, batch_frames=None):
     notices = []
     note = heterogeneity_notice(pooled, "type", "residue types")
     if note:
-        notices.append(note.replace("their torsions", "their residues"))
+        notices.append(note.replace("torsions", "residues"))
     if per["population_err"].isna().any():
         notices.append("some residues have no error estimate (fewer than two blocks of frames, e.g. a single "
                        "frame): n/a.")

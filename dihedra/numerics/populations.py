@@ -137,9 +137,11 @@ def heterogeneity_notice(pooled, key, what):
         return None
     names = list(dict.fromkeys(het[key]))
     shown = ", ".join(names[:8]) + (f" and {len(names) - 8} more" if len(names) > 8 else "")
-    return (f"{len(names)} {what} differ between their {'torsions' if key == 'type' else 'groups'} "
-            f"more than sampling noise explains (Cochran's Q, p < 0.05): {shown}; their pooled errors "
-            "include the spread between them (DerSimonian-Laird; I^2 in the table).")
+    items = "torsions" if key == "type" else "groups"
+    return (f"{len(names)} {what} differ between their {items} more than their own error bars explain "
+            f"(Cochran's Q, p < 0.05): {shown}. Either the {items} are not equivalent (residues in different "
+            "surroundings) or their own errors are too small (a run of few correlation times); their pooled "
+            "errors include the spread between them (DerSimonian-Laird; I^2 in the table).")
 
 
 def conformer_populations(rows, weights, block_replica, n_blocks, groups, members, labels, types,

@@ -12,7 +12,7 @@ Example
 >>> import dihedra
 >>> u = mda.Universe(dihedra.example_path("hexane.pdb"), dihedra.example_path("hexane.xtc"))
 >>> ts = dihedra.TorsionStates(u.atoms, torsions="rotatable", scheme="anti-gauche").run(stop=20)
->>> ts.results.populations_by_type.columns.tolist()
+>>> ts.results.populations_by_type.columns.tolist()[:5]
 ['type', 'state', 'population', 'population_err', 'n_torsions']
 >>> sorted(ts.results.populations_by_type["state"].unique())
 ['anti', 'gauche+', 'gauche-']
