@@ -388,6 +388,8 @@ def _forecast(err, target, needed_ps, simulated_ps, replicas):
         return "no data"
     if err <= target:
         return "already reached"
+    if not (np.isfinite(needed_ps) and np.isfinite(replicas)) or simulated_ps <= 0:
+        return "more sampling (no forecast: the run has no usable time step)"
     return (f"about {human_time(needed_ps - simulated_ps)} more ({human_time(needed_ps)} in all, or "
             f"{int(replicas)} replicas of this length)")
 
