@@ -40,11 +40,15 @@ Appl. Stat. 31 (1982) 93; rule of thumb: Silverman, Density Estimation (1986), e
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
 from ...errors import DihedraError
+# the pure numerical pieces live in numerics (the state scheme ``basins`` uses them too)
+from ...numerics.density import (KERNEL_FLOOR, Profile1D, _circular_deviation_deg, _circular_reach,  # noqa: F401
+                                 _histogram_stack, _kernel_setup, _kernel_stack, _resampled_free_energy,
+                                 _row_min, _spread_last, _unstack, _von_mises_transform, bin_centres,
+                                 bootstrap_multiplicities, bootstrap_spread, default_bandwidths_deg,
+                                 free_energy_from_counts, rebin, von_mises_smooth)
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
 DEFAULT_BIN_WIDTH_DEG = 5.0
@@ -54,10 +58,6 @@ DEFAULT_PAIR_BIN_WIDTH_DEG = 10.0
 DEFAULT_BOOTSTRAP = 200
 #: Seed of the bootstrap (results are reproducible; change with ``seed``).
 DEFAULT_SEED = 20240607
-#: Smoothed block histograms below this fraction of their largest value count as zero (round-off
-#: of the Fourier transform, about 1e-16 of the largest value, would otherwise decide whether a
-#: resample without data near a point enters its error, and with what free energy).
-KERNEL_FLOOR = 1e-9
 #: Resampled kernel values (single precision) handled at a time per thread (stays in the cache).
 _KERNEL_CHUNK = 1 << 19
 
@@ -94,237 +94,15 @@ def check_estimate_options(n_bootstrap, bandwidth_deg=None):
     return n_bootstrap
 
 
-def rebin(hist, factor):
-    """Sum ``factor`` neighbouring bins along the last axis."""
-    hist = np.asarray(hist)
-    n = hist.shape[-1]
-    return hist.reshape(hist.shape[:-1] + (n // factor, factor)).sum(axis=-1)
-
-
-def bin_centres(n_bins):
-    """Centres (degrees) of ``n_bins`` equal bins on (-180, 180]."""
-    width = 360.0 / n_bins
-    return -180.0 + width * (np.arange(n_bins) + 0.5)
-
-
-def bootstrap_multiplicities(block_replica, n_bootstrap, rng):
-    """How often each block enters each bootstrap resample: array (n_bootstrap, n_blocks).
-
-    Blocks are drawn with replacement within each replica, as many as the replica has.
-    """
-    replica = np.asarray(block_replica)
-    out = np.zeros((int(n_bootstrap), len(replica)))
-    for r in np.unique(replica):
-        idx = np.flatnonzero(replica == r)
-        out[:, idx] = rng.multinomial(len(idx), np.full(len(idx), 1.0 / len(idx)), size=int(n_bootstrap))
-    return out
-
-
-def free_energy_from_counts(counts, width, kt):
-    """Density (per degree, or per degree^2 for 2-D) and -kT ln p along the last axis; NaN where empty."""
-    counts = np.asarray(counts, dtype=float)
-    total = counts.sum(axis=-1, keepdims=True)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        density = counts / (total * width)
-        free = -kt * np.log(density)
-    free[~(counts > 0)] = np.nan
-    return density, free
-
-
-def bootstrap_spread(samples):
-    """Standard deviation over axis 0 of the finite values, and the fraction that is finite."""
-    samples = np.asarray(samples, dtype=float)
-    finite = np.isfinite(samples)
-    n = finite.sum(axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(finite, samples, 0.0).sum(axis=0) / n
-        var = np.where(finite, (samples - mean) ** 2, 0.0).sum(axis=0) / (n - 1)
-    sd = np.where(n >= 2, np.sqrt(var), np.nan)
-    return sd, n / max(1, samples.shape[0])
-
-
-def _circular_deviation_deg(a, b):
-    return (np.asarray(a) - np.asarray(b) + 180.0) % 360.0 - 180.0
-
-
 
 
 # ----------------------------------------------------------------------------------------------
 # Density estimates
 # ----------------------------------------------------------------------------------------------
 
-@dataclass
-class Profile1D:
-    """One periodic 1-D profile (histogram or kernel estimate), free energies in kJ/mol.
-
-    Attributes
-    ----------
-    angle_deg : ndarray (n,)
-        Grid points (bin centres).
-    samples : ndarray (n,)
-        (Weighted) samples per bin; for the kernel estimate the smoothed count per fine bin.
-    density_per_deg, free_energy_kj_mol, free_energy_err_kj_mol : ndarray (n,)
-        p, F - min F (NaN where unsampled) and its bootstrap standard error.
-    sampled : ndarray of bool (n,)
-    boot_free_energy : ndarray (n_bootstrap, n)
-        -kT ln p of each resample (unshifted), for the errors of features.
-    boot_valid_fraction : ndarray (n,)
-        Fraction of resamples in which the bin is sampled.
-    bandwidth_deg : float or None
-        Kernel standard deviation (kernel estimate only).
-    """
-
-    angle_deg: np.ndarray
-    samples: np.ndarray
-    density_per_deg: np.ndarray
-    free_energy_kj_mol: np.ndarray
-    free_energy_err_kj_mol: np.ndarray
-    sampled: np.ndarray
-    boot_free_energy: np.ndarray
-    boot_valid_fraction: np.ndarray
-    bandwidth_deg: float | None = None
-
-    @property
-    def width_deg(self):
-        return 360.0 / len(self.angle_deg)
-
-
-def _row_min(free):
-    """Lowest finite value of each row of ``free`` (..., n); 0 for a row without one."""
-    filled = np.where(np.isfinite(free), free, np.inf)
-    low = filled.min(axis=-1)
-    return np.where(np.isfinite(low), low, 0.0)
-
-
-def _resampled_free_energy(boot, width, kt):
-    """-kT ln p of resampled counts laid out (m, n_bins, n_bootstrap); +inf where a bin is empty.
-
-    Computed in place: ``boot`` is overwritten and returned.
-    """
-    total = boot.sum(axis=1, keepdims=True) * width
-    with np.errstate(divide="ignore", invalid="ignore"):
-        np.divide(boot, total, out=boot)
-        np.log(boot, out=boot)
-    np.multiply(boot, -kt, out=boot)
-    np.copyto(boot, np.inf, where=np.isnan(boot))  # a resample without samples
-    return boot
-
-
-def _spread_last(samples):
-    """:func:`bootstrap_spread` over the last axis (resamples last): sd and fraction finite."""
-    finite = np.isfinite(samples)
-    n = finite.sum(axis=-1)
-    x = np.where(finite, samples, 0.0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = x.sum(axis=-1) / n
-        x -= mean[..., None]
-        x *= finite
-        var = np.einsum("...i,...i->...", x, x) / (n - 1)
-    return np.where(n >= 2, np.sqrt(var), np.nan), n / max(1, samples.shape[-1])
-
-
-def _histogram_stack(block_counts, mult, kt, width):
-    """Histogram profiles of a stack of torsions or types, as one Profile1D with a leading axis.
-
-    ``block_counts`` (n_blocks, m, n_bins); the fields of the result are (m, n_bins) arrays and
-    ``boot_free_energy`` is (m, n_bins, n_bootstrap), resamples last, +inf where a resample has
-    no sample in a bin (:func:`_unstack` gives single profiles in the documented layout).
-    """
-    block_counts = np.asarray(block_counts, dtype=float)
-    counts = block_counts.sum(axis=0)
-    density, free = free_energy_from_counts(counts, width, kt)
-    boot_free = _resampled_free_energy(np.tensordot(block_counts, mult, axes=(0, 1)), width, kt)
-    err, frac = _spread_last(boot_free)
-    return Profile1D(angle_deg=bin_centres(counts.shape[-1]), samples=counts, density_per_deg=density,
-                     free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
-                     sampled=counts > 0, boot_free_energy=boot_free, boot_valid_fraction=frac)
-
-
-def _unstack(stack):
-    """The profiles of a stack (see :func:`_histogram_stack`) as a list of Profile1D."""
-    bws = stack.bandwidth_deg
-    out = []
-    for k in range(len(stack.samples)):
-        boot = stack.boot_free_energy[k].T.copy()
-        boot[~np.isfinite(boot)] = np.nan
-        out.append(Profile1D(angle_deg=stack.angle_deg, samples=stack.samples[k],
-                             density_per_deg=stack.density_per_deg[k], free_energy_kj_mol=stack.free_energy_kj_mol[k],
-                             free_energy_err_kj_mol=stack.free_energy_err_kj_mol[k], sampled=stack.sampled[k],
-                             boot_free_energy=boot, boot_valid_fraction=stack.boot_valid_fraction[k],
-                             bandwidth_deg=None if bws is None else float(bws[k])))
-    return out
-
-
 def _profiles_from_blocks(block_counts, mult, kt, width):
     """Histogram profiles for a stack: block_counts (n_blocks, m, n_bins) -> list of Profile1D."""
     return _unstack(_histogram_stack(block_counts, mult, kt, width))
-
-
-def _von_mises_transform(bandwidths_deg, n):
-    """Real FFT (m, n // 2 + 1) of normalised von Mises kernels on n points, one per bandwidth."""
-    kappa = 1.0 / np.radians(np.asarray(bandwidths_deg, dtype=float)) ** 2
-    d = 2.0 * np.pi * np.arange(n) / n
-    kernel = np.exp(kappa[:, None] * (np.cos(d) - 1.0))
-    kernel /= kernel.sum(axis=-1, keepdims=True)
-    return np.fft.rfft(kernel, axis=-1)
-
-
-def von_mises_smooth(counts, bandwidth_deg):
-    """Circular convolution of fine-bin counts (last axis) with a von Mises kernel.
-
-    ``bandwidth_deg`` is the kernel standard deviation; kappa = 1 / sigma^2 (radians).
-    """
-    counts = np.asarray(counts, dtype=float)
-    n = counts.shape[-1]
-    out = np.fft.irfft(np.fft.rfft(counts, axis=-1) * _von_mises_transform([bandwidth_deg], n)[0], n, axis=-1)
-    return np.clip(out, 0.0, None)
-
-
-def _circular_reach(occupied, reach):
-    """Points within ``reach[k]`` bins (periodic) of an occupied bin of row k: (m, n) bool."""
-    occupied = np.asarray(occupied, dtype=bool)
-    m, n = occupied.shape
-    reach = np.minimum(np.broadcast_to(np.asarray(reach, dtype=np.int64), (m,)), n)
-    ext = np.concatenate([np.zeros((m, 1), dtype=np.int32),
-                          np.cumsum(np.tile(occupied, 3), axis=1, dtype=np.int32)], axis=1)
-    i = np.arange(n)[None, :] + n
-    hi = np.take_along_axis(ext, i + reach[:, None] + 1, axis=1)
-    lo = np.take_along_axis(ext, i - reach[:, None], axis=1)
-    return hi > lo
-
-
-def _kernel_setup(fine_block_counts, bandwidths, fine_width):
-    """Common part of the kernel estimates: counts, smoothed counts, sampled mask, smoothed blocks."""
-    fine_block_counts = np.asarray(fine_block_counts, dtype=float)
-    n = fine_block_counts.shape[-1]
-    bws = np.asarray(bandwidths, dtype=float)
-    transform = _von_mises_transform(bws, n)
-    counts = fine_block_counts.sum(axis=0)
-    smooth = np.clip(np.fft.irfft(np.fft.rfft(counts, axis=-1) * transform, n, axis=-1), 0.0, None)
-    reach = np.maximum(1, np.ceil(bws / fine_width)).astype(np.int64)
-    sampled = _circular_reach(counts > 0, reach)
-    smooth = np.where(sampled, smooth, 0.0)
-    smooth_blocks = np.fft.irfft(np.fft.rfft(fine_block_counts, axis=-1) * transform, n, axis=-1)
-    # values below KERNEL_FLOOR of a block's largest one are round-off of the transform: zero
-    floor = KERNEL_FLOOR * smooth_blocks.max(axis=-1, keepdims=True)
-    smooth_blocks = np.where(smooth_blocks > floor, smooth_blocks, 0.0)
-    return bws, smooth, sampled, smooth_blocks
-
-
-def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width):
-    """Kernel profiles of a stack of fine block histograms (n_blocks, m, n_fine), as one Profile1D.
-
-    Smoothing is linear, so the resamples are the resampled sums of the smoothed blocks.
-    """
-    bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
-    density, free = free_energy_from_counts(smooth, fine_width, kt)
-    bsmooth = np.clip(np.tensordot(smooth_blocks * sampled, mult, axes=(0, 1)), 0.0, None)  # (m, n, n_boot)
-    bfree = _resampled_free_energy(bsmooth, fine_width, kt)
-    err, frac = _spread_last(bfree)
-    return Profile1D(angle_deg=bin_centres(smooth.shape[-1]), samples=smooth, density_per_deg=density,
-                     free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
-                     sampled=sampled & (smooth > 0), boot_free_energy=bfree, boot_valid_fraction=frac,
-                     bandwidth_deg=bws)
 
 
 def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width):
@@ -382,52 +160,6 @@ def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width):
 def _kernel_profiles(fine_block_counts, mult, kt, bandwidths, fine_width):
     """Kernel profiles for a stack of fine block histograms (n_blocks, m, n_fine)."""
     return _unstack(_kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width))
-
-
-def default_bandwidths_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
-    """The default kernel bandwidths (standard deviations, degrees) of a stack of torsions or types.
-
-    sigma = 0.9 s n_eff^(-1/5), s = population-weighted within-arc standard deviation of the
-    angle (each arc of ``scheme`` about its own circular mean), at least ``fine_width_deg``.
-
-    Parameters
-    ----------
-    fine_counts : ndarray (m, n_fine)
-    scheme : StateScheme or list of StateScheme
-        The scheme of the rows (one per row: each row's own arcs).
-    n_effective : ndarray (m,)
-
-    Returns
-    -------
-    ndarray (m,)
-    """
-    counts = np.atleast_2d(np.asarray(fine_counts, dtype=float))
-    if isinstance(scheme, (list, tuple)):   # one scheme per row (a set of schemes: each type its own)
-        n_eff = np.broadcast_to(np.asarray(n_effective, dtype=float), (len(counts),))
-        out = np.empty(len(counts))
-        for part in dict.fromkeys(scheme):
-            rows = np.array([p == part for p in scheme], dtype=bool)
-            out[rows] = default_bandwidths_deg(counts[rows], part, n_eff[rows], fine_width_deg)
-        return out
-    centres = bin_centres(counts.shape[-1])
-    var = np.zeros(len(counts))
-    wsum = np.zeros(len(counts))
-    for _, start, end in scheme.merged_arcs():
-        rel = np.mod(centres - start, 360.0)
-        sel = (rel > 0) & (rel <= (end - start))
-        w = counts[:, sel]
-        ws = w.sum(axis=1)
-        ang = np.radians(centres[sel])
-        mean = np.degrees(np.arctan2(w @ np.sin(ang), w @ np.cos(ang)))
-        dev = _circular_deviation_deg(centres[sel][None, :], mean[:, None])
-        use = ws > 0
-        var += np.where(use, (w * dev ** 2).sum(axis=1), 0.0)
-        wsum += np.where(use, ws, 0.0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        s = np.where(wsum > 0, np.sqrt(var / wsum), 0.0)
-    n_eff = np.maximum(np.broadcast_to(np.asarray(n_effective, dtype=float), s.shape), 2.0)
-    out = np.maximum(0.9 * s * n_eff ** (-0.2), fine_width_deg)
-    return np.where(counts.sum(axis=1) > 0, out, float(fine_width_deg))
 
 
 def default_bandwidth_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
