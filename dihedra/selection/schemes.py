@@ -20,6 +20,15 @@ Built-in schemes (state labels exactly as written):
 
 ``cis-trans``
     ``trans`` (\\|omega\\| >= 90) and ``cis``, for a peptide omega or any planar torsion.
+``coplanar-perpendicular``
+    ``0/180`` (\\|phi\\| <= 45 or > 135) and ``90/-90``: a torsion about a bond to a planar end with two
+    identical substituents (a phenyl ring, a carboxylate), whose angle is defined modulo 180.
+``symmetric-rotor``
+    one state, ``rotor``, on the whole circle: a rotor whose wells are indistinguishable (a
+    methyl or CF3 group: three identical atoms).
+``auto`` and ``basins`` (chosen per torsion type; :mod:`dihedra.selection.choice`)
+    from the chemistry of the central bond (:mod:`dihedra.selection.chemistry`), or from the
+    sampled distribution (:mod:`dihedra.trajectory.basins`).
 ``chi-rotamers`` and ``protein`` (sets of schemes, :class:`SchemeSet`)
     side-chain rotamer wells: ``g+``/``t``/``g-`` for chi about an sp3-sp3 bond, ``0``/``+90``/
     ``180``/``-90`` for His and Trp chi2, Asn chi2 and Gln chi3, ``0/180``/``90/-90`` for the
@@ -50,7 +59,10 @@ UNDEFINED = -1
 #: Core code of an angle that lies outside every core (see :meth:`StateScheme.core_codes`).
 NO_CORE = -2
 
-BUILTIN_SCHEMES = ("anti-gauche", "staggered-eclipsed", "klyne-prelog", "cis-trans", "chi-rotamers", "protein")
+BUILTIN_SCHEMES = ("anti-gauche", "staggered-eclipsed", "klyne-prelog", "cis-trans", "coplanar-perpendicular",
+                   "symmetric-rotor", "chi-rotamers", "protein")
+#: Schemes chosen per torsion type when the torsions are known (see :mod:`dihedra.selection.choice`).
+CHOSEN_SCHEMES = ("auto", "basins")
 
 
 @dataclass(frozen=True)
@@ -108,6 +120,10 @@ class StateScheme:
     def coded_parts(self):
         """The schemes that torsions may follow, in this scheme's codes: ``[self]``."""
         return [self]
+
+    def scheme_of_type(self, torsion_type):
+        """The name of the scheme that torsions of ``torsion_type`` follow: this one's."""
+        return self.name
 
     def states_of_type(self, torsion_type):
         """Labels a torsion of ``torsion_type`` can take: all of them."""
@@ -290,14 +306,28 @@ def chi_sp2():
                                   ("-90", -135.0, False)], labels=["0", "+90", "180", "-90"])
 
 
-def chi_sp2_symmetric():
+def chi_sp2_symmetric(name="chi-sp2-symmetric"):
     """Wells of an sp3-sp2 torsion whose planar end is symmetric (Phe and Tyr chi2, Asp chi2, Glu
     chi3: the angle is defined only modulo 180): ``0/180`` (\\|chi\\| <= 45 or > 135) and ``90/-90``
     (the ring or carboxylate perpendicular to the C-C-C plane; Phe p90, t80, m-85 of Lovell et al.,
     Proteins 40 (2000) 389)."""
-    return _from_arcs("chi-sp2-symmetric", [("0/180", -45.0, False), ("90/-90", 45.0, False),
+    return _from_arcs(name, [("0/180", -45.0, False), ("90/-90", 45.0, False),
                                             ("0/180", 135.0, False), ("90/-90", -135.0, False)],
                       labels=["0/180", "90/-90"])
+
+
+def coplanar_perpendicular():
+    """``0/180`` and ``90/-90``: the two wells of a torsion about a bond to a planar end with two
+    identical substituents (phenyl, carboxylate, nitro), whose angle is defined modulo 180 (the
+    sectors of :func:`chi_sp2_symmetric`, for any molecule)."""
+    return chi_sp2_symmetric("coplanar-perpendicular")
+
+
+def symmetric_rotor():
+    """One state, ``rotor``, on the whole circle: the wells of a rotor of three identical atoms
+    (methyl, CF3) cannot be told apart, so the torsion has one distinguishable state."""
+    return StateScheme(name="symmetric-rotor", labels=("rotor",), boundaries_deg=(180.0,), arc_states=(0,),
+                       start_closed=(False,))
 
 
 #: Side-chain torsions about an sp3-sp2 bond (IUPAC-IUB 1970 names): symmetric planar end or not.
@@ -351,6 +381,8 @@ class SchemeSet:
     name: str
     parts: tuple
     rule: str
+    assignment: tuple = ()
+    default_part: int = 0
 
     @property
     def labels(self):
@@ -361,7 +393,10 @@ class SchemeSet:
         return len(self.labels)
 
     def part_index(self, torsion_type):
-        """Position in ``parts`` of the part that torsions of ``torsion_type`` follow."""
+        """Position in ``parts`` of the part that torsions of ``torsion_type`` follow (by the rule, or,
+        for ``rule="by-type"``, by ``assignment``: pairs (type, part index), others ``default_part``)."""
+        if self.rule == "by-type":
+            return _assignment_of(self).get(str(torsion_type), self.default_part)
         wanted = _part_name(self.rule, torsion_type)
         names = [p.name for p in self.parts]
         return names.index(wanted) if wanted in names else 0
@@ -384,19 +419,59 @@ class SchemeSet:
         """Labels a torsion of ``torsion_type`` can take."""
         return list(self.parts[self.part_index(torsion_type)].labels)
 
+    def scheme_of_type(self, torsion_type):
+        """The name of the part that torsions of ``torsion_type`` follow."""
+        return self.parts[self.part_index(torsion_type)].name
+
     def sector_table(self):
         """(part: state, start_deg, end_deg) rows of every part."""
         return [(f"{p.name}: {state}", lo, hi) for p in self.parts for state, lo, hi in p.sector_table()]
 
     def to_dict(self):
-        return {"name": self.name, "labels": list(self.labels), "rule": self.rule,
-                "codes": {label: k for k, label in enumerate(self.labels)}, "undefined_code": UNDEFINED,
-                "parts": [p.to_dict() for p in self.parts]}
+        out = {"name": self.name, "labels": list(self.labels), "rule": self.rule,
+               "codes": {label: k for k, label in enumerate(self.labels)}, "undefined_code": UNDEFINED,
+               "parts": [p.to_dict() for p in self.parts]}
+        if self.rule == "by-type":
+            out.update(assignment={t: int(k) for t, k in self.assignment}, default_part=int(self.default_part))
+        return out
 
 
 @functools.lru_cache(maxsize=16)
 def _coded_parts(scheme_set):
     return tuple(scheme_set._coded())
+
+
+@functools.lru_cache(maxsize=16)
+def _assignment_of(scheme_set):
+    return dict(scheme_set.assignment)
+
+
+def scheme_by_type(name, schemes_of_types):
+    """A :class:`SchemeSet` that gives every torsion type its own scheme.
+
+    Parameters
+    ----------
+    name : str
+    schemes_of_types : dict
+        Torsion type -> :class:`StateScheme`; equal schemes become one part.
+
+    Returns
+    -------
+    StateScheme or SchemeSet
+        The one scheme itself when every type has the same.
+
+    Examples
+    --------
+    >>> s = scheme_by_type("mixed", {"NMA:C-N": cis_trans(), "BUT:C1-C2-C3-C4": anti_gauche()})
+    >>> s.scheme_of_type("NMA:C-N"), s.states_of_type("BUT:C1-C2-C3-C4")
+    ('cis-trans', ['anti', 'gauche+', 'gauche-'])
+    """
+    parts = list(dict.fromkeys(schemes_of_types.values()))
+    if len(parts) == 1:
+        return parts[0]
+    index = {p: k for k, p in enumerate(parts)}
+    return SchemeSet(name=name, parts=tuple(parts), rule="by-type",
+                     assignment=tuple((str(t), index[p]) for t, p in schemes_of_types.items()))
 
 
 def default_scheme(torsions):
@@ -411,7 +486,9 @@ def default_scheme(torsions):
 def scheme_from_dict(d):
     """A :class:`StateScheme` or :class:`SchemeSet` from its ``to_dict``."""
     if "parts" in d:
-        return SchemeSet(name=d["name"], parts=tuple(StateScheme.from_dict(p) for p in d["parts"]), rule=d["rule"])
+        return SchemeSet(name=d["name"], parts=tuple(StateScheme.from_dict(p) for p in d["parts"]), rule=d["rule"],
+                         assignment=tuple((str(t), int(k)) for t, k in (d.get("assignment") or {}).items()),
+                         default_part=int(d.get("default_part", 0)))
     return StateScheme.from_dict(d)
 
 
@@ -447,6 +524,9 @@ def scheme_from_toml(path):
 
 def scheme_from_mapping(data, where="scheme"):
     """A custom scheme from a mapping with the layout of :func:`scheme_from_toml`."""
+    if "rule" in data or "default" in data:
+        raise SchemeError(f"{where} maps torsion types to schemes ([[rule]] tables); such a scheme map needs the "
+                          "torsions: give it to track, TorsionStates or 'dihedra torsions --scheme'.")
     unknown = sorted(set(data) - {"name", "state"})
     if unknown:
         raise SchemeError(f"{where}: unknown key(s) {', '.join(unknown)}; valid keys are name, state.")
@@ -492,7 +572,9 @@ def scheme_from_mapping(data, where="scheme"):
 
 def get_scheme(spec):
     """A scheme by name (``anti-gauche``, ``staggered-eclipsed[:N]``, ``klyne-prelog``,
-    ``cis-trans``; the sets ``chi-rotamers`` and ``protein``) or TOML path.
+    ``cis-trans``, ``coplanar-perpendicular``, ``symmetric-rotor``; the sets ``chi-rotamers`` and
+    ``protein``) or TOML path. ``auto``, ``basins`` and scheme maps are chosen per torsion type by
+    :func:`dihedra.selection.choice.choose_schemes`.
 
     A :class:`StateScheme` or :class:`SchemeSet` passes through unchanged.
     """
@@ -505,6 +587,14 @@ def get_scheme(spec):
         return klyne_prelog()
     if text == "cis-trans":
         return cis_trans()
+    if text == "coplanar-perpendicular":
+        return coplanar_perpendicular()
+    if text == "symmetric-rotor":
+        return symmetric_rotor()
+    if text in CHOSEN_SCHEMES:
+        raise SchemeError(f"the scheme {text!r} is chosen per torsion type from the topology"
+                          f"{' and the trajectory' if text == 'basins' else ''}; give it to track, "
+                          "TorsionStates or 'dihedra torsions --scheme', which know the torsions.")
     if text in COMPOSITES:
         parts, rule = COMPOSITES[text]
         return SchemeSet(name=text, parts=tuple(_PARTS[p]() for p in parts), rule=rule)
