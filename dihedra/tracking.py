@@ -32,10 +32,11 @@ from .io.outputs import StagedFolder
 from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
 from .io.tables import write_json, write_table
-from .selection.schemes import default_scheme, get_scheme
+from .selection.choice import choose_schemes
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
-from .trajectory.assemble import assemble_result, block_sums, make_summary, replica_info
+from .trajectory.assemble import assemble_result, block_sums, make_summary, replica_info, scheme_table
+from .trajectory.basins import need_temperature, plan_basins
 from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
 from .trajectory.discard import plan_discard
 from .trajectory.inputs import check_readable, load_universe, truncated_error
@@ -144,7 +145,11 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
     scheme : str or StateScheme, optional
         State scheme name or TOML file (see :func:`dihedra.selection.schemes.get_scheme`); default
         ``protein`` when only protein torsions are chosen (cis/trans omega, side-chain rotamer
-        wells), else ``anti-gauche``.
+        wells), else ``anti-gauche``. Chosen per torsion type: ``"auto"`` (from the chemistry of
+        the central bond, :mod:`dihedra.selection.chemistry`), ``"basins"`` (the free-energy basins
+        of the sampled distribution, found by a first pass; needs ``temperature_k``; see
+        :mod:`dihedra.trajectory.basins`), or a scheme map (a TOML file of rules, see
+        :mod:`dihedra.selection.choice`). ``schemes.csv`` lists the states of every type and why.
     start, stop, step : int, optional
         Frame range, applied to every replica.
     workers : int
@@ -167,7 +172,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
     dt_ps : float, optional
         Time between stored frames in ps, replacing the trajectory's own.
     temperature_k : float, optional
-        Recorded in the summary (profiles need it; tracking does not).
+        Recorded in the summary (profiles need it; tracking does not, except with basins).
     n_state_blocks, n_hist_blocks, bin_width_deg, chunk_frames
         Block structure and fine histogram resolution (see :class:`~dihedra.trajectory.trackpass.TorsionPass`).
     keep_variants : bool
@@ -207,12 +212,16 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
     group, topology, trajectories = _inputs(topology, trajectories)
     try:
         run.begin(topology, trajectories, torsions, scheme, weights)
-        scheme = get_scheme(default_scheme(torsions) if scheme is None else scheme)
         digests = _check_duplicates(trajectories, allow_duplicates, run.notices) if group is None else {}
         universes = _universes(group, topology, trajectories, run.notices)
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions,
                                                                                             keep_variants=keep_variants)
         run.notices.extend(tset.notices)
+        choice = choose_schemes(scheme, universes[0], tset, torsions)
+        run.notices.extend(choice.notices)
+        if choice.needs_data:
+            need_temperature(temperature_k)
+        scheme = choice.provisional() if choice.needs_data else choice.resolve()
         frames = [_frame_indices(u, start, stop, step, f"trajectory {t}")
                   for u, t in zip(universes, trajectories)]
         weight_arrays, weight_column = (_weights_per_replica(weights, frames) if weights is not None
@@ -224,6 +233,13 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
         weight_arrays = [None if w is None else w[k:] for w, k in zip(weight_arrays, drop)]
         n_workers = max(1, int(workers or 1))
         backend = run.backend(backend, scheduler, n_workers)
+        basins = None
+        if choice.needs_data:   # the basins: a first pass over the frames the run keeps
+            run.say(f"basins of {len(choice.basin_types)} torsion type(s): a first pass for their histograms")
+            scheme, basins, basin_record, notes = plan_basins(
+                choice, [(u, f, w, dt_ps) for u, f, w in zip(universes, frames, weight_arrays)], tset, temperature_k,
+                backend=backend if isinstance(backend, str) else None, n_workers=n_workers, threads=threads)
+            run.notices.extend(notes)
         if progress is None:
             progress = backend == "serial" and sys.stderr.isatty()
         replicas = []
@@ -248,8 +264,10 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
                       weights_column=weight_column, dt_ps=dt_ps, n_state_blocks=n_state_blocks,
                       n_hist_blocks=n_hist_blocks, bin_width_deg=bin_width_deg, temperature_k=temperature_k,
                       discard=discard_record, target_error=target_error, target_error_kj_mol=target_error_kj_mol,
-                      keep_variants=bool(keep_variants), allow_duplicates=bool(allow_duplicates))
-        return run.finish(tset, scheme, universes[0], topology, replicas, params)
+                      keep_variants=bool(keep_variants), allow_duplicates=bool(allow_duplicates),
+                      scheme_choice=dict(choice.record(), basins=basin_record if basins is not None else None))
+        return run.finish(tset, scheme, universes[0], topology, replicas, params,
+                          scheme_table(scheme, tset.types, choice.reasons, basins))
     finally:
         run.close()
 
@@ -297,7 +315,7 @@ class _Run:
             self.passes[-1].finish_series()
         self.passes.append(tp)
 
-    def finish(self, tset, scheme, universe, topology, replicas, params):
+    def finish(self, tset, scheme, universe, topology, replicas, params, schemes=None):
         """The result and its folder: blocks.npz written by another thread (zlib releases Python's
         lock) while this one computes the populations and writes the tables."""
         shutil.rmtree(self.parts_dir, ignore_errors=True)
@@ -306,6 +324,7 @@ class _Run:
         self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
                                                      narrow=[k for k in blocks if narrowed_type(k)]))]
         result = assemble_result(tset, scheme, universe, self.notices, blocks)
+        result.schemes = schemes
         result.summary.update(make_summary(topology, replicas, scheme, tset, params, self.notices,
                                            time.time() - self.started))
         write_results(result, work, blocks=False)

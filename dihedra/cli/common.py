@@ -21,9 +21,14 @@ def add_torsion_options(parser, required=True):
 def add_scheme_option(parser):
     parser.add_argument("--scheme", default=None, metavar="NAME",
                         help="state scheme: anti-gauche, staggered-eclipsed[:N], klyne-prelog, cis-trans, "
-                             "chi-rotamers, protein (cis-trans omega, rotamer wells of chi, anti-gauche "
-                             "otherwise), or a .toml file of named sectors; default: protein when only "
-                             "protein torsions are tracked, else anti-gauche"),
+                             "coplanar-perpendicular, symmetric-rotor, chi-rotamers, protein (cis-trans omega, "
+                             "rotamer wells of chi, anti-gauche otherwise), or a .toml file of named sectors; "
+                             "chosen per torsion type: auto (from the chemistry of the central bond: 3-fold "
+                             "sp3-sp3, 6- or 2-fold sp2-sp3, cis/trans amides, one state for CH3/CF3 rotors, "
+                             "ring torsions flagged), basins (the free-energy basins of the sampled distribution, "
+                             "by a first pass; needs --temperature), or a .toml scheme map of [[rule]] tables "
+                             "(bond/types/torsions -> scheme); default: protein when only protein torsions are "
+                             "tracked, else anti-gauche")
 
 
 def add_track_options(parser):

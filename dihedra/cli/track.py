@@ -55,6 +55,7 @@ def report_track(result):
     print(f"{s['n_torsions']} torsions, {len(result.torsions['type'].unique())} types, "
           f"{s['n_frames_analysed']} frames from {len(s['replicas'])} replica(s), "
           f"scheme {result.scheme.name}")
+    print_schemes(result)
     print("populations pooled per type (fraction ± standard error; n/a: not estimable):")
     print_population_table(result.populations_by_type, result.scheme.labels)
     if len(result.conformers_by_type):
@@ -65,6 +66,26 @@ def report_track(result):
     print_convergence(result)
     print_notices(result.notices)
     print(f"results written to {result.folder}")
+
+
+def print_schemes(result, max_rows=40):
+    """The scheme of every type when they differ (auto, basins, a scheme map), and the basins found."""
+    table = result.schemes
+    asked = ((result.summary.get("parameters") or {}).get("scheme_choice") or {}).get("asked")
+    if table is None or not len(table) or asked not in ("auto", "basins") and table["scheme"].nunique() < 2:
+        return
+    print("scheme of each type (schemes.csv lists every state and why):")
+    for k, (ttype, rows) in enumerate(table.groupby("type", sort=False)):
+        if k == max_rows:
+            print(f"  ... and {table['type'].nunique() - max_rows} more types")
+            break
+        if rows["scheme"].iloc[0] == "basins" and "minimum_deg" in rows:
+            states = ", ".join(f"{r.state} (minimum {r.minimum_deg:.1f}"
+                               + ("" if r.from_deg != r.from_deg else f", {r.from_deg:.1f} to {r.to_deg:.1f}") + ")"
+                               for r in rows.itertuples(index=False))
+            print(f"  {ttype}: basins: {states} deg")
+        else:
+            print(f"  {ttype}: {rows['scheme'].iloc[0]}")
 
 
 def _discard_value(text):

@@ -4,11 +4,11 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
 
 ``torsions.csv``
     torsion, type, atom_indices, atom_names, resname, resid, segid, name, group, order,
-    n_undefined_frames
+    n_undefined_frames, scheme (the scheme the torsion follows)
 ``populations.csv``
-    torsion, type, state, population, population_err, n_effective, n_samples
+    torsion, type, state, population, population_err, n_effective, n_samples, scheme
 ``populations_by_type.csv``
-    type, state, population, population_err, n_torsions
+    type, state, population, population_err, n_torsions, ..., scheme
 ``populations_by_replica.csv``
     replica, torsion, type, state, population, population_err, ...
 ``conformers.csv``
@@ -25,6 +25,9 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
     block sums of the pass: state counts and fine angle histograms per block, with block frames,
     weights and replicas (input of profiles), and the conformer counts (dense per group width,
     rows otherwise)
+``schemes.csv``
+    type, scheme, state, from_deg, to_deg, reason (and, for basins, the minimum of each basin
+    with its error): the states of every torsion type
 ``summary.json``
     inputs with SHA-256, frame ranges, time step, scheme, parameters, package versions, notices
 ``dihedra-files.json``
@@ -45,7 +48,7 @@ from ..selection.torsions import TorsionSet
 from ..trajectory.result import TrackResult
 from .blocks import load_blocks, narrowed_type, save_npz
 from .series import ParquetSeries
-from .tables import read_json, read_table, write_json, write_table
+from .tables import read_json, read_optional_table, read_table, write_json, write_table
 
 TABLES = {
     "torsions": "torsions.csv",
@@ -62,6 +65,8 @@ def write_results(result, folder, blocks=True):
     summary of a :class:`~dihedra.trajectory.result.TrackResult`."""
     for attr, name in TABLES.items():
         write_table(getattr(result, attr), folder, name)
+    if getattr(result, "schemes", None) is not None:
+        write_table(result.schemes, folder, "schemes.csv")
     if blocks:
         save_npz(os.path.join(folder, "blocks.npz"), result.blocks,
                  narrow=[k for k in result.blocks if narrowed_type(k)])
@@ -86,4 +91,5 @@ def load_results(folder):
     tset = TorsionSet.from_frame(tables["torsions"])
     return TrackResult(torsion_set=tset, scheme=scheme_from_dict(summary["scheme"]), blocks=blocks,
                        summary=summary, notices=list(summary.get("notices", [])),
-                       folder=os.path.abspath(folder), series=ParquetSeries(os.path.abspath(folder)), **tables)
+                       folder=os.path.abspath(folder), series=ParquetSeries(os.path.abspath(folder)),
+                       schemes=read_optional_table(folder, "schemes.csv"), **tables)

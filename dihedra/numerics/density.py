@@ -297,3 +297,20 @@ def default_bandwidths_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0)
     n_eff = np.maximum(np.broadcast_to(np.asarray(n_effective, dtype=float), s.shape), 2.0)
     out = np.maximum(0.9 * s * n_eff ** (-0.2), fine_width_deg)
     return np.where(counts.sum(axis=1) > 0, out, float(fine_width_deg))
+
+
+def effective_samples(populations, torsions):
+    """Effective independent samples of each torsion (median over states of ``n_effective``).
+
+    States with a population below 0.02 or above 0.98 are left out (their blocking estimate is
+    poor); a torsion without such states uses its sample count.
+    """
+    pop = populations["population"].to_numpy(dtype=float)
+    neff = populations["n_effective"].to_numpy(dtype=float)
+    ok = (pop > 0.02) & (pop < 0.98) & np.isfinite(neff)
+    median = populations.loc[ok].groupby("torsion", sort=False)["n_effective"].median()
+    first = populations.groupby("torsion", sort=False)["n_samples"].first()
+    out = median.reindex(torsions).to_numpy(dtype=float)
+    fallback = first.reindex(torsions).to_numpy(dtype=float)
+    out = np.where(np.isnan(out), fallback, out)
+    return np.where(np.isnan(out), 1.0, out)

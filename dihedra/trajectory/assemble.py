@@ -10,6 +10,7 @@ import time
 import warnings
 
 import numpy as np
+import pandas as pd
 
 from .._version import __version__
 from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, heterogeneity_notice,
@@ -120,9 +121,41 @@ def assemble_result(tset, scheme, universe, notices, blocks):
                        f"{rough['state'].iloc[0]}): sampling is not converged and their error bars are rough.")
     table = tset.to_frame(universe)
     table["n_undefined_frames"] = undefined
+    of_type = {t: scheme.scheme_of_type(t) for t in dict.fromkeys(types)}
+    for frame in (table, pops, by_type, by_rep):   # the scheme each torsion follows
+        frame["scheme"] = [of_type[t] for t in frame["type"]]
     return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
                        populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
                        conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)
+
+
+#: Columns of :func:`scheme_table` (``schemes.csv``).
+SCHEME_COLUMNS = ["type", "scheme", "state", "from_deg", "to_deg", "reason"]
+
+
+def scheme_table(scheme, types, reasons=None, basins=None):
+    """The states of every torsion type: one row per arc (a state may have several), from_deg
+    (excluded) to to_deg (included) going up the circle, with the reason the type follows its
+    scheme and, for basins (a table of :mod:`dihedra.trajectory.basins`), their minima.
+
+    Examples
+    --------
+    >>> from dihedra.selection.schemes import get_scheme
+    >>> scheme_table(get_scheme("cis-trans"), ["NMA:C-N"])[["state", "from_deg", "to_deg"]].values.tolist()
+    [['trans', 90.0, -90.0], ['cis', -90.0, 90.0]]
+    """
+    rows = []
+    for t in dict.fromkeys(types):
+        part = scheme.parts[scheme.part_index(t)] if hasattr(scheme, "parts") else scheme
+        for state, lo, hi in part.sector_table():
+            whole = len(part.boundaries_deg) == 1
+            rows.append((t, part.name, state, None if whole else lo, None if whole else hi,
+                         (reasons or {}).get(t, "")))
+    table = pd.DataFrame(rows, columns=SCHEME_COLUMNS)
+    if basins is not None and len(basins):
+        extra = basins.drop(columns=["from_deg", "to_deg"])
+        table = table.merge(extra, on=["type", "state"], how="left")
+    return table
 
 
 def own_states(scheme, types):

@@ -152,6 +152,9 @@ class TrackResult:
         The results folder, if written or loaded.
     series : object or None
         Where the time series are (see the module notes); ``None``: no time series.
+    schemes : DataFrame or None
+        The states of every torsion type (``schemes.csv``): scheme, state, arcs, why the type
+        follows its scheme, and for basins their minima (see :func:`~dihedra.trajectory.assemble.scheme_table`).
     """
 
     torsion_set: TorsionSet
@@ -167,6 +170,7 @@ class TrackResult:
     notices: list = field(default_factory=list)
     folder: str | None = None
     series: object = None
+    schemes: pd.DataFrame | None = None
     _scratch: object = None  # keeps a temporary folder alive for API-only runs
 
     def has_series(self, kind):

@@ -26,10 +26,11 @@ import warnings
 import numpy as np
 
 from ..errors import DihedraError, SelectionError
-from ..selection.schemes import default_scheme, get_scheme
+from ..selection.choice import choose_schemes
 from ..selection.specs import select_torsions
 from ..selection.torsions import TorsionSet
-from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info
+from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info, scheme_table
+from .basins import need_temperature, plan_basins
 from .convergence import convergence_tables
 from .discard import parse_discard, plan_discard
 from .result import MemorySeries
@@ -56,9 +57,12 @@ class TorsionStates(TorsionPass):
         torsions (see :func:`dihedra.select_torsions`); or a ready :class:`TorsionSet`.
     scheme : str or StateScheme, optional
         State scheme: ``"anti-gauche"``, ``"staggered-eclipsed[:N]"``, ``"klyne-prelog"``,
-        ``"cis-trans"``, the sets ``"chi-rotamers"`` and ``"protein"``, a TOML file of named
-        sectors, or a :class:`StateScheme`. Default: ``"protein"`` when only protein torsions are
-        chosen, else ``"anti-gauche"``.
+        ``"cis-trans"``, ``"coplanar-perpendicular"``, ``"symmetric-rotor"``, the sets
+        ``"chi-rotamers"`` and ``"protein"``, a TOML file of named sectors, or a
+        :class:`StateScheme`; or chosen per torsion type: ``"auto"`` (the chemistry of the central
+        bond), ``"basins"`` (the basins of the sampled distribution, by a first pass in ``run()``;
+        needs ``temperature_k``) or a scheme map (TOML; see :mod:`dihedra.selection.choice`).
+        Default: ``"protein"`` when only protein torsions are chosen, else ``"anti-gauche"``.
     weights : array-like, optional
         One weight per analysed frame (reweighting a biased run).
     keep_states : bool
@@ -98,6 +102,8 @@ class TorsionStates(TorsionPass):
         ``cochran_q``, ...); per replica (one here).
     results.conformers, results.conformers_by_type : DataFrame
         Joint states of the torsions of each group (molecule or residue).
+    results.schemes : DataFrame
+        The states of every torsion type (arcs, why it follows its scheme, basin minima).
     results.states, results.angles : DataFrame
         The time series (``replica``, ``frame``, ``time_ps``, one column per torsion), when kept.
     results.convergence : DataFrame
@@ -119,10 +125,14 @@ class TorsionStates(TorsionPass):
         if universe is None or not hasattr(atomgroup, "atoms"):
             raise DihedraError(f"TorsionStates takes an MDAnalysis AtomGroup or Universe; got "
                                f"{type(atomgroup).__name__}.")
-        scheme = get_scheme(default_scheme(torsions) if scheme is None else scheme)
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universe, torsions,
                                                                                          keep_variants=keep_variants)
         tset = _within(tset, atomgroup.atoms, universe)
+        self._choice = choose_schemes(scheme, universe, tset, torsions)
+        if self._choice.needs_data:
+            need_temperature(temperature_k)
+        self._basins = self._basin_record = None
+        scheme = self._choice.provisional() if self._choice.needs_data else self._choice.resolve()
         if dt_ps is not None and not (np.isfinite(float(dt_ps)) and float(dt_ps) > 0):
             raise DihedraError(f"dt_ps must be a positive number of ps; got {dt_ps!r}.")
         series = MemorySeriesFactory() if keep_states or keep_angles else None
@@ -156,6 +166,8 @@ class TorsionStates(TorsionPass):
         self._started = time.time()
         if self._discard[1] is not None and self._make_tables:
             start, frames = self._drop_start(start, stop, step, frames)
+        if self._choice.needs_data and self._basins is None:
+            self._find_basins(start, stop, step, frames, backend, n_workers)
         kwargs = dict(start=start, stop=stop, step=step, frames=frames, verbose=verbose)
         if backend not in (None, "serial") or n_workers not in (None, 1):
             kwargs.update(n_workers=n_workers, n_parts=n_parts, backend=backend,
@@ -183,6 +195,18 @@ class TorsionStates(TorsionPass):
         self.weights = None if given is None else np.asarray(given)[k:]
         return (start, chosen[k:]) if frames is not None else (int(chosen[k]), None)
 
+    def _find_basins(self, start, stop, step, frames, backend, n_workers):
+        """The basins of the types that asked for them: a first pass over the frames of this run."""
+        if frames is not None:
+            chosen = np.asarray(frames)
+            chosen = np.flatnonzero(chosen) if chosen.dtype == bool else chosen.astype(np.int64)
+        else:
+            chosen = np.arange(*self._trajectory.check_slice_indices(start, stop, step))
+        self.scheme, self._basins, self._basin_record, notes = plan_basins(
+            self._choice, [(self._universe, chosen, self.weights, self.dt_ps)], self.torsion_set, self.temperature_k,
+            backend=backend if isinstance(backend, str) else None, n_workers=n_workers or 1)
+        self.torsion_set.notices.extend(n for n in notes if n not in self.torsion_set.notices)
+
     def _prepare(self):
         if self.weights is not None and len(self.weights) != self._n_total:
             raise DihedraError(f"weights has {len(self.weights)} values but {self._n_total} frames are analysed; "
@@ -200,6 +224,7 @@ class TorsionStates(TorsionPass):
         notices = list(self.torsion_set.notices)
         blocks = block_sums([self])
         result = assemble_result(self.torsion_set, self.scheme, self._universe, notices, blocks)
+        result.schemes = scheme_table(self.scheme, self.torsion_set.types, self._choice.reasons, self._basins)
         reader = self._universe.trajectory
         info = replica_info(self._universe, getattr(reader, "filename", None), self.frames, self, self.dt_ps,
                             notices)
@@ -207,7 +232,8 @@ class TorsionStates(TorsionPass):
                       weights="array" if self.weights is not None else None, weights_column=None, dt_ps=self.dt_ps,
                       n_state_blocks=self.n_state_blocks, n_hist_blocks=self.n_hist_blocks,
                       bin_width_deg=self.bin_width_deg, temperature_k=self.temperature_k,
-                      discard=self._discard_record)
+                      discard=self._discard_record,
+                      scheme_choice=dict(self._choice.record(), basins=self._basin_record))
         result.summary.update(make_summary(getattr(self._universe, "filename", None), [info], self.scheme,
                                            self.torsion_set, params, notices,
                                            time.time() - getattr(self, "_started", time.time())))
@@ -226,6 +252,7 @@ class TorsionStates(TorsionPass):
         if result.has_series("angles"):
             self.results.angles = result.angles()
         self.results.blocks = result.blocks
+        self.results.schemes = result.schemes
         self.results.summary = result.summary
         self.results.notices = result.notices
         self.tracking_result = result

@@ -47,7 +47,7 @@ from ...errors import DihedraError
 from ...numerics.density import (KERNEL_FLOOR, Profile1D, _circular_deviation_deg, _circular_reach,  # noqa: F401
                                  _histogram_stack, _kernel_setup, _kernel_stack, _resampled_free_energy,
                                  _row_min, _spread_last, _unstack, _von_mises_transform, bin_centres,
-                                 bootstrap_multiplicities, bootstrap_spread, default_bandwidths_deg,
+                                 bootstrap_multiplicities, bootstrap_spread, default_bandwidths_deg, effective_samples,
                                  free_energy_from_counts, rebin, von_mises_smooth)
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
@@ -170,23 +170,6 @@ def default_bandwidth_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
     """
     return float(default_bandwidths_deg(np.asarray(fine_counts, dtype=float)[None, :], scheme,
                                         [n_effective], fine_width_deg)[0])
-
-
-def effective_samples(populations, torsions):
-    """Effective independent samples of each torsion (median over states of ``n_effective``).
-
-    States with a population below 0.02 or above 0.98 are left out (their blocking estimate is
-    poor); a torsion without such states uses its sample count.
-    """
-    pop = populations["population"].to_numpy(dtype=float)
-    neff = populations["n_effective"].to_numpy(dtype=float)
-    ok = (pop > 0.02) & (pop < 0.98) & np.isfinite(neff)
-    median = populations.loc[ok].groupby("torsion", sort=False)["n_effective"].median()
-    first = populations.groupby("torsion", sort=False)["n_samples"].first()
-    out = median.reindex(torsions).to_numpy(dtype=float)
-    fallback = first.reindex(torsions).to_numpy(dtype=float)
-    out = np.where(np.isnan(out), fallback, out)
-    return np.where(np.isnan(out), 1.0, out)
 
 
 def _bandwidths(bandwidth_deg, fine_counts, scheme, n_effective, fine):
