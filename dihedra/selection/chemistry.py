@@ -277,7 +277,7 @@ class BondGraph:
 
 def _centre_text(graph, i):
     hyb, how = graph.hybridisation(i)
-    return f"{graph.element[i] or '?'} {hyb}" + (f" ({how})" if how in ("conjugated lone pair", "bond lengths") else "")
+    return f"{graph.element[i] or '?'} {hyb} ({how})"
 
 
 def _rotor(graph, b, c):
