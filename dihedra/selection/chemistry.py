@@ -6,37 +6,28 @@ included in an all-atom model; in a united-atom model, whose CHx sites carry the
 implicitly, the masses of the sites or, failing those, the bond lengths of the topology's
 coordinates), ring membership, and the symmetry of the substituents of B and C.
 
-Rules (the wells of each class, and the scheme that names them)
-------------------------------------------------------------------
-=====================  ========================  ===========================================================
-bond class             scheme                    wells and source
-=====================  ========================  ===========================================================
-``ring``               ``klyne-prelog``          flagged: ring closure limits the torsion (about -60..60 in
-                                                 a six-membered ring) and couples it to the other ring
-                                                 torsions (Cremer & Pople, J. Am. Chem. Soc. 97 (1975)
-                                                 1354); the six Klyne-Prelog sectors describe it without
-                                                 assuming open-chain wells; ``basins`` finds its puckers
-``sp``                 ``symmetric-rotor``       a linear (sp) centre: triple bond or cumulene, no wells
-                                                 (Eliel & Wilen, Stereochemistry of Organic Compounds,
-                                                 Wiley 1994, ch. 10)
-``amide``, ``ester``   ``cis-trans``             C(=O)-N and C(=O)-O (also =S): partial double bond,
-                                                 planar, cis and trans wells 180 degrees apart (Pauling,
-                                                 Corey & Branson, PNAS 37 (1951) 205)
-``double``             ``cis-trans``             a C=C or C=N double bond: cis/trans (Z/E) isomers
-``sp2-sp2``            ``cis-trans`` or          a single bond between two conjugated sp2 centres: planar
-                       ``coplanar-perpendicular``  s-cis/s-trans wells (2-fold; Eliel & Wilen 1994, ch. 10);
-                                                 angle modulo 180 when an end has two identical
-                                                 substituents (a phenyl ring)
-``sp2-sp3``            ``klyne-prelog`` or       six 60-degree sectors: the wells lie eclipsed (0, +-120:
-                       ``coplanar-perpendicular``  propene, acetaldehyde) or staggered (180, +-60) by the
-                                                 substituents (Eliel & Wilen 1994, ch. 10); 2-fold
-                                                 (coplanar/perpendicular, modulo 180) when the sp2 end has
-                                                 two identical substituents (ethylbenzene, Phe chi2)
-``sp3-sp3``            ``anti-gauche``           three staggered wells, anti (180) and gauche (+-60)
-                                                 (Eliel & Wilen 1994, ch. 10); ``staggered-eclipsed`` when
-                                                 an end carries three identical groups (t-butyl): its three
-                                                 staggered wells are equivalent
-=====================  ========================  ===========================================================
+Rules (the class of the bond, its scheme, the wells and their source)
+---------------------------------------------------------------------
+* ``ring`` -- ``klyne-prelog``, flagged: ring closure limits the torsion (about -60..60 in a
+  six-membered ring) and couples it to the other ring torsions (Cremer & Pople, J. Am. Chem. Soc.
+  97 (1975) 1354); the six Klyne-Prelog sectors describe it without assuming open-chain wells, and
+  ``basins`` finds its puckers.
+* ``sp`` -- ``symmetric-rotor``: a linear (sp) centre, triple bond or cumulene, has no wells
+  (Eliel & Wilen, Stereochemistry of Organic Compounds, Wiley 1994, ch. 10).
+* ``amide``, ``ester`` -- ``cis-trans``: C(=O)-N and C(=O)-O (also =S) are partial double bonds,
+  planar, with cis and trans wells 180 degrees apart (Pauling, Corey & Branson, PNAS 37 (1951) 205).
+* ``double`` -- ``cis-trans``: a C=C or C=N double bond, cis/trans (Z/E) isomers.
+* ``sp2-sp2`` -- ``cis-trans``: a single bond between two conjugated sp2 centres has planar
+  s-cis/s-trans wells (2-fold; Eliel & Wilen 1994, ch. 10); ``coplanar-perpendicular`` (angle
+  modulo 180) when an end has two identical substituents (a phenyl ring).
+* ``sp2-sp3`` -- ``klyne-prelog``: six 60-degree sectors, since the wells lie eclipsed (0, +-120:
+  propene, acetaldehyde) or staggered (180, +-60) as the substituents decide (Eliel & Wilen 1994,
+  ch. 10); ``coplanar-perpendicular`` (2-fold, modulo 180) when the sp2 end has two identical
+  substituents (ethylbenzene, Phe chi2); ``staggered-eclipsed:6`` when, besides, the sp3 end has
+  three identical groups.
+* ``sp3-sp3`` -- ``anti-gauche``: three staggered wells, anti (180) and gauche (+-60) (Eliel &
+  Wilen 1994, ch. 10); ``staggered-eclipsed`` when an end carries three identical groups
+  (t-butyl): its three staggered wells are equivalent.
 
 A terminal rotor of three identical atoms (CH3, CF3, NH3+) has one distinguishable state whatever
 the other end (``symmetric-rotor``; its wells repeat every 120 degrees, or every 60 next to an sp2
@@ -324,7 +315,8 @@ def _sp2_sp2(graph, b, c):
                     f"({SOURCES['amide']})")
     order = None if graph.orders is None else graph.orders.get((b, c))
     if order is None:   # the double bond of an sp2 atom is its only possible partner
-        unique = graph.pi_partners(b) == [c] or graph.pi_partners(c) == [b]
+        unique = any(graph.base_hybridisation(x)[0] == "sp2" and graph.pi_partners(x) == [y]
+                     for x, y in ((b, c), (c, b)))
         order = 2.0 if unique and graph.element[b] in ("C", "N") and graph.element[c] in ("C", "N") else 1.0
     if order >= 2:
         return ("double", 2, "cis-trans", f"double bond: cis and trans (Z/E) isomers ({EW})")
