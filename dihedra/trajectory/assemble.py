@@ -142,7 +142,7 @@ def scheme_table(scheme, types, reasons=None, basins=None):
     --------
     >>> from dihedra.selection.schemes import get_scheme
     >>> scheme_table(get_scheme("cis-trans"), ["NMA:C-N"])[["state", "from_deg", "to_deg"]].values.tolist()
-    [['trans', 90.0, -90.0], ['cis', -90.0, 90.0]]
+    [['cis', -90.0, 90.0], ['trans', 90.0, -90.0]]
     """
     rows = []
     for t in dict.fromkeys(types):
