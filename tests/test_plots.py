@@ -291,12 +291,39 @@ def test_free_energy_map_is_periodic_with_contours_in_kj_per_mol():
     cs = [c for c in ax.collections if hasattr(c, "levels")][0]
     np.testing.assert_allclose(cs.levels, np.arange(2.0, 10.0, 2.0))
     assert ax.get_xlim() == (-180, 180) and ax.get_ylim() == (-180, 180)
-    assert ax.get_xlabel() == r"$\varphi$(a) / deg"
+    # two generic torsions: numbered symbols, named in the note
+    assert ax.get_xlabel() == r"$\varphi_1$ / deg" and ax.get_ylabel() == r"$\varphi_2$ / deg"
+    assert r"$\varphi_1$: a; $\varphi_2$: b" in ax.get_title(loc="left")
     cbar_ax = [a for a in ax.figure.axes if a is not ax][0]
     assert cbar_ax.get_ylabel() == r"$\mathit{F}$ / kJ mol$^{-1}$"
     # a closed contour around the minimum at (180, 180) reaches across the periodic edge: the padded
     # grid repeats the opposite edge (np.pad wrap is the reference)
     assert "every 2 kJ/mol" in ax.get_title(loc="left")
+
+
+def relative_luminance(rgb):
+    """WCAG 2 relative luminance of an sRGB colour (W3C, Web Content Accessibility Guidelines 2.0)."""
+    r, g, b = linear(np.asarray(rgb)[:3])
+    return 0.2126 * r + 0.7152 * g + 0.0722 * b
+
+
+def test_free_energy_map_draws_the_eye_to_the_basins_below_a_stated_ceiling():
+    # a Ramachandran-like map: phi and psi named, F up to 30 kJ/mol
+    c = np.arange(-175.0, 180, 10.0)
+    ga, gb = np.meshgrid(c, c, indexing="ij")
+    f = 7.5 * (2 + np.cos(np.radians(ga + 60)) + np.cos(np.radians(gb + 45)))
+    table = pd.DataFrame({"torsion_a": "ALA:phi", "torsion_b": "ALA:psi", "angle_a_deg": ga.ravel(),
+                          "angle_b_deg": gb.ravel(), "free_energy_kj_mol": f.ravel(), "sampled": True})
+    ax = figures.plot_free_energy_map(table, ax=new_ax(height=3.0))
+    mesh = [m for m in ax.collections if isinstance(m, QuadMesh)][0]
+    # the scale is capped at the ceiling (15 kJ/mol = 6 kT at 300 K), said on the figure
+    assert mesh.norm.vmax == pytest.approx(figures.MAP_CEILING_KJ_MOL) and f.max() > 25
+    assert "colours up to 15 kJ/mol above the minimum" in ax.get_title(loc="left")
+    # the basins are the darkest: luminance rises monotonically with the free energy
+    lum = [relative_luminance(mesh.cmap(x)) for x in np.linspace(0, 1, 11)]
+    assert all(b > a for a, b in zip(lum, lum[1:])) and lum[0] < 0.1 and lum[-1] > 0.7
+    assert mesh.cmap.get_over()[:3] == pytest.approx(mesh.cmap(1.0)[:3])  # above the ceiling: the top colour
+    assert ax.get_xlabel() == r"$\varphi$ (ALA) / deg" and ax.get_ylabel() == r"$\psi$ (ALA) / deg"
 
 
 # ------------------------------------------------------------------------------------------------
@@ -312,14 +339,17 @@ def kinetics_tables():
                                                                                  "gauche+", "gauche-"],
                                 "to_state": ["gauche+", "gauche-", "anti", "anti", "gauche-", "gauche+"],
                                 "count": [30, 20, 31, 19, 0, 2],
-                                "rate_per_ps": [0.0125, 0.0125, 0.05, 0.08, 0.0, 0.001]})
+                                "rate_per_ps": [0.0125, 0.0125, 0.05, 0.08, 0.0, 0.001],
+                                "rate_err_per_ps": [0.0023, 0.0028, 0.009, 0.018, 0.0, 0.0007],
+                                "rate_ci_high_per_ps": [0.018, 0.019, 0.07, 0.12, 0.0126, 0.0036]})
     return transitions, lifetimes
 
 
-def test_transition_diagram_nodes_by_population_arrows_by_rate():
+def test_transition_diagram_arrows_by_count_labels_with_direction_and_upper_limits():
     scheme = get_scheme("anti-gauche")
     transitions, lifetimes = kinetics_tables()
-    ax = figures.plot_transition_diagram(transitions, lifetimes, "T", scheme=scheme, ax=new_ax(height=2.6))
+    fig = Figure(figsize=(3.35, 3.4), layout="constrained")
+    ax = figures.plot_transition_diagram(transitions, lifetimes, "T", scheme=scheme, ax=fig.add_subplot())
     nodes = [p for p in ax.patches if isinstance(p, Circle)]
     arrows = [p for p in ax.patches if isinstance(p, FancyArrowPatch)]
     assert len(nodes) == 3
@@ -328,12 +358,29 @@ def test_transition_diagram_nodes_by_population_arrows_by_rate():
     radius = {to_hex(n.get_facecolor()): n.get_radius() for n in nodes}
     colours = figures.state_colours(scheme)
     assert radius[to_hex(colours["anti"])] > radius[to_hex(colours["gauche+"])] > radius[to_hex(colours["gauche-"])]
-    # arrow width grows with the rate: the widest is gauche- -> anti (0.08 per ps)
-    widths = sorted(a.get_linewidth() for a in arrows)
-    assert widths[-1] == pytest.approx(0.5 + 2.6)
-    assert "0.08" in texts_of(ax) and "0.001" in texts_of(ax)
-    counts = figures.plot_transition_diagram(transitions, lifetimes, "T", weight="count", scheme=scheme, ax=new_ax())
-    assert "31" in texts_of(counts) and "transition count" in counts.get_title(loc="left")
+    # arrow width grows with the number of transitions, not the rate: the widest is gauche+ -> anti
+    # (31 transitions), not gauche- -> anti (the largest rate, 0.08 per ps); a single event is thin
+    observed = transitions[transitions["count"] > 0]
+    widths = [a.get_linewidth() for a in arrows]
+    np.testing.assert_allclose(widths, 0.5 + 2.6 * observed["count"].to_numpy() / 31)
+    # every arrow label names its count and points the way its arrow goes (the sign turns with the text)
+    labels = [t for t in ax.texts if "\u2192" in t.get_text() or "\u2190" in t.get_text()]
+    assert sorted(int(t.get_text().strip("\u2192\u2190 ")) for t in labels) == sorted(observed["count"])
+    for t, arrow, row in zip(labels, arrows, observed.itertuples()):
+        (x0, y0), (x1, y1) = arrow._posA_posB
+        along = np.array([np.cos(np.radians(t.get_rotation())), np.sin(np.radians(t.get_rotation()))])
+        sign = 1.0 if "\u2192" in t.get_text() else -1.0
+        assert sign * along @ np.array([x1 - x0, y1 - y0]) > 0, (row.from_state, row.to_state, t.get_text())
+    # the table below: direction, count and the rate per ns rounded to its error; no event: the upper limit
+    table = [t.get_text() for a in fig.axes if a is not ax for t in a.texts]
+    assert "gauche- \u2192 anti" in table and "80 ± 18" in table  # 0.080 +- 0.018 per ps
+    assert "gauche+ \u2192 gauche-" in table and "< 13 (95 %)" in table  # 0.0126 per ps, no event
+    assert "0.0000" not in " ".join(table) and "0 ± 0" not in table
+    flux = figures.plot_transition_diagram(transitions, lifetimes, "T", weight="flux", scheme=scheme, ax=new_ax(),
+                                           table=False)
+    assert "flux" in flux.get_title(loc="left")
+    with pytest.raises(DihedraError, match="arrow weight"):
+        figures.plot_transition_diagram(transitions, lifetimes, "T", weight="rate", ax=new_ax(), table=False)
 
 
 def test_lifetimes_exponential_from_the_rates_and_observed_markers():
@@ -364,6 +411,28 @@ def test_lifetimes_draw_the_survival_table_of_the_kinetics():
     assert len(steps) == 1
     np.testing.assert_allclose(steps[0].get_xdata(), [0.0, 1.0, 2.0, 3.0])   # S > 0 only
     np.testing.assert_allclose(steps[0].get_ydata(), [1.0, 0.8, 0.8, 0.8 / 3])
+
+
+def test_lifetimes_time_axis_follows_the_data_and_the_legend_covers_nothing():
+    # a 98 ps run: one state left a few times (fitted lifetime 740 ps from the rates), one never left
+    lifetimes = pd.DataFrame({"level": "type", "name": "T", "type": "T", "state": ["anti", "gauche+"],
+                              "mean_ps": [np.nan, np.nan], "median_ps": [np.nan, np.nan],
+                              "ci_low_ps": [np.nan, np.nan], "ci_high_ps": [np.nan, np.nan],
+                              "mean_from_rates_ps": [740.0, np.nan], "population_counted": [0.7, 0.3]})
+    survival = pd.DataFrame({"level": "type", "name": "T", "type": "T", "state": ["anti"] * 3 + ["gauche+"],
+                             "time_ps": [10.0, 40.0, 98.0, 98.0], "survival": [0.9, 0.8, 0.8, 1.0],
+                             "n_at_risk": [10, 9, 8, 3]})
+    fig = Figure(figsize=(3.35, 2.5), layout="constrained")
+    ax = figures.plot_lifetimes(lifetimes, "T", scheme=get_scheme("anti-gauche"), survival=survival,
+                                ax=fig.add_subplot())
+    assert ax.get_xlim()[1] == pytest.approx(98.0 * 1.05)  # the data, not 3 x 740 ps
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    legend = ax.get_legend().get_window_extent(canvas.get_renderer())
+    assert legend.y0 >= ax.get_window_extent(canvas.get_renderer()).y1 - 1  # above the axes, over no curve
+    assert "gauche+ (never left)" in [t.get_text() for t in ax.get_legend().get_texts()]
 
 
 # ------------------------------------------------------------------------------------------------

@@ -18,6 +18,7 @@ from figure_data import full_folder, track_only_folder  # noqa: F401  (fixtures)
 from dihedra.cli import main
 from dihedra.presentation.figures import figure_set, style
 from dihedra.presentation.report import write_report
+from dihedra.presentation.rounding import format_value_error
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 
@@ -38,7 +39,12 @@ def test_report_is_self_contained_and_embeds_every_figure(full_folder, full_repo
     path, text = full_report
     refs = references(text)
     assert refs, "the report should have in-page links and images"
-    assert all(r.startswith("data:") or r.startswith("#") for r in refs)  # no file, no network
+    # embedded data, in-page links, or links to the full tables of the results folder (which exist);
+    # no network
+    files = [r for r in refs if not (r.startswith("data:") or r.startswith("#"))]
+    assert all(os.path.isfile(os.path.join(os.path.dirname(path), r)) for r in files), files
+    assert all(os.path.realpath(os.path.join(os.path.dirname(path), r)).startswith(os.path.realpath(full_folder))
+               for r in files)
     assert "http://" not in text and "https://" not in text
     assert "<script" not in text.lower() and "@import" not in text and "url(" not in text
     images = re.findall(r"<img [^>]*src='data:image/svg\+xml;base64,([^']+)'", text)
@@ -62,8 +68,8 @@ def test_report_content_comes_from_the_folder(full_folder, full_report):  # noqa
         assert rep["sha256"] in text and html.escape(rep["trajectory"]) in text
     assert summary["topology"]["sha256"] in text
     pops = pd.read_csv(os.path.join(full_folder, "populations_by_type.csv"))
-    for row in pops.itertuples():
-        assert f"{row.population:.3f} ± {row.population_err:.3f}" in text
+    for row in pops.itertuples():  # rounded to the error (the rule is checked in test_rounding.py)
+        assert format_value_error(row.population, row.population_err) in text
     comparison = pd.read_csv(os.path.join(full_folder, "comparison.csv"))
     for verdict, reason in zip(comparison["verdict"], comparison["verdict_reason"]):
         assert f">{verdict}</span>" in text and html.escape(reason) in text
@@ -79,7 +85,7 @@ def test_report_content_comes_from_the_folder(full_folder, full_report):  # noqa
     minima = pd.read_csv(os.path.join(full_folder, "minima.csv"))
     pooled = minima[minima["torsion"].isna()]
     for row in pooled.itertuples():
-        assert f"{row.angle_deg:.1f} ± {row.angle_err_deg:.1f}" in text
+        assert format_value_error(row.angle_deg, row.angle_err_deg) in text
     assert "@media print" in text and "break-inside: avoid" in text
 
 

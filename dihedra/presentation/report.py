@@ -9,7 +9,7 @@ into ``report.html``:
   ranges, time step and its source, parameters, package versions, the analysis file of
   ``dihedra run`` when there is one);
 * the notices of every step, and the cautions each step wrote beside its results;
-* the torsion table and the state scheme;
+* the torsions per type (the full table linked) and the state scheme;
 * populations per type and the most populated conformers;
 * profiles (minima, barriers, state free energies) and the comparison with a static scan, with
   its verdicts and their reasons;
@@ -18,8 +18,14 @@ into ``report.html``:
 * every figure of :func:`dihedra.presentation.figures.figure_set`, embedded as an SVG data URI (text as paths,
   so no font is fetched), and a list of the figures the folder could not make and why.
 
+A folder of many types (a protein has sixty) gives a report of a few pages: its tables show the
+chosen types (``types``), or, without a choice, the most informative ones (those of
+:func:`~dihedra.presentation.figures.informative_types`, the same the figures show), and a
+one-line-per-type summary of the rest (verdicts, main states); every such table links its full CSV
+in the results folder. Values are rounded to their errors (:mod:`~dihedra.presentation.rounding`).
+
 The page has no script and makes no request: every style is inline in one ``<style>`` element,
-every image a ``data:`` URI, links only jump within the page. A print style sheet (A4, figures and
+every image a ``data:`` URI, links jump within the page or open a table of the results folder. A print style sheet (A4, figures and
 table rows kept whole, no navigation) makes "Print to PDF" give a clean document. The report only
 reads the folder; it recomputes nothing.
 
@@ -35,9 +41,11 @@ import time
 
 from ..io.outputs import check_replaceable_in, check_single_file, file_head_contains, is_inside, write_text
 from ..io.tables import read_optional_json
-from .report_html import _CSS, _e, _fmt
-from .report_sections import (_comparison, _convergence, _couplings, _kinetics, _populations, _profiles,
-                              _provenance, _time_series, _torsions)
+from .figures import CHOICE_RULE, informative_types
+from .figures.figureset import check_types
+from .report_dynamics import _convergence, _couplings, _kinetics
+from .report_html import _CSS, MAX_ROWS, Page, _e, _fmt
+from .report_sections import _comparison, _populations, _profiles, _provenance, _time_series, _torsions
 
 #: The sections in the page's navigation: (id, name).
 _NAVIGATION = [("convergence", "Convergence"), ("inputs", "Inputs"), ("torsions", "Torsions"), ("populations", "Populations"),
@@ -45,7 +53,7 @@ _NAVIGATION = [("convergence", "Convergence"), ("inputs", "Inputs"), ("torsions"
                ("kinetics", "Kinetics"), ("couplings", "Couplings"), ("notes", "Figures not made")]
 
 
-def build_report(folder, width="single", figures=True, log=None):
+def build_report(folder, width="single", figures=True, types=None, log=None, base=""):
     """The report of a results folder as one HTML string (see the module notes).
 
     Parameters
@@ -56,59 +64,86 @@ def build_report(folder, width="single", figures=True, log=None):
         Journal width the figures are drawn at (the page shows them 1.45 times larger on screen).
     figures : bool
         Embed the figures (off for a quick text-only report).
+    types : list of str, optional
+        Torsion types the tables and per-type figures show (default: all types when there are
+        at most 24, else the four most informative; the figures always the informative four).
     log : callable, optional
         Receives one-line notes on what the folder lacks.
+    base : str
+        The folder as seen from the report ("" when the report is inside it), for the links to
+        its tables.
     """
     from ..io.resultsdir import load_results
 
+    say = log or (lambda msg: None)
     result = load_results(folder)
     folder = result.folder
-    summary = result.summary
-    scheme = result.scheme
-    figs, skipped = _figures_by_kind(folder, width, log) if figures else ({}, [])
+    page = _page(result, types, base, say)
+    figs, skipped = _figures_by_kind(folder, width, types, log) if figures else ({}, [])
     sections = _NAVIGATION
     if not (figs.get("series") or figs.get("raster")):
         sections = [s for s in sections if s[0] != "series"]
     nav = "<nav>" + "".join(f"<a href='#{k}'>{_e(v)}</a>" for k, v in sections) + "</nav>"
-    body = [_provenance(folder, summary), _torsions(folder, scheme), _populations(folder, scheme, figs),
-            _time_series(figs), _profiles(folder, figs), _comparison(folder), _kinetics(folder, figs),
-            _couplings(folder, figs)]
-    notices = _notices(folder, summary)
+    body = [_provenance(page), _torsions(page), _populations(page, figs), _time_series(figs), _profiles(page, figs),
+            _comparison(page), _kinetics(page, figs), _couplings(page, figs)]
+    notices = _notices(folder, result.summary)
     if notices:
         body.insert(0, notices)
-    body.insert(0, _convergence(folder, summary, figs))
+    body.insert(0, _convergence(page, figs))
     foot = ("<footer>Self-contained report: no scripts, no external requests; figures are embedded SVG. "
-            "Tables show the first rows; the folder holds the full CSV files.</footer>")
+            "Values are rounded to their standard errors; tables of many types show some of them and link "
+            "the full CSV files of the results folder.</footer>")
     return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>" + REPORT_SIGNATURE +
             "<meta name='viewport' content='width=device-width, initial-scale=1'>"
             f"<title>dihedra report: {_e(os.path.basename(folder))}</title><style>{_CSS}</style></head><body>"
-            + _header(result) + nav + "<main>" + "".join(body) + _not_made(skipped, figures) + foot
+            + _header(result, page) + nav + "<main>" + "".join(body) + _not_made(skipped, figures) + foot
             + "</main></body></html>\n")
 
 
-def _figures_by_kind(folder, width, log):
+def _page(result, types, base, say):
+    """The types the tables show: the chosen ones, all of a folder of few types, else the informative ones."""
+    all_types = list(dict.fromkeys(result.torsion_set.types))
+    check_types(types, all_types, result.folder)
+    if types:
+        shown = [t for t in all_types if t in set(types)]
+    elif len(all_types) <= MAX_ROWS:
+        shown = all_types
+    else:
+        shown = informative_types(result.populations_by_type, 4) or all_types[:4]
+        say(f"note: the report's tables show {len(shown)} of {len(all_types)} types, {CHOICE_RULE} (choose with "
+            "--types); every table links its full CSV")
+    return Page(folder=result.folder, summary=result.summary, scheme=result.scheme, types=shown,
+                all_types=all_types, chosen=bool(types), base=base)
+
+
+def _figures_by_kind(folder, width, types, log):
     """The figures of the folder grouped by kind, and the notes on those it could not make."""
     from .figures import figure_set, style
 
     figs = {}
     with style():
-        fset = figure_set(folder, width=width, log=log)
+        fset = figure_set(folder, width=width, types=types, log=log)
     for item in fset.items:
         figs.setdefault(item.kind, []).append(item)
     return figs, fset.skipped
 
 
-def _header(result):
-    """The page header: the system in one line, where the folder is, when and by what it was written."""
+def _header(result, page):
+    """The page header: the system in one line, the types shown, where the folder is, when and by
+    what it was written."""
     from .._version import __version__
 
     folder, summary = result.folder, result.summary
     temp = summary.get("temperature_k")
-    n_types = len(set(result.torsion_set.types))
+    n_types = len(page.all_types)
+    shown = ""
+    if page.summarised:
+        why = "chosen" if page.chosen else "the most informative: " + CHOICE_RULE
+        shown = f"<p>Types shown in the tables and per-type figures ({_e(why)}): {_e(', '.join(page.types))}</p>"
     return (f"<header class='top'><h1>dihedra report: {_e(os.path.basename(folder))}</h1>"
             f"<p>{summary.get('n_torsions')} torsions of {n_types} type(s), {summary.get('n_frames_analysed')} "
             f"frames from {len(summary.get('replicas', []))} replica(s), scheme {_e(result.scheme.name)}"
-            + (f", {_fmt(temp)} K" if temp is not None else ", no temperature recorded") + "</p>"
+            + (f", {_fmt(temp)} K" if temp is not None else ", no temperature recorded") + "</p>" + shown +
             f"<p>{_e(folder)} · report written {time.strftime('%Y-%m-%d %H:%M')} by dihedra {_e(__version__)}</p>"
             "</header>")
 
@@ -143,9 +178,10 @@ def _not_made(skipped, figures):
 REPORT_SIGNATURE = "<meta name='generator' content='dihedra report'>"
 
 
-def write_report(folder, out=None, width="single", figures=True, log=None):
+def write_report(folder, out=None, width="single", figures=True, types=None, log=None):
     """Write ``report.html`` (or ``out``) for a results folder; returns its path.
 
+    ``types``: the torsion types the tables and per-type figures show (see :func:`build_report`).
     The report replaces only an earlier report (a file in the folder that dihedra wrote, or an
     HTML file that carries dihedra's report signature); any other existing file is refused."""
     from ..io.resultsdir import load_results
@@ -161,7 +197,9 @@ def write_report(folder, out=None, width="single", figures=True, log=None):
         check_replaceable_in(folder, name)
     else:
         out = check_single_file(out, ours=lambda p: file_head_contains(p, REPORT_SIGNATURE), kind="dihedra report")
-    text = build_report(folder, width=width, figures=figures, log=log)
+    base = os.path.relpath(os.path.realpath(folder), os.path.realpath(os.path.dirname(out)))
+    base = "" if base == "." else base.replace(os.sep, "/") + "/"
+    text = build_report(folder, width=width, figures=figures, types=types, log=log, base=base)
     if inside:
         return write_text(folder, name, text)
     return write_text(os.path.dirname(out), os.path.basename(out), text, marked=False)

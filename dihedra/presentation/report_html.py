@@ -6,12 +6,16 @@ from __future__ import annotations
 import base64
 import html
 import io
+import re
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 
-#: Rows shown of long tables (the full table is in the folder).
-MAX_ROWS = 60
+from .rounding import format_plain, format_value_error
+
+#: Tables longer than this are summarised per type (the full CSV is linked).
+MAX_ROWS = 24
 
 _CSS = """
 :root { --ink: #22303C; --muted: #5E6B76; --rule: #D5DCE1; --band: #F3F6F8; --accent: #0072B2;
@@ -32,11 +36,18 @@ h3 { font-size: 1.02rem; margin: 1.4rem 0 0.5rem; }
 h4 { font-size: 0.95rem; margin: 1.1rem 0 0.4rem; }
 p.lead { color: var(--muted); margin-top: 0; }
 table { border-collapse: collapse; margin: 0.4rem 0 1rem; font-size: 0.85rem; }
-th, td { padding: 0.22rem 0.65rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top;
-         overflow-wrap: anywhere; }
+th, td { padding: 0.2rem 0.55rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top;
+         white-space: nowrap; overflow-wrap: normal; word-break: normal; hyphens: none; }
+td.wrap, th.wrap { white-space: normal; min-width: 14rem; }
+td.path { white-space: normal; overflow-wrap: anywhere; min-width: 12rem; }
 th { background: var(--band); font-weight: 600; }
 td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
-td.hash { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.78rem; }
+td.hash { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.78rem; white-space: normal;
+          overflow-wrap: anywhere; min-width: 10rem; }
+.kv td { white-space: normal; overflow-wrap: anywhere; }
+p.inline-list { font-size: 0.85rem; line-height: 1.5; }
+p.inline-list span, span.label { white-space: nowrap; }
+a.csv { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.85em; }
 tr:nth-child(even) td { background: #FAFBFC; }
 .kv th { width: 16rem; }
 .note-list, .caution-list { padding-left: 1.2rem; margin: 0.3rem 0 1rem; }
@@ -71,6 +82,7 @@ footer { color: var(--muted); font-size: 0.8rem; border-top: 1px solid var(--rul
   figure img { width: var(--w); }
   figcaption { max-width: var(--w); }
   .scroll { overflow: visible; }
+  table { font-size: 0.8rem; }
   tr:nth-child(even) td { background: none; }
 }
 """
@@ -86,7 +98,8 @@ def _e(value):
 
 
 def _fmt(value):
-    """A value for a table cell: NaN as an en dash, very small or large numbers in exponent form."""
+    """A value for a table cell: NaN as an en dash, numbers to three significant digits (values with
+    an error go through :func:`_pm`)."""
     if value is None:
         return "–"
     if isinstance(value, (bool, np.bool_)):
@@ -94,59 +107,58 @@ def _fmt(value):
     if isinstance(value, (int, np.integer)):
         return str(int(value))
     if isinstance(value, (float, np.floating)):
-        v = float(value)
-        a = abs(v)
-        if not np.isfinite(v):
-            return "–"
-        if a == 0:
-            return "0"
-        if a < 1e-3 or a >= 1e7:
-            return f"{v:.3e}"
-        return f"{v:.6g}" if a >= 1 else f"{v:.4g}"  # as many digits as the CSV files keep
+        return format_plain(value, 3)
     text = str(value)
     return "–" if text in ("nan", "None", "") else text
 
 
-def _pm(value, err, digits=3):
-    try:
-        value = float(value)
-    except (TypeError, ValueError):
-        return "–"
-    if not np.isfinite(value):
-        return "–"
-    value += 0.0  # no "-0.000"
-    try:
-        err = float(err)
-    except (TypeError, ValueError):
-        err = np.nan
-    if not np.isfinite(err):   # an error that could not be estimated is missing, never 0
-        return f"{float(value):.{digits}f} ± n/a"
-    return f"{float(value):.{digits}f} ± {float(err):.{digits}f}"
+def _pm(value, err, digits=None):
+    """``value ± error`` rounded to the error (:func:`~dihedra.presentation.rounding.format_value_error`;
+    ``digits`` is ignored, kept for callers)."""
+    return format_value_error(value, err)
 
 
-def _table(frame, columns=None, headers=None, max_rows=MAX_ROWS, what="rows", raw=()):
-    """An HTML table of a DataFrame (numbers right-aligned); longer tables are cut with a note."""
+def csv_link(name, base=""):
+    """A link to a table of the results folder (``base``: the folder relative to the report)."""
+    href = f"{base}{name}" if base else name
+    return f"<a class='csv' href='{_e(href)}'>{_e(name)}</a>"
+
+
+def _table(frame, columns=None, headers=None, max_rows=None, what="rows", raw=(), wrap=(), csv=None, base="",
+           classes=None):
+    """An HTML table of a DataFrame (numbers right-aligned, cells never broken inside a word;
+    ``wrap``: columns of running text that may wrap; ``classes``: a CSS class by column, ``path``
+    or ``hash`` for values that may break anywhere). A table longer than ``max_rows`` shows its
+    first rows and says so, with a link to ``csv``; callers summarise long tables per type first."""
     if frame is None or not len(frame):
         return "<p class='missing'>(empty)</p>"
     columns = list(columns or frame.columns)
     headers = list(headers or columns)
     out = ["<div class='scroll'><table><thead><tr>"]
-    sample = frame.head(max_rows)
+    sample = frame.head(max_rows) if max_rows else frame
     numeric = {c: pd.api.types.is_numeric_dtype(frame[c]) and not pd.api.types.is_bool_dtype(frame[c])
                for c in columns}
+    cls = {c: "num" if numeric[c] else ("wrap" if c in wrap else "") for c in columns}
+    cls.update(classes or {})
     for c, h in zip(columns, headers):
-        out.append(f"<th class='{'num' if numeric[c] else ''}'>{_e(h)}</th>")
+        out.append(f"<th class='{cls[c]}'>{_e(h)}</th>")
     out.append("</tr></thead><tbody>")
     for row in sample[columns].itertuples(index=False):
         out.append("<tr>")
         for c, v in zip(columns, row):
             cell = v if c in raw else _e(_fmt(v))
-            out.append(f"<td class='{'num' if numeric[c] else ''}'>{cell}</td>")
+            out.append(f"<td class='{cls[c]}'>{cell}</td>")
         out.append("</tr>")
     out.append("</tbody></table></div>")
-    if len(frame) > max_rows:
-        out.append(f"<p class='missing'>First {max_rows} of {len(frame)} {what}; the full table is in the folder.</p>")
+    if max_rows and len(frame) > max_rows:
+        where = f": {csv_link(csv, base)}" if csv else " in the folder"
+        out.append(f"<p class='missing'>First {max_rows} of {len(frame)} {what}; the full table{where}.</p>")
     return "".join(out)
+
+
+def _inline_list(items):
+    """Short entries as a flowing paragraph (each entry kept on one line)."""
+    return "<p class='inline-list'>" + " · ".join(f"<span>{i}</span>" for i in items) + "</p>"
 
 
 def _pooled(table):
@@ -156,11 +168,11 @@ def _pooled(table):
     return table[table["torsion"].fillna("").astype(str) == ""].copy()
 
 
-def _pm_columns(frame, value, err, digits=3):
+def _pm_columns(frame, value, err, digits=None):
     if value not in frame.columns:
         return ["–"] * len(frame)
     errs = frame[err] if err in frame.columns else [np.nan] * len(frame)
-    return [_pm(v, e, digits) for v, e in zip(frame[value], errs)]
+    return [_pm(v, e) for v, e in zip(frame[value], errs)]
 
 
 def _kv(pairs):
@@ -201,10 +213,15 @@ def figure_data_uri(fig):
     return "data:image/svg+xml;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
 
 
+def _unbroken(text):
+    """Escaped text whose torsion labels (words with a colon, ``HEX:C1-C2-C3-C4``) never break."""
+    return re.sub(r"(\S+:\S+)", r"<span class='label'>\1</span>", _e(text))
+
+
 def _figure_html(item):
     w = item.figure.get_figwidth()
     return (f"<figure id='fig-{_e(item.name)}' style='--w: {w:.2f}in'><img alt='{_e(item.caption)}' "
-            f"src='{figure_data_uri(item.figure)}'><figcaption>{_e(item.caption)}</figcaption></figure>")
+            f"src='{figure_data_uri(item.figure)}'><figcaption>{_unbroken(item.caption)}</figcaption></figure>")
 
 
 def _figures_html(items):
@@ -213,3 +230,41 @@ def _figures_html(items):
         return ""
     return "<div class='figs'>" + "".join(_figure_html(i) for i in items) + "</div>"
 
+
+
+@dataclass
+class Page:
+    """What every section of a report needs: the folder, its summary and scheme, the types the
+    tables show (all of them, or the chosen or most informative ones when there are many) and the
+    way from the report to the folder's files (for the links to full tables)."""
+
+    folder: str
+    summary: dict
+    scheme: object
+    types: list
+    all_types: list
+    chosen: bool = False
+    base: str = ""
+
+    @property
+    def summarised(self):
+        """Whether the tables show fewer types than the folder has."""
+        return len(self.types) < len(self.all_types)
+
+    def shown(self, frame, column="type"):
+        """The rows of ``frame`` of the shown types (a copy)."""
+        if frame is None or column not in frame.columns or not self.summarised:
+            return None if frame is None else frame.copy()
+        return frame[frame[column].isin(self.types)].copy()
+
+    def link(self, name):
+        return csv_link(name, self.base)
+
+    def which(self, *csv, what="types"):
+        """A note above a table that shows only some types: which ones and where the rest is."""
+        if not self.summarised:
+            return ""
+        why = "the types chosen" if self.chosen else "the most informative types"
+        links = [self.link(c) for c in csv]
+        listed = links[0] if len(links) == 1 else ", ".join(links[:-1]) + " and " + links[-1]
+        return f"<p class='lead'>Shown: {len(self.types)} of {len(self.all_types)} {what} ({why}); every type: {listed}.</p>"

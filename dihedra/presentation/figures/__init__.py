@@ -31,9 +31,11 @@ Modules
 ``style``
     colours (one per state, Okabe & Ito), journal widths, the :func:`style` context, file metadata
 ``common``
-    drawing helpers the figures share (notes and legends above the axes, state sectors, time
-    units, energy columns)
-``timeseries``
+    drawing helpers the figures share (notes and legends above the axes, state sectors, the
+    symbol of a torsion on its axis, time units, energy columns)
+``choice``
+    the informative types and torsions shown when none are chosen
+``timeseries``, ``raster``
     figures 1 and 2 and the chunked readers of ``angles.parquet`` / ``states.parquet``
 ``profiles``, ``populations``, ``maps``
     figures 3, 4 and 5
@@ -53,23 +55,25 @@ Example
 ...     ax = plot_convergence(res, res.torsion_set.types[0])
 """
 
-from .common import energy_columns, sector_spans, time_scale
+from .choice import CHOICE_RULE, informative_types, representative_torsion
+from .common import angle_label, energy_columns, sector_spans, time_scale, torsion_symbol
 from .convergence import REPLICA_STYLES, plot_convergence
 from .couplings import RELATION_MARKERS, plot_couplings
 from .figureset import FigureItem, FigureSet, figure_set, safe_name, write_figures
 from .kinetics import plot_lifetimes, plot_transition_diagram
-from .maps import plot_free_energy_map
+from .maps import MAP_CEILING_KJ_MOL, map_colormap, plot_free_energy_map
 from .populations import SOURCE_STYLES, comparison_populations, plot_populations
 from .profiles import plot_profile, select_profile
 from .refit import REFIT_STYLES, has_target, plot_correction, plot_refit_populations, plot_refit_profile
 from .style import (ANGLE_LABEL, CYCLIC_PALETTE, DOUBLE_COLUMN_IN, ENERGY_UNIT_LABELS, FORMATS, INK, NEUTRAL,
                     OKABE_ITO, POPULATION_LABEL, SECTOR_ALPHA, SINGLE_COLUMN_IN, STATE_COLOURS, UNDEFINED_COLOUR,
                     UNSAMPLED_COLOUR, WIDTHS, state_colours, style)
-from .timeseries import (AngleSeries, StateRaster, plot_angle_series, plot_state_raster, read_angle_series,
-                         read_state_raster)
+from .raster import StateRaster, plot_state_raster, read_state_raster
+from .timeseries import AngleSeries, plot_angle_series, read_angle_series
 
 __all__ = [
-    "ANGLE_LABEL", "AngleSeries", "CYCLIC_PALETTE", "DOUBLE_COLUMN_IN", "ENERGY_UNIT_LABELS", "FORMATS",
+    "ANGLE_LABEL", "CHOICE_RULE", "MAP_CEILING_KJ_MOL", "angle_label", "informative_types", "map_colormap",
+    "representative_torsion", "torsion_symbol", "AngleSeries", "CYCLIC_PALETTE", "DOUBLE_COLUMN_IN", "ENERGY_UNIT_LABELS", "FORMATS",
     "FigureItem", "FigureSet", "INK", "NEUTRAL", "OKABE_ITO", "POPULATION_LABEL", "REFIT_STYLES", "RELATION_MARKERS",
     "REPLICA_STYLES", "SECTOR_ALPHA", "SINGLE_COLUMN_IN", "SOURCE_STYLES", "STATE_COLOURS", "StateRaster",
     "UNDEFINED_COLOUR", "UNSAMPLED_COLOUR", "WIDTHS", "comparison_populations", "energy_columns", "figure_set",

@@ -69,10 +69,45 @@ def _shade_sectors(ax, scheme, orientation="vertical", alpha=SECTOR_ALPHA):
         span(lo, hi, color=colours[scheme.labels[state]], alpha=alpha, lw=0, zorder=0)
 
 
-def _angle_axis(axis_setter, ticks_setter, lim_setter):
+#: Symbols of the named torsions of biopolymers (IUPAC-IUB, J. Mol. Biol. 52 (1970) 1 for
+#: proteins; IUPAC-IUB, Eur. J. Biochem. 131 (1983) 9 for nucleic acids), in mathtext.
+TORSION_SYMBOLS = {"phi": r"\varphi", "psi": r"\psi", "omega": r"\omega", "alpha": r"\alpha", "beta": r"\beta",
+                   "gamma": r"\gamma", "delta": r"\delta", "epsilon": r"\varepsilon", "zeta": r"\zeta",
+                   "chi": r"\chi", "nu": r"\nu"}
+
+
+def torsion_symbol(name=None):
+    """The symbol of a torsion type or label in mathtext: the biopolymer name after the colon
+    (``ALA:psi`` -> ψ, ``ARG12:chi2`` -> χ2, ``DA:nu0`` -> ν0, ``DG3:epsilon`` -> ε), φ for
+    every other torsion (``HEX:C1-C2-C3-C4``).
+
+    Examples
+    --------
+    >>> torsion_symbol("ALA:psi"), torsion_symbol("ARG12:chi2"), torsion_symbol("HEX:C1-C2-C3-C4")
+    ('$\\psi$', '$\\chi_{2}$', '$\\varphi$')
+    """
+    part = str(name or "").rpartition(":")[2].strip().lower()
+    m = re.fullmatch(r"([a-z]+?)(\d?)", part)
+    if m and m.group(1) in TORSION_SYMBOLS and (not m.group(2) or m.group(1) in ("chi", "nu")):
+        sub = f"_{{{m.group(2)}}}" if m.group(2) else ""
+        return f"${TORSION_SYMBOLS[m.group(1)]}{sub}$"
+    return "$\\varphi$"
+
+
+def is_named_torsion(name):
+    """Whether a torsion type or label carries a biopolymer name (phi, psi, chi1, alpha, ...)."""
+    return torsion_symbol(name) != "$\\varphi$" or str(name).rpartition(":")[2].strip().lower() == "phi"
+
+
+def angle_label(name=None):
+    """Axis label of the angle of ``name`` (its symbol, see :func:`torsion_symbol`) in degrees."""
+    return f"{torsion_symbol(name)} / deg" if name is not None else ANGLE_LABEL
+
+
+def _angle_axis(axis_setter, ticks_setter, lim_setter, name=None):
     lim_setter(-180, 180)
     ticks_setter([-180, -120, -60, 0, 60, 120, 180])
-    axis_setter(ANGLE_LABEL)
+    axis_setter(angle_label(name))
 
 
 def time_scale(max_ps):

@@ -48,7 +48,8 @@ def plot_convergence(result, name, ax=None, legend=True, over_time=None):
     tmax = max((n * (dt or 1.0) for n, dt in info), default=1.0)
     scale, unit = time_scale(tmax) if time_known else (1.0, "frames")
     colours = state_colours(result.scheme)
-    reps = _draw_running(ax, result, cols, info, scale, colours)
+    own = result.scheme.states_of_type(_type_of(result, name))   # a set of schemes: this type's states
+    reps = _draw_running(ax, result, cols, info, scale, colours, own)
     marked = _draw_forward_backward(ax, result, name, over_time, scale if time_known else None, colours)
     for row in final.itertuples(index=False):
         c = colours.get(row.state, NEUTRAL)
@@ -64,7 +65,7 @@ def plot_convergence(result, name, ax=None, legend=True, over_time=None):
         "; bands: final population ± 1 s.e." + \
         ("; ● forward (start to t), □ backward (t to end) ± 1 s.e." if marked else "")
     if legend:
-        handles = [Line2D([], [], color=colours[s], lw=1.2, label=s) for s in result.scheme.labels]
+        handles = [Line2D([], [], color=colours[s], lw=1.2, label=s) for s in result.scheme.labels if s in own]
         if len(reps) > 1:
             handles += [Line2D([], [], color=INK, lw=0.9, ls=REPLICA_STYLES[j % len(REPLICA_STYLES)],
                                label=f"replica {r + 1}") for j, r in enumerate(reps[:len(REPLICA_STYLES)])]
@@ -109,8 +110,14 @@ def _columns_of(result, name):
     return cols, final
 
 
-def _draw_running(ax, result, cols, info, scale, colours):
-    """Running population of each state per replica from the block counts; returns the replicas."""
+def _type_of(result, name):
+    """The torsion type of a type or torsion label."""
+    labels = list(result.torsion_set.labels)
+    return result.torsion_set.types[labels.index(name)] if name in labels else name
+
+
+def _draw_running(ax, result, cols, info, scale, colours, states):
+    """Running population of each of ``states`` per replica from the block counts; returns the replicas."""
     blocks = result.blocks
     counts = np.asarray(blocks["state_counts"], dtype=float)[:, cols, :].sum(axis=1)
     rep = np.asarray(blocks["block_replica"])
@@ -124,6 +131,8 @@ def _draw_running(ax, result, cols, info, scale, colours):
         t = np.cumsum(nframes[sel]) * dt * scale
         ok = tot > 0
         for k, s in enumerate(result.scheme.labels):
+            if s not in states:
+                continue
             ax.plot(t[ok], c[ok, k] / tot[ok], color=colours[s], lw=0.9,
                     ls=REPLICA_STYLES[j % len(REPLICA_STYLES)], zorder=3)
     return reps

@@ -21,13 +21,15 @@ from ...io.tables import read_optional_table as read_optional
 from .convergence import plot_convergence
 from .couplings import plot_couplings
 from .kinetics import plot_lifetimes, plot_transition_diagram
-from .maps import plot_free_energy_map
+from .maps import MAP_CEILING_KJ_MOL, plot_free_energy_map
 from .populations import comparison_populations, plot_populations
 from .profiles import plot_profile
 from .refit import has_target, plot_correction, plot_refit_populations, plot_refit_profile
+from .choice import CHOICE_RULE, informative_types, representative_torsion
 from .common import _as_bool
 from .style import FORMATS, SINGLE_COLUMN_IN, _metadata, _width_in, style
-from .timeseries import plot_angle_series, plot_state_raster, read_angle_series, read_state_raster
+from .raster import plot_state_raster, read_state_raster
+from .timeseries import plot_angle_series, read_angle_series
 
 
 @dataclass
@@ -57,14 +59,6 @@ def _figure(width_in, height_in):
     from matplotlib.figure import Figure
 
     return Figure(figsize=(width_in, height_in), layout="constrained")
-
-
-def _pick(values, chosen, limit):
-    """``chosen`` items that exist in ``values`` (all when ``chosen`` is None), at most ``limit``."""
-    values = list(dict.fromkeys(values))
-    if chosen:
-        return [v for v in values if v in set(chosen)]
-    return values[:limit]
 
 
 @dataclass
@@ -103,10 +97,12 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
         Journal width of the figures (3.35 or 7 inches); the square ones (2-D maps, couplings)
         are always one column wide.
     torsions : list of str, optional
-        Torsion labels for the time-series figures (default: the first torsion of up to
-        ``max_series`` types) and the raster rows (default all).
+        Torsion labels for the time-series figures (default: of each of up to ``max_series``
+        chosen types the torsion whose states change most) and the raster rows (default: the
+        torsions of the chosen types, all when none are chosen).
     types : list of str, optional
-        Types for the per-type figures (default: the first ``max_types`` of torsions.csv).
+        Types for the per-type figures (default: the ``max_types`` most informative ones, see
+        :mod:`~dihedra.presentation.figures.choice`).
     log : callable, optional
         Receives one-line notes on what is skipped and why.
 
@@ -121,7 +117,9 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     b = _Builder(result, _width_in(width), say)
     chosen_types, series_torsions = _choose(result, torsions, types, max_types, max_series, say)
     _add_angle_series(b, series_torsions[:max(max_series, len(torsions or []))])
-    _add_state_raster(b, torsions)
+    rows = torsions or ([lab for lab, t in zip(result.torsion_set.labels, result.torsion_set.types)
+                         if t in set(types)] if types else None)
+    _add_state_raster(b, rows)
     _add_profiles(b, chosen_types)
     _add_populations(b, chosen_types)
     _add_maps(b)
@@ -134,7 +132,8 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
 
 def _choose(result, torsions, types, max_types, max_series, say):
     """Check the chosen torsions and types; returns the types of the per-type figures and the
-    torsions of the time-series figures."""
+    torsions of the time-series figures (without a choice: the informative types of
+    :mod:`~dihedra.presentation.figures.choice` and the torsion of each whose states change most)."""
     folder = result.folder
     all_types = list(dict.fromkeys(result.torsion_set.types))
     labels = list(result.torsion_set.labels)
@@ -143,17 +142,33 @@ def _choose(result, torsions, types, max_types, max_series, say):
         if unknown:
             raise DihedraError(f"no torsion {unknown[0]!r} in {folder}; labels look like "
                                f"{', '.join(labels[:3])} (see torsions.csv).")
+    check_types(types, all_types, folder)
     if types:
-        unknown = [t for t in types if t not in all_types]
-        if unknown:
-            raise DihedraError(f"no torsion type {unknown[0]!r} in {folder}; its types are "
-                               f"{', '.join(all_types[:6])}.")
-    chosen_types = _pick(all_types, types, max_types)
-    if not types and len(all_types) > max_types:
-        say(f"note: per-type figures for the first {max_types} of {len(all_types)} types (choose with --types)")
-    series_torsions = list(torsions) if torsions else \
-        [labels[result.torsion_set.types.index(t)] for t in all_types[:max_series]]
+        chosen_types = [t for t in all_types if t in set(types)]
+    else:
+        picked = set(informative_types(result.populations_by_type, max_types) or all_types[:max_types])
+        chosen_types = [t for t in all_types if t in picked]   # in the folder's order
+        if len(all_types) > max_types:
+            say(f"note: per-type figures for {len(chosen_types)} of {len(all_types)} types, {CHOICE_RULE} "
+                "(choose with --types)")
+    if torsions:
+        series_torsions = list(torsions)
+    else:
+        by_type = {}
+        for lab, t in zip(labels, result.torsion_set.types):
+            by_type.setdefault(t, []).append(lab)
+        series_torsions = [representative_torsion(result.populations, t, by_type[t])
+                           for t in chosen_types[:max_series]]
     return chosen_types, series_torsions
+
+
+def check_types(types, all_types, folder):
+    """Every chosen type must be one of the folder's (a clear error naming some of them)."""
+    unknown = [t for t in (types or []) if t not in set(all_types)]
+    if unknown:
+        raise DihedraError(f"no torsion type {unknown[0]!r} in {folder}; its types are "
+                           f"{', '.join(all_types[:6])}" + (" ..." if len(all_types) > 6 else "")
+                           + " (see torsions.csv).")
 
 
 def _add_angle_series(b, torsions):
@@ -226,7 +241,9 @@ def _add_maps(b):
         fig = _figure(SINGLE_COLUMN_IN, SINGLE_COLUMN_IN * 0.82 + 0.25)  # square maps: one column
         plot_free_energy_map(maps, (a, c), ax=fig.add_subplot())
         b.add(f"free_energy_map_{safe_name(a)}__{safe_name(c)}",
-              f"2-D free-energy map of {a} and {c} (periodic axes).", fig, "map")
+              f"2-D free-energy map of {a} and {c} (periodic axes): dark where the free energy is lowest; the "
+              f"colour scale ends at most {MAP_CEILING_KJ_MOL:g} kJ/mol (6 kT) above the minimum, higher bins "
+              "take its top colour (the ceiling is stated on the figure); unsampled bins hatched.", fig, "map")
 
 
 def _add_kinetics(b, chosen_types):
@@ -239,16 +256,20 @@ def _add_kinetics(b, chosen_types):
         return
     have = set(lifetimes.loc[lifetimes["level"] == "type", "name"])
     for t in [t for t in chosen_types if t in have]:
-        fig = _figure(b.width_in, 2.6)
+        n_pairs = int(((transitions["level"] == "type") & (transitions["name"] == t)).sum())
+        fig = _figure(b.width_in, 2.5 + 0.105 * min(n_pairs + 1, 10))
         plot_transition_diagram(transitions, lifetimes, t, level="type", scheme=b.scheme, ax=fig.add_subplot())
         b.add(f"transitions_{safe_name(t)}",
-              f"Transitions between the states of {t}: node area ~ population, arrow "
-              "width ~ rate constant (per ps).", fig, "transitions")
-        fig = _figure(b.width_in, 2.3)
+              f"Transitions between the states of {t}: node area ~ population, arrow width ~ number of "
+              "observed transitions (each arrow labelled with its count and direction); below, the rate "
+              "constants per ns with their standard errors, and 95 % upper limits where no transition was "
+              "seen.", fig, "transitions")
+        fig = _figure(b.width_in, 2.5)
         plot_lifetimes(lifetimes, t, level="type", scheme=b.scheme, survival=dwell, ax=fig.add_subplot())
         b.add(f"lifetimes_{safe_name(t)}",
-              f"Dwell times of the states of {t} on a log axis with the exponential "
-              "expected from the rates.", fig, "lifetimes")
+              f"Dwell times of the states of {t} on a log axis (the observed Kaplan-Meier survival) with the "
+              "exponential expected from the rates; the time axis ends with the observed dwell times.", fig,
+              "lifetimes")
     if dwell is None:
         b.say("note: lifetimes figures show the observed mean and median on the exponential from the rates "
               "(the folder has no dwell_survival.csv: run 'dihedra kinetics' again)")

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...errors import DihedraError, one_of
-from .common import _new_axes, _note
+from .common import _new_axes, _note, _top_legend
 from .style import CYCLIC_PALETTE, INK, NEUTRAL, state_colours
 
 # ----------------------------------------------------------------------------------------------
@@ -19,9 +19,10 @@ from .style import CYCLIC_PALETTE, INK, NEUTRAL, state_colours
 # ----------------------------------------------------------------------------------------------
 
 
-def plot_transition_diagram(transitions, lifetimes, name, level="type", weight="rate", scheme=None, ax=None,
-                            max_states=8, min_population=0.002):
-    """Figure 6: states as nodes sized by population, arrows weighted by rates (or counts).
+def plot_transition_diagram(transitions, lifetimes, name, level="type", weight="count", scheme=None, ax=None,
+                            max_states=8, min_population=0.002, table=True, max_table_rows=8):
+    """Figure 6: states as nodes sized by population, arrows as wide as the transitions observed,
+    and a table of the rate constants below.
 
     Parameters
     ----------
@@ -30,22 +31,31 @@ def plot_transition_diagram(transitions, lifetimes, name, level="type", weight="
     name : str
         The torsion label, type or conformer type (column ``name``).
     level : {"type", "torsion", "conformer"}
-    weight : {"rate", "count"}
-        Arrow widths in proportion to the rate constant ``rate_per_ps`` or to ``count``; each
-        arrow is labelled with its value.
+    weight : {"count", "flux"}
+        Arrow widths in proportion to the number of observed transitions ``count`` (default) or
+        to the flux, population times rate (``population_counted * rate_per_ps``); never to the
+        rate alone, which a single event out of a rarely visited state makes large. Each arrow is
+        labelled with its count and an arrow sign along its direction.
     scheme : StateScheme, optional
         For the state colours (states outside the scheme, such as conformers, are grey).
     max_states : int
         At most this many (most populated) states are drawn; the rest is stated on the figure.
     min_population : float
         States below this population (``population_counted``) are left out.
+    table : bool
+        Below the diagram, a table of the transitions between the drawn states: direction, count
+        and rate constant per ns (rounded to its error; an upper limit ``< x (95 %)`` where no
+        event was seen). Needs ``ax`` to be a subplot (its place is split in two).
+    max_table_rows : int
+        The most frequent transitions shown, then those never seen; the rest is counted.
 
     Returns
     -------
     Axes
+        The diagram's axes.
     """
-    one_of("arrow weight", weight, ("rate", "count"))
-    ax = _new_axes(ax, height_in=2.6)
+    one_of("arrow weight", weight, ("count", "flux"))
+    ax = _new_axes(ax, height_in=3.4 if table else 2.6)
     lt = lifetimes[(lifetimes["level"] == level) & (lifetimes["name"] == name)]
     tr = transitions[(transitions["level"] == level) & (transitions["name"] == name)]
     if not len(lt):
@@ -59,21 +69,67 @@ def plot_transition_diagram(transitions, lifetimes, name, level="type", weight="
         states = [s for s in scheme.labels if s in states]
     left_out = len(pops) - len(states)
     colours = state_colours(scheme) if scheme is not None else {}
+    among = tr[tr["from_state"].isin(states) & tr["to_state"].isin(states)]
+    if table:
+        ax, tab = _split_for_table(ax, min(len(among), max_table_rows + 1))
     pos, radius = _node_layout(states, pops)
-    tr = tr[tr["from_state"].isin(states) & tr["to_state"].isin(states) & (tr["count"] > 0)]
-    _draw_arrows(ax, tr, pos, radius, weight)
+    _draw_arrows(ax, among[among["count"] > 0], pos, radius, weight, pops)
     xs, ys = _draw_nodes(ax, states, pos, radius, pops, colours)
     ax.set_aspect("equal")
     if xs:
         ax.set_xlim(min(xs) - 0.55, max(xs) + 0.55)
         ax.set_ylim(min(ys) - 0.3, max(ys) + 0.3)
     ax.axis("off")
-    what = r"rate constant $\mathit{k}$ / ps$^{-1}$" if weight == "rate" else "transition count"
-    note = f"{name}. Arrows: {what}; nodes: population (area)"
+    what = "transitions seen" if weight == "count" else "flux (population x rate)"
+    note = f"{name}. Arrows: {what} (width), count and direction (label); nodes: population (area)"
     if left_out:
         note += f"; {left_out} rarer state(s) not drawn"
     _note(ax, note)
+    if table:
+        _rate_table(tab, among, max_table_rows)
     return ax
+
+
+def _split_for_table(ax, n_rows):
+    """Replace ``ax`` by two axes in its place: the diagram above, the rate table below."""
+    spec = ax.get_subplotspec()
+    fig = ax.figure
+    if spec is None:
+        raise DihedraError("the transition diagram's table needs a subplot to split (or table=False).")
+    ax.remove()
+    gs = spec.subgridspec(2, 1, height_ratios=[2.5, 0.34 + 0.135 * (n_rows + 1)], hspace=0.0)
+    return fig.add_subplot(gs[0]), fig.add_subplot(gs[1])
+
+
+def _rate_table(tab, tr, max_rows, fontsize=5.8):
+    """The transitions as a small table: direction, count, rate constant per ns (rounded to its
+    error; ``< x (95 %)`` where none was seen)."""
+    from ..rounding import format_rate
+
+    tab.axis("off")
+    seen = tr[tr["count"] > 0].sort_values("count", ascending=False, kind="stable")
+    never = tr[tr["count"] == 0]
+    rows = list(seen.itertuples(index=False)) + list(never.itertuples(index=False))
+    shown, rest = rows[:max_rows], len(rows) - max_rows
+    header = ("transition", "count", r"$\mathit{k}$ / ns$^{-1}$")
+    xs, aligns = (0.0, 0.52, 0.98), ("left", "right", "right")
+    step = 1.0 / (len(shown) + 1 + (rest > 0))
+    for c, (x, ha) in enumerate(zip(xs, aligns)):
+        tab.text(x, 1.0, header[c], ha=ha, va="top", fontsize=fontsize, color=NEUTRAL, transform=tab.transAxes)
+    for k, r in enumerate(shown):
+        y = 1.0 - (k + 1) * step
+        rate = format_rate(r.rate_per_ps, getattr(r, "rate_err_per_ps", np.nan), r.count,
+                           getattr(r, "rate_ci_high_per_ps", np.nan), scale=1000.0)
+        cells = (f"{r.from_state} \u2192 {r.to_state}", f"{int(r.count)}", rate)
+        for c, (x, ha) in enumerate(zip(xs, aligns)):
+            tab.text(x, y, cells[c], ha=ha, va="top", fontsize=fontsize, color=INK if r.count else NEUTRAL,
+                     transform=tab.transAxes)
+    if rest > 0:
+        tab.text(0.0, 1.0 - (len(shown) + 1) * step, f"... {rest} more transitions in transitions.csv", ha="left",
+                 va="top", fontsize=fontsize, color=NEUTRAL, transform=tab.transAxes)
+    if not rows:
+        tab.text(0.0, 1.0 - step, "no transition between the drawn states", ha="left", va="top",
+                 fontsize=fontsize, color=NEUTRAL, transform=tab.transAxes)
 
 
 def _node_layout(states, pops):
@@ -87,13 +143,15 @@ def _node_layout(states, pops):
     return pos, radius
 
 
-def _draw_arrows(ax, tr, pos, radius, weight, bend=0.3):
-    """One curved arrow per observed transition, its width in proportion to the rate (or count), labelled."""
+def _draw_arrows(ax, tr, pos, radius, weight, pops, bend=0.3):
+    """One curved arrow per observed transition, its width in proportion to the count (or the
+    flux), labelled with the count and an arrow sign pointing the way it goes."""
     from matplotlib.patches import FancyArrowPatch
 
-    wcol = "rate_per_ps" if weight == "rate" else "count"
-    wmax = float(tr[wcol].max()) if len(tr) else 1.0
-    for row in tr.itertuples(index=False):
+    w_all = tr["count"].to_numpy(float) if weight == "count" else \
+        np.array([pops.get(a, 0.0) for a in tr["from_state"]]) * tr["rate_per_ps"].to_numpy(float)
+    wmax = float(np.nanmax(w_all)) if len(w_all) else 1.0
+    for row, w in zip(tr.itertuples(index=False), w_all):
         a, b = pos[row.from_state], pos[row.to_state]
         d = b - a
         dist = float(np.linalg.norm(d))
@@ -102,17 +160,21 @@ def _draw_arrows(ax, tr, pos, radius, weight, bend=0.3):
         u = d / dist
         p0 = a + u * (radius[row.from_state] + 0.04)
         p1 = b - u * (radius[row.to_state] + 0.04)
-        w = float(getattr(row, wcol))
-        lw = 0.5 + 2.6 * w / wmax if wmax > 0 else 0.5
+        lw = 0.5 + 2.6 * w / wmax if wmax > 0 and np.isfinite(w) else 0.5
         ax.add_patch(FancyArrowPatch(
             p0, p1, connectionstyle=f"arc3,rad={bend}", lw=lw, color=INK, alpha=0.85, zorder=2,
             arrowstyle=f"-|>,head_length={2.2 + 0.8 * lw:.1f},head_width={1.3 + 0.5 * lw:.1f}",
             shrinkA=0, shrinkB=0))
         dd = p1 - p0
-        mid = (p0 + p1) / 2 + 0.5 * bend * np.array([dd[1], -dd[0]])
-        ax.text(mid[0], mid[1], f"{w:.2g}" if weight == "rate" else f"{int(w)}", fontsize=5.5, ha="center",
-                va="center", color=INK, zorder=4,
-                bbox={"facecolor": "white", "edgecolor": "none", "pad": 0.3, "alpha": 0.9})
+        normal = np.array([dd[1], -dd[0]])
+        mid = (p0 + p1) / 2 + 0.5 * bend * normal + 0.12 * normal / (np.linalg.norm(normal) or 1.0)
+        angle = float(np.degrees(np.arctan2(dd[1], dd[0])))
+        sign = "\u2192"
+        if angle > 90 or angle < -90:   # keep the text upright: turn it and the sign around
+            angle, sign = angle - 180 if angle > 90 else angle + 180, "\u2190"
+        ax.text(mid[0], mid[1], f"{int(row.count)} {sign}" if sign == "\u2192" else f"{sign} {int(row.count)}",
+                fontsize=5.5, ha="center", va="center", color=INK, zorder=4, rotation=angle,
+                rotation_mode="anchor")
 
 
 def _draw_nodes(ax, states, pos, radius, pops, colours):
@@ -166,11 +228,17 @@ def plot_lifetimes(lifetimes, name, level="type", scheme=None, survival=None, ax
     exponential has them: the median at S = 1/2 and the mean (with its 95 % bootstrap interval) at
     S = 1/e; on the dashed line means memoryless, left of it means faster first exits.
 
+    The time axis ends where the observed dwell times end (a fitted lifetime longer than the run
+    does not stretch it; its line runs to the edge), and the legend stands above the axes, so it
+    never covers a curve (a state never left is a line along S = 1).
+
     Returns
     -------
     Axes
     """
     from matplotlib.lines import Line2D
+
+    from ..rounding import format_plain
 
     ax = _new_axes(ax)
     lt = lifetimes[(lifetimes["level"] == level) & (lifetimes["name"] == name)]
@@ -183,32 +251,37 @@ def plot_lifetimes(lifetimes, name, level="type", scheme=None, survival=None, ax
     if survival is not None and len(survival):
         dwell = survival[(survival["level"] == level) & (survival["name"] == name)]
         dwell = dwell if len(dwell) else None
-    handles, tmax = [], 0.0
+    handles, observed, taus, drawn = [], [], [], []
     for k, s in enumerate(order):
         row = lt[lt["state"] == s].iloc[0]
         c = colours.get(s, CYCLIC_PALETTE[k % len(CYCLIC_PALETTE)])
         tau = float(row.get("mean_from_rates_ps", np.nan))
-        ends = [3.0 * tau] if np.isfinite(tau) else []
         curve = _observed_survival(dwell, s) if dwell is not None else None
-        ends += _draw_survival(ax, *curve, c) if curve is not None else _draw_summaries(ax, row, c)
-        if np.isfinite(tau) and tau > 0:
-            end = max(ends)
-            tt = np.linspace(0, end * 1.05, 200)
-            ax.plot(tt, np.exp(-tt / tau), color=c, lw=0.9, ls=_DASHED, zorder=2)
-        tmax = max([tmax] + ends)
+        observed += _draw_survival(ax, *curve, c) if curve is not None else _draw_summaries(ax, row, c)
+        ok = np.isfinite(tau) and tau > 0
+        taus.append(tau if ok else np.nan)
+        drawn.append((tau, c) if ok else None)
         handles.append(Line2D([], [], color=c, lw=0.9, ls=_DASHED,
-                              label=rf"{s}, $\tau$ = {tau:.3g} ps" if np.isfinite(tau) else s))
+                              label=rf"{s}, $\tau$ = {format_plain(tau, 3)} ps" if ok else f"{s} (never left)"))
+    finite = [x for x in observed if np.isfinite(x) and x > 0]
+    tmax = max(finite) if finite else 3.0 * np.nanmax(taus) if np.isfinite(taus).any() else 1.0
+    for item in drawn:
+        if item is not None:
+            tt = np.linspace(0, tmax * 1.05, 200)
+            ax.plot(tt, np.exp(-tt / item[0]), color=item[1], lw=0.9, ls=_DASHED, zorder=2)
     handles += _observed_handles(dwell is not None)
     _survival_axes(ax, tmax)
     note = rf"{name}. Dashed: exp($-t/\tau$), $\tau$ = 1 / (total exit rate)"
     if legend:
-        ax.legend(handles=handles, loc="upper right", fontsize=5.8, handlelength=2.0, borderaxespad=0.2)
-    _note(ax, note)
+        _top_legend(ax, handles, note, fontsize=6.0)
+    else:
+        _note(ax, note)
     return ax
 
 
 def _draw_survival(ax, t, surv, colour):
-    """The observed survival as steps; returns where it should end on the time axis (S >= 0.02)."""
+    """The observed survival as steps; returns where it should end on the time axis (its last
+    point with S >= 0.02, the bottom of the axis)."""
     ok = surv > 0
     ax.step(np.r_[0.0, t[ok]], np.r_[1.0, surv[ok]], where="post", color=colour, lw=1.0, zorder=3)
     return [float(t[surv >= 0.02].max()) if (surv >= 0.02).any() else float(t.max())]

@@ -102,7 +102,7 @@ def plot_profile(profiles, scheme, name, estimate="histogram", scan=None, ax=Non
     top = float(np.nanmax(f + err)) if np.isfinite(f).any() else 1.0
     top = _draw_scan(ax, scan, name, col, x, f, temperature_k, handles, top)
     _hatch_unsampled(ax, x, sampled, width, handles)
-    _angle_axis(ax.set_xlabel, ax.set_xticks, ax.set_xlim)
+    _angle_axis(ax.set_xlabel, ax.set_xticks, ax.set_xlim, name)
     bottom = min(0.0, float(np.nanmin(f - err))) if np.isfinite(f).any() else 0.0
     ax.set_ylim(bottom, top * 1.15 + 0.3)
     ax.yaxis.set_major_locator(MaxNLocator(nbins=5, steps=[1, 2, 2.5, 5, 10]))

@@ -9,14 +9,21 @@ across schemes, so a figure reads the same whichever scheme made it:
 
 =====================  ==============  ==========
 state                  colour          hex
-=====================  ==============  ==========
-anti, ap, staggered    blue            #0072B2
-gauche+, +sc           orange          #E69F00
-gauche-, -sc           reddish purple  #CC79A7
-eclipsed, sp           vermillion      #D55E00
-+ac                    sky blue        #56B4E9
--ac                    bluish green    #009E73
-=====================  ==============  ==========
+=====================================  ==============  ==========
+anti, ap, staggered, trans, t, 180     blue            #0072B2
+gauche+, +sc, g+, +90, 90/-90          orange          #E69F00
+gauche-, -sc, g-, -90                  reddish purple  #CC79A7
+eclipsed, sp, cis, 0                   vermillion      #D55E00
++ac                                    sky blue        #56B4E9
+-ac                                    bluish green    #009E73
+0/180                                  blue            #0072B2
+=====================================  ==============  ==========
+
+The protein schemes (``cis-trans``, the rotamer wells of ``chi-rotamers``, and ``protein``, a set
+of schemes) follow the same roles: the extended well (anti, trans, t, 180) is blue, the wells at
++60 or +90 orange, at -60 or -90 reddish purple, the eclipsed or cis well vermillion. Within one
+torsion type every state has its own colour; across the parts of a set a colour means one role,
+and legends that show several types name every state of a colour (``anti / trans``).
 
 A custom scheme (TOML) takes :data:`CYCLIC_PALETTE` in the order of its state labels (blue,
 orange, reddish purple, bluish green, vermillion, sky blue, yellow; it repeats after seven
@@ -59,6 +66,11 @@ STATE_COLOURS = {
     "klyne-prelog": {"sp": OKABE_ITO["vermillion"], "+sc": OKABE_ITO["orange"], "+ac": OKABE_ITO["sky blue"],
                      "ap": OKABE_ITO["blue"], "-ac": OKABE_ITO["bluish green"],
                      "-sc": OKABE_ITO["reddish purple"]},
+    "cis-trans": {"trans": OKABE_ITO["blue"], "cis": OKABE_ITO["vermillion"]},
+    "chi-sp3": {"g+": OKABE_ITO["orange"], "t": OKABE_ITO["blue"], "g-": OKABE_ITO["reddish purple"]},
+    "chi-sp2": {"0": OKABE_ITO["vermillion"], "+90": OKABE_ITO["orange"], "180": OKABE_ITO["blue"],
+                "-90": OKABE_ITO["reddish purple"]},
+    "chi-sp2-symmetric": {"0/180": OKABE_ITO["blue"], "90/-90": OKABE_ITO["orange"]},
 }
 
 #: Colours of custom schemes, in the order of their state labels (repeats after seven states).
@@ -149,13 +161,38 @@ def state_colours(scheme):
     """Colour of every state of ``scheme``: dict label -> hex colour.
 
     Built-in schemes (also ``staggered-eclipsed:N``) have a fixed mapping (:data:`STATE_COLOURS`);
-    any other scheme takes :data:`CYCLIC_PALETTE` in the order of its labels.
+    any other scheme takes :data:`CYCLIC_PALETTE` in the order of its labels. A set of schemes
+    (``protein``, ``chi-rotamers``) colours each part by its own mapping.
     """
+    parts = getattr(scheme, "parts", None)
+    if parts or getattr(scheme, "partial", False):
+        # a set of schemes, or one part of it in the codes of the set (labels: all of the set's)
+        out = {}
+        for part in parts or ():
+            for label, colour in state_colours(part).items():
+                out.setdefault(label, colour)
+        if not parts:   # one part: its own mapping first, the other built-in labels as in their schemes
+            for fixed in [STATE_COLOURS.get(scheme.name, {})] + list(STATE_COLOURS.values()):
+                for label, colour in fixed.items():
+                    out.setdefault(label, colour)
+        rest = [label for label in scheme.labels if label not in out]
+        out.update({label: CYCLIC_PALETTE[k % len(CYCLIC_PALETTE)] for k, label in enumerate(rest)})
+        return {label: out[label] for label in scheme.labels}
     labels = list(scheme.labels)
     for fixed in STATE_COLOURS.values():
         if set(labels) == set(fixed):
             return {label: fixed[label] for label in labels}
     return {label: CYCLIC_PALETTE[k % len(CYCLIC_PALETTE)] for k, label in enumerate(labels)}
+
+
+def colour_groups(scheme, states):
+    """The ``states`` grouped by their colour, for one legend over several torsion types:
+    list of ``(colour, [labels])`` in the order the states first appear."""
+    colours = state_colours(scheme)
+    groups = {}
+    for s in states:
+        groups.setdefault(colours[s], []).append(s)
+    return list(groups.items())
 
 
 def _darker(colour, amount=0.35):
