@@ -99,3 +99,19 @@ def full_folder(tmp_path_factory):
 def track_only_folder(tmp_path_factory):
     """A results folder with only the outputs of 'dihedra track'."""
     return build_folder(str(tmp_path_factory.mktemp("trackonly")), full=False)
+
+
+@pytest.fixture(scope="session")
+def protein_folder(tmp_path_factory):
+    """The CHARMM adenylate kinase of MDAnalysisTests (214 residues, 98 frames): backbone tracked with
+    the angles, a Ramachandran map of alanine, kinetics with the default options (read only)."""
+    from MDAnalysisTests import datafiles as data
+
+    from dihedra.cli import main
+
+    out = str(tmp_path_factory.mktemp("protein") / "results")
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--keep-angles", "--temperature",
+                 "300", "--out", out]) == 0
+    assert main(["profile", out, "--pair", "ALA:phi", "ALA:psi", "--types-only", "--bootstrap", "40"]) == 0
+    assert main(["kinetics", out, "--bootstrap", "50"]) == 0
+    return out

@@ -13,9 +13,10 @@ import tempfile
 import numpy as np
 import pandas as pd
 import pytest
-from figure_data import full_folder, track_only_folder  # noqa: F401  (fixtures)
+from figure_data import full_folder, protein_folder, track_only_folder  # noqa: F401  (fixtures)
 
 from dihedra.cli import main
+from dihedra.errors import DihedraError
 from dihedra.presentation.figures import figure_set, style
 from dihedra.presentation.report import write_report
 from dihedra.presentation.rounding import format_value_error
@@ -118,7 +119,25 @@ window.addEventListener('error', e => console.error('page error: ' + e.message))
 window.addEventListener('load', () => {
   const bad = [...document.images].filter(i => !(i.complete && i.naturalWidth > 0));
   if (bad.length) { console.error('broken images: ' + bad.length); }
-  console.log('dihedra-check: images ' + document.images.length + ', broken ' + bad.length);
+  // a table cell whose text runs over more than one line (a word or a label broken in a narrow
+  // column); cells of running text, paths and hashes may wrap, headers between words
+  const split = [...document.querySelectorAll('td')].filter(c => {
+    if (c.matches('.wrap, .path, .hash, .kv td')) return false;
+    const walk = document.createTreeWalker(c, NodeFilter.SHOW_TEXT);
+    for (let n = walk.nextNode(); n; n = walk.nextNode()) {
+      const r = document.createRange(); r.selectNodeContents(n);
+      const tops = new Set([...r.getClientRects()].map(x => Math.round(x.top)));
+      if (tops.size > 1) return true;
+    }
+    return false;
+  });
+  if (split.length) { console.error('cells on several lines: ' + split.slice(0, 3).map(c => c.textContent).join(' | ')); }
+  // a table wider than the page's text column
+  const main = document.querySelector('main');
+  const room = main.clientWidth - parseFloat(getComputedStyle(main).paddingLeft) - parseFloat(getComputedStyle(main).paddingRight);
+  const wide = [...document.querySelectorAll('table')].filter(t => t.getBoundingClientRect().width > room + 1);
+  if (wide.length) { console.error('tables wider than the page: ' + wide.length + ' (' + wide.map(t => t.querySelector('th, td').textContent).join(', ') + ')'); }
+  console.log('dihedra-check: images ' + document.images.length + ', broken ' + bad.length + ', split ' + split.length + ', wide ' + wide.length);
 });
 </script>"""
 
@@ -154,7 +173,7 @@ def test_report_opens_in_headless_chromium_without_console_errors(full_report, t
     console, stderr = run_chromium(str(checked), f"--screenshot={shot}", "--window-size=1280,3000")
     assert console_errors(console) == [], console
     summary = [ln for ln in console if "dihedra-check:" in ln]
-    assert summary and "images 9, broken 0" in summary[0], stderr[-2000:]
+    assert summary and "images 9, broken 0, split 0, wide 0" in summary[0], stderr[-2000:]
     pixels = np.asarray(Image.open(shot).convert("L"))
     assert pixels.std() > 10  # something was drawn, not a blank page
     # prints to PDF
@@ -162,13 +181,18 @@ def test_report_opens_in_headless_chromium_without_console_errors(full_report, t
     run_chromium(path, f"--print-to-pdf={pdf}", "--no-pdf-header-footer")
     data = pdf.read_bytes()
     assert data.startswith(b"%PDF") and data.count(b"/Type /Page") + data.count(b"/Type/Page") > 2
-    # the check can fail: a page with a broken image and a script error is caught
+    # the check can fail: a page with a broken image, a script error, a label broken in a narrow
+    # column and a table wider than the page is caught
     bad = tmp_path / "bad.html"
-    bad.write_text("<html><body><img src='data:image/svg+xml;base64,bm90IGFuIGltYWdl'>"
+    bad.write_text("<html><head><style>main { width: 300px; }</style></head><body><main>"
+                   "<img src='data:image/svg+xml;base64,bm90IGFuIGltYWdl'>"
+                   "<table><tr><td style='width: 3em; overflow-wrap: anywhere'>gauche-|gauche+|anti</td></tr></table>"
+                   "<table><tr><td style='white-space: nowrap'>" + "wide " * 80 + "</td></tr></table></main>"
                    "<script>undefined_function()</script>" + CHECK_SCRIPT + "</body></html>")
     console, _ = run_chromium(str(bad))
     errors = " ".join(console_errors(console))
     assert "broken images: 1" in errors and "undefined_function" in errors
+    assert "cells on several lines: gauche-|gauche+|anti" in errors and "tables wider than the page: 1" in errors
 
 
 def test_report_shows_the_reference_populations_and_their_verdict(full_folder, full_report):  # noqa: F811
@@ -178,3 +202,62 @@ def test_report_shows_the_reference_populations_and_their_verdict(full_folder, f
     for verdict, reason in zip(table["reference_verdict"], table["reference_verdict_reason"]):
         assert f">{verdict}</span>" in text and html.escape(reason) in text
     assert "0.400 ± 0.030" in text and "gauche+|gauche-" in text
+
+
+# ------------------------------------------------------------------------------------------------
+# a protein: 639 backbone torsions of 57 types
+# ------------------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def protein_report(protein_folder, tmp_path_factory):  # noqa: F811
+    path = write_report(protein_folder, out=str(tmp_path_factory.mktemp("protein-report") / "report.html"))
+    with open(path, encoding="utf-8") as fh:
+        return path, fh.read()
+
+
+def test_protein_report_summarises_many_types_and_links_the_full_tables(protein_folder, protein_report):  # noqa: F811
+    from dihedra.presentation.figures import informative_types
+
+    path, text = protein_report
+    pops = pd.read_csv(os.path.join(protein_folder, "populations_by_type.csv"))
+    n_types = pops["type"].nunique()
+    assert n_types == 57  # the 214 residues of adenylate kinase: phi, psi, omega of 19 residue types
+    shown = informative_types(pops, 4)
+    assert f"Shown: 4 of {n_types} types (the most informative types)" in text
+    assert all(t in text for t in shown) and "MET:omega" not in shown  # an omega that never leaves trans
+    # every type's verdict and main state in one line each, the full tables linked
+    assert text.count("populations_by_type.csv</a>") >= 1 and "convergence.csv</a>" in text
+    assert "Main state of every type" in text and "Not converged (" in text
+    # rates: no event is an upper limit, never 0 +- 0; values rounded to their errors
+    rates = text[text.index("Rate constants per type"):text.index("Dwell times per type")]
+    assert "(95 %)" in rates and not re.search(r">0(\.0+)? ± 0(\.0+)?<", rates) and "0.0000 ± 0.0000" not in text
+    assert not re.search(r"\d\.\d{5,}", re.sub(r"data:[^']+", "", text))  # no six-digit numbers anywhere
+    # the per-type figures are those of the informative types
+    names = re.findall(r"<figure id='fig-([^']+)'", text)
+    assert sorted(n for n in names if n.startswith("profile_")) == sorted(
+        "profile_" + t.replace(":", "_") for t in shown)
+
+
+def test_report_honours_the_types_chosen(protein_folder, tmp_path):  # noqa: F811
+    path = write_report(protein_folder, out=str(tmp_path / "r.html"), types=["ALA:phi", "ALA:psi"], figures=False)
+    text = open(path, encoding="utf-8").read()
+    assert "Shown: 2 of 57 types (the types chosen)" in text
+    rates = text[text.index("Rate constants per type"):text.index("Dwell times per type")]
+    assert "ALA:phi" in rates and "GLY:phi" not in rates
+    with pytest.raises(DihedraError, match="no torsion type 'ALA:chi9'"):
+        write_report(protein_folder, out=str(tmp_path / "r2.html"), types=["ALA:chi9"])
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed (apt-get install chromium)")
+def test_protein_report_prints_to_a_few_pages_and_fits_an_a4_page(protein_report, tmp_path):
+    path, text = protein_report
+    checked = tmp_path / "checked.html"
+    checked.write_text(text.replace("</body>", CHECK_SCRIPT + "</body>"), encoding="utf-8")
+    # 794 px: the width of an A4 page at 96 dpi; no table wider, no label broken over two lines
+    console, stderr = run_chromium(str(checked), "--window-size=794,3000")
+    assert console_errors(console) == [], console
+    assert any("split 0, wide 0" in ln for ln in console), stderr[-2000:]
+    pdf = tmp_path / "report.pdf"
+    run_chromium(path, f"--print-to-pdf={pdf}", "--no-pdf-header-footer")
+    data = pdf.read_bytes()
+    pages = len(re.findall(rb"/Type\s*/Page(?!s)", data))
+    assert 3 <= pages <= 12, pages  # a few pages, not 27

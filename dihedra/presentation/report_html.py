@@ -38,13 +38,15 @@ p.lead { color: var(--muted); margin-top: 0; }
 table { border-collapse: collapse; margin: 0.4rem 0 1rem; font-size: 0.85rem; }
 th, td { padding: 0.2rem 0.55rem; border-bottom: 1px solid var(--rule); text-align: left; vertical-align: top;
          white-space: nowrap; overflow-wrap: normal; word-break: normal; hyphens: none; }
-td.wrap, th.wrap { white-space: normal; min-width: 14rem; }
-td.path { white-space: normal; overflow-wrap: anywhere; min-width: 12rem; }
+th { white-space: normal; }
+td.wrap { white-space: normal; min-width: 10rem; }
+td.path { white-space: normal; overflow-wrap: anywhere; min-width: 8rem; }
 th { background: var(--band); font-weight: 600; }
 td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 td.hash { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.78rem; white-space: normal;
-          overflow-wrap: anywhere; min-width: 10rem; }
+          overflow-wrap: anywhere; min-width: 8rem; }
 .kv td { white-space: normal; overflow-wrap: anywhere; }
+span.sha { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.85em; color: var(--muted); }
 p.inline-list { font-size: 0.85rem; line-height: 1.5; }
 p.inline-list span, span.label { white-space: nowrap; }
 a.csv { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.85em; }
@@ -69,6 +71,12 @@ pre { background: var(--band); padding: 0.7rem 0.9rem; overflow-x: auto; font-si
 .missing { color: var(--muted); }
 footer { color: var(--muted); font-size: 0.8rem; border-top: 1px solid var(--rule); margin-top: 3rem;
          padding-top: 0.6rem; }
+@media (max-width: 900px) {
+  main { padding: 0 1rem 2rem; }
+  header.top, nav { padding-left: 1rem; padding-right: 1rem; }
+  table { font-size: 0.74rem; }
+  th, td { padding: 0.18rem 0.4rem; }
+}
 @media print {
   @page { size: A4; margin: 14mm 13mm; }
   html { font-size: 10pt; }
@@ -82,7 +90,8 @@ footer { color: var(--muted); font-size: 0.8rem; border-top: 1px solid var(--rul
   figure img { width: var(--w); }
   figcaption { max-width: var(--w); }
   .scroll { overflow: visible; }
-  table { font-size: 0.8rem; }
+  table { font-size: 0.74rem; }
+  th, td { padding: 0.15rem 0.4rem; }
   tr:nth-child(even) td { background: none; }
 }
 """
@@ -165,7 +174,8 @@ def _pooled(table):
     """Rows of the pooled (per type) profiles of a table (``torsion`` empty)."""
     if table is None or "torsion" not in table.columns:
         return table
-    return table[table["torsion"].fillna("").astype(str) == ""].copy()
+    torsion = table["torsion"]
+    return table[torsion.isna() | (torsion.astype(str) == "")].copy()
 
 
 def _pm_columns(frame, value, err, digits=None):

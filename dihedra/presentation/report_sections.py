@@ -24,16 +24,15 @@ def _provenance(page):
                       ("run time (s)", summary.get("run_seconds"))]))
     reps = summary.get("replicas", [])
     if reps:
-        rows = [{"replica": k + 1, "trajectory": r.get("trajectory"),
-                 "frames": f"{r.get('frames_analysed')} of {r.get('n_frames_in_file')}",
-                 "range": f"{r.get('first_frame')}..{r.get('last_frame')} step {r.get('frame_step')}",
+        rows = [{"replica": k + 1,
+                 "trajectory": f"{_e(r.get('trajectory'))}<br><span class='sha'>SHA-256 {_e(r.get('sha256') or '–')}</span>",
+                 "frames": f"{r.get('frames_analysed')} of {r.get('n_frames_in_file')}: {r.get('first_frame')}.."
+                           f"{r.get('last_frame')}, step {r.get('frame_step')}",
                  "time between frames (ps)": r.get("time_between_analysed_frames_ps"),
-                 "time step from": r.get("time_step_source"),
-                 "SHA-256": (r.get("sha256") or "")} for k, r in enumerate(reps)]
+                 "time step from": r.get("time_step_source")} for k, r in enumerate(reps)]
         parts.append("<h3>Trajectories (replicas)</h3>")
-        parts.append(_table(pd.DataFrame(rows), what="replicas", wrap=("time step from",),
-                            classes={"trajectory": "path", "SHA-256": "hash"}, max_rows=MAX_ROWS,
-                            csv="summary.json", base=page.base))
+        parts.append(_table(pd.DataFrame(rows), what="replicas", wrap=("time step from",), raw=("trajectory",),
+                            classes={"trajectory": "path"}, max_rows=MAX_ROWS, csv="summary.json", base=page.base))
     params = summary.get("parameters", {}) or {}
     if params:
         parts.append("<h3>Parameters of the trajectory pass</h3>")

@@ -12,7 +12,7 @@ from .style import INK, NEUTRAL, _darker, state_colours
 
 def select_profile(profiles, name, estimate="histogram"):
     """Rows of one profile of ``profiles.csv``: a type (pooled rows) or a torsion label."""
-    torsion = profiles["torsion"].fillna("").astype(str)
+    torsion = profiles["torsion"].astype(object).where(profiles["torsion"].notna(), "").astype(str)
     est = profiles["estimate"] == estimate if "estimate" in profiles.columns else True
     rows = profiles[est & (profiles["type"] == name) & (torsion == "")]
     if not len(rows):
