@@ -227,3 +227,21 @@ def test_ramachandran_regions_from_mdanalysis_angles(tmp_path):
     assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--stop", "5", "--out", no_angles]) == 0
     with pytest.raises(DihedraError, match="--keep-angles"):
         dihedra.ramachandran_regions(dihedra.load_results(no_angles))
+
+
+def test_kinetics_with_the_defaults_of_track_needs_no_angles(tmp_path):
+    # 'dihedra track' with its defaults, then 'dihedra kinetics' with its defaults: core sets of the
+    # protein schemes (omega cis/trans, phi and psi anti/gauche) from the state codes and the core
+    # bits of the pass give the tables that the angles give (core_codes of each type's scheme is
+    # the reference of both)
+    plain, angles = str(tmp_path / "plain"), str(tmp_path / "angles")
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--stop", "40", "--out", plain]) == 0
+    assert main(["track", data.PSF, data.DCD, "--torsions", "protein-backbone", "--stop", "40", "--keep-angles",
+                 "--out", angles]) == 0
+    assert not os.path.exists(os.path.join(plain, "angles.parquet"))
+    assert main(["kinetics", plain]) == 0
+    a = dihedra.state_kinetics(dihedra.load_results(plain), n_bootstrap=10)
+    b = dihedra.state_kinetics(dihedra.load_results(angles), n_bootstrap=10)
+    for name in ("transitions", "lifetimes", "timescales"):
+        pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
+    assert (a.transitions["count"] > 0).any()

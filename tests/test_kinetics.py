@@ -399,14 +399,25 @@ def test_in_memory_result_equals_folder(tmp_path):
 
 def test_clear_errors(two_replicas, tmp_path, capsys):
     folder, _ = two_replicas
-    # no angles.parquet: say how to get them
+    # no angles.parquet: core sets at the default margin from the state codes and the core bits the
+    # pass recorded, the same tables as from the angles (core_codes of the scheme is the reference
+    # of both); another margin needs the angles, and says how to get them
     copy = str(tmp_path / "noangles")
     shutil.copytree(folder, copy)
     shutil.rmtree(os.path.join(copy, "angles.parquet"))
+    from_bits = folder_kinetics(copy, lags=[1, 3], n_bootstrap=20, seed=1)
+    from_angles = folder_kinetics(folder, lags=[1, 3], n_bootstrap=20, seed=1)
+    assert from_bits.parameters["core_source"].startswith("states.parquet")
+    assert from_angles.parameters["core_source"] == "angles.parquet"
+    for name in ("transitions", "lifetimes", "timescales", "dwell_times"):
+        pd.testing.assert_frame_equal(getattr(from_bits, name), getattr(from_angles, name))
     with pytest.raises(DihedraError, match="--keep-angles"):
-        folder_kinetics(copy)
-    assert main(["kinetics", copy]) == 2
+        folder_kinetics(copy, core_margin_deg=10)
+    assert main(["kinetics", copy, "--core-margin", "10"]) == 2
     assert "--assignment crisp" in capsys.readouterr().err
+    shutil.rmtree(os.path.join(copy, "cores.parquet"))   # a folder of an older dihedra
+    with pytest.raises(DihedraError, match="neither cores.parquet nor angles.parquet"):
+        folder_kinetics(copy)
     assert len(folder_kinetics(copy, assignment="crisp", lags=[1], n_bootstrap=0).lifetimes)
     # no usable time step: ask for --dt-ps, and use it when given
     with open(os.path.join(copy, "summary.json")) as fh:

@@ -227,7 +227,7 @@ def test_results_folder_round_trip_and_existing_folder_untouched(two_replicas, t
     names = sorted(os.listdir(out))
     assert names == sorted(["blocks.npz", "conformers.csv", "conformers_by_type.csv", "convergence.csv",
                             "convergence.json", "convergence_by_state.csv", "convergence_over_time.csv",
-                            "dihedra-files.json", "populations.csv",
+                            "cores.parquet", "dihedra-files.json", "populations.csv",
                             "populations_by_replica.csv", "populations_by_type.csv", "schemes.csv",
                             "states.parquet", "summary.json", "torsions.csv"])
     back = load_results(out)

@@ -19,6 +19,10 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
     replica, frame, time_ps, [weight], then one int8 column per torsion (codes in summary.json,
     -1 = undefined); a folder of Parquet files (part-RRRR-FFFFFFFFFFFF.parquet: replica, first
     frame) in frame order, row groups of a few MB
+``cores.parquet/``
+    the same layout with one boolean column per torsion: whether the frame's angle lies in the
+    core of its state (its sector shrunk by 20 degrees on both sides), for core-set kinetics
+    without the angles (:mod:`dihedra.trajectory.cores`)
 ``angles.parquet/``
     the same layout with float32 degrees (only with --keep-angles)
 ``blocks.npz``

@@ -1,9 +1,9 @@
-"""The time series of a results folder: ``states.parquet/`` and ``angles.parquet/``.
+"""The time series of a results folder: ``states.parquet/``, ``cores.parquet/`` and ``angles.parquet/``.
 
 Each is a folder of Parquet files (a Parquet dataset that pandas, Arrow, polars or DuckDB read as
 one table): ``part-RRRR-FFFFFFFFFFFF.parquet``, named by replica and first frame, columns replica,
-frame, time_ps, [weight], then one column per torsion (int8 state codes, -1 undefined; float32
-degrees). :class:`TimeSeriesWriter` writes them during the trajectory pass (the pass receives a
+frame, time_ps, [weight], then one column per torsion (int8 state codes, -1 undefined; booleans,
+in the core of the state or not; float32 degrees). :class:`TimeSeriesWriter` writes them during the trajectory pass (the pass receives a
 :class:`ParquetSeriesFactory`, so that every worker of a parallel run writes the files of its own
 frames); :class:`ParquetSeries` reads them back in :class:`~dihedra.trajectory.result.SeriesChunk`
 pieces, the one chunked reader of dihedra.
@@ -54,7 +54,7 @@ class TimeSeriesWriter:
     weighted : bool
     row_group_frames : int
     kinds : tuple of str
-        ``("states",)``, ``("angles",)`` or both.
+        Some of ``"states"``, ``"cores"`` and ``"angles"``.
 
     :meth:`add` takes the index columns of a chunk and, per kind, its values as an array of shape
     (n_torsions, n_frames) (int8 state codes, float32 degrees). Call :meth:`close` at the end
@@ -69,7 +69,7 @@ class TimeSeriesWriter:
         self.target = max(1, int(row_group_frames))
         self._writers, self._schemas, self._dirs = {}, {}, {}
         for kind in kinds:
-            value_type = {"states": pa.int8(), "angles": pa.float32()}[kind]
+            value_type = {"states": pa.int8(), "angles": pa.float32(), "cores": pa.bool_()}[kind]
             fields = [pa.field("replica", pa.int16(), nullable=False),
                       pa.field("frame", pa.int64(), nullable=False),
                       pa.field("time_ps", pa.float64(), nullable=False)]

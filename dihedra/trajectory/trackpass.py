@@ -45,6 +45,13 @@ conformer counts of every state block are dense too (int32 per block, group and 
 unless a class of groups has too many joint states (then sorted rows of the current block). A
 serial run hands its histogram array to the results without a copy.
 
+Core membership
+---------------
+Beside each state code the pass records one bit: whether the angle lies in the core of its state
+(the sector shrunk by :data:`~dihedra.trajectory.cores.CORE_MARGIN_DEG` on both sides), from the
+fine bin and, in the bins that hold a core edge, the angle (:class:`~dihedra.trajectory.cores.CoreBits`);
+``cores.parquet`` stores it (boolean columns), so that core-set kinetics needs no angle series.
+
 Every 256 frames and per chunk
 ------------------------------
 The fine bins, codes (and angles) of the last 256 frames are buffered one row per frame; when
@@ -53,7 +60,7 @@ into the conformer counts (compiled loop), and the codes (and angles) are transp
 chunk buffer, one row per torsion, as the time series store them. All of it runs where the
 frames are processed (with ``threads=2``, in the second thread, while the first reads on). A full
 chunk goes to the pass's time series writer (``series``; a row group of ``chunk_frames``
-frames in states.parquet and angles.parquet), so Parquet is
+frames in states.parquet, cores.parquet and angles.parquet), so Parquet is
 encoded during the pass, by the process (and thread) that computed the frames: each worker of a
 parallel run writes the files of its own frames, named by replica and first frame, and the
 folder reads as one table in frame order. Memory stays bounded by the chunk buffer, the 256-frame
@@ -75,6 +82,7 @@ from MDAnalysis.analysis.results import ResultsGroup
 
 from ..numerics.angles import TorsionGeometry
 from .conformer_counts import ConformerCounter, merge_dense, merge_rows, touched_zeros
+from .cores import CoreBits
 from .histograms import MIXED, bin_state_tables, hist_part, merge_hist_parts, narrow_counts
 from .overlap import Batch, Overlap
 from .series_output import SeriesOutput
@@ -328,6 +336,8 @@ class TorsionPass(AnalysisBase):
         shift_in, shift_out = (0.0, n_bins // 2) if n_bins % 2 == 0 else (180.0, 0)
         self._bin_args = (float(self.bin_width_deg), shift_in, shift_out, n_bins, self._bin_table,
                           *scheme_args, MIXED)
+        # the core membership of every frame (cores.parquet) goes with the time series
+        self._core_bits = None if self.series is None else CoreBits(self.scheme, self.torsion_set.types, n_bins)
 
     def _prepare_buffers(self):
         """The buffers of the last few frames (fine bins, codes, angles; one row per frame), the
@@ -347,6 +357,9 @@ class TorsionPass(AnalysisBase):
         self._stage_angles = np.empty((nf, n_t), dtype=np.float32) if self.keep_angles else None
         self._chunk_codes = np.empty((n_t, cf), dtype=np.int8)
         self._chunk_angles = np.empty((n_t, cf), dtype=np.float32) if self.keep_angles else None
+        cores = self._core_bits is not None   # as 0/1 int8 (the codes' transpose); written as bits
+        self._stage_cores = np.empty((nf, n_t), dtype=np.int8) if cores else None
+        self._chunk_cores = np.empty((n_t, cf), dtype=np.int8) if cores else None
         self._buf_frame = np.empty(cf, dtype=np.int64)
         self._buf_time = np.empty(cf, dtype=np.float64)
         self._buf_index = np.empty(cf, dtype=np.int64)
@@ -409,6 +422,8 @@ class TorsionPass(AnalysisBase):
         self._kernels.frames(batch.positions[lo:lo + m], self._geometry.idx3, self._bonds, *boxes,
                              deg, *self._bin_args, bins, codes, self._state_counts, sblock, weight,
                              self._undefined)
+        if self._stage_cores is not None:
+            self._core_bits(bins, deg, self._stage_cores[nb:nb + m].view(np.bool_))
         self._bins_hblock[nb:nb + m] = self._frame_hblock[i]
         self._bins_weight[nb:nb + m] = weight
         self._buf_frame[row:row + m] = batch.frame[lo:lo + m]
@@ -451,6 +466,8 @@ class TorsionPass(AnalysisBase):
         self._kernels.transpose_into(self._stage_codes[:m], self._chunk_codes[:, r0:r1])
         if self._stage_angles is not None:
             self._kernels.transpose_into(self._stage_angles[:m], self._chunk_angles[:, r0:r1])
+        if self._stage_cores is not None:
+            self._kernels.transpose_into(self._stage_cores[:m], self._chunk_cores[:, r0:r1])
         self._n_bins_buf = 0
 
     def _add_histograms(self):
@@ -514,6 +531,7 @@ class TorsionPass(AnalysisBase):
             res.series_parts = [self._output.collected]
         self._hist = self._conformers = None
         self._stage_codes = self._stage_angles = self._chunk_codes = self._chunk_angles = None
+        self._stage_cores = self._chunk_cores = self._core_bits = None
         self._bins = self._angle_rows = self._bonds = None
         self._one_frame = self._staged = None
         self._geometry = self._kernels = None   # modules do not pickle (results go back to the parent)
@@ -549,14 +567,17 @@ class TorsionPass(AnalysisBase):
         # close(), and nothing writes into that buffer after it
         values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
                                                       ("angles", self._chunk_angles)) if buf is not None}
+        if self._chunk_cores is not None:
+            values["cores"] = self._chunk_cores[:, :n].view(np.bool_)
         background = self._overlap is not None or self._last_chunk
         self._output.add(self.replica, index, values, background=background)
         if not background or self._last_chunk:   # (deferred: nothing writes into this buffer any more)
             return
         if self._spare is None:
-            self._spare = (np.empty_like(self._chunk_codes),
-                           None if self._chunk_angles is None else np.empty_like(self._chunk_angles))
-        (self._chunk_codes, self._chunk_angles), self._spare = self._spare, (self._chunk_codes, self._chunk_angles)
+            self._spare = tuple(None if b is None else np.empty_like(b)
+                                for b in (self._chunk_codes, self._chunk_angles, self._chunk_cores))
+        (self._chunk_codes, self._chunk_angles, self._chunk_cores), self._spare = \
+            self._spare, (self._chunk_codes, self._chunk_angles, self._chunk_cores)
 
     def finish_series(self):
         """Wait until the time series are complete (after a pass with ``defer_close``); raises

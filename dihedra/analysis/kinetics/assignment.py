@@ -13,9 +13,12 @@ from __future__ import annotations
 import numpy as np
 
 from ...errors import DihedraError
+from ...selection.schemes import NO_CORE
+from ...trajectory.cores import CORE_MARGIN_DEG
 
-#: Default core margin in degrees (each sector shrunk by this much on both sides).
-DEFAULT_CORE_MARGIN_DEG = 20.0
+#: Default core margin in degrees (each sector shrunk by this much on both sides); the trajectory
+#: pass records the core membership of every frame for this margin (``cores.parquet``).
+DEFAULT_CORE_MARGIN_DEG = CORE_MARGIN_DEG
 #: The ways of assigning states (see the module notes of :mod:`dihedra.analysis.kinetics`).
 ASSIGNMENTS = ("core", "crisp")
 
@@ -134,6 +137,20 @@ class CoreCodes:
         if odd.any():
             codes[odd] = self.scheme.core_codes(a[odd], self.margin)
         return codes
+
+
+def codes_from_core_bits(states, in_core):
+    """Core codes from the state codes and the core bits the pass recorded: the state where the
+    angle was in its core, :data:`~dihedra.selection.schemes.NO_CORE` between cores, undefined
+    (negative) states as they are.
+
+    Examples
+    --------
+    >>> codes_from_core_bits(np.array([0, 1, 1, -1]), np.array([True, False, True, False])).tolist()
+    [0, -2, 1, -1]
+    """
+    s = np.asarray(states)
+    return np.where(np.asarray(in_core, dtype=bool) | (s < 0), s, NO_CORE).astype(np.int8)
 
 
 def _core_table(scheme, margin):

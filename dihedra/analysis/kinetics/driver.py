@@ -22,6 +22,7 @@ from ...errors import DihedraError, InputFileError, one_of
 from ...io.tables import write_json, write_table
 from ...trajectory.result import as_result
 from ...units import check_temperature
+from ...trajectory.cores import CORE_MARGIN_DEG
 from .assignment import ASSIGNMENTS, DEFAULT_CORE_MARGIN_DEG, _core_table, check_core_margin
 from .estimators import DEFAULT_BOOTSTRAP, TST_CAUTION, _add_tst, _read_barrier_table
 from .markov import DEFAULT_LAGS
@@ -176,14 +177,17 @@ def _temperature(temperature_k, summary):
 
 
 def _select_torsions(torsions, types):
+    """The torsions of the chosen types (or single torsions by their label)."""
     if not types:
         return np.arange(len(torsions))
+    names = [types] if isinstance(types, str) else list(types)
     valid = list(dict.fromkeys(torsions["type"]))
-    missing = [t for t in types if t not in valid]
+    labels = set(torsions["torsion"].astype(str))
+    missing = [t for t in names if t not in valid and t not in labels]
     if missing:
         shown = ", ".join(valid[:8]) + (" ..." if len(valid) > 8 else "")
-        raise DihedraError(f"no torsions of type {missing[0]!r} in this folder; its types are {shown}.")
-    return np.flatnonzero(torsions["type"].isin(types).to_numpy())
+        raise DihedraError(f"no torsion type or torsion {missing[0]!r} in this folder; its types are {shown}.")
+    return np.flatnonzero((torsions["type"].isin(names) | torsions["torsion"].astype(str).isin(names)).to_numpy())
 
 
 def _conformer_groups(result, selected):
@@ -204,20 +208,57 @@ def _conformer_groups(result, selected):
             [np.array([col[int(p)] for p in m], dtype=np.int64) for _, m in keep])
 
 
-def _check_series(result, kind):
-    """Refuse a result without the time series the assignment needs (one sentence on how to get it)."""
-    if result.has_series(kind):
-        return
+def _series_kind(result, assignment, margin):
+    """The time series the assignment reads: the angles (core sets of any margin), else the state
+    codes with the core bits of the pass (its margin), or the states (crisp); refuses a result
+    without them (one sentence on how to get them)."""
     where = result.folder
-    if kind == "angles":
+    if assignment == "crisp":
+        if result.has_series("states"):
+            return "states"
         if where:
-            raise InputFileError(f"{where} has no angles.parquet, which core assignment needs: rerun "
-                                 "'dihedra track ... --keep-angles', or use --assignment crisp.")
-        raise DihedraError("this result has no angle time series, which core assignment needs: track with "
-                           "keep_angles=True (--keep-angles), or use assignment='crisp'.")
+            raise InputFileError(f"{where} has no states.parquet; rerun 'dihedra track'.")
+        raise DihedraError("this result has no state time series; track again.")
+    if result.has_series("angles"):
+        return "angles"
+    if result.has_series("cores") and result.has_series("states") and margin == CORE_MARGIN_DEG:
+        return "cores"
+    if result.has_series("cores"):
+        raise DihedraError(f"a core margin of {margin:g} deg needs the angles (angles.parquet): the folder holds the "
+                           f"core membership for the default margin of {CORE_MARGIN_DEG:g} deg only; use that margin, "
+                           "rerun 'dihedra track ... --keep-angles' (keep_angles=True), or use --assignment crisp.")
     if where:
-        raise InputFileError(f"{where} has no states.parquet; rerun 'dihedra track'.")
-    raise DihedraError("this result has no state time series; track again.")
+        raise InputFileError(f"{where} has neither cores.parquet nor angles.parquet (a folder of an older dihedra), "
+                             "which core assignment needs: rerun 'dihedra track', or use --assignment crisp.")
+    raise DihedraError("this result has no core membership and no angle time series, which core assignment needs: "
+                       "track with a time series (keep_states=True or keep_angles=True), or use assignment='crisp'.")
+
+
+def lags_in_frames(lags_ps, lags, dt):
+    """The Markov lags in frames: ``lags_ps`` (whole multiples of the time between frames ``dt``),
+    or ``lags`` in frames, or :data:`~.markov.DEFAULT_LAGS` frames.
+
+    Examples
+    --------
+    >>> lags_in_frames([2.0, 10.0], None, 2.0)
+    [1, 5]
+    """
+    if lags_ps is not None and lags is not None:
+        raise DihedraError("give the lags in ps (lags_ps, --lag-ps) or in frames (lags), not both.")
+    if lags_ps is None:
+        frames = [int(x) for x in (lags or DEFAULT_LAGS)]
+        if any(x < 1 for x in frames):
+            raise DihedraError(f"lags must be positive numbers of frames; got {list(lags)}.")
+        return sorted(set(frames))
+    values = [float(x) for x in ([lags_ps] if np.isscalar(lags_ps) else lags_ps)]
+    out = []
+    for x in values:
+        n = x / dt
+        if not np.isfinite(x) or x <= 0 or abs(n - round(n)) > 1e-6 * max(1.0, n) or round(n) < 1:
+            raise DihedraError(f"lag {x:g} ps is not a positive whole number of frames ({dt:g} ps apart); give "
+                               f"multiples of {dt:g} ps.")
+        out.append(int(round(n)))
+    return sorted(set(out))
 
 
 @dataclass
@@ -240,21 +281,18 @@ class _Plan:
     notices: list
 
 
-def _plan(result, assignment, core_margin_deg, lags, types, dt_ps, temperature_k, n_bootstrap, conformers):
+def _plan(result, assignment, core_margin_deg, lags_ps, lags, types, dt_ps, temperature_k, n_bootstrap, conformers):
     """Check the options against the result and fix the torsions, groups, lags and time step."""
     one_of("assignment", assignment, ASSIGNMENTS)
     scheme, summary = result.scheme, result.summary
     margin = check_core_margin(scheme, core_margin_deg) if assignment == "core" else None
-    lags_req = sorted({int(x) for x in (lags or DEFAULT_LAGS)})
-    if any(x < 1 for x in lags_req):
-        raise DihedraError(f"lags must be positive numbers of frames; got {list(lags)}.")
     dt, dt_source = frame_interval_ps(summary, dt_ps)
+    lags_req = lags_in_frames(lags_ps, lags, dt)
     temp, temp_source = _temperature(temperature_k, summary)
     n_boot = int(n_bootstrap)
     if n_boot < 0:
         raise DihedraError(f"the number of bootstrap samples must be >= 0; got {n_bootstrap}.")
-    kind = "angles" if assignment == "core" else "states"
-    _check_series(result, kind)
+    kind = _series_kind(result, assignment, margin)
     torsions = result.torsions
     selected = _select_torsions(torsions, types)
     notices = []
@@ -263,9 +301,10 @@ def _plan(result, assignment, core_margin_deg, lags, types, dt_ps, temperature_k
     lags_used = [x for x in lags_req if x <= longest]
     if len(lags_used) < len(lags_req):
         dropped = [x for x in lags_req if x not in lags_used]
-        notices.append(f"lag(s) {', '.join(map(str, dropped))} frames were left out: longer than "
-                       f"{MAX_LAG_FRACTION:g} of the shortest replica ({min(frames_per_rep)} frames), a Markov "
-                       "model at such a lag rests on too few lag windows to say anything.")
+        notices.append(f"lag(s) {', '.join(f'{x * dt:g}' for x in dropped)} ps ({', '.join(map(str, dropped))} frames) "
+                       f"were left out: longer than {MAX_LAG_FRACTION:g} of the shortest replica "
+                       f"({min(frames_per_rep)} frames), a Markov model at such a lag rests on too few lag windows to "
+                       "say anything.")
     duplicates = _duplicate_replicas(summary["replicas"])
     if duplicates:
         notices.append(f"replicas {duplicates[0][0]} and {duplicates[0][1]} are the same file (same SHA-256): "
@@ -359,7 +398,10 @@ def _parameters(plan, result, assignment, types, seed, torsion_bootstrap):
         "assignment": assignment,
         "core_margin_deg": plan.margin,
         "core_sectors_deg": _core_table(scheme, plan.margin) if plan.margin is not None else None,
+        "core_source": {"angles": "angles.parquet", "cores": "states.parquet and the core bits of the pass "
+                        "(cores.parquet)", "states": None}[plan.kind],
         "lags_frames": plan.lags,
+        "lags_ps": [x * plan.dt for x in plan.lags],
         "frame_interval_ps": plan.dt,
         "frame_interval_source": plan.dt_source,
         "temperature_k": plan.temp,
@@ -384,7 +426,7 @@ def _parameters(plan, result, assignment, types, seed, torsion_bootstrap):
     }
 
 
-def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MARGIN_DEG, lags=DEFAULT_LAGS,
+def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MARGIN_DEG, lags_ps=None, lags=None,
                    types=None, dt_ps=None, temperature_k=None, barriers=None, profile_temperature_k=None,
                    n_bootstrap=DEFAULT_BOOTSTRAP, seed=0, conformers=True, batch_frames=None, log=None,
                    torsion_bootstrap=False):
@@ -398,17 +440,23 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     Parameters
     ----------
     result : TrackResult or TorsionStates
-        A tracking result (:func:`dihedra.track`, :func:`dihedra.load_results`), with the angle
-        time series for core assignment (``keep_angles=True`` / ``--keep-angles``).
+        A tracking result (:func:`dihedra.track`, :func:`dihedra.load_results`) with its time
+        series: every folder of ``dihedra track`` has what core assignment at the default margin
+        needs (the state codes and the core bit of every frame, ``cores.parquet``); another margin
+        needs the angles (``keep_angles=True`` / ``--keep-angles``), which are used whenever present.
     assignment : {"core", "crisp"}
-        Transition-based core-set assignment from the angles (default), or the crisp states.
+        Transition-based core-set assignment (default), or the crisp states.
     core_margin_deg : float
         Margin by which every sector is shrunk on both sides to make its core (default 20).
-    lags : sequence of int
-        Lags in frames for the Markov models and implied timescales; lags longer than
+    lags_ps : sequence of float, optional
+        Lag times in ps for the Markov models and implied timescales, whole multiples of the time
+        between frames (default: 1, 2, 5, 10, 20 and 50 frames); lags longer than
         :data:`MAX_LAG_FRACTION` of the shortest replica are left out with a notice.
+    lags : sequence of int, optional
+        The lags in frames instead (not both).
     types : list of str, optional
-        Only torsions of these types (conformers only for groups made entirely of them).
+        Only torsions of these types, or single torsions by their label (conformers only for
+        groups made entirely of them).
     dt_ps : float, optional
         Time between stored frames in ps; required when the trajectory stores none.
     temperature_k : float, optional
@@ -441,12 +489,14 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     say = log or (lambda msg: None)
     t0 = time.time()
     result = as_result(result)
-    plan = _plan(result, assignment, core_margin_deg, lags, types, dt_ps, temperature_k, n_bootstrap, conformers)
+    plan = _plan(result, assignment, core_margin_deg, lags_ps, lags, types, dt_ps, temperature_k, n_bootstrap,
+                 conformers)
     scheme = result.scheme
     g_names, g_short, _, g_members = plan.groups
     conf_types = list(dict.fromkeys(g_short))
     pool = pd.Categorical(g_short, categories=conf_types).codes.astype(np.int64)
-    say(f"reading {plan.kind}.parquet: {len(plan.selected)} torsions, {len(g_names)} conformer groups, "
+    reading = "states.parquet and cores.parquet" if plan.kind == "cores" else f"{plan.kind}.parquet"
+    say(f"reading {reading}: {len(plan.selected)} torsions, {len(g_names)} conformer groups, "
         f"{len(plan.frames_per_rep)} replica(s)")
     t_tally, c_tally, n_frames_read = tally_result(result, plan.kind, plan.labels, scheme, plan.margin, plan.lags,
                                                    g_members, pool, batch_frames)

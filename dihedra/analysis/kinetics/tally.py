@@ -22,7 +22,8 @@ from types import SimpleNamespace
 
 import numpy as np
 
-from .assignment import CoreCodes, _fill_rows, _joint_codes, _size_layout
+from ...errors import DihedraError
+from .assignment import CoreCodes, _fill_rows, _joint_codes, _size_layout, codes_from_core_bits
 
 #: Pair counts are kept as one dense (rows, v + 1, v + 1) array per lag when it has at most this
 #: many cells (v states, one more for "unassigned"); otherwise as sparse rows.
@@ -320,6 +321,21 @@ def _replica_blocks(result, kind, labels, batch_frames=None):
             yield chunk.replica, chunk.values[:, a:a + step]
 
 
+def _core_blocks(result, labels, batch_frames=None):
+    """Yield (replica, core codes) from the state codes and the core bits of the pass
+    (``cores.parquet``), read side by side in the same blocks."""
+    damaged = DihedraError("the core bits (cores.parquet) do not match the states (states.parquet) frame by frame; "
+                           "the results folder is damaged: run 'dihedra track' again.")
+    bits = _replica_blocks(result, "cores", labels, batch_frames)
+    for rep, codes in _replica_blocks(result, "states", labels, batch_frames):
+        rep_bits, in_core = next(bits, (None, None))
+        if rep != rep_bits or in_core is None or codes.shape != in_core.shape:
+            raise damaged
+        yield rep, codes_from_core_bits(codes, in_core)
+    if next(bits, None) is not None:
+        raise damaged
+
+
 #: Threads that read and tally parts of the torsions side by side.
 _THREADS = min(4, os.cpu_count() or 1)
 #: ... each with at least this many torsions.
@@ -363,7 +379,8 @@ def _tally_columns(part, result, labels, kind, scheme, margin, lags, members, po
     current = None
     n_frames = 0
     core = _core_assigner(result, scheme, margin, [labels[c] for c in columns]) if kind == "angles" else None
-    for rep, block in _replica_blocks(result, kind, [labels[c] for c in columns], batch_frames):
+    blocks = _core_blocks if kind == "cores" else functools.partial(_replica_blocks, kind=kind)
+    for rep, block in blocks(result, labels=[labels[c] for c in columns], batch_frames=batch_frames):
         if rep != current:
             if current is not None:
                 t_tally.end_replica()
@@ -413,8 +430,9 @@ def tally_result(result, kind, labels, scheme, margin, lags, members, pool, batc
     Parameters
     ----------
     result : TrackResult
-    kind : {"angles", "states"}
-        Angles for core-set assignment (``margin`` degrees), states for crisp assignment.
+    kind : {"angles", "cores", "states"}
+        Angles for core-set assignment (``margin`` degrees), or the state codes with the core
+        bits of the pass (its margin), or the states for crisp assignment.
     labels : list of str
         Torsion labels (columns of the time series).
     scheme : StateScheme
