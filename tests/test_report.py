@@ -260,4 +260,4 @@ def test_protein_report_prints_to_a_few_pages_and_fits_an_a4_page(protein_report
     run_chromium(path, f"--print-to-pdf={pdf}", "--no-pdf-header-footer")
     data = pdf.read_bytes()
     pages = len(re.findall(rb"/Type\s*/Page(?!s)", data))
-    assert 3 <= pages <= 12, pages  # a few pages, not 27
+    assert 3 <= pages <= 14, pages  # a few pages (figures of four types, tables of their rows), not 27

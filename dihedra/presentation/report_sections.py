@@ -36,17 +36,33 @@ def _provenance(page):
     params = summary.get("parameters", {}) or {}
     if params:
         parts.append("<h3>Parameters of the trajectory pass</h3>")
-        parts.append(_kv(sorted(params.items())))
+        parts.append(_inline_list(f"<b>{_e(k)}</b> {_e(_fmt(v))}" for k, v in sorted(_short_parameters(params).items())))
     versions = summary.get("versions", {}) or {}
     if versions:
         parts.append("<h3>Package versions</h3>")
-        parts.append(_kv(sorted(versions.items())))
+        parts.append(_inline_list(f"<b>{_e(k)}</b> {_e(v)}" for k, v in sorted(versions.items())))
     text = read_optional_text(folder, "analysis.toml")
     if text is not None:
         parts.append("<h3>Analysis file (analysis.toml, run by <code>dihedra run</code>)</h3>"
                      f"<pre>{_e(text)}</pre>")
     parts.append("</section>")
     return "".join(parts)
+
+
+def _short_parameters(params):
+    """The parameters of the pass as a table shows them: a choice of schemes per type as its
+    request and the count of each scheme (every type's scheme and reason: schemes.csv), other
+    long values cut (summary.json holds them whole)."""
+    out = {}
+    for key, value in params.items():
+        if key == "scheme_choice" and isinstance(value, dict):
+            counts = pd.Series([t.get("scheme") for t in value.get("types", [])]).value_counts()
+            out[key] = (f"{value.get('asked')}: " + ", ".join(f"{s} ({n} types)" for s, n in counts.items())
+                        + "; every type's scheme and why: schemes.csv")
+            continue
+        text = str(value)
+        out[key] = text if len(text) <= 160 else text[:150] + " ... (whole: summary.json)"
+    return out
 
 
 def _torsions(page):
@@ -79,23 +95,23 @@ def _torsions(page):
 
 
 def _scheme_table(scheme):
-    """The state scheme: one row per state (a set of schemes: per part), with its arcs and colour."""
+    """The state scheme: one row per scheme (the parts of a set), its states with their arcs and colours."""
     colours = state_colours(scheme)
-    rows = []
+    rows = {}
     for label, lo, hi in scheme.sector_table():
         part, _, state = str(label).rpartition(": ")
-        rows.append({"part": part, "state": state, "arc": f"({_fmt(lo)}, {_fmt(hi)}]"})
-    table = pd.DataFrame(rows)
-    grouped = table.groupby(["part", "state"], sort=False)["arc"].agg(" and ".join).reset_index()
-    grouped.insert(0, "colour", [f"<span style='display:inline-block;width:0.9em;height:0.9em;"
-                                 f"background:{colours[s]}'></span>" for s in grouped["state"]])
-    cols = ["colour", "part", "state", "arc"] if grouped["part"].astype(bool).any() else ["colour", "state", "arc"]
-    heads = {"colour": "", "part": "torsions", "state": "state", "arc": "arcs (deg)"}
-    note = ("<p class='lead'>A set of schemes: each torsion follows the part of its kind (omega cis/trans, "
-            "side-chain rotamer wells, anti/gauche otherwise); states that play the same part share a colour.</p>"
-            if "part" in cols else "")
+        rows.setdefault(part, {}).setdefault(state, []).append(f"({_fmt(lo)}, {_fmt(hi)}]")
+    cells = [{"scheme": part or scheme.name,
+              "states (arcs in deg)": " ".join(
+                  f"<span class='label'><span style='display:inline-block;width:0.8em;height:0.8em;"
+                  f"background:{colours[state]}'></span> {_e(state)} {_e(' and '.join(arcs))}</span>"
+                  for state, arcs in states.items())} for part, states in rows.items()]
+    note = ("<p class='lead'>A set of schemes: each torsion type follows one of them (schemes.csv names the "
+            "scheme of every type and why); states that play the same part share a colour.</p>"
+            if len(rows) > 1 else "")
     return (f"<h3>State scheme: {_e(scheme.name)}</h3>" + note
-            + _table(grouped, cols, [heads[c] for c in cols], raw=("colour",), what="states"))
+            + _table(pd.DataFrame(cells), raw=("states (arcs in deg)",), wrap=("states (arcs in deg)",),
+                     what="schemes"))
 
 
 def _populations(page, figs):

@@ -16,7 +16,7 @@ gauche-, -sc, g-, -90                  reddish purple  #CC79A7
 eclipsed, sp, cis, 0                   vermillion      #D55E00
 +ac                                    sky blue        #56B4E9
 -ac                                    bluish green    #009E73
-0/180                                  blue            #0072B2
+0/180, rotor                           blue            #0072B2
 =====================================  ==============  ==========
 
 The protein schemes (``cis-trans``, the rotamer wells of ``chi-rotamers``, and ``protein``, a set
@@ -25,7 +25,9 @@ of schemes) follow the same roles: the extended well (anti, trans, t, 180) is bl
 torsion type every state has its own colour; across the parts of a set a colour means one role,
 and legends that show several types name every state of a colour (``anti / trans``).
 
-A custom scheme (TOML) takes :data:`CYCLIC_PALETTE` in the order of its state labels (blue,
+A scheme whose states all carry names of the built-in schemes (the sampled basins of ``--scheme
+basins``, named ap, +sc, -sc, ...) takes their colours when they stay distinct; any other
+custom scheme (TOML) takes :data:`CYCLIC_PALETTE` in the order of its state labels (blue,
 orange, reddish purple, bluish green, vermillion, sky blue, yellow; it repeats after seven
 states). Undefined frames are light grey (:data:`UNDEFINED_COLOUR`).
 
@@ -71,6 +73,8 @@ STATE_COLOURS = {
     "chi-sp2": {"0": OKABE_ITO["vermillion"], "+90": OKABE_ITO["orange"], "180": OKABE_ITO["blue"],
                 "-90": OKABE_ITO["reddish purple"]},
     "chi-sp2-symmetric": {"0/180": OKABE_ITO["blue"], "90/-90": OKABE_ITO["orange"]},
+    "coplanar-perpendicular": {"0/180": OKABE_ITO["blue"], "90/-90": OKABE_ITO["orange"]},
+    "symmetric-rotor": {"rotor": OKABE_ITO["blue"]},
 }
 
 #: Colours of custom schemes, in the order of their state labels (repeats after seven states).
@@ -182,6 +186,12 @@ def state_colours(scheme):
     for fixed in STATE_COLOURS.values():
         if set(labels) == set(fixed):
             return {label: fixed[label] for label in labels}
+    known = {}
+    for fixed in STATE_COLOURS.values():
+        for label, colour in fixed.items():
+            known.setdefault(label, colour)
+    if all(label in known for label in labels) and len({known[x] for x in labels}) == len(labels):
+        return {label: known[label] for label in labels}   # e.g. basins named ap, +sc, -sc
     return {label: CYCLIC_PALETTE[k % len(CYCLIC_PALETTE)] for k, label in enumerate(labels)}
 
 
