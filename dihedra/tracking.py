@@ -112,16 +112,37 @@ def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None)
     return [os.fspath(f) for f in files if isinstance(f, (str, os.PathLike))]
 
 
+def describe_frame_range(start, stop, step):
+    """A frame range in words (only what was given): 'from frame 20 up to frame 10, every 2nd frame'.
+
+    Examples
+    --------
+    >>> describe_frame_range(2000, None, None)
+    'from frame 2000 to the end'
+    >>> describe_frame_range(None, 10, 3)
+    'from the first frame up to frame 10 (not included), every 3rd frame'
+    """
+    first = f"from frame {start}" if start is not None else "from the first frame"
+    last = f"up to frame {stop} (not included)" if stop is not None else "to the end"
+    every = ""
+    if step not in (None, 1):
+        suffix = {1: "st", 2: "nd", 3: "rd"}.get(int(step) % 10 if int(step) % 100 not in (11, 12, 13) else 0, "th")
+        every = f", every {step}{suffix} frame"
+    return f"{first} {last}{every}"
+
+
 def _frame_indices(universe, start, stop, step, where):
     n = universe.trajectory.n_frames
+    span = describe_frame_range(start, stop, step)
     try:
         s0, s1, st = universe.trajectory.check_slice_indices(start, stop, step)
     except (ValueError, TypeError) as exc:
-        raise DihedraError(f"{where}: invalid frame range start={start} stop={stop} step={step}: {exc}.") from None
+        raise DihedraError(f"{where}: the frames {span} are not a valid range ({exc}); give start, stop and "
+                           "step (--start, --stop, --step) as whole numbers, step above 0.") from None
     frames = np.arange(s0, s1, st)
     if len(frames) == 0:
-        raise DihedraError(f"{where}: the frame range start={start} stop={stop} step={step} selects no "
-                           f"frames (the trajectory has {n} frames, numbered 0..{n - 1}).")
+        raise DihedraError(f"{where}: the frames {span} are none of its {n} frames (numbered 0..{n - 1}); give a "
+                           "start below the stop (--start, --stop) within them.")
     return frames
 
 

@@ -83,8 +83,8 @@ def build_folder(base, full=True):
         fh.write("type,state,population,population_err\nBUT:C1-C2-C3-C4,anti,0.40,0.03\n"
                  "BUT:C1-C2-C3-C4,gauche+,0.30,0.03\nBUT:C1-C2-C3-C4,gauche+|gauche-,0.60,0.05\n")
     assert main(["compare", out, "--scan", scan, "--bootstrap", "40", "--reference-populations", reference]) == 0
-    assert main(["kinetics", out, "--bootstrap", "50", "--lag", "1", "2", "5"]) == 0
-    assert main(["couplings", out, "--relation", "karplus-1959", "--select", "BUT:C1-C2-C3-C4",
+    assert main(["kinetics", out, "--bootstrap", "50", "--lag-ps", "1", "2", "5"]) == 0
+    assert main(["couplings", out, "--relation", "karplus-1959", "--types", "BUT:C1-C2-C3-C4",
                  "--experimental", experimental]) == 0
     return out
 

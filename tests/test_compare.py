@@ -121,18 +121,29 @@ def test_files_and_text(butane, tmp_path):
 
 
 def test_compare_command(butane, tmp_path, capsys):
-    # common practice: thin command line; units mandatory; one type needs no --type
+    # common practice: thin command line; units mandatory (of the scan that is read: --scan-*); one type
+    # needs no --types; an analysis replaces its own earlier files only with --overwrite
     from dihedra.cli import main
     res, _ = butane
     plain = scan_csv(tmp_path / "plain.csv", "phi,E", rb_energy(GRID), 4.184)
     assert main(["compare", res.folder, "--scan", plain]) == 2
     assert "unit is unknown" in capsys.readouterr().err
-    assert main(["compare", res.folder, "--scan", plain, "--angle-unit", "deg", "--energy-unit", "kcal/mol"]) == 0
+    assert main(["compare", res.folder, "--scan", plain, "--scan-angle-unit", "deg", "--scan-energy-unit",
+                 "kcal/mol"]) == 0
     out = capsys.readouterr().out
     assert "CONSISTENT" in out and "one-dimensional" in out and "environment" in out
     assert os.path.exists(os.path.join(res.folder, "comparison.json"))
+    assert main(["compare", res.folder, "--scan", plain, "--scan-angle-unit", "deg", "--scan-energy-unit",
+                 "kcal/mol"]) == 2
+    assert "comparison" in capsys.readouterr().err
+    assert main(["compare", res.folder, "--scan", plain, "--scan-angle-unit", "deg", "--scan-energy-unit",
+                 "kcal/mol", "--types", "XYZ:nothing", "--overwrite"]) == 2
+    assert "XYZ:nothing" in capsys.readouterr().err
+    # the former names still work, with a note naming the new ones
     assert main(["compare", res.folder, "--scan", plain, "--angle-unit", "deg", "--energy-unit", "kcal/mol",
-                 "--type", "XYZ:nothing"]) == 2
+                 "--overwrite"]) == 0
+    err = capsys.readouterr().err
+    assert "--angle-unit is now --scan-angle-unit" in err and "--energy-unit is now --scan-energy-unit" in err
 
 
 def test_types_must_be_named_when_several():
@@ -140,7 +151,7 @@ def test_types_must_be_named_when_several():
     class Fake:
         class torsion_set:
             types = ["A:x", "B:y"]
-    with pytest.raises(DihedraError, match="--type"):
+    with pytest.raises(DihedraError, match="--types"):
         from dihedra.analysis.compare import select_types
         select_types(Fake, None)
 
@@ -168,7 +179,7 @@ def test_in_memory_and_saved_results_give_identical_tables(tmp_path):
     both = []
     for res in (memory, loaded):
         cmp = compare_with_scan(res, scan, temperature_k=T, n_bootstrap=50)
-        cres = ensemble_couplings(res, "karplus-1959", select=[res.torsion_set.types[0]], experimental=experimental)
+        cres = ensemble_couplings(res, "karplus-1959", types=[res.torsion_set.types[0]], experimental=experimental)
         both.append((cmp, cres))
     (cm, cr), (lm, lr) = both
     # couplings come from the block histograms alone: exactly equal
@@ -183,14 +194,14 @@ def test_in_memory_and_saved_results_give_identical_tables(tmp_path):
         (tmp_path / name).mkdir()
         a.save(str(tmp_path / name))
         b.save(str(tmp_path / name))
-    for table in ("comparison.csv", "comparison_profiles.csv", "comparison.json", "couplings.csv",
-                  "couplings_vs_experiment.csv", "couplings.json"):
+    for table in ("comparison.csv", "comparison_profiles.csv", "comparison.json", "couplings_karplus-1959.csv",
+                  "couplings_karplus-1959_vs_experiment.csv", "couplings_karplus-1959.json"):
         assert (tmp_path / "mem" / table).read_bytes() == (tmp_path / "loaded" / table).read_bytes(), table
     # a TorsionStates analysis that has run stands for its tracking result: the same tables
     import MDAnalysis as mda
     from dihedra import TorsionStates
     ran = TorsionStates(mda.Universe(pdb, dcd), "rotatable", temperature_k=T, keep_states=False).run()
-    pd.testing.assert_frame_equal(ensemble_couplings(ran, "karplus-1959", select=[memory.torsion_set.types[0]],
+    pd.testing.assert_frame_equal(ensemble_couplings(ran, "karplus-1959", types=[memory.torsion_set.types[0]],
                                                      experimental=experimental).couplings,
                                   cr.couplings, check_exact=True)
     pd.testing.assert_frame_equal(compare_with_scan(ran, scan, temperature_k=T, n_bootstrap=50).table, cm.table,

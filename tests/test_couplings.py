@@ -2,6 +2,7 @@
 
 import json
 import os
+import shutil
 import warnings
 
 import numpy as np
@@ -118,7 +119,7 @@ def test_sampled_average_matches_the_integral_within_error(rb_folder):
     # numerical integral (scipy) of J over exp(-V_RB/kT); sampled average within 3 standard errors
     ttype = rb_folder.torsion_set.types[0]
     for name in ("vuister-bax-1993", "karplus-1959"):
-        cres = ensemble_couplings(rb_folder, name, select=[ttype])
+        cres = ensemble_couplings(rb_folder, name, types=[ttype])
         pooled = cres.couplings[cres.couplings["level"] == "type"].iloc[0]
         expected = boltzmann_average(get_relation(name), rb_energy)
         assert abs(pooled["j_hz"] - expected) < 3 * pooled["j_err_hz"]
@@ -132,7 +133,7 @@ def test_sampled_average_matches_the_integral_within_error(rb_folder):
 
 def test_hn_ha_family_spread_is_reported_separately(rb_folder):
     ttype = rb_folder.torsion_set.types[0]
-    cres = ensemble_couplings(rb_folder, ["vuister-bax-1993", "hu-bax-1997", "pardi-1984"], select=[ttype])
+    cres = ensemble_couplings(rb_folder, ["vuister-bax-1993", "hu-bax-1997", "pardi-1984"], types=[ttype])
     pooled = cres.couplings[cres.couplings["level"] == "type"].set_index("relation")
     # the standard deviation of the three averages (analytic definition of the column)
     assert pooled["j_systematic_hz"].iloc[0] == pytest.approx(np.std(pooled["j_hz"].to_numpy(), ddof=1),
@@ -149,7 +150,7 @@ def test_relation_not_meant_for_the_torsions_says_so(rb_folder):
     with pytest.raises(DihedraError, match="H-C-C-H"):
         ensemble_couplings(rb_folder, "karplus-1959")
     # torsions selected by hand are taken as given, with a notice
-    cres = ensemble_couplings(rb_folder, "vuister-bax-1993", select=[rb_folder.torsion_set.types[0]])
+    cres = ensemble_couplings(rb_folder, "vuister-bax-1993", types=[rb_folder.torsion_set.types[0]])
     assert any("H-N-CA-HA" in n and "not that torsion" in n for n in cres.notices)
 
 
@@ -158,7 +159,7 @@ def test_relation_not_meant_for_the_torsions_says_so(rb_folder):
 # ------------------------------------------------------------------------------------------------
 
 def test_experiment_comparison_verdicts(rb_folder, tmp_path):
-    cres = ensemble_couplings(rb_folder, "karplus-1959", select=[rb_folder.torsion_set.types[0]])
+    cres = ensemble_couplings(rb_folder, "karplus-1959", types=[rb_folder.torsion_set.types[0]])
     per = cres.couplings[cres.couplings["level"] == "torsion"].head(6)
     truth = boltzmann_average(get_relation("karplus-1959"), rb_energy)
     good = pd.DataFrame({"torsion": per["torsion"], "J_hz": truth, "J_err_hz": 0.2})
@@ -188,7 +189,7 @@ def test_experiment_by_type_and_unmatched_labels(rb_folder, tmp_path):
     ttype = rb_folder.torsion_set.types[0]
     path = tmp_path / "exp.csv"
     pd.DataFrame({"residue": [ttype, "XYZ99"], "J_hz": [5.0, 5.0], "J_err_hz": [0.3, 0.3]}).to_csv(path, index=False)
-    cres = ensemble_couplings(rb_folder, "karplus-1959", select=[ttype], experimental=read_experimental(str(path)))
+    cres = ensemble_couplings(rb_folder, "karplus-1959", types=[ttype], experimental=read_experimental(str(path)))
     points, summary = cres.experiment, cres.experiment_summary
     assert points.iloc[0]["matched_as"] == "type"
     assert summary[0]["n_points"] == 1
@@ -197,11 +198,13 @@ def test_experiment_by_type_and_unmatched_labels(rb_folder, tmp_path):
     with pytest.raises(DihedraError, match="J_hz and J_err_hz"):
         read_experimental(str(path))
     with pytest.raises(DihedraError, match="lacks the column"):
-        ensemble_couplings(rb_folder, "karplus-1959", select=[ttype], experimental=pd.DataFrame({"torsion": ["a"]}))
-    # save writes the two tables and the JSON, with the file the values came from
+        ensemble_couplings(rb_folder, "karplus-1959", types=[ttype], experimental=pd.DataFrame({"torsion": ["a"]}))
+    # save writes the two tables and the JSON of the relation, with the file the values came from
     (tmp_path / "out").mkdir()
     paths = cres.save(str(tmp_path / "out"), experimental_path=str(path))
-    assert [os.path.basename(p) for p in paths] == ["couplings.csv", "couplings_vs_experiment.csv", "couplings.json"]
+    assert [os.path.basename(p) for p in paths] == ["couplings_karplus-1959.csv",
+                                                    "couplings_karplus-1959_vs_experiment.csv",
+                                                    "couplings_karplus-1959.json"]
     with open(paths[2]) as fh:
         info = json.load(fh)
     assert info["experimental"]["file"] == str(path) and info["experimental"]["summary"][0]["n_points"] == 1
@@ -221,7 +224,7 @@ def test_weights_give_the_reweighted_average(tmp_path):
     out = str(tmp_path / "res")
     track(pdb, [dcd], torsions="0,1,2,3", weights=str(tmp_path / "w.csv"), out=out, temperature_k=T)
     res = load_results(out)
-    cres = ensemble_couplings(res, "karplus-1959", select=[res.torsion_set.labels[0]])
+    cres = ensemble_couplings(res, "karplus-1959", types=[res.torsion_set.labels[0]])
     row = cres.couplings.iloc[0]
     expected = boltzmann_average(get_relation("karplus-1959"), rb_energy)
     unweighted = integrate.quad(get_relation("karplus-1959").evaluate, -180, 180, points=[-90, 90])[0] / 360
@@ -337,19 +340,30 @@ def test_command_line(rb_folder, tmp_path, capsys):
     exp = tmp_path / "exp.csv"
     pd.DataFrame({"torsion": [ttype], "J_hz": [boltzmann_average(get_relation("karplus-1959"), rb_energy)],
                   "J_err_hz": [0.2]}).to_csv(exp, index=False)
-    status = main(["couplings", rb_folder.folder, "--relation", "karplus-1959", "--select", ttype,
-                   "--experimental", str(exp)])
+    folder = str(tmp_path / "copy")
+    shutil.copytree(rb_folder.folder, folder)
+    status = main(["couplings", folder, "--relation", "karplus-1959", "--types", ttype, "--experimental", str(exp)])
     assert status == 0
     text = capsys.readouterr().out
     assert "consistent" in text and "karplus-1959" in text
-    table = pd.read_csv(os.path.join(rb_folder.folder, "couplings.csv"))
+    table = pd.read_csv(os.path.join(folder, "couplings_karplus-1959.csv"))
     assert {"torsion", "j_hz", "j_err_hz", "j_systematic_hz"} <= set(table.columns)
-    vs = pd.read_csv(os.path.join(rb_folder.folder, "couplings_vs_experiment.csv"))
+    vs = pd.read_csv(os.path.join(folder, "couplings_karplus-1959_vs_experiment.csv"))
     assert vs["matched_as"].iloc[0] == "type"
-    with open(os.path.join(rb_folder.folder, "couplings.json")) as fh:
+    with open(os.path.join(folder, "couplings_karplus-1959.json")) as fh:
         info = json.load(fh)
     assert info["relations"][0]["citation"].startswith("Karplus")
-    assert main(["couplings", rb_folder.folder, "--relation", "nope"]) == 2
+    assert main(["couplings", folder, "--relation", "nope"]) == 2
+    # another relation keeps its own files beside the first's; the same relation again needs
+    # --overwrite (the former --select still works, with a note)
+    before = open(os.path.join(folder, "couplings_karplus-1959.csv"), "rb").read()
+    assert main(["couplings", folder, "--relation", "vuister-bax-1993", "--select", ttype]) == 0
+    assert "--select is now --types" in capsys.readouterr().err
+    assert os.path.exists(os.path.join(folder, "couplings_vuister-bax-1993.csv"))
+    assert open(os.path.join(folder, "couplings_karplus-1959.csv"), "rb").read() == before
+    assert main(["couplings", folder, "--relation", "karplus-1959", "--types", ttype]) == 2
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(["couplings", folder, "--relation", "karplus-1959", "--types", ttype, "--overwrite"]) == 0
 
 
 # ------------------------------------------------------------------------------------------------
@@ -413,7 +427,7 @@ def test_reference_populations_in_the_comparison_output(rb_folder, tmp_path, cap
     grid = np.arange(-180.0, 180.0, 5.0)
     pd.DataFrame({"angle_deg": grid, "energy_kj_mol": rb_energy(grid)}).to_csv(scan, index=False)
     assert main(["compare", rb_folder.folder, "--scan", str(scan), "--reference-populations", str(ref),
-                 "--bootstrap", "50"]) == 0
+                 "--bootstrap", "50", "--overwrite"]) == 0   # replaces the comparison of the populations alone
     table = pd.read_csv(os.path.join(rb_folder.folder, "comparison.csv"))
     assert len(table) == 1 and {"verdict", "reference_verdict"} <= set(table.columns)
     with open(os.path.join(rb_folder.folder, "comparison.json")) as fh:

@@ -259,7 +259,7 @@ def test_eyring_check_value():
 def test_three_state_jump_process_rates_and_lifetimes(clean_folder, capsys):
     # analytic: the rates put into the simulation, the lifetimes 1/sum_j k_ij and, for independent
     # torsions, conformer rates equal to the single-torsion rate of the torsion that flips.
-    assert main(["kinetics", clean_folder, "--lag", "1", "5", "20", "--bootstrap", "400"]) == 0
+    assert main(["kinetics", clean_folder, "--lag-ps", "1", "5", "20", "--bootstrap", "400"]) == 0
     screen = capsys.readouterr().out
     assert "anti -> gauche+" in screen and "upper bound" in screen
     tr = pd.read_csv(os.path.join(clean_folder, "transitions.csv"))
@@ -431,6 +431,13 @@ def test_clear_errors(two_replicas, tmp_path, capsys):
     res = folder_kinetics(copy, assignment="crisp", lags=[2], dt_ps=0.25, n_bootstrap=0)
     assert res.parameters["frame_interval_ps"] == 0.25
     assert (res.timescales["lag_ps"] == 0.5).all() or res.timescales.empty
+    # lags in ps are whole numbers of frames (here 1 ps apart); the former --lag (frames) still works
+    assert main(["kinetics", folder, "--lag-ps", "1.5", "--overwrite"]) == 2
+    assert "not a positive whole number of frames" in capsys.readouterr().err
+    res = folder_kinetics(folder, lags_ps=[2.0, 4.0], n_bootstrap=0, conformers=False)
+    assert res.parameters["lags_frames"] == [2, 4] and res.parameters["lags_ps"] == [2.0, 4.0]
+    with pytest.raises(DihedraError, match="not both"):
+        folder_kinetics(folder, lags_ps=[2.0], lags=[2])
     # a margin that leaves no core
     with pytest.raises(DihedraError, match="no core"):
         folder_kinetics(folder, core_margin_deg=65)

@@ -458,7 +458,7 @@ def test_convergence_ends_at_the_per_replica_populations(full_folder):
 
 
 def test_couplings_identity_line_error_bars_and_outliers(full_folder):
-    table = pd.read_csv(os.path.join(full_folder, "couplings_vs_experiment.csv"))
+    table = pd.read_csv(os.path.join(full_folder, "couplings_karplus-1959_vs_experiment.csv"))
     ax = figures.plot_couplings(table, ax=new_ax(height=3.0))
     identity = ax.get_lines()[0]
     np.testing.assert_allclose(identity.get_xdata(), identity.get_ydata())
@@ -586,13 +586,23 @@ def test_figures_command(full_folder, tmp_path, capsys):
 
     folder = str(tmp_path / "copy")
     shutil.copytree(full_folder, folder)
+    # --types takes types and single torsions (a torsion label: its own angle series)
     assert main(["figures", folder, "--format", "png", "--width", "double", "--types", "BUT:C1-C2-C3-C4",
-                 "--torsions", "BUT3:C1-C2-C3-C4"]) == 0
+                 "--types", "BUT3:C1-C2-C3-C4"]) == 0
     out = capsys.readouterr().out.split()
     assert all(p.startswith(os.path.join(folder, "figures")) and p.endswith(".png") for p in out)
     assert os.path.join(folder, "figures", "profile_BUT_C1-C2-C3-C4.png") in out
-    assert main(["figures", folder, "--types", "NOPE"]) == 2
+    assert main(["figures", folder, "--types", "NOPE", "--overwrite"]) == 2
     assert "no torsion type 'NOPE'" in capsys.readouterr().err
+    # the figures of an earlier run are replaced only with --overwrite
+    assert main(["figures", folder, "--format", "png"]) == 2
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(["figures", folder, "--format", "png", "--overwrite"]) == 0
+    # with a torsion label the angle series shows that torsion
+    with figures.style():
+        fset = figures.figure_set(folder, types=["BUT3:C1-C2-C3-C4"])
+    series = [i for i in fset.items if i.kind == "series"][0]
+    assert "BUT3:C1-C2-C3-C4" in series.figure.axes[0].get_title(loc="left")
 
 
 def test_population_figure_of_a_folder_shows_sampled_scan_and_reference_values(full_folder):

@@ -80,7 +80,7 @@ def test_report_content_comes_from_the_folder(full_folder, full_report):  # noqa
     assert html.escape(kin["parameters"]["caution"]) in text
     for note in summary["notices"] + kin["notices"]:
         assert html.escape(note) in text
-    coupl = json.load(open(os.path.join(full_folder, "couplings.json")))
+    coupl = json.load(open(os.path.join(full_folder, "couplings_karplus-1959.json")))
     for s in coupl["experimental"]["summary"]:
         assert f">{s['verdict']}</span>" in text
     minima = pd.read_csv(os.path.join(full_folder, "minima.csv"))
@@ -261,3 +261,24 @@ def test_protein_report_prints_to_a_few_pages_and_fits_an_a4_page(protein_report
     data = pdf.read_bytes()
     pages = len(re.findall(rb"/Type\s*/Page(?!s)", data))
     assert 3 <= pages <= 14, pages  # a few pages (figures of four types, tables of their rows), not 27
+
+
+def test_every_csv_dihedra_writes_reads_back_with_plain_pandas(full_folder, protein_folder):  # noqa: F811
+    # each table of a folder that every step wrote into: pandas.read_csv with no options gives its
+    # rows (no comment lines, no index column, one header row); the csv module is the reference
+    import csv
+
+    names = []
+    for folder in (full_folder, protein_folder):
+        for name in sorted(os.listdir(folder)):
+            if not name.endswith(".csv"):
+                continue
+            path = os.path.join(folder, name)
+            table = pd.read_csv(path)
+            with open(path, newline="") as fh:
+                rows = list(csv.reader(fh))
+            assert list(table.columns) == rows[0] and len(table) == len(rows) - 1, name
+            assert not any(str(c).startswith(("Unnamed", "#")) for c in table.columns), name
+            names.append(name)
+    assert {"populations.csv", "transitions.csv", "couplings_karplus-1959.csv", "comparison.csv",
+            "schemes.csv"} <= set(names)

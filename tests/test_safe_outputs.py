@@ -170,7 +170,12 @@ def test_analyses_never_replace_a_users_file_in_a_results_folder(tmp_path, data,
     assert (out / "profiles.csv").read_text() == "my own profile\n"
     os.remove(out / "profiles.csv")
     assert main(["profile", str(out)]) == 0
-    assert main(["profile", str(out)]) == 0     # its own earlier output is replaced
+    before = (out / "profiles.csv").read_bytes()
+    # its own earlier output is replaced only when asked (and stops before computing anything)
+    refused(["profile", str(out), "--bin-width", "10"], capsys, "--overwrite")
+    assert (out / "profiles.csv").read_bytes() == before
+    assert main(["profile", str(out), "--bin-width", "10", "--overwrite"]) == 0
+    assert (out / "profiles.csv").read_bytes() != before
     assert "profiles.csv" in read_marker(out)["files"]
 
 

@@ -3,6 +3,7 @@
 import os
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import optimize
 
@@ -47,9 +48,9 @@ def test_units_from_column_names_convert(tmp_path):
 def test_units_are_mandatory(tmp_path):
     # common practice: units are mandatory unless the column names carry them
     path = table(tmp_path / "n.csv", "phi,E", ANGLES, rb_energy(ANGLES))
-    with pytest.raises(DihedraError, match="angle unit is unknown.*--angle-unit"):
+    with pytest.raises(DihedraError, match="angle unit is unknown.*--scan-angle-unit"):
         read_scan_csv(path)
-    with pytest.raises(DihedraError, match="energy unit is unknown.*--energy-unit"):
+    with pytest.raises(DihedraError, match="energy unit is unknown.*--scan-energy-unit"):
         read_scan_csv(path, angle_unit="deg")
     assert read_scan_csv(path, angle_unit="deg", energy_unit="kJ/mol").kind == "unspecified"
     named = table(tmp_path / "m.csv", "angle_deg,energy_kcal_mol", ANGLES, rb_energy(ANGLES))
@@ -212,3 +213,39 @@ def test_scan_command(butane_pdb, tmp_path, capsys):
     assert os.path.exists(out) and read_scan_csv(out).kind == "relaxed"
     assert main(["scan", path, "--torsion", "0,1,2,3", "--method", "mmff94", "--out", out]) == 2
     assert "already exists" in capsys.readouterr().err
+
+
+def test_a_written_scan_reads_back_with_plain_pandas_and_keeps_its_metadata_beside_it(tmp_path):
+    from dihedra.analysis.scans import scan_from_points
+    from dihedra.analysis.scans.files import sidecar_path
+    from dihedra.errors import OutputExistsError
+
+    x = np.arange(-170.0, 181.0, 10.0)
+    scan = scan_from_points(x, 2.0 * (1 + np.cos(np.radians(3 * x))), kind="relaxed", source="made here",
+                            metadata={"method": "cosine (made up)"})
+    out = write_scan_csv(scan, str(tmp_path / "scan.csv"), extra={"torsion_atoms": "0,1,2,3"})
+    table = pd.read_csv(out)   # a plain CSV: no comment lines to skip
+    assert list(table.columns) == ["angle_deg", "energy_kj_mol"] and len(table) == len(scan.angle_deg)
+    assert sidecar_path(out) == str(tmp_path / "scan.json")
+    back = read_scan_csv(out)
+    assert back.kind == "relaxed" and back.metadata["method"] == "cosine (made up)"
+    assert back.metadata["torsion_atoms"] == "0,1,2,3"
+    assert np.allclose(back.energy_kj_mol, scan.energy_kj_mol, atol=1e-6)
+    # a second write replaces only with overwrite; a JSON of the user's beside a new scan is refused
+    with pytest.raises(OutputExistsError, match="--overwrite"):
+        write_scan_csv(scan, out)
+    write_scan_csv(scan, out, overwrite=True)
+    (tmp_path / "other.json").write_text('{"mine": true}')
+    with pytest.raises(OutputExistsError):
+        write_scan_csv(scan, str(tmp_path / "other.csv"))
+    assert not (tmp_path / "other.csv").exists()
+
+
+def test_a_scan_file_a_user_brings_may_carry_comment_lines(tmp_path):
+    path = tmp_path / "user.csv"
+    path.write_text("# kind: rigid\n# method: B3LYP/6-31G*\nphi_deg,E_kcal_mol\n0,3.0\n60,0.8\n120,3.1\n180,0.0\n"
+                    "-120,3.1\n-60,0.8\n")
+    scan = read_scan_csv(str(path))
+    assert scan.kind == "rigid" and scan.metadata["method"] == "B3LYP/6-31G*"
+    assert scan.energy_at([180.0])[0] == pytest.approx(0.0)
+    assert scan.energy_at([0.0])[0] == pytest.approx(3.0 * 4.184)   # kcal -> kJ (thermochemical calorie)

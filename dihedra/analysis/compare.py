@@ -268,7 +268,7 @@ def select_types(result, types):
             return known
         raise DihedraError(f"this run has {len(known)} torsion types ({', '.join(known[:5])}"
                            f"{', ...' if len(known) > 5 else ''}); name the one the scan describes with "
-                           "--type TYPE (repeatable), or --type all.")
+                           "--types TYPE ... (types=[...]), or --types all.")
     if isinstance(types, str):
         types = [types]
     if list(types) == ["all"]:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import sys
 
 import numpy as np
@@ -31,6 +32,54 @@ def add_scheme_option(parser):
                              "tracked, else anti-gauche")
 
 
+class _Extend(argparse.Action):
+    """``--types A B --types C``: every value given, in order. An older name of an option takes its
+    values too, with a note (``renamed_to``)."""
+
+    renamed_to = None
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        values = [values] if isinstance(values, str) else list(values)
+        setattr(namespace, self.dest, (getattr(namespace, self.dest, None) or []) + values)
+        if self.renamed_to:
+            say(f"note: {option_string} is now {self.renamed_to} (one name in every command)")
+
+
+class _Renamed(argparse._StoreAction):
+    """An older name of a one-value option: stores the value, with a note naming the new one."""
+
+    renamed_to = None
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        setattr(namespace, self.dest, values)
+        if self.renamed_to:
+            say(f"note: {option_string} is now {self.renamed_to} (one name in every command)")
+
+
+def add_renamed(parser, old, new, dest, **kwargs):
+    """An older option name, hidden from --help, that still works (with a note naming the new one)."""
+    action = parser.add_argument(old, dest=dest, help=argparse.SUPPRESS, **kwargs)
+    action.renamed_to = new
+    return action
+
+
+def add_types_option(parser, what, former=()):
+    """``--types TYPE [TYPE ...]``, the one option that chooses torsion types in every command that
+    reads a results folder: ``what`` is its help (say whether a torsion label chooses one torsion);
+    it is repeatable. ``former`` are older names of the option, still taken with a note."""
+    parser.add_argument("--types", nargs="+", action=_Extend, default=None, metavar="TYPE", dest="types",
+                        help=what + " (names as in torsions.csv; several after one --types, or --types again)")
+    for old in former:
+        add_renamed(parser, old, "--types", "types", nargs="+", action=_Extend)
+
+
+def add_overwrite_option(parser, what):
+    """``--overwrite`` of an analysis command: replace its own earlier outputs in the folder."""
+    parser.add_argument("--overwrite", action="store_true",
+                        help=f"replace the {what} of an earlier run in DIR (without it the command stops "
+                             "when they are there; files dihedra did not write are never replaced)")
+
+
 def add_track_options(parser):
     """The options of the trajectory pass (shared by 'track' and 'demo')."""
     parser.add_argument("--start", type=int, default=None, metavar="N", help="first frame (0-based)")
@@ -38,10 +87,10 @@ def add_track_options(parser):
     parser.add_argument("--step", type=int, default=None, metavar="N", help="use every N-th frame")
     parser.add_argument("--workers", type=int, default=1, metavar="N",
                         help="worker processes (default 1); results equal a serial run")
-    parser.add_argument("--threads", type=int, default=None, choices=[1, 2], metavar="N",
-                        help="threads of a serial run: 2 (the default when this process may use "
-                             "two or more cores): a second thread computes while the first reads "
-                             "the trajectory; 1 stays on one core. Results are identical")
+    parser.add_argument("--threads", type=int, default=None, choices=[1, 2], metavar="{1,2}",
+                        help="threads of a run without --workers: 2 reads the trajectory in one thread while "
+                             "the other computes (the default where two cores are free), 1 does both in "
+                             "one; the results are the same")
     parser.add_argument("--backend", default=None, choices=["serial", "multiprocessing", "dask"],
                         help="parallel backend for --workers > 1 (default multiprocessing)")
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",

@@ -6,7 +6,8 @@ from ..analysis.reference_populations import compare_reference_populations, form
 from ..analysis.scans import read_scan
 from ..errors import DihedraError
 from ..io.resultsdir import load_results
-from .common import say
+from ..io.outputs import check_earlier_outputs
+from .common import _Renamed, add_overwrite_option, add_renamed, add_types_option, say
 
 
 def register(sub):
@@ -24,17 +25,21 @@ def register(sub):
     p.add_argument("--reference-populations", default=None, metavar="FILE",
                    help="CSV of measured or reference state populations (type, state, population, "
                         "population_err; 'A|B' sums states): z-scores and a verdict in the same output")
-    p.add_argument("--angle-unit", choices=["deg", "rad"], default=None,
-                   help="unit of the scan's angles (required unless the column name carries it)")
-    p.add_argument("--energy-unit", default=None, metavar="UNIT",
-                   help="unit of the scan's energies: kJ/mol, kcal/mol, hartree, eV or kT (required unless "
-                        "the column name carries it)")
-    p.add_argument("--columns", default=None, metavar="ANGLE,ENERGY",
-                   help="names of the angle and energy columns (default: the first two numeric columns)")
+    p.add_argument("--scan-angle-unit", choices=["deg", "rad"], default=None,
+                   help="unit of the angles in the scan file (read; required unless the column name carries it)")
+    add_renamed(p, "--angle-unit", "--scan-angle-unit", "scan_angle_unit", choices=["deg", "rad"], action=_Renamed)
+    p.add_argument("--scan-energy-unit", default=None, metavar="UNIT",
+                   help="unit of the energies in the scan file (read): kJ/mol, kcal/mol, hartree, eV or kT "
+                        "(required unless the column name carries it); the outputs are in kJ/mol")
+    add_renamed(p, "--energy-unit", "--scan-energy-unit", "scan_energy_unit", action=_Renamed)
+    p.add_argument("--scan-columns", default=None, metavar="ANGLE,ENERGY",
+                   help="names of the angle and energy columns of the scan file (default: the first two "
+                        "numeric columns)")
+    add_renamed(p, "--columns", "--scan-columns", "scan_columns", action=_Renamed)
     p.add_argument("--scan-kind", choices=["rigid", "relaxed"], default=None,
                    help="whether the scan is rigid or relaxed (recorded; default from the file, else unspecified)")
-    p.add_argument("--type", action="append", default=None, metavar="TYPE",
-                   help="torsion type the scan describes (repeatable; 'all' for every type; default the only type)")
+    add_types_option(p, "torsion types the scan describes, or 'all' (default: the folder's only type)",
+                     former=("--type",))
     p.add_argument("--temperature", type=float, default=None, metavar="K",
                    help="temperature in kelvin (required unless track recorded one)")
     p.add_argument("--bin-width", type=float, default=DEFAULT_BIN_WIDTH_DEG, metavar="DEG",
@@ -45,20 +50,26 @@ def register(sub):
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
                    help=f"block-bootstrap resamples (default {DEFAULT_BOOTSTRAP})")
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="N", help="seed of the bootstrap")
+    add_overwrite_option(p, "comparison files (comparison.csv, comparison_profiles.csv, comparison.json)")
     p.set_defaults(func=run)
+
+
+#: The files of 'dihedra compare'.
+OUTPUTS = ("comparison.csv", "comparison_profiles.csv", "comparison.json")
 
 
 def run(args):
     if args.scan is None and args.reference_populations is None:
         raise DihedraError("give --scan FILE, --reference-populations FILE, or both.")
     result = load_results(args.folder)
+    check_earlier_outputs(result.folder, "dihedra compare", args.overwrite, names=OUTPUTS)
     if args.scan is None:
         return run_reference_only(args, result)
     temperature = resolve_temperature(args.temperature, result.summary, say)
-    scan = read_scan(args.scan, angle_unit=args.angle_unit, energy_unit=args.energy_unit, columns=args.columns,
-                     kind=args.scan_kind, temperature_k=temperature)
+    scan = read_scan(args.scan, angle_unit=args.scan_angle_unit, energy_unit=args.scan_energy_unit,
+                     columns=args.scan_columns, kind=args.scan_kind, temperature_k=temperature)
     thresholds = Thresholds(tolerance_kj_mol=args.tolerance)
-    cmp = compare_with_scan(result, scan, temperature_k=temperature, types=args.type,
+    cmp = compare_with_scan(result, scan, temperature_k=temperature, types=args.types,
                             bin_width_deg=args.bin_width, thresholds=thresholds, n_bootstrap=args.bootstrap,
                             seed=args.seed)
     ref = None

@@ -1,34 +1,39 @@
 """``dihedra couplings``: ensemble-averaged 3J couplings of a results folder, against experiment."""
 
-from ..analysis.couplings import BUILTIN_RELATIONS, ensemble_couplings, get_relation, read_experimental
+from ..analysis.couplings import (BUILTIN_RELATIONS, coupling_file_names, ensemble_couplings, get_relation,
+                                  read_experimental)
+from ..io.outputs import check_earlier_outputs
 from ..io.resultsdir import load_results
-from .common import format_pm, print_notices, say
+from .common import add_overwrite_option, add_types_option, format_pm, print_notices, say
 
 
 def register(sub):
     p = sub.add_parser(
         "couplings", help="ensemble-averaged 3J couplings (Karplus relations), optionally against experiment",
         description="Average a Karplus relation over the sampled torsion distributions of a results folder "
-                    "(the fine histograms, weighted when the run was) and write couplings.csv; with "
-                    "--experimental also couplings_vs_experiment.csv with deviations, chi-square and a "
-                    "verdict. Built-in relations: " + ", ".join(BUILTIN_RELATIONS) + ".")
+                    "(the fine histograms, weighted when the run was) and write, for each relation, "
+                    "couplings_RELATION.csv and couplings_RELATION.json; with --experimental also "
+                    "couplings_RELATION_vs_experiment.csv with deviations, chi-square and a verdict. Runs with "
+                    "other relations add their own files. Built-in relations: " + ", ".join(BUILTIN_RELATIONS) + ".")
     p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track' or 'dihedra windows'")
     p.add_argument("--relation", action="append", required=True, metavar="NAME",
                    help="Karplus relation (repeatable): " + ", ".join(BUILTIN_RELATIONS)
                         + ", or a .toml file with a [relation] table")
     p.add_argument("--experimental", metavar="FILE", default=None,
                    help="CSV of measured couplings: torsion (or residue), J_hz, J_err_hz")
-    p.add_argument("--select", action="append", metavar="LABEL", default=None,
-                   help="torsion label or type to average (repeatable; default: the torsions the relation "
-                        "is meant for, e.g. protein phi)")
+    add_types_option(p, "torsion types, or single torsions by their label, to average (default: the torsions the "
+                        "relation is meant for, e.g. protein phi)", former=("--select",))
+    add_overwrite_option(p, "files of the same relation")
     p.set_defaults(func=run)
 
 
 def run(args):
     result = load_results(args.folder)
     relations = [get_relation(r) for r in args.relation]
+    check_earlier_outputs(result.folder, "dihedra couplings", args.overwrite,
+                          names=[n for r in relations for n in coupling_file_names(r.name, True)])
     experimental = read_experimental(args.experimental) if args.experimental else None
-    cres = ensemble_couplings(result, relations, select=args.select, experimental=experimental)
+    cres = ensemble_couplings(result, relations, types=args.types, experimental=experimental)
     paths = cres.save(result.folder, experimental_path=args.experimental)
     report(cres, cres.experiment_summary)
     print_notices(cres.notices)
@@ -56,7 +61,7 @@ def report(cres, summary, max_rows=30):
             sys_text = f"   systematic {row.j_systematic_hz:.2f}" if row.j_systematic_hz == row.j_systematic_hz else ""
             print(f"  {name:<{width}}  {format_pm(row.j_hz, row.j_err_hz, 2):>16}{sys_text}")
         if len(shown) > max_rows:
-            print(f"  ... {len(shown) - max_rows} more rows in couplings.csv")
+            print(f"  ... {len(shown) - max_rows} more rows in {coupling_file_names(rel)[0]}")
     for s in summary or []:
         if s["n_points"] == 0:
             print(f"{s['relation']} vs experiment: no experimental value matched a torsion "

@@ -21,7 +21,8 @@ def register(sub):
                     "TraPPE-UA torsion potential, kinetics, figures and an HTML report.")
     p.add_argument("--out", default="dihedra-demo", metavar="DIR",
                    help="results folder (default ./dihedra-demo; a previous demo folder is replaced)")
-    p.add_argument("--workers", type=int, default=1, metavar="N", help="worker processes")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="worker processes of the trajectory pass (default 1); results equal a serial run")
     p.set_defaults(func=run)
 
 

@@ -1,7 +1,8 @@
 """``dihedra figures``: publication figures from a results folder (each as soon as its data exist)."""
 
 from ..presentation.figures import FORMATS, WIDTHS, write_figures
-from .common import say
+from ..io.outputs import check_earlier_outputs
+from .common import add_overwrite_option, add_types_option, say
 
 
 def register(sub):
@@ -16,17 +17,16 @@ def register(sub):
                    help=f"comma-separated file formats: {', '.join(FORMATS)} (default pdf,png)")
     p.add_argument("--width", choices=list(WIDTHS), default="single",
                    help="journal width: single column (3.35 in, default) or double (7 in)")
-    p.add_argument("--torsions", nargs="+", metavar="LABEL", default=None,
-                   help="torsion labels for the time-series figures and the state raster "
-                        "(default: one torsion of each of the first three types; the raster shows all)")
-    p.add_argument("--types", nargs="+", metavar="TYPE", default=None,
-                   help="torsion types for the per-type figures (default: the first four types)")
+    add_types_option(p, "torsion types of the per-type figures and the state raster, or single torsions by their "
+                        "label for the angle time series (default: the four types whose torsions spend most time "
+                        "outside their main state, every torsion in the raster)", former=("--torsions",))
+    add_overwrite_option(p, "figures (DIR/figures/)")
     p.set_defaults(func=run)
 
 
 def run(args):
-    paths, skipped = write_figures(args.folder, formats=args.format, width=args.width, torsions=args.torsions,
-                                   types=args.types, log=say)
+    check_earlier_outputs(args.folder, "dihedra figures", args.overwrite, prefixes=("figures/",))
+    paths, skipped = write_figures(args.folder, formats=args.format, width=args.width, types=args.types, log=say)
     for path in paths:
         print(path)
     say(f"{len(paths)} figure file(s) written" + (f"; {len(skipped)} figure(s) skipped (see the notes above)"

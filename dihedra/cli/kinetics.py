@@ -8,7 +8,8 @@ from ..analysis.kinetics import (ASSIGNMENTS, DEFAULT_BOOTSTRAP, DEFAULT_CORE_MA
                                  TST_CAUTION, state_kinetics)
 from ..io.resultsdir import load_results
 from ..io.tables import read_optional_json, read_optional_table
-from .common import print_notices, say
+from ..io.outputs import check_earlier_outputs
+from .common import _Renamed, add_overwrite_option, add_renamed, add_types_option, print_notices, say
 
 
 def register(sub):
@@ -19,7 +20,9 @@ def register(sub):
                     "mean first-passage times) and Eyring barriers, from a folder written by "
                     "'dihedra track'. Writes transitions.csv, lifetimes.csv, dwell_times.csv, "
                     "dwell_survival.csv, timescales.csv, mfpt.csv and kinetics.json into the folder.",
-        epilog="Core assignment (default) needs angles.parquet: run 'dihedra track ... --keep-angles'.")
+        epilog="Core assignment (the default) runs on every folder of 'dihedra track': the pass records whether "
+               "each frame lies in the core of its state for the default margin (cores.parquet); another "
+               "--core-margin needs the angles (track with --keep-angles).")
     p.add_argument("folder", metavar="DIR", help="results folder of 'dihedra track'")
     p.add_argument("--assignment", choices=ASSIGNMENTS, default="core",
                    help="core: transition-based core-set assignment (Buchete & Hummer 2008; default); "
@@ -27,29 +30,40 @@ def register(sub):
     p.add_argument("--core-margin", type=float, default=DEFAULT_CORE_MARGIN_DEG, metavar="DEG",
                    help=f"shrink every sector by this many degrees on both sides to make its core "
                         f"(default {DEFAULT_CORE_MARGIN_DEG:g})")
-    p.add_argument("--lag", type=int, nargs="+", default=list(DEFAULT_LAGS), metavar="FRAMES",
-                   help="lags in frames for the Markov models and implied timescales (default "
-                        + " ".join(map(str, DEFAULT_LAGS)) + ")")
-    p.add_argument("--type", action="append", default=None, metavar="TYPE",
-                   help="only torsions of this type (repeatable)")
+    p.add_argument("--lag-ps", type=float, nargs="+", default=None, metavar="PS",
+                   help="lag times in ps for the Markov models and implied timescales, whole multiples of the "
+                        "time between frames (default: " + ", ".join(map(str, DEFAULT_LAGS)) + " frames)")
+    add_renamed(p, "--lag", "--lag-ps (in ps)", "lag_frames", type=int, nargs="+", metavar="FRAMES",
+                action=_Renamed)
+    add_types_option(p, "only these torsion types, or single torsions by their label", former=("--type",))
     p.add_argument("--dt-ps", type=float, default=None, metavar="PS",
                    help="time between stored frames in ps (needed when the trajectory stores none)")
     p.add_argument("--temperature", type=float, default=None, metavar="K",
                    help="temperature for the Eyring barriers (default: the one recorded by track)")
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
-                   help=f"bootstrap samples for the dwell-time intervals (default {DEFAULT_BOOTSTRAP})")
+                   help=f"bootstrap resamples for the 95 %% intervals of the dwell times (default "
+                        f"{DEFAULT_BOOTSTRAP}: percentile intervals need more resamples than the standard errors of "
+                        "the other commands, 200; Efron & Tibshirani 1993)")
     p.add_argument("--torsion-bootstrap", action="store_true",
                    help="bootstrap the dwell-time intervals of every single torsion too (slow for thousands of "
                         "torsions; by default single torsions use the Kaplan-Meier variance of the mean, types "
                         "and conformers the bootstrap)")
+    add_overwrite_option(p, "kinetics files (transitions.csv ... kinetics.json)")
     p.set_defaults(func=run)
+
+
+#: The files of 'dihedra kinetics'.
+OUTPUTS = ("transitions.csv", "lifetimes.csv", "dwell_times.csv", "dwell_survival.csv", "timescales.csv", "mfpt.csv",
+           "kinetics.json")
 
 
 def run(args):
     result = load_results(args.folder)
+    check_earlier_outputs(result.folder, "dihedra kinetics", args.overwrite, names=OUTPUTS)
     profiles = read_optional_json(args.folder, "profiles.json")
     res = state_kinetics(result, assignment=args.assignment, core_margin_deg=args.core_margin,
-                         lags=args.lag, types=args.type, dt_ps=args.dt_ps, temperature_k=args.temperature,
+                         lags_ps=args.lag_ps, lags=args.lag_frames, types=args.types, dt_ps=args.dt_ps,
+                         temperature_k=args.temperature,
                          barriers=read_optional_table(args.folder, "barriers.csv"),
                          profile_temperature_k=_profile_temperature(profiles),
                          n_bootstrap=args.bootstrap, log=say, torsion_bootstrap=args.torsion_bootstrap)

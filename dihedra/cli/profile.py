@@ -5,7 +5,8 @@ from ..analysis.profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAU
                                  PROFILE_ENERGY_UNITS, convert_energy_columns, free_energy_profiles, unit_suffix)
 from ..io.resultsdir import load_results
 from ..units import canonical_energy_unit
-from .common import print_notices, say
+from ..io.outputs import check_earlier_outputs
+from .common import add_overwrite_option, print_notices, say
 
 
 def register(sub):
@@ -35,7 +36,12 @@ def register(sub):
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="N", help="seed of the bootstrap")
     p.add_argument("--types-only", action="store_true",
                    help="profile only the types (pooled), not every torsion (faster for large systems)")
+    add_overwrite_option(p, "profile files (profiles.csv ... profiles.json)")
     p.set_defaults(func=run)
+
+
+#: The files of 'dihedra profile'.
+OUTPUTS = ("profiles.csv", "minima.csv", "barriers.csv", "state_free_energies.csv", "profiles_2d.csv", "profiles.json")
 
 
 def run(args):
@@ -43,6 +49,7 @@ def run(args):
     if unit not in PROFILE_ENERGY_UNITS:
         raise DihedraError(f"--energy-unit must be kJ/mol, kcal/mol or kT for profiles; got {args.energy_unit!r}.")
     result = load_results(args.folder)
+    check_earlier_outputs(result.folder, "dihedra profile", args.overwrite, names=OUTPUTS)
     pset = free_energy_profiles(result, temperature_k=args.temperature, bin_width_deg=args.bin_width,
                                 bandwidth_deg=args.bandwidth, n_bootstrap=args.bootstrap, seed=args.seed,
                                 per_torsion=not args.types_only, pairs=args.pair,

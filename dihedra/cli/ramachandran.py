@@ -2,7 +2,8 @@
 
 from ..analysis.ramachandran import REGIONS, ramachandran_regions
 from ..io.resultsdir import load_results
-from .common import format_pm, print_notices, say
+from ..io.outputs import check_earlier_outputs
+from .common import add_overwrite_option, format_pm, print_notices, say
 
 
 def register(sub):
@@ -14,11 +15,14 @@ def register(sub):
                     "(pooled per residue type, with the heterogeneity between residues). Needs a folder of "
                     "'dihedra track --torsions protein-backbone --keep-angles'.")
     p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track'")
+    add_overwrite_option(p, "ramachandran.csv and ramachandran_by_type.csv")
     p.set_defaults(func=run)
 
 
 def run(args):
     result = load_results(args.folder)
+    check_earlier_outputs(result.folder, "dihedra ramachandran", args.overwrite,
+                          names=("ramachandran.csv", "ramachandran_by_type.csv"))
     res = ramachandran_regions(result)
     paths = res.save(result.folder)
     by_type = res.regions_by_type

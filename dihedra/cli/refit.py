@@ -5,7 +5,8 @@ from ..analysis.refit import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BLOCKS, DEFAULT_BOO
 from ..analysis.refit.driver import DEFAULT_SEED
 from ..errors import DihedraError
 from ..io.resultsdir import load_results
-from .common import format_pm, print_notices, say
+from ..io.outputs import check_earlier_outputs
+from .common import add_overwrite_option, add_types_option, format_pm, print_notices, say
 
 
 def register(sub):
@@ -28,8 +29,7 @@ def register(sub):
                    help="target profile, populations or couplings (CSV), or a results folder (its profiles.csv)")
     p.add_argument("--temperature", type=float, default=None, metavar="K",
                    help="simulation temperature in kelvin (required unless track recorded one)")
-    p.add_argument("--types", nargs="+", metavar="TYPE", default=None,
-                   help="torsion types to correct, fitted together (default: the types the target names)")
+    add_types_option(p, "torsion types to correct, fitted together (default: the types the target names)")
     p.add_argument("--terms", type=int, default=DEFAULT_TERMS, metavar="N",
                    help=f"Fourier terms n = 1..N (default {DEFAULT_TERMS}; at most 5 for a Ryckaert-Bellemans form)")
     p.add_argument("--symmetric", action="store_true",
@@ -46,7 +46,8 @@ def register(sub):
     p.add_argument("--folds", type=int, default=DEFAULT_FOLDS, metavar="N",
                    help=f"contiguous pieces of every replica for the cross-validation (default {DEFAULT_FOLDS})")
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
-                   help=f"block-bootstrap refits for the errors (default {DEFAULT_BOOTSTRAP})")
+                   help=f"block-bootstrap refits for the errors (default {DEFAULT_BOOTSTRAP}, fewer than the 200 "
+                        "resamples of the other commands: each resample is a whole fit with its cross-validation)")
     p.add_argument("--blocks", type=int, default=DEFAULT_BLOCKS, metavar="N",
                    help=f"bootstrap blocks per replica (default {DEFAULT_BLOCKS})")
     p.add_argument("--min-effective-fraction", type=float, default=MIN_EFFECTIVE_FRACTION, metavar="F",
@@ -58,6 +59,7 @@ def register(sub):
     p.add_argument("--atom-types", metavar="NAME=TYPE,...", default=None,
                    help="match the OpenMM fragment by atom types instead of classes")
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="N", help="seed of the bootstrap")
+    add_overwrite_option(p, "refit files (refit_*.csv, refit_openmm.xml, refit.json)")
     p.set_defaults(func=run)
 
 
@@ -79,6 +81,7 @@ def parse_mapping(text, option):
 
 def run(args):
     result = load_results(args.folder)
+    check_earlier_outputs(result.folder, "dihedra refit", args.overwrite, prefixes=("refit_", "refit."))
     fit = fit_torsion_correction(
         result, args.target, temperature_k=args.temperature, types=args.types, terms=args.terms,
         symmetric=args.symmetric, relation=args.relation, weights_per=args.weights_per, bin_width_deg=args.bin_width,

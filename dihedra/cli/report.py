@@ -2,7 +2,7 @@
 
 from ..presentation.figures import WIDTHS
 from ..presentation.report import write_report
-from .common import say
+from .common import add_types_option, say
 
 
 def register(sub):
@@ -16,9 +16,14 @@ def register(sub):
     p.add_argument("--width", choices=list(WIDTHS), default="single",
                    help="journal width the figures are drawn at (default single)")
     p.add_argument("--no-figures", action="store_true", help="leave the figures out (faster)")
+    add_types_option(p, "torsion types the tables and per-type figures show, or single torsions by their label "
+                        "(default: every type when there are at most 24, else the four whose torsions spend most "
+                        "time outside their main state; the other types in one line each, the full tables "
+                        "linked)")
     p.set_defaults(func=run)
 
 
 def run(args):
-    path = write_report(args.folder, out=args.out, width=args.width, figures=not args.no_figures, log=say)
+    path = write_report(args.folder, out=args.out, width=args.width, figures=not args.no_figures, types=args.types,
+                        log=say)
     print(f"report written to {path}")

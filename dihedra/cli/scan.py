@@ -3,6 +3,7 @@
 import os
 
 from ..analysis.scans import check_scan_output, mmff94_scan, molecule_from_topology, write_scan_csv, xtb_scan
+from ..analysis.scans.files import sidecar_path
 from .common import say
 
 METHODS = ("mmff94", "gfn2-xtb")
@@ -13,14 +14,16 @@ def register(sub):
         "scan", help="compute a relaxed torsion scan (MMFF94 with RDKit, GFN2-xTB with tblite)",
         description="Compute a relaxed scan of one torsion of the molecule it belongs to (built from an "
                     "all-atom topology with elements and hydrogens, coordinates of the first frame) and "
-                    "write it as a scan CSV with the method in its header; 'dihedra compare --scan' reads "
-                    "it. Needs the scan extras: pip install \"dihedra[scan]\".")
+                    "write it as a scan CSV (angle_deg, energy_kj_mol) with its method, kind and inputs in "
+                    "a JSON file beside it (scan.csv -> scan.json); 'dihedra compare --scan' reads both. "
+                    "Needs the scan extras: pip install \"dihedra[scan]\".")
     p.add_argument("topology", help="all-atom topology with elements and hydrogens (PDB, PSF, TPR, ...)")
     p.add_argument("trajectory", nargs="?", default=None, metavar="TRAJ",
                    help="optional trajectory whose first frame gives the coordinates")
     p.add_argument("--torsion", required=True, metavar="A,B,C,D", help="four 0-based atom indices")
     p.add_argument("--method", required=True, choices=METHODS, help="mmff94 or gfn2-xtb")
-    p.add_argument("--out", required=True, metavar="FILE", help="scan CSV to write")
+    p.add_argument("--out", required=True, metavar="FILE", help="scan CSV to write (and its metadata beside it, "
+                                                                     "the same name with .json)")
     p.add_argument("--step", type=float, default=None, metavar="DEG",
                    help="scan spacing, a divisor of 360 (default 10 for mmff94, 30 for gfn2-xtb)")
     p.add_argument("--charge", type=int, default=0, metavar="Q", help="total charge (gfn2-xtb; default 0)")
@@ -50,4 +53,4 @@ def run(args):
           f"highest {scan.energy_kj_mol.max():.2f} kJ/mol above it")
     for a, e in zip(scan.angle_deg, scan.energy_kj_mol):
         print(f"  {a:7.1f} deg  {e:8.3f} kJ/mol")
-    print(f"written: {out}")
+    print(f"written: {out} (metadata: {sidecar_path(out)})")

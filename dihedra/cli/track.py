@@ -11,7 +11,9 @@ def register(sub):
         "track", help="follow torsions through trajectories: states, populations, conformers",
         description="Follow torsions through one or more trajectories of one system (replicas) and "
                     "write a results folder: torsions.csv, populations.csv, populations_by_type.csv, "
-                    "conformers.csv, states.parquet, blocks.npz and summary.json.")
+                    "conformers.csv, states.parquet (the state of every frame), cores.parquet (whether each "
+                    "frame lies in the core of its state, for kinetics), blocks.npz, convergence.csv and "
+                    "summary.json.")
     p.add_argument("topology", help="topology file (PDB with CONECT, PSF, TPR, PRMTOP, GRO, ...)")
     p.add_argument("trajectories", nargs="+", metavar="TRAJ",
                    help="trajectory files; several are replicas of the same system")

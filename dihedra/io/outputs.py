@@ -132,6 +132,26 @@ def record_files(folder, names):
         _write_marker(folder, marker)
 
 
+def earlier_outputs(folder, names=(), prefixes=()):
+    """The files of an analysis that an earlier run wrote into ``folder`` (listed in its marker):
+    those named ``names`` or starting with one of ``prefixes``, sorted."""
+    marker = read_marker(folder)
+    listed = marker["files"] if marker else []
+    return sorted(f for f in listed if f in set(names) or any(f.startswith(p) for p in prefixes))
+
+
+def check_earlier_outputs(folder, command, overwrite=False, names=(), prefixes=(), option="--overwrite"):
+    """Refuse to replace the outputs of an earlier run of an analysis without ``overwrite``: an
+    analysis adds its files to a results folder, and replaces its own earlier ones only when asked
+    (files of other settings, such as another coupling relation, have other names)."""
+    found = earlier_outputs(folder, names, prefixes)
+    if found and not overwrite:
+        shown = ", ".join(found[:4]) + (f" and {len(found) - 4} more" if len(found) > 4 else "")
+        raise OutputExistsError(f"{folder} already has {shown} from an earlier '{command}'; give {option} to "
+                                "replace them (only those files), or work on a copy of the folder.")
+    return found
+
+
 # ----------------------------------------------------------------------------------------------
 # Checks of a target
 # ----------------------------------------------------------------------------------------------

@@ -210,6 +210,17 @@ def read_optional_json(folder, name):
     return read_json(folder, name)
 
 
+def matching_files(folder, pattern):
+    """The names of the files of a results folder that match a shell pattern (``couplings_*.csv``), sorted."""
+    import fnmatch
+
+    try:
+        names = os.listdir(os.fspath(folder))
+    except OSError:
+        return []
+    return sorted(n for n in names if fnmatch.fnmatch(n, pattern) and os.path.isfile(os.path.join(folder, n)))
+
+
 def read_optional_text(folder, name):
     """A text file of a results folder (``analysis.toml``), or ``None`` when the folder has none."""
     path = os.path.join(os.fspath(folder), name)

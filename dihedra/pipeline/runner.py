@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 from .._version import __version__
 from ..errors import DihedraError, InputFileError
-from ..io.outputs import check_folder_target, write_text
+from ..io.outputs import check_folder_target, read_marker, write_text
 from ..io.resultsdir import load_results
 from ..io.tables import write_json
 from .steps import STEP_ORDER, STEPS
@@ -62,6 +62,9 @@ class _Context:
     def __init__(self, pipe, log):
         self.out, self.overwrite, self.log = pipe.out, pipe.overwrite, log
         self._result = None
+        # the files the folder held before this run (an analysis replaces those only with --overwrite)
+        marker = None if any(st.spec.creates_folder for st in pipe.steps) else read_marker(pipe.out)
+        self.before = set(marker["files"]) if marker else set()
 
     def result(self):
         if self._result is None:
@@ -251,10 +254,20 @@ def load_pipeline(path, out=None, overwrite=False, overrides=None, log=None):
             steps.append(Step(s, arguments, where))
     if not steps:
         raise DihedraError(f"{name} describes no step to run; add a table such as [track] or a steps list.")
+    _share_type_choice(steps, say)
     if not any(st.spec.creates_folder for st in steps) and not os.path.isdir(out_dir):
         raise DihedraError(f"{name}: no step creates the results folder and {out_dir} does not exist; add a [track] "
                            "table or point out at an existing results folder.")
     return Pipeline(path=path, base_dir=base_dir, out=out_dir, steps=steps, text=text, overwrite=bool(overwrite))
+
+
+def _share_type_choice(steps, say):
+    """The types chosen for the figures are the report's too, unless its table chooses its own."""
+    chosen = [st.arguments["types"] for st in steps if st.name == "figures" and st.arguments.get("types")]
+    for st in steps:
+        if st.name == "report" and "types" not in st.arguments and chosen:
+            st.arguments["types"] = chosen[-1]
+            say(f"note: [report] shows the types of [figures]: {', '.join(map(str, chosen[-1]))}")
 
 
 # ----------------------------------------------------------------------------------------------

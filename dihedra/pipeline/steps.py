@@ -15,7 +15,8 @@ import os
 from dataclasses import dataclass, field
 
 from ..analysis.compare import Thresholds, compare_with_scan
-from ..analysis.couplings import ensemble_couplings, get_relation, read_experimental
+from ..analysis.couplings import coupling_file_names, ensemble_couplings, get_relation, read_experimental
+from ..errors import OutputExistsError
 from ..analysis.kinetics import state_kinetics
 from ..analysis.profiles import free_energy_profiles
 from ..analysis.reference_populations import compare_reference_populations
@@ -90,7 +91,31 @@ def _scan(ctx, a):
     return f"{len(scan.angle_deg)} points -> {out}"
 
 
+#: The files each analysis step writes (names, or prefixes ending in "_" or "/"): replaced only
+#: with ``dihedra run --overwrite`` when the folder had them before the run.
+OUTPUTS = {
+    "profile": ("profiles.csv", "minima.csv", "barriers.csv", "state_free_energies.csv", "profiles_2d.csv",
+                "profiles.json"),
+    "compare": ("comparison.csv", "comparison_profiles.csv", "comparison.json"),
+    "kinetics": ("transitions.csv", "lifetimes.csv", "dwell_times.csv", "dwell_survival.csv", "timescales.csv",
+                 "mfpt.csv", "kinetics.json"),
+    "refit": ("refit_", "refit."),
+    "figures": ("figures/",),
+}
+
+
+def _check(ctx, step, names=None):
+    """Stop before a step replaces outputs that the folder held before this run (unless --overwrite)."""
+    listed = OUTPUTS.get(step, ()) if names is None else names
+    found = [f for f in ctx.before if f in listed or any(f.startswith(p) for p in listed if p.endswith(("_", "/", ".")))]
+    if found and not ctx.overwrite:
+        shown = ", ".join(sorted(found)[:4]) + (f" and {len(found) - 4} more" if len(found) > 4 else "")
+        raise OutputExistsError(f"{ctx.out} already has {shown} from an earlier run; run the analysis file with "
+                                "--overwrite to replace them (only those files).")
+
+
 def _profile(ctx, a):
+    _check(ctx, "profile")
     unit = a.pop("energy_unit", "kJ/mol")
     res = free_energy_profiles(ctx.result(), log=ctx.log, **a)
     paths = res.save(ctx.out, energy_unit=unit)
@@ -98,6 +123,7 @@ def _profile(ctx, a):
 
 
 def _compare(ctx, a):
+    _check(ctx, "compare")
     result = ctx.result()
     reference = a.pop("reference_populations", None)
     scan_path = a.pop("scan", None)
@@ -117,6 +143,7 @@ def _compare(ctx, a):
 
 
 def _kinetics(ctx, a):
+    _check(ctx, "kinetics")
     barriers = read_optional_table(ctx.out, "barriers.csv")
     info = read_optional_json(ctx.out, "profiles.json") or {}
     res = state_kinetics(ctx.result(), barriers=barriers, profile_temperature_k=info.get("temperature_k"),
@@ -127,6 +154,7 @@ def _kinetics(ctx, a):
 def _couplings(ctx, a):
     relations = a.pop("relation")
     relations = [get_relation(r) for r in ([relations] if isinstance(relations, str) else relations)]
+    _check(ctx, "couplings", [n for r in relations for n in coupling_file_names(r.name, True)])
     path = a.pop("experimental", None)
     experimental = read_experimental(path) if path else None
     res = ensemble_couplings(ctx.result(), relations, experimental=experimental, **a)
@@ -134,11 +162,13 @@ def _couplings(ctx, a):
 
 
 def _refit(ctx, a):
+    _check(ctx, "refit")
     res = fit_torsion_correction(ctx.result(), a.pop("target"), log=ctx.log, **a)
     return _written(res.save(ctx.out))
 
 
 def _figures(ctx, a):
+    _check(ctx, "figures")
     paths, skipped = write_figures(ctx.out, log=ctx.log, **a)
     return f"{len(paths)} figure file(s)" + (f", {len(skipped)} figure(s) without data" if skipped else "")
 
@@ -176,7 +206,7 @@ STEPS = {s.name: s for s in [
             + ("scan", "scan_angle_unit", "scan_energy_unit", "scan_columns", "scan_kind", "tolerance_kj_mol",
                "reference_populations"),
             paths=frozenset({"scan", "reference_populations"}), defaults=signature_defaults(compare_with_scan)),
-    StepDef("couplings", "dihedra.ensemble_couplings", _couplings, ("relation", "select", "experimental"),
+    StepDef("couplings", "dihedra.ensemble_couplings", _couplings, ("relation", "types", "select", "experimental"),
             paths=frozenset({"experimental"}), specs=frozenset({"relation"}), required=("relation",)),
     StepDef("kinetics", "dihedra.state_kinetics", _kinetics,
             keyword_names(state_kinetics, ("result", "barriers", "profile_temperature_k") + _PIPELINE_OWNED),

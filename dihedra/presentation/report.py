@@ -43,7 +43,7 @@ from ..io.outputs import check_replaceable_in, check_single_file, file_head_cont
 from ..io.tables import read_optional_json
 from .figures import CHOICE_RULE, informative_types
 from .figures.figureset import check_types
-from .report_dynamics import _convergence, _couplings, _kinetics
+from .report_dynamics import _convergence, _couplings, _kinetics, coupling_files
 from .report_html import _CSS, MAX_ROWS, Page, _e, _fmt
 from .report_sections import _comparison, _populations, _profiles, _provenance, _time_series, _torsions
 
@@ -103,7 +103,10 @@ def build_report(folder, width="single", figures=True, types=None, log=None, bas
 def _page(result, types, base, say):
     """The types the tables show: the chosen ones, all of a folder of few types, else the informative ones."""
     all_types = list(dict.fromkeys(result.torsion_set.types))
-    check_types(types, all_types, result.folder)
+    type_of = dict(zip(result.torsion_set.labels, result.torsion_set.types))
+    types = [types] if isinstance(types, str) else list(types or [])
+    check_types([t for t in types if t not in type_of], all_types, result.folder, list(type_of))
+    types = [type_of.get(t, t) if t not in set(all_types) else t for t in types]   # a torsion: its type
     if types:
         shown = [t for t in all_types if t in set(types)]
     elif len(all_types) <= MAX_ROWS:
@@ -151,9 +154,11 @@ def _header(result, page):
 def _notices(folder, summary):
     """The notices every step left (tracking, profiles, kinetics, couplings) in one callout, or ""."""
     notices = [("track", n) for n in summary.get("notices", [])]
-    for name, step in (("profiles.json", "profile"), ("kinetics.json", "kinetics"), ("couplings.json", "couplings")):
+    for name, step in (("profiles.json", "profile"), ("kinetics.json", "kinetics")):
         doc = read_optional_json(folder, name) or {}
         notices += [(step, n) for n in doc.get("notices", [])]
+    for doc in coupling_files(folder)[2]:
+        notices += [("couplings", n) for n in doc.get("notices", []) if ("couplings", n) not in notices]
     if not notices:
         return ""
     return ("<section id='notices'><div class='callout caution'><h4>Notices from the analysis steps</h4>"

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from ..io.tables import read_optional_json, read_optional_table as read_optional
+from ..io.tables import matching_files, read_optional_json, read_optional_table as read_optional
 from .report_html import MAX_ROWS, _callout, _e, _figures_html, _fmt, _kv, _missing, _pm, _table, _verdict
 from .rounding import format_plain, format_rate
 
@@ -142,32 +142,48 @@ def _dwell_times(sub):
                       "visits (censored)", "population: frames / rates"], what="states"))
 
 
+def coupling_files(folder):
+    """The couplings of every relation in a folder (``couplings_<relation>.csv`` and the like, or
+    ``couplings.csv`` of an older dihedra): (couplings, against experiment, [json documents]),
+    None where the folder has none."""
+    tables = [n for n in matching_files(folder, "couplings_*.csv") if not n.endswith("_vs_experiment.csv")]
+    tables = tables or matching_files(folder, "couplings.csv")
+    exps = matching_files(folder, "couplings_*_vs_experiment.csv") or matching_files(folder, "couplings_vs_experiment.csv")
+    infos = [read_optional_json(folder, n) for n in (matching_files(folder, "couplings_*.json")
+                                                     or matching_files(folder, "couplings.json"))]
+
+    def joined(names):
+        frames = [read_optional(folder, n) for n in names]
+        frames = [f for f in frames if f is not None]
+        return pd.concat(frames, ignore_index=True) if frames else None
+    return joined(tables), joined(exps), [i for i in infos if i]
+
+
 def _couplings(page, figs):
-    folder = page.folder
-    table = read_optional(folder, "couplings.csv")
-    info = read_optional_json(folder, "couplings.json")
+    table, _, infos = coupling_files(page.folder)
     if table is None:
         return _missing("couplings", "3J couplings", "couplings", "dihedra couplings DIR --relation NAME")
     parts = ["<section id='couplings'><h2>3J couplings</h2>"]
     if len(table) > MAX_ROWS and "level" in table.columns and (table["level"] == "type").any():
-        parts.append(f"<p class='lead'>The mean of every type; every torsion: {page.link('couplings.csv')}.</p>")
+        parts.append("<p class='lead'>The mean of every type; every torsion: "
+                     + ", ".join(page.link(n) for n in matching_files(page.folder, "couplings_*.csv")
+                                 if not n.endswith("_vs_experiment.csv")) + ".</p>")
         table = table[table["level"] == "type"]
     table = table.copy()
     if "j_hz" in table.columns:
         table["J (Hz)"] = [_pm(v, e) for v, e in zip(table["j_hz"], table.get("j_err_hz", [None] * len(table)))]
     cols = [c for c in ("relation", "torsion", "type", "J (Hz)", "j_systematic_hz") if c in table.columns]
     heads = {"j_systematic_hz": "relation's own spread (Hz)"}
-    parts.append(_table(table, cols, [heads.get(c, c) for c in cols], what="couplings", max_rows=MAX_ROWS,
-                        csv="couplings.csv", base=page.base))
-    exp = (info or {}).get("experimental") or {}
-    summ = pd.DataFrame(exp.get("summary", []) or [])
+    parts.append(_table(table, cols, [heads.get(c, c) for c in cols], what="couplings", max_rows=MAX_ROWS))
+    summ = pd.DataFrame([x for info in infos for x in ((info.get("experimental") or {}).get("summary") or [])])
     if len(summ):
         summ["verdict"] = [_verdict(v) for v in summ["verdict"]]
         parts.append("<h3>Against experiment</h3>")
         parts.append(_table(summ, [c for c in ("relation", "verdict", "n_points", "rmsd_hz", "mean_deviation_hz",
                                                "chi_square_per_point", "p_value") if c in summ.columns],
                             raw=("verdict",)))
-    parts.append(_callout("Cautions", (info or {}).get("cautions", []), "caution"))
+    cautions = list(dict.fromkeys(c for info in infos for c in info.get("cautions", [])))
+    parts.append(_callout("Cautions", cautions, "caution"))
     parts.append(_figures_html(figs.get("couplings", [])))
     parts.append("</section>")
     return "".join(parts)

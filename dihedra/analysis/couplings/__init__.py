@@ -2,8 +2,9 @@ r"""Ensemble-averaged 3J couplings (Karplus relations) and their comparison with
 
 :func:`ensemble_couplings` averages one or more Karplus relations over the sampled torsion
 distributions of a tracking result (the fine block histograms, weighted when the run was) and,
-given measured values, compares them; the result's ``save(folder)`` writes couplings.csv,
-couplings_vs_experiment.csv and couplings.json.
+given measured values, compares them; the result's ``save(folder)`` writes the files of each
+relation: ``couplings_<relation>.csv``, ``couplings_<relation>_vs_experiment.csv`` and
+``couplings_<relation>.json`` (so that runs with different relations keep their results apart).
 
 Modules
 -------
@@ -18,8 +19,8 @@ Modules
     Measured couplings: reading them, deviations, chi-square and a verdict per relation.
 """
 
-from .ensemble import (CouplingResult, choose_torsions, couplings_from_histograms, ensemble_couplings,
-                       relation_kernels)
+from .ensemble import (CouplingResult, choose_torsions, coupling_file_names, couplings_from_histograms,
+                       ensemble_couplings, relation_kernels)
 from .experiment import (OUTLIER_Z, P_INCONSISTENT, P_TENSION, VERDICT_RULES, compare_with_experiment,
                          read_experimental)
 from .relations import (APPLIES_TO, BUILTIN_RELATIONS, FORMS, HN_HA_FAMILY, HUGGINS_ELECTRONEGATIVITY,
@@ -28,6 +29,7 @@ from .relations import (APPLIES_TO, BUILTIN_RELATIONS, FORMS, HN_HA_FAMILY, HUGG
 __all__ = [
     "APPLIES_TO", "BUILTIN_RELATIONS", "FORMS", "HN_HA_FAMILY", "HUGGINS_ELECTRONEGATIVITY", "OUTLIER_Z",
     "P_INCONSISTENT", "P_TENSION", "VERDICT_RULES", "CouplingResult", "KarplusRelation", "choose_torsions",
+    "coupling_file_names",
     "compare_with_experiment", "couplings_from_histograms", "ensemble_couplings", "get_relation",
     "read_experimental", "relation_from_toml", "relation_kernels", "substituents_of",
 ]

@@ -29,7 +29,7 @@ phi torsions of residues that carry an amide H and an H-alpha (read from the top
 is left out, and a glycine gets a row for each H-alpha (theta = phi - 60 for the one where
 L-amino acids carry HA, phi + 60 for the other, told apart by the coordinates of the topology)
 and one for their sum. The H-C-C-H relations take torsions whose end atoms are hydrogens. A
-relation with no such torsion in the folder is an error; ``select`` takes other torsions as
+relation with no such torsion in the folder is an error; ``types`` takes other torsions as
 given, with a notice.
 
 Systematic error of the relation, reported separately (``j_systematic_hz``), never mixed into
@@ -181,7 +181,7 @@ def _looks_applicable(relation, torsions_table):
 
 
 def choose_torsions(result, relation, select=None, notices=None):
-    """Positions of the torsions to average: ``select`` (labels or types; taken as given, with a
+    """Positions of the torsions to average: ``select`` (types or labels; taken as given, with a
     notice for those the relation is not meant for), else those the relation applies to; none is
     an error that names the atoms the relation couples."""
     notices = [] if notices is None else notices
@@ -207,7 +207,7 @@ def choose_torsions(result, relation, select=None, notices=None):
                        f"{'a protein phi' if relation.applies_to == 'phi' else 'an H-C-C-H torsion'} "
                        f"(its types are e.g. {', '.join(list(dict.fromkeys(types))[:4])}); track "
                        f"{'them with --torsions protein-backbone' if relation.applies_to == 'phi' else 'the H-C-C-H torsions (--torsions A,B,C,D or a TOML file of named torsions)'}"
-                       ", or --select a torsion to take as one.")
+                       ", or choose a torsion to take as one (--types).")
 
 
 def coupling_rows(result, relation, positions, notices, universe=None):
@@ -415,26 +415,53 @@ class CouplingResult:
     experiment_summary: list | None = None
     parameters: dict = field(default_factory=dict)
 
+    def file_names(self):
+        """The files :meth:`save` writes, per relation (see :func:`coupling_file_names`)."""
+        return [name for r in self.relations for name in coupling_file_names(r["name"], self.experiment is not None)]
+
     def save(self, folder, experimental_path=None):
-        """Write couplings.csv (and, with experimental values, couplings_vs_experiment.csv) and
-        couplings.json into ``folder``; ``experimental_path`` is the file the experimental values
-        came from, recorded in couplings.json. Returns the paths."""
+        """Write the files of every relation into ``folder``: ``couplings_<relation>.csv``, with
+        experimental values ``couplings_<relation>_vs_experiment.csv``, and
+        ``couplings_<relation>.json`` (``experimental_path``, the file the experimental values came
+        from, is recorded there). A run with another relation adds its files beside these; a run
+        with the same relation replaces them. Returns the paths."""
         from ...io.tables import write_json, write_table
 
-        paths = [write_table(self.couplings, folder, "couplings.csv")]
-        info = {"relations": self.relations, "notices": list(self.notices), "method": METHOD,
-                "substituents": {k: [{"delta_chi": d, "xi": x, "atom_index": a} for d, x, a in v]
-                                 for k, v in self.substituents.items()},
-                "cautions": list(CAUTIONS)}
-        if self.experiment is not None:
-            paths.append(write_table(self.experiment, folder, "couplings_vs_experiment.csv"))
-            info["experimental"] = {"file": os.path.abspath(experimental_path) if experimental_path else None,
-                                    "summary": self.experiment_summary, "verdict_rules": VERDICT_RULES}
-        paths.append(write_json(info, folder, "couplings.json"))
+        paths = []
+        for rel in self.relations:
+            table, exp, info_name = coupling_file_names(rel["name"], True)
+            paths.append(write_table(self.couplings[self.couplings["relation"] == rel["name"]], folder, table))
+            info = {"relations": [rel], "notices": list(self.notices), "method": METHOD,
+                    "substituents": {k: [{"delta_chi": d, "xi": x, "atom_index": a} for d, x, a in v]
+                                     for k, v in self.substituents.items()},
+                    "cautions": list(CAUTIONS)}
+            if self.experiment is not None:
+                paths.append(write_table(self.experiment[self.experiment["relation"] == rel["name"]], folder, exp))
+                info["experimental"] = {"file": os.path.abspath(experimental_path) if experimental_path else None,
+                                        "summary": [x for x in self.experiment_summary or []
+                                                    if x.get("relation") == rel["name"]],
+                                        "verdict_rules": VERDICT_RULES}
+            paths.append(write_json(info, folder, info_name))
         return paths
 
 
-def ensemble_couplings(result, relation, *, select=None, experimental=None, universe=None):
+def coupling_file_names(relation, experimental=False):
+    """The files of one relation in a results folder: ``couplings_<relation>.csv``, (with
+    experimental values) ``couplings_<relation>_vs_experiment.csv``, ``couplings_<relation>.json``;
+    the relation's name made safe for a file name.
+
+    Examples
+    --------
+    >>> coupling_file_names("karplus-1959", True)
+    ['couplings_karplus-1959.csv', 'couplings_karplus-1959_vs_experiment.csv', 'couplings_karplus-1959.json']
+    """
+    import re
+
+    stem = "couplings_" + (re.sub(r"[^A-Za-z0-9.+=-]+", "_", str(relation)).strip("_") or "relation")
+    return [f"{stem}.csv"] + ([f"{stem}_vs_experiment.csv"] if experimental else []) + [f"{stem}.json"]
+
+
+def ensemble_couplings(result, relation, *, types=None, experimental=None, universe=None, select=None):
     """Ensemble-averaged couplings of a tracking result for one or more relations, and their
     comparison with experimental values.
 
@@ -446,14 +473,17 @@ def ensemble_couplings(result, relation, *, select=None, experimental=None, univ
     relation : str, KarplusRelation or list of them
         Built-in names, relation TOML files or relations (see
         :func:`~dihedra.analysis.couplings.relations.get_relation`).
-    select : list of str, optional
-        Torsion labels or types to average (default: those each relation is meant for).
+    types : list of str, optional
+        Torsion types or single torsions (labels) to average (default: those each relation is
+        meant for).
     experimental : DataFrame, optional
         Measured couplings with the columns label, j_exp_hz, j_exp_err_hz (as read by
         :func:`~dihedra.analysis.couplings.experiment.read_experimental`).
     universe : MDAnalysis.Universe, optional
         Bonds, elements and coordinates for the Haasnoot-Altona substituents; default the
         topology recorded in the result.
+    select : list of str, optional
+        The former name of ``types`` (still taken; not both).
 
     Returns
     -------
@@ -462,6 +492,11 @@ def ensemble_couplings(result, relation, *, select=None, experimental=None, univ
     from ...trajectory.result import as_result
 
     result = as_result(result)
+    if select is not None and types is not None:
+        raise DihedraError("give the torsions to average as types (select is its former name), not both.")
+    select = types if types is not None else select
+    if isinstance(select, str):
+        select = [select]
     if isinstance(relation, (str, os.PathLike, KarplusRelation)):
         relation = [relation]
     relations = [get_relation(r) for r in relation]
@@ -479,7 +514,7 @@ def ensemble_couplings(result, relation, *, select=None, experimental=None, univ
     points = summary = None
     if experimental is not None:
         points, summary = compare_with_experiment(out, experimental)
-    parameters = {"relations": [r.name for r in relations], "select": None if select is None else list(select),
+    parameters = {"relations": [r.name for r in relations], "types": None if select is None else list(select),
                   "n_experimental": None if experimental is None else len(experimental),
                   "universe_given": universe is not None}
     return CouplingResult(couplings=out, relations=[r.describe() for r in relations], notices=notices,

@@ -78,7 +78,7 @@ tables of their own.
 
 Markov state model
 ------------------
-For each lag ``tau`` (``--lag``, in frames) the reversible maximum-likelihood transition matrix is
+For each lag ``tau`` (``--lag-ps``, a whole number of frames) the reversible maximum-likelihood transition matrix is
 estimated from ``C(tau)`` on its largest strongly connected set, for all torsions at once: the
 estimate solves ``X_ij = (c_ij + c_ji) / (q_i + q_j)`` with ``q_i = c_i / sum_j X_ij`` (Bowman et
 al. 2009; Prinz et al. 2011, eq. 25), found by Newton's method on a convex function of ``ln q``

@@ -34,7 +34,7 @@ from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_
                          check_estimate_options, effective_samples, rebin)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
                        _state_free_energy_stack, state_blocks)
-from .maps import pair_profiles
+from .maps import check_pairs, pair_profiles
 
 #: Energy units a profile can be written in.
 PROFILE_ENERGY_UNITS = ("kJ/mol", "kcal/mol", "kT")
@@ -449,6 +449,7 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     """
     result = as_result(result)
     say = log or (lambda msg: None)
+    check_pairs(result, pairs, pair_bin_width_deg)   # before any work or message
     temperature_k = resolve_temperature(temperature_k, result.summary, say)
     kt = kt_kj_mol(temperature_k)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)

@@ -47,6 +47,21 @@ def _resolve_pairs(result, a, b):
     return out
 
 
+def check_pairs(result, pairs, bin_width_deg=DEFAULT_PAIR_BIN_WIDTH_DEG):
+    """Refuse, before any work, pairs that name no torsions of the result, a result without the
+    angle time series, or a bin width that does not divide 360."""
+    if not pairs:
+        return
+    for pair in pairs:
+        if isinstance(pair, str) or len(pair) != 2:
+            raise DihedraError(f"a pair is two torsion labels or two torsion types; got {pair!r}.")
+        _resolve_pairs(result, *pair)
+    if not result.has_series("angles"):
+        raise DihedraError(f"2-D profiles need the angle time series, and {result.folder or 'this result'} "
+                           "has no angles.parquet; rerun 'dihedra track ... --keep-angles'.")
+    check_bin_width(bin_width_deg, 1.0, "2-D bin width")
+
+
 def pair_profiles(result, a, b, *, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN_WIDTH_DEG,
                   n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED, batch_frames=None, notices=None):
     """Periodic 2-D free-energy profile F(phi_a, phi_b) from ``angles.parquet``, read in chunks.

@@ -1,7 +1,10 @@
 r"""Scan CSV files: reading them (units from the column names or given) and writing them.
 
-Optional leading comment lines ``# key: value`` carry metadata (``kind: rigid|relaxed``,
-``method``, ...); then a header row and one row per point. The angle and energy columns are the
+A scan file is a header row and one row per point, so that ``pandas.read_csv(path)`` reads it as
+it is. Metadata (``kind``: rigid or relaxed, ``method``, ...) go into a sidecar JSON file beside it
+(``scan.csv`` -> ``scan.json``, with ``"content": "dihedra torsion scan"``), which
+:func:`write_scan_csv` writes and :func:`read_scan_csv` reads; files that users bring may carry
+the metadata instead as leading comment lines ``# key: value``, which are read too. The angle and energy columns are the
 first two numeric columns, or the two named by ``columns``. Units are mandatory: either named in
 the column headers (``angle_deg`` / ``angle_rad``; ``energy_kj_mol``, ``energy_kcal_mol``,
 ``energy_hartree``, ``energy_ev``, ``energy_kt``; also ``(deg)``, ``[kcal/mol]`` forms) or given as
@@ -84,6 +87,27 @@ def _settle_unit(path, what, column, from_name, given, canon, hint):
 # Reading and checking scans
 # ----------------------------------------------------------------------------------------------
 
+def sidecar_path(path):
+    """The metadata file of a scan CSV: the same name with ``.json`` (``scan.csv`` -> ``scan.json``)."""
+    stem, ext = os.path.splitext(os.fspath(path))
+    return (stem if ext.lower() == ".csv" else os.fspath(path)) + ".json"
+
+
+def _read_sidecar(path):
+    """The metadata of the sidecar JSON of a scan file that dihedra wrote for it, or {}."""
+    import json
+
+    side = sidecar_path(path)
+    try:
+        with open(side, encoding="utf-8") as fh:
+            doc = json.load(fh)
+    except (OSError, ValueError):
+        return {}
+    if not isinstance(doc, dict) or doc.get("content") != SCAN_CONTENT or doc.get("csv") != os.path.basename(path):
+        return {}
+    return {str(k): v for k, v in doc.items() if k not in ("content", "csv")}
+
+
 def _read_metadata(text):
     meta = {}
     for line in text.splitlines():
@@ -135,7 +159,7 @@ def _column_positions(path, header, data, columns):
     if columns is not None:
         names = [c.strip() for c in (columns.split(",") if isinstance(columns, str) else columns)]
         if len(names) != 2:
-            raise DihedraError(f"--columns takes two column names, angle then energy; got {columns!r}.")
+            raise DihedraError(f"--scan-columns takes two column names, angle then energy; got {columns!r}.")
         missing = [c for c in names if c not in header]
         if missing:
             raise InputFileError(f"scan file {path} has no column {missing[0]!r}; its columns are "
@@ -148,7 +172,7 @@ def _column_positions(path, header, data, columns):
             numeric.append(j)
     if len(numeric) < 2:
         raise InputFileError(f"scan file {path} has {len(numeric)} numeric column(s); an angle and an "
-                             "energy column are needed (name them with --columns).")
+                             "energy column are needed (name them with --scan-columns).")
     return numeric[:2]
 
 
@@ -190,17 +214,18 @@ def read_scan_csv(path, angle_unit=None, energy_unit=None, columns=None, kind=No
     """
     path = os.fspath(path)
     meta, header, data = _read_table(path)
+    meta = {**_read_sidecar(path), **meta}
     idx = _column_positions(path, header, data, columns)
     values = _column_values(path, header, data, idx)
     a_col, e_col = header[idx[0]], header[idx[1]]
     a_unit = _settle_unit(path, "angle", a_col, angle_unit_from_name(a_col), angle_unit, canonical_angle_unit,
-                          "give --angle-unit deg or rad, or name the column e.g. angle_deg")
+                          "give --scan-angle-unit deg or rad, or name the column e.g. angle_deg")
     e_unit = _settle_unit(path, "energy", e_col, energy_unit_from_name(e_col), energy_unit, canonical_energy_unit,
-                          "give --energy-unit kJ/mol, kcal/mol, hartree, eV or kT, or name the column e.g. "
+                          "give --scan-energy-unit kJ/mol, kcal/mol, hartree, eV or kT, or name the column e.g. "
                           "energy_kcal_mol")
     angles = values[:, 0] if a_unit == "deg" else np.degrees(values[:, 0])
     energies = to_kj_mol(values[:, 1], e_unit, temperature_k)
-    kind = kind or meta.get("kind") or "unspecified"
+    kind = kind or str(meta.get("kind") or "unspecified")
     one_of("scan kind", kind, ("rigid", "relaxed", "unspecified"))
     meta.update({"angle_column": a_col, "energy_column": e_col, "angle_unit": a_unit, "energy_unit": e_unit})
     return scan_from_points(angles, energies, kind=kind, source=os.path.abspath(path), metadata=meta)
@@ -210,42 +235,56 @@ def read_scan(path, angle_unit=None, energy_unit=None, columns=None, kind=None, 
     """A scan from a ``.toml`` parameter file or a CSV table (see :func:`read_scan_csv`)."""
     if str(path).lower().endswith(".toml"):
         if angle_unit is not None or energy_unit is not None or columns is not None:
-            raise DihedraError(f"{path} is a parameter file: its units are inside it; drop --angle-unit, "
-                               "--energy-unit and --columns.")
+            raise DihedraError(f"{path} is a parameter file: its units are inside it; drop --scan-angle-unit, "
+                               "--scan-energy-unit and --scan-columns.")
         return read_parameter_toml(path, temperature_k)
     return read_scan_csv(path, angle_unit, energy_unit, columns, kind, temperature_k)
 
 
-#: The first line of a scan file that dihedra wrote (only such a file is replaced).
+#: What the sidecar JSON of a scan file that dihedra wrote says it holds.
+SCAN_CONTENT = "dihedra torsion scan"
+#: The first line of a scan file that an older dihedra wrote (metadata as comment lines).
 SCAN_SIGNATURE = "# content: dihedra torsion scan"
 
 
-def check_scan_output(path, overwrite=False, inputs=()):
-    """Check a scan file to be written: an existing file is replaced only with ``overwrite`` and
-    only when it is a scan dihedra wrote; returns the absolute path."""
-    from ...io.outputs import check_single_file, file_head_contains
+def _is_our_scan(path):
+    """A scan file dihedra wrote: its sidecar JSON names it, or (older) its first line is the signature."""
+    from ...io.outputs import file_head_contains
 
-    return check_single_file(path, inputs=inputs, overwrite=overwrite, kind="dihedra scan",
-                             ours=lambda p: file_head_contains(p, SCAN_SIGNATURE, limit=len(SCAN_SIGNATURE)))
+    return bool(_read_sidecar(path)) or file_head_contains(path, SCAN_SIGNATURE, limit=len(SCAN_SIGNATURE))
+
+
+def check_scan_output(path, overwrite=False, inputs=()):
+    """Check a scan file (and its sidecar JSON) to be written: an existing file is replaced only
+    with ``overwrite`` and only when it is a scan dihedra wrote; returns the absolute path."""
+    from ...io.outputs import check_single_file
+
+    path = check_single_file(path, inputs=inputs, overwrite=overwrite, kind="dihedra scan", ours=_is_our_scan)
+    side = sidecar_path(path)
+    if os.path.exists(side) and not (overwrite and _is_our_scan(path)):
+        check_single_file(side, inputs=inputs, overwrite=False, kind="scan metadata",
+                          ours=lambda p: bool(_read_sidecar(path)))
+    return path
 
 
 def write_scan_csv(scan, path, extra=None, overwrite=False):
-    """Write a scan as CSV with ``# key: value`` metadata lines (readable by :func:`read_scan_csv`).
+    """Write a scan as a plain CSV table (``pandas.read_csv`` reads it) and its metadata into the
+    sidecar JSON beside it (:func:`sidecar_path`); :func:`read_scan_csv` reads both.
 
     An existing file is replaced only with ``overwrite`` and only when it is a scan that dihedra
-    wrote (see :func:`check_scan_output`)."""
+    wrote (see :func:`check_scan_output`). Returns the path of the CSV file."""
+    import json
+
     from ...io.outputs import write_file
 
     path = check_scan_output(path, overwrite=overwrite)
-
-    meta = {"content": "dihedra torsion scan", "kind": scan.kind}
+    meta = {"content": SCAN_CONTENT, "csv": os.path.basename(path), "kind": scan.kind}
     meta.update({k: v for k, v in scan.metadata.items() if k not in ("reached_angle_deg", "kind")})
     meta.update(extra or {})
     meta["energies"] = "kJ/mol, relative to the lowest point"
     meta["created"] = time.strftime("%Y-%m-%dT%H:%M:%S%z")
     reached = scan.metadata.get("reached_angle_deg", {})
-    lines = [f"# {k}: {v}" for k, v in meta.items()]
-    lines.append("angle_deg,energy_kj_mol" + (",reached_angle_deg" if reached else ""))
+    lines = ["angle_deg,energy_kj_mol" + (",reached_angle_deg" if reached else "")]
     for x, e in zip(scan.angle_deg, scan.energy_kj_mol):
         row = f"{x:g},{e:.6f}"
         if reached:
@@ -257,4 +296,11 @@ def write_scan_csv(scan, path, extra=None, overwrite=False):
         with open(tmp, "w") as fh:
             fh.write("\n".join(lines) + "\n")
 
-    return write_file(folder, name, write, marked=False)
+    def write_meta(tmp):
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(meta, fh, indent=1, default=str)
+            fh.write("\n")
+
+    out = write_file(folder, name, write, marked=False)
+    write_file(folder, os.path.basename(sidecar_path(path)), write_meta, marked=False)
+    return out

@@ -77,7 +77,7 @@ TORSION_SYMBOLS = {"phi": r"\varphi", "psi": r"\psi", "omega": r"\omega", "alpha
 
 
 def torsion_symbol(name=None):
-    """The symbol of a torsion type or label in mathtext: the biopolymer name after the colon
+    r"""The symbol of a torsion type or label in mathtext: the biopolymer name after the colon
     (``ALA:psi`` -> ψ, ``ARG12:chi2`` -> χ2, ``DA:nu0`` -> ν0, ``DG3:epsilon`` -> ε), φ for
     every other torsion (``HEX:C1-C2-C3-C4``).
 

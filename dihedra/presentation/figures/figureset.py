@@ -17,7 +17,7 @@ import pandas as pd
 from ...errors import DihedraError, one_of
 from ...io.outputs import write_file
 from ...io.series import ParquetSeries
-from ...io.tables import read_optional_table as read_optional
+from ...io.tables import matching_files, read_optional_table as read_optional
 from .convergence import plot_convergence
 from .couplings import plot_couplings
 from .kinetics import plot_lifetimes, plot_transition_diagram
@@ -86,7 +86,7 @@ class _Builder:
         self.say(f"skipped {what}: {why}")
 
 
-def figure_set(folder, width="single", torsions=None, types=None, max_types=4, max_series=3, log=None):
+def figure_set(folder, width="single", types=None, max_types=4, max_series=3, log=None):
     """Build every figure the results folder has data for.
 
     Parameters
@@ -96,13 +96,12 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     width : {"single", "double"}
         Journal width of the figures (3.35 or 7 inches); the square ones (2-D maps, couplings)
         are always one column wide.
-    torsions : list of str, optional
-        Torsion labels for the time-series figures (default: of each of up to ``max_series``
-        chosen types the torsion whose states change most) and the raster rows (default: the
-        torsions of the chosen types, all when none are chosen).
     types : list of str, optional
-        Types for the per-type figures (default: the ``max_types`` most informative ones, see
-        :mod:`~dihedra.presentation.figures.choice`).
+        Torsion types for the per-type figures, or single torsions by their label (their type's
+        figures, and their own angle series). The angle series show the torsions named, else of
+        each of up to ``max_series`` types the torsion whose states change most; the raster shows
+        the torsions of the chosen types. Default: the ``max_types`` most informative types (see
+        :mod:`~dihedra.presentation.figures.choice`) and every torsion in the raster.
     log : callable, optional
         Receives one-line notes on what is skipped and why.
 
@@ -115,10 +114,10 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     say = log or (lambda msg: None)
     result = load_results(folder)
     b = _Builder(result, _width_in(width), say)
-    chosen_types, series_torsions = _choose(result, torsions, types, max_types, max_series, say)
-    _add_angle_series(b, series_torsions[:max(max_series, len(torsions or []))])
-    rows = torsions or ([lab for lab, t in zip(result.torsion_set.labels, result.torsion_set.types)
-                         if t in set(types)] if types else None)
+    chosen_types, series_torsions = _choose(result, types, max_types, max_series, say)
+    _add_angle_series(b, series_torsions)
+    rows = ([lab for lab, t in zip(result.torsion_set.labels, result.torsion_set.types) if t in set(chosen_types)]
+            if types else None)
     _add_state_raster(b, rows)
     _add_profiles(b, chosen_types)
     _add_populations(b, chosen_types)
@@ -130,44 +129,42 @@ def figure_set(folder, width="single", torsions=None, types=None, max_types=4, m
     return b.out
 
 
-def _choose(result, torsions, types, max_types, max_series, say):
-    """Check the chosen torsions and types; returns the types of the per-type figures and the
-    torsions of the time-series figures (without a choice: the informative types of
-    :mod:`~dihedra.presentation.figures.choice` and the torsion of each whose states change most)."""
-    folder = result.folder
+def _choose(result, names, max_types, max_series, say):
+    """The types of the per-type figures and the torsions of the time-series figures: ``names``
+    are types or torsion labels (checked); without them the informative types of
+    :mod:`~dihedra.presentation.figures.choice` and the torsion of each whose states change most."""
     all_types = list(dict.fromkeys(result.torsion_set.types))
     labels = list(result.torsion_set.labels)
-    if torsions:
-        unknown = [t for t in torsions if t not in labels]
-        if unknown:
-            raise DihedraError(f"no torsion {unknown[0]!r} in {folder}; labels look like "
-                               f"{', '.join(labels[:3])} (see torsions.csv).")
-    check_types(types, all_types, folder)
-    if types:
-        chosen_types = [t for t in all_types if t in set(types)]
+    type_of = dict(zip(labels, result.torsion_set.types))
+    names = [names] if isinstance(names, str) else list(names or [])
+    check_types([n for n in names if n not in type_of], all_types, result.folder, labels)
+    singles = [n for n in names if n in type_of and n not in set(all_types)]
+    if names:
+        wanted = {n for n in names if n in set(all_types)} | {type_of[n] for n in singles}
+        chosen_types = [t for t in all_types if t in wanted]
     else:
         picked = set(informative_types(result.populations_by_type, max_types) or all_types[:max_types])
         chosen_types = [t for t in all_types if t in picked]   # in the folder's order
         if len(all_types) > max_types:
             say(f"note: per-type figures for {len(chosen_types)} of {len(all_types)} types, {CHOICE_RULE} "
                 "(choose with --types)")
-    if torsions:
-        series_torsions = list(torsions)
-    else:
-        by_type = {}
-        for lab, t in zip(labels, result.torsion_set.types):
-            by_type.setdefault(t, []).append(lab)
-        series_torsions = [representative_torsion(result.populations, t, by_type[t])
-                           for t in chosen_types[:max_series]]
-    return chosen_types, series_torsions
+    by_type = {}
+    for lab, t in zip(labels, result.torsion_set.types):
+        by_type.setdefault(t, []).append(lab)
+    typed = [t for t in chosen_types if t not in {type_of[x] for x in singles}]
+    series = singles + [representative_torsion(result.populations, t, by_type[t])
+                        for t in typed[:max(0, max_series - len(singles))]]
+    return chosen_types, series
 
 
-def check_types(types, all_types, folder):
-    """Every chosen type must be one of the folder's (a clear error naming some of them)."""
+def check_types(types, all_types, folder, labels=None):
+    """Every chosen type must be one of the folder's (a clear error naming some of them; ``labels``:
+    torsion labels are taken too)."""
     unknown = [t for t in (types or []) if t not in set(all_types)]
     if unknown:
+        also = f"; torsion labels look like {', '.join(labels[:2])}" if labels else ""
         raise DihedraError(f"no torsion type {unknown[0]!r} in {folder}; its types are "
-                           f"{', '.join(all_types[:6])}" + (" ..." if len(all_types) > 6 else "")
+                           f"{', '.join(all_types[:6])}" + (" ..." if len(all_types) > 6 else "") + also
                            + " (see torsions.csv).")
 
 
@@ -293,11 +290,14 @@ def _add_convergence(b, chosen_types):
 
 def _add_couplings(b):
     """9. Couplings against experiment (rows with a prediction)."""
-    couplings = read_optional(b.folder, "couplings_vs_experiment.csv")
+    names = (matching_files(b.folder, "couplings_*_vs_experiment.csv")
+             or matching_files(b.folder, "couplings_vs_experiment.csv"))   # per relation, or one file (older)
+    frames = [f for f in (read_optional(b.folder, n) for n in names) if f is not None]
+    couplings = pd.concat(frames, ignore_index=True) if frames else None
     if couplings is not None and "j_hz" in couplings.columns:
         couplings = couplings[np.isfinite(pd.to_numeric(couplings["j_hz"], errors="coerce"))]
     if couplings is None or not len(couplings):
-        b.skip("couplings", "no couplings_vs_experiment.csv (run 'dihedra couplings --experimental FILE')")
+        b.skip("couplings", "no couplings against experiment (run 'dihedra couplings --experimental FILE')")
         return
     fig = _figure(min(b.width_in, SINGLE_COLUMN_IN), 3.3)
     plot_couplings(couplings, ax=fig.add_subplot())
@@ -334,9 +334,9 @@ def _add_refit(b):
                  if untrusted else ""), fig, "refit")
 
 
-def write_figures(folder, formats=("pdf", "png"), width="single", torsions=None, types=None, out_dir=None,
-                  log=None):
-    """Write every figure the folder has data for into ``out_dir`` (default ``folder/figures``).
+def write_figures(folder, formats=("pdf", "png"), width="single", types=None, out_dir=None, log=None):
+    """Write every figure the folder has data for into ``out_dir`` (default ``folder/figures``);
+    ``types``: torsion types or labels (see :func:`figure_set`).
 
     Returns
     -------
@@ -348,7 +348,7 @@ def write_figures(folder, formats=("pdf", "png"), width="single", torsions=None,
     base, sub = (os.fspath(folder), "figures/") if out_dir is None else (os.fspath(out_dir), "")
     paths = []
     with style():
-        fset = figure_set(folder, width=width, torsions=torsions, types=types, log=log)
+        fset = figure_set(folder, width=width, types=types, log=log)
         os.makedirs(base, exist_ok=True)
         for item in fset.items:
             for f in fmts:
