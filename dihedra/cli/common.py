@@ -68,7 +68,7 @@ def add_types_option(parser, what, former=()):
     reads a results folder: ``what`` is its help (say whether a torsion label chooses one torsion);
     it is repeatable. ``former`` are older names of the option, still taken with a note."""
     parser.add_argument("--types", nargs="+", action=_Extend, default=None, metavar="TYPE", dest="types",
-                        help=what + " (names as in torsions.csv; several after one --types, or --types again)")
+                        help=what + "; names as in torsions.csv, repeatable")
     for old in former:
         add_renamed(parser, old, "--types", "types", nargs="+", action=_Extend)
 
