@@ -211,7 +211,15 @@ def test_profile_command(rb_synthetic, capsys):
     out = capsys.readouterr().out
     assert status == 0 and "kernel bandwidth" in out and "barrier" in out
     assert os.path.exists(os.path.join(rb_synthetic.folder, "profiles_2d.csv"))
-    assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--bin-width", "7"]) == 2
+    assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--bin-width", "7", "--overwrite"]) == 2
+    assert "7" in capsys.readouterr().err
+    # a pair that names no torsion is refused before any work or message about reading the angles
+    before = os.path.getmtime(os.path.join(rb_synthetic.folder, "profiles.csv"))
+    assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--overwrite", "--pair",
+                 rb_synthetic.torsion_set.labels[0], "NOPE:x"]) == 2
+    err = capsys.readouterr().err
+    assert "'NOPE:x' is neither a torsion label nor a torsion type" in err and "reading" not in err
+    assert os.path.getmtime(os.path.join(rb_synthetic.folder, "profiles.csv")) == before
 
 
 def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):

@@ -111,6 +111,14 @@ def test_steps_order_arrays_of_tables_and_dry_run(tmp_path, capsys):
     # without steps, the tables run in the documented order whatever the file order
     toml = write(tmp_path / "q.toml", 'out = "res"\n[report]\n[figures]\n[profile]\n')
     assert [s.name for s in load_pipeline(toml).steps] == ["profile", "figures", "report"]
+    # the types chosen for the figures are the report's too, unless [report] chooses its own
+    toml = write(tmp_path / "r.toml", 'out = "res"\n[figures]\ntypes = ["A:phi"]\n[report]\n')
+    notes = []
+    report = load_pipeline(toml, log=notes.append).steps[-1]
+    assert report.name == "report" and report.arguments["types"] == ["A:phi"]
+    assert any("[report] shows the types of [figures]" in n for n in notes)
+    toml = write(tmp_path / "s.toml", 'out = "res"\n[figures]\ntypes = ["A:phi"]\n[report]\ntypes = ["B:psi"]\n')
+    assert load_pipeline(toml).steps[-1].arguments["types"] == ["B:psi"]
 
 
 def test_run_executes_the_steps_and_copies_the_file_into_the_results_folder(tmp_path, monkeypatch, capsys):

@@ -51,7 +51,8 @@ def _convergence(page, figs):
     rows["population_err_max"] = [format_plain(x, 2) for x in shown["population_err_max"]]
     parts.append(_table(rows, ["type", "verdict", "start", "replicas", "population_err_max", "forecast"],
                         ["type", "verdict", "unequilibrated until", "replicas", "largest population error",
-                         "to reach the target"], raw=("verdict", "replicas"), what="types", wrap=("forecast",)))
+                         "to reach the target"], raw=("verdict", "replicas"), what="types", wrap=("forecast",),
+                        classes={"population_err_max": "num"}))
     reasons = [(t, v.split(": ", 1)[1]) for t, v in zip(shown["type"], shown["verdict"]) if v != "converged"]
     if reasons:
         parts.append("<h3>Why not converged</h3><ul class='note-list'>" + "".join(
