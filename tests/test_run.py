@@ -105,7 +105,7 @@ def test_steps_order_arrays_of_tables_and_dry_run(tmp_path, capsys):
     assert pipe.steps[2].arguments["types"] == ["all"]
     assert main(["run", toml, "--dry-run"]) == 0
     captured = capsys.readouterr()
-    assert captured.out.splitlines()[0] == "dihedra.presentation.report.write_report(result, )"
+    assert captured.out.splitlines()[0] == "dihedra.presentation.report.write_report(result)"
     assert captured.out.splitlines()[1].startswith("dihedra.compare_with_scan(result, scan=")
     assert "table [kinetics] is not listed in steps" in captured.err
     # without steps, the tables run in the documented order whatever the file order

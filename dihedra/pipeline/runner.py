@@ -38,9 +38,9 @@ class Step:
 
     def call(self):
         """The API call as text (for --dry-run and the record)."""
-        given = ", ".join(f"{k}={v!r}" for k, v in self.arguments.items())
-        head = "" if self.spec.creates_folder or self.name == "scan" else "result, "
-        return f"{self.spec.call}({head}{given})"
+        given = [f"{k}={v!r}" for k, v in self.arguments.items()]
+        head = [] if self.spec.creates_folder or self.name == "scan" else ["result"]
+        return f"{self.spec.call}({', '.join(head + given)})"
 
 
 @dataclass

@@ -280,24 +280,28 @@ def _raster_rows(ax, raster):
         ax.spines[side].set_visible(False)
 
 
+_ROUND_STEPS = (1, 2, 5, 10, 20, 25, 50, 100, 200, 250, 500, 1000, 2000, 5000)
+
+
 def _residue_ticks(ax, raster, runs, min_spacing_pt=8.0):
-    """Residue numbers along the right edge: round numbers, as many as fit without touching."""
+    """Residue numbers along the right edge: round numbers, in each group as many as fit in its
+    height without touching."""
     res = raster.row_residues
     if not res or any(r is None for r in res) or raster.grouping != "name":
         return
     height_pt = ax.figure.get_figheight() * 72.0 * ax.get_position().height * 0.8
-    fit = max(2, int(height_pt / min_spacing_pt))
-    span = max((max(res[a:b + 1]) - min(res[a:b + 1]) + 1) for _, a, b in runs)
-    step = next((s for s in (1, 2, 5, 10, 20, 25, 50, 100, 200, 250, 500, 1000, 2000, 5000)
-                 if len(runs) * span / s <= fit), 10000)
+    n_rows = len(res)
     ticks, labels = [], []
     for _, a, b in runs:
-        seen = set()
-        for k in range(a, b + 1):
-            if res[k] % step == 0 and res[k] not in seen and (b - a) > 2:
-                seen.add(res[k])
-                ticks.append(k)
-                labels.append(str(res[k]))
+        if b - a <= 2:
+            continue
+        fit = max(1, int(height_pt * (b - a + 1) / n_rows / min_spacing_pt))
+        span = max(res[a:b + 1]) - min(res[a:b + 1]) + 1
+        step = next((s for s in _ROUND_STEPS if span / s <= fit), 10000)
+        for mark in range(-(-min(res[a:b + 1]) // step) * step, max(res[a:b + 1]) + 1, step):
+            k = next(k for k in range(a, b + 1) if res[k] >= mark)  # the first residue from it
+            ticks.append(k)
+            labels.append(str(res[k]))
     if not ticks:
         return
     right = ax.secondary_yaxis("right")
