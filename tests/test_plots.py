@@ -643,3 +643,17 @@ def test_a_folder_of_umbrella_windows_gets_no_convergence_figure(track_only_fold
     assert ax.get_xlabel() == "frame"  # a zero time step is no time step: frames instead
     xs = np.concatenate([ln.get_xdata() for ln in ax.get_lines() if ln.get_marker() == "o"])
     assert xs.max() > 100  # drawn against frame numbers, not all at t = 0
+
+
+def test_thin_raster_groups_share_one_label():
+    # groups a few rows high among hundreds (a protein's chi4 and chi5) get one joint label at
+    # the centre of their rows instead of labels drawn over each other
+    from dihedra.presentation.figures.raster import _joined_labels
+
+    ax = new_ax()
+    runs = [("phi", 0, 499), ("chi4", 500, 502), ("chi5", 503, 504)]
+    ticks, labels = _joined_labels(ax, runs, ["φ", "χ4", "χ5"], n_rows=505)
+    assert labels == ["φ", "χ4, χ5"]
+    assert ticks == [249.5, 502.0]
+    wide = [("phi", 0, 9), ("psi", 10, 19)]  # groups high enough keep their own labels
+    assert _joined_labels(ax, wide, ["φ", "ψ"], n_rows=20) == ([4.5, 14.5], ["φ", "ψ"])

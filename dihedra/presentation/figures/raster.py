@@ -261,11 +261,13 @@ def _raster_rows(ax, raster):
         ax.set_yticklabels(raster.rows, fontsize=5.5 if n_rows > 12 else 6.0)
         ax.set_ylabel("torsion")
     elif len(runs) <= 16:
-        ax.set_yticks([(a + b) / 2 for _, a, b in runs])
         if raster.grouping == "name":
-            ax.set_yticklabels([torsion_symbol(g) for g, _, _ in runs], fontsize=8.0)
+            ticks, labels = _joined_labels(ax, runs, [torsion_symbol(g) for g, _, _ in runs], n_rows)
+            ax.set_yticks(ticks)
+            ax.set_yticklabels(labels, fontsize=8.0)
             ax.set_ylabel("torsion")
         else:
+            ax.set_yticks([(a + b) / 2 for _, a, b in runs])
             ax.set_yticklabels([_wrap(ax, t, 40) for t, _, _ in runs], fontsize=5.5)
             ax.set_ylabel("torsion type")
         _residue_ticks(ax, raster, runs)
@@ -278,6 +280,22 @@ def _raster_rows(ax, raster):
     ax.tick_params(axis="y", length=0)
     for side in ("left", "bottom"):
         ax.spines[side].set_visible(False)
+
+
+def _joined_labels(ax, runs, names, n_rows, min_height_pt=9.0):
+    """Labels of the row groups at their centres; neighbouring groups too thin for a label of
+    their own share one ("χ4, χ5") at the centre of their rows."""
+    height_pt = ax.figure.get_figheight() * 72.0 * ax.get_position().height
+    thin = [(b - a + 1) * height_pt / n_rows < min_height_pt for _, a, b in runs]
+    ticks, labels, k = [], [], 0
+    while k < len(runs):
+        j = k
+        while thin[k] and j + 1 < len(runs) and thin[j + 1]:
+            j += 1
+        ticks.append((runs[k][1] + runs[j][2]) / 2)
+        labels.append(", ".join(names[k:j + 1]))
+        k = j + 1
+    return ticks, labels
 
 
 _ROUND_STEPS = (1, 2, 5, 10, 20, 25, 50, 100, 200, 250, 500, 1000, 2000, 5000)
