@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .._version import __version__
+from ..errors import DihedraError
 from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, heterogeneity_notice,
                                     pool_by_type, replica_populations, torsion_populations)
 from .conformer_counts import conformer_layout, dense_conformers, reduce_conformer_rows
@@ -260,8 +261,8 @@ def pass_threads(threads, backend):
         except AttributeError:   # not on Linux
             cores = os.cpu_count() or 1
         return 2 if cores >= 2 else 1
-    if int(threads) not in (1, 2):
-        raise ValueError(f"threads must be 1 or 2; got {threads!r}")
+    if threads not in (1, 2) or isinstance(threads, bool):
+        raise DihedraError(f"threads must be 1 or 2; got {threads!r}.")
     return int(threads)
 
 
