@@ -330,13 +330,13 @@ def cases():
                              ("2 processes", ["--workers", "2"]), ("dask, 2 processes", ["--workers", "2",
                                                                                            "--backend", "dask"])]:
             for k in range(3):
-                after = rng.uniform(1.5, 7.0)
-                c.append(Case(f"{signal.Signals(sig).name} after {after:.1f} s, {label}, --overwrite of an old "
-                              f"folder (#{k + 1})",
-                              ["track", "hexane.pdb", "long.xtc", "long.xtc", "long.xtc", "--torsions", "rotatable",
+                after = rng.uniform(0.0, 4.0)
+                c.append(Case(f"{signal.Signals(sig).name} {after:.1f} s into a run ({label}), --overwrite of an "
+                              f"old folder (#{k + 1})",
+                              ["track", "hexane.pdb", *["long.xtc"] * 12, "--torsions", "rotatable",
                                "--keep-angles", "--out", "res", "--overwrite", *extra],
                               expect="interrupt", setup=lambda fx, d: copy_in(fx, d, "hexane.pdb", "long.xtc", "res"),
-                              signal_after=(sig, after), max_seconds=after + 10))
+                              output="res", signal_after=(sig, after), max_seconds=60))
     return c
 
 
@@ -428,21 +428,27 @@ def run_case(case, fx, work):
     t0 = time.time()
     proc = subprocess.Popen([sys.executable, "-m", "dihedra", *case.argv], cwd=d, env=env, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True, preexec_fn=_limit(limit))
-    if case.signal_after:
+    head = ""
+    if case.signal_after:   # the signal comes a random time after the run has started its first replica
         sig, after = case.signal_after
-        try:
-            proc.wait(after)
-        except subprocess.TimeoutExpired:
+        while True:
+            line = proc.stderr.readline()
+            head += line
+            if not line or line.startswith("replica 1/"):
+                break
+        time.sleep(after)
+        if proc.poll() is None:
             proc.send_signal(sig)
     try:
         stdout, stderr = proc.communicate(timeout=case.max_seconds or TIMEOUT_S)
+        stderr = head + stderr
     except subprocess.TimeoutExpired:
         os.killpg(proc.pid, signal.SIGKILL)
         stdout, stderr = proc.communicate()
         stderr += "\n[killed: timeout]"
     seconds = time.time() - t0
     outcome, why = classify(case, proc.returncode, stdout, stderr, seconds)
-    lost = lost_files(case, d, before)
+    lost = lost_files(case, d, before, finished=proc.returncode == 0)
     if case.check and outcome == "as expected" and not lost:
         problem = case.check(d, stderr) if case.check is check_no_track else case.check(d)
         if problem:
@@ -484,15 +490,15 @@ def classify(case, rc, stdout, stderr, seconds):
     return "as expected", ""
 
 
-def lost_files(case, d, before):
+def lost_files(case, d, before, finished):
+    """Files of the case folder that changed (or went away), but the case's own output (which a
+    finished run may replace), and staging folders left behind."""
     after = snapshot(d)
     lost = []
     for rel, digest in before.items():
         if after.get(rel) != digest:
-            mine = case.output and (rel == case.output or rel.startswith(case.output + os.sep))
-            changed_ok = mine or (case.expect == "interrupt" and rel.startswith("res" + os.sep)
-                                  and False)
-            if not changed_ok:
+            mine = finished and case.output and (rel == case.output or rel.startswith(case.output + os.sep))
+            if not mine:
                 lost.append(rel)
     for root, dirs, files in os.walk(d):
         for name in dirs:
@@ -516,7 +522,8 @@ def main(argv=None):
             r = run_case(case, fx, os.path.join(work, "cases"))
             results.append(r)
             mark = {True: "ok  ", False: "FAIL", None: "skip"}[r["clean"]]
-            extra = "" if r["clean"] in (True, None) else f"  [{r['outcome']}: {r.get('why')}; lost {r.get('lost')}]"
+            extra = "" if r["clean"] in (True, None) else (f"  [{r['outcome']}: {r.get('why')}; lost "
+                                                           f"{r.get('lost')[:3]}; {r.get('stderr_tail')}]")
             print(f"{mark} {r['name']} ({r.get('seconds', 0)} s){extra}", flush=True)
         tried = [r for r in results if r["clean"] is not None]
         counts = {

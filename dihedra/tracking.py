@@ -492,6 +492,9 @@ def _run_pass(tp, traj, frames, backend, n_workers, progress, r, n_replicas):
                           progressbar_kwargs={"desc": f"replica {r + 1}/{n_replicas}", "leave": True}
                           if progress else None)
     else:
+        if backend in ("multiprocessing", "dask"):   # these stop their workers at once on an interrupt
+            from .trajectory.distributed import LocalDaskBackend, LocalProcessBackend
+            backend = (LocalProcessBackend if backend == "multiprocessing" else LocalDaskBackend)(n_workers)
         run_kwargs.update(backend=backend, n_workers=None if not isinstance(backend, str) else n_workers,
                           unsupported_backend=not isinstance(backend, str))
     try:

@@ -2,14 +2,20 @@
 
 Each subcommand lives in its own module of this package with ``register(subparsers)``; modules are
 discovered by name, so adding a subcommand never edits this file. User errors
-(:class:`dihedra.errors.DihedraError`) print as one line without a traceback and exit with 2.
+(:class:`dihedra.errors.DihedraError`) and failures of the system (a full disk, a read-only
+folder: any ``OSError``) print as one line without a traceback and exit with 2. Ctrl-C (SIGINT)
+and SIGTERM stop a command at any point along the same path: the run's threads and worker
+processes are stopped, its staging folder removed, and one line is printed (exit 130 or 143).
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
+import os
 import pkgutil
+import signal
 import sys
 import warnings
 
@@ -48,15 +54,78 @@ def main(argv=None):
         return 0
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", module="MDAnalysis")
-    try:
-        status = args.func(args)
-    except DihedraError as exc:
-        print(f"dihedra: error: {exc}", file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        print("dihedra: interrupted; no results folder was written.", file=sys.stderr)
-        return 130
+    with stop_signals(restore=argv is not None) as received:
+        try:
+            status = args.func(args)
+        except DihedraError as exc:
+            return _error(str(exc))
+        except OSError as exc:   # a full disk, a read-only folder, a file that went away
+            return _error(describe_os_error(exc))
+        except KeyboardInterrupt:
+            name = signal.Signals(received[0]).name if received else "SIGINT"
+            print(f"dihedra: interrupted ({name}); stopped (a results folder being made was removed).",
+                  file=sys.stderr)
+            return 128 + (received[0] if received else signal.SIGINT)
     return 0 if status is None else int(status)
+
+
+def _error(text):
+    print(f"dihedra: error: {text}", file=sys.stderr)
+    sys.stderr.flush()
+    return 2
+
+
+def describe_os_error(exc):
+    """One sentence for an ``OSError`` of the system: what failed, where, and what to do."""
+    import errno
+
+    where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+    reason = exc.strerror or str(exc) or type(exc).__name__
+    hints = {errno.ENOSPC: "free some space or write elsewhere", errno.EDQUOT: "free some space or write elsewhere",
+             errno.EROFS: "the folder is on a read-only file system: write elsewhere",
+             errno.EACCES: "check the permissions, or write elsewhere",
+             errno.EPERM: "check the permissions, or write elsewhere",
+             errno.EFBIG: "the file is larger than this process may write"}
+    hint = hints.get(exc.errno, "check the file and the disk")
+    return f"{reason}{where}; {hint}."
+
+
+class _Interrupted(KeyboardInterrupt):
+    """SIGTERM, raised as Ctrl-C is, so that one path cleans up after both."""
+
+
+@contextlib.contextmanager
+def stop_signals(restore=True):
+    """SIGINT and SIGTERM raise ``KeyboardInterrupt`` in this process (the signal's number is
+    appended to the list yielded); the first one only: later signals arrive while the run cleans
+    up, which takes a second or two, and are ignored. A worker process forked from this one
+    (multiprocessing) ends at once and quietly on either signal: this process removes what it
+    wrote. Outside the main thread (dihedra called from a thread of another program), nothing
+    changes. At the end the previous handlers come back, or with ``restore=False`` (the command
+    line of this process: its work is done, its exit status stands) both signals are ignored
+    while the interpreter shuts down."""
+    import threading
+
+    received = []
+    if threading.current_thread() is not threading.main_thread():
+        yield received
+        return
+    me = os.getpid()
+
+    def handler(signum, frame):
+        if os.getpid() != me:
+            os._exit(128 + signum)
+        if received:
+            return
+        received.append(signum)
+        raise _Interrupted() if signum == signal.SIGTERM else KeyboardInterrupt()
+
+    previous = {sig: signal.signal(sig, handler) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield received
+    finally:
+        for sig, old in previous.items():
+            signal.signal(sig, old if restore else signal.SIG_IGN)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -33,8 +33,9 @@ nodes) is used with ``dihedra track ... --scheduler tcp://node01:8786``, or from
 from __future__ import annotations
 
 import pickle
+import socket
 
-from MDAnalysis.analysis.backends import BackendBase
+from MDAnalysis.analysis.backends import BackendBase, BackendDask, BackendMultiprocessing
 
 from ..errors import DihedraError
 
@@ -62,6 +63,7 @@ def connect(scheduler, timeout_s=30):
     if isinstance(scheduler, distributed.Client):
         return scheduler, False
     address = str(scheduler)
+    _probe(address)
     try:
         client = distributed.Client(address, timeout=timeout_s, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
@@ -69,6 +71,88 @@ def connect(scheduler, timeout_s=30):
                            "'dask scheduler' (and workers with 'dask worker ADDRESS'), and give its "
                            "address, e.g. tcp://host:8786.") from None
     return client, True
+
+
+def _probe(address, timeout_s=3.0):
+    """Fail at once (one clear error) when nothing listens at a ``tcp://host:port`` address,
+    instead of letting a client retry for its whole timeout."""
+    rest = address.split("://", 1)[1] if "://" in address else address
+    if "://" in address and not address.startswith("tcp://"):
+        return   # tls://, ucx://, inproc://: the client's own connection decides
+    host, _, port = rest.rstrip("/").rpartition(":")
+    if not host or not port.isdigit():
+        raise DihedraError(f"the scheduler address {address!r} is not of the form tcp://host:port.")
+    try:
+        with socket.create_connection((host.strip("[]"), int(port)), timeout=timeout_s):
+            pass
+    except OSError as exc:
+        raise DihedraError(f"cannot reach a dask scheduler at {address!r} ({exc.strerror or exc}); start one with "
+                           "'dask scheduler' (and workers with 'dask worker ADDRESS'), and give its address, e.g. "
+                           "tcp://host:8786.") from None
+
+
+def _ignore_interrupts():
+    """In a worker process: Ctrl-C at the terminal reaches the whole process group; the parent
+    stops the workers itself (no traceback from each of them)."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+class LocalProcessBackend(BackendMultiprocessing):
+    """MDAnalysis' ``multiprocessing`` backend (the computation groups mapped over worker processes,
+    results in order) on a ``ProcessPoolExecutor`` whose workers are killed at once when the run
+    is interrupted or fails. MDAnalysis' own ``multiprocessing.Pool`` can deadlock when it is
+    terminated while it is still sending the groups (large pickles) to its workers."""
+
+    def apply(self, func, computations):
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        pool = ProcessPoolExecutor(self.n_workers, mp_context=multiprocessing.get_context(),
+                                   initializer=_ignore_interrupts)
+        try:
+            results = list(pool.map(func, computations))
+        except BaseException:
+            stop_pool(pool)
+            raise
+        pool.shutdown()
+        return results
+
+
+class LocalDaskBackend(BackendDask):
+    """MDAnalysis' ``dask`` backend (``dask.compute`` with local worker processes) that stops its
+    workers at once when the run is interrupted or fails: dask's own pool would wait for the
+    running groups (a whole slice of the trajectory each) before it returns."""
+
+    def apply(self, func, computations):
+        import multiprocessing
+
+        import dask
+        from concurrent.futures import ProcessPoolExecutor
+        from dask.delayed import delayed
+
+        pool = ProcessPoolExecutor(self.n_workers, mp_context=multiprocessing.get_context("spawn"),
+                                   initializer=_ignore_interrupts)
+        try:
+            results = dask.compute([delayed(func)(task) for task in computations], scheduler="processes",
+                                   pool=pool, chunksize=1)[0]
+        except BaseException:
+            stop_pool(pool)
+            raise
+        pool.shutdown()
+        return results
+
+
+def stop_pool(pool):
+    """Kill the worker processes of a ``ProcessPoolExecutor`` and let it go (no waiting for the
+    work in hand)."""
+    for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        try:
+            proc.kill()
+        except (OSError, AttributeError):
+            pass
+    pool.shutdown(wait=False, cancel_futures=True)
 
 
 def _run_group(func_bytes, group):

@@ -209,7 +209,7 @@ class TorsionPass(AnalysisBase):
                     self._overlap.finish(self._staged)
             finally:
                 if getattr(self, "_overlap", None) is not None:
-                    self._overlap.stop()
+                    self._overlap.stop(abandon=True)   # (after finish(): already stopped)
                     self._overlap = None
                 if self._source is not None:   # (a file handle: never pickled with the results)
                     self._source.close()
