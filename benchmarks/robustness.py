@@ -302,7 +302,7 @@ def cases():
                   ["track", "my data ñ/hexane é.pdb", "my data ñ/traj ü 1.xtc", "--torsions", "rotatable", "--out",
                    "résultats 1"], expect="works", setup=odd_names, output="résultats 1"))
     c.append(Case("profile of a folder named with spaces and non-ASCII characters",
-                  ["profile", "résultats ü", "--bootstrap", "10"], expect="works",
+                  ["profile", "résultats ü", "--bootstrap", "20"], expect="works",
                   setup=lambda fx, d: shutil.copytree(os.path.join(fx, "res"), os.path.join(d, "résultats ü")),
                   output="résultats ü"))
 
@@ -458,6 +458,8 @@ def run_case(case, fx, work):
     result = {"name": case.name, "expect": case.expect, "returncode": proc.returncode, "seconds": round(seconds, 1),
               "outcome": outcome, "why": why, "lost": lost, "clean": outcome == "as expected" and not lost,
               "stderr_tail": stderr.strip().splitlines()[-3:]}
+    if not result["clean"]:
+        result["stderr"] = stderr
     shutil.rmtree(d, ignore_errors=True)
     return result
 
