@@ -169,7 +169,7 @@ def cases():
     def scan_dup(fx, d):
         copy_in(fx, d, "res")
         write(d, "scan.csv", "angle_deg,energy_kj_mol\n" + "".join(
-            f"{a},{(a % 120) / 10}\n" for a in list(range(-180, 180, 30)) + [60]))
+            f"{a},{(a % 120) / 10}\n" for a in range(-180, 180, 30)) + "60,9.5\n")
     c.append(Case("scan with a duplicate angle", ["compare", "res", "--scan", "scan.csv", "--type", "all"],
                   setup=scan_dup))
 
@@ -271,17 +271,20 @@ def cases():
     def toml(body):
         def setup(fx, d):
             copy_in(fx, d, *base, "trappe_ua_torsion.toml")
+            write(d, "one.csv", "angle_deg\n0\n120\n")
             write(d, "a.toml", body)
         return setup
     head = 'out = "out"\n[track]\ntopology = "hexane.pdb"\ntrajectories = ["hexane.xtc"]\ntemperature_k = 300\n'
     for label, body in [("a bad [profile] bin width", head + "[profile]\nbin_width_deg = 7\n"),
                         ("a missing [compare] scan", head + '[compare]\nscan = "nothere.csv"\n'),
                         ("a bad [kinetics] lag", head + "[kinetics]\nlags = [0]\n"),
-                        ("a bad [kinetics] bootstrap", head + "[kinetics]\nn_bootstrap = 0\n"),
+                        ("a bad [kinetics] bootstrap", head + "[kinetics]\nn_bootstrap = -1\n"),
+                        ("a bad [profile] bootstrap", head + "[profile]\nn_bootstrap = 0\n"),
+                        ("a [compare] scan of one column", head + '[compare]\nscan = "one.csv"\n'),
                         ("a bad [track] dt", head.replace("temperature_k = 300", "dt_ps = -2")),
                         ("a bad [track] step", head + "step = -1\n"),
                         ("a bad [profile] temperature", head + "[profile]\ntemperature_k = -3\n"),
-                        ("a bad [couplings] relation", head + '[couplings]\nrelations = ["nothere"]\n'),
+                        ("a bad [couplings] relation", head + '[couplings]\nrelation = ["nothere"]\n'),
                         ("a bad [figures] format", head + '[figures]\nformats = ["gif"]\n'),
                         ("an unknown key", head + "[profile]\nbinwidth = 5\n")]:
         c.append(Case(f"run with {label}", ["run", "a.toml"], setup=toml(body), check=check_no_track))
@@ -448,7 +451,7 @@ def run_case(case, fx, work):
         stderr += "\n[killed: timeout]"
     seconds = time.time() - t0
     outcome, why = classify(case, proc.returncode, stdout, stderr, seconds)
-    lost = lost_files(case, d, before, finished=proc.returncode == 0)
+    lost = lost_files(case, d, before, finished=proc.returncode == 0 or "was written (it is complete)" in stderr)
     if case.check and outcome == "as expected" and not lost:
         problem = case.check(d, stderr) if case.check is check_no_track else case.check(d)
         if problem:

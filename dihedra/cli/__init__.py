@@ -54,6 +54,9 @@ def main(argv=None):
         return 0
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", module="MDAnalysis")
+    from ..io.outputs import COMMITTED
+
+    committed = len(COMMITTED)
     with stop_signals(restore=argv is not None) as received:
         try:
             status = args.func(args)
@@ -63,8 +66,10 @@ def main(argv=None):
             return _error(describe_os_error(exc))
         except KeyboardInterrupt:
             name = signal.Signals(received[0]).name if received else "SIGINT"
-            print(f"dihedra: interrupted ({name}); stopped (a results folder being made was removed).",
-                  file=sys.stderr)
+            done = COMMITTED[committed:]
+            what = (f"after {done[-1]} was written (it is complete)" if done else
+                    "a results folder being made was removed")
+            print(f"dihedra: interrupted ({name}); stopped ({what}).", file=sys.stderr)
             return 128 + (received[0] if received else signal.SIGINT)
     return 0 if status is None else int(status)
 

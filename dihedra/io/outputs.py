@@ -41,6 +41,10 @@ MARKER = "dihedra-files.json"
 #: Suffix of the temporary files of :func:`write_file` (a crash may leave one; it is dihedra's).
 TMP_SUFFIX = ".dihedra-tmp"
 
+#: The results folders moved into place by this process, in order (the command line tells an
+#: interrupt after a commit from one before it).
+COMMITTED = []
+
 _STAGING = re.compile(r"^\.(?P<name>.+)\.(?:partial|old)-(?P<host>[^-]+)-(?P<pid>\d+)-[0-9a-z_]+$")
 
 
@@ -399,7 +403,15 @@ class StagedFolder:
         return cls(out, path, previous, command)
 
     def commit(self):
-        """Write the marker and move the staging folder into place; returns the folder."""
+        """Write the marker and move the staging folder into place; returns the folder.
+
+        SIGINT and SIGTERM are held while the old folder is moved aside and the new one into place
+        (:func:`signals_held`): an interrupt comes before or after, never between."""
+        with signals_held():
+            out = self._commit()
+        return out
+
+    def _commit(self):
         marker = new_marker(self.command, _relative_files(self.path))
         marker["run_id"] = self.run_id
         _write_marker(self.path, marker)
@@ -417,6 +429,7 @@ class StagedFolder:
                                     "folder?); it is left as it is and these results were not kept: run again "
                                     "with another --out.") from None
         self.path = None
+        COMMITTED.append(out)
         if old is not None:
             _remove_listed(old)
         return out
@@ -452,6 +465,24 @@ class StagedFolder:
         if self.path is not None:
             shutil.rmtree(self.path, ignore_errors=True)
             self.path = None
+
+
+@contextlib.contextmanager
+def signals_held():
+    """Hold SIGINT and SIGTERM during a short step that must not be cut in two (in the main thread
+    of a POSIX system; elsewhere nothing changes): a signal that comes meanwhile is delivered when
+    the step is done."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread() or not hasattr(signal, "pthread_sigmask"):
+        yield
+        return
+    old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT, signal.SIGTERM})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, old)
 
 
 def _remove_listed(old):

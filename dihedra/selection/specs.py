@@ -17,6 +17,8 @@ import os
 import re
 import tomllib
 
+import numpy as np
+
 from ..errors import SelectionError
 from . import biopolymer
 from .rotatable import rotatable_torsions
@@ -29,11 +31,16 @@ _INDEX_SPEC = re.compile(r"^\s*-?\d+\s*,\s*-?\d+\s*,\s*-?\d+\s*,\s*-?\d+\s*$")
 
 
 def _check_indices(universe, indices, where="torsion"):
-    """Check four atom indices: integers, in range, all different."""
+    """Check four atom indices: whole numbers (not text, not 1.7), in range, all different."""
     n_atoms = universe.atoms.n_atoms
+    if isinstance(indices, (str, bytes)) or not hasattr(indices, "__len__"):
+        raise SelectionError(f"{where}: atoms must be a list of four whole numbers; got {indices!r}.")
     if len(indices) != 4:
         raise SelectionError(f"{where}: a torsion needs exactly 4 atoms; got {len(indices)}.")
     for i in indices:
+        if isinstance(i, bool) or not isinstance(i, (int, np.integer)):
+            raise SelectionError(f"{where}: atom indices must be whole numbers (0-based); got {i!r} in "
+                                 f"{list(indices)}.")
         if i < 0 or i >= n_atoms:
             raise SelectionError(
                 f"{where}: atom index {i} is out of range; the topology has {n_atoms} atoms "
@@ -99,7 +106,7 @@ def torsions_from_toml(universe, path):
         if ("atoms" in entry) == ("selection" in entry):
             raise SelectionError(f"{where}: give either 'atoms' (four indices) or 'selection'.")
         if "atoms" in entry:
-            indices = _check_indices(universe, list(entry["atoms"]), where=where)
+            indices = _check_indices(universe, entry["atoms"], where=where)
         else:
             indices = _indices_from_selection(universe, entry["selection"], where)
         base = torsion_from_atoms(universe, indices, ttype=entry.get("type"))
