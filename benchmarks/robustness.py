@@ -235,25 +235,28 @@ def cases():
                   notice="no defined frame", check=check_nan_populations))
 
     # -- damaged results folders ----------------------------------------------------------------
-    damage = {
-        "corrupt summary.json": lambda d: write(d, "res/summary.json", '{"scheme": [1, 2'),
-        "summary.json of another shape": lambda d: write(d, "res/summary.json", '[1, 2, 3]\n'),
-        "truncated blocks.npz": lambda d: truncate(os.path.join(d, "res/blocks.npz"), 0.5),
-        "torsions.csv cut in half": lambda d: cut_lines(os.path.join(d, "res/torsions.csv"), 0.5),
-        "populations.csv cut in half": lambda d: cut_lines(os.path.join(d, "res/populations.csv"), 0.5),
-        "profiles.csv cut in half": lambda d: cut_lines(os.path.join(d, "res/profiles.csv"), 0.5),
-        "corrupt Parquet file": lambda d: truncate(_first_parquet(os.path.join(d, "res/states.parquet")), 0.4),
-        "empty torsions.csv": lambda d: write(d, "res/torsions.csv", ""),
+    everything = ("profile", "kinetics", "figures", "report")
+    damage = {   # what is damaged, and the commands that read it
+        "corrupt summary.json": (lambda d: write(d, "res/summary.json", '{"scheme": [1, 2'), everything),
+        "summary.json of another shape": (lambda d: write(d, "res/summary.json", '[1, 2, 3]\n'), everything),
+        "truncated blocks.npz": (lambda d: truncate(os.path.join(d, "res/blocks.npz"), 0.5), everything),
+        "torsions.csv cut in half": (lambda d: cut_lines(os.path.join(d, "res/torsions.csv"), 0.5), everything),
+        "populations.csv cut in half": (lambda d: cut_lines(os.path.join(d, "res/populations.csv"), 0.5),
+                                        everything),
+        "profiles.csv cut in half": (lambda d: cut_lines(os.path.join(d, "res/profiles.csv"), 0.5),
+                                     ("figures", "report")),
+        "corrupt Parquet file": (lambda d: [truncate(_first_parquet(os.path.join(d, f"res/{k}.parquet")), 0.4)
+                                            for k in ("states", "angles")], ("kinetics", "figures", "report")),
+        "empty torsions.csv": (lambda d: write(d, "res/torsions.csv", ""), everything),
     }
-    for label, spoil in damage.items():
-        for cmd in (["profile", "res"], ["kinetics", "res"], ["figures", "res", "--format", "png"],
-                    ["report", "res", "--no-figures"]):
+    commands = {"profile": ["profile", "res"], "kinetics": ["kinetics", "res"],
+                "figures": ["figures", "res", "--format", "png"], "report": ["report", "res"]}
+    for label, (spoil, readers) in damage.items():
+        for name in readers:
             def damaged_res(fx, d, spoil=spoil):
                 copy_in(fx, d, "res")
                 spoil(d)
-            if label.startswith("profiles.csv") and cmd[0] in ("profile", "kinetics"):
-                continue   # profile rewrites it; kinetics never reads it
-            c.append(Case(f"{cmd[0]} on a folder with a {label}", cmd, setup=damaged_res))
+            c.append(Case(f"{name} on a folder with a {label}", commands[name], setup=damaged_res))
 
     # -- output faults --------------------------------------------------------------------------
     c.append(Case("track into a full disk", ["track", "../../fixtures/hexane.pdb", "../../fixtures/long.xtc",
@@ -384,7 +387,7 @@ def _mount(case_dir, fx, mount):
     name, size, read_only = mount
     path = os.path.join(case_dir, name)
     os.makedirs(path)
-    opts = f"size={size or 4 << 20}"
+    opts = f"size={size or 64 << 20}"
     if subprocess.run(["mount", "-t", "tmpfs", "-o", opts, "tmpfs", path], capture_output=True).returncode:
         return False
     if size is None:   # a results folder, then the disk filled up (or mounted read-only)
@@ -411,6 +414,15 @@ def _limit(limit_bytes):
 
 
 def run_case(case, fx, work):
+    mounted = []
+    try:
+        return _run_case(case, fx, work, mounted)
+    finally:
+        for path in mounted:
+            subprocess.run(["umount", "-l", path], capture_output=True)
+
+
+def _run_case(case, fx, work, mounts):
     d = os.path.join(work, re.sub(r"[^0-9A-Za-z]+", "-", case.name).strip("-"))
     os.makedirs(d)
     mounted = None
@@ -418,6 +430,7 @@ def run_case(case, fx, work):
     if case.mount:
         if _mount(d, fx, case.mount):
             mounted = os.path.join(d, case.mount[0])
+            mounts.append(mounted)
         elif case.limit_bytes:
             limit = case.limit_bytes
             os.makedirs(os.path.join(d, case.mount[0]), exist_ok=True)
@@ -456,8 +469,6 @@ def run_case(case, fx, work):
         problem = case.check(d, stderr) if case.check is check_no_track else case.check(d)
         if problem:
             outcome, why = "wrong", problem
-    if mounted:
-        subprocess.run(["umount", "-l", mounted], capture_output=True)
     result = {"name": case.name, "expect": case.expect, "returncode": proc.returncode, "seconds": round(seconds, 1),
               "outcome": outcome, "why": why, "lost": lost, "clean": outcome == "as expected" and not lost,
               "stderr_tail": stderr.strip().splitlines()[-3:]}

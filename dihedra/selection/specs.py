@@ -18,6 +18,7 @@ import re
 import tomllib
 
 import numpy as np
+from MDAnalysis.exceptions import NoDataError
 
 from ..errors import SelectionError
 from . import biopolymer
@@ -165,23 +166,11 @@ def select_torsions(universe, specs, *, keep_variants=False):
     result = TorsionSet()
     for spec in specs:
         spec = str(spec).strip()
-        if _INDEX_SPEC.match(spec):
-            part = torsions_from_indices(universe, spec)
-        elif spec == "rotatable":
-            part = rotatable_torsions(universe)
-        elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
-            part = {"protein-backbone": biopolymer.protein_backbone_torsions,
-                    "protein-sidechains": biopolymer.protein_sidechain_torsions,
-                    "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](
-                        universe, keep_variants=keep_variants)
-        elif spec.lower().endswith(".toml"):
-            if not os.path.exists(spec):
-                raise SelectionError(f"torsion file {spec} does not exist.")
-            part = torsions_from_toml(universe, spec)
-        else:
-            raise SelectionError(
-                f"unknown torsion specification {spec!r}; use one of {', '.join(NAMED_SPECS)}, "
-                "four comma-separated atom indices (e.g. 0,1,2,3) or a .toml file.")
+        try:
+            part = _select_one(universe, spec, keep_variants)
+        except NoDataError as exc:   # a topology without names, residues or bonds
+            raise SelectionError(f"--torsions {spec}: the topology lacks what this needs ({exc}); give a topology "
+                                 "with atom names and bonds (PDB with CONECT, PSF, TPR, PRMTOP, ...).") from None
         result.torsions.extend(part.torsions)
         result.notices.extend(part.notices)
     result = _deduplicate(result)
@@ -189,6 +178,27 @@ def select_torsions(universe, specs, *, keep_variants=False):
         raise SelectionError(f"the specification(s) {', '.join(specs)} select no torsions in this "
                              "topology." + (" " + " ".join(result.notices) if result.notices else ""))
     return _assign_order(result)
+
+
+def _select_one(universe, spec, keep_variants=False):
+    """The torsions of one specification."""
+    if _INDEX_SPEC.match(spec):
+        part = torsions_from_indices(universe, spec)
+    elif spec == "rotatable":
+        part = rotatable_torsions(universe)
+    elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
+        part = {"protein-backbone": biopolymer.protein_backbone_torsions,
+                "protein-sidechains": biopolymer.protein_sidechain_torsions,
+                "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](universe, keep_variants=keep_variants)
+    elif spec.lower().endswith(".toml"):
+        if not os.path.exists(spec):
+            raise SelectionError(f"torsion file {spec} does not exist.")
+        part = torsions_from_toml(universe, spec)
+    else:
+        raise SelectionError(
+            f"unknown torsion specification {spec!r}; use one of {', '.join(NAMED_SPECS)}, "
+            "four comma-separated atom indices (e.g. 0,1,2,3) or a .toml file.")
+    return part
 
 
 def _deduplicate(tset):

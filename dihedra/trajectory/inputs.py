@@ -16,9 +16,12 @@ run cut while writing) is analysed up to its last complete frame, with a notice.
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import hashlib
 import os
 import struct
+import sys
 import warnings
 
 import numpy as np
@@ -51,6 +54,26 @@ def sha256(path, chunk=1 << 22):
         for block in iter(lambda: fh.read(chunk), b""):
             h.update(block)
     return h.hexdigest()
+
+
+#: Formats that hold coordinates only: given as a topology, they make a Universe without names or
+#: bonds (MDAnalysis reads them), which no torsion specification can use.
+COORDINATE_ONLY = ("xtc", "trr", "dcd", "nc", "ncdf", "netcdf", "trj", "mdcrd", "tng", "h5md", "xdr")
+
+
+@contextlib.contextmanager
+def quiet_teardown():
+    """Silence the complaints of MDAnalysis readers that failed half-way through their
+    construction while they are released (their ``__del__`` closes a file they never opened and
+    Python prints "Exception ignored ..." after dihedra's own error line); the error that made
+    them fail is reported by the caller."""
+    hook = sys.unraisablehook
+    sys.unraisablehook = lambda unraisable: None
+    try:
+        yield
+        gc.collect()
+    finally:
+        sys.unraisablehook = hook
 
 
 def _trajectory_atoms(path):
@@ -90,21 +113,27 @@ def load_universe(topology, trajectory=None, notices=None):
         complete, note = check_xtc(trajectory)
         if note:
             notices.append(note)
-    with warnings.catch_warnings(record=True) as caught:
+    if os.path.splitext(os.fspath(topology))[1].lower().lstrip(".") in COORDINATE_ONLY:
+        raise InputFileError(f"topology {topology} is a trajectory format (coordinates only: no atom names, "
+                             "residues or bonds); give the topology first (PDB with CONECT, PSF, TPR, PRMTOP, "
+                             "GRO, ...), then the trajectories.")
+    error = None
+    with warnings.catch_warnings(record=True) as caught, quiet_teardown():
         warnings.simplefilter("always")
         try:
             universe = mda.Universe(*files)
         except ValueError as exc:
+            error = _reason(files, exc)
             if "number of atoms" in str(exc) and trajectory is not None:
                 n_traj = _trajectory_atoms(trajectory)
                 n_top = _topology_atoms(topology)
-                raise InputFileError(
-                    f"topology {topology} has {n_top if n_top is not None else '?'} atoms but trajectory "
-                    f"{trajectory} has {n_traj if n_traj is not None else '?'}; they must describe the same "
-                    "system.") from None
-            raise InputFileError(_reason(files, exc)) from None
+                error = (f"topology {topology} has {n_top if n_top is not None else '?'} atoms but trajectory "
+                         f"{trajectory} has {n_traj if n_traj is not None else '?'}; they must describe the same "
+                         "system.")
         except Exception as exc:  # MDAnalysis raises many types for unreadable files
-            raise InputFileError(_reason(files, exc)) from None
+            error = _reason(files, exc)
+    if error is not None:   # (raised here: the half-made reader is gone, and its complaints with it)
+        raise InputFileError(error)
     for w in caught:
         text = str(w.message)
         if "Cannot write lock/offset file" in text:
