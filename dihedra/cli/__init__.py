@@ -28,8 +28,15 @@ ORDER = ["demo", "run", "torsions", "track", "profile", "compare", "scan", "kine
 _SKIP = {"common"}
 
 
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are one ``dihedra: error:`` line (exit 2), like every other."""
+
+    def error(self, message):
+        self.exit(2, f"dihedra: error: {self.prog}: {message} (see '{self.prog} --help').\n")
+
+
 def build_parser():
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="dihedra",
         description="Conformer-aware torsion analysis of molecular-dynamics trajectories: torsion "
                     "states and populations with honest errors, free-energy profiles, comparison with "
@@ -48,7 +55,10 @@ def build_parser():
 
 def main(argv=None):
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:   # --help, --version (0) or a usage error (2, one line printed)
+        return exc.code
     if not getattr(args, "func", None):
         parser.print_help()
         return 0
