@@ -35,11 +35,11 @@ from .io.tables import write_json, write_table
 from .selection.choice import choose_schemes
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
-from .trajectory.assemble import assemble_result, block_sums, make_summary, replica_info, scheme_table
+from .trajectory import interrupts
+from .trajectory.assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info, scheme_table
 from .trajectory.basins import need_temperature, plan_basins
 from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
 from .trajectory.discard import plan_discard
-from .trajectory.assemble import pass_threads
 from .trajectory.inputs import check_readable, load_universe, truncated_error, usable_frames
 from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
 
@@ -297,6 +297,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
                      replica=r, defer_close=backend == "serial", threads=threads)
             run.add_pass(tp)
             _run_pass(tp, traj, fr, backend, n_workers, progress, r, len(universes))
+            interrupts.check()
             replicas.append(replica_info(u, traj, fr, tp, dt_ps, run.notices))
             if traj in digests:
                 replicas[-1]["sha256"] = digests[traj]
@@ -330,8 +331,9 @@ class _Run:
     def begin(self, topology, trajectories, torsions, scheme, weights):
         """Check the output folder and make the place where the run writes."""
         if self.out is not None:
-            self.staging = StagedFolder.begin(self.out, overwrite=self.overwrite, command="track",
-                                              inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
+            with interrupts.signals_held():   # an interrupt comes before the staging folder exists or after it is known
+                self.staging = StagedFolder.begin(self.out, overwrite=self.overwrite, command="track",
+                                                  inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
             self.work = self.staging.path
         else:
             self.scratch = tempfile.TemporaryDirectory(prefix="dihedra-")

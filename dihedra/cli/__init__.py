@@ -112,7 +112,8 @@ class _Interrupted(KeyboardInterrupt):
 @contextlib.contextmanager
 def stop_signals(restore=True):
     """SIGINT and SIGTERM raise ``KeyboardInterrupt`` in this process (the signal's number is
-    appended to the list yielded); the first one only: later signals arrive while the run cleans
+    appended to the list yielded, :data:`dihedra.trajectory.interrupts.received`, where long
+    loops look too: a raise that Python swallowed is not lost); the first one only: later signals arrive while the run cleans
     up, which takes a second or two, and are ignored. A worker process forked from this one
     (multiprocessing) ends at once and quietly on either signal: this process removes what it
     wrote. Outside the main thread (dihedra called from a thread of another program), nothing
@@ -121,7 +122,10 @@ def stop_signals(restore=True):
     while the interpreter shuts down."""
     import threading
 
-    received = []
+    from ..trajectory import interrupts
+
+    received = interrupts.received
+    received.clear()
     if threading.current_thread() is not threading.main_thread():
         yield received
         return
@@ -141,6 +145,8 @@ def stop_signals(restore=True):
     finally:
         for sig, old in previous.items():
             signal.signal(sig, old if restore else signal.SIG_IGN)
+        if restore:
+            received.clear()
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -34,6 +34,7 @@ import time
 import uuid
 
 from ..errors import OutputExistsError
+from ..trajectory.interrupts import signals_held
 
 #: The list of the files dihedra wrote into a results folder (its presence marks the folder).
 MARKER = "dihedra-files.json"
@@ -465,24 +466,6 @@ class StagedFolder:
         if self.path is not None:
             shutil.rmtree(self.path, ignore_errors=True)
             self.path = None
-
-
-@contextlib.contextmanager
-def signals_held():
-    """Hold SIGINT and SIGTERM during a short step that must not be cut in two (in the main thread
-    of a POSIX system; elsewhere nothing changes): a signal that comes meanwhile is delivered when
-    the step is done."""
-    import signal
-    import threading
-
-    if threading.current_thread() is not threading.main_thread() or not hasattr(signal, "pthread_sigmask"):
-        yield
-        return
-    old = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT, signal.SIGTERM})
-    try:
-        yield
-    finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old)
 
 
 def _remove_listed(old):

@@ -38,6 +38,7 @@ import socket
 from MDAnalysis.analysis.backends import BackendBase, BackendDask, BackendMultiprocessing
 
 from ..errors import DihedraError
+from . import interrupts
 
 INSTALL_HINT = 'install dask.distributed to use a scheduler: pip install "dihedra[cluster]"'
 
@@ -107,12 +108,20 @@ class LocalProcessBackend(BackendMultiprocessing):
 
     def apply(self, func, computations):
         import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor
+        from concurrent.futures import FIRST_EXCEPTION, ProcessPoolExecutor, wait
 
         pool = ProcessPoolExecutor(self.n_workers, mp_context=multiprocessing.get_context(),
                                    initializer=_ignore_interrupts)
         try:
-            results = list(pool.map(func, computations))
+            with interrupts.signals_held():   # the workers start (fork) here: no signal in between
+                futures = [pool.submit(func, group) for group in computations]
+            pending = futures
+            while pending:
+                done, pending = wait(pending, timeout=0.5, return_when=FIRST_EXCEPTION)
+                interrupts.check()
+                if any(f.exception() is not None for f in done):
+                    break
+            results = [f.result() for f in futures]
         except BaseException:
             stop_pool(pool)
             raise
@@ -146,7 +155,12 @@ class LocalDaskBackend(BackendDask):
 
 def stop_pool(pool):
     """Kill the worker processes of a ``ProcessPoolExecutor`` and let it go (no waiting for the
-    work in hand)."""
+    work in hand). The thread that feeds the workers may be stuck writing a large task into a pipe
+    that no worker reads any more: it is not waited for (its queue is told not to join it), or
+    the pool's own clean-up, and then the interpreter's exit, would wait for ever."""
+    call_queue = getattr(pool, "_call_queue", None)
+    if call_queue is not None:
+        call_queue.cancel_join_thread()
     for proc in list((getattr(pool, "_processes", None) or {}).values()):
         try:
             proc.kill()

@@ -144,13 +144,17 @@ class WindowsResult:
         an input is never replaced. ``result.folder`` is then the new folder.
         """
         from ...io.outputs import StagedFolder
+        from ...trajectory.interrupts import signals_held
 
-        staged = StagedFolder.begin(folder, overwrite=overwrite, inputs=self.inputs, command="windows")
+        staged = None
         try:
+            with signals_held():   # an interrupt comes before the staging folder exists or after it is known
+                staged = StagedFolder.begin(folder, overwrite=overwrite, inputs=self.inputs, command="windows")
             names = [os.path.relpath(p, staged.path) for p in self._write(staged.path)]
             self.result.folder = staged.commit()
         finally:
-            staged.discard()   # nothing left to remove after the commit
+            if staged is not None:
+                staged.discard()   # nothing left to remove after the commit
         return [os.path.join(self.result.folder, name) for name in names]
 
     def _write(self, folder):
