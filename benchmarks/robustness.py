@@ -16,11 +16,11 @@ folder before is still there, byte for byte (only the output named by the case m
 no hidden staging folder (``.NAME.partial-...``) is left. A case counts as clean when it ended as
 expected and lost nothing.
 
-Run from the repository root (a few minutes on 2 cores)::
+Run from the repository root (about ten minutes on 2 cores)::
 
-    python benchmarks/robustness.py                 # every case; the table, then the counts
-    python benchmarks/robustness.py --only signal   # the cases whose name contains 'signal'
-    python benchmarks/robustness.py --json out.json
+    python benchmarks/robustness.py --markdown      # every case, then the counts (per group too)
+    python benchmarks/robustness.py --only SIG      # the cases whose name contains 'SIG'
+    python benchmarks/robustness.py --json out.json --repo ../older-checkout
 
 The counts are reported in docs/robustness.md. A full disk is a small tmpfs (mounting needs root;
 without it the file-size limit of the process stands in: the write then fails with EFBIG), and
@@ -46,6 +46,8 @@ import time
 HERE = os.path.dirname(os.path.abspath(__file__))
 REPO = os.path.dirname(HERE)
 sys.path.insert(0, REPO)
+#: the checkout of dihedra whose command line the cases run (--repo; default this one)
+UNDER_TEST = REPO
 
 from tests.robustness_files import (cut_mid_frame, damaged_xtc_variants, nan_overflow_xtc,  # noqa: E402
                                     short_xtc)
@@ -84,7 +86,7 @@ def build_fixtures(root):
 
 
 def _dihedra(argv, cwd):
-    env = dict(os.environ, PYTHONPATH=REPO)
+    env = dict(os.environ, PYTHONPATH=UNDER_TEST)
     out = subprocess.run([sys.executable, "-m", "dihedra", *argv], cwd=cwd, env=env, capture_output=True,
                          text=True, timeout=TIMEOUT_S)
     if out.returncode:
@@ -440,7 +442,7 @@ def _run_case(case, fx, work, mounts):
     if case.setup:
         case.setup(fx, d)
     before = snapshot(d)
-    env = dict(os.environ, PYTHONPATH=REPO, PYTHONIOENCODING="utf-8")
+    env = dict(os.environ, PYTHONPATH=UNDER_TEST, PYTHONIOENCODING="utf-8")
     t0 = time.time()
     proc = subprocess.Popen([sys.executable, "-m", "dihedra", *case.argv], cwd=d, env=env, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True, preexec_fn=_limit(limit))
@@ -523,12 +525,51 @@ def lost_files(case, d, before, finished):
     return lost
 
 
+GROUPS = [   # (group, test of the case name), first match wins
+    ("signals at random moments", lambda n: n.startswith(("SIGINT", "SIGTERM"))),
+    ("user's files (--out, --overwrite)", lambda n: "--out" in n or "--overwrite" in n),
+    ("damaged results folders", lambda n: "on a folder with" in n),
+    ("full disk, read-only folder", lambda n: "full disk" in n or "read-only" in n),
+    ("trajectories", lambda n: "XTC" in n or "DCD" in n or "trajectory" in n),
+    ("analysis files (dihedra run)", lambda n: n.startswith("run ")),
+    ("cluster", lambda n: "scheduler" in n),
+    ("names with spaces and non-ASCII", lambda n: "non-ASCII" in n),
+    ("option values", lambda n: n.split()[1].startswith("--") if len(n.split()) > 1 else False),
+    ("input files", lambda n: True),
+]
+
+
+def group_of(name):
+    return next(g for g, test in GROUPS if test(name))
+
+
+def markdown(results):
+    """The counts per group of cases, as a Markdown table (for docs/robustness.md)."""
+    rows = ["| cases | tried | ended as expected | clean error (exit 2, one line) | worked (exit 0) | "
+            "stopped cleanly | nothing lost |", "| --- | --- | --- | --- | --- | --- | --- |"]
+    order = [g for g, _ in GROUPS]
+    groups = sorted({group_of(r["name"]) for r in results}, key=order.index)
+    for g in groups + ["all"]:
+        rs = [r for r in results if r["clean"] is not None and (g == "all" or group_of(r["name"]) == g)]
+        ok = [r for r in rs if r["outcome"] == "as expected"]
+        cells = [len(rs), len(ok), sum(r["expect"] == "error" for r in ok), sum(r["expect"] == "works" for r in ok),
+                 sum(r["expect"] == "interrupt" for r in ok), sum(not r["lost"] for r in rs)]
+        name = "**all**" if g == "all" else g
+        rows.append(f"| {name} | " + " | ".join(str(x) for x in cells) + " |")
+    return "\n".join(rows)
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--only", default=None, help="run the cases whose name contains this text")
     parser.add_argument("--json", default=None, help="write every outcome to this JSON file")
     parser.add_argument("--keep", action="store_true", help="keep the work folder")
+    parser.add_argument("--markdown", action="store_true", help="also print the counts per group as a table")
+    parser.add_argument("--repo", default=REPO, help="the dihedra checkout to run (default: this one), e.g. an "
+                                                       "older version to compare with")
     args = parser.parse_args(argv)
+    global UNDER_TEST
+    UNDER_TEST = os.path.abspath(args.repo)
     work = tempfile.mkdtemp(prefix="dihedra-robustness-")
     try:
         fx = build_fixtures(work)
@@ -554,6 +595,8 @@ def main(argv=None):
             "crashes": sum(r["outcome"] == "crash" for r in tried),
         }
         print(json.dumps(counts, indent=1))
+        if args.markdown:
+            print(markdown(results))
         if args.json:
             with open(args.json, "w", encoding="utf-8") as fh:
                 json.dump({"counts": counts, "cases": results}, fh, indent=1)
