@@ -11,7 +11,6 @@ import subprocess
 import sys
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from dihedra import example_path, load_results, track
