@@ -20,7 +20,7 @@ from conftest import place_fourth
 from dihedra.numerics.angles import torsion_angles_deg
 from dihedra.selection.schemes import get_scheme
 
-SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+SETTINGS = settings(max_examples=60, deadline=None, database=None, suppress_health_check=[HealthCheck.too_slow])
 coordinate = st.floats(-3.0, 3.0, allow_nan=False, width=32)
 
 
@@ -142,7 +142,7 @@ def test_mirror_images_exchange_gauche_plus_and_minus(angles):
     assert [swap[s] for s in labels[scheme.assign(a)]] == list(labels[scheme.assign(-a)])
 
 
-@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=15, deadline=None, database=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(torsions(), min_size=3, max_size=12), st.sampled_from(SCHEMES))
 def test_the_pass_assigns_the_states_of_the_scheme(frames, name):
     """The compiled pass (fine bins and a table, exact rule at the boundaries) gives the codes of

@@ -54,6 +54,21 @@ def build_parser():
 
 
 def main(argv=None):
+    """Run the command line (``argv``, default this process's own) and return the exit status.
+
+    As the command line of this process (``argv`` None), a command that failed or was interrupted
+    ends the process at once once its line is printed and its clean-up done: worker processes
+    killed in the middle of handing back their results can leave threads of the process pools
+    waiting for ever, and the interpreter would wait for them on its way out."""
+    status = _main(argv)
+    if argv is None and status not in (None, 0):
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(status)
+    return status
+
+
+def _main(argv):
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
