@@ -62,10 +62,21 @@ def main(argv=None):
     waiting for ever, and the interpreter would wait for them on its way out."""
     status = _main(argv)
     if argv is None and status not in (None, 0):
+        _release_process_resources()
         sys.stdout.flush()
         sys.stderr.flush()
         os._exit(status)
     return status
+
+
+def _release_process_resources():
+    """What multiprocessing would release on a normal exit (the semaphores of stopped pools;
+    else its resource tracker reports them as leaked), without joining any thread."""
+    if "multiprocessing.util" in sys.modules:
+        try:
+            sys.modules["multiprocessing.util"]._run_finalizers()
+        except Exception:  # noqa: BLE001 - the exit goes on
+            pass
 
 
 def _main(argv):
