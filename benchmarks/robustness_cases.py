@@ -292,7 +292,7 @@ def _signal_cases(c):
                 c.append(Case(f"{signal.Signals(sig).name} {after:.1f} s into a run ({label}), --overwrite of an "
                               f"old folder (#{k + 1})",
                               ["track", "hexane.pdb", *["long.xtc"] * 12, "--torsions", "rotatable",
-                               "--keep-angles", "--out", "res", "--overwrite", *extra],
+                               "--allow-duplicates", "--keep-angles", "--out", "res", "--overwrite", *extra],
                               expect="interrupt", setup=lambda fx, d: copy_in(fx, d, "hexane.pdb", "long.xtc", "res"),
                               output="res", signal_after=(sig, after), max_seconds=60))
 

@@ -149,7 +149,7 @@ def test_a_signal_at_a_random_moment_stops_the_run_cleanly(work, sig, backend):
     before = snapshot(work / "res")
     env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
     argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", *["hexane.xtc"] * 6, "--torsions", "rotatable",
-            "--keep-angles", "--out", "res", "--overwrite", *BACKENDS[backend]]
+            "--keep-angles", "--allow-duplicates", "--out", "res", "--overwrite", *BACKENDS[backend]]
     proc = subprocess.Popen(argv, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     head = proc.stderr.readline()            # the run has started its first replica
     delay = random.uniform(0.0, 2.5)

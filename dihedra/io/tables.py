@@ -164,13 +164,11 @@ def _json_default(obj):
     return str(obj)
 
 
-#: Tables made of groups of equal length (per key, within each value of a stratum column):
-#: one row per state of each torsion, one row per bin of each profile. A table cut short at a
-#: line boundary leaves its last group shorter.
+#: Tables made of groups of equal length (per key, within each value of a stratum column): one
+#: row per bin of each profile. A table cut short at a line boundary leaves its last group
+#: shorter. (The population tables, whose torsions may have different numbers of states, are
+#: checked against the block sums by :func:`dihedra.io.resultsdir.load_results`.)
 EQUAL_GROUPS = {
-    "populations.csv": (("torsion",), None),
-    "populations_by_type.csv": (("type",), None),
-    "populations_by_replica.csv": (("replica", "torsion"), None),
     "profiles.csv": (("type", "torsion", "estimate"), "estimate"),
     "comparison_profiles.csv": (("type",), None),
 }

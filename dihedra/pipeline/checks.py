@@ -105,11 +105,11 @@ def check_values(name, arguments, where):
 def _check_step(name, a):
     """The checks that depend on the step: bootstrap resamples, energy units, input files."""
     if "n_bootstrap" in a:
-        if name == "kinetics":   # 0: no intervals
-            _whole(0)("n_bootstrap", a["n_bootstrap"])
-        else:
+        if name in ("profile", "compare", "windows"):   # the block bootstrap of profiles: 20 at least
             from ..analysis.profiles import check_estimate_options
             check_estimate_options(a["n_bootstrap"])
+        else:   # (kinetics: 0 is no intervals; the others check their own)
+            _whole(0)("n_bootstrap", a["n_bootstrap"])
     if name == "profile" and "energy_unit" in a:
         _energy_unit("energy_unit", a["energy_unit"])
     if name == "compare" and a.get("scan"):

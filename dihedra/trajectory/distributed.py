@@ -141,7 +141,7 @@ class LocalDaskBackend(BackendDask):
         from concurrent.futures import ProcessPoolExecutor
         from dask.delayed import delayed
 
-        pool = ProcessPoolExecutor(self.n_workers, mp_context=multiprocessing.get_context("spawn"),
+        pool = ProcessPoolExecutor(self.n_workers, mp_context=multiprocessing.get_context(),
                                    initializer=_ignore_interrupts)
         try:
             results = dask.compute([delayed(func)(task) for task in computations], scheduler="processes",
