@@ -144,6 +144,7 @@ class LocalDaskBackend(BackendDask):
         pool = ProcessPoolExecutor(self.n_workers, mp_context=multiprocessing.get_context(),
                                    initializer=_ignore_interrupts)
         try:
+            start_workers(pool, self.n_workers)
             results = dask.compute([delayed(func)(task) for task in computations], scheduler="processes",
                                    pool=pool, chunksize=1)[0]
         except BaseException:
@@ -151,6 +152,18 @@ class LocalDaskBackend(BackendDask):
             raise
         pool.shutdown()
         return results
+
+
+def start_workers(pool, n):
+    """Start the ``n`` worker processes of a ``ProcessPoolExecutor`` now, with signals held: a
+    pool forks them when work is first handed to it, and a signal whose raise lands in the fork
+    handlers of the ``logging`` module is reported and swallowed there."""
+    from concurrent.futures import wait
+
+    with interrupts.signals_held():
+        warm = [pool.submit(int) for _ in range(n)]
+    wait(warm)
+    interrupts.check()
 
 
 def stop_pool(pool):
