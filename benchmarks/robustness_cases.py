@@ -80,15 +80,23 @@ def _value_cases(c):
                        ("--temperature", "inf"), ("--workers", "0"), ("--workers", "-2"), ("--start", "5000"),
                        ("--threads", "3")]:
         c.append(Case(f"track {opt} {value}", TRACK + [opt, value], setup=inputs(*BASE)))
-    for cmd in (["profile", "res"], ["compare", "res", "--scan", "trappe_ua_torsion.toml", "--type", "all"],
-                ["kinetics", "res"]):
+    # (the fixture folder holds profiles and kinetics: --overwrite, so that the value is what is refused)
+    for cmd in (["profile", "res", "--overwrite"], ["kinetics", "res", "--overwrite"],
+                ["compare", "res", "--scan", "trappe_ua_torsion.toml", "--types", "all"]):
         for value in (("-3",) if cmd[0] == "kinetics" else ("0", "-3")):   # kinetics: 0 is no intervals
             c.append(Case(f"{cmd[0]} --bootstrap {value}", cmd + ["--bootstrap", value],
                           setup=lambda fx, d: copy_in(fx, d, "res", "trappe_ua_torsion.toml")))
-    c.append(Case("profile --bin-width 7", ["profile", "res", "--bin-width", "7"], setup=res))
-    c.append(Case("profile --temperature -1", ["profile", "res", "--temperature", "-1"], setup=res))
-    c.append(Case("kinetics --dt-ps 0", ["kinetics", "res", "--dt-ps", "0"], setup=res))
-    c.append(Case("kinetics --lag 0", ["kinetics", "res", "--lag", "0"], setup=res))
+    c.append(Case("profile --bin-width 7", ["profile", "res", "--overwrite", "--bin-width", "7"], setup=res))
+    c.append(Case("profile --temperature -1", ["profile", "res", "--overwrite", "--temperature", "-1"], setup=res))
+    c.append(Case("kinetics --dt-ps 0", ["kinetics", "res", "--overwrite", "--dt-ps", "0"], setup=res))
+    c.append(Case("kinetics --lag 0", ["kinetics", "res", "--overwrite", "--lag", "0"], setup=res))
+    for value in ("0", "-2", "nan"):
+        c.append(Case(f"kinetics --lag-ps {value}", ["kinetics", "res", "--lag-ps", value, "--overwrite"], setup=res))
+    for value in ("0", "-3"):
+        c.append(Case(f"refit --bootstrap {value}", ["refit", "res", "--target", "res", "--bootstrap", value],
+                      setup=res))
+    for cmd in (["kinetics", "res", "--overwrite"], ["figures", "res", "--format", "png"]):
+        c.append(Case(f"{cmd[0]} --types nosuch", cmd + ["--types", "nosuch"], setup=res))
 
 
 def _file_cases(c):
@@ -188,8 +196,11 @@ def _folder_cases(c):
         "corrupt Parquet file": (lambda d: [truncate(_first_parquet(os.path.join(d, f"res/{k}.parquet")), 0.4)
                                             for k in ("states", "angles")], ("kinetics", "figures", "report")),
         "empty torsions.csv": (lambda d: write(d, "res/torsions.csv", ""), everything),
+        "corrupt cores.parquet (no angles)": (lambda d: [shutil.rmtree(os.path.join(d, "res/angles.parquet")),
+                                                         truncate(_first_parquet(os.path.join(d, "res/cores.parquet")),
+                                                                  0.4)], ("kinetics",)),
     }
-    commands = {"profile": ["profile", "res"], "kinetics": ["kinetics", "res"],
+    commands = {"profile": ["profile", "res", "--overwrite"], "kinetics": ["kinetics", "res", "--overwrite"],
                 "figures": ["figures", "res", "--format", "png"], "report": ["report", "res"]}
     for label, (spoil, readers) in damage.items():
         for name in readers:
@@ -228,6 +239,8 @@ def _run_cases(c):
                         ("a missing [compare] scan", head + '[compare]\nscan = "nothere.csv"\n'),
                         ("a bad [kinetics] lag", head + "[kinetics]\nlags = [0]\n"),
                         ("a bad [kinetics] bootstrap", head + "[kinetics]\nn_bootstrap = -1\n"),
+                        ("a bad [kinetics] lag in ps", head + "[kinetics]\nlags_ps = [0]\n"),
+                        ("a bad [refit] bootstrap", head + '[refit]\ntarget = "one.csv"\nn_bootstrap = 0\n'),
                         ("a bad [profile] bootstrap", head + "[profile]\nn_bootstrap = 0\n"),
                         ("a [compare] scan of one column", head + '[compare]\nscan = "one.csv"\n'),
                         ("a bad [track] dt", head.replace("temperature_k = 300", "dt_ps = -2")),

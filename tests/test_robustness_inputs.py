@@ -81,7 +81,7 @@ TRACK = ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--out"
     (["--temperature", "0"], "temperature"), (["--temperature", "-5"], "temperature"),
     (["--temperature", "nan"], "temperature"), (["--temperature", "inf"], "temperature"),
     (["--workers", "0"], "workers"), (["--workers", "-2"], "workers"),
-    (["--threads", "3"], "--threads"), (["--start", "5000"], "selects no frames"),
+    (["--threads", "3"], "--threads"), (["--start", "5000"], "are none of its 100 frames"),
 ])
 def test_hostile_track_options_are_refused_before_any_work(work, capsys, extra, fragment):
     refused(capsys, TRACK + extra, fragment)
@@ -89,12 +89,23 @@ def test_hostile_track_options_are_refused_before_any_work(work, capsys, extra, 
 
 
 @pytest.mark.parametrize("argv, fragment", [
+    # (the folder holds profiles and kinetics already: --overwrite, so that the value is what is refused)
     (["profile", "res", "--bootstrap", "0"], "at least 20"), (["profile", "res", "--bootstrap", "-3"], "at least 20"),
     (["compare", "res", "--scan", "trappe_ua_torsion.toml", "--type", "all", "--bootstrap", "0"], "at least 20"),
-    (["kinetics", "res", "--bootstrap", "-1"], "bootstrap"),
-    (["profile", "res", "--temperature", "-1"], "temperature"),
-    (["profile", "res", "--bin-width", "7"], "bin"),
-    (["kinetics", "res", "--lag", "0"], "lags"),
+    (["kinetics", "res", "--overwrite", "--bootstrap", "-1"], "bootstrap"),
+    (["profile", "res", "--overwrite", "--temperature", "-1"], "temperature"),
+    (["profile", "res", "--overwrite", "--bin-width", "7"], "bin"),
+    (["kinetics", "res", "--overwrite", "--lag", "0"], "lags"),
+    (["kinetics", "res", "--overwrite", "--lag-ps", "0"], "lag 0 ps"),
+    (["kinetics", "res", "--overwrite", "--lag-ps", "-2"], "lag -2 ps"),
+    (["kinetics", "res", "--overwrite", "--lag-ps", "nan"], "lag nan ps"),
+    (["kinetics", "res", "--overwrite", "--lag-ps", "0.5"], "multiples"),
+    (["kinetics", "res", "--overwrite", "--dt-ps", "0"], "dt"),
+    (["refit", "res", "--target", "res", "--bootstrap", "0"], "n_bootstrap"),
+    (["refit", "res", "--target", "res", "--bootstrap", "-3"], "n_bootstrap"),
+    (["kinetics", "res", "--types", "nosuch", "--overwrite"], "nosuch"),
+    (["figures", "res", "--types", "nosuch", "--format", "png"], "nosuch"),
+    (["compare", "res", "--scan", "trappe_ua_torsion.toml", "--scan-angle-unit", "rad"], "parameter file"),
 ])
 def test_hostile_analysis_options_are_refused(work, capsys, argv, fragment):
     before = snapshot(work / "res")
@@ -276,12 +287,23 @@ def test_profiles_cut_short_give_no_figures(work, capsys, command):
     assert snapshot(work / "res") == before
 
 
-@pytest.mark.parametrize("command", [["kinetics", "res", "--assignment", "crisp"], ["kinetics", "res"],
-                                     ["figures", "res", "--format", "png"]], ids=["crisp", "core", "figures"])
+@pytest.mark.parametrize("command", [["kinetics", "res", "--overwrite", "--assignment", "crisp"],
+                                     ["kinetics", "res", "--overwrite"], ["figures", "res", "--format", "png"]],
+                         ids=["crisp", "core", "figures"])
 def test_a_damaged_parquet_file_is_one_error(work, capsys, command):
     for kind in ("states", "angles"):
         _truncate(_first_part(f"res/{kind}.parquet"), 0.4)
+    before = snapshot(work / "res")
     refused(capsys, command, ".parquet")
+    assert snapshot(work / "res") == before
+
+
+def test_a_damaged_cores_file_is_one_error(work, capsys):
+    shutil.rmtree("res/angles.parquet")   # kinetics reads the core bits of track when there are no angles
+    _truncate(_first_part("res/cores.parquet"), 0.4)
+    before = snapshot(work / "res")
+    refused(capsys, ["kinetics", "res", "--overwrite"], "cores.parquet")
+    assert snapshot(work / "res") == before
 
 
 def test_load_results_checks_the_tables_against_the_blocks(work):

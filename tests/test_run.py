@@ -182,6 +182,10 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     ('[profile]\nn_bootstrap = 0\n', "at least 20 resamples"),
     ('[profile]\ntemperature_k = -4\n', "positive number of kelvin"),
     ('[kinetics]\nlags = [1, 0]\n', "each lag"),
+    ('[kinetics]\nlags_ps = [2.0, 0]\n', "lags_ps"), ('[kinetics]\nlags_ps = nan\n', "lags_ps"),
+    ('[kinetics]\nn_bootstrap = -1\n', "n_bootstrap"),
+    ('[refit]\ntarget = "bad-scan.csv"\nn_bootstrap = 0\n', "n_bootstrap"),
+    ('[compare]\nscan = "good-scan.csv"\nscan_angle_unit = "grad"\n', "angle unit"),
     ('[couplings]\nrelation = "nothere"\n', "nothere"),
     ('[figures]\nformats = ["gif"]\n', "figure format"),
     ('[windows]\nwindows = "bad-scan.csv"\ntemperature_k = 300\n', "window table"),
@@ -192,6 +196,7 @@ def test_every_table_is_checked_before_the_first_step(tmp_path, capsys, table, f
     top, trajs = make_system(str(data), n_replicas=1, n_frames=10, n_molecules=2)
     write(tmp_path / "bad-scan.csv", "angle_deg,energy_kj_mol\n0,0\n")
     write(tmp_path / "one-column.csv", "angle_deg\n0\n120\n")
+    write(tmp_path / "good-scan.csv", "angle,energy_kj_mol\n0,0\n120,1\n240,2\n")
     toml = write(tmp_path / "f.toml", f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\n'
                  + table)
     assert main(["run", toml]) == 2

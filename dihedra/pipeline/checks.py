@@ -3,7 +3,7 @@
 Every value that an API call would refuse only after the earlier steps ran (a long tracking pass)
 is checked here, with the API's own checks where they exist, and named with its table: numbers
 that must be positive, whole or within a range (temperatures, time steps, frame steps, workers,
-bootstrap resamples, bin widths, lags), names that must be known (schemes, energy units, Karplus
+bootstrap resamples, bin widths, lags in frames or ps), names that must be known (schemes, energy units, Karplus
 relations, figure formats and widths), and the input files a step reads whole (a scan, a table of
 windows, measured couplings or populations, a weights file), which are read once to check them.
 """
@@ -53,6 +53,13 @@ def _lags(name, value):
         whole_number("each lag (frames)", v)
 
 
+def _lags_ps(name, value):
+    import math
+    for v in (value if isinstance(value, list) else [value]):
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
+            raise DihedraError(f"each lag in lags_ps must be a positive number of ps; got {v!r}.")
+
+
 def _relation(name, value):
     from ..analysis.couplings import get_relation
     for v in (value if isinstance(value, list) else [value]):
@@ -84,9 +91,22 @@ BY_KEY = {
     "step": _whole(1), "start": _frame_bound, "stop": _frame_bound, "workers": _whole(1),
     "chunk_frames": _whole(1), "n_state_blocks": _whole(1), "n_hist_blocks": _whole(1),
     "bin_width_deg": _bin_width, "pair_bin_width_deg": _bin_width, "bandwidth_deg": _positive,
-    "max_mbar_samples": _whole(1), "scheme": _scheme, "lags": _lags, "relation": _relation,
+    "max_mbar_samples": _whole(1), "scheme": _scheme, "lags": _lags, "lags_ps": _lags_ps, "relation": _relation,
     "formats": _formats, "width": _width, "tolerance_kj_mol": _positive,
 }
+
+#: Keys that a step checks by its own rule (the refit's bin width: any divisor of 360 up to 90 degrees).
+OWN_CHECKS = {"refit": ("bin_width_deg",)}
+
+
+def _refit_options(a):
+    """The refit's own checks of its numbers, with the defaults of its signature for keys not given."""
+    import inspect
+
+    from ..analysis.refit import fit_torsion_correction
+    from ..analysis.refit.driver import check_options
+    defaults = inspect.signature(fit_torsion_correction).parameters
+    check_options(**{k: a.get(k, defaults[k].default) for k in inspect.signature(check_options).parameters})
 
 
 def check_values(name, arguments, where):
@@ -94,7 +114,7 @@ def check_values(name, arguments, where):
     :class:`DihedraError` naming the table (``where``)."""
     try:
         for key, value in arguments.items():
-            check = BY_KEY.get(key)
+            check = BY_KEY.get(key) if key not in OWN_CHECKS.get(name, ()) else None
             if check is not None and value is not None:
                 check(key, value)
         _check_step(name, arguments)
@@ -108,8 +128,10 @@ def _check_step(name, a):
         if name in ("profile", "compare", "windows"):   # the block bootstrap of profiles: 20 at least
             from ..analysis.profiles import check_estimate_options
             check_estimate_options(a["n_bootstrap"])
-        else:   # (kinetics: 0 is no intervals; the others check their own)
+        elif name != "refit":   # (kinetics: 0 is no intervals; refit: below)
             _whole(0)("n_bootstrap", a["n_bootstrap"])
+    if name == "refit":
+        _refit_options(a)
     if name == "profile" and "energy_unit" in a:
         _energy_unit("energy_unit", a["energy_unit"])
     if name == "compare" and a.get("scan"):
