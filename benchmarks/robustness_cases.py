@@ -269,7 +269,7 @@ def _name_cases(c):
                   ["track", "my data ñ/hexane é.pdb", "my data ñ/traj ü 1.xtc", "--torsions", "rotatable", "--out",
                    "résultats 1"], expect="works", setup=odd_names, output="résultats 1"))
     c.append(Case("profile of a folder named with spaces and non-ASCII characters",
-                  ["profile", "résultats ü", "--bootstrap", "20"], expect="works",
+                  ["profile", "résultats ü", "--bootstrap", "20", "--overwrite"], expect="works",
                   setup=lambda fx, d: shutil.copytree(os.path.join(fx, "res"), os.path.join(d, "résultats ü")),
                   output="résultats ü"))
 

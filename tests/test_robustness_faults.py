@@ -15,6 +15,7 @@ import shutil
 import signal
 import subprocess
 import sys
+import threading
 import time
 
 import pytest
@@ -151,7 +152,11 @@ def test_a_signal_at_a_random_moment_stops_the_run_cleanly(work, sig, backend):
     argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", *["hexane.xtc"] * 6, "--torsions", "rotatable",
             "--keep-angles", "--allow-duplicates", "--out", "res", "--overwrite", *BACKENDS[backend]]
     proc = subprocess.Popen(argv, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    stuck = threading.Timer(60, proc.kill)   # bounded in time even if the run never starts
+    stuck.start()
     head = proc.stderr.readline()            # the run has started its first replica
+    stuck.cancel()
+    assert proc.poll() is None or proc.returncode == 0, f"the run ended before the signal:\n{head}"
     delay = random.uniform(0.0, 2.5)
     time.sleep(delay)
     proc.send_signal(sig)
@@ -173,3 +178,65 @@ def test_a_signal_at_a_random_moment_stops_the_run_cleanly(work, sig, backend):
         load_results(work / "res")
     else:
         assert snapshot(work / "res") == before, where
+
+
+def test_the_staging_folder_of_a_killed_run_is_removed_by_the_next_run(work, capsys):
+    """SIGKILL (or a crash) cannot be caught: the staging folder stays until the next run into the
+    same folder on this machine removes it (its process is gone)."""
+    env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", *["hexane.xtc"] * 6, "--torsions", "rotatable",
+            "--keep-angles", "--allow-duplicates", "--out", "res", "--overwrite"]
+    proc = subprocess.Popen(argv, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    stuck = threading.Timer(60, proc.kill)
+    stuck.start()
+    proc.stderr.readline()                   # the run has started its first replica
+    stuck.cancel()
+    proc.kill()
+    proc.communicate(timeout=15)
+    assert proc.returncode == -signal.SIGKILL
+    assert [n for n in leftovers(work) if ".partial-" in n], "the killed run left no staging folder to clean"
+    assert main(["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "50", "--out", "res",
+                 "--overwrite"]) == 0
+    assert not leftovers(work)
+    assert load_results(work / "res").summary["replicas"][0]["frames_analysed"] == 50
+
+
+class _SignalInFinaliser:
+    """Raises SIGINT in this process from a finaliser: Python reports the handler's raise there as
+    "Exception ignored" and swallows it (as in an MDAnalysis reader collected by a pass)."""
+
+    def __del__(self):
+        os.kill(os.getpid(), signal.SIGINT)
+
+
+def test_a_signal_whose_raise_python_swallowed_still_stops_the_command(monkeypatch, capsys):
+    import argparse
+    import types
+
+    import dihedra.cli as cli
+
+    def command(args):
+        _SignalInFinaliser()
+        return 0
+    monkeypatch.setattr(cli, "build_parser",
+                        lambda: types.SimpleNamespace(parse_args=lambda argv: argparse.Namespace(func=command)))
+    assert cli.main(["anything"]) == 128 + signal.SIGINT
+    err = capsys.readouterr().err
+    assert "Exception ignored" not in err and "Traceback" not in err, err
+    assert err.strip().splitlines() == ["dihedra: interrupted (SIGINT); stopped (after the command had finished: "
+                                        "its output is complete)."]
+
+
+def test_a_swallowed_signal_stops_the_final_move_of_a_results_folder(tmp_path):
+    from dihedra.io.outputs import StagedFolder
+    from dihedra.trajectory import interrupts
+
+    staged = StagedFolder.begin(str(tmp_path / "res"), command="track")
+    interrupts.received.append(signal.SIGTERM)   # noted by the handler, its raise lost
+    try:
+        with pytest.raises(KeyboardInterrupt):
+            staged.commit()
+    finally:
+        interrupts.received.clear()
+    staged.discard()
+    assert os.listdir(tmp_path) == []

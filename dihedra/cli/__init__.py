@@ -93,9 +93,13 @@ def _main(argv):
     from ..io.outputs import COMMITTED
 
     committed = len(COMMITTED)
+    finished = False
     with stop_signals(restore=argv is not None) as received:
         try:
             status = args.func(args)
+            if received:   # a signal whose raise Python swallowed: the command still ends as interrupted
+                finished = True
+                raise KeyboardInterrupt()
         except DihedraError as exc:
             return _error(str(exc))
         except OSError as exc:   # a full disk, a read-only folder, a file that went away
@@ -104,6 +108,7 @@ def _main(argv):
             name = signal.Signals(received[0]).name if received else "SIGINT"
             done = COMMITTED[committed:]
             what = (f"after {done[-1]} was written (it is complete)" if done else
+                    "after the command had finished: its output is complete" if finished else
                     "a results folder being made was removed")
             print(f"dihedra: interrupted ({name}); stopped ({what}).", file=sys.stderr)
             return 128 + (received[0] if received else signal.SIGINT)
@@ -139,7 +144,9 @@ class _Interrupted(KeyboardInterrupt):
 def stop_signals(restore=True):
     """SIGINT and SIGTERM raise ``KeyboardInterrupt`` in this process (the signal's number is
     appended to the list yielded, :data:`dihedra.trajectory.interrupts.received`, where long
-    loops look too: a raise that Python swallowed is not lost); the first one only: later signals arrive while the run cleans
+    loops, the final move of a results folder and the end of the command look too: a raise that
+    Python swallowed, in a finaliser or a fork handler, is not lost, and is not reported as
+    "Exception ignored" either); the first one only: later signals arrive while the run cleans
     up, which takes a second or two, and are ignored. A worker process forked from this one
     (multiprocessing) ends at once and quietly on either signal: this process removes what it
     wrote. Outside the main thread (dihedra called from a thread of another program), nothing
@@ -165,7 +172,15 @@ def stop_signals(restore=True):
         received.append(signum)
         raise _Interrupted() if signum == signal.SIGTERM else KeyboardInterrupt()
 
+    hook = sys.unraisablehook
+
+    def quiet(unraisable):   # the raise of a noted signal, swallowed in a finaliser or a fork handler
+        if received and isinstance(unraisable.exc_value, KeyboardInterrupt):
+            return
+        hook(unraisable)
+
     previous = {sig: signal.signal(sig, handler) for sig in (signal.SIGINT, signal.SIGTERM)}
+    sys.unraisablehook = quiet
     try:
         yield received
     finally:
@@ -173,6 +188,7 @@ def stop_signals(restore=True):
             signal.signal(sig, old if restore else signal.SIG_IGN)
         if restore:
             received.clear()
+            sys.unraisablehook = hook
 
 
 if __name__ == "__main__":  # pragma: no cover

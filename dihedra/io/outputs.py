@@ -34,7 +34,7 @@ import time
 import uuid
 
 from ..errors import OutputExistsError
-from ..trajectory.interrupts import signals_held
+from ..trajectory.interrupts import check as check_interrupts, signals_held
 
 #: The list of the files dihedra wrote into a results folder (its presence marks the folder).
 MARKER = "dihedra-files.json"
@@ -407,8 +407,10 @@ class StagedFolder:
         """Write the marker and move the staging folder into place; returns the folder.
 
         SIGINT and SIGTERM are held while the old folder is moved aside and the new one into place
-        (:func:`signals_held`): an interrupt comes before or after, never between."""
+        (:func:`signals_held`): an interrupt comes before or after, never between. An interrupt
+        whose raise Python swallowed earlier (in a finaliser or a fork handler) stops it here."""
         with signals_held():
+            check_interrupts()
             out = self._commit()
         return out
 
