@@ -259,8 +259,9 @@ def markdown(results):
     for g in groups + ["all"]:
         rs = [r for r in results if r["clean"] is not None and (g == "all" or group_of(r["name"]) == g)]
         ok = [r for r in rs if r["outcome"] == "as expected"]
-        cells = [len(rs), len(ok), sum(r["expect"] == "error" for r in ok), sum(r["expect"] == "works" for r in ok),
-                 sum(r["expect"] == "interrupt" for r in ok), sum(not r["lost"] for r in rs)]
+        stopped = [r["expect"] == "interrupt" and r["returncode"] != 0 for r in ok]   # else: finished before it
+        cells = [len(rs), len(ok), sum(r["expect"] == "error" for r in ok), len(ok) - sum(stopped)
+                 - sum(r["expect"] == "error" for r in ok), sum(stopped), sum(not r["lost"] for r in rs)]
         name = "**all**" if g == "all" else g
         rows.append(f"| {name} | " + " | ".join(str(x) for x in cells) + " |")
     return "\n".join(rows)
@@ -296,7 +297,11 @@ def main(argv=None):
             "clean errors (exit 2, one line)": sum(r["outcome"] == "as expected" and r["expect"] == "error"
                                                    for r in tried),
             "worked (exit 0)": sum(r["outcome"] == "as expected" and r["expect"] == "works" for r in tried),
-            "interrupted cleanly": sum(r["outcome"] == "as expected" and r["expect"] == "interrupt" for r in tried),
+            "interrupted cleanly": sum(r["outcome"] == "as expected" and r["expect"] == "interrupt"
+                                       and r["returncode"] != 0 for r in tried),
+            "finished before the signal": sum(r["outcome"] == "as expected" and r["expect"] == "interrupt"
+                                              and r["returncode"] == 0 for r in tried),
+            "longest signal case (s)": max([r["seconds"] for r in tried if r["expect"] == "interrupt"] or [0]),
             "nothing lost": sum(not r["lost"] for r in tried),
             "tracebacks": sum(r["outcome"] == "traceback" for r in tried),
             "crashes": sum(r["outcome"] == "crash" for r in tried),

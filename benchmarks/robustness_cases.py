@@ -304,7 +304,7 @@ def _signal_cases(c):
                 after = rng.uniform(0.0, 4.0)
                 c.append(Case(f"{signal.Signals(sig).name} {after:.1f} s into a run ({label}), --overwrite of an "
                               f"old folder (#{k + 1})",
-                              ["track", "hexane.pdb", *["long.xtc"] * 12, "--torsions", "rotatable",
+                              ["track", "hexane.pdb", *["long.xtc"] * 36, "--torsions", "rotatable",
                                "--allow-duplicates", "--keep-angles", "--out", "res", "--overwrite", *extra],
                               expect="interrupt", setup=lambda fx, d: copy_in(fx, d, "hexane.pdb", "long.xtc", "res"),
                               output="res", signal_after=(sig, after), max_seconds=60))

@@ -149,7 +149,7 @@ def test_a_signal_at_a_random_moment_stops_the_run_cleanly(work, sig, backend):
         pytest.importorskip("dask")
     before = snapshot(work / "res")
     env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", *["hexane.xtc"] * 6, "--torsions", "rotatable",
+    argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", *["hexane.xtc"] * 12, "--torsions", "rotatable",
             "--keep-angles", "--allow-duplicates", "--out", "res", "--overwrite", *BACKENDS[backend]]
     proc = subprocess.Popen(argv, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     stuck = threading.Timer(60, proc.kill)   # bounded in time even if the run never starts
