@@ -240,3 +240,39 @@ def test_a_swallowed_signal_stops_the_final_move_of_a_results_folder(tmp_path):
         interrupts.received.clear()
     staged.discard()
     assert os.listdir(tmp_path) == []
+
+
+def test_a_signal_during_a_cluster_run_leaves_no_staging_folder(work):
+    """Ctrl-C of a run on a dask.distributed cluster: the command stops at once; the workers may go
+    on with the groups in hand, but do not make the removed staging folder again."""
+    distributed = pytest.importorskip("distributed")
+    before = snapshot(work / "res")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False, protocol="tcp://",
+                                  host="127.0.0.1", dashboard_address=None) as cluster, \
+            distributed.Client(cluster) as client:
+        env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
+        argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", *["hexane.xtc"] * 12, "--torsions",
+                "rotatable", "--keep-angles", "--allow-duplicates", "--out", "res", "--overwrite", "--scheduler",
+                cluster.scheduler_address]
+        proc = subprocess.Popen(argv, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        stuck = threading.Timer(60, proc.kill)
+        stuck.start()
+        head = proc.stderr.readline()
+        stuck.cancel()
+        time.sleep(random.uniform(0.3, 1.5))
+        proc.send_signal(signal.SIGINT)
+        try:
+            out, err = proc.communicate(timeout=15)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            pytest.fail("SIGINT to a cluster run: still running 15 s later")
+        deadline = time.time() + 30   # the groups the workers had in hand
+        while time.time() < deadline and any(client.processing().values()):
+            time.sleep(0.2)
+        time.sleep(0.5)
+    err = head + err
+    assert proc.returncode == 128 + signal.SIGINT, err
+    assert "Traceback" not in err and "Exception ignored" not in err, err
+    assert err.strip().splitlines()[-1].startswith("dihedra: interrupted"), err
+    assert not leftovers(work), (os.listdir(work), err)
+    assert snapshot(work / "res") == before

@@ -464,9 +464,14 @@ class StagedFolder:
         return old
 
     def discard(self):
-        """Remove the staging folder (after an error or an interrupt)."""
+        """Remove the staging folder (after an error or an interrupt). Workers of a cluster may
+        still be writing a file into it meanwhile: it is tried again for a second."""
         if self.path is not None:
-            shutil.rmtree(self.path, ignore_errors=True)
+            for _ in range(5):
+                shutil.rmtree(self.path, ignore_errors=True)
+                if not os.path.exists(self.path):
+                    break
+                time.sleep(0.2)
             self.path = None
 
 

@@ -79,7 +79,10 @@ class TimeSeriesWriter:
             schema = pa.schema(fields + [pa.field(label, value_type, nullable=False) for label in labels])
             self._schemas[kind] = schema
             self._dirs[kind] = os.path.join(folder, f"{kind}.parquet")
-            os.makedirs(self._dirs[kind], exist_ok=True)
+            try:   # (never makedirs: a worker of a stopped run must not make its removed folder again)
+                os.mkdir(self._dirs[kind])
+            except FileExistsError:
+                pass
         self._groups_per_file = max(1, COLUMN_CHUNKS_PER_FILE // len(schema))
         self._groups_in_file = 0
         self._pending = {kind: [] for kind in kinds}

@@ -220,4 +220,21 @@ class DistributedBackend(BackendBase):
         payload = self.client.scatter(pickle.dumps(func), broadcast=True)
         futures = self.client.map(_run_group, [payload] * len(computations), list(computations),
                                   pure=False)
-        return self.client.gather(futures)
+        try:
+            return self.client.gather(futures)
+        except BaseException:   # an interrupt or a failed group: the cluster drops the rest of the work
+            _abandon(self.client, futures)
+            raise
+
+
+def _abandon(client, futures):
+    """Cancel the groups not yet run (a shared cluster is not kept busy for nothing). The client's
+    event loop still holds the tasks of the interrupted gather, which asyncio would report as
+    "Task exception was never retrieved" tracebacks when they are collected: its logger is quieted."""
+    import logging
+
+    logging.getLogger("asyncio").setLevel(logging.CRITICAL)
+    try:
+        client.cancel(futures)
+    except Exception:  # noqa: BLE001 - the scheduler may be gone; the error that stopped the run stands
+        pass
