@@ -113,6 +113,19 @@ def test_hostile_analysis_options_are_refused(work, capsys, argv, fragment):
     assert snapshot(work / "res") == before
 
 
+@pytest.mark.parametrize("extra, fragment", [(["--workers", "0"], "workers"), (["--step", "-1"], "step"),
+                                             (["--bootstrap", "0"], "at least 20")])
+def test_hostile_window_options_are_refused_before_the_first_window(work, capsys, extra, fragment):
+    with open("w.csv", "w") as fh:
+        fh.write("trajectory,topology,torsions,centre_deg,k_kj_mol_rad2\n"
+                 "hexane.xtc,hexane.pdb,rotatable,0,100\nhexane.xtc,hexane.pdb,rotatable,60,100\n")
+    capsys.readouterr()
+    assert main(["windows", "w.csv", "--temperature", "300", "--out", "wout", *extra]) == 2
+    err = capsys.readouterr().err
+    assert err.strip().splitlines() == [line for line in err.strip().splitlines() if line.startswith("dihedra: error:")]
+    assert len(err.strip().splitlines()) == 1 and fragment in err and not os.path.exists("wout"), err
+
+
 def test_the_api_refuses_the_same_values(work):
     from dihedra import TorsionStates, free_energy_profiles
     import MDAnalysis as mda

@@ -66,6 +66,7 @@ import pandas as pd
 from ...errors import DihedraError
 from ...selection.schemes import get_scheme
 from ...trajectory.result import TrackResult
+from ...trajectory.states import check_frame_range, whole_number
 from ...units import check_temperature, kt_kj_mol, wrap_deg
 from ..profiles import (DEFAULT_SEED, bootstrap_multiplicities, bootstrap_spread, check_bin_width,
                         check_estimate_options)
@@ -242,6 +243,8 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
                            "schemes for proteins: give one scheme (e.g. anti-gauche, cis-trans).")
     factor = check_bin_width(bin_width_deg, 1.0)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
+    check_frame_range(start, stop, step)   # (before the first window is read)
+    whole_number("workers", workers)
     seed = DEFAULT_SEED if seed is None else int(seed)
     source = None if isinstance(windows, pd.DataFrame) else os.fspath(windows)
     table = read_windows(windows)
