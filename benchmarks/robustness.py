@@ -16,7 +16,7 @@ folder before is still there, byte for byte (only the output named by the case m
 no hidden staging folder (``.NAME.partial-...``) is left. A case counts as clean when it ended as
 expected and lost nothing.
 
-Run from the repository root (about ten minutes on 2 cores)::
+Run from the repository root (five to ten minutes on 2 cores)::
 
     python benchmarks/robustness.py --markdown      # every case, then the counts (per group too)
     python benchmarks/robustness.py --only SIG      # the cases whose name contains 'SIG'
