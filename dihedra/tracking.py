@@ -35,12 +35,13 @@ from .io.tables import write_json, write_table
 from .selection.choice import choose_schemes
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
-from .trajectory.assemble import assemble_result, block_sums, make_summary, replica_info, scheme_table
+from .trajectory import interrupts
+from .trajectory.assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info, scheme_table
 from .trajectory.basins import need_temperature, plan_basins
 from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
 from .trajectory.discard import plan_discard
-from .trajectory.inputs import check_readable, load_universe, truncated_error
-from .trajectory.states import TorsionStates
+from .trajectory.inputs import check_readable, load_universe, truncated_error, usable_frames
+from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
 
 
 def load_weights(spec, n_frames_per_replica):
@@ -74,8 +75,15 @@ def _weights_per_replica(spec, frames_per_replica):
     w, column, table = load_weights(spec, frames_per_replica)
     total = sum(len(f) for f in frames_per_replica)
     if "frame" in table.columns:
-        rep = table["replica"].to_numpy(int) if "replica" in table.columns else np.zeros(len(table), int)
-        lookup = {(int(r), int(f)): x for r, f, x in zip(rep, table["frame"].to_numpy(int), w)}
+        rep = _index_column(table, "replica", spec) if "replica" in table.columns else np.zeros(len(table), int)
+        frame = _index_column(table, "frame", spec)
+        dup = pd.DataFrame({"replica": rep, "frame": frame}).duplicated(keep=False).to_numpy()
+        if dup.any():
+            k0 = int(np.flatnonzero(dup)[0])
+            same = np.flatnonzero((rep == rep[k0]) & (frame == frame[k0]))
+            raise InputFileError(f"weights file {spec} gives replica {rep[k0]}, frame {frame[k0]} {len(same)} times "
+                                 f"(rows {', '.join(str(k + 1) for k in same[:5])}); give one weight per frame.")
+        lookup = {(int(r), int(f)): x for r, f, x in zip(rep, frame, w)}
         out = []
         for r, frames in enumerate(frames_per_replica):
             missing = [int(f) for f in frames if (r, int(f)) not in lookup]
@@ -95,6 +103,17 @@ def _weights_per_replica(spec, frames_per_replica):
     if sum(float(x.sum()) for x in out) <= 0:
         raise InputFileError(f"weights file {spec}: all weights of the analysed frames are zero.")
     return out, column
+
+
+def _index_column(table, name, spec):
+    """A 'replica' or 'frame' column of a weights file as integers (every cell a whole number)."""
+    values = pd.to_numeric(table[name], errors="coerce").to_numpy(dtype=float)
+    bad = ~np.isfinite(values) | (values != np.round(values)) | (values < 0)
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        raise InputFileError(f"weights file {spec}, column {name!r}, row {k + 1}: {table[name].iloc[k]!r} is not a "
+                             "whole number >= 0.")
+    return values.astype(np.int64)
 
 
 def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None):
@@ -132,14 +151,16 @@ def describe_frame_range(start, stop, step):
 
 
 def _frame_indices(universe, start, stop, step, where):
-    n = universe.trajectory.n_frames
+    """The frames analysed: ``start:stop:step`` of the frames that can be read (an XTC frame cut at
+    the end of the file is left out)."""
+    n = usable_frames(universe.trajectory)
     span = describe_frame_range(start, stop, step)
     try:
-        s0, s1, st = universe.trajectory.check_slice_indices(start, stop, step)
+        universe.trajectory.check_slice_indices(start, stop, step)
+        frames = np.arange(*slice(start, stop, step).indices(n))
     except (ValueError, TypeError) as exc:
         raise DihedraError(f"{where}: the frames {span} are not a valid range ({exc}); give start, stop and "
                            "step (--start, --stop, --step) as whole numbers, step above 0.") from None
-    frames = np.arange(s0, s1, st)
     if len(frames) == 0:
         raise DihedraError(f"{where}: the frames {span} are none of its {n} frames (numbered 0..{n - 1}); give a "
                            "start below the stop (--start, --stop) within them.")
@@ -228,6 +249,8 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
     --------
     dihedra.TorsionStates : the same analysis on an atom group, in memory.
     """
+    _check_options(start, stop, step, workers, threads, dt_ps, temperature_k, bin_width_deg, n_state_blocks,
+                   n_hist_blocks, chunk_frames)
     run = _Run(out, overwrite, log)
     check_targets(target_error, target_error_kj_mol)
     group, topology, trajectories = _inputs(topology, trajectories)
@@ -252,7 +275,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
                                                       zip(universes, frames, weight_arrays)], tset, scheme)
         frames = [f[k:] for f, k in zip(frames, drop)]
         weight_arrays = [None if w is None else w[k:] for w, k in zip(weight_arrays, drop)]
-        n_workers = max(1, int(workers or 1))
+        n_workers = 1 if workers is None else int(workers)
         backend = run.backend(backend, scheduler, n_workers)
         basins = None
         if choice.needs_data:   # the basins: a first pass over the frames the run keeps
@@ -273,8 +296,8 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
             tp.plumb(parts_dir=run.parts_dir, series=ParquetSeriesFactory(run.work), chunk_frames=chunk_frames,
                      replica=r, defer_close=backend == "serial", threads=threads)
             run.add_pass(tp)
-            _run_pass(tp, traj, int(fr[0]) if drop[r] else start, stop, step, backend, n_workers, progress, r,
-                      len(universes))
+            _run_pass(tp, traj, fr, backend, n_workers, progress, r, len(universes))
+            interrupts.check()
             replicas.append(replica_info(u, traj, fr, tp, dt_ps, run.notices))
             if traj in digests:
                 replicas[-1]["sha256"] = digests[traj]
@@ -308,8 +331,9 @@ class _Run:
     def begin(self, topology, trajectories, torsions, scheme, weights):
         """Check the output folder and make the place where the run writes."""
         if self.out is not None:
-            self.staging = StagedFolder.begin(self.out, overwrite=self.overwrite, command="track",
-                                              inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
+            with interrupts.signals_held():   # an interrupt comes before the staging folder exists or after it is known
+                self.staging = StagedFolder.begin(self.out, overwrite=self.overwrite, command="track",
+                                                  inputs=run_inputs(topology, trajectories, torsions, scheme, weights))
             self.work = self.staging.path
         else:
             self.scratch = tempfile.TemporaryDirectory(prefix="dihedra-")
@@ -448,14 +472,31 @@ def _universes(group, topology, trajectories, notices):
     return [load_universe(topology, t, notices) for t in trajectories]
 
 
-def _run_pass(tp, traj, start, stop, step, backend, n_workers, progress, r, n_replicas):
-    """Run one replica's pass; a damaged trajectory becomes one clear error."""
-    run_kwargs = dict(start=start, stop=stop, step=step)
+def _check_options(start, stop, step, workers, threads, dt_ps, temperature_k, bin_width_deg, n_state_blocks,
+                   n_hist_blocks, chunk_frames):
+    """Refuse, before any work, the options that would give wrong numbers later."""
+    check_frame_range(start, stop, step)
+    whole_number("workers", workers)
+    whole_number("chunk_frames", chunk_frames)
+    if threads is not None:
+        pass_threads(threads, "serial")
+    check_pass_options(dt_ps=dt_ps, temperature_k=temperature_k, bin_width_deg=bin_width_deg,
+                       n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks)
+
+
+def _run_pass(tp, traj, frames, backend, n_workers, progress, r, n_replicas):
+    """Run one replica's pass over ``frames`` (a range: first, last, step); a damaged trajectory
+    becomes one clear error."""
+    step = int(frames[1] - frames[0]) if len(frames) > 1 else 1
+    run_kwargs = dict(start=int(frames[0]), stop=int(frames[-1]) + 1, step=step)
     if backend == "serial":
         run_kwargs.update(verbose=bool(progress),
                           progressbar_kwargs={"desc": f"replica {r + 1}/{n_replicas}", "leave": True}
                           if progress else None)
     else:
+        if backend in ("multiprocessing", "dask"):   # these stop their workers at once on an interrupt
+            from .trajectory.distributed import LocalDaskBackend, LocalProcessBackend
+            backend = (LocalProcessBackend if backend == "multiprocessing" else LocalDaskBackend)(n_workers)
         run_kwargs.update(backend=backend, n_workers=None if not isinstance(backend, str) else n_workers,
                           unsupported_backend=not isinstance(backend, str))
     try:

@@ -1,5 +1,6 @@
 """The command line: help, version, and one clear line for every kind of bad input."""
 
+import json
 import os
 import subprocess
 import sys
@@ -90,15 +91,30 @@ def xtc_offsets(top, traj):
     return mda.Universe(top, traj).trajectory._xdr.offsets
 
 
-def test_truncated_trajectory_names_last_complete_frame(system, tmp_path, capsys):
-    # cut inside the last bytes of frame 20: MDAnalysis counts 21 frames and raises on the last
+def test_a_last_frame_cut_near_its_end_is_left_out_with_a_notice(system, tmp_path, capsys):
+    # cut inside the last bytes of frame 20: MDAnalysis counts 21 frames and raises on the last;
+    # dihedra analyses the 20 complete ones (a run cut while writing) and says so
     top, traj = system
     off = xtc_offsets(top, traj)
     data = open(traj, "rb").read()
     cut = tmp_path / "cut.xtc"
     cut.write_bytes(data[: off[21] - 4])
     code, _, err = run_cli(capsys, "track", top, cut, "--torsions", "0,1,2,3", "--out", tmp_path / "r")
-    assert_one_line_error(code, err, "truncated", "last complete frame is 19", "--stop 20")
+    assert code == 0
+    assert "ends with an incomplete frame" in err and "20 complete frames" in err
+    assert json.load(open(tmp_path / "r" / "summary.json"))["n_frames_analysed"] == 20
+
+
+def test_a_damaged_frame_names_the_frames_that_can_be_read(system, tmp_path, capsys):
+    # frame 12 of 30 does not start with the magic number: an error naming frames 0-11 and --stop 12
+    top, traj = system
+    off = xtc_offsets(top, traj)
+    data = bytearray(open(traj, "rb").read())
+    data[off[12]:off[12] + 4] = (1996).to_bytes(4, "big")
+    bad = tmp_path / "bad.xtc"
+    bad.write_bytes(bytes(data))
+    code, _, err = run_cli(capsys, "track", top, bad, "--torsions", "0,1,2,3", "--out", tmp_path / "r")
+    assert_one_line_error(code, err, "damaged", "frame 12", "frames 0-11 can be read", "--stop 12")
     assert not os.path.exists(tmp_path / "r")
 
 

@@ -384,7 +384,7 @@ def test_default_threads_follow_the_usable_cores(monkeypatch):
     assert assemble.pass_threads(1, "serial") == 1
     monkeypatch.setattr(assemble.os, "sched_getaffinity", lambda pid: {3}, raising=False)
     assert assemble.pass_threads(None, "serial") == 1
-    with pytest.raises(ValueError, match="threads must be 1 or 2"):
+    with pytest.raises(DihedraError, match="threads must be 1 or 2"):
         assemble.pass_threads(3, "serial")
 
 

@@ -166,13 +166,43 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     top, trajs = make_system(str(data), n_replicas=1, n_frames=40, n_molecules=2)
     toml = write(tmp_path / "f.toml",
                  f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\ntorsions = ["rotatable"]\n'
-                 '[compare]\nscan = "bad-scan.csv"\nscan_angle_unit = "deg"\nscan_energy_unit = "kJ/mol"\n')
-    write(tmp_path / "bad-scan.csv", "angle_deg,energy_kj_mol\n0,0\n")   # one point: refused by the reader
-    assert main(["run", toml]) == 2
+                 '[compare]\nscan = "scan.csv"\ntypes = ["NOPE"]\n')
+    write(tmp_path / "scan.csv", "angle_deg,energy_kj_mol\n" + "".join(f"{a},{abs(a) / 60}\n" for a in range(-180, 180, 30)))
+    assert main(["run", toml]) == 2   # a type that only the tracked folder can refuse
     err = capsys.readouterr().err
-    assert "step compare (f.toml, [compare]) failed" in err
+    assert "step compare (f.toml, [compare]) failed" in err and "NOPE" in err
     record = json.loads((tmp_path / "res" / RECORD_NAME).read_text())
     assert [(s["step"], s["status"]) for s in record["steps"]] == [("track", "done"), ("compare", "failed")]
+
+
+@pytest.mark.parametrize("table, fragment", [
+    ('[compare]\nscan = "bad-scan.csv"\n', "1 distinct angle"),           # a scan the reader refuses
+    ('[compare]\nscan = "one-column.csv"\n', "has 1 column"),
+    ('[profile]\nbin_width_deg = 7\n', "bin_width_deg"),
+    ('[profile]\nn_bootstrap = 0\n', "at least 20 resamples"),
+    ('[profile]\ntemperature_k = -4\n', "positive number of kelvin"),
+    ('[kinetics]\nlags = [1, 0]\n', "each lag"),
+    ('[kinetics]\nlags_ps = [2.0, 0]\n', "lags_ps"), ('[kinetics]\nlags_ps = nan\n', "lags_ps"),
+    ('[kinetics]\nn_bootstrap = -1\n', "n_bootstrap"),
+    ('[refit]\ntarget = "bad-scan.csv"\nn_bootstrap = 0\n', "n_bootstrap"),
+    ('[compare]\nscan = "good-scan.csv"\nscan_angle_unit = "grad"\n', "angle unit"),
+    ('[couplings]\nrelation = "nothere"\n', "nothere"),
+    ('[figures]\nformats = ["gif"]\n', "figure format"),
+    ('[windows]\nwindows = "bad-scan.csv"\ntemperature_k = 300\n', "window table"),
+])
+def test_every_table_is_checked_before_the_first_step(tmp_path, capsys, table, fragment):
+    data = tmp_path / "data"
+    os.makedirs(data)
+    top, trajs = make_system(str(data), n_replicas=1, n_frames=10, n_molecules=2)
+    write(tmp_path / "bad-scan.csv", "angle_deg,energy_kj_mol\n0,0\n")
+    write(tmp_path / "one-column.csv", "angle_deg\n0\n120\n")
+    write(tmp_path / "good-scan.csv", "angle,energy_kj_mol\n0,0\n120,1\n240,2\n")
+    toml = write(tmp_path / "f.toml", f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\n'
+                 + table)
+    assert main(["run", toml]) == 2
+    err = capsys.readouterr().err
+    assert err.count("dihedra: error:") == 1 and fragment in err and "Traceback" not in err
+    assert "step 1/" not in err and not os.path.exists(tmp_path / "res")   # nothing ran
 
 
 # ------------------------------------------------------------------------------------------------
@@ -257,8 +287,9 @@ def test_the_full_example_of_the_docs_is_a_valid_analysis_file(tmp_path):
     text = open(docs).read()
     block = re.search(r"## A full example\s+```toml\n(.*?)```", text, flags=re.S).group(1)
     os.makedirs(tmp_path / "inputs")
-    for name in ("inputs/hexane.pdb", "inputs/run1.xtc", "inputs/run2.xtc", "measured_couplings.csv"):
+    for name in ("inputs/hexane.pdb", "inputs/run1.xtc", "inputs/run2.xtc"):
         write(tmp_path / name, "")
+    write(tmp_path / "measured_couplings.csv", "residue,J_hz,J_err_hz\nALA2,7.1,0.4\n")
     write(tmp_path / "trappe_ua_torsion.toml", SCAN_TOML)
     pipe = load_pipeline(write(tmp_path / "analysis.toml", block))
     assert [s.name for s in pipe.steps] == ["track", "profile", "compare", "kinetics", "couplings", "figures",

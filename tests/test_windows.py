@@ -344,3 +344,48 @@ def test_openmm_butane_windows_reproduce_the_rb_potential(tmp_path):
     assert not wres.overlap["poor"].any()
     # complete XTC files are not reported as cut (the frame end is read from the XTC header)
     assert not any("incomplete frame" in n for n in wres.notices)
+
+
+# ------------------------------------------------------------------------------------------------
+# Windows whose samples contradict their stated restraint
+# ------------------------------------------------------------------------------------------------
+
+def test_restraint_check_of_a_harmonic_window():
+    from dihedra.analysis.windows.driver import restraint_check
+    # analytic: on a flat free energy a window of k samples a normal law of variance kT / k
+    # around its centre: consistent; the same samples with the centre off by 180 degrees, or with
+    # a force constant ten times the one sampled, are not
+    k = 400.0
+    sd = np.degrees(np.sqrt(KT / k))
+    assert restraint_check(31.0, sd, 30.0, k, KT)["restraint_consistent"]
+    off = restraint_check(31.0, sd, -150.0, k, KT)
+    assert not off["restraint_consistent"] and off["mean_force_kj_mol_rad"] > 1000
+    assert abs(off["mean_offset_deg"]) == pytest.approx(179.0)
+    stiff = restraint_check(30.0, sd, 30.0, 10 * k, KT)
+    assert not stiff["restraint_consistent"] and stiff["curvature_kj_mol_rad2"] == pytest.approx(-9 * k)
+    # a weak window on the flank of the steepest torsion barrier drifts: a mean force of 80
+    # kJ/mol/rad (the amide barrier, from memory) holds k = 100 about 46 degrees off: consistent
+    assert restraint_check(30.0 + np.degrees(80 / 100), np.degrees(np.sqrt(KT / 100)), 30.0, 100.0, KT)[
+        "restraint_consistent"]
+
+
+def test_windows_off_by_half_a_turn_or_stiffer_than_sampled_are_flagged(tmp_path, capsys):
+    centres = np.arange(-180.0, 180.0, 30.0)
+    csv = write_windows(tmp_path, rb_energy, centres, 400.0, 30, 6, seed=9)
+    table = pd.read_csv(csv)
+    table.loc[3, "centre_deg"] += 180.0        # a centre off by half a turn
+    table.loc[7, "centre_deg"] = 720.0         # a typo: 720 for 30 (wrapped to 0)
+    table.loc[9, "k_kj_mol_rad2"] = 4000.0     # ten times the force constant sampled
+    table.to_csv(csv, index=False)
+    wres = unbias_windows(csv, temperature_k=T, n_bootstrap=20)
+    bad = wres.windows.loc[~wres.windows["restraint_consistent"], "window"].tolist()
+    assert bad == [4, 8, 10]
+    assert wres.notices[0].startswith("WARNING: 3 window(s) contradict their stated restraint")
+    assert wres.info["restraints_consistent"] is False
+    from dihedra.cli import main
+    code = main(["windows", csv, "--temperature", str(T), "--out", str(tmp_path / "out"), "--bootstrap", "20"])
+    err = capsys.readouterr().err
+    assert code == 0
+    assert "WARNING: 3 window(s) contradict" in err
+    written = pd.read_csv(tmp_path / "out" / "windows.csv")
+    assert written["restraint_consistent"].tolist().count(False) == 3

@@ -71,7 +71,8 @@ from ..io.tables import json_ready, write_json, write_table
 from ..trajectory.result import as_result
 from ..units import kt_kj_mol, wrap_deg
 from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
-                       find_minima, resolve_temperature, state_blocks, state_free_energies, type_profiles)
+                       check_estimate_options, find_minima, resolve_temperature, state_blocks, state_free_energies,
+                       type_profiles)
 from .reference_populations import add_to_comparison
 from .scans import read_scan
 
@@ -470,6 +471,7 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
             log(message)
 
     temperature_k = resolve_temperature(temperature_k, result.summary, note)
+    n_bootstrap = check_estimate_options(n_bootstrap)
     if isinstance(scan, (str, os.PathLike)):
         scan = read_scan(scan, temperature_k=temperature_k)
     kt = kt_kj_mol(temperature_k)

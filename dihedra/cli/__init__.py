@@ -2,14 +2,20 @@
 
 Each subcommand lives in its own module of this package with ``register(subparsers)``; modules are
 discovered by name, so adding a subcommand never edits this file. User errors
-(:class:`dihedra.errors.DihedraError`) print as one line without a traceback and exit with 2.
+(:class:`dihedra.errors.DihedraError`) and failures of the system (a full disk, a read-only
+folder: any ``OSError``) print as one line without a traceback and exit with 2. Ctrl-C (SIGINT)
+and SIGTERM stop a command at any point along the same path: the run's threads and worker
+processes are stopped, its staging folder removed, and one line is printed (exit 130 or 143).
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
+import os
 import pkgutil
+import signal
 import sys
 import warnings
 
@@ -22,8 +28,15 @@ ORDER = ["demo", "run", "torsions", "track", "profile", "compare", "scan", "kine
 _SKIP = {"common"}
 
 
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are one ``dihedra: error:`` line (exit 2), like every other."""
+
+    def error(self, message):
+        self.exit(2, f"dihedra: error: {self.prog}: {message} (see '{self.prog} --help').\n")
+
+
 def build_parser():
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="dihedra",
         description="Conformer-aware torsion analysis of molecular-dynamics trajectories: torsion "
                     "states and populations with honest errors, free-energy profiles, comparison with "
@@ -41,22 +54,141 @@ def build_parser():
 
 
 def main(argv=None):
+    """Run the command line (``argv``, default this process's own) and return the exit status.
+
+    As the command line of this process (``argv`` None), a command that failed or was interrupted
+    ends the process at once once its line is printed and its clean-up done: worker processes
+    killed in the middle of handing back their results can leave threads of the process pools
+    waiting for ever, and the interpreter would wait for them on its way out."""
+    status = _main(argv)
+    if argv is None and status not in (None, 0):
+        _release_process_resources()
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(status)
+    return status
+
+
+def _release_process_resources():
+    """What multiprocessing would release on a normal exit (the semaphores of stopped pools;
+    else its resource tracker reports them as leaked), without joining any thread."""
+    if "multiprocessing.util" in sys.modules:
+        try:
+            sys.modules["multiprocessing.util"]._run_finalizers()
+        except Exception:  # noqa: BLE001 - the exit goes on
+            pass
+
+
+def _main(argv):
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:   # --help, --version (0) or a usage error (2, one line printed)
+        return exc.code
     if not getattr(args, "func", None):
         parser.print_help()
         return 0
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", module="MDAnalysis")
-    try:
-        status = args.func(args)
-    except DihedraError as exc:
-        print(f"dihedra: error: {exc}", file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        print("dihedra: interrupted; no results folder was written.", file=sys.stderr)
-        return 130
+    from ..io.outputs import COMMITTED
+
+    committed = len(COMMITTED)
+    finished = False
+    with stop_signals(restore=argv is not None) as received:
+        try:
+            status = args.func(args)
+            if received:   # a signal whose raise Python swallowed: the command still ends as interrupted
+                finished = True
+                raise KeyboardInterrupt()
+        except DihedraError as exc:
+            return _error(str(exc))
+        except OSError as exc:   # a full disk, a read-only folder, a file that went away
+            return _error(describe_os_error(exc))
+        except KeyboardInterrupt:
+            name = signal.Signals(received[0]).name if received else "SIGINT"
+            done = COMMITTED[committed:]
+            what = (f"after {done[-1]} was written (it is complete)" if done else
+                    "after the command had finished: its output is complete" if finished else
+                    "a results folder being made was removed")
+            print(f"dihedra: interrupted ({name}); stopped ({what}).", file=sys.stderr)
+            return 128 + (received[0] if received else signal.SIGINT)
     return 0 if status is None else int(status)
+
+
+def _error(text):
+    print(f"dihedra: error: {text}", file=sys.stderr)
+    sys.stderr.flush()
+    return 2
+
+
+def describe_os_error(exc):
+    """One sentence for an ``OSError`` of the system: what failed, where, and what to do."""
+    import errno
+
+    where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+    reason = exc.strerror or str(exc) or type(exc).__name__
+    hints = {errno.ENOSPC: "free some space or write elsewhere", errno.EDQUOT: "free some space or write elsewhere",
+             errno.EROFS: "the folder is on a read-only file system: write elsewhere",
+             errno.EACCES: "check the permissions, or write elsewhere",
+             errno.EPERM: "check the permissions, or write elsewhere",
+             errno.EFBIG: "the file is larger than this process may write"}
+    hint = hints.get(exc.errno, "check the file and the disk")
+    return f"{reason}{where}; {hint}."
+
+
+class _Interrupted(KeyboardInterrupt):
+    """SIGTERM, raised as Ctrl-C is, so that one path cleans up after both."""
+
+
+@contextlib.contextmanager
+def stop_signals(restore=True):
+    """SIGINT and SIGTERM raise ``KeyboardInterrupt`` in this process (the signal's number is
+    appended to the list yielded, :data:`dihedra.trajectory.interrupts.received`, where long
+    loops, the final move of a results folder and the end of the command look too: a raise that
+    Python swallowed, in a finaliser or a fork handler, is not lost, and is not reported as
+    "Exception ignored" either); the first one only: later signals arrive while the run cleans
+    up, which takes a second or two, and are ignored. A worker process forked from this one
+    (multiprocessing) ends at once and quietly on either signal: this process removes what it
+    wrote. Outside the main thread (dihedra called from a thread of another program), nothing
+    changes. At the end the previous handlers come back, or with ``restore=False`` (the command
+    line of this process: its work is done, its exit status stands) both signals are ignored
+    while the interpreter shuts down."""
+    import threading
+
+    from ..trajectory import interrupts
+
+    received = interrupts.received
+    received.clear()
+    if threading.current_thread() is not threading.main_thread():
+        yield received
+        return
+    me = os.getpid()
+
+    def handler(signum, frame):
+        if os.getpid() != me:
+            os._exit(128 + signum)
+        if received:
+            return
+        received.append(signum)
+        raise _Interrupted() if signum == signal.SIGTERM else KeyboardInterrupt()
+
+    hook = sys.unraisablehook
+
+    def quiet(unraisable):   # the raise of a noted signal, swallowed in a finaliser or a fork handler
+        if received and isinstance(unraisable.exc_value, KeyboardInterrupt):
+            return
+        hook(unraisable)
+
+    previous = {sig: signal.signal(sig, handler) for sig in (signal.SIGINT, signal.SIGTERM)}
+    sys.unraisablehook = quiet
+    try:
+        yield received
+    finally:
+        for sig, old in previous.items():
+            signal.signal(sig, old if restore else signal.SIG_IGN)
+        if restore:
+            received.clear()
+            sys.unraisablehook = hook
 
 
 if __name__ == "__main__":  # pragma: no cover

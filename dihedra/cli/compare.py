@@ -1,7 +1,8 @@
 """``dihedra compare``: sampled free-energy profile versus a static torsion scan, with a verdict per type."""
 
 from ..analysis.compare import Thresholds, compare_with_scan, format_comparison
-from ..analysis.profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, resolve_temperature
+from ..analysis.profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, check_estimate_options,
+                                 resolve_temperature)
 from ..analysis.reference_populations import compare_reference_populations, format_reference
 from ..analysis.scans import read_scan
 from ..errors import DihedraError
@@ -61,6 +62,7 @@ OUTPUTS = ("comparison.csv", "comparison_profiles.csv", "comparison.json")
 def run(args):
     if args.scan is None and args.reference_populations is None:
         raise DihedraError("give --scan FILE, --reference-populations FILE, or both.")
+    check_estimate_options(args.bootstrap)   # before any work or note
     result = load_results(args.folder)
     check_earlier_outputs(result.folder, "dihedra compare", args.overwrite, names=OUTPUTS)
     if args.scan is None:

@@ -43,7 +43,7 @@ def register(sub):
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
                    help=f"bootstrap resamples for the 95 %% intervals of the dwell times (default "
                         f"{DEFAULT_BOOTSTRAP}: percentile intervals need more resamples than the standard errors of "
-                        "the other commands, 200; Efron & Tibshirani 1993)")
+                        "the other commands, 200; Efron & Tibshirani 1993; 0: no intervals)")
     p.add_argument("--torsion-bootstrap", action="store_true",
                    help="bootstrap the dwell-time intervals of every single torsion too (slow for thousands of "
                         "torsions; by default single torsions use the Kaplan-Meier variance of the mean, types "

@@ -2,7 +2,8 @@
 
 from ..errors import DihedraError
 from ..analysis.profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
-                                 PROFILE_ENERGY_UNITS, convert_energy_columns, free_energy_profiles, unit_suffix)
+                                 PROFILE_ENERGY_UNITS, check_estimate_options, convert_energy_columns,
+                                 free_energy_profiles, unit_suffix)
 from ..io.resultsdir import load_results
 from ..units import canonical_energy_unit
 from ..io.outputs import check_earlier_outputs
@@ -48,6 +49,7 @@ def run(args):
     unit = canonical_energy_unit(args.energy_unit)
     if unit not in PROFILE_ENERGY_UNITS:
         raise DihedraError(f"--energy-unit must be kJ/mol, kcal/mol or kT for profiles; got {args.energy_unit!r}.")
+    check_estimate_options(args.bootstrap, args.bandwidth)   # before any work or note
     result = load_results(args.folder)
     check_earlier_outputs(result.folder, "dihedra profile", args.overwrite, names=OUTPUTS)
     pset = free_energy_profiles(result, temperature_k=args.temperature, bin_width_deg=args.bin_width,

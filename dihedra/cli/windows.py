@@ -50,8 +50,11 @@ def run(args):
                           seed=args.seed, start=args.start, stop=args.stop, step=args.step, workers=args.workers,
                           max_mbar_samples=args.max_mbar_samples, log=say)
     wres.save(args.out, overwrite=args.overwrite)
+    warnings = [n for n in wres.notices if n.startswith("WARNING")]
+    for note in warnings:   # first and on their own: the numbers below rest on the window table
+        say(note)
     report(wres)
-    print_notices(wres.notices)
+    print_notices([n for n in wres.notices if n not in warnings])
     print(f"results written to {wres.result.folder}")
 
 

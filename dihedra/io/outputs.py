@@ -34,12 +34,17 @@ import time
 import uuid
 
 from ..errors import OutputExistsError
+from ..trajectory.interrupts import check as check_interrupts, signals_held
 
 #: The list of the files dihedra wrote into a results folder (its presence marks the folder).
 MARKER = "dihedra-files.json"
 
 #: Suffix of the temporary files of :func:`write_file` (a crash may leave one; it is dihedra's).
 TMP_SUFFIX = ".dihedra-tmp"
+
+#: The results folders moved into place by this process, in order (the command line tells an
+#: interrupt after a commit from one before it).
+COMMITTED = []
 
 _STAGING = re.compile(r"^\.(?P<name>.+)\.(?:partial|old)-(?P<host>[^-]+)-(?P<pid>\d+)-[0-9a-z_]+$")
 
@@ -399,7 +404,17 @@ class StagedFolder:
         return cls(out, path, previous, command)
 
     def commit(self):
-        """Write the marker and move the staging folder into place; returns the folder."""
+        """Write the marker and move the staging folder into place; returns the folder.
+
+        SIGINT and SIGTERM are held while the old folder is moved aside and the new one into place
+        (:func:`signals_held`): an interrupt comes before or after, never between. An interrupt
+        whose raise Python swallowed earlier (in a finaliser or a fork handler) stops it here."""
+        with signals_held():
+            check_interrupts()
+            out = self._commit()
+        return out
+
+    def _commit(self):
         marker = new_marker(self.command, _relative_files(self.path))
         marker["run_id"] = self.run_id
         _write_marker(self.path, marker)
@@ -417,6 +432,7 @@ class StagedFolder:
                                     "folder?); it is left as it is and these results were not kept: run again "
                                     "with another --out.") from None
         self.path = None
+        COMMITTED.append(out)
         if old is not None:
             _remove_listed(old)
         return out
@@ -448,9 +464,14 @@ class StagedFolder:
         return old
 
     def discard(self):
-        """Remove the staging folder (after an error or an interrupt)."""
+        """Remove the staging folder (after an error or an interrupt). Workers of a cluster may
+        still be writing a file into it meanwhile: it is tried again for a second."""
         if self.path is not None:
-            shutil.rmtree(self.path, ignore_errors=True)
+            for _ in range(5):
+                shutil.rmtree(self.path, ignore_errors=True)
+                if not os.path.exists(self.path):
+                    break
+                time.sleep(0.2)
             self.path = None
 
 

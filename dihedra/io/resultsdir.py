@@ -46,9 +46,12 @@ from __future__ import annotations
 
 import os
 
+import numpy as np
+
 from ..errors import InputFileError
 from ..selection.schemes import scheme_from_dict
 from ..selection.torsions import TorsionSet
+from ..trajectory.assemble import own_states
 from ..trajectory.result import TrackResult
 from .blocks import load_blocks, narrowed_type, save_npz
 from .series import ParquetSeries
@@ -80,7 +83,11 @@ def write_results(result, folder, blocks=True):
 def load_results(folder):
     """Load a results folder written by ``dihedra track`` as a
     :class:`~dihedra.trajectory.result.TrackResult` (its time series read from the folder when
-    asked for)."""
+    asked for).
+
+    The folder is checked for consistency first, cheaply (:func:`check_consistent`): a damaged or
+    cut table, summary or block file is one :class:`~dihedra.errors.InputFileError`, never other
+    numbers."""
     folder = os.fspath(folder)
     if not os.path.isdir(folder):
         raise InputFileError(f"results folder {folder} does not exist (run 'dihedra track ... --out {folder}' first).")
@@ -88,12 +95,81 @@ def load_results(folder):
                if not os.path.exists(os.path.join(folder, n))]
     if missing:
         raise InputFileError(f"{folder} is not a complete dihedra results folder: missing {', '.join(missing)}.")
-    tables = {attr: read_table(folder, name) for attr, name in TABLES.items()}
+    tables = {attr: read_table(folder, name, REQUIRED_COLUMNS.get(name, ())) for attr, name in TABLES.items()}
     tables["torsions"]["segid"] = tables["torsions"]["segid"].fillna("").astype(str)
     summary = read_json(folder, "summary.json")
-    blocks = load_blocks(os.path.join(folder, "blocks.npz"))
-    tset = TorsionSet.from_frame(tables["torsions"])
-    return TrackResult(torsion_set=tset, scheme=scheme_from_dict(summary["scheme"]), blocks=blocks,
+    scheme = _scheme(folder, summary)
+    blocks = _blocks(folder)
+    try:
+        tset = TorsionSet.from_frame(tables["torsions"])
+    except (TypeError, ValueError, AttributeError) as exc:
+        raise InputFileError(f"{os.path.join(folder, 'torsions.csv')} is damaged ({exc}); run 'dihedra track' "
+                             "again.") from None
+    check_consistent(folder, tables, blocks, scheme, summary)
+    return TrackResult(torsion_set=tset, scheme=scheme, blocks=blocks,
                        summary=summary, notices=list(summary.get("notices", [])),
                        folder=os.path.abspath(folder), series=ParquetSeries(os.path.abspath(folder)),
                        schemes=read_optional_table(folder, "schemes.csv"), **tables)
+
+
+#: Columns every table of a results folder has (a table without them is damaged or foreign).
+REQUIRED_COLUMNS = {
+    "torsions.csv": ("torsion", "type", "atom_indices", "name", "resname", "resid", "segid", "group", "order"),
+    "populations.csv": ("torsion", "type", "state", "population", "population_err", "n_samples"),
+    "populations_by_type.csv": ("type", "state", "population", "population_err"),
+    "populations_by_replica.csv": ("replica", "torsion", "type", "state", "population"),
+}
+
+
+def _damaged(folder, name, what):
+    return InputFileError(f"{os.path.join(folder, name)} is damaged ({what}); the results folder was cut or "
+                          "changed by hand: run 'dihedra track' again.")
+
+
+def _scheme(folder, summary):
+    try:
+        return scheme_from_dict(summary["scheme"])
+    except (KeyError, TypeError, ValueError, IndexError) as exc:
+        raise _damaged(folder, "summary.json", f"no readable state scheme: {type(exc).__name__} {exc}") from None
+
+
+def _blocks(folder):
+    import zipfile
+    import zlib
+
+    try:
+        return load_blocks(os.path.join(folder, "blocks.npz"))
+    except (zipfile.BadZipFile, zlib.error, EOFError, ValueError, KeyError, OSError) as exc:
+        raise _damaged(folder, "blocks.npz", f"{type(exc).__name__}: {str(exc).strip()[:120]}") from None
+
+
+def check_consistent(folder, tables, blocks, scheme, summary):
+    """Refuse a folder whose tables disagree with its own block sums (a table cut short, or files
+    of two runs): the torsion axis of the blocks against torsions.csv, and the rows of the
+    population tables against the torsions, types, states and replicas."""
+    if not isinstance(summary, dict):
+        raise _damaged(folder, "summary.json", "not a JSON object")
+    for key in ("state_counts", "block_replica", "histograms"):
+        if key not in blocks:
+            raise _damaged(folder, "blocks.npz", f"no array {key}")
+    torsions = tables["torsions"]
+    n_t, n_s = len(torsions), scheme.n_states
+    counts, hist = blocks["state_counts"], blocks["histograms"]
+    if counts.ndim != 3 or hist.ndim != 3 or counts.shape[1:] != (n_t, n_s) or hist.shape[1] != n_t:
+        raise _damaged(folder, "torsions.csv", f"{n_t} torsions of {n_s} states, but the block sums hold "
+                                               f"{counts.shape[1] if counts.ndim == 3 else '?'} torsions")
+    if summary.get("n_torsions") not in (None, n_t):
+        raise _damaged(folder, "torsions.csv", f"{n_t} rows, but summary.json counts {summary['n_torsions']} torsions")
+    types = [str(t) for t in torsions["type"]]
+    own = own_states(scheme, types)   # (a set of schemes: each torsion has the states of its own part)
+    per_torsion = np.full(n_t, n_s) if own is None else own.reshape(n_t, n_s).sum(axis=1)
+    first_of_type = np.unique(types, return_index=True)[1] if n_t else np.zeros(0, dtype=int)
+    n_rep = len(set(blocks["block_replica"].tolist()))
+    expected = {"populations": int(per_torsion.sum()), "populations_by_type": int(per_torsion[first_of_type].sum()),
+                "populations_by_replica": n_rep * int(per_torsion.sum())}
+    for attr, rows in expected.items():
+        if len(tables[attr]) != rows:
+            raise _damaged(folder, TABLES[attr], f"{len(tables[attr])} rows where {n_t} torsions of "
+                                                 f"{len(first_of_type)} types and {n_rep} replica(s) give {rows}")
+    if list(dict.fromkeys(tables["populations"]["torsion"])) != list(torsions["torsion"]):
+        raise _damaged(folder, "populations.csv", "its torsions are not those of torsions.csv")

@@ -79,7 +79,10 @@ class TimeSeriesWriter:
             schema = pa.schema(fields + [pa.field(label, value_type, nullable=False) for label in labels])
             self._schemas[kind] = schema
             self._dirs[kind] = os.path.join(folder, f"{kind}.parquet")
-            os.makedirs(self._dirs[kind], exist_ok=True)
+            try:   # (never makedirs: a worker of a stopped run must not make its removed folder again)
+                os.mkdir(self._dirs[kind])
+            except FileExistsError:
+                pass
         self._groups_per_file = max(1, COLUMN_CHUNKS_PER_FILE // len(schema))
         self._groups_in_file = 0
         self._pending = {kind: [] for kind in kinds}
@@ -172,7 +175,20 @@ def series_files(path):
 
 def series_schema(path):
     """The Arrow schema of a time series (of its first file)."""
-    return pq.ParquetFile(series_files(path)[0]).schema_arrow
+    files = series_files(path)
+    if not files:
+        raise InputFileError(f"the time series {path} holds no Parquet file; the results folder is damaged: run "
+                             "'dihedra track' again.")
+    try:
+        return pq.ParquetFile(files[0]).schema_arrow
+    except (OSError, ValueError) as exc:   # (Arrow's errors of a damaged file are ValueErrors)
+        raise damaged_series(path, exc) from None
+
+
+def damaged_series(path, exc):
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    return InputFileError(f"the time series {path} cannot be read ({text}); the results folder is damaged: run "
+                          "'dihedra track' again.")
 
 
 class ParquetSeriesFactory:
@@ -241,6 +257,5 @@ class ParquetSeries:
                             values[k] = col.slice(lo, m).to_numpy(zero_copy_only=False)
                         yield SeriesChunk(r, first, frame[lo:hi], time[lo:hi],
                                           None if weight is None else weight[lo:hi], labels, values)
-        except OSError as exc:
-            raise InputFileError(f"the time series {path} cannot be read ({exc}); the results folder is "
-                                 "damaged: run 'dihedra track' again.") from None
+        except (OSError, ValueError) as exc:   # (Arrow's errors of a damaged file are ValueErrors)
+            raise damaged_series(path, exc) from None

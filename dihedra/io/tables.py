@@ -164,24 +164,58 @@ def _json_default(obj):
     return str(obj)
 
 
+#: Tables made of groups of equal length (per key, within each value of a stratum column): one
+#: row per bin of each profile. A table cut short at a line boundary leaves its last group
+#: shorter. (The population tables, whose torsions may have different numbers of states, are
+#: checked against the block sums by :func:`dihedra.io.resultsdir.load_results`.)
+EQUAL_GROUPS = {
+    "profiles.csv": (("type", "torsion", "estimate"), "estimate"),
+    "comparison_profiles.csv": (("type",), None),
+}
+
+
 def read_table(folder, name, columns=()):
     """A table of a results folder as a DataFrame (empty cells as NaN, text kept as text).
 
     Raises :class:`~dihedra.errors.InputFileError` (one sentence) when the file is missing, is
-    not a readable table, or lacks one of ``columns``."""
+    not a readable table, lacks one of ``columns``, or is cut short: its last line unfinished
+    (every table dihedra writes ends with a line break), or, for the tables of
+    :data:`EQUAL_GROUPS`, a group shorter than the others."""
     path = os.path.join(os.fspath(folder), name)
     if not os.path.exists(path):
         raise InputFileError(f"{folder} has no {name}.")
+    damaged = "the results folder is damaged: run the step that writes it again."
     try:
+        with open(path, "rb") as fh:
+            fh.seek(0, os.SEEK_END)
+            if fh.tell():
+                fh.seek(-1, os.SEEK_END)
+                if fh.read(1) != b"\n":
+                    raise InputFileError(f"{path} is cut short (its last line is unfinished); {damaged}")
         frame = pd.read_csv(path, keep_default_na=False, na_values=[""])
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, OSError) as exc:
-        raise InputFileError(f"{path} is not a readable table ({str(exc).strip().splitlines()[0]}); the "
-                             "results folder is damaged: run the step that writes it again.") from None
+        raise InputFileError(f"{path} is not a readable table ({str(exc).strip().splitlines()[0]}); "
+                             f"{damaged}") from None
     missing = [c for c in columns if c not in frame.columns]
     if missing:
         raise InputFileError(f"{path} lacks the column(s) {', '.join(missing)}; the results folder is damaged "
                              "or from another program: run the step that writes it again.")
+    _check_groups(frame, path, os.path.basename(name), damaged)
     return frame
+
+
+def _check_groups(frame, path, name, damaged):
+    """Refuse a table of :data:`EQUAL_GROUPS` whose groups differ in length."""
+    keys, stratum = EQUAL_GROUPS.get(name, ((), None))
+    if not keys or not all(k in frame.columns for k in keys) or frame.empty:
+        return
+    sizes = frame.groupby(list(keys), sort=False, dropna=False).size()
+    strata = sizes.groupby(level=stratum, dropna=False) if stratum else [(None, sizes)]
+    for _, part in strata:
+        if part.nunique() > 1:
+            short = part.idxmin()
+            raise InputFileError(f"{path} is cut short or mixed: group {short} has {int(part.min())} rows where the "
+                                 f"others have {int(part.max())}; {damaged}")
 
 
 def read_optional_table(folder, name, columns=()):

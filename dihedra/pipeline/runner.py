@@ -15,6 +15,7 @@ from ..errors import DihedraError, InputFileError
 from ..io.outputs import check_folder_target, read_marker, write_text
 from ..io.resultsdir import load_results
 from ..io.tables import write_json
+from .checks import check_values
 from .steps import STEP_ORDER, STEPS
 
 #: Top-level keys of an analysis file.
@@ -138,18 +139,6 @@ def _check_type(key, value, default, where):
         raise DihedraError(f"{where}: key {key!r} takes a text; got {value!r}.")
 
 
-def _check_values(arguments, where):
-    """Values that an API call would refuse only after earlier steps ran: checked now."""
-    from ..analysis.profiles import check_bin_width
-
-    for key in ("bin_width_deg", "pair_bin_width_deg"):
-        if key in arguments:
-            try:
-                check_bin_width(arguments[key], 1.0, key)
-            except DihedraError as exc:
-                raise DihedraError(f"{where}: {exc}") from None
-
-
 def table_arguments(name, table, base_dir, where):
     """The API arguments of step ``name`` from its table; unknown keys, wrong types and missing
     input files are errors naming the key and the table."""
@@ -173,7 +162,7 @@ def table_arguments(name, table, base_dir, where):
         raise DihedraError(f"{where}: the table needs {', '.join(missing)}.")
     if name == "compare" and "scan" not in arguments and "reference_populations" not in arguments:
         raise DihedraError(f"{where}: give scan = \"FILE\", reference_populations = \"FILE\", or both.")
-    _check_values(arguments, where)
+    check_values(name, arguments, where)
     return arguments
 
 

@@ -17,6 +17,9 @@ import os
 import re
 import tomllib
 
+import numpy as np
+from MDAnalysis.exceptions import NoDataError
+
 from ..errors import SelectionError
 from . import biopolymer
 from .rotatable import rotatable_torsions
@@ -29,11 +32,16 @@ _INDEX_SPEC = re.compile(r"^\s*-?\d+\s*,\s*-?\d+\s*,\s*-?\d+\s*,\s*-?\d+\s*$")
 
 
 def _check_indices(universe, indices, where="torsion"):
-    """Check four atom indices: integers, in range, all different."""
+    """Check four atom indices: whole numbers (not text, not 1.7), in range, all different."""
     n_atoms = universe.atoms.n_atoms
+    if isinstance(indices, (str, bytes)) or not hasattr(indices, "__len__"):
+        raise SelectionError(f"{where}: atoms must be a list of four whole numbers; got {indices!r}.")
     if len(indices) != 4:
         raise SelectionError(f"{where}: a torsion needs exactly 4 atoms; got {len(indices)}.")
     for i in indices:
+        if isinstance(i, bool) or not isinstance(i, (int, np.integer)):
+            raise SelectionError(f"{where}: atom indices must be whole numbers (0-based); got {i!r} in "
+                                 f"{list(indices)}.")
         if i < 0 or i >= n_atoms:
             raise SelectionError(
                 f"{where}: atom index {i} is out of range; the topology has {n_atoms} atoms "
@@ -99,7 +107,7 @@ def torsions_from_toml(universe, path):
         if ("atoms" in entry) == ("selection" in entry):
             raise SelectionError(f"{where}: give either 'atoms' (four indices) or 'selection'.")
         if "atoms" in entry:
-            indices = _check_indices(universe, list(entry["atoms"]), where=where)
+            indices = _check_indices(universe, entry["atoms"], where=where)
         else:
             indices = _indices_from_selection(universe, entry["selection"], where)
         base = torsion_from_atoms(universe, indices, ttype=entry.get("type"))
@@ -158,23 +166,11 @@ def select_torsions(universe, specs, *, keep_variants=False):
     result = TorsionSet()
     for spec in specs:
         spec = str(spec).strip()
-        if _INDEX_SPEC.match(spec):
-            part = torsions_from_indices(universe, spec)
-        elif spec == "rotatable":
-            part = rotatable_torsions(universe)
-        elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
-            part = {"protein-backbone": biopolymer.protein_backbone_torsions,
-                    "protein-sidechains": biopolymer.protein_sidechain_torsions,
-                    "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](
-                        universe, keep_variants=keep_variants)
-        elif spec.lower().endswith(".toml"):
-            if not os.path.exists(spec):
-                raise SelectionError(f"torsion file {spec} does not exist.")
-            part = torsions_from_toml(universe, spec)
-        else:
-            raise SelectionError(
-                f"unknown torsion specification {spec!r}; use one of {', '.join(NAMED_SPECS)}, "
-                "four comma-separated atom indices (e.g. 0,1,2,3) or a .toml file.")
+        try:
+            part = _select_one(universe, spec, keep_variants)
+        except NoDataError as exc:   # a topology without names, residues or bonds
+            raise SelectionError(f"--torsions {spec}: the topology lacks what this needs ({exc}); give a topology "
+                                 "with atom names and bonds (PDB with CONECT, PSF, TPR, PRMTOP, ...).") from None
         result.torsions.extend(part.torsions)
         result.notices.extend(part.notices)
     result = _deduplicate(result)
@@ -182,6 +178,27 @@ def select_torsions(universe, specs, *, keep_variants=False):
         raise SelectionError(f"the specification(s) {', '.join(specs)} select no torsions in this "
                              "topology." + (" " + " ".join(result.notices) if result.notices else ""))
     return _assign_order(result)
+
+
+def _select_one(universe, spec, keep_variants=False):
+    """The torsions of one specification."""
+    if _INDEX_SPEC.match(spec):
+        part = torsions_from_indices(universe, spec)
+    elif spec == "rotatable":
+        part = rotatable_torsions(universe)
+    elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
+        part = {"protein-backbone": biopolymer.protein_backbone_torsions,
+                "protein-sidechains": biopolymer.protein_sidechain_torsions,
+                "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](universe, keep_variants=keep_variants)
+    elif spec.lower().endswith(".toml"):
+        if not os.path.exists(spec):
+            raise SelectionError(f"torsion file {spec} does not exist.")
+        part = torsions_from_toml(universe, spec)
+    else:
+        raise SelectionError(
+            f"unknown torsion specification {spec!r}; use one of {', '.join(NAMED_SPECS)}, "
+            "four comma-separated atom indices (e.g. 0,1,2,3) or a .toml file.")
+    return part
 
 
 def _deduplicate(tset):

@@ -40,11 +40,23 @@ _LASTIDX = len(MAGICINTS)
 # falls back to MDAnalysis). The table gets one more entry so that the index stays valid.
 _MAGIC = np.concatenate([MAGICINTS, MAGICINTS[-1:]])
 
-#: status codes of :func:`decode_frames`
-OK, BAD_MAGIC, BAD_ATOMS, TRUNCATED, BAD_DATA = 0, 1, 2, 3, 4
+#: status codes of :func:`decode_frames` and :func:`scan_frames`: BAD_HEADER is a header that no
+#: writer of finite coordinates makes (the integer range overflowed, as when NaN coordinates are
+#: written; a precision that is not a positive number; a size index or byte count out of range),
+#: BAD_DATA a bit stream that runs past its atoms or its bytes, UNSUPPORTED a valid frame whose
+#: small-integer size steps past the library's table (read by MDAnalysis instead)
+OK, BAD_MAGIC, BAD_ATOMS, TRUNCATED, BAD_DATA, BAD_HEADER, UNSUPPORTED = 0, 1, 2, 3, 4, 5, 6
+
+#: largest magnitude of an integer coordinate a writer stores (the library's MAXABS, INT_MAX - 2)
+MAXABS = 2147483645
 
 #: bytes of a frame before the coordinates: magic, atoms, step, time, box, atoms again
 HEADER_BYTES = 56
+
+#: zero words after the bit stream of a frame: a damaged stream is caught at the end of the atom
+#: where it runs past its bytes, and one atom reads at most 822 bits (three 32-bit integers, the
+#: run flag and length, ten small-integer triplets of at most 72 bits)
+PAD_WORDS = 16
 
 _U0 = np.uint64(0)
 _U1 = np.uint64(1)
@@ -82,7 +94,8 @@ def _bswap(x):
 
 @njit(**_OPTS)
 def _words(buf, lo, nbytes, words):
-    """The bit stream ``buf[lo:lo + nbytes]`` as big-endian 64-bit words, two zero words after."""
+    """The bit stream ``buf[lo:lo + nbytes]`` as big-endian 64-bit words, :data:`PAD_WORDS` zero
+    words after."""
     n = nbytes // 8
     for j in range(n):
         w = _U0
@@ -94,8 +107,8 @@ def _words(buf, lo, nbytes, words):
     for b in range(nbytes - 8 * n):
         w |= np.uint64(buf[lo + 8 * n + b]) << np.uint64(56 - 8 * b)
     words[n] = w
-    words[n + 1] = _U0
-    words[n + 2] = _U0
+    for j in range(n + 1, n + 1 + PAD_WORDS):
+        words[j] = _U0
 
 
 @njit(**_INLINE)
@@ -276,8 +289,10 @@ def _coordinates(words, nbits_total, n_atoms, out, f, m0, m1, m2, s0, s1, s2, sm
             run -= is_smaller
             is_smaller -= 1
         if run > 0:
-            if i + run // 3 > n_atoms or smallidx >= _LASTIDX:
+            if i + run // 3 > n_atoms:
                 return BAD_DATA
+            if smallidx >= _LASTIDX:
+                return UNSUPPORTED
             for k in range(0, run, 3):
                 x, y, z, pos = _unpack3(words, pos, smallidx, size, size, inv_small, inv_small)
                 i += 1
@@ -323,6 +338,79 @@ def _coordinates(words, nbits_total, n_atoms, out, f, m0, m1, m2, s0, s1, s2, sm
     return OK
 
 
+@njit(**_INLINE)
+def max_frame_bytes(n_atoms):
+    """The largest byte count of compressed coordinates a writer makes for ``n_atoms`` atoms (the
+    library's buffer holds 1.2 times three 32-bit integers per atom)."""
+    return np.int64(16) * n_atoms + 64
+
+
+@njit(**_INLINE)
+def _frame_bytes(buf, p, end, n_atoms):
+    """Check the header of the frame at byte ``p`` (``buf[:end]`` holds the bytes read); return
+    ``(status, bytes of the frame)``. Every field that sizes or steers the decoding is checked:
+    the magic number, both atom counts, and for compressed frames the precision, the integer
+    range (a writer's conversion of NaN leaves the smallest integer there, and the sizes then
+    overflow), the first size index and the byte count (padded to 4 bytes; at most
+    :func:`max_frame_bytes`)."""
+    if p + HEADER_BYTES > end:
+        return TRUNCATED, 0
+    if _int32(buf, p) != 1995:
+        return BAD_MAGIC, 0
+    if _int32(buf, p + 4) != n_atoms or _int32(buf, p + 52) != n_atoms:
+        return BAD_ATOMS, 0
+    if n_atoms <= 9:
+        return OK, HEADER_BYTES + 12 * n_atoms
+    if p + HEADER_BYTES + 36 > end:
+        return TRUNCATED, 0
+    precision = _float32(buf, p + HEADER_BYTES)
+    if not (precision > 0 and precision < np.inf):
+        return BAD_HEADER, 0
+    for k in range(3):
+        lo = _int32(buf, p + HEADER_BYTES + 4 + 4 * k)
+        hi = _int32(buf, p + HEADER_BYTES + 16 + 4 * k)
+        if lo < -MAXABS - 1 or hi > MAXABS + 1 or hi < lo:
+            return BAD_HEADER, 0
+    smallidx = _int32(buf, p + HEADER_BYTES + 28)
+    nbytes = _int32(buf, p + HEADER_BYTES + 32)
+    if smallidx < _FIRSTIDX or smallidx >= _LASTIDX or nbytes < 0 or nbytes > max_frame_bytes(n_atoms):
+        return BAD_HEADER, 0
+    return OK, HEADER_BYTES + 36 + 4 * ((np.int64(nbytes) + 3) // 4)
+
+
+@njit(**_OPTS)
+def scan_frames(buf, n_atoms):
+    """Walk the frames of a whole XTC file by their headers (:func:`_frame_bytes`), without
+    decoding them.
+
+    Parameters
+    ----------
+    buf : ndarray of uint8
+        The bytes of the file (a memory map: only the headers are read).
+    n_atoms : int
+        The atom count every frame must have.
+
+    Returns
+    -------
+    status, n_frames, offset : int, int, int
+        ``OK``, the number of frames and the size of the file when every frame is whole; else
+        the status of frame ``n_frames`` (the first one that is not; ``TRUNCATED`` when the
+        file ends inside it) and its byte offset.
+    """
+    end = len(buf)
+    p = np.int64(0)
+    f = 0
+    while p < end:
+        status, size = _frame_bytes(buf, p, end, n_atoms)
+        if status == OK and p + size > end:
+            status = TRUNCATED
+        if status != OK:
+            return status, f, p
+        f += 1
+        p += size
+    return OK, f, p
+
+
 @njit(**_OPTS)
 def decode_frames(buf, starts, n_atoms, positions, boxes, steps, times, words):
     """Decode the XTC frames that begin at byte ``starts[f]`` of ``buf``.
@@ -342,7 +430,7 @@ def decode_frames(buf, starts, n_atoms, positions, boxes, steps, times, words):
     times : ndarray of float32
         Receive the step and the time (ps) of each frame.
     words : ndarray of uint64
-        Work space: at least (largest frame in bytes) / 8 + 3 words.
+        Work space: at least (largest frame in bytes) / 8 + 1 + :data:`PAD_WORDS` words.
 
     Returns
     -------
@@ -354,12 +442,11 @@ def decode_frames(buf, starts, n_atoms, positions, boxes, steps, times, words):
     end = len(buf)
     for f in range(len(starts)):
         p = starts[f]
-        if p + HEADER_BYTES > end:
+        status, size = _frame_bytes(buf, p, end, n_atoms)
+        if status != OK:
+            return status, f
+        if p + size > end:
             return TRUNCATED, f
-        if _int32(buf, p) != 1995:
-            return BAD_MAGIC, f
-        if _int32(buf, p + 4) != n_atoms or _int32(buf, p + 52) != n_atoms:
-            return BAD_ATOMS, f
         steps[f] = _int32(buf, p + 8)
         times[f] = _float32(buf, p + 12)
         for i in range(3):
@@ -367,14 +454,10 @@ def decode_frames(buf, starts, n_atoms, positions, boxes, steps, times, words):
                 boxes[f, i, j] = _float32(buf, p + 16 + 4 * (3 * i + j))
         p += HEADER_BYTES
         if n_atoms <= 9:   # stored as plain floats (nm)
-            if p + 12 * n_atoms > end:
-                return TRUNCATED, f
             for a in range(n_atoms):
                 for k in range(3):
                     positions[f, a, k] = _float32(buf, p + 4 * (3 * a + k)) * ten
             continue
-        if p + 36 > end:
-            return TRUNCATED, f
         inv = np.float32(1.0 / np.float64(_float32(buf, p)))
         m0 = _int32(buf, p + 4)
         m1 = _int32(buf, p + 8)
@@ -385,11 +468,7 @@ def decode_frames(buf, starts, n_atoms, positions, boxes, steps, times, words):
         smallidx = _int32(buf, p + 28)
         nbytes = _int32(buf, p + 32)
         p += 36
-        if smallidx < _FIRSTIDX or smallidx >= _LASTIDX or min(s0, s1, s2) <= 0 or nbytes < 0:
-            return BAD_DATA, f
-        if p + nbytes > end:
-            return TRUNCATED, f
-        if nbytes // 8 + 3 > len(words):
+        if nbytes // 8 + 1 + PAD_WORDS > len(words):
             return BAD_DATA, f
         _words(buf, p, nbytes, words)
         status = _coordinates(words, np.int64(nbytes) * 8, n_atoms, positions, f, m0, m1, m2,

@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .._version import __version__
+from ..errors import DihedraError
 from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, heterogeneity_notice,
                                     pool_by_type, replica_populations, torsion_populations)
 from .conformer_counts import conformer_layout, dense_conformers, reduce_conformer_rows
@@ -95,12 +96,13 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     dense = dense_conformers(blocks, tset, scheme.n_states)
 
     own = own_states(scheme, types)
-    pops = torsion_populations(state_counts, block_replica, labels, types, scheme.labels)
-    by_rep = replica_populations(state_counts, block_replica, labels, types, scheme.labels, pooled=pops)
+    pops = undefined_as_nan(torsion_populations(state_counts, block_replica, labels, types, scheme.labels))
+    by_rep = undefined_as_nan(replica_populations(state_counts, block_replica, labels, types, scheme.labels,
+                                                  pooled=pops))
     if own is not None:   # a set of schemes: each torsion has rows for the states of its own part
         pops = pops[own].reset_index(drop=True)
         by_rep = by_rep[np.tile(own, len(by_rep) // len(own))].reset_index(drop=True)
-    by_type = pool_by_type(pops)
+    by_type = pool_defined(pops)
     groups, members, skipped = conformer_layout(tset, scheme.n_states)
     conf, conf_type = conformer_populations(conf_rows, conf_w, block_replica, len(block_replica), groups,
                                             members, labels, types, scheme.labels, resnames, dense=dense)
@@ -108,6 +110,11 @@ def assemble_result(tset, scheme, universe, notices, blocks):
         notices.append(f"no conformers for {len(skipped)} group(s) with too many torsions "
                        f"(e.g. {skipped[0]}); their torsions are still analysed one by one.")
     undefined = blocks["undefined"]
+    never = pops.loc[pops["n_samples"] == 0, "torsion"].unique()
+    if len(never):
+        notices.append(f"{len(never)} torsion(s) have no defined frame at all (e.g. {never[0]}: NaN coordinates or "
+                       "collinear atoms in every analysed frame); their populations are NaN, and the pooled "
+                       "populations of their types leave them out.")
     if undefined.any():
         worst = int(np.argmax(undefined))
         notices.append(f"{int((undefined > 0).sum())} torsion(s) were undefined in some frames (collinear "
@@ -171,7 +178,7 @@ def own_states(scheme, types):
 def error_notices(pops, by_type, conf_type):
     """Sentences on errors that are missing, 0, or include the spread between torsions."""
     out = []
-    missing = pops[pops["population_err"].isna()]
+    missing = pops[pops["population_err"].isna() & (pops["n_samples"] > 0)]   # (none defined: a notice of its own)
     if len(missing):
         out.append(f"{missing['torsion'].nunique()} torsion(s) have no error estimate (e.g. {missing['torsion'].iloc[0]}): "
                    "fewer than two blocks of frames hold them (a single frame, or too few frames); their "
@@ -186,6 +193,33 @@ def error_notices(pops, by_type, conf_type):
         if note:
             out.append(note)
     return out
+
+
+def undefined_as_nan(pops):
+    """Rows of torsions without one defined frame (``n_samples`` 0): population and error NaN,
+    no effective samples (not 0 +- 0 from infinitely many)."""
+    none = (pops["n_samples"] == 0).to_numpy()
+    if none.any():
+        pops = pops.copy()
+        pops.loc[none, ["population", "population_err"]] = np.nan
+        pops["n_effective"] = np.where(none, 0.0, pops["n_effective"].to_numpy(dtype=float))
+    return pops
+
+
+def pool_defined(pops):
+    """:func:`~dihedra.numerics.populations.pool_by_type` of the torsions with defined frames; a type
+    without any gets NaN rows with ``n_torsions`` 0."""
+    defined = pops["n_samples"] > 0
+    if defined.all():
+        return pool_by_type(pops)
+    pooled = pool_by_type(pops[defined]) if defined.any() else None
+    empty = pops[~pops["type"].isin(pops.loc[defined, "type"])]
+    rows = empty.drop_duplicates(["type", "state"])[["type", "state"]].assign(
+        population=np.nan, population_err=np.nan, n_torsions=0)
+    order = {s: k for k, s in enumerate(pd.unique(pops["state"]))}
+    out = pd.concat([p for p in (pooled, rows) if p is not None], ignore_index=True)
+    out = out.assign(_o=out["state"].map(order)).sort_values(["type", "_o"], kind="stable")
+    return out.drop(columns="_o").reset_index(drop=True)
 
 
 def replica_info(universe, traj, frames, tp, dt_ps, notices=None):
@@ -260,8 +294,8 @@ def pass_threads(threads, backend):
         except AttributeError:   # not on Linux
             cores = os.cpu_count() or 1
         return 2 if cores >= 2 else 1
-    if int(threads) not in (1, 2):
-        raise ValueError(f"threads must be 1 or 2; got {threads!r}")
+    if threads not in (1, 2) or isinstance(threads, bool):
+        raise DihedraError(f"threads must be 1 or 2; got {threads!r}.")
     return int(threads)
 
 

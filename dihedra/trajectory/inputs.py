@@ -5,15 +5,29 @@ or unreadable file, an unknown format, a topology and trajectory with different 
 numbers given), a truncated trajectory (the last complete frame and how to stop before it). A
 trajectory in a read-only folder still works: MDAnalysis cannot store its frame-offset cache beside
 it and recomputes the offsets, which dihedra reports as a notice.
+
+An XTC file is checked before MDAnalysis opens it (:func:`check_xtc`): the header of every frame
+(the fields that size and steer the decoding; a writer that met NaN coordinates leaves an
+overflowed integer range, on which MDAnalysis' reader corrupts its memory) and the compressed
+coordinates of the first two frames (which MDAnalysis reads when it opens the file); the frames
+of a pass are checked by dihedra's decoder as they are read. A file that ends inside a frame (a
+run cut while writing) is analysed up to its last complete frame, with a notice.
 """
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import hashlib
 import os
+import struct
+import sys
 import warnings
 
+import numpy as np
+
 from ..errors import InputFileError
+from . import _xtc
 
 
 def check_readable(path, what="file"):
@@ -40,6 +54,26 @@ def sha256(path, chunk=1 << 22):
         for block in iter(lambda: fh.read(chunk), b""):
             h.update(block)
     return h.hexdigest()
+
+
+#: Formats that hold coordinates only: given as a topology, they make a Universe without names or
+#: bonds (MDAnalysis reads them), which no torsion specification can use.
+COORDINATE_ONLY = ("xtc", "trr", "dcd", "nc", "ncdf", "netcdf", "trj", "mdcrd", "tng", "h5md", "xdr")
+
+
+@contextlib.contextmanager
+def quiet_teardown():
+    """Silence the complaints of MDAnalysis readers that failed half-way through their
+    construction while they are released (their ``__del__`` closes a file they never opened and
+    Python prints "Exception ignored ..." after dihedra's own error line); the error that made
+    them fail is reported by the caller."""
+    hook = sys.unraisablehook
+    sys.unraisablehook = lambda unraisable: None
+    try:
+        yield
+        gc.collect()
+    finally:
+        sys.unraisablehook = hook
 
 
 def _trajectory_atoms(path):
@@ -74,60 +108,138 @@ def load_universe(topology, trajectory=None, notices=None):
     if trajectory is not None:
         check_readable(trajectory, "trajectory")
         files.append(trajectory)
-    with warnings.catch_warnings(record=True) as caught:
+    complete = None
+    if trajectory is not None and is_xtc(trajectory):
+        complete, note = check_xtc(trajectory)
+        if note:
+            notices.append(note)
+    if os.path.splitext(os.fspath(topology))[1].lower().lstrip(".") in COORDINATE_ONLY:
+        raise InputFileError(f"topology {topology} is a trajectory format (coordinates only: no atom names, "
+                             "residues or bonds); give the topology first (PDB with CONECT, PSF, TPR, PRMTOP, "
+                             "GRO, ...), then the trajectories.")
+    error = None
+    with warnings.catch_warnings(record=True) as caught, quiet_teardown():
         warnings.simplefilter("always")
         try:
             universe = mda.Universe(*files)
         except ValueError as exc:
+            error = _reason(files, exc)
             if "number of atoms" in str(exc) and trajectory is not None:
                 n_traj = _trajectory_atoms(trajectory)
                 n_top = _topology_atoms(topology)
-                raise InputFileError(
-                    f"topology {topology} has {n_top if n_top is not None else '?'} atoms but trajectory "
-                    f"{trajectory} has {n_traj if n_traj is not None else '?'}; they must describe the same "
-                    "system.") from None
-            raise InputFileError(_reason(files, exc)) from None
+                error = (f"topology {topology} has {n_top if n_top is not None else '?'} atoms but trajectory "
+                         f"{trajectory} has {n_traj if n_traj is not None else '?'}; they must describe the same "
+                         "system.")
         except Exception as exc:  # MDAnalysis raises many types for unreadable files
-            raise InputFileError(_reason(files, exc)) from None
+            error = _reason(files, exc)
+    if error is not None:   # (raised here: the half-made reader is gone, and its complaints with it)
+        raise InputFileError(error)
     for w in caught:
         text = str(w.message)
         if "Cannot write lock/offset file" in text:
             notices.append(f"cannot write the frame-offset cache beside {trajectory} (read-only "
                            "folder); offsets are recomputed on every run, which is slower but correct.")
-    if trajectory is not None:
-        _check_trailing_bytes(universe, trajectory, notices)
+    if complete is not None:
+        universe.trajectory.dihedra_complete_frames = min(complete, universe.trajectory.n_frames)
     return universe
 
 
-def _check_trailing_bytes(universe, trajectory, notices):
-    """Notice for an XTC file that ends with an incomplete frame after its last complete one (a run
-    cut while writing): MDAnalysis then silently uses the complete frames only.
+def usable_frames(reader):
+    """Frames of a trajectory reader that can be analysed: those of MDAnalysis, less an XTC
+    frame cut at the end of the file (:func:`check_xtc`)."""
+    return int(getattr(reader, "dihedra_complete_frames", reader.n_frames))
 
-    The end of the last frame follows from the XTC frame layout (XDR, big-endian): for more than 9
-    atoms a 88-byte header ends with the byte count of the compressed coordinates, padded to 4 bytes.
+
+def is_xtc(path):
+    return os.fspath(path).lower().endswith(".xtc")
+
+
+#: what a frame header status of :mod:`dihedra.trajectory._xtc` means, for messages
+_XTC_PROBLEMS = {
+    _xtc.BAD_MAGIC: "does not start with the XTC magic number 1995 (the file is damaged there, or is not XTC)",
+    _xtc.BAD_ATOMS: "holds another number of atoms than frame 0",
+    _xtc.BAD_DATA: "has damaged compressed coordinates (the bit stream runs past its atoms or its bytes)",
+}
+
+
+def check_xtc(path):
+    """Check every frame header of an XTC file, and decode its first two frames, before any reader
+    touches it; return ``(complete frames, notice or None)``.
+
+    Raises :class:`~dihedra.errors.InputFileError` naming the first malformed frame (with the
+    frames that can be read before it), or for a file without one complete frame. A file that
+    ends inside its last frame gives the number of complete frames and a notice.
     """
-    reader = universe.trajectory
-    offsets = getattr(getattr(reader, "_xdr", None), "offsets", None)
-    if offsets is None or len(offsets) == 0 or not str(trajectory).lower().endswith(".xtc"):
-        return
-    if reader.n_atoms <= 9:
-        return
-    last = int(offsets[-1])
+    path = os.fspath(path)
+    size = os.path.getsize(path)
+    if size == 0:
+        raise InputFileError(f"trajectory {path} is empty (0 bytes).")
+    buf = np.memmap(path, dtype=np.uint8, mode="r")
     try:
-        with open(trajectory, "rb") as fh:
-            fh.seek(last + 88)
-            raw = fh.read(4)
-    except OSError:
-        return
-    if len(raw) < 4:
-        return  # the last frame itself is cut: reported when the run reaches it
-    n_bytes = int.from_bytes(raw, "big")
-    end = last + 92 + 4 * ((n_bytes + 3) // 4)
-    size = os.path.getsize(trajectory)
-    if end < size:
-        notices.append(f"trajectory {trajectory} ends with an incomplete frame ({size - end} bytes after "
-                       f"frame {reader.n_frames - 1}), as when a run is cut while writing; only the "
-                       f"{reader.n_frames} complete frames are used.")
+        head = bytes(buf[:8])
+        magic, n_atoms = struct.unpack(">ii", head) if len(head) == 8 else (None, None)
+        if magic != 1995 or n_atoms <= 0:
+            raise InputFileError(f"trajectory {path} is not an XTC file (it does not start with an XTC frame "
+                                 "header); check the file and its extension.")
+        status, n, offset = _xtc.scan_frames(buf, n_atoms)
+        if status not in (_xtc.OK, _xtc.TRUNCATED):
+            raise malformed_frame(path, n, _header_problem(buf, int(offset), n_atoms, status))
+        if n == 0:
+            raise InputFileError(f"trajectory {path} holds no complete frame ({size} bytes, cut inside frame 0).")
+        _decode_first_frames(path, buf, min(n, 2), n_atoms)
+    finally:
+        del buf
+    if status == _xtc.TRUNCATED:
+        return n, (f"trajectory {path} ends with an incomplete frame (frame {n} is cut after {size - int(offset)} "
+                   f"bytes, as when a run is cut while writing); only the {n} complete frames are used.")
+    return n, None
+
+
+def malformed_frame(path, frame, problem):
+    """The error for a malformed frame ``frame`` of a trajectory (the frames before it can be read)."""
+    tail = (f"frames 0-{frame - 1} can be read: rerun with --stop {frame} to analyse them, or write the "
+            "trajectory again" if frame else "write the trajectory again")
+    return InputFileError(f"trajectory {path} is damaged: frame {frame} {problem}; {tail}.")
+
+
+def _header_problem(buf, p, n_atoms, status):
+    """What is wrong with the frame header at byte ``p`` (the status of :func:`_xtc.scan_frames`)."""
+    if status != _xtc.BAD_HEADER:
+        return _XTC_PROBLEMS.get(status, "is malformed")
+    precision, = struct.unpack(">f", bytes(buf[p + 56:p + 60]))
+    lo = struct.unpack(">3i", bytes(buf[p + 60:p + 72]))
+    hi = struct.unpack(">3i", bytes(buf[p + 72:p + 84]))
+    smallidx, nbytes = struct.unpack(">2i", bytes(buf[p + 84:p + 92]))
+    if min(lo) < -_xtc.MAXABS - 1 or max(hi) > _xtc.MAXABS + 1:
+        return (f"has an overflowed coordinate range (smallest integer {min(lo)}), as a writer leaves it for "
+                "NaN or infinite coordinates (a simulation that blew up)")
+    if any(h < low for low, h in zip(lo, hi)):
+        return f"has a coordinate range whose maximum {list(hi)} lies below its minimum {list(lo)}"
+    if not (0 < precision < float("inf")):
+        return f"has precision {precision}, not a positive number"
+    if nbytes < 0 or nbytes > _xtc.max_frame_bytes(n_atoms):
+        return f"has a byte count of {nbytes}, impossible for {n_atoms} atoms"
+    return f"has a small-integer size index {smallidx} outside the format's table"
+
+
+def _decode_first_frames(path, buf, n, n_atoms):
+    """Decode the first ``n`` frames with dihedra's decoder (MDAnalysis reads them when it opens the
+    file, and its reader does not survive a damaged bit stream)."""
+    sizes = []
+    p = 0
+    for _ in range(n):
+        nbytes = struct.unpack(">i", bytes(buf[p + 88:p + 92]))[0] if n_atoms > 9 else 0
+        size = _xtc.HEADER_BYTES + (36 + 4 * ((nbytes + 3) // 4) if n_atoms > 9 else 12 * n_atoms)
+        sizes.append(size)
+        p += size
+    data = np.asarray(buf[:p])
+    starts = np.cumsum([0] + sizes[:-1]).astype(np.int64)
+    words = np.empty(max(sizes) // 8 + 1 + _xtc.PAD_WORDS, dtype=np.uint64)
+    status, frame = _xtc.decode_frames(data, starts, n_atoms, np.empty((n, n_atoms, 3), np.float32),
+                                       np.empty((n, 3, 3), np.float32), np.empty(n, np.int64),
+                                       np.empty(n, np.float32), words)
+    if status not in (_xtc.OK, _xtc.UNSUPPORTED):
+        raise malformed_frame(path, int(frame), _XTC_PROBLEMS.get(status, "is malformed"))
 
 
 def _topology_atoms(path):
@@ -165,7 +277,7 @@ def _count_readable_frames(universe):
 
 def truncated_error(trajectory, universe, exc):
     """The error for a trajectory that fails mid-run."""
-    n_ok = _count_readable_frames(universe)
+    n_ok = usable_frames(universe.trajectory) if is_xtc(trajectory) else _count_readable_frames(universe)
     n_claimed = universe.trajectory.n_frames
     last = n_ok - 1
     return InputFileError(

@@ -51,6 +51,7 @@ class Overlap:
         for b in batches:
             self._free.put(b)
         self._error = None
+        self._abandon = False
         self._thread = threading.Thread(target=self._run, name="dihedra-pass", daemon=True)
         self._thread.start()
 
@@ -60,7 +61,7 @@ class Overlap:
             if batch is None:
                 return
             try:
-                if self._error is None:
+                if self._error is None and not self._abandon:
                     self._process(batch)
             except BaseException as exc:  # noqa: BLE001 - handed to the calling thread
                 self._error = exc
@@ -90,7 +91,11 @@ class Overlap:
         self.stop()
         self._check()
 
-    def stop(self):
+    def stop(self, abandon=False):
+        """End the thread; with ``abandon`` (after an error or an interrupt) the batches still
+        queued are dropped, so it ends after the batch in hand."""
+        if abandon:
+            self._abandon = True
         if self._thread.is_alive():
             self._todo.put(None)
             self._thread.join()

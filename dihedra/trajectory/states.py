@@ -27,6 +27,7 @@ import numpy as np
 
 from ..errors import DihedraError, SelectionError
 from ..selection.choice import choose_schemes
+from ..units import check_temperature
 from ..selection.specs import select_torsions
 from ..selection.torsions import TorsionSet
 from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info, scheme_table
@@ -133,8 +134,8 @@ class TorsionStates(TorsionPass):
             need_temperature(temperature_k)
         self._basins = self._basin_record = None
         scheme = self._choice.provisional() if self._choice.needs_data else self._choice.resolve()
-        if dt_ps is not None and not (np.isfinite(float(dt_ps)) and float(dt_ps) > 0):
-            raise DihedraError(f"dt_ps must be a positive number of ps; got {dt_ps!r}.")
+        check_pass_options(dt_ps=dt_ps, temperature_k=temperature_k, bin_width_deg=bin_width_deg,
+                           n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks)
         series = MemorySeriesFactory() if keep_states or keep_angles else None
         super().__init__(universe, tset, scheme, n_state_blocks=n_state_blocks, n_hist_blocks=n_hist_blocks,
                          bin_width_deg=bin_width_deg, weights=weights, series=series, keep_angles=keep_angles,
@@ -161,6 +162,7 @@ class TorsionStates(TorsionPass):
 
         A serial run on a machine with two or more cores reads the trajectory in one thread and
         computes in a second one; the results are the same."""
+        check_frame_range(start, stop, step)
         self.threads = pass_threads(self._threads_asked, backend or "serial")
         self._range = dict(start=start, stop=stop, step=step)
         self._started = time.time()
@@ -256,6 +258,56 @@ class TorsionStates(TorsionPass):
         self.results.summary = result.summary
         self.results.notices = result.notices
         self.tracking_result = result
+
+
+def positive_number(name, value, unit="", allow_none=True):
+    """``value`` as a finite positive float (``None`` passes when ``allow_none``); else a
+    :class:`DihedraError` naming ``name``."""
+    if value is None and allow_none:
+        return None
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = float("nan")
+    if isinstance(value, bool) or not (np.isfinite(number) and number > 0):
+        raise DihedraError(f"{name} must be a positive number{' of ' + unit if unit else ''}; got {value!r}.")
+    return number
+
+
+def whole_number(name, value, minimum=1, allow_none=True):
+    """``value`` as an int of at least ``minimum`` (``None`` passes when ``allow_none``)."""
+    if value is None and allow_none:
+        return None
+    ok = isinstance(value, (int, np.integer)) and not isinstance(value, bool)
+    if not ok and isinstance(value, (float, np.floating)) and np.isfinite(value) and value == int(value):
+        value, ok = int(value), True
+    if not ok or int(value) < minimum:
+        raise DihedraError(f"{name} must be a whole number of at least {minimum}; got {value!r}.")
+    return int(value)
+
+
+def check_pass_options(*, dt_ps=None, temperature_k=None, bin_width_deg=1.0, n_state_blocks=64, n_hist_blocks=16):
+    """Refuse options of a trajectory pass that would give wrong numbers later: a time step or a
+    temperature that is not a finite positive number, a fine bin width that does not divide 360
+    (at most 65535 bins), block counts below 1."""
+    positive_number("dt_ps (the time between stored frames)", dt_ps, "ps")
+    if temperature_k is not None:
+        check_temperature(temperature_k)
+    width = positive_number("bin_width_deg", bin_width_deg, "degrees", allow_none=False)
+    n_bins = int(round(360.0 / width))
+    if abs(n_bins * width - 360.0) > 1e-9 or not 1 <= n_bins < 2 ** 16:
+        raise DihedraError(f"bin_width_deg must divide 360 into at most 65535 bins; got {bin_width_deg!r}.")
+    whole_number("n_state_blocks", n_state_blocks, allow_none=False)
+    whole_number("n_hist_blocks", n_hist_blocks, allow_none=False)
+
+
+def check_frame_range(start, stop, step):
+    """Refuse a frame step below 1 (frames are analysed forwards) and start or stop that are not
+    whole numbers."""
+    whole_number("step (use every N-th frame)", step)
+    for name, value in (("start", start), ("stop", stop)):
+        if value is not None:
+            whole_number(name, value, minimum=-(2 ** 62))
 
 
 def _within(tset, atoms, universe):

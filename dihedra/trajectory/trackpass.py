@@ -81,6 +81,7 @@ from MDAnalysis.analysis.base import AnalysisBase
 from MDAnalysis.analysis.results import ResultsGroup
 
 from ..numerics.angles import TorsionGeometry
+from . import interrupts
 from .conformer_counts import ConformerCounter, merge_dense, merge_rows, touched_zeros
 from .cores import CoreBits
 from .histograms import MIXED, bin_state_tables, hist_part, merge_hist_parts, narrow_counts
@@ -209,7 +210,7 @@ class TorsionPass(AnalysisBase):
                     self._overlap.finish(self._staged)
             finally:
                 if getattr(self, "_overlap", None) is not None:
-                    self._overlap.stop()
+                    self._overlap.stop(abandon=True)   # (after finish(): already stopped)
                     self._overlap = None
                 if self._source is not None:   # (a file handle: never pickled with the results)
                     self._source.close()
@@ -401,6 +402,7 @@ class TorsionPass(AnalysisBase):
 
     def _process(self, batch):
         """Frames of a batch, in order, split where the histogram buffer or the chunk fills."""
+        interrupts.check()   # (an interrupt whose raise Python swallowed is not lost)
         done = 0
         n_stage, n_chunk = len(self._bins), len(self._buf_frame)
         while done < batch.n:

@@ -12,9 +12,12 @@ follow the reader's ``dt`` and ``time_offset``.
 It is used only where it gives exactly what the MDAnalysis reader would: a plain ``XTCReader``
 (no on-the-fly transformations, no auxiliary data, no atom subset, units converted) and the
 compiled kernels; everything else (other formats, ``DIHEDRA_NO_XTC_DECODER=1``) is iterated
-by MDAnalysis as usual. A batch that the decoder cannot take (a damaged or truncated frame, or an
-encoding outside what it handles) is read again frame by frame by MDAnalysis, so its errors and
-its results are the ones a user would get from MDAnalysis.
+by MDAnalysis as usual. A frame whose header or compressed coordinates are malformed (an
+overflowed integer range, a bit stream that runs past its atoms) is refused with an
+:class:`~dihedra.errors.InputFileError`: MDAnalysis' reader does not survive such frames. A batch
+with a truncated frame, a wrong magic number or an encoding outside what the decoder handles is
+read again frame by frame by MDAnalysis, which reports the first two safely, so its errors and its
+results are the ones a user would get from MDAnalysis.
 """
 
 from __future__ import annotations
@@ -22,6 +25,8 @@ from __future__ import annotations
 import os
 
 import numpy as np
+
+from .inputs import malformed_frame
 
 #: Set to 1 to read XTC through MDAnalysis' iteration as every other format.
 NO_DECODER_ENV = "DIHEDRA_NO_XTC_DECODER"
@@ -70,7 +75,7 @@ class XTCFrames:
         self._time_offset = reader.ts.data.get("time_offset", 0)
         self._buf = np.empty(0, dtype=np.uint8)
         largest = int(self.sizes.max()) if len(self.sizes) else 0
-        self._words = np.empty(largest // 8 + 3, dtype=np.uint64)
+        self._words = np.empty(largest // 8 + 1 + decoder.PAD_WORDS, dtype=np.uint64)
         self._boxes = np.empty((0, 3, 3), dtype=np.float32)
         self._steps = np.empty(0, dtype=np.int64)
         self._times = np.empty(0, dtype=np.float32)
@@ -96,8 +101,14 @@ class XTCFrames:
             self._steps = np.empty(n, dtype=np.int64)
             self._times = np.empty(n, dtype=np.float32)
         total = int(starts[-1] + self.sizes[frames[-1]])
-        status, _ = self._decoder.decode_frames(self._buf[:total], starts, self.n_atoms, positions, self._boxes,
-                                                self._steps, self._times, self._words)
+        status, bad = self._decoder.decode_frames(self._buf[:total], starts, self.n_atoms, positions,
+                                                  self._boxes, self._steps, self._times, self._words)
+        if status in (self._decoder.BAD_ATOMS, self._decoder.BAD_HEADER, self._decoder.BAD_DATA):
+            problem = {self._decoder.BAD_ATOMS: "holds another number of atoms than frame 0",
+                       self._decoder.BAD_HEADER: "has a malformed header (an overflowed coordinate range, as a "
+                                                 "writer leaves it for NaN coordinates, or a field out of range)",
+                       }.get(status, "has damaged compressed coordinates")
+            raise malformed_frame(self.path, int(frames[bad]), problem)
         if status != self._decoder.OK:
             self._read_by_mdanalysis(frames, positions, dimensions, frame_out, time_out)
             return

@@ -86,10 +86,12 @@ def check_bin_width(bin_width_deg, fine_width_deg=1.0, what="bin width"):
 def check_estimate_options(n_bootstrap, bandwidth_deg=None):
     """Return ``n_bootstrap`` as int, refusing fewer than 20 resamples or a bandwidth that is not a
     positive number of degrees (``None``: the default rule)."""
+    if isinstance(n_bootstrap, bool) or not float(n_bootstrap).is_integer():
+        raise DihedraError(f"the number of bootstrap resamples must be a whole number; got {n_bootstrap!r}.")
     n_bootstrap = int(n_bootstrap)
     if n_bootstrap < 20:
         raise DihedraError(f"the bootstrap needs at least 20 resamples for a usable error; got {n_bootstrap}.")
-    if bandwidth_deg is not None and not (float(bandwidth_deg) > 0):
+    if bandwidth_deg is not None and not (0 < float(bandwidth_deg) < float("inf")):
         raise DihedraError(f"the kernel bandwidth must be a positive number of degrees; got {bandwidth_deg!r}.")
     return n_bootstrap
 

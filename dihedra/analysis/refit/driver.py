@@ -194,8 +194,9 @@ def _number(name, value, ok, what):
     return number
 
 
-def _check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
+def check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
                    regularisation):
+    """Refuse option values of :func:`fit_torsion_correction` before any work (one sentence each)."""
     _whole_number("terms", terms, 1, "(Fourier terms; 3 or 6 are usual)", high=12)
     _whole_number("n_bootstrap", n_bootstrap, 2, "resamples")
     _whole_number("n_blocks", n_blocks, 2, "blocks per replica")
@@ -396,7 +397,7 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     """
     result = as_result(result)
     say = log or (lambda msg: None)
-    _check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
+    check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
                    regularisation)
     one_of("weights_per", weights_per, WEIGHTS_PER)
     temperature_k = resolve_temperature(temperature_k, result.summary, say)

@@ -142,7 +142,10 @@ def _read_table(path):
     body = [line for line in text.splitlines() if line.strip() and not line.lstrip().startswith("#")]
     if not body:
         raise InputFileError(f"scan file {path} holds no table (a header row and one row per angle).")
-    dialect = csv.Sniffer().sniff(body[0], delimiters=",;\t ") if len(body[0].split(",")) < 2 else csv.excel
+    try:
+        dialect = csv.Sniffer().sniff(body[0], delimiters=",;\t ") if len(body[0].split(",")) < 2 else csv.excel
+    except csv.Error:   # one column: no delimiter to find
+        dialect = csv.excel
     rows = [[c.strip() for c in r] for r in csv.reader(io.StringIO("\n".join(body)), dialect)
             if any(c.strip() for c in r)]
     header, data = rows[0], rows[1:]

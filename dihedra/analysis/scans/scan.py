@@ -64,13 +64,33 @@ class TorsionScan:
         return pd.DataFrame({"angle_deg": self.angle_deg, "energy_kj_mol": self.energy_kj_mol})
 
 
+#: Points of a scan at the same angle (after wrapping: -180 and 180 are one angle) are merged when
+#: their energies agree within this (kJ/mol); further apart, they are two scans mixed (a forward
+#: and a backward relaxed scan, two methods) and the scan is refused.
+DUPLICATE_TOLERANCE_KJ_MOL = 0.5
+
+
 def scan_from_points(angles_deg, energies_kj_mol, kind="unspecified", source="", metadata=None):
-    """A checked :class:`TorsionScan` from points (angles wrapped, duplicates averaged, E - min E)."""
+    """A checked :class:`TorsionScan` from points (angles wrapped, duplicates that agree averaged,
+    E - min E); points at one angle whose energies differ by more than
+    :data:`DUPLICATE_TOLERANCE_KJ_MOL` are refused."""
     where = f"scan {source}" if source else "scan"
     a = np.round(wrap_deg(angles_deg), 9)
     e = np.asarray(energies_kj_mol, dtype=float)
     uniq, inv = np.unique(a, return_inverse=True)
-    mean = np.bincount(inv.reshape(-1), weights=e) / np.bincount(inv.reshape(-1))
+    inv = inv.reshape(-1)
+    spread = np.full(len(uniq), -np.inf)
+    np.maximum.at(spread, inv, e)
+    low = np.full(len(uniq), np.inf)
+    np.minimum.at(low, inv, e)
+    spread -= low
+    if (spread > DUPLICATE_TOLERANCE_KJ_MOL).any():
+        k = int(np.argmax(spread))
+        values = ", ".join(f"{x:.3f}" for x in e[inv == k])
+        raise InputFileError(f"{where} gives the angle {uniq[k]:g} deg {int((inv == k).sum())} times with energies "
+                             f"{values} kJ/mol (-180 and 180 are the same angle); give one energy per angle (two "
+                             "scans mixed?).")
+    mean = np.bincount(inv, weights=e) / np.bincount(inv)
     if len(uniq) < MIN_POINTS:
         raise InputFileError(f"{where} has {len(uniq)} distinct angle(s); at least {MIN_POINTS} are needed "
                              "(one every 30 degrees or closer is usual).")

@@ -11,6 +11,20 @@ e.g. Klimovich, Shirts & Mobley, J. Comput.-Aided Mol. Des. 29 (2015) 397; from 
 window between the two or raise the sampling there. A window whose samples lie around minus its
 centre is reported too (a bias applied with the opposite sign convention).
 
+Restraint check
+---------------
+Each window's samples must fit its stated restraint. The bias :math:`\tfrac12 k d^2` holds a window
+at a mean offset :math:`\bar d` from its centre only against a mean force :math:`k \bar d` of
+the system, and narrows it to a variance :math:`kT / (k + F'')` (Kumar et al. 1992; the
+harmonic approximation of the biased distribution). A window needs a mean force above
+:data:`MAX_MEAN_FORCE` (with :math:`|\bar d|` more than four restraint widths
+:math:`\sqrt{kT/k}`, beyond noise) or a curvature :math:`F'' < -` :data:`MAX_CURVATURE` to
+explain its samples is reported as contradicting its restraint, loudly (a warning printed first
+and in windows.json; ``restraint_consistent`` false in windows.csv): a centre off by 180 degrees,
+one given in the wrong unit or off by whole turns of a typo, a force constant per degree squared
+or in the wrong energy unit. Such a window gives a confident but wrong profile: check the window
+table against the simulation input.
+
 Output
 ------
 :meth:`WindowsResult.save` writes a complete results folder (``torsions.csv``,
@@ -52,6 +66,7 @@ import pandas as pd
 from ...errors import DihedraError
 from ...selection.schemes import get_scheme
 from ...trajectory.result import TrackResult
+from ...trajectory.states import check_frame_range, whole_number
 from ...units import check_temperature, kt_kj_mol, wrap_deg
 from ..profiles import (DEFAULT_SEED, bootstrap_multiplicities, bootstrap_spread, check_bin_width,
                         check_estimate_options)
@@ -63,6 +78,16 @@ from .solver import _fine_bin, bias_kj_mol
 MIN_OVERLAP = 0.03
 #: Bootstrap resamples for the errors.
 DEFAULT_BOOTSTRAP = 200
+#: A window's samples contradict its stated restraint when, to hold them where they are, the free
+#: energy along the torsion would need a mean force above this (kJ/mol/rad) or a curvature below
+#: minus :data:`MAX_CURVATURE` (kJ/mol/rad^2). Torsion free energies of molecules stay well inside
+#: both: the Ryckaert-Bellemans butane potential (Ryckaert & Bellemans, Faraday Discuss. Chem.
+#: Soc. 66 (1978) 95) has a largest slope of 66 kJ/mol/rad and a curvature of -233 kJ/mol/rad^2
+#: at its cis barrier top; a two-fold amide barrier of about 85 kJ/mol (from memory) a largest
+#: slope of about 85 and a top curvature of about -170.
+MAX_MEAN_FORCE = 150.0
+#: See :data:`MAX_MEAN_FORCE`.
+MAX_CURVATURE = 600.0
 
 
 # ----------------------------------------------------------------------------------------------
@@ -120,13 +145,17 @@ class WindowsResult:
         an input is never replaced. ``result.folder`` is then the new folder.
         """
         from ...io.outputs import StagedFolder
+        from ...trajectory.interrupts import signals_held
 
-        staged = StagedFolder.begin(folder, overwrite=overwrite, inputs=self.inputs, command="windows")
+        staged = None
         try:
+            with signals_held():   # an interrupt comes before the staging folder exists or after it is known
+                staged = StagedFolder.begin(folder, overwrite=overwrite, inputs=self.inputs, command="windows")
             names = [os.path.relpath(p, staged.path) for p in self._write(staged.path)]
             self.result.folder = staged.commit()
         finally:
-            staged.discard()   # nothing left to remove after the commit
+            if staged is not None:
+                staged.discard()   # nothing left to remove after the commit
         return [os.path.join(self.result.folder, name) for name in names]
 
     def _write(self, folder):
@@ -214,6 +243,8 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
                            "schemes for proteins: give one scheme (e.g. anti-gauche, cis-trans).")
     factor = check_bin_width(bin_width_deg, 1.0)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
+    check_frame_range(start, stop, step)   # (before the first window is read)
+    whole_number("workers", workers)
     seed = DEFAULT_SEED if seed is None else int(seed)
     source = None if isinstance(windows, pd.DataFrame) else os.fspath(windows)
     table = read_windows(windows)
@@ -239,11 +270,16 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
     notices.extend(_agreement_notices(agreement))
     est0 = next(iter(estimates.values()))
     wtab = _window_table(data, est0, kt)
+    notices[:0] = _restraint_warnings(wtab)
     otab = _overlap_table(table, est0)
     notices.extend(_overlap_notices(otab, list(estimates)))
     settings = _settings(temperature_k, kt, bin_width_deg, n_bootstrap, seed, bandwidth_deg, types.bandwidths,
                          scheme)
     info = _info(temperature_k, kt, source, len(table), agreement, otab, max_mbar_samples, settings, notices)
+    info["restraint_rule"] = (f"a window contradicts its restraint when its samples need a mean force above "
+                              f"{MAX_MEAN_FORCE:g} kJ/mol/rad (offset beyond 4 restraint widths) or a curvature "
+                              f"below -{MAX_CURVATURE:g} kJ/mol/rad2")
+    info["restraints_consistent"] = bool(wtab["restraint_consistent"].all())
     summary = _summary(first, data, table, scheme, temperature_k, tset, notices, start, stop, step,
                        time.time() - t0)
     result = TrackResult(torsion_set=tset, scheme=scheme, summary=summary, notices=notices, **weighted)
@@ -372,13 +408,45 @@ def _window_table(data, est, kt):
             "trajectory": row.trajectory, "n_frames": int(row.n_frames), "n_samples": int(sel.sum()),
             "mean_angle_deg": mean, "circular_sd_deg": spread,
             "statistical_inefficiency": float(np.mean(gs)) if gs else np.nan,
-            "n_effective": float(sel.sum() / np.mean(gs)) if gs else np.nan})
+            "n_effective": float(sel.sum() / np.mean(gs)) if gs else np.nan,
+            **restraint_check(mean, spread, row.centre_deg, row.k_kj_mol_rad2, kt)})
     wtab = pd.DataFrame(rows)
     for name, f, fb in (("mbar", est.f_mbar_kt, est.boot_f_mbar_kt), ("wham", est.f_wham_kt, est.boot_f_wham_kt)):
         err, _ = bootstrap_spread(fb - fb[:, :1])
         wtab[f"free_energy_{name}_kj_mol"] = f * kt
         wtab[f"free_energy_{name}_err_kj_mol"] = err * kt
     return wtab
+
+
+def restraint_check(mean_deg, sd_deg, centre_deg, k_kj_mol_rad2, kt):
+    """Whether a window's sampled mean and spread fit its restraint (see *Restraint check*):
+    the columns mean_offset_deg, restraint_sd_deg, mean_force_kj_mol_rad, curvature_kj_mol_rad2
+    and restraint_consistent of windows.csv."""
+    offset = float(wrap_deg(mean_deg - centre_deg))
+    width = np.sqrt(kt / k_kj_mol_rad2)                       # rad
+    force = k_kj_mol_rad2 * abs(np.radians(offset))
+    sd = max(np.radians(sd_deg), 1e-9)
+    curvature = kt / sd ** 2 - k_kj_mol_rad2                  # F'' from var = kT / (k + F'')
+    bad = (force > MAX_MEAN_FORCE and abs(np.radians(offset)) > 4 * width) or curvature < -MAX_CURVATURE
+    return {"mean_offset_deg": offset, "restraint_sd_deg": float(np.degrees(width)),
+            "mean_force_kj_mol_rad": float(force), "curvature_kj_mol_rad2": float(curvature),
+            "restraint_consistent": not bad}
+
+
+def _restraint_warnings(wtab):
+    """The loud warning on windows whose samples contradict their restraint (or none)."""
+    bad = wtab[~wtab["restraint_consistent"]]
+    if not len(bad):
+        return []
+    shown = "; ".join(f"window {int(r.window)} (centre {r.centre_deg:g} deg, k {r.k_kj_mol_rad2:g}): sampled around "
+                      f"{r.mean_angle_deg:.0f} deg, spread {r.circular_sd_deg:.0f} deg where the restraint allows "
+                      f"{r.restraint_sd_deg:.0f}" for r in bad.head(4).itertuples(index=False))
+    more = f" and {len(bad) - 4} more" if len(bad) > 4 else ""
+    return [f"WARNING: {len(bad)} window(s) contradict their stated restraint: {shown}{more}. Their samples need a "
+            f"mean force above {MAX_MEAN_FORCE:g} kJ/mol/rad or a curvature below -{MAX_CURVATURE:g} kJ/mol/rad2 "
+            "to be where they are; the profile, overlap and MBAR-WHAM agreement rest on the window table and are "
+            "not to be trusted: check the centres (degrees, IUPAC sign) and force constants (kJ/mol/rad2) against "
+            "the simulation input."]
 
 
 def _overlap_table(windows, est):
