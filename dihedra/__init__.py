@@ -21,22 +21,33 @@ DataFrames with a ``save(folder)`` method.
 """
 
 from ._version import __version__
-from .analysis.compare import compare_with_scan
-from .analysis.convergence import convergence
-from .analysis.couplings import ensemble_couplings
-from .analysis.kinetics import state_kinetics
-from .analysis.profiles import free_energy_profiles
-from .analysis.ramachandran import ramachandran_regions
-from .analysis.refit import fit_torsion_correction
-from .analysis.windows import unbias_windows
 from .errors import DihedraError
-from .io.resultsdir import load_results
-from .selection.schemes import StateScheme, get_scheme
-from .selection.specs import select_torsions
-from .selection.torsions import Torsion, TorsionSet
-from .tracking import track
-from .trajectory.result import TrackResult
-from .trajectory.states import TorsionStates
+
+# The public names, imported when first used (PEP 562): ``import dihedra`` stays light, so that
+# the command line can take over Ctrl-C before MDAnalysis, pandas and numba are loaded.
+_LAZY = {
+    "compare_with_scan": ".analysis.compare", "convergence": ".analysis.convergence",
+    "ensemble_couplings": ".analysis.couplings", "state_kinetics": ".analysis.kinetics",
+    "free_energy_profiles": ".analysis.profiles", "ramachandran_regions": ".analysis.ramachandran",
+    "fit_torsion_correction": ".analysis.refit", "unbias_windows": ".analysis.windows",
+    "load_results": ".io.resultsdir", "StateScheme": ".selection.schemes", "get_scheme": ".selection.schemes",
+    "select_torsions": ".selection.specs", "Torsion": ".selection.torsions", "TorsionSet": ".selection.torsions",
+    "track": ".tracking", "TrackResult": ".trajectory.result", "TorsionStates": ".trajectory.states",
+}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        from importlib import import_module
+
+        value = getattr(import_module(_LAZY[name], __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'dihedra' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))
 
 
 def example_path(name=""):

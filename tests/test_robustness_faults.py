@@ -180,6 +180,30 @@ def test_a_signal_at_a_random_moment_stops_the_run_cleanly(work, sig, backend):
         assert snapshot(work / "res") == before, where
 
 
+@pytest.mark.parametrize("delay", [0.05, 0.2, 0.4, 0.7, 1.0])
+def test_ctrl_c_while_the_command_line_is_still_loading(work, delay):
+    """SIGINT in the first second, while the libraries are imported: one line, no traceback,
+    nothing changed (or, before Python itself is up, the process ends by the signal)."""
+    before = snapshot(work / "res")
+    env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable",
+            "--out", "res", "--overwrite"]
+    proc = subprocess.Popen(argv, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    time.sleep(delay)
+    proc.send_signal(signal.SIGINT)
+    try:
+        _, err = proc.communicate(timeout=60)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        pytest.fail(f"SIGINT {delay} s after the start: still running 60 s later")
+    where = f"SIGINT {delay} s after the start, exit {proc.returncode}; stderr:\n{err}"
+    assert "Traceback" not in err and "Exception ignored" not in err, where
+    assert proc.returncode in (130, -signal.SIGINT), where
+    if proc.returncode == 130:
+        assert err.strip().splitlines()[-1].startswith("dihedra: interrupted"), where
+    assert snapshot(work / "res") == before and not leftovers(work), where
+
+
 def test_the_staging_folder_of_a_killed_run_is_removed_by_the_next_run(work, capsys):
     """SIGKILL (or a crash) cannot be caught: the staging folder stays until the next run into the
     same folder on this machine removes it (its process is gone)."""

@@ -60,7 +60,11 @@ def main(argv=None):
     ends the process at once once its line is printed and its clean-up done: worker processes
     killed in the middle of handing back their results can leave threads of the process pools
     waiting for ever, and the interpreter would wait for them on its way out."""
-    status = _main(argv)
+    try:
+        status = _main(argv)
+    except KeyboardInterrupt:   # Ctrl-C while the commands were still being loaded: nothing was done
+        print("dihedra: interrupted (SIGINT); stopped before any work (nothing was written).", file=sys.stderr)
+        status = 128 + signal.SIGINT
     if argv is None and status not in (None, 0):
         _release_process_resources()
         sys.stdout.flush()
