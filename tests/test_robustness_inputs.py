@@ -207,7 +207,8 @@ def test_an_xtc_written_with_nan_coordinates_never_crashes(work):
     nan_overflow_xtc(str(work / "hexane.xtc"), str(work / "nan.xtc"))
     env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
     run = subprocess.run([sys.executable, "-m", "dihedra", "track", "hexane.pdb", "nan.xtc", "--torsions",
-                          "rotatable", "--out", "out", "--workers", "2"], capture_output=True, text=True, env=env,
+                          "rotatable", "--out", "out", "--workers", "2", "--backend", "multiprocessing"],
+                         capture_output=True, text=True, env=env,
                          timeout=120)
     assert run.returncode == 2, run.stderr
     assert run.stderr.strip().startswith("dihedra: error: trajectory nan.xtc is damaged: frame 10 has an "

@@ -303,7 +303,13 @@ class ParquetSeries:
         """Yield :class:`~dihedra.trajectory.result.SeriesChunk` pieces of the ``kind`` series in
         frame order, at most ``batch_frames`` frames each (default about READ_VALUES values)."""
         path = self.path(kind)
-        schema = self._file(series_files(path)[0]).schema_arrow
+        files = series_files(path)
+        if not files:
+            series_schema(path)   # (its error: no Parquet file)
+        try:
+            schema = self._file(files[0]).schema_arrow
+        except (OSError, ValueError) as exc:   # (Arrow's errors of a damaged file are ValueErrors)
+            raise damaged_series(path, exc) from None
         labels = list(columns) if columns is not None else [n for n in schema.names
                                                             if n not in INDEX_COLUMNS and n != "weight"]
         present = set(schema.names)   # (schema.names builds a new list at every use)
@@ -315,7 +321,7 @@ class ParquetSeries:
         batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // max(1, len(labels)))
         seen = {}
         try:
-            for name in series_files(path):
+            for name in files:
                 for rb in self._file(name).iter_batches(batch_size=batch, columns=read):
                     rep = rb.column("replica").to_numpy()
                     frame = rb.column("frame").to_numpy()
