@@ -322,7 +322,10 @@ class ParquetSeries:
         seen = {}
         try:
             for name in files:
-                for rb in self._file(name).iter_batches(batch_size=batch, columns=read):
+                # a reader of its own (two iterations of one file at a time must not share one:
+                # Arrow's read cache mixes them up), on the footer parsed once
+                reader = pq.ParquetFile(name, metadata=self._file(name).metadata)
+                for rb in reader.iter_batches(batch_size=batch, columns=read):
                     rep = rb.column("replica").to_numpy()
                     frame = rb.column("frame").to_numpy()
                     time = rb.column("time_ps").to_numpy()
