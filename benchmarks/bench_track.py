@@ -1,53 +1,49 @@
 """Benchmark of the trajectory pass against the cost of reading the trajectory (not a test).
 
 Builds (once, cached in ``--data``) a synthetic liquid of united-atom six-site chains, 5000
-chains by default: 30,000 atoms, 15,000 C-C-C-C torsions (``rotatable``), an XTC of 4 N frames
-(N = ``--frames``, default 4000: at 1,000 frames the start-up and the costs that grow only until
-the block sums fill are still a large part of a run, and the start-up of a parallel run varies
-by a second or more, which a difference over 1,000 frames cannot absorb; the 1,000-frame
-marginal cost is measured and printed too. The file, 114 kB per frame, 1.8 GB for 16,000
-frames, must stay in the page cache for (a) to be the cost of decoding, not of the disk: the
-wall and CPU times of (a) show whether it did) with atoms wrapped into the box one by one,
-torsions that hop between anti and gauche and a PDB topology with CONECT bonds. Then it runs,
-each command in a fresh process, over the first frame only, over 1,000 frames and over N frames,
-every run ``--repeat`` times (the
-fastest kept, as the machine may be shared; in rounds, each round running every command once, so
-that a slow spell of the machine touches all kinds alike):
+chains by default: 30,000 atoms, 15,000 C-C-C-C torsions (``rotatable``), with atoms wrapped into
+the box one by one, torsions that hop between anti and gauche and a PDB topology with CONECT
+bonds, as an XTC of 4 N frames (N = ``--frames``, default 1,500) and the same frames as a DCD
+(written by MDAnalysis from the XTC: the same coordinates). Both files must stay in the page cache
+(the DCD of 6,000 frames is 2.2 GB) for (a) to be the cost of decoding, not of the disk.
 
-(a) bare MDAnalysis iteration reading the coordinates (the I/O floor of the issue);
-(a2) dihedra's own XTC decoder (``dihedra.trajectory.trajread``, which ``track`` uses for XTC) reading the
-    same frames in batches, nothing else;
-(b) ``dihedra track`` serial, as a user runs it: one process; on a machine with two usable
-    cores its default is a second thread that computes while the first reads;
-(b0) the same with ``DIHEDRA_NO_XTC_DECODER=1``: the frames read by MDAnalysis' iteration, as
-    for every other format;
-(b1) ``dihedra track --threads 1``: one process, one thread (the compiled kernels use no threads);
-(c) ``dihedra track --workers 2`` (multiprocessing);
-(d) ``dihedra track --scheduler ADDRESS`` on a local dask.distributed cluster of 2 worker
-    processes started beforehand (as a site's job system would);
+For each format it runs, each command in a fresh process, over 1 frame, N frames and 4 N frames,
+every run ``--repeat`` times in rounds (each round runs every command once, so that a slow spell
+of the machine touches all kinds alike):
 
-and prints the marginal cost per frame, ``(T(N) - T(1)) / (N - 1)``, of each as a ratio to that
-of (a), in wall time and in CPU time (user + system of every process and thread involved; on a
-shared machine the CPU ratio of serial runs is the steadier one), with the peak memory (sum of
-the resident set sizes of the command's process tree, and of the cluster workers for (d), polled
-every 20 ms). Every run is also made over 4 N frames ((b) over 2 N too): the peak memory of (b)
-at 1x, 2x and 4x the frames, the marginal cost at 4 N, ``(T(4N) - T(1)) / (4N - 1)``, and from
-the difference of two lengths, ``(T(4N) - T(N)) / 3N``, which leaves out most of the costs that
-depend on the frame count only until the block sums are filled (conformer rows, table rows,
-compressed histogram size); and, over every run of a command at once (1, N, 2N, 4N frames, each
-repeat), the Theil-Sen slope of wall time against frames with its 90 % interval, which shows how
-much the machine's noise leaves undecided. The start-up (subtracted with T(1)) includes loading the compiled kernels from
-numba's cache; the time to compile them with an empty cache (once per installation) is measured
-separately.
+(a)  bare MDAnalysis iteration reading the coordinates (the floor of the issue; its 1-frame run
+     is the Universe's own load time: Python, MDAnalysis, the topology);
+(a2) dihedra's own batch reader alone (the XTC decoder, the DCD reader of ``trajread``);
+(b)  ``dihedra track`` as a user runs it (``--workers auto``: on two cores one process whose
+     second thread computes while the first reads);
+(b0) the same reading through MDAnalysis' iteration (``DIHEDRA_NO_XTC_DECODER=1`` /
+     ``DIHEDRA_NO_DCD_READER=1``), as every other format is read;
+(b1) ``--threads 1``;
+(c2) ``--workers 2`` as a user asks for it (at most two: dihedra decides);
+(c)  ``--workers 2 --backend multiprocessing``: exactly two worker processes;
+(d)  ``--scheduler ADDRESS`` on a local dask.distributed cluster of 2 worker processes (only
+     with ``--with-dask``).
 
-Post-processing: ``dihedra track`` over as many copies of the 4 N-frame trajectory (as replicas)
-as make at least ``--post-samples`` (default 10^8) state samples, then ``dihedra profile`` and
-``dihedra kinetics --assignment crisp`` on that folder, timed separately.
+It prints, per format and kind, the marginal cost per frame ``(T(N) - T(1)) / (N - 1)`` (for (c)
+and (d) ``T(2)`` is the start: one frame per worker) in wall and CPU time (user + system of every
+process and thread), its ratio to (a) round by round (median [min, max] over the rounds: the
+spread the machine's noise leaves) and the cost per torsion-frame in ns; the same from 4 N
+frames and the Theil-Sen slope (``scipy.stats.theilslopes``, 90 % interval) through every run;
+the fixed cost of a run, ``T_b(1) - T_a(1)`` (a 1-frame run against the Universe's load), with
+the seconds by phase that ``summary.json`` records, and the same for the first run of a file
+(``DIHEDRA_NO_HASH_CACHE=1``: its SHA-256 computed, not remembered); and the peak memory (sum of
+the resident set sizes of the command's process tree, polled every 20 ms) of (b) at 1, N, 2 N
+and 4 N frames. The time to compile the kernels with an empty numba cache (once per
+installation) is measured separately.
+
+Post-processing: ``dihedra track`` over as many copies of the 4 N-frame XTC (as replicas) as make
+at least ``--post-samples`` (default 10^8) state samples, then ``dihedra profile`` and ``dihedra
+kinetics --assignment crisp`` on that folder, timed separately.
 
 Run from the repository root::
 
-    python benchmarks/bench_track.py                 # everything, about 30 min on 2 cores
-    python benchmarks/bench_track.py --skip post     # the trajectory pass only
+    python benchmarks/bench_track.py --repeat 3 --skip post   # the trajectory pass, about 20 min
+    python benchmarks/bench_track.py --repeat 3               # with post-processing
 """
 
 from __future__ import annotations
@@ -232,16 +228,16 @@ for ts in u.trajectory[:int(sys.argv[3])]:
 """
 
 
-DECODER_FLOOR = """
+READER_FLOOR = """
 import sys, warnings
 warnings.simplefilter("ignore")
 import numpy as np
 import MDAnalysis as mda
-from dihedra.trajectory.trajread import xtc_frames
+from dihedra.trajectory.trajread import frame_source
 from dihedra.trajectory.trackpass import BATCH_BYTES
 u = mda.Universe(sys.argv[1], sys.argv[2])
-src = xtc_frames(u.trajectory)
-assert src is not None, "dihedra's XTC decoder is not available here"
+src = frame_source(u.trajectory)
+assert src is not None, "dihedra's batch reader is not available here"
 n, stop = u.atoms.n_atoms, int(sys.argv[3])
 size = max(1, min(BATCH_BYTES // (12 * n), stop))
 pos, dims = np.empty((size, n, 3), np.float32), np.empty((size, 6), np.float32)
@@ -253,20 +249,12 @@ for lo in range(0, stop, size):
     total += float(pos[0, 0, 0])
 """
 
-
-#: The shortest run the issue asks about; measured too when N is longer.
-SHORT = 1000
-
-#: Frames of the start-up run of each kind (2 workers: one frame each).
-START_FRAMES = {"c": 2, "d": 2}
-
 JIT_PROBE = """
 import sys, time, warnings
 warnings.simplefilter("ignore")
 import MDAnalysis as mda
 from dihedra.selection.schemes import get_scheme
 from dihedra.selection.specs import select_torsions
-from dihedra.io.series import ParquetSeriesFactory
 from dihedra.trajectory.trackpass import TorsionPass
 u = mda.Universe(sys.argv[1], sys.argv[2])
 tset = select_torsions(u, "rotatable")
@@ -278,74 +266,48 @@ for _ in range(2):
 print(*out)
 """
 
+#: Frames of the start-up run of each kind (2 workers: one frame each).
+START_FRAMES = {"c": 2, "d": 2}
 
-PASS_PROBE = """
-import json, os, shutil, statistics, sys, tempfile, time, warnings
-warnings.simplefilter("ignore")
-import MDAnalysis as mda
-from dihedra.selection.schemes import get_scheme
-from dihedra.selection.specs import select_torsions
-from dihedra.io.series import ParquetSeriesFactory
-from dihedra.trajectory.trackpass import TorsionPass
-top, xtc, n, repeat = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4])
-u = mda.Universe(top, xtc)
-tset = select_torsions(u, "rotatable")
-scheme = get_scheme("anti-gauche")
+#: What each kind is, for the table.
+LABELS = {"a": "(a) MDAnalysis reading only", "a2": "(a2) dihedra's batch reader only",
+          "b": "(b) dihedra track (default)", "b0": "(b0) track, reading by MDAnalysis",
+          "b1": "(b1) track --threads 1", "c2": "(c2) track --workers 2 (decided)",
+          "c": "(c) track --workers 2 --backend mp", "d": "(d) --scheduler, 2 dask workers"}
 
-def clock():
-    return time.perf_counter(), time.process_time()
-
-def read(stop):
-    t = clock()
-    for ts in u.trajectory[:stop]:
-        ts.positions
-    return t
-
-def run(stop, threads):
-    parts = tempfile.mkdtemp()
-    t = clock()
-    TorsionPass(u, tset, scheme, series=ParquetSeriesFactory(parts), threads=threads).run(stop=stop)
-    shutil.rmtree(parts)
-    return t
-
-def since(t):
-    w, c = clock()
-    return w - t[0], c - t[1]
-
-run(2, 1), run(2, 2)   # load the kernels
-out = {k: [] for k in ("read", "pass1", "pass2")}
-for _ in range(repeat):   # interleaved, so that a change of load hits all three alike
-    for stop in (n, 4 * n):
-        for key, f in (("read", lambda: read(stop)), ("pass1", lambda: run(stop, 1)),
-                       ("pass2", lambda: run(stop, 2))):
-            out[key].append((stop, *since(f())))
-print(json.dumps(out))
-"""
+#: The variable that sends each format through MDAnalysis' iteration.
+NO_READER = {"xtc": "DIHEDRA_NO_XTC_DECODER", "dcd": "DIHEDRA_NO_DCD_READER"}
 
 
-def pass_alone(top, xtc, n, repeat, py, env):
-    """The pass in one process against reading the same frames, interleaved ``repeat`` times:
-    per-frame cost from two lengths, (T(4N) - T(N)) / 3N, medians over the repeats."""
-    done = subprocess.run([py, "-c", PASS_PROBE, top, xtc, str(n), str(repeat)], env=env, cwd=REPO,
-                          capture_output=True, text=True, check=True)
-    raw = json.loads(done.stdout.strip().splitlines()[-1])
-    res = {}
-    for key, rows in raw.items():
-        by_len = {}
-        for stop, wall, cpu in rows:
-            by_len.setdefault(stop, []).append((wall, cpu))
-        pairs = list(zip(by_len[n], by_len[4 * n]))
-        res[key] = {kind: sorted((b[i] - a[i]) / (3 * n) for a, b in pairs)[len(pairs) // 2]
-                    for i, kind in enumerate(("wall", "cpu"))}
-    return res
+def ensure_dcd(folder, n_frames, log=print):
+    """``bench.dcd``: the frames of ``bench.xtc`` written by MDAnalysis as DCD (same coordinates)."""
+    import warnings
+
+    import MDAnalysis as mda
+
+    meta = os.path.join(folder, "bench-dcd.json")
+    if os.path.exists(meta):
+        with open(meta) as fh:
+            if json.load(fh).get("frames", 0) >= n_frames:
+                return
+    log(f"writing {n_frames} frames of bench.xtc as bench.dcd")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        u = mda.Universe(os.path.join(folder, "bench.pdb"), os.path.join(folder, "bench.xtc"))
+        with mda.Writer(os.path.join(folder, "bench.dcd.partial"), u.atoms.n_atoms, format="DCD",
+                        dt=u.trajectory.dt) as w:
+            for ts in u.trajectory[:n_frames]:
+                w.write(u.atoms)
+    os.replace(os.path.join(folder, "bench.dcd.partial"), os.path.join(folder, "bench.dcd"))
+    with open(meta, "w") as fh:
+        json.dump({"frames": n_frames}, fh)
 
 
-def robust_slopes(samples, n):
+def robust_slopes(samples, frames_of):
     """Theil-Sen slope (seconds per frame) of the wall time of every kind against its frame count,
     over every measurement, with the 90 % interval: {kind: {slope, low, high, runs}}."""
     from scipy.stats import theilslopes
 
-    frames_of = {"S": SHORT, "N": n, "2N": 2 * n, "4N": 4 * n}
     points = {}
     for name, values in samples.items():
         kind, length = name.split(":")
@@ -361,21 +323,127 @@ def robust_slopes(samples, n):
     return out
 
 
-# --------------------------------------------------------------------------------------------
-# Main
-# --------------------------------------------------------------------------------------------
+def spread(values):
+    """median, min, max."""
+    v = sorted(values)
+    return v[len(v) // 2], v[0], v[-1]
+
+
+def run_format(fmt, args, data, py, env, pids, scheduler, n_torsions):
+    """Every kind of run over one trajectory format; returns the figures."""
+    n = args.frames
+    frames_of = {"N": n, "2N": 2 * n, "4N": 4 * n}
+    top, traj = os.path.join(data, "bench.pdb"), os.path.join(data, f"bench.{fmt}")
+    out = os.path.join(data, "out")
+
+    def track_cmd(stop, *extra):
+        return [py, "-m", "dihedra", "track", top, traj, "--torsions", "rotatable", "--stop", str(stop),
+                "--out", out, "--overwrite", *extra]
+
+    plan = {"a": lambda k: [py, "-c", FLOOR, top, traj, str(k)], "b": track_cmd}
+    if "a2" not in args.skip:
+        plan["a2"] = lambda k: [py, "-c", READER_FLOOR, top, traj, str(k)]
+    if "b0" not in args.skip:
+        plan["b0"] = track_cmd
+    if "b1" not in args.skip:
+        plan["b1"] = lambda k: track_cmd(k, "--threads", "1")
+    if "c2" not in args.skip:
+        plan["c2"] = lambda k: track_cmd(k, "--workers", "2")
+    if "c" not in args.skip:
+        plan["c"] = lambda k: track_cmd(k, "--workers", "2", "--backend", "multiprocessing")
+    if scheduler is not None:
+        plan["d"] = lambda k: track_cmd(k, "--scheduler", scheduler)
+    env_of = {"b0": dict(env, **{NO_READER[fmt]: "1"})}
+    lengths = ["1", "N"] + (["4N"] if "memory" not in args.skip else [])
+    measure(plan["a"](4 * n), env=env)   # the page cache
+    # the numba cache (a run long enough for every specialisation of the kernels: the cut of the
+    # torsion work moves, and a compiling run peaks far higher) and the hash cache
+    measure(track_cmd(n), env=env)
+    measure(track_cmd(n, "--threads", "1"), env=env)
+    samples, rounds = {}, []
+    for round_ in range(args.repeat):
+        got = {}
+        for kind, cmd in plan.items():
+            for length in lengths:
+                k = START_FRAMES.get(kind, 1) if length == "1" else frames_of[length]
+                r = measure(cmd(k), extra_pids=pids if kind == "d" else (), env=env_of.get(kind, env))
+                got[f"{kind}:{length}"] = r
+                samples.setdefault(f"{kind}:{length}", []).append((r["wall_s"], r["cpu_s"]))
+                print(f"  {fmt} round {round_ + 1} {kind}:{length:<3} wall {r['wall_s']:7.2f} s  cpu {r['cpu_s']:7.2f} s"
+                      f"  peak {r['peak_rss_mb']:6.0f} MB  (load {os.getloadavg()[0]:.2f})", flush=True)
+                if kind == "b" and length == "1":
+                    with open(os.path.join(out, "summary.json")) as fh:
+                        got["phases"] = json.load(fh).get("phase_seconds", {})
+        if round_ == 0 and "memory" not in args.skip:
+            got["b:2N"] = measure(track_cmd(2 * n), env=env)
+            first = dict(env, DIHEDRA_NO_HASH_CACHE="1")
+            got["b:1:first"] = measure(track_cmd(1), env=first)
+            with open(os.path.join(out, "summary.json")) as fh:
+                got["phases_first"] = json.load(fh).get("phase_seconds", {})
+        rounds.append(got)
+    return report_format(fmt, n, n_torsions, plan, lengths, rounds, samples, frames_of)
+
+
+def report_format(fmt, n, n_torsions, plan, lengths, rounds, samples, frames_of):
+    """Print and return the figures of one format."""
+    res = {"rounds": rounds}
+    print(f"\n{fmt.upper()}: marginal cost per frame over N = {n} frames, (T(N) - T(1)) / (N - 1) (c, d: from T(2)); "
+          f"ratio to (a) round by round, median [min, max] over {len(rounds)} round(s); {n_torsions} torsions")
+    print(f"  {'':<38} {'wall ms/frame':>13} {'ratio':>18} {'cpu ratio':>10} {'ns/torsion-frame':>17} {'peak MB':>8}")
+    for hi in [x for x in lengths if x != "1"]:
+        n_hi = frames_of[hi]
+        if hi != "N":
+            print(f"  from 4N = {n_hi} frames:")
+        for kind in plan:
+            def marg(r, key, kind=kind):
+                k0 = START_FRAMES.get(kind, 1)
+                return (r[f"{kind}:{hi}"][key] - r[f"{kind}:1"][key]) / (n_hi - k0)
+            walls = [marg(r, "wall_s") for r in rounds]
+            ratios = [marg(r, "wall_s") / marg(r, "wall_s", "a") for r in rounds]
+            cpus = [marg(r, "cpu_s") / marg(r, "cpu_s", "a") for r in rounds]
+            w, (rm, rlo, rhi), c = spread(walls)[0], spread(ratios), spread(cpus)[0]
+            peak = spread([r[f"{kind}:{hi}"]["peak_rss_mb"] for r in rounds])[0]
+            res[f"{kind}:{hi}"] = {"wall_ms": w * 1e3, "ratio": rm, "ratio_min": rlo, "ratio_max": rhi,
+                                   "cpu_ratio": c, "ns_per_torsion_frame": w / n_torsions * 1e9, "peak_mb": peak}
+            print(f"  {LABELS[kind]:<38} {w * 1e3:13.3f} {rm:6.2f} [{rlo:4.2f}, {rhi:4.2f}] {c:10.2f} "
+                  f"{w / n_torsions * 1e9:17.1f} {peak:8.0f}")
+    slopes = robust_slopes(samples, frames_of)
+    fa = slopes["a"]
+    print("  Theil-Sen slope of wall time against frames through every run (90 % interval):")
+    for kind, r in slopes.items():
+        print(f"    {LABELS[kind]:<36} {r['slope'] * 1e3:7.3f} ms/frame [{r['low'] * 1e3:.3f}, {r['high'] * 1e3:.3f}]"
+              f"  ratio {r['slope'] / fa['slope']:5.2f} [{r['low'] / fa['high']:.2f}, {r['high'] / fa['low']:.2f}]")
+    res["theil_sen"] = slopes
+    fixed = [r["b:1"]["wall_s"] - r["a:1"]["wall_s"] for r in rounds]
+    fm, flo, fhi = spread(fixed)
+    a1 = spread([r["a:1"]["wall_s"] for r in rounds])[0]
+    print(f"  fixed cost: 1-frame run of (b) minus the Universe's load (a, 1 frame: {a1:.2f} s): "
+          f"{fm:.2f} s [{flo:.2f}, {fhi:.2f}]; seconds by phase: {rounds[-1].get('phases')}")
+    res["fixed_s"] = {"median": fm, "min": flo, "max": fhi, "universe_s": a1, "phases": rounds[-1].get("phases")}
+    if "b:1:first" in rounds[0]:
+        first = rounds[0]["b:1:first"]["wall_s"] - rounds[0]["a:1"]["wall_s"]
+        print(f"  the first run of a file (its SHA-256 computed, not remembered): {first:.2f} s more than (a); "
+              f"phases {rounds[0].get('phases_first')}")
+        res["fixed_first_s"] = first
+        peaks = [rounds[0]["b:1"]["peak_rss_mb"], rounds[0]["b:N"]["peak_rss_mb"], rounds[0]["b:2N"]["peak_rss_mb"],
+                 rounds[0]["b:4N"]["peak_rss_mb"]]
+        print(f"  peak memory of (b) at 1, N, 2N, 4N frames: {', '.join(f'{p:.0f}' for p in peaks)} MB "
+              f"(4N / N = {peaks[3] / peaks[1]:.3f})")
+        res["peak_b_mb"] = peaks
+    return res
+
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--data", default=os.path.join(tempfile.gettempdir(), "dihedra-bench"),
                     help="folder for the synthetic system and the results (kept between runs)")
     ap.add_argument("--molecules", type=int, default=5000, help="six-site chains (3 torsions each)")
-    ap.add_argument("--frames", type=int, default=4000,
-                    help="N: frames of the ratio runs (at least 1000; default 4000, and 1000 measured too)")
-    ap.add_argument("--repeat", type=int, default=2,
-                    help="measure every run this many times and keep the fastest (default 2)")
+    ap.add_argument("--frames", type=int, default=1500, help="N: frames of the ratio runs (default 1500)")
+    ap.add_argument("--repeat", type=int, default=3, help="rounds of every run (default 3)")
+    ap.add_argument("--formats", nargs="+", default=["xtc", "dcd"], choices=["xtc", "dcd"])
+    ap.add_argument("--with-dask", action="store_true", help="also (d): a local dask.distributed cluster")
     ap.add_argument("--post-samples", type=float, default=1e8, help="state samples for post-processing")
-    ap.add_argument("--skip", action="append", default=[], choices=["a2", "b0", "b1", "c", "d", "memory", "alone", "jit", "post"],
+    ap.add_argument("--skip", action="append", default=[], choices=["a2", "b0", "b1", "c", "c2", "memory", "jit", "post"],
                     help="leave out a part (repeatable)")
     args = ap.parse_args(argv)
 
@@ -385,86 +453,32 @@ def main(argv=None):
     sys.path.insert(0, REPO)
     env = dict(os.environ)
     n = args.frames
-    frames_of = {"S": SHORT, "N": n, "2N": 2 * n, "4N": 4 * n}
     data = os.path.abspath(args.data)
     ensure_system(data, args.molecules, 4 * n)
+    if "dcd" in args.formats:
+        ensure_dcd(data, 4 * n)
     top, xtc = os.path.join(data, "bench.pdb"), os.path.join(data, "bench.xtc")
-    out = os.path.join(data, "out")
     n_torsions = 3 * args.molecules
-
-    def track_cmd(stop, *extra, trajs=(xtc,)):
-        return [py, "-m", "dihedra", "track", top, *trajs, "--torsions", "rotatable", "--stop", str(stop),
-                "--out", out, "--overwrite", *extra]
-
-    def floor_cmd(stop):
-        return [py, "-c", FLOOR, top, xtc, str(stop)]
-
-    from dihedra.numerics.angles import compiled_kernels
     print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f} at start")
-    print(f"system: {6 * args.molecules} atoms, {n_torsions} torsions, XTC of {4 * n} frames; N = {n}; "
-          f"each run measured {args.repeat} time(s), the fastest kept")
-    print(f"compiled kernels (numba): {'yes' if compiled_kernels() is not None else 'NO (NumPy path)'}; "
-          "they use no threads of their own. (b) is the default: with two usable cores a second thread "
-          f"computes while the first reads (usable cores here: {len(os.sched_getaffinity(0))}; CPU time "
-          "counts both threads); (b1) is --threads 1.")
-    # warm the page cache, the XTC offset cache and the numba cache
-    measure(floor_cmd(4 * n), env=env)
-    measure(track_cmd(1), env=env)
-    runs = {}
-    samples = {}   # every measurement: name -> [(wall, cpu), ...]
-
-    def record(name, r):
-        samples.setdefault(name, []).append((r["wall_s"], r["cpu_s"]))
-        best = runs.setdefault(name, dict(r))
-        for key in r:
-            best[key] = min(best[key], r[key])
-        print(f"  {name:<10} wall {r['wall_s']:8.2f} s  cpu {r['cpu_s']:8.2f} s  peak {r['peak_rss_mb']:8.0f} MB"
-              f"  (load {os.getloadavg()[0]:.2f})", flush=True)
-
-    plan = [("a", lambda k: floor_cmd(k)), ("b", lambda k: track_cmd(k))]
-    env_of = {}
-    if "a2" not in args.skip:
-        plan.append(("a2", lambda k: [py, "-c", DECODER_FLOOR, top, xtc, str(k)]))
-    if "b0" not in args.skip:
-        plan.append(("b0", lambda k: track_cmd(k)))
-        env_of["b0"] = dict(env, DIHEDRA_NO_XTC_DECODER="1")
-    if "b1" not in args.skip:
-        plan.append(("b1", lambda k: track_cmd(k, "--threads", "1")))
-    if "c" not in args.skip:
-        plan.append(("c", lambda k: track_cmd(k, "--workers", "2")))
+    print(f"system: {6 * args.molecules} atoms, {n_torsions} torsions; N = {n}, 4N = {4 * n} frames; "
+          f"{args.repeat} round(s); formats {', '.join(args.formats)}")
+    summary = {"n_torsions": n_torsions, "n_atoms": 6 * args.molecules, "frames": n}
     with contextlib.ExitStack() as stack:
-        if "d" not in args.skip:
+        pids, scheduler = (), None
+        if args.with_dask:
             from distributed import Client, LocalCluster
             cluster = stack.enter_context(LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                                        host="127.0.0.1", dashboard_address=None))
             client = stack.enter_context(Client(cluster))
             pids = list(client.run(os.getpid).values())
-            measure(track_cmd(1, "--scheduler", cluster.scheduler_address), env=env)  # workers import
-            plan.append(("d", lambda k: track_cmd(k, "--scheduler", cluster.scheduler_address)))
-        # every run once per round, the rounds one after another: a slow spell of the machine
-        # then touches every kind alike instead of all repeats of one
-        # S: the 1,000 frames of the issue's smallest case, when N is longer
-        lengths = ["1"] + (["S"] if n > SHORT else []) + ["N"] + (["4N"] if "memory" not in args.skip else [])
-        jobs = []
-        for kind, cmd in plan:
-            for length in lengths:
-                # start-up of a parallel run: one frame per worker, so that every worker starts
-                # (with one frame, MDAnalysis gives the whole run to one worker)
-                k = START_FRAMES.get(kind, 1) if length == "1" else frames_of[length]
-                jobs.append((f"{kind}:{length}", cmd(k), pids if kind == "d" else (), env_of.get(kind, env)))
-        for round_ in range(args.repeat):
-            for name, cmd, extra, job_env in jobs:
-                record(name, measure(cmd, extra_pids=extra, env=job_env))
-            if round_ == 0 and "memory" not in args.skip:
-                record("b:2N", measure(track_cmd(2 * n), env=env))
-    alone = None
-    if "alone" not in args.skip:
-        alone = pass_alone(top, xtc, n, max(3, args.repeat), py, env)
-    jit = {}
+            scheduler = cluster.scheduler_address
+        for fmt in args.formats:
+            summary[fmt] = run_format(fmt, args, data, py, env, pids, scheduler, n_torsions)
     if "jit" not in args.skip:
         # the first pass of a process loads the compiled kernels from numba's cache, or compiles
         # them when the cache is empty (once per installation): CPU seconds of the first pass
         # minus those of a second one, in the same process
+        jit = {}
         for label, extra in (("cached", {}), ("compiled", {"NUMBA_CACHE_DIR": None})):
             with tempfile.TemporaryDirectory() as cache:
                 probe_env = dict(env, **{k: cache for k in extra})
@@ -472,83 +486,11 @@ def main(argv=None):
                                       capture_output=True, text=True, check=True)
             first, second = map(float, done.stdout.split())
             jit[label] = first - second
-
-    def marginal(kind, key, lo="1", hi="N", n_lo=None, n_hi=n):
-        if n_lo is None:
-            n_lo = START_FRAMES.get(kind, 1) if lo == "1" else n
-        return (runs[f"{kind}:{hi}"][key] - runs[f"{kind}:{lo}"][key]) / (n_hi - n_lo)
-
-    rows = [("(a) MDAnalysis reading only", "a"), ("(b) dihedra track, serial (default)", "b"),
-            ("(a2) dihedra's XTC decoder reading only", "a2"),
-            ("(b0) track reading through MDAnalysis", "b0"),
-            ("(b1) dihedra track --threads 1", "b1"), ("(c) dihedra track --workers 2", "c"),
-            ("(d) --scheduler, 2 dask workers", "d")]
-    summary = {"n_torsions": n_torsions, "n_atoms": 6 * args.molecules, "frames": n, "runs": runs,
-               "samples": samples}
-    for hi, n_hi in [(h, frames_of[h]) for h in lengths if h in ("S", "N")]:
-        print()
-        print(f"marginal cost per frame (T(M) - T(1)) / (M - 1) over M = {n_hi} frames, ratio to (a) "
-              f"MDAnalysis reading ({n_torsions} torsions; for (c) and (d) (T(M) - T(2)) / (M - 2): one frame "
-              "per worker):")
-        print(f"  {'':<40} {'wall ms/frame':>14} {'ratio':>7} {'cpu ms/frame':>13} {'ratio':>7} {'peak MB':>8}")
-        floor_w = marginal("a", "wall_s", hi=hi, n_hi=n_hi)
-        floor_c = marginal("a", "cpu_s", hi=hi, n_hi=n_hi)
-        tag = "" if hi == "N" else f"_{n_hi}"
-        for label, kind in rows:
-            if f"{kind}:{hi}" not in runs:
-                continue
-            w, c = marginal(kind, "wall_s", hi=hi, n_hi=n_hi), marginal(kind, "cpu_s", hi=hi, n_hi=n_hi)
-            summary[f"ratio_{kind}_wall{tag}"] = w / floor_w
-            summary[f"ratio_{kind}_cpu{tag}"] = c / floor_c
-            print(f"  {label:<40} {w * 1e3:14.3f} {w / floor_w:7.2f} {c * 1e3:13.3f} {c / floor_c:7.2f} "
-                  f"{runs[f'{kind}:{hi}']['peak_rss_mb']:8.0f}")
-    if "b:4N" in runs:
-        for lo, n_lo, text in (("1", 1, f"(T(4N) - T(1)) / (4N - 1), 4N = {4 * n}"),
-                               ("N", n, "(T(4N) - T(N)) / 3N, costs that stop growing with the frames left out")):
-            fw, fc = marginal("a", "wall_s", lo, "4N", n_lo, 4 * n), marginal("a", "cpu_s", lo, "4N", n_lo, 4 * n)
-            print(f"  from {text}: (a) wall {fw * 1e3:.3f} ms, cpu {fc * 1e3:.3f} ms per frame")
-            for label, kind in rows[1:]:
-                if f"{kind}:4N" not in runs:
-                    continue
-                k_lo = START_FRAMES.get(kind, 1) if lo == "1" else n
-                bw = marginal(kind, "wall_s", lo, "4N", k_lo, 4 * n)
-                bc = marginal(kind, "cpu_s", lo, "4N", k_lo, 4 * n)
-                summary[f"ratio_{kind}_wall_{lo}_4N"], summary[f"ratio_{kind}_cpu_{lo}_4N"] = bw / fw, bc / fc
-                print(f"    {label:<36} wall {bw * 1e3:7.3f} ms = {bw / fw:5.2f};"
-                      f"  cpu {bc * 1e3:7.3f} ms = {bc / fc:5.2f}")
-        robust = robust_slopes(samples, n)
-        summary["theil_sen"] = robust
-        print("  every run at once, the slope of wall time against frames over all runs of 1, N (2N) and 4N "
-              "frames (Theil-Sen, scipy.stats.theilslopes; 90 % interval: with a noisy machine it shows what the "
-              "figures above can tell apart):")
-        fa = robust["a"]
-        for label, kind in rows:
-            if kind in robust:
-                r = robust[kind]
-                print(f"    {label:<36} {r['slope'] * 1e3:7.3f} ms/frame [{r['low'] * 1e3:.3f}, {r['high'] * 1e3:.3f}]"
-                      f"  ratio {r['slope'] / fa['slope']:5.2f} [{r['low'] / fa['high']:.2f}, {r['high'] / fa['low']:.2f}]")
-        peaks = [runs[f"b:{k}"]["peak_rss_mb"] for k in ("N", "2N", "4N")]
-        summary["peak_b_mb"] = peaks
-        print(f"peak memory of (b) at 1x, 2x, 4x frames: {peaks[0]:.0f}, {peaks[1]:.0f}, {peaks[2]:.0f} MB "
-              f"(4x / 1x = {peaks[2] / peaks[0]:.3f}; 1 frame: {runs['b:1']['peak_rss_mb']:.0f} MB)")
-    if alone:
-        summary["pass_alone_ms_per_frame"] = alone
-        r = alone["read"]
-        print("the pass alone in one process (TorsionPass, time series written), interleaved with reading the "
-              "same frames, (T(4N) - T(N)) / 3N, median of the repeats:")
-        for key, label in (("read", "MDAnalysis reading only"), ("pass1", "pass, 1 thread"),
-                           ("pass2", "pass, --threads 2")):
-            x = alone[key]
-            print(f"  {label:<28} wall {x['wall'] * 1e3:.3f} ms/frame ({x['wall'] / r['wall']:.2f})   "
-                  f"cpu {x['cpu'] * 1e3:.3f} ms/frame ({x['cpu'] / r['cpu']:.2f})")
-    if jit:
         summary["jit_cpu_s"] = jit
-        print(f"start-up of (b): {runs['b:1']['wall_s']:.1f} s wall, {runs['b:1']['cpu_s']:.1f} s cpu (subtracted "
-              f"above); of it, loading the compiled kernels from numba's cache: {jit['cached']:.2f} s cpu. "
-              f"With an empty cache (the first run of an installation) they are compiled instead: "
-              f"{jit['compiled']:.1f} s cpu.")
-    print("targets: (b)/(a) <= 1.15, (c)/(a) <= 0.65, peak 4x/1x within 10 %")
-
+        print(f"\nloading the compiled kernels from numba's cache: {jit['cached']:.2f} s cpu; with an empty cache "
+              f"(the first run of an installation) they are compiled instead: {jit['compiled']:.1f} s cpu.")
+    print("targets: DCD (b)/(a) <= 1.3, XTC (b)/(a) <= 0.4; (b, 1 frame) - (a, 1 frame) <= 1.5 s; peak < 450 MB; "
+          "(c2) never slower than (b)")
     if "post" not in args.skip:
         post_samples(args, data, top, xtc, n, n_torsions, py, env, summary)
     print(f"load average at the end: {os.getloadavg()[0]:.2f}")

@@ -153,7 +153,7 @@ def _file_cases(c):
         def damaged(fx, d, label=label):
             copy_in(fx, d, "hexane.pdb")
             damaged_xtc_variants()[label](os.path.join(fx, "hexane.xtc"), os.path.join(d, "bad.xtc"))
-        for extra in ([], ["--workers", "2"]):
+        for extra in ([], ["--workers", "2", "--backend", "multiprocessing"]):
             c.append(Case(f"XTC {label}" + (" (2 workers)" if extra else ""),
                           ["track", "hexane.pdb", "bad.xtc", "--torsions", "rotatable", "--out", "out", *extra],
                           setup=damaged))
@@ -298,8 +298,8 @@ def _signal_cases(c):
     rng = random.Random(18)
     for sig in (signal.SIGINT, signal.SIGTERM):
         for label, extra in [("serial, 2 threads", ["--threads", "2"]), ("serial, 1 thread", ["--threads", "1"]),
-                             ("2 processes", ["--workers", "2"]), ("dask, 2 processes", ["--workers", "2",
-                                                                                           "--backend", "dask"])]:
+                             ("2 processes", ["--workers", "2", "--backend", "multiprocessing"]),
+                             ("dask, 2 processes", ["--workers", "2", "--backend", "dask"])]:
             for k in range(3):
                 after = rng.uniform(0.0, 4.0)
                 c.append(Case(f"{signal.Signals(sig).name} {after:.1f} s into a run ({label}), --overwrite of an "

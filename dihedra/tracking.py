@@ -17,6 +17,7 @@ Example
 
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
 import sys
@@ -36,12 +37,15 @@ from .selection.choice import choose_schemes
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
 from .trajectory import interrupts
-from .trajectory.assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info, scheme_table
+from .trajectory.assemble import (assemble_result, block_sums, make_summary, pass_threads, plan_workers, replica_info,
+                                 scheme_table)
 from .trajectory.basins import need_temperature, plan_basins
 from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
 from .trajectory.discard import plan_discard
-from .trajectory.inputs import check_readable, load_universe, truncated_error, usable_frames
+from .trajectory.inputs import FileHashes, check_readable, load_universe, truncated_error, usable_frames
+from .trajectory.result import BlockParts, NpzMember, bound_heap, release_memory
 from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
+from .trajectory.timeblocks import pass_time_blocks
 
 
 def load_weights(spec, n_frames_per_replica):
@@ -168,7 +172,7 @@ def _frame_indices(universe, start, stop, step, where):
 
 
 def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, start=None,
-          stop=None, step=None, workers=1, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
+          stop=None, step=None, workers=None, backend=None, scheduler=None, keep_angles=False, weights=None, out=None,
           overwrite=False, dt_ps=None, temperature_k=None, n_state_blocks=64, n_hist_blocks=16,
           bin_width_deg=1.0, chunk_frames=None, threads=None, keep_variants=False, allow_duplicates=False,
           progress=None, log=None, discard=None, target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL):
@@ -194,10 +198,16 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
         :mod:`dihedra.selection.choice`). ``schemes.csv`` lists the states of every type and why.
     start, stop, step : int, optional
         Frame range, applied to every replica.
-    workers : int
-        Processes per replica; more than one uses ``backend`` (default ``multiprocessing``).
+    workers : int or "auto", optional
+        Worker processes per replica. ``"auto"`` or ``None`` (default): as many as pay on this machine for
+        the size of the run (a serial run already reads and computes in two threads; a worker
+        needs two more cores and about 3 x 10^8 torsion-frames to earn back its start-up; see
+        :func:`dihedra.trajectory.assemble.plan_workers`); a number: at most that many, by the
+        same rule, unless a parallel ``backend`` is named (then exactly that many). The choice
+        is logged and recorded in the summary (``parameters.workers_choice``).
     backend : str or MDAnalysis backend object, optional
-        ``serial``, ``multiprocessing``, ``dask`` or a ``BackendBase`` instance.
+        ``serial``, ``multiprocessing``, ``dask`` or a ``BackendBase`` instance (default:
+        ``multiprocessing`` when more than one worker is chosen).
     scheduler : str or distributed.Client, optional
         Address of a running dask.distributed scheduler (``tcp://host:8786``) or a client: the
         frames of every replica are spread over all its workers (see :mod:`dihedra.trajectory.distributed`
@@ -226,8 +236,9 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
         refused, since copies are not independent samples and would shrink every error.
     threads : int, optional
         Threads per pass: 2 lets a second thread compute while the first reads the trajectory
-        (serial runs; each worker of a parallel run uses one thread). Default: 2 for a serial run
-        when this process may use two or more cores, else 1. Results are identical.
+        (serial runs, and workers with two cores each). Default: 2 for a serial run when this
+        process may use two or more cores, for workers as :func:`plan_workers` decides, else 1.
+        Results are identical.
     progress : bool, optional
         Show a progress bar (default: when standard error is a terminal and the run is serial).
     log : callable, optional
@@ -255,11 +266,14 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
     check_targets(target_error, target_error_kj_mol)
     group, topology, trajectories = _inputs(topology, trajectories)
     try:
-        run.begin(topology, trajectories, torsions, scheme, weights)
-        digests = _check_duplicates(trajectories, allow_duplicates, run.notices) if group is None else {}
-        universes = _universes(group, topology, trajectories, run.notices)
-        tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions,
-                                                                                            keep_variants=keep_variants)
+        with run.phase("inputs"):
+            run.begin(topology, trajectories, torsions, scheme, weights)
+            digests = (_check_duplicates(trajectories, allow_duplicates, run.notices, run.hashes)
+                       if group is None else {})
+            universes = _universes(group, topology, trajectories, run.notices)
+        with run.phase("selection"):
+            tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions,
+                                                                                        keep_variants=keep_variants)
         run.notices.extend(tset.notices)
         choice = choose_schemes(scheme, universes[0], tset, torsions)
         run.notices.extend(choice.notices)
@@ -275,8 +289,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
                                                       zip(universes, frames, weight_arrays)], tset, scheme)
         frames = [f[k:] for f, k in zip(frames, drop)]
         weight_arrays = [None if w is None else w[k:] for w, k in zip(weight_arrays, drop)]
-        n_workers = 1 if workers is None else int(workers)
-        backend = run.backend(backend, scheduler, n_workers)
+        backend, n_workers, threads = run.plan(workers, backend, scheduler, threads, max(map(len, frames)), len(tset))
         basins = None
         if choice.needs_data:   # the basins: a first pass over the frames the run keeps
             run.say(f"basins of {len(choice.basin_types)} torsion type(s): a first pass for their histograms")
@@ -296,12 +309,14 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
             tp.plumb(parts_dir=run.parts_dir, series=ParquetSeriesFactory(run.work), chunk_frames=chunk_frames,
                      replica=r, defer_close=backend == "serial", threads=threads)
             run.add_pass(tp)
-            _run_pass(tp, traj, fr, backend, n_workers, progress, r, len(universes))
+            with run.hashes.paused(), run.phase("pass"):   # (the cores are the pass's)
+                _run_pass(tp, traj, fr, backend, n_workers, progress, r, len(universes))
             interrupts.check()
             replicas.append(replica_info(u, traj, fr, tp, dt_ps, run.notices))
             if traj in digests:
                 replicas[-1]["sha256"] = digests[traj]
-        params = dict(start=start, stop=stop, step=step, workers=n_workers, threads=int(run.passes[0].threads),
+        params = dict(start=start, stop=stop, step=step, workers=n_workers, workers_asked=workers,
+                      workers_choice=run.choice, threads=int(run.passes[0].threads),
                       backend=backend if isinstance(backend, str) else type(backend).__name__,
                       scheduler=None if scheduler is None else str(backend.client.scheduler.address),
                       keep_angles=bool(keep_angles), weights=None if weights is None else str(weights),
@@ -325,11 +340,15 @@ class _Run:
         self.out, self.overwrite = out, overwrite
         self.say = log or (lambda msg: None)
         self.started = time.time()
-        self.staging = self.scratch = self.client = None
+        self.staging = self.scratch = self.client = self.hashes = None
+        self.choice = None
+        # seconds by phase, for the summary (start-up: from the start of the process to track())
+        self.phases = {"startup": _process_age()}
         self.passes, self.writers, self.notices = [], [], []
 
     def begin(self, topology, trajectories, torsions, scheme, weights):
         """Check the output folder and make the place where the run writes."""
+        bound_heap()
         if self.out is not None:
             with interrupts.signals_held():   # an interrupt comes before the staging folder exists or after it is known
                 self.staging = StagedFolder.begin(self.out, overwrite=self.overwrite, command="track",
@@ -340,18 +359,43 @@ class _Run:
             self.work = self.scratch.name
         self.parts_dir = os.path.join(self.work, "_parts")
         os.makedirs(self.parts_dir)
+        # the SHA-256 of the inputs (for the summary), in a background thread while the topology
+        # is read and the tables are made
+        self.hashes = FileHashes([f for f in (topology, *trajectories) if f and os.path.isfile(f)])
 
-    def backend(self, backend, scheduler, n_workers):
-        """The backend of the passes (a dask.distributed one with ``scheduler``)."""
+    @contextlib.contextmanager
+    def phase(self, name):
+        """Add the seconds of this block to phase ``name`` (``summary.json``: phase_seconds)."""
+        t0 = time.perf_counter()
+        try:
+            yield
+        finally:
+            self.phases[name] = self.phases.get(name, 0.0) + time.perf_counter() - t0
+
+    def plan(self, workers, backend, scheduler, threads, n_frames, n_torsions):
+        """``(backend, workers, threads)`` of the passes: a dask.distributed backend with
+        ``scheduler``; exactly ``workers`` processes with an explicit parallel ``backend``;
+        else as many as pay (:func:`~dihedra.trajectory.assemble.plan_workers`, at most
+        ``workers``). The choice is said (``log``) and kept in :attr:`choice`."""
+        if not (workers in (None, "auto") or (isinstance(workers, (int, np.integer)) and not isinstance(workers, bool)
+                                              and workers >= 1)):
+            raise DihedraError(f"workers must be 'auto' or a whole number of at least 1; got {workers!r}.")
         if scheduler is not None:
             from .trajectory.distributed import DistributedBackend, connect
             client, owned = connect(scheduler)
             self.client = client if owned else None
             backend = DistributedBackend(client)
-            self.say(f"dask scheduler {client.scheduler.address}: {backend.n_workers} worker threads")
-        if backend is None:
-            backend = "multiprocessing" if n_workers > 1 else "serial"
-        return backend
+            self.choice = f"dask scheduler {client.scheduler.address}: {backend.n_workers} worker threads"
+            n = backend.n_workers
+        elif backend not in (None, "serial") and workers not in (None, "auto"):
+            n = int(workers)   # a backend named: the workers asked for, as many as that
+            self.choice = f"{n} worker process(es), backend {backend} (as asked)"
+        else:
+            n, planned, self.choice = plan_workers(workers, n_frames, n_torsions)
+            backend = "multiprocessing" if n > 1 and backend in (None, "serial") else backend or "serial"
+            threads = planned if threads is None else threads
+        self.say(f"workers: {self.choice}")
+        return backend if n > 1 or not isinstance(backend, str) else "serial", n, threads
 
     def add_pass(self, tp):
         # a serial pass writes its last row group while the next pass starts or the populations
@@ -363,28 +407,45 @@ class _Run:
     def finish(self, tset, scheme, universe, topology, replicas, params, schemes=None):
         """The result and its folder: blocks.npz written by another thread (zlib releases Python's
         lock) while this one computes the populations and writes the tables."""
-        shutil.rmtree(self.parts_dir, ignore_errors=True)
-        blocks = block_sums(self.passes)
-        work = self.work
-        self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
-                                                     narrow=[k for k in blocks if narrowed_type(k)]))]
-        result = assemble_result(tset, scheme, universe, self.notices, blocks)
-        result.schemes = schemes
-        result.summary.update(make_summary(topology, replicas, scheme, tset, params, self.notices,
-                                           time.time() - self.started))
+        # the last row group of the time series first: Arrow's writer of 15,000 columns takes
+        # about 100 MB while it writes, which the tables would otherwise come on top of
+        with self.phase("series"):
+            self.passes[-1].finish_series()
+        release_memory()
+        with self.phase("tables"):
+            blocks = block_sums(self.passes)
+            work = self.work
+            self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
+                                                         narrow=[k for k in blocks if narrowed_type(k)]))]
+            result = assemble_result(tset, scheme, universe, self.notices, blocks)
+            result.schemes = schemes
+            result.time_blocks = pass_time_blocks(self.passes, tset.types, scheme.labels)
+            release_memory()
+        with self.phase("hashing_wait"):
+            summary = make_summary(topology, replicas, scheme, tset, params, self.notices,
+                                   time.time() - self.started, hashes=self.hashes)
+        summary["phase_seconds"] = {k: round(v, 3) for k, v in self.phases.items()}
+        result.summary.update(summary)
         write_results(result, work, blocks=False)
         for w in self.writers:
             w.join()
         self.writers = []
+        # the histogram blocks the passes left in the scratch folder are in blocks.npz now: the
+        # result reads them from there if an analysis asks for them
+        shutil.rmtree(self.parts_dir, ignore_errors=True)
         self.passes[-1].finish_series()
+        release_memory()
         write_convergence(result, work, params)
         if self.staging is not None:
             result.folder = self.staging.commit()
             self.staging = None
-            result.series = ParquetSeries(result.folder)
+            folder = result.folder
         else:
             result._scratch, self.scratch = self.scratch, None
-            result.series = ParquetSeries(result._scratch.name)
+            folder = result._scratch.name
+        result.series = ParquetSeries(folder)
+        if isinstance(blocks.stored.get("histograms"), BlockParts):
+            blocks["histograms"] = NpzMember(os.path.join(folder, "blocks.npz"), "histograms")
         return result
 
     def close(self):
@@ -395,6 +456,8 @@ class _Run:
                 tp.finish_series()
             except Exception:  # noqa: BLE001 - the original error matters
                 pass
+        if self.hashes is not None:
+            self.hashes.cancel()
         if self.client is not None:
             self.client.close()
         if self.staging is not None:
@@ -439,17 +502,16 @@ def _inputs(topology, trajectories):
     return None, os.fspath(topology), trajectories
 
 
-def _check_duplicates(trajectories, allow, notices):
-    """SHA-256 of every trajectory (when there are several); the same file twice is refused
-    unless ``allow`` (then a notice)."""
+def _check_duplicates(trajectories, allow, notices, hashes):
+    """SHA-256 of every trajectory (when there are several; from ``hashes``, the run's
+    :class:`~dihedra.trajectory.inputs.FileHashes`); the same file twice is refused unless
+    ``allow`` (then a notice)."""
     if len(trajectories) < 2:
         return {}
-    from .trajectory.inputs import sha256
-
     digests, first = {}, {}
     for k, t in enumerate(trajectories):
         check_readable(t, "trajectory")
-        digests[t] = sha256(t)
+        digests[t] = hashes.get(t)
         if digests[t] in first:
             j = first[digests[t]]
             text = (f"replicas {j} ({trajectories[j]}) and {k} ({t}) are the same trajectory (same SHA-256)")
@@ -476,7 +538,9 @@ def _check_options(start, stop, step, workers, threads, dt_ps, temperature_k, bi
                    n_hist_blocks, chunk_frames):
     """Refuse, before any work, the options that would give wrong numbers later."""
     check_frame_range(start, stop, step)
-    whole_number("workers", workers)
+    if not (workers in (None, "auto") or (isinstance(workers, (int, np.integer)) and not isinstance(workers, bool)
+                                          and workers >= 1)):
+        raise DihedraError(f"workers must be 'auto' or a whole number of at least 1; got {workers!r}.")
     whole_number("chunk_frames", chunk_frames)
     if threads is not None:
         pass_threads(threads, "serial")
@@ -505,6 +569,17 @@ def _run_pass(tp, traj, frames, backend, n_workers, progress, r, n_replicas):
         raise
     except (OSError, EOFError) as exc:
         raise truncated_error(traj, tp._universe, exc) from None
+
+
+def _process_age():
+    """Seconds since this process started (Linux ``/proc``; 0 elsewhere)."""
+    try:
+        with open("/proc/self/stat") as fh:
+            start = int(fh.read().rsplit(")", 1)[1].split()[19]) / os.sysconf("SC_CLK_TCK")
+        with open("/proc/uptime") as fh:
+            return max(0.0, float(fh.read().split()[0]) - start)
+    except (OSError, ValueError, IndexError, AttributeError):
+        return 0.0
 
 
 class _Background:

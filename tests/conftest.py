@@ -9,6 +9,18 @@ import pytest
 warnings.filterwarnings("ignore", category=DeprecationWarning)
 
 
+@pytest.fixture(autouse=True, scope="session")
+def _hash_cache(tmp_path_factory):
+    """The cache of file hashes of the tests in a temporary folder, not the user's."""
+    old = os.environ.get("DIHEDRA_CACHE_DIR")
+    os.environ["DIHEDRA_CACHE_DIR"] = str(tmp_path_factory.mktemp("dihedra-cache"))
+    yield
+    if old is None:
+        os.environ.pop("DIHEDRA_CACHE_DIR", None)
+    else:
+        os.environ["DIHEDRA_CACHE_DIR"] = old
+
+
 def place_fourth(a, b, c, bond, angle_deg, torsion_deg):
     """Position of D from A, B, C, the bond C-D, the angle B-C-D and the torsion A-B-C-D (IUPAC).
 

@@ -308,3 +308,67 @@ def test_track_command_prints_the_verdicts_and_refuses_a_bad_discard(two_ensembl
     assert "convergence per type (start dropped:" in out and "converged" in out
     assert main(["track", top, traj, "--torsions", "rotatable", "--out", str(tmp_path / "d"), "--discard", "soon"]) == 2
     assert "dihedra: error: discard must be 'auto'" in capsys.readouterr().err
+
+
+def assert_same_time_blocks(counted, read):
+    """The time blocks the pass counted equal those read back from the state series."""
+    assert counted is not None
+    assert counted.types == read.types and counted.states == read.states
+    np.testing.assert_array_equal(counted.n_torsions, read.n_torsions)
+    assert len(counted.replicas) == len(read.replicas)
+    for a, b in zip(counted.replicas, read.replicas):
+        for name in ("counts", "weights", "frames", "first", "time_ps"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
+        assert (a.replica, a.n_frames, a.interval_ps) == (b.replica, b.n_frames, b.interval_ps)
+
+
+def assert_counted_equals_read_back(result, folder):
+    # the convergence time blocks are counted during the pass; reading the state series back (what
+    # a folder loaded later does) gives the same blocks and byte-identical tables
+    from dihedra.trajectory.timeblocks import time_blocks
+
+    assert_same_time_blocks(result.time_blocks, time_blocks(result))
+    loaded = dihedra.load_results(str(folder))
+    assert loaded.time_blocks is None
+    again = str(folder) + "-again"
+    os.makedirs(again)
+    dihedra.convergence(loaded).save(again)
+    for name in ("convergence.csv", "convergence_by_state.csv", "convergence_over_time.csv"):
+        with open(os.path.join(folder, name), "rb") as a, open(os.path.join(again, name), "rb") as b:
+            assert a.read() == b.read(), name
+
+
+def test_time_blocks_counted_in_the_pass_equal_the_read_back_example(tmp_path):
+    # the bundled hexane example, two replicas (the second from frame 5), serial and two workers
+    top, trj = dihedra.example_path("hexane.pdb"), dihedra.example_path("hexane.xtc")
+    res = dihedra.track(top, [trj, trj], allow_duplicates=True, start=5, out=str(tmp_path / "two"))
+    assert_counted_equals_read_back(res, tmp_path / "two")
+    res = dihedra.track(top, trj, workers=2, backend="multiprocessing", out=str(tmp_path / "workers"))
+    assert_counted_equals_read_back(res, tmp_path / "workers")
+
+
+def test_time_blocks_counted_in_the_pass_equal_the_read_back_protein(tmp_path):
+    # MDAnalysisTests' adenylate kinase (OPLS-AA, 10 frames), backbone torsions of the protein scheme
+    # set: many types in short runs (the torsion-by-torsion branch of the counting kernel)
+    from MDAnalysisTests.datafiles import GRO, XTC
+
+    res = dihedra.track(GRO, XTC, torsions="protein-backbone", out=str(tmp_path / "adk"))
+    assert len(res.time_blocks.types) > 10
+    assert_counted_equals_read_back(res, tmp_path / "adk")
+
+
+def test_weighted_time_blocks_counted_in_the_pass(tmp_path):
+    # with frame weights the block sums are the same products summed in another order
+    from dihedra.trajectory.timeblocks import time_blocks
+
+    top, trj = dihedra.example_path("hexane.pdb"), dihedra.example_path("hexane.xtc")
+    n = 1000   # the example's frames
+    weights = pd.DataFrame({"replica": 0, "frame": np.arange(n),
+                            "weight": np.random.default_rng(2).uniform(0.5, 2.0, n)})
+    weights.to_csv(tmp_path / "w.csv", index=False)
+    res = dihedra.track(top, trj, weights=str(tmp_path / "w.csv"))
+    read = time_blocks(res)
+    for a, b in zip(res.time_blocks.replicas, read.replicas):
+        np.testing.assert_allclose(a.counts, b.counts, rtol=1e-12)
+        np.testing.assert_allclose(a.weights, b.weights, rtol=1e-12)
+        np.testing.assert_array_equal(a.frames, b.frames)

@@ -44,3 +44,9 @@ def test_core_bits_are_the_core_rule(spec, types, n_bins):
                          for k, t in enumerate(types)], axis=1)
     np.testing.assert_array_equal(out, expected)
     assert 0.2 < out.mean() < 0.9
+    # a range of torsions at a time (as the two threads of the pass share them): the same bits
+    parts = np.empty_like(out)
+    bins = pass_bins(deg, n_bins)
+    for t0, t1 in ((0, 1), (1, 3), (3, 4)):
+        CoreBits(scheme, types, n_bins)(bins[:, t0:t1], deg[:, t0:t1], parts[:, t0:t1], t0, t1)
+    np.testing.assert_array_equal(parts, expected)

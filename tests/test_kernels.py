@@ -93,7 +93,9 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
                           np.asarray(scheme.start_closed, dtype=bool)[None, :],
                           np.asarray(scheme.arc_states, dtype=np.int8)[None, :],
                           MIXED, bins[0], codes, counts, 1, undefined)
-    _kernels.add_histograms(bins, np.zeros(1, dtype=np.intp), np.ones(1, dtype=np.int32), hist)
+    top = np.zeros(1, dtype=np.int64)
+    _kernels.add_histograms(bins, np.ones(1, dtype=np.int64), hist[0], top)
+    assert top[0] == hist.max() == 1   # the largest cell written (from which the pass widens narrow counts)
     hist = hist[0]
     # the scheme's own rule, on the same float32 angles
     np.testing.assert_array_equal(codes, scheme.assign(deg.astype(np.float64)))

@@ -92,10 +92,16 @@ def assert_same(a, b):
         pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
     pd.testing.assert_frame_equal(a.states(), b.states())
     pd.testing.assert_frame_equal(a.angles(), b.angles())
+    cores = [pq.read_table(r.series.path("cores")).to_pandas() for r in (a, b)]
+    pd.testing.assert_frame_equal(*cores)
+    # the convergence time blocks counted by the pass (every worker its frames' blocks)
+    for x, y in zip(a.time_blocks.replicas, b.time_blocks.replicas, strict=True):
+        for name in ("counts", "frames", "time_ps"):
+            np.testing.assert_array_equal(getattr(x, name), getattr(y, name), err_msg=name)
     # the same rows whatever the number of workers (above); each process wrote the files of its
     # own frames: file names by replica and first frame, rows in the order of the names
     for r in (a, b):
-        for kind in ("states", "angles"):
+        for kind in ("states", "cores", "angles"):
             files = series_files(r.series.path(kind))
             firsts = [(int(os.path.basename(f)[5:9]), int(os.path.basename(f)[10:22])) for f in files]
             heads = [tuple(pq.read_table(f, columns=["replica", "frame"]).slice(0, 1).to_pylist()[0].values())
@@ -117,7 +123,7 @@ def test_time_series_start_new_files(replicas, serial, monkeypatch):
     pd.testing.assert_frame_equal(split.states(), serial.states())
     pd.testing.assert_frame_equal(split.angles(), serial.angles())
     pd.testing.assert_frame_equal(pd.concat(list(split.iter_states()), ignore_index=True), serial.states())
-    assert_same(split, track(top, trajs, workers=2, **KW))
+    assert_same(split, track(top, trajs, workers=2, backend="multiprocessing", **KW))
 
 
 @pytest.mark.parametrize("threads", [1, 2])
@@ -334,7 +340,7 @@ def test_second_thread_equals_serial(replicas, serial, monkeypatch):
     assert_same(serial, res)
 
 
-@pytest.mark.parametrize("kw", [dict(threads=1), dict(threads=2), dict(workers=2)])
+@pytest.mark.parametrize("kw", [dict(threads=1), dict(threads=2), dict(workers=2, backend="multiprocessing")])
 def test_xtc_decoder_equals_mdanalysis_reading(replicas, serial, monkeypatch, kw):
     # dihedra's XTC decoder (dihedra.trajectory.trajread) against MDAnalysis' own iteration (reference
     # library): the same blocks, tables and time series, in batches of 7 frames
@@ -368,7 +374,8 @@ def test_more_workers_than_frames(replicas):
     top, trajs, _ = replicas
     kw = dict(KW, stop=1)
     one = track(top, trajs[:1], **kw)
-    two = track(top, trajs[:1], workers=2, **kw)
+    two = track(top, trajs[:1], workers=2, backend="multiprocessing", **kw)
+    assert two.summary["parameters"]["workers"] == 2
     for key in one.blocks:
         np.testing.assert_array_equal(one.blocks[key], two.blocks[key], err_msg=key)
     pd.testing.assert_frame_equal(one.states(), two.states())
@@ -418,3 +425,58 @@ def test_block_sums_of_workers_through_files_or_pickles_equal_serial(replicas, t
         <= ref.results.block_frames.sum() * len(tset) // 3
     # files of the workers are read and removed by the parent
     assert not [f for f in os.listdir(parts) if ".hist" in f or "conformer" in f]
+
+
+def test_workers_pay_only_with_free_cores_and_enough_frames(replicas, monkeypatch):
+    # common practice: a serial run already uses two cores (a thread reads, one computes), so a
+    # worker process needs two more cores and enough frames to earn back its start-up
+    from dihedra.trajectory import assemble
+
+    per = assemble.TORSION_FRAMES_PER_WORKER
+    assert assemble.plan_workers("auto", 1500, 15_000, cores=2)[:2] == (1, 2)
+    assert assemble.plan_workers(2, 10 * per, 1, cores=2)[:2] == (1, 2)       # no free cores
+    assert assemble.plan_workers(2, 1500, 15_000, cores=8)[:2] == (1, 2)      # too few frames
+    assert assemble.plan_workers("auto", 3 * per, 1, cores=8)[:2] == (3, 2)
+    assert assemble.plan_workers(2, 3 * per, 1, cores=8)[:2] == (2, 2)        # at most as asked
+    assert assemble.plan_workers("auto", 10 * per, 1, cores=6)[:2] == (3, 2)
+    assert "usable core" in assemble.plan_workers(2, 1500, 15_000, cores=2)[2]
+    # the choice is said and recorded; asking for two workers never makes a small run slower
+    top, trajs, _ = replicas
+    monkeypatch.setattr(assemble.os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
+    said = []
+    res = track(top, trajs[:1], workers=2, log=said.append, **KW)
+    params = res.summary["parameters"]
+    assert params["workers"] == 1 and params["workers_asked"] == 2 and params["backend"] == "serial"
+    assert any(line.startswith("workers: one process with 2 thread(s)") for line in said)
+    with pytest.raises(DihedraError, match="workers must be 'auto'"):
+        track(top, trajs[:1], workers=0, **KW)
+
+
+@pytest.mark.parametrize("cut", ["half", "all"])
+def test_torsion_work_shared_by_the_reading_thread_gives_the_same_results(replicas, serial, monkeypatch, cut):
+    # the reading thread computes the first torsions of each batch, the second thread the rest
+    # (frame_work.FrameWork); wherever the cut is, the results are those of one thread
+    import dihedra.trajectory.trackpass as tp
+    from dihedra.trajectory.frame_work import FrameWork
+
+    def fixed(self, side, seconds, frames):
+        self.split = self.n // 2 if cut == "half" else self.n
+    monkeypatch.setattr(FrameWork, "balance", fixed)
+    monkeypatch.setattr(tp, "BATCH_BYTES", 7 * 60 * 12)   # batches of 7 frames (60 atoms)
+    top, trajs, _ = replicas
+    assert_same(serial, track(top, trajs, threads=2, **KW))
+
+
+def test_core_bits_written_are_the_core_rule_of_the_angles(replicas, serial):
+    # cores.parquet (bits packed frame by frame into chunks of 23 frames, not a multiple of 8)
+    # holds exactly the core rule of the scheme (StateScheme.core_codes, Buchete & Hummer 2008)
+    # applied to the angles the same run wrote
+    from dihedra.trajectory.cores import CORE_MARGIN_DEG
+
+    angles = serial.angles()
+    cores = pq.read_table(serial.series.path("cores")).to_pandas()
+    labels = [c for c in angles.columns if c not in ("replica", "frame", "time_ps", "weight")]
+    scheme = get_scheme("klyne-prelog")
+    expected = np.stack([scheme.core_codes(angles[c].to_numpy(), CORE_MARGIN_DEG) >= 0 for c in labels], axis=1)
+    np.testing.assert_array_equal(cores[labels].to_numpy(), expected)
+    assert 0.1 < expected.mean() < 0.9

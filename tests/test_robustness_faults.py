@@ -87,7 +87,8 @@ def test_a_full_disk_while_tracking(work, capsys, monkeypatch, where, workers):
     monkeypatch.setattr(*target, failing(errno.ENOSPC, "No space left on device"))
     before = snapshot(work / "res")
     one_error(capsys, ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "300",
-                       "--out", "res", "--overwrite", "--workers", str(workers)], "No space left on device",
+                       "--out", "res", "--overwrite", "--workers", str(workers), "--backend",
+                       "multiprocessing" if workers > 1 else "serial"], "No space left on device",
               "free some space")
     assert snapshot(work / "res") == before and not leftovers(work)
 
@@ -139,7 +140,8 @@ def test_an_unreachable_scheduler_fails_at_once(work, monkeypatch):
 # ----------------------------------------------------------------------------------------------
 
 BACKENDS = {"serial, 2 threads": ["--threads", "2"], "serial, 1 thread": ["--threads", "1"],
-            "2 processes": ["--workers", "2"], "dask, 2 processes": ["--workers", "2", "--backend", "dask"]}
+            "2 processes": ["--workers", "2", "--backend", "multiprocessing"],
+            "dask, 2 processes": ["--workers", "2", "--backend", "dask"]}
 
 
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM], ids=lambda s: signal.Signals(s).name)

@@ -201,13 +201,37 @@ def test_a_damaged_xtc_frame_is_one_error_naming_the_readable_frames(work, capsy
     assert not os.path.exists(work / "out") and no_staging(work)
 
 
+@pytest.mark.parametrize("window", [700, 5000, 1 << 20])
+def test_the_headers_of_an_xtc_checked_window_by_window(work, monkeypatch, window):
+    # the frame headers are checked a few MB of the file at a time (here windows smaller than a
+    # frame, of a few frames, of the whole file): the same frames, the same first damaged frame,
+    # the same cut last frame as one map of the file
+    from dihedra.errors import InputFileError
+    from dihedra.trajectory import inputs
+
+    whole = inputs.check_xtc(str(work / "hexane.xtc"))   # (one map: the file is smaller than the default)
+    assert whole[0] > 50 and whole[1] is None
+    monkeypatch.setattr(inputs, "SCAN_WINDOW", window)
+    assert inputs.check_xtc(str(work / "hexane.xtc")) == whole
+    headers = [v for v in damaged_xtc_variants() if "frame 50" in v and "bit stream" not in v]
+    assert len(headers) >= 5
+    for label in headers:   # (a garbled bit stream is found when the frame is decoded)
+        damaged_xtc_variants()[label](str(work / "hexane.xtc"), str(work / "bad.xtc"))
+        with pytest.raises(InputFileError, match="frame 50 .*frames 0-49 can be read"):
+            inputs.check_xtc(str(work / "bad.xtc"))
+    n = cut_mid_frame(str(work / "hexane.xtc"))
+    frames, notice = inputs.check_xtc(str(work / "hexane.xtc"))
+    assert frames == n and f"only the {n} complete frames" in notice
+
+
 def test_an_xtc_written_with_nan_coordinates_never_crashes(work):
     # MDAnalysis' own reader corrupts its heap on this file (checked in a child process here);
     # dihedra refuses it with one line, in a child process too (a crash would be a signal)
     nan_overflow_xtc(str(work / "hexane.xtc"), str(work / "nan.xtc"))
     env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
     run = subprocess.run([sys.executable, "-m", "dihedra", "track", "hexane.pdb", "nan.xtc", "--torsions",
-                          "rotatable", "--out", "out", "--workers", "2"], capture_output=True, text=True, env=env,
+                          "rotatable", "--out", "out", "--workers", "2", "--backend", "multiprocessing"],
+                         capture_output=True, text=True, env=env,
                          timeout=120)
     assert run.returncode == 2, run.stderr
     assert run.stderr.strip().startswith("dihedra: error: trajectory nan.xtc is damaged: frame 10 has an "

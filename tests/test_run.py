@@ -53,6 +53,8 @@ def test_unknown_key_names_the_key_suggests_one_and_lists_the_valid_ones(tmp_pat
 
 def test_values_inputs_and_pipeline_owned_keys_are_checked_before_anything_runs(tmp_path):
     os.makedirs(tmp_path / "res")
+    for name in ("t.pdb", "x.xtc"):   # (inputs that exist: the value of workers is what is refused)
+        write(tmp_path / name, "")
     cases = {'[profile]\nper_torsion = "yes"': "is a switch: give true or false",
              "[profile]\nbin_width_deg = [5, 10]": "takes a number",
              '[profile]\nbin_width_deg = "five"': "takes a number",
@@ -60,7 +62,9 @@ def test_values_inputs_and_pipeline_owned_keys_are_checked_before_anything_runs(
              '[profile]\nresult = "elsewhere"': "set by the pipeline from the top-level 'out'",
              '[compare]\nscan = "missing.toml"': "scan 'missing.toml' does not exist",
              '[compare]\ntypes = ["all"]': "give scan",
-             '[couplings]\nselect = ["x"]': "needs relation"}
+             '[couplings]\nselect = ["x"]': "needs relation",
+             '[track]\ntopology = "t.pdb"\ntrajectories = ["x.xtc"]\nworkers = 0': "workers must be 'auto' or a whole number of at least 1",
+             '[track]\ntopology = "t.pdb"\ntrajectories = ["x.xtc"]\nworkers = "many"': "workers must be 'auto' or a whole number"}
     for k, (table, message) in enumerate(cases.items()):
         toml = write(tmp_path / f"t{k}.toml", f'out = "res"\n{table}\n')
         with pytest.raises(DihedraError, match=re.escape(message)):

@@ -234,7 +234,10 @@ def test_results_folder_round_trip_and_existing_folder_untouched(two_replicas, t
     pd.testing.assert_frame_equal(back.populations, res.populations, check_exact=False, rtol=1e-5)
     assert back.scheme == res.scheme
     assert back.states().shape == (300, 3 + 8)
-    assert len(back.summary["topology"]["sha256"]) == 64
+    # the SHA-256 of the inputs (hashlib, standard library), computed while the run went on
+    import hashlib
+    assert back.summary["topology"]["sha256"] == hashlib.sha256(open(top, "rb").read()).hexdigest()
+    assert back.summary["replicas"][0]["sha256"] == hashlib.sha256(open(t0, "rb").read()).hexdigest()
     before = {n: os.path.getmtime(out / n) for n in names}
     with pytest.raises(OutputExistsError):
         track(top, [t0], torsions=spec8(), out=str(out))
@@ -301,3 +304,28 @@ def test_simulated_rb_butane_populations_match_boltzmann_integral():
     for state, p in expected.items():
         assert abs(pops.loc[state, "population"] - p) < 3 * pops.loc[state, "population_err"], state
         assert pops.loc[state, "population_err"] < 0.02  # the check has teeth
+
+
+def test_input_hashes_are_sha256_and_cached_until_the_file_changes(tmp_path, monkeypatch):
+    # hashlib's SHA-256 (standard library) of the inputs, in the summary; a second hashing of an
+    # unchanged file comes from the cache, a changed file is hashed again
+    import hashlib
+
+    from dihedra.trajectory import inputs
+
+    path = tmp_path / "data.bin"
+    path.write_bytes(b"x" * 5000)
+    monkeypatch.setenv(inputs.CACHE_ENV, str(tmp_path / "cache"))
+    expect = hashlib.sha256(b"x" * 5000).hexdigest()
+    assert inputs.cached_sha256(path) == expect
+    calls = []
+    monkeypatch.setattr(inputs, "sha256", lambda *a, **k: calls.append(a) or "recomputed")
+    assert inputs.cached_sha256(path) == expect and not calls
+    path.write_bytes(b"y" * 5000)
+    assert inputs.cached_sha256(path) == "recomputed" and len(calls) == 1
+    monkeypatch.setenv(inputs.NO_CACHE_ENV, "1")
+    assert inputs.cached_sha256(path) == "recomputed" and len(calls) == 2
+    hashes = inputs.FileHashes([path])
+    with hashes.paused():
+        pass
+    assert hashes.get(path) == "recomputed"

@@ -80,13 +80,28 @@ def add_overwrite_option(parser, what):
                              "when they are there; files dihedra did not write are never replaced)")
 
 
+def workers_option(text):
+    """``--workers``: ``auto`` or a whole number of at least 1."""
+    if text == "auto":
+        return text
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"give 'auto' or a whole number of at least 1, not {text!r}")
+    return value
+
+
 def add_track_options(parser):
     """The options of the trajectory pass (shared by 'track' and 'demo')."""
     parser.add_argument("--start", type=int, default=None, metavar="N", help="first frame (0-based)")
     parser.add_argument("--stop", type=int, default=None, metavar="N", help="stop before this frame")
     parser.add_argument("--step", type=int, default=None, metavar="N", help="use every N-th frame")
-    parser.add_argument("--workers", type=int, default=1, metavar="N",
-                        help="worker processes (default 1); results equal a serial run")
+    parser.add_argument("--workers", type=workers_option, default="auto", metavar="N",
+                        help="worker processes per replica: 'auto' (default) uses as many as pay on "
+                             "this machine for the size of the run, N at most N (exactly N with "
+                             "--backend); the choice is printed. Results equal a serial run")
     parser.add_argument("--threads", type=int, default=None, choices=[1, 2], metavar="{1,2}",
                         help="threads of a run without --workers: 2 reads the trajectory in one thread while "
                              "the other computes (the default where two cores are free), 1 does both in "

@@ -7,7 +7,7 @@ from ..errors import DihedraError, OutputExistsError
 from ..io.outputs import read_marker
 from ..io.tables import read_optional_json
 from ..pipeline import RECORD_NAME, load_pipeline, run_pipeline
-from .common import say
+from .common import say, workers_option
 
 #: The analysis file of the demo (in example_trajectories/, shipped as dihedra.examples).
 DEMO_FILE = "demo.toml"
@@ -21,8 +21,9 @@ def register(sub):
                     "TraPPE-UA torsion potential, kinetics, figures and an HTML report.")
     p.add_argument("--out", default="dihedra-demo", metavar="DIR",
                    help="results folder (default ./dihedra-demo; a previous demo folder is replaced)")
-    p.add_argument("--workers", type=int, default=1, metavar="N",
-                   help="worker processes of the trajectory pass (default 1); results equal a serial run")
+    p.add_argument("--workers", type=workers_option, default="auto", metavar="N",
+                   help="worker processes of the trajectory pass ('auto', the default: as many as pay); "
+                        "results equal a serial run")
     p.set_defaults(func=run)
 
 

@@ -5,6 +5,11 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..trajectory.result import NARROWED, BlockSums, narrowed_type
+
+__all__ = ["NARROWED", "BlockSums", "load_blocks", "narrowed_type", "save_npz"]
+
+
 def save_npz(path, arrays, level=1, narrow=()):
     """``np.savez_compressed`` with a chosen zlib level (1: about 4 times faster than numpy's
     default on large histograms, files about 1.5 times larger); read it with ``np.load``.
@@ -12,15 +17,24 @@ def save_npz(path, arrays, level=1, narrow=()):
     Integer arrays named in ``narrow`` whose values are all non-negative are stored in the
     smallest unsigned type that holds their maximum (uint8 or uint16; converted in pieces of
     16 MB): a histogram of a few thousand frames then compresses two to four times faster and
-    the file is smaller. :func:`load_results` widens them back (see :data:`NARROWED`).
+    the file is smaller. :func:`load_results` widens them back (see :data:`NARROWED`). A
+    :class:`~dihedra.trajectory.result.BlockSums` is written as it is kept (narrow arrays are not
+    widened first).
     """
     import zipfile
+
+    arrays = getattr(arrays, "stored", arrays)
 
     with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_DEFLATED, compresslevel=level,
                          allowZip64=True) as zf:
         for name, value in arrays.items():
-            value = np.asanyarray(value)
+            if hasattr(value, "materialize") and not hasattr(value, "block"):   # in a file (NpzMember)
+                value = value.materialize()
+            value = value if hasattr(value, "block") else np.asanyarray(value)
             with zf.open(f"{name}.npy", "w", force_zip64=True) as fh:
+                if hasattr(value, "block"):   # kept in parts (BlockParts): written block by block
+                    _write_blocks(fh, value)
+                    continue
                 small = _narrow_dtype(value) if name in narrow else None
                 if small is None:
                     np.lib.format.write_array(fh, value, allow_pickle=False)
@@ -34,18 +48,13 @@ def save_npz(path, arrays, level=1, narrow=()):
                     fh.write(flat[lo:lo + step].astype(small).tobytes())
 
 
-#: arrays of ``blocks.npz`` that may be stored narrow, and the type they are read back as (the
-#: conformer counts by prefix: ``conformer_counts_w3`` for groups of three torsions, ...)
-NARROWED = {"histograms": np.int32, "state_counts": np.int64, "conformer_counts_w": np.int32}
-
-
-def narrowed_type(name):
-    """The type an array of ``blocks.npz`` is read back as when it was stored narrow, or ``None``
-    for an array that is always stored as it is (see :data:`NARROWED`)."""
-    if name in NARROWED:
-        return NARROWED[name]
-    prefix = "conformer_counts_w"
-    return NARROWED[prefix] if name.startswith(prefix) and name[len(prefix):].isdigit() else None
+def _write_blocks(fh, parts):
+    """An array kept in parts (:class:`~dihedra.trajectory.result.BlockParts`, already in the
+    narrowest type of its counts) written as one ``.npy``, one block in memory at a time."""
+    np.lib.format.write_array_header_1_0(
+        fh, {"descr": np.lib.format.dtype_to_descr(parts.dtype), "fortran_order": False, "shape": parts.shape})
+    for b in range(len(parts)):
+        fh.write(parts.block(b).tobytes())
 
 
 def _narrow_dtype(value):
@@ -62,11 +71,7 @@ def _narrow_dtype(value):
 
 
 def load_blocks(path):
-    """The arrays of a ``blocks.npz``, those stored narrow widened back to their type."""
+    """The arrays of a ``blocks.npz`` as :class:`~dihedra.trajectory.result.BlockSums`: those
+    stored narrow are widened back to their type when read."""
     with np.load(path) as npz:
-        blocks = {k: npz[k] for k in npz.files}
-    for name in list(blocks):
-        dtype = narrowed_type(name)
-        if dtype is not None and blocks[name].dtype.kind == "u" and blocks[name].dtype.itemsize < np.dtype(dtype).itemsize:
-            blocks[name] = blocks[name].astype(dtype)
-    return blocks
+        return BlockSums({k: npz[k] for k in npz.files})

@@ -31,6 +31,35 @@ SERIES_OPTIONS = dict(use_dictionary=False, compression="snappy")
 COLUMN_CHUNKS_PER_FILE = 40_000
 
 
+def _columns(pa, values, n):
+    """One Arrow array per row of ``values`` (n_torsions, n_frames; booleans may come as packed
+    bits, ``np.packbits(..., axis=1, bitorder="little")``: uint8), without copying when the rows
+    are contiguous (a view of the pass's chunk buffer): 15,000 copied arrays cost about 50 MB
+    and 0.03 s more. The arrays keep ``values`` alive; its memory must not change until the
+    table is written (see :meth:`TimeSeriesWriter.add`)."""
+    values = np.asarray(values)
+    if values.dtype == np.bool_:   # Arrow stores booleans as bits
+        values = np.packbits(values, axis=1, bitorder="little")
+    n_rows = len(values)
+    if values.dtype == np.uint8 and n_rows and n:   # packed bits
+        if values.strides[1] != 1:
+            values = np.ascontiguousarray(values)
+        stride = values.strides[0]
+        buf = pa.foreign_buffer(values.ctypes.data, (n_rows - 1) * stride + (n + 7) // 8, base=values)
+        return [pa.Array.from_buffers(pa.bool_(), n, [None, buf], offset=r * stride * 8) for r in range(n_rows)]
+    if values.dtype == np.uint8:   # packed bits of no frames (or no torsions): empty boolean columns
+        values = np.zeros((n_rows, n), dtype=np.bool_)
+    n = values.shape[1]
+    item = values.dtype.itemsize
+    if n_rows == 0 or n == 0 or values.strides[1] != item or values.strides[0] % item:
+        return [pa.array(np.ascontiguousarray(row)) for row in values]
+    stride = values.strides[0] // item
+    span = ((n_rows - 1) * stride + n) * item
+    buf = pa.foreign_buffer(values.ctypes.data, span, base=values)
+    kind = pa.from_numpy_dtype(values.dtype)
+    return [pa.Array.from_buffers(kind, n, [None, buf], offset=r * stride) for r in range(n_rows)]
+
+
 class TimeSeriesWriter:
     """``states.parquet`` (and ``angles.parquet``) written chunk by chunk, in replica and frame
     order, regrouped into row groups of ``row_group_frames`` frames that never span two replicas.
@@ -57,7 +86,11 @@ class TimeSeriesWriter:
         Some of ``"states"``, ``"cores"`` and ``"angles"``.
 
     :meth:`add` takes the index columns of a chunk and, per kind, its values as an array of shape
-    (n_torsions, n_frames) (int8 state codes, float32 degrees). Call :meth:`close` at the end
+    (n_torsions, n_frames) (int8 state codes, float32 degrees, booleans or their bits packed
+    along the frames as uint8, ``np.packbits(..., axis=1, bitorder="little")``), without a copy: frames that do
+    not fill a row group wait in the writer as views of ``values`` until the next :meth:`add` or
+    :meth:`close`, so the caller must not write into them before (the trajectory pass hands
+    over full row groups, and a last, partial one that nothing writes into after). Call :meth:`close` at the end
     (also after an error: the files are then incomplete, and the caller removes them).
     """
 
@@ -89,6 +122,8 @@ class TimeSeriesWriter:
         self._n_pending = 0
         self._replica = None
         self._used = False
+        self._pool = None
+        self._closing = False
 
     def add(self, replica, index, values):
         """Append one chunk: ``index`` has ``frame``, ``time_ps`` (and ``weight``); ``values`` maps
@@ -103,15 +138,14 @@ class TimeSeriesWriter:
         if self.weighted:
             head.append(pa.array(np.asarray(index["weight"])))
         for kind, pending in self._pending.items():
-            table = pa.Table.from_arrays(head + [pa.array(row) for row in values[kind]],
-                                         schema=self._schemas[kind])
+            table = pa.Table.from_arrays(head + _columns(pa, values[kind], n), schema=self._schemas[kind])
             pending.append(table)
         self._n_pending += n
         while self._n_pending >= self.target:
+            wholes = {kind: pa.concat_tables(pending) for kind, pending in self._pending.items()}
+            self._each_kind(lambda kind: self._write_group(kind, wholes[kind].slice(0, self.target)))
             rest = 0
-            for kind, pending in self._pending.items():
-                whole = pa.concat_tables(pending)
-                self._write_group(kind, whole.slice(0, self.target))
+            for kind, whole in wholes.items():
                 tail = whole.slice(self.target)
                 rest = len(tail)
                 self._pending[kind] = [tail] if rest else []
@@ -119,12 +153,32 @@ class TimeSeriesWriter:
             self._next_group()
 
     def _write_pending(self):
-        for kind, pending in self._pending.items():
-            if pending:
-                self._write_group(kind, self._pa.concat_tables(pending))
-            self._pending[kind] = []
+        tables = {kind: self._pa.concat_tables(pending) for kind, pending in self._pending.items() if pending}
+        self._each_kind(lambda kind: self._write_group(kind, tables[kind]), list(tables))
+        self._pending = {kind: [] for kind in self._pending}
         self._n_pending = 0
         self._next_group()
+
+    def _each_kind(self, work, kinds=None):
+        """``work(kind)`` for every kind; in :meth:`close`, the kinds at the same time (Arrow
+        encodes and writes without Python's lock: the last row groups of states and cores, for
+        which the run waits, of 15,000 columns each in about half the time on two cores; during
+        the pass one after the other, in the pass's writing thread: each writer of 15,000
+        columns needs about 60 MB while it writes)."""
+        kinds = list(self._pending) if kinds is None else kinds
+        if len(kinds) < 2 or not self._closing:
+            for kind in kinds:
+                work(kind)
+            return
+        if self._pool is None:
+            from concurrent.futures import ThreadPoolExecutor
+            self._pool = ThreadPoolExecutor(2, thread_name_prefix="dihedra-parquet")
+        others = [self._pool.submit(work, kind) for kind in kinds[1:]]
+        try:
+            work(kinds[0])
+        finally:
+            for f in others:
+                f.result()
 
     def _write_group(self, kind, table):
         writer = self._writers.get(kind)
@@ -144,13 +198,13 @@ class TimeSeriesWriter:
             self._close_files()
 
     def _close_files(self):
-        for writer in self._writers.values():
-            writer.close()
-        self._writers = {}
+        writers, self._writers = self._writers, {}
+        self._each_kind(lambda kind: writers[kind].close(), list(writers))
         self._groups_in_file = 0
 
     def close(self):
         """Write what is pending and close the files (Arrow's pool then returns its free memory)."""
+        self._closing = True
         try:
             if self._n_pending:
                 self._write_pending()
@@ -162,6 +216,9 @@ class TimeSeriesWriter:
                 self._close_files()
             finally:
                 self._pending = None
+                if self._pool is not None:
+                    self._pool.shutdown()
+                    self._pool = None
                 self._pa.default_memory_pool().release_unused()
 
 
@@ -211,9 +268,24 @@ class ParquetSeries:
 
     def __init__(self, folder):
         self.folder = os.fspath(folder)
+        self._opened = {}   # the last files read: their footers, parsed once
+
+    def __getstate__(self):
+        return {"folder": self.folder, "_opened": {}}
 
     def path(self, kind):
         return os.path.join(self.folder, f"{kind}.parquet")
+
+    def _file(self, name):
+        """``pq.ParquetFile`` of ``name``, kept for the next read of other columns (the footer of
+        15,000 columns takes about 0.1-0.5 s to parse; a few files are kept)."""
+        key = (name, os.path.getmtime(name), os.path.getsize(name))
+        pf = self._opened.get(key)
+        if pf is None:
+            while len(self._opened) >= 2:
+                self._opened.pop(next(iter(self._opened)))
+            pf = self._opened[key] = pq.ParquetFile(name)
+        return pf
 
     def has(self, kind):
         return os.path.exists(self.path(kind))
@@ -231,10 +303,17 @@ class ParquetSeries:
         """Yield :class:`~dihedra.trajectory.result.SeriesChunk` pieces of the ``kind`` series in
         frame order, at most ``batch_frames`` frames each (default about READ_VALUES values)."""
         path = self.path(kind)
-        schema = series_schema(path)
+        files = series_files(path)
+        if not files:
+            series_schema(path)   # (its error: no Parquet file)
+        try:
+            schema = self._file(files[0]).schema_arrow
+        except (OSError, ValueError) as exc:   # (Arrow's errors of a damaged file are ValueErrors)
+            raise damaged_series(path, exc) from None
         labels = list(columns) if columns is not None else [n for n in schema.names
                                                             if n not in INDEX_COLUMNS and n != "weight"]
-        missing = [c for c in labels if c not in schema.names]
+        present = set(schema.names)   # (schema.names builds a new list at every use)
+        missing = [c for c in labels if c not in present]
         if missing:
             raise InputFileError(f"{path} has no column {missing[0]!r}.")
         weighted = "weight" in schema.names
@@ -242,13 +321,19 @@ class ParquetSeries:
         batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // max(1, len(labels)))
         seen = {}
         try:
-            for name in series_files(path):
-                for rb in pq.ParquetFile(name).iter_batches(batch_size=batch, columns=read):
+            for name in files:
+                # a reader of its own (two iterations of one file at a time must not share one:
+                # Arrow's read cache mixes them up), on the footer parsed once
+                reader = pq.ParquetFile(name, metadata=self._file(name).metadata)
+                for rb in reader.iter_batches(batch_size=batch, columns=read):
                     rep = rb.column("replica").to_numpy()
                     frame = rb.column("frame").to_numpy()
                     time = rb.column("time_ps").to_numpy()
                     weight = rb.column("weight").to_numpy() if weighted else None
-                    cols = [rb.column(c) for c in labels]
+                    # (by position: looking 15,000 names up one by one scans the schema each time,
+                    # 15 s for one batch)
+                    where = {n: k for k, n in enumerate(rb.schema.names)}
+                    cols = [rb.column(where[c]) for c in labels]
                     for r, lo, hi, first in split_by_replica(rep, seen):
                         m = hi - lo
                         dtype = cols[0].type.to_pandas_dtype() if cols else np.int8

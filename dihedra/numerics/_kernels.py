@@ -220,19 +220,26 @@ def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, classes, bounda
 
 
 @njit(**_OPTS)
-def add_histograms(bins, hist_block, weights, hist):
-    """Add buffered frames to the histograms: ``hist[hist_block[f], t, bins[f, t] - 1]`` gets
-    ``weights[f]`` for every frame f and torsion t with ``bins[f, t] > 0``.
+def add_histograms(bins, weights, hist, top):
+    """Add buffered frames of one block to its histograms: ``hist[t, bins[f, t] - 1]`` gets
+    ``weights[f]`` for every frame f and torsion t with ``bins[f, t] > 0``; ``top[0]`` is raised
+    to the largest cell written (the caller widens ``hist`` before a cell could pass its type's
+    maximum, see :mod:`dihedra.numerics.counts`).
 
     Torsion by torsion: the histogram row of a torsion stays in the cache for all the buffered
     frames (frame by frame, each torsion would touch a new cache line in every frame).
     """
     n_f, n_t = bins.shape
+    most = top[0]
     for t in range(n_t):
         for f in range(n_f):
             k = bins[f, t]
             if k > 0:
-                hist[hist_block[f], t, k - 1] += weights[f]
+                v = hist[t, k - 1] + weights[f]
+                hist[t, k - 1] = v
+                if v > most:
+                    most = v
+    top[0] = most
 
 
 @njit(**_OPTS)
@@ -280,6 +287,66 @@ def frames(positions, idx3, bonds, lengths, inverse, cells, reach2, triclinic, d
         bin_and_code(deg[f], width, shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries,
                      start_closed, arc_states, mixed, bins[f], codes[f], counts[state_block[f]], weights[f],
                      undefined)
+
+
+@njit(**_OPTS)
+def type_state_counts(codes, run_start, run_type, n_states, out):
+    """``out[f, k * n_states + s] +=`` the torsions of type ``k`` in state ``s`` in frame ``f``
+    (``codes`` (frames, torsions), -1 undefined). The torsions come in runs of one type
+    (``run_start``, one more entry than ``run_type``); a long run is counted state by state with
+    comparisons that LLVM turns into SIMD code, a short one torsion by torsion."""
+    for f in range(codes.shape[0]):
+        row = codes[f]
+        for r in range(run_type.shape[0]):
+            a, b = run_start[r], run_start[r + 1]
+            base = run_type[r] * n_states
+            if b - a >= 64:
+                seg = row[a:b]   # (a slice of its own: the loop below is then SIMD code, 15x faster)
+                for s in range(n_states):
+                    c = np.int32(0)
+                    code = np.int8(s)
+                    for t in range(seg.shape[0]):
+                        c += np.int32(seg[t] == code)
+                    out[f, base + s] += c
+            else:
+                for t in range(a, b):
+                    c = row[t]
+                    if 0 <= c < n_states:
+                        out[f, base + c] += 1
+
+
+@njit(**_OPTS)
+def core_bits(bins, deg, offset, lo, hi, exact, out):
+    """``out[f, t] = lo[k] <= deg[f, t] <= hi[k]`` with ``k = bins[f, t] + offset[t]`` (the fine
+    bin in the table of the torsion's scheme part); returns how many entries fall in bins that
+    need the exact rule (``exact[k]``), which the caller then decides."""
+    n_exact = 0
+    for f in range(bins.shape[0]):
+        b, d, o = bins[f], deg[f], out[f]
+        for t in range(b.shape[0]):
+            k = np.int64(b[t]) + offset[t]
+            a = d[t]
+            o[t] = (a >= lo[k]) & (a <= hi[k])
+            n_exact += exact[k]
+    return n_exact
+
+
+@njit(**_OPTS)
+def pack_bits_into(src, dst, r0):
+    """Bit ``r0 + f`` (little bit order: bit ``i`` is bit ``i % 8`` of byte ``i // 8``) of row ``t``
+    of ``dst`` (uint8) set to ``src[f, t]`` (0 or 1), for the frames ``f`` of ``src`` (frames,
+    torsions): the transpose of :func:`transpose_into`, packed as Arrow stores booleans. Bits
+    after them in a byte are cleared; bits before ``r0`` are kept (frames come in order)."""
+    m, n = src.shape
+    tile = 64
+    for t0 in range(0, n, tile):
+        t1 = min(n, t0 + tile)
+        for f in range(m):
+            pos = r0 + f
+            byte, bit = pos >> 3, pos & 7
+            for t in range(t0, t1):
+                keep = dst[t, byte] & ((1 << bit) - 1)
+                dst[t, byte] = keep | ((src[f, t] & 1) << bit)
 
 
 @njit(**_OPTS)

@@ -235,7 +235,8 @@ def replica_chi_square(values, errors):
         n_replicas - 1.
     p_value : float
         Probability of a chi2 at least this large when the replicas sample one distribution
-        (``scipy.stats.chi2.sf``); 1.0 with fewer than two replicas.
+        (``scipy.special.chdtrc``, the ``sf`` of ``scipy.stats.chi2``); 1.0 with fewer than two
+        replicas.
 
     Examples
     --------
@@ -243,19 +244,21 @@ def replica_chi_square(values, errors):
     >>> round(chi2, 2), dof, round(p, 3)
     (2.0, 1, 0.157)
     """
-    from scipy.stats import chi2 as chi2_dist
-
     v = np.asarray(values, dtype=float)
     e = np.asarray(errors, dtype=float)
     if v.size < 2:
         return 0.0, 0, 1.0
+    # chi2.sf of scipy.stats is scipy.special's chdtrc (the same numbers); scipy.special comes with
+    # MDAnalysis, scipy.stats would add 0.2-0.6 s to every run
+    from scipy.special import chdtrc
+
     dof = int(v.size - 1)
     if np.all(v == v[0]):
         return 0.0, dof, 1.0
     w = 1.0 / np.maximum(e, 1e-12) ** 2
     mean = float(np.sum(w * v) / np.sum(w))
     stat = float(np.sum(w * (v - mean) ** 2))
-    return stat, dof, float(chi2_dist.sf(stat, dof))
+    return stat, dof, float(chdtrc(dof, stat))
 
 
 def time_needed(se, target, time_so_far):

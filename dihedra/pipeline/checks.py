@@ -25,6 +25,16 @@ def _whole(minimum):
     return check
 
 
+def _workers(name, value):
+    """``workers``: ``"auto"`` (as many as pay) or a whole number of at least 1."""
+    if value != "auto":
+        from ..trajectory.states import whole_number
+        try:
+            whole_number(name, value, minimum=1)
+        except DihedraError:
+            raise DihedraError(f"{name} must be 'auto' or a whole number of at least 1; got {value!r}.") from None
+
+
 def _temperature(name, value):
     from ..units import check_temperature
     if value is not None:
@@ -88,7 +98,7 @@ def _energy_unit(name, value):
 #: Checks by key, for every table that has the key.
 BY_KEY = {
     "temperature_k": _temperature, "profile_temperature_k": _temperature, "dt_ps": _positive,
-    "step": _whole(1), "start": _frame_bound, "stop": _frame_bound, "workers": _whole(1),
+    "step": _whole(1), "start": _frame_bound, "stop": _frame_bound, "workers": _workers,
     "chunk_frames": _whole(1), "n_state_blocks": _whole(1), "n_hist_blocks": _whole(1),
     "bin_width_deg": _bin_width, "pair_bin_width_deg": _bin_width, "bandwidth_deg": _positive,
     "max_mbar_samples": _whole(1), "scheme": _scheme, "lags": _lags, "lags_ps": _lags_ps, "relation": _relation,

@@ -172,8 +172,12 @@ def rotatable_torsions(universe):
     masses = _masses(universe)
     positions = _positions(universe)
     box = universe.dimensions if positions is not None else None
-    heavy_degree = np.array([int(heavy[nbrs].sum()) if nbrs else 0 for nbrs in adjacency]) if len(roots) \
-        else np.zeros(len(adjacency), dtype=int)
+    heavy_degree = np.zeros(len(adjacency), dtype=int)
+    if len(roots):   # heavy neighbours of every atom, counted at once
+        flat = np.fromiter((j for nbrs in adjacency for j in nbrs), dtype=np.int64, count=int(degree.sum()))
+        owner = np.repeat(np.arange(len(adjacency)), degree)
+        heavy_degree = np.bincount(owner, weights=np.asarray(heavy, dtype=float)[flat],
+                                   minlength=len(adjacency)).astype(int)
 
     def outer(end, other):
         candidates = [j for j in adjacency[end] if j != other]

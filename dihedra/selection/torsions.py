@@ -98,27 +98,21 @@ class TorsionSet:
 
     def to_frame(self, universe=None):
         """The torsion table as a tidy DataFrame (the layout of ``torsions.csv``)."""
-        rows = []
-        for t in self.torsions:
-            row = {
-                "torsion": t.label,
-                "type": t.type,
-                "atom_indices": " ".join(str(i) for i in t.indices),
-                "resname": t.resname,
-                "resid": t.resid,
-                "segid": t.segid,
-                "name": t.name,
-                "group": t.group,
-                "order": t.order,
-                "variant": t.variant,
-            }
-            if universe is not None:
-                row["atom_names"] = " ".join(universe.atoms[list(t.indices)].names)
-            rows.append(row)
+        ts = self.torsions
+        data = {
+            "torsion": [t.label for t in ts],
+            "type": [t.type for t in ts],
+            "atom_indices": [" ".join(str(i) for i in t.indices) for t in ts],
+        }
+        if universe is not None:   # (names looked up at once: an atom group per torsion is slow)
+            names = np.asarray(universe.atoms.names, dtype=object)
+            data["atom_names"] = [" ".join(names[list(t.indices)].tolist()) for t in ts]
+        data.update({"resname": [t.resname for t in ts], "variant": [t.variant for t in ts],
+                     "resid": [t.resid for t in ts], "segid": [t.segid for t in ts], "name": [t.name for t in ts],
+                     "group": [t.group for t in ts], "order": [t.order for t in ts]})
         columns = ["torsion", "type", "atom_indices", "atom_names", "resname", "variant", "resid", "segid",
                    "name", "group", "order"]
-        frame = pd.DataFrame(rows, columns=[c for c in columns if universe is not None or c != "atom_names"])
-        return frame
+        return pd.DataFrame(data, columns=[c for c in columns if universe is not None or c != "atom_names"])
 
     @classmethod
     def from_frame(cls, frame):

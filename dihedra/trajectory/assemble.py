@@ -17,8 +17,8 @@ from ..errors import DihedraError
 from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations, heterogeneity_notice,
                                     pool_by_type, replica_populations, torsion_populations)
 from .conformer_counts import conformer_layout, dense_conformers, reduce_conformer_rows
-from .inputs import sha256
-from .result import TrackResult
+from .inputs import cached_sha256
+from .result import BlockParts, BlockSums, TrackResult
 
 #: How the summary says that a trajectory stores no time step.
 NO_TIME_STEP = "none (the trajectory stores no time step; MDAnalysis assumed 1 ps per frame)"
@@ -26,22 +26,22 @@ NO_TIME_STEP = "none (the trajectory stores no time step; MDAnalysis assumed 1 p
 
 def block_sums(passes):
     """The block sums of all replicas (the arrays of ``blocks.npz``)."""
-    state_counts = np.concatenate([p.results.state_counts for p in passes])
+    state_counts = _stack([p.results.state_counts for p in passes])
     block_replica = np.concatenate([np.full(p.n_state_blocks, r) for r, p in enumerate(passes)])
     histograms = stack_histograms(passes)
     hist_block_replica = np.concatenate([np.full(p.n_hist_blocks, r) for r, p in enumerate(passes)])
-    blocks = {
+    blocks = BlockSums({
         "state_counts": state_counts,
         "block_replica": block_replica,
-        "block_frames": np.concatenate([p.results.block_frames for p in passes]),
-        "block_weights": np.concatenate([p.results.block_weights for p in passes]),
+        "block_frames": _stack([p.results.block_frames for p in passes]),
+        "block_weights": _stack([p.results.block_weights for p in passes]),
         "histograms": histograms,
         "hist_block_replica": hist_block_replica,
-        "hist_block_frames": np.concatenate([p.results.hist_block_frames for p in passes]),
-        "hist_block_weights": np.concatenate([p.results.hist_block_weights for p in passes]),
+        "hist_block_frames": _stack([p.results.hist_block_frames for p in passes]),
+        "hist_block_weights": _stack([p.results.hist_block_weights for p in passes]),
         "bin_edges_deg": np.linspace(-180.0, 180.0, histograms.shape[2] + 1),
         "undefined": np.sum([p.results.undefined for p in passes], axis=0),
-    }
+    })
     # conformer rows: shift each replica's blocks to the global block numbering (one replica:
     # its rows as they are, sorted and unique already)
     offset, rows, wts = 0, [], []
@@ -72,11 +72,20 @@ def _stack(arrays):
 
 def stack_histograms(passes):
     """The histogram blocks of all replicas in one array: one replica's array as it is, several
-    copied one by one into a single allocation (each pass releases its own as it goes)."""
+    copied one by one into a single allocation (each pass releases its own as it goes); blocks
+    kept in files stay there (one :class:`~dihedra.trajectory.result.BlockParts`)."""
     if len(passes) == 1:
         return passes[0].results.histograms
+    hists = [p.results.histograms for p in passes]
+    if any(isinstance(h, BlockParts) for h in hists):   # blocks in files: the list of parts
+        parts, k = [], 0
+        for h in hists:
+            parts += h.shifted(k) if isinstance(h, BlockParts) else [(k + b, h[b]) for b in range(len(h))]
+            k += len(h)
+        return BlockParts(parts, (k,) + tuple(hists[0].shape[1:]), np.result_type(*(h.dtype for h in hists)))
     first = passes[0].results.histograms
-    out = np.empty((sum(len(p.results.histograms) for p in passes),) + first.shape[1:], dtype=first.dtype)
+    dtype = np.result_type(*(p.results.histograms for p in passes))   # (each narrow as its frames allow)
+    out = np.empty((sum(len(p.results.histograms) for p in passes),) + first.shape[1:], dtype=dtype)
     k = 0
     for p in passes:
         h = p.results.histograms
@@ -284,19 +293,65 @@ def time_step_problem(dt, times, rtol=1e-3):
     return None
 
 
+def usable_cores():
+    """The cores this process may run on (``os.sched_getaffinity``; the CPU count elsewhere)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:   # not on Linux
+        return os.cpu_count() or 1
+
+
 def pass_threads(threads, backend):
-    """Threads of each pass: as asked (1 or 2), else 2 for a serial run with two usable cores."""
-    if backend != "serial":
-        return 1
+    """Threads of each pass: as asked (1 or 2), else 2 for a serial run with two usable cores
+    and 1 for each worker of a parallel run."""
     if threads is None:
-        try:
-            cores = len(os.sched_getaffinity(0))
-        except AttributeError:   # not on Linux
-            cores = os.cpu_count() or 1
-        return 2 if cores >= 2 else 1
+        return 2 if backend == "serial" and usable_cores() >= 2 else 1
     if threads not in (1, 2) or isinstance(threads, bool):
         raise DihedraError(f"threads must be 1 or 2; got {threads!r}.")
     return int(threads)
+
+
+#: Torsion-frames (torsions x frames of a replica) from which one more worker process pays for
+#: its start-up, when the cores for it are free (see docs/performance.md, where it is measured).
+TORSION_FRAMES_PER_WORKER = 300_000_000
+
+
+def plan_workers(asked, n_frames, n_torsions, cores=None):
+    """How many worker processes a replica of ``n_frames`` frames and ``n_torsions`` torsions is
+    split over, and the threads of each: ``(workers, threads, reason)``.
+
+    A serial run already uses two cores (one thread reads, one computes), so a worker process
+    pays only with two more cores for it, and only when it has enough frames to earn back its
+    start-up (a process, the Universe, the compiled kernels, its blocks):
+    :data:`TORSION_FRAMES_PER_WORKER` torsion-frames each. ``asked`` is ``"auto"`` (or
+    ``None``) or the largest number of workers the user allows.
+
+    Examples
+    --------
+    >>> plan_workers("auto", 1500, 15_000, cores=2)[:2]
+    (1, 2)
+    >>> plan_workers(4, 100_000, 15_000, cores=8)[:2]
+    (4, 2)
+    """
+    cores = usable_cores() if cores is None else int(cores)
+    by_cores = max(1, cores // 2)
+    by_size = max(1, int(n_frames) * int(n_torsions) // TORSION_FRAMES_PER_WORKER)
+    limit = min(by_cores, by_size, max(1, int(n_frames)))
+    auto = asked in (None, "auto")
+    n = limit if auto else min(int(asked), limit)
+    threads = 2 if cores >= 2 * n and cores >= 2 else 1
+    if n == 1:
+        why = f"one process with {threads} thread(s)"
+        if not auto and int(asked) == 1:
+            why += " (as asked)"
+        elif by_cores == 1:
+            why += f": a serial run already uses {min(cores, 2)} of the {cores} usable core(s)"
+        else:
+            why += (f": {int(n_frames) * int(n_torsions):.3g} torsion-frames are fewer than the "
+                    f"{2 * TORSION_FRAMES_PER_WORKER:.3g} from which a second worker pays")
+    else:
+        why = f"{n} worker processes with {threads} thread(s) each ({cores} usable cores)"
+    return n, threads, why
 
 
 def package_versions():
@@ -310,17 +365,23 @@ def package_versions():
     return out
 
 
-def make_summary(topology, replicas, scheme, tset, params, notices, seconds):
+def make_summary(topology, replicas, scheme, tset, params, notices, seconds, hashes=None):
     """The summary of a run (``summary.json``): ``replicas`` from :func:`replica_info`, each given
-    the SHA-256 of its trajectory here."""
+    the SHA-256 of its trajectory here (from ``hashes``, a :class:`~dihedra.trajectory.inputs.FileHashes`
+    started earlier, when given)."""
+    def digest(path):
+        if hashes is not None and path and os.path.isfile(path):
+            return hashes.get(path)
+        return _sha256_of(path)
+
     for info in replicas:
         if not info.get("sha256"):
-            info["sha256"] = _sha256_of(info["trajectory"])
+            info["sha256"] = digest(info["trajectory"])
     return {
         "dihedra_version": __version__,
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         "command": " ".join(sys.argv) if sys.argv and sys.argv[0].endswith("dihedra") else None,
-        "topology": {"path": os.path.abspath(topology) if topology else None, "sha256": _sha256_of(topology)},
+        "topology": {"path": os.path.abspath(topology) if topology else None, "sha256": digest(topology)},
         "replicas": replicas,
         "n_torsions": len(tset),
         "n_frames_analysed": int(sum(r["frames_analysed"] for r in replicas)),
@@ -336,4 +397,4 @@ def make_summary(topology, replicas, scheme, tset, params, notices, seconds):
 
 def _sha256_of(path):
     """SHA-256 of a file, or ``None`` for a Universe that was not read from a file."""
-    return sha256(path) if path and os.path.isfile(path) else None
+    return cached_sha256(path) if path and os.path.isfile(path) else None

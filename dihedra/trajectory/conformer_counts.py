@@ -3,8 +3,9 @@
 A conformer group (the torsions of one molecule or residue, in chain order) of ``w`` torsions with
 ``n_s`` states each has ``n_s ** w`` joint states; member ``j`` weighs ``n_s ** j`` in the joint
 code. Groups of equal size form a class and are counted together. A class whose cells
-(blocks x groups x joint states) fit in :data:`DENSE_CONFORMER_CELLS` is counted densely (int32
-per block, group and joint state, a compiled loop); larger classes are counted as sorted rows
+(blocks x groups x joint states) fit in :data:`DENSE_CONFORMER_CELLS` is counted densely (per
+block, group and joint state, a compiled loop; uint8 counts, widened as the blocks fill: see
+:mod:`dihedra.numerics.counts`); larger classes are counted as sorted rows
 (block, group, joint code, frames) of the block being filled. Frames in which a member is undefined
 are left out for that group.
 """
@@ -14,6 +15,8 @@ from __future__ import annotations
 import os
 
 import numpy as np
+
+from ..numerics.counts import fit_counts
 
 #: Groups with more torsions than this get no conformer statistics (their joint states explode).
 MAX_CONFORMER_TORSIONS = 12
@@ -26,7 +29,8 @@ _WORK_BYTES = 8 << 20
 
 
 def conformer_layout(torsion_set, n_states, max_torsions=MAX_CONFORMER_TORSIONS):
-    """Groups for conformer counting.
+    """Groups for conformer counting (worked out once per torsion set: a pass and its tables ask
+    three times, and 15,000 torsions take a tenth of a second each).
 
     Returns
     -------
@@ -37,6 +41,15 @@ def conformer_layout(torsion_set, n_states, max_torsions=MAX_CONFORMER_TORSIONS)
     skipped : list of str
         Groups left out because they have too many torsions.
     """
+    memo = torsion_set.__dict__.setdefault("_conformer_layouts", {})
+    key = (int(n_states), int(max_torsions), len(torsion_set.torsions))
+    if key not in memo:
+        memo[key] = _layout(torsion_set, n_states, max_torsions)
+    groups, members, skipped = memo[key]
+    return list(groups), list(members), list(skipped)
+
+
+def _layout(torsion_set, n_states, max_torsions):
     by_group = {}
     for pos, t in enumerate(torsion_set.torsions):
         by_group.setdefault(t.group, []).append((t.order, pos))
@@ -112,14 +125,6 @@ def reduce_conformer_rows(rows, weights):
     return np.column_stack([rows[starts, :3], counts]), wsum
 
 
-def touched_zeros(shape, dtype):
-    """``np.zeros`` with every page written now: the memory is resident from the start (a fixed
-    footprint, and the page faults belong to the start-up rather than to the frames)."""
-    out = np.empty(shape, dtype=dtype)
-    out.fill(0)
-    return out
-
-
 class ConformerCounter:
     """The conformer counts of one worker (or of a serial pass) over its state blocks.
 
@@ -146,9 +151,10 @@ class ConformerCounter:
         self.dense = {}
         for key, (gids, mem, powers, size) in self.classes.items():
             if n_state_blocks * len(gids) * size <= DENSE_CONFORMER_CELLS:
-                counts = touched_zeros((n_blocks, len(gids), size), np.int32)
-                wts = touched_zeros(counts.shape, np.float64) if weighted else np.zeros((0, 0, 0))
+                counts = np.zeros((n_blocks, len(gids), size), np.uint8)
+                wts = np.zeros(counts.shape, np.float64) if weighted else np.zeros((0, 0, 0))
                 self.dense[key] = (counts, wts)
+        self._frames = np.zeros(n_blocks, dtype=np.int64)   # frames counted per block: the bound
         self._cur_block = -1
         self._cur = {}
         self._rows, self._wts = [], []
@@ -160,7 +166,11 @@ class ConformerCounter:
         """Count the joint states of ``codes`` (n_frames, n_torsions) int8, frames in state blocks
         ``sblock`` with ``weights``."""
         local = sblock - self.first_block
-        for key, (counts, wts) in self.dense.items():
+        self._frames += np.bincount(local, minlength=len(self._frames))
+        most = int(self._frames.max(initial=0))
+        for key, (counts, wts) in list(self.dense.items()):
+            counts = fit_counts(counts, most)
+            self.dense[key] = (counts, wts)
             _, members, powers, _ = self.classes[key]
             self._kernels.count_conformers(codes, local, members, powers, counts, weights, wts, self.weighted)
         sparse = [key for key in self.classes if key not in self.dense]
@@ -269,7 +279,7 @@ def merge_dense(parts, n_state_blocks, weighted):
             if lo == 0 and len(counts) == n_state_blocks:
                 out[width] = (counts, wts)
                 continue
-            full = np.zeros((n_state_blocks,) + counts.shape[1:], dtype=counts.dtype)
+            full = np.zeros((n_state_blocks,) + counts.shape[1:], dtype=np.int32)
             out[width] = (full, np.zeros(full.shape) if weighted else None)
         total, total_w = out[width]
         total[lo:lo + len(counts)] += counts
@@ -280,13 +290,15 @@ def merge_dense(parts, n_state_blocks, weighted):
 
 def dense_conformers(blocks, tset, n_states):
     """{width: (group ids, counts (n_blocks, n_groups, n_joint), weights)} of the conformer
-    classes that the pass counted densely (weights are the counts as floats when unweighted)."""
+    classes that the pass counted densely (weights are the counts as floats when unweighted;
+    counts in the type they were counted in, uint8 to int32)."""
     _, members, _ = conformer_layout(tset, n_states)
+    kept = getattr(blocks, "stored", blocks)   # (as counted: uint8 counts are not widened for this)
     out = {}
     for width, (gids, _, _, _) in conformer_classes(members, n_states).items():
-        counts = blocks.get(f"conformer_counts_w{width}")
+        counts = kept.get(f"conformer_counts_w{width}")
         if counts is not None:
-            out[width] = (gids, counts, blocks.get(f"conformer_weights_w{width}"))
+            out[width] = (gids, counts, kept.get(f"conformer_weights_w{width}"))
     return out
 
 

@@ -1,10 +1,10 @@
 """Is the sampling converged? Per torsion type: the start of the equilibrated part, whether the
 replicas agree, the simulated time still needed for a target error, and one verdict.
 
-:func:`convergence_tables` reads the state series of a run once into time blocks per type and
-state (:mod:`dihedra.trajectory.timeblocks`; for each type, the fraction of its torsions in each
-state, per block of frames) and applies the methods of :mod:`dihedra.numerics.convergence` to
-those series:
+:func:`convergence_tables` takes the time blocks per type and state that the trajectory pass
+counted, or reads the state series of a run once into them (:mod:`dihedra.trajectory.timeblocks`;
+for each type, the fraction of its torsions in each state, per block of frames), and applies the
+methods of :mod:`dihedra.numerics.convergence` to those series:
 
 * **start**: equilibration detection (Chodera, J. Chem. Theory Comput. 12 (2016) 1799) on each
   state's series of each replica; a type's start counts as unequilibrated when some state drifts
@@ -37,7 +37,7 @@ from ..numerics.convergence import (DRIFT_SHIFT_SE, DRIFT_Z, MIN_START_SAMPLES, 
                                     replica_chi_square, series_error, time_needed)
 from ..numerics.populations import MIN_EFFECTIVE_SAMPLES
 from ..units import R_KJ_PER_MOL_K
-from .timeblocks import time_blocks
+from .timeblocks import result_time_blocks
 
 #: Bonferroni-adjusted p-values of the replica test: agree from here up ...
 AGREE_P = 0.05
@@ -166,7 +166,7 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
     if not result.has_series("states"):
         raise DihedraError("the convergence checks need the state time series; this result has none (track with "
                            "keep_states=True, the default).")
-    tb = time_blocks(result, n_time_blocks)
+    tb = result_time_blocks(result, n_time_blocks)
     temperature_k = temperature_k if temperature_k is not None else result.summary.get("temperature_k")
     kt = None if temperature_k is None else R_KJ_PER_MOL_K * float(temperature_k)
     rows, state_rows, time_rows = [], [], []

@@ -17,6 +17,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..numerics.angles import compiled_kernels
+
 #: The core margin (degrees) whose core membership the pass records (the kinetics default).
 CORE_MARGIN_DEG = 20.0
 
@@ -98,19 +100,21 @@ class CoreBits:
                         else np.zeros(len(types), dtype=np.intp))
         bounds = [core_bin_bounds(p, n_bins, self.margin) for p in parts]
         self.lo, self.hi, self.exact = (np.concatenate([b[j] for b in bounds]) for j in range(3))
-        self._any_exact = bool(self.exact.any())
-        self._offset = (self.classes * (n_bins + 1)).astype(np.int32)
+        self._offset = (self.classes * (n_bins + 1)).astype(np.int64)
+        self._exact8 = self.exact.astype(np.int64)
 
-    def __call__(self, bins, deg, out):
+    def __call__(self, bins, deg, out, t0=0, t1=None):
         """``out[f, t]``: the angle ``deg[f, t]`` (fine bin ``bins[f, t]`` of the pass, 0 when
-        undefined) is in its state's core."""
-        index = bins.astype(np.int32)
-        index += self._offset
-        np.greater_equal(deg, self.lo.take(index), out=out)
-        out &= deg <= self.hi.take(index)
-        if self._any_exact:
+        undefined) is in its state's core; the columns are torsions ``t0 .. t1`` (all by default)."""
+        t1 = len(self.classes) if t1 is None else t1
+        # one compiled loop (the NumPy expression of it took 65 microseconds per frame of 15,000)
+        n_exact = compiled_kernels().core_bits(bins, deg, self._offset[t0:t1], self.lo, self.hi, self._exact8,
+                                               out.view(np.int8))
+        if n_exact:
+            index = bins.astype(np.int32)
+            index += self._offset[t0:t1]
             frames, torsions = np.nonzero(self.exact.take(index))
-            parts = self.classes[torsions]
+            parts = self.classes[t0:t1][torsions]
             for p in np.unique(parts):
                 sel = parts == p
                 a = deg[frames[sel], torsions[sel]]

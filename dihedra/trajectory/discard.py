@@ -25,6 +25,7 @@ import numpy as np
 
 from ..errors import DihedraError
 from .convergence import convergence_tables
+from .timeblocks import pass_time_blocks
 from .result import MemorySeries, TrackResult
 from .series_output import MemorySeriesFactory
 from .trackpass import TorsionPass
@@ -101,7 +102,7 @@ def detect_start(passes, tset, scheme, n_quick=QUICK_FRAMES):
         start drifts.
     """
     started = time.time()
-    chunks, frame_counts, read = [], [], []
+    chunks, frame_counts, read, done = [], [], [], []
     for r, (universe, frames, weights, dt_ps) in enumerate(passes):
         stride = max(1, int(math.ceil(len(frames) / int(n_quick))))
         sub = np.asarray(frames)[::stride]
@@ -113,12 +114,14 @@ def detect_start(passes, tset, scheme, n_quick=QUICK_FRAMES):
             warnings.filterwarnings("ignore", category=DeprecationWarning)
             tp.run(frames=sub)
         chunks.extend(tp.results.pop("series_parts", None) or [])
+        done.append(tp)
         frame_counts.append(len(sub))
         read.append({"frames_read": int(len(sub)), "every_nth_frame": stride})
     result = TrackResult(torsion_set=tset, torsions=None, scheme=scheme, populations=None,
                          populations_by_type=None, populations_by_replica=None, conformers=None,
                          conformers_by_type=None, summary={}, series=MemorySeries.from_parts(chunks),
                          blocks={"block_replica": np.arange(len(passes)), "block_frames": np.asarray(frame_counts)})
+    result.time_blocks = pass_time_blocks(done, tset.types, scheme.labels)
     conv = convergence_tables(result)
     info = {"method": f"quick pass over at most {n_quick} evenly spaced frames per replica, then equilibration "
                       "detection (Chodera 2016) per torsion type; the latest start that drifts",

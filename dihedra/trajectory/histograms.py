@@ -10,11 +10,11 @@ exact rule of :meth:`StateScheme.assign <dihedra.selection.schemes.StateScheme.a
 
 from __future__ import annotations
 
-import os
-
 import numpy as np
 
+from ..numerics.counts import counter_type, fit_counts, narrowest
 from ..selection.schemes import UNDEFINED
+from .result import BlockParts
 
 #: Marks a fine bin that a state boundary cuts (its angles are assigned one by one).
 MIXED = np.int8(-128)
@@ -83,48 +83,93 @@ def bin_state_tables(scheme, types, n_bins):
                    start_closed, arc_states)
 
 
-def hist_part(block, dense):
-    """One histogram block of a worker as ``[(block, cells, values)]`` (non-empty cells, int32
-    indices) when that is smaller than half the dense block, else ``[(block, dense view)]``."""
+class HistogramBlocks:
+    """The fine histograms of the blocks that one pass (or one worker) fills.
+
+    Frames come in order, so the blocks fill one after another: a block is allocated when its
+    first frame arrives (``np.zeros``: its pages are mapped as they are written), counted in
+    uint8 and widened when a cell could pass the type's maximum
+    (:mod:`dihedra.numerics.counts`), and *retired* when a frame of a later block arrives.
+    With ``spill`` (a file stem in the run's scratch folder), a retired block is saved there
+    (``.npy``, in the narrowest type of its largest count) and dropped from memory, so that the
+    pass holds one or two blocks whatever the number of blocks and frames; without it, retired
+    blocks stay in memory.
+
+    Parameters
+    ----------
+    first : int
+        Number of the first block of this pass in the run (a worker's slice starts later).
+    n_torsions, n_bins : int
+    weighted : bool
+        float64 sums of weights instead of counts.
+    spill : str, optional
+        Stem of the files of retired blocks.
+    """
+
+    def __init__(self, first, n_torsions, n_bins, weighted, spill=None):
+        self.first = int(first)
+        self.shape = (int(n_torsions), int(n_bins))
+        self.weighted = bool(weighted)
+        self.spill = spill
+        self._open = {}      # local block -> (array, top (1,))
+        self._retired = []   # (global block, array or file, largest count)
+
+    def add(self, bins, block, weights, kernels):
+        """Add buffered frames: ``bins`` (n_frames, n_torsions) fine bins (0: undefined),
+        ``block`` their local block numbers (ascending), ``weights`` per frame."""
+        cuts = np.flatnonzero(np.diff(block)) + 1
+        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(block)]):
+            b = int(block[lo])
+            self._retire(below=b)
+            hist, top = self._open.get(b) or (None, None)
+            if hist is None:
+                hist = np.zeros(self.shape, dtype=np.float64 if self.weighted else np.uint8)
+                top = np.zeros(1, dtype=np.float64 if self.weighted else np.int64)
+            hist = fit_counts(hist, int(top[0]) + (hi - lo)) if not self.weighted else hist
+            self._open[b] = (hist, top)
+            kernels.add_histograms(bins[lo:hi], weights[lo:hi], hist, top)
+
+    def _retire(self, below):
+        for b in sorted(k for k in self._open if k < below):
+            hist, top = self._open.pop(b)
+            most = top[0] if self.weighted else int(top[0])
+            if self.spill is not None:
+                path = f"{self.spill}.hist{self.first + b:04d}.npy"
+                np.save(path, narrowest(hist, most))
+                hist = path
+            self._retired.append((self.first + b, hist, most))
+
+    def finish(self):
+        """Retire every block; returns the parts ``[(block, array or file, largest count)]``."""
+        self._retire(below=np.iinfo(np.int64).max)
+        parts, self._retired = self._retired, []
+        return parts
+
+
+def sparse_piece(dense):
+    """One block as ``(cells, values)`` (its non-empty cells, int32 indices) when that is less
+    than half the bytes of the dense block (a worker's pieces sent back without files), else as
+    it is."""
     cells = np.flatnonzero(dense)
     if len(cells) * (4 + dense.itemsize) < dense.nbytes // 2 and dense.size < 2**31:
-        return [(block, cells.astype(np.int32), dense.reshape(-1)[cells])]
-    return [(block, dense[None])]
-
-
-def narrow_counts(block, most):
-    """An int32 histogram block as uint8 or uint16 when no count can exceed ``most`` (the
-    frames that went into it), else as it is (weighted sums, long blocks)."""
-    if block.dtype != np.int32:
-        return block
-    for small in (np.uint8, np.uint16):
-        if most <= np.iinfo(small).max:
-            return block.astype(small)
-    return block
-
-
+        return cells.astype(np.int32), dense.reshape(-1)[cells]
+    return dense
 
 
 def merge_hist_parts(parts, shape, weighted):
     """The histogram blocks of the whole run, shape (n_hist_blocks, n_torsions, n_bins), from the
-    parts of the workers: ``(block, file)`` saved by a worker, ``(first block, dense blocks)``, or
-    ``(block, cells, values)``; a serial run's single part covering every block is used without a
-    copy."""
-    if (len(parts) == 1 and parts[0][0] == 0 and isinstance(parts[0][1], np.ndarray)
-            and parts[0][1].shape == shape):
-        return parts[0][1]
-    hist = np.zeros(shape, dtype=np.float64 if weighted else np.int32)
-    while parts:
-        part = parts.pop()
-        if len(part) == 2 and isinstance(part[1], str):   # (block, file of a worker)
-            block, path = part
-            hist[block] += np.load(path, mmap_mode="r")
-            os.remove(path)
-        elif len(part) == 2:   # (first block, dense blocks)
-            lo, dense = part
-            hist[lo:lo + len(dense)] += dense
-        else:                # (block, cells, values)
-            block, cells, values = part
-            hist[block].reshape(-1)[cells] += values
-        del part
-    return hist
+    parts ``(block, piece, largest count)`` of every pass or worker (a piece is an array, an
+    ``.npy`` file or non-empty cells; see :class:`~dihedra.trajectory.result.BlockParts`).
+
+    Counts are summed in the narrowest type that holds the sum of the pieces' largest counts
+    (:func:`dihedra.numerics.counts.counter_type`). Pieces in files stay there until the
+    histograms are read or written block by block (a :class:`BlockParts`); pieces in memory
+    are added into one array."""
+    bound = {}
+    for block, _, most in parts:
+        bound[block] = bound.get(block, 0) + most
+    dtype = np.dtype(np.float64) if weighted else counter_type(int(max(bound.values(), default=0)))
+    stacked = BlockParts([(block, piece) for block, piece, _ in parts], shape, dtype)
+    if any(isinstance(piece, str) for _, piece, _ in parts):
+        return stacked
+    return stacked.materialize()

@@ -22,6 +22,7 @@ import hashlib
 import os
 import struct
 import sys
+import threading
 import warnings
 
 import numpy as np
@@ -47,12 +48,19 @@ def check_readable(path, what="file"):
     return path
 
 
-def sha256(path, chunk=1 << 22):
-    """SHA-256 hex digest of a file, read in chunks."""
+def sha256(path, chunk=1 << 22, stop=None):
+    """SHA-256 hex digest of a file, read in chunks (``stop()`` true: give up, ``None``)."""
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(chunk), b""):
-            h.update(block)
+    buf = bytearray(chunk)
+    view = memoryview(buf)
+    with open(path, "rb", buffering=0) as fh:
+        while True:
+            if stop is not None and stop():
+                return None
+            n = fh.readinto(buf)
+            if not n:
+                break
+            h.update(view[:n])
     return h.hexdigest()
 
 
@@ -74,6 +82,127 @@ def quiet_teardown():
         gc.collect()
     finally:
         sys.unraisablehook = hook
+
+
+#: Where the SHA-256 of files already hashed are kept (a JSON file): ``$DIHEDRA_CACHE_DIR``, else
+#: ``$XDG_CACHE_HOME/dihedra``, else ``~/.cache/dihedra``; ``DIHEDRA_NO_HASH_CACHE=1`` turns it off.
+CACHE_ENV, NO_CACHE_ENV = "DIHEDRA_CACHE_DIR", "DIHEDRA_NO_HASH_CACHE"
+
+#: Files remembered in the cache (the least recently hashed are forgotten first).
+CACHE_ENTRIES = 2000
+
+
+def _cache_file():
+    if os.environ.get(NO_CACHE_ENV, "") not in ("", "0"):
+        return None
+    folder = os.environ.get(CACHE_ENV) or os.path.join(
+        os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache"), "dihedra")
+    return os.path.join(folder, "sha256.json")
+
+
+def _stat_key(path):
+    """What identifies the content of a file without reading it: device, inode, size, and the
+    times of the last change of its content (mtime) and of its inode (ctime, which no program
+    can set back: any write changes it)."""
+    st = os.stat(path)
+    return [st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns]
+
+
+def cached_sha256(path, stop=None):
+    """:func:`sha256` of ``path``, taken from the cache when the file has not changed since it
+    was hashed (same :func:`_stat_key`: the way ``make`` or git's index tell unchanged files;
+    common practice), else computed and remembered."""
+    import json
+
+    path = os.path.abspath(path)
+    where = _cache_file()
+    key = _stat_key(path)
+    cache = {}
+    if where is not None:
+        try:
+            with open(where) as fh:
+                cache = json.load(fh)
+        except (OSError, ValueError):
+            cache = {}
+        hit = cache.get(path)
+        if isinstance(hit, list) and hit[:-1] == key:
+            return hit[-1]
+    digest = sha256(path, stop=stop)
+    if digest is None or where is None or _stat_key(path) != key:   # stopped, or changed meanwhile
+        return digest
+    cache.pop(path, None)
+    cache[path] = key + [digest]
+    for old in list(cache)[:max(0, len(cache) - CACHE_ENTRIES)]:
+        del cache[old]
+    try:   # written whole or not at all: other runs may read it at the same time
+        os.makedirs(os.path.dirname(where), exist_ok=True)
+        tmp = f"{where}.{os.getpid()}.tmp"
+        with open(tmp, "w") as fh:
+            json.dump(cache, fh)
+        os.replace(tmp, where)
+    except OSError:
+        pass
+    return digest
+
+
+class FileHashes:
+    """SHA-256 of files, computed in a background thread while the caller goes on.
+
+    Hashing a trajectory of gigabytes takes a second or more (about 0.55 s per GB); it runs
+    while the topology is read and the torsions are selected (one thread; hashlib releases
+    Python's lock), pauses while the frames are analysed (:meth:`paused`: the pass has the
+    cores), and goes on while the tables are made; :meth:`get` waits for a digest. A file hashed
+    before and unchanged since is not read again (:func:`cached_sha256`).
+    """
+
+    def __init__(self, paths):
+        self._paths = [os.path.abspath(p) for p in paths]
+        self._digests = {}
+        self._error = None
+        self._stop = False
+        self._go = threading.Event()
+        self._go.set()
+        self._thread = threading.Thread(target=self._run, name="dihedra-sha256", daemon=True)
+        self._thread.start()
+
+    def _wait(self):
+        self._go.wait()
+        return self._stop
+
+    def _run(self):
+        try:
+            for path in self._paths:
+                if self._stop:
+                    return
+                self._digests[path] = cached_sha256(path, stop=self._wait)
+        except BaseException as exc:  # noqa: BLE001 - raised by get()
+            self._error = exc
+
+    @contextlib.contextmanager
+    def paused(self):
+        """No hashing inside this block."""
+        self._go.clear()
+        try:
+            yield
+        finally:
+            self._go.set()
+
+    def get(self, path):
+        """The hex digest of ``path`` (waits for it; computed here if it was not asked for)."""
+        path = os.path.abspath(path)
+        if path not in self._paths:
+            return cached_sha256(path)
+        self._go.set()
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._digests[path]
+
+    def cancel(self):
+        """Stop hashing (after an error) and wait for the thread."""
+        self._stop = True
+        self._go.set()
+        self._thread.join()
 
 
 def _trajectory_atoms(path):
@@ -181,9 +310,9 @@ def check_xtc(path):
         if magic != 1995 or n_atoms <= 0:
             raise InputFileError(f"trajectory {path} is not an XTC file (it does not start with an XTC frame "
                                  "header); check the file and its extension.")
-        status, n, offset = _xtc.scan_frames(buf, n_atoms)
+        status, n, offset, header = _scan_xtc(path, size, n_atoms)
         if status not in (_xtc.OK, _xtc.TRUNCATED):
-            raise malformed_frame(path, n, _header_problem(buf, int(offset), n_atoms, status))
+            raise malformed_frame(path, n, _header_problem(header, 0, n_atoms, status))
         if n == 0:
             raise InputFileError(f"trajectory {path} holds no complete frame ({size} bytes, cut inside frame 0).")
         _decode_first_frames(path, buf, min(n, 2), n_atoms)
@@ -193,6 +322,33 @@ def check_xtc(path):
         return n, (f"trajectory {path} ends with an incomplete frame (frame {n} is cut after {size - int(offset)} "
                    f"bytes, as when a run is cut while writing); only the {n} complete frames are used.")
     return n, None
+
+
+#: Bytes of an XTC file mapped at a time while its frame headers are checked: the pages of a map
+#: count in the process's memory until it is unmapped, and reading one header maps the pages
+#: around it (a whole 685 MB file was about 150 MB more at the start of a run).
+SCAN_WINDOW = 32 << 20
+
+
+def _scan_xtc(path, size, n_atoms):
+    """:func:`_xtc.scan_frames` over the file, :data:`SCAN_WINDOW` bytes mapped at a time (a window
+    twice as large for a frame larger than it): ``(status, frames, byte offset of the frame that
+    is not whole or of the end, its header bytes when it is malformed)``."""
+    pos, total, window = 0, 0, SCAN_WINDOW
+    while True:
+        length = min(size - pos, window)
+        buf = np.memmap(path, dtype=np.uint8, mode="r", offset=pos, shape=(length,))
+        try:
+            status, n, off = _xtc.scan_frames(buf, n_atoms)
+            total += int(n)
+            if status in (_xtc.OK, _xtc.TRUNCATED) and pos + length < size:   # (cut by the window)
+                window = window if n else 2 * window
+                pos += int(off)
+                continue
+            header = bytes(buf[int(off):int(off) + 92]) if status not in (_xtc.OK, _xtc.TRUNCATED) else b""
+            return status, total, pos + int(off), header
+        finally:
+            del buf
 
 
 def malformed_frame(path, frame, problem):

@@ -31,6 +31,9 @@ class Batch:
         self.time = np.empty(max(size, 1), dtype=np.float64)
         self.index = np.empty(max(size, 1), dtype=np.intp)
         self.n = 0
+        # set by the torsion work (dihedra.trajectory.frame_work): box parameters, the torsions
+        # the reading thread computed, and the angle, bin and code rows of both parts
+        self.boxes, self.split, self.outputs = None, 0, None
 
 
 class Overlap:

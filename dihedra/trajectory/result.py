@@ -14,6 +14,9 @@ without counting rows itself.
 
 from __future__ import annotations
 
+import contextlib
+import os
+from collections.abc import MutableMapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -24,6 +27,171 @@ from ..selection.torsions import TorsionSet
 
 #: The index columns of a time series, before the weight (if any) and one column per torsion.
 INDEX_COLUMNS = ("replica", "frame", "time_ps")
+
+#: Block sums that may be kept (and stored) in a narrower unsigned type, and the type they are
+#: read as (the conformer counts by prefix: ``conformer_counts_w3`` for groups of three torsions).
+NARROWED = {"histograms": np.int32, "state_counts": np.int64, "conformer_counts_w": np.int32}
+
+
+def narrowed_type(name):
+    """The type an array of the block sums is read as when it is kept narrow, or ``None`` for an
+    array that is always kept as it is (see :data:`NARROWED`)."""
+    if name in NARROWED:
+        return NARROWED[name]
+    prefix = "conformer_counts_w"
+    return NARROWED[prefix] if name.startswith(prefix) and name[len(prefix):].isdigit() else None
+
+
+#: Allocations from this size on are mapped from the system and returned to it when freed (glibc's
+#: ``M_MMAP_THRESHOLD``, fixed: by default it rises to the largest block freed, up to 32 MB, and
+#: freed arrays of that size then stay in the heap, counting in the peak of the steps after the pass).
+MMAP_THRESHOLD = 256 << 10
+
+
+def _libc():
+    """glibc through ctypes, or None elsewhere. Loaded by its name: ``ctypes.util.find_library``
+    runs ``ldconfig`` in a child process, a copy of this one (with a tree of processes measured,
+    a fork of a 500 MB process looks like 500 MB more)."""
+    import ctypes
+
+    try:
+        return ctypes.CDLL("libc.so.6")
+    except OSError:
+        return None
+
+
+def bound_heap():
+    """Fix glibc's mmap threshold at :data:`MMAP_THRESHOLD` for this process (nothing elsewhere):
+    large arrays freed by the pass and the tables go back to the system at once. Measured on the
+    benchmark system (1,500 frames of 15,000 torsions): a peak of about 540 MB instead of 580."""
+    libc = _libc()
+    if libc is not None and hasattr(libc, "mallopt"):
+        libc.mallopt(-3, MMAP_THRESHOLD)   # M_MMAP_THRESHOLD
+
+
+def release_memory():
+    """Hand the memory freed by the pass back to the system (glibc's ``malloc_trim``; nothing
+    elsewhere): large arrays and Arrow's writer leave freed heap memory that glibc keeps for
+    later, which would count in the peak of the steps after the pass."""
+    libc = _libc()
+    if libc is not None and hasattr(libc, "malloc_trim"):
+        libc.malloc_trim(0)
+
+
+class BlockParts:
+    """An array of blocks, shape ``(n_blocks, ...)``, kept as parts until it is read.
+
+    ``parts`` lists ``(block, piece)``; a piece is an array of one block, the ``.npy`` file of
+    one (left by the pass in the run's scratch folder), or ``(cells, values)``, the non-empty
+    cells of one; the pieces of a block add up to it, a block without pieces is zero. The fine
+    histograms of a run are kept so (:func:`dihedra.trajectory.histograms.merge_hist_parts`):
+    :func:`dihedra.io.blocks.save_npz` writes them block by block, and
+    :class:`BlockSums` turns them into one array only when an analysis reads them.
+    """
+
+    def __init__(self, parts, shape, dtype):
+        self.parts = list(parts)
+        self.shape = tuple(int(x) for x in shape)
+        self.dtype = np.dtype(dtype)
+        self.ndim = len(self.shape)
+
+    def __len__(self):
+        return self.shape[0]
+
+    def block(self, b):
+        """Block ``b`` as an array (its pieces added in :attr:`dtype`)."""
+        out = np.zeros(self.shape[1:], dtype=self.dtype)
+        for block, piece in self.parts:
+            if block != b:
+                continue
+            if isinstance(piece, str):
+                piece = np.load(piece)
+            if isinstance(piece, tuple):
+                cells, values = piece
+                out.reshape(-1)[cells] += values
+            else:
+                out += piece
+        return out
+
+    def shifted(self, offset):
+        """The same parts with block numbers ``offset`` later (replicas one after another)."""
+        return [(block + offset, piece) for block, piece in self.parts]
+
+    def materialize(self):
+        """The whole array; its files are read once and removed (the parts are then the
+        blocks of this array)."""
+        out = np.empty(self.shape, dtype=self.dtype)
+        for b in range(self.shape[0]):
+            out[b] = self.block(b)
+        files = [piece for _, piece in self.parts if isinstance(piece, str)]
+        self.parts = [(b, out[b]) for b in range(self.shape[0])]
+        for path in files:
+            with contextlib.suppress(OSError):
+                os.remove(path)
+        return out
+
+    def __array__(self, dtype=None, copy=None):
+        out = self.materialize()
+        return out if dtype is None else out.astype(dtype)
+
+
+class NpzMember:
+    """One array of an ``.npz`` file, read when it is first needed (the histograms of a
+    :class:`BlockSums` once ``blocks.npz`` is written)."""
+
+    def __init__(self, path, name):
+        self.path, self.name = path, name
+
+    def materialize(self):
+        with np.load(self.path) as npz:
+            return npz[self.name]
+
+
+class BlockSums(MutableMapping):
+    """The block sums of a run (the arrays of ``blocks.npz``), a mapping of name to array.
+
+    The pass counts in the narrowest type the counts fit (uint8 histograms of short blocks, see
+    :mod:`dihedra.numerics.counts`); an array named in :data:`NARROWED` is widened to its type
+    the first time it is read from the mapping, so analyses always see int32 histograms and
+    conformer counts and int64 state counts, while a run that never reads them (``dihedra
+    track`` writing a folder) never holds the wide copy. An entry kept in parts or in a file
+    (:class:`BlockParts`, :class:`NpzMember`) is read into one array then too. :attr:`stored`
+    holds the entries as kept.
+
+    Examples
+    --------
+    >>> b = BlockSums({"histograms": np.ones((1, 2, 3), dtype=np.uint8)})
+    >>> b.stored["histograms"].dtype, b["histograms"].dtype
+    (dtype('uint8'), dtype('int32'))
+    """
+
+    def __init__(self, arrays=()):
+        self.stored = dict(arrays)
+
+    def __getitem__(self, name):
+        value = self.stored[name]
+        if hasattr(value, "materialize"):   # kept in parts or in a file (BlockParts, NpzMember)
+            value = self.stored[name] = value.materialize()
+        wide = narrowed_type(name)
+        if (wide is not None and isinstance(value, np.ndarray) and value.dtype.kind == "u"
+                and value.dtype.itemsize < np.dtype(wide).itemsize):
+            value = self.stored[name] = value.astype(wide)
+        return value
+
+    def __setitem__(self, name, value):
+        self.stored[name] = value
+
+    def __delitem__(self, name):
+        del self.stored[name]
+
+    def __iter__(self):
+        return iter(self.stored)
+
+    def __len__(self):
+        return len(self.stored)
+
+    def __repr__(self):
+        return f"BlockSums({', '.join(self.stored)})"
 
 
 @dataclass
@@ -111,7 +279,8 @@ class MemorySeries:
 
     def iter_chunks(self, kind, columns=None, batch_frames=None):
         for part in self._chunks[kind]:
-            rows = [part.columns.index(c) for c in columns] if columns is not None else slice(None)
+            where = {c: k for k, c in enumerate(part.columns)} if columns is not None else None
+            rows = [where[c] for c in columns] if columns is not None else slice(None)
             step = int(batch_frames) if batch_frames else max(1, len(part))
             for lo in range(0, len(part), step):
                 hi = min(len(part), lo + step)
@@ -172,6 +341,7 @@ class TrackResult:
     series: object = None
     schemes: pd.DataFrame | None = None
     _scratch: object = None  # keeps a temporary folder alive for API-only runs
+    time_blocks: object = None  # the convergence time blocks the pass counted (not saved: from the series)
 
     def has_series(self, kind):
         """Whether the result holds the ``"states"`` or ``"angles"`` time series."""

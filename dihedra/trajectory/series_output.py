@@ -111,6 +111,8 @@ class _MemoryWriter:
     def add(self, replica, index, values):
         position = np.asarray(index["position"])
         for kind, array in values.items():
+            if kind == "cores" and array.dtype == np.uint8:   # packed bits of the pass
+                array = np.unpackbits(array, axis=1, count=len(position), bitorder="little").view(np.bool_)
             self.chunks[kind].append(SeriesChunk(
                 int(replica), int(position[0]) if len(position) else 0, np.array(index["frame"]),
                 np.array(index["time_ps"]), np.array(index["weight"]) if self.weighted else None,

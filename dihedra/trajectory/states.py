@@ -33,6 +33,7 @@ from ..selection.torsions import TorsionSet
 from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info, scheme_table
 from .basins import need_temperature, plan_basins
 from .convergence import convergence_tables
+from .timeblocks import pass_time_blocks
 from .discard import parse_discard, plan_discard
 from .result import MemorySeries
 from .series_output import MemorySeriesFactory
@@ -227,6 +228,7 @@ class TorsionStates(TorsionPass):
         blocks = block_sums([self])
         result = assemble_result(self.torsion_set, self.scheme, self._universe, notices, blocks)
         result.schemes = scheme_table(self.scheme, self.torsion_set.types, self._choice.reasons, self._basins)
+        result.time_blocks = pass_time_blocks([self], self.torsion_set.types, self.scheme.labels)
         reader = self._universe.trajectory
         info = replica_info(self._universe, getattr(reader, "filename", None), self.frames, self, self.dt_ps,
                             notices)

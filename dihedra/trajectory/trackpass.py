@@ -8,9 +8,11 @@ and appends the codes to a chunk buffer. Results:
 ``results.state_counts`` : ndarray, shape (n_state_blocks, n_torsions, n_states)
     (weighted) number of frames per block, torsion and state; blocks are equal slices of the
     analysed frames, fixed by frame position, so serial and parallel runs fill the same cells.
-``results.histograms`` : ndarray, shape (n_hist_blocks, n_torsions, n_bins)
+``results.histograms`` : ndarray or BlockParts, shape (n_hist_blocks, n_torsions, n_bins)
     (weighted) fine periodic angle histogram per block, bins of ``bin_width_deg`` on (-180, 180],
-    each bin open at its left edge and closed at its right (int32 counts, float64 when weighted).
+    each bin open at its left edge and closed at its right: counts in the narrowest unsigned type
+    that holds them (float64 when weighted); with ``parts_dir``, finished blocks stay in files
+    there (a :class:`~dihedra.trajectory.result.BlockParts`, read into one array on demand).
 ``results.block_frames`` / ``results.hist_block_frames`` : ndarray (n_blocks,)
     frames per block; ``results.block_weights`` / ``results.hist_block_weights`` the weight sums.
 ``results.undefined`` : ndarray (n_torsions,)
@@ -26,10 +28,10 @@ and appends the codes to a chunk buffer. Results:
 
 Per frame
 ---------
-One compiled kernel call (:mod:`dihedra.numerics._kernels`, numba; identical NumPy twins when numba is
-missing) computes the angles (:class:`dihedra.numerics.angles.TorsionGeometry`), and a second one, in a
-single loop over torsions, the fine bin, the state code, the histogram update of the current
-block, the state count of the current block and the code row of the chunk buffer. The bin of a
+One compiled kernel call per batch of frames (:mod:`dihedra.numerics._kernels`, numba) computes,
+for a range of torsions, the angles (:class:`dihedra.numerics.angles.TorsionGeometry`), the fine
+bins, the state codes and the state counts of the current block; with a second thread the range
+is cut in two, the reading thread taking the first part (:mod:`dihedra.trajectory.frame_work`). The bin of a
 float32 angle a is ``k - 1`` with ``k = ceil(a / width) + n_bins / 2``, exact for bins open at the
 left edge. The state of an angle is looked up from its fine bin: a bin (lo, hi] that no state
 boundary cuts has one state for all its angles, so ``code = table[bin]``; the few bins that hold a
@@ -39,11 +41,12 @@ angle, the arc's closed or open start), so the codes are exactly those of the sc
 
 Memory
 ------
-The histograms of every block a worker touches are allocated densely once (int32 counts, float64
-when weighted): n_blocks x n_torsions x n_bins, fixed by the torsions, never by the frames. The
-conformer counts of every state block are dense too (int32 per block, group and joint state)
-unless a class of groups has too many joint states (then sorted rows of the current block). A
-serial run hands its histogram array to the results without a copy.
+The histogram blocks are allocated as the frames reach them (uint8 counts widened when a cell
+could pass 255, float64 when weighted) and, with ``parts_dir``, saved there and dropped once
+finished (:class:`~dihedra.trajectory.histograms.HistogramBlocks`): one or two blocks in memory,
+whatever the number of blocks and frames. The conformer counts of every state block are dense
+(uint8 widened the same way, per block, group and joint state) unless a class of groups has too
+many joint states (then sorted rows of the current block).
 
 Core membership
 ---------------
@@ -75,6 +78,7 @@ and distributed (:mod:`dihedra.trajectory.distributed`) backends give the same i
 from __future__ import annotations
 
 import os
+import time
 
 import numpy as np
 from MDAnalysis.analysis.base import AnalysisBase
@@ -82,18 +86,20 @@ from MDAnalysis.analysis.results import ResultsGroup
 
 from ..numerics.angles import TorsionGeometry
 from . import interrupts
-from .conformer_counts import ConformerCounter, merge_dense, merge_rows, touched_zeros
+from .conformer_counts import ConformerCounter, merge_dense, merge_rows
 from .cores import CoreBits
-from .histograms import MIXED, bin_state_tables, hist_part, merge_hist_parts, narrow_counts
+from .frame_work import FrameWork
+from .histograms import MIXED, HistogramBlocks, bin_state_tables, merge_hist_parts, sparse_piece
 from .overlap import Batch, Overlap
 from .series_output import SeriesOutput
-from .trajread import xtc_frames
+from .timeblocks import TimeBlockCounter
+from .trajread import frame_source
 
 #: Default size of a chunk (and of a Parquet row group) of the time series, in bytes of values.
 CHUNK_BYTES = 64 << 20
 
 #: With a second thread, coordinates are copied into batches of about this many bytes.
-BATCH_BYTES = 16 << 20
+BATCH_BYTES = 4 << 20
 
 #: Frames whose fine bins are buffered before they are added to the histograms.
 HIST_BUFFER_FRAMES = 256
@@ -192,14 +198,15 @@ class TorsionPass(AnalysisBase):
             "conformer_counts": ResultsGroup.ndarray_vstack,
             "conformer_weights": ResultsGroup.ndarray_hstack,
             "series_parts": ResultsGroup.flatten_sequence,
+            "time_block_counts": s,
         })
 
     def _compute(self, indexed_frames, verbose=None, *, progressbar_kwargs=None):
         # the whole run's frame count is known here (before the slice of this worker replaces it)
         self._n_total = self.n_frames
         self._global_index = np.asarray(indexed_frames[:, 0], dtype=np.int64)
-        # XTC through dihedra's decoder where it gives what MDAnalysis would (see trajread)
-        self._source = xtc_frames(self._trajectory)
+        # XTC and DCD read in batches by dihedra where that gives what MDAnalysis would (trajread)
+        self._source = frame_source(self._trajectory)
         try:
             try:
                 if self._source is None:
@@ -207,6 +214,8 @@ class TorsionPass(AnalysisBase):
                 else:
                     self._compute_decoded(indexed_frames, verbose, progressbar_kwargs or {})
                 if self._overlap is not None:
+                    if self._staged is not None and self._staged.n:
+                        self._work.first_part(self._staged)
                     self._overlap.finish(self._staged)
             finally:
                 if getattr(self, "_overlap", None) is not None:
@@ -258,7 +267,7 @@ class TorsionPass(AnalysisBase):
                 self.frames[lo:hi] = batch.frame[:hi - lo]
                 self.times[lo:hi] = batch.time[:hi - lo]
                 if own is None:
-                    self._staged = self._overlap.submit(batch)
+                    self._submit(batch)
                 else:
                     self._process(batch)
                 bar.update(hi - lo)
@@ -306,7 +315,7 @@ class TorsionPass(AnalysisBase):
         torsions x blocks x bins, never by the number of frames) and the conformer counter."""
         n_t, n_s = len(self.torsion_set), self.scheme.n_states
         weighted = self.weights is not None
-        self._hist_dtype = np.float64 if weighted else np.int32
+        self._hist_dtype = np.float64 if weighted else np.int64   # (of the weights of frames)
         res = self.results
         res.state_counts = np.zeros((self.n_state_blocks, n_t, n_s), dtype=np.float64 if weighted else np.int64)
         res.block_frames = np.zeros(self.n_state_blocks, dtype=np.int64)
@@ -315,8 +324,13 @@ class TorsionPass(AnalysisBase):
         res.hist_block_weights = np.zeros(self.n_hist_blocks, dtype=np.float64)
         res.undefined = np.zeros(n_t, dtype=np.int64)
         self._state_counts, self._undefined = res.state_counts, res.undefined
-        self._hist = touched_zeros((hb_hi - self._hb_lo + 1, n_t, self._n_bins), self._hist_dtype)
-        res.hist_parts = [(self._hb_lo, self._hist)]
+        # allocated as the frames reach them, uint8 counts widened when needed; with a scratch
+        # folder, finished blocks wait there (histograms.HistogramBlocks)
+        spill = None
+        if self.parts_dir is not None and len(self._global_index):
+            spill = self._stem()
+        self._hist = HistogramBlocks(self._hb_lo, n_t, self._n_bins, weighted, spill=spill)
+        self._n_local_hist = hb_hi - self._hb_lo + 1
         res.conformer_counts = np.empty((0, 4), dtype=np.int64)
         res.conformer_weights = np.empty(0, dtype=np.float64)
         res.conformer_parts = []
@@ -326,19 +340,26 @@ class TorsionPass(AnalysisBase):
         self._kernels = self._geometry.kernels
         self._conformers = ConformerCounter(self.torsion_set, n_s, self.n_state_blocks, self._sb_lo,
                                             sb_hi - self._sb_lo + 1, weighted, self._kernels)
+        # the time blocks of the convergence checks, counted here rather than read back
+        self._time_blocks = None
+        if self.series is not None:
+            self._time_blocks = TimeBlockCounter(self.torsion_set.types, n_s, self._n_total, weighted)
+            res.time_block_counts = self._time_blocks.counts
 
     def _prepare_kernels(self):
         """The per-frame work: bond buffer, bin -> state table, the scheme's exact rule for the
         bins that a boundary cuts, and the arguments of the compiled frame kernel."""
         n_bins = self._n_bins
         self._bin_table, scheme_args = bin_state_tables(self.scheme, self.torsion_set.types, n_bins)
-        self._bonds = np.empty((9, len(self.torsion_set)), dtype=np.float64)
         # k = ceil((a + shift_in) / width) + shift_out (see bin_and_code)
         shift_in, shift_out = (0.0, n_bins // 2) if n_bins % 2 == 0 else (180.0, 0)
         self._bin_args = (float(self.bin_width_deg), shift_in, shift_out, n_bins, self._bin_table,
                           *scheme_args, MIXED)
         # the core membership of every frame (cores.parquet) goes with the time series
         self._core_bits = None if self.series is None else CoreBits(self.scheme, self.torsion_set.types, n_bins)
+        self._work = FrameWork(self._geometry, self._bin_args, self._state_counts, self._undefined,
+                               self._frame_sblock, self._frame_weight, self._core_bits)
+        self._handed = time.perf_counter()
 
     def _prepare_buffers(self):
         """The buffers of the last few frames (fine bins, codes, angles; one row per frame), the
@@ -358,9 +379,9 @@ class TorsionPass(AnalysisBase):
         self._stage_angles = np.empty((nf, n_t), dtype=np.float32) if self.keep_angles else None
         self._chunk_codes = np.empty((n_t, cf), dtype=np.int8)
         self._chunk_angles = np.empty((n_t, cf), dtype=np.float32) if self.keep_angles else None
-        cores = self._core_bits is not None   # as 0/1 int8 (the codes' transpose); written as bits
+        cores = self._core_bits is not None   # 0/1 int8 per frame; in the chunk, packed bits as Arrow keeps them
         self._stage_cores = np.empty((nf, n_t), dtype=np.int8) if cores else None
-        self._chunk_cores = np.empty((n_t, cf), dtype=np.int8) if cores else None
+        self._chunk_cores = np.zeros((n_t, (cf + 7) // 8), dtype=np.uint8) if cores else None
         self._buf_frame = np.empty(cf, dtype=np.int64)
         self._buf_time = np.empty(cf, dtype=np.float64)
         self._buf_index = np.empty(cf, dtype=np.int64)
@@ -376,10 +397,6 @@ class TorsionPass(AnalysisBase):
             self._staged = self._overlap.take()
         elif getattr(self, "_source", None) is not None:   # decoded frames, in one thread
             self._batch = Batch(size, n_atoms)
-        else:
-            size = 1
-        self._angle_rows = None if self.keep_angles else np.empty((size, n_t), dtype=np.float32)
-        self._boxes = self._box_keys = None
 
     def _single_frame(self):
         ts = self._ts
@@ -398,11 +415,24 @@ class TorsionPass(AnalysisBase):
         batch.frame[k], batch.time[k], batch.index[k] = ts.frame, ts.time, self._frame_index
         batch.n = k + 1
         if batch.n == len(batch.frame):
-            self._staged = self._overlap.submit(batch)
+            self._submit(batch)
+
+    def _submit(self, batch):
+        """Hand a full batch to the second thread, after the reading thread's share of its
+        torsion work (:class:`~dihedra.trajectory.frame_work.FrameWork`; the seconds since the
+        last hand-over, reading included, balance the two threads)."""
+        self._work.first_part(batch)
+        now = time.perf_counter()
+        self._work.balance(0, now - self._handed, batch.n)
+        self._staged = self._overlap.submit(batch)
+        self._handed = time.perf_counter()
 
     def _process(self, batch):
-        """Frames of a batch, in order, split where the histogram buffer or the chunk fills."""
+        """Frames of a batch, in order: the torsion work the reading thread left, then the frames
+        into the buffers, split where the histogram buffer or the chunk fills."""
         interrupts.check()   # (an interrupt whose raise Python swallowed is not lost)
+        started = time.perf_counter()
+        self._work.second_part(batch)
         done = 0
         n_stage, n_chunk = len(self._bins), len(self._buf_frame)
         while done < batch.n:
@@ -413,44 +443,22 @@ class TorsionPass(AnalysisBase):
                 self._drain()
             if self._n_buf == n_chunk:
                 self._flush()
+        batch.boxes = None
+        self._work.balance(1, time.perf_counter() - started, batch.n)
 
     def _process_frames(self, batch, lo, m):
         row, nb = self._n_buf, self._n_bins_buf
         i = batch.index[lo:lo + m]
-        bins, codes = self._bins[nb:nb + m], self._stage_codes[nb:nb + m]
-        deg = self._angle_rows[:m] if self._stage_angles is None else self._stage_angles[nb:nb + m]
-        weight, sblock = self._frame_weight[i], self._frame_sblock[i]
-        boxes = self._box_rows(batch.dimensions[lo:lo + m])
-        self._kernels.frames(batch.positions[lo:lo + m], self._geometry.idx3, self._bonds, *boxes,
-                             deg, *self._bin_args, bins, codes, self._state_counts, sblock, weight,
-                             self._undefined)
-        if self._stage_cores is not None:
-            self._core_bits(bins, deg, self._stage_cores[nb:nb + m].view(np.bool_))
+        self._work.copy_out(batch, lo, m, self._bins[nb:nb + m], self._stage_codes[nb:nb + m],
+                            None if self._stage_angles is None else self._stage_angles[nb:nb + m],
+                            None if self._stage_cores is None else self._stage_cores[nb:nb + m])
         self._bins_hblock[nb:nb + m] = self._frame_hblock[i]
-        self._bins_weight[nb:nb + m] = weight
+        self._bins_weight[nb:nb + m] = self._frame_weight[i]
         self._buf_frame[row:row + m] = batch.frame[lo:lo + m]
         self._buf_time[row:row + m] = (batch.time[lo:lo + m] if self.dt_ps is None
                                        else batch.frame[lo:lo + m] * float(self.dt_ps))
         self._buf_index[row:row + m] = self._global_index[i]
         self._n_buf, self._n_bins_buf = row + m, nb + m
-
-    def _box_rows(self, dimensions):
-        """Minimum-image parameters of the frames of a batch (lengths, inverse, cells, reach2,
-        triclinic), recomputed only for rows whose box changed."""
-        m = len(dimensions)
-        if self._boxes is None or len(self._boxes[0]) < m:
-            self._boxes = (np.zeros((m, 3)), np.zeros((m, 3)), np.zeros((m, 3, 3)), np.zeros(m),
-                           np.zeros(m, dtype=bool))
-            self._box_keys = [None] * m
-        lengths, inverse, cells, reach2, triclinic = self._boxes
-        for f in range(m):
-            key = dimensions[f].tobytes()
-            if key != self._box_keys[f]:
-                lengths[f], inverse[f], h, reach2[f] = self._geometry.box_parameters(dimensions[f])
-                triclinic[f] = h is not None
-                cells[f] = h if h is not None else 0.0
-                self._box_keys[f] = key
-        return tuple(a[:m] for a in self._boxes)
 
     def _drain(self):
         """The buffered frames: fine bins into the histograms, joint states into the conformer
@@ -465,11 +473,14 @@ class TorsionPass(AnalysisBase):
         if self._conformers:
             w = np.ones(m) if self.weights is None else self.weights[gi]
             self._conformers.count(self._stage_codes[:m], gi * self.n_state_blocks // max(1, self._n_total), w)
+        if self._time_blocks is not None:
+            self._time_blocks.count(self._stage_codes[:m], gi, None if self.weights is None else self.weights[gi],
+                                    self._kernels)
         self._kernels.transpose_into(self._stage_codes[:m], self._chunk_codes[:, r0:r1])
         if self._stage_angles is not None:
             self._kernels.transpose_into(self._stage_angles[:m], self._chunk_angles[:, r0:r1])
         if self._stage_cores is not None:
-            self._kernels.transpose_into(self._stage_cores[:m], self._chunk_cores[:, r0:r1])
+            self._kernels.pack_bits_into(self._stage_cores[:m], self._chunk_cores, r0)
         self._n_bins_buf = 0
 
     def _add_histograms(self):
@@ -477,8 +488,7 @@ class TorsionPass(AnalysisBase):
         m = self._n_bins_buf
         if m == 0:
             return
-        bins, hblock, weight = self._bins[:m], self._bins_hblock[:m], self._bins_weight[:m]
-        self._kernels.add_histograms(bins, hblock, weight, self._hist)
+        self._hist.add(self._bins[:m], self._bins_hblock[:m], self._bins_weight[:m], self._kernels)
         self._n_bins_buf = 0
 
     def _conclude(self):
@@ -515,43 +525,35 @@ class TorsionPass(AnalysisBase):
             self._write_chunk(n)
         self._n_buf = 0
 
+    def _stem(self):
+        """Stem of the files this pass leaves in ``parts_dir`` (replica and first frame)."""
+        return os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{int(self._global_index[0]):012d}")
+
     def _finish_worker(self):
         # a slice of a parallel run hands its large sums back to the parent through files in
         # parts_dir when there is one (written to the page cache, no pickling)
-        parallel = self._hb_lo > 0 or len(self._hist) < self.n_hist_blocks
+        parallel = self._hb_lo > 0 or self._n_local_hist < self.n_hist_blocks
         stem = None
         if parallel and self.parts_dir is not None and len(self._global_index):
-            stem = os.path.join(self.parts_dir, f"replica{self.replica:04d}-from{int(self._global_index[0]):012d}")
+            stem = self._stem()
         res = self.results
         dense, rows, wts, files = self._conformers.hand_over(stem)
         res.conformer_dense, res.conformer_parts = dense, files
         if len(rows):
             res.conformer_counts, res.conformer_weights = rows, wts
-        if parallel:
-            res.hist_parts = self._hist_parts(stem)
+        # the histogram blocks: files in parts_dir, or arrays (their non-empty cells when a
+        # worker sends them back pickled and that is smaller)
+        res.hist_parts = [(block, sparse_piece(piece) if parallel and not isinstance(piece, str) else piece, most)
+                          for block, piece, most in self._hist.finish()]
         if self._output is not None and self._output.collected is not None:
             res.series_parts = [self._output.collected]
         self._hist = self._conformers = None
         self._stage_codes = self._stage_angles = self._chunk_codes = self._chunk_angles = None
-        self._stage_cores = self._chunk_cores = self._core_bits = None
-        self._bins = self._angle_rows = self._bonds = None
+        self._stage_cores = self._chunk_cores = self._core_bits = self._time_blocks = None
+        self._bins = None
         self._one_frame = self._staged = None
-        self._geometry = self._kernels = None   # modules do not pickle (results go back to the parent)
-
-    def _hist_parts(self, stem):
-        """The histogram blocks of a worker: files (counts as uint8 / uint16 where the frames of
-        this worker in the block fit: a quarter or half of the bytes to write and to read; the
-        parent adds them into its int32 sums), or the non-empty cells where that is less than
-        half the bytes of the dense block."""
-        if stem is None:
-            return [part for b in range(len(self._hist)) for part in hist_part(self._hb_lo + b, self._hist[b])]
-        per_block = np.bincount(self._frame_hblock, minlength=len(self._hist))
-        parts = []
-        for b in range(len(self._hist)):
-            path = f"{stem}.hist{self._hb_lo + b:04d}.npy"
-            np.save(path, narrow_counts(self._hist[b], per_block[b]))
-            parts.append((self._hb_lo + b, path))
-        return parts
+        # modules do not pickle (results go back to the parent)
+        self._geometry = self._kernels = self._work = None
 
     # -- the time series ----------------------------------------------------------------------------
     def _write_chunk(self, n):
@@ -570,7 +572,7 @@ class TorsionPass(AnalysisBase):
         values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
                                                       ("angles", self._chunk_angles)) if buf is not None}
         if self._chunk_cores is not None:
-            values["cores"] = self._chunk_cores[:, :n].view(np.bool_)
+            values["cores"] = self._chunk_cores[:, :(n + 7) // 8]   # (packed bits: uint8)
         background = self._overlap is not None or self._last_chunk
         self._output.add(self.replica, index, values, background=background)
         if not background or self._last_chunk:   # (deferred: nothing writes into this buffer any more)

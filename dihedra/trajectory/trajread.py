@@ -1,4 +1,4 @@
-"""Reading frames in batches for the trajectory pass, with dihedra's own XTC decoder.
+"""Reading frames in batches for the trajectory pass, with dihedra's own XTC decoder and DCD reader.
 
 MDAnalysis decodes one XTC frame at a time while holding Python's lock; for a large system
 decoding is most of the cost of a pass. :class:`XTCFrames` reads the bytes of a batch of frames
@@ -7,17 +7,21 @@ with one system call per run of consecutive frames and decodes them all in one c
 previous batch are computed at the same time. The positions, boxes, frame numbers and times are
 the ones MDAnalysis gives (tested bit for bit): the decoder does the library's integer and float32
 operations, the boxes go through MDAnalysis' own ``triclinic_box`` and unit conversion, the times
-follow the reader's ``dt`` and ``time_offset``.
+follow the reader's ``dt`` and ``time_offset``. :class:`DCDFrames` does the same for DCD files
+(three dimensions, no fixed atoms): the x, y and z records of a batch are copied into the positions
+by one compiled call (:mod:`dihedra.trajectory._dcd`), the unit cell and times as MDAnalysis'
+``DCDReader`` converts them.
 
-It is used only where it gives exactly what the MDAnalysis reader would: a plain ``XTCReader``
-(no on-the-fly transformations, no auxiliary data, no atom subset, units converted) and the
-compiled kernels; everything else (other formats, ``DIHEDRA_NO_XTC_DECODER=1``) is iterated
-by MDAnalysis as usual. A frame whose header or compressed coordinates are malformed (an
-overflowed integer range, a bit stream that runs past its atoms) is refused with an
-:class:`~dihedra.errors.InputFileError`: MDAnalysis' reader does not survive such frames. A batch
-with a truncated frame, a wrong magic number or an encoding outside what the decoder handles is
-read again frame by frame by MDAnalysis, which reports the first two safely, so its errors and its
-results are the ones a user would get from MDAnalysis.
+Either is used only where it gives exactly what the MDAnalysis reader would: a plain ``XTCReader``
+or ``DCDReader`` (no on-the-fly transformations, no auxiliary data, no atom subset, units
+converted) and the compiled kernels; everything else (other formats, ``DIHEDRA_NO_XTC_DECODER=1``,
+``DIHEDRA_NO_DCD_READER=1``) is iterated by MDAnalysis as usual. An XTC frame whose header or
+compressed coordinates are malformed (an overflowed integer range, a bit stream that runs past its
+atoms) is refused with an :class:`~dihedra.errors.InputFileError`: MDAnalysis' reader does not
+survive such frames. A batch with a truncated frame, a wrong magic number, a damaged DCD record or
+an encoding outside what the decoder handles is read again frame by frame by MDAnalysis, which
+reports the first two safely, so its errors and its results are the ones a user would get from
+MDAnalysis.
 """
 
 from __future__ import annotations
@@ -31,20 +35,47 @@ from .inputs import malformed_frame
 #: Set to 1 to read XTC through MDAnalysis' iteration as every other format.
 NO_DECODER_ENV = "DIHEDRA_NO_XTC_DECODER"
 
+#: Set to 1 to read DCD through MDAnalysis' iteration as every other format.
+NO_DCD_ENV = "DIHEDRA_NO_DCD_READER"
+
+
+def frame_source(reader):
+    """A batch reader for ``reader`` (:class:`XTCFrames` or :class:`DCDFrames`) where it gives
+    exactly what ``reader`` would, else ``None`` (MDAnalysis' iteration)."""
+    return xtc_frames(reader) or dcd_frames(reader)
+
+
+def _plain(reader, cls_name, module):
+    """Whether ``reader`` is exactly MDAnalysis' ``cls_name`` without transformations,
+    auxiliary data or atom subset, converting units."""
+    try:
+        cls = getattr(__import__(f"MDAnalysis.coordinates.{module}", fromlist=[cls_name]), cls_name)
+    except (ImportError, AttributeError):   # pragma: no cover - MDAnalysis always has them
+        return False
+    return (type(reader) is cls and not getattr(reader, "transformations", None)
+            and not getattr(reader, "aux_list", None) and getattr(reader, "_sub", None) is None
+            and getattr(reader, "convert_units", True))
+
+
+def dcd_frames(reader):
+    """A :class:`DCDFrames` for ``reader`` when it gives exactly what ``reader`` would (a plain
+    DCD of three dimensions without fixed atoms, lengths in Angstrom), else ``None``."""
+    if os.environ.get(NO_DCD_ENV, "") not in ("", "0") or not _plain(reader, "DCDReader", "DCD"):
+        return None
+    f = reader._file
+    n = int(reader.n_atoms)
+    cell = 14 if f.header.get("is_periodic") else 0
+    if (f.ndims != 3 or f._firstframesize != f._framesize or f._framesize != 4 * (cell + 3 * (n + 2))
+            or reader.units.get("length") != "Angstrom" or f._header_size % 4 or len(f) == 0):
+        return None
+    from . import _dcd
+    return DCDFrames(reader, _dcd)
+
 
 def xtc_frames(reader):
     """An :class:`XTCFrames` for ``reader`` when dihedra's decoder gives exactly what
     ``reader`` would, else ``None``."""
-    if os.environ.get(NO_DECODER_ENV, "") not in ("", "0"):
-        return None
-    try:
-        from MDAnalysis.coordinates.XTC import XTCReader
-    except ImportError:   # pragma: no cover - MDAnalysis always has it
-        return None
-    if type(reader) is not XTCReader:
-        return None
-    if (getattr(reader, "transformations", None) or getattr(reader, "aux_list", None)
-            or getattr(reader, "_sub", None) is not None or not getattr(reader, "convert_units", True)):
+    if os.environ.get(NO_DECODER_ENV, "") not in ("", "0") or not _plain(reader, "XTCReader", "XTC"):
         return None
     if reader.units.get("length") != "nm":
         return None
@@ -52,7 +83,154 @@ def xtc_frames(reader):
     return XTCFrames(reader, _xtc)
 
 
-class XTCFrames:
+class _FileFrames:
+    """What the batch readers share: the bytes of a batch of frames read with one system call
+    per run of consecutive frames (``offsets`` and ``sizes`` of every frame in the file), and
+    MDAnalysis' own reading of a batch that cannot be decoded."""
+
+    def __init__(self, reader, offsets, sizes):
+        self._reader = reader
+        self.path = reader.filename
+        self.n_atoms = int(reader.n_atoms)
+        self.offsets = np.asarray(offsets, dtype=np.int64)
+        self.sizes = np.asarray(sizes, dtype=np.int64)
+        self._time_offset = reader.ts.data.get("time_offset", 0)
+        self._buf = np.empty(0, dtype=np.uint8)
+        self._box_cache = {}
+        self._fh = None
+
+    def close(self):
+        if self._fh is not None:
+            self._fh.close()
+            self._fh = None
+
+    def _cached_box(self, key, make):
+        """``make()`` for a box not seen before (boxes of NPT runs: the cache stays small)."""
+        dims = self._box_cache.get(key)
+        if dims is None:
+            dims = make()
+            if len(self._box_cache) > 4096:
+                self._box_cache.clear()
+            self._box_cache[key] = dims
+        return dims
+
+    def _read_bytes(self, frames):
+        """The bytes of ``frames`` into the buffer (one read per run of consecutive frames);
+        returns the offset of each frame in it."""
+        sizes = self.sizes[frames]
+        starts = np.zeros(len(frames), dtype=np.int64)
+        np.cumsum(sizes[:-1], out=starts[1:])
+        total = int(starts[-1] + sizes[-1])
+        if len(self._buf) < total:
+            self._buf = np.empty(int(total * 1.25) + 64, dtype=np.uint8)
+        if self._fh is None:
+            self._fh = open(self.path, "rb", buffering=0)
+        cuts = np.flatnonzero(np.diff(frames) != 1) + 1
+        view = memoryview(self._buf)
+        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(frames)]):
+            a = int(starts[lo])
+            b = int(starts[hi - 1] + sizes[hi - 1])
+            self._fh.seek(int(self.offsets[frames[lo]]))
+            got = self._fh.readinto(view[a:b])
+            while got is not None and got < b - a:   # short reads (pipes, network file systems)
+                more = self._fh.readinto(view[a + got:b])
+                if not more:
+                    break
+                got += more
+        return starts
+
+    def _read_by_mdanalysis(self, frames, positions, dimensions, frame_out, time_out):
+        """The frames through MDAnalysis, one by one (errors are MDAnalysis' own)."""
+        reader = self._reader
+        for k, f in enumerate(frames):
+            ts = reader[int(f)]
+            positions[k] = ts.positions
+            dimensions[k] = ts.dimensions if ts.dimensions is not None else np.nan
+            frame_out[k] = ts.frame
+            time_out[k] = ts.time
+
+
+class DCDFrames(_FileFrames):
+    """Frames of a DCD trajectory (three dimensions, no fixed atoms) read in batches.
+
+    The bytes of a batch are read at once (Python's lock released during the system call) and
+    the x, y and z records of every frame copied into the positions by one compiled call
+    (:mod:`dihedra.trajectory._dcd`, lock released); the unit cell goes through the conversion
+    of MDAnalysis' ``DCDReader._frame_to_ts`` (cosines or degrees of the cell angles, or CHARMM's
+    box vectors), the times are ``(frame + istart / nsavc) * dt`` plus the reader's time offset,
+    as MDAnalysis computes them. A batch whose record markers are not those of this layout (a
+    damaged frame, or a file of the other byte order) is read by MDAnalysis frame by frame.
+
+    Parameters
+    ----------
+    reader : MDAnalysis.coordinates.DCD.DCDReader
+    unpacker : module
+        :mod:`dihedra.trajectory._dcd`.
+    """
+
+    def __init__(self, reader, unpacker):
+        f = reader._file
+        n = len(f)
+        super().__init__(reader, f._header_size + f._framesize * np.arange(n, dtype=np.int64),
+                         np.full(n, f._framesize, dtype=np.int64))
+        self._unpacker = unpacker
+        self._cell_words = 14 if f.header.get("is_periodic") else 0
+        header = f.header
+        self._first = header["istart"] / header["nsavc"]
+        self._dt = reader.ts.dt
+
+    def read(self, frames, positions, dimensions, frame_out, time_out):
+        """Read ``frames`` (frame numbers, ascending) into the first ``len(frames)`` rows of
+        ``positions``, ``dimensions`` (NaN for a frame without a box), ``frame_out`` and
+        ``time_out`` (ps), as :meth:`XTCFrames.read`."""
+        frames = np.asarray(frames, dtype=np.int64)
+        n = len(frames)
+        if n == 0:
+            return
+        starts = self._read_bytes(frames)
+        total = int(starts[-1] + self.sizes[frames[-1]])
+        words = self._buf[:total].view(np.float32)
+        marks = words.view(np.int32)
+        first = starts // 4
+        done = self._unpacker.unpack_frames(words, marks, first, self.n_atoms, self._cell_words, positions)
+        cells = self._cell_words and all(int(marks[w]) == 48 for w in first)
+        if done != n or (self._cell_words and not cells):
+            self._read_by_mdanalysis(frames, positions, dimensions, frame_out, time_out)
+            return
+        for k in range(n):
+            raw = self._buf[starts[k] + 4:starts[k] + 52].tobytes() if self._cell_words else b""
+            dimensions[k] = self._cached_box(raw, lambda: _dcd_dimensions(raw, self._reader))
+        frame_out[:n] = frames
+        for k in range(n):   # as DCDReader._frame_to_ts, then Timestep.time (time_offset added)
+            time_out[k] = (int(frames[k]) + self._first) * self._dt + self._time_offset
+
+
+def _dcd_dimensions(raw, reader):
+    """``ts.dimensions`` of a DCD frame whose unit cell record holds ``raw`` (six float64, or
+    nothing), by the operations of MDAnalysis' ``DCDReader._frame_to_ts`` (NaN for no box)."""
+    from MDAnalysis.lib.mdamath import triclinic_box
+
+    # libdcd's unit cell when the frame has none: A, gamma, B, beta, alpha, C = 0, 90, 0, 90, 90, 0
+    unitcell = (np.frombuffer(raw, dtype=np.float64).copy() if raw
+                else np.array([0.0, 90.0, 0.0, 90.0, 90.0, 0.0]))
+    uc = np.take(unitcell, [0, 2, 5, 4, 3, 1])
+    pi_2 = np.pi / 2
+    if (-1.0 <= uc[3] <= 1.0) and (-1.0 <= uc[4] <= 1.0) and (-1.0 <= uc[5] <= 1.0):
+        uc[3] = 90.0 - np.arcsin(uc[3]) * 90.0 / pi_2
+        uc[4] = 90.0 - np.arcsin(uc[4]) * 90.0 / pi_2
+        uc[5] = 90.0 - np.arcsin(uc[5]) * 90.0 / pi_2
+    elif np.any(uc < 0.0) or np.any(uc[3:] > 180.0):
+        h = unitcell.copy()
+        uc = triclinic_box(h[[0, 1, 3]], h[[1, 2, 4]], h[[3, 4, 5]])
+    dims = np.asarray(uc, dtype=np.float32).copy()
+    if (dims[:3] == 0).all():
+        dims[:] = np.nan
+        return dims
+    reader.convert_pos_from_native(dims[:3])
+    return dims
+
+
+class XTCFrames(_FileFrames):
     """Frames of an XTC trajectory decoded in batches (see the module docstring).
 
     Parameters
@@ -64,28 +242,15 @@ class XTCFrames:
     """
 
     def __init__(self, reader, decoder):
-        self._reader = reader
+        offsets = np.asarray(reader._xdr.offsets, dtype=np.int64)
+        super().__init__(reader, offsets, np.diff(np.append(offsets, os.path.getsize(reader.filename))))
         self._decoder = decoder
-        self.path = reader.filename
-        self.n_atoms = int(reader.n_atoms)
-        self.offsets = np.asarray(reader._xdr.offsets, dtype=np.int64)
-        size = os.path.getsize(self.path)
-        self.sizes = np.diff(np.append(self.offsets, size))
         self._dt = reader._kwargs.get("dt")
-        self._time_offset = reader.ts.data.get("time_offset", 0)
-        self._buf = np.empty(0, dtype=np.uint8)
         largest = int(self.sizes.max()) if len(self.sizes) else 0
         self._words = np.empty(largest // 8 + 1 + decoder.PAD_WORDS, dtype=np.uint64)
         self._boxes = np.empty((0, 3, 3), dtype=np.float32)
         self._steps = np.empty(0, dtype=np.int64)
         self._times = np.empty(0, dtype=np.float32)
-        self._box_cache = {}
-        self._fh = None
-
-    def close(self):
-        if self._fh is not None:
-            self._fh.close()
-            self._fh = None
 
     def read(self, frames, positions, dimensions, frame_out, time_out):
         """Decode ``frames`` (frame numbers, ascending) into the first ``len(frames)`` rows of
@@ -120,54 +285,16 @@ class XTCFrames:
         else:
             time_out[:n] = frames * self._dt + self._time_offset
 
-    def _read_bytes(self, frames):
-        """The bytes of ``frames`` into the buffer (one read per run of consecutive frames);
-        returns the offset of each frame in it."""
-        sizes = self.sizes[frames]
-        starts = np.zeros(len(frames), dtype=np.int64)
-        np.cumsum(sizes[:-1], out=starts[1:])
-        total = int(starts[-1] + sizes[-1])
-        if len(self._buf) < total:
-            self._buf = np.empty(int(total * 1.25) + 64, dtype=np.uint8)
-        if self._fh is None:
-            self._fh = open(self.path, "rb", buffering=0)
-        cuts = np.flatnonzero(np.diff(frames) != 1) + 1
-        view = memoryview(self._buf)
-        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(frames)]):
-            a = int(starts[lo])
-            b = int(starts[hi - 1] + sizes[hi - 1])
-            self._fh.seek(int(self.offsets[frames[lo]]))
-            got = self._fh.readinto(view[a:b])
-            while got is not None and got < b - a:   # short reads (pipes, network file systems)
-                more = self._fh.readinto(view[a + got:b])
-                if not more:
-                    break
-                got += more
-        return starts
-
     def _dimensions(self, box):
         """``ts.dimensions`` of a frame with this box (nm), as MDAnalysis' XTC reader sets it."""
-        key = box.tobytes()
-        dims = self._box_cache.get(key)
-        if dims is None:
-            from MDAnalysis.lib.mdamath import triclinic_box
+        return self._cached_box(box.tobytes(), lambda: self._xtc_dimensions(box))
 
-            dims = np.asarray(triclinic_box(*box), dtype=np.float32).copy()
-            if (dims[:3] == 0).all():   # no box: ts.dimensions is None
-                dims[:] = np.nan
-            else:
-                self._reader.convert_pos_from_native(dims[:3])
-            if len(self._box_cache) > 4096:   # boxes of NPT runs: keep the cache small
-                self._box_cache.clear()
-            self._box_cache[key] = dims
+    def _xtc_dimensions(self, box):
+        from MDAnalysis.lib.mdamath import triclinic_box
+
+        dims = np.asarray(triclinic_box(*box), dtype=np.float32).copy()
+        if (dims[:3] == 0).all():   # no box: ts.dimensions is None
+            dims[:] = np.nan
+        else:
+            self._reader.convert_pos_from_native(dims[:3])
         return dims
-
-    def _read_by_mdanalysis(self, frames, positions, dimensions, frame_out, time_out):
-        """The frames through MDAnalysis, one by one (errors are MDAnalysis' own)."""
-        reader = self._reader
-        for k, f in enumerate(frames):
-            ts = reader[int(f)]
-            positions[k] = ts.positions
-            dimensions[k] = ts.dimensions if ts.dimensions is not None else np.nan
-            frame_out[k] = ts.frame
-            time_out[k] = ts.time

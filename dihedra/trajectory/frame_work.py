@@ -1,0 +1,171 @@
+"""The per-frame torsion work of the trajectory pass, shared by the reading and the computing
+thread.
+
+One compiled call per batch of frames (:func:`dihedra.numerics._kernels.frames`) computes, for a
+range of torsions, the angles, fine bins and state codes, and adds the state counts and the
+undefined frames of those torsions. The torsions are independent of each other, so the range
+can be cut in two: with a second thread, the thread that reads a batch also computes the first
+``split`` torsions of it (:meth:`FrameWork.first_part`), and the computing thread the rest
+(:meth:`FrameWork.second_part`) before it buffers the frames and adds the histograms, conformer
+counts and time series. The cut follows the two threads' measured seconds per frame
+(:meth:`FrameWork.balance`): fast formats (DCD) leave the reading thread idle, which then takes
+up to half of the torsion work; a costly read (XTC, MDAnalysis' iteration) leaves it less. Both
+parts write only their own torsions' cells, so the results do not depend on the cut.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+#: Frames of both threads between two moves of the cut.
+WINDOW = 128
+
+
+class FrameWork:
+    """The torsion work of frames, for a range of torsions at a time.
+
+    Parameters
+    ----------
+    geometry : dihedra.numerics.angles.TorsionGeometry
+        Atom indices (``idx3``), box parameters and the compiled kernels.
+    bin_args : tuple
+        The fine-bin and state arguments of the frame kernel: bin width, shifts, number of
+        bins, the bin -> state tables of the scheme classes, the class of every torsion (sliced
+        with the torsions of a part), boundaries, their numbers, closed starts and arc states
+        per class, the mixed mark.
+    state_counts : ndarray (n_state_blocks, n_torsions, n_states)
+    undefined : ndarray (n_torsions,)
+    frame_sblock, frame_weight : ndarray
+        State block and weight of every frame of the pass (by position).
+    core_bits : dihedra.trajectory.cores.CoreBits, optional
+        Records whether each angle lies in its state's core (``cores.parquet``), torsion range by
+        torsion range with the rest of the work.
+    """
+
+    def __init__(self, geometry, bin_args, state_counts, undefined, frame_sblock, frame_weight,
+                 core_bits=None):
+        self.geometry = geometry
+        self.kernels = geometry.kernels
+        self.n = geometry.n_torsions
+        self.bin_head, self.classes, self.bin_tail = bin_args[:5], bin_args[5], bin_args[6:]
+        self.state_counts, self.undefined = state_counts, undefined
+        self.frame_sblock, self.frame_weight = frame_sblock, frame_weight
+        self.core_bits = core_bits
+        self.split = 0
+        # per thread since the last move of the cut: seconds, frames, seconds of torsion work
+        self._acc = [[0.0, 0, 0.0], [0.0, 0, 0.0]]
+        self._part_frames = 0   # torsion-frames computed in that time
+        self._bonds = [None, None]
+        self._boxes = self._box_keys = None
+
+    # -- the two parts --------------------------------------------------------------------------
+    def first_part(self, batch):
+        """In the reading thread: the box parameters of the batch and torsions ``[0, split)``."""
+        batch.boxes = self.box_rows(batch.dimensions[:batch.n])
+        batch.split = self.split
+        self._part(batch, 0, batch.split, 0)
+
+    def second_part(self, batch):
+        """In the computing thread: torsions ``[split, n)`` of the batch (all of them when the
+        reading thread did none; the box parameters too when it did not set them)."""
+        if getattr(batch, "boxes", None) is None:
+            batch.boxes = self.box_rows(batch.dimensions[:batch.n])
+            batch.split = 0
+        self._part(batch, batch.split, self.n, 1)
+
+    def _part(self, batch, t0, t1, side):
+        m = batch.n
+        out = _outputs(batch, side, t1 - t0, self.core_bits is not None)
+        if m == 0 or t1 <= t0:
+            return
+        bonds = self._bonds[side]   # (each thread its own buffer of bond vectors)
+        if bonds is None or bonds.shape[1] != t1 - t0:
+            bonds = self._bonds[side] = np.empty((9, t1 - t0), dtype=np.float64)
+        i = batch.index[:m]
+        deg, bins, codes, cores = (None if a is None else a[:m] for a in out)
+        started = time.perf_counter()
+        self.kernels.frames(batch.positions[:m], self.geometry.idx3[t0:t1], bonds, *batch.boxes, deg,
+                            *self.bin_head, self.classes[t0:t1], *self.bin_tail, bins, codes,
+                            self.state_counts[:, t0:t1], self.frame_sblock[i],
+                            self.frame_weight[i], self.undefined[t0:t1])
+        if cores is not None:
+            self.core_bits(bins, deg, cores.view(np.bool_), t0, t1)
+        self._acc[side][2] += time.perf_counter() - started
+        self._part_frames += m * (t1 - t0)
+
+    def copy_out(self, batch, lo, m, bins, codes, angles, cores=None):
+        """Frames ``lo .. lo + m`` of the batch (both parts) into rows of the pass's buffers
+        (``angles`` and ``cores`` where given)."""
+        s = batch.split
+        for side, cols in ((0, slice(0, s)), (1, slice(s, self.n))):
+            if cols.stop <= cols.start:
+                continue
+            deg, b, c, k = batch.outputs[side]
+            bins[:, cols] = b[lo:lo + m]
+            codes[:, cols] = c[lo:lo + m]
+            if angles is not None:
+                angles[:, cols] = deg[lo:lo + m]
+            if cores is not None:
+                cores[:, cols] = k[lo:lo + m]
+
+    # -- balance ------------------------------------------------------------------------------
+    def balance(self, side, seconds, frames):
+        """Record a thread's seconds for ``frames`` frames (``side`` 0 reading, 1 computing) and,
+        every :data:`WINDOW` frames of both, move the cut to where both threads would take as
+        long per frame: with w the seconds per torsion-frame of the torsion work, r and d the
+        other seconds per frame of the reading and the computing thread (reading; buffers,
+        histograms, conformers, time series), ``r + w s = d + w (n - s)`` gives
+        ``s = (w n + d - r) / 2w`` (halfway from the old cut, in multiples of 64 torsions)."""
+        acc = self._acc[side]
+        acc[0] += seconds
+        acc[1] += frames
+        (read_s, read_f, read_part), (comp_s, comp_f, comp_part) = self._acc
+        if side == 0 or read_f < WINDOW or comp_f < WINDOW:
+            return
+        done = self._part_frames
+        w = (read_part + comp_part) / done if done else 0.0
+        self._acc = [[0.0, 0, 0.0], [0.0, 0, 0.0]]
+        self._part_frames = 0
+        if w <= 0.0:
+            return
+        r = (read_s - read_part) / read_f
+        d = (comp_s - comp_part) / comp_f
+        best = min(float(self.n), max(0.0, (w * self.n + d - r) / (2.0 * w)))
+        self.split = int(round((self.split + best) / 2.0 / 64.0)) * 64
+        self.split = min(self.split, self.n)
+
+    # -- boxes --------------------------------------------------------------------------------
+    def box_rows(self, dimensions):
+        """Minimum-image parameters of the frames of a batch (lengths, inverse, cells, reach2,
+        triclinic; new arrays), recomputed only for rows whose box changed."""
+        m = len(dimensions)
+        if self._boxes is None or len(self._boxes[0]) < m:
+            self._boxes = (np.zeros((m, 3)), np.zeros((m, 3)), np.zeros((m, 3, 3)), np.zeros(m),
+                           np.zeros(m, dtype=bool))
+            self._box_keys = [None] * m
+        lengths, inverse, cells, reach2, triclinic = self._boxes
+        for f in range(m):
+            key = dimensions[f].tobytes()
+            if key != self._box_keys[f]:
+                lengths[f], inverse[f], h, reach2[f] = self.geometry.box_parameters(dimensions[f])
+                triclinic[f] = h is not None
+                cells[f] = h if h is not None else 0.0
+                self._box_keys[f] = key
+        return tuple(a[:m].copy() for a in self._boxes)
+
+
+def _outputs(batch, side, width, cores=False):
+    """The angle, bin, code (and core bit: int8 0/1) rows of one part of a batch, (re)allocated
+    for ``width`` torsions."""
+    outs = getattr(batch, "outputs", None)
+    if outs is None:
+        outs = batch.outputs = [None, None]
+    size = len(batch.frame)
+    cur = outs[side]
+    if cur is None or cur[0].shape != (size, width) or (cur[3] is not None) != cores:
+        cur = outs[side] = (np.empty((size, width), dtype=np.float32), np.empty((size, width), dtype=np.uint16),
+                            np.empty((size, width), dtype=np.int8),
+                            np.empty((size, width), dtype=np.int8) if cores else None)
+    return cur
