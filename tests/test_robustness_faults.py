@@ -245,7 +245,7 @@ def test_a_signal_whose_raise_python_swallowed_still_stops_the_command(monkeypat
         _SignalInFinaliser()
         return 0
     monkeypatch.setattr(cli, "build_parser",
-                        lambda: types.SimpleNamespace(parse_args=lambda argv: argparse.Namespace(func=command)))
+                        lambda *a: types.SimpleNamespace(parse_args=lambda argv: argparse.Namespace(func=command)))
     assert cli.main(["anything"]) == 128 + signal.SIGINT
     err = capsys.readouterr().err
     assert "Exception ignored" not in err and "Traceback" not in err, err

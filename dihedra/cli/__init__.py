@@ -35,7 +35,9 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"dihedra: error: {self.prog}: {message} (see '{self.prog} --help').\n")
 
 
-def build_parser():
+def build_parser(command=None):
+    """The parser of the command line; with ``command`` (a subcommand's name) only that
+    subcommand's module is imported, so that a run does not pay for loading the others."""
     parser = _Parser(
         prog="dihedra",
         description="Conformer-aware torsion analysis of molecular-dynamics trajectories: torsion "
@@ -46,6 +48,8 @@ def build_parser():
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     names = [m.name for m in pkgutil.iter_modules(__path__) if m.name not in _SKIP]
     names.sort(key=lambda n: (ORDER.index(n) if n in ORDER else len(ORDER), n))
+    if command in names:
+        names = [command]
     for name in names:
         module = importlib.import_module(f"{__name__}.{name}")
         if hasattr(module, "register"):
@@ -84,7 +88,8 @@ def _release_process_resources():
 
 
 def _main(argv):
-    parser = build_parser()
+    given = sys.argv[1:] if argv is None else argv
+    parser = build_parser(next((a for a in given if not a.startswith("-")), None))
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:   # --help, --version (0) or a usage error (2, one line printed)
