@@ -9,6 +9,8 @@ padded to a multiple of 4. The damaged files below change one field of one frame
 
 from __future__ import annotations
 
+import os
+import shutil
 import struct
 
 import numpy as np
@@ -110,3 +112,33 @@ def cut_mid_frame(path, fraction=0.5):
     with open(path, "wb") as fh:
         fh.write(data[:keep])
     return len(offsets) - 1
+
+
+# ------------------------------------------------------------------------------------------------
+# helpers of the robustness tests
+# ------------------------------------------------------------------------------------------------
+def copy_contents(src_folder, dest_folder):
+    """Copy every file and folder of ``src_folder`` into ``dest_folder``."""
+    for name in os.listdir(src_folder):
+        src = os.path.join(src_folder, name)
+        (shutil.copytree if os.path.isdir(src) else shutil.copy)(src, os.path.join(dest_folder, name))
+
+
+def leftovers(folder):
+    """Staging or replaced folders left in ``folder`` (none may survive a run)."""
+    return [n for n in os.listdir(folder) if ".partial-" in n or ".old-" in n]
+
+
+def refused(capsys, argv, *fragments):
+    """Run ``argv``; it must end with exactly one error line (exit 2), no traceback."""
+    from dihedra.cli import main
+
+    capsys.readouterr()
+    code = main([str(a) for a in argv])
+    err = capsys.readouterr().err
+    lines = [line for line in err.strip().splitlines() if line.startswith("dihedra: error:")]
+    assert code == 2 and len(lines) == 1, err
+    assert "Traceback" not in err and "Exception ignored" not in err, err
+    for f in fragments:
+        assert f in lines[0], lines[0]
+    return lines[0]

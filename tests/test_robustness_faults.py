@@ -22,6 +22,7 @@ import pytest
 
 from dihedra import example_path, load_results
 from dihedra.cli import main
+from robustness_files import copy_contents, leftovers, refused
 from test_safe_outputs import snapshot
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -45,25 +46,9 @@ def base(tmp_path_factory):
 
 @pytest.fixture
 def work(base, tmp_path, monkeypatch):
-    for name in os.listdir(base):
-        src = base / name
-        (shutil.copytree if src.is_dir() else shutil.copy)(src, tmp_path / name)
+    copy_contents(base, tmp_path)
     monkeypatch.chdir(tmp_path)
     return tmp_path
-
-
-def one_error(capsys, argv, *fragments):
-    capsys.readouterr()
-    code = main([str(a) for a in argv])
-    err = capsys.readouterr().err
-    lines = [line for line in err.strip().splitlines() if line.startswith("dihedra: error:")]
-    assert code == 2 and len(lines) == 1 and "Traceback" not in err, err
-    for f in fragments:
-        assert f in lines[0], lines[0]
-
-
-def leftovers(folder):
-    return [n for n in os.listdir(folder) if ".partial-" in n or ".old-" in n]
 
 
 def failing(code, text):
@@ -86,7 +71,7 @@ def test_a_full_disk_while_tracking(work, capsys, monkeypatch, where, workers):
               "blocks.npz": (tracking, "save_npz")}[where]
     monkeypatch.setattr(*target, failing(errno.ENOSPC, "No space left on device"))
     before = snapshot(work / "res")
-    one_error(capsys, ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "300",
+    refused(capsys, ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "300",
                        "--out", "res", "--overwrite", "--workers", str(workers), "--backend",
                        "multiprocessing" if workers > 1 else "serial"], "No space left on device",
               "free some space")
@@ -101,7 +86,7 @@ def test_an_analysis_that_cannot_write_leaves_the_folder_as_it_was(work, capsys,
 
     monkeypatch.setattr(tables, "write_csv", failing(code, text))
     before = snapshot(work / "res")
-    one_error(capsys, ["profile", "res", "--bootstrap", "20"], text, hint)
+    refused(capsys, ["profile", "res", "--bootstrap", "20"], text, hint)
     assert snapshot(work / "res") == before
     assert not [n for n in os.listdir(work / "res") if n.endswith(".dihedra-tmp")]
 
@@ -110,7 +95,7 @@ def test_a_folder_that_cannot_be_made(work, capsys, monkeypatch):
     from dihedra.io import outputs
 
     monkeypatch.setattr(outputs.tempfile, "mkdtemp", failing(errno.EACCES, "Permission denied"))
-    one_error(capsys, ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "10", "--out",
+    refused(capsys, ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "10", "--out",
                        "new"], "Permission denied")
     assert not os.path.exists(work / "new")
 

@@ -16,7 +16,8 @@ import pytest
 from dihedra import example_path, load_results, track
 from dihedra.cli import main
 from dihedra.errors import DihedraError, InputFileError
-from robustness_files import cut_mid_frame, damaged_xtc_variants, nan_overflow_xtc, short_xtc
+from robustness_files import (copy_contents, cut_mid_frame, damaged_xtc_variants, leftovers, nan_overflow_xtc, refused,
+                              short_xtc)
 from test_safe_outputs import snapshot
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -44,28 +45,13 @@ def base(tmp_path_factory):
 @pytest.fixture
 def work(base, tmp_path, monkeypatch):
     """A fresh copy of the inputs and the results folder, as the current folder."""
-    for name in os.listdir(base):
-        src = base / name
-        (shutil.copytree if src.is_dir() else shutil.copy)(src, tmp_path / name)
+    copy_contents(base, tmp_path)
     monkeypatch.chdir(tmp_path)
     return tmp_path
 
 
-def refused(capsys, argv, *fragments):
-    """Run ``argv``; it must end with exactly one error line (exit 2), no traceback."""
-    capsys.readouterr()
-    code = main([str(a) for a in argv])
-    err = capsys.readouterr().err
-    lines = [line for line in err.strip().splitlines() if line.startswith("dihedra: error:")]
-    assert code == 2 and len(lines) == 1, err
-    assert "Traceback" not in err and "Exception ignored" not in err, err
-    for f in fragments:
-        assert f in lines[0], lines[0]
-    return lines[0]
-
-
 def no_staging(folder):
-    return not [n for n in os.listdir(folder) if ".partial-" in n or ".old-" in n]
+    return not leftovers(folder)
 
 
 TRACK = ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--out", "out"]
