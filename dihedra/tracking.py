@@ -25,9 +25,8 @@ import tempfile
 import time
 
 import numpy as np
-import pandas as pd
 
-from .errors import DihedraError, InputFileError, OutputWriteError
+from .errors import DihedraError, OutputWriteError
 from .io.blocks import narrowed_type, save_npz
 from .io.outputs import StagedFolder
 from .io.resultsdir import write_results
@@ -46,78 +45,7 @@ from .trajectory.inputs import FileHashes, check_readable, load_universe, trunca
 from .trajectory.result import BlockParts, NpzMember, bound_heap, release_memory
 from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
 from .trajectory.timeblocks import pass_time_blocks
-
-
-def load_weights(spec, n_frames_per_replica):
-    """Per-frame weights from ``FILE`` or ``FILE:COLUMN`` (CSV).
-
-    The column is ``COLUMN``, else the one named ``weight``, else the last column. Rows are matched
-    to analysed frames by the columns ``replica`` and ``frame`` when present, else in order (all
-    replicas one after another).
-    """
-    path, _, column = str(spec).partition(":") if not os.path.exists(str(spec)) else (str(spec), "", "")
-    check_readable(path, "weights file")
-    try:
-        table = pd.read_csv(path)
-    except Exception as exc:  # noqa: BLE001
-        raise InputFileError(f"weights file {path} is not a readable CSV table: {exc}.") from None
-    if column:
-        if column not in table.columns:
-            raise InputFileError(f"weights file {path} has no column {column!r}; its columns are "
-                                 f"{', '.join(map(str, table.columns))}.")
-    else:
-        column = "weight" if "weight" in table.columns else table.columns[-1]
-    w = pd.to_numeric(table[column], errors="coerce").to_numpy(dtype=float)
-    if np.any(~np.isfinite(w)) or np.any(w < 0):
-        bad = int(np.flatnonzero(~np.isfinite(w) | (w < 0))[0])
-        raise InputFileError(f"weights file {path}, column {column!r}: row {bad + 1} is not a finite "
-                             f"non-negative number ({table[column].iloc[bad]!r}).")
-    return w, column, table
-
-
-def _weights_per_replica(spec, frames_per_replica):
-    w, column, table = load_weights(spec, frames_per_replica)
-    total = sum(len(f) for f in frames_per_replica)
-    if "frame" in table.columns:
-        rep = _index_column(table, "replica", spec) if "replica" in table.columns else np.zeros(len(table), int)
-        frame = _index_column(table, "frame", spec)
-        dup = pd.DataFrame({"replica": rep, "frame": frame}).duplicated(keep=False).to_numpy()
-        if dup.any():
-            k0 = int(np.flatnonzero(dup)[0])
-            same = np.flatnonzero((rep == rep[k0]) & (frame == frame[k0]))
-            raise InputFileError(f"weights file {spec} gives replica {rep[k0]}, frame {frame[k0]} {len(same)} times "
-                                 f"(rows {', '.join(str(k + 1) for k in same[:5])}); give one weight per frame.")
-        lookup = {(int(r), int(f)): x for r, f, x in zip(rep, frame, w)}
-        out = []
-        for r, frames in enumerate(frames_per_replica):
-            missing = [int(f) for f in frames if (r, int(f)) not in lookup]
-            if missing:
-                raise InputFileError(f"weights file {spec} has no weight for replica {r}, frame {missing[0]} "
-                                     f"({len(missing)} analysed frames are missing).")
-            out.append(np.array([lookup[(r, int(f))] for f in frames]))
-    else:
-        if len(w) != total:
-            raise InputFileError(f"weights file {spec} has {len(w)} rows but {total} frames are analysed; "
-                                 "give one weight per analysed frame (replicas one after another), or "
-                                 "add 'replica' and 'frame' columns.")
-        out, k = [], 0
-        for frames in frames_per_replica:
-            out.append(w[k:k + len(frames)])
-            k += len(frames)
-    if sum(float(x.sum()) for x in out) <= 0:
-        raise InputFileError(f"weights file {spec}: all weights of the analysed frames are zero.")
-    return out, column
-
-
-def _index_column(table, name, spec):
-    """A 'replica' or 'frame' column of a weights file as integers (every cell a whole number)."""
-    values = pd.to_numeric(table[name], errors="coerce").to_numpy(dtype=float)
-    bad = ~np.isfinite(values) | (values != np.round(values)) | (values < 0)
-    if bad.any():
-        k = int(np.flatnonzero(bad)[0])
-        raise InputFileError(f"weights file {spec}, column {name!r}, row {k + 1}: {table[name].iloc[k]!r} is not a "
-                             "whole number >= 0.")
-    return values.astype(np.int64)
+from .trajectory.weights import weights_per_replica
 
 
 def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None):
@@ -215,7 +143,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
     keep_angles : bool
         Also write the angle time series (``angles.parquet``).
     weights : str, optional
-        ``FILE[:COLUMN]`` of per-frame weights (see :func:`load_weights`).
+        ``FILE[:COLUMN]`` of per-frame weights (see :func:`~dihedra.trajectory.weights.load_weights`).
     out : str, optional
         Results folder to write; without it, results stay in Python (time series in a temporary
         folder that lives as long as the result).
@@ -282,7 +210,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
         scheme = choice.provisional() if choice.needs_data else choice.resolve()
         frames = [_frame_indices(u, start, stop, step, f"trajectory {t}")
                   for u, t in zip(universes, trajectories)]
-        weight_arrays, weight_column = (_weights_per_replica(weights, frames) if weights is not None
+        weight_arrays, weight_column = (weights_per_replica(weights, frames) if weights is not None
                                         else ([None] * len(universes), None))
         # --discard: the start dropped where the frames are chosen, so every table starts there
         drop, discard_record = plan_discard(discard, [(u, f, w, dt_ps) for u, f, w in

@@ -158,5 +158,5 @@ def _check_step(name, a):
         from ..analysis.windows import read_windows
         read_windows(a["windows"])
     if name == "track" and a.get("weights") is not None:
-        from ..tracking import load_weights
+        from ..trajectory.weights import load_weights
         load_weights(a["weights"], None)

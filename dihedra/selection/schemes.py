@@ -53,6 +53,7 @@ import numpy as np
 
 from ..errors import SchemeError
 from ..units import wrap_deg
+from .arcs import checked_arcs
 
 #: State code of an undefined torsion (collinear atoms, NaN coordinates).
 UNDEFINED = -1
@@ -531,40 +532,7 @@ def scheme_from_mapping(data, where="scheme"):
     if unknown:
         raise SchemeError(f"{where}: unknown key(s) {', '.join(unknown)}; valid keys are name, state.")
     states = data.get("state")
-    if not states:
-        raise SchemeError(f"{where}: no [[state]] tables; each needs label, from_deg and to_deg.")
-    arcs = []
-    for k, st in enumerate(states, start=1):
-        missing = [key for key in ("label", "from_deg", "to_deg") if key not in st]
-        extra = sorted(set(st) - {"label", "from_deg", "to_deg"})
-        if missing or extra:
-            detail = (f"missing {', '.join(missing)}" if missing else "") + \
-                     ("; " if missing and extra else "") + \
-                     (f"unknown {', '.join(extra)}" if extra else "")
-            raise SchemeError(f"{where}: state {k}: {detail}; each state needs label, from_deg, to_deg.")
-        try:
-            lo, hi = float(st["from_deg"]), float(st["to_deg"])
-        except (TypeError, ValueError):
-            raise SchemeError(f"{where}: state {st['label']!r}: from_deg and to_deg must be numbers.") from None
-        if not (-360 <= lo <= 360 and -360 <= hi <= 360):
-            raise SchemeError(f"{where}: state {st['label']!r}: angles must lie within -360..360 degrees.")
-        lo, hi = float(wrap_deg(lo)), float(wrap_deg(hi))
-        length = (hi - lo) % 360.0
-        if length == 0:
-            raise SchemeError(f"{where}: state {st['label']!r} has zero width ({lo} to {hi} deg); "
-                              "a state covering the whole circle is not a scheme.")
-        arcs.append((str(st["label"]), lo, hi, length))
-    arcs.sort(key=lambda r: r[1])
-    total = sum(r[3] for r in arcs)
-    for (la, _, hi_a, _), (lb, lo_b, _, _) in zip(arcs, arcs[1:] + arcs[:1]):
-        if abs(((hi_a - lo_b + 180.0) % 360.0) - 180.0) > 1e-9:
-            gap = (lo_b - hi_a) % 360.0
-            if abs(total - 360.0) < 1e-9 or gap < 180 and total < 360:
-                raise SchemeError(f"{where}: the states do not cover the circle: a gap from {hi_a:g} to "
-                                  f"{lo_b:g} deg (after {la!r}, before {lb!r}).")
-            raise SchemeError(f"{where}: states {la!r} and {lb!r} overlap between {lo_b:g} and {hi_a:g} deg.")
-    if abs(total - 360.0) > 1e-9:
-        raise SchemeError(f"{where}: the states cover {total:g} degrees instead of 360; they overlap.")
+    arcs = checked_arcs(states, where)
     name = str(data.get("name", "custom"))
     order = list(dict.fromkeys(str(st["label"]) for st in states))  # labels in file order
     return _from_arcs(name, [(label, lo, False) for label, lo, _, _ in arcs], labels=order)

@@ -19,6 +19,18 @@ from ..errors import OutputWriteError
 from .overlap import Both
 from .result import SeriesChunk
 
+#: Default size of a chunk (and of a Parquet row group) of the time series, in bytes of values.
+CHUNK_BYTES = 64 << 20
+
+
+def default_chunk_frames(n_torsions, keep_angles, threads=1):
+    """Frames per chunk (and Parquet row group): about ``CHUNK_BYTES`` of values, 64 to 100,000;
+    half of that with a second thread, where a full chunk is written while the next fills a
+    second buffer: the two hold what one chunk would, so the peak does not rise once a run
+    outgrows its first chunk."""
+    per_frame = max(1, int(n_torsions)) * (1 + 4 * bool(keep_angles))
+    return int(max(64, min(100_000, CHUNK_BYTES // per_frame))) // (2 if threads > 1 else 1)
+
 
 @contextlib.contextmanager
 def writing():

@@ -91,12 +91,9 @@ from .cores import CoreBits
 from .frame_work import FrameWork
 from .histograms import MIXED, HistogramBlocks, bin_state_tables, merge_hist_parts, sparse_piece
 from .overlap import Batch, Overlap
-from .series_output import SeriesOutput
+from .series_output import SeriesOutput, default_chunk_frames
 from .timeblocks import TimeBlockCounter
 from .trajread import frame_source
-
-#: Default size of a chunk (and of a Parquet row group) of the time series, in bytes of values.
-CHUNK_BYTES = 64 << 20
 
 #: With a second thread, coordinates are copied into batches of about this many bytes.
 BATCH_BYTES = 4 << 20
@@ -592,14 +589,3 @@ class TorsionPass(AnalysisBase):
         self._spare = None
         if self._output is not None:
             self._output.close()
-
-
-def default_chunk_frames(n_torsions, keep_angles, threads=1):
-    """Frames per chunk (and Parquet row group): about ``CHUNK_BYTES`` of values, 64 to 100,000;
-    half of that with a second thread, where a full chunk is written while the next fills a
-    second buffer: the two hold what one chunk would, so the peak does not rise once a run
-    outgrows its first chunk."""
-    per_frame = max(1, int(n_torsions)) * (1 + 4 * bool(keep_angles))
-    return int(max(64, min(100_000, CHUNK_BYTES // per_frame))) // (2 if threads > 1 else 1)
-
-
