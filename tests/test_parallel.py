@@ -8,6 +8,7 @@ import MDAnalysis as mda
 import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
+from series_reading import read_wide
 import pytest
 
 from conftest import place_fourth, write_system
@@ -111,9 +112,9 @@ def assert_same(a, b):
 
 def test_time_series_start_new_files(replicas, serial, monkeypatch):
     # Arrow's writer keeps the metadata of every row group until its file closes, so a long run
-    # starts a new file every COLUMN_CHUNKS_PER_FILE column chunks; here every row group (the
-    # serial pass and every worker write through TimeSeriesWriter)
-    monkeypatch.setattr(series_module, "COLUMN_CHUNKS_PER_FILE", 1)
+    # starts a new file every ROW_GROUPS_PER_FILE row groups; here every row group (the serial
+    # pass and every worker write through TimeSeriesWriter)
+    monkeypatch.setattr(series_module, "ROW_GROUPS_PER_FILE", 1)
     top, trajs, _ = replicas
     split = track(top, trajs, **KW)
     files = series_files(split.series.path("states"))
@@ -468,13 +469,13 @@ def test_torsion_work_shared_by_the_reading_thread_gives_the_same_results(replic
 
 
 def test_core_bits_written_are_the_core_rule_of_the_angles(replicas, serial):
-    # cores.parquet (bits packed frame by frame into chunks of 23 frames, not a multiple of 8)
-    # holds exactly the core rule of the scheme (StateScheme.core_codes, Buchete & Hummer 2008)
-    # applied to the angles the same run wrote
+    # cores.parquet (bits packed along the torsions, frame by frame), read as the documentation
+    # says, holds exactly the core rule of the scheme
+    # (StateScheme.core_codes, Buchete & Hummer 2008) applied to the angles the same run wrote
     from dihedra.trajectory.cores import CORE_MARGIN_DEG
 
     angles = serial.angles()
-    cores = pq.read_table(serial.series.path("cores")).to_pandas()
+    cores = read_wide(serial.series.folder, "cores")
     labels = [c for c in angles.columns if c not in ("replica", "frame", "time_ps", "weight")]
     scheme = get_scheme("klyne-prelog")
     expected = np.stack([scheme.core_codes(angles[c].to_numpy(), CORE_MARGIN_DEG) >= 0 for c in labels], axis=1)

@@ -13,6 +13,7 @@ from matplotlib.collections import PolyCollection, QuadMesh
 from matplotlib.colors import to_hex, to_rgb
 from matplotlib.figure import Figure
 from matplotlib.patches import Circle, FancyArrowPatch, Rectangle
+from series_reading import read_wide
 
 matplotlib.use("Agg")
 
@@ -105,7 +106,7 @@ def test_sector_spans_cover_the_circle_once():
 def test_angle_series_downsamples_in_chunks_and_draws_bands(full_folder):
     labels = ["BUT1:C1-C2-C3-C4", "BUT2:C1-C2-C3-C4"]
     series = figures.read_angle_series(full_folder, labels, max_points=100, batch_frames=37)
-    full = pd.read_parquet(os.path.join(full_folder, "angles.parquet"), columns=labels)
+    full = read_wide(full_folder, "angles", columns=labels)
     stride = int(np.ceil(len(full) / 100))
     assert series.stride == stride and series.n_frames == len(full)
     # every stride-th frame, exactly (pandas on the whole table is the reference)
@@ -127,7 +128,7 @@ def test_angle_series_downsamples_in_chunks_and_draws_bands(full_folder):
 
 def test_state_raster_is_the_most_frequent_state_per_column(full_folder):
     scheme = load_results(full_folder).scheme
-    states = pd.read_parquet(os.path.join(full_folder, "states.parquet"))
+    states = read_wide(full_folder, "states")
     labels = [c for c in states.columns if c.startswith("BUT")]
     # one column per frame: the raster is the state table itself
     exact = figures.read_state_raster(full_folder, max_columns=10_000, batch_frames=50)
@@ -157,7 +158,8 @@ def test_state_raster_is_the_most_frequent_state_per_column(full_folder):
 
 
 def test_state_raster_thins_thousands_of_torsions(tmp_path):
-    # a synthetic states.parquet of 2000 torsions (written like the pass does), read in chunks
+    # a synthetic states.parquet of 2000 torsions, read in chunks (in the layout of earlier
+    # versions, one column per torsion, which the reader still reads)
     import json
 
     import pyarrow as pa

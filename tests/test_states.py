@@ -10,6 +10,7 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
+from series_reading import read_wide
 
 import dihedra
 from dihedra.cli import main
@@ -46,7 +47,7 @@ def test_results_equal_the_tables_that_track_writes(serial, folder):
         got = getattr(serial.results, name)
         assert isinstance(got, pd.DataFrame)
         pd.testing.assert_frame_equal(got.reset_index(drop=True), written, check_dtype=False, obj=name)
-    written = pd.read_parquet(os.path.join(folder, "states.parquet"))
+    written = read_wide(folder, "states")
     pd.testing.assert_frame_equal(serial.results.states, written, obj="states")
     assert len(serial.results.torsions) == len(pd.read_csv(os.path.join(folder, "torsions.csv")))
 

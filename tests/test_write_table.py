@@ -90,16 +90,3 @@ def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
     with np.load(tmp_path / "b.npz") as npz:
         assert npz["histograms"].dtype == np.int32 and npz["other"].dtype == np.float64
         np.testing.assert_array_equal(npz["histograms"], neg)
-
-
-@pytest.mark.parametrize("shape", [(7, 3), (300, 1500), (64, 2049)])
-def test_frames_transposed_into_the_chunk(shape):
-    """Frames transposed into a chunk (a column slice of a wider buffer) by the compiled tile loop
-    equal NumPy's transpose, and nothing around the slice changes (reference: NumPy)."""
-    from dihedra.numerics.angles import compiled_kernels
-
-    block = np.random.default_rng(2).integers(-1, 3, size=shape).astype(np.int8)
-    chunk = np.full((shape[1], shape[0] + 9), 7, dtype=np.int8)
-    compiled_kernels().transpose_into(block, chunk[:, 4:4 + shape[0]])
-    np.testing.assert_array_equal(chunk[:, 4:4 + shape[0]], block.T)
-    assert (chunk[:, :4] == 7).all() and (chunk[:, 4 + shape[0]:] == 7).all()

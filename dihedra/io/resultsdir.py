@@ -16,15 +16,16 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
 ``conformers_by_type.csv``
     group_type, state -> conformer, population, population_err, n_groups
 ``states.parquet/``
-    replica, frame, time_ps, [weight], then one int8 column per torsion (codes in summary.json,
-    -1 = undefined); a folder of Parquet files (part-RRRR-FFFFFFFFFFFF.parquet: replica, first
-    frame) in frame order, row groups of a few MB
+    one row per frame: replica, frame, time_ps, [weight], state_codes (a fixed-size binary column:
+    the int8 code of every torsion in the order of torsions.csv; codes in summary.json, -1 =
+    undefined); a folder of Parquet files (part-RRRR-FFFFFFFFFFFF.parquet: replica, first frame)
+    in frame order (:mod:`dihedra.io.series`)
 ``cores.parquet/``
-    the same layout with one boolean column per torsion: whether the frame's angle lies in the
+    the same layout with core_bits, one bit per torsion: whether the frame's angle lies in the
     core of its state (its sector shrunk by 20 degrees on both sides), for core-set kinetics
     without the angles (:mod:`dihedra.trajectory.cores`)
 ``angles.parquet/``
-    the same layout with float32 degrees (only with --keep-angles)
+    the same layout with angles_deg, float32 degrees (only with --keep-angles)
 ``blocks.npz``
     block sums of the pass: state counts and fine angle histograms per block, with block frames,
     weights and replicas (input of profiles), and the conformer counts (dense per group width,

@@ -1,17 +1,35 @@
 """The time series of a results folder: ``states.parquet/``, ``cores.parquet/`` and ``angles.parquet/``.
 
 Each is a folder of Parquet files (a Parquet dataset that pandas, Arrow, polars or DuckDB read as
-one table): ``part-RRRR-FFFFFFFFFFFF.parquet``, named by replica and first frame, columns replica,
-frame, time_ps, [weight], then one column per torsion (int8 state codes, -1 undefined; booleans,
-in the core of the state or not; float32 degrees). :class:`TimeSeriesWriter` writes them during the trajectory pass (the pass receives a
+one table): ``part-RRRR-FFFFFFFFFFFF.parquet``, named by replica and first frame, one row per
+frame: columns replica, frame, time_ps, [weight], then one fixed-size binary column that holds the
+frame's values of every torsion, in the order of ``torsions.csv`` (the labels are also in the
+schema's metadata, key ``dihedra.torsions``):
+
+* ``states.parquet``: ``state_codes``, one byte per torsion, the int8 state code (-1 undefined);
+* ``cores.parquet``: ``core_bits``, one bit per torsion (bit ``t % 8`` of byte ``t // 8``): whether
+  the angle lies in the core of its state;
+* ``angles.parquet``: ``angles_deg``, four bytes per torsion, float32 degrees (little-endian; NaN
+  undefined).
+
+With NumPy, a table ``t`` read by pandas gives the frames x torsions array
+``np.frombuffer(b"".join(t["state_codes"]), np.int8).reshape(len(t), -1)``; :meth:`TrackResult.states()
+<dihedra.trajectory.result.TrackResult.states>` gives the table with one column per torsion.
+A frame's values are stored as they are computed, without a transpose into one column per
+torsion: Parquet's cost per column and row group (about 10 microseconds to write, more to read)
+made a 15,000-column file cost more than reading the trajectory, and row groups had to be large.
+
+:class:`TimeSeriesWriter` writes them during the trajectory pass (the pass receives a
 :class:`ParquetSeriesFactory`, so that every worker of a parallel run writes the files of its own
 frames); :class:`ParquetSeries` reads them back in :class:`~dihedra.trajectory.result.SeriesChunk`
-pieces, the one chunked reader of dihedra.
+pieces, the one chunked reader of dihedra (also of the folders of earlier versions, which held one
+column per torsion).
 """
 
 from __future__ import annotations
 
 import glob
+import json
 import os
 
 import numpy as np
@@ -20,78 +38,71 @@ import pyarrow.parquet as pq
 from ..errors import InputFileError
 from ..trajectory.result import INDEX_COLUMNS, SeriesChunk, split_by_replica
 
-# How the time series are encoded: plain values (a state code's dictionary and run-length
-# encoding would make the file 2.5 times smaller but cost about twice the time per value), min/max
-# statistics only for the index columns, and every column required (never null; undefined is -1
-# or NaN). Measured on 15,000 int8 columns x 4,473 frames (one row group): 0.3-0.4 s instead of
-# 0.7-1.2 s with Arrow's defaults; the benchmark's 4,000 frames: 16 MB instead of 6.6 MB (snappy).
-SERIES_OPTIONS = dict(use_dictionary=False, compression="snappy")
+#: Per kind of time series: the value column and how a frame's values of n torsions are stored.
+VALUE_COLUMNS = {"states": "state_codes", "cores": "core_bits", "angles": "angles_deg"}
 
-#: Column chunks (columns x row groups) per file of a time series (see :class:`TimeSeriesWriter`).
-COLUMN_CHUNKS_PER_FILE = 40_000
+#: Schema metadata key of the torsion labels (a JSON list, in the order of the values).
+LABELS_KEY = b"dihedra.torsions"
+
+# Encoding: plain values, zstd (level 3) for the state codes and core bits (consecutive frames
+# repeat most of their bytes; zstd finds the previous frame 15 to 100 kB back, snappy and LZ4 do
+# not beyond 64 kB: about 0.02 bytes per torsion-frame at 2 % transitions per frame, 0.6 ns per
+# value to write), snappy for angles (float32 noise does not compress; snappy passes it through
+# fastest); statistics only for the index columns.
+COMPRESSION = {"states": ("zstd", 3), "cores": ("zstd", 3), "angles": ("snappy", None)}
+
+#: Row groups per file of a time series (see :class:`TimeSeriesWriter`).
+ROW_GROUPS_PER_FILE = 128
 
 
-def _columns(pa, values, n):
-    """One Arrow array per row of ``values`` (n_torsions, n_frames; booleans may come as packed
-    bits, ``np.packbits(..., axis=1, bitorder="little")``: uint8), without copying when the rows
-    are contiguous (a view of the pass's chunk buffer): 15,000 copied arrays cost about 50 MB
-    and 0.03 s more. The arrays keep ``values`` alive; its memory must not change until the
-    table is written (see :meth:`TimeSeriesWriter.add`)."""
-    values = np.asarray(values)
-    if values.dtype == np.bool_:   # Arrow stores booleans as bits
-        values = np.packbits(values, axis=1, bitorder="little")
-    n_rows = len(values)
-    if values.dtype == np.uint8 and n_rows and n:   # packed bits
-        if values.strides[1] != 1:
-            values = np.ascontiguousarray(values)
-        stride = values.strides[0]
-        buf = pa.foreign_buffer(values.ctypes.data, (n_rows - 1) * stride + (n + 7) // 8, base=values)
-        return [pa.Array.from_buffers(pa.bool_(), n, [None, buf], offset=r * stride * 8) for r in range(n_rows)]
-    if values.dtype == np.uint8:   # packed bits of no frames (or no torsions): empty boolean columns
-        values = np.zeros((n_rows, n), dtype=np.bool_)
-    n = values.shape[1]
-    item = values.dtype.itemsize
-    if n_rows == 0 or n == 0 or values.strides[1] != item or values.strides[0] % item:
-        return [pa.array(np.ascontiguousarray(row)) for row in values]
-    stride = values.strides[0] // item
-    span = ((n_rows - 1) * stride + n) * item
-    buf = pa.foreign_buffer(values.ctypes.data, span, base=values)
-    kind = pa.from_numpy_dtype(values.dtype)
-    return [pa.Array.from_buffers(kind, n, [None, buf], offset=r * stride) for r in range(n_rows)]
+def value_bytes(kind, n_torsions):
+    """Bytes of one frame's values of ``n_torsions`` torsions in the ``kind`` series."""
+    n = int(n_torsions)
+    return {"states": n, "cores": (n + 7) // 8, "angles": 4 * n}[kind]
+
+
+def _binary_column(pa, values, n_rows, width):
+    """One fixed-size binary Arrow array of ``n_rows`` rows of ``width`` bytes: the rows of
+    ``values`` (frames, ...), without a copy when they are contiguous. The array keeps ``values``
+    alive; its memory must not change until the table is written (see :meth:`TimeSeriesWriter.add`)."""
+    raw = np.ascontiguousarray(values).reshape(n_rows, -1).view(np.uint8)
+    if raw.shape[1] != width:   # (no torsions: one zero byte per frame, Parquet needs a width)
+        raw = np.zeros((n_rows, width), dtype=np.uint8)
+    return pa.FixedSizeBinaryArray.from_buffers(pa.binary(width), n_rows, [None, pa.py_buffer(raw)])
 
 
 class TimeSeriesWriter:
-    """``states.parquet`` (and ``angles.parquet``) written chunk by chunk, in replica and frame
-    order, regrouped into row groups of ``row_group_frames`` frames that never span two replicas.
+    """``states.parquet`` (``cores.parquet``, ``angles.parquet``) written chunk by chunk, in replica
+    and frame order, regrouped into row groups of ``row_group_frames`` frames that never span two
+    replicas.
 
     Each time series is a folder of Parquet files (a Parquet dataset, read as one table by
     pandas, Arrow, polars or DuckDB): ``part-RRRR-FFFFFFFFFFFF.parquet``, named by the replica and
     the trajectory frame of its first row, so that the order of the names is the order of the
     frames. Several writers (the workers of a parallel run, each over its own frames) can write
-    into the same folder. A file holds a few row groups only: Arrow's writer keeps the metadata of
-    every row group it has written until the file is closed (about 0.8 kB per column and row
-    group, 12 MB per row group of 15,000 torsions), so one file for a long run would grow without
-    bound; starting a new file every :data:`COLUMN_CHUNKS_PER_FILE` column chunks keeps it at a
-    few tens of MB.
+    into the same folder. A file holds at most :data:`ROW_GROUPS_PER_FILE` row groups (Arrow's
+    writer keeps the metadata of every row group of a file until it is closed), then the next
+    row group opens new files.
 
     Parameters
     ----------
     folder : str
         Where the time series go.
     labels : list of str
-        Torsion labels (one column each after replica, frame, time_ps and, if ``weighted``, weight).
+        Torsion labels, in the order of the values of a frame.
     weighted : bool
     row_group_frames : int
     kinds : tuple of str
         Some of ``"states"``, ``"cores"`` and ``"angles"``.
 
-    :meth:`add` takes the index columns of a chunk and, per kind, its values as an array of shape
-    (n_torsions, n_frames) (int8 state codes, float32 degrees, booleans or their bits packed
-    along the frames as uint8, ``np.packbits(..., axis=1, bitorder="little")``), without a copy: frames that do
-    not fill a row group wait in the writer as views of ``values`` until the next :meth:`add` or
-    :meth:`close`, so the caller must not write into them before (the trajectory pass hands
-    over full row groups, and a last, partial one that nothing writes into after). Call :meth:`close` at the end
-    (also after an error: the files are then incomplete, and the caller removes them).
+    :meth:`add` takes the index columns of a chunk and, per kind, its values as an array of one
+    row per frame: (n_frames, n_torsions) int8 state codes or float32 degrees, or (n_frames,
+    ceil(n_torsions / 8)) uint8 core bits packed along the torsions
+    (``np.packbits(..., axis=1, bitorder="little")``), without a copy: frames that do not fill a
+    row group wait in the writer as views of ``values`` until the next :meth:`add` or
+    :meth:`close`, so the caller must not write into them before (the trajectory pass hands over
+    full row groups, and a last, partial one that nothing writes into after). Call :meth:`close`
+    at the end (also after an error: the files are then incomplete, and the caller removes them).
     """
 
     def __init__(self, folder, labels, weighted, row_group_frames, kinds=("states",)):
@@ -100,34 +111,33 @@ class TimeSeriesWriter:
         self._pa = pa
         self.weighted = bool(weighted)
         self.target = max(1, int(row_group_frames))
-        self._writers, self._schemas, self._dirs = {}, {}, {}
+        self._writers, self._schemas, self._dirs, self._widths = {}, {}, {}, {}
+        meta = {LABELS_KEY: json.dumps(list(labels)).encode()}
         for kind in kinds:
-            value_type = {"states": pa.int8(), "angles": pa.float32(), "cores": pa.bool_()}[kind]
+            width = max(1, value_bytes(kind, len(labels)))
+            self._widths[kind] = width
             fields = [pa.field("replica", pa.int16(), nullable=False),
                       pa.field("frame", pa.int64(), nullable=False),
                       pa.field("time_ps", pa.float64(), nullable=False)]
             if self.weighted:
                 fields.append(pa.field("weight", pa.float64(), nullable=False))
             self._index_names = [f.name for f in fields]
-            schema = pa.schema(fields + [pa.field(label, value_type, nullable=False) for label in labels])
-            self._schemas[kind] = schema
+            fields.append(pa.field(VALUE_COLUMNS[kind], pa.binary(width), nullable=False))
+            self._schemas[kind] = pa.schema(fields, metadata=meta)
             self._dirs[kind] = os.path.join(folder, f"{kind}.parquet")
             try:   # (never makedirs: a worker of a stopped run must not make its removed folder again)
                 os.mkdir(self._dirs[kind])
             except FileExistsError:
                 pass
-        self._groups_per_file = max(1, COLUMN_CHUNKS_PER_FILE // len(schema))
         self._groups_in_file = 0
         self._pending = {kind: [] for kind in kinds}
         self._n_pending = 0
         self._replica = None
         self._used = False
-        self._pool = None
-        self._closing = False
 
     def add(self, replica, index, values):
         """Append one chunk: ``index`` has ``frame``, ``time_ps`` (and ``weight``); ``values`` maps
-        each kind to an (n_torsions, n_frames) array."""
+        each kind to an array of one row per frame."""
         pa = self._pa
         if replica != self._replica and self._n_pending:
             self._write_pending()
@@ -138,14 +148,14 @@ class TimeSeriesWriter:
         if self.weighted:
             head.append(pa.array(np.asarray(index["weight"])))
         for kind, pending in self._pending.items():
-            table = pa.Table.from_arrays(head + _columns(pa, values[kind], n), schema=self._schemas[kind])
-            pending.append(table)
+            column = _binary_column(pa, values[kind], n, self._widths[kind])
+            pending.append(pa.Table.from_arrays(head + [column], schema=self._schemas[kind]))
         self._n_pending += n
         while self._n_pending >= self.target:
-            wholes = {kind: pa.concat_tables(pending) for kind, pending in self._pending.items()}
-            self._each_kind(lambda kind: self._write_group(kind, wholes[kind].slice(0, self.target)))
             rest = 0
-            for kind, whole in wholes.items():
+            for kind, pending in self._pending.items():
+                whole = pa.concat_tables(pending)
+                self._write_group(kind, whole.slice(0, self.target))
                 tail = whole.slice(self.target)
                 rest = len(tail)
                 self._pending[kind] = [tail] if rest else []
@@ -153,40 +163,22 @@ class TimeSeriesWriter:
             self._next_group()
 
     def _write_pending(self):
-        tables = {kind: self._pa.concat_tables(pending) for kind, pending in self._pending.items() if pending}
-        self._each_kind(lambda kind: self._write_group(kind, tables[kind]), list(tables))
+        for kind, pending in self._pending.items():
+            if pending:
+                self._write_group(kind, self._pa.concat_tables(pending))
         self._pending = {kind: [] for kind in self._pending}
         self._n_pending = 0
         self._next_group()
-
-    def _each_kind(self, work, kinds=None):
-        """``work(kind)`` for every kind; in :meth:`close`, the kinds at the same time (Arrow
-        encodes and writes without Python's lock: the last row groups of states and cores, for
-        which the run waits, of 15,000 columns each in about half the time on two cores; during
-        the pass one after the other, in the pass's writing thread: each writer of 15,000
-        columns needs about 60 MB while it writes)."""
-        kinds = list(self._pending) if kinds is None else kinds
-        if len(kinds) < 2 or not self._closing:
-            for kind in kinds:
-                work(kind)
-            return
-        if self._pool is None:
-            from concurrent.futures import ThreadPoolExecutor
-            self._pool = ThreadPoolExecutor(2, thread_name_prefix="dihedra-parquet")
-        others = [self._pool.submit(work, kind) for kind in kinds[1:]]
-        try:
-            work(kinds[0])
-        finally:
-            for f in others:
-                f.result()
 
     def _write_group(self, kind, table):
         writer = self._writers.get(kind)
         if writer is None:
             first = int(table.column("frame")[0].as_py()) if len(table) else 0
             path = os.path.join(self._dirs[kind], f"part-{self._replica or 0:04d}-{first:012d}.parquet")
-            writer = self._writers[kind] = pq.ParquetWriter(path, self._schemas[kind], **SERIES_OPTIONS,
-                                                            write_statistics=self._index_names)
+            codec, level = COMPRESSION[kind]
+            writer = self._writers[kind] = pq.ParquetWriter(
+                path, self._schemas[kind], use_dictionary=False, compression=codec, compression_level=level,
+                write_statistics=self._index_names)
         writer.write_table(table, row_group_size=len(table))
         self._used = True
 
@@ -194,17 +186,17 @@ class TimeSeriesWriter:
         """Count a row group; after the last one of a file, close the files (the next row group
         opens new ones)."""
         self._groups_in_file += 1
-        if self._groups_in_file >= self._groups_per_file:
+        if self._groups_in_file >= ROW_GROUPS_PER_FILE:
             self._close_files()
 
     def _close_files(self):
         writers, self._writers = self._writers, {}
-        self._each_kind(lambda kind: writers[kind].close(), list(writers))
+        for writer in writers.values():
+            writer.close()
         self._groups_in_file = 0
 
     def close(self):
         """Write what is pending and close the files (Arrow's pool then returns its free memory)."""
-        self._closing = True
         try:
             if self._n_pending:
                 self._write_pending()
@@ -216,9 +208,6 @@ class TimeSeriesWriter:
                 self._close_files()
             finally:
                 self._pending = None
-                if self._pool is not None:
-                    self._pool.shutdown()
-                    self._pool = None
                 self._pa.default_memory_pool().release_unused()
 
 
@@ -291,8 +280,7 @@ class ParquetSeries:
         return os.path.exists(self.path(kind))
 
     def columns(self, kind):
-        names = series_schema(self.path(kind)).names
-        return [n for n in names if n not in INDEX_COLUMNS and n != "weight"]
+        return _layout(series_schema(self.path(kind)), kind)[0]
 
     def iter_frames(self, kind, columns=None, batch_frames=None):
         """:meth:`iter_chunks` as DataFrames (rows of the time series table)."""
@@ -310,15 +298,18 @@ class ParquetSeries:
             schema = self._file(files[0]).schema_arrow
         except (OSError, ValueError) as exc:   # (Arrow's errors of a damaged file are ValueErrors)
             raise damaged_series(path, exc) from None
-        labels = list(columns) if columns is not None else [n for n in schema.names
-                                                            if n not in INDEX_COLUMNS and n != "weight"]
-        present = set(schema.names)   # (schema.names builds a new list at every use)
-        missing = [c for c in labels if c not in present]
+        names, packed = _layout(schema, kind)
+        labels = list(columns) if columns is not None else names
+        where = {n: k for k, n in enumerate(names)}
+        missing = [c for c in labels if c not in where]
         if missing:
             raise InputFileError(f"{path} has no column {missing[0]!r}.")
         weighted = "weight" in schema.names
-        read = list(INDEX_COLUMNS) + (["weight"] if weighted else []) + labels
-        batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // max(1, len(labels)))
+        index = list(INDEX_COLUMNS) + (["weight"] if weighted else [])
+        read = index + ([packed] if packed else labels)
+        width = len(names) if packed else len(labels)
+        batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // max(1, width))
+        pick = np.array([where[c] for c in labels], dtype=np.intp)
         seen = {}
         try:
             for name in files:
@@ -330,17 +321,52 @@ class ParquetSeries:
                     frame = rb.column("frame").to_numpy()
                     time = rb.column("time_ps").to_numpy()
                     weight = rb.column("weight").to_numpy() if weighted else None
-                    # (by position: looking 15,000 names up one by one scans the schema each time,
-                    # 15 s for one batch)
-                    where = {n: k for k, n in enumerate(rb.schema.names)}
-                    cols = [rb.column(where[c]) for c in labels]
+                    values = (_unpacked(kind, rb.column(len(index)), len(names), pick) if packed
+                              else _wide(rb, labels))
                     for r, lo, hi, first in split_by_replica(rep, seen):
-                        m = hi - lo
-                        dtype = cols[0].type.to_pandas_dtype() if cols else np.int8
-                        values = np.empty((len(labels), m), dtype=dtype)
-                        for k, col in enumerate(cols):
-                            values[k] = col.slice(lo, m).to_numpy(zero_copy_only=False)
                         yield SeriesChunk(r, first, frame[lo:hi], time[lo:hi],
-                                          None if weight is None else weight[lo:hi], labels, values)
+                                          None if weight is None else weight[lo:hi], labels,
+                                          np.ascontiguousarray(values[:, lo:hi]))
         except (OSError, ValueError) as exc:   # (Arrow's errors of a damaged file are ValueErrors)
             raise damaged_series(path, exc) from None
+
+
+def _layout(schema, kind):
+    """``(labels, value column)`` of a time series schema: the torsion labels and the name of the
+    binary column that holds them, or, in a folder of an earlier dihedra (one column per
+    torsion), ``(column names, None)``."""
+    packed = VALUE_COLUMNS.get(kind)
+    if packed in schema.names:
+        meta = schema.metadata or {}
+        try:
+            return list(json.loads(meta[LABELS_KEY])), packed
+        except (KeyError, ValueError, TypeError):
+            raise InputFileError(f"the {kind} time series has no torsion labels in its metadata; the results "
+                                 "folder is damaged: run 'dihedra track' again.") from None
+    return [n for n in schema.names if n not in INDEX_COLUMNS and n != "weight"], None
+
+
+def _unpacked(kind, column, n_torsions, pick):
+    """The values of the torsions ``pick`` (positions in the frame) of a fixed-size binary array:
+    (len(pick), n_frames) int8 codes, booleans or float32 degrees."""
+    n, width, offset = len(column), column.type.byte_width, column.offset
+    raw = np.frombuffer(column.buffers()[1], dtype=np.uint8, count=(offset + n) * width)[offset * width:]
+    raw = raw.reshape(n, width)
+    if kind == "cores":
+        bits = np.unpackbits(raw, axis=1, count=n_torsions, bitorder="little").view(np.bool_)
+        return bits[:, pick].T
+    dtype = np.dtype(np.int8 if kind == "states" else "<f4")
+    values = raw[:, :n_torsions * dtype.itemsize].view(dtype)
+    return values[:, pick].T
+
+
+def _wide(rb, labels):
+    """The columns ``labels`` of a batch of a wide time series (one column per torsion)."""
+    # (by position: looking 15,000 names up one by one scans the schema each time)
+    where = {n: k for k, n in enumerate(rb.schema.names)}
+    cols = [rb.column(where[c]) for c in labels]
+    dtype = cols[0].type.to_pandas_dtype() if cols else np.int8
+    values = np.empty((len(labels), rb.num_rows), dtype=dtype)
+    for k, col in enumerate(cols):
+        values[k] = col.to_numpy(zero_copy_only=False)
+    return values

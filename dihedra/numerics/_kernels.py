@@ -332,39 +332,6 @@ def core_bits(bins, deg, offset, lo, hi, exact, out):
 
 
 @njit(**_OPTS)
-def pack_bits_into(src, dst, r0):
-    """Bit ``r0 + f`` (little bit order: bit ``i`` is bit ``i % 8`` of byte ``i // 8``) of row ``t``
-    of ``dst`` (uint8) set to ``src[f, t]`` (0 or 1), for the frames ``f`` of ``src`` (frames,
-    torsions): the transpose of :func:`transpose_into`, packed as Arrow stores booleans. Bits
-    after them in a byte are cleared; bits before ``r0`` are kept (frames come in order)."""
-    m, n = src.shape
-    tile = 64
-    for t0 in range(0, n, tile):
-        t1 = min(n, t0 + tile)
-        for f in range(m):
-            pos = r0 + f
-            byte, bit = pos >> 3, pos & 7
-            for t in range(t0, t1):
-                keep = dst[t, byte] & ((1 << bit) - 1)
-                dst[t, byte] = keep | ((src[f, t] & 1) << bit)
-
-
-@njit(**_OPTS)
-def transpose_into(src, dst):
-    """``dst[:] = src.T`` for 2-D arrays, in 32 x 32 tiles so that reads and writes both stay in
-    the cache (NumPy's strided copy of a one-byte transpose is about 3 times slower)."""
-    n, m = src.shape
-    tile = 32
-    for i0 in range(0, n, tile):
-        i1 = min(n, i0 + tile)
-        for j0 in range(0, m, tile):
-            j1 = min(m, j0 + tile)
-            for j in range(j0, j1):
-                for i in range(i0, i1):
-                    dst[j, i] = src[i, j]
-
-
-@njit(**_OPTS)
 def _block_mean_error(v, w, n, width, mean, se):
     """Mean and standard error of the block sums ``v[:n, :width]`` / ``w[:n, :width]``, column by
     column (the operations of :func:`dihedra.numerics.statistics.weighted_block_error`, in its order: sums

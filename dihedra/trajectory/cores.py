@@ -4,8 +4,8 @@ Transition-based (core-set) kinetics (Buchete & Hummer, J. Phys. Chem. B 112 (20
 know, frame by frame, whether a torsion's angle lies in the *core* of its state: the state's
 sector shrunk by a margin on both sides (:meth:`~dihedra.selection.schemes.StateScheme.core_codes`).
 The state code says which sector; one more bit says whether the angle is in its core. The pass
-records that bit for :data:`CORE_MARGIN_DEG` (``cores.parquet``, a boolean column per torsion:
-Parquet stores it as one bit), so that ``dihedra kinetics`` runs with its defaults on a folder
+records that bit for :data:`CORE_MARGIN_DEG` (``cores.parquet``, one bit per torsion and frame),
+so that ``dihedra kinetics`` runs with its defaults on a folder
 tracked without ``--keep-angles``; another margin needs the angles.
 
 The bit comes from the fine bin the pass has already computed (a table per scheme part: in a core,

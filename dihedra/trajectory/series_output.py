@@ -6,7 +6,8 @@ chunk_frames, kinds)``) that makes a writer with ``add(replica, index, values)``
 Parquet files of a results folder (:class:`dihedra.io.series.ParquetSeriesFactory`) or arrays kept
 in memory (:class:`MemorySeriesFactory`). ``index`` holds ``frame``, ``time_ps``, ``position`` (of
 each frame within the replica) and, for a weighted run, ``weight``; ``values`` maps ``"states"``
-(and ``"angles"``) to arrays of shape (n_torsions, n_frames).
+(``"cores"``, ``"angles"``) to arrays of one row per frame: (n_frames, n_torsions) int8 codes or
+float32 degrees, (n_frames, ceil(n_torsions / 8)) uint8 core bits packed along the torsions.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ from .overlap import Both
 from .result import SeriesChunk
 
 #: Default size of a chunk (and of a Parquet row group) of the time series, in bytes of values.
-CHUNK_BYTES = 64 << 20
+CHUNK_BYTES = 16 << 20
 
 
 def default_chunk_frames(n_torsions, keep_angles, threads=1):
@@ -122,13 +123,13 @@ class _MemoryWriter:
 
     def add(self, replica, index, values):
         position = np.asarray(index["position"])
-        for kind, array in values.items():
-            if kind == "cores" and array.dtype == np.uint8:   # packed bits of the pass
-                array = np.unpackbits(array, axis=1, count=len(position), bitorder="little").view(np.bool_)
+        for kind, array in values.items():   # (one row per frame; kept one row per torsion)
+            if kind == "cores":   # bits packed along the torsions
+                array = np.unpackbits(array, axis=1, count=len(self.labels), bitorder="little").view(np.bool_)
             self.chunks[kind].append(SeriesChunk(
                 int(replica), int(position[0]) if len(position) else 0, np.array(index["frame"]),
                 np.array(index["time_ps"]), np.array(index["weight"]) if self.weighted else None,
-                self.labels, np.array(array)))
+                self.labels, np.ascontiguousarray(array.T)))
 
     def close(self):
         pass

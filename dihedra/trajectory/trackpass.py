@@ -53,14 +53,16 @@ Core membership
 Beside each state code the pass records one bit: whether the angle lies in the core of its state
 (the sector shrunk by :data:`~dihedra.trajectory.cores.CORE_MARGIN_DEG` on both sides), from the
 fine bin and, in the bins that hold a core edge, the angle (:class:`~dihedra.trajectory.cores.CoreBits`);
-``cores.parquet`` stores it (boolean columns), so that core-set kinetics needs no angle series.
+``cores.parquet`` stores it (one bit per torsion and frame), so that core-set kinetics needs no angle
+series.
 
 Every 256 frames and per chunk
 ------------------------------
 The fine bins, codes (and angles) of the last 256 frames are buffered one row per frame; when
 the buffer is full, the bins go into the histograms, the joint states of each conformer group
-into the conformer counts (compiled loop), and the codes (and angles) are transposed into the
-chunk buffer, one row per torsion, as the time series store them. All of it runs where the
+into the conformer counts (compiled loop), and the codes (and angles, and the core bits packed
+along the torsions) are copied into the chunk buffer, one row per frame, as the time series store
+them (no transpose). All of it runs where the
 frames are processed (with ``threads=2``, in the second thread, while the first reads on). A full
 chunk goes to the pass's time series writer (``series``; a row group of ``chunk_frames``
 frames in states.parquet, cores.parquet and angles.parquet), so Parquet is
@@ -360,8 +362,8 @@ class TorsionPass(AnalysisBase):
 
     def _prepare_buffers(self):
         """The buffers of the last few frames (fine bins, codes, angles; one row per frame), the
-        chunk buffers (one row per torsion, as the time series store them; at most as many
-        columns as this worker has frames) and the batches of frames (one frame at a time on
+        chunk buffers (one row per frame, as the time series store them; at most as many
+        rows as this worker has frames) and the batches of frames (one frame at a time on
         views of the timestep, or, with a second thread, copies of about BATCH_BYTES)."""
         n_t = len(self.torsion_set)
         nf = int(max(1, min(HIST_BUFFER_FRAMES, self.n_frames)))
@@ -374,11 +376,11 @@ class TorsionPass(AnalysisBase):
         cf = int(max(1, min(int(self.chunk_frames), self.n_frames)))
         self._stage_codes = np.empty((nf, n_t), dtype=np.int8)
         self._stage_angles = np.empty((nf, n_t), dtype=np.float32) if self.keep_angles else None
-        self._chunk_codes = np.empty((n_t, cf), dtype=np.int8)
-        self._chunk_angles = np.empty((n_t, cf), dtype=np.float32) if self.keep_angles else None
-        cores = self._core_bits is not None   # 0/1 int8 per frame; in the chunk, packed bits as Arrow keeps them
+        self._chunk_codes = np.empty((cf, n_t), dtype=np.int8)
+        self._chunk_angles = np.empty((cf, n_t), dtype=np.float32) if self.keep_angles else None
+        cores = self._core_bits is not None   # 0/1 int8 per frame; in the chunk, bits packed along the torsions
         self._stage_cores = np.empty((nf, n_t), dtype=np.int8) if cores else None
-        self._chunk_cores = np.zeros((n_t, (cf + 7) // 8), dtype=np.uint8) if cores else None
+        self._chunk_cores = np.zeros((cf, (n_t + 7) // 8), dtype=np.uint8) if cores else None
         self._buf_frame = np.empty(cf, dtype=np.int64)
         self._buf_time = np.empty(cf, dtype=np.float64)
         self._buf_index = np.empty(cf, dtype=np.int64)
@@ -459,7 +461,7 @@ class TorsionPass(AnalysisBase):
 
     def _drain(self):
         """The buffered frames: fine bins into the histograms, joint states into the conformer
-        counts, codes (and angles) transposed into the chunk."""
+        counts, codes (angles, core bits) copied into the chunk."""
         m = self._n_bins_buf
         if m == 0:
             return
@@ -473,11 +475,11 @@ class TorsionPass(AnalysisBase):
         if self._time_blocks is not None:
             self._time_blocks.count(self._stage_codes[:m], gi, None if self.weights is None else self.weights[gi],
                                     self._kernels)
-        self._kernels.transpose_into(self._stage_codes[:m], self._chunk_codes[:, r0:r1])
+        self._chunk_codes[r0:r1] = self._stage_codes[:m]
         if self._stage_angles is not None:
-            self._kernels.transpose_into(self._stage_angles[:m], self._chunk_angles[:, r0:r1])
+            self._chunk_angles[r0:r1] = self._stage_angles[:m]
         if self._stage_cores is not None:
-            self._kernels.pack_bits_into(self._stage_cores[:m], self._chunk_cores, r0)
+            self._chunk_cores[r0:r1] = np.packbits(self._stage_cores[:m], axis=1, bitorder="little")
         self._n_bins_buf = 0
 
     def _add_histograms(self):
@@ -566,10 +568,8 @@ class TorsionPass(AnalysisBase):
         # views of the chunk: the writer writes a full chunk at once (its row groups are
         # chunk_frames long); only the last, partial chunk of the pass can wait in it until
         # close(), and nothing writes into that buffer after it
-        values = {kind: buf[:, :n] for kind, buf in (("states", self._chunk_codes),
-                                                      ("angles", self._chunk_angles)) if buf is not None}
-        if self._chunk_cores is not None:
-            values["cores"] = self._chunk_cores[:, :(n + 7) // 8]   # (packed bits: uint8)
+        values = {kind: buf[:n] for kind, buf in (("states", self._chunk_codes), ("angles", self._chunk_angles),
+                                                   ("cores", self._chunk_cores)) if buf is not None}
         background = self._overlap is not None or self._last_chunk
         self._output.add(self.replica, index, values, background=background)
         if not background or self._last_chunk:   # (deferred: nothing writes into this buffer any more)
