@@ -272,6 +272,7 @@ class _Run:
         self.choice = None
         # seconds by phase, for the summary (start-up: from the start of the process to track())
         self.phases = {"startup": _process_age()}
+        self.peaks = {"startup": _peak_memory_mb()}
         self.passes, self.writers, self.notices = [], [], []
 
     def begin(self, topology, trajectories, torsions, scheme, weights):
@@ -293,12 +294,15 @@ class _Run:
 
     @contextlib.contextmanager
     def phase(self, name):
-        """Add the seconds of this block to phase ``name`` (``summary.json``: phase_seconds)."""
+        """Add the seconds of this block to phase ``name`` (``summary.json``: phase_seconds) and
+        note the process's peak memory at its end (``peak_memory_mb_after``: the phase where it
+        first reaches its final value set the peak)."""
         t0 = time.perf_counter()
         try:
             yield
         finally:
             self.phases[name] = self.phases.get(name, 0.0) + time.perf_counter() - t0
+            self.peaks[name] = _peak_memory_mb()
 
     def plan(self, workers, backend, scheduler, threads, n_frames, n_torsions):
         """``(backend, workers, threads)`` of the passes: a dask.distributed backend with
@@ -353,6 +357,7 @@ class _Run:
             summary = make_summary(topology, replicas, scheme, tset, params, self.notices,
                                    time.time() - self.started, hashes=self.hashes)
         summary["phase_seconds"] = {k: round(v, 3) for k, v in self.phases.items()}
+        summary["peak_memory_mb_after"] = {k: v for k, v in self.peaks.items() if v is not None}
         result.summary.update(summary)
         write_results(result, work, blocks=False)
         for w in self.writers:
@@ -497,6 +502,16 @@ def _run_pass(tp, traj, frames, backend, n_workers, progress, r, n_replicas):
         raise
     except (OSError, EOFError) as exc:
         raise truncated_error(traj, tp._universe, exc) from None
+
+
+def _peak_memory_mb():
+    """The peak resident memory of this process so far, in MB (None where the system does not say)."""
+    try:
+        import resource
+    except ImportError:   # (Windows)
+        return None
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return round(peak / (2 ** 20 if sys.platform == "darwin" else 2 ** 10))   # (bytes on macOS, kB elsewhere)
 
 
 def _process_age():

@@ -25,7 +25,7 @@ from .statistics import blocking_error
 #: Below this many effective samples a population's error bar is itself rough.
 MIN_EFFECTIVE_SAMPLES = 20
 
-#: Values per blocking call for conformers (bounds the temporary arrays, about 8 MB each).
+#: Values per blocking call (bounds the temporary arrays, about 8 MB each).
 _WORK_VALUES = 1 << 20
 
 
@@ -44,11 +44,15 @@ def torsion_populations(state_counts, block_replica, labels, types, state_labels
     DataFrame with columns torsion, type, state, population, population_err, n_effective,
     n_samples
     """
-    counts = np.asarray(state_counts, dtype=float)
-    totals = counts.sum(axis=2, keepdims=True)  # valid frames per block and torsion
-    mean, se, n_eff = blocking_error(counts, totals, block_replica)
-    n_t, n_s = counts.shape[1:]
-    n_samples = np.repeat(totals.sum(axis=0), n_s, axis=1)
+    state_counts = np.asarray(state_counts)
+    n_b, n_t, n_s = state_counts.shape
+    mean, se, n_eff, n_samples = (np.empty((n_t, n_s)) for _ in range(4))
+    step = max(1, _WORK_VALUES // max(1, n_b * n_s))   # (torsions at a time: the errors are per torsion)
+    for lo in range(0, n_t, step):
+        counts = state_counts[:, lo:lo + step].astype(float)
+        totals = counts.sum(axis=2, keepdims=True)  # valid frames per block and torsion
+        mean[lo:lo + step], se[lo:lo + step], n_eff[lo:lo + step] = blocking_error(counts, totals, block_replica)
+        n_samples[lo:lo + step] = totals.sum(axis=0)
     if np.all(n_samples == np.round(n_samples)):  # frame counts (unweighted run)
         n_samples = n_samples.astype(np.int64)
     return pd.DataFrame({

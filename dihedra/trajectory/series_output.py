@@ -21,7 +21,7 @@ from .overlap import Both
 from .result import SeriesChunk
 
 #: Default size of a chunk (and of a Parquet row group) of the time series, in bytes of values.
-CHUNK_BYTES = 16 << 20
+CHUNK_BYTES = 4 << 20
 
 
 def default_chunk_frames(n_torsions, keep_angles, threads=1):

@@ -98,7 +98,7 @@ from .timeblocks import TimeBlockCounter
 from .trajread import frame_source
 
 #: With a second thread, coordinates are copied into batches of about this many bytes.
-BATCH_BYTES = 4 << 20
+BATCH_BYTES = 2 << 20
 
 #: Frames whose fine bins are buffered before they are added to the histograms.
 HIST_BUFFER_FRAMES = 256
@@ -131,8 +131,9 @@ class TorsionPass(AnalysisBase):
     keep_angles : bool
         Also write the angles (float32 degrees).
     chunk_frames : int, optional
-        Frames per chunk and per Parquet row group (default: about 64 MB of values per chunk,
-        32 MB with ``threads=2``, whose two chunk buffers then hold what one does).
+        Frames per chunk and per Parquet row group (default: about 4 MB of values per chunk,
+        2 MB with ``threads=2``, whose two chunk buffers then hold what one does; at least 32
+        frames, at most 100,000).
     replica : int
         Replica number written with every frame.
     dt_ps : float, optional
