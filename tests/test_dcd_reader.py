@@ -29,22 +29,59 @@ def _universe(top, traj):
         return mda.Universe(top, traj)
 
 
+def _as_atoms(src, rows):
+    """Coordinates (frames, atoms, 3) of frames read in the file's layout (DCDFrames.layout)."""
+    where, stride = src.layout(np.arange(src.n_atoms))
+    return np.stack([rows[:, where.astype(np.int64) + axis * stride] for axis in range(3)], axis=2)
+
+
+@pytest.mark.parametrize("layout", ["atoms", "file"])
 @pytest.mark.parametrize("top,traj", FILES)
-def test_batches_equal_mdanalysis_frames(top, traj):
+def test_batches_equal_mdanalysis_frames(top, traj, layout):
     reader = _universe(getattr(data, top), getattr(data, traj)).trajectory
     src = trajread.frame_source(reader)
     assert isinstance(src, trajread.DCDFrames)
     n = reader.n_frames
     for frames in (np.arange(n), np.unique(np.r_[0, np.arange(2, n, 3), n - 1])):   # runs and gaps
-        pos = np.empty((len(frames), reader.n_atoms, 3), dtype=np.float32)
+        shape = (len(frames), reader.n_atoms, 3) if layout == "atoms" else (len(frames), src.frame_words)
+        pos = np.empty(shape, dtype=np.float32)
         dims, fr, t = np.empty((len(frames), 6), dtype=np.float32), np.empty(len(frames), np.int64), np.empty(len(frames))
         src.read(frames, pos, dims, fr, t)
+        if layout == "file":
+            pos = _as_atoms(src, pos)
         for k, f in enumerate(frames):
             ts = reader[int(f)]
             np.testing.assert_array_equal(pos[k], ts.positions)
             ref = np.full(6, np.nan, np.float32) if ts.dimensions is None else ts.dimensions
             np.testing.assert_array_equal(dims[k], ref)
             assert fr[k] == ts.frame and t[k] == ts.time
+    src.close()
+
+
+def test_damaged_batch_in_the_file_layout_is_read_by_mdanalysis(tmp_path):
+    # a record marker of frame 2 overwritten: the batch is read again by MDAnalysis, frame by
+    # frame, into the same layout (frames before the damage equal the library's frames)
+    import shutil
+
+    path = str(tmp_path / "adk.dcd")
+    shutil.copy(data.DCD, path)
+    reader = _universe(data.PSF, path).trajectory
+    src = trajread.frame_source(reader)
+    with open(path, "r+b") as fh:
+        fh.seek(int(src.offsets[2]) + 4 * (src._cell_words + src.n_atoms + 2))   # the y record's marker
+        fh.write(np.int32(7).tobytes())
+    rows = np.empty((2, src.frame_words), dtype=np.float32)
+    dims, fr, t = np.empty((2, 6), dtype=np.float32), np.empty(2, np.int64), np.empty(2)
+    assert not src._records_intact(np.fromfile(path, dtype=np.int32, count=src.frame_words,
+                                               offset=int(src.offsets[2]))[None])
+    src.read(np.array([0, 1]), rows, dims, fr, t)
+    np.testing.assert_array_equal(_as_atoms(src, rows)[1], reader[1].positions)
+    calls = []
+    src._put = lambda positions, k, xyz: calls.append(k) or trajread.DCDFrames._put(src, positions, k, xyz)
+    with pytest.raises(Exception):   # MDAnalysis' own error for the damaged frame
+        src.read(np.array([1, 2]), rows, dims, fr, t)
+    assert calls[:1] == [0]
+    np.testing.assert_array_equal(_as_atoms(src, rows)[0], reader[1].positions)
     src.close()
 
 

@@ -37,13 +37,15 @@ _OPTS = dict(cache=True, nogil=True, error_model="numpy", boundscheck=False)
 
 
 @njit(**_OPTS)
-def gather_bonds(flat, idx3, bonds):
+def gather_bonds(flat, idx3, stride, bonds):
     """Bond vectors A->B, B->C, C->D of every torsion in float64 (rows 0-2, 3-5, 6-8).
 
-    ``flat`` is the float32 coordinate array raveled (x, y, z per atom), ``idx3`` holds 3 x the
-    atom indices (uint32 or uint64, shape (n, 4)). (Taking two bond vectors over from the
-    previous torsion of a chain is slower than loading them again: the loop is bound by
-    instructions, not by memory.)
+    ``flat`` is a frame's float32 coordinates as one array, ``idx3`` (uint32 or uint64, shape
+    (n, 4)) the position of each atom's x in it and ``stride`` the distance from x to y and from
+    y to z: 3 x the atom indices and 1 for coordinates raveled atom by atom (x, y, z per atom);
+    the positions in a DCD frame's words and the length of a record for its x, y and z records.
+    (Taking two bond vectors over from the previous torsion of a chain is slower than loading
+    them again: the loop is bound by instructions, not by memory.)
     """
     n = idx3.shape[0]
     for t in range(n):
@@ -52,10 +54,11 @@ def gather_bonds(flat, idx3, bonds):
         c = idx3[t, 2]
         d = idx3[t, 3]
         for k in range(3):
-            xa = np.float64(flat[a + k])
-            xb = np.float64(flat[b + k])
-            xc = np.float64(flat[c + k])
-            xd = np.float64(flat[d + k])
+            o = k * stride
+            xa = np.float64(flat[a + o])
+            xb = np.float64(flat[b + o])
+            xc = np.float64(flat[c + o])
+            xd = np.float64(flat[d + o])
             bonds[k, t] = xb - xa
             bonds[3 + k, t] = xc - xb
             bonds[6 + k, t] = xd - xc
@@ -272,15 +275,16 @@ def count_conformers(codes, local_block, members, powers, dense, weights, dense_
 
 
 @njit(**_OPTS)
-def frames(positions, idx3, bonds, lengths, inverse, cells, reach2, triclinic, deg, width,
+def frames(positions, idx3, stride, bonds, lengths, inverse, cells, reach2, triclinic, deg, width,
            shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries, start_closed, arc_states,
            mixed, bins, codes, counts, state_block, weights, undefined):
-    """Several frames in one call (no Python between them): for frame f, the angles
+    """Several frames in one call (no Python between them): for frame f (``positions[f]``, its
+    coordinates as :func:`gather_bonds` takes them, with ``idx3`` and ``stride``), the angles
     (:func:`gather_bonds`, :func:`minimum_image_triclinic` if ``triclinic[f]``,
     :func:`dihedrals_deg` with ``lengths[f]`` / ``inverse[f]``) into ``deg[f]``, then
     :func:`bin_and_code` into ``bins[f]``, ``codes[f]`` and ``counts[state_block[f]]``."""
     for f in range(positions.shape[0]):
-        gather_bonds(positions[f].reshape(-1), idx3, bonds)
+        gather_bonds(positions[f].reshape(-1), idx3, stride, bonds)
         if triclinic[f]:
             minimum_image_triclinic(bonds, cells[f], reach2[f])
         dihedrals_deg(bonds, lengths[f], inverse[f], deg[f])

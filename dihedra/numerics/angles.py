@@ -188,7 +188,7 @@ class TorsionGeometry:
         k = self.kernels
         if self._bonds is None:
             self._bonds = np.empty((9, self.n_torsions), dtype=np.float64)
-        k.gather_bonds(pos.reshape(-1), self.idx3, self._bonds)
+        k.gather_bonds(pos.reshape(-1), self.idx3, 1, self._bonds)
         if h is not None:
             k.minimum_image_triclinic(self._bonds, h, reach2)
         k.dihedrals_deg(self._bonds, lengths, inverse, out)

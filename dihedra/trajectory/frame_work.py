@@ -48,6 +48,9 @@ class FrameWork:
                  core_bits=None):
         self.geometry = geometry
         self.kernels = geometry.kernels
+        # where each atom's coordinates are in a frame (see gather_bonds): atom by atom, or as
+        # the batch reader lays its frames out (use_layout)
+        self.where, self.stride = geometry.idx3, 1
         self.n = geometry.n_torsions
         self.bin_head, self.classes, self.bin_tail = bin_args[:5], bin_args[5], bin_args[6:]
         self.state_counts, self.undefined = state_counts, undefined
@@ -59,6 +62,11 @@ class FrameWork:
         self._part_frames = 0   # torsion-frames computed in that time
         self._bonds = [None, None]
         self._boxes = self._box_keys = None
+
+    def use_layout(self, where, stride):
+        """Frames come as the rows of a batch reader's layout (``positions`` (frames, words)):
+        ``where`` of each atom's x and ``stride`` to its y and z (:func:`~dihedra.numerics._kernels.gather_bonds`)."""
+        self.where, self.stride = where, int(stride)
 
     # -- the two parts --------------------------------------------------------------------------
     def first_part(self, batch):
@@ -86,7 +94,7 @@ class FrameWork:
         i = batch.index[:m]
         deg, bins, codes, cores = (None if a is None else a[:m] for a in out)
         started = time.perf_counter()
-        self.kernels.frames(batch.positions[:m], self.geometry.idx3[t0:t1], bonds, *batch.boxes, deg,
+        self.kernels.frames(batch.positions[:m], self.where[t0:t1], self.stride, bonds, *batch.boxes, deg,
                             *self.bin_head, self.classes[t0:t1], *self.bin_tail, bins, codes,
                             self.state_counts[:, t0:t1], self.frame_sblock[i],
                             self.frame_weight[i], self.undefined[t0:t1])

@@ -24,8 +24,11 @@ class Both:
 class Batch:
     """Coordinates, boxes, frame numbers, times and frame positions of a few frames."""
 
-    def __init__(self, size, n_atoms):
-        self.positions = np.empty((size, n_atoms, 3), dtype=np.float32)
+    def __init__(self, size, n_atoms, words=None):
+        # one row per frame: atoms x 3, or ``words`` float32 words as a batch reader lays a
+        # frame out (see FrameWork.use_layout)
+        self.positions = self.buffer = np.empty((size, n_atoms, 3) if words is None else (size, words),
+                                                dtype=np.float32)
         self.dimensions = np.empty((max(size, 1), 6), dtype=np.float32)
         self.frame = np.empty(max(size, 1), dtype=np.int64)
         self.time = np.empty(max(size, 1), dtype=np.float64)

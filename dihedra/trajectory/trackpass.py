@@ -100,6 +100,9 @@ from .trajread import frame_source
 #: With a second thread, coordinates are copied into batches of about this many bytes.
 BATCH_BYTES = 2 << 20
 
+#: Batches of frames in the two threads' hands (read, waiting, computed).
+BATCHES = 3
+
 #: Frames whose fine bins are buffered before they are added to the histograms.
 HIST_BUFFER_FRAMES = 256
 
@@ -257,11 +260,16 @@ class TorsionPass(AnalysisBase):
             return
         own = None if self._overlap is not None else self._batch
         size = len((own or self._staged).frame)
+        mapped = getattr(self._source, "read_mapped", None) if (own or self._staged).buffer.ndim == 2 else None
         with ProgressBar(total=n, verbose=verbose, **progressbar_kwargs) as bar:
             for lo in range(0, n, size):
                 hi = min(n, lo + size)
                 batch = own or self._staged
-                self._source.read(frames[lo:hi], batch.positions, batch.dimensions, batch.frame, batch.time)
+                # the frames' words in the file mapped into memory (DCD), else read into the batch
+                view = mapped(frames[lo:hi], batch.dimensions, batch.frame, batch.time) if mapped else None
+                batch.positions = batch.buffer if view is None else view
+                if view is None:
+                    self._source.read(frames[lo:hi], batch.buffer, batch.dimensions, batch.frame, batch.time)
                 batch.index[:hi - lo] = np.arange(lo, hi)
                 batch.n = hi - lo
                 self.frames[lo:hi] = batch.frame[:hi - lo]
@@ -359,6 +367,9 @@ class TorsionPass(AnalysisBase):
         self._core_bits = None if self.series is None else CoreBits(self.scheme, self.torsion_set.types, n_bins)
         self._work = FrameWork(self._geometry, self._bin_args, self._state_counts, self._undefined,
                                self._frame_sblock, self._frame_weight, self._core_bits)
+        layout = getattr(getattr(self, "_source", None), "layout", None)
+        if layout is not None:   # frames read as the file lays them out (DCD: no unpacking)
+            self._work.use_layout(*layout(self._geometry.indices))
         self._handed = time.perf_counter()
 
     def _prepare_buffers(self):
@@ -392,11 +403,12 @@ class TorsionPass(AnalysisBase):
         self._one_frame = Batch(1, 0)   # its positions are replaced by a view of each frame
         self._overlap = self._staged = self._batch = None
         size = int(max(1, min(BATCH_BYTES // max(1, 12 * n_atoms), self.n_frames)))
+        words = getattr(getattr(self, "_source", None), "frame_words", None)
         if self.threads > 1:
-            self._overlap = Overlap(self._process, [Batch(size, n_atoms) for _ in range(3)])
+            self._overlap = Overlap(self._process, [Batch(size, n_atoms, words) for _ in range(BATCHES)])
             self._staged = self._overlap.take()
         elif getattr(self, "_source", None) is not None:   # decoded frames, in one thread
-            self._batch = Batch(size, n_atoms)
+            self._batch = Batch(size, n_atoms, words)
 
     def _single_frame(self):
         ts = self._ts

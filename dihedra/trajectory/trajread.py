@@ -114,19 +114,19 @@ class _FileFrames:
             self._box_cache[key] = dims
         return dims
 
-    def _read_bytes(self, frames):
-        """The bytes of ``frames`` into the buffer (one read per run of consecutive frames);
-        returns the offset of each frame in it."""
+    def _read_bytes(self, frames, into=None):
+        """The bytes of ``frames`` into the buffer, or into ``into`` (uint8, large enough), one
+        read per run of consecutive frames; returns the offset of each frame in it."""
         sizes = self.sizes[frames]
         starts = np.zeros(len(frames), dtype=np.int64)
         np.cumsum(sizes[:-1], out=starts[1:])
         total = int(starts[-1] + sizes[-1])
-        if len(self._buf) < total:
+        if into is None and len(self._buf) < total:
             self._buf = np.empty(int(total * 1.25) + 64, dtype=np.uint8)
         if self._fh is None:
             self._fh = open(self.path, "rb", buffering=0)
         cuts = np.flatnonzero(np.diff(frames) != 1) + 1
-        view = memoryview(self._buf)
+        view = memoryview(self._buf if into is None else into)
         for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, len(frames)]):
             a = int(starts[lo])
             b = int(starts[hi - 1] + sizes[hi - 1])
@@ -139,12 +139,16 @@ class _FileFrames:
                 got += more
         return starts
 
+    def _put(self, positions, k, xyz):
+        """Coordinates ``xyz`` (n_atoms, 3) of a frame into row ``k`` of ``positions``."""
+        positions[k] = xyz
+
     def _read_by_mdanalysis(self, frames, positions, dimensions, frame_out, time_out):
         """The frames through MDAnalysis, one by one (errors are MDAnalysis' own)."""
         reader = self._reader
         for k, f in enumerate(frames):
             ts = reader[int(f)]
-            positions[k] = ts.positions
+            self._put(positions, k, ts.positions)
             dimensions[k] = ts.dimensions if ts.dimensions is not None else np.nan
             frame_out[k] = ts.frame
             time_out[k] = ts.time
@@ -155,7 +159,9 @@ class DCDFrames(_FileFrames):
 
     The bytes of a batch are read at once (Python's lock released during the system call) and
     the x, y and z records of every frame copied into the positions by one compiled call
-    (:mod:`dihedra.trajectory._dcd`, lock released); the unit cell goes through the conversion
+    (:mod:`dihedra.trajectory._dcd`, lock released), or, into positions of one row of
+    :attr:`frame_words` words per frame, read there as they are in the file (the torsion work
+    then finds each atom's x, y and z where :meth:`layout` says: no copy); the unit cell goes through the conversion
     of MDAnalysis' ``DCDReader._frame_to_ts`` (cosines or degrees of the cell angles, or CHARMM's
     box vectors), the times are ``(frame + istart / nsavc) * dt`` plus the reader's time offset,
     as MDAnalysis computes them. A batch whose record markers are not those of this layout (a
@@ -178,6 +184,18 @@ class DCDFrames(_FileFrames):
         header = f.header
         self._first = header["istart"] / header["nsavc"]
         self._dt = reader.ts.dt
+        #: float32 words of one frame (unit cell record, x, y and z records with their markers)
+        self.frame_words = int(f._framesize) // 4
+        self._map = self._words_of_map = None
+        self._recent, self._released = [], 0
+
+    def layout(self, indices):
+        """``(where, stride)`` of the atoms ``indices`` (any shape) in a frame's words: the
+        position of each atom's x, and the distance from x to y and from y to z (one record
+        with its two markers)."""
+        where = self._cell_words + 1 + np.asarray(indices, dtype=np.int64)
+        top = int(where.max()) + 2 * (self.n_atoms + 2) if where.size else 0
+        return where.astype(np.uint32 if top < 2**32 else np.uint64), self.n_atoms + 2
 
     def read(self, frames, positions, dimensions, frame_out, time_out):
         """Read ``frames`` (frame numbers, ascending) into the first ``len(frames)`` rows of
@@ -187,22 +205,111 @@ class DCDFrames(_FileFrames):
         n = len(frames)
         if n == 0:
             return
-        starts = self._read_bytes(frames)
-        total = int(starts[-1] + self.sizes[frames[-1]])
-        words = self._buf[:total].view(np.float32)
-        marks = words.view(np.int32)
-        first = starts // 4
-        done = self._unpacker.unpack_frames(words, marks, first, self.n_atoms, self._cell_words, positions)
-        cells = self._cell_words and all(int(marks[w]) == 48 for w in first)
-        if done != n or (self._cell_words and not cells):
-            self._read_by_mdanalysis(frames, positions, dimensions, frame_out, time_out)
-            return
+        if positions.ndim == 2:   # the frames' words as they are (see layout)
+            rows = positions[:n]
+            self._read_bytes(frames, into=rows.reshape(-1).view(np.uint8))
+            if not self._records_intact(rows.view(np.int32)):
+                self._read_by_mdanalysis(frames, positions, dimensions, frame_out, time_out)
+                return
+            cell_records = rows.view(np.uint8)[:, 4:52]
+        else:
+            starts = self._read_bytes(frames)
+            total = int(starts[-1] + self.sizes[frames[-1]])
+            words = self._buf[:total].view(np.float32)
+            marks = words.view(np.int32)
+            first = starts // 4
+            done = self._unpacker.unpack_frames(words, marks, first, self.n_atoms, self._cell_words, positions)
+            cells = self._cell_words and all(int(marks[w]) == 48 for w in first)
+            if done != n or (self._cell_words and not cells):
+                self._read_by_mdanalysis(frames, positions, dimensions, frame_out, time_out)
+                return
+            cell_records = [self._buf[s + 4:s + 52] for s in starts]
+        self._frame_data(frames, cell_records, dimensions, frame_out, time_out)
+
+    def read_mapped(self, frames, dimensions, frame_out, time_out):
+        """The words of ``frames`` (ascending, evenly spaced) as rows of a view of the file
+        mapped into memory, no copy at all, with ``dimensions``, ``frame_out`` and ``time_out``
+        as :meth:`read` gives them; ``None`` where that cannot be (frames not evenly spaced, a
+        file that cannot be mapped, a damaged record: then :meth:`read`). The pages of frames
+        two batches back are handed back to the system (the process's memory stays that of a
+        few batches); the views are read-only."""
+        frames = np.asarray(frames, dtype=np.int64)
+        n = len(frames)
+        step = int(frames[1] - frames[0]) if n > 1 else 1
+        if n == 0 or step < 1 or (n > 2 and not (np.diff(frames) == step).all()):
+            return None
+        words = self._mapped_words()
+        if words is None:
+            return None
+        start = int(self.offsets[frames[0]])
+        rows = np.lib.stride_tricks.as_strided(words[start // 4:], shape=(n, self.frame_words),
+                                               strides=(step * int(self.sizes[0]), 4), writeable=False)
+        if not self._records_intact(rows.view(np.int32)):
+            return None
+        self._release_before(start)
+        self._frame_data(frames, rows.view(np.uint8)[:, 4:52], dimensions, frame_out, time_out)
+        return rows
+
+    def _mapped_words(self):
+        if self._map is None:
+            import mmap
+
+            try:
+                with open(self.path, "rb") as fh:
+                    self._map = mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
+                if hasattr(mmap, "MADV_SEQUENTIAL"):
+                    self._map.madvise(mmap.MADV_SEQUENTIAL)
+                self._words_of_map = np.frombuffer(self._map, dtype=np.float32, count=len(self._map) // 4)
+            except (OSError, ValueError):   # (a file that cannot be mapped: read() copies)
+                self._map = False
+        return self._words_of_map if self._map else None
+
+    def _release_before(self, start):
+        """Hand back the mapped pages before the batch read two batches ago (the frames of the
+        last two batches may still be computed in the other thread)."""
+        import mmap
+
+        recent = self._recent
+        if len(recent) == 2 and hasattr(mmap, "MADV_DONTNEED"):
+            upto = recent[0] // mmap.PAGESIZE * mmap.PAGESIZE
+            if upto > self._released:
+                self._map.madvise(mmap.MADV_DONTNEED, self._released, upto - self._released)
+                self._released = upto
+        self._recent = (recent + [start])[-2:]
+
+    def close(self):
+        super().close()
+        # (the mapping closes when the last view of it is gone)
+        self._words_of_map = self._map = None
+
+    def _frame_data(self, frames, cell_records, dimensions, frame_out, time_out):
+        """Boxes, frame numbers and times of ``frames`` (their unit cell records' 48 bytes)."""
+        n = len(frames)
         for k in range(n):
-            raw = self._buf[starts[k] + 4:starts[k] + 52].tobytes() if self._cell_words else b""
+            raw = cell_records[k].tobytes() if self._cell_words else b""
             dimensions[k] = self._cached_box(raw, lambda: _dcd_dimensions(raw, self._reader))
         frame_out[:n] = frames
         for k in range(n):   # as DCDReader._frame_to_ts, then Timestep.time (time_offset added)
             time_out[k] = (int(frames[k]) + self._first) * self._dt + self._time_offset
+
+
+    def _records_intact(self, marks):
+        """Whether every frame (a row of ``marks``, its words as int32) has the record markers
+        of this layout: 48 around the unit cell (if any), 4N around x, y and z."""
+        n, c = self.n_atoms, self._cell_words
+        if c and not ((marks[:, 0] == 48) & (marks[:, 13] == 48)).all():
+            return False
+        at = [c + k * (n + 2) + e for k in range(3) for e in (0, n + 1)]
+        return bool((marks[:, at] == 4 * n).all())
+
+    def _put(self, positions, k, xyz):
+        if positions.ndim == 3:
+            positions[k] = xyz
+            return
+        n, c = self.n_atoms, self._cell_words
+        for axis in range(3):   # (the markers stay as read: the torsion work skips them)
+            lo = c + 1 + axis * (n + 2)
+            positions[k, lo:lo + n] = xyz[:, axis]
 
 
 def _dcd_dimensions(raw, reader):
