@@ -75,6 +75,20 @@ def test_bad_options_give_one_line_and_write_nothing(system, tmp_path, capsys, a
     assert os.listdir(tmp_path) == []
 
 
+@pytest.mark.parametrize("args, line", [
+    (["track", "{top}", "{traj}", "--torsions", "rotatable", "--out", "{out}", "-q"],
+     "dihedra: error: unrecognized arguments: -q (see 'dihedra track --help')."),
+    (["-q"], "dihedra: error: unrecognized arguments: -q (see 'dihedra --help')."),
+    (["track", "{top}", "{traj}", "--torsions", "rotatable", "--out", "{out}", "--stop", "x"],
+     "dihedra: error: dihedra track: argument --stop: invalid int value: 'x' (see 'dihedra track --help')."),
+])
+def test_usage_errors_name_dihedra_once_and_the_help_to_read(system, tmp_path, capsys, args, line):
+    top, traj = system
+    code, _, err = run_cli(capsys, *[a.format(top=top, traj=traj, out=tmp_path / "r") for a in args])
+    assert code == 2 and err.strip() == line
+    assert os.listdir(tmp_path) == []
+
+
 def test_missing_file_and_atom_count_mismatch(system, tmp_path, capsys):
     top, traj = system
     code, _, err = run_cli(capsys, "track", top, tmp_path / "nope.xtc", "--torsions", "0,1,2,3",

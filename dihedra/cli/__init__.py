@@ -30,10 +30,18 @@ _SKIP = {"common"}
 
 
 class _Parser(argparse.ArgumentParser):
-    """An argument parser whose errors are one ``dihedra: error:`` line (exit 2), like every other."""
+    """An argument parser whose errors are one ``dihedra: error:`` line (exit 2), like every other:
+    a subcommand's name its own (``dihedra: error: dihedra track: ...``), the top-level parser's
+    none (``dihedra: error: unrecognized arguments: -q``), each pointing to the help of the
+    command given."""
+
+    #: The command whose ``--help`` an error points to, when not this parser's own (the top-level
+    #: parser reports options that no parser took, after a subcommand was named).
+    help_command = None
 
     def error(self, message):
-        self.exit(2, f"dihedra: error: {self.prog}: {message} (see '{self.prog} --help').\n")
+        where = f"{self.prog}: " if self.prog != "dihedra" else ""
+        self.exit(2, f"dihedra: error: {where}{message} (see '{self.help_command or self.prog} --help').\n")
 
 
 def build_parser(command=None):
@@ -51,6 +59,7 @@ def build_parser(command=None):
     names.sort(key=lambda n: (ORDER.index(n) if n in ORDER else len(ORDER), n))
     if command in names:
         names = [command]
+        parser.help_command = f"dihedra {command}"
     for name in names:
         module = importlib.import_module(f"{__name__}.{name}")
         if hasattr(module, "register"):
