@@ -21,7 +21,6 @@ import numpy as np
 from MDAnalysis.exceptions import NoDataError
 
 from ..errors import SelectionError
-from . import biopolymer
 from .rotatable import rotatable_torsions
 from .torsions import Torsion, TorsionSet, replace_fields, torsion_from_atoms
 
@@ -187,6 +186,8 @@ def _select_one(universe, spec, keep_variants=False):
     elif spec == "rotatable":
         part = rotatable_torsions(universe)
     elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
+        from . import biopolymer   # (imported for these specifications only)
+
         part = {"protein-backbone": biopolymer.protein_backbone_torsions,
                 "protein-sidechains": biopolymer.protein_sidechain_torsions,
                 "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](universe, keep_variants=keep_variants)
