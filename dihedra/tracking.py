@@ -45,6 +45,7 @@ from .trajectory.result import BlockParts, NpzMember, bound_heap, release_memory
 from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
 from .trajectory.timeblocks import pass_time_blocks
 from .trajectory.weights import weights_per_replica
+from .numerics.statistics import warm_blocking
 
 
 def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None):
@@ -339,21 +340,23 @@ class _Run:
 
     def finish(self, tset, scheme, universe, topology, replicas, params, schemes=None):
         """The result and its folder: blocks.npz written by another thread (zlib releases Python's
-        lock) while this one computes the populations and writes the tables."""
-        # the last row group of the time series first: Arrow's writer of 15,000 columns takes
-        # about 100 MB while it writes, which the tables would otherwise come on top of
+        lock) while the last rows of the time series are written and then while this thread
+        computes the populations and the tables."""
+        blocks = block_sums(self.passes)
+        work = self.work
+        self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
+                                                     narrow=[k for k in blocks if narrowed_type(k)]))]
+        # the last row group of the time series before the tables: Arrow's writer of 15,000
+        # columns takes about 100 MB while it writes, which the tables would otherwise come on top
+        # of; meanwhile the compiled kernel of the errors is loaded (a tenth of a second)
         with self.phase("series"):
+            warm_blocking()
             self.passes[-1].finish_series()
         release_memory()
         with self.phase("tables"):
-            blocks = block_sums(self.passes)
-            work = self.work
-            self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
-                                                         narrow=[k for k in blocks if narrowed_type(k)]))]
             result = assemble_result(tset, scheme, universe, self.notices, blocks)
             result.schemes = schemes
             result.time_blocks = pass_time_blocks(self.passes, tset.types, scheme.labels)
-            release_memory()
         with self.phase("hashing_wait"):
             summary = make_summary(topology, replicas, scheme, tset, params, self.notices,
                                    time.time() - self.started, hashes=self.hashes)

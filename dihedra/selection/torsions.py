@@ -103,11 +103,11 @@ class TorsionSet:
         data = {
             "torsion": [t.label for t in ts],
             "type": [t.type for t in ts],
-            "atom_indices": [" ".join(str(i) for i in t.indices) for t in ts],
+            "atom_indices": [" ".join(map(str, t.indices)) for t in ts],
         }
-        if universe is not None:   # (names looked up at once: an atom group per torsion is slow)
-            names = np.asarray(universe.atoms.names, dtype=object)
-            data["atom_names"] = [" ".join(names[list(t.indices)].tolist()) for t in ts]
+        if universe is not None:   # (names looked up in a list: an atom group per torsion is slow)
+            names = np.asarray(universe.atoms.names, dtype=object).tolist()
+            data["atom_names"] = [" ".join([names[i] for i in t.indices]) for t in ts]
         data.update({"resname": [t.resname for t in ts], "variant": [t.variant for t in ts],
                      "resid": [t.resid for t in ts], "segid": [t.segid for t in ts], "name": [t.name for t in ts],
                      "group": [t.group for t in ts], "order": [t.order for t in ts]})
