@@ -32,6 +32,7 @@ from .io.outputs import StagedFolder
 from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
 from .io.tables import write_json, write_table
+from .numerics.statistics import warm_blocking
 from .selection.choice import choose_schemes
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
@@ -45,7 +46,6 @@ from .trajectory.result import BlockParts, NpzMember, bound_heap, release_memory
 from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
 from .trajectory.timeblocks import pass_time_blocks
 from .trajectory.weights import weights_per_replica
-from .numerics.statistics import warm_blocking
 
 
 def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None):
@@ -348,7 +348,7 @@ class _Run:
                                                      narrow=[k for k in blocks if narrowed_type(k)]))]
         # the last row group of the time series before the tables: Arrow's writer of 15,000
         # columns takes about 100 MB while it writes, which the tables would otherwise come on top
-        # of; meanwhile the compiled kernel of the errors is loaded (a tenth of a second)
+        # of; meanwhile the compiled kernel of the errors is loaded (up to a tenth of a second)
         with self.phase("series"):
             warm_blocking()
             self.passes[-1].finish_series()
@@ -357,6 +357,7 @@ class _Run:
             result = assemble_result(tset, scheme, universe, self.notices, blocks)
             result.schemes = schemes
             result.time_blocks = pass_time_blocks(self.passes, tset.types, scheme.labels)
+            release_memory()
         with self.phase("hashing_wait"):
             summary = make_summary(topology, replicas, scheme, tset, params, self.notices,
                                    time.time() - self.started, hashes=self.hashes)
