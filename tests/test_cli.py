@@ -43,6 +43,17 @@ def test_help_and_version():
     assert res.stdout.strip() == f"dihedra {__version__}"
 
 
+def test_a_command_that_succeeded_ends_with_its_output_whole(system):
+    # the process ends without the interpreter's teardown, after its exit handlers; a profiler
+    # watching it still reports (it prints once the command has returned)
+    top, _ = system
+    command = ["-m", "dihedra", "torsions", top, "--torsions", "rotatable"]
+    res = subprocess.run([sys.executable, *command], capture_output=True, text=True)
+    assert res.returncode == 0 and res.stdout.rstrip().endswith("4 torsions of 1 types"), res.stdout[-300:]
+    res = subprocess.run([sys.executable, "-m", "cProfile", "-s", "cumtime", *command], capture_output=True, text=True)
+    assert res.returncode == 0 and "4 torsions of 1 types" in res.stdout and "Ordered by: cumulative time" in res.stdout
+
+
 def test_track_writes_folder_and_prints_populations(system, tmp_path, capsys):
     top, traj = system
     code, out, err = run_cli(capsys, "track", top, traj, "--torsions", "rotatable", "--out", tmp_path / "r")

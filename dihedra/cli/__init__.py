@@ -94,11 +94,15 @@ def _quick_exit():
     (about 0.1 s after a run that loaded MDAnalysis, pandas and numba): the exit handlers run as
     on a normal exit (logging, multiprocessing, finalisers of temporary folders), the output is
     flushed, and the process ends with status 0. Only when no other thread but daemons is left
-    (a normal exit would wait for it) and the output could be flushed; else the exit is normal."""
+    (a normal exit would wait for it), no profiler or debugger watches (it reports once the
+    command has returned: ``python -m cProfile -m dihedra ...``) and the output could be flushed;
+    else the exit is normal."""
     import atexit
     import threading
 
     if any(t is not threading.main_thread() and t.is_alive() and not t.daemon for t in threading.enumerate()):
+        return
+    if sys.getprofile() is not None or sys.gettrace() is not None:
         return
     try:
         sys.stdout.flush()
