@@ -32,7 +32,6 @@ from .io.outputs import StagedFolder
 from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
 from .io.tables import write_json, write_table
-from .numerics.statistics import warm_blocking
 from .selection.choice import choose_schemes
 from .selection.specs import select_torsions
 from .selection.torsions import TorsionSet
@@ -340,20 +339,17 @@ class _Run:
 
     def finish(self, tset, scheme, universe, topology, replicas, params, schemes=None):
         """The result and its folder: blocks.npz written by another thread (zlib releases Python's
-        lock) while the last rows of the time series are written and then while this thread
-        computes the populations and the tables."""
-        blocks = block_sums(self.passes)
-        work = self.work
-        self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
-                                                     narrow=[k for k in blocks if narrowed_type(k)]))]
-        # the last row group of the time series before the tables: Arrow's writer of 15,000
-        # columns takes about 100 MB while it writes, which the tables would otherwise come on top
-        # of; meanwhile the compiled kernel of the errors is loaded (up to a tenth of a second)
+        lock) while this one computes the populations and writes the tables."""
+        # the last row group of the time series first: Arrow's writer of 15,000 columns takes
+        # about 100 MB while it writes, which the tables would otherwise come on top of
         with self.phase("series"):
-            warm_blocking()
             self.passes[-1].finish_series()
         release_memory()
         with self.phase("tables"):
+            blocks = block_sums(self.passes)
+            work = self.work
+            self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
+                                                         narrow=[k for k in blocks if narrowed_type(k)]))]
             result = assemble_result(tset, scheme, universe, self.notices, blocks)
             result.schemes = schemes
             result.time_blocks = pass_time_blocks(self.passes, tset.types, scheme.labels)

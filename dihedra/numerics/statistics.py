@@ -159,13 +159,6 @@ def blocking_error(block_values, block_weights, block_replica, min_blocks=MIN_BL
                               weight_columns)
 
 
-def warm_blocking():
-    """Load the compiled kernel of :func:`blocking_error` (its machine code from numba's cache,
-    about 0.1 s) with a call on tiny arrays: every call passes the kernel arrays of the same
-    types, so later calls find it loaded."""
-    blocking_error(np.zeros((2, 1)), np.ones((2, 1)), np.zeros(2, dtype=np.int64))
-
-
 def _blocking_levels(replica, min_blocks=MIN_BLOCKS):
     """The merges of :func:`blocking_error` for blocks of the given replicas: ``(pair_a, pair_b,
     sizes)``, level after level while a level keeps at least ``min_blocks`` blocks; level k merges
@@ -200,7 +193,7 @@ def _compiled_blocking(kernels, block_values, block_weights, block_replica, min_
         weight_columns = np.broadcast_to(index, shape).reshape(-1)
     w = np.ascontiguousarray(w.reshape(n_blocks, -1))
     # (always a writable copy: a read-only view, as np.broadcast_to gives, would make numba load
-    # a second machine code of the kernel, a tenth of a second)
+    # a second machine code of the kernel: up to a tenth of a second)
     weight_columns = np.array(weight_columns, dtype=np.int64)
     r = np.asarray(block_replica)
     # blocks with weight in the columns used (as the NumPy code sees them)
