@@ -38,7 +38,6 @@ from .selection.torsions import TorsionSet
 from .trajectory import interrupts
 from .trajectory.assemble import (assemble_result, block_sums, make_summary, pass_threads, plan_workers, replica_info,
                                  scheme_table)
-from .trajectory.basins import need_temperature, plan_basins
 from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
 from .trajectory.discard import plan_discard
 from .trajectory.inputs import FileHashes, check_readable, load_universe, truncated_error, usable_frames
@@ -205,7 +204,9 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
         run.notices.extend(tset.notices)
         choice = choose_schemes(scheme, universes[0], tset, torsions)
         run.notices.extend(choice.notices)
-        if choice.needs_data:
+        if choice.needs_data:   # (basins: imported only for them)
+            from .trajectory.basins import need_temperature, plan_basins
+
             need_temperature(temperature_k)
         scheme = choice.provisional() if choice.needs_data else choice.resolve()
         frames = [_frame_indices(u, start, stop, step, f"trajectory {t}")

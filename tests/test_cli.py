@@ -43,6 +43,17 @@ def test_help_and_version():
     assert res.stdout.strip() == f"dihedra {__version__}"
 
 
+def test_a_command_that_succeeded_ends_with_its_output_whole(system):
+    # the process ends without the interpreter's teardown, after its exit handlers; a profiler
+    # watching it still reports (it prints once the command has returned)
+    top, _ = system
+    command = ["-m", "dihedra", "torsions", top, "--torsions", "rotatable"]
+    res = subprocess.run([sys.executable, *command], capture_output=True, text=True)
+    assert res.returncode == 0 and res.stdout.rstrip().endswith("4 torsions of 1 types"), res.stdout[-300:]
+    res = subprocess.run([sys.executable, "-m", "cProfile", "-s", "cumtime", *command], capture_output=True, text=True)
+    assert res.returncode == 0 and "4 torsions of 1 types" in res.stdout and "Ordered by: cumulative time" in res.stdout
+
+
 def test_track_writes_folder_and_prints_populations(system, tmp_path, capsys):
     top, traj = system
     code, out, err = run_cli(capsys, "track", top, traj, "--torsions", "rotatable", "--out", tmp_path / "r")
@@ -72,6 +83,20 @@ def test_bad_options_give_one_line_and_write_nothing(system, tmp_path, capsys, a
     code, _, err = run_cli(capsys, "track", top, traj, "--out", tmp_path / "r", *args)
     assert_one_line_error(code, err, *fragments)
     assert "=None" not in err   # a range in words, not Python's None
+    assert os.listdir(tmp_path) == []
+
+
+@pytest.mark.parametrize("args, line", [
+    (["track", "{top}", "{traj}", "--torsions", "rotatable", "--out", "{out}", "-q"],
+     "dihedra: error: unrecognized arguments: -q (see 'dihedra track --help')."),
+    (["-q"], "dihedra: error: unrecognized arguments: -q (see 'dihedra --help')."),
+    (["track", "{top}", "{traj}", "--torsions", "rotatable", "--out", "{out}", "--stop", "x"],
+     "dihedra: error: dihedra track: argument --stop: invalid int value: 'x' (see 'dihedra track --help')."),
+])
+def test_usage_errors_name_dihedra_once_and_the_help_to_read(system, tmp_path, capsys, args, line):
+    top, traj = system
+    code, _, err = run_cli(capsys, *[a.format(top=top, traj=traj, out=tmp_path / "r") for a in args])
+    assert code == 2 and err.strip() == line
     assert os.listdir(tmp_path) == []
 
 

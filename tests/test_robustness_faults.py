@@ -169,12 +169,13 @@ def test_a_signal_at_a_random_moment_stops_the_run_cleanly(work, sig, backend):
 
 @pytest.mark.parametrize("delay", [0.05, 0.2, 0.4, 0.7, 1.0])
 def test_ctrl_c_while_the_command_line_is_still_loading(work, delay):
-    """SIGINT in the first second, while the libraries are imported: one line, no traceback,
-    nothing changed (or, before Python itself is up, the process ends by the signal)."""
+    """SIGINT in the first second, while the libraries are imported or the run has just begun:
+    one line, no traceback, nothing changed (or, before Python itself is up, the process ends by
+    the signal). Eight replicas, so that the run is still going at the last of these moments."""
     before = snapshot(work / "res")
     env = dict(os.environ, PYTHONPATH=REPO + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable",
-            "--out", "res", "--overwrite"]
+    argv = [sys.executable, "-m", "dihedra", "track", "hexane.pdb", *["hexane.xtc"] * 8, "--allow-duplicates",
+            "--torsions", "rotatable", "--out", "res", "--overwrite"]
     proc = subprocess.Popen(argv, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     time.sleep(delay)
     proc.send_signal(signal.SIGINT)

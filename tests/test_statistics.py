@@ -150,3 +150,22 @@ def test_pooled_error_of_copies_and_of_residues_that_differ():
     # one item: its own error; no heterogeneity to speak of
     r = pooled_mean_error([0.2], [0.01])
     assert r["se"] == 0.01 and np.isnan(r["i_squared"])
+
+
+def test_every_blocking_call_uses_one_machine_code():
+    # broadcast weights (populations), weights by column (conformers), 1-D values: the kernel is
+    # always handed writable arrays, so numba loads one machine code of it per run (a read-only
+    # view, as np.broadcast_to gives, is another type to numba: a second load)
+    from numba.core import types
+
+    from dihedra.numerics._kernels import blocking_columns
+
+    rng = np.random.default_rng(3)
+    counts = rng.integers(0, 5, size=(16, 7, 3)).astype(float)
+    blocking_error(counts, counts.sum(axis=2, keepdims=True), np.zeros(16, dtype=int))
+    blocking_error(counts[:, :, 0], counts.sum(axis=2), np.zeros(16, dtype=int),
+                   weight_columns=np.arange(7) % 3)
+    blocking_error(counts[:, 0, 0], counts[:, 0].sum(axis=1), np.repeat([0, 1], 8))
+    blocking_error(np.zeros((2, 1)), np.ones((2, 1)), np.zeros(2, dtype=np.int64))
+    arrays = [arg for sig in blocking_columns.signatures for arg in sig if isinstance(arg, types.Array)]
+    assert arrays and all(arg.mutable for arg in arrays)

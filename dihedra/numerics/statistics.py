@@ -192,7 +192,9 @@ def _compiled_blocking(kernels, block_values, block_weights, block_replica, min_
         index = np.arange(int(np.prod(w.shape[1:], dtype=np.int64))).reshape(w.shape[1:])
         weight_columns = np.broadcast_to(index, shape).reshape(-1)
     w = np.ascontiguousarray(w.reshape(n_blocks, -1))
-    weight_columns = np.ascontiguousarray(weight_columns, dtype=np.int64)
+    # (always a writable copy: a read-only view, as np.broadcast_to gives, would make numba load
+    # a second machine code of the kernel: up to a tenth of a second)
+    weight_columns = np.array(weight_columns, dtype=np.int64)
     r = np.asarray(block_replica)
     # blocks with weight in the columns used (as the NumPy code sees them)
     kept = np.flatnonzero((w[:, np.unique(weight_columns)] if given else w).sum(axis=1) > 0)

@@ -41,7 +41,6 @@ from dataclasses import dataclass, field
 import pandas as pd
 
 from ..errors import SchemeError, SelectionError
-from .chemistry import classify_torsions, schemes_by_type
 from .schemes import SchemeSet, StateScheme, anti_gauche, default_scheme, get_scheme, scheme_by_type
 from .specs import select_torsions
 
@@ -168,6 +167,8 @@ def choose_schemes(spec, universe, tset, torsions=None):
 
 
 def _auto(universe, tset, name="auto"):
+    from .chemistry import classify_torsions, schemes_by_type   # (only for auto: not imported by other runs)
+
     table = classify_torsions(universe, tset)
     choices, notices = schemes_by_type(table)
     return SchemeChoice(name=name, by_type={t: get_scheme(s) for t, (s, _) in choices.items()},

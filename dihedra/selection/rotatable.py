@@ -34,7 +34,7 @@ def _bond_graph(universe, notices):
     both = np.concatenate([bonds, bonds[:, ::-1]])
     keys = np.unique(both[:, 0] * n + both[:, 1])  # sorted, both directions, no repeats
     first, second = keys // n, keys % n
-    starts = np.searchsorted(first, np.arange(n + 1))
+    starts = np.searchsorted(first, np.arange(n + 1)).tolist()
     neighbours = second.tolist()
     return [neighbours[starts[i]:starts[i + 1]] for i in range(n)]
 
@@ -65,10 +65,12 @@ def _guess_bonds(universe, notices):
     return bonds
 
 
-def _bridges(adjacency, roots=None):
+def _bridges(adjacency, roots=None, skip=None):
     """Set of bridges ``(min, max)`` of an undirected graph (iterative Tarjan).
 
-    ``roots`` limits the search to the connected components of these atoms.
+    ``roots`` limits the search to the connected components of these atoms; atoms ``skip[i]``
+    true are left out of the graph (terminal atoms: their bonds lie in no ring, and the bridges
+    among the other bonds stay the same without them).
     """
     n = len(adjacency)
     disc = [-1] * n
@@ -76,7 +78,7 @@ def _bridges(adjacency, roots=None):
     out = set()
     timer = 0
     for root in (range(n) if roots is None else roots):
-        if disc[root] != -1 or not adjacency[root]:
+        if disc[root] != -1 or not adjacency[root] or (skip is not None and skip[root]):
             continue
         disc[root] = low[root] = timer
         timer += 1
@@ -85,7 +87,7 @@ def _bridges(adjacency, roots=None):
             node, parent, it = stack[-1]
             advanced = False
             for nxt in it:
-                if nxt == parent:
+                if nxt == parent or (skip is not None and skip[nxt]):
                     continue
                 if disc[nxt] == -1:
                     disc[nxt] = low[nxt] = timer
@@ -93,14 +95,16 @@ def _bridges(adjacency, roots=None):
                     stack.append((nxt, node, iter(adjacency[nxt])))
                     advanced = True
                     break
-                low[node] = min(low[node], disc[nxt])
+                if disc[nxt] < low[node]:
+                    low[node] = disc[nxt]
             if not advanced:
                 stack.pop()
                 if stack:
                     p = stack[-1][0]
-                    low[p] = min(low[p], low[node])
+                    if low[node] < low[p]:
+                        low[p] = low[node]
                     if low[node] > disc[p]:
-                        out.add((min(p, node), max(p, node)))
+                        out.add((p, node) if p < node else (node, p))
     return out
 
 
@@ -154,6 +158,57 @@ def _linear_centres(adjacency, candidates, positions, box):
     return set(centres[ang > LINEAR_DEG].tolist())
 
 
+def _outer_choices(n, owner, flat, heavy, masses):
+    """The outer atoms by the rule of the module docstring (heavy first, larger mass, more heavy
+    neighbours, lower index): ``(best, second)``, for every atom its first and second neighbour
+    in that order (-1 where it has fewer). The outer atom of bond B-C on B's side is ``best[B]``,
+    or ``second[B]`` where that is C.
+
+    ``owner, flat``: every bond in both directions. The rule ranks all atoms with one sort (the
+    index breaks every tie, so it is a total order); ``None`` when a mass is NaN (no total order).
+    """
+    heavy = np.asarray(heavy, dtype=bool)
+    if np.isnan(masses).any():
+        return None
+    heavy_degree = np.bincount(owner, weights=heavy[flat].astype(float), minlength=n).astype(int)
+    rank = np.empty(n, dtype=np.int64)   # lexsort: the last key sorts first
+    rank[np.lexsort((np.arange(n), -heavy_degree, -masses, ~heavy))] = np.arange(n)
+    order = np.lexsort((rank[flat], owner))   # neighbours of every atom, best first
+    neighbours = flat[order]
+    start = np.searchsorted(owner[order], np.arange(n))
+    count = np.bincount(owner, minlength=n)
+    best = np.where(count >= 1, neighbours[np.minimum(start, len(flat) - 1)], -1)
+    second = np.where(count >= 2, neighbours[np.minimum(start + 1, len(flat) - 1)], -1)
+    return best, second
+
+
+def _outer_by_keys(adjacency, heavy, masses, owner, flat):
+    """``outer(end, other)`` comparing the rule's keys choice by choice (masses with NaN)."""
+    heavy = np.asarray(heavy, dtype=bool)
+    heavy_degree = np.bincount(owner, weights=heavy[flat].astype(float), minlength=len(adjacency)).astype(int)
+
+    def outer(end, other):
+        candidates = [j for j in adjacency[end] if j != other]
+        return min(candidates, key=lambda j: (not heavy[j], -masses[j], -heavy_degree[j], j))
+    return outer
+
+
+def _quads(adjacency, inner, heavy, masses, owner, flat):
+    """A-B-C-D for every bond B-C of ``inner`` (an (n, 2) array), the outer atoms by the rule."""
+    if len(inner) == 0:
+        return np.empty((0, 4), dtype=np.int64)
+    choices = _outer_choices(len(adjacency), owner, flat, heavy, masses)
+    if choices is None:
+        outer = _outer_by_keys(adjacency, heavy, masses, owner, flat)
+        return np.array([(outer(b, c), b, c, outer(c, b)) for b, c in inner.tolist()],
+                        dtype=np.int64).reshape(-1, 4)
+    best, second = choices
+    b, c = inner[:, 0], inner[:, 1]
+    a = np.where(best[b] != c, best[b], second[b])
+    d = np.where(best[c] != b, best[c], second[c])
+    return np.stack([a, b, c, d], axis=1)
+
+
 def rotatable_torsions(universe):
     """Torsions of every rotatable bond; see the module docstring for the rules.
 
@@ -163,37 +218,25 @@ def rotatable_torsions(universe):
     """
     notices = []
     adjacency = _bond_graph(universe, notices)
-    degree = np.array([len(a) for a in adjacency])
+    degree = np.array([len(a) for a in adjacency], dtype=np.int64)
+    # every bond in both directions (owner -> neighbour), and those between two non-terminal atoms
+    owner = np.repeat(np.arange(len(adjacency)), degree)
+    flat = np.fromiter((j for nbrs in adjacency for j in nbrs), dtype=np.int64, count=int(degree.sum()))
+    between_inner = (degree[owner] >= 2) & (degree[flat] >= 2)
     # only components with a bond between two non-terminal atoms can hold a rotatable bond
-    roots = sorted({b for b, nbrs in enumerate(adjacency) if degree[b] >= 2
-                    and any(degree[c] >= 2 for c in nbrs)})
-    ring_free = _bridges(adjacency, roots)
+    roots = np.unique(owner[between_inner]).tolist()
+    inner = sorted(_bridges(adjacency, roots, skip=(degree < 2).tolist()))
     heavy = _is_heavy(universe)
     masses = _masses(universe)
     positions = _positions(universe)
     box = universe.dimensions if positions is not None else None
-    heavy_degree = np.zeros(len(adjacency), dtype=int)
-    if len(roots):   # heavy neighbours of every atom, counted at once
-        flat = np.fromiter((j for nbrs in adjacency for j in nbrs), dtype=np.int64, count=int(degree.sum()))
-        owner = np.repeat(np.arange(len(adjacency)), degree)
-        heavy_degree = np.bincount(owner, weights=np.asarray(heavy, dtype=float)[flat],
-                                   minlength=len(adjacency)).astype(int)
-
-    def outer(end, other):
-        candidates = [j for j in adjacency[end] if j != other]
-        return min(candidates, key=lambda j: (not heavy[j], -masses[j], -heavy_degree[j], j))
-
-    inner = sorted((b, c) for b, c in ring_free if degree[b] >= 2 and degree[c] >= 2)
     linear = _linear_centres(adjacency, {a for bond in inner for a in bond}, positions, box)
-    quads = []
-    n_linear = 0
-    for b, c in inner:
-        if b in linear or c in linear:
-            n_linear += 1
-            continue
-        quads.append((outer(b, c), b, c, outer(c, b)))
+    inner = np.array(inner, dtype=np.int64).reshape(-1, 2)
+    at_linear = np.isin(inner, np.fromiter(linear, dtype=np.int64, count=len(linear))).any(axis=1)
+    n_linear = int(at_linear.sum())
+    quads = _quads(adjacency, inner[~at_linear], heavy, masses, owner, flat)
     torsions = torsions_from_quads(universe, quads)
-    n_inner = sum(1 for b in roots for c in adjacency[b] if c > b and degree[c] >= 2)
+    n_inner = int(np.count_nonzero(between_inner & (owner < flat)))
     n_ring = n_inner - len(inner)
     if positions is None:
         notices.append("the topology has no coordinates; linear centres were not checked.")

@@ -21,9 +21,8 @@ import numpy as np
 from MDAnalysis.exceptions import NoDataError
 
 from ..errors import SelectionError
-from . import biopolymer
 from .rotatable import rotatable_torsions
-from .torsions import Torsion, TorsionSet, torsion_from_atoms
+from .torsions import Torsion, TorsionSet, replace_fields, torsion_from_atoms
 
 #: Named specifications.
 NAMED_SPECS = ("rotatable", "protein-backbone", "protein-sidechains", "nucleic-backbone")
@@ -187,6 +186,8 @@ def _select_one(universe, spec, keep_variants=False):
     elif spec == "rotatable":
         part = rotatable_torsions(universe)
     elif spec in ("protein-backbone", "protein-sidechains", "nucleic-backbone"):
+        from . import biopolymer   # (imported for these specifications only)
+
         part = {"protein-backbone": biopolymer.protein_backbone_torsions,
                 "protein-sidechains": biopolymer.protein_sidechain_torsions,
                 "nucleic-backbone": biopolymer.nucleic_backbone_torsions}[spec](universe, keep_variants=keep_variants)
@@ -228,7 +229,7 @@ def _deduplicate(tset):
             n += 1
             label = f"{base}#{n}"
         used.add(label)
-        out.append(t if label == t.label else _replace(t, label=label))
+        out.append(t if label == t.label else replace_fields(t, label=label))
     return TorsionSet(out, notices)
 
 
@@ -249,20 +250,12 @@ def _assign_order(tset):
     for pos, t in enumerate(tset.torsions):
         by_group.setdefault(t.group, []).append(pos)
     torsions = list(tset.torsions)
+    last = len(NAME_RANK)
+    keys = [(NAME_RANK.get(t.name, last), min(t.indices[1], t.indices[2]), max(t.indices[1], t.indices[2]), p)
+            for p, t in enumerate(torsions)]
     for group, positions in by_group.items():
-        ranked = sorted(positions, key=lambda p: (NAME_RANK.get(torsions[p].name, len(NAME_RANK)),
-                                                  min(torsions[p].indices[1:3]),
-                                                  max(torsions[p].indices[1:3]), p))
+        ranked = sorted(positions, key=keys.__getitem__)
         for order, p in enumerate(ranked):
             if torsions[p].order != order:
-                torsions[p] = _replace(torsions[p], order=order)
+                torsions[p] = replace_fields(torsions[p], order=order)
     return TorsionSet(torsions, tset.notices)
-
-
-def _replace(t, **changes):
-    """A copy of a torsion with some fields changed (faster than dataclasses.replace)."""
-    fields = {"indices": t.indices, "label": t.label, "type": t.type, "name": t.name,
-              "resname": t.resname, "resid": t.resid, "segid": t.segid, "group": t.group,
-              "order": t.order, "variant": t.variant}
-    fields.update(changes)
-    return Torsion(**fields)

@@ -139,7 +139,7 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     table["n_undefined_frames"] = undefined
     of_type = {t: scheme.scheme_of_type(t) for t in dict.fromkeys(types)}
     for frame in (table, pops, by_type, by_rep):   # the scheme each torsion follows
-        frame["scheme"] = [of_type[t] for t in frame["type"]]
+        frame["scheme"] = [of_type[t] for t in frame["type"].tolist()]   # (a list: Arrow strings iterate slowly)
     return TrackResult(torsion_set=tset, torsions=table, scheme=scheme, populations=pops,
                        populations_by_type=by_type, populations_by_replica=by_rep, conformers=conf,
                        conformers_by_type=conf_type, blocks=blocks, summary={}, notices=notices)

@@ -31,7 +31,6 @@ from ..units import check_temperature
 from ..selection.specs import select_torsions
 from ..selection.torsions import TorsionSet
 from .assemble import assemble_result, block_sums, make_summary, pass_threads, replica_info, scheme_table
-from .basins import need_temperature, plan_basins
 from .convergence import convergence_tables
 from .timeblocks import pass_time_blocks
 from .discard import parse_discard, plan_discard
@@ -131,7 +130,9 @@ class TorsionStates(TorsionPass):
                                                                                          keep_variants=keep_variants)
         tset = _within(tset, atomgroup.atoms, universe)
         self._choice = choose_schemes(scheme, universe, tset, torsions)
-        if self._choice.needs_data:
+        if self._choice.needs_data:   # (basins: imported only for them)
+            from .basins import need_temperature
+
             need_temperature(temperature_k)
         self._basins = self._basin_record = None
         scheme = self._choice.provisional() if self._choice.needs_data else self._choice.resolve()
@@ -200,6 +201,8 @@ class TorsionStates(TorsionPass):
 
     def _find_basins(self, start, stop, step, frames, backend, n_workers):
         """The basins of the types that asked for them: a first pass over the frames of this run."""
+        from .basins import plan_basins
+
         if frames is not None:
             chosen = np.asarray(frames)
             chosen = np.flatnonzero(chosen) if chosen.dtype == bool else chosen.astype(np.int64)

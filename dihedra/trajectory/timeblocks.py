@@ -142,7 +142,8 @@ def pass_time_blocks(passes, types, states):
         The scheme's state labels.
     """
     names = list(dict.fromkeys(types))
-    n_torsions = np.bincount([names.index(t) for t in types], minlength=len(names)) if len(types) else np.zeros(0, int)
+    position = {name: k for k, name in enumerate(names)}
+    n_torsions = np.bincount([position[t] for t in types], minlength=len(names)) if len(types) else np.zeros(0, int)
     out = []
     for r, tp in enumerate(passes):
         counts = tp.results.get("time_block_counts")
