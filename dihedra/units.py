@@ -87,5 +87,8 @@ def from_kj_mol(values, unit, temperature_k=None):
 def wrap_deg(angles_deg):
     """Map angles in degrees onto (-180, 180] (the project's convention)."""
     a = np.asarray(angles_deg, dtype=float)
-    wrapped = np.mod(a + 180.0, 360.0) - 180.0  # [-180, 180)
+    # angles already in range are kept as they are: (a + 180) - 180 would round an angle of
+    # 1e-20 degrees to 0, onto a state boundary
+    inside = (a > -180.0) & (a <= 180.0)
+    wrapped = np.where(inside, a, np.mod(a + 180.0, 360.0) - 180.0)  # [-180, 180) outside
     return np.where(wrapped == -180.0, 180.0, wrapped)

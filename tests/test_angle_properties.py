@@ -166,6 +166,34 @@ def test_the_pass_assigns_the_states_of_the_scheme(frames, name):
     assert (states == expected).all()
 
 
+def test_a_nearly_planar_torsion_keeps_its_sign():
+    # a cis torsion whose fourth atom sits 1.4e-25 A off the plane: its float32 angle is
+    # +1.6e-23 degrees, which the scheme and the pass both put in gauche+ (0, 120] (the arc
+    # boundary at 0 belongs to gauche-; the angle must not be rounded onto it)
+    import MDAnalysis as mda
+    from MDAnalysis.coordinates.memory import MemoryReader
+
+    from dihedra import TorsionStates
+
+    plane = np.array([[-0.5, -0.8660254, 0.0], [0.0, 0.0, 0.0], [0.0, -1.0, 0.0], [-0.5, -0.1339746, 0.0]])
+    off = plane.copy()
+    off[3, 2] = -1.3827618e-25
+    coords = np.asarray([plane, off], dtype=np.float32)
+    angle = torsion_angles_deg(coords[1], np.array([[0, 1, 2, 3]]))[0]
+    assert 0.0 < angle < 1e-20
+    scheme = get_scheme("anti-gauche")
+    assert scheme.labels[scheme.assign([angle])[0]] == "gauche+"
+    assert scheme.labels[scheme.assign([0.0])[0]] == "gauche-"
+    u = mda.Universe.empty(4, n_residues=1, atom_resindex=[0, 0, 0, 0], trajectory=True)
+    u.add_TopologyAttr("names", ["C1", "C2", "C3", "C4"])
+    u.add_TopologyAttr("resnames", ["BUT"])
+    u.add_TopologyAttr("resids", [1])
+    u.load_new(coords, format=MemoryReader)
+    states = TorsionStates(u.atoms, "0,1,2,3", scheme).run().results.states.iloc[:, -1].to_numpy()
+    np.testing.assert_array_equal(states, scheme.assign([torsion_angles_deg(c, np.array([[0, 1, 2, 3]]))[0]
+                                                         for c in coords]))
+
+
 @pytest.mark.parametrize("name", SCHEMES)
 def test_every_angle_has_one_state(name):
     # the arcs of a scheme cover the circle once: a fine grid (and the boundaries) all get a state
