@@ -10,7 +10,7 @@ per chunk and state, one comparison and two sums over its values (a few ns per t
 the memory, one chunk and the (small) block counts.
 
 The trajectory pass counts the same blocks while it runs (:class:`TimeBlockCounter`: per frame,
-the torsions of each type in each state, one compiled call per 256 frames, about 1 microsecond
+the torsions of each type in each state, one compiled call per 64 frames, about 1 microsecond
 per 1,000 torsions), so that :func:`pass_time_blocks` gives a run's time blocks without reading
 its series back (about 1 ms per frame of 15,000 torsions); the counts are the same integers, so
 the tables are identical (weighted runs: equal to float64 rounding, the products of counts and

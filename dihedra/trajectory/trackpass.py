@@ -56,9 +56,9 @@ fine bin and, in the bins that hold a core edge, the angle (:class:`~dihedra.tra
 ``cores.parquet`` stores it (one bit per torsion and frame), so that core-set kinetics needs no angle
 series.
 
-Every 256 frames and per chunk
-------------------------------
-The fine bins, codes (and angles) of the last 256 frames are buffered one row per frame; when
+Every 64 frames and per chunk
+----------------------------
+The fine bins, codes (and angles) of the last 64 frames are buffered one row per frame; when
 the buffer is full, the bins go into the histograms, the joint states of each conformer group
 into the conformer counts (compiled loop), and the codes (and angles, and the core bits packed
 along the torsions) are copied into the chunk buffer, one row per frame, as the time series store
@@ -68,7 +68,7 @@ chunk goes to the pass's time series writer (``series``; a row group of ``chunk_
 frames in states.parquet, cores.parquet and angles.parquet), so Parquet is
 encoded during the pass, by the process (and thread) that computed the frames: each worker of a
 parallel run writes the files of its own frames, named by replica and first frame, and the
-folder reads as one table in frame order. Memory stays bounded by the chunk buffer, the 256-frame
+folder reads as one table in frame order. Memory stays bounded by the chunk buffer, the 64-frame
 buffers and the block sums, whatever the number of frames.
 
 Parallel runs
@@ -100,11 +100,14 @@ from .trajread import frame_source
 #: With a second thread, coordinates are copied into batches of about this many bytes.
 BATCH_BYTES = 2 << 20
 
-#: Batches of frames in the two threads' hands (read, waiting, computed).
+#: Batches of frames in the two threads' hands (read, waiting, computed); more where the frames
+#: are pages of a mapped file (no coordinates to hold): the reading thread then runs on while
+#: the other adds buffered frames to the sums.
 BATCHES = 3
+BATCHES_MAPPED = 12
 
 #: Frames whose fine bins are buffered before they are added to the histograms.
-HIST_BUFFER_FRAMES = 256
+HIST_BUFFER_FRAMES = 64
 
 
 class TorsionPass(AnalysisBase):
@@ -405,7 +408,10 @@ class TorsionPass(AnalysisBase):
         size = int(max(1, min(BATCH_BYTES // max(1, 12 * n_atoms), self.n_frames)))
         words = getattr(getattr(self, "_source", None), "frame_words", None)
         if self.threads > 1:
-            self._overlap = Overlap(self._process, [Batch(size, n_atoms, words) for _ in range(BATCHES)])
+            n_batches = BATCHES_MAPPED if getattr(self._source, "read_mapped", None) and words else BATCHES
+            if hasattr(self._source, "batches_in_use"):
+                self._source.batches_in_use = n_batches
+            self._overlap = Overlap(self._process, [Batch(size, n_atoms, words) for _ in range(n_batches)])
             self._staged = self._overlap.take()
         elif getattr(self, "_source", None) is not None:   # decoded frames, in one thread
             self._batch = Batch(size, n_atoms, words)

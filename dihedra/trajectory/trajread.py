@@ -35,6 +35,9 @@ from .inputs import malformed_frame
 #: Set to 1 to read XTC through MDAnalysis' iteration as every other format.
 NO_DECODER_ENV = "DIHEDRA_NO_XTC_DECODER"
 
+#: Mapped pages of a DCD already computed are handed back in pieces of at least this many bytes.
+RELEASE_BYTES = 4 << 20
+
 #: Set to 1 to read DCD through MDAnalysis' iteration as every other format.
 NO_DCD_ENV = "DIHEDRA_NO_DCD_READER"
 
@@ -188,6 +191,8 @@ class DCDFrames(_FileFrames):
         self.frame_words = int(f._framesize) // 4
         self._map = self._words_of_map = None
         self._recent, self._released = [], 0
+        #: batches of frames that the pass keeps in its hands (see _release_before)
+        self.batches_in_use = 3
 
     def layout(self, indices):
         """``(where, stride)`` of the atoms ``indices`` (any shape) in a frame's words: the
@@ -265,17 +270,22 @@ class DCDFrames(_FileFrames):
         return self._words_of_map if self._map else None
 
     def _release_before(self, start):
-        """Hand back the mapped pages before the batch read two batches ago (the frames of the
-        last two batches may still be computed in the other thread)."""
+        """Hand back the mapped pages before the oldest batch that may still be computed in the
+        other thread (of :attr:`batches_in_use` batches, the one read that many reads ago is
+        done), :data:`RELEASE_BYTES` at a time (each call costs a system call and the other
+        thread's page table entries). A page handed back too early would be read again from
+        the page cache and then stay: the pass sets :attr:`batches_in_use`."""
         import mmap
 
-        recent = self._recent
-        if len(recent) == 2 and hasattr(mmap, "MADV_DONTNEED"):
-            upto = recent[0] // mmap.PAGESIZE * mmap.PAGESIZE
-            if upto > self._released:
+        recent = self._recent   # the starts of the last reads, oldest first
+        keep = max(1, int(self.batches_in_use))
+        upto = start if keep == 1 else (recent[1] if len(recent) == keep else None)
+        if upto is not None and hasattr(mmap, "MADV_DONTNEED"):
+            upto = upto // mmap.PAGESIZE * mmap.PAGESIZE
+            if upto - self._released >= RELEASE_BYTES:
                 self._map.madvise(mmap.MADV_DONTNEED, self._released, upto - self._released)
                 self._released = upto
-        self._recent = (recent + [start])[-2:]
+        self._recent = (recent + [start])[-keep:]
 
     def close(self):
         super().close()
