@@ -98,6 +98,9 @@ def write_csv(frame, path, threads=None):
                 fh.write(pending.popleft().result())
         while pending:
             fh.write(pending.popleft().result())
+    import pyarrow as pa
+
+    pa.default_memory_pool().release_unused()   # (Arrow's pool keeps what formatting took otherwise)
     return path
 
 

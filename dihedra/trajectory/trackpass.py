@@ -328,7 +328,8 @@ class TorsionPass(AnalysisBase):
         weighted = self.weights is not None
         self._hist_dtype = np.float64 if weighted else np.int64   # (of the weights of frames)
         res = self.results
-        res.state_counts = np.zeros((self.n_state_blocks, n_t, n_s), dtype=np.float64 if weighted else np.int64)
+        # (int32 during the pass: 2^31 frames per block and cell at most; int64 once it is done)
+        res.state_counts = np.zeros((self.n_state_blocks, n_t, n_s), dtype=np.float64 if weighted else np.int32)
         res.block_frames = np.zeros(self.n_state_blocks, dtype=np.int64)
         res.block_weights = np.zeros(self.n_state_blocks, dtype=np.float64)
         res.hist_block_frames = np.zeros(self.n_hist_blocks, dtype=np.int64)
@@ -511,6 +512,8 @@ class TorsionPass(AnalysisBase):
 
     def _conclude(self):
         res = self.results
+        if res.state_counts.dtype != np.float64:   # (after the pass's buffers are gone)
+            res.state_counts = res.state_counts.astype(np.int64)
         # conformer rows and dense counts of the workers (files or arrays), summed where two
         # workers counted the same block
         res.conformer_counts, res.conformer_weights = merge_rows(
