@@ -42,7 +42,7 @@ kinetics --assignment crisp`` on that folder, timed separately.
 
 Run from the repository root::
 
-    python benchmarks/bench_track.py --repeat 3 --skip post   # the trajectory pass, about 20 min
+    python benchmarks/bench_track.py --repeat 3 --skip post   # the trajectory pass, about 10 min
     python benchmarks/bench_track.py --repeat 3               # with post-processing
 """
 

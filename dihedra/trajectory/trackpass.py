@@ -57,7 +57,7 @@ fine bin and, in the bins that hold a core edge, the angle (:class:`~dihedra.tra
 series.
 
 Every 64 frames and per chunk
-----------------------------
+-----------------------------
 The fine bins, codes (and angles) of the last 64 frames are buffered one row per frame; when
 the buffer is full, the bins go into the histograms, the joint states of each conformer group
 into the conformer counts (compiled loop), and the codes (and angles, and the core bits packed
