@@ -85,6 +85,27 @@ def test_damaged_batch_in_the_file_layout_is_read_by_mdanalysis(tmp_path):
     src.close()
 
 
+def test_a_file_cut_short_after_mapping_is_not_read_from_the_mapping(tmp_path):
+    # the mapped pages of a file that shrank would end the process (SIGBUS): read_mapped checks
+    # the size first and leaves such a batch to read(), whose reading fails cleanly
+    import shutil
+
+    path = str(tmp_path / "adk.dcd")
+    shutil.copy(data.DCD, path)
+    reader = _universe(data.PSF, path).trajectory
+    src = trajread.frame_source(reader)
+    dims, fr, t = np.empty((3, 6), dtype=np.float32), np.empty(3, np.int64), np.empty(3)
+    first = src.read_mapped(np.arange(3), dims, fr, t)
+    np.testing.assert_array_equal(_as_atoms(src, first)[2], reader[2].positions)
+    del first
+    last = reader.n_frames - 3
+    with open(path, "r+b") as fh:
+        fh.truncate(int(src.offsets[last]) + 100)
+    assert src.read_mapped(np.arange(last, last + 3), dims, fr, t) is None
+    assert src.read_mapped(np.arange(3), dims, fr, t) is not None   # (frames before the cut)
+    src.close()
+
+
 def test_pass_over_dcd_equals_mdanalysis_reading(tmp_path, monkeypatch):
     # a damaged frame (a record marker overwritten) is read again by MDAnalysis, whose error
     # ends the run as it would without dihedra's reader

@@ -247,6 +247,12 @@ class DCDFrames(_FileFrames):
         if words is None:
             return None
         start = int(self.offsets[frames[0]])
+        end = int(self.offsets[frames[-1]] + self.sizes[frames[-1]])
+        try:   # a file cut short since it was opened: its missing pages would end the process
+            if os.stat(self.path).st_size < end or len(self._map) < end:
+                return None
+        except OSError:
+            return None
         rows = np.lib.stride_tricks.as_strided(words[start // 4:], shape=(n, self.frame_words),
                                                strides=(step * int(self.sizes[0]), 4), writeable=False)
         if not self._records_intact(rows.view(np.int32)):
