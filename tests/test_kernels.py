@@ -76,10 +76,6 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
                           np.nextafter(edges, np.float32(-200)), rng.uniform(-180, 180, 5000).astype(np.float32),
                           [np.nan, 180.0]]).astype(np.float32)
     deg = np.where(deg <= -180, np.float32(180), deg)
-    # assign() wraps through a + 180, which rounds angles below 1e-14 degrees to 0 (the float32
-    # neighbours of 0); the pass bins them exactly, so compare next to 0 at 1e-6 degrees instead
-    tiny = (np.abs(deg) < 1e-12) & (deg != 0)
-    deg[tiny] = np.sign(deg[tiny]) * np.float32(1e-6)
     n = len(deg)
     table = bin_state_table(scheme, n_bins)
     hist = np.zeros((1, n, n_bins), dtype=np.int32)
@@ -87,12 +83,15 @@ def test_bin_and_count_equal_assign_at_every_boundary(name):
     codes = np.empty(n, dtype=np.int8)
     undefined = np.zeros(n, dtype=np.int64)
     bins = np.empty((1, n), dtype=np.uint16)
+    per_state = np.zeros(scheme.n_states, dtype=np.int32)
     nb = len(scheme.boundaries_deg)
     _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table[None, :], np.zeros(n, dtype=np.int64),
                           np.asarray(scheme.boundaries_deg, dtype=float)[None, :], np.array([nb]),
                           np.asarray(scheme.start_closed, dtype=bool)[None, :],
                           np.asarray(scheme.arc_states, dtype=np.int8)[None, :],
-                          MIXED, bins[0], codes, counts, 1, undefined)
+                          MIXED, bins[0], codes, counts, 1, undefined, np.zeros(n, dtype=np.int64), per_state)
+    # the frame's torsions in each state (all of one type here): the state counts summed
+    np.testing.assert_array_equal(per_state, counts.sum(axis=0))
     top = np.zeros(1, dtype=np.int64)
     _kernels.add_histograms(bins, np.ones(1, dtype=np.int64), hist[0], top)
     assert top[0] == hist.max() == 1   # the largest cell written (from which the pass widens narrow counts)
@@ -214,8 +213,15 @@ def test_a_set_of_schemes_codes_each_torsion_by_its_own_part():
     counts = np.zeros((n, scheme.n_states), dtype=np.int64)
     codes = np.empty(n, dtype=np.int8)
     bins = np.empty(n, dtype=np.uint16)
+    keys = {t: k for k, t in enumerate(dict.fromkeys(types))}
+    type_key = np.array([keys[t] * scheme.n_states for t in types], dtype=np.int64)
+    per_type = np.zeros(len(keys) * scheme.n_states, dtype=np.int32)
     _kernels.bin_and_code(deg, 1.0, 0.0, n_bins // 2, n_bins, table, *args, MIXED, bins, codes, counts, 1,
-                          np.zeros(n, dtype=np.int64))
+                          np.zeros(n, dtype=np.int64), type_key, per_type)
+    # the torsions of each type in each state, as NumPy counts them from the codes
+    expect_per_type = np.zeros_like(per_type)
+    np.add.at(expect_per_type, type_key + codes, 1)
+    np.testing.assert_array_equal(per_type, expect_per_type)
     expect = np.array([scheme.for_type(t).assign([float(a)])[0] for t, a in zip(types, deg)])
     np.testing.assert_array_equal(codes, expect)
     # every torsion only takes states of its own part

@@ -176,7 +176,7 @@ def dihedrals_deg(bonds, lengths, inverse, out):
 
 @njit(**_OPTS)
 def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries,
-                 start_closed, arc_states, mixed, bins, codes, counts, weight, undefined):
+                 start_closed, arc_states, mixed, bins, codes, counts, weight, undefined, type_key, type_row):
     """One frame: fine bin, state code and state count of every torsion.
 
     ``bins`` receives k = ceil((a + shift_in) / width) + shift_out, clipped to 1..n_bins (0 for
@@ -190,7 +190,8 @@ def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, classes, bounda
     ``n_boundaries[class]`` entries of ``boundaries``, ``start_closed`` and ``arc_states`` (last
     boundary at or below the angle; a boundary owned by the previous arc moves one arc back).
     ``counts[t, code]`` (the current state block) gets ``weight``; an undefined angle adds 1 to
-    ``undefined[t]`` instead.
+    ``undefined[t]`` instead. ``type_row[type_key[t] + code]`` counts the frame's torsions of each
+    type in each state (``type_key[t]`` = type index x number of states).
     """
     n = deg.shape[0]
     for t in range(n):   # SIMD
@@ -218,6 +219,7 @@ def bin_and_code(deg, width, shift_in, shift_out, n_bins, table, classes, bounda
         codes[t] = code
         if code >= 0:
             counts[t, code] += weight
+            type_row[type_key[t] + code] += 1
         else:
             undefined[t] += 1
 
@@ -277,12 +279,13 @@ def count_conformers(codes, local_block, members, powers, dense, weights, dense_
 @njit(**_OPTS)
 def frames(positions, idx3, stride, bonds, lengths, inverse, cells, reach2, triclinic, deg, width,
            shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries, start_closed, arc_states,
-           mixed, bins, codes, counts, state_block, weights, undefined):
+           mixed, bins, codes, counts, state_block, weights, undefined, type_key, type_counts):
     """Several frames in one call (no Python between them): for frame f (``positions[f]``, its
     coordinates as :func:`gather_bonds` takes them, with ``idx3`` and ``stride``), the angles
     (:func:`gather_bonds`, :func:`minimum_image_triclinic` if ``triclinic[f]``,
     :func:`dihedrals_deg` with ``lengths[f]`` / ``inverse[f]``) into ``deg[f]``, then
-    :func:`bin_and_code` into ``bins[f]``, ``codes[f]`` and ``counts[state_block[f]]``."""
+    :func:`bin_and_code` into ``bins[f]``, ``codes[f]``, ``counts[state_block[f]]`` and
+    ``type_counts[f]``."""
     for f in range(positions.shape[0]):
         gather_bonds(positions[f].reshape(-1), idx3, stride, bonds)
         if triclinic[f]:
@@ -290,7 +293,7 @@ def frames(positions, idx3, stride, bonds, lengths, inverse, cells, reach2, tric
         dihedrals_deg(bonds, lengths[f], inverse[f], deg[f])
         bin_and_code(deg[f], width, shift_in, shift_out, n_bins, table, classes, boundaries, n_boundaries,
                      start_closed, arc_states, mixed, bins[f], codes[f], counts[state_block[f]], weights[f],
-                     undefined)
+                     undefined, type_key, type_counts[f])
 
 
 @njit(**_OPTS)

@@ -45,7 +45,7 @@ class FrameWork:
     """
 
     def __init__(self, geometry, bin_args, state_counts, undefined, frame_sblock, frame_weight,
-                 core_bits=None):
+                 core_bits=None, type_key=None, n_keys=1):
         self.geometry = geometry
         self.kernels = geometry.kernels
         # where each atom's coordinates are in a frame (see gather_bonds): atom by atom, or as
@@ -56,6 +56,10 @@ class FrameWork:
         self.state_counts, self.undefined = state_counts, undefined
         self.frame_sblock, self.frame_weight = frame_sblock, frame_weight
         self.core_bits = core_bits
+        # per frame, the torsions of each type in each state (the convergence time blocks):
+        # type_key[t] + code indexes a row of n_keys counts
+        self.type_key = np.zeros(self.n, dtype=np.int64) if type_key is None else np.asarray(type_key, np.int64)
+        self.n_keys = max(1, int(n_keys))
         self.split = 0
         # per thread since the last move of the cut: seconds, frames, seconds of torsion work
         self._acc = [[0.0, 0, 0.0], [0.0, 0, 0.0]]
@@ -85,38 +89,44 @@ class FrameWork:
 
     def _part(self, batch, t0, t1, side):
         m = batch.n
-        out = _outputs(batch, side, t1 - t0, self.core_bits is not None)
+        out = _outputs(batch, side, t1 - t0, self.core_bits is not None, self.n_keys)
         if m == 0 or t1 <= t0:
             return
+        type_counts = out[4][:m]
+        type_counts[:] = 0
         bonds = self._bonds[side]   # (each thread its own buffer of bond vectors)
         if bonds is None or bonds.shape[1] != t1 - t0:
             bonds = self._bonds[side] = np.empty((9, t1 - t0), dtype=np.float64)
         i = batch.index[:m]
-        deg, bins, codes, cores = (None if a is None else a[:m] for a in out)
+        deg, bins, codes, cores = (None if a is None else a[:m] for a in out[:4])
         started = time.perf_counter()
         self.kernels.frames(batch.positions[:m], self.where[t0:t1], self.stride, bonds, *batch.boxes, deg,
                             *self.bin_head, self.classes[t0:t1], *self.bin_tail, bins, codes,
                             self.state_counts[:, t0:t1], self.frame_sblock[i],
-                            self.frame_weight[i], self.undefined[t0:t1])
+                            self.frame_weight[i], self.undefined[t0:t1], self.type_key[t0:t1], type_counts)
         if cores is not None:
             self.core_bits(bins, deg, cores.view(np.bool_), t0, t1)
         self._acc[side][2] += time.perf_counter() - started
         self._part_frames += m * (t1 - t0)
 
-    def copy_out(self, batch, lo, m, bins, codes, angles, cores=None):
+    def copy_out(self, batch, lo, m, bins, codes, angles, cores=None, type_counts=None):
         """Frames ``lo .. lo + m`` of the batch (both parts) into rows of the pass's buffers
-        (``angles`` and ``cores`` where given)."""
+        (``angles``, ``cores`` and ``type_counts``, the sum of both parts, where given)."""
         s = batch.split
+        if type_counts is not None:
+            type_counts[:] = 0
         for side, cols in ((0, slice(0, s)), (1, slice(s, self.n))):
             if cols.stop <= cols.start:
                 continue
-            deg, b, c, k = batch.outputs[side]
+            deg, b, c, k, tc = batch.outputs[side]
             bins[:, cols] = b[lo:lo + m]
             codes[:, cols] = c[lo:lo + m]
             if angles is not None:
                 angles[:, cols] = deg[lo:lo + m]
             if cores is not None:
                 cores[:, cols] = k[lo:lo + m]
+            if type_counts is not None:
+                type_counts += tc[lo:lo + m]
 
     # -- balance ------------------------------------------------------------------------------
     def balance(self, side, seconds, frames):
@@ -164,16 +174,18 @@ class FrameWork:
         return tuple(a[:m].copy() for a in self._boxes)
 
 
-def _outputs(batch, side, width, cores=False):
-    """The angle, bin, code (and core bit: int8 0/1) rows of one part of a batch, (re)allocated
-    for ``width`` torsions."""
+def _outputs(batch, side, width, cores=False, n_keys=1):
+    """The angle, bin, code (and core bit: int8 0/1) rows of one part of a batch and its counts
+    per type and state, (re)allocated for ``width`` torsions."""
     outs = getattr(batch, "outputs", None)
     if outs is None:
         outs = batch.outputs = [None, None]
     size = len(batch.frame)
     cur = outs[side]
-    if cur is None or cur[0].shape != (size, width) or (cur[3] is not None) != cores:
+    if (cur is None or cur[0].shape != (size, width) or (cur[3] is not None) != cores
+            or cur[4].shape[1] != n_keys):
         cur = outs[side] = (np.empty((size, width), dtype=np.float32), np.empty((size, width), dtype=np.uint16),
                             np.empty((size, width), dtype=np.int8),
-                            np.empty((size, width), dtype=np.int8) if cores else None)
+                            np.empty((size, width), dtype=np.int8) if cores else None,
+                            np.zeros((size, n_keys), dtype=np.int32))
     return cur

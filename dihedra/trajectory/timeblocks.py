@@ -10,8 +10,8 @@ per chunk and state, one comparison and two sums over its values (a few ns per t
 the memory, one chunk and the (small) block counts.
 
 The trajectory pass counts the same blocks while it runs (:class:`TimeBlockCounter`: per frame,
-the torsions of each type in each state, one compiled call per 64 frames, about 1 microsecond
-per 1,000 torsions), so that :func:`pass_time_blocks` gives a run's time blocks without reading
+the torsions of each type in each state, counted by the frame kernel beside each state code in
+both threads, added into the blocks every 64 frames), so that :func:`pass_time_blocks` gives a run's time blocks without reading
 its series back (about 1 ms per frame of 15,000 torsions); the counts are the same integers, so
 the tables are identical (weighted runs: equal to float64 rounding, the products of counts and
 weights summed in another order).
@@ -183,6 +183,8 @@ class TimeBlockCounter:
         self.run_start = np.r_[change, len(tix)].astype(np.int64)
         self.run_type = tix[change].astype(np.int64)
         self.n_types, self.n_states = len(names), int(n_states)
+        #: per torsion, type index x states: where its state adds in a frame's row of counts
+        self.type_key = tix * self.n_states
         self.n_frames = max(1, int(n_frames))
         self.n_blocks = max(1, min(int(n_frames), N_TIME_BLOCKS))
         self.weighted = bool(weighted)
@@ -201,6 +203,14 @@ class TimeBlockCounter:
         per = self._frame[:m]
         per[:] = 0
         kernels.type_state_counts(codes, self.run_start, self.run_type, self.n_states, per)
+        self.add_counts(per, positions, weights)
+
+    def add_counts(self, per, positions, weights):
+        """Add frames given as their counts: ``per`` (frames, types x states), the torsions of
+        each type in each state (as the frame kernel counts them with :attr:`type_key`)."""
+        m = len(per)
+        if m == 0 or self.n_types == 0:
+            return
         per = per.reshape(m, self.n_types, self.n_states)
         block = np.asarray(positions, dtype=np.int64) * self.n_blocks // self.n_frames
         cuts = np.flatnonzero(np.r_[True, block[1:] != block[:-1]])

@@ -369,8 +369,11 @@ class TorsionPass(AnalysisBase):
                           *scheme_args, MIXED)
         # the core membership of every frame (cores.parquet) goes with the time series
         self._core_bits = None if self.series is None else CoreBits(self.scheme, self.torsion_set.types, n_bins)
+        tb = self._time_blocks
         self._work = FrameWork(self._geometry, self._bin_args, self._state_counts, self._undefined,
-                               self._frame_sblock, self._frame_weight, self._core_bits)
+                               self._frame_sblock, self._frame_weight, self._core_bits,
+                               type_key=None if tb is None else tb.type_key,
+                               n_keys=self.scheme.n_states if tb is None else tb.n_types * tb.n_states)
         layout = getattr(getattr(self, "_source", None), "layout", None)
         if layout is not None:   # frames read as the file lays them out (DCD: no unpacking)
             self._work.use_layout(*layout(self._geometry.indices))
@@ -391,6 +394,7 @@ class TorsionPass(AnalysisBase):
             self.chunk_frames = default_chunk_frames(n_t, self.keep_angles, self.threads)
         cf = int(max(1, min(int(self.chunk_frames), self.n_frames)))
         self._stage_codes = np.empty((nf, n_t), dtype=np.int8)
+        self._stage_types = np.zeros((nf, self._work.n_keys), dtype=np.int32)   # per type and state
         self._stage_angles = np.empty((nf, n_t), dtype=np.float32) if self.keep_angles else None
         self._chunk_codes = np.empty((cf, n_t), dtype=np.int8)
         self._chunk_angles = np.empty((cf, n_t), dtype=np.float32) if self.keep_angles else None
@@ -470,7 +474,8 @@ class TorsionPass(AnalysisBase):
         i = batch.index[lo:lo + m]
         self._work.copy_out(batch, lo, m, self._bins[nb:nb + m], self._stage_codes[nb:nb + m],
                             None if self._stage_angles is None else self._stage_angles[nb:nb + m],
-                            None if self._stage_cores is None else self._stage_cores[nb:nb + m])
+                            None if self._stage_cores is None else self._stage_cores[nb:nb + m],
+                            self._stage_types[nb:nb + m])
         self._bins_hblock[nb:nb + m] = self._frame_hblock[i]
         self._bins_weight[nb:nb + m] = self._frame_weight[i]
         self._buf_frame[row:row + m] = batch.frame[lo:lo + m]
@@ -493,8 +498,7 @@ class TorsionPass(AnalysisBase):
             w = np.ones(m) if self.weights is None else self.weights[gi]
             self._conformers.count(self._stage_codes[:m], gi * self.n_state_blocks // max(1, self._n_total), w)
         if self._time_blocks is not None:
-            self._time_blocks.count(self._stage_codes[:m], gi, None if self.weights is None else self.weights[gi],
-                                    self._kernels)
+            self._time_blocks.add_counts(self._stage_types[:m], gi, None if self.weights is None else self.weights[gi])
         self._chunk_codes[r0:r1] = self._stage_codes[:m]
         if self._stage_angles is not None:
             self._chunk_angles[r0:r1] = self._stage_angles[:m]
@@ -569,7 +573,7 @@ class TorsionPass(AnalysisBase):
         if self._output is not None and self._output.collected is not None:
             res.series_parts = [self._output.collected]
         self._hist = self._conformers = None
-        self._stage_codes = self._stage_angles = self._chunk_codes = self._chunk_angles = None
+        self._stage_codes = self._stage_angles = self._stage_types = self._chunk_codes = self._chunk_angles = None
         self._stage_cores = self._chunk_cores = self._core_bits = self._time_blocks = None
         self._bins = None
         self._one_frame = self._staged = None
