@@ -297,32 +297,6 @@ def frames(positions, idx3, stride, bonds, lengths, inverse, cells, reach2, tric
 
 
 @njit(**_OPTS)
-def type_state_counts(codes, run_start, run_type, n_states, out):
-    """``out[f, k * n_states + s] +=`` the torsions of type ``k`` in state ``s`` in frame ``f``
-    (``codes`` (frames, torsions), -1 undefined). The torsions come in runs of one type
-    (``run_start``, one more entry than ``run_type``); a long run is counted state by state with
-    comparisons that LLVM turns into SIMD code, a short one torsion by torsion."""
-    for f in range(codes.shape[0]):
-        row = codes[f]
-        for r in range(run_type.shape[0]):
-            a, b = run_start[r], run_start[r + 1]
-            base = run_type[r] * n_states
-            if b - a >= 64:
-                seg = row[a:b]   # (a slice of its own: the loop below is then SIMD code, 15x faster)
-                for s in range(n_states):
-                    c = np.int32(0)
-                    code = np.int8(s)
-                    for t in range(seg.shape[0]):
-                        c += np.int32(seg[t] == code)
-                    out[f, base + s] += c
-            else:
-                for t in range(a, b):
-                    c = row[t]
-                    if 0 <= c < n_states:
-                        out[f, base + c] += 1
-
-
-@njit(**_OPTS)
 def core_bits(bins, deg, offset, lo, hi, exact, out):
     """``out[f, t] = lo[k] <= deg[f, t] <= hi[k]`` with ``k = bins[f, t] + offset[t]`` (the fine
     bin in the table of the torsion's scheme part); returns how many entries fall in bins that

@@ -179,9 +179,6 @@ class TimeBlockCounter:
     def __init__(self, types, n_states, n_frames, weighted=False):
         names = {t: k for k, t in enumerate(dict.fromkeys(types))}
         tix = np.array([names[t] for t in types], dtype=np.int64)
-        change = np.flatnonzero(np.r_[True, tix[1:] != tix[:-1]]) if len(tix) else np.zeros(0, np.int64)
-        self.run_start = np.r_[change, len(tix)].astype(np.int64)
-        self.run_type = tix[change].astype(np.int64)
         self.n_types, self.n_states = len(names), int(n_states)
         #: per torsion, type index x states: where its state adds in a frame's row of counts
         self.type_key = tix * self.n_states
@@ -190,20 +187,6 @@ class TimeBlockCounter:
         self.weighted = bool(weighted)
         self.counts = np.zeros((self.n_blocks, self.n_types, self.n_states),
                                dtype=np.float64 if weighted else np.int64)
-        self._frame = None
-
-    def count(self, codes, positions, weights, kernels):
-        """Add frames: ``codes`` (frames, torsions), their positions in the replica (increasing)
-        and weights (None: unweighted)."""
-        m = len(codes)
-        if m == 0 or self.n_types == 0:
-            return
-        if self._frame is None or len(self._frame) < m:
-            self._frame = np.zeros((m, self.n_types * self.n_states), dtype=np.int32)
-        per = self._frame[:m]
-        per[:] = 0
-        kernels.type_state_counts(codes, self.run_start, self.run_type, self.n_states, per)
-        self.add_counts(per, positions, weights)
 
     def add_counts(self, per, positions, weights):
         """Add frames given as their counts: ``per`` (frames, types x states), the torsions of
