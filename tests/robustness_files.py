@@ -124,6 +124,14 @@ def copy_contents(src_folder, dest_folder):
         (shutil.copytree if os.path.isdir(src) else shutil.copy)(src, os.path.join(dest_folder, name))
 
 
+def working_copy(base, tmp_path, monkeypatch):
+    """A fresh copy of the inputs and results in ``base``, made the current folder (the ``work``
+    fixture of the robustness tests)."""
+    copy_contents(base, tmp_path)
+    monkeypatch.chdir(tmp_path)
+    return tmp_path
+
+
 def leftovers(folder):
     """Staging or replaced folders left in ``folder`` (none may survive a run)."""
     return [n for n in os.listdir(folder) if ".partial-" in n or ".old-" in n]

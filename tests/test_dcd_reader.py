@@ -58,20 +58,26 @@ def test_batches_equal_mdanalysis_frames(top, traj, layout):
     src.close()
 
 
-def test_damaged_batch_in_the_file_layout_is_read_by_mdanalysis(tmp_path):
-    # a record marker of frame 2 overwritten: the batch is read again by MDAnalysis, frame by
-    # frame, into the same layout (frames before the damage equal the library's frames)
+def _copied_adk(tmp_path, n):
+    """A copy of MDAnalysisTests' adk DCD (to damage), its reader, dihedra's batch reader of it,
+    and the boxes, frame numbers and times of ``n`` frames to fill."""
     import shutil
 
     path = str(tmp_path / "adk.dcd")
     shutil.copy(data.DCD, path)
     reader = _universe(data.PSF, path).trajectory
-    src = trajread.frame_source(reader)
+    out = np.empty((n, 6), dtype=np.float32), np.empty(n, np.int64), np.empty(n)
+    return path, reader, trajread.frame_source(reader), out
+
+
+def test_damaged_batch_in_the_file_layout_is_read_by_mdanalysis(tmp_path):
+    # a record marker of frame 2 overwritten: the batch is read again by MDAnalysis, frame by
+    # frame, into the same layout (frames before the damage equal the library's frames)
+    path, reader, src, (dims, fr, t) = _copied_adk(tmp_path, 2)
     with open(path, "r+b") as fh:
         fh.seek(int(src.offsets[2]) + 4 * (src._cell_words + src.n_atoms + 2))   # the y record's marker
         fh.write(np.int32(7).tobytes())
     rows = np.empty((2, src.frame_words), dtype=np.float32)
-    dims, fr, t = np.empty((2, 6), dtype=np.float32), np.empty(2, np.int64), np.empty(2)
     assert not src._records_intact(np.fromfile(path, dtype=np.int32, count=src.frame_words,
                                                offset=int(src.offsets[2]))[None])
     src.read(np.array([0, 1]), rows, dims, fr, t)
@@ -88,13 +94,7 @@ def test_damaged_batch_in_the_file_layout_is_read_by_mdanalysis(tmp_path):
 def test_a_file_cut_short_after_mapping_is_not_read_from_the_mapping(tmp_path):
     # the mapped pages of a file that shrank would end the process (SIGBUS): read_mapped checks
     # the size first and leaves such a batch to read(), whose reading fails cleanly
-    import shutil
-
-    path = str(tmp_path / "adk.dcd")
-    shutil.copy(data.DCD, path)
-    reader = _universe(data.PSF, path).trajectory
-    src = trajread.frame_source(reader)
-    dims, fr, t = np.empty((3, 6), dtype=np.float32), np.empty(3, np.int64), np.empty(3)
+    path, reader, src, (dims, fr, t) = _copied_adk(tmp_path, 3)
     first = src.read_mapped(np.arange(3), dims, fr, t)
     np.testing.assert_array_equal(_as_atoms(src, first)[2], reader[2].positions)
     del first

@@ -22,7 +22,7 @@ import pytest
 
 from dihedra import example_path, load_results
 from dihedra.cli import main
-from robustness_files import copy_contents, leftovers, refused
+from robustness_files import leftovers, refused, working_copy
 from test_safe_outputs import snapshot
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -46,9 +46,8 @@ def base(tmp_path_factory):
 
 @pytest.fixture
 def work(base, tmp_path, monkeypatch):
-    copy_contents(base, tmp_path)
-    monkeypatch.chdir(tmp_path)
-    return tmp_path
+    """A fresh copy of the inputs and the results folder, as the current folder."""
+    return working_copy(base, tmp_path, monkeypatch)
 
 
 def failing(code, text):

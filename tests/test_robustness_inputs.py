@@ -16,8 +16,8 @@ import pytest
 from dihedra import example_path, load_results, track
 from dihedra.cli import main
 from dihedra.errors import DihedraError, InputFileError
-from robustness_files import (copy_contents, cut_mid_frame, damaged_xtc_variants, leftovers, nan_overflow_xtc, refused,
-                              short_xtc)
+from robustness_files import (cut_mid_frame, damaged_xtc_variants, leftovers, nan_overflow_xtc, refused, short_xtc,
+                              working_copy)
 from test_safe_outputs import snapshot
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -45,9 +45,7 @@ def base(tmp_path_factory):
 @pytest.fixture
 def work(base, tmp_path, monkeypatch):
     """A fresh copy of the inputs and the results folder, as the current folder."""
-    copy_contents(base, tmp_path)
-    monkeypatch.chdir(tmp_path)
-    return tmp_path
+    return working_copy(base, tmp_path, monkeypatch)
 
 
 def no_staging(folder):

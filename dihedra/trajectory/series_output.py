@@ -107,6 +107,42 @@ class SeriesOutput:
         return self._pool
 
 
+class ChunkBuffers:
+    """The chunk of the time series being filled, one row per frame: int8 codes, float32 angles
+    (if kept) and the core bits packed along the torsions (if recorded), and a second set that
+    the next chunk fills while the first is written (made at the first :meth:`swap`: runs of one
+    chunk never need it)."""
+
+    def __init__(self, n_frames, n_torsions, angles=False, cores=False):
+        self.codes = np.empty((n_frames, n_torsions), dtype=np.int8)
+        self.angles = np.empty((n_frames, n_torsions), dtype=np.float32) if angles else None
+        self.cores = np.zeros((n_frames, (n_torsions + 7) // 8), dtype=np.uint8) if cores else None
+        self._spare = None
+
+    def fill(self, r0, r1, codes, angles=None, cores=None):
+        """Rows ``r0 .. r1`` from the buffered frames (cores: 0/1 per torsion, packed here)."""
+        self.codes[r0:r1] = codes
+        if self.angles is not None:
+            self.angles[r0:r1] = angles
+        if self.cores is not None:
+            self.cores[r0:r1] = np.packbits(cores, axis=1, bitorder="little")
+
+    def values(self, n):
+        """The first ``n`` rows of each kind, as views (``{"states": ..., "angles": ..., "cores": ...}``)."""
+        return {kind: buf[:n] for kind, buf in (("states", self.codes), ("angles", self.angles),
+                                                ("cores", self.cores)) if buf is not None}
+
+    def swap(self):
+        """Fill the other set next (the one just handed over is being written)."""
+        mine = (self.codes, self.angles, self.cores)
+        if self._spare is None:
+            self._spare = tuple(None if b is None else np.empty_like(b) for b in mine)
+        (self.codes, self.angles, self.cores), self._spare = self._spare, mine
+
+    def drop_spare(self):
+        self._spare = None
+
+
 class MemorySeriesFactory:
     """Makes writers that keep the time series in memory (copies of the chunks), for a
     :class:`~dihedra.trajectory.result.MemorySeries`."""

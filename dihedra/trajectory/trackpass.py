@@ -60,16 +60,13 @@ Every 64 frames and per chunk
 -----------------------------
 The fine bins, codes (and angles) of the last 64 frames are buffered one row per frame; when
 the buffer is full, the bins go into the histograms, the joint states of each conformer group
-into the conformer counts (compiled loop), and the codes (and angles, and the core bits packed
-along the torsions) are copied into the chunk buffer, one row per frame, as the time series store
-them (no transpose). All of it runs where the
-frames are processed (with ``threads=2``, in the second thread, while the first reads on). A full
-chunk goes to the pass's time series writer (``series``; a row group of ``chunk_frames``
-frames in states.parquet, cores.parquet and angles.parquet), so Parquet is
-encoded during the pass, by the process (and thread) that computed the frames: each worker of a
-parallel run writes the files of its own frames, named by replica and first frame, and the
-folder reads as one table in frame order. Memory stays bounded by the chunk buffer, the 64-frame
-buffers and the block sums, whatever the number of frames.
+into the conformer counts (compiled loop), and the codes (angles, core bits packed along the
+torsions) are copied into the chunk buffer, one row per frame as the time series store them, all
+where the frames are processed (with ``threads=2``, in the second thread). A full chunk goes to
+the pass's time series writer (``series``; a row group of ``chunk_frames`` frames), so each
+worker of a parallel run writes the files of its own frames, named by replica and first frame,
+and the folder reads as one table in frame order. Memory stays bounded by the chunk buffer, the
+64-frame buffers and the block sums, whatever the number of frames.
 
 Parallel runs
 -------------
@@ -93,7 +90,7 @@ from .cores import CoreBits
 from .frame_work import FrameWork
 from .histograms import MIXED, HistogramBlocks, bin_state_tables, merge_hist_parts, sparse_piece
 from .overlap import Batch, Overlap
-from .series_output import SeriesOutput, default_chunk_frames
+from .series_output import ChunkBuffers, SeriesOutput, default_chunk_frames
 from .timeblocks import TimeBlockCounter
 from .trajread import frame_source
 
@@ -188,7 +185,7 @@ class TorsionPass(AnalysisBase):
         self.threads = int(threads)
         self.series = series
         self.defer_close = bool(defer_close)
-        self._output = self._spare = None
+        self._output = self._chunk = None
         self._source = None
         self._last_chunk = False
 
@@ -396,11 +393,9 @@ class TorsionPass(AnalysisBase):
         self._stage_codes = np.empty((nf, n_t), dtype=np.int8)
         self._stage_types = np.zeros((nf, self._work.n_keys), dtype=np.int32)   # per type and state
         self._stage_angles = np.empty((nf, n_t), dtype=np.float32) if self.keep_angles else None
-        self._chunk_codes = np.empty((cf, n_t), dtype=np.int8)
-        self._chunk_angles = np.empty((cf, n_t), dtype=np.float32) if self.keep_angles else None
         cores = self._core_bits is not None   # 0/1 int8 per frame; in the chunk, bits packed along the torsions
         self._stage_cores = np.empty((nf, n_t), dtype=np.int8) if cores else None
-        self._chunk_cores = np.zeros((cf, (n_t + 7) // 8), dtype=np.uint8) if cores else None
+        self._chunk = ChunkBuffers(cf, n_t, self.keep_angles, cores)
         self._buf_frame = np.empty(cf, dtype=np.int64)
         self._buf_time = np.empty(cf, dtype=np.float64)
         self._buf_index = np.empty(cf, dtype=np.int64)
@@ -499,11 +494,8 @@ class TorsionPass(AnalysisBase):
             self._conformers.count(self._stage_codes[:m], gi * self.n_state_blocks // max(1, self._n_total), w)
         if self._time_blocks is not None:
             self._time_blocks.add_counts(self._stage_types[:m], gi, None if self.weights is None else self.weights[gi])
-        self._chunk_codes[r0:r1] = self._stage_codes[:m]
-        if self._stage_angles is not None:
-            self._chunk_angles[r0:r1] = self._stage_angles[:m]
-        if self._stage_cores is not None:
-            self._chunk_cores[r0:r1] = np.packbits(self._stage_cores[:m], axis=1, bitorder="little")
+        self._chunk.fill(r0, r1, self._stage_codes[:m], *(None if a is None else a[:m]
+                                                           for a in (self._stage_angles, self._stage_cores)))
         self._n_bins_buf = 0
 
     def _add_histograms(self):
@@ -573,8 +565,8 @@ class TorsionPass(AnalysisBase):
         if self._output is not None and self._output.collected is not None:
             res.series_parts = [self._output.collected]
         self._hist = self._conformers = None
-        self._stage_codes = self._stage_angles = self._stage_types = self._chunk_codes = self._chunk_angles = None
-        self._stage_cores = self._chunk_cores = self._core_bits = self._time_blocks = None
+        self._stage_codes = self._stage_angles = self._stage_types = self._chunk = None
+        self._stage_cores = self._core_bits = self._time_blocks = None
         self._bins = None
         self._one_frame = self._staged = None
         # modules do not pickle (results go back to the parent)
@@ -582,29 +574,19 @@ class TorsionPass(AnalysisBase):
 
     # -- the time series ----------------------------------------------------------------------------
     def _write_chunk(self, n):
-        """Hand the chunk to the time series writer: here, or, while a second thread computes the
-        frames (``threads=2``), in a third thread, so that encoding a row group (a few tenths of
-        a second for 10^4 torsions) does not hold up the frames; the next chunk then fills a
-        second buffer (allocated at the first such hand-over: runs of one chunk never need it)."""
+        """Hand the chunk to the time series writer: here, or, with a second thread computing the
+        frames, in a third thread while the next chunk fills the other buffers (ChunkBuffers)."""
         self._output.wait()   # the previous chunk is written: its buffer is free, order is kept
         index = {"frame": self._buf_frame[:n].copy(), "time_ps": self._buf_time[:n].copy(),
                  "position": self._buf_index[:n].copy()}
         if self.weights is not None:
             index["weight"] = self.weights[self._buf_index[:n]]
-        # views of the chunk: the writer writes a full chunk at once (its row groups are
-        # chunk_frames long); only the last, partial chunk of the pass can wait in it until
-        # close(), and nothing writes into that buffer after it
-        values = {kind: buf[:n] for kind, buf in (("states", self._chunk_codes), ("angles", self._chunk_angles),
-                                                   ("cores", self._chunk_cores)) if buf is not None}
+        # views of the chunk: the writer writes a full chunk at once; only the last, partial
+        # chunk of the pass can wait in it until close(), and nothing writes into it after
         background = self._overlap is not None or self._last_chunk
-        self._output.add(self.replica, index, values, background=background)
-        if not background or self._last_chunk:   # (deferred: nothing writes into this buffer any more)
-            return
-        if self._spare is None:
-            self._spare = tuple(None if b is None else np.empty_like(b)
-                                for b in (self._chunk_codes, self._chunk_angles, self._chunk_cores))
-        (self._chunk_codes, self._chunk_angles, self._chunk_cores), self._spare = \
-            self._spare, (self._chunk_codes, self._chunk_angles, self._chunk_cores)
+        self._output.add(self.replica, index, self._chunk.values(n), background=background)
+        if background and not self._last_chunk:   # (deferred: nothing writes into this buffer any more)
+            self._chunk.swap()
 
     def finish_series(self):
         """Wait until the time series are complete (after a pass with ``defer_close``); raises
@@ -612,6 +594,7 @@ class TorsionPass(AnalysisBase):
         self._close_output()
 
     def _close_output(self):
-        self._spare = None
+        if self._chunk is not None:
+            self._chunk.drop_spare()
         if self._output is not None:
             self._output.close()
