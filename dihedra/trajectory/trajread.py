@@ -249,7 +249,7 @@ class DCDFrames(_FileFrames):
         start = int(self.offsets[frames[0]])
         end = int(self.offsets[frames[-1]] + self.sizes[frames[-1]])
         try:   # a file cut short since it was opened: its missing pages would end the process
-            if os.stat(self.path).st_size < end or len(self._map) < end:
+            if os.stat(self.path).st_size < end:
                 return None
         except OSError:
             return None
