@@ -27,7 +27,7 @@ import time
 import numpy as np
 
 from .errors import DihedraError, OutputWriteError
-from .io.blocks import narrowed_type, save_npz
+from .io.blocks import HISTOGRAMS_FILE, HistogramFile, narrowed_type, save_blocks
 from .io.outputs import StagedFolder
 from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
@@ -41,7 +41,7 @@ from .trajectory.assemble import (assemble_result, block_sums, make_summary, pas
 from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
 from .trajectory.discard import plan_discard
 from .trajectory.inputs import FileHashes, check_readable, load_universe, truncated_error, usable_frames
-from .trajectory.result import BlockParts, NpzMember, bound_heap, release_memory
+from .trajectory.result import BlockParts, bound_heap, release_memory
 from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
 from .trajectory.timeblocks import pass_time_blocks
 from .trajectory.weights import weights_per_replica
@@ -262,7 +262,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
 
 class _Run:
     """The working state of one :func:`track` call: the staging (or scratch) folder, the passes,
-    the background writer of blocks.npz and a dask client it opened; :meth:`close` leaves nothing
+    the background writer of the block sums and a dask client it opened; :meth:`close` leaves nothing
     behind after an error."""
 
     def __init__(self, out, overwrite, log):
@@ -338,8 +338,8 @@ class _Run:
         self.passes.append(tp)
 
     def finish(self, tset, scheme, universe, topology, replicas, params, schemes=None):
-        """The result and its folder: blocks.npz written by another thread (zlib releases Python's
-        lock) while this one computes the populations and writes the tables."""
+        """The result and its folder: the block sums written by another thread (zstd and zlib
+        release Python's lock) while this one computes the populations and writes the tables."""
         # the last row group of the time series first: Arrow's writer of 15,000 columns takes
         # about 100 MB while it writes, which the tables would otherwise come on top of
         with self.phase("series"):
@@ -348,8 +348,7 @@ class _Run:
         with self.phase("tables"):
             blocks = block_sums(self.passes)
             work = self.work
-            self.writers = [_Background(lambda: save_npz(os.path.join(work, "blocks.npz"), blocks,
-                                                         narrow=[k for k in blocks if narrowed_type(k)]))]
+            self.writers = [_Background(lambda: save_blocks(work, blocks, narrow=[k for k in blocks if narrowed_type(k)]))]
             result = assemble_result(tset, scheme, universe, self.notices, blocks)
             result.schemes = schemes
             result.time_blocks = pass_time_blocks(self.passes, tset.types, scheme.labels)
@@ -364,8 +363,8 @@ class _Run:
         for w in self.writers:
             w.join()
         self.writers = []
-        # the histogram blocks the passes left in the scratch folder are in blocks.npz now: the
-        # result reads them from there if an analysis asks for them
+        # the histogram blocks the passes left in the scratch folder are in histograms.parquet
+        # now: the result reads them from there if an analysis asks for them
         shutil.rmtree(self.parts_dir, ignore_errors=True)
         self.passes[-1].finish_series()
         release_memory()
@@ -379,7 +378,7 @@ class _Run:
             folder = result._scratch.name
         result.series = ParquetSeries(folder)
         if isinstance(blocks.stored.get("histograms"), BlockParts):
-            blocks["histograms"] = NpzMember(os.path.join(folder, "blocks.npz"), "histograms")
+            blocks["histograms"] = HistogramFile(os.path.join(folder, HISTOGRAMS_FILE))
         return result
 
     def close(self):

@@ -138,7 +138,7 @@ def test_counts_widen_past_255_per_cell(tmp_path):
     top, traj = write_system(str(tmp_path), xyz, names=("C1", "C2", "C3", "C4", "C5", "C6"), resname="HEX")
     res = track(top, [traj], torsions="rotatable", n_hist_blocks=1, n_state_blocks=2, keep_angles=True,
                 chunk_frames=300)
-    # kept in blocks.npz as the pass counted them (uint16 here), widened when read
+    # kept in histograms.parquet as the pass counted them (uint16 here), widened when read
     assert res.blocks.stored["histograms"].materialize().dtype == np.uint16
     hist = res.blocks["histograms"]
     assert hist.dtype == np.int32

@@ -60,14 +60,14 @@ def failing(code, text):
 # a full disk, a read-only folder
 # ----------------------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("where", ["time series", "table", "blocks.npz"])
+@pytest.mark.parametrize("where", ["time series", "table", "block sums"])
 @pytest.mark.parametrize("workers", [1, 2])
 def test_a_full_disk_while_tracking(work, capsys, monkeypatch, where, workers):
     from dihedra.io import series, tables
     import dihedra.tracking as tracking
 
     target = {"time series": (series.TimeSeriesWriter, "add"), "table": (tables, "write_csv"),
-              "blocks.npz": (tracking, "save_npz")}[where]
+              "block sums": (tracking, "save_blocks")}[where]
     monkeypatch.setattr(*target, failing(errno.ENOSPC, "No space left on device"))
     before = snapshot(work / "res")
     refused(capsys, ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "300",

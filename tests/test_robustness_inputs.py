@@ -279,6 +279,7 @@ DAMAGE = {
     "corrupt summary.json": (lambda: open("res/summary.json", "w").write('{"scheme": [1, 2'), "summary.json"),
     "summary.json of another shape": (lambda: open("res/summary.json", "w").write("[1, 2]\n"), "summary.json"),
     "truncated blocks.npz": (lambda: _truncate("res/blocks.npz", 0.5), "blocks.npz"),
+    "truncated histograms.parquet": (lambda: _truncate("res/histograms.parquet", 0.5), "histograms.parquet"),
     "torsions.csv cut in a line": (lambda: _cut("res/torsions.csv"), "torsions.csv"),
     "torsions.csv cut at a line": (lambda: _cut_at_line("res/torsions.csv"), "torsions.csv"),
     "populations.csv cut at a line": (lambda: _cut_at_line("res/populations.csv"), "populations.csv"),

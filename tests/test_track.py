@@ -191,6 +191,37 @@ def test_conformer_populations_equal_direct_joint_counts(tmp_path):
     assert set(res.conformers_by_type["n_groups"]) == {n_mol}
 
 
+def test_pooled_conformers_equal_pooling_of_the_zero_filled_grid():
+    # the pooled table is pool_by_type over every (group, conformer) of a type, a conformer a
+    # group never visited counting as 0: here that grid is made with pandas' reindex (the plain
+    # formulation) and pooled, for two types with different conformers, ties and a NaN error
+    from dihedra.numerics.populations import _pooled_conformers, pool_by_type
+
+    rng = np.random.default_rng(4)
+    rows = []
+    for g in range(12):
+        gtype = "AAA" if g % 3 else "BB"
+        confs = rng.choice(["a|a", "a|b", "b|b", "c|a"] if gtype == "AAA" else ["x", "y", "z"], size=2, replace=False)
+        for c in confs:
+            rows.append((f"G{g}", gtype, c, round(rng.random(), 1), rng.random() / 10))
+    by_group = pd.DataFrame(rows, columns=["group", "group_type", "conformer", "population", "population_err"])
+    by_group.loc[5, "population_err"] = np.nan
+    got = _pooled_conformers(*(by_group[c].to_numpy() for c in ["group_type", "group", "conformer", "population",
+                                                                  "population_err"]))
+    full = []
+    for gtype, sub in by_group.groupby("group_type", sort=False):
+        grid = pd.MultiIndex.from_product([sub["group"].unique(), sub["conformer"].unique()],
+                                          names=["group", "conformer"])
+        sub = sub.set_index(["group", "conformer"])[["population", "population_err"]].reindex(grid, fill_value=0.0)
+        full.append(sub.reset_index().assign(group_type=gtype))
+    want = pool_by_type(pd.concat(full, ignore_index=True).rename(columns={"conformer": "state"}),
+                        key="group_type", item="group", count_name="n_groups").rename(columns={"state": "conformer"})
+    want = want.sort_values(["group_type", "population"], ascending=[True, False], kind="stable").reset_index(drop=True)
+    pd.testing.assert_frame_equal(got, want)
+    nan = got[got["population_err"].isna()]   # a NaN error makes the pooled error of its conformer NaN
+    assert nan[["group_type", "conformer"]].values.tolist() == [list(by_group.loc[5, ["group_type", "conformer"]])]
+
+
 def five_site_chains(t1, t2, bond=1.53, angle=112.0):
     from conftest import place_fourth
     base = chain_coordinates(t1, spacing=8.0, bond=bond, angle=angle)
@@ -227,7 +258,7 @@ def test_results_folder_round_trip_and_existing_folder_untouched(two_replicas, t
     names = sorted(os.listdir(out))
     assert names == sorted(["blocks.npz", "conformers.csv", "conformers_by_type.csv", "convergence.csv",
                             "convergence.json", "convergence_by_state.csv", "convergence_over_time.csv",
-                            "cores.parquet", "dihedra-files.json", "populations.csv",
+                            "cores.parquet", "dihedra-files.json", "histograms.parquet", "populations.csv",
                             "populations_by_replica.csv", "populations_by_type.csv", "schemes.csv",
                             "states.parquet", "summary.json", "torsions.csv"])
     back = load_results(out)
@@ -260,13 +291,13 @@ def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     assert os.listdir(tmp_path) == []
 
 
-@pytest.mark.parametrize("target, kw", [("save_npz", {}), ("TimeSeriesWriter.close", {}),
+@pytest.mark.parametrize("target, kw", [("save_blocks", {}), ("TimeSeriesWriter.close", {}),
                                         ("TimeSeriesWriter.add", {}), ("TimeSeriesWriter.add", {"workers": 2}),
                                         # chunks of 5 frames: written by the third thread mid-pass
                                         ("TimeSeriesWriter.add", {"threads": 2, "chunk_frames": 5})])
 def test_error_while_writing_files_reaches_the_caller_and_leaves_no_folder(two_replicas, tmp_path, monkeypatch,
                                                                            target, kw):
-    # blocks.npz is written in another thread, the time series during the pass (in the second
+    # the block sums are written in another thread, the time series during the pass (in the second
     # thread or in workers): a failed write is the run's error, not a "damaged trajectory"
     (top, t0), _ = two_replicas
     import dihedra.tracking as tracking_module

@@ -90,3 +90,82 @@ def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
     with np.load(tmp_path / "b.npz") as npz:
         assert npz["histograms"].dtype == np.int32 and npz["other"].dtype == np.float64
         np.testing.assert_array_equal(npz["histograms"], neg)
+
+
+@pytest.mark.parametrize("top, stored", [(200, np.uint8), (60_000, np.uint16), (70_000, np.int32)])
+def test_histogram_file_round_trip_read_with_plain_pyarrow(tmp_path, top, stored):
+    """save_blocks puts the histograms into histograms.parquet (narrowed as save_npz narrows) and
+    the rest into blocks.npz; the file reads back equal through load_blocks (lazily: its shape is
+    known before it is read) and, as the folder's documentation says, with pyarrow and NumPy
+    alone (the reference readers)."""
+    import json
+
+    import pyarrow.parquet as pq
+
+    from dihedra.io.blocks import HistogramFile, load_blocks, narrowed_type, save_blocks
+
+    rng = np.random.default_rng(2)
+    hist = rng.integers(0, top + 1, size=(4, 7, 360)).astype(np.int32)
+    hist[1, 2, 3] = top
+    arrays = {"state_counts": hist[:, :, :3].astype(np.int64), "histograms": hist,
+              "hist_block_replica": np.array([0, 0, 1, 1])}
+    save_blocks(tmp_path, arrays, narrow=[k for k in arrays if narrowed_type(k)])
+    with np.load(tmp_path / "blocks.npz") as npz:
+        assert "histograms" not in npz.files
+    blocks = load_blocks(tmp_path / "blocks.npz")
+    lazy = blocks.stored["histograms"]
+    assert isinstance(lazy, HistogramFile) and lazy.shape == hist.shape and lazy.dtype == np.dtype(stored)
+    assert blocks["histograms"].dtype == np.int32
+    np.testing.assert_array_equal(blocks["histograms"], hist)
+    table = pq.read_table(tmp_path / "histograms.parquet")
+    meta = json.loads(table.schema.metadata[b"dihedra.histograms"])
+    assert meta["shape"] == list(hist.shape) and table["replica"].to_pylist() == [0, 0, 1, 1]
+    for b in range(len(table)):
+        block = np.frombuffer(table["counts"][b].as_py(), np.dtype(meta["dtype"])).reshape(meta["shape"][1:])
+        np.testing.assert_array_equal(block, hist[table["block"][b].as_py()])
+
+
+def test_histograms_kept_in_parts_and_weighted_histograms(tmp_path):
+    """Histograms kept in parts (block files and non-empty cells, as a pass leaves them) are
+    written block by block as their sum; float (weighted) histograms are kept as they are."""
+    from dihedra.io.blocks import load_blocks, save_blocks
+    from dihedra.trajectory.result import BlockParts
+
+    rng = np.random.default_rng(3)
+    whole = rng.integers(0, 9, size=(3, 5, 360)).astype(np.uint16)
+    first = whole[0].copy()
+    first.reshape(-1)[:10] = 0
+    np.save(tmp_path / "part0.npy", first)
+    cells = np.arange(10)
+    parts = BlockParts([(0, str(tmp_path / "part0.npy")), (0, (cells, whole[0].reshape(-1)[:10])),
+                        (1, whole[1]), (2, whole[2])], whole.shape, np.uint16)
+    save_blocks(tmp_path, {"histograms": parts, "state_counts": np.zeros((3, 5, 3), np.int64)},
+                narrow=["histograms"])
+    np.testing.assert_array_equal(load_blocks(tmp_path / "blocks.npz")["histograms"], whole)
+    weighted = rng.random((2, 5, 360))
+    save_blocks(tmp_path, {"histograms": weighted, "state_counts": np.zeros((2, 5, 3))}, narrow=["histograms"])
+    back = load_blocks(tmp_path / "blocks.npz")["histograms"]
+    assert back.dtype == np.float64
+    np.testing.assert_array_equal(back, weighted)
+
+
+def test_histograms_of_an_earlier_folder_in_blocks_npz_and_a_damaged_file(tmp_path):
+    """A blocks.npz that holds the histograms itself (folders of earlier versions) reads as it is;
+    a histograms.parquet damaged inside (its footer intact) is an InputFileError naming the file
+    when the histograms are read."""
+    from dihedra.errors import InputFileError
+    from dihedra.io.blocks import load_blocks, save_blocks, save_npz
+
+    hist = np.arange(2 * 3 * 360, dtype=np.int32).reshape(2, 3, 360) % 7
+    old = tmp_path / "old"
+    old.mkdir()
+    save_npz(old / "blocks.npz", {"histograms": hist, "state_counts": np.ones((2, 3, 3), np.int64)})
+    np.testing.assert_array_equal(load_blocks(old / "blocks.npz")["histograms"], hist)
+    save_blocks(tmp_path, {"histograms": hist, "state_counts": np.ones((2, 3, 3), np.int64)})
+    path = tmp_path / "histograms.parquet"
+    data = bytearray(path.read_bytes())
+    data[40:200] = bytes(160)   # inside the first block's pages
+    path.write_bytes(bytes(data))
+    blocks = load_blocks(tmp_path / "blocks.npz")
+    with pytest.raises(InputFileError, match="histograms.parquet is damaged"):
+        blocks["histograms"]

@@ -76,6 +76,8 @@ def main(argv=None):
     waiting for ever, and the interpreter would wait for them on its way out."""
     if "pyarrow" not in sys.modules:   # Arrow on the system heap: see trajectory.result.arrow_on_system_heap
         os.environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", "system")
+    if argv is None:
+        _note_early_interrupts()
     try:
         status = _main(argv)
     except KeyboardInterrupt:   # Ctrl-C while the commands were still being loaded: nothing was done
@@ -129,6 +131,21 @@ def _release_process_resources():
             pass
 
 
+#: SIGINT received while the command's modules were loading (see :func:`_note_early_interrupts`).
+_EARLY = []
+
+
+def _note_early_interrupts():
+    """While the modules of a command load (a second or so), SIGINT is noted, not raised: a
+    ``KeyboardInterrupt`` raised inside the import machinery can land in one of its callbacks,
+    where Python prints "Exception ignored" and goes on, and the command would then run as if
+    never interrupted. The command stops, before any work, as soon as its modules are loaded."""
+    import threading
+
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, lambda signum, frame: _EARLY.append(signum))
+
+
 def _main(argv):
     given = sys.argv[1:] if argv is None else argv
     with _collector_paused(argv is None):
@@ -137,6 +154,8 @@ def _main(argv):
             args = parser.parse_args(argv)
         except SystemExit as exc:   # --help, --version (0) or a usage error (2, one line printed)
             return exc.code
+    if _EARLY:   # Ctrl-C while the modules loaded: nothing done yet
+        raise KeyboardInterrupt()
     if not getattr(args, "func", None):
         parser.print_help()
         return 0

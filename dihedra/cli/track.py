@@ -12,7 +12,8 @@ def register(sub):
         description="Follow torsions through one or more trajectories of one system (replicas) and "
                     "write a results folder: torsions.csv, populations.csv, populations_by_type.csv, "
                     "conformers.csv, states.parquet (the state of every frame), cores.parquet (whether each "
-                    "frame lies in the core of its state, for kinetics), blocks.npz, convergence.csv and "
+                    "frame lies in the core of its state, for kinetics), blocks.npz and histograms.parquet (block "
+                    "sums for errors and profiles), convergence.csv and "
                     "summary.json.")
     p.add_argument("topology", help="topology file (PDB with CONECT, PSF, TPR, PRMTOP, GRO, ...)")
     p.add_argument("trajectories", nargs="+", metavar="TRAJ",

@@ -1,13 +1,110 @@
-"""The block sums of a results folder (``blocks.npz``): state counts, fine angle histograms and
-conformer counts per block, with block frames, weights and replicas."""
+"""The block sums of a results folder: ``blocks.npz`` (state counts, conformer counts per block,
+with block frames, weights and replicas) and ``histograms.parquet`` (the fine angle histograms per
+block, the largest of them: one row per block, zstd-compressed, about three times faster to write
+than zlib inside the ``.npz``; folders of earlier versions keep them in ``blocks.npz`` and are read
+as they are)."""
 
 from __future__ import annotations
 
+import json
+import os
+
 import numpy as np
 
+from ..errors import InputFileError
 from ..trajectory.result import NARROWED, BlockSums, narrowed_type
 
-__all__ = ["NARROWED", "BlockSums", "load_blocks", "narrowed_type", "save_npz"]
+__all__ = ["HISTOGRAMS_FILE", "NARROWED", "BlockSums", "HistogramFile", "load_blocks", "narrowed_type",
+           "save_blocks", "save_histograms", "save_npz"]
+
+#: The file of the fine histograms in a results folder.
+HISTOGRAMS_FILE = "histograms.parquet"
+#: Schema metadata key of :data:`HISTOGRAMS_FILE`: the type and shape of the histogram array.
+_META = b"dihedra.histograms"
+
+
+def save_blocks(folder, arrays, narrow=()):
+    """Write the block sums ``arrays`` (a mapping or :class:`BlockSums`) into ``folder``: the fine
+    histograms into :data:`HISTOGRAMS_FILE` (:func:`save_histograms`), the rest into
+    ``blocks.npz`` (:func:`save_npz`)."""
+    arrays = dict(getattr(arrays, "stored", arrays))
+    hist = arrays.pop("histograms", None)
+    save_npz(os.path.join(folder, "blocks.npz"), arrays, narrow=narrow)
+    if hist is not None:
+        save_histograms(os.path.join(folder, HISTOGRAMS_FILE), hist, arrays.get("hist_block_replica"),
+                        narrow="histograms" in narrow)
+
+
+def save_histograms(path, hist, block_replica=None, narrow=True, level=1):
+    """Write a histogram array of shape (n_blocks, n_torsions, n_bins) as Parquet: one row per
+    block with columns ``block``, ``replica`` and ``counts`` (binary: the block's n_torsions x
+    n_bins values, C order, of the type named in the schema metadata ``dihedra.histograms``,
+    which also gives the shape), zstd level ``level``, one block in memory at a time. Integer
+    counts are stored in the smallest unsigned type that holds them (``narrow``); a histogram kept
+    in parts (:class:`~dihedra.trajectory.result.BlockParts`) is written as kept."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    if hasattr(hist, "materialize") and not hasattr(hist, "block"):   # in a file: read it
+        hist = hist.materialize()
+    if not hasattr(hist, "block"):
+        hist = np.ascontiguousarray(hist)
+        small = _narrow_dtype(hist) if narrow else None
+        if small is not None:
+            hist = hist.astype(small)
+    shape, dtype = tuple(int(x) for x in hist.shape), np.dtype(hist.dtype)
+    replica = np.zeros(shape[0], dtype=np.int64) if block_replica is None else np.asarray(block_replica)
+    meta = {"dtype": dtype.str, "shape": list(shape), "order": "C",
+            "axes": ["block", "torsion (torsions.csv order)", "bin (bin_edges_deg of blocks.npz)"]}
+    schema = pa.schema([("block", pa.int32()), ("replica", pa.int32()), ("counts", pa.binary())],
+                       metadata={_META: json.dumps(meta).encode()})
+    with pq.ParquetWriter(path, schema, compression="zstd", compression_level=level, use_dictionary=False,
+                          write_statistics=["block", "replica"]) as writer:
+        for b in range(shape[0]):
+            block = np.ascontiguousarray(hist.block(b) if hasattr(hist, "block") else hist[b], dtype=dtype)
+            counts = pa.Array.from_buffers(pa.binary(), 1, [None, pa.py_buffer(np.array([0, block.nbytes], np.int32)),
+                                                            pa.py_buffer(block)])   # (no copy)
+            writer.write_table(pa.table({"block": pa.array([b], pa.int32()),
+                                         "replica": pa.array([int(replica[b])], pa.int32()), "counts": counts},
+                                        schema=schema))
+
+
+class HistogramFile:
+    """The histograms of :data:`HISTOGRAMS_FILE`, read when first needed (:meth:`materialize`);
+    their :attr:`shape` and :attr:`dtype` are known from the file's metadata without reading."""
+
+    def __init__(self, path):
+        import pyarrow.parquet as pq
+
+        self.path = path
+        try:
+            meta = json.loads(pq.read_schema(path).metadata[_META])
+            self.shape = tuple(int(x) for x in meta["shape"])
+            self.dtype = np.dtype(meta["dtype"])
+        except Exception as exc:  # noqa: BLE001 - any unreadable file is the same error for a user
+            raise _damaged_file(path, exc) from None
+        self.ndim = len(self.shape)
+
+    def materialize(self):
+        import pyarrow.parquet as pq
+
+        out = np.zeros(self.shape, dtype=self.dtype)
+        try:
+            pf = pq.ParquetFile(self.path)
+            for g in range(pf.num_row_groups):
+                table = pf.read_row_group(g, columns=["block", "counts"])
+                for b, value in zip(table.column("block").to_pylist(), table.column("counts").chunks[0]):
+                    out[b] = np.frombuffer(value.as_buffer(), dtype=self.dtype).reshape(self.shape[1:])
+        except InputFileError:
+            raise
+        except Exception as exc:  # noqa: BLE001
+            raise _damaged_file(self.path, exc) from None
+        return out
+
+
+def _damaged_file(path, exc):
+    return InputFileError(f"{path} is damaged ({type(exc).__name__}: {str(exc).strip()[:120]}); the results "
+                          "folder was cut or changed by hand: run 'dihedra track' again.")
 
 
 def save_npz(path, arrays, level=1, narrow=()):
@@ -28,7 +125,7 @@ def save_npz(path, arrays, level=1, narrow=()):
     with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_DEFLATED, compresslevel=level,
                          allowZip64=True) as zf:
         for name, value in arrays.items():
-            if hasattr(value, "materialize") and not hasattr(value, "block"):   # in a file (NpzMember)
+            if hasattr(value, "materialize") and not hasattr(value, "block"):   # in a file (HistogramFile)
                 value = value.materialize()
             value = value if hasattr(value, "block") else np.asanyarray(value)
             with zf.open(f"{name}.npy", "w", force_zip64=True) as fh:
@@ -72,6 +169,11 @@ def _narrow_dtype(value):
 
 def load_blocks(path):
     """The arrays of a ``blocks.npz`` as :class:`~dihedra.trajectory.result.BlockSums`: those
-    stored narrow are widened back to their type when read."""
+    stored narrow are widened back to their type when read; the histograms of
+    :data:`HISTOGRAMS_FILE` beside it (a :class:`HistogramFile`) when first read."""
     with np.load(path) as npz:
-        return BlockSums({k: npz[k] for k in npz.files})
+        blocks = BlockSums({k: npz[k] for k in npz.files})
+    beside = os.path.join(os.path.dirname(os.path.abspath(path)), HISTOGRAMS_FILE)
+    if "histograms" not in blocks.stored and os.path.exists(beside):
+        blocks["histograms"] = HistogramFile(beside)
+    return blocks

@@ -27,9 +27,13 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
 ``angles.parquet/``
     the same layout with angles_deg, float32 degrees (only with --keep-angles)
 ``blocks.npz``
-    block sums of the pass: state counts and fine angle histograms per block, with block frames,
-    weights and replicas (input of profiles), and the conformer counts (dense per group width,
-    rows otherwise)
+    block sums of the pass: state counts per block, with block frames, weights and replicas (of
+    the state blocks and of the histogram blocks), the bin edges, and the conformer counts (dense
+    per group width, rows otherwise)
+``histograms.parquet``
+    the fine angle histograms per block (input of profiles): one row per block (block, replica,
+    counts: binary, n_torsions x n_bins values in torsions.csv order, C order, of the type and
+    shape in the schema metadata ``dihedra.histograms``), zstd (:mod:`dihedra.io.blocks`)
 ``schemes.csv``
     type, scheme, state, from_deg, to_deg, reason (and, for basins, the minimum of each basin
     with its error): the states of every torsion type
@@ -54,7 +58,7 @@ from ..selection.schemes import scheme_from_dict
 from ..selection.torsions import TorsionSet
 from ..trajectory.assemble import own_states
 from ..trajectory.result import TrackResult
-from .blocks import load_blocks, narrowed_type, save_npz
+from .blocks import HISTOGRAMS_FILE, load_blocks, narrowed_type, save_blocks
 from .series import ParquetSeries
 from .tables import read_json, read_optional_table, read_table, write_json, write_table
 
@@ -76,8 +80,7 @@ def write_results(result, folder, blocks=True):
     if getattr(result, "schemes", None) is not None:
         write_table(result.schemes, folder, "schemes.csv")
     if blocks:
-        save_npz(os.path.join(folder, "blocks.npz"), result.blocks,
-                 narrow=[k for k in result.blocks if narrowed_type(k)])
+        save_blocks(folder, result.blocks, narrow=[k for k in result.blocks if narrowed_type(k)])
     write_json(result.summary, folder, "summary.json")
 
 
@@ -150,12 +153,14 @@ def check_consistent(folder, tables, blocks, scheme, summary):
     population tables against the torsions, types, states and replicas."""
     if not isinstance(summary, dict):
         raise _damaged(folder, "summary.json", "not a JSON object")
-    for key in ("state_counts", "block_replica", "histograms"):
+    for key in ("state_counts", "block_replica"):
         if key not in blocks:
             raise _damaged(folder, "blocks.npz", f"no array {key}")
+    if "histograms" not in getattr(blocks, "stored", blocks):   # (a mapping's `in` would read it)
+        raise InputFileError(f"{folder} is not a complete dihedra results folder: missing {HISTOGRAMS_FILE}.")
     torsions = tables["torsions"]
     n_t, n_s = len(torsions), scheme.n_states
-    counts, hist = blocks["state_counts"], blocks["histograms"]
+    counts, hist = blocks["state_counts"], blocks.stored["histograms"]   # (its shape: not read yet)
     if counts.ndim != 3 or hist.ndim != 3 or counts.shape[1:] != (n_t, n_s) or hist.shape[1] != n_t:
         raise _damaged(folder, "torsions.csv", f"{n_t} torsions of {n_s} states, but the block sums hold "
                                                f"{counts.shape[1] if counts.ndim == 3 else '?'} torsions")

@@ -156,27 +156,15 @@ class BlockParts:
         return out if dtype is None else out.astype(dtype)
 
 
-class NpzMember:
-    """One array of an ``.npz`` file, read when it is first needed (the histograms of a
-    :class:`BlockSums` once ``blocks.npz`` is written)."""
-
-    def __init__(self, path, name):
-        self.path, self.name = path, name
-
-    def materialize(self):
-        with np.load(self.path) as npz:
-            return npz[self.name]
-
-
 class BlockSums(MutableMapping):
-    """The block sums of a run (the arrays of ``blocks.npz``), a mapping of name to array.
+    """The block sums of a run (``blocks.npz`` and ``histograms.parquet``), a mapping of name to array.
 
     The pass counts in the narrowest type the counts fit (uint8 histograms of short blocks, see
     :mod:`dihedra.numerics.counts`); an array named in :data:`NARROWED` is widened to its type
     the first time it is read from the mapping, so analyses always see int32 histograms and
     conformer counts and int64 state counts, while a run that never reads them (``dihedra
     track`` writing a folder) never holds the wide copy. An entry kept in parts or in a file
-    (:class:`BlockParts`, :class:`NpzMember`) is read into one array then too. :attr:`stored`
+    (:class:`BlockParts`, :class:`dihedra.io.blocks.HistogramFile`) is read into one array then too. :attr:`stored`
     holds the entries as kept.
 
     Examples
@@ -191,7 +179,7 @@ class BlockSums(MutableMapping):
 
     def __getitem__(self, name):
         value = self.stored[name]
-        if hasattr(value, "materialize"):   # kept in parts or in a file (BlockParts, NpzMember)
+        if hasattr(value, "materialize"):   # kept in parts or in a file (BlockParts, HistogramFile)
             value = self.stored[name] = value.materialize()
         wide = narrowed_type(name)
         if (wide is not None and isinstance(value, np.ndarray) and value.dtype.kind == "u"
