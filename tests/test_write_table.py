@@ -93,7 +93,7 @@ def test_negative_or_float_arrays_are_not_narrowed(tmp_path):
 
 
 @pytest.mark.parametrize("top, stored", [(200, np.uint8), (60_000, np.uint16), (70_000, np.int32)])
-def test_histogram_file_round_trip_read_with_plain_pyarrow(tmp_path, top, stored):
+def test_histogram_file_round_trip_read_with_plain_pyarrow(tmp_path, monkeypatch, top, stored):
     """save_blocks puts the histograms into histograms.parquet (narrowed as save_npz narrows) and
     the rest into blocks.npz; the file reads back equal through load_blocks (lazily: its shape is
     known before it is read) and, as the folder's documentation says, with pyarrow and NumPy
@@ -102,8 +102,11 @@ def test_histogram_file_round_trip_read_with_plain_pyarrow(tmp_path, top, stored
 
     import pyarrow.parquet as pq
 
+    from dihedra.io import blocks as blocks_module
     from dihedra.io.blocks import HistogramFile, load_blocks, narrowed_type, save_blocks
 
+    # rows of three torsions (1 MB by default): a block spans several rows, the last one shorter
+    monkeypatch.setattr(blocks_module, "HISTOGRAM_ROW_BYTES", 3 * 360 * np.dtype(stored).itemsize)
     rng = np.random.default_rng(2)
     hist = rng.integers(0, top + 1, size=(4, 7, 360)).astype(np.int32)
     hist[1, 2, 3] = top
@@ -119,10 +122,13 @@ def test_histogram_file_round_trip_read_with_plain_pyarrow(tmp_path, top, stored
     np.testing.assert_array_equal(blocks["histograms"], hist)
     table = pq.read_table(tmp_path / "histograms.parquet")
     meta = json.loads(table.schema.metadata[b"dihedra.histograms"])
-    assert meta["shape"] == list(hist.shape) and table["replica"].to_pylist() == [0, 0, 1, 1]
-    for b in range(len(table)):
-        block = np.frombuffer(table["counts"][b].as_py(), np.dtype(meta["dtype"])).reshape(meta["shape"][1:])
-        np.testing.assert_array_equal(block, hist[table["block"][b].as_py()])
+    assert meta["shape"] == list(hist.shape) and len(table) == 4 * 3   # 7 torsions: rows of 3, 3, 1
+    assert table["replica"].to_pylist() == [0] * 6 + [1] * 6 and table["first_torsion"].to_pylist() == [0, 3, 6] * 4
+    back = np.zeros(meta["shape"], np.dtype(meta["dtype"]))
+    for b, first, value in zip(*(table[c].to_pylist() for c in ("block", "first_torsion", "counts"))):
+        counts = np.frombuffer(value, np.dtype(meta["dtype"])).reshape(-1, meta["shape"][2])
+        back[b, first:first + len(counts)] = counts
+    np.testing.assert_array_equal(back, hist)
 
 
 def test_histograms_kept_in_parts_and_weighted_histograms(tmp_path):

@@ -1,7 +1,7 @@
 """The block sums of a results folder: ``blocks.npz`` (state counts, conformer counts per block,
 with block frames, weights and replicas) and ``histograms.parquet`` (the fine angle histograms per
-block, the largest of them: one row per block, zstd-compressed, about three times faster to write
-than zlib inside the ``.npz``; folders of earlier versions keep them in ``blocks.npz`` and are read
+block, the largest of them: rows of about 1 MB of counts, zstd-compressed, about three times
+faster to write than zlib inside the ``.npz``; folders of earlier versions keep them in ``blocks.npz`` and are read
 as they are)."""
 
 from __future__ import annotations
@@ -35,13 +35,19 @@ def save_blocks(folder, arrays, narrow=()):
                         narrow="histograms" in narrow)
 
 
+#: Bytes of counts per row of :data:`HISTOGRAMS_FILE` (a block is split by torsions into rows of
+#: about this size: Parquet's page and compression buffers stay small for any number of torsions).
+HISTOGRAM_ROW_BYTES = 1 << 20
+
+
 def save_histograms(path, hist, block_replica=None, narrow=True, level=1):
-    """Write a histogram array of shape (n_blocks, n_torsions, n_bins) as Parquet: one row per
-    block with columns ``block``, ``replica`` and ``counts`` (binary: the block's n_torsions x
-    n_bins values, C order, of the type named in the schema metadata ``dihedra.histograms``,
-    which also gives the shape), zstd level ``level``, one block in memory at a time. Integer
-    counts are stored in the smallest unsigned type that holds them (``narrow``); a histogram kept
-    in parts (:class:`~dihedra.trajectory.result.BlockParts`) is written as kept."""
+    """Write a histogram array of shape (n_blocks, n_torsions, n_bins) as Parquet, one block in
+    memory at a time: rows of columns ``block``, ``replica``, ``first_torsion`` and ``counts``
+    (binary: the counts of consecutive torsions from ``first_torsion`` on, n_bins values each, in
+    the type named in the schema metadata ``dihedra.histograms``, which also gives the shape);
+    zstd level ``level``. Integer counts are stored in the smallest unsigned type that holds them
+    (``narrow``); a histogram kept in parts (:class:`~dihedra.trajectory.result.BlockParts`) is
+    written as kept."""
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -56,17 +62,24 @@ def save_histograms(path, hist, block_replica=None, narrow=True, level=1):
     replica = np.zeros(shape[0], dtype=np.int64) if block_replica is None else np.asarray(block_replica)
     meta = {"dtype": dtype.str, "shape": list(shape), "order": "C",
             "axes": ["block", "torsion (torsions.csv order)", "bin (bin_edges_deg of blocks.npz)"]}
-    schema = pa.schema([("block", pa.int32()), ("replica", pa.int32()), ("counts", pa.binary())],
-                       metadata={_META: json.dumps(meta).encode()})
+    schema = pa.schema([("block", pa.int32()), ("replica", pa.int32()), ("first_torsion", pa.int32()),
+                        ("counts", pa.binary())], metadata={_META: json.dumps(meta).encode()})
+    per_torsion = int(np.prod(shape[2:], dtype=np.int64)) * dtype.itemsize
+    step = max(1, HISTOGRAM_ROW_BYTES // max(1, per_torsion))
+    firsts = np.arange(0, shape[1], step, dtype=np.int64) if shape[1] else np.zeros(1, dtype=np.int64)
+    offsets = np.append(firsts, shape[1]) * per_torsion
     with pq.ParquetWriter(path, schema, compression="zstd", compression_level=level, use_dictionary=False,
-                          write_statistics=["block", "replica"]) as writer:
+                          write_statistics=["block", "replica", "first_torsion"]) as writer:
         for b in range(shape[0]):
             block = np.ascontiguousarray(hist.block(b) if hasattr(hist, "block") else hist[b], dtype=dtype)
-            counts = pa.Array.from_buffers(pa.binary(), 1, [None, pa.py_buffer(np.array([0, block.nbytes], np.int32)),
-                                                            pa.py_buffer(block)])   # (no copy)
-            writer.write_table(pa.table({"block": pa.array([b], pa.int32()),
-                                         "replica": pa.array([int(replica[b])], pa.int32()), "counts": counts},
-                                        schema=schema))
+            counts = pa.Array.from_buffers(pa.binary(), len(firsts), [None, pa.py_buffer(offsets.astype(np.int32)),
+                                                                       pa.py_buffer(block)])   # (no copy)
+            n = len(firsts)
+            writer.write_table(pa.table({"block": pa.array(np.full(n, b, np.int32)),
+                                         "replica": pa.array(np.full(n, int(replica[b]), np.int32)),
+                                         "first_torsion": pa.array(firsts.astype(np.int32)), "counts": counts},
+                                        schema=schema), row_group_size=1)   # (Arrow buffers a row group)
+            del block, counts   # (before the next block is read)
 
 
 class HistogramFile:
@@ -92,9 +105,12 @@ class HistogramFile:
         try:
             pf = pq.ParquetFile(self.path)
             for g in range(pf.num_row_groups):
-                table = pf.read_row_group(g, columns=["block", "counts"])
-                for b, value in zip(table.column("block").to_pylist(), table.column("counts").chunks[0]):
-                    out[b] = np.frombuffer(value.as_buffer(), dtype=self.dtype).reshape(self.shape[1:])
+                table = pf.read_row_group(g, columns=["block", "first_torsion", "counts"])
+                rows = zip(table.column("block").to_pylist(), table.column("first_torsion").to_pylist(),
+                           table.column("counts").combine_chunks())
+                for b, first, value in rows:
+                    counts = np.frombuffer(value.as_buffer(), dtype=self.dtype).reshape((-1,) + self.shape[2:])
+                    out[b, first:first + len(counts)] = counts
         except InputFileError:
             raise
         except Exception as exc:  # noqa: BLE001

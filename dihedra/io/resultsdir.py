@@ -31,9 +31,10 @@ A results folder holds tidy tables with unit-bearing column names plus a JSON su
     the state blocks and of the histogram blocks), the bin edges, and the conformer counts (dense
     per group width, rows otherwise)
 ``histograms.parquet``
-    the fine angle histograms per block (input of profiles): one row per block (block, replica,
-    counts: binary, n_torsions x n_bins values in torsions.csv order, C order, of the type and
-    shape in the schema metadata ``dihedra.histograms``), zstd (:mod:`dihedra.io.blocks`)
+    the fine angle histograms per block (input of profiles): rows of block, replica,
+    first_torsion and counts (binary: n_bins values of each of consecutive torsions in
+    torsions.csv order, of the type and shape in the schema metadata ``dihedra.histograms``),
+    zstd (:mod:`dihedra.io.blocks`)
 ``schemes.csv``
     type, scheme, state, from_deg, to_deg, reason (and, for basins, the minimum of each basin
     with its error): the states of every torsion type

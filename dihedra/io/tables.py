@@ -41,7 +41,7 @@ EXACT_ROWS = 100_000
 #: Largest magnitude written in single precision (beyond it a column keeps double precision).
 _FLOAT32_SAFE = 1e37
 #: Rows formatted per Arrow call (bounds the memory of the text buffer).
-_ROWS_PER_PART = 100_000
+_ROWS_PER_PART = 40_000
 
 
 def _arrow_column(series, single):
@@ -94,7 +94,7 @@ def write_csv(frame, path, threads=None):
         pending = deque()
         for start in starts:
             pending.append(pool.submit(_format_part, frame.iloc[start:start + _ROWS_PER_PART], single))
-            if len(pending) > threads:
+            if len(pending) >= threads:   # (at most one part per thread in memory)
                 fh.write(pending.popleft().result())
         while pending:
             fh.write(pending.popleft().result())
