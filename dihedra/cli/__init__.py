@@ -76,6 +76,11 @@ def main(argv=None):
     waiting for ever, and the interpreter would wait for them on its way out."""
     if "pyarrow" not in sys.modules:   # Arrow on the system heap: see trajectory.result.arrow_on_system_heap
         os.environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", "system")
+    given = sys.argv[1:] if argv is None else argv
+    if "numpy" not in sys.modules and next((a for a in given if not a.startswith("-")), None) == "track":
+        # one BLAS thread: the pass's own threads use the cores, and OpenBLAS' idle threads spin
+        # for a while after every call (on 2 cores, about 0.1-0.2 s of a 6,000-frame run)
+        os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     if argv is None:
         _note_early_interrupts()
     try:
