@@ -282,7 +282,8 @@ def test_window_table_as_dataframe_and_save(tmp_path, monkeypatch):
     assert from_frame.parameters["n_bootstrap"] == 20
     out = str(tmp_path / "saved")
     paths = from_frame.save(out)
-    assert {"windows.csv", "profiles.csv", "summary.json", "blocks.npz"} <= {os.path.basename(p) for p in paths}
+    names = {os.path.basename(p) for p in paths}
+    assert {"windows.csv", "profiles.csv", "summary.json", "blocks.npz", "histograms.parquet"} <= names
     assert load_results(out).summary["temperature_k"] == T
     with pytest.raises(OutputExistsError):
         from_file.save(out)

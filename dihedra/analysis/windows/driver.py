@@ -160,11 +160,13 @@ class WindowsResult:
 
     def _write(self, folder):
         """Write every file into ``folder``; returns their paths."""
+        from ...io.blocks import HISTOGRAMS_FILE
         from ...io.resultsdir import TABLES, write_results
         from ...io.tables import write_json, write_table
 
         write_results(self.result, folder)
-        paths = [os.path.join(folder, name) for name in [*TABLES.values(), "blocks.npz", "summary.json"]]
+        paths = [os.path.join(folder, name) for name in [*TABLES.values(), "blocks.npz", HISTOGRAMS_FILE,
+                                                          "summary.json"] if os.path.exists(os.path.join(folder, name))]
         paths += self.profiles.save(folder)
         paths.append(write_table(self.windows, folder, "windows.csv"))
         paths.append(write_table(self.overlap, folder, "window_overlap.csv"))
