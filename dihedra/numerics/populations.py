@@ -55,10 +55,11 @@ def torsion_populations(state_counts, block_replica, labels, types, state_labels
         n_samples[lo:lo + step] = totals.sum(axis=0)
     if np.all(n_samples == np.round(n_samples)):  # frame counts (unweighted run)
         n_samples = n_samples.astype(np.int64)
+    rows = np.arange(n_t * n_s)
     return pd.DataFrame({
-        "torsion": np.repeat(labels, n_s),
-        "type": np.repeat(types, n_s),
-        "state": np.tile(list(state_labels), n_t),
+        "torsion": _strings_taken(labels, rows // n_s),
+        "type": _strings_taken(types, rows // n_s),
+        "state": _strings_taken(state_labels, rows % n_s),
         "population": mean.reshape(-1),
         "population_err": se.reshape(-1),
         "n_effective": n_eff.reshape(-1),
@@ -184,8 +185,8 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     names = np.array(groups, dtype=object)
     joined = np.array(["|".join(labels[p] for p in m) for m in members], dtype=object)
     group_type = np.array(type_names, dtype=object)[pair_group]
-    conformer = _conformer_labels(pair_code, width[pair_group], state_labels)
-    pooled = _pooled_conformers(group_type, names[pair_group], conformer, mean, se)
+    conformer_text, conformer = _conformer_labels(pair_code, width[pair_group], state_labels)
+    pooled = _pooled_conformers(group_type, names[pair_group], conformer_text[conformer], mean, se)
     # rows by group name, then by population (largest first; NaN last), ties as they come: the
     # order is found on numbers and the table made once in it (a sort of the finished table copies
     # every column of strings)
@@ -193,10 +194,10 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     name_rank[np.argsort(names, kind="stable")] = np.arange(len(names))
     order = np.lexsort((-np.asarray(mean, dtype=float), name_rank[pair_group]))
     by_group = pd.DataFrame({
-        "group": names[pair_group[order]],
-        "group_type": group_type[order],
-        "conformer": conformer[order],
-        "torsions": joined[pair_group[order]],
+        "group": _strings_taken(names, pair_group[order]),
+        "group_type": _strings_taken(type_names, pair_group[order]),
+        "conformer": _strings_taken(conformer_text, conformer[order]),
+        "torsions": _strings_taken(joined, pair_group[order]),
         "population": mean[order], "population_err": se[order], "n_effective": n_eff[order],
     })
     return by_group, pooled
@@ -338,18 +339,29 @@ def _column_blocking(table, totals, local, block_replica):
 
 
 def _conformer_labels(codes, widths, state_labels):
-    """``"anti|gauche+|anti"`` for joint codes (digit j = state of member j, base n_states)."""
+    """The distinct labels (``"anti|gauche+|anti"``: digit j = state of member j, base n_states)
+    of joint ``codes`` of groups of ``widths`` torsions, and the position of each code's label:
+    ``(labels (object array), positions)``."""
     n_s = len(state_labels)
-    out = np.empty(len(codes), dtype=object)
-    if not len(codes):
-        return out
     codes, widths = np.asarray(codes, dtype=np.int64), np.asarray(widths, dtype=np.int64)
+    if not len(codes):
+        return np.empty(0, dtype=object), np.empty(0, dtype=np.int64)
     span = int(widths.max()) + 1
     uniq, inv = np.unique(codes * span + widths, return_inverse=True)   # one key per (code, width)
     text = ["|".join(state_labels[(int(k // span) // n_s ** j) % n_s] for j in range(int(k % span)))
             for k in uniq]
-    out[:] = np.array(text, dtype=object)[inv.reshape(-1)]
-    return out
+    out = np.empty(len(text), dtype=object)
+    out[:] = text
+    return out, inv.reshape(-1)
+
+
+def _strings_taken(distinct, positions):
+    """The column ``distinct[positions]`` taken from a Series of the distinct strings (pandas
+    would otherwise convert the Python string of every row, 0.1 s for the 116,000 rows of the
+    benchmark's conformer table); its type is what pandas gives a column of such strings."""
+    base = np.empty(len(distinct), dtype=object)
+    base[:] = list(distinct)
+    return pd.Series(base).take(np.asarray(positions, dtype=np.int64)).reset_index(drop=True)
 
 
 def _short_type_names(group_types, resnames, members):
