@@ -348,7 +348,8 @@ class _Run:
         with self.phase("tables"):
             blocks = block_sums(self.passes)
             work = self.work
-            self.writers = [_Background(lambda: save_blocks(work, blocks, narrow=[k for k in blocks if narrowed_type(k)]))]
+            narrow = [k for k in blocks if narrowed_type(k)]
+            self.writers = [_Background(lambda: save_blocks(work, blocks, narrow=narrow))]
             result = assemble_result(tset, scheme, universe, self.notices, blocks)
             result.schemes = schemes
             result.time_blocks = pass_time_blocks(self.passes, tset.types, scheme.labels)

@@ -175,3 +175,19 @@ def test_histograms_of_an_earlier_folder_in_blocks_npz_and_a_damaged_file(tmp_pa
     blocks = load_blocks(tmp_path / "blocks.npz")
     with pytest.raises(InputFileError, match="histograms.parquet is damaged"):
         blocks["histograms"]
+
+
+def test_histograms_of_blocks_beyond_2_gb_use_64_bit_offsets(tmp_path, monkeypatch):
+    """A block of 2 GB or more is written with Arrow's large_binary (64-bit offsets): made to
+    happen here for a small block, which reads back equal."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from dihedra.io import blocks as blocks_module
+
+    monkeypatch.setattr(blocks_module, "LARGE_BLOCK_BYTES", 1)
+    hist = np.arange(2 * 5 * 360, dtype=np.int32).reshape(2, 5, 360) % 300
+    blocks_module.save_blocks(tmp_path, {"histograms": hist, "state_counts": np.ones((2, 5, 3), np.int64)},
+                              narrow=["histograms"])
+    assert pq.read_schema(tmp_path / "histograms.parquet").field("counts").type == pa.large_binary()
+    np.testing.assert_array_equal(blocks_module.load_blocks(tmp_path / "blocks.npz")["histograms"], hist)

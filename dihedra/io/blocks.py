@@ -1,8 +1,8 @@
 """The block sums of a results folder: ``blocks.npz`` (state counts, conformer counts per block,
 with block frames, weights and replicas) and ``histograms.parquet`` (the fine angle histograms per
 block, the largest of them: rows of about 1 MB of counts, zstd-compressed, about three times
-faster to write than zlib inside the ``.npz``; folders of earlier versions keep them in ``blocks.npz`` and are read
-as they are)."""
+faster to write than zlib inside the ``.npz``; folders of earlier versions keep them in
+``blocks.npz`` and are read as they are)."""
 
 from __future__ import annotations
 
@@ -35,6 +35,8 @@ def save_blocks(folder, arrays, narrow=()):
                         narrow="histograms" in narrow)
 
 
+#: Blocks of this many bytes and more are stored with 64-bit offsets (Arrow's large_binary).
+LARGE_BLOCK_BYTES = 2 ** 31 - 1
 #: Bytes of counts per row of :data:`HISTOGRAMS_FILE` (a block is split by torsions into rows of
 #: about this size: Parquet's page and compression buffers stay small for any number of torsions).
 HISTOGRAM_ROW_BYTES = 1 << 20
@@ -62,9 +64,11 @@ def save_histograms(path, hist, block_replica=None, narrow=True, level=1):
     replica = np.zeros(shape[0], dtype=np.int64) if block_replica is None else np.asarray(block_replica)
     meta = {"dtype": dtype.str, "shape": list(shape), "order": "C",
             "axes": ["block", "torsion (torsions.csv order)", "bin (bin_edges_deg of blocks.npz)"]}
-    schema = pa.schema([("block", pa.int32()), ("replica", pa.int32()), ("first_torsion", pa.int32()),
-                        ("counts", pa.binary())], metadata={_META: json.dumps(meta).encode()})
     per_torsion = int(np.prod(shape[2:], dtype=np.int64)) * dtype.itemsize
+    binary, offset_type = ((pa.large_binary(), np.int64) if shape[1] * per_torsion >= LARGE_BLOCK_BYTES
+                           else (pa.binary(), np.int32))
+    schema = pa.schema([("block", pa.int32()), ("replica", pa.int32()), ("first_torsion", pa.int32()),
+                        ("counts", binary)], metadata={_META: json.dumps(meta).encode()})
     step = max(1, HISTOGRAM_ROW_BYTES // max(1, per_torsion))
     firsts = np.arange(0, shape[1], step, dtype=np.int64) if shape[1] else np.zeros(1, dtype=np.int64)
     offsets = np.append(firsts, shape[1]) * per_torsion
@@ -72,8 +76,8 @@ def save_histograms(path, hist, block_replica=None, narrow=True, level=1):
                           write_statistics=["block", "replica", "first_torsion"]) as writer:
         for b in range(shape[0]):
             block = np.ascontiguousarray(hist.block(b) if hasattr(hist, "block") else hist[b], dtype=dtype)
-            counts = pa.Array.from_buffers(pa.binary(), len(firsts), [None, pa.py_buffer(offsets.astype(np.int32)),
-                                                                       pa.py_buffer(block)])   # (no copy)
+            counts = pa.Array.from_buffers(binary, len(firsts), [None, pa.py_buffer(offsets.astype(offset_type)),
+                                                                  pa.py_buffer(block)])   # (no copy)
             n = len(firsts)
             writer.write_table(pa.table({"block": pa.array(np.full(n, b, np.int32)),
                                          "replica": pa.array(np.full(n, int(replica[b]), np.int32)),
