@@ -14,8 +14,8 @@ import numpy as np
 from ..errors import InputFileError
 from ..trajectory.result import NARROWED, BlockSums, narrowed_type
 
-__all__ = ["HISTOGRAMS_FILE", "NARROWED", "BlockSums", "HistogramFile", "load_blocks", "narrowed_type",
-           "save_blocks", "save_histograms", "save_npz"]
+__all__ = ["HISTOGRAMS_FILE", "NARROWED", "BlockSums", "HistogramFile", "damaged_file", "load_blocks",
+           "narrowed_type", "save_blocks", "save_histograms", "save_npz"]
 
 #: The file of the fine histograms in a results folder.
 HISTOGRAMS_FILE = "histograms.parquet"
@@ -99,7 +99,7 @@ class HistogramFile:
             self.shape = tuple(int(x) for x in meta["shape"])
             self.dtype = np.dtype(meta["dtype"])
         except Exception as exc:  # noqa: BLE001 - any unreadable file is the same error for a user
-            raise _damaged_file(path, exc) from None
+            raise damaged_file(path, exc) from None
         self.ndim = len(self.shape)
 
     def materialize(self):
@@ -118,13 +118,17 @@ class HistogramFile:
         except InputFileError:
             raise
         except Exception as exc:  # noqa: BLE001
-            raise _damaged_file(self.path, exc) from None
+            raise damaged_file(self.path, exc) from None
         return out
 
 
-def _damaged_file(path, exc):
-    return InputFileError(f"{path} is damaged ({type(exc).__name__}: {str(exc).strip()[:120]}); the results "
-                          "folder was cut or changed by hand: run 'dihedra track' again.")
+def damaged_file(path, what):
+    """The error of a results folder's file that cannot be read as written (``what``: a text, or
+    the exception that reading it raised)."""
+    if isinstance(what, BaseException):
+        what = f"{type(what).__name__}: {str(what).strip()[:120]}"
+    return InputFileError(f"{path} is damaged ({what}); the results folder was cut or changed by hand: run "
+                          "'dihedra track' again.")
 
 
 def save_npz(path, arrays, level=1, narrow=()):

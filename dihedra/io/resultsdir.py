@@ -59,7 +59,7 @@ from ..selection.schemes import scheme_from_dict
 from ..selection.torsions import TorsionSet
 from ..trajectory.assemble import own_states
 from ..trajectory.result import TrackResult
-from .blocks import HISTOGRAMS_FILE, load_blocks, narrowed_type, save_blocks
+from .blocks import HISTOGRAMS_FILE, damaged_file, load_blocks, narrowed_type, save_blocks
 from .series import ParquetSeries
 from .tables import read_json, read_optional_table, read_table, write_json, write_table
 
@@ -127,8 +127,7 @@ REQUIRED_COLUMNS = {
 
 
 def _damaged(folder, name, what):
-    return InputFileError(f"{os.path.join(folder, name)} is damaged ({what}); the results folder was cut or "
-                          "changed by hand: run 'dihedra track' again.")
+    return damaged_file(os.path.join(folder, name), what)
 
 
 def _scheme(folder, summary):
@@ -145,7 +144,7 @@ def _blocks(folder):
     try:
         return load_blocks(os.path.join(folder, "blocks.npz"))
     except (zipfile.BadZipFile, zlib.error, EOFError, ValueError, KeyError, OSError) as exc:
-        raise _damaged(folder, "blocks.npz", f"{type(exc).__name__}: {str(exc).strip()[:120]}") from None
+        raise _damaged(folder, "blocks.npz", exc) from None
 
 
 def check_consistent(folder, tables, blocks, scheme, summary):

@@ -253,10 +253,10 @@ def _pooled_conformers(group_type, group, conformer, population, population_err)
     rows = []
     for t, name in enumerate(type_names):
         sel = order_of_type[bounds[t]:bounds[t + 1]]
-        confs = _in_order_seen(conf_code[sel])
+        confs = pd.unique(conf_code[sel])   # (in order of appearance)
         for c in confs:
             rank.setdefault(c, len(rank))
-        groups = _in_order_seen(group_code[sel])
+        groups = pd.unique(group_code[sel])
         where = (_positions(groups, group_code[sel]), _positions(confs, conf_code[sel]))
         grid_pop, grid_err = np.zeros((len(groups), len(confs))), np.zeros((len(groups), len(confs)))
         grid_pop[where], grid_err[where] = pop[sel], err[sel]
@@ -277,12 +277,6 @@ def _positions(distinct, codes):
     lookup = np.empty(int(distinct.max()) + 1, dtype=np.int64)
     lookup[distinct] = np.arange(len(distinct))
     return lookup[codes]
-
-
-def _in_order_seen(codes):
-    """The distinct values of ``codes`` in the order they first appear."""
-    values, first = np.unique(codes, return_index=True)
-    return values[np.argsort(first, kind="stable")]
 
 
 def _conformer_blocking(rows, weights, g0, g1, n_blocks, block_replica):
