@@ -339,7 +339,9 @@ class _Run:
 
     def finish(self, tset, scheme, universe, topology, replicas, params, schemes=None):
         """The result and its folder: the block sums written by another thread (zstd and zlib
-        release Python's lock) while this one computes the populations and writes the tables."""
+        release Python's lock) while this one computes the populations and writes the tables;
+        the convergence tables; ``summary.json`` last, with the seconds and peak memory of every
+        phase."""
         # the last row group of the time series first: Arrow's writer of 15,000 columns takes
         # about 100 MB while it writes, which the tables would otherwise come on top of
         with self.phase("series"):
@@ -354,22 +356,24 @@ class _Run:
             result.schemes = schemes
             result.time_blocks = pass_time_blocks(self.passes, tset.types, scheme.labels)
             release_memory()
+            write_results(result, work, blocks=False, summary=False)
+            for w in self.writers:
+                w.join()
+            self.writers = []
+            # the histogram blocks the passes left in the scratch folder are in histograms.parquet
+            # now: the result reads them from there if an analysis asks for them
+            shutil.rmtree(self.parts_dir, ignore_errors=True)
+            release_memory()
+        with self.phase("convergence"):
+            write_convergence(result, work, params)
         with self.phase("hashing_wait"):
             summary = make_summary(topology, replicas, scheme, tset, params, self.notices,
                                    time.time() - self.started, hashes=self.hashes)
         summary["phase_seconds"] = {k: round(v, 3) for k, v in self.phases.items()}
         summary["peak_memory_mb_after"] = {k: v for k, v in self.peaks.items() if v is not None}
-        result.summary.update(summary)
-        write_results(result, work, blocks=False)
-        for w in self.writers:
-            w.join()
-        self.writers = []
-        # the histogram blocks the passes left in the scratch folder are in histograms.parquet
-        # now: the result reads them from there if an analysis asks for them
-        shutil.rmtree(self.parts_dir, ignore_errors=True)
-        self.passes[-1].finish_series()
-        release_memory()
-        write_convergence(result, work, params)
+        summary.update((k, v) for k, v in result.summary.items() if k not in summary)   # (the convergence)
+        result.summary = summary
+        write_json(summary, work, "summary.json")
         if self.staging is not None:
             result.folder = self.staging.commit()
             self.staging = None
@@ -402,18 +406,19 @@ class _Run:
 
 def write_convergence(result, folder, params):
     """convergence.csv (and its by-state, over-time and JSON companions) from the series just
-    written into ``folder``; its notices join the run's (and summary.json)."""
+    written into ``folder``; its notices join the run's, its summary ``result.summary``
+    (written to summary.json by the caller)."""
     started = time.time()
     result.series = ParquetSeries(folder)
     conv = convergence_tables(result, target_error=params["target_error"],
-                              target_error_kj_mol=params["target_error_kj_mol"])
+                              target_error_kj_mol=params["target_error_kj_mol"],
+                              temperature_k=params.get("temperature_k"))
     for name, table in conv.tables().items():
         write_table(table, folder, name)
     write_json(conv.record(), folder, "convergence.json")
     result.notices.extend(n for n in conv.run_notices(params.get("discard")) if n not in result.notices)
     result.summary["notices"] = list(result.notices)
     result.summary["convergence"] = dict(conv.summary(), seconds=round(time.time() - started, 3))
-    write_json(result.summary, folder, "summary.json")
     return conv
 
 

@@ -73,16 +73,18 @@ TABLES = {
 }
 
 
-def write_results(result, folder, blocks=True):
+def write_results(result, folder, blocks=True, summary=True):
     """Write every table, the block sums (unless ``blocks=False``: written elsewhere) and the
-    summary of a :class:`~dihedra.trajectory.result.TrackResult`."""
+    summary (unless ``summary=False``: written last by the caller) of a
+    :class:`~dihedra.trajectory.result.TrackResult`."""
     for attr, name in TABLES.items():
         write_table(getattr(result, attr), folder, name)
     if getattr(result, "schemes", None) is not None:
         write_table(result.schemes, folder, "schemes.csv")
     if blocks:
         save_blocks(folder, result.blocks, narrow=[k for k in result.blocks if narrowed_type(k)])
-    write_json(result.summary, folder, "summary.json")
+    if summary:
+        write_json(result.summary, folder, "summary.json")
 
 
 def load_results(folder):

@@ -41,7 +41,7 @@ EXACT_ROWS = 100_000
 #: Largest magnitude written in single precision (beyond it a column keeps double precision).
 _FLOAT32_SAFE = 1e37
 #: Rows formatted per Arrow call (bounds the memory of the text buffer).
-_ROWS_PER_PART = 40_000
+_ROWS_PER_PART = 10_000
 
 
 def _arrow_column(series, single):

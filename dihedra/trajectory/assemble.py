@@ -100,7 +100,8 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     """Populations, conformers and the torsion table from the block sums (:func:`_block_sums`)."""
     labels, types = tset.labels, tset.types
     resnames = [t.resname for t in tset.torsions]
-    state_counts, block_replica = blocks["state_counts"], blocks["block_replica"]
+    # (the counts as kept, in their narrow type: the tables read them a slice at a time)
+    state_counts, block_replica = getattr(blocks, "stored", blocks)["state_counts"], blocks["block_replica"]
     conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
     dense = dense_conformers(blocks, tset, scheme.n_states)
 

@@ -8,6 +8,9 @@ and appends the codes to a chunk buffer. Results:
 ``results.state_counts`` : ndarray, shape (n_state_blocks, n_torsions, n_states)
     (weighted) number of frames per block, torsion and state; blocks are equal slices of the
     analysed frames, fixed by frame position, so serial and parallel runs fill the same cells.
+    Counts are in the narrowest unsigned type that holds a block's frames (float64 when
+    weighted), as the histograms; :class:`~dihedra.trajectory.result.BlockSums` gives them to
+    analyses as int64.
 ``results.histograms`` : ndarray or BlockParts, shape (n_hist_blocks, n_torsions, n_bins)
     (weighted) fine periodic angle histogram per block, bins of ``bin_width_deg`` on (-180, 180],
     each bin open at its left edge and closed at its right: counts in the narrowest unsigned type
@@ -84,6 +87,7 @@ from MDAnalysis.analysis.base import AnalysisBase
 from MDAnalysis.analysis.results import ResultsGroup
 
 from ..numerics.angles import TorsionGeometry
+from ..numerics.counts import narrowest
 from . import interrupts
 from .conformer_counts import ConformerCounter, merge_dense, merge_rows
 from .cores import CoreBits
@@ -156,8 +160,8 @@ class TorsionPass(AnalysisBase):
     >>> from dihedra import example_path, select_torsions, get_scheme
     >>> u = mda.Universe(example_path("hexane.pdb"), example_path("hexane.xtc"))
     >>> tp = TorsionPass(u, select_torsions(u, "rotatable"), get_scheme("anti-gauche")).run(stop=10)
-    >>> tp.results.state_counts.sum()  # 10 frames x 300 torsions
-    np.int64(3000)
+    >>> int(tp.results.state_counts.sum())  # 10 frames x 300 torsions
+    3000
     """
 
     _analysis_algorithm_is_parallelizable = True
@@ -508,8 +512,8 @@ class TorsionPass(AnalysisBase):
 
     def _conclude(self):
         res = self.results
-        if res.state_counts.dtype != np.float64:   # (after the pass's buffers are gone)
-            res.state_counts = res.state_counts.astype(np.int64)
+        if res.state_counts.dtype != np.float64:   # (no cell holds more than its block's frames)
+            res.state_counts = narrowest(res.state_counts, int(res.block_frames.max(initial=0)))
         # conformer rows and dense counts of the workers (files or arrays), summed where two
         # workers counted the same block
         res.conformer_counts, res.conformer_weights = merge_rows(
