@@ -31,9 +31,9 @@ spread the machine's noise leaves) and the cost per torsion-frame in ns; the sam
 frames and the Theil-Sen slope (``scipy.stats.theilslopes``, 90 % interval) through every run;
 the fixed cost of a run, ``T_b(1) - T_a(1)`` (a 1-frame run against the Universe's load), with
 the seconds by phase that ``summary.json`` records, and the same for the first run of a file
-(``DIHEDRA_NO_HASH_CACHE=1``: its SHA-256 computed, not remembered); and the peak memory (sum of
-the resident set sizes of the command's process tree, polled every 20 ms) of (b) at 1, N, 2 N
-and 4 N frames. The time to compile the kernels with an empty numba cache (once per
+(``DIHEDRA_NO_HASH_CACHE=1``: its SHA-256 computed, not remembered); and the peak memory in MB of 10^6
+bytes (the command's own high-water mark, or the sum of the resident set sizes of its process
+tree, polled every 20 ms, where that is larger) of (b) at 1, N, 2 N and 4 N frames. The time to compile the kernels with an empty numba cache (once per
 installation) is measured separately.
 
 Post-processing: ``dihedra track`` over as many copies of the 4 N-frame XTC (as replicas) as make
@@ -189,7 +189,10 @@ def _cpu_seconds(pid):
 
 
 def measure(cmd, extra_pids=(), env=None):
-    """Run ``cmd``; return wall seconds, CPU seconds (tree + extra processes), peak RSS bytes."""
+    """Run ``cmd``; return wall seconds, CPU seconds (tree + extra processes) and the peak memory in
+    MB of 10^6 bytes (the unit of the targets): the larger of the command's own high-water mark
+    (``ru_maxrss`` from ``wait4``, exact) and the sum of the resident sizes of its process tree,
+    polled every 20 ms (workers of a parallel run)."""
     extra_cpu0 = sum(_cpu_seconds(p) for p in extra_pids)
     before = os.times()
     t0 = time.perf_counter()
@@ -203,18 +206,24 @@ def measure(cmd, extra_pids=(), env=None):
             peak[0] = max(peak[0], total)
             time.sleep(0.02)
 
-    th = threading.Thread(target=poll, daemon=True)
-    th.start()
-    _, err = proc.communicate()
+    err = []
+    threads = [threading.Thread(target=poll, daemon=True),
+               threading.Thread(target=lambda: err.append(proc.stderr.read()), daemon=True)]
+    for th in threads:
+        th.start()
+    _, status, usage = os.wait4(proc.pid, 0)   # (its rusage: Popen.wait would drop it)
+    proc.returncode = os.waitstatus_to_exitcode(status)
     wall = time.perf_counter() - t0
     done.set()
-    th.join()
+    for th in threads:
+        th.join()
     after = os.times()
     if proc.returncode != 0:
-        raise RuntimeError(f"command failed ({proc.returncode}): {' '.join(cmd)}\n{err.decode()[-3000:]}")
+        raise RuntimeError(f"command failed ({proc.returncode}): {' '.join(cmd)}\n{b''.join(err).decode()[-3000:]}")
     cpu = (after.children_user - before.children_user) + (after.children_system - before.children_system)
     cpu += sum(_cpu_seconds(p) for p in extra_pids) - extra_cpu0
-    return {"wall_s": wall, "cpu_s": cpu, "peak_rss_mb": peak[0] / 2**20}
+    high_water = usage.ru_maxrss * (1 if sys.platform == "darwin" else 1024)   # (bytes on macOS, kB elsewhere)
+    return {"wall_s": wall, "cpu_s": cpu, "peak_rss_mb": max(peak[0], high_water) / 1e6}
 
 
 FLOOR = """

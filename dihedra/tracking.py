@@ -511,13 +511,14 @@ def _run_pass(tp, traj, frames, backend, n_workers, progress, r, n_replicas):
 
 
 def _peak_memory_mb():
-    """The peak resident memory of this process so far, in MB (None where the system does not say)."""
+    """The peak resident memory of this process so far, in MB of 10^6 bytes (None where the system
+    does not say)."""
     try:
         import resource
     except ImportError:   # (Windows)
         return None
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    return round(peak / (2 ** 20 if sys.platform == "darwin" else 2 ** 10))   # (bytes on macOS, kB elsewhere)
+    return round(peak * (1 if sys.platform == "darwin" else 1024) / 1e6)   # (bytes on macOS, kB elsewhere)
 
 
 def _process_age():

@@ -277,6 +277,33 @@ def test_results_folder_round_trip_and_existing_folder_untouched(two_replicas, t
     assert sorted(os.listdir(tmp_path)) == ["res"]
 
 
+def test_state_counts_are_kept_narrow_and_read_wide_and_the_summary_comes_last(two_replicas, tmp_path):
+    (top, t0), _ = two_replicas
+    out = tmp_path / "res"
+    res = track(top, [t0], torsions=spec8(), scheme="anti-gauche", out=str(out))
+    # a block holds at most its frames, so the counts of a short run are kept as uint8; analyses
+    # read int64 with the same integers (common practice: counters sized to their bound)
+    kept = res.blocks.stored["state_counts"]
+    assert kept.dtype == np.uint8
+    assert int(kept.max()) <= int(res.blocks["block_frames"].max())
+    wide = res.blocks["state_counts"]
+    assert wide.dtype == np.int64 and np.array_equal(wide, kept)
+    assert int(wide.sum()) == 300 * 8 - int(res.blocks["undefined"].sum())   # frames x torsions
+    back = load_results(out)
+    assert back.blocks["state_counts"].dtype == np.int64 and np.array_equal(back.blocks["state_counts"], wide)
+    # summary.json is written after every table: it records the convergence phase, and its own peak
+    # memory is the process's peak until then (ru_maxrss, in MB of 10^6 bytes)
+    import resource
+    summary = back.summary
+    assert list(summary["phase_seconds"])[-2:] == ["convergence", "hashing_wait"]
+    assert summary["convergence"]["verdicts"]
+    peaks = summary["peak_memory_mb_after"]
+    assert list(peaks.values()) == sorted(peaks.values())
+    assert peaks["hashing_wait"] <= resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 / 1e6 + 1
+    assert os.path.getmtime(out / "summary.json") >= max(os.path.getmtime(out / n) for n in
+                                                         ("populations.csv", "convergence.csv", "histograms.parquet"))
+
+
 def test_interrupted_run_leaves_no_folder(two_replicas, tmp_path, monkeypatch):
     (top, t0), _ = two_replicas
     from dihedra.trajectory import trackpass
