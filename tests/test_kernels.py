@@ -227,3 +227,31 @@ def test_a_set_of_schemes_codes_each_torsion_by_its_own_part():
     # every torsion only takes states of its own part
     for t, c in zip(types, codes):
         assert scheme.labels[c] in scheme.states_of_type(t)
+
+
+def test_histogram_blocks_saved_to_files_equal_counts_per_block(tmp_path):
+    """Blocks saved to the scratch folder as the frames pass them (their arrays reused, zeroed,
+    for the next block) hold exactly the counts of their own frames (numpy.add.at reference),
+    also for a block whose counts outgrow uint8."""
+    from dihedra.numerics import _kernels
+    from dihedra.trajectory.histograms import HistogramBlocks
+
+    rng = np.random.default_rng(5)
+    n_t, n_bins = 7, 36
+    block = np.repeat(np.arange(3), [40, 300, 25])            # block 1: cells past 255
+    bins = rng.integers(0, n_bins + 1, size=(len(block), n_t)).astype(np.uint16)   # (0: undefined)
+    bins[40:340, 0] = 5                                       # one cell counted 300 times
+    hb = HistogramBlocks(0, n_t, n_bins, weighted=False, spill=str(tmp_path / "h"))
+    for lo in range(0, len(block), 64):                       # buffered as the pass hands them over
+        hb.add(bins[lo:lo + 64], block[lo:lo + 64], np.ones(min(64, len(block) - lo)), _kernels)
+    parts = hb.finish()
+    assert [b for b, _, _ in parts] == [0, 1, 2]
+    for b, path, most in parts:
+        ref = np.zeros((n_t, n_bins), dtype=np.int64)
+        sel = bins[block == b]
+        t = np.broadcast_to(np.arange(n_t), sel.shape)
+        ok = sel > 0
+        np.add.at(ref, (t[ok], sel[ok].astype(np.int64) - 1), 1)
+        got = np.load(path)
+        assert np.array_equal(got, ref) and most == ref.max()
+        assert got.dtype == (np.uint16 if ref.max() > 255 else np.uint8)
