@@ -242,6 +242,14 @@ def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):
         assert len(left) > 0, name
         pd.testing.assert_frame_equal(left, right, check_exact=True, obj=name)
     assert a.settings == b.settings and a.notices == b.notices
+    # the histograms are read as counted (uint8 here: 300 frames in 16 blocks), not widened; a
+    # result whose histograms were widened first (int32, as analyses see them) gives the same tables
+    assert loaded.blocks.kept("histograms").dtype == np.uint8
+    widened = load_results(out)
+    assert widened.blocks["histograms"].dtype == np.int32
+    c = free_energy_profiles(widened, n_bootstrap=40, pairs=pair)
+    for name in ("profiles", "minima", "barriers", "state_free_energies"):
+        pd.testing.assert_frame_equal(getattr(b, name), getattr(c, name), check_exact=True, obj=name)
     paths_a, paths_b = a.save(str(tmp_path / "a")), b.save(str(tmp_path / "b"))
     assert [os.path.basename(p) for p in paths_a] == [os.path.basename(p) for p in paths_b]
     for pa, pb in zip(paths_a, paths_b):

@@ -59,6 +59,7 @@ import pandas as pd
 
 from ...errors import DihedraError, InputFileError
 from ...numerics.heterogeneity import pooled_mean_error
+from ...trajectory.result import kept_block
 from .experiment import VERDICT_RULES, compare_with_experiment
 from .relations import HN_HA_FAMILY, KarplusRelation, get_relation, substituents_of
 
@@ -338,17 +339,18 @@ def _pool_by_type(frame, family=None):
 def _relation_couplings(result, rel, select, notices, universe):
     """Per-torsion and per-type rows of one relation, and the substituents it used."""
     blocks = result.blocks
-    hist = np.asarray(blocks["histograms"], dtype=float)
+    hist = kept_block(blocks, "histograms")   # (as counted: only the torsions used become float)
     rep = np.asarray(blocks["hist_block_replica"])
     labels = np.array(result.torsion_set.labels)
     types = np.array(result.torsion_set.types)
     pos, extra, coupled = coupling_rows(result, rel, choose_torsions(result, rel, select, notices), notices, universe)
     kern, subs = relation_kernels(rel, result, pos, notices, universe, extra)
-    j, err, n = couplings_from_histograms(hist[:, pos, :], rep, kern)
+    hist = np.asarray(hist[:, pos, :], dtype=float)
+    j, err, n = couplings_from_histograms(hist, rep, kern)
     systematic = np.full(len(pos), np.nan if rel.systematic_hz is None else float(rel.systematic_hz))
     family = None
     if rel.name in HN_HA_FAMILY:
-        family = np.array([couplings_from_histograms(hist[:, pos, :], rep,
+        family = np.array([couplings_from_histograms(hist, rep,
                                                      relation_kernels(get_relation(f), result, pos,
                                                                       extra_offsets=extra)[0])[0]
                            for f in HN_HA_FAMILY])
