@@ -18,7 +18,7 @@ from ..numerics.populations import (MIN_EFFECTIVE_SAMPLES, conformer_populations
                                     pool_by_type, replica_populations, torsion_populations)
 from .conformer_counts import conformer_layout, dense_conformers, reduce_conformer_rows
 from .inputs import cached_sha256
-from .result import BlockParts, BlockSums, TrackResult
+from .result import BlockParts, BlockSums, TrackResult, kept_block
 
 #: How the summary says that a trajectory stores no time step.
 NO_TIME_STEP = "none (the trajectory stores no time step; MDAnalysis assumed 1 ps per frame)"
@@ -101,7 +101,7 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     labels, types = tset.labels, tset.types
     resnames = [t.resname for t in tset.torsions]
     # (the counts as kept, in their narrow type: the tables read them a slice at a time)
-    state_counts, block_replica = getattr(blocks, "stored", blocks)["state_counts"], blocks["block_replica"]
+    state_counts, block_replica = kept_block(blocks, "state_counts"), blocks["block_replica"]
     conf_rows, conf_w = blocks["conformer_rows"], blocks["conformer_weights"]
     dense = dense_conformers(blocks, tset, scheme.n_states)
 
