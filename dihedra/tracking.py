@@ -365,7 +365,8 @@ class _Run:
             shutil.rmtree(self.parts_dir, ignore_errors=True)
             release_memory()
         with self.phase("convergence"):
-            write_convergence(result, work, params)
+            write_convergence(result, work, params,
+                              time_step_known=all(r.get("time_step_known", True) for r in replicas))
         with self.phase("hashing_wait"):
             summary = make_summary(topology, replicas, scheme, tset, params, self.notices,
                                    time.time() - self.started, hashes=self.hashes)
@@ -404,7 +405,7 @@ class _Run:
             self.scratch.cleanup()
 
 
-def write_convergence(result, folder, params):
+def write_convergence(result, folder, params, time_step_known=None):
     """convergence.csv (and its by-state, over-time and JSON companions) from the series just
     written into ``folder``; its notices join the run's, its summary ``result.summary``
     (written to summary.json by the caller)."""
@@ -412,7 +413,7 @@ def write_convergence(result, folder, params):
     result.series = ParquetSeries(folder)
     conv = convergence_tables(result, target_error=params["target_error"],
                               target_error_kj_mol=params["target_error_kj_mol"],
-                              temperature_k=params.get("temperature_k"))
+                              temperature_k=params.get("temperature_k"), time_step_known=time_step_known)
     for name, table in conv.tables().items():
         write_table(table, folder, name)
     write_json(conv.record(), folder, "convergence.json")

@@ -279,6 +279,12 @@ def test_convergence_result_saves_its_tables(replicas, tmp_path):
     # error ~ 1 / sqrt(time): the time needed is the time so far x (error / target)^2
     assert row["time_needed_ps"] == pytest.approx(row["simulated_time_ps"] * (row["population_err_max"] / 0.001) ** 2)
     assert "more" in row["forecast"] and row["verdict"].startswith("not converged")
+    # without a physical time step (MDAnalysis' 1 ps per frame) the forecast is a multiple of the
+    # run, the same ratio, and names no time
+    blind = dihedra.convergence(res, target_error=0.001, time_step_known=False).convergence.iloc[0]
+    ratio = row["time_needed_ps"] / row["simulated_time_ps"]
+    assert f"about {ratio:.3g} times as much sampling as analysed" in blind["forecast"]
+    assert not any(unit in blind["forecast"] for unit in (" ps", " ns", " µs")) and "--dt-ps" in blind["forecast"]
     over = conv.over_time
     full = over[(over["fraction"] == 1.0)]
     assert np.allclose(full[full["direction"] == "forward"]["population"].to_numpy(),

@@ -139,7 +139,7 @@ def check_targets(target_error, target_error_kj_mol):
 
 
 def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL,
-                       temperature_k=None, n_time_blocks=500, n_points=10):
+                       temperature_k=None, n_time_blocks=500, n_points=10, time_step_known=None):
     """Convergence of the populations of every torsion type of ``result`` (see the module notes).
 
     Parameters
@@ -157,6 +157,10 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
         Time blocks per replica for the series.
     n_points : int
         Prefixes (and suffixes) of the forward and backward populations.
+    time_step_known : bool, optional
+        Whether the frames have physical times (default: as the run's summary records for every
+        replica; true when it records none). Without them the forecasts say how much more sampling
+        as a multiple of the run, not as a time.
 
     Returns
     -------
@@ -167,11 +171,14 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
         raise DihedraError("the convergence checks need the state time series; this result has none (track with "
                            "keep_states=True, the default).")
     tb = result_time_blocks(result, n_time_blocks)
+    if time_step_known is None:
+        time_step_known = all(r.get("time_step_known", True) for r in result.summary.get("replicas") or [])
+    time_known = bool(time_step_known)
     temperature_k = temperature_k if temperature_k is not None else result.summary.get("temperature_k")
     kt = None if temperature_k is None else R_KJ_PER_MOL_K * float(temperature_k)
     rows, state_rows, time_rows = [], [], []
     for k, name in enumerate(tb.types):
-        typ = _TypeSeries(tb, k)
+        typ = _TypeSeries(tb, k, time_known)
         row, states = typ.summary(target_error, target_error_kj_mol, kt)
         rows.append(row)
         state_rows.extend(states)
@@ -191,7 +198,8 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
 class _TypeSeries:
     """The time-block series of one type in every replica: fractions (n_blocks, n_states)."""
 
-    def __init__(self, tb, k):
+    def __init__(self, tb, k, time_known=True):
+        self.time_known = time_known
         self.name, self.states = tb.types[k], tb.states
         self.n_torsions = int(tb.n_torsions[k])
         self.parts = []
@@ -242,12 +250,14 @@ class _TypeSeries:
                "time_needed_ps": worst["time_needed_ps"] if worst else np.nan,
                "replicas_needed": self._replicas_needed(worst["time_needed_ps"]) if worst else np.nan,
                "forecast": _forecast(worst["population_err"], target, worst["time_needed_ps"], self.simulated,
-                                     self._replicas_needed(worst["time_needed_ps"])) if worst else "no data",
+                                     self._replicas_needed(worst["time_needed_ps"]), self.time_known)
+                           if worst else "no data",
                "dg_err_max_kj_mol": worst_dg["dg_err_kj_mol"] if worst_dg else np.nan,
                "target_error_kj_mol": float(target_kj),
                "dg_time_needed_ps": worst_dg["dg_time_needed_ps"] if worst_dg else np.nan,
                "dg_forecast": (_forecast(worst_dg["dg_err_kj_mol"], target_kj, worst_dg["dg_time_needed_ps"],
-                                         self.simulated, self._replicas_needed(worst_dg["dg_time_needed_ps"]))
+                                         self.simulated, self._replicas_needed(worst_dg["dg_time_needed_ps"]),
+                                         self.time_known)
                                if worst_dg else ("no temperature" if kt is None else "no second state"))}
         row = {"type": row.pop("type"), "verdict": _verdict(row, states, self.states), **row}
         return row, [{"type": self.name, **r} for r in states]
@@ -383,13 +393,19 @@ def _verdict(row, states, labels):
     return "converged" if not reasons else "not converged: " + "; ".join(reasons)
 
 
-def _forecast(err, target, needed_ps, simulated_ps, replicas):
+def _forecast(err, target, needed_ps, simulated_ps, replicas, time_known=True):
+    """The forecast as text: the time still needed, or, where the frames have no physical time
+    (``time_known`` false: MDAnalysis' 1 ps per frame), the same as a multiple of the run."""
     if not np.isfinite(err):
         return "no data"
     if err <= target:
         return "already reached"
     if not (np.isfinite(needed_ps) and np.isfinite(replicas)) or simulated_ps <= 0:
         return "more sampling (no forecast: the run has no usable time step)"
+    if not time_known:
+        return (f"about {needed_ps / simulated_ps:.3g} times as much sampling as analysed, in all, or {int(replicas)} "
+                "replicas of this length (the trajectory has no usable time step to say how long; --dt-ps "
+                "gives one)")
     return (f"about {human_time(needed_ps - simulated_ps)} more ({human_time(needed_ps)} in all, or "
             f"{int(replicas)} replicas of this length)")
 

@@ -51,7 +51,7 @@ class ConvergenceResult(Convergence):
 
 
 def convergence(result, *, target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL, temperature_k=None,
-                n_time_blocks=500, n_points=10):
+                n_time_blocks=500, n_points=10, time_step_known=None):
     """Convergence of the state populations of every torsion type.
 
     Parameters
@@ -72,6 +72,10 @@ def convergence(result, *, target_error=TARGET_ERROR, target_error_kj_mol=TARGET
         resolution of the detected start and the points of the error estimates.
     n_points : int
         Prefixes and suffixes of the forward and backward populations (default 10).
+    time_step_known : bool, optional
+        Whether the frames have physical times (default: as the run's summary records; a
+        trajectory without a time step gets MDAnalysis' 1 ps per frame). Without them the
+        forecasts give the sampling still needed as a multiple of the run, not as a time.
 
     Returns
     -------
@@ -89,5 +93,6 @@ def convergence(result, *, target_error=TARGET_ERROR, target_error_kj_mol=TARGET
     Pitera, Seok & Dill, J. Chem. Theory Comput. 3 (2007) 26 (statistical inefficiency).
     """
     conv = convergence_tables(as_result(result), target_error=target_error, target_error_kj_mol=target_error_kj_mol,
-                              temperature_k=temperature_k, n_time_blocks=n_time_blocks, n_points=n_points)
+                              temperature_k=temperature_k, n_time_blocks=n_time_blocks, n_points=n_points,
+                              time_step_known=time_step_known)
     return ConvergenceResult(**vars(conv))
