@@ -31,10 +31,11 @@ spread the machine's noise leaves) and the cost per torsion-frame in ns; the sam
 frames and the Theil-Sen slope (``scipy.stats.theilslopes``, 90 % interval) through every run;
 the fixed cost of a run, ``T_b(1) - T_a(1)`` (a 1-frame run against the Universe's load), with
 the seconds by phase that ``summary.json`` records, and the same for the first run of a file
-(``DIHEDRA_NO_HASH_CACHE=1``: its SHA-256 computed, not remembered); and the peak memory in MB of 10^6
-bytes (the command's own high-water mark, or the sum of the resident set sizes of its process
-tree, polled every 20 ms, where that is larger) of (b) at 1, N, 2 N and 4 N frames. The time to compile the kernels with an empty numba cache (once per
-installation) is measured separately.
+(``DIHEDRA_NO_HASH_CACHE=1``: its SHA-256 computed, not remembered); and the peak memory in MB
+of 10^6 bytes (the command's own high-water mark, or the sum of the resident set sizes of its
+process tree, polled every 20 ms, where that is larger) of (b) at 1, N, 2 N and 4 N frames. The
+time to compile the kernels with an empty numba cache (once per installation) is measured
+separately.
 
 Post-processing: ``dihedra track`` over as many copies of the 4 N-frame XTC (as replicas) as make
 at least ``--post-samples`` (default 10^8) state samples, then ``dihedra profile`` and ``dihedra

@@ -38,7 +38,8 @@ from .selection.torsions import TorsionSet
 from .trajectory import interrupts
 from .trajectory.assemble import (assemble_result, block_sums, make_summary, pass_threads, plan_workers, replica_info,
                                  scheme_table)
-from .trajectory.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables
+from .trajectory.convergence import (TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_targets, convergence_tables,
+                                     times_known)
 from .trajectory.discard import plan_discard
 from .trajectory.inputs import FileHashes, check_readable, load_universe, truncated_error, usable_frames
 from .trajectory.result import BlockParts, bound_heap, release_memory
@@ -365,8 +366,7 @@ class _Run:
             shutil.rmtree(self.parts_dir, ignore_errors=True)
             release_memory()
         with self.phase("convergence"):
-            write_convergence(result, work, params,
-                              time_step_known=all(r.get("time_step_known", True) for r in replicas))
+            write_convergence(result, work, params, time_step_known=times_known(replicas))
         with self.phase("hashing_wait"):
             summary = make_summary(topology, replicas, scheme, tset, params, self.notices,
                                    time.time() - self.started, hashes=self.hashes)

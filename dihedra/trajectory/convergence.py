@@ -138,6 +138,11 @@ def check_targets(target_error, target_error_kj_mol):
                            f"{target_error_kj_mol!r}.")
 
 
+def times_known(replicas):
+    """Whether every replica (the run summary's records) has a usable time step (true for none)."""
+    return all(r.get("time_step_known", True) for r in replicas or [])
+
+
 def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol=TARGET_ERROR_KJ_MOL,
                        temperature_k=None, n_time_blocks=500, n_points=10, time_step_known=None):
     """Convergence of the populations of every torsion type of ``result`` (see the module notes).
@@ -171,9 +176,7 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
         raise DihedraError("the convergence checks need the state time series; this result has none (track with "
                            "keep_states=True, the default).")
     tb = result_time_blocks(result, n_time_blocks)
-    if time_step_known is None:
-        time_step_known = all(r.get("time_step_known", True) for r in result.summary.get("replicas") or [])
-    time_known = bool(time_step_known)
+    time_known = bool(times_known(result.summary.get("replicas")) if time_step_known is None else time_step_known)
     temperature_k = temperature_k if temperature_k is not None else result.summary.get("temperature_k")
     kt = None if temperature_k is None else R_KJ_PER_MOL_K * float(temperature_k)
     rows, state_rows, time_rows = [], [], []

@@ -183,9 +183,7 @@ class BlockSums(MutableMapping):
         self.stored = dict(arrays)
 
     def __getitem__(self, name):
-        value = self.stored[name]
-        if hasattr(value, "materialize"):   # kept in parts or in a file (BlockParts, HistogramFile)
-            value = self.stored[name] = value.materialize()
+        value = self.kept(name)
         wide = narrowed_type(name)
         if (wide is not None and isinstance(value, np.ndarray) and value.dtype.kind == "u"
                 and value.dtype.itemsize < np.dtype(wide).itemsize):
@@ -197,7 +195,7 @@ class BlockSums(MutableMapping):
         ``uint8`` histogram of the benchmark system is 86 MB, 346 MB as ``int32``), for code that
         converts it slice by slice itself."""
         value = self.stored[name]
-        if hasattr(value, "materialize"):
+        if hasattr(value, "materialize"):   # kept in parts or in a file (BlockParts, HistogramFile)
             value = self.stored[name] = value.materialize()
         return value
 

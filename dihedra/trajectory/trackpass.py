@@ -6,11 +6,9 @@ minimum image, float32 angles), assigns state codes with the scheme, adds the an
 and appends the codes to a chunk buffer. Results:
 
 ``results.state_counts`` : ndarray, shape (n_state_blocks, n_torsions, n_states)
-    (weighted) number of frames per block, torsion and state; blocks are equal slices of the
-    analysed frames, fixed by frame position, so serial and parallel runs fill the same cells.
-    Counts are in the narrowest unsigned type that holds a block's frames (float64 when
-    weighted), as the histograms; :class:`~dihedra.trajectory.result.BlockSums` gives them to
-    analyses as int64.
+    (weighted) frames per block, torsion and state, in the narrowest unsigned type that holds a
+    block's frames (float64 when weighted; ``BlockSums`` gives analyses int64); blocks are equal
+    slices of the analysed frames, by frame position: serial and parallel runs fill the same cells.
 ``results.histograms`` : ndarray or BlockParts, shape (n_hist_blocks, n_torsions, n_bins)
     (weighted) fine periodic angle histogram per block, bins of ``bin_width_deg`` on (-180, 180],
     each bin open at its left edge and closed at its right: counts in the narrowest unsigned type
@@ -47,9 +45,8 @@ Memory
 The histogram blocks are allocated as the frames reach them (uint8 counts widened when a cell
 could pass 255, float64 when weighted) and, with ``parts_dir``, saved there and dropped once
 finished (:class:`~dihedra.trajectory.histograms.HistogramBlocks`): one or two blocks in memory,
-whatever the number of blocks and frames. The conformer counts of every state block are dense
-(uint8 widened the same way, per block, group and joint state) unless a class of groups has too
-many joint states (then sorted rows of the current block).
+whatever the number of blocks and frames. The conformer counts of every state block are dense (uint8
+widened alike) unless a class of groups has too many joint states (then sorted rows of the block).
 
 Core membership
 ---------------
@@ -514,8 +511,7 @@ class TorsionPass(AnalysisBase):
         res = self.results
         if res.state_counts.dtype != np.float64:   # (no cell holds more than its block's frames)
             res.state_counts = narrowest(res.state_counts, int(res.block_frames.max(initial=0)))
-        # conformer rows and dense counts of the workers (files or arrays), summed where two
-        # workers counted the same block
+        # conformer rows and dense counts of the workers (files or arrays), summed per block
         res.conformer_counts, res.conformer_weights = merge_rows(
             res.conformer_counts, res.conformer_weights, res.pop("conformer_parts", None) or [])
         res.conformer_dense = merge_dense(res.pop("conformer_dense", None) or [], self.n_state_blocks,
