@@ -28,7 +28,8 @@ It prints, per format and kind, the marginal cost per frame ``(T(N) - T(1)) / (N
 and (d) ``T(2)`` is the start: one frame per worker) in wall and CPU time (user + system of every
 process and thread), its ratio to (a) round by round (median [min, max] over the rounds: the
 spread the machine's noise leaves) and the cost per torsion-frame in ns; the same from 4 N
-frames and the Theil-Sen slope (``scipy.stats.theilslopes``, 90 % interval) through every run;
+frames; the ratio between N and 4 N frames, ``(T(4N) - T(N)) / (3 N)``, where the tables no
+longer grow; the Theil-Sen slope (``scipy.stats.theilslopes``, 90 % interval) through every run;
 the fixed cost of a run, ``T_b(1) - T_a(1)`` (a 1-frame run against the Universe's load), with
 the seconds by phase that ``summary.json`` records, and the same for the first run of a file
 (``DIHEDRA_NO_HASH_CACHE=1``: its SHA-256 computed, not remembered); and the peak memory in MB
@@ -424,6 +425,17 @@ def report_format(fmt, n, n_torsions, plan, lengths, rounds, samples, frames_of)
         print(f"    {LABELS[kind]:<36} {r['slope'] * 1e3:7.3f} ms/frame [{r['low'] * 1e3:.3f}, {r['high'] * 1e3:.3f}]"
               f"  ratio {r['slope'] / fa['slope']:5.2f} [{r['low'] / fa['high']:.2f}, {r['high'] / fa['low']:.2f}]")
     res["theil_sen"] = slopes
+    if "N" in lengths and "4N" in lengths:   # once the tables no longer grow with the frames
+        n_lo, n_hi = frames_of["N"], frames_of["4N"]
+        print(f"  between N and 4N, (T(4N) - T(N)) / {n_hi - n_lo}, ratio to (a) round by round:")
+        for kind in plan:
+            if not all(f"{kind}:N" in r and f"{kind}:4N" in r for r in rounds):
+                continue
+            steady = [(r[f"{kind}:4N"]["wall_s"] - r[f"{kind}:N"]["wall_s"])
+                      / (r["a:4N"]["wall_s"] - r["a:N"]["wall_s"]) for r in rounds]
+            sm, slo, shi = spread(steady)
+            print(f"    {LABELS[kind]:<36} {sm:5.2f} [{slo:.2f}, {shi:.2f}]")
+            res[f"{kind}:N-4N"] = {"ratio": sm, "ratio_min": slo, "ratio_max": shi}
     fixed = [r["b:1"]["wall_s"] - r["a:1"]["wall_s"] for r in rounds]
     fm, flo, fhi = spread(fixed)
     a1 = spread([r["a:1"]["wall_s"] for r in rounds])[0]
