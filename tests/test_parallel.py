@@ -453,19 +453,31 @@ def test_workers_pay_only_with_free_cores_and_enough_frames(replicas, monkeypatc
         track(top, trajs[:1], workers=0, **KW)
 
 
-@pytest.mark.parametrize("cut", ["half", "all"])
+@pytest.mark.parametrize("cut", ["half", "all", "decode-some", "decode-all"])
 def test_torsion_work_shared_by_the_reading_thread_gives_the_same_results(replicas, serial, monkeypatch, cut):
     # the reading thread computes the first torsions of each batch, the second thread the rest
-    # (frame_work.FrameWork); wherever the cut is, the results are those of one thread
+    # (frame_work.FrameWork); or the second thread decodes the last frames of each batch (XTC:
+    # trajread.XTCFrames.decode_later, with their boxes and times); wherever the cut is, the
+    # results are those of one thread
     import dihedra.trajectory.trackpass as tp
     from dihedra.trajectory.frame_work import FrameWork
+    from dihedra.trajectory.trajread import XTCFrames
 
     def fixed(self, side, seconds, frames):
-        self.split = self.n // 2 if cut == "half" else self.n
+        self.split = {"half": self.n // 2, "all": self.n}.get(cut, 0)
     monkeypatch.setattr(FrameWork, "balance", fixed)
+    left = []
+    if cut.startswith("decode"):
+        monkeypatch.setattr(FrameWork, "later_frames",
+                            lambda self, n: n if cut == "decode-all" else n // 2 + 1)
+        original = XTCFrames.decode_later
+        monkeypatch.setattr(XTCFrames, "decode_later",
+                            lambda self, later: (left.append(later.n), original(self, later)))
     monkeypatch.setattr(tp, "BATCH_BYTES", 7 * 60 * 12)   # batches of 7 frames (60 atoms)
     top, trajs, _ = replicas
     assert_same(serial, track(top, trajs, threads=2, **KW))
+    if cut.startswith("decode"):   # (the second thread did decode frames: 7 or 4 of every batch of 7)
+        assert max(left) == (7 if cut == "decode-all" else 4)
 
 
 def test_core_bits_written_are_the_core_rule_of_the_angles(replicas, serial):
@@ -481,3 +493,37 @@ def test_core_bits_written_are_the_core_rule_of_the_angles(replicas, serial):
     expected = np.stack([scheme.core_codes(angles[c].to_numpy(), CORE_MARGIN_DEG) >= 0 for c in labels], axis=1)
     np.testing.assert_array_equal(cores[labels].to_numpy(), expected)
     assert 0.1 < expected.mean() < 0.9
+
+
+@pytest.mark.parametrize("kind", ["decoding", "cheap-read"])
+def test_the_balance_of_the_threads_meets_where_both_take_as_long(kind):
+    # FrameWork.balance solves r + D (1 - q) + w s = d + D q + w (n - s) for the torsions s of the
+    # reading thread and the share q of the frames the computing thread decodes (algebra of the
+    # two threads' seconds per frame); fed the seconds of a run of that shape window after
+    # window, it settles there
+    from types import SimpleNamespace
+
+    from dihedra.trajectory.frame_work import WINDOW, FrameWork
+
+    n = 15_000
+    work = FrameWork(SimpleNamespace(kernels=None, idx3=np.zeros((n, 4)), n_torsions=n), (None,) * 7,
+                     None, np.zeros(n), None, None)
+    # seconds per frame (ms): reading r, decoding D, computing thread's other work d, torsions w n
+    r, dec, d, wn = (0.03, 0.2, 0.05, 0.14) if kind == "decoding" else (0.05, 0.0, 0.07, 0.2)
+    for _ in range(30):
+        q, s = work.later_share, work.split
+        work._acc[0][2] += WINDOW * wn * s / n * 1e-3
+        work._acc[1][2] += WINDOW * wn * (n - s) / n * 1e-3
+        work._part_frames += WINDOW * n
+        if dec:
+            work.decoded(0, WINDOW * dec * (1 - q) * 1e-3, WINDOW)
+            work.decoded(1, WINDOW * dec * q * 1e-3, 0)
+        work.balance(0, WINDOW * (r + dec * (1 - q) + wn * s / n) * 1e-3, WINDOW)
+        work.balance(1, WINDOW * (d + dec * q + wn * (n - s) / n) * 1e-3, WINDOW)
+    if kind == "decoding":   # r + D > d + w n: no torsions for the reading thread, q = 0.04 / 0.4
+        assert work.split == 0 and work.later_share == pytest.approx(0.1, abs=1e-3)
+        k = [work.later_frames(5) for _ in range(100)]   # batches of 5 frames: one in two gets one
+        assert abs(sum(k) - 500 * work.later_share) < 1 and set(k) == {0, 1}
+    else:   # nothing to decode: s = (w n + d - r) / 2w = 0.55 n
+        assert work.later_share == 0.0 and work.later_frames(5) == 0
+        assert abs(work.split - 0.55 * n) <= 64

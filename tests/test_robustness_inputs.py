@@ -185,6 +185,24 @@ def test_a_damaged_xtc_frame_is_one_error_naming_the_readable_frames(work, capsy
     assert not os.path.exists(work / "out") and no_staging(work)
 
 
+def test_a_garbled_xtc_frame_decoded_by_the_second_thread_is_the_same_error(work, capsys, monkeypatch):
+    # the computing thread decodes the frames of every batch here (FrameWork.later_frames): the
+    # frame it cannot decode is refused as when the reading thread meets it, the folder not made
+    from dihedra.trajectory.frame_work import FrameWork
+    from dihedra.trajectory.trajread import XTCFrames
+
+    damaged_xtc_variants()["whose frame 50 has a garbled bit stream"](str(work / "hexane.xtc"), str(work / "bad.xtc"))
+    args = ["track", "hexane.pdb", "bad.xtc", "--torsions", "rotatable", "--out", "out", "--threads", "2"]
+    line = refused(capsys, args, "damaged")
+    monkeypatch.setattr(FrameWork, "later_frames", lambda self, n: n)
+    decoded = []
+    original = XTCFrames.decode_later
+    monkeypatch.setattr(XTCFrames, "decode_later", lambda self, later: (decoded.append(later.n), original(self, later)))
+    assert refused(capsys, args, "damaged") == line and "frame 50" in line
+    assert sum(decoded) >= 50
+    assert not os.path.exists(work / "out") and no_staging(work)
+
+
 @pytest.mark.parametrize("window", [700, 5000, 1 << 20])
 def test_the_headers_of_an_xtc_checked_window_by_window(work, monkeypatch, window):
     # the frame headers are checked a few MB of the file at a time (here windows smaller than a

@@ -20,10 +20,13 @@ import MDAnalysis as mda  # noqa: E402
 from MDAnalysis.coordinates.XTC import XTCReader  # noqa: E402
 
 from dihedra.trajectory import trajread  # noqa: E402
+from dihedra.trajectory.overlap import LaterFrames  # noqa: E402
 
 
-def _read_both(path, frames=None, **reader_kwargs):
-    """(positions, dimensions, frames, times) from the decoder and from MDAnalysis."""
+def _read_both(path, frames=None, n_later=0, **reader_kwargs):
+    """(positions, dimensions, frames, times) from the decoder and from MDAnalysis; with
+    ``n_later``, the last frames are left undecoded by ``read`` and decoded by ``decode_later``
+    (as the second thread of a pass does)."""
     reader = XTCReader(path, **reader_kwargs)
     source = trajread.xtc_frames(reader)
     assert source is not None
@@ -31,7 +34,11 @@ def _read_both(path, frames=None, **reader_kwargs):
     n = len(frames)
     got = (np.empty((n, reader.n_atoms, 3), np.float32), np.empty((n, 6), np.float32),
            np.empty(n, np.int64), np.empty(n, np.float64))
-    source.read(frames, *got)
+    later = LaterFrames()
+    source.read(frames, *got, later=later, n_later=n_later)
+    assert later.n == min(n_later, n)
+    source.decode_later(later)
+    assert later.n == 0
     source.close()
     ref = (np.empty_like(got[0]), np.empty_like(got[1]), np.empty_like(got[2]), np.empty_like(got[3]))
     for k, f in enumerate(frames):
@@ -56,11 +63,12 @@ def _mdanalysis_test_xtcs():
     return sorted(glob.glob(os.path.join(os.path.dirname(datafiles.XTC), "*.xtc")))
 
 
+@pytest.mark.parametrize("n_later", [0, 2])
 @pytest.mark.parametrize("path", _mdanalysis_test_xtcs(), ids=os.path.basename)
-def test_mdanalysis_test_files_decode_to_the_same_bits(path):
+def test_mdanalysis_test_files_decode_to_the_same_bits(path, n_later):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        _assert_same(*_read_both(path))
+        _assert_same(*_read_both(path, n_later=n_later))
 
 
 def _write(path, frames, box=(50.0, 50.0, 50.0, 90.0, 90.0, 90.0)):
@@ -111,6 +119,11 @@ def test_stepped_frames_dt_and_time_offset(tmp_path):
     got, ref = _read_both(path, frames=[1, 5, 6], dt=4.0, time_offset=100.0)
     _assert_same(got, ref)
     assert got[3].tolist() == [104.0, 120.0, 124.0]   # frame * dt + offset
+    for n_later in (1, 3):   # the last frames decoded apart: their times from their own headers or dt
+        _assert_same(*_read_both(path, frames=[0, 2, 3, 4, 8], n_later=n_later))
+        got, ref = _read_both(path, frames=[1, 5, 6], n_later=n_later, dt=4.0, time_offset=100.0)
+        _assert_same(got, ref)
+        assert got[3].tolist() == [104.0, 120.0, 124.0]
     got, ref = _read_both(path, frames=[3], time_offset=10.0)
     _assert_same(got, ref)
     assert got[3][0] == 10.0 + 2.5 * 3
@@ -129,6 +142,10 @@ def test_a_frame_the_decoder_does_not_take_is_read_by_mdanalysis(tmp_path, monke
                         lambda self, *a: (calls.append(len(a[0])), original(self, *a)))
     got, ref = _read_both(path)
     _assert_same(got, ref)
+    assert calls == [3]
+    # the same frames left to the second thread: it hands them to MDAnalysis
+    calls.clear()
+    _assert_same(*_read_both(path, n_later=3))
     assert calls == [3]
     assert _xtc.BAD_DATA != _xtc.OK
 
@@ -162,6 +179,10 @@ def test_a_truncated_file_gives_mdanalysis_error(tmp_path):
                np.empty(n, np.float64))
         with pytest.raises(OSError) as ours:
             source.read(np.arange(n), *out)
+        later = LaterFrames()   # (a truncated frame is never left to the other thread)
+        with pytest.raises(OSError) as ours_later:
+            source.read(np.arange(n), *out, later=later, n_later=2)
+        assert str(ours_later.value) == str(ours.value) and later.n == 0
         with pytest.raises(OSError) as theirs:   # MDAnalysis reading the frame, as a pass does
             reader[n - 1]
     assert str(ours.value) == str(theirs.value)

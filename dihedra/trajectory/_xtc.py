@@ -424,6 +424,21 @@ def scan_frames(buf, n_atoms):
 
 
 @njit(**_OPTS)
+def check_frames(buf, starts, n_atoms):
+    """The headers of the frames that begin at ``starts[f]`` of ``buf`` (:func:`_frame_bytes`),
+    each whole in ``buf``: ``(OK, len(starts))``, or the status of the first frame that is not
+    and its position in ``starts``."""
+    end = len(buf)
+    for f in range(len(starts)):
+        status, size = _frame_bytes(buf, starts[f], end, n_atoms)
+        if status == OK and starts[f] + size > end:
+            status = TRUNCATED
+        if status != OK:
+            return status, f
+    return OK, len(starts)
+
+
+@njit(**_OPTS)
 def decode_frames(buf, starts, n_atoms, positions, boxes, steps, times, words):
     """Decode the XTC frames that begin at byte ``starts[f]`` of ``buf``.
 

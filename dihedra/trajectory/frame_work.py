@@ -10,7 +10,11 @@ can be cut in two: with a second thread, the thread that reads a batch also comp
 counts and time series. The cut follows the two threads' measured seconds per frame
 (:meth:`FrameWork.balance`): fast formats (DCD) leave the reading thread idle, which then takes
 up to half of the torsion work; a costly read (XTC, MDAnalysis' iteration) leaves it less. Both
-parts write only their own torsions' cells, so the results do not depend on the cut.
+parts write only their own torsions' cells, so the results do not depend on the cut. Where even
+none of the torsion work leaves the reading thread the slower one (dihedra's XTC decoder, on a
+large system), the computing thread decodes the last frames of some batches as well
+(:meth:`FrameWork.later_frames`, :meth:`dihedra.trajectory.trajread.XTCFrames.decode_later`):
+the same frames, decoded elsewhere.
 """
 
 from __future__ import annotations
@@ -18,6 +22,8 @@ from __future__ import annotations
 import time
 
 import numpy as np
+
+from .overlap import LaterFrames
 
 #: Frames of both threads between two moves of the cut.
 WINDOW = 128
@@ -61,11 +67,17 @@ class FrameWork:
         self.type_key = np.zeros(self.n, dtype=np.int64) if type_key is None else np.asarray(type_key, np.int64)
         self.n_keys = max(1, int(n_keys))
         self.split = 0
-        # per thread since the last move of the cut: seconds, frames, seconds of torsion work
-        self._acc = [[0.0, 0, 0.0], [0.0, 0, 0.0]]
+        #: share of the frames of a batch that the computing thread decodes (0 unless the
+        #: reading thread is the slower one with none of the torsion work; set by balance)
+        self.later_share = 0.0
+        self._carry = 0.0
+        # per thread since the last move of the cut: seconds, frames, seconds of torsion work,
+        # seconds of decoding
+        self._acc = _empty_acc()
         self._part_frames = 0   # torsion-frames computed in that time
+        self._decoded = 0   # frames decoded in that time (both threads)
         self._bonds = [None, None]
-        self._boxes = self._box_keys = None
+        self._box_cache = [(None, None), (None, None)]   # (each thread its own)
 
     def use_layout(self, where, stride):
         """Frames come as the rows of a batch reader's layout (``positions`` (frames, words)):
@@ -74,8 +86,13 @@ class FrameWork:
 
     # -- the two parts --------------------------------------------------------------------------
     def first_part(self, batch):
-        """In the reading thread: the box parameters of the batch and torsions ``[0, split)``."""
-        batch.boxes = self.box_rows(batch.dimensions[:batch.n])
+        """In the reading thread: the box parameters of the batch and torsions ``[0, split)``
+        (nothing for a batch with frames left to the computing thread to decode)."""
+        later = getattr(batch, "later", None)
+        if later is not None and later.n:
+            batch.boxes, batch.split = None, 0
+            return
+        batch.boxes = self.box_rows(batch.dimensions[:batch.n], 0)
         batch.split = self.split
         self._part(batch, 0, batch.split, 0)
 
@@ -83,9 +100,51 @@ class FrameWork:
         """In the computing thread: torsions ``[split, n)`` of the batch (all of them when the
         reading thread did none; the box parameters too when it did not set them)."""
         if getattr(batch, "boxes", None) is None:
-            batch.boxes = self.box_rows(batch.dimensions[:batch.n])
+            batch.boxes = self.box_rows(batch.dimensions[:batch.n], 1)
             batch.split = 0
         self._part(batch, batch.split, self.n, 1)
+
+    def read(self, source, frames, batch, share=True):
+        """In the reading thread: ``frames`` read (decoded) into ``batch`` by ``source``; one that
+        can leave the decoding of some frames to the computing thread (XTC) leaves it
+        :meth:`later_frames` of them where ``share``."""
+        if not hasattr(source, "decode_later"):
+            source.read(frames, batch.buffer, batch.dimensions, batch.frame, batch.time)
+            return
+        n_later = self.later_frames(len(frames)) if share else 0
+        if n_later and batch.later is None:
+            batch.later = LaterFrames()
+        source.decode_seconds = 0.0
+        source.read(frames, batch.buffer, batch.dimensions, batch.frame, batch.time, batch.later, n_later)
+        self.decoded(0, source.decode_seconds, len(frames) - (batch.later.n if batch.later else 0))
+
+    def decode_left(self, source, batch):
+        """In the computing thread: the frames of ``batch`` that the reading thread left undecoded
+        (the last ones); returns how many (0: none)."""
+        later = batch.later
+        if later is None or not later.n:
+            return 0
+        m = later.n
+        started = time.perf_counter()
+        source.decode_later(later)
+        self.decoded(1, time.perf_counter() - started, m)
+        return m
+
+    def later_frames(self, n):
+        """How many of the ``n`` frames of the next batch the computing thread decodes:
+        :attr:`later_share` of them, the fractions carried from batch to batch."""
+        if self.later_share <= 0.0:
+            self._carry = 0.0
+            return 0
+        self._carry += self.later_share * n
+        k = min(n, int(self._carry))
+        self._carry -= k
+        return k
+
+    def decoded(self, side, seconds, frames):
+        """Record a thread's seconds of decoding ``frames`` frames (for :meth:`balance`)."""
+        self._acc[side][3] += seconds
+        self._decoded += frames
 
     def _part(self, batch, t0, t1, side):
         m = batch.n
@@ -132,46 +191,64 @@ class FrameWork:
     def balance(self, side, seconds, frames):
         """Record a thread's seconds for ``frames`` frames (``side`` 0 reading, 1 computing) and,
         every :data:`WINDOW` frames of both, move the cut to where both threads would take as
-        long per frame: with w the seconds per torsion-frame of the torsion work, r and d the
-        other seconds per frame of the reading and the computing thread (reading; buffers,
-        histograms, conformers, time series), ``r + w s = d + w (n - s)`` gives
-        ``s = (w n + d - r) / 2w`` (halfway from the old cut, in multiples of 64 torsions)."""
+        long per frame: with w the seconds per torsion-frame of the torsion work, D per frame
+        of decoding, r and d the other seconds per frame of the reading and the computing
+        thread (reading; buffers, histograms, conformers, time series), the reading thread
+        taking torsions ``[0, s)`` and decoding a share 1 - q of the frames, ``r + D (1 - q) +
+        w s = d + D q + w (n - s)``: with q = 0, ``s = (w n + d - r - D) / 2w``; where that is
+        below 0, s = 0 and ``q = (r + D - d - w n) / 2D`` (at most 1). Both move halfway from
+        where they were (s in multiples of 64 torsions)."""
         acc = self._acc[side]
         acc[0] += seconds
         acc[1] += frames
-        (read_s, read_f, read_part), (comp_s, comp_f, comp_part) = self._acc
+        (read_s, read_f, read_part, read_dec), (comp_s, comp_f, comp_part, comp_dec) = self._acc
         if side == 0 or read_f < WINDOW or comp_f < WINDOW:
             return
-        done = self._part_frames
+        done, decoded = self._part_frames, self._decoded
         w = (read_part + comp_part) / done if done else 0.0
-        self._acc = [[0.0, 0, 0.0], [0.0, 0, 0.0]]
-        self._part_frames = 0
+        dec = (read_dec + comp_dec) / decoded if decoded else 0.0
+        self._acc = _empty_acc()
+        self._part_frames = self._decoded = 0
         if w <= 0.0:
             return
-        r = (read_s - read_part) / read_f
-        d = (comp_s - comp_part) / comp_f
-        best = min(float(self.n), max(0.0, (w * self.n + d - r) / (2.0 * w)))
+        r = (read_s - read_part - read_dec) / read_f
+        d = (comp_s - comp_part - comp_dec) / comp_f
+        excess = r + dec - d - w * self.n   # of the reading thread, with none of the torsions
+        share = min(1.0, excess / (2.0 * dec)) if excess > 0.0 and dec > 0.0 else 0.0
+        self.later_share = (self.later_share + share) / 2.0
+        if self.later_share < 0.01:
+            self.later_share = 0.0
+        if self.later_share > 0.0:
+            self.split = 0
+            return
+        best = min(float(self.n), max(0.0, (w * self.n + d - r - dec) / (2.0 * w)))
         self.split = int(round((self.split + best) / 2.0 / 64.0)) * 64
         self.split = min(self.split, self.n)
 
     # -- boxes --------------------------------------------------------------------------------
-    def box_rows(self, dimensions):
+    def box_rows(self, dimensions, side=0):
         """Minimum-image parameters of the frames of a batch (lengths, inverse, cells, reach2,
-        triclinic; new arrays), recomputed only for rows whose box changed."""
+        triclinic; new arrays), recomputed only for rows whose box changed since the thread
+        ``side`` last asked."""
         m = len(dimensions)
-        if self._boxes is None or len(self._boxes[0]) < m:
-            self._boxes = (np.zeros((m, 3)), np.zeros((m, 3)), np.zeros((m, 3, 3)), np.zeros(m),
-                           np.zeros(m, dtype=bool))
-            self._box_keys = [None] * m
-        lengths, inverse, cells, reach2, triclinic = self._boxes
+        boxes, keys = self._box_cache[side]
+        if boxes is None or len(boxes[0]) < m:
+            boxes = (np.zeros((m, 3)), np.zeros((m, 3)), np.zeros((m, 3, 3)), np.zeros(m), np.zeros(m, dtype=bool))
+            keys = [None] * m
+            self._box_cache[side] = (boxes, keys)
+        lengths, inverse, cells, reach2, triclinic = boxes
         for f in range(m):
             key = dimensions[f].tobytes()
-            if key != self._box_keys[f]:
+            if key != keys[f]:
                 lengths[f], inverse[f], h, reach2[f] = self.geometry.box_parameters(dimensions[f])
                 triclinic[f] = h is not None
                 cells[f] = h if h is not None else 0.0
-                self._box_keys[f] = key
-        return tuple(a[:m].copy() for a in self._boxes)
+                keys[f] = key
+        return tuple(a[:m].copy() for a in boxes)
+
+
+def _empty_acc():
+    return [[0.0, 0, 0.0, 0.0], [0.0, 0, 0.0, 0.0]]
 
 
 def _outputs(batch, side, width, cores=False, n_keys=1):

@@ -1,5 +1,6 @@
 """Threads of the trajectory pass: batches of frames handed from the reading thread to a second
-thread that computes them (:class:`Overlap`), and two futures waited for as one (:class:`Both`)."""
+thread that computes them (:class:`Overlap`), the frames of a batch left to that thread to decode
+(:class:`LaterFrames`), and two futures waited for as one (:class:`Both`)."""
 
 from __future__ import annotations
 
@@ -37,6 +38,35 @@ class Batch:
         # set by the torsion work (dihedra.trajectory.frame_work): box parameters, the torsions
         # the reading thread computed, and the angle, bin and code rows of both parts
         self.boxes, self.split, self.outputs = None, 0, None
+        # the frames whose decoding the reading thread left to the computing one (LaterFrames)
+        self.later = None
+
+
+class LaterFrames:
+    """The last frames of a batch whose bytes were read but not decoded, left to another thread
+    (:meth:`XTCFrames.read <dihedra.trajectory.trajread.XTCFrames.read>` and
+    :meth:`~dihedra.trajectory.trajread.XTCFrames.decode_later`): the bytes, where the frames go,
+    and that thread's own work space. ``n`` is the number of frames still to decode (0: none)."""
+
+    def __init__(self):
+        self.raw = np.empty(0, dtype=np.uint8)
+        self.n = 0
+        self.words = None
+        self.boxes = np.empty((0, 3, 3), dtype=np.float32)
+
+    def hold(self, frames, buf, starts, positions, dimensions, time_out, n_words):
+        """Keep ``frames`` (their bytes at ``starts`` of ``buf``) for decoding into the rows
+        ``positions``, ``dimensions`` and ``time_out``, with ``n_words`` words of work space."""
+        m = len(frames)
+        self.frames, self.buf, self.starts = frames, buf, starts
+        self.positions, self.dimensions, self.time_out = positions, dimensions, time_out
+        if self.words is None or len(self.words) < n_words:
+            self.words = np.empty(n_words, dtype=np.uint64)
+        if len(self.boxes) < m:
+            self.boxes = np.empty((m, 3, 3), dtype=np.float32)
+            self.steps = np.empty(m, dtype=np.int64)
+            self.times = np.empty(m, dtype=np.float32)
+        self.n = m
 
 
 class Overlap:

@@ -32,7 +32,8 @@ Per frame
 One compiled kernel call per batch of frames (:mod:`dihedra.numerics._kernels`, numba) computes,
 for a range of torsions, the angles (:class:`dihedra.numerics.angles.TorsionGeometry`), the fine
 bins, the state codes and the state counts of the current block; with a second thread the range
-is cut in two, the reading thread taking the first part (:mod:`dihedra.trajectory.frame_work`). The bin of a
+is cut in two, the reading thread taking the first part (:mod:`dihedra.trajectory.frame_work`), or,
+where decoding the frames (XTC) is the larger share, the second thread decodes some too. The bin of a
 float32 angle a is ``k - 1`` with ``k = ceil(a / width) + n_bins / 2``, exact for bins open at the
 left edge. The state of an angle is looked up from its fine bin: a bin (lo, hi] that no state
 boundary cuts has one state for all its angles, so ``code = table[bin]``; the few bins that hold a
@@ -246,10 +247,8 @@ class TorsionPass(AnalysisBase):
         return self
 
     def _compute_decoded(self, indexed_frames, verbose, progressbar_kwargs):
-        """``AnalysisBase._compute`` with the frames decoded in batches by ``self._source``
-        (:class:`dihedra.trajectory.trajread.XTCFrames`) instead of one timestep at a time: the same
-        frames, positions, boxes and times, handed to :meth:`_process` batch by batch (or, with
-        the second thread, to it while the next batch is decoded)."""
+        """``AnalysisBase._compute`` with the frames read in batches by ``self._source`` (:mod:`.trajread`):
+        the same frames, positions, boxes and times, handed to :meth:`_process` batch by batch."""
         from MDAnalysis.lib.log import ProgressBar
 
         verbose = getattr(self, "_verbose", False) if verbose is None else verbose
@@ -270,7 +269,7 @@ class TorsionPass(AnalysisBase):
                 view = mapped(frames[lo:hi], batch.dimensions, batch.frame, batch.time) if mapped else None
                 batch.positions = batch.buffer if view is None else view
                 if view is None:
-                    self._source.read(frames[lo:hi], batch.buffer, batch.dimensions, batch.frame, batch.time)
+                    self._work.read(self._source, frames[lo:hi], batch, share=own is None)
                 batch.index[:hi - lo] = np.arange(lo, hi)
                 batch.n = hi - lo
                 self.frames[lo:hi] = batch.frame[:hi - lo]
@@ -451,6 +450,8 @@ class TorsionPass(AnalysisBase):
         into the buffers, split where the histogram buffer or the chunk fills."""
         interrupts.check()   # (an interrupt whose raise Python swallowed is not lost)
         started = time.perf_counter()
+        left = self._work.decode_left(self._source, batch)   # (frames the reading thread left undecoded)
+        self.times[batch.index[batch.n - left:batch.n]] = batch.time[batch.n - left:batch.n]
         self._work.second_part(batch)
         done = 0
         n_stage, n_chunk = len(self._bins), len(self._buf_frame)

@@ -27,6 +27,8 @@ MDAnalysis.
 from __future__ import annotations
 
 import os
+import threading
+import time
 
 import numpy as np
 
@@ -101,6 +103,7 @@ class _FileFrames:
         self._buf = np.empty(0, dtype=np.uint8)
         self._box_cache = {}
         self._fh = None
+        self._lock = threading.Lock()   # (MDAnalysis' reader is one: two threads may fall back to it)
 
     def close(self):
         if self._fh is not None:
@@ -149,12 +152,13 @@ class _FileFrames:
     def _read_by_mdanalysis(self, frames, positions, dimensions, frame_out, time_out):
         """The frames through MDAnalysis, one by one (errors are MDAnalysis' own)."""
         reader = self._reader
-        for k, f in enumerate(frames):
-            ts = reader[int(f)]
-            self._put(positions, k, ts.positions)
-            dimensions[k] = ts.dimensions if ts.dimensions is not None else np.nan
-            frame_out[k] = ts.frame
-            time_out[k] = ts.time
+        with self._lock:
+            for k, f in enumerate(frames):
+                ts = reader[int(f)]
+                self._put(positions, k, ts.positions)
+                dimensions[k] = ts.dimensions if ts.dimensions is not None else np.nan
+                frame_out[k] = ts.frame
+                time_out[k] = ts.time
 
 
 class DCDFrames(_FileFrames):
@@ -374,37 +378,90 @@ class XTCFrames(_FileFrames):
         self._boxes = np.empty((0, 3, 3), dtype=np.float32)
         self._steps = np.empty(0, dtype=np.int64)
         self._times = np.empty(0, dtype=np.float32)
+        self.decode_seconds = 0.0
 
-    def read(self, frames, positions, dimensions, frame_out, time_out):
+    def read(self, frames, positions, dimensions, frame_out, time_out, later=None, n_later=0):
         """Decode ``frames`` (frame numbers, ascending) into the first ``len(frames)`` rows of
         ``positions`` (float32, Angstrom), ``dimensions`` (MDAnalysis' ``ts.dimensions``,
-        NaN for a frame without a box), ``frame_out`` and ``time_out`` (ps)."""
+        NaN for a frame without a box), ``frame_out`` and ``time_out`` (ps).
+
+        With ``later`` (the batch's :class:`~dihedra.trajectory.overlap.LaterFrames`) and
+        ``n_later`` > 0, the bytes of all frames are read but only the first ``len(frames) -
+        n_later`` decoded: the last ones (their headers checked, their frame numbers set) are left
+        to :meth:`decode_later`, which another thread calls; their positions, dimensions and
+        times are set then. The seconds spent decoding here are added to :attr:`decode_seconds`
+        (the caller resets them)."""
         frames = np.asarray(frames, dtype=np.int64)
         n = len(frames)
+        if later is not None:
+            later.n = 0
         if n == 0:
             return
-        starts = self._read_bytes(frames)
+        n_later = min(int(n_later), n) if later is not None else 0
+        if n_later:
+            total = int(self.sizes[frames].sum())
+            if len(later.raw) < total:
+                later.raw = np.empty(int(total * 1.25) + 64, dtype=np.uint8)
+            starts = self._read_bytes(frames, into=later.raw)
+            buf = later.raw[:total]
+            k = n - n_later
+            if self._decoder.check_frames(buf, starts[k:], self.n_atoms)[0] != self._decoder.OK:
+                n_later, k = 0, n   # (decoded here: its errors are found and reported as always)
+        else:
+            starts = self._read_bytes(frames)
+            buf = self._buf[:int(starts[-1] + self.sizes[frames[-1]])]
+            k = n
         if len(self._boxes) < n:
             self._boxes = np.empty((n, 3, 3), dtype=np.float32)
             self._steps = np.empty(n, dtype=np.int64)
             self._times = np.empty(n, dtype=np.float32)
-        total = int(starts[-1] + self.sizes[frames[-1]])
-        status, bad = self._decoder.decode_frames(self._buf[:total], starts, self.n_atoms, positions,
+        started = time.perf_counter()
+        status, bad = self._decoder.decode_frames(buf, starts[:k], self.n_atoms, positions,
                                                   self._boxes, self._steps, self._times, self._words)
-        if status in (self._decoder.BAD_ATOMS, self._decoder.BAD_HEADER, self._decoder.BAD_DATA):
-            problem = {self._decoder.BAD_ATOMS: "holds another number of atoms than frame 0",
-                       self._decoder.BAD_HEADER: "has a malformed header (an overflowed coordinate range, as a "
-                                                 "writer leaves it for NaN coordinates, or a field out of range)",
-                       }.get(status, "has damaged compressed coordinates")
-            raise malformed_frame(self.path, int(frames[bad]), problem)
+        self.decode_seconds += time.perf_counter() - started
         if status != self._decoder.OK:
+            self._refuse(status, frames[bad])
             self._read_by_mdanalysis(frames, positions, dimensions, frame_out, time_out)
             return
-        for k in range(n):
-            dimensions[k] = self._dimensions(self._boxes[k])
+        self._boxes_and_times(frames[:k], self._boxes, self._times, dimensions, time_out)
         frame_out[:n] = frames
+        if n_later:
+            later.hold(frames[k:], buf, starts[k:], positions[k:n], dimensions[k:n], time_out[k:n],
+                       len(self._words))
+
+    def decode_later(self, later):
+        """Decode the frames that :meth:`read` left to ``later`` (in another thread than the
+        reading one: each :class:`~dihedra.trajectory.overlap.LaterFrames` has its own work space)."""
+        if not later.n:
+            return
+        m, later.n = later.n, 0
+        status, bad = self._decoder.decode_frames(later.buf, later.starts, self.n_atoms, later.positions,
+                                                  later.boxes, later.steps, later.times, later.words)
+        if status != self._decoder.OK:
+            self._refuse(status, later.frames[bad])
+            self._read_by_mdanalysis(later.frames, later.positions, later.dimensions,
+                                     np.empty(m, dtype=np.int64), later.time_out)
+            return
+        self._boxes_and_times(later.frames, later.boxes, later.times, later.dimensions, later.time_out)
+
+    def _refuse(self, status, frame):
+        """Raise the error of a malformed frame; other statuses (a truncated file, a frame the
+        decoder does not take) return: MDAnalysis then reads the frames."""
+        d = self._decoder
+        if status in (d.BAD_ATOMS, d.BAD_HEADER, d.BAD_DATA):
+            problem = {d.BAD_ATOMS: "holds another number of atoms than frame 0",
+                       d.BAD_HEADER: "has a malformed header (an overflowed coordinate range, as a "
+                                     "writer leaves it for NaN coordinates, or a field out of range)",
+                       }.get(status, "has damaged compressed coordinates")
+            raise malformed_frame(self.path, int(frame), problem)
+
+    def _boxes_and_times(self, frames, boxes, times, dimensions, time_out):
+        """Dimensions and times (ps) of decoded ``frames`` from their boxes and header times."""
+        n = len(frames)
+        for k in range(n):
+            dimensions[k] = self._dimensions(boxes[k])
         if self._dt is None:
-            time_out[:n] = self._times[:n].astype(np.float64) + self._time_offset
+            time_out[:n] = times[:n].astype(np.float64) + self._time_offset
         else:
             time_out[:n] = frames * self._dt + self._time_offset
 
