@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from blocking_reference import reference_blocking
-from dihedra.numerics.statistics import blocking_error, statistical_inefficiency
+from dihedra.numerics.statistics import blocking_error, statistical_inefficiencies, statistical_inefficiency
 
 #: dihedra's compiled blocking and the plain NumPy reference implementation
 BLOCKING = {"compiled": blocking_error, "reference": reference_blocking}
@@ -30,6 +30,49 @@ def test_statistical_inefficiency_of_ar1():
 def test_statistical_inefficiency_of_white_noise_is_one():
     # analytic: uncorrelated samples have g = 1
     assert statistical_inefficiency(np.random.default_rng(2).normal(size=50_000)) == pytest.approx(1.0, abs=0.1)
+
+
+def _inefficiency_by_definition(x, mintime=3):
+    """g = 1 + 2 sum_t (1 - t/N) C_t over lags t = 1, 2, ... up to the first lag past ``mintime``
+    with C_t <= 0 (Chodera et al. 2007), every C_t summed directly, no FFT."""
+    x = np.asarray(x, dtype=float)
+    n = len(x)
+    dx = x - x.mean()
+    var = np.mean(dx * dx)
+    g = 1.0
+    for t in range(1, n):
+        c = np.sum(dx[:n - t] * dx[t:]) / (n - t) / var
+        if c <= 0 and t > mintime:
+            break
+        g += 2.0 * (1.0 - t / n) * c
+    return max(1.0, g)
+
+
+def test_statistical_inefficiency_of_every_column_is_the_definition():
+    # the FFT of all columns at once against the sum of the definition, lag by lag, column by
+    # column: white noise, random walks (g near N), indicators, short and long series
+    rng = np.random.default_rng(4)
+    for n in (2, 3, 5, 17, 64, 301):
+        x = np.c_[rng.normal(size=n), np.cumsum(rng.normal(size=n)), (rng.random(n) < 0.3).astype(float),
+                  np.repeat(rng.normal(size=(n + 4) // 5), 5)[:n]]
+        got = statistical_inefficiencies(x)
+        want = [_inefficiency_by_definition(x[:, j]) for j in range(x.shape[1])]
+        np.testing.assert_allclose(got, want, rtol=1e-9)
+        assert [statistical_inefficiency(x[:, j]) for j in range(x.shape[1])] == pytest.approx(want, rel=1e-9)
+
+
+def test_a_constant_series_has_no_correlation_whatever_its_mean_rounds_to():
+    # ten blocks of the same population 0.1 (or 5/6): the mean of the floats is not exactly 0.1,
+    # and the autocorrelation of that rounding is not a signal (it gave g = N, an error inflated
+    # by sqrt(N) where the variance floor applies)
+    from dihedra.numerics.convergence import series_error, series_errors
+
+    for value in (0.1, 5 / 6, 5 / 11):
+        x = np.full(10, value)
+        assert statistical_inefficiency(x) == 1.0
+        assert series_error(x) == (pytest.approx(value), 0.0, 1.0)
+        _, se, g = series_errors(np.c_[x, np.arange(10.0)], var_floor=[0.01, 0.0])
+        assert g[0] == 1.0 and se[0] == pytest.approx(np.sqrt(0.01 / 10))
 
 
 @pytest.mark.parametrize("blocking", ["compiled", "reference"])

@@ -31,7 +31,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .statistics import statistical_inefficiency
+from .statistics import statistical_inefficiencies, statistical_inefficiency
 
 #: ``|z|`` of the difference between the mean before and after a detected t0 above which the start
 #: is reported as not equilibrated (see :func:`drift_z`).
@@ -74,13 +74,21 @@ def series_error(x, var_floor=0.0):
     >>> round(mean, 3), g
     (0.5, 1.0)
     """
+    mean, se, g = series_errors(np.asarray(x, dtype=float).reshape(-1, 1), var_floor)
+    return float(mean[0]), float(se[0]), float(g[0])
+
+
+def series_errors(x, var_floor=0.0):
+    """:func:`series_error` of every column of ``x`` (n, k), with ``var_floor`` a number or one
+    per column: arrays of the k means, standard errors and statistical inefficiencies."""
     x = np.asarray(x, dtype=float)
-    n = x.size
+    n, k = x.shape
     if n == 0:
-        return np.nan, np.nan, np.nan
-    var = max(float(np.var(x)), float(var_floor))
-    g = statistical_inefficiency(x) if n > 1 else 1.0
-    return float(x.mean()), float(np.sqrt(g * var / n)), float(g)
+        return np.full(k, np.nan), np.full(k, np.nan), np.full(k, np.nan)
+    var = np.where(x.max(axis=0) == x.min(axis=0), 0.0, x.var(axis=0))   # (constant: 0, not the rounding)
+    var = np.maximum(var, np.asarray(var_floor, dtype=float))
+    g = statistical_inefficiencies(x) if n > 1 else np.ones(k)
+    return x.mean(axis=0), np.sqrt(g * var / n), g
 
 
 def detect_start(x, min_kept=None, n_candidates=N_CANDIDATES, tolerance=0.0):

@@ -35,27 +35,44 @@ def statistical_inefficiency(x, mintime=3):
     Returns
     -------
     float
-        g; 1.0 for a constant or too short series.
+        g; 1.0 for a constant or too short series (constant: every value the same, whatever
+        the rounding of their mean).
+    """
+    return float(statistical_inefficiencies(np.asarray(x, dtype=float).reshape(-1, 1), mintime)[0])
+
+
+def statistical_inefficiencies(x, mintime=3):
+    """:func:`statistical_inefficiency` of every column of ``x`` (N, k), in one FFT call.
+
+    >>> rng = np.random.default_rng(1)
+    >>> x = np.c_[rng.normal(size=200), np.repeat(rng.normal(size=20), 10), np.ones(200)]
+    >>> g = statistical_inefficiencies(x)
+    >>> bool(g[0] < 1.5 and g[1] > 5), float(g[2])
+    (True, 1.0)
     """
     x = np.asarray(x, dtype=float)
-    n = x.size
-    if n < 2:
-        return 1.0
-    dx = x - x.mean()
-    var = np.dot(dx, dx) / n
-    if var == 0:
-        return 1.0
-    # autocorrelation by FFT, C_t for t = 0..N-1
+    n, k = x.shape
+    g = np.ones(k)
+    if n < 2 or k == 0:
+        return g
+    # a constant column has g = 1 (its deviations from a rounded mean are not a signal)
+    cols = np.flatnonzero(x.max(axis=0) != x.min(axis=0))
+    if not len(cols):
+        return g
+    dx = x[:, cols] - x[:, cols].mean(axis=0)
+    var = np.einsum("ij,ij->j", dx, dx) / n
+    # autocorrelation by FFT, C_t for t = 1..N-1
     size = 1 << (2 * n - 1).bit_length()
-    f = np.fft.rfft(dx, size)
-    acov = np.fft.irfft(f * np.conj(f), size)[:n] / (n - np.arange(n))
+    f = np.fft.rfft(dx, size, axis=0)
+    acov = np.fft.irfft(f * np.conj(f), size, axis=0)[1:n] / (n - np.arange(1, n))[:, None]
     c = acov / var
     # the sum runs up to (not including) the first lag t > mintime with C_t <= 0
     t = np.arange(1, n)
-    stop = np.flatnonzero((c[1:] <= 0) & (t > mintime))
-    end = int(stop[0]) if len(stop) else n - 1
-    g = 1.0 + 2.0 * float(np.sum(c[1:end + 1] * (1.0 - t[:end] / n)))
-    return max(1.0, g)
+    stop = (c <= 0) & (t > mintime)[:, None]
+    end = np.where(stop.any(axis=0), stop.argmax(axis=0), n - 1)
+    terms = np.where(np.arange(n - 1)[:, None] < end, c * (1.0 - t / n)[:, None], 0.0)
+    g[cols] = np.maximum(1.0, 1.0 + 2.0 * terms.sum(axis=0))
+    return g
 
 
 def weighted_block_error(block_values, block_weights):

@@ -34,7 +34,7 @@ import pandas as pd
 
 from ..errors import DihedraError
 from ..numerics.convergence import (DRIFT_SHIFT_SE, DRIFT_Z, MIN_START_SAMPLES, combine_errors, equilibration,
-                                    replica_chi_square, series_error, time_needed)
+                                    replica_chi_square, series_error, series_errors, time_needed)
 from ..numerics.populations import MIN_EFFECTIVE_SAMPLES
 from ..units import R_KJ_PER_MOL_K
 from .timeblocks import result_time_blocks
@@ -219,25 +219,42 @@ class _TypeSeries:
         self.simulated = float(sum(p["simulated"] for p in self.parts))
 
     def floor(self, part, p):
-        """Variance floor of a block fraction: independent torsion-frames with the pooled population."""
-        per_block = self.n_torsions * max(1.0, float(np.mean(part["frames"]))) if len(part["frames"]) else 1.0
-        return p * (1.0 - p) / per_block
+        """Variance floor of a block fraction (``p`` a number or one per state): independent
+        torsion-frames with the pooled population."""
+        if "per_block" not in part:
+            part["per_block"] = (self.n_torsions * max(1.0, float(np.mean(part["frames"])))
+                                 if len(part["frames"]) else 1.0)
+        return p * (1.0 - p) / part["per_block"]
 
-    def replica_stats(self, s, rows=None):
-        """Per replica: (mean, se, g, n_blocks, weight) of state ``s`` over ``rows`` of its blocks."""
-        out = []
+    def replica_arrays(self, rows=None):
+        """Over ``rows`` of the blocks of each replica that has samples there: mean, se and g of
+        every state (replicas x states) and the blocks and weights of each replica."""
+        n_s = len(self.states)
+        mean, se, g, blocks, weight = [], [], [], [], []
         for part in self.parts:
             sel = slice(None) if rows is None else rows(len(part["valid"]))
-            c, v = part["counts"][sel, s], part["valid"][sel]
+            c, v = part["counts"][sel], part["valid"][sel]
             if not len(v) or v.sum() <= 0:
                 continue
-            _, se, g = series_error(part["x"][sel, s], self.floor(part, self.population[s]))
-            out.append((float(c.sum() / v.sum()), se, g, len(v), float(v.sum())))
-        return out
+            _, e, gg = series_errors(part["x"][sel], self.floor(part, self.population))
+            mean.append(c.sum(axis=0) / v.sum())
+            se.append(e)
+            g.append(gg)
+            blocks.append(len(v))
+            weight.append(float(v.sum()))
+        shaped = [np.asarray(a, dtype=float).reshape(-1, n_s) for a in (mean, se, g)]
+        return (*shaped, np.asarray(blocks, dtype=np.int64), np.asarray(weight, dtype=float))
+
+    def replica_stats(self, rows=None):
+        """Per state, per replica: (mean, se, g, n_blocks, weight) over ``rows`` of its blocks."""
+        mean, se, g, blocks, weight = self.replica_arrays(rows)
+        return [[(float(mean[r, s]), float(se[r, s]), float(g[r, s]), int(blocks[r]), float(weight[r]))
+                 for r in range(len(weight))] for s in range(len(self.states))]
 
     def summary(self, target, target_kj, kt):
         """The row of the type and its rows per state."""
-        states = [self._state(s, target, target_kj, kt) for s in range(len(self.states))]
+        whole = self.replica_stats()
+        states = [self._state(s, whole[s], target, target_kj, kt) for s in range(len(self.states))]
         start = _type_start(states)
         replicas = _type_replicas(states, len(self.parts))
         sampled = [r for r in states if r["population"] > 0]
@@ -269,9 +286,9 @@ class _TypeSeries:
         per = self.simulated / max(1, len(self.parts))
         return float(math.ceil(needed_ps / per - 1e-9)) if per > 0 and np.isfinite(needed_ps) else np.nan
 
-    def _state(self, s, target, target_kj, kt):
-        """The row of one state: population and error, start test, replica test, forecasts."""
-        stats = self.replica_stats(s)
+    def _state(self, s, stats, target, target_kj, kt):
+        """The row of one state (``stats``: its :meth:`replica_stats`): population and error,
+        start test, replica test, forecasts."""
         p = float(self.population[s])
         se = combine_errors([x[1] for x in stats], [x[4] for x in stats]) if stats else np.nan
         starts = [(part, equilibration(part["x"][:, s], self.floor(part, p))) for part in self.parts
@@ -328,16 +345,17 @@ class _TypeSeries:
                     m = max(1, int(round(f * n)))
                     return slice(0, m) if direction == "forward" else slice(n - m, n)
                 spans = [_span_of(part, pick(len(part["valid"]))) for part in self.parts if len(part["valid"])]
-                for s, state in enumerate(self.states):
-                    stats = self.replica_stats(s, pick)
-                    if not stats:
-                        continue
-                    w = [x[4] for x in stats]
+                mean, se, _, _, w = self.replica_arrays(pick)
+                if not len(w):
+                    continue
+                # the replicas' weighted mean and the error of it (combine_errors, every state at once)
+                population = (w @ mean) / w.sum()
+                error = np.sqrt(np.sum((w / w.sum())[:, None] ** 2 * se ** 2, axis=0))
+                span = (float(np.mean([a for a, _ in spans])), float(np.mean([b for _, b in spans])))
+                for k, state in enumerate(self.states):
                     rows.append({"type": self.name, "state": state, "direction": direction, "fraction": f,
-                                 "from_ps": float(np.mean([a for a, _ in spans])),
-                                 "to_ps": float(np.mean([b for _, b in spans])),
-                                 "population": float(np.dot([x[0] for x in stats], w) / np.sum(w)),
-                                 "population_err": combine_errors([x[1] for x in stats], w)})
+                                 "from_ps": span[0], "to_ps": span[1], "population": float(population[k]),
+                                 "population_err": float(error[k])})
         return rows
 
 
