@@ -99,9 +99,8 @@ from .trajread import frame_source
 #: With a second thread, coordinates are copied into batches of about this many bytes.
 BATCH_BYTES = 2 << 20
 
-#: Batches of frames in the two threads' hands (read, waiting, computed); more where the frames
-#: are pages of a mapped file (no coordinates to hold): the reading thread then runs on while
-#: the other adds buffered frames to the sums.
+#: Batches of frames in the two threads' hands (read, waiting, computed); more where the frames are
+#: pages of a mapped file (no coordinates to hold): the reader runs on while the other adds to the sums.
 BATCHES = 3
 BATCHES_MAPPED = 12
 
