@@ -486,6 +486,37 @@ def test_cli_refit_writes_the_files_and_prints_a_summary(gas, targets, capsys):
     assert 'class1="CH3"' in open(os.path.join(gas.folder, "refit_openmm.xml")).read()
 
 
+def test_report_shows_the_refit_rounded_to_its_errors_and_says_when_it_cannot_be_trusted(gas, targets, tmp_path):
+    import shutil
+
+    from dihedra.presentation.report import build_report
+    from dihedra.presentation.rounding import format_value_error
+
+    folder = str(tmp_path / "results")
+    shutil.copytree(gas.folder, folder)
+    assert main(["refit", folder, "--target", targets["profile"], "--temperature", "400", "--bootstrap", "10",
+                 "--overwrite"]) == 0
+    text = build_report(folder, figures=False)
+    section = text[text.index("<section id='refit'>"):]
+    section = section[:section.index("</section>")]
+    summary = pd.read_csv(os.path.join(folder, "refit_summary.csv"))
+    assert bool(summary["trustworthy"][0])   # 150 gas-phase butanes: Kish's fraction about 0.8
+    assert "verdict v-consistent'>trustworthy<" in section
+    terms = pd.read_csv(os.path.join(folder, "refit_terms.csv"))
+    for row in terms.itertuples():   # every term, each value rounded to its bootstrap error
+        assert format_value_error(row.k_kj_mol, row.k_err_kj_mol) in section
+        assert format_value_error(row.phase_deg, row.phase_err_deg) in section
+    pops = pd.read_csv(os.path.join(folder, "refit_populations.csv"))
+    for row in pops.itertuples():
+        assert format_value_error(row.reweighted_population, row.reweighted_population_err) in section
+    assert "refit_openmm.xml" in section and "a new simulation with it is the real test" in section
+    # a fit whose effective sample fraction fell below the minimum says so in the verdict
+    summary["trustworthy"] = False
+    summary.to_csv(os.path.join(folder, "refit_summary.csv"), index=False)
+    text = build_report(folder, figures=False)
+    assert "verdict v-inconsistent'>not trustworthy<" in text and "rest on a few frames" in text
+
+
 def test_cli_refit_errors_are_one_line(gas, tmp_path, capsys):
     bad = tmp_path / "bad.csv"
     bad.write_text("a,b\n1,2\n")

@@ -95,6 +95,7 @@ def test_report_of_a_track_only_folder_says_what_is_missing(track_only_folder, t
     text = open(path, encoding="utf-8").read()
     assert "No profiles in this folder (run <code>dihedra profile DIR</code>)" in text
     assert "No kinetics in this folder" in text and "No comparison in this folder" in text
+    assert "No torsion correction fitted by reweighting in this folder" in text
     assert "Figures not made" in text and "no profiles.csv" in text
     assert len(re.findall(r"<img ", text)) == 4  # series, raster, populations, convergence
 

@@ -15,6 +15,9 @@ into ``report.html``:
   its verdicts and their reasons;
 * kinetics (rates, dwell times, implied timescales) with the transition-state-theory caution;
 * couplings and their comparison with experiment;
+* a torsion correction fitted by reweighting (``dihedra refit``): whether the reweighting can be
+  trusted, the fit against the target, the terms, the populations before and after, and the
+  forms to apply it;
 * every figure of :func:`dihedra.presentation.figures.figure_set`, embedded as an SVG data URI (text as paths,
   so no font is fetched), and a list of the figures the folder could not make and why.
 
@@ -45,12 +48,14 @@ from .figures import CHOICE_RULE, informative_types
 from .figures.figureset import check_types
 from .report_dynamics import _convergence, _couplings, _kinetics, coupling_files
 from .report_html import _CSS, MAX_ROWS, Page, _e, _fmt
+from .report_refit import _refit
 from .report_sections import _comparison, _populations, _profiles, _provenance, _time_series, _torsions
 
 #: The sections in the page's navigation: (id, name).
 _NAVIGATION = [("convergence", "Convergence"), ("inputs", "Inputs"), ("torsions", "Torsions"), ("populations", "Populations"),
                ("series", "Time series"), ("profiles", "Profiles"), ("comparison", "Comparison"),
-               ("kinetics", "Kinetics"), ("couplings", "Couplings"), ("notes", "Figures not made")]
+               ("kinetics", "Kinetics"), ("couplings", "Couplings"), ("refit", "Correction"),
+               ("notes", "Figures not made")]
 
 
 def build_report(folder, width="single", figures=True, types=None, log=None, base=""):
@@ -85,7 +90,7 @@ def build_report(folder, width="single", figures=True, types=None, log=None, bas
         sections = [s for s in sections if s[0] != "series"]
     nav = "<nav>" + "".join(f"<a href='#{k}'>{_e(v)}</a>" for k, v in sections) + "</nav>"
     body = [_provenance(page), _torsions(page), _populations(page, figs), _time_series(figs), _profiles(page, figs),
-            _comparison(page), _kinetics(page, figs), _couplings(page, figs)]
+            _comparison(page), _kinetics(page, figs), _couplings(page, figs), _refit(page, figs)]
     notices = _notices(folder, result.summary)
     if notices:
         body.insert(0, notices)

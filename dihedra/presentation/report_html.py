@@ -199,8 +199,8 @@ def _callout(title, items, kind="note"):
 
 
 #: Verdicts drawn like others of the same sense (convergence: converged / agree like consistent).
-_SAME_AS = {"converged": "consistent", "agree": "consistent", "not converged": "inconsistent",
-            "disagree": "inconsistent"}
+_SAME_AS = {"converged": "consistent", "agree": "consistent", "trustworthy": "consistent",
+            "not converged": "inconsistent", "disagree": "inconsistent", "not trustworthy": "inconsistent"}
 
 
 def _verdict(text):
