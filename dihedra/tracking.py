@@ -225,7 +225,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
             run.say(f"basins of {len(choice.basin_types)} torsion type(s): a first pass for their histograms")
             scheme, basins, basin_record, notes = plan_basins(
                 choice, [(u, f, w, dt_ps) for u, f, w in zip(universes, frames, weight_arrays)], tset, temperature_k,
-                backend=backend if isinstance(backend, str) else None, n_workers=n_workers, threads=threads)
+                backend=backend, n_workers=n_workers, threads=threads)
             run.notices.extend(notes)
         if progress is None:
             progress = backend == "serial" and sys.stderr.isatty()
@@ -498,11 +498,9 @@ def _run_pass(tp, traj, frames, backend, n_workers, progress, r, n_replicas):
                           progressbar_kwargs={"desc": f"replica {r + 1}/{n_replicas}", "leave": True}
                           if progress else None)
     else:
-        if backend in ("multiprocessing", "dask"):   # these stop their workers at once on an interrupt
-            from .trajectory.distributed import LocalDaskBackend, LocalProcessBackend
-            backend = (LocalProcessBackend if backend == "multiprocessing" else LocalDaskBackend)(n_workers)
-        run_kwargs.update(backend=backend, n_workers=None if not isinstance(backend, str) else n_workers,
-                          unsupported_backend=not isinstance(backend, str))
+        from .trajectory.distributed import backend_kwargs
+
+        run_kwargs.update(backend_kwargs(backend, n_workers))
     try:
         tp.run(**run_kwargs)
     except OutputWriteError:

@@ -167,6 +167,22 @@ def test_distributed_scheduler_equals_serial(replicas, serial, cluster):
     assert_same(serial, res)
 
 
+def test_basins_first_pass_runs_on_the_cluster_and_equals_serial(replicas, cluster):
+    # the first pass of --scheme basins (the histograms the basins are found in) is spread over
+    # the cluster's workers like the run's own pass, with the same basins and results
+    top, trajs, _ = replicas
+    kw = dict(torsions="rotatable", scheme="basins", temperature_k=300.0, chunk_frames=23)
+    ref = track(top, trajs, threads=1, **kw)
+    res = track(top, trajs, scheduler=cluster.scheduler_address, **kw)
+    first = res.summary["parameters"]["scheme_choice"]["basins"]["first_pass"]
+    assert first["backend"] == "DistributedBackend" and first["workers"] == 2
+    assert ref.summary["parameters"]["scheme_choice"]["basins"]["first_pass"]["backend"] == "serial"
+    pd.testing.assert_frame_equal(ref.schemes, res.schemes)
+    for key in ref.blocks:
+        np.testing.assert_array_equal(ref.blocks[key], res.blocks[key], err_msg=key)
+    pd.testing.assert_frame_equal(ref.populations, res.populations)
+
+
 def test_distributed_weighted_run_equals_serial(replicas, cluster):
     top, trajs, weights = replicas
     kw = dict(KW, weights=weights, keep_angles=False)

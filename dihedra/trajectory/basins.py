@@ -216,15 +216,22 @@ def _table_rows(ttype, minima, barriers, k, scheme, bandwidth):
 def first_pass(replicas, tset, scheme, backend=None, n_workers=1, threads=None):
     """The fine histograms and state counts of every replica, by a pass without time series.
 
-    ``replicas`` is a list of (universe, frames, weights, dt_ps). Returns (histograms,
-    hist_block_replica, state_counts, block_replica)."""
+    ``replicas`` is a list of (universe, frames, weights, dt_ps); ``backend`` and ``n_workers``
+    as the run's own pass takes them (a backend name, or a backend object such as the
+    :class:`~dihedra.trajectory.distributed.DistributedBackend` of a dask cluster, whose workers
+    then share this pass too). Returns (histograms, hist_block_replica, state_counts,
+    block_replica)."""
+    serial = backend in (None, "serial") and int(n_workers or 1) <= 1
     hists, hreps, counts, sreps = [], [], [], []
     for r, (universe, frames, weights, dt_ps) in enumerate(replicas):
         tp = TorsionPass(universe, tset, scheme, weights=weights, series=None, replica=r, dt_ps=dt_ps,
-                         threads=pass_threads(threads, backend or "serial"))
+                         threads=pass_threads(threads, "serial" if serial else "parallel"))
         kwargs = {"frames": np.asarray(frames)}
-        if backend not in (None, "serial") or int(n_workers or 1) > 1:
-            kwargs.update(backend=backend or "multiprocessing", n_workers=int(n_workers))
+        if not serial:
+            from .distributed import backend_kwargs
+
+            kwargs.update(backend_kwargs(backend if backend not in (None, "serial") else "multiprocessing",
+                                         int(n_workers or 1)))
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message="Reader has no dt information")
             warnings.filterwarnings("ignore", category=DeprecationWarning)
@@ -271,5 +278,7 @@ def plan_basins(choice, replicas, tset, temperature_k, backend=None, n_workers=1
                         "the barriers between them (unsampled regions: boundaries)",
               "temperature_k": float(temperature_k), "n_bootstrap": N_BOOTSTRAP, "seed": SEED,
               "first_pass": {"torsions": len(sub), "frames": [int(len(f)) for _, f, _, _ in replicas],
-                             "seconds": round(time.time() - started, 3)}}
+                             "seconds": round(time.time() - started, 3),
+                             "backend": backend if isinstance(backend, str) or backend is None
+                             else type(backend).__name__, "workers": int(n_workers or 1)}}
     return choice.resolve(basins), table, record, notices

@@ -154,6 +154,19 @@ class LocalDaskBackend(BackendDask):
         return results
 
 
+def backend_kwargs(backend, n_workers):
+    """The keyword arguments of ``AnalysisBase.run`` for a parallel ``backend``: the names
+    ``multiprocessing`` and ``dask`` become the local backends of this module (their workers stop
+    at once on an interrupt), any other name is MDAnalysis' own with ``n_workers``, and a backend
+    object (:class:`DistributedBackend`) is used as it is, with its own workers."""
+    if backend == "multiprocessing":
+        backend = LocalProcessBackend(n_workers)
+    elif backend == "dask":
+        backend = LocalDaskBackend(n_workers)
+    return dict(backend=backend, n_workers=n_workers if isinstance(backend, str) else None,
+                unsupported_backend=not isinstance(backend, str))
+
+
 def start_workers(pool, n):
     """Start the ``n`` worker processes of a ``ProcessPoolExecutor`` now, with signals held: a
     pool forks them when work is first handed to it, and a signal whose raise lands in the fork
