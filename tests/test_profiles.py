@@ -40,6 +40,24 @@ def rb_profiles(rb_synthetic):
     return free_energy_profiles(rb_synthetic, temperature_k=T, per_torsion=True)
 
 
+def test_profiles_table_is_the_same_whatever_the_stacks_of_torsions(rb_synthetic, rb_profiles, monkeypatch):
+    # the per-torsion rows are written into the table's final arrays stack by stack: stacks of 7
+    # (which do not divide the 100 torsions) give the rows of stacks of 64, in the same order
+    from dihedra.analysis.profiles import driver
+
+    monkeypatch.setattr(driver, "_BATCH", 7)
+    small = free_energy_profiles(rb_synthetic, temperature_k=T, per_torsion=True)
+    a, b = small.profiles, rb_profiles.profiles
+    n_torsions = len(rb_synthetic.torsion_set.labels)
+    assert len(a) == len(b) == (1 + n_torsions) * (360 // 5 + 360)   # histogram and kernel rows
+    for c in a.columns:
+        if c == "free_energy_err_kj_mol":   # bootstrap spreads, kept in single precision: the same to
+            np.testing.assert_allclose(a[c], b[c], rtol=1e-6)   # its rounding (another summation order)
+        else:
+            pd.testing.assert_series_equal(a[c], b[c])
+    assert list(a["torsion"].unique()) == [""] + list(rb_synthetic.torsion_set.labels)
+
+
 def test_known_density_recovered_within_error_band(rb_profiles):
     # analytic: exact inverse-CDF samples of exp(-V/kT) must give F = V (bin-averaged) + const,
     # with residuals that scatter like the stated error band (mean z^2 near 1)

@@ -5,7 +5,7 @@ torsion: the histogram and kernel profiles with their block-bootstrap errors
 (:mod:`.estimation`), minima, barriers and state free energies (:mod:`.features`); 2-D profiles of
 pairs of torsions on request (:mod:`.maps`).
 
-Computation: torsions are handled in stacks of :data:`_BATCH` = 256, every step one array
+Computation: torsions are handled in stacks of :data:`_BATCH` = 64, every step one array
 operation over the stack (see :mod:`.estimation` and :mod:`.features`), a few stacks at a time in
 threads (NumPy releases the interpreter lock in its array loops); the tables are built column by
 column (:class:`_ProfileTables`).
@@ -38,8 +38,10 @@ from .maps import check_pairs, pair_profiles
 
 #: Energy units a profile can be written in.
 PROFILE_ENERGY_UNITS = ("kJ/mol", "kcal/mol", "kT")
-#: Torsions per stack (bounds memory: n_bootstrap x stack x 360 single-precision values, 74 MB).
-_BATCH = 256
+#: Torsions per stack (bounds memory: n_bootstrap x stack x 360 single-precision values, 18 MB,
+#: and the arrays around them; larger stacks are no faster: 15,000 torsions in 12-13 s with
+#: stacks of 64 or 256, at a peak of 820 against 1,050 MB).
+_BATCH = 64
 #: Threads that profile stacks of torsions side by side.
 _THREADS = min(4, os.cpu_count() or 1)
 
@@ -223,17 +225,35 @@ def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, ba
 # ----------------------------------------------------------------------------------------------
 
 class _Columns:
-    """Column arrays of a table collected piece by piece, joined once at the end."""
+    """Column arrays of a table collected piece by piece, joined once at the end; or, for a table
+    whose length is known (:meth:`reserve`), written into its final arrays as the pieces come."""
 
     def __init__(self, columns):
         self.columns = list(columns)
         self.parts = {c: [] for c in self.columns}
+        self.reserved = None   # (rows, {column: dtype}) until the first piece
+        self.filled = None     # {column: array of the whole table}
+        self.at = 0
+
+    def reserve(self, n_rows, dtypes):
+        """Make the table ``n_rows`` long in final arrays (made when the first piece comes, in
+        its types, or those of ``dtypes`` by column): no pieces are kept and no column is joined,
+        so the table is in memory once (the profiles of 15,000 torsions are 6.5 million rows,
+        pieces of which took the heap's freed memory for good)."""
+        self.reserved = (int(n_rows), dict(dtypes))
 
     def add(self, **values):
         n = max(np.size(v) for v in values.values())
+        if self.reserved is not None and self.filled is None:
+            rows, dtypes = self.reserved
+            self.filled = {c: np.empty(rows, dtype=dtypes.get(c, np.asarray(values[c]).dtype)) for c in self.columns}
         for c in self.columns:
-            self.parts[c].append(np.broadcast_to(np.asarray(values[c]), (n,)) if np.ndim(values[c]) == 0
-                                 else np.asarray(values[c]).ravel())
+            v = np.broadcast_to(np.asarray(values[c]), (n,)) if np.ndim(values[c]) == 0 else np.asarray(values[c]).ravel()
+            if self.filled is not None:
+                self.filled[c][self.at:self.at + n] = v
+            else:
+                self.parts[c].append(v)
+        self.at += n
 
     def frame(self, categories):
         """DataFrame; the columns named in ``categories`` hold codes into those category lists.
@@ -243,15 +263,20 @@ class _Columns:
         into one 2-D block): the profiles of 15,000 torsions are 6.5 million rows, about 0.6 GB
         of columns, which were held three times over at the peak."""
         data = {}
+        if self.filled is not None and self.at != len(self.filled[self.columns[0]]):
+            raise RuntimeError(f"{self.at} rows given for a table of {len(self.filled[self.columns[0]])}")
         for c in self.columns:
             parts = self.parts.pop(c, [])
-            joined = np.concatenate(parts) if parts else np.zeros(0)
+            joined = self.filled.pop(c) if self.filled is not None else (np.concatenate(parts) if parts else np.zeros(0))
             del parts
             if c in categories:
-                data[c] = pd.Categorical.from_codes(joined.astype(np.int64), categories=categories[c])
+                codes = joined if joined.dtype.kind in "iu" else joined.astype(np.int64)
+                data[c] = pd.Categorical.from_codes(codes, categories=categories[c])
             else:
                 data[c] = joined
         self.parts = {c: [] for c in self.columns}
+        self.reserved = self.filled = None
+        self.at = 0
         return pd.DataFrame(data, columns=self.columns, copy=False)
 
 
@@ -347,6 +372,7 @@ class _Stacks:
     scheme: object
     neff: np.ndarray
     types: list
+    n_blocks: int = 0
 
     @classmethod
     def of(cls, result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed):
@@ -355,7 +381,8 @@ class _Stacks:
         factor = check_bin_width(bin_width_deg, fine)
         mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
         sc, _, smult = state_blocks(result, n_bootstrap, seed)
-        return cls(hist=kept_block(blocks, "histograms"), mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
+        hist = kept_block(blocks, "histograms")
+        return cls(hist=hist, n_blocks=int(hist.shape[0]), mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
                    factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg, scheme=result.scheme,
                    neff=effective_samples(result.populations, result.torsion_set.labels),
                    types=list(result.torsion_set.types))
@@ -466,6 +493,9 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     labels = result.torsion_set.labels
     tables = _ProfileTables()
     bws, rows, by_type = _type_stack(s, order, members)
+    per_profile = len(rows["profiles"]["angle_deg"]) // max(1, len(order))   # (histogram and kernel rows)
+    tables.tables["profiles"].reserve(per_profile * (len(order) + (len(labels) if per_torsion else 0)),
+                                      {"type": np.int32, "torsion": np.int32, "estimate": np.int8})
     tables.add(rows)
     bandwidths = [bws]
     # per torsion, in stacks (bounded memory), a few stacks at a time in threads
@@ -476,6 +506,7 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
         for bws, rows in _ordered_map(functools.partial(_torsion_stack, s=s, codes=codes), spans, _THREADS):
             tables.add(rows)
             bandwidths.append(bws)
+    s.hist = None   # (the fine histograms are done with: their memory serves the tables)
     profiles, minima, barriers, state_dg = tables.frames(order, labels, s.scheme.labels)
     if len(s.scheme.coded_parts()) > 1 and len(state_dg):   # a set of schemes: each type's own states
         own = [st in s.scheme.states_of_type(ty) for ty, st in zip(state_dg["type"], state_dg["state"])]
@@ -502,7 +533,7 @@ def _settings(s, temperature_k, n_bootstrap, seed, names, bandwidths):
         "temperature_k": temperature_k, "kt_kj_mol": s.kt, "bin_width_deg": float(s.bin_width_deg),
         "fine_bin_width_deg": s.fine, "n_bootstrap": n_bootstrap, "seed": seed,
         "bootstrap": "blocks resampled with replacement within each replica",
-        "n_histogram_blocks": int(s.hist.shape[0]),
+        "n_histogram_blocks": int(s.n_blocks),
         "bandwidth_rule": ("given" if s.bandwidth_deg is not None else
                            "0.9 * within-arc standard deviation * n_effective^(-1/5), at least the fine bin"),
         "bandwidths_deg": [{"type": typ, "torsion": tor, "bandwidth_deg": float(bw)}
