@@ -45,6 +45,8 @@ def make_folder(folder, top, xtc, samples, n_torsions, py, env, keep_angles, mea
     stop = FRAMES if copies > 1 else max(2, math.ceil(samples / n_torsions))
     cmd = [py, "-m", "dihedra", "track", top, *([xtc] * copies), "--torsions", "rotatable", "--stop", str(stop),
            "--temperature", "298.15", "--out", folder, "--overwrite"]
+    if copies > 1:   # (the same file as several replicas: allowed for a benchmark of the sample count)
+        cmd.append("--allow-duplicates")
     if keep_angles:
         cmd.append("--keep-angles")
     r = measure(cmd, env=env)
