@@ -55,6 +55,26 @@ def test_a_table_in_parts_gives_the_same_text(tmp_path, monkeypatch):
     assert open(write_table(frame, tmp_path, "parts.csv"), "rb").read() == whole
 
 
+def test_categorical_columns_in_parts_read_back_as_their_text(tmp_path, monkeypatch):
+    """Categorical columns (the type and torsion labels of the profiles) are written as their
+    text part by part, their categories made once per table; a missing value is an empty cell
+    (reference library: pandas)."""
+    from dihedra.io import tables
+
+    labels = [f"RES{k}:C1-C2-C3-C4" for k in range(500)] + ["a,b"]
+    codes = np.r_[np.arange(501), np.arange(499, -1, -1), [-1, 3]]
+    frame = pd.DataFrame({"torsion": pd.Categorical.from_codes(codes, categories=labels),
+                          "estimate": pd.Categorical.from_codes(codes % 2, categories=["histogram", "kernel"]),
+                          "value": np.arange(len(codes), dtype=float) / 7})
+    monkeypatch.setattr(tables, "_ROWS_PER_PART", 97)
+    back = pd.read_csv(write_table(frame, tmp_path, "cat.csv"), keep_default_na=False, na_values=[""])
+    expected = [labels[c] if c >= 0 else np.nan for c in codes]
+    assert back["torsion"].tolist()[:-2] == expected[:-2] and np.isnan(back["torsion"].iloc[-2])
+    assert back["torsion"].iloc[-1] == labels[3]
+    assert back["estimate"].tolist() == [["histogram", "kernel"][c % 2] for c in codes]
+    np.testing.assert_array_equal(back["value"], frame["value"])
+
+
 @pytest.mark.parametrize("top, stored", [(200, np.uint8), (60_000, np.uint16), (70_000, np.int32)])
 def test_histograms_stored_narrow_read_back_equal(tmp_path, top, stored):
     """save_npz narrows non-negative counts to the smallest unsigned type (checked against
