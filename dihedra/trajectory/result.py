@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import sys
 from collections.abc import MutableMapping
 from dataclasses import dataclass, field
 
@@ -88,9 +89,13 @@ def arrow_on_system_heap():
 
 
 def release_memory():
-    """Hand the memory freed by the pass back to the system (glibc's ``malloc_trim``; nothing
-    elsewhere): large arrays and Arrow's writer leave freed heap memory that glibc keeps for
-    later, which would count in the peak of the steps after the pass."""
+    """Hand freed memory back to the system: what Arrow's memory pool keeps of buffers it freed
+    (when pyarrow is in use) and glibc's heap (``malloc_trim``; nothing elsewhere). Large arrays,
+    Arrow's writer and readers of the time series leave freed memory that both keep for later,
+    which would count in the peak of the steps after them."""
+    arrow = sys.modules.get("pyarrow")
+    if arrow is not None:
+        arrow.default_memory_pool().release_unused()
     libc = _libc()
     if libc is not None and hasattr(libc, "malloc_trim"):
         libc.malloc_trim(0)
