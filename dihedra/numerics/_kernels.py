@@ -424,3 +424,81 @@ def _fmax(a, b):
     if b > a or a != a:
         return b if b == b else a
     return a
+
+
+@njit(**_OPTS)
+def window_extremum(values, rows, start, length, want_max, pos, val, ok):
+    """The extremum of arcs of profiles, for every resample: arc ``a`` is the bins
+    ``start[a] + 1, ..., start[a] + length[a]`` (going up the circle of ``n`` bins) of profile
+    ``rows[a]`` of ``values`` (m, n, r), resample s its last index. Into ``pos`` and ``val``
+    (r, f): the first bin (in arc order) holding the arc's minimum (its maximum with
+    ``want_max``; an unsampled bin, +inf or NaN, counts as lowest there), refined by the
+    least-squares parabola through the five bins around it where those are all sampled and it
+    bends the right way with its vertex within one bin, else by the parabola through the three
+    bins around it (vertex within half a bin), else the bin itself. ``ok`` (r, f): for a minimum,
+    the arc holds a sampled bin; for a maximum, every bin of it is sampled. An arc holding a NaN
+    has no minimum: its first bin then stands for it, not ok.
+
+    The parabola through five points x = -2..2 is that of the least-squares (Savitzky-Golay)
+    weights, c2 = (2, -1, -2, -1, 2) / 14, c1 = (-2, -1, 0, 1, 2) / 10 and c0 = (-3, 12, 17, 12,
+    -3) / 35 (common practice), summed in integer weights first so that five equal values give
+    exactly c1 = c2 = 0 (no vertex: the bin itself, not a vertex placed by rounding noise).
+    """
+    n = values.shape[1]
+    r = values.shape[2]
+    for a in range(rows.shape[0]):
+        row = rows[a]
+        first = (start[a] + 1) % n
+        for s in range(r):
+            best = values[row, first, s]
+            k = first
+            if want_max:
+                good = np.isfinite(best)
+                if not good:
+                    best = -np.inf
+                for t in range(1, length[a]):
+                    col = (first + t) % n
+                    y = values[row, col, s]
+                    if not np.isfinite(y):
+                        good = False
+                    elif y > best:
+                        best = y
+                        k = col
+            else:
+                nan = best != best
+                for t in range(1, length[a]):
+                    col = (first + t) % n
+                    y = values[row, col, s]
+                    if y != y:
+                        nan = True
+                    elif y < best:
+                        best = y
+                        k = col
+                if nan:
+                    k = first
+                good = not nan and np.isfinite(best)
+            ok[s, a] = good
+            y0 = values[row, (k - 2) % n, s]
+            y1 = values[row, (k - 1) % n, s]
+            y2 = values[row, k, s]
+            y3 = values[row, (k + 1) % n, s]
+            y4 = values[row, (k + 2) % n, s]
+            c2 = ((((2.0 * y0 - y1) - 2.0 * y2) - y3) + 2.0 * y4) / 14.0
+            c1 = (((-2.0 * y0 - y1) + y3) + 2.0 * y4) / 10.0
+            c0 = ((((-3.0 * y0 + 12.0 * y1) + 17.0 * y2) + 12.0 * y3) - 3.0 * y4) / 35.0
+            x5 = -c1 / (2.0 * c2)
+            bend = c2 < 0.0 if want_max else c2 > 0.0
+            if (bend and abs(x5) <= 1.0 and np.isfinite(y0) and np.isfinite(y1) and np.isfinite(y2)
+                    and np.isfinite(y3) and np.isfinite(y4)):
+                pos[s, a] = k + x5
+                val[s, a] = (c0 + c1 * x5) + c2 * (x5 * x5)
+                continue
+            denom = (y1 - 2.0 * y2) + y3
+            delta = 0.5 * (y1 - y3) / denom
+            if np.isfinite(delta) and np.isfinite(y1) and np.isfinite(y3) and denom != 0.0:
+                delta = min(0.5, max(-0.5, delta))
+                pos[s, a] = k + delta
+                val[s, a] = y2 - 0.25 * (y1 - y3) * delta
+            else:
+                pos[s, a] = k
+                val[s, a] = y2

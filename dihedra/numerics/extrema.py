@@ -162,45 +162,6 @@ def find_minima(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_depth
                                           min_depth_kt, min_depth_sigma)[0]]
 
 
-def _parabola(left, mid, right):
-    """Vertex offset (in bins, within +-0.5) and value of a parabola through three points."""
-    left, mid, right = (np.asarray(x, dtype=float) for x in (left, mid, right))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        denom = left - 2.0 * mid + right
-        delta = 0.5 * (left - right) / denom
-        good = np.isfinite(delta) & np.isfinite(left) & np.isfinite(right) & (denom != 0)
-        delta = np.where(good, np.clip(delta, -0.5, 0.5), 0.0)
-        value = np.where(good, mid - 0.25 * (left - right) * delta, mid)
-    return delta, value
-
-
-#: Least-squares quadratic over the bins -2..+2 around an extremum: coefficients = _FIT @ values.
-_FIT_X = np.arange(-2, 3, dtype=float)
-_FIT = np.linalg.pinv(np.vander(_FIT_X, 3, increasing=True))
-
-
-def _refine_at(y5, idx, kind):
-    """Refined position (bins) and value of extrema from the five values around them (..., 5).
-
-    A least-squares parabola through the five bins around ``idx`` (less sensitive to the noise of
-    single bins than the bin itself); a three-point parabola where the five are not all sampled or
-    the fit bends the wrong way; the bin itself where neither works.
-    """
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):  # unsampled neighbours: inf or NaN
-        c = y5 @ _FIT.T  # (..., 3): c0 + c1 x + c2 x^2
-        x5 = -c[..., 1] / (2.0 * c[..., 2])
-        v5 = c[..., 0] + c[..., 1] * x5 + c[..., 2] * x5 ** 2
-        bend = c[..., 2] > 0 if kind == "min" else c[..., 2] < 0
-        good5 = np.isfinite(y5).all(axis=-1) & bend & (np.abs(x5) <= 1.0)
-        delta3, v3 = _parabola(y5[..., 1], y5[..., 2], y5[..., 3])
-    return np.where(good5, idx + x5, idx + delta3), np.where(good5, v5, v3)
-
-
-
-#: Values gathered per step of :func:`_window_extremum` (bounds its memory: 8 bytes each).
-_GATHER_VALUES = 8_000_000
-
-
 def _window_extremum(values, rows, start, length, kind):
     """Refined extremum of arcs of a stack of profiles, for every resample.
 
@@ -216,50 +177,18 @@ def _window_extremum(values, rows, start, length, kind):
     Returns
     -------
     position (bins), value, ok : ndarrays (r, f)
-        The first extremum in arc order, refined; for "max", ok is false where the arc holds an
-        unsampled bin; for "min", where it holds no sampled one.
-
-    Notes
-    -----
-    Arcs are gathered in groups of similar length, each group as an (arcs, length, r) array whose
-    middle axis is in arc order (each gathered item is the contiguous vector of resamples of one
-    bin); a shorter arc repeats its last bin, which changes neither its extreme value nor the first
-    position of it.
+        The first extremum in arc order, refined (a least-squares parabola through the five bins
+        around it, else a three-point parabola, else the bin itself); for "max", ok is false
+        where the arc holds an unsampled bin; for "min", where it holds no sampled one. Computed
+        arc by arc by :func:`dihedra.numerics._kernels.window_extremum`.
     """
-    m, n, r = values.shape
-    flat = np.ascontiguousarray(values).reshape(m * n, r)
-    f = len(rows)
-    out = [np.empty((r, f)), np.empty((r, f)), np.empty((r, f), dtype=bool)]
-    by_length = np.argsort(length, kind="stable")
-    sorted_len = length[by_length]
-    resample = np.arange(r)
-    lo = 0
-    while lo < f:
-        top = int(sorted_len[lo])
-        # arcs up to 1.25 x (and 8 bins) longer share one padded array
-        hi = int(np.searchsorted(sorted_len, max(top + 8, int(1.25 * top)), side="right"))
-        span = int(sorted_len[hi - 1])
-        hi = min(hi, lo + max(1, _GATHER_VALUES // max(1, r * span)))
-        sel = by_length[lo:hi]
-        rw, st, ln = rows[sel], start[sel], length[sel]
-        t = np.minimum(np.arange(span)[None, :], ln[:, None] - 1)
-        cols = (st[:, None] + 1 + t) % n
-        sub = np.take(flat, rw[:, None] * n + cols, axis=0)  # (arcs, span, r)
-        if kind == "min":  # unsampled bins are +inf (see _resampled_free_energy), never the minimum
-            best = sub.min(axis=1)
-            ok = np.isfinite(best)
-        else:
-            finite = np.isfinite(sub)
-            ok = finite.all(axis=1)
-            np.copyto(sub, -np.inf, where=~finite)
-            best = sub.max(axis=1)
-        k = (sub == best[:, None, :]).argmax(axis=1)  # first position of the extreme value
-        idx = np.take_along_axis(cols, k, axis=1)  # (arcs, r)
-        y5 = flat[rw[:, None, None] * n + (idx[..., None] + _FIT_X.astype(int)) % n, resample[None, :, None]]
-        pos, value = _refine_at(y5, idx, kind)
-        out[0][:, sel], out[1][:, sel], out[2][:, sel] = pos.T, value.T, ok.T
-        lo = hi
-    return tuple(out)
+    from .angles import compiled_kernels
+
+    r, f = np.shape(values)[2], len(rows)
+    out = (np.empty((r, f)), np.empty((r, f)), np.empty((r, f), dtype=bool))
+    ints = (np.ascontiguousarray(x, dtype=np.int64) for x in (rows, start, length))
+    compiled_kernels().window_extremum(np.ascontiguousarray(values, dtype=np.float64), *ints, kind == "max", *out)
+    return out
 
 
 def _spread_columns(samples):
