@@ -1,5 +1,7 @@
-"""Compiled kernels (numba): the per-frame work of the trajectory pass, and the blocking analysis
-of the populations (:func:`blocking_columns`, used by :func:`dihedra.numerics.statistics.blocking_error`).
+"""Compiled kernels (numba): the per-frame work of the trajectory pass, the blocking analysis
+of the populations (:func:`blocking_columns`, used by :func:`dihedra.numerics.statistics.blocking_error`)
+and the extremum of arcs of free-energy profiles (:func:`window_extremum`, used by
+:mod:`dihedra.numerics.extrema`).
 
 This module is imported through :func:`dihedra.numerics.angles.compiled_kernels` (importing numba
 takes a moment, so only where the kernels are used). The kernels use no fused multiply-adds and no
