@@ -448,37 +448,48 @@ def window_extremum(values, rows, start, length, want_max, pos, val, ok):
     """
     n = values.shape[1]
     r = values.shape[2]
+    best = np.empty(r)
+    at = np.empty(r, dtype=np.int64)
+    flag = np.empty(r, dtype=np.bool_)   # max: every bin sampled so far; min: a NaN seen
     for a in range(rows.shape[0]):
         row = rows[a]
         first = (start[a] + 1) % n
-        for s in range(r):
-            best = values[row, first, s]
-            k = first
+        head = values[row, first]
+        for s in range(r):   # (the resamples, contiguous, in the inner loops)
+            y = head[s]
+            at[s] = first
             if want_max:
-                good = np.isfinite(best)
-                if not good:
-                    best = -np.inf
-                for t in range(1, length[a]):
-                    col = (first + t) % n
-                    y = values[row, col, s]
-                    if not np.isfinite(y):
-                        good = False
-                    elif y > best:
-                        best = y
-                        k = col
+                flag[s] = np.isfinite(y)
+                best[s] = y if flag[s] else -np.inf
             else:
-                nan = best != best
-                for t in range(1, length[a]):
-                    col = (first + t) % n
-                    y = values[row, col, s]
-                    if y != y:
-                        nan = True
-                    elif y < best:
-                        best = y
-                        k = col
-                if nan:
+                flag[s] = y != y
+                best[s] = y
+        for t in range(1, length[a]):
+            col = (first + t) % n
+            line = values[row, col]
+            if want_max:
+                for s in range(r):   # (selects, no branches: SIMD)
+                    y = line[s]
+                    finite = np.isfinite(y)
+                    flag[s] = flag[s] and finite
+                    better = finite and y > best[s]
+                    best[s] = y if better else best[s]
+                    at[s] = col if better else at[s]
+            else:
+                for s in range(r):
+                    y = line[s]
+                    flag[s] = flag[s] or y != y
+                    better = y < best[s]   # (false for NaN)
+                    best[s] = y if better else best[s]
+                    at[s] = col if better else at[s]
+        for s in range(r):
+            k = at[s]
+            if want_max:
+                good = flag[s]
+            else:
+                if flag[s]:
                     k = first
-                good = not nan and np.isfinite(best)
+                good = not flag[s] and np.isfinite(best[s])
             ok[s, a] = good
             y0 = values[row, (k - 2) % n, s]
             y1 = values[row, (k - 1) % n, s]
