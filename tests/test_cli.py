@@ -54,6 +54,24 @@ def test_a_command_that_succeeded_ends_with_its_output_whole(system):
     assert res.returncode == 0 and "4 torsions of 1 types" in res.stdout and "Ordered by: cumulative time" in res.stdout
 
 
+def test_track_loads_mdanalysis_without_rdkit_and_rdkit_still_imports_after():
+    # MDAnalysis loads RDKit (about 40 MB) for its converter when RDKit is installed; the track
+    # command never converts, so its process imports MDAnalysis with RDKit held back
+    pytest.importorskip("rdkit")
+    code = ("import sys; from dihedra.cli import import_mdanalysis_without_rdkit as f; f(); "
+            "import MDAnalysis; assert 'rdkit' not in sys.modules, 'rdkit loaded'; "
+            "import MDAnalysis.converters.RDKitInferring as i; assert i.RDBONDORDER == {}; "
+            "from rdkit import Chem; print(Chem.MolFromSmiles('CCCC').GetNumAtoms())")
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.strip() == "4"
+    # a process that has MDAnalysis already (an API user's session) is left as it is
+    code = ("import sys, MDAnalysis; from dihedra.cli import import_mdanalysis_without_rdkit as f; f(); "
+            "import MDAnalysis.converters.RDKitInferring as i; print(len(i.RDBONDORDER) > 0)")
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert res.returncode == 0 and res.stdout.strip() == "True", res.stderr
+
+
 def test_track_writes_folder_and_prints_populations(system, tmp_path, capsys):
     top, traj = system
     code, out, err = run_cli(capsys, "track", top, traj, "--torsions", "rotatable", "--out", tmp_path / "r")
