@@ -77,12 +77,10 @@ def main(argv=None):
     if "pyarrow" not in sys.modules:   # Arrow on the system heap: see trajectory.result.arrow_on_system_heap
         os.environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", "system")
     given = sys.argv[1:] if argv is None else argv
-    if next((a for a in given if not a.startswith("-")), None) == "track":
-        if "numpy" not in sys.modules:
-            # one BLAS thread: the pass's own threads use the cores, and OpenBLAS' idle threads
-            # spin for a while after every call (on 2 cores, about 0.1-0.2 s of a 6,000-frame run)
-            os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-        import_mdanalysis_without_rdkit()
+    if "numpy" not in sys.modules and next((a for a in given if not a.startswith("-")), None) == "track":
+        # one BLAS thread: the pass's own threads use the cores, and OpenBLAS' idle threads spin
+        # for a while after every call (on 2 cores, about 0.1-0.2 s of a 6,000-frame run)
+        os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     if argv is None:
         _note_early_interrupts()
     try:
@@ -170,8 +168,11 @@ def _note_early_interrupts():
 
 def _main(argv):
     given = sys.argv[1:] if argv is None else argv
+    command = next((a for a in given if not a.startswith("-")), None)
     with _collector_paused(argv is None):
-        parser = build_parser(next((a for a in given if not a.startswith("-")), None))
+        if command == "track":   # (here, where an early Ctrl-C is noted, not raised)
+            import_mdanalysis_without_rdkit()
+        parser = build_parser(command)
         try:
             args = parser.parse_args(argv)
         except SystemExit as exc:   # --help, --version (0) or a usage error (2, one line printed)
