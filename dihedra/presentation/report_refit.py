@@ -9,7 +9,8 @@ from __future__ import annotations
 import os
 
 from ..io.tables import read_optional_json, read_optional_table as read_optional
-from .report_html import MAX_ROWS, _callout, _e, _figures_html, _fmt, _kv, _missing, _pm, _pm_columns, _table, _verdict
+from .figures.common import _as_bool
+from .report_html import MAX_ROWS, _callout, _figures_html, _fmt, _kv, _missing, _pm, _pm_columns, _table, _verdict
 
 #: Files of a refit that a user applies elsewhere, linked from the section when present.
 _FORMS = ("refit_openmm.xml", "refit_ryckaert_bellemans.csv", "refit_fourier.csv", "refit_correction.csv")
@@ -23,7 +24,7 @@ def _refit(page, figs):
                         "dihedra refit DIR --target FILE")
     row = summary.iloc[0]
     p = info.get("parameters", {})
-    trusted = _truth(row.get("trustworthy"))
+    trusted = bool(_as_bool(summary["trustworthy"])[0])
     parts = ["<section id='refit'><h2>Torsion correction fitted by reweighting</h2>",
              "<p class='lead'>Reweighting: " + _verdict("trustworthy" if trusted else "not trustworthy")
              + (" The frames keep enough weight to stand for the corrected ensemble." if trusted else
@@ -69,9 +70,3 @@ def _refit(page, figs):
     parts.append("</section>")
     return "".join(parts)
 
-
-def _truth(value):
-    """A ``trustworthy`` cell as read back from CSV (a boolean, or its text)."""
-    if isinstance(value, str):
-        return value.strip().lower() == "true"
-    return bool(value) if value == value else False
