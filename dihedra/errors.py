@@ -1,8 +1,11 @@
 """The one exceptions module of dihedra.
 
 A :class:`DihedraError` is a user error: one clear sentence with the value received and what to do
-instead. The command line prints it without a traceback and exits with status 2.
+instead. The command line prints it without a traceback and exits with status 2. The helpers at the
+end raise them with one wording wherever dihedra checks a choice or reads a TOML file.
 """
+
+import tomllib
 
 
 class DihedraError(Exception):
@@ -39,3 +42,22 @@ def one_of(name, value, valid):
         listed = ", ".join(repr(v) for v in valid)
         raise DihedraError(f"{name} must be one of {listed}; got {value!r}.")
     return value
+
+
+def read_toml(path, what, error=InputFileError, with_text=False):
+    """The tables of the TOML file ``path``, or ``error`` naming it as ``what`` (``"scheme file"``)
+    when it cannot be read or is not TOML (TOML files are UTF-8: other bytes are an error too).
+
+    With ``with_text``, ``(tables, text)``.
+    """
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read()
+    except OSError as exc:
+        raise error(f"cannot read the {what} {path}: {exc.strerror}.") from None
+    try:
+        text = raw.decode("utf-8")
+        data = tomllib.loads(text)
+    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise error(f"the {what} {path} is not valid TOML: {exc}.") from None
+    return (data, text) if with_text else data

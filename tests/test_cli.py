@@ -190,6 +190,19 @@ def test_toml_named_torsions_by_selection(system, tmp_path, capsys):
     assert code == 0 and "first-chain" in out and "second-chain" in out
 
 
+
+@pytest.mark.parametrize("option", ["--torsions", "--scheme"])
+def test_toml_file_that_is_not_text_is_one_line_error(system, tmp_path, capsys, option):
+    # TOML is UTF-8 (TOML 1.0 specification); bytes that are not UTF-8 are the user's file
+    # at fault, said in one line, not a traceback from the decoder
+    top, traj = system
+    bad = tmp_path / "bad.toml"
+    bad.write_bytes(b"\xff\xfe\x00[[torsion]]")
+    args = ["--torsions", bad] if option == "--torsions" else ["--torsions", "0,1,2,3", "--scheme", bad]
+    code, _, err = run_cli(capsys, "track", top, traj, *args, "--out", tmp_path / "r")
+    assert_one_line_error(code, err, "bad.toml is not valid TOML", "utf-8")
+    assert not os.path.exists(tmp_path / "r")
+
 def test_existing_output_folder_is_left_untouched(system, tmp_path, capsys):
     top, traj = system
     out = tmp_path / "r"

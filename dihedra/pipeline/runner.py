@@ -11,7 +11,7 @@ import tomllib
 from dataclasses import dataclass, field
 
 from .._version import __version__
-from ..errors import DihedraError, InputFileError
+from ..errors import DihedraError, InputFileError, read_toml
 from ..io.outputs import check_folder_target, read_marker, write_text
 from ..io.resultsdir import load_results
 from ..io.tables import write_json
@@ -81,15 +81,7 @@ class _Context:
 # ----------------------------------------------------------------------------------------------
 
 def _load_toml(path):
-    try:
-        with open(path, "rb") as fh:
-            raw = fh.read()
-    except OSError as exc:
-        raise InputFileError(f"cannot read the analysis file {path}: {exc.strerror}.") from None
-    try:
-        return tomllib.loads(raw.decode("utf-8")), raw.decode("utf-8")
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise InputFileError(f"the analysis file {path} is not valid TOML: {exc}.") from None
+    return read_toml(path, "analysis file", with_text=True)
 
 
 def _suggest(key, valid):

@@ -35,12 +35,11 @@ from __future__ import annotations
 
 import fnmatch
 import os
-import tomllib
 from dataclasses import dataclass, field
 
 import pandas as pd
 
-from ..errors import SchemeError, SelectionError
+from ..errors import SchemeError, SelectionError, read_toml
 from .schemes import SchemeSet, StateScheme, anti_gauche, default_scheme, get_scheme, scheme_by_type
 from .specs import select_torsions
 
@@ -181,13 +180,7 @@ def _is_map(path):
 
 
 def _read_toml(path):
-    try:
-        with open(path, "rb") as fh:
-            return tomllib.load(fh)
-    except OSError as exc:
-        raise SchemeError(f"cannot read scheme file {path}: {exc.strerror}.") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise SchemeError(f"scheme file {path} is not valid TOML: {exc}.") from None
+    return read_toml(path, "scheme file", SchemeError)
 
 
 def _as_list(value, where, key):

@@ -46,12 +46,11 @@ every arc shrunk by a margin on both sides; angles outside every core get :data:
 from __future__ import annotations
 
 import functools
-import tomllib
 from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import SchemeError
+from ..errors import SchemeError, read_toml
 from ..units import wrap_deg
 from .arcs import checked_arcs
 
@@ -513,13 +512,7 @@ def scheme_from_toml(path):
         from_deg = -150
         to_deg = 150
     """
-    try:
-        with open(path, "rb") as fh:
-            data = tomllib.load(fh)
-    except OSError as exc:
-        raise SchemeError(f"cannot read scheme file {path}: {exc.strerror}.") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise SchemeError(f"scheme file {path} is not valid TOML: {exc}.") from None
+    data = read_toml(path, "scheme file", SchemeError)
     return scheme_from_mapping(data, where=str(path))
 
 

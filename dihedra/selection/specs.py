@@ -15,12 +15,11 @@ from __future__ import annotations
 
 import os
 import re
-import tomllib
 
 import numpy as np
 from MDAnalysis.exceptions import NoDataError
 
-from ..errors import SelectionError
+from ..errors import SelectionError, read_toml
 from .rotatable import rotatable_torsions
 from .torsions import Torsion, TorsionSet, replace_fields, torsion_from_atoms
 
@@ -77,13 +76,7 @@ def torsions_from_toml(universe, path):
         selection = ["resid 1 and name C1", "resid 1 and name C2",
                      "resid 1 and name C3", "resid 1 and name C4"]
     """
-    try:
-        with open(path, "rb") as fh:
-            data = tomllib.load(fh)
-    except OSError as exc:
-        raise SelectionError(f"cannot read torsion file {path}: {exc.strerror}.") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise SelectionError(f"torsion file {path} is not valid TOML: {exc}.") from None
+    data = read_toml(path, "torsion file", SelectionError)
     entries = data.get("torsion")
     unknown = sorted(set(data) - {"torsion"})
     if unknown:

@@ -59,12 +59,11 @@ Example
 from __future__ import annotations
 
 import os
-import tomllib
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from ...errors import DihedraError, InputFileError, one_of
+from ...errors import DihedraError, InputFileError, one_of, read_toml
 from ...units import wrap_deg
 
 #: Names of the built-in relations.
@@ -217,13 +216,7 @@ def get_relation(spec):
 
 def relation_from_toml(path):
     """A custom relation from the ``[relation]`` table of a TOML file."""
-    if not os.path.exists(path):
-        raise InputFileError(f"relation file {path} does not exist.")
-    try:
-        with open(path, "rb") as fh:
-            data = tomllib.load(fh)
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise InputFileError(f"relation file {path} is not valid TOML: {exc}.") from None
+    data = read_toml(path, "relation file")
     table = data.get("relation")
     if not isinstance(table, dict):
         raise InputFileError(f"relation file {path} has no [relation] table; see 'dihedra couplings --help'.")

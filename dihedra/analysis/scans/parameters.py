@@ -14,11 +14,10 @@ kcal/mol, hartree, eV or kT). Example::
 from __future__ import annotations
 
 import os
-import tomllib
 
 import numpy as np
 
-from ...errors import InputFileError, one_of
+from ...errors import InputFileError, one_of, read_toml
 from ...units import canonical_energy_unit, to_kj_mol
 from .scan import scan_from_points
 
@@ -38,13 +37,7 @@ def ryckaert_bellemans_kj_mol(phi_deg, coefficients):
 def read_parameter_toml(path, temperature_k=None):
     """A scan E(phi) from torsion parameters in TOML (see the module notes)."""
     path = os.fspath(path)
-    try:
-        with open(path, "rb") as fh:
-            data = tomllib.load(fh)
-    except OSError as exc:
-        raise InputFileError(f"cannot read parameter file {path}: {exc.strerror}.") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputFileError(f"parameter file {path} is not valid TOML: {exc}.") from None
+    data = read_toml(path, "parameter file")
     return scan_from_parameters(data, where=f"parameter file {path}", temperature_k=temperature_k,
                                 source=os.path.abspath(path))
 
