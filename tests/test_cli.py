@@ -92,7 +92,7 @@ def test_torsions_lists_without_a_trajectory(system, tmp_path, capsys):
     (["--torsions", "0,1,2,99"], ["atom index 99 is out of range", "16 atoms"]),
     (["--torsions", "0,1,1,2"], ["repeated atoms"]),
     (["--torsions", "backbone"], ["unknown torsion specification 'backbone'", "rotatable"]),
-    (["--torsions", "0,1,2,3", "--scheme", "gauche"], ["unknown state scheme", "klyne-prelog"]),
+    (["--torsions", "0,1,2,3", "--scheme", "gauche"], ["unknown state scheme", "klyne-prelog", "auto or basins"]),
     (["--torsions", "0,1,2,3", "--start", "100"], ["frames from frame 100 to the end are none of its 30 frames",
                                                     "--start"]),
 ])

@@ -378,3 +378,31 @@ def test_weighted_time_blocks_counted_in_the_pass(tmp_path):
         np.testing.assert_allclose(a.counts, b.counts, rtol=1e-12)
         np.testing.assert_allclose(a.weights, b.weights, rtol=1e-12)
         np.testing.assert_array_equal(a.frames, b.frames)
+
+
+def test_protein_types_list_only_their_own_states_and_frozen_omega_gets_no_forecast(tmp_path):
+    # MDAnalysisTests' adenylate kinase (OPLS-AA, 10 frames),
+    # protein scheme set: phi/psi, omega and side chains follow different parts, so every type
+    # has the states of its own part only. Peptide bonds do not isomerise on MD time scales
+    # (cis-trans exchange takes seconds to minutes: common practice), so no omega torsion changes
+    # state in these frames: a constant series has no error to forecast from.
+    from MDAnalysisTests.datafiles import GRO, XTC
+
+    res = dihedra.track(GRO, XTC, torsions="protein-backbone", out=str(tmp_path / "adk"))
+    by_state = pd.read_csv(tmp_path / "adk" / "convergence_by_state.csv")
+    for typ, rows in by_state.groupby("type"):
+        assert list(rows["state"]) == list(res.scheme.states_of_type(typ)), typ
+    table = pd.read_csv(tmp_path / "adk" / "convergence.csv").set_index("type")
+    omega = table[table.index.str.endswith(":omega")]
+    moved = set(res.populations_by_replica.query("population < 1 and population > 0")["type"])
+    frozen = [t for t in omega.index if t not in moved]
+    assert frozen, "expected omega types whose torsions all stay trans"
+    for t in frozen:
+        row = table.loc[t]
+        assert not row["state_changes_seen"] and "no torsion of this type changed state" in row["verdict"]
+        assert np.isnan(row["population_err_max"]) and np.isnan(row["time_needed_ps"])
+        assert "more" not in row["forecast"]
+        assert by_state[by_state["type"] == t]["population_err"].isna().all()
+    # types with a torsion that moved keep their estimates and forecasts
+    for t in moved & set(table.index):
+        assert table.loc[t, "state_changes_seen"] and "no torsion of this type changed" not in table.loc[t, "verdict"]

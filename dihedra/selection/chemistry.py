@@ -322,7 +322,8 @@ def _sp2_sp2(graph, b, c):
         return ("double", 2, "cis-trans", f"double bond: cis and trans (Z/E) isomers ({EW})")
     if graph.end_symmetry(b, c) == "two" or graph.end_symmetry(c, b) == "two":
         return ("sp2-sp2", 2, "coplanar-perpendicular", "conjugated single bond between sp2 centres, one end with "
-                f"two identical substituents (a phenyl ring): angle modulo 180, coplanar or perpendicular ({EW})")
+                "two identical substituents (such as a phenyl ring, a guanidinium or a carboxylate): angle modulo "
+                f"180, coplanar or perpendicular ({EW})")
     return ("sp2-sp2", 2, "cis-trans", "conjugated single bond between sp2 centres: planar s-cis and s-trans wells "
             f"({EW})")
 

@@ -570,4 +570,5 @@ def get_scheme(spec):
     if text.lower().endswith(".toml"):
         return scheme_from_toml(text)
     raise SchemeError(f"unknown state scheme {text!r}; use one of {', '.join(BUILTIN_SCHEMES)} "
-                      "(staggered-eclipsed:N for an N-fold rotor) or a .toml file.")
+                      f"(staggered-eclipsed:N for an N-fold rotor), {' or '.join(CHOSEN_SCHEMES)} (chosen per "
+                      "torsion type) or a .toml file.")

@@ -180,8 +180,10 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
     temperature_k = temperature_k if temperature_k is not None else result.summary.get("temperature_k")
     kt = None if temperature_k is None else R_KJ_PER_MOL_K * float(temperature_k)
     rows, state_rows, time_rows = [], [], []
+    own = _own_states(result.scheme, tb)
+    frozen = _frozen_types(result)
     for k, name in enumerate(tb.types):
-        typ = _TypeSeries(tb, k, time_known)
+        typ = _TypeSeries(tb, k, time_known, states=own.get(name), frozen=name in frozen)
         row, states = typ.summary(target_error, target_error_kj_mol, kt)
         rows.append(row)
         state_rows.extend(states)
@@ -201,16 +203,20 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
 class _TypeSeries:
     """The time-block series of one type in every replica: fractions (n_blocks, n_states)."""
 
-    def __init__(self, tb, k, time_known=True):
+    def __init__(self, tb, k, time_known=True, states=None, frozen=False):
         self.time_known = time_known
-        self.name, self.states = tb.types[k], tb.states
+        # (a set of schemes: only the states of the type's own part; the others are never entered)
+        own = np.arange(len(tb.states)) if states is None else np.asarray(states, dtype=np.intp)
+        self.name, self.states = tb.types[k], [tb.states[i] for i in own]
+        self.frozen = bool(frozen)
         self.n_torsions = int(tb.n_torsions[k])
         self.parts = []
         for rb in tb.replicas:
-            valid = rb.counts[:, k, :].sum(axis=1)
+            counts = rb.counts[:, k, own]
+            valid = counts.sum(axis=1)
             keep = valid > 0
-            self.parts.append(dict(replica=rb.replica, counts=rb.counts[keep, k, :], valid=valid[keep],
-                                   x=rb.counts[keep, k, :] / valid[keep, None], first=rb.first[keep],
+            self.parts.append(dict(replica=rb.replica, counts=counts[keep], valid=valid[keep],
+                                   x=counts[keep] / valid[keep, None], first=rb.first[keep],
                                    time=rb.time_ps[keep], frames=rb.frames[keep], interval=rb.interval_ps,
                                    simulated=rb.simulated_ps))
         counts = sum(p["counts"].sum(axis=0) for p in self.parts)
@@ -255,10 +261,14 @@ class _TypeSeries:
         """The row of the type and its rows per state."""
         whole = self.replica_stats()
         states = [self._state(s, whole[s], target, target_kj, kt) for s in range(len(self.states))]
+        if self.frozen:   # (a constant series: its errors would be the floor's, not the run's)
+            for r in states:
+                r.update(population_err=np.nan, n_effective=np.nan, time_needed_ps=np.nan, dg_err_kj_mol=np.nan,
+                         dg_time_needed_ps=np.nan)
         start = _type_start(states)
         replicas = _type_replicas(states, len(self.parts))
         sampled = [r for r in states if r["population"] > 0]
-        worst = max(sampled, key=lambda r: r["population_err"]) if sampled else None
+        worst = max(sampled, key=lambda r: r["population_err"]) if sampled and not self.frozen else None
         dg = [r for r in states if np.isfinite(r.get("dg_err_kj_mol", np.nan))]
         worst_dg = max(dg, key=lambda r: r["dg_err_kj_mol"]) if dg else None
         row = {"type": self.name, "n_torsions": self.n_torsions, "n_replicas": len(self.parts),
@@ -269,16 +279,18 @@ class _TypeSeries:
                "target_error": float(target),
                "time_needed_ps": worst["time_needed_ps"] if worst else np.nan,
                "replicas_needed": self._replicas_needed(worst["time_needed_ps"]) if worst else np.nan,
+               "state_changes_seen": not self.frozen,
                "forecast": _forecast(worst["population_err"], target, worst["time_needed_ps"], self.simulated,
                                      self._replicas_needed(worst["time_needed_ps"]), self.time_known)
-                           if worst else "no data",
+                           if worst else (NO_CHANGES if self.frozen else "no data"),
                "dg_err_max_kj_mol": worst_dg["dg_err_kj_mol"] if worst_dg else np.nan,
                "target_error_kj_mol": float(target_kj),
                "dg_time_needed_ps": worst_dg["dg_time_needed_ps"] if worst_dg else np.nan,
                "dg_forecast": (_forecast(worst_dg["dg_err_kj_mol"], target_kj, worst_dg["dg_time_needed_ps"],
                                          self.simulated, self._replicas_needed(worst_dg["dg_time_needed_ps"]),
                                          self.time_known)
-                               if worst_dg else ("no temperature" if kt is None else "no second state"))}
+                               if worst_dg else (NO_CHANGES if self.frozen else
+                                                 "no temperature" if kt is None else "no second state"))}
         row = {"type": row.pop("type"), "verdict": _verdict(row, states, self.states), **row}
         return row, [{"type": self.name, **r} for r in states]
 
@@ -359,6 +371,31 @@ class _TypeSeries:
         return rows
 
 
+#: The forecast of a type whose torsions never changed state.
+NO_CHANGES = "none possible: no torsion of this type changed state"
+
+
+def _own_states(scheme, tb):
+    """{type: positions in ``tb.states`` of the states of its own part} for a set of schemes (each
+    type follows one part); empty for a single scheme (every type has every state)."""
+    if scheme is None or len(scheme.coded_parts()) == 1:
+        return {}
+    index = {label: i for i, label in enumerate(tb.states)}
+    return {t: [index[label] for label in scheme.states_of_type(t)] for t in tb.types}
+
+
+def _frozen_types(result):
+    """The types none of whose torsions changed state in any replica: every torsion spent all its
+    (defined) frames of each replica in one state (from the populations per replica)."""
+    table = getattr(result, "populations_by_replica", None)
+    if table is None or not len(table):
+        return set()
+    table = table[table["n_samples"] > 0]
+    top = table.groupby(["type", "replica", "torsion"], sort=False)["population"].max()
+    stuck = (top >= 1.0).groupby(level="type", sort=False).all()
+    return set(stuck.index[stuck.to_numpy()])
+
+
 def _span_of(part, rows):
     """(from, to) in ps of the blocks ``rows`` of a replica (to: the end of the last frame)."""
     first = part["first"][rows]
@@ -396,6 +433,10 @@ def _type_replicas(states, n_replicas):
 def _verdict(row, states, labels):
     """``converged`` or ``not converged: <reasons>`` in plain words."""
     reasons = []
+    if not row["state_changes_seen"]:
+        reasons.append("no torsion of this type changed state in the run (each stayed in the state it started "
+                       "in): its populations are those of the starting structures, and their errors and the "
+                       "sampling still needed cannot be estimated from it")
     if row["start"] == "drifts":
         st = next(r for r in states if r["state"] == row["drift_state"])
         reasons.append(f"the first {human_time(row['t0_ps'])} are not equilibrated ({st['state']} "
@@ -405,11 +446,11 @@ def _verdict(row, states, labels):
         reasons.append(f"the replicas disagree ({st['state']}: {', '.join(st['replica_populations'].split())}; "
                        f"chi-square p = {row['replica_p_value']:.1g})")
     if np.isfinite(row["n_effective"]) and row["n_effective"] < MIN_EFFECTIVE_SAMPLES:
-        reasons.append(f"fewer than {MIN_EFFECTIVE_SAMPLES} effective samples ({row['n_effective']:.0f})")
+        reasons.append(f"fewer than {MIN_EFFECTIVE_SAMPLES} effective samples ({row['n_effective']:.3g})")
     if np.isfinite(row["population_err_max"]) and row["population_err_max"] > row["target_error"]:
         reasons.append(f"population error {row['population_err_max']:.3f} above the target {row['target_error']:g}: "
                        f"{row['forecast']}")
-    if not np.isfinite(row["population_err_max"]):
+    if not np.isfinite(row["population_err_max"]) and row["state_changes_seen"]:
         reasons.append("no frames with this type defined")
     return "converged" if not reasons else "not converged: " + "; ".join(reasons)
 
