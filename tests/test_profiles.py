@@ -273,3 +273,29 @@ def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):
     for pa, pb in zip(paths_a, paths_b):
         if pa.endswith(".csv"):
             assert open(pa, "rb").read() == open(pb, "rb").read(), pa
+
+
+def test_pooled_state_errors_include_the_spread_between_frozen_torsions(tmp_path):
+    # 12 torsions of one type that never move, 4 held in gauche+ and 8 in anti: every block of
+    # time holds the same pooled counts, so a bootstrap over blocks alone gives an error of 0,
+    # while the torsions plainly differ. The type rows carry the run's pooled error (its
+    # random-effects spread, DerSimonian & Laird, Control. Clin. Trials 7 (1986) 177) and a
+    # free-energy error at least the delta method's from those population errors.
+    rng = np.random.default_rng(5)
+    held = np.r_[np.full(4, 65.0), np.full(8, 178.0)]
+    angles = held[None, :] + rng.normal(0.0, 4.0, size=(200, 12))
+    pdb, dcd = write_rotor_trajectory(str(tmp_path), "frozen", angles)
+    res = track(pdb, [dcd], torsions="rotatable", temperature_k=T)
+    pooled = res.populations_by_type.set_index("state")
+    assert pooled.loc["anti", "population"] == pytest.approx(8 / 12) and pooled.loc["anti", "population_err"] > 0.05
+    dg = free_energy_profiles(res, n_bootstrap=40).state_free_energies
+    types = dg[dg["torsion"].astype(str) == ""].set_index("state")
+    for state in ("anti", "gauche+"):
+        assert types.loc[state, "population_err"] == pytest.approx(pooled.loc[state, "population_err"], rel=1e-12)
+    p, q = pooled.loc["gauche+", "population"], pooled.loc["anti", "population"]
+    delta = KT * np.hypot(pooled.loc["gauche+", "population_err"] / p, pooled.loc["anti", "population_err"] / q)
+    assert types.loc["gauche+", "reference_state"] == "anti"
+    assert types.loc["gauche+", "free_energy_err_kj_mol"] >= delta * (1 - 1e-12)
+    # single torsions keep their own (time) errors: each never left its state
+    singles = dg[dg["torsion"].astype(str) != ""]
+    assert (singles["population_err"].fillna(0) == 0).all()

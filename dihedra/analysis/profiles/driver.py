@@ -33,7 +33,8 @@ from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_
                          _profiles_from_blocks, _unstack, bin_centres, bootstrap_multiplicities, check_bin_width,
                          check_estimate_options, effective_samples, rebin)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
-                       _state_free_energy_stack, state_blocks)
+                       _state_free_energy_stack, mixture_notice, state_blocks,
+                       with_spread_between_torsions)
 from .maps import check_pairs, pair_profiles
 
 #: Energy units a profile can be written in.
@@ -511,11 +512,15 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     if len(s.scheme.coded_parts()) > 1 and len(state_dg):   # a set of schemes: each type's own states
         own = [st in s.scheme.states_of_type(ty) for ty, st in zip(state_dg["type"], state_dg["state"])]
         state_dg = state_dg[np.asarray(own, dtype=bool)].reset_index(drop=True)
+    state_dg = with_spread_between_torsions(state_dg, getattr(result, "populations_by_type", None), s.kt)
     names = [("", t) for t in order] + (list(zip(labels, result.torsion_set.types)) if per_torsion else [])
     settings = _settings(s, temperature_k, n_bootstrap, seed, names, np.concatenate(bandwidths))
     pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,
                       state_free_energies=state_dg, by_type=by_type, settings=settings,
                       notices=_profile_notices(by_type, barriers))
+    mixture = mixture_notice(getattr(result, "populations_by_type", None))
+    if mixture:
+        pset.notices.append(mixture)
     if pairs:
         frames = []
         for a, b in pairs:

@@ -27,6 +27,7 @@ resample by gathering all arcs of similar length at once (:func:`_window_extremu
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 
 from ...numerics.extrema import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA,  # noqa: F401
                                  MIN_RESAMPLED_FRACTION, MINIMUM_FIELDS, _features_stack, _minima_stack,
@@ -162,3 +163,62 @@ def state_free_energies_of_probabilities(population, boot_population, state_labe
     resamples (n_bootstrap, n_states), e.g. reweighted ones; the same rows."""
     return _state_rows(_state_dg(np.asarray(population)[None, :], np.asarray(boot_population)[:, None, :], kt),
                        state_labels)
+
+
+def with_spread_between_torsions(state_dg, populations_by_type, kt):
+    """The type rows (``torsion == ""``) of a state free-energy table with errors that include the
+    spread between the torsions of a type, as the pooled populations of the run have them.
+
+    The bootstrap of a type's pooled counts resamples blocks of time only: torsions of one type in
+    different surroundings (the residues of a protein), or torsions that never change state, give
+    it a small error (0 where nothing moves) however much they differ. ``populations_by_type``
+    (the run's pooled table: mean over the torsions, its error with the random-effects spread where
+    they are heterogeneous) gives the population error that does not hide that; each type row
+    takes the larger of the two, and the free-energy error the larger of the bootstrap's and
+    kT sqrt((se_B / p_B)^2 + (se_A / p_A)^2) from those population errors (A the reference state;
+    the delta method without the covariance of the two, which is negative for populations that
+    sum to one: an upper estimate).
+
+    Returns
+    -------
+    DataFrame
+        ``state_dg`` with ``population_err`` and ``free_energy_err_kj_mol`` of the type rows raised
+        where the pooled table's errors are larger (rows of types or states it lacks unchanged).
+    """
+    if populations_by_type is None or not len(state_dg) or not len(populations_by_type):
+        return state_dg
+    pooled = populations_by_type.set_index(["type", "state"])["population_err"]
+    pooled = pooled[~pooled.index.duplicated()]
+    out = state_dg.copy()
+    rows = np.flatnonzero((out["torsion"].astype(str) == "").to_numpy())
+    typ, state, reference = (out[c].astype(str).to_numpy()[rows] for c in ("type", "state", "reference_state"))
+    key, ref = pd.MultiIndex.from_arrays([typ, state]), pd.MultiIndex.from_arrays([typ, reference])
+    se = pooled.reindex(key).to_numpy(dtype=float)
+    se_ref = pooled.reindex(ref).to_numpy(dtype=float)
+    p = out["population"].to_numpy(dtype=float)[rows]
+    p_ref = pd.Series(p, index=key).reindex(ref).to_numpy(dtype=float)
+    is_ref = state == reference
+    with np.errstate(invalid="ignore", divide="ignore"):
+        delta = np.where(is_ref, 0.0, kt * np.sqrt((se / p) ** 2 + (se_ref / p_ref) ** 2))
+    for column, floor in (("population_err", se), ("free_energy_err_kj_mol", np.where(p > 0, delta, np.nan))):
+        values = out[column].to_numpy(dtype=float).copy()
+        values[rows] = np.where(np.isfinite(floor), np.fmax(values[rows], floor), values[rows])
+        out[column] = values
+    return out
+
+
+def mixture_notice(populations_by_type):
+    """A sentence on the types whose torsions differ more than their errors explain (the run's
+    pooled table marks them ``heterogeneous``), or ``None``."""
+    if populations_by_type is None or "heterogeneous" not in populations_by_type:
+        return None
+    flagged = populations_by_type[populations_by_type["heterogeneous"].astype(bool)]
+    names = list(dict.fromkeys(flagged["type"].astype(str)))
+    if not names:
+        return None
+    shown = ", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else "")
+    return (f"{len(names)} type(s) pool torsions that differ more than their own error bars explain ({shown}; "
+            "heterogeneous in populations_by_type.csv): their pooled profiles, minima and barriers describe a "
+            "mixture, and their error bars cover sampling in time only; their state populations and free "
+            "energies include the spread between the torsions. The profiles of single torsions (without "
+            "--types-only) show how they differ.")
