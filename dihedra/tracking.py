@@ -119,7 +119,8 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
     scheme : str or StateScheme, optional
         State scheme name or TOML file (see :func:`dihedra.selection.schemes.get_scheme`); default
         ``protein`` when only protein torsions are chosen (cis/trans omega, side-chain rotamer
-        wells), else ``anti-gauche``. Chosen per torsion type: ``"auto"`` (from the chemistry of
+        wells), ``nucleic`` for ``nucleic-backbone`` alone (syn/anti chi, sugar pucker from
+        delta), else ``anti-gauche``. Chosen per torsion type: ``"auto"`` (from the chemistry of
         the central bond, :mod:`dihedra.selection.chemistry`), ``"basins"`` (the free-energy basins
         of the sampled distribution, found by a first pass; needs ``temperature_k``; see
         :mod:`dihedra.trajectory.basins`), or a scheme map (a TOML file of rules, see

@@ -95,6 +95,28 @@ def test_a_single_frame_has_no_errors(tmp_path, capsys):
     assert "± n/a" in html and "± 0.000" not in html
 
 
+def test_rna_backbone_gets_the_nucleic_scheme_and_the_a_form_states(tmp_path):
+    # MDAnalysisTests' RNA (CHARMM36, one frame) is an A-form helix: chi anti (about -160),
+    # delta in the C3'-endo range (about 80), and the A-form backbone alpha g-, beta t, gamma g+,
+    # epsilon t, zeta g- (Saenger, Principles of Nucleic Acid Structure, Springer 1984, from
+    # memory); syn and anti as IUPAC-IUB, Eur. J. Biochem. 131 (1983) 9 defines them
+    res = dihedra.track(data.RNA_PSF, data.RNA_PDB, torsions="nucleic-backbone", out=str(tmp_path / "rna"))
+    assert res.scheme.name == "nucleic"
+    pops = res.populations
+    assert set(pops.loc[pops["type"] == "GUA:chi", "state"]) == {"anti", "syn"}
+    assert set(pops.loc[pops["type"] == "GUA:delta", "state"]) == {"C3'-endo", "C2'-endo", "other"}
+    held = pops[pops["population"] == 1.0]   # (one frame: every torsion in one state)
+    name = held["type"].str.partition(":")[2]
+    majority = {"chi": "anti", "delta": "C3'-endo", "alpha": "gauche-", "beta": "anti", "gamma": "gauche+",
+                "epsilon": "anti", "zeta": "gauche-"}
+    for angle, state in majority.items():
+        states = held.loc[name == angle, "state"]
+        assert (states == state).mean() > 0.75, (angle, states.value_counts().to_dict())
+    assert (held.loc[name == "chi", "state"] == "anti").all()
+    schemes = pd.read_csv(tmp_path / "rna" / "schemes.csv")
+    assert set(schemes.loc[schemes["type"].str.endswith(":delta"), "scheme"]) == {"sugar-pucker"}
+
+
 def test_terminal_and_internal_residues_are_named_plainly(adk_backbone):
     # the first residue of adenylate kinase is MET1 (no phi: nothing precedes it); the five
     # internal methionines have phi, psi and omega

@@ -150,3 +150,23 @@ def test_protein_schemes_by_their_definitions():
     assert default_scheme(["protein-backbone", "protein-sidechains"]) == "protein"
     assert default_scheme("rotatable") == "anti-gauche"
     assert default_scheme(["protein-backbone", "rotatable"]) == "anti-gauche"
+
+
+def test_syn_anti_and_sugar_pucker_sectors():
+    # IUPAC-IUB, Eur. J. Biochem. 131 (1983) 9: syn = chi 0 +- 90, anti = chi 180 +- 90 (the
+    # boundary angles themselves are ours: anti closed at +-90, as trans is for omega)
+    from dihedra.selection.schemes import sugar_pucker, syn_anti
+
+    s = syn_anti()
+    chi = [-160.0, -105.0, -90.0, -89.9, 0.0, 60.0, 89.9, 90.0, 180.0]
+    assert [s.labels[c] for c in s.assign(chi)] == ["anti", "anti", "anti", "syn", "syn", "syn", "syn", "anti",
+                                                   "anti"]
+    # delta near 80 (C3'-endo, A-form) and near 145 (C2'-endo, B-form): Saenger 1984, from memory
+    p = sugar_pucker()
+    delta = [80.0, 115.0, 115.1, 145.0, 180.0, -179.0, -20.0, 0.0, 0.1]
+    assert [p.labels[c] for c in p.assign(delta)] == ["C3'-endo", "C3'-endo", "C2'-endo", "C2'-endo", "C2'-endo",
+                                                     "other", "other", "other", "C3'-endo"]
+    nucleic = get_scheme("nucleic")
+    assert nucleic.states_of_type("DA:chi") == ["anti", "syn"]
+    assert nucleic.states_of_type("U:delta") == ["C3'-endo", "C2'-endo", "other"]
+    assert nucleic.states_of_type("DG:alpha") == ["anti", "gauche+", "gauche-"]

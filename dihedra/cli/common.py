@@ -22,14 +22,15 @@ def add_torsion_options(parser, required=True):
 def add_scheme_option(parser):
     parser.add_argument("--scheme", default=None, metavar="NAME",
                         help="state scheme: anti-gauche, staggered-eclipsed[:N], klyne-prelog, cis-trans, "
-                             "coplanar-perpendicular, symmetric-rotor, chi-rotamers, protein (cis-trans omega, "
-                             "rotamer wells of chi, anti-gauche otherwise), or a .toml file of named sectors; "
+                             "coplanar-perpendicular, symmetric-rotor, syn-anti, sugar-pucker, chi-rotamers, protein "
+                             "(cis-trans omega, rotamer wells of chi, anti-gauche otherwise), nucleic (syn-anti "
+                             "chi, sugar-pucker delta, anti-gauche otherwise), or a .toml file of named sectors; "
                              "chosen per torsion type: auto (from the chemistry of the central bond: 3-fold "
                              "sp3-sp3, 6- or 2-fold sp2-sp3, cis/trans amides, one state for CH3/CF3 rotors, "
                              "ring torsions flagged), basins (the free-energy basins of the sampled distribution, "
                              "by a first pass; needs --temperature), or a .toml scheme map of [[rule]] tables "
                              "(bond/types/torsions -> scheme); default: protein when only protein torsions are "
-                             "tracked, else anti-gauche")
+                             "tracked, nucleic for nucleic-backbone alone, else anti-gauche")
 
 
 class _Extend(argparse.Action):

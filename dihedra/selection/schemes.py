@@ -60,7 +60,7 @@ UNDEFINED = -1
 NO_CORE = -2
 
 BUILTIN_SCHEMES = ("anti-gauche", "staggered-eclipsed", "klyne-prelog", "cis-trans", "coplanar-perpendicular",
-                   "symmetric-rotor", "chi-rotamers", "protein")
+                   "symmetric-rotor", "syn-anti", "sugar-pucker", "chi-rotamers", "protein", "nucleic")
 #: Schemes chosen per torsion type when the torsions are known (see :mod:`dihedra.selection.choice`).
 CHOSEN_SCHEMES = ("auto", "basins")
 
@@ -316,6 +316,20 @@ def chi_sp2_symmetric(name="chi-sp2-symmetric"):
                       labels=["0/180", "90/-90"])
 
 
+def syn_anti():
+    """anti (\|chi\| >= 90) and syn of the glycosidic torsion chi of a nucleotide: 180 +- 90 and
+    0 +- 90 (IUPAC-IUB, Eur. J. Biochem. 131 (1983) 9); A- and B-form duplexes are anti."""
+    return _from_arcs("syn-anti", [("anti", 90.0, True), ("syn", -90.0, False)], labels=["anti", "syn"])
+
+
+def sugar_pucker():
+    """Sugar pucker from delta (C5'-C4'-C3'-O3'): ``C3'-endo`` (0 < delta <= 115; A-form, RNA, delta
+    near 80), ``C2'-endo`` (above; B-DNA, near 145; Saenger 1984, from memory; the split is common
+    practice) and ``other`` (negative delta, which the ring does not reach)."""
+    return _from_arcs("sugar-pucker", [("C3'-endo", 0.0, False), ("C2'-endo", 115.0, False),
+                                       ("other", 180.0, False)], labels=["C3'-endo", "C2'-endo", "other"])
+
+
 def coplanar_perpendicular():
     """``0/180`` and ``90/-90``: the two wells of a torsion about a bond to a planar end with two
     identical substituents (phenyl, carboxylate, nitro), whose angle is defined modulo 180 (the
@@ -341,9 +355,10 @@ SP2_CHI = {("PHE", "chi2"): "symmetric", ("TYR", "chi2"): "symmetric", ("ASP", "
 COMPOSITES = {
     "protein": (("anti-gauche", "cis-trans", "chi-sp3", "chi-sp2", "chi-sp2-symmetric"), "protein"),
     "chi-rotamers": (("chi-sp3", "chi-sp2", "chi-sp2-symmetric"), "chi"),
+    "nucleic": (("anti-gauche", "syn-anti", "sugar-pucker"), "nucleic"),
 }
 _PARTS = {"anti-gauche": lambda: anti_gauche(), "cis-trans": cis_trans, "chi-sp3": chi_sp3, "chi-sp2": chi_sp2,
-          "chi-sp2-symmetric": chi_sp2_symmetric}
+          "chi-sp2-symmetric": chi_sp2_symmetric, "syn-anti": syn_anti, "sugar-pucker": sugar_pucker}
 
 
 def _part_name(rule, torsion_type):
@@ -351,6 +366,8 @@ def _part_name(rule, torsion_type):
     from .residue_names import canonical_residue_name
 
     residue, _, name = str(torsion_type).partition(":")
+    if rule == "nucleic":   # (nucleic_backbone_torsions: alpha .. zeta and the glycosidic chi)
+        return {"chi": "syn-anti", "delta": "sugar-pucker"}.get(name, "anti-gauche")
     sp2 = SP2_CHI.get((canonical_residue_name(residue), name))
     side = name.startswith("chi") and name[3:].isdigit()
     if rule == "chi" or side:
@@ -367,7 +384,9 @@ class SchemeSet:
     torsion type its part (``for_type``) by a fixed rule; the state labels of all parts together
     are the labels of the set, and a torsion takes only those of its part. Built-in sets:
     ``protein`` (omega: ``cis-trans``; chi1..chi5: ``chi-rotamers``; other torsions:
-    ``anti-gauche``) and ``chi-rotamers`` (every torsion by the side-chain rule).
+    ``anti-gauche``), ``chi-rotamers`` (every torsion by the side-chain rule) and ``nucleic``
+    (chi: ``syn-anti``; delta: ``sugar-pucker``; alpha, beta, gamma, epsilon, zeta:
+    ``anti-gauche``).
 
     Examples
     --------
@@ -476,10 +495,13 @@ def scheme_by_type(name, schemes_of_types):
 
 def default_scheme(torsions):
     """The scheme a run uses when none is given: ``protein`` when every specification is a
-    protein one (``protein-backbone``, ``protein-sidechains``), else ``anti-gauche``."""
+    protein one (``protein-backbone``, ``protein-sidechains``), ``nucleic`` for ``nucleic-backbone``
+    alone, else ``anti-gauche``."""
     specs = [torsions] if isinstance(torsions, str) else list(torsions or []) if not hasattr(torsions, "torsions") else []
     if specs and all(str(x).strip() in ("protein-backbone", "protein-sidechains") for x in specs):
         return "protein"
+    if specs and all(str(x).strip() == "nucleic-backbone" for x in specs):
+        return "nucleic"
     return "anti-gauche"
 
 
@@ -533,8 +555,8 @@ def scheme_from_mapping(data, where="scheme"):
 
 def get_scheme(spec):
     """A scheme by name (``anti-gauche``, ``staggered-eclipsed[:N]``, ``klyne-prelog``,
-    ``cis-trans``, ``coplanar-perpendicular``, ``symmetric-rotor``; the sets ``chi-rotamers`` and
-    ``protein``) or TOML path. ``auto``, ``basins`` and scheme maps are chosen per torsion type by
+    ``cis-trans``, ``coplanar-perpendicular``, ``symmetric-rotor``, ``syn-anti``,
+    ``sugar-pucker``; the sets ``chi-rotamers``, ``protein`` and ``nucleic``) or TOML path. ``auto``, ``basins`` and scheme maps are chosen per torsion type by
     :func:`dihedra.selection.choice.choose_schemes`.
 
     A :class:`StateScheme` or :class:`SchemeSet` passes through unchanged.
@@ -552,6 +574,10 @@ def get_scheme(spec):
         return coplanar_perpendicular()
     if text == "symmetric-rotor":
         return symmetric_rotor()
+    if text == "syn-anti":
+        return syn_anti()
+    if text == "sugar-pucker":
+        return sugar_pucker()
     if text in CHOSEN_SCHEMES:
         raise SchemeError(f"the scheme {text!r} is chosen per torsion type from the topology"
                           f"{' and the trajectory' if text == 'basins' else ''}; give it to track, "

@@ -58,12 +58,14 @@ class TorsionStates(TorsionPass):
         torsions (see :func:`dihedra.select_torsions`); or a ready :class:`TorsionSet`.
     scheme : str or StateScheme, optional
         State scheme: ``"anti-gauche"``, ``"staggered-eclipsed[:N]"``, ``"klyne-prelog"``,
-        ``"cis-trans"``, ``"coplanar-perpendicular"``, ``"symmetric-rotor"``, the sets
-        ``"chi-rotamers"`` and ``"protein"``, a TOML file of named sectors, or a
+        ``"cis-trans"``, ``"coplanar-perpendicular"``, ``"symmetric-rotor"``, ``"syn-anti"``,
+        ``"sugar-pucker"``, the sets ``"chi-rotamers"``, ``"protein"`` and ``"nucleic"``, a TOML
+        file of named sectors, or a
         :class:`StateScheme`; or chosen per torsion type: ``"auto"`` (the chemistry of the central
         bond), ``"basins"`` (the basins of the sampled distribution, by a first pass in ``run()``;
         needs ``temperature_k``) or a scheme map (TOML; see :mod:`dihedra.selection.choice`).
-        Default: ``"protein"`` when only protein torsions are chosen, else ``"anti-gauche"``.
+        Default: ``"protein"`` when only protein torsions are chosen, ``"nucleic"`` for
+        ``"nucleic-backbone"`` alone, else ``"anti-gauche"``.
     weights : array-like, optional
         One weight per analysed frame (reweighting a biased run).
     keep_states : bool

@@ -75,6 +75,8 @@ STATE_COLOURS = {
     "chi-sp2-symmetric": {"0/180": OKABE_ITO["blue"], "90/-90": OKABE_ITO["orange"]},
     "coplanar-perpendicular": {"0/180": OKABE_ITO["blue"], "90/-90": OKABE_ITO["orange"]},
     "symmetric-rotor": {"rotor": OKABE_ITO["blue"]},
+    "syn-anti": {"anti": OKABE_ITO["blue"], "syn": OKABE_ITO["vermillion"]},
+    "sugar-pucker": {"C2'-endo": OKABE_ITO["blue"], "C3'-endo": OKABE_ITO["orange"], "other": OKABE_ITO["bluish green"]},
 }
 
 #: Colours of custom schemes, in the order of their state labels (repeats after seven states).
