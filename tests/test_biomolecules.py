@@ -117,6 +117,24 @@ def test_rna_backbone_gets_the_nucleic_scheme_and_the_a_form_states(tmp_path):
     assert set(schemes.loc[schemes["type"].str.endswith(":delta"), "scheme"]) == {"sugar-pucker"}
 
 
+def test_proline_chi1_and_chi2_give_one_ring_pucker(tmp_path):
+    # the pyrrolidine ring keeps chi1 and chi2 near +-30 with opposite signs: C-gamma endo (chi1 > 0,
+    # chi2 < 0) or exo (chi1 < 0, chi2 > 0) (Milner-White, Bell & Maccallum, J. Mol. Biol. 228
+    # (1992) 725, from memory), so the two torsions of one proline name the same pucker in (nearly)
+    # every frame; MDAnalysisTests' adenylate kinase (OPLS-AA, 10 frames)
+    res = dihedra.track(data.GRO, data.XTC, torsions="protein-sidechains")
+    pro = res.torsions[res.torsions["type"].isin(["PRO:chi1", "PRO:chi2"])]
+    assert len(pro) >= 10
+    assert res.scheme.states_of_type("PRO:chi1") == ["endo", "exo"]
+    states = res.states()
+    for residue, rows in pro.groupby("group"):
+        chi1, chi2 = (rows.loc[rows["type"] == f"PRO:{c}", "torsion"].iloc[0] for c in ("chi1", "chi2"))
+        assert (states[chi1] == states[chi2]).mean() >= 0.9, residue
+    codes = set(np.unique(states[list(pro["torsion"])].to_numpy()))
+    assert codes <= {res.scheme.labels.index("endo"), res.scheme.labels.index("exo")}
+    assert res.scheme.states_of_type("LEU:chi1") == ["g+", "t", "g-"]
+
+
 def test_terminal_and_internal_residues_are_named_plainly(adk_backbone):
     # the first residue of adenylate kinase is MET1 (no phi: nothing precedes it); the five
     # internal methionines have phi, psi and omega

@@ -145,7 +145,7 @@ def test_protein_schemes_by_their_definitions():
     assert protein.states_of_type("ALA:psi") == ["anti", "gauche+", "gauche-"]
     assert protein.states_of_type("G:chi") == ["anti", "gauche+", "gauche-"]
     # the default scheme: protein for protein torsions only
-    from dihedra.selection.schemes import default_scheme
+    from dihedra.selection.choice import default_scheme
 
     assert default_scheme(["protein-backbone", "protein-sidechains"]) == "protein"
     assert default_scheme("rotatable") == "anti-gauche"

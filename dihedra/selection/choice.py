@@ -40,7 +40,7 @@ from dataclasses import dataclass, field
 import pandas as pd
 
 from ..errors import SchemeError, SelectionError, read_toml
-from .schemes import SchemeSet, StateScheme, anti_gauche, default_scheme, get_scheme, scheme_by_type
+from .schemes import SchemeSet, StateScheme, anti_gauche, get_scheme, scheme_by_type
 from .specs import select_torsions
 
 #: The placeholder of a type whose states come from the sampled distribution.
@@ -120,6 +120,18 @@ def _given(name, scheme, tset, reason):
     by_type = {t: (scheme.parts[scheme.part_index(t)] if isinstance(scheme, SchemeSet) else scheme)
                for t in _types(tset)}
     return SchemeChoice(name=name, by_type=by_type, reasons={t: reason for t in by_type}, fixed=scheme)
+
+
+def default_scheme(torsions):
+    """The scheme a run uses when none is given: ``protein`` when every specification is a
+    protein one (``protein-backbone``, ``protein-sidechains``), ``nucleic`` for ``nucleic-backbone``
+    alone, else ``anti-gauche``."""
+    specs = [torsions] if isinstance(torsions, str) else list(torsions or []) if not hasattr(torsions, "torsions") else []
+    if specs and all(str(x).strip() in ("protein-backbone", "protein-sidechains") for x in specs):
+        return "protein"
+    if specs and all(str(x).strip() == "nucleic-backbone" for x in specs):
+        return "nucleic"
+    return "anti-gauche"
 
 
 def choose_schemes(spec, universe, tset, torsions=None):

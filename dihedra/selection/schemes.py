@@ -317,7 +317,7 @@ def chi_sp2_symmetric(name="chi-sp2-symmetric"):
 
 
 def syn_anti():
-    """anti (\|chi\| >= 90) and syn of the glycosidic torsion chi of a nucleotide: 180 +- 90 and
+    """anti (\\|chi\\| >= 90) and syn of the glycosidic torsion chi of a nucleotide: 180 +- 90 and
     0 +- 90 (IUPAC-IUB, Eur. J. Biochem. 131 (1983) 9); A- and B-form duplexes are anti."""
     return _from_arcs("syn-anti", [("anti", 90.0, True), ("syn", -90.0, False)], labels=["anti", "syn"])
 
@@ -328,6 +328,15 @@ def sugar_pucker():
     practice) and ``other`` (negative delta, which the ring does not reach)."""
     return _from_arcs("sugar-pucker", [("C3'-endo", 0.0, False), ("C2'-endo", 115.0, False),
                                        ("other", 180.0, False)], labels=["C3'-endo", "C2'-endo", "other"])
+
+
+def proline_pucker(chi):
+    """The pyrrolidine pucker of proline from its ``"chi1"`` or ``"chi2"``: the ring keeps both near
+    +-30, so the g+/t/g- wells do not apply; ``endo`` (C-gamma endo, DOWN: chi1 > 0, chi2 < 0) and
+    ``exo`` (C-gamma exo, UP: chi1 < 0, chi2 > 0) (Milner-White, Bell & Maccallum, J. Mol. Biol.
+    228 (1992) 725, from memory)."""
+    up, down = ("endo", "exo") if chi == "chi1" else ("exo", "endo")   # (the states of (0, 180] and (-180, 0])
+    return _from_arcs(f"proline-{chi}", [(up, 0.0, False), (down, 180.0, False)], labels=["endo", "exo"])
 
 
 def coplanar_perpendicular():
@@ -353,12 +362,14 @@ SP2_CHI = {("PHE", "chi2"): "symmetric", ("TYR", "chi2"): "symmetric", ("ASP", "
 
 #: The parts of the composite schemes and the rule that gives each torsion its part.
 COMPOSITES = {
-    "protein": (("anti-gauche", "cis-trans", "chi-sp3", "chi-sp2", "chi-sp2-symmetric"), "protein"),
-    "chi-rotamers": (("chi-sp3", "chi-sp2", "chi-sp2-symmetric"), "chi"),
+    "protein": (("anti-gauche", "cis-trans", "chi-sp3", "chi-sp2", "chi-sp2-symmetric", "proline-chi1",
+                 "proline-chi2"), "protein"),
+    "chi-rotamers": (("chi-sp3", "chi-sp2", "chi-sp2-symmetric", "proline-chi1", "proline-chi2"), "chi"),
     "nucleic": (("anti-gauche", "syn-anti", "sugar-pucker"), "nucleic"),
 }
 _PARTS = {"anti-gauche": lambda: anti_gauche(), "cis-trans": cis_trans, "chi-sp3": chi_sp3, "chi-sp2": chi_sp2,
-          "chi-sp2-symmetric": chi_sp2_symmetric, "syn-anti": syn_anti, "sugar-pucker": sugar_pucker}
+          "chi-sp2-symmetric": chi_sp2_symmetric, "syn-anti": syn_anti, "sugar-pucker": sugar_pucker,
+          "proline-chi1": lambda: proline_pucker("chi1"), "proline-chi2": lambda: proline_pucker("chi2")}
 
 
 def _part_name(rule, torsion_type):
@@ -370,6 +381,8 @@ def _part_name(rule, torsion_type):
         return {"chi": "syn-anti", "delta": "sugar-pucker"}.get(name, "anti-gauche")
     sp2 = SP2_CHI.get((canonical_residue_name(residue), name))
     side = name.startswith("chi") and name[3:].isdigit()
+    if canonical_residue_name(residue) == "PRO" and name in ("chi1", "chi2") and (rule == "chi" or side):
+        return f"proline-{name}"
     if rule == "chi" or side:
         return {"symmetric": "chi-sp2-symmetric", "planar": "chi-sp2"}.get(sp2, "chi-sp3")
     return "cis-trans" if name == "omega" else "anti-gauche"
@@ -493,18 +506,6 @@ def scheme_by_type(name, schemes_of_types):
                      assignment=tuple((str(t), index[p]) for t, p in schemes_of_types.items()))
 
 
-def default_scheme(torsions):
-    """The scheme a run uses when none is given: ``protein`` when every specification is a
-    protein one (``protein-backbone``, ``protein-sidechains``), ``nucleic`` for ``nucleic-backbone``
-    alone, else ``anti-gauche``."""
-    specs = [torsions] if isinstance(torsions, str) else list(torsions or []) if not hasattr(torsions, "torsions") else []
-    if specs and all(str(x).strip() in ("protein-backbone", "protein-sidechains") for x in specs):
-        return "protein"
-    if specs and all(str(x).strip() == "nucleic-backbone" for x in specs):
-        return "nucleic"
-    return "anti-gauche"
-
-
 def scheme_from_dict(d):
     """A :class:`StateScheme` or :class:`SchemeSet` from its ``to_dict``."""
     if "parts" in d:
@@ -554,9 +555,8 @@ def scheme_from_mapping(data, where="scheme"):
 
 
 def get_scheme(spec):
-    """A scheme by name (``anti-gauche``, ``staggered-eclipsed[:N]``, ``klyne-prelog``,
-    ``cis-trans``, ``coplanar-perpendicular``, ``symmetric-rotor``, ``syn-anti``,
-    ``sugar-pucker``; the sets ``chi-rotamers``, ``protein`` and ``nucleic``) or TOML path. ``auto``, ``basins`` and scheme maps are chosen per torsion type by
+    """A scheme by name (one of :data:`BUILTIN_SCHEMES`; ``staggered-eclipsed:N``) or TOML path.
+    ``auto``, ``basins`` and scheme maps are chosen per torsion type by
     :func:`dihedra.selection.choice.choose_schemes`.
 
     A :class:`StateScheme` or :class:`SchemeSet` passes through unchanged.

@@ -7,8 +7,8 @@ colour-blind-safe palette of Okabe & Ito (2008) (distinguishable under the commo
 vision deficiency, Wong, Nat. Methods 8 (2011) 441). States that play the same part share a hue
 across schemes, so a figure reads the same whichever scheme made it:
 
-=====================  ==============  ==========
-state                  colour          hex
+=====================================  ==============  ==========
+state                                  colour          hex
 =====================================  ==============  ==========
 anti, ap, staggered, trans, t, 180     blue            #0072B2
 gauche+, +sc, g+, +90, 90/-90          orange          #E69F00
@@ -17,6 +17,12 @@ eclipsed, sp, cis, 0                   vermillion      #D55E00
 +ac                                    sky blue        #56B4E9
 -ac                                    bluish green    #009E73
 0/180, rotor                           blue            #0072B2
+syn (nucleotide chi)                   vermillion      #D55E00
+C2'-endo (delta)                       blue            #0072B2
+C3'-endo (delta)                       orange          #E69F00
+other (delta)                          bluish green    #009E73
+endo (proline chi1, chi2)              sky blue        #56B4E9
+exo (proline chi1, chi2)               bluish green    #009E73
 =====================================  ==============  ==========
 
 The protein schemes (``cis-trans``, the rotamer wells of ``chi-rotamers``, and ``protein``, a set
@@ -76,7 +82,10 @@ STATE_COLOURS = {
     "coplanar-perpendicular": {"0/180": OKABE_ITO["blue"], "90/-90": OKABE_ITO["orange"]},
     "symmetric-rotor": {"rotor": OKABE_ITO["blue"]},
     "syn-anti": {"anti": OKABE_ITO["blue"], "syn": OKABE_ITO["vermillion"]},
-    "sugar-pucker": {"C2'-endo": OKABE_ITO["blue"], "C3'-endo": OKABE_ITO["orange"], "other": OKABE_ITO["bluish green"]},
+    "sugar-pucker": {"C2'-endo": OKABE_ITO["blue"], "C3'-endo": OKABE_ITO["orange"],
+                     "other": OKABE_ITO["bluish green"]},
+    "proline-chi1": {"endo": OKABE_ITO["sky blue"], "exo": OKABE_ITO["bluish green"]},
+    "proline-chi2": {"endo": OKABE_ITO["sky blue"], "exo": OKABE_ITO["bluish green"]},
 }
 
 #: Colours of custom schemes, in the order of their state labels (repeats after seven states).
