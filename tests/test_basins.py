@@ -81,7 +81,11 @@ def test_a_shallow_dip_is_no_basin_and_labels_follow_the_sectors():
     schemes, table, _ = find_basins(_hist_blocks(angles), np.zeros(16, int), ["A"], ["A"], T, np.array([4e5]))
     assert schemes["A"].labels == ("anti",) and len(table) == 1
     assert basin_labels([178.0, 5.0]) == ["trans", "cis"]          # a planar pair
-    assert basin_labels([178.0, 5.0, 70.0]) == ["anti", "sp", "gauche+"]
+    # one naming system per type (Klyne & Prelog, Experientia 16 (1960) 521, sectors): words only
+    # where every minimum lies in ap, +sc or -sc; an aromatic chi2 at +82 and -96 is +sc and -ac
+    assert basin_labels([178.0, 5.0, 70.0]) == ["ap", "sp", "+sc"]
+    assert basin_labels([82.0, -96.0]) == ["+sc", "-ac"]
+    assert basin_labels([178.0, -65.0]) == ["anti", "gauche-"]
     assert basin_labels([40.0, 85.0]) == ["gauche+@40", "gauche+@85"]  # one sector, told apart
     s = basin_scheme([0.0, 180.0], [90.0, -90.0])
     assert s.labels == ("trans", "cis") and [s.labels[c] for c in s.assign([10.0, 170.0, 90.0])] == \

@@ -20,9 +20,10 @@ Labels
 A basin is named by the Klyne-Prelog sector of its minimum (Klyne & Prelog, Experientia 16 (1960)
 521), in words of the trade where they fit, so that a label means the same position in every type
 and run: a type whose minima all lie in sp and ap and include one in sp is a planar pair, ``cis``
-(sp) and ``trans`` (ap); otherwise ap is ``anti``, +sc ``gauche+``, -sc ``gauche-``, and sp, +ac,
--ac keep the sector names. Two minima in one sector are told apart by their angle
-(``gauche+@45``, ``gauche+@85``).
+(sp) and ``trans`` (ap); one whose minima all lie in ap, +sc and -sc has ``anti``, ``gauche+`` and
+``gauche-``; any other keeps the sector names for all its basins (``+sc`` and ``-ac``, not
+``gauche+`` beside ``-ac``), so that one type speaks one naming system. Two minima in one sector
+are told apart by their angle (``gauche+@45``, ``gauche+@85``).
 
 Cost
 ----
@@ -78,7 +79,9 @@ def basin_labels(minima_deg):
     kp = klyne_prelog()
     sectors = [kp.labels[c] for c in kp.assign(np.asarray(minima_deg, dtype=float))]
     planar = "sp" in sectors and set(sectors) <= {"sp", "ap"}
-    words = {"sp": "cis", "ap": "trans"} if planar else _WORDS
+    # one naming system per type: words only where every minimum has one (a basin at +sc beside
+    # one at -ac stays +sc, not gauche+)
+    words = {"sp": "cis", "ap": "trans"} if planar else _WORDS if set(sectors) <= set(_WORDS) else {}
     base = [words.get(s, s) for s in sectors]
     return [b if base.count(b) == 1 else f"{b}@{round(float(x)):d}" for b, x in zip(base, minima_deg)]
 
