@@ -104,7 +104,7 @@ def test_rna_backbone_gets_the_nucleic_scheme_and_the_a_form_states(tmp_path):
     assert res.scheme.name == "nucleic"
     pops = res.populations
     assert set(pops.loc[pops["type"] == "GUA:chi", "state"]) == {"anti", "syn"}
-    assert set(pops.loc[pops["type"] == "GUA:delta", "state"]) == {"C3'-endo", "C2'-endo", "other"}
+    assert set(pops.loc[pops["type"] == "GUA:delta", "state"]) == {"C3'-endo", "C2'-endo", "atypical"}
     held = pops[pops["population"] == 1.0]   # (one frame: every torsion in one state)
     name = held["type"].str.partition(":")[2]
     majority = {"chi": "anti", "delta": "C3'-endo", "alpha": "gauche-", "beta": "anti", "gamma": "gauche+",

@@ -165,8 +165,8 @@ def test_syn_anti_and_sugar_pucker_sectors():
     p = sugar_pucker()
     delta = [80.0, 115.0, 115.1, 145.0, 180.0, -179.0, -20.0, 0.0, 0.1]
     assert [p.labels[c] for c in p.assign(delta)] == ["C3'-endo", "C3'-endo", "C2'-endo", "C2'-endo", "C2'-endo",
-                                                     "other", "other", "other", "C3'-endo"]
+                                                     "atypical", "atypical", "atypical", "C3'-endo"]
     nucleic = get_scheme("nucleic")
     assert nucleic.states_of_type("DA:chi") == ["anti", "syn"]
-    assert nucleic.states_of_type("U:delta") == ["C3'-endo", "C2'-endo", "other"]
+    assert nucleic.states_of_type("U:delta") == ["C3'-endo", "C2'-endo", "atypical"]
     assert nucleic.states_of_type("DG:alpha") == ["anti", "gauche+", "gauche-"]

@@ -325,9 +325,9 @@ def syn_anti():
 def sugar_pucker():
     """Sugar pucker from delta (C5'-C4'-C3'-O3'): ``C3'-endo`` (0 < delta <= 115; A-form, RNA, delta
     near 80), ``C2'-endo`` (above; B-DNA, near 145; Saenger 1984, from memory; the split is common
-    practice) and ``other`` (negative delta, which the ring does not reach)."""
+    practice) and ``atypical`` (negative delta, which the ring does not reach)."""
     return _from_arcs("sugar-pucker", [("C3'-endo", 0.0, False), ("C2'-endo", 115.0, False),
-                                       ("other", 180.0, False)], labels=["C3'-endo", "C2'-endo", "other"])
+                                       ("atypical", 180.0, False)], labels=["C3'-endo", "C2'-endo", "atypical"])
 
 
 def proline_pucker(chi):
