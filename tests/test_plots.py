@@ -157,6 +157,20 @@ def test_state_raster_is_the_most_frequent_state_per_column(full_folder):
     assert {h.get_label() for h in ax.get_legend().legend_handles} - {""} == set(scheme.labels)
 
 
+def test_state_raster_note_says_what_was_chosen_and_thins_only_when_it_must(full_folder):
+    labels = list(pd.read_csv(os.path.join(full_folder, "torsions.csv"))["torsion"])
+    chosen = labels[:3]
+    whole = figures.read_state_raster(full_folder, torsions=chosen, selection="the first residues")
+    assert whole.rows == chosen
+    assert whole.description.startswith(f"the 3 torsions of the first residues (of {len(labels)} in the folder)")
+    assert "evenly spaced" not in whole.description   # nothing was left out
+    thinned = figures.read_state_raster(full_folder, torsions=chosen, max_rows=2, selection="the first residues")
+    assert len(thinned.rows) == 2
+    assert thinned.description.startswith(f"2 of the 3 torsions of the first residues (evenly spaced in every "
+                                          f"group; of {len(labels)} in the folder)")
+    assert figures.read_state_raster(full_folder).description.startswith(f"all {len(labels)} torsions")
+
+
 def test_state_raster_thins_thousands_of_torsions(tmp_path):
     # a synthetic states.parquet of 2000 torsions, read in chunks (in the layout of earlier
     # versions, one column per torsion, which the reader still reads)
@@ -274,6 +288,69 @@ def test_population_bars_heights_colours_and_sources():
     assert {t.get_text() for t in ax.get_legend().get_texts()} - {""} == {"sampled", "predicted from the scan"}
 
 
+#: Residue types whose chi1 a review drew as one unreadable population figure (17 types).
+CHI1_TYPES = [f"{r}:chi1" for r in "ARG ASN ASP CYS GLN GLU HIS ILE LEU LYS MET PHE PRO SER THR TYR VAL".split()]
+
+
+def many_type_populations(types, seed=4):
+    scheme = get_scheme("anti-gauche")
+    rng = np.random.default_rng(seed)
+    p = rng.dirichlet(np.ones(3), size=len(types))
+    return scheme, pd.DataFrame({"type": np.repeat(types, 3), "state": list(scheme.labels) * len(types),
+                                 "population": p.ravel(), "population_err": 0.05 * np.ones(p.size)})
+
+
+@pytest.mark.parametrize("types", [CHI1_TYPES, [f"MOL{k}:C1-C2-C3-C4" for k in range(40)]],
+                         ids=["17 chi1 types", "40 long names"])
+def test_population_figure_of_many_types_keeps_every_name_apart(types):
+    import matplotlib.pyplot as plt
+
+    scheme, pops = many_type_populations(types)
+    with figures.style():
+        ax = figures.plot_populations(pops, scheme)   # a figure of its own: it grows with the types
+        fig = ax.figure
+        try:
+            boxes = _assert_laid_out(fig, f"{len(types)} types")
+            drawn = {t.replace("\n", "") for t, _ in boxes}
+            assert set(types) <= drawn   # every type named, whole
+            assert fig.get_figwidth() == pytest.approx(figures.SINGLE_COLUMN_IN)
+            assert fig.get_figheight() > 2.4 + 0.05 * len(types)
+            # the bars still show the populations, one per type and state in the state colour
+            bars = [b for b in ax.patches if isinstance(b, Rectangle)]
+            lengths = sorted(round(b.get_width(), 9) for b in bars)
+            np.testing.assert_allclose(lengths, np.sort(pops["population"].to_numpy()), atol=1e-9)
+            colours = figures.state_colours(scheme)
+            assert {to_hex(b.get_facecolor()) for b in bars} == {to_hex(c) for c in colours.values()}
+            assert {t.get_text() for t in ax.get_legend().get_texts()} == set(scheme.labels)
+        finally:
+            plt.close(fig)
+        # at the double width too, and with the scan's prediction beside every sampled bar
+        fig = Figure(figsize=(figures.DOUBLE_COLUMN_IN, 2.3), layout="constrained")
+        figures.plot_populations(pops, scheme, predicted=pops.assign(population_err=np.nan), ax=fig.add_subplot(),
+                                 grow=True)
+        _assert_laid_out(fig, f"{len(types)} types, double width")
+
+
+def test_ramachandran_regions_bars_per_residue_type():
+    from dihedra.presentation.figures.ramachandran import REGION_COLOURS, plot_ramachandran_regions
+
+    regions = ["alpha-R", "beta", "PPII", "alpha-L", "other"]
+    table = pd.DataFrame({"type": np.repeat(["ALA", "GLY", "PRO"], 5), "region": regions * 3,
+                          "population": [0.7, 0.1, 0.2, 0.0, 0.0, 0.3, 0.05, 0.05, 0.5, 0.1, 0.3, 0.0, 0.7, 0.0, 0.0],
+                          "population_err": [0.05] * 15})
+    ax = plot_ramachandran_regions(table, ax=new_ax())
+    bars = [b for b in ax.patches if isinstance(b, Rectangle)]
+    seen = table[table["population"] > 0]
+    assert len(bars) == len(seen) == 10   # a region a type never visited has no bar
+    # three types fit side by side: upright bars, the types named under their groups
+    np.testing.assert_allclose([b.get_height() for b in bars], seen["population"])   # in table order
+    assert [to_hex(b.get_facecolor()) for b in bars] == [to_hex(REGION_COLOURS[r]) for r in seen["region"]]
+    assert [t.get_text() for t in ax.get_xticklabels()] == list(seen["region"])
+    assert [t.get_text() for a in ax.child_axes for t in a.get_xticklabels()] == ["ALA", "GLY", "PRO"]
+    # the five regions keep apart, also from the grey of undefined frames
+    assert len({to_hex(c) for c in REGION_COLOURS.values()} | {to_hex(figures.UNDEFINED_COLOUR)}) == 6
+
+
 # ------------------------------------------------------------------------------------------------
 # 5. 2-D map
 # ------------------------------------------------------------------------------------------------
@@ -380,9 +457,42 @@ def test_transition_diagram_arrows_by_count_labels_with_direction_and_upper_limi
     assert "0.0000" not in " ".join(table) and "0 ± 0" not in table
     flux = figures.plot_transition_diagram(transitions, lifetimes, "T", weight="flux", scheme=scheme, ax=new_ax(),
                                            table=False)
-    assert "flux" in flux.get_title(loc="left")
+    assert any("flux" in t.get_text() for t in flux.texts)
     with pytest.raises(DihedraError, match="arrow weight"):
         figures.plot_transition_diagram(transitions, lifetimes, "T", weight="rate", ax=new_ax(), table=False)
+
+
+def two_state_kinetics():
+    """A torsion that stayed in its state in every residue (a protein's omega, 98 frames): no transition."""
+    lifetimes = pd.DataFrame({"level": "type", "name": "PHE:omega", "type": "PHE:omega", "state": ["trans", "cis"],
+                              "mean_ps": [98.0, 98.0], "median_ps": [98.0, 98.0], "ci_low_ps": np.nan,
+                              "ci_high_ps": np.nan, "mean_from_rates_ps": np.nan, "population_counted": [0.8, 0.2]})
+    transitions = pd.DataFrame({"level": "type", "name": "PHE:omega", "from_state": ["trans", "cis"],
+                                "to_state": ["cis", "trans"], "count": [0, 0], "rate_per_ps": [0.0, 0.0],
+                                "rate_err_per_ps": [0.0, 0.0], "rate_ci_high_per_ps": [0.0095, 0.038]})
+    return transitions, lifetimes, "PHE:omega", get_scheme("cis-trans")
+
+
+@pytest.mark.parametrize("case", ["two states", "three states"])
+@pytest.mark.parametrize("width", ["single", "double"])
+def test_transition_note_stands_above_the_node_labels(case, width):
+    if case == "two states":
+        transitions, lifetimes, name, scheme = two_state_kinetics()
+    else:
+        (transitions, lifetimes), name, scheme = kinetics_tables(), "T", get_scheme("anti-gauche")
+    n_pairs = len(transitions)
+    with figures.style():   # the size figure_set gives it
+        fig = Figure(figsize=(figures.WIDTHS[width], 2.5 + 0.105 * min(n_pairs + 1, 10)), layout="constrained")
+        ax = figures.plot_transition_diagram(transitions, lifetimes, name, scheme=scheme, ax=fig.add_subplot())
+        _assert_laid_out(fig, f"transitions, {case}, {width}")
+        renderer = fig.canvas.get_renderer()
+        note = [t for t in ax.texts if t.get_text().startswith(f"{name}. Arrows")]
+        labels = [t for t in ax.texts if "\n" in t.get_text() and t not in note]
+        assert len(note) == 1 and len(labels) == len(lifetimes)
+        top = max(t.get_window_extent(renderer).y1 for t in labels + [ax.patch])
+        assert note[0].get_window_extent(renderer).y0 >= top - 0.5   # above the drawing, covering none of it
+        # the note spans the width of the figure, not only that of the (narrow) drawing
+        assert note[0].get_window_extent(renderer).width > 0.5 * fig.bbox.width
 
 
 def test_lifetimes_exponential_from_the_rates_and_observed_markers():
@@ -505,7 +615,8 @@ def _text_boxes(fig):
     canvas.draw()
     renderer = canvas.get_renderer()
     texts = list(fig.texts)
-    for ax in fig.axes:
+    # secondary axes (names under groups, residue numbers) are children of their axes
+    for ax in [a for parent in fig.axes for a in [parent, *parent.child_axes]]:
         if not ax.get_visible():
             continue
         texts += [ax.title, ax._left_title, ax._right_title]
@@ -531,13 +642,19 @@ def test_nothing_overlaps_or_leaves_the_figure_at_journal_widths(full_folder, wi
             fig = item.figure
             assert fig.get_figwidth() == pytest.approx(figures.WIDTHS[width] if item.kind not in ("couplings", "map")
                                                        else figures.SINGLE_COLUMN_IN)
-            boxes = _text_boxes(fig)
-            bbox = fig.bbox
-            for text, b in boxes:
-                assert b.x0 >= bbox.x0 - 1 and b.x1 <= bbox.x1 + 1 and b.y0 >= bbox.y0 - 1 and b.y1 <= bbox.y1 + 1, \
-                    (item.name, text, b, bbox)
-            clash = _overlapping(boxes)
-            assert not clash, f"{item.name} ({width}): {clash[0]!r} overlaps {clash[1]!r}"
+            _assert_laid_out(fig, f"{item.name} ({width})")
+
+
+def _assert_laid_out(fig, name):
+    """No text of ``fig`` leaves the figure or overlaps another; returns the texts and their boxes."""
+    boxes = _text_boxes(fig)
+    bbox = fig.bbox
+    for text, b in boxes:
+        assert b.x0 >= bbox.x0 - 1 and b.x1 <= bbox.x1 + 1 and b.y0 >= bbox.y0 - 1 and b.y1 <= bbox.y1 + 1, \
+            (name, text, b, bbox)
+    clash = _overlapping(boxes)
+    assert not clash, f"{name}: {clash[0]!r} overlaps {clash[1]!r}"
+    return boxes
 
 
 def _overlapping(boxes):

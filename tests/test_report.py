@@ -248,6 +248,80 @@ def test_report_honours_the_types_chosen(protein_folder, tmp_path):  # noqa: F81
         write_report(protein_folder, out=str(tmp_path / "r2.html"), types=["ALA:chi9"])
 
 
+def section(text, name):
+    """The HTML of one section of a report."""
+    start = text.index(f"<section id='{name}'>")
+    return text[start:text.index("</section>", start)]
+
+
+def table_rows(html_text):
+    """Every table of ``html_text`` as a list of dicts (header -> cell text)."""
+    out = []
+    for table in re.findall(r"<table>(.*?)</table>", html_text, flags=re.S):
+        heads = [html.unescape(re.sub("<[^>]+>", "", h)) for h in re.findall(r"<th[^>]*>(.*?)</th>", table, re.S)]
+        for row in re.findall(r"<tr>(.*?)</tr>", table.split("</thead>", 1)[-1], flags=re.S):
+            cells = [html.unescape(re.sub("<[^>]+>", "", c)) for c in re.findall(r"<td[^>]*>(.*?)</td>", row, re.S)]
+            out.append(dict(zip(heads, cells)))
+    return out
+
+
+@pytest.fixture(scope="module")
+def backbone_report(protein_folder, tmp_path_factory):  # noqa: F811
+    """A copy of the protein folder with Ramachandran regions and 3J(HN,HA) couplings (glycine:
+    three rows per torsion), and its report."""
+    folder = str(tmp_path_factory.mktemp("backbone") / "results")
+    shutil.copytree(protein_folder, folder)
+    assert main(["ramachandran", folder]) == 0
+    assert main(["couplings", folder, "--relation", "hu-bax-1997"]) == 0
+    path = write_report(folder)
+    with open(path, encoding="utf-8") as fh:
+        return folder, fh.read()
+
+
+def test_report_shows_the_ramachandran_regions_rounded_to_their_errors(backbone_report):
+    folder, text = backbone_report
+    part = section(text, "ramachandran")
+    assert "<a href='#ramachandran'>" in text
+    by_type = pd.read_csv(os.path.join(folder, "ramachandran_by_type.csv"))
+    rows = {r["type"]: r for r in table_rows(part) if "type" in r}
+    assert set(rows) == set(by_type["type"])   # every residue type, one row each
+    for r in by_type.itertuples():
+        assert rows[r.type][r.region] == format_value_error(r.population, r.population_err), (r.type, r.region)
+        assert rows[r.type]["residues"] == str(r.n_residues)
+    info = json.load(open(os.path.join(folder, "ramachandran.json")))
+    for note in info["notices"] + info.get("cautions", []):
+        assert html.escape(note) in part
+    assert html.escape(info["parameters"]["source"]) in part
+    bounds = {r["region"]: r for r in table_rows(part) if "region" in r}
+    assert bounds["beta"]["ψ"] == "50 to 180 and -180 to -120"   # 50 .. 240 wraps through 180
+    assert "ramachandran.csv</a>" in part
+    # the figure, in its section, and in the figure set of the folder
+    assert "<figure id='fig-ramachandran_regions'" in part
+    with style():
+        kinds = [i.kind for i in figure_set(folder, types=["ALA:phi"]).items]
+    assert "ramachandran" in kinds
+
+
+def test_report_without_ramachandran_regions_says_how_to_make_them(protein_report, full_report):
+    _, text = protein_report
+    assert "No Ramachandran regions in this folder (run <code>dihedra ramachandran DIR</code>)" in text
+    assert "no ramachandran_by_type.csv (run &#x27;dihedra ramachandran&#x27;)" in text
+    # butane has no protein backbone: neither the section nor its link
+    _, text = full_report
+    assert "id='ramachandran'" not in text and "#ramachandran" not in text
+
+
+def test_report_couplings_name_the_coupled_atoms_of_every_row(backbone_report):
+    folder, text = backbone_report
+    rows = [r for r in table_rows(section(text, "couplings")) if r.get("type") == "GLY:phi"]
+    table = pd.read_csv(os.path.join(folder, "couplings_hu-bax-1997.csv"))
+    gly = table[(table["level"] == "type") & (table["type"] == "GLY:phi")]
+    assert len(gly) == 3   # H-alpha 1, H-alpha 2 and both: three rows that only the atoms tell apart
+    assert [(r["coupled atoms"], r["J (Hz)"]) for r in rows] == [
+        (a, format_value_error(j, e)) for a, j, e in zip(gly["coupled_atoms"], gly["j_hz"], gly["j_err_hz"])]
+    assert all("torsion" not in r for r in rows)   # the mean of a type has no torsion: no column of dashes
+
+
 @pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed (apt-get install chromium)")
 def test_protein_report_prints_to_a_few_pages_and_fits_an_a4_page(protein_report, tmp_path):
     path, text = protein_report

@@ -11,6 +11,8 @@ into ``report.html``:
 * the notices of every step, and the cautions each step wrote beside its results;
 * the torsions per type (the full table linked) and the state scheme;
 * populations per type and the most populated conformers;
+* the Ramachandran regions per residue type (``dihedra ramachandran``), in a folder of protein
+  backbone torsions;
 * profiles (minima, barriers, state free energies) and the comparison with a static scan, with
   its verdicts and their reasons;
 * kinetics (rates, dwell times, implied timescales) with the transition-state-theory caution;
@@ -48,13 +50,14 @@ from .figures import CHOICE_RULE, informative_types
 from .figures.figureset import check_types
 from .report_dynamics import _convergence, _couplings, _kinetics, coupling_files
 from .report_html import _CSS, MAX_ROWS, Page, _e, _fmt
+from .report_ramachandran import _ramachandran
 from .report_refit import _refit
 from .report_sections import _comparison, _populations, _profiles, _provenance, _time_series, _torsions
 
 #: The sections in the page's navigation: (id, name).
 _NAVIGATION = [("convergence", "Convergence"), ("inputs", "Inputs"), ("torsions", "Torsions"), ("populations", "Populations"),
-               ("series", "Time series"), ("profiles", "Profiles"), ("comparison", "Comparison"),
-               ("kinetics", "Kinetics"), ("couplings", "Couplings"), ("refit", "Correction"),
+               ("series", "Time series"), ("ramachandran", "Ramachandran"), ("profiles", "Profiles"),
+               ("comparison", "Comparison"), ("kinetics", "Kinetics"), ("couplings", "Couplings"), ("refit", "Correction"),
                ("notes", "Figures not made")]
 
 
@@ -85,12 +88,14 @@ def build_report(folder, width="single", figures=True, types=None, log=None, bas
     folder = result.folder
     page = _page(result, types, base, say)
     figs, skipped = _figures_by_kind(folder, width, types, log) if figures else ({}, [])
-    sections = _NAVIGATION
-    if not (figs.get("series") or figs.get("raster")):
-        sections = [s for s in sections if s[0] != "series"]
-    nav = "<nav>" + "".join(f"<a href='#{k}'>{_e(v)}</a>" for k, v in sections) + "</nav>"
-    body = [_provenance(page), _torsions(page), _populations(page, figs), _time_series(figs), _profiles(page, figs),
-            _comparison(page), _kinetics(page, figs), _couplings(page, figs), _refit(page, figs)]
+    series, ramachandran = _time_series(figs), _ramachandran(page, figs, result)
+    # a section the folder cannot have (time series without figures, Ramachandran regions without
+    # a protein backbone) is left out, and so is its link
+    absent = {k for k, text in (("series", series), ("ramachandran", ramachandran)) if not text}
+    nav = "<nav>" + "".join(f"<a href='#{k}'>{_e(v)}</a>" for k, v in _NAVIGATION if k not in absent) + "</nav>"
+    body = [_provenance(page), _torsions(page), _populations(page, figs), series, ramachandran,
+            _profiles(page, figs), _comparison(page), _kinetics(page, figs), _couplings(page, figs),
+            _refit(page, figs)]
     notices = _notices(folder, result.summary)
     if notices:
         body.insert(0, notices)

@@ -109,6 +109,11 @@ def _kinetics(page, figs):
     return "".join(parts)
 
 
+def _blank(column):
+    """Whether a column holds no value in any row (empty text or NaN)."""
+    return bool(column.isna().all() or column.astype(str).str.strip().isin(["", "nan", "None"]).all())
+
+
 def _rates(sub):
     """Rate constants per type: per ns, rounded to their errors; upper limits where none was seen."""
     sub = sub.copy()
@@ -173,8 +178,13 @@ def _couplings(page, figs):
     table = table.copy()
     if "j_hz" in table.columns:
         table["J (Hz)"] = [_pm(v, e) for v, e in zip(table["j_hz"], table.get("j_err_hz", [None] * len(table)))]
-    cols = [c for c in ("relation", "torsion", "type", "J (Hz)", "j_systematic_hz") if c in table.columns]
-    heads = {"j_systematic_hz": "relation's own spread (Hz)"}
+    cols = [c for c in ("relation", "torsion", "type", "coupled_atoms", "J (Hz)", "j_systematic_hz")
+            if c in table.columns and not (c == "torsion" and _blank(table[c]))]   # the mean of a type: no torsion
+    heads = {"j_systematic_hz": "relation's own spread (Hz)", "coupled_atoms": "coupled atoms"}
+    if "coupled_atoms" in table.columns and table["coupled_atoms"].astype(str).str.contains("+", regex=False).any():
+        # a glycine has two H-alpha: a row for each and one for the splitting of both
+        parts.append("<p class='lead'>Coupled atoms HA1+HA2 (or HA2+HA1): the sum of the couplings to both "
+                     "H-alpha of a glycine, the one splitting seen where they are not resolved.</p>")
     parts.append(_table(table, cols, [heads.get(c, c) for c in cols], what="couplings", max_rows=MAX_ROWS))
     summ = pd.DataFrame([x for info in infos for x in ((info.get("experimental") or {}).get("summary") or [])])
     if len(summ):

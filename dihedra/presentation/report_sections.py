@@ -148,14 +148,17 @@ def _populations(page, figs):
     return "".join(parts)
 
 
-def _population_tables(pops, scheme):
+def _population_tables(pops, scheme, state="state", count=("n_torsions", "torsions")):
     """One wide table per set of states (a set of schemes: omega cis/trans apart from phi/psi):
-    a row per type, a column per state (value ± error), the torsions and I^2."""
+    a row per type, a column per state (value ± error), the torsions and I^2. ``state`` names the
+    column of the states (``region`` for Ramachandran regions), ``count`` the column that counts
+    the members of a type and its heading."""
     by_states = {}
+    pops = pops.rename(columns={state: "state"})
     for t, sub in pops.groupby("type", sort=False):
         states = tuple(s for s in (scheme.labels if scheme else sub["state"].unique()) if s in set(sub["state"]))
         key = sub.set_index("state")
-        row = {"type": t, "torsions": int(sub["n_torsions"].iloc[0]) if "n_torsions" in sub else None}
+        row = {"type": t, count[1]: int(sub[count[0]].iloc[0]) if count[0] in sub else None}
         for s in states:
             row[s] = _pm(key.loc[s, "population"], key.loc[s, "population_err"])
         if "i_squared" in sub:

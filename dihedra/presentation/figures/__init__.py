@@ -3,7 +3,7 @@ r"""Figures for a paper from a results folder: one function per figure, each onl
 Every plot function takes the loaded results (a :class:`~dihedra.trajectory.result.TrackResult`)
 or the tables it needs, plus ``ax=None``, draws on ``ax`` (a new figure when ``None``) and returns
 the axes, so figures compose into panels. None of them recomputes a result: they read the tables
-that ``track``, ``profile``, ``compare``, ``kinetics`` and ``couplings`` wrote.
+that ``track``, ``profile``, ``compare``, ``kinetics``, ``couplings`` and ``ramachandran`` wrote.
 
 ===  =========================================  ==============================================
 #    function                                   reads
@@ -20,6 +20,7 @@ that ``track``, ``profile``, ``compare``, ``kinetics`` and ``couplings`` wrote.
 10   :func:`plot_refit_profile` /               ``refit_profiles.csv`` / ``refit_populations.csv``,
      :func:`plot_refit_populations`,            ``refit_correction.csv`` (``dihedra refit``)
      :func:`plot_correction`
+11   :func:`plot_ramachandran_regions`          ``ramachandran_by_type.csv`` (``dihedra ramachandran``)
 ===  =========================================  ==============================================
 
 :func:`figure_set` decides which figures a folder can make (a figure appears as soon as its data
@@ -43,6 +44,8 @@ Modules
     figures 6 and 7, figure 8, figure 9
 ``refit``
     figure 10 (a fitted torsion correction)
+``ramachandran``
+    figure 11 (the Ramachandran regions per residue type, drawn with the bars of figure 4)
 ``figureset``
     :func:`figure_set`, :func:`write_figures`, :class:`FigureItem`, :class:`FigureSet`
 
@@ -64,6 +67,7 @@ from .kinetics import plot_lifetimes, plot_transition_diagram
 from .maps import MAP_CEILING_KJ_MOL, map_colormap, plot_free_energy_map
 from .populations import SOURCE_STYLES, comparison_populations, plot_populations
 from .profiles import plot_profile, select_profile
+from .ramachandran import REGION_COLOURS, plot_ramachandran_regions
 from .refit import REFIT_STYLES, has_target, plot_correction, plot_refit_populations, plot_refit_profile
 from .style import (ANGLE_LABEL, CYCLIC_PALETTE, DOUBLE_COLUMN_IN, ENERGY_UNIT_LABELS, FORMATS, INK, NEUTRAL,
                     OKABE_ITO, POPULATION_LABEL, SECTOR_ALPHA, SINGLE_COLUMN_IN, STATE_COLOURS, UNDEFINED_COLOUR,
@@ -78,7 +82,8 @@ __all__ = [
     "REPLICA_STYLES", "SECTOR_ALPHA", "SINGLE_COLUMN_IN", "SOURCE_STYLES", "STATE_COLOURS", "StateRaster",
     "UNDEFINED_COLOUR", "UNSAMPLED_COLOUR", "WIDTHS", "comparison_populations", "energy_columns", "figure_set",
     "has_target", "plot_angle_series", "plot_convergence", "plot_correction", "plot_couplings",
-    "plot_free_energy_map", "plot_lifetimes", "plot_populations", "plot_profile", "plot_refit_populations",
+    "plot_free_energy_map", "plot_lifetimes", "plot_populations", "plot_profile", "plot_ramachandran_regions",
+    "plot_refit_populations", "REGION_COLOURS",
     "plot_refit_profile", "plot_state_raster", "plot_transition_diagram", "read_angle_series", "read_state_raster",
     "safe_name", "sector_spans", "select_profile", "state_colours", "style", "time_scale", "write_figures",
 ]

@@ -151,6 +151,22 @@ def _note(ax, text, pad_rows=0, colour=NEUTRAL):
                      pad=3.0 + 10.5 * pad_rows, linespacing=1.15)
 
 
+def _note_above(ax, text, artists, colour=NEUTRAL):
+    """A note like :func:`_note`, but above the highest of the axes and ``artists``: labels of a
+    drawing in data coordinates may reach above the axes, where the title would cover them (the
+    title only clears the axes and its tick labels). Returns the note (an annotation), or None."""
+    if not text:
+        return None
+    from matplotlib.transforms import Bbox
+
+    def drawing(renderer):
+        return Bbox.union([ax.bbox] + [a.get_window_extent(renderer) for a in artists])
+
+    return ax.annotate(_wrap(ax, text, 6.0), xy=(0.0, 1.0), xycoords=("axes fraction", drawing), xytext=(0.0, 3.0),
+                       textcoords="offset points", ha="left", va="bottom", fontsize=6.0, color=colour,
+                       linespacing=1.15, annotation_clip=False, clip_on=False)
+
+
 def _axes_width_pt(ax):
     """Width available to a note or legend above ``ax``: its width before the layout, less the
     room constrained layout will take for tick labels (an estimate; no drawing needed)."""

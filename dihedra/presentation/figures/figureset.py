@@ -24,6 +24,7 @@ from .kinetics import plot_lifetimes, plot_transition_diagram
 from .maps import MAP_CEILING_KJ_MOL, plot_free_energy_map
 from .populations import comparison_populations, plot_populations
 from .profiles import plot_profile
+from .ramachandran import plot_ramachandran_regions
 from .refit import has_target, plot_correction, plot_refit_populations, plot_refit_profile
 from .choice import CHOICE_RULE, informative_types, representative_torsion
 from .common import _as_bool
@@ -118,9 +119,10 @@ def figure_set(folder, width="single", types=None, max_types=4, max_series=3, lo
     _add_angle_series(b, series_torsions)
     rows = ([lab for lab, t in zip(result.torsion_set.labels, result.torsion_set.types) if t in set(chosen_types)]
             if types else None)
-    _add_state_raster(b, rows)
+    _add_state_raster(b, rows, _types_phrase(chosen_types))
     _add_profiles(b, chosen_types)
     _add_populations(b, chosen_types)
+    _add_ramachandran(b)
     _add_maps(b)
     _add_kinetics(b, chosen_types)
     _add_convergence(b, chosen_types)
@@ -185,12 +187,19 @@ def _add_angle_series(b, torsions):
           f"as bands ({series.description}).", fig, "series")
 
 
-def _add_state_raster(b, torsions):
-    """2. State raster."""
+def _types_phrase(types, max_named=3):
+    """The chosen types as a note names them: each of a few, else their number."""
+    if len(types) <= max_named:
+        return " and ".join([", ".join(types[:-1]), types[-1]] if len(types) > 1 else types)
+    return f"{len(types)} chosen types"
+
+
+def _add_state_raster(b, torsions, selection=""):
+    """2. State raster (``torsions``: the rows chosen, ``selection`` what they are, for the note)."""
     if not ParquetSeries(b.folder).has("states"):
         b.skip("state raster", "no states.parquet")
         return
-    raster = read_state_raster(b.folder, torsions=torsions)
+    raster = read_state_raster(b.folder, torsions=torsions, selection=selection)
     fig = _figure(b.width_in, 2.4 if len(raster.rows) <= 12 else 2.9)
     plot_state_raster(raster, b.scheme, ax=fig.add_subplot())
     b.add("state_raster", f"States of torsions against time ({raster.description}).", fig, "raster")
@@ -220,12 +229,32 @@ def _add_populations(b, chosen_types):
     predicted, reference = comparison_populations(comparison)
     fig = _figure(b.width_in, 2.3)
     plot_populations(b.result.populations_by_type, b.scheme, types=chosen_types, predicted=predicted,
-                     experiment=reference, ax=fig.add_subplot())
+                     experiment=reference, ax=fig.add_subplot(), grow=True)
     extra = [x for x, tab in (("the scan's prediction", predicted), ("reference values", reference)) if len(tab)]
     b.add("populations", "State populations per type with standard errors (sampled"
           + (", " + " and ".join(extra) if extra else "") + ").", fig, "populations")
     if comparison is None:
         b.skip("scan-predicted populations", "no comparison.csv (run 'dihedra compare')")
+
+
+def has_backbone_pairs(result):
+    """Whether the folder's torsions include protein phi and psi (a Ramachandran analysis can run)."""
+    names = set(result.torsions["name"].astype(str)) if "name" in result.torsions.columns else set()
+    return {"phi", "psi"} <= names
+
+
+def _add_ramachandran(b):
+    """11. Ramachandran region populations per residue type (``dihedra ramachandran``); a folder
+    without protein backbone torsions gets no note (it cannot have them)."""
+    regions = read_optional(b.folder, "ramachandran_by_type.csv")
+    if regions is None or not len(regions):
+        if has_backbone_pairs(b.result):
+            b.skip("Ramachandran regions", "no ramachandran_by_type.csv (run 'dihedra ramachandran')")
+        return
+    fig = _figure(b.width_in, 2.3)
+    plot_ramachandran_regions(regions, ax=fig.add_subplot(), grow=True)
+    b.add("ramachandran_regions", "Population of each Ramachandran region per residue type with standard errors "
+          "(pooled over the residues of a type; regions a type never visited have no bar).", fig, "ramachandran")
 
 
 def _add_maps(b):

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...errors import DihedraError, one_of
-from .common import _new_axes, _note, _top_legend
+from .common import _new_axes, _note, _note_above, _top_legend
 from .style import CYCLIC_PALETTE, INK, NEUTRAL, state_colours
 
 # ----------------------------------------------------------------------------------------------
@@ -74,17 +74,20 @@ def plot_transition_diagram(transitions, lifetimes, name, level="type", weight="
         ax, tab = _split_for_table(ax, min(len(among), max_table_rows + 1))
     pos, radius = _node_layout(states, pops)
     _draw_arrows(ax, among[among["count"] > 0], pos, radius, weight, pops)
-    xs, ys = _draw_nodes(ax, states, pos, radius, pops, colours)
-    ax.set_aspect("equal")
-    if xs:
-        ax.set_xlim(min(xs) - 0.55, max(xs) + 0.55)
-        ax.set_ylim(min(ys) - 0.3, max(ys) + 0.3)
+    xs, ys, labels = _draw_nodes(ax, states, pos, radius, pops, colours)
+    # equal scales by widening the data limits, not by narrowing the axes: the note keeps the
+    # width of the figure instead of the width of the drawing
+    ax.set_aspect("equal", adjustable="datalim")
+    if xs:   # the extent as data limits: fixed limits would fight the equal aspect
+        ax.update_datalim([(min(xs) - 0.55, min(ys) - 0.3), (max(xs) + 0.55, max(ys) + 0.3)])
+        ax.margins(0)
+        ax.autoscale_view()
     ax.axis("off")
     what = "transitions seen" if weight == "count" else "flux (population x rate)"
     note = f"{name}. Arrows: {what} (width), count and direction (label); nodes: population (area)"
     if left_out:
         note += f"; {left_out} rarer state(s) not drawn"
-    _note(ax, note)
+    _note_above(ax, note, labels)
     if table:
         _rate_table(tab, among, max_table_rows)
     return ax
@@ -178,11 +181,12 @@ def _draw_arrows(ax, tr, pos, radius, weight, pops, bend=0.3):
 
 
 def _draw_nodes(ax, states, pos, radius, pops, colours):
-    """The state circles with their name and population outside; returns the x and y extents."""
+    """The state circles with their name and population outside; returns the x and y extents and
+    the labels."""
     from matplotlib.patches import Circle
 
     n = len(states)
-    xs, ys = [], []
+    xs, ys, labels = [], [], []
     for s in states:
         c = colours.get(s, "#BFC6CC")
         ax.add_patch(Circle(pos[s], radius[s], facecolor=c, edgecolor=INK, lw=0.6, zorder=3))
@@ -190,11 +194,11 @@ def _draw_nodes(ax, states, pos, radius, pops, colours):
         lp = pos[s] + outward * (radius[s] + 0.07)
         ha = "center" if abs(outward[0]) < 0.3 else ("left" if outward[0] > 0 else "right")
         va = "center" if abs(outward[1]) < 0.3 else ("bottom" if outward[1] > 0 else "top")
-        ax.text(lp[0], lp[1], f"{s}\n{pops[s]:.2f}", fontsize=6, ha=ha, va=va, color=INK, zorder=4,
-                linespacing=1.05, multialignment="center")
+        labels.append(ax.text(lp[0], lp[1], f"{s}\n{pops[s]:.2f}", fontsize=6, ha=ha, va=va, color=INK, zorder=4,
+                              linespacing=1.05, multialignment="center"))
         xs += [pos[s][0] - radius[s], pos[s][0] + radius[s]]
         ys += [pos[s][1] - radius[s], pos[s][1] + radius[s]]
-    return xs, ys
+    return xs, ys, labels
 
 
 # ----------------------------------------------------------------------------------------------

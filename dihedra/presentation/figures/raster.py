@@ -45,7 +45,7 @@ class StateRaster:
     frames_per_column : float
         Frames aggregated into one column (largest over replicas).
     n_torsions : int
-        Torsions in the folder (rows are an evenly spaced subset of every group when fewer).
+        Torsions in the folder.
     time_known : bool
     row_groups : list of str
         The group of each row: the torsion name (``phi``) when grouped by name, else the type.
@@ -53,6 +53,11 @@ class StateRaster:
         Residue number of each row (None where unknown).
     grouping : {"name", "type"}
         Biopolymer torsions by name in chain order, other torsions by type.
+    n_selected : int, optional
+        Torsions chosen for the raster before any thinning (default: all of the folder); the rows
+        are an evenly spaced subset of every group when fewer.
+    selection : str
+        What was chosen, for the note ("3 chosen types", "PHE:omega"); empty for all torsions.
     """
 
     codes: np.ndarray
@@ -65,12 +70,12 @@ class StateRaster:
     row_groups: list = field(default_factory=list)
     row_residues: list = field(default_factory=list)
     grouping: str = "type"
+    n_selected: int | None = None
+    selection: str = ""
 
     @property
     def description(self):
-        n_rows = len(self.rows)
-        rows = (f"all {n_rows} torsions" if n_rows == self.n_torsions
-                else f"{n_rows} of {self.n_torsions} torsions (evenly spaced in every group)")
+        rows = self._rows_description()
         rows += ", grouped by torsion, residues in chain order" if self.grouping == "name" else \
             (", grouped by type" if len(set(self.row_types)) > 1 else "")
         if self.frames_per_column <= 1:
@@ -78,6 +83,21 @@ class StateRaster:
         else:
             cols = f"each column: most frequent state of {self.frames_per_column:g} frames"
         return f"{rows}; {cols}"
+
+    def _rows_description(self):
+        """Which torsions the rows are: all of the folder or those chosen, and, only when rows were
+        left out to fit the figure, that they are an evenly spaced subset."""
+        n_rows = len(self.rows)
+        chosen = self.n_torsions if self.n_selected is None else int(self.n_selected)
+        thinned = "evenly spaced in every group"
+        if chosen >= self.n_torsions:
+            return (f"all {n_rows} torsions" if n_rows == chosen
+                    else f"{n_rows} of {self.n_torsions} torsions ({thinned})")
+        what = f"{chosen} torsions of {self.selection}" if self.selection else f"{chosen} chosen torsions"
+        of_all = f"of {self.n_torsions} in the folder"
+        if n_rows == chosen:
+            return f"the {what} ({of_all})"
+        return f"{n_rows} of the {what} ({thinned}; {of_all})"
 
     @property
     def groups(self):
@@ -131,7 +151,7 @@ def _thin(groups, max_rows):
     return np.asarray(sorted(keep))
 
 
-def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, batch_frames=None):
+def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, batch_frames=None, selection=""):
     """Aggregate ``states.parquet`` for a state raster, reading it in chunks.
 
     Rows: the given torsions, or all of them, grouped (see :func:`_row_order`); more than
@@ -139,6 +159,7 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
     each replica cut into at most ``max_columns`` columns in total (in proportion to the replica
     lengths, every column the same whole number of frames, the last one of a replica possibly
     fewer); each cell holds the most frequent state of its frames (ties: the lower code).
+    ``selection`` says what ``torsions`` are for the note ("3 chosen types").
 
     Returns
     -------
@@ -151,7 +172,8 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
     table = read_table(folder, "torsions.csv", ("torsion", "type"))
     all_labels = list(table["torsion"])
     types = dict(zip(table["torsion"], table["type"]))
-    labels = list(torsions) if torsions else all_labels
+    labels = list(dict.fromkeys(torsions)) if torsions else all_labels
+    n_selected = len(labels)
     _check_columns(series, "states", labels)
     labels, groups, residues, grouping = _row_order(table, labels)
     keep = _thin(groups, int(max_rows))
@@ -172,7 +194,8 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
     return StateRaster(codes=mode, rows=labels, row_types=[types.get(x, "") for x in labels],
                        replica_columns=spans, frames_per_column=float(per_col),
                        n_torsions=len(all_labels), time_known=all(dt is not None for _, dt in info),
-                       row_groups=groups, row_residues=residues, grouping=grouping)
+                       row_groups=groups, row_residues=residues, grouping=grouping, n_selected=n_selected,
+                       selection=selection if torsions else "")
 
 
 def _column_modes(chunks, labels, n_replicas, n_states, per_col, n_cols, col_offset):

@@ -20,7 +20,7 @@ eclipsed, sp, cis, 0                   vermillion      #D55E00
 syn (nucleotide chi)                   vermillion      #D55E00
 C2'-endo (delta)                       blue            #0072B2
 C3'-endo (delta)                       orange          #E69F00
-other (delta)                          bluish green    #009E73
+atypical (delta)                       bluish green    #009E73
 endo (proline chi1, chi2)              sky blue        #56B4E9
 exo (proline chi1, chi2)               bluish green    #009E73
 =====================================  ==============  ==========
@@ -83,7 +83,7 @@ STATE_COLOURS = {
     "symmetric-rotor": {"rotor": OKABE_ITO["blue"]},
     "syn-anti": {"anti": OKABE_ITO["blue"], "syn": OKABE_ITO["vermillion"]},
     "sugar-pucker": {"C2'-endo": OKABE_ITO["blue"], "C3'-endo": OKABE_ITO["orange"],
-                     "other": OKABE_ITO["bluish green"]},
+                     "atypical": OKABE_ITO["bluish green"]},
     "proline-chi1": {"endo": OKABE_ITO["sky blue"], "exo": OKABE_ITO["bluish green"]},
     "proline-chi2": {"endo": OKABE_ITO["sky blue"], "exo": OKABE_ITO["bluish green"]},
 }
@@ -209,9 +209,14 @@ def state_colours(scheme):
 def colour_groups(scheme, states):
     """The ``states`` grouped by their colour, for one legend over several torsion types:
     list of ``(colour, [labels])`` in the order the states first appear."""
-    colours = state_colours(scheme)
+    return group_by_colour(state_colours(scheme), states)
+
+
+def group_by_colour(colours, labels):
+    """``labels`` grouped by their colour in ``colours`` (label -> colour): list of
+    ``(colour, [labels])`` in the order the labels first appear."""
     groups = {}
-    for s in states:
+    for s in labels:
         groups.setdefault(colours[s], []).append(s)
     return list(groups.items())
 
