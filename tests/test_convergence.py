@@ -406,3 +406,10 @@ def test_protein_types_list_only_their_own_states_and_frozen_omega_gets_no_forec
     # types with a torsion that moved keep their estimates and forecasts
     for t in moved & set(table.index):
         assert table.loc[t, "state_changes_seen"] and "no torsion of this type changed" not in table.loc[t, "verdict"]
+    # the report names them even when its table shows other types
+    from dihedra.presentation.report import write_report
+
+    html = open(write_report(str(tmp_path / "adk"), figures=False), encoding="utf-8").read()
+    n_frozen = sum(t not in moved for t in table.index)   # (one replica: a type moved where a population is in (0, 1))
+    assert f"{n_frozen} type(s) never changed state" in html and n_frozen >= len(frozen)
+    assert "types that never changed state" in html

@@ -8,6 +8,7 @@ from __future__ import annotations
 import pandas as pd
 
 from ..io.tables import matching_files, read_optional_json, read_optional_table as read_optional
+from .figures.common import _as_bool
 from .report_html import MAX_ROWS, _callout, _e, _figures_html, _fmt, _kv, _missing, _pm, _table, _verdict
 from .rounding import format_plain, format_rate
 
@@ -37,6 +38,12 @@ def _convergence(page, figs):
                      f"{_e(dropped.get('requested'))}</code>): {_e(spans)}.</p>")
     ok = table["verdict"] == "converged"
     parts.append(f"<p><b>{int(ok.sum())} of {len(table)} type(s) converged.</b></p>")
+    frozen = (list(table["type"][~_as_bool(table["state_changes_seen"])]) if "state_changes_seen" in table else [])
+    if frozen:
+        shown_names = ", ".join(_e(t) for t in frozen[:8]) + (f" and {len(frozen) - 8} more" if len(frozen) > 8 else "")
+        parts.append(f"<p>{len(frozen)} type(s) never changed state in any torsion ({shown_names}): their populations "
+                     "are those of the starting structures, and neither their errors nor the sampling still needed "
+                     "can be estimated from this run.</p>")
     if page.summarised:
         for flag, word in ((False, "Not converged"), (True, "Converged")):
             names = [_e(t) for t, c in zip(table["type"], ok) if bool(c) == flag]
@@ -62,7 +69,9 @@ def _convergence(page, figs):
             "an unequilibrated start: track again with --discard auto (or a time), which drops it from every table",
             "replicas that disagree: they sample different states; run them longer, or check that they simulate "
             "the same system",
-            "a population error above the target: simulate for the time the forecast gives, or add replicas"],
+            "a population error above the target: simulate for the time the forecast gives, or add replicas"]
+            + (["types that never changed state: only runs much longer than their dwell times, enhanced sampling, "
+                "or replicas started from other structures can tell their populations"] if frozen else []),
             "caution"))
     parts.append(_figures_html(figs.get("convergence", [])))
     parts.append("</section>")
