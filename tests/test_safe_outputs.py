@@ -16,7 +16,7 @@ from dihedra import example_path
 from dihedra.cli import main
 from dihedra.errors import OutputExistsError
 from dihedra.io.outputs import (MARKER, StagedFolder, check_folder_target, read_marker, remove_dead_staging,
-                             write_file, write_text)
+                             remove_listed_files, write_file, write_text)
 
 HEXANE = ("hexane.pdb", "hexane.xtc")
 
@@ -189,6 +189,60 @@ def test_write_file_replaces_only_the_files_it_listed(tmp_path):
     assert (tmp_path / "sub" / "y.csv").read_text() == "y2\n"
     assert os.listdir(tmp_path / "sub") == ["y.csv"]
     assert read_marker(tmp_path)["files"] == ["sub/y.csv"]
+
+
+def figures_argv(out, torsion_type, *extra):
+    return ["figures", str(out), "--format", "png", "--types", torsion_type, *extra]
+
+
+def test_figures_overwrite_replaces_the_earlier_set_and_only_dihedras_figures(tmp_path, data, capsys):
+    out = tmp_path / "results"
+    assert main(track_argv(data, out)) == 0
+    assert main(["report", str(out), "--no-figures"]) == 0
+    assert main(figures_argv(out, "HEX:C1-C2-C3-C4")) == 0
+    old = out / "figures" / "convergence_HEX_C1-C2-C3-C4.png"
+    assert old.exists()
+    (out / "figures" / "notes.png").write_text("a user's own file in figures/\n")
+    (out / "figures" / "populations.png").write_text("a figure the user edited\n")   # listed: dihedra's
+    others = {k: v for k, v in snapshot(out).items() if not k.startswith("figures") and k != MARKER}
+    assert "report.html" in others and "populations.csv" in others
+    # without --overwrite nothing changes
+    before = snapshot(out)
+    refused(figures_argv(out, "HEX:C2-C3-C4-C5"), capsys, "--overwrite")
+    assert snapshot(out) == before
+    # with it, the earlier selection's figures go; the user's file and other commands' files stay
+    assert main(figures_argv(out, "HEX:C2-C3-C4-C5", "--overwrite")) == 0
+    assert not old.exists()
+    assert "removed 1 earlier figure file(s)" in capsys.readouterr().err
+    assert (out / "figures" / "convergence_HEX_C2-C3-C4-C5.png").exists()
+    assert (out / "figures" / "notes.png").read_text() == "a user's own file in figures/\n"
+    assert (out / "figures" / "populations.png").read_bytes().startswith(b"\x89PNG")   # replaced, as promised
+    assert {k: v for k, v in snapshot(out).items() if k in others} == others
+    listed = read_marker(out)["files"]
+    assert sorted(f for f in listed if f.startswith("figures/")) == [
+        "figures/convergence_HEX_C2-C3-C4-C5.png", "figures/populations.png", "figures/state_raster.png"]
+    assert set(others) <= set(listed)
+
+
+def test_remove_listed_files_deletes_only_listed_files_inside_the_folder(tmp_path):
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (outside / "x.png").write_text("not dihedra's\n")
+    folder = tmp_path / "results"
+    for name in ("figures/a.png", "figures/b.png", "keep.csv"):
+        write_text(str(folder), name, "dihedra's\n")
+    (folder / "figures" / "mine.png").write_text("mine\n")
+    os.symlink(outside, folder / "linked")
+    marker = read_marker(folder)   # a hand-edited list that reaches out of the folder
+    marker["files"] += ["../outside/x.png", "figures/../../outside/x.png", "linked/x.png", "figures/gone.png"]
+    (folder / MARKER).write_text(json.dumps(marker))
+    names = ["figures/a.png", "figures/mine.png", "../outside/x.png", "figures/../../outside/x.png",
+             "linked/x.png", "figures/gone.png"]
+    assert remove_listed_files(str(folder), names) == ["figures/a.png", "figures/gone.png"]
+    assert sorted(os.listdir(folder / "figures")) == ["b.png", "mine.png"]
+    assert (outside / "x.png").read_text() == "not dihedra's\n"
+    assert not {"figures/a.png", "figures/gone.png"} & set(read_marker(folder)["files"])
+    assert {"figures/b.png", "keep.csv"} <= set(read_marker(folder)["files"])
 
 
 def test_report_out_never_overwrites_another_file(tmp_path, data, capsys):

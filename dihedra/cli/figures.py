@@ -1,6 +1,7 @@
 """``dihedra figures``: publication figures from a results folder (each as soon as its data exist)."""
 
 from ..presentation.figures import FORMATS, WIDTHS, write_figures
+from ..presentation.figures.figureset import FIGURES_DIR
 from ..io.outputs import check_earlier_outputs
 from .common import add_overwrite_option, add_types_option, say
 
@@ -25,8 +26,10 @@ def register(sub):
 
 
 def run(args):
-    check_earlier_outputs(args.folder, "dihedra figures", args.overwrite, prefixes=("figures/",))
-    paths, skipped = write_figures(args.folder, formats=args.format, width=args.width, types=args.types, log=say)
+    check_earlier_outputs(args.folder, "dihedra figures", args.overwrite, prefixes=(FIGURES_DIR,))
+    # --overwrite replaces the earlier set: figures of a former selection do not stay beside the new ones
+    paths, skipped = write_figures(args.folder, formats=args.format, width=args.width, types=args.types, log=say,
+                                   overwrite=args.overwrite)
     for path in paths:
         print(path)
     say(f"{len(paths)} figure file(s) written" + (f"; {len(skipped)} figure(s) skipped (see the notes above)"

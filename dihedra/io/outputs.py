@@ -11,7 +11,9 @@ Every file dihedra writes goes through this module:
   current folder or one of its parents. The final move refuses to replace a folder that appeared,
   or changed hands, while the run was working (two runs into one folder: the second one fails).
 - A file written into an existing folder (:func:`write_file`) goes under a temporary name and is
-  renamed over its target, and only over a file that dihedra wrote there.
+  renamed over its target, and only over a file that dihedra wrote there; an output set replaced
+  as a whole (``dihedra figures --overwrite``) drops only files the list names
+  (:func:`remove_listed_files`).
 - A single file that a user names (a report, a scan, a table) replaces only a file of the same kind
   that dihedra wrote (:func:`check_single_file`), never an input or a file of another program.
 
@@ -26,6 +28,7 @@ import ctypes
 import errno
 import json
 import os
+import posixpath
 import re
 import shutil
 import socket
@@ -135,6 +138,41 @@ def record_files(folder, names):
         files = set(marker["files"]) | {n.replace(os.sep, "/") for n in names}
         marker["files"] = sorted(files)
         _write_marker(folder, marker)
+
+
+def remove_listed_files(folder, names):
+    """Delete those of ``names`` (relative paths) that the marker of ``folder`` lists and drop them
+    from the list; return the names dropped, sorted.
+
+    Only a listed file is ever deleted (dihedra wrote it), never one the marker does not list, a
+    folder, or a name that leads out of ``folder`` (a hand-edited ``../x``, a linked subfolder). A
+    listed file that is gone already is just dropped from the list."""
+    folder = os.fspath(folder)
+    with _folder_lock(folder):
+        marker = read_marker(folder)
+        listed = set(marker["files"]) if marker else set()
+        dropped = []
+        try:
+            for rel in sorted(set(names) & listed - {MARKER}):
+                path = os.path.join(folder, *rel.split("/"))
+                if not _plain_relative(rel, folder) or (os.path.isdir(path) and not os.path.islink(path)):
+                    continue
+                with contextlib.suppress(FileNotFoundError):
+                    os.remove(path)
+                dropped.append(rel)
+        finally:   # the list follows the files even when a removal fails half-way
+            if dropped:
+                marker["files"] = sorted(listed - set(dropped))
+                _write_marker(folder, marker)
+    return dropped
+
+
+def _plain_relative(rel, folder):
+    """Whether a listed name is a plain path below ``folder``: no ``..``, not absolute, and no linked
+    subfolder that leads elsewhere (a marker names files, it never reaches out of its folder)."""
+    if posixpath.normpath(rel) != rel or rel.startswith(("/", "../")) or rel == "..":
+        return False
+    return _inside(_real(os.path.dirname(os.path.join(folder, *rel.split("/")))), _real(folder))
 
 
 def earlier_outputs(folder, names=(), prefixes=()):

@@ -169,7 +169,7 @@ def _refit(ctx, a):
 
 def _figures(ctx, a):
     _check(ctx, "figures")
-    paths, skipped = write_figures(ctx.out, log=ctx.log, **a)
+    paths, skipped = write_figures(ctx.out, log=ctx.log, overwrite=ctx.overwrite, **a)
     return f"{len(paths)} figure file(s)" + (f", {len(skipped)} figure(s) without data" if skipped else "")
 
 

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from ...errors import DihedraError, one_of
-from ...io.outputs import write_file
+from ...io.outputs import earlier_outputs, remove_listed_files, write_file
 from ...io.series import ParquetSeries
 from ...io.tables import matching_files, read_optional_table as read_optional
 from .convergence import plot_convergence
@@ -31,6 +31,10 @@ from .common import _as_bool
 from .style import FORMATS, SINGLE_COLUMN_IN, _metadata, _width_in, style
 from .raster import plot_state_raster, read_state_raster
 from .timeseries import plot_angle_series, read_angle_series
+
+
+#: The subfolder of a results folder that :func:`write_figures` draws into.
+FIGURES_DIR = "figures/"
 
 
 @dataclass
@@ -363,9 +367,16 @@ def _add_refit(b):
                  if untrusted else ""), fig, "refit")
 
 
-def write_figures(folder, formats=("pdf", "png"), width="single", types=None, out_dir=None, log=None):
+def write_figures(folder, formats=("pdf", "png"), width="single", types=None, out_dir=None, log=None,
+                  overwrite=False):
     """Write every figure the folder has data for into ``out_dir`` (default ``folder/figures``);
     ``types``: torsion types or labels (see :func:`figure_set`).
+
+    A figure of the same name that dihedra drew there before is replaced. With ``overwrite`` the
+    whole earlier set in ``folder/figures`` is: the files an earlier call wrote there (listed in the
+    folder's ``dihedra-files.json``) that this call does not write again are removed, and their
+    names leave the list, so the folder never mixes figures of two selections (or of data that
+    have changed since). Files the list does not name (a user's own) are never touched.
 
     Returns
     -------
@@ -374,8 +385,10 @@ def write_figures(folder, formats=("pdf", "png"), width="single", types=None, ou
     fmts = _formats(formats)
     # into the results folder's figures/ (replacing figures dihedra drew there before), or into
     # out_dir (never over an existing file)
-    base, sub = (os.fspath(folder), "figures/") if out_dir is None else (os.fspath(out_dir), "")
-    paths = []
+    base, sub = (os.fspath(folder), FIGURES_DIR) if out_dir is None else (os.fspath(out_dir), "")
+    # the earlier set is taken before drawing: a file another run adds meanwhile is not this one's to remove
+    earlier = earlier_outputs(base, prefixes=(FIGURES_DIR,)) if overwrite and out_dir is None else []
+    names, paths = [], []
     with style():
         fset = figure_set(folder, width=width, types=types, log=log)
         os.makedirs(base, exist_ok=True)
@@ -383,7 +396,12 @@ def write_figures(folder, formats=("pdf", "png"), width="single", types=None, ou
             for f in fmts:
                 def save(tmp, fig=item.figure, fmt=f):
                     fig.savefig(tmp, format=fmt, dpi=300 if fmt == "png" else None, metadata=_metadata(fmt))
-                paths.append(write_file(base, f"{sub}{item.name}.{f}", save))
+                names.append(f"{sub}{item.name}.{f}")
+                paths.append(write_file(base, names[-1], save))
+    if earlier:   # only after the new set is in place: a failed drawing leaves the old one whole
+        removed = remove_listed_files(base, set(earlier) - set(names))
+        (log or (lambda msg: None))(f"removed {len(removed)} earlier figure file(s) that this run did not "
+                                    "draw again")
     return paths, fset.skipped
 
 
