@@ -14,7 +14,7 @@ or its first frames for fewer samples), then runs, each in a fresh process and a
   which the folder then keeps: ``track --keep-angles``).
 
 It prints wall time, CPU time (user + system of the process and its threads) and peak memory of
-each, and their sum against the target of the issue: profile + kinetics of 10^8 samples within
+each, and their sum against the project's target: profile + kinetics of 10^8 samples within
 60 s on the 2-core machine. Figures go to ``bench-post.json`` in ``--data``.
 
 Run from the repository root::

@@ -11,7 +11,7 @@ For each format it runs, each command in a fresh process, over 1 frame, N frames
 every run ``--repeat`` times in rounds (each round runs every command once, so that a slow spell
 of the machine touches all kinds alike):
 
-(a)  bare MDAnalysis iteration reading the coordinates (the floor of the issue; its 1-frame run
+(a)  bare MDAnalysis iteration reading the coordinates (the floor of the targets; its 1-frame run
      is the Universe's own load time: Python, MDAnalysis, the topology);
 (a2) dihedra's own batch reader alone (the XTC decoder, the DCD reader of ``trajread``);
 (b)  ``dihedra track`` as a user runs it (``--workers auto``: on two cores one process whose
