@@ -166,23 +166,32 @@ def run_lengths(dtraj):
     return [(s, n, i == 0 or i == len(runs) - 1) for i, (s, n) in enumerate(runs)]
 
 
-def test_streamed_counts_match_deeptime_and_run_lengths():
+@pytest.mark.parametrize("scale, key_limit", [(1, None), (14 ** 8 // 3, None), (14 ** 8 // 3, 10.0)])
+def test_streamed_counts_match_deeptime_and_run_lengths(scale, key_limit, monkeypatch):
     # reference library: deeptime's sliding-window TransitionCountEstimator; reference segments from
-    # itertools.groupby. Trajectories are fed in uneven chunks, several replicas one after another.
+    # itertools.groupby. Trajectories are fed in uneven chunks, several replicas one after another,
+    # series 0 counted in row 1 and series 1 in row 0. Scaled, the codes are as wide as the joint
+    # states of eight torsions of a 14-state scheme (14^8: no int64 key of (row, from, to) holds
+    # them; the tally ranks the codes of a chunk, and takes half the series at a time when even the
+    # ranks do not fit, forced here by a tiny key limit).
     from deeptime.markov import TransitionCountEstimator
 
+    from dihedra.analysis.kinetics import tally as tally_module
+
+    if key_limit:
+        monkeypatch.setattr(tally_module, "_KEY_LIMIT", key_limit)
     rng = np.random.default_rng(3)
-    lags = [1, 3, 7]
+    lags, pool = [1, 3, 7], np.array([1, 0])
     reps = []
     for n in (300, 41, 500):
         traj = np.cumsum(rng.random((n, 2)) < 0.08, axis=0) % 3
         traj[: rng.integers(0, 20)] = -1  # unassigned prefix (before the first core visit)
         reps.append(traj)
-    tally = StateTally(2, lags)
+    tally = StateTally(2, lags, pool=pool)
     for traj in reps:
         cuts = np.sort(rng.choice(np.arange(1, len(traj)), size=min(6, len(traj) - 1), replace=False))
         for part in np.split(traj, cuts):
-            tally.add(part)
+            tally.add(np.where(part >= 0, part * scale, part))
         tally.end_replica()
     tally.finish()
     for series in range(2):
@@ -191,15 +200,15 @@ def test_streamed_counts_match_deeptime_and_run_lengths():
             ref = TransitionCountEstimator(lag, "sliding", n_states=3).fit(dtrajs).fetch_model().count_matrix
             rows, counts = tally.pairs_[lag]
             mine = np.zeros((3, 3))
-            sel = rows[:, 0] == series
-            np.add.at(mine, (rows[sel, 1], rows[sel, 2]), counts[sel])
+            sel = rows[:, 0] == pool[series]
+            np.add.at(mine, (rows[sel, 1] // scale, rows[sel, 2] // scale), counts[sel])
             assert np.array_equal(mine, ref)
         expected = {}
         for d in dtrajs:
-            for seg in run_lengths(list(d)):
+            for seg in run_lengths(list(d * scale)):
                 expected[seg] = expected.get(seg, 0) + 1
         rows, counts = tally.segments_
-        sel = rows[:, 0] == series
+        sel = rows[:, 0] == pool[series]
         got = {(int(s), int(n), bool(c)): int(k) for (_, s, n, c), k in zip(rows[sel], counts[sel])}
         assert got == expected
 
@@ -370,14 +379,20 @@ def test_chunked_reading_equals_whole(two_replicas):
             pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
 
 
+def four_chains(folder, seed, n_frames=400):
+    """Four five-site chains (two torsions each, one conformer group per chain) in the fast jump
+    process: (topology, trajectory)."""
+    rng = np.random.default_rng(seed)
+    states = np.stack([jump_process(5 * RATES, n_frames, DT_PS, rng) for _ in range(8)], axis=1)
+    angles = CENTRES_DEG[states] + rng.normal(0.0, 8.0, states.shape)
+    return write_system(str(folder), chain5_coordinates(angles[:, :4], angles[:, 4:], seed=seed),
+                        names=("C1", "C2", "C3", "C4", "C5"), resname="PEN", dt_ps=DT_PS, stem="mem")
+
+
 def test_in_memory_result_equals_folder(tmp_path):
     # common practice: the analysis reads the time series only through the tracking result, so a result
     # kept in memory and the same run loaded from its folder give identical tables and files
-    rng = np.random.default_rng(21)
-    states = np.stack([jump_process(5 * RATES, 400, DT_PS, rng) for _ in range(8)], axis=1)
-    angles = CENTRES_DEG[states] + rng.normal(0.0, 8.0, states.shape)
-    top, traj = write_system(str(tmp_path), chain5_coordinates(angles[:, :4], angles[:, 4:], seed=21),
-                             names=("C1", "C2", "C3", "C4", "C5"), resname="PEN", dt_ps=DT_PS, stem="mem")
+    top, traj = four_chains(tmp_path, 21)
     memory = track(top, [traj], torsions="rotatable", keep_angles=True, temperature_k=300.0)
     out = str(tmp_path / "res")
     track(top, [traj], torsions="rotatable", keep_angles=True, temperature_k=300.0, out=out)
@@ -395,6 +410,49 @@ def test_in_memory_result_equals_folder(tmp_path):
     for pa, pb in zip(paths_a, paths_b):
         if pa.endswith(".csv"):
             assert open(pa, "rb").read() == open(pb, "rb").read(), pa
+
+
+def test_time_series_is_tallied_in_bounded_pieces(tmp_path, monkeypatch):
+    # the pass works on about CHUNK_VALUES values at a time over all its threads together, however
+    # long the run (two parts side by side: each at most half of it), reads every frame of every
+    # torsion once, and gives the tables of the pass in one piece
+    from dihedra.analysis.kinetics import tally as tally_module
+
+    top, traj = four_chains(tmp_path, 5)
+    result = track(top, [traj], torsions="rotatable", keep_angles=True, temperature_k=300.0)
+    whole = state_kinetics(result, lags=[1, 3], n_bootstrap=20, seed=2)
+    seen, add_series = [], StateTally.add_series
+    monkeypatch.setattr(StateTally, "add_series",
+                        lambda self, x: seen.append((id(self), self.n_states, x.shape)) or add_series(self, x))
+    for name, value in (("CHUNK_VALUES", 120), ("READ_VALUES", 480), ("_THREADS", 2), ("_MIN_PART", 1)):
+        monkeypatch.setattr(tally_module, name, value)
+    pieces = state_kinetics(result, lags=[1, 3], n_bootstrap=20, seed=2)
+    torsions = [(who, shape) for who, n_states, shape in seen if n_states == 3]
+    assert len({who for who, _ in torsions}) == 2  # two parts of four torsions
+    assert max(a * b for _, _, (a, b) in seen) <= 120 // 2
+    assert sum(a * b for _, (a, b) in torsions) == 8 * 400
+    for name in TABLE_COLUMNS:
+        pd.testing.assert_frame_equal(getattr(pieces, name), getattr(whole, name))
+
+
+def test_tables_hold_text_as_codes(tmp_path):
+    # a Markov model of k states has k^2 mfpt rows per lag (hundreds of thousands for the conformers
+    # of a protein residue): its text columns are categoricals (codes, categories sorted as the
+    # strings), a few bytes a row, and are written as the same text as plain strings
+    from dihedra.io.tables import write_table
+
+    walk = np.cumsum(np.random.default_rng(4).choice([-1, 0, 0, 1], size=6000)) % 30  # on a ring of 30 states
+    tables = analyse_state_series([walk], [f"s{k:02d}" for k in range(30)], dt_ps=1.0, lags=[1, 2], n_bootstrap=0)
+    mfpt = tables["mfpt"]
+    assert len(mfpt) == 2 * 30 * 30
+    for c in ("level", "name", "type", "from_state", "to_state"):
+        assert list(mfpt[c].cat.categories) == sorted(set(mfpt[c].astype(str))), c
+    # four numbers of 8 bytes and five codes of one byte (as Python strings: about 300 bytes a row)
+    assert mfpt.memory_usage(deep=True).sum() / len(mfpt) < 48
+    for name, table in tables.items():
+        plain = table.astype({c: object for c in table.columns if isinstance(table[c].dtype, pd.CategoricalDtype)})
+        a, b = write_table(table, str(tmp_path), "codes.csv"), write_table(plain, str(tmp_path), "text.csv")
+        assert open(a, "rb").read() == open(b, "rb").read(), name
 
 
 def test_clear_errors(two_replicas, tmp_path, capsys):

@@ -77,9 +77,11 @@ def main(argv=None):
     if "pyarrow" not in sys.modules:   # Arrow on the system heap: see trajectory.result.arrow_on_system_heap
         os.environ.setdefault("ARROW_DEFAULT_MEMORY_POOL", "system")
     given = sys.argv[1:] if argv is None else argv
-    if "numpy" not in sys.modules and next((a for a in given if not a.startswith("-")), None) == "track":
+    if "numpy" not in sys.modules and next((a for a in given if not a.startswith("-")), None) in ("track", "kinetics"):
         # one BLAS thread: the pass's own threads use the cores, and OpenBLAS' idle threads spin
-        # for a while after every call (on 2 cores, about 0.1-0.2 s of a 6,000-frame run)
+        # for a while after every call (on 2 cores, about 0.1-0.2 s of a 6,000-frame run); the
+        # small Markov matrices of kinetics gain nothing from threads, and on a busy machine its
+        # conformer models took 27 s instead of 2.3 s with them
         os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     if argv is None:
         _note_early_interrupts()

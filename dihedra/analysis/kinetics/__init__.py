@@ -90,14 +90,17 @@ flat in ``tau`` once the model is Markovian; choose ``tau`` there. Mean first-pa
 
 Computation
 -----------
-The time series is read once, in chunks of about ``CHUNK_VALUES`` values, by a few threads that
-each take whole molecules' columns (Parquet reads only the columns asked for; NumPy and Arrow
-release the interpreter lock). For every lag one ``bincount`` per chunk adds the pairs of all
-torsions to dense ``(torsion, from, to)`` counts; segments are found from the changes of state.
-Everything after that is array arithmetic over all torsions at once (rates, populations,
-Kaplan-Meier statistics, Markov models) and the tables are built column by column, so the cost
-grows with the number of samples, not with a per-torsion loop: 1.2 x 10^8 samples (15,000
-torsions x 8,000 frames) take 10-17 s on two cores shared with other jobs (docs/performance.md).
+The time series is read once, in chunks of about ``CHUNK_VALUES`` values (all threads together,
+so the memory does not grow with the frames), by a few threads that each take whole molecules'
+columns (Parquet reads only the columns asked for; NumPy and Arrow release the interpreter lock).
+For every lag one ``bincount`` per chunk adds the pairs of all torsions to dense ``(torsion, from,
+to)`` counts; the joint codes of conformers, too many for dense counts, are ranked within the
+chunk and their pairs counted by one sort of integer keys. Segments are found from the changes of
+state. Everything after that is array arithmetic over all torsions at once (rates, populations,
+Kaplan-Meier statistics, Markov models) and the tables are built column by column, their text as
+categorical codes, so the cost grows with the number of samples, not with a per-torsion loop: 1.2 x
+10^8 samples (15,000 torsions x 8,000 frames) take 10-17 s on two cores shared with other jobs
+(docs/performance.md).
 
 Transition-state theory
 -----------------------

@@ -50,7 +50,8 @@ class KineticsResult:
     ----------
     transitions, lifetimes, timescales, mfpt : DataFrame
         The tables of ``transitions.csv``, ``lifetimes.csv``, ``timescales.csv``, ``mfpt.csv``
-        (``level`` is ``torsion``, ``type`` or ``conformer``).
+        (``level`` is ``torsion``, ``type`` or ``conformer``). In all six tables the text columns
+        (level, name, type and the states) are categorical, their categories sorted.
     dwell_times : DataFrame
         ``dwell_times.csv``: the observed dwell-time distribution per type and conformer type
         (level, name, type, state, dwell_ps, n_complete, n_censored).
@@ -475,7 +476,8 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     conformers : bool
         Also analyse conformers (joint states of the torsions of each group).
     batch_frames : int, optional
-        Frames read at a time (default: about :data:`~.tally.READ_VALUES` values per read).
+        Frames read at a time (default: about :data:`~.tally.READ_VALUES` values per read, all
+        threads together).
     log : callable, optional
         Receives progress lines.
     torsion_bootstrap : bool

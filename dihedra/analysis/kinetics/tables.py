@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from pandas.api.types import union_categoricals
 
 from .estimators import (DEFAULT_BOOTSTRAP, Z_95, _bootstrap_mean_interval, _rate_statistics, _segmented_sum,
                          _stationary_stack, kaplan_meier_groups)
@@ -82,10 +83,23 @@ def _merged_segments(subject, state, length, censored, count):
     return tuple(rows.T) + (summed,)
 
 
+def _text(labels, codes):
+    """The column ``labels[codes]`` as a categorical (categories sorted, so that it sorts and groups
+    as the strings would).
+
+    The tables hold text as codes: the Markov model of a conformer type over a few hundred joint
+    states gives hundreds of thousands of ``mfpt`` rows per lag (every pair of connected states).
+    As Python strings turned into pandas' string arrays, the 3.7 million rows of adenylate kinase
+    (10,000 frames, crisp states) took 1.3 GB at the peak and 4 s; as codes a row holds about 40
+    bytes."""
+    categories, inverse = np.unique(np.asarray(labels).astype(str), return_inverse=True)
+    return pd.Categorical.from_codes(inverse.reshape(-1)[np.asarray(codes, dtype=np.int64)], categories)
+
+
 def _head(stack, who):
     """The level, name and type columns of the rows of subjects ``who``."""
-    return {"level": np.full(len(who), stack.level, dtype=object), "name": stack.names[who],
-            "type": stack.types[who]}
+    return {"level": _text([stack.level], np.zeros(len(who), dtype=np.int64)), "name": _text(stack.names, who),
+            "type": _text(stack.types, who)}
 
 
 def _stack_tables(stack, dt_ps, lags, n_bootstrap, rng):
@@ -102,10 +116,10 @@ def _stack_tables(stack, dt_ps, lags, n_bootstrap, rng):
     out = {"transitions": _transition_rows(stack, c1, t, visited),
            "lifetimes": _lifetime_rows(stack, c1, t, visited, dwell, km, dt_ps, n_bootstrap, rng)}
     if stack.dwell:
-        out["dwell_times"] = {**_head(stack, dwell["subject"]), "state": stack.labels[dwell["state"]],
+        out["dwell_times"] = {**_head(stack, dwell["subject"]), "state": _text(stack.labels, dwell["state"]),
                               "dwell_ps": dwell["length"] * float(dt_ps), "n_complete": dwell["complete"],
                               "n_censored": dwell["censored"]}
-        out["dwell_survival"] = {**_head(stack, dwell["subject"]), "state": stack.labels[dwell["state"]],
+        out["dwell_survival"] = {**_head(stack, dwell["subject"]), "state": _text(stack.labels, dwell["state"]),
                                  "time_ps": dwell["length"] * float(dt_ps),
                                  "survival": km["survival"] if km else np.zeros(0),
                                  "n_at_risk": km["at_risk"].astype(np.int64) if km else np.zeros(0, dtype=np.int64)}
@@ -121,7 +135,7 @@ def _transition_rows(stack, c1, t, visited):
     if not stack.all_pairs:
         keep &= c1 > 0
     ps, i, j = np.nonzero(keep)
-    return {**_head(stack, ps), "from_state": stack.labels[i], "to_state": stack.labels[j],
+    return {**_head(stack, ps), "from_state": _text(stack.labels, i), "to_state": _text(stack.labels, j),
             "count": c1[ps, i, j].astype(np.int64), "time_in_from_ps": t[ps, i],
             **_rate_statistics(c1[ps, i, j], t[ps, i]), "n_trajectories": stack.n_trajectories[ps]}
 
@@ -140,7 +154,7 @@ def _lifetime_rows(stack, c1, t, visited, dwell, km, dt_ps, n_bootstrap, rng):
         counted = np.where(total_frames > 0, seg_frames / total_frames, seg_frames)
         from_rates = np.where(exits > 0, t / exits, np.nan)
     ps, i = np.nonzero(visited)
-    return {**_head(stack, ps), "state": stack.labels[i],
+    return {**_head(stack, ps), "state": _text(stack.labels, i),
             **_lifetime_columns(dwell, km, ps * v + i, stack.bootstrap, dt_ps, n_bootstrap, rng),
             "mean_from_rates_ps": from_rates[ps, i], "time_in_state_ps": seg_frames[ps, i] * dt_ps,
             "population_counted": counted[ps, i], "population_from_rates": pi[ps, i],
@@ -162,17 +176,25 @@ def _markov_rows(stack, visited, dt_ps, lags):
                 "timescale_ps": ts[who, col] * dt_ps, "n_states_connected": k}))
             a, b = np.repeat(np.arange(k), k), np.tile(np.arange(k), k)
             parts["mfpt"].append((np.repeat(members, k * k), order, {
-                "lag_frames": lag, "lag_ps": lag * dt_ps, "from_state": np.tile(stack.labels[act[a]], g),
-                "to_state": np.tile(stack.labels[act[b]], g), "transition_probability": tm.reshape(-1),
+                "lag_frames": lag, "lag_ps": lag * dt_ps, "from_state": np.tile(act[a], g),
+                "to_state": np.tile(act[b], g), "transition_probability": tm.reshape(-1),
                 "mfpt_ps": np.where(np.eye(k, dtype=bool), np.nan, mf * dt_ps).reshape(-1)}))
     out = {}
     for name, columns in (("timescales", TIMESCALE_COLUMNS), ("mfpt", MFPT_COLUMNS)):
-        got = parts[name]
+        got = parts.pop(name)
         who = np.concatenate([x[0] for x in got]) if got else np.zeros(0, dtype=np.int64)
         order = np.concatenate([np.full(len(x[0]), x[1]) for x in got]) if got else np.zeros(0, dtype=np.int64)
         sort = np.lexsort((order, who))  # stable: rows of one model keep their order
-        cols = {c: np.concatenate([np.broadcast_to(x[2][c], (len(x[0]),)) for x in got])[sort] if got
+        if (sort[1:] > sort[:-1]).all():
+            sort = slice(None)   # (in order already, as the one subject of a conformer stack: no copies)
+        del order
+        # a column at a time, its pieces let go as it is joined: the models of one conformer type
+        # over 600 states are 2.4 million mfpt rows
+        cols = {c: np.concatenate([np.broadcast_to(x[2].pop(c), (len(x[0]),)) for x in got])[sort] if got
                 else np.zeros(0) for c in columns[3:]}
+        for c in ("from_state", "to_state"):   # (state codes until here)
+            if c in cols:
+                cols[c] = _text(stack.labels, cols[c])
         out[name] = {**_head(stack, who[sort]), **cols}
     return out
 
@@ -232,21 +254,28 @@ def _lifetime_columns(dwell, km, cells, bootstrap, dt_ps, n_bootstrap, rng):
 
 
 def _frames(columns_list, columns):
-    """One DataFrame from the column dicts of several stacks (in order); absent columns are NaN."""
+    """One DataFrame from the column dicts of several stacks (in order); absent columns are NaN.
+
+    Each column is taken out of the dicts as it is joined, so that the pieces and the table are
+    not both held whole (the ``mfpt`` table of a protein's conformers is millions of rows)."""
     parts = [c for c in columns_list if c is not None and len(c.get(columns[0], ())) > 0]
     if not parts:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
+    sizes = [len(p[columns[0]]) for p in parts]
 
-    def column(part, name):
-        n = len(part[columns[0]])
-        value = part.get(name, np.nan)
-        return np.asarray(value) if np.ndim(value) else np.full(n, value)
+    def joined(name):
+        pieces = [p.pop(name, np.nan) for p in parts]
+        if all(isinstance(x, pd.Categorical) for x in pieces):
+            return union_categoricals(pieces, sort_categories=True)
+        return np.concatenate([np.asarray(x) if np.ndim(x) else np.full(n, x) for x, n in zip(pieces, sizes)])
 
-    return pd.DataFrame({c: np.concatenate([column(p, c) for p in parts]) for c in columns}, columns=columns)
+    # (copy=False: pandas would otherwise copy the float columns into one 2-D block)
+    return pd.DataFrame({c: joined(c) for c in columns}, columns=columns, copy=False)
 
 
 def _tables(parts):
-    """The six DataFrames (:data:`TABLE_COLUMNS`) from the column dicts of several stacks."""
+    """The six DataFrames (:data:`TABLE_COLUMNS`) from the column dicts of several stacks (which
+    are emptied on the way)."""
     return {name: _frames([p.get(name) for p in parts], columns) for name, columns in TABLE_COLUMNS.items()}
 
 

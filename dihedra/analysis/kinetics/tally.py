@@ -31,6 +31,11 @@ from .assignment import CoreCodes, _fill_rows, _joint_codes, _size_layout, codes
 DENSE_PAIR_CELLS = 1 << 24
 #: Temporary arrays of the dense pair count hold about this many values (4 MB: they stay in the cache).
 _CACHE_VALUES = 1 << 19
+#: Sparse counts merge the rows added since the last merge when there are more than this many,
+#: and more than the rows merged so far (so a merge sorts at most about twice the rows added).
+_MERGE_ROWS = 500_000
+#: Sparse pair counts are keyed by one integer per pair below this bound (int64).
+_KEY_LIMIT = 2.0 ** 62
 
 
 class _SparseCounts:
@@ -47,7 +52,9 @@ class _SparseCounts:
             self._rows.append(np.asarray(rows, dtype=np.int64).reshape(-1, self.width))
             self._counts.append(np.asarray(counts, dtype=np.int64))
             self._pending += len(rows)
-            if self._pending > 2_000_000:
+            # (the rows waiting to be merged were let grow to 2 million, 40 bytes each, merged at
+            # the end with twice as much again: 180 MB per thread on 15,000 torsions)
+            if self._pending > max(_MERGE_ROWS, len(self._rows[0])):
                 self._compact()
 
     def _compact(self):
@@ -173,13 +180,7 @@ class StateTally:
             return
         lmax = self._tail.shape[1]
         if not self._dense:
-            full = np.concatenate([self._tail, xt.astype(np.int64, copy=False)], axis=1)
-            for lag in self.lags:
-                a = full[:, lmax - lag:lmax - lag + n]
-                ok = (a >= 0) & (xt >= 0)
-                rows = np.broadcast_to(self._series_row[:, None], xt.shape)[ok]
-                self._pairs[lag].add(*_count_rows([rows, a[ok], xt[ok].astype(np.int64)]))
-            self._tail = full[:, -lmax:].copy()
+            self._count_sparse(xt)
         else:  # a few series at a time, so that the temporary keys stay in the cache
             if xt.max() >= self.n_states:
                 raise ValueError(f"state code {int(xt.max())} is not below n_states = {self.n_states}")
@@ -187,6 +188,37 @@ class StateTally:
             for lo in range(0, self.n_series, step):
                 self._count_dense(xt[lo:lo + step], lo)
         self._add_segments(xt)
+
+    def _count_sparse(self, xt, lo=0):
+        """Sparse pair counts of the series lo, lo + 1, ...: the codes of the chunk ranked first,
+        then one int64 key (row, from rank, to rank) per pair, counted by one sort per lag.
+
+        Joint conformer codes span n_states^size (14^8 for a residue of eight torsions), too wide
+        for one key of (row, from, to), while a chunk holds a few thousand distinct codes. Sorting
+        the pairs as rows of three columns instead took 10 of the 13 s of the pass over 10,000
+        frames of adenylate kinase (crisp states)."""
+        if not len(xt):
+            return
+        n, lmax = xt.shape[1], self._tail.shape[1]
+        hi = lo + len(xt)
+        full = np.concatenate([self._tail[lo:hi], xt.astype(np.int64, copy=False)], axis=1)
+        codes, rank = np.unique(full, return_inverse=True)
+        rows = self._series_row[lo:hi]
+        first, width = int(rows.min()), len(codes)
+        if (int(rows.max()) - first + 1) * float(width) ** 2 >= _KEY_LIMIT and len(xt) > 1:
+            half = len(xt) // 2   # (too many codes for one key: half the series at a time)
+            self._count_sparse(xt[:half], lo)
+            self._count_sparse(xt[half:], lo + half)
+            return
+        self._tail[lo:hi] = full[:, -lmax:]
+        rank = rank.reshape(full.shape)
+        to_key = (rows - first)[:, None] * (width * width) + rank[:, lmax:]
+        assigned = xt >= 0
+        for lag in self.lags:
+            ok = assigned & (full[:, lmax - lag:lmax - lag + n] >= 0)
+            keys, counts = np.unique((to_key + rank[:, lmax - lag:lmax - lag + n] * width)[ok], return_counts=True)
+            row, pair = np.divmod(keys, width * width)
+            self._pairs[lag].add(np.column_stack([row + first, codes[pair // width], codes[pair % width]]), counts)
 
     def _count_dense(self, xt, lo):
         """Dense pair counts of the series lo, lo + 1, ... (one bincount per lag)."""
@@ -304,31 +336,45 @@ def _merge_tallies(done, parts, n_columns, n_states):
                                     n_rows=max(c.n_rows for c in conf))
 
 
-#: Work on about this many (frame, torsion) values at a time when streaming a time series.
-CHUNK_VALUES = 8_000_000
-#: Values decoded from the time series at a time (the steps that follow take CHUNK_VALUES at a time).
-READ_VALUES = 16_000_000
+#: Work on about this many (frame, torsion) values at a time when streaming a time series (all
+#: threads together).
+CHUNK_VALUES = 2_000_000
+#: Values decoded from the time series at a time (all threads together; the steps that follow take
+#: CHUNK_VALUES at a time).
+READ_VALUES = 8_000_000
 
 
-def _replica_blocks(result, kind, labels, batch_frames=None):
+def _frames_at_a_time(n_columns, n_decoded, n_parts, batch_frames=None):
+    """Frames read and frames worked on at a time by each of ``n_parts`` parts of ``n_columns``
+    torsions, side by side.
+
+    Together the parts decode about READ_VALUES values (a frame of a packed time series decodes
+    all ``n_decoded`` torsions of the file, whichever are asked for) and work on about
+    CHUNK_VALUES, so that the memory of the pass grows neither with the frames nor with the
+    threads (each of two parts took 10,000 frames of 530 protein torsions at once, and the work
+    on them about 35 bytes a value in NumPy arrays alone)."""
+    read = int(batch_frames) if batch_frames else max(64, READ_VALUES // (n_parts * max(1, n_decoded)))
+    return read, min(read, max(1, CHUNK_VALUES // (n_parts * max(1, n_columns))))
+
+
+def _replica_blocks(result, kind, labels, frames):
     """Yield (replica, values) of a time series: values (n_labels, n_frames) laid out series by
-    series, consecutive frames of one replica, about CHUNK_VALUES at a time (read through
-    :meth:`~dihedra.trajectory.result.TrackResult.iter_chunks`, READ_VALUES at a time)."""
-    n = max(1, len(labels))
-    batch = int(batch_frames) if batch_frames else max(64, READ_VALUES // n)
-    step = min(batch, max(1, CHUNK_VALUES // n))
-    for chunk in result.iter_chunks(kind, labels, batch):
+    series, consecutive frames of one replica, ``frames = (read, work)`` frames at a time: read
+    through :meth:`~dihedra.trajectory.result.TrackResult.iter_chunks` ``read`` frames at a time
+    and yielded ``work`` frames at a time (see :func:`_frames_at_a_time`)."""
+    read, step = frames
+    for chunk in result.iter_chunks(kind, labels, read):
         for a in range(0, len(chunk), step):
             yield chunk.replica, chunk.values[:, a:a + step]
 
 
-def _core_blocks(result, labels, batch_frames=None):
+def _core_blocks(result, labels, frames):
     """Yield (replica, core codes) from the state codes and the core bits of the pass
     (``cores.parquet``), read side by side in the same blocks."""
     damaged = DihedraError("the core bits (cores.parquet) do not match the states (states.parquet) frame by frame; "
                            "the results folder is damaged: run 'dihedra track' again.")
-    bits = _replica_blocks(result, "cores", labels, batch_frames)
-    for rep, codes in _replica_blocks(result, "states", labels, batch_frames):
+    bits = _replica_blocks(result, "cores", labels, frames)
+    for rep, codes in _replica_blocks(result, "states", labels, frames):
         rep_bits, in_core = next(bits, (None, None))
         if rep != rep_bits or in_core is None or codes.shape != in_core.shape:
             raise damaged
@@ -361,8 +407,9 @@ def _column_parts(n_columns, members, n_parts):
                                                 dtype=np.int64)) for k in range(n_parts) if (part == k).any()]
 
 
-def _tally_columns(part, result, labels, kind, scheme, margin, lags, members, pool, batch_frames):
-    """Read the columns of one part, assign states and tally torsions and conformer groups.
+def _tally_columns(part, result, labels, kind, scheme, margin, lags, members, pool, frames):
+    """Read the columns of one part, ``frames = (read, work)`` frames at a time (see
+    :func:`_frames_at_a_time`), assign states and tally torsions and conformer groups.
 
     Returns (torsion tally, conformer tally or None, frames read).
     """
@@ -381,7 +428,7 @@ def _tally_columns(part, result, labels, kind, scheme, margin, lags, members, po
     n_frames = 0
     core = _core_assigner(result, scheme, margin, [labels[c] for c in columns]) if kind == "angles" else None
     blocks = _core_blocks if kind == "cores" else functools.partial(_replica_blocks, kind=kind)
-    for rep, block in blocks(result, labels=[labels[c] for c in columns], batch_frames=batch_frames):
+    for rep, block in blocks(result, labels=[labels[c] for c in columns], frames=frames):
         if rep != current:
             if current is not None:
                 t_tally.end_replica()
@@ -444,15 +491,19 @@ def tally_result(result, kind, labels, scheme, margin, lags, members, pool, batc
     pool : ndarray of int
         Conformer type of each group (the row of its counts).
     batch_frames : int, optional
-        Frames read at a time (default: about READ_VALUES values per read).
+        Frames read at a time (default: see :func:`_frames_at_a_time`).
 
     Returns
     -------
     torsion tally, conformer tally (or None), frames read
     """
-    read = functools.partial(_tally_columns, result=result, labels=labels, kind=kind, scheme=scheme, margin=margin,
-                             lags=lags, members=members, pool=pool, batch_frames=batch_frames)
     parts = _column_parts(len(labels), members, _THREADS)
+    n_decoded = max(len(labels), len(result.torsions))
+
+    def read(part):
+        return _tally_columns(part, result, labels, kind, scheme, margin, lags, members, pool,
+                              _frames_at_a_time(len(part[0]), n_decoded, len(parts), batch_frames))
+
     if len(parts) > 1:
         from concurrent.futures import ThreadPoolExecutor
 
