@@ -271,6 +271,9 @@ def test_three_state_jump_process_rates_and_lifetimes(clean_folder, capsys):
     assert main(["kinetics", clean_folder, "--lag-ps", "1", "5", "20", "--bootstrap", "400"]) == 0
     screen = capsys.readouterr().out
     assert "anti -> gauche+" in screen and "upper bound" in screen
+    # one replica of 16 pentanes: each type has 16 torsions, each conformer type 16 groups
+    assert f"({N_MOLECULES} torsions)" in screen and f"({N_MOLECULES} groups)" in screen
+    assert "trajectories" not in screen
     tr = pd.read_csv(os.path.join(clean_folder, "transitions.csv"))
     lt = pd.read_csv(os.path.join(clean_folder, "lifetimes.csv"))
     ts = pd.read_csv(os.path.join(clean_folder, "timescales.csv"))

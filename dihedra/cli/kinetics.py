@@ -99,8 +99,12 @@ def report_kinetics(res, folder=None, written=(), max_types=6, max_conformer_row
         for name in names[:max_types]:
             sub_l = lt[(lt["level"] == level) & (lt["name"] == name)]
             sub_t = tr[(tr["level"] == level) & (tr["name"] == name)]
-            n_traj = int(sub_l["n_trajectories"].iloc[0])
-            print(f"\n{title} {name} ({n_traj} trajectories)")
+            n_traj = int(sub_l["n_trajectories"].iloc[0])   # (one state series per torsion or group and replica)
+            n_rep = max(1, int(p["n_replicas"]))
+            what = "torsion" if level == "type" else "group"
+            count = (_count(n_traj // n_rep, what) + (f" x {_count(n_rep, 'replica')}" if n_rep > 1 else "")
+                     if n_traj % n_rep == 0 else f"{n_traj} state series")
+            print(f"\n{title} {name} ({count})")
             rows = sub_l.sort_values("population_counted", ascending=False).head(max_conformer_rows
                                                                                    if level == "conformer" else None)
             width = max(8, max(len(s) for s in rows["state"]))
@@ -138,3 +142,8 @@ def report_kinetics(res, folder=None, written=(), max_types=6, max_conformer_row
 
 def _fmt(value, spec):
     return "-" if value is None or not np.isfinite(value) else format(value, spec)
+
+
+def _count(n, noun):
+    """``1 torsion``, ``6 torsions``."""
+    return f"{n} {noun}{'' if n == 1 else 's'}"
