@@ -43,7 +43,8 @@ from .trajectory.convergence import (TARGET_ERROR, TARGET_ERROR_KJ_MOL, check_ta
 from .trajectory.discard import plan_discard
 from .trajectory.inputs import FileHashes, check_readable, load_universe, truncated_error, usable_frames
 from .trajectory.result import BlockParts, bound_heap, release_memory
-from .trajectory.states import TorsionStates, check_frame_range, check_pass_options, whole_number
+from .trajectory.states import (TorsionStates, check_frame_range, check_pass_options, describe_frame_range,
+                                 no_frames_error, whole_number)
 from .trajectory.timeblocks import pass_time_blocks
 from .trajectory.weights import weights_per_replica
 
@@ -63,25 +64,6 @@ def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None)
     return [os.fspath(f) for f in files if isinstance(f, (str, os.PathLike))]
 
 
-def describe_frame_range(start, stop, step):
-    """A frame range in words (only what was given): 'from frame 20 up to frame 10, every 2nd frame'.
-
-    Examples
-    --------
-    >>> describe_frame_range(2000, None, None)
-    'from frame 2000 to the end'
-    >>> describe_frame_range(None, 10, 3)
-    'from the first frame up to frame 10 (not included), every 3rd frame'
-    """
-    first = f"from frame {start}" if start is not None else "from the first frame"
-    last = f"up to frame {stop} (not included)" if stop is not None else "to the end"
-    every = ""
-    if step not in (None, 1):
-        suffix = {1: "st", 2: "nd", 3: "rd"}.get(int(step) % 10 if int(step) % 100 not in (11, 12, 13) else 0, "th")
-        every = f", every {step}{suffix} frame"
-    return f"{first} {last}{every}"
-
-
 def _frame_indices(universe, start, stop, step, where):
     """The frames analysed: ``start:stop:step`` of the frames that can be read (an XTC frame cut at
     the end of the file is left out)."""
@@ -94,8 +76,7 @@ def _frame_indices(universe, start, stop, step, where):
         raise DihedraError(f"{where}: the frames {span} are not a valid range ({exc}); give start, stop and "
                            "step (--start, --stop, --step) as whole numbers, step above 0.") from None
     if len(frames) == 0:
-        raise DihedraError(f"{where}: the frames {span} are none of its {n} frames (numbered 0..{n - 1}); give a "
-                           "start below the stop (--start, --stop) within them.")
+        raise no_frames_error(where, start, stop, step, n)
     return frames
 
 

@@ -106,3 +106,11 @@ def test_weights_must_match_the_frames(universe):
         dihedra.TorsionStates(universe.atoms, weights=np.ones(7), **KW).run(stop=5)
     with pytest.raises(DihedraError, match="AtomGroup or Universe"):
         dihedra.TorsionStates("protein.psf", **KW)
+
+
+@pytest.mark.parametrize("kwargs", [dict(start=5000), dict(start=50, stop=10), dict(frames=[]),
+                                    dict(frames=np.zeros(3, dtype=bool))])
+def test_a_frame_range_without_frames_is_one_clear_error(universe, kwargs):
+    # AnalysisBase would start the pass on no frames and fail deep inside it (an IndexError)
+    with pytest.raises(DihedraError, match="none of its|selects no frame"):
+        dihedra.TorsionStates(universe.atoms).run(**kwargs)

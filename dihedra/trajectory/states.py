@@ -167,6 +167,12 @@ class TorsionStates(TorsionPass):
         A serial run on a machine with two or more cores reads the trajectory in one thread and
         computes in a second one; the results are the same."""
         check_frame_range(start, stop, step)
+        chosen = (len(range(*self._trajectory.check_slice_indices(start, stop, step))) if frames is None else
+                  int(np.count_nonzero(frames)) if np.asarray(frames).dtype == bool else len(frames))
+        if chosen == 0:   # (else an IndexError deep in the pass)
+            if frames is not None:
+                raise DihedraError("frames selects no frame; give the indices (or a mask) of at least one.")
+            raise no_frames_error("the trajectory", start, stop, step, self._trajectory.n_frames)
         self.threads = pass_threads(self._threads_asked, backend or "serial")
         self._range = dict(start=start, stop=stop, step=step)
         self._started = time.time()
@@ -315,6 +321,32 @@ def check_frame_range(start, stop, step):
     for name, value in (("start", start), ("stop", stop)):
         if value is not None:
             whole_number(name, value, minimum=-(2 ** 62))
+
+
+def describe_frame_range(start, stop, step):
+    """A frame range in words (only what was given): 'from frame 20 up to frame 10, every 2nd frame'.
+
+    Examples
+    --------
+    >>> describe_frame_range(2000, None, None)
+    'from frame 2000 to the end'
+    >>> describe_frame_range(None, 10, 3)
+    'from the first frame up to frame 10 (not included), every 3rd frame'
+    """
+    first = f"from frame {start}" if start is not None else "from the first frame"
+    last = f"up to frame {stop} (not included)" if stop is not None else "to the end"
+    every = ""
+    if step not in (None, 1):
+        suffix = {1: "st", 2: "nd", 3: "rd"}.get(int(step) % 10 if int(step) % 100 not in (11, 12, 13) else 0, "th")
+        every = f", every {step}{suffix} frame"
+    return f"{first} {last}{every}"
+
+
+def no_frames_error(where, start, stop, step, n):
+    """The error of a frame range that selects none of the ``n`` frames of a trajectory."""
+    return DihedraError(f"{where}: the frames {describe_frame_range(start, stop, step)} are none of its {n} frames "
+                        f"(numbered 0..{n - 1}); give a start below the stop within them (start, stop; --start, "
+                        "--stop on the command line).")
 
 
 def _within(tset, atoms, universe):
