@@ -171,6 +171,9 @@ def test_in_memory_and_saved_results_give_identical_tables(tmp_path):
     folder = tmp_path / "saved"
     folder.mkdir()
     write_results(memory, str(folder))
+    import dihedra   # (the tables only: the run's convergence checks go with them, as track writes them)
+
+    dihedra.convergence(memory).save(str(folder))
     loaded = load_results(str(folder))
     scan = scan_from_points(GRID, rb_energy(GRID))
     label = memory.torsion_set.labels[3]
@@ -204,7 +207,10 @@ def test_in_memory_and_saved_results_give_identical_tables(tmp_path):
     pd.testing.assert_frame_equal(ensemble_couplings(ran, "karplus-1959", types=[memory.torsion_set.types[0]],
                                                      experimental=experimental).couplings,
                                   cr.couplings, check_exact=True)
-    pd.testing.assert_frame_equal(compare_with_scan(ran, scan, temperature_k=T, n_bootstrap=50).table, cm.table,
+    ran_table = compare_with_scan(ran, scan, temperature_k=T, n_bootstrap=50).table
+    # (without its state series, keep_states=False, the run's convergence was never checked)
+    assert list(ran_table["sampling"]) == ["not checked"]
+    pd.testing.assert_frame_equal(ran_table.drop(columns="sampling"), cm.table.drop(columns="sampling"),
                                   check_exact=True)
     with pytest.raises(DihedraError, match="expected a tracking result"):
         compare_with_scan(str(folder), scan, temperature_k=T)
@@ -212,3 +218,28 @@ def test_in_memory_and_saved_results_give_identical_tables(tmp_path):
     path = scan_csv(tmp_path / "scan.csv", "angle_deg,energy_kj_mol", rb_energy(GRID))
     from_file = compare_with_scan(memory, path, temperature_k=T, n_bootstrap=50)
     pd.testing.assert_frame_equal(from_file.table, cm.table, check_exact=True)
+
+
+def test_a_verdict_on_unconverged_sampling_says_so(butane, tmp_path, capsys):
+    # five frames of the butane example: the convergence checks of the run call it not converged
+    # (fewer than 20 effective samples), and a comparison of its profile must not read as settled
+    from dihedra.cli import main
+    from dihedra.tracking import track
+    from synthetic_rotors import EXAMPLE_BUTANE
+
+    if not os.path.exists(EXAMPLE_BUTANE + ".xtc"):
+        pytest.skip("the bundled butane example is not in this checkout")
+    out = str(tmp_path / "short")
+    res = track(EXAMPLE_BUTANE + ".pdb", [EXAMPLE_BUTANE + ".xtc"], torsions="rotatable", out=out, stop=5,
+                temperature_k=T)
+    scan = scan_csv(tmp_path / "rb.csv", "phi_deg,E_kj_mol", rb_energy(GRID))
+    cmp = compare_with_scan(res, scan)
+    row = cmp.table.iloc[0]
+    assert row["sampling"].startswith("not converged") and "effective samples" in row["sampling"]
+    assert any("not converged" in n and "may still change" in n for n in cmp.notices)
+    assert main(["compare", out, "--scan", scan]) == 0
+    assert "but the sampling is not converged" in capsys.readouterr().out
+    # the whole run: the column holds the run's own verdict, whatever it is
+    full = compare_with_scan(butane[0], scan)
+    verdicts = pd.read_csv(os.path.join(butane[0].folder, "convergence.csv")).set_index("type")["verdict"]
+    assert full.table.iloc[0]["sampling"] == verdicts[full.table.iloc[0]["type"]]

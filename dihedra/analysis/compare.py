@@ -73,6 +73,7 @@ from ..units import kt_kj_mol, wrap_deg
 from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
                        check_estimate_options, find_minima, resolve_temperature, state_blocks, state_free_energies,
                        type_profiles)
+from .convergence import sampling_verdicts
 from .reference_populations import add_to_comparison
 from .scans import read_scan
 
@@ -487,10 +488,17 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
            "pred_pops": {}, "scan": scan,
            "s_minima": s_minima, "s_barriers": s_barriers}
     rows, prof_rows, per_type = [], [], {}
+    sampling = sampling_verdicts(result)
     for t in types:
         row, prof_frame, per_type[t] = _compare_type(t, profs[t][0], scan, ctx, kt, thresholds)
+        row["sampling"] = per_type[t]["metrics"]["sampling"] = sampling.get(t, "not checked")
         rows.append(row)
         prof_rows.append(prof_frame)
+    loose = [r for r in rows if r["sampling"].startswith("not converged")]
+    if loose:   # (a verdict on sampling that can still change)
+        note(f"{len(loose)} compared type(s) are not converged (e.g. {loose[0]['type']}: "
+             f"{loose[0]['sampling'].split(': ', 1)[-1]}): their verdicts rest on sampling that may still change; "
+             "see convergence.csv.")
     details = {
         "temperature_k": temperature_k, "kt_kj_mol": kt, "bin_width_deg": float(bin_width_deg),
         "scheme": result.scheme.name, "thresholds": asdict(thresholds),
@@ -527,6 +535,8 @@ def format_comparison(cmp):
         m = info["metrics"]
         lines.append("")
         lines.append(f"type {t}: {m['verdict'].upper()} ({m['verdict_reason']})")
+        if str(m.get("sampling", "")).startswith("not converged"):
+            lines.append(f"  but the sampling is {m['sampling']}")
         lines.append(f"  reliable region {m['reliable_span_deg']:.0f} deg of 360; RMSE {m['rmse_kj_mol']:.2f} kJ/mol "
                      f"(excess over noise {m['excess_rmse_kj_mol']:.2f}), max |dF| {m['max_abs_difference_kj_mol']:.2f} "
                      f"kJ/mol at {m['max_abs_difference_angle_deg']:.1f} deg; Jensen-Shannon divergence "

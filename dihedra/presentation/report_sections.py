@@ -254,6 +254,9 @@ def _scan_comparison(table, details):
         parts.append(f"<h4>{_e(t)} {_verdict(row.verdict)}</h4>")
         if "verdict_reason" in table.columns:
             parts.append(f"<p>{_e(row.verdict_reason)}</p>")
+        if str(getattr(row, "sampling", "")).startswith("not converged"):
+            parts.append(f"<p><b>But the sampling is {_e(row.sampling)}</b>: the verdict may change with more of "
+                         "it.</p>")
         states = pd.DataFrame((per_type.get(t) or {}).get("states", []))
         if len(states):
             states["sampled"] = [_pm(p, e) for p, e in zip(states["population"], states["population_err"])]

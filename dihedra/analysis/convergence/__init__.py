@@ -28,7 +28,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from ...io.tables import write_json, write_table
+from ...io.tables import read_optional_table, write_json, write_table
 from ...trajectory.convergence import (AGREE_P, DG_MIN_POPULATION, DISAGREE_P, TARGET_ERROR, TARGET_ERROR_KJ_MOL,
                                        Convergence, convergence_tables)
 from ...trajectory.result import as_result
@@ -96,3 +96,15 @@ def convergence(result, *, target_error=TARGET_ERROR, target_error_kj_mol=TARGET
                               temperature_k=temperature_k, n_time_blocks=n_time_blocks, n_points=n_points,
                               time_step_known=time_step_known)
     return ConvergenceResult(**vars(conv))
+
+
+def sampling_verdicts(result):
+    """{type: verdict} of the convergence checks of ``result``: its folder's ``convergence.csv``
+    where it has one, else computed from its state series; empty without either."""
+    folder = getattr(result, "folder", None)
+    table = read_optional_table(folder, "convergence.csv") if folder else None
+    if table is None and result.has_series("states"):
+        table = convergence_tables(result).convergence
+    if table is None or "verdict" not in table:
+        return {}
+    return dict(zip(table["type"].astype(str), table["verdict"].astype(str)))
