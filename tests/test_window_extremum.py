@@ -85,3 +85,30 @@ def test_exact_parabola_gives_its_vertex_and_flat_bins_the_bin_itself():
     # fit's weights), the bin itself: the first of the arc 10..13
     pos, val, _ = _window_extremum(flat, np.array([0]), np.array([9]), np.array([4]), "min")
     assert pos[0, 0] == 10.0 and val[0, 0] == 1.0
+
+
+def test_a_sparse_bin_between_unsampled_ones_is_no_minimum():
+    # two wells (0 and 180 degrees) with sampled slopes up to 10 kJ/mol, the bins between them
+    # unsampled but for single stray bins at 100 and -100 degrees (9 +- 1.5 kJ/mol): an unsampled
+    # stretch only bounds the barrier from below, so a stray bin 1 kJ/mol under the highest sampled
+    # walls is not 3 standard errors deep (the depth rule of the module notes) and is no minimum;
+    # counted as infinitely high walls, the unsampled bins made both of them minima
+    from dihedra.numerics.extrema import find_minima
+
+    kt = 2.479
+    angles = np.arange(-177.5, 180.0, 5.0)
+    dist = np.minimum(np.abs(angles), 180.0 - np.abs(angles))     # to the nearer of the two wells
+    free = np.where(dist <= 40.0, dist / 4.0, np.nan)                # 0 .. 10 kJ/mol slopes
+    free = np.where(np.abs(angles) >= 140.0, free + 2.0, free)      # the well at 180 2 kJ/mol higher
+    err = np.where(np.isfinite(free), 0.3, np.nan)
+    for stray in (-102.5, 97.5):
+        k = int(np.flatnonzero(angles == stray)[0])
+        free[k], err[k] = 9.0, 1.5
+    found = sorted(float(angles[i]) for i in find_minima(free, err, kt))
+    assert found == [-2.5, 177.5]     # (ties: the first bin of a flat bottom going up the circle)
+    # a real third well beside unsampled bins keeps its place: 4 kJ/mol with walls of 10
+    deep = free.copy()
+    k = int(np.flatnonzero(angles == 97.5)[0])
+    deep[k - 3:k + 4] = [10.0, 7.0, 5.0, 4.0, 5.0, 7.0, 10.0]
+    err2 = np.where(np.isfinite(deep), 0.3, np.nan)
+    assert any(abs(float(angles[i]) - 97.5) < 1.0 for i in find_minima(deep, err2, kt))

@@ -2,9 +2,10 @@ r"""Minima and barriers of stacks of periodic profiles, with bootstrap errors: t
 pieces of the profile features, shared by :mod:`dihedra.analysis.profiles.features` and the
 data-driven state scheme ``basins`` (:mod:`dihedra.trajectory.basins`).
 
-* **minima** -- local minima (periodic; unsampled bins count as infinitely high) whose depth
-  below the lower of their two flanking barriers is at least max(0.5 kT, 3 sigma), sigma the
-  combined error of minimum and barrier; shallower dips are merged into their neighbours.
+* **minima** -- local minima (periodic) whose depth below the lower of their two flanking
+  barriers is at least max(0.5 kT, 3 sigma), sigma the combined error of minimum and barrier;
+  shallower dips are merged into their neighbours. A flanking barrier is the highest sampled bin
+  towards the neighbouring minimum: an unsampled stretch bounds the barrier only from below.
   Positions and values are refined with a least-squares parabola through the five bins around
   the extreme bin (a three-point parabola where that fails).
 * **barriers** -- the highest point between each pair of neighbouring minima; a barrier whose
@@ -103,7 +104,11 @@ def _minima_stack(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_dep
     # candidates of each row, ascending, padded at the end
     order = np.argsort(~cand, axis=1, kind="stable")[:, :width]
     cands = np.where(np.arange(width)[None, :] < count[:, None], order, -1)
-    table = _RangeMax(g)
+    # the walls of a candidate are the highest *sampled* bins towards its neighbours: an unsampled
+    # stretch says only that the barrier there is at least as high as what was sampled around it
+    # (counted as infinitely high, sparse bins on a barrier's slope beside unsampled ones passed
+    # as deep minima)
+    table = _RangeMax(np.where(np.isfinite(free), free, -np.inf))
     need_floor = min_depth_kt * kt
     active = np.flatnonzero(count > 1)
     while len(active):
@@ -116,13 +121,15 @@ def _minima_stack(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_dep
         b = np.take_along_axis(a, nxt, axis=1)
         rows = np.broadcast_to(active[:, None], a.shape)
         length = _arc_length(n, a, b)
-        gap_j, _ = table.arc(rows, a, np.maximum(length, 1))
-        gap_j = np.where(length > 0, gap_j, -1)          # an empty gap: the candidate itself
+        gap_j, gap_top = table.arc(rows, a, np.maximum(length, 1))
+        # nothing sampled between two candidates (or no bin at all): the higher of the two bounds it
+        none = (length <= 0) | ~np.isfinite(gap_top)
+        higher = np.where(g[rows, a] >= g[rows, b], a, b)
+        gap_j = np.where(none, higher, gap_j)
+        gap_top = np.where(none, g[rows, higher], gap_top)
         left_j, right_j = np.take_along_axis(gap_j, prv, axis=1), gap_j
+        left_top, right_top = np.take_along_axis(gap_top, prv, axis=1), gap_top
         gi = g[rows, a]
-        left_j = np.where(left_j < 0, a, left_j)
-        right_j = np.where(right_j < 0, a, right_j)
-        left_top, right_top = g[rows, left_j], g[rows, right_j]
         take_left = (left_top < right_top) | ((left_top == right_top) & (left_j <= right_j))
         top = np.where(take_left, left_top, right_top)
         j = np.where(take_left, left_j, right_j)
@@ -145,7 +152,8 @@ def _minima_stack(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_dep
 def find_minima(free, err, kt, usable=None, min_depth_kt=MIN_DEPTH_KT, min_depth_sigma=MIN_DEPTH_SIGMA):
     """Indices of the minima of a periodic profile (see the module notes for the depth rule).
 
-    Unsampled (NaN) bins count as infinitely high. Only bins where ``usable`` is true (default:
+    Unsampled (NaN) bins are no minima and no walls: a candidate's depth is measured against the
+    highest sampled bin between it and each neighbouring candidate. Only bins where ``usable`` is true (default:
     all sampled bins) can be minima; :func:`profile_features` passes the bins sampled in at least
     :data:`MIN_RESAMPLED_FRACTION` of the bootstrap resamples, so that a stray visit to an
     otherwise empty region is not taken for a minimum. Returns indices in increasing angle.
@@ -243,7 +251,11 @@ def _feature_arcs(free, err, kt, usable):
     nxt_feature = first[row] + (number + 1) % n_min[row] if len(row) else cur
     # barrier between each minimum and the next one (going up the circle)
     g = np.where(np.isfinite(free), free, np.inf)
-    table = _RangeMax(g)
+    # the walls of a candidate are the highest *sampled* bins towards its neighbours: an unsampled
+    # stretch says only that the barrier there is at least as high as what was sampled around it
+    # (counted as infinitely high, sparse bins on a barrier's slope beside unsampled ones passed
+    # as deep minima)
+    table = _RangeMax(np.where(np.isfinite(free), free, -np.inf))
     arc_len = _arc_length(n, cur, nxt)
     bar_idx, _ = table.arc(row, cur, np.maximum(arc_len, 1))
     bar_idx = np.where(arc_len > 0, bar_idx, cur)
