@@ -107,8 +107,8 @@ def test_rna_backbone_gets_the_nucleic_scheme_and_the_a_form_states(tmp_path):
     assert set(pops.loc[pops["type"] == "GUA:delta", "state"]) == {"C3'-endo", "C2'-endo", "atypical"}
     held = pops[pops["population"] == 1.0]   # (one frame: every torsion in one state)
     name = held["type"].str.partition(":")[2]
-    majority = {"chi": "anti", "delta": "C3'-endo", "alpha": "gauche-", "beta": "anti", "gamma": "gauche+",
-                "epsilon": "anti", "zeta": "gauche-"}
+    majority = {"chi": "anti", "delta": "C3'-endo", "alpha": "g-", "beta": "t", "gamma": "g+", "epsilon": "t",
+                "zeta": "g-"}
     for angle, state in majority.items():
         states = held.loc[name == angle, "state"]
         assert (states == state).mean() > 0.75, (angle, states.value_counts().to_dict())

@@ -169,4 +169,4 @@ def test_syn_anti_and_sugar_pucker_sectors():
     nucleic = get_scheme("nucleic")
     assert nucleic.states_of_type("DA:chi") == ["anti", "syn"]
     assert nucleic.states_of_type("U:delta") == ["C3'-endo", "C2'-endo", "atypical"]
-    assert nucleic.states_of_type("DG:alpha") == ["anti", "gauche+", "gauche-"]
+    assert nucleic.states_of_type("DG:alpha") == ["g+", "t", "g-"]   # (Saenger's names for the backbone)

@@ -24,7 +24,7 @@ def add_scheme_option(parser):
                         help="state scheme: anti-gauche, staggered-eclipsed[:N], klyne-prelog, cis-trans, "
                              "coplanar-perpendicular, symmetric-rotor, syn-anti, sugar-pucker, chi-rotamers, protein "
                              "(cis-trans omega, rotamer wells of chi, anti-gauche otherwise), nucleic (syn-anti "
-                             "chi, sugar-pucker delta, anti-gauche otherwise), or a .toml file of named sectors; "
+                             "chi, sugar-pucker delta, g+/t/g- otherwise), or a .toml file of named sectors; "
                              "chosen per torsion type: auto (from the chemistry of the central bond: 3-fold "
                              "sp3-sp3, 6- or 2-fold sp2-sp3, cis/trans amides, one state for CH3/CF3 rotors, "
                              "ring torsions flagged), basins (the free-energy basins of the sampled distribution, "

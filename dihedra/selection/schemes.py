@@ -288,12 +288,13 @@ def cis_trans():
     return _from_arcs("cis-trans", [("trans", 90.0, True), ("cis", -90.0, False)], labels=["trans", "cis"])
 
 
-def chi_sp3():
+def chi_sp3(name="chi-sp3"):
     """Staggered rotamer wells of an sp3-sp3 side-chain torsion: g+ (0 < chi <= 120), t
     (\\|chi\\| > 120), g- (-120 <= chi <= 0), the wells at +60, 180 and -60 (Janin, Wodak, Levitt &
     Maigret, J. Mol. Biol. 125 (1978) 357; IUPAC-IUB 1970 sign, g+ = +60; Lovell et al., Proteins
-    40 (2000) 389 call them p, t, m)."""
-    return _from_arcs("chi-sp3", [("t", 120.0, False), ("g+", 0.0, False), ("g-", -120.0, True)],
+    40 (2000) 389 call them p, t, m); as ``gauche-trans``, the nucleic-acid backbone's alpha .. zeta
+    (Saenger 1984, from memory)."""
+    return _from_arcs(name, [("t", 120.0, False), ("g+", 0.0, False), ("g-", -120.0, True)],
                       labels=["g+", "t", "g-"])
 
 
@@ -331,10 +332,8 @@ def sugar_pucker():
 
 
 def proline_pucker(chi):
-    """The pyrrolidine pucker of proline from its ``"chi1"`` or ``"chi2"``: the ring keeps both near
-    +-30, so the g+/t/g- wells do not apply; ``endo`` (C-gamma endo, DOWN: chi1 > 0, chi2 < 0) and
-    ``exo`` (C-gamma exo, UP: chi1 < 0, chi2 > 0) (Milner-White, Bell & Maccallum, J. Mol. Biol.
-    228 (1992) 725, from memory)."""
+    """Proline's ring pucker from ``"chi1"`` or ``"chi2"`` (both near +-30: no g+/t/g- wells): ``endo``
+    (C-gamma endo: chi1 > 0, chi2 < 0), ``exo`` (chi1 < 0, chi2 > 0) (Milner-White et al. 1992)."""
     up, down = ("endo", "exo") if chi == "chi1" else ("exo", "endo")   # (the states of (0, 180] and (-180, 0])
     return _from_arcs(f"proline-{chi}", [(up, 0.0, False), (down, 180.0, False)], labels=["endo", "exo"])
 
@@ -365,10 +364,11 @@ COMPOSITES = {
     "protein": (("anti-gauche", "cis-trans", "chi-sp3", "chi-sp2", "chi-sp2-symmetric", "proline-chi1",
                  "proline-chi2"), "protein"),
     "chi-rotamers": (("chi-sp3", "chi-sp2", "chi-sp2-symmetric", "proline-chi1", "proline-chi2"), "chi"),
-    "nucleic": (("anti-gauche", "syn-anti", "sugar-pucker"), "nucleic"),
+    "nucleic": (("gauche-trans", "syn-anti", "sugar-pucker"), "nucleic"),
 }
 _PARTS = {"anti-gauche": lambda: anti_gauche(), "cis-trans": cis_trans, "chi-sp3": chi_sp3, "chi-sp2": chi_sp2,
           "chi-sp2-symmetric": chi_sp2_symmetric, "syn-anti": syn_anti, "sugar-pucker": sugar_pucker,
+          "gauche-trans": lambda: chi_sp3("gauche-trans"),
           "proline-chi1": lambda: proline_pucker("chi1"), "proline-chi2": lambda: proline_pucker("chi2")}
 
 
@@ -378,7 +378,7 @@ def _part_name(rule, torsion_type):
 
     residue, _, name = str(torsion_type).partition(":")
     if rule == "nucleic":   # (nucleic_backbone_torsions: alpha .. zeta and the glycosidic chi)
-        return {"chi": "syn-anti", "delta": "sugar-pucker"}.get(name, "anti-gauche")
+        return {"chi": "syn-anti", "delta": "sugar-pucker"}.get(name, "gauche-trans")
     sp2 = SP2_CHI.get((canonical_residue_name(residue), name))
     side = name.startswith("chi") and name[3:].isdigit()
     if canonical_residue_name(residue) == "PRO" and name in ("chi1", "chi2") and (rule == "chi" or side):
@@ -399,7 +399,7 @@ class SchemeSet:
     ``protein`` (omega: ``cis-trans``; chi1..chi5: ``chi-rotamers``; other torsions:
     ``anti-gauche``), ``chi-rotamers`` (every torsion by the side-chain rule) and ``nucleic``
     (chi: ``syn-anti``; delta: ``sugar-pucker``; alpha, beta, gamma, epsilon, zeta:
-    ``anti-gauche``).
+    ``gauche-trans``).
 
     Examples
     --------

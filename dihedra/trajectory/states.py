@@ -73,7 +73,8 @@ class TorsionStates(TorsionPass):
         and frame); the kinetics need it.
     keep_angles : bool
         Keep the angle time series too (``results.angles``, float32 degrees; 4 bytes per torsion
-        and frame); 2-D profiles and core-set kinetics need it.
+        and frame); 2-D profiles need it (kinetics runs without it, from the state codes and the
+        core bits of every frame).
     dt_ps : float, optional
         Time between stored frames in ps, replacing the trajectory's own.
     temperature_k : float, optional

@@ -63,8 +63,8 @@ def resolve_temperature(temperature_k, summary=None, log=None):
         if log is not None:
             log(f"using the temperature recorded by track: {float(recorded):g} K")
         return check_temperature(recorded)
-    raise DihedraError("a temperature is required: give --temperature K (this results folder records "
-                       "none; 'track --temperature K' would have recorded one).")
+    raise DihedraError("a temperature is required: give temperature_k (--temperature K on the command line); "
+                       "this result records none (track with temperature_k, or --temperature K, records one).")
 
 
 def unit_suffix(unit):

@@ -76,6 +76,7 @@ STATE_COLOURS = {
                      "-sc": OKABE_ITO["reddish purple"]},
     "cis-trans": {"trans": OKABE_ITO["blue"], "cis": OKABE_ITO["vermillion"]},
     "chi-sp3": {"g+": OKABE_ITO["orange"], "t": OKABE_ITO["blue"], "g-": OKABE_ITO["reddish purple"]},
+    "gauche-trans": {"g+": OKABE_ITO["orange"], "t": OKABE_ITO["blue"], "g-": OKABE_ITO["reddish purple"]},
     "chi-sp2": {"0": OKABE_ITO["vermillion"], "+90": OKABE_ITO["orange"], "180": OKABE_ITO["blue"],
                 "-90": OKABE_ITO["reddish purple"]},
     "chi-sp2-symmetric": {"0/180": OKABE_ITO["blue"], "90/-90": OKABE_ITO["orange"]},
