@@ -46,6 +46,12 @@ def test_unknown_key_names_the_key_suggests_one_and_lists_the_valid_ones(tmp_pat
     with pytest.raises(DihedraError,
                        match="unknown top-level key 'title'; valid top-level keys are base_dir, out, steps"):
         load_pipeline(toml)
+    toml = write(tmp_path / "b2.toml", 'out = "res"\nstep = ["report"]\n[report]\n')
+    with pytest.raises(DihedraError, match="unknown top-level key 'step' \\(did you mean 'steps'\\?\\)"):
+        load_pipeline(toml)
+    toml = write(tmp_path / "b3.toml", 'out = "res"\nsteps = ["reprot"]\n[report]\n')
+    with pytest.raises(DihedraError, match="unknown step 'reprot' in steps \\(did you mean 'report'\\?\\)"):
+        load_pipeline(toml)
     toml = write(tmp_path / "c.toml", 'out = "res"\n[plot]\n')
     with pytest.raises(DihedraError, match=r"unknown table \[plot\]"):
         load_pipeline(toml)

@@ -167,7 +167,8 @@ def _order(top, tables, name, say):
                            f"got {order!r}.")
     for s in order:
         if s not in STEPS:
-            raise DihedraError(f"{name}: unknown step {s!r} in steps; steps are {', '.join(STEP_ORDER)}.")
+            raise DihedraError(f"{name}: unknown step {s!r} in steps{_suggest(s, STEP_ORDER)}; steps are "
+                               f"{', '.join(STEP_ORDER)}.")
     for s in tables:
         if s not in order:
             say(f"note: table [{s}] is not listed in steps; it is not run")
@@ -214,8 +215,9 @@ def load_pipeline(path, out=None, overwrite=False, overrides=None, log=None):
     top = {k: v for k, v in data.items() if k not in tables}
     for key in top:
         if key not in TOP_LEVEL_KEYS:
-            raise DihedraError(f"{name}: unknown top-level key {key!r}; valid top-level keys are "
-                               f"{', '.join(TOP_LEVEL_KEYS)}, and the tables are steps: {', '.join(STEP_ORDER)}.")
+            raise DihedraError(f"{name}: unknown top-level key {key!r}{_suggest(key, TOP_LEVEL_KEYS)}; valid top-level "
+                               f"keys are {', '.join(TOP_LEVEL_KEYS)}, and the tables are steps: "
+                               f"{', '.join(STEP_ORDER)}.")
     for key in tables:
         if key not in STEPS:
             raise DihedraError(f"{name}: unknown table [{key}]{_suggest(key, STEP_ORDER)}; tables are steps: "
