@@ -243,3 +243,19 @@ def test_a_verdict_on_unconverged_sampling_says_so(butane, tmp_path, capsys):
     full = compare_with_scan(butane[0], scan)
     verdicts = pd.read_csv(os.path.join(butane[0].folder, "convergence.csv")).set_index("type")["verdict"]
     assert full.table.iloc[0]["sampling"] == verdicts[full.table.iloc[0]["type"]]
+
+
+def test_a_consistent_verdict_names_differences_its_errors_resolve():
+    # a ddG inside the practical tolerance but many errors from 0 is consistent, and said to be
+    # measurably apart; one inside its error is not mentioned (rules of the module notes)
+    from dihedra.analysis.compare import _verdict
+
+    metrics = {"n_reliable_bins": 60, "excess_rmse_kj_mol": 0.2}
+    states = [{"state": "anti", "ddg_kj_mol": 0.0, "free_energy_err_kj_mol": 0.0},
+              {"state": "gauche+", "ddg_kj_mol": 0.5, "free_energy_err_kj_mol": 0.1},
+              {"state": "gauche-", "ddg_kj_mol": 0.4, "free_energy_err_kj_mol": 0.5}]
+    verdict, reason = _verdict(metrics, [], states, "anti", Thresholds())
+    assert verdict == "consistent"
+    assert "measurably apart" in reason and "gauche+ vs anti" in reason and "gauche- vs anti" not in reason
+    verdict, reason = _verdict(metrics, [], states[:1] + states[2:], "anti", Thresholds())
+    assert verdict == "consistent" and "measurably apart" not in reason

@@ -74,6 +74,7 @@ from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, M
                        check_estimate_options, find_minima, resolve_temperature, state_blocks, state_free_energies,
                        type_profiles)
 from .convergence import sampling_verdicts
+from .profiles.features import with_spread_between_torsions
 from .reference_populations import add_to_comparison
 from .scans import read_scan
 
@@ -351,6 +352,9 @@ def _state_rows(t, ctx, kt):
     own = set(scheme.states_of_type(t))
     dg_rows = state_free_energies(ctx["sc"][:, ctx["members"][t], :].sum(axis=1), ctx["sc_rep"], scheme.labels,
                                   kt, ctx["smult"])
+    if dg_rows:   # (errors with the spread between the type's torsions, as the profile gives them)
+        dg_rows = with_spread_between_torsions(pd.DataFrame([{**r, "type": t, "torsion": ""} for r in dg_rows]),
+                                               ctx["pops"].reset_index(), kt).to_dict("records")
     dg = {r["state"]: r for r in dg_rows}
     ref = dg_rows[0]["reference_state"] if dg_rows else scheme.labels[0]
     ref_k = scheme.labels.index(ref)
@@ -398,8 +402,14 @@ def _verdict(metrics, minima_side, states, ref, thresholds):
             parts.append(f"ddG({s['state']} vs {ref}) = {s['ddg_kj_mol']:+.2f} ± "
                          f"{s['free_energy_err_kj_mol']:.2f} kJ/mol")
         return "inconsistent", "; ".join(parts)
+    told = [s for s in states if s["state"] != ref and np.isfinite(s["ddg_kj_mol"])
+            and np.isfinite(s["free_energy_err_kj_mol"]) and s["free_energy_err_kj_mol"] > 0
+            and abs(s["ddg_kj_mol"]) > thresholds.n_sigma * s["free_energy_err_kj_mol"]]
+    apart = ("; measurably apart, within the tolerance: " + ", ".join(
+        f"ddG({s['state']} vs {ref}) = {s['ddg_kj_mol']:+.2f} ± {s['free_energy_err_kj_mol']:.2f} kJ/mol" for s in told)
+        if told else "")   # (a large run tells small differences apart: said, not hidden)
     return "consistent", (f"excess RMSE {excess:.2f} <= {tol:g} kJ/mol and every state ddG within "
-                          f"{tol:g} kJ/mol or {thresholds.n_sigma:g} sigma")
+                          f"{tol:g} kJ/mol or {thresholds.n_sigma:g} sigma{apart}")
 
 
 def _compare_type(t, prof, scan, ctx, kt, thresholds):
