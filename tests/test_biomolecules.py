@@ -86,6 +86,8 @@ def test_a_single_frame_has_no_errors(tmp_path, capsys):
     assert "± n/a" in printed.out and "± 0.000" not in printed.out
     assert "no error estimate" in printed.err
     res = dihedra.load_results(out)
+    verdicts = set(pd.read_csv(os.path.join(out, "convergence.csv"))["verdict"])
+    assert verdicts == {"not converged: one frame per replica, nothing to judge convergence by"}
     for table in (res.populations, res.populations_by_type, res.conformers, res.conformers_by_type):
         assert table["population_err"].isna().all()
     assert res.populations["n_effective"].isna().all()     # never infinite

@@ -272,6 +272,7 @@ class _TypeSeries:
         dg = [r for r in states if np.isfinite(r.get("dg_err_kj_mol", np.nan))]
         worst_dg = max(dg, key=lambda r: r["dg_err_kj_mol"]) if dg else None
         row = {"type": self.name, "n_torsions": self.n_torsions, "n_replicas": len(self.parts),
+               "n_frames": int(sum(int(p["frames"].sum()) for p in self.parts)),
                "simulated_time_ps": self.simulated, **start, **replicas,
                "n_effective": min((r["n_effective"] for r in sampled), default=np.nan),
                "population_err_max": worst["population_err"] if worst else np.nan,
@@ -433,6 +434,8 @@ def _type_replicas(states, n_replicas):
 def _verdict(row, states, labels):
     """``converged`` or ``not converged: <reasons>`` in plain words."""
     reasons = []
+    if row["n_frames"] <= row["n_replicas"]:
+        return "not converged: one frame per replica, nothing to judge convergence by"
     if not row["state_changes_seen"]:
         reasons.append("no torsion of this type changed state in the run (each stayed in the state it started "
                        "in): its populations are those of the starting structures, and their errors and the "
