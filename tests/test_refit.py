@@ -179,6 +179,79 @@ def test_a_run_reweighted_onto_its_own_profile_needs_no_correction(gas, tmp_path
 
 
 # ------------------------------------------------------------------------------------------------
+# Errors of the terms: the run's sampling and the target's own uncertainty
+# ------------------------------------------------------------------------------------------------
+
+def populations_target(err):
+    """The exact Boltzmann populations of V_RB at 400 K, each with the stated error ``err``."""
+    exact = boltzmann_populations(rb_energy)
+    return pd.DataFrame({"type": TYPE, "state": list(exact), "population": list(exact.values()),
+                         "population_err": err})
+
+
+def test_a_less_certain_target_gives_larger_errors_of_the_terms(gas):
+    # the same run, a target 50 times less certain: the target's error dominates the run's (its
+    # populations are sampled to about 0.004) and must show in the terms and the reweighted values
+    sure, loose = (fit_torsion_correction(gas, populations_target(err), n_bootstrap=30) for err in (0.001, 0.05))
+    for n in (1, 2):   # the terms the populations determine (anti against gauche)
+        assert loose.terms.loc[n - 1, "k_err_kj_mol"] >= 5 * sure.terms.loc[n - 1, "k_err_kj_mol"]
+    assert np.all(loose.populations["reweighted_population_err"] >= 5 * sure.populations["reweighted_population_err"])
+
+
+def test_a_noisy_target_of_the_runs_own_potential_gives_terms_consistent_with_zero(gas):
+    # the target is the exact Boltzmann profile of the run's own potential V_RB + dV_true on its
+    # 10-degree bins (scipy quad), with the noise of its stated error (1 kJ/mol per bin, like a
+    # profile from umbrella windows): no correction is needed, so every fitted coefficient must be
+    # within 3 of its errors of zero (with the errors of the run alone, the largest is 5 errors from
+    # zero here, 4 to 11 over ten draws of the noise)
+    def own(x):
+        return rb_energy(x) + periodic(x, [EXTRA])
+
+    edges = np.arange(-180.0, 180.01, 10.0)
+    exact = [-KT * np.log(integrate.quad(lambda x: np.exp(-own(x) / KT), a, b)[0] / 10.0)
+             for a, b in zip(edges[:-1], edges[1:])]
+    noise = np.random.default_rng(0).standard_normal(len(exact))
+    target = pd.DataFrame({"angle_deg": edges[:-1] + 5.0, "free_energy_kj_mol": np.add(exact, noise),
+                           "free_energy_err_kj_mol": 1.0})
+    fit = fit_torsion_correction(gas, target, n_bootstrap=30)
+    for part in ("cos", "sin"):   # k_n >= 0 is no normal variable at zero; its components are
+        assert np.all(np.abs(fit.terms[f"{part}_kj_mol"]) <= 3 * fit.terms[f"{part}_err_kj_mol"])
+    assert any("drawn independently" in n for n in fit.notices)
+
+
+def test_an_almost_exact_target_gives_the_errors_of_the_run_alone(gas, monkeypatch):
+    from dihedra.analysis.refit.fit import ObservableSet
+
+    both = fit_torsion_correction(gas, populations_target(1e-4), n_bootstrap=30).terms
+    # the run-only bootstrap: the same resamples of the run, the target held at its values
+    monkeypatch.setattr(ObservableSet, "drawn_target", lambda self, rng: self.target)
+    run_only = fit_torsion_correction(gas, populations_target(1e-4), n_bootstrap=30).terms
+    for col in ("k_err_kj_mol", "cos_err_kj_mol", "sin_err_kj_mol"):
+        assert both[col].to_numpy() == pytest.approx(run_only[col].to_numpy(), rel=0.05)
+
+
+def test_a_draw_of_the_target_moves_every_value_by_its_error():
+    # the parametric bootstrap (Efron & Tibshirani, An Introduction to the Bootstrap, 1993, from
+    # memory): value + error x N(0, 1); a profile's points are drawn, then binned
+    samples = synthetic_samples()
+    pops = population_set(samples, get_scheme("anti-gauche"))
+    pops.target[:] = [0.99, 0.5, np.nan]
+    pops.target_err[:] = [0.05, 0.02, np.nan]
+    rng = np.random.default_rng(1)
+    draws = np.array([pops.drawn_target(rng) for _ in range(2000)])
+    assert draws[:, 0].max() == 1.0 and np.isnan(draws[:, 2]).all()   # populations stay within [0, 1]
+    assert np.std(draws[:, 1]) == pytest.approx(0.02, rel=0.1) and np.mean(draws[:, 1]) == pytest.approx(0.5, abs=0.002)
+    centres = np.arange(-165.0, 180.0, 30.0)
+    table = pd.DataFrame({"angle_deg": centres, "free_energy_kj_mol": np.cos(np.radians(centres)),
+                          "free_energy_err_kj_mol": 0.3})
+    prof = profile_set(samples, 30.0, KT, read_target(table))
+    draws = np.array([prof.drawn_target(rng) for _ in range(2000)])
+    assert np.std(draws, axis=0) == pytest.approx(np.full(12, 0.3), rel=0.1)
+    exact = profile_set(samples, 30.0, KT, read_target(table.assign(free_energy_err_kj_mol=0.0)))
+    assert np.array_equal(exact.drawn_target(rng), exact.target)
+
+
+# ------------------------------------------------------------------------------------------------
 # Honest limits
 # ------------------------------------------------------------------------------------------------
 

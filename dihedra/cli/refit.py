@@ -17,9 +17,9 @@ def register(sub):
                     "--keep-angles) onto a target: a free-energy profile (angle_deg, free_energy_kj_mol; or another "
                     "results folder), state populations (type, state, population[, population_err]) or measured 3J "
                     "couplings (torsion, J_hz, J_err_hz, with --relation); the kind is told from the columns. Ridge "
-                    "regularisation chosen by cross-validation over contiguous pieces of the trajectory, block-bootstrap "
-                    "errors, Kish's effective sample fraction (below --min-effective-fraction the fit is reported as "
-                    "not trustworthy). Writes refit_terms.csv, refit_fourier.csv, refit_correction.csv, "
+                    "regularisation chosen by cross-validation over contiguous pieces of the trajectory, bootstrap "
+                    "errors (the run's blocks resampled and the target drawn from its own errors), Kish's effective "
+                    "sample fraction (below --min-effective-fraction the fit is reported as not trustworthy). Writes refit_terms.csv, refit_fourier.csv, refit_correction.csv, "
                     "refit_populations.csv, refit_profiles.csv, refit_summary.csv, refit_cross_validation.csv, "
                     "refit_ryckaert_bellemans.csv (where that form exists), refit_openmm.xml and refit.json into DIR. "
                     "Method: Cesari et al., J. Chem. Theory Comput. 15 (2019) 3425; Pitera & Chodera, J. Chem. "
@@ -46,8 +46,9 @@ def register(sub):
     p.add_argument("--folds", type=int, default=DEFAULT_FOLDS, metavar="N",
                    help=f"contiguous pieces of every replica for the cross-validation (default {DEFAULT_FOLDS})")
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
-                   help=f"block-bootstrap refits for the errors (default {DEFAULT_BOOTSTRAP}, fewer than the 200 "
-                        "resamples of the other commands: each resample is a whole fit with its cross-validation)")
+                   help=f"bootstrap refits for the errors, blocks of the run resampled and the target drawn from "
+                        f"its errors (default {DEFAULT_BOOTSTRAP}, fewer than the 200 resamples of the other "
+                        "commands: each resample is a whole fit with its cross-validation)")
     p.add_argument("--blocks", type=int, default=DEFAULT_BLOCKS, metavar="N",
                    help=f"bootstrap blocks per replica (default {DEFAULT_BLOCKS})")
     p.add_argument("--min-effective-fraction", type=float, default=MIN_EFFECTIVE_FRACTION, metavar="F",

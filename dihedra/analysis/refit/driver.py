@@ -4,8 +4,9 @@ r"""The torsion correction of a tracking result: :func:`fit_torsion_correction` 
 Steps: read the target (:mod:`.targets`), choose the types, read the angles of their torsions once
 (:mod:`.samples`), build the observables (:mod:`.observables`), estimate their sampling errors by a
 block bootstrap at zero correction, choose the ridge strength by K-fold cross-validation over
-contiguous pieces of the trajectory, fit, and refit every bootstrap resample (:mod:`.fit`) for the errors of
-the terms, the curve and the observables; then the exports (:mod:`.exports`).
+contiguous pieces of the trajectory, fit, and refit every bootstrap replicate (the run's blocks
+resampled, the target drawn from its errors; :mod:`.fit`) for the errors of the terms, the curve
+and the observables; then the exports (:mod:`.exports`).
 """
 
 from __future__ import annotations
@@ -43,13 +44,16 @@ CHI_SQUARE_POOR = 2.0
 
 METHOD = ("Delta V_t(phi) = sum_n a_n cos(n phi) + b_n sin(n phi) per type t; weights w_s ~ w0_s exp(-sum of "
           "Delta V over the sample's torsions / kT); minimise chi-square per observable + lambda sum "
-          "(coefficient/kT)^2; lambda by K-fold cross-validation over contiguous pieces of every replica; errors by block "
-          "bootstrap (refit per resample); effective sample size (sum w)^2 / sum w^2")
+          "(coefficient/kT)^2; lambda by K-fold cross-validation over contiguous pieces of every replica; errors by "
+          "refits of bootstrap replicates, each with the run's blocks resampled (block bootstrap) and the target "
+          "values drawn from their errors (parametric bootstrap); effective sample size (sum w)^2 / sum w^2")
 REFERENCES = [
     "Cesari, Bottaro, Lindorff-Larsen, Banas, Sponer & Bussi, J. Chem. Theory Comput. 15 (2019) 3425 "
     "(fitting force-field corrections to experimental data by reweighting)",
     "Pitera & Chodera, J. Chem. Theory Comput. 8 (2012) 3445 (maximum entropy and reweighting)",
     "Kish, Survey Sampling, Wiley (1965) (effective sample size of weighted samples)",
+    "Efron & Tibshirani, An Introduction to the Bootstrap, Chapman & Hall (1993) (the parametric bootstrap of the "
+    "target)",
 ]
 CAUTIONS = [
     "Reweighting only redistributes the sampled frames: it cannot put probability where the run never went, "
@@ -70,7 +74,8 @@ class RefitResult:
     terms : DataFrame
         type, n, k_kj_mol, k_err_kj_mol, phase_deg, phase_err_deg (the correction as
         sum k_n [1 + cos(n phi - phase_n)]), cos_kj_mol, cos_err_kj_mol, sin_kj_mol,
-        sin_err_kj_mol (the same as Fourier coefficients); errors from the block bootstrap.
+        sin_err_kj_mol (the same as Fourier coefficients); errors from the bootstrap refits, which
+        vary both the run (its blocks) and the target (its values drawn from their errors).
     correction : DataFrame
         type, angle_deg, delta_v_kj_mol (minimum 0), delta_v_err_kj_mol.
     populations, profiles : DataFrame
@@ -271,13 +276,14 @@ def _observable_table(s, sigma, sampled, sampled_sd, reweighted, reweighted_sd):
     return table
 
 
-def _bootstrap(model, lam, sigmas, theta, boot_cells, cell):
-    """Refit every resample: coefficients, reweighted observables per set, effective fractions."""
+def _bootstrap(model, lam, sigmas, theta, boot_cells, cell, rng):
+    """Refit every replicate, the run's cells resampled and every target drawn from its errors
+    (``rng``): coefficients, reweighted observables per set, effective fractions."""
     thetas, values, fractions = [], [], []
     zero = np.zeros(model.n_params)
     for row in boot_cells:
         mult = row[cell]
-        t = model.fit(lam, sigmas, mult, theta)
+        t = model.fit(lam, sigmas, mult, theta, [s.drawn_target(rng) for s in model.sets])
         w = model.weights(t, mult)
         thetas.append(t)
         values.append([v for v, _ in model.values(w)])
@@ -301,6 +307,11 @@ def _limits(summary, tgt, n_params, notices):
     elif summary["effective_parameters"] < n_params - 0.5:
         notices.append(f"the data determine about {summary['effective_parameters']:.1f} of the {n_params} "
                        "coefficients; the rest are held near zero by the regularisation (fewer terms would do).")
+    if tgt.kind == "profile" and (tgt.table["free_energy_err_kj_mol"] > 0).any():
+        notices.append("the errors of the target profile's points were drawn independently (a table of points has no "
+                       "covariance): errors that neighbouring points share (a profile from one calculation, e.g. "
+                       "umbrella windows) move the smooth terms together and are missing from the errors of the terms; "
+                       "the target's own state populations, with their errors, are a check.")
     if summary["chi_square_reweighted"] > CHI_SQUARE_POOR:
         notices.append(f"the reweighted ensemble does not reach the target within its errors (chi-square per "
                        f"observable {summary['chi_square_reweighted']:.2f} after, {summary['chi_square_sampled']:.2f} "
@@ -378,7 +389,8 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     n_folds : int
         Contiguous pieces of every replica for the cross-validation.
     n_bootstrap, n_blocks, seed : int
-        Block-bootstrap resamples, blocks per replica and the random seed.
+        Bootstrap replicates (each resamples the run's blocks and draws the target from its
+        errors), blocks per replica and the random seed.
     min_effective_fraction : float
         Below this Kish effective sample fraction the fit is reported as not trustworthy.
     min_samples : int
@@ -449,8 +461,11 @@ def _estimate(model, samples, regularisation, n_folds, n_bootstrap, n_blocks, se
     else:
         cv, lam = [], float(regularisation)
     theta = model.fit(lam, sigmas)
-    say(f"refit: block bootstrap ({n_bootstrap} refits)")
-    boot_theta, boot_values, fractions = _bootstrap(model, lam, sigmas, theta, boot_cells, cell)
+    say(f"refit: bootstrap of the run's blocks and the target's errors ({n_bootstrap} refits)")
+    # the target's draws come from a stream of their own: the run's resamples stay those of the
+    # same seed without them, so an exact target gives exactly the run's block bootstrap
+    draws = np.random.default_rng([seed, 1])
+    boot_theta, boot_values, fractions = _bootstrap(model, lam, sigmas, theta, boot_cells, cell, draws)
     cv_frame = pd.DataFrame(cv, columns=["regularisation", "cv_score", "cv_score_err"])
     cv_frame["chosen"] = cv_frame["regularisation"] == lam
     return {"theta": theta, "lam": lam, "sigmas": sigmas, "sampled_sd": sampled, "cv": cv_frame,

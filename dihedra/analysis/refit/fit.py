@@ -36,6 +36,16 @@ trajectory (:data:`DEFAULT_FOLDS` pieces of every replica): for every value of
 the piece left out, each piece in turn; the value with the lowest mean score is used (ties go to
 the stronger regularisation).
 
+The errors of the coefficients (and of everything computed from them) are the spread of refits
+over bootstrap replicates, each of which varies both sources of uncertainty: the run, by
+resampling its blocks with replacement (a block bootstrap), and the target, by drawing every
+target value from its stated error, :math:`T_o + \sigma_o^{draw} z_o` with :math:`z_o` standard
+normal (the parametric bootstrap, Efron & Tibshirani, An Introduction to the Bootstrap, Chapman &
+Hall 1993, from memory), where :math:`\sigma^{draw}` is the target's own error (with
+the systematic error of a Karplus relation for couplings: the parts of :math:`\sigma_o` that are
+not the run's). The objective keeps its fixed :math:`\sigma_o`; :meth:`ObservableSet.drawn_target`
+makes one draw.
+
 The effective sample size of the weights is Kish's, :math:`n_{eff} = (\sum w)^2 / \sum w^2`
 (Kish, Survey Sampling, Wiley 1965); its ratio to that of the run's own weights is the effective
 sample fraction the correction leaves.
@@ -117,6 +127,9 @@ class ObservableSet:
         Which observables enter the fit.
     rows : DataFrame
         What each observable is (type and state, type and bin centre, or coupling label).
+    point_draw : callable or None
+        ``point_draw(rng)`` gives one draw of the target from its original points (a profile's
+        points, binned again); None: :meth:`drawn_target` draws every observable on its own.
     """
 
     kind: str
@@ -131,6 +144,7 @@ class ObservableSet:
     offset_group: np.ndarray | None = None
     fitted: np.ndarray = field(default=None)
     rows: object = None
+    point_draw: object = None
 
     def __post_init__(self):
         if self.fitted is None:
@@ -138,6 +152,22 @@ class ObservableSet:
 
     def __len__(self):
         return len(self.den_index)
+
+    def drawn_target(self, rng):
+        """One parametric-bootstrap draw of the target: every value plus its uncertainty times a
+        standard normal deviate (NaN stays NaN; populations kept within [0, 1]; a target without
+        errors comes back unchanged).
+
+        The uncertainty is what the fit's sigma holds besides the run's sampling error: the
+        target's error and, for couplings, the Karplus relation's systematic error, each value
+        drawn on its own, as the chi-square treats them.
+        """
+        if self.point_draw is not None:
+            return self.point_draw(rng)
+        sd = np.hypot(np.nan_to_num(self.target_err), np.nan_to_num(self.systematic_err))
+        value = self.target + sd * rng.standard_normal(len(self.target))
+        # a population outside [0, 1] is no population; a draw past an edge is put on it
+        return np.clip(value, 0.0, 1.0) if self.kind == "population" else value
 
 
 class ReweightingModel:
@@ -203,11 +233,13 @@ class ReweightingModel:
 
     # -- residuals ---------------------------------------------------------------------------
 
-    def _residuals(self, theta, mult, sigmas, lam, jacobian):
+    def _residuals(self, theta, mult, sigmas, lam, jacobian, targets=None):
+        targets = [s.target for s in self.sets] if targets is None else targets
         parts, jparts = [], []
-        for s, sigma, (value, grad) in zip(self.sets, sigmas, self.values(self.weights(theta, mult), jacobian)):
+        for s, target, sigma, (value, grad) in zip(self.sets, targets, sigmas,
+                                                   self.values(self.weights(theta, mult), jacobian)):
             use = s.fitted & np.isfinite(value)
-            diff = np.where(use, value - s.target, 0.0)
+            diff = np.where(use, value - target, 0.0)
             inv = np.where(use, 1.0 / sigma ** 2, 0.0)
             dgrad = grad.copy() if jacobian and s.offset_group is not None else grad
             if s.offset_group is not None:   # compared up to one constant per group
@@ -239,8 +271,9 @@ class ReweightingModel:
         n = max(1, int(np.count_nonzero(np.concatenate([s.fitted for s in self.sets]))))
         return float(np.sum(data ** 2) * n / max(1, n_valid))
 
-    def fit(self, lam, sigmas, mult=None, theta0=None):
-        """Coefficients minimising the regularised chi-square (see the module notes)."""
+    def fit(self, lam, sigmas, mult=None, theta0=None, targets=None):
+        """Coefficients minimising the regularised chi-square (see the module notes), against
+        ``targets`` (per set, e.g. a draw of :meth:`ObservableSet.drawn_target`) or the sets' own."""
         from scipy.optimize import least_squares
 
         theta0 = np.zeros(self.n_params) if theta0 is None else np.asarray(theta0, dtype=float)
@@ -250,7 +283,7 @@ class ReweightingModel:
             key = theta.tobytes()
             if key not in cache:
                 cache.clear()
-                cache[key] = self._residuals(theta, mult, sigmas, lam, True)
+                cache[key] = self._residuals(theta, mult, sigmas, lam, True, targets)
             return cache[key]
 
         sol = least_squares(lambda t: both(t)[0], theta0, jac=lambda t: both(t)[1], method="trf",

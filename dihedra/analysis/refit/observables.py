@@ -16,6 +16,8 @@ reweighting can reach).
 
 from __future__ import annotations
 
+from functools import partial
+
 import numpy as np
 import pandas as pd
 
@@ -132,6 +134,7 @@ def profile_set(samples, bin_width_deg, kt, target=None, min_count=50, notices=N
     den_of_type = np.array([b.den_keys[t] for t in samples.type_names])
     target_value = np.full(n_types * n_bins, np.nan)
     target_err = np.full(n_types * n_bins, np.nan)
+    points = []
     if target is not None:
         table = target.table
         untyped = table["type"].astype(str).str.strip() == ""
@@ -144,6 +147,7 @@ def profile_set(samples, bin_width_deg, kt, target=None, min_count=50, notices=N
                 f, s = profile_on_bins(rows, edges, kt)
                 target_value[t * n_bins:(t + 1) * n_bins] = f
                 target_err[t * n_bins:(t + 1) * n_bins] = s
+                points.append((slice(t * n_bins, (t + 1) * n_bins), rows))
         named = set(table.loc[~untyped, "type"])
         for name in sorted(named - set(samples.type_names)):
             notices.append(f"the target profile of {name} is not fitted: {name} is not among the types corrected.")
@@ -152,7 +156,20 @@ def profile_set(samples, bin_width_deg, kt, target=None, min_count=50, notices=N
     rows = pd.DataFrame({"type": np.repeat(samples.type_names, n_bins), "angle_deg": np.tile(centres, n_types)})
     return ObservableSet("free_energy", num, den, np.repeat(den_of_type, n_bins), target_value, target_err,
                          np.zeros(len(rows)), counts, width_deg=float(bin_width_deg),
-                         offset_group=np.repeat(np.arange(n_types), n_bins), fitted=fitted, rows=rows)
+                         offset_group=np.repeat(np.arange(n_types), n_bins), fitted=fitted, rows=rows,
+                         point_draw=partial(_drawn_profile, points, edges, kt, len(rows)) if points else None)
+
+
+def _drawn_profile(points, edges, kt, size, rng):
+    """One parametric-bootstrap draw of a profile target on bins: every point of the target
+    moved by its error times a standard normal deviate, then binned as the target itself (the
+    points, not the bins, carry the stated errors; a bin averages its points nonlinearly)."""
+    out = np.full(size, np.nan)
+    for where, rows in points:
+        energy = rows["free_energy_kj_mol"].to_numpy(float)
+        noise = rows["free_energy_err_kj_mol"].to_numpy(float) * rng.standard_normal(len(rows))
+        out[where] = profile_on_bins(rows.assign(free_energy_kj_mol=energy + noise), edges, kt)[0]
+    return out
 
 
 def _report_unsampled_bins(types, centres, target, counts, fitted, kt, width, notices):
