@@ -114,3 +114,17 @@ def test_a_frame_range_without_frames_is_one_clear_error(universe, kwargs):
     # AnalysisBase would start the pass on no frames and fail deep inside it (an IndexError)
     with pytest.raises(DihedraError, match="none of its|selects no frame"):
         dihedra.TorsionStates(universe.atoms).run(**kwargs)
+
+
+def test_state_series_with_labels_counts_as_the_populations(serial):
+    # the labelled series is the coded one read through scheme.labels: each torsion's share of
+    # frames per label is its population (unweighted run: frames counted, by definition)
+    res = serial.tracking_result
+    coded, named = res.states(), res.states(labels=True)
+    first = res.torsion_set.labels[0]
+    assert list(named[first].cat.categories) == list(res.scheme.labels)
+    assert (named[first].cat.codes.to_numpy() == coded[first].to_numpy()).all()
+    share = named[first].value_counts(normalize=True)
+    pops = res.populations[res.populations["torsion"] == first].set_index("state")["population"]
+    for state, p in pops.items():
+        assert share.get(state, 0.0) == pytest.approx(p)

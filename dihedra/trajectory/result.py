@@ -385,10 +385,18 @@ class TrackResult:
         for chunk in self.iter_chunks("states", columns, batch_frames):
             yield chunk.to_frame()
 
-    def states(self, columns=None):
+    def states(self, columns=None, labels=False):
         """The state time series as a DataFrame (replica, frame, time_ps, [weight], one int8
-        column per torsion). For long runs prefer :meth:`iter_states`, which reads it in chunks."""
-        return self._whole("states", columns)
+        column per torsion: the position of the state in ``scheme.labels``, -1 undefined). With
+        ``labels``, the torsion columns are categorical with the state labels as categories
+        (undefined frames missing). For long runs prefer :meth:`iter_states`, which reads it in
+        chunks."""
+        frame = self._whole("states", columns)
+        if labels:
+            names = list(self.scheme.labels)
+            for c in frame.columns[len(frame.columns) - len(columns or self.series.columns("states")):]:
+                frame[c] = pd.Categorical.from_codes(frame[c].to_numpy().astype(np.int64), categories=names)
+        return frame
 
     def angles(self, columns=None):
         """The angle time series (float32 degrees), if the run kept angles."""
