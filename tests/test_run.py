@@ -176,13 +176,12 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     top, trajs = make_system(str(data), n_replicas=1, n_frames=40, n_molecules=2)
     toml = write(tmp_path / "f.toml",
                  f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\ntorsions = ["rotatable"]\n'
-                 '[compare]\nscan = "scan.csv"\ntypes = ["NOPE"]\n')
-    write(tmp_path / "scan.csv", "angle_deg,energy_kj_mol\n" + "".join(f"{a},{abs(a) / 60}\n" for a in range(-180, 180, 30)))
-    assert main(["run", toml]) == 2   # a type that only the tracked folder can refuse
+                 'temperature_k = 300\n[profile]\npairs = [["NOPE1:x", "NOPE2:y"]]\n')
+    assert main(["run", toml]) == 2   # a pair of torsions that only the tracked folder can refuse
     err = capsys.readouterr().err
-    assert "step compare (f.toml, [compare]) failed" in err and "NOPE" in err
+    assert "step profile (f.toml, [profile]) failed" in err and "NOPE1:x" in err
     record = json.loads((tmp_path / "res" / RECORD_NAME).read_text())
-    assert [(s["step"], s["status"]) for s in record["steps"]] == [("track", "done"), ("compare", "failed")]
+    assert [(s["step"], s["status"]) for s in record["steps"]] == [("track", "done"), ("profile", "failed")]
 
 
 @pytest.mark.parametrize("table, fragment", [
@@ -307,3 +306,18 @@ def test_the_full_example_of_the_docs_is_a_valid_analysis_file(tmp_path):
     track = pipe.steps[0].arguments
     assert [track["topology"]] + track["trajectories"] == [str(tmp_path / "inputs" / x)
                                                             for x in ("hexane.pdb", "run1.xtc", "run2.xtc")]
+
+
+def test_a_type_the_run_will_not_have_stops_the_file_before_track(tmp_path):
+    # the torsions of the run are known from its topology: a misspelt type in [compare] is an
+    # error of the file, found before any step runs (nothing is written)
+    text = (f'out = "res"\nsteps = ["track", "compare"]\n[track]\ntopology = "{example_path("butane_rb.pdb")}"\n'
+            f'trajectories = ["{example_path("butane_rb.xtc")}"]\ntemperature_k = 298.15\n'
+            f'[compare]\nscan = "{example_path("trappe_ua_torsion.toml")}"\ntypes = ["BUT:C1-C2-C3-C5"]\n')
+    toml = tmp_path / "a.toml"
+    toml.write_text(text)
+    with pytest.raises(DihedraError, match=r"\[compare\]: torsion type 'BUT:C1-C2-C3-C5' is not among the torsions"):
+        load_pipeline(str(toml))
+    assert not os.path.exists(tmp_path / "res")
+    toml.write_text(text.replace("C3-C5", "C3-C4"))
+    assert [st.name for st in load_pipeline(str(toml)).steps] == ["track", "compare"]

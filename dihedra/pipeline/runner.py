@@ -16,6 +16,7 @@ from ..io.outputs import check_folder_target, read_marker, write_text
 from ..io.resultsdir import load_results
 from ..io.tables import write_json
 from .checks import check_values
+from .named_types import check_named_types
 from .steps import STEP_ORDER, STEPS
 
 #: Top-level keys of an analysis file.
@@ -238,6 +239,7 @@ def load_pipeline(path, out=None, overwrite=False, overrides=None, log=None):
     if not steps:
         raise DihedraError(f"{name} describes no step to run; add a table such as [track] or a steps list.")
     _share_type_choice(steps, say)
+    check_named_types(steps, out_dir)
     if not any(st.spec.creates_folder for st in steps) and not os.path.isdir(out_dir):
         raise DihedraError(f"{name}: no step creates the results folder and {out_dir} does not exist; add a [track] "
                            "table or point out at an existing results folder.")
