@@ -212,7 +212,10 @@ def scalar_minima(free, err, kt, usable, min_depth_kt=prof.MIN_DEPTH_KT, min_dep
             sides = []
             for a, b in ((cand[k - 1], i), (i, cand[(k + 1) % len(cand)])):
                 arc = between(a, b)
-                j = arc[max(range(len(arc)), key=lambda t: (g[arc[t]], -t))] if arc else i
+                # the wall: the highest sampled bin between them (first in arc order); with none
+                # sampled, the higher of the two candidates
+                sampled = [t for t in range(len(arc)) if np.isfinite(g[arc[t]])]
+                j = arc[max(sampled, key=lambda t: (g[arc[t]], -t))] if sampled else (a if g[a] >= g[b] else b)
                 sides.append((g[j], j))
             top, j = min(sides)
             need = max(min_depth_kt * kt, min_depth_sigma * np.hypot(e[i], e[j]))
