@@ -2,6 +2,7 @@
 
 import json
 import os
+import warnings
 
 import numpy as np
 import pandas as pd
@@ -352,7 +353,7 @@ def test_openmm_butane_windows_reproduce_the_rb_potential(tmp_path):
 # ------------------------------------------------------------------------------------------------
 
 def test_restraint_check_of_a_harmonic_window():
-    from dihedra.analysis.windows.driver import restraint_check
+    from dihedra.analysis.windows.restraints import restraint_check
     # analytic: on a flat free energy a window of k samples a normal law of variance kT / k
     # around its centre: consistent; the same samples with the centre off by 180 degrees, or with
     # a force constant ten times the one sampled, are not
@@ -386,7 +387,126 @@ def test_windows_off_by_half_a_turn_or_stiffer_than_sampled_are_flagged(tmp_path
     from dihedra.cli import main
     code = main(["windows", csv, "--temperature", str(T), "--out", str(tmp_path / "out"), "--bootstrap", "20"])
     err = capsys.readouterr().err
-    assert code == 0
-    assert "WARNING: 3 window(s) contradict" in err
+    assert code == 1   # the result is unusable: a script must not go on with it
+    assert "WARNING: 3 window(s) contradict" in err and "exit status 1" in err
     written = pd.read_csv(tmp_path / "out" / "windows.csv")
     assert written["restraint_consistent"].tolist().count(False) == 3
+
+
+# ------------------------------------------------------------------------------------------------
+# Force constants that the samples contradict (a unit slip in the window table)
+# ------------------------------------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def windows_400(tmp_path_factory):
+    """RB butane in 36 windows 10 degrees apart, k = 400 kJ/mol/rad^2, 600 exact samples each (the
+    files only); tests restate the force constant in tables of their own beside it."""
+    folder = tmp_path_factory.mktemp("restraints")
+    return write_windows(folder, rb_energy, np.arange(-180.0, 180.0, 10.0), 400.0, 60, 10, seed=11)
+
+
+def restated(csv, name, k):
+    """A copy of the window table ``csv`` (beside it, same samples) with every force constant ``k``."""
+    table = pd.read_csv(csv, dtype={"torsions": str})
+    table["k_kj_mol_rad2"] = k
+    path = os.path.join(os.path.dirname(csv), name)
+    table.to_csv(path, index=False)
+    return path
+
+
+def test_force_constant_ratio_is_exact_for_any_free_energy():
+    from dihedra.analysis.windows.restraints import force_constant_ratios
+
+    # analytic: windows whose true biases are 3 times the stated ones have expected counts with
+    # ln(h_i / h_j) = -3 (u_i - u_j) / kT + c whatever F is (here the asymmetric potential), and the
+    # maximum-likelihood ratio of the expected counts is exactly 3
+    g = np.arange(360) - 179.5
+    centres, k = np.array([-20.0, 0.0, 20.0]), 50.0
+    dens = [np.exp(-(asymmetric_energy(g) + 3.0 * bias_kj_mol(g, c, k)) / KT) for c in centres]
+    hist = np.array([5000.0 * d / d.sum() for d in dens])
+    ratios = force_constant_ratios(hist, pd.DataFrame({"centre_deg": centres, "k_kj_mol_rad2": k}),
+                                   [(0, 1), (1, 2)], KT, np.ones(3))
+    assert np.allclose(ratios["force_constant_ratio"], 3.0, rtol=1e-6)
+    assert (ratios["force_constant_ratio_err"] > 0).all()
+
+
+def test_force_constant_per_degree_squared_is_flagged(windows_400, capsys):
+    # the classic slip: 400 kJ/mol/rad^2 written as 400 (pi/180)^2 = 0.1218. Each window on its
+    # own fits so weak a restraint (it is only narrower than the restraint allows), so the check of
+    # single windows passes them all; the pairs do not (analytic ratio (180/pi)^2 = 3283)
+    from dihedra.analysis.windows.restraints import restraint_check
+    from dihedra.cli import main
+
+    csv = restated(windows_400, "per_degree.csv", 400.0 * np.radians(1.0) ** 2)
+    wres = unbias_windows(csv, temperature_k=T, n_bootstrap=20)
+    w = wres.windows
+    assert all(restraint_check(r.mean_angle_deg, r.circular_sd_deg, r.centre_deg, r.k_kj_mol_rad2, KT)
+               ["restraint_consistent"] for r in w.itertuples(index=False))
+    assert not w["restraint_consistent"].any() and wres.info["restraints_consistent"] is False
+    assert wres.overlap["force_constant_ratio"].median() == pytest.approx(np.degrees(1.0) ** 2, rel=0.1)
+    assert np.allclose(w["k_from_samples_kj_mol_rad2"], 400.0, rtol=0.2)
+    assert wres.notices[0].startswith("WARNING: the force constants of the window table are about")
+    assert "times weaker" in wres.notices[0] and "(180/pi)^2 = 3283: k per degree squared" in wres.notices[0]
+    # windows that the stated biases cannot tell apart (MBAR overlap 1/36 each) are no overlap problem
+    assert not wres.overlap["poor"].any() and not any("poor overlap" in n for n in wres.notices)
+    folder = os.path.join(os.path.dirname(csv), "pd")
+    code = main(["windows", csv, "--temperature", str(T), "--out", folder, "--bootstrap", "20"])
+    out = capsys.readouterr()
+    assert code == 1
+    assert out.out.startswith("UNUSABLE: the samples contradict the window table")
+    assert "(180/pi)^2 = 3283" in out.err and "exit status 1" in out.err
+    assert "overlap of neighbouring windows: not assessed" in out.out
+    with open(os.path.join(folder, "windows.json")) as fh:   # strict JSON: the overlap not assessed is null
+        info = json.load(fh, parse_constant=lambda c: pytest.fail(f"{c} in windows.json"))
+    assert info["restraints_consistent"] is False and info["overlap"][0]["mbar_overlap"] is None
+
+
+def test_too_stiff_force_constant_gives_no_numpy_warnings(windows_400):
+    # the same samples as test_correct_force_constants_pass, whose profile bins are all sampled
+    csv = restated(windows_400, "stiff.csv", 400.0e3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", RuntimeWarning)    # numpy's overflow / invalid value
+        wres = unbias_windows(csv, temperature_k=T, n_bootstrap=20)
+    assert not wres.windows["restraint_consistent"].any()
+    assert wres.overlap["force_constant_ratio"].median() == pytest.approx(1e-3, rel=0.1)
+    assert "times stiffer" in " ".join(n for n in wres.notices if n.startswith("WARNING"))
+    assert not any("sampled by no window" in n for n in wres.notices)
+    assert wres.overlap["mbar_overlap"].isna().all()     # not assessed under biases the samples contradict
+    assert not any("MBAR and WHAM differ" in n for n in wres.notices)
+
+
+def test_correct_force_constants_pass(windows_400, tmp_path):
+    wres = unbias_windows(windows_400, temperature_k=T, n_bootstrap=20)
+    assert wres.windows["restraint_consistent"].all() and wres.info["restraints_consistent"] is True
+    assert not any(n.startswith("WARNING") for n in wres.notices)
+    lam = wres.overlap["force_constant_ratio"]
+    assert lam.notna().all() and abs(lam.median() - 1.0) < 0.05 and lam.between(0.8, 1.25).all()
+    assert np.allclose(wres.windows["k_from_samples_kj_mol_rad2"], 400.0, rtol=0.15)
+    assert wres.profiles.by_type[next(iter(wres.profiles.by_type))][0].sampled.all()
+    # a weak but true restraint over the 45 kJ/mol barrier: windows near the barrier tops slide off
+    # their centres (k + F'' < 0 there), and are narrower on average than a periodic F allows in the
+    # harmonic picture; the pairs still show the stated force constant
+    weak = write_windows(tmp_path, rb_energy, np.arange(-180.0, 180.0, 15.0), 40.0, 60, 10, seed=3)
+    wres = unbias_windows(weak, temperature_k=T, n_bootstrap=20)
+    assert wres.windows["restraint_consistent"].all()
+    assert wres.windows["mean_offset_deg"].abs().max() > 20
+    assert abs(wres.overlap["force_constant_ratio"].median() - 1.0) < 0.1
+
+
+def test_one_time_step_line_for_all_windows(tmp_path, capsys):
+    # the bundled window XTC files store time 0 for every frame; windows has no --dt-ps and needs none
+    from dihedra.cli import main
+
+    base = os.path.dirname(BUTANE_WINDOWS)
+    table = pd.read_csv(BUTANE_WINDOWS, dtype={"torsions": str}).iloc[12:18]
+    for col in ("trajectory", "topology"):
+        table[col] = [os.path.join(base, f) for f in table[col]]
+    csv = str(tmp_path / "six.csv")
+    table.to_csv(csv, index=False)
+    assert main(["windows", csv, "--temperature", str(T), "--out", str(tmp_path / "out"), "--bootstrap", "20"]) == 0
+    err = capsys.readouterr().err
+    lines = [ln for ln in err.splitlines() if "time step" in ln]
+    assert len(lines) == 1 and lines[0].startswith("note: 6 of 6 window trajectories have no usable time step")
+    assert "--dt-ps" not in err
+    # nor a line per window on the errors of its own (biased) populations, which windows does not report
+    assert "never left one state" not in err

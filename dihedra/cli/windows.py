@@ -56,19 +56,31 @@ def run(args):
     report(wres)
     print_notices([n for n in wres.notices if n not in warnings])
     print(f"results written to {wres.result.folder}")
+    if not wres.info["restraints_consistent"]:   # a script must not go on with this profile
+        say(f"dihedra windows: the samples contradict the window table (WARNING above): the profile, populations "
+            f"and overlap in {wres.result.folder} are unusable until the table is fixed; exit status 1.")
+        return 1
+    return 0
 
 
 def report(wres):
     w = wres.windows
+    if not wres.info["restraints_consistent"]:   # (also here: this part may be read without the warnings)
+        print("UNUSABLE: the samples contradict the window table (see the WARNING); every number below rests on it.")
     print(f"{len(w)} windows, {int(w['n_samples'].sum())} samples; statistical inefficiency of the bias energy "
           f"{w['statistical_inefficiency'].min():.1f}-{w['statistical_inefficiency'].max():.1f}")
     ov = wres.overlap
-    if len(ov):
+    if len(ov) and ov["mbar_overlap"].notna().any():
         worst = ov.loc[ov["mbar_overlap"].idxmin()]
         print(f"overlap of neighbouring windows: MBAR overlap {ov['mbar_overlap'].min():.3f} (windows "
               f"{int(worst['window_a'])}-{int(worst['window_b'])}) to {ov['mbar_overlap'].max():.3f}; "
-              f"{int(ov['poor'].sum())} pair(s) below {MIN_OVERLAP:g}")
+              f"{int(ov['poor'].sum())} poor pair(s) (below {MIN_OVERLAP:g})")
+    elif len(ov):
+        print("overlap of neighbouring windows: not assessed (the samples contradict the window table)")
     for row in wres.agreement.itertuples(index=False):
+        if not row.n_bins:
+            print(f"type {row.type}: MBAR vs WHAM: no profile bin holds both estimates")
+            continue
         print(f"type {row.type}: MBAR vs WHAM over {row.n_bins} bins: largest difference "
               f"{row.max_abs_difference_kj_mol:.2f} kJ/mol ({row.max_difference_over_error:.1f} combined errors); "
               f"{100 * row.fraction_within:.0f} % of bins within 2 errors")

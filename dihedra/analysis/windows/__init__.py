@@ -11,6 +11,8 @@ The package is split along these steps:
 
 * :mod:`.samples` -- the window table (its columns and checks) and the samples of all windows;
 * :mod:`.solver` -- the bias and the self-consistent equations of MBAR and WHAM;
+* :mod:`.restraints` -- whether the samples fit the window table: each window its restraint, the
+  force constants the way neighbouring windows share angles;
 * :mod:`.estimation` -- MBAR and WHAM for one torsion type with bootstrap resamples, and its
   profiles in the format of ``dihedra profile``;
 * :mod:`.driver` -- :func:`unbias_windows`, which runs them, checks the overlap and returns a

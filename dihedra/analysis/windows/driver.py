@@ -8,22 +8,21 @@ the MBAR overlap matrix element min(O_ij, O_ji) (pymbar's ``compute_overlap``) a
 coefficient of the two biased histograms, sum_b min(h_i(b), h_j(b)), are reported; a pair with
 an MBAR overlap below :data:`MIN_OVERLAP` = 0.03 is reported as poor (a common rule of thumb,
 e.g. Klimovich, Shirts & Mobley, J. Comput.-Aided Mol. Des. 29 (2015) 397; from memory): add a
-window between the two or raise the sampling there. A window whose samples lie around minus its
-centre is reported too (a bias applied with the opposite sign convention).
+window between the two or raise the sampling there. The rule of thumb does not hold for windows
+that the biases cannot tell apart (each element of the overlap matrix of K such windows is 1/K):
+a pair that overlaps at least half as much as each window with itself is never poor. A window
+whose samples lie around minus its centre is reported too (a bias applied with the opposite sign
+convention).
 
 Restraint check
 ---------------
-Each window's samples must fit its stated restraint. The bias :math:`\tfrac12 k d^2` holds a window
-at a mean offset :math:`\bar d` from its centre only against a mean force :math:`k \bar d` of
-the system, and narrows it to a variance :math:`kT / (k + F'')` (Kumar et al. 1992; the
-harmonic approximation of the biased distribution). A window needs a mean force above
-:data:`MAX_MEAN_FORCE` (with :math:`|\bar d|` more than four restraint widths
-:math:`\sqrt{kT/k}`, beyond noise) or a curvature :math:`F'' < -` :data:`MAX_CURVATURE` to
-explain its samples is reported as contradicting its restraint, loudly (a warning printed first
-and in windows.json; ``restraint_consistent`` false in windows.csv): a centre off by 180 degrees,
-one given in the wrong unit or off by whole turns of a typo, a force constant per degree squared
-or in the wrong energy unit. Such a window gives a confident but wrong profile: check the window
-table against the simulation input.
+Before the biases are removed, the samples are checked against the window table
+(:mod:`.restraints`): each window against its own restraint, and the force constants against how
+differently neighbouring windows sample the angles they share. Windows that contradict the table
+are reported loudly (a warning first among the notices and in windows.json;
+``restraint_consistent`` false in windows.csv); the result is then unusable, pymbar is not called
+(the grid solution of the same equations stands in; the MBAR overlap is not assessed) and the
+overflow that such biases cause in the estimators is silenced.
 
 Output
 ------
@@ -37,10 +36,11 @@ with the errors of :mod:`.estimation`), and
 
 ``windows.csv``
     per window: centre, force constant, samples, mean and spread of the sampled angle, statistical
-    inefficiency g of the bias energy, f_k by MBAR and WHAM (kJ/mol, relative to the first
-    window) with errors;
+    inefficiency g of the bias energy, the restraint check, f_k by MBAR and WHAM (kJ/mol, relative
+    to the first window) with errors;
 ``window_overlap.csv``
-    per neighbouring pair: MBAR overlap, histogram overlap, poor;
+    per neighbouring pair: MBAR overlap, histogram overlap, poor, and the ratio of the force
+    constants its samples show to the table's (:mod:`.restraints`);
 ``windows_profiles.csv``
     per type and bin: F by MBAR and by WHAM with errors, their difference;
 ``windows.json``
@@ -56,6 +56,7 @@ gives smaller (too small) errors than the ones written here.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import time
 from dataclasses import dataclass, field
@@ -69,25 +70,20 @@ from ...trajectory.result import TrackResult
 from ...trajectory.states import check_frame_range, whole_number
 from ...units import check_temperature, kt_kj_mol, wrap_deg
 from ..profiles import (DEFAULT_SEED, bootstrap_multiplicities, bootstrap_spread, check_bin_width,
-                        check_estimate_options)
+                        check_estimate_options, rebin)
 from .estimation import AGREEMENT_SIGMA, DEFAULT_MAX_MBAR_SAMPLES, TypeTables, estimate_type
 from .samples import N_HIST_BLOCKS, N_STATE_BLOCKS, collect_windows, read_windows, window_inputs
-from .solver import _fine_bin, bias_kj_mol
+from .restraints import (force_constant_ratios, judge_force_constants, k_from_samples, restraint_rule,
+                         restraint_warnings, window_statistics)
+from .solver import _fine_bin, biased_histograms
 
 #: Neighbouring windows with an MBAR overlap below this are reported as poorly overlapping.
 MIN_OVERLAP = 0.03
 #: Bootstrap resamples for the errors.
 DEFAULT_BOOTSTRAP = 200
-#: A window's samples contradict its stated restraint when, to hold them where they are, the free
-#: energy along the torsion would need a mean force above this (kJ/mol/rad) or a curvature below
-#: minus :data:`MAX_CURVATURE` (kJ/mol/rad^2). Torsion free energies of molecules stay well inside
-#: both: the Ryckaert-Bellemans butane potential (Ryckaert & Bellemans, Faraday Discuss. Chem.
-#: Soc. 66 (1978) 95) has a largest slope of 66 kJ/mol/rad and a curvature of -233 kJ/mol/rad^2
-#: at its cis barrier top; a two-fold amide barrier of about 85 kJ/mol (from memory) a largest
-#: slope of about 85 and a top curvature of about -170.
-MAX_MEAN_FORCE = 150.0
-#: See :data:`MAX_MEAN_FORCE`.
-MAX_CURVATURE = 600.0
+#: A neighbouring pair that overlaps at least this fraction of each window's overlap with itself
+#: is never poor (see :func:`_poor_overlap`).
+SELF_OVERLAP_FRACTION = 0.5
 
 
 # ----------------------------------------------------------------------------------------------
@@ -162,7 +158,7 @@ class WindowsResult:
         """Write every file into ``folder``; returns their paths."""
         from ...io.blocks import HISTOGRAMS_FILE
         from ...io.resultsdir import TABLES, write_results
-        from ...io.tables import write_json, write_table
+        from ...io.tables import json_ready, write_json, write_table
 
         write_results(self.result, folder)
         paths = [os.path.join(folder, name) for name in [*TABLES.values(), "blocks.npz", HISTOGRAMS_FILE,
@@ -171,7 +167,7 @@ class WindowsResult:
         paths.append(write_table(self.windows, folder, "windows.csv"))
         paths.append(write_table(self.overlap, folder, "window_overlap.csv"))
         paths.append(write_table(self.comparison, folder, "windows_profiles.csv"))
-        paths.append(write_json(self.info, folder, "windows.json"))
+        paths.append(write_json(json_ready(self.info), folder, "windows.json"))   # NaN (not assessed) as null
         return paths
 
 
@@ -261,27 +257,31 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
         notices.append(f"each window biases {len(tset)} torsions; each is taken as an independent sample of its "
                        "own biased distribution (exact for non-interacting copies, an approximation when "
                        "the biased molecules interact).")
-    estimates, weights = _estimate_types(data, table, tset.types, states, scheme.n_states, kt, mult,
-                                         max_mbar_samples, say)
-    notices.extend(_mirrored_notices(data, table))
-    weighted = _weighted_tables(data, first, scheme, states, weights, estimates)
-    types = TypeTables(scheme, kt, factor, bin_width_deg, bandwidth_deg)
-    for typ, est in estimates.items():
-        notices.extend(_type_notices(typ, est, types.add(typ, est), max_mbar_samples))
+    wtab, ratios, warnings = _check_restraints(data, table, tset.types, kt)
+    trusted = bool(wtab["restraint_consistent"].all())
+    # biases that contradict the samples make the estimators' numbers meaningless and their overflow
+    # expected: it is silenced there (only there); the restraint warnings say what is wrong
+    with contextlib.nullcontext() if trusted else np.errstate(all="ignore"):
+        estimates, weights = _estimate_types(data, table, tset.types, states, scheme.n_states, kt, mult,
+                                             max_mbar_samples, say, trusted)
+        notices.extend(_mirrored_notices(data, table))
+        weighted = _weighted_tables(data, first, scheme, states, weights, estimates)
+        types = TypeTables(scheme, kt, factor, bin_width_deg, bandwidth_deg)
+        for typ, est in estimates.items():
+            notices.extend(_type_notices(typ, est, types.add(typ, est), max_mbar_samples, factor))
     comparison, agreement = pd.concat(types.comparison, ignore_index=True), pd.DataFrame(types.agreement)
-    notices.extend(_agreement_notices(agreement))
+    if trusted:   # (otherwise the warnings say why they differ)
+        notices.extend(_agreement_notices(agreement))
     est0 = next(iter(estimates.values()))
-    wtab = _window_table(data, est0, kt)
-    notices[:0] = _restraint_warnings(wtab)
-    otab = _overlap_table(table, est0)
+    _add_free_energies(wtab, est0, kt)
+    notices[:0] = warnings
+    otab = _overlap_table(table, est0, ratios)
     notices.extend(_overlap_notices(otab, list(estimates)))
     settings = _settings(temperature_k, kt, bin_width_deg, n_bootstrap, seed, bandwidth_deg, types.bandwidths,
                          scheme)
     info = _info(temperature_k, kt, source, len(table), agreement, otab, max_mbar_samples, settings, notices)
-    info["restraint_rule"] = (f"a window contradicts its restraint when its samples need a mean force above "
-                              f"{MAX_MEAN_FORCE:g} kJ/mol/rad (offset beyond 4 restraint widths) or a curvature "
-                              f"below -{MAX_CURVATURE:g} kJ/mol/rad2")
-    info["restraints_consistent"] = bool(wtab["restraint_consistent"].all())
+    info["restraint_rule"] = restraint_rule()
+    info["restraints_consistent"] = trusted
     summary = _summary(first, data, table, scheme, temperature_k, tset, notices, start, stop, step,
                        time.time() - t0)
     result = TrackResult(torsion_set=tset, scheme=scheme, summary=summary, notices=notices, **weighted)
@@ -290,7 +290,7 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
                          inputs=window_inputs(table, source))
 
 
-def _estimate_types(data, windows, types, states, n_states, kt, mult, max_mbar_samples, say):
+def _estimate_types(data, windows, types, states, n_states, kt, mult, max_mbar_samples, say, with_pymbar):
     """The :class:`TypeEstimate` of each torsion type, and the MBAR weight of every sample."""
     weights = np.zeros(len(data.angle_deg))
     estimates = {}
@@ -298,7 +298,7 @@ def _estimate_types(data, windows, types, states, n_states, kt, mult, max_mbar_s
         say(f"MBAR and WHAM for type {typ} ({mult.shape[0]} bootstrap resamples)")
         sel = np.isin(data.torsion, [k for k, t in enumerate(types) if t == typ])
         est = estimate_type(data.angle_deg[sel], data.window[sel], data.frame_pos[sel], data.hist_block[sel],
-                            states[sel], n_states, windows, kt, mult, max_mbar_samples)
+                            states[sel], n_states, windows, kt, mult, max_mbar_samples, with_pymbar)
         weights[sel] = est.weights
         estimates[typ] = est
     return estimates, weights
@@ -364,17 +364,24 @@ def _weighted_tables(data, first, scheme, states, weights, estimates):
                 conformers=conf, conformers_by_type=conf_type, blocks=blocks)
 
 
-def _type_notices(typ, est, hprof, max_mbar_samples):
-    """Notices on a type: pymbar given a thinned set, profile bins sampled by no window."""
+def _type_notices(typ, est, hprof, max_mbar_samples, factor):
+    """Notices on a type: pymbar given a thinned set, profile bins sampled by no window, bins whose
+    samples MBAR gave no weight."""
     notices = []
     if est.thin_stride > 1:
         notices.append(f"type {typ}: pymbar was given one frame in {est.thin_stride} "
                        f"({est.n_mbar_samples} samples, at most {max_mbar_samples}); its window free "
                        "energies were refined on every sample (0.05-degree grid).")
-    unsampled = int((~hprof.sampled).sum())
+    # sampled means samples in the bin; the profile's own mask also needs MBAR weight there
+    held = rebin(est.biased_hist.sum(axis=0), factor) > 0
+    unsampled, unweighted = int((~held).sum()), int((held & ~hprof.sampled).sum())
     if unsampled:
-        notices.append(f"type {typ}: {unsampled} of {len(hprof.sampled)} profile bins were sampled by no "
+        notices.append(f"type {typ}: {unsampled} of {len(held)} profile bins were sampled by no "
                        "window; they have no free energy (add windows there).")
+    if unweighted:
+        notices.append(f"type {typ}: {unweighted} of {len(held)} profile bins hold samples to which MBAR gives "
+                       "no weight (below 1e-308 of the largest: biases that contradict the samples, or windows "
+                       "that do not connect); they have no free energy.")
     return notices
 
 
@@ -386,73 +393,35 @@ def _agreement_notices(agreement):
             for row in agreement.itertuples(index=False) if row.fraction_within < 0.9]
 
 
-def _window_table(data, est, kt):
-    """windows.csv: per window the samples, the mean and spread of the angle, the statistical
-    inefficiency of the bias energy and the window free energies of ``est`` (the first type)."""
-    from ...numerics.statistics import statistical_inefficiency
+def _check_restraints(data, windows, types, kt):
+    """windows.csv without the window free energies, the force-constant ratio of each neighbouring
+    pair, and the warnings on windows that contradict the table (:mod:`.restraints`; the samples of
+    the first type for the pairs, like the overlap table)."""
+    wtab = window_statistics(data, kt)
+    own_bad = ~wtab["restraint_consistent"].to_numpy(bool)
+    pairs = neighbour_pairs(windows["centre_deg"])
+    sel = np.isin(data.torsion, [k for k, t in enumerate(types) if t == types[0]])
+    hist = biased_histograms(data.angle_deg[sel], data.window[sel], len(windows))
+    ratios = force_constant_ratios(hist, windows, pairs, kt, wtab["statistical_inefficiency"].to_numpy(float))
+    side, flagged = judge_force_constants(ratios, pairs)
+    wtab.insert(wtab.columns.get_loc("restraint_consistent"), "k_from_samples_kj_mol_rad2",
+                k_from_samples(ratios, pairs, windows))
+    wtab.loc[flagged, "restraint_consistent"] = False     # (row k is window k)
+    return wtab, ratios, restraint_warnings(wtab, own_bad, side, flagged, ratios)
 
-    rows = []
-    for row in data.windows.itertuples(index=False):
-        k = row.window
-        sel = data.window == k
-        a = data.angle_deg[sel]
-        rad = np.radians(a)
-        mean = float(np.degrees(np.arctan2(np.sin(rad).mean(), np.cos(rad).mean())))
-        spread = float(np.degrees(np.sqrt(-2.0 * np.log(max(np.hypot(np.sin(rad).mean(), np.cos(rad).mean()),
-                                                             1e-12)))))
-        tors = data.torsion[sel]
-        gs = []
-        for t in np.unique(tors)[:10]:
-            series = bias_kj_mol(a[tors == t], row.centre_deg, row.k_kj_mol_rad2)
-            gs.append(statistical_inefficiency(series))
-        rows.append({
-            "window": k + 1, "centre_deg": row.centre_deg, "k_kj_mol_rad2": row.k_kj_mol_rad2,
-            "trajectory": row.trajectory, "n_frames": int(row.n_frames), "n_samples": int(sel.sum()),
-            "mean_angle_deg": mean, "circular_sd_deg": spread,
-            "statistical_inefficiency": float(np.mean(gs)) if gs else np.nan,
-            "n_effective": float(sel.sum() / np.mean(gs)) if gs else np.nan,
-            **restraint_check(mean, spread, row.centre_deg, row.k_kj_mol_rad2, kt)})
-    wtab = pd.DataFrame(rows)
+
+def _add_free_energies(wtab, est, kt):
+    """The window free energies of ``est`` (the first type) by MBAR and WHAM (kJ/mol, relative to
+    the first window) with their bootstrap errors, as columns of windows.csv."""
     for name, f, fb in (("mbar", est.f_mbar_kt, est.boot_f_mbar_kt), ("wham", est.f_wham_kt, est.boot_f_wham_kt)):
         err, _ = bootstrap_spread(fb - fb[:, :1])
         wtab[f"free_energy_{name}_kj_mol"] = f * kt
         wtab[f"free_energy_{name}_err_kj_mol"] = err * kt
-    return wtab
 
 
-def restraint_check(mean_deg, sd_deg, centre_deg, k_kj_mol_rad2, kt):
-    """Whether a window's sampled mean and spread fit its restraint (see *Restraint check*):
-    the columns mean_offset_deg, restraint_sd_deg, mean_force_kj_mol_rad, curvature_kj_mol_rad2
-    and restraint_consistent of windows.csv."""
-    offset = float(wrap_deg(mean_deg - centre_deg))
-    width = np.sqrt(kt / k_kj_mol_rad2)                       # rad
-    force = k_kj_mol_rad2 * abs(np.radians(offset))
-    sd = max(np.radians(sd_deg), 1e-9)
-    curvature = kt / sd ** 2 - k_kj_mol_rad2                  # F'' from var = kT / (k + F'')
-    bad = (force > MAX_MEAN_FORCE and abs(np.radians(offset)) > 4 * width) or curvature < -MAX_CURVATURE
-    return {"mean_offset_deg": offset, "restraint_sd_deg": float(np.degrees(width)),
-            "mean_force_kj_mol_rad": float(force), "curvature_kj_mol_rad2": float(curvature),
-            "restraint_consistent": not bad}
-
-
-def _restraint_warnings(wtab):
-    """The loud warning on windows whose samples contradict their restraint (or none)."""
-    bad = wtab[~wtab["restraint_consistent"]]
-    if not len(bad):
-        return []
-    shown = "; ".join(f"window {int(r.window)} (centre {r.centre_deg:g} deg, k {r.k_kj_mol_rad2:g}): sampled around "
-                      f"{r.mean_angle_deg:.0f} deg, spread {r.circular_sd_deg:.0f} deg where the restraint allows "
-                      f"{r.restraint_sd_deg:.0f}" for r in bad.head(4).itertuples(index=False))
-    more = f" and {len(bad) - 4} more" if len(bad) > 4 else ""
-    return [f"WARNING: {len(bad)} window(s) contradict their stated restraint: {shown}{more}. Their samples need a "
-            f"mean force above {MAX_MEAN_FORCE:g} kJ/mol/rad or a curvature below -{MAX_CURVATURE:g} kJ/mol/rad2 "
-            "to be where they are; the profile, overlap and MBAR-WHAM agreement rest on the window table and are "
-            "not to be trusted: check the centres (degrees, IUPAC sign) and force constants (kJ/mol/rad2) against "
-            "the simulation input."]
-
-
-def _overlap_table(windows, est):
-    """window_overlap.csv: MBAR and histogram overlap of each neighbouring pair (first type)."""
+def _overlap_table(windows, est, ratios):
+    """window_overlap.csv: MBAR and histogram overlap of each neighbouring pair (first type), and
+    the ratio of its force constants to the table's (:func:`~.restraints.force_constant_ratios`)."""
     rows = []
     biased = est.biased_hist / est.biased_hist.sum(axis=1, keepdims=True)
     for i, j in neighbour_pairs(windows["centre_deg"]):
@@ -460,8 +429,17 @@ def _overlap_table(windows, est):
         rows.append({"window_a": i + 1, "window_b": j + 1, "centre_a_deg": windows["centre_deg"][i],
                      "centre_b_deg": windows["centre_deg"][j], "mbar_overlap": o,
                      "histogram_overlap": float(np.minimum(biased[i], biased[j]).sum()),
-                     "poor": bool(o < MIN_OVERLAP)})
-    return pd.DataFrame(rows)
+                     "poor": _poor_overlap(est.overlap, i, j)})
+    return pd.concat([pd.DataFrame(rows), ratios], axis=1)
+
+
+def _poor_overlap(overlap, i, j):
+    """Whether windows i and j overlap poorly: MBAR overlap below :data:`MIN_OVERLAP` and below
+    :data:`SELF_OVERLAP_FRACTION` of each window's overlap with itself. Windows that the biases
+    cannot tell apart overlap perfectly, yet each element of their overlap matrix is 1/K (below
+    0.03 from 34 windows on); NaN (not assessed) is not poor."""
+    o = min(overlap[i, j], overlap[j, i])
+    return bool(o < MIN_OVERLAP and o < SELF_OVERLAP_FRACTION * min(overlap[i, i], overlap[j, j]))
 
 
 def _overlap_notices(otab, order):

@@ -32,7 +32,7 @@ from ..profiles import (BARRIER_COLUMNS, MINIMA_COLUMNS, STATE_DG_COLUMNS, Profi
                         state_free_energies_of_probabilities, von_mises_smooth)
 from .samples import N_HIST_BLOCKS
 from .solver import (GRID_POINTS, _fine_bin, _grid_angles, _grid_index, _import_pymbar, _logsumexp, bias_kj_mol,
-                     solve_free_energies, wham_log_factors)
+                     biased_histograms, solve_free_energies, wham_log_factors)
 
 #: Samples handed to pymbar at most (thinned evenly in time within windows beyond this).
 DEFAULT_MAX_MBAR_SAMPLES = 100_000
@@ -59,9 +59,9 @@ class TypeEstimate:
         MBAR-weighted state probabilities.
     f_mbar_kt, f_wham_kt, boot_f_mbar_kt, boot_f_wham_kt : window free energies (reduced)
     overlap : ndarray (K, K)
-        MBAR overlap matrix.
+        MBAR overlap matrix (NaN when not assessed: see ``with_pymbar`` of :func:`estimate_type`).
     mbar_grid_check_kt : float
-        Largest ``|f_grid - f_pymbar|`` over the windows.
+        Largest ``|f_grid - f_pymbar|`` over the windows (NaN without pymbar).
     n_mbar_samples : int
         Samples handed to pymbar; thin_stride the stride in frames used.
     """
@@ -87,7 +87,7 @@ class TypeEstimate:
 
 
 def estimate_type(angle_deg, window, frame_pos, hist_block, states, n_states, windows, kt, mult,
-                  max_mbar_samples=DEFAULT_MAX_MBAR_SAMPLES):
+                  max_mbar_samples=DEFAULT_MAX_MBAR_SAMPLES, with_pymbar=True):
     """MBAR (pymbar) and WHAM profiles of one type's samples, with block-bootstrap resamples.
 
     Parameters
@@ -99,8 +99,13 @@ def estimate_type(angle_deg, window, frame_pos, hist_block, states, n_states, wi
     kt : float
     mult : ndarray (n_bootstrap, n_windows * 16)
         Block multiplicities of the resamples.
+    with_pymbar : bool
+        False where the samples contradict the window table (:mod:`.restraints`): the window free
+        energies are then the grid solution of the same equations, without pymbar (whose solver can
+        take many minutes on biases that contradict the samples), and the overlap matrix is NaN
+        (not assessed).
     """
-    pymbar = _import_pymbar()
+    pymbar = _import_pymbar() if with_pymbar else None
     centres = windows["centre_deg"].to_numpy(float)
     ks = windows["k_kj_mol_rad2"].to_numpy(float)
     n_win = len(windows)
@@ -110,12 +115,16 @@ def estimate_type(angle_deg, window, frame_pos, hist_block, states, n_states, wi
         raise DihedraError(f"window {empty + 1} has no defined torsion angles of this type; check its files.")
     # biased histograms of each window (overlap coefficients, diagnostics)
     fine = _fine_bin(angle_deg)
-    biased = np.zeros((n_win, 360))
-    np.add.at(biased, (window, fine), 1.0)
+    biased = biased_histograms(angle_deg, window, n_win)
     grid = _grid_index(angle_deg)
     log_c_grid = -bias_kj_mol(_grid_angles()[None, :], centres[:, None], ks[:, None]) / kt
-    f_mbar, overlap, check, n_mbar, stride = _pymbar_free_energies(pymbar, angle_deg, window, frame_pos, n_k, grid,
-                                                                   log_c_grid, centres, ks, kt, max_mbar_samples)
+    if pymbar is None:   # the table contradicts the samples: the same equations on the grid, nothing assessed
+        f_mbar, _ = solve_free_energies(np.bincount(grid, minlength=GRID_POINTS), n_k, log_c_grid)
+        overlap, check, n_mbar, stride = np.full((n_win, n_win), np.nan), np.nan, 0, 1
+    else:
+        f_mbar, overlap, check, n_mbar, stride = _pymbar_free_energies(pymbar, angle_deg, window, frame_pos, n_k,
+                                                                       grid, log_c_grid, centres, ks, kt,
+                                                                       max_mbar_samples)
     w = _sample_weights(f_mbar, n_k, angle_deg, centres, ks, kt)
     w *= len(w) / w.sum()
     fine_mbar = np.bincount(fine, weights=w, minlength=360)
@@ -168,15 +177,22 @@ def _pymbar_free_energies(pymbar, angle_deg, window, frame_pos, n_k, grid, log_c
 
 
 def _sample_weights(f, n_all, angles, centres, ks, kt):
-    """MBAR weights W_n ~ 1 / sum_k N_k exp(f_k - u_k(phi_n)) of samples at their exact angles."""
+    """MBAR weights W_n ~ 1 / sum_k N_k exp(f_k - u_k(phi_n)) of samples at their exact angles (the
+    largest 1)."""
     u_all = bias_kj_mol(angles[None, :], centres[:, None], ks[:, None]) / kt
-    return np.exp(-_logsumexp((np.log(n_all) + f)[:, None] - u_all, axis=0))
+    return _relative_exp(-_logsumexp((np.log(n_all) + f)[:, None] - u_all, axis=0))
 
 
 def _grid_weights(f, n_all, log_c_grid, idx):
-    """MBAR weights of samples placed on the grid points ``idx`` (ln c_kg = ``log_c_grid``)."""
+    """MBAR weights of samples placed on the grid points ``idx`` (ln c_kg = ``log_c_grid``; the largest 1)."""
     ln_d = _logsumexp((np.log(n_all) + f)[:, None] + log_c_grid, axis=0)
-    return np.exp(-ln_d[idx])
+    return _relative_exp(-ln_d[idx])
+
+
+def _relative_exp(log_w):
+    """exp(log_w - max log_w): weights relative to the largest. Their scale cancels where they are
+    used, and biases much stiffer than the samples' spread make them span more than a float holds."""
+    return np.exp(log_w - np.max(log_w))
 
 
 def _bootstrap_type(mult, window, hist_block, fine, grid, states, n_states, n_win, log_c_grid, f_mbar, block_bins,

@@ -154,7 +154,7 @@ def collect_windows(windows, scheme="anti-gauche", start=None, stop=None, step=N
     from ...tracking import track
 
     say = log or (lambda msg: None)
-    tracks, parts, notices, n_frames = [], [], [], []
+    tracks, parts, notices, n_frames, timeless = [], [], [], [], []
     for row in windows.itertuples(index=False):
         say(f"window {row.window + 1}/{len(windows)}: centre {row.centre_deg:g} deg, k {row.k_kj_mol_rad2:g} "
             f"kJ/mol/rad2: {row.trajectory}")
@@ -166,9 +166,7 @@ def collect_windows(windows, scheme="anti-gauche", start=None, stop=None, step=N
             first, here = tracks[0].torsion_set.labels, res.torsion_set.labels
             raise DihedraError(f"window {row.window + 1} selects {len(here)} torsion(s) ({here[0]}, ...) but window 1 "
                                f"selects {len(first)} ({first[0]}, ...); every window must bias the same torsions.")
-        for note in res.notices:
-            if note not in notices:
-                notices.append(note)
+        _add_window_notices(res, row.trajectory, notices, timeless)
         ang = res.angles()
         labels = res.torsion_set.labels
         values = ang[labels].to_numpy(dtype=float)  # (n_frames, n_torsions)
@@ -182,6 +180,8 @@ def collect_windows(windows, scheme="anti-gauche", start=None, stop=None, step=N
                       row.window * N_HIST_BLOCKS + pos[ok] * N_HIST_BLOCKS // n,
                       row.window * N_STATE_BLOCKS + pos[ok] * N_STATE_BLOCKS // n))
         tracks.append(res)
+    if timeless:
+        notices.append(_time_step_notice(timeless, len(windows)))
     arrays = [np.concatenate([p[k] for p in parts]) for k in range(6)]
     table = windows.copy()
     table["n_frames"] = n_frames
@@ -189,3 +189,27 @@ def collect_windows(windows, scheme="anti-gauche", start=None, stop=None, step=N
                       arrays[3].astype(np.int64), arrays[4].astype(np.int64), arrays[5].astype(np.int64),
                       tracks, np.asarray(n_frames), notices)
 
+
+def _add_window_notices(res, trajectory, notices, timeless):
+    """Add the notices of one window's tracking ``res`` to ``notices``, each once, but not those on
+    the errors of the window's own (biased) populations, which windows does not report, nor the one
+    on an unknown time step: its (trajectory, reason) goes to ``timeless``, for one line on all."""
+    from ...trajectory.assemble import error_notices
+
+    skip = set(error_notices(res.populations, res.populations_by_type, res.conformers_by_type))
+    replica = res.summary["replicas"][0]
+    if not replica["time_step_known"]:
+        name = os.path.basename(trajectory)
+        timeless.append((name, replica["time_step_source"].partition("(")[2].rstrip(")")))
+        skip.update(n for n in res.notices if n.startswith(f"{name}: time step unknown"))
+    for note in res.notices:
+        if note not in skip and note not in notices:
+            notices.append(note)
+
+
+def _time_step_notice(timeless, n_windows):
+    """One line for the windows whose trajectories store no usable time step."""
+    name, reason = timeless[0]
+    return (f"{len(timeless)} of {n_windows} window trajectories have no usable time step (e.g. {name}: {reason}); "
+            "nothing here depends on it: the windows are cut into blocks and their statistical "
+            "inefficiency counted in frames, and the times recorded in the results folder are not physical.")

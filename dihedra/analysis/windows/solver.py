@@ -92,9 +92,12 @@ def solve_free_energies(counts, n_k, log_c, f_start=None, tol=1e-9, max_iter=100
     f = np.zeros(len(n_k)) if f_start is None else np.asarray(f_start, dtype=float) - f_start[0]
 
     def parts(f):
-        a = (ln_n + f)[:, None] + lc
-        ln_d = _logsumexp(a, axis=0)
-        return a, ln_d, float(c_g @ ln_d - n_k @ f)
+        # a trial step far past the optimum may overflow (windows that barely overlap under their
+        # biases): its value is then not finite and the line search rejects it
+        with np.errstate(over="ignore", invalid="ignore"):
+            a = (ln_n + f)[:, None] + lc
+            ln_d = _logsumexp(a, axis=0)
+            return a, ln_d, float(c_g @ ln_d - n_k @ f)
 
     a, ln_d, value = parts(f)
     for _ in range(max_iter):
@@ -108,18 +111,28 @@ def solve_free_energies(counts, n_k, log_c, f_start=None, tol=1e-9, max_iter=100
             step = np.linalg.solve(hess[1:, 1:], -grad[1:])
         except np.linalg.LinAlgError:
             step = -grad[1:] / np.maximum(np.diag(hess)[1:], 1e-300)
-        step = np.concatenate([[0.0], step])
-        t, slack = 1.0, 1e-12 * (abs(value) + 1.0)
-        while True:
-            a_new, ln_d_new, value_new = parts(f + t * step)
-            if value_new <= value + slack or t < 1e-6:
-                break
-            t *= 0.5
-        f, a, ln_d, value = f + t * step, a_new, ln_d_new, value_new
+        trial = _line_search(parts, f, np.concatenate([[0.0], step]), value)
+        if trial is None:   # no step lowers A: f is as well determined as the windows' overlap allows
+            break
+        f, (a, ln_d, value) = trial
     log_p = np.full(len(counts), -np.inf)
     log_p[keep] = np.log(c_g) - ln_d
     log_p -= _logsumexp(log_p[keep], axis=0)
     return f, log_p
+
+
+def _line_search(parts, f, step, value):
+    """``(f + t step, parts(f + t step))`` for the longest t of 1, 1/2, ... 1e-6 that does not raise A
+    (``value``); None when every one does or overflows (a NaN compares false): windows that do not
+    overlap under their biases leave f undetermined along some direction, where Newton steps run off."""
+    slack = 1e-12 * (abs(value) + 1.0)
+    t = 1.0
+    while t >= 1e-6:
+        trial = parts(f + t * step)
+        if trial[2] <= value + slack:
+            return f + t * step, trial
+        t *= 0.5
+    return None
 
 
 def wham_log_factors(centres_deg, k_kj_mol_rad2, kt, n_bins=360):
@@ -145,6 +158,13 @@ def _fine_bin(angles_deg, n_bins=360):
     """Bin of each angle, bins open at the left edge as in the trajectory pass."""
     width = 360.0 / n_bins
     return np.clip(np.ceil((np.asarray(angles_deg) + 180.0) / width).astype(np.int64) - 1, 0, n_bins - 1)
+
+
+def biased_histograms(angle_deg, window, n_windows):
+    """Samples of each window (0-based ``window`` of each angle) in 1-degree bins: (n_windows, 360)."""
+    hist = np.zeros((n_windows, 360))
+    np.add.at(hist, (window, _fine_bin(angle_deg)), 1.0)
+    return hist
 
 
 def _import_pymbar():
