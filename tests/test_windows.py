@@ -461,6 +461,23 @@ def test_force_constant_per_degree_squared_is_flagged(windows_400, capsys):
     assert info["restraints_consistent"] is False and info["overlap"][0]["mbar_overlap"] is None
 
 
+def test_a_pipeline_stops_at_a_contradicted_window_table(windows_400, tmp_path):
+    # the later steps of an analysis file would rest on the unusable profile: the windows step
+    # fails, named, after writing its files
+    from dihedra.pipeline import load_pipeline, run_pipeline
+
+    csv = restated(windows_400, "per_degree_pipe.csv", 400.0 * np.radians(1.0) ** 2)
+    toml = tmp_path / "w.toml"
+    toml.write_text(f'out = "{tmp_path / "res"}"\nsteps = ["windows", "profile"]\n[windows]\n'
+                    f'windows = "{csv}"\ntemperature_k = {T}\nn_bootstrap = 20\n[profile]\n')
+    said = []
+    with pytest.raises(DihedraError, match=r"step windows .* failed: the samples contradict the window table"):
+        run_pipeline(load_pipeline(str(toml)), log=said.append)
+    assert os.path.exists(tmp_path / "res" / "windows.csv")
+    assert any(line.startswith("== step 1/2: windows") for line in said)
+    assert not any(line.startswith("== step 2/2") for line in said)
+
+
 def test_too_stiff_force_constant_gives_no_numpy_warnings(windows_400):
     # the same samples as test_correct_force_constants_pass, whose profile bins are all sampled
     csv = restated(windows_400, "stiff.csv", 400.0e3)

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 from ..analysis.compare import Thresholds, compare_with_scan
 from ..analysis.couplings import coupling_file_names, ensemble_couplings, get_relation, read_experimental
-from ..errors import OutputExistsError
+from ..errors import DihedraError, OutputExistsError
 from ..analysis.kinetics import state_kinetics
 from ..analysis.profiles import free_energy_profiles
 from ..analysis.reference_populations import compare_reference_populations
@@ -73,6 +73,9 @@ def _track(ctx, a):
 def _windows(ctx, a):
     res = unbias_windows(a.pop("windows"), log=ctx.log, **a)
     res.save(ctx.out, overwrite=ctx.overwrite)
+    if not res.info["restraints_consistent"]:   # (the later steps would rest on an unusable profile)
+        raise DihedraError(f"the samples contradict the window table (see the WARNING); the results in {ctx.out} "
+                           "are unusable until the table is fixed, and no later step runs.")
     return f"{len(res.windows)} windows -> {ctx.out}"
 
 
