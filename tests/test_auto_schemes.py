@@ -21,6 +21,7 @@ import MDAnalysis as mda  # noqa: E402
 
 from dihedra.selection.chemistry import classify_torsions  # noqa: E402
 from dihedra.selection.choice import choose_schemes  # noqa: E402
+from dihedra.selection.schemes import get_scheme  # noqa: E402
 from dihedra.selection.specs import select_torsions  # noqa: E402
 
 #: An aryl amide with a methyl (methoxy) and a CF3 group: N-(2-methoxyethyl)-4-(trifluoromethyl)benzamide.
@@ -72,7 +73,15 @@ def test_drug_like_molecule_gets_a_sensible_scheme_for_every_rotatable_torsion(t
     table = classify_torsions(u, select_torsions(u, "rotatable"))
     assert len(table) == 7 and table["reason"].str.len().min() > 20
     amide = _by_names(table, u, "C4", "N5", "C6", "O7")
-    assert (amide["bond"], amide["periodicity"], amide["scheme"]) == ("amide", 2, "cis-trans")
+    # measured through the carbonyl O: a trans amide (C-C(=O)-N-C near 180, as RDKit embeds a
+    # secondary amide) has O=C-N-C near 0, and must read trans (IUPAC-IUB 1970: cis = C-C(=O)-N-C near 0)
+    assert (amide["bond"], amide["periodicity"], amide["scheme"]) == ("amide", 2, "cis-trans-o")
+    atoms = [int(u.select_atoms(f"name {n}")[0].ix) for n in ("C4", "N5", "C6", "O7")]
+    from MDAnalysis.lib.distances import calc_dihedrals
+
+    phi = np.degrees(calc_dihedrals(*(u.atoms.positions[[i]] for i in atoms)))
+    scheme = get_scheme("cis-trans-o")
+    assert abs(phi[0]) < 30 and scheme.labels[scheme.assign(phi)[0]] == "trans"
     methyl = table[table["torsion"].str.contains("C1-O2-C3") & table["torsion"].str.contains(":H")].iloc[0]
     assert methyl["scheme"] == "symmetric-rotor" and "three identical atoms" in methyl["reason"]
     cf3 = table[table["torsion"].str.contains("F")].iloc[0]
@@ -108,7 +117,8 @@ def test_bond_orders_of_the_topology_are_used():
         if not hasattr(u.residues, attr):
             u.add_TopologyAttr(attr, value)
     table = classify_torsions(u, select_torsions(u, "rotatable"))
-    assert sorted(table["scheme"]) == ["cis-trans", "symmetric-rotor", "symmetric-rotor"]
+    # (the rotatable rule takes the carbonyl O as the outer atom: cis-trans measured through it)
+    assert sorted(table["scheme"]) == ["cis-trans-o", "symmetric-rotor", "symmetric-rotor"]
     assert table["bond"].tolist().count("amide") == 1
     amide = table[table["bond"] == "amide"].iloc[0]
     assert amide["centres"].startswith("C sp2 (bond orders)") or amide["centres"].endswith("C sp2 (bond orders)")
@@ -126,15 +136,16 @@ def test_scheme_map_mixes_schemes_in_one_run(tmp_path):
     u = mda.Universe(pdb, dcd)
     ts = TorsionStates(u, torsions="rotatable", scheme=str(scheme_map)).run()
     schemes = dict(zip(ts.results.torsions["name"], ts.results.torsions["scheme"]))
-    assert schemes["C4-N5-C6-O7"] == "cis-trans"
+    assert schemes["C4-N5-C6-O7"] == "cis-trans-o"   # (the rule's cis-trans, through the carbonyl O)
     assert schemes["C1-O2-C3-C4"] == "anti-gauche" and schemes["O2-C3-C4-N5"] == "anti-gauche"
     assert schemes["C3-C4-N5-C6"] == "klyne-prelog"          # sp2-sp3 by auto
     assert schemes["O7-C6-C8-C9"] == "klyne-prelog"          # sp2-sp2: the default of the map
     assert ts.scheme.name == "drug"
     pops = ts.results.populations
     amide = pops[pops["torsion"].str.contains("C4-N5-C6-O7")]
-    assert set(amide["state"]) == {"cis", "trans"} and set(amide["scheme"]) == {"cis-trans"}
-    assert set(ts.results.populations_by_type["scheme"]) >= {"cis-trans", "anti-gauche", "klyne-prelog"}
+    assert set(amide["state"]) == {"cis", "trans"} and set(amide["scheme"]) == {"cis-trans-o"}
+    assert amide.set_index("state").loc["trans", "population"] > 0.9   # RDKit embeds secondary amides trans
+    assert set(ts.results.populations_by_type["scheme"]) >= {"cis-trans-o", "anti-gauche", "klyne-prelog"}
     reasons = ts.results.schemes.set_index("type")["reason"]
     assert reasons["LIG:C4-N5-C6-O7"].iloc[0].startswith("rule 1 (bond = amide)")
 

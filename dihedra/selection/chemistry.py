@@ -368,11 +368,21 @@ def classify_torsions(universe, tset, graph=None):
     graph = graph or BondGraph(universe)
     rows = []
     for t in tset.torsions:
-        b, c = int(t.indices[1]), int(t.indices[2])
+        a, b, c, d = (int(x) for x in t.indices)
         kind, fold, scheme, reason = classify_bond(graph, b, c)
+        if scheme == "cis-trans" and kind in ("amide", "ester") and _through_carbonyl_oxygen(graph, a, b, c, d):
+            # cis/trans name C-C(=O)-X-C; through the O the same angle is 180 degrees further
+            scheme, reason = "cis-trans-o", reason + "; measured through the carbonyl O, so near 0 is trans"
         rows.append((t.label, t.type, kind, f"{_centre_text(graph, b)} - {_centre_text(graph, c)}", int(fold),
                      scheme, reason))
     return pd.DataFrame(rows, columns=COLUMNS)
+
+
+def _through_carbonyl_oxygen(graph, a, b, c, d):
+    """Whether the torsion a-b-c-d takes the terminal O of a carbonyl centre (b or c) as its outer
+    atom on that side."""
+    return any(graph.carbonyl(centre) and graph.element[outer] in ("O", "S") and len(graph.adjacency[outer]) == 1
+               for outer, centre in ((a, b), (d, c)))
 
 
 def schemes_by_type(table):

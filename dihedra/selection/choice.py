@@ -271,6 +271,8 @@ def _from_map(path, universe, tset):
             scheme = scheme.parts[scheme.part_index(t)]
         if scheme == "auto":
             scheme, why = auto.by_type[t], f"{why}: auto: {auto.reasons[t]}"
+        elif getattr(scheme, "name", None) == "cis-trans" and auto.by_type[t].name == "cis-trans-o":
+            scheme, why = auto.by_type[t], f"{why}; measured through the carbonyl O, so near 0 is trans"
         by_type[t], reasons[t] = scheme, why
     return SchemeChoice(name=name, by_type=by_type, reasons=reasons, table=auto.table, notices=notices)
 

@@ -281,11 +281,14 @@ def klyne_prelog():
                        tuple(remap[s] for s in scheme.arc_states), scheme.start_closed)
 
 
-def cis_trans():
+def cis_trans(name="cis-trans"):
     """trans (\\|omega\\| >= 90) and cis (\\|omega\\| < 90): the two planar wells of a peptide bond (or
     any amide or other planar torsion), split at the top of the two-fold barrier between them
-    (common practice; cis = omega near 0 as in IUPAC-IUB, J. Mol. Biol. 52 (1970) 1)."""
-    return _from_arcs("cis-trans", [("trans", 90.0, True), ("cis", -90.0, False)], labels=["trans", "cis"])
+    (common practice; cis = omega near 0 as in IUPAC-IUB, J. Mol. Biol. 52 (1970) 1). As
+    ``cis-trans-o``, the same wells of a torsion measured through the carbonyl O (O=C-N-C near 0 is
+    trans)."""
+    near, far = ("trans", "cis") if name == "cis-trans-o" else ("cis", "trans")
+    return _from_arcs(name, [(far, 90.0, True), (near, -90.0, False)], labels=["trans", "cis"])
 
 
 def chi_sp3(name="chi-sp3"):
@@ -523,17 +526,11 @@ def scheme_from_toml(path):
     ``from_deg`` (excluded) to ``to_deg`` (included) and may wrap through 180. Several arcs may
     share a label. The arcs must cover the circle exactly once.
 
-    Example::
+    Example (the ``[[state]]`` tables written inline)::
 
         name = "trans-or-not"
-        [[state]]
-        label = "trans"
-        from_deg = 150
-        to_deg = -150
-        [[state]]
-        label = "other"
-        from_deg = -150
-        to_deg = 150
+        state = [{label = "trans", from_deg = 150, to_deg = -150},
+                 {label = "other", from_deg = -150, to_deg = 150}]
     """
     data = read_toml(path, "scheme file", SchemeError)
     return scheme_from_mapping(data, where=str(path))
@@ -568,8 +565,8 @@ def get_scheme(spec):
         return anti_gauche()
     if text == "klyne-prelog":
         return klyne_prelog()
-    if text == "cis-trans":
-        return cis_trans()
+    if text in ("cis-trans", "cis-trans-o"):
+        return cis_trans(text)
     if text == "coplanar-perpendicular":
         return coplanar_perpendicular()
     if text == "symmetric-rotor":

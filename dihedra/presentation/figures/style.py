@@ -75,6 +75,7 @@ STATE_COLOURS = {
                      "ap": OKABE_ITO["blue"], "-ac": OKABE_ITO["bluish green"],
                      "-sc": OKABE_ITO["reddish purple"]},
     "cis-trans": {"trans": OKABE_ITO["blue"], "cis": OKABE_ITO["vermillion"]},
+    "cis-trans-o": {"trans": OKABE_ITO["blue"], "cis": OKABE_ITO["vermillion"]},
     "chi-sp3": {"g+": OKABE_ITO["orange"], "t": OKABE_ITO["blue"], "g-": OKABE_ITO["reddish purple"]},
     "gauche-trans": {"g+": OKABE_ITO["orange"], "t": OKABE_ITO["blue"], "g-": OKABE_ITO["reddish purple"]},
     "chi-sp2": {"0": OKABE_ITO["vermillion"], "+90": OKABE_ITO["orange"], "180": OKABE_ITO["blue"],
