@@ -204,6 +204,21 @@ def test_gfn2_xtb_ethane_scan():
         assert 8.0 < b["energy_kj_mol"] < 16.0
 
 
+def test_gfn2_xtb_refuses_a_charge_the_electrons_cannot_have():
+    # propanoate (C3H5O2-) has 40 electrons; given as neutral, its 39 electrons cannot all pair up
+    # (0 unpaired): a wavefunction of no real state, refused before any energy is computed
+    from rdkit import Chem
+    from rdkit.Chem import AllChem
+    from dihedra.analysis.scans import xtb_scan
+
+    mol = Chem.AddHs(Chem.MolFromSmiles("CCC(=O)[O-]"))
+    AllChem.EmbedMolecule(mol, randomSeed=1)
+    with pytest.raises(DihedraError, match="39 electrons at charge \\+0, which cannot leave 0 unpaired.*sum to -1"):
+        xtb_scan(mol, (0, 1, 2, 3), step_deg=60)
+    with pytest.raises(DihedraError, match="40 electrons at charge -1, which cannot leave 1 unpaired"):
+        xtb_scan(mol, (0, 1, 2, 3), step_deg=60, charge=-1, unpaired=1)
+
+
 def test_scan_command(butane_pdb, tmp_path, capsys):
     # common practice: 'dihedra scan' writes a reusable CSV that 'compare' reads
     from dihedra.cli import main
@@ -213,6 +228,11 @@ def test_scan_command(butane_pdb, tmp_path, capsys):
     assert os.path.exists(out) and read_scan_csv(out).kind == "relaxed"
     assert main(["scan", path, "--torsion", "0,1,2,3", "--method", "mmff94", "--out", out]) == 2
     assert "already exists" in capsys.readouterr().err
+    # a step that does not divide 360 is refused before anything is announced or computed
+    assert main(["scan", path, "--torsion", "0,1,2,3", "--method", "mmff94", "--step", "7", "--out",
+                 str(tmp_path / "seven.csv")]) == 2
+    printed = capsys.readouterr()
+    assert "must divide 360" in printed.err and "relaxed scan" not in printed.err + printed.out
 
 
 def test_a_written_scan_reads_back_with_plain_pandas_and_keeps_its_metadata_beside_it(tmp_path):

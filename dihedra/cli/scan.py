@@ -2,7 +2,8 @@
 
 import os
 
-from ..analysis.scans import check_scan_output, mmff94_scan, molecule_from_topology, write_scan_csv, xtb_scan
+from ..analysis.scans import (check_scan_output, mmff94_scan, molecule_from_topology, scan_angles, write_scan_csv,
+                              xtb_scan)
 from ..analysis.scans.files import sidecar_path
 from .common import say
 
@@ -38,6 +39,7 @@ def run(args):
     out = check_scan_output(args.out, overwrite=args.overwrite, inputs=[args.topology, args.trajectory])
     mol, local = molecule_from_topology(args.topology, args.torsion, args.trajectory)
     step = args.step if args.step is not None else (10.0 if args.method == "mmff94" else 30.0)
+    scan_angles(step)   # (refused before the banner: nothing runs with a step that does not divide 360)
     say(f"{args.method} relaxed scan of torsion {args.torsion} ({mol.GetNumAtoms()} atoms), every {step:g} deg")
 
     def progress(done, total, angle, energy):

@@ -27,7 +27,7 @@ Modules
 """
 
 from .computed import (BOHR_ANGSTROM, XTB_RESTRAINT_KJ_MOL_RAD2, mmff94_scan, molecule_from_topology,
-                       parse_torsion_atoms, xtb_scan)
+                       parse_torsion_atoms, scan_angles, xtb_scan)
 from .files import (SCAN_SIGNATURE, angle_unit_from_name, canonical_angle_unit, check_scan_output,
                     energy_unit_from_name, read_scan, read_scan_csv, write_scan_csv)
 from .parameters import cosine_series_kj_mol, read_parameter_toml, ryckaert_bellemans_kj_mol, scan_from_parameters
@@ -37,6 +37,6 @@ __all__ = [
     "BOHR_ANGSTROM", "MAX_GAP_DEG", "MIN_POINTS", "SCAN_KINDS", "SCAN_SIGNATURE", "XTB_RESTRAINT_KJ_MOL_RAD2",
     "TorsionScan", "angle_unit_from_name", "canonical_angle_unit", "check_scan_output", "cosine_series_kj_mol",
     "energy_unit_from_name", "mmff94_scan", "molecule_from_topology", "parse_torsion_atoms", "read_parameter_toml",
-    "read_scan", "read_scan_csv", "ryckaert_bellemans_kj_mol", "scan_from_parameters", "scan_from_points",
-    "write_scan_csv", "xtb_scan",
+    "read_scan", "read_scan_csv", "ryckaert_bellemans_kj_mol", "scan_angles", "scan_from_parameters",
+    "scan_from_points", "write_scan_csv", "xtb_scan",
 ]

@@ -123,7 +123,8 @@ def _check_rotatable(mol, local):
         raise DihedraError("the central bond of the torsion is in a ring; a scan cannot turn it freely.")
 
 
-def _scan_angles(step_deg):
+def scan_angles(step_deg):
+    """The angles of a scan every ``step_deg`` degrees (a divisor of 360, at most 60), or the error."""
     step = float(step_deg)
     if not (0 < step <= 60) or abs(360.0 / step - round(360.0 / step)) > 1e-9:
         raise DihedraError(f"the scan step must divide 360 and be at most 60 degrees (e.g. 10, 15, 30); got {step_deg!r}.")
@@ -201,7 +202,7 @@ def mmff94_scan(mol, torsion, step_deg=10.0, max_iterations=5000, progress=None)
     plain = AllChem.MMFFGetMoleculeForceField(work, props)
     plain.Minimize(maxIts=max_iterations)
     start = Chem.Conformer(work.GetConformer())
-    targets = _scan_angles(step_deg)
+    targets = scan_angles(step_deg)
     best = {}
     total = 3 * len(targets)
     done = 0
@@ -274,6 +275,18 @@ class _RestrainedEnergy:
         return e, g.ravel()
 
 
+def _check_electrons(mol, numbers, charge, unpaired):
+    """Refuse a charge and a number of unpaired electrons that the molecule's electrons cannot have
+    (the electrons left after the unpaired ones must pair up: their count must be even)."""
+    electrons = int(numbers.sum()) - int(charge)
+    if electrons < 0 or not 0 <= int(unpaired) <= electrons or (electrons - int(unpaired)) % 2:
+        formal = sum(atom.GetFormalCharge() for atom in mol.GetAtoms())
+        hint = f" (the topology's formal charges sum to {formal:+d})" if formal else ""
+        raise DihedraError(f"this molecule has {electrons} electrons at charge {int(charge):+d}, which cannot leave "
+                           f"{int(unpaired)} unpaired{hint}; give its charge (--charge, charge=) and unpaired "
+                           "electrons (--unpaired, unpaired=).")
+
+
 def xtb_scan(mol, torsion, step_deg=30.0, charge=0, unpaired=0, restraint_kj_mol_rad2=XTB_RESTRAINT_KJ_MOL_RAD2,
              gradient_tolerance=1e-3, max_iterations=500, progress=None):
     """Relaxed GFN2-xTB scan with tblite: restraint on the torsion plus L-BFGS-B.
@@ -307,6 +320,7 @@ def xtb_scan(mol, torsion, step_deg=30.0, charge=0, unpaired=0, restraint_kj_mol
     a, b, c, d = (int(i) for i in torsion)
     _check_rotatable(mol, (a, b, c, d))
     numbers = np.array([atom.GetAtomicNum() for atom in mol.GetAtoms()])
+    _check_electrons(mol, numbers, charge, unpaired)
     conf = mol.GetConformer()
     x0 = np.array(conf.GetPositions(), dtype=float) / BOHR_ANGSTROM
     k_eh = restraint_kj_mol_rad2 / HARTREE_KJ_PER_MOL
@@ -314,7 +328,7 @@ def xtb_scan(mol, torsion, step_deg=30.0, charge=0, unpaired=0, restraint_kj_mol
     calc.set("verbosity", 0)
     energy_gradient = _RestrainedEnergy(calc, (a, b, c, d), k_eh)
 
-    targets = _scan_angles(step_deg)
+    targets = scan_angles(step_deg)
     up, _ = _sweep_order(targets, _dihedral_deg(x0, a, b, c, d))
     x = x0.copy()
     rows = {}
