@@ -183,3 +183,15 @@ def test_torsions_command_lists_scheme_and_reason(tmp_path, capsys):
     code = main(["track", pdb, pdb, "--torsions", "rotatable", "--scheme", "basins", "--out", str(tmp_path / "x")])
     assert code == 2 and "temperature" in capsys.readouterr().err
     assert not os.path.exists(tmp_path / "x")
+
+
+def test_a_double_bond_with_a_symmetric_end_has_one_state(tmp_path):
+    # propene: H-C(H)=C-C; the two H of =CH2 are the same atom kind, so H1-C1=C2-C3 at 0 or 180
+    # is one molecule (no Z/E isomerism without two different substituents on each end: IUPAC
+    # rule E-2, common practice); 2-butene keeps cis/trans
+    for smiles, expected in (("C=CC", "symmetric-rotor"), ("CC=CC", "cis-trans")):
+        pdb, _ = write_molecule(str(tmp_path), smiles, name=smiles.replace("=", "d"))
+        u = mda.Universe(pdb)
+        table = classify_torsions(u, select_torsions(u, "rotatable"))
+        double = table[table["bond"] == "double"]
+        assert len(double) >= 1 and set(double["scheme"]) == {expected}, smiles

@@ -319,6 +319,9 @@ def _sp2_sp2(graph, b, c):
                      for x, y in ((b, c), (c, b)))
         order = 2.0 if unique and graph.element[b] in ("C", "N") and graph.element[c] in ("C", "N") else 1.0
     if order >= 2:
+        if graph.end_symmetry(b, c) == "two" or graph.end_symmetry(c, b) == "two":
+            return ("double", 1, "symmetric-rotor", "double bond with two identical substituents on one end (=CH2, "
+                    f"=CMe2): its cis and trans are one molecule, one distinguishable state ({EW})")
         return ("double", 2, "cis-trans", f"double bond: cis and trans (Z/E) isomers ({EW})")
     if graph.end_symmetry(b, c) == "two" or graph.end_symmetry(c, b) == "two":
         return ("sp2-sp2", 2, "coplanar-perpendicular", "conjugated single bond between sp2 centres, one end with "
