@@ -46,7 +46,7 @@ from .trajectory.result import BlockParts, bound_heap, release_memory
 from .trajectory.states import (TorsionStates, check_frame_range, check_pass_options, describe_frame_range,
                                  no_frames_error, whole_number)
 from .trajectory.timeblocks import pass_time_blocks
-from .trajectory.weights import weights_per_replica
+from .trajectory.weights import weight_notices, weights_per_replica
 
 
 def run_inputs(topology, trajectories, torsions=None, scheme=None, weights=None):
@@ -201,6 +201,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
                                                       zip(universes, frames, weight_arrays)], tset, scheme)
         frames = [f[k:] for f, k in zip(frames, drop)]
         weight_arrays = [None if w is None else w[k:] for w, k in zip(weight_arrays, drop)]
+        run.notices.extend(weight_notices(weight_arrays))
         backend, n_workers, threads = run.plan(workers, backend, scheduler, threads, max(map(len, frames)), len(tset))
         basins = None
         if choice.needs_data:   # the basins: a first pass over the frames the run keeps

@@ -128,3 +128,18 @@ def test_state_series_with_labels_counts_as_the_populations(serial):
     pops = res.populations[res.populations["torsion"] == first].set_index("state")["population"]
     for state, p in pops.items():
         assert share.get(state, 0.0) == pytest.approx(p)
+
+
+def test_weights_that_leave_few_frames_are_said():
+    # Kish's effective sample size (sum w)^2 / sum w^2 (Kish, Survey Sampling, 1965): equal weights
+    # keep every frame; one heavy frame among 1000 leaves about one; a replica of zeros gives nothing
+    from dihedra.trajectory.weights import weight_notices
+
+    assert weight_notices([np.ones(500), np.ones(500)]) == []
+    heavy = np.full(1000, 1e-6)
+    heavy[3] = 1.0
+    notes = weight_notices([heavy])
+    assert len(notes) == 1 and "about 1 effective frames of 1000 (Kish)" in notes[0]
+    notes = weight_notices([np.ones(500), np.zeros(500)])
+    assert any("replica(s) 2 are all 0" in n for n in notes)
+    assert weight_notices([None, None]) == []

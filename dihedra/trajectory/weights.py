@@ -83,3 +83,27 @@ def _index_column(table, name, spec):
         raise InputFileError(f"weights file {spec}, column {name!r}, row {k + 1}: {table[name].iloc[k]!r} is not a "
                              "whole number >= 0.")
     return values.astype(np.int64)
+
+
+#: Below this Kish effective fraction of the analysed frames, a weighted run says it rests on few.
+MIN_KISH_FRACTION = 0.1
+
+
+def weight_notices(weight_arrays):
+    """Sentences on weights that leave little: replicas whose analysed frames all weigh 0, and a
+    Kish effective sample size, (sum w)^2 / sum w^2 (Kish, Survey Sampling, Wiley 1965), below
+    :data:`MIN_KISH_FRACTION` of the analysed frames."""
+    arrays = [np.asarray(w, dtype=float) for w in weight_arrays if w is not None]
+    if not arrays:
+        return []
+    out = []
+    empty = [r + 1 for r, w in enumerate(weight_arrays) if w is not None and len(w) and not np.any(np.asarray(w) > 0)]
+    if empty:
+        out.append(f"the weights of replica(s) {', '.join(map(str, empty))} are all 0 over the analysed frames: "
+                   "they contribute nothing to the results.")
+    w = np.concatenate(arrays)
+    n_eff = float(w.sum()) ** 2 / float(np.sum(w ** 2)) if np.any(w > 0) else 0.0
+    if len(w) and n_eff < MIN_KISH_FRACTION * len(w):
+        out.append(f"the weights leave about {n_eff:.0f} effective frames of {len(w)} (Kish): the reweighted results "
+                   "rest on few frames, and their errors are rough.")
+    return out
