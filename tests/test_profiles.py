@@ -221,7 +221,7 @@ def test_pair_profile_needs_angles(tmp_path):
         pair_profiles(res, *res.torsion_set.labels[:2], temperature_k=T)
 
 
-def test_profile_command(rb_synthetic, capsys):
+def test_profile_command(rb_synthetic, capsys, monkeypatch):
     # common practice: the command line is a thin layer and prints the bandwidth it used
     from dihedra.cli import main
     status = main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--types-only",
@@ -238,6 +238,12 @@ def test_profile_command(rb_synthetic, capsys):
     err = capsys.readouterr().err
     assert "'NOPE:x' is neither a torsion label nor a torsion type" in err and "reading" not in err
     assert os.path.getmtime(os.path.join(rb_synthetic.folder, "profiles.csv")) == before
+    # a per-torsion table above the size limit points at --types-only (limit lowered for the test)
+    import dihedra.cli.profile as command
+
+    monkeypatch.setattr(command, "LARGE_TABLE_BYTES", 1000)
+    assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--overwrite"]) == 0
+    assert "--types-only writes the types' alone" in capsys.readouterr().err
 
 
 def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):

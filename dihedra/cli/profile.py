@@ -1,5 +1,7 @@
 """``dihedra profile``: free-energy profiles, minima, barriers and state free energies of a results folder."""
 
+import os
+
 from ..errors import DihedraError
 from ..analysis.profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                                  PROFILE_ENERGY_UNITS, check_estimate_options, convert_energy_columns,
@@ -60,6 +62,14 @@ def run(args):
     report_profiles(pset, unit)
     print_notices(pset.notices)
     print("written: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
+    csv = os.path.join(result.folder, "profiles.csv")
+    if not args.types_only and os.path.exists(csv) and os.path.getsize(csv) > LARGE_TABLE_BYTES:
+        say(f"note: profiles.csv holds every torsion's profile ({os.path.getsize(csv) / 1e6:.0f} MB for "
+            f"{len(result.torsion_set)} torsions); --types-only writes the types' alone.")
+
+
+#: Above this size of profiles.csv, ``profile`` points at --types-only.
+LARGE_TABLE_BYTES = 100_000_000
 
 
 def report_profiles(pset, unit, max_types=20):
