@@ -384,10 +384,13 @@ def _verdict(metrics, minima_side, states, ref, thresholds):
     missing = [m for m in minima_side
                if m["predicted_population"] >= thresholds.min_minimum_population and not m["in_reliable_region"]]
     tol = thresholds.tolerance_kj_mol
-    bad_states = [s for s in states if s["state"] != ref and np.isfinite(s["ddg_kj_mol"])
-                  and abs(s["ddg_kj_mol"]) > tol
-                  and (not np.isfinite(s["free_energy_err_kj_mol"])
-                       or abs(s["ddg_kj_mol"]) > thresholds.n_sigma * s["free_energy_err_kj_mol"])]
+
+    def resolved(s):   # (ddG beyond n_sigma of its error)
+        return abs(s["ddg_kj_mol"]) > thresholds.n_sigma * s["free_energy_err_kj_mol"]
+
+    others = [s for s in states if s["state"] != ref and np.isfinite(s["ddg_kj_mol"])]
+    bad_states = [s for s in others if abs(s["ddg_kj_mol"]) > tol
+                  and (not np.isfinite(s["free_energy_err_kj_mol"]) or resolved(s))]
     if n_rel < thresholds.min_reliable_bins:
         return "undersampled", f"only {n_rel} reliable bins (at least {thresholds.min_reliable_bins} needed)"
     if missing:
@@ -402,9 +405,8 @@ def _verdict(metrics, minima_side, states, ref, thresholds):
             parts.append(f"ddG({s['state']} vs {ref}) = {s['ddg_kj_mol']:+.2f} ± "
                          f"{s['free_energy_err_kj_mol']:.2f} kJ/mol")
         return "inconsistent", "; ".join(parts)
-    told = [s for s in states if s["state"] != ref and np.isfinite(s["ddg_kj_mol"])
-            and np.isfinite(s["free_energy_err_kj_mol"]) and s["free_energy_err_kj_mol"] > 0
-            and abs(s["ddg_kj_mol"]) > thresholds.n_sigma * s["free_energy_err_kj_mol"]]
+    told = [s for s in others if np.isfinite(s["free_energy_err_kj_mol"]) and s["free_energy_err_kj_mol"] > 0
+            and resolved(s)]
     apart = ("; measurably apart, within the tolerance: " + ", ".join(
         f"ddG({s['state']} vs {ref}) = {s['ddg_kj_mol']:+.2f} ± {s['free_energy_err_kj_mol']:.2f} kJ/mol" for s in told)
         if told else "")   # (a large run tells small differences apart: said, not hidden)
