@@ -44,7 +44,7 @@ from .trajectory.discard import plan_discard
 from .trajectory.inputs import FileHashes, check_readable, load_universe, truncated_error, usable_frames
 from .trajectory.result import BlockParts, bound_heap, release_memory
 from .trajectory.states import (TorsionStates, check_frame_range, check_pass_options, describe_frame_range,
-                                 no_frames_error, whole_number)
+                                 no_frames_error, torsions_within, whole_number)
 from .trajectory.timeblocks import pass_time_blocks
 from .trajectory.weights import weight_notices, weights_per_replica
 
@@ -184,6 +184,8 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
         with run.phase("selection"):
             tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universes[0], torsions,
                                                                                         keep_variants=keep_variants)
+            if group is not None:   # (only the torsions inside the group, as TorsionStates follows them)
+                tset = torsions_within(tset, group, universes[0])
         run.notices.extend(tset.notices)
         choice = choose_schemes(scheme, universes[0], tset, torsions)
         run.notices.extend(choice.notices)

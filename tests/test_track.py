@@ -112,6 +112,22 @@ def test_replicas_are_kept_apart_and_combined(two_replicas):
     assert states["time_ps"].iloc[1] - states["time_ps"].iloc[0] == pytest.approx(2.0, rel=1e-5)
     assert res.summary["replicas"][0]["time_step_ps"] == pytest.approx(2.0, rel=1e-5)
 
+def test_an_atom_group_follows_only_its_own_torsions(two_replicas):
+    """``track(atom_group)`` (a part of the system) follows the torsions inside the group, with the
+    same numbers as the whole system's run has for them."""
+    import MDAnalysis as mda
+
+    (top, t0), _ = two_replicas
+    whole = track(top, [t0], torsions=spec8(), scheme="anti-gauche")
+    u = mda.Universe(top, t0)
+    part = track(u.atoms[:12], torsions=spec8(), scheme="anti-gauche")   # the first three chains
+    assert part.torsion_set.labels == whole.torsion_set.labels[:3]
+    assert len(part.torsions) == 3 and any("reach outside the atom group" in n for n in part.notices)
+    mine = whole.populations[whole.populations["torsion"].isin(part.torsion_set.labels)].reset_index(drop=True)
+    pd.testing.assert_frame_equal(part.populations[["torsion", "state", "population"]],
+                                  mine[["torsion", "state", "population"]])
+
+
 
 def test_one_replica_table_is_that_replica_computed_alone(two_replicas):
     """With one replica the per-replica table reuses the pooled one: the same numbers as the

@@ -131,7 +131,7 @@ class TorsionStates(TorsionPass):
                                f"{type(atomgroup).__name__}.")
         tset = torsions if isinstance(torsions, TorsionSet) else select_torsions(universe, torsions,
                                                                                          keep_variants=keep_variants)
-        tset = _within(tset, atomgroup.atoms, universe)
+        tset = torsions_within(tset, atomgroup.atoms, universe)
         self._choice = choose_schemes(scheme, universe, tset, torsions)
         if self._choice.needs_data:   # (basins: imported only for them)
             from .basins import need_temperature
@@ -350,7 +350,7 @@ def no_frames_error(where, start, stop, step, n):
                         "--stop on the command line).")
 
 
-def _within(tset, atoms, universe):
+def torsions_within(tset, atoms, universe):
     """The torsions of ``tset`` whose four atoms are all in ``atoms`` (a notice for the others)."""
     if len(atoms) == universe.atoms.n_atoms:
         return tset
