@@ -1,5 +1,6 @@
 """The 'rotatable' specification against RDKit substructure counts on small molecules."""
 
+import os
 import warnings
 
 import numpy as np
@@ -89,3 +90,22 @@ def test_topology_without_bonds_guesses_them_with_a_notice(tmp_path):
     tset = select_torsions(u2, "rotatable")
     assert len(tset) == 3
     assert any("guessed" in n for n in tset.notices)
+
+
+def test_guessed_bonds_do_not_depend_on_how_the_frame_is_wrapped(tmp_path):
+    """A bond-less topology whose molecules lie split across the periodic box (each atom wrapped
+    into the box on its own, as raw trajectories store them) gets the same bonds, hence the same
+    torsions, as the whole molecules: bonds are guessed with the minimum image (common practice)."""
+    pdb = os.path.join(os.path.dirname(__file__), "..", "example_trajectories", "hexane.pdb")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        whole = mda.Universe(pdb)
+    whole.delete_bonds(whole.bonds)   # (the bonds of the CONECT records: a topology without bonds)
+    split = whole.copy()
+    split.atoms.translate([11.0, 7.0, 13.0])
+    split.atoms.wrap(compound="atoms")
+    crossing = np.abs(np.diff(split.atoms.positions, axis=0)).max(axis=1) > split.dimensions[0] / 2
+    assert crossing.sum() > 10   # (the test means something: many molecules are split)
+    a, b = select_torsions(whole, "rotatable"), select_torsions(split, "rotatable")
+    assert len(a) == 300 and [t.indices for t in a.torsions] == [t.indices for t in b.torsions]
+    assert any("minimum image" in n for n in b.notices)

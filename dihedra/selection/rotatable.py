@@ -13,7 +13,8 @@ neighbours (the chain continues there), then the lower index. So an alkane gets 
 torsions, and a bond whose end carries only hydrogens (ethane) gets an H-C-C-H torsion.
 
 Bonds come from the topology. A topology without bonds gets bonds guessed from interatomic
-distances by MDAnalysis (van der Waals radii), with a notice.
+distances by MDAnalysis (van der Waals radii) in the first frame, through the periodic box where
+there is one (so a molecule split across the box's edge keeps its bonds), with a notice.
 """
 
 import numpy as np
@@ -52,16 +53,21 @@ def _guess_bonds(universe, notices):
     except Exception:  # noqa: BLE001 - no types: MDAnalysis guesses them
         types = set()
     unknown = sorted(t for t in types if t.upper() not in vdwradii)
+    # the minimum image where there is a box: a molecule split across the box's edge (as a raw
+    # trajectory writes it) keeps its bonds, so the bonds do not depend on how the frame is wrapped
+    box = universe.dimensions
+    box = box if box is not None and np.all(np.isfinite(box)) and np.all(np.asarray(box)[:3] > 0) else None
     try:
-        universe.guess_TopologyAttrs(to_guess=["bonds"], vdwradii={t: 0.0 for t in unknown})
+        universe.guess_TopologyAttrs(to_guess=["bonds"], vdwradii={t: 0.0 for t in unknown}, box=box)
         bonds = np.asarray(universe.bonds.indices, dtype=np.int64).reshape(-1, 2)
     except Exception as exc:  # noqa: BLE001 - report the cause
         notices.append(f"the topology has no bonds and guessing them failed ({exc}); "
                        "no rotatable bonds found.")
         return np.empty((0, 2), dtype=np.int64)
     extra = f"; atom types without a known radius ({', '.join(unknown[:5])}) bond to nothing" if unknown else ""
-    notices.append(f"the topology has no bonds; guessed {len(bonds)} bonds from interatomic distances"
-                   f"{extra} (check them, or use a topology with bonds).")
+    where = " (minimum image in the periodic box)" if box is not None else ""
+    notices.append(f"the topology has no bonds; guessed {len(bonds)} bonds from interatomic distances{where} "
+                   f"in the first frame{extra} (check them, or use a topology with bonds).")
     return bonds
 
 
