@@ -413,3 +413,27 @@ def test_protein_types_list_only_their_own_states_and_frozen_omega_gets_no_forec
     n_frozen = sum(t not in moved for t in table.index)   # (one replica: a type moved where a population is in (0, 1))
     assert f"{n_frozen} type(s) never changed state" in html and n_frozen >= len(frozen)
     assert "types that never changed state" in html
+
+
+def test_a_one_state_scheme_has_nothing_to_converge(tmp_path):
+    # MDAnalysisTests' adenylate kinase (CHARMM PSF/DCD): with the auto schemes, methyl and NH3+
+    # rotors follow the one-state symmetric-rotor scheme (three equivalent minima, common
+    # practice), so their population is 1 by definition; they are neither "not converged" nor
+    # listed among the types that never changed state.
+    from MDAnalysisTests.datafiles import DCD, PSF
+
+    from dihedra.presentation.report import write_report
+    from dihedra.trajectory.convergence import ONE_STATE
+
+    res = dihedra.track(PSF, DCD, torsions="rotatable", scheme="auto", stop=20, out=str(tmp_path / "adk"))
+    rotors = set(res.populations_by_type.query("scheme == 'symmetric-rotor'")["type"])
+    assert len(rotors) >= 5
+    table = pd.read_csv(tmp_path / "adk" / "convergence.csv").set_index("type")
+    for t in rotors:
+        row = table.loc[t]
+        assert row["n_states"] == 1 and row["verdict"] == "converged" and row["forecast"] == ONE_STATE, t
+    others = table.drop(index=list(rotors))
+    assert (others["n_states"] > 1).all()
+    frozen = others[~others["state_changes_seen"]]
+    html = open(write_report(str(tmp_path / "adk"), figures=False), encoding="utf-8").read()
+    assert f"{len(frozen)} type(s) never changed state" in html

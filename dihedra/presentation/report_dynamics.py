@@ -38,7 +38,10 @@ def _convergence(page, figs):
                      f"{_e(dropped.get('requested'))}</code>): {_e(spans)}.</p>")
     ok = table["verdict"] == "converged"
     parts.append(f"<p><b>{int(ok.sum())} of {len(table)} type(s) converged.</b></p>")
-    frozen = (list(table["type"][~_as_bool(table["state_changes_seen"])]) if "state_changes_seen" in table else [])
+    # (a type whose scheme has one state, a symmetric rotor, cannot change state: not listed)
+    movable = table["n_states"] > 1 if "n_states" in table else True
+    frozen = (list(table["type"][~_as_bool(table["state_changes_seen"]) & movable])
+              if "state_changes_seen" in table else [])
     if frozen:
         shown_names = ", ".join(_e(t) for t in frozen[:8]) + (f" and {len(frozen) - 8} more" if len(frozen) > 8 else "")
         parts.append(f"<p>{len(frozen)} type(s) never changed state in any torsion ({shown_names}): their populations "

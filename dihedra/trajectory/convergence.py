@@ -261,6 +261,7 @@ class _TypeSeries:
         """The row of the type and its rows per state."""
         whole = self.replica_stats()
         states = [self._state(s, whole[s], target, target_kj, kt) for s in range(len(self.states))]
+        one = len(self.states) == 1   # (a scheme of one state, a symmetric rotor: frozen by definition)
         if self.frozen:   # (a constant series: its errors would be the floor's, not the run's)
             for r in states:
                 r.update(population_err=np.nan, n_effective=np.nan, time_needed_ps=np.nan, dg_err_kj_mol=np.nan,
@@ -272,7 +273,7 @@ class _TypeSeries:
         dg = [r for r in states if np.isfinite(r.get("dg_err_kj_mol", np.nan))]
         worst_dg = max(dg, key=lambda r: r["dg_err_kj_mol"]) if dg else None
         row = {"type": self.name, "n_torsions": self.n_torsions, "n_replicas": len(self.parts),
-               "n_frames": int(sum(int(p["frames"].sum()) for p in self.parts)),
+               "n_frames": int(sum(int(p["frames"].sum()) for p in self.parts)), "n_states": len(self.states),
                "simulated_time_ps": self.simulated, **start, **replicas,
                "n_effective": min((r["n_effective"] for r in sampled), default=np.nan),
                "population_err_max": worst["population_err"] if worst else np.nan,
@@ -283,14 +284,14 @@ class _TypeSeries:
                "state_changes_seen": not self.frozen,
                "forecast": _forecast(worst["population_err"], target, worst["time_needed_ps"], self.simulated,
                                      self._replicas_needed(worst["time_needed_ps"]), self.time_known)
-                           if worst else (NO_CHANGES if self.frozen else "no data"),
+                           if worst else (ONE_STATE if one and sampled else NO_CHANGES if self.frozen else "no data"),
                "dg_err_max_kj_mol": worst_dg["dg_err_kj_mol"] if worst_dg else np.nan,
                "target_error_kj_mol": float(target_kj),
                "dg_time_needed_ps": worst_dg["dg_time_needed_ps"] if worst_dg else np.nan,
                "dg_forecast": (_forecast(worst_dg["dg_err_kj_mol"], target_kj, worst_dg["dg_time_needed_ps"],
                                          self.simulated, self._replicas_needed(worst_dg["dg_time_needed_ps"]),
                                          self.time_known)
-                               if worst_dg else (NO_CHANGES if self.frozen else
+                               if worst_dg else (ONE_STATE if one and sampled else NO_CHANGES if self.frozen else
                                                  "no temperature" if kt is None else "no second state"))}
         row = {"type": row.pop("type"), "verdict": _verdict(row, states, self.states), **row}
         return row, [{"type": self.name, **r} for r in states]
@@ -374,6 +375,8 @@ class _TypeSeries:
 
 #: The forecast of a type whose torsions never changed state.
 NO_CHANGES = "none possible: no torsion of this type changed state"
+#: The forecast of a type whose scheme has one state (a symmetric rotor): its population is 1.
+ONE_STATE = "none needed: one state, population 1 by definition"
 
 
 def _own_states(scheme, tb):
@@ -436,7 +439,7 @@ def _verdict(row, states, labels):
     reasons = []
     if row["n_frames"] <= row["n_replicas"]:
         return "not converged: one frame per replica, nothing to judge convergence by"
-    if not row["state_changes_seen"]:
+    if not row["state_changes_seen"] and row["n_states"] > 1:
         reasons.append("no torsion of this type changed state in the run (each stayed in the state it started "
                        "in): its populations are those of the starting structures, and their errors and the "
                        "sampling still needed cannot be estimated from it")
