@@ -237,8 +237,13 @@ def test_a_verdict_on_unconverged_sampling_says_so(butane, tmp_path, capsys):
     row = cmp.table.iloc[0]
     assert row["sampling"].startswith("not converged") and "effective samples" in row["sampling"]
     assert any("not converged" in n and "may still change" in n for n in cmp.notices)
-    assert main(["compare", out, "--scan", scan]) == 0
-    assert "but the sampling is not converged" in capsys.readouterr().out
+    assert main(["compare", out, "--scan", scan, "--temperature", str(T + 50), "--overwrite"]) == 0
+    said = capsys.readouterr()
+    assert "but the sampling is not converged" in said.out
+    # the notices are shown and kept: the unconverged sampling, a temperature that is not the run's
+    assert "note: 1 compared type(s) are not converged" in said.err and "was simulated at" in said.err
+    kept = json.load(open(os.path.join(out, "comparison.json")))["notices"]
+    assert any("not converged" in n for n in kept) and any("was simulated at" in n for n in kept)
     # the whole run: the column holds the run's own verdict, whatever it is
     full = compare_with_scan(butane[0], scan)
     verdicts = pd.read_csv(os.path.join(butane[0].folder, "convergence.csv")).set_index("type")["verdict"]

@@ -167,6 +167,14 @@ def test_temperature_required_or_announced(tmp_path):
     said = []
     prof = free_energy_profiles(res, log=said.append, per_torsion=False, n_bootstrap=20)
     assert prof.temperature_k == 310.0 and any("310" in s for s in said)
+    assert not any("was simulated at" in n for n in prof.notices)
+    # another temperature than the run's is used as asked, and pointed out (-kT ln p holds at the
+    # simulated temperature only: Boltzmann's relation, common practice)
+    other = free_energy_profiles(res, temperature_k=400.0, per_torsion=False, n_bootstrap=20)
+    assert other.temperature_k == 400.0
+    assert any("simulated at 310 K" in n and "400 K" in n for n in other.notices)
+    assert not any("simulated at" in n for n in free_energy_profiles(res, temperature_k=310.2, per_torsion=False,
+                                                                     n_bootstrap=20).notices)
 
 
 def test_von_mises_kernel_matches_scipy():

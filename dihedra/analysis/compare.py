@@ -146,11 +146,11 @@ class Comparison:
         return self
 
     def save(self, folder):
-        """Write comparison.csv, comparison_profiles.csv and comparison.json into ``folder``
-        (atomically); returns the paths."""
+        """Write comparison.csv, comparison_profiles.csv and comparison.json (with the notices)
+        into ``folder`` (atomically); returns the paths."""
         return [write_table(self.table, folder, "comparison.csv"),
                 write_table(self.profiles, folder, "comparison_profiles.csv"),
-                write_json(json_ready(self.details), folder, "comparison.json")]
+                write_json(json_ready(dict(self.details, notices=list(self.notices))), folder, "comparison.json")]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -483,7 +483,7 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
         if log is not None:
             log(message)
 
-    temperature_k = resolve_temperature(temperature_k, result.summary, note)
+    temperature_k = resolve_temperature(temperature_k, result.summary, notices=notices, log=log)
     n_bootstrap = check_estimate_options(n_bootstrap)
     if isinstance(scan, (str, os.PathLike)):
         scan = read_scan(scan, temperature_k=temperature_k)

@@ -8,7 +8,7 @@ from ..analysis.scans import read_scan
 from ..errors import DihedraError
 from ..io.resultsdir import load_results
 from ..io.outputs import check_earlier_outputs
-from .common import _Renamed, add_overwrite_option, add_renamed, add_types_option, say
+from .common import _Renamed, add_overwrite_option, add_renamed, add_types_option, print_notices, say
 
 
 def register(sub):
@@ -67,7 +67,8 @@ def run(args):
     check_earlier_outputs(result.folder, "dihedra compare", args.overwrite, names=OUTPUTS)
     if args.scan is None:
         return run_reference_only(args, result)
-    temperature = resolve_temperature(args.temperature, result.summary, say)
+    # (a temperature given that is not the run's is pointed out by the comparison itself, once)
+    temperature = resolve_temperature(args.temperature, result.summary, say if args.temperature is None else None)
     scan = read_scan(args.scan, angle_unit=args.scan_angle_unit, energy_unit=args.scan_energy_unit,
                      columns=args.scan_columns, kind=args.scan_kind, temperature_k=temperature)
     thresholds = Thresholds(tolerance_kj_mol=args.tolerance)
@@ -82,6 +83,7 @@ def run(args):
     print(format_comparison(cmp))
     if ref is not None:
         print("\n" + format_reference(ref))
+    print_notices(cmp.notices)
     print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
 
 
@@ -90,4 +92,5 @@ def run_reference_only(args, result):
     ref = compare_reference_populations(result, args.reference_populations)
     paths = ref.save(result.folder)
     print(format_reference(ref))
+    print_notices(ref.notices)
     print("\nwritten: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")

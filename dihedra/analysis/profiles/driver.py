@@ -51,20 +51,35 @@ _THREADS = min(4, os.cpu_count() or 1)
 # Temperature and energy units
 # ----------------------------------------------------------------------------------------------
 
-def resolve_temperature(temperature_k, summary=None, log=None):
+def resolve_temperature(temperature_k, summary=None, log=None, notices=None):
     """The temperature to use: the one given, else the one ``track`` recorded (announced).
 
-    Raises :class:`DihedraError` when neither exists: dihedra never assumes a temperature.
+    A temperature given that differs from the recorded one (by more than 0.5 K) is used, with a
+    notice (appended to ``notices``, else said to ``log``): -kT ln p describes the simulation only at its
+    own temperature. Raises :class:`DihedraError` when neither exists: dihedra never assumes a
+    temperature.
     """
-    if temperature_k is not None:
-        return check_temperature(temperature_k)
     recorded = (summary or {}).get("temperature_k")
+    if temperature_k is not None:
+        temperature_k = check_temperature(temperature_k)
+        if recorded is not None and abs(float(recorded) - temperature_k) > TEMPERATURE_TOLERANCE_K:
+            message = (f"the run was simulated at {float(recorded):g} K (recorded by track) but {temperature_k:g} K "
+                       "was asked for here: free energies and energies derived from the populations (-kT ln p) "
+                       f"then describe neither temperature; leave the temperature out to use {float(recorded):g} K.")
+            sink = log if notices is None else notices.append   # (notices are shown with the results)
+            if sink is not None:
+                sink(message)
+        return temperature_k
     if recorded is not None:
         if log is not None:
             log(f"using the temperature recorded by track: {float(recorded):g} K")
         return check_temperature(recorded)
     raise DihedraError("a temperature is required: give temperature_k (--temperature K on the command line); "
                        "this result records none (track with temperature_k, or --temperature K, records one).")
+
+
+#: A temperature asked for that differs from the recorded one by more than this (K) is pointed out.
+TEMPERATURE_TOLERANCE_K = 0.5
 
 
 def unit_suffix(unit):
@@ -486,7 +501,8 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     result = as_result(result)
     say = log or (lambda msg: None)
     check_pairs(result, pairs, pair_bin_width_deg)   # before any work or message
-    temperature_k = resolve_temperature(temperature_k, result.summary, say)
+    early = []
+    temperature_k = resolve_temperature(temperature_k, result.summary, say, early)
     kt = kt_kj_mol(temperature_k)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
     s = _Stacks.of(result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed)
@@ -517,7 +533,7 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     settings = _settings(s, temperature_k, n_bootstrap, seed, names, np.concatenate(bandwidths))
     pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,
                       state_free_energies=state_dg, by_type=by_type, settings=settings,
-                      notices=_profile_notices(by_type, barriers))
+                      notices=early + _profile_notices(by_type, barriers))
     mixture = mixture_notice(getattr(result, "populations_by_type", None))
     if mixture:
         pset.notices.append(mixture)

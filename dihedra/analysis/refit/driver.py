@@ -412,10 +412,11 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
                    regularisation)
     one_of("weights_per", weights_per, WEIGHTS_PER)
-    temperature_k = resolve_temperature(temperature_k, result.summary, say)
+    early = []
+    temperature_k = resolve_temperature(temperature_k, result.summary, say, early)
     kt = kt_kj_mol(temperature_k)
     tgt = read_target(target, temperature_k)
-    notices = list(tgt.notices)
+    notices = early + list(tgt.notices)
     type_names = _chosen_types(result, tgt, types)
     positions = [k for k, t in enumerate(result.torsion_set.types) if t in set(type_names)]
     samples = read_samples(result, positions, molecule_ids(result, positions, weights_per, universe, notices),
