@@ -452,7 +452,10 @@ def _verdict(row, states, labels):
         reasons.append(f"the replicas disagree ({st['state']}: {', '.join(st['replica_populations'].split())}; "
                        f"chi-square p = {row['replica_p_value']:.1g})")
     if np.isfinite(row["n_effective"]) and row["n_effective"] < MIN_EFFECTIVE_SAMPLES:
-        reasons.append(f"fewer than {MIN_EFFECTIVE_SAMPLES} effective samples ({row['n_effective']:.3g})")
+        reasons.append(f"fewer than {MIN_EFFECTIVE_SAMPLES} effective samples ({row['n_effective']:.3g}: the run "
+                       "holds about that many independent stretches of this type's population series, whatever "
+                       "its number of torsions, and an error bar from so few is itself uncertain by more than "
+                       "about 15 %)")
     if np.isfinite(row["population_err_max"]) and row["population_err_max"] > row["target_error"]:
         reasons.append(f"population error {row['population_err_max']:.3f} above the target {row['target_error']:g}: "
                        f"{row['forecast']}")
