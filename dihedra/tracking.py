@@ -230,6 +230,7 @@ def track(topology, trajectories=None, torsions="rotatable", scheme=None, *, sta
             replicas.append(replica_info(u, traj, fr, tp, dt_ps, run.notices))
             if traj in digests:
                 replicas[-1]["sha256"] = digests[traj]
+        run.notices.extend(_spacing_notices(replicas))
         params = dict(start=start, stop=stop, step=step, workers=n_workers, workers_asked=workers,
                       workers_choice=run.choice, threads=int(run.passes[0].threads),
                       backend=backend if isinstance(backend, str) else type(backend).__name__,
@@ -388,6 +389,21 @@ class _Run:
             self.staging.discard()
         if self.scratch is not None:
             self.scratch.cleanup()
+
+
+def _spacing_notices(replicas):
+    """A notice when replicas with known time steps store their analysed frames at different
+    intervals: the populations pool frames, so each replica weighs by its frames, not its time."""
+    known = [(os.path.basename(str(r["trajectory"])), r["time_between_analysed_frames_ps"]) for r in replicas
+             if r.get("time_step_known")]
+    spacings = sorted({round(dt, 6) for _, dt in known})
+    if len(spacings) < 2 or spacings[-1] <= spacings[0] * 1.001:
+        return []
+    shown = ", ".join(f"{name} {dt:g} ps" for name, dt in known[:4]) + (" ..." if len(known) > 4 else "")
+    return [f"the replicas' analysed frames are different times apart ({shown}): the populations pool frames, so "
+            "each replica weighs by its number of frames, not by its simulated time, and kinetics refuses such a "
+            "folder; analyse them with --step so that their frames are equally far apart, or track them "
+            "separately."]
 
 
 def write_convergence(result, folder, params, time_step_known=None):

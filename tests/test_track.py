@@ -403,3 +403,14 @@ def test_input_hashes_are_sha256_and_cached_until_the_file_changes(tmp_path, mon
     with hashes.paused():
         pass
     assert hashes.get(path) == "recomputed"
+
+
+def test_replicas_with_frames_at_different_intervals_are_pointed_out(two_replicas, tmp_path):
+    # pooling frames of replicas saved 2 ps and 1 ps apart weighs each by its frames, not its time
+    (top, t0), (_, t1) = two_replicas
+    t = 60.0 + np.random.default_rng(9).normal(scale=25.0, size=(300, 8))
+    _, t2 = write_system(str(tmp_path), chain_coordinates(t), box=[40, 40, 40, 90, 90, 90], dt_ps=1.0)
+    mixed = track(top, [t0, t2], torsions=spec8(), scheme="anti-gauche")
+    assert any("different times apart" in n and "2 ps" in n and "1 ps" in n for n in mixed.notices)
+    same = track(top, [t0, t1], torsions=spec8(), scheme="anti-gauche")
+    assert not any("different times apart" in n for n in same.notices)
