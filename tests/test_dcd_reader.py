@@ -106,9 +106,9 @@ def test_a_file_cut_short_after_mapping_is_not_read_from_the_mapping(tmp_path):
     src.close()
 
 
-def test_pass_over_dcd_equals_mdanalysis_reading(tmp_path, monkeypatch):
-    # a damaged frame (a record marker overwritten) is read again by MDAnalysis, whose error
-    # ends the run as it would without dihedra's reader
+@pytest.mark.parametrize("step", [1, 2])
+def test_pass_over_dcd_equals_mdanalysis_reading(tmp_path, monkeypatch, step):
+    # every frame and every second frame (read into buffers, not from the mapped file)
     rng = np.random.default_rng(3)
     steps = rng.normal(size=(30, 20, 6, 3))
     steps *= 1.5 / np.linalg.norm(steps, axis=-1, keepdims=True)
@@ -116,7 +116,7 @@ def test_pass_over_dcd_equals_mdanalysis_reading(tmp_path, monkeypatch):
     top, traj = write_system(str(tmp_path), xyz, names=("C1", "C2", "C3", "C4", "C5", "C6"), resname="HEX",
                              box=[25.0, 25.0, 25.0, 90.0, 90.0, 90.0], fmt="dcd")
     assert isinstance(trajread.frame_source(_universe(top, traj).trajectory), trajread.DCDFrames)
-    kw = dict(torsions="rotatable", keep_angles=True, chunk_frames=7)
+    kw = dict(torsions="rotatable", keep_angles=True, chunk_frames=7, step=step)
     ours = track(top, [traj], threads=2, **kw)
     monkeypatch.setenv(trajread.NO_DCD_ENV, "1")
     assert trajread.frame_source(_universe(top, traj).trajectory) is None

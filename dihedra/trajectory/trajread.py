@@ -236,16 +236,16 @@ class DCDFrames(_FileFrames):
         self._frame_data(frames, cell_records, dimensions, frame_out, time_out)
 
     def read_mapped(self, frames, dimensions, frame_out, time_out):
-        """The words of ``frames`` (ascending, evenly spaced) as rows of a view of the file
+        """The words of ``frames`` (ascending, consecutive) as rows of a view of the file
         mapped into memory, no copy at all, with ``dimensions``, ``frame_out`` and ``time_out``
-        as :meth:`read` gives them; ``None`` where that cannot be (frames not evenly spaced, a
-        file that cannot be mapped, a damaged record: then :meth:`read`). The pages of frames
+        as :meth:`read` gives them; ``None`` where that cannot be (frames not consecutive: the
+        compiled torsion work takes rows that follow each other; a file that cannot be mapped, a
+        damaged record: then :meth:`read`). The pages of frames
         two batches back are handed back to the system (the process's memory stays that of a
         few batches); the views are read-only."""
         frames = np.asarray(frames, dtype=np.int64)
         n = len(frames)
-        step = int(frames[1] - frames[0]) if n > 1 else 1
-        if n == 0 or step < 1 or (n > 2 and not (np.diff(frames) == step).all()):
+        if n == 0 or (n > 1 and not (np.diff(frames) == 1).all()):
             return None
         words = self._mapped_words()
         if words is None:
@@ -258,7 +258,7 @@ class DCDFrames(_FileFrames):
         except OSError:
             return None
         rows = np.lib.stride_tricks.as_strided(words[start // 4:], shape=(n, self.frame_words),
-                                               strides=(step * int(self.sizes[0]), 4), writeable=False)
+                                               strides=(int(self.sizes[0]), 4), writeable=False)
         if not self._records_intact(rows.view(np.int32)):
             return None
         self._release_before(start)
