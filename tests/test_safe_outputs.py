@@ -256,6 +256,14 @@ def test_report_out_never_overwrites_another_file(tmp_path, data, capsys):
     assert main(["report", str(out), "--out", str(page), "--no-figures"]) == 0   # its own report
     assert main(["report", str(out), "--no-figures"]) == 0
     assert "report.html" in read_marker(out)["files"]
+    # the results folder's own files are never a report's target, nor a torsion table's
+    kept = snapshot(out)
+    for name in ("summary.json", "populations.csv"):
+        refused(["report", str(out), "--out", str(out / name), "--no-figures"], capsys, name, "not a report")
+    refused(["torsions", str(data / "hexane.pdb"), "--torsions", "rotatable", "--csv", str(out / "torsions.csv")],
+            capsys, "torsions.csv", "results folder")
+    assert snapshot(out) == kept
+    assert main(["report", str(out), "--out", str(out / "report.html"), "--no-figures"]) == 0   # its own report
 
 
 def test_torsions_csv_replaces_only_its_own_table(data, capsys):

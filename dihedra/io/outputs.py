@@ -273,7 +273,8 @@ def check_single_file(path, *, inputs=(), ours=None, overwrite=True, option="--o
 
     An existing file is replaced only when ``overwrite`` is true and ``ours(path)`` says that
     dihedra wrote it (a report, a scan, a table of the same kind); never an input of the run, a
-    folder, or any other file. The folder of the file must exist.
+    file of a results folder (one its marker lists), a folder, or any other file. The folder of
+    the file must exist.
     """
     if path is None or not str(os.fspath(path)).strip():
         raise OutputExistsError(f"the {kind} name is empty; give {option} FILE.")
@@ -284,6 +285,10 @@ def check_single_file(path, *, inputs=(), ours=None, overwrite=True, option="--o
     if os.path.isdir(path):
         raise OutputExistsError(f"{option} {path} is a folder; give a file name.")
     if os.path.lexists(path):
+        listed = read_marker(os.path.dirname(path))
+        if listed is not None and os.path.basename(path) in listed["files"]:
+            raise OutputExistsError(f"{path} is one of the files of the results folder {os.path.dirname(path)} "
+                                    f"({MARKER} lists it); it is left untouched: choose another file name.")
         if ours is None or not ours(path):
             raise OutputExistsError(f"{path} exists and was not written by dihedra as a {kind}; it is left untouched: "
                                     "choose another file name.")

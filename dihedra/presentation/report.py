@@ -44,6 +44,7 @@ from __future__ import annotations
 import os
 import time
 
+from ..errors import OutputExistsError
 from ..io.outputs import check_replaceable_in, check_single_file, file_head_contains, is_inside, write_text
 from ..io.tables import read_optional_json
 from .figures import CHOICE_RULE, informative_types
@@ -210,6 +211,9 @@ def write_report(folder, out=None, width="single", figures=True, types=None, log
         name = os.path.join(os.path.relpath(os.path.realpath(os.path.dirname(out)), os.path.realpath(folder)),
                             os.path.basename(out))
         check_replaceable_in(folder, name)
+        if os.path.lexists(out) and not file_head_contains(out, REPORT_SIGNATURE):   # (summary.json, a table...)
+            raise OutputExistsError(f"{out} is one of the results folder's own files, not a report; it is left "
+                                    "untouched: give the report another name.")
     else:
         out = check_single_file(out, ours=lambda p: file_head_contains(p, REPORT_SIGNATURE), kind="dihedra report")
     base = os.path.relpath(os.path.realpath(folder), os.path.realpath(os.path.dirname(out)))
