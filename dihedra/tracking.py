@@ -28,7 +28,7 @@ import numpy as np
 
 from .errors import DihedraError, OutputWriteError
 from .io.blocks import HISTOGRAMS_FILE, HistogramFile, narrowed_type, save_blocks
-from .io.outputs import StagedFolder
+from .io.staging import StagedFolder
 from .io.resultsdir import write_results
 from .io.series import ParquetSeries, ParquetSeriesFactory
 from .io.tables import write_json, write_table

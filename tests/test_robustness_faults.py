@@ -91,9 +91,9 @@ def test_an_analysis_that_cannot_write_leaves_the_folder_as_it_was(work, capsys,
 
 
 def test_a_folder_that_cannot_be_made(work, capsys, monkeypatch):
-    from dihedra.io import outputs
+    from dihedra.io import staging
 
-    monkeypatch.setattr(outputs.tempfile, "mkdtemp", failing(errno.EACCES, "Permission denied"))
+    monkeypatch.setattr(staging.tempfile, "mkdtemp", failing(errno.EACCES, "Permission denied"))
     refused(capsys, ["track", "hexane.pdb", "hexane.xtc", "--torsions", "rotatable", "--stop", "10", "--out",
                        "new"], "Permission denied")
     assert not os.path.exists(work / "new")
@@ -239,7 +239,7 @@ def test_a_signal_whose_raise_python_swallowed_still_stops_the_command(monkeypat
 
 
 def test_a_swallowed_signal_stops_the_final_move_of_a_results_folder(tmp_path):
-    from dihedra.io.outputs import StagedFolder
+    from dihedra.io.staging import StagedFolder
     from dihedra.trajectory import interrupts
 
     staged = StagedFolder.begin(str(tmp_path / "res"), command="track")

@@ -15,8 +15,9 @@ import pytest
 from dihedra import example_path
 from dihedra.cli import main
 from dihedra.errors import OutputExistsError
-from dihedra.io.outputs import (MARKER, StagedFolder, check_folder_target, read_marker, remove_dead_staging,
-                             remove_listed_files, write_file, write_text)
+from dihedra.io.outputs import (MARKER, check_folder_target, file_set, read_marker, remove_listed_files, write_file,
+                             write_text)
+from dihedra.io.staging import StagedFolder, remove_dead_staging
 
 HEXANE = ("hexane.pdb", "hexane.xtc")
 
@@ -334,3 +335,28 @@ def test_check_folder_target_names_the_input_it_would_cover(tmp_path):
     with pytest.raises(OutputExistsError, match="in.pdb"):
         check_folder_target(tmp_path, overwrite=True, inputs=[tmp_path / "in.pdb"])
     assert json.loads(json.dumps(check_folder_target(tmp_path / "new"))) == str(tmp_path / "new")
+
+
+def test_a_file_set_is_replaced_whole_or_not_at_all(tmp_path):
+    """The files of one analysis are renamed into place together: an interruption (Ctrl-C while the
+    second of three is written) leaves the earlier three as they were, and no temporary file."""
+    folder = tmp_path / "res"
+    folder.mkdir()
+    for name in ("a.csv", "b.csv", "c.json"):
+        write_text(folder, name, "old\n")
+
+    def interrupted(tmp):
+        raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        with file_set(folder):
+            write_text(folder, "a.csv", "new\n")
+            assert (folder / "a.csv").read_text() == "old\n"   # (not yet in place)
+            write_file(folder, "b.csv", interrupted)
+    assert [(folder / n).read_text() for n in ("a.csv", "b.csv", "c.json")] == ["old\n"] * 3
+    assert sorted(os.listdir(folder)) == sorted([MARKER, "a.csv", "b.csv", "c.json"])
+    with file_set(folder):
+        for name in ("a.csv", "b.csv", "c.json", "d.csv"):
+            write_text(folder, name, "new\n")
+    assert [(folder / n).read_text() for n in ("a.csv", "b.csv", "c.json", "d.csv")] == ["new\n"] * 4
+    assert "d.csv" in read_marker(folder)["files"]

@@ -67,6 +67,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DihedraError
+from ..io.outputs import file_set
 from ..io.tables import json_ready, write_json, write_table
 from ..trajectory.result import as_result
 from ..units import kt_kj_mol, wrap_deg
@@ -148,9 +149,11 @@ class Comparison:
     def save(self, folder):
         """Write comparison.csv, comparison_profiles.csv and comparison.json (with the notices)
         into ``folder`` (atomically); returns the paths."""
-        return [write_table(self.table, folder, "comparison.csv"),
-                write_table(self.profiles, folder, "comparison_profiles.csv"),
-                write_json(json_ready(dict(self.details, notices=list(self.notices))), folder, "comparison.json")]
+        with file_set(folder):   # (all three or none replaced)
+            return [write_table(self.table, folder, "comparison.csv"),
+                    write_table(self.profiles, folder, "comparison_profiles.csv"),
+                    write_json(json_ready(dict(self.details, notices=list(self.notices))), folder,
+                               "comparison.json")]
 
 
 # ----------------------------------------------------------------------------------------------

@@ -186,7 +186,7 @@ def _main(argv):
         return 0
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", module="MDAnalysis")
-    from ..io.outputs import COMMITTED
+    from ..io.staging import COMMITTED
 
     committed = len(COMMITTED)
     finished = False

@@ -3,7 +3,7 @@
 Every file dihedra writes goes through this module:
 
 - A **results folder** is assembled in a hidden staging folder beside it
-  (:class:`StagedFolder`) and moved into place in one rename at the end, so an interrupted run
+  (:class:`~dihedra.io.staging.StagedFolder`) and moved into place in one rename at the end, so an interrupted run
   never leaves a half-written folder. Its list of files, ``dihedra-files.json`` (:data:`MARKER`),
   names every file dihedra wrote into it; analyses that add files later add their names.
 - ``--overwrite`` replaces only a folder that has this list and holds nothing else (a user's
@@ -11,33 +11,30 @@ Every file dihedra writes goes through this module:
   current folder or one of its parents. The final move refuses to replace a folder that appeared,
   or changed hands, while the run was working (two runs into one folder: the second one fails).
 - A file written into an existing folder (:func:`write_file`) goes under a temporary name and is
-  renamed over its target, and only over a file that dihedra wrote there; an output set replaced
+  renamed over its target, and only over a file that dihedra wrote there; the files of one analysis
+  (:func:`file_set`) are all written first and renamed together, so an interruption leaves the
+  earlier set whole; an output set replaced
   as a whole (``dihedra figures --overwrite``) drops only files the list names
   (:func:`remove_listed_files`).
 - A single file that a user names (a report, a scan, a table) replaces only a file of the same kind
   that dihedra wrote (:func:`check_single_file`), never an input or a file of another program.
 
-Staging folders carry the host name and process id of their run; those of runs that died (a kill,
-a power cut) are removed the next time a run writes beside them.
+Staging folders (:mod:`dihedra.io.staging`) carry the host name and process id of their run;
+those of runs that died (a kill, a power cut) are removed the next time a run writes beside them.
 """
 
 from __future__ import annotations
 
 import contextlib
-import ctypes
-import errno
 import json
 import os
 import posixpath
-import re
-import shutil
-import socket
-import tempfile
+import threading
 import time
 import uuid
 
 from ..errors import OutputExistsError
-from ..trajectory.interrupts import check as check_interrupts, signals_held
+from ..trajectory.interrupts import signals_held
 
 #: The list of the files dihedra wrote into a results folder (its presence marks the folder).
 MARKER = "dihedra-files.json"
@@ -45,11 +42,6 @@ MARKER = "dihedra-files.json"
 #: Suffix of the temporary files of :func:`write_file` (a crash may leave one; it is dihedra's).
 TMP_SUFFIX = ".dihedra-tmp"
 
-#: The results folders moved into place by this process, in order (the command line tells an
-#: interrupt after a commit from one before it).
-COMMITTED = []
-
-_STAGING = re.compile(r"^\.(?P<name>.+)\.(?:partial|old)-(?P<host>[^-]+)-(?P<pid>\d+)-[0-9a-z_]+$")
 
 
 # ----------------------------------------------------------------------------------------------
@@ -331,6 +323,44 @@ def is_inside(path, folder):
     return _inside(_real(path), _real(folder))
 
 
+_SETS = threading.local()
+
+
+@contextlib.contextmanager
+def file_set(folder):
+    """Within the block, the files :func:`write_file` writes into ``folder`` go to temporary names;
+    at its end they are renamed into place together, with SIGINT and SIGTERM held, so that the
+    folder shows either the earlier set or the new one whole. An error or an interruption
+    inside the block removes the temporary files and leaves every earlier file as it was. Nested
+    blocks on one folder are one set."""
+    key = os.path.realpath(os.fspath(folder))
+    sets = _SETS.__dict__.setdefault("sets", {})
+    if key in sets:
+        yield
+        return
+    pending = sets[key] = []
+    done = False
+    try:
+        yield
+        with signals_held():
+            for tmp, target, _ in pending:
+                os.replace(tmp, target)
+            done = True
+        new = [rel for _, _, rel in pending if rel is not None]
+        if new:
+            record_files(folder, new)
+    finally:
+        del sets[key]
+        if not done:
+            for tmp, _, _ in pending:
+                if os.path.exists(tmp):
+                    os.remove(tmp)
+
+
+def _pending_set(folder):
+    return getattr(_SETS, "sets", {}).get(os.path.realpath(os.fspath(folder)))
+
+
 def write_file(folder, name, write, *, marked=True):
     """Write ``folder/name`` through ``write(tmp_path)`` under a temporary name, then rename it
     into place; return the path.
@@ -348,13 +378,19 @@ def write_file(folder, name, write, *, marked=True):
     if parent != folder:
         os.makedirs(parent, exist_ok=True)
     tmp = os.path.join(parent, f".{os.path.basename(name)}.{uuid.uuid4().hex[:8]}{TMP_SUFFIX}")
+    pending = _pending_set(folder)
+    unlisted = marked and (marker is None or rel not in marker["files"])
     try:
         write(tmp)
-        os.replace(tmp, target)
+        if pending is not None:   # (renamed with the rest of its set: file_set)
+            pending.append((tmp, target, rel if unlisted else None))
+            tmp = None
+        else:
+            os.replace(tmp, target)
     finally:
-        if os.path.exists(tmp):
+        if tmp is not None and os.path.exists(tmp):
             os.remove(tmp)
-    if marked and (marker is None or rel not in marker["files"]):
+    if unlisted and pending is None:
         record_files(folder, [rel])
     return os.path.join(folder, *rel.split("/"))
 
@@ -365,196 +401,3 @@ def write_text(folder, name, text, **kwargs):
         with open(tmp, "w", encoding="utf-8") as fh:
             fh.write(text)
     return write_file(folder, name, write, **kwargs)
-
-
-# ----------------------------------------------------------------------------------------------
-# A results folder assembled beside its target and moved into place
-# ----------------------------------------------------------------------------------------------
-
-def _staging_name(base, kind):
-    host = re.sub(r"[^0-9A-Za-z_]", "_", socket.gethostname())[:40] or "host"
-    return f".{base}.{kind}-{host}-{os.getpid()}-"
-
-
-def _alive(pid):
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
-def remove_dead_staging(parent, base):
-    """Remove staging folders of earlier runs into ``parent/base`` whose process is gone (same host
-    only: a run on another node of a shared file system is left alone). Returns their names."""
-    host = re.sub(r"[^0-9A-Za-z_]", "_", socket.gethostname())[:40] or "host"
-    removed = []
-    try:
-        names = os.listdir(parent)
-    except OSError:
-        return removed
-    for name in names:
-        m = _STAGING.match(name)
-        if not m or m["name"] != base or m["host"] != host or _alive(int(m["pid"])):
-            continue
-        shutil.rmtree(os.path.join(parent, name), ignore_errors=True)
-        removed.append(name)
-    return removed
-
-
-class StagedFolder:
-    """A results folder assembled in a hidden folder beside its target.
-
-    >>> import os, tempfile
-    >>> tmp = tempfile.TemporaryDirectory()
-    >>> target = os.path.join(tmp.name, "results")
-    >>> staged = StagedFolder.begin(target, overwrite=False, inputs=[], command="track")
-    >>> with open(os.path.join(staged.path, "table.csv"), "w") as f:   # write into staged.path
-    ...     _ = f.write("x")
-    >>> staged.commit() == target   # or staged.discard() after an error
-    True
-    >>> sorted(os.listdir(target))
-    ['dihedra-files.json', 'table.csv']
-    >>> tmp.cleanup()
-
-    :meth:`begin` checks the target (:func:`check_folder_target`) and records whether it exists
-    and whose it is; :meth:`commit` writes the marker (every file of the staging folder) and moves
-    the folder into place, refusing when the target appeared or changed hands in between.
-    """
-
-    def __init__(self, out, path, previous_run, command):
-        self.out = out
-        self.path = path
-        self.previous_run = previous_run   # run id of the folder replaced, "" for an empty folder, None
-        self.command = command
-        self.run_id = uuid.uuid4().hex
-
-    @classmethod
-    def begin(cls, out, *, overwrite=False, inputs=(), command="track", option="--out"):
-        out = check_folder_target(out, overwrite=overwrite, inputs=inputs, option=option)
-        parent, base = os.path.split(out)
-        remove_dead_staging(parent, base)
-        previous = None
-        if os.path.isdir(out):
-            marker = read_marker(out)
-            previous = marker.get("run_id", "") if marker else ""
-        path = tempfile.mkdtemp(prefix=_staging_name(base, "partial"), dir=parent)
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(path, 0o777 & ~mask)   # a folder like any other (mkdtemp makes it private)
-        return cls(out, path, previous, command)
-
-    def commit(self):
-        """Write the marker and move the staging folder into place; returns the folder.
-
-        SIGINT and SIGTERM are held while the old folder is moved aside and the new one into place
-        (:func:`signals_held`): an interrupt comes before or after, never between. An interrupt
-        whose raise Python swallowed earlier (in a finaliser or a fork handler) stops it here."""
-        with signals_held():
-            check_interrupts()
-            out = self._commit()
-        return out
-
-    def _commit(self):
-        marker = new_marker(self.command, _relative_files(self.path))
-        marker["run_id"] = self.run_id
-        _write_marker(self.path, marker)
-        out = self.out
-        old = None
-        if self.previous_run is not None:
-            old = self._move_old_aside()
-        try:
-            _rename_noreplace(self.path, out)
-        except FileExistsError:
-            if old is not None:   # give the old folder back
-                with contextlib.suppress(OSError):
-                    _rename_noreplace(old, out)
-            raise OutputExistsError(f"{out} appeared while this run was working (another run into the same "
-                                    "folder?); it is left as it is and these results were not kept: run again "
-                                    "with another --out.") from None
-        self.path = None
-        COMMITTED.append(out)
-        if old is not None:
-            _remove_listed(old)
-        return out
-
-    def _move_old_aside(self):
-        """Move the folder being replaced out of the way (after checking that it is still the one
-        seen at the start and still holds only dihedra's files); ``None`` when there is none."""
-        out = self.out
-        changed = OutputExistsError(f"{out} changed while this run was working (another run, or files added); it "
-                                    "is left as it is and these results were not kept: run again.")
-        if not os.path.isdir(out):
-            if self.previous_run:
-                raise OutputExistsError(f"{out} was removed while this run was working; these results were not "
-                                        "kept: run again.")
-            return None
-        if not self.previous_run:   # an empty folder at the start: it must still be empty
-            try:
-                os.rmdir(out)
-            except OSError:
-                raise changed from None
-            return None
-        marker = read_marker(out)
-        if marker is None or marker.get("run_id") != self.previous_run or foreign_files(out, marker):
-            raise changed
-        parent, base = os.path.split(out)
-        old = tempfile.mkdtemp(prefix=_staging_name(base, "old"), dir=parent)
-        os.rmdir(old)
-        os.rename(out, old)
-        return old
-
-    def discard(self):
-        """Remove the staging folder (after an error or an interrupt). Workers of a cluster may
-        still be writing a file into it meanwhile: it is tried again for a second."""
-        if self.path is not None:
-            for _ in range(5):
-                shutil.rmtree(self.path, ignore_errors=True)
-                if not os.path.exists(self.path):
-                    break
-                time.sleep(0.2)
-            self.path = None
-
-
-def _remove_listed(old):
-    """Delete the files the marker of ``old`` lists, then its empty folders; a file that is not
-    listed (added in the last instant) is kept, and so is the folder, with a visible name."""
-    marker = read_marker(old) or {"files": []}
-    for rel in marker["files"] + [MARKER]:
-        with contextlib.suppress(OSError):
-            os.remove(os.path.join(old, *rel.split("/")))
-    for root, dirs, files in os.walk(old, topdown=False):
-        for name in files:
-            if name.endswith(TMP_SUFFIX):
-                with contextlib.suppress(OSError):
-                    os.remove(os.path.join(root, name))
-        with contextlib.suppress(OSError):
-            os.rmdir(root)
-    if os.path.isdir(old):   # files a user added at the last moment: keep them where they can be seen
-        parent, name = os.path.split(old)
-        kept = os.path.join(parent, f"{_STAGING.match(name)['name']}.kept-{uuid.uuid4().hex[:6]}")
-        with contextlib.suppress(OSError):
-            os.rename(old, kept)
-
-
-def _rename_noreplace(src, dst):
-    """Rename ``src`` to ``dst`` unless ``dst`` exists (``FileExistsError``); atomic on Linux
-    (``renameat2`` with ``RENAME_NOREPLACE``), a check and a rename elsewhere."""
-    fn = None
-    with contextlib.suppress(OSError, AttributeError):
-        fn = ctypes.CDLL(None, use_errno=True).renameat2
-    if fn is not None:
-        at_fdcwd, noreplace = -100, 1
-        fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
-        if fn(at_fdcwd, os.fsencode(src), at_fdcwd, os.fsencode(dst), noreplace) == 0:
-            return
-        err = ctypes.get_errno()
-        if err in (errno.EEXIST, errno.ENOTEMPTY):
-            raise FileExistsError(err, os.strerror(err), dst)
-        if err not in (errno.ENOSYS, errno.EINVAL, errno.ENOTSUP):
-            raise OSError(err, os.strerror(err), dst)
-    if os.path.lexists(dst):
-        raise FileExistsError(errno.EEXIST, os.strerror(errno.EEXIST), dst)
-    os.rename(src, dst)

@@ -136,11 +136,11 @@ class WindowsResult:
         """Write a complete new results folder ``folder``; returns the paths of the files written.
 
         The folder is assembled beside its target and moved into place at the end
-        (:class:`dihedra.io.outputs.StagedFolder`): an existing folder is replaced only with
+        (:class:`dihedra.io.staging.StagedFolder`): an existing folder is replaced only with
         ``overwrite`` and only when dihedra made it and it holds nothing else; a folder that holds
         an input is never replaced. ``result.folder`` is then the new folder.
         """
-        from ...io.outputs import StagedFolder
+        from ...io.staging import StagedFolder
         from ...trajectory.interrupts import signals_held
 
         staged = None
