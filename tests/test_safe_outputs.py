@@ -223,6 +223,12 @@ def test_figures_overwrite_replaces_the_earlier_set_and_only_dihedras_figures(tm
     assert sorted(f for f in listed if f.startswith("figures/")) == [
         "figures/convergence_HEX_C2-C3-C4-C5.png", "figures/populations.png", "figures/state_raster.png"]
     assert set(others) <= set(listed)
+    # a user's file where the new set would put a figure: refused, and no figure of either set changed
+    (out / "figures" / "populations.svg").write_text("a user's own drawing\n")
+    before = snapshot(out)
+    refused(figures_argv(out, "HEX:C1-C2-C3-C4", "--overwrite", "--format", "png,svg"), capsys, "populations.svg")
+    assert snapshot(out) == before
+    assert not [n for n in os.listdir(out / "figures") if n.endswith(".dihedra-tmp")]
 
 
 def test_remove_listed_files_deletes_only_listed_files_inside_the_folder(tmp_path):

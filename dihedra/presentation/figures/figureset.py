@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from ...errors import DihedraError, one_of
-from ...io.outputs import earlier_outputs, remove_listed_files, write_file
+from ...io.outputs import earlier_outputs, file_set, remove_listed_files, write_file
 from ...io.series import ParquetSeries
 from ...io.tables import matching_files, read_optional_table as read_optional
 from .convergence import plot_convergence
@@ -392,12 +392,13 @@ def write_figures(folder, formats=("pdf", "png"), width="single", types=None, ou
     with style():
         fset = figure_set(folder, width=width, types=types, log=log)
         os.makedirs(base, exist_ok=True)
-        for item in fset.items:
-            for f in fmts:
-                def save(tmp, fig=item.figure, fmt=f):
-                    fig.savefig(tmp, format=fmt, dpi=300 if fmt == "png" else None, metadata=_metadata(fmt))
-                names.append(f"{sub}{item.name}.{f}")
-                paths.append(write_file(base, names[-1], save))
+        with file_set(base):   # (in place together: an error or Ctrl-C leaves the earlier figures as they were)
+            for item in fset.items:
+                for f in fmts:
+                    def save(tmp, fig=item.figure, fmt=f):
+                        fig.savefig(tmp, format=fmt, dpi=300 if fmt == "png" else None, metadata=_metadata(fmt))
+                    names.append(f"{sub}{item.name}.{f}")
+                    paths.append(write_file(base, names[-1], save))
     if earlier:   # only after the new set is in place: a failed drawing leaves the old one whole
         removed = remove_listed_files(base, set(earlier) - set(names))
         (log or (lambda msg: None))(f"removed {len(removed)} earlier figure file(s) that this run did not "
