@@ -203,9 +203,9 @@ def _main(argv):
         except KeyboardInterrupt:
             name = signal.Signals(received[0]).name if received else "SIGINT"
             done = COMMITTED[committed:]
-            what = (f"after {done[-1]} was written (it is complete)" if done else
+            what = (f"after {done[-1]} was written: it is complete, what came after it did not finish" if done else
                     "after the command had finished: its output is complete" if finished else
-                    "a results folder being made was removed")
+                    "what it was writing was discarded; files written before are as they were")
             print(f"dihedra: interrupted ({name}); stopped ({what}).", file=sys.stderr)
             return 128 + (received[0] if received else signal.SIGINT)
     return 0 if status is None else int(status)
