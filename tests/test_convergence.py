@@ -172,6 +172,17 @@ def test_discard_values(value, parsed):
     assert parse_discard(value) == parsed
 
 
+def test_discarding_a_time_drops_the_frames_inside_it():
+    from dihedra.trajectory.discard import frames_to_drop
+
+    # frames 1 ps apart: 10 ps are frames 0..9, also where the step is stored in single precision
+    # (CHARMM/NAMD DCDs of MDAnalysisTests record dt = 0.99999991 ps for 1 ps)
+    for dt in (1.0, float(np.float32(0.99999991)), 0.99999991):
+        assert frames_to_drop(("time", 10.0), 100, dt) == 10
+        assert frames_to_drop(("time", 10.5), 100, dt) == 11
+    assert frames_to_drop(("time", 10.0), 100, 2.0) == 5 and frames_to_drop(("frames", 7), 100, 2.0) == 7
+
+
 @pytest.mark.parametrize("value", ["3x", -1, 2.5, "2.5 frames", True, "ps"])
 def test_bad_discard_values_are_one_clear_error(value):
     with pytest.raises(DihedraError, match="discard must be 'auto'"):

@@ -75,7 +75,9 @@ def parse_discard(value):
 def frames_to_drop(spec, n_frames, interval_ps, where="the run"):
     """How many of ``n_frames`` analysed frames (``interval_ps`` apart) ``spec`` drops."""
     kind, amount = spec
-    k = int(amount) if kind == "frames" else int(math.ceil(amount / interval_ps - 1e-9)) if interval_ps > 0 else 0
+    # (a time step stored in single precision, as CHARMM and NAMD DCDs hold 0.99999991 ps for 1 ps,
+    # must not drop a frame more: a millionth of a frame is taken as rounding)
+    k = int(amount) if kind == "frames" else int(math.ceil(amount / interval_ps - 1e-6)) if interval_ps > 0 else 0
     if k >= n_frames:
         what = f"{amount} frames" if kind == "frames" else f"{amount:g} ps ({k} frames)"
         raise DihedraError(f"discarding {what} leaves no frames: {where} has {n_frames} analysed frames; discard "
