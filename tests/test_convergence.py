@@ -181,6 +181,7 @@ def test_discarding_a_time_drops_the_frames_inside_it():
         assert frames_to_drop(("time", 10.0), 100, dt) == 10
         assert frames_to_drop(("time", 10.5), 100, dt) == 11
     assert frames_to_drop(("time", 10.0), 100, 2.0) == 5 and frames_to_drop(("frames", 7), 100, 2.0) == 7
+    assert frames_to_drop(("time", 10000.0), 20000, float(np.float32(0.99999991))) == 10000   # (10 ns)
 
 
 @pytest.mark.parametrize("value", ["3x", -1, 2.5, "2.5 frames", True, "ps"])

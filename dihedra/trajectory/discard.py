@@ -76,8 +76,9 @@ def frames_to_drop(spec, n_frames, interval_ps, where="the run"):
     """How many of ``n_frames`` analysed frames (``interval_ps`` apart) ``spec`` drops."""
     kind, amount = spec
     # (a time step stored in single precision, as CHARMM and NAMD DCDs hold 0.99999991 ps for 1 ps,
-    # must not drop a frame more: a millionth of a frame is taken as rounding)
-    k = int(amount) if kind == "frames" else int(math.ceil(amount / interval_ps - 1e-6)) if interval_ps > 0 else 0
+    # must not drop a frame more: a relative 1e-5, well above float32's rounding, is taken as such)
+    x = amount / interval_ps if kind != "frames" and interval_ps > 0 else 0.0
+    k = int(amount) if kind == "frames" else int(math.ceil(x - max(1e-9, 1e-5 * x)))
     if k >= n_frames:
         what = f"{amount} frames" if kind == "frames" else f"{amount:g} ps ({k} frames)"
         raise DihedraError(f"discarding {what} leaves no frames: {where} has {n_frames} analysed frames; discard "
