@@ -311,7 +311,9 @@ class _Run:
             n = int(workers)   # a backend named: the workers asked for, as many as that
             self.choice = f"{n} worker process(es), backend {backend} (as asked)"
         else:
-            n, planned, self.choice = plan_workers(workers, n_frames, n_torsions)
+            n, planned, self.choice = plan_workers(workers, n_frames, n_torsions, threads=threads)
+            if n == 1 and backend not in (None, "serial"):
+                self.choice += f"; backend {backend} unused for one process (--workers N asks for N of them)"
             backend = "multiprocessing" if n > 1 and backend in (None, "serial") else backend or "serial"
             threads = planned if threads is None else threads
         self.say(f"workers: {self.choice}")

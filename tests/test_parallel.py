@@ -457,6 +457,9 @@ def test_workers_pay_only_with_free_cores_and_enough_frames(replicas, monkeypatc
     assert assemble.plan_workers(2, 3 * per, 1, cores=8)[:2] == (2, 2)        # at most as asked
     assert assemble.plan_workers("auto", 10 * per, 1, cores=6)[:2] == (3, 2)
     assert "usable core" in assemble.plan_workers(2, 1500, 15_000, cores=2)[2]
+    # threads asked for are the threads said and used
+    n, threads, why = assemble.plan_workers("auto", 1500, 15_000, cores=2, threads=1)
+    assert (n, threads) == (1, 1) and "1 thread(s) (--threads)" in why
     # the choice is said and recorded; asking for two workers never makes a small run slower
     top, trajs, _ = replicas
     monkeypatch.setattr(assemble.os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)

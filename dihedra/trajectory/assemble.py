@@ -317,9 +317,9 @@ def pass_threads(threads, backend):
 TORSION_FRAMES_PER_WORKER = 300_000_000
 
 
-def plan_workers(asked, n_frames, n_torsions, cores=None):
+def plan_workers(asked, n_frames, n_torsions, cores=None, threads=None):
     """How many worker processes a replica of ``n_frames`` frames and ``n_torsions`` torsions is
-    split over, and the threads of each: ``(workers, threads, reason)``.
+    split over, and the threads of each (``threads`` when given): ``(workers, threads, reason)``.
 
     A serial run already uses two cores (one thread reads, one computes), so a worker process
     pays only with two more cores for it, and only when it has enough frames to earn back its
@@ -340,18 +340,21 @@ def plan_workers(asked, n_frames, n_torsions, cores=None):
     limit = min(by_cores, by_size, max(1, int(n_frames)))
     auto = asked in (None, "auto")
     n = limit if auto else min(int(asked), limit)
-    threads = 2 if cores >= 2 * n and cores >= 2 else 1
+    chosen = threads is not None
+    threads = int(threads) if chosen else 2 if cores >= 2 * n and cores >= 2 else 1
+    as_asked = " (--threads)" if chosen else ""
     if n == 1:
-        why = f"one process with {threads} thread(s)"
+        why = f"one process with {threads} thread(s){as_asked}"
         if not auto and int(asked) == 1:
             why += " (as asked)"
         elif by_cores == 1:
-            why += f": a serial run already uses {min(cores, 2)} of the {cores} usable core(s)"
+            why += f": a serial run already uses {min(cores, 2)} of the {cores} usable core(s)" if not chosen else (
+                f": one process, as a serial run uses {min(cores, 2)} of the {cores} usable core(s)")
         else:
             why += (f": {int(n_frames) * int(n_torsions):.3g} torsion-frames are fewer than the "
                     f"{2 * TORSION_FRAMES_PER_WORKER:.3g} from which a second worker pays")
     else:
-        why = f"{n} worker processes with {threads} thread(s) each ({cores} usable cores)"
+        why = f"{n} worker processes with {threads} thread(s) each{as_asked} ({cores} usable cores)"
     return n, threads, why
 
 
