@@ -300,6 +300,13 @@ def test_report_shows_the_ramachandran_regions_rounded_to_their_errors(backbone_
     with style():
         kinds = [i.kind for i in figure_set(folder, types=["ALA:phi"]).items]
     assert "ramachandran" in kinds
+    # more types than angle series: the figure set says how many it shows
+    five = list(dict.fromkeys(pd.read_csv(os.path.join(folder, "torsions.csv"))["type"]))[:5]
+    notes = []
+    with style():
+        series = [i for i in figure_set(folder, types=five, log=notes.append).items if i.kind == "series"]
+    assert len(series) == 1 and any("angle time series for 3 torsion(s)" in n and "of 5 chosen types" in n
+                                     for n in notes)
 
 
 def test_report_without_ramachandran_regions_says_how_to_make_them(protein_report, full_report):

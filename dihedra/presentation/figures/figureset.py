@@ -158,8 +158,12 @@ def _choose(result, names, max_types, max_series, say):
     for lab, t in zip(labels, result.torsion_set.types):
         by_type.setdefault(t, []).append(lab)
     typed = [t for t in chosen_types if t not in {type_of[x] for x in singles}]
-    series = singles + [representative_torsion(result.populations, t, by_type[t])
-                        for t in typed[:max(0, max_series - len(singles))]]
+    room = max(0, max_series - len(singles))
+    series = singles + [representative_torsion(result.populations, t, by_type[t]) for t in typed[:room]]
+    if len(typed) > room:
+        say(f"note: angle time series for {len(series)} torsion(s), at most {max_series} per figure set (the torsion "
+            f"whose states change most, of the first {room} of {len(typed)} chosen types); name torsion labels "
+            "with --types for others")
     return chosen_types, series
 
 
