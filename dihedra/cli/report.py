@@ -16,6 +16,9 @@ def register(sub):
     p.add_argument("--width", choices=list(WIDTHS), default="single",
                    help="journal width the figures are drawn at (default single)")
     p.add_argument("--no-figures", action="store_true", help="leave the figures out (faster)")
+    p.add_argument("--overwrite", action="store_true",
+                   help="accepted as by every command that writes; the report is made from the folder and always "
+                        "replaces the report dihedra wrote before (never another file)")
     add_types_option(p, "torsion types the tables and per-type figures show, or single torsions by their label "
                         "(default: every type when there are at most 24, else the four whose torsions spend most "
                         "time outside their main state; the other types in one line each, the full tables "

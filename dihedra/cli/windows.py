@@ -4,7 +4,7 @@ from ..analysis.profiles import DEFAULT_BIN_WIDTH_DEG, DEFAULT_SEED
 from ..analysis.windows import (DEFAULT_BOOTSTRAP, DEFAULT_MAX_MBAR_SAMPLES, MIN_OVERLAP, read_windows,
                                 unbias_windows, window_inputs)
 from ..io.outputs import check_folder_target
-from .common import add_scheme_option, print_notices, say
+from .common import add_scheme_option, print_notices, say, workers_option
 from .profile import report_profiles
 
 
@@ -33,7 +33,8 @@ def register(sub):
                    help="first frame of every window (drop equilibration)")
     p.add_argument("--stop", type=int, default=None, metavar="N", help="stop before this frame in every window")
     p.add_argument("--step", type=int, default=None, metavar="N", help="use every N-th frame")
-    p.add_argument("--workers", type=int, default=1, metavar="N", help="worker processes per window")
+    p.add_argument("--workers", type=workers_option, default=1, metavar="N",
+                   help="worker processes per window, or 'auto' (as many as pay, as for track; default 1)")
     p.add_argument("--max-mbar-samples", type=int, default=DEFAULT_MAX_MBAR_SAMPLES, metavar="N",
                    help=f"samples handed to pymbar at most (default {DEFAULT_MAX_MBAR_SAMPLES})")
     p.add_argument("--overwrite", action="store_true",

@@ -221,8 +221,8 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
         Block-bootstrap resamples and seed (default the seed of :mod:`dihedra.analysis.profiles`).
     start, stop, step : int, optional
         Frame range applied to every window.
-    workers : int
-        Processes per window for the tracking pass.
+    workers : int or "auto"
+        Processes per window for the tracking pass (``"auto"``: as many as pay, as ``track`` decides).
     max_mbar_samples : int
         Samples handed to pymbar at most.
     log : callable, optional
@@ -242,7 +242,8 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
     factor = check_bin_width(bin_width_deg, 1.0)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
     check_frame_range(start, stop, step)   # (before the first window is read)
-    whole_number("workers", workers)
+    if workers != "auto":
+        whole_number("workers", workers)
     seed = DEFAULT_SEED if seed is None else int(seed)
     source = None if isinstance(windows, pd.DataFrame) else os.fspath(windows)
     table = read_windows(windows)
