@@ -105,6 +105,9 @@ def report_kinetics(res, folder=None, written=(), max_types=6, max_conformer_row
             count = (_count(n_traj // n_rep, what) + (f" x {_count(n_rep, 'replica')}" if n_rep > 1 else "")
                      if n_traj % n_rep == 0 else f"{n_traj} state series")
             print(f"\n{title} {name} ({count})")
+            if "frame_limited" in sub_l and sub_l["frame_limited"].astype(bool).any():
+                print(f"  frames {p['frame_interval_ps']:g} ps apart, about as long as these dwell times: rates too "
+                      "low, lifetimes and Eyring barriers too high (see the notes)")
             rows = sub_l.sort_values("population_counted", ascending=False).head(max_conformer_rows
                                                                                    if level == "conformer" else None)
             width = max(8, max(len(s) for s in rows["state"]))
@@ -126,10 +129,13 @@ def report_kinetics(res, folder=None, written=(), max_types=6, max_conformer_row
                 bar = f"  {r.eyring_barrier_kj_mol:6.1f}" if temp is not None and np.isfinite(r.eyring_barrier_kj_mol) else ""
                 if np.isfinite(r.profile_barrier_kj_mol):
                     bar += f" (profile {r.profile_barrier_kj_mol:.1f})"
+                if bool(getattr(r, "intermediate_missed", False)):
+                    bar += "  through another state between two frames (see the notes)"
                 print(f"  {r.from_state + ' -> ' + r.to_state:<{2 * width + 4}}  {r.count:>7}  {rate:<18}{bar}")
             sub_s = ts[(ts["level"] == level) & (ts["name"] == name) & (ts["index"] == 1)]
             if len(sub_s):
-                lags = "  ".join(f"{a:g}: {b:.3g}" for a, b in zip(sub_s["lag_ps"], sub_s["timescale_ps"]))
+                lags = "  ".join(f"{a:g}: {b:.3g}" + (" (< lag)" if b < a else "")
+                                 for a, b in zip(sub_s["lag_ps"], sub_s["timescale_ps"]))
                 print(f"  slowest implied timescale (ps) by lag (ps): {lags}")
         if len(names) > max_types:
             print(f"\n... and {len(names) - max_types} more (see lifetimes.csv)")

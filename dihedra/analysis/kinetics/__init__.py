@@ -12,6 +12,7 @@ Modules
 :mod:`.estimators`  rates, populations from rates, Kaplan-Meier dwell times, Eyring and TST
 :mod:`.markov`      reversible maximum-likelihood Markov models, implied timescales, MFPT
 :mod:`.tables`      from counts and segments to the rows of the tables, many subjects at once
+:mod:`.spacing`     what the frame spacing lets the tables resolve: notices and flag columns
 :mod:`.driver`      :func:`state_kinetics` and :class:`KineticsResult`
 
 State assignment

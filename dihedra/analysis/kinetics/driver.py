@@ -26,6 +26,7 @@ from ...trajectory.cores import CORE_MARGIN_DEG
 from .assignment import ASSIGNMENTS, DEFAULT_CORE_MARGIN_DEG, _core_table, check_core_margin
 from .estimators import DEFAULT_BOOTSTRAP, TST_CAUTION, _add_tst, _read_barrier_table
 from .markov import DEFAULT_LAGS
+from .spacing import _spacing_notices
 from .tables import _merged_segments, _Stack, _stack_tables, _tables
 from .tally import _dense_counts, tally_result
 
@@ -51,7 +52,9 @@ class KineticsResult:
     transitions, lifetimes, timescales, mfpt : DataFrame
         The tables of ``transitions.csv``, ``lifetimes.csv``, ``timescales.csv``, ``mfpt.csv``
         (``level`` is ``torsion``, ``type`` or ``conformer``). In all six tables the text columns
-        (level, name, type and the states) are categorical, their categories sorted.
+        (level, name, type and the states) are categorical, their categories sorted. Flags of
+        what the frame spacing cannot resolve (:mod:`.spacing`): ``frame_limited`` (lifetimes,
+        transitions), ``intermediate_missed`` (transitions), ``shorter_than_lag`` (timescales).
     dwell_times : DataFrame
         ``dwell_times.csv``: the observed dwell-time distribution per type and conformer type
         (level, name, type, state, dwell_ps, n_complete, n_censored).
@@ -509,6 +512,7 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     parts += _conformer_parts(plan, c_tally, scheme, pool, conf_types, rng)
     tables = _tables(parts)
     _weak_number_notices(tables, plan)
+    _spacing_notices(tables, plan, result)
     _barrier_notices(plan, tables["transitions"], scheme, barriers, profile_temperature_k)
     return KineticsResult(notices=plan.notices, run_seconds=time.time() - t0,
                           parameters=_parameters(plan, result, assignment, types, seed, torsion_bootstrap), **tables)
