@@ -24,7 +24,7 @@ from ...trajectory.result import as_result
 from ...units import check_temperature
 from ...trajectory.cores import CORE_MARGIN_DEG
 from .assignment import ASSIGNMENTS, DEFAULT_CORE_MARGIN_DEG, _core_table, check_core_margin
-from .estimators import DEFAULT_BOOTSTRAP, TST_CAUTION, _add_tst, _read_barrier_table
+from .estimators import DEFAULT_BOOTSTRAP, TST_CAUTION, _add_tst, _read_barrier_table, barriers_in_kj_mol
 from .markov import DEFAULT_LAGS
 from .spacing import _spacing_notices
 from .tables import _merged_segments, _Stack, _stack_tables, _tables
@@ -383,6 +383,8 @@ def _barrier_notices(plan, transitions, scheme, barriers, profile_temperature_k)
         raise DihedraError(f"barriers must be the barriers table of a free-energy profile (a DataFrame as in "
                            f"barriers.csv) or None; got {type(barriers).__name__}.")
     temp, notices = plan.temp, plan.notices
+    if barriers is not None:   # (a profile in another energy unit: its heights in kJ/mol)
+        barriers = barriers_in_kj_mol(barriers, profile_temperature_k if profile_temperature_k is not None else temp)
     _add_tst(transitions, temp, None if barriers is None else _read_barrier_table(barriers, scheme), notices)
     if profile_temperature_k is not None and temp is not None and abs(float(profile_temperature_k) - temp) > 1e-6:
         notices.append(f"the profile barriers were computed at {float(profile_temperature_k):g} K but the Eyring "

@@ -15,7 +15,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ...units import H_J_S, K_B_J_PER_K, R_KJ_PER_MOL_K, check_temperature
+from ...units import ENERGY_UNITS, H_J_S, K_B_J_PER_K, R_KJ_PER_MOL_K, check_temperature, to_kj_mol
 from .markov import _reachability
 
 #: Default number of bootstrap samples for dwell-time intervals.
@@ -232,6 +232,26 @@ def eyring_barrier_kj_mol(rate_per_s, temperature_k, kappa=1.0):
     with np.errstate(divide="ignore", invalid="ignore"):
         g = -R_KJ_PER_MOL_K * t * np.log(k * H_J_S / (kappa * K_B_J_PER_K * t))
     return np.where(k > 0, g, np.nan)
+
+
+def barriers_in_kj_mol(table, temperature_k=None):
+    """``barriers.csv`` with its heights in kJ/mol: a profile written in another energy unit
+    (``dihedra profile --energy-unit kcal/mol``: ``height_from_first_kcal_mol``, ...) is converted
+    (kT with ``temperature_k``, the profile's); the table as it is when it has kJ/mol already or no
+    convertible heights."""
+    first = [c for c in table.columns if c.startswith("height_from_first_")]
+    if "height_from_first_kj_mol" in table.columns or not first:
+        return table
+    suffix = first[0][len("height_from_first_"):]
+    if suffix not in ENERGY_UNITS or (ENERGY_UNITS[suffix] == "kT" and temperature_k is None):
+        return table
+    out = table.copy()
+    for side in ("first", "second"):
+        for kind in ("", "_err"):
+            col = f"height_from_{side}{kind}_{suffix}"
+            if col in out.columns:
+                out[f"height_from_{side}{kind}_kj_mol"] = to_kj_mol(out[col], suffix, temperature_k)
+    return out
 
 
 def _read_barrier_table(table, scheme):

@@ -1,0 +1,34 @@
+"""Profile barriers matched to transitions whatever energy unit the profile was written in."""
+
+import numpy as np
+import pandas as pd
+
+from dihedra.analysis.kinetics.estimators import _read_barrier_table, barriers_in_kj_mol
+from dihedra.selection.schemes import get_scheme
+from dihedra.units import R_KJ_PER_MOL_K
+
+
+def barrier_table(suffix, factor):
+    """A barriers.csv of one butane-like type: anti <-> gauche+ and anti <-> gauche- barriers."""
+    kj = {"first": [12.35, 12.35], "second": [9.42, 9.42]}
+    table = pd.DataFrame({"type": ["BUT:C1-C2-C3-C4"] * 2, "torsion": [np.nan, np.nan], "barrier": [1, 2],
+                          "from_minimum_deg": [180.0, 180.0], "to_minimum_deg": [60.0, -60.0]})
+    for side, values in kj.items():
+        table[f"height_from_{side}_{suffix}"] = np.asarray(values) / factor
+        table[f"height_from_{side}_err_{suffix}"] = 0.1 / factor
+    return table
+
+
+def test_barriers_in_other_units_are_read_in_kj_mol():
+    # thermochemical calorie: 4.184 J exactly (NIST SP 811); kT = R T (CODATA 2018 R)
+    scheme = get_scheme("anti-gauche")
+    reference = _read_barrier_table(barrier_table("kj_mol", 1.0), scheme)
+    assert len(reference) == 4
+    kt = R_KJ_PER_MOL_K * 300.0
+    for suffix, factor, temperature in (("kcal_mol", 4.184, None), ("kt", kt, 300.0)):
+        read = _read_barrier_table(barriers_in_kj_mol(barrier_table(suffix, factor), temperature), scheme)
+        assert read.keys() == reference.keys()
+        for key, (height, err) in reference.items():
+            assert np.isclose(read[key][0], height, rtol=1e-12) and np.isclose(read[key][1], err, rtol=1e-12)
+    # kT without the profile's temperature cannot be converted: nothing is matched rather than a guess
+    assert _read_barrier_table(barriers_in_kj_mol(barrier_table("kt", kt), None), scheme) == {}
