@@ -88,12 +88,14 @@ class RamachandranResult:
 
     def save(self, folder):
         """Write ``ramachandran.csv``, ``ramachandran_by_type.csv`` and ``ramachandran.json``."""
+        from ..io.outputs import file_set
         from ..io.tables import write_json, write_table
 
-        return [write_table(self.regions, folder, "ramachandran.csv"),
-                write_table(self.regions_by_type, folder, "ramachandran_by_type.csv"),
-                write_json({"parameters": self.parameters, "notices": list(self.notices)}, folder,
-                           "ramachandran.json")]
+        with file_set(folder):   # (all three or none replaced)
+            return [write_table(self.regions, folder, "ramachandran.csv"),
+                    write_table(self.regions_by_type, folder, "ramachandran_by_type.csv"),
+                    write_json({"parameters": self.parameters, "notices": list(self.notices)}, folder,
+                               "ramachandran.json")]
 
 
 def _pairs(torsions):

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ...io.outputs import file_set
 from ...io.tables import read_optional_table, write_json, write_table
 from ...trajectory.convergence import (AGREE_P, DG_MIN_POPULATION, DISAGREE_P, TARGET_ERROR, TARGET_ERROR_KJ_MOL,
                                        Convergence, convergence_tables)
@@ -45,8 +46,9 @@ class ConvergenceResult(Convergence):
     def save(self, folder):
         """Write ``convergence.csv``, ``convergence_by_state.csv``, ``convergence_over_time.csv``
         and ``convergence.json`` into ``folder``; returns their paths."""
-        paths = [write_table(table, folder, name) for name, table in self.tables().items()]
-        paths.append(write_json(self.record(), folder, "convergence.json"))
+        with file_set(folder):   # (all four or none replaced)
+            paths = [write_table(table, folder, name) for name, table in self.tables().items()]
+            paths.append(write_json(self.record(), folder, "convergence.json"))
         return paths
 
 

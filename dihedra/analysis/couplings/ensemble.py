@@ -427,23 +427,25 @@ class CouplingResult:
         ``couplings_<relation>.json`` (``experimental_path``, the file the experimental values came
         from, is recorded there). A run with another relation adds its files beside these; a run
         with the same relation replaces them. Returns the paths."""
+        from ...io.outputs import file_set
         from ...io.tables import write_json, write_table
 
         paths = []
-        for rel in self.relations:
-            table, exp, info_name = coupling_file_names(rel["name"], True)
-            paths.append(write_table(self.couplings[self.couplings["relation"] == rel["name"]], folder, table))
-            info = {"relations": [rel], "notices": list(self.notices), "method": METHOD,
-                    "substituents": {k: [{"delta_chi": d, "xi": x, "atom_index": a} for d, x, a in v]
-                                     for k, v in self.substituents.items()},
-                    "cautions": list(CAUTIONS)}
-            if self.experiment is not None:
-                paths.append(write_table(self.experiment[self.experiment["relation"] == rel["name"]], folder, exp))
-                info["experimental"] = {"file": os.path.abspath(experimental_path) if experimental_path else None,
-                                        "summary": [x for x in self.experiment_summary or []
-                                                    if x.get("relation") == rel["name"]],
-                                        "verdict_rules": VERDICT_RULES}
-            paths.append(write_json(info, folder, info_name))
+        with file_set(folder):   # (all in place together, or none)
+            for rel in self.relations:
+                table, exp, info_name = coupling_file_names(rel["name"], True)
+                paths.append(write_table(self.couplings[self.couplings["relation"] == rel["name"]], folder, table))
+                info = {"relations": [rel], "notices": list(self.notices), "method": METHOD,
+                        "substituents": {k: [{"delta_chi": d, "xi": x, "atom_index": a} for d, x, a in v]
+                                         for k, v in self.substituents.items()},
+                        "cautions": list(CAUTIONS)}
+                if self.experiment is not None:
+                    paths.append(write_table(self.experiment[self.experiment["relation"] == rel["name"]], folder, exp))
+                    info["experimental"] = {"file": os.path.abspath(experimental_path) if experimental_path else None,
+                                            "summary": [x for x in self.experiment_summary or []
+                                                        if x.get("relation") == rel["name"]],
+                                            "verdict_rules": VERDICT_RULES}
+                paths.append(write_json(info, folder, info_name))
         return paths
 
 

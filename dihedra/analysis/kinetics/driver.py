@@ -19,6 +19,7 @@ import pandas as pd
 
 from ..._version import __version__
 from ...errors import DihedraError, InputFileError, one_of
+from ...io.outputs import file_set
 from ...io.tables import write_json, write_table
 from ...trajectory.result import as_result
 from ...units import check_temperature
@@ -86,12 +87,13 @@ class KineticsResult:
         files) into ``folder`` (made if missing), each through a temporary name; returns their
         paths."""
         os.makedirs(folder, exist_ok=True)
-        paths = [write_table(getattr(self, attr), folder, name) for attr, name in TABLE_FILES]
-        doc = {"dihedra_version": __version__, "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-               "parameters": self.parameters, "notices": list(self.notices),
-               "files": [name for _, name in TABLE_FILES],
-               "run_seconds": None if self.run_seconds is None else round(self.run_seconds, 3)}
-        paths.append(write_json(doc, folder, "kinetics.json"))
+        with file_set(folder):   # (all in place together: an interruption leaves the earlier set whole)
+            paths = [write_table(getattr(self, attr), folder, name) for attr, name in TABLE_FILES]
+            doc = {"dihedra_version": __version__, "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+                   "parameters": self.parameters, "notices": list(self.notices),
+                   "files": [name for _, name in TABLE_FILES],
+                   "run_seconds": None if self.run_seconds is None else round(self.run_seconds, 3)}
+            paths.append(write_json(doc, folder, "kinetics.json"))
         return paths
 
 
