@@ -211,3 +211,20 @@ def test_histograms_of_blocks_beyond_2_gb_use_64_bit_offsets(tmp_path, monkeypat
                               narrow=["histograms"])
     assert pq.read_schema(tmp_path / "histograms.parquet").field("counts").type == pa.large_binary()
     np.testing.assert_array_equal(blocks_module.load_blocks(tmp_path / "blocks.npz")["histograms"], hist)
+
+
+def test_name_columns_are_read_as_text_however_long_the_table(tmp_path):
+    # a profiles table: empty torsion cells in the types' rows, then labels in the torsions' rows,
+    # long enough that pandas reads it in chunks (and otherwise warns of mixed types)
+    import warnings
+
+    from dihedra.io.tables import read_table
+
+    n = 1_200_000
+    torsion = [""] * (n // 2) + [f"H{k}" for k in range(n // 2)]
+    (tmp_path / "t.csv").write_text("type,torsion,x\n" + "".join(f"H,{t},{k}\n" for k, t in enumerate(torsion)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        frame = read_table(str(tmp_path), "t.csv")
+    assert frame["torsion"].isna().sum() == n // 2 and frame["torsion"].iloc[-1] == f"H{n // 2 - 1}"
+    assert frame["x"].dtype.kind == "i"

@@ -189,6 +189,13 @@ EQUAL_GROUPS = {
 }
 
 
+#: Columns that hold names: read as text whatever their first rows hold (``torsion`` is empty in
+#: the rows of a type and a label in those of a torsion; pandas would otherwise guess per chunk,
+#: with a warning, on large files).
+TEXT_COLUMNS = {c: object for c in ("torsion", "type", "state", "group", "group_type", "conformer", "name",
+                                    "from_state", "to_state", "reference_state", "scheme")}
+
+
 def read_table(folder, name, columns=()):
     """A table of a results folder as a DataFrame (empty cells as NaN, text kept as text).
 
@@ -207,7 +214,7 @@ def read_table(folder, name, columns=()):
                 fh.seek(-1, os.SEEK_END)
                 if fh.read(1) != b"\n":
                     raise InputFileError(f"{path} is cut short (its last line is unfinished); {damaged}")
-        frame = pd.read_csv(path, keep_default_na=False, na_values=[""])
+        frame = pd.read_csv(path, keep_default_na=False, na_values=[""], dtype=TEXT_COLUMNS)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, OSError) as exc:
         raise InputFileError(f"{path} is not a readable table ({str(exc).strip().splitlines()[0]}); "
                              f"{damaged}") from None
