@@ -21,7 +21,7 @@ from MDAnalysis.exceptions import NoDataError
 
 from ..errors import SelectionError, read_toml
 from .rotatable import rotatable_torsions
-from .torsions import Torsion, TorsionSet, replace_fields, torsion_from_atoms
+from .torsions import Torsion, TorsionSet, replace_fields, torsion_from_atoms, torsions_from_quads
 
 #: Named specifications.
 NAMED_SPECS = ("rotatable", "protein-backbone", "protein-sidechains", "nucleic-backbone")
@@ -84,7 +84,7 @@ def torsions_from_toml(universe, path):
                              "the file holds [[torsion]] tables only.")
     if not entries:
         raise SelectionError(f"torsion file {path} has no [[torsion]] tables.")
-    torsions = []
+    torsions, wanted = [], []
     for k, entry in enumerate(entries, start=1):
         where = f"{path}, torsion {k}"
         allowed = {"name", "atoms", "selection", "type"}
@@ -102,10 +102,13 @@ def torsions_from_toml(universe, path):
             indices = _check_indices(universe, entry["atoms"], where=where)
         else:
             indices = _indices_from_selection(universe, entry["selection"], where)
-        base = torsion_from_atoms(universe, indices, ttype=entry.get("type"))
-        torsions.append(Torsion(indices=base.indices, label=str(name), type=base.type,
-                                name=str(name), resname=base.resname, resid=base.resid,
-                                segid=base.segid, group=base.group))
+        wanted.append((indices, str(name), entry.get("type")))
+    # (labels and types of every entry from the topology's arrays at once: one by one, each entry
+    # would read the names of every atom again)
+    bases = torsions_from_quads(universe, np.asarray([w[0] for w in wanted], dtype=np.int64))
+    for base, (_, name, ttype) in zip(bases, wanted):
+        torsions.append(Torsion(indices=base.indices, label=name, type=ttype or base.type, name=name,
+                                resname=base.resname, resid=base.resid, segid=base.segid, group=base.group))
     return TorsionSet(torsions)
 
 
