@@ -82,3 +82,16 @@ def test_a_torsion_file_may_name_the_type(tmp_path):
     path.write_text('[[torsion]]\nname = "middle"\natoms = [1, 2, 3, 4]\ntype = "alkane-middle"\n')
     (t,) = torsions_from_toml(u, str(path)).torsions
     assert (t.label, t.type, t.indices) == ("middle", "alkane-middle", (1, 2, 3, 4))
+
+
+def test_torsions_given_by_atoms_that_are_not_bonded_in_a_chain_get_a_notice(tmp_path):
+    # hexane's first chain is atoms 0-5 bonded in order (the example's CONECT records); atom 6
+    # begins the second molecule
+    u = _universe("hexane")
+    chained = select_torsions(u, ["0,1,2,3", "1,2,3,4"])
+    assert not any("not a chain of bonded atoms" in n for n in chained.notices)
+    across = select_torsions(u, ["0,1,2,6"])
+    assert any("1 torsion(s) are not a chain of bonded atoms" in n and "0 1 2 6" in n for n in across.notices)
+    path = tmp_path / "t.toml"
+    path.write_text('[[torsion]]\nname = "skew"\natoms = [0, 2, 1, 3]\n[[torsion]]\nname = "ok"\natoms = [2, 3, 4, 5]\n')
+    assert any("1 torsion(s)" in n and "skew" in n for n in select_torsions(u, str(path)).notices)

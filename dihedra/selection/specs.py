@@ -21,7 +21,7 @@ from MDAnalysis.exceptions import NoDataError
 
 from ..errors import SelectionError, read_toml
 from .rotatable import rotatable_torsions
-from .torsions import Torsion, TorsionSet, replace_fields, torsion_from_atoms, torsions_from_quads
+from .torsions import Torsion, TorsionSet, bond_array, replace_fields, torsion_from_atoms, torsions_from_quads
 
 #: Named specifications.
 NAMED_SPECS = ("rotatable", "protein-backbone", "protein-sidechains", "nucleic-backbone")
@@ -166,6 +166,8 @@ def select_torsions(universe, specs, *, keep_variants=False):
         except NoDataError as exc:   # a topology without names, residues or bonds
             raise SelectionError(f"--torsions {spec}: the topology lacks what this needs ({exc}); give a topology "
                                  "with atom names and bonds (PDB with CONECT, PSF, TPR, PRMTOP, ...).") from None
+        if _INDEX_SPEC.match(spec) or spec.lower().endswith(".toml"):   # (the others follow bonds)
+            part.notices.extend(_unbonded_notice(universe, part.torsions, spec))
         result.torsions.extend(part.torsions)
         result.notices.extend(part.notices)
     result = _deduplicate(result)
@@ -173,6 +175,26 @@ def select_torsions(universe, specs, *, keep_variants=False):
         raise SelectionError(f"the specification(s) {', '.join(specs)} select no torsions in this "
                              "topology." + (" " + " ".join(result.notices) if result.notices else ""))
     return _assign_order(result)
+
+
+def _unbonded_notice(universe, torsions, spec):
+    """A notice for torsions given by atoms that are not a chain of bonds A-B, B-C, C-D (when the
+    topology has bonds): an improper torsion or atoms of two molecules may be meant, or a typo."""
+    bonds = bond_array(universe)
+    if bonds is None or not len(bonds) or not torsions:
+        return []
+    n = universe.atoms.n_atoms
+    keys = np.unique(np.concatenate([bonds[:, 0] * n + bonds[:, 1], bonds[:, 1] * n + bonds[:, 0]]))
+    quads = np.asarray([t.indices for t in torsions], dtype=np.int64)
+    pairs = np.stack([quads[:, k] * n + quads[:, k + 1] for k in range(3)], axis=1)
+    loose = ~np.isin(pairs, keys).all(axis=1)
+    if not loose.any():
+        return []
+    first = torsions[int(np.argmax(loose))]
+    return [f"--torsions {spec}: {int(loose.sum())} torsion(s) are not a chain of bonded atoms A-B-C-D in the "
+            f"topology (e.g. {first.label}, atoms {' '.join(map(str, first.indices))}): they are measured as "
+            "given (an improper torsion, or atoms of different molecules, measure something else than a "
+            "rotation about a bond); check the atoms and their order."]
 
 
 def _select_one(universe, spec, keep_variants=False):
