@@ -192,7 +192,7 @@ EQUAL_GROUPS = {
 #: Columns that hold names: read as text whatever their first rows hold (``torsion`` is empty in
 #: the rows of a type and a label in those of a torsion; pandas would otherwise guess per chunk,
 #: with a warning, on large files).
-TEXT_COLUMNS = {c: object for c in ("torsion", "type", "state", "group", "group_type", "conformer", "name",
+TEXT_COLUMNS = {c: str for c in ("torsion", "type", "state", "group", "group_type", "conformer", "name",
                                     "from_state", "to_state", "reference_state", "scheme")}
 
 
