@@ -414,3 +414,15 @@ def test_replicas_with_frames_at_different_intervals_are_pointed_out(two_replica
     assert any("different times apart" in n and "2 ps" in n and "1 ps" in n for n in mixed.notices)
     same = track(top, [t0, t1], torsions=spec8(), scheme="anti-gauche")
     assert not any("different times apart" in n for n in same.notices)
+
+
+def test_pooled_types_come_in_the_order_of_the_numbers_in_their_names():
+    # a lipid chain's positions C22, C23, ..., C29, C210: text order would put C210 before C22
+    from dihedra.numerics.populations import pool_by_type
+
+    names = [f"POPE:C2{k}-C2{k + 1}" for k in range(2, 12)]
+    rows = [(t, f"{t}#{m}", s, 0.5, 0.01) for t in reversed(names) for m in range(2) for s in ("anti", "gauche")]
+    table = pd.DataFrame(rows, columns=["type", "torsion", "state", "population", "population_err"])
+    pooled = pool_by_type(table)
+    assert list(dict.fromkeys(pooled["type"])) == names
+    assert pooled["state"].tolist()[:2] == ["anti", "gauche"]

@@ -125,8 +125,16 @@ def pool_by_type(populations, key="type", item="torsion", count_name="n_torsions
     out[count_name] = out[count_name].astype(int)
     out["heterogeneous"] = out["heterogeneous"].astype(bool)
     out["_o"] = out["state"].map(order)
-    out = out.sort_values([key, "_o"], kind="stable").drop(columns="_o").reset_index(drop=True)
+    out = out.sort_values([key, "_o"], kind="stable", key=natural_order).drop(columns="_o").reset_index(drop=True)
     return out
+
+
+def natural_order(column):
+    """A sort key of a column of names that orders the numbers in them by value (``POPE:C22-...``
+    before ``POPE:C210-...``, as a chain runs); other columns as they are (for ``sort_values``)."""
+    if column.dtype.kind in "biuf":
+        return column
+    return column.astype(str).str.replace(r"\d+", lambda m: m.group().zfill(12), regex=True)
 
 
 #: The heterogeneity columns of pooled tables (see :func:`pool_by_type`).
@@ -267,9 +275,9 @@ def _pooled_conformers(group_type, group, conformer, population, population_err)
             rows.append((name, conf_names[c], float(seen.mean()) if len(seen) else np.nan, r["se"], len(groups),
                          r["i_squared"], r["q"], r["q_p_value"], r["tau"], bool(r["heterogeneous"]), rank[c]))
     pooled = pd.DataFrame(rows, columns=columns + ["_o"])
-    pooled = pooled.sort_values(["group_type", "_o"], kind="stable").drop(columns="_o")
-    return pooled.sort_values(["group_type", "population"], ascending=[True, False],
-                              kind="stable").reset_index(drop=True)
+    pooled = pooled.sort_values(["group_type", "_o"], kind="stable", key=natural_order).drop(columns="_o")
+    return pooled.sort_values(["group_type", "population"], ascending=[True, False], kind="stable",
+                              key=natural_order).reset_index(drop=True)
 
 
 def _positions(distinct, codes):
