@@ -187,11 +187,13 @@ def _main(argv):
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", module="MDAnalysis")
     from ..io.staging import COMMITTED
+    from .common import expand_type_patterns
 
     committed = len(COMMITTED)
     finished = False
     with stop_signals(restore=argv is not None) as received:
         try:
+            expand_type_patterns(args)
             status = args.func(args)
             if received:   # a signal whose raise Python swallowed: the command still ends as interrupted
                 finished = True

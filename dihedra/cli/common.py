@@ -7,6 +7,8 @@ import sys
 
 import numpy as np
 
+from ..errors import DihedraError
+
 
 def add_torsion_options(parser, required=True):
     parser.add_argument("--torsions", action="append", metavar="SPEC", required=required,
@@ -69,9 +71,38 @@ def add_types_option(parser, what, former=()):
     reads a results folder: ``what`` is its help (say whether a torsion label chooses one torsion);
     it is repeatable. ``former`` are older names of the option, still taken with a note."""
     parser.add_argument("--types", nargs="+", action=_Extend, default=None, metavar="TYPE", dest="types",
-                        help=what + "; names as in torsions.csv, repeatable")
+                        help=what + "; names as in torsions.csv, or shell-style patterns in quotes ('POPE:C2*'), "
+                                    "repeatable")
     for old in former:
         add_renamed(parser, old, "--types", "types", nargs="+", action=_Extend)
+
+
+def expand_type_patterns(args):
+    """``--types`` with shell-style patterns (``'POPE:C2*'``, ``'*:chi1'``): each pattern becomes
+    the matching types of the results folder ``args.folder``, in the folder's order (names without
+    ``*``, ``?`` or ``[`` are left to the command). A pattern that matches nothing is an error."""
+    import fnmatch
+
+    types, folder = getattr(args, "types", None), getattr(args, "folder", None)
+    if not types or folder is None or not any(ch in t for t in types for ch in "*?["):
+        return
+    from ..io.tables import read_table
+
+    try:
+        known = list(dict.fromkeys(read_table(folder, "torsions.csv", columns=["type"])["type"].astype(str)))
+    except DihedraError:
+        return   # (no results folder: the command says so itself)
+    out = []
+    for t in types:
+        if not any(ch in t for ch in "*?["):
+            out.append(t)
+            continue
+        hits = [k for k in known if fnmatch.fnmatchcase(k, t)]
+        if not hits:
+            raise DihedraError(f"--types {t}: no torsion type of {folder} matches this pattern; its types are "
+                               f"{', '.join(known[:6])}" + (" ..." if len(known) > 6 else "") + " (see torsions.csv).")
+        out.extend(hits)
+    args.types = list(dict.fromkeys(out))
 
 
 def add_overwrite_option(parser, what):
