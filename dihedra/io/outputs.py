@@ -256,7 +256,7 @@ def _check_replaceable(path, what):
     foreign = foreign_files(path, marker)
     if foreign:
         shown = ", ".join(foreign[:5]) + (f" and {len(foreign) - 5} more" if len(foreign) > 5 else "")
-        raise OutputExistsError(f"{path} holds files dihedra did not write ({shown}); --overwrite would lose them: "
+        raise OutputExistsError(f"{path} holds files dihedra did not write ({shown}); replacing it would lose them: "
                                 "move them elsewhere or choose another name.")
 
 

@@ -96,6 +96,9 @@ def load_results(folder):
     cut table, summary or block file is one :class:`~dihedra.errors.InputFileError`, never other
     numbers."""
     folder = os.fspath(folder)
+    if os.path.exists(folder) and not os.path.isdir(folder):
+        raise InputFileError(f"{folder} is a file, not a results folder: give the folder that 'dihedra track "
+                             "--out DIR' wrote.")
     if not os.path.isdir(folder):
         raise InputFileError(f"results folder {folder} does not exist (run 'dihedra track ... --out {folder}' first).")
     missing = [n for n in list(TABLES.values()) + ["summary.json", "blocks.npz"]

@@ -393,7 +393,7 @@ def _barrier_notices(plan, transitions, scheme, barriers, profile_temperature_k)
                        f"barriers at {temp:g} K; compare them at one temperature.")
     if temp is None:
         notices.append("no temperature given and none recorded by 'track': the Eyring columns are empty "
-                       "(give temperature_k, --temperature K on the command line).")
+                       "(give --temperature K, temperature_k in Python).")
     elif plan.temp_source.startswith("summary"):
         notices.append(f"Eyring barriers use the temperature recorded by 'track', {temp:g} K.")
 
