@@ -321,3 +321,18 @@ def test_a_type_the_run_will_not_have_stops_the_file_before_track(tmp_path):
     assert not os.path.exists(tmp_path / "res")
     toml.write_text(text.replace("C3-C5", "C3-C4"))
     assert [st.name for st in load_pipeline(str(toml)).steps] == ["track", "compare"]
+
+
+def test_ramachandran_is_a_step_whose_tables_equal_the_api(tmp_path):
+    # MDAnalysisTests' adenylate kinase (GRO/XTC, 10 frames): the step writes what
+    # ramachandran_regions(result).save writes
+    from MDAnalysisTests.datafiles import GRO, XTC
+
+    text = (f'steps = ["track", "ramachandran"]\n[track]\ntopology = "{GRO}"\ntrajectories = ["{XTC}"]\n'
+            'torsions = ["protein-backbone"]\nkeep_angles = true\n')
+    pipe = load_pipeline(str(write(tmp_path / "a.toml", text)), out=str(tmp_path / "res"))
+    run_pipeline(pipe)
+    res = dihedra.load_results(str(tmp_path / "res"))
+    direct = dihedra.ramachandran_regions(res)
+    pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "res" / "ramachandran_by_type.csv"),
+                                  pd.read_csv(direct.save(str(tmp_path / "direct"))[1]))

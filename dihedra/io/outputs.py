@@ -365,7 +365,7 @@ def write_file(folder, name, write, *, marked=True):
     """Write ``folder/name`` through ``write(tmp_path)`` under a temporary name, then rename it
     into place; return the path.
 
-    ``name`` may hold subfolders (``figures/x.png``; they are created). When ``marked`` (the
+    ``name`` may hold subfolders (``figures/x.png``; they are created, as is ``folder``). When ``marked`` (the
     default), an existing file is replaced only if the folder's marker lists it, and the name is
     added to the list (a folder without a marker gets one). ``marked=False`` is for single files
     whose target was checked by :func:`check_single_file`.
@@ -375,8 +375,7 @@ def write_file(folder, name, write, *, marked=True):
     rel = os.path.relpath(target, folder).replace(os.sep, "/")
     marker = check_replaceable_in(folder, name) if marked else None
     parent = os.path.dirname(target)
-    if parent != folder:
-        os.makedirs(parent, exist_ok=True)
+    os.makedirs(parent, exist_ok=True)   # (a new folder for save(), or a subfolder such as figures/)
     tmp = os.path.join(parent, f".{os.path.basename(name)}.{uuid.uuid4().hex[:8]}{TMP_SUFFIX}")
     pending = _pending_set(folder)
     unlisted = marked and (marker is None or rel not in marker["files"])

@@ -19,6 +19,7 @@ from ..analysis.couplings import coupling_file_names, ensemble_couplings, get_re
 from ..errors import DihedraError, OutputExistsError
 from ..analysis.kinetics import state_kinetics
 from ..analysis.profiles import free_energy_profiles
+from ..analysis.ramachandran import ramachandran_regions
 from ..analysis.reference_populations import compare_reference_populations
 from ..analysis.refit import fit_torsion_correction
 from ..analysis.scans import check_scan_output, mmff94_scan, molecule_from_topology, read_scan, write_scan_csv, xtb_scan
@@ -102,6 +103,7 @@ OUTPUTS = {
     "compare": ("comparison.csv", "comparison_profiles.csv", "comparison.json"),
     "kinetics": ("transitions.csv", "lifetimes.csv", "dwell_times.csv", "dwell_survival.csv", "timescales.csv",
                  "mfpt.csv", "kinetics.json"),
+    "ramachandran": ("ramachandran.csv", "ramachandran_by_type.csv", "ramachandran.json"),
     "refit": ("refit_", "refit."),
     "figures": ("figures/",),
 }
@@ -164,6 +166,11 @@ def _couplings(ctx, a):
     return _written(res.save(ctx.out, experimental_path=path))
 
 
+def _ramachandran(ctx, a):
+    _check(ctx, "ramachandran")
+    return _written(ramachandran_regions(ctx.result(), **a).save(ctx.out))
+
+
 def _refit(ctx, a):
     _check(ctx, "refit")
     res = fit_torsion_correction(ctx.result(), a.pop("target"), log=ctx.log, **a)
@@ -214,6 +221,9 @@ STEPS = {s.name: s for s in [
     StepDef("kinetics", "dihedra.state_kinetics", _kinetics,
             keyword_names(state_kinetics, ("result", "barriers", "profile_temperature_k") + _PIPELINE_OWNED),
             defaults=signature_defaults(state_kinetics)),
+    StepDef("ramachandran", "dihedra.ramachandran_regions", _ramachandran,
+            keyword_names(ramachandran_regions, ("result",) + _PIPELINE_OWNED),
+            defaults=signature_defaults(ramachandran_regions)),
     StepDef("refit", "dihedra.fit_torsion_correction", _refit,
             keyword_names(fit_torsion_correction, ("result", "universe") + _PIPELINE_OWNED),
             paths=frozenset({"target"}), specs=frozenset({"relation"}), required=("target",),
