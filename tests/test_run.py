@@ -176,12 +176,12 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     top, trajs = make_system(str(data), n_replicas=1, n_frames=40, n_molecules=2)
     toml = write(tmp_path / "f.toml",
                  f'out = "res"\n[track]\ntopology = "{top}"\ntrajectories = ["{trajs[0]}"]\ntorsions = ["rotatable"]\n'
-                 'temperature_k = 300\n[profile]\npairs = [["NOPE1:x", "NOPE2:y"]]\n')
-    assert main(["run", toml]) == 2   # a pair of torsions that only the tracked folder can refuse
+                 'temperature_k = 300\n[kinetics]\nlags_ps = [0.37]\n')
+    assert main(["run", toml]) == 2   # a lag that only the tracked frames' spacing can refuse
     err = capsys.readouterr().err
-    assert "step profile (f.toml, [profile]) failed" in err and "NOPE1:x" in err
+    assert "step kinetics (f.toml, [kinetics]) failed" in err and "0.37" in err
     record = json.loads((tmp_path / "res" / RECORD_NAME).read_text())
-    assert [(s["step"], s["status"]) for s in record["steps"]] == [("track", "done"), ("profile", "failed")]
+    assert [(s["step"], s["status"]) for s in record["steps"]] == [("track", "done"), ("kinetics", "failed")]
 
 
 @pytest.mark.parametrize("table, fragment", [
@@ -198,6 +198,13 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     ('[couplings]\nrelation = "nothere"\n', "nothere"),
     ('[figures]\nformats = ["gif"]\n', "figure format"),
     ('[windows]\nwindows = "bad-scan.csv"\ntemperature_k = 300\n', "window table"),
+    # steps that need the angle series, without track's keep_angles
+    ('[ramachandran]\n', "keep_angles = true"), ('[kinetics]\ncore_margin_deg = 10\n', "keep_angles = true"),
+    ('[profile]\npairs = [["HEX:C1-C2-C3-C4", "HEX:C1-C2-C3-C4"]]\n', "keep_angles = true"),
+    ('[refit]\ntarget = "good-scan.csv"\n', "keep_angles = true"),
+    # names the run will not have: 'all' belongs to compare
+    ('[figures]\ntypes = ["all"]\n', "leave types out"),
+    ('[report]\nout = "good-scan.csv"\n', "not a report"),
 ])
 def test_every_table_is_checked_before_the_first_step(tmp_path, capsys, table, fragment):
     data = tmp_path / "data"

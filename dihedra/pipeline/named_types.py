@@ -1,6 +1,7 @@
-"""The torsion types and labels that the tables of an analysis file name (``types = [...]``),
-checked against the torsions of the run before the first step, so that a misspelt type in
-``[compare]`` stops the file at once instead of after a long ``[track]``."""
+"""The torsion types and labels that the tables of an analysis file name (``types = [...]``,
+``pairs``), checked against the torsions of the run before the first step, so that a misspelt type
+in ``[compare]`` stops the file at once instead of after a long ``[track]``; and the steps that
+need the angle time series, checked against ``[track]``'s ``keep_angles``."""
 
 from __future__ import annotations
 
@@ -19,19 +20,46 @@ def check_named_types(steps, out):
     trajectory, read as track reads them), else those of the results folder ``out``; where neither
     can tell (a track that will fail on its own, a folder that does not exist yet), nothing is
     checked here."""
-    named = [(st, t) for st in steps if st.name != "track"
-             for t in _as_list(st.arguments.get("types")) if str(t) != "all"]
+    check_angles_kept(steps)
+    # ('all' is compare's word for every type; the other steps take every type without types)
+    named = [(st, t, "types") for st in steps if st.name != "track"
+             for t in _as_list(st.arguments.get("types")) if not (str(t) == "all" and st.name == "compare")]
+    named += [(st, t, "pairs") for st in steps if st.name == "profile" for pair in _as_list(st.arguments.get("pairs"))
+              for t in _as_list(pair)]
     if not named:
         return
     known = _known_torsions(steps, out)
     if known is None:
         return
     types, labels = known
-    for st, name in named:
+    for st, name, key in named:
         if name not in types and name not in labels:
             shown = ", ".join(sorted(types)[:6]) + (", ..." if len(types) > 6 else "")
+            every = (", or 'all'" if st.name == "compare" else " in pairs" if key == "pairs" else
+                     ", or leave types out (the step's own choice)")
             raise DihedraError(f"{st.where}: torsion type {name!r} is not among the torsions of this run "
-                               f"(types: {shown}); name a type or a torsion label, or 'all'.")
+                               f"(types: {shown}); name a type or a torsion label{every}.")
+
+
+def check_angles_kept(steps):
+    """Raise :class:`DihedraError` before the first step when a step needs the angle time series
+    (2-D profiles, kinetics with its own core margin, Ramachandran regions, a refit) and the
+    file's ``[track]`` does not keep it (``keep_angles``)."""
+    from ..trajectory.cores import CORE_MARGIN_DEG
+
+    track = next((st for st in steps if st.name == "track"), None)
+    if track is None or track.arguments.get("keep_angles"):
+        return
+    for st in steps:
+        a = st.arguments
+        why = ("its pairs (2-D profiles)" if st.name == "profile" and a.get("pairs") else
+               "a core margin other than track's" if st.name == "kinetics" and a.get("core_margin_deg") not in (
+                   None, CORE_MARGIN_DEG) else
+               "the phi and psi angles of every frame" if st.name == "ramachandran" else
+               "every frame's angles to reweight" if st.name == "refit" else None)
+        if why:
+            raise DihedraError(f"{st.where} needs {why}, and [track] does not keep the angles: add keep_angles = "
+                               "true to [track].")
 
 
 def _known_torsions(steps, out):

@@ -11,7 +11,7 @@ import tomllib
 from dataclasses import dataclass, field
 
 from .._version import __version__
-from ..errors import DihedraError, InputFileError, read_toml
+from ..errors import DihedraError, read_toml
 from ..io.outputs import check_folder_target, read_marker, write_text
 from ..io.resultsdir import load_results
 from ..io.tables import write_json
@@ -240,10 +240,24 @@ def load_pipeline(path, out=None, overwrite=False, overrides=None, log=None):
         raise DihedraError(f"{name} describes no step to run; add a table such as [track] or a steps list.")
     _share_type_choice(steps, say)
     check_named_types(steps, out_dir)
+    _check_report_out(steps)
     if not any(st.spec.creates_folder for st in steps) and not os.path.isdir(out_dir):
         raise DihedraError(f"{name}: no step creates the results folder and {out_dir} does not exist; add a [track] "
                            "table or point out at an existing results folder.")
     return Pipeline(path=path, base_dir=base_dir, out=out_dir, steps=steps, text=text, overwrite=bool(overwrite))
+
+
+def _check_report_out(steps):
+    """A report's ``out`` that names an existing file other than a dihedra report (an input, a
+    table) is refused before the first step, as the report step would refuse it at the end."""
+    from ..io.outputs import file_head_contains
+    from ..presentation.report import REPORT_SIGNATURE
+
+    for st in steps:
+        out = st.arguments.get("out") if st.name == "report" else None
+        if out and os.path.lexists(out) and not (os.path.isfile(out) and file_head_contains(out, REPORT_SIGNATURE)):
+            raise DihedraError(f"{st.where}: out = {out!r} exists and is not a report dihedra wrote; it would be "
+                               "left untouched and the report refused at the end: choose another file name.")
 
 
 def _share_type_choice(steps, say):
