@@ -49,3 +49,30 @@ def test_universe_with_named_formats_matches_the_guessed_one():
     assert len(named.bonds) == len(guessed.bonds)
     assert (named.atoms.positions == guessed.atoms.positions).all()
     assert os.path.samefile(named.filename, guessed.filename)
+
+
+def test_a_lammps_data_file_and_its_lammpstrj_dump_are_tracked(tmp_path):
+    # MDAnalysisTests' LAMMPS chain: a data file without atom or residue names and a dump with
+    # the usual .lammpstrj extension (read as MDAnalysis' LAMMPSDUMP format when named so);
+    # the angle is MDAnalysis' own calc_dihedrals on the same frames
+    import numpy as np
+
+    import dihedra
+    from MDAnalysis.lib.distances import calc_dihedrals
+
+    top, dump = datafiles.LAMMPS_chain, datafiles.LAMMPSDUMP_chain1
+    assert dump.endswith(".lammpstrj") and known_formats(top, dump)["format"] == "LAMMPSDUMP"
+    notices = []
+    u = load_universe(top, dump, notices=notices)
+    assert any("no atom names and no residue names" in n for n in notices)
+    res = dihedra.track(top, dump, torsions="0,1,2,3", keep_angles=True)
+    assert res.torsion_set.types == ["MOL:T1-T1-T2-T2"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        mda_universe = MDAnalysis.Universe(top, dump, format="LAMMPSDUMP")
+        want = [np.degrees(calc_dihedrals(*ts.positions[[0, 1, 2, 3]][:, None, :], box=ts.dimensions))[0]
+                for ts in mda_universe.trajectory]
+    angles = res.angles()
+    got = angles[res.torsion_set.labels[0]].to_numpy() if res.torsion_set.labels[0] in angles else angles.iloc[:, -1]
+    np.testing.assert_allclose(got, want, atol=1e-3)
+    assert u.atoms.n_atoms == mda_universe.atoms.n_atoms

@@ -208,6 +208,11 @@ class FileHashes:
         self._thread.join()
 
 
+#: File extensions in common use that MDAnalysis does not take as its format's name (LAMMPS writes
+#: its dump files as .lammpstrj by convention).
+EXTRA_EXTENSIONS = {"lammpstrj": "LAMMPSDUMP"}
+
+
 def known_formats(topology, trajectory=None):
     """The ``topology_format`` and ``format`` keywords of :class:`MDAnalysis.Universe` for files
     whose extension names a format MDAnalysis reads (:func:`MDAnalysis.lib.util.guess_format`:
@@ -232,6 +237,9 @@ def _known_format(path, registry):
 
     if not isinstance(path, (str, os.PathLike)) or os.fspath(path).startswith("imd://"):
         return None
+    extension = os.path.splitext(os.fspath(path))[1].lower().lstrip(".")
+    if extension in EXTRA_EXTENSIONS and EXTRA_EXTENSIONS[extension] in registry:
+        return EXTRA_EXTENSIONS[extension]
     try:
         name = guess_format(os.fspath(path))
     except (TypeError, ValueError):
@@ -306,7 +314,27 @@ def load_universe(topology, trajectory=None, notices=None):
                            "folder); offsets are recomputed on every run, which is slower but correct.")
     if complete is not None:
         universe.trajectory.dihedra_complete_frames = min(complete, universe.trajectory.n_frames)
+    _name_atoms_by_type(universe, topology, notices)
     return universe
+
+
+def _name_atoms_by_type(universe, topology, notices):
+    """A topology without atom names (a LAMMPS data file) gets names from the atom types, and one
+    without residue names the residue name ``MOL``, with a notice: labels and torsion types are
+    made of them."""
+    atoms = universe.atoms
+    missing, used = [], []
+    if not hasattr(atoms, "names") and hasattr(atoms, "types"):
+        universe.add_TopologyAttr("names", [f"T{t}" for t in atoms.types])
+        missing.append("atom names")
+        used.append("names from the atom types (T1, T2, ...)")
+    if not hasattr(atoms, "resnames"):
+        universe.add_TopologyAttr("resnames", ["MOL"] * len(universe.residues))
+        missing.append("residue names")
+        used.append("the residue name MOL")
+    if missing:
+        notices.append(f"{os.path.basename(os.fspath(topology))} has no {' and no '.join(missing)}; torsion labels "
+                       f"and types use {' and '.join(used)}.")
 
 
 def usable_frames(reader):
