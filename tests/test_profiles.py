@@ -1,6 +1,7 @@
 """Free-energy profiles: recovered densities, barriers, errors, unsampled bins, 2-D profiles."""
 
 import os
+import re
 
 import numpy as np
 import pandas as pd
@@ -158,6 +159,94 @@ def test_butane_barrier_near_120(butane):
                                                                                       r.free_energy_err_kj_mol)
 
 
+@pytest.fixture(scope="module")
+def butane_profiles(butane):
+    res, source = butane
+    return free_energy_profiles(res, per_torsion=True), source   # temperature recorded by track
+
+
+def test_sparse_bins_carry_their_counting_error(butane_profiles):
+    # analytic: -kT ln of the exact bin averages of exp(-V/kT) of the Ryckaert-Bellemans potential
+    # (scipy quad) against the pooled histogram. Bins of a few samples (a single visit to the cis
+    # slope in the simulated example) left most blocks empty and their bootstrap spread collapsed
+    # (1.0 kJ/mol for one sample, 4 sigma from the exact value); the counting floor kT sqrt(1/n -
+    # 1/N) keeps every sampled bin within 3.5 sigma of it
+    prof, source = butane_profiles
+    hist, _ = prof.by_type["BUT:C1-C2-C3-C4"]
+    ref = bin_averaged_free_energy(rb_energy, hist.angle_deg, hist.width_deg)
+    ok = hist.sampled
+    ref = ref - ref[np.argmin(np.where(ok, hist.free_energy_kj_mol, np.inf))]
+    n, total = hist.samples[ok], hist.samples.sum()
+    err = hist.free_energy_err_kj_mol[ok]
+    assert np.all(err >= KT * np.sqrt(1 / n - 1 / total) * (1 - 1e-12))
+    z = (hist.free_energy_kj_mol[ok] - ref[ok]) / err
+    assert np.max(np.abs(z)) < 3.5, (source, hist.angle_deg[ok][np.argmax(np.abs(z))], np.max(np.abs(z)))
+    # compare's reliable bins (error at most 0.2 kT) then hold at least 25 samples
+    assert n[err <= 0.2 * KT].min() >= 25
+
+
+def test_every_minimum_of_a_butane_torsion_is_one_of_its_wells(butane_profiles):
+    # Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95: the potential has its minima at
+    # 180 and about +-60 degrees (recomputed with scipy.optimize); a sparse bin on a barrier's slope
+    # (9 samples between bins of 1-3 on one torsion of the simulated example) made a "minimum" at
+    # -129 degrees 10.7 kJ/mol up (its errors too small to show it was not significant)
+    prof, source = butane_profiles
+    gauche = optimize.minimize_scalar(rb_energy, bounds=(30, 90), method="bounded").x
+    wells = np.array([180.0, gauche, -gauche])
+    minima = prof.minima
+    d = np.abs((minima["angle_deg"].to_numpy()[:, None] - wells[None, :] + 180) % 360 - 180).min(axis=1)
+    assert d.max() < 15.0, (source, minima.iloc[int(np.argmax(d))].to_dict())
+    # the pooled gauche minima where the potential has them, within their errors: a parabola through
+    # five bins put them 0.75 degrees further out (the well is skewed), 4 of their errors
+    pooled = minima[minima["torsion"] == ""]
+    for target in (gauche, -gauche):
+        r = pooled.iloc[int(np.argmin(np.abs(pooled["angle_deg"] - target)))]
+        assert abs(r["angle_deg"] - target) <= 3 * r["angle_err_deg"] + 0.05, (source, r.to_dict(), target)
+
+
+def test_counting_floor_against_the_poisson_interval():
+    # reference library: the exact (Garwood) 68.27 % interval of a Poisson mean given n counts, from
+    # scipy's chi-square quantiles, half its width in ln: kT sqrt(1/n) (N large, the delta method) is
+    # never wider than that conservative interval, within 35 % of it for a single count and closer
+    # as n grows
+    from dihedra.analysis.profiles import counting_error_floor
+
+    n = np.array([1.0, 4.0, 25.0, 100.0, 400.0])
+    floor = counting_error_floor(np.r_[n, 1e12], KT)[:-1] / KT
+    lo = stats.chi2.ppf(0.158655, 2 * n) / 2
+    hi = stats.chi2.ppf(0.841345, 2 * n + 2) / 2
+    half = 0.5 * np.log(hi / lo)
+    ratio = floor / half
+    assert np.all(ratio <= 1.0) and np.all(ratio >= 0.65) and np.all(np.diff(ratio) > 0) and ratio[-1] > 0.95, ratio
+    assert np.isnan(counting_error_floor(np.array([0.0, 5.0]), KT)[0])
+    # binomial: a bin holding every sample has no counting error at all
+    assert counting_error_floor(np.array([0.0, 7.0]), KT)[1] == 0.0
+
+
+def test_weighted_counts_use_kish_effective_samples(tmp_path):
+    # Kish, Survey Sampling (Wiley 1965): n_eff = (sum w)^2 / sum w^2; a histogram of weight sums
+    # holds n_eff / sum w effective samples per unit of weight, and the weights' own unit (here
+    # 1/1000 of a frame) changes nothing
+    from dihedra.analysis.profiles import effective_count_scale
+
+    rng = np.random.default_rng(3)
+    angles = inverse_cdf_samples(rb_energy, T, (400, 6), rng)
+    pdb, dcd = write_rotor_trajectory(str(tmp_path), "weighted", angles)
+    w = rng.uniform(0.2, 3.0, 400) / 1000.0
+    pd.DataFrame({"weight": w}).to_csv(tmp_path / "w.csv", index=False)
+    res = track(pdb, [dcd], torsions="rotatable", temperature_k=T, weights=str(tmp_path / "w.csv"))
+    scale = effective_count_scale(res)
+    assert scale == pytest.approx(w.sum() / np.sum(w ** 2), rel=1e-9)
+    prof = free_energy_profiles(res, n_bootstrap=40, per_torsion=False)
+    hist, _ = next(iter(prof.by_type.values()))
+    ok = hist.sampled
+    floor = KT * np.sqrt(1 / (scale * hist.samples[ok]) - 1 / (scale * hist.samples.sum()))
+    assert np.all(hist.free_energy_err_kj_mol[ok] >= floor * (1 - 1e-9))
+    assert prof.settings["effective_samples_per_count"] == pytest.approx(scale)
+    unweighted = track(pdb, [dcd], torsions="rotatable", temperature_k=T)
+    assert effective_count_scale(unweighted) == 1.0
+
+
 def test_temperature_required_or_announced(tmp_path):
     # common practice: temperature always explicit, never a silent default
     res = rotor_results(tmp_path, threefold_energy, T, n_frames=64, n_molecules=4, record_temperature=False)
@@ -220,6 +309,10 @@ def test_pair_profile_of_independent_torsions(rb_synthetic):
     assert ok.sum() > 6
     assert np.mean((d / err) ** 2) < 3.0
     assert pair["n_samples"].sum() == 2000
+    # binomial counting (delta method): no bin's error below kT sqrt(1/n - 1/N)
+    seen = pair[pair["sampled"]]
+    floor = KT * np.sqrt(1 / seen["n_samples"] - 1 / 2000)
+    assert (seen["free_energy_err_kj_mol"] >= floor * (1 - 1e-12)).all()
 
 
 def test_pair_profile_needs_angles(tmp_path):
@@ -252,6 +345,23 @@ def test_profile_command(rb_synthetic, capsys, monkeypatch):
     monkeypatch.setattr(command, "LARGE_TABLE_BYTES", 1000)
     assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--overwrite"]) == 0
     assert "--types-only writes the types' alone" in capsys.readouterr().err
+
+
+def test_one_minimum_has_one_barrier_around_the_circle(tmp_path, capsys):
+    # analytic: V = 4 (1 + cos phi) has one minimum (180 deg) and one maximum (0 deg, 8 kJ/mol): the
+    # barrier of the only minimum lies on the way around the circle back to it, not "between" two
+    from dihedra.cli import main
+
+    res = rotor_results(tmp_path, lambda phi: 4.0 * (1.0 + np.cos(np.radians(phi))), T, n_frames=1000,
+                        n_molecules=40, seed=4, name="onefold")
+    assert main(["profile", res.folder, "--types-only", "--bootstrap", "40"]) == 0
+    out = capsys.readouterr().out
+    lines = [x for x in out.splitlines() if x.strip().startswith("barrier")]
+    minima = [x for x in out.splitlines() if x.strip().startswith("minimum")]
+    assert len(minima) == 1 and len(lines) == 1, out
+    found = re.search(r"around the circle from the only minimum \((-?\d+) deg\) back to it", lines[0])
+    assert found and abs(float(minima[0].split()[1]) - float(found.group(1))) <= 0.5, (minima[0], lines[0])
+    assert "between" not in lines[0] and "from each side" not in lines[0]
 
 
 def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):

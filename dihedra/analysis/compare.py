@@ -72,12 +72,12 @@ from ..io.tables import json_ready, write_json, write_table
 from ..trajectory.result import as_result
 from ..units import kt_kj_mol, wrap_deg
 from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
-                       check_estimate_options, find_minima, resolve_temperature, state_blocks, state_free_energies,
+                       check_estimate_options, resolve_temperature, state_blocks, state_free_energies,
                        type_profiles)
 from .convergence import sampling_verdicts
 from .profiles.features import with_spread_between_torsions
 from .reference_populations import add_to_comparison
-from .scans import read_scan
+from .scans import read_scan, scan_features
 
 #: Sub-points per bin for the bin-averaged prediction.
 _SUB = 50
@@ -216,38 +216,6 @@ def js_divergence_bits(p, q):
         return float(np.sum(a[nz] * np.log2(a[nz] / m[nz])))
 
     return 0.5 * kl(p) + 0.5 * kl(q)
-
-
-def scan_features(scan, kt, step_deg=0.5):
-    """Minima (with predicted basin populations) and barriers of a scan, on a fine grid.
-
-    Returns
-    -------
-    minima : list of dict (angle_deg, energy_kj_mol, predicted_population)
-    barriers : list of dict (angle_deg, energy_kj_mol, between_deg)
-    """
-    n = int(round(360.0 / step_deg))
-    x = -180.0 + step_deg * (np.arange(n) + 0.5)
-    e = scan.energy_at(x)
-    e = e - e.min()
-    mins = find_minima(e, np.zeros(n), kt, min_depth_kt=0.05, min_depth_sigma=0.0)
-    boltz = np.exp(-e / kt)
-    boltz /= boltz.sum()
-    bars = []
-    for k, a in enumerate(mins):
-        b = mins[(k + 1) % len(mins)]
-        arc = (a + 1 + np.arange((b - a - 1) % n if a != b else n - 1)) % n
-        bars.append(int(arc[np.argmax(e[arc])]) if len(arc) else a)
-    minima = []
-    for k, i in enumerate(mins):
-        lo, hi = bars[k - 1], bars[k]
-        arc = (lo + np.arange(((hi - lo) % n) or n)) % n
-        minima.append({"angle_deg": float(x[i]), "energy_kj_mol": float(e[i]),
-                       "predicted_population": float(boltz[arc].sum())})
-    barriers = [{"angle_deg": float(x[j]), "energy_kj_mol": float(e[j]),
-                 "between_deg": [float(x[mins[k]]), float(x[mins[(k + 1) % len(mins)]])]}
-                for k, j in enumerate(bars)] if len(mins) > 1 or mins else []
-    return minima, barriers
 
 
 def _match(scan_items, sampled_items, key="angle_deg"):

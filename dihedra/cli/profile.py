@@ -91,18 +91,32 @@ def report_profiles(pset, unit, max_types=20):
             print(f"  minimum  {r.angle_deg:7.1f} ± {r.angle_err_deg:.1f} deg   F = "
                   f"{_pm(getattr(r, 'free_energy_' + sfx), getattr(r, 'free_energy_err_' + sfx))}")
         for r in barriers[barriers["type"] == typ].itertuples(index=False):
-            between = f"between {r.from_minimum_deg:.0f} and {r.to_minimum_deg:.0f} deg"
-            if not r.sampled:
-                print(f"  barrier  near {r.angle_deg:5.0f} deg {between}: not sampled (higher than any sampled value)")
-                continue
-            print(f"  barrier  {r.angle_deg:7.1f} ± {r.angle_err_deg:.1f} deg   F = "
-                  f"{_pm(getattr(r, 'free_energy_' + sfx), getattr(r, 'free_energy_err_' + sfx))}  ({between}; "
-                  f"height {_pm(getattr(r, 'height_from_first_' + sfx), getattr(r, 'height_from_first_err_' + sfx))}"
-                  f" / {_pm(getattr(r, 'height_from_second_' + sfx), getattr(r, 'height_from_second_err_' + sfx))}"
-                  " from each side)")
+            print("  " + _barrier_line(r, sfx))
         for r in dg[dg["type"] == typ].itertuples(index=False):
             print(f"  state    {r.state:<10} p = {_pm(r.population, r.population_err, 3)}   dG vs {r.reference_state} = "
                   f"{_pm(getattr(r, 'free_energy_' + sfx), getattr(r, 'free_energy_err_' + sfx))}")
+
+
+def _barrier_line(r, sfx):
+    """One barrier of the printed summary (a row of the barrier table, energies with suffix ``sfx``).
+
+    A profile with one minimum has one barrier, the highest point on the way around the circle from
+    that minimum back to it: said so, with one height (from a minimum to itself both are the same).
+    """
+    one = abs((r.to_minimum_deg - r.from_minimum_deg + 180.0) % 360.0 - 180.0) < 1e-9
+    if one:
+        where = f"around the circle from the only minimum ({r.from_minimum_deg:.0f} deg) back to it"
+    else:
+        where = f"between {r.from_minimum_deg:.0f} and {r.to_minimum_deg:.0f} deg"
+    if not r.sampled:
+        return f"barrier  near {r.angle_deg:5.0f} deg {where}: not sampled (higher than any sampled value)"
+    value = _pm(getattr(r, "free_energy_" + sfx), getattr(r, "free_energy_err_" + sfx))
+    first = _pm(getattr(r, "height_from_first_" + sfx), getattr(r, "height_from_first_err_" + sfx))
+    if one:
+        return f"barrier  {r.angle_deg:7.1f} ± {r.angle_err_deg:.1f} deg   F = {value}  ({where}; height {first})"
+    second = _pm(getattr(r, "height_from_second_" + sfx), getattr(r, "height_from_second_err_" + sfx))
+    return (f"barrier  {r.angle_deg:7.1f} ± {r.angle_err_deg:.1f} deg   F = {value}  ({where}; height {first} / "
+            f"{second} from each side)")
 
 
 def _pm(value, err, digits=2):

@@ -11,7 +11,8 @@ Arrays in, arrays out; no results folders, no tables. The profiles of a tracking
   kernel standard deviation sigma in degrees, kappa = 1/sigma^2 (sigma in radians). Default rule
   (Silverman's rule of thumb within states): sigma = 0.9 s n_eff^(-1/5), s the population-weighted
   within-arc standard deviation of the angle, at least the fine bin width.
-* **errors** -- a block bootstrap: blocks drawn with replacement within each replica.
+* **errors** -- a block bootstrap: blocks drawn with replacement within each replica; the error of
+  a histogram bin never below the counting floor kT sqrt(1/n - 1/N) (:func:`counting_error_floor`).
 
 Stacks of torsions or types are handled at once (one array operation over the stack).
 
@@ -103,6 +104,9 @@ class Profile1D:
         Fraction of resamples in which the bin is sampled.
     bandwidth_deg : float or None
         Kernel standard deviation (kernel estimate only).
+    err_floor_kj_mol : ndarray (n,) or None
+        The counting floor of each bin's error (:func:`counting_error_floor`), part of
+        ``free_energy_err_kj_mol`` already; ``None`` where the estimate has none (kernel).
     """
 
     angle_deg: np.ndarray
@@ -114,6 +118,7 @@ class Profile1D:
     boot_free_energy: np.ndarray
     boot_valid_fraction: np.ndarray
     bandwidth_deg: float | None = None
+    err_floor_kj_mol: np.ndarray | None = None
 
     @property
     def width_deg(self):
@@ -154,21 +159,49 @@ def _spread_last(samples):
     return np.where(n >= 2, np.sqrt(var), np.nan), n / max(1, samples.shape[-1])
 
 
-def _histogram_stack(block_counts, mult, kt, width):
+def counting_error_floor(counts, kt, count_scale=1.0):
+    """The error that counting alone gives -kT ln p of each bin: kT sqrt(1/n - 1/N), NaN where empty.
+
+    n = ``count_scale`` x the bin's count is its effective number of samples and N that of the
+    whole profile (last axis): the binomial variance of a fraction p = n/N, p(1 - p)/N, carried
+    through the logarithm (the delta method), var(ln p) = (1 - p)/(N p) = 1/n - 1/N. A bin of n
+    samples cannot know its free energy better than about kT/sqrt(n) whatever a bootstrap over
+    blocks says: with a few samples most blocks hold none, the resamples in which the bin is
+    sampled at all hold nearly the same few samples, and their spread collapses. ``count_scale``
+    turns a weighted count into effective samples (1 for frame counts; see
+    :func:`dihedra.analysis.profiles.estimation.effective_count_scale`).
+    """
+    counts = np.asarray(counts, dtype=float)
+    scale = np.asarray(count_scale, dtype=float)
+    scale = scale.reshape(scale.shape + (1,) * (counts.ndim - scale.ndim)) if scale.ndim else scale
+    n = counts * scale
+    total = n.sum(axis=-1, keepdims=True)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        floor = kt * np.sqrt(np.clip(1.0 / n - 1.0 / total, 0.0, None))
+    return np.where(counts > 0, floor, np.nan)
+
+
+def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0):
     """Histogram profiles of a stack of torsions or types, as one Profile1D with a leading axis.
 
     ``block_counts`` (n_blocks, m, n_bins); the fields of the result are (m, n_bins) arrays and
     ``boot_free_energy`` is (m, n_bins, n_bootstrap), resamples last, +inf where a resample has
-    no sample in a bin (:func:`_unstack` gives single profiles in the documented layout).
+    no sample in a bin (:func:`_unstack` gives single profiles in the documented layout). The
+    error of a sampled bin is the larger of the bootstrap spread and the counting floor
+    (:func:`counting_error_floor`, effective samples ``count_scale`` per count: a scalar or one
+    per row).
     """
     block_counts = np.asarray(block_counts, dtype=float)
     counts = block_counts.sum(axis=0)
     density, free = free_energy_from_counts(counts, width, kt)
     boot_free = _resampled_free_energy(np.tensordot(block_counts, mult, axes=(0, 1)), width, kt)
     err, frac = _spread_last(boot_free)
+    floor = counting_error_floor(counts, kt, count_scale)
+    err = np.where(counts > 0, np.fmax(err, floor), err)
     return Profile1D(angle_deg=bin_centres(counts.shape[-1]), samples=counts, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
-                     sampled=counts > 0, boot_free_energy=boot_free, boot_valid_fraction=frac)
+                     sampled=counts > 0, boot_free_energy=boot_free, boot_valid_fraction=frac,
+                     err_floor_kj_mol=floor)
 
 
 def _unstack(stack):
@@ -182,7 +215,8 @@ def _unstack(stack):
                              density_per_deg=stack.density_per_deg[k], free_energy_kj_mol=stack.free_energy_kj_mol[k],
                              free_energy_err_kj_mol=stack.free_energy_err_kj_mol[k], sampled=stack.sampled[k],
                              boot_free_energy=boot, boot_valid_fraction=stack.boot_valid_fraction[k],
-                             bandwidth_deg=None if bws is None else float(bws[k])))
+                             bandwidth_deg=None if bws is None else float(bws[k]),
+                             err_floor_kj_mol=None if stack.err_floor_kj_mol is None else stack.err_floor_kj_mol[k]))
     return out
 
 

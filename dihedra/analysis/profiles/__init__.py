@@ -16,7 +16,7 @@ CODATA 2018 (:mod:`dihedra.units`). The temperature is always given explicitly: 
 The package is split along the steps of the analysis:
 
 * :mod:`.estimation` -- the histogram and von Mises kernel estimates, the bandwidth rule and the
-  block bootstrap of their errors;
+  block bootstrap of their errors (a histogram bin's never below its counting error);
 * :mod:`.features` -- minima, barriers and state free energies of the histogram profiles;
 * :mod:`.maps` -- 2-D profiles F(phi_a, phi_b) of pairs of torsions from the angle time series;
 * :mod:`.driver` -- :func:`free_energy_profiles`, which runs them over every type and torsion of a
@@ -44,8 +44,8 @@ from .driver import (BARRIER_COLUMNS, MINIMA_COLUMNS, PROFILE_COLUMNS, PROFILE_E
                      unit_suffix)
 from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                          Profile1D, bin_centres, bootstrap_multiplicities, bootstrap_spread, check_bin_width,
-                         check_estimate_options, default_bandwidth_deg, default_bandwidths_deg, effective_samples,
-                         free_energy_from_counts, rebin, von_mises_smooth)
+                         check_estimate_options, counting_error_floor, default_bandwidth_deg, default_bandwidths_deg,
+                         effective_count_scale, effective_samples, free_energy_from_counts, rebin, von_mises_smooth)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MIN_RESAMPLED_FRACTION, MINIMUM_FIELDS,
                        find_minima, profile_features, state_blocks, state_free_energies,
                        state_free_energies_of_probabilities)
@@ -56,8 +56,9 @@ __all__ = [
     "DEFAULT_SEED", "MINIMA_COLUMNS", "MINIMUM_FIELDS", "MIN_DEPTH_KT", "MIN_DEPTH_SIGMA", "MIN_RESAMPLED_FRACTION",
     "PROFILE_COLUMNS", "PROFILE_ENERGY_UNITS", "STATE_DG_COLUMNS",
     "Profile1D", "ProfileSet", "bin_centres", "bootstrap_multiplicities", "bootstrap_spread", "check_bin_width",
-    "check_estimate_options", "convert_energy_columns", "default_bandwidth_deg", "default_bandwidths_deg",
-    "effective_samples", "find_minima", "free_energy_from_counts", "free_energy_profiles", "pair_profiles",
-    "profile_features", "rebin", "resolve_temperature", "state_blocks", "state_free_energies",
-    "state_free_energies_of_probabilities", "type_profiles", "unit_suffix", "von_mises_smooth",
+    "check_estimate_options", "convert_energy_columns", "counting_error_floor", "default_bandwidth_deg",
+    "default_bandwidths_deg", "effective_count_scale", "effective_samples", "find_minima",
+    "free_energy_from_counts", "free_energy_profiles", "pair_profiles", "profile_features", "rebin",
+    "resolve_temperature", "state_blocks", "state_free_energies", "state_free_energies_of_probabilities",
+    "type_profiles", "unit_suffix", "von_mises_smooth",
 ]

@@ -31,7 +31,7 @@ from ...units import canonical_energy_unit, check_temperature, from_kj_mol, kt_k
 from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                          _bandwidths, _histogram_stack, _kernel_columns, _kernel_profiles, _kernel_stack,
                          _profiles_from_blocks, _unstack, bin_centres, bootstrap_multiplicities, check_bin_width,
-                         check_estimate_options, effective_samples, rebin)
+                         check_estimate_options, effective_count_scale, effective_samples, rebin)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
                        _state_free_energy_stack, mixture_notice, state_blocks,
                        with_spread_between_torsions)
@@ -74,8 +74,8 @@ def resolve_temperature(temperature_k, summary=None, log=None, notices=None):
         if log is not None:
             log(f"using the temperature recorded by track: {float(recorded):g} K")
         return check_temperature(recorded)
-    raise DihedraError("a temperature is required: give temperature_k (--temperature K on the command line); "
-                       "this result records none (track with temperature_k, or --temperature K, records one).")
+    raise DihedraError("a temperature is required: give --temperature K (temperature_k in Python); "
+                       "this result records none (track --temperature K, or temperature_k in Python, records one).")
 
 
 #: A temperature asked for that differs from the recorded one by more than this (K) is pointed out.
@@ -114,7 +114,8 @@ _CAUTIONS = [
     "F = -kT ln p is a potential of mean force along one torsion: it includes the effect of the "
     "environment and of every other degree of freedom, averaged over them.",
     "Bins with sampled = False were never visited; their free energy is unknown, not zero or infinite.",
-    "Errors come from a block bootstrap over 16 blocks per replica; with few transitions per block "
+    "Errors come from a block bootstrap over 16 blocks per replica, never below the counting error of a "
+    "histogram bin (kT sqrt(1/n - 1/N) for n of N effective samples); with few transitions per block "
     "they underestimate the true uncertainty.",
 ]
 
@@ -226,7 +227,7 @@ def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, ba
     hist = kept_block(blocks, "histograms")   # (narrow counts: summed per type in float64)
     mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
     pooled = _pooled_counts(hist, order, members)
-    hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg)
+    hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg, effective_count_scale(result))
     kprof = [None] * len(order)
     if kernel and order:
         neff = effective_samples(result.populations, result.torsion_set.labels)
@@ -373,7 +374,8 @@ class _Stacks:
     blocks as long as the histogram blocks and ``smult`` theirs (:func:`state_blocks`); ``fine`` the
     fine bin width and ``factor`` the fine bins per histogram bin; ``neff`` the effective samples of
     each torsion (:func:`effective_samples`); ``types`` the type of each torsion (its own scheme
-    when the run used a set of schemes).
+    when the run used a set of schemes); ``count_scale`` the effective samples per histogram count
+    (:func:`effective_count_scale`).
     """
 
     hist: np.ndarray
@@ -389,6 +391,7 @@ class _Stacks:
     neff: np.ndarray
     types: list
     n_blocks: int = 0
+    count_scale: float = 1.0
 
     @classmethod
     def of(cls, result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed):
@@ -401,7 +404,7 @@ class _Stacks:
         return cls(hist=hist, n_blocks=int(hist.shape[0]), mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
                    factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg, scheme=result.scheme,
                    neff=effective_samples(result.populations, result.torsion_set.labels),
-                   types=list(result.torsion_set.types))
+                   types=list(result.torsion_set.types), count_scale=effective_count_scale(result))
 
 
 def _type_stack(s, order, members):
@@ -409,7 +412,7 @@ def _type_stack(s, order, members):
     pooled = _pooled_counts(s.hist, order, members)
     bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), [s.scheme.for_type(t) for t in order],
                       [s.neff[members[t]].sum() for t in order], s.fine)
-    hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg)
+    hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale)
     kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine)
     rows = _stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack,
                          (bws, kstack.samples, kstack.density_per_deg, kstack.free_energy_kj_mol,
@@ -425,7 +428,7 @@ def _torsion_stack(span, s, codes):
     sub = np.asarray(s.hist[:, start:stop, :], dtype=float)
     bws = _bandwidths(s.bandwidth_deg, sub.sum(axis=0), [s.scheme.for_type(t) for t in s.types[start:stop]],
                       s.neff[start:stop], s.fine)
-    hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg)
+    hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale)
     rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
                          _kernel_columns(sub, s.mult, s.kt, bws, s.fine),
                          _state_free_energy_stack(s.state_counts[:, start:stop, :], s.kt, s.smult), s.kt)
@@ -559,7 +562,13 @@ def _settings(s, temperature_k, n_bootstrap, seed, names, bandwidths):
                            "0.9 * within-arc standard deviation * n_effective^(-1/5), at least the fine bin"),
         "bandwidths_deg": [{"type": typ, "torsion": tor, "bandwidth_deg": float(bw)}
                            for (tor, typ), bw in zip(names, bandwidths)],
+        "error_floor": "kT sqrt(1/n - 1/N): a histogram bin's error is at least that of counting n effective "
+                       "samples of N",
+        "effective_samples_per_count": float(s.count_scale),
         "minimum_depth_rule": f"max({MIN_DEPTH_KT} kT, {MIN_DEPTH_SIGMA} combined standard errors)",
+        "extremum_refinement": "least-squares cubic through the five bins around the extreme bin (vertex within "
+                               "one bin, not beyond the bin's own value), else the three-point parabola, "
+                               "else the bin",
         "state_free_energy_reference": "most populated state",
         "scheme": s.scheme.name,
     }

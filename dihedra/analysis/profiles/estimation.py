@@ -25,7 +25,11 @@ Errors: a block bootstrap. The trajectory pass cuts each replica into 16 equal, 
 blocks of frames; a bootstrap resample draws blocks with replacement *within each replica*
 (blocks are long, so the autocorrelation inside them is kept, and replicas are never mixed).
 ``free_energy_err_kj_mol`` is the standard deviation over resamples of -kT ln p (the normalised
-density; the free-energy origin carries no error) over the resamples in which the bin is sampled.
+density; the free-energy origin carries no error) over the resamples in which the bin is sampled,
+and never less than the counting floor of the histogram bin, kT sqrt(1/n - 1/N) for n effective
+samples in the bin of N (:func:`~dihedra.numerics.density.counting_error_floor`; a weighted
+run's effective samples from :func:`effective_count_scale`): a bin with a few samples leaves most
+blocks empty, and the bootstrap spread of such a bin collapses.
 
 Every estimate works on a *stack* of torsions or types at once (one array operation over the
 stack: the block bootstrap as one matrix product, free energies and their spread, kernel smoothing
@@ -47,8 +51,9 @@ from ...errors import DihedraError
 from ...numerics.density import (KERNEL_FLOOR, Profile1D, _circular_deviation_deg, _circular_reach,  # noqa: F401
                                  _histogram_stack, _kernel_setup, _kernel_stack, _resampled_free_energy,
                                  _row_min, _spread_last, _unstack, _von_mises_transform, bin_centres,
-                                 bootstrap_multiplicities, bootstrap_spread, default_bandwidths_deg, effective_samples,
-                                 free_energy_from_counts, rebin, von_mises_smooth)
+                                 bootstrap_multiplicities, bootstrap_spread, counting_error_floor,
+                                 default_bandwidths_deg, effective_samples, free_energy_from_counts, rebin,
+                                 von_mises_smooth)
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
 DEFAULT_BIN_WIDTH_DEG = 5.0
@@ -98,13 +103,42 @@ def check_estimate_options(n_bootstrap, bandwidth_deg=None):
 
 
 
+def effective_count_scale(result):
+    """Effective samples per unit of histogram count, for the counting floor of the bin errors
+    (:func:`~dihedra.numerics.density.counting_error_floor`).
+
+    1 for an unweighted run (a count is a frame). The histograms of a weighted run hold sums of
+    weights, in whatever unit the weights have: Kish's effective sample size (sum w)^2 / sum w^2
+    (Kish, Survey Sampling, Wiley 1965) per unit of weight, (sum w) / (sum w^2), from the weights
+    of the state time series; a result without it gets frames per unit of weight instead (the
+    spread of the weights then not counted: an upper estimate of the effective samples). Both
+    take the weights of a bin to spread like those of the whole run.
+    """
+    blocks = result.blocks
+    frames = np.asarray(blocks.get("hist_block_frames", ()), dtype=float)
+    weights = np.asarray(blocks.get("hist_block_weights", ()), dtype=float)
+    if frames.shape != weights.shape or not len(frames) or np.array_equal(frames, weights):
+        return 1.0
+    if result.has_series("states"):
+        total = total_sq = 0.0
+        for chunk in result.iter_chunks("states", columns=[]):
+            if chunk.weight is None:
+                return 1.0
+            w = np.asarray(chunk.weight, dtype=float)
+            total += float(w.sum())
+            total_sq += float(np.dot(w, w))
+        if total_sq > 0:
+            return total / total_sq
+    return float(frames.sum() / weights.sum()) if weights.sum() > 0 else 1.0
+
+
 # ----------------------------------------------------------------------------------------------
 # Density estimates
 # ----------------------------------------------------------------------------------------------
 
-def _profiles_from_blocks(block_counts, mult, kt, width):
+def _profiles_from_blocks(block_counts, mult, kt, width, count_scale=1.0):
     """Histogram profiles for a stack: block_counts (n_blocks, m, n_bins) -> list of Profile1D."""
-    return _unstack(_histogram_stack(block_counts, mult, kt, width))
+    return _unstack(_histogram_stack(block_counts, mult, kt, width, count_scale))
 
 
 def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width):

@@ -8,8 +8,9 @@ energies.
 * **minima** -- local minima (periodic; unsampled bins count as infinitely high) whose depth
   below the lower of their two flanking barriers is at least max(0.5 kT, 3 sigma), sigma the
   combined error of minimum and barrier; shallower dips are merged into their neighbours.
-  Positions and values are refined with a least-squares parabola through the five bins around
-  the extreme bin (a three-point parabola where that fails).
+  Positions and values are refined with a least-squares cubic through the five bins around
+  the extreme bin (a three-point parabola where that fails; a refined minimum never lies above
+  the bin it refines).
 * **barriers** -- the highest point between each pair of neighbouring minima, with its free energy
   above the global minimum and its height above each of the two minima. A barrier whose region
   holds unsampled bins is reported with ``sampled = False`` and no height (it is higher than any
@@ -19,9 +20,9 @@ energies.
   same length as the histogram blocks).
 
 The errors of minima, barriers and state free energies come from the same block-bootstrap
-resamples as the profiles (:mod:`.estimation`). Stacks of profiles are handled at once: minima by
-vectorised candidate pruning with a range-maximum table (:class:`_RangeMax`), extrema of every
-resample by gathering all arcs of similar length at once (:func:`_window_extremum`).
+resamples as the profiles (:mod:`.estimation`); those of minima and barriers are never less than
+the counting floors of the bins they come from. Stacks of profiles are handled at once (see
+:mod:`dihedra.numerics.extrema`).
 """
 
 from __future__ import annotations
@@ -55,7 +56,9 @@ def profile_features(profile, kt):
                       sampled=np.atleast_2d(profile.sampled),
                       boot_free_energy=np.where(np.isfinite(profile.boot_free_energy), profile.boot_free_energy,
                                                 np.inf).T[None],
-                      boot_valid_fraction=np.atleast_2d(profile.boot_valid_fraction))
+                      boot_valid_fraction=np.atleast_2d(profile.boot_valid_fraction),
+                      err_floor_kj_mol=(None if getattr(profile, "err_floor_kj_mol", None) is None
+                                        else np.atleast_2d(profile.err_floor_kj_mol)))
     minima, barriers = _features_stack(stack, kt)
     return ([{f: _scalar(minima[f][k]) for f in MINIMUM_FIELDS} for k in range(len(minima["row"]))],
             [{f: _scalar(barriers[f][k]) for f in BARRIER_FIELDS} for k in range(len(barriers["row"]))])

@@ -17,7 +17,8 @@ from ...errors import DihedraError
 from ...trajectory.result import as_result
 from ...units import kt_kj_mol
 from .estimation import (DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED, bin_centres,
-                         bootstrap_multiplicities, bootstrap_spread, check_bin_width, free_energy_from_counts)
+                         bootstrap_multiplicities, bootstrap_spread, check_bin_width, counting_error_floor,
+                         effective_count_scale, free_energy_from_counts)
 
 
 def _resolve_pairs(result, a, b):
@@ -68,7 +69,8 @@ def pair_profiles(result, a, b, *, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN
 
     ``a`` and ``b`` are two torsion labels, or two torsion types (then every group with one
     torsion of each type contributes, pooled). Errors by the same block bootstrap as 1-D profiles,
-    with the frames of each replica cut into the same number of blocks as the histograms.
+    with the frames of each replica cut into the same number of blocks as the histograms, and never
+    below the counting floor of the bin (:func:`~dihedra.numerics.density.counting_error_floor`).
 
     Parameters
     ----------
@@ -106,6 +108,7 @@ def pair_profiles(result, a, b, *, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN
     density, free = free_energy_from_counts(counts, bin_width_deg ** 2, kt)
     _, bfree = free_energy_from_counts(mult @ hist, bin_width_deg ** 2, kt)
     err, _ = bootstrap_spread(bfree)
+    err = np.where(counts > 0, np.fmax(err, counting_error_floor(counts, kt, effective_count_scale(result))), err)
     if np.isfinite(free).any():
         free = free - np.nanmin(free)
     centres = bin_centres(nb)

@@ -20,6 +20,8 @@ Modules
 :mod:`~dihedra.analysis.scans.parameters`
     Scans from torsion parameters in TOML: a cosine (Fourier) series or the Ryckaert-Bellemans
     form (Ryckaert & Bellemans, Faraday Discuss. Chem. Soc. 66 (1978) 95).
+:mod:`~dihedra.analysis.scans.features`
+    Minima (with their predicted basin populations) and barriers of a scan, refined on its curve.
 :mod:`~dihedra.analysis.scans.computed`
     Relaxed scans computed with RDKit's MMFF94 (Halgren, J. Comput. Chem. 17 (1996) 490) or with
     tblite's GFN2-xTB (Bannwarth, Ehlert & Grimme, J. Chem. Theory Comput. 15 (2019) 1652);
@@ -28,15 +30,16 @@ Modules
 
 from .computed import (BOHR_ANGSTROM, XTB_RESTRAINT_KJ_MOL_RAD2, mmff94_scan, molecule_from_topology,
                        parse_torsion_atoms, scan_angles, xtb_scan)
+from .features import REFINE_TOLERANCE_DEG, refine_extremum, scan_features
 from .files import (SCAN_SIGNATURE, angle_unit_from_name, canonical_angle_unit, check_scan_output,
                     energy_unit_from_name, read_scan, read_scan_csv, write_scan_csv)
 from .parameters import cosine_series_kj_mol, read_parameter_toml, ryckaert_bellemans_kj_mol, scan_from_parameters
 from .scan import MAX_GAP_DEG, MIN_POINTS, SCAN_KINDS, TorsionScan, scan_from_points
 
 __all__ = [
-    "BOHR_ANGSTROM", "MAX_GAP_DEG", "MIN_POINTS", "SCAN_KINDS", "SCAN_SIGNATURE", "XTB_RESTRAINT_KJ_MOL_RAD2",
-    "TorsionScan", "angle_unit_from_name", "canonical_angle_unit", "check_scan_output", "cosine_series_kj_mol",
-    "energy_unit_from_name", "mmff94_scan", "molecule_from_topology", "parse_torsion_atoms", "read_parameter_toml",
-    "read_scan", "read_scan_csv", "ryckaert_bellemans_kj_mol", "scan_angles", "scan_from_parameters",
-    "scan_from_points", "write_scan_csv", "xtb_scan",
+    "BOHR_ANGSTROM", "MAX_GAP_DEG", "MIN_POINTS", "REFINE_TOLERANCE_DEG", "SCAN_KINDS", "SCAN_SIGNATURE",
+    "XTB_RESTRAINT_KJ_MOL_RAD2", "TorsionScan", "angle_unit_from_name", "canonical_angle_unit", "check_scan_output",
+    "cosine_series_kj_mol", "energy_unit_from_name", "mmff94_scan", "molecule_from_topology", "parse_torsion_atoms",
+    "read_parameter_toml", "read_scan", "read_scan_csv", "refine_extremum", "ryckaert_bellemans_kj_mol",
+    "scan_angles", "scan_features", "scan_from_parameters", "scan_from_points", "write_scan_csv", "xtb_scan",
 ]
