@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 
 from ...errors import DihedraError
+from ...io.outputs import file_set
 from ...io.tables import write_json, write_table
 from ...trajectory.result import as_result, kept_block
 from ...units import canonical_energy_unit, check_temperature, from_kj_mol, kt_kj_mol
@@ -168,16 +169,17 @@ class ProfileSet:
                   ("state_free_energies.csv", self.state_free_energies)]
         if self.profiles_2d is not None:
             tables.append(("profiles_2d.csv", self.profiles_2d))
-        for name, frame in tables:
-            converted = (frame if canonical_energy_unit(energy_unit) == "kJ/mol"  # no copy of 6.5 million rows
-                         else convert_energy_columns(frame, energy_unit, self.temperature_k))
-            paths.append(write_table(converted, folder, name))
-        info = dict(self.settings)
-        info["energy_unit"] = canonical_energy_unit(energy_unit)
-        info["files"] = [os.path.basename(p) for p in paths]
-        info["notices"] = list(self.notices)
-        info["cautions"] = list(_CAUTIONS)
-        paths.append(write_json(info, folder, "profiles.json"))
+        with file_set(folder):   # (in place together: an interruption leaves the earlier set whole)
+            for name, frame in tables:
+                converted = (frame if canonical_energy_unit(energy_unit) == "kJ/mol"  # no copy of 6.5 million rows
+                             else convert_energy_columns(frame, energy_unit, self.temperature_k))
+                paths.append(write_table(converted, folder, name))
+            info = dict(self.settings)
+            info["energy_unit"] = canonical_energy_unit(energy_unit)
+            info["files"] = [os.path.basename(p) for p in paths]
+            info["notices"] = list(self.notices)
+            info["cautions"] = list(_CAUTIONS)
+            paths.append(write_json(info, folder, "profiles.json"))
         return paths
 
 
