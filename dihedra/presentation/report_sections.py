@@ -203,8 +203,8 @@ def _profiles(page, figs):
 
 
 def _barrier_table(barriers, unit, suffix):
-    barriers["between minima (deg)"] = [f"{_fmt(a)} → {_fmt(b)}" for a, b in
-                                        zip(barriers["from_minimum_deg"], barriers["to_minimum_deg"])]
+    barriers["between minima (deg)"] = [f"{_fmt(a)} → {_fmt(b)}" if a != b else f"{_fmt(a)}, around the circle"
+                                        for a, b in zip(barriers["from_minimum_deg"], barriers["to_minimum_deg"])]
     barriers["top (deg)"] = [_pm(a, e) for a, e in zip(barriers["angle_deg"], barriers["angle_err_deg"])]
     barriers[f"F ({unit})"] = _pm_columns(barriers, f"free_energy_{suffix}", f"free_energy_err_{suffix}")
     barriers["height from first"] = _pm_columns(barriers, f"height_from_first_{suffix}",
