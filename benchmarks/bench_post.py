@@ -69,7 +69,7 @@ def post_processing(data, top, xtc, n_torsions, samples_list=(1e7, 1e8), core=Fa
         log(f"\n{shape['samples']:.3g} state samples ({shape['replicas']} replica(s) x {shape['frames_per_replica']} "
             f"frames x {n_torsions} torsions; track took {shape['track_wall_s']:.0f} s):")
         row = dict(shape)
-        commands = [("profile", ["profile", folder, "--temperature", "298.15"]),
+        commands = [("profile", ["profile", folder, "--temperature", "298.15", "--per-torsion"]),
                     ("kinetics crisp", ["kinetics", folder, "--assignment", "crisp"])]
         if core:
             commands.append(("kinetics core", ["kinetics", folder]))

@@ -345,6 +345,14 @@ def test_profile_command(rb_synthetic, capsys, monkeypatch):
     monkeypatch.setattr(command, "LARGE_TABLE_BYTES", 1000)
     assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--overwrite"]) == 0
     assert "--types-only writes the types' alone" in capsys.readouterr().err
+    # above the torsion limit the default is the types alone, said; --per-torsion profiles them all
+    monkeypatch.setattr(command, "PER_TORSION_LIMIT", 1)
+    table = os.path.join(rb_synthetic.folder, "profiles.csv")
+    assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--overwrite"]) == 0
+    assert "--per-torsion writes them" in capsys.readouterr().err
+    assert pd.read_csv(table)["torsion"].isna().all()
+    assert main(["profile", rb_synthetic.folder, "--temperature", "298.15", "--overwrite", "--per-torsion"]) == 0
+    assert set(pd.read_csv(table)["torsion"].dropna()) == set(rb_synthetic.torsion_set.labels)
 
 
 def test_one_minimum_has_one_barrier_around_the_circle(tmp_path, capsys):

@@ -37,8 +37,12 @@ def register(sub):
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
                    help=f"block-bootstrap resamples for the errors (default {DEFAULT_BOOTSTRAP})")
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="N", help="seed of the bootstrap")
-    p.add_argument("--types-only", action="store_true",
-                   help="profile only the types (pooled), not every torsion (faster for large systems)")
+    which = p.add_mutually_exclusive_group()
+    which.add_argument("--types-only", action="store_true",
+                       help="profile only the types (pooled), not every torsion (faster for large systems)")
+    which.add_argument("--per-torsion", action="store_true",
+                       help=f"profile every torsion as well as the types, however many (without either option: "
+                            f"every torsion up to {PER_TORSION_LIMIT:,} torsions, the types alone above)")
     add_overwrite_option(p, "profile files (profiles.csv ... profiles.json)")
     p.set_defaults(func=run)
 
@@ -54,22 +58,31 @@ def run(args):
     check_estimate_options(args.bootstrap, args.bandwidth)   # before any work or note
     result = load_results(args.folder)
     check_earlier_outputs(result.folder, "dihedra profile", args.overwrite, names=OUTPUTS)
+    n = len(result.torsion_set)
+    per_torsion = args.per_torsion or (not args.types_only and n <= PER_TORSION_LIMIT)
+    if not (per_torsion or args.types_only):
+        say(f"note: profiles of the types only: {n:,} torsions are more than {PER_TORSION_LIMIT:,} (every torsion's "
+            f"profile would add about {n * 40 / 1000:.0f} MB to profiles.csv and slow figures and report); "
+            "--per-torsion writes them.")
     pset = free_energy_profiles(result, temperature_k=args.temperature, bin_width_deg=args.bin_width,
                                 bandwidth_deg=args.bandwidth, n_bootstrap=args.bootstrap, seed=args.seed,
-                                per_torsion=not args.types_only, pairs=args.pair,
+                                per_torsion=per_torsion, pairs=args.pair,
                                 pair_bin_width_deg=args.pair_bin_width, log=say)
     paths = pset.save(result.folder, unit)
     report_profiles(pset, unit)
     print_notices(pset.notices)
     print("written: " + ", ".join(p.rsplit("/", 1)[-1] for p in paths) + f" in {result.folder}")
     csv = os.path.join(result.folder, "profiles.csv")
-    if not args.types_only and os.path.exists(csv) and os.path.getsize(csv) > LARGE_TABLE_BYTES:
+    if per_torsion and os.path.exists(csv) and os.path.getsize(csv) > LARGE_TABLE_BYTES:
         say(f"note: profiles.csv holds every torsion's profile ({os.path.getsize(csv) / 1e6:.0f} MB for "
-            f"{len(result.torsion_set)} torsions); --types-only writes the types' alone.")
+            f"{n} torsions); --types-only writes the types' alone.")
 
 
 #: Above this size of profiles.csv, ``profile`` points at --types-only.
 LARGE_TABLE_BYTES = 100_000_000
+#: Without --per-torsion or --types-only, every torsion is profiled up to this many torsions (about
+#: 40 kB of profiles.csv each: 80 MB at the limit), the types alone above.
+PER_TORSION_LIMIT = 2000
 
 
 def report_profiles(pset, unit, max_types=20):
