@@ -366,3 +366,17 @@ def test_a_file_set_is_replaced_whole_or_not_at_all(tmp_path):
             write_text(folder, name, "new\n")
     assert [(folder / n).read_text() for n in ("a.csv", "b.csv", "c.json", "d.csv")] == ["new\n"] * 4
     assert "d.csv" in read_marker(folder)["files"]
+
+
+def test_files_an_earlier_run_wrote_and_a_user_deleted_are_not_in_the_way(tmp_path):
+    from dihedra.io.outputs import check_earlier_outputs
+
+    folder = tmp_path / "res"
+    folder.mkdir()
+    for name in ("comparison.csv", "comparison.json"):
+        write_text(folder, name, "x\n")
+    with pytest.raises(OutputExistsError, match="comparison.csv, comparison.json"):
+        check_earlier_outputs(folder, "dihedra compare", names=("comparison.csv", "comparison.json"))
+    for name in ("comparison.csv", "comparison.json"):
+        os.remove(folder / name)
+    assert check_earlier_outputs(folder, "dihedra compare", names=("comparison.csv", "comparison.json")) == []

@@ -168,11 +168,12 @@ def _plain_relative(rel, folder):
 
 
 def earlier_outputs(folder, names=(), prefixes=()):
-    """The files of an analysis that an earlier run wrote into ``folder`` (listed in its marker):
-    those named ``names`` or starting with one of ``prefixes``, sorted."""
+    """The files of an analysis that an earlier run wrote into ``folder`` (listed in its marker,
+    and still there): those named ``names`` or starting with one of ``prefixes``, sorted."""
     marker = read_marker(folder)
     listed = marker["files"] if marker else []
-    return sorted(f for f in listed if f in set(names) or any(f.startswith(p) for p in prefixes))
+    return sorted(f for f in listed if (f in set(names) or any(f.startswith(p) for p in prefixes))
+                  and os.path.lexists(os.path.join(os.fspath(folder), *f.split("/"))))
 
 
 def check_earlier_outputs(folder, command, overwrite=False, names=(), prefixes=(), option="--overwrite"):
