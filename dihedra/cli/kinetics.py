@@ -44,6 +44,7 @@ def register(sub):
                    help=f"bootstrap resamples for the 95 %% intervals of the dwell times (default "
                         f"{DEFAULT_BOOTSTRAP}: percentile intervals need more resamples than the standard errors of "
                         "the other commands, 200; Efron & Tibshirani 1993; 0: no intervals)")
+    p.add_argument("--seed", type=int, default=0, metavar="N", help="seed of the bootstrap (default 0)")
     p.add_argument("--torsion-bootstrap", action="store_true",
                    help="bootstrap the dwell-time intervals of every single torsion too (slow for thousands of "
                         "torsions; by default single torsions use the Kaplan-Meier variance of the mean, types "
@@ -66,7 +67,7 @@ def run(args):
                          temperature_k=args.temperature,
                          barriers=read_optional_table(args.folder, "barriers.csv"),
                          profile_temperature_k=_profile_temperature(profiles),
-                         n_bootstrap=args.bootstrap, log=say, torsion_bootstrap=args.torsion_bootstrap)
+                         n_bootstrap=args.bootstrap, seed=args.seed, log=say, torsion_bootstrap=args.torsion_bootstrap)
     written = res.save(result.folder)
     report_kinetics(res, result.folder, written)
 
