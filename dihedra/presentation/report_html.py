@@ -49,6 +49,7 @@ td.hash { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.78r
 span.sha { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.85em; color: var(--muted); }
 p.inline-list { font-size: 0.85rem; line-height: 1.5; }
 p.inline-list span, span.label { white-space: nowrap; }
+p.inline-list span.long { white-space: normal; overflow-wrap: anywhere; }
 a.csv { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 0.85em; }
 tr:nth-child(even) td { background: #FAFBFC; }
 .kv th { width: 16rem; }
@@ -166,8 +167,12 @@ def _table(frame, columns=None, headers=None, max_rows=None, what="rows", raw=()
 
 
 def _inline_list(items):
-    """Short entries as a flowing paragraph (each entry kept on one line)."""
-    return "<p class='inline-list'>" + " · ".join(f"<span>{i}</span>" for i in items) + "</p>"
+    """Entries as a flowing paragraph: a short one kept on one line, a long one (more than 60
+    characters of text) wrapped within the page."""
+    def span(item):
+        text = re.sub(r"<[^>]*>", "", str(item))
+        return f"<span class='long'>{item}</span>" if len(text) > 60 else f"<span>{item}</span>"
+    return "<p class='inline-list'>" + " · ".join(span(i) for i in items) + "</p>"
 
 
 def _pooled(table):
