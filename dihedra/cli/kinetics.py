@@ -9,6 +9,7 @@ from ..analysis.kinetics import (ASSIGNMENTS, DEFAULT_BOOTSTRAP, DEFAULT_CORE_MA
 from ..io.resultsdir import load_results
 from ..io.tables import read_optional_json, read_optional_table
 from ..io.outputs import check_earlier_outputs
+from ..presentation.rounding import format_upper_limit, format_value_error
 from .common import _Renamed, add_overwrite_option, add_renamed, add_types_option, print_notices, say
 
 
@@ -125,8 +126,8 @@ def report_kinetics(res, folder=None, written=(), max_types=6, max_conformer_row
             eyring = "  Eyring barrier kJ/mol" if temp is not None else ""
             print(f"  {'transition':<{2 * width + 4}}  {'count':>7}  rate per ns{eyring}")
             for r in shown.itertuples(index=False):
-                rate = f"{r.rate_per_ps * 1e3:.3g} ± {r.rate_err_per_ps * 1e3:.2g}" if r.count else \
-                    f"< {r.rate_ci_high_per_ps * 1e3:.2g} (95 %)"
+                rate = format_value_error(r.rate_per_ps * 1e3, r.rate_err_per_ps * 1e3) if r.count else \
+                    format_upper_limit(r.rate_ci_high_per_ps * 1e3)
                 bar = f"  {r.eyring_barrier_kj_mol:6.1f}" if temp is not None and np.isfinite(r.eyring_barrier_kj_mol) else ""
                 if np.isfinite(r.profile_barrier_kj_mol):
                     bar += f" (profile {r.profile_barrier_kj_mol:.1f})"
