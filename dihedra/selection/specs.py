@@ -52,7 +52,7 @@ def _check_indices(universe, indices, where="torsion"):
 def torsions_from_indices(universe, spec):
     """The ``A,B,C,D`` specification."""
     indices = [int(x) for x in spec.split(",")]
-    indices = _check_indices(universe, indices, where=f"--torsions {spec}")
+    indices = _check_indices(universe, indices, where=f"torsions {spec!r}")
     return TorsionSet([torsion_from_atoms(universe, indices)])
 
 
@@ -164,7 +164,7 @@ def select_torsions(universe, specs, *, keep_variants=False):
         try:
             part = _select_one(universe, spec, keep_variants)
         except NoDataError as exc:   # a topology without names, residues or bonds
-            raise SelectionError(f"--torsions {spec}: the topology lacks what this needs ({exc}); give a topology "
+            raise SelectionError(f"torsions {spec!r}: the topology lacks what this needs ({exc}); give a topology "
                                  "with atom names and bonds (PDB with CONECT, PSF, TPR, PRMTOP, ...).") from None
         if _INDEX_SPEC.match(spec) or spec.lower().endswith(".toml"):   # (the others follow bonds)
             part.notices.extend(_unbonded_notice(universe, part.torsions, spec))
@@ -191,7 +191,7 @@ def _unbonded_notice(universe, torsions, spec):
     if not loose.any():
         return []
     first = torsions[int(np.argmax(loose))]
-    return [f"--torsions {spec}: {int(loose.sum())} torsion(s) are not a chain of bonded atoms A-B-C-D in the "
+    return [f"torsions {spec!r}: {int(loose.sum())} torsion(s) are not a chain of bonded atoms A-B-C-D in the "
             f"topology (e.g. {first.label}, atoms {' '.join(map(str, first.indices))}): they are measured as "
             "given (an improper torsion, or atoms of different molecules, measure something else than a "
             "rotation about a bond); check the atoms and their order."]
