@@ -431,6 +431,79 @@ def test_the_openmm_fragment_loads_and_adds_the_correction(profile_fit, tmp_path
         del ctx
 
 
+HEXANE_CLASSES = {"C1": "CH3", "C2": "CH2", "C3": "CH2", "C4": "CH2", "C5": "CH2", "C6": "CH3"}
+
+
+def hexane_forcefield(tmp_path):
+    """A united-atom n-hexane force field file for OpenMM: atom classes only (no torsion terms)."""
+    atoms = "".join(f'<Atom name="{name}" type="{cls}"/>' for name, cls in HEXANE_CLASSES.items())
+    bonds = "".join(f'<Bond atomName1="C{i}" atomName2="C{i + 1}"/>' for i in range(1, 6))
+    path = tmp_path / "hexane_ua.xml"
+    path.write_text(BASE_FORCEFIELD.split("<Residues>")[0] + f'<Residues><Residue name="HEX">{atoms}{bonds}'
+                    "</Residue></Residues></ForceField>")
+    return str(path)
+
+
+def test_types_that_are_one_force_field_term_are_fitted_as_one_and_openmm_applies_the_fit(hexane, tmp_path):
+    # hexane's end torsions C1-C2-C3-C4 and C3-C4-C5-C6 are CH3-CH2-CH2-CH2 forwards and reversed: OpenMM
+    # matches both with the first <Proper> of that pattern (openmm.app.ForceField), so one correction
+    # can reach them. The fit ties them, and OpenMM's own energy of the fragment (a system built by
+    # ForceField from it) equals the sum of the fitted terms over the three torsions.
+    openmm = pytest.importorskip("openmm")
+    types = ["HEX:C1-C2-C3-C4", "HEX:C2-C3-C4-C5", "HEX:C3-C4-C5-C6"]
+    goal = {t: ([0.62, 0.19, 0.19] if t == types[1] else [0.66, 0.17, 0.17]) for t in types}
+    path = tmp_path / "hexane_target.csv"
+    pd.DataFrame([{"type": t, "state": s, "population": p, "population_err": 0.005}
+                  for t in types for s, p in zip(["anti", "gauche+", "gauche-"], goal[t])]).to_csv(path, index=False)
+    fit = fit_torsion_correction(hexane, str(path), types=types, atom_classes=HEXANE_CLASSES, n_bootstrap=5)
+    assert fit.parameters["tied_types"] == [[types[0], types[2]]]
+    assert any(n.startswith(f"{types[0]} and {types[2]} are one force-field term") for n in fit.notices)
+    cols = ["n", "cos_kj_mol", "sin_kj_mol"]
+    ends = [fit.terms[fit.terms["type"] == t][cols].to_numpy() for t in (types[0], types[2])]
+    assert np.array_equal(*ends)
+    assert fit.openmm_xml.count("<Proper ") == 2
+    fragment = tmp_path / "refit_openmm.xml"
+    fragment.write_text(fit.openmm_xml)
+    script = load_script()
+    from openmm.app import ForceField
+
+    system = ForceField(hexane_forcefield(tmp_path), str(fragment)).createSystem(script.me.build_topology(1, 6, "HEX",
+                                                                                                          3.0))
+    terms = {t: [(int(r.n), r.k_kj_mol, r.phase_deg) for r in fit.terms[fit.terms["type"] == t].itertuples()]
+             for t in types}
+    ctx = openmm.Context(system, openmm.VerletIntegrator(0.001), openmm.Platform.getPlatformByName("Reference"))
+    for phis in ([180.0, 180.0, 180.0], [60.0, 180.0, -60.0], [-70.0, 65.0, 150.0], [120.0, -100.0, 30.0]):
+        ctx.setPositions(script.me.chain_coordinates(6, 0.154, 114.0, phis))
+        energy = ctx.getState(getEnergy=True).getPotentialEnergy()._value
+        assert energy == pytest.approx(sum(float(periodic(phi, terms[t])) for phi, t in zip(phis, types)), abs=1e-6)
+    if fit.ryckaert_bellemans is not None:   # its sine terms dropped: the output says which file has which
+        note = next(n for n in fit.notices if "refit_ryckaert_bellemans.csv" in n)
+        assert "refit_openmm.xml" in note and "sine terms included" in fit.openmm_xml
+
+
+def test_an_openmm_fragment_that_would_drop_a_correction_is_refused():
+    # two types with different terms on one pattern of atom classes (reversed): OpenMM would apply one
+    terms = pd.DataFrame({"type": ["A", "B"], "n": 1, "k_kj_mol": [1.0, 2.0], "phase_deg": 0.0,
+                          "cos_kj_mol": [1.0, 2.0], "sin_kj_mol": 0.0})
+    atoms = {"A": ("HEX", ["C1", "C2", "C3", "C4"]), "B": ("HEX", ["C3", "C4", "C5", "C6"])}
+    with pytest.raises(DihedraError, match="types A and B map onto the same atom classes.*fit them as one term"):
+        openmm_xml(terms, atoms, atom_classes=HEXANE_CLASSES)
+    same = terms.assign(k_kj_mol=1.0, cos_kj_mol=1.0)   # the same terms (a tied fit): one entry for both
+    assert openmm_xml(same, atoms, atom_classes=HEXANE_CLASSES).count("<Proper ") == 1
+    assert openmm_xml(terms, atoms).count("<Proper ") == 2   # atom names stand in: nothing coincides
+
+
+def test_the_terms_belong_to_their_types_in_any_order_of_types(hexane, tmp_path):
+    types = ["HEX:C1-C2-C3-C4", "HEX:C2-C3-C4-C5", "HEX:C3-C4-C5-C6"]
+    path = tmp_path / "inner.csv"
+    pd.DataFrame({"type": types[1], "state": ["anti", "gauche+", "gauche-"], "population": [0.6, 0.2, 0.2],
+                  "population_err": 0.01}).to_csv(path, index=False)
+    fits = [fit_torsion_correction(hexane, str(path), types=order, regularisation=0.01, n_bootstrap=2)
+            for order in (types, [types[1], types[0], types[2]])]
+    one, other = (f.terms.set_index(["type", "n"]).sort_index()["k_kj_mol"] for f in fits)
+    assert np.allclose(one, other, rtol=1e-6)
+
+
 def test_saved_files_have_units_in_their_columns(profile_fit, tmp_path):
     paths = profile_fit.save(str(tmp_path))
     names = {os.path.basename(p) for p in paths}

@@ -19,7 +19,8 @@ def register(sub):
                     "couplings (torsion, J_hz, J_err_hz, with --relation); the kind is told from the columns. Ridge "
                     "regularisation chosen by cross-validation over contiguous pieces of the trajectory, bootstrap "
                     "errors (the run's blocks resampled and the target drawn from its own errors), Kish's effective "
-                    "sample fraction (below --min-effective-fraction the fit is reported as not trustworthy). Writes refit_terms.csv, refit_fourier.csv, refit_correction.csv, "
+                    "sample fraction (below --min-effective-fraction the fit is reported as not trustworthy). "
+                    "Writes refit_terms.csv, refit_fourier.csv, refit_correction.csv, "
                     "refit_populations.csv, refit_profiles.csv, refit_summary.csv, refit_cross_validation.csv, "
                     "refit_ryckaert_bellemans.csv (where that form exists), refit_openmm.xml and refit.json into DIR. "
                     "Method: Cesari et al., J. Chem. Theory Comput. 15 (2019) 3425; Pitera & Chodera, J. Chem. "
@@ -101,13 +102,17 @@ def report(fit):
     p = fit.parameters
     print(f"torsion correction fitted to a {p['target_kind']} target at {p['temperature_k']:g} K "
           f"(weights per {s['weights_per']}, {int(s['n_samples'])} samples):")
+    tied = {name: group for group in p.get("tied_types", []) for name in group}
     for name, sub in fit.terms.groupby("type", sort=False):
-        print(f"  {name}: dV(phi) = sum k_n [1 + cos(n phi - phase_n)]")
+        shared = [t for t in tied.get(name, []) if t != name]
+        also = f"   (one force-field term with {', '.join(shared)}: the same coefficients)" if shared else ""
+        print(f"  {name}: dV(phi) = sum k_n [1 + cos(n phi - phase_n)]{also}")
         for row in sub.itertuples(index=False):
             print(f"    n = {row.n}   k = {format_pm(row.k_kj_mol, row.k_err_kj_mol, 3):>17} kJ/mol   "
                   f"phase = {format_pm(row.phase_deg, row.phase_err_deg, 1):>15} deg")
     verdict = "trustworthy" if s["trustworthy"] else "NOT TRUSTWORTHY (a new simulation with this correction is needed)"
-    print(f"effective sample fraction (Kish) {format_pm(s['effective_sample_fraction'], s['effective_sample_fraction_err'])}"
+    fraction = format_pm(s['effective_sample_fraction'], s['effective_sample_fraction_err'])
+    print(f"effective sample fraction (Kish) {fraction}"
           f", largest weight {s['largest_weight_fraction']:.2g} of the total: {verdict}")
     print(f"chi-square per observable {s['chi_square_sampled']:.2f} sampled -> {s['chi_square_reweighted']:.2f} "
           f"reweighted ({int(s['n_fitted_observables'])} fitted observables; {s['effective_parameters']:.1f} of "
@@ -118,5 +123,6 @@ def report(fit):
     print("populations (target / sampled / reweighted):")
     for row in pops.itertuples(index=False):
         target = "-" if row.target_population != row.target_population else f"{row.target_population:.3f}"
-        print(f"  {row.type} {row.state:<12} {target:>7}   {format_pm(row.sampled_population, row.sampled_population_err)}"
+        sampled = format_pm(row.sampled_population, row.sampled_population_err)
+        print(f"  {row.type} {row.state:<12} {target:>7}   {sampled}"
               f"   {format_pm(row.reweighted_population, row.reweighted_population_err)}")

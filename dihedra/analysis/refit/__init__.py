@@ -34,6 +34,7 @@ from .fit import DEFAULT_FOLDS, REGULARISATION_GRID, kish
 from .samples import WEIGHTS_PER
 from .targets import TARGET_KINDS, Target, read_target
 
-__all__ = ["CHI_SQUARE_POOR", "DEFAULT_BIN_WIDTH_DEG", "DEFAULT_BLOCKS", "DEFAULT_BOOTSTRAP", "DEFAULT_FOLDS", "DEFAULT_TERMS",
+__all__ = ["CHI_SQUARE_POOR", "DEFAULT_BIN_WIDTH_DEG", "DEFAULT_BLOCKS", "DEFAULT_BOOTSTRAP", "DEFAULT_FOLDS",
+           "DEFAULT_TERMS",
            "MIN_EFFECTIVE_FRACTION", "MIN_SAMPLES", "REGULARISATION_GRID", "RefitResult", "TARGET_KINDS", "Target",
            "WEIGHTS_PER", "fit_torsion_correction", "kish", "openmm_xml", "read_target", "ryckaert_bellemans"]

@@ -23,7 +23,7 @@ from ...io.tables import json_ready, write_json, write_table
 from ...trajectory.result import as_result
 from ...units import kt_kj_mol
 from ..profiles import bootstrap_multiplicities, resolve_temperature
-from .exports import correction_table, openmm_xml, rb_table, terms_table, torsion_atoms
+from .exports import correction_table, force_field_terms, openmm_xml, rb_table, terms_table, torsion_atoms
 from .fit import (DEFAULT_FOLDS, REGULARISATION_GRID, ReweightingModel, combined_sigmas, cross_validate, features,
                   kish, nan_sd, sampled_errors)
 from .observables import coupling_set, coupling_values, match_label, population_set, profile_set
@@ -156,7 +156,8 @@ def _types_of_target(result, tgt):
         elif name in labels:
             out.append(types[labels.index(name)])
         else:
-            raise DihedraError(f"the target names {name!r}, which is neither a torsion type nor a torsion label of this "
+            raise DihedraError(f"the target names {name!r}, which is neither a torsion type nor a torsion label of "
+                               "this "
                                f"result (types: {', '.join(list(dict.fromkeys(types))[:5])}).")
     if tgt.kind == "profile" and (tgt.table["type"] == "").any():
         known = list(dict.fromkeys(types))
@@ -338,14 +339,16 @@ def _summary_row(model, samples, fit, min_effective_fraction):
             "regularisation": lam, "cv_score": float(chosen["cv_score"].iloc[0]) if len(chosen) else np.nan}
 
 
-def _untargeted(model, populations, type_names, notices):
+def _untargeted(model, populations, type_names, groups, notices):
     """A notice for corrected types without a target: their terms come only from their coupling to
-    the targeted ones, and their populations move with nothing to hold them."""
+    the targeted ones, and their populations move with nothing to hold them (a type tied to a
+    targeted one shares its terms, and is not named)."""
     targeted = set()
     for s in model.sets:
         if s.rows is not None and "type" in s.rows.columns:
             targeted |= set(s.rows.loc[s.fitted, "type"])
-    for name in [t for t in type_names if t not in targeted]:
+    held = {int(g) for t, g in zip(type_names, groups) if t in targeted}
+    for name in [t for t, g in zip(type_names, groups) if t not in targeted and int(g) not in held]:
         rows = populations[populations["type"] == name]
         shift = (rows["reweighted_population"] - rows["sampled_population"]).abs()
         worst = rows.loc[shift.idxmax()]
@@ -417,34 +420,40 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     kt = kt_kj_mol(temperature_k)
     tgt = read_target(target, temperature_k)
     notices = early + list(tgt.notices)
-    type_names = _chosen_types(result, tgt, types)
-    positions = [k for k, t in enumerate(result.torsion_set.types) if t in set(type_names)]
+    chosen = set(_chosen_types(result, tgt, types))
+    positions = [k for k, t in enumerate(result.torsion_set.types) if t in chosen]
     samples = read_samples(result, positions, molecule_ids(result, positions, weights_per, universe, notices),
                            weights_per)
+    type_names = list(samples.type_names)     # the order of the coefficients: the types as the samples hold them
+    atoms = torsion_atoms(result, type_names)
+    groups, tied = force_field_terms(atoms, atom_classes, atom_types)
+    notices.extend(_tied_notice(names, pattern, "types" if atom_types else "classes") for names, pattern in tied)
     say(f"refit: {len(positions)} torsions of {len(type_names)} type(s), {samples.n_samples} samples")
     sets = _observable_sets(samples, result, positions, tgt, relation, kt, float(bin_width_deg), min_samples,
                             universe, notices)
     if not any(s.fitted.any() for s in sets):
         raise DihedraError("no target value lies where the run sampled (see the minimum of torsion-frames per bin or "
                            "state); nothing can be fitted by reweighting.")
-    model = ReweightingModel(features(samples, terms, symmetric), samples.sample_weights(), sets, kt)
+    model = ReweightingModel(features(samples, terms, symmetric, groups), samples.sample_weights(), sets, kt)
     fit = _estimate(model, samples, regularisation, n_folds, n_bootstrap, n_blocks, seed, say)
+    theta, boot_theta = _per_type(fit["theta"], groups), _per_type(fit["boot_theta"], groups)
     summary = _summary_row(model, samples, fit, min_effective_fraction)
-    terms_frame = terms_table(fit["theta"], fit["boot_theta"], type_names, terms, symmetric)
+    terms_frame = terms_table(theta, boot_theta, type_names, terms, symmetric)
     _limits(summary, tgt, model.n_params, notices)
     rb = rb_table(terms_frame, symmetric, notices)
-    xml = openmm_xml(terms_frame, torsion_atoms(result, type_names), atom_classes, atom_types,
-                     _xml_comments(summary, tgt, temperature_k), notices)
-    parameters = {"temperature_k": temperature_k, "types": type_names, "terms": int(terms), "symmetric": bool(symmetric),
+    xml = openmm_xml(terms_frame, atoms, atom_classes, atom_types,
+                     _xml_comments(summary, tgt, temperature_k, rb is not None and not symmetric), notices)
+    parameters = {"temperature_k": temperature_k, "types": type_names, "terms": int(terms),
+                  "symmetric": bool(symmetric),
                   "relation": None if relation is None else str(getattr(relation, "name", relation)),
                   "weights_per": weights_per, "bin_width_deg": float(bin_width_deg), "regularisation": regularisation,
                   "regularisation_grid": list(REGULARISATION_GRID), "n_folds": n_folds, "n_bootstrap": n_bootstrap,
                   "n_blocks": n_blocks, "min_effective_fraction": float(min_effective_fraction),
-                  "min_samples": min_samples, "seed": seed, "target_kind": tgt.kind, "target_file": tgt.source}
+                  "min_samples": min_samples, "seed": seed, "target_kind": tgt.kind, "target_file": tgt.source,
+                  "tied_types": [names for names, _ in tied]}
     tables = _observable_tables(model, fit)
-    _untargeted(model, tables[0], type_names, notices)
-    return RefitResult(terms=terms_frame, correction=correction_table(fit["theta"], fit["boot_theta"], type_names,
-                                                                      terms, symmetric),
+    _untargeted(model, tables[0], type_names, groups, notices)
+    return RefitResult(terms=terms_frame, correction=correction_table(theta, boot_theta, type_names, terms, symmetric),
                        populations=tables[0], profiles=tables[1], couplings=tables[2] if len(tables) > 2 else None,
                        summary=pd.DataFrame([summary]), cross_validation=fit["cv"], ryckaert_bellemans=rb,
                        openmm_xml=xml, notices=notices, parameters=parameters)
@@ -481,12 +490,33 @@ def _observable_tables(model, fit):
             zip(model.sets, fit["sigmas"], fit["sampled_sd"], sampled, reweighted, fit["boot_values"])]
 
 
-def _xml_comments(summary, tgt, temperature_k):
+def _per_type(theta, groups):
+    """Coefficients of the fitted terms (..., n_groups * per) laid out per type (..., n_types * per)."""
+    theta = np.asarray(theta, dtype=float)
+    if theta.shape[-1] == 0 or len(groups) == 0:
+        return theta
+    per = theta.shape[-1] // (int(np.max(groups)) + 1)
+    blocks = theta.reshape(theta.shape[:-1] + (-1, per))
+    return blocks[..., np.asarray(groups), :].reshape(theta.shape[:-1] + (len(groups) * per,))
+
+
+def _tied_notice(names, pattern, whats):
+    return (f"{' and '.join(names)} are one force-field term (atom {whats} {pattern}, forwards or reversed: OpenMM "
+            "matches them with one <Proper>), so they were fitted with shared coefficients and the XML has one entry "
+            f"for them; give atom {whats} that tell them apart to fit them separately.")
+
+
+def _xml_comments(summary, tgt, temperature_k, sine_dropped):
     lines = [f"dihedra refit: torsion correction fitted by reweighting to a {tgt.kind} target"
              + (f" ({os.path.basename(tgt.source)})" if tgt.source else "") + f" at {temperature_k:g} K",
              "add it to the force field (PeriodicTorsionForce: E = k (1 + cos(n theta - phase)), k in kJ/mol, "
-             "phase in radians)",
+             "phase in radians); OpenMM applies the first <Proper> that matches a torsion, so where the force field "
+             "already has a PeriodicTorsionForce <Proper> for these atom classes, add these terms to that entry "
+             "instead",
              f"effective sample fraction {summary['effective_sample_fraction']:.3f}"]
+    if sine_dropped:
+        lines.insert(2, "these are the fitted terms in full, sine terms included; refit_ryckaert_bellemans.csv holds "
+                        "only their cosine part")
     if not summary["trustworthy"]:
         lines.append("NOT TRUSTWORTHY as a result: use it only to start a new simulation with this correction")
     return lines

@@ -137,7 +137,7 @@ def rb_table(terms, symmetric, notices):
         notices.append(f"no Ryckaert-Bellemans form: {n_terms} Fourier terms need cos^{n_terms}, and the form stops "
                        f"at cos^{RB_MAX_TERMS}.")
         return None
-    rows = []
+    rows, gaps = [], {}
     for name, sub in terms.groupby("type", sort=False):
         sub = sub.sort_values("n")
         if not symmetric:
@@ -147,12 +147,17 @@ def rb_table(terms, symmetric, notices):
                 notices.append(f"no Ryckaert-Bellemans form for {name}: its phases are not 0 or 180 deg (sine terms "
                                "beyond their errors); fit with symmetric=True (--symmetric) for a form that has one.")
                 continue
-            notices.append(f"Ryckaert-Bellemans form of {name}: the cosine part; its sine terms are within "
-                           f"{SINE_ZERO_SIGMA:g} standard errors of zero and were dropped.")
+            grid = np.radians(np.arange(-180.0, 180.0, 1.0))[:, None] * sub["n"].to_numpy(float)
+            gaps[name] = float(np.max(np.abs(np.sin(grid) @ sine)))    # the largest sine part dropped
         a = sub["cos_kj_mol"].to_numpy(float)
         c = ryckaert_bellemans(a, constant=float(np.abs(a).sum()))
         rows.extend({"type": name, "power": m, "coefficient_kj_mol": c[m], "angle_convention": "psi = phi - 180 deg"}
                     for m in range(len(c)))
+    if gaps:
+        notices.append(f"the Ryckaert-Bellemans form (refit_ryckaert_bellemans.csv) of {', '.join(gaps)} is the "
+                       f"cosine part of the fit: the sine terms, within {SINE_ZERO_SIGMA:g} standard errors of zero, "
+                       "are dropped there and kept in the periodic terms (refit_terms.csv, refit_fourier.csv, "
+                       f"refit_openmm.xml); the two forms differ by up to {max(gaps.values()):.2g} kJ/mol.")
     return pd.DataFrame(rows) if rows else None
 
 
@@ -171,6 +176,8 @@ def torsion_atoms(result, type_names):
 
 
 def _atom_keys(resname, names, mapping, notices, what):
+    """The atom classes (or types: ``what``) of four atoms; the atom names stand in for those not
+    given (with a notice)."""
     keys, missing = [], []
     for atom in names:
         key = mapping.get(f"{resname}:{atom}", mapping.get(atom)) if mapping else None
@@ -178,10 +185,65 @@ def _atom_keys(resname, names, mapping, notices, what):
             missing.append(atom)
             key = atom
         keys.append(str(key))
-    if missing and mapping is not None:
+    if missing and mapping:
         notices.append(f"no atom {what} given for {resname} atom(s) {', '.join(missing)}: the XML fragment uses the "
                        "atom names there; replace them with your force field's.")
     return keys
+
+
+def _match_key(keys):
+    """The atom classes (or types) of a torsion as OpenMM matches a ``<Proper>``: forwards or reversed
+    (the torsion angle of A-B-C-D is that of D-C-B-A)."""
+    keys = tuple(keys)
+    return min(keys, keys[::-1])
+
+
+def _mapping(atom_classes, atom_types):
+    """``(what, plural, mapping)``: match by atom class or by atom type."""
+    if atom_classes and atom_types:
+        raise DihedraError("give atom classes or atom types for the OpenMM fragment, not both.")
+    return ("type", "types", atom_types) if atom_types else ("class", "classes", atom_classes)
+
+
+def force_field_terms(atoms, atom_classes=None, atom_types=None):
+    """Which torsion types are one force-field term.
+
+    Types whose atom classes (or types) coincide, forwards or reversed, are matched by one
+    ``<Proper>`` in OpenMM (the first that matches), so they can carry only one correction: such
+    types are fitted with shared coefficients. Without atom classes or types every type is a term
+    of its own.
+
+    Parameters
+    ----------
+    atoms : dict
+        type -> (residue name, four atom names), from :func:`torsion_atoms`, in the order of the
+        types fitted.
+    atom_classes, atom_types : dict, optional
+        As in :func:`openmm_xml`.
+
+    Returns
+    -------
+    groups : ndarray of int
+        The term of every type (in the order of ``atoms``).
+    tied : list of (list of str, str)
+        The types that share a term, with their atom classes as written (``CH3-CH2-CH2-CH2``).
+    """
+    what, _, mapping = _mapping(atom_classes, atom_types)
+    names = list(atoms)
+    if not mapping:
+        return np.arange(len(names)), []
+    written = {name: _atom_keys(*atoms[name], mapping, [], what) for name in names}
+    keys = {name: _match_key(written[name]) for name in names}
+    order = list(dict.fromkeys(keys.values()))
+    groups = np.array([order.index(keys[name]) for name in names], dtype=np.int64)
+    members = [[n for n in names if keys[n] == key] for key in order]
+    return groups, [(m, "-".join(written[m[0]])) for m in members if len(m) > 1]
+
+
+def _same_terms(one, other):
+    cols = ["cos_kj_mol", "sin_kj_mol"]
+    a, b = one.sort_values("n")[cols].to_numpy(float), other.sort_values("n")[cols].to_numpy(float)
+    return a.shape == b.shape and np.allclose(a, b, rtol=1e-9, atol=1e-12)
 
 
 def openmm_xml(terms, atoms, atom_classes=None, atom_types=None, comments=(), notices=None):
@@ -203,26 +265,36 @@ def openmm_xml(terms, atoms, atom_classes=None, atom_types=None, comments=(), no
     import xml.etree.ElementTree as ET
 
     notices = [] if notices is None else notices
-    if atom_classes and atom_types:
-        raise DihedraError("give atom classes or atom types for the OpenMM fragment, not both.")
-    what, mapping = ("type", atom_types) if atom_types else ("class", atom_classes)
+    what, whats, mapping = _mapping(atom_classes, atom_types)
     root = ET.Element("ForceField")
     lines = list(comments)
     if not mapping:
-        lines.append(f"The atom {what}es below are the atom names of the torsions: replace them with your force "
-                     f"field's atom {what}es before use.")
+        lines.append(f"The atom {whats} below are the atom names of the torsions: replace them with your force "
+                     f"field's atom {whats} before use.")
     root.append(ET.Comment(" " + " | ".join(lines) + " "))
     force = ET.SubElement(root, "PeriodicTorsionForce")
-    seen = {}
-    for name, sub in terms.groupby("type", sort=False):
-        resname, names = atoms[name]
-        keys = _atom_keys(resname, names, mapping, notices, what + "es")
-        key = tuple(keys) if tuple(keys) <= tuple(reversed(keys)) else tuple(reversed(keys))
-        if key in seen:
-            notices.append(f"types {seen[key]} and {name} map onto the same atom {what}es {'-'.join(keys)}: OpenMM "
-                           "applies only one of their corrections; give atom classes that tell them apart.")
-        seen[key] = name
-        force.append(ET.Comment(f" {name} "))
+    by_type = dict(tuple(terms.groupby("type", sort=False)))
+    entries, seen = {}, {}   # one <Proper> per pattern of atom classes (forwards or reversed), as OpenMM matches
+    for name in by_type:
+        keys = _atom_keys(*atoms[name], mapping, notices, what)
+        if not mapping and _match_key(keys) in seen:
+            notices.append(f"types {seen[_match_key(keys)]} and {name} have the same atom names ({'-'.join(keys)}): "
+                           f"where your force field gives them the same atom {whats} too, OpenMM matches both with "
+                           f"one <Proper>; fit them as one term by giving the atom {whats} to the fit.")
+        seen.setdefault(_match_key(keys), name)
+        entries.setdefault(_match_key(keys) if mapping else (name,), []).append((name, keys))
+    for group in entries.values():
+        (name, keys), others = group[0], group[1:]
+        sub = by_type[name]
+        differ = [other for other, _ in others if not _same_terms(sub, by_type[other])]
+        if differ:
+            raise DihedraError(
+                f"types {name} and {differ[0]} map onto the same atom {whats} ({'-'.join(keys)}, forwards or "
+                f"reversed), so OpenMM would match both with one <Proper> and drop the other's correction; fit them "
+                f"as one term (fit_torsion_correction ties types whose atom {whats} coincide: give atom_{whats}= / "
+                f"--atom-{whats} to the fit), or give atom {whats} that tell them apart.")
+        shared = f" = {', '.join(o for o, _ in others)} (one force-field term: shared coefficients)" if others else ""
+        force.append(ET.Comment(f" {name}{shared} "))
         attrib = {f"{what}{k + 1}": keys[k] for k in range(4)}
         for j, row in enumerate(sub.sort_values("n").itertuples(index=False), start=1):
             attrib[f"periodicity{j}"] = str(int(row.n))

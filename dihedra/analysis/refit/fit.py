@@ -82,18 +82,22 @@ def basis_values(phi_deg, n_terms, symmetric=False):
     return out
 
 
-def features(samples, n_terms, symmetric=False):
-    """The features X (n_samples, n_types * per_type) of :class:`~.samples.TorsionSamples`:
-    per sample the sum of each type's basis functions over its torsions (undefined angles add 0)."""
+def features(samples, n_terms, symmetric=False, groups=None):
+    """The features X (n_samples, n_groups * per_type) of :class:`~.samples.TorsionSamples`:
+    per sample the sum of each type's basis functions over its torsions (undefined angles add 0).
+
+    ``groups`` (one index per type of ``samples.type_names``, default one group per type) ties
+    types that are one force-field term: the torsions of a group share one set of coefficients."""
     per = int(n_terms) * (1 if symmetric else 2)
-    n_types = len(samples.type_names)
-    out = np.zeros((samples.n_frames, samples.n_molecules, n_types * per))
+    groups = np.arange(len(samples.type_names)) if groups is None else np.asarray(groups, dtype=np.int64)
+    n_groups = int(groups.max()) + 1 if len(groups) else 0
+    out = np.zeros((samples.n_frames, samples.n_molecules, n_groups * per))
     for k in range(len(samples.labels)):
         values = basis_values(samples.angles[k], n_terms, symmetric)
         values[~np.isfinite(values)] = 0.0
-        t = int(samples.type_index[k])
+        t = int(groups[samples.type_index[k]])
         out[:, int(samples.molecule[k]), t * per:(t + 1) * per] += values
-    return out.reshape(samples.n_frames * samples.n_molecules, n_types * per)
+    return out.reshape(samples.n_frames * samples.n_molecules, n_groups * per)
 
 
 def kish(weights):

@@ -149,7 +149,8 @@ def molecule_ids(result, positions, weights_per="molecule", universe=None, notic
     if fragments is not None:
         indices = result.torsion_set.indices[positions]
         if indices.size and indices.max() >= len(fragments):
-            raise DihedraError(f"the topology has {len(fragments)} atoms but a torsion names atom {int(indices.max())}; "
+            raise DihedraError(f"the topology has {len(fragments)} atoms but a torsion names atom "
+                               f"{int(indices.max())}; "
                                "give the universe the run was tracked with.")
         keys = fragments[indices[:, 1]]
     else:
