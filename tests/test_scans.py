@@ -104,6 +104,47 @@ def test_rb_parameters(tmp_path):
     assert abs(read_scan(kcal).energy_at(0.0) - 44.80) < 1e-9
 
 
+def test_extrema_of_parameter_scans_are_refined_on_the_function(tmp_path):
+    # analytic: the extrema of the Ryckaert-Bellemans butane torsion (Ryckaert & Bellemans, Faraday
+    # Discuss. Chem. Soc. 66 (1978) 95) and of the TraPPE-UA alkane torsion (Martin & Siepmann,
+    # J. Phys. Chem. B 102 (1998) 2569; c1, c2, c3 = 355.03, -68.19, 791.32 K, from memory), found
+    # by scipy.optimize on the formulas themselves: the scan's features lie within 0.01 degrees of
+    # them (a 0.5-degree grid alone puts them up to 0.25 degrees off), their energies within 1e-6
+    from dihedra.analysis.scans import scan_features
+    from dihedra.units import R_KJ_PER_MOL_K
+
+    c1, c2, c3 = (c * R_KJ_PER_MOL_K for c in (355.03, -68.19, 791.32))
+
+    def trappe(phi):
+        p = np.radians(phi)
+        return c1 * (1 + np.cos(p)) + c2 * (1 - np.cos(2 * p)) + c3 * (1 + np.cos(3 * p))
+
+    files = {
+        "rb": ('form = "ryckaert-bellemans"\nenergy_unit = "kJ/mol"\n' f"coefficients = {list(RB_BUTANE)}\n",
+               rb_energy),
+        "trappe": ('form = "cosine-series"\nenergy_unit = "kJ/mol"\n'
+                   f"[[term]]\nk = {c1}\nn = 1\nphase_deg = 0\n[[term]]\nk = {c2}\nn = 2\nphase_deg = 180\n"
+                   f"[[term]]\nk = {c3}\nn = 3\nphase_deg = 0\n", trappe)}
+    for name, (text, energy) in files.items():
+        minima, barriers = scan_features(read_scan(write(tmp_path / f"{name}.toml", text)), 2.479)
+
+        def exact(kind, near):
+            sign = 1.0 if kind == "min" else -1.0
+            best = optimize.minimize_scalar(lambda x: sign * energy(x), bounds=(near - 10, near + 10),
+                                            method="bounded", options={"xatol": 1e-9})
+            return best.x, energy(best.x) - energy(180.0)
+
+        gauche, top = exact("min", 60.0), exact("max", 120.0)
+        expected_minima = [(-gauche[0], gauche[1]), (gauche[0], gauche[1]), (180.0, 0.0)]
+        expected_barriers = [(0.0, energy(0.0) - energy(180.0)), (top[0], top[1]), (-top[0], top[1])]
+        assert len(minima) == 3 and len(barriers) == 3, name
+        for got, (angle, value) in zip(minima + barriers, expected_minima + expected_barriers):
+            assert abs(got["angle_deg"] - angle) < 0.01, (name, got, angle)
+            assert abs(got["energy_kj_mol"] - value) < 1e-6, (name, got, value)
+        assert minima[2]["angle_deg"] == 180.0          # on (-180, 180]
+        assert barriers[1]["between_deg"] == [minima[1]["angle_deg"], minima[2]["angle_deg"]]
+
+
 def test_cosine_series_equals_rb_by_the_published_conversion(tmp_path):
     # analytic (trigonometric identities): the Fourier form
     # V = 1/2[F1(1+cos) + F2(1-cos 2phi) + F3(1+cos 3phi) + F4(1-cos 4phi)]
@@ -129,7 +170,8 @@ def test_parameter_file_errors(tmp_path):
     with pytest.raises(DihedraError, match="unknown energy unit"):
         read_scan(write(tmp_path / "b.toml", 'form = "cosine-series"\nenergy_unit = "kJ"\n[[term]]\nk = 1\nn = 3\n'))
     with pytest.raises(DihedraError, match="positive integer"):
-        read_scan(write(tmp_path / "c.toml", 'form = "cosine-series"\nenergy_unit = "kJ/mol"\n[[term]]\nk = 1\nn = 1.5\n'))
+        read_scan(write(tmp_path / "c.toml",
+                        'form = "cosine-series"\nenergy_unit = "kJ/mol"\n[[term]]\nk = 1\nn = 1.5\n'))
     with pytest.raises(DihedraError, match="form must be one of"):
         read_scan(write(tmp_path / "d.toml", 'form = "fourier"\nenergy_unit = "kJ/mol"\n'))
 
@@ -147,9 +189,9 @@ def butane_pdb(tmp_path_factory):
 
 def test_mmff94_butane_scan(butane_pdb, tmp_path):
     # from memory (loose bound; the gas-phase gauche-anti enthalpy of butane is about 2.6-4.0 kJ/mol):
-    # MMFF94 (Halgren, J. Comput. Chem. 17 (1996) 490) butane has its minima at anti and near +-65 degrees, gauche a few kJ/mol above anti
-    from dihedra.analysis.scans import mmff94_scan
-    from dihedra.analysis.compare import scan_features
+    # MMFF94 (Halgren, J. Comput. Chem. 17 (1996) 490) butane has its minima at anti and near +-65 degrees,
+    # gauche a few kJ/mol above anti
+    from dihedra.analysis.scans import mmff94_scan, scan_features
     mol, path = butane_pdb
     seen = []
     scan = mmff94_scan(mol, (0, 1, 2, 3), step_deg=10, progress=lambda *a: seen.append(a))
@@ -188,8 +230,7 @@ def test_gfn2_xtb_ethane_scan():
     # (2019) 1652, is known to land somewhat lower; loose bound)
     from rdkit import Chem
     from rdkit.Chem import AllChem
-    from dihedra.analysis.scans import xtb_scan
-    from dihedra.analysis.compare import scan_features
+    from dihedra.analysis.scans import scan_features, xtb_scan
     mol = Chem.AddHs(Chem.MolFromSmiles("CC"))
     AllChem.EmbedMolecule(mol, randomSeed=1)
     h_on_0 = [n.GetIdx() for n in mol.GetAtomWithIdx(0).GetNeighbors() if n.GetSymbol() == "H"][0]
@@ -202,6 +243,47 @@ def test_gfn2_xtb_ethane_scan():
         assert min(abs((m["angle_deg"] - c + 180) % 360 - 180) for c in (60, 180, -60)) < 8
     for b in barriers:
         assert 8.0 < b["energy_kj_mol"] < 16.0
+
+
+@pytest.mark.slow
+def test_gfn2_xtb_butane_scan_is_relaxed_to_its_mirror_symmetry(butane_pdb):
+    # analytic: butane is its own mirror image, and the mirror image of a relaxed geometry at phi is
+    # one at -phi with the same energy, so an exact relaxed scan has E(phi) = E(-phi). A gradient
+    # tolerance of 1e-3 hartree/bohr left 0.48 kJ/mol between +30 and -30 degrees.
+    from dihedra.analysis.scans import xtb_scan
+    from dihedra.analysis.scans.computed import XTB_GRADIENT_TOLERANCE, mirror_asymmetry
+
+    mol, local = molecule_from_topology(butane_pdb[1], "0,1,2,3")
+    scan = xtb_scan(mol, local, step_deg=30)
+    energy = dict(zip(np.round(scan.angle_deg, 6), scan.energy_kj_mol))
+    for phi in (30.0, 60.0, 90.0, 120.0, 150.0):
+        assert energy[phi] == pytest.approx(energy[-phi], abs=0.05)
+    meta = scan.metadata
+    assert meta["gradient_tolerance_hartree_bohr"] == XTB_GRADIENT_TOLERANCE
+    assert f"{XTB_GRADIENT_TOLERANCE:g} hartree/bohr" in meta["method"]
+    assert meta["largest_remaining_gradient_hartree_bohr"] <= XTB_GRADIENT_TOLERANCE
+    assert max(meta["largest_gradient_hartree_bohr"].values()) <= XTB_GRADIENT_TOLERANCE
+    assert meta["above_tolerance_angles_deg"] == []
+    assert meta["mirror_asymmetry_kj_mol"] == pytest.approx(mirror_asymmetry(scan.angle_deg, scan.energy_kj_mol)[0],
+                                                            abs=1e-4)
+    assert meta["mirror_asymmetry_kj_mol"] < 0.05
+
+
+def test_a_molecule_is_told_from_its_mirror_image():
+    # the definition of chirality (common practice): an achiral molecule (butane, meso-2,3-butanediol
+    # (2R,3S)) is its own mirror image; (R)-2-butanol and (2R,3R)-2,3-butanediol are not. Only the
+    # first kind has E(phi) = E(-phi) in a relaxed scan.
+    from rdkit import Chem
+    from rdkit.Chem import AllChem
+    from dihedra.analysis.scans.computed import is_own_mirror_image, mirror_asymmetry
+
+    expected = {"CCCC": True, "C[C@@H](O)[C@@H](O)C": True, "C[C@H](O)CC": False, "C[C@@H](O)[C@H](O)C": False}
+    for smiles, own in expected.items():
+        mol = Chem.AddHs(Chem.MolFromSmiles(smiles))
+        AllChem.EmbedMolecule(mol, randomSeed=3)
+        assert is_own_mirror_image(mol) is own, smiles
+    angles = np.array([-120.0, -60.0, 0.0, 60.0, 120.0, 180.0])
+    assert mirror_asymmetry(angles, [1.0, 2.0, 5.0, 2.5, 1.2, 0.0]) == pytest.approx((0.5, 60.0))
 
 
 def test_gfn2_xtb_refuses_a_charge_the_electrons_cannot_have():

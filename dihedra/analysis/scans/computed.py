@@ -8,8 +8,12 @@ r"""Computed relaxed torsion scans (``pip install "dihedra[scan]"``).
 * :func:`xtb_scan` -- relaxed GFN2-xTB scan with tblite (GFN2-xTB: Bannwarth, Ehlert & Grimme,
   J. Chem. Theory Comput. 15 (2019) 1652): a harmonic restraint on the torsion
   (k = :data:`XTB_RESTRAINT_KJ_MOL_RAD2`) added to the GFN2-xTB energy, minimised with scipy's
-  L-BFGS-B on tblite energies and gradients; the energy written is GFN2-xTB alone, the angle the
-  one reached.
+  L-BFGS-B on tblite energies and gradients (stopped when no gradient component exceeds
+  :data:`XTB_GRADIENT_TOLERANCE`); the energy written is GFN2-xTB alone, the angle the one reached.
+  Each point records its largest remaining gradient component and the energy change of its last
+  step; for a molecule that is its own mirror image, E(phi) = E(-phi) holds exactly and the scan
+  records its largest departure from it (the mirror asymmetry), a measure of what the relaxation
+  left undone.
 
 Both take the molecule the torsion belongs to, built from a topology with elements and hydrogens
 (:func:`molecule_from_topology`, first frame); the scan is written as a reusable scan CSV with the
@@ -26,6 +30,15 @@ from .scan import scan_from_points
 
 #: Harmonic restraint on the torsion in the GFN2-xTB scan, kJ/(mol rad^2).
 XTB_RESTRAINT_KJ_MOL_RAD2 = 5000.0
+#: L-BFGS-B gradient tolerance of the GFN2-xTB scan (largest component, hartree/bohr). On butane
+#: (every 30 degrees) 1e-3 leaves E(phi) and E(-phi) 0.48 kJ/mol apart and the energies up to 0.56 kJ/mol
+#: from a scan at 1e-5, 3e-4 still 0.17 kJ/mol; 1e-4 brings every energy within 0.03 kJ/mol of it
+#: for 3 times the energy evaluations of 1e-3 (1e-5: 4.5 times).
+XTB_GRADIENT_TOLERANCE = 1e-4
+#: L-BFGS-B's relative energy criterion, set so small that the gradient tolerance (or the iteration
+#: limit) decides when a point is relaxed: scipy's default (2.2e-9 relative, 8e-5 kJ/mol on butane)
+#: stopped points with gradients above 1e-4 hartree/bohr.
+_XTB_NO_ENERGY_STOP = 1e-14
 #: Random restarts per MMFF94 scan point, and their displacement (angstrom, Gaussian per coordinate).
 KICKS = 2
 KICK_ANGSTROM = 0.05
@@ -127,7 +140,8 @@ def scan_angles(step_deg):
     """The angles of a scan every ``step_deg`` degrees (a divisor of 360, at most 60), or the error."""
     step = float(step_deg)
     if not (0 < step <= 60) or abs(360.0 / step - round(360.0 / step)) > 1e-9:
-        raise DihedraError(f"the scan step must divide 360 and be at most 60 degrees (e.g. 10, 15, 30); got {step_deg!r}.")
+        raise DihedraError(f"the scan step must divide 360 and be at most 60 degrees (e.g. 10, 15, 30); got "
+                           f"{step_deg!r}.")
     return wrap_deg(-180.0 + step * np.arange(1, int(round(360.0 / step)) + 1))
 
 
@@ -227,7 +241,8 @@ def mmff94_scan(mol, torsion, step_deg=10.0, max_iterations=5000, progress=None)
     angles = np.array(sorted(best))
     energy = np.array([best[x][0] for x in angles])
     meta = {"method": f"MMFF94 relaxed scan (RDKit {_version('rdkit')}), torsion constraint 1e4 kcal/(mol rad^2), "
-                      "each angle from the start geometry and from both neighbours, 2 random restarts each, lowest energy kept",
+                      "each angle from the start geometry and from both neighbours, 2 random restarts each, lowest "
+                      "energy kept",
             "kind": "relaxed", "step_deg": float(step_deg),
             "reached_angle_deg": {f"{x:g}": round(float(best[x][1]), 3) for x in angles}}
     return scan_from_points(angles, energy, kind="relaxed", source="MMFF94", metadata=meta)
@@ -287,8 +302,34 @@ def _check_electrons(mol, numbers, charge, unpaired):
                            "electrons (--unpaired, unpaired=).")
 
 
+def is_own_mirror_image(mol):
+    """Whether a molecule (stereo taken from its 3-D coordinates) is the same molecule as its mirror
+    image, so that its relaxed torsion energy obeys E(phi) = E(-phi)."""
+    from rdkit import Chem
+    from rdkit.Geometry import Point3D
+
+    if mol.GetNumConformers() == 0:
+        return False
+    both = []
+    for sign in (1.0, -1.0):
+        work = Chem.Mol(mol)
+        conf = work.GetConformer()
+        for j, (x, y, z) in enumerate(conf.GetPositions()):
+            conf.SetAtomPosition(j, Point3D(float(x), float(y), sign * float(z)))
+        Chem.AssignStereochemistryFrom3D(work)
+        both.append(Chem.MolToSmiles(work))
+    return both[0] == both[1]
+
+
+def mirror_asymmetry(angles_deg, energies_kj_mol):
+    """Largest |E(phi) - E(-phi)| over the angles scanned at both signs, and the angle where it is."""
+    energy = dict(zip(np.round(np.asarray(angles_deg, dtype=float), 6), np.asarray(energies_kj_mol, dtype=float)))
+    pairs = [(abs(energy[a] - energy[-a]), float(a)) for a in energy if a > 0 and a < 180 and -a in energy]
+    return max(pairs) if pairs else (float("nan"), float("nan"))
+
+
 def xtb_scan(mol, torsion, step_deg=30.0, charge=0, unpaired=0, restraint_kj_mol_rad2=XTB_RESTRAINT_KJ_MOL_RAD2,
-             gradient_tolerance=1e-3, max_iterations=500, progress=None):
+             gradient_tolerance=XTB_GRADIENT_TOLERANCE, max_iterations=500, progress=None):
     """Relaxed GFN2-xTB scan with tblite: restraint on the torsion plus L-BFGS-B.
 
     Parameters
@@ -303,13 +344,20 @@ def xtb_scan(mol, torsion, step_deg=30.0, charge=0, unpaired=0, restraint_kj_mol
     restraint_kj_mol_rad2 : float
         Force constant k of the restraint k/2 (phi - phi0)^2.
     gradient_tolerance : float
-        L-BFGS-B ``gtol`` in hartree/bohr.
+        L-BFGS-B ``gtol``: the largest gradient component (hartree/bohr) at which a point counts as
+        relaxed.
     progress : callable, optional
         ``progress(done, total, angle_deg, energy_kj_mol)``.
 
     Returns
     -------
     TorsionScan (kind ``relaxed``)
+        Its metadata hold the tolerance, per point the largest remaining gradient component
+        (``largest_gradient_hartree_bohr``) and the energy change of the last step
+        (``last_step_energy_change_kj_mol``), the largest of each over the scan, the points left
+        with a gradient above the tolerance (``above_tolerance_angles_deg``), and for a molecule
+        that is its own mirror image the largest ``|E(phi) - E(-phi)|``
+        (``mirror_asymmetry_kj_mol``, zero for an exact relaxed scan).
     """
     _require("tblite.interface", "a GFN2-xTB scan")
     _require("rdkit", "a GFN2-xTB scan")
@@ -338,22 +386,45 @@ def xtb_scan(mol, torsion, step_deg=30.0, charge=0, unpaired=0, restraint_kj_mol
             conf.SetAtomPosition(j, conf_pos[j].tolist())
         rdMolTransforms.SetDihedralDeg(conf, a, b, c, d, float(target))
         x = np.array(conf.GetPositions(), dtype=float) / BOHR_ANGSTROM
+        steps = []   # the objective after every iteration: the last difference is the last step's change
         out = minimize(energy_gradient, x.ravel(), args=(float(target),), jac=True, method="L-BFGS-B",
-                       options={"gtol": gradient_tolerance, "maxiter": max_iterations})
+                       callback=lambda intermediate_result: steps.append(float(intermediate_result.fun)),
+                       options={"gtol": gradient_tolerance, "ftol": _XTB_NO_ENERGY_STOP, "maxiter": max_iterations})
         x = out.x.reshape(-1, 3)
         calc.update(x)
         e_plain = float(calc.singlepoint().get("energy")) * HARTREE_KJ_PER_MOL
-        rows[float(target)] = (e_plain, _dihedral_deg(x, a, b, c, d))
+        last = abs(steps[-1] - steps[-2]) * HARTREE_KJ_PER_MOL if len(steps) > 1 else 0.0
+        rows[float(target)] = (e_plain, _dihedral_deg(x, a, b, c, d), float(np.max(np.abs(out.jac))), last,
+                               bool(out.success))
         if progress is not None:
             progress(n_done, len(up), float(target), e_plain)
     angles = np.array(sorted(rows))
     energy = np.array([rows[t][0] for t in angles])
     meta = {"method": f"GFN2-xTB relaxed scan (tblite {_version('tblite')}), harmonic torsion restraint "
-                      f"{restraint_kj_mol_rad2:g} kJ/(mol rad^2), scipy L-BFGS-B",
+                      f"{restraint_kj_mol_rad2:g} kJ/(mol rad^2), scipy L-BFGS-B to a largest gradient component "
+                      f"of {gradient_tolerance:g} hartree/bohr",
             "kind": "relaxed", "step_deg": float(step_deg), "charge": int(charge), "unpaired_electrons": int(unpaired),
+            "gradient_tolerance_hartree_bohr": float(gradient_tolerance),
             "lowest_energy_hartree": float(energy.min() / HARTREE_KJ_PER_MOL),
             "reached_angle_deg": {f"{t:g}": round(float(rows[t][1]), 3) for t in angles}}
+    meta.update(_convergence(angles, energy, rows, mol, gradient_tolerance))
     return scan_from_points(angles, energy, kind="relaxed", source="GFN2-xTB", metadata=meta)
+
+
+def _convergence(angles, energy, rows, mol, tolerance):
+    """What the relaxation left undone, for the scan's metadata (see :func:`xtb_scan`)."""
+    out = {"largest_gradient_hartree_bohr": {f"{t:g}": float(f"{rows[t][2]:.3g}") for t in angles},
+           "last_step_energy_change_kj_mol": {f"{t:g}": float(f"{rows[t][3]:.3g}") for t in angles},
+           "largest_remaining_gradient_hartree_bohr": float(max(rows[t][2] for t in angles)),
+           "largest_last_step_energy_change_kj_mol": float(max(rows[t][3] for t in angles)),
+           # points where the optimiser stopped first on its iteration limit or a failed line search
+           "above_tolerance_angles_deg": [float(t) for t in angles if not rows[t][4] or rows[t][2] > tolerance]}
+    if is_own_mirror_image(mol):
+        worst, where = mirror_asymmetry(angles, energy)
+        if worst == worst:
+            out["mirror_asymmetry_kj_mol"] = round(float(worst), 4)
+            out["mirror_asymmetry_angle_deg"] = where
+    return out
 
 
 def _version(name):
