@@ -146,7 +146,8 @@ def test_synthetic_windows_recover_the_potential_everywhere(synthetic):
     v = asymmetric_energy(grid)
     bar = wres.profiles.barriers
     syn = bar.loc[(bar["angle_deg"].abs() < 30)].iloc[0]
-    assert syn["free_energy_kj_mol"] == pytest.approx(v.max() - v.min(), abs=max(1.0, 3 * syn["free_energy_err_kj_mol"]))
+    assert syn["free_energy_kj_mol"] == pytest.approx(v.max() - v.min(),
+                                                      abs=max(1.0, 3 * syn["free_energy_err_kj_mol"]))
 
 
 @pytest.mark.slow
@@ -476,6 +477,29 @@ def test_a_pipeline_stops_at_a_contradicted_window_table(windows_400, tmp_path):
     assert os.path.exists(tmp_path / "res" / "windows.csv")
     assert any(line.startswith("== step 1/2: windows") for line in said)
     assert not any(line.startswith("== step 2/2") for line in said)
+
+
+def test_centres_with_the_wrong_sign_are_named_as_such(windows_400):
+    # analytic: the difference of two harmonic biases, u_c - u_c' = k/2 (c^2 - c'^2) - k (c - c') phi,
+    # is linear in phi with a slope that changes sign with the centres; windows sampled at c and c'
+    # but stated at -c and -c' show a force-constant ratio of exactly -1 (up to noise and the
+    # wrap-around at 180 degrees) whatever F is: no force constant, the samples on the wrong side
+    table = pd.read_csv(windows_400, dtype={"torsions": str})
+    table["centre_deg"] = -table["centre_deg"]
+    csv = os.path.join(os.path.dirname(windows_400), "flipped.csv")
+    table.to_csv(csv, index=False)
+    wres = unbias_windows(csv, temperature_k=T, n_bootstrap=20)
+    assert wres.overlap["force_constant_ratio"].median() == pytest.approx(-1.0, abs=0.05)
+    warning = next(n for n in wres.notices if n.startswith("WARNING: the samples lie on the other side"))
+    assert "than the restraints pull" in warning and "centres have the wrong sign" in warning
+    assert "about -0.9" in warning or "about -1" in warning
+    assert not any("times stiffer" in n or "times weaker" in n for n in wres.notices)
+    # no force constant pulls the samples where they are (k_from_samples NaN), except beside the two
+    # windows at +-90 whose samples sit half a turn from their stated centres, where the stated bias
+    # wraps round and the ratio is not -1
+    w = wres.windows
+    assert w.loc[(w["centre_deg"].abs() - 90.0).abs() > 15, "k_from_samples_kj_mol_rad2"].isna().all()
+    assert not wres.windows["restraint_consistent"].any()
 
 
 def test_too_stiff_force_constant_gives_no_numpy_warnings(windows_400):

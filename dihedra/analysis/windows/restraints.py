@@ -41,7 +41,11 @@ constants contradict the samples when more than half of the neighbouring pairs t
 :data:`MIN_SHARED_SAMPLES` samples (:math:`\sum_b \min(h_i, h_j)`) put :math:`\lambda` beyond
 :data:`K_RATIO_TOLERANCE` (or below its inverse) by more than :data:`K_RATIO_SIGMA` standard
 errors, on the same side; every window of such a pair is reported, with the slip the factor
-matches. Windows that share no samples cannot be compared (the overlap check reports them).
+matches. A :math:`\lambda` below 0 by more than :data:`K_RATIO_SIGMA` standard errors in more than
+half of the pairs is no force constant at all: the samples lie on the other side of the centres
+than the restraints pull (centres with the wrong sign, or the angle convention flipped; -1 when
+every centre has the wrong sign), and the warning says so. Windows that share no samples cannot be
+compared (the overlap check reports them).
 """
 
 from __future__ import annotations
@@ -210,13 +214,15 @@ def _binomial_slope(hits, totals, z, max_iter=100):
 
 def judge_force_constants(ratios, pairs):
     """Whether the table's force constants contradict the samples (see *Neighbouring windows
-    together*): ``(side, flagged)``, side ``"weaker"`` or ``"stiffer"`` (or None) and the 0-based
-    windows of the contradicting pairs."""
+    together*): ``(side, flagged)``, side ``"opposite"`` (lambda below 0: the samples lie on the
+    other side of the centres), ``"weaker"`` or ``"stiffer"`` (or None) and the 0-based windows of
+    the contradicting pairs."""
     lam = ratios["force_constant_ratio"].to_numpy(float)
     se = ratios["force_constant_ratio_err"].to_numpy(float)
     measured = np.isfinite(lam) & np.isfinite(se)
     with np.errstate(invalid="ignore"):
-        sides = {"weaker": lam - K_RATIO_SIGMA * se > K_RATIO_TOLERANCE,
+        sides = {"opposite": lam + K_RATIO_SIGMA * se < 0.0,
+                 "weaker": lam - K_RATIO_SIGMA * se > K_RATIO_TOLERANCE,
                  "stiffer": lam + K_RATIO_SIGMA * se < 1.0 / K_RATIO_TOLERANCE}
     for side, hit in sides.items():
         if measured.any() and (hit & measured).sum() > measured.sum() / 2:
@@ -225,12 +231,13 @@ def judge_force_constants(ratios, pairs):
 
 
 def k_from_samples(ratios, pairs, windows):
-    """Per window: its stated k times the median lambda of its measured pairs (NaN without one)."""
+    """Per window: its stated k times the median lambda of its measured pairs (NaN without one, and
+    where that median is not positive: no restraint pulls the samples where they are)."""
     lam = ratios["force_constant_ratio"].to_numpy(float)
     out = np.full(len(windows), np.nan)
     for w in range(len(windows)):
         mine = [lam[n] for n, p in enumerate(pairs) if w in p and np.isfinite(lam[n])]
-        if mine:
+        if mine and np.median(mine) > 0:
             out[w] = windows["k_kj_mol_rad2"].iloc[w] * float(np.median(mine))
     return out
 
@@ -264,14 +271,22 @@ def _force_constant_warning(wtab, side, flagged, ratios):
     lam_all = ratios["force_constant_ratio"].to_numpy(float)
     measured = int(np.isfinite(lam_all).sum())
     lam = float(np.nanmedian(lam_all))
+    marked = (f"{len(flagged)} window(s) are marked restraint_consistent false; the profile, populations and overlap "
+              "rest on the stated biases and are unusable: ")
+    if side == "opposite":
+        return (f"WARNING: the samples lie on the other side of the window centres than the restraints pull: "
+                f"neighbouring windows sample the angles they share in proportions that fit the stated biases only "
+                f"with their sign reversed (a factor of about {lam:.3g} on the force constants, where a correct "
+                f"table gives 1; {measured} neighbouring pair(s) compared), as when the centres have the wrong sign "
+                f"or the angle convention is flipped (-1: every centre with the wrong sign). " + marked
+                + "check the signs of centre_deg against the simulation input (dihedra uses the IUPAC sign).")
     factor = lam if side == "weaker" else 1.0 / lam
     k_stated = float(np.median(wtab["k_kj_mol_rad2"]))
     return (f"WARNING: the force constants of the window table are about {_factor(factor)} times {side} than the "
             f"samples show: neighbouring windows sample the angles they share in proportions that need about "
             f"{_factor(lam)} times the stated k (about {k_stated * lam:.3g} kJ/mol/rad2 where the table gives "
-            f"{k_stated:.6g}; {measured} neighbouring pair(s) compared).{_likely_slip(lam)} {len(flagged)} window(s) "
-            "are marked restraint_consistent false; the profile, populations and overlap rest on the stated biases "
-            "and are unusable: give k_kj_mol_rad2 in kJ/mol/rad2, for the bias 0.5 k d^2.")
+            f"{k_stated:.6g}; {measured} neighbouring pair(s) compared).{_likely_slip(lam)} " + marked
+            + "give k_kj_mol_rad2 in kJ/mol/rad2, for the bias 0.5 k d^2.")
 
 
 def _factor(x):
@@ -298,4 +313,5 @@ def restraint_rule():
             "the force constants contradict the samples when in more than half of the neighbouring pairs that "
             f"share at least {MIN_SHARED_SAMPLES} samples the slope lambda of ln(h_i/h_j) against the stated "
             f"-(u_i - u_j)/kT (1 for a correct table) lies beyond {K_RATIO_TOLERANCE:g} or below "
-            f"1/{K_RATIO_TOLERANCE:g} by more than {K_RATIO_SIGMA:g} standard errors, on the same side")
+            f"1/{K_RATIO_TOLERANCE:g} by more than {K_RATIO_SIGMA:g} standard errors, on the same side (below 0: "
+            "the samples lie on the other side of the centres than the restraints pull)")
