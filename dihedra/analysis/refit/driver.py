@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from ...errors import DihedraError, one_of
-from ...io.outputs import write_text
+from ...io.outputs import file_set, write_text
 from ...io.tables import json_ready, write_json, write_table
 from ...trajectory.result import as_result
 from ...units import kt_kj_mol
@@ -129,12 +129,13 @@ class RefitResult:
             tables.append(("refit_couplings.csv", self.couplings))
         if self.ryckaert_bellemans is not None:
             tables.append(("refit_ryckaert_bellemans.csv", self.ryckaert_bellemans))
-        paths = [write_table(frame, folder, name) for name, frame in tables]
-        paths.append(write_text(folder, "refit_openmm.xml", self.openmm_xml))
-        info = {"summary": self.summary.iloc[0].to_dict(), "notices": list(self.notices),
-                "parameters": self.parameters, "method": METHOD, "references": REFERENCES, "cautions": CAUTIONS,
-                "files": [os.path.basename(p) for p in paths]}
-        paths.append(write_json(json_ready(info), folder, "refit.json"))
+        with file_set(folder):   # (in place together: an interruption leaves the earlier set whole)
+            paths = [write_table(frame, folder, name) for name, frame in tables]
+            paths.append(write_text(folder, "refit_openmm.xml", self.openmm_xml))
+            info = {"summary": self.summary.iloc[0].to_dict(), "notices": list(self.notices),
+                    "parameters": self.parameters, "method": METHOD, "references": REFERENCES, "cautions": CAUTIONS,
+                    "files": [os.path.basename(p) for p in paths]}
+            paths.append(write_json(json_ready(info), folder, "refit.json"))
         return paths
 
 
