@@ -158,8 +158,7 @@ def _types_of_target(result, tgt):
             out.append(types[labels.index(name)])
         else:
             raise DihedraError(f"the target names {name!r}, which is neither a torsion type nor a torsion label of "
-                               "this "
-                               f"result (types: {', '.join(list(dict.fromkeys(types))[:5])}).")
+                               f"this result (types: {', '.join(list(dict.fromkeys(types))[:5])}).")
     if tgt.kind == "profile" and (tgt.table["type"] == "").any():
         known = list(dict.fromkeys(types))
         if len(known) > 1 and not out:
