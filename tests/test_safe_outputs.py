@@ -380,3 +380,25 @@ def test_files_an_earlier_run_wrote_and_a_user_deleted_are_not_in_the_way(tmp_pa
     for name in ("comparison.csv", "comparison.json"):
         os.remove(folder / name)
     assert check_earlier_outputs(folder, "dihedra compare", names=("comparison.csv", "comparison.json")) == []
+
+
+def test_temporary_files_of_a_killed_run_are_removed_by_the_next_write(tmp_path):
+    # a process killed (kill -9) while it wrote leaves its temporary file; the next write of the same
+    # file removes it when that process is gone (this machine's processes only), and never a live one's
+    import subprocess
+    import sys
+
+    from dihedra.io.outputs import TMP_SUFFIX, host_tag
+
+    folder = tmp_path / "res"
+    folder.mkdir()
+    write_text(folder, "profiles.csv", "old\n")
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    left = folder / f".profiles.csv.{host_tag()}-{int(dead.stdout)}-0123abcd{TMP_SUFFIX}"
+    live = folder / f".profiles.csv.{host_tag()}-{os.getpid()}-4567cdef{TMP_SUFFIX}"
+    other = folder / f".profiles.csv.elsewhere-{int(dead.stdout)}-89abcdef{TMP_SUFFIX}"
+    for f in (left, live, other):
+        f.write_text("half\n")
+    write_text(folder, "profiles.csv", "new\n")
+    assert not left.exists() and live.exists() and other.exists()
+    assert (folder / "profiles.csv").read_text() == "new\n"

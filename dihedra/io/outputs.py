@@ -29,6 +29,8 @@ import contextlib
 import json
 import os
 import posixpath
+import re
+import socket
 import threading
 import time
 import uuid
@@ -324,6 +326,35 @@ def is_inside(path, folder):
     return _inside(_real(path), _real(folder))
 
 
+def host_tag():
+    """This machine's name as it goes into the names of staging folders and temporary files."""
+    return re.sub(r"[^0-9A-Za-z_]", "_", socket.gethostname())[:40] or "host"
+
+
+def _alive(pid):
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _remove_dead_temporaries(parent, base):
+    """Remove the temporary files of ``base`` in ``parent`` that a process of this machine left
+    when it died (a kill -9 while it wrote): their names carry the host and process id."""
+    pattern = re.compile(rf"^\.{re.escape(base)}\.(?P<host>[0-9A-Za-z_]+)-(?P<pid>\d+)-[0-9a-f]{{8}}"
+                         rf"{re.escape(TMP_SUFFIX)}$")
+    host = host_tag()
+    with contextlib.suppress(OSError):
+        for name in os.listdir(parent):
+            m = pattern.match(name)
+            if m and m["host"] == host and not _alive(int(m["pid"])):
+                with contextlib.suppress(OSError):
+                    os.remove(os.path.join(parent, name))
+
+
 _SETS = threading.local()
 
 
@@ -377,7 +408,9 @@ def write_file(folder, name, write, *, marked=True):
     marker = check_replaceable_in(folder, name) if marked else None
     parent = os.path.dirname(target)
     os.makedirs(parent, exist_ok=True)   # (a new folder for save(), or a subfolder such as figures/)
-    tmp = os.path.join(parent, f".{os.path.basename(name)}.{uuid.uuid4().hex[:8]}{TMP_SUFFIX}")
+    base = os.path.basename(name)
+    _remove_dead_temporaries(parent, base)
+    tmp = os.path.join(parent, f".{base}.{host_tag()}-{os.getpid()}-{uuid.uuid4().hex[:8]}{TMP_SUFFIX}")
     pending = _pending_set(folder)
     unlisted = marked and (marker is None or rel not in marker["files"])
     try:

@@ -11,15 +11,14 @@ import errno
 import os
 import re
 import shutil
-import socket
 import tempfile
 import time
 import uuid
 
 from ..errors import OutputExistsError
 from ..trajectory.interrupts import check as check_interrupts, signals_held
-from .outputs import (MARKER, TMP_SUFFIX, _relative_files, _write_marker, check_folder_target, foreign_files,
-                      new_marker, read_marker)
+from .outputs import (MARKER, TMP_SUFFIX, _alive, _relative_files, _write_marker, check_folder_target,
+                      foreign_files, host_tag, new_marker, read_marker)
 
 #: The results folders moved into place by this process, in order (the command line tells an
 #: interrupt after a commit from one before it).
@@ -30,24 +29,14 @@ _STAGING = re.compile(r"^\.(?P<name>.+)\.(?:partial|old)-(?P<host>[^-]+)-(?P<pid
 
 
 def _staging_name(base, kind):
-    host = re.sub(r"[^0-9A-Za-z_]", "_", socket.gethostname())[:40] or "host"
+    host = host_tag()
     return f".{base}.{kind}-{host}-{os.getpid()}-"
-
-
-def _alive(pid):
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 def remove_dead_staging(parent, base):
     """Remove staging folders of earlier runs into ``parent/base`` whose process is gone (same host
     only: a run on another node of a shared file system is left alone). Returns their names."""
-    host = re.sub(r"[^0-9A-Za-z_]", "_", socket.gethostname())[:40] or "host"
+    host = host_tag()
     removed = []
     try:
         names = os.listdir(parent)
