@@ -551,3 +551,11 @@ def test_one_time_step_line_for_all_windows(tmp_path, capsys):
     assert "--dt-ps" not in err
     # nor a line per window on the errors of its own (biased) populations, which windows does not report
     assert "never left one state" not in err
+
+
+def test_kinetics_refuses_a_folder_of_windows(synthetic):
+    # restrained torsions do not move as the unbiased ones (common practice): no rates from them
+    import dihedra
+
+    with pytest.raises(DihedraError, match="umbrella windows"):
+        dihedra.state_kinetics(dihedra.load_results(synthetic[1]), dt_ps=1.0)

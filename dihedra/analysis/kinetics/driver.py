@@ -498,6 +498,10 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     say = log or (lambda msg: None)
     t0 = time.time()
     result = as_result(result)
+    if str((result.summary or {}).get("kind", "")).startswith("umbrella windows"):
+        raise DihedraError("this is a folder of umbrella windows (dihedra windows): their torsions move under the "
+                           "restraints, so their rates and dwell times are not those of the unbiased system; run "
+                           "kinetics on the track folder of an unbiased simulation.")
     plan = _plan(result, assignment, core_margin_deg, lags_ps, lags, types, dt_ps, temperature_k, n_bootstrap,
                  conformers)
     scheme = result.scheme
