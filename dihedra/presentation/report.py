@@ -125,7 +125,7 @@ def _page(result, types, base, say):
     else:
         shown = informative_types(result.populations_by_type, 4) or all_types[:4]
         say(f"note: the report's tables show {len(shown)} of {len(all_types)} types, {CHOICE_RULE} (choose with "
-            "--types); every table links its full CSV")
+            "--types; types = [...] in an analysis file); every table links its full CSV")
     return Page(folder=result.folder, summary=result.summary, scheme=result.scheme, types=shown,
                 all_types=all_types, chosen=bool(types), base=base)
 

@@ -153,7 +153,7 @@ def _choose(result, names, max_types, max_series, say):
         chosen_types = [t for t in all_types if t in picked]   # in the folder's order
         if len(all_types) > max_types:
             say(f"note: per-type figures for {len(chosen_types)} of {len(all_types)} types, {CHOICE_RULE} "
-                "(choose with --types)")
+                "(choose with --types; types = [...] in an analysis file)")
     by_type = {}
     for lab, t in zip(labels, result.torsion_set.types):
         by_type.setdefault(t, []).append(lab)
