@@ -343,3 +343,26 @@ def test_ramachandran_is_a_step_whose_tables_equal_the_api(tmp_path):
     direct = dihedra.ramachandran_regions(res)
     pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "res" / "ramachandran_by_type.csv"),
                                   pd.read_csv(direct.save(str(tmp_path / "direct"))[1]))
+
+
+def test_an_interrupted_step_is_recorded_as_such(tmp_path, monkeypatch):
+    # Ctrl-C (or SIGTERM) during a step after the results folder exists: analysis.json says which
+    # step was interrupted, and the earlier ones are done
+    import dataclasses
+
+    from dihedra.pipeline import runner
+
+    data = tmp_path / "data"
+    os.makedirs(data)
+    top, trajs = make_system(str(data), n_replicas=1, n_frames=20, n_molecules=2)
+    toml = write(tmp_path / "f.toml", f'out = "res"\nsteps = ["track", "profile"]\n[track]\ntopology = "{top}"\n'
+                 f'trajectories = ["{trajs[0]}"]\ntemperature_k = 300\n')
+
+    def interrupted(ctx, arguments):
+        raise KeyboardInterrupt
+
+    monkeypatch.setitem(runner.STEPS, "profile", dataclasses.replace(runner.STEPS["profile"], run=interrupted))
+    with pytest.raises(KeyboardInterrupt):
+        run_pipeline(load_pipeline(str(toml)))
+    record = json.loads((tmp_path / "res" / RECORD_NAME).read_text())
+    assert [(s["step"], s["status"]) for s in record["steps"]] == [("track", "done"), ("profile", "interrupted")]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import difflib
 import hashlib
 import math
@@ -340,6 +341,13 @@ def run_pipeline(pipe, log=None):
             record["steps"].append(entry)
             _write_copy(pipe, record, created)
             raise DihedraError(f"step {step.name} ({step.where}) failed: {exc}") from None
+        except KeyboardInterrupt:   # (Ctrl-C or SIGTERM: the record says where it stopped)
+            if created:
+                entry.update(status="interrupted", seconds=round(time.time() - t0, 3))
+                record["steps"].append(entry)
+                with contextlib.suppress(Exception):
+                    _write_copy(pipe, record, created)
+            raise
         if step.spec.creates_folder:
             created = True
             ctx.forget()
