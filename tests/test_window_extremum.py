@@ -29,6 +29,7 @@ def reference(values, rows, start, length, kind):
     m, n, r = values.shape
     f = len(rows)
     pos, val, ok = np.empty((r, f)), np.empty((r, f)), np.empty((r, f), dtype=bool)
+    bins = np.empty((r, f), dtype=np.int64)
     sign = 1.0 if kind == "min" else -1.0
     for a in range(f):
         cols = (start[a] + 1 + np.arange(length[a])) % n
@@ -41,6 +42,7 @@ def reference(values, rows, start, length, kind):
                 ok[s, a] = np.isfinite(sub).all()
                 score = np.where(np.isfinite(sub), sub, -np.inf)
                 k = cols[int(np.argmax(score))]          # first position of the largest value
+            bins[s, a] = k
             y5 = values[rows[a], (k + np.arange(-2, 3)) % n, s]
             y1, y2, y3 = y5[1:4]
             found = cubic_extremum(y5, kind) if np.isfinite(y5).all() else None
@@ -53,7 +55,7 @@ def reference(values, rows, start, length, kind):
                 pos[s, a], val[s, a] = k + delta, y2 - 0.25 * (y1 - y3) * delta
             else:
                 pos[s, a], val[s, a] = k, y2
-    return pos, val, ok
+    return pos, val, ok, bins
 
 
 @pytest.mark.parametrize("seed", range(40))
@@ -72,6 +74,7 @@ def test_extremum_equals_the_numpy_reference(seed):
         pos, val, ok, k = _window_extremum(values, rows, start, length, kind)
         ref = reference(values, rows, start, length, kind)
         np.testing.assert_array_equal(ok, ref[2])
+        np.testing.assert_array_equal(k, ref[3])
         np.testing.assert_allclose(pos, ref[0], rtol=1e-9, atol=1e-9)
         np.testing.assert_allclose(val, ref[1], rtol=1e-9, atol=1e-9)
         # a refined value never lies beyond the bin it refines (above it for a minimum)

@@ -8,15 +8,15 @@ data-driven state scheme ``basins`` (:mod:`dihedra.trajectory.basins`).
   towards the neighbouring minimum: an unsampled stretch bounds the barrier only from below.
   Positions and values are refined with a least-squares cubic through the five bins around
   the extreme bin (a three-point parabola where that fails; never beyond the bin's own value:
-  :func:`_refine_extremum`). Errors are bootstrap spreads, at least the counting floors of the
-  bins involved where the profiles carry them (histogram profiles).
+  :func:`dihedra.numerics._kernels.window_extremum`). Errors are bootstrap spreads, at least the
+  counting floors of the bins involved where the profiles carry them (histogram profiles).
 * **barriers** -- the highest point between each pair of neighbouring minima; a barrier whose
   region holds unsampled bins has ``sampled = False``, no height, and lies in the middle of its
   unsampled bins.
 
 Stacks are handled at once: minima by vectorised candidate pruning with a range-maximum table
-(:class:`_RangeMax`), the extreme bins of every resample arc by arc by a compiled kernel and their
-refinement as one array operation (:func:`_window_extremum`).
+(:class:`_RangeMax`), the extreme bin of every resample and its refinement arc by arc by a compiled
+kernel (:func:`_window_extremum`).
 """
 
 from __future__ import annotations
@@ -76,7 +76,8 @@ class _RangeMax:
             left_v, right_v = self.value[k - 1, :, :last], self.value[k - 1, :, half:half + last]
             left = left_v >= right_v
             self.value[k, :, :last] = np.where(left, left_v, right_v)
-            self.where[k, :, :last] = np.where(left, self.where[k - 1, :, :last], self.where[k - 1, :, half:half + last])
+            self.where[k, :, :last] = np.where(left, self.where[k - 1, :, :last],
+                                               self.where[k - 1, :, half:half + last])
         self.n = n
 
     def arc(self, rows, a, length):
@@ -188,100 +189,22 @@ def _window_extremum(values, rows, start, length, kind):
     -------
     position (bins), value, ok, bin : ndarrays (r, f)
         The first extremum in arc order (``bin``; an unsampled bin, +inf or NaN, counts as lowest
-        for "max"; for "min", an arc holding a NaN or no sampled bin has its first bin), refined
-        by :func:`_refine_extremum`; for "max", ok is false where the arc holds an unsampled bin;
-        for "min", where it holds no sampled one.
-    """
-    values = np.ascontiguousarray(values, dtype=np.float64)
-    k, ok = _extremum_bins(values, rows, start, length, kind)
-    pos, val = _refine_extremum(values, rows, k, kind)
-    return pos, val, ok, k
-
-
-def _extremum_bins(values, rows, start, length, kind):
-    """The extreme bin of every arc and resample (see :func:`_window_extremum`) and ``ok``, (r, f).
-
-    The arcs are searched arc by arc by :func:`dihedra.numerics._kernels.window_extremum`, which
-    returns its own refined position, within one bin of the extreme bin: of the bins within one
-    bin of that position that lie in the arc, the extreme bin is the one with the extreme value
-    (the first in arc order among equal ones), or the arc's first bin where the kernel takes that
-    (a "min" arc that is not ok).
+        for "max"; for "min", an arc holding a NaN or no sampled bin has its first bin), refined by
+        a least-squares cubic through the five bins around it (a three-point parabola where that
+        fails; never beyond the bin's own value); for "max", ok is false where the arc holds an
+        unsampled bin; for "min", where it holds no sampled one. Arc by arc, the resamples side by
+        side, by :func:`dihedra.numerics._kernels.window_extremum` (where the rule is stated).
     """
     from .angles import compiled_kernels
 
     values = np.ascontiguousarray(values, dtype=np.float64)
-    n, r = values.shape[1:]
+    r = values.shape[2]
     f = len(rows)
-    pos, val, ok = np.empty((r, f)), np.empty((r, f)), np.empty((r, f), dtype=bool)
+    pos, val = np.empty((r, f)), np.empty((r, f))
+    ok, k = np.empty((r, f), dtype=bool), np.empty((r, f), dtype=np.int64)
     rows, start, length = (np.ascontiguousarray(x, dtype=np.int64) for x in (rows, start, length))
-    compiled_kernels().window_extremum(values, rows, start, length, kind == "max", pos, val, ok)
-    first = (start + 1) % n
-    base = (rows * n * r)[None, :] + np.arange(r)[:, None]          # flat index of bin 0, (r, f)
-    centre = np.rint(pos).astype(np.int64)
-    flat_values = values.reshape(-1)
-    best_k, best_score, best_offset = None, None, None
-    for step in (-1, 0, 1):
-        near = centre + step
-        usable = np.abs(near - pos) <= 1.0 + 1e-9
-        near %= n
-        offset = (near - first) % n
-        usable &= offset < length
-        y = np.take(flat_values, base + near * r)
-        keep = usable & (np.isfinite(y) if kind == "max" else ~np.isnan(y))
-        score = np.where(keep, -y if kind == "max" else y, np.inf)
-        offset[~usable] = n + 1
-        if best_k is None:
-            best_k, best_score, best_offset = near, score, offset
-            continue
-        better = (score < best_score) | ((score == best_score) & (offset < best_offset))
-        np.copyto(best_k, near, where=better)
-        np.copyto(best_score, score, where=better)
-        np.copyto(best_offset, offset, where=better)
-    k = np.where(ok, best_k, first) if kind == "min" else best_k
-    return k, ok
-
-
-def _gather(values, rows, k, steps):
-    """``values[rows[a], (k[s, a] + step) mod n, s]`` for each step, k (r, f): flat takes."""
-    n, r = values.shape[1:]
-    flat = values.reshape(-1)
-    base = (rows * n * r)[None, :] + np.arange(r)[:, None]
-    return [np.take(flat, base + ((k + step) % n) * r) for step in steps]
-
-
-def _refine_extremum(values, rows, k, kind):
-    """Refined position (bins) and value of the extremum at bin ``k`` (r, f) of each arc.
-
-    The least-squares cubic through the five bins around ``k``, x = -2..2 (Savitzky-Golay weights,
-    common practice: c0 = (-3, 12, 17, 12, -3)/35, c1 = (1, -8, 0, 8, -1)/12, c2 = (2, -1, -2, -1,
-    2)/14, c3 = (-1, 2, 0, -2, 1)/12, summed as differences so that five equal values give exactly
-    a flat cubic, no extremum placed by rounding), its local extremum of the right kind where all
-    five are sampled, the extremum lies within one bin and its
-    value does not lie beyond the bin's own (above it for a minimum); else the parabola through
-    the three bins around ``k`` where it bends the right way (vertex within half a bin); else the
-    bin itself. A parabola through five bins puts the extremum of an asymmetric well off by a
-    fixed amount (the cubic term of the well enters its slope): 0.75 degrees at the gauche minimum
-    of butane (Ryckaert-Bellemans) with 5-degree bins, where the cubic is off by 0.03.
-    """
-    sign = 1.0 if kind == "min" else -1.0
-    y0, y1, y2, y3, y4 = _gather(values, rows, k, (-2, -1, 0, 1, 2))
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        d0, d1, d3, d4 = y0 - y2, y1 - y2, y3 - y2, y4 - y2
-        c0 = y2 + (12.0 * (d1 + d3) - 3.0 * (d0 + d4)) / 35.0
-        c1 = ((y0 - y4) + 8.0 * (y3 - y1)) / 12.0
-        c2 = (2.0 * (d0 + d4) - (d1 + d3)) / 14.0
-        c3 = ((y4 - y0) - 2.0 * (y3 - y1)) / 12.0
-        disc = c2 * c2 - 3.0 * c1 * c3      # the extremum of the cubic: f'(x) = c1 + 2 c2 x + 3 c3 x^2 = 0
-        x = -c1 / (c2 + sign * np.sqrt(disc))   # the root with f''(x) = 2 sign sqrt(disc), stable as c3 -> 0
-        v = c0 + x * (c1 + x * (c2 + x * c3))
-        finite = np.isfinite(y0) & np.isfinite(y1) & np.isfinite(y2) & np.isfinite(y3) & np.isfinite(y4)
-        cubic = finite & (disc > 0) & np.isfinite(x) & (np.abs(x) <= 1.0) & (sign * (y2 - v) >= 0)
-        bend = d1 + d3
-        delta = np.clip(0.5 * (y1 - y3) / bend, -0.5, 0.5)
-        three = ~cubic & np.isfinite(y1) & np.isfinite(y2) & np.isfinite(y3) & (sign * bend > 0)
-        pos = k + np.where(cubic, x, np.where(three, delta, 0.0))
-        val = np.where(cubic, v, np.where(three, y2 - 0.25 * (y1 - y3) * delta, y2))
-    return pos, val
+    compiled_kernels().window_extremum(values, rows, start, length, kind == "max", pos, val, ok, k)
+    return pos, val, ok, k
 
 
 def _spread_columns(samples):
