@@ -160,7 +160,7 @@ def test_a_signal_at_a_random_moment_stops_the_run_cleanly(work, sig, backend):
         return
     assert proc.returncode == 128 + sig, where
     assert err.strip().splitlines()[-1].startswith("dihedra: interrupted"), where
-    if "was written: it is complete" in err:   # after the final move: the new folder, whole
+    if "that is complete" in err:   # after the final move: the new folder, whole
         load_results(work / "res")
     else:
         assert snapshot(work / "res") == before, where

@@ -402,3 +402,25 @@ def test_temporary_files_of_a_killed_run_are_removed_by_the_next_write(tmp_path)
     write_text(folder, "profiles.csv", "new\n")
     assert not left.exists() and live.exists() and other.exists()
     assert (folder / "profiles.csv").read_text() == "new\n"
+
+
+def test_an_interrupt_right_after_an_analysis_wrote_its_files_says_they_are_complete(tmp_path, data, capsys,
+                                                                                     monkeypatch):
+    # a Ctrl-C held while the new set is renamed into place is delivered just after: the message must
+    # say the new files are complete, not that they were discarded
+    from dihedra.analysis.kinetics.driver import KineticsResult
+
+    out = tmp_path / "results"
+    assert main(track_argv(data, out, "--stop", "50")) == 0
+    save = KineticsResult.save
+
+    def save_then_interrupted(self, folder):
+        save(self, folder)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(KineticsResult, "save", save_then_interrupted)
+    capsys.readouterr()
+    assert main(["kinetics", str(out)]) == 130
+    err = capsys.readouterr().err.strip().splitlines()[-1]
+    assert "after writing 7 new file(s) in" in err and "that is complete" in err, err
+    assert (out / "kinetics.json").exists()

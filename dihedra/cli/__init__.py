@@ -186,7 +186,7 @@ def _main(argv):
         return 0
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", module="MDAnalysis")
-    from ..io.staging import COMMITTED
+    from ..io.outputs import COMMITTED
     from .common import expand_type_patterns
 
     committed = len(COMMITTED)
@@ -205,7 +205,7 @@ def _main(argv):
         except KeyboardInterrupt:
             name = signal.Signals(received[0]).name if received else "SIGINT"
             done = COMMITTED[committed:]
-            what = (f"after {done[-1]} was written: it is complete, what came after it did not finish" if done else
+            what = (f"after writing {done[-1]}: that is complete, what came after it did not finish" if done else
                     "after the command had finished: its output is complete" if finished else
                     "what it was writing was discarded; files written before are as they were")
             print(f"dihedra: interrupted ({name}); stopped ({what}).", file=sys.stderr)

@@ -41,6 +41,10 @@ from ..trajectory.interrupts import signals_held
 #: The list of the files dihedra wrote into a results folder (its presence marks the folder).
 MARKER = "dihedra-files.json"
 
+#: What this process put into place, in order: results folders moved into place, and sets of files
+#: renamed into place together (the command line tells an interrupt after it from one before it).
+COMMITTED = []
+
 #: Suffix of the temporary files of :func:`write_file` (a crash may leave one; it is dihedra's).
 TMP_SUFFIX = ".dihedra-tmp"
 
@@ -378,6 +382,8 @@ def file_set(folder):
             for tmp, target, _ in pending:
                 os.replace(tmp, target)
             done = True
+            if pending:
+                COMMITTED.append(f"{len(pending)} new file(s) in {os.fspath(folder)}")
         new = [rel for _, _, rel in pending if rel is not None]
         if new:
             record_files(folder, new)

@@ -17,12 +17,8 @@ import uuid
 
 from ..errors import OutputExistsError
 from ..trajectory.interrupts import check as check_interrupts, signals_held
-from .outputs import (MARKER, TMP_SUFFIX, _alive, _relative_files, _write_marker, check_folder_target,
+from .outputs import (COMMITTED, MARKER, TMP_SUFFIX, _alive, _relative_files, _write_marker, check_folder_target,
                       foreign_files, host_tag, new_marker, read_marker)
-
-#: The results folders moved into place by this process, in order (the command line tells an
-#: interrupt after a commit from one before it).
-COMMITTED = []
 
 _STAGING = re.compile(r"^\.(?P<name>.+)\.(?:partial|old)-(?P<host>[^-]+)-(?P<pid>\d+)-[0-9a-z_]+$")
 
