@@ -366,3 +366,17 @@ def test_an_interrupted_step_is_recorded_as_such(tmp_path, monkeypatch):
         run_pipeline(load_pipeline(str(toml)))
     record = json.loads((tmp_path / "res" / RECORD_NAME).read_text())
     assert [(s["step"], s["status"]) for s in record["steps"]] == [("track", "done"), ("profile", "interrupted")]
+
+
+def test_types_given_as_patterns_become_the_runs_types_before_track(tmp_path):
+    # fnmatch patterns (Python's standard library), as --types takes them on the command line
+    text = (f'out = "res"\nsteps = ["track", "compare"]\n[track]\ntopology = "{example_path("butane_rb.pdb")}"\n'
+            f'trajectories = ["{example_path("butane_rb.xtc")}"]\ntemperature_k = 298.15\n'
+            f'[compare]\nscan = "{example_path("trappe_ua_torsion.toml")}"\ntypes = ["BUT:*"]\n')
+    toml = tmp_path / "a.toml"
+    toml.write_text(text)
+    compare = load_pipeline(str(toml)).steps[1]
+    assert compare.arguments["types"] == ["BUT:C1-C2-C3-C4"]
+    toml.write_text(text.replace('"BUT:*"', '"HEX:*"'))
+    with pytest.raises(DihedraError, match=r"\[compare\]: types HEX:\*: no torsion type matches"):
+        load_pipeline(str(toml))

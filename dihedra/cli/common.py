@@ -8,6 +8,7 @@ import sys
 import numpy as np
 
 from ..errors import DihedraError
+from ..selection.torsions import expand_type_patterns as expand_type_patterns_in, has_pattern
 
 
 def add_torsion_options(parser, required=True):
@@ -81,10 +82,8 @@ def expand_type_patterns(args):
     """``--types`` with shell-style patterns (``'POPE:C2*'``, ``'*:chi1'``): each pattern becomes
     the matching types of the results folder ``args.folder``, in the folder's order (names without
     ``*``, ``?`` or ``[`` are left to the command). A pattern that matches nothing is an error."""
-    import fnmatch
-
     types, folder = getattr(args, "types", None), getattr(args, "folder", None)
-    if not types or folder is None or not any(ch in t for t in types for ch in "*?["):
+    if not types or folder is None or not any(has_pattern(t) for t in types):
         return
     from ..io.tables import read_table
 
@@ -92,17 +91,7 @@ def expand_type_patterns(args):
         known = list(dict.fromkeys(read_table(folder, "torsions.csv", columns=["type"])["type"].astype(str)))
     except DihedraError:
         return   # (no results folder: the command says so itself)
-    out = []
-    for t in types:
-        if not any(ch in t for ch in "*?["):
-            out.append(t)
-            continue
-        hits = [k for k in known if fnmatch.fnmatchcase(k, t)]
-        if not hits:
-            raise DihedraError(f"--types {t}: no torsion type of {folder} matches this pattern; its types are "
-                               f"{', '.join(known[:6])}" + (" ..." if len(known) > 6 else "") + " (see torsions.csv).")
-        out.extend(hits)
-    args.types = list(dict.fromkeys(out))
+    args.types = expand_type_patterns_in(types, known, f"--types (in {folder})")
 
 
 def add_overwrite_option(parser, what):

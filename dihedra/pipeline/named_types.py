@@ -11,6 +11,7 @@ import pandas as pd
 
 from ..errors import DihedraError
 from ..selection.specs import select_torsions
+from ..selection.torsions import expand_type_patterns, has_pattern
 from ..trajectory.inputs import load_universe
 
 
@@ -21,6 +22,16 @@ def check_named_types(steps, out):
     can tell (a track that will fail on its own, a folder that does not exist yet), nothing is
     checked here."""
     check_angles_kept(steps)
+    patterned = [st for st in steps
+                 if st.name != "track" and any(has_pattern(t) for t in _as_list(st.arguments.get("types")))]
+    if patterned:   # shell-style patterns become the run's matching types, as --types on the command line
+        known = _known_torsions(steps, out)
+        if known is None:
+            raise DihedraError(f"{patterned[0].where}: types given as patterns need the run's torsions, and neither "
+                               "a [track] table nor the results folder tells them; name the types.")
+        order = known[2]
+        for st in patterned:
+            st.arguments["types"] = expand_type_patterns(_as_list(st.arguments["types"]), order, f"{st.where}: types")
     # ('all' is compare's word for every type; the other steps take every type without types)
     named = [(st, t, "types") for st in steps if st.name != "track"
              for t in _as_list(st.arguments.get("types")) if not (str(t) == "all" and st.name == "compare")]
@@ -31,7 +42,7 @@ def check_named_types(steps, out):
     known = _known_torsions(steps, out)
     if known is None:
         return
-    types, labels = known
+    types, labels, _ = known
     for st, name, key in named:
         if name not in types and name not in labels:
             shown = ", ".join(sorted(types)[:6]) + (", ..." if len(types) > 6 else "")
@@ -69,7 +80,8 @@ def _known_torsions(steps, out):
         if not os.path.exists(path):
             return None
         table = pd.read_csv(path, usecols=["torsion", "type"])
-        return set(table["type"].astype(str)), set(table["torsion"].astype(str))
+        order = list(dict.fromkeys(table["type"].astype(str)))
+        return set(order), set(table["torsion"].astype(str)), order
     a = track.arguments
     trajectories = _as_list(a.get("trajectories"))
     try:
@@ -77,7 +89,7 @@ def _known_torsions(steps, out):
         tset = select_torsions(universe, a.get("torsions", "rotatable"), keep_variants=bool(a.get("keep_variants")))
     except DihedraError:   # (the track step says it in its own words)
         return None
-    return set(tset.types), set(tset.labels)
+    return set(tset.types), set(tset.labels), list(dict.fromkeys(tset.types))
 
 
 def _as_list(value):

@@ -24,6 +24,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from ..errors import SelectionError
+
 
 @dataclass(frozen=True)
 class Torsion:
@@ -264,3 +266,29 @@ def residue_group_names(universe):
 def molecule_group(atom):
     """Conformer group of an atom: its residue (see :func:`residue_group_names`)."""
     return residue_group_names(atom.universe)[atom.residue.ix]
+
+
+def has_pattern(name):
+    """Whether a chosen type name is a shell-style pattern (``*``, ``?`` or ``[``)."""
+    return any(ch in str(name) for ch in "*?[")
+
+
+def expand_type_patterns(names, known, where="types"):
+    """``names`` with every shell-style pattern (``'POPE:C2*'``, ``'*:chi1'``; :mod:`fnmatch`)
+    replaced by the ``known`` types it matches, in their order; other names as they are, repeats
+    dropped. A pattern that matches nothing raises :class:`~dihedra.errors.SelectionError` naming
+    ``where``."""
+    import fnmatch
+
+    out = []
+    for name in names:
+        if not has_pattern(name):
+            out.append(name)
+            continue
+        hits = [k for k in known if fnmatch.fnmatchcase(k, str(name))]
+        if not hits:
+            raise SelectionError(f"{where} {name}: no torsion type matches this pattern; the types are "
+                                 f"{', '.join(known[:6])}" + (" ..." if len(known) > 6 else "") + " (see torsions.csv).")
+        out.extend(hits)
+    return list(dict.fromkeys(out))
+
