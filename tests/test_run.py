@@ -315,19 +315,24 @@ def test_the_full_example_of_the_docs_is_a_valid_analysis_file(tmp_path):
                                                             for x in ("hexane.pdb", "run1.xtc", "run2.xtc")]
 
 
+def butane_compare_file(tmp_path, types):
+    """An analysis file tracking the bundled butane and comparing ``types`` with the TraPPE scan."""
+    toml = tmp_path / "a.toml"
+    toml.write_text('out = "res"\nsteps = ["track", "compare"]\n'
+                    f'[track]\ntopology = "{example_path("butane_rb.pdb")}"\n'
+                    f'trajectories = ["{example_path("butane_rb.xtc")}"]\ntemperature_k = 298.15\n'
+                    f'[compare]\nscan = "{example_path("trappe_ua_torsion.toml")}"\ntypes = {json.dumps(types)}\n')
+    return str(toml)
+
+
 def test_a_type_the_run_will_not_have_stops_the_file_before_track(tmp_path):
     # the torsions of the run are known from its topology: a misspelt type in [compare] is an
     # error of the file, found before any step runs (nothing is written)
-    text = (f'out = "res"\nsteps = ["track", "compare"]\n[track]\ntopology = "{example_path("butane_rb.pdb")}"\n'
-            f'trajectories = ["{example_path("butane_rb.xtc")}"]\ntemperature_k = 298.15\n'
-            f'[compare]\nscan = "{example_path("trappe_ua_torsion.toml")}"\ntypes = ["BUT:C1-C2-C3-C5"]\n')
-    toml = tmp_path / "a.toml"
-    toml.write_text(text)
     with pytest.raises(DihedraError, match=r"\[compare\]: torsion type 'BUT:C1-C2-C3-C5' is not among the torsions"):
-        load_pipeline(str(toml))
+        load_pipeline(butane_compare_file(tmp_path, ["BUT:C1-C2-C3-C5"]))
     assert not os.path.exists(tmp_path / "res")
-    toml.write_text(text.replace("C3-C5", "C3-C4"))
-    assert [st.name for st in load_pipeline(str(toml)).steps] == ["track", "compare"]
+    assert [st.name for st in load_pipeline(butane_compare_file(tmp_path, ["BUT:C1-C2-C3-C4"])).steps] == [
+        "track", "compare"]
 
 
 def test_ramachandran_is_a_step_whose_tables_equal_the_api(tmp_path):
@@ -370,13 +375,7 @@ def test_an_interrupted_step_is_recorded_as_such(tmp_path, monkeypatch):
 
 def test_types_given_as_patterns_become_the_runs_types_before_track(tmp_path):
     # fnmatch patterns (Python's standard library), as --types takes them on the command line
-    text = (f'out = "res"\nsteps = ["track", "compare"]\n[track]\ntopology = "{example_path("butane_rb.pdb")}"\n'
-            f'trajectories = ["{example_path("butane_rb.xtc")}"]\ntemperature_k = 298.15\n'
-            f'[compare]\nscan = "{example_path("trappe_ua_torsion.toml")}"\ntypes = ["BUT:*"]\n')
-    toml = tmp_path / "a.toml"
-    toml.write_text(text)
-    compare = load_pipeline(str(toml)).steps[1]
+    compare = load_pipeline(butane_compare_file(tmp_path, ["BUT:*"])).steps[1]
     assert compare.arguments["types"] == ["BUT:C1-C2-C3-C4"]
-    toml.write_text(text.replace('"BUT:*"', '"HEX:*"'))
     with pytest.raises(DihedraError, match=r"\[compare\]: types HEX:\*: no torsion type matches"):
-        load_pipeline(str(toml))
+        load_pipeline(butane_compare_file(tmp_path, ["HEX:*"]))
