@@ -223,5 +223,5 @@ def mixture_notice(populations_by_type):
     return (f"{len(names)} type(s) pool torsions that differ more than their own error bars explain ({shown}; "
             "heterogeneous in populations_by_type.csv): their pooled profiles, minima and barriers describe a "
             "mixture, and their error bars cover sampling in time only; their state populations and free "
-            "energies include the spread between the torsions. The profiles of single torsions (without "
-            "--types-only) show how they differ.")
+            "energies include the spread between the torsions. The profiles of single torsions (per_torsion=True, "
+            "--per-torsion on the command line) show how they differ.")
