@@ -449,3 +449,8 @@ def test_a_one_state_scheme_has_nothing_to_converge(tmp_path):
     frozen = others[~others["state_changes_seen"]]
     html = open(write_report(str(tmp_path / "adk"), figures=False), encoding="utf-8").read()
     assert f"{len(frozen)} type(s) never changed state" in html
+    assert f"({len(rotors)} of them with a scheme of one state" in html
+    # nor are their torsions among those that never left one state
+    rotor_torsions = set(res.populations.query("scheme == 'symmetric-rotor'")["torsion"])
+    stuck = [n for n in res.notices if "never left one state" in n]
+    assert not stuck or not any(f"(e.g. {t} in" in stuck[0] for t in rotor_torsions)

@@ -37,7 +37,10 @@ def _convergence(page, figs):
         parts.append(f"<p>Start dropped from every replica before the analysis (<code>discard = "
                      f"{_e(dropped.get('requested'))}</code>): {_e(spans)}.</p>")
     ok = table["verdict"] == "converged"
-    parts.append(f"<p><b>{int(ok.sum())} of {len(table)} type(s) converged.</b></p>")
+    single = int((ok & (table["n_states"] == 1)).sum()) if "n_states" in table else 0
+    parts.append(f"<p><b>{int(ok.sum())} of {len(table)} type(s) converged</b>"
+                 + (f" ({single} of them with a scheme of one state, a symmetric rotor: converged by definition)"
+                    if single else "") + ".</p>")
     # (a type whose scheme has one state, a symmetric rotor, cannot change state: not listed)
     movable = table["n_states"] > 1 if "n_states" in table else True
     frozen = (list(table["type"][~_as_bool(table["state_changes_seen"]) & movable])

@@ -194,6 +194,8 @@ def error_notices(pops, by_type, conf_type):
                    "fewer than two blocks of frames hold them (a single frame, or too few frames); their "
                    "errors and the pooled errors they enter are n/a.")
     stuck = pops[(pops["population"] == 1.0) & (pops["population_err"] == 0)]
+    # (a torsion whose scheme has one state, a symmetric rotor, stays in it by definition)
+    stuck = stuck[stuck["torsion"].map(pops["torsion"].value_counts()) > 1]
     if len(stuck):
         out.append(f"{stuck['torsion'].nunique()} torsion(s) never left one state (e.g. {stuck['torsion'].iloc[0]} in "
                    f"{stuck['state'].iloc[0]}): their error of 0 only says that no transition was seen, and their "
