@@ -229,6 +229,11 @@ def test_figures_overwrite_replaces_the_earlier_set_and_only_dihedras_figures(tm
     refused(figures_argv(out, "HEX:C1-C2-C3-C4", "--overwrite", "--format", "png,svg"), capsys, "populations.svg")
     assert snapshot(out) == before
     assert not [n for n in os.listdir(out / "figures") if n.endswith(".dihedra-tmp")]
+    # a report written into figures/ is not a figure of the earlier set
+    os.remove(out / "figures" / "populations.svg")
+    assert main(["report", str(out), "--out", str(out / "figures" / "page.html"), "--no-figures"]) == 0
+    assert main(figures_argv(out, "HEX:C1-C2-C3-C4", "--overwrite")) == 0
+    assert (out / "figures" / "page.html").exists()
 
 
 def test_remove_listed_files_deletes_only_listed_files_inside_the_folder(tmp_path):

@@ -208,8 +208,8 @@ def write_report(folder, out=None, width="single", figures=True, types=None, log
     out = os.path.abspath(out or os.path.join(folder, "report.html"))
     inside = is_inside(os.path.dirname(out), folder)
     if inside:
-        name = os.path.join(os.path.relpath(os.path.realpath(os.path.dirname(out)), os.path.realpath(folder)),
-                            os.path.basename(out))
+        name = os.path.normpath(os.path.join(os.path.relpath(os.path.realpath(os.path.dirname(out)),
+                                                             os.path.realpath(folder)), os.path.basename(out)))
         check_replaceable_in(folder, name)
         if os.path.lexists(out) and not file_head_contains(out, REPORT_SIGNATURE):   # (summary.json, a table...)
             raise OutputExistsError(f"{out} is one of the results folder's own files, not a report; it is left "

@@ -392,6 +392,7 @@ def write_figures(folder, formats=("pdf", "png"), width="single", types=None, ou
     base, sub = (os.fspath(folder), FIGURES_DIR) if out_dir is None else (os.fspath(out_dir), "")
     # the earlier set is taken before drawing: a file another run adds meanwhile is not this one's to remove
     earlier = earlier_outputs(base, prefixes=(FIGURES_DIR,)) if overwrite and out_dir is None else []
+    earlier = [f for f in earlier if f.rsplit(".", 1)[-1] in FORMATS]   # (figures only: not a report put there)
     names, paths = [], []
     with style():
         fset = figure_set(folder, width=width, types=types, log=log)
