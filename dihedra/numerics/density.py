@@ -12,7 +12,9 @@ Arrays in, arrays out; no results folders, no tables. The profiles of a tracking
   (Silverman's rule of thumb within states): sigma = 0.9 s n_eff^(-1/5), s the population-weighted
   within-arc standard deviation of the angle, at least the fine bin width.
 * **errors** -- a block bootstrap: blocks drawn with replacement within each replica; the error of
-  a histogram bin never below the counting floor kT sqrt(1/n - 1/N) (:func:`counting_error_floor`).
+  a histogram bin never below the counting floor kT sqrt(1/n - 1/N) (:func:`counting_error_floor`),
+  a kernel point never below its own, n the samples within its bandwidth
+  (:func:`kernel_counting_floor`).
 
 Stacks of torsions or types are handled at once (one array operation over the stack).
 
@@ -181,6 +183,28 @@ def counting_error_floor(counts, kt, count_scale=1.0):
     return np.where(counts > 0, floor, np.nan)
 
 
+def kernel_counting_floor(smooth, bandwidths_deg, fine_width, kt, count_scale=1.0):
+    """The counting floor of a kernel estimate of -kT ln p: kT sqrt(1/n_k - 1/N), NaN where empty.
+
+    A kernel estimate at a point averages the samples within about its bandwidth: with a Gaussian
+    kernel of standard deviation sigma, var(f_hat) / f^2 = R(K) / (N f) with R(K) = 1 / (2 sigma
+    sqrt(pi)) (Silverman, Density Estimation for Statistics and Data Analysis, 1986, section 3.3), so
+    the point counts as n_k = N f 2 sigma sqrt(pi) samples: the smoothed counts per degree times 2
+    sqrt(pi) sigma (the von Mises kernels here are narrow enough to be Gaussian). ``smooth``:
+    smoothed counts per fine bin (m, n), ``bandwidths_deg`` (m,), ``count_scale`` as for
+    :func:`counting_error_floor`.
+    """
+    smooth = np.asarray(smooth, dtype=float)
+    scale = np.asarray(count_scale, dtype=float)
+    scale = scale.reshape(scale.shape + (1,) * (smooth.ndim - scale.ndim)) if scale.ndim else scale
+    window = 2.0 * np.sqrt(np.pi) * np.asarray(bandwidths_deg, dtype=float).reshape(-1, 1)
+    n_k = smooth / fine_width * window * scale
+    total = (smooth * scale).sum(axis=-1, keepdims=True)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        floor = kt * np.sqrt(np.clip(1.0 / n_k - 1.0 / total, 0.0, None))
+    return np.where(smooth > 0, floor, np.nan)
+
+
 def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0):
     """Histogram profiles of a stack of torsions or types, as one Profile1D with a leading axis.
 
@@ -271,16 +295,19 @@ def _kernel_setup(fine_block_counts, bandwidths, fine_width):
     return bws, smooth, sampled, smooth_blocks
 
 
-def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width):
+def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0):
     """Kernel profiles of a stack of fine block histograms (n_blocks, m, n_fine), as one Profile1D.
 
-    Smoothing is linear, so the resamples are the resampled sums of the smoothed blocks.
+    Smoothing is linear, so the resamples are the resampled sums of the smoothed blocks. The error
+    of a sampled point is at least its counting floor (:func:`kernel_counting_floor`).
     """
     bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
     density, free = free_energy_from_counts(smooth, fine_width, kt)
     bsmooth = np.clip(np.tensordot(smooth_blocks * sampled, mult, axes=(0, 1)), 0.0, None)  # (m, n, n_boot)
     bfree = _resampled_free_energy(bsmooth, fine_width, kt)
     err, frac = _spread_last(bfree)
+    err = np.where(sampled & (smooth > 0), np.fmax(err, kernel_counting_floor(smooth, bws, fine_width, kt,
+                                                                             count_scale)), err)
     return Profile1D(angle_deg=bin_centres(smooth.shape[-1]), samples=smooth, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
                      sampled=sampled & (smooth > 0), boot_free_energy=bfree, boot_valid_fraction=frac,

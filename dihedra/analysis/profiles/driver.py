@@ -415,7 +415,7 @@ def _type_stack(s, order, members):
     bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), [s.scheme.for_type(t) for t in order],
                       [s.neff[members[t]].sum() for t in order], s.fine)
     hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale)
-    kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine)
+    kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine, s.count_scale)
     rows = _stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack,
                          (bws, kstack.samples, kstack.density_per_deg, kstack.free_energy_kj_mol,
                           np.where(kstack.sampled, kstack.free_energy_err_kj_mol, np.nan), kstack.sampled),
@@ -432,7 +432,7 @@ def _torsion_stack(span, s, codes):
                       s.neff[start:stop], s.fine)
     hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale)
     rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
-                         _kernel_columns(sub, s.mult, s.kt, bws, s.fine),
+                         _kernel_columns(sub, s.mult, s.kt, bws, s.fine, s.count_scale),
                          _state_free_energy_stack(s.state_counts[:, start:stop, :], s.kt, s.smult), s.kt)
     return bws, rows
 

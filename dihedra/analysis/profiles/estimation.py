@@ -52,8 +52,8 @@ from ...numerics.density import (KERNEL_FLOOR, Profile1D, _circular_deviation_de
                                  _histogram_stack, _kernel_setup, _kernel_stack, _resampled_free_energy,
                                  _row_min, _spread_last, _unstack, _von_mises_transform, bin_centres,
                                  bootstrap_multiplicities, bootstrap_spread, counting_error_floor,
-                                 default_bandwidths_deg, effective_samples, free_energy_from_counts, rebin,
-                                 von_mises_smooth)
+                                 default_bandwidths_deg, effective_samples, free_energy_from_counts,
+                                 kernel_counting_floor, rebin, von_mises_smooth)
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
 DEFAULT_BIN_WIDTH_DEG = 5.0
@@ -141,7 +141,7 @@ def _profiles_from_blocks(block_counts, mult, kt, width, count_scale=1.0):
     return _unstack(_histogram_stack(block_counts, mult, kt, width, count_scale))
 
 
-def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width):
+def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0):
     """Kernel profiles of a stack without keeping the resamples (per-torsion rows).
 
     Returns the bandwidths (m,) and (m, n) arrays: smoothed counts, density, free energy (shifted),
@@ -155,7 +155,7 @@ def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width):
     t_b = T_b / S, so sums over resamples of ln g, (ln g)^2 and ln g ln t give the variance
     (relative accuracy about 1e-5). Points where some resample has no positive density are
     recomputed exactly in double precision, leaving those resamples out as :func:`bootstrap_spread`
-    does.
+    does. No error is below the point's counting floor (``kernel_counting_floor``).
     """
     bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
     density, free = free_energy_from_counts(smooth, fine_width, kt)
@@ -189,13 +189,13 @@ def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width):
             bfree = -kt * (np.log(boot) - np.log(total[:, k] * fine_width))
         bfree[~(boot > 0)] = np.nan
         err[k, x] = bootstrap_spread(bfree)[0]
-    err = np.where(ok, err, np.nan)
+    err = np.where(ok, np.fmax(err, kernel_counting_floor(smooth, bws, fine_width, kt, count_scale)), np.nan)
     return bws, smooth, density, free - _row_min(free)[:, None], err, ok
 
 
-def _kernel_profiles(fine_block_counts, mult, kt, bandwidths, fine_width):
+def _kernel_profiles(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0):
     """Kernel profiles for a stack of fine block histograms (n_blocks, m, n_fine)."""
-    return _unstack(_kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width))
+    return _unstack(_kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale))
 
 
 def default_bandwidth_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
