@@ -253,16 +253,16 @@ def test_types_take_shell_style_patterns(tmp_path, capsys):
     # fnmatch's patterns (Python's standard library), matched against the folder's own types
     import argparse
 
-    from dihedra.cli.common import expand_type_patterns
+    from dihedra.cli.common import expand_types_option
 
     folder = tmp_path / "res"
     folder.mkdir()
     (folder / "torsions.csv").write_text("torsion,type\nL1:a,POPE:C22-C23\nL1:b,POPE:C210-C211\nL1:c,ALA:phi\n")
     args = argparse.Namespace(folder=str(folder), types=["POPE:C2*", "ALA:phi", "POPE:C22-C23"])
-    expand_type_patterns(args)
+    expand_types_option(args)
     assert args.types == ["POPE:C22-C23", "POPE:C210-C211", "ALA:phi"]
     plain = argparse.Namespace(folder=str(folder), types=["ALA:phi"])
-    expand_type_patterns(plain)
+    expand_types_option(plain)
     assert plain.types == ["ALA:phi"]
     code, _, err = run_cli(capsys, "kinetics", folder, "--types", "GLY:*")
     assert_one_line_error(code, err, "GLY:*", "matches")

@@ -93,5 +93,6 @@ def test_torsions_given_by_atoms_that_are_not_bonded_in_a_chain_get_a_notice(tmp
     across = select_torsions(u, ["0,1,2,6"])
     assert any("1 torsion(s) are not a chain of bonded atoms" in n and "0 1 2 6" in n for n in across.notices)
     path = tmp_path / "t.toml"
-    path.write_text('[[torsion]]\nname = "skew"\natoms = [0, 2, 1, 3]\n[[torsion]]\nname = "ok"\natoms = [2, 3, 4, 5]\n')
+    path.write_text('[[torsion]]\nname = "skew"\natoms = [0, 2, 1, 3]\n'
+                    '[[torsion]]\nname = "ok"\natoms = [2, 3, 4, 5]\n')
     assert any("1 torsion(s)" in n and "skew" in n for n in select_torsions(u, str(path)).notices)

@@ -187,13 +187,13 @@ def _main(argv):
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", module="MDAnalysis")
     from ..io.outputs import COMMITTED
-    from .common import expand_type_patterns
+    from .common import expand_types_option
 
     committed = len(COMMITTED)
     finished = False
     with stop_signals(restore=argv is not None) as received:
         try:
-            expand_type_patterns(args)
+            expand_types_option(args)
             status = args.func(args)
             if received:   # a signal whose raise Python swallowed: the command still ends as interrupted
                 finished = True

@@ -8,7 +8,7 @@ import sys
 import numpy as np
 
 from ..errors import DihedraError
-from ..selection.torsions import expand_type_patterns as expand_type_patterns_in, has_pattern
+from ..selection.torsions import expand_type_patterns, has_pattern
 
 
 def add_torsion_options(parser, required=True):
@@ -78,7 +78,7 @@ def add_types_option(parser, what, former=()):
         add_renamed(parser, old, "--types", "types", nargs="+", action=_Extend)
 
 
-def expand_type_patterns(args):
+def expand_types_option(args):
     """``--types`` with shell-style patterns (``'POPE:C2*'``, ``'*:chi1'``): each pattern becomes
     the matching types of the results folder ``args.folder``, in the folder's order (names without
     ``*``, ``?`` or ``[`` are left to the command). A pattern that matches nothing is an error."""
@@ -91,7 +91,7 @@ def expand_type_patterns(args):
         known = list(dict.fromkeys(read_table(folder, "torsions.csv", columns=["type"])["type"].astype(str)))
     except DihedraError:
         return   # (no results folder: the command says so itself)
-    args.types = expand_type_patterns_in(types, known, f"--types (in {folder})")
+    args.types = expand_type_patterns(types, known, f"--types (in {folder})")
 
 
 def add_overwrite_option(parser, what):

@@ -3,8 +3,8 @@
 Every file dihedra writes goes through this module:
 
 - A **results folder** is assembled in a hidden staging folder beside it
-  (:class:`~dihedra.io.staging.StagedFolder`) and moved into place in one rename at the end, so an interrupted run
-  never leaves a half-written folder. Its list of files, ``dihedra-files.json`` (:data:`MARKER`),
+  (:class:`~dihedra.io.staging.StagedFolder`) and moved into place in one rename at the end, so an
+  interrupted run never leaves a half-written folder. Its list of files, ``dihedra-files.json`` (:data:`MARKER`),
   names every file dihedra wrote into it; analyses that add files later add their names.
 - ``--overwrite`` replaces only a folder that has this list and holds nothing else (a user's
   NOTES.md or plots/ in it make dihedra refuse), never a folder that holds an input of the run, the
@@ -403,8 +403,8 @@ def write_file(folder, name, write, *, marked=True):
     """Write ``folder/name`` through ``write(tmp_path)`` under a temporary name, then rename it
     into place; return the path.
 
-    ``name`` may hold subfolders (``figures/x.png``; they are created, as is ``folder``). When ``marked`` (the
-    default), an existing file is replaced only if the folder's marker lists it, and the name is
+    ``name`` may hold subfolders (``figures/x.png``; they are created, as is ``folder``). When
+    ``marked`` (the default), an existing file is replaced only if the folder's marker lists it, and the name is
     added to the list (a folder without a marker gets one). ``marked=False`` is for single files
     whose target was checked by :func:`check_single_file`.
     """

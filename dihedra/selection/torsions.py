@@ -287,8 +287,9 @@ def expand_type_patterns(names, known, where="types"):
             continue
         hits = [k for k in known if fnmatch.fnmatchcase(k, str(name))]
         if not hits:
-            raise SelectionError(f"{where} {name}: no torsion type matches this pattern; the types are "
-                                 f"{', '.join(known[:6])}" + (" ..." if len(known) > 6 else "") + " (see torsions.csv).")
+            shown = ", ".join(known[:6]) + (" ..." if len(known) > 6 else "")
+            raise SelectionError(f"{where} {name}: no torsion type matches this pattern; the types are {shown} "
+                                 "(see torsions.csv).")
         out.extend(hits)
     return list(dict.fromkeys(out))
 
