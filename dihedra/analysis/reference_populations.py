@@ -101,7 +101,8 @@ def _union_population(result, positions, codes):
     counts = np.asarray(result.blocks["state_counts"], dtype=float)[:, positions, :]
     value = counts[:, :, codes].sum(axis=2)
     total = counts.sum(axis=2)
-    mean, se, _ = blocking_error(value, total, result.blocks["block_replica"])
+    # (the torsions of one type share a correlation time, as in the populations table)
+    mean, se, _ = blocking_error(value, total, result.blocks["block_replica"], pool=np.zeros(len(positions), int))
     return float(mean.mean()), float(np.sqrt(np.sum(se ** 2)) / len(positions))
 
 

@@ -343,7 +343,7 @@ def _block_mean_error(v, w, n, width, mean, se):
 
 @njit(**_OPTS)
 def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level_sizes, use_first,
-                     replica, n_replicas, mean, se, n_eff):
+                     replica, n_replicas, mean, se, n_eff, level_se):
     """Flyvbjerg-Petersen blocking of every column of ``values`` (n_blocks, n_columns) with the
     weight sums ``weights[:, weight_column[c]]`` for column c (``weights`` of shape (n_blocks,
     n_weight_columns): one column of weights may serve several of values, without a copy), as
@@ -352,8 +352,10 @@ def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level
     ``kept`` are the blocks with weight; ``pair_a``, ``pair_b`` the blocks merged at each level
     (indices into the previous level, the levels' sizes in ``level_sizes``, every one of them used);
     ``use_first``: the first level is used too; ``replica`` (0 .. n_replicas - 1) of each kept
-    block for the last level, one block per replica, when ``n_replicas >= 2``. Columns go in
-    tiles through all the levels while the tile stays in the cache.
+    block for the last level, one block per replica, when ``n_replicas >= 2``. ``level_se`` (1 +
+    len(level_sizes), n_columns) receives the standard error of every level: row 0 the kept
+    blocks as they are, row k the k-th merged level. Columns go in tiles through all the levels
+    while the tile stays in the cache.
     """
     n_cols = values.shape[1]
     n0 = len(kept)
@@ -365,7 +367,7 @@ def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level
     nxt_w = np.empty((rows, tile))
     first = np.empty(tile)
     best = np.empty(tile)
-    level_se = np.empty(tile)
+    merged_se = np.empty(tile)
     replica_se = np.empty(tile)
     n_samples = np.empty(tile)
     for c0 in range(0, n_cols, tile):
@@ -382,6 +384,7 @@ def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level
         _block_mean_error(cur_v, cur_w, n0, width, mean[c0:c0 + width], first)
         for c in range(width):
             best[c] = first[c] if use_first else np.nan
+            level_se[0, c0 + c] = first[c]
         # the replica level (one block per replica) from the kept blocks, before they are merged
         if n_replicas >= 2:
             nxt_v[:n_replicas, :width] = 0.0
@@ -392,7 +395,9 @@ def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level
                     nxt_w[replica[i], c] += cur_w[i, c]
             _block_mean_error(nxt_v, nxt_w, n_replicas, width, n_eff[c0:c0 + width], replica_se)
         off = 0
+        level = 0
         for n in level_sizes:
+            level += 1
             for i in range(n):
                 a = pair_a[off + i]
                 b = pair_b[off + i]
@@ -402,9 +407,10 @@ def blocking_columns(values, weights, weight_column, kept, pair_a, pair_b, level
             off += n
             cur_v, nxt_v = nxt_v, cur_v
             cur_w, nxt_w = nxt_w, cur_w
-            _block_mean_error(cur_v, cur_w, n, width, n_eff[c0:c0 + width], level_se)
+            _block_mean_error(cur_v, cur_w, n, width, n_eff[c0:c0 + width], merged_se)
             for c in range(width):
-                best[c] = _fmax(best[c], level_se[c])
+                best[c] = _fmax(best[c], merged_se[c])
+                level_se[level, c0 + c] = merged_se[c]
         for c in range(width):
             b = best[c]
             if b != b:

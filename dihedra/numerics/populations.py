@@ -3,7 +3,9 @@
 Functions here turn the block sums of the trajectory pass into tidy tables:
 
 * per torsion: the fraction of (weighted) frames in each state, with the blocking standard error
-  (:func:`dihedra.numerics.statistics.blocking_error`) and the effective sample size it implies;
+  (:func:`dihedra.numerics.statistics.blocking_error`), raised for the bias of a run of few
+  correlation times with one correlation time fitted per type and state
+  (:mod:`dihedra.numerics.blocking_bias`), and the effective sample size it implies;
 * per replica: the same for each replica alone;
 * per type: the mean over the torsions of a type; its standard error is sqrt(sum se_i^2) / n for
   torsions that are copies of one molecule, and includes the spread between the torsions when they
@@ -20,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from .heterogeneity import pooled_mean_error
-from .statistics import blocking_error
+from .statistics import BlockingLevels, blocking_error, short_run_errors
 
 #: Below this many effective samples a population's error bar is itself rough.
 MIN_EFFECTIVE_SAMPLES = 20
@@ -48,11 +50,18 @@ def torsion_populations(state_counts, block_replica, labels, types, state_labels
     n_b, n_t, n_s = state_counts.shape
     mean, se, n_eff, n_samples = (np.empty((n_t, n_s)) for _ in range(4))
     step = max(1, _WORK_VALUES // max(1, n_b * n_s))   # (torsions at a time: the errors are per torsion)
+    found = []
     for lo in range(0, n_t, step):
         counts = state_counts[:, lo:lo + step].astype(float)
         totals = counts.sum(axis=2, keepdims=True)  # valid frames per block and torsion
-        mean[lo:lo + step], se[lo:lo + step], n_eff[lo:lo + step] = blocking_error(counts, totals, block_replica)
+        mean[lo:lo + step], se[lo:lo + step], n_eff[lo:lo + step], levels = blocking_error(
+            counts, totals, block_replica, short_run=False, levels=True)
+        found.append(levels)
         n_samples[lo:lo + step] = totals.sum(axis=0)
+    if found:   # the short-run correction, one correlation time per type and state (copies share it)
+        type_code = pd.factorize(pd.Series(types, dtype=object))[0] if n_t else np.zeros(0, dtype=np.int64)
+        pool = type_code[:, None] * n_s + np.arange(n_s)[None, :]
+        se, n_eff = short_run_errors(mean, se, n_eff, BlockingLevels.joined(found), pool)
     if np.all(n_samples == np.round(n_samples)):  # frame counts (unweighted run)
         n_samples = n_samples.astype(np.int64)
     rows = np.arange(n_t * n_s)
@@ -188,7 +197,8 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     group_types = [" | ".join(types[p] for p in m) for m in members]
     type_names = _short_type_names(group_types, resnames, members)
     pair_group, pair_code, mean, se, n_eff = _conformer_columns(rows, weights, len(groups), n_blocks,
-                                                                block_replica, dense)
+                                                                block_replica, dense,
+                                                                pd.factorize(pd.Series(type_names, dtype=object))[0])
     width = np.array([len(m) for m in members], dtype=np.int64)
     names = np.array(groups, dtype=object)
     joined = np.array(["|".join(labels[p] for p in m) for m in members], dtype=object)
@@ -211,10 +221,11 @@ def conformer_populations(rows, weights, block_replica, n_blocks, groups, member
     return by_group, pooled
 
 
-def _conformer_columns(rows, weights, n_groups, n_blocks, block_replica, dense):
+def _conformer_columns(rows, weights, n_groups, n_blocks, block_replica, dense, group_type=None):
     """Population, error and effective samples of every observed (group, joint code), in group and
     code order: the sparse rows taken in slices of about _WORK_VALUES block x column cells (memory
-    stays bounded), the densely counted classes in their own pieces."""
+    stays bounded), the densely counted classes in their own pieces. The short-run correction of
+    the errors is fitted per conformer of a group type (``group_type``: a number per group)."""
     rows = np.asarray(rows, dtype=np.int64).reshape(-1, 4)
     weights = np.asarray(weights, dtype=float)
     order = np.lexsort((rows[:, 2], rows[:, 1]))
@@ -235,11 +246,36 @@ def _conformer_columns(rows, weights, n_groups, n_blocks, block_replica, dense):
         parts.extend(_dense_blocking(gids, counts, wts, block_replica))
     if not parts:
         return (np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64), np.empty(0), np.empty(0), np.empty(0))
-    columns = [np.concatenate(x) for x in zip(*parts)]
+    columns = [np.concatenate(x) for x in zip(*(p[:5] for p in parts))]
+    columns[3], columns[4] = _conformer_short_run(columns, parts, group_type)
     if dense:   # the columns in group and code order, as from rows alone
         order = np.lexsort((columns[1], columns[0]))
         columns = [x[order] for x in columns]
     return tuple(columns)
+
+
+def _conformer_short_run(columns, parts, group_type):
+    """Errors and effective samples of the conformer columns raised for a short run
+    (:func:`~dihedra.numerics.statistics.short_run_errors`), one correlation time per group type
+    and conformer, fitted over the parts whose blocking had the same levels. Each part carries the
+    levels of its columns (NaN for a column corrected alone already: a group with empty blocks
+    where the others have frames) or ``None`` (all of them corrected alone)."""
+    pair_group, pair_code, mean, se, n_eff = (np.array(c) for c in columns)
+    kind = (np.zeros(len(pair_group), dtype=np.int64) if group_type is None
+            else np.asarray(group_type, dtype=np.int64)[pair_group])
+    pool = pd.factorize(pd.Series(kind * (int(pair_code.max(initial=0)) + 1) + pair_code))[0]
+    ends = np.cumsum([len(p[0]) for p in parts])
+    spans = [np.arange(end - len(p[0]), end) for p, end in zip(parts, ends)]
+    alike = {}
+    for p, cols in zip(parts, spans):
+        if p[5] is not None:
+            alike.setdefault(tuple(p[5].n_blocks), []).append((p[5], cols))
+    for group in alike.values():
+        cols = np.concatenate([c for _, c in group])
+        levels = BlockingLevels(np.concatenate([f.se for f, _ in group], axis=1), group[0][0].n_blocks,
+                                group[0][0].n_replicas)
+        se[cols], n_eff[cols] = short_run_errors(mean[cols], se[cols], n_eff[cols], levels, pool[cols])
+    return se, n_eff
 
 
 def _pooled_conformers(group_type, group, conformer, population, population_err):
@@ -321,7 +357,9 @@ def _dense_blocking(gids, counts, weights, block_replica):
 
 def _column_blocking(table, totals, local, block_replica):
     """mean, se, n_effective of the columns of ``table`` (n_blocks, n_pairs), column k belonging
-    to group ``local[k]`` with weight sums ``totals[:, local[k]]``."""
+    to group ``local[k]`` with weight sums ``totals[:, local[k]]``, and the
+    :class:`~dihedra.numerics.statistics.BlockingLevels` of the columns blocked together (NaN for
+    those blocked, and corrected for a short run, alone; ``None`` if all were)."""
     n_pairs = table.shape[1]
     mean, se, n_eff = np.empty(n_pairs), np.empty(n_pairs), np.empty(n_pairs)
     # blocking over all groups at once; a group with an empty block where others have frames
@@ -329,15 +367,20 @@ def _column_blocking(table, totals, local, block_replica):
     used = totals.sum(axis=1) > 0
     regular = np.all((totals > 0) == used[:, None], axis=0)[local]
     cols = np.flatnonzero(regular)
+    found = None
     if len(cols) == n_pairs:   # (the usual case: no copy of the table or of the weights)
-        mean[:], se[:], n_eff[:] = blocking_error(table, totals, block_replica, weight_columns=local)
+        mean[:], se[:], n_eff[:], found = blocking_error(table, totals, block_replica, weight_columns=local,
+                                                         short_run=False, levels=True)
     elif len(cols):
-        mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals, block_replica,
-                                                           weight_columns=local[cols])
+        mean[cols], se[cols], n_eff[cols], part = blocking_error(table[:, cols], totals, block_replica,
+                                                                 weight_columns=local[cols], short_run=False,
+                                                                 levels=True)
+        found = BlockingLevels(np.full((len(part.n_blocks), n_pairs), np.nan), part.n_blocks, part.n_replicas)
+        found.se[:, cols] = part.se
     for g in np.unique(local[~regular]):
         cols = np.flatnonzero(local == g)
         mean[cols], se[cols], n_eff[cols] = blocking_error(table[:, cols], totals[:, g], block_replica)
-    return mean, se, n_eff
+    return mean, se, n_eff, found
 
 
 def _conformer_labels(codes, widths, state_labels):
