@@ -20,8 +20,20 @@ Every analysis takes such a result as its first argument and returns a result ob
 DataFrames with a ``save(folder)`` method.
 """
 
-from ._version import __version__
-from .errors import DihedraError
+import os as _os
+import signal as _signal
+import sys as _sys
+
+#: SIGINT noted while the command line loads (see :func:`dihedra.cli.main`). As ``python -m
+#: dihedra`` (argv[0] is "-m" while the package is found) or the ``dihedra`` script, Ctrl-C is noted
+#: from the first import on: a KeyboardInterrupt raised inside the imports would end in a
+#: traceback or be swallowed by them. A program that imports dihedra keeps its own handler.
+EARLY_SIGINT = []
+if _sys.argv[:1] == ["-m"] or _os.path.basename(_sys.argv[0] if _sys.argv else "") == "dihedra":
+    _signal.signal(_signal.SIGINT, lambda signum, frame: EARLY_SIGINT.append(signum))
+
+from ._version import __version__  # noqa: E402
+from .errors import DihedraError  # noqa: E402
 
 # The public names, imported when first used (PEP 562): ``import dihedra`` stays light, so that
 # the command line can take over Ctrl-C before MDAnalysis, pandas and numba are loaded.

@@ -18,8 +18,10 @@ import os
 import pkgutil
 import signal
 import sys
+import threading
 import warnings
 
+from .. import EARLY_SIGINT
 from .._version import __version__
 from ..errors import DihedraError
 
@@ -83,9 +85,9 @@ def main(argv=None):
         # small Markov matrices of kinetics gain nothing from threads, and on a busy machine its
         # conformer models took 27 s instead of 2.3 s with them
         os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-    if argv is None:
-        _note_early_interrupts()
     try:
+        if argv is None:
+            _note_early_interrupts()
         status = _main(argv)
     except KeyboardInterrupt:   # Ctrl-C while the commands were still being loaded: nothing was done
         print("dihedra: interrupted (SIGINT); stopped before any work (nothing was written).", file=sys.stderr)
@@ -153,8 +155,9 @@ def _release_process_resources():
             pass
 
 
-#: SIGINT received while the command's modules were loading (see :func:`_note_early_interrupts`).
-_EARLY = []
+#: SIGINT received while the command's modules were loading (see :func:`_note_early_interrupts`;
+#: the package notes those that come while it is imported as the command line).
+_EARLY = EARLY_SIGINT
 
 
 def _note_early_interrupts():
@@ -162,8 +165,6 @@ def _note_early_interrupts():
     ``KeyboardInterrupt`` raised inside the import machinery can land in one of its callbacks,
     where Python prints "Exception ignored" and goes on, and the command would then run as if
     never interrupted. The command stops, before any work, as soon as its modules are loaded."""
-    import threading
-
     if threading.current_thread() is threading.main_thread():
         signal.signal(signal.SIGINT, lambda signum, frame: _EARLY.append(signum))
 
