@@ -13,8 +13,9 @@ correlation times, the variance of the mean of a stretch of span y is sigma^2 g(
 
     g(y) = 2 (y - 1 + exp(-y)) / y^2
 
-(the integral of the exponential autocorrelation over a block; e.g. M. P. Allen & D. J.
-Tildesley, Computer Simulation of Liquids, 2nd ed., 2017, sec. 8.4), and a level of N blocks
+(the double integral of the exponential autocorrelation over a block: common practice, e.g. M. P.
+Allen & D. J. Tildesley, Computer Simulation of Liquids, 2nd ed., 2017, ch. 8, cited from
+memory), and a level of N blocks
 (n per replica, R replicas) gives an expected squared error of
 
     E[se^2] = sigma^2 (R g(X / n) - g(X)) / (N - 1),
@@ -27,9 +28,11 @@ squared error taken as a scaled chi-square variable with N - 1 degrees of freedo
 squared error without the bias. The corrected error is the larger of this and the blocking
 error (never smaller than before), the variance factor at most :data:`MAX_VARIANCE_FACTOR`.
 
-Checked against two- and three-state Markov chains (``tests/test_blocking_bias.py``): 100
-torsions of runs of 4, 8, 20 and 80 tau; the root-mean-square error against the spread of their
-means goes from 0.44-0.99 (blocking alone) to 0.97-1.10 with the pooled correction.
+Checked against two-state Markov chains with the exact variance of their time average
+(``tests/test_blocking_bias.py``): for 100 copies over runs of 8, 20 and 200 tau the
+root-mean-square error over the exact one goes from 0.58, 0.80 and 1.06 (blocking alone) to 1.03,
+1.02 and 1.07. Three-state chains (anti and two gauche wells) and two-state chains with one frame
+in twenty recorded in the wrong state gave 0.97-1.10 at 8, 20 and 80 tau, against 0.57-1.06.
 """
 
 import numpy as np

@@ -205,7 +205,45 @@ def kernel_counting_floor(smooth, bandwidths_deg, fine_width, kt, count_scale=1.
     return np.where(smooth > 0, floor, np.nan)
 
 
-def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0):
+def short_run_spread(err, floor, ratio):
+    """Bootstrap spreads ``err`` (m, n) of the bins of a stack raised for the bias of a short run.
+
+    Resampling blocks that are not much longer than the correlation time sees only part of the
+    correlated variance: ``ratio`` (m,) of it (:func:`dihedra.numerics.blocking_bias.level_ratio`
+    at the span fitted to the state populations; 1 leaves the spread as it is). The counting floor
+    ``floor`` (:func:`counting_error_floor`) is the uncorrelated (binomial) part of a bin's
+    variance, which the blocks do see in full; only the part above it is divided by the ratio.
+    Returns the spread and its factor over ``err`` (1 where there is none), by which the
+    resamples are stretched (:func:`stretch_resamples`).
+
+    >>> spread, factor = short_run_spread(np.array([[0.5, 0.1]]), np.array([[0.3, 0.2]]), [0.25])
+    >>> spread.round(3).tolist(), factor.round(3).tolist()
+    ([[0.854, 0.1]], [[1.709, 1.0]])
+    """
+    err = np.asarray(err, dtype=float)
+    r = np.asarray(ratio, dtype=float).reshape((-1,) + (1,) * (err.ndim - 1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        excess = np.where(np.isfinite(floor) & np.isfinite(err), np.clip(err ** 2 - np.asarray(floor) ** 2, 0.0, None), 0.0)
+        spread = np.sqrt(err ** 2 + excess * (1.0 / r - 1.0))
+        factor = np.where(err > 0, spread / err, 1.0)
+    return np.where(np.isfinite(spread), spread, err), np.where(np.isfinite(factor), factor, 1.0)
+
+
+def stretch_resamples(boot, factor):
+    """Resamples (m, n, n_boot) with their deviations from their mean (over the finite ones)
+    multiplied by ``factor`` (m, n): what is derived from them (barrier heights, minima) carries
+    the raised spread of :func:`short_run_spread`."""
+    factor = np.asarray(factor, dtype=float)
+    if np.all(factor == 1.0):
+        return boot
+    finite = np.isfinite(boot)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = np.where(finite, boot, 0.0).sum(axis=-1) / finite.sum(axis=-1)
+        stretched = centre[..., None] + (boot - centre[..., None]) * factor[..., None]
+    return np.where(finite, stretched, boot)
+
+
+def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0, ratio=None):
     """Histogram profiles of a stack of torsions or types, as one Profile1D with a leading axis.
 
     ``block_counts`` (n_blocks, m, n_bins); the fields of the result are (m, n_bins) arrays and
@@ -213,7 +251,8 @@ def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0):
     no sample in a bin (:func:`_unstack` gives single profiles in the documented layout). The
     error of a sampled bin is the larger of the bootstrap spread and the counting floor
     (:func:`counting_error_floor`, effective samples ``count_scale`` per count: a scalar or one
-    per row).
+    per row), the spread raised for a short run by ``ratio`` (one per row; see
+    :func:`short_run_spread`).
     """
     block_counts = np.asarray(block_counts, dtype=float)
     counts = block_counts.sum(axis=0)
@@ -221,6 +260,9 @@ def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0):
     boot_free = _resampled_free_energy(np.tensordot(block_counts, mult, axes=(0, 1)), width, kt)
     err, frac = _spread_last(boot_free)
     floor = counting_error_floor(counts, kt, count_scale)
+    if ratio is not None:
+        err, factor = short_run_spread(err, floor, ratio)
+        boot_free = stretch_resamples(boot_free, factor)
     err = np.where(counts > 0, np.fmax(err, floor), err)
     return Profile1D(angle_deg=bin_centres(counts.shape[-1]), samples=counts, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
@@ -295,19 +337,23 @@ def _kernel_setup(fine_block_counts, bandwidths, fine_width):
     return bws, smooth, sampled, smooth_blocks
 
 
-def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0):
+def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0, ratio=None):
     """Kernel profiles of a stack of fine block histograms (n_blocks, m, n_fine), as one Profile1D.
 
     Smoothing is linear, so the resamples are the resampled sums of the smoothed blocks. The error
-    of a sampled point is at least its counting floor (:func:`kernel_counting_floor`).
+    of a sampled point is at least its counting floor (:func:`kernel_counting_floor`); ``ratio``
+    raises the spread for a short run (:func:`short_run_spread`).
     """
     bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
     density, free = free_energy_from_counts(smooth, fine_width, kt)
     bsmooth = np.clip(np.tensordot(smooth_blocks * sampled, mult, axes=(0, 1)), 0.0, None)  # (m, n, n_boot)
     bfree = _resampled_free_energy(bsmooth, fine_width, kt)
     err, frac = _spread_last(bfree)
-    err = np.where(sampled & (smooth > 0), np.fmax(err, kernel_counting_floor(smooth, bws, fine_width, kt,
-                                                                             count_scale)), err)
+    floor = kernel_counting_floor(smooth, bws, fine_width, kt, count_scale)
+    if ratio is not None:
+        err, factor = short_run_spread(err, floor, ratio)
+        bfree = stretch_resamples(bfree, factor)
+    err = np.where(sampled & (smooth > 0), np.fmax(err, floor), err)
     return Profile1D(angle_deg=bin_centres(smooth.shape[-1]), samples=smooth, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
                      sampled=sampled & (smooth > 0), boot_free_energy=bfree, boot_valid_fraction=frac,

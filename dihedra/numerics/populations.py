@@ -47,21 +47,10 @@ def torsion_populations(state_counts, block_replica, labels, types, state_labels
     n_samples
     """
     state_counts = np.asarray(state_counts)
-    n_b, n_t, n_s = state_counts.shape
-    mean, se, n_eff, n_samples = (np.empty((n_t, n_s)) for _ in range(4))
-    step = max(1, _WORK_VALUES // max(1, n_b * n_s))   # (torsions at a time: the errors are per torsion)
-    found = []
-    for lo in range(0, n_t, step):
-        counts = state_counts[:, lo:lo + step].astype(float)
-        totals = counts.sum(axis=2, keepdims=True)  # valid frames per block and torsion
-        mean[lo:lo + step], se[lo:lo + step], n_eff[lo:lo + step], levels = blocking_error(
-            counts, totals, block_replica, short_run=False, levels=True)
-        found.append(levels)
-        n_samples[lo:lo + step] = totals.sum(axis=0)
-    if found:   # the short-run correction, one correlation time per type and state (copies share it)
-        type_code = pd.factorize(pd.Series(types, dtype=object))[0] if n_t else np.zeros(0, dtype=np.int64)
-        pool = type_code[:, None] * n_s + np.arange(n_s)[None, :]
-        se, n_eff = short_run_errors(mean, se, n_eff, BlockingLevels.joined(found), pool)
+    n_t, n_s = state_counts.shape[1:]
+    mean, se, n_eff, n_samples, found = _state_blocking(state_counts, block_replica)
+    if found is not None:   # the short-run correction, one correlation time per type and state (copies share it)
+        se, n_eff = short_run_errors(mean, se, n_eff, found, _type_state_pools(types, n_s))
     if np.all(n_samples == np.round(n_samples)):  # frame counts (unweighted run)
         n_samples = n_samples.astype(np.int64)
     rows = np.arange(n_t * n_s)
@@ -74,6 +63,56 @@ def torsion_populations(state_counts, block_replica, labels, types, state_labels
         "n_effective": n_eff.reshape(-1),
         "n_samples": n_samples.reshape(-1),
     })
+
+
+def _state_blocking(state_counts, block_replica):
+    """Blocking of every (torsion, state) column, a slice of torsions at a time, without the
+    short-run correction: mean, se, n_eff, n_samples (n_torsions, n_states) and the joined
+    :class:`~dihedra.numerics.statistics.BlockingLevels` (``None`` without torsions)."""
+    n_b, n_t, n_s = state_counts.shape
+    mean, se, n_eff, n_samples = (np.empty((n_t, n_s)) for _ in range(4))
+    step = max(1, _WORK_VALUES // max(1, n_b * n_s))   # (torsions at a time: the errors are per torsion)
+    found = []
+    for lo in range(0, n_t, step):
+        counts = state_counts[:, lo:lo + step].astype(float)
+        totals = counts.sum(axis=2, keepdims=True)  # valid frames per block and torsion
+        mean[lo:lo + step], se[lo:lo + step], n_eff[lo:lo + step], levels = blocking_error(
+            counts, totals, block_replica, short_run=False, levels=True)
+        found.append(levels)
+        n_samples[lo:lo + step] = totals.sum(axis=0)
+    return mean, se, n_eff, n_samples, BlockingLevels.joined(found) if found else None
+
+
+def _type_state_pools(types, n_states):
+    """The pool of every (torsion, state) column: one per type and state."""
+    code = pd.factorize(pd.Series(list(types), dtype=object))[0] if len(types) else np.zeros(0, dtype=np.int64)
+    return code[:, None] * n_states + np.arange(n_states)[None, :]
+
+
+def type_spans(state_counts, block_replica, types):
+    """The length of each replica in correlation times, per torsion type: the shortest over the
+    type's states of the span fitted to the blocking levels of their populations (the torsions of
+    a type pooled; :func:`dihedra.numerics.blocking_bias.corrected_errors`). Returns {type: span},
+    NaN where none could be fitted (too few blocks, no state changes)."""
+    from .blocking_bias import MIN_LEVELS, corrected_errors
+
+    state_counts = np.asarray(state_counts)
+    n_t, n_s = state_counts.shape[1:]
+    if not n_t:
+        return {}
+    _, se, _, _, found = _state_blocking(state_counts, block_replica)
+    if len(found.n_blocks) < MIN_LEVELS:
+        return dict.fromkeys(types, np.nan)
+    _, span = corrected_errors(se.reshape(-1), found.se.reshape(len(found.n_blocks), -1), found.n_blocks,
+                               found.n_replicas, _type_state_pools(types, n_s).reshape(-1))
+    by_torsion = span.reshape(n_t, n_s)
+    out = {}
+    for t, row in zip(types, by_torsion):
+        if np.isfinite(row).any():
+            out[t] = min(out.get(t, np.inf), float(np.nanmin(row)))
+        else:
+            out.setdefault(t, np.nan)
+    return out
 
 
 def replica_populations(state_counts, block_replica, labels, types, state_labels, pooled=None):

@@ -32,7 +32,7 @@ from ...units import canonical_energy_unit, check_temperature, from_kj_mol, kt_k
 from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                          _bandwidths, _histogram_stack, _kernel_columns, _kernel_profiles, _kernel_stack,
                          _profiles_from_blocks, _unstack, bin_centres, bootstrap_multiplicities, check_bin_width,
-                         check_estimate_options, effective_count_scale, effective_samples, rebin)
+                         check_estimate_options, effective_count_scale, effective_samples, rebin, short_run_ratios)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
                        _state_free_energy_stack, mixture_notice, state_blocks,
                        with_spread_between_torsions)
@@ -103,7 +103,6 @@ def convert_energy_columns(frame, unit, temperature_k):
             out[col] = from_kj_mol(out[col].to_numpy(float), unit, temperature_k)
             rename[col] = col[: -len("kj_mol")] + suffix
     return out.rename(columns=rename)
-
 
 
 # ----------------------------------------------------------------------------------------------
@@ -229,13 +228,14 @@ def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, ba
     hist = kept_block(blocks, "histograms")   # (narrow counts: summed per type in float64)
     mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
     pooled = _pooled_counts(hist, order, members)
-    hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg, effective_count_scale(result))
+    ratio = short_run_ratios(result, order)
+    hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg, effective_count_scale(result), ratio)
     kprof = [None] * len(order)
     if kernel and order:
         neff = effective_samples(result.populations, result.torsion_set.labels)
         bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), [result.scheme.for_type(t) for t in order],
                           [neff[members[t]].sum() for t in order], fine)
-        kprof = _kernel_profiles(pooled, mult, kt, bws, fine)
+        kprof = _kernel_profiles(pooled, mult, kt, bws, fine, ratio=ratio)
     return {t: (h, k) for t, h, k in zip(order, hprof, kprof)}
 
 
@@ -366,7 +366,6 @@ class _ProfileTables:
                 t["dg"].frame({**cats, "state": list(state_labels), "reference_state": list(state_labels)}))
 
 
-
 @dataclass
 class _Stacks:
     """What every stack of torsions (or types) of one :func:`free_energy_profiles` call needs.
@@ -377,7 +376,8 @@ class _Stacks:
     fine bin width and ``factor`` the fine bins per histogram bin; ``neff`` the effective samples of
     each torsion (:func:`effective_samples`); ``types`` the type of each torsion (its own scheme
     when the run used a set of schemes); ``count_scale`` the effective samples per histogram count
-    (:func:`effective_count_scale`).
+    (:func:`effective_count_scale`); ``ratio`` of each torsion type the fraction of the correlated
+    variance that the bootstrap over blocks sees (:func:`short_run_ratios`).
     """
 
     hist: np.ndarray
@@ -394,6 +394,10 @@ class _Stacks:
     types: list
     n_blocks: int = 0
     count_scale: float = 1.0
+    ratio: dict = field(default_factory=dict)
+
+    def ratios(self, types):   # (one per row of a stack)
+        return np.array([self.ratio.get(t, 1.0) for t in types])
 
     @classmethod
     def of(cls, result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed):
@@ -402,11 +406,12 @@ class _Stacks:
         factor = check_bin_width(bin_width_deg, fine)
         mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
         sc, _, smult = state_blocks(result, n_bootstrap, seed)
-        hist = kept_block(blocks, "histograms")
+        hist, types = kept_block(blocks, "histograms"), list(result.torsion_set.types)
         return cls(hist=hist, n_blocks=int(hist.shape[0]), mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
                    factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg, scheme=result.scheme,
-                   neff=effective_samples(result.populations, result.torsion_set.labels),
-                   types=list(result.torsion_set.types), count_scale=effective_count_scale(result))
+                   neff=effective_samples(result.populations, result.torsion_set.labels), types=types,
+                   count_scale=effective_count_scale(result),
+                   ratio=dict(zip(dict.fromkeys(types), short_run_ratios(result, list(dict.fromkeys(types))))))
 
 
 def _type_stack(s, order, members):
@@ -414,13 +419,14 @@ def _type_stack(s, order, members):
     pooled = _pooled_counts(s.hist, order, members)
     bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), [s.scheme.for_type(t) for t in order],
                       [s.neff[members[t]].sum() for t in order], s.fine)
-    hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale)
-    kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine, s.count_scale)
+    ratio = s.ratios(order)
+    hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale, ratio)
+    kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine, s.count_scale, ratio)
     rows = _stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack,
                          (bws, kstack.samples, kstack.density_per_deg, kstack.free_energy_kj_mol,
                           np.where(kstack.sampled, kstack.free_energy_err_kj_mol, np.nan), kstack.sampled),
-                         _state_free_energy_stack(_pooled_counts(s.state_counts, order, members), s.kt, s.smult),
-                         s.kt)
+                         _state_free_energy_stack(_pooled_counts(s.state_counts, order, members), s.kt, s.smult,
+                                                  ratio), s.kt)
     return bws, rows, dict(zip(order, zip(_unstack(hstack), _unstack(kstack))))
 
 
@@ -430,10 +436,11 @@ def _torsion_stack(span, s, codes):
     sub = np.asarray(s.hist[:, start:stop, :], dtype=float)
     bws = _bandwidths(s.bandwidth_deg, sub.sum(axis=0), [s.scheme.for_type(t) for t in s.types[start:stop]],
                       s.neff[start:stop], s.fine)
-    hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale)
+    ratio = s.ratios(s.types[start:stop])
+    hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale, ratio)
     rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
-                         _kernel_columns(sub, s.mult, s.kt, bws, s.fine, s.count_scale),
-                         _state_free_energy_stack(s.state_counts[:, start:stop, :], s.kt, s.smult), s.kt)
+                         _kernel_columns(sub, s.mult, s.kt, bws, s.fine, s.count_scale, ratio),
+                         _state_free_energy_stack(s.state_counts[:, start:stop, :], s.kt, s.smult, ratio), s.kt)
     return bws, rows
 
 
@@ -459,8 +466,6 @@ def _ordered_map(func, items, threads):
                 yield pending.popleft().result()
         while pending:
             yield pending.popleft().result()
-
-
 
 
 # ----------------------------------------------------------------------------------------------

@@ -29,7 +29,11 @@ density; the free-energy origin carries no error) over the resamples in which th
 and never less than the counting floor of the histogram bin, kT sqrt(1/n - 1/N) for n effective
 samples in the bin of N (:func:`~dihedra.numerics.density.counting_error_floor`; a weighted
 run's effective samples from :func:`effective_count_scale`): a bin with a few samples leaves most
-blocks empty, and the bootstrap spread of such a bin collapses.
+blocks empty, and the bootstrap spread of such a bin collapses. In a run of few correlation times
+the blocks are correlated and the bootstrap sees only a fraction r of the correlated variance: the
+part of each bin's variance above its counting floor is divided by r, r from the span of the
+type's state populations (:func:`short_run_ratios`,
+:func:`~dihedra.numerics.density.short_run_spread`).
 
 Every estimate works on a *stack* of torsions or types at once (one array operation over the
 stack: the block bootstrap as one matrix product, free energies and their spread, kernel smoothing
@@ -53,7 +57,7 @@ from ...numerics.density import (KERNEL_FLOOR, Profile1D, _circular_deviation_de
                                  _row_min, _spread_last, _unstack, _von_mises_transform, bin_centres,
                                  bootstrap_multiplicities, bootstrap_spread, counting_error_floor,
                                  default_bandwidths_deg, effective_samples, free_energy_from_counts,
-                                 kernel_counting_floor, rebin, von_mises_smooth)
+                                 kernel_counting_floor, rebin, short_run_spread, von_mises_smooth)
 
 #: Default width of the histogram bins of 1-D profiles (degrees).
 DEFAULT_BIN_WIDTH_DEG = 5.0
@@ -136,12 +140,12 @@ def effective_count_scale(result):
 # Density estimates
 # ----------------------------------------------------------------------------------------------
 
-def _profiles_from_blocks(block_counts, mult, kt, width, count_scale=1.0):
+def _profiles_from_blocks(block_counts, mult, kt, width, count_scale=1.0, ratio=None):
     """Histogram profiles for a stack: block_counts (n_blocks, m, n_bins) -> list of Profile1D."""
-    return _unstack(_histogram_stack(block_counts, mult, kt, width, count_scale))
+    return _unstack(_histogram_stack(block_counts, mult, kt, width, count_scale, ratio))
 
 
-def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0):
+def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0, ratio=None):
     """Kernel profiles of a stack without keeping the resamples (per-torsion rows).
 
     Returns the bandwidths (m,) and (m, n) arrays: smoothed counts, density, free energy (shifted),
@@ -155,7 +159,8 @@ def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width, count_s
     t_b = T_b / S, so sums over resamples of ln g, (ln g)^2 and ln g ln t give the variance
     (relative accuracy about 1e-5). Points where some resample has no positive density are
     recomputed exactly in double precision, leaving those resamples out as :func:`bootstrap_spread`
-    does. No error is below the point's counting floor (``kernel_counting_floor``).
+    does. No error is below the point's counting floor (``kernel_counting_floor``); ``ratio``
+    raises the spread for a short run (``short_run_spread``).
     """
     bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
     density, free = free_energy_from_counts(smooth, fine_width, kt)
@@ -189,13 +194,37 @@ def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width, count_s
             bfree = -kt * (np.log(boot) - np.log(total[:, k] * fine_width))
         bfree[~(boot > 0)] = np.nan
         err[k, x] = bootstrap_spread(bfree)[0]
-    err = np.where(ok, np.fmax(err, kernel_counting_floor(smooth, bws, fine_width, kt, count_scale)), np.nan)
+    floor = kernel_counting_floor(smooth, bws, fine_width, kt, count_scale)
+    if ratio is not None:
+        err = short_run_spread(err, floor, ratio)[0]
+    err = np.where(ok, np.fmax(err, floor), np.nan)
     return bws, smooth, density, free - _row_min(free)[:, None], err, ok
 
 
-def _kernel_profiles(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0):
+def _kernel_profiles(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale=1.0, ratio=None):
     """Kernel profiles for a stack of fine block histograms (n_blocks, m, n_fine)."""
-    return _unstack(_kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale))
+    return _unstack(_kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_scale, ratio))
+
+
+def short_run_ratios(result, types):
+    """For each of ``types``: the fraction of the correlated variance that a bootstrap over the
+    histogram blocks sees (:func:`~dihedra.numerics.blocking_bias.level_ratio` of the blocks of
+    one replica at the type's span in correlation times, fitted to its state populations by
+    :func:`~dihedra.numerics.populations.type_spans`); 1 where no span could be fitted."""
+    from ...numerics.blocking_bias import MAX_VARIANCE_FACTOR, level_ratio
+    from ...numerics.populations import type_spans
+    from ...trajectory.result import kept_block
+
+    blocks = result.blocks
+    spans = type_spans(kept_block(blocks, "state_counts"), blocks["block_replica"], list(result.torsion_set.types))
+    replica = np.asarray(blocks["hist_block_replica"])
+    per_replica = len(replica) / max(1, len(np.unique(replica)))
+    out = np.ones(len(types))
+    for k, t in enumerate(types):
+        span = spans.get(t, np.nan)
+        if np.isfinite(span) and per_replica >= 2:
+            out[k] = max(float(level_ratio(span, per_replica)), 1.0 / MAX_VARIANCE_FACTOR)
+    return out
 
 
 def default_bandwidth_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):

@@ -100,8 +100,10 @@ def state_blocks(result, n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED):
     return counts, replica, mult
 
 
-def _state_free_energy_stack(state_counts, kt, mult):
-    """:func:`state_free_energies` for a stack: state_counts (n_blocks, m, n_states).
+def _state_free_energy_stack(state_counts, kt, mult, ratio=None):
+    """:func:`state_free_energies` for a stack: state_counts (n_blocks, m, n_states); the errors
+    divided by the square root of ``ratio`` (m,), the fraction of the variance that resampling
+    blocks of a short run sees (a state population is correlated through and through).
 
     Returns
     -------
@@ -115,7 +117,12 @@ def _state_free_energy_stack(state_counts, kt, mult):
     with np.errstate(invalid="ignore", divide="ignore"):
         p = main / total[:, None]
         pb = boot / boot.sum(axis=-1, keepdims=True)
-    return {"has": total > 0, **_state_dg(p, pb, kt)}
+    out = {"has": total > 0, **_state_dg(p, pb, kt)}
+    if ratio is not None:
+        scale = 1.0 / np.sqrt(np.asarray(ratio, dtype=float))[:, None]
+        out["population_err"] = out["population_err"] * scale
+        out["free_energy_err_kj_mol"] = out["free_energy_err_kj_mol"] * scale
+    return out
 
 
 def _state_dg(p, pb, kt):
