@@ -18,7 +18,7 @@ Allen & D. J. Tildesley, Computer Simulation of Liquids, 2nd ed., 2017, ch. 8, c
 memory), and a level of N blocks
 (n per replica, R replicas) gives an expected squared error of
 
-    E[se^2] = sigma^2 (R g(X / n) - g(X)) / (N - 1),
+    E[se^2] = sigma^2 (R g(X / n) - g(X)) / (R (N - 1)),
 
 against the true variance of the mean sigma^2 g(X) / R: their ratio (:func:`level_ratio`) goes
 to 1 for long runs and to 0 for short ones. The levels of one column (or the sum over the columns
