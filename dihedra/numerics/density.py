@@ -221,7 +221,8 @@ def short_run_spread(err, floor, ratio):
     ([[0.854, 0.1]], [[1.709, 1.0]])
     """
     err = np.asarray(err, dtype=float)
-    r = np.asarray(ratio, dtype=float).reshape((-1,) + (1,) * (err.ndim - 1))
+    r = np.asarray(ratio, dtype=float)
+    r = r.reshape((-1,) + (1,) * (err.ndim - 1)) if r.ndim == 1 else r
     with np.errstate(invalid="ignore", divide="ignore"):
         excess = np.where(np.isfinite(floor) & np.isfinite(err), np.clip(err ** 2 - np.asarray(floor) ** 2, 0.0, None), 0.0)
         spread = np.sqrt(err ** 2 + excess * (1.0 / r - 1.0))

@@ -18,6 +18,8 @@ NaN, and so is every pooled error it enters. A state never entered (or never lef
 has an error of 0 and ``n_effective`` NaN: the run shows no fluctuation of it at all.
 """
 
+import warnings
+
 import numpy as np
 import pandas as pd
 
@@ -89,11 +91,11 @@ def _type_state_pools(types, n_states):
     return code[:, None] * n_states + np.arange(n_states)[None, :]
 
 
-def type_spans(state_counts, block_replica, types):
-    """The length of each replica in correlation times, per torsion type: the shortest over the
-    type's states of the span fitted to the blocking levels of their populations (the torsions of
-    a type pooled; :func:`dihedra.numerics.blocking_bias.corrected_errors`). Returns {type: span},
-    NaN where none could be fitted (too few blocks, no state changes)."""
+def type_state_spans(state_counts, block_replica, types):
+    """The length of each replica in correlation times, per torsion type and state: the span fitted
+    to the blocking levels of the state's population, the torsions of a type pooled
+    (:func:`dihedra.numerics.blocking_bias.corrected_errors`). Returns {type: array (n_states,)},
+    NaN where none could be fitted (too few blocks, no state changes, a state never entered)."""
     from .blocking_bias import MIN_LEVELS, corrected_errors
 
     state_counts = np.asarray(state_counts)
@@ -102,16 +104,24 @@ def type_spans(state_counts, block_replica, types):
         return {}
     _, se, _, _, found = _state_blocking(state_counts, block_replica)
     if len(found.n_blocks) < MIN_LEVELS:
-        return dict.fromkeys(types, np.nan)
+        return {t: np.full(n_s, np.nan) for t in types}
     _, span = corrected_errors(se.reshape(-1), found.se.reshape(len(found.n_blocks), -1), found.n_blocks,
                                found.n_replicas, _type_state_pools(types, n_s).reshape(-1))
     by_torsion = span.reshape(n_t, n_s)
     out = {}
-    for t, row in zip(types, by_torsion):
-        if np.isfinite(row).any():
-            out[t] = min(out.get(t, np.inf), float(np.nanmin(row)))
-        else:
-            out.setdefault(t, np.nan)
+    with warnings.catch_warnings():   # (all-NaN states: NaN, as meant)
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for t, rows in pd.Series(np.arange(n_t)).groupby(pd.Series(list(types), dtype=object), sort=False):
+            out[t] = np.nanmin(by_torsion[rows.to_numpy()], axis=0)
+    return out
+
+
+def type_spans(state_counts, block_replica, types):
+    """The shortest over its states of :func:`type_state_spans` of each type ({type: span}, NaN
+    where none was fitted)."""
+    out = {}
+    for t, spans in type_state_spans(state_counts, block_replica, types).items():
+        out[t] = float(np.nanmin(spans)) if np.isfinite(spans).any() else np.nan
     return out
 
 

@@ -32,7 +32,8 @@ from ...units import canonical_energy_unit, check_temperature, from_kj_mol, kt_k
 from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                          _bandwidths, _histogram_stack, _kernel_columns, _kernel_profiles, _kernel_stack,
                          _profiles_from_blocks, _unstack, bin_centres, bootstrap_multiplicities, check_bin_width,
-                         check_estimate_options, effective_count_scale, effective_samples, rebin, short_run_ratios)
+                         bin_ratios, check_estimate_options, effective_count_scale, effective_samples, rebin,
+                         short_run_ratio_map, short_run_ratios, stack_ratios)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
                        _state_free_energy_stack, mixture_notice, state_blocks,
                        with_spread_between_torsions)
@@ -228,14 +229,15 @@ def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, ba
     hist = kept_block(blocks, "histograms")   # (narrow counts: summed per type in float64)
     mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
     pooled = _pooled_counts(hist, order, members)
-    ratio = short_run_ratios(result, order)
-    hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg, effective_count_scale(result), ratio)
+    ratio, schemes, hist_bins = short_run_ratios(result, order), [result.scheme.for_type(t) for t in order], rebin(
+        pooled, factor)
+    hprof = _profiles_from_blocks(hist_bins, mult, kt, bin_width_deg, effective_count_scale(result),
+                                  bin_ratios(ratio, schemes, hist_bins.shape[-1]))
     kprof = [None] * len(order)
     if kernel and order:
         neff = effective_samples(result.populations, result.torsion_set.labels)
-        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), [result.scheme.for_type(t) for t in order],
-                          [neff[members[t]].sum() for t in order], fine)
-        kprof = _kernel_profiles(pooled, mult, kt, bws, fine, ratio=ratio)
+        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), schemes, [neff[members[t]].sum() for t in order], fine)
+        kprof = _kernel_profiles(pooled, mult, kt, bws, fine, ratio=bin_ratios(ratio, schemes, pooled.shape[-1]))
     return {t: (h, k) for t, h, k in zip(order, hprof, kprof)}
 
 
@@ -396,8 +398,8 @@ class _Stacks:
     count_scale: float = 1.0
     ratio: dict = field(default_factory=dict)
 
-    def ratios(self, types):   # (one per row of a stack)
-        return np.array([self.ratio.get(t, 1.0) for t in types])
+    def ratios(self, types):   # (by state, by histogram bin, by fine bin)
+        return stack_ratios(self.ratio, self.scheme, types, self.hist.shape[-1] // self.factor, self.hist.shape[-1])
 
     @classmethod
     def of(cls, result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed):
@@ -410,8 +412,7 @@ class _Stacks:
         return cls(hist=hist, n_blocks=int(hist.shape[0]), mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
                    factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg, scheme=result.scheme,
                    neff=effective_samples(result.populations, result.torsion_set.labels), types=types,
-                   count_scale=effective_count_scale(result),
-                   ratio=dict(zip(dict.fromkeys(types), short_run_ratios(result, list(dict.fromkeys(types))))))
+                   count_scale=effective_count_scale(result), ratio=short_run_ratio_map(result, types))
 
 
 def _type_stack(s, order, members):
@@ -419,9 +420,9 @@ def _type_stack(s, order, members):
     pooled = _pooled_counts(s.hist, order, members)
     bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), [s.scheme.for_type(t) for t in order],
                       [s.neff[members[t]].sum() for t in order], s.fine)
-    ratio = s.ratios(order)
-    hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale, ratio)
-    kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine, s.count_scale, ratio)
+    ratio, hist_ratio, fine_ratio = s.ratios(order)
+    hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale, hist_ratio)
+    kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine, s.count_scale, fine_ratio)
     rows = _stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack,
                          (bws, kstack.samples, kstack.density_per_deg, kstack.free_energy_kj_mol,
                           np.where(kstack.sampled, kstack.free_energy_err_kj_mol, np.nan), kstack.sampled),
@@ -436,10 +437,10 @@ def _torsion_stack(span, s, codes):
     sub = np.asarray(s.hist[:, start:stop, :], dtype=float)
     bws = _bandwidths(s.bandwidth_deg, sub.sum(axis=0), [s.scheme.for_type(t) for t in s.types[start:stop]],
                       s.neff[start:stop], s.fine)
-    ratio = s.ratios(s.types[start:stop])
-    hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale, ratio)
+    ratio, hist_ratio, fine_ratio = s.ratios(s.types[start:stop])
+    hstack = _histogram_stack(rebin(sub, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale, hist_ratio)
     rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
-                         _kernel_columns(sub, s.mult, s.kt, bws, s.fine, s.count_scale, ratio),
+                         _kernel_columns(sub, s.mult, s.kt, bws, s.fine, s.count_scale, fine_ratio),
                          _state_free_energy_stack(s.state_counts[:, start:stop, :], s.kt, s.smult, ratio), s.kt)
     return bws, rows
 

@@ -48,6 +48,8 @@ Appl. Stat. 31 (1982) 93; rule of thumb: Silverman, Density Estimation (1986), e
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from ...errors import DihedraError
@@ -103,8 +105,6 @@ def check_estimate_options(n_bootstrap, bandwidth_deg=None):
     if bandwidth_deg is not None and not (0 < float(bandwidth_deg) < float("inf")):
         raise DihedraError(f"the kernel bandwidth must be a positive number of degrees; got {bandwidth_deg!r}.")
     return n_bootstrap
-
-
 
 
 def effective_count_scale(result):
@@ -207,24 +207,57 @@ def _kernel_profiles(fine_block_counts, mult, kt, bandwidths, fine_width, count_
 
 
 def short_run_ratios(result, types):
-    """For each of ``types``: the fraction of the correlated variance that a bootstrap over the
-    histogram blocks sees (:func:`~dihedra.numerics.blocking_bias.level_ratio` of the blocks of
-    one replica at the type's span in correlation times, fitted to its state populations by
-    :func:`~dihedra.numerics.populations.type_spans`); 1 where no span could be fitted."""
+    """For each of ``types`` and each state of the run's scheme, (m, n_states): the fraction of the
+    correlated variance that a bootstrap over the histogram blocks sees
+    (:func:`~dihedra.numerics.blocking_bias.level_ratio` of the blocks of one replica at the span
+    in correlation times fitted to the state's population,
+    :func:`~dihedra.numerics.populations.type_state_spans`); a state without a fitted span takes
+    the smallest ratio of its type, a type without any 1."""
     from ...numerics.blocking_bias import MAX_VARIANCE_FACTOR, level_ratio
-    from ...numerics.populations import type_spans
+    from ...numerics.populations import type_state_spans
     from ...trajectory.result import kept_block
 
     blocks = result.blocks
-    spans = type_spans(kept_block(blocks, "state_counts"), blocks["block_replica"], list(result.torsion_set.types))
+    counts = kept_block(blocks, "state_counts")
+    spans = type_state_spans(counts, blocks["block_replica"], list(result.torsion_set.types))
     replica = np.asarray(blocks["hist_block_replica"])
     per_replica = len(replica) / max(1, len(np.unique(replica)))
-    out = np.ones(len(types))
+    out = np.ones((len(types), counts.shape[2]))
     for k, t in enumerate(types):
-        span = spans.get(t, np.nan)
-        if np.isfinite(span) and per_replica >= 2:
-            out[k] = max(float(level_ratio(span, per_replica)), 1.0 / MAX_VARIANCE_FACTOR)
+        span = spans.get(t)
+        if span is None or not np.isfinite(span).any() or per_replica < 2:
+            continue
+        with np.errstate(invalid="ignore"):
+            ratio = np.maximum(level_ratio(span, per_replica), 1.0 / MAX_VARIANCE_FACTOR)
+        out[k] = np.where(np.isfinite(ratio), ratio, np.nanmin(ratio))
     return out
+
+
+def short_run_ratio_map(result, types):
+    """{type: ratios by state} of :func:`short_run_ratios` for the distinct ``types``."""
+    distinct = list(dict.fromkeys(types))
+    return dict(zip(distinct, short_run_ratios(result, distinct)))
+
+
+def bin_ratios(state_ratios, schemes, n_bins):
+    """(m, n_bins): the short-run ratio (:func:`short_run_ratios`, (m, n_states)) of the state
+    that each of ``n_bins`` equal bins of the circle lies in, by its centre, under the row's scheme."""
+    state_ratios = np.asarray(state_ratios, dtype=float)
+    return np.stack([row[_bin_codes(scheme, n_bins)] for row, scheme in zip(state_ratios, schemes)]) \
+        if len(state_ratios) else np.ones((0, n_bins))
+
+
+def stack_ratios(by_type, scheme, types, n_bins, n_fine):
+    """The short-run ratios of a stack of torsions or types (``by_type``: {type: ratios by state}):
+    by state (m, n_states), by histogram bin (m, n_bins) and by fine bin (m, n_fine)."""
+    by_state = np.array([by_type[t] for t in types]).reshape(len(types), -1)
+    schemes = [scheme.for_type(t) for t in types]
+    return by_state, bin_ratios(by_state, schemes, n_bins), bin_ratios(by_state, schemes, n_fine)
+
+
+@functools.lru_cache(maxsize=64)
+def _bin_codes(scheme, n_bins):
+    return scheme.assign(bin_centres(n_bins)).astype(np.int64)
 
 
 def default_bandwidth_deg(fine_counts, scheme, n_effective, fine_width_deg=1.0):
@@ -242,4 +275,3 @@ def _bandwidths(bandwidth_deg, fine_counts, scheme, n_effective, fine):
     if bandwidth_deg is not None:
         return np.full(len(fine_counts), float(bandwidth_deg))
     return default_bandwidths_deg(fine_counts, scheme, np.asarray(n_effective, dtype=float), fine)
-

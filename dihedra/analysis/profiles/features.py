@@ -102,8 +102,8 @@ def state_blocks(result, n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED):
 
 def _state_free_energy_stack(state_counts, kt, mult, ratio=None):
     """:func:`state_free_energies` for a stack: state_counts (n_blocks, m, n_states); the errors
-    divided by the square root of ``ratio`` (m,), the fraction of the variance that resampling
-    blocks of a short run sees (a state population is correlated through and through).
+    divided by the square root of ``ratio`` (m, n_states), the fraction of the variance that
+    resampling blocks of a short run sees (a state population is correlated through and through).
 
     Returns
     -------
@@ -118,10 +118,11 @@ def _state_free_energy_stack(state_counts, kt, mult, ratio=None):
         p = main / total[:, None]
         pb = boot / boot.sum(axis=-1, keepdims=True)
     out = {"has": total > 0, **_state_dg(p, pb, kt)}
-    if ratio is not None:
-        scale = 1.0 / np.sqrt(np.asarray(ratio, dtype=float))[:, None]
-        out["population_err"] = out["population_err"] * scale
-        out["free_energy_err_kj_mol"] = out["free_energy_err_kj_mol"] * scale
+    if ratio is not None:   # (m, n_states); a free energy against the reference state: the smaller of the two
+        r = np.asarray(ratio, dtype=float)
+        ref = r[np.arange(len(r)), out["reference"]][:, None]
+        out["population_err"] = out["population_err"] / np.sqrt(r)
+        out["free_energy_err_kj_mol"] = out["free_energy_err_kj_mol"] / np.sqrt(np.minimum(r, ref))
     return out
 
 
