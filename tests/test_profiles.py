@@ -449,3 +449,18 @@ def test_pooled_state_errors_include_the_spread_between_frozen_torsions(tmp_path
     # single torsions keep their own (time) errors: each never left its state
     singles = dg[dg["torsion"].astype(str) != ""]
     assert (singles["population_err"].fillna(0) == 0).all()
+
+
+def test_a_single_frame_has_no_state_free_energy_errors():
+    # one frame fills one block: no spread between blocks can be seen, so the errors are missing
+    # (NaN, 'n/a'), as track's population errors are, never 0 (common practice: no error from one sample)
+    import MDAnalysis as mda
+
+    import dihedra
+
+    u = mda.Universe(dihedra.example_path("hexane.pdb"), dihedra.example_path("hexane.xtc"))
+    ts = dihedra.TorsionStates(u.atoms, torsions="rotatable", scheme="anti-gauche").run(stop=1)
+    sfe = dihedra.free_energy_profiles(ts, temperature_k=298.15, per_torsion=False).state_free_energies
+    assert sfe["population"].notna().all()
+    assert sfe["population_err"].isna().all()
+    assert sfe.loc[sfe["state"] != sfe["reference_state"], "free_energy_err_kj_mol"].isna().all()

@@ -103,7 +103,8 @@ def state_blocks(result, n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED):
 def _state_free_energy_stack(state_counts, kt, mult, ratio=None):
     """:func:`state_free_energies` for a stack: state_counts (n_blocks, m, n_states); the errors
     divided by the square root of ``ratio`` (m, n_states), the fraction of the variance that
-    resampling blocks of a short run sees (a state population is correlated through and through).
+    resampling blocks of a short run sees (a state population is correlated through and through);
+    NaN for a row with fewer than two blocks with samples.
 
     Returns
     -------
@@ -123,6 +124,10 @@ def _state_free_energy_stack(state_counts, kt, mult, ratio=None):
         ref = r[np.arange(len(r)), out["reference"]][:, None]
         out["population_err"] = out["population_err"] / np.sqrt(r)
         out["free_energy_err_kj_mol"] = out["free_energy_err_kj_mol"] / np.sqrt(np.minimum(r, ref))
+    # fewer than two blocks with samples (a single frame): no error can be estimated, as in track
+    alone = ((counts.sum(axis=2) > 0).sum(axis=0) < 2)[:, None]
+    for key in ("population_err", "free_energy_err_kj_mol"):
+        out[key] = np.where(alone, np.nan, out[key])
     return out
 
 
