@@ -224,7 +224,8 @@ def short_run_spread(err, floor, ratio):
     r = np.asarray(ratio, dtype=float)
     r = r.reshape((-1,) + (1,) * (err.ndim - 1)) if r.ndim == 1 else r
     with np.errstate(invalid="ignore", divide="ignore"):
-        excess = np.where(np.isfinite(floor) & np.isfinite(err), np.clip(err ** 2 - np.asarray(floor) ** 2, 0.0, None), 0.0)
+        excess = np.where(np.isfinite(floor) & np.isfinite(err),
+                          np.clip(err ** 2 - np.asarray(floor) ** 2, 0.0, None), 0.0)
         spread = np.sqrt(err ** 2 + excess * (1.0 / r - 1.0))
         factor = np.where(err > 0, spread / err, 1.0)
     return np.where(np.isfinite(spread), spread, err), np.where(np.isfinite(factor), factor, 1.0)

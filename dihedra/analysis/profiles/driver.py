@@ -32,8 +32,8 @@ from ...units import canonical_energy_unit, check_temperature, from_kj_mol, kt_k
 from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                          _bandwidths, _histogram_stack, _kernel_columns, _kernel_profiles, _kernel_stack,
                          _profiles_from_blocks, _unstack, bin_centres, bootstrap_multiplicities, check_bin_width,
-                         bin_ratios, check_estimate_options, effective_count_scale, effective_samples, rebin,
-                         short_run_ratio_map, short_run_ratios, stack_ratios)
+                         check_estimate_options, effective_count_scale, effective_samples, rebin,
+                         short_run_ratio_map, stack_ratios)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
                        _state_free_energy_stack, mixture_notice, state_blocks,
                        with_spread_between_torsions)
@@ -229,15 +229,16 @@ def type_profiles(result, temperature_k, bin_width_deg=DEFAULT_BIN_WIDTH_DEG, ba
     hist = kept_block(blocks, "histograms")   # (narrow counts: summed per type in float64)
     mult = bootstrap_multiplicities(blocks["hist_block_replica"], n_bootstrap, np.random.default_rng(seed))
     pooled = _pooled_counts(hist, order, members)
-    ratio, schemes, hist_bins = short_run_ratios(result, order), [result.scheme.for_type(t) for t in order], rebin(
-        pooled, factor)
-    hprof = _profiles_from_blocks(hist_bins, mult, kt, bin_width_deg, effective_count_scale(result),
-                                  bin_ratios(ratio, schemes, hist_bins.shape[-1]))
+    _, hist_ratio, fine_ratio = stack_ratios(short_run_ratio_map(result, order), result.scheme, order,
+                                             pooled.shape[-1] // factor, pooled.shape[-1])
+    hprof = _profiles_from_blocks(rebin(pooled, factor), mult, kt, bin_width_deg, effective_count_scale(result),
+                                  hist_ratio)
     kprof = [None] * len(order)
     if kernel and order:
         neff = effective_samples(result.populations, result.torsion_set.labels)
-        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), schemes, [neff[members[t]].sum() for t in order], fine)
-        kprof = _kernel_profiles(pooled, mult, kt, bws, fine, ratio=bin_ratios(ratio, schemes, pooled.shape[-1]))
+        bws = _bandwidths(bandwidth_deg, pooled.sum(axis=0), [result.scheme.for_type(t) for t in order],
+                          [neff[members[t]].sum() for t in order], fine)
+        kprof = _kernel_profiles(pooled, mult, kt, bws, fine, ratio=fine_ratio)
     return {t: (h, k) for t, h, k in zip(order, hprof, kprof)}
 
 
@@ -378,8 +379,7 @@ class _Stacks:
     fine bin width and ``factor`` the fine bins per histogram bin; ``neff`` the effective samples of
     each torsion (:func:`effective_samples`); ``types`` the type of each torsion (its own scheme
     when the run used a set of schemes); ``count_scale`` the effective samples per histogram count
-    (:func:`effective_count_scale`); ``ratio`` of each torsion type the fraction of the correlated
-    variance that the bootstrap over blocks sees (:func:`short_run_ratios`).
+    (:func:`effective_count_scale`); ``ratio`` the short-run ratios by type (:func:`short_run_ratio_map`).
     """
 
     hist: np.ndarray
