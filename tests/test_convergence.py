@@ -122,6 +122,25 @@ def test_detect_start_maximises_the_effective_samples():
     assert n_eff == pytest.approx((300 - t0) / g)
 
 
+def test_detect_start_of_a_long_series_refines_in_steps_and_stays_near_the_largest_n_eff(monkeypatch):
+    # a series of 6,000 points (coarse grid every 30 points, then every 3, then single points):
+    # about 100 + 2 x 21 inefficiencies rather than 100 + 59, and the N_eff found within 1 % of the
+    # largest over every t0 of the first half (brute force, Chodera 2016's definition)
+    import dihedra.numerics.convergence as conv
+    from dihedra.numerics.statistics import statistical_inefficiency
+
+    rng = np.random.default_rng(6)
+    n = 6000
+    x = ar1(n, 0.9, rng) + np.r_[np.linspace(6, 0, 700), np.zeros(n - 700)]
+    calls = []
+    monkeypatch.setattr(conv, "statistical_inefficiency", lambda y: calls.append(len(y)) or statistical_inefficiency(y))
+    t0, g, n_eff = conv.detect_start(x)
+    assert len(calls) <= 100 + 2 * 21 + 2
+    brute = max((n - t) / statistical_inefficiency(x[t:]) for t in range(0, n // 2 + 1))
+    assert brute * 0.99 <= n_eff <= brute
+    assert 400 <= t0 <= 1200
+
+
 def test_replica_test_false_alarm_rate_is_near_its_nominal_level_and_it_has_power():
     # two replicas of the same jump process: P(p < 0.05) near 0.05; with pi(anti) 0.6 against 0.5
     # (about 4 standard errors apart) the test almost always rejects
