@@ -181,3 +181,39 @@ def test_profile_errors_of_a_short_run_are_raised_where_the_blocks_are_correlate
     boot = raised.boot_free_energy[:, 48]
     assert np.nanstd(np.where(np.isfinite(boot), boot, np.nan), axis=-1, ddof=1) == pytest.approx(
         raised.free_energy_err_kj_mol[:, 48], rel=1e-6)
+
+
+def test_coupling_errors_of_a_short_run_are_raised_with_the_span_of_the_states():
+    # 400 independent copies of a three-well rotor over a run of 10 correlation times: the spread
+    # of their <J> (Vuister & Bax 1993 coefficients on 1-degree bins) is the true error of one
+    # copy's, against which blocking over 16 histogram blocks (two levels, 16 and 8) gives about
+    # sqrt(level_ratio(10, 8)) = 0.6; with the span fitted to the state populations (64 blocks)
+    # the error is right
+    from dihedra.analysis.couplings.ensemble import couplings_from_histograms
+    from dihedra.analysis.couplings.relations import get_relation
+    from dihedra.numerics.populations import type_spans
+
+    rng = np.random.default_rng(14)
+    n, n_frames, span = 400, 3200, 10.0
+    rate = span / n_frames
+    s = rng.choice(3, n, p=[2 / 3, 1 / 6, 1 / 6])
+    hist = np.zeros((16, n, 360))
+    states = np.zeros((64, n, 3))
+    centres = np.array([180.0, 60.0, -60.0])
+    for f in range(n_frames):
+        u = rng.random(n)
+        to_gauche = (s == 0) & (u < 0.5 * rate)
+        s = np.where(to_gauche, np.where(rng.random(n) < 0.5, 1, 2), np.where((s > 0) & (u < rate), 0, s))
+        angle = (centres[s] + rng.normal(0.0, 15.0, n) + 180.0) % 360.0 - 180.0
+        np.add.at(hist[f * 16 // n_frames], (np.arange(n), np.clip((angle + 180.0).astype(int), 0, 359)), 1.0)
+        states[f * 64 // n_frames, np.arange(n), s] += 1.0
+    kern = np.tile(get_relation("vuister-bax-1993").bin_means(np.linspace(-180.0, 180.0, 361)), (n, 1))
+    one = np.zeros(16, dtype=int)
+    j, plain, _ = couplings_from_histograms(hist, one, kern)
+    spans = np.full(n, type_spans(states, np.zeros(64, dtype=int), ["T"] * n)["T"])
+    assert spans[0] == pytest.approx(span, rel=0.3)
+    _, raised, _ = couplings_from_histograms(hist, one, kern, spans)
+    truth = np.std(j, ddof=1)   # (known to about 4 % from 400 copies)
+    assert np.sqrt(np.mean(plain ** 2)) / truth < 0.75
+    assert 0.85 < np.sqrt(np.mean(raised ** 2)) / truth < 1.2
+    assert np.all(raised >= plain)

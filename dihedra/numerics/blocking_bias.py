@@ -146,8 +146,24 @@ def corrected_errors(se, level_se, n_blocks, n_replicas, pool=None):
     np.add.at(summed.T, which, se2[:, cols].T)
     members = np.bincount(which, minlength=len(codes)).astype(float)
     fitted = fit_span(summed, n_blocks, n_replicas, members)
-    factor = np.minimum(1.0 / level_ratio(fitted, n_blocks[-1] / n_replicas, n_replicas), MAX_VARIANCE_FACTOR)
     span[cols] = fitted[which]
-    raised = np.sqrt(se2[-1, cols] * factor[which])
-    se[cols] = np.fmax(se[cols], raised)
+    se[cols] = errors_at_span(se[cols], level_se[-1, cols], span[cols], n_blocks[-1], n_replicas)
     return se, span
+
+
+def errors_at_span(se, coarsest_se, span, n_blocks, n_replicas):
+    """Blocking errors ``se`` raised for a run of ``span`` correlation times per replica (a span
+    known from elsewhere, e.g. the state populations of the same torsions): the coarsest level's
+    error ``coarsest_se`` (``n_blocks`` blocks over ``n_replicas`` replicas) divided by the square
+    root of its :func:`level_ratio`, the variance factor at most :data:`MAX_VARIANCE_FACTOR`, where
+    that is larger; unchanged where ``span`` or ``se`` is NaN.
+
+    >>> [round(float(x), 3) for x in errors_at_span([0.01, 0.01], [0.01, 0.01], [8.0, np.nan], 8, 1)]
+    [0.017, 0.01]
+    """
+    se = np.asarray(se, dtype=float)
+    span = np.asarray(span, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        factor = np.minimum(1.0 / level_ratio(span, n_blocks / n_replicas, n_replicas), MAX_VARIANCE_FACTOR)
+    raised = np.sqrt(np.asarray(coarsest_se, dtype=float) ** 2 * factor)
+    return np.where(np.isfinite(span) & np.isfinite(se), np.fmax(se, raised), se)

@@ -19,7 +19,12 @@ Statistical error: <J> is a ratio of block sums, sum_b n_b J_b over sum_b n_b, p
 block (16 contiguous blocks per replica). Its standard error comes from the same blocking
 analysis as the populations (:func:`dihedra.numerics.statistics.blocking_error`: blocks merged pairwise
 within replicas, the largest error over levels with at least 8 blocks, never below the spread
-between replicas). Pooled per torsion type, <J> is the mean over the torsions of the type and
+between replicas). In a run of few correlation times neighbouring blocks are correlated and that
+error is too small (8 blocks of a run of 10 correlation times see about 0.4 of the variance): it
+is raised as the populations' errors are (:mod:`dihedra.numerics.blocking_bias`), with the run's
+length in correlation times taken from the state populations of the torsion's type (64 blocks
+per replica, enough levels to fit it; the shortest over the states, whose relaxation dominates
+the slow part of J), never lowered. Pooled per torsion type, <J> is the mean over the torsions of the type and
 its error is that of pooled populations: sqrt(sum se_i^2)/n for copies of one molecule, plus the
 spread between the torsions where they differ more than their errors explain (the residues of a
 protein; DerSimonian-Laird, :mod:`dihedra.numerics.heterogeneity`).
@@ -287,7 +292,7 @@ def _wrap(x):
     return (x + 180.0) % 360.0 - 180.0
 
 
-def couplings_from_histograms(histograms, block_replica, kernels):
+def couplings_from_histograms(histograms, block_replica, kernels, spans=None):
     """<J> per torsion and its blocking standard error from block histograms.
 
     Parameters
@@ -297,11 +302,16 @@ def couplings_from_histograms(histograms, block_replica, kernels):
     block_replica : ndarray (n_blocks,)
     kernels : ndarray (n_torsions, n_bins)
         Bin means of J (Hz).
+    spans : ndarray (n_torsions,), optional
+        Each torsion's replica length in correlation times (:func:`short_run_spans`): the errors
+        are raised for the bias of blocking a run of few correlation times
+        (:func:`~dihedra.numerics.blocking_bias.errors_at_span`); NaN or ``None``: as blocked.
 
     Returns
     -------
     j_hz, j_err_hz, n_samples : ndarrays (n_torsions,)
     """
+    from ...numerics.blocking_bias import errors_at_span
     from ...numerics.statistics import blocking_error
 
     h = np.asarray(histograms, dtype=float)
@@ -310,8 +320,26 @@ def couplings_from_histograms(histograms, block_replica, kernels):
     if not (den.sum(axis=0) > 0).all():
         bad = int(np.flatnonzero(den.sum(axis=0) <= 0)[0])
         raise DihedraError(f"torsion number {bad} has no sampled frames; no coupling can be averaged.")
-    mean, se, _ = blocking_error(num, den, block_replica)
+    # (16 blocks per replica give two levels, too few to fit a span: it comes from the states)
+    mean, se, _, found = blocking_error(num, den, block_replica, short_run=False, levels=True)
+    if spans is not None and len(found.n_blocks):
+        se = errors_at_span(se, found.se[-1], spans, found.n_blocks[-1], found.n_replicas)
     return mean, se, den.sum(axis=0)
+
+
+def short_run_spans(result, positions):
+    """The span in correlation times per replica of each torsion at ``positions``: the shortest
+    over the states of its type (:func:`~dihedra.numerics.populations.type_spans`, fitted to the
+    blocking levels of the state populations, which have more blocks than the histograms); NaN
+    where none was fitted (too few frames, no state changes)."""
+    from ...numerics.populations import type_spans
+
+    blocks = result.blocks
+    if "state_counts" not in blocks or "block_replica" not in blocks:
+        return None
+    types = list(result.torsion_set.types)
+    spans = type_spans(kept_block(blocks, "state_counts"), blocks["block_replica"], types)
+    return np.array([spans.get(types[k], np.nan) for k in positions], dtype=float)
 
 
 def _pool_by_type(frame, family=None):
@@ -346,7 +374,7 @@ def _relation_couplings(result, rel, select, notices, universe):
     pos, extra, coupled = coupling_rows(result, rel, choose_torsions(result, rel, select, notices), notices, universe)
     kern, subs = relation_kernels(rel, result, pos, notices, universe, extra)
     hist = np.asarray(hist[:, pos, :], dtype=float)
-    j, err, n = couplings_from_histograms(hist, rep, kern)
+    j, err, n = couplings_from_histograms(hist, rep, kern, short_run_spans(result, pos))
     systematic = np.full(len(pos), np.nan if rel.systematic_hz is None else float(rel.systematic_hz))
     family = None
     if rel.name in HN_HA_FAMILY:
