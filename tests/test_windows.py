@@ -559,3 +559,26 @@ def test_kinetics_refuses_a_folder_of_windows(synthetic):
 
     with pytest.raises(DihedraError, match="umbrella windows"):
         dihedra.state_kinetics(dihedra.load_results(synthetic[1]), dt_ps=1.0)
+
+
+def test_windows_of_few_correlation_times_are_named(tmp_path, synthetic):
+    # each exact sample held for 10 frames: g of about 10 and a window of 120 frames spans about
+    # 120 / 4.5 = 27 correlation times (tau = (g - 1) / 2), where a bootstrap over 16 blocks sees
+    # about 0.45 of the variance (dihedra.numerics.blocking_bias.level_ratio, an exponential
+    # autocorrelation); the independent samples of the synthetic windows are named nowhere
+    rng = np.random.default_rng(3)
+    rows = []
+    for i, c in enumerate(np.arange(-180.0, 180.0, 30.0)):
+        a = inverse_cdf_samples(lambda p: rb_energy(p) + bias_kj_mol(p, c, 100.0), T, (12, 5), rng)
+        pdb, dcd = write_rotor_trajectory(str(tmp_path), f"w{i:02d}", np.repeat(a, 10, axis=0))
+        rows.append({"trajectory": os.path.basename(dcd), "topology": os.path.basename(pdb),
+                     "torsions": "rotatable", "centre_deg": c, "k_kj_mol_rad2": 100.0})
+    csv = tmp_path / "windows.csv"
+    pd.DataFrame(rows).to_csv(csv, index=False)
+    wres = unbias_windows(str(csv), temperature_k=T, n_bootstrap=20)
+    spans = wres.windows["correlation_times"]
+    assert spans.between(10, 60).all(), spans.tolist()
+    named = [n for n in wres.notices if "correlation times of their bias energy" in n]
+    assert len(named) == 1 and named[0].startswith("12 of 12 window(s)")
+    assert not any("correlation times of their bias energy" in n for n in synthetic[0].notices)
+    assert (synthetic[0].windows["correlation_times"] > 200).all()

@@ -278,6 +278,7 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
     notices[:0] = warnings
     otab = _overlap_table(table, est0, ratios)
     notices.extend(_overlap_notices(otab, list(estimates)))
+    notices.extend(_short_window_notices(wtab))
     settings = _settings(temperature_k, kt, bin_width_deg, n_bootstrap, seed, bandwidth_deg, types.bandwidths,
                          scheme)
     info = _info(temperature_k, kt, source, len(table), agreement, otab, max_mbar_samples, settings, notices)
@@ -432,6 +433,31 @@ def _overlap_table(windows, est, ratios):
                      "histogram_overlap": float(np.minimum(biased[i], biased[j]).sum()),
                      "poor": _poor_overlap(est.overlap, i, j)})
     return pd.concat([pd.DataFrame(rows), ratios], axis=1)
+
+
+#: Windows of fewer correlation times of their bias energy than this are named in a notice: a
+#: bootstrap over 16 blocks of such a window sees less than 0.8 of its variance.
+SHORT_WINDOW_SPAN = 80.0
+
+
+def _short_window_notices(wtab):
+    """A notice on windows of few correlation times: a bootstrap over :data:`N_HIST_BLOCKS` blocks
+    of such a window sees only :func:`~dihedra.numerics.blocking_bias.level_ratio` of its
+    variance (neighbouring blocks are correlated), so the errors near it are too small."""
+    from ...numerics.blocking_bias import level_ratio
+
+    span = wtab["correlation_times"].to_numpy(float)
+    short = np.flatnonzero(span < SHORT_WINDOW_SPAN)   # (NaN and inf: not short)
+    if not len(short):
+        return []
+    worst = short[np.argmin(span[short])]
+    factor = float(level_ratio(span[worst], N_HIST_BLOCKS)) ** -0.5
+    return [f"{len(short)} of {len(wtab)} window(s) hold fewer than {SHORT_WINDOW_SPAN:.0f} correlation times of "
+            f"their bias energy (correlation_times in windows.csv; shortest: window {int(wtab['window'][worst])}, "
+            f"{span[worst]:.0f}): a bootstrap over {N_HIST_BLOCKS} blocks of such a window sees only part of its "
+            "variance (neighbouring blocks are correlated), so the errors of the profile and of the window free "
+            f"energies near them are too small, by up to about {factor:.1f}x; sample those windows longer, or "
+            "read their error bars as lower bounds."]
 
 
 def _poor_overlap(overlap, i, j):

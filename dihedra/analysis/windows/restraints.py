@@ -120,8 +120,23 @@ def window_statistics(data, kt):
             "mean_angle_deg": mean, "circular_sd_deg": spread,
             "statistical_inefficiency": float(np.mean(gs)) if gs else np.nan,
             "n_effective": float(sel.sum() / np.mean(gs)) if gs else np.nan,
+            "correlation_times": correlation_times(int(row.n_frames), np.mean(gs) if gs else np.nan),
             **restraint_check(mean, spread, row.centre_deg, row.k_kj_mol_rad2, kt)})
     return pd.DataFrame(rows)
+
+
+def correlation_times(n_frames, g):
+    """A window's length in correlation times of its bias energy: n_frames / tau with tau = (g - 1)
+    / 2 frames, the correlation time of an exponential autocorrelation whose statistical
+    inefficiency is g (g = 1 + 2 tau for tau of a few frames and more; common practice); inf for
+    g = 1 (no correlation seen), NaN where g is unknown.
+
+    >>> correlation_times(1000, 21.0), correlation_times(1000, 1.0)
+    (100.0, inf)
+    """
+    if not np.isfinite(g):
+        return np.nan
+    return float(n_frames) / ((g - 1.0) / 2.0) if g > 1.0 else np.inf
 
 
 def restraint_check(mean_deg, sd_deg, centre_deg, k_kj_mol_rad2, kt):
