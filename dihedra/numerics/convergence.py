@@ -208,10 +208,11 @@ def equilibration(x, var_floor=0.0):
     """Detect the start of the stationary part of ``x`` and say whether the part before it matters.
 
     The start t0 is that of :func:`detect_start` (Chodera 2016), sought in the first half of the
-    series, the earliest within :data:`N_EFF_TOLERANCE` of the largest N_eff. The part before it counts as unequilibrated (``drifts``) when all of: its mean differs
-    from the rest by more than :data:`DRIFT_Z` standard errors (:func:`drift_z`); keeping it
-    shifts the mean of the whole series by more than :data:`DRIFT_SHIFT_SE` standard errors; and
-    the rest holds at least :data:`MIN_START_SAMPLES` effective samples.
+    series, the earliest within :data:`N_EFF_TOLERANCE` of the largest N_eff. The part before it
+    counts as unequilibrated (``drifts``) when all of: its mean differs from the rest by more than
+    :data:`DRIFT_Z` standard errors (:func:`drift_z`); keeping it shifts the mean of the whole
+    series by more than :data:`DRIFT_SHIFT_SE` standard errors; and the rest holds at least
+    :data:`MIN_START_SAMPLES` effective samples.
 
     Examples
     --------
