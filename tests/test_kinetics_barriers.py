@@ -32,3 +32,21 @@ def test_barriers_in_other_units_are_read_in_kj_mol():
             assert np.isclose(read[key][0], height, rtol=1e-12) and np.isclose(read[key][1], err, rtol=1e-12)
     # kT without the profile's temperature cannot be converted: nothing is matched rather than a guess
     assert _read_barrier_table(barriers_in_kj_mol(barrier_table("kt", kt), None), scheme) == {}
+
+
+def test_a_barrier_over_the_plateau_of_a_third_state_is_no_direct_transition():
+    # a glycine-like phi profile: minima at +73 (gauche+) and -72 (gauche-), anti a plateau without
+    # a minimum; the barrier between the two minima the long way round has its top at -176, in the
+    # anti arc (beyond +-120): its heights are not those of gauche+ <-> gauche- (the path crosses
+    # anti), while the barrier at 2.5 degrees, between the two minima directly, is
+    scheme = get_scheme("anti-gauche")
+    table = pd.DataFrame({"type": ["GLY:phi"] * 2, "torsion": [np.nan, np.nan], "barrier": [1, 2],
+                          "from_minimum_deg": [-71.9, 72.7], "to_minimum_deg": [72.7, -71.9],
+                          "angle_deg": [2.5, -176.5],
+                          "height_from_first_kj_mol": [20.0, 6.1], "height_from_second_kj_mol": [21.0, 5.1]})
+    mapping = _read_barrier_table(table, scheme)
+    assert set(mapping) == {("type", "GLY:phi", "gauche-", "gauche+"), ("type", "GLY:phi", "gauche+", "gauche-")}
+    assert mapping[("type", "GLY:phi", "gauche-", "gauche+")][0] == 20.0
+    assert mapping[("type", "GLY:phi", "gauche+", "gauche-")][0] == 21.0
+    # without the direct barrier, nothing is attached to gauche+ <-> gauche-
+    assert _read_barrier_table(table.iloc[1:], scheme) == {}

@@ -261,8 +261,10 @@ def _read_barrier_table(table, scheme):
     ``torsion`` when that column is filled), with ``from_minimum_deg``, ``to_minimum_deg`` and the
     heights above each, ``height_from_first_kj_mol`` and ``height_from_second_kj_mol``. The minima
     are assigned states with the crisp scheme: the first height is the barrier of the transition
-    first -> second, the second the reverse. Barriers between minima of the same state are skipped;
-    of several barriers between the same two states the lowest is kept (the dominant path).
+    first -> second, the second the reverse. Barriers between minima of the same state are skipped,
+    and so are barriers whose path from one minimum over the top to the other crosses the arc of a
+    third state (the plateau of a state without a minimum: its transitions are not this one); of
+    several barriers between the same two states the lowest is kept (the dominant path).
 
     Returns
     -------
@@ -283,6 +285,12 @@ def _read_barrier_table(table, scheme):
         a[rows] = part.assign(table["from_minimum_deg"].to_numpy(dtype=float)[rows])
         b[rows] = part.assign(table["to_minimum_deg"].to_numpy(dtype=float)[rows])
     ok = (a >= 0) & (b >= 0) & (a != b)
+    if "angle_deg" in table.columns:   # a path over a third state's arc is not a barrier of a -> b
+        for ttype, rows in table.groupby("type", sort=False).indices.items():
+            part = scheme.for_type(ttype)
+            for r in rows[ok[rows]]:
+                ok[r] = _direct_path(part, table["from_minimum_deg"].iat[r], table["angle_deg"].iat[r],
+                                     table["to_minimum_deg"].iat[r], {a[r], b[r]})
     labels = np.array(scheme.labels, dtype=object)
     parts = []
     for i, j, which in ((a, b, "first"), (b, a, "second")):
@@ -298,6 +306,29 @@ def _read_barrier_table(table, scheme):
     rows = rows.sort_values("value", kind="stable").drop_duplicates(["level", "name", "from", "to"], keep="first")
     return {(lv, nm, f, t): (float(v), float(e)) for lv, nm, f, t, v, e in
             zip(rows["level"], rows["name"], rows["from"], rows["to"], rows["value"], rows["err"])}
+
+
+def _direct_path(part, first_deg, top_deg, second_deg, states):
+    """Whether the arc from the minimum at ``first_deg`` over the barrier top at ``top_deg`` to
+    the minimum at ``second_deg`` lies in ``states`` alone (under the scheme ``part``): a barrier
+    whose path crosses a third state's arc (the plateau of a state without a minimum of its own)
+    is not the barrier of a direct transition. True where the top is unknown (NaN).
+
+    >>> from dihedra.selection.schemes import anti_gauche
+    >>> s = anti_gauche()
+    >>> g_plus, g_minus = s.labels.index("gauche+"), s.labels.index("gauche-")
+    >>> _direct_path(s, 72.7, 2.5, -71.9, {g_plus, g_minus}), _direct_path(s, 72.7, -176.5, -71.9, {g_plus, g_minus})
+    (True, False)
+    """
+    first, top, second = (float(x) for x in (first_deg, top_deg, second_deg))
+    if not np.isfinite(top):
+        return True
+    to_top, to_second = (top - first) % 360.0, (second - first) % 360.0
+    length = to_second if to_top <= to_second else 360.0 - to_second   # (the way that passes the top)
+    sign = 1.0 if to_top <= to_second else -1.0
+    steps = np.append(np.arange(0.0, length, 0.5), length)
+    seen = part.assign((first + sign * steps + 180.0) % 360.0 - 180.0)
+    return bool(set(int(x) for x in np.unique(seen)) <= {int(x) for x in states})
 
 
 def _add_tst(transitions, temperature_k, barriers, notices):
