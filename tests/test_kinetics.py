@@ -576,6 +576,20 @@ def test_dwell_time_table_counts_segments_and_censoring():
     assert len(dwell) == 4
 
 
+def test_a_state_left_once_has_no_interval_of_its_dwell_time():
+    # a: censored first and last visits and one complete visit (frames 5-8); b: two complete
+    # visits (2 and 3 frames). One complete dwell time has no spread (a bootstrap of it, or its
+    # Kaplan-Meier variance, is an interval of zero width): a has none; b's contains its mean
+    traj = np.array([0, 0, 0, 1, 1, 0, 0, 0, 0, 1, 1, 1, 0, 0])
+    tables = analyse_state_series([traj], ["a", "b"], dt_ps=1.0, lags=[1], n_bootstrap=200)
+    life = tables["lifetimes"].set_index("state")
+    assert life.loc["a", "n_segments"] == 1 and life.loc["b", "n_segments"] == 2
+    assert np.isnan(life.loc["a", "ci_low_ps"]) and np.isnan(life.loc["a", "ci_high_ps"])
+    assert np.isfinite(life.loc["a", "mean_ps"])
+    assert life.loc["b", "mean_ps"] == pytest.approx(2.5)
+    assert life.loc["b", "ci_low_ps"] < 2.5 < life.loc["b", "ci_high_ps"]
+
+
 def test_dwell_survival_is_the_kaplan_meier_product_limit():
     # Kaplan & Meier, J. Am. Stat. Assoc. 53 (1958) 457: S(t) = prod over the distinct dwell times
     # t_i <= t of (1 - d_i / Y_i), a censored segment at risk up to its length (ties: events first).

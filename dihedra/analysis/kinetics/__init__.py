@@ -64,7 +64,8 @@ Kaplan-Meier estimate of the survival function ``S(t)``: complete segments as ev
 as survivors at their observed length (ties: events before censorings). ``mean_ps`` is the area
 under ``S`` up to the longest observed segment (the restricted mean; flagged ``mean_restricted``
 when that segment is censored, in which case it slightly underestimates), ``median_ps`` the first
-time with ``S <= 1/2``, and ``ci_low_ps``/``ci_high_ps`` a 95 % interval of the mean: for pooled
+time with ``S <= 1/2``, and ``ci_low_ps``/``ci_high_ps`` a 95 % interval of the mean (NaN for a
+state left only once: one complete visit gives no spread): for pooled
 rows (types, conformers) a percentile bootstrap that resamples segments (complete and censored)
 with replacement; for single torsions, by default, ``mean exp(+-1.96 se / mean)`` with the
 Kaplan-Meier variance of the restricted mean, ``se^2 = sum_i A_i^2 d_i / (Y_i (Y_i - d_i))``

@@ -24,6 +24,8 @@ TRANSITION_COLUMNS = ["level", "name", "type", "from_state", "to_state", "count"
                       "rate_per_ps", "rate_err_per_ps", "rate_ci_low_per_ps", "rate_ci_high_per_ps",
                       "eyring_barrier_kj_mol", "profile_barrier_kj_mol", "profile_barrier_err_kj_mol",
                       "tst_rate_from_profile_per_ps", "n_trajectories"]
+#: Complete visits of a state that its dwell-time interval needs (with fewer it is NaN).
+MIN_INTERVAL_VISITS = 2
 LIFETIME_COLUMNS = ["level", "name", "type", "state", "mean_ps", "median_ps", "ci_low_ps", "ci_high_ps",
                     "n_segments", "n_censored", "mean_restricted", "mean_from_rates_ps", "time_in_state_ps",
                     "population_counted", "population_from_rates", "n_trajectories"]
@@ -238,7 +240,8 @@ def _lifetime_columns(dwell, km, cells, bootstrap, dt_ps, n_bootstrap, rng):
     out["mean_restricted"][has] = km["restricted"][g]
     if not n_bootstrap:
         return out
-    with_events = np.flatnonzero(has)[n_ev[g] > 0]
+    # (one complete visit says nothing of the spread of dwell times: no interval, not a point)
+    with_events = np.flatnonzero(has)[n_ev[g] >= MIN_INTERVAL_VISITS]
     if bootstrap:  # percentile bootstrap, group by group (pooled levels: few groups)
         ends = np.r_[starts[1:], len(ev)]
         for k in with_events:
