@@ -270,7 +270,13 @@ def test_torsion_states_discard(two_ensembles):
     assert dropped.results.summary["parameters"]["discard"]["discarded_frames"] == [450]
     auto = dihedra.TorsionStates(u.atoms, discard="auto").run()
     assert abs(auto.results.summary["parameters"]["discard"]["discarded_frames"][0] - 400) <= 60
-    assert auto.results.convergence["verdict"].iloc[0] == "converged"
+    # the start is gone: no reason about it is left (the population error of the rest is near the
+    # default target, on either side of it)
+    before = dihedra.TorsionStates(u.atoms).run().results.convergence.iloc[0]
+    after = auto.results.convergence.iloc[0]
+    assert before["start"] == "drifts" and "not equilibrated" in before["verdict"]
+    assert after["start"] != "drifts" and "not equilibrated" not in after["verdict"]
+    assert after["population_err_max"] < 1.2 * after["target_error"]
 
 
 @pytest.fixture(scope="module")
@@ -297,6 +303,22 @@ def test_replicas_of_different_potentials_disagree_and_halves_of_one_run_agree(r
     assert any("replicas disagree" in n for n in res.notices)
     same = dihedra.convergence(dihedra.track(top, list(halves), torsions="rotatable"))
     assert same.convergence["replicas"].iloc[0] == "agree"
+
+
+def test_a_population_error_in_the_verdicts_is_never_below_the_populations_table(replicas):
+    # two halves of one run as replicas: the error of each type and state in the convergence tables
+    # (its time-block series) is at least that of populations_by_type (pooled per-torsion blocking),
+    # so a verdict is never more confident than the populations a user reads; where the series
+    # error is the larger it is kept
+    top, _, halves = replicas
+    res = dihedra.track(top, list(halves), torsions="rotatable")
+    conv = dihedra.convergence(res)
+    pooled = res.populations_by_type.set_index(["type", "state"])["population_err"]
+    by_state = conv.by_state.set_index(["type", "state"])["population_err"]
+    assert len(by_state) == len(pooled)
+    assert (by_state >= pooled.reindex(by_state.index) - 1e-15).all()
+    row = conv.convergence.iloc[0]
+    assert row["population_err_max"] >= pooled.max() - 1e-15
 
 
 def test_convergence_result_saves_its_tables(replicas, tmp_path):

@@ -425,6 +425,17 @@ def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):
             assert open(pa, "rb").read() == open(pb, "rb").read(), pa
 
 
+def test_a_type_population_carries_the_error_of_the_populations_table(rb_synthetic, rb_profiles):
+    # 100 moving copies: the bootstrap of the pooled counts and the pooled per-torsion blocking
+    # are two estimates of one error; the state free-energy table gives the populations table's
+    # for every state of the type, so that a user reads one error for one population
+    pooled = rb_synthetic.populations_by_type.set_index(["type", "state"])["population_err"]
+    dg = rb_profiles.state_free_energies
+    rows = dg[dg["torsion"].astype(str) == ""].set_index(["type", "state"])["population_err"]
+    assert len(rows) == 3
+    np.testing.assert_allclose(rows.to_numpy(), pooled.reindex(rows.index).to_numpy(), rtol=1e-12)
+
+
 def test_pooled_state_errors_include_the_spread_between_frozen_torsions(tmp_path):
     # 12 torsions of one type that never move, 4 held in gauche+ and 8 in anti: every block of
     # time holds the same pooled counts, so a bootstrap over blocks alone gives an error of 0,

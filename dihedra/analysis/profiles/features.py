@@ -190,7 +190,8 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt):
     it a small error (0 where nothing moves) however much they differ. ``populations_by_type``
     (the run's pooled table: mean over the torsions, its error with the random-effects spread where
     they are heterogeneous) gives the population error that does not hide that; each type row
-    takes the larger of the two, and the free-energy error the larger of the bootstrap's and
+    takes that error (a population carries one error in every table), and the free-energy error
+    the larger of the bootstrap's and
     kT sqrt((se_B / p_B)^2 + (se_A / p_A)^2) from those population errors (A the reference state;
     the delta method without the covariance of the two, which is negative for populations that
     sum to one: an upper estimate).
@@ -198,8 +199,9 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt):
     Returns
     -------
     DataFrame
-        ``state_dg`` with ``population_err`` and ``free_energy_err_kj_mol`` of the type rows raised
-        where the pooled table's errors are larger (rows of types or states it lacks unchanged).
+        ``state_dg`` with the pooled table's ``population_err`` in the type rows and their
+        ``free_energy_err_kj_mol`` raised where those errors give more (rows of types or states it
+        lacks unchanged).
     """
     if populations_by_type is None or not len(state_dg) or not len(populations_by_type):
         return state_dg
@@ -216,10 +218,13 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt):
     is_ref = state == reference
     with np.errstate(invalid="ignore", divide="ignore"):
         delta = np.where(is_ref, 0.0, kt * np.sqrt((se / p) ** 2 + (se_ref / p_ref) ** 2))
-    for column, floor in (("population_err", se), ("free_energy_err_kj_mol", np.where(p > 0, delta, np.nan))):
-        values = out[column].to_numpy(dtype=float).copy()
-        values[rows] = np.where(np.isfinite(floor), np.fmax(values[rows], floor), values[rows])
-        out[column] = values
+    values = out["population_err"].to_numpy(dtype=float).copy()
+    values[rows] = np.where(np.isfinite(se), se, values[rows])   # (the same population, the same error)
+    out["population_err"] = values
+    floor = np.where(p > 0, delta, np.nan)
+    values = out["free_energy_err_kj_mol"].to_numpy(dtype=float).copy()
+    values[rows] = np.where(np.isfinite(floor), np.fmax(values[rows], floor), values[rows])
+    out["free_energy_err_kj_mol"] = values
     return out
 
 
