@@ -2,6 +2,7 @@
 
 import numpy as np
 import pandas as pd
+import pytest
 
 from dihedra.analysis.kinetics.estimators import _read_barrier_table, barriers_in_kj_mol
 from dihedra.selection.schemes import get_scheme
@@ -50,3 +51,26 @@ def test_a_barrier_over_the_plateau_of_a_third_state_is_no_direct_transition():
     assert mapping[("type", "GLY:phi", "gauche+", "gauche-")][0] == 21.0
     # without the direct barrier, nothing is attached to gauche+ <-> gauche-
     assert _read_barrier_table(table.iloc[1:], scheme) == {}
+
+
+def test_rates_faster_than_transition_state_theory_allows_are_named():
+    # Eyring (CODATA 2018 constants): over 12 kJ/mol at 298.15 K transition-state theory allows at
+    # most (k_B T / h) exp(-12 / RT) = 0.049 per ps; a rate whose 95 % interval lies above that (also
+    # above the bound at the barrier lowered by two of its errors) contradicts the profile and is
+    # named, one within it is not
+    from dihedra.analysis.kinetics.estimators import _add_tst, eyring_rate_per_s
+
+    bound = eyring_rate_per_s(12.0, 298.15) / 1e12
+    assert bound == pytest.approx(0.0494, rel=0.01)
+    mapping = {("type", "T", "anti", "gauche+"): (12.0, 0.3), ("type", "T", "gauche+", "anti"): (12.0, 0.3)}
+    transitions = pd.DataFrame({"level": ["type"] * 2, "name": ["T"] * 2, "from_state": ["anti", "gauche+"],
+                                "to_state": ["gauche+", "anti"], "rate_per_ps": [0.2, 0.04],
+                                "rate_ci_low_per_ps": [0.15, 0.03]})
+    notices = []
+    _add_tst(transitions, 298.15, mapping, notices)
+    named = [n for n in notices if "faster than transition-state theory" in n]
+    assert len(named) == 1 and named[0].startswith("1 transition(s)") and "T anti -> gauche+" in named[0]
+    # a barrier error of 2 kJ/mol lowers the bound to exp(4 / RT) times more: 0.2 / ps is within it
+    notices = []
+    _add_tst(transitions, 298.15, {k: (12.0, 2.0) for k in mapping}, notices)
+    assert not [n for n in notices if "faster than transition-state theory" in n]

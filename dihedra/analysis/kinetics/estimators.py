@@ -352,4 +352,33 @@ def _add_tst(transitions, temperature_k, barriers, notices):
     elif temperature_k is not None:
         transitions["tst_rate_from_profile_per_ps"] = eyring_rate_per_s(
             transitions["profile_barrier_kj_mol"].to_numpy(dtype=float), temperature_k) / 1e12
+        notices.extend(_above_tst_notices(transitions, temperature_k))
+
+
+def _above_tst_notices(transitions, temperature_k):
+    """A notice on transitions observed faster than transition-state theory allows over their
+    profile barrier: the lower end of the rate's 95 % interval above the Eyring rate of the
+    barrier lowered by two of its standard errors."""
+    if "rate_ci_low_per_ps" not in transitions or "profile_barrier_err_kj_mol" not in transitions:
+        return []
+    barrier = transitions["profile_barrier_kj_mol"].to_numpy(dtype=float)
+    err = transitions["profile_barrier_err_kj_mol"].to_numpy(dtype=float)
+    low = np.where(np.isfinite(err), barrier - 2.0 * err, barrier)
+    with np.errstate(invalid="ignore", over="ignore"):
+        bound = eyring_rate_per_s(low, temperature_k) / 1e12
+        fast = transitions["rate_ci_low_per_ps"].to_numpy(dtype=float) > bound
+    rows = transitions[fast & np.isfinite(bound)]
+    if not len(rows):
+        return []
+    shown = "; ".join(f"{r.name} {r.from_state} -> {r.to_state}: {r.rate_per_ps:.3g}/ps observed, at most "
+                      f"{r.tst_rate_from_profile_per_ps:.3g}/ps over its {r.profile_barrier_kj_mol:.1f} kJ/mol"
+                      for r in rows.head(3).itertuples(index=False))
+    more = f" and {len(rows) - 3} more" if len(rows) > 3 else ""
+    return [f"{len(rows)} transition(s) are observed faster than transition-state theory allows over their "
+            f"profile barrier ({shown}{more}; tst_rate_from_profile_per_ps in transitions.csv): the states "
+            "change in other ways than over that barrier. Usual causes: frames too far apart, so that a "
+            "transition through another state between two frames counts as a direct one; with '--assignment "
+            "crisp', flickers across a state boundary away from the barrier top (the default core assignment "
+            "counts only arrivals in a state's core); or a type's pooled barrier that its moving torsions do "
+            "not have."]
 
