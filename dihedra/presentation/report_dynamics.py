@@ -47,7 +47,8 @@ def _convergence(page, figs):
               if "state_changes_seen" in table else [])
     if frozen:
         shown_names = ", ".join(_e(t) for t in frozen[:8]) + (f" and {len(frozen) - 8} more" if len(frozen) > 8 else "")
-        parts.append(f"<p>{len(frozen)} type(s) never changed state in any torsion ({shown_names}): their populations "
+        parts.append(f"<p>{len(frozen)} type(s) never changed state in any torsion, but for momentary excursions "
+                     f"({shown_names}): their populations "
                      "are those of the starting structures, and neither their errors nor the sampling still needed "
                      "can be estimated from this run.</p>")
     if page.summarised:

@@ -402,15 +402,27 @@ def _pooled_errors(result):
                                                    table["population_err"].to_numpy(dtype=float))}
 
 
+#: A torsion that spent fewer frames than this outside one state in a replica (momentary excursions
+#: at most) counts as having stayed in it: the populations it gives are not sampled ones.
+MIN_EXCURSION_FRAMES = 3
+
+
 def _frozen_types(result):
     """The types none of whose torsions changed state in any replica: every torsion spent all its
-    (defined) frames of each replica in one state (from the populations per replica)."""
+    (defined) frames of each replica in one state, but for excursions of fewer than
+    :data:`MIN_EXCURSION_FRAMES` frames in all (from the populations per replica; in a weighted
+    run, whose sums are not frames, without any excursion)."""
     table = getattr(result, "populations_by_replica", None)
     if table is None or not len(table):
         return set()
     table = table[table["n_samples"] > 0]
-    top = table.groupby(["type", "replica", "torsion"], sort=False)["population"].max()
-    stuck = (top >= 1.0).groupby(level="type", sort=False).all()
+    top = table.groupby(["type", "replica", "torsion"], sort=False)[["population", "n_samples"]].max()
+    frames = top["n_samples"].to_numpy(dtype=float)
+    if np.all(frames == np.round(frames)):   # (frame counts; a weighted run's sums are not frames)
+        stuck = (1.0 - top["population"]) * top["n_samples"] < MIN_EXCURSION_FRAMES - 0.5
+    else:
+        stuck = top["population"] >= 1.0
+    stuck = stuck.groupby(level="type", sort=False).all()
     return set(stuck.index[stuck.to_numpy()])
 
 
@@ -454,9 +466,10 @@ def _verdict(row, states, labels):
     if row["n_frames"] <= row["n_replicas"]:
         return "not converged: one frame per replica, nothing to judge convergence by"
     if not row["state_changes_seen"] and row["n_states"] > 1:
-        reasons.append("no torsion of this type changed state in the run (each stayed in the state it started "
-                       "in): its populations are those of the starting structures, and their errors and the "
-                       "sampling still needed cannot be estimated from it")
+        reasons.append(f"no torsion of this type changed state in the run (each stayed in the state it started "
+                       f"in, but for excursions of fewer than {MIN_EXCURSION_FRAMES} frames): its populations are "
+                       "those of the starting structures, and their errors and the sampling still needed cannot be "
+                       "estimated from it")
     if row["start"] == "drifts":
         st = next(r for r in states if r["state"] == row["drift_state"])
         reasons.append(f"the first {human_time(row['t0_ps'])} are not equilibrated ({st['state']} "
