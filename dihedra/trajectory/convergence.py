@@ -182,7 +182,7 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
     kt = None if temperature_k is None else R_KJ_PER_MOL_K * float(temperature_k)
     rows, state_rows, time_rows = [], [], []
     own = _own_states(result.scheme, tb)
-    frozen = _frozen_types(result)
+    frozen = frozen_types(result)
     pooled = _pooled_errors(result)
     for k, name in enumerate(tb.types):
         typ = _TypeSeries(tb, k, time_known, states=own.get(name), frozen=name in frozen, pooled=pooled)
@@ -407,7 +407,7 @@ def _pooled_errors(result):
 MIN_EXCURSION_FRAMES = 3
 
 
-def _frozen_types(result):
+def frozen_types(result):
     """The types none of whose torsions changed state in any replica: every torsion spent all its
     (defined) frames of each replica in one state, but for excursions of fewer than
     :data:`MIN_EXCURSION_FRAMES` frames in all (from the populations per replica; in a weighted

@@ -35,7 +35,7 @@ from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_
                          check_estimate_options, effective_count_scale, effective_samples, rebin,
                          short_run_ratio_map, stack_ratios)
 from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FIELDS, _features_stack,
-                       _state_free_energy_stack, mixture_notice, state_blocks,
+                       _state_free_energy_stack, state_blocks, type_notices,
                        with_spread_between_torsions)
 from .maps import check_pairs, pair_profiles
 
@@ -545,9 +545,7 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,
                       state_free_energies=state_dg, by_type=by_type, settings=settings,
                       notices=early + _profile_notices(by_type, barriers))
-    mixture = mixture_notice(getattr(result, "populations_by_type", None))
-    if mixture:
-        pset.notices.append(mixture)
+    pset.notices.extend(type_notices(result))
     if pairs:
         frames = []
         for a, b in pairs:

@@ -228,6 +228,29 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt):
     return out
 
 
+def type_notices(result):
+    """The notices of a profile on the run's types: mixtures (:func:`mixture_notice`) and types
+    whose torsions never changed state (:func:`frozen_notice`)."""
+    found = (mixture_notice(getattr(result, "populations_by_type", None)), frozen_notice(result))
+    return [n for n in found if n]
+
+
+def frozen_notice(result):
+    """A sentence on the types none of whose torsions changed state (but for momentary excursions;
+    :func:`dihedra.trajectory.convergence.frozen_types`), or ``None``: their profiles hold the
+    starting structures, not an equilibrium."""
+    from ...trajectory.convergence import frozen_types
+
+    names = [t for t in dict.fromkeys(result.torsion_set.types) if t in frozen_types(result)]
+    if not names:
+        return None
+    shown = ", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else "")
+    return (f"{len(names)} type(s) never changed state in any torsion, but for momentary excursions ({shown}; "
+            "state_changes_seen in convergence.csv): their profiles, minima, barriers and state free energies "
+            "show the starting structures (each torsion where it began), not an equilibrium between states; "
+            "read none of them as free energies, and their error bars as those of the wells' widths alone.")
+
+
 def mixture_notice(populations_by_type):
     """A sentence on the types whose torsions differ more than their errors explain (the run's
     pooled table marks them ``heterogeneous``), or ``None``."""
