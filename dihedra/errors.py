@@ -33,6 +33,16 @@ class OutputWriteError(OSError):
     the output, raised as such (an ``OSError`` while reading means a damaged trajectory)."""
 
 
+def name_list(names, limit):
+    """The first ``limit`` of ``names`` joined by commas, and how many more there are.
+
+    >>> name_list(["a", "b", "c"], 2), name_list(["a"], 2)
+    ('a, b and 1 more', 'a')
+    """
+    names = list(names)
+    return ", ".join(names[:limit]) + (f" and {len(names) - limit} more" if len(names) > limit else "")
+
+
 def one_of(name, value, valid):
     """Raise a :class:`DihedraError` unless ``value`` is one of ``valid``.
 

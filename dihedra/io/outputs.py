@@ -35,7 +35,7 @@ import threading
 import time
 import uuid
 
-from ..errors import OutputExistsError
+from ..errors import OutputExistsError, name_list
 from ..trajectory.interrupts import signals_held
 
 #: The list of the files dihedra wrote into a results folder (its presence marks the folder).
@@ -188,7 +188,7 @@ def check_earlier_outputs(folder, command, overwrite=False, names=(), prefixes=(
     (files of other settings, such as another coupling relation, have other names)."""
     found = earlier_outputs(folder, names, prefixes)
     if found and not overwrite:
-        shown = ", ".join(found[:4]) + (f" and {len(found) - 4} more" if len(found) > 4 else "")
+        shown = name_list(found, 4)
         raise OutputExistsError(f"{folder} already has {shown} from an earlier '{command}'; give {option} to "
                                 "replace them (only those files), or work on a copy of the folder.")
     return found
@@ -262,7 +262,7 @@ def _check_replaceable(path, what):
                                 f"a {what} that dihedra wrote: choose another name.")
     foreign = foreign_files(path, marker)
     if foreign:
-        shown = ", ".join(foreign[:5]) + (f" and {len(foreign) - 5} more" if len(foreign) > 5 else "")
+        shown = name_list(foreign, 5)
         raise OutputExistsError(f"{path} holds files dihedra did not write ({shown}); replacing it would lose them: "
                                 "move them elsewhere or choose another name.")
 

@@ -23,6 +23,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
+from ..errors import name_list
 from .heterogeneity import pooled_mean_error
 from .statistics import BlockingLevels, blocking_error, short_run_errors
 
@@ -207,7 +208,7 @@ def heterogeneity_notice(pooled, key, what):
     if het.empty:
         return None
     names = list(dict.fromkeys(het[key]))
-    shown = ", ".join(names[:8]) + (f" and {len(names) - 8} more" if len(names) > 8 else "")
+    shown = name_list(names, 8)
     items = "torsions" if key == "type" else "groups"
     return (f"{len(names)} {what} differ between their {items} more than their own error bars explain "
             f"(Cochran's Q, p < 0.05): {shown}. Either the {items} are not equivalent (residues in different "

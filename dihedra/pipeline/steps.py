@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 from ..analysis.compare import Thresholds, compare_with_scan
 from ..analysis.couplings import coupling_file_names, ensemble_couplings, get_relation, read_experimental
-from ..errors import DihedraError, OutputExistsError
+from ..errors import DihedraError, OutputExistsError, name_list
 from ..analysis.kinetics import state_kinetics
 from ..analysis.profiles import free_energy_profiles
 from ..analysis.ramachandran import ramachandran_regions
@@ -114,7 +114,7 @@ def _check(ctx, step, names=None):
     listed = OUTPUTS.get(step, ()) if names is None else names
     found = [f for f in ctx.before if f in listed or any(f.startswith(p) for p in listed if p.endswith(("_", "/", ".")))]
     if found and not ctx.overwrite:
-        shown = ", ".join(sorted(found)[:4]) + (f" and {len(found) - 4} more" if len(found) > 4 else "")
+        shown = name_list(sorted(found), 4)
         raise OutputExistsError(f"{ctx.out} already has {shown} from an earlier run; run the analysis file with "
                                 "--overwrite to replace them (only those files).")
 

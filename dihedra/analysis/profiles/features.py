@@ -30,6 +30,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from ...errors import name_list
 from ...numerics.extrema import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA,  # noqa: F401
                                  MIN_RESAMPLED_FRACTION, MINIMUM_FIELDS, _features_stack, _minima_stack,
                                  find_minima)
@@ -244,7 +245,7 @@ def frozen_notice(result):
     names = [t for t in dict.fromkeys(result.torsion_set.types) if t in frozen_types(result)]
     if not names:
         return None
-    shown = ", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else "")
+    shown = name_list(names, 6)
     return (f"{len(names)} type(s) never changed state in any torsion, but for momentary excursions ({shown}; "
             "state_changes_seen in convergence.csv): their profiles, minima, barriers and state free energies "
             "show the starting structures (each torsion where it began), not an equilibrium between states; "
@@ -260,7 +261,7 @@ def mixture_notice(populations_by_type):
     names = list(dict.fromkeys(flagged["type"].astype(str)))
     if not names:
         return None
-    shown = ", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else "")
+    shown = name_list(names, 6)
     return (f"{len(names)} type(s) pool torsions that differ more than their own error bars explain ({shown}; "
             "heterogeneous in populations_by_type.csv): their pooled profiles, minima and barriers describe a "
             "mixture, and their error bars cover sampling in time only; their state populations and free "
