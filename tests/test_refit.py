@@ -704,6 +704,24 @@ def test_figure_set_draws_the_refit_figure(profile_fit, gas, tmp_path):
         assert "kJ" in ax.get_ylabel()
 
 
+def test_figures_types_choose_the_refit_figures_as_the_others(tmp_path):
+    from dihedra.presentation import figures
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = track(os.path.join(EXAMPLES, "hexane.pdb"), [os.path.join(EXAMPLES, "hexane.xtc")], torsions="rotatable",
+                    keep_angles=True, temperature_k=298.15, stop=100, out=str(tmp_path / "res"))
+    types = list(dict.fromkeys(res.torsion_set.types))
+    target = pd.DataFrame([{"type": t, "state": "anti", "population": 0.65, "population_err": 0.01} for t in types])
+    fit_torsion_correction(res, target, n_bootstrap=3, regularisation=0.01).save(res.folder)
+    inner = next(t for t in types if "C2-C3-C4-C5" in t)
+    with figures.style():
+        every = [i.name for i in figures.figure_set(res.folder).items if i.kind == "refit"]
+        chosen = [i.name for i in figures.figure_set(res.folder, types=[inner]).items if i.kind == "refit"]
+    assert every == ["refit_" + figures.safe_name(t) for t in types]   # none chosen: every corrected type
+    assert chosen == ["refit_" + figures.safe_name(inner)]             # one chosen: its figure only
+
+
 # ------------------------------------------------------------------------------------------------
 # The real test of a correction: a new simulation with it
 # ------------------------------------------------------------------------------------------------

@@ -105,8 +105,10 @@ def figure_set(folder, width="single", types=None, max_types=4, max_series=3, lo
         Torsion types for the per-type figures, or single torsions by their label (their type's
         figures, and their own angle series). The angle series show the torsions named, else of
         each of up to ``max_series`` types the torsion whose states change most; the raster shows
-        the torsions of the chosen types. Default: the ``max_types`` most informative types (see
-        :mod:`~dihedra.presentation.figures.choice`) and every torsion in the raster.
+        the torsions of the chosen types; the refit figures are those of the chosen types the
+        refit corrected. Default: the ``max_types`` most informative types (see
+        :mod:`~dihedra.presentation.figures.choice`), every torsion in the raster and every type
+        the refit corrected.
     log : callable, optional
         Receives one-line notes on what is skipped and why.
 
@@ -131,7 +133,7 @@ def figure_set(folder, width="single", types=None, max_types=4, max_series=3, lo
     _add_kinetics(b, chosen_types)
     _add_convergence(b, chosen_types)
     _add_couplings(b)
-    _add_refit(b)
+    _add_refit(b, chosen_types if types else None)
     return b.out
 
 
@@ -342,18 +344,26 @@ def _add_couplings(b):
           "the identity line.", fig, "couplings")
 
 
-def _add_refit(b):
-    """10. A fitted torsion correction (drawn only when the folder has the refit outputs): per type,
-    the target against the sampled and reweighted profile (or populations), and the correction."""
+def _add_refit(b, chosen_types=None):
+    """10. A fitted torsion correction (drawn only when the folder has the refit outputs): per type
+    corrected (of ``chosen_types`` only, when types were chosen), the target against the sampled
+    and reweighted profile (or populations), and the correction."""
     correction = read_optional(b.folder, "refit_correction.csv")
     if correction is None or not len(correction):
         return
+    fitted = list(dict.fromkeys(correction["type"]))
+    if chosen_types is not None:
+        fitted = [t for t in fitted if t in set(chosen_types)]
+        if not fitted:
+            b.skip("refit figures", "none of the chosen types was corrected by 'dihedra refit' (its types: "
+                   + ", ".join(dict.fromkeys(correction["type"])) + ")")
+            return
     profiles = read_optional(b.folder, "refit_profiles.csv")
     populations = read_optional(b.folder, "refit_populations.csv")
     summary = read_optional(b.folder, "refit_summary.csv")
     untrusted = summary is not None and len(summary) and not _as_bool(summary["trustworthy"])[0]
     warn = "NOT TRUSTWORTHY (effective sample fraction too small): " if untrusted else ""
-    for t in dict.fromkeys(correction["type"]):
+    for t in fitted:
         fig = _figure(b.width_in, 3.9)
         left, right = fig.subplots(2, 1, gridspec_kw={"height_ratios": [1.4, 1.0]})
         use_pops = (populations is not None and has_target(populations, t, "target_population")
