@@ -266,3 +266,14 @@ def test_types_take_shell_style_patterns(tmp_path, capsys):
     assert plain.types == ["ALA:phi"]
     code, _, err = run_cli(capsys, "kinetics", folder, "--types", "GLY:*")
     assert_one_line_error(code, err, "GLY:*", "matches")
+
+
+def test_printed_errors_that_round_to_zero_carry_no_sign():
+    from dihedra.analysis.refit.exports import _circular_sd_deg
+    from dihedra.cli.common import format_pm
+
+    # phases that agree in every bootstrap refit: sqrt(-2 ln 1) is a negative zero in IEEE 754
+    err = _circular_sd_deg(np.array([[180.0], [180.0], [180.0]]))[0]
+    assert np.signbit(err) and format_pm(180.0, err, 1) == "180.0 ± 0.0"
+    assert format_pm(0.25, -0.0004) == "0.250 ± 0.000" and format_pm(-0.0004, 0.0002) == "0.000 ± 0.000"
+    assert format_pm(-0.25, 0.01) == "-0.250 ± 0.010"   # a value that does not round to zero keeps its sign

@@ -155,14 +155,20 @@ def print_notices(notices):
 
 
 def format_pm(value, err, digits=3):
-    """``value ± err``; ``value ± n/a`` where the error could not be estimated (NaN), never 0."""
+    """``value ± err``; ``value ± n/a`` where the error could not be estimated (NaN), never 0; a
+    number that rounds to zero is printed without a sign (``180.0 ± 0.0``, not ``± -0.0``)."""
     if value is None or (isinstance(value, float) and np.isnan(value)):
         return "-"
     if err is None:
-        return f"{value:.{digits}f}"
+        return _fixed(value, digits)
     if np.isnan(err):
-        return f"{value:.{digits}f} ± n/a"
-    return f"{value:.{digits}f} ± {err:.{digits}f}"
+        return f"{_fixed(value, digits)} ± n/a"
+    return f"{_fixed(value, digits)} ± {_fixed(err, digits)}"
+
+
+def _fixed(x, digits):
+    """``x`` to ``digits`` decimals, without the sign of a negative zero ("-0.0")."""
+    return f"{round(float(x), digits) + 0.0:.{digits}f}"
 
 
 def print_population_table(by_type, state_order, out=None, max_rows=40):
