@@ -54,6 +54,19 @@ def test_a_command_that_succeeded_ends_with_its_output_whole(system):
     assert res.returncode == 0 and "4 torsions of 1 types" in res.stdout and "Ordered by: cumulative time" in res.stdout
 
 
+@pytest.mark.parametrize("small", [True, False])
+def test_a_closed_output_pipe_ends_the_command_quietly(system, small):
+    # 'dihedra torsions TOP | head': the reader gone before the table is written (here from the
+    # start); the process ends as one killed by SIGPIPE is reported, 128 + 13 (common practice), without
+    # an error; a small table fails at the last flush, a long one (300 rows) while it is printed
+    top = system[0] if small else os.path.join(os.path.dirname(__file__), "..", "example_trajectories", "hexane.pdb")
+    proc = subprocess.Popen([sys.executable, "-m", "dihedra", "torsions", top, "--torsions", "rotatable"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    proc.stdout.close()
+    err = proc.stderr.read()
+    assert proc.wait(timeout=120) == 141 and err == "", err
+
+
 def test_track_loads_mdanalysis_without_rdkit_and_rdkit_still_imports_after():
     # MDAnalysis loads RDKit (about 40 MB) for its converter when RDKit is installed; the track
     # command never converts, so its process imports MDAnalysis with RDKit held back

@@ -3,9 +3,11 @@
 Each subcommand lives in its own module of this package with ``register(subparsers)``; modules are
 discovered by name, so adding a subcommand never edits this file. User errors
 (:class:`dihedra.errors.DihedraError`) and failures of the system (a full disk, a read-only
-folder: any ``OSError``) print as one line without a traceback and exit with 2. Ctrl-C (SIGINT)
-and SIGTERM stop a command at any point along the same path: the run's threads and worker
-processes are stopped, its staging folder removed, and one line is printed (exit 130 or 143).
+folder: any ``OSError``) print as one line without a traceback and exit with 2; an output whose
+reader has gone (``dihedra torsions TOP | head``) ends the command without a word, with the exit
+status of a process that SIGPIPE ended (141). Ctrl-C (SIGINT) and SIGTERM stop a command at any
+point along the same path: the run's threads and worker processes are stopped, its staging folder
+removed, and one line is printed (exit 130 or 143).
 """
 
 from __future__ import annotations
@@ -92,6 +94,8 @@ def main(argv=None):
     except KeyboardInterrupt:   # Ctrl-C while the commands were still being loaded: nothing was done
         print("dihedra: interrupted (SIGINT); stopped before any work (nothing was written).", file=sys.stderr)
         status = 128 + signal.SIGINT
+    if argv is None and not status and not _flushed():
+        status = 128 + signal.SIGPIPE
     if argv is None and status not in (None, 0):
         _release_process_resources()
         sys.stdout.flush()
@@ -202,6 +206,8 @@ def _main(argv):
         except DihedraError as exc:
             return _error(str(exc))
         except OSError as exc:   # a full disk, a read-only folder, a file that went away
+            if output_closed(exc):   # '| head' had what it wanted: ended as by SIGPIPE, without a word
+                return 128 + signal.SIGPIPE
             return _error(describe_os_error(exc))
         except KeyboardInterrupt:
             name = signal.Signals(received[0]).name if received else "SIGINT"
@@ -237,6 +243,41 @@ def _error(text):
     print(f"dihedra: error: {text}", file=sys.stderr)
     sys.stderr.flush()
     return 2
+
+
+def output_closed(exc):
+    """Whether ``exc`` is a write to a standard output or error whose reader has gone (``dihedra
+    torsions TOP | head`` once head has its lines): a pipe no process reads. That stream is then
+    pointed at /dev/null, so that the flushes still to come (at the exit) end quietly too."""
+    import select
+
+    if not isinstance(exc, BrokenPipeError):
+        return False
+    closed = False
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            fd = stream.fileno()
+            poller = select.poll()
+            poller.register(fd, select.POLLOUT)
+            if not any(events & (select.POLLERR | select.POLLHUP) for _, events in poller.poll(0)):
+                continue
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, fd)
+            os.close(devnull)
+            closed = True
+        except (AttributeError, OSError, ValueError):   # not a file (a test's capture) or no poll
+            continue
+    return closed
+
+
+def _flushed():
+    """Flush the output of a command that succeeded: False when its reader had gone (see
+    :func:`output_closed`)."""
+    try:
+        sys.stdout.flush()
+    except OSError as exc:
+        return not output_closed(exc)
+    return True
 
 
 def describe_os_error(exc):
