@@ -10,7 +10,7 @@ import pytest
 
 from conftest import chain_coordinates, write_system
 from dihedra import __version__
-from dihedra.cli import main
+from dihedra.cli import build_parser, main
 
 
 @pytest.fixture(scope="module")
@@ -52,6 +52,21 @@ def test_a_command_that_succeeded_ends_with_its_output_whole(system):
     assert res.returncode == 0 and res.stdout.rstrip().endswith("4 torsions of 1 types"), res.stdout[-300:]
     res = subprocess.run([sys.executable, "-m", "cProfile", "-s", "cumtime", *command], capture_output=True, text=True)
     assert res.returncode == 0 and "4 torsions of 1 types" in res.stdout and "Ordered by: cumulative time" in res.stdout
+
+
+@pytest.mark.parametrize("command, option", [("figures", "--types"), ("kinetics", "--types"),
+                                             ("report", "--types"), ("figures", "--torsions")])
+def test_a_folder_after_a_many_valued_option_is_explained(tmp_path, capsys, command, option):
+    # 'dihedra figures --types ALA:* DIR': the option takes DIR as one more value; the error says so
+    # and how to give it (before the option, or after --, which then parses); --torsions: the
+    # former name of figures' --types
+    values = ["ALA:*", "GLY:*"]
+    code, _, err = run_cli(capsys, command, option, *values, tmp_path)
+    assert_one_line_error(code, err, "the following arguments are required: DIR",
+                          f"{option} takes every value that follows it", f"give DIR before {option}", "--")
+    assert build_parser(command).parse_args([command, option, *values, "--", str(tmp_path)]).folder == str(tmp_path)
+    code, _, err = run_cli(capsys, command)   # no such option given: the plain message
+    assert code == 2 and "takes every value" not in err
 
 
 @pytest.mark.parametrize("small", [True, False])

@@ -43,9 +43,33 @@ class _Parser(argparse.ArgumentParser):
     #: parser reports options that no parser took, after a subcommand was named).
     help_command = None
 
+    def parse_known_args(self, args=None, namespace=None):
+        self.given = list(sys.argv[1:] if args is None else args)   # (for the hint of error())
+        return super().parse_known_args(args, namespace)
+
     def error(self, message):
         where = f"{self.prog}: " if self.prog != "dihedra" else ""
-        self.exit(2, f"dihedra: error: {where}{message} (see '{self.help_command or self.prog} --help').\n")
+        self.exit(2, f"dihedra: error: {where}{message}{self._many_values_hint(message)} "
+                     f"(see '{self.help_command or self.prog} --help').\n")
+
+    def _many_values_hint(self, message):
+        """Why a required argument is missing when an option that takes several values was given
+        (``dihedra figures --types 'ALA:*' DIR``: DIR is read as one more type), and the two ways
+        out; "" otherwise."""
+        if not message.startswith("the following arguments are required:"):
+            return ""
+        named = [n.strip() for n in message.split(":", 1)[1].split(",")]
+        missing = [argparse._get_action_name(a) for a in self._actions
+                   if not a.option_strings and argparse._get_action_name(a) in named]
+        given = getattr(self, "given", [])
+        many = [o for a in self._actions if a.option_strings and a.nargs in ("+", "*")
+                for o in a.option_strings if o in given]
+        if not missing or not many:
+            return ""
+        name, option = " ".join(missing), many[-1]
+        return (f"; {option} takes every value that follows it, so a {name} given after them is read as one "
+                f"of them: give {name} before {option}, or end its values with -- "
+                f"('{self.prog} {option} ... -- {name}')")
 
 
 def build_parser(command=None):
