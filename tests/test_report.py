@@ -100,6 +100,19 @@ def test_report_of_a_track_only_folder_says_what_is_missing(track_only_folder, t
     assert len(re.findall(r"<img ", text)) == 4  # series, raster, populations, convergence
 
 
+def test_report_shows_the_temperature_as_given(tmp_path):
+    # 298.15 K (the bundled example's) in the header and the profiles' lead, not rounded to 298 K
+    examples = os.path.join(os.path.dirname(__file__), "..", "example_trajectories")
+    out = str(tmp_path / "res")
+    assert main(["track", os.path.join(examples, "hexane.pdb"), os.path.join(examples, "hexane.xtc"), "--torsions",
+                 "rotatable", "--stop", "50", "--temperature", "298.15", "--out", out]) == 0
+    assert main(["profile", out, "--types-only", "--bootstrap", "20"]) == 0
+    text = open(write_report(out, figures=False), encoding="utf-8").read()
+    header = text[:text.index("</header>")]
+    assert "scheme anti-gauche, 298.15 K</p>" in header and " 298 K" not in text
+    assert "F(φ) = −kT ln p(φ) at 298.15 K (kT = " in section(text, "profiles")
+
+
 def test_report_command(full_folder, tmp_path, capsys):  # noqa: F811
     folder = str(tmp_path / "copy")
     shutil.copytree(full_folder, folder)

@@ -50,7 +50,7 @@ from ..io.tables import read_optional_json
 from .figures import CHOICE_RULE, informative_types
 from .figures.figureset import check_types
 from .report_dynamics import _convergence, _couplings, _kinetics, coupling_files
-from .report_html import _CSS, MAX_ROWS, Page, _e, _fmt
+from .report_html import _CSS, MAX_ROWS, Page, _e, _kelvin
 from .report_ramachandran import _ramachandran
 from .report_refit import _refit
 from .report_sections import _comparison, _populations, _profiles, _provenance, _time_series, _torsions
@@ -157,7 +157,7 @@ def _header(result, page):
     return (f"<header class='top'><h1>dihedra report: {_e(os.path.basename(folder))}</h1>"
             f"<p>{summary.get('n_torsions')} torsions of {n_types} type(s), {summary.get('n_frames_analysed')} "
             f"frames from {len(summary.get('replicas', []))} replica(s), scheme {_e(result.scheme.name)}"
-            + (f", {_fmt(temp)} K" if temp is not None else ", no temperature recorded") + "</p>" + shown +
+            + (f", {_kelvin(temp)} K" if temp is not None else ", no temperature recorded") + "</p>" + shown +
             f"<p>{_e(folder)} · report written {time.strftime('%Y-%m-%d %H:%M')} by dihedra {_e(__version__)}</p>"
             "</header>")
 

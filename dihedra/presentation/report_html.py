@@ -122,6 +122,16 @@ def _fmt(value):
     return "–" if text in ("nan", "None", "") else text
 
 
+def _kelvin(value):
+    """A temperature as it was given (298.15, not rounded to 298 as :func:`_fmt` would): the
+    shortest decimal that is the number; "–" when none was recorded."""
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return "–"
+    return np.format_float_positional(value, trim="-") if np.isfinite(value) else "–"
+
+
 def _pm(value, err, digits=None):
     """``value ± error`` rounded to the error (:func:`~dihedra.presentation.rounding.format_value_error`;
     ``digits`` is ignored, kept for callers)."""

@@ -10,7 +10,8 @@ import os
 
 from ..io.tables import read_optional_json, read_optional_table as read_optional
 from .figures.common import _as_bool
-from .report_html import MAX_ROWS, _callout, _figures_html, _fmt, _kv, _missing, _pm, _pm_columns, _table, _verdict
+from .report_html import (MAX_ROWS, _callout, _figures_html, _fmt, _kelvin, _kv, _missing, _pm, _pm_columns, _table,
+                          _verdict)
 
 #: Files of a refit that a user applies elsewhere, linked from the section when present.
 _FORMS = ("refit_openmm.xml", "refit_ryckaert_bellemans.csv", "refit_fourier.csv", "refit_correction.csv")
@@ -34,7 +35,7 @@ def _refit(page, figs):
     parts.append(_kv([
         ("target", f"{target} ({os.path.basename(str(p.get('target_file', '')))})" if target else None),
         ("types corrected", ", ".join(p.get("types") or []) or None),
-        ("temperature (K)", p.get("temperature_k")),
+        ("temperature (K)", None if p.get("temperature_k") is None else _kelvin(p["temperature_k"])),
         ("Fourier terms", p.get("terms")), ("weights per", p.get("weights_per")),
         ("effective sample fraction (Kish)", _pm(row.get("effective_sample_fraction"),
                                                   row.get("effective_sample_fraction_err"))),

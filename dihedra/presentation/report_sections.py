@@ -10,8 +10,8 @@ import pandas as pd
 
 from ..io.tables import read_optional_json, read_optional_table as read_optional, read_optional_text
 from .figures import state_colours
-from .report_html import (MAX_ROWS, _callout, _e, _figures_html, _fmt, _inline_list, _kv, _missing, _pm, _pm_columns,
-                          _pooled, _table, _verdict)
+from .report_html import (MAX_ROWS, _callout, _e, _figures_html, _fmt, _inline_list, _kelvin, _kv, _missing, _pm,
+                          _pm_columns, _pooled, _table, _verdict)
 
 
 def _provenance(page):
@@ -174,7 +174,7 @@ def _profiles(page, figs):
         return _missing("profiles", "Free-energy profiles", "profiles", "dihedra profile DIR")
     parts = ["<section id='profiles'><h2>Free-energy profiles</h2>"]
     unit = info.get("energy_unit", "kJ/mol")
-    parts.append(f"<p class='lead'>F(φ) = −kT ln p(φ) at {_fmt(info.get('temperature_k'))} K (kT = "
+    parts.append(f"<p class='lead'>F(φ) = −kT ln p(φ) at {_kelvin(info.get('temperature_k'))} K (kT = "
                  f"{_fmt(info.get('kt_kj_mol'))} kJ/mol), {_fmt(info.get('bin_width_deg'))}-degree bins, errors "
                  f"from a block bootstrap ({_e(info.get('n_bootstrap'))} resamples); energies in {_e(unit)}.</p>")
     parts.append(_callout("Cautions", info.get("cautions", []), "caution"))
@@ -240,7 +240,7 @@ def _scan_comparison(table, details):
     scan = details.get("scan", {})
     if scan:
         parts.append(f"<p class='lead'>Scan: {_e(scan.get('source'))} (kind: {_e(scan.get('kind'))}). Temperature "
-                     f"{_fmt(details.get('temperature_k'))} K.</p>")
+                     f"{_kelvin(details.get('temperature_k'))} K.</p>")
     rows = table.copy()
     rows["verdict"] = [_verdict(v) for v in rows["verdict"]]
     names = {"type": "type", "verdict": "verdict", "n_reliable_bins": "reliable bins", "rmse_kj_mol": "RMSE (kJ/mol)",
