@@ -124,6 +124,13 @@ def _file_cases(c):
         write(d, "scan.csv", "angle_deg\n" + "".join(f"{a}\n" for a in range(-180, 180, 30)))
     c.append(Case("scan with one column", ["compare", "res", "--scan", "scan.csv", "--type", "all"], setup=scan_one))
 
+    def coupled_atoms(fx, d):
+        copy_in(fx, d, "res")
+        write(d, "exp.csv", 'torsion,coupled_atoms,J_hz,J_err_hz\nHEX:C1-C2-C3-C4,"H1,H2",5,0.5\n')
+    c.append(Case("experimental couplings of coupled atoms the torsion has not",
+                  ["couplings", "res", "--relation", "karplus-1959", "--types", "HEX:C1-C2-C3-C4",
+                   "--experimental", "exp.csv"], setup=coupled_atoms))
+
     for label, atoms in [("fractional", "[0, 1, 2, 3.7]"), ("string", '["0", "1", "2", "3"]'),
                          ("negative", "[0, 1, 2, -3]"), ("out of range", "[0, 1, 2, 99999]")]:
         def tors(fx, d, atoms=atoms):

@@ -195,6 +195,38 @@ def test_hn_ha_couplings_only_where_there_is_an_amide_h_and_both_glycine_protons
         dihedra.ensemble_couplings(adk_backbone, "karplus-1959")
 
 
+def test_experimental_couplings_choose_a_glycine_row(adk_backbone, tmp_path):
+    from MDAnalysis.analysis.dihedrals import Ramachandran
+
+    from dihedra.analysis.couplings import get_relation, read_experimental
+
+    # <J> of GLY7's HN,HA2 (theta = phi - 60) over MDAnalysis' own phi angles (reference library)
+    u = mda.Universe(data.PSF, data.DCD)
+    phi = Ramachandran(u.select_atoms("resname GLY and resid 7")).run().results.angles[:, 0, 0]
+    ha2 = float(np.mean(get_relation("vuister-bax-1993").evaluate(phi)))
+    path = tmp_path / "exp.csv"
+    pd.DataFrame({"torsion": ["GLY7:phi", "GLY7:phi", "GLY7:phi", "GLY7:phi"],
+                  "coupled_atoms": ["HN,HA2", "hn, ha1+ha2", "", "HN,HA1"],
+                  "J_hz": [ha2, 12.0, 12.0, 30.0], "J_err_hz": 0.5,
+                  "remark": "x"}).to_csv(path, index=False)
+    cres = dihedra.ensemble_couplings(adk_backbone, "vuister-bax-1993", experimental=read_experimental(str(path)))
+    pts = cres.experiment
+    # the row named by coupled_atoms is the one compared: HN,HA2 itself, not the sum of both H-alpha
+    assert pts["j_hz"].iloc[0] == pytest.approx(ha2, abs=0.05)
+    assert list(pts["coupled_atoms"].iloc[:3]) == ["HN,HA2", "HN,HA2+HA1", "HN,HA2+HA1"]
+    assert abs(pts["z"].iloc[0]) < 1
+    assert cres.experiment_summary[0]["outliers"] == ["GLY7:phi [HN,HA1]"]   # (30 Hz is far from any <J>)
+    # without coupled_atoms the sum is compared, and a notice says so and how to choose another row
+    assert any("GLY7:phi" in n and "coupled_atoms" in n and "HN,HA1" in n for n in cres.notices)
+    # a column that is not read is named
+    assert any("remark" in n and "not read" in n for n in cres.notices)
+    # a coupled_atoms that is not a row of that torsion is an error naming the rows there are
+    pd.DataFrame({"torsion": ["GLY7:phi"], "coupled_atoms": ["HN,HA3"], "J_hz": [5.0],
+                  "J_err_hz": [0.5]}).to_csv(path, index=False)
+    with pytest.raises(DihedraError, match="HN,HA2 / HN,HA1 / HN,HA2\\+HA1"):
+        dihedra.ensemble_couplings(adk_backbone, "vuister-bax-1993", experimental=read_experimental(str(path)))
+
+
 def test_kinetics_say_when_their_numbers_are_weak(tmp_path, capsys):
     out = str(tmp_path / "k")
     # the same trajectory twice is refused: copies are not independent replicas

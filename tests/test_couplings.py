@@ -210,6 +210,26 @@ def test_experiment_by_type_and_unmatched_labels(rb_folder, tmp_path):
     assert info["experimental"]["file"] == str(path) and info["experimental"]["summary"][0]["n_points"] == 1
 
 
+def test_experiment_coupled_atoms_and_columns_not_read(rb_folder, tmp_path):
+    ttype = rb_folder.torsion_set.types[0]
+    cres = ensemble_couplings(rb_folder, "karplus-1959", types=[ttype])
+    row = cres.couplings[cres.couplings["level"] == "torsion"].iloc[0]
+    path = tmp_path / "exp.csv"
+    # coupled_atoms as the couplings table names them (spaces and case aside) chooses that row
+    pd.DataFrame({"torsion": [row["torsion"]], "coupled_atoms": [row["coupled_atoms"].lower().replace(",", ", ")],
+                  "J_hz": [row["j_hz"]], "J_err_hz": [0.2], "source": ["lab notebook"]}).to_csv(path, index=False)
+    notices = []
+    points, summary = compare_with_experiment(cres.couplings, read_experimental(str(path)), notices=notices)
+    assert points["coupled_atoms"].iloc[0] == row["coupled_atoms"] and points["deviation_hz"].iloc[0] == 0.0
+    # the column that is not read is named in a notice, not dropped silently
+    assert any("source" in n and "not read" in n for n in notices)
+    # coupled atoms the torsion has no row for: an error that names the row there is
+    pd.DataFrame({"torsion": [row["torsion"]], "coupled_atoms": ["HN,HA"], "J_hz": [5.0],
+                  "J_err_hz": [0.2]}).to_csv(path, index=False)
+    with pytest.raises(DihedraError, match=row["coupled_atoms"]):
+        compare_with_experiment(cres.couplings, read_experimental(str(path)))
+
+
 # ------------------------------------------------------------------------------------------------
 # Weighted histograms
 # ------------------------------------------------------------------------------------------------

@@ -152,6 +152,15 @@ def test_a_scan_with_two_energies_at_one_angle_is_refused(work, capsys):
     refused(capsys, ["compare", "res", "--scan", "one.csv", "--type", "all"], "1 column")
 
 
+def test_experimental_couplings_of_coupled_atoms_the_torsion_has_not_are_refused(work, capsys):
+    # a united-atom hexane torsion taken as an H-C-C-H one couples its end atoms C1,C4, not H1,H2
+    (work / "exp.csv").write_text('torsion,coupled_atoms,J_hz,J_err_hz\nHEX:C1-C2-C3-C4,"H1,H2",5,0.5\n')
+    before = snapshot(work / "res")
+    refused(capsys, ["couplings", "res", "--relation", "karplus-1959", "--types", "HEX:C1-C2-C3-C4",
+                     "--experimental", "exp.csv"], "'H1,H2'", "C1,C4")
+    assert snapshot(work / "res") == before
+
+
 @pytest.mark.parametrize("atoms, fragment", [("[0, 1, 2, 3.7]", "whole numbers"), ('["0", "1", "2", "3"]', "whole"),
                                              ('"0,1,2,3"', "list of four"), ("[0, 1, 2, 99999]", "out of range")])
 def test_torsion_files_need_whole_atom_indices(work, capsys, atoms, fragment):

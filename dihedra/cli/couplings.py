@@ -20,7 +20,8 @@ def register(sub):
                    help="Karplus relation (repeatable): " + ", ".join(BUILTIN_RELATIONS)
                         + ", or a .toml file with a [relation] table")
     p.add_argument("--experimental", metavar="FILE", default=None,
-                   help="CSV of measured couplings: torsion (or residue), J_hz, J_err_hz")
+                   help="CSV of measured couplings: torsion (or residue), J_hz, J_err_hz and optionally "
+                        "coupled_atoms (e.g. HN,HA2: one H-alpha of a glycine instead of their sum)")
     add_types_option(p, "torsion types, or single torsions by their label, to average (default: the torsions the "
                         "relation is meant for, e.g. protein phi)", former=("--select",))
     add_overwrite_option(p, "files of the same relation")

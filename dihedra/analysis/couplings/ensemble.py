@@ -51,7 +51,8 @@ statistical error of a long simulation.
 * a custom relation: ``systematic_hz`` from its TOML file, if given.
 
 With experimental values (:mod:`dihedra.analysis.couplings.experiment`), the averages are compared
-with them in the same call.
+with them in the same call (a glycine's value with the sum of its two H-alpha unless the value's
+``coupled_atoms`` names one).
 """
 
 from __future__ import annotations
@@ -509,8 +510,8 @@ def ensemble_couplings(result, relation, *, types=None, experimental=None, unive
         Torsion types or single torsions (labels) to average (default: those each relation is
         meant for).
     experimental : DataFrame, optional
-        Measured couplings with the columns label, j_exp_hz, j_exp_err_hz (as read by
-        :func:`~dihedra.analysis.couplings.experiment.read_experimental`).
+        Measured couplings with the columns label, j_exp_hz, j_exp_err_hz and optionally
+        coupled_atoms (as read by :func:`~dihedra.analysis.couplings.experiment.read_experimental`).
     universe : MDAnalysis.Universe, optional
         Bonds, elements and coordinates for the Haasnoot-Altona substituents; default the
         topology recorded in the result.
@@ -545,7 +546,7 @@ def ensemble_couplings(result, relation, *, types=None, experimental=None, unive
                        "reweighted average.")
     points = summary = None
     if experimental is not None:
-        points, summary = compare_with_experiment(out, experimental)
+        points, summary = compare_with_experiment(out, experimental, notices=notices)
     parameters = {"relations": [r.name for r in relations], "types": None if select is None else list(select),
                   "n_experimental": None if experimental is None else len(experimental),
                   "universe_given": universe is not None}
