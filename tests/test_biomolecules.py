@@ -195,7 +195,7 @@ def test_hn_ha_couplings_only_where_there_is_an_amide_h_and_both_glycine_protons
         dihedra.ensemble_couplings(adk_backbone, "karplus-1959")
 
 
-def test_experimental_couplings_choose_a_glycine_row(adk_backbone, tmp_path):
+def test_experimental_couplings_choose_a_glycine_row_and_say_why_proline_is_left_out(adk_backbone, tmp_path):
     from MDAnalysis.analysis.dihedrals import Ramachandran
 
     from dihedra.analysis.couplings import get_relation, read_experimental
@@ -205,9 +205,9 @@ def test_experimental_couplings_choose_a_glycine_row(adk_backbone, tmp_path):
     phi = Ramachandran(u.select_atoms("resname GLY and resid 7")).run().results.angles[:, 0, 0]
     ha2 = float(np.mean(get_relation("vuister-bax-1993").evaluate(phi)))
     path = tmp_path / "exp.csv"
-    pd.DataFrame({"torsion": ["GLY7:phi", "GLY7:phi", "GLY7:phi", "GLY7:phi"],
-                  "coupled_atoms": ["HN,HA2", "hn, ha1+ha2", "", "HN,HA1"],
-                  "J_hz": [ha2, 12.0, 12.0, 30.0], "J_err_hz": 0.5,
+    pd.DataFrame({"torsion": ["GLY7:phi", "GLY7:phi", "GLY7:phi", "GLY7:phi", "PRO9:phi", "PRO9:psi", "XYZ5:phi"],
+                  "coupled_atoms": ["HN,HA2", "hn, ha1+ha2", "", "HN,HA1", "", "", ""],
+                  "J_hz": [ha2, 12.0, 12.0, 30.0, 5.0, 5.0, 5.0], "J_err_hz": 0.5,
                   "remark": "x"}).to_csv(path, index=False)
     cres = dihedra.ensemble_couplings(adk_backbone, "vuister-bax-1993", experimental=read_experimental(str(path)))
     pts = cres.experiment
@@ -220,6 +220,11 @@ def test_experimental_couplings_choose_a_glycine_row(adk_backbone, tmp_path):
     assert any("GLY7:phi" in n and "coupled_atoms" in n and "HN,HA1" in n for n in cres.notices)
     # a column that is not read is named
     assert any("remark" in n and "not read" in n for n in cres.notices)
+    # proline's phi is in the folder, but 3J(HN,HA) needs an amide H: said so, unlike a label that is not there
+    why = dict(zip(pts["label"], pts["matched_as"]))
+    assert "in the folder" in why["PRO9:phi"] and "amide H" in why["PRO9:phi"]
+    assert "in the folder" in why["PRO9:psi"] and "H-N-CA-HA" in why["PRO9:psi"]
+    assert why["XYZ5:phi"] == "no matching torsion, type or residue"
     # a coupled_atoms that is not a row of that torsion is an error naming the rows there are
     pd.DataFrame({"torsion": ["GLY7:phi"], "coupled_atoms": ["HN,HA3"], "J_hz": [5.0],
                   "J_err_hz": [0.5]}).to_csv(path, index=False)

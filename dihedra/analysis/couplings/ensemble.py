@@ -52,7 +52,8 @@ statistical error of a long simulation.
 
 With experimental values (:mod:`dihedra.analysis.couplings.experiment`), the averages are compared
 with them in the same call (a glycine's value with the sum of its two H-alpha unless the value's
-``coupled_atoms`` names one).
+``coupled_atoms`` names one); a value for a torsion of the folder that a relation has no row for
+(a proline's phi) is reported with the reason.
 """
 
 from __future__ import annotations
@@ -217,8 +218,9 @@ def choose_torsions(result, relation, select=None, notices=None):
                        ", or choose a torsion to take as one (--types).")
 
 
-def coupling_rows(result, relation, positions, notices, universe=None):
-    """The rows of an HN-HA relation: ``(positions, extra offsets, coupled atoms)``.
+def coupling_rows(result, relation, positions, notices, universe=None, left_out=None):
+    """The rows of an HN-HA relation: ``(positions, extra offsets, coupled atoms)``; ``left_out``
+    (a dict, if given) receives {label: why} of the torsions left out.
 
     Protein phi torsions whose residue has no amide H (proline; a united-atom topology) are left
     out; a glycine gives a row for each H-alpha (the one where L-amino acids carry HA: theta =
@@ -234,6 +236,7 @@ def coupling_rows(result, relation, positions, notices, universe=None):
     u = _topology_universe(result, notices, universe, need_bonds=False,
                            why=f"{relation.name} reads which residues carry an amide H and where glycine's two H-alpha sit")
     out_pos, extra, coupled, no_h, no_ha = [], [], [], [], []
+    left_out = {} if left_out is None else left_out
     indices = result.torsion_set.indices
     labels = result.torsion_set.labels
     for k in positions:
@@ -245,9 +248,14 @@ def coupling_rows(result, relation, positions, notices, universe=None):
         ha = _hydrogens(u, ca, ("HA", "HA1", "HA2", "HA3"))
         if not hn:
             no_h.append(labels[k])
+            left_out[labels[k]] = (
+                f"{relation.name} does not apply to it: its residue has no amide H; a proline has none, or "
+                "the topology lacks that hydrogen")
             continue
         if not ha:
             no_ha.append(labels[k])
+            left_out[labels[k]] = (
+                f"{relation.name} does not apply to it: its residue has no H-alpha in the topology")
             continue
         if len(ha) == 1:
             out_pos.append(k), extra.append(np.nan), coupled.append(f"{hn[0][1]},{ha[0][1]}")
@@ -366,13 +374,19 @@ def _pool_by_type(frame, family=None):
 
 
 def _relation_couplings(result, rel, select, notices, universe):
-    """Per-torsion and per-type rows of one relation, and the substituents it used."""
+    """Per-torsion and per-type rows of one relation, the substituents it used, and the torsions it
+    has no row for: {label: (type, why)}."""
     blocks = result.blocks
     hist = kept_block(blocks, "histograms")   # (as counted: only the torsions used become float)
     rep = np.asarray(blocks["hist_block_replica"])
     labels = np.array(result.torsion_set.labels)
     types = np.array(result.torsion_set.types)
-    pos, extra, coupled = coupling_rows(result, rel, choose_torsions(result, rel, select, notices), notices, universe)
+    chosen, why = choose_torsions(result, rel, select, notices), {}
+    pos, extra, coupled = coupling_rows(result, rel, chosen, notices, universe, why)
+    skipped = ("not among the torsions chosen (types)" if select else
+               f"{rel.name} does not apply to it: it couples {rel.coupled_atoms()}, which this torsion is not")
+    rest = sorted(set(range(len(labels))) - set(pos), key=lambda k: (labels[k] not in why, k))  # (reasons first)
+    left_out = {str(labels[k]): (str(types[k]), why.get(labels[k], skipped)) for k in rest}
     kern, subs = relation_kernels(rel, result, pos, notices, universe, extra)
     hist = np.asarray(hist[:, pos, :], dtype=float)
     j, err, n = couplings_from_histograms(hist, rep, kern, short_run_spans(result, pos))
@@ -398,7 +412,7 @@ def _relation_couplings(result, rel, select, notices, universe):
         notices.append(f"{rel.name}: the source gives no systematic spread; j_systematic_hz is empty and "
                        "comparisons with experiment use the statistical and experimental errors only "
                        "(Karplus relations are commonly good to about 0.5-1 Hz).")
-    return pd.concat([frame, pooled[frame.columns]], ignore_index=True), used
+    return pd.concat([frame, pooled[frame.columns]], ignore_index=True), used, left_out
 
 
 #: How the averages are made, as written into couplings.json.
@@ -535,9 +549,9 @@ def ensemble_couplings(result, relation, *, types=None, experimental=None, unive
     relations = [get_relation(r) for r in relation]
     if not relations:
         raise DihedraError("give at least one Karplus relation (--relation NAME).")
-    notices, frames, subs_out = [], [], {}
+    notices, frames, subs_out, left_out = [], [], {}, {}
     for rel in relations:
-        frame, used = _relation_couplings(result, rel, select, notices, universe)
+        frame, used, left_out[rel.name] = _relation_couplings(result, rel, select, notices, universe)
         frames.append(frame)
         subs_out.update(used)
     out = pd.concat(frames, ignore_index=True)
@@ -546,7 +560,7 @@ def ensemble_couplings(result, relation, *, types=None, experimental=None, unive
                        "reweighted average.")
     points = summary = None
     if experimental is not None:
-        points, summary = compare_with_experiment(out, experimental, notices=notices)
+        points, summary = compare_with_experiment(out, experimental, left_out=left_out, notices=notices)
     parameters = {"relations": [r.name for r in relations], "types": None if select is None else list(select),
                   "n_experimental": None if experimental is None else len(experimental),
                   "universe_given": universe is not None}

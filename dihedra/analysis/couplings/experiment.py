@@ -95,7 +95,7 @@ def _one_row(rows, atoms, label, relation):
     return (sums.iloc[0], rows["coupled_atoms"].astype(str).tolist()) if len(sums) == 1 else (None, [])
 
 
-def _match(label, atoms, table):
+def _match(label, atoms, table, left_out=None):
     """Row of ``table`` (one relation) for an experimental label and its coupled atoms, or None;
     how it matched (or why not); the coupled atoms of the rows it was chosen among (glycine), if any."""
     per_torsion = table[table["level"] == "torsion"]
@@ -114,10 +114,19 @@ def _match(label, atoms, table):
         hit, among = _one_row(rows, atoms, label, table["relation"].iloc[0])
         if hit is not None:
             return hit, how, among
-    return None, "no matching torsion, type or residue", []
+    return None, _why_unmatched(label, left_out), []
 
 
-def compare_with_experiment(couplings, experimental, *, notices=None):
+def _why_unmatched(label, left_out):
+    """Why no row matches ``label``: a torsion of the folder that the relation left out (the reason
+    given in ``left_out``, {torsion label: (type, why)}), or no such name."""
+    for torsion, (typ, why) in (left_out or {}).items():
+        if label in (torsion, typ, torsion.split(":")[0]):
+            return f"in the folder{'' if label == torsion else f' ({torsion})'}, but {why}"
+    return "no matching torsion, type or residue"
+
+
+def compare_with_experiment(couplings, experimental, *, left_out=None, notices=None):
     """Per-point deviations, chi-square and a verdict for each relation.
 
     Parameters
@@ -126,6 +135,9 @@ def compare_with_experiment(couplings, experimental, *, notices=None):
         :attr:`~dihedra.analysis.couplings.ensemble.CouplingResult.couplings`.
     experimental : DataFrame
         From :func:`read_experimental` (the column coupled_atoms is optional).
+    left_out : dict, optional
+        Per relation, the torsions of the folder it has no row for: {label: (type, reason)}; an
+        experimental value that names one is reported with that reason.
     notices : list, optional
         Receives the notices of the comparison (and those of ``experimental.attrs``).
 
@@ -136,7 +148,8 @@ def compare_with_experiment(couplings, experimental, *, notices=None):
         j_exp_err_hz, deviation_hz, sigma_hz, z, chi_square, outlier.
     summary : list of dict
         Per relation: n_points, rmsd_hz, mean_deviation_hz, chi_square_per_point, p_value, outliers
-        (labels, with ``[coupled atoms]`` where the file chose the row), verdict, unmatched.
+        (labels, with ``[coupled atoms]`` where the file chose the row), verdict, unmatched (labels
+        with the reason).
     """
     from scipy.stats import chi2
 
@@ -155,7 +168,7 @@ def compare_with_experiment(couplings, experimental, *, notices=None):
         unmatched = []
         for e in experimental.itertuples(index=False):
             atoms = "" if pd.isna(e.coupled_atoms) else str(e.coupled_atoms).strip()
-            hit, how, among = _match(e.label, atoms, table)
+            hit, how, among = _match(e.label, atoms, table, (left_out or {}).get(rel))
             if among:
                 chosen.setdefault(e.label, (hit["coupled_atoms"], among))
             if hit is None:
