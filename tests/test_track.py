@@ -426,3 +426,23 @@ def test_pooled_types_come_in_the_order_of_the_numbers_in_their_names():
     pooled = pool_by_type(table)
     assert list(dict.fromkeys(pooled["type"])) == names
     assert pooled["state"].tolist()[:2] == ["anti", "gauche"]
+
+
+def test_states_no_torsion_visited_are_named_as_unvisited_not_as_measured_zeros(tmp_path):
+    # 8 torsions held in anti and gauche+ only: gauche- is 0 +- 0 in populations_by_type, which says
+    # that no frame was there, not that the state is empty (with n independent samples and no
+    # event a population up to about 3 / n stays possible at 95 %: the "rule of three", Hanley &
+    # Lippman-Hand, JAMA 249 (1983) 1743)
+    from synthetic_rotors import write_rotor_trajectory
+
+    rng = np.random.default_rng(4)
+    held = np.r_[np.full(3, 62.0), np.full(5, 178.0)]
+    pdb, dcd = write_rotor_trajectory(str(tmp_path), "held", held[None, :] + rng.normal(0.0, 5.0, size=(100, 8)))
+    res = track(pdb, [dcd], torsions="rotatable")
+    by_type = res.populations_by_type.set_index("state")
+    assert by_type.loc["gauche-", "population"] == 0 and by_type.loc["gauche-", "population_err"] == 0
+    named = [n for n in res.notices if "never visited by any of their torsions" in n]
+    assert len(named) == 1 and named[0].startswith("1 state(s)") and "gauche-" in named[0]
+    # a type that visits all its states gets no such notice
+    moving = track(pdb, [dcd], torsions="rotatable", scheme="cis-trans")
+    assert not [n for n in moving.notices if "never visited" in n]

@@ -200,6 +200,13 @@ def error_notices(pops, by_type, conf_type):
         out.append(f"{stuck['torsion'].nunique()} torsion(s) never left one state (e.g. {stuck['torsion'].iloc[0]} in "
                    f"{stuck['state'].iloc[0]}): their error of 0 only says that no transition was seen, and their "
                    "n_effective is n/a.")
+    unseen = by_type[(by_type["population"] == 0) & (by_type["population_err"] == 0)] if len(by_type) else by_type
+    if len(unseen):   # (only a type's own states are rows of the table)
+        first = unseen.iloc[0]
+        out.append(f"{len(unseen)} state(s) of torsion types were never visited by any of their torsions (e.g. "
+                   f"{first['type']} {first['state']}): their population of 0 +- 0 only says that no frame was "
+                   "there, not that the state is empty: with n_effective independent samples a count of zero "
+                   "still allows a population up to about 3 / n_effective (the rule of three, 95 %).")
     for table, key, what in ((by_type, "type", "torsion types"), (conf_type, "group_type", "conformer types")):
         note = heterogeneity_notice(table, key, what)
         if note:
