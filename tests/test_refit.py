@@ -751,3 +751,35 @@ def test_a_new_simulation_with_the_fitted_correction_moves_the_populations_to_th
     before = profile_fit.populations.set_index("state").loc["anti", "sampled_population"]
     target = targets["exact"]["anti"]
     assert abs(anti - target) < 0.02 and abs(anti - target) < abs(before - target) / 4
+
+
+def test_sine_terms_are_named_and_a_symmetric_target_gives_none(gas, profile_fit, targets, tmp_path):
+    # the Ryckaert-Bellemans potential is even in phi (V(phi) = V(-phi): an achiral molecule), so a
+    # fit onto it needs no sine term; a target with 3 sin(phi) kJ/mol added is odd in part, and
+    # the sine terms that reach it are named with the advice to fit cosines alone where no chiral
+    # centre allows them
+    assert not [n for n in profile_fit.notices if "phases other than 0 and 180" in n]
+    grid = np.arange(-180.0, 180.01, 0.5)
+    odd = tmp_path / "odd_profile.csv"
+    pd.DataFrame({"angle_deg": grid, "free_energy_kj_mol": rb_energy(grid) + 3.0 * np.sin(np.radians(grid))}).to_csv(
+        odd, index=False)
+    fit = fit_torsion_correction(gas, str(odd), n_bootstrap=20)
+    named = [n for n in fit.notices if "phases other than 0 and 180" in n]
+    assert len(named) == 1 and TYPE in named[0] and "--symmetric" in named[0]
+    assert abs(fit.terms.set_index("n").loc[1, "sin_kj_mol"]) > 1.0
+
+
+def test_a_cross_validated_strength_at_the_end_of_its_grid_is_named():
+    # the grid's ends (1e-4 and 1): a score still falling there says the best may lie beyond it;
+    # a strength inside the grid, or one given by the user (no cross-validation), is not named
+    from dihedra.analysis.refit.driver import _choice_notices
+    from dihedra.analysis.refit.fit import REGULARISATION_GRID
+
+    grid = sorted(REGULARISATION_GRID)
+    cv = pd.DataFrame({"regularisation": grid, "cv_score": np.linspace(2.0, 1.0, len(grid))})
+    no_terms = pd.DataFrame(columns=["type", "sin_kj_mol", "sin_err_kj_mol"])
+    for lam, side in ((grid[-1], "strongest"), (grid[0], "weakest")):
+        named = _choice_notices({"lam": lam, "cv": cv}, no_terms, False)
+        assert len(named) == 1 and f"the {side} regularisation" in named[0]
+    assert not _choice_notices({"lam": grid[3], "cv": cv}, no_terms, False)
+    assert not _choice_notices({"lam": grid[-1], "cv": cv.iloc[:0]}, no_terms, False)

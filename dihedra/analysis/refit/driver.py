@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from ...errors import DihedraError, one_of
+from ...errors import DihedraError, name_list, one_of
 from ...io.outputs import file_set, write_text
 from ...io.tables import json_ready, write_json, write_table
 from ...trajectory.result import as_result
@@ -319,6 +319,28 @@ def _limits(summary, tgt, n_params, notices):
                        "before): more terms, more types, or a target outside what the run sampled.")
 
 
+def _choice_notices(fit, terms_frame, symmetric):
+    """Notices on choices a user may want to revisit: a cross-validated strength at the end of its
+    grid, and sine terms (a correction that differs between phi and -phi) fitted where a cosine
+    series would do for a molecule without a stereocentre."""
+    out = []
+    lam, grid = fit["lam"], sorted(REGULARISATION_GRID)
+    if len(fit["cv"]) and lam in (grid[0], grid[-1]):
+        side = "strongest" if lam == grid[-1] else "weakest"
+        out.append(f"cross-validation chose the {side} regularisation of its grid ({lam:g}): the best strength may lie "
+                   "beyond it; compare the cross-validation scores (refit_cross_validation.csv) or give "
+                   "--regularisation (regularisation=X) to try others.")
+    if not symmetric and len(terms_frame):
+        sine = terms_frame["sin_kj_mol"].abs()
+        clear = terms_frame[(sine > 2.0 * terms_frame["sin_err_kj_mol"].fillna(np.inf)) & (sine > 0.05)]
+        if len(clear):
+            names = name_list(list(dict.fromkeys(clear["type"])), 4)
+            out.append(f"the corrections of {names} have sine terms (phases other than 0 and 180 degrees): they make "
+                       "V(phi) differ from V(-phi), as only a chiral centre or a chiral environment can; for a "
+                       "molecule without one, fit cosines alone (--symmetric, symmetric=True).")
+    return out
+
+
 def _summary_row(model, samples, fit, min_effective_fraction):
     theta, lam, sigmas = fit["theta"], fit["lam"], fit["sigmas"]
     zero = np.zeros(model.n_params)
@@ -440,6 +462,7 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     summary = _summary_row(model, samples, fit, min_effective_fraction)
     terms_frame = terms_table(theta, boot_theta, type_names, terms, symmetric)
     _limits(summary, tgt, model.n_params, notices)
+    notices.extend(_choice_notices(fit, terms_frame, symmetric))
     rb = rb_table(terms_frame, symmetric, notices)
     xml = openmm_xml(terms_frame, atoms, atom_classes, atom_types,
                      _xml_comments(summary, tgt, temperature_k, rb is not None and not symmetric), notices)

@@ -65,7 +65,7 @@ def _circular_sd_deg(phases_deg):
     z = np.exp(1j * np.radians(phases_deg))
     r = np.abs(np.mean(z, axis=0))
     with np.errstate(divide="ignore"):
-        return np.degrees(np.sqrt(-2.0 * np.log(np.clip(r, 1e-300, 1.0))))
+        return np.degrees(np.sqrt(-2.0 * np.log(np.clip(r, 1e-300, 1.0)))) + 0.0   # (+ 0.0: no negative zero)
 
 
 def terms_table(theta, boot, type_names, n_terms, symmetric):
