@@ -274,6 +274,10 @@ def test_demo_runs_every_step_and_ends_with_the_report(tmp_path, capsys):
     assert main(["demo", "--out", str(out)]) == 0
     captured = capsys.readouterr()
     assert captured.out.strip().splitlines()[-1] == f"report: {out / 'report.html'}"
+    # a step with notices says so in its line (they are in its .json file and the report)
+    kinetics = json.loads((out / "kinetics.json").read_text())["notices"]
+    line = next(x for x in (captured.out + captured.err).splitlines() if x.startswith("   kinetics:"))
+    assert kinetics and line.endswith(f"; {len(kinetics)} notice(s), in its .json file and the report")
     for name in ("comparison.csv", "transitions.csv", "profiles_2d.csv", COPY_NAME, RECORD_NAME,
                  os.path.join("figures", "state_raster.pdf")):
         assert (out / name).exists(), name

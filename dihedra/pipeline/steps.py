@@ -68,7 +68,7 @@ def signature_defaults(*funcs):
 
 def _track(ctx, a):
     res = track(a.pop("topology"), a.pop("trajectories"), out=ctx.out, overwrite=ctx.overwrite, log=ctx.log, **a)
-    return f"{len(res.torsions)} torsions, {res.summary['n_frames_analysed']} frames -> {res.folder}"
+    return f"{len(res.torsions)} torsions, {res.summary['n_frames_analysed']} frames -> {res.folder}" + _noted(res)
 
 
 def _windows(ctx, a):
@@ -77,7 +77,7 @@ def _windows(ctx, a):
     if not res.info["restraints_consistent"]:   # (the later steps would rest on an unusable profile)
         raise DihedraError(f"the samples contradict the window table (see the WARNING); the results in {ctx.out} "
                            "are unusable until the table is fixed, and no later step runs.")
-    return f"{len(res.windows)} windows -> {ctx.out}"
+    return f"{len(res.windows)} windows -> {ctx.out}" + _noted(res)
 
 
 def _scan(ctx, a):
@@ -124,7 +124,7 @@ def _profile(ctx, a):
     unit = a.pop("energy_unit", "kJ/mol")
     res = free_energy_profiles(ctx.result(), log=ctx.log, **a)
     paths = res.save(ctx.out, energy_unit=unit)
-    return _written(paths)
+    return _written(paths) + _noted(res)
 
 
 def _compare(ctx, a):
@@ -136,7 +136,7 @@ def _compare(ctx, a):
     tolerance = a.pop("tolerance_kj_mol", None)
     ref = compare_reference_populations(result, reference) if reference else None
     if scan_path is None:
-        return _written(ref.save(ctx.out))
+        return _written(ref.save(ctx.out)) + _noted(ref)
     temperature = a.get("temperature_k") or result.summary.get("temperature_k")
     scan = read_scan(scan_path, temperature_k=temperature, **reading)
     if tolerance is not None:
@@ -144,7 +144,7 @@ def _compare(ctx, a):
     cmp = compare_with_scan(result, scan, log=ctx.log, **a)
     if ref is not None:
         cmp.add_reference(ref)
-    return _written(cmp.save(ctx.out))
+    return _written(cmp.save(ctx.out)) + _noted(cmp)
 
 
 def _kinetics(ctx, a):
@@ -153,7 +153,7 @@ def _kinetics(ctx, a):
     info = read_optional_json(ctx.out, "profiles.json") or {}
     res = state_kinetics(ctx.result(), barriers=barriers, profile_temperature_k=info.get("temperature_k"),
                          log=ctx.log, **a)
-    return _written(res.save(ctx.out))
+    return _written(res.save(ctx.out)) + _noted(res)
 
 
 def _couplings(ctx, a):
@@ -163,18 +163,19 @@ def _couplings(ctx, a):
     path = a.pop("experimental", None)
     experimental = read_experimental(path) if path else None
     res = ensemble_couplings(ctx.result(), relations, experimental=experimental, **a)
-    return _written(res.save(ctx.out, experimental_path=path))
+    return _written(res.save(ctx.out, experimental_path=path)) + _noted(res)
 
 
 def _ramachandran(ctx, a):
     _check(ctx, "ramachandran")
-    return _written(ramachandran_regions(ctx.result(), **a).save(ctx.out))
+    res = ramachandran_regions(ctx.result(), **a)
+    return _written(res.save(ctx.out)) + _noted(res)
 
 
 def _refit(ctx, a):
     _check(ctx, "refit")
     res = fit_torsion_correction(ctx.result(), a.pop("target"), log=ctx.log, **a)
-    return _written(res.save(ctx.out))
+    return _written(res.save(ctx.out)) + _noted(res)
 
 
 def _figures(ctx, a):
@@ -189,6 +190,13 @@ def _report(ctx, a):
 
 def _written(paths):
     return "wrote " + ", ".join(os.path.basename(p) for p in paths)
+
+
+def _noted(res):
+    """``; N notice(s) ...`` for a step's result with notices (they are in its files and the
+    report, and the step's own command prints them): a pipeline's summary line says they exist."""
+    n = len(getattr(res, "notices", None) or [])
+    return f"; {n} notice(s), in its .json file and the report" if n else ""
 
 
 # ----------------------------------------------------------------------------------------------
