@@ -191,6 +191,38 @@ def test_windows_folder_serves_couplings_and_populations(synthetic):
         assert json.load(fh)["n_windows"] == 36
 
 
+def test_compare_on_a_windows_folder_keeps_the_windows_errors(synthetic):
+    # compare on a windows folder uses the windows' own MBAR profile and the errors of their bootstrap
+    # (window free energies re-estimated in every resample), never errors recomputed from the weighted
+    # histograms with the weights held fixed
+    from dihedra.analysis.compare import compare_with_scan
+    from dihedra.analysis.scans import scan_from_points
+
+    wres, out = synthetic
+    res = load_results(out)
+    typ = res.torsion_set.types[0]
+    grid = np.arange(-180.0, 180.0, 2.0)
+    scan = scan_from_points(grid, asymmetric_energy(grid))
+    cmp = compare_with_scan(res, scan, temperature_k=T)
+    own = wres.profiles.by_type[typ][0]
+    np.testing.assert_allclose(cmp.profiles["free_energy_err_kj_mol"], own.free_energy_err_kj_mol, rtol=1e-6)
+    info = cmp.details["types"][typ]
+    syn = next(b for b in info["barriers"] if abs(b["scan_angle_deg"]) < 30)
+    written = wres.profiles.barriers.loc[wres.profiles.barriers["angle_deg"].abs() < 30].iloc[0]
+    assert syn["sampled_free_energy_err_kj_mol"] == pytest.approx(written["free_energy_err_kj_mol"], rel=1e-6)
+    # the errors are honest against the known potential (analytic; scipy quad for the barrier's height):
+    # the syn barrier within 3 errors of 1 kJ/mol at most, every reliable bin within 4 errors of the
+    # scan's bin average, mean z^2 near 1; also for bins of another width than the windows'
+    v = asymmetric_energy(np.linspace(-180, 180, 36001))
+    assert syn["sampled_free_energy_err_kj_mol"] < 1.0
+    assert abs(syn["sampled_free_energy_kj_mol"] - (v.max() - v.min())) < 3 * syn["sampled_free_energy_err_kj_mol"]
+    for width in (5.0, 10.0):
+        rows = compare_with_scan(res, scan, temperature_k=T, bin_width_deg=width).profiles
+        rel = rows[rows["reliable"]]
+        z = rel["difference_kj_mol"] / rel["free_energy_err_kj_mol"]
+        assert len(rel) >= 0.6 * len(rows) and np.max(np.abs(z)) < 4.0 and 0.3 < np.mean(z ** 2) < 2.5, width
+
+
 def test_poor_overlap_is_reported_by_pair(tmp_path):
     centres = [-180.0, -170.0, -160.0, -150.0, -140.0, -100.0, -90.0, -80.0]
     csv = write_windows(tmp_path, rb_energy, centres, 400.0, 40, 10, seed=4)

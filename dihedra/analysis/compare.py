@@ -22,7 +22,9 @@ Method
    F_scan,k = -kT ln( (1/w) integral over bin k of exp(-E/kT) ) (50 points per bin), so both are
    bin averages; with 5-degree bins this differs from E at the bin centre by less than 0.05
    kJ/mol for usual torsion potentials. The predicted state populations integrate exp(-E/kT) over
-   the arcs of the run's state scheme.
+   the arcs of the run's state scheme. A result of umbrella windows carries the resamples of their
+   own bootstrap (:mod:`dihedra.analysis.profiles.resampled`): its profile and state free energies
+   take their errors from them, not from resampled blocks of the weighted histograms.
 2. **Reliable region.** A bin is reliable when it was sampled in at least 90 % of the bootstrap
    resamples, its free-energy error sigma is at most ``max_error_kt`` kT (default 0.2 kT) and its
    free energy is at most ``max_free_energy_kt`` kT (default 6 kT) above the minimum: high,
@@ -72,8 +74,8 @@ from ..io.tables import json_ready, write_json, write_table
 from ..trajectory.result import as_result
 from ..units import kt_kj_mol, wrap_deg
 from .profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_SEED, MIN_RESAMPLED_FRACTION,
-                       check_estimate_options, resolve_temperature, state_blocks, state_free_energies,
-                       type_profiles)
+                       RESAMPLED_PROBABILITIES, check_estimate_options, has_resamples, resampled_state_free_energies,
+                       resampled_type_profile, resolve_temperature, state_blocks, state_free_energies, type_profiles)
 from .convergence import sampling_verdicts
 from .profiles.features import with_spread_between_torsions
 from .reference_populations import add_to_comparison
@@ -321,8 +323,11 @@ def _state_rows(t, ctx, kt):
         ctx["pred_pops"][part] = predicted_state_populations(ctx["scan"], part, kt)
     pred_pops = ctx["pred_pops"][part]
     own = set(scheme.states_of_type(t))
-    dg_rows = state_free_energies(ctx["sc"][:, ctx["members"][t], :].sum(axis=1), ctx["sc_rep"], scheme.labels,
-                                  kt, ctx["smult"])
+    if ctx["sc"] is None:   # (umbrella windows: the resamples of their own bootstrap)
+        dg_rows = resampled_state_free_energies(ctx["result"], t, kt)
+    else:
+        dg_rows = state_free_energies(ctx["sc"][:, ctx["members"][t], :].sum(axis=1), ctx["sc_rep"], scheme.labels,
+                                      kt, ctx["smult"])
     if dg_rows:   # (errors with the spread between the type's torsions, as the profile gives them)
         dg_rows = with_spread_between_torsions(pd.DataFrame([{**r, "type": t, "torsion": ""} for r in dg_rows]),
                                                ctx["pops"].reset_index(), kt).to_dict("records")
@@ -439,7 +444,8 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
         Bin width of the profiles compared.
     thresholds : Thresholds
     n_bootstrap, seed : int
-        Block bootstrap of the profile errors.
+        Block bootstrap of the profile errors (not used for a result of umbrella windows, which
+        carries the resamples of its own bootstrap).
     log : callable, optional
 
     Returns
@@ -460,12 +466,20 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
         scan = read_scan(scan, temperature_k=temperature_k)
     kt = kt_kj_mol(temperature_k)
     types = select_types(result, types)
-    profs = type_profiles(result, temperature_k, bin_width_deg, n_bootstrap=n_bootstrap, seed=seed,
-                          types=types, kernel=False)
+    if has_resamples(result):   # umbrella windows: their MBAR profile with the errors of their own bootstrap
+        profs = {t: (resampled_type_profile(result, t, kt, bin_width_deg), None) for t in types}
+        sc = sc_rep = smult = None
+        note(_WINDOWS_ERRORS.format(n=result.blocks[RESAMPLED_PROBABILITIES].shape[1]))
+    else:
+        profs = type_profiles(result, temperature_k, bin_width_deg, n_bootstrap=n_bootstrap, seed=seed,
+                              types=types, kernel=False)
+        sc, sc_rep, smult = state_blocks(result, n_bootstrap, seed)
+        if str(result.summary.get("kind", "")).startswith("umbrella windows"):
+            note(_WINDOWS_FIXED_WEIGHTS)
     order = list(dict.fromkeys(result.torsion_set.types))
-    sc, sc_rep, smult = state_blocks(result, n_bootstrap, seed)
     s_minima, s_barriers = scan_features(scan, kt)
     ctx = {"temperature_k": temperature_k, "scheme": result.scheme, "sc": sc, "sc_rep": sc_rep, "smult": smult,
+           "result": result,
            "members": {t: [k for k, x in enumerate(result.torsion_set.types) if x == t] for t in order},
            "pops": result.populations_by_type.set_index(["type", "state"]),
            "pred_pops": {}, "scan": scan,
@@ -494,6 +508,19 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
                   "scan": scan.source}
     return Comparison(table=pd.DataFrame(rows), profiles=pd.concat(prof_rows, ignore_index=True),
                       details=details, notices=notices, parameters=parameters)
+
+
+#: Notice on a folder of umbrella windows: the errors are those of their own bootstrap.
+_WINDOWS_ERRORS = ("this folder holds umbrella windows: the profile, its minima and barriers and the state free "
+                   "energies compared carry the errors of the windows' own bootstrap ({n} resamples, the window free "
+                   "energies re-estimated in each), as dihedra windows wrote them; --bootstrap and --seed do not "
+                   "apply.")
+#: Notice on a folder of umbrella windows without the resamples of their bootstrap.
+_WINDOWS_FIXED_WEIGHTS = (
+    "this folder of umbrella windows holds no bootstrap resamples of its MBAR profile (written by an earlier "
+    "dihedra): the errors compared are recomputed from the weighted histograms with the window free energies "
+    "held fixed and can be far off, too small in the wells and by up to hundreds of kJ/mol too large at "
+    "barriers; run dihedra windows again to compare with the windows' own errors.")
 
 
 CAUTIONS = [

@@ -19,6 +19,8 @@ The package is split along the steps of the analysis:
   block bootstrap of their errors (a histogram bin's never below its counting error);
 * :mod:`.features` -- minima, barriers and state free energies of the histogram profiles;
 * :mod:`.maps` -- 2-D profiles F(phi_a, phi_b) of pairs of torsions from the angle time series;
+* :mod:`.resampled` -- the profiles of a result whose estimator stored its own bootstrap resamples
+  (a folder of umbrella windows: MBAR with the window free energies re-estimated in every resample);
 * :mod:`.driver` -- :func:`free_energy_profiles`, which runs them over every type and torsion of a
   tracking result, and its :class:`ProfileSet` (``save(folder)`` writes the files).
 
@@ -50,15 +52,19 @@ from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MIN_RESAMP
                        find_minima, profile_features, state_blocks, state_free_energies,
                        state_free_energies_of_probabilities)
 from .maps import pair_profiles
+from .resampled import (RESAMPLED_PROBABILITIES, RESAMPLED_STATE_PROBABILITIES, has_resamples,
+                        profile_of_probabilities, resampled_state_free_energies, resampled_type_profile)
 
 __all__ = [
     "BARRIER_COLUMNS", "BARRIER_FIELDS", "DEFAULT_BIN_WIDTH_DEG", "DEFAULT_BOOTSTRAP", "DEFAULT_PAIR_BIN_WIDTH_DEG",
     "DEFAULT_SEED", "MINIMA_COLUMNS", "MINIMUM_FIELDS", "MIN_DEPTH_KT", "MIN_DEPTH_SIGMA", "MIN_RESAMPLED_FRACTION",
-    "PROFILE_COLUMNS", "PROFILE_ENERGY_UNITS", "STATE_DG_COLUMNS",
+    "PROFILE_COLUMNS", "PROFILE_ENERGY_UNITS", "RESAMPLED_PROBABILITIES", "RESAMPLED_STATE_PROBABILITIES",
+    "STATE_DG_COLUMNS",
     "Profile1D", "ProfileSet", "bin_centres", "bootstrap_multiplicities", "bootstrap_spread", "check_bin_width",
     "check_estimate_options", "convert_energy_columns", "counting_error_floor", "default_bandwidth_deg",
     "default_bandwidths_deg", "effective_count_scale", "effective_samples", "find_minima",
-    "free_energy_from_counts", "free_energy_profiles", "pair_profiles", "profile_features", "rebin",
+    "free_energy_from_counts", "free_energy_profiles", "has_resamples", "pair_profiles", "profile_features",
+    "profile_of_probabilities", "rebin", "resampled_state_free_energies", "resampled_type_profile",
     "resolve_temperature", "state_blocks", "state_free_energies", "state_free_energies_of_probabilities",
     "type_profiles", "unit_suffix", "von_mises_smooth",
 ]

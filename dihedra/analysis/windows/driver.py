@@ -28,8 +28,9 @@ Output
 ------
 :meth:`WindowsResult.save` writes a complete results folder (``torsions.csv``,
 ``populations*.csv``, ``blocks.npz``, ``summary.json``) whose histograms and state counts are the
-MBAR-weighted sums (each window a replica), so that ``dihedra couplings``, ``dihedra compare`` and
-figures work on it, plus the profile files of ``dihedra profile`` (``profiles.csv``,
+MBAR-weighted sums (each window a replica), with the bin and state probabilities of every bootstrap
+resample of each type (:mod:`dihedra.analysis.profiles.resampled`), so that ``dihedra couplings``,
+``dihedra compare`` and figures work on it, plus the profile files of ``dihedra profile`` (``profiles.csv``,
 ``minima.csv``, ``barriers.csv``, ``state_free_energies.csv``, ``profiles.json``; the
 ``histogram`` estimate is the MBAR profile, the ``kernel`` estimate its von Mises smoothing, both
 with the errors of :mod:`.estimation`), and
@@ -49,9 +50,10 @@ with the errors of :mod:`.estimation`), and
 Conformer tables are left empty (a joint state of several torsions has no single weight when each
 torsion carries its own bias). Populations in ``populations.csv`` use the blocking errors of the
 weighted counts (window free energies held fixed: a lower bound); ``populations_by_type.csv``
-carries the larger of that and the bootstrap error. Re-running ``dihedra profile`` on the folder
-recomputes profiles from the weighted histograms with the window free energies held fixed, which
-gives smaller (too small) errors than the ones written here.
+carries the larger of that and the bootstrap error. ``dihedra compare`` on the folder takes the
+profile errors from the stored resamples; re-running ``dihedra profile`` on it recomputes profiles
+from the weighted histograms with the window free energies held fixed, whose errors are not the
+ones written here (too small in the wells, far too large where the weights are small).
 """
 
 from __future__ import annotations
@@ -69,8 +71,8 @@ from ...selection.schemes import get_scheme
 from ...trajectory.result import TrackResult
 from ...trajectory.states import check_frame_range, whole_number
 from ...units import check_temperature, kt_kj_mol, wrap_deg
-from ..profiles import (DEFAULT_SEED, bootstrap_multiplicities, bootstrap_spread, check_bin_width,
-                        check_estimate_options, rebin)
+from ..profiles import (DEFAULT_SEED, RESAMPLED_PROBABILITIES, RESAMPLED_STATE_PROBABILITIES, bootstrap_multiplicities,
+                        bootstrap_spread, check_bin_width, check_estimate_options, rebin)
 from .estimation import AGREEMENT_SIGMA, DEFAULT_MAX_MBAR_SAMPLES, TypeTables, estimate_type
 from .samples import N_HIST_BLOCKS, N_STATE_BLOCKS, collect_windows, read_windows, window_inputs
 from .restraints import (force_constant_ratios, judge_force_constants, k_from_samples, restraint_rule,
@@ -349,7 +351,11 @@ def _weighted_tables(data, first, scheme, states, weights, estimates):
         "hist_block_replica": np.repeat(np.arange(n_win), N_HIST_BLOCKS),
         "hist_block_frames": hist_frames, "hist_block_weights": hist.sum(axis=2).mean(axis=1),
         "bin_edges_deg": np.linspace(-180.0, 180.0, 361), "undefined": undefined,
-        "conformer_rows": np.empty((0, 4), dtype=np.int64), "conformer_weights": np.empty(0)}
+        "conformer_rows": np.empty((0, 4), dtype=np.int64), "conformer_weights": np.empty(0),
+        # the MBAR bootstrap of every type (window free energies re-estimated in each resample), so that
+        # an analysis of the folder has the errors of this one (dihedra.analysis.profiles.resampled)
+        RESAMPLED_PROBABILITIES: np.stack([est.boot_fine_mbar for est in estimates.values()]),
+        RESAMPLED_STATE_PROBABILITIES: np.stack([est.boot_state_counts for est in estimates.values()])}
     pops = torsion_populations(sc, block_replica, labels, types, scheme.labels)
     by_type = pool_by_type(pops)
     for typ, est in estimates.items():

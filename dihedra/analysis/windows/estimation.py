@@ -27,9 +27,9 @@ import numpy as np
 import pandas as pd
 
 from ...errors import DihedraError
-from ..profiles import (BARRIER_COLUMNS, MINIMA_COLUMNS, STATE_DG_COLUMNS, Profile1D, ProfileSet, bin_centres,
-                        bootstrap_spread, default_bandwidth_deg, free_energy_from_counts, profile_features, rebin,
-                        state_free_energies_of_probabilities, von_mises_smooth)
+from ..profiles import (BARRIER_COLUMNS, MINIMA_COLUMNS, STATE_DG_COLUMNS, ProfileSet, default_bandwidth_deg,
+                        profile_features, profile_of_probabilities, rebin, state_free_energies_of_probabilities,
+                        von_mises_smooth)
 from .samples import N_HIST_BLOCKS
 from .solver import (GRID_POINTS, _fine_bin, _grid_angles, _grid_index, _import_pymbar, _logsumexp, bias_kj_mol,
                      biased_histograms, solve_free_energies, wham_log_factors)
@@ -230,17 +230,6 @@ def _bootstrap_type(mult, window, hist_block, fine, grid, states, n_states, n_wi
 # Profiles in the format of dihedra profile
 # ----------------------------------------------------------------------------------------------
 
-def _profile(main_prob, boot_prob, kt, width, samples):
-    """A histogram Profile1D from bin probabilities of the estimate and of its resamples."""
-    density, free = free_energy_from_counts(main_prob, width, kt)
-    _, boot_free = free_energy_from_counts(boot_prob, width, kt)
-    err, frac = bootstrap_spread(boot_free)
-    shift = np.nanmin(free) if np.isfinite(free).any() else 0.0
-    return Profile1D(angle_deg=bin_centres(len(main_prob)), samples=samples, density_per_deg=density,
-                     free_energy_kj_mol=free - shift, free_energy_err_kj_mol=err, sampled=main_prob > 0,
-                     boot_free_energy=boot_free, boot_valid_fraction=frac)
-
-
 def _kernel_profile(fine_main, fine_boot, kt, bandwidth_deg, samples):
     """The von Mises smoothing of a fine profile and of its resamples, as a Profile1D."""
     from scipy.ndimage import maximum_filter1d
@@ -249,7 +238,7 @@ def _kernel_profile(fine_main, fine_boot, kt, bandwidth_deg, samples):
     sampled = maximum_filter1d((fine_main > 0).astype(np.int8), size=2 * reach + 1, mode="wrap") > 0
     main = np.where(sampled, von_mises_smooth(fine_main, bandwidth_deg), 0.0)
     boot = von_mises_smooth(fine_boot, bandwidth_deg) * sampled
-    prof = _profile(main, boot, kt, 1.0, samples * main)
+    prof = profile_of_probabilities(main, boot, kt, 1.0, samples * main)
     prof.sampled = sampled & (main > 0)
     prof.bandwidth_deg = float(bandwidth_deg)
     return prof
@@ -278,7 +267,8 @@ class TypeTables:
         kt = self.kt
         n_samples = float(len(est.weights))
         coarse = rebin(est.fine_mbar, self.factor)
-        hprof = _profile(coarse, rebin(est.boot_fine_mbar, self.factor), kt, self.width, coarse * n_samples)
+        hprof = profile_of_probabilities(coarse, rebin(est.boot_fine_mbar, self.factor), kt, self.width,
+                                         coarse * n_samples)
         kish = est.weights.sum() ** 2 / np.sum(est.weights ** 2)
         bw = float(self.bandwidth_deg) if self.bandwidth_deg is not None else \
             default_bandwidth_deg(est.fine_mbar * n_samples, self.scheme, kish)
@@ -303,8 +293,8 @@ class TypeTables:
         """MBAR vs WHAM on the profile bins."""
         kt = self.kt
         coarse = rebin(est.fine_mbar, self.factor)
-        wprof = _profile(rebin(est.fine_wham, self.factor), rebin(est.boot_fine_wham, self.factor), kt, self.width,
-                         coarse * float(len(est.weights)))
+        wprof = profile_of_probabilities(rebin(est.fine_wham, self.factor), rebin(est.boot_fine_wham, self.factor),
+                                         kt, self.width, coarse * float(len(est.weights)))
         both = hprof.sampled & wprof.sampled
         # both are normalised densities: -kT ln p compares without any alignment; one common shift
         with np.errstate(divide="ignore"):
