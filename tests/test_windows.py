@@ -210,6 +210,14 @@ def test_compare_on_a_windows_folder_keeps_the_windows_errors(synthetic):
     syn = next(b for b in info["barriers"] if abs(b["scan_angle_deg"]) < 30)
     written = wres.profiles.barriers.loc[wres.profiles.barriers["angle_deg"].abs() < 30].iloc[0]
     assert syn["sampled_free_energy_err_kj_mol"] == pytest.approx(written["free_energy_err_kj_mol"], rel=1e-6)
+    # the states too; and a population carries the same error in populations_by_type.csv and in
+    # state_free_energies.csv (the rule of dihedra profile)
+    dg = wres.profiles.state_free_energies.set_index("state")
+    pooled = res.populations_by_type.set_index("state")
+    for s in info["states"]:
+        assert s["free_energy_err_kj_mol"] == pytest.approx(dg.loc[s["state"], "free_energy_err_kj_mol"], rel=1e-6)
+        assert s["population_err"] == pytest.approx(dg.loc[s["state"], "population_err"], rel=1e-6)
+        assert dg.loc[s["state"], "population_err"] == pytest.approx(pooled.loc[s["state"], "population_err"])
     # the errors are honest against the known potential (analytic; scipy quad for the barrier's height):
     # the syn barrier within 3 errors of 1 kJ/mol at most, every reliable bin within 4 errors of the
     # scan's bin average, mean z^2 near 1; also for bins of another width than the windows'

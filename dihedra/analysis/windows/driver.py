@@ -289,7 +289,8 @@ def unbias_windows(windows, *, temperature_k, scheme="anti-gauche", bin_width_de
     summary = _summary(first, data, table, scheme, temperature_k, tset, notices, start, stop, step,
                        time.time() - t0)
     result = TrackResult(torsion_set=tset, scheme=scheme, summary=summary, notices=notices, **weighted)
-    return WindowsResult(result=result, profiles=types.profile_set(temperature_k, settings, notices), windows=wtab,
+    pset = types.profile_set(temperature_k, settings, notices, weighted["populations_by_type"])
+    return WindowsResult(result=result, profiles=pset, windows=wtab,
                          overlap=otab, comparison=comparison, agreement=agreement, info=info, notices=notices,
                          inputs=window_inputs(table, source))
 

@@ -30,6 +30,7 @@ from ...errors import DihedraError
 from ..profiles import (BARRIER_COLUMNS, MINIMA_COLUMNS, STATE_DG_COLUMNS, ProfileSet, default_bandwidth_deg,
                         profile_features, profile_of_probabilities, rebin, state_free_energies_of_probabilities,
                         von_mises_smooth)
+from ..profiles.features import with_spread_between_torsions
 from .samples import N_HIST_BLOCKS
 from .solver import (GRID_POINTS, _fine_bin, _grid_angles, _grid_index, _import_pymbar, _logsumexp, bias_kj_mol,
                      biased_histograms, solve_free_energies, wham_log_factors)
@@ -322,10 +323,13 @@ class TypeTables:
                                "mbar_grid_check_kt": est.mbar_grid_check_kt,
                                "n_mbar_samples": est.n_mbar_samples, "mbar_thin_stride": est.thin_stride})
 
-    def profile_set(self, temperature_k, settings, notices):
-        """The profiles as a :class:`~dihedra.analysis.profiles.ProfileSet`."""
+    def profile_set(self, temperature_k, settings, notices, populations_by_type=None):
+        """The profiles as a :class:`~dihedra.analysis.profiles.ProfileSet`; the errors of the state
+        populations and free energies never below those of ``populations_by_type`` (as ``dihedra
+        profile`` gives them: a population carries the same error in both tables)."""
+        states = with_spread_between_torsions(pd.DataFrame(self.states, columns=STATE_DG_COLUMNS),
+                                              populations_by_type, self.kt)
         return ProfileSet(temperature_k=temperature_k, profiles=pd.concat(self.profiles, ignore_index=True),
                           minima=pd.DataFrame(self.minima, columns=MINIMA_COLUMNS),
                           barriers=pd.DataFrame(self.barriers, columns=BARRIER_COLUMNS),
-                          state_free_energies=pd.DataFrame(self.states, columns=STATE_DG_COLUMNS),
-                          by_type=self.by_type, settings=settings, notices=notices)
+                          state_free_energies=states, by_type=self.by_type, settings=settings, notices=notices)
