@@ -622,3 +622,13 @@ def test_windows_of_few_correlation_times_are_named(tmp_path, synthetic):
     assert len(named) == 1 and named[0].startswith("12 of 12 window(s)")
     assert not any("correlation times of their bias energy" in n for n in synthetic[0].notices)
     assert (synthetic[0].windows["correlation_times"] > 200).all()
+
+
+def test_profiling_a_windows_folder_again_says_its_errors_hold_the_weights_fixed(synthetic):
+    # the folder's block sums are MBAR-weighted: a profile of them resamples blocks with the weights
+    # fixed (the window free energies taken as exact), and says so, naming the windows' own profiles;
+    # an ordinary run's profile does not
+    _, out = synthetic
+    again = free_energy_profiles(load_results(out), temperature_k=T, n_bootstrap=20, per_torsion=False)
+    assert [n for n in again.notices if n.startswith("this folder holds umbrella windows")]
+    assert not [n for n in synthetic[0].profiles.notices if n.startswith("this folder holds umbrella windows")]

@@ -38,6 +38,7 @@ from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MINIMUM_FI
                        _state_free_energy_stack, state_blocks, type_notices,
                        with_spread_between_torsions)
 from .maps import check_pairs, pair_profiles
+from .resampled import fixed_weight_notices
 
 #: Energy units a profile can be written in.
 PROFILE_ENERGY_UNITS = ("kJ/mol", "kcal/mol", "kT")
@@ -514,6 +515,7 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     check_pairs(result, pairs, pair_bin_width_deg)   # before any work or message
     early = []
     temperature_k = resolve_temperature(temperature_k, result.summary, say, early)
+    early.extend(fixed_weight_notices(result))
     kt = kt_kj_mol(temperature_k)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
     s = _Stacks.of(result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed)

@@ -50,6 +50,19 @@ def has_resamples(result):
     return RESAMPLED_PROBABILITIES in getattr(result.blocks, "stored", result.blocks)
 
 
+def fixed_weight_notices(result):
+    """The notice of a profile of a result with stored resamples (umbrella windows), whose blocks
+    this analysis resamples with the weights held fixed (see the module notes); [] otherwise."""
+    if not has_resamples(result):
+        return []
+    return ["this folder holds umbrella windows: the errors here come from resampling blocks of the MBAR-weighted "
+            "histograms with the weights held fixed, which misses the uncertainty of the window free energies (too "
+            "small in the wells) and counts samples of tiny weight at a barrier as nothing (errors of up to hundreds "
+            "of kJ/mol there). The profiles, minima, barriers and state free energies that 'dihedra windows' wrote, "
+            "and 'dihedra compare' on this folder, carry the windows' own bootstrap (window free energies "
+            "re-estimated in every resample): use those."]
+
+
 def _type_index(result, typ):
     return list(dict.fromkeys(result.torsion_set.types)).index(typ)
 
