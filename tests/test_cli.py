@@ -300,8 +300,10 @@ def test_printed_errors_that_round_to_zero_carry_no_sign():
     from dihedra.analysis.refit.exports import _circular_sd_deg
     from dihedra.cli.common import format_pm
 
-    # phases that agree in every bootstrap refit: sqrt(-2 ln 1) is a negative zero in IEEE 754
+    # phases that agree in every bootstrap refit: sqrt(-2 ln 1) is a negative zero in IEEE 754,
+    # which the refit's error no longer carries; the printing drops the sign of any such zero
     err = _circular_sd_deg(np.array([[180.0], [180.0], [180.0]]))[0]
-    assert np.signbit(err) and format_pm(180.0, err, 1) == "180.0 ± 0.0"
+    assert err == 0.0 and not np.signbit(err)
+    assert format_pm(180.0, -0.0, 1) == "180.0 ± 0.0"
     assert format_pm(0.25, -0.0004) == "0.250 ± 0.000" and format_pm(-0.0004, 0.0002) == "0.000 ± 0.000"
     assert format_pm(-0.25, 0.01) == "-0.250 ± 0.010"   # a value that does not round to zero keeps its sign
