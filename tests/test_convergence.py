@@ -520,3 +520,21 @@ def test_a_momentary_excursion_does_not_make_a_frozen_type_converged(tmp_path, e
     assert bool(np.isnan(row["population_err_max"])) is frozen
     pops = res.populations_by_type.set_index("state")
     assert pops.loc["gauche+", "population"] == pytest.approx(excursion / 1800)
+
+
+def test_the_command_line_gives_types_of_one_verdict_one_line(tmp_path, capsys):
+    # MDAnalysisTests' adenylate kinase (OPLS-AA, 10 frames): the omega types all stay trans and
+    # share one verdict, printed once with their names; the explanation of too few effective
+    # samples is printed once, not in every verdict (convergence.csv keeps the full verdicts)
+    from MDAnalysisTests.datafiles import GRO, XTC
+
+    from dihedra.cli import main
+
+    assert main(["track", GRO, XTC, "--torsions", "protein-backbone", "--out", str(tmp_path / "adk")]) == 0
+    out = capsys.readouterr().out
+    table = pd.read_csv(tmp_path / "adk" / "convergence.csv")
+    frozen = table[table["verdict"].str.contains("no torsion of this type changed state")]
+    assert len(frozen) > 1
+    line = [x for x in out.splitlines() if x.startswith(f"  {len(frozen)} types (")]
+    assert len(line) == 1 and "no torsion of this type changed state" in line[0]
+    assert out.count("the run holds about that many") <= 1

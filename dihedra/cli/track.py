@@ -1,5 +1,8 @@
 """``dihedra track``: follow torsions through trajectories and write a results folder."""
 
+import re
+
+from ..errors import name_list
 from ..io.tables import read_optional_table
 from ..tracking import track
 from .common import (add_scheme_option, add_torsion_options, add_track_options, format_pm, print_notices,
@@ -72,23 +75,29 @@ def report_track(result):
 
 
 def print_schemes(result, max_rows=40):
-    """The scheme of every type when they differ (auto, basins, a scheme map), and the basins found."""
+    """The scheme of every type when they differ (auto, basins, a scheme map): the types of each
+    scheme on one line, and the basins found, type by type."""
     table = result.schemes
     asked = ((result.summary.get("parameters") or {}).get("scheme_choice") or {}).get("asked")
     if table is None or not len(table) or asked not in ("auto", "basins") and table["scheme"].nunique() < 2:
         return
     print("scheme of each type (schemes.csv lists every state and why):")
-    for k, (ttype, rows) in enumerate(table.groupby("type", sort=False)):
-        if k == max_rows:
-            print(f"  ... and {table['type'].nunique() - max_rows} more types")
-            break
+    by_scheme, shown = {}, 0
+    for ttype, rows in table.groupby("type", sort=False):
         if rows["scheme"].iloc[0] == "basins" and "minimum_deg" in rows:
+            shown += 1
+            if shown > max_rows:
+                continue
             states = ", ".join(f"{r.state} (minimum {r.minimum_deg:.1f}"
                                + ("" if r.from_deg != r.from_deg else f", {r.from_deg:.1f} to {r.to_deg:.1f}") + ")"
                                for r in rows.itertuples(index=False))
             print(f"  {ttype}: basins: {states} deg")
         else:
-            print(f"  {ttype}: {rows['scheme'].iloc[0]}")
+            by_scheme.setdefault(rows["scheme"].iloc[0], []).append(str(ttype))
+    if shown > max_rows:
+        print(f"  ... and {shown - max_rows} more types with basins")
+    for scheme, types in by_scheme.items():
+        print(f"  {scheme}: {name_list(types, 10)}" if len(types) > 1 else f"  {types[0]}: {scheme}")
 
 
 def _discard_value(text):
@@ -109,8 +118,29 @@ def print_convergence(result, max_rows=40):
         spans = sorted(set(round(x, 3) for x in dropped["discarded_ps"]))
         head += f" (start dropped: {', '.join(f'{x:g}' for x in spans)} ps, --discard {dropped['requested']})"
     print(head + ":")
-    width = max(len("type"), *(len(str(t)) for t in table["type"][:max_rows]))
-    for row in table.head(max_rows).itertuples(index=False):
-        print(f"  {row.type:<{width}}  {row.verdict}")
-    if len(table) > max_rows:
-        print(f"  ... and {len(table) - max_rows} more types (see convergence.csv)")
+    # types of the same verdict on one line (a protein's omega types all "never changed state"), the
+    # explanation of too few effective samples once (convergence.csv has it in every verdict)
+    groups, explained = {}, None
+    for row in table.itertuples(index=False):
+        verdict = str(row.verdict)
+        found = _EXPLAINED.search(verdict)
+        if found:
+            explained = found.group(2)
+            verdict = verdict[:found.start()] + f"({found.group(1)})" + verdict[found.end():]
+        groups.setdefault(verdict, []).append(str(row.type))
+    lines = list(groups.items())
+    width = max(len("type"), *(len(types[0]) for _, types in lines[:max_rows]))
+    for verdict, types in lines[:max_rows]:
+        if len(types) == 1:
+            print(f"  {types[0]:<{width}}  {verdict}")
+        else:
+            print(f"  {len(types)} types ({name_list(types, 6)}): {verdict}")
+    if len(lines) > max_rows:
+        rest = sum(len(types) for _, types in lines[max_rows:])
+        print(f"  ... and {rest} more types (see convergence.csv)")
+    if explained:
+        print(f"  (effective samples: {explained})")
+
+
+#: The explanation in a verdict of too few effective samples: "(11.8: the run holds ...)".
+_EXPLAINED = re.compile(r"\(([^():]+): (the run holds about that many [^()]*)\)")
