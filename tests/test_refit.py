@@ -616,6 +616,12 @@ def test_couplings_target_through_a_karplus_relation(gas, tmp_path):
     assert abs(row["sampled_j_hz"] - num / den) > 0.1          # the extra term moves <J>
     assert abs(row["reweighted_j_hz"] - num / den) < 0.05       # reweighted onto the target
     assert any("no systematic spread" in n for n in fit.notices)
+    assert not any("not read by the refit" in n for n in fit.notices)
+    # a column the refit does not read (the coupled_atoms of 'dihedra couplings') is named, not dropped
+    pd.DataFrame({"torsion": [TYPE], "coupled_atoms": ["HN,HA"], "J_hz": [num / den], "J_err_hz": [0.05]}).to_csv(
+        path, index=False)
+    fit = fit_torsion_correction(gas, str(path), relation="karplus-1959", n_bootstrap=5)
+    assert [n for n in fit.notices if "column(s) coupled_atoms not read by the refit" in n]
 
 
 # ------------------------------------------------------------------------------------------------

@@ -129,7 +129,11 @@ def read_target(target, temperature_k=None):
     if kind is None:
         raise _unknown(path, head.columns)
     if kind == "couplings":
-        return Target("couplings", read_experimental(path), os.path.abspath(path))
+        table = read_experimental(path)
+        chosen = "coupled_atoms" in table and (table["coupled_atoms"].astype(str).str.strip() != "").any()
+        notices = list(table.attrs.get("notices", [])) + (_unread_notice(f"target file {path}", ["coupled_atoms"])
+                                                          if chosen else [])
+        return Target("couplings", table, os.path.abspath(path), notices)
     table = pd.read_csv(path, comment="#", skipinitialspace=True, keep_default_na=False, na_values=[""],
                         dtype={"type": str, "state": str, "torsion": str})
     return _normal(kind, table, os.path.abspath(path), temperature_k)
@@ -159,7 +163,16 @@ def _couplings(table, where, source):
                         "j_exp_err_hz": pd.to_numeric(table[error], errors="coerce")})
     if not (np.isfinite(out["j_exp_hz"]).all() and (out["j_exp_err_hz"] >= 0).all()):
         raise InputFileError(f"{where}: J_hz must be numbers and J_err_hz non-negative numbers.")
-    return Target("couplings", out, source)
+    unread = [str(c) for c in table.columns if c not in (label, value, error)
+              and (table[c].astype(str).str.strip() != "").any()]   # (an empty column says nothing)
+    return Target("couplings", out, source, _unread_notice(where, unread))
+
+
+def _unread_notice(where, unread):
+    """[a notice on columns of a couplings target that the refit does not read], or []."""
+    return [f"{where}: column(s) {', '.join(unread)} not read by the refit: each value is fitted against the "
+            "relation on its torsion's phi alone (a glycine's value against the relation of the H-alpha at phi - 60 "
+            "degrees; 'dihedra couplings' chooses a glycine's row with coupled_atoms)."] if unread else []
 
 
 def _populations(table, where, source):
