@@ -305,22 +305,6 @@ def test_replicas_of_different_potentials_disagree_and_halves_of_one_run_agree(r
     assert same.convergence["replicas"].iloc[0] == "agree"
 
 
-def test_a_population_error_in_the_verdicts_is_never_below_the_populations_table(replicas):
-    # two halves of one run as replicas: the error of each type and state in the convergence tables
-    # (its time-block series) is at least that of populations_by_type (pooled per-torsion blocking),
-    # so a verdict is never more confident than the populations a user reads; where the series
-    # error is the larger it is kept
-    top, _, halves = replicas
-    res = dihedra.track(top, list(halves), torsions="rotatable")
-    conv = dihedra.convergence(res)
-    pooled = res.populations_by_type.set_index(["type", "state"])["population_err"]
-    by_state = conv.by_state.set_index(["type", "state"])["population_err"]
-    assert len(by_state) == len(pooled)
-    assert (by_state >= pooled.reindex(by_state.index) - 1e-15).all()
-    row = conv.convergence.iloc[0]
-    assert row["population_err_max"] >= pooled.max() - 1e-15
-
-
 def test_convergence_result_saves_its_tables(replicas, tmp_path):
     top, _, halves = replicas
     res = dihedra.track(top, [halves[0]], torsions="rotatable", temperature_k=300.0)

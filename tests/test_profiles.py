@@ -425,15 +425,33 @@ def test_in_memory_and_loaded_results_give_identical_tables(tmp_path):
             assert open(pa, "rb").read() == open(pb, "rb").read(), pa
 
 
-def test_a_type_population_carries_the_error_of_the_populations_table(rb_synthetic, rb_profiles):
-    # 100 moving copies: the bootstrap of the pooled counts and the pooled per-torsion blocking
-    # are two estimates of one error; the state free-energy table gives the populations table's
-    # for every state of the type, so that a user reads one error for one population
-    pooled = rb_synthetic.populations_by_type.set_index(["type", "state"])["population_err"]
-    dg = rb_profiles.state_free_energies
-    rows = dg[dg["torsion"].astype(str) == ""].set_index(["type", "state"])["population_err"]
-    assert len(rows) == 3
-    np.testing.assert_allclose(rows.to_numpy(), pooled.reindex(rows.index).to_numpy(), rtol=1e-12)
+def test_torsions_that_move_together_keep_the_larger_error_of_the_pooled_counts(tmp_path):
+    # 24 torsions that all follow one stationary two-state jump process (flip probability 0.01 per
+    # frame: lam = 0.98; a collective motion, each copy with its own libration): the pooled
+    # population has the error of one torsion, sqrt(24) times what the pooled table gives when it
+    # takes them as independent (identical copies leave Cochran's Q nothing to add). The exact
+    # error of the time average of n frames of such a chain, p (1 - p) / n [(1 + lam) / (1 - lam)
+    # - 2 lam (1 - lam^n) / (n (1 - lam)^2)] (common practice; M. B. Priestley, Spectral Analysis
+    # and Time Series, 1981, sec. 5.3, from memory), is the reference: the bootstrap of the pooled
+    # counts, which the type row keeps as the larger error, is near it; the pooled table's far below
+    rng = np.random.default_rng(1)
+    n, runs, lam = 2000, 12, 0.98
+    exact = np.sqrt(0.25 / n * ((1 + lam) / (1 - lam) - 2 * lam * (1 - lam ** n) / (n * (1 - lam) ** 2)))
+    rows, pooled_errs = [], []
+    for r in range(runs):
+        s, cur = np.zeros(n), float(rng.random() < 0.5)
+        for f in range(n):
+            cur = 1.0 - cur if rng.random() < 0.01 else cur
+            s[f] = cur
+        angles = np.where(s > 0, 62.0, 178.0)[:, None] + rng.normal(0.0, 5.0, size=(n, 24))
+        pdb, dcd = write_rotor_trajectory(str(tmp_path), f"c{r}", angles)
+        res = track(pdb, [dcd], torsions="rotatable", temperature_k=T)
+        dg = free_energy_profiles(res, n_bootstrap=100, per_torsion=False).state_free_energies
+        rows.append(dg[(dg["torsion"].astype(str) == "") & (dg["state"] == "anti")]["population_err"].iloc[0])
+        pooled_errs.append(res.populations_by_type.set_index("state").loc["anti", "population_err"])
+    assert np.median(np.array(rows) / np.array(pooled_errs)) > 3.0
+    assert 0.7 < np.sqrt(np.mean(np.square(rows))) / exact < 1.4
+    assert np.sqrt(np.mean(np.square(pooled_errs))) / exact < 0.5
 
 
 def test_pooled_state_errors_include_the_spread_between_frozen_torsions(tmp_path):

@@ -21,8 +21,9 @@ methods of :mod:`dihedra.numerics.convergence` to those series:
 
 Errors here are those of each type's series (mean over its torsions), so they also account for
 torsions of one type that move together; ``populations_by_type.csv`` pools per-torsion blocking
-errors as independent, with the spread between torsions that differ. A population's error here is
-the larger of the two, so that a verdict is never more confident than the populations table.
+errors as independent, with the spread between torsions that differ (which more sampling does not
+shrink: it is no part of the forecasts here). The two errors of one population can therefore
+differ.
 """
 
 from __future__ import annotations
@@ -183,9 +184,8 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
     rows, state_rows, time_rows = [], [], []
     own = _own_states(result.scheme, tb)
     frozen = frozen_types(result)
-    pooled = _pooled_errors(result)
     for k, name in enumerate(tb.types):
-        typ = _TypeSeries(tb, k, time_known, states=own.get(name), frozen=name in frozen, pooled=pooled)
+        typ = _TypeSeries(tb, k, time_known, states=own.get(name), frozen=name in frozen)
         row, states = typ.summary(target_error, target_error_kj_mol, kt)
         rows.append(row)
         state_rows.extend(states)
@@ -205,9 +205,8 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
 class _TypeSeries:
     """The time-block series of one type in every replica: fractions (n_blocks, n_states)."""
 
-    def __init__(self, tb, k, time_known=True, states=None, frozen=False, pooled=None):
+    def __init__(self, tb, k, time_known=True, states=None, frozen=False):
         self.time_known = time_known
-        self.pooled = pooled or {}
         # (a set of schemes: only the states of the type's own part; the others are never entered)
         own = np.arange(len(tb.states)) if states is None else np.asarray(states, dtype=np.intp)
         self.name, self.states = tb.types[k], [tb.states[i] for i in own]
@@ -308,8 +307,6 @@ class _TypeSeries:
         start test, replica test, forecasts."""
         p = float(self.population[s])
         se = combine_errors([x[1] for x in stats], [x[4] for x in stats]) if stats else np.nan
-        # never smaller than the error of the same population in populations_by_type.csv
-        se = float(np.fmax(se, self.pooled.get((self.name, self.states[s]), np.nan)))
         starts = [(part, equilibration(part["x"][:, s], self.floor(part, p))) for part in self.parts
                   if len(part["valid"])]
         drift = [(part, st) for part, st in starts if st.drifts]
@@ -391,15 +388,6 @@ def _own_states(scheme, tb):
         return {}
     index = {label: i for i, label in enumerate(tb.states)}
     return {t: [index[label] for label in scheme.states_of_type(t)] for t in tb.types}
-
-
-def _pooled_errors(result):
-    """{(type, state): population_err} of the run's pooled table (``populations_by_type``), or {}."""
-    table = getattr(result, "populations_by_type", None)
-    if table is None or not len(table) or "population_err" not in table:
-        return {}
-    return {(t, st): float(e) for t, st, e in zip(table["type"].astype(str), table["state"].astype(str),
-                                                   table["population_err"].to_numpy(dtype=float))}
 
 
 #: A torsion that spent fewer frames than this outside one state in a replica (momentary excursions

@@ -182,7 +182,7 @@ def state_free_energies_of_probabilities(population, boot_population, state_labe
                        state_labels)
 
 
-def with_spread_between_torsions(state_dg, populations_by_type, kt, replace=True):
+def with_spread_between_torsions(state_dg, populations_by_type, kt):
     """The type rows (``torsion == ""``) of a state free-energy table with errors that include the
     spread between the torsions of a type, as the pooled populations of the run have them.
 
@@ -191,9 +191,9 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt, replace=True
     it a small error (0 where nothing moves) however much they differ. ``populations_by_type``
     (the run's pooled table: mean over the torsions, its error with the random-effects spread where
     they are heterogeneous) gives the population error that does not hide that; each type row
-    takes that error (a population carries one error in every table; with ``replace=False`` the
-    larger of the two, for a bootstrap that sees more than the pooled table: the umbrella windows'
-    re-estimates their free energies), and the free-energy error the larger of the bootstrap's and
+    takes the larger of the two (the bootstrap sees torsions of a type that move together, which
+    the pooled table takes as independent; the umbrella windows' bootstrap also re-estimates their
+    free energies), and the free-energy error the larger of the bootstrap's and
     kT sqrt((se_B / p_B)^2 + (se_A / p_A)^2) from those population errors (A the reference state;
     the delta method without the covariance of the two, which is negative for populations that
     sum to one: an upper estimate).
@@ -201,9 +201,8 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt, replace=True
     Returns
     -------
     DataFrame
-        ``state_dg`` with the pooled table's ``population_err`` in the type rows and their
-        ``free_energy_err_kj_mol`` raised where those errors give more (rows of types or states it
-        lacks unchanged).
+        ``state_dg`` with ``population_err`` and ``free_energy_err_kj_mol`` of the type rows raised
+        where the pooled table's errors are larger (rows of types or states it lacks unchanged).
     """
     if populations_by_type is None or not len(state_dg) or not len(populations_by_type):
         return state_dg
@@ -220,14 +219,10 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt, replace=True
     is_ref = state == reference
     with np.errstate(invalid="ignore", divide="ignore"):
         delta = np.where(is_ref, 0.0, kt * np.sqrt((se / p) ** 2 + (se_ref / p_ref) ** 2))
-    values = out["population_err"].to_numpy(dtype=float).copy()
-    # (the same population, the same error; or, with ``replace=False``, never a smaller one)
-    values[rows] = np.where(np.isfinite(se), se if replace else np.fmax(values[rows], se), values[rows])
-    out["population_err"] = values
-    floor = np.where(p > 0, delta, np.nan)
-    values = out["free_energy_err_kj_mol"].to_numpy(dtype=float).copy()
-    values[rows] = np.where(np.isfinite(floor), np.fmax(values[rows], floor), values[rows])
-    out["free_energy_err_kj_mol"] = values
+    for column, floor in (("population_err", se), ("free_energy_err_kj_mol", np.where(p > 0, delta, np.nan))):
+        values = out[column].to_numpy(dtype=float).copy()
+        values[rows] = np.where(np.isfinite(floor), np.fmax(values[rows], floor), values[rows])
+        out[column] = values
     return out
 
 

@@ -328,7 +328,7 @@ class TypeTables:
         populations and free energies never below those of ``populations_by_type`` (as ``dihedra
         profile`` gives them: a population carries the same error in both tables)."""
         states = with_spread_between_torsions(pd.DataFrame(self.states, columns=STATE_DG_COLUMNS),
-                                              populations_by_type, self.kt, replace=False)
+                                              populations_by_type, self.kt)
         return ProfileSet(temperature_k=temperature_k, profiles=pd.concat(self.profiles, ignore_index=True),
                           minima=pd.DataFrame(self.minima, columns=MINIMA_COLUMNS),
                           barriers=pd.DataFrame(self.barriers, columns=BARRIER_COLUMNS),
