@@ -35,22 +35,46 @@ def test_barriers_in_other_units_are_read_in_kj_mol():
     assert _read_barrier_table(barriers_in_kj_mol(barrier_table("kt", kt), None), scheme) == {}
 
 
-def test_a_barrier_over_the_plateau_of_a_third_state_is_no_direct_transition():
+def test_a_barrier_over_a_third_states_arc_goes_only_to_a_transition_that_took_it():
     # a glycine-like phi profile: minima at +73 (gauche+) and -72 (gauche-), anti a plateau without
     # a minimum; the barrier between the two minima the long way round has its top at -176, in the
-    # anti arc (beyond +-120): its heights are not those of gauche+ <-> gauche- (the path crosses
-    # anti), while the barrier at 2.5 degrees, between the two minima directly, is
+    # anti arc (beyond +-120): the direct barrier (top at 2.5 degrees) is preferred, and without it
+    # the one over anti goes to gauche+ <-> gauche- only if such transitions were seen
+    from dihedra.analysis.kinetics.estimators import _add_tst
+
     scheme = get_scheme("anti-gauche")
     table = pd.DataFrame({"type": ["GLY:phi"] * 2, "torsion": [np.nan, np.nan], "barrier": [1, 2],
                           "from_minimum_deg": [-71.9, 72.7], "to_minimum_deg": [72.7, -71.9],
                           "angle_deg": [2.5, -176.5],
                           "height_from_first_kj_mol": [20.0, 6.1], "height_from_second_kj_mol": [21.0, 5.1]})
     mapping = _read_barrier_table(table, scheme)
-    assert set(mapping) == {("type", "GLY:phi", "gauche-", "gauche+"), ("type", "GLY:phi", "gauche+", "gauche-")}
     assert mapping[("type", "GLY:phi", "gauche-", "gauche+")][0] == 20.0
-    assert mapping[("type", "GLY:phi", "gauche+", "gauche-")][0] == 21.0
-    # without the direct barrier, nothing is attached to gauche+ <-> gauche-
-    assert _read_barrier_table(table.iloc[1:], scheme) == {}
+    assert mapping[("type", "GLY:phi", "gauche+", "gauche-")][0] == 21.0 and not mapping.crossing
+    over = _read_barrier_table(table.iloc[1:], scheme)
+    assert over.crossing == set(over) == {("type", "GLY:phi", "gauche-", "gauche+"),
+                                          ("type", "GLY:phi", "gauche+", "gauche-")}
+    transitions = pd.DataFrame({"level": ["type"] * 2, "name": ["GLY:phi"] * 2, "from_state": ["gauche+", "gauche-"],
+                                "to_state": ["gauche-", "gauche+"], "count": [0, 4], "rate_per_ps": [0.0, 0.01]})
+    _add_tst(transitions, 300.0, over, [])
+    assert np.isnan(transitions["profile_barrier_kj_mol"].iloc[0])   # never seen: not this barrier's
+    assert transitions["profile_barrier_kj_mol"].iloc[1] == 5.1
+
+
+def test_klyne_prelog_barriers_lie_in_the_eclipsed_sectors_and_stay_with_their_transitions():
+    # Klyne-Prelog (IUPAC): the barrier tops of a butane-like profile (+-120) lie in the +-ac
+    # sectors, between the sc and ap minima: observed +sc -> ap transitions keep that barrier
+    scheme = get_scheme("klyne-prelog")
+    table = pd.DataFrame({"type": ["T"], "torsion": [np.nan], "barrier": [1], "from_minimum_deg": [62.0],
+                          "to_minimum_deg": [179.0], "angle_deg": [121.0],
+                          "height_from_first_kj_mol": [9.4], "height_from_second_kj_mol": [12.3]})
+    mapping = _read_barrier_table(table, scheme)
+    assert set(mapping) == mapping.crossing == {("type", "T", "+sc", "ap"), ("type", "T", "ap", "+sc")}
+    from dihedra.analysis.kinetics.estimators import _add_tst
+
+    transitions = pd.DataFrame({"level": ["type"] * 2, "name": ["T"] * 2, "from_state": ["+sc", "ap"],
+                                "to_state": ["ap", "+sc"], "count": [12, 11], "rate_per_ps": [0.05, 0.01]})
+    _add_tst(transitions, 300.0, mapping, [])
+    assert transitions["profile_barrier_kj_mol"].tolist() == [9.4, 12.3]
 
 
 def test_rates_faster_than_transition_state_theory_allows_are_named():

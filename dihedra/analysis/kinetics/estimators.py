@@ -261,10 +261,11 @@ def _read_barrier_table(table, scheme):
     ``torsion`` when that column is filled), with ``from_minimum_deg``, ``to_minimum_deg`` and the
     heights above each, ``height_from_first_kj_mol`` and ``height_from_second_kj_mol``. The minima
     are assigned states with the crisp scheme: the first height is the barrier of the transition
-    first -> second, the second the reverse. Barriers between minima of the same state are skipped,
-    and so are barriers whose path from one minimum over the top to the other crosses the arc of a
-    third state (the plateau of a state without a minimum: its transitions are not this one); of
-    several barriers between the same two states the lowest is kept (the dominant path).
+    first -> second, the second the reverse. Barriers between minima of the same state are skipped;
+    of several barriers between the same two states the lowest is kept (the dominant path), one whose
+    path from minimum to minimum stays in the two states before one that crosses the arc of a third
+    state (:class:`BarrierMap`: such a barrier goes only to a transition that was observed; a
+    glycine phi's gauche+ -> gauche- over the anti plateau, never seen, gets none).
 
     Returns
     -------
@@ -285,12 +286,13 @@ def _read_barrier_table(table, scheme):
         a[rows] = part.assign(table["from_minimum_deg"].to_numpy(dtype=float)[rows])
         b[rows] = part.assign(table["to_minimum_deg"].to_numpy(dtype=float)[rows])
     ok = (a >= 0) & (b >= 0) & (a != b)
-    if "angle_deg" in table.columns:   # a path over a third state's arc is not a barrier of a -> b
+    direct = np.ones(len(table), dtype=bool)   # (the path from one minimum to the other in their states alone)
+    if "angle_deg" in table.columns:
         for ttype, rows in table.groupby("type", sort=False).indices.items():
             part = scheme.for_type(ttype)
             for r in rows[ok[rows]]:
-                ok[r] = _direct_path(part, table["from_minimum_deg"].iat[r], table["angle_deg"].iat[r],
-                                     table["to_minimum_deg"].iat[r], {a[r], b[r]})
+                direct[r] = _direct_path(part, table["from_minimum_deg"].iat[r], table["angle_deg"].iat[r],
+                                         table["to_minimum_deg"].iat[r], {a[r], b[r]})
     labels = np.array(scheme.labels, dtype=object)
     parts = []
     for i, j, which in ((a, b, "first"), (b, a, "second")):
@@ -300,12 +302,28 @@ def _read_barrier_table(table, scheme):
         use = ok & np.isfinite(value)
         parts.append(pd.DataFrame({"level": level[use], "name": name[use], "from": labels[i[use]],
                                    "to": labels[j[use]], "value": value[use], "err": err[use],
-                                   "row": np.flatnonzero(use), "side": 0 if which == "first" else 1}))
+                                   "row": np.flatnonzero(use), "side": 0 if which == "first" else 1,
+                                   "crossing": ~direct[use]}))
     rows = pd.concat(parts, ignore_index=True).sort_values(["row", "side"], kind="stable")
-    # the lowest barrier of each transition; on ties the first in the table
-    rows = rows.sort_values("value", kind="stable").drop_duplicates(["level", "name", "from", "to"], keep="first")
-    return {(lv, nm, f, t): (float(v), float(e)) for lv, nm, f, t, v, e in
-            zip(rows["level"], rows["name"], rows["from"], rows["to"], rows["value"], rows["err"])}
+    # the lowest direct barrier of each transition, else the lowest over a third state; on ties the first
+    rows = rows.sort_values(["crossing", "value"], kind="stable").drop_duplicates(["level", "name", "from", "to"],
+                                                                                  keep="first")
+    out = BarrierMap(((lv, nm, f, t), (float(v), float(e))) for lv, nm, f, t, v, e in
+                     zip(rows["level"], rows["name"], rows["from"], rows["to"], rows["value"], rows["err"]))
+    out.crossing = {k for k, c in zip(zip(rows["level"], rows["name"], rows["from"], rows["to"]), rows["crossing"])
+                    if c}
+    return out
+
+
+class BarrierMap(dict):
+    """``(level, name, from_state, to_state) -> (height_kj_mol, height_err_kj_mol)``; ``crossing``:
+    the keys whose barrier lies on a path over a third state's arc (a narrow state at the barrier
+    top, as the eclipsed sectors of Klyne-Prelog, or a state without a minimum, as a glycine phi's
+    anti plateau): given to a transition only where that transition was observed."""
+
+    def __init__(self, keys_values=()):
+        super().__init__((k, v) for k, v in keys_values)
+        self.crossing = set()
 
 
 def _direct_path(part, first_deg, top_deg, second_deg, states):
@@ -342,8 +360,12 @@ def _add_tst(transitions, temperature_k, barriers, notices):
         notices.append("no barriers.csv in the folder (run 'dihedra profile'): the profile_barrier_kj_mol "
                        "column is empty.")
         return
-    keys = zip(*(transitions[c].to_numpy(dtype=object) for c in ("level", "name", "from_state", "to_state")))
+    keys = list(zip(*(transitions[c].to_numpy(dtype=object) for c in ("level", "name", "from_state", "to_state"))))
     values = np.array([barriers.get(k, (np.nan, np.nan)) for k in keys], dtype=float).reshape(-1, 2)
+    if "count" in transitions:   # a barrier over a third state's arc: only for a transition seen to take it
+        crossing = getattr(barriers, "crossing", set())
+        unseen = [k in crossing and not c > 0 for k, c in zip(keys, transitions["count"].to_numpy(dtype=float))]
+        values[np.asarray(unseen, dtype=bool)] = np.nan
     transitions["profile_barrier_kj_mol"] = values[:, 0]
     transitions["profile_barrier_err_kj_mol"] = values[:, 1]
     if not np.isfinite(transitions["profile_barrier_kj_mol"]).any():
