@@ -431,11 +431,11 @@ def test_protein_types_list_only_their_own_states_and_frozen_omega_gets_no_forec
         assert list(rows["state"]) == list(res.scheme.states_of_type(typ)), typ
     table = pd.read_csv(tmp_path / "adk" / "convergence.csv").set_index("type")
     omega = table[table.index.str.endswith(":omega")]
-    # (a torsion moved when it spent 3 frames or more outside its main state: one or two frames
-    # across a boundary are momentary excursions, whose populations are not sampled ones)
+    # (a torsion moved when it spent 3 frames or more, or 2 % of its frames or more, outside its
+    # main state: fewer are momentary excursions, whose populations are not sampled ones)
     top = res.populations_by_replica.groupby(["type", "replica", "torsion"])[["population", "n_samples"]].max()
     outside = (1.0 - top["population"]) * top["n_samples"]
-    moved = set(outside[outside > 2.5].index.get_level_values("type"))
+    moved = set(outside[(outside > 2.5) | (outside >= 0.02 * top["n_samples"])].index.get_level_values("type"))
     frozen = [t for t in omega.index if t not in moved]
     assert frozen, "expected omega types whose torsions all stay trans"
     for t in frozen:

@@ -103,7 +103,7 @@ def detect_start(x, min_kept=None, n_candidates=N_CANDIDATES, tolerance=0.0):
     ----------
     x : array-like, shape (n,)
     min_kept : int, optional
-        Points that must stay after t0 (default: a tenth of the series, at least 5).
+        Points that must stay after t0 (default: half of the series, at least 5).
     n_candidates : int
         Points of the first, coarse grid of t0; the best one is then refined on grids
         :data:`REFINE` times finer each, down to single points (a series of a few thousand points

@@ -205,8 +205,9 @@ def error_notices(pops, by_type, conf_type):
         first = unseen.iloc[0]
         out.append(f"{len(unseen)} state(s) of torsion types were never visited by any of their torsions (e.g. "
                    f"{first['type']} {first['state']}): their population of 0 +- 0 only says that no frame was "
-                   "there, not that the state is empty: with n_effective independent samples a count of zero "
-                   "still allows a population up to about 3 / n_effective (the rule of three, 95 %).")
+                   "there, not that the state is empty: a count of zero in n independent samples still allows a "
+                   "population up to about 3 / n (the rule of three, 95 %), and n is at most the torsions' "
+                   "effective samples (n_effective in populations.csv).")
     for table, key, what in ((by_type, "type", "torsion types"), (conf_type, "group_type", "conformer types")):
         note = heterogeneity_notice(table, key, what)
         if note:

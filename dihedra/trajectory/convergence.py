@@ -393,13 +393,16 @@ def _own_states(scheme, tb):
 #: A torsion that spent fewer frames than this outside one state in a replica (momentary excursions
 #: at most) counts as having stayed in it: the populations it gives are not sampled ones.
 MIN_EXCURSION_FRAMES = 3
+#: ... and fewer than this fraction of its frames (two frames of ten are a visit).
+MAX_EXCURSION_FRACTION = 0.02
 
 
 def frozen_types(result):
     """The types none of whose torsions changed state in any replica: every torsion spent all its
     (defined) frames of each replica in one state, but for excursions of fewer than
-    :data:`MIN_EXCURSION_FRAMES` frames in all (from the populations per replica; in a weighted
-    run, whose sums are not frames, without any excursion)."""
+    :data:`MIN_EXCURSION_FRAMES` frames in all, and under :data:`MAX_EXCURSION_FRACTION` of them
+    (from the populations per replica; in a weighted run, whose sums are not frames, without any
+    excursion)."""
     table = getattr(result, "populations_by_replica", None)
     if table is None or not len(table):
         return set()
@@ -407,7 +410,8 @@ def frozen_types(result):
     top = table.groupby(["type", "replica", "torsion"], sort=False)[["population", "n_samples"]].max()
     frames = top["n_samples"].to_numpy(dtype=float)
     if np.all(frames == np.round(frames)):   # (frame counts; a weighted run's sums are not frames)
-        stuck = (1.0 - top["population"]) * top["n_samples"] < MIN_EXCURSION_FRAMES - 0.5
+        outside = (1.0 - top["population"]) * top["n_samples"]
+        stuck = (outside < MIN_EXCURSION_FRAMES - 0.5) & (outside < MAX_EXCURSION_FRACTION * top["n_samples"])
     else:
         stuck = top["population"] >= 1.0
     stuck = stuck.groupby(level="type", sort=False).all()

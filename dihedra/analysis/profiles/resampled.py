@@ -58,9 +58,10 @@ def fixed_weight_notices(result):
     return ["this folder holds umbrella windows: the errors here come from resampling blocks of the MBAR-weighted "
             "histograms with the weights held fixed, which misses the uncertainty of the window free energies (too "
             "small in the wells) and counts samples of tiny weight at a barrier as nothing (errors of up to hundreds "
-            "of kJ/mol there). The profiles, minima, barriers and state free energies that 'dihedra windows' wrote, "
+            "of kJ/mol there). The profiles, minima, barriers and state free energies that 'dihedra windows' writes, "
             "and 'dihedra compare' on this folder, carry the windows' own bootstrap (window free energies "
-            "re-estimated in every resample): use those."]
+            "re-estimated in every resample): use those (run 'dihedra windows' again if this profile replaced "
+            "them)."]
 
 
 def _type_index(result, typ):
