@@ -328,9 +328,9 @@ class BarrierMap(dict):
 
 def _direct_path(part, first_deg, top_deg, second_deg, states):
     """Whether the arc from the minimum at ``first_deg`` over the barrier top at ``top_deg`` to
-    the minimum at ``second_deg`` lies in ``states`` alone (under the scheme ``part``): a barrier
-    whose path crosses a third state's arc (the plateau of a state without a minimum of its own)
-    is not the barrier of a direct transition. True where the top is unknown (NaN).
+    the minimum at ``second_deg`` lies in ``states`` alone (under the scheme ``part``); a barrier
+    whose path crosses a third state's arc goes only to an observed transition (:class:`BarrierMap`).
+    True where the top is unknown (NaN).
 
     >>> from dihedra.selection.schemes import anti_gauche
     >>> s = anti_gauche()

@@ -326,7 +326,7 @@ class TypeTables:
     def profile_set(self, temperature_k, settings, notices, populations_by_type=None):
         """The profiles as a :class:`~dihedra.analysis.profiles.ProfileSet`; the errors of the state
         populations and free energies never below those of ``populations_by_type`` (as ``dihedra
-        profile`` gives them: a population carries the same error in both tables)."""
+        profile`` gives them)."""
         states = with_spread_between_torsions(pd.DataFrame(self.states, columns=STATE_DG_COLUMNS),
                                               populations_by_type, self.kt)
         return ProfileSet(temperature_k=temperature_k, profiles=pd.concat(self.profiles, ignore_index=True),
