@@ -98,3 +98,35 @@ def test_rates_faster_than_transition_state_theory_allows_are_named():
     notices = []
     _add_tst(transitions, 298.15, {k: (12.0, 2.0) for k in mapping}, notices)
     assert not [n for n in notices if "faster than transition-state theory" in n]
+
+
+def test_a_transition_over_a_barrier_no_frame_reached_is_named():
+    # features of a profile (common practice): a barrier whose top holds unsampled bins has no
+    # height, only a lower bound; transitions counted across it (the torsion crossed between two
+    # frames) get no profile barrier and a notice that says why, and unobserved ones none
+    from dihedra.analysis.kinetics.estimators import _add_tst
+
+    scheme = get_scheme("anti-gauche")
+    table = pd.DataFrame({"type": ["BUT"] * 2, "torsion": [np.nan, np.nan], "barrier": [1, 2],
+                          "from_minimum_deg": [180.0, 180.0], "to_minimum_deg": [60.0, -60.0],
+                          "angle_deg": [120.0, -120.0], "sampled": [True, False],
+                          "height_from_first_kj_mol": [14.0, np.nan], "height_from_second_kj_mol": [11.0, np.nan]})
+    mapping = _read_barrier_table(table, scheme)
+    assert mapping.unsampled == {("type", "BUT", "anti", "gauche-"), ("type", "BUT", "gauche-", "anti")}
+
+    def transitions(counts):
+        return pd.DataFrame({"level": ["type"] * 3, "name": ["BUT"] * 3,
+                             "from_state": ["anti", "anti", "gauche-"], "to_state": ["gauche+", "gauche-", "anti"],
+                             "count": counts, "rate_per_ps": [0.02, 0.02, 0.04]})
+
+    seen, notices = transitions([10, 7, 0]), []
+    _add_tst(seen, 300.0, mapping, notices)
+    assert seen["profile_barrier_kj_mol"].iloc[0] == 14.0 and np.isnan(seen["profile_barrier_kj_mol"].iloc[1])
+    named = [n for n in notices if "no frame reached" in n]
+    assert len(named) == 1 and "BUT anti -> gauche- (7 seen)" in named[0] and "gauche- -> anti" not in named[0]
+    quiet = []
+    _add_tst(transitions([10, 0, 0]), 300.0, mapping, quiet)
+    assert not [n for n in quiet if "no frame reached" in n]
+    # a sampled barrier between the same states stands in: nothing is unsampled then
+    both = pd.concat([table, table.iloc[[0]].assign(barrier=3, to_minimum_deg=-60.0, angle_deg=-120.0)])
+    assert _read_barrier_table(both, scheme).unsampled == set()

@@ -15,6 +15,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from ...errors import name_list
 from ...units import ENERGY_UNITS, H_J_S, K_B_J_PER_K, R_KJ_PER_MOL_K, check_temperature, to_kj_mol
 from .markov import _reachability
 
@@ -294,6 +295,11 @@ def _read_barrier_table(table, scheme):
                 direct[r] = _direct_path(part, table["from_minimum_deg"].iat[r], table["angle_deg"].iat[r],
                                          table["to_minimum_deg"].iat[r], {a[r], b[r]})
     labels = np.array(scheme.labels, dtype=object)
+    unsampled = set()   # (barriers between two states whose top no frame reached: no height)
+    if "sampled" in table.columns:
+        blank = ok & ~table["sampled"].astype(bool).to_numpy()
+        for i, j in ((a, b), (b, a)):
+            unsampled.update(zip(level[blank], name[blank], labels[i[blank]], labels[j[blank]]))
     parts = []
     for i, j, which in ((a, b, "first"), (b, a, "second")):
         value = table[f"height_from_{which}_kj_mol"].to_numpy(dtype=float)
@@ -312,6 +318,7 @@ def _read_barrier_table(table, scheme):
                      zip(rows["level"], rows["name"], rows["from"], rows["to"], rows["value"], rows["err"]))
     out.crossing = {k for k, c in zip(zip(rows["level"], rows["name"], rows["from"], rows["to"]), rows["crossing"])
                     if c}
+    out.unsampled = unsampled - set(out)
     return out
 
 
@@ -319,11 +326,14 @@ class BarrierMap(dict):
     """``(level, name, from_state, to_state) -> (height_kj_mol, height_err_kj_mol)``; ``crossing``:
     the keys whose barrier lies on a path over a third state's arc (a narrow state at the barrier
     top, as the eclipsed sectors of Klyne-Prelog, or a state without a minimum, as a glycine phi's
-    anti plateau): given to a transition only where that transition was observed."""
+    anti plateau): given to a transition only where that transition was observed; ``unsampled``: the
+    keys of a barrier that no frame reached (``sampled`` false in barriers.csv: no height) and no
+    sampled barrier stands in for."""
 
     def __init__(self, keys_values=()):
         super().__init__((k, v) for k, v in keys_values)
         self.crossing = set()
+        self.unsampled = set()
 
 
 def _direct_path(part, first_deg, top_deg, second_deg, states):
@@ -368,6 +378,7 @@ def _add_tst(transitions, temperature_k, barriers, notices):
         values[np.asarray(unseen, dtype=bool)] = np.nan
     transitions["profile_barrier_kj_mol"] = values[:, 0]
     transitions["profile_barrier_err_kj_mol"] = values[:, 1]
+    notices.extend(_unsampled_barrier_notices(transitions, keys, getattr(barriers, "unsampled", set())))
     if not np.isfinite(transitions["profile_barrier_kj_mol"]).any():
         notices.append("barriers.csv has no barrier that matches a transition of this analysis; the "
                        "profile_barrier_kj_mol column is empty.")
@@ -375,6 +386,27 @@ def _add_tst(transitions, temperature_k, barriers, notices):
         transitions["tst_rate_from_profile_per_ps"] = eyring_rate_per_s(
             transitions["profile_barrier_kj_mol"].to_numpy(dtype=float), temperature_k) / 1e12
         notices.extend(_above_tst_notices(transitions, temperature_k))
+
+
+def _unsampled_barrier_notices(transitions, keys, unsampled):
+    """A notice on observed transitions whose profile barrier no frame reached: the profile has no
+    height for it (only that it is above every sampled bin), the Eyring barrier of the rate is the
+    estimate there."""
+    if not unsampled or "count" not in transitions:
+        return []
+    counts = transitions["count"].to_numpy(dtype=float)
+    seen = [i for i, k in enumerate(keys) if k in unsampled and counts[i] > 0]
+    if not seen:
+        return []
+    rows = transitions.iloc[seen]
+    shown = name_list([f"{r.name} {r.from_state} -> {r.to_state} ({int(r.count)} seen)"
+                       for r in rows.itertuples(index=False)], 3)
+    return [f"{len(seen)} observed transition(s) cross a barrier of the profile that no frame reached ({shown}): "
+            "the profile says only that such a barrier is higher than any sampled bin, so profile_barrier_kj_mol is "
+            "empty for them and eyring_barrier_kj_mol, from the observed rate (prefactor k_B T / h), is the only "
+            "estimate. The torsions "
+            "crossed it between two saved frames, as is usual for a high barrier (a crossing is fast); frames saved "
+            "more often would put a few on it, and umbrella windows ('dihedra windows') measure it."]
 
 
 def _above_tst_notices(transitions, temperature_k):
