@@ -135,7 +135,9 @@ def assemble_result(tset, scheme, universe, notices, blocks):
     if len(rough):
         notices.append(f"{rough['torsion'].nunique()} torsion(s) have states with fewer than "
                        f"{MIN_EFFECTIVE_SAMPLES} effective samples (e.g. {rough['torsion'].iloc[0]}, "
-                       f"{rough['state'].iloc[0]}): sampling is not converged and their error bars are rough.")
+                       f"{rough['state'].iloc[0]}): each of these torsions alone is not converged and its own error "
+                       "bars (populations.csv) are rough; the populations pooled per type have their own verdict "
+                       "(convergence.csv).")
     table = tset.to_frame(universe)
     table["n_undefined_frames"] = undefined
     of_type = {t: scheme.scheme_of_type(t) for t in dict.fromkeys(types)}
