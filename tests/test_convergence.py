@@ -330,6 +330,32 @@ def test_convergence_result_saves_its_tables(replicas, tmp_path):
         dihedra.convergence(res, target_error=2)
 
 
+def test_the_convergence_command_judges_a_folder_again_and_replaces_tables_only_when_asked(replicas, tmp_path,
+                                                                                           capsys):
+    # the same forecast rule as above (error ~ 1 / sqrt(time)) through the command line, on a folder
+    # whose tables 'track' wrote with its own target
+    from dihedra.cli import main
+
+    top, _, halves = replicas
+    folder = tmp_path / "run"
+    assert main(["track", top, halves[0], "--torsions", "rotatable", "--out", str(folder)]) == 0
+    before = (folder / "convergence.csv").read_bytes()
+    capsys.readouterr()
+    assert main(["convergence", str(folder), "--target-error", "0.001"]) == 0
+    out, err = capsys.readouterr()
+    assert "population target 0.001" in out and "not converged: population error" in out
+    assert "not written" in err and "--overwrite" in err
+    assert (folder / "convergence.csv").read_bytes() == before
+    assert main(["convergence", str(folder), "--target-error", "0.001", "--overwrite"]) == 0
+    row = pd.read_csv(folder / "convergence.csv").iloc[0]
+    expected = dihedra.convergence(dihedra.load_results(str(folder)), target_error=0.001).convergence.iloc[0]
+    assert row["target_error"] == 0.001 and row["verdict"] == expected["verdict"]
+    assert row["time_needed_ps"] == pytest.approx(row["simulated_time_ps"] * (row["population_err_max"] / 0.001) ** 2)
+    capsys.readouterr()
+    assert main(["convergence", str(folder), "--time-blocks", "5"]) == 2
+    assert "at least 20" in capsys.readouterr().err
+
+
 def test_report_opens_with_the_convergence_verdicts(two_ensembles, tmp_path):
     from dihedra.presentation.report import build_report
 

@@ -28,7 +28,7 @@ from .._version import __version__
 from ..errors import DihedraError
 
 #: Preferred order of subcommands in --help; others follow alphabetically.
-ORDER = ["demo", "run", "torsions", "track", "profile", "compare", "scan", "kinetics", "couplings", "refit",
+ORDER = ["demo", "run", "torsions", "track", "convergence", "profile", "compare", "scan", "kinetics", "couplings", "refit",
          "windows", "figures", "report"]
 _SKIP = {"common"}
 

@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import re
 import sys
 
 import numpy as np
 
-from ..errors import DihedraError
+from ..errors import DihedraError, name_list
 from ..selection.torsions import expand_type_patterns, has_pattern
 
 
@@ -81,9 +82,10 @@ def add_types_option(parser, what, former=()):
 def expand_types_option(args):
     """``--types`` with shell-style patterns (``'POPE:C2*'``, ``'*:chi1'``): each pattern becomes
     the matching types of the results folder ``args.folder``, in the folder's order (names without
-    ``*``, ``?`` or ``[`` are left to the command). A pattern that matches nothing is an error."""
+    ``*``, ``?`` or ``[`` are left to the command); ``all`` is every type (unless a type has that
+    name). A pattern that matches nothing is an error."""
     types, folder = getattr(args, "types", None), getattr(args, "folder", None)
-    if not types or folder is None or not any(has_pattern(t) for t in types):
+    if not types or folder is None or not any(has_pattern(t) or t == "all" for t in types):
         return
     from ..io.tables import read_table
 
@@ -91,6 +93,7 @@ def expand_types_option(args):
         known = list(dict.fromkeys(read_table(folder, "torsions.csv", columns=["type"])["type"].astype(str)))
     except DihedraError:
         return   # (no results folder: the command says so itself)
+    types = ["*" if t == "all" and "all" not in known else t for t in types]
     args.types = expand_type_patterns(types, known, f"--types (in {folder})")
 
 
@@ -193,3 +196,34 @@ def print_population_table(by_type, state_order, out=None, max_rows=40):
             print(f"{t:<{width}}  {n:>4}  " + "  ".join(f"{c:>{cell}}" for c in cells), file=out)
     if len(types) > max_rows:
         print(f"... and {len(types) - max_rows} more types (see populations_by_type.csv)", file=out)
+
+
+def print_verdicts(table, head, max_rows=40):
+    """The verdict of every type of a convergence table under ``head``: types of the same verdict
+    on one line (a protein's omega types all "never changed state"), the explanation of too few
+    effective samples once (the table has it in every verdict)."""
+    print(head + ":")
+    groups, explained = {}, None
+    for row in table.itertuples(index=False):
+        verdict = str(row.verdict)
+        found = _EXPLAINED.search(verdict)
+        if found:
+            explained = found.group(2)
+            verdict = verdict[:found.start()] + f"({found.group(1)})" + verdict[found.end():]
+        groups.setdefault(verdict, []).append(str(row.type))
+    lines = list(groups.items())
+    width = max(len("type"), *(len(types[0]) for _, types in lines[:max_rows]))
+    for verdict, types in lines[:max_rows]:
+        if len(types) == 1:
+            print(f"  {types[0]:<{width}}  {verdict}")
+        else:
+            print(f"  {len(types)} types ({name_list(types, 6)}): {verdict}")
+    if len(lines) > max_rows:
+        rest = sum(len(types) for _, types in lines[max_rows:])
+        print(f"  ... and {rest} more types (see convergence.csv)")
+    if explained:
+        print(f"  (effective samples: {explained})")
+
+
+#: The explanation in a verdict of too few effective samples: "(11.8: the run holds ...)".
+_EXPLAINED = re.compile(r"\(([^():]+): (the run holds about that many [^()]*)\)")

@@ -1,12 +1,10 @@
 """``dihedra track``: follow torsions through trajectories and write a results folder."""
 
-import re
-
 from ..errors import name_list
 from ..io.tables import read_optional_table
 from ..tracking import track
 from .common import (add_scheme_option, add_torsion_options, add_track_options, format_pm, print_notices,
-                     print_population_table, say)
+                     print_population_table, print_verdicts, say)
 
 
 def register(sub):
@@ -107,7 +105,7 @@ def _discard_value(text):
     return text
 
 
-def print_convergence(result, max_rows=40):
+def print_convergence(result):
     """The verdict of every type (convergence.csv), with the start that was dropped."""
     table = read_optional_table(result.folder, "convergence.csv") if result.folder else None
     if table is None or not len(table):
@@ -117,30 +115,4 @@ def print_convergence(result, max_rows=40):
     if dropped:
         spans = sorted(set(round(x, 3) for x in dropped["discarded_ps"]))
         head += f" (start dropped: {', '.join(f'{x:g}' for x in spans)} ps, --discard {dropped['requested']})"
-    print(head + ":")
-    # types of the same verdict on one line (a protein's omega types all "never changed state"), the
-    # explanation of too few effective samples once (convergence.csv has it in every verdict)
-    groups, explained = {}, None
-    for row in table.itertuples(index=False):
-        verdict = str(row.verdict)
-        found = _EXPLAINED.search(verdict)
-        if found:
-            explained = found.group(2)
-            verdict = verdict[:found.start()] + f"({found.group(1)})" + verdict[found.end():]
-        groups.setdefault(verdict, []).append(str(row.type))
-    lines = list(groups.items())
-    width = max(len("type"), *(len(types[0]) for _, types in lines[:max_rows]))
-    for verdict, types in lines[:max_rows]:
-        if len(types) == 1:
-            print(f"  {types[0]:<{width}}  {verdict}")
-        else:
-            print(f"  {len(types)} types ({name_list(types, 6)}): {verdict}")
-    if len(lines) > max_rows:
-        rest = sum(len(types) for _, types in lines[max_rows:])
-        print(f"  ... and {rest} more types (see convergence.csv)")
-    if explained:
-        print(f"  (effective samples: {explained})")
-
-
-#: The explanation in a verdict of too few effective samples: "(11.8: the run holds ...)".
-_EXPLAINED = re.compile(r"\(([^():]+): (the run holds about that many [^()]*)\)")
+    print_verdicts(table, head)

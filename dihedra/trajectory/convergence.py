@@ -174,6 +174,10 @@ def convergence_tables(result, *, target_error=TARGET_ERROR, target_error_kj_mol
     Convergence
     """
     check_targets(target_error, target_error_kj_mol)
+    if isinstance(n_time_blocks, bool) or not float(n_time_blocks).is_integer() or n_time_blocks < MIN_EFFECTIVE_SAMPLES:
+        raise DihedraError(f"n_time_blocks must be a whole number of at least {MIN_EFFECTIVE_SAMPLES} (a verdict needs "
+                           f"{MIN_EFFECTIVE_SAMPLES} effective samples, and fewer blocks cannot hold them); got "
+                           f"{n_time_blocks!r}.")
     if not result.has_series("states"):
         raise DihedraError("the convergence checks need the state time series; this result has none (track with "
                            "keep_states=True, the default).")
