@@ -294,6 +294,13 @@ def test_types_take_shell_style_patterns(tmp_path, capsys):
     assert plain.types == ["ALA:phi"]
     code, _, err = run_cli(capsys, "kinetics", folder, "--types", "GLY:*")
     assert_one_line_error(code, err, "GLY:*", "matches")
+    every = argparse.Namespace(folder=str(folder), types=["all"])   # 'all': every type, in every command
+    expand_types_option(every)
+    assert every.types == ["POPE:C22-C23", "POPE:C210-C211", "ALA:phi"]
+    (folder / "torsions.csv").write_text("torsion,type\nL1:a,all\nL1:c,ALA:phi\n")
+    named = argparse.Namespace(folder=str(folder), types=["all"])   # (unless a type has that name)
+    expand_types_option(named)
+    assert named.types == ["all"]
 
 
 def test_printed_errors_that_round_to_zero_carry_no_sign():

@@ -202,8 +202,8 @@ def test_a_failing_step_is_named_and_recorded(tmp_path, capsys):
     ('[ramachandran]\n', "keep_angles = true"), ('[kinetics]\ncore_margin_deg = 10\n', "keep_angles = true"),
     ('[profile]\npairs = [["HEX:C1-C2-C3-C4", "HEX:C1-C2-C3-C4"]]\n', "keep_angles = true"),
     ('[refit]\ntarget = "good-scan.csv"\n', "keep_angles = true"),
-    # names the run will not have: 'all' belongs to compare
-    ('[figures]\ntypes = ["all"]\n', "leave types out"),
+    # names the run will not have ('all' is every type, in every step)
+    ('[figures]\ntypes = ["NOPE"]\n', "or 'all'"),
     ('[report]\nout = "good-scan.csv"\n', "not a report"),
 ])
 def test_every_table_is_checked_before_the_first_step(tmp_path, capsys, table, fragment):

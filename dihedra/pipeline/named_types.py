@@ -23,16 +23,17 @@ def check_named_types(steps, out):
     checked here."""
     check_angles_kept(steps)
     patterned = [st for st in steps
-                 if st.name != "track" and any(has_pattern(t) for t in _as_list(st.arguments.get("types")))]
+                 if st.name != "track" and any(has_pattern(t) or _every(st, t) for t in _as_list(st.arguments.get("types")))]
     if patterned:   # shell-style patterns become the run's matching types, as --types on the command line
         known = _known_torsions(steps, out)
         if known is None:
             raise DihedraError(f"{patterned[0].where}: types given as patterns need the run's torsions, and neither "
                                "a [track] table nor the results folder tells them; name the types.")
         order = known[2]
-        for st in patterned:
-            st.arguments["types"] = expand_type_patterns(_as_list(st.arguments["types"]), order, f"{st.where}: types")
-    # ('all' is compare's word for every type; the other steps take every type without types)
+        for st in patterned:   # ('all': every type, unless a type has that name)
+            given = ["*" if _every(st, t) and "all" not in order else t for t in _as_list(st.arguments["types"])]
+            st.arguments["types"] = expand_type_patterns(given, order, f"{st.where}: types")
+    # ('all' is also compare's own word for every type: left to it)
     named = [(st, t, "types") for st in steps if st.name != "track"
              for t in _as_list(st.arguments.get("types")) if not (str(t) == "all" and st.name == "compare")]
     named += [(st, t, "pairs") for st in steps if st.name == "profile" for pair in _as_list(st.arguments.get("pairs"))
@@ -46,10 +47,15 @@ def check_named_types(steps, out):
     for st, name, key in named:
         if name not in types and name not in labels:
             shown = ", ".join(sorted(types)[:6]) + (", ..." if len(types) > 6 else "")
-            every = (", or 'all'" if st.name == "compare" else " in pairs" if key == "pairs" else
-                     ", or leave types out (the step's own choice)")
+            every = " in pairs" if key == "pairs" else ", or 'all'"
             raise DihedraError(f"{st.where}: torsion type {name!r} is not among the torsions of this run "
                                f"(types: {shown}); name a type or a torsion label{every}.")
+
+
+def _every(step, name):
+    """Whether ``name`` in the types of ``step`` is 'all' (every type) to be expanded here (compare
+    takes it itself)."""
+    return str(name) == "all" and step.name != "compare"
 
 
 def check_angles_kept(steps):
