@@ -89,7 +89,7 @@ def report_profiles(pset, unit, max_types=20):
     s = pset.settings
     sfx = unit_suffix(unit)
     print(f"free-energy profiles at {pset.temperature_k:g} K (kT = {s['kt_kj_mol']:.3f} kJ/mol), "
-          f"{s['bin_width_deg']:g}-degree bins, errors from {s['n_bootstrap']} block-bootstrap resamples; "
+          f"{s['bin_width_deg']:g}-degree bins, errors from {s['n_bootstrap']} {s.get('resamples_brief', 'block-bootstrap resamples')}; "
           f"energies in {unit}")
     minima = convert_energy_columns(pset.minima[pset.minima["torsion"] == ""], unit, pset.temperature_k)
     barriers = convert_energy_columns(pset.barriers[pset.barriers["torsion"] == ""], unit, pset.temperature_k)

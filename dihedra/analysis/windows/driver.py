@@ -499,6 +499,7 @@ def _settings(temperature_k, kt, bin_width_deg, n_bootstrap, seed, bandwidth_deg
         "estimate_histogram": "MBAR (pymbar) reweighted histogram",
         "bootstrap": f"{N_HIST_BLOCKS} blocks per window resampled with replacement within each window; "
                      "window free energies re-estimated for every resample",
+        "resamples_brief": "bootstrap resamples of the windows' blocks (window free energies re-estimated in each)",
         "bandwidth_rule": "given" if bandwidth_deg is not None else
                           "0.9 * within-arc standard deviation * (Kish effective samples)^(-1/5)",
         "bandwidths_deg": bandwidths, "scheme": scheme.name,
