@@ -38,6 +38,8 @@ Modules
     the informative types and torsions shown when none are chosen
 ``timeseries``, ``raster``
     figures 1 and 2 and the chunked readers of ``angles.parquet`` / ``states.parquet``
+``rarestates``
+    the rule that keeps a rare state (a cis ω, a rare rotamer) visible in the raster
 ``profiles``, ``populations``, ``maps``
     figures 3, 4 and 5
 ``kinetics``, ``convergence``, ``couplings``

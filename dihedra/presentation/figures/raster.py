@@ -8,6 +8,14 @@ biopolymer by their name (all φ, then all ψ, then all ω, ... each in chain or
 says its residue), other torsions by type. A protein's 639 backbone torsions are all drawn; only
 above ``max_rows`` are the rows of every group thinned evenly, and the figure says so ("2000 of
 12000 torsions").
+
+Rare states
+-----------
+A state that the other torsions of a group do not take (the one cis ω of a chain, a rare rotamer)
+would be lost: in a column to the most frequent state, between rows thinner than a pixel, or by
+thinning. :mod:`~dihedra.presentation.figures.rarestates` keeps it: such a state takes a cell
+where it holds a quarter of the frames and is drawn at least 1 pt thick over the raster. The
+figure's note names the rare states it enlarged.
 """
 
 from __future__ import annotations
@@ -20,8 +28,10 @@ import pandas as pd
 from ...errors import DihedraError
 from ...io.series import ParquetSeries
 from ...io.tables import read_optional_json, read_table
+from ...selection.schemes import scheme_from_dict
 from .common import (_new_axes, _note, _replica_info, _time_label, _top_legend, _wrap, is_named_torsion, time_scale,
                      torsion_symbol)
+from .rarestates import RARE_COLUMN_SHARE, RARE_MIN_PT, RARE_SHARE, rare_cells, rare_runs, rare_states, reduce_columns
 from .style import UNDEFINED_COLOUR, colour_groups, state_colours
 from .timeseries import _check_columns, _mark_replicas, _replica_layout
 
@@ -37,7 +47,9 @@ class StateRaster:
     Attributes
     ----------
     codes : ndarray of int8, shape (n_rows, n_columns)
-        Most frequent state code of each torsion row in each time column (-1: undefined).
+        State code drawn in each torsion row and time column (-1: undefined): the most frequent
+        state of the column's frames, or a rare state that holds a quarter of them
+        (:mod:`~dihedra.presentation.figures.rarestates`).
     rows, row_types : list of str
         Torsion label and type of each row.
     replica_columns : list of (first_column, n_columns, duration)
@@ -58,6 +70,12 @@ class StateRaster:
         are an evenly spaced subset of every group when fewer.
     selection : str
         What was chosen, for the note ("3 chosen types", "PHE:omega"); empty for all torsions.
+    rare : ndarray of bool, shape (n_rows, n_states), optional
+        The states rare in each row's group that the row visits
+        (:func:`~dihedra.presentation.figures.rarestates.rare_states`); drawn at least
+        ``RARE_MIN_PT`` thick.
+    state_labels : list of str
+        Name of each state code (for the note).
     """
 
     codes: np.ndarray
@@ -72,6 +90,8 @@ class StateRaster:
     grouping: str = "type"
     n_selected: int | None = None
     selection: str = ""
+    rare: np.ndarray | None = None
+    state_labels: list = field(default_factory=list)
 
     @property
     def description(self):
@@ -82,7 +102,34 @@ class StateRaster:
             cols = "one column per frame"
         else:
             cols = f"each column: most frequent state of {self.frames_per_column:g} frames"
-        return f"{rows}; {cols}"
+        return f"{rows}; {cols}{self._rare_description()}"
+
+    def rare_cells(self):
+        """Mask of the cells drawn in a state rare for their row (drawn at least ``RARE_MIN_PT`` thick)."""
+        return rare_cells(self.codes, self.rare)
+
+    def rare_found(self):
+        """``[(group, state), ...]`` of the rare states the raster draws, in row order."""
+        mask = self.rare_cells()
+        groups = self.row_groups or self.row_types
+        found = {}
+        for r in np.flatnonzero(mask.any(axis=1)):
+            for code in np.unique(self.codes[r][mask[r]]):
+                name = self.state_labels[code] if code < len(self.state_labels) else str(code)
+                found[(str(groups[r]), name)] = None
+        return list(found)
+
+    def _rare_description(self):
+        """What the raster does with rare states, when it draws any: they are drawn larger than their share."""
+        found = self.rare_found()
+        if not found:
+            return ""
+        names = ", ".join(f"{state} ({group})" for group, state in found[:4]) + (", ..." if len(found) > 4 else "")
+        rows = len(np.flatnonzero(self.rare_cells().any(axis=1)))
+        where = "" if self.frames_per_column <= 1 else \
+            f" and shown from {RARE_COLUMN_SHARE * 100:g} % of a column's frames"
+        return (f"; rare states (under {RARE_SHARE * 100:g} % of their group's frames) enlarged to at least "
+                f"{RARE_MIN_PT:g} pt{where}: {names} in {rows} row{'s' if rows != 1 else ''}")
 
     def _rows_description(self):
         """Which torsions the rows are: all of the folder or those chosen, and, only when rows were
@@ -186,8 +233,11 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
     per_col = max(1, int(np.ceil(frames.sum() / max(1, int(max_columns)))))  # whole frames per column
     n_cols = np.maximum(1, -(-frames // per_col)).astype(np.int64)
     col_offset = np.r_[0, np.cumsum(n_cols)[:-1]]
-    mode = _column_modes(series.iter_frames("states", labels, batch_frames), labels, len(frames), n_states,
-                         per_col, n_cols, col_offset)
+    counts = _column_counts(series.iter_frames("states", labels, batch_frames), labels, len(frames), n_states,
+                            per_col, n_cols, col_offset)
+    state_labels, allowed = _states_of_rows(summary, [types.get(x, "") for x in labels], n_states)
+    rare = rare_states(counts, groups, allowed)
+    mode = reduce_columns(counts, rare)
     spans = []
     for r, (n, dt) in enumerate(info):
         spans.append((int(col_offset[r]), int(n_cols[r]), n * (dt if dt is not None else 1.0)))
@@ -195,12 +245,26 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
                        replica_columns=spans, frames_per_column=float(per_col),
                        n_torsions=len(all_labels), time_known=all(dt is not None for _, dt in info),
                        row_groups=groups, row_residues=residues, grouping=grouping, n_selected=n_selected,
-                       selection=selection if torsions else "")
+                       selection=selection if torsions else "", rare=rare, state_labels=state_labels)
 
 
-def _column_modes(chunks, labels, n_replicas, n_states, per_col, n_cols, col_offset):
-    """Most frequent state code of each row (torsion) in each time column, from the state chunks
-    (-1 where undefined frames are the majority or the column is empty)."""
+def _states_of_rows(summary, row_types, n_states):
+    """The state names of the folder's scheme and the states each row's type can take (all of
+    them when the scheme is unreadable)."""
+    try:
+        scheme = scheme_from_dict(summary["scheme"])
+    except (KeyError, TypeError, ValueError, DihedraError):  # an older or damaged summary: all states
+        return [], None
+    labels = list(scheme.labels)
+    if len(labels) != n_states:
+        return labels, None
+    own = {t: np.isin(labels, scheme.states_of_type(t)) for t in dict.fromkeys(row_types)}
+    return labels, np.array([own[t] for t in row_types], dtype=bool).reshape(len(row_types), n_states)
+
+
+def _column_counts(chunks, labels, n_replicas, n_states, per_col, n_cols, col_offset):
+    """Frames of each row (torsion) in each time column in each state, from the state chunks:
+    shape (n_rows, n_columns, n_states + 1), index 0 undefined, k + 1 state k."""
     total_cols = int(n_cols.sum())
     n_rows = len(labels)
     width = n_states + 1
@@ -218,12 +282,7 @@ def _column_modes(chunks, labels, n_replicas, n_states, per_col, n_cols, col_off
         codes = chunk[labels].to_numpy(np.int64) + 1  # -1 -> 0
         flat = (row_index[None, :] * total_cols + col[:, None]) * width + codes
         counts += np.bincount(flat.ravel(), minlength=counts.size)
-    counts = counts.reshape(n_rows, total_cols, width)
-    empty = counts.sum(axis=2) == 0
-    mode = counts[:, :, 1:].argmax(axis=2).astype(np.int8)
-    undefined_major = counts[:, :, 0] > counts[:, :, 1:].max(axis=2)
-    mode[undefined_major | empty] = -1
-    return mode
+    return counts.reshape(n_rows, total_cols, width)
 
 
 def plot_state_raster(raster, scheme, ax=None, show_note=True, legend=True):
@@ -260,6 +319,7 @@ def plot_state_raster(raster, scheme, ax=None, show_note=True, legend=True):
         ax.imshow(block, cmap=cmap, vmin=0, vmax=len(scheme.labels), aspect="auto", interpolation="nearest",
                   extent=(starts[k] * scale, (starts[k] + dur) * scale, n_rows - 0.5, -0.5),
                   rasterized=True)
+    _draw_rare(ax, raster, scheme, starts, scale)
     _mark_replicas(ax, starts, durations, scale)
     ax.set_xlim(0, total * scale if total > 0 else 1)
     ax.set_ylim(n_rows - 0.5, -0.5)
@@ -272,6 +332,33 @@ def plot_state_raster(raster, scheme, ax=None, show_note=True, legend=True):
     else:
         _note(ax, note)
     return ax
+
+
+def _draw_rare(ax, raster, scheme, starts, scale):
+    """Cells in a state rare for their row, drawn again over the raster as lines at least
+    ``RARE_MIN_PT`` thick and long (projecting caps), so that a row or column thinner than a pixel
+    keeps them; under the white lines between groups and the replica marks."""
+    from matplotlib.collections import LineCollection
+
+    runs = rare_runs(raster.codes, raster.rare)
+    if not runs:
+        return None
+    colours = state_colours(scheme)
+    segments, seg_colours = [], []
+    for k, (first, n, dur) in enumerate(raster.replica_columns):
+        width = dur / max(n, 1)
+        for row, a, b, code in runs:
+            lo, hi = max(a, first), min(b, first + n - 1)
+            if lo > hi:
+                continue
+            x0 = (starts[k] + (lo - first) * width) * scale
+            x1 = (starts[k] + (hi - first + 1) * width) * scale
+            segments.append([(x0, row), (x1, row)])
+            seg_colours.append(colours[scheme.labels[code]])
+    lines = LineCollection(segments, colors=seg_colours, linewidths=RARE_MIN_PT, capstyle="projecting",
+                           zorder=1.5, rasterized=len(segments) > 2000)
+    ax.add_collection(lines)
+    return lines
 
 
 def _raster_rows(ax, raster):
