@@ -1,5 +1,5 @@
 """The state raster keeps a rare state visible: a single row (a cis omega) among thousands, a short
-visit inside a column of many frames; and the common case (no rare
+visit inside a column of many frames, a row left out by thinning; and the common case (no rare
 state) is drawn as before, the most frequent state of every cell."""
 
 import json
@@ -16,6 +16,7 @@ matplotlib.use("Agg")
 
 from dihedra.presentation import figures  # noqa: E402
 from dihedra.presentation.figures import rarestates  # noqa: E402
+from dihedra.presentation.figures.raster import _thin  # noqa: E402
 from dihedra.selection.schemes import get_scheme  # noqa: E402
 
 CIS_TRANS = get_scheme("cis-trans")
@@ -150,6 +151,25 @@ def test_a_state_of_a_minority_type_is_compared_with_its_own_type_only():
     allowed[198:, 2:] = True
     assert not rarestates.rare_states(counts, ["chi2"] * 200, allowed).any()
     assert rarestates.rare_states(counts, ["chi2"] * 200)[198:, 2].all()  # compared with all: rare
+
+
+def test_thinning_keeps_the_row_in_a_rare_state(tmp_path):
+    n_frames, n_tors = 50, 3000
+    even = _thin(["X:omega"] * n_tors, 2000)
+    cis_row = int(np.setdiff1d(np.arange(n_tors), even)[700])   # a row that even thinning leaves out
+    codes = np.full((n_frames, n_tors), TRANS, np.int8)
+    codes[:, cis_row] = CIS
+    write_folder(tmp_path, codes, ["X:omega"] * n_tors)
+    raster = figures.read_state_raster(str(tmp_path), max_rows=2000, max_columns=50)
+    assert len(raster.rows) <= 2000 and f"T{cis_row}" in raster.rows
+    row = raster.rows.index(f"T{cis_row}")
+    assert (raster.codes[row] == CIS).all() and raster.rare_cells()[row].all()
+    assert raster.rows == sorted(raster.rows, key=lambda x: int(x[1:]))   # still in order
+    assert f"{len(raster.rows)} of 3000 torsions (evenly spaced in every group, and 1 that visits a rare state)" in \
+        raster.description
+    # without populations.csv nothing tells which rows are rare before reading: even thinning only
+    (tmp_path / "populations.csv").unlink()
+    assert f"T{cis_row}" not in figures.read_state_raster(str(tmp_path), max_rows=2000, max_columns=50).rows
 
 
 def test_the_cis_omega_of_adenylate_kinase_is_drawn(tmp_path):

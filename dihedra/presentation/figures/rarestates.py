@@ -11,7 +11,9 @@ the most frequent state, and between its neighbouring rows when the image is dra
 * in a column of many frames, a rare state takes the cell where it holds at least
   :data:`RARE_COLUMN_SHARE` of the frames; every other cell keeps its most frequent state;
 * cells in a rare state are drawn once more over the raster, at least :data:`RARE_MIN_PT` thick
-  and long, so that they survive rows and columns thinner than a pixel.
+  and long, so that they survive rows and columns thinner than a pixel;
+* when there are more rows than the raster draws, the rows that visit a rare state are kept
+  besides the evenly spaced ones (:func:`rare_rows`, from ``populations.csv``).
 
 A rare state is therefore drawn larger than its share: the figure's note says which states were
 so drawn. Without a rare state the raster is the plain most-frequent-state raster.
@@ -130,3 +132,33 @@ def rare_runs(codes, rare):
             runs.append((int(r), int(cols[part[0]]), int(cols[part[-1]]), int(row[part[0]])))
     return runs
 
+
+def rare_rows(populations, labels, groups, limit):
+    """Rows to keep when a raster is thinned, because they visit a rare state: the torsions of
+    ``labels`` with a population in a state rare in their group (:data:`RARE_SHARE` of the
+    populations of the group's torsions that have the state), most first, at most ``limit``.
+
+    Parameters
+    ----------
+    populations : DataFrame or None
+        ``populations.csv`` (torsion, state, population; each torsion has rows of its own states).
+    labels, groups : sequence
+        The torsions chosen for the raster and their groups, before thinning.
+    limit : int
+
+    Returns
+    -------
+    (ndarray of int, int)
+        Indices into ``labels`` of the rows kept (ascending), and how many rows visit a rare state.
+    """
+    if populations is None or not len(populations) or limit <= 0:
+        return np.zeros(0, dtype=np.int64), 0
+    pops = populations[["torsion", "state", "population"]]
+    index = {lab: k for k, lab in enumerate(labels)}
+    pops = pops[pops["torsion"].isin(index)].copy()
+    pops["group"] = [str(groups[index[t]]) for t in pops["torsion"]]
+    share = pops.groupby(["group", "state"])["population"].transform("mean")
+    visits = pops[(share < RARE_SHARE) & (pops["population"] > 0)]
+    most = visits.groupby("torsion")["population"].max().sort_values(ascending=False, kind="stable")
+    chosen = np.sort(np.array([index[t] for t in most.index[:int(limit)]], dtype=np.int64))
+    return chosen, len(most)

@@ -14,8 +14,8 @@ Rare states
 A state that the other torsions of a group do not take (the one cis ω of a chain, a rare rotamer)
 would be lost: in a column to the most frequent state, between rows thinner than a pixel, or by
 thinning. :mod:`~dihedra.presentation.figures.rarestates` keeps it: such a state takes a cell
-where it holds a quarter of the frames and is drawn at least 1 pt thick over the raster. The
-figure's note names the rare states it enlarged.
+where it holds a quarter of the frames, is drawn at least 1 pt thick over the raster, and its rows
+are kept when the rows are thinned. The figure's note names the rare states it enlarged.
 """
 
 from __future__ import annotations
@@ -27,11 +27,12 @@ import pandas as pd
 
 from ...errors import DihedraError
 from ...io.series import ParquetSeries
-from ...io.tables import read_optional_json, read_table
+from ...io.tables import read_optional_json, read_optional_table, read_table
 from ...selection.schemes import scheme_from_dict
 from .common import (_new_axes, _note, _replica_info, _time_label, _top_legend, _wrap, is_named_torsion, time_scale,
                      torsion_symbol)
-from .rarestates import RARE_COLUMN_SHARE, RARE_MIN_PT, RARE_SHARE, rare_cells, rare_runs, rare_states, reduce_columns
+from .rarestates import (RARE_COLUMN_SHARE, RARE_MIN_PT, RARE_SHARE, rare_cells, rare_rows, rare_runs, rare_states,
+                         reduce_columns)
 from .style import UNDEFINED_COLOUR, colour_groups, state_colours
 from .timeseries import _check_columns, _mark_replicas, _replica_layout
 
@@ -92,6 +93,8 @@ class StateRaster:
     selection: str = ""
     rare: np.ndarray | None = None
     state_labels: list = field(default_factory=list)
+    n_rare_kept: int = 0
+    n_rare_rows: int = 0
 
     @property
     def description(self):
@@ -133,10 +136,15 @@ class StateRaster:
 
     def _rows_description(self):
         """Which torsions the rows are: all of the folder or those chosen, and, only when rows were
-        left out to fit the figure, that they are an evenly spaced subset."""
+        left out to fit the figure, that they are an evenly spaced subset (with the rows kept for
+        a rare state)."""
         n_rows = len(self.rows)
         chosen = self.n_torsions if self.n_selected is None else int(self.n_selected)
         thinned = "evenly spaced in every group"
+        if self.n_rare_kept:
+            visit = "visits" if self.n_rare_kept == 1 else "visit"
+            thinned += (f", and {self.n_rare_kept} that {visit} a rare state" if self.n_rare_kept >= self.n_rare_rows
+                        else f", and the {self.n_rare_kept} of {self.n_rare_rows} that visit a rare state most")
         if chosen >= self.n_torsions:
             return (f"all {n_rows} torsions" if n_rows == chosen
                     else f"{n_rows} of {self.n_torsions} torsions ({thinned})")
@@ -223,7 +231,7 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
     n_selected = len(labels)
     _check_columns(series, "states", labels)
     labels, groups, residues, grouping = _row_order(table, labels)
-    keep = _thin(groups, int(max_rows))
+    keep, representative, n_rare_kept, n_rare_rows = _rows_kept(folder, labels, groups, int(max_rows))
     labels, groups, residues = [labels[k] for k in keep], [groups[k] for k in keep], [residues[k] for k in keep]
     n_states = len(summary.get("scheme", {}).get("labels", [])) or 127
     info = _replica_info(summary)
@@ -236,7 +244,7 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
     counts = _column_counts(series.iter_frames("states", labels, batch_frames), labels, len(frames), n_states,
                             per_col, n_cols, col_offset)
     state_labels, allowed = _states_of_rows(summary, [types.get(x, "") for x in labels], n_states)
-    rare = rare_states(counts, groups, allowed)
+    rare = rare_states(counts, groups, allowed, representative)
     mode = reduce_columns(counts, rare)
     spans = []
     for r, (n, dt) in enumerate(info):
@@ -245,7 +253,22 @@ def read_state_raster(folder, torsions=None, max_rows=2000, max_columns=600, bat
                        replica_columns=spans, frames_per_column=float(per_col),
                        n_torsions=len(all_labels), time_known=all(dt is not None for _, dt in info),
                        row_groups=groups, row_residues=residues, grouping=grouping, n_selected=n_selected,
-                       selection=selection if torsions else "", rare=rare, state_labels=state_labels)
+                       selection=selection if torsions else "", rare=rare, state_labels=state_labels,
+                       n_rare_kept=n_rare_kept, n_rare_rows=n_rare_rows)
+
+
+def _rows_kept(folder, labels, groups, max_rows):
+    """The rows of a raster: all, or above ``max_rows`` an evenly spaced subset of every group with
+    the rows that visit a rare state most (up to a tenth of ``max_rows``; ``populations.csv``).
+    Returns the indices kept, which of them stand for their group (the evenly spaced ones), how
+    many were kept for a rare state and how many visit one (0 and 0 when nothing was thinned)."""
+    if len(labels) <= max_rows:
+        return np.arange(len(labels)), np.ones(len(labels), bool), 0, 0
+    pops = read_optional_table(folder, "populations.csv", ("torsion", "state", "population"))
+    must, n_rare_rows = rare_rows(pops, labels, groups, max_rows // 10)
+    even = _thin(groups, max_rows - len(must))
+    keep = np.union1d(even, must)
+    return keep, np.isin(keep, even), len(must), n_rare_rows
 
 
 def _states_of_rows(summary, row_types, n_states):
