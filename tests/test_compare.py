@@ -116,6 +116,9 @@ def test_files_and_text(butane, tmp_path):
     assert {"rmse_kj_mol", "max_abs_difference_kj_mol", "js_divergence_bits", "verdict"} <= set(table.columns)
     details = json.load(open(paths[2]))
     assert details["thresholds"]["tolerance_kj_mol"] == 0.8 and details["scan"]["kind"] == "relaxed"
+    # the rules carry the values they were applied with (the report shows them as written here)
+    assert details["rules"]["inconsistent"] == "excess RMSE > 0.8 kJ/mol, or a state ddG > 0.8 kJ/mol and > 3 errors"
+    assert "error <= 0.2 kT, F <= 6 kT" in details["rules"]["reliable_bin"]
     prof = pd.read_csv(paths[1])
     assert prof.loc[~prof["sampled"], "free_energy_kj_mol"].isna().all()
 

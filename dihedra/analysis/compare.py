@@ -423,6 +423,23 @@ RULES = {
 }
 
 
+def rules_with_values(thresholds):
+    """:data:`RULES` with the names of ``thresholds`` (a dict) replaced by their values
+    ("error <= 0.2 kT"), longest names first (``tolerance`` as ``tolerance 1 kJ/mol``).
+
+    >>> rules_with_values({"max_error_kt": 0.2, "n_sigma": 3.0, "tolerance_kj_mol": 1.0})["inconsistent"]
+    'excess RMSE > 1 kJ/mol, or a state ddG > 1 kJ/mol and > 3 errors'
+    """
+    names = dict(thresholds, tolerance=f"{float(thresholds.get('tolerance_kj_mol', 1.0)):g} kJ/mol")
+    out = {}
+    for key, text in RULES.items():
+        for name in sorted(names, key=len, reverse=True):
+            value = names[name]
+            text = text.replace(name, value if isinstance(value, str) else f"{value:g}")
+        out[key] = text
+    return out
+
+
 def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width_deg=DEFAULT_BIN_WIDTH_DEG,
                       thresholds=Thresholds(), n_bootstrap=DEFAULT_BOOTSTRAP, seed=DEFAULT_SEED, log=None):
     """Compare the sampled profiles of torsion types with a static scan.
@@ -501,7 +518,7 @@ def compare_with_scan(result, scan, *, temperature_k=None, types=None, bin_width
         "scheme": result.scheme.name, "thresholds": asdict(thresholds),
         "scan": {"source": scan.source, "kind": scan.kind, "metadata": scan.metadata,
                  "minima": s_minima, "barriers": s_barriers},
-        "types": per_type, "rules": dict(RULES), "cautions": CAUTIONS,
+        "types": per_type, "rules": rules_with_values(asdict(thresholds)), "cautions": CAUTIONS,
     }
     parameters = {"temperature_k": temperature_k, "types": list(types), "bin_width_deg": float(bin_width_deg),
                   "thresholds": asdict(thresholds), "n_bootstrap": int(n_bootstrap), "seed": seed,
