@@ -690,3 +690,16 @@ def test_named_specifications_use_these_functions(adk_charmm):
     assert len(tset) == 639 + 421
     orders = {t.label: t.order for t in tset}
     assert orders["ARG2:phi"] < orders["ARG2:psi"] < orders["ARG2:omega"] < orders["ARG2:chi1"]
+
+
+def test_a_selection_of_nothing_names_two_reasons_and_counts_the_rest():
+    # MDAnalysisTests' nucl_res.pdb holds one CA atom per nucleotide: no nucleic torsion has its atoms
+    from dihedra.errors import SelectionError
+    from dihedra.selection.specs import select_torsions
+
+    u = load("NUCLsel")
+    with pytest.raises(SelectionError) as caught:
+        select_torsions(u, ["nucleic-backbone"])
+    text = str(caught.value)
+    assert text.count("skipped") == 2 and "found CA" in text and ".;" not in text
+    assert text.rstrip(".").endswith("more like these")

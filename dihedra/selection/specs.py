@@ -172,8 +172,10 @@ def select_torsions(universe, specs, *, keep_variants=False):
         result.notices.extend(part.notices)
     result = _deduplicate(result)
     if not result.torsions:
+        why = "; ".join(n.rstrip(".") for n in result.notices[:2]) + (f"; and {len(result.notices) - 2} more like these"
+                                               if len(result.notices) > 2 else "")
         raise SelectionError(f"the specification(s) {', '.join(specs)} select no torsions in this "
-                             "topology." + (" " + " ".join(result.notices) if result.notices else ""))
+                             "topology" + (f": {why}." if why else "."))
     return _assign_order(result)
 
 
