@@ -21,6 +21,7 @@ The package is split along the steps of the analysis:
 * :mod:`.maps` -- 2-D profiles F(phi_a, phi_b) of pairs of torsions from the angle time series;
 * :mod:`.resampled` -- the profiles of a result whose estimator stored its own bootstrap resamples
   (a folder of umbrella windows: MBAR with the window free energies re-estimated in every resample);
+* :mod:`.rows` -- the rows of the four tables, built column by column, stack by stack;
 * :mod:`.driver` -- :func:`free_energy_profiles`, which runs them over every type and torsion of a
   tracking result, and its :class:`ProfileSet` (``save(folder)`` writes the files).
 
@@ -41,9 +42,8 @@ Block bootstrap: Kuensch, Ann. Stat. 17 (1989) 1217. Binned kernel density estim
 Appl. Stat. 31 (1982) 93; rule of thumb: Silverman, Density Estimation (1986), eq. 3.31.
 """
 
-from .driver import (BARRIER_COLUMNS, MINIMA_COLUMNS, PROFILE_COLUMNS, PROFILE_ENERGY_UNITS, STATE_DG_COLUMNS,
-                     ProfileSet, convert_energy_columns, free_energy_profiles, resolve_temperature, type_profiles,
-                     unit_suffix)
+from .driver import (PROFILE_ENERGY_UNITS, ProfileSet, convert_energy_columns, free_energy_profiles,
+                     resolve_temperature, type_profiles, unit_suffix)
 from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                          Profile1D, bin_centres, bootstrap_multiplicities, bootstrap_spread, check_bin_width,
                          check_estimate_options, counting_error_floor, default_bandwidth_deg, default_bandwidths_deg,
@@ -52,6 +52,7 @@ from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MIN_RESAMP
                        find_minima, profile_features, state_blocks, state_free_energies,
                        state_free_energies_of_probabilities)
 from .maps import pair_profiles
+from .rows import BARRIER_COLUMNS, MINIMA_COLUMNS, PROFILE_COLUMNS, STATE_DG_COLUMNS
 from .resampled import (RESAMPLED_PROBABILITIES, RESAMPLED_STATE_PROBABILITIES, has_resamples,
                         profile_of_probabilities, resampled_state_free_energies, resampled_type_profile)
 
