@@ -624,11 +624,121 @@ def test_windows_of_few_correlation_times_are_named(tmp_path, synthetic):
     assert (synthetic[0].windows["correlation_times"] > 200).all()
 
 
-def test_profiling_a_windows_folder_again_says_its_errors_hold_the_weights_fixed(synthetic):
-    # the folder's block sums are MBAR-weighted: a profile of them resamples blocks with the weights
-    # fixed (the window free energies taken as exact), and says so, naming the windows' own profiles;
-    # an ordinary run's profile does not
-    _, out = synthetic
-    again = free_energy_profiles(load_results(out), temperature_k=T, n_bootstrap=20, per_torsion=False)
-    assert [n for n in again.notices if n.startswith("this folder holds umbrella windows")]
-    assert not [n for n in synthetic[0].profiles.notices if n.startswith("this folder holds umbrella windows")]
+def _type_rows(frame):
+    return frame[frame["torsion"] == ""].reset_index(drop=True)
+
+
+def test_profile_of_a_windows_folder_keeps_the_windows_errors(synthetic, tmp_path):
+    # dihedra profile on a windows folder gives the types the windows' own profile with the errors of
+    # their bootstrap (window free energies re-estimated in every resample, stored in blocks.npz),
+    # never errors recomputed from the weighted histograms with the weights held fixed (hundreds of
+    # kJ/mol at the barrier)
+    from scipy.ndimage import convolve1d
+    from scipy.stats import vonmises
+
+    from dihedra.analysis.compare import compare_with_scan
+    from dihedra.analysis.scans import scan_from_points
+    from dihedra.cli import main
+
+    wres, out = synthetic
+    res = load_results(out)
+    again = free_energy_profiles(res, temperature_k=T, n_bootstrap=20)
+    own = wres.profiles
+    for name in ("profiles", "minima", "barriers", "state_free_energies"):
+        mine, theirs = _type_rows(getattr(again, name)), _type_rows(getattr(own, name))
+        assert len(mine) == len(theirs), name
+        for col in [c for c in theirs.columns if c.endswith("_err_kj_mol") or c.endswith("_err")]:
+            np.testing.assert_allclose(mine[col], theirs[col], rtol=1e-6, err_msg=f"{name}.{col}")
+    np.testing.assert_allclose(_type_rows(again.profiles)["bandwidth_deg"], _type_rows(own.profiles)["bandwidth_deg"])
+    assert any(n.startswith("this folder holds umbrella windows") and "own bootstrap (40 resamples" in n
+               for n in again.notices)
+    # the torsions of the type (30 molecules) have no resamples of their own: their rows hold the weights
+    # fixed, and a notice says so of them alone; without them it is not given
+    narrow = [n for n in again.notices if "have no resamples of the windows' bootstrap" in n]
+    assert len(narrow) == 1 and "of the 30 torsions of 1 type(s)" in narrow[0]
+    types_only = free_energy_profiles(res, temperature_k=T, per_torsion=False)
+    assert not [n for n in types_only.notices if "have no resamples of the windows' bootstrap" in n]
+    # against the known potential (analytic; scipy quad): the syn barrier within 3 of its errors (each under
+    # 1 kJ/mol), every 5-degree bin within 4 errors, mean z^2 near 1 (correct errors)
+    v = asymmetric_energy(np.linspace(-180, 180, 36001))
+    bar = _type_rows(again.barriers)
+    syn = bar.loc[bar["angle_deg"].abs() < 30].iloc[0]
+    assert syn["free_energy_err_kj_mol"] < 1.0
+    assert abs(syn["free_energy_kj_mol"] - (v.max() - v.min())) < 3 * syn["free_energy_err_kj_mol"]
+    for width in (5.0, 10.0):
+        prof = again if width == 5.0 else free_energy_profiles(res, temperature_k=T, bin_width_deg=width,
+                                                               per_torsion=False)
+        hist = _type_rows(prof.profiles).query("estimate == 'histogram'")
+        ref, _ = reference_profile(asymmetric_energy, n_bins=int(360 / width))
+        z = (-KT * np.log(hist["probability_density_per_deg"].to_numpy()) - ref) / hist["free_energy_err_kj_mol"]
+        assert np.max(np.abs(z)) < 4.0 and 0.3 < np.mean(z ** 2) < 2.5, width
+        # the same errors as dihedra compare gives for the width (the windows' resamples in wider bins)
+        grid = np.arange(-180.0, 180.0, 2.0)
+        cmp = compare_with_scan(res, scan_from_points(grid, asymmetric_energy(grid)), temperature_k=T,
+                                bin_width_deg=width)
+        np.testing.assert_allclose(hist["free_energy_err_kj_mol"], cmp.profiles["free_energy_err_kj_mol"], rtol=1e-6)
+    # a kernel of a bandwidth asked for: the von Mises smoothing of the exact fine-bin probabilities
+    # (scipy.stats.vonmises, kappa = 1 / sigma^2) within 4 errors at every point, the barrier included,
+    # and mean z^2 near 1
+    smooth = free_energy_profiles(res, temperature_k=T, bandwidth_deg=4.0, per_torsion=False)
+    kern = _type_rows(smooth.profiles).query("estimate == 'kernel'")
+    assert (kern["bandwidth_deg"] == 4.0).all()
+    _, mass = reference_profile(asymmetric_energy, n_bins=360)
+    offsets = np.arange(-180, 180)
+    kernel = vonmises.pdf(np.radians(offsets), 1.0 / np.radians(4.0) ** 2)
+    exact = -KT * np.log(convolve1d(mass, kernel / kernel.sum(), mode="wrap", origin=0))
+    f = -KT * np.log(kern["probability_density_per_deg"].to_numpy())
+    zk = (f - exact) / kern["free_energy_err_kj_mol"].to_numpy()
+    assert np.max(np.abs(zk)) < 4.0 and 0.3 < np.mean(zk ** 2) < 2.5
+    # a bin width the fine bins do not tile is refused, as for any folder
+    with pytest.raises(DihedraError, match="multiple of the fine histogram bin"):
+        free_energy_profiles(res, temperature_k=T, bin_width_deg=7.0)
+    # the command line writes the windows' own errors and says whose they are
+    import shutil
+    copy = str(tmp_path / "again")
+    shutil.copytree(out, copy)
+    assert main(["profile", copy, "--types-only", "--overwrite"]) == 0
+    written = pd.read_csv(os.path.join(copy, "barriers.csv"))
+    np.testing.assert_allclose(written["free_energy_err_kj_mol"], _type_rows(own.barriers)["free_energy_err_kj_mol"],
+                               rtol=1e-5)
+    with open(os.path.join(copy, "profiles.json")) as fh:
+        info = json.load(fh)
+    assert info["n_type_resamples"] == 40 and any("umbrella windows' own bootstrap" in c for c in info["cautions"])
+
+
+def test_profile_of_windows_without_stored_resamples_says_its_errors_hold_the_weights_fixed(synthetic):
+    # a windows folder of an earlier dihedra (no resamples in blocks.npz): the weighted histograms
+    # resampled with the weights fixed, and a notice says so; an ordinary run's profile says nothing of it
+    from dihedra.analysis.profiles import RESAMPLED_PROBABILITIES
+
+    res = load_results(synthetic[1])
+    del res.blocks[RESAMPLED_PROBABILITIES]
+    again = free_energy_profiles(res, temperature_k=T, n_bootstrap=20, per_torsion=False)
+    assert [n for n in again.notices if n.startswith("this folder of umbrella windows holds no bootstrap resamples")]
+    assert "n_type_resamples" not in again.settings
+    assert not [n for n in synthetic[0].profiles.notices if "held fixed" in n]
+
+
+def test_a_torsion_alone_in_its_type_has_the_windows_errors(tmp_path):
+    # one biased torsion per window (the usual umbrella run): its own rows are those of its type, from
+    # the windows' resamples, and no notice speaks of rows with the weights held fixed
+    csv = write_windows(tmp_path, lambda x: 0.3 * rb_energy(x), np.arange(-180.0, 180.0, 30.0), 60.0, 200, 1, seed=9)
+    wres = unbias_windows(csv, temperature_k=T, n_bootstrap=20)
+    pset = free_energy_profiles(wres.result, temperature_k=T)
+    label = wres.result.torsion_set.labels[0]
+    for name in ("profiles", "minima", "barriers", "state_free_energies"):
+        table = getattr(pset, name)
+        mine = table[table["torsion"] == label].drop(columns="torsion").reset_index(drop=True)
+        pooled = _type_rows(table).drop(columns="torsion")
+        assert len(mine) == len(pooled) > 0, name
+        pd.testing.assert_frame_equal(mine, pooled, check_categorical=False)
+    np.testing.assert_allclose(_type_rows(pset.profiles)["free_energy_err_kj_mol"],
+                               _type_rows(wres.profiles.profiles)["free_energy_err_kj_mol"], rtol=1e-6)
+    # and honest against the potential (analytic; scipy quad): every 5-degree bin within 4 errors
+    hist = _type_rows(pset.profiles).query("estimate == 'histogram'")
+    ref, _ = reference_profile(lambda x: 0.3 * rb_energy(x))
+    z = (-KT * np.log(hist["probability_density_per_deg"].to_numpy()) - ref) / hist["free_energy_err_kj_mol"]
+    assert np.max(np.abs(z)) < 4.0
+    assert not [n for n in pset.notices if "held fixed" in n]
+    assert {b["torsion"] for b in pset.settings["bandwidths_deg"]} == {"", label}
+    assert len({b["bandwidth_deg"] for b in pset.settings["bandwidths_deg"]}) == 1

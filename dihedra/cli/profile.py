@@ -19,7 +19,7 @@ def register(sub):
                     "Mises kernel estimates, block-bootstrap errors), their minima and barriers, state free "
                     "energies, and 2-D profiles of torsion pairs. Writes profiles.csv, minima.csv, "
                     "barriers.csv, state_free_energies.csv, profiles.json (and profiles_2d.csv) into DIR.")
-    p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track'")
+    p.add_argument("folder", metavar="DIR", help="results folder written by 'dihedra track' or 'dihedra windows'")
     p.add_argument("--temperature", type=float, default=None, metavar="K",
                    help="temperature in kelvin (required unless track recorded one)")
     p.add_argument("--bin-width", type=float, default=DEFAULT_BIN_WIDTH_DEG, metavar="DEG",
@@ -35,7 +35,8 @@ def register(sub):
     p.add_argument("--pair-bin-width", type=float, default=DEFAULT_PAIR_BIN_WIDTH_DEG, metavar="DEG",
                    help=f"bin width of 2-D profiles (default {DEFAULT_PAIR_BIN_WIDTH_DEG:g})")
     p.add_argument("--bootstrap", type=int, default=DEFAULT_BOOTSTRAP, metavar="N",
-                   help=f"block-bootstrap resamples for the errors (default {DEFAULT_BOOTSTRAP})")
+                   help=f"block-bootstrap resamples for the errors (default {DEFAULT_BOOTSTRAP}; the types of a "
+                        "folder of 'dihedra windows' carry the errors of the windows' own bootstrap)")
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, metavar="N", help="seed of the bootstrap")
     which = p.add_mutually_exclusive_group()
     which.add_argument("--types-only", action="store_true",
@@ -88,9 +89,11 @@ PER_TORSION_LIMIT = 2000
 def report_profiles(pset, unit, max_types=20):
     s = pset.settings
     sfx = unit_suffix(unit)
+    errors = (f"errors from {s['n_bootstrap']} {s.get('resamples_brief', 'block-bootstrap resamples')}"
+              if "n_type_resamples" not in s else
+              f"errors of the types from the windows' own bootstrap ({s['n_type_resamples']} resamples)")
     print(f"free-energy profiles at {pset.temperature_k:g} K (kT = {s['kt_kj_mol']:.3f} kJ/mol), "
-          f"{s['bin_width_deg']:g}-degree bins, errors from {s['n_bootstrap']} {s.get('resamples_brief', 'block-bootstrap resamples')}; "
-          f"energies in {unit}")
+          f"{s['bin_width_deg']:g}-degree bins, {errors}; energies in {unit}")
     minima = convert_energy_columns(pset.minima[pset.minima["torsion"] == ""], unit, pset.temperature_k)
     barriers = convert_energy_columns(pset.barriers[pset.barriers["torsion"] == ""], unit, pset.temperature_k)
     dg = convert_energy_columns(pset.state_free_energies[pset.state_free_energies["torsion"] == ""], unit,

@@ -53,19 +53,21 @@ from .features import (BARRIER_FIELDS, MIN_DEPTH_KT, MIN_DEPTH_SIGMA, MIN_RESAMP
                        state_free_energies_of_probabilities)
 from .maps import pair_profiles
 from .rows import BARRIER_COLUMNS, MINIMA_COLUMNS, PROFILE_COLUMNS, STATE_DG_COLUMNS
-from .resampled import (RESAMPLED_PROBABILITIES, RESAMPLED_STATE_PROBABILITIES, has_resamples,
-                        profile_of_probabilities, resampled_state_free_energies, resampled_type_profile)
+from .resampled import (RESAMPLED_EFFECTIVE_SAMPLES, RESAMPLED_PROBABILITIES, RESAMPLED_STATE_PROBABILITIES,
+                        TYPE_ERRORS, has_resamples, kernel_profile_of_probabilities, profile_of_probabilities,
+                        resampled_state_free_energies, resampled_type_profile)
 
 __all__ = [
     "BARRIER_COLUMNS", "BARRIER_FIELDS", "DEFAULT_BIN_WIDTH_DEG", "DEFAULT_BOOTSTRAP", "DEFAULT_PAIR_BIN_WIDTH_DEG",
     "DEFAULT_SEED", "MINIMA_COLUMNS", "MINIMUM_FIELDS", "MIN_DEPTH_KT", "MIN_DEPTH_SIGMA", "MIN_RESAMPLED_FRACTION",
-    "PROFILE_COLUMNS", "PROFILE_ENERGY_UNITS", "RESAMPLED_PROBABILITIES", "RESAMPLED_STATE_PROBABILITIES",
-    "STATE_DG_COLUMNS",
+    "PROFILE_COLUMNS", "PROFILE_ENERGY_UNITS", "RESAMPLED_EFFECTIVE_SAMPLES", "RESAMPLED_PROBABILITIES",
+    "RESAMPLED_STATE_PROBABILITIES", "STATE_DG_COLUMNS", "TYPE_ERRORS",
     "Profile1D", "ProfileSet", "bin_centres", "bootstrap_multiplicities", "bootstrap_spread", "check_bin_width",
     "check_estimate_options", "convert_energy_columns", "counting_error_floor", "default_bandwidth_deg",
     "default_bandwidths_deg", "effective_count_scale", "effective_samples", "find_minima",
-    "free_energy_from_counts", "free_energy_profiles", "has_resamples", "pair_profiles", "profile_features",
-    "profile_of_probabilities", "rebin", "resampled_state_free_energies", "resampled_type_profile",
+    "free_energy_from_counts", "free_energy_profiles", "has_resamples", "kernel_profile_of_probabilities",
+    "pair_profiles", "profile_features", "profile_of_probabilities", "rebin", "resampled_state_free_energies",
+    "resampled_type_profile",
     "resolve_temperature", "state_blocks", "state_free_energies", "state_free_energies_of_probabilities",
     "type_profiles", "unit_suffix", "von_mises_smooth",
 ]

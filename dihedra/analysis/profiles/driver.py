@@ -3,7 +3,9 @@ r"""The profiles of a tracking result: :func:`free_energy_profiles` and its :cla
 For every torsion type (the torsions of a type pooled) and, unless ``per_torsion=False``, every
 torsion: the histogram and kernel profiles with their block-bootstrap errors
 (:mod:`.estimation`), minima, barriers and state free energies (:mod:`.features`); 2-D profiles of
-pairs of torsions on request (:mod:`.maps`).
+pairs of torsions on request (:mod:`.maps`). A result that stored the resamples of its own
+estimator (a folder of umbrella windows) has its types, and a torsion alone in its type, profiled
+with those (:mod:`.resampled`).
 
 Computation: torsions are handled in stacks of :data:`_BATCH` = 64, every step one array
 operation over the stack (see :mod:`.estimation` and :mod:`.features`), a few stacks at a time in
@@ -37,8 +39,9 @@ from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_
 from .features import (MIN_DEPTH_KT, MIN_DEPTH_SIGMA, _state_free_energy_stack, state_blocks, type_notices,
                        with_spread_between_torsions)
 from .maps import check_pairs, pair_profiles
-from .resampled import fixed_weight_notices
-from .rows import _ProfileTables, _stack_tables
+from .resampled import (has_resamples, resampled_effective_samples, resampled_settings, resampled_type_stacks,
+                        windows_error_notices)
+from .rows import _ProfileTables, _recoded, _replaced, _stack_tables
 
 #: Energy units a profile can be written in.
 PROFILE_ENERGY_UNITS = ("kJ/mol", "kcal/mol", "kT")
@@ -179,7 +182,7 @@ class ProfileSet:
             info["energy_unit"] = canonical_energy_unit(energy_unit)
             info["files"] = [os.path.basename(p) for p in paths]
             info["notices"] = list(self.notices)
-            info["cautions"] = list(_CAUTIONS)
+            info["cautions"] = _CAUTIONS[:2] + [self.settings.get("type_errors", _CAUTIONS[2])]
             paths.append(write_json(info, folder, "profiles.json"))
         return paths
 
@@ -257,7 +260,10 @@ class _Stacks:
     fine bin width and ``factor`` the fine bins per histogram bin; ``neff`` the effective samples of
     each torsion (:func:`effective_samples`); ``types`` the type of each torsion (its own scheme
     when the run used a set of schemes); ``count_scale`` the effective samples per histogram count
-    (:func:`effective_count_scale`); ``ratio`` the short-run ratios by type (:func:`short_run_ratio_map`).
+    (:func:`effective_count_scale`); ``ratio`` the short-run ratios by type (:func:`short_run_ratio_map`);
+    ``resampled`` the result when it stored its estimator's resamples (umbrella windows: the types
+    are profiled from them, :mod:`.resampled`) and ``alone`` the bandwidths of the torsions alone in
+    their type, by code, with their rows (the type's, from those resamples).
     """
 
     hist: np.ndarray
@@ -275,6 +281,8 @@ class _Stacks:
     n_blocks: int = 0
     count_scale: float = 1.0
     ratio: dict = field(default_factory=dict)
+    resampled: object = None   # the result, when it stored its estimator's resamples (umbrella windows)
+    alone: tuple = ({}, None)  # {code: bandwidth} of the torsions alone in their type, their rows from those
 
     def ratios(self, types):   # (by state, by histogram bin, by fine bin)
         return stack_ratios(self.ratio, self.scheme, types, self.hist.shape[-1] // self.factor, self.hist.shape[-1])
@@ -290,14 +298,20 @@ class _Stacks:
         return cls(hist=hist, n_blocks=int(hist.shape[0]), mult=mult, state_counts=sc, smult=smult, kt=kt, fine=fine,
                    factor=factor, bin_width_deg=bin_width_deg, bandwidth_deg=bandwidth_deg, scheme=result.scheme,
                    neff=effective_samples(result.populations, result.torsion_set.labels), types=types,
-                   count_scale=effective_count_scale(result), ratio=short_run_ratio_map(result, types))
+                   count_scale=effective_count_scale(result), ratio=short_run_ratio_map(result, types),
+                   resampled=result if has_resamples(result) else None)
 
 
 def _type_stack(s, order, members):
     """Bandwidths, table rows and {type: (histogram, kernel) Profile1D} of the types (pooled)."""
     pooled = _pooled_counts(s.hist, order, members)
+    kish = None if s.resampled is None else resampled_effective_samples(s.resampled)
     bws = _bandwidths(s.bandwidth_deg, pooled.sum(axis=0), [s.scheme.for_type(t) for t in order],
-                      [s.neff[members[t]].sum() for t in order], s.fine)
+                      [s.neff[members[t]].sum() for t in order] if kish is None else kish, s.fine)
+    if s.resampled is not None:   # umbrella windows: their MBAR profiles with the errors of their own bootstrap
+        hstack, kernel, states, by_type = resampled_type_stacks(s.resampled, order, s.kt, s.bin_width_deg, bws)
+        return bws, _stack_tables(np.arange(len(order)), np.zeros(len(order), dtype=np.int64), hstack, kernel,
+                                  states, s.kt), by_type
     ratio, hist_ratio, fine_ratio = s.ratios(order)
     hstack = _histogram_stack(rebin(pooled, s.factor), s.mult, s.kt, s.bin_width_deg, s.count_scale, hist_ratio)
     kstack = _kernel_stack(pooled, s.mult, s.kt, bws, s.fine, s.count_scale, fine_ratio)
@@ -320,7 +334,12 @@ def _torsion_stack(span, s, codes):
     rows = _stack_tables(codes[start:stop], np.arange(start, stop) + 1, hstack,
                          _kernel_columns(sub, s.mult, s.kt, bws, s.fine, s.count_scale, fine_ratio),
                          _state_free_energy_stack(s.state_counts[:, start:stop, :], s.kt, s.smult, ratio), s.kt)
-    return bws, rows
+    alone = [k for k in s.alone[0] if start < k <= stop]
+    if not alone:
+        return bws, rows
+    bws = np.array(bws, dtype=float)
+    bws[np.asarray(alone) - 1 - start] = [s.alone[0][k] for k in alone]
+    return bws, _replaced(rows, s.alone[1], alone)
 
 
 def _ordered_map(func, items, threads):
@@ -392,7 +411,7 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     check_pairs(result, pairs, pair_bin_width_deg)   # before any work or message
     early = []
     temperature_k = resolve_temperature(temperature_k, result.summary, say, early)
-    early.extend(fixed_weight_notices(result))
+    early.extend(windows_error_notices(result, per_torsion))
     kt = kt_kj_mol(temperature_k)
     n_bootstrap = check_estimate_options(n_bootstrap, bandwidth_deg)
     s = _Stacks.of(result, kt, bin_width_deg, bandwidth_deg, n_bootstrap, seed)
@@ -405,6 +424,9 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
                                       {"type": np.int32, "torsion": np.int32, "estimate": np.int8})
     tables.add(rows)
     bandwidths = [bws]
+    if s.resampled is not None:   # (a torsion alone in its type: the type's resamples are its own)
+        alone = {k: int(members[t][0]) + 1 for k, t in enumerate(order) if len(members[t]) == 1}
+        s.alone = ({alone[k]: float(bws[k]) for k in alone}, _recoded(rows, alone))
     # per torsion, in stacks (bounded memory), a few stacks at a time in threads
     if per_torsion:
         type_index = {t: k for k, t in enumerate(order)}
@@ -418,7 +440,8 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     if len(s.scheme.coded_parts()) > 1 and len(state_dg):   # a set of schemes: each type's own states
         own = [st in s.scheme.states_of_type(ty) for ty, st in zip(state_dg["type"], state_dg["state"])]
         state_dg = state_dg[np.asarray(own, dtype=bool)].reset_index(drop=True)
-    state_dg = with_spread_between_torsions(state_dg, getattr(result, "populations_by_type", None), s.kt)
+    state_dg = with_spread_between_torsions(state_dg, getattr(result, "populations_by_type", None), s.kt,
+                                            [labels[k - 1] for k in s.alone[0]])
     names = [("", t) for t in order] + (list(zip(labels, result.torsion_set.types)) if per_torsion else [])
     settings = _settings(s, temperature_k, n_bootstrap, seed, names, np.concatenate(bandwidths))
     pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,
@@ -456,6 +479,7 @@ def _settings(s, temperature_k, n_bootstrap, seed, names, bandwidths):
                                "else the bin",
         "state_free_energy_reference": "most populated state",
         "scheme": s.scheme.name,
+        **({} if s.resampled is None else resampled_settings(s.resampled, s.bandwidth_deg)),
     }
 
 

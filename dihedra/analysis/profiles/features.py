@@ -182,9 +182,10 @@ def state_free_energies_of_probabilities(population, boot_population, state_labe
                        state_labels)
 
 
-def with_spread_between_torsions(state_dg, populations_by_type, kt):
+def with_spread_between_torsions(state_dg, populations_by_type, kt, torsions=()):
     """The type rows (``torsion == ""``) of a state free-energy table with errors that include the
-    spread between the torsions of a type, as the pooled populations of the run have them.
+    spread between the torsions of a type, as the pooled populations of the run have them; also the
+    rows of the ``torsions`` named (each alone in its type, with the type's rows).
 
     The bootstrap of a type's pooled counts resamples blocks of time only: torsions of one type in
     different surroundings (the residues of a protein), or torsions that never change state, give
@@ -209,13 +210,15 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt):
     pooled = populations_by_type.set_index(["type", "state"])["population_err"]
     pooled = pooled[~pooled.index.duplicated()]
     out = state_dg.copy()
-    rows = np.flatnonzero((out["torsion"].astype(str) == "").to_numpy())
-    typ, state, reference = (out[c].astype(str).to_numpy()[rows] for c in ("type", "state", "reference_state"))
+    rows = np.flatnonzero(out["torsion"].astype(str).isin(["", *torsions]).to_numpy())
+    tor, typ, state, reference = (out[c].astype(str).to_numpy()[rows]
+                                  for c in ("torsion", "type", "state", "reference_state"))
     key, ref = pd.MultiIndex.from_arrays([typ, state]), pd.MultiIndex.from_arrays([typ, reference])
     se = pooled.reindex(key).to_numpy(dtype=float)
     se_ref = pooled.reindex(ref).to_numpy(dtype=float)
     p = out["population"].to_numpy(dtype=float)[rows]
-    p_ref = pd.Series(p, index=key).reindex(ref).to_numpy(dtype=float)
+    p_ref = pd.Series(p, index=pd.MultiIndex.from_arrays([tor, typ, state])).reindex(
+        pd.MultiIndex.from_arrays([tor, typ, reference])).to_numpy(dtype=float)
     is_ref = state == reference
     with np.errstate(invalid="ignore", divide="ignore"):
         delta = np.where(is_ref, 0.0, kt * np.sqrt((se / p) ** 2 + (se_ref / p_ref) ** 2))

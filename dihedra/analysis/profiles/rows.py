@@ -38,7 +38,8 @@ class _Columns:
             rows, dtypes = self.reserved
             self.filled = {c: np.empty(rows, dtype=dtypes.get(c, np.asarray(values[c]).dtype)) for c in self.columns}
         for c in self.columns:
-            v = np.broadcast_to(np.asarray(values[c]), (n,)) if np.ndim(values[c]) == 0 else np.asarray(values[c]).ravel()
+            v = np.broadcast_to(np.asarray(values[c]), (n,)) if np.ndim(values[c]) == 0 \
+                else np.asarray(values[c]).ravel()
             if self.filled is not None:
                 self.filled[c][self.at:self.at + n] = v
             else:
@@ -57,7 +58,8 @@ class _Columns:
             raise RuntimeError(f"{self.at} rows given for a table of {len(self.filled[self.columns[0]])}")
         for c in self.columns:
             parts = self.parts.pop(c, [])
-            joined = self.filled.pop(c) if self.filled is not None else (np.concatenate(parts) if parts else np.zeros(0))
+            joined = self.filled.pop(c) if self.filled is not None else \
+                (np.concatenate(parts) if parts else np.zeros(0))
             del parts
             if c in categories:
                 codes = joined if joined.dtype.kind in "iu" else joined.astype(np.int64)
@@ -135,3 +137,35 @@ class _ProfileTables:
         return (t["profiles"].frame({**cats, "estimate": ["histogram", "kernel"]}), t["minima"].frame(cats),
                 t["barriers"].frame(cats),
                 t["dg"].frame({**cats, "state": list(state_labels), "reference_state": list(state_labels)}))
+
+
+def _flat(cols):
+    """The columns of one table of a stack as flat arrays of one length (as :meth:`_Columns.add` takes them)."""
+    n = max(np.size(v) for v in cols.values())
+    return {c: np.broadcast_to(np.asarray(v), (n,)) if np.ndim(v) == 0 else np.asarray(v).ravel()
+            for c, v in cols.items()}
+
+
+def _recoded(rows, torsion_of_type):
+    """The rows of the types in ``torsion_of_type`` ({type code: torsion code}) as rows of those
+    torsions (a torsion alone in its type has the type's profile)."""
+    out = {}
+    for name, cols in rows.items():
+        cols = _flat(cols)
+        sel = np.isin(cols["type"], list(torsion_of_type))
+        out[name] = {c: v[sel] for c, v in cols.items()}
+        out[name]["torsion"] = np.array([torsion_of_type[t] for t in out[name]["type"]], dtype=np.int64)
+    return out
+
+
+def _replaced(rows, other, torsions):
+    """``rows`` of a stack with those of the torsion codes ``torsions`` taken from ``other`` instead,
+    in torsion order (the rows of each torsion in their own order)."""
+    out = {}
+    for name, cols in rows.items():
+        cols = _flat(cols)
+        keep = ~np.isin(cols["torsion"], torsions)
+        take = np.isin(other[name]["torsion"], torsions)
+        order = np.argsort(np.concatenate([cols["torsion"][keep], other[name]["torsion"][take]]), kind="stable")
+        out[name] = {c: np.concatenate([v[keep], other[name][c][take]])[order] for c, v in cols.items()}
+    return out

@@ -29,7 +29,8 @@ Output
 :meth:`WindowsResult.save` writes a complete results folder (``torsions.csv``,
 ``populations*.csv``, ``blocks.npz``, ``summary.json``) whose histograms and state counts are the
 MBAR-weighted sums (each window a replica), with the bin and state probabilities of every bootstrap
-resample of each type (:mod:`dihedra.analysis.profiles.resampled`), so that ``dihedra couplings``,
+resample of each type and Kish's effective samples of its weights
+(:mod:`dihedra.analysis.profiles.resampled`), so that ``dihedra couplings``,
 ``dihedra compare`` and figures work on it, plus the profile files of ``dihedra profile`` (``profiles.csv``,
 ``minima.csv``, ``barriers.csv``, ``state_free_energies.csv``, ``profiles.json``; the
 ``histogram`` estimate is the MBAR profile, the ``kernel`` estimate its von Mises smoothing, both
@@ -50,10 +51,11 @@ with the errors of :mod:`.estimation`), and
 Conformer tables are left empty (a joint state of several torsions has no single weight when each
 torsion carries its own bias). Populations in ``populations.csv`` use the blocking errors of the
 weighted counts (window free energies held fixed: a lower bound); ``populations_by_type.csv``
-carries the larger of that and the bootstrap error. ``dihedra compare`` on the folder takes the
-profile errors from the stored resamples; re-running ``dihedra profile`` on it recomputes profiles
-from the weighted histograms with the window free energies held fixed, whose errors are not the
-ones written here (too small in the wells, far too large where the weights are small).
+carries the larger of that and the bootstrap error. ``dihedra compare`` and ``dihedra profile``
+on the folder take the errors of the types from the stored resamples (and the kernel bandwidth
+from the stored Kish effective samples): at the same bin width, the very profiles, minima,
+barriers and state free energies written here. The resamples are per type: ``dihedra profile``'s
+rows of single torsions of a type of several hold the window free energies fixed (and say so).
 """
 
 from __future__ import annotations
@@ -71,8 +73,9 @@ from ...selection.schemes import get_scheme
 from ...trajectory.result import TrackResult
 from ...trajectory.states import check_frame_range, whole_number
 from ...units import check_temperature, kt_kj_mol, wrap_deg
-from ..profiles import (DEFAULT_SEED, RESAMPLED_PROBABILITIES, RESAMPLED_STATE_PROBABILITIES, bootstrap_multiplicities,
-                        bootstrap_spread, check_bin_width, check_estimate_options, rebin)
+from ..profiles import (DEFAULT_SEED, RESAMPLED_EFFECTIVE_SAMPLES, RESAMPLED_PROBABILITIES,
+                        RESAMPLED_STATE_PROBABILITIES, TYPE_ERRORS, bootstrap_multiplicities, bootstrap_spread,
+                        check_bin_width, check_estimate_options, rebin)
 from .estimation import AGREEMENT_SIGMA, DEFAULT_MAX_MBAR_SAMPLES, TypeTables, estimate_type
 from .samples import N_HIST_BLOCKS, N_STATE_BLOCKS, collect_windows, read_windows, window_inputs
 from .restraints import (force_constant_ratios, judge_force_constants, k_from_samples, restraint_rule,
@@ -356,7 +359,8 @@ def _weighted_tables(data, first, scheme, states, weights, estimates):
         # the MBAR bootstrap of every type (window free energies re-estimated in each resample), so that
         # an analysis of the folder has the errors of this one (dihedra.analysis.profiles.resampled)
         RESAMPLED_PROBABILITIES: np.stack([est.boot_fine_mbar for est in estimates.values()]),
-        RESAMPLED_STATE_PROBABILITIES: np.stack([est.boot_state_counts for est in estimates.values()])}
+        RESAMPLED_STATE_PROBABILITIES: np.stack([est.boot_state_counts for est in estimates.values()]),
+        RESAMPLED_EFFECTIVE_SAMPLES: np.array([est.effective_samples for est in estimates.values()])}
     pops = torsion_populations(sc, block_replica, labels, types, scheme.labels)
     by_type = pool_by_type(pops)
     for typ, est in estimates.items():
@@ -503,6 +507,7 @@ def _settings(temperature_k, kt, bin_width_deg, n_bootstrap, seed, bandwidth_deg
         "bandwidth_rule": "given" if bandwidth_deg is not None else
                           "0.9 * within-arc standard deviation * (Kish effective samples)^(-1/5)",
         "bandwidths_deg": bandwidths, "scheme": scheme.name,
+        "n_type_resamples": n_bootstrap, "type_errors": TYPE_ERRORS.format(n=n_bootstrap),
         "minimum_depth_rule": "as in dihedra profile", "state_free_energy_reference": "most populated state",
     }
 

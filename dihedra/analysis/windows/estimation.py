@@ -28,8 +28,8 @@ import pandas as pd
 
 from ...errors import DihedraError
 from ..profiles import (BARRIER_COLUMNS, MINIMA_COLUMNS, STATE_DG_COLUMNS, ProfileSet, default_bandwidth_deg,
-                        profile_features, profile_of_probabilities, rebin, state_free_energies_of_probabilities,
-                        von_mises_smooth)
+                        kernel_profile_of_probabilities, profile_features, profile_of_probabilities, rebin,
+                        state_free_energies_of_probabilities)
 from ..profiles.features import with_spread_between_torsions
 from .samples import N_HIST_BLOCKS
 from .solver import (GRID_POINTS, _fine_bin, _grid_angles, _grid_index, _import_pymbar, _logsumexp, bias_kj_mol,
@@ -84,7 +84,10 @@ class TypeEstimate:
     thin_stride: int
     biased_hist: np.ndarray
 
-
+    @property
+    def effective_samples(self):
+        """Kish's effective sample size of the weights, (sum w)^2 / sum w^2 (Kish, Survey Sampling, 1965)."""
+        return float(self.weights.sum() ** 2 / np.sum(self.weights ** 2))
 
 
 def estimate_type(angle_deg, window, frame_pos, hist_block, states, n_states, windows, kt, mult,
@@ -231,21 +234,6 @@ def _bootstrap_type(mult, window, hist_block, fine, grid, states, n_states, n_wi
 # Profiles in the format of dihedra profile
 # ----------------------------------------------------------------------------------------------
 
-def _kernel_profile(fine_main, fine_boot, kt, bandwidth_deg, samples):
-    """The von Mises smoothing of a fine profile and of its resamples, as a Profile1D."""
-    from scipy.ndimage import maximum_filter1d
-
-    reach = max(1, int(np.ceil(bandwidth_deg)))
-    sampled = maximum_filter1d((fine_main > 0).astype(np.int8), size=2 * reach + 1, mode="wrap") > 0
-    main = np.where(sampled, von_mises_smooth(fine_main, bandwidth_deg), 0.0)
-    boot = von_mises_smooth(fine_boot, bandwidth_deg) * sampled
-    prof = profile_of_probabilities(main, boot, kt, 1.0, samples * main)
-    prof.sampled = sampled & (main > 0)
-    prof.bandwidth_deg = float(bandwidth_deg)
-    return prof
-
-
-
 class TypeTables:
     """The profile tables of a window analysis in the format of ``dihedra profile``, and the
     comparison of MBAR with WHAM, filled type by type (:meth:`add`)."""
@@ -270,10 +258,9 @@ class TypeTables:
         coarse = rebin(est.fine_mbar, self.factor)
         hprof = profile_of_probabilities(coarse, rebin(est.boot_fine_mbar, self.factor), kt, self.width,
                                          coarse * n_samples)
-        kish = est.weights.sum() ** 2 / np.sum(est.weights ** 2)
         bw = float(self.bandwidth_deg) if self.bandwidth_deg is not None else \
-            default_bandwidth_deg(est.fine_mbar * n_samples, self.scheme, kish)
-        kprof = _kernel_profile(est.fine_mbar, est.boot_fine_mbar, kt, bw, n_samples)
+            default_bandwidth_deg(est.fine_mbar * n_samples, self.scheme, est.effective_samples)
+        kprof = kernel_profile_of_probabilities(est.fine_mbar, est.boot_fine_mbar, kt, bw, n_samples)
         self.by_type[typ] = (hprof, kprof)
         self.bandwidths.append({"type": typ, "torsion": "", "bandwidth_deg": bw})
         for estimate, pr in (("histogram", hprof), ("kernel", kprof)):
