@@ -22,7 +22,7 @@ def _convergence(page, figs):
     title = "Is the sampling converged?"
     if table is None:
         return ("<section id='convergence'><h2>" + _e(title) + "</h2><p class='missing'>No convergence.csv in this "
-                "folder (written by an older dihedra): run <code>dihedra track</code> again, or in Python "
+                "folder (written by an older dihedra): run <code>dihedra convergence DIR</code>, or in Python "
                 "<code>dihedra.convergence(dihedra.load_results(DIR)).save(DIR)</code>.</p></section>")
     info = read_optional_json(folder, "convergence.json") or {}
     params = info.get("parameters", {})
