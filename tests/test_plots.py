@@ -252,6 +252,19 @@ def test_profile_in_kt_converts_the_scan_with_the_temperature():
     assert kt_kj_mol(300.0) == pytest.approx(2.4943, abs=1e-4)
 
 
+def test_a_profile_without_errors_draws_no_band_and_says_so():
+    # a single frame leaves every error empty (nothing to resample): no band is drawn, and the legend
+    # says there is none instead of promising "± 1 s.e." (common practice: no error bar without an error)
+    prof = profile_table()
+    prof["free_energy_err_kj_mol"] = np.nan
+    ax = figures.plot_profile(prof, get_scheme("anti-gauche"), "T", ax=new_ax())
+    assert not [c for c in ax.collections if isinstance(c, PolyCollection)]
+    legend = {t.get_text() for t in ax.get_legend().get_texts()} - {""}
+    assert legend == {"sampled", "no error band: one frame", "unsampled"}
+    assert not figures.profiles.has_profile_errors(prof, "T") and figures.profiles.has_profile_errors(profile_table(),
+                                                                                                      "T")
+
+
 def test_profile_of_an_unknown_name_is_a_clear_error():
     with pytest.raises(DihedraError, match="no histogram profile of 'X'"):
         figures.plot_profile(profile_table(), get_scheme("anti-gauche"), "X", ax=new_ax())
@@ -776,3 +789,4 @@ def test_thin_raster_groups_share_one_label():
     assert ticks == [249.5, 502.0]
     wide = [("phi", 0, 9), ("psi", 10, 19)]  # groups high enough keep their own labels
     assert _joined_labels(ax, wide, ["φ", "ψ"], n_rows=20) == ([4.5, 14.5], ["φ", "ψ"])
+

@@ -496,3 +496,88 @@ def test_a_single_frame_has_no_state_free_energy_errors():
     assert sfe["population"].notna().all()
     assert sfe["population_err"].isna().all()
     assert sfe.loc[sfe["state"] != sfe["reference_state"], "free_energy_err_kj_mol"].isna().all()
+
+
+@pytest.fixture(scope="module")
+def rna_single(tmp_path_factory):
+    """MDAnalysisTests' RNA (PDB 1k5i, CHARMM36): a single structure, its nucleic-acid backbone tracked."""
+    from MDAnalysisTests.datafiles import RNA_PDB, RNA_PSF
+
+    out = str(tmp_path_factory.mktemp("rna") / "rna")
+    track(RNA_PSF, [RNA_PDB], torsions="nucleic-backbone", temperature_k=300.0, keep_angles=True, out=out)
+    return load_results(out)
+
+
+def test_a_single_structure_has_no_profile_errors(rna_single, capsys):
+    # one structure is one frame, which fills one block: every resample that holds it holds the same
+    # data, and the 8 residues of one structure are not 8 independent samples of the run's time
+    # (common practice: no spread can be estimated from a single sample). No bin, kernel point or state
+    # free energy has an error, the header claims no bootstrap, and the notice says why.
+    from dihedra.cli import main
+
+    pset = free_energy_profiles(rna_single, n_bootstrap=40)
+    sampled = pset.profiles["sampled"].astype(bool)
+    assert sampled.sum() > 100
+    assert pset.profiles.loc[sampled, "free_energy_err_kj_mol"].isna().all()   # histogram and kernel rows
+    assert pset.state_free_energies["free_energy_err_kj_mol"].isna().all()
+    assert pset.state_free_energies["population_err"].isna().all()
+    assert pset.settings["n_blocks_with_samples"] == 1
+    assert [n for n in pset.notices if n.startswith(f"all {len(rna_single.torsion_set.labels) + 28} profile(s) "
+                                                    "have no errors")]
+    assert main(["profile", rna_single.folder, "--bootstrap", "40", "--overwrite"]) == 0
+    out = capsys.readouterr().out
+    header = out.splitlines()[0]
+    assert "no errors" in header and "bootstrap" not in header
+    assert "dG vs g+ = 0.00 ± n/a" in out   # (the reference state too: no error, not a measured 0)
+    written = pd.read_csv(os.path.join(rna_single.folder, "profiles.csv"))
+    assert written.loc[written["sampled"], "free_energy_err_kj_mol"].isna().all()
+
+
+def test_minima_and_barriers_of_a_profile_without_errors_have_none():
+    # a profile whose samples lie in one block (its only resample is the profile itself, so minima and
+    # barriers are found) gives them no errors either, while the same counts in two blocks do (common
+    # practice: a bootstrap needs at least two blocks to resample)
+    from dihedra.analysis.profiles.features import _features_stack
+    from dihedra.numerics.density import _histogram_stack
+
+    centres = np.arange(72) * 5.0 - 177.5
+    counts = np.round(400 * np.exp(-threefold_energy(centres) / KT)).astype(float)   # three wells, sampled
+    one = _histogram_stack(counts[None, None, :], np.ones((20, 1)), KT, 5.0)
+    minima, barriers = _features_stack(one, KT)
+    assert len(minima["row"]) == 3 and len(barriers["row"]) == 3
+    for table in (minima, barriers):
+        for name in [f for f in table if "_err_" in f]:
+            assert np.isnan(table[name]).all(), name
+    assert np.isnan(one.free_energy_err_kj_mol).all()
+    halves = np.stack([np.floor(counts / 2), np.ceil(counts / 2)])[:, None, :]
+    two = _histogram_stack(halves, bootstrap_multiplicities([0, 0], 20, np.random.default_rng(1)), KT, 5.0)
+    minima, _ = _features_stack(two, KT)
+    assert np.isfinite(two.free_energy_err_kj_mol[two.sampled]).all()
+    assert np.isfinite(minima["free_energy_err_kj_mol"]).all()
+
+
+@pytest.mark.parametrize("n_frames", [2, 3])
+def test_errors_of_a_few_frames_are_said_to_be_rough(n_frames):
+    # two or three frames fill two or three blocks: a bootstrap spread can be computed, but the
+    # standard deviation of k values is itself uncertain by sqrt(1 - c4^2) / c4, c4 =
+    # sqrt(2 / (k - 1)) Gamma(k / 2) / Gamma((k - 1) / 2) for normal values (the bias constant of
+    # the sample standard deviation, common practice; scipy.special.gamma): the notice's
+    # 1 / sqrt(2 (k - 1)) is within 10 % of it, and the header calls the errors rough
+    import MDAnalysis as mda
+    from scipy.special import gamma
+
+    import dihedra
+    from dihedra.analysis.profiles.estimation import error_source
+
+    u = mda.Universe(dihedra.example_path("hexane.pdb"), dihedra.example_path("hexane.xtc"))
+    ts = dihedra.TorsionStates(u.atoms, torsions="rotatable", scheme="anti-gauche").run(stop=n_frames)
+    pset = free_energy_profiles(ts, temperature_k=298.15, per_torsion=False, n_bootstrap=40)
+    sampled = pset.profiles["sampled"].astype(bool)
+    assert np.isfinite(pset.profiles.loc[sampled, "free_energy_err_kj_mol"]).all()
+    assert pset.settings["n_blocks_with_samples"] == n_frames
+    rough = [n for n in pset.notices if f"bootstrap over only {n_frames} blocks" in n]
+    assert rough and "rough" in rough[0]
+    stated = float(re.search(r"(\d+)% for", rough[0]).group(1)) / 100
+    c4 = np.sqrt(2 / (n_frames - 1)) * gamma(n_frames / 2) / gamma((n_frames - 1) / 2)
+    assert stated == pytest.approx(np.sqrt(1 - c4 ** 2) / c4, rel=0.1)
+    assert error_source(pset.settings).endswith(f"of only {n_frames} blocks with samples (rough)")

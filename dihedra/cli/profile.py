@@ -3,6 +3,7 @@
 import os
 
 from ..errors import DihedraError
+from ..analysis.profiles.estimation import error_source
 from ..analysis.profiles import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                                  PROFILE_ENERGY_UNITS, check_estimate_options, convert_energy_columns,
                                  free_energy_profiles, unit_suffix)
@@ -89,11 +90,8 @@ PER_TORSION_LIMIT = 2000
 def report_profiles(pset, unit, max_types=20):
     s = pset.settings
     sfx = unit_suffix(unit)
-    errors = (f"errors from {s['n_bootstrap']} {s.get('resamples_brief', 'block-bootstrap resamples')}"
-              if "n_type_resamples" not in s else
-              f"errors of the types from the windows' own bootstrap ({s['n_type_resamples']} resamples)")
     print(f"free-energy profiles at {pset.temperature_k:g} K (kT = {s['kt_kj_mol']:.3f} kJ/mol), "
-          f"{s['bin_width_deg']:g}-degree bins, {errors}; energies in {unit}")
+          f"{s['bin_width_deg']:g}-degree bins, {error_source(s)}; energies in {unit}")
     minima = convert_energy_columns(pset.minima[pset.minima["torsion"] == ""], unit, pset.temperature_k)
     barriers = convert_energy_columns(pset.barriers[pset.barriers["torsion"] == ""], unit, pset.temperature_k)
     dg = convert_energy_columns(pset.state_free_energies[pset.state_free_energies["torsion"] == ""], unit,

@@ -14,7 +14,8 @@ Arrays in, arrays out; no results folders, no tables. The profiles of a tracking
 * **errors** -- a block bootstrap: blocks drawn with replacement within each replica; the error of
   a histogram bin never below the counting floor kT sqrt(1/n - 1/N) (:func:`counting_error_floor`),
   a kernel point never below its own, n the samples within its bandwidth
-  (:func:`kernel_counting_floor`).
+  (:func:`kernel_counting_floor`); a profile whose samples lie in fewer than
+  :data:`MIN_BOOTSTRAP_BLOCKS` blocks (a single frame) has no errors (NaN).
 
 Stacks of torsions or types are handled at once (one array operation over the stack).
 
@@ -34,6 +35,24 @@ import numpy as np
 #: of the Fourier transform, about 1e-16 of the largest value, would otherwise decide whether a
 #: resample without data near a point enters its error, and with what free energy).
 KERNEL_FLOOR = 1e-9
+#: A profile's errors need samples in at least this many blocks: a single block (a single frame, or
+#: a replica of a few frames that fill one block) is the same in every resample that holds it, so a
+#: bootstrap has nothing to resample and the counting floor would treat the torsions of one
+#: structure as independent samples; such a profile has no errors (NaN).
+MIN_BOOTSTRAP_BLOCKS = 2
+
+
+def blocks_with_samples(block_counts):
+    """The blocks that hold samples of each row of a stack: ``block_counts`` (n_blocks, m, ...) -> (m,).
+
+    >>> blocks_with_samples(np.array([[[1, 0]], [[0, 0]], [[0, 2]]]))
+    array([2])
+    """
+    counts = np.asarray(block_counts)
+    held = counts.reshape(counts.shape[:2] + (-1,)).sum(axis=-1) > 0
+    return held.sum(axis=0)
+
+
 def rebin(hist, factor):
     """Sum ``factor`` neighbouring bins along the last axis."""
     hist = np.asarray(hist)
@@ -254,7 +273,8 @@ def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0, ratio=None)
     error of a sampled bin is the larger of the bootstrap spread and the counting floor
     (:func:`counting_error_floor`, effective samples ``count_scale`` per count: a scalar or one
     per row), the spread raised for a short run by ``ratio`` (one per row; see
-    :func:`short_run_spread`).
+    :func:`short_run_spread`). A row whose samples lie in fewer than :data:`MIN_BOOTSTRAP_BLOCKS`
+    blocks has no errors and no floors (NaN): there is nothing to resample.
     """
     block_counts = np.asarray(block_counts, dtype=float)
     counts = block_counts.sum(axis=0)
@@ -266,6 +286,8 @@ def _histogram_stack(block_counts, mult, kt, width, count_scale=1.0, ratio=None)
         err, factor = short_run_spread(err, floor, ratio)
         boot_free = stretch_resamples(boot_free, factor)
     err = np.where(counts > 0, np.fmax(err, floor), err)
+    alone = (blocks_with_samples(block_counts) < MIN_BOOTSTRAP_BLOCKS)[:, None]   # (no bootstrap: no error)
+    err, floor = np.where(alone, np.nan, err), np.where(alone, np.nan, floor)
     return Profile1D(angle_deg=bin_centres(counts.shape[-1]), samples=counts, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
                      sampled=counts > 0, boot_free_energy=boot_free, boot_valid_fraction=frac,
@@ -344,7 +366,8 @@ def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_sca
 
     Smoothing is linear, so the resamples are the resampled sums of the smoothed blocks. The error
     of a sampled point is at least its counting floor (:func:`kernel_counting_floor`); ``ratio``
-    raises the spread for a short run (:func:`short_run_spread`).
+    raises the spread for a short run (:func:`short_run_spread`); a row with samples in fewer than
+    :data:`MIN_BOOTSTRAP_BLOCKS` blocks has no errors (NaN).
     """
     bws, smooth, sampled, smooth_blocks = _kernel_setup(fine_block_counts, bandwidths, fine_width)
     density, free = free_energy_from_counts(smooth, fine_width, kt)
@@ -356,6 +379,7 @@ def _kernel_stack(fine_block_counts, mult, kt, bandwidths, fine_width, count_sca
         err, factor = short_run_spread(err, floor, ratio)
         bfree = stretch_resamples(bfree, factor)
     err = np.where(sampled & (smooth > 0), np.fmax(err, floor), err)
+    err = np.where((blocks_with_samples(fine_block_counts) < MIN_BOOTSTRAP_BLOCKS)[:, None], np.nan, err)
     return Profile1D(angle_deg=bin_centres(smooth.shape[-1]), samples=smooth, density_per_deg=density,
                      free_energy_kj_mol=free - _row_min(free)[:, None], free_energy_err_kj_mol=err,
                      sampled=sampled & (smooth > 0), boot_free_energy=bfree, boot_valid_fraction=frac,

@@ -380,6 +380,10 @@ def _barrier_rows(stack, arcs, boot, lows):
 def _features_stack(stack, kt):
     """Minima and barriers of a stack of histogram profiles (see :func:`profile_features`).
 
+    A profile without any error (no sampled bin has one: its samples lie in fewer than two blocks,
+    :data:`~dihedra.numerics.density.MIN_BOOTSTRAP_BLOCKS`) gives its minima and barriers no errors
+    either (NaN), whatever its resamples (all alike) say.
+
     Returns
     -------
     minima, barriers : dict of ndarrays
@@ -387,8 +391,14 @@ def _features_stack(stack, kt):
         of :data:`MINIMUM_FIELDS` / :data:`BARRIER_FIELDS`, profile by profile in angle order.
     """
     free = np.atleast_2d(stack.free_energy_kj_mol)
-    arcs = _feature_arcs(free, stack.free_energy_err_kj_mol, kt,
-                         np.atleast_2d(stack.boot_valid_fraction) >= MIN_RESAMPLED_FRACTION)
+    err = np.atleast_2d(stack.free_energy_err_kj_mol)
+    arcs = _feature_arcs(free, err, kt, np.atleast_2d(stack.boot_valid_fraction) >= MIN_RESAMPLED_FRACTION)
     boot = stack.boot_free_energy.reshape(free.shape + (-1,))
     minima, lows = _minimum_rows(stack, arcs, boot)
-    return minima, _barrier_rows(stack, arcs, boot, lows)
+    barriers = _barrier_rows(stack, arcs, boot, lows)
+    no_error = ~np.isfinite(np.where(np.atleast_2d(stack.sampled), err, np.nan)).any(axis=1)
+    if no_error.any():
+        for table in (minima, barriers):
+            for name in [f for f in table if "_err_" in f]:
+                table[name] = np.where(no_error[table["row"]], np.nan, table[name])
+    return minima, barriers

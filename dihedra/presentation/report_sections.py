@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import pandas as pd
 
+from ..analysis.profiles.estimation import error_source
 from ..io.tables import read_optional_json, read_optional_table as read_optional, read_optional_text
 from .figures import state_colours
 from .report_html import (MAX_ROWS, _callout, _e, _figures_html, _fmt, _inline_list, _kelvin, _kv, _missing, _pm,
@@ -175,8 +176,8 @@ def _profiles(page, figs):
     parts = ["<section id='profiles'><h2>Free-energy profiles</h2>"]
     unit = info.get("energy_unit", "kJ/mol")
     parts.append(f"<p class='lead'>F(φ) = −kT ln p(φ) at {_kelvin(info.get('temperature_k'))} K (kT = "
-                 f"{_fmt(info.get('kt_kj_mol'))} kJ/mol), {_fmt(info.get('bin_width_deg'))}-degree bins, errors "
-                 f"from a block bootstrap ({_e(info.get('n_bootstrap'))} resamples); energies in {_e(unit)}.</p>")
+                 f"{_fmt(info.get('kt_kj_mol'))} kJ/mol), {_fmt(info.get('bin_width_deg'))}-degree bins, "
+                 f"{_e(error_source(info))}; energies in {_e(unit)}.</p>")
     parts.append(_callout("Cautions", info.get("cautions", []), "caution"))
     parts.append(page.which("minima.csv", "barriers.csv", "state_free_energies.csv"))
     suffix = {"kJ/mol": "kj_mol", "kcal/mol": "kcal_mol", "kT": "kt"}.get(unit, "kj_mol")

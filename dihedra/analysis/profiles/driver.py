@@ -34,10 +34,10 @@ from ...units import canonical_energy_unit, check_temperature, from_kj_mol, kt_k
 from .estimation import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED,
                          _bandwidths, _histogram_stack, _kernel_columns, _kernel_profiles, _kernel_stack,
                          _profiles_from_blocks, _unstack, bootstrap_multiplicities, check_bin_width,
-                         check_estimate_options, effective_count_scale, effective_samples, rebin,
+                         check_estimate_options, effective_count_scale, effective_samples, error_blocks, rebin,
                          short_run_ratio_map, stack_ratios)
-from .features import (MIN_DEPTH_KT, MIN_DEPTH_SIGMA, _state_free_energy_stack, state_blocks, type_notices,
-                       with_spread_between_torsions)
+from .features import (MIN_DEPTH_KT, MIN_DEPTH_SIGMA, _state_free_energy_stack, profile_notices, state_blocks,
+                       type_notices, with_spread_between_torsions)
 from .maps import check_pairs, pair_profiles
 from .resampled import (has_resamples, resampled_effective_samples, resampled_settings, resampled_type_stacks,
                         windows_error_notices)
@@ -121,7 +121,8 @@ _CAUTIONS = [
     "Bins with sampled = False were never visited; their free energy is unknown, not zero or infinite.",
     "Errors come from a block bootstrap over 16 blocks per replica, never below the counting error of a "
     "histogram bin (kT sqrt(1/n - 1/N) for n of N effective samples); with few transitions per block "
-    "they underestimate the true uncertainty.",
+    "they underestimate the true uncertainty. A profile whose samples lie in fewer than two blocks (a single "
+    "frame) has no errors (empty); from fewer than 8 blocks they are rough.",
 ]
 
 
@@ -435,6 +436,7 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
         for bws, rows in _ordered_map(functools.partial(_torsion_stack, s=s, codes=codes), spans, _THREADS):
             tables.add(rows)
             bandwidths.append(bws)
+    n_error_blocks, block_notices = error_blocks(s.hist, members, labels if per_torsion else None)
     s.hist = None   # (the fine histograms are done with: their memory serves the tables)
     profiles, minima, barriers, state_dg = tables.frames(order, labels, s.scheme.labels)
     if len(s.scheme.coded_parts()) > 1 and len(state_dg):   # a set of schemes: each type's own states
@@ -443,10 +445,10 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     state_dg = with_spread_between_torsions(state_dg, getattr(result, "populations_by_type", None), s.kt,
                                             [labels[k - 1] for k in s.alone[0]])
     names = [("", t) for t in order] + (list(zip(labels, result.torsion_set.types)) if per_torsion else [])
-    settings = _settings(s, temperature_k, n_bootstrap, seed, names, np.concatenate(bandwidths))
+    settings = _settings(s, temperature_k, n_bootstrap, seed, names, np.concatenate(bandwidths), n_error_blocks)
     pset = ProfileSet(temperature_k=temperature_k, profiles=profiles, minima=minima, barriers=barriers,
                       state_free_energies=state_dg, by_type=by_type, settings=settings,
-                      notices=early + _profile_notices(by_type, barriers))
+                      notices=early + block_notices + profile_notices(by_type, barriers))
     pset.notices.extend(type_notices(result))
     if pairs:
         frames = []
@@ -459,13 +461,14 @@ def free_energy_profiles(result, *, temperature_k=None, bin_width_deg=DEFAULT_BI
     return pset
 
 
-def _settings(s, temperature_k, n_bootstrap, seed, names, bandwidths):
-    """The settings of a :class:`ProfileSet`; ``names`` (torsion, type) of each bandwidth."""
+def _settings(s, temperature_k, n_bootstrap, seed, names, bandwidths, n_error_blocks):
+    """The settings of a :class:`ProfileSet`; ``names`` (torsion, type) of each bandwidth; ``n_error_blocks``
+    the blocks with samples of the best-sampled type (below 2 no profile has an error: :func:`error_blocks`)."""
     return {
         "temperature_k": temperature_k, "kt_kj_mol": s.kt, "bin_width_deg": float(s.bin_width_deg),
         "fine_bin_width_deg": s.fine, "n_bootstrap": n_bootstrap, "seed": seed,
         "bootstrap": "blocks resampled with replacement within each replica",
-        "n_histogram_blocks": int(s.n_blocks),
+        "n_histogram_blocks": int(s.n_blocks), "n_blocks_with_samples": int(n_error_blocks),
         "bandwidth_rule": ("given" if s.bandwidth_deg is not None else
                            "0.9 * within-arc standard deviation * n_effective^(-1/5), at least the fine bin"),
         "bandwidths_deg": [{"type": typ, "torsion": tor, "bandwidth_deg": float(bw)}
@@ -481,21 +484,3 @@ def _settings(s, temperature_k, n_bootstrap, seed, names, bandwidths):
         "scheme": s.scheme.name,
         **({} if s.resampled is None else resampled_settings(s.resampled, s.bandwidth_deg)),
     }
-
-
-def _profile_notices(by_type, barriers):
-    """Notices on unvisited bins and unsampled barriers of the pooled profiles."""
-    notices = []
-    unvisited = {t: int((~h.sampled).sum()) for t, (h, _) in by_type.items()}
-    n_bins = sum(unvisited.values())
-    if n_bins:
-        n_types = sum(1 for v in unvisited.values() if v)
-        notices.append(f"{n_bins} histogram bins of {n_types} type(s) were never visited: they are "
-                       "marked sampled = False with no free energy (the data give only a lower bound there).")
-    pooled_barriers = barriers[barriers["torsion"] == ""]
-    n_unsampled = int((~pooled_barriers["sampled"].astype(bool)).sum())
-    if n_unsampled:
-        notices.append(f"{n_unsampled} barrier(s) of the pooled profiles cross unsampled "
-                       "regions; their height is unknown (higher than any sampled value).")
-    return notices
-

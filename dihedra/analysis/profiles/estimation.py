@@ -33,7 +33,10 @@ blocks empty, and the bootstrap spread of such a bin collapses. In a run of few 
 the blocks are correlated and the bootstrap sees only a fraction r of the correlated variance: the
 part of each bin's variance above its counting floor is divided by r, r from the span of the
 type's state populations (:func:`short_run_ratios`,
-:func:`~dihedra.numerics.density.short_run_spread`).
+:func:`~dihedra.numerics.density.short_run_spread`). A profile whose samples lie in fewer than two
+blocks (a single frame) has no errors at all (NaN, an empty cell): one block is the
+same in every resample, and the counting floor would count the torsions of one structure as
+independent samples (:data:`~dihedra.numerics.density.MIN_BOOTSTRAP_BLOCKS`).
 
 Every estimate works on a *stack* of torsions or types at once (one array operation over the
 stack: the block bootstrap as one matrix product, free energies and their spread, kernel smoothing
@@ -54,10 +57,11 @@ import numpy as np
 
 from ...errors import DihedraError
 # the pure numerical pieces live in numerics (the state scheme ``basins`` uses them too)
-from ...numerics.density import (KERNEL_FLOOR, Profile1D, _circular_deviation_deg, _circular_reach,  # noqa: F401
+from ...numerics.density import (KERNEL_FLOOR, MIN_BOOTSTRAP_BLOCKS, Profile1D,  # noqa: F401
+                                 _circular_deviation_deg, _circular_reach,
                                  _histogram_stack, _kernel_setup, _kernel_stack, _resampled_free_energy,
                                  _row_min, _spread_last, _unstack, _von_mises_transform, bin_centres,
-                                 bootstrap_multiplicities, bootstrap_spread, counting_error_floor,
+                                 blocks_with_samples, bootstrap_multiplicities, bootstrap_spread, counting_error_floor,
                                  default_bandwidths_deg, effective_samples, free_energy_from_counts,
                                  kernel_counting_floor, rebin, short_run_spread, von_mises_smooth)
 
@@ -198,6 +202,7 @@ def _kernel_columns(fine_block_counts, mult, kt, bandwidths, fine_width, count_s
     if ratio is not None:
         err = short_run_spread(err, floor, ratio)[0]
     err = np.where(ok, np.fmax(err, floor), np.nan)
+    err = np.where((blocks_with_samples(fine_block_counts) < MIN_BOOTSTRAP_BLOCKS)[:, None], np.nan, err)
     return bws, smooth, density, free - _row_min(free)[:, None], err, ok
 
 
@@ -275,3 +280,62 @@ def _bandwidths(bandwidth_deg, fine_counts, scheme, n_effective, fine):
     if bandwidth_deg is not None:
         return np.full(len(fine_counts), float(bandwidth_deg))
     return default_bandwidths_deg(fine_counts, scheme, np.asarray(n_effective, dtype=float), fine)
+
+
+def error_blocks(fine_block_counts, members, labels=None):
+    """The blocks behind the errors of every profile and what a reader must know of them.
+
+    ``fine_block_counts`` (n_blocks, n_torsions, n_fine) are the block histograms of the run,
+    ``members`` {type: torsion positions} the types and ``labels`` the torsions when they are
+    profiled too. Returns the number of blocks with samples of the best-sampled type (the settings
+    record it; fewer than :data:`MIN_BOOTSTRAP_BLOCKS`: no profile has an error) and the notices:
+    the profiles without errors (samples in a single block: a single frame), and those
+    whose errors come from fewer than :data:`~dihedra.numerics.statistics.MIN_BLOCKS` blocks, where
+    the spread of k resampled blocks is itself uncertain by about 1 / sqrt(2 (k - 1)) (30-70 %; the
+    standard error of a standard deviation from k values, common practice), so those errors are rough.
+    """
+    from ...errors import name_list
+    from ...numerics.statistics import MIN_BLOCKS
+
+    held = np.asarray(fine_block_counts).sum(axis=-1) > 0   # (n_blocks, n_torsions)
+    by_type = {t: int(held[:, idx].any(axis=1).sum()) for t, idx in members.items()}
+    rows = list(by_type.items())
+    if labels is not None:
+        rows += list(zip(labels, held.sum(axis=0).tolist()))
+    none = [name for name, k in rows if k < MIN_BOOTSTRAP_BLOCKS]
+    few = [(name, k) for name, k in rows if MIN_BOOTSTRAP_BLOCKS <= k < MIN_BLOCKS]
+    notices = []
+    if none:
+        notices.append(f"{'all ' if len(none) == len(rows) else ''}{len(none)} profile(s) have no errors "
+                       f"({name_list(none, 4)}): their samples lie in fewer "
+                       f"than {MIN_BOOTSTRAP_BLOCKS} of the blocks of frames that the bootstrap resamples (a single "
+                       "frame), so there is nothing to resample; their bins, minima, barriers and state "
+                       "free energies have empty errors (n/a), and no error band is drawn.")
+    if few:
+        low, high = min(k for _, k in few), max(k for _, k in few)
+        span = str(low) if low == high else f"{low} to {high}"
+        notices.append(f"the errors of {len(few)} profile(s) ({name_list([n for n, _ in few], 4)}) come from a "
+                       f"bootstrap over only {span} blocks with samples (fewer than "
+                       f"{MIN_BLOCKS}: a run of few frames): they are rough, an error from k blocks being itself "
+                       f"uncertain by about 1/sqrt(2 (k - 1)), {1 / np.sqrt(2 * (low - 1)):.0%} for {low}.")
+    return max(by_type.values(), default=0), notices
+
+
+def error_source(settings):
+    """Where the errors of a profile set come from (``settings``: those of the set, or profiles.json),
+    in words: the block bootstrap, rough from fewer than 8 blocks with samples, or none (the samples
+    lie in one block: a single frame).
+
+    >>> error_source({"n_bootstrap": 200, "n_blocks_with_samples": 1})[:9]
+    'no errors'
+    """
+    from ...numerics.statistics import MIN_BLOCKS
+
+    if "n_type_resamples" in settings:   # (a folder of umbrella windows: the windows' own bootstrap)
+        return f"errors of the types from the windows' own bootstrap ({settings['n_type_resamples']} resamples)"
+    held = settings.get("n_blocks_with_samples")
+    if held is not None and held < MIN_BOOTSTRAP_BLOCKS:
+        return "no errors (the samples lie in one block of frames, a single frame: nothing to resample)"
+    rough = f" of only {held} blocks with samples (rough)" if held is not None and held < MIN_BLOCKS else ""
+    brief = settings.get("resamples_brief", "block-bootstrap resamples")
+    return f"errors from {settings['n_bootstrap']} {brief}{rough}"

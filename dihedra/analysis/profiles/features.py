@@ -221,7 +221,9 @@ def with_spread_between_torsions(state_dg, populations_by_type, kt, torsions=())
         pd.MultiIndex.from_arrays([tor, typ, reference])).to_numpy(dtype=float)
     is_ref = state == reference
     with np.errstate(invalid="ignore", divide="ignore"):
-        delta = np.where(is_ref, 0.0, kt * np.sqrt((se / p) ** 2 + (se_ref / p_ref) ** 2))
+        # (the reference against itself: 0, but no error where its population has none, a single frame)
+        delta = np.where(is_ref, np.where(np.isfinite(se_ref), 0.0, np.nan),
+                         kt * np.sqrt((se / p) ** 2 + (se_ref / p_ref) ** 2))
     for column, floor in (("population_err", se), ("free_energy_err_kj_mol", np.where(p > 0, delta, np.nan))):
         values = out[column].to_numpy(dtype=float).copy()
         values[rows] = np.where(np.isfinite(floor), np.fmax(values[rows], floor), values[rows])
@@ -267,3 +269,21 @@ def mixture_notice(populations_by_type):
             "mixture, and their error bars cover sampling in time only; their state populations and free "
             "energies include the spread between the torsions. The profiles of single torsions (per_torsion=True, "
             "--per-torsion on the command line) show how they differ.")
+
+
+def profile_notices(by_type, barriers):
+    """Notices on unvisited bins and unsampled barriers of the pooled profiles."""
+    notices = []
+    unvisited = {t: int((~h.sampled).sum()) for t, (h, _) in by_type.items()}
+    n_bins = sum(unvisited.values())
+    if n_bins:
+        n_types = sum(1 for v in unvisited.values() if v)
+        notices.append(f"{n_bins} histogram bins of {n_types} type(s) were never visited: they are "
+                       "marked sampled = False with no free energy (the data give only a lower bound there).")
+    pooled_barriers = barriers[barriers["torsion"] == ""]
+    n_unsampled = int((~pooled_barriers["sampled"].astype(bool)).sum())
+    if n_unsampled:
+        notices.append(f"{n_unsampled} barrier(s) of the pooled profiles cross unsampled "
+                       "regions; their height is unknown (higher than any sampled value).")
+    return notices
+

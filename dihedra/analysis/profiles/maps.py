@@ -16,7 +16,7 @@ import pandas as pd
 from ...errors import DihedraError
 from ...trajectory.result import as_result
 from ...units import kt_kj_mol
-from .estimation import (DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED, bin_centres,
+from .estimation import (DEFAULT_BOOTSTRAP, DEFAULT_PAIR_BIN_WIDTH_DEG, DEFAULT_SEED, MIN_BOOTSTRAP_BLOCKS, bin_centres,
                          bootstrap_multiplicities, bootstrap_spread, check_bin_width, counting_error_floor,
                          effective_count_scale, free_energy_from_counts)
 
@@ -70,7 +70,8 @@ def pair_profiles(result, a, b, *, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN
     ``a`` and ``b`` are two torsion labels, or two torsion types (then every group with one
     torsion of each type contributes, pooled). Errors by the same block bootstrap as 1-D profiles,
     with the frames of each replica cut into the same number of blocks as the histograms, and never
-    below the counting floor of the bin (:func:`~dihedra.numerics.density.counting_error_floor`).
+    below the counting floor of the bin (:func:`~dihedra.numerics.density.counting_error_floor`);
+    no errors at all (NaN) when fewer than two blocks hold samples (a single frame).
 
     Parameters
     ----------
@@ -109,6 +110,8 @@ def pair_profiles(result, a, b, *, temperature_k, bin_width_deg=DEFAULT_PAIR_BIN
     _, bfree = free_energy_from_counts(mult @ hist, bin_width_deg ** 2, kt)
     err, _ = bootstrap_spread(bfree)
     err = np.where(counts > 0, np.fmax(err, counting_error_floor(counts, kt, effective_count_scale(result))), err)
+    if (hist.sum(axis=1) > 0).sum() < MIN_BOOTSTRAP_BLOCKS:   # (one block with samples: nothing to resample)
+        err = np.full_like(err, np.nan)
     if np.isfinite(free).any():
         free = free - np.nanmin(free)
     centres = bin_centres(nb)

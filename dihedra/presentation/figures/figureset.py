@@ -23,7 +23,7 @@ from .couplings import plot_couplings
 from .kinetics import plot_lifetimes, plot_transition_diagram
 from .maps import MAP_CEILING_KJ_MOL, plot_free_energy_map
 from .populations import comparison_populations, plot_populations
-from .profiles import plot_profile
+from .profiles import has_profile_errors, plot_profile
 from .ramachandran import plot_ramachandran_regions
 from .refit import has_target, plot_correction, plot_refit_populations, plot_refit_profile
 from .choice import CHOICE_RULE, informative_types, representative_torsion
@@ -227,8 +227,10 @@ def _add_profiles(b, chosen_types):
         fig = _figure(b.width_in, 2.2)
         plot_profile(profiles, b.scheme, t, scan=scan, ax=fig.add_subplot())
         compared = scan is not None and "type" in scan.columns and t in set(scan["type"])
+        band = ("with its bootstrap error band" if has_profile_errors(profiles, t) else
+                "without an error band (its samples lie in a single frame: nothing to resample)")
         b.add(f"profile_{safe_name(t)}",
-              f"Free-energy profile of {t} (histogram estimate) with its bootstrap error band, state sectors "
+              f"Free-energy profile of {t} (histogram estimate) {band}, state sectors "
               f"shaded, unsampled bins hatched" + ("; dashed: the static scan's prediction, aligned." if compared
                                                    else "."), fig, "profile")
 

@@ -10,6 +10,10 @@ from .common import (_angle_axis, _as_bool, _energy_suffix, _new_axes, _note, _s
 from .style import INK, NEUTRAL, _darker, state_colours
 
 
+#: The legend's words for a profile without errors (its samples lie in one block: a single frame).
+NO_ERROR_BAND = "no error band: one frame"
+
+
 def select_profile(profiles, name, estimate="histogram"):
     """Rows of one profile of ``profiles.csv``: a type (pooled rows) or a torsion label."""
     torsion = profiles["torsion"].astype(object).where(profiles["torsion"].notna(), "").astype(str)
@@ -22,6 +26,14 @@ def select_profile(profiles, name, estimate="histogram"):
         raise DihedraError(f"profiles.csv has no {estimate} profile of {name!r}; give a type (e.g. "
                            f"{', '.join(known)}) or a torsion label.")
     return rows.sort_values("angle_deg")
+
+
+def has_profile_errors(profiles, name, estimate="histogram"):
+    """Whether the profile ``name`` of ``profiles.csv`` has an error in some sampled bin (none: its
+    samples lie in one block of frames, a single frame)."""
+    rows = select_profile(profiles, name, estimate)
+    _, err_col, _ = energy_columns(rows)
+    return bool(err_col) and bool(np.isfinite(rows.loc[_as_bool(rows["sampled"]), err_col].to_numpy(float)).any())
 
 
 def _runs(mask):
@@ -54,7 +66,9 @@ def _label_sectors_top(ax, scheme, min_width_deg=25.0):
 def plot_profile(profiles, scheme, name, estimate="histogram", scan=None, ax=None, legend=True,
                  temperature_k=None):
     """Figure 3: a free-energy profile with its error band, state sectors shaded, unsampled regions
-    marked, and the static scan overlaid when the folder holds a comparison.
+    marked, and the static scan overlaid when the folder holds a comparison. A profile without errors
+    (a single frame: empty errors in ``profiles.csv``) has no band, and its legend says so
+    (:data:`NO_ERROR_BAND`).
 
     Parameters
     ----------
@@ -88,17 +102,20 @@ def plot_profile(profiles, scheme, name, estimate="histogram", scan=None, ax=Non
     x = rows["angle_deg"].to_numpy(float)
     sampled = _as_bool(rows["sampled"])
     f = np.where(sampled, rows[col].to_numpy(float), np.nan)
-    err = np.nan_to_num(rows[err_col].to_numpy(float)) if err_col else np.zeros_like(f)
+    has_errors = has_profile_errors(rows, name, estimate)   # (none: a single frame, nothing to resample)
+    err = np.nan_to_num(rows[err_col].to_numpy(float)) if has_errors else np.zeros_like(f)
     _shade_sectors(ax, scheme)
     width = float(np.median(np.diff(x))) if len(x) > 1 else 360.0
     step = "mid" if estimate == "histogram" else None
-    ax.fill_between(x, f - err, f + err, step=step, color=NEUTRAL, alpha=0.4, lw=0, zorder=2)
+    if has_errors:
+        ax.fill_between(x, f - err, f + err, step=step, color=NEUTRAL, alpha=0.4, lw=0, zorder=2)
     if step:
         ax.step(x, f, where="mid", color=INK, lw=1.0, zorder=3)
     else:
         ax.plot(x, f, color=INK, lw=1.0, zorder=3)
     handles = [Line2D([], [], color=INK, lw=1.0, label="sampled"),
-               Patch(facecolor=NEUTRAL, alpha=0.4, edgecolor="none", label="± 1 s.e.")]
+               Patch(facecolor=NEUTRAL, alpha=0.4, edgecolor="none", label="± 1 s.e.") if has_errors else
+               Patch(facecolor="none", edgecolor="none", label=NO_ERROR_BAND)]
     top = float(np.nanmax(f + err)) if np.isfinite(f).any() else 1.0
     top = _draw_scan(ax, scan, name, col, x, f, temperature_k, handles, top)
     _hatch_unsampled(ax, x, sampled, width, handles)
