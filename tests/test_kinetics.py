@@ -507,6 +507,41 @@ def test_clear_errors(two_replicas, tmp_path, capsys):
         folder_kinetics(folder, types=["nope"])
 
 
+def test_a_single_structure_has_no_kinetics(tmp_path, capsys):
+    # common practice: a transition is a change of state between consecutive frames and a dwell time a
+    # run of frames, so replicas of one frame each hold neither: refused in plain words, before the
+    # time step is asked for (also by the command line, which exits 2)
+    top, first = four_site(tmp_path, [180.0], "first")
+    _, second = four_site(tmp_path, [62.0], "second")
+    out = str(tmp_path / "single")
+    track(top, [first, second], torsions="rotatable", out=out)
+    with pytest.raises(DihedraError, match="kinetics needs at least 2 frames in a replica"):
+        folder_kinetics(out)
+    assert main(["kinetics", out, "--dt-ps", "10"]) == 2
+    err = capsys.readouterr().err
+    assert "every replica of" in err and "has 1 frame (2 replica(s)): a single structure has no kinetics" in err
+
+
+def test_a_run_without_transitions_and_a_run_of_few_frames_say_so(two_replicas, tmp_path):
+    # two replicas of 120 frames that never change state: every rate is an upper limit and every
+    # dwell time a lower bound, said plainly; four frames with one transition keep the lag of one
+    # frame (the shortest there is) although it is more than 0.1 of the run, and say how little it rests on
+    folder, _ = two_replicas
+    still = folder_kinetics(folder, lags=[1], n_bootstrap=0)
+    assert still.transitions["count"].sum() == 0
+    assert [n for n in still.notices if n.startswith("no torsion changed state between two frames in 240 frame(s) "
+                                                     "of 2 replica(s)")]
+    top, traj = four_site(tmp_path, [180.0, 178.0, 62.0, 60.0], "short")
+    out = str(tmp_path / "short")
+    track(top, [traj], torsions="rotatable", keep_angles=True, out=out)
+    short = folder_kinetics(out, n_bootstrap=0)
+    assert short.parameters["lags_frames"] == [1]
+    assert short.transitions.loc[short.transitions["level"] == "torsion", "count"].sum() == 1
+    assert [n for n in short.notices if n.startswith("the lag of 1 frame (1 ps) is kept") and "(4 frames)" in n
+            and "3 pair(s) of frames" in n]
+    assert not [n for n in short.notices if n.startswith("no torsion changed state")]
+
+
 def test_custom_scheme_and_file_output(tmp_path):
     # a custom two-state TOML scheme (trans 150..-150, other elsewhere) works with core sets; files are
     # written under their final names only (common practice: temporary name, then os.replace).

@@ -131,6 +131,35 @@ def frame_interval_ps(summary, dt_ps=None):
     return values[0], source
 
 
+#: Fewest frames a replica needs for kinetics: transitions and dwell times are counted between
+#: consecutive frames.
+MIN_KINETICS_FRAMES = 2
+
+
+def check_frames(summary, folder=None):
+    """Refuse a run in which no replica has :data:`MIN_KINETICS_FRAMES` frames (a single structure):
+    it has no pair of consecutive frames, so no transition and no dwell time can be seen."""
+    frames = [int(r.get("frames_analysed", 0)) for r in (summary or {}).get("replicas", [])]
+    if frames and max(frames) < MIN_KINETICS_FRAMES:
+        where = f" of {folder}" if folder else ""
+        raise DihedraError(f"kinetics needs at least {MIN_KINETICS_FRAMES} frames in a replica, and many more to "
+                           "say much (transitions and dwell times are counted between consecutive frames); every "
+                           f"replica{where} has {max(frames)} frame ({len(frames)} replica(s)): a single structure "
+                           "has no kinetics; give a trajectory.")
+
+
+def _zero_transition_notice(tables, plan):
+    """A notice when no torsion changed state between consecutive frames anywhere in the run."""
+    tr = tables["transitions"]
+    seen = tr.loc[tr["level"] == "torsion", "count"].sum() if len(tr) else 0
+    if seen == 0:
+        plan.notices.append(f"no torsion changed state between two frames in {sum(plan.frames_per_rep)} frame(s) "
+                            f"of {len(plan.frames_per_rep)} replica(s): every rate is an upper limit, every dwell "
+                            "time a lower bound (the length of a replica), and a population 'from rates' of 1 only "
+                            "says that the torsions stayed where they started, not a measurement; the run is too "
+                            "short for kinetics.")
+
+
 def _duplicate_replicas(replicas):
     """Pairs (i, j) of replicas with the same SHA-256."""
     seen, out = {}, []
@@ -291,6 +320,7 @@ def _plan(result, assignment, core_margin_deg, lags_ps, lags, types, dt_ps, temp
     """Check the options against the result and fix the torsions, groups, lags and time step."""
     one_of("assignment", assignment, ASSIGNMENTS)
     scheme, summary = result.scheme, result.summary
+    check_frames(summary, result.folder)
     margin = check_core_margin(scheme, core_margin_deg) if assignment == "core" else None
     dt, dt_source = frame_interval_ps(summary, dt_ps)
     lags_req = lags_in_frames(lags_ps, lags, dt)
@@ -311,6 +341,11 @@ def _plan(result, assignment, core_margin_deg, lags_ps, lags, types, dt_ps, temp
                        f"were left out: longer than {MAX_LAG_FRACTION:g} of the shortest replica "
                        f"({min(frames_per_rep)} frames), a Markov model at such a lag rests on too few lag windows to "
                        "say anything.")
+    if 1 in lags_used and MAX_LAG_FRACTION * min(frames_per_rep) < 1:
+        notices.append(f"the lag of 1 frame ({dt:g} ps) is kept although it is longer than {MAX_LAG_FRACTION:g} of "
+                       f"the shortest replica ({min(frames_per_rep)} frames): it is the shortest lag there is, but "
+                       f"its transition counts and Markov model rest on {max(0, min(frames_per_rep) - 1)} pair(s) of "
+                       "frames per torsion in that replica: rough at best.")
     duplicates = _duplicate_replicas(summary["replicas"])
     if duplicates:
         notices.append(f"replicas {duplicates[0][0]} and {duplicates[0][1]} are the same file (same SHA-256): "
@@ -519,6 +554,7 @@ def state_kinetics(result, *, assignment="core", core_margin_deg=DEFAULT_CORE_MA
     parts = _torsion_parts(plan, t_tally, state_labels, rng, torsion_bootstrap)
     parts += _conformer_parts(plan, c_tally, scheme, pool, conf_types, rng)
     tables = _tables(parts)
+    _zero_transition_notice(tables, plan)
     _weak_number_notices(tables, plan)
     _spacing_notices(tables, plan, result)
     _barrier_notices(plan, tables["transitions"], scheme, barriers, profile_temperature_k)
