@@ -548,3 +548,27 @@ def test_the_command_line_gives_types_of_one_verdict_one_line(tmp_path, capsys):
     line = [x for x in out.splitlines() if x.startswith(f"  {len(frozen)} types (")]
     assert len(line) == 1 and "no torsion of this type changed state" in line[0]
     assert out.count("the run holds about that many") <= 1
+
+
+def test_the_start_of_a_few_frames_is_not_called_equilibrated(tmp_path):
+    # equilibration detection (Chodera, J. Chem. Theory Comput. 12 (2016) 1799) cuts a start only with
+    # at least 20 effective samples after it, so in replicas of at most 20 frames it can flag nothing:
+    # the start of a single structure (MDAnalysisTests' RNA, PDB 1k5i) or of 20 frames is "not testable"
+    # with t0 empty, never "equilibrated"; 21 frames make the test possible (the control)
+    from MDAnalysisTests.datafiles import RNA_PDB, RNA_PSF
+
+    dihedra.track(RNA_PSF, [RNA_PDB], torsions="nucleic-backbone", out=str(tmp_path / "rna"))
+    table = pd.read_csv(tmp_path / "rna" / "convergence.csv")
+    assert (table["start"] == "not testable").all() and table["t0_ps"].isna().all() and table["t0_frames"].isna().all()
+    assert (table["verdict"] == "not converged: one frame per replica, nothing to judge convergence by").all()
+    assert pd.read_csv(tmp_path / "rna" / "convergence_by_state.csv")["t0_ps"].isna().all()
+    rng = np.random.default_rng(3)
+    states = jump(21, 6, [0.6, 0.2, 0.2], 0.3, rng)
+    for n_frames, testable in ((20, False), (21, True)):
+        coords = chain_coordinates(angles_of(states[:n_frames], rng))
+        top, traj = write_system(str(tmp_path), coords, stem=f"few{n_frames}")
+        conv = dihedra.convergence(dihedra.track(top, [traj], torsions="rotatable", scheme="anti-gauche"))
+        row = conv.convergence.iloc[0]
+        assert (row["start"] in ("equilibrated", "drifts")) is testable, (n_frames, row["start"])
+        assert ("start not testable (every replica has at most 20 frames)" in row["verdict"]) is not testable
+        assert bool(np.isfinite(row["t0_ps"])) is testable

@@ -790,3 +790,27 @@ def test_thin_raster_groups_share_one_label():
     wide = [("phi", 0, 9), ("psi", 10, 19)]  # groups high enough keep their own labels
     assert _joined_labels(ax, wide, ["φ", "ψ"], n_rows=20) == ([4.5, 14.5], ["φ", "ψ"])
 
+
+def test_a_single_structure_gets_no_time_figures_and_no_error_band(tmp_path):
+    # one frame per replica (a PDB file): nothing to draw against time, no transition and no dwell time
+    # (kinetics refuses such a folder), no error band: skipped with a note, or drawn and labelled so
+    from conftest import chain_coordinates, write_system
+
+    import dihedra
+
+    top, traj = write_system(str(tmp_path), chain_coordinates(np.array([[180.0, 178.0, 62.0, -65.0]])), stem="one")
+    out = str(tmp_path / "one")
+    dihedra.track(top, [traj], torsions="rotatable", scheme="anti-gauche", temperature_k=300.0, out=out)
+    dihedra.free_energy_profiles(dihedra.load_results(out)).save(out)
+    with figures.style():
+        fset = figures.figure_set(out)
+    kinds = [i.kind for i in fset.items]
+    assert "convergence" not in kinds and "transitions" not in kinds and "profile" in kinds
+    assert any(s.startswith("convergence: one frame per replica") for s in fset.skipped)
+    assert any(s.startswith("transition diagrams and lifetimes: one frame per replica") for s in fset.skipped)
+    profile = [i for i in fset.items if i.kind == "profile"][0]
+    assert "without an error band" in profile.caption and "bootstrap" not in profile.caption
+    # drawn anyway, the convergence figure promises no band: the final populations have no error
+    ax = figures.plot_convergence(load_results(out), "BUT:C1-C2-C3-C4", ax=new_ax())
+    note = " ".join(ax.get_title(loc="left").split())
+    assert "thin lines: final population (no error)" in note and "± 1 s.e." not in note

@@ -377,3 +377,25 @@ def test_every_csv_dihedra_writes_reads_back_with_plain_pandas(full_folder, prot
             names.append(name)
     assert {"populations.csv", "transitions.csv", "couplings_karplus-1959.csv", "comparison.csv",
             "schemes.csv"} <= set(names)
+
+
+def test_report_of_a_single_structure_claims_no_statistics(tmp_path):
+    # MDAnalysisTests' RNA (PDB 1k5i): one structure. Its start is not called equilibrated, the profiles
+    # claim no bootstrap, the kinetics section says a single structure has none (instead of asking for
+    # 'dihedra kinetics', which refuses it), and only advice that applies is given
+    from MDAnalysisTests.datafiles import RNA_PDB, RNA_PSF
+
+    out = str(tmp_path / "rna")
+    assert main(["track", RNA_PSF, RNA_PDB, "--torsions", "nucleic-backbone", "--temperature", "300",
+                 "--out", out]) == 0
+    assert main(["profile", out, "--types-only", "--bootstrap", "20"]) == 0
+    text = open(write_report(out, figures=False), encoding="utf-8").read()
+    conv = section(text, "convergence")
+    starts = {r["unequilibrated until"] for r in table_rows(conv)}
+    assert starts == {"not testable (too few frames)"}
+    assert "--discard auto" not in conv and "a start that cannot be tested" in conv
+    profiles = html.unescape(section(text, "profiles"))
+    assert "no errors (the samples lie in one block of frames, a single frame" in profiles
+    assert "from a block bootstrap (" not in profiles
+    kinetics = section(text, "kinetics")
+    assert "a single structure has no transitions or dwell times" in kinetics and "dihedra kinetics DIR" not in kinetics

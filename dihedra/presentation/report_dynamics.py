@@ -8,7 +8,7 @@ from __future__ import annotations
 import pandas as pd
 
 from ..io.tables import matching_files, read_optional_json, read_optional_table as read_optional
-from .figures.common import _as_bool
+from .figures.common import _as_bool, single_frames
 from .report_html import MAX_ROWS, _callout, _e, _figures_html, _fmt, _kv, _missing, _pm, _table, _verdict
 from .rounding import format_plain, format_rate
 
@@ -61,7 +61,9 @@ def _convergence(page, figs):
     rows = shown.copy()
     rows["verdict"] = [_verdict("converged" if v == "converged" else "not converged") for v in shown["verdict"]]
     rows["replicas"] = [_verdict(v) if v in ("agree", "tension", "disagree") else _e(v) for v in shown["replicas"]]
-    rows["start"] = [f"{_fmt(t)} ps" if s == "drifts" else "equilibrated" for s, t in zip(shown["start"], shown["t0_ps"])]
+    rows["start"] = [f"{_fmt(t)} ps" if s == "drifts" else "not testable (too few frames)" if s == "not testable"
+                     else "equilibrated" for s, t in zip(shown["start"], shown["t0_ps"])]
+    untested = bool((table["start"] == "not testable").any())
     rows["population_err_max"] = [format_plain(x, 2) for x in shown["population_err_max"]]
     parts.append(_table(rows, ["type", "verdict", "start", "replicas", "population_err_max", "forecast"],
                         ["type", "verdict", "unequilibrated until", "replicas", "largest population error",
@@ -72,22 +74,38 @@ def _convergence(page, figs):
         parts.append("<h3>Why not converged</h3><ul class='note-list'>" + "".join(
             f"<li><b>{_e(t)}</b>: " + "; ".join(_e(r) for r in why.split("; ")) + ".</li>" for t, why in reasons)
             + "</ul>")
-        parts.append(_callout("What to do", [
-            "an unequilibrated start: track again with --discard auto (or a time), which drops it from every table",
-            "replicas that disagree: they sample different states; run them longer, or check that they simulate "
-            "the same system",
-            "a population error above the target: simulate for the time the forecast gives, or add replicas"]
-            + (["types that never changed state: only runs much longer than their dwell times, enhanced sampling, "
-                "or replicas started from other structures can tell their populations"] if frozen else []),
-            "caution"))
+        # (the advice that applies to the types not converged; a run of single structures gets its own)
+        parts.append(_callout("What to do", [text for applies, text in (
+            ((table["start"] == "drifts").any(), "an unequilibrated start: track again with --discard auto (or a "
+             "time), which drops it from every table"),
+            ((table["replicas"] == "disagree").any(), "replicas that disagree: they sample different states; run "
+             "them longer, or check that they simulate the same system"),
+            ((_number(table, "population_err_max") > _number(table, "target_error")).any(),
+             "a population error above the target: simulate for the time the forecast gives, or add replicas"),
+            ((_number(table, "n_effective") < 20).any(), "fewer than 20 effective samples: simulate longer (an error "
+             "bar from so few is itself uncertain)"),
+            (frozen, "types that never changed state: only runs much longer than their dwell times, enhanced "
+             "sampling, or replicas started from other structures can tell their populations"),
+            (untested, "a start that cannot be tested: a run of a few frames (or a single structure) says nothing "
+             "about convergence; simulate, and analyse the trajectory")) if applies], "caution"))
     parts.append(_figures_html(figs.get("convergence", [])))
     parts.append("</section>")
     return "".join(parts)
 
 
+def _number(table, column):
+    """A column of ``table`` as numbers (NaN where empty or missing: a folder of an older dihedra)."""
+    values = table[column] if column in table else pd.Series(float("nan"), index=table.index)
+    return pd.to_numeric(values, errors="coerce")
+
+
 def _kinetics(page, figs):
     folder = page.folder
     info = read_optional_json(folder, "kinetics.json")
+    if info is None and single_frames(page):
+        return ("<section id='kinetics'><h2>Kinetics</h2><p class='missing'>No kinetics: every replica has one "
+                "frame, and a single structure has no transitions or dwell times (kinetics needs a trajectory)."
+                "</p></section>")
     if info is None:
         return _missing("kinetics", "Kinetics", "kinetics", "dihedra kinetics DIR")
     parts = ["<section id='kinetics'><h2>Kinetics</h2>"]

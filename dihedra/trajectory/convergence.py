@@ -272,7 +272,14 @@ class _TypeSeries:
             for r in states:
                 r.update(population_err=np.nan, n_effective=np.nan, time_needed_ps=np.nan, dg_err_kj_mol=np.nan,
                          dg_time_needed_ps=np.nan)
-        start = _type_start(states)
+        # the start test flags a drift only with MIN_START_SAMPLES effective samples after t0: a replica
+        # of fewer time blocks than that (a single frame, a few frames) leaves it untestable (a scheme of
+        # one state is stationary by definition)
+        testable = one or any(len(p["valid"]) > MIN_START_SAMPLES for p in self.parts)
+        if not testable:
+            for r in states:
+                r.update(t0_ps=np.nan, t0_frames=np.nan, drift_z=np.nan, drift_shift_se=np.nan)
+        start = _type_start(states) if testable else dict(UNTESTABLE_START)
         replicas = _type_replicas(states, len(self.parts))
         sampled = [r for r in states if r["population"] > 0]
         worst = max(sampled, key=lambda r: r["population_err"]) if sampled and not self.frozen else None
@@ -431,6 +438,12 @@ def _span_of(part, rows):
     return float(first[0] * part["interval"]), float((first[-1] + frames[-1]) * part["interval"])
 
 
+#: The start of a type whose replicas are too short for the start test (at most MIN_START_SAMPLES
+#: time blocks each: a drift could not be flagged, so the start is not called equilibrated).
+UNTESTABLE_START = {"t0_ps": np.nan, "t0_frames": np.nan, "start": "not testable", "drift_z": np.nan,
+                    "drift_state": ""}
+
+
 def _type_start(states):
     """The start of a type: the latest unequilibrated start over its states (0 if none)."""
     drift = [r for r in states if r["drifts"]]
@@ -466,6 +479,8 @@ def _verdict(row, states, labels):
                        f"in, but for excursions of fewer than {MIN_EXCURSION_FRAMES} frames): its populations are "
                        "those of the starting structures, and their errors and the sampling still needed cannot be "
                        "estimated from it")
+    if row["start"] == "not testable":
+        reasons.append(f"start not testable (every replica has at most {MIN_START_SAMPLES} frames)")
     if row["start"] == "drifts":
         st = next(r for r in states if r["state"] == row["drift_state"])
         reasons.append(f"the first {human_time(row['t0_ps'])} are not equilibrated ({st['state']} "

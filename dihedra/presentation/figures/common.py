@@ -215,3 +215,10 @@ def _visible_len(text):
     """Approximate number of printed characters of a label with mathtext."""
     t = re.sub(r"\\[A-Za-z]+", "x", str(text))
     return len(re.sub(r"[${}^_]", "", t))
+
+
+def single_frames(result):
+    """Whether every replica of ``result`` (a result, or anything with its ``summary``) has at most one
+    frame: a single structure, with nothing to draw against time."""
+    frames = [int(r.get("frames_analysed", 0)) for r in (result.summary or {}).get("replicas", [])]
+    return bool(frames) and max(frames) <= 1

@@ -51,18 +51,20 @@ def plot_convergence(result, name, ax=None, legend=True, over_time=None):
     own = result.scheme.states_of_type(_type_of(result, name))   # a set of schemes: this type's states
     reps = _draw_running(ax, result, cols, info, scale, colours, own)
     marked = _draw_forward_backward(ax, result, name, over_time, scale if time_known else None, colours)
+    banded = False
     for row in final.itertuples(index=False):
         c = colours.get(row.state, NEUTRAL)
         p, e = float(row.population), float(row.population_err)
         if np.isfinite(e):
             ax.axhspan(p - e, p + e, color=c, alpha=0.25, lw=0, zorder=1)
+            banded = True
         ax.axhline(p, color=c, lw=0.5, alpha=0.9, zorder=1)
     ax.set_xlim(0, tmax * scale)
     ax.set_ylim(0, 1)
     ax.set_xlabel(_time_label(unit, time_known))
     ax.set_ylabel("running population")
     note = f"{name}. Lines: running population" + (" per replica" if len(reps) > 1 else "") + \
-        "; bands: final population ± 1 s.e." + \
+        ("; bands: final population ± 1 s.e." if banded else "; thin lines: final population (no error)") + \
         ("; ● forward (start to t), □ backward (t to end) ± 1 s.e." if marked else "")
     if legend:
         handles = [Line2D([], [], color=colours[s], lw=1.2, label=s) for s in result.scheme.labels if s in own]

@@ -27,7 +27,7 @@ from .profiles import has_profile_errors, plot_profile
 from .ramachandran import plot_ramachandran_regions
 from .refit import has_target, plot_correction, plot_refit_populations, plot_refit_profile
 from .choice import CHOICE_RULE, informative_types, representative_torsion
-from .common import _as_bool
+from .common import _as_bool, single_frames
 from .style import FORMATS, SINGLE_COLUMN_IN, _metadata, _width_in, style
 from .raster import plot_state_raster, read_state_raster
 from .timeseries import plot_angle_series, read_angle_series
@@ -289,6 +289,9 @@ def _add_kinetics(b, chosen_types):
     transitions = read_optional(b.folder, "transitions.csv")
     lifetimes = read_optional(b.folder, "lifetimes.csv")
     dwell = read_optional(b.folder, "dwell_survival.csv")
+    if single_frames(b.result):
+        b.skip("transition diagrams and lifetimes", "one frame per replica: no transition and no dwell time to draw")
+        return
     if transitions is None or lifetimes is None:
         b.skip("transition diagrams and lifetimes", "no transitions.csv / lifetimes.csv (run 'dihedra kinetics')")
         return
@@ -319,6 +322,10 @@ def _add_convergence(b, chosen_types):
     if "window" in kind:
         b.skip("convergence", f"a folder of {kind}: every window is biased, so its running populations are not "
                               "the unbiased ones")
+        return
+    if single_frames(b.result):
+        b.skip("convergence", "one frame per replica: no running population to draw against time, and no error "
+                              "to draw around it")
         return
     for t in chosen_types:
         fig = _figure(b.width_in, 2.2)
