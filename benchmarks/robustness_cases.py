@@ -112,6 +112,13 @@ def _file_cases(c):
         write(d, "w.csv", "weight\n" + "1\n" * 40)
     c.append(Case("weights with too few rows", TRACK + ["--weights", "w.csv"], setup=weights_short))
 
+    def one_frame(fx, d):   # a folder of a single frame: kinetics has no pair of frames to count
+        copy_in(fx, d, *BASE)
+        from dihedra import track
+        track(os.path.join(d, "hexane.pdb"), [os.path.join(d, "hexane.xtc")], torsions="rotatable", stop=1,
+              out=os.path.join(d, "one"))
+    c.append(Case("kinetics of a single frame", ["kinetics", "one", "--dt-ps", "10"], setup=one_frame))
+
     def scan_dup(fx, d):
         copy_in(fx, d, "res")
         write(d, "scan.csv", "angle_deg,energy_kj_mol\n" + "".join(

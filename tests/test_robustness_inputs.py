@@ -97,6 +97,15 @@ def test_hostile_analysis_options_are_refused(work, capsys, argv, fragment):
     assert snapshot(work / "res") == before
 
 
+def test_kinetics_of_a_single_frame_is_refused(work, capsys):
+    # one frame has no pair of consecutive frames: no transition, no dwell time (common practice);
+    # one error line, even with a time step given, and the folder stays as it was
+    track("hexane.pdb", ["hexane.xtc"], torsions="rotatable", stop=1, out="one")
+    before = snapshot(work / "one")
+    refused(capsys, ["kinetics", "one", "--dt-ps", "10"], "at least 2 frames in a replica", "1 frame (1 replica(s))")
+    assert snapshot(work / "one") == before
+
+
 @pytest.mark.parametrize("extra, fragment", [(["--workers", "0"], "workers"), (["--step", "-1"], "step"),
                                              (["--bootstrap", "0"], "at least 20")])
 def test_hostile_window_options_are_refused_before_the_first_window(work, capsys, extra, fragment):
