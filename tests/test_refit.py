@@ -195,7 +195,15 @@ def test_a_less_certain_target_gives_larger_errors_of_the_terms(gas):
     sure, loose = (fit_torsion_correction(gas, populations_target(err), n_bootstrap=30) for err in (0.001, 0.05))
     for n in (1, 2):   # the terms the populations determine (anti against gauche)
         assert loose.terms.loc[n - 1, "k_err_kj_mol"] >= 5 * sure.terms.loc[n - 1, "k_err_kj_mol"]
-    assert np.all(loose.populations["reweighted_population_err"] >= 5 * sure.populations["reweighted_population_err"])
+    # the errors of the run alone (0.41 when gauche+ against gauche- still pulled on the cosine fit)
+    assert sure.terms.loc[0, "k_err_kj_mol"] < 0.1
+    loose_err, sure_err = (f.populations.set_index("state")["reweighted_population_err"] for f in (loose, sure))
+    assert loose_err["anti"] >= 5 * sure_err["anti"]
+    # a cosine series moves gauche+ and gauche- alike: the run's own split between them (sampled to
+    # about 0.004) stays in their errors however certain the target, so they grow less
+    for state in ("gauche+", "gauche-"):
+        assert loose_err[state] >= 3 * sure_err[state]
+        assert sure_err[state] <= 2 * sure.populations.set_index("state").loc[state, "sampled_population_err"]
 
 
 def test_a_noisy_target_of_the_runs_own_potential_gives_terms_consistent_with_zero(gas):
@@ -249,6 +257,124 @@ def test_a_draw_of_the_target_moves_every_value_by_its_error():
     assert np.std(draws, axis=0) == pytest.approx(np.full(12, 0.3), rel=0.1)
     exact = profile_set(samples, 30.0, KT, read_target(table.assign(free_energy_err_kj_mol=0.0)))
     assert np.array_equal(exact.drawn_target(rng), exact.target)
+
+
+# ------------------------------------------------------------------------------------------------
+# Cosine terms by default; which combinations the target determines
+# ------------------------------------------------------------------------------------------------
+
+def anti_only_target(err=0.01):
+    """The exact Boltzmann anti population of V_RB at 400 K (scipy quad) alone: it says nothing about
+    how the rest splits between gauche+ and gauche-."""
+    exact = boltzmann_populations(rb_energy)
+    return pd.DataFrame({"type": [TYPE], "state": ["anti"], "population": [exact["anti"]], "population_err": [err]})
+
+
+@pytest.fixture(scope="module")
+def anti_fits(gas):
+    return {sym: fit_torsion_correction(gas, anti_only_target(), symmetric=sym, n_bootstrap=30)
+            for sym in (True, False)}
+
+
+def test_the_default_correction_is_a_cosine_series_that_keeps_gauche_plus_and_minus_equal(anti_fits):
+    # butane is achiral: V(phi) = V(-phi) for V_RB and the extra term alike, so gauche+ and gauche-
+    # are equally likely (scipy quad: 0.17396 each at 298 K); the default fit is a cosine series
+    # (phases 0 or 180 deg, common practice for the torsion terms of AMBER, CHARMM and OPLS) and the
+    # reweighted gauche+ and gauche- stay equal within their errors, each (1 - anti) / 2
+    fit = anti_fits[True]
+    assert fit.parameters["symmetric"] is True
+    assert (fit.terms["sin_kj_mol"] == 0).all() and set(fit.terms["phase_deg"].round(9) % 180.0) == {0.0}
+    pops = fit.populations.set_index("state")
+    plus, minus = pops.loc["gauche+"], pops.loc["gauche-"]
+    spread = np.hypot(plus["reweighted_population_err"], minus["reweighted_population_err"])
+    assert abs(plus["reweighted_population"] - minus["reweighted_population"]) <= 2 * spread
+    half = (1 - boltzmann_populations(rb_energy)["anti"]) / 2
+    for row in (plus, minus):
+        assert abs(row["reweighted_population"] - half) <= 3 * row["reweighted_population_err"] + 0.003
+    # the anti population was reached (its target error 0.01)
+    assert abs(pops.loc["anti", "reweighted_population"] - pops.loc["anti", "target_population"]) < 0.01
+    assert not [n for n in fit.notices if "differs between phi and -phi" in n]
+
+
+def test_what_the_target_sets_and_what_the_regularisation_alone_sets_is_said(anti_fits, gas):
+    # an anti population sets one combination: the correction's difference between the anti and the
+    # gauche wells, dV(180) - dV(+-60) = -1.5 a1 + 1.5 a2 + 0 a3 (cos 60 = 1/2, cos 120 = -1/2,
+    # cos 180 = -1: trigonometric identities), so about (-a1 + a2) / sqrt(2); a3 (cos 3 phi = -1 in
+    # all three wells) and, with sine terms, every b_n (the split between phi and -phi) are left
+    # to the regularisation
+    from dihedra.analysis.refit.notices import determined_notice
+
+    cos_only, with_sines = anti_fits[True], anti_fits[False]
+    note = [n for n in cos_only.notices if "the data determine about" in n]
+    assert len(note) == 1 and "the target sets" in note[0] and f"a3 of {TYPE}" in note[0]
+    assert "set mainly by the regularisation" in note[0] and "moves anti of" in note[0]
+    note = [n for n in with_sines.notices if "the data determine about" in n]
+    assert len(note) == 1 and f"b1, b2, a3, b3 of {TYPE}" in note[0] and "gauche+ against gauche-" in note[0]
+    # the combination itself, from the model's singular vectors
+    from dihedra.analysis.refit.observables import population_set
+    from dihedra.analysis.refit.samples import molecule_ids, read_samples
+
+    positions = list(range(len(gas.torsion_set.labels)))
+    samples = read_samples(gas, positions, molecule_ids(gas, positions, "molecule", None, []), "molecule")
+    pops = population_set(samples, gas.scheme, read_target(anti_only_target()))
+    model = ReweightingModel(features(samples, 3, True), samples.sample_weights(), [pops], KT)
+    sigmas = [np.where(pops.fitted, 0.01, 1.0)]
+    share, vt, _ = model.directions(np.zeros(3), 1.0, sigmas)
+    assert share[0] > 0.5 and share[1:].max() < 0.1
+    assert abs(vt[0] @ np.array([-1.0, 1.0, 0.0]) / np.sqrt(2)) > 0.9
+    assert sum(share) == pytest.approx(model.effective_parameters(np.zeros(3), 1.0, sigmas))
+    # the console says the determined count points at the notes, and rates only the frames
+    summary = cos_only.summary.iloc[0]
+    text = determined_notice(model, {"theta": np.zeros(3), "lam": 1.0, "sigmas": sigmas}, [TYPE], 3, True,
+                             "populations", {"effective_parameters": float(sum(share))})
+    assert "a3 of " + TYPE in text and summary["effective_parameters"] < 2.0
+
+
+def test_the_mirror_test_of_a_sampled_profile_is_calibrated_and_finds_an_asymmetric_one():
+    # i.i.d. angles: uniform (mirror-symmetric) or from p ~ 1 + 0.5 sin(phi) (not); the chi-square
+    # over the mirror pairs of bins follows the chi-square distribution (scipy) for the symmetric one
+    from dihedra.analysis.profiles import bootstrap_multiplicities
+    from dihedra.analysis.refit.fit import sampled_errors
+    from dihedra.analysis.refit.notices import mirror_asymmetry
+
+    def stat(angles):
+        samples = synthetic_samples()
+        samples.angles = angles.astype(np.float32)
+        prof = profile_set(samples, 30.0, KT)
+        model = ReweightingModel(features(samples, 1), samples.sample_weights(), [prof], KT)
+        cell, replica = samples.cells(10)
+        boot = bootstrap_multiplicities(replica, 200, np.random.default_rng(0))
+        (name, chi_square, pairs, p), = mirror_asymmetry(model, sampled_errors(model, (b[cell] for b in boot)), 50)
+        return chi_square / pairs, p
+
+    rng = np.random.default_rng(5)
+    flat = [stat(rng.uniform(-180, 180, size=(40, 200))) for _ in range(6)]
+    assert 0.6 < np.mean([r for r, _ in flat]) < 1.5 and min(p for _, p in flat) > 1e-3
+    x = rng.uniform(-180, 180, size=40 * 200 * 3)
+    keep = rng.uniform(0, 1.5, size=x.size) < 1 + 0.5 * np.sin(np.radians(x))
+    _, p = stat(x[keep][:40 * 200].reshape(40, 200))
+    assert p < 1e-6
+
+
+def test_cli_fits_cosines_unless_sine_terms_are_asked_for(gas, tmp_path, capsys):
+    import shutil
+
+    folder = str(tmp_path / "results")
+    shutil.copytree(gas.folder, folder, ignore=shutil.ignore_patterns("refit*"))
+    target = tmp_path / "anti.csv"
+    anti_only_target().to_csv(target, index=False)
+    common = ["refit", folder, "--target", str(target), "--temperature", "400", "--bootstrap", "5",
+              "--regularisation", "0.1", "--overwrite"]
+    assert main(common) == 0
+    out = capsys.readouterr().out
+    assert (pd.read_csv(os.path.join(folder, "refit_fourier.csv"))["sin_kj_mol"] == 0).all()
+    assert "coefficients determined by the data; the regularisation sets the rest" in out
+    assert main(common + ["--sine-terms"]) == 0
+    capsys.readouterr()
+    assert (pd.read_csv(os.path.join(folder, "refit_fourier.csv"))["sin_kj_mol"] != 0).any()
+    assert json.load(open(os.path.join(folder, "refit.json")))["parameters"]["symmetric"] is False
+    assert main(common + ["--sine-terms", "--symmetric"]) == 2
+    assert "not allowed with argument" in capsys.readouterr().err
 
 
 # ------------------------------------------------------------------------------------------------
@@ -455,7 +581,9 @@ def test_types_that_are_one_force_field_term_are_fitted_as_one_and_openmm_applie
     path = tmp_path / "hexane_target.csv"
     pd.DataFrame([{"type": t, "state": s, "population": p, "population_err": 0.005}
                   for t in types for s, p in zip(["anti", "gauche+", "gauche-"], goal[t])]).to_csv(path, index=False)
-    fit = fit_torsion_correction(hexane, str(path), types=types, atom_classes=HEXANE_CLASSES, n_bootstrap=5)
+    # with sine terms (symmetric=False): the phases of OpenMM's terms are checked, not only 0 and 180
+    fit = fit_torsion_correction(hexane, str(path), types=types, atom_classes=HEXANE_CLASSES, n_bootstrap=5,
+                                 symmetric=False)
     assert fit.parameters["tied_types"] == [[types[0], types[2]]]
     assert any(n.startswith(f"{types[0]} and {types[2]} are one force-field term") for n in fit.notices)
     cols = ["n", "cos_kj_mol", "sin_kj_mol"]
@@ -544,15 +672,21 @@ def test_analytic_jacobian_equals_finite_differences():
     prof.target[:] = np.cos(np.radians(prof.rows["angle_deg"].to_numpy()))
     prof.target_err[:] = 0.1
     prof.fitted[:] = True
-    model = ReweightingModel(features(samples, 2), samples.sample_weights(), [pops, prof], KT)
     sig = [np.full(len(pops), 0.02), np.full(len(prof), 0.2)]
-    theta = np.array([0.3, -0.2, 0.5, 0.1])
-    _, jac = model._residuals(theta, None, sig, 0.1, True)
-    h = 1e-6
-    num = np.column_stack([(model._residuals(theta + h * e, None, sig, 0.1, False)[0]
-                            - model._residuals(theta - h * e, None, sig, 0.1, False)[0]) / (2 * h)
-                           for e in np.eye(4)])
-    assert np.allclose(jac, num, atol=1e-6)
+    for symmetric in (False, True):   # cosine-only: mirror pairs (gauche+/-, bins at +-phi) fitted by their sums
+        model = ReweightingModel(features(samples, 2, symmetric), samples.sample_weights(), [pops, prof], KT,
+                                 mirrored=symmetric)
+        theta = np.array([0.3, -0.2, 0.5, 0.1])[:model.n_params]
+        _, jac = model._residuals(theta, None, sig, 0.1, True)
+        h = 1e-6
+        num = np.column_stack([(model._residuals(theta + h * e, None, sig, 0.1, False)[0]
+                                - model._residuals(theta - h * e, None, sig, 0.1, False)[0]) / (2 * h)
+                               for e in np.eye(model.n_params)])
+        assert np.allclose(jac, num, atol=1e-6)
+    # the pairs: gauche+ with gauche-, anti its own image; the bin at +15 deg with the one at -15
+    assert pops.mirror.tolist() == [0, 2, 1]
+    centres = prof.rows["angle_deg"].to_numpy()
+    assert np.allclose(centres[prof.mirror], -centres)
 
 
 def test_kish_effective_sample_size():
@@ -688,12 +822,21 @@ def test_refit_step_keys_are_the_keyword_arguments_and_it_runs(gas, targets, tmp
     assert set(STEPS["refit"].keys) == expected
     toml = tmp_path / "a.toml"
     toml.write_text(f'out = "{gas.folder}"\nsteps = ["refit"]\n[refit]\ntarget = "{targets["populations"]}"\n'
-                    "n_bootstrap = 5\nterms = 2\n")
+                    "n_bootstrap = 5\nterms = 2\nsymmetric = false\n")
     if any(n.startswith("refit") for n in os.listdir(gas.folder)):   # an earlier test's fit: replaced when asked
         with pytest.raises(DihedraError, match="--overwrite"):
             run_pipeline(load_pipeline(str(toml)))
     run_pipeline(load_pipeline(str(toml), overwrite=True))
     assert pd.read_csv(os.path.join(gas.folder, "refit_terms.csv"))["n"].tolist() == [1, 2]
+    # symmetric = false: sine terms as well (the default is a cosine series)
+    assert json.load(open(os.path.join(gas.folder, "refit.json")))["parameters"]["symmetric"] is False
+    assert "sin_kj_mol" in pd.read_csv(os.path.join(gas.folder, "refit_fourier.csv"))
+    assert inspect.signature(fit_torsion_correction).parameters["symmetric"].default is True
+    toml.write_text(toml.read_text().replace("symmetric = false", 'symmetric = "no"'))
+    with pytest.raises(DihedraError, match="'symmetric' is a switch"):
+        load_pipeline(str(toml), overwrite=True)
+    with pytest.raises(DihedraError, match="symmetric must be true"):
+        fit_torsion_correction(gas, targets["populations"], symmetric="no")
 
 
 def test_figure_set_draws_the_refit_figure(profile_fit, gas, tmp_path):
@@ -759,26 +902,32 @@ def test_a_new_simulation_with_the_fitted_correction_moves_the_populations_to_th
     assert abs(anti - target) < 0.02 and abs(anti - target) < abs(before - target) / 4
 
 
-def test_sine_terms_are_named_and_a_symmetric_target_gives_none(gas, profile_fit, targets, tmp_path):
+def test_sine_terms_are_named_and_a_symmetric_target_gives_none(gas, targets, tmp_path):
     # the Ryckaert-Bellemans potential is even in phi (V(phi) = V(-phi): an achiral molecule), so a
-    # fit onto it needs no sine term; a target with 3 sin(phi) kJ/mol added is odd in part, and
-    # the sine terms that reach it are named with the advice to fit cosines alone where no chiral
-    # centre allows them
-    assert not [n for n in profile_fit.notices if "phases other than 0 and 180" in n]
+    # fit with sine terms onto it needs none; a target with 3 sin(phi) kJ/mol added is odd in part:
+    # the sine terms that reach it are named with the advice to fit cosines alone (the default)
+    # where no chiral centre allows them, and the default cosine-only fit cannot reach it and says so
+    even = fit_torsion_correction(gas, targets["profile"], symmetric=False, n_bootstrap=20)
+    assert not [n for n in even.notices if "phases other than 0 and 180" in n]
     grid = np.arange(-180.0, 180.01, 0.5)
     odd = tmp_path / "odd_profile.csv"
     pd.DataFrame({"angle_deg": grid, "free_energy_kj_mol": rb_energy(grid) + 3.0 * np.sin(np.radians(grid))}).to_csv(
         odd, index=False)
-    fit = fit_torsion_correction(gas, str(odd), n_bootstrap=20)
+    fit = fit_torsion_correction(gas, str(odd), symmetric=False, n_bootstrap=20)
     named = [n for n in fit.notices if "phases other than 0 and 180" in n]
-    assert len(named) == 1 and TYPE in named[0] and "--symmetric" in named[0]
+    assert len(named) == 1 and TYPE in named[0] and "without --sine-terms" in named[0]
     assert abs(fit.terms.set_index("n").loc[1, "sin_kj_mol"]) > 1.0
+    cosines = fit_torsion_correction(gas, str(odd), n_bootstrap=5)
+    assert (cosines.terms["sin_kj_mol"] == 0).all()
+    assert [n for n in cosines.notices if "does not reach the target" in n and "--sine-terms" in n]
+    # the run itself is mirror-symmetric: no notice that its sampled profile is not
+    assert not [n for n in cosines.notices if "differs between phi and -phi" in n]
 
 
 def test_a_cross_validated_strength_at_the_end_of_its_grid_is_named():
     # the grid's ends (1e-4 and 1): a score still falling there says the best may lie beyond it;
     # a strength inside the grid, or one given by the user (no cross-validation), is not named
-    from dihedra.analysis.refit.driver import _choice_notices
+    from dihedra.analysis.refit.notices import choice_notices as _choice_notices
     from dihedra.analysis.refit.fit import REGULARISATION_GRID
 
     grid = sorted(REGULARISATION_GRID)

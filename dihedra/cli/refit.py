@@ -13,7 +13,8 @@ def register(sub):
     p = sub.add_parser(
         "refit", help="fit a torsion correction that reweights the sampled ensemble onto a target",
         description="Fit, for the chosen torsion types together, a Fourier correction sum_n k_n [1 + cos(n phi - "
-                    "phase_n)] whose Boltzmann factor reweights the frames of a results folder (tracked with "
+                    "phase_n)] (phases 0 or 180 deg unless --sine-terms) whose Boltzmann factor reweights the frames "
+                    "of a results folder (tracked with "
                     "--keep-angles) onto a target: a free-energy profile (angle_deg, free_energy_kj_mol; or another "
                     "results folder), state populations (type, state, population[, population_err]) or measured 3J "
                     "couplings (torsion, J_hz, J_err_hz, with --relation); the kind is told from the columns. Ridge "
@@ -33,8 +34,14 @@ def register(sub):
     add_types_option(p, "torsion types to correct, fitted together (default: the types the target names)")
     p.add_argument("--terms", type=int, default=DEFAULT_TERMS, metavar="N",
                    help=f"Fourier terms n = 1..N (default {DEFAULT_TERMS}; at most 5 for a Ryckaert-Bellemans form)")
-    p.add_argument("--symmetric", action="store_true",
-                   help="only cosine terms (phases 0 or 180 deg), for types whose mirror images are equally likely")
+    shape = p.add_mutually_exclusive_group()
+    shape.add_argument("--sine-terms", dest="symmetric", action="store_false",
+                       help="fit sine terms as well (phases other than 0 and 180 deg), for types at a chiral centre "
+                            "or in a chiral environment, where V(phi) and V(-phi) may differ (default: cosine terms "
+                            "only, V(phi) = V(-phi), as for a torsion without a chiral centre)")
+    shape.add_argument("--symmetric", dest="symmetric", action="store_true",
+                       help="cosine terms only (phases 0 or 180 deg): the default, kept for earlier scripts")
+    p.set_defaults(symmetric=True)
     p.add_argument("--relation", metavar="NAME", default=None,
                    help="Karplus relation of a couplings target (a built-in name or a .toml file)")
     p.add_argument("--weights-per", choices=WEIGHTS_PER, default="molecule",
@@ -114,9 +121,11 @@ def report(fit):
     fraction = format_pm(s['effective_sample_fraction'], s['effective_sample_fraction_err'])
     print(f"effective sample fraction (Kish) {fraction}"
           f", largest weight {s['largest_weight_fraction']:.2g} of the total: {verdict}")
+    rest = ("; the regularisation sets the rest, see the notes"
+            if s["effective_parameters"] < s["n_coefficients"] - 0.5 else "")
     print(f"chi-square per observable {s['chi_square_sampled']:.2f} sampled -> {s['chi_square_reweighted']:.2f} "
           f"reweighted ({int(s['n_fitted_observables'])} fitted observables; {s['effective_parameters']:.1f} of "
-          f"{int(s['n_coefficients'])} coefficients determined by the data)")
+          f"{int(s['n_coefficients'])} coefficients determined by the data{rest})")
     cv = "cross-validated score {:.3g}".format(s["cv_score"]) if s["cv_score"] == s["cv_score"] else "given"
     print(f"regularisation {s['regularisation']:g} ({cv})")
     pops = fit.populations
@@ -126,3 +135,4 @@ def report(fit):
         sampled = format_pm(row.sampled_population, row.sampled_population_err)
         print(f"  {row.type} {row.state:<12} {target:>7}   {sampled}"
               f"   {format_pm(row.reweighted_population, row.reweighted_population_err)}")
+

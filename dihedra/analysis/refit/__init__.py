@@ -3,7 +3,8 @@ r"""A torsion correction that makes the sampled ensemble match a target, fitted 
 :func:`fit_torsion_correction` takes a tracking result that kept its angles and a target (a
 free-energy profile, state populations or measured 3J couplings), and fits, for the chosen torsion
 types together, a Fourier correction :math:`\Delta V(\phi) = \sum_n k_n [1 + \cos(n\phi -
-\delta_n)]` whose Boltzmann factor reweights the sampled frames onto the target (Cesari et al.,
+\delta_n)]` (a cosine series, phases 0 or 180 degrees, unless ``symmetric=False``) whose Boltzmann
+factor reweights the sampled frames onto the target (Cesari et al.,
 J. Chem. Theory Comput. 15 (2019) 3425; Pitera & Chodera, J. Chem. Theory Comput. 8 (2012)
 3445), with a ridge penalty whose strength is chosen by cross-validation over contiguous pieces of
 the trajectory, block-bootstrap errors, and Kish's effective sample size (Kish, Survey Sampling,
@@ -23,14 +24,18 @@ Modules
     The model, the regularised fit, cross-validation and the effective sample size.
 :mod:`~dihedra.analysis.refit.exports`
     Terms, curve, Ryckaert-Bellemans coefficients and the OpenMM fragment.
+:mod:`~dihedra.analysis.refit.notices`
+    What a fit can and cannot say: its limits, what the target determines, a sampled profile
+    that is not mirror-symmetric.
 :mod:`~dihedra.analysis.refit.driver`
     :func:`fit_torsion_correction` and :class:`RefitResult`.
 """
 
-from .driver import (CHI_SQUARE_POOR, DEFAULT_BIN_WIDTH_DEG, DEFAULT_BLOCKS, DEFAULT_BOOTSTRAP, DEFAULT_TERMS,
+from .driver import (DEFAULT_BIN_WIDTH_DEG, DEFAULT_BLOCKS, DEFAULT_BOOTSTRAP, DEFAULT_TERMS,
                      MIN_EFFECTIVE_FRACTION, MIN_SAMPLES, RefitResult, fit_torsion_correction)
 from .exports import openmm_xml, ryckaert_bellemans
 from .fit import DEFAULT_FOLDS, REGULARISATION_GRID, kish
+from .notices import CHI_SQUARE_POOR
 from .samples import WEIGHTS_PER
 from .targets import TARGET_KINDS, Target, read_target
 

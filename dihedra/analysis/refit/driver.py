@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from ...errors import DihedraError, name_list, one_of
+from ...errors import DihedraError, one_of
 from ...io.outputs import file_set, write_text
 from ...io.tables import json_ready, write_json, write_table
 from ...trajectory.result import as_result
@@ -26,6 +26,7 @@ from ..profiles import bootstrap_multiplicities, resolve_temperature
 from .exports import correction_table, force_field_terms, openmm_xml, rb_table, terms_table, torsion_atoms
 from .fit import (DEFAULT_FOLDS, REGULARISATION_GRID, ReweightingModel, combined_sigmas, cross_validate, features,
                   kish, nan_sd, sampled_errors)
+from .notices import choice_notices, determined_notice, limits, mirror_notice, tied_notice, untargeted
 from .observables import coupling_set, coupling_values, match_label, population_set, profile_set
 from .samples import WEIGHTS_PER, molecule_ids, read_samples
 from .targets import read_target
@@ -39,8 +40,6 @@ DEFAULT_SEED = 20240719
 MIN_EFFECTIVE_FRACTION = 0.1
 #: Fewest torsion-frames of the run in a bin or state for its target to be fitted.
 MIN_SAMPLES = 50
-#: Chi-square per observable above which the output says the target is not reached.
-CHI_SQUARE_POOR = 2.0
 
 METHOD = ("Delta V_t(phi) = sum_n a_n cos(n phi) + b_n sin(n phi) per type t; weights w_s ~ w0_s exp(-sum of "
           "Delta V over the sample's torsions / kT); minimise chi-square per observable + lambda sum "
@@ -201,8 +200,11 @@ def _number(name, value, ok, what):
 
 
 def check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
-                   regularisation):
+                   regularisation, symmetric=True):
     """Refuse option values of :func:`fit_torsion_correction` before any work (one sentence each)."""
+    if not isinstance(symmetric, (bool, np.bool_)):
+        raise DihedraError(f"symmetric must be true (cosine terms only, the default) or false (sine terms as well); "
+                           f"got {symmetric!r}.")
     _whole_number("terms", terms, 1, "(Fourier terms; 3 or 6 are usual)", high=12)
     _whole_number("n_bootstrap", n_bootstrap, 2, "resamples")
     _whole_number("n_blocks", n_blocks, 2, "blocks per replica")
@@ -293,54 +295,6 @@ def _bootstrap(model, lam, sigmas, theta, boot_cells, cell, rng):
     return np.array(thetas), per_set, np.array(fractions)
 
 
-def _limits(summary, tgt, n_params, notices):
-    """The honest limits of a fit, as notices."""
-    frac, threshold = summary["effective_sample_fraction"], summary["min_effective_fraction"]
-    if not summary["trustworthy"]:
-        notices.insert(0, f"NOT TRUSTWORTHY: the reweighting keeps an effective sample fraction of {frac:.3f} (below "
-                          f"{threshold:g}): the reweighted numbers rest on a few frames and are not a result: a new "
-                          "simulation with this correction is needed.")
-    if tgt.kind == "populations":
-        notices.append(f"populations alone under-determine the correction: they fix how much weight each state gets, "
-                       "not the shape of the profile within and between the states (barrier heights); the data "
-                       f"determine about {summary['effective_parameters']:.1f} of the {n_params} coefficients, the "
-                       "rest are held near zero by the regularisation. Fit a profile for the shape.")
-    elif summary["effective_parameters"] < n_params - 0.5:
-        notices.append(f"the data determine about {summary['effective_parameters']:.1f} of the {n_params} "
-                       "coefficients; the rest are held near zero by the regularisation (fewer terms would do).")
-    if tgt.kind == "profile" and (tgt.table["free_energy_err_kj_mol"] > 0).any():
-        notices.append("the errors of the target profile's points were drawn independently (a table of points has no "
-                       "covariance): errors that neighbouring points share (a profile from one calculation, e.g. "
-                       "umbrella windows) move the smooth terms together and are missing from the errors of the terms; "
-                       "the target's own state populations, with their errors, are a check.")
-    if summary["chi_square_reweighted"] > CHI_SQUARE_POOR:
-        notices.append(f"the reweighted ensemble does not reach the target within its errors (chi-square per "
-                       f"observable {summary['chi_square_reweighted']:.2f} after, {summary['chi_square_sampled']:.2f} "
-                       "before): more terms, more types, or a target outside what the run sampled.")
-
-
-def _choice_notices(fit, terms_frame, symmetric):
-    """Notices on choices a user may want to revisit: a cross-validated strength at the end of its
-    grid, and sine terms (a correction that differs between phi and -phi) fitted where a cosine
-    series would do for a molecule without a stereocentre."""
-    out = []
-    lam, grid = fit["lam"], sorted(REGULARISATION_GRID)
-    if len(fit["cv"]) and lam in (grid[0], grid[-1]):
-        side = "strongest" if lam == grid[-1] else "weakest"
-        out.append(f"cross-validation chose the {side} regularisation of its grid ({lam:g}): the best strength may lie "
-                   "beyond it; compare the cross-validation scores (refit_cross_validation.csv) or give "
-                   "--regularisation (regularisation=X) to try others.")
-    if not symmetric and len(terms_frame):
-        sine = terms_frame["sin_kj_mol"].abs()
-        clear = terms_frame[(sine > 2.0 * terms_frame["sin_err_kj_mol"].fillna(np.inf)) & (sine > 0.05)]
-        if len(clear):
-            names = name_list(list(dict.fromkeys(clear["type"])), 4)
-            out.append(f"the corrections of {names} have sine terms (phases other than 0 and 180 degrees): they make "
-                       "V(phi) differ from V(-phi), as only a chiral centre or a chiral environment can; for a "
-                       "molecule without one, fit cosines alone (--symmetric, symmetric=True).")
-    return out
-
-
 def _summary_row(model, samples, fit, min_effective_fraction):
     theta, lam, sigmas = fit["theta"], fit["lam"], fit["sigmas"]
     zero = np.zeros(model.n_params)
@@ -361,26 +315,7 @@ def _summary_row(model, samples, fit, min_effective_fraction):
             "regularisation": lam, "cv_score": float(chosen["cv_score"].iloc[0]) if len(chosen) else np.nan}
 
 
-def _untargeted(model, populations, type_names, groups, notices):
-    """A notice for corrected types without a target: their terms come only from their coupling to
-    the targeted ones, and their populations move with nothing to hold them (a type tied to a
-    targeted one shares its terms, and is not named)."""
-    targeted = set()
-    for s in model.sets:
-        if s.rows is not None and "type" in s.rows.columns:
-            targeted |= set(s.rows.loc[s.fitted, "type"])
-    held = {int(g) for t, g in zip(type_names, groups) if t in targeted}
-    for name in [t for t, g in zip(type_names, groups) if t not in targeted and int(g) not in held]:
-        rows = populations[populations["type"] == name]
-        shift = (rows["reweighted_population"] - rows["sampled_population"]).abs()
-        worst = rows.loc[shift.idxmax()]
-        notices.append(f"{name} has no target: its terms come only from its coupling to the targeted types (the "
-                       f"torsions of one molecule share a weight), and its {worst['state']} population moved from "
-                       f"{worst['sampled_population']:.3f} to {worst['reweighted_population']:.3f}; give it a target "
-                       "(e.g. its sampled populations, to hold them) or leave it out of the types.")
-
-
-def fit_torsion_correction(result, target, *, temperature_k=None, types=None, terms=DEFAULT_TERMS, symmetric=False,
+def fit_torsion_correction(result, target, *, temperature_k=None, types=None, terms=DEFAULT_TERMS, symmetric=True,
                            relation=None, weights_per="molecule", bin_width_deg=DEFAULT_BIN_WIDTH_DEG,
                            regularisation=None, n_folds=DEFAULT_FOLDS, n_bootstrap=DEFAULT_BOOTSTRAP,
                            n_blocks=DEFAULT_BLOCKS,
@@ -402,7 +337,11 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     terms : int
         Fourier terms N (n = 1 .. N).
     symmetric : bool
-        Only cosine terms (phases 0 or 180 deg), for types whose mirror images are equally likely.
+        True (the default): cosine terms only, phases 0 or 180 deg, a correction with
+        V(phi) = V(-phi), as a torsion type without a chiral centre needs (the torsion terms of
+        AMBER, CHARMM and OPLS are such series; common practice); a notice names the types whose
+        sampled profile is not mirror-symmetric. False: sine terms as well, for types at a chiral
+        centre or in a chiral environment, where V(phi) and V(-phi) may differ.
     relation : str or KarplusRelation, optional
         The Karplus relation of a couplings target.
     weights_per : {"molecule", "frame"}
@@ -435,7 +374,7 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     result = as_result(result)
     say = log or (lambda msg: None)
     check_options(terms, n_bootstrap, n_blocks, n_folds, min_samples, bin_width_deg, min_effective_fraction,
-                   regularisation)
+                   regularisation, symmetric)
     one_of("weights_per", weights_per, WEIGHTS_PER)
     early = []
     temperature_k = resolve_temperature(temperature_k, result.summary, say, early)
@@ -449,20 +388,24 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
     type_names = list(samples.type_names)     # the order of the coefficients: the types as the samples hold them
     atoms = torsion_atoms(result, type_names)
     groups, tied = force_field_terms(atoms, atom_classes, atom_types)
-    notices.extend(_tied_notice(names, pattern, "types" if atom_types else "classes") for names, pattern in tied)
+    notices.extend(tied_notice(names, pattern, "types" if atom_types else "classes") for names, pattern in tied)
     say(f"refit: {len(positions)} torsions of {len(type_names)} type(s), {samples.n_samples} samples")
     sets = _observable_sets(samples, result, positions, tgt, relation, kt, float(bin_width_deg), min_samples,
                             universe, notices)
     if not any(s.fitted.any() for s in sets):
         raise DihedraError("no target value lies where the run sampled (see the minimum of torsion-frames per bin or "
                            "state); nothing can be fitted by reweighting.")
-    model = ReweightingModel(features(samples, terms, symmetric, groups), samples.sample_weights(), sets, kt)
+    model = ReweightingModel(features(samples, terms, symmetric, groups), samples.sample_weights(), sets, kt,
+                             mirrored=symmetric)
     fit = _estimate(model, samples, regularisation, n_folds, n_bootstrap, n_blocks, seed, say)
     theta, boot_theta = _per_type(fit["theta"], groups), _per_type(fit["boot_theta"], groups)
     summary = _summary_row(model, samples, fit, min_effective_fraction)
     terms_frame = terms_table(theta, boot_theta, type_names, terms, symmetric)
-    _limits(summary, tgt, model.n_params, notices)
-    notices.extend(_choice_notices(fit, terms_frame, symmetric))
+    limits(summary, tgt, symmetric, notices)
+    group_names = [" = ".join(t for t, g in zip(type_names, groups) if g == k) for k in range(int(max(groups)) + 1)]
+    notices.extend(n for n in [determined_notice(model, fit, group_names, terms, symmetric, tgt.kind, summary)] if n)
+    notices.extend(mirror_notice(model, fit, min_samples) if symmetric else [])
+    notices.extend(choice_notices(fit, terms_frame, symmetric))
     rb = rb_table(terms_frame, symmetric, notices)
     xml = openmm_xml(terms_frame, atoms, atom_classes, atom_types,
                      _xml_comments(summary, tgt, temperature_k, rb is not None and not symmetric), notices)
@@ -475,7 +418,7 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
                   "min_samples": min_samples, "seed": seed, "target_kind": tgt.kind, "target_file": tgt.source,
                   "tied_types": [names for names, _ in tied]}
     tables = _observable_tables(model, fit)
-    _untargeted(model, tables[0], type_names, groups, notices)
+    untargeted(model, tables[0], type_names, groups, notices)
     return RefitResult(terms=terms_frame, correction=correction_table(theta, boot_theta, type_names, terms, symmetric),
                        populations=tables[0], profiles=tables[1], couplings=tables[2] if len(tables) > 2 else None,
                        summary=pd.DataFrame([summary]), cross_validation=fit["cv"], ryckaert_bellemans=rb,
@@ -521,12 +464,6 @@ def _per_type(theta, groups):
     per = theta.shape[-1] // (int(np.max(groups)) + 1)
     blocks = theta.reshape(theta.shape[:-1] + (-1, per))
     return blocks[..., np.asarray(groups), :].reshape(theta.shape[:-1] + (len(groups) * per,))
-
-
-def _tied_notice(names, pattern, whats):
-    return (f"{' and '.join(names)} are one force-field term (atom {whats} {pattern}, forwards or reversed: OpenMM "
-            "matches them with one <Proper>), so they were fitted with shared coefficients and the XML has one entry "
-            f"for them; give atom {whats} that tell them apart to fit them separately.")
 
 
 def _xml_comments(summary, tgt, temperature_k, sine_dropped):

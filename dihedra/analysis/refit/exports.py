@@ -145,7 +145,8 @@ def rb_table(terms, symmetric, notices):
             sine = sub["sin_kj_mol"].to_numpy(float)
             if not np.all(np.abs(sine) <= SINE_ZERO_SIGMA * np.nan_to_num(err, nan=0.0)):
                 notices.append(f"no Ryckaert-Bellemans form for {name}: its phases are not 0 or 180 deg (sine terms "
-                               "beyond their errors); fit with symmetric=True (--symmetric) for a form that has one.")
+                               "beyond their errors); a cosine-only fit (the default: without --sine-terms, "
+                               "symmetric=True) has one.")
                 continue
             grid = np.radians(np.arange(-180.0, 180.0, 1.0))[:, None] * sub["n"].to_numpy(float)
             gaps[name] = float(np.max(np.abs(np.sin(grid) @ sine)))    # the largest sine part dropped

@@ -134,6 +134,10 @@ class ObservableSet:
     point_draw : callable or None
         ``point_draw(rng)`` gives one draw of the target from its original points (a profile's
         points, binned again); None: :meth:`drawn_target` draws every observable on its own.
+    mirror : ndarray (n_obs,) or None
+        Index of the observable at the mirror image, phi -> -phi (gauche- of gauche+, the bin at
+        -65 deg of the one at +65; itself for anti; -1: none). A cosine-only fit compares the
+        pairs through their sums (see :class:`ReweightingModel`).
     """
 
     kind: str
@@ -149,6 +153,7 @@ class ObservableSet:
     fitted: np.ndarray = field(default=None)
     rows: object = None
     point_draw: object = None
+    mirror: np.ndarray | None = None
 
     def __post_init__(self):
         if self.fitted is None:
@@ -186,14 +191,22 @@ class ReweightingModel:
     sets : list of ObservableSet
     kt : float
         Thermal energy in kJ/mol.
+    mirrored : bool
+        For a cosine-only correction (V(phi) = V(-phi)): the fit compares every pair of fitted
+        mirror observables (:attr:`ObservableSet.mirror`) through their sum, one residual
+        (d_i + d_j) / sqrt(sigma_i^2 + sigma_j^2), so the part of the target that differs between
+        phi and -phi (which such a correction can reach only through the shapes of the sampled
+        wells, with large coefficients) does not pull on the fit; :meth:`score` compares every
+        observable on its own.
     """
 
-    def __init__(self, x, base_weights, sets, kt):
+    def __init__(self, x, base_weights, sets, kt, mirrored=False):
         self.x = np.asarray(x, dtype=float)
         self.log_w0 = np.log(np.maximum(np.asarray(base_weights, dtype=float), 1e-300))
         self.log_w0[np.asarray(base_weights) <= 0] = -np.inf
         self.sets = list(sets)
         self.kt = float(kt)
+        self.mirrored = bool(mirrored)
 
     @property
     def n_params(self):
@@ -237,9 +250,10 @@ class ReweightingModel:
 
     # -- residuals ---------------------------------------------------------------------------
 
-    def _residuals(self, theta, mult, sigmas, lam, jacobian, targets=None):
+    def _residuals(self, theta, mult, sigmas, lam, jacobian, targets=None, mirrored=None):
         targets = [s.target for s in self.sets] if targets is None else targets
-        parts, jparts = [], []
+        mirrored = self.mirrored if mirrored is None else mirrored
+        parts, jparts, paired = [], [], 0
         for s, target, sigma, (value, grad) in zip(self.sets, targets, sigmas,
                                                    self.values(self.weights(theta, mult), jacobian)):
             use = s.fitted & np.isfinite(value)
@@ -253,11 +267,15 @@ class ReweightingModel:
                     diff[m] -= np.sum(diff[m] * inv[m]) / np.sum(inv[m])
                     if jacobian:
                         dgrad[m] -= (inv[m, None] * grad[m]).sum(axis=0) / np.sum(inv[m])
-            parts.append(np.where(use, diff / sigma, 0.0))
+            r = np.where(use, diff / sigma, 0.0)
+            jr = np.where(use[:, None], dgrad / sigma[:, None], 0.0) if jacobian else None
+            if mirrored and s.mirror is not None:
+                paired += _pair_mirrors(s.mirror, use, diff, sigma, dgrad if jacobian else None, r, jr)
+            parts.append(r)
             if jacobian:
-                jparts.append(np.where(use[:, None], dgrad / sigma[:, None], 0.0))
+                jparts.append(jr)
         r = np.concatenate(parts)
-        n = max(1, int(np.count_nonzero(np.concatenate([s.fitted for s in self.sets]))))
+        n = max(1, int(np.count_nonzero(np.concatenate([s.fitted for s in self.sets]))) - paired)
         penalty = np.sqrt(lam) * np.asarray(theta) / self.kt
         res = np.concatenate([r / np.sqrt(n), penalty])
         if not jacobian:
@@ -266,8 +284,8 @@ class ReweightingModel:
         return res, jac
 
     def score(self, theta, mult, sigmas):
-        """Chi-square per fitted observable (valid ones) at ``theta``."""
-        res, _ = self._residuals(theta, mult, sigmas, 0.0, False)
+        """Chi-square per fitted observable (valid ones) at ``theta``, every observable on its own."""
+        res, _ = self._residuals(theta, mult, sigmas, 0.0, False, mirrored=False)
         data = res[:-self.n_params] if self.n_params else res
         n_valid = 0
         for s, (value, _) in zip(self.sets, self.values(self.weights(theta, mult))):
@@ -301,6 +319,54 @@ class ReweightingModel:
         _, jac = self._residuals(theta, None, sigmas, lam, True)
         s = np.linalg.svd(jac[:-self.n_params], compute_uv=False)
         return float(np.sum(s ** 2 / (s ** 2 + lam / self.kt ** 2)))
+
+    def directions(self, theta, lam, sigmas):
+        """The combinations of the coefficients the data determine, and how much.
+
+        The singular value decomposition of the data part of the Jacobian, J = U S V^T: every
+        row v of V^T is a combination of the coefficients (unit length), determined by the data
+        to the share s^2 / (s^2 + lam / kT^2) (1: set by the target, 0: set by the ridge alone,
+        which holds it at zero; the shares sum to :meth:`effective_parameters`), and the matching
+        column u of U says which observables it moves.
+
+        Returns
+        -------
+        share : ndarray (n_params,)
+            In decreasing order (zero for directions beyond the number of observables).
+        vt : ndarray (n_params, n_params)
+            The combinations, one per row.
+        u : ndarray (n_observables, n_params)
+            The observables (all sets, in order) each combination moves; zero columns beyond the
+            number of observables.
+        """
+        _, jac = self._residuals(theta, None, sigmas, lam, True)
+        data = jac[:-self.n_params]
+        u, s, vt = np.linalg.svd(data, full_matrices=True)
+        s = np.concatenate([s, np.zeros(self.n_params - len(s))])[:self.n_params]
+        u = np.hstack([u, np.zeros((u.shape[0], max(0, self.n_params - u.shape[1])))])[:, :self.n_params]
+        ridge = lam / self.kt ** 2 if lam > 0 else 1e-12 * max(float(np.max(s ** 2, initial=0.0)), 1e-300)
+        return s ** 2 / (s ** 2 + ridge), vt, u
+
+
+def _pair_mirrors(mirror, use, diff, sigma, grad, r, jr):
+    """Replace, in place, the residuals ``r`` (and Jacobian rows ``jr``) of every pair of used
+    mirror observables i < j by one, (d_i + d_j) / sqrt(sigma_i^2 + sigma_j^2) at i and 0 at j;
+    returns the number of pairs."""
+    k = np.arange(len(mirror))
+    j = np.asarray(mirror)
+    ok = use & (j >= 0) & (j != k)
+    ok[ok] &= use[j[ok]]
+    first = np.flatnonzero(ok & (k < j))
+    if not len(first):
+        return 0
+    second = j[first]
+    both = np.hypot(sigma[first], sigma[second])
+    r[first] = (diff[first] + diff[second]) / both
+    r[second] = 0.0
+    if jr is not None:
+        jr[first] = (grad[first] + grad[second]) / both[:, None]
+        jr[second] = 0.0
+    return len(first)
 
 
 def nan_sd(draws):

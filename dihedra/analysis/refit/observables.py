@@ -69,6 +69,46 @@ def _torsions_of(samples, where):
     return []
 
 
+def mirror_states(scheme):
+    """The mirror image of every state (phi -> -phi) of a scheme, as label -> label, for the states
+    whose arcs map onto the arcs of one state (itself, as anti, or another, as gauche+ and
+    gauche-); {} for a scheme that cannot say. Found on a grid of 0.1-degree cells, symmetric about
+    0, by the scheme's own assignment."""
+    try:
+        labels = list(scheme.labels)
+        grid = -180.0 + (np.arange(3600) + 0.5) * 0.1
+        codes = np.asarray(scheme.assign(grid), dtype=int)
+    except (AttributeError, TypeError, ValueError):
+        return {}
+    mirrored = codes[::-1]   # the code at -phi of every cell
+    out = {}
+    for code, label in enumerate(labels):
+        mine = codes == code
+        images = set(mirrored[mine].tolist())
+        if mine.any() and len(images) == 1:
+            image = images.pop()
+            if 0 <= image < len(labels) and int(np.count_nonzero(codes == image)) == int(np.count_nonzero(mine)):
+                out[label] = labels[image]
+    return out
+
+
+def _mirror_rows(rows, samples, scheme):
+    """Index of the mirror row of every (where, state) row (-1 where there is none): the same type
+    or torsion, every state (of ``a|b``) replaced by its mirror image in the scheme of its type."""
+    index = {(where, frozenset(state.split("|"))): k for k, (where, state) in enumerate(rows)}
+    maps = {}
+    out = np.full(len(rows), -1, dtype=np.int64)
+    for k, (where, state) in enumerate(rows):
+        positions = _torsions_of(samples, where)
+        kind = samples.types[positions[0]] if positions else None
+        if kind not in maps:
+            maps[kind] = mirror_states(scheme.for_type(kind) if hasattr(scheme, "for_type") else scheme)
+        mirror, parts = maps[kind], state.split("|")
+        if all(p in mirror for p in parts):
+            out[k] = index.get((where, frozenset(mirror[p] for p in parts)), -1)
+    return out
+
+
 def population_set(samples, scheme, target=None, min_count=50, notices=None):
     """Populations of every chosen type and state, and of every row of a populations target."""
     notices = [] if notices is None else notices
@@ -111,7 +151,8 @@ def population_set(samples, scheme, target=None, min_count=50, notices=None):
                        "reach it; it was not fitted (a new simulation is needed).")
     table = pd.DataFrame({"type": [r[0] for r in rows], "state": [r[1] for r in rows]})
     return ObservableSet("population", num, den, np.asarray(den_index), target_value, target_err,
-                         np.zeros(len(rows)), counts, fitted=fitted, rows=table)
+                         np.zeros(len(rows)), counts, fitted=fitted, rows=table,
+                         mirror=_mirror_rows(rows, samples, scheme))
 
 
 def profile_set(samples, bin_width_deg, kt, target=None, min_count=50, notices=None):
@@ -157,6 +198,7 @@ def profile_set(samples, bin_width_deg, kt, target=None, min_count=50, notices=N
     return ObservableSet("free_energy", num, den, np.repeat(den_of_type, n_bins), target_value, target_err,
                          np.zeros(len(rows)), counts, width_deg=float(bin_width_deg),
                          offset_group=np.repeat(np.arange(n_types), n_bins), fitted=fitted, rows=rows,
+                         mirror=(np.arange(n_types)[:, None] * n_bins + np.arange(n_bins)[::-1]).ravel(),
                          point_draw=partial(_drawn_profile, points, edges, kt, len(rows)) if points else None)
 
 
