@@ -176,6 +176,34 @@ def test_a_run_reweighted_onto_its_own_profile_needs_no_correction(gas, tmp_path
     for part in ("cos", "sin"):
         assert np.all(np.abs(terms[f"{part}_kj_mol"]) <= 3 * terms[f"{part}_err_kj_mol"])
     assert fit.summary.iloc[0]["effective_sample_fraction"] > 0.95
+    # the target folder's own state populations fill the target column (not fitted: a check), and
+    # they are the Boltzmann populations of the run's potential V_RB + dV_true (scipy quad) within
+    # their errors
+    states = pd.read_csv(folder / "state_free_energies.csv").set_index("state")
+    pops = fit.populations.set_index("state")
+    exact = boltzmann_populations(lambda x: rb_energy(x) + periodic(x, [EXTRA]))
+    for state in ("anti", "gauche+", "gauche-"):
+        row = pops.loc[state]
+        assert row["target_population"] == pytest.approx(states.loc[state, "population"], abs=1e-12)
+        assert row["target_population_err"] == pytest.approx(states.loc[state, "population_err"], abs=1e-12)
+        assert not row["fitted"]
+        assert abs(row["target_population"] - exact[state]) <= 3 * row["target_population_err"]
+    assert [n for n in fit.notices if "not fitted, a check" in n and "state_free_energies.csv" in n]
+
+
+def test_target_populations_of_another_scheme_are_not_shown(gas, tmp_path):
+    # the folder's states must be the run's: a target folder with the states of another scheme
+    # (anti-gauche sectors moved by 30 degrees) says why its populations are left out
+    from dihedra import free_energy_profiles
+
+    folder = tmp_path / "other"
+    free_energy_profiles(gas, temperature_k=T, per_torsion=False, n_bootstrap=20).save(str(folder))
+    scheme = dict(gas.summary["scheme"], name="shifted",
+                  boundaries_deg=[b + 30.0 for b in gas.summary["scheme"]["boundaries_deg"]])
+    (folder / "summary.json").write_text(json.dumps({"scheme": scheme}))
+    fit = fit_torsion_correction(gas, str(folder), n_bootstrap=3, regularisation=0.1)
+    assert fit.populations["target_population"].isna().all()
+    assert [n for n in fit.notices if "another scheme (shifted)" in n]
 
 
 # ------------------------------------------------------------------------------------------------
@@ -368,6 +396,9 @@ def test_cli_fits_cosines_unless_sine_terms_are_asked_for(gas, tmp_path, capsys)
     assert main(common) == 0
     out = capsys.readouterr().out
     assert (pd.read_csv(os.path.join(folder, "refit_fourier.csv"))["sin_kj_mol"] == 0).all()
+    # the line on the reweighting rates the frames (Kish), not the correction
+    assert "reweighting: enough effective samples (Kish effective sample fraction" in out
+    assert "this rates the frames, not the correction's terms" in out and "trustworthy" not in out
     assert "coefficients determined by the data; the regularisation sets the rest" in out
     assert main(common + ["--sine-terms"]) == 0
     capsys.readouterr()
@@ -767,7 +798,7 @@ def test_cli_refit_writes_the_files_and_prints_a_summary(gas, targets, capsys):
                    "--atom-classes", "C1=CH3,C2=CH2,C3=CH2,C4=CH3"])
     out = capsys.readouterr()
     assert status == 0
-    assert "effective sample fraction (Kish)" in out.out and "k =" in out.out
+    assert "Kish effective sample fraction" in out.out and "k =" in out.out
     assert os.path.exists(os.path.join(gas.folder, "refit_openmm.xml"))
     assert 'class1="CH3"' in open(os.path.join(gas.folder, "refit_openmm.xml")).read()
 
@@ -787,7 +818,10 @@ def test_report_shows_the_refit_rounded_to_its_errors_and_says_when_it_cannot_be
     section = section[:section.index("</section>")]
     summary = pd.read_csv(os.path.join(folder, "refit_summary.csv"))
     assert bool(summary["trustworthy"][0])   # 150 gas-phase butanes: Kish's fraction about 0.8
-    assert "verdict v-consistent'>trustworthy<" in section
+    # the verdict says what it rates: enough effective samples (Kish), not the correction's terms
+    lead = section.split("</p>")[0]
+    assert "verdict v-consistent'>enough effective samples<" in lead and "trustworthy" not in lead
+    assert "This rates the frames, not the correction's terms" in section
     terms = pd.read_csv(os.path.join(folder, "refit_terms.csv"))
     for row in terms.itertuples():   # every term, each value rounded to its bootstrap error
         assert format_value_error(row.k_kj_mol, row.k_err_kj_mol) in section
@@ -800,7 +834,7 @@ def test_report_shows_the_refit_rounded_to_its_errors_and_says_when_it_cannot_be
     summary["trustworthy"] = False
     summary.to_csv(os.path.join(folder, "refit_summary.csv"), index=False)
     text = build_report(folder, figures=False)
-    assert "verdict v-inconsistent'>not trustworthy<" in text and "rest on a few frames" in text
+    assert "verdict v-inconsistent'>too few effective samples<" in text and "rest on a few frames" in text
 
 
 def test_cli_refit_errors_are_one_line(gas, tmp_path, capsys):

@@ -20,7 +20,8 @@ def register(sub):
                     "couplings (torsion, J_hz, J_err_hz, with --relation); the kind is told from the columns. Ridge "
                     "regularisation chosen by cross-validation over contiguous pieces of the trajectory, bootstrap "
                     "errors (the run's blocks resampled and the target drawn from its own errors), Kish's effective "
-                    "sample fraction (below --min-effective-fraction the fit is reported as not trustworthy). "
+                    "sample fraction (below --min-effective-fraction too few frames carry the weight and the fit is "
+                    "reported as not trustworthy). "
                     "Writes refit_terms.csv, refit_fourier.csv, refit_correction.csv, "
                     "refit_populations.csv, refit_profiles.csv, refit_summary.csv, refit_cross_validation.csv, "
                     "refit_ryckaert_bellemans.csv (where that form exists), refit_openmm.xml and refit.json into DIR. "
@@ -117,10 +118,7 @@ def report(fit):
         for row in sub.itertuples(index=False):
             print(f"    n = {row.n}   k = {format_pm(row.k_kj_mol, row.k_err_kj_mol, 3):>17} kJ/mol   "
                   f"phase = {format_pm(row.phase_deg, row.phase_err_deg, 1):>15} deg")
-    verdict = "trustworthy" if s["trustworthy"] else "NOT TRUSTWORTHY (a new simulation with this correction is needed)"
-    fraction = format_pm(s['effective_sample_fraction'], s['effective_sample_fraction_err'])
-    print(f"effective sample fraction (Kish) {fraction}"
-          f", largest weight {s['largest_weight_fraction']:.2g} of the total: {verdict}")
+    print(reweighting_line(s))
     rest = ("; the regularisation sets the rest, see the notes"
             if s["effective_parameters"] < s["n_coefficients"] - 0.5 else "")
     print(f"chi-square per observable {s['chi_square_sampled']:.2f} sampled -> {s['chi_square_reweighted']:.2f} "
@@ -129,10 +127,25 @@ def report(fit):
     cv = "cross-validated score {:.3g}".format(s["cv_score"]) if s["cv_score"] == s["cv_score"] else "given"
     print(f"regularisation {s['regularisation']:g} ({cv})")
     pops = fit.populations
-    print("populations (target / sampled / reweighted):")
+    print("populations (target / sampled / reweighted; *: a target not fitted, see the notes):")
     for row in pops.itertuples(index=False):
-        target = "-" if row.target_population != row.target_population else f"{row.target_population:.3f}"
+        target = ("-" if row.target_population != row.target_population else
+                  format_pm(row.target_population, row.target_population_err)
+                  if row.target_population_err == row.target_population_err and row.target_population_err > 0
+                  else f"{row.target_population:.3f}")
+        target += " " if row.fitted or target == "-" else "*"
         sampled = format_pm(row.sampled_population, row.sampled_population_err)
-        print(f"  {row.type} {row.state:<12} {target:>7}   {sampled}"
+        print(f"  {row.type} {row.state:<12} {target:>15}   {sampled}"
               f"   {format_pm(row.reweighted_population, row.reweighted_population_err)}")
 
+
+def reweighting_line(s):
+    """The line on the reweighting: whether enough effective samples (Kish) carry the weight. It
+    rates the frames, not the correction's terms (their errors and the notes do that)."""
+    fraction = format_pm(s["effective_sample_fraction"], s["effective_sample_fraction_err"])
+    how = (f"Kish effective sample fraction {fraction}, minimum {s['min_effective_fraction']:g}; largest weight "
+           f"{s['largest_weight_fraction']:.2g} of the total")
+    if s["trustworthy"]:
+        return f"reweighting: enough effective samples ({how}); this rates the frames, not the correction's terms"
+    return (f"reweighting: TOO FEW EFFECTIVE SAMPLES ({how}): the reweighted numbers rest on a few frames; a new "
+            "simulation with this correction is needed")

@@ -215,7 +215,8 @@ def _callout(title, items, kind="note"):
 
 #: Verdicts drawn like others of the same sense (convergence: converged / agree like consistent).
 _SAME_AS = {"converged": "consistent", "agree": "consistent", "trustworthy": "consistent",
-            "not converged": "inconsistent", "disagree": "inconsistent", "not trustworthy": "inconsistent"}
+            "not converged": "inconsistent", "disagree": "inconsistent", "not trustworthy": "inconsistent",
+            "enough effective samples": "consistent", "too few effective samples": "inconsistent"}
 
 
 def _verdict(text):

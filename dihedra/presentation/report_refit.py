@@ -1,8 +1,9 @@
 """The section of the HTML report on a torsion correction fitted by reweighting (the files of
-``dihedra refit``): whether the reweighting can be trusted (Kish's effective sample fraction
-against the minimum asked for), how well the reweighted ensemble meets the target, the fitted
-terms and the populations before and after, each value rounded to its error, with the figures and
-links to the forms a simulation engine takes."""
+``dihedra refit``): whether enough effective samples carry the reweighting (Kish's effective
+sample fraction against the minimum asked for; a verdict on the frames, not on the terms), how
+well the reweighted ensemble meets the target, the fitted terms and the populations before and
+after, each value rounded to its error, with the figures and links to the forms a simulation
+engine takes."""
 
 from __future__ import annotations
 
@@ -10,9 +11,11 @@ import os
 
 from ..io.tables import read_optional_json, read_optional_table as read_optional
 from .figures.common import _as_bool
-from .report_html import (MAX_ROWS, _callout, _figures_html, _fmt, _kelvin, _kv, _missing, _pm, _pm_columns, _table,
-                          _verdict)
+from .report_html import (MAX_ROWS, _callout, _e, _figures_html, _fmt, _kelvin, _kv, _missing, _pm, _pm_columns,
+                          _table, _verdict)
 
+#: The verdict on the reweighting: whether enough effective samples (Kish) carry the weight.
+ENOUGH, TOO_FEW = "enough effective samples", "too few effective samples"
 #: Files of a refit that a user applies elsewhere, linked from the section when present.
 _FORMS = ("refit_openmm.xml", "refit_ryckaert_bellemans.csv", "refit_fourier.csv", "refit_correction.csv")
 
@@ -26,9 +29,12 @@ def _refit(page, figs):
     row = summary.iloc[0]
     p = info.get("parameters", {})
     trusted = bool(_as_bool(summary["trustworthy"])[0])
+    fraction = _pm(row.get("effective_sample_fraction"), row.get("effective_sample_fraction_err"))
     parts = ["<section id='refit'><h2>Torsion correction fitted by reweighting</h2>",
-             "<p class='lead'>Reweighting: " + _verdict("trustworthy" if trusted else "not trustworthy")
-             + (" The frames keep enough weight to stand for the corrected ensemble." if trusted else
+             "<p class='lead'>Reweighting: " + _verdict(ENOUGH if trusted else TOO_FEW)
+             + f" (Kish effective sample fraction {_e(fraction)}, minimum {_e(_fmt(p.get('min_effective_fraction')))})."
+             + (" The frames keep enough weight to stand for the corrected ensemble. This rates the frames, not the "
+                "correction's terms: see their errors and the notes." if trusted else
                 " Too few frames carry the weight: the numbers below rest on a few frames; run a new "
                 "simulation with the correction instead.") + "</p>"]
     target = p.get("target_kind")

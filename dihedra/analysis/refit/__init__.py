@@ -26,7 +26,7 @@ Modules
     Terms, curve, Ryckaert-Bellemans coefficients and the OpenMM fragment.
 :mod:`~dihedra.analysis.refit.notices`
     What a fit can and cannot say: its limits, what the target determines, a sampled profile
-    that is not mirror-symmetric.
+    that is not mirror-symmetric, the target folder's own state populations as a check.
 :mod:`~dihedra.analysis.refit.driver`
     :func:`fit_torsion_correction` and :class:`RefitResult`.
 """

@@ -26,7 +26,8 @@ from ..profiles import bootstrap_multiplicities, resolve_temperature
 from .exports import correction_table, force_field_terms, openmm_xml, rb_table, terms_table, torsion_atoms
 from .fit import (DEFAULT_FOLDS, REGULARISATION_GRID, ReweightingModel, combined_sigmas, cross_validate, features,
                   kish, nan_sd, sampled_errors)
-from .notices import choice_notices, determined_notice, limits, mirror_notice, tied_notice, untargeted
+from .notices import (choice_notices, determined_notice, limits, mirror_notice, target_states,
+                      tied_notice, untargeted)
 from .observables import coupling_set, coupling_values, match_label, population_set, profile_set
 from .samples import WEIGHTS_PER, molecule_ids, read_samples
 from .targets import read_target
@@ -85,9 +86,11 @@ class RefitResult:
         With a couplings target: label, matched_as, type, target_j_hz, target_j_err_hz,
         j_systematic_hz, sampled_j_hz, ..., reweighted_j_err_hz, fitted, n_samples.
     summary : DataFrame
-        One row: the effective sample fraction (Kish) and its error, the largest weight, whether
-        the reweighting is trustworthy, the chi-square per observable before and after, the
-        regularisation and its cross-validated score, coefficients and effective parameters.
+        One row: the effective sample fraction (Kish) and its error, the largest weight,
+        ``trustworthy`` (whether the reweighting kept enough effective samples: at least
+        ``min_effective_fraction``; it rates the frames, not the correction's terms), the
+        chi-square per observable before and after, the regularisation and its cross-validated
+        score, coefficients and effective parameters.
     cross_validation : DataFrame
         regularisation, cv_score (mean chi-square per observable of the pieces left out), cv_score_err,
         chosen.
@@ -113,7 +116,9 @@ class RefitResult:
 
     @property
     def trustworthy(self):
-        """Whether the reweighting kept enough effective samples (see the notices otherwise)."""
+        """Whether the reweighting kept enough effective samples (Kish's fraction at least the
+        minimum asked for): the reweighted numbers rest on many frames. It does not rate the
+        correction's terms: see their errors and the notices."""
         return bool(self.summary["trustworthy"].iloc[0])
 
     def save(self, folder):
@@ -419,6 +424,7 @@ def fit_torsion_correction(result, target, *, temperature_k=None, types=None, te
                   "tied_types": [names for names, _ in tied]}
     tables = _observable_tables(model, fit)
     untargeted(model, tables[0], type_names, groups, notices)
+    target_states(tables[0], tgt, (result.summary or {}).get("scheme"), notices)
     return RefitResult(terms=terms_frame, correction=correction_table(theta, boot_theta, type_names, terms, symmetric),
                        populations=tables[0], profiles=tables[1], couplings=tables[2] if len(tables) > 2 else None,
                        summary=pd.DataFrame([summary]), cross_validation=fit["cv"], ryckaert_bellemans=rb,

@@ -1,7 +1,8 @@
 """What a fitted torsion correction can and cannot say, as notices: the honest limits of the
 reweighting, which combinations of the coefficients the target sets and which the regularisation
 alone, a sampled profile that is not mirror-symmetric under a cosine-only fit, choices to revisit,
-types without a target and types that are one force-field term."""
+types without a target and types that are one force-field term; and the state populations a
+target folder brings along, shown beside the reweighted ones as a check."""
 
 from __future__ import annotations
 
@@ -231,3 +232,46 @@ def tied_notice(names, pattern, whats):
     return (f"{' and '.join(names)} are one force-field term (atom {whats} {pattern}, forwards or reversed: OpenMM "
             "matches them with one <Proper>), so they were fitted with shared coefficients and the XML has one entry "
             f"for them; give atom {whats} that tell them apart to fit them separately.")
+
+
+def _same_scheme(one, other):
+    """Whether two schemes of summary.json define the same states (labels and boundaries)."""
+    keys = ("labels", "boundaries_deg", "arc_states")
+    return all(one.get(k) == other.get(k) for k in keys) if one and other else one == other
+
+
+def target_states(populations, tgt, run_scheme, notices):
+    """Fill the target columns of the populations table (in place) from the state populations a
+    profile target's folder brings along (:attr:`~.targets.Target.states`), where the table has no
+    target value of its own; they are not fitted, a check. A notice says where they come from and
+    how far the reweighted populations lie from them (or why they are not shown)."""
+    states = getattr(tgt, "states", None)
+    if not states or populations is None or not len(populations):
+        return
+    source = states["source"]
+    if states.get("scheme") and run_scheme and not _same_scheme(states["scheme"], run_scheme):
+        notices.append(f"the target folder's state populations ({source}) are not shown: its states are those of "
+                       f"another scheme ({states['scheme'].get('name', '?')}) than the run's.")
+        return
+    table = states["table"].set_index(["type", "state"])
+    filled, worst = [], None
+    for i, row in populations.iterrows():
+        key = (row["type"], row["state"])
+        if np.isfinite(row["target_population"]) or key not in table.index:
+            continue
+        value = table.loc[key]
+        value = value.iloc[0] if value.ndim > 1 else value
+        populations.at[i, "target_population"] = float(value["population"])
+        populations.at[i, "target_population_err"] = float(value["population_err"])
+        filled.append(i)
+        err = np.hypot(float(value["population_err"]), float(row["reweighted_population_err"]))
+        if np.isfinite(err) and err > 0:
+            z = (row["reweighted_population"] - float(value["population"])) / err
+            if worst is None or abs(z) > abs(worst[0]):
+                worst = (z, row["type"], row["state"])
+    if not filled:
+        return
+    how = (f"; the reweighted populations lie within {abs(worst[0]):.1f} combined errors of them (largest: "
+           f"{worst[2]} of {worst[1]})" if worst else "")
+    notices.append(f"the target populations shown for the states come from the target folder ({source}): they are "
+                   f"not fitted, a check of the reweighted ones against the target's own states{how}.")

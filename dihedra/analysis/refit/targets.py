@@ -19,6 +19,10 @@ their columns.
     format ``dihedra couplings --experimental`` reads
     (:func:`dihedra.analysis.couplings.read_experimental`); they are compared through a Karplus
     relation (``relation``), whose systematic error enters the fit's weights.
+
+A profile from a results folder brings the folder's own state populations along when it has them
+(``state_free_energies.csv``, else ``populations_by_type.csv``): :attr:`Target.states`. They are
+not fitted; the refit shows them beside the sampled and reweighted populations, as a check.
 """
 
 from __future__ import annotations
@@ -61,12 +65,17 @@ class Target:
     source : str or None
         The file it came from (absolute).
     notices : list of str
+    states : dict or None
+        A profile of a results folder: the folder's state populations, ``{"table": DataFrame
+        (type, state, population, population_err), "source": path, "scheme": the scheme of its
+        summary.json or None}``; None otherwise.
     """
 
     kind: str
     table: pd.DataFrame
     source: str | None = None
     notices: list = field(default_factory=list)
+    states: dict | None = None
 
     @property
     def types(self):
@@ -136,7 +145,46 @@ def read_target(target, temperature_k=None):
         return Target("couplings", table, os.path.abspath(path), notices)
     table = pd.read_csv(path, comment="#", skipinitialspace=True, keep_default_na=False, na_values=[""],
                         dtype={"type": str, "state": str, "torsion": str})
-    return _normal(kind, table, os.path.abspath(path), temperature_k)
+    out = _normal(kind, table, os.path.abspath(path), temperature_k)
+    if kind == "profile" and os.path.basename(path) == "profiles.csv":
+        out.states = folder_states(os.path.dirname(os.path.abspath(path)))
+    return out
+
+
+#: Files of a results folder with its state populations per type, in the order they are looked for.
+STATE_FILES = ("state_free_energies.csv", "populations_by_type.csv")
+
+
+def folder_states(folder):
+    """The state populations per type of a results folder (its pooled rows: no torsion), as
+    :attr:`Target.states`, or None when it has none (or they cannot be read)."""
+    import json
+
+    for name in STATE_FILES:
+        path = os.path.join(folder, name)
+        if not os.path.exists(path):
+            continue
+        try:
+            table = pd.read_csv(path, keep_default_na=False, na_values=[""], dtype={"type": str, "state": str,
+                                                                                    "torsion": str})
+        except Exception:  # noqa: BLE001 - a damaged companion file only loses the check
+            continue
+        if not {"type", "state", "population"} <= set(table.columns):
+            continue
+        if "torsion" in table.columns:
+            table = table[table["torsion"].isna() | (table["torsion"].astype(str).str.strip() == "")]
+        err = table["population_err"] if "population_err" in table.columns else np.nan
+        out = pd.DataFrame({"type": table["type"].astype(str), "state": table["state"].astype(str),
+                            "population": pd.to_numeric(table["population"], errors="coerce"),
+                            "population_err": pd.to_numeric(err, errors="coerce")})
+        scheme = None
+        try:
+            with open(os.path.join(folder, "summary.json"), encoding="utf-8") as fh:
+                scheme = json.load(fh).get("scheme")
+        except (OSError, ValueError):
+            pass
+        return {"table": out.reset_index(drop=True), "source": path, "scheme": scheme}
+    return None
 
 
 def _normal(kind, table, source, temperature_k):
