@@ -27,6 +27,7 @@ from dihedra.analysis.refit.observables import population_set, profile_set
 from dihedra.analysis.refit.samples import TorsionSamples
 from dihedra.analysis.refit.targets import profile_on_bins
 from dihedra.cli import main
+from dihedra.cli.common import format_pm
 from dihedra.errors import DihedraError
 from dihedra.selection.schemes import get_scheme
 from dihedra.tracking import track
@@ -798,7 +799,10 @@ def test_cli_refit_writes_the_files_and_prints_a_summary(gas, targets, capsys):
                    "--atom-classes", "C1=CH3,C2=CH2,C3=CH2,C4=CH3"])
     out = capsys.readouterr()
     assert status == 0
-    assert "Kish effective sample fraction" in out.out and "k =" in out.out
+    assert "Kish effective sample fraction" in out.out and "phase =" not in out.out
+    # a cosine series (the default) prints its signed coefficients, as refit_fourier.csv holds them
+    fourier = pd.read_csv(os.path.join(gas.folder, "refit_fourier.csv")).iloc[0]
+    assert f"n = 1   a = {format_pm(fourier['cos_kj_mol'], fourier['cos_err_kj_mol']):>17} kJ/mol" in out.out
     assert os.path.exists(os.path.join(gas.folder, "refit_openmm.xml"))
     assert 'class1="CH3"' in open(os.path.join(gas.folder, "refit_openmm.xml")).read()
 

@@ -114,6 +114,12 @@ def report(fit):
     for name, sub in fit.terms.groupby("type", sort=False):
         shared = [t for t in tied.get(name, []) if t != name]
         also = f"   (one force-field term with {', '.join(shared)}: the same coefficients)" if shared else ""
+        if p.get("symmetric"):   # (phases 0 or 180: the signed cosine coefficient says both, with its error)
+            print(f"  {name}: dV(phi) = sum a_n cos(n phi) + constant "
+                  f"(= k_n [1 + cos(n phi - phase_n)], k_n = |a_n|, phase_n 0 for a_n > 0, 180 below){also}")
+            for row in sub.itertuples(index=False):
+                print(f"    n = {row.n}   a = {format_pm(row.cos_kj_mol, row.cos_err_kj_mol, 3):>17} kJ/mol")
+            continue
         print(f"  {name}: dV(phi) = sum k_n [1 + cos(n phi - phase_n)]{also}")
         for row in sub.itertuples(index=False):
             print(f"    n = {row.n}   k = {format_pm(row.k_kj_mol, row.k_err_kj_mol, 3):>17} kJ/mol   "
