@@ -251,7 +251,8 @@ def frozen_notice(result):
     return (f"{len(names)} type(s) never changed state in any torsion, but for momentary excursions ({shown}; "
             "state_changes_seen in convergence.csv): their profiles, minima, barriers and state free energies "
             "show the starting structures (each torsion where it began), not an equilibrium between states; "
-            "read none of them as free energies: their error bars do not measure any sampling between states.")
+            "read none of them as free energies: whatever error bars they carry do not measure any sampling between "
+            "states.")
 
 
 def mixture_notice(populations_by_type):
