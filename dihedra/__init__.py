@@ -20,8 +20,8 @@ Every analysis takes such a result as its first argument and returns a result ob
 DataFrames with a ``save(folder)`` method.
 """
 
+import _signal  # (the interpreter's built-in module: 'import signal' builds enums, a window for Ctrl-C)
 import os as _os
-import signal as _signal
 import sys as _sys
 
 #: SIGINT noted while the command line loads (see :func:`dihedra.cli.main`). As ``python -m
