@@ -424,19 +424,15 @@ RULES = {
 
 
 def rules_with_values(thresholds):
-    """:data:`RULES` with the names of ``thresholds`` (a dict) replaced by their values
-    ("error <= 0.2 kT"), longest names first (``tolerance`` as ``tolerance 1 kJ/mol``).
+    """:data:`RULES` with the names of ``thresholds`` (a dict) replaced by their values, longest first.
 
     >>> rules_with_values({"max_error_kt": 0.2, "n_sigma": 3.0, "tolerance_kj_mol": 1.0})["inconsistent"]
     'excess RMSE > 1 kJ/mol, or a state ddG > 1 kJ/mol and > 3 errors'
     """
-    names = dict(thresholds, tolerance=f"{float(thresholds.get('tolerance_kj_mol', 1.0)):g} kJ/mol")
-    out = {}
-    for key, text in RULES.items():
-        for name in sorted(names, key=len, reverse=True):
-            value = names[name]
-            text = text.replace(name, value if isinstance(value, str) else f"{value:g}")
-        out[key] = text
+    names = dict({k: f"{v:g}" for k, v in thresholds.items()}, tolerance=f"{thresholds['tolerance_kj_mol']:g} kJ/mol")
+    out = dict(RULES)
+    for name in sorted(names, key=len, reverse=True):
+        out = {key: text.replace(name, names[name]) for key, text in out.items()}
     return out
 
 
