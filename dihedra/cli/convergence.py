@@ -4,7 +4,7 @@ import os
 
 from ..analysis.convergence import TARGET_ERROR, TARGET_ERROR_KJ_MOL, convergence
 from ..io.resultsdir import load_results
-from .common import add_overwrite_option, print_notices, print_verdicts, say
+from .common import print_notices, print_verdicts, say
 
 #: The files of the convergence tables ('dihedra track' writes them into every results folder).
 FILES = ("convergence.csv", "convergence_by_state.csv", "convergence_over_time.csv", "convergence.json")
@@ -29,7 +29,10 @@ def register(sub):
     p.add_argument("--time-blocks", type=int, default=500, metavar="N",
                    help="time blocks per replica that the state series is summed into (default 500): the "
                         "resolution of the detected start")
-    add_overwrite_option(p, "convergence tables (those 'dihedra track' wrote, or an earlier 'dihedra convergence')")
+    p.add_argument("--overwrite", action="store_true",
+                   help="write these tables in place of the folder's (those 'dihedra track' or an earlier 'dihedra "
+                        "convergence' wrote); without it they are only printed (files dihedra did not write are "
+                        "never replaced)")
     p.set_defaults(func=run)
 
 
